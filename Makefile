@@ -1,0 +1,35 @@
+# Two commands a new user runs: `make demo` and `make test`. Both build .venv from nothing.
+PY ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+PIP := $(BIN)/pip
+STAMP := $(VENV)/.installed-$(shell cat pyproject.toml constraints.txt | sha256sum | cut -c1-12)
+
+.PHONY: demo test venv services bench soak clean
+
+$(STAMP): pyproject.toml constraints.txt
+	test -x $(BIN)/python || $(PY) -m venv $(VENV)
+	$(PIP) install --quiet --upgrade pip
+	$(PIP) install --quiet -c constraints.txt -e '.[serve,train,dev]'
+	rm -f $(VENV)/.installed-* && touch $@
+
+venv: $(STAMP)
+
+demo: venv
+	$(BIN)/textsieve demo
+
+# System services the tests use (PostgreSQL, nginx, Chromium) come from Debian's packages.
+services:
+	bash scripts/test-services.sh
+
+test: venv services
+	. ./.test-env 2>/dev/null; $(BIN)/python -m pytest
+
+bench: venv
+	$(BIN)/python bench/run.py
+
+soak: venv
+	$(BIN)/python bench/soak.py
+
+clean:
+	rm -rf $(VENV) demo-run textsieve-registry .pytest_cache .test-env

@@ -1,0 +1,70 @@
+"""The model card written into every bundle (after Mitchell et al., 2019, "Model Cards for
+Model Reporting", FAT*)."""
+
+from __future__ import annotations
+
+from textsieve.registry.manifest import Manifest
+
+CAUTIONS = """\
+## Cautions
+
+- Predictions are aids for human review, not decisions. Where a label routes, ranks, hides or
+  flags what a person wrote, an accountable person must be able to see, question and overrule it.
+- The model learns whatever patterns its training data holds, including biases about topics,
+  dialects, names or groups of people. Check its errors per group that matters in your setting
+  before relying on it.
+- Calibrated probabilities hold only for texts like the validation data. Monitor the share of
+  unknown tokens, truncation and the label mix in production, and re-evaluate when they drift.
+- Highlighted spans show which n-grams drove the score; they explain the model, not the truth.
+"""
+
+
+def render_card(m: Manifest, *, model_name: str = "(set on publish)") -> str:
+    a = m.architecture
+    c = m.calibration
+    vectors = (f"pretrained vectors ({a.vectors.dim}d, {a.vectors.mode}, {a.vectors.found} tokens found)"
+               if a.vectors else "embeddings learned from scratch")
+    lines = [
+        f"# Model card: {model_name}",
+        "",
+        "## Intended use",
+        "",
+        f"Sorting short texts into {len(m.labels)} labels ({', '.join(m.labels)}) to support people who",
+        "review them. Not for decisions about people without human review; not for languages,",
+        "domains or text lengths far from the training data.",
+        "",
+        "## Model",
+        "",
+        f"A convolutional sentence classifier (Kim, 2014): {a.embedding_dim}-dimensional {vectors}; filter",
+        f"widths {', '.join(map(str, a.widths))} with {a.maps} feature maps each, ReLU, max-over-time pooling,",
+        f"dropout {a.dropout}, max-norm {a.max_norm}. Vocabulary {m.vocabulary.size} tokens;",
+        f"texts are truncated to {m.lengths.max_length} tokens (the {m.lengths.percentile:g}th percentile of",
+        f"training lengths; {m.lengths.truncation_rate:.2%} of training texts were longer).",
+        "",
+        "## Data",
+        "",
+        f"{m.training.rows} training and {m.training.valid_rows} validation examples; training data",
+        f"sha256 `{m.training.data_sha256}`.",
+        "",
+        "## Metrics",
+        "",
+        "| split | texts | accuracy | macro-F1 | ECE (15 bins) | NLL |",
+        "| --- | ---: | ---: | ---: | ---: | ---: |",
+        f"| {m.metrics.split} | {m.metrics.texts} | {m.metrics.accuracy:.4f} | {m.metrics.macro_f1:.4f} | "
+        f"{m.metrics.ece:.4f} | {m.metrics.nll:.4f} |",
+        "",
+        "## Calibration",
+        "",
+        f"Temperature scaling (Guo et al., 2017) fitted on {c.texts} validation texts: T = {c.temperature:.4f};",
+        f"NLL {c.nll_before:.4f} → {c.nll_after:.4f}, ECE {c.ece_before:.4f} → {c.ece_after:.4f}.",
+        "",
+        "## Export check",
+        "",
+        f"onnxruntime against PyTorch on {m.parity.texts} validation texts: max |Δprobability| "
+        f"{m.parity.max_abs_prob_diff:.2e} (tolerance {m.parity.tolerance:.0e}), label agreement "
+        f"{m.parity.label_agreement:.2%}, argmax-position agreement {m.parity.position_agreement:.2%}; "
+        f"a text alone vs padded in a batch differs by at most {m.parity.batch_invariance_max_diff:.2e}.",
+        "",
+        CAUTIONS,
+    ]
+    return "\n".join(lines)

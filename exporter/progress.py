@@ -1,0 +1,50 @@
+"""Progress on stderr: a bar while an epoch runs (terminals only), one summary line after it."""
+
+from __future__ import annotations
+
+import sys
+from types import TracebackType
+from typing import IO, Any
+
+
+def bar_wanted(quiet: bool, stream: IO[str] | None = None) -> bool:
+    """A bar only helps a person watching a terminal; logs and pipes get the summary lines."""
+    stream = stream or sys.stderr
+    return not quiet and hasattr(stream, "isatty") and stream.isatty()
+
+
+class Progress:
+    """A bar over ``total`` steps, or nothing at all when ``enabled`` is false."""
+
+    def __init__(self, total: int, description: str, *, enabled: bool) -> None:
+        self._bar: Any = None
+        if enabled:
+            from tqdm import tqdm
+
+            self._bar = tqdm(total=total, desc=description, file=sys.stderr, leave=False,
+                             unit="batch", dynamic_ncols=True)
+
+    def advance(self, steps: int = 1, **postfix: float) -> None:
+        if self._bar is not None:
+            if postfix:
+                self._bar.set_postfix({k: f"{v:.3f}" for k, v in postfix.items()}, refresh=False)
+            self._bar.update(steps)
+
+    def close(self) -> None:
+        if self._bar is not None:
+            self._bar.close()
+            self._bar = None
+
+    def __enter__(self) -> Progress:
+        return self
+
+    def __exit__(self, kind: type[BaseException] | None, exc: BaseException | None, tb: TracebackType | None) -> None:
+        self.close()
+
+
+def say(line: str) -> None:
+    """One line of status on stderr, so stdout stays for the command's result."""
+    print(line, file=sys.stderr, flush=True)
+
+
+__all__ = ["Progress", "bar_wanted", "say"]

@@ -1,0 +1,1 @@
+"""textsieve.registry: bundle format, tokenizer, scoring and the model registry."""

@@ -1,0 +1,246 @@
+"""Scoring a bundle with onnxruntime: encoding, length-sorted batches, calibrated probabilities
+and the n-gram spans behind each prediction.
+
+Used by the exporter's parity check, the registry's promotion gates and the service, so all
+three see the same numbers.
+
+Span weights. Max-over-time pooling makes each filter report one n-gram window (Jacovi,
+Sar Shalom and Goldberg, 2018, "Understanding Convolutional Neural Networks for Text
+Classification", treat filters as n-gram detectors). A class logit is exactly
+``bias_c + Σ_f pooled_f · W[c, f]``, so ``pooled_f · W[c, f]`` is filter f's additive share of
+the logit and is the weight its window gets. Windows are summed per token interval, those
+with at least ``SPAN_FLOOR`` of the strongest window's weight are kept, overlapping ones are
+merged (weights added), and the top k by weight are returned.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+from numpy.typing import NDArray
+
+from textsieve.registry.bundle import Bundle, open_bundle
+from textsieve.registry.metrics import softmax
+from textsieve.registry.tokenizer import Tokenizer, Vocabulary
+
+SPAN_FLOOR = 0.2
+DEFAULT_BATCH = 64
+
+
+@dataclass(slots=True)
+class Encoded:
+    """One text, ready for the graph."""
+
+    text: str
+    ids: list[int]
+    offsets: list[tuple[int, int]]
+    tokens: int  # before truncation
+    unknown: int  # unknown tokens among those kept
+
+    @property
+    def truncated(self) -> bool:
+        return self.tokens > len(self.ids)
+
+
+@dataclass(slots=True)
+class Span:
+    start: int
+    end: int
+    text: str
+    label: str
+    weight: float
+    width: int
+    token_start: int
+    token_end: int
+    filters: list[int] = field(default_factory=list)
+
+    def public(self) -> dict[str, object]:
+        return {"start": self.start, "end": self.end, "text": self.text, "label": self.label,
+                "weight": self.weight, "width": self.width}
+
+
+@dataclass(slots=True)
+class Outputs:
+    """Graph outputs for a list of texts, rows in the caller's order."""
+
+    logits: NDArray[np.float32]
+    pooled: NDArray[np.float32]
+    positions: NDArray[np.int64]
+    contributions: NDArray[np.float32]
+
+
+@dataclass(slots=True)
+class Prediction:
+    label: str
+    probabilities: dict[str, float]
+    spans: list[Span]
+    tokens: int
+    truncated: bool
+    unknown: int
+
+    def public(self) -> dict[str, object]:
+        return {"label": self.label, "probabilities": self.probabilities,
+                "spans": [s.public() for s in self.spans], "tokens": self.tokens,
+                "truncated": self.truncated, "unknown": self.unknown}
+
+
+def make_session(model_path: Path, threads: int = 1):  # type: ignore[no-untyped-def]
+    import onnxruntime as ort
+
+    so = ort.SessionOptions()
+    so.intra_op_num_threads = threads
+    so.inter_op_num_threads = 1
+    so.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+    so.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+    return ort.InferenceSession(str(model_path), so, providers=["CPUExecutionProvider"])
+
+
+class Predictor:
+    """One model loaded into one onnxruntime session, with its exact preprocessing."""
+
+    def __init__(
+        self,
+        model_path: Path,
+        *,
+        labels: list[str],
+        temperature: float,
+        tokenizer: Tokenizer,
+        vocab: Vocabulary,
+        max_length: int,
+        min_length: int,
+        filter_widths: list[int],
+        threads: int = 1,
+        batch_size: int = DEFAULT_BATCH,
+    ) -> None:
+        self.labels = list(labels)
+        self.temperature = temperature
+        self.tokenizer = tokenizer
+        self.vocab = vocab
+        self.max_length = max_length
+        self.min_length = min_length
+        self.filter_widths = np.asarray(filter_widths, dtype=np.int64)
+        self.batch_size = batch_size
+        self.session = make_session(model_path, threads)
+
+    @classmethod
+    def from_bundle(cls, bundle: Bundle | Path, *, threads: int = 1, batch_size: int = DEFAULT_BATCH) -> Predictor:
+        b = bundle if isinstance(bundle, Bundle) else open_bundle(Path(bundle))
+        m = b.manifest
+        return cls(
+            b.path / m.onnx.file,
+            labels=m.labels,
+            temperature=m.calibration.temperature,
+            tokenizer=Tokenizer(m.tokenizer),
+            vocab=Vocabulary.load(b.path / m.vocabulary.file),
+            max_length=m.lengths.max_length,
+            min_length=m.lengths.min_length,
+            filter_widths=m.architecture.filter_widths(),
+            threads=threads,
+            batch_size=batch_size,
+        )
+
+    # -- encoding -------------------------------------------------------------------------
+    def encode(self, text: str) -> Encoded:
+        tokens, offsets = self.tokenizer.split(text)
+        n = len(tokens)
+        if n > self.max_length:
+            tokens = tokens[: self.max_length]
+            offsets = offsets[: self.max_length]
+        ids = self.vocab.encode(tokens)
+        return Encoded(text, ids, offsets, n, ids.count(self.vocab.unk_id))
+
+    # -- the graph ------------------------------------------------------------------------
+    def run_arrays(self, token_ids: NDArray[np.int64], lengths: NDArray[np.int64]) -> list[NDArray]:  # type: ignore[type-arg]
+        out: list[NDArray] = self.session.run(None, {"token_ids": token_ids, "lengths": lengths})  # type: ignore[type-arg]
+        return out
+
+    def run(self, encoded: list[Encoded], *, sort: bool = True) -> Outputs:
+        """Run every text, in length-sorted batches each padded only to its own longest."""
+        n = len(encoded)
+        lengths = np.fromiter((len(e.ids) for e in encoded), dtype=np.int64, count=n)
+        order = np.argsort(lengths, kind="stable") if sort else np.arange(n)
+        parts: list[tuple[NDArray, list[NDArray]]] = []  # type: ignore[type-arg]
+        for lo in range(0, n, self.batch_size):
+            idx = order[lo : lo + self.batch_size]
+            parts.append((idx, self.run_arrays(*self.pad([encoded[i] for i in idx]))))
+        classes = len(self.labels)
+        filters = len(self.filter_widths)
+        logits = np.empty((n, classes), np.float32)
+        pooled = np.empty((n, filters), np.float32)
+        positions = np.empty((n, filters), np.int64)
+        contributions = np.empty((n, filters, classes), np.float32)
+        for idx, (lg, pl, ps, ct) in parts:
+            logits[idx], pooled[idx], positions[idx], contributions[idx] = lg, pl, ps, ct
+        return Outputs(logits, pooled, positions, contributions)
+
+    def pad(self, batch: list[Encoded], width: int | None = None) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+        lengths = np.fromiter((len(e.ids) for e in batch), dtype=np.int64, count=len(batch))
+        seq = max(int(lengths.max(initial=0)), self.min_length) if width is None else max(width, self.min_length)
+        ids = np.zeros((len(batch), seq), dtype=np.int64)
+        for row, e in enumerate(batch):
+            ids[row, : len(e.ids)] = e.ids
+        return ids, lengths
+
+    # -- results --------------------------------------------------------------------------
+    def probabilities(self, logits: NDArray[np.floating]) -> NDArray[np.float64]:
+        """softmax(logits / T): temperature scaling (Guo et al., 2017)."""
+        return softmax(logits, self.temperature)
+
+    def spans(self, enc: Encoded, out: Outputs, row: int, label: int, k: int) -> list[Span]:
+        n = len(enc.ids)
+        if k <= 0 or n == 0:
+            return []
+        contrib = out.contributions[row, :, label]
+        fired = np.flatnonzero(contrib > 0)
+        if fired.size == 0:
+            return []
+        starts = out.positions[row, fired]
+        ends = np.minimum(starts + self.filter_widths[fired], n)
+        windows: dict[tuple[int, int], tuple[float, list[int]]] = {}
+        for f, s, e, w in zip(fired.tolist(), starts.tolist(), ends.tolist(), contrib[fired].tolist(), strict=True):
+            total, members = windows.get((s, e), (0.0, []))
+            members.append(f)
+            windows[(s, e)] = (total + w, members)
+        floor = SPAN_FLOOR * max(v[0] for v in windows.values())
+        kept = sorted((key, v) for key, v in windows.items() if v[0] >= floor)
+        merged: list[list] = []  # type: ignore[type-arg]
+        for (s, e), (w, members) in kept:
+            if merged and s < merged[-1][1]:
+                last = merged[-1]
+                last[1] = max(last[1], e)
+                last[2] += w
+                last[3].extend(members)
+            else:
+                merged.append([s, e, w, list(members)])
+        merged.sort(key=lambda m: -m[2])
+        name = self.labels[label]
+        result = []
+        for s, e, w, members in merged[:k]:
+            cs, ce = enc.offsets[s][0], enc.offsets[e - 1][1]
+            result.append(Span(cs, ce, enc.text[cs:ce], name, float(w), e - s, s, e, sorted(members)))
+        return result
+
+    def predict(self, texts: list[str], *, spans: int = 3) -> list[Prediction]:
+        encoded = [self.encode(t) for t in texts]
+        out = self.run(encoded)
+        return self.results(encoded, out, spans=spans)
+
+    def results(self, encoded: list[Encoded], out: Outputs, *, spans: int = 3) -> list[Prediction]:
+        probs = self.probabilities(out.logits)
+        best = probs.argmax(axis=1)
+        labels = self.labels
+        preds = []
+        for row, enc in enumerate(encoded):
+            c = int(best[row])
+            preds.append(Prediction(
+                labels[c],
+                dict(zip(labels, probs[row].tolist(), strict=True)),
+                self.spans(enc, out, row, c, spans),
+                enc.tokens, enc.truncated, enc.unknown,
+            ))
+        return preds
+
+
+__all__ = ["Encoded", "Outputs", "Prediction", "Predictor", "Span", "make_session", "SPAN_FLOOR"]

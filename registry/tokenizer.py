@@ -1,0 +1,183 @@
+"""The tokenizer and vocabulary shared by the exporter and the service.
+
+Tokens are found in the text exactly as sent, so their character offsets always index the
+caller's string; normalisation (NFKC, case folding, one apostrophe) is applied to each token
+afterwards, only to look it up in the vocabulary. That is what lets a span's
+``text[start:end]`` equal what the caller sent, whatever Unicode it contains.
+"""
+
+from __future__ import annotations
+
+import functools
+import re
+import unicodedata
+from collections import Counter
+from collections.abc import Iterable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Literal
+
+from pydantic import BaseModel, ConfigDict
+
+from textsieve.errors import BundleError
+
+PAD = "<pad>"
+UNK = "<unk>"
+
+# CJK ideographs are written without spaces; one token per ideograph is common practice
+# (it is what Devlin et al., 2019, BERT's basic tokenizer does).
+_CJK_RANGES = (
+    (0x3400, 0x4DBF),
+    (0x4E00, 0x9FFF),
+    (0xF900, 0xFAFF),
+    (0x20000, 0x2A6DF),
+    (0x2A700, 0x2EBEF),
+    (0x2F800, 0x2FA1F),
+    (0x30000, 0x3134F),
+)
+
+
+class TokenizerSpec(BaseModel):
+    """What the manifest records so both sides tokenize identically."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    scheme: Literal["textsieve-words"] = "textsieve-words"
+    version: Literal[1] = 1
+    normalization: Literal["NFKC"] = "NFKC"
+    case: Literal["casefold", "keep"] = "casefold"
+    split_cjk: bool = True
+    unicode_version: str = unicodedata.unidata_version
+
+
+def _ranges(codepoints: Iterable[int]) -> str:
+    """Collapse sorted code points into a regex character-class body."""
+    parts: list[str] = []
+    start = prev = -2
+    for cp in codepoints:
+        if cp == prev + 1:
+            prev = cp
+            continue
+        if start >= 0:
+            parts.append(_class_range(start, prev))
+        start = prev = cp
+    if start >= 0:
+        parts.append(_class_range(start, prev))
+    return "".join(parts)
+
+
+def _class_range(lo: int, hi: int) -> str:
+    return re.escape(chr(lo)) if lo == hi else f"{re.escape(chr(lo))}-{re.escape(chr(hi))}"
+
+
+@functools.cache
+def _pattern(split_cjk: bool) -> re.Pattern[str]:
+    marks: list[int] = []
+    formats: list[int] = []
+    for cp in range(0x110000):
+        cat = unicodedata.category(chr(cp))
+        if cat[0] == "M":
+            marks.append(cp)
+        elif cat == "Cf":
+            formats.append(cp)
+    m = _ranges(marks)
+    cf = _ranges(formats)
+    cjk = "".join(_class_range(lo, hi) for lo, hi in _CJK_RANGES) if split_cjk else ""
+    # A word: letters/digits/underscore (minus ideographs) with any combining marks, and
+    # inner apostrophes so that "don't" stays one token.
+    word_char = f"(?:[^\\W{cjk}]|[{m}])" if cjk else f"(?:\\w|[{m}])"
+    word = f"{word_char}+(?:['\u2019]{word_char}+)*"
+    ideograph = f"[{cjk}][{m}]*" if cjk else None
+    # Anything else visible is a one-character token (punctuation, emoji) with its marks;
+    # whitespace and invisible format characters (zero-width space, joiners, bidi controls)
+    # separate tokens and never become one.
+    symbol = f"[^\\s\\w{m}{cf}][{m}]*"
+    alternatives = [word] + ([ideograph] if ideograph else []) + [symbol]
+    return re.compile("|".join(alternatives))
+
+
+@dataclass(frozen=True, slots=True)
+class Token:
+    """One token: its normalised form and its character offsets into the original text."""
+
+    norm: str
+    start: int
+    end: int
+
+
+class Tokenizer:
+    """Splits text into tokens with offsets, as described by a :class:`TokenizerSpec`."""
+
+    def __init__(self, spec: TokenizerSpec | None = None) -> None:
+        self.spec = spec or TokenizerSpec()
+        if self.spec.unicode_version != unicodedata.unidata_version:
+            # Character classes come from this Python's Unicode tables; other tables could
+            # split a few rare characters differently from training.
+            pass
+        self._finditer = _pattern(self.spec.split_cjk).finditer
+        self._fold = self.spec.case == "casefold"
+
+    def normalize(self, piece: str) -> str:
+        if not piece.isascii():
+            piece = unicodedata.normalize("NFKC", piece).replace("\u2019", "'")
+        return piece.casefold() if self._fold else piece
+
+    def tokenize(self, text: str) -> list[Token]:
+        norm = self.normalize
+        return [Token(norm(m.group()), m.start(), m.end()) for m in self._finditer(text)]
+
+    def split(self, text: str) -> tuple[list[str], list[tuple[int, int]]]:
+        """Normalised tokens and their (start, end) offsets, as two parallel lists."""
+        norm = self.normalize
+        tokens: list[str] = []
+        offsets: list[tuple[int, int]] = []
+        for m in self._finditer(text):
+            tokens.append(norm(m.group()))
+            offsets.append(m.span())
+        return tokens, offsets
+
+
+class Vocabulary:
+    """Token ↔ id mapping; id 0 is padding, id 1 the unknown token."""
+
+    pad_id = 0
+    unk_id = 1
+
+    def __init__(self, tokens: list[str]) -> None:
+        if len(tokens) < 2 or tokens[0] != PAD or tokens[1] != UNK:
+            raise BundleError(f"vocabulary must start with {PAD!r} and {UNK!r}")
+        self.tokens = tokens
+        self.index = {tok: i for i, tok in enumerate(tokens)}
+        if len(self.index) != len(tokens):
+            raise BundleError("vocabulary has duplicate tokens")
+
+    def __len__(self) -> int:
+        return len(self.tokens)
+
+    @classmethod
+    def build(cls, counts: Counter[str], *, min_count: int = 1, max_size: int | None = None) -> Vocabulary:
+        """Most frequent first, ties broken alphabetically, so the result is deterministic."""
+        kept = sorted((t for t, c in counts.items() if c >= min_count and t not in (PAD, UNK)),
+                      key=lambda t: (-counts[t], t))
+        if max_size is not None:
+            kept = kept[: max(max_size - 2, 0)]
+        return cls([PAD, UNK, *kept])
+
+    def encode(self, tokens: Iterable[str]) -> list[int]:
+        get = self.index.get
+        unk = self.unk_id
+        return [get(t, unk) for t in tokens]
+
+    def dumps(self) -> str:
+        return "".join(t + "\n" for t in self.tokens)
+
+    @classmethod
+    def load(cls, path: Path) -> Vocabulary:
+        text = path.read_text(encoding="utf-8")
+        tokens = text.split("\n")
+        if tokens and tokens[-1] == "":
+            tokens.pop()
+        return cls(tokens)
+
+
+__all__ = ["PAD", "UNK", "Token", "Tokenizer", "TokenizerSpec", "Vocabulary"]

@@ -1,0 +1,84 @@
+"""Tokenizer: offsets index the text as sent, whatever Unicode it holds."""
+
+from __future__ import annotations
+
+import unicodedata
+from collections import Counter
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from textsieve.errors import BundleError
+from textsieve.registry.tokenizer import PAD, UNK, Tokenizer, TokenizerSpec, Vocabulary
+
+TOK = Tokenizer()
+
+# Characters that break naive offset arithmetic: emoji with modifiers and joiners, combining
+# marks, CJK, right-to-left scripts, zero-width and bidi controls, a byte-order mark.
+TRICKY = ["👍🏽", "👨\u200d👩\u200d👧", "e\u0301", "A\u0308", "東京", "שלום", "مرحبا", "\u200b", "\u200f",
+          "\ufeff", "don’t", "ß", "ﬁ", "\u00a0", "Ω", "x\u0327\u0301"]
+
+
+def _texts() -> st.SearchStrategy[str]:
+    pieces = st.one_of(st.sampled_from(TRICKY), st.text(max_size=8), st.sampled_from([" ", "  ", "\n", "!"]))
+    return st.lists(pieces, max_size=20).map("".join)
+
+
+@settings(max_examples=400, deadline=None)
+@given(_texts())
+def test_offsets_index_the_original_text(text: str) -> None:
+    tokens = TOK.tokenize(text)
+    last_end = 0
+    for t in tokens:
+        assert 0 <= last_end <= t.start < t.end <= len(text)
+        assert TOK.normalize(text[t.start : t.end]) == t.norm
+        last_end = t.end
+    # Nothing visible is dropped: what lies between tokens is whitespace or invisible format characters.
+    covered = set()
+    for t in tokens:
+        covered.update(range(t.start, t.end))
+    for i, ch in enumerate(text):
+        if i not in covered:
+            assert ch.isspace() or unicodedata.category(ch) == "Cf", (text, i, ch)
+
+
+def test_examples() -> None:
+    text = "Don’t stop! cafe\u0301 👍🏽 東京 ok\u200bgo"
+    got = [(t.norm, text[t.start : t.end]) for t in TOK.tokenize(text)]
+    assert got == [("don't", "Don’t"), ("stop", "stop"), ("!", "!"), ("café", "cafe\u0301"),
+                   ("👍", "👍"), ("🏽", "🏽"), ("東", "東"), ("京", "京"), ("ok", "ok"), ("go", "go")]
+
+
+def test_zero_width_space_is_a_separator_not_a_token() -> None:
+    assert [t.norm for t in TOK.tokenize("a\u200b\u200bb \u200b")] == ["a", "b"]
+
+
+def test_normalisation_is_nfkc_and_case_folded() -> None:
+    # NFKC maps the ligature ﬁ to "fi" (Unicode Standard Annex #15); casefold maps ß to "ss".
+    assert [t.norm for t in TOK.tokenize("ﬁne STRAẞE")] == ["fine", "strasse"]
+
+
+def test_spec_round_trips_and_rejects_unknown_fields() -> None:
+    spec = TokenizerSpec()
+    assert TokenizerSpec.model_validate(spec.model_dump()) == spec
+    with pytest.raises(ValueError):
+        TokenizerSpec.model_validate({**spec.model_dump(), "lowercase": True})
+
+
+def test_vocabulary_is_deterministic_and_reserves_pad_and_unk() -> None:
+    counts = Counter({"b": 3, "a": 3, "c": 1, "d": 2})
+    v = Vocabulary.build(counts, min_count=2)
+    assert v.tokens == [PAD, UNK, "a", "b", "d"]
+    assert v.encode(["a", "zzz", "d"]) == [2, 1, 4]
+    assert Vocabulary.build(counts, max_size=3).tokens == [PAD, UNK, "a"]
+
+
+def test_vocabulary_file_round_trip(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    v = Vocabulary.build(Counter({"é": 2, "東": 1, "x y": 1}))
+    path = tmp_path / "vocab.txt"
+    path.write_text(v.dumps(), encoding="utf-8")
+    assert Vocabulary.load(path).tokens == v.tokens
+    path.write_text("x\n<unk>\n", encoding="utf-8")
+    with pytest.raises(BundleError):
+        Vocabulary.load(path)

@@ -1,0 +1,105 @@
+"""The one exception tree of textsieve.
+
+    TextsieveError                 base; never raised itself
+    ├── InputError                 bad user input (data file, argument, request): CLI exit 2, HTTP 422
+    │   └── LimitError             a request limit was exceeded: HTTP 413
+    ├── BundleError                a bundle is malformed or fails a check: CLI exit 2, HTTP 422
+    │   └── ParityError            exported model disagrees with its source: CLI exit 1
+    ├── RegistryError              registry state or storage problem
+    │   ├── NotFoundError          unknown model, version or evaluation set: CLI exit 2, HTTP 404
+    │   ├── StateError             transition not allowed from the current state: CLI exit 2, HTTP 409
+    │   ├── GateRefusedError       a promotion gate refused: CLI exit 1, HTTP 409
+    │   ├── IntegrityError         a stored blob is missing or its sha256 differs: HTTP 500-class 503
+    │   └── UnavailableError       the metadata store cannot be reached: HTTP 503
+    └── AuthError                  missing or wrong admin token: HTTP 401/403
+
+Lower-layer errors (sqlite3, psycopg, onnxruntime, torch, OSError) are translated at one
+boundary each with ``raise ... from exc``.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+
+class TextsieveError(Exception):
+    """Base of every error textsieve raises on purpose."""
+
+    exit_code = 2
+
+    def __init__(self, message: str, **context: Any) -> None:
+        super().__init__(message)
+        self.message = message
+        self.context = context
+
+
+class InputError(TextsieveError):
+    """Bad input from a user: a data file, an argument or a request field."""
+
+
+class LimitError(InputError):
+    """A configured request limit was exceeded."""
+
+
+class BundleError(TextsieveError):
+    """A bundle directory is malformed or fails one of its checks."""
+
+
+class ParityError(BundleError):
+    """The exported ONNX model disagrees with the PyTorch model beyond tolerance."""
+
+    exit_code = 1
+
+
+class RegistryError(TextsieveError):
+    """A registry operation failed."""
+
+
+class NotFoundError(RegistryError):
+    """An unknown model, version or evaluation set."""
+
+
+class StateError(RegistryError):
+    """A lifecycle transition that the version's current state does not allow."""
+
+
+class GateRefusedError(RegistryError):
+    """A promotion gate refused; ``context['gates']`` holds every gate's result."""
+
+    exit_code = 1
+
+
+class IntegrityError(RegistryError):
+    """A stored blob is missing or does not match its recorded sha256."""
+
+    exit_code = 1
+
+
+class UnavailableError(RegistryError):
+    """The registry's metadata store cannot be reached right now."""
+
+    exit_code = 1
+
+
+class AuthError(TextsieveError):
+    """Admin credentials are missing or wrong."""
+
+    def __init__(self, message: str, *, missing: bool) -> None:
+        super().__init__(message)
+        self.missing = missing
+
+
+__all__ = [
+    "AuthError",
+    "BundleError",
+    "GateRefusedError",
+    "InputError",
+    "IntegrityError",
+    "LimitError",
+    "NotFoundError",
+    "ParityError",
+    "RegistryError",
+    "StateError",
+    "TextsieveError",
+    "UnavailableError",
+]
