@@ -11,13 +11,15 @@ Each message gets one of four labels:
 - ``account``: logging in, membership cards, profiles;
 - ``praise``: nothing to fix, the member says thanks.
 
-The label is never random (no label noise), but about a fifth of the messages can only be
+The label follows a rule (below) except for ``DISAGREEMENT`` (5 %) of messages, whose label
+was flipped to another one, as when two people sort the same inbox differently. About a
+fifth of the messages can only be
 read by word order: "The chain is not broken, but I was charged twice." is billing while
 "The chain is broken, but I was not charged twice." is repair, with the very same bag of
 words. Others need the contrast read right: "it worked fine until my account got locked" is
 account, "the chain snapped last week, but you fixed it straight away. Thanks!" is praise.
 The rule throughout: the label is the problem the member still has; when none is left and
-thanks are given, it is praise. Measured when this was written (seed 7, 6,000 messages): a
+thanks are given, it is praise. Measured without the disagreement (seed 7, 6,000 messages): a
 unigram bag-of-words logistic regression scored about 0.90 in 5-fold cross-validation and a
 unigram+bigram one 1.00, so the data is learnable, but only with word order.
 """
@@ -37,6 +39,9 @@ _PROBLEM_LABELS: tuple[str, ...] = ("billing", "repair", "account")
 MIN_TOKENS = 5
 MAX_TOKENS = 60
 SPLIT_NAMES: tuple[str, ...] = ("train", "valid", "test")
+# Without it the demo model is right on every validation text and calibration has nothing to
+# show; real labelled inboxes carry a few percent of such disagreement.
+DISAGREEMENT = 0.05
 
 # Words and single punctuation marks: the measure the length bounds above are stated in.
 _TOKEN = re.compile(r"\w+|[^\w\s]")
@@ -263,11 +268,18 @@ def token_count(text: str) -> int:
     return len(_TOKEN.findall(text))
 
 
-def generate(n: int = 6000, seed: int = 7) -> list[dict[str, str]]:
-    """``n`` distinct invented messages as ``{"text", "label"}``; the same seed gives the same list."""
+def generate(n: int = 6000, seed: int = 7, disagreement: float = DISAGREEMENT) -> list[dict[str, str]]:
+    """``n`` distinct invented messages as ``{"text", "label"}``; the same seed gives the same list.
+
+    ``disagreement`` is the share of messages whose recorded label is another one, as when
+    two people sorting the same inbox disagree; it does not change the texts.
+    """
     if isinstance(n, bool) or not isinstance(n, int) or n < 1:
         raise ValueError(f"n must be a positive whole number of examples, got {n!r}")
+    if not 0 <= disagreement < 1:
+        raise ValueError(f"disagreement must be at least 0 and below 1, got {disagreement!r}")
     rng = random.Random(seed)
+    flips = random.Random(f"disagreement-{seed}")
     seen: dict[str, str] = {}
     # Bounded so a future template change that runs out of distinct texts fails loudly.
     for _ in range(n * 50):
@@ -280,7 +292,12 @@ def generate(n: int = 6000, seed: int = 7) -> list[dict[str, str]]:
     else:
         if len(seen) < n:
             raise RuntimeError(f"templates gave only {len(seen)} distinct messages, {n} asked for")
-    return [{"text": text, "label": label} for text, label in seen.items()]
+    rows = []
+    for text, label in seen.items():
+        if flips.random() < disagreement:
+            label = flips.choice([x for x in LABELS if x != label])
+        rows.append({"text": text, "label": label})
+    return rows
 
 
 def _write_jsonl_atomic(path: Path, rows: list[dict[str, str]]) -> None:

@@ -93,12 +93,14 @@ def test_negation_twins_share_words_but_not_labels(rows: list[dict[str, str]]) -
     assert any(len(labels) > 1 for labels in bags.values())
 
 
-def test_word_order_matters_for_a_linear_model(rows: list[dict[str, str]]) -> None:
-    # External check with scikit-learn: unigram logistic regression must fall short, while the
-    # same model with bigrams (which see "not broken" vs "is broken") must nearly solve it.
+def test_word_order_matters_for_a_linear_model() -> None:
+    # External check with scikit-learn, on the rule-following labels (no disagreement):
+    # unigram logistic regression must fall short, while the same model with bigrams (which
+    # see "not broken" vs "is broken") must nearly solve it.
     from sklearn.feature_extraction.text import CountVectorizer
     from sklearn.linear_model import LogisticRegression
 
+    rows = generate(disagreement=0.0)
     texts, labels = [r["text"] for r in rows], [r["label"] for r in rows]
 
     def held_out_accuracy(ngrams: tuple[int, int]) -> float:
@@ -161,3 +163,13 @@ def test_module_says_data_is_invented() -> None:
     doc = " ".join((demo_data.__doc__ or "").lower().split())
     assert "invented" in doc
     assert "not test reference data" in doc
+
+
+def test_disagreement_flips_labels_not_texts(rows: list[dict[str, str]]) -> None:
+    clean = generate(disagreement=0.0)
+    assert [r["text"] for r in clean] == [r["text"] for r in rows]
+    flipped = sum(a["label"] != b["label"] for a, b in zip(clean, rows, strict=True))
+    # 5 % of 6,000 is 300; a binomial standard deviation is about 17.
+    assert 230 <= flipped <= 370, flipped
+    with pytest.raises(ValueError, match="disagreement"):
+        generate(10, disagreement=1.0)
