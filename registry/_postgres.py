@@ -1,0 +1,168 @@
+"""PostgreSQL metadata backend, for several replicas sharing one registry.
+
+Write transactions take a transaction-scoped advisory lock (one per schema) before anything
+else, then lock the model row with ``SELECT ... FOR UPDATE``. The advisory lock serialises
+writers the way SQLite's single write lock does, which keeps event ids in commit order (an
+identity column hands out ids at insert time, not commit time, so without it a poller could
+see id 11 before id 10 commits and skip 10). Reads run at REPEATABLE READ so one call sees
+one snapshot.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import threading
+from collections.abc import Iterator
+from typing import Any
+
+from textsieve.errors import RegistryError, StateError, UnavailableError
+from textsieve.registry._db import Backend, Params, Row, Tx
+
+CONNECT_TIMEOUT_S = 5
+_WRITE_LOCK = ("SELECT pg_advisory_xact_lock("
+               "('x' || substr(md5('textsieve:' || current_schema()), 1, 16))::bit(64)::bigint)")
+
+
+def _psycopg() -> Any:
+    try:
+        import psycopg
+    except ModuleNotFoundError as exc:
+        raise RegistryError("a postgresql:// registry needs psycopg: pip install 'textsieve[serve]'") from exc
+    return psycopg
+
+
+def translate(exc: Exception, where: str) -> RegistryError:
+    psycopg = _psycopg()
+    first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    if isinstance(exc, psycopg.errors.IntegrityError):
+        return StateError(f"{where}: the change conflicts with the registry's rules ({first})")
+    transient = psycopg.OperationalError | psycopg.errors.SerializationFailure | psycopg.errors.DeadlockDetected
+    if isinstance(exc, transient):
+        return UnavailableError(f"{where}: PostgreSQL unavailable: {first}")
+    return RegistryError(f"{where}: registry database error: {first}")
+
+
+def describe(url: str) -> str:
+    """The URL without its password, for messages."""
+    psycopg = _psycopg()
+    try:
+        info = psycopg.conninfo.conninfo_to_dict(url)
+    except psycopg.ProgrammingError:
+        return "postgresql://(unparsable URL)"
+    host = info.get("host", "localhost")
+    port = info.get("port", "5432")
+    return f"postgresql://{info.get('user', '')}@{host}:{port}/{info.get('dbname', '')}"
+
+
+class _PgTx(Tx):
+    dialect = "postgresql"
+
+    def __init__(self, conn: Any) -> None:
+        self.conn = conn
+
+    def run(self, sql: str, params: Params = ()) -> int:
+        cur = self.conn.execute(sql.replace("?", "%s"), tuple(params))
+        return int(cur.rowcount)
+
+    def all(self, sql: str, params: Params = ()) -> list[Row]:
+        cur = self.conn.execute(sql.replace("?", "%s"), tuple(params))
+        return list(cur.fetchall()) if cur.description else []
+
+    def script(self, sql: str) -> None:
+        for statement in sql.split(";"):
+            if statement.strip():
+                self.conn.execute(statement)
+
+    def lock_model(self, name: str) -> None:
+        self.conn.execute("SELECT name FROM models WHERE name = %s FOR UPDATE", (name,))
+
+
+class PostgresBackend(Backend):
+    dialect = "postgresql"
+
+    def __init__(self, url: str) -> None:
+        self.url = url
+        self.description = describe(url)
+        self._lock = threading.RLock()
+        self._conn: Any = None
+        self._pid = 0
+        self._depth = 0
+
+    @property
+    def ddl_types(self) -> dict[str, str]:
+        return {"serial": "BIGINT GENERATED ALWAYS AS IDENTITY PRIMARY KEY"}
+
+    def _connection(self) -> Any:
+        psycopg = _psycopg()
+        if self._conn is None or self._pid != os.getpid() or self._conn.closed or self._conn.broken:
+            try:
+                self._conn = psycopg.connect(self.url, autocommit=True, connect_timeout=CONNECT_TIMEOUT_S,
+                                             row_factory=psycopg.rows.dict_row)
+            except psycopg.Error as exc:
+                raise translate(exc, self.description) from exc
+            self._pid = os.getpid()
+        return self._conn
+
+    @contextlib.contextmanager
+    def _transaction(self, begin: str, *setup: str) -> Iterator[Tx]:
+        with self._lock:
+            if self._depth:
+                # One connection, one transaction: an inner BEGIN would fail or commit the outer one.
+                raise RuntimeError("a registry transaction was opened inside another one")
+            self._depth += 1
+            try:
+                with self._transaction_body(begin, *setup) as tx:
+                    yield tx
+            finally:
+                self._depth -= 1
+
+    @contextlib.contextmanager
+    def _transaction_body(self, begin: str, *setup: str) -> Iterator[Tx]:
+        psycopg = _psycopg()
+        conn = self._connection()
+        try:
+            conn.execute(begin)
+            for statement in setup:
+                conn.execute(statement)
+        except psycopg.Error as exc:
+            self._abort(conn)
+            raise translate(exc, self.description) from exc
+        try:
+            yield _PgTx(conn)
+        except BaseException as exc:
+            self._abort(conn)
+            if isinstance(exc, psycopg.Error):
+                raise translate(exc, self.description) from exc
+            raise
+        try:
+            conn.execute("COMMIT")
+        except psycopg.Error as exc:
+            self._abort(conn)
+            raise translate(exc, self.description) from exc
+
+    def _abort(self, conn: Any) -> None:
+        psycopg = _psycopg()
+        try:
+            conn.execute("ROLLBACK")
+        except psycopg.Error:
+            # A broken connection: drop it, the next call reconnects.
+            with contextlib.suppress(psycopg.Error):
+                conn.close()
+            self._conn = None
+
+    def read(self) -> contextlib.AbstractContextManager[Tx]:
+        return self._transaction("BEGIN ISOLATION LEVEL REPEATABLE READ, READ ONLY")
+
+    def write(self) -> contextlib.AbstractContextManager[Tx]:
+        return self._transaction("BEGIN", _WRITE_LOCK)
+
+    def close(self) -> None:
+        with self._lock:
+            if self._conn is not None and self._pid == os.getpid():
+                with contextlib.suppress(Exception):
+                    self._conn.close()
+            self._conn = None
+
+
+__all__ = ["PostgresBackend", "describe"]

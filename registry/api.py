@@ -1,0 +1,551 @@
+"""The registry: publish verified bundles as numbered versions, move them through
+registered → candidate → live → retired behind gates, roll back, and keep an audit trail.
+
+Lifecycle rules (one live and at most one candidate per model, enforced by the code under a
+write lock and again by unique indexes in the database):
+
+- ``promote --to candidate`` from registered or retired; a previous candidate goes back to
+  registered (it is not lost, and can be put forward again).
+- ``promote --to live`` from registered, candidate or retired, through the gates; the old live
+  version becomes retired and is remembered as the new one's predecessor.
+- ``rollback`` makes the live version's predecessor live again and retires the current one;
+  rolling back again walks further back. It runs no gates (it restores a version that was
+  live before) but does re-check the target's blobs.
+
+Gates run outside the write lock (scoring can take seconds); the write transaction then
+checks that the live version and evaluation set are still the ones the gates compared
+against, and runs the gates again if another process changed them meanwhile. After a few
+such rounds (heavy contention) the gates run inside the write transaction instead, which
+always finishes.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import os
+from pathlib import Path
+from types import TracebackType
+
+from textsieve.errors import (
+    BundleError, GateRefusedError, InputError, NotFoundError, RegistryError, StateError,
+)
+from textsieve.registry._db import Backend
+from textsieve.registry.blobs import BlobStore, materialize
+from textsieve.registry.bundle import Bundle, open_bundle
+from textsieve.registry.evalsets import NormalisedEvalset, load_evalset, parse_stored, unknown_labels
+from textsieve.registry.gates import GateSettings, Side, labels_gate, metric_gates, parity_gate
+from textsieve.registry.manifest import MANIFEST, Manifest
+from textsieve.registry.migrations import migrate
+from textsieve.registry.names import resolve_actor, validate_model_name, validate_reason, validate_version
+from textsieve.registry.records import EvalsetInfo, Event, GateResult, ModelInfo, Promotion, VersionInfo
+from textsieve.registry.store import Queries
+
+DB_FILE = "registry.sqlite3"
+BLOB_DIR = "blobs"
+CACHE_DIR = "cache"
+PG_SCHEMES = ("postgresql://", "postgres://")
+_GATE_ATTEMPTS = 3
+_CHANGES_LIMIT = 1000
+
+
+def utc_now() -> str:
+    return dt.datetime.now(dt.UTC).isoformat(timespec="microseconds")
+
+
+class Registry:
+    """A registry: metadata in SQLite or PostgreSQL, artifacts in a content-addressed blob folder."""
+
+    def __init__(self, backend: Backend, blobs: BlobStore, cache: Path, *, location: str,
+                 settings: GateSettings | None = None) -> None:
+        self.backend = backend
+        self.blobs = blobs
+        self.cache = Path(cache)
+        self.location = location
+        self.settings = settings or GateSettings()
+
+    # -- lifetime -------------------------------------------------------------------------
+    def close(self) -> None:
+        self.backend.close()
+
+    def __enter__(self) -> Registry:
+        return self
+
+    def __exit__(self, et: type[BaseException] | None, e: BaseException | None, tb: TracebackType | None) -> None:
+        self.close()
+
+    def __repr__(self) -> str:
+        return f"Registry({self.location!r})"
+
+    # -- reading --------------------------------------------------------------------------
+    def models(self) -> list[ModelInfo]:
+        with self.backend.read() as tx:
+            return Queries(tx).models()
+
+    def versions(self, model: str) -> list[VersionInfo]:
+        model = validate_model_name(model)
+        with self.backend.read() as tx:
+            q = Queries(tx)
+            self._require_model(q, model)
+            return q.versions(model)
+
+    def version(self, model: str, version: int) -> VersionInfo:
+        model, version = validate_model_name(model), validate_version(version)
+        with self.backend.read() as tx:
+            return self._require_version(Queries(tx), model, version)
+
+    def live(self, model: str) -> VersionInfo | None:
+        model = validate_model_name(model)
+        with self.backend.read() as tx:
+            q = Queries(tx)
+            self._require_model(q, model)
+            return q.in_state(model, "live")
+
+    def candidate(self, model: str) -> VersionInfo | None:
+        model = validate_model_name(model)
+        with self.backend.read() as tx:
+            q = Queries(tx)
+            self._require_model(q, model)
+            return q.in_state(model, "candidate")
+
+    def evalset(self, model: str) -> EvalsetInfo | None:
+        model = validate_model_name(model)
+        with self.backend.read() as tx:
+            q = Queries(tx)
+            self._require_model(q, model)
+            return q.evalset(model)
+
+    def history(self, model: str) -> list[Event]:
+        model = validate_model_name(model)
+        with self.backend.read() as tx:
+            q = Queries(tx)
+            self._require_model(q, model)
+            return q.events(model)
+
+    def cursor(self) -> int:
+        """Id of the newest event (0 when there is none): pass it to :meth:`changes_since` later."""
+        with self.backend.read() as tx:
+            return Queries(tx).last_event_id()
+
+    def changes_since(self, cursor: int, *, limit: int = _CHANGES_LIMIT) -> tuple[int, list[Event]]:
+        """Events after ``cursor``, oldest first, and the cursor to pass next time."""
+        if isinstance(cursor, bool) or not isinstance(cursor, int) or cursor < 0:
+            raise InputError(f"bad cursor {cursor!r}: a cursor is an event id, 0 or more")
+        with self.backend.read() as tx:
+            events = Queries(tx).events_after(cursor, limit)
+        return (events[-1].id if events else cursor), events
+
+    def manifest(self, model: str, version: int | None = None) -> Manifest:
+        """A version's manifest (the live one's by default), read from its verified blob."""
+        info = self._resolve(model, version)
+        data = self.blobs.read_bytes(info.files[MANIFEST])
+        return Manifest.model_validate_json(data)
+
+    def fetch(self, model: str, version: int | None = None) -> Bundle:
+        """The version's bundle (live by default) as local files, every blob re-hashed on every call."""
+        return self._materialize(self._resolve(model, version))
+
+    def _materialize(self, info: VersionInfo) -> Bundle:
+        # No database access here: the gates call this while a write transaction may be open.
+        folder = self.cache / info.model / f"{info.version}-{info.manifest_sha256[:16]}"
+        try:
+            materialize(self.blobs, info.files, folder)
+        except OSError as exc:
+            raise RegistryError(f"{folder}: cannot write the verified copy ({exc.strerror or exc})") from exc
+        try:
+            manifest = Manifest.model_validate_json((folder / MANIFEST).read_bytes())
+        except ValueError as exc:  # verified bytes that no longer parse: a newer manifest format
+            raise BundleError(f"version {info.version} of {info.model!r} has a manifest "
+                              "this textsieve cannot read") from exc
+        return Bundle(folder, manifest)
+
+    # -- publishing -----------------------------------------------------------------------
+    def publish(self, bundle_dir: Path, model: str, *, actor: str | None = None, reason: str = "",
+                evalset: Path | None = None, text_field: str = "text", label_field: str = "label") -> VersionInfo:
+        """Check the bundle fully, store its files as blobs and record it as the model's next version."""
+        model = validate_model_name(model)
+        actor = resolve_actor(actor)
+        reason = validate_reason(reason, required=False)
+        bundle_dir = Path(bundle_dir)
+        manifest_bytes = _read_manifest_bytes(bundle_dir)
+        bundle = open_bundle(bundle_dir)
+        if Manifest.model_validate_json(manifest_bytes) != bundle.manifest:
+            raise BundleError(f"{bundle_dir}: {MANIFEST} changed while it was being checked; publish again")
+        labels = bundle.manifest.labels
+        normalised = None
+        if evalset is not None:
+            normalised = load_evalset(evalset, text_field=text_field, label_field=label_field)
+            _check_evalset_labels(evalset, normalised, labels)
+
+        # Blobs first, metadata last: a crash in between leaves unreferenced blobs, never a
+        # version whose files are missing.
+        self.blobs.ensure()
+        self.blobs.sweep_temporary()
+        files: dict[str, tuple[str, int]] = {}
+        for name, expected in bundle.manifest.files.items():
+            digest = self.blobs.put_file(bundle_dir / name)
+            if digest != expected:
+                raise BundleError(f"{bundle_dir}: {name} changed while it was being published; publish again")
+            files[name] = (digest, (bundle_dir / name).stat().st_size)
+        manifest_sha = self.blobs.put_bytes(manifest_bytes)
+        files[MANIFEST] = (manifest_sha, len(manifest_bytes))
+        evalset_sha = self.blobs.put_bytes(normalised.data) if normalised else None
+
+        m = bundle.manifest
+        now = utc_now()
+        with self.backend.write() as tx:
+            q = Queries(tx)
+            q.ensure_model(model, now)
+            tx.lock_model(model)
+            existing = q.version_with_manifest(model, manifest_sha)
+            if existing is not None:
+                raise StateError(f"this bundle is already version {existing} of {model!r}; versions are immutable "
+                                 "and each bundle is published once")
+            n = q.next_version(model)
+            q.insert_version(model=model, version=n, labels=list(labels), manifest_sha256=manifest_sha,
+                             created_at=now, published_by=actor, reason=reason, accuracy=m.metrics.accuracy,
+                             macro_f1=m.metrics.macro_f1, parity_passed=m.parity.passed, files=files)
+            q.add_event(model=model, version=n, kind="publish", actor=actor, at=now, reason=reason, details={
+                "manifest_sha256": manifest_sha, "labels": labels, "files": {k: v[0] for k, v in files.items()},
+                "metrics": m.metrics.model_dump(), "parity": parity_gate(m).figures,
+                "source": str(bundle_dir.resolve()),
+            })
+            if normalised is not None and evalset_sha is not None and evalset is not None:
+                self._record_evalset(q, model, normalised, evalset_sha, Path(evalset).name, now, actor, reason)
+            q.touch_model(model, now)
+            info = q.version(model, n)
+        assert info is not None
+        return info
+
+    def add_evalset(self, model: str, file: Path, *, text_field: str = "text", label_field: str = "label",
+                    actor: str | None = None, reason: str = "") -> EvalsetInfo:
+        """Register a labelled file as the model's evaluation set (the newest one is used by the gates)."""
+        model = validate_model_name(model)
+        actor = resolve_actor(actor)
+        reason = validate_reason(reason, required=False)
+        with self.backend.read() as tx:
+            q = Queries(tx)
+            self._require_model(q, model)
+            versions = q.versions(model)
+            reference = q.in_state(model, "live") or (versions[-1] if versions else None)
+        normalised = load_evalset(file, text_field=text_field, label_field=label_field)
+        if reference is not None:
+            _check_evalset_labels(file, normalised, reference.labels, version=reference.version)
+        self.blobs.ensure()
+        digest = self.blobs.put_bytes(normalised.data)
+        now = utc_now()
+        with self.backend.write() as tx:
+            q = Queries(tx)
+            tx.lock_model(model)
+            info = self._record_evalset(q, model, normalised, digest, Path(file).name, now, actor, reason)
+            q.touch_model(model, now)
+        return info
+
+    def _record_evalset(self, q: Queries, model: str, normalised: NormalisedEvalset, digest: str, source: str,
+                        now: str, actor: str, reason: str) -> EvalsetInfo:
+        info = q.add_evalset(model=model, sha256=digest, texts=len(normalised.examples), labels=normalised.labels,
+                             source=source, at=now, by=actor)
+        q.add_event(model=model, version=None, kind="evalset", actor=actor, at=now, reason=reason,
+                    details={"evalset_id": info.id, "sha256": digest, "texts": info.texts, "labels": info.labels,
+                             "source": source})
+        return info
+
+    # -- lifecycle ------------------------------------------------------------------------
+    def check(self, model: str, version: int) -> list[GateResult]:
+        """Run the promotion-to-live gates without promoting (nothing is recorded)."""
+        model, version = validate_model_name(model), validate_version(version)
+        with self.backend.read() as tx:
+            q = Queries(tx)
+            target = self._require_version(q, model, version)
+            live = q.in_state(model, "live")
+            evalset = q.evalset(model)
+        return self._gates(model, target, live, evalset)
+
+    def promote(self, model: str, version: int, to: str = "live", *, reason: str, actor: str | None = None,
+                force: bool = False) -> Promotion:
+        """Move a version to ``candidate`` or ``live``; GateRefusedError when a gate refuses and not forced."""
+        model, version = validate_model_name(model), validate_version(version)
+        if to not in ("candidate", "live"):
+            raise InputError(f"cannot promote to {to!r}; allowed: candidate, live")
+        reason = validate_reason(reason, required=True)
+        actor = resolve_actor(actor)
+        if to == "candidate":
+            return self._to_candidate(model, version, reason, actor)
+        for attempt in range(_GATE_ATTEMPTS + 1):
+            if attempt < _GATE_ATTEMPTS:
+                with self.backend.read() as tx:
+                    q = Queries(tx)
+                    target = self._require_version(q, model, version)
+                    live = q.in_state(model, "live")
+                    evalset = q.evalset(model)
+                gates = self._judge(model, target, live, evalset)
+                with self.backend.write() as tx:
+                    q = Queries(tx)
+                    tx.lock_model(model)
+                    current = self._require_version(q, model, version)
+                    if (_num(q.in_state(model, "live")) != _num(live) or _id(q.evalset(model)) != _id(evalset)
+                            or current.state != target.state):
+                        if current.state == "live":
+                            raise StateError(f"version {version} of {model!r} became live meanwhile "
+                                             "(another promotion)")
+                        continue  # something moved while the gates ran: judge again against the new state
+                    outcome = self._apply_live(q, target, live, gates, reason=reason, actor=actor, force=force)
+            else:
+                # Still contended after several tries: judge under the lock, so nothing can move.
+                with self.backend.write() as tx:
+                    q = Queries(tx)
+                    tx.lock_model(model)
+                    target = self._require_version(q, model, version)
+                    live = q.in_state(model, "live")
+                    gates = self._judge(model, target, live, q.evalset(model))
+                    outcome = self._apply_live(q, target, live, gates, reason=reason, actor=actor, force=force)
+            event_id, info, failed = outcome
+            if info is None:
+                raise _refusal(model, version, gates, failed, event_id)
+            return Promotion(version=info, gates=gates, forced=bool(failed), retired=_num(live), event_id=event_id)
+        raise AssertionError("unreachable: the last attempt runs under the lock")
+
+    def _judge(self, model: str, target: VersionInfo, live: VersionInfo | None,
+               evalset: EvalsetInfo | None) -> list[GateResult]:
+        _allowed(target, "live")
+        for digest in target.files.values():
+            self.blobs.verify(digest)  # a damaged version is never promoted, forced or not
+        return self._gates(model, target, live, evalset)
+
+    def _apply_live(self, q: Queries, target: VersionInfo, live: VersionInfo | None, gates: list[GateResult], *,
+                    reason: str, actor: str, force: bool) -> tuple[int, VersionInfo | None, list[str]]:
+        """Record the refusal, or make ``target`` live; returns (event id, new info or None if refused, failed)."""
+        model, version = target.model, target.version
+        failed = [g.name for g in gates if not g.passed]
+        gate_dump = [g.model_dump() for g in gates]
+        now = utc_now()
+        if failed and not force:
+            event_id = q.add_event(model=model, version=version, kind="refuse", actor=actor, at=now, reason=reason,
+                                   details={"to": "live", "from": target.state, "live": _num(live),
+                                            "gates": gate_dump, "failed": failed})
+            return event_id, None, failed
+        if live is not None:
+            q.set_state(model, live.version, "retired")
+        q.make_live(model, version, at=now, previous_live=_num(live), keep_previous=False)
+        event_id = q.add_event(model=model, version=version, kind="promote", actor=actor, at=now, reason=reason,
+                               details={"to": "live", "from": target.state, "retired": _num(live),
+                                        "gates": gate_dump, "forced": bool(failed), "overridden": failed})
+        q.touch_model(model, now)
+        return event_id, q.version(model, version), failed
+
+    def _to_candidate(self, model: str, version: int, reason: str, actor: str) -> Promotion:
+        now = utc_now()
+        with self.backend.write() as tx:
+            q = Queries(tx)
+            tx.lock_model(model)
+            target = self._require_version(q, model, version)
+            _allowed(target, "candidate")
+            previous = q.in_state(model, "candidate")
+            if previous is not None:
+                q.set_state(model, previous.version, "registered")
+            q.set_state(model, version, "candidate")
+            event_id = q.add_event(model=model, version=version, kind="promote", actor=actor, at=now, reason=reason,
+                                   details={"to": "candidate", "from": target.state,
+                                            "replaced_candidate": _num(previous), "gates": [], "forced": False})
+            q.touch_model(model, now)
+            info = q.version(model, version)
+        assert info is not None
+        return Promotion(version=info, gates=[], forced=False, retired=None, event_id=event_id)
+
+    def rollback(self, model: str, *, reason: str, actor: str | None = None) -> VersionInfo:
+        """Make the version that was live before the current one live again; returns it."""
+        model = validate_model_name(model)
+        reason = validate_reason(reason, required=True)
+        actor = resolve_actor(actor)
+        for attempt in range(_GATE_ATTEMPTS + 1):
+            locked = attempt == _GATE_ATTEMPTS  # still contended: check the blobs under the lock
+            if not locked:
+                with self.backend.read() as tx:
+                    live, target = self._rollback_pair(Queries(tx), model)
+                for digest in target.files.values():
+                    self.blobs.verify(digest)
+            with self.backend.write() as tx:
+                q = Queries(tx)
+                tx.lock_model(model)
+                if locked:
+                    live, target = self._rollback_pair(q, model)
+                    for digest in target.files.values():
+                        self.blobs.verify(digest)
+                elif _num(q.in_state(model, "live")) != live.version:
+                    continue
+                now = utc_now()
+                q.set_state(model, live.version, "retired")
+                q.make_live(model, target.version, at=now, previous_live=None, keep_previous=True)
+                q.add_event(model=model, version=target.version, kind="rollback", actor=actor, at=now, reason=reason,
+                            details={"from": live.version, "to": target.version, "target_was": target.state})
+                q.touch_model(model, now)
+                info = q.version(model, target.version)
+            assert info is not None
+            return info
+        raise AssertionError("unreachable: the last attempt runs under the lock")
+
+    def _rollback_pair(self, q: Queries, model: str) -> tuple[VersionInfo, VersionInfo]:
+        """(the live version, the one to restore), or StateError when there is none."""
+        self._require_model(q, model)
+        live = q.in_state(model, "live")
+        if live is None:
+            raise StateError(f"{model!r} has no live version, so there is nothing to roll back")
+        if live.previous_live is None:
+            raise StateError(f"version {live.version} of {model!r} is live and no version was live before "
+                             "it; promote another version instead")
+        return live, self._require_version(q, model, live.previous_live)
+
+    # -- helpers --------------------------------------------------------------------------
+    def _gates(self, model: str, target: VersionInfo, live: VersionInfo | None,
+               evalset: EvalsetInfo | None) -> list[GateResult]:
+        manifest = Manifest.model_validate_json(self.blobs.read_bytes(target.files[MANIFEST]))
+        gates = [parity_gate(manifest),
+                 labels_gate(target.labels, None if live is None else live.labels, _num(live))]
+        examples = None
+        if evalset is not None:
+            examples = parse_stored(self.blobs.read_bytes(evalset.sha256))
+        cand = Side(target.version, target.labels, lambda: self._materialize(target))
+        live_side = None if live is None else Side(live.version, live.labels, lambda: self._materialize(live))
+        gates += metric_gates(model, cand, live_side, examples, None if evalset is None else evalset.sha256,
+                              self.settings)
+        return gates
+
+    def _resolve(self, model: str, version: int | None) -> VersionInfo:
+        model = validate_model_name(model)
+        with self.backend.read() as tx:
+            q = Queries(tx)
+            if version is not None:
+                return self._require_version(q, model, validate_version(version))
+            self._require_model(q, model)
+            live = q.in_state(model, "live")
+        if live is None:
+            raise NotFoundError(f"{model!r} has no live version; promote one (textsieve promote {model} N --to live) "
+                                "or ask for a version number")
+        return live
+
+    def _require_model(self, q: Queries, model: str) -> None:
+        if not q.model_exists(model):
+            known = [m.name for m in q.models()]
+            hint = f"known models: {', '.join(known[:20])}" if known else "the registry has no models yet"
+            raise NotFoundError(f"no model {model!r} in {self.location}; {hint}")
+
+    def _require_version(self, q: Queries, model: str, version: int) -> VersionInfo:
+        self._require_model(q, model)
+        info = q.version(model, version)
+        if info is None:
+            n = q.next_version(model) - 1
+            raise NotFoundError(f"{model!r} has no version {version}; its versions are 1–{n}")
+        return info
+
+
+def _num(v: VersionInfo | None) -> int | None:
+    return None if v is None else v.version
+
+
+def _id(e: EvalsetInfo | None) -> int | None:
+    return None if e is None else e.id
+
+
+_ALLOWED_FROM = {"candidate": ("registered", "retired"), "live": ("registered", "candidate", "retired")}
+
+
+def _allowed(target: VersionInfo, to: str) -> None:
+    if target.state in _ALLOWED_FROM[to]:
+        return
+    if target.state == to:
+        raise StateError(f"version {target.version} of {target.model!r} is already {to}")
+    raise StateError(f"version {target.version} of {target.model!r} is {target.state} and cannot become {to}; "
+                     f"allowed from: {', '.join(_ALLOWED_FROM[to])}"
+                     + ("; use rollback or promote another version" if target.state == "live" else ""))
+
+
+def _refusal(model: str, version: int, gates: list[GateResult], failed: list[str], event_id: int) -> GateRefusedError:
+    first = next(g for g in gates if not g.passed)
+    more = f" (and {len(failed) - 1} more: {', '.join(failed[1:])})" if len(failed) > 1 else ""
+    return GateRefusedError(
+        f"version {version} of {model!r} not promoted to live: gate {first.name} refused: {first.detail}{more}; "
+        "fix it, or override with --force and a --reason (recorded)",
+        gates=[g.model_dump() for g in gates], failed=failed, event_id=event_id,
+    )
+
+
+def _read_manifest_bytes(bundle_dir: Path) -> bytes:
+    if not bundle_dir.is_dir():
+        raise BundleError(f"{bundle_dir}: not a folder; pass the folder 'textsieve export --out' wrote")
+    try:
+        return (bundle_dir / MANIFEST).read_bytes()
+    except FileNotFoundError:
+        raise BundleError(f"{bundle_dir}: no {MANIFEST}; a bundle is the folder 'textsieve export' writes") from None
+    except OSError as exc:
+        raise BundleError(f"{bundle_dir / MANIFEST}: cannot be read ({exc.strerror})") from exc
+
+
+def _check_evalset_labels(path: Path, evalset: NormalisedEvalset, labels: list[str], *,
+                          version: int | None = None) -> None:
+    unknown = unknown_labels(evalset.labels, labels)
+    if unknown:
+        whose = "the bundle" if version is None else f"version {version}"
+        raise InputError(f"{path}: labels not known to {whose}: {', '.join(repr(x) for x in unknown[:10])}; "
+                         f"allowed: {', '.join(labels)}")
+
+
+# -- opening ------------------------------------------------------------------------------
+def open_registry(location: str | os.PathLike[str], *, blobs: str | os.PathLike[str] | None = None,
+                  cache: str | os.PathLike[str] | None = None, create: bool = True,
+                  settings: GateSettings | None = None) -> Registry:
+    """Open a registry folder (SQLite + blobs inside it) or a ``postgresql://`` URL plus a blob folder.
+
+    Layout of a folder registry: ``registry.sqlite3`` (metadata), ``blobs/<sha256>`` (content)
+    and ``cache/<model>/<version>-<manifest sha256 prefix>/`` (verified copies that
+    :meth:`Registry.fetch` hands out). For PostgreSQL the cache sits beside the blob folder
+    (``<blobs>/../cache``) unless ``cache`` names another folder. With ``create=False`` a folder
+    that holds no registry yet is a NotFoundError instead of becoming a new, empty registry.
+    """
+    text = os.fspath(location)
+    if text.startswith(PG_SCHEMES):
+        if blobs is None:
+            raise InputError("a postgresql:// registry needs a blob folder: "
+                             "pass --blobs FOLDER (or set TEXTSIEVE_BLOBS)")
+        from textsieve.registry._postgres import PostgresBackend
+
+        blob_root = Path(blobs)
+        backend: Backend = PostgresBackend(text)
+        cache_dir = Path(cache) if cache is not None else blob_root.parent / CACHE_DIR
+        location_text = backend.description
+    elif "://" in text:
+        raise InputError(f"unsupported registry URL {text.split('://')[0]}://…; "
+                         "use a folder path or a postgresql:// URL")
+    else:
+        folder = Path(text)
+        _check_folder(folder, create)
+        from textsieve.registry._sqlite import SqliteBackend
+
+        backend = SqliteBackend(folder / DB_FILE)
+        blob_root = Path(blobs) if blobs is not None else folder / BLOB_DIR
+        cache_dir = Path(cache) if cache is not None else folder / CACHE_DIR
+        location_text = str(folder)
+    try:
+        migrate(backend, utc_now())
+    except BaseException:
+        backend.close()
+        raise
+    return Registry(backend, BlobStore(blob_root), cache_dir, location=location_text, settings=settings)
+
+
+def _check_folder(folder: Path, create: bool) -> None:
+    if folder.exists() and not folder.is_dir():
+        raise InputError(f"{folder}: is a file; --registry names a registry folder or a postgresql:// URL")
+    if (folder / DB_FILE).is_file():
+        return
+    if not create:
+        raise NotFoundError(f"no registry at {folder}; publish a bundle first (textsieve publish BUNDLE --model NAME) "
+                            "or point --registry / TEXTSIEVE_REGISTRY at one")
+    if folder.is_dir() and any(p.name not in (BLOB_DIR, CACHE_DIR) for p in folder.iterdir()):
+        raise InputError(f"{folder}: is a folder that is not empty and holds no {DB_FILE}; "
+                         "choose a new or empty folder for a registry")
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"{folder}: cannot create the registry folder ({exc.strerror})") from exc
+
+
+__all__ = ["BLOB_DIR", "CACHE_DIR", "DB_FILE", "Registry", "open_registry", "utc_now"]

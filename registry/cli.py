@@ -1,0 +1,202 @@
+"""The registry verbs of the ``textsieve`` command: publish, models, versions, show, promote,
+rollback, history and evalset add. Tables are plain aligned text; errors are raised and the
+command's main() prints them as one line with the error's exit status."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from collections.abc import Sequence
+from typing import Any, TextIO
+
+from textsieve.errors import GateRefusedError, NotFoundError
+from textsieve.registry.api import Registry, open_registry
+from textsieve.registry.names import validate_version
+from textsieve.registry.records import Event, GateResult
+
+NONE = "-"
+
+
+def table(headers: Sequence[str], rows: Sequence[Sequence[object]], *, right: Sequence[int] = ()) -> str:
+    """Columns padded to their widest cell, two spaces apart; ``right`` lists right-aligned columns."""
+    cells = [[str(h) for h in headers]] + [[NONE if c is None else str(c) for c in row] for row in rows]
+    widths = [max(len(row[i]) for row in cells) for i in range(len(headers))]
+    lines = []
+    for row in cells:
+        parts = [c.rjust(w) if i in right else c.ljust(w) for i, (c, w) in enumerate(zip(row, widths, strict=True))]
+        lines.append("  ".join(parts).rstrip())
+    return "\n".join(lines)
+
+
+def when(at: str | None) -> str:
+    """A stored UTC timestamp shown to the second."""
+    return NONE if not at else at[:19].replace("T", " ") + "Z"
+
+
+def _open(args: argparse.Namespace, *, create: bool = False) -> Registry:
+    return open_registry(args.registry, blobs=getattr(args, "blobs", None), create=create)
+
+
+def _out(text: str, stream: TextIO | None = None) -> None:
+    print(text, file=stream or sys.stdout)
+
+
+def gate_table(gates: Sequence[GateResult]) -> str:
+    return table(["GATE", "RESULT", "DETAIL"], [[g.name, "pass" if g.passed else "FAIL", g.detail] for g in gates])
+
+
+# -- verbs --------------------------------------------------------------------------------
+def cli_publish(args: argparse.Namespace) -> int:
+    with _open(args, create=True) as reg:
+        info = reg.publish(args.bundle, args.model, actor=args.actor, reason=args.reason, evalset=args.evalset)
+        extra = ""
+        if args.evalset is not None:
+            es = reg.evalset(info.model)
+            extra = f"; evaluation set {args.evalset.name}: {es.texts if es else 0} texts"
+    print(f"published {info.model!r} version {info.version} (labels: {', '.join(info.labels)}){extra}", file=sys.stderr)
+    _out(str(info.version))
+    return 0
+
+
+def cli_models(args: argparse.Namespace) -> int:
+    with _open(args) as reg:
+        models = reg.models()
+    if not models:
+        _out("no models yet; publish one with: textsieve publish BUNDLE --model NAME")
+        return 0
+    _out(table(["MODEL", "LIVE", "CANDIDATE", "VERSIONS", "EVAL TEXTS", "UPDATED"],
+               [[m.name, m.live, m.candidate, m.versions, m.evalset_texts, when(m.updated_at)] for m in models],
+               right=(1, 2, 3, 4)))
+    return 0
+
+
+def cli_versions(args: argparse.Namespace) -> int:
+    with _open(args) as reg:
+        versions = reg.versions(args.model)
+    _out(table(["VERSION", "STATE", "ACCURACY", "MACRO-F1", "PARITY", "LABELS", "PUBLISHED", "BY", "LIVE SINCE"],
+               [[v.version, v.state, f"{v.accuracy:.4f}", f"{v.macro_f1:.4f}",
+                 "passed" if v.parity_passed else "FAILED",
+                 _labels(v.labels), when(v.created_at), v.published_by,
+                 when(v.promoted_at) if v.state == "live" else None] for v in versions],
+               right=(0, 2, 3)))
+    return 0
+
+
+def cli_show(args: argparse.Namespace) -> int:
+    with _open(args) as reg:
+        if args.version is None:
+            info = reg.live(args.model)
+            if info is None:
+                count = len(reg.versions(args.model))
+                raise NotFoundError(f"{args.model!r} has no live version; name one: textsieve show {args.model} N "
+                                    f"(versions 1–{count})")
+        else:
+            info = reg.version(args.model, validate_version(args.version))
+        manifest = reg.manifest(info.model, info.version)
+        events = [e for e in reg.history(info.model) if e.version == info.version]
+        evalset = reg.evalset(info.model)
+    m = manifest
+    rows: list[tuple[str, object]] = [
+        ("model", info.model), ("version", info.version), ("state", info.state),
+        ("labels", ", ".join(info.labels)),
+        ("published", f"{when(info.created_at)} by {info.published_by}" + (f" ({info.reason})" if info.reason else "")),
+        ("live since", when(info.promoted_at) if info.state == "live" else NONE),
+        ("previous live", info.previous_live if info.previous_live is not None else NONE),
+        ("manifest sha256", info.manifest_sha256),
+        ("held-out metrics", f"{m.metrics.split}, {m.metrics.texts} texts: accuracy {m.metrics.accuracy:.4f}, "
+                             f"macro-F1 {m.metrics.macro_f1:.4f}, ECE {m.metrics.ece:.4f}"),
+        ("parity", f"{'passed' if m.parity.passed else 'FAILED'}: max |Δprobability| "
+                   f"{m.parity.max_abs_prob_diff:.2e} (tolerance {m.parity.tolerance:.0e}) on {m.parity.texts} texts"),
+        ("temperature", f"{m.calibration.temperature:.4f}"),
+        ("architecture", f"filter widths {m.architecture.widths} × {m.architecture.maps} maps, "
+                         f"embedding {m.architecture.embedding_dim}"),
+        ("lengths", f"max {m.lengths.max_length} tokens (truncates {m.lengths.truncation_rate:.2%}), "
+                    f"min {m.lengths.min_length}"),
+        ("vocabulary", f"{m.vocabulary.size} tokens"),
+        ("evaluation set", NONE if evalset is None else
+         f"{evalset.source}: {evalset.texts} texts, added {when(evalset.added_at)} by {evalset.added_by}"),
+    ]
+    width = max(len(k) for k, _ in rows)
+    _out("\n".join(f"{k:<{width}}  {v}" for k, v in rows))
+    _out("\nfiles\n" + table(["FILE", "SHA256"], [[name, digest] for name, digest in sorted(info.files.items())]))
+    last_gates = next((e for e in reversed(events) if e.kind in ("promote", "refuse") and e.details.get("gates")), None)
+    if last_gates is not None:
+        gates = [GateResult.model_validate(g) for g in last_gates.details["gates"]]
+        _out(f"\ngates at event {last_gates.id} ({last_gates.kind}, {when(last_gates.at)})\n" + gate_table(gates))
+    return 0
+
+
+def cli_promote(args: argparse.Namespace) -> int:
+    with _open(args) as reg:
+        try:
+            result = reg.promote(args.model, args.version, args.to, reason=args.reason, actor=args.actor,
+                                 force=args.force)
+        except GateRefusedError as exc:
+            gates = [GateResult.model_validate(g) for g in exc.context.get("gates", [])]
+            _out(gate_table(gates), sys.stderr)
+            raise
+    if result.gates:
+        _out(gate_table(result.gates))
+    tail = f" (version {result.retired} retired)" if result.retired is not None else ""
+    forced = f"; FORCED past {', '.join(g.name for g in result.gates if not g.passed)}" if result.forced else ""
+    _out(f"{result.version.model!r} version {result.version.version} is now {result.version.state}{tail}{forced}")
+    return 0
+
+
+def cli_rollback(args: argparse.Namespace) -> int:
+    with _open(args) as reg:
+        before = reg.live(args.model)
+        info = reg.rollback(args.model, reason=args.reason, actor=args.actor)
+    was = f" (version {before.version} retired)" if before is not None else ""
+    _out(f"{info.model!r} version {info.version} is live again{was}")
+    return 0
+
+
+def cli_history(args: argparse.Namespace) -> int:
+    with _open(args) as reg:
+        events = reg.history(args.model)
+    _out(table(["EVENT", "TIME (UTC)", "KIND", "VERSION", "ACTOR", "REASON", "DETAIL"],
+               [[e.id, when(e.at), e.kind, e.version, e.actor, e.reason or NONE, summarise(e)] for e in events],
+               right=(0, 3)))
+    return 0
+
+
+def cli_evalset_add(args: argparse.Namespace) -> int:
+    with _open(args) as reg:
+        info = reg.add_evalset(args.model, args.file, text_field=args.text_field, label_field=args.label_field,
+                               actor=args.actor)
+    counts = ", ".join(f"{label} {n}" for label, n in info.labels.items())
+    _out(f"evaluation set for {info.model!r}: {info.texts} texts ({counts}), sha256 {info.sha256[:12]}…")
+    return 0
+
+
+# -- helpers ------------------------------------------------------------------------------
+def summarise(e: Event) -> str:
+    d: dict[str, Any] = e.details
+    if e.kind == "publish":
+        m = d.get("metrics", {})
+        return f"labels {_labels(d.get('labels', []))}; macro-F1 {m.get('macro_f1', 0):.4f}"
+    if e.kind == "evalset":
+        return f"{d.get('source')}: {d.get('texts')} texts"
+    if e.kind == "rollback":
+        return f"live {d.get('from')} → {d.get('to')}"
+    gates = " ".join(f"{g['name']}:{'pass' if g['passed'] else 'FAIL'}" for g in d.get("gates", []))
+    if e.kind == "refuse":
+        return f"to live refused; {gates}"
+    text = f"{d.get('from')} → {d.get('to')}"
+    if d.get("retired") is not None:
+        text += f", retired {d['retired']}"
+    if d.get("replaced_candidate") is not None:
+        text += f", candidate {d['replaced_candidate']} back to registered"
+    if d.get("forced"):
+        text += f"; FORCED past {', '.join(d.get('overridden', []))}"
+    return text + (f"; {gates}" if gates else "")
+
+
+def _labels(labels: Sequence[str], limit: int = 4) -> str:
+    shown = ",".join(labels[:limit])
+    return shown + (f",+{len(labels) - limit}" if len(labels) > limit else "")
+
+
+__all__ = ["cli_evalset_add", "cli_history", "cli_models", "cli_promote", "cli_publish", "cli_rollback", "cli_show",
+           "cli_versions", "gate_table", "summarise", "table"]

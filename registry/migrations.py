@@ -1,0 +1,130 @@
+"""Named schema migration steps, applied in order, each inside the one write transaction.
+
+``schema_migrations`` records the name of every step applied. A registry opened by an
+older textsieve that finds a step it does not know refuses to touch it rather than guess.
+Steps are written in SQL both SQLite and PostgreSQL accept; ``{serial}`` is the one type that
+differs (an ever-increasing integer key: ids are never reused, so event ids work as cursors).
+Times are ISO 8601 UTC text and JSON is text, so both engines store exactly the same values.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from textsieve.errors import RegistryError
+from textsieve.registry._db import Backend
+
+
+@dataclass(frozen=True)
+class Migration:
+    name: str
+    sql: str
+
+
+MIGRATIONS: tuple[Migration, ...] = (
+    Migration("0001_models_and_versions", """
+        CREATE TABLE models (
+            name TEXT PRIMARY KEY,
+            created_at TEXT NOT NULL,
+            updated_at TEXT NOT NULL
+        );
+        CREATE TABLE versions (
+            model TEXT NOT NULL REFERENCES models(name),
+            version INTEGER NOT NULL CHECK (version >= 1),
+            state TEXT NOT NULL CHECK (state IN ('registered', 'candidate', 'live', 'retired')),
+            labels TEXT NOT NULL,
+            manifest_sha256 TEXT NOT NULL,
+            created_at TEXT NOT NULL,
+            published_by TEXT NOT NULL,
+            reason TEXT NOT NULL,
+            accuracy DOUBLE PRECISION NOT NULL,
+            macro_f1 DOUBLE PRECISION NOT NULL,
+            parity_passed INTEGER NOT NULL,
+            promoted_at TEXT,
+            previous_live INTEGER,
+            PRIMARY KEY (model, version)
+        );
+        CREATE UNIQUE INDEX versions_one_live ON versions (model) WHERE state = 'live';
+        CREATE UNIQUE INDEX versions_one_candidate ON versions (model) WHERE state = 'candidate';
+        CREATE UNIQUE INDEX versions_same_manifest ON versions (model, manifest_sha256);
+        CREATE TABLE version_files (
+            model TEXT NOT NULL,
+            version INTEGER NOT NULL,
+            name TEXT NOT NULL,
+            sha256 TEXT NOT NULL,
+            size BIGINT NOT NULL,
+            PRIMARY KEY (model, version, name),
+            FOREIGN KEY (model, version) REFERENCES versions (model, version)
+        )
+    """),
+    Migration("0002_evaluation_sets", """
+        CREATE TABLE evalsets (
+            id {serial},
+            model TEXT NOT NULL REFERENCES models(name),
+            sha256 TEXT NOT NULL,
+            texts INTEGER NOT NULL,
+            labels TEXT NOT NULL,
+            source TEXT NOT NULL,
+            added_at TEXT NOT NULL,
+            added_by TEXT NOT NULL
+        );
+        CREATE INDEX evalsets_model ON evalsets (model, id)
+    """),
+    Migration("0003_events", """
+        CREATE TABLE events (
+            id {serial},
+            model TEXT NOT NULL,
+            version INTEGER,
+            kind TEXT NOT NULL,
+            actor TEXT NOT NULL,
+            at TEXT NOT NULL,
+            reason TEXT NOT NULL,
+            details TEXT NOT NULL
+        );
+        CREATE INDEX events_model ON events (model, id)
+    """),
+)
+
+_TABLE = "CREATE TABLE IF NOT EXISTS schema_migrations (name TEXT PRIMARY KEY, applied_at TEXT NOT NULL)"
+
+
+def applied(backend: Backend) -> list[str]:
+    """Names of the steps recorded as applied, in the order they were applied."""
+    with backend.write() as tx:
+        tx.run(_TABLE)
+        return [r["name"] for r in tx.all("SELECT name FROM schema_migrations ORDER BY name")]
+
+
+def migrate(backend: Backend, now: str, steps: tuple[Migration, ...] = MIGRATIONS) -> list[str]:
+    """Apply every step not yet applied; returns the names applied now."""
+    known = [m.name for m in steps]
+    if _up_to_date(backend, known):
+        return []
+    done_now: list[str] = []
+    with backend.write() as tx:
+        tx.run(_TABLE)
+        done = {r["name"] for r in tx.all("SELECT name FROM schema_migrations")}
+        unknown = sorted(done - set(known))
+        if unknown:
+            raise RegistryError(f"{backend.description}: the registry has schema step {unknown[-1]!r}, "
+                                "which this textsieve does not know; upgrade textsieve")
+        for step in steps:
+            if step.name in done:
+                continue
+            tx.script(step.sql.format(**backend.ddl_types))
+            tx.run("INSERT INTO schema_migrations (name, applied_at) VALUES (?, ?)", (step.name, now))
+            done_now.append(step.name)
+    return done_now
+
+
+def _up_to_date(backend: Backend, known: list[str]) -> bool:
+    """The common case (every step applied) answered without taking the write lock."""
+    try:
+        with backend.read() as tx:
+            rows = tx.all("SELECT name FROM schema_migrations")
+    except RegistryError:
+        return False  # no table yet (or unreadable): the write path decides
+    return {r["name"] for r in rows} == set(known)
+
+
+__all__ = ["MIGRATIONS", "Migration", "applied", "migrate"]

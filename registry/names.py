@@ -1,0 +1,76 @@
+"""What a model name, a version number, an actor and a reason may be.
+
+Model names end up in file paths (the fetch cache), URLs and SQL parameters, so they are kept
+to a small, boring alphabet: lowercase letters, digits, '.', '_' and '-', starting with a
+letter or digit, at most 64 characters, and never containing '..'.
+"""
+
+from __future__ import annotations
+
+import getpass
+import os
+import re
+import unicodedata
+
+from textsieve.errors import InputError
+
+MODEL_NAME = re.compile(r"[a-z0-9][a-z0-9._-]{0,63}")
+MODEL_NAME_RULE = "1–64 characters from a-z, 0-9, '.', '_', '-', starting with a letter or digit, no '..'"
+MAX_ACTOR = 120
+MAX_REASON = 2000
+
+
+def validate_model_name(name: object) -> str:
+    """Return ``name`` unchanged when it is a valid model name; InputError otherwise."""
+    if not isinstance(name, str):
+        raise InputError(f"model name must be a string ({MODEL_NAME_RULE})")
+    if not MODEL_NAME.fullmatch(name) or ".." in name:
+        shown = name if len(name) <= 80 else name[:77] + "..."
+        raise InputError(f"bad model name {shown!r}: use {MODEL_NAME_RULE}")
+    return name
+
+
+def validate_version(version: object) -> int:
+    """A version number: a positive integer (strings of digits are accepted, as typed on a command line)."""
+    if isinstance(version, bool):
+        raise InputError(f"bad version {version!r}: versions are whole numbers from 1")
+    if isinstance(version, str):
+        if not version.isascii() or not version.isdigit():
+            raise InputError(f"bad version {version!r}: versions are whole numbers from 1")
+        version = int(version)
+    if not isinstance(version, int) or version < 1:
+        raise InputError(f"bad version {version!r}: versions are whole numbers from 1")
+    return version
+
+
+def _printable(text: str) -> bool:
+    return not any(unicodedata.category(ch) in ("Cc", "Cs") for ch in text)
+
+
+def resolve_actor(actor: str | None) -> str:
+    """The actor recorded in the audit trail: the one given, or the OS user running us."""
+    if actor is None:
+        try:
+            actor = getpass.getuser()
+        except (KeyError, OSError):  # no passwd entry, e.g. an arbitrary uid in a container
+            actor = f"uid:{os.getuid()}"
+    actor = actor.strip()
+    if not actor or len(actor) > MAX_ACTOR or not _printable(actor):
+        raise InputError(f"bad actor {actor[:40]!r}: 1–{MAX_ACTOR} printable characters")
+    return actor
+
+
+def validate_reason(reason: str, *, required: bool) -> str:
+    reason = (reason or "").strip()
+    if required and not reason:
+        raise InputError("a reason is required: say why, e.g. --reason 'macro-F1 +2 points on the March set'")
+    if len(reason) > MAX_REASON:
+        raise InputError(f"reason is {len(reason)} characters; at most {MAX_REASON} are kept")
+    if not _printable(reason.replace("\n", " ").replace("\t", " ")):
+        raise InputError("reason contains control characters; use plain text")
+    return reason
+
+
+__all__ = [
+    "MODEL_NAME", "MODEL_NAME_RULE", "resolve_actor", "validate_model_name", "validate_reason", "validate_version",
+]

@@ -1,0 +1,106 @@
+"""What the registry hands back: frozen pydantic models, separate from the storage rows."""
+
+from __future__ import annotations
+
+import json
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field
+
+State = Literal["registered", "candidate", "live", "retired"]
+STATES: tuple[State, ...] = ("registered", "candidate", "live", "retired")
+EventKind = Literal["publish", "evalset", "promote", "refuse", "rollback"]
+
+
+class _Record(BaseModel):
+    model_config = ConfigDict(frozen=True)
+
+
+class VersionInfo(_Record):
+    model: str
+    version: int
+    state: State
+    labels: list[str]
+    created_at: str
+    published_by: str
+    reason: str
+    manifest_sha256: str
+    accuracy: float
+    macro_f1: float
+    parity_passed: bool
+    promoted_at: str | None
+    previous_live: int | None = Field(description="the version that was live when this one last became live")
+    files: dict[str, str] = Field(description="file name → sha256, manifest.json included")
+
+    @classmethod
+    def from_row(cls, row: dict[str, Any], files: dict[str, str]) -> VersionInfo:
+        return cls(
+            model=row["model"], version=row["version"], state=row["state"], labels=json.loads(row["labels"]),
+            created_at=row["created_at"], published_by=row["published_by"], reason=row["reason"],
+            manifest_sha256=row["manifest_sha256"], accuracy=row["accuracy"], macro_f1=row["macro_f1"],
+            parity_passed=bool(row["parity_passed"]), promoted_at=row["promoted_at"],
+            previous_live=row["previous_live"], files=files,
+        )
+
+
+class ModelInfo(_Record):
+    name: str
+    live: int | None
+    candidate: int | None
+    versions: int
+    created_at: str
+    updated_at: str
+    evalset_texts: int | None = Field(description="texts in the current evaluation set; None without one")
+
+
+class EvalsetInfo(_Record):
+    id: int
+    model: str
+    sha256: str
+    texts: int
+    labels: dict[str, int] = Field(description="label → number of texts")
+    source: str
+    added_at: str
+    added_by: str
+
+    @classmethod
+    def from_row(cls, row: dict[str, Any]) -> EvalsetInfo:
+        return cls(id=row["id"], model=row["model"], sha256=row["sha256"], texts=row["texts"],
+                   labels=json.loads(row["labels"]), source=row["source"], added_at=row["added_at"],
+                   added_by=row["added_by"])
+
+
+class GateResult(_Record):
+    name: str
+    passed: bool
+    detail: str
+    figures: dict[str, Any] = Field(default_factory=dict)
+
+
+class Promotion(_Record):
+    version: VersionInfo
+    gates: list[GateResult]
+    forced: bool
+    retired: int | None = Field(description="the version that was live before, now retired")
+    event_id: int
+
+
+class Event(_Record):
+    id: int
+    model: str
+    version: int | None
+    kind: EventKind
+    actor: str
+    at: str
+    reason: str
+    details: dict[str, Any]
+
+    @classmethod
+    def from_row(cls, row: dict[str, Any]) -> Event:
+        return cls(id=row["id"], model=row["model"], version=row["version"], kind=row["kind"], actor=row["actor"],
+                   at=row["at"], reason=row["reason"], details=json.loads(row["details"]))
+
+
+__all__ = [
+    "STATES", "EvalsetInfo", "Event", "EventKind", "GateResult", "ModelInfo", "Promotion", "State", "VersionInfo",
+]

@@ -1,0 +1,127 @@
+"""The content-addressed blob store: names are sha256 (hashlib), writes are atomic, reads re-hash."""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import threading
+import time
+from pathlib import Path
+
+import pytest
+
+from textsieve.errors import IntegrityError
+from textsieve.registry.blobs import BlobStore, materialize
+
+
+def _sha(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
+
+
+def test_put_names_blobs_by_sha256_and_is_idempotent(tmp_path: Path) -> None:
+    store = BlobStore(tmp_path / "blobs")
+    src = tmp_path / "f.bin"
+    data = os.urandom(3 * (1 << 20) + 17)  # several read chunks
+    src.write_bytes(data)
+    digest = store.put_file(src)
+    assert digest == _sha(data)
+    assert (tmp_path / "blobs" / digest).read_bytes() == data
+    assert store.put_file(src) == digest
+    assert store.put_bytes(b"hello") == _sha(b"hello")
+    assert sorted(p.name for p in (tmp_path / "blobs").iterdir()) == sorted([digest, _sha(b"hello")])  # no temp files
+
+
+def test_verify_refuses_altered_and_missing_blobs(tmp_path: Path) -> None:
+    store = BlobStore(tmp_path)
+    digest = store.put_bytes(b"model bytes")
+    assert store.verify(digest) == tmp_path / digest
+    (tmp_path / digest).write_bytes(b"model bytez")
+    with pytest.raises(IntegrityError, match="altered"):
+        store.verify(digest)
+    with pytest.raises(IntegrityError, match="altered"):
+        store.read_bytes(digest)
+    os.unlink(tmp_path / digest)
+    with pytest.raises(IntegrityError, match="missing"):
+        store.verify(digest)
+    with pytest.raises(IntegrityError, match="missing"):
+        store.read_bytes(digest)
+
+
+def test_put_repairs_a_damaged_blob(tmp_path: Path) -> None:
+    store = BlobStore(tmp_path)
+    digest = store.put_bytes(b"content")
+    (tmp_path / digest).write_bytes(b"garbage")
+    assert store.put_bytes(b"content") == digest
+    assert store.read_bytes(digest) == b"content"
+
+
+@pytest.mark.parametrize("bad", ["../../etc/passwd", "ABC", "0" * 63, "g" * 64, ""])
+def test_digest_must_look_like_sha256(tmp_path: Path, bad: str) -> None:
+    with pytest.raises(IntegrityError, match="not a sha256"):
+        BlobStore(tmp_path).path(bad)
+
+
+def test_materialize_builds_verified_folder_and_repairs_the_copy(tmp_path: Path) -> None:
+    store = BlobStore(tmp_path / "blobs")
+    files = {"a.txt": store.put_bytes(b"alpha"), "b.txt": store.put_bytes(b"beta")}
+    target = tmp_path / "cache" / "m" / "1"
+    assert materialize(store, files, target) == target
+    assert (target / "a.txt").read_bytes() == b"alpha"
+    # a tampered copy (not blob) is replaced from the intact blob
+    (target / "a.txt").write_bytes(b"ALPHA")
+    materialize(store, files, target)
+    assert (target / "a.txt").read_bytes() == b"alpha"
+    # an extra file makes the copy not match either
+    (target / "extra").write_bytes(b"x")
+    materialize(store, files, target)
+    assert sorted(p.name for p in target.iterdir()) == ["a.txt", "b.txt"]
+    assert not [p for p in target.parent.iterdir() if p.name.startswith(".")]  # no leftovers
+
+
+def test_materialize_refuses_when_a_blob_is_altered_even_if_the_copy_is_intact(tmp_path: Path) -> None:
+    store = BlobStore(tmp_path / "blobs")
+    files = {"a.txt": store.put_bytes(b"alpha")}
+    target = tmp_path / "cache" / "1"
+    materialize(store, files, target)
+    (tmp_path / "blobs" / files["a.txt"]).write_bytes(b"evil")
+    with pytest.raises(IntegrityError, match="altered"):
+        materialize(store, files, target)
+    fresh = tmp_path / "cache" / "2"
+    with pytest.raises(IntegrityError):
+        materialize(store, files, fresh)
+    assert not fresh.exists()
+
+
+def test_concurrent_materialize_all_succeed(tmp_path: Path) -> None:
+    store = BlobStore(tmp_path / "blobs")
+    files = {f"f{i}": store.put_bytes(os.urandom(200_000)) for i in range(4)}
+    target = tmp_path / "cache" / "v"
+    errors: list[BaseException] = []
+
+    def work() -> None:
+        try:
+            for _ in range(5):
+                materialize(store, files, target)
+        except BaseException as exc:  # reported below
+            errors.append(exc)
+
+    threads = [threading.Thread(target=work) for _ in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not errors
+    assert {p.name: _sha(p.read_bytes()) for p in target.iterdir()} == files
+
+
+def test_sweep_removes_only_stale_temporary_files(tmp_path: Path) -> None:
+    store = BlobStore(tmp_path)
+    digest = store.put_bytes(b"keep")
+    old = tmp_path / ".tmp-old"
+    new = tmp_path / ".tmp-new"
+    old.write_bytes(b"half")
+    new.write_bytes(b"half")
+    past = time.time() - 3 * 24 * 3600
+    os.utime(old, (past, past))
+    assert store.sweep_temporary() == 1
+    assert not old.exists() and new.exists() and (tmp_path / digest).exists()
