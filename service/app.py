@@ -1,0 +1,66 @@
+"""The application factory: ``create_app(settings)`` wires routes, middleware and the served models.
+
+Startup order (lifespan): the registry is opened and every served model's live version is
+loaded, verified and warmed in the background, so ``/healthz`` answers at once while
+``/readyz`` says 503 with the reason until the models are in; then the registry poller runs.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+from collections.abc import AsyncIterator
+
+from fastapi import FastAPI
+
+from textsieve import __version__
+from textsieve.service import admin, health, page, predict, problems, views
+from textsieve.service.access import AccessMiddleware
+from textsieve.service.batcher import InferencePool
+from textsieve.service.bodylimit import BodyLimitMiddleware
+from textsieve.service.metrics import ServiceMetrics
+from textsieve.service.models import ModelSet
+from textsieve.service.settings import Settings, load_settings
+from textsieve.service.store import Store
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    settings = settings if settings is not None else load_settings()
+    metrics = ServiceMetrics()
+
+    @contextlib.asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        pool = InferencePool(settings.workers)
+        store = Store(settings.registry, settings.blobs)
+        models = ModelSet(settings, store, pool, metrics)
+        app.state.store, app.state.pool, app.state.models = store, pool, models
+        starting = asyncio.get_running_loop().create_task(models.start(), name="load served models")
+        try:
+            yield
+        finally:
+            starting.cancel()
+            with contextlib.suppress(asyncio.CancelledError):
+                await starting
+            await models.stop()
+            await asyncio.to_thread(pool.shutdown)
+
+    app = FastAPI(
+        title="textsieve",
+        version=__version__,
+        summary="Convolutional text classifiers: calibrated probabilities and the n-gram spans behind them.",
+        lifespan=lifespan,
+        # The interactive docs pages load their scripts from a CDN; the schema stays available.
+        docs_url=None,
+        redoc_url=None,
+    )
+    app.state.settings = settings
+    app.state.metrics = metrics
+    problems.install(app)
+    for module in (predict, views, admin, health, page):
+        app.include_router(module.router)
+    app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes)
+    app.add_middleware(AccessMiddleware, metrics=metrics, enabled=settings.access_log)
+    return app
+
+
+__all__ = ["create_app"]

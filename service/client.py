@@ -1,0 +1,123 @@
+"""``textsieve predict`` and ``textsieve health``: small clients of a running service."""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+from typing import Any, TextIO
+
+import httpx
+
+from textsieve.errors import InputError, UnavailableError
+
+BOLD, RESET = "\x1b[1m", "\x1b[0m"
+
+
+def _base(url: str) -> str:
+    if not url.startswith(("http://", "https://")):
+        raise InputError(f"--url {url!r}: give the service's address, e.g. http://127.0.0.1:8000")
+    return url.rstrip("/")
+
+
+def _problem_detail(r: httpx.Response) -> str:
+    try:
+        body = r.json()
+    except ValueError:
+        return f"HTTP {r.status_code} {r.reason_phrase}"
+    detail = body.get("detail") if isinstance(body, dict) else None
+    return f"HTTP {r.status_code}: {detail}" if detail else f"HTTP {r.status_code} {r.reason_phrase}"
+
+
+def highlight(text: str, spans: list[dict[str, Any]], *, ansi: bool) -> str:
+    """The text with its spans marked: bold on a terminal, [brackets]ⁿ otherwise."""
+    out: list[str] = []
+    at = 0
+    ranked = sorted(enumerate(spans, 1), key=lambda item: item[1]["start"])
+    for rank, s in ranked:
+        if s["start"] < at:
+            continue
+        out.append(text[at:s["start"]])
+        piece = text[s["start"]:s["end"]]
+        out.append(f"{BOLD}{piece}{RESET}" if ansi else f"[{piece}]{rank}")
+        at = s["end"]
+    out.append(text[at:])
+    return "".join(out)
+
+
+def render(texts: list[str], reply: dict[str, Any], *, ansi: bool) -> str:
+    lines: list[str] = []
+    for i, (text, res) in enumerate(zip(texts, reply["results"], strict=True), 1):
+        label = res["label"]
+        probs = sorted(res["probabilities"].items(), key=lambda kv: -kv[1])
+        head = f"{BOLD}{label}{RESET}" if ansi else label
+        lines.append(f"[{i}] {head}  {100 * res['probabilities'][label]:.1f} %   "
+                     f"({reply['model']} v{reply['version']})")
+        lines.append(f"    {highlight(text, res['spans'], ansi=ansi)}")
+        lines.append("    probabilities  " + "  ".join(f"{k} {v:.4f}" for k, v in probs))
+        if res["spans"]:
+            rows = [("#", "weight", "tokens", "chars", "span")]
+            rows += [(str(n), f"{s['weight']:.3f}", str(s["width"]), f"{s['start']}-{s['end']}", s["text"])
+                     for n, s in enumerate(res["spans"], 1)]
+            widths = [max(len(r[c]) for r in rows) for c in range(4)]
+            for r in rows:
+                lines.append("    " + "  ".join(r[c].ljust(widths[c]) for c in range(4)) + "  " + r[4])
+        extra = " · truncated" if res["truncated"] else ""
+        lines.append(f"    tokens {res['tokens']} · unknown {res['unknown']}{extra}")
+    return "\n".join(lines)
+
+
+def _ansi(stream: TextIO) -> bool:
+    return stream.isatty() and not os.environ.get("NO_COLOR")
+
+
+def cli_predict(args: argparse.Namespace) -> int:
+    base = _base(args.url)
+    payload: dict[str, Any] = {"texts": list(args.texts), "spans": args.spans}
+    if args.model:
+        payload["model"] = args.model
+    if args.version is not None:
+        payload["version"] = args.version
+    try:
+        with httpx.Client(timeout=60.0) as client:
+            r = client.post(f"{base}/v1/predict", json=payload)
+    except httpx.HTTPError as exc:
+        raise UnavailableError(f"cannot reach {base} ({type(exc).__name__}: {exc}); "
+                               "is 'textsieve serve' running?") from exc
+    if r.status_code >= 500:
+        raise UnavailableError(_problem_detail(r))
+    if r.status_code != 200:
+        raise InputError(_problem_detail(r))
+    reply = r.json()
+    if args.json:
+        print(r.text)
+    else:
+        print(render(list(args.texts), reply, ansi=_ansi(sys.stdout)))
+    return 0
+
+
+def cli_health(args: argparse.Namespace) -> int:
+    """Exit 0 when /readyz says ready, 1 otherwise; always exactly one line."""
+    try:
+        base = _base(args.url)
+        with httpx.Client(timeout=args.timeout) as client:
+            r = client.get(f"{base}/readyz")
+    except InputError as exc:
+        print(f"not ready: {exc.message}")
+        return 1
+    except httpx.HTTPError as exc:
+        print(f"not ready: cannot reach {args.url} ({type(exc).__name__})")
+        return 1
+    try:
+        body = r.json()
+        reason = str(body.get("reason", "")).replace("\n", " ")
+    except (ValueError, AttributeError):
+        reason = f"HTTP {r.status_code} from {args.url}/readyz is not a textsieve readiness reply"
+    if r.status_code == 200:
+        print(f"ready: {reason}")
+        return 0
+    print(f"not ready: {reason or f'HTTP {r.status_code}'}")
+    return 1
+
+
+__all__ = ["cli_health", "cli_predict", "highlight", "render"]

@@ -1,0 +1,35 @@
+"""Liveness, readiness and the Prometheus metrics page."""
+
+from __future__ import annotations
+
+import orjson
+from fastapi import APIRouter, Response
+
+from textsieve.service.deps import MetricsDep, ModelsDep
+from textsieve.service.metrics import CONTENT_TYPE
+
+router = APIRouter()
+
+
+@router.get("/healthz", summary="Liveness: the process answers")
+async def healthz() -> dict[str, str]:
+    return {"status": "alive"}
+
+
+@router.get("/readyz", summary="Readiness: every served model is loaded and warmed (503 otherwise)",
+            responses={503: {"description": "not ready; 'reason' says why"}})
+async def readyz(models: ModelsDep) -> Response:
+    ready, reason = models.readiness()
+    body = {"ready": ready, "reason": reason, "models": models.describe()}
+    # A status report rather than an error, so plain JSON in both cases; Retry-After helps pollers.
+    headers = {} if ready else {"Retry-After": "2"}
+    return Response(orjson.dumps(body), status_code=200 if ready else 503, media_type="application/json",
+                    headers=headers)
+
+
+@router.get("/metrics", summary="Prometheus text format", response_class=Response)
+async def metrics_page(metrics: MetricsDep) -> Response:
+    return Response(metrics.render(), media_type=CONTENT_TYPE)
+
+
+__all__ = ["router"]

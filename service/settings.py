@@ -1,0 +1,106 @@
+"""Service settings: ``TEXTSIEVE_*`` environment variables, overridden by CLI flags or arguments.
+
+Built only inside :func:`textsieve.service.app.create_app` or the ``serve`` verb, never at import,
+so tests construct their own.
+"""
+
+from __future__ import annotations
+
+import os
+from typing import Annotated, Any
+
+from pydantic import Field, SecretStr, field_validator, model_validator
+from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
+
+MIN_TOKEN_CHARS = 16
+
+
+def _cores() -> int:
+    return max(1, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1))
+
+
+class Settings(BaseSettings):
+    """Every knob of the prediction service; each maps to ``TEXTSIEVE_<NAME>``."""
+
+    model_config = SettingsConfigDict(env_prefix="TEXTSIEVE_", extra="forbid", validate_default=True)
+
+    registry: str = Field("./textsieve-registry", description="registry folder or postgresql:// URL")
+    blobs: str | None = Field(None, description="blob folder when the registry is a postgresql:// URL")
+    host: str = "127.0.0.1"
+    port: int = Field(8000, ge=0, le=65535)
+    models: Annotated[list[str], NoDecode] = Field(
+        default_factory=list, description="models to serve (comma-separated); empty: every model with a live version")
+
+    workers: int = Field(default_factory=_cores, ge=1, le=256,
+                         description="inference threads, each owning one single-thread onnxruntime session")
+    batch_max_texts: int = Field(64, ge=1, le=4096, description="most texts in one onnxruntime call")
+    batch_wait_ms: float = Field(1.0, ge=0, le=1000, description="longest a text waits for others to fill its batch")
+
+    max_texts: int = Field(256, ge=1, description="most texts in one request")
+    max_chars: int = Field(20_000, ge=1, description="most characters in one text")
+    max_body_bytes: int = Field(4 * 1024 * 1024, ge=1024, description="largest request body")
+    max_spans: int = Field(20, ge=0, description="most spans a request may ask for per text")
+
+    admin_token: SecretStr | None = Field(None, description="bearer token for the admin calls; unset: admin is off")
+    poll_seconds: float = Field(2.0, gt=0, le=3600, description="how often the registry's change cursor is read")
+    pinned_versions: int = Field(2, ge=0, le=32, description="non-live versions kept loaded for pinned requests")
+    access_log: bool = Field(True, description="one JSON line per request on stderr")
+
+    @field_validator("models", mode="before")
+    @classmethod
+    def _split_models(cls, v: Any) -> Any:
+        if isinstance(v, str):
+            return [name.strip() for name in v.split(",") if name.strip()]
+        return v
+
+    @field_validator("models")
+    @classmethod
+    def _unique_models(cls, v: list[str]) -> list[str]:
+        if len(set(v)) != len(v):
+            raise ValueError(f"models are listed twice: {', '.join(sorted({m for m in v if v.count(m) > 1}))}")
+        return v
+
+    @field_validator("admin_token", mode="before")
+    @classmethod
+    def _empty_token_is_none(cls, v: Any) -> Any:
+        return None if isinstance(v, str) and not v.strip() else v
+
+    @field_validator("admin_token")
+    @classmethod
+    def _long_token(cls, v: SecretStr | None) -> SecretStr | None:
+        # A short shared secret can be guessed over HTTP; refuse it rather than warn.
+        if v is not None and len(v.get_secret_value()) < MIN_TOKEN_CHARS:
+            raise ValueError(f"the admin token must be at least {MIN_TOKEN_CHARS} characters "
+                             "(e.g. python -c 'import secrets; print(secrets.token_urlsafe(32))')")
+        return v
+
+    @model_validator(mode="after")
+    def _body_fits_one_text(self) -> Settings:
+        if self.max_body_bytes < self.max_chars:
+            raise ValueError(f"max_body_bytes ({self.max_body_bytes}) is smaller than max_chars "
+                             f"({self.max_chars}): a single text of the allowed size could never be sent")
+        return self
+
+    @property
+    def admin_enabled(self) -> bool:
+        return self.admin_token is not None
+
+
+def load_settings(**overrides: Any) -> Settings:
+    """Environment plus explicit overrides (None means "not given"); bad values raise InputError."""
+    from pydantic import ValidationError
+
+    from textsieve.errors import InputError
+
+    given = {k: v for k, v in overrides.items() if v is not None}
+    try:
+        return Settings(**given)
+    except ValidationError as exc:
+        first = exc.errors()[0]
+        name = ".".join(str(p) for p in first["loc"])
+        msg = str(first["msg"]).removeprefix("Value error, ")
+        where = f"setting {name} (TEXTSIEVE_{name.upper()})" if name else "settings"
+        raise InputError(f"{where}: {msg}") from exc
+
+
+__all__ = ["Settings", "load_settings"]
