@@ -1,0 +1,77 @@
+"""``textsieve demo``: the whole job on invented data, from nothing to a served model.
+
+invented help-desk messages → train → export (parity-checked) → publish → promote → serve
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import json
+import shlex
+from pathlib import Path
+
+from textsieve.cli import main as cli_main
+
+MODEL = "helpdesk"
+EXAMPLE = [
+    "The chain is not broken, but I was charged twice this month.",
+    "Thanks for fixing the dock so quickly, everything works now!",
+]
+
+
+def _step(n: int, text: str) -> None:
+    print(f"\n== step {n}/6: {text}", flush=True)
+
+
+def run_demo(args: argparse.Namespace) -> int:
+    from textsieve.exporter.demo_data import write_splits
+    from textsieve.exporter.export import export
+    from textsieve.exporter.train import TrainConfig, train
+    from textsieve.registry import open_registry
+
+    work: Path = args.workdir
+    registry = args.registry
+    reg_args = ["--registry", str(registry)] + (["--blobs", str(args.blobs)] if args.blobs else [])
+
+    _step(1, "invented data: help-desk messages to a fictional bike-share and tool library")
+    paths = write_splits(work / "data")
+    for name, path in paths.items():
+        rows = sum(1 for _ in path.open(encoding="utf-8"))
+        print(f"  {name:<5} {rows:>5} messages  {path}")
+
+    _step(2, "train a convolutional classifier (Kim, 2014 defaults)")
+    config = TrainConfig(data=paths["train"], out=work / "run", valid=paths["valid"])
+    if args.epochs:
+        config = dataclasses.replace(config, epochs=args.epochs)
+    run = train(config)
+    print(f"  run folder: {run}")
+
+    _step(3, "export to ONNX, calibrate, check parity against PyTorch")
+    bundle = work / "bundle"
+    manifest = export(run, bundle, test=paths["test"], log=lambda m: print(f"  {m}", flush=True))
+    print(f"  bundle: {bundle}  (test accuracy {manifest.metrics.accuracy:.4f}, macro-F1 {manifest.metrics.macro_f1:.4f})")
+
+    _step(4, f"publish to the registry at {registry}")
+    with open_registry(registry, blobs=args.blobs) as reg:
+        info = reg.publish(bundle, MODEL, reason="demo", evalset=paths["test"])
+        print(f"  published {MODEL} version {info.version}")
+
+        _step(5, "promote through the gates: candidate, then live")
+        reg.promote(MODEL, info.version, to="candidate", reason="demo: first check")
+        promotion = reg.promote(MODEL, info.version, to="live", reason="demo: gates passed")
+        for gate in promotion.gates:
+            print(f"  gate {gate.name:<10} {'passed' if gate.passed else 'FAILED'}  {gate.detail}")
+    cli_main(["models", *reg_args])
+
+    url = f"http://{args.host}:{args.port}"
+    body = json.dumps({"texts": EXAMPLE, "spans": 2})
+    print("\n  try it (from another terminal once the service says it is ready):")
+    print(f"    curl -s {url}/v1/predict -H 'content-type: application/json' -d {shlex.quote(body)}")
+    print(f"    textsieve predict --url {url} {shlex.quote(EXAMPLE[0])}")
+    print(f"    open {url}/ in a browser for the reviewer page")
+    if args.no_serve:
+        print("\n(--no-serve: not starting the service)")
+        return 0
+    _step(6, f"serve on {url} (Ctrl-C to stop)")
+    return cli_main(["serve", "--host", args.host, "--port", str(args.port), *reg_args])
