@@ -16,7 +16,7 @@ from textsieve.cli import main as cli_main
 MODEL = "helpdesk"
 EXAMPLE = [
     "The chain is not broken, but I was charged twice this month.",
-    "Thanks for fixing the dock so quickly, everything works now!",
+    "The gears were slipping last week, but you fixed them straight away. Thanks!",
 ]
 
 
