@@ -11,7 +11,7 @@ import gzip
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import IO
+from typing import IO, cast
 
 import numpy as np
 
@@ -99,7 +99,7 @@ def _is_float(value: str) -> bool:
 def _open(path: Path) -> IO[bytes]:
     try:
         if path.suffix.lower() == ".gz":
-            return gzip.open(path, "rb")
+            return cast(IO[bytes], gzip.open(path, "rb"))
         return open(path, "rb")
     except FileNotFoundError:
         raise InputError(f"{path}: no such file; --vectors must name a pretrained vectors file") from None

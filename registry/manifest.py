@@ -6,18 +6,18 @@ A bundle is a directory holding ``manifest.json`` and the files it lists with th
 
 from __future__ import annotations
 
-from typing import Literal
+from typing import Final, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from textsieve.registry.tokenizer import TokenizerSpec
 
-FORMAT = "textsieve-bundle"
-FORMAT_VERSION = 1
-MANIFEST = "manifest.json"
-MODEL_FILE = "model.onnx"
-VOCAB_FILE = "vocab.txt"
-CARD_FILE = "card.md"
+FORMAT: Final = "textsieve-bundle"
+FORMAT_VERSION: Final = 1
+MANIFEST: Final = "manifest.json"
+MODEL_FILE: Final = "model.onnx"
+VOCAB_FILE: Final = "vocab.txt"
+CARD_FILE: Final = "card.md"
 
 # The ONNX graph's contract, checked on publish against the file itself.
 INPUTS = {"token_ids": "int64", "lengths": "int64"}
