@@ -26,6 +26,7 @@ test: venv services
 	. ./.test-env 2>/dev/null; $(BIN)/python -m pytest
 
 bench: venv
+	$(PIP) install --quiet -c constraints.txt -e '.[bench]'
 	$(BIN)/python bench/run.py
 
 soak: venv

@@ -96,6 +96,20 @@ def _pattern(split_cjk: bool) -> re.Pattern[str]:
     return re.compile("|".join(alternatives))
 
 
+# On text without combining marks, format characters or ideographs the full pattern reduces
+# to this one, which the regex engine runs several times faster; tests check that both give
+# the same tokens and offsets.
+_SIMPLE = re.compile("\\w+(?:['\u2019]\\w+)*|[^\\s\\w]")
+
+
+@functools.cache
+def _special(split_cjk: bool) -> re.Pattern[str]:
+    """Characters that need the full pattern: combining marks, format characters, ideographs."""
+    marks = [cp for cp in range(0x110000) if unicodedata.category(chr(cp))[0] == "M" or unicodedata.category(chr(cp)) == "Cf"]
+    cjk = "".join(_class_range(lo, hi) for lo, hi in _CJK_RANGES) if split_cjk else ""
+    return re.compile(f"[{_ranges(marks)}{cjk}]")
+
+
 @dataclass(frozen=True, slots=True)
 class Token:
     """One token: its normalised form and its character offsets into the original text."""
@@ -115,6 +129,7 @@ class Tokenizer:
             # split a few rare characters differently from training.
             pass
         self._finditer = _pattern(self.spec.split_cjk).finditer
+        self._special = _special(self.spec.split_cjk).search
         self._fold = self.spec.case == "casefold"
 
     def normalize(self, piece: str) -> str:
@@ -128,13 +143,24 @@ class Tokenizer:
 
     def split(self, text: str) -> tuple[list[str], list[tuple[int, int]]]:
         """Normalised tokens and their (start, end) offsets, as two parallel lists."""
+        if text.isascii():
+            # ASCII case folding keeps every character in place, so the folded text can be
+            # matched directly and its pieces are already normalised.
+            matches = list(_SIMPLE.finditer(text.lower() if self._fold else text))
+            return [m.group() for m in matches], [m.span() for m in matches]
+        finditer = self._finditer if self._special(text) else _SIMPLE.finditer
         norm = self.normalize
         tokens: list[str] = []
         offsets: list[tuple[int, int]] = []
-        for m in self._finditer(text):
+        for m in finditer(text):
             tokens.append(norm(m.group()))
             offsets.append(m.span())
         return tokens, offsets
+
+    def split_slow(self, text: str) -> tuple[list[str], list[tuple[int, int]]]:
+        """:meth:`split` with the full pattern only; the reference its fast paths are tested against."""
+        tokens = self.tokenize(text)
+        return [t.norm for t in tokens], [(t.start, t.end) for t in tokens]
 
 
 class Vocabulary:

@@ -82,3 +82,17 @@ def test_vocabulary_file_round_trip(tmp_path) -> None:  # type: ignore[no-untype
     path.write_text("x\n<unk>\n", encoding="utf-8")
     with pytest.raises(BundleError):
         Vocabulary.load(path)
+
+
+@settings(max_examples=600, deadline=None)
+@given(st.one_of(_texts(), st.text(max_size=40), st.text(alphabet=st.characters(max_codepoint=127), max_size=60)))
+def test_fast_paths_equal_the_full_pattern(text: str) -> None:
+    # split() takes ASCII and "plain Unicode" shortcuts; split_slow() uses only the full
+    # pattern. They must agree token for token and offset for offset.
+    assert TOK.split(text) == TOK.split_slow(text)
+
+
+def test_fast_paths_on_examples() -> None:
+    for text in ["Don't STOP me now!", "DON’T stop, café ünd Straße", "\x00a\x1fb\tc", "O'Neil's 'quoted' text''",
+                 "naïve 東京 résumé", "e\u0301 x", "a\u200bb", "ǅemal ＡＢＣ ½"]:
+        assert TOK.split(text) == TOK.split_slow(text), text

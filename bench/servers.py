@@ -1,0 +1,86 @@
+"""Servers under test as subprocesses on 127.0.0.1: start, wait until ready, read their CPU
+time and peak memory from /proc, stop."""
+
+from __future__ import annotations
+
+import os
+import signal
+import socket
+import subprocess
+import time
+import urllib.error
+import urllib.request
+from dataclasses import dataclass
+from pathlib import Path
+
+_TICKS = os.sysconf("SC_CLK_TCK")
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+@dataclass
+class Server:
+    name: str
+    proc: subprocess.Popen[bytes]
+    url: str
+    log: Path
+
+    def cpu_seconds(self) -> float:
+        """User + system CPU of the server process (all its threads) so far."""
+        fields = Path(f"/proc/{self.proc.pid}/stat").read_text().rsplit(")", 1)[1].split()
+        return (int(fields[11]) + int(fields[12])) / _TICKS
+
+    def peak_rss_mb(self) -> float:
+        for line in Path(f"/proc/{self.proc.pid}/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+        return float("nan")
+
+    def threads(self) -> int:
+        return len(os.listdir(f"/proc/{self.proc.pid}/task"))
+
+    def stop(self) -> None:
+        if self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGINT)
+            try:
+                self.proc.wait(15)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(5)
+
+
+def start(name: str, cmd: list[str], ready_path: str, port: int, log: Path, *, env: dict[str, str] | None = None,
+          timeout: float = 180.0) -> Server:
+    log.parent.mkdir(parents=True, exist_ok=True)
+    fh = open(log, "wb")  # a file, not a pipe: a full pipe would stall a chatty server
+    # Same session as the caller: it shares the caller's scheduling autogroup (see run.raise_priority).
+    proc = subprocess.Popen(cmd, stdout=fh, stderr=subprocess.STDOUT, env={**os.environ, **(env or {})})
+    fh.close()
+    server = Server(name, proc, f"http://127.0.0.1:{port}", log)
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if proc.poll() is not None:
+            raise RuntimeError(f"{name} exited with {proc.returncode} while starting; see {log}:\n"
+                               + log.read_text(errors="replace")[-2000:])
+        try:
+            with urllib.request.urlopen(server.url + ready_path, timeout=2) as reply:
+                if reply.status == 200:
+                    return server
+        except (urllib.error.URLError, ConnectionError, TimeoutError):
+            pass
+        time.sleep(0.25)
+    server.stop()
+    raise RuntimeError(f"{name} not ready after {timeout:.0f} s; see {log}")
+
+
+def post_json(url: str, body: bytes, timeout: float = 30.0) -> bytes:
+    req = urllib.request.Request(url, data=body, headers={"Content-Type": "application/json"}, method="POST")
+    with urllib.request.urlopen(req, timeout=timeout) as reply:
+        return bytes(reply.read())
+
+
+__all__ = ["Server", "free_port", "post_json", "start"]
