@@ -18,6 +18,10 @@ MODEL_NAME = re.compile(r"[a-z0-9][a-z0-9._-]{0,63}")
 MODEL_NAME_RULE = "1–64 characters from a-z, 0-9, '.', '_', '-', starting with a letter or digit, no '..'"
 MAX_ACTOR = 120
 MAX_REASON = 2000
+# Versions are stored in INTEGER columns; PostgreSQL's INTEGER is 32-bit, and a larger number
+# would fail in the database driver instead of being refused here with a message.
+MAX_VERSION = 2**31 - 1
+_VERSION_RULE = f"versions are whole numbers from 1 to {MAX_VERSION}"
 
 
 def validate_model_name(name: object) -> str:
@@ -30,16 +34,24 @@ def validate_model_name(name: object) -> str:
     return name
 
 
+def _shown(value: object) -> str:
+    try:
+        text = repr(value)
+    except ValueError:  # an int past Python's limit on digits to print
+        return "(a number of thousands of digits)"
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
 def validate_version(version: object) -> int:
     """A version number: a positive integer (strings of digits are accepted, as typed on a command line)."""
-    if isinstance(version, bool):
-        raise InputError(f"bad version {version!r}: versions are whole numbers from 1")
     if isinstance(version, str):
-        if not version.isascii() or not version.isdigit():
-            raise InputError(f"bad version {version!r}: versions are whole numbers from 1")
+        # Checked before int(): a digit string of thousands of characters makes int() raise.
+        digits = version.lstrip("0")
+        if not version.isascii() or not version.isdigit() or len(digits) > len(str(MAX_VERSION)):
+            raise InputError(f"bad version {_shown(version)}: {_VERSION_RULE}")
         version = int(version)
-    if not isinstance(version, int) or version < 1:
-        raise InputError(f"bad version {version!r}: versions are whole numbers from 1")
+    if isinstance(version, bool) or not isinstance(version, int) or not 1 <= version <= MAX_VERSION:
+        raise InputError(f"bad version {_shown(version)}: {_VERSION_RULE}")
     return version
 
 
@@ -72,5 +84,6 @@ def validate_reason(reason: str, *, required: bool) -> str:
 
 
 __all__ = [
-    "MODEL_NAME", "MODEL_NAME_RULE", "resolve_actor", "validate_model_name", "validate_reason", "validate_version",
+    "MAX_VERSION", "MODEL_NAME", "MODEL_NAME_RULE", "resolve_actor", "validate_model_name", "validate_reason",
+    "validate_version",
 ]

@@ -16,6 +16,7 @@ from fastapi import APIRouter, Depends, Request
 
 from textsieve.errors import AuthError
 from textsieve.service.deps import ModelsDep, SettingsDep, StoreDep
+from textsieve.service.openapi import ADMIN_SCHEME
 from textsieve.service.problems import MEDIA_TYPE, AdminDisabledError
 from textsieve.service.schemas import (
     AdminReply, GateView, Problem, PromoteRequest, RollbackRequest, ServingView, VersionView,
@@ -25,6 +26,7 @@ from textsieve.service.views import _version_number
 router = APIRouter(prefix="/v1/models")
 _P = {"model": Problem, "content": {MEDIA_TYPE: {}}}
 _RESPONSES: dict[int | str, dict[str, Any]] = {401: _P, 403: _P, 404: _P, 409: _P, 422: _P, 503: _P}
+_SECURED: dict[str, Any] = {"security": [{ADMIN_SCHEME: []}]}
 
 
 async def require_admin(request: Request, settings: SettingsDep) -> None:
@@ -52,7 +54,7 @@ def _actor(request: Request, given: str | None) -> str:
 
 
 @router.post("/{name}/versions/{n}/promote", response_model=AdminReply, responses=_RESPONSES,
-             summary="Promote a version to candidate or live (through the registry's gates)")
+             openapi_extra=_SECURED, summary="Promote a version to candidate or live (through the registry's gates)")
 async def promote(name: str, n: str, body: PromoteRequest, request: Request, _: Admin,
                   store: StoreDep, models: ModelsDep) -> AdminReply:
     version = _version_number(n)
@@ -66,7 +68,7 @@ async def promote(name: str, n: str, body: PromoteRequest, request: Request, _: 
                       serving=ServingView.model_validate(models.serving(name)))
 
 
-@router.post("/{name}/rollback", response_model=AdminReply, responses=_RESPONSES,
+@router.post("/{name}/rollback", response_model=AdminReply, responses=_RESPONSES, openapi_extra=_SECURED,
              summary="Make the previous live version live again")
 async def rollback(name: str, body: RollbackRequest, request: Request, _: Admin,
                    store: StoreDep, models: ModelsDep) -> AdminReply:

@@ -14,7 +14,7 @@ from collections.abc import AsyncIterator
 from fastapi import FastAPI
 
 from textsieve import __version__
-from textsieve.service import admin, health, page, predict, problems, views
+from textsieve.service import admin, health, openapi, page, predict, problems, views
 from textsieve.service.access import AccessMiddleware
 from textsieve.service.batcher import InferencePool
 from textsieve.service.bodylimit import BodyLimitMiddleware
@@ -58,6 +58,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     problems.install(app)
     for module in (predict, views, admin, health, page):
         app.include_router(module.router)
+    openapi.install(app)
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes)
     app.add_middleware(AccessMiddleware, metrics=metrics, enabled=settings.access_log)
     return app

@@ -7,6 +7,7 @@ from fastapi import APIRouter, Response
 
 from textsieve.service.deps import MetricsDep, ModelsDep
 from textsieve.service.metrics import CONTENT_TYPE
+from textsieve.service.schemas import Readiness
 
 router = APIRouter()
 
@@ -17,17 +18,20 @@ async def healthz() -> dict[str, str]:
 
 
 @router.get("/readyz", summary="Readiness: every served model is loaded and warmed (503 otherwise)",
-            responses={503: {"description": "not ready; 'reason' says why"}})
+            response_class=Response,
+            responses={200: {"model": Readiness, "description": "ready; 'degraded' lists what works less well"},
+                       503: {"model": Readiness, "description": "not ready; 'reason' says why"}})
 async def readyz(models: ModelsDep) -> Response:
     ready, reason = models.readiness()
-    body = {"ready": ready, "reason": reason, "models": models.describe()}
+    body = {"ready": ready, "reason": reason, "degraded": models.degraded(), "models": models.describe()}
     # A status report rather than an error, so plain JSON in both cases; Retry-After helps pollers.
     headers = {} if ready else {"Retry-After": "2"}
     return Response(orjson.dumps(body), status_code=200 if ready else 503, media_type="application/json",
                     headers=headers)
 
 
-@router.get("/metrics", summary="Prometheus text format", response_class=Response)
+@router.get("/metrics", summary="Prometheus text format", response_class=Response,
+            responses={200: {"content": {"text/plain": {"schema": {"type": "string"}}}}})
 async def metrics_page(metrics: MetricsDep) -> Response:
     return Response(metrics.render(), media_type=CONTENT_TYPE)
 

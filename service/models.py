@@ -6,22 +6,32 @@ warmed beside the old one; then the table entry is replaced on the event loop th
 atomic for requests. A request takes its version when it starts (``acquire``) and keeps it to
 the end, so in-flight requests finish on the version they started with; the old version is
 closed when its last request is released. If the new version fails to load, the old one keeps
-serving and the failure is reported in ``/readyz`` and the ``textsieve_swaps_total`` metric.
+serving and the failure is reported in ``/readyz`` (the model's ``failed_version`` and the
+``degraded`` list) and the ``textsieve_swaps_total`` metric; loading is retried with backoff.
+
+Registry outage. Loaded versions keep answering when the registry cannot be read; a failed
+poll is reported in ``/readyz`` as degraded (not as not-ready: the replica still answers) and
+clears on the next successful poll.
+
+Pinned versions. A request may pin any version except a retired one; pinned versions are
+dropped from memory when their model changes, so the next pinned request checks the state again.
 """
 
 from __future__ import annotations
 
 import asyncio
 import contextlib
+import datetime as dt
 import logging
 import time
 from collections import OrderedDict
 from dataclasses import dataclass
 from typing import NoReturn
 
-from textsieve.errors import InputError, NotFoundError, TextsieveError, UnavailableError
+from textsieve.errors import InputError, NotFoundError, StateError, TextsieveError, UnavailableError
 from textsieve.service.batcher import Batcher, InferencePool
 from textsieve.service.loader import ServedModel, load_served
+from textsieve.service.memory import release_freed_memory
 from textsieve.service.metrics import ServiceMetrics
 from textsieve.service.settings import Settings
 from textsieve.service.store import Store
@@ -36,6 +46,7 @@ class ModelStatus:
     detail: str = ""
     failures: int = 0
     retry_at: float = 0.0
+    failed_version: int | None = None  # the registry's live version, when it could not be loaded
 
 
 class ModelSet:
@@ -49,6 +60,7 @@ class ModelSet:
         self.status: dict[str, ModelStatus] = {name: ModelStatus() for name in settings.models}
         self.started = False
         self.startup_error: str | None = None
+        self.registry_error: str | None = None  # the last poll's failure, until a poll succeeds
         self._cursor: int | None = None
         self._locks: dict[object, asyncio.Lock] = {}
         self._poller: asyncio.Task[None] | None = None
@@ -105,13 +117,24 @@ class ModelSet:
         if self.startup_error and not self.live:
             return False, f"startup failed: {self.startup_error}"
         if not self.status:
-            return False, (f"no model has a live version in the registry {self.settings.registry}; "
+            return False, (f"no model has a live version in the registry {self.settings.registry_label}; "
                            "publish and promote one (textsieve promote NAME VERSION --to live)")
         waiting = [f"{name}: {st.state}{' (' + st.detail + ')' if st.detail else ''}"
                    for name, st in sorted(self.status.items()) if name not in self.live]
         if waiting:
             return False, "not serving " + "; ".join(waiting)
-        return True, "serving " + ", ".join(f"{n} v{s.version}" for n, s in sorted(self.live.items()))
+        serving = "serving " + ", ".join(f"{n} v{s.version}" for n, s in sorted(self.live.items()))
+        degraded = self.degraded()
+        return True, serving + ("; degraded: " + "; ".join(degraded) if degraded else "")
+
+    def degraded(self) -> list[str]:
+        """What works less well than it should while every served model still answers."""
+        notes = [f"registry: {self.registry_error}"] if self.registry_error else []
+        for name, st in sorted(self.status.items()):
+            current = self.live.get(name)
+            if st.failed_version is not None and current is not None:
+                notes.append(f"{name}: {st.detail}; still serving version {current.version}")
+        return notes
 
     def _update_ready(self) -> None:
         self.metrics.ready.set((), 1.0 if self.readiness()[0] else 0.0)
@@ -120,9 +143,12 @@ class ModelSet:
         out: dict[str, object] = {}
         for name, st in sorted(self.status.items()):
             s = self.live.get(name)
-            out[name] = {"state": "ready" if s is not None and st.state == "ready" else st.state,
-                         **({"detail": st.detail} if st.detail else {}),
-                         **(s.describe() if s is not None else {})}
+            entry: dict[str, object] = {"state": "ready" if s is not None and st.state == "ready" else st.state,
+                                        **({"detail": st.detail} if st.detail else {}),
+                                        **(s.describe() if s is not None else {})}
+            if st.failed_version is not None and s is not None:
+                entry["failed_version"] = {"version": st.failed_version, "ready": False, "reason": st.detail}
+            out[name] = entry
         return out
 
     def serving(self, name: str) -> dict[str, object]:
@@ -170,6 +196,9 @@ class ModelSet:
                 return current
             version = int(info.version)
             if current is not None and current.version == version:
+                if status.failed_version is not None:  # the registry went back to what we serve
+                    status.state, status.detail, status.failures, status.failed_version = "ready", "", 0, None
+                    self._update_ready()
                 return current
             status.state = "loading" if current is None else status.state
             try:
@@ -180,6 +209,7 @@ class ModelSet:
                                                          MAX_RETRY_SECONDS)
                 if current is None:
                     status.state = "failed"
+                status.failed_version = version
                 status.detail = f"version {version} could not be loaded: {exc.message}"
                 self.metrics.swaps.inc((name, "failed"))
                 log.error("model %s: loading version %s failed (%s): %s", name, version, why, exc.message)
@@ -187,7 +217,7 @@ class ModelSet:
                 return current
             # The switch: one assignment on the event loop thread.
             self.live[name] = new
-            status.state, status.detail, status.failures = "ready", "", 0
+            status.state, status.detail, status.failures, status.failed_version = "ready", "", 0, None
             self.metrics.served.set((name,), version)
             self.metrics.swaps.inc((name, "startup" if current is None else "swapped"))
             log.info("model %s: now serving version %s (%s, loaded in %.2fs)", name, version, why, new.load_seconds)
@@ -217,6 +247,7 @@ class ModelSet:
         if served.batcher is not None:
             await served.batcher.close()
         served.predictors.clear()  # drops the onnxruntime sessions
+        await asyncio.to_thread(release_freed_memory)
 
     # -- requests -----------------------------------------------------------------------------
     async def acquire(self, name: str | None, version: int | None) -> ServedModel:
@@ -269,6 +300,12 @@ class ModelSet:
             self.pinned.move_to_end(key)
             return cached
         info = await self.store.call("version", name, version)  # NotFoundError when unknown
+        if info.state == "retired":
+            live = self.live.get(name)
+            instead = f"the live version ({live.version})" if live is not None else "the live version"
+            raise StateError(f"version {version} of {name!r} is retired and no longer served; pin {instead}, "
+                             "a candidate or a registered version, or roll back to it",
+                             model=name, version=version, state="retired")
         if self.settings.pinned_versions == 0:
             raise NotFoundError(f"model {name!r} version {version} exists but this service only serves "
                                 f"live versions (TEXTSIEVE_PINNED_VERSIONS=0)")
@@ -286,6 +323,11 @@ class ModelSet:
                 self._retire(old)
             return served
 
+    def _drop_pinned(self, name: str) -> None:
+        """Forget the pinned versions of a changed model: their state may have changed too."""
+        for key in [k for k in self.pinned if k[0] == name]:
+            self._retire(self.pinned.pop(key))
+
     # -- polling --------------------------------------------------------------------------------
     async def _poll(self) -> None:
         while True:
@@ -293,9 +335,20 @@ class ModelSet:
             try:
                 await self.poll_once()
             except TextsieveError as exc:
-                log.warning("registry poll failed: %s", exc.message)
-            except Exception:  # keep polling whatever one round hit; the log has the traceback
+                self._registry_failed(exc.message)
+            except Exception as exc:  # keep polling whatever one round hit; the log has the traceback
                 log.exception("registry poll failed")
+                self._registry_failed(f"{type(exc).__name__} while polling (see the log)")
+            else:
+                if self.registry_error is not None:
+                    log.info("registry reachable again: %s", self.settings.registry_label)
+                    self.registry_error = None
+
+    def _registry_failed(self, message: str) -> None:
+        if self.registry_error is None:  # log the change, not every failed round
+            log.warning("registry poll failed: %s", message)
+            since = dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat()
+            self.registry_error = f"{message} (since {since}; the versions already loaded keep serving)"
 
     async def poll_once(self) -> None:
         if not self._discovered:
@@ -308,7 +361,10 @@ class ModelSet:
         if self.settings.models:
             changed &= set(self.settings.models)
         now = time.monotonic()
-        retry = {n for n, st in self.status.items() if st.state == "failed" and st.retry_at <= now}
+        retry = {n for n, st in self.status.items()
+                 if (st.state == "failed" or st.failed_version is not None) and st.retry_at <= now}
+        for name in changed:
+            self._drop_pinned(name)
         for name in sorted(changed | retry):
             await self.refresh(name, why="registry change" if name in changed else "retry")
         self._update_ready()

@@ -41,7 +41,7 @@ def check_limits(body: PredictRequest, settings: Settings) -> None:
     "/v1/predict",
     response_class=Response,
     responses={200: {"model": PredictResponse, "description": "one result per text, in order"},
-               404: _PROBLEM, 413: _PROBLEM, 422: _PROBLEM, 503: _PROBLEM},
+               404: _PROBLEM, 409: _PROBLEM, 413: _PROBLEM, 422: _PROBLEM, 503: _PROBLEM},
     summary="Classify texts; each result has calibrated probabilities and the n-gram spans behind the label",
 )
 async def predict(body: PredictRequest, request: Request, models: ModelsDep, settings: SettingsDep,

@@ -199,8 +199,7 @@ async def _on_http(request: Request, exc: Exception) -> Response:
     assert isinstance(exc, StarletteHTTPException)
     if exc.status_code == 400 and exc.__cause__ is not None:
         # FastAPI's own body parsing failed below JSON (e.g. bytes that are not UTF-8).
-        cause = exc.__cause__
-        why = "not UTF-8" if isinstance(cause, UnicodeDecodeError) else type(cause).__name__
+        why = _unreadable(exc.__cause__)
         msg = f"the body could not be read as JSON ({why}); send UTF-8 JSON such as {{\"texts\": [\"...\"]}}"
         return problem(KINDS[InputError], f"body: {msg}", request.scope,
                        errors=[{"field": "body", "message": msg, "type": "body_unreadable"}])
@@ -209,6 +208,17 @@ async def _on_http(request: Request, exc: Exception) -> Response:
     detail = (f"no such path: {request.method} {request.url.path}; see GET /v1/models or the page at /"
               if exc.status_code == 404 else str(exc.detail))
     return problem(kind, detail, request.scope, headers=dict(exc.headers or {}))
+
+
+def _unreadable(cause: BaseException) -> str:
+    """Why the JSON parser gave up, in words (it raises these below its own error type)."""
+    if isinstance(cause, UnicodeDecodeError):
+        return "not UTF-8"
+    if isinstance(cause, RecursionError):
+        return "nested too deeply"
+    if isinstance(cause, ValueError) and "digits" in str(cause):
+        return "a number has too many digits"  # Python's int conversion limit (4300 digits)
+    return type(cause).__name__
 
 
 async def _on_unexpected(request: Request, exc: Exception) -> Response:

@@ -1,7 +1,11 @@
 """Request and response bodies of the HTTP API, kept apart from the registry's own rows.
 
 Unknown request fields are refused (422 naming the field and the allowed ones): a typo such as
-``"span": 5`` silently ignored would hand the caller results they did not ask for.
+``"span": 5`` silently ignored would hand the caller results they did not ask for. Types are
+strict (no ``"3"`` for 3, no ``1.0`` for 1, no ``1`` for true), as the OpenAPI schema states.
+Every text must hold something to classify: empty and whitespace-only texts are refused, and so
+are NUL characters, which no human text contains and which truncate strings in C-based consumers
+of the reply.
 """
 
 from __future__ import annotations
@@ -11,8 +15,15 @@ from typing import Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 from pydantic_core import PydanticCustomError
 
+from textsieve.registry.names import MAX_VERSION, MODEL_NAME, MODEL_NAME_RULE
+
+# Bounds the schema states so that no number reaches a database column or a JSON encoder too big
+# for it; the service's own limits (max_spans) are far below.
+MAX_SPANS_FIELD = 2**31 - 1
+
+
 class _Request(BaseModel):
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(extra="forbid", strict=True)
 
     @model_validator(mode="before")
     @classmethod
@@ -28,18 +39,30 @@ class _Request(BaseModel):
 
 
 class PredictRequest(_Request):
-    texts: list[str] = Field(min_length=1, description="texts to classify; limits are service settings")
-    model: str | None = Field(None, description="model name; optional when one model is served")
-    version: int | None = Field(None, ge=1, description="pin a version; default: the live one")
-    spans: int = Field(3, ge=0, description="spans per text, strongest first")
+    # The schema states the rules that JSON Schema can express; the validators below (and the
+    # registry's name check) remain the authority and word the refusals.
+    texts: list[str] = Field(min_length=1, description="texts to classify, each with something besides "
+                                                       "whitespace and no NUL; limits are service settings",
+                             json_schema_extra={"items": {"type": "string", "minLength": 1}})
+    model: str | None = Field(None, description=f"model name ({MODEL_NAME_RULE}); optional when one model is served",
+                              json_schema_extra={"anyOf": [{"type": "string", "pattern": f"^{MODEL_NAME.pattern}$"},
+                                                           {"type": "null"}]})
+    version: int | None = Field(None, ge=1, le=MAX_VERSION, description="pin a version; default: the live one")
+    spans: int = Field(3, ge=0, le=MAX_SPANS_FIELD, description="spans per text, strongest first")
 
     @field_validator("texts")
     @classmethod
-    def _valid_unicode(cls, texts: list[str]) -> list[str]:
-        # JSON may carry lone surrogates ("\ud800"); they are not text, cannot be encoded in
-        # the reply, and would otherwise surface as a server error.
+    def _valid_texts(cls, texts: list[str]) -> list[str]:
         for i, t in enumerate(texts):
+            if not t.strip():
+                raise ValueError(f"texts[{i}] is empty{' (only whitespace)' if t else ''}; "
+                                 "every text needs something to classify")
+            nul = t.find("\x00")
+            if nul >= 0:
+                raise ValueError(f"texts[{i}] contains a NUL character (U+0000) at character {nul}; remove it")
             try:
+                # JSON may carry lone surrogates ("\ud800"); they are not text, cannot be encoded
+                # in the reply, and would otherwise surface as a server error.
                 t.encode("utf-8")
             except UnicodeEncodeError as exc:
                 raise ValueError(f"texts[{i}] contains a lone surrogate (U+{ord(t[exc.start]):04X}) at "
@@ -144,6 +167,15 @@ class AdminReply(BaseModel):
     serving: ServingView = Field(description="what this service answers with after the call")
 
 
+class Readiness(BaseModel):
+    ready: bool
+    reason: str = Field(description="one line: what is served, or why not")
+    degraded: list[str] = Field(description="what works less well while the service still answers, e.g. "
+                                            "an unreachable registry or a new version that failed to load")
+    models: dict[str, dict[str, Any]] = Field(description="per served model: state, version, and "
+                                                          "'failed_version' when a newer one could not be loaded")
+
+
 class Problem(BaseModel):
     """RFC 9457 problem details, plus our extension members."""
 
@@ -159,4 +191,4 @@ class Problem(BaseModel):
 
 
 __all__ = ["AdminReply", "GateView", "ModelDetail", "ModelView", "PredictRequest", "PredictResponse",
-           "Problem", "PromoteRequest", "ResultOut", "RollbackRequest", "ServingView", "SpanOut", "VersionView"]
+           "Problem", "PromoteRequest", "Readiness", "ResultOut", "RollbackRequest", "ServingView", "SpanOut", "VersionView"]

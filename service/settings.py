@@ -85,6 +85,20 @@ class Settings(BaseSettings):
     def admin_enabled(self) -> bool:
         return self.admin_token is not None
 
+    @property
+    def registry_label(self) -> str:
+        """The registry location for logs and replies: a database URL without its password."""
+        return public_location(self.registry)
+
+
+def public_location(location: str) -> str:
+    """``location`` fit to show: a postgresql:// URL loses its password, a folder stays as it is."""
+    if "://" not in location:
+        return location
+    from textsieve.registry._postgres import describe
+
+    return describe(location)
+
 
 def load_settings(**overrides: Any) -> Settings:
     """Environment plus explicit overrides (None means "not given"); bad values raise InputError."""
@@ -103,4 +117,4 @@ def load_settings(**overrides: Any) -> Settings:
         raise InputError(f"{where}: {msg}") from exc
 
 
-__all__ = ["Settings", "load_settings"]
+__all__ = ["Settings", "load_settings", "public_location"]

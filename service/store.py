@@ -13,6 +13,7 @@ from concurrent.futures import ThreadPoolExecutor
 from typing import Any, TypeVar
 
 from textsieve.errors import UnavailableError
+from textsieve.service.settings import public_location
 
 T = TypeVar("T")
 
@@ -20,6 +21,7 @@ T = TypeVar("T")
 class Store:
     def __init__(self, location: str, blobs: str | None = None) -> None:
         self.location = location
+        self.label = public_location(location)  # for messages: no database password
         self.blobs = blobs
         self._executor = ThreadPoolExecutor(1, thread_name_prefix="textsieve-registry")
         self._registry: Any = None
@@ -45,7 +47,7 @@ class Store:
     @property
     def registry(self) -> Any:
         if self._registry is None:
-            raise UnavailableError(f"the registry at {self.location} is not open yet")
+            raise UnavailableError(f"the registry at {self.label} is not open yet")
         return self._registry
 
     async def call(self, method: str, *args: Any, **kwargs: Any) -> Any:

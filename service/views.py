@@ -6,7 +6,7 @@ from typing import Any
 
 from fastapi import APIRouter, Path
 
-from textsieve.errors import InputError
+from textsieve.registry.names import validate_version
 from textsieve.service.deps import ModelsDep, StoreDep
 from textsieve.service.problems import MEDIA_TYPE
 from textsieve.service.schemas import ModelDetail, ModelView, Problem, ServingView, VersionView
@@ -18,10 +18,8 @@ HISTORY = 20
 
 
 def _version_number(n: str) -> int:
-    # Taken as a string so that "abc" or "0" gets our problem body naming the rule.
-    if not n.isdigit() or int(n) < 1:
-        raise InputError(f"version {n!r} is not a version number; versions are whole numbers from 1")
-    return int(n)
+    # Taken as a string so that "abc", "0" or a thousand digits get our problem body naming the rule.
+    return validate_version(n)
 
 
 @router.get("", response_model=list[ModelView], responses=_PROBLEM, summary="Every model in the registry")
