@@ -180,8 +180,8 @@ def _lazy(module: str, name: str) -> Callable[[argparse.Namespace], int]:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    args = build_parser().parse_args(argv)
     try:
+        args = build_parser().parse_args(argv)
         return int(args.func(args))
     except TextsieveError as exc:
         print(f"textsieve: error: {exc.message}", file=sys.stderr)
@@ -189,6 +189,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("textsieve: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # The reader went away (`textsieve models | head`): not an error worth a traceback.
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 141
 
 
 if __name__ == "__main__":
