@@ -14,13 +14,13 @@ from this mix:
     14 %  /readyz, /metrics, /healthz
 
 What it prints: requests by kind and status, the error count (any failure, or any status other
-than the expected one), throughput, and the server's resident memory (VmRSS from /proc) when
-the warm-up ends and at the end. Exit status 0 only when there was no error, memory stayed
-within ``--memory-tolerance`` (10 %) of its post-warm-up value, and the server then stopped
-cleanly on SIGTERM.
+than the expected one), throughput, and the server's resident memory (VmRSS from /proc; the
+median of the 30 s after the warm-up and of the last 30 s). Exit status 0 only when there was
+no error, memory stayed within ``--memory-tolerance`` (10 %) of its post-warm-up value, and
+the server then stopped cleanly on SIGTERM.
 
-    make soak                                      # 10 minutes
-    .venv/bin/python bench/soak.py --seconds 60    # a short try
+    make soak                                                   # 10 minutes
+    .venv/bin/python bench/soak.py --seconds 120 --warmup 30    # a short try
 """
 
 from __future__ import annotations
@@ -52,6 +52,7 @@ from servers import free_port
 from texts import bench_texts
 
 MODEL = demo_model.MODEL_NAME
+WINDOW = 30.0  # seconds of memory samples (one every 5 s) summarised at each end
 MIX = [("predict", 62), ("pinned", 5), ("bad", 5), ("view", 14), ("probe", 14)]
 BAD_BODIES = [b'{"texts": []}', b'{"texts": ["a"], "span": 2}', b'{"texts": [""]}', b'{"texts": ["a"',
               b'{"texts": ["a"], "version": 99}']
@@ -193,8 +194,8 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--memory-tolerance", type=float, default=0.10, help="allowed relative change (default 0.10)")
     p.add_argument("--keep", action="store_true", help="keep the work folder (registry, server log)")
     args = p.parse_args(argv)
-    if args.warmup >= args.seconds:
-        p.error("--warmup must be shorter than --seconds")
+    if args.warmup + 2 * WINDOW > args.seconds:
+        p.error(f"--seconds must leave {2 * WINDOW:.0f} s after --warmup for the memory baseline and the end")
 
     model = demo_model.ensure_model()
     work = Path(tempfile.mkdtemp(prefix="textsieve-soak-"))
@@ -234,13 +235,16 @@ def main(argv: list[str] | None = None) -> int:
     for line in tally.errors[:10]:
         print(f"  {line}")
 
-    baseline = [rss for t, rss in samples if args.warmup <= t <= args.warmup + 15] or [samples[0][1]]
-    start, end = statistics.median(baseline), samples[-1][1]
+    # Medians over 30 s at each end: the resident size moves by several MiB from one sample to
+    # the next as batches come and go, and one sample at either end would judge that noise.
+    first = [rss for t, rss in samples if args.warmup <= t <= args.warmup + WINDOW] or [samples[0][1]]
+    last = [rss for t, rss in samples if t >= elapsed - WINDOW] or [samples[-1][1]]
+    start, end = statistics.median(first), statistics.median(last)
     change = (end - start) / start
     flat = abs(change) <= args.memory_tolerance
-    print(f"memory (VmRSS): {start / 2**20:.1f} MiB after the {args.warmup:.0f} s warm-up, {end / 2**20:.1f} MiB "
-          f"at the end ({change:+.1%}; {'flat' if flat else 'NOT flat'} within ±{args.memory_tolerance:.0%}); "
-          f"peak {max(r for _, r in samples) / 2**20:.1f} MiB")
+    print(f"memory (VmRSS, median of {WINDOW:.0f} s): {start / 2**20:.1f} MiB after the {args.warmup:.0f} s warm-up, "
+          f"{end / 2**20:.1f} MiB at the end ({change:+.1%}; {'flat' if flat else 'NOT flat'} within "
+          f"±{args.memory_tolerance:.0%}); peak {max(r for _, r in samples) / 2**20:.1f} MiB")
     print(f"server exit status after SIGTERM: {code}")
     if not args.keep and not tally.errors and code == 0:
         shutil.rmtree(work, ignore_errors=True)
