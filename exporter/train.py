@@ -12,10 +12,7 @@ import argparse
 import contextlib
 import json
 import math
-import os
 import pickle
-import secrets
-import shutil
 import time
 from collections import Counter
 from collections.abc import Iterator, Sequence
@@ -35,6 +32,7 @@ from textsieve.exporter.model import SentenceCNN
 from textsieve.exporter.progress import Progress, bar_wanted, say
 from textsieve.exporter.vectors import PretrainedVectors, load_vectors
 from textsieve.registry.manifest import ArchitectureInfo, LengthInfo, TrainingInfo, VectorsInfo
+from textsieve.registry._fs import atomic_directory
 from textsieve.registry.tokenizer import Tokenizer, TokenizerSpec, Vocabulary
 
 RUN_JSON = "run.json"
@@ -430,50 +428,13 @@ def _run_json(config: TrainConfig, prep: _Prepared, fitted: _Fitted) -> dict[str
     }
 
 
-def _write_file(path: Path, data: bytes) -> None:
-    with open(path, "wb") as fh:
-        fh.write(data)
-        fh.flush()
-        os.fsync(fh.fileno())
-
-
-def _fsync_dir(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
 def _write_run(out: Path, state: dict[str, torch.Tensor], files: dict[str, bytes]) -> None:
     """Build the folder beside ``out`` and rename it into place, so no reader sees half a run."""
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.parent / f"{out.name}.tmp-{secrets.token_hex(4)}"
-    tmp.mkdir()
-    try:
-        with open(tmp / MODEL_PT, "wb") as fh:
-            torch.save(state, fh)
-            fh.flush()
-            os.fsync(fh.fileno())
+    with atomic_directory(out, replace=True) as tmp:
+        torch.save(state, tmp / MODEL_PT)
         for name, data in files.items():
-            _write_file(tmp / name, data)
-        _fsync_dir(tmp)
+            (tmp / name).write_bytes(data)
         _check_out(out)  # again: something may have appeared there while we trained
-        if out.exists():
-            old = out.parent / f"{out.name}.old-{secrets.token_hex(4)}"
-            os.rename(out, old)
-            try:
-                os.rename(tmp, out)
-            except OSError:
-                os.rename(old, out)
-                raise
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.rename(tmp, out)
-        _fsync_dir(out.parent)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
 
 
 def train(config: TrainConfig) -> Path:

@@ -57,7 +57,7 @@ def atomic_directory(target: Path, *, replace: bool = False) -> Iterator[Path]:
     """
     target = Path(target)
     target.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent))
+    tmp = Path(tempfile.mkdtemp(prefix=f"{target.name}.tmp-", dir=target.parent))
     try:
         yield tmp
         for child in tmp.iterdir():
@@ -68,9 +68,13 @@ def atomic_directory(target: Path, *, replace: bool = False) -> Iterator[Path]:
         if target.exists():
             if not replace:
                 raise FileExistsError(target)
-            old = target.with_name(f".{target.name}.old-{os.getpid()}")
+            old = Path(tempfile.mkdtemp(prefix=f"{target.name}.old-", dir=target.parent))
             os.rename(target, old)
-            os.rename(tmp, target)
+            try:
+                os.rename(tmp, target)
+            except OSError:
+                os.rename(old, target)  # put the previous folder back rather than leave none
+                raise
             shutil.rmtree(old, ignore_errors=True)
         else:
             os.rename(tmp, target)
