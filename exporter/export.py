@@ -25,13 +25,28 @@ OPSET = 18  # the lowest opset torch's dynamo exporter writes
 INVARIANCE_TEXTS = 64
 
 
-def export_onnx(model: Any, path: Path, min_length: int) -> None:
+LAYOUTS = ("auto", "tap-tables", "convolution")
+TAP_TABLE_BUDGET = 256 * 2**20  # bytes; "auto" falls back to convolution above this
+
+
+def choose_layout(model: Any, requested: str = "auto") -> str:
+    """``tap-tables`` unless asked otherwise or its tables would exceed :data:`TAP_TABLE_BUDGET`."""
+    from textsieve.exporter.model import tap_table_bytes
+
+    if requested not in LAYOUTS:
+        raise InputError(f"unknown layout {requested!r}; allowed: {', '.join(LAYOUTS)}")
+    if requested != "auto":
+        return requested
+    return "tap-tables" if tap_table_bytes(model) <= TAP_TABLE_BUDGET else "convolution"
+
+
+def export_onnx(model: Any, path: Path, min_length: int, layout: str = "tap-tables") -> None:
     """Write the graph with dynamic batch and sequence axes as one self-contained file."""
     import torch
 
-    from textsieve.exporter.model import ExportGraph
+    from textsieve.exporter.model import ExportGraph, TapTableGraph
 
-    graph = ExportGraph(model).eval()
+    graph = (TapTableGraph(model) if layout == "tap-tables" else ExportGraph(model)).eval()
     seq = max(min_length, 8)
     ids = torch.ones((2, seq), dtype=torch.long)
     lengths = torch.tensor([seq, 1], dtype=torch.long)
@@ -88,7 +103,7 @@ def _predictor(model_path: Path, run: dict[str, Any], vocab: Vocabulary, tempera
 
 
 def export(run_dir: Path, out: Path, *, tolerance: float = 1e-4, test: Path | None = None,
-           log: Any = print) -> Manifest:
+           layout: str = "auto", log: Any = print) -> Manifest:
     from textsieve.exporter.data import load_examples
     from textsieve.exporter.train import load_run
 
@@ -107,9 +122,10 @@ def export(run_dir: Path, out: Path, *, tolerance: float = 1e-4, test: Path | No
     if out.exists() and not (out / MANIFEST).is_file() and any(out.iterdir()):
         raise InputError(f"{out}: exists and is not a bundle; choose an empty or new folder")
 
+    layout = choose_layout(model, layout)
     with atomic_directory(out, replace=True) as tmp:
-        log("exporting to ONNX …")
-        export_onnx(model, tmp / MODEL_FILE, run["lengths"]["min_length"])
+        log(f"exporting to ONNX ({layout} layout) …")
+        export_onnx(model, tmp / MODEL_FILE, run["lengths"]["min_length"], layout)
         atomic_write_text(tmp / VOCAB_FILE, vocab.dumps())
         ort = _predictor(tmp / MODEL_FILE, run, vocab)
         enc_valid = [ort.encode(e.text) for e in valid]
@@ -176,6 +192,7 @@ def export(run_dir: Path, out: Path, *, tolerance: float = 1e-4, test: Path | No
             "architecture": run["architecture"],
             "onnx": {
                 "opset": OPSET,
+                "layout": layout,
                 "inputs": [TensorInfo(name="token_ids", dtype="int64", shape=["batch", "seq"]),
                            TensorInfo(name="lengths", dtype="int64", shape=["batch"])],
                 "outputs": [TensorInfo(name="logits", dtype="float32", shape=["batch", len(labels)]),
@@ -224,7 +241,7 @@ def cli_export(args: argparse.Namespace) -> int:
     def log(msg: str) -> None:
         print(msg, file=sys.stderr if msg.endswith("…") else sys.stdout, flush=True)
 
-    manifest = export(args.run, args.out, tolerance=args.tolerance, test=args.test, log=log)
+    manifest = export(args.run, args.out, tolerance=args.tolerance, test=args.test, layout=args.layout, log=log)
     m = manifest.metrics
     print(f"bundle written to {args.out} ({m.split}: accuracy {m.accuracy:.4f}, macro-F1 {m.macro_f1:.4f})")
     return 0

@@ -77,3 +77,75 @@ class ExportGraph(nn.Module):
         # contribution[b, f, c] = pooled[b, f] * W[c, f]: logits = Σ_f contribution + bias.
         contributions = pooled.unsqueeze(2) * self.model.output.weight.t().unsqueeze(0)
         return logits, pooled, positions, contributions
+
+
+class TapTableGraph(nn.Module):
+    """The same function as :class:`ExportGraph`, rearranged for inference.
+
+    A convolution over embeddings is linear in the embeddings, and an embedding lookup picks
+    one row of a fixed matrix, so each filter tap's product with each vocabulary word can be
+    computed once: ``table[w, k][v] = E[v] · W_w[:, :, k]`` (a [vocab, maps] matrix per tap).
+    A window's activation is then ``bias_w + Σ_k table[w, k][id[t + k]]``: w row lookups and
+    additions per window instead of w·dim multiply-adds per map.
+
+    Two extra rows per tap table stand in for the masking: ``zero`` (what a masked, padded
+    embedding gives) and ``-inf`` (a window that starts past ``max(length - width, 0)``). A
+    window is valid exactly when its last tap is inside the text, or when it is the first
+    window of a text shorter than the filter; the last tap's lookup picks ``-inf`` otherwise.
+    """
+
+    def __init__(self, model: SentenceCNN) -> None:
+        super().__init__()
+        self.model = model
+        self.widths = model.widths
+        self.maps = model.maps
+        emb = model.embedding.weight.detach()
+        vocab = emb.shape[0]
+        self.zero_id = vocab
+        self.neg_id = vocab + 1
+        self.tables = nn.ParameterList()
+        for conv in model.convs:
+            w = conv.weight.detach()  # [maps, dim, width]
+            bias = conv.bias.detach()
+            for k in range(w.shape[2]):
+                table = emb @ w[:, :, k].t()  # [vocab, maps]
+                # The bias rides on tap 0, also in its zero row (an empty text's only window).
+                zero = bias if k == 0 else torch.zeros_like(bias)
+                if k == 0:
+                    table = table + bias
+                neg = torch.full_like(bias, float("-inf")) if k == w.shape[2] - 1 else zero
+                rows = torch.stack([zero, neg])
+                self.tables.append(nn.Parameter(torch.cat([table, rows]).contiguous(), requires_grad=False))
+
+    def forward(self, token_ids: Tensor, lengths: Tensor) -> tuple[Tensor, Tensor, Tensor, Tensor]:
+        seq = token_ids.shape[1]
+        steps = torch.arange(seq, device=token_ids.device).unsqueeze(0)
+        inside = steps < lengths.unsqueeze(1)
+        ids = torch.where(inside, token_ids, torch.full_like(token_ids, self.zero_id))
+        pooled: list[Tensor] = []
+        positions: list[Tensor] = []
+        tap = 0
+        for width in self.widths:
+            span = seq - width + 1
+            acts = nn.functional.embedding(ids[:, 0:span], self.tables[tap])
+            for k in range(1, width):
+                part = ids[:, k:k + span]
+                if k == width - 1:
+                    first = steps[:, 0:span] == 0
+                    outside = torch.where(first, torch.full_like(part, self.zero_id),
+                                          torch.full_like(part, self.neg_id))
+                    part = torch.where(inside[:, k:k + span], part, outside)
+                acts = acts + nn.functional.embedding(part, self.tables[tap + k])
+            tap += width
+            value, where = acts.max(dim=1)
+            pooled.append(torch.relu(value))
+            positions.append(where)
+        pooled_all = torch.cat(pooled, dim=1)
+        logits = self.model.output(pooled_all)
+        contributions = pooled_all.unsqueeze(2) * self.model.output.weight.t().unsqueeze(0)
+        return logits, pooled_all, torch.cat(positions, dim=1), contributions
+
+
+def tap_table_bytes(model: SentenceCNN) -> int:
+    """Bytes of float32 tap tables :class:`TapTableGraph` stores: (vocab + 2) × Σ widths × maps × 4."""
+    return (model.embedding.weight.shape[0] + 2) * sum(model.widths) * model.maps * 4

@@ -91,6 +91,10 @@ class TensorInfo(_Strict):
 class OnnxInfo(_Strict):
     file: Literal["model.onnx"] = MODEL_FILE
     opset: int = Field(ge=18)
+    # How the graph computes the convolution (same function, checked for parity either way):
+    # "convolution" runs Conv over embeddings; "tap-tables" looks up each word's precomputed
+    # product with every filter tap (see exporter/model.py). Bundles from before 0.2 lack it.
+    layout: Literal["convolution", "tap-tables"] = "convolution"
     inputs: list[TensorInfo]
     outputs: list[TensorInfo]
 

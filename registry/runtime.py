@@ -15,6 +15,7 @@ merged (weights added), and the top k by weight are returned.
 
 from __future__ import annotations
 
+import itertools
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -181,8 +182,11 @@ class Predictor:
         lengths = np.fromiter((len(e.ids) for e in batch), dtype=np.int64, count=len(batch))
         seq = max(int(lengths.max(initial=0)), self.min_length) if width is None else max(width, self.min_length)
         ids = np.zeros((len(batch), seq), dtype=np.int64)
-        for row, e in enumerate(batch):
-            ids[row, : len(e.ids)] = e.ids
+        total = int(lengths.sum())
+        if total:
+            # One pass over all ids, placed row by row through the mask (row-major order).
+            flat = np.fromiter(itertools.chain.from_iterable(e.ids for e in batch), dtype=np.int64, count=total)
+            ids[np.arange(seq) < lengths[:, None]] = flat
         return ids, lengths
 
     # -- results --------------------------------------------------------------------------

@@ -103,6 +103,35 @@ def test_parity_failure_exits_1_and_writes_nothing(tiny_runs: dict[str, Path], t
     assert not any("Traceback" in line for line in err)
 
 
+def test_both_layouts_match_pytorch_and_the_manifest_says_which(tiny_bundles: dict[str, Path],
+                                                                tiny_runs: dict[str, Path], tiny_data: Path,
+                                                                tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # The default bundle uses tap tables; --layout convolution exports the Conv graph. Both are
+    # held to the PyTorch model (the reference) on the same texts, and to each other.
+    import textsieve.exporter.export as export_module
+
+    assert open_bundle(tiny_bundles["a"]).manifest.onnx.layout == "tap-tables"
+    conv = tmp_path / "conv"
+    assert main(["export", str(tiny_runs["a"]), "--out", str(conv), "--layout", "convolution"]) == 0
+    assert open_bundle(conv).manifest.onnx.layout == "convolution"
+    rows = [json.loads(x) for x in (tiny_data / "test.jsonl").read_text(encoding="utf-8").splitlines()]
+    texts = [r["text"] for r in rows][:60] + ["ok", "x " * 300]
+    tables = Predictor.from_bundle(tiny_bundles["a"], batch_size=16)
+    convp = Predictor.from_bundle(conv, batch_size=16)
+    ref = _torch_probs(tiny_runs["a"], texts, tables.temperature)
+    for p in (tables, convp):
+        got = np.array([[x.probabilities[label] for label in p.labels] for x in p.predict(texts)])
+        assert np.abs(got - ref).max() < 1e-5
+    enc = [tables.encode(t) for t in texts]
+    assert np.array_equal(tables.run(enc).positions, convp.run(enc).positions)
+
+    # "auto" falls back to the convolution layout when the tables would pass the budget.
+    monkeypatch.setattr(export_module, "TAP_TABLE_BUDGET", 1024)
+    model, _, _ = load_run(tiny_runs["a"])
+    assert export_module.choose_layout(model) == "convolution"
+    assert export_module.choose_layout(model, "tap-tables") == "tap-tables"
+
+
 def test_export_bad_run_folder_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["export", str(tmp_path / "nope"), "--out", str(tmp_path / "b")]) == 2
     err = capsys.readouterr().err.strip().splitlines()
@@ -153,3 +182,21 @@ def test_real_data_cnn_close_to_bag_of_words_baseline(tmp_path: Path) -> None:
           f"exported CNN {cnn:.3f}")
     assert cnn > 0.65
     assert cnn >= baseline - 0.10
+
+
+def test_pad_places_each_text_at_the_left_of_its_row(tiny_bundles: dict[str, Path]) -> None:
+    # The vectorised padding against the plain per-row loop it replaced.
+    from textsieve.registry.runtime import Encoded
+
+    p = Predictor.from_bundle(tiny_bundles["a"])
+    rng = random.Random(5)
+    for _ in range(50):
+        batch = [Encoded("", [rng.randrange(2, 50) for _ in range(rng.randrange(0, 12))], [], 0, 0)
+                 for _ in range(rng.randrange(1, 9))]
+        for width in (None, p.max_length):
+            ids, lengths = p.pad(batch, width=width)
+            seq = max(max(len(e.ids) for e in batch), p.min_length) if width is None else max(width, p.min_length)
+            want = np.zeros((len(batch), seq), dtype=np.int64)
+            for row, e in enumerate(batch):
+                want[row, : len(e.ids)] = e.ids
+            assert np.array_equal(ids, want) and lengths.tolist() == [len(e.ids) for e in batch]

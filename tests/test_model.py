@@ -108,3 +108,48 @@ def test_max_norm_caps_each_output_row() -> None:
     assert torch.equal(after[1], before[1])  # rows under the limit are left alone
     cos = torch.nn.functional.cosine_similarity(after[0], before[0], dim=0)
     assert cos.item() == pytest.approx(1.0, abs=1e-6)  # direction kept, only the length changes
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_tap_tables_equal_the_convolution(seed: int) -> None:
+    # The exported tap-tables graph against the PyTorch convolution model it was built from
+    # (PyTorch as the reference): logits, pooled values and argmax windows, on a batch with
+    # texts shorter than the widest filter, an empty text, and texts that fill the batch.
+    from textsieve.exporter.model import ExportGraph, TapTableGraph
+
+    model = _model(seed, widths=(2, 3, 5))
+    gen = torch.Generator().manual_seed(seed)
+    lengths = torch.tensor([0, 1, 2, 4, 5, 9, 12, 12])
+    ids = torch.randint(2, 50, (len(lengths), 12), generator=gen)
+    ids[torch.arange(12).unsqueeze(0) >= lengths.unsqueeze(1)] = 0  # zero padding, as the runtime sends
+    with torch.no_grad():
+        want = ExportGraph(model)(ids, lengths)
+        got = TapTableGraph(model)(ids, lengths)
+    for w, g, name in zip(want, got, ("logits", "pooled", "positions", "contributions"), strict=True):
+        if name == "positions":
+            assert torch.equal(w, g), name
+        else:
+            torch.testing.assert_close(g, w, atol=TOL, rtol=0, msg=name)
+
+
+def test_tap_tables_ignore_what_lies_past_the_length() -> None:
+    # Whatever ids sit in the padding, a text's result is unchanged (same promise as the
+    # convolution graph's masking).
+    from textsieve.exporter.model import TapTableGraph
+
+    graph = TapTableGraph(_model(3))
+    ids = torch.tensor([[5, 6, 7, 8, 0, 0, 0], [5, 6, 7, 8, 44, 45, 46]])
+    lengths = torch.tensor([4, 4])
+    with torch.no_grad():
+        logits, pooled, positions, _ = graph(ids, lengths)
+    torch.testing.assert_close(logits[0], logits[1], atol=0, rtol=0)
+    assert torch.equal(positions[0], positions[1])
+
+
+def test_tap_table_size_formula() -> None:
+    from textsieve.exporter.model import TapTableGraph, tap_table_bytes
+
+    model = _model(4, vocab=50, widths=(2, 3, 5), maps=4)
+    graph = TapTableGraph(model)
+    stored = sum(t.numel() * t.element_size() for t in graph.tables)
+    assert stored == tap_table_bytes(model) == (50 + 2) * (2 + 3 + 5) * 4 * 4

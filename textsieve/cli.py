@@ -78,6 +78,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, required=True)
     p.add_argument("--tolerance", type=float, default=1e-4, help="max |Δprobability| torch vs ONNX")
     p.add_argument("--test", type=Path, help="held-out file for the manifest's metrics (default: validation)")
+    p.add_argument("--layout", choices=("auto", "tap-tables", "convolution"), default="auto",
+                   help="how the graph computes the convolution: precomputed per-word tap tables "
+                        "(fast; auto picks it when they fit in 256 MiB) or Conv over embeddings")
     p.set_defaults(func=_lazy("textsieve.exporter.export", "cli_export"))
 
     p = sub.add_parser("publish", help="store a bundle as the next version of a model")
@@ -141,7 +144,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--host", default=os.environ.get("TEXTSIEVE_HOST", "127.0.0.1"))
     p.add_argument("--port", type=int, default=int(os.environ.get("TEXTSIEVE_PORT", "8000")))
     p.add_argument("--models", help="comma-separated model names to serve (default: every model with a live version)")
-    p.add_argument("--workers", type=int, help="inference processes (default: one per core)")
+    p.add_argument("--workers", type=int, help="inference workers (default: one per core)")
+    p.add_argument("--inference", choices=("processes", "threads"),
+                   help="run inference workers as processes (default; fastest) or as threads of the server")
     _registry_arg(p)
     p.set_defaults(func=_lazy("textsieve.service.cli", "cli_serve"))
 
