@@ -102,12 +102,83 @@ def _pattern(split_cjk: bool) -> re.Pattern[str]:
 _SIMPLE = re.compile("\\w+(?:['\u2019]\\w+)*|[^\\s\\w]")
 
 
+_NON_ASCII = re.compile("[^\x00-\x7f]")
+_WORD = re.compile("\\w")
+_SPACE = re.compile("\\s")
+
+
 @functools.cache
-def _special(split_cjk: bool) -> re.Pattern[str]:
-    """Characters that need the full pattern: combining marks, format characters, ideographs."""
-    marks = [cp for cp in range(0x110000) if unicodedata.category(chr(cp))[0] == "M" or unicodedata.category(chr(cp)) == "Cf"]
-    cjk = "".join(_class_range(lo, hi) for lo, hi in _CJK_RANGES) if split_cjk else ""
-    return re.compile(f"[{_ranges(marks)}{cjk}]")
+def _composes_second() -> frozenset[str]:
+    """Characters that canonical composition can join onto the character before them.
+
+    They are the second half of some character's two-part canonical decomposition (that is
+    how Unicode's NFC_Quick_Check=Maybe set is built); a text holding one may change under
+    NFKC even though each of its characters alone does not.
+    """
+    # Hangul syllables compose algorithmically (no decomposition entry): vowel and final jamo.
+    found = {chr(cp) for cp in (*range(0x1161, 0x1176), *range(0x11A8, 0x11C3))}
+    for cp in range(0x80, 0x110000):
+        d = unicodedata.decomposition(chr(cp))
+        if d and not d.startswith("<"):
+            parts = d.split()
+            if len(parts) == 2:
+                found.add(chr(int(parts[1], 16)))
+    return frozenset(found)
+
+
+@functools.cache
+def _cjk_simple() -> re.Pattern[str]:
+    """The full pattern for text with ideographs but no combining marks or format characters."""
+    cjk = "".join(_class_range(lo, hi) for lo, hi in _CJK_RANGES)
+    word = f"[^\\W{cjk}]+(?:['\u2019][^\\W{cjk}]+)*"
+    return re.compile(f"{word}|[{cjk}]|[^\\s\\w]")
+
+
+class _Route:
+    """How :meth:`Tokenizer.split` may handle a non-ASCII text, decided per character.
+
+    Per character (cached; a text has few distinct non-ASCII characters) three facts:
+    - ``full``: a combining mark, format character, or a character that canonical
+      composition can join onto its neighbour. Such text takes the full pattern.
+    - ``cjk``: an ideograph (when ideographs are split); the pattern then needs the ideograph
+      alternative, which is cheap without the mark classes.
+    - ``fold``: unchanged by NFKC and case-folds to exactly one character of the same kind
+      (word character, space or other). When every character folds like this, folding the
+      whole text and matching once gives the same tokens and offsets as matching first and
+      normalising each token; otherwise each token is normalised. Tests hold every route
+      equal to the full pattern.
+    """
+
+    def __init__(self, split_cjk: bool, fold: bool) -> None:
+        self.split_cjk = split_cjk
+        self.fold = fold
+        self.known: dict[str, tuple[bool, bool, bool]] = {}
+
+    def __call__(self, text: str) -> tuple[re.Pattern[str], bool] | None:
+        """(pattern, fold the whole text first), or None for the full pattern."""
+        known = self.known
+        cjk = False
+        whole = True
+        for c in _NON_ASCII.findall(text):
+            facts = known.get(c)
+            if facts is None:
+                facts = known[c] = self._facts(c)
+            if facts[0]:
+                return None
+            cjk = cjk or facts[1]
+            whole = whole and facts[2]
+        return (_cjk_simple() if cjk else _SIMPLE), whole
+
+    def _facts(self, c: str) -> tuple[bool, bool, bool]:
+        cp = ord(c)
+        cat = unicodedata.category(c)
+        full = cat[0] == "M" or cat == "Cf" or bool(unicodedata.combining(c)) or c in _composes_second()
+        cjk = self.split_cjk and any(lo <= cp <= hi for lo, hi in _CJK_RANGES)
+        folded = c.casefold() if self.fold else c
+        fold = (unicodedata.normalize("NFKC", c) == c and len(folded) == 1
+                and bool(_WORD.match(c)) == bool(_WORD.match(folded))
+                and bool(_SPACE.match(c)) == bool(_SPACE.match(folded)))
+        return full, cjk, fold
 
 
 @dataclass(frozen=True, slots=True)
@@ -129,8 +200,8 @@ class Tokenizer:
             # split a few rare characters differently from training.
             pass
         self._finditer = _pattern(self.spec.split_cjk).finditer
-        self._special = _special(self.spec.split_cjk).search
         self._fold = self.spec.case == "casefold"
+        self._route = _Route(self.spec.split_cjk, self._fold)
 
     def normalize(self, piece: str) -> str:
         if not piece.isascii():
@@ -148,7 +219,13 @@ class Tokenizer:
             # matched directly and its pieces are already normalised.
             matches = list(_SIMPLE.finditer(text.lower() if self._fold else text))
             return [m.group() for m in matches], [m.span() for m in matches]
-        finditer = self._finditer if self._special(text) else _SIMPLE.finditer
+        route = self._route(text)
+        if route is not None and route[1]:
+            # Likewise when every character folds in place (see _Route): fold once, match once.
+            folded = (text.casefold() if self._fold else text).replace("\u2019", "'")
+            matches = list(route[0].finditer(folded))
+            return [m.group() for m in matches], [m.span() for m in matches]
+        finditer = self._finditer if route is None else route[0].finditer
         norm = self.normalize
         tokens: list[str] = []
         offsets: list[tuple[int, int]] = []
