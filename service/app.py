@@ -30,7 +30,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @contextlib.asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
-        pool = InferencePool(settings.workers)
+        pool = InferencePool(settings.workers, settings.inference)
         store = Store(settings.registry, settings.blobs)
         models = ModelSet(settings, store, pool, metrics)
         app.state.store, app.state.pool, app.state.models = store, pool, models

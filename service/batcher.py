@@ -1,9 +1,11 @@
 """Dynamic micro-batching: texts from concurrent requests share onnxruntime calls.
 
-Threading model. ``workers`` inference threads (default: one per core) each own one
-single-thread onnxruntime session of every loaded version; onnxruntime releases the GIL inside
-``session.run``, so the threads compute in parallel without the IPC of worker processes, and a
-hot swap only needs new sessions, not new processes. Each served version has one collector task
+Threading model. ``workers`` inference threads (default: one per core). With
+``inference=threads`` each owns one single-thread onnxruntime session of every loaded version
+and does all of a batch's work itself; onnxruntime releases the GIL inside ``session.run``, but
+tokenizing and building replies take turns with the event loop on the GIL. With
+``inference=processes`` (the default) thread i hands each batch to worker process i and waits
+(:mod:`textsieve.service.procs`), so that work runs in parallel too. Each served version has one collector task
 on the event loop: it waits for a free thread, then takes queued texts in arrival order, up to
 ``batch_max_texts``, waiting at most ``batch_wait_ms`` after the oldest text arrived for more to
 join. Under load the wait for a free thread is what fills batches; the explicit wait only
@@ -28,19 +30,26 @@ from textsieve.errors import UnavailableError
 from textsieve.service.loader import ServedModel
 from textsieve.service.metrics import ServiceMetrics
 from textsieve.service.packing import run_packed
+from textsieve.service.procs import WorkerProcesses
 from textsieve.service.spans import explain
 
 Result = dict[str, Any]
+PIPELINE = 2  # batches in flight per worker process
 
 
 class InferencePool:
-    """``workers`` threads; thread i only ever uses session i of a version."""
+    """``workers`` threads; thread i only ever uses session i of a version, or worker process i."""
 
-    def __init__(self, workers: int) -> None:
+    def __init__(self, workers: int, mode: str = "threads") -> None:
         self.workers = workers
+        self.mode = mode
+        self.procs = WorkerProcesses(workers) if mode == "processes" else None
+        # With processes, two threads (two batches in flight) per worker: the next batch waits
+        # in the worker's pipe while it computes the current one (see procs._Worker).
+        self.threads = workers * (PIPELINE if self.procs is not None else 1)
         self._local = threading.local()
         self._numbers = itertools.count()
-        self._executor = ThreadPoolExecutor(workers, thread_name_prefix="textsieve-infer",
+        self._executor = ThreadPoolExecutor(self.threads, thread_name_prefix="textsieve-infer",
                                             initializer=self._name_thread)
         self._slots: asyncio.Semaphore | None = None
 
@@ -53,7 +62,7 @@ class InferencePool:
     @property
     def slots(self) -> asyncio.Semaphore:
         if self._slots is None:  # created lazily so it binds to the running loop
-            self._slots = asyncio.Semaphore(self.workers)
+            self._slots = asyncio.Semaphore(self.threads)
         return self._slots
 
     @property
@@ -62,6 +71,8 @@ class InferencePool:
 
     def shutdown(self) -> None:
         self._executor.shutdown(wait=True, cancel_futures=True)
+        if self.procs is not None:
+            self.procs.shutdown()
 
 
 @dataclass(eq=False, slots=True)
@@ -172,8 +183,13 @@ class Batcher:
             fut.add_done_callback(lambda f, pieces=pieces: self._finish(f, pieces))
 
     def _work(self, texts: list[str], ks: list[int]) -> _Done:
-        """On an inference thread: encode, run, explain, build reply dicts."""
+        """On an inference thread: encode, run, explain, build reply dicts (here or in its process)."""
         started = time.perf_counter()
+        procs = self.pool.procs
+        key = self.served.worker_key
+        if procs is not None and key is not None:
+            results, tokens, unknown, truncated = procs.run(self.pool.index(), key, texts, ks)
+            return _Done(results, started, time.perf_counter() - started, tokens, unknown, truncated)
         p = self.served.predictors[self.pool.index()]
         encoded = [p.encode(t) for t in texts]
         out = run_packed(p, encoded)

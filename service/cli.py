@@ -28,6 +28,7 @@ def cli_serve(args: argparse.Namespace) -> int:
     settings = load_settings(
         host=args.host, port=args.port, registry=args.registry, blobs=getattr(args, "blobs", None),
         models=getattr(args, "models", None), workers=getattr(args, "workers", None),
+        inference=getattr(args, "inference", None),
     )
     logs.configure()
     log = logging.getLogger("textsieve.service")

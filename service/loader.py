@@ -22,13 +22,18 @@ from textsieve.registry.runtime import Predictor, make_session
 
 if TYPE_CHECKING:
     from textsieve.service.batcher import Batcher
+    from textsieve.service.procs import WorkerProcesses
 
 INVARIANCE_TOLERANCE = 1e-5
 
 
 @dataclass(eq=False)
 class ServedModel:
-    """One loaded, warmed version; ``predictors[i]`` belongs to inference thread i alone."""
+    """One loaded, warmed version; ``predictors[i]`` belongs to inference thread i alone.
+
+    In process mode ``predictors`` is empty: each worker process
+    holds its own warmed copy under ``worker_key`` (see :mod:`textsieve.service.procs`).
+    """
 
     name: str
     version: int
@@ -41,10 +46,17 @@ class ServedModel:
     active: int = 0  # requests in flight, counted on the event loop thread
     retiring: bool = False
     closed: bool = field(default=False)
+    worker_key: tuple[str, int, int] | None = None  # set when loaded in the worker processes
 
     @property
     def key(self) -> tuple[str, int]:
         return (self.name, self.version)
+
+    def loaded_in(self, procs: WorkerProcesses | None) -> bool:
+        """Whether sessions for this version exist (in this process or every worker process)."""
+        if self.worker_key is not None:
+            return procs is not None and procs.holds(self.worker_key)
+        return bool(self.predictors)
 
     def describe(self) -> dict[str, object]:
         return {"version": self.version, "labels": self.labels, "loaded_at": self.loaded_at,
@@ -83,12 +95,20 @@ def warm_and_check(p: Predictor, labels: list[str]) -> None:
 
 
 def load_served(bundle: Bundle, name: str, version: int, *, workers: int, batch_size: int,
-                manifest_sha256: str | None = None) -> ServedModel:
+                manifest_sha256: str | None = None, procs: WorkerProcesses | None = None) -> ServedModel:
     """Blocking: verify, load ``workers`` sessions and warm each. Run it off the event loop."""
     started = time.perf_counter()
     # The registry re-checked sha256 on fetch; open_bundle checks again, plus the graph's
     # inputs/outputs and the parity report, so the service never trusts a folder blindly.
     checked = open_bundle(bundle.path)
+    if procs is not None:  # each worker process opens, loads and warms its own copy
+        key = procs.new_key(name, version)
+        procs.load(key, checked.path, batch_size)
+        return ServedModel(
+            name=name, version=version, labels=list(checked.manifest.labels), predictors=[],
+            loaded_at=dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat(),
+            load_seconds=time.perf_counter() - started, manifest_sha256=manifest_sha256, worker_key=key,
+        )
     first = Predictor.from_bundle(checked, threads=1, batch_size=batch_size)
     model_file = checked.path / checked.manifest.onnx.file
     predictors = [first]

@@ -168,7 +168,7 @@ class ModelSet:
         bundle = await self.store.call("fetch", name, version)
         served = await asyncio.to_thread(
             load_served, bundle, name, version, workers=self.pool.workers,
-            batch_size=self.settings.batch_max_texts, manifest_sha256=manifest_sha256)
+            batch_size=self.settings.batch_max_texts, manifest_sha256=manifest_sha256, procs=self.pool.procs)
         served.batcher = Batcher(served, self.pool, self.metrics, max_texts=self.settings.batch_max_texts,
                                  wait_ms=self.settings.batch_wait_ms)
         served.batcher.start()
@@ -247,6 +247,8 @@ class ModelSet:
         if served.batcher is not None:
             await served.batcher.close()
         served.predictors.clear()  # drops the onnxruntime sessions
+        if served.worker_key is not None and self.pool.procs is not None:
+            await asyncio.to_thread(self.pool.procs.drop, served.worker_key)
         await asyncio.to_thread(release_freed_memory)
 
     # -- requests -----------------------------------------------------------------------------

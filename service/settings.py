@@ -7,7 +7,7 @@ so tests construct their own.
 from __future__ import annotations
 
 import os
-from typing import Annotated, Any
+from typing import Annotated, Any, Literal
 
 from pydantic import Field, SecretStr, field_validator, model_validator
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
@@ -32,8 +32,14 @@ class Settings(BaseSettings):
         default_factory=list, description="models to serve (comma-separated); empty: every model with a live version")
 
     workers: int = Field(default_factory=_cores, ge=1, le=256,
-                         description="inference threads, each owning one single-thread onnxruntime session")
-    batch_max_texts: int = Field(64, ge=1, le=4096, description="most texts in one onnxruntime call")
+                         description="inference workers (default: one per core), each with one single-thread "
+                                     "onnxruntime session per served version")
+    inference: Literal["processes", "threads"] = Field(
+        "processes", description="where workers run: processes (tokenizing and spans outside the server's GIL; "
+                                 "fastest) or threads (one process, less memory)")
+    batch_max_texts: int = Field(128, ge=1, le=4096,
+                                 description="most texts a worker takes at once (sorted by length and cut into "
+                                             "onnxruntime calls by padding)")
     batch_wait_ms: float = Field(1.0, ge=0, le=1000, description="longest a text waits for others to fill its batch")
 
     max_texts: int = Field(256, ge=1, description="most texts in one request")

@@ -59,7 +59,8 @@ def test_release_returns_the_free_pages_of_a_fragmented_arena() -> None:
 
 
 @pytest.mark.anyio
-async def test_swaps_under_load_keep_no_unloaded_version_alive(registry_dir: Path) -> None:
+@pytest.mark.parametrize("inference", ["threads", "processes"])
+async def test_swaps_under_load_keep_no_unloaded_version_alive(registry_dir: Path, inference: str) -> None:
     import onnxruntime
 
     from textsieve.service.loader import ServedModel
@@ -70,7 +71,7 @@ async def test_swaps_under_load_keep_no_unloaded_version_alive(registry_dir: Pat
 
     texts = [f"my card was charged twice for order {i} and the refund is late" for i in range(200)]
     headers = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
-    settings = settings_for(registry_dir, admin_token=ADMIN_TOKEN, poll_seconds=600, workers=2)
+    settings = settings_for(registry_dir, admin_token=ADMIN_TOKEN, poll_seconds=600, workers=2, inference=inference)
     async with serving(settings) as (app, client):
         stop = asyncio.Event()
 
@@ -99,4 +100,10 @@ async def test_swaps_under_load_keep_no_unloaded_version_alive(registry_dir: Pat
             await asyncio.sleep(0.02)
         models = app.state.models
         assert alive(ServedModel) == 1 + len(models.pinned)
-        assert alive(onnxruntime.InferenceSession) == settings.workers * (1 + len(models.pinned))
+        procs = app.state.pool.procs
+        if procs is None:
+            assert alive(onnxruntime.InferenceSession) == settings.workers * (1 + len(models.pinned))
+        else:  # sessions live in the worker processes: ask each what it holds
+            in_use = sorted(s.worker_key for s in [*models.live.values(), *models.pinned.values()])
+            assert procs.held() == [in_use] * settings.workers
+            assert alive(onnxruntime.InferenceSession) == 0

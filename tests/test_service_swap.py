@@ -94,7 +94,7 @@ async def test_in_flight_requests_finish_on_the_version_they_started_with(regist
         await _registry("promote", registry_dir, MODEL, 2, "live", reason="swap", actor="tests", force=True)
         await models.refresh(MODEL, why="test")
         assert models.live[MODEL].version == 2 and old.version == 1
-        assert not old.closed and old.predictors  # still usable by its request
+        assert not old.closed and old.loaded_in(app.state.pool.procs)  # still usable by its request
         results = await old.batcher.submit(PROBE, 2)
         assert len(results) == len(PROBE)
         new_reply = (await client.post("/v1/predict", json={"texts": PROBE})).json()
@@ -104,7 +104,7 @@ async def test_in_flight_requests_finish_on_the_version_they_started_with(regist
             if old.closed:
                 break
             await asyncio.sleep(0.01)
-        assert old.closed and not old.predictors  # sessions dropped once the last request ended
+        assert old.closed and not old.loaded_in(app.state.pool.procs)  # sessions dropped once the last request ended
 
 
 async def test_pinned_versions(registry_dir: Path, tiny_bundles: dict[str, Path]) -> None:
