@@ -21,10 +21,11 @@ def draw(results: dict[str, Any], out: Path) -> None:
     batch_label = f"{load['connections']} clients × {load['texts_per_request']} texts"
     bars = [
         ("flop_limit (conv FLOPs ÷ matmul rate)", fl["texts_per_s"], "#999999"),
-        ("runtime, graph only", rt["graph"]["texts_per_s"], "#6a8caf"),
+        ("runtime, graph only (tap tables)", rt["graph"]["texts_per_s"], "#6a8caf"),
         ("runtime (in-process, sorted)", rt["sorted"]["texts_per_s"], "#2f5f8f"),
         ("runtime, padded to max_length", rt["fixed"]["texts_per_s"], "#9fb6cd"),
         ("runtime, graph only, padded to max_length", rt["graph_fixed"]["texts_per_s"], "#c5d5e4"),
+        *([("convolution-layout graph only", rt["conv_graph"]["texts_per_s"], "#b0a080")] if "conv_graph" in rt else []),
         (f"service, {batch_label}", sv["batched"]["texts_per_s"], "#2e7d32"),
         (f"service, {batch_label}, spans 0", sv["batched_no_spans"]["texts_per_s"], "#81c784"),
         (f"service, {load['connections']} clients × 1 text", sv["single"]["texts_per_s"], "#a5d6a7"),

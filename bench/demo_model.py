@@ -2,11 +2,14 @@
 
 Reuses ``demo-run/run`` + ``demo-run/bundle`` when ``textsieve demo`` has already built them,
 else trains and exports the same recipe into ``bench/.cache`` (about a minute on 2 cores) and
-keeps it there for the next run.
+keeps it there for the next run. The benchmarked bundle uses the exporter's default
+``tap-tables`` layout; a second export of the same run with the ``convolution`` layout
+(``bench/.cache/bundle-conv``) is measured beside it, graph only, against the FLOP limit.
 """
 
 from __future__ import annotations
 
+import hashlib
 import json
 import shutil
 import time
@@ -27,6 +30,7 @@ class DemoModel:
     run: Path
     bundle: Path
     source: str  # "demo-run" or "bench/.cache (built now)" / "bench/.cache"
+    conv_bundle: Path | None = None  # the same run exported with the convolution layout
 
 
 def _architecture_ok(run: Path, bundle: Path) -> bool:
@@ -38,11 +42,43 @@ def _architecture_ok(run: Path, bundle: Path) -> bool:
     return all(arch.get(k) == v for k, v in EXPECTED.items()) and manifest.get("architecture") == arch
 
 
+def _layout(bundle: Path) -> str | None:
+    try:
+        return json.loads((bundle / "manifest.json").read_text())["onnx"].get("layout", "convolution")
+    except (OSError, ValueError, KeyError):
+        return None
+
+
+def _with_conv(model: DemoModel, say: object) -> DemoModel:
+    """Export the run once more with the convolution layout (about 15 s), unless already there."""
+    from textsieve.exporter.export import export
+
+    conv = CACHE / "bundle-conv"
+    run_id = hashlib.sha256((model.run / "model.pt").read_bytes()).hexdigest()
+    stamp = CACHE / "bundle-conv.run-sha256"
+    if _layout(conv) == "convolution" and stamp.is_file() and stamp.read_text() == str(run_id):
+        return DemoModel(model.run, model.bundle, model.source, conv)
+    say("exporting the same run with the convolution layout into bench/.cache/bundle-conv …")  # type: ignore[operator]
+    export(model.run, conv, layout="convolution", log=lambda m: None)
+    stamp.write_text(str(run_id))
+    return DemoModel(model.run, model.bundle, model.source, conv)
+
+
 def ensure_model(log: object = print) -> DemoModel:
     say = log if callable(log) else print
     for base, source in ((ROOT / "demo-run", "demo-run"), (CACHE, "bench/.cache")):
         if _architecture_ok(base / "run", base / "bundle"):
-            return DemoModel(base / "run", base / "bundle", source)
+            if _layout(base / "bundle") != "tap-tables":
+                # An older bundle: re-export the run (no retraining) into bench/.cache.
+                from textsieve.exporter.export import export
+
+                say("re-exporting the run with the tap-tables layout into bench/.cache/bundle …")
+                if base != CACHE:
+                    shutil.rmtree(CACHE / "run", ignore_errors=True)
+                    shutil.copytree(base / "run", CACHE / "run")
+                export(CACHE / "run", CACHE / "bundle", log=lambda m: None)
+                base, source = CACHE, "bench/.cache (re-exported)"
+            return _with_conv(DemoModel(base / "run", base / "bundle", source), say)
     from textsieve.exporter.demo_data import write_splits
     from textsieve.exporter.export import export
     from textsieve.exporter.train import TrainConfig, train
@@ -56,7 +92,7 @@ def ensure_model(log: object = print) -> DemoModel:
                            quiet=True))
     export(run, CACHE / "bundle", test=paths["test"], log=lambda m: None)
     say(f"  built in {time.perf_counter() - started:.0f} s")
-    return DemoModel(CACHE / "run", CACHE / "bundle", "bench/.cache (built now)")
+    return _with_conv(DemoModel(CACHE / "run", CACHE / "bundle", "bench/.cache (built now)"), say)
 
 
 def live_registry(model: DemoModel, folder: Path) -> Path:

@@ -14,6 +14,9 @@ Variants, all from the same texts:
 
 ``graph`` against ``graph_fixed`` isolates what padding costs: tokenizing is the same work
 either way, so the end-to-end pair (``sorted`` against ``fixed``) shows a diluted effect.
+
+``conv_graph`` and ``conv_graph_fixed`` repeat the two graph-only variants on the same run
+exported with the convolution layout (the graph the FLOP limit describes), when given.
 """
 
 from __future__ import annotations
@@ -109,7 +112,7 @@ def graph_only(p: Predictor, texts: list[str], *, fixed: bool = False) -> Callab
 class InProcess:
     """The four variants prepared once; ``window`` measures one of them for a while."""
 
-    def __init__(self, bundle: Path, texts: list[str], sessions: int = 2) -> None:
+    def __init__(self, bundle: Path, texts: list[str], sessions: int = 2, conv_bundle: Path | None = None) -> None:
         self.predictors = load(bundle, sessions)
         parts = _halves(texts, sessions)
         makers: dict[str, Callable[[Predictor, list[str]], Callable[[], int]]] = {
@@ -117,6 +120,10 @@ class InProcess:
             "graph_fixed": lambda p, t: graph_only(p, t, fixed=True)}
         self.work = {name: [make(p, part) for p, part in zip(self.predictors, parts, strict=True)]
                      for name, make in makers.items()}
+        if conv_bundle is not None:
+            conv = load(conv_bundle, sessions)
+            self.work["conv_graph"] = [graph_only(p, part) for p, part in zip(conv, parts, strict=True)]
+            self.work["conv_graph_fixed"] = [graph_only(p, part, fixed=True) for p, part in zip(conv, parts, strict=True)]
         for work in self.work.values():
             for w in work:
                 w()  # warm: the first runs of a new shape allocate

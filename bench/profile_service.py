@@ -89,7 +89,7 @@ def main() -> int:
         cpu0 = server.cpu_seconds()
         thread.start()
         subprocess.run([pyspy, "record", "--pid", str(server.proc.pid), "--duration", str(int(args.seconds)),
-                        "--rate", "200", "--threads", "--format", "raw", "--output", str(raw), "--nonblocking",
+                        "--rate", "200", "--threads", "--subprocesses", "--format", "raw", "--output", str(raw), "--nonblocking",
                         *(["--gil"] if args.gil else [])],
                        check=True, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         thread.join()

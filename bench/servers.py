@@ -1,5 +1,5 @@
 """Servers under test as subprocesses on 127.0.0.1: start, wait until ready, read their CPU
-time and peak memory from /proc, stop."""
+time and peak memory from /proc (the server and every process below it), stop."""
 
 from __future__ import annotations
 
@@ -29,16 +29,45 @@ class Server:
     url: str
     log: Path
 
+    def pids(self) -> list[int]:
+        """The server process and all its descendants (worker processes, their fork server)."""
+        children: dict[int, list[int]] = {}
+        for entry in os.listdir("/proc"):
+            if entry.isdigit():
+                try:
+                    ppid = int(Path(f"/proc/{entry}/stat").read_text().rsplit(")", 1)[1].split()[1])
+                except (OSError, IndexError, ValueError):
+                    continue
+                children.setdefault(ppid, []).append(int(entry))
+        found, todo = [], [self.proc.pid]
+        while todo:
+            pid = todo.pop()
+            found.append(pid)
+            todo.extend(children.get(pid, []))
+        return found
+
     def cpu_seconds(self) -> float:
-        """User + system CPU of the server process (all its threads) so far."""
-        fields = Path(f"/proc/{self.proc.pid}/stat").read_text().rsplit(")", 1)[1].split()
-        return (int(fields[11]) + int(fields[12])) / _TICKS
+        """User + system CPU of the server and its descendants (all their threads) so far."""
+        total = 0
+        for pid in self.pids():
+            try:
+                fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+            except OSError:
+                continue
+            total += int(fields[11]) + int(fields[12])
+        return total / _TICKS
 
     def peak_rss_mb(self) -> float:
-        for line in Path(f"/proc/{self.proc.pid}/status").read_text().splitlines():
-            if line.startswith("VmHWM:"):
-                return int(line.split()[1]) / 1024
-        return float("nan")
+        """Sum over the server and its descendants of each one's peak resident memory."""
+        total = 0
+        for pid in self.pids():
+            try:
+                for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+                    if line.startswith("VmHWM:"):
+                        total += int(line.split()[1])
+            except OSError:
+                continue
+        return total / 1024 if total else float("nan")
 
     def threads(self) -> int:
         return len(os.listdir(f"/proc/{self.proc.pid}/task"))
