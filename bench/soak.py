@@ -14,8 +14,9 @@ from this mix:
     14 %  /readyz, /metrics, /healthz
 
 What it prints: requests by kind and status, the error count (any failure, or any status other
-than the expected one), throughput, and the server's resident memory (VmRSS from /proc; the
-median of the 30 s after the warm-up and of the last 30 s). Exit status 0 only when there was
+than the expected one), throughput, and the server's resident memory (VmRSS from /proc, summed
+over the server and its worker processes; the median of the 30 s after the warm-up and of the
+last 30 s). Exit status 0 only when there was
 no error, memory stayed within ``--memory-tolerance`` (10 %) of its post-warm-up value, and
 the server then stopped cleanly on SIGTERM.
 
@@ -93,11 +94,37 @@ def _registry(work: Path, bundle: Path) -> Path:
     return folder
 
 
+def _tree(pid: int) -> list[int]:
+    """``pid`` and every process below it (the worker processes and their fork server)."""
+    children: dict[int, list[int]] = {}
+    for entry in os.listdir("/proc"):
+        if entry.isdigit():
+            try:
+                ppid = int(Path(f"/proc/{entry}/stat").read_text().rsplit(")", 1)[1].split()[1])
+            except (OSError, IndexError, ValueError):
+                continue
+            children.setdefault(ppid, []).append(int(entry))
+    found, todo = [], [pid]
+    while todo:
+        p = todo.pop()
+        found.append(p)
+        todo.extend(children.get(p, []))
+    return found
+
+
 def _rss_bytes(pid: int) -> int:
-    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
-        if line.startswith("VmRSS:"):
-            return int(line.split()[1]) * 1024
-    raise RuntimeError("no VmRSS in /proc")
+    """Resident memory of the server and its worker processes, summed."""
+    total = 0
+    for p in _tree(pid):
+        try:
+            for line in Path(f"/proc/{p}/status").read_text().splitlines():
+                if line.startswith("VmRSS:"):
+                    total += int(line.split()[1]) * 1024
+        except OSError:
+            continue  # a worker being replaced
+    if not total:
+        raise RuntimeError("no VmRSS in /proc")
+    return total
 
 
 async def _client(http: Any, rng: random.Random, pool: list[str], until: float, tally: Tally) -> None:

@@ -219,7 +219,12 @@ class _Worker:
             code = self.proc.exitcode if self.proc is not None else None
             log.error("inference worker %s stopped (exit code %s); starting a new one", self.index, code)
             self.stop(timeout=0.5)
-            self.start()
+            try:
+                self.start()
+            except Exception as exc:  # noqa: BLE001 - e.g. the fork server is gone; the next call tries again
+                log.error("inference worker %s could not be restarted: %s", self.index, exc)
+                raise UnavailableError(f"inference worker {self.index} could not be restarted ({exc}); "
+                                       "retry shortly") from exc
             for key, item in list(self.loaded.items()):
                 try:
                     _, fut = self.submit(("load", key, str(item.bundle), item.batch_size))

@@ -113,3 +113,23 @@ async def test_batches_pipelined_into_one_worker_all_come_back_in_order(registry
             assert result["tokens"] == len(text.split())
             for span in result["spans"]:
                 assert text[span["start"]:span["end"]] == span["text"]
+
+
+async def test_a_worker_that_cannot_be_restarted_gives_503_then_recovers(registry_dir: Path,
+                                                                         monkeypatch: pytest.MonkeyPatch) -> None:
+    async with serving(settings_for(registry_dir, inference="processes", workers=1)) as (app, client):
+        worker = app.state.pool.procs.workers[0]
+        real_start = worker.start
+
+        def cannot_start() -> None:
+            raise OSError("fork server gone")
+
+        monkeypatch.setattr(worker, "start", cannot_start)
+        os.kill(worker.proc.pid, signal.SIGKILL)
+        worker.proc.join(5)
+        r = await client.post("/v1/predict", json={"texts": TEXTS[:2]})
+        assert r.status_code == 503, r.text
+        assert "could not be restarted" in r.json()["detail"]
+        monkeypatch.setattr(worker, "start", real_start)
+        r = await client.post("/v1/predict", json={"texts": TEXTS[:2]})
+        assert r.status_code == 200, r.text
