@@ -22,6 +22,24 @@ def free_port() -> int:
         return int(s.getsockname()[1])
 
 
+def process_tree(pid: int) -> list[int]:
+    """``pid`` and every process below it, from /proc."""
+    children: dict[int, list[int]] = {}
+    for entry in os.listdir("/proc"):
+        if entry.isdigit():
+            try:
+                ppid = int(Path(f"/proc/{entry}/stat").read_text().rsplit(")", 1)[1].split()[1])
+            except (OSError, IndexError, ValueError):
+                continue
+            children.setdefault(ppid, []).append(int(entry))
+    found, todo = [], [pid]
+    while todo:
+        p = todo.pop()
+        found.append(p)
+        todo.extend(children.get(p, []))
+    return found
+
+
 @dataclass
 class Server:
     name: str
@@ -31,20 +49,7 @@ class Server:
 
     def pids(self) -> list[int]:
         """The server process and all its descendants (worker processes, their fork server)."""
-        children: dict[int, list[int]] = {}
-        for entry in os.listdir("/proc"):
-            if entry.isdigit():
-                try:
-                    ppid = int(Path(f"/proc/{entry}/stat").read_text().rsplit(")", 1)[1].split()[1])
-                except (OSError, IndexError, ValueError):
-                    continue
-                children.setdefault(ppid, []).append(int(entry))
-        found, todo = [], [self.proc.pid]
-        while todo:
-            pid = todo.pop()
-            found.append(pid)
-            todo.extend(children.get(pid, []))
-        return found
+        return process_tree(self.proc.pid)
 
     def cpu_seconds(self) -> float:
         """User + system CPU of the server and its descendants (all their threads) so far."""
@@ -112,4 +117,4 @@ def post_json(url: str, body: bytes, timeout: float = 30.0) -> bytes:
         return bytes(reply.read())
 
 
-__all__ = ["Server", "free_port", "post_json", "start"]
+__all__ = ["Server", "free_port", "post_json", "process_tree", "start"]

@@ -49,7 +49,7 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
 import demo_model
-from servers import free_port
+from servers import free_port, process_tree
 from texts import bench_texts
 
 MODEL = demo_model.MODEL_NAME
@@ -94,28 +94,10 @@ def _registry(work: Path, bundle: Path) -> Path:
     return folder
 
 
-def _tree(pid: int) -> list[int]:
-    """``pid`` and every process below it (the worker processes and their fork server)."""
-    children: dict[int, list[int]] = {}
-    for entry in os.listdir("/proc"):
-        if entry.isdigit():
-            try:
-                ppid = int(Path(f"/proc/{entry}/stat").read_text().rsplit(")", 1)[1].split()[1])
-            except (OSError, IndexError, ValueError):
-                continue
-            children.setdefault(ppid, []).append(int(entry))
-    found, todo = [], [pid]
-    while todo:
-        p = todo.pop()
-        found.append(p)
-        todo.extend(children.get(p, []))
-    return found
-
-
 def _rss_bytes(pid: int) -> int:
     """Resident memory of the server and its worker processes, summed."""
     total = 0
-    for p in _tree(pid):
+    for p in process_tree(pid):
         try:
             for line in Path(f"/proc/{p}/status").read_text().splitlines():
                 if line.startswith("VmRSS:"):
