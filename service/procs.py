@@ -268,8 +268,15 @@ class WorkerProcesses:
         # Started on the first load (off the event loop), not in the constructor.
         with self._start_lock:
             if not self._started:
-                for w in self.workers:
-                    w.start()
+                try:
+                    for w in self.workers:
+                        if w.proc is None:
+                            w.start()
+                except Exception as exc:  # noqa: BLE001 - e.g. no writable temp folder for the fork server
+                    raise UnavailableError(
+                        f"cannot start inference worker processes ({type(exc).__name__}: {exc}); "
+                        "fix that, or set TEXTSIEVE_INFERENCE=threads to run inference in the server process"
+                    ) from exc
                 self._started = True
 
     def new_key(self, name: str, version: int) -> Key:

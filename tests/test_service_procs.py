@@ -3,6 +3,7 @@ is replaced without losing the request it was running."""
 
 from __future__ import annotations
 
+import asyncio
 import os
 import signal
 from pathlib import Path
@@ -102,8 +103,6 @@ def test_unloaded_version_is_unavailable_not_a_crash() -> None:
 
 async def test_batches_pipelined_into_one_worker_all_come_back_in_order(registry_dir: Path) -> None:
     # One worker, several requests at once: each reply must reach the request that sent it.
-    import asyncio
-
     texts = ["my card was charged" + " again" * n for n in range(40)]  # n + 4 tokens: each reply is told apart
     async with serving(settings_for(registry_dir, inference="processes", workers=1, batch_max_texts=4)) as (_, client):
         replies = await asyncio.gather(*(client.post("/v1/predict", json={"texts": [t]}) for t in texts))
@@ -133,3 +132,23 @@ async def test_a_worker_that_cannot_be_restarted_gives_503_then_recovers(registr
         monkeypatch.setattr(worker, "start", real_start)
         r = await client.post("/v1/predict", json={"texts": TEXTS[:2]})
         assert r.status_code == 200, r.text
+
+
+async def test_worker_processes_that_cannot_start_make_readyz_say_what_to_do(registry_dir: Path,
+                                                                              monkeypatch: pytest.MonkeyPatch) -> None:
+    from textsieve.service import procs
+
+    def cannot_start(self: object) -> None:
+        raise PermissionError("no temporary folder")
+
+    monkeypatch.setattr(procs._Worker, "start", cannot_start)
+    async with serving(settings_for(registry_dir, inference="processes"), ready=False) as (_, client):
+        for _ in range(100):
+            r = await client.get("/readyz")
+            if "TEXTSIEVE_INFERENCE=threads" in r.text:
+                break
+            await asyncio.sleep(0.05)
+        assert r.status_code == 503
+        assert "cannot start inference worker processes" in r.text and "TEXTSIEVE_INFERENCE=threads" in r.text
+        p = await client.post("/v1/predict", json={"texts": ["a text"]})
+        assert p.status_code == 503 and p.headers["content-type"].startswith("application/problem+json")
