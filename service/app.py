@@ -20,6 +20,7 @@ from textsieve.service.batcher import InferencePool
 from textsieve.service.bodylimit import BodyLimitMiddleware
 from textsieve.service.metrics import ServiceMetrics
 from textsieve.service.models import ModelSet
+from textsieve.service.onewrite import HeadWithBodyMiddleware
 from textsieve.service.settings import Settings, load_settings
 from textsieve.service.store import Store
 
@@ -61,6 +62,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     openapi.install(app)
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes)
     app.add_middleware(AccessMiddleware, metrics=metrics, enabled=settings.access_log)
+    app.add_middleware(HeadWithBodyMiddleware)  # outermost of ours: see service/onewrite.py
     return app
 
 

@@ -152,3 +152,21 @@ async def test_worker_processes_that_cannot_start_make_readyz_say_what_to_do(reg
         assert "cannot start inference worker processes" in r.text and "TEXTSIEVE_INFERENCE=threads" in r.text
         p = await client.post("/v1/predict", json={"texts": ["a text"]})
         assert p.status_code == 503 and p.headers["content-type"].startswith("application/problem+json")
+
+
+async def test_head_waits_for_the_body_and_both_go_out_back_to_back() -> None:
+    # service/onewrite.py: the head is held until the first body part, then both are sent.
+    from textsieve.service.onewrite import HeadWithBodyMiddleware
+
+    sent: list[str] = []
+
+    async def app(scope: dict, receive: object, send: object) -> None:  # type: ignore[type-arg]
+        await send({"type": "http.response.start", "status": 200, "headers": []})  # type: ignore[operator]
+        sent.append("app: head handed on")
+        await send({"type": "http.response.body", "body": b"x"})  # type: ignore[operator]
+
+    async def server_send(message: dict) -> None:  # type: ignore[type-arg]
+        sent.append(message["type"])
+
+    await HeadWithBodyMiddleware(app)({"type": "http"}, None, server_send)  # type: ignore[arg-type]
+    assert sent == ["app: head handed on", "http.response.start", "http.response.body"]
