@@ -107,23 +107,12 @@ _WORD = re.compile("\\w")
 _SPACE = re.compile("\\s")
 
 
-@functools.cache
-def _composes_second() -> frozenset[str]:
-    """Characters that canonical composition can join onto the character before them.
-
-    They are the second half of some character's two-part canonical decomposition (that is
-    how Unicode's NFC_Quick_Check=Maybe set is built); a text holding one may change under
-    NFKC even though each of its characters alone does not.
-    """
-    # Hangul syllables compose algorithmically (no decomposition entry): vowel and final jamo.
-    found = {chr(cp) for cp in (*range(0x1161, 0x1176), *range(0x11A8, 0x11C3))}
-    for cp in range(0x80, 0x110000):
-        d = unicodedata.decomposition(chr(cp))
-        if d and not d.startswith("<"):
-            parts = d.split()
-            if len(parts) == 2:
-                found.add(chr(int(parts[1], 16)))
-    return frozenset(found)
+# Characters canonical composition can join onto the character before them are the second
+# halves of two-part canonical decompositions (how Unicode's NFC_Quick_Check=Maybe set is
+# built). All of them are combining marks (category M or a non-zero combining class), which
+# _Route already sends to the full pattern, except the Hangul vowel and final jamo, which
+# compose algorithmically; tests/test_tokenizer.py checks this against this Python's tables.
+HANGUL_COMPOSING = frozenset(chr(cp) for cp in (*range(0x1161, 0x1176), *range(0x11A8, 0x11C3)))
 
 
 @functools.cache
@@ -172,7 +161,7 @@ class _Route:
     def _facts(self, c: str) -> tuple[bool, bool, bool]:
         cp = ord(c)
         cat = unicodedata.category(c)
-        full = cat[0] == "M" or cat == "Cf" or bool(unicodedata.combining(c)) or c in _composes_second()
+        full = cat[0] == "M" or cat == "Cf" or bool(unicodedata.combining(c)) or c in HANGUL_COMPOSING
         cjk = self.split_cjk and any(lo <= cp <= hi for lo, hi in _CJK_RANGES)
         folded = c.casefold() if self.fold else c
         fold = (unicodedata.normalize("NFKC", c) == c and len(folded) == 1

@@ -103,3 +103,24 @@ def test_fast_paths_on_examples() -> None:
                  "İstanbul ﬁle ǈ", "\u1100\u1161\u11a8 한국어", "豈 compatibility 兀 ideographs",
                  "a\u2019b 東\u3099 x", "Ωmega ohm\u2126 K\u212a"]:
         assert TOK.split(text) == TOK.split_slow(text), text
+
+
+def test_every_composing_character_takes_the_full_pattern() -> None:
+    # Unicode's composition data (unicodedata, this Python's tables): every character that can
+    # be joined onto its neighbour is the second half of a two-part canonical decomposition.
+    # The tokenizer's fast routes rely on each such character being a combining mark or one of
+    # the Hangul jamo it lists; a newer Unicode that adds another kind must fail here.
+    from textsieve.registry.tokenizer import HANGUL_COMPOSING
+
+    seconds = set()
+    for cp in range(0x80, 0x110000):
+        d = unicodedata.decomposition(chr(cp))
+        if d and not d.startswith("<") and len(d.split()) == 2:
+            seconds.add(chr(int(d.split()[1], 16)))
+    assert seconds
+    for c in seconds:
+        assert unicodedata.category(c)[0] == "M" or unicodedata.combining(c) or c in HANGUL_COMPOSING, hex(ord(c))
+    # Hangul syllables compose algorithmically (no decomposition entry): L + V and LV + T.
+    assert unicodedata.normalize("NFC", "\u1100\u1161\u11a8") == "\uac01"
+    assert all(unicodedata.normalize("NFC", "\uac00" + t) != "\uac00" + t
+               for t in HANGUL_COMPOSING if t >= "\u11a8")
