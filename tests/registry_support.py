@@ -6,6 +6,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import shutil
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -60,6 +61,18 @@ def edit_manifest(bundle: Path, change: dict[str, object], *, rehash: bool = Tru
     path.write_text(json.dumps(data, indent=2))
 
 
+def card_variants(base: Path, root: Path, n: int) -> list[Path]:
+    """``n`` distinct bundles from one real bundle: same weights, each with its own model card."""
+    out = []
+    for i in range(n):
+        dst = root / f"variant-{i}"
+        shutil.copytree(base, dst)
+        (dst / "card.md").write_text(f"# variant {i}\n\nSame weights, another card.\n", encoding="utf-8")
+        edit_manifest(dst, {})
+        out.append(dst)
+    return out
+
+
 def write_jsonl(path: Path, rows: list[dict[str, str]]) -> Path:
     path.write_text("".join(json.dumps(r, ensure_ascii=False) + "\n" for r in rows), encoding="utf-8")
     return path
@@ -69,4 +82,4 @@ def read_jsonl(path: Path) -> list[dict[str, str]]:
     return [json.loads(line) for line in path.read_text(encoding="utf-8").splitlines() if line]
 
 
-__all__ = ["RegistrySpec", "edit_manifest", "postgres_url", "read_jsonl", "write_jsonl"]
+__all__ = ["RegistrySpec", "card_variants", "edit_manifest", "postgres_url", "read_jsonl", "write_jsonl"]

@@ -21,7 +21,7 @@ import time
 from collections import deque
 from pathlib import Path
 
-from registry_support import RegistrySpec, edit_manifest
+from registry_support import RegistrySpec, card_variants
 
 from textsieve.errors import NotFoundError
 
@@ -62,25 +62,11 @@ def _env() -> dict[str, str]:
     return {**os.environ, "PYTHONUNBUFFERED": "1"}
 
 
-def _variants(base: Path, root: Path, n: int) -> list[Path]:
-    """``n`` distinct bundles (they differ only in the model card) from one real bundle."""
-    import shutil
-
-    out = []
-    for i in range(n):
-        dst = root / f"v{i}"
-        shutil.copytree(base, dst)
-        (dst / "card.md").write_text(f"# variant {i}\n", encoding="utf-8")
-        edit_manifest(dst, {})
-        out.append(dst)
-    return out
-
-
 def test_concurrent_promotions_leave_one_live_version_and_a_consistent_history(
         spec: RegistrySpec, tiny_bundles: dict[str, Path], tmp_path: Path) -> None:
     workers = 4
     with spec.open() as reg:
-        for bundle in _variants(tiny_bundles["a"], tmp_path, workers):
+        for bundle in card_variants(tiny_bundles["a"], tmp_path, workers):
             reg.publish(bundle, "m")
     start = time.time() + 4.0  # every process imported and connected before the start
     rng = random.Random(7)

@@ -30,7 +30,6 @@ import os
 import random
 import secrets
 import select
-import shutil
 import signal
 import subprocess
 import sys
@@ -38,7 +37,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from registry_support import RegistrySpec, edit_manifest
+from registry_support import RegistrySpec, card_variants
 
 from textsieve.registry import Registry, VersionInfo
 from textsieve.registry.manifest import MANIFEST, Manifest
@@ -205,18 +204,6 @@ class ForkServer:
             self.proc.stdout.close()
 
 
-def _variants(base: Path, root: Path, n: int) -> list[Path]:
-    """``n`` distinct bundles from one real bundle (only their model cards differ)."""
-    out = []
-    for i in range(n):
-        dst = root / f"variant-{i}"
-        shutil.copytree(base, dst)
-        (dst / "card.md").write_text(f"# variant {i}\n\nSame weights, another card.\n", encoding="utf-8")
-        edit_manifest(dst, {})
-        out.append(dst)
-    return out
-
-
 # -- what a fresh handle must find --------------------------------------------------------------
 def _replay(reg: Registry) -> tuple[dict[int, str], dict[int, int | None]]:
     """Version states and remembered predecessors, derived from the audit trail alone."""
@@ -321,7 +308,7 @@ def _choose(rng: random.Random, versions: list[VersionInfo], bundles: list[Path]
 
 def test_kills_at_random_moments_leave_a_valid_registry_of_complete_versions(
         spec: RegistrySpec, tiny_bundles: dict[str, Path], tiny_data: Path, tmp_path: Path) -> None:
-    bundles = _variants(tiny_bundles["a"], tmp_path / "bundles", TRIALS + 3)
+    bundles = card_variants(tiny_bundles["a"], tmp_path / "bundles", TRIALS + 3)
     files = {p.name for p in tiny_bundles["a"].iterdir()} - {MANIFEST}
     evalset = tiny_data / "test.jsonl"
     rng = random.Random(6_2026)
