@@ -100,15 +100,15 @@ def load_served(bundle: Bundle, name: str, version: int, *, workers: int, batch_
     started = time.perf_counter()
     # The registry re-checked sha256 on fetch; open_bundle checks again, plus the graph's
     # inputs/outputs and the parity report, so the service never trusts a folder blindly.
-    checked = open_bundle(bundle.path)
-    if procs is not None:  # each worker process opens, loads and warms its own copy
+    if procs is not None:  # each worker process runs open_bundle, loads and warms its own copy
         key = procs.new_key(name, version)
-        procs.load(key, checked.path, batch_size)
+        procs.load(key, bundle.path, batch_size)
         return ServedModel(
-            name=name, version=version, labels=list(checked.manifest.labels), predictors=[],
+            name=name, version=version, labels=list(bundle.manifest.labels), predictors=[],
             loaded_at=dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat(),
             load_seconds=time.perf_counter() - started, manifest_sha256=manifest_sha256, worker_key=key,
         )
+    checked = open_bundle(bundle.path)
     first = Predictor.from_bundle(checked, threads=1, batch_size=batch_size)
     model_file = checked.path / checked.manifest.onnx.file
     predictors = [first]
