@@ -5,12 +5,12 @@ BIN := $(VENV)/bin
 PIP := $(BIN)/pip
 STAMP := $(VENV)/.installed-$(shell cat pyproject.toml constraints.txt | sha256sum | cut -c1-12)
 
-.PHONY: demo test venv services bench soak clean
+.PHONY: demo test check venv services bench soak clean
 
 $(STAMP): pyproject.toml constraints.txt
 	test -x $(BIN)/python || $(PY) -m venv $(VENV)
 	$(PIP) install --quiet --upgrade pip
-	$(PIP) install --quiet -c constraints.txt -e '.[serve,train,dev]'
+	$(PIP) install --quiet -c constraints.txt -e '.[serve,train,dev,check]'
 	rm -f $(VENV)/.installed-* && touch $@
 
 venv: $(STAMP)
@@ -21,6 +21,10 @@ demo: venv
 # System services the tests use (PostgreSQL, nginx, Chromium) come from Debian's packages.
 services:
 	bash scripts/test-services.sh
+
+# Format, lint, types and the layer contract (scripts/check); CI runs it before the tests.
+check: venv
+	BIN=$(BIN) bash scripts/check
 
 test: venv services
 	. ./.test-env 2>/dev/null; $(BIN)/python -m pytest
@@ -33,4 +37,4 @@ soak: venv
 	$(BIN)/python bench/soak.py
 
 clean:
-	rm -rf $(VENV) demo-run textsieve-registry .pytest_cache .test-env
+	rm -rf $(VENV) demo-run textsieve-registry .pytest_cache .mypy_cache .ruff_cache .import_linter_cache .test-env

@@ -14,8 +14,15 @@ import time
 from urllib.parse import urlsplit
 
 
-async def _client(host: str, port: int, requests: list[bytes], start: int, until: float,
-                  latencies: list[float], errors: dict[str, int]) -> None:
+async def _client(
+    host: str,
+    port: int,
+    requests: list[bytes],
+    start: int,
+    until: float,
+    latencies: list[float],
+    errors: dict[str, int],
+) -> None:
     try:
         reader, writer = await asyncio.open_connection(host, port)
     except OSError:
@@ -51,23 +58,37 @@ async def main(url: str, bodies_path: str, connections: int, seconds: float, out
     with open(bodies_path, "rb") as src:
         for line in src:
             body = line.rstrip(b"\n")
-            requests.append(b"POST /v1/predict HTTP/1.1\r\nHost: %s:%d\r\nContent-Type: application/json\r\n"
-                            b"Content-Length: %d\r\n\r\n%s" % (host.encode(), port, len(body), body))
+            requests.append(
+                b"POST /v1/predict HTTP/1.1\r\nHost: %s:%d\r\nContent-Type: application/json\r\n"
+                b"Content-Length: %d\r\n\r\n%s" % (host.encode(), port, len(body), body)
+            )
     latencies: list[float] = []
     errors = {"connect": 0, "read": 0, "write": 0, "status": 0, "timeout": 0}
     started = time.perf_counter()
     until = started + seconds
-    await asyncio.gather(*(_client(host, port, requests, k * 7919, until, latencies, errors)
-                           for k in range(connections)))
+    await asyncio.gather(
+        *(_client(host, port, requests, k * 7919, until, latencies, errors) for k in range(connections))
+    )
     duration = time.perf_counter() - started
     lat = sorted(latencies) or [0.0]
 
     def pct(p: float) -> int:
         return round(lat[min(len(lat) - 1, int(p / 100 * len(lat)))] * 1e6)
 
-    result = {"requests": len(latencies), "duration_us": round(duration * 1e6), "bytes": 0, "errors": errors,
-              "latency_us": {"mean": sum(lat) / len(lat) * 1e6, "p50": pct(50), "p90": pct(90), "p95": pct(95),
-                             "p99": pct(99), "max": round(lat[-1] * 1e6)}}
+    result = {
+        "requests": len(latencies),
+        "duration_us": round(duration * 1e6),
+        "bytes": 0,
+        "errors": errors,
+        "latency_us": {
+            "mean": sum(lat) / len(lat) * 1e6,
+            "p50": pct(50),
+            "p90": pct(90),
+            "p95": pct(95),
+            "p99": pct(99),
+            "max": round(lat[-1] * 1e6),
+        },
+    }
     with open(out_path, "w") as out:
         json.dump(result, out)
 

@@ -25,7 +25,11 @@ def draw(results: dict[str, Any], out: Path) -> None:
         ("runtime (in-process, sorted)", rt["sorted"]["texts_per_s"], "#2f5f8f"),
         ("runtime, padded to max_length", rt["fixed"]["texts_per_s"], "#9fb6cd"),
         ("runtime, graph only, padded to max_length", rt["graph_fixed"]["texts_per_s"], "#c5d5e4"),
-        *([("convolution-layout graph only", rt["conv_graph"]["texts_per_s"], "#b0a080")] if "conv_graph" in rt else []),
+        *(
+            [("convolution-layout graph only", rt["conv_graph"]["texts_per_s"], "#b0a080")]
+            if "conv_graph" in rt
+            else []
+        ),
         (f"service, {batch_label}", sv["batched"]["texts_per_s"], "#2e7d32"),
         (f"service, {batch_label}, spans 0", sv["batched_no_spans"]["texts_per_s"], "#81c784"),
         (f"service, {load['connections']} clients × 1 text", sv["single"]["texts_per_s"], "#a5d6a7"),
@@ -43,8 +47,12 @@ def draw(results: dict[str, Any], out: Path) -> None:
     left.tick_params(axis="y", labelsize=8)
     left.set_title("throughput")
 
-    groups = [("service\nbatched", sv["batched"]), ("torch_wrapper\nbatched", tw["batched"]),
-              ("service\n1 text", sv["single"]), ("torch_wrapper\n1 text", tw["single"])]
+    groups = [
+        ("service\nbatched", sv["batched"]),
+        ("torch_wrapper\nbatched", tw["batched"]),
+        ("service\n1 text", sv["single"]),
+        ("torch_wrapper\n1 text", tw["single"]),
+    ]
     width = 0.26
     for i, (pct, shade) in enumerate((("p50", 0.9), ("p95", 0.6), ("p99", 0.3))):
         xs = [g + (i - 1) * width for g in range(len(groups))]
@@ -66,8 +74,11 @@ def draw(results: dict[str, Any], out: Path) -> None:
 
     m = results["machine"]
     when = results["measured_at"][:16].replace("T", " ")
-    fig.suptitle(f"textsieve bench — {m['cpu']}, {m['cores']} cores — {when} UTC — other work kept "
-                 f"{results['background_cores_busy']:.2f} of {m['cores']} cores busy", fontsize=10)
+    fig.suptitle(
+        f"textsieve bench — {m['cpu']}, {m['cores']} cores — {when} UTC — other work kept "
+        f"{results['background_cores_busy']:.2f} of {m['cores']} cores busy",
+        fontsize=10,
+    )
     fig.tight_layout()
     tmp = out.with_name(out.name + ".tmp")
     fig.savefig(tmp, dpi=110, format="png")

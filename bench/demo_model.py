@@ -88,8 +88,7 @@ def ensure_model(log: object = print) -> DemoModel:
     shutil.rmtree(CACHE / "run", ignore_errors=True)
     shutil.rmtree(CACHE / "bundle", ignore_errors=True)
     paths = write_splits(CACHE / "data")  # the same invented data and seed as `textsieve demo`
-    run = train(TrainConfig(data=paths["train"], out=CACHE / "run", valid=paths["valid"], epochs=EPOCHS,
-                           quiet=True))
+    run = train(TrainConfig(data=paths["train"], out=CACHE / "run", valid=paths["valid"], epochs=EPOCHS, quiet=True))
     export(run, CACHE / "bundle", test=paths["test"], log=lambda m: None)
     say(f"  built in {time.perf_counter() - started:.0f} s")
     return _with_conv(DemoModel(CACHE / "run", CACHE / "bundle", "bench/.cache (built now)"), say)

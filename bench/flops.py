@@ -90,8 +90,14 @@ print(json.dumps({"gflops": 2 * n ** 3 / best / 1e9, "numpy": np.__version__, "b
 
 
 def _run(script: str, threads: int, n: int, repeats: int, env: dict[str, str]) -> dict[str, object]:
-    out = subprocess.run([sys.executable, "-c", script, str(threads), str(n), str(repeats)],
-                         check=True, capture_output=True, text=True, timeout=300, env=env)
+    out = subprocess.run(
+        [sys.executable, "-c", script, str(threads), str(n), str(repeats)],
+        check=True,
+        capture_output=True,
+        text=True,
+        timeout=300,
+        env=env,
+    )
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
@@ -105,8 +111,12 @@ def matmul_rate(threads: int = 2, n: int = 2048, repeats: int = 20) -> dict[str,
     except subprocess.CalledProcessError:  # a serving-only install has no torch
         pass
     source = max(found, key=lambda k: float(found[k]["gflops"]))  # type: ignore[arg-type]
-    return {"gflops": float(found[source]["gflops"]), "threads": threads, "source": source,  # type: ignore[arg-type]
-            "measured": found}
+    return {
+        "gflops": float(found[source]["gflops"]),
+        "threads": threads,
+        "source": source,  # type: ignore[arg-type]
+        "measured": found,
+    }
 
 
 if __name__ == "__main__":

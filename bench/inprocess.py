@@ -76,36 +76,41 @@ def sorted_pipeline(p: Predictor, texts: list[str]) -> Callable[[], int]:
     thread is not kept waiting between its graph calls; measured a little faster than encoding
     everything first, and it is what a server's batcher does with the texts it has collected.
     """
+
     def run() -> int:
         for lo in range(0, len(texts), CHUNK):
-            p.run([p.encode(t) for t in texts[lo:lo + CHUNK]])
+            p.run([p.encode(t) for t in texts[lo : lo + CHUNK]])
         return len(texts)
+
     return run
 
 
 def fixed_pipeline(p: Predictor, texts: list[str]) -> Callable[[], int]:
     """The same chunks, batches in arrival order each padded to the model's max_length."""
+
     def run() -> int:
         for lo in range(0, len(texts), CHUNK):
-            encoded = [p.encode(t) for t in texts[lo:lo + CHUNK]]
+            encoded = [p.encode(t) for t in texts[lo : lo + CHUNK]]
             for b in range(0, len(encoded), BATCH):
-                p.run_arrays(*p.pad(encoded[b:b + BATCH], width=p.max_length))
+                p.run_arrays(*p.pad(encoded[b : b + BATCH], width=p.max_length))
         return len(texts)
+
     return run
 
 
 def graph_only(p: Predictor, texts: list[str], *, fixed: bool = False) -> Callable[[], int]:
     encoded: list[Encoded] = [p.encode(t) for t in texts]
     if fixed:
-        batches = [p.pad(encoded[lo:lo + BATCH], width=p.max_length) for lo in range(0, len(encoded), BATCH)]
+        batches = [p.pad(encoded[lo : lo + BATCH], width=p.max_length) for lo in range(0, len(encoded), BATCH)]
     else:
         order = np.argsort([len(e.ids) for e in encoded], kind="stable")
-        batches = [p.pad([encoded[i] for i in order[lo:lo + BATCH]]) for lo in range(0, len(order), BATCH)]
+        batches = [p.pad([encoded[i] for i in order[lo : lo + BATCH]]) for lo in range(0, len(order), BATCH)]
 
     def run() -> int:
         for ids, lengths in batches:
             p.run_arrays(ids, lengths)
         return len(texts)
+
     return run
 
 
@@ -116,14 +121,21 @@ class InProcess:
         self.predictors = load(bundle, sessions)
         parts = _halves(texts, sessions)
         makers: dict[str, Callable[[Predictor, list[str]], Callable[[], int]]] = {
-            "sorted": sorted_pipeline, "fixed": fixed_pipeline, "graph": graph_only,
-            "graph_fixed": lambda p, t: graph_only(p, t, fixed=True)}
-        self.work = {name: [make(p, part) for p, part in zip(self.predictors, parts, strict=True)]
-                     for name, make in makers.items()}
+            "sorted": sorted_pipeline,
+            "fixed": fixed_pipeline,
+            "graph": graph_only,
+            "graph_fixed": lambda p, t: graph_only(p, t, fixed=True),
+        }
+        self.work = {
+            name: [make(p, part) for p, part in zip(self.predictors, parts, strict=True)]
+            for name, make in makers.items()
+        }
         if conv_bundle is not None:
             conv = load(conv_bundle, sessions)
             self.work["conv_graph"] = [graph_only(p, part) for p, part in zip(conv, parts, strict=True)]
-            self.work["conv_graph_fixed"] = [graph_only(p, part, fixed=True) for p, part in zip(conv, parts, strict=True)]
+            self.work["conv_graph_fixed"] = [
+                graph_only(p, part, fixed=True) for p, part in zip(conv, parts, strict=True)
+            ]
         for work in self.work.values():
             for w in work:
                 w()  # warm: the first runs of a new shape allocate

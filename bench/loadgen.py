@@ -45,7 +45,9 @@ done = function(summary, latency, requests)
   local e = summary.errors
   local out = io.open(os.getenv("TEXTSIEVE_WRK_RESULT"), "w")
   out:write(string.format(
-    '{"requests": %d, "duration_us": %d, "bytes": %d, "errors": {"connect": %d, "read": %d, "write": %d, "status": %d, "timeout": %d}, "latency_us": {"mean": %.1f, "p50": %d, "p90": %d, "p95": %d, "p99": %d, "max": %d}}',
+    '{"requests": %d, "duration_us": %d, "bytes": %d, "errors": {"connect": %d, "read": %d, ' ..
+    '"write": %d, "status": %d, "timeout": %d}, "latency_us": {"mean": %.1f, "p50": %d, "p90": %d, ' ..
+    '"p95": %d, "p99": %d, "max": %d}}',
     summary.requests, summary.duration, summary.bytes, e.connect, e.read, e.write, e.status, e.timeout,
     latency.mean, latency:percentile(50), latency:percentile(90), latency:percentile(95),
     latency:percentile(99), latency.max))
@@ -80,8 +82,11 @@ def ensure_wrk(log: object = print) -> str | None:
         return None
     say("installing wrk from Debian's packages (apt-get install -y wrk) …")
     env = {**os.environ, "DEBIAN_FRONTEND": "noninteractive"}
-    for cmd in (["apt-get", "install", "-y", "-qq", "wrk"], ["apt-get", "update", "-qq"],
-                ["apt-get", "install", "-y", "-qq", "wrk"]):
+    for cmd in (
+        ["apt-get", "install", "-y", "-qq", "wrk"],
+        ["apt-get", "update", "-qq"],
+        ["apt-get", "install", "-y", "-qq", "wrk"],
+    ):
         subprocess.run(cmd, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, timeout=300, check=False)
         if shutil.which("wrk"):
             return shutil.which("wrk")
@@ -114,15 +119,38 @@ def run_load(url: str, bodies: list[bytes], *, connections: int, seconds: float,
         if wrk is not None:
             script = Path(tmp) / "cycle.lua"
             script.write_text(_LUA)
-            cmd = [wrk, "-t1", f"-c{connections}", f"-d{max(1, round(seconds))}s", "--timeout", "30s",
-                   "-s", str(script), url, "--", str(body_file), "0"]
+            cmd = [
+                wrk,
+                "-t1",
+                f"-c{connections}",
+                f"-d{max(1, round(seconds))}s",
+                "--timeout",
+                "30s",
+                "-s",
+                str(script),
+                url,
+                "--",
+                str(body_file),
+                "0",
+            ]
             tool = "wrk"
         else:
-            cmd = [sys.executable, str(Path(__file__).with_name("aioload.py")), url, str(body_file),
-                   str(connections), str(seconds), str(result_file)]
+            cmd = [
+                sys.executable,
+                str(Path(__file__).with_name("aioload.py")),
+                url,
+                str(body_file),
+                str(connections),
+                str(seconds),
+                str(result_file),
+            ]
             tool = "asyncio"
-        proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                                env={**os.environ, "TEXTSIEVE_WRK_RESULT": str(result_file)})
+        proc = subprocess.Popen(
+            cmd,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+            env={**os.environ, "TEXTSIEVE_WRK_RESULT": str(result_file)},
+        )
         cpu = _wait_rusage(proc, seconds + 120)
         out = proc.stdout.read().decode() if proc.stdout else ""
         err = proc.stderr.read().decode() if proc.stderr else ""

@@ -58,8 +58,9 @@ def main() -> int:
     parser.add_argument("--load", choices=["batched", "single"], default="batched")
     parser.add_argument("--seconds", type=float, default=12.0)
     parser.add_argument("--spans", type=int, default=SPANS)
-    parser.add_argument("--gil", action="store_true",
-                        help="sample only the thread holding the GIL: where the serial Python time goes")
+    parser.add_argument(
+        "--gil", action="store_true", help="sample only the thread holding the GIL: where the serial Python time goes"
+    )
     parser.add_argument("--env", action="append", default=[], help="KEY=VALUE for the server's environment")
     parser.add_argument("--serve", nargs="*", default=[], help="extra arguments for `textsieve serve`")
     args = parser.parse_args()
@@ -73,8 +74,15 @@ def main() -> int:
     env = dict(kv.split("=", 1) for kv in args.env)
     if args.target == "service":
         registry = demo_model.live_registry(model, work / "profile-registry")
-        cmd = [str(Path(sys.executable).with_name("textsieve")), "serve", "--registry", str(registry),
-               "--port", str(port), *args.serve]
+        cmd = [
+            str(Path(sys.executable).with_name("textsieve")),
+            "serve",
+            "--registry",
+            str(registry),
+            "--port",
+            str(port),
+            *args.serve,
+        ]
         server = servers.start("service", cmd, "/readyz", port, work / "profile-service.log", env=env)
     else:
         cmd = [sys.executable, str(HERE / "torch_wrapper.py"), "--run", str(model.run), "--port", str(port)]
@@ -84,14 +92,38 @@ def main() -> int:
     try:
         loadgen.run_load(server.url + "/v1/predict", body_list, connections=32, seconds=2, wrk=wrk)
         result: dict[str, loadgen.LoadResult] = {}
-        thread = threading.Thread(target=lambda: result.update(r=loadgen.run_load(
-            server.url + "/v1/predict", body_list, connections=32, seconds=args.seconds + 3, wrk=wrk)))
+        thread = threading.Thread(
+            target=lambda: result.update(
+                r=loadgen.run_load(
+                    server.url + "/v1/predict", body_list, connections=32, seconds=args.seconds + 3, wrk=wrk
+                )
+            )
+        )
         cpu0 = server.cpu_seconds()
         thread.start()
-        subprocess.run([pyspy, "record", "--pid", str(server.proc.pid), "--duration", str(int(args.seconds)),
-                        "--rate", "200", "--threads", "--subprocesses", "--format", "raw", "--output", str(raw), "--nonblocking",
-                        *(["--gil"] if args.gil else [])],
-                       check=True, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        subprocess.run(
+            [
+                pyspy,
+                "record",
+                "--pid",
+                str(server.proc.pid),
+                "--duration",
+                str(int(args.seconds)),
+                "--rate",
+                "200",
+                "--threads",
+                "--subprocesses",
+                "--format",
+                "raw",
+                "--output",
+                str(raw),
+                "--nonblocking",
+                *(["--gil"] if args.gil else []),
+            ],
+            check=True,
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+        )
         thread.join()
         cpu = server.cpu_seconds() - cpu0
     finally:
@@ -99,8 +131,10 @@ def main() -> int:
     r = result["r"]
     per = TEXTS_PER_REQUEST if args.load == "batched" else 1
     texts_done = r.requests * per
-    print(f"{args.target} {args.load}: {texts_done / r.seconds:.0f} texts/s, p99 {r.latency_ms['p99']:.1f} ms, "
-          f"server CPU {1000 * cpu / texts_done:.3f} s per 1k texts\n")
+    print(
+        f"{args.target} {args.load}: {texts_done / r.seconds:.0f} texts/s, p99 {r.latency_ms['p99']:.1f} ms, "
+        f"server CPU {1000 * cpu / texts_done:.3f} s per 1k texts\n"
+    )
     print(summarize(raw))
     return 0
 

@@ -71,18 +71,25 @@ def machine() -> dict[str, Any]:
                 break
     except (OSError, subprocess.CalledProcessError):
         pass
-    return {"cpu": model, "cores": len(os.sched_getaffinity(0)), "python": platform.python_version(),
-            "kernel": platform.release()}
+    return {
+        "cpu": model,
+        "cores": len(os.sched_getaffinity(0)),
+        "python": platform.python_version(),
+        "kernel": platform.release(),
+    }
 
 
 def code_version() -> dict[str, Any]:
     """The commit measured, and whether the serving code had uncommitted changes."""
+
     def git(*args: str) -> str:
         try:
-            return subprocess.run(["git", *args], cwd=HERE.parent, capture_output=True, text=True,
-                                  check=True).stdout.strip()
+            return subprocess.run(
+                ["git", *args], cwd=HERE.parent, capture_output=True, text=True, check=True
+            ).stdout.strip()
         except (OSError, subprocess.CalledProcessError):
             return ""
+
     dirty = git("status", "--porcelain", "--", "service", "registry", "textsieve")
     return {"commit": git("rev-parse", "--short", "HEAD") or None, "serving_code_uncommitted_changes": bool(dirty)}
 
@@ -129,12 +136,15 @@ def _busy_jiffies() -> int:
 
 # -- requests and one HTTP window -----------------------------------------------------------
 def bodies(texts: list[str], per_request: int, spans: int) -> list[bytes]:
-    return [json.dumps({"texts": texts[i:i + per_request], "spans": spans}, ensure_ascii=False).encode()
-            for i in range(0, len(texts) - per_request + 1, per_request)]
+    return [
+        json.dumps({"texts": texts[i : i + per_request], "spans": spans}, ensure_ascii=False).encode()
+        for i in range(0, len(texts) - per_request + 1, per_request)
+    ]
 
 
-def measure_http(server: servers.Server, body_list: list[bytes], per_request: int, *, seconds: float,
-                 wrk: str | None) -> dict[str, Any]:
+def measure_http(
+    server: servers.Server, body_list: list[bytes], per_request: int, *, seconds: float, wrk: str | None
+) -> dict[str, Any]:
     """One load window: texts/s, latency, the server's own CPU per 1,000 texts."""
     cpu0, busy0 = server.cpu_seconds(), _busy_jiffies()
     res = loadgen.run_load(server.url + "/v1/predict", body_list, connections=CONNECTIONS, seconds=seconds, wrk=wrk)
@@ -145,8 +155,11 @@ def measure_http(server: servers.Server, body_list: list[bytes], per_request: in
     server_cpu = cpu1 - cpu0
     all_cpu = (busy1 - busy0) / os.sysconf("SC_CLK_TCK")
     return {
-        "texts_per_s": texts / res.seconds, "requests_per_s": res.requests_per_second, "requests": res.requests,
-        "seconds": res.seconds, "latency_ms": res.latency_ms,
+        "texts_per_s": texts / res.seconds,
+        "requests_per_s": res.requests_per_second,
+        "requests": res.requests,
+        "seconds": res.seconds,
+        "latency_ms": res.latency_ms,
         "server_cpu_s_per_1k_texts": 1000 * server_cpu / texts if texts else float("nan"),
         "server_cores_busy": server_cpu / res.seconds,
         "loadgen_cpu_s_per_1k_texts": 1000 * res.client_cpu_seconds / texts if texts else float("nan"),
@@ -181,8 +194,16 @@ def start_service(model: demo_model.DemoModel, work: Path) -> servers.Server:
 
 def start_torch_wrapper(model: demo_model.DemoModel, work: Path, temperature: float) -> servers.Server:
     port = servers.free_port()
-    cmd = [sys.executable, str(HERE / "torch_wrapper.py"), "--run", str(model.run), "--port", str(port),
-           "--temperature", repr(temperature)]
+    cmd = [
+        sys.executable,
+        str(HERE / "torch_wrapper.py"),
+        "--run",
+        str(model.run),
+        "--port",
+        str(port),
+        "--temperature",
+        repr(temperature),
+    ]
     return servers.start("torch_wrapper", cmd, "/healthz", port, work / "torch_wrapper.log")
 
 
@@ -196,13 +217,18 @@ def check_and_warm(server: servers.Server, body_list: list[bytes], wrk: str | No
 # -- the figures ----------------------------------------------------------------------------
 def bench_flops(model: demo_model.DemoModel, lengths: list[int], min_length: int) -> dict[str, Any]:
     arch = json.loads((model.bundle / "manifest.json").read_text())["architecture"]
-    per_text = flops.mean_conv_flops(lengths, dim=arch["embedding_dim"], maps=arch["maps"], widths=arch["widths"],
-                                     min_length=min_length)
+    per_text = flops.mean_conv_flops(
+        lengths, dim=arch["embedding_dim"], maps=arch["maps"], widths=arch["widths"], min_length=min_length
+    )
     say("flop_limit: 2-thread float32 matmul rate (NumPy/OpenBLAS and torch, the faster) …")
     rate = flops.matmul_rate(threads=2)
     gflops = float(rate["gflops"])  # type: ignore[arg-type]
-    return {"mflop_per_text": per_text / 1e6, "matmul_gflops_2_threads": gflops, "matmul": rate,
-            "texts_per_s": gflops * 1e9 / per_text}
+    return {
+        "mflop_per_text": per_text / 1e6,
+        "matmul_gflops_2_threads": gflops,
+        "matmul": rate,
+        "texts_per_s": gflops * 1e9 / per_text,
+    }
 
 
 def summarize(rt: dict[str, Any], fl: dict[str, Any], sv: dict[str, Any], tw: dict[str, Any]) -> dict[str, float]:
@@ -226,8 +252,9 @@ def summarize(rt: dict[str, Any], fl: dict[str, Any], sv: dict[str, Any], tw: di
         "service_vs_torch_wrapper_single": sv["single"]["texts_per_s"] / tw["single"]["texts_per_s"],
         # CPU-normalised: texts per CPU-second, less sensitive to other work on the machine.
         "service_vs_runtime_per_cpu": rt["sorted"]["cpu_s_per_1k_texts"] / sv["batched"]["server_cpu_s_per_1k_texts"],
-        "service_vs_torch_wrapper_per_cpu": (tw["batched"]["server_cpu_s_per_1k_texts"]
-                                             / sv["batched"]["server_cpu_s_per_1k_texts"]),
+        "service_vs_torch_wrapper_per_cpu": (
+            tw["batched"]["server_cpu_s_per_1k_texts"] / sv["batched"]["server_cpu_s_per_1k_texts"]
+        ),
     }
 
 
@@ -235,23 +262,55 @@ def table(rt: dict[str, Any], fl: dict[str, Any], sv: dict[str, Any], tw: dict[s
     ml = rt["max_length"]
     rows: list[tuple[str, str, float, dict[str, float] | None, float | None]] = [
         ("flop_limit", "conv FLOPs ÷ 2-thread matmul rate", fl["texts_per_s"], None, None),
-        ("runtime", "in-process, sorted batches, tokenizing incl.", rt["sorted"]["texts_per_s"], None,
-         rt["sorted"]["cpu_s_per_1k_texts"]),
-        ("runtime", f"same, arrival order padded to {ml}", rt["fixed"]["texts_per_s"], None,
-         rt["fixed"]["cpu_s_per_1k_texts"]),
-        ("runtime graph only", "session.run, sorted batches", rt["graph"]["texts_per_s"], None,
-         rt["graph"]["cpu_s_per_1k_texts"]),
-        ("runtime graph only", f"session.run, padded to {ml}", rt["graph_fixed"]["texts_per_s"], None,
-         rt["graph_fixed"]["cpu_s_per_1k_texts"]),
-        ("conv layout graph", "session.run, sorted batches", rt["conv_graph"]["texts_per_s"], None,
-         rt["conv_graph"]["cpu_s_per_1k_texts"]),
-        ("conv layout graph", f"session.run, padded to {ml}", rt["conv_graph_fixed"]["texts_per_s"], None,
-         rt["conv_graph_fixed"]["cpu_s_per_1k_texts"]),
+        (
+            "runtime",
+            "in-process, sorted batches, tokenizing incl.",
+            rt["sorted"]["texts_per_s"],
+            None,
+            rt["sorted"]["cpu_s_per_1k_texts"],
+        ),
+        (
+            "runtime",
+            f"same, arrival order padded to {ml}",
+            rt["fixed"]["texts_per_s"],
+            None,
+            rt["fixed"]["cpu_s_per_1k_texts"],
+        ),
+        (
+            "runtime graph only",
+            "session.run, sorted batches",
+            rt["graph"]["texts_per_s"],
+            None,
+            rt["graph"]["cpu_s_per_1k_texts"],
+        ),
+        (
+            "runtime graph only",
+            f"session.run, padded to {ml}",
+            rt["graph_fixed"]["texts_per_s"],
+            None,
+            rt["graph_fixed"]["cpu_s_per_1k_texts"],
+        ),
+        (
+            "conv layout graph",
+            "session.run, sorted batches",
+            rt["conv_graph"]["texts_per_s"],
+            None,
+            rt["conv_graph"]["cpu_s_per_1k_texts"],
+        ),
+        (
+            "conv layout graph",
+            f"session.run, padded to {ml}",
+            rt["conv_graph_fixed"]["texts_per_s"],
+            None,
+            rt["conv_graph_fixed"]["cpu_s_per_1k_texts"],
+        ),
     ]
     for who, res in (("service", sv), ("torch_wrapper", tw)):
-        for load, label in (("batched", f"{CONNECTIONS} clients × {TEXTS_PER_REQUEST} texts, spans {SPANS}"),
-                            ("batched_no_spans", f"{CONNECTIONS} clients × {TEXTS_PER_REQUEST} texts, spans 0"),
-                            ("single", f"{CONNECTIONS} clients × 1 text, spans {SPANS}")):
+        for load, label in (
+            ("batched", f"{CONNECTIONS} clients × {TEXTS_PER_REQUEST} texts, spans {SPANS}"),
+            ("batched_no_spans", f"{CONNECTIONS} clients × {TEXTS_PER_REQUEST} texts, spans 0"),
+            ("single", f"{CONNECTIONS} clients × 1 text, spans {SPANS}"),
+        ):
             if load in res:
                 w = res[load]
                 rows.append((who, label, w["texts_per_s"], w["latency_ms"], w["server_cpu_s_per_1k_texts"]))
@@ -296,9 +355,13 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     parser.add_argument("--rounds", type=int, default=3, help="interleaved rounds (odd: the median is one of them)")
     parser.add_argument("--texts", type=int, default=4096)
     parser.add_argument("--quick", action="store_true", help="short windows, one round: for trying the script")
-    parser.add_argument("--nice", type=int, default=-10,
-                        help="scheduling priority for this run and the processes it starts, when allowed "
-                             "(default -10; 0 leaves it alone)")
+    parser.add_argument(
+        "--nice",
+        type=int,
+        default=-10,
+        help="scheduling priority for this run and the processes it starts, when allowed "
+        "(default -10; 0 leaves it alone)",
+    )
     args = parser.parse_args(argv)
     if args.quick:
         args.seconds, args.inprocess_seconds, args.rounds = 3.0, 1.0, 1
@@ -341,8 +404,10 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
         rt_windows: dict[str, list[dict[str, Any]]] = {v: [] for v in VARIANTS}
         http_windows: dict[tuple[str, str], list[dict[str, Any]]] = {k: [] for k in http_loads}
         for r in range(args.rounds):
-            say(f"round {r + 1}/{args.rounds}: runtime ({2 * len(VARIANTS)} × {args.inprocess_seconds:g} s), "
-                f"HTTP ({len(http_loads)} × {args.seconds:g} s) …")
+            say(
+                f"round {r + 1}/{args.rounds}: runtime ({2 * len(VARIANTS)} × {args.inprocess_seconds:g} s), "
+                f"HTTP ({len(http_loads)} × {args.seconds:g} s) …"
+            )
             for _ in range(2):  # in-process windows are short: two of each per round
                 for v in VARIANTS:
                     rt_windows[v].append(runtime.window(v, args.inprocess_seconds))
@@ -359,24 +424,32 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
                 started_server.stop()
 
     # A round's in-process figure is the better of its two back-to-back windows.
-    rt_rounds = {v: [max(w[2 * r:2 * r + 2], key=lambda x: x["texts_per_s"]) for r in range(args.rounds)]
-                 for v, w in rt_windows.items()}
+    rt_rounds = {
+        v: [max(w[2 * r : 2 * r + 2], key=lambda x: x["texts_per_s"]) for r in range(args.rounds)]
+        for v, w in rt_windows.items()
+    }
     rt: dict[str, Any] = {v: typical(w) for v, w in rt_rounds.items()}
     rt.update(max_length=p.max_length, min_length=p.min_length)
     # Each ratio is taken within a round (both sides measured within a minute of each other),
     # then the median over rounds: one lucky or unlucky window cannot swing it.
-    per_round = [summarize({v: rt_rounds[v][r] for v in VARIANTS}, fl,
-                           {load: w[r] for (who, load), w in http_windows.items() if who == "service"},
-                           {load: w[r] for (who, load), w in http_windows.items() if who == "torch_wrapper"})
-                 for r in range(args.rounds)]
+    per_round = [
+        summarize(
+            {v: rt_rounds[v][r] for v in VARIANTS},
+            fl,
+            {load: w[r] for (who, load), w in http_windows.items() if who == "service"},
+            {load: w[r] for (who, load), w in http_windows.items() if who == "torch_wrapper"},
+        )
+        for r in range(args.rounds)
+    ]
     figures = {k: median([f[k] for f in per_round]) for k in per_round[0]}
     every = [w for windows in http_windows.values() for w in windows]
     results: dict[str, Any] = {
         **{k: round(v, 4) for k, v in figures.items()},
         "per_round": [{k: round(v, 4) for k, v in f.items()} for f in per_round],
-        "targets": {k: {"bound": f"{op} {bound}",
-                        "met": bool(figures[k] >= bound if op == ">=" else figures[k] <= bound)}
-                    for k, (op, bound) in TARGETS.items()},
+        "targets": {
+            k: {"bound": f"{op} {bound}", "met": bool(figures[k] >= bound if op == ">=" else figures[k] <= bound)}
+            for k, (op, bound) in TARGETS.items()
+        },
         "measured_at": dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat(),
         "machine": machine(),
         "code": code_version(),
@@ -385,16 +458,30 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
         "load_average_before": [round(x, 2) for x in load_before],
         "load_average_after": [round(x, 2) for x in os.getloadavg()],
         "background_cores_busy": round(sum(w["other_cores_busy"] for w in every) / len(every), 3),
-        "model": {"source": model.source, "widths": manifest["architecture"]["widths"],
-                  "maps": manifest["architecture"]["maps"],
-                  "embedding_dim": manifest["architecture"]["embedding_dim"],
-                  "labels": len(manifest["labels"]), "max_length": p.max_length, "min_length": p.min_length},
-        "texts": {"count": len(texts), "tokens": "5-60, equal counts per 5-token band",
-                  "mean_tokens_after_truncation": round(sum(lengths) / len(lengths), 2),
-                  "truncated_share": round(sum(n > p.max_length for n in token_counts) / len(texts), 4)},
-        "load": {"connections": CONNECTIONS, "texts_per_request": TEXTS_PER_REQUEST, "spans": SPANS,
-                 "window_seconds": args.seconds, "inprocess_window_seconds": args.inprocess_seconds,
-                 "rounds": args.rounds, "generator": sv["batched"]["loadgen"]},
+        "model": {
+            "source": model.source,
+            "widths": manifest["architecture"]["widths"],
+            "maps": manifest["architecture"]["maps"],
+            "embedding_dim": manifest["architecture"]["embedding_dim"],
+            "labels": len(manifest["labels"]),
+            "max_length": p.max_length,
+            "min_length": p.min_length,
+        },
+        "texts": {
+            "count": len(texts),
+            "tokens": "5-60, equal counts per 5-token band",
+            "mean_tokens_after_truncation": round(sum(lengths) / len(lengths), 2),
+            "truncated_share": round(sum(n > p.max_length for n in token_counts) / len(texts), 4),
+        },
+        "load": {
+            "connections": CONNECTIONS,
+            "texts_per_request": TEXTS_PER_REQUEST,
+            "spans": SPANS,
+            "window_seconds": args.seconds,
+            "inprocess_window_seconds": args.inprocess_seconds,
+            "rounds": args.rounds,
+            "generator": sv["batched"]["loadgen"],
+        },
         "runtime": rt,
         "flop_limit": fl,
         "service": sv,
@@ -413,18 +500,29 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
     for name, (op, bound) in TARGETS.items():
         met = results["targets"][name]["met"]
         print(f"{name:<32}{figures[name]:>8.3f}   target {op} {bound:<5} {'met' if met else 'NOT met'}")
-    for name in ("bucketing_speedup_end_to_end", "bucketing_speedup_per_cpu", "bucketing_speedup_conv_layout",
-                "graph_vs_flop_limit", "conv_graph_vs_flop_limit", "tap_tables_vs_conv_graph",
-                "service_vs_runtime_per_cpu",
-                "service_vs_torch_wrapper_per_cpu", "service_vs_torch_wrapper_single"):
+    for name in (
+        "bucketing_speedup_end_to_end",
+        "bucketing_speedup_per_cpu",
+        "bucketing_speedup_conv_layout",
+        "graph_vs_flop_limit",
+        "conv_graph_vs_flop_limit",
+        "tap_tables_vs_conv_graph",
+        "service_vs_runtime_per_cpu",
+        "service_vs_torch_wrapper_per_cpu",
+        "service_vs_torch_wrapper_single",
+    ):
         print(f"{name:<32}{figures[name]:>8.3f}")
     print(f"{'p99_ms_single_text_32_clients':<32}{figures['p99_ms_single_text_32_clients']:>8.1f}")
     print(f"\nserver peak RSS: service {sv['peak_rss_mb']:.0f} MB, torch_wrapper {tw['peak_rss_mb']:.0f} MB")
-    print(f"noise: load average {results['load_average_before'][0]} before, {results['load_average_after'][0]} after; "
-          f"other processes kept {results['background_cores_busy']:.2f} of {results['machine']['cores']} cores "
-          "busy during the HTTP windows (this script included)")
-    print(f"wrote {RESULTS.relative_to(HERE.parent)} and {CHART.relative_to(HERE.parent)} "
-          f"in {results['bench_seconds']:.0f} s")
+    print(
+        f"noise: load average {results['load_average_before'][0]} before, {results['load_average_after'][0]} after; "
+        f"other processes kept {results['background_cores_busy']:.2f} of {results['machine']['cores']} cores "
+        "busy during the HTTP windows (this script included)"
+    )
+    print(
+        f"wrote {RESULTS.relative_to(HERE.parent)} and {CHART.relative_to(HERE.parent)} "
+        f"in {results['bench_seconds']:.0f} s"
+    )
     return 0
 
 

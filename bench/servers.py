@@ -87,8 +87,16 @@ class Server:
                 self.proc.wait(5)
 
 
-def start(name: str, cmd: list[str], ready_path: str, port: int, log: Path, *, env: dict[str, str] | None = None,
-          timeout: float = 180.0) -> Server:
+def start(
+    name: str,
+    cmd: list[str],
+    ready_path: str,
+    port: int,
+    log: Path,
+    *,
+    env: dict[str, str] | None = None,
+    timeout: float = 180.0,
+) -> Server:
     log.parent.mkdir(parents=True, exist_ok=True)
     fh = open(log, "wb")  # a file, not a pipe: a full pipe would stall a chatty server
     # Same session as the caller: it shares the caller's scheduling autogroup (see run.raise_priority).
@@ -98,8 +106,10 @@ def start(name: str, cmd: list[str], ready_path: str, port: int, log: Path, *, e
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
         if proc.poll() is not None:
-            raise RuntimeError(f"{name} exited with {proc.returncode} while starting; see {log}:\n"
-                               + log.read_text(errors="replace")[-2000:])
+            raise RuntimeError(
+                f"{name} exited with {proc.returncode} while starting; see {log}:\n"
+                + log.read_text(errors="replace")[-2000:]
+            )
         try:
             with urllib.request.urlopen(server.url + ready_path, timeout=2) as reply:
                 if reply.status == 200:

@@ -48,15 +48,20 @@ from typing import Any
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
-import demo_model
-from servers import free_port, process_tree
-from texts import bench_texts
+import demo_model  # noqa: E402  (bench/ is a folder of scripts: its path is added just above)
+from servers import free_port, process_tree  # noqa: E402
+from texts import bench_texts  # noqa: E402
 
 MODEL = demo_model.MODEL_NAME
 WINDOW = 30.0  # seconds of memory samples (one every 5 s) summarised at each end
 MIX = [("predict", 62), ("pinned", 5), ("bad", 5), ("view", 14), ("probe", 14)]
-BAD_BODIES = [b'{"texts": []}', b'{"texts": ["a"], "span": 2}', b'{"texts": [""]}', b'{"texts": ["a"',
-              b'{"texts": ["a"], "version": 99}']
+BAD_BODIES = [
+    b'{"texts": []}',
+    b'{"texts": ["a"], "span": 2}',
+    b'{"texts": [""]}',
+    b'{"texts": ["a"',
+    b'{"texts": ["a"], "version": 99}',
+]
 
 
 @dataclass
@@ -74,8 +79,9 @@ class Tally:
 def _variant(bundle: Path, dst: Path, n: int) -> Path:
     """A copy of ``bundle`` that differs only in its model card, so it publishes as a new version."""
     shutil.copytree(bundle, dst)
-    (dst / "card.md").write_text((bundle / "card.md").read_text(encoding="utf-8") + f"\n\nSoak copy {n}.\n",
-                                 encoding="utf-8")
+    (dst / "card.md").write_text(
+        (bundle / "card.md").read_text(encoding="utf-8") + f"\n\nSoak copy {n}.\n", encoding="utf-8"
+    )
     manifest = json.loads((dst / "manifest.json").read_text(encoding="utf-8"))
     manifest["files"] = {name: hashlib.sha256((dst / name).read_bytes()).hexdigest() for name in manifest["files"]}
     (dst / "manifest.json").write_text(json.dumps(manifest, indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
@@ -123,12 +129,19 @@ async def _client(http: Any, rng: random.Random, pool: list[str], until: float, 
                 ok = r.status_code == 200 and len(r.json()["results"]) == len(texts)
                 tally.texts += len(texts) if ok else 0
             elif kind == "bad":
-                r = await http.post("/v1/predict", content=rng.choice(BAD_BODIES),
-                                    headers={"content-type": "application/json"})
+                r = await http.post(
+                    "/v1/predict", content=rng.choice(BAD_BODIES), headers={"content-type": "application/json"}
+                )
                 ok = 400 <= r.status_code < 500 and r.headers.get("content-type") == "application/problem+json"
             elif kind == "view":
-                path = rng.choice(["/v1/models", f"/v1/models/{MODEL}", f"/v1/models/{MODEL}/versions",
-                                   f"/v1/models/{MODEL}/versions/{rng.randint(1, 3)}"])
+                path = rng.choice(
+                    [
+                        "/v1/models",
+                        f"/v1/models/{MODEL}",
+                        f"/v1/models/{MODEL}/versions",
+                        f"/v1/models/{MODEL}/versions/{rng.randint(1, 3)}",
+                    ]
+                )
                 r = await http.get(path)
                 ok = r.status_code == 200
             else:
@@ -144,11 +157,17 @@ async def _swapper(http: Any, token: str, every: float, until: float, tally: Tal
     while time.monotonic() + every < until:
         await asyncio.sleep(every)
         if promote:
-            r = await http.post(f"/v1/models/{MODEL}/versions/2/promote", headers={"Authorization": f"Bearer {token}"},
-                                json={"to": "live", "reason": "soak swap", "force": True})
+            r = await http.post(
+                f"/v1/models/{MODEL}/versions/2/promote",
+                headers={"Authorization": f"Bearer {token}"},
+                json={"to": "live", "reason": "soak swap", "force": True},
+            )
         else:
-            r = await http.post(f"/v1/models/{MODEL}/rollback", headers={"Authorization": f"Bearer {token}"},
-                                json={"reason": "soak swap back"})
+            r = await http.post(
+                f"/v1/models/{MODEL}/rollback",
+                headers={"Authorization": f"Bearer {token}"},
+                json={"reason": "soak swap back"},
+            )
         ok = r.status_code == 200 and r.json()["serving"]["version"] == (2 if promote else 1)
         tally.record("promote" if promote else "rollback", str(r.status_code), ok, r.text)
         promote = not promote
@@ -161,8 +180,9 @@ async def _memory(pid: int, began: float, warmup: float, until: float, samples: 
     samples.append((time.monotonic() - began, _rss_bytes(pid)))
 
 
-async def _soak(url: str, pid: int, args: argparse.Namespace, token: str) -> tuple[Tally, list[tuple[float, int]],
-                                                                                   float]:
+async def _soak(
+    url: str, pid: int, args: argparse.Namespace, token: str
+) -> tuple[Tally, list[tuple[float, int]], float]:
     import httpx
 
     pool = bench_texts(5000, seed=11)
@@ -172,9 +192,11 @@ async def _soak(url: str, pid: int, args: argparse.Namespace, token: str) -> tup
     until = began + args.seconds
     limits = httpx.Limits(max_connections=args.clients + 2)
     async with httpx.AsyncClient(base_url=url, timeout=60, limits=limits) as http:
-        await asyncio.gather(_memory(pid, began, args.warmup, until, samples),
-                             _swapper(http, token, args.swap_every, until, tally),
-                             *(_client(http, random.Random(i), pool, until, tally) for i in range(args.clients)))
+        await asyncio.gather(
+            _memory(pid, began, args.warmup, until, samples),
+            _swapper(http, token, args.swap_every, until, tally),
+            *(_client(http, random.Random(i), pool, until, tally) for i in range(args.clients)),
+        )
     return tally, samples, time.monotonic() - began
 
 
@@ -216,13 +238,31 @@ def main(argv: list[str] | None = None) -> int:
     env.update({"TEXTSIEVE_ADMIN_TOKEN": token, "TEXTSIEVE_ACCESS_LOG": "false", "TEXTSIEVE_POLL_SECONDS": "1"})
     log = work / "server.log"
     with open(log, "wb") as out:
-        proc = subprocess.Popen([sys.executable, "-m", "textsieve.cli", "serve", "--registry", str(registry),
-                                 "--host", "127.0.0.1", "--port", str(port)], stdout=out, stderr=subprocess.STDOUT,
-                                stdin=subprocess.DEVNULL, env=env)
+        proc = subprocess.Popen(
+            [
+                sys.executable,
+                "-m",
+                "textsieve.cli",
+                "serve",
+                "--registry",
+                str(registry),
+                "--host",
+                "127.0.0.1",
+                "--port",
+                str(port),
+            ],
+            stdout=out,
+            stderr=subprocess.STDOUT,
+            stdin=subprocess.DEVNULL,
+            env=env,
+        )
     try:
         _wait_ready(url, proc)
-        print(f"soak: {args.seconds:.0f} s of mixed load, {args.clients} clients, model {MODEL} "
-              f"({model.source}), server pid {proc.pid}; work folder {work}", flush=True)
+        print(
+            f"soak: {args.seconds:.0f} s of mixed load, {args.clients} clients, model {MODEL} "
+            f"({model.source}), server pid {proc.pid}; work folder {work}",
+            flush=True,
+        )
         tally, samples, elapsed = asyncio.run(_soak(url, proc.pid, args, token))
     finally:
         if proc.poll() is None:
@@ -234,8 +274,10 @@ def main(argv: list[str] | None = None) -> int:
             code = proc.wait()
 
     total = sum(tally.counts.values())
-    print(f"\nrequests: {total} in {elapsed:.0f} s ({total / elapsed:.0f}/s), texts scored: {tally.texts} "
-          f"({tally.texts / elapsed:.0f}/s)")
+    print(
+        f"\nrequests: {total} in {elapsed:.0f} s ({total / elapsed:.0f}/s), texts scored: {tally.texts} "
+        f"({tally.texts / elapsed:.0f}/s)"
+    )
     for kind, _ in [*MIX, ("promote", 0), ("rollback", 0)]:
         row = {outcome: n for (k, outcome), n in sorted(tally.counts.items()) if k == kind}
         if row:
@@ -251,9 +293,11 @@ def main(argv: list[str] | None = None) -> int:
     start, end = statistics.median(first), statistics.median(last)
     change = (end - start) / start
     flat = abs(change) <= args.memory_tolerance
-    print(f"memory (VmRSS, median of {WINDOW:.0f} s): {start / 2**20:.1f} MiB after the {args.warmup:.0f} s warm-up, "
-          f"{end / 2**20:.1f} MiB at the end ({change:+.1%}; {'flat' if flat else 'NOT flat'} within "
-          f"±{args.memory_tolerance:.0%}); peak {max(r for _, r in samples) / 2**20:.1f} MiB")
+    print(
+        f"memory (VmRSS, median of {WINDOW:.0f} s): {start / 2**20:.1f} MiB after the {args.warmup:.0f} s warm-up, "
+        f"{end / 2**20:.1f} MiB at the end ({change:+.1%}; {'flat' if flat else 'NOT flat'} within "
+        f"±{args.memory_tolerance:.0%}); peak {max(r for _, r in samples) / 2**20:.1f} MiB"
+    )
     print(f"server exit status after SIGTERM: {code}")
     if not args.keep and not tally.errors and code == 0:
         shutil.rmtree(work, ignore_errors=True)

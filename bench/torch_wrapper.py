@@ -56,7 +56,7 @@ def build_app(run_dir: Path, temperature: float = 1.0) -> FastAPI:
         results = []
         for row in probs.tolist():
             best = max(range(len(row)), key=row.__getitem__)
-            results.append({"label": labels[best], "probabilities": dict(zip(labels, row))})
+            results.append({"label": labels[best], "probabilities": dict(zip(labels, row, strict=True))})
         return {"results": results}
 
     return app

@@ -1,5 +1,5 @@
 #!/usr/bin/env bash
-# Install nginx from Debian's packages for the topology test (tests/test_deploy.py), if missing.
+# Install nginx from Debian's packages for the topology test (tests/deploy/test_deploy.py), if missing.
 #
 # Only the binary is wanted: the test runs its own nginx in the foreground with a generated
 # config on 127.0.0.1, so the packaged service is stopped and kept from starting at boot.

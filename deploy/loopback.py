@@ -3,7 +3,7 @@ on a PostgreSQL server, ``textsieve serve`` replicas sharing it and one blob fol
 in front of them with the config rendered from the template compose.yaml uses.
 
 The constants at the top are the contract with the Dockerfile and compose.yaml: the same
-commands, ports, settings and health endpoint (tests/test_deploy.py checks all three agree).
+commands, ports, settings and health endpoint (tests/deploy/test_deploy.py checks all three agree).
 deploy/topology.py runs the checks on what this module starts.
 """
 
@@ -32,7 +32,7 @@ DEPLOY = Path(__file__).resolve().parent
 NGINX_TEMPLATE = DEPLOY / "nginx" / "textsieve.conf.template"
 INSTALL_NGINX = DEPLOY / "install-nginx.sh"
 
-# -- the contract with Dockerfile and compose.yaml (tests/test_deploy.py checks it) ----------
+# -- the contract with Dockerfile and compose.yaml (tests/deploy/test_deploy.py checks it) ----------
 CONTAINER_PORT = 8000  # the port a replica listens on in its container
 LB_PORT = 8080  # the port nginx listens on in its container
 SERVE_COMMAND = ("textsieve", "serve")
@@ -41,8 +41,17 @@ LIVENESS_PATH = "/healthz"
 TEMPLATE_VARS = ("TEXTSIEVE_REPLICA_1", "TEXTSIEVE_REPLICA_2", "TEXTSIEVE_LB_LISTEN", "TEXTSIEVE_LB_ACCESS_LOG")
 # Everything a replica is configured with: the TEXTSIEVE_* settings, libpq's password and
 # uvicorn's list of proxies whose X-Forwarded-For it trusts.
-REPLICA_ENV = ("TEXTSIEVE_HOST", "TEXTSIEVE_PORT", "TEXTSIEVE_REGISTRY", "TEXTSIEVE_BLOBS", "TEXTSIEVE_ADMIN_TOKEN",
-               "TEXTSIEVE_POLL_SECONDS", "TEXTSIEVE_WORKERS", "PGPASSWORD", "FORWARDED_ALLOW_IPS")
+REPLICA_ENV = (
+    "TEXTSIEVE_HOST",
+    "TEXTSIEVE_PORT",
+    "TEXTSIEVE_REGISTRY",
+    "TEXTSIEVE_BLOBS",
+    "TEXTSIEVE_ADMIN_TOKEN",
+    "TEXTSIEVE_POLL_SECONDS",
+    "TEXTSIEVE_WORKERS",
+    "PGPASSWORD",
+    "FORWARDED_ALLOW_IPS",
+)
 
 
 def health_command(base_url: str) -> list[str]:
@@ -155,8 +164,15 @@ class Replica:
     def start(self) -> None:
         with open(self.log, "ab") as out:
             # A session of its own: signals meant for the caller's terminal never reach it.
-            self.proc = subprocess.Popen(self.command, env=self.env, stdin=subprocess.DEVNULL, stdout=out,
-                                         stderr=subprocess.STDOUT, cwd=self.log.parent, start_new_session=True)
+            self.proc = subprocess.Popen(
+                self.command,
+                env=self.env,
+                stdin=subprocess.DEVNULL,
+                stdout=out,
+                stderr=subprocess.STDOUT,
+                cwd=self.log.parent,
+                start_new_session=True,
+            )
         deadline = time.monotonic() + START_TIMEOUT_S
         while True:
             with contextlib.suppress(httpx.HTTPError):
@@ -165,8 +181,9 @@ class Replica:
             if self.proc.poll() is not None:
                 raise CheckFailed(f"{self.name} exited with status {self.proc.returncode}:\n{log_tail(self.log)}")
             if time.monotonic() > deadline:
-                raise CheckFailed(f"{self.name} did not answer {LIVENESS_PATH} in {START_TIMEOUT_S:.0f}s:\n"
-                                  f"{log_tail(self.log)}")
+                raise CheckFailed(
+                    f"{self.name} did not answer {LIVENESS_PATH} in {START_TIMEOUT_S:.0f}s:\n{log_tail(self.log)}"
+                )
             time.sleep(0.1)
 
     def stop(self, sig: signal.Signals = signal.SIGTERM) -> int | None:
@@ -230,13 +247,18 @@ class Balancer:
         return {"user": "nobody", "group": "nogroup", "extra_groups": []}
 
     def write_config(self) -> None:
-        values = {"TEXTSIEVE_REPLICA_1": self.upstreams[0], "TEXTSIEVE_REPLICA_2": self.upstreams[1],
-                  "TEXTSIEVE_LB_LISTEN": f"127.0.0.1:{self.port}", "TEXTSIEVE_LB_ACCESS_LOG": str(self.access_log)}
+        values = {
+            "TEXTSIEVE_REPLICA_1": self.upstreams[0],
+            "TEXTSIEVE_REPLICA_2": self.upstreams[1],
+            "TEXTSIEVE_LB_LISTEN": f"127.0.0.1:{self.port}",
+            "TEXTSIEVE_LB_ACCESS_LOG": str(self.access_log),
+        }
         site = render_template(NGINX_TEMPLATE.read_text(encoding="utf-8"), values)
         (self.folder / "textsieve.conf").write_text(site, encoding="utf-8")
         tmp = self.folder / "tmp"
-        temp_paths = "\n".join(f"    {kind}_temp_path {tmp / kind};"
-                               for kind in ("client_body", "proxy", "fastcgi", "uwsgi", "scgi"))
+        temp_paths = "\n".join(
+            f"    {kind}_temp_path {tmp / kind};" for kind in ("client_body", "proxy", "fastcgi", "uwsgi", "scgi")
+        )
         (self.folder / "nginx.conf").write_text(
             "# Written by deploy/loopback.py: the shared template inside a main config of the test's own.\n"
             "worker_processes 1;\n"
@@ -246,7 +268,9 @@ class Balancer:
             "http {\n"
             f"{temp_paths}\n"
             f"    include {self.folder / 'textsieve.conf'};\n"
-            "}\n", encoding="utf-8")
+            "}\n",
+            encoding="utf-8",
+        )
         tmp.mkdir(exist_ok=True)
         if os.geteuid() == 0:
             import pwd
@@ -257,12 +281,18 @@ class Balancer:
 
     def start(self) -> None:
         self.write_config()
-        test = subprocess.run([*self._args(), "-t", "-q"], capture_output=True, text=True, stdin=subprocess.DEVNULL,
-                              **self._as_user())
+        test = subprocess.run(
+            [*self._args(), "-t", "-q"], capture_output=True, text=True, stdin=subprocess.DEVNULL, **self._as_user()
+        )
         check(test.returncode == 0, f"nginx refused the generated config:\n{test.stderr}")
-        self.proc = subprocess.Popen([*self._args(), "-g", "daemon off;"], stdin=subprocess.DEVNULL,
-                                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True,
-                                     **self._as_user())
+        self.proc = subprocess.Popen(
+            [*self._args(), "-g", "daemon off;"],
+            stdin=subprocess.DEVNULL,
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+            start_new_session=True,
+            **self._as_user(),
+        )
         deadline = time.monotonic() + 20
         while True:
             with contextlib.suppress(httpx.HTTPError):
@@ -301,8 +331,10 @@ class Balancer:
                     fresh = f.read().decode("utf-8", errors="replace")
                 if re.search(rf"upstream={re.escape(upstream)} upstream_status=200 ", fresh):
                     return time.monotonic() - started
-                check(time.monotonic() - started < timeout,
-                      f"nginx sent nothing to {upstream} for {timeout:.0f}s after it came back")
+                check(
+                    time.monotonic() - started < timeout,
+                    f"nginx sent nothing to {upstream} for {timeout:.0f}s after it came back",
+                )
                 time.sleep(0.1)
 
     def retried_requests(self, path: str = "/v1/predict") -> int:
@@ -360,8 +392,9 @@ class Topology:
             port = free_port()
             folder = self.workdir / f"textsieve-{i}"
             folder.mkdir(exist_ok=True)
-            replica = Replica(f"textsieve-{i}", port, self.replica_env(port), folder / "serve.log",
-                              [exe, *SERVE_COMMAND[1:]])
+            replica = Replica(
+                f"textsieve-{i}", port, self.replica_env(port), folder / "serve.log", [exe, *SERVE_COMMAND[1:]]
+            )
             self.replicas.append(replica)
             replica.start()
 
@@ -391,16 +424,26 @@ class Topology:
     # -- actions ------------------------------------------------------------------------------
     def publish(self, bundle: Path, model: str = MODEL) -> int:
         """``textsieve publish`` against the shared registry, as the compose ``admin`` service runs it."""
-        run = subprocess.run([textsieve_executable(), "publish", str(bundle), "--model", model, "--actor", "topology"],
-                             env=self.cli_env(), capture_output=True, text=True, stdin=subprocess.DEVNULL, timeout=120)
+        run = subprocess.run(
+            [textsieve_executable(), "publish", str(bundle), "--model", model, "--actor", "topology"],
+            env=self.cli_env(),
+            capture_output=True,
+            text=True,
+            stdin=subprocess.DEVNULL,
+            timeout=120,
+        )
         check(run.returncode == 0, f"textsieve publish failed ({run.returncode}): {run.stderr.strip()}")
         return int(run.stdout.strip().splitlines()[-1])
 
-    def promote(self, replica: Replica, version: int, *, reason: str, force: bool = False,
-                model: str = MODEL) -> dict[str, Any]:
-        r = httpx.post(f"{replica.url}/v1/models/{model}/versions/{version}/promote",
-                       json={"to": "live", "reason": reason, "force": force},
-                       headers={"Authorization": f"Bearer {self.admin_token}"}, timeout=120)
+    def promote(
+        self, replica: Replica, version: int, *, reason: str, force: bool = False, model: str = MODEL
+    ) -> dict[str, Any]:
+        r = httpx.post(
+            f"{replica.url}/v1/models/{model}/versions/{version}/promote",
+            json={"to": "live", "reason": reason, "force": force},
+            headers={"Authorization": f"Bearer {self.admin_token}"},
+            timeout=120,
+        )
         check(r.status_code == 200, f"promote through {replica.name}: HTTP {r.status_code} {r.text[:500]}")
         reply: dict[str, Any] = r.json()
         return reply
@@ -409,8 +452,9 @@ class Topology:
 def health_exit(url: str) -> tuple[int, str]:
     """Run the image's health command against ``url``."""
     cmd = health_command(url)
-    run = subprocess.run([textsieve_executable(), *cmd[1:]], capture_output=True, text=True, timeout=30,
-                         stdin=subprocess.DEVNULL)
+    run = subprocess.run(
+        [textsieve_executable(), *cmd[1:]], capture_output=True, text=True, timeout=30, stdin=subprocess.DEVNULL
+    )
     return run.returncode, run.stdout.strip()
 
 

@@ -3,7 +3,7 @@
 replicas sharing one registry and one blob folder, and nginx in front of them.
 
 It runs the commands of the Dockerfile and compose.yaml with the same settings, ports and
-health endpoint (tests/test_deploy.py holds the three together), then checks what scaling
+health endpoint (tests/deploy/test_deploy.py holds the three together), then checks what scaling
 out promises:
 
 1. before any version is live, each replica is alive (``/healthz``) but not ready
@@ -44,10 +44,22 @@ from typing import Any
 
 import httpx
 
-# Run as a script, this folder is on sys.path; imported (tests/test_deploy.py), the importer puts it there.
+# Run as a script, this folder is on sys.path; imported (tests/deploy/test_deploy.py), the importer puts it there.
 from loopback import (
-    FAIL_TIMEOUT_S, LAG_SLACK_S, MODEL, PROBABILITY_TOLERANCE, READINESS_PATH, CheckFailed, Replica, Topology, check,
-    fresh_database, health_exit, log_tail, nginx_executable, wait_for_version,
+    FAIL_TIMEOUT_S,
+    LAG_SLACK_S,
+    MODEL,
+    PROBABILITY_TOLERANCE,
+    READINESS_PATH,
+    CheckFailed,
+    Replica,
+    Topology,
+    check,
+    fresh_database,
+    health_exit,
+    log_tail,
+    nginx_executable,
+    wait_for_version,
 )
 
 DEFAULT_TEXTS = (
@@ -96,8 +108,9 @@ class LoadResult:
 class LoadLoop:
     """Predictions through ``url`` from ``threads`` clients until stopped, bounded in count and time."""
 
-    def __init__(self, url: str, texts: Sequence[str], *, threads: int = 2, max_requests: int = 5000,
-                 max_seconds: float = 60.0) -> None:
+    def __init__(
+        self, url: str, texts: Sequence[str], *, threads: int = 2, max_requests: int = 5000, max_seconds: float = 60.0
+    ) -> None:
         self.url, self.texts = url, [t for t in texts if t][:4] or ["hello"]
         self.threads, self.max_requests, self.max_seconds = threads, max_requests, max_seconds
         self.result = LoadResult()
@@ -139,8 +152,10 @@ class LoadLoop:
         deadline = time.monotonic() + timeout
         target = self.result.ok + successes
         while self.result.ok < target:
-            check(time.monotonic() < deadline, f"load: {self.result.ok} successes, wanted {target}; "
-                                               f"failures: {self.result.failed[:3]}")
+            check(
+                time.monotonic() < deadline,
+                f"load: {self.result.ok} successes, wanted {target}; failures: {self.result.failed[:3]}",
+            )
             time.sleep(0.01)
 
 
@@ -187,16 +202,25 @@ def _under_load_stop(topo: Topology, victim: Replica, sig: signal.Signals, texts
         if sig == signal.SIGTERM:
             # docker stop sends SIGTERM: a replica must shut down cleanly (uvicorn finishes in-flight
             # requests, then ends with status 0 or re-raises the signal), not fail with an error status.
-            check(code in (0, -signal.SIGTERM), f"{victim.name} exited with status {code} on SIGTERM:\n"
-                                                f"{log_tail(victim.log)}")
+            check(
+                code in (0, -signal.SIGTERM),
+                f"{victim.name} exited with status {code} on SIGTERM:\n{log_tail(victim.log)}",
+            )
         # Round robin sends the stopped replica its share of these; each must reach the other.
         load.wait_for(60)
     return load.result
 
 
-def run_scenario(pg_url: str, bundles: Sequence[Path], *, workdir: Path, texts: Sequence[str] = DEFAULT_TEXTS,
-                 poll_seconds: float = 0.5, install_nginx: bool = False,
-                 log: Callable[[str], None] = lambda _: None) -> Report:
+def run_scenario(
+    pg_url: str,
+    bundles: Sequence[Path],
+    *,
+    workdir: Path,
+    texts: Sequence[str] = DEFAULT_TEXTS,
+    poll_seconds: float = 0.5,
+    install_nginx: bool = False,
+    log: Callable[[str], None] = lambda _: None,
+) -> Report:
     """Start the topology, run checks 1–5 (module docstring), tear down; CheckFailed on a broken promise."""
     check(len(bundles) >= 2, "two bundles are needed: one to publish first, one to swap to")
     started = time.monotonic()
@@ -224,9 +248,11 @@ def run_scenario(pg_url: str, bundles: Sequence[Path], *, workdir: Path, texts: 
             lag, load_s = wait_for_version(r2.url, v1, timeout=poll_seconds + 60)
             report.first_live_lag_s, report.first_live_load_s = lag, load_s
             check(reply["serving"]["version"] == v1, f"{r1.name} answered the promotion serving {reply['serving']}")
-            check(lag <= poll_seconds + load_s + LAG_SLACK_S,
-                  f"{r2.name} served v{v1} {lag:.2f}s after the promotion; allowed {poll_seconds}s polling "
-                  f"+ {load_s:.2f}s load + {LAG_SLACK_S}s")
+            check(
+                lag <= poll_seconds + load_s + LAG_SLACK_S,
+                f"{r2.name} served v{v1} {lag:.2f}s after the promotion; allowed {poll_seconds}s polling "
+                f"+ {load_s:.2f}s load + {LAG_SLACK_S}s",
+            )
             for r in topo.replicas:
                 code, line = health_exit(r.url)
                 check(code == 0, f"{r.name} health after promotion: exit {code}, {line!r}")
@@ -240,8 +266,10 @@ def run_scenario(pg_url: str, bundles: Sequence[Path], *, workdir: Path, texts: 
 
             # 3. the same predictions everywhere
             report.max_probability_delta, report.first_reply = _agreement(texts, [r1.url, r2.url, lb.url])
-            check(report.max_probability_delta <= PROBABILITY_TOLERANCE,
-                  f"replicas disagree by {report.max_probability_delta:.2e} in probability")
+            check(
+                report.max_probability_delta <= PROBABILITY_TOLERANCE,
+                f"replicas disagree by {report.max_probability_delta:.2e} in probability",
+            )
 
             # 4. swap to the next version through replica 2 while requests flow through nginx
             v2 = topo.publish(bundles[1])
@@ -255,9 +283,11 @@ def run_scenario(pg_url: str, bundles: Sequence[Path], *, workdir: Path, texts: 
             report.swap_requests, report.swap_failed = load.result.sent, load.result.failed
             report.swap_versions = dict(load.result.versions)
             check(reply["serving"]["version"] == v2, f"{r2.name} answered the promotion serving {reply['serving']}")
-            check(swap_lag <= poll_seconds + swap_load + LAG_SLACK_S,
-                  f"{r1.name} served v{v2} {swap_lag:.2f}s after the promotion; allowed {poll_seconds}s polling "
-                  f"+ {swap_load:.2f}s load + {LAG_SLACK_S}s")
+            check(
+                swap_lag <= poll_seconds + swap_load + LAG_SLACK_S,
+                f"{r1.name} served v{v2} {swap_lag:.2f}s after the promotion; allowed {poll_seconds}s polling "
+                f"+ {swap_load:.2f}s load + {LAG_SLACK_S}s",
+            )
             check(not load.result.failed, f"requests failed during the swap: {load.result.failed[:5]}")
             delta, report.swapped_reply = _agreement(texts, [r1.url, r2.url, lb.url])
             report.max_probability_delta = max(report.max_probability_delta, delta)
@@ -268,8 +298,10 @@ def run_scenario(pg_url: str, bundles: Sequence[Path], *, workdir: Path, texts: 
             result = _under_load_stop(topo, r2, signal.SIGTERM, texts)
             report.stop_requests, report.stop_failed = result.sent, result.failed
             report.stop_retried = lb.retried_requests() - before
-            check(not result.failed, f"{len(result.failed)} of {result.sent} requests lost when {r2.name} "
-                                     f"stopped: {result.failed[:5]}")
+            check(
+                not result.failed,
+                f"{len(result.failed)} of {result.sent} requests lost when {r2.name} stopped: {result.failed[:5]}",
+            )
             r2.start()
             wait_for_version(r2.url, v2, timeout=60)
             # nginx took it out of rotation when it stopped; until it tries it again (fail_timeout),
@@ -279,8 +311,10 @@ def run_scenario(pg_url: str, bundles: Sequence[Path], *, workdir: Path, texts: 
             result = _under_load_stop(topo, r1, signal.SIGKILL, texts)
             report.kill_requests, report.kill_failed = result.sent, result.failed
             report.kill_retried = lb.retried_requests() - before
-            check(not result.failed, f"{len(result.failed)} of {result.sent} requests lost when {r1.name} "
-                                     f"was killed: {result.failed[:5]}")
+            check(
+                not result.failed,
+                f"{len(result.failed)} of {result.sent} requests lost when {r1.name} was killed: {result.failed[:5]}",
+            )
         finally:
             topo.close()
     report.seconds = time.monotonic() - started
@@ -289,10 +323,18 @@ def run_scenario(pg_url: str, bundles: Sequence[Path], *, workdir: Path, texts: 
 
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0] if __doc__ else None)
-    parser.add_argument("--bundle", type=Path, action="append", required=True,
-                        help="a bundle folder (textsieve export); give two: the first goes live, then the second")
-    parser.add_argument("--pg", default=os.environ.get("TEXTSIEVE_TEST_PG"),
-                        help="PostgreSQL URL of a role that may create databases (default $TEXTSIEVE_TEST_PG)")
+    parser.add_argument(
+        "--bundle",
+        type=Path,
+        action="append",
+        required=True,
+        help="a bundle folder (textsieve export); give two: the first goes live, then the second",
+    )
+    parser.add_argument(
+        "--pg",
+        default=os.environ.get("TEXTSIEVE_TEST_PG"),
+        help="PostgreSQL URL of a role that may create databases (default $TEXTSIEVE_TEST_PG)",
+    )
     parser.add_argument("--poll-seconds", type=float, default=0.5)
     parser.add_argument("--install-nginx", action="store_true", help="install nginx from Debian's packages if missing")
     args = parser.parse_args(argv)
@@ -300,9 +342,14 @@ def main(argv: Sequence[str] | None = None) -> int:
         parser.error("no PostgreSQL: pass --pg URL or run 'bash scripts/test-services.sh' and source .test-env")
     with tempfile.TemporaryDirectory(prefix="textsieve-topology-") as tmp:
         try:
-            report = run_scenario(args.pg, args.bundle, workdir=Path(tmp), poll_seconds=args.poll_seconds,
-                                  install_nginx=args.install_nginx,
-                                  log=lambda m: print(f"topology: {m}", file=sys.stderr))
+            report = run_scenario(
+                args.pg,
+                args.bundle,
+                workdir=Path(tmp),
+                poll_seconds=args.poll_seconds,
+                install_nginx=args.install_nginx,
+                log=lambda m: print(f"topology: {m}", file=sys.stderr),
+            )
         except CheckFailed as exc:
             print(f"topology: FAILED: {exc}", file=sys.stderr)
             return 1

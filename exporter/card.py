@@ -22,8 +22,11 @@ CAUTIONS = """\
 def render_card(m: Manifest, *, model_name: str = "(set on publish)") -> str:
     a = m.architecture
     c = m.calibration
-    vectors = (f"pretrained vectors ({a.vectors.dim}d, {a.vectors.mode}, {a.vectors.found} tokens found)"
-               if a.vectors else "embeddings learned from scratch")
+    vectors = (
+        f"pretrained vectors ({a.vectors.dim}d, {a.vectors.mode}, {a.vectors.found} tokens found)"
+        if a.vectors
+        else "embeddings learned from scratch"
+    )
     lines = [
         f"# Model card: {model_name}",
         "",

@@ -27,12 +27,12 @@ unigram+bigram one 1.00, so the data is learnable, but only with word order.
 from __future__ import annotations
 
 import json
-import os
 import random
 import re
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
+
+from textsieve.files import atomic_write_text
 
 LABELS: tuple[str, ...] = ("billing", "repair", "account", "praise")
 _PROBLEM_LABELS: tuple[str, ...] = ("billing", "repair", "account")
@@ -64,16 +64,33 @@ class _Clause:
 
 
 _BIKES = (
-    "bike #{num}", "the blue cargo bike", "the tandem", "my usual e-bike",
-    "the kids' trailer bike", "the folding bike", "my 自転車",
+    "bike #{num}",
+    "the blue cargo bike",
+    "the tandem",
+    "my usual e-bike",
+    "the kids' trailer bike",
+    "the folding bike",
+    "my 自転車",
 )
 _TOOLS = (
-    "drill", "hedge trimmer", "pressure washer", "tile cutter", "sewing machine",
-    "ladder", "jigsaw", "lawn aerator",
+    "drill",
+    "hedge trimmer",
+    "pressure washer",
+    "tile cutter",
+    "sewing machine",
+    "ladder",
+    "jigsaw",
+    "lawn aerator",
 )
 _PLACES = (
-    "Riverside", "Market Square", "Hauptstraße", "Café Lumière", "Old Mill", "Østre Park",
-    "Library Lane", "Station Road",
+    "Riverside",
+    "Market Square",
+    "Hauptstraße",
+    "Café Lumière",
+    "Old Mill",
+    "Østre Park",
+    "Library Lane",
+    "Station Road",
 )
 _NAMES = ("Zoë", "José", "Jürgen", "Renée", "Søren", "Priya", "Tom", "Ana", "美咲", "Kwame")
 _DAYS = ("Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday")
@@ -83,13 +100,12 @@ _PROBLEMS: dict[str, tuple[_Clause, ...]] = {
         _Clause("I", "was", "charged twice for one ride", "I got charged twice for one ride"),
         _Clause("a late fee", "was", "added to my statement", "a late fee appeared on my statement"),
         _Clause("my card", "was", "billed after I cancelled", "my card got billed after I cancelled"),
-        _Clause("the weekend rate", "was", "applied to a weekday loan",
-                "the weekend rate got applied to a weekday loan"),
-        _Clause("the membership fee", "was", "taken twice this month",
-                "the membership fee was taken twice this month"),
+        _Clause(
+            "the weekend rate", "was", "applied to a weekday loan", "the weekend rate got applied to a weekday loan"
+        ),
+        _Clause("the membership fee", "was", "taken twice this month", "the membership fee was taken twice this month"),
         _Clause("I", "was", "billed €{amt} for a free workshop", "I got billed €{amt} for a free workshop"),
-        _Clause("my invoice", "is", "higher than the posted price",
-                "my invoice came out higher than the posted price"),
+        _Clause("my invoice", "is", "higher than the posted price", "my invoice came out higher than the posted price"),
         _Clause("the deposit for the {tool}", "was", "kept", "the deposit for the {tool} was kept"),
     ),
     "repair": (
@@ -107,11 +123,9 @@ _PROBLEMS: dict[str, tuple[_Clause, ...]] = {
         _Clause("my account", "is", "locked", "my account got locked"),
         _Clause("the password reset link", "is", "expired", "the password reset link expired"),
         _Clause("my membership card", "is", "deactivated", "my membership card got deactivated"),
-        _Clause("my email address", "is", "wrong in the app",
-                "my email address reverted to an old one"),
+        _Clause("my email address", "is", "wrong in the app", "my email address reverted to an old one"),
         _Clause("the app", "is", "logging me out", "the app started logging me out"),
-        _Clause("my profile", "is", "showing someone else's name",
-                "my profile started showing someone else's name"),
+        _Clause("my profile", "is", "showing someone else's name", "my profile started showing someone else's name"),
         _Clause("my login", "is", "rejected", "my login got rejected"),
         _Clause("I", "am", "locked out of the member portal", "I got locked out of the member portal"),
     ),
@@ -129,35 +143,66 @@ _PRAISE: tuple[_Clause, ...] = (
 )
 
 _FIXES = (
-    "your team sorted it out in ten minutes", "{name} put it right the same afternoon",
-    "the help desk had it dealt with by {day}", "you fixed it straight away",
+    "your team sorted it out in ten minutes",
+    "{name} put it right the same afternoon",
+    "the help desk had it dealt with by {day}",
+    "you fixed it straight away",
     "it was all put right within a day",
 )
 _THANKS = (
-    "thank you so much", "thanks a lot", "just wanted to say thanks", "you made my week",
-    "keep up the great work", "merci beaucoup", "danke schön", "谢谢",
+    "thank you so much",
+    "thanks a lot",
+    "just wanted to say thanks",
+    "you made my week",
+    "keep up the great work",
+    "merci beaucoup",
+    "danke schön",
+    "谢谢",
 )
 _GRATEFUL = ("thanks for", "thank you for", "I appreciated", "I was grateful for")
 _REQUESTS = {
-    "billing": ("Could you check my statement?", "Please refund the difference.",
-                "Can I get that money back?", "Please correct the charge."),
-    "repair": ("Can someone take a look?", "Please send a mechanic.",
-               "It needs fixing before the weekend.", "Could it be repaired soon?"),
-    "account": ("Please help me get back in.", "Can you reset it?",
-                "I need access before Saturday.", "Could you sort out my login?"),
+    "billing": (
+        "Could you check my statement?",
+        "Please refund the difference.",
+        "Can I get that money back?",
+        "Please correct the charge.",
+    ),
+    "repair": (
+        "Can someone take a look?",
+        "Please send a mechanic.",
+        "It needs fixing before the weekend.",
+        "Could it be repaired soon?",
+    ),
+    "account": (
+        "Please help me get back in.",
+        "Can you reset it?",
+        "I need access before Saturday.",
+        "Could you sort out my login?",
+    ),
 }
 _OPENERS = (
-    "", "", "", "Hi,", "Hello team,", "Good morning,", "Hey there,", "Dear Spokewright Commons,",
-    "Quick one:", "Hi folks,",
+    "",
+    "",
+    "",
+    "Hi,",
+    "Hello team,",
+    "Good morning,",
+    "Hey there,",
+    "Dear Spokewright Commons,",
+    "Quick one:",
+    "Hi folks,",
 )
 _CONTEXT = (
-    "I have been a member since {year}.", "I borrowed the {tool} on {day}.",
-    "I rode {bike} from the {place} dock on {day}.", "My member number is {num}.",
-    "This is about last {day}.", "I use the app on my phone.",
-    "I am writing for my whole household.", "I picked it up at {place}.",
+    "I have been a member since {year}.",
+    "I borrowed the {tool} on {day}.",
+    "I rode {bike} from the {place} dock on {day}.",
+    "My member number is {num}.",
+    "This is about last {day}.",
+    "I use the app on my phone.",
+    "I am writing for my whole household.",
+    "I picked it up at {place}.",
 )
-_SIGNOFFS = ("", "", "", "Thanks, {name}", "Cheers, {name}", "Best, {name}", "— {name}",
-             "Thanks in advance.")
+_SIGNOFFS = ("", "", "", "Thanks, {name}", "Cheers, {name}", "Best, {name}", "— {name}", "Thanks in advance.")
 _EMOJI = ("🙂", "🚲", "🔧", "😕", "👍", "❤️", "💸", "🔒")
 _CONNECTIVES = (", but", " and", "; however,", ". Also,")
 
@@ -207,8 +252,7 @@ def _swap(rng: random.Random, label: str) -> list[str]:
 def _until(rng: random.Random, label: str) -> list[str]:
     """A problem that came after a good start: the later event names the label."""
     clause = rng.choice(_PROBLEMS[label])
-    start = rng.choice(("everything was fine", "it worked fine", "all was well",
-                        "I was happy with the service"))
+    start = rng.choice(("everything was fine", "it worked fine", "all was well", "I was happy with the service"))
     return [_sentence(f"{start} until {clause.event}.")]
 
 
@@ -224,15 +268,16 @@ def _nothing_wrong(rng: random.Random, label: str) -> list[str]:
     a, b = rng.sample(_PROBLEM_LABELS, 2)
     first = rng.choice(_PROBLEMS[a]).say(negated=True)
     second = rng.choice(_PROBLEMS[b]).say(negated=True)
-    return [_sentence(f"nothing is wrong: {first} and {second}."),
-            _sentence(f"{rng.choice(_THANKS)}, {rng.choice(_PRAISE).say()}!")]
+    return [
+        _sentence(f"nothing is wrong: {first} and {second}."),
+        _sentence(f"{rng.choice(_THANKS)}, {rng.choice(_PRAISE).say()}!"),
+    ]
 
 
 def _fixed(rng: random.Random, label: str) -> list[str]:
     """A past problem that has been put right: praise, though the problem words are there."""
     clause = rng.choice(_PROBLEMS[rng.choice(_PROBLEM_LABELS)])
-    return [_sentence(f"{clause.event} last week, but {rng.choice(_FIXES)}."),
-            _sentence(rng.choice(_THANKS)) + "!"]
+    return [_sentence(f"{clause.event} last week, but {rng.choice(_FIXES)}."), _sentence(rng.choice(_THANKS)) + "!"]
 
 
 _FAMILIES = {
@@ -301,18 +346,7 @@ def generate(n: int = 6000, seed: int = 7, disagreement: float = DISAGREEMENT) -
 
 
 def _write_jsonl_atomic(path: Path, rows: list[dict[str, str]]) -> None:
-    body = "".join(json.dumps(row, ensure_ascii=False) + "\n" for row in rows)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(body)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.chmod(tmp, 0o644)  # mkstemp's 0600 would hide the demo data from other users
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    atomic_write_text(path, "".join(json.dumps(row, ensure_ascii=False) + "\n" for row in rows))
 
 
 def write_splits(out_dir: Path, n: int = 6000, seed: int = 7) -> dict[str, Path]:
@@ -321,11 +355,11 @@ def write_splits(out_dir: Path, n: int = 6000, seed: int = 7) -> dict[str, Path]
         raise ValueError(f"n must be a whole number of at least 10 (one per split), got {n!r}")
     rows = generate(n, seed)
     n_train, n_valid = n * 8 // 10, n // 10
-    chunks = (rows[:n_train], rows[n_train:n_train + n_valid], rows[n_train + n_valid:])
+    chunks = (rows[:n_train], rows[n_train : n_train + n_valid], rows[n_train + n_valid :])
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     paths: dict[str, Path] = {}
-    for name, chunk in zip(SPLIT_NAMES, chunks):
+    for name, chunk in zip(SPLIT_NAMES, chunks, strict=True):
         paths[name] = out_dir / f"{name}.jsonl"
         _write_jsonl_atomic(paths[name], chunk)
     return paths

@@ -12,11 +12,18 @@ import numpy as np
 
 from textsieve import __version__
 from textsieve.errors import InputError, ParityError
-from textsieve.registry import metrics
-from textsieve.registry._fs import atomic_directory, atomic_write_text, sha256_file
+from textsieve.files import atomic_directory, atomic_write_text, sha256_file
+from textsieve.registry import measures
 from textsieve.registry.bundle import check_graph, manifest_json
 from textsieve.registry.manifest import (
-    CARD_FILE, INPUTS, MANIFEST, MODEL_FILE, OUTPUTS, VOCAB_FILE, Manifest, TensorInfo,
+    CARD_FILE,
+    INPUTS,
+    MANIFEST,
+    MODEL_FILE,
+    OUTPUTS,
+    VOCAB_FILE,
+    Manifest,
+    TensorInfo,
 )
 from textsieve.registry.runtime import Encoded, Predictor
 from textsieve.registry.tokenizer import Tokenizer, Vocabulary
@@ -59,8 +66,13 @@ def export_onnx(model: Any, path: Path, min_length: int, layout: str = "tap-tabl
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         program = torch.onnx.export(
-            graph, (ids, lengths), dynamo=True, external_data=False, opset_version=OPSET,
-            input_names=list(INPUTS), output_names=list(OUTPUTS),
+            graph,
+            (ids, lengths),
+            dynamo=True,
+            external_data=False,
+            opset_version=OPSET,
+            input_names=list(INPUTS),
+            output_names=list(OUTPUTS),
             dynamic_shapes={"token_ids": {0: batch, 1: steps}, "lengths": {0: batch}},
             verbose=False,
         )
@@ -95,17 +107,28 @@ def _predictor(model_path: Path, run: dict[str, Any], vocab: Vocabulary, tempera
 
     arch = ArchitectureInfo.model_validate(run["architecture"])
     return Predictor(
-        model_path, labels=run["labels"], temperature=temperature,
-        tokenizer=Tokenizer(TokenizerSpec.model_validate(run["tokenizer"])), vocab=vocab,
-        max_length=run["lengths"]["max_length"], min_length=run["lengths"]["min_length"],
+        model_path,
+        labels=run["labels"],
+        temperature=temperature,
+        tokenizer=Tokenizer(TokenizerSpec.model_validate(run["tokenizer"])),
+        vocab=vocab,
+        max_length=run["lengths"]["max_length"],
+        min_length=run["lengths"]["min_length"],
         filter_widths=arch.filter_widths(),
     )
 
 
-def export(run_dir: Path, out: Path, *, tolerance: float = 1e-4, test: Path | None = None,
-           layout: str = "auto", log: Any = print) -> Manifest:
-    from textsieve.exporter.data import load_examples
+def export(
+    run_dir: Path,
+    out: Path,
+    *,
+    tolerance: float = 1e-4,
+    test: Path | None = None,
+    layout: str = "auto",
+    log: Any = print,
+) -> Manifest:
     from textsieve.exporter.train import load_run
+    from textsieve.labelled import load_examples
 
     model, vocab, run = load_run(run_dir)
     model.eval()
@@ -116,7 +139,9 @@ def export(run_dir: Path, out: Path, *, tolerance: float = 1e-4, test: Path | No
         held_out = load_examples(test, run["training"]["text_field"], run["training"]["label_field"])
         unseen = sorted({e.label for e in held_out} - set(labels))
         if unseen:
-            raise InputError(f"{test}: labels not known to the model: {', '.join(unseen)}; allowed: {', '.join(labels)}")
+            raise InputError(
+                f"{test}: labels not known to the model: {', '.join(unseen)}; allowed: {', '.join(labels)}"
+            )
     else:
         held_out = valid
     if out.exists() and not (out / MANIFEST).is_file() and any(out.iterdir()):
@@ -134,14 +159,16 @@ def export(run_dir: Path, out: Path, *, tolerance: float = 1e-4, test: Path | No
         # Calibration on validation (Guo et al., 2017): T minimises NLL of softmax(z / T).
         log(f"checking parity and calibrating on {len(valid)} validation texts …")
         ref_logits, ref_pos = torch_logits(model, enc_valid, run["lengths"]["max_length"])
-        temperature = metrics.fit_temperature(ref_logits, targets)
-        p_before = metrics.softmax(ref_logits)
-        ref_probs = metrics.softmax(ref_logits, temperature)
+        temperature = measures.fit_temperature(ref_logits, targets)
+        p_before = measures.softmax(ref_logits)
+        ref_probs = measures.softmax(ref_logits, temperature)
         calibration = {
-            "temperature": temperature, "texts": len(valid),
-            "nll_before": metrics.nll(ref_logits, targets), "nll_after": metrics.nll(ref_logits, targets, temperature),
-            "ece_before": metrics.expected_calibration_error(p_before, targets),
-            "ece_after": metrics.expected_calibration_error(ref_probs, targets),
+            "temperature": temperature,
+            "texts": len(valid),
+            "nll_before": measures.nll(ref_logits, targets),
+            "nll_after": measures.nll(ref_logits, targets, temperature),
+            "ece_before": measures.expected_calibration_error(p_before, targets),
+            "ece_after": measures.expected_calibration_error(ref_probs, targets),
         }
 
         # Parity: onnxruntime on length-sorted batches padded to their own longest, against
@@ -157,8 +184,11 @@ def export(run_dir: Path, out: Path, *, tolerance: float = 1e-4, test: Path | No
         label_agree = float((probs.argmax(1) == ref_probs.argmax(1)).mean())
         pos_agree = float((got.positions == ref_pos).mean())
         parity = {
-            "texts": len(valid), "max_abs_prob_diff": max_diff, "label_agreement": label_agree,
-            "position_agreement": pos_agree, "batch_invariance_max_diff": alone_diff,
+            "texts": len(valid),
+            "max_abs_prob_diff": max_diff,
+            "label_agreement": label_agree,
+            "position_agreement": pos_agree,
+            "batch_invariance_max_diff": alone_diff,
             "tolerance": tolerance,
             "passed": bool(max_diff <= tolerance and label_agree == 1.0 and alone_diff <= tolerance),
         }
@@ -178,10 +208,10 @@ def export(run_dir: Path, out: Path, *, tolerance: float = 1e-4, test: Path | No
         metric_block = {
             "split": "validation" if test is None else f"test:{Path(test).name}",
             "texts": len(held_out),
-            "accuracy": metrics.accuracy(held_targets, predicted),
-            "macro_f1": metrics.macro_f1(held_targets, predicted, len(labels)),
-            "ece": metrics.expected_calibration_error(held_probs, held_targets),
-            "nll": metrics.nll(held_logits, held_targets, temperature),
+            "accuracy": measures.accuracy(held_targets, predicted),
+            "macro_f1": measures.macro_f1(held_targets, predicted, len(labels)),
+            "ece": measures.expected_calibration_error(held_probs, held_targets),
+            "nll": measures.nll(held_logits, held_targets, temperature),
         }
 
         draft: dict[str, Any] = {
@@ -193,12 +223,16 @@ def export(run_dir: Path, out: Path, *, tolerance: float = 1e-4, test: Path | No
             "onnx": {
                 "opset": OPSET,
                 "layout": layout,
-                "inputs": [TensorInfo(name="token_ids", dtype="int64", shape=["batch", "seq"]),
-                           TensorInfo(name="lengths", dtype="int64", shape=["batch"])],
-                "outputs": [TensorInfo(name="logits", dtype="float32", shape=["batch", len(labels)]),
-                            TensorInfo(name="pooled", dtype="float32", shape=["batch", "filters"]),
-                            TensorInfo(name="positions", dtype="int64", shape=["batch", "filters"]),
-                            TensorInfo(name="contributions", dtype="float32", shape=["batch", "filters", len(labels)])],
+                "inputs": [
+                    TensorInfo(name="token_ids", dtype="int64", shape=["batch", "seq"]),
+                    TensorInfo(name="lengths", dtype="int64", shape=["batch"]),
+                ],
+                "outputs": [
+                    TensorInfo(name="logits", dtype="float32", shape=["batch", len(labels)]),
+                    TensorInfo(name="pooled", dtype="float32", shape=["batch", "filters"]),
+                    TensorInfo(name="positions", dtype="int64", shape=["batch", "filters"]),
+                    TensorInfo(name="contributions", dtype="float32", shape=["batch", "filters", len(labels)]),
+                ],
             },
             "calibration": calibration,
             "parity": parity,
@@ -222,7 +256,10 @@ def export(run_dir: Path, out: Path, *, tolerance: float = 1e-4, test: Path | No
 def _print_parity(parity: dict[str, Any], cal: dict[str, Any], log: Any) -> None:
     rows = [
         ("texts compared", f"{parity['texts']}"),
-        ("max |Δprobability| (torch vs onnxruntime)", f"{parity['max_abs_prob_diff']:.2e}  (tolerance {parity['tolerance']:.0e})"),
+        (
+            "max |Δprobability| (torch vs onnxruntime)",
+            f"{parity['max_abs_prob_diff']:.2e}  (tolerance {parity['tolerance']:.0e})",
+        ),
         ("label agreement", f"{parity['label_agreement']:.2%}"),
         ("argmax-position agreement", f"{parity['position_agreement']:.2%}"),
         ("alone vs batched, max |Δprobability|", f"{parity['batch_invariance_max_diff']:.2e}"),

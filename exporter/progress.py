@@ -21,8 +21,9 @@ class Progress:
         if enabled:
             from tqdm import tqdm
 
-            self._bar = tqdm(total=total, desc=description, file=sys.stderr, leave=False,
-                             unit="batch", dynamic_ncols=True)
+            self._bar = tqdm(
+                total=total, desc=description, file=sys.stderr, leave=False, unit="batch", dynamic_ncols=True
+            )
 
     def advance(self, steps: int = 1, **postfix: float) -> None:
         if self._bar is not None:

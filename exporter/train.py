@@ -27,12 +27,12 @@ from torch.nn import functional as F
 
 from textsieve import __version__
 from textsieve.errors import BundleError, InputError
-from textsieve.exporter.data import Example, check_labels, load_examples, sha256_file
 from textsieve.exporter.model import SentenceCNN
 from textsieve.exporter.progress import Progress, bar_wanted, say
 from textsieve.exporter.vectors import PretrainedVectors, load_vectors
+from textsieve.files import atomic_directory, sha256_file
+from textsieve.labelled import Example, check_labels, load_examples
 from textsieve.registry.manifest import ArchitectureInfo, LengthInfo, TrainingInfo, VectorsInfo
-from textsieve.registry._fs import atomic_directory
 from textsieve.registry.tokenizer import Tokenizer, TokenizerSpec, Vocabulary
 
 RUN_JSON = "run.json"
@@ -93,36 +93,63 @@ class TrainConfig:
     @classmethod
     def from_args(cls, args: argparse.Namespace) -> TrainConfig:
         return cls(
-            data=args.data, out=args.out, valid=args.valid,
-            text_field=args.text_field, label_field=args.label_field,
-            vectors=args.vectors, vectors_mode=args.vectors_mode, embedding_dim=args.embedding_dim,
-            widths=parse_widths(args.widths), maps=args.maps, dropout=args.dropout,
+            data=args.data,
+            out=args.out,
+            valid=args.valid,
+            text_field=args.text_field,
+            label_field=args.label_field,
+            vectors=args.vectors,
+            vectors_mode=args.vectors_mode,
+            embedding_dim=args.embedding_dim,
+            widths=parse_widths(args.widths),
+            maps=args.maps,
+            dropout=args.dropout,
             max_norm=None if args.max_norm == 0 else args.max_norm,
-            batch_size=args.batch_size, epochs=args.epochs, patience=args.patience,
-            learning_rate=args.learning_rate, min_count=args.min_count, max_vocab=args.max_vocab,
-            length_percentile=args.length_percentile, seed=args.seed, quiet=args.quiet,
+            batch_size=args.batch_size,
+            epochs=args.epochs,
+            patience=args.patience,
+            learning_rate=args.learning_rate,
+            min_count=args.min_count,
+            max_vocab=args.max_vocab,
+            length_percentile=args.length_percentile,
+            seed=args.seed,
+            quiet=args.quiet,
         )
 
     def check(self) -> None:
         """Refuse values that cannot train, naming the flag and its allowed range."""
         widths = self.widths
         if not widths or any(not 1 <= w <= 20 for w in widths) or len(set(widths)) != len(widths):
-            raise InputError(f"--widths {','.join(map(str, widths))}: each filter width must be a different "
-                             "whole number from 1 to 20, e.g. 3,4,5")
+            raise InputError(
+                f"--widths {','.join(map(str, widths))}: each filter width must be a different "
+                "whole number from 1 to 20, e.g. 3,4,5"
+            )
         rules: list[tuple[str, Any, bool, str]] = [
             ("--maps", self.maps, 1 <= self.maps <= 1000, "from 1 to 1000"),
             ("--dropout", self.dropout, 0 <= self.dropout < 1, "at least 0 and below 1"),
-            ("--max-norm", self.max_norm, self.max_norm is None or 0 < self.max_norm < math.inf,
-             "a positive number, or 0 for no constraint"),
+            (
+                "--max-norm",
+                self.max_norm,
+                self.max_norm is None or 0 < self.max_norm < math.inf,
+                "a positive number, or 0 for no constraint",
+            ),
             ("--batch-size", self.batch_size, self.batch_size >= 1, "at least 1"),
             ("--epochs", self.epochs, self.epochs >= 1, "at least 1"),
             ("--patience", self.patience, self.patience >= 1, "at least 1"),
             ("--learning-rate", self.learning_rate, 0 < self.learning_rate < math.inf, "a positive number"),
             ("--min-count", self.min_count, self.min_count >= 1, "at least 1"),
-            ("--max-vocab", self.max_vocab, self.max_vocab is None or self.max_vocab >= 3,
-             "at least 3 (padding, unknown and one word)"),
-            ("--length-percentile", self.length_percentile, 0 < self.length_percentile <= 100,
-             "above 0 and at most 100"),
+            (
+                "--max-vocab",
+                self.max_vocab,
+                self.max_vocab is None or self.max_vocab >= 3,
+                "at least 3 (padding, unknown and one word)",
+            ),
+            (
+                "--length-percentile",
+                self.length_percentile,
+                0 < self.length_percentile <= 100,
+                "above 0 and at most 100",
+            ),
             ("--embedding-dim", self.embedding_dim, 1 <= self.embedding_dim <= 2048, "from 1 to 2048"),
             ("--seed", self.seed, 0 <= self.seed < 2**32, "from 0 to 4294967295"),
         ]
@@ -132,16 +159,18 @@ class TrainConfig:
         if self.vectors_mode not in ("static", "non-static"):
             raise InputError(f"--vectors-mode {self.vectors_mode!r}: choose static or non-static")
         if self.vectors_mode == "static" and self.vectors is None:
-            raise InputError("--vectors-mode static needs --vectors: random embeddings must be trained "
-                             "(use non-static, the default)")
+            raise InputError(
+                "--vectors-mode static needs --vectors: random embeddings must be trained (use non-static, the default)"
+            )
 
 
 def parse_widths(text: str) -> tuple[int, ...]:
     try:
         return tuple(int(part) for part in text.split(","))
     except ValueError:
-        raise InputError(f"--widths {text!r}: give filter widths as whole numbers separated by commas, "
-                         "e.g. 3,4,5") from None
+        raise InputError(
+            f"--widths {text!r}: give filter widths as whole numbers separated by commas, e.g. 3,4,5"
+        ) from None
 
 
 @dataclass(frozen=True)
@@ -163,8 +192,9 @@ def encode_tokens(token_lists: Sequence[Sequence[str]], vocabulary: Vocabulary, 
     return Encoded(ids, lengths)
 
 
-def encode_texts(texts: Sequence[str], vocabulary: Vocabulary, max_length: int,
-                 tokenizer: Tokenizer | None = None) -> Encoded:
+def encode_texts(
+    texts: Sequence[str], vocabulary: Vocabulary, max_length: int, tokenizer: Tokenizer | None = None
+) -> Encoded:
     """The preprocessing the model was trained with: tokenize, look up, truncate."""
     split = (tokenizer or Tokenizer()).split
     return encode_tokens([split(t)[0] for t in texts], vocabulary, max_length)
@@ -213,8 +243,10 @@ def _prepare(config: TrainConfig) -> _Prepared:
     counts = Counter(t for tokens in train_tokens for t in tokens)
     vocabulary = Vocabulary.build(counts, min_count=config.min_count, max_size=config.max_vocab)
     if len(vocabulary) <= 2:
-        raise InputError(f"{config.data}: no word occurs at least {config.min_count} times in the training "
-                         "texts; lower --min-count or add data")
+        raise InputError(
+            f"{config.data}: no word occurs at least {config.min_count} times in the training "
+            "texts; lower --min-count or add data"
+        )
     lengths = _length_info(np.array([len(t) for t in train_tokens]), config)
 
     vectors = None
@@ -223,18 +255,25 @@ def _prepare(config: TrainConfig) -> _Prepared:
         vectors = load_vectors(config.vectors, vocabulary, tokenizer=tokenizer)
         # argparse cannot tell an explicit 128 from the default, so only another value conflicts.
         if config.embedding_dim not in (DEFAULT_EMBEDDING_DIM, vectors.dim):
-            raise InputError(f"{config.vectors}: vectors file has dimension {vectors.dim} but --embedding-dim "
-                             f"is {config.embedding_dim}; drop --embedding-dim or make them equal")
+            raise InputError(
+                f"{config.vectors}: vectors file has dimension {vectors.dim} but --embedding-dim "
+                f"is {config.embedding_dim}; drop --embedding-dim or make them equal"
+            )
         embedding_dim = vectors.dim
 
     index = {label: i for i, label in enumerate(labels)}
     return _Prepared(
-        train=train_rows, valid=valid_rows, labels=labels, vocabulary=vocabulary, lengths=lengths,
+        train=train_rows,
+        valid=valid_rows,
+        labels=labels,
+        vocabulary=vocabulary,
+        lengths=lengths,
         train_encoded=encode_tokens(train_tokens, vocabulary, lengths.max_length),
         valid_encoded=encode_texts([e.text for e in valid_rows], vocabulary, lengths.max_length, tokenizer),
         train_y=np.array([index[e.label] for e in train_rows], dtype=np.int64),
         valid_y=np.array([index[e.label] for e in valid_rows], dtype=np.int64),
-        vectors=vectors, embedding_dim=embedding_dim,
+        vectors=vectors,
+        embedding_dim=embedding_dim,
     )
 
 
@@ -251,8 +290,10 @@ def _split(examples: list[Example], seed: int, source: Path) -> tuple[list[Examp
         take = min(math.floor(len(rows) * VALID_SHARE + 0.5), len(rows) - 1)
         held.update(int(i) for i in rows[:take])
     if not held:
-        raise InputError(f"{source}: {len(examples)} rows are too few to hold out a "
-                         f"{VALID_SHARE:.0%} validation split; add rows or pass --valid FILE")
+        raise InputError(
+            f"{source}: {len(examples)} rows are too few to hold out a "
+            f"{VALID_SHARE:.0%} validation split; add rows or pass --valid FILE"
+        )
     train = [e for i, e in enumerate(examples) if i not in held]
     valid = [e for i, e in enumerate(examples) if i in held]
     return train, valid
@@ -265,8 +306,9 @@ def _length_info(token_counts: np.ndarray, config: TrainConfig) -> LengthInfo:
     at_percentile = float(np.percentile(token_counts, config.length_percentile))
     max_length = max(math.ceil(at_percentile - 1e-9), min_length)
     truncated = float(np.mean(token_counts > max_length))
-    return LengthInfo(max_length=max_length, min_length=min_length,
-                      percentile=config.length_percentile, truncation_rate=truncated)
+    return LengthInfo(
+        max_length=max_length, min_length=min_length, percentile=config.length_percentile, truncation_rate=truncated
+    )
 
 
 # ---------------------------------------------------------------------------------------------
@@ -295,12 +337,19 @@ def _reproducible(seed: int) -> Iterator[None]:
 
 
 def _build_model(config: TrainConfig, prep: _Prepared) -> SentenceCNN:
-    model = SentenceCNN(len(prep.vocabulary), prep.embedding_dim, len(prep.labels),
-                        widths=config.widths, maps=config.maps, dropout=config.dropout,
-                        pad_id=Vocabulary.pad_id)
+    model = SentenceCNN(
+        len(prep.vocabulary),
+        prep.embedding_dim,
+        len(prep.labels),
+        widths=config.widths,
+        maps=config.maps,
+        dropout=config.dropout,
+        pad_id=Vocabulary.pad_id,
+    )
     generator = torch.Generator().manual_seed(config.seed)
     weight = torch.empty(len(prep.vocabulary), prep.embedding_dim).uniform_(
-        -UNIFORM_INIT, UNIFORM_INIT, generator=generator)
+        -UNIFORM_INIT, UNIFORM_INIT, generator=generator
+    )
     if prep.vectors is not None and prep.vectors.found:
         weight[torch.from_numpy(prep.vectors.ids)] = torch.from_numpy(prep.vectors.matrix)
     weight[Vocabulary.pad_id] = 0.0
@@ -358,7 +407,7 @@ def _fit(config: TrainConfig, prep: _Prepared) -> _Fitted:
                 ids, lengths = pad_batch(train_x, rows, min_length)
                 loss = F.cross_entropy(model(ids, lengths), train_y[torch.from_numpy(rows)])
                 optimizer.zero_grad(set_to_none=True)
-                loss.backward()
+                loss.backward()  # type: ignore[no-untyped-call]  # torch's own annotation is missing
                 optimizer.step()
                 if config.max_norm is not None:
                     model.apply_max_norm(config.max_norm)
@@ -366,17 +415,25 @@ def _fit(config: TrainConfig, prep: _Prepared) -> _Fitted:
                 loss_sum += value * len(rows)
                 bar.advance(loss=value)
         valid_loss, valid_accuracy = evaluate(model, prep.valid_encoded, prep.valid_y, min_length)
-        history.append({"epoch": epoch, "train_loss": loss_sum / len(prep.train), "valid_loss": valid_loss,
-                        "valid_accuracy": valid_accuracy})
+        history.append(
+            {
+                "epoch": epoch,
+                "train_loss": loss_sum / len(prep.train),
+                "valid_loss": valid_loss,
+                "valid_accuracy": valid_accuracy,
+            }
+        )
         improved = valid_loss < best_loss - MIN_IMPROVEMENT
         if improved:
             best_loss, best_epoch, waited = valid_loss, epoch, 0
             best_state = {k: v.detach().clone() for k, v in model.state_dict().items()}
         else:
             waited += 1
-        say(f"epoch {epoch:>2}/{config.epochs}  train loss {history[-1]['train_loss']:.4f}  "
+        say(
+            f"epoch {epoch:>2}/{config.epochs}  train loss {history[-1]['train_loss']:.4f}  "
             f"valid loss {valid_loss:.4f}  valid accuracy {valid_accuracy:.3f}  "
-            f"{time.perf_counter() - started:.1f}s{'  (best so far)' if improved else ''}")
+            f"{time.perf_counter() - started:.1f}s{'  (best so far)' if improved else ''}"
+        )
         if waited >= config.patience:
             say(f"stopping early: validation loss has not improved for {waited} epochs; keeping epoch {best_epoch}")
             break
@@ -396,26 +453,45 @@ def is_run_dir(path: Path) -> bool:
 def _check_out(out: Path) -> None:
     if out.is_dir():
         if any(out.iterdir()) and not is_run_dir(out):
-            raise InputError(f"--out {out}: is a folder that is not a previous run (no {RUN_JSON}); "
-                             "name a new or empty folder, or a previous run folder to replace")
+            raise InputError(
+                f"--out {out}: is a folder that is not a previous run (no {RUN_JSON}); "
+                "name a new or empty folder, or a previous run folder to replace"
+            )
     elif out.exists() or out.is_symlink():
-        raise InputError(f"--out {out}: is an existing file; name a new or empty folder, "
-                         "or a previous run folder to replace")
+        raise InputError(
+            f"--out {out}: is an existing file; name a new or empty folder, or a previous run folder to replace"
+        )
 
 
 def _run_json(config: TrainConfig, prep: _Prepared, fitted: _Fitted) -> dict[str, Any]:
     vectors = None
     if prep.vectors is not None and config.vectors is not None:
-        vectors = VectorsInfo(file_sha256=sha256_file(config.vectors), dim=prep.vectors.dim,
-                              found=prep.vectors.found, mode=config.vectors_mode)  # type: ignore[arg-type]
-    architecture = ArchitectureInfo(embedding_dim=prep.embedding_dim, widths=list(config.widths), maps=config.maps,
-                                    dropout=config.dropout, max_norm=config.max_norm, vectors=vectors)
+        vectors = VectorsInfo(
+            file_sha256=sha256_file(config.vectors),
+            dim=prep.vectors.dim,
+            found=prep.vectors.found,
+            mode=config.vectors_mode,  # type: ignore[arg-type]
+        )
+    architecture = ArchitectureInfo(
+        embedding_dim=prep.embedding_dim,
+        widths=list(config.widths),
+        maps=config.maps,
+        dropout=config.dropout,
+        max_norm=config.max_norm,
+        vectors=vectors,
+    )
     training = TrainingInfo(
         data_sha256=sha256_file(config.data),
         valid_sha256=sha256_file(config.valid) if config.valid is not None else None,
-        rows=len(prep.train), valid_rows=len(prep.valid), seed=config.seed, epochs=len(fitted.history),
-        best_epoch=fitted.best_epoch, batch_size=config.batch_size, learning_rate=config.learning_rate,
-        text_field=config.text_field, label_field=config.label_field,
+        rows=len(prep.train),
+        valid_rows=len(prep.valid),
+        seed=config.seed,
+        epochs=len(fitted.history),
+        best_epoch=fitted.best_epoch,
+        batch_size=config.batch_size,
+        learning_rate=config.learning_rate,
+        text_field=config.text_field,
+        label_field=config.label_field,
     )
     return {
         "labels": prep.labels,
@@ -444,8 +520,7 @@ def train(config: TrainConfig) -> Path:
     prep = _prepare(config)
     with _reproducible(config.seed):
         fitted = _fit(config, prep)
-    valid_lines = "".join(json.dumps({"text": e.text, "label": e.label}, ensure_ascii=False) + "\n"
-                          for e in prep.valid)
+    valid_lines = "".join(json.dumps({"text": e.text, "label": e.label}, ensure_ascii=False) + "\n" for e in prep.valid)
     files = {
         VOCAB_TXT: prep.vocabulary.dumps().encode("utf-8"),
         VALID_JSONL: valid_lines.encode("utf-8"),
@@ -479,8 +554,12 @@ def read_run_json(run_dir: Path) -> dict[str, Any]:
     if missing:
         raise InputError(f"{path}: missing key(s) {', '.join(missing)}; a run.json has {', '.join(RUN_KEYS)}")
     labels = run["labels"]
-    if (not isinstance(labels, list) or len(labels) < 2 or len(set(map(str, labels))) != len(labels)
-            or not all(isinstance(x, str) and x.strip() for x in labels)):
+    if (
+        not isinstance(labels, list)
+        or len(labels) < 2
+        or len(set(map(str, labels))) != len(labels)
+        or not all(isinstance(x, str) and x.strip() for x in labels)
+    ):
         raise InputError(f"{path}: 'labels' must be a list of at least 2 distinct non-empty strings")
     vocab = run["vocabulary"]
     if not isinstance(vocab, dict) or not isinstance(vocab.get("size"), int):
@@ -490,8 +569,11 @@ def read_run_json(run_dir: Path) -> dict[str, Any]:
         ("tokenizer", TokenizerSpec, run["tokenizer"]),
         ("lengths", LengthInfo, run["lengths"]),
         ("architecture", ArchitectureInfo, run["architecture"]),
-        ("training", TrainingInfo,
-         {k: v for k, v in training.items() if k != "history"} if isinstance(training, dict) else training),
+        (
+            "training",
+            TrainingInfo,
+            {k: v for k, v in training.items() if k != "history"} if isinstance(training, dict) else training,
+        ),
     ]
     for key, model, value in checks:
         try:
@@ -515,11 +597,17 @@ def load_run(run_dir: Path) -> tuple[SentenceCNN, Vocabulary, dict[str, Any]]:
     except (OSError, UnicodeDecodeError, BundleError) as exc:
         raise InputError(f"{vocab_path}: not a valid vocabulary ({getattr(exc, 'message', exc)})") from None
     if len(vocabulary) != run["vocabulary"]["size"]:
-        raise InputError(f"{vocab_path}: has {len(vocabulary)} tokens but run.json says "
-                         f"{run['vocabulary']['size']}")
+        raise InputError(f"{vocab_path}: has {len(vocabulary)} tokens but run.json says {run['vocabulary']['size']}")
     arch = ArchitectureInfo.model_validate(run["architecture"])
-    model = SentenceCNN(len(vocabulary), arch.embedding_dim, len(run["labels"]), widths=tuple(arch.widths),
-                        maps=arch.maps, dropout=arch.dropout, pad_id=Vocabulary.pad_id)
+    model = SentenceCNN(
+        len(vocabulary),
+        arch.embedding_dim,
+        len(run["labels"]),
+        widths=tuple(arch.widths),
+        maps=arch.maps,
+        dropout=arch.dropout,
+        pad_id=Vocabulary.pad_id,
+    )
     model_path = run_dir / MODEL_PT
     try:
         state = torch.load(model_path, map_location="cpu", weights_only=True)
@@ -530,8 +618,9 @@ def load_run(run_dir: Path) -> tuple[SentenceCNN, Vocabulary, dict[str, Any]]:
     try:
         model.load_state_dict(state, strict=True)
     except (RuntimeError, TypeError, AttributeError) as exc:
-        raise InputError(f"{model_path}: does not match run.json's architecture and vocabulary "
-                         f"({str(exc).splitlines()[0][:200]})") from None
+        raise InputError(
+            f"{model_path}: does not match run.json's architecture and vocabulary ({str(exc).splitlines()[0][:200]})"
+        ) from None
     return model.eval(), vocabulary, run
 
 
@@ -561,8 +650,10 @@ def summary(run: dict[str, Any], out: Path) -> str:
     ]
     if arch.get("vectors"):
         v = arch["vectors"]
-        lines.append(f"vectors      {v['found']:,} of {run['vocabulary']['size'] - 2:,} words found, "
-                     f"{v['dim']} dimensions, {v['mode']}")
+        lines.append(
+            f"vectors      {v['found']:,} of {run['vocabulary']['size'] - 2:,} words found, "
+            f"{v['dim']} dimensions, {v['mode']}"
+        )
     lines += [
         f"best epoch   {training['best_epoch']} of {training['epochs']} run",
         f"validation   accuracy {best['valid_accuracy']:.3f}, loss {best['valid_loss']:.4f}",
@@ -579,7 +670,23 @@ def _ordinal(p: float) -> str:
 
 
 __all__ = [
-    "DEFAULT_EMBEDDING_DIM", "MODEL_PT", "RUN_JSON", "RUN_KEYS", "VALID_JSONL", "VOCAB_TXT",
-    "Encoded", "TrainConfig", "cli_train", "encode_texts", "encode_tokens", "evaluate", "is_run_dir",
-    "load_run", "pad_batch", "parse_widths", "read_run_json", "summary", "train",
+    "DEFAULT_EMBEDDING_DIM",
+    "MODEL_PT",
+    "RUN_JSON",
+    "RUN_KEYS",
+    "VALID_JSONL",
+    "VOCAB_TXT",
+    "Encoded",
+    "TrainConfig",
+    "cli_train",
+    "encode_texts",
+    "encode_tokens",
+    "evaluate",
+    "is_run_dir",
+    "load_run",
+    "pad_batch",
+    "parse_widths",
+    "read_run_json",
+    "summary",
+    "train",
 ]

@@ -64,8 +64,9 @@ def load_vectors(path: Path, vocabulary: Vocabulary, *, tokenizer: Tokenizer | N
                 raise InputError(f"{path}: line {number}: has a word but no values; {_FORMAT}")
             dim = values
         elif values != dim:
-            raise InputError(f"{path}: line {number}: has {values} values, expected {dim} "
-                             "(every row must have the same dimension)")
+            raise InputError(
+                f"{path}: line {number}: has {values} values, expected {dim} (every row must have the same dimension)"
+            )
         token_id = index.get(normalize(parts[0]))
         # The first row wins when several spellings normalise alike ("Apple", "apple"):
         # these files list frequent words first, so that is the best-estimated vector.
@@ -77,8 +78,9 @@ def load_vectors(path: Path, vocabulary: Vocabulary, *, tokenizer: Tokenizer | N
             bad = next(v for v in parts[1:] if not _is_float(v))
             raise InputError(f"{path}: line {number}: value {bad[:40]!r} is not a number; {_FORMAT}") from None
         if not np.isfinite(row).all():
-            raise InputError(f"{path}: line {number}: has a value that is not finite (nan or inf); "
-                             "vectors must be finite numbers")
+            raise InputError(
+                f"{path}: line {number}: has a value that is not finite (nan or inf); vectors must be finite numbers"
+            )
         seen.add(token_id)
         ids.append(token_id)
         rows.append(row)
@@ -118,8 +120,10 @@ def _lines(path: Path) -> Iterator[tuple[int, str]]:
                 try:
                     line = raw.decode("utf-8")
                 except UnicodeDecodeError as exc:
-                    raise InputError(f"{path}: line {number}: byte offset {offset + exc.start} is not valid "
-                                     f"UTF-8 (byte 0x{raw[exc.start]:02x}); {_FORMAT}, saved as UTF-8") from None
+                    raise InputError(
+                        f"{path}: line {number}: byte offset {offset + exc.start} is not valid "
+                        f"UTF-8 (byte 0x{raw[exc.start]:02x}); {_FORMAT}, saved as UTF-8"
+                    ) from None
                 if number == 1 and line.startswith("\ufeff"):
                     line = line[1:]
                 offset += len(raw)

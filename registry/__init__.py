@@ -10,7 +10,14 @@ from textsieve.registry.bundle import Bundle, open_bundle
 from textsieve.registry.gates import GateSettings, Scores
 from textsieve.registry.names import validate_model_name
 from textsieve.registry.records import (
-    STATES, EvalsetInfo, Event, GateResult, ModelInfo, Promotion, State, VersionInfo,
+    STATES,
+    EvalsetInfo,
+    Event,
+    GateResult,
+    ModelInfo,
+    Promotion,
+    State,
+    VersionInfo,
 )
 
 __all__ = [

@@ -20,8 +20,9 @@ from textsieve.errors import RegistryError, StateError, UnavailableError
 from textsieve.registry._db import Backend, Params, Row, Tx
 
 CONNECT_TIMEOUT_S = 5
-_WRITE_LOCK = ("SELECT pg_advisory_xact_lock("
-               "('x' || substr(md5('textsieve:' || current_schema()), 1, 16))::bit(64)::bigint)")
+_WRITE_LOCK = (
+    "SELECT pg_advisory_xact_lock(('x' || substr(md5('textsieve:' || current_schema()), 1, 16))::bit(64)::bigint)"
+)
 
 
 def _psycopg() -> Any:
@@ -97,8 +98,9 @@ class PostgresBackend(Backend):
         psycopg = _psycopg()
         if self._conn is None or self._pid != os.getpid() or self._conn.closed or self._conn.broken:
             try:
-                self._conn = psycopg.connect(self.url, autocommit=True, connect_timeout=CONNECT_TIMEOUT_S,
-                                             row_factory=psycopg.rows.dict_row)
+                self._conn = psycopg.connect(
+                    self.url, autocommit=True, connect_timeout=CONNECT_TIMEOUT_S, row_factory=psycopg.rows.dict_row
+                )
             except psycopg.Error as exc:
                 raise translate(exc, self.description) from exc
             self._pid = os.getpid()

@@ -26,8 +26,9 @@ def translate(exc: sqlite3.Error, where: str) -> RegistryError:
     if isinstance(exc, sqlite3.IntegrityError):
         return StateError(f"{where}: the change conflicts with the registry's rules ({text})")
     if isinstance(exc, sqlite3.OperationalError) and ("locked" in text or "busy" in text):
-        return UnavailableError(f"{where}: the registry database stayed locked by another writer "
-                                f"for {BUSY_TIMEOUT_S:.0f} s; try again")
+        return UnavailableError(
+            f"{where}: the registry database stayed locked by another writer for {BUSY_TIMEOUT_S:.0f} s; try again"
+        )
     if isinstance(exc, sqlite3.OperationalError) and "unable to open" in text:
         return UnavailableError(f"{where}: cannot open the registry database ({text})")
     return RegistryError(f"{where}: registry database error: {text}")
@@ -77,8 +78,7 @@ class SqliteBackend(Backend):
         # A connection must not cross fork(): a child opens its own.
         if self._conn is None or self._pid != os.getpid():
             try:
-                conn = sqlite3.connect(self.path, timeout=BUSY_TIMEOUT_S, isolation_level=None,
-                                       check_same_thread=False)
+                conn = sqlite3.connect(self.path, timeout=BUSY_TIMEOUT_S, isolation_level=None, check_same_thread=False)
                 conn.execute("PRAGMA journal_mode=WAL")
                 conn.execute("PRAGMA synchronous=FULL")
                 conn.execute("PRAGMA foreign_keys=ON")

@@ -27,7 +27,12 @@ from pathlib import Path
 from types import TracebackType
 
 from textsieve.errors import (
-    BundleError, GateRefusedError, InputError, NotFoundError, RegistryError, StateError,
+    BundleError,
+    GateRefusedError,
+    InputError,
+    NotFoundError,
+    RegistryError,
+    StateError,
 )
 from textsieve.registry._db import Backend
 from textsieve.registry.blobs import BlobStore, materialize
@@ -37,8 +42,8 @@ from textsieve.registry.gates import GateSettings, Side, labels_gate, metric_gat
 from textsieve.registry.manifest import MANIFEST, Manifest
 from textsieve.registry.migrations import migrate
 from textsieve.registry.names import resolve_actor, validate_model_name, validate_reason, validate_version
+from textsieve.registry.queries import Queries
 from textsieve.registry.records import EvalsetInfo, Event, GateResult, ModelInfo, Promotion, VersionInfo
-from textsieve.registry.store import Queries
 
 DB_FILE = "registry.sqlite3"
 BLOB_DIR = "blobs"
@@ -55,8 +60,9 @@ def utc_now() -> str:
 class Registry:
     """A registry: metadata in SQLite or PostgreSQL, artifacts in a content-addressed blob folder."""
 
-    def __init__(self, backend: Backend, blobs: BlobStore, cache: Path, *, location: str,
-                 settings: GateSettings | None = None) -> None:
+    def __init__(
+        self, backend: Backend, blobs: BlobStore, cache: Path, *, location: str, settings: GateSettings | None = None
+    ) -> None:
         self.backend = backend
         self.blobs = blobs
         self.cache = Path(cache)
@@ -154,13 +160,23 @@ class Registry:
         try:
             manifest = Manifest.model_validate_json((folder / MANIFEST).read_bytes())
         except ValueError as exc:  # verified bytes that no longer parse: a newer manifest format
-            raise BundleError(f"version {info.version} of {info.model!r} has a manifest "
-                              "this textsieve cannot read") from exc
+            raise BundleError(
+                f"version {info.version} of {info.model!r} has a manifest this textsieve cannot read"
+            ) from exc
         return Bundle(folder, manifest)
 
     # -- publishing -----------------------------------------------------------------------
-    def publish(self, bundle_dir: Path, model: str, *, actor: str | None = None, reason: str = "",
-                evalset: Path | None = None, text_field: str = "text", label_field: str = "label") -> VersionInfo:
+    def publish(
+        self,
+        bundle_dir: Path,
+        model: str,
+        *,
+        actor: str | None = None,
+        reason: str = "",
+        evalset: Path | None = None,
+        text_field: str = "text",
+        label_field: str = "label",
+    ) -> VersionInfo:
         """Check the bundle fully, store its files as blobs and record it as the model's next version."""
         model = validate_model_name(model)
         actor = resolve_actor(actor)
@@ -198,17 +214,40 @@ class Registry:
             tx.lock_model(model)
             existing = q.version_with_manifest(model, manifest_sha)
             if existing is not None:
-                raise StateError(f"this bundle is already version {existing} of {model!r}; versions are immutable "
-                                 "and each bundle is published once")
+                raise StateError(
+                    f"this bundle is already version {existing} of {model!r}; versions are immutable "
+                    "and each bundle is published once"
+                )
             n = q.next_version(model)
-            q.insert_version(model=model, version=n, labels=list(labels), manifest_sha256=manifest_sha,
-                             created_at=now, published_by=actor, reason=reason, accuracy=m.metrics.accuracy,
-                             macro_f1=m.metrics.macro_f1, parity_passed=m.parity.passed, files=files)
-            q.add_event(model=model, version=n, kind="publish", actor=actor, at=now, reason=reason, details={
-                "manifest_sha256": manifest_sha, "labels": labels, "files": {k: v[0] for k, v in files.items()},
-                "metrics": m.metrics.model_dump(), "parity": parity_gate(m).figures,
-                "source": str(bundle_dir.resolve()),
-            })
+            q.insert_version(
+                model=model,
+                version=n,
+                labels=list(labels),
+                manifest_sha256=manifest_sha,
+                created_at=now,
+                published_by=actor,
+                reason=reason,
+                accuracy=m.metrics.accuracy,
+                macro_f1=m.metrics.macro_f1,
+                parity_passed=m.parity.passed,
+                files=files,
+            )
+            q.add_event(
+                model=model,
+                version=n,
+                kind="publish",
+                actor=actor,
+                at=now,
+                reason=reason,
+                details={
+                    "manifest_sha256": manifest_sha,
+                    "labels": labels,
+                    "files": {k: v[0] for k, v in files.items()},
+                    "metrics": m.metrics.model_dump(),
+                    "parity": parity_gate(m).figures,
+                    "source": str(bundle_dir.resolve()),
+                },
+            )
             if normalised is not None and evalset_sha is not None and evalset is not None:
                 self._record_evalset(q, model, normalised, evalset_sha, Path(evalset).name, now, actor, reason)
             q.touch_model(model, now)
@@ -216,8 +255,16 @@ class Registry:
         assert info is not None
         return info
 
-    def add_evalset(self, model: str, file: Path, *, text_field: str = "text", label_field: str = "label",
-                    actor: str | None = None, reason: str = "") -> EvalsetInfo:
+    def add_evalset(
+        self,
+        model: str,
+        file: Path,
+        *,
+        text_field: str = "text",
+        label_field: str = "label",
+        actor: str | None = None,
+        reason: str = "",
+    ) -> EvalsetInfo:
         """Register a labelled file as the model's evaluation set (the newest one is used by the gates)."""
         model = validate_model_name(model)
         actor = resolve_actor(actor)
@@ -240,13 +287,41 @@ class Registry:
             q.touch_model(model, now)
         return info
 
-    def _record_evalset(self, q: Queries, model: str, normalised: NormalisedEvalset, digest: str, source: str,
-                        now: str, actor: str, reason: str) -> EvalsetInfo:
-        info = q.add_evalset(model=model, sha256=digest, texts=len(normalised.examples), labels=normalised.labels,
-                             source=source, at=now, by=actor)
-        q.add_event(model=model, version=None, kind="evalset", actor=actor, at=now, reason=reason,
-                    details={"evalset_id": info.id, "sha256": digest, "texts": info.texts, "labels": info.labels,
-                             "source": source})
+    def _record_evalset(
+        self,
+        q: Queries,
+        model: str,
+        normalised: NormalisedEvalset,
+        digest: str,
+        source: str,
+        now: str,
+        actor: str,
+        reason: str,
+    ) -> EvalsetInfo:
+        info = q.add_evalset(
+            model=model,
+            sha256=digest,
+            texts=len(normalised.examples),
+            labels=normalised.labels,
+            source=source,
+            at=now,
+            by=actor,
+        )
+        q.add_event(
+            model=model,
+            version=None,
+            kind="evalset",
+            actor=actor,
+            at=now,
+            reason=reason,
+            details={
+                "evalset_id": info.id,
+                "sha256": digest,
+                "texts": info.texts,
+                "labels": info.labels,
+                "source": source,
+            },
+        )
         return info
 
     # -- lifecycle ------------------------------------------------------------------------
@@ -260,8 +335,9 @@ class Registry:
             evalset = q.evalset(model)
         return self._gates(model, target, live, evalset)
 
-    def promote(self, model: str, version: int, to: str = "live", *, reason: str, actor: str | None = None,
-                force: bool = False) -> Promotion:
+    def promote(
+        self, model: str, version: int, to: str = "live", *, reason: str, actor: str | None = None, force: bool = False
+    ) -> Promotion:
         """Move a version to ``candidate`` or ``live``; GateRefusedError when a gate refuses and not forced."""
         model, version = validate_model_name(model), validate_version(version)
         if to not in ("candidate", "live"):
@@ -282,11 +358,15 @@ class Registry:
                     q = Queries(tx)
                     tx.lock_model(model)
                     current = self._require_version(q, model, version)
-                    if (_num(q.in_state(model, "live")) != _num(live) or _id(q.evalset(model)) != _id(evalset)
-                            or current.state != target.state):
+                    if (
+                        _num(q.in_state(model, "live")) != _num(live)
+                        or _id(q.evalset(model)) != _id(evalset)
+                        or current.state != target.state
+                    ):
                         if current.state == "live":
-                            raise StateError(f"version {version} of {model!r} became live meanwhile "
-                                             "(another promotion)")
+                            raise StateError(
+                                f"version {version} of {model!r} became live meanwhile (another promotion)"
+                            )
                         continue  # something moved while the gates ran: judge again against the new state
                     outcome = self._apply_live(q, target, live, gates, reason=reason, actor=actor, force=force)
             else:
@@ -304,31 +384,60 @@ class Registry:
             return Promotion(version=info, gates=gates, forced=bool(failed), retired=_num(live), event_id=event_id)
         raise AssertionError("unreachable: the last attempt runs under the lock")
 
-    def _judge(self, model: str, target: VersionInfo, live: VersionInfo | None,
-               evalset: EvalsetInfo | None) -> list[GateResult]:
+    def _judge(
+        self, model: str, target: VersionInfo, live: VersionInfo | None, evalset: EvalsetInfo | None
+    ) -> list[GateResult]:
         _allowed(target, "live")
         for digest in target.files.values():
             self.blobs.verify(digest)  # a damaged version is never promoted, forced or not
         return self._gates(model, target, live, evalset)
 
-    def _apply_live(self, q: Queries, target: VersionInfo, live: VersionInfo | None, gates: list[GateResult], *,
-                    reason: str, actor: str, force: bool) -> tuple[int, VersionInfo | None, list[str]]:
+    def _apply_live(
+        self,
+        q: Queries,
+        target: VersionInfo,
+        live: VersionInfo | None,
+        gates: list[GateResult],
+        *,
+        reason: str,
+        actor: str,
+        force: bool,
+    ) -> tuple[int, VersionInfo | None, list[str]]:
         """Record the refusal, or make ``target`` live; returns (event id, new info or None if refused, failed)."""
         model, version = target.model, target.version
         failed = [g.name for g in gates if not g.passed]
         gate_dump = [g.model_dump() for g in gates]
         now = utc_now()
         if failed and not force:
-            event_id = q.add_event(model=model, version=version, kind="refuse", actor=actor, at=now, reason=reason,
-                                   details={"to": "live", "from": target.state, "live": _num(live),
-                                            "gates": gate_dump, "failed": failed})
+            event_id = q.add_event(
+                model=model,
+                version=version,
+                kind="refuse",
+                actor=actor,
+                at=now,
+                reason=reason,
+                details={"to": "live", "from": target.state, "live": _num(live), "gates": gate_dump, "failed": failed},
+            )
             return event_id, None, failed
         if live is not None:
             q.set_state(model, live.version, "retired")
         q.make_live(model, version, at=now, previous_live=_num(live), keep_previous=False)
-        event_id = q.add_event(model=model, version=version, kind="promote", actor=actor, at=now, reason=reason,
-                               details={"to": "live", "from": target.state, "retired": _num(live),
-                                        "gates": gate_dump, "forced": bool(failed), "overridden": failed})
+        event_id = q.add_event(
+            model=model,
+            version=version,
+            kind="promote",
+            actor=actor,
+            at=now,
+            reason=reason,
+            details={
+                "to": "live",
+                "from": target.state,
+                "retired": _num(live),
+                "gates": gate_dump,
+                "forced": bool(failed),
+                "overridden": failed,
+            },
+        )
         q.touch_model(model, now)
         return event_id, q.version(model, version), failed
 
@@ -343,9 +452,21 @@ class Registry:
             if previous is not None:
                 q.set_state(model, previous.version, "registered")
             q.set_state(model, version, "candidate")
-            event_id = q.add_event(model=model, version=version, kind="promote", actor=actor, at=now, reason=reason,
-                                   details={"to": "candidate", "from": target.state,
-                                            "replaced_candidate": _num(previous), "gates": [], "forced": False})
+            event_id = q.add_event(
+                model=model,
+                version=version,
+                kind="promote",
+                actor=actor,
+                at=now,
+                reason=reason,
+                details={
+                    "to": "candidate",
+                    "from": target.state,
+                    "replaced_candidate": _num(previous),
+                    "gates": [],
+                    "forced": False,
+                },
+            )
             q.touch_model(model, now)
             info = q.version(model, version)
         assert info is not None
@@ -375,8 +496,15 @@ class Registry:
                 now = utc_now()
                 q.set_state(model, live.version, "retired")
                 q.make_live(model, target.version, at=now, previous_live=None, keep_previous=True)
-                q.add_event(model=model, version=target.version, kind="rollback", actor=actor, at=now, reason=reason,
-                            details={"from": live.version, "to": target.version, "target_was": target.state})
+                q.add_event(
+                    model=model,
+                    version=target.version,
+                    kind="rollback",
+                    actor=actor,
+                    at=now,
+                    reason=reason,
+                    details={"from": live.version, "to": target.version, "target_was": target.state},
+                )
                 q.touch_model(model, now)
                 info = q.version(model, target.version)
             assert info is not None
@@ -390,23 +518,26 @@ class Registry:
         if live is None:
             raise StateError(f"{model!r} has no live version, so there is nothing to roll back")
         if live.previous_live is None:
-            raise StateError(f"version {live.version} of {model!r} is live and no version was live before "
-                             "it; promote another version instead")
+            raise StateError(
+                f"version {live.version} of {model!r} is live and no version was live before "
+                "it; promote another version instead"
+            )
         return live, self._require_version(q, model, live.previous_live)
 
     # -- helpers --------------------------------------------------------------------------
-    def _gates(self, model: str, target: VersionInfo, live: VersionInfo | None,
-               evalset: EvalsetInfo | None) -> list[GateResult]:
+    def _gates(
+        self, model: str, target: VersionInfo, live: VersionInfo | None, evalset: EvalsetInfo | None
+    ) -> list[GateResult]:
         manifest = Manifest.model_validate_json(self.blobs.read_bytes(target.files[MANIFEST]))
-        gates = [parity_gate(manifest),
-                 labels_gate(target.labels, None if live is None else live.labels, _num(live))]
+        gates = [parity_gate(manifest), labels_gate(target.labels, None if live is None else live.labels, _num(live))]
         examples = None
         if evalset is not None:
             examples = parse_stored(self.blobs.read_bytes(evalset.sha256))
         cand = Side(target.version, target.labels, lambda: self._materialize(target))
         live_side = None if live is None else Side(live.version, live.labels, lambda: self._materialize(live))
-        gates += metric_gates(model, cand, live_side, examples, None if evalset is None else evalset.sha256,
-                              self.settings)
+        gates += metric_gates(
+            model, cand, live_side, examples, None if evalset is None else evalset.sha256, self.settings
+        )
         return gates
 
     def _resolve(self, model: str, version: int | None) -> VersionInfo:
@@ -418,8 +549,10 @@ class Registry:
             self._require_model(q, model)
             live = q.in_state(model, "live")
         if live is None:
-            raise NotFoundError(f"{model!r} has no live version; promote one (textsieve promote {model} N --to live) "
-                                "or ask for a version number")
+            raise NotFoundError(
+                f"{model!r} has no live version; promote one (textsieve promote {model} N --to live) "
+                "or ask for a version number"
+            )
         return live
 
     def _require_model(self, q: Queries, model: str) -> None:
@@ -453,9 +586,11 @@ def _allowed(target: VersionInfo, to: str) -> None:
         return
     if target.state == to:
         raise StateError(f"version {target.version} of {target.model!r} is already {to}")
-    raise StateError(f"version {target.version} of {target.model!r} is {target.state} and cannot become {to}; "
-                     f"allowed from: {', '.join(_ALLOWED_FROM[to])}"
-                     + ("; use rollback or promote another version" if target.state == "live" else ""))
+    raise StateError(
+        f"version {target.version} of {target.model!r} is {target.state} and cannot become {to}; "
+        f"allowed from: {', '.join(_ALLOWED_FROM[to])}"
+        + ("; use rollback or promote another version" if target.state == "live" else "")
+    )
 
 
 def _refusal(model: str, version: int, gates: list[GateResult], failed: list[str], event_id: int) -> GateRefusedError:
@@ -464,7 +599,9 @@ def _refusal(model: str, version: int, gates: list[GateResult], failed: list[str
     return GateRefusedError(
         f"version {version} of {model!r} not promoted to live: gate {first.name} refused: {first.detail}{more}; "
         "fix it, or override with --force and a --reason (recorded)",
-        gates=[g.model_dump() for g in gates], failed=failed, event_id=event_id,
+        gates=[g.model_dump() for g in gates],
+        failed=failed,
+        event_id=event_id,
     )
 
 
@@ -479,19 +616,36 @@ def _read_manifest_bytes(bundle_dir: Path) -> bytes:
         raise BundleError(f"{bundle_dir / MANIFEST}: cannot be read ({exc.strerror})") from exc
 
 
-def _check_evalset_labels(path: Path, evalset: NormalisedEvalset, labels: list[str], *,
-                          version: int | None = None) -> None:
+def _check_evalset_labels(
+    path: Path, evalset: NormalisedEvalset, labels: list[str], *, version: int | None = None
+) -> None:
     unknown = unknown_labels(evalset.labels, labels)
     if unknown:
         whose = "the bundle" if version is None else f"version {version}"
-        raise InputError(f"{path}: labels not known to {whose}: {', '.join(repr(x) for x in unknown[:10])}; "
-                         f"allowed: {', '.join(labels)}")
+        raise InputError(
+            f"{path}: labels not known to {whose}: {', '.join(repr(x) for x in unknown[:10])}; "
+            f"allowed: {', '.join(labels)}"
+        )
 
 
 # -- opening ------------------------------------------------------------------------------
-def open_registry(location: str | os.PathLike[str], *, blobs: str | os.PathLike[str] | None = None,
-                  cache: str | os.PathLike[str] | None = None, create: bool = True,
-                  settings: GateSettings | None = None) -> Registry:
+def public_location(location: str) -> str:
+    """``location`` fit to show: a postgresql:// URL loses its password, a folder stays as it is."""
+    if not location.startswith(PG_SCHEMES):
+        return location
+    from textsieve.registry._postgres import describe
+
+    return describe(location)
+
+
+def open_registry(
+    location: str | os.PathLike[str],
+    *,
+    blobs: str | os.PathLike[str] | None = None,
+    cache: str | os.PathLike[str] | None = None,
+    create: bool = True,
+    settings: GateSettings | None = None,
+) -> Registry:
     """Open a registry folder (SQLite + blobs inside it) or a ``postgresql://`` URL plus a blob folder.
 
     Layout of a folder registry: ``registry.sqlite3`` (metadata), ``blobs/<sha256>`` (content)
@@ -503,8 +657,9 @@ def open_registry(location: str | os.PathLike[str], *, blobs: str | os.PathLike[
     text = os.fspath(location)
     if text.startswith(PG_SCHEMES):
         if blobs is None:
-            raise InputError("a postgresql:// registry needs a blob folder: "
-                             "pass --blobs FOLDER (or set TEXTSIEVE_BLOBS)")
+            raise InputError(
+                "a postgresql:// registry needs a blob folder: pass --blobs FOLDER (or set TEXTSIEVE_BLOBS)"
+            )
         from textsieve.registry._postgres import PostgresBackend
 
         blob_root = Path(blobs)
@@ -512,8 +667,9 @@ def open_registry(location: str | os.PathLike[str], *, blobs: str | os.PathLike[
         cache_dir = Path(cache) if cache is not None else blob_root.parent / CACHE_DIR
         location_text = backend.description
     elif "://" in text:
-        raise InputError(f"unsupported registry URL {text.split('://')[0]}://…; "
-                         "use a folder path or a postgresql:// URL")
+        raise InputError(
+            f"unsupported registry URL {text.split('://')[0]}://…; use a folder path or a postgresql:// URL"
+        )
     else:
         folder = Path(text)
         _check_folder(folder, create)
@@ -537,15 +693,19 @@ def _check_folder(folder: Path, create: bool) -> None:
     if (folder / DB_FILE).is_file():
         return
     if not create:
-        raise NotFoundError(f"no registry at {folder}; publish a bundle first (textsieve publish BUNDLE --model NAME) "
-                            "or point --registry / TEXTSIEVE_REGISTRY at one")
+        raise NotFoundError(
+            f"no registry at {folder}; publish a bundle first (textsieve publish BUNDLE --model NAME) "
+            "or point --registry / TEXTSIEVE_REGISTRY at one"
+        )
     if folder.is_dir() and any(p.name not in (BLOB_DIR, CACHE_DIR) for p in folder.iterdir()):
-        raise InputError(f"{folder}: is a folder that is not empty and holds no {DB_FILE}; "
-                         "choose a new or empty folder for a registry")
+        raise InputError(
+            f"{folder}: is a folder that is not empty and holds no {DB_FILE}; "
+            "choose a new or empty folder for a registry"
+        )
     try:
         folder.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise InputError(f"{folder}: cannot create the registry folder ({exc.strerror})") from exc
 
 
-__all__ = ["BLOB_DIR", "CACHE_DIR", "DB_FILE", "Registry", "open_registry", "utc_now"]
+__all__ = ["BLOB_DIR", "CACHE_DIR", "DB_FILE", "Registry", "open_registry", "public_location", "utc_now"]

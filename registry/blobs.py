@@ -19,7 +19,7 @@ from collections.abc import Mapping
 from pathlib import Path
 
 from textsieve.errors import IntegrityError, RegistryError
-from textsieve.registry._fs import CHUNK, fsync_dir
+from textsieve.files import CHUNK, fsync_dir, sha256_file
 
 _SHA256 = re.compile(r"[0-9a-f]{64}")
 _TMP_PREFIX = ".tmp-"
@@ -114,20 +114,17 @@ class BlobStore:
     def verify(self, digest: str) -> Path:
         """The blob's path after re-hashing it; IntegrityError when it is missing or altered."""
         path = self.path(digest)
-        h = hashlib.sha256()
         try:
-            with open(path, "rb") as f:
-                while chunk := f.read(CHUNK):
-                    h.update(chunk)
+            actual = sha256_file(path)
         except FileNotFoundError:
             raise IntegrityError(f"blob {digest[:12]}… is missing from {self.root}", digest=digest) from None
         except OSError as exc:
             raise IntegrityError(f"blob {digest[:12]}… cannot be read ({exc.strerror})", digest=digest) from exc
-        actual = h.hexdigest()
         if actual != digest:
             raise IntegrityError(
                 f"blob {digest[:12]}… in {self.root} has been altered (its content hashes to {actual[:12]}…)",
-                digest=digest)
+                digest=digest,
+            )
         return path
 
     def read_bytes(self, digest: str) -> bytes:
@@ -142,7 +139,8 @@ class BlobStore:
         if actual != digest:
             raise IntegrityError(
                 f"blob {digest[:12]}… in {self.root} has been altered (its content hashes to {actual[:12]}…)",
-                digest=digest)
+                digest=digest,
+            )
         return data
 
     def copy_verified(self, digest: str, target: Path) -> None:
@@ -164,7 +162,8 @@ class BlobStore:
             os.unlink(target)
             raise IntegrityError(
                 f"blob {digest[:12]}… in {self.root} has been altered (its content hashes to {actual[:12]}…)",
-                digest=digest)
+                digest=digest,
+            )
 
     def sweep_temporary(self, older_than: float = STALE_TMP_SECONDS) -> int:
         """Remove temporary files left by writers that were killed; returns how many."""
@@ -225,14 +224,11 @@ def _folder_matches(folder: Path, files: Mapping[str, str]) -> bool:
     if present != set(files):
         return False
     for name, digest in files.items():
-        h = hashlib.sha256()
         try:
-            with open(folder / name, "rb") as f:
-                while chunk := f.read(CHUNK):
-                    h.update(chunk)
+            actual = sha256_file(folder / name)
         except OSError:
             return False
-        if h.hexdigest() != digest:
+        if actual != digest:
             return False
     return True
 

@@ -9,7 +9,7 @@ from pathlib import Path
 from pydantic import ValidationError
 
 from textsieve.errors import BundleError
-from textsieve.registry._fs import sha256_file
+from textsieve.files import sha256_file
 from textsieve.registry.manifest import INPUTS, MANIFEST, MODEL_FILE, OUTPUTS, Manifest
 
 _ONNX_DTYPES = {1: "float32", 7: "int64"}
@@ -59,7 +59,9 @@ def check_graph(bundle: Path, manifest: Manifest) -> None:
         ("input", INPUTS, model.graph.input),
         ("output", OUTPUTS, model.graph.output),
     ):
-        have = {v.name: _ONNX_DTYPES.get(v.type.tensor_type.elem_type, str(v.type.tensor_type.elem_type)) for v in found}
+        have = {
+            v.name: _ONNX_DTYPES.get(v.type.tensor_type.elem_type, str(v.type.tensor_type.elem_type)) for v in found
+        }
         if have != expected:
             raise BundleError(f"{path}: {kind}s are {have}, expected {expected}")
     listed_in = {t.name: t.dtype for t in manifest.onnx.inputs}

@@ -64,21 +64,39 @@ def cli_models(args: argparse.Namespace) -> int:
     if not models:
         _out("no models yet; publish one with: textsieve publish BUNDLE --model NAME")
         return 0
-    _out(table(["MODEL", "LIVE", "CANDIDATE", "VERSIONS", "EVAL TEXTS", "UPDATED"],
-               [[m.name, m.live, m.candidate, m.versions, m.evalset_texts, when(m.updated_at)] for m in models],
-               right=(1, 2, 3, 4)))
+    _out(
+        table(
+            ["MODEL", "LIVE", "CANDIDATE", "VERSIONS", "EVAL TEXTS", "UPDATED"],
+            [[m.name, m.live, m.candidate, m.versions, m.evalset_texts, when(m.updated_at)] for m in models],
+            right=(1, 2, 3, 4),
+        )
+    )
     return 0
 
 
 def cli_versions(args: argparse.Namespace) -> int:
     with _open(args) as reg:
         versions = reg.versions(args.model)
-    _out(table(["VERSION", "STATE", "ACCURACY", "MACRO-F1", "PARITY", "LABELS", "PUBLISHED", "BY", "LIVE SINCE"],
-               [[v.version, v.state, f"{v.accuracy:.4f}", f"{v.macro_f1:.4f}",
-                 "passed" if v.parity_passed else "FAILED",
-                 _labels(v.labels), when(v.created_at), v.published_by,
-                 when(v.promoted_at) if v.state == "live" else None] for v in versions],
-               right=(0, 2, 3)))
+    _out(
+        table(
+            ["VERSION", "STATE", "ACCURACY", "MACRO-F1", "PARITY", "LABELS", "PUBLISHED", "BY", "LIVE SINCE"],
+            [
+                [
+                    v.version,
+                    v.state,
+                    f"{v.accuracy:.4f}",
+                    f"{v.macro_f1:.4f}",
+                    "passed" if v.parity_passed else "FAILED",
+                    _labels(v.labels),
+                    when(v.created_at),
+                    v.published_by,
+                    when(v.promoted_at) if v.state == "live" else None,
+                ]
+                for v in versions
+            ],
+            right=(0, 2, 3),
+        )
+    )
     return 0
 
 
@@ -88,8 +106,9 @@ def cli_show(args: argparse.Namespace) -> int:
             info = reg.live(args.model)
             if info is None:
                 count = len(reg.versions(args.model))
-                raise NotFoundError(f"{args.model!r} has no live version; name one: textsieve show {args.model} N "
-                                    f"(versions 1–{count})")
+                raise NotFoundError(
+                    f"{args.model!r} has no live version; name one: textsieve show {args.model} N (versions 1–{count})"
+                )
         else:
             info = reg.version(args.model, validate_version(args.version))
         manifest = reg.manifest(info.model, info.version)
@@ -97,24 +116,42 @@ def cli_show(args: argparse.Namespace) -> int:
         evalset = reg.evalset(info.model)
     m = manifest
     rows: list[tuple[str, object]] = [
-        ("model", info.model), ("version", info.version), ("state", info.state),
+        ("model", info.model),
+        ("version", info.version),
+        ("state", info.state),
         ("labels", ", ".join(info.labels)),
         ("published", f"{when(info.created_at)} by {info.published_by}" + (f" ({info.reason})" if info.reason else "")),
         ("live since", when(info.promoted_at) if info.state == "live" else NONE),
         ("previous live", info.previous_live if info.previous_live is not None else NONE),
         ("manifest sha256", info.manifest_sha256),
-        ("held-out metrics", f"{m.metrics.split}, {m.metrics.texts} texts: accuracy {m.metrics.accuracy:.4f}, "
-                             f"macro-F1 {m.metrics.macro_f1:.4f}, ECE {m.metrics.ece:.4f}"),
-        ("parity", f"{'passed' if m.parity.passed else 'FAILED'}: max |Δprobability| "
-                   f"{m.parity.max_abs_prob_diff:.2e} (tolerance {m.parity.tolerance:.0e}) on {m.parity.texts} texts"),
+        (
+            "held-out metrics",
+            f"{m.metrics.split}, {m.metrics.texts} texts: accuracy {m.metrics.accuracy:.4f}, "
+            f"macro-F1 {m.metrics.macro_f1:.4f}, ECE {m.metrics.ece:.4f}",
+        ),
+        (
+            "parity",
+            f"{'passed' if m.parity.passed else 'FAILED'}: max |Δprobability| "
+            f"{m.parity.max_abs_prob_diff:.2e} (tolerance {m.parity.tolerance:.0e}) on {m.parity.texts} texts",
+        ),
         ("temperature", f"{m.calibration.temperature:.4f}"),
-        ("architecture", f"filter widths {m.architecture.widths} × {m.architecture.maps} maps, "
-                         f"embedding {m.architecture.embedding_dim}"),
-        ("lengths", f"max {m.lengths.max_length} tokens (truncates {m.lengths.truncation_rate:.2%}), "
-                    f"min {m.lengths.min_length}"),
+        (
+            "architecture",
+            f"filter widths {m.architecture.widths} × {m.architecture.maps} maps, "
+            f"embedding {m.architecture.embedding_dim}",
+        ),
+        (
+            "lengths",
+            f"max {m.lengths.max_length} tokens (truncates {m.lengths.truncation_rate:.2%}), "
+            f"min {m.lengths.min_length}",
+        ),
         ("vocabulary", f"{m.vocabulary.size} tokens"),
-        ("evaluation set", NONE if evalset is None else
-         f"{evalset.source}: {evalset.texts} texts, added {when(evalset.added_at)} by {evalset.added_by}"),
+        (
+            "evaluation set",
+            NONE
+            if evalset is None
+            else f"{evalset.source}: {evalset.texts} texts, added {when(evalset.added_at)} by {evalset.added_by}",
+        ),
     ]
     width = max(len(k) for k, _ in rows)
     _out("\n".join(f"{k:<{width}}  {v}" for k, v in rows))
@@ -129,8 +166,9 @@ def cli_show(args: argparse.Namespace) -> int:
 def cli_promote(args: argparse.Namespace) -> int:
     with _open(args) as reg:
         try:
-            result = reg.promote(args.model, args.version, args.to, reason=args.reason, actor=args.actor,
-                                 force=args.force)
+            result = reg.promote(
+                args.model, args.version, args.to, reason=args.reason, actor=args.actor, force=args.force
+            )
         except GateRefusedError as exc:
             gates = [GateResult.model_validate(g) for g in exc.context.get("gates", [])]
             _out(gate_table(gates), sys.stderr)
@@ -155,16 +193,21 @@ def cli_rollback(args: argparse.Namespace) -> int:
 def cli_history(args: argparse.Namespace) -> int:
     with _open(args) as reg:
         events = reg.history(args.model)
-    _out(table(["EVENT", "TIME (UTC)", "KIND", "VERSION", "ACTOR", "REASON", "DETAIL"],
-               [[e.id, when(e.at), e.kind, e.version, e.actor, e.reason or NONE, summarise(e)] for e in events],
-               right=(0, 3)))
+    _out(
+        table(
+            ["EVENT", "TIME (UTC)", "KIND", "VERSION", "ACTOR", "REASON", "DETAIL"],
+            [[e.id, when(e.at), e.kind, e.version, e.actor, e.reason or NONE, summarise(e)] for e in events],
+            right=(0, 3),
+        )
+    )
     return 0
 
 
 def cli_evalset_add(args: argparse.Namespace) -> int:
     with _open(args) as reg:
-        info = reg.add_evalset(args.model, args.file, text_field=args.text_field, label_field=args.label_field,
-                               actor=args.actor)
+        info = reg.add_evalset(
+            args.model, args.file, text_field=args.text_field, label_field=args.label_field, actor=args.actor
+        )
     counts = ", ".join(f"{label} {n}" for label, n in info.labels.items())
     _out(f"evaluation set for {info.model!r}: {info.texts} texts ({counts}), sha256 {info.sha256[:12]}…")
     return 0
@@ -198,5 +241,16 @@ def _labels(labels: Sequence[str], limit: int = 4) -> str:
     return shown + (f",+{len(labels) - limit}" if len(labels) > limit else "")
 
 
-__all__ = ["cli_evalset_add", "cli_history", "cli_models", "cli_promote", "cli_publish", "cli_rollback", "cli_show",
-           "cli_versions", "gate_table", "summarise", "table"]
+__all__ = [
+    "cli_evalset_add",
+    "cli_history",
+    "cli_models",
+    "cli_promote",
+    "cli_publish",
+    "cli_rollback",
+    "cli_show",
+    "cli_versions",
+    "gate_table",
+    "summarise",
+    "table",
+]

@@ -29,7 +29,7 @@ class NormalisedEvalset:
 
 
 def load_evalset(path: Path, *, text_field: str = "text", label_field: str = "label") -> NormalisedEvalset:
-    from textsieve.exporter.data import load_examples
+    from textsieve.labelled import load_examples
 
     examples = [LabelledText(e.text, e.label) for e in load_examples(Path(path), text_field, label_field)]
     return normalise(examples)
@@ -38,8 +38,9 @@ def load_evalset(path: Path, *, text_field: str = "text", label_field: str = "la
 def normalise(examples: list[LabelledText]) -> NormalisedEvalset:
     if not examples:
         raise InputError("an evaluation set needs at least one labelled text")
-    data = "".join(json.dumps({"label": e.label, "text": e.text}, ensure_ascii=False, sort_keys=True) + "\n"
-                   for e in examples).encode("utf-8")
+    data = "".join(
+        json.dumps({"label": e.label, "text": e.text}, ensure_ascii=False, sort_keys=True) + "\n" for e in examples
+    ).encode("utf-8")
     return NormalisedEvalset(data, examples, dict(sorted(Counter(e.label for e in examples).items())))
 
 

@@ -27,7 +27,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from textsieve.errors import TextsieveError
-from textsieve.registry import metrics
+from textsieve.registry import measures
 from textsieve.registry.bundle import Bundle
 from textsieve.registry.evalsets import LabelledText, unknown_labels
 from textsieve.registry.manifest import Manifest
@@ -65,9 +65,9 @@ def score(bundle: Bundle, examples: list[LabelledText]) -> Scores:
     predicted = probs.argmax(axis=1)
     return Scores(
         texts=len(examples),
-        accuracy=metrics.accuracy(targets, predicted),
+        accuracy=measures.accuracy(targets, predicted),
         macro_f1=present_macro_f1(targets, predicted),
-        ece=metrics.expected_calibration_error(probs, targets, bins=ECE_BINS),
+        ece=measures.expected_calibration_error(probs, targets, bins=ECE_BINS),
     )
 
 
@@ -77,19 +77,25 @@ def present_macro_f1(targets: NDArray[np.int64], predicted: NDArray[np.int64]) -
     remap = {int(c): i for i, c in enumerate(present)}
     t = np.array([remap[int(c)] for c in targets], dtype=np.int64)
     p = np.array([remap[int(c)] for c in predicted], dtype=np.int64)
-    return metrics.macro_f1(t, p, len(present))
+    return measures.macro_f1(t, p, len(present))
 
 
 def parity_gate(manifest: Manifest) -> GateResult:
     p = manifest.parity
-    figures = {"max_abs_prob_diff": p.max_abs_prob_diff, "tolerance": p.tolerance,
-               "label_agreement": p.label_agreement, "batch_invariance_max_diff": p.batch_invariance_max_diff,
-               "texts": p.texts}
+    figures = {
+        "max_abs_prob_diff": p.max_abs_prob_diff,
+        "tolerance": p.tolerance,
+        "label_agreement": p.label_agreement,
+        "batch_invariance_max_diff": p.batch_invariance_max_diff,
+        "texts": p.texts,
+    }
     ok = p.passed and p.max_abs_prob_diff <= p.tolerance and p.label_agreement >= 1.0
-    detail = (f"max |Δprobability| {p.max_abs_prob_diff:.2e} ≤ {p.tolerance:.0e}, labels agree on {p.texts} texts"
-              if ok else
-              f"parity failed: max |Δprobability| {p.max_abs_prob_diff:.2e} (tolerance {p.tolerance:.0e}), "
-              f"label agreement {p.label_agreement:.2%}")
+    detail = (
+        f"max |Δprobability| {p.max_abs_prob_diff:.2e} ≤ {p.tolerance:.0e}, labels agree on {p.texts} texts"
+        if ok
+        else f"parity failed: max |Δprobability| {p.max_abs_prob_diff:.2e} (tolerance {p.tolerance:.0e}), "
+        f"label agreement {p.label_agreement:.2%}"
+    )
     return GateResult(name="parity", passed=ok, detail=detail, figures=figures)
 
 
@@ -100,17 +106,23 @@ def labels_gate(candidate: list[str], live: list[str] | None, live_version: int 
     added, removed = sorted(set(candidate) - set(live)), sorted(set(live) - set(candidate))
     if not added and not removed:
         same_order = candidate == live
-        detail = (f"same labels as live version {live_version}" if same_order
-                  else f"same labels as live version {live_version} "
-                       "(different output order; results are keyed by name)")
+        detail = (
+            f"same labels as live version {live_version}"
+            if same_order
+            else f"same labels as live version {live_version} (different output order; results are keyed by name)"
+        )
         return GateResult(name="labels", passed=True, detail=detail, figures=figures)
     parts = []
     if added:
         parts.append("adds " + ", ".join(repr(x) for x in added))
     if removed:
         parts.append("drops " + ", ".join(repr(x) for x in removed))
-    return GateResult(name="labels", passed=False, figures={**figures, "added": added, "removed": removed},
-                      detail=f"labels differ from live version {live_version}: {'; '.join(parts)}")
+    return GateResult(
+        name="labels",
+        passed=False,
+        figures={**figures, "added": added, "removed": removed},
+        detail=f"labels differ from live version {live_version}: {'; '.join(parts)}",
+    )
 
 
 @dataclass(frozen=True)
@@ -122,50 +134,79 @@ class Side:
     load: Callable[[], Bundle]
 
 
-def metric_gates(model: str, candidate: Side, live: Side | None, evalset: list[LabelledText] | None,
-                 evalset_sha256: str | None, settings: GateSettings) -> list[GateResult]:
+def metric_gates(
+    model: str,
+    candidate: Side,
+    live: Side | None,
+    evalset: list[LabelledText] | None,
+    evalset_sha256: str | None,
+    settings: GateSettings,
+) -> list[GateResult]:
     names = ("macro_f1", "ece")
-    base: dict[str, object] = {"evalset_sha256": evalset_sha256, "texts": None if evalset is None else len(evalset),
-                               "macro_f1_tolerance": settings.macro_f1_tolerance,
-                               "ece_tolerance": settings.ece_tolerance}
+    base: dict[str, object] = {
+        "evalset_sha256": evalset_sha256,
+        "texts": None if evalset is None else len(evalset),
+        "macro_f1_tolerance": settings.macro_f1_tolerance,
+        "ece_tolerance": settings.ece_tolerance,
+    }
     if evalset is None:
         if live is None:
             return [GateResult(name=n, passed=True, detail="no live version", figures=base) for n in names]
         how = f"textsieve evalset add {model} FILE (or textsieve publish BUNDLE --model {model} --evalset FILE)"
-        detail = (f"no evaluation set registered for {model!r}, so 'no worse than live' cannot be checked; "
-                  f"add one: {how}")
+        detail = (
+            f"no evaluation set registered for {model!r}, so 'no worse than live' cannot be checked; add one: {how}"
+        )
         return [GateResult(name=n, passed=False, detail=detail, figures=base) for n in names]
 
     cand_scores, problem = _score_side(candidate, evalset)
     if cand_scores is None:
-        return [GateResult(name=n, passed=False, detail=f"version {candidate.version}: {problem}", figures=base)
-                for n in names]
+        return [
+            GateResult(name=n, passed=False, detail=f"version {candidate.version}: {problem}", figures=base)
+            for n in names
+        ]
     figures = {**base, "candidate": asdict(cand_scores)}
     if live is None:
         detail = "no live version"
-        return [GateResult(name="macro_f1", passed=True, figures=figures,
-                           detail=f"{detail} (candidate macro-F1 {cand_scores.macro_f1:.4f})"),
-                GateResult(name="ece", passed=True, figures=figures,
-                           detail=f"{detail} (candidate ECE {cand_scores.ece:.4f})")]
+        return [
+            GateResult(
+                name="macro_f1",
+                passed=True,
+                figures=figures,
+                detail=f"{detail} (candidate macro-F1 {cand_scores.macro_f1:.4f})",
+            ),
+            GateResult(
+                name="ece", passed=True, figures=figures, detail=f"{detail} (candidate ECE {cand_scores.ece:.4f})"
+            ),
+        ]
     live_scores, problem = _score_side(live, evalset)
     if live_scores is None:
-        return [GateResult(name=n, passed=False, detail=f"live version {live.version}: {problem}", figures=figures)
-                for n in names]
+        return [
+            GateResult(name=n, passed=False, detail=f"live version {live.version}: {problem}", figures=figures)
+            for n in names
+        ]
     figures = {**figures, "live": asdict(live_scores)}
 
     drop = live_scores.macro_f1 - cand_scores.macro_f1
     f1_ok = drop <= settings.macro_f1_tolerance + _EPS
     f1 = GateResult(
-        name="macro_f1", passed=f1_ok, figures={**figures, "change": -drop},
-        detail=(f"macro-F1 {cand_scores.macro_f1:.4f} vs live {live_scores.macro_f1:.4f} "
-                f"(change {-drop:+.4f}, allowed drop {settings.macro_f1_tolerance:.4f}) on {len(evalset)} texts"),
+        name="macro_f1",
+        passed=f1_ok,
+        figures={**figures, "change": -drop},
+        detail=(
+            f"macro-F1 {cand_scores.macro_f1:.4f} vs live {live_scores.macro_f1:.4f} "
+            f"(change {-drop:+.4f}, allowed drop {settings.macro_f1_tolerance:.4f}) on {len(evalset)} texts"
+        ),
     )
     rise = cand_scores.ece - live_scores.ece
     ece_ok = rise <= settings.ece_tolerance + _EPS
     ece = GateResult(
-        name="ece", passed=ece_ok, figures={**figures, "change": rise},
-        detail=(f"ECE {cand_scores.ece:.4f} vs live {live_scores.ece:.4f} "
-                f"(change {rise:+.4f}, allowed rise {settings.ece_tolerance:.4f}) on {len(evalset)} texts"),
+        name="ece",
+        passed=ece_ok,
+        figures={**figures, "change": rise},
+        detail=(
+            f"ECE {cand_scores.ece:.4f} vs live {live_scores.ece:.4f} "
+            f"(change {rise:+.4f}, allowed rise {settings.ece_tolerance:.4f}) on {len(evalset)} texts"
+        ),
     )
     return [f1, ece]
 
@@ -183,5 +224,14 @@ def _score_side(side: Side, evalset: list[LabelledText]) -> tuple[Scores | None,
         return None, f"cannot be scored: {str(exc).splitlines()[0][:200] if str(exc) else type(exc).__name__}"
 
 
-__all__ = ["ECE_BINS", "GateSettings", "Scores", "Side", "labels_gate", "metric_gates", "parity_gate",
-           "present_macro_f1", "score"]
+__all__ = [
+    "ECE_BINS",
+    "GateSettings",
+    "Scores",
+    "Side",
+    "labels_gate",
+    "metric_gates",
+    "parity_gate",
+    "present_macro_f1",
+    "score",
+]

@@ -193,7 +193,23 @@ class Manifest(_Strict):
 
 
 __all__ = [
-    "CARD_FILE", "FORMAT", "FORMAT_VERSION", "INPUTS", "MANIFEST", "MODEL_FILE", "OUTPUTS", "VOCAB_FILE",
-    "ArchitectureInfo", "CalibrationInfo", "LengthInfo", "Manifest", "Metrics", "OnnxInfo",
-    "ParityReport", "TensorInfo", "TrainingInfo", "VectorsInfo", "VocabularyInfo",
+    "CARD_FILE",
+    "FORMAT",
+    "FORMAT_VERSION",
+    "INPUTS",
+    "MANIFEST",
+    "MODEL_FILE",
+    "OUTPUTS",
+    "VOCAB_FILE",
+    "ArchitectureInfo",
+    "CalibrationInfo",
+    "LengthInfo",
+    "Manifest",
+    "Metrics",
+    "OnnxInfo",
+    "ParityReport",
+    "TensorInfo",
+    "TrainingInfo",
+    "VectorsInfo",
+    "VocabularyInfo",
 ]

@@ -22,7 +22,9 @@ class Migration:
 
 
 MIGRATIONS: tuple[Migration, ...] = (
-    Migration("0001_models_and_versions", """
+    Migration(
+        "0001_models_and_versions",
+        """
         CREATE TABLE models (
             name TEXT PRIMARY KEY,
             created_at TEXT NOT NULL,
@@ -56,8 +58,11 @@ MIGRATIONS: tuple[Migration, ...] = (
             PRIMARY KEY (model, version, name),
             FOREIGN KEY (model, version) REFERENCES versions (model, version)
         )
-    """),
-    Migration("0002_evaluation_sets", """
+    """,
+    ),
+    Migration(
+        "0002_evaluation_sets",
+        """
         CREATE TABLE evalsets (
             id {serial},
             model TEXT NOT NULL REFERENCES models(name),
@@ -69,8 +74,11 @@ MIGRATIONS: tuple[Migration, ...] = (
             added_by TEXT NOT NULL
         );
         CREATE INDEX evalsets_model ON evalsets (model, id)
-    """),
-    Migration("0003_events", """
+    """,
+    ),
+    Migration(
+        "0003_events",
+        """
         CREATE TABLE events (
             id {serial},
             model TEXT NOT NULL,
@@ -82,7 +90,8 @@ MIGRATIONS: tuple[Migration, ...] = (
             details TEXT NOT NULL
         );
         CREATE INDEX events_model ON events (model, id)
-    """),
+    """,
+    ),
 )
 
 _TABLE = "CREATE TABLE IF NOT EXISTS schema_migrations (name TEXT PRIMARY KEY, applied_at TEXT NOT NULL)"
@@ -106,8 +115,10 @@ def migrate(backend: Backend, now: str, steps: tuple[Migration, ...] = MIGRATION
         done = {r["name"] for r in tx.all("SELECT name FROM schema_migrations")}
         unknown = sorted(done - set(known))
         if unknown:
-            raise RegistryError(f"{backend.description}: the registry has schema step {unknown[-1]!r}, "
-                                "which this textsieve does not know; upgrade textsieve")
+            raise RegistryError(
+                f"{backend.description}: the registry has schema step {unknown[-1]!r}, "
+                "which this textsieve does not know; upgrade textsieve"
+            )
         for step in steps:
             if step.name in done:
                 continue

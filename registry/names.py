@@ -84,6 +84,11 @@ def validate_reason(reason: str, *, required: bool) -> str:
 
 
 __all__ = [
-    "MAX_VERSION", "MODEL_NAME", "MODEL_NAME_RULE", "resolve_actor", "validate_model_name", "validate_reason",
+    "MAX_VERSION",
+    "MODEL_NAME",
+    "MODEL_NAME_RULE",
+    "resolve_actor",
+    "validate_model_name",
+    "validate_reason",
     "validate_version",
 ]

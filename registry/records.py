@@ -35,11 +35,20 @@ class VersionInfo(_Record):
     @classmethod
     def from_row(cls, row: dict[str, Any], files: dict[str, str]) -> VersionInfo:
         return cls(
-            model=row["model"], version=row["version"], state=row["state"], labels=json.loads(row["labels"]),
-            created_at=row["created_at"], published_by=row["published_by"], reason=row["reason"],
-            manifest_sha256=row["manifest_sha256"], accuracy=row["accuracy"], macro_f1=row["macro_f1"],
-            parity_passed=bool(row["parity_passed"]), promoted_at=row["promoted_at"],
-            previous_live=row["previous_live"], files=files,
+            model=row["model"],
+            version=row["version"],
+            state=row["state"],
+            labels=json.loads(row["labels"]),
+            created_at=row["created_at"],
+            published_by=row["published_by"],
+            reason=row["reason"],
+            manifest_sha256=row["manifest_sha256"],
+            accuracy=row["accuracy"],
+            macro_f1=row["macro_f1"],
+            parity_passed=bool(row["parity_passed"]),
+            promoted_at=row["promoted_at"],
+            previous_live=row["previous_live"],
+            files=files,
         )
 
 
@@ -65,9 +74,16 @@ class EvalsetInfo(_Record):
 
     @classmethod
     def from_row(cls, row: dict[str, Any]) -> EvalsetInfo:
-        return cls(id=row["id"], model=row["model"], sha256=row["sha256"], texts=row["texts"],
-                   labels=json.loads(row["labels"]), source=row["source"], added_at=row["added_at"],
-                   added_by=row["added_by"])
+        return cls(
+            id=row["id"],
+            model=row["model"],
+            sha256=row["sha256"],
+            texts=row["texts"],
+            labels=json.loads(row["labels"]),
+            source=row["source"],
+            added_at=row["added_at"],
+            added_by=row["added_by"],
+        )
 
 
 class GateResult(_Record):
@@ -97,10 +113,26 @@ class Event(_Record):
 
     @classmethod
     def from_row(cls, row: dict[str, Any]) -> Event:
-        return cls(id=row["id"], model=row["model"], version=row["version"], kind=row["kind"], actor=row["actor"],
-                   at=row["at"], reason=row["reason"], details=json.loads(row["details"]))
+        return cls(
+            id=row["id"],
+            model=row["model"],
+            version=row["version"],
+            kind=row["kind"],
+            actor=row["actor"],
+            at=row["at"],
+            reason=row["reason"],
+            details=json.loads(row["details"]),
+        )
 
 
 __all__ = [
-    "STATES", "EvalsetInfo", "Event", "EventKind", "GateResult", "ModelInfo", "Promotion", "State", "VersionInfo",
+    "STATES",
+    "EvalsetInfo",
+    "Event",
+    "EventKind",
+    "GateResult",
+    "ModelInfo",
+    "Promotion",
+    "State",
+    "VersionInfo",
 ]

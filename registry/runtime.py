@@ -23,7 +23,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from textsieve.registry.bundle import Bundle, open_bundle
-from textsieve.registry.metrics import softmax
+from textsieve.registry.measures import softmax
 from textsieve.registry.tokenizer import Tokenizer, Vocabulary
 
 # Half the strongest window: lower floors let weak windows chain a short text into one span
@@ -60,8 +60,14 @@ class Span:
     filters: list[int] = field(default_factory=list)
 
     def public(self) -> dict[str, object]:
-        return {"start": self.start, "end": self.end, "text": self.text, "label": self.label,
-                "weight": self.weight, "width": self.width}
+        return {
+            "start": self.start,
+            "end": self.end,
+            "text": self.text,
+            "label": self.label,
+            "weight": self.weight,
+            "width": self.width,
+        }
 
 
 @dataclass(slots=True)
@@ -84,9 +90,14 @@ class Prediction:
     unknown: int
 
     def public(self) -> dict[str, object]:
-        return {"label": self.label, "probabilities": self.probabilities,
-                "spans": [s.public() for s in self.spans], "tokens": self.tokens,
-                "truncated": self.truncated, "unknown": self.unknown}
+        return {
+            "label": self.label,
+            "probabilities": self.probabilities,
+            "spans": [s.public() for s in self.spans],
+            "tokens": self.tokens,
+            "truncated": self.truncated,
+            "unknown": self.unknown,
+        }
 
 
 def make_session(model_path: Path, threads: int = 1):  # type: ignore[no-untyped-def]
@@ -240,12 +251,16 @@ class Predictor:
         preds = []
         for row, enc in enumerate(encoded):
             c = int(best[row])
-            preds.append(Prediction(
-                labels[c],
-                dict(zip(labels, probs[row].tolist(), strict=True)),
-                self.spans(enc, out, row, c, spans),
-                enc.tokens, enc.truncated, enc.unknown,
-            ))
+            preds.append(
+                Prediction(
+                    labels[c],
+                    dict(zip(labels, probs[row].tolist(), strict=True)),
+                    self.spans(enc, out, row, c, spans),
+                    enc.tokens,
+                    enc.truncated,
+                    enc.unknown,
+                )
+            )
         return preds
 
 

@@ -111,7 +111,7 @@ _SPACE = re.compile("\\s")
 # halves of two-part canonical decompositions (how Unicode's NFC_Quick_Check=Maybe set is
 # built). All of them are combining marks (category M or a non-zero combining class), which
 # _Route already sends to the full pattern, except the Hangul vowel and final jamo, which
-# compose algorithmically; tests/test_tokenizer.py checks this against this Python's tables.
+# compose algorithmically; tests/registry/test_tokenizer.py checks this against this Python's tables.
 HANGUL_COMPOSING = frozenset(chr(cp) for cp in (*range(0x1161, 0x1176), *range(0x11A8, 0x11C3)))
 
 
@@ -164,9 +164,12 @@ class _Route:
         full = cat[0] == "M" or cat == "Cf" or bool(unicodedata.combining(c)) or c in HANGUL_COMPOSING
         cjk = self.split_cjk and any(lo <= cp <= hi for lo, hi in _CJK_RANGES)
         folded = c.casefold() if self.fold else c
-        fold = (unicodedata.normalize("NFKC", c) == c and len(folded) == 1
-                and bool(_WORD.match(c)) == bool(_WORD.match(folded))
-                and bool(_SPACE.match(c)) == bool(_SPACE.match(folded)))
+        fold = (
+            unicodedata.normalize("NFKC", c) == c
+            and len(folded) == 1
+            and bool(_WORD.match(c)) == bool(_WORD.match(folded))
+            and bool(_SPACE.match(c)) == bool(_SPACE.match(folded))
+        )
         return full, cjk, fold
 
 
@@ -249,8 +252,9 @@ class Vocabulary:
     @classmethod
     def build(cls, counts: Counter[str], *, min_count: int = 1, max_size: int | None = None) -> Vocabulary:
         """Most frequent first, ties broken alphabetically, so the result is deterministic."""
-        kept = sorted((t for t, c in counts.items() if c >= min_count and t not in (PAD, UNK)),
-                      key=lambda t: (-counts[t], t))
+        kept = sorted(
+            (t for t, c in counts.items() if c >= min_count and t not in (PAD, UNK)), key=lambda t: (-counts[t], t)
+        )
         if max_size is not None:
             kept = kept[: max(max_size - 2, 0)]
         return cls([PAD, UNK, *kept])

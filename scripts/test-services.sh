@@ -84,7 +84,7 @@ SQL
 }
 
 install_chromium() {
-    # The reviewer page is tested in a real headless browser (tests/test_page_browser.py).
+    # The reviewer page is tested in a real headless browser (tests/service/test_page_browser.py).
     if [ -x /usr/bin/chromium ] && [ -x /usr/bin/chromedriver ]; then
         return
     fi

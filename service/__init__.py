@@ -9,15 +9,15 @@ from __future__ import annotations
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
-    from textsieve.service.app import create_app
     from textsieve.service.settings import Settings
+    from textsieve.service.web.app import create_app
 
 __all__ = ["Settings", "create_app"]
 
 
 def __getattr__(name: str) -> Any:
     if name == "create_app":
-        from textsieve.service.app import create_app
+        from textsieve.service.web.app import create_app
 
         return create_app
     if name == "Settings":

@@ -22,22 +22,39 @@ GRACEFUL_SECONDS = 10
 
 def cli_serve(args: argparse.Namespace) -> int:
     import uvicorn
+
     from textsieve.service import logs
-    from textsieve.service.app import create_app
+    from textsieve.service.web.app import create_app
 
     settings = load_settings(
-        host=args.host, port=args.port, registry=args.registry, blobs=getattr(args, "blobs", None),
-        models=getattr(args, "models", None), workers=getattr(args, "workers", None),
+        host=args.host,
+        port=args.port,
+        registry=args.registry,
+        blobs=getattr(args, "blobs", None),
+        models=getattr(args, "models", None),
+        workers=getattr(args, "workers", None),
         inference=getattr(args, "inference", None),
     )
     logs.configure()
     log = logging.getLogger("textsieve.service")
-    log.info("serving on http://%s:%s (page at /, readiness at /readyz); registry %s; admin %s",
-             settings.host, settings.port, settings.registry_label, "on" if settings.admin_enabled else "off")
+    log.info(
+        "serving on http://%s:%s (page at /, readiness at /readyz); registry %s; admin %s",
+        settings.host,
+        settings.port,
+        settings.registry_label,
+        "on" if settings.admin_enabled else "off",
+    )
     print(f"textsieve: serving on http://{settings.host}:{settings.port}/ (Ctrl-C stops)", file=sys.stderr, flush=True)
-    config = uvicorn.Config(create_app(settings), host=settings.host, port=settings.port, access_log=False,
-                            log_config=None, lifespan="on", timeout_graceful_shutdown=GRACEFUL_SECONDS,
-                            server_header=False)
+    config = uvicorn.Config(
+        create_app(settings),
+        host=settings.host,
+        port=settings.port,
+        access_log=False,
+        log_config=None,
+        lifespan="on",
+        timeout_graceful_shutdown=GRACEFUL_SECONDS,
+        server_header=False,
+    )
     server = uvicorn.Server(config)
     stopped: list[int] = []
 

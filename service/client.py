@@ -37,8 +37,8 @@ def highlight(text: str, spans: list[dict[str, Any]], *, ansi: bool) -> str:
     for rank, s in ranked:
         if s["start"] < at:
             continue
-        out.append(text[at:s["start"]])
-        piece = text[s["start"]:s["end"]]
+        out.append(text[at : s["start"]])
+        piece = text[s["start"] : s["end"]]
         out.append(f"{BOLD}{piece}{RESET}" if ansi else f"[{piece}]{rank}")
         at = s["end"]
     out.append(text[at:])
@@ -51,14 +51,17 @@ def render(texts: list[str], reply: dict[str, Any], *, ansi: bool) -> str:
         label = res["label"]
         probs = sorted(res["probabilities"].items(), key=lambda kv: -kv[1])
         head = f"{BOLD}{label}{RESET}" if ansi else label
-        lines.append(f"[{i}] {head}  {100 * res['probabilities'][label]:.1f} %   "
-                     f"({reply['model']} v{reply['version']})")
+        lines.append(
+            f"[{i}] {head}  {100 * res['probabilities'][label]:.1f} %   ({reply['model']} v{reply['version']})"
+        )
         lines.append(f"    {highlight(text, res['spans'], ansi=ansi)}")
         lines.append("    probabilities  " + "  ".join(f"{k} {v:.4f}" for k, v in probs))
         if res["spans"]:
             rows = [("#", "weight", "tokens", "chars", "span")]
-            rows += [(str(n), f"{s['weight']:.3f}", str(s["width"]), f"{s['start']}-{s['end']}", s["text"])
-                     for n, s in enumerate(res["spans"], 1)]
+            rows += [
+                (str(n), f"{s['weight']:.3f}", str(s["width"]), f"{s['start']}-{s['end']}", s["text"])
+                for n, s in enumerate(res["spans"], 1)
+            ]
             widths = [max(len(r[c]) for r in rows) for c in range(4)]
             for r in rows:
                 lines.append("    " + "  ".join(r[c].ljust(widths[c]) for c in range(4)) + "  " + r[4])
@@ -82,8 +85,9 @@ def cli_predict(args: argparse.Namespace) -> int:
         with httpx.Client(timeout=60.0) as client:
             r = client.post(f"{base}/v1/predict", json=payload)
     except httpx.HTTPError as exc:
-        raise UnavailableError(f"cannot reach {base} ({type(exc).__name__}: {exc}); "
-                               "is 'textsieve serve' running?") from exc
+        raise UnavailableError(
+            f"cannot reach {base} ({type(exc).__name__}: {exc}); is 'textsieve serve' running?"
+        ) from exc
     if r.status_code >= 500:
         raise UnavailableError(_problem_detail(r))
     if r.status_code != 200:

@@ -1,6 +1,6 @@
 """Service settings: ``TEXTSIEVE_*`` environment variables, overridden by CLI flags or arguments.
 
-Built only inside :func:`textsieve.service.app.create_app` or the ``serve`` verb, never at import,
+Built only inside :func:`textsieve.service.web.app.create_app` or the ``serve`` verb, never at import,
 so tests construct their own.
 """
 
@@ -29,17 +29,27 @@ class Settings(BaseSettings):
     host: str = "127.0.0.1"
     port: int = Field(8000, ge=0, le=65535)
     models: Annotated[list[str], NoDecode] = Field(
-        default_factory=list, description="models to serve (comma-separated); empty: every model with a live version")
+        default_factory=list, description="models to serve (comma-separated); empty: every model with a live version"
+    )
 
-    workers: int = Field(default_factory=_cores, ge=1, le=256,
-                         description="inference workers (default: one per core), each with one single-thread "
-                                     "onnxruntime session per served version")
+    workers: int = Field(
+        default_factory=_cores,
+        ge=1,
+        le=256,
+        description="inference workers (default: one per core), each with one single-thread "
+        "onnxruntime session per served version",
+    )
     inference: Literal["processes", "threads"] = Field(
-        "processes", description="where workers run: processes (tokenizing and spans outside the server's GIL; "
-                                 "fastest) or threads (one process, less memory)")
-    batch_max_texts: int = Field(128, ge=1, le=4096,
-                                 description="most texts a worker takes at once (sorted by length and cut into "
-                                             "onnxruntime calls by padding)")
+        "processes",
+        description="where workers run: processes (tokenizing and spans outside the server's GIL; "
+        "fastest) or threads (one process, less memory)",
+    )
+    batch_max_texts: int = Field(
+        128,
+        ge=1,
+        le=4096,
+        description="most texts a worker takes at once (sorted by length and cut into onnxruntime calls by padding)",
+    )
     batch_wait_ms: float = Field(1.0, ge=0, le=1000, description="longest a text waits for others to fill its batch")
 
     max_texts: int = Field(256, ge=1, description="most texts in one request")
@@ -76,15 +86,19 @@ class Settings(BaseSettings):
     def _long_token(cls, v: SecretStr | None) -> SecretStr | None:
         # A short shared secret can be guessed over HTTP; refuse it rather than warn.
         if v is not None and len(v.get_secret_value()) < MIN_TOKEN_CHARS:
-            raise ValueError(f"the admin token must be at least {MIN_TOKEN_CHARS} characters "
-                             "(e.g. python -c 'import secrets; print(secrets.token_urlsafe(32))')")
+            raise ValueError(
+                f"the admin token must be at least {MIN_TOKEN_CHARS} characters "
+                "(e.g. python -c 'import secrets; print(secrets.token_urlsafe(32))')"
+            )
         return v
 
     @model_validator(mode="after")
     def _body_fits_one_text(self) -> Settings:
         if self.max_body_bytes < self.max_chars:
-            raise ValueError(f"max_body_bytes ({self.max_body_bytes}) is smaller than max_chars "
-                             f"({self.max_chars}): a single text of the allowed size could never be sent")
+            raise ValueError(
+                f"max_body_bytes ({self.max_body_bytes}) is smaller than max_chars "
+                f"({self.max_chars}): a single text of the allowed size could never be sent"
+            )
         return self
 
     @property
@@ -99,9 +113,7 @@ class Settings(BaseSettings):
 
 def public_location(location: str) -> str:
     """``location`` fit to show: a postgresql:// URL loses its password, a folder stays as it is."""
-    if "://" not in location:
-        return location
-    from textsieve.registry._postgres import describe
+    from textsieve.registry.api import public_location as describe
 
     return describe(location)
 

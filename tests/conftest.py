@@ -11,6 +11,9 @@ from pathlib import Path
 
 import pytest
 
+# Fixtures every part of the suite uses: registries on SQLite and PostgreSQL, served apps.
+pytest_plugins = ["tests.helpers.registry_fixtures", "tests.helpers.service"]
+
 TINY = dict(embedding_dim=16, maps=8, epochs=4, patience=2, batch_size=50)
 
 
@@ -26,8 +29,9 @@ def _relabel(src: Path, dst: Path, mapping: dict[str, str]) -> None:
 def train_tiny(data: Path, out: Path, *, seed: int, **overrides: object) -> Path:
     from textsieve.exporter.train import TrainConfig, train
 
-    config = TrainConfig(data=data / "train.jsonl", out=out, valid=data / "valid.jsonl", seed=seed,
-                         quiet=True, **{**TINY, **overrides})  # type: ignore[arg-type]
+    config = TrainConfig(
+        data=data / "train.jsonl", out=out, valid=data / "valid.jsonl", seed=seed, quiet=True, **{**TINY, **overrides}
+    )  # type: ignore[arg-type]
     return train(config)
 
 

@@ -17,18 +17,27 @@ DEFAULT_REGISTRY = "./textsieve-registry"
 class _Parser(argparse.ArgumentParser):
     def error(self, message: str) -> None:  # type: ignore[override]
         # One line and exit status 2, like every other bad-input path.
-        print(f"textsieve: error: {message} (see 'textsieve {self.prog.split()[-1]} --help')"
-              if " " in self.prog else f"textsieve: error: {message} (see 'textsieve --help')",
-              file=sys.stderr)
+        print(
+            f"textsieve: error: {message} (see 'textsieve {self.prog.split()[-1]} --help')"
+            if " " in self.prog
+            else f"textsieve: error: {message} (see 'textsieve --help')",
+            file=sys.stderr,
+        )
         raise SystemExit(2)
 
 
 def _registry_arg(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--registry", default=os.environ.get("TEXTSIEVE_REGISTRY", DEFAULT_REGISTRY),
-                   help="registry folder, or a postgresql:// URL (then --blobs names the blob folder); "
-                        "default $TEXTSIEVE_REGISTRY or ./textsieve-registry")
-    p.add_argument("--blobs", default=os.environ.get("TEXTSIEVE_BLOBS"),
-                   help="blob folder when --registry is a postgresql:// URL ($TEXTSIEVE_BLOBS)")
+    p.add_argument(
+        "--registry",
+        default=os.environ.get("TEXTSIEVE_REGISTRY", DEFAULT_REGISTRY),
+        help="registry folder, or a postgresql:// URL (then --blobs names the blob folder); "
+        "default $TEXTSIEVE_REGISTRY or ./textsieve-registry",
+    )
+    p.add_argument(
+        "--blobs",
+        default=os.environ.get("TEXTSIEVE_BLOBS"),
+        help="blob folder when --registry is a postgresql:// URL ($TEXTSIEVE_BLOBS)",
+    )
 
 
 def _actor_arg(p: argparse.ArgumentParser) -> None:
@@ -78,9 +87,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, required=True)
     p.add_argument("--tolerance", type=float, default=1e-4, help="max |Δprobability| torch vs ONNX")
     p.add_argument("--test", type=Path, help="held-out file for the manifest's metrics (default: validation)")
-    p.add_argument("--layout", choices=("auto", "tap-tables", "convolution"), default="auto",
-                   help="how the graph computes the convolution: precomputed per-word tap tables "
-                        "(fast; auto picks it when they fit in 256 MiB) or Conv over embeddings")
+    p.add_argument(
+        "--layout",
+        choices=("auto", "tap-tables", "convolution"),
+        default="auto",
+        help="how the graph computes the convolution: precomputed per-word tap tables "
+        "(fast; auto picks it when they fit in 256 MiB) or Conv over embeddings",
+    )
     p.set_defaults(func=_lazy("textsieve.exporter.export", "cli_export"))
 
     p = sub.add_parser("publish", help="store a bundle as the next version of a model")
@@ -145,8 +158,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--port", type=int, default=int(os.environ.get("TEXTSIEVE_PORT", "8000")))
     p.add_argument("--models", help="comma-separated model names to serve (default: every model with a live version)")
     p.add_argument("--workers", type=int, help="inference workers (default: one per core)")
-    p.add_argument("--inference", choices=("processes", "threads"),
-                   help="run inference workers as processes (default; fastest) or as threads of the server")
+    p.add_argument(
+        "--inference",
+        choices=("processes", "threads"),
+        help="run inference workers as processes (default; fastest) or as threads of the server",
+    )
     _registry_arg(p)
     p.set_defaults(func=_lazy("textsieve.service.cli", "cli_serve"))
 
@@ -174,9 +190,13 @@ def _lazy(module: str, name: str) -> Callable[[argparse.Namespace], int]:
             mod = importlib.import_module(module)
         except ModuleNotFoundError as exc:
             if exc.name in ("torch", "onnxscript", "tqdm"):
-                raise TextsieveError(f"'{args.command}' needs the training extras: pip install 'textsieve[train]'") from exc
+                raise TextsieveError(
+                    f"'{args.command}' needs the training extras: pip install 'textsieve[train]'"
+                ) from exc
             if exc.name in ("fastapi", "uvicorn", "pydantic_settings", "orjson", "psycopg"):
-                raise TextsieveError(f"'{args.command}' needs the serving extras: pip install 'textsieve[serve]'") from exc
+                raise TextsieveError(
+                    f"'{args.command}' needs the serving extras: pip install 'textsieve[serve]'"
+                ) from exc
             raise
         result: int | None = getattr(mod, name)(args)
         return result or 0

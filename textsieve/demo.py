@@ -11,8 +11,6 @@ import json
 import shlex
 from pathlib import Path
 
-from textsieve.cli import main as cli_main
-
 MODEL = "helpdesk"
 EXAMPLE = [
     "The chain is not broken, but I was charged twice this month.",
@@ -29,10 +27,11 @@ def run_demo(args: argparse.Namespace) -> int:
     from textsieve.exporter.export import export
     from textsieve.exporter.train import TrainConfig, train
     from textsieve.registry import open_registry
+    from textsieve.registry.cli import cli_models
+    from textsieve.service.cli import cli_serve
 
     work: Path = args.workdir
     registry = args.registry
-    reg_args = ["--registry", str(registry)] + (["--blobs", str(args.blobs)] if args.blobs else [])
 
     _step(1, "invented data: help-desk messages to a fictional bike-share and tool library")
     paths = write_splits(work / "data")
@@ -50,7 +49,9 @@ def run_demo(args: argparse.Namespace) -> int:
     _step(3, "export to ONNX, calibrate, check parity against PyTorch")
     bundle = work / "bundle"
     manifest = export(run, bundle, test=paths["test"], log=lambda m: print(f"  {m}", flush=True))
-    print(f"  bundle: {bundle}  (test accuracy {manifest.metrics.accuracy:.4f}, macro-F1 {manifest.metrics.macro_f1:.4f})")
+    print(
+        f"  bundle: {bundle}  (test accuracy {manifest.metrics.accuracy:.4f}, macro-F1 {manifest.metrics.macro_f1:.4f})"
+    )
 
     _step(4, f"publish to the registry at {registry}")
     with open_registry(registry, blobs=args.blobs) as reg:
@@ -62,7 +63,7 @@ def run_demo(args: argparse.Namespace) -> int:
         promotion = reg.promote(MODEL, info.version, to="live", reason="demo: gates passed")
         for gate in promotion.gates:
             print(f"  gate {gate.name:<10} {'passed' if gate.passed else 'FAILED'}  {gate.detail}")
-    cli_main(["models", *reg_args])
+    cli_models(args)
 
     url = f"http://{args.host}:{args.port}"
     body = json.dumps({"texts": EXAMPLE, "spans": 2})
@@ -74,4 +75,4 @@ def run_demo(args: argparse.Namespace) -> int:
         print("\n(--no-serve: not starting the service)")
         return 0
     _step(6, f"serve on {url} (Ctrl-C to stop)")
-    return cli_main(["serve", "--host", args.host, "--port", str(args.port), *reg_args])
+    return cli_serve(argparse.Namespace(host=args.host, port=args.port, registry=str(registry), blobs=args.blobs))

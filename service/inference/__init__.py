@@ -1,0 +1,1 @@
+"""Inference: micro-batching, worker processes, packing texts into graph calls, and spans."""

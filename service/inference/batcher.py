@@ -1,0 +1,259 @@
+"""Dynamic micro-batching: texts from concurrent requests share onnxruntime calls.
+
+Threading model. ``workers`` inference threads (default: one per core). With
+``inference=threads`` each owns one single-thread onnxruntime session of every loaded version
+and does all of a batch's work itself; onnxruntime releases the GIL inside ``session.run``, but
+tokenizing and building replies take turns with the event loop on the GIL. With
+``inference=processes`` (the default) thread i hands each batch to worker process i and waits
+(:mod:`textsieve.service.inference.workers`), so that work runs in parallel too. Each served
+version has one collector task on the event loop: it waits for a free thread, then takes queued
+texts in arrival order, up to ``batch_max_texts``, waiting at most ``batch_wait_ms`` after the
+oldest text arrived for more to join. Under load the wait for a free thread is what fills
+batches; the explicit wait only matters when threads are idle. The thread encodes the batch,
+sorts it by length and runs it as sub-batches each padded only to its own longest text
+(:mod:`textsieve.service.inference.packing`), and builds the reply dicts, so the event loop only
+routes finished results. Graph outputs are masked, so a text's result does not depend on its
+batch neighbours.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import functools
+import itertools
+import threading
+import time
+from collections import deque
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+from typing import Any
+
+from textsieve.errors import UnavailableError
+from textsieve.service.inference.packing import run_packed
+from textsieve.service.inference.spans import explain
+from textsieve.service.inference.workers import WorkerProcesses
+from textsieve.service.modelset.loader import ServedModel
+from textsieve.service.telemetry import ServiceMetrics
+
+Result = dict[str, Any]
+PIPELINE = 2  # batches in flight per worker process
+
+
+class InferencePool:
+    """``workers`` threads; thread i only ever uses session i of a version, or worker process i."""
+
+    def __init__(self, workers: int, mode: str = "threads") -> None:
+        self.workers = workers
+        self.mode = mode
+        self.procs = WorkerProcesses(workers) if mode == "processes" else None
+        # With processes, two threads (two batches in flight) per worker: the next batch waits
+        # in the worker's pipe while it computes the current one (see procs._Worker).
+        self.threads = workers * (PIPELINE if self.procs is not None else 1)
+        self._local = threading.local()
+        self._numbers = itertools.count()
+        self._executor = ThreadPoolExecutor(
+            self.threads, thread_name_prefix="textsieve-infer", initializer=self._name_thread
+        )
+        self._slots: asyncio.Semaphore | None = None
+
+    def _name_thread(self) -> None:
+        self._local.index = next(self._numbers)
+
+    def index(self) -> int:
+        return int(self._local.index)
+
+    @property
+    def slots(self) -> asyncio.Semaphore:
+        if self._slots is None:  # created lazily so it binds to the running loop
+            self._slots = asyncio.Semaphore(self.threads)
+        return self._slots
+
+    @property
+    def executor(self) -> ThreadPoolExecutor:
+        return self._executor
+
+    def shutdown(self) -> None:
+        self._executor.shutdown(wait=True, cancel_futures=True)
+        if self.procs is not None:
+            self.procs.shutdown()
+
+
+@dataclass(eq=False, slots=True)
+class _Job:
+    texts: list[str]
+    spans: int
+    future: asyncio.Future[list[Result]]
+    enqueued: float
+    results: list[Result | None]
+    taken: int = 0
+    pending: int = 0
+
+
+@dataclass(slots=True)
+class _Piece:
+    job: _Job
+    lo: int
+    hi: int
+
+
+@dataclass(slots=True)
+class _Done:
+    results: list[Result]
+    started: float
+    seconds: float
+    tokens: int = 0
+    unknown: int = 0
+    truncated: int = 0
+
+
+class Batcher:
+    """The queue and collector of one served version."""
+
+    def __init__(
+        self, served: ServedModel, pool: InferencePool, metrics: ServiceMetrics, *, max_texts: int, wait_ms: float
+    ) -> None:
+        self.served = served
+        self.pool = pool
+        self.metrics = metrics
+        self.max_texts = max_texts
+        self.wait = wait_ms / 1000.0
+        self._labels = (served.name, str(served.version))
+        self._queue: deque[_Job] = deque()
+        self._wakeup = asyncio.Event()
+        self._task: asyncio.Task[None] | None = None
+        self._inflight: set[asyncio.Future[_Done]] = set()
+
+    def start(self) -> None:
+        self._task = asyncio.get_running_loop().create_task(
+            self._collect(), name=f"batcher {self.served.name} v{self.served.version}"
+        )
+
+    async def submit(self, texts: list[str], spans: int) -> list[Result]:
+        if self._task is None or self._task.done():
+            raise UnavailableError(f"model {self.served.name} version {self.served.version} is not accepting work")
+        loop = asyncio.get_running_loop()
+        job = _Job(texts, spans, loop.create_future(), time.perf_counter(), [None] * len(texts), 0, len(texts))
+        self._queue.append(job)
+        self._wakeup.set()
+        return await job.future
+
+    def _take(self, room: int) -> list[_Piece]:
+        pieces: list[_Piece] = []
+        while room > 0 and self._queue:
+            job = self._queue[0]
+            hi = min(len(job.texts), job.taken + room)
+            pieces.append(_Piece(job, job.taken, hi))
+            room -= hi - job.taken
+            job.taken = hi
+            if hi == len(job.texts):
+                self._queue.popleft()
+        return pieces
+
+    async def _collect(self) -> None:
+        loop = asyncio.get_running_loop()
+        slots = self.pool.slots
+        while True:
+            while not self._queue:
+                self._wakeup.clear()
+                await self._wakeup.wait()
+            await slots.acquire()
+            pieces: list[_Piece] = []
+            try:
+                deadline = self._queue[0].enqueued + self.wait if self._queue else 0.0
+                pieces = self._take(self.max_texts)
+                count = sum(p.hi - p.lo for p in pieces)
+                while count < self.max_texts and (left := deadline - time.perf_counter()) > 0:
+                    self._wakeup.clear()
+                    if not self._queue:
+                        try:
+                            await asyncio.wait_for(self._wakeup.wait(), left)
+                        except TimeoutError:
+                            break
+                    more = self._take(self.max_texts - count)
+                    pieces.extend(more)
+                    count += sum(p.hi - p.lo for p in more)
+                if not pieces:
+                    slots.release()
+                    continue
+                texts = [t for p in pieces for t in p.job.texts[p.lo : p.hi]]
+                ks = [p.job.spans for p in pieces for _ in range(p.hi - p.lo)]
+                fut = loop.run_in_executor(self.pool.executor, self._work, texts, ks)
+            except BaseException:  # cancelled at shutdown: texts already taken must not hang
+                slots.release()
+                for p in pieces:
+                    if not p.job.future.done():
+                        p.job.future.set_exception(UnavailableError("the service is shutting down"))
+                raise
+            self._inflight.add(fut)
+            fut.add_done_callback(functools.partial(self._finish, pieces=pieces))
+
+    def _work(self, texts: list[str], ks: list[int]) -> _Done:
+        """On an inference thread: encode, run, explain, build reply dicts (here or in its process)."""
+        started = time.perf_counter()
+        procs = self.pool.procs
+        key = self.served.worker_key
+        if procs is not None and key is not None:
+            results, tokens, unknown, truncated = procs.run(self.pool.index(), key, texts, ks)
+            return _Done(results, started, time.perf_counter() - started, tokens, unknown, truncated)
+        p = self.served.predictors[self.pool.index()]
+        encoded = [p.encode(t) for t in texts]
+        out = run_packed(p, encoded)
+        results = explain(p, encoded, out, ks)
+        done = _Done(results, started, time.perf_counter() - started)
+        for e in encoded:
+            done.tokens += len(e.ids)
+            done.unknown += e.unknown
+            done.truncated += e.tokens > len(e.ids)
+        return done
+
+    def _finish(self, fut: asyncio.Future[_Done], pieces: list[_Piece]) -> None:
+        self._inflight.discard(fut)
+        self.pool.slots.release()
+        exc = fut.exception() if not fut.cancelled() else UnavailableError("the service is shutting down")
+        if exc is not None:
+            for p in pieces:
+                if not p.job.future.done():
+                    p.job.future.set_exception(exc)
+            return
+        done = fut.result()
+        m, labels = self.metrics, self._labels
+        m.batch_texts.observe(labels, len(done.results))
+        m.inference.observe(labels, done.seconds)
+        m.texts.inc(labels, len(done.results))
+        m.tokens.inc(labels, done.tokens)
+        m.unknown.inc(labels, done.unknown)
+        m.truncated.inc(labels, done.truncated)
+        m.queue_wait.observe_many(
+            labels, [done.started - p.job.enqueued for p in pieces], [p.hi - p.lo for p in pieces]
+        )
+        at = 0
+        for p in pieces:
+            job = p.job
+            n = p.hi - p.lo
+            job.results[p.lo : p.hi] = done.results[at : at + n]
+            at += n
+            job.pending -= n
+            if job.pending == 0 and not job.future.done():
+                job.future.set_result(job.results)  # type: ignore[arg-type]
+
+    async def close(self) -> None:
+        """Stop collecting; fail whatever is still queued (only at shutdown)."""
+        if self._task is not None:
+            self._task.cancel()
+            try:
+                await self._task
+            except asyncio.CancelledError:
+                pass
+        while self._queue:
+            job = self._queue.popleft()
+            if not job.future.done():
+                job.future.set_exception(UnavailableError("the service is shutting down"))
+        if self._inflight:
+            await asyncio.wait(self._inflight)
+
+    @property
+    def queued(self) -> int:
+        return sum(len(j.texts) - j.taken for j in self._queue)
+
+
+__all__ = ["Batcher", "InferencePool"]

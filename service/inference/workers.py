@@ -1,0 +1,348 @@
+"""Inference in worker processes: tokenizing, the graph and spans outside the server's GIL.
+
+With threads (``TEXTSIEVE_INFERENCE=threads``) onnxruntime computes in parallel, but
+tokenizing, padding and building replies are Python and take turns on one GIL with the event
+loop; on the 2-core benchmark machine that capped the server at about 1.25 busy cores. With
+processes (the default) each inference thread of the pool drives one worker process of its own
+over a pipe: the thread sends the texts of a batch and waits (the wait releases the GIL), the
+worker encodes, runs its single-thread session, explains, and sends back each text's reply
+already serialised as JSON, which the server embeds as it is (``orjson.Fragment``).
+
+Workers are forked from a fork server started once per server process, which has already
+imported the inference modules, so starting or replacing a worker takes milliseconds. Every
+version a worker serves is loaded and warmed in it (``load``) before requests can reach it;
+``drop`` frees it. A worker that dies is replaced on the spot and given the versions it had;
+the batch it was running is tried once more on the new worker, then fails with 503.
+"""
+
+from __future__ import annotations
+
+import itertools
+import logging
+import multiprocessing
+import multiprocessing.connection
+import threading
+from collections import deque
+from concurrent.futures import Future
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import orjson
+
+from textsieve.errors import BundleError, UnavailableError
+
+log = logging.getLogger("textsieve.service")
+Key = tuple[str, int, int]  # model, version, load number (a version may be loaded twice)
+
+
+@dataclass
+class Loaded:
+    """What a worker needs to (re)load a version."""
+
+    bundle: Path
+    batch_size: int
+
+
+def _serve(conn: multiprocessing.connection.Connection) -> None:
+    """The worker's loop: one request, one reply, until told to stop or the pipe closes."""
+    import signal
+
+    # Ctrl-C (and a SIGTERM sent to the whole process group) must not end a worker in the middle
+    # of a batch: the server finishes its requests, then stops the workers; if the server dies,
+    # the pipe closes and the worker ends on its own.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    import orjson
+
+    from textsieve.registry.bundle import open_bundle
+    from textsieve.registry.runtime import Predictor
+    from textsieve.service.inference.memory import release_freed_memory
+    from textsieve.service.inference.packing import run_packed
+    from textsieve.service.inference.spans import explain
+    from textsieve.service.modelset.loader import warm_and_check
+
+    predictors: dict[Key, Predictor] = {}
+    while True:
+        try:
+            msg = conn.recv()
+        except (EOFError, OSError):
+            return
+        if msg is None:
+            return
+        op, key = msg[0], msg[1]
+        try:
+            if op == "run":
+                texts, ks = msg[2], msg[3]
+                p = predictors[key]
+                encoded = [p.encode(t) for t in texts]
+                out = run_packed(p, encoded)
+                results = explain(p, encoded, out, ks)
+                tokens = unknown = truncated = 0
+                for e in encoded:
+                    tokens += len(e.ids)
+                    unknown += e.unknown
+                    truncated += e.tokens > len(e.ids)
+                # Each reply serialised here, once: the server embeds the bytes as they are.
+                conn.send(("ok", ([orjson.dumps(r) for r in results], tokens, unknown, truncated)))
+            elif op == "load":
+                bundle, batch_size = msg[2], msg[3]
+                checked = open_bundle(Path(bundle))
+                p = Predictor.from_bundle(checked, threads=1, batch_size=batch_size)
+                warm_and_check(p, list(checked.manifest.labels))
+                predictors[key] = p
+                conn.send(("ok", None))
+            elif op == "held":
+                conn.send(("ok", sorted(predictors)))
+            elif op == "drop":
+                if predictors.pop(key, None) is not None:
+                    release_freed_memory()
+                conn.send(("ok", None))
+            else:
+                conn.send(("error", f"unknown operation {op!r}"))
+        except BundleError as exc:
+            conn.send(("bundle", exc.message))
+        except Exception as exc:  # noqa: BLE001 - reported to the server, which decides
+            conn.send(("error", f"{type(exc).__name__}: {exc}"))
+
+
+_context_lock = threading.Lock()
+_context: Any = None
+
+
+def _fork_context() -> Any:
+    """A forkserver context whose server has the inference modules imported (one per process)."""
+    global _context
+    with _context_lock:
+        if _context is None:
+            ctx = multiprocessing.get_context("forkserver")
+            ctx.set_forkserver_preload(
+                [
+                    "textsieve.service.inference.workers",
+                    "textsieve.registry.runtime",
+                    "textsieve.service.inference.spans",
+                    "textsieve.service.inference.packing",
+                    "textsieve.service.modelset.loader",
+                    "onnxruntime",
+                ]
+            )
+            _context = ctx
+        return _context
+
+
+class _Died(Exception):
+    """The worker process ended (or its pipe closed) before replying."""
+
+
+@dataclass(eq=False)
+class _Worker:
+    """One worker process. Requests are pipelined: several threads may have one in its pipe at
+    once (the worker answers in order), so it starts the next batch the moment it sends a reply
+    instead of idling while the server hands out more work. A reader thread matches replies to
+    requests, first in first out."""
+
+    index: int
+    proc: Any = None
+    conn: multiprocessing.connection.Connection | None = None
+    generation: int = 0
+    pending: deque[Future[tuple[str, Any]]] = field(default_factory=deque)
+    send_lock: threading.Lock = field(default_factory=threading.Lock)
+    replace_lock: threading.Lock = field(default_factory=threading.Lock)
+    loaded: dict[Key, Loaded] = field(default_factory=dict)
+    reader: threading.Thread | None = None
+
+    def start(self) -> None:
+        ctx = _fork_context()
+        parent, child = ctx.Pipe(duplex=True)
+        proc = ctx.Process(target=_serve, args=(child,), name=f"textsieve-worker-{self.index}", daemon=True)
+        proc.start()
+        child.close()
+        pending: deque[Future[tuple[str, Any]]] = deque()
+        with self.send_lock:
+            self.proc, self.conn, self.pending = proc, parent, pending
+            self.generation += 1
+        self.reader = threading.Thread(
+            target=self._read, args=(parent, pending), name=f"textsieve-worker-{self.index}-replies", daemon=True
+        )
+        self.reader.start()
+
+    def _read(self, conn: multiprocessing.connection.Connection, pending: deque[Future[tuple[str, Any]]]) -> None:
+        """Replies, in order, to the requests sent on ``conn``; owns closing it."""
+        try:
+            while True:
+                try:
+                    reply = conn.recv()
+                except (EOFError, OSError):
+                    break
+                with self.send_lock:
+                    fut = pending.popleft()
+                fut.set_result(reply)
+        finally:
+            with self.send_lock:
+                left = list(pending)
+                pending.clear()
+            for fut in left:
+                fut.set_exception(_Died())
+            conn.close()
+
+    def submit(self, msg: tuple[Any, ...]) -> tuple[int, Future[tuple[str, Any]]]:
+        fut: Future[tuple[str, Any]] = Future()
+        with self.send_lock:
+            gen = self.generation
+            if self.conn is None:
+                raise _Died()
+            self.pending.append(fut)
+            try:
+                self.conn.send(msg)
+            except (OSError, ValueError) as exc:
+                self.pending.remove(fut)
+                raise _Died() from exc
+        return gen, fut
+
+    def call(self, msg: tuple[Any, ...], *, retry: bool) -> Any:
+        """Send one request and wait for its reply; replace the worker if it died on the way."""
+        for attempt in (1, 2):
+            gen = self.generation
+            try:
+                gen, fut = self.submit(msg)
+                status, value = fut.result()
+            except _Died as exc:
+                self._replace(gen)
+                if retry and attempt == 1:
+                    continue
+                raise UnavailableError(
+                    "an inference worker stopped while running this request; it has been replaced: retry"
+                ) from exc
+            if status == "ok":
+                return value
+            if status == "bundle":
+                raise BundleError(value)
+            raise UnavailableError(f"inference failed: {value}")
+        raise AssertionError("unreachable")
+
+    def _replace(self, gen: int) -> None:
+        """Start a new worker and reload the versions the old one had; once per death."""
+        with self.replace_lock:
+            if self.generation != gen:
+                return  # another thread has replaced it already
+            code = self.proc.exitcode if self.proc is not None else None
+            log.error("inference worker %s stopped (exit code %s); starting a new one", self.index, code)
+            self.stop(timeout=0.5)
+            try:
+                self.start()
+            except Exception as exc:  # noqa: BLE001 - e.g. the fork server is gone; the next call tries again
+                log.error("inference worker %s could not be restarted: %s", self.index, exc)
+                raise UnavailableError(
+                    f"inference worker {self.index} could not be restarted ({exc}); retry shortly"
+                ) from exc
+            for key, item in list(self.loaded.items()):
+                try:
+                    _, fut = self.submit(("load", key, str(item.bundle), item.batch_size))
+                    status, value = fut.result()
+                except _Died:
+                    status, value = "error", "the new worker stopped too"
+                if status != "ok":
+                    log.error("inference worker %s: reloading %s v%s failed: %s", self.index, key[0], key[1], value)
+                    self.loaded.pop(key, None)
+
+    def stop(self, timeout: float = 5.0) -> None:
+        """Ask the worker to end (it finishes what is in its pipe first), then make sure it has."""
+        with self.send_lock:
+            conn, self.conn = self.conn, None
+            if conn is not None:
+                try:
+                    conn.send(None)
+                except (OSError, ValueError):
+                    pass
+        if self.proc is not None:
+            self.proc.join(timeout)
+            if self.proc.is_alive():
+                self.proc.kill()
+                self.proc.join(timeout)
+            self.proc = None
+        if self.reader is not None:
+            self.reader.join(timeout)  # it sees the pipe close, fails what was left, closes it
+            self.reader = None
+
+
+class WorkerProcesses:
+    """``count`` worker processes; inference thread i talks to worker ``i % count``."""
+
+    def __init__(self, count: int) -> None:
+        self.workers = [_Worker(i) for i in range(count)]
+        self._started = False
+        self._start_lock = threading.Lock()
+        self._loads = itertools.count(1)
+
+    def _ensure_started(self) -> None:
+        # Started on the first load (off the event loop), not in the constructor.
+        with self._start_lock:
+            if not self._started:
+                try:
+                    for w in self.workers:
+                        if w.proc is None:
+                            w.start()
+                except Exception as exc:  # noqa: BLE001 - e.g. no writable temp folder for the fork server
+                    raise UnavailableError(
+                        f"cannot start inference worker processes ({type(exc).__name__}: {exc}); "
+                        "fix that, or set TEXTSIEVE_INFERENCE=threads to run inference in the server process"
+                    ) from exc
+                self._started = True
+
+    def new_key(self, name: str, version: int) -> Key:
+        return (name, version, next(self._loads))
+
+    def load(self, key: Key, bundle: Path, batch_size: int) -> None:
+        """Blocking: load and warm ``key`` in every worker; on failure none keeps it."""
+        self._ensure_started()
+        item = Loaded(Path(bundle), batch_size)
+        done: list[_Worker] = []
+        try:
+            for w in self.workers:
+                w.call(("load", key, str(item.bundle), batch_size), retry=True)
+                w.loaded[key] = item
+                done.append(w)
+        except BaseException:
+            for w in done:
+                self._drop_one(w, key)
+            raise
+
+    def drop(self, key: Key) -> None:
+        for w in self.workers:
+            self._drop_one(w, key)
+
+    def _drop_one(self, w: _Worker, key: Key) -> None:
+        if w.loaded.pop(key, None) is None:
+            return
+        try:
+            w.call(("drop", key), retry=False)
+        except UnavailableError:
+            pass  # a worker that died has nothing left to free
+
+    def run(self, index: int, key: Key, texts: list[str], ks: list[int]) -> tuple[list[Any], int, int, int]:
+        """Reply per text as an ``orjson.Fragment`` (JSON made by the worker), and batch counts."""
+        w = self.workers[index % len(self.workers)]
+        if key not in w.loaded:
+            raise UnavailableError(f"model {key[0]} version {key[1]} is not loaded in inference worker {index}")
+        replies, tokens, unknown, truncated = w.call(("run", key, texts, ks), retry=True)
+        return [orjson.Fragment(r) for r in replies], tokens, unknown, truncated
+
+    def held(self) -> list[list[Key]]:
+        """What each worker process itself says it has loaded (for tests and diagnostics)."""
+        return [list(map(tuple, w.call(("held", None), retry=False))) for w in self.workers]
+
+    def holds(self, key: Key) -> bool:
+        """Whether every worker has ``key`` loaded."""
+        return all(key in w.loaded for w in self.workers)
+
+    def pids(self) -> list[int]:
+        return [int(w.proc.pid) for w in self.workers if w.proc is not None]
+
+    def shutdown(self) -> None:
+        for w in self.workers:
+            with w.replace_lock:
+                w.stop()
+        self._started = False
+
+
+__all__ = ["WorkerProcesses"]

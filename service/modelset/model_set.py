@@ -1,0 +1,408 @@
+"""The set of served versions: startup load, hot swap on promotion or rollback, pinned versions.
+
+Swap protocol. A change is noticed by polling the registry's change cursor (or at once, after
+an admin call through this service). The new live version is fetched, verified, loaded and
+warmed beside the old one; then the table entry is replaced on the event loop thread, which is
+atomic for requests. A request takes its version when it starts (``acquire``) and keeps it to
+the end, so in-flight requests finish on the version they started with; the old version is
+closed when its last request is released. If the new version fails to load, the old one keeps
+serving and the failure is reported in ``/readyz`` (the model's ``failed_version`` and the
+``degraded`` list) and the ``textsieve_swaps_total`` metric; loading is retried with backoff.
+
+Registry outage. Loaded versions keep answering when the registry cannot be read; a failed
+poll is reported in ``/readyz`` as degraded (not as not-ready: the replica still answers) and
+clears on the next successful poll.
+
+Pinned versions. A request may pin any version except a retired one; pinned versions are
+dropped from memory when their model changes, so the next pinned request checks the state again.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import datetime as dt
+import logging
+import time
+from collections import OrderedDict
+from dataclasses import dataclass
+from typing import NoReturn
+
+from textsieve.errors import InputError, NotFoundError, StateError, TextsieveError, UnavailableError
+from textsieve.service.inference.batcher import Batcher, InferencePool
+from textsieve.service.inference.memory import release_freed_memory
+from textsieve.service.modelset.loader import ServedModel, load_served
+from textsieve.service.modelset.registry_thread import RegistryThread
+from textsieve.service.settings import Settings
+from textsieve.service.telemetry import ServiceMetrics
+
+log = logging.getLogger("textsieve.service")
+MAX_RETRY_SECONDS = 300.0
+
+
+@dataclass
+class ModelStatus:
+    state: str = "loading"  # loading | ready | failed | no-live-version
+    detail: str = ""
+    failures: int = 0
+    retry_at: float = 0.0
+    failed_version: int | None = None  # the registry's live version, when it could not be loaded
+
+
+class ModelSet:
+    def __init__(self, settings: Settings, store: RegistryThread, pool: InferencePool, metrics: ServiceMetrics) -> None:
+        self.settings = settings
+        self.store = store
+        self.pool = pool
+        self.metrics = metrics
+        self.live: dict[str, ServedModel] = {}
+        self.pinned: OrderedDict[tuple[str, int], ServedModel] = OrderedDict()
+        self.status: dict[str, ModelStatus] = {name: ModelStatus() for name in settings.models}
+        self.started = False
+        self.startup_error: str | None = None
+        self.registry_error: str | None = None  # the last poll's failure, until a poll succeeds
+        self._cursor: int | None = None
+        self._locks: dict[object, asyncio.Lock] = {}
+        self._poller: asyncio.Task[None] | None = None
+        self._retiring: set[ServedModel] = set()
+        self._discovered = False
+        self._closing: set[asyncio.Task[None]] = set()
+
+    # -- lifecycle ------------------------------------------------------------------------
+    async def start(self) -> None:
+        """Load every served model's live version, then poll for changes."""
+        try:
+            await self._discover()
+        except TextsieveError as exc:
+            self.startup_error = exc.message
+            log.error("startup failed: %s (retrying every %ss)", exc.message, self.settings.poll_seconds)
+        finally:
+            self.started = True
+            self._update_ready()
+            self._poller = asyncio.get_running_loop().create_task(self._poll(), name="registry poller")
+
+    async def _discover(self) -> None:
+        await self.store.open()
+        # Read the cursor before loading: a promotion that lands during the load is then seen
+        # by the first poll instead of being missed.
+        self._cursor = int(await self.store.call("cursor"))
+        names = list(self.settings.models)
+        if not names:
+            names = [m.name for m in await self.store.call("models") if getattr(m, "live", None) is not None]
+            for name in names:
+                self.status.setdefault(name, ModelStatus())
+        for name in names:
+            await self.refresh(name, why="startup")
+        self._discovered = True
+        self.startup_error = None
+
+    async def stop(self) -> None:
+        if self._poller is not None:
+            self._poller.cancel()
+            with contextlib.suppress(asyncio.CancelledError):
+                await self._poller
+        served = {*self.live.values(), *self.pinned.values(), *self._retiring}
+        self.live.clear()
+        self.pinned.clear()
+        for s in served:
+            await self._close(s)
+        if self._closing:
+            await asyncio.gather(*self._closing, return_exceptions=True)
+        await self.store.close()
+
+    # -- readiness ------------------------------------------------------------------------
+    def readiness(self) -> tuple[bool, str]:
+        if not self.started:
+            return False, "starting: loading the live version of each served model"
+        if self.startup_error and not self.live:
+            return False, f"startup failed: {self.startup_error}"
+        if not self.status:
+            return False, (
+                f"no model has a live version in the registry {self.settings.registry_label}; "
+                "publish and promote one (textsieve promote NAME VERSION --to live)"
+            )
+        waiting = [
+            f"{name}: {st.state}{' (' + st.detail + ')' if st.detail else ''}"
+            for name, st in sorted(self.status.items())
+            if name not in self.live
+        ]
+        if waiting:
+            return False, "not serving " + "; ".join(waiting)
+        serving = "serving " + ", ".join(f"{n} v{s.version}" for n, s in sorted(self.live.items()))
+        degraded = self.degraded()
+        return True, serving + ("; degraded: " + "; ".join(degraded) if degraded else "")
+
+    def degraded(self) -> list[str]:
+        """What works less well than it should while every served model still answers."""
+        notes = [f"registry: {self.registry_error}"] if self.registry_error else []
+        for name, st in sorted(self.status.items()):
+            current = self.live.get(name)
+            if st.failed_version is not None and current is not None:
+                notes.append(f"{name}: {st.detail}; still serving version {current.version}")
+        return notes
+
+    def _update_ready(self) -> None:
+        self.metrics.ready.set((), 1.0 if self.readiness()[0] else 0.0)
+
+    def describe(self) -> dict[str, object]:
+        out: dict[str, object] = {}
+        for name, st in sorted(self.status.items()):
+            s = self.live.get(name)
+            entry: dict[str, object] = {
+                "state": "ready" if s is not None and st.state == "ready" else st.state,
+                **({"detail": st.detail} if st.detail else {}),
+                **(s.describe() if s is not None else {}),
+            }
+            if st.failed_version is not None and s is not None:
+                entry["failed_version"] = {"version": st.failed_version, "ready": False, "reason": st.detail}
+            out[name] = entry
+        return out
+
+    def serving(self, name: str) -> dict[str, object]:
+        """What this service does with ``name``: the ServingView fields."""
+        st = self.status.get(name)
+        s = self.live.get(name)
+        if st is None:
+            return {"version": None, "state": "not-served", "detail": None, "loaded_at": None}
+        return {
+            "version": s.version if s else None,
+            "state": "ready" if s and st.state == "ready" else st.state,
+            "detail": st.detail or None,
+            "loaded_at": s.loaded_at if s else None,
+        }
+
+    # -- loading and swapping ---------------------------------------------------------------
+    def _lock(self, key: object) -> asyncio.Lock:
+        return self._locks.setdefault(key, asyncio.Lock())
+
+    async def _load(self, name: str, version: int, manifest_sha256: str | None) -> ServedModel:
+        bundle = await self.store.call("fetch", name, version)
+        served = await asyncio.to_thread(
+            load_served,
+            bundle,
+            name,
+            version,
+            workers=self.pool.workers,
+            batch_size=self.settings.batch_max_texts,
+            manifest_sha256=manifest_sha256,
+            procs=self.pool.procs,
+        )
+        served.batcher = Batcher(
+            served,
+            self.pool,
+            self.metrics,
+            max_texts=self.settings.batch_max_texts,
+            wait_ms=self.settings.batch_wait_ms,
+        )
+        served.batcher.start()
+        return served
+
+    async def refresh(self, name: str, *, why: str) -> ServedModel | None:
+        """Make ``name`` serve its current live version; returns what serves it afterwards."""
+        async with self._lock(name):
+            status = self.status.setdefault(name, ModelStatus())
+            current = self.live.get(name)
+            try:
+                info = await self.store.call("live", name)
+            except NotFoundError as exc:
+                status.state, status.detail = "failed", exc.message
+                self._update_ready()
+                return current
+            if info is None:
+                if current is None:
+                    if not self.settings.models:
+                        # Serving every live model: one without a live version is not ours to wait for.
+                        self.status.pop(name, None)
+                    else:
+                        status.state, status.detail = "no-live-version", "promote a version to live"
+                self._update_ready()
+                return current
+            version = int(info.version)
+            if current is not None and current.version == version:
+                if status.failed_version is not None:  # the registry went back to what we serve
+                    status.state, status.detail, status.failures, status.failed_version = "ready", "", 0, None
+                    self._update_ready()
+                return current
+            status.state = "loading" if current is None else status.state
+            try:
+                new = await self._load(name, version, getattr(info, "manifest_sha256", None))
+            except TextsieveError as exc:
+                status.failures += 1
+                status.retry_at = time.monotonic() + min(
+                    self.settings.poll_seconds * 2**status.failures, MAX_RETRY_SECONDS
+                )
+                if current is None:
+                    status.state = "failed"
+                status.failed_version = version
+                status.detail = f"version {version} could not be loaded: {exc.message}"
+                self.metrics.swaps.inc((name, "failed"))
+                log.error("model %s: loading version %s failed (%s): %s", name, version, why, exc.message)
+                self._update_ready()
+                return current
+            # The switch: one assignment on the event loop thread.
+            self.live[name] = new
+            status.state, status.detail, status.failures, status.failed_version = "ready", "", 0, None
+            self.metrics.served.set((name,), version)
+            self.metrics.swaps.inc((name, "startup" if current is None else "swapped"))
+            log.info("model %s: now serving version %s (%s, loaded in %.2fs)", name, version, why, new.load_seconds)
+            if current is not None:
+                self._retire(current)
+            self._update_ready()
+            return new
+
+    def _retire(self, served: ServedModel) -> None:
+        served.retiring = True
+        if served.active == 0:
+            self._close_later(served)
+        else:
+            self._retiring.add(served)
+
+    def _close_later(self, served: ServedModel) -> None:
+        name = f"close {served.name} v{served.version}"
+        task = asyncio.get_running_loop().create_task(self._close(served), name=name)
+        self._closing.add(task)  # a reference, so the task is not collected before it runs
+        task.add_done_callback(self._closing.discard)
+
+    async def _close(self, served: ServedModel) -> None:
+        if served.closed:
+            return
+        served.closed = True
+        self._retiring.discard(served)
+        if served.batcher is not None:
+            await served.batcher.close()
+        served.predictors.clear()  # drops the onnxruntime sessions
+        if served.worker_key is not None and self.pool.procs is not None:
+            await asyncio.to_thread(self.pool.procs.drop, served.worker_key)
+        await asyncio.to_thread(release_freed_memory)
+
+    # -- requests -----------------------------------------------------------------------------
+    async def acquire(self, name: str | None, version: int | None) -> ServedModel:
+        """The version a request will use; pair with :meth:`release`."""
+        if name is None:
+            name = self._only_model()
+        served = self.live.get(name)
+        if version is not None and (served is None or served.version != version):
+            served = await self._pinned(name, version)
+        elif served is None:
+            await self._missing(name)
+            raise AssertionError("unreachable")
+        # No await between looking the version up and counting the request: a swap cannot
+        # close it in between.
+        served.active += 1
+        return served
+
+    def release(self, served: ServedModel) -> None:
+        served.active -= 1
+        if served.active == 0 and served.retiring and not served.closed:
+            self._close_later(served)
+
+    def _only_model(self) -> str:
+        if len(self.status) == 1:
+            return next(iter(self.status))
+        if not self.status:
+            raise UnavailableError("no model is served yet: publish and promote one, then retry")
+        raise InputError(f"several models are served ({', '.join(sorted(self.status))}); name one in 'model'")
+
+    async def _missing(self, name: str) -> NoReturn:
+        st = self.status.get(name)
+        if st is not None:
+            if st.state == "no-live-version":
+                raise NotFoundError(f"model {name!r} has no live version; pin one with 'version' or promote one")
+            raise UnavailableError(f"model {name!r} is not ready ({st.state}{': ' + st.detail if st.detail else ''})")
+        if self.settings.models:
+            raise NotFoundError(f"model {name!r} is not served here; served: {', '.join(self.settings.models)}")
+        # Serving every live model: a name we do not know is either unknown or not live yet.
+        info = await self.store.call("live", name)  # NotFoundError for an unknown model
+        if info is None:
+            raise NotFoundError(f"model {name!r} has no live version; pin one with 'version' or promote one")
+        raise UnavailableError(f"model {name!r} became live recently and is still loading")
+
+    async def _pinned(self, name: str, version: int) -> ServedModel:
+        if name not in self.status and self.settings.models:
+            raise NotFoundError(f"model {name!r} is not served here; served: {', '.join(self.settings.models)}")
+        key = (name, version)
+        cached = self.pinned.get(key)
+        if cached is not None:
+            self.pinned.move_to_end(key)
+            return cached
+        info = await self.store.call("version", name, version)  # NotFoundError when unknown
+        if info.state == "retired":
+            live = self.live.get(name)
+            instead = f"the live version ({live.version})" if live is not None else "the live version"
+            raise StateError(
+                f"version {version} of {name!r} is retired and no longer served; pin {instead}, "
+                "a candidate or a registered version, or roll back to it",
+                model=name,
+                version=version,
+                state="retired",
+            )
+        if self.settings.pinned_versions == 0:
+            raise NotFoundError(
+                f"model {name!r} version {version} exists but this service only serves "
+                f"live versions (TEXTSIEVE_PINNED_VERSIONS=0)"
+            )
+        async with self._lock(key):
+            cached = self.pinned.get(key)
+            if cached is not None:
+                return cached
+            live = self.live.get(name)
+            if live is not None and live.version == version:
+                return live
+            served = await self._load(name, version, getattr(info, "manifest_sha256", None))
+            self.pinned[key] = served
+            while len(self.pinned) > self.settings.pinned_versions:
+                _, old = self.pinned.popitem(last=False)
+                self._retire(old)
+            return served
+
+    def _drop_pinned(self, name: str) -> None:
+        """Forget the pinned versions of a changed model: their state may have changed too."""
+        for key in [k for k in self.pinned if k[0] == name]:
+            self._retire(self.pinned.pop(key))
+
+    # -- polling --------------------------------------------------------------------------------
+    async def _poll(self) -> None:
+        while True:
+            await asyncio.sleep(self.settings.poll_seconds)
+            try:
+                await self.poll_once()
+            except TextsieveError as exc:
+                self._registry_failed(exc.message)
+            except Exception as exc:  # keep polling whatever one round hit; the log has the traceback
+                log.exception("registry poll failed")
+                self._registry_failed(f"{type(exc).__name__} while polling (see the log)")
+            else:
+                if self.registry_error is not None:
+                    log.info("registry reachable again: %s", self.settings.registry_label)
+                    self.registry_error = None
+
+    def _registry_failed(self, message: str) -> None:
+        if self.registry_error is None:  # log the change, not every failed round
+            log.warning("registry poll failed: %s", message)
+            since = dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat()
+            self.registry_error = f"{message} (since {since}; the versions already loaded keep serving)"
+
+    async def poll_once(self) -> None:
+        if not self._discovered:
+            await self._discover()
+            self._update_ready()
+            return
+        cursor, events = await self.store.call("changes_since", self._cursor)
+        self._cursor = int(cursor)
+        changed = {str(e.model) for e in events}
+        if self.settings.models:
+            changed &= set(self.settings.models)
+        now = time.monotonic()
+        retry = {
+            n
+            for n, st in self.status.items()
+            if (st.state == "failed" or st.failed_version is not None) and st.retry_at <= now
+        }
+        for name in changed:
+            self._drop_pinned(name)
+        for name in sorted(changed | retry):
+            await self.refresh(name, why="registry change" if name in changed else "retry")
+        self._update_ready()
+
+
+__all__ = ["ModelSet", "ModelStatus"]

@@ -1,0 +1,87 @@
+"""Request ids, one JSON access-log line per request, and the HTTP metrics.
+
+A pure ASGI middleware (no response buffering). The request id is the caller's
+``X-Request-Id`` when it is short and plain, else a fresh UUID4; it is echoed as a response
+header, put in problem bodies and logged, so a caller's report leads straight to the log line.
+"""
+
+from __future__ import annotations
+
+import logging
+import random
+import re
+import time
+from typing import Any
+
+from starlette.datastructures import Headers, MutableHeaders
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
+
+from textsieve.service.logs import ACCESS
+from textsieve.service.telemetry import ServiceMetrics
+
+_SAFE_ID = re.compile(r"[A-Za-z0-9._:-]{1,128}")
+log = logging.getLogger(ACCESS)
+# Request ids need to be unique, not secret. os.urandom (behind uuid4) releases the GIL, and
+# with inference threads busy, getting it back can cost the event loop milliseconds per request.
+_ids = random.Random()
+
+
+def new_request_id() -> str:
+    return f"{_ids.getrandbits(128):032x}"
+
+
+def _route(scope: Scope) -> str:
+    route = scope.get("route")
+    path = getattr(route, "path", None)
+    return path if isinstance(path, str) else "unmatched"
+
+
+class AccessMiddleware:
+    def __init__(self, app: ASGIApp, metrics: ServiceMetrics, enabled: bool = True) -> None:
+        self.app = app
+        self.metrics = metrics
+        self.enabled = enabled
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        given = Headers(scope=scope).get("x-request-id", "")
+        rid = given if _SAFE_ID.fullmatch(given) else new_request_id()
+        state = scope.setdefault("state", {})
+        state["request_id"] = rid
+        started = time.perf_counter()
+        status = 500
+
+        async def send_with_id(message: Message) -> None:
+            nonlocal status
+            if message["type"] == "http.response.start":
+                status = int(message["status"])
+                MutableHeaders(scope=message)["X-Request-Id"] = rid
+            await send(message)
+
+        try:
+            await self.app(scope, receive, send_with_id)
+        finally:
+            seconds = time.perf_counter() - started
+            route = _route(scope)
+            self.metrics.http_requests.inc((scope["method"], route, str(status)))
+            self.metrics.http_seconds.observe((route,), seconds)
+            if self.enabled:
+                fields: dict[str, Any] = {
+                    "event": "request",
+                    "request_id": rid,
+                    "method": scope["method"],
+                    "path": scope["path"],
+                    "route": route,
+                    "status": status,
+                    "duration_ms": round(seconds * 1000, 3),
+                    "client": (scope.get("client") or ("", 0))[0],
+                }
+                for key in ("model", "version", "texts"):
+                    if key in state:
+                        fields[key] = state[key]
+                log.info("request", extra={"fields": fields})
+
+
+__all__ = ["AccessMiddleware"]

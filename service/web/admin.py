@@ -1,0 +1,106 @@
+"""Admin over HTTP: promote and rollback, behind a bearer token.
+
+Without ``TEXTSIEVE_ADMIN_TOKEN`` the routes still exist but answer 403 with a problem of type
+``/problems/admin-disabled`` saying how to enable them: a 404 would be mistaken for an unknown
+model. A missing or malformed ``Authorization`` header is 401 (with ``WWW-Authenticate:
+Bearer``), a wrong token 403; tokens are compared with ``secrets.compare_digest``.
+After a successful call the service swaps to the new live version before answering.
+"""
+
+from __future__ import annotations
+
+import secrets
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Depends, Request
+
+from textsieve.errors import AuthError
+from textsieve.service.web.deps import ModelsDep, RegistryDep, SettingsDep
+from textsieve.service.web.openapi import ADMIN_SCHEME
+from textsieve.service.web.problems import MEDIA_TYPE, AdminDisabledError
+from textsieve.service.web.schemas import (
+    AdminReply,
+    GateView,
+    Problem,
+    PromoteRequest,
+    RollbackRequest,
+    ServingView,
+    VersionView,
+)
+from textsieve.service.web.views import _version_number
+
+router = APIRouter(prefix="/v1/models")
+_P = {"model": Problem, "content": {MEDIA_TYPE: {}}}
+_RESPONSES: dict[int | str, dict[str, Any]] = {401: _P, 403: _P, 404: _P, 409: _P, 422: _P, 503: _P}
+_SECURED: dict[str, Any] = {"security": [{ADMIN_SCHEME: []}]}
+
+
+async def require_admin(request: Request, settings: SettingsDep) -> None:
+    if settings.admin_token is None:
+        raise AdminDisabledError()
+    header = request.headers.get("authorization", "")
+    scheme, _, token = header.strip().partition(" ")
+    if not header:
+        raise AuthError("admin calls need an 'Authorization: Bearer <token>' header", missing=True)
+    if scheme.lower() != "bearer" or not token.strip():
+        raise AuthError("the Authorization header must be 'Bearer <token>'", missing=True)
+    expected = settings.admin_token.get_secret_value().encode()
+    if not secrets.compare_digest(token.strip().encode(), expected):
+        raise AuthError("the admin token is wrong", missing=False)
+
+
+Admin = Annotated[None, Depends(require_admin)]
+
+
+def _actor(request: Request, given: str | None) -> str:
+    if given:
+        return given
+    client = request.client.host if request.client else "unknown"
+    return f"admin-api@{client}"
+
+
+@router.post(
+    "/{name}/versions/{n}/promote",
+    response_model=AdminReply,
+    responses=_RESPONSES,
+    openapi_extra=_SECURED,
+    summary="Promote a version to candidate or live (through the registry's gates)",
+)
+async def promote(
+    name: str, n: str, body: PromoteRequest, request: Request, _: Admin, store: RegistryDep, models: ModelsDep
+) -> AdminReply:
+    version = _version_number(n)
+    result = await store.call(
+        "promote", name, version, body.to, reason=body.reason, actor=_actor(request, body.actor), force=body.force
+    )
+    await models.refresh(name, why=f"promote via admin API: {body.reason}")
+    request.state.model, request.state.version = name, version
+    return AdminReply(
+        model=name,
+        version=VersionView.of(result.version),
+        gates=[GateView.model_validate(g.model_dump()) for g in result.gates],
+        forced=result.forced,
+        retired=result.retired,
+        serving=ServingView.model_validate(models.serving(name)),
+    )
+
+
+@router.post(
+    "/{name}/rollback",
+    response_model=AdminReply,
+    responses=_RESPONSES,
+    openapi_extra=_SECURED,
+    summary="Make the previous live version live again",
+)
+async def rollback(
+    name: str, body: RollbackRequest, request: Request, _: Admin, store: RegistryDep, models: ModelsDep
+) -> AdminReply:
+    info = await store.call("rollback", name, reason=body.reason, actor=_actor(request, body.actor))
+    await models.refresh(name, why=f"rollback via admin API: {body.reason}")
+    request.state.model, request.state.version = name, info.version
+    return AdminReply(
+        model=name, version=VersionView.of(info), serving=ServingView.model_validate(models.serving(name))
+    )
+
+
+__all__ = ["require_admin", "router"]

@@ -1,0 +1,69 @@
+"""The application factory: ``create_app(settings)`` wires routes, middleware and the served models.
+
+Startup order (lifespan): the registry is opened and every served model's live version is
+loaded, verified and warmed in the background, so ``/healthz`` answers at once while
+``/readyz`` says 503 with the reason until the models are in; then the registry poller runs.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+from collections.abc import AsyncIterator
+
+from fastapi import FastAPI
+
+from textsieve import __version__
+from textsieve.service.inference.batcher import InferencePool
+from textsieve.service.modelset.model_set import ModelSet
+from textsieve.service.modelset.registry_thread import RegistryThread
+from textsieve.service.settings import Settings, load_settings
+from textsieve.service.telemetry import ServiceMetrics
+from textsieve.service.web import admin, health, openapi, page, predict, problems, views
+from textsieve.service.web.access import AccessMiddleware
+from textsieve.service.web.bodylimit import BodyLimitMiddleware
+from textsieve.service.web.onewrite import HeadWithBodyMiddleware
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    settings = settings if settings is not None else load_settings()
+    metrics = ServiceMetrics()
+
+    @contextlib.asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        pool = InferencePool(settings.workers, settings.inference)
+        store = RegistryThread(settings.registry, settings.blobs)
+        models = ModelSet(settings, store, pool, metrics)
+        app.state.store, app.state.pool, app.state.models = store, pool, models
+        starting = asyncio.get_running_loop().create_task(models.start(), name="load served models")
+        try:
+            yield
+        finally:
+            starting.cancel()
+            with contextlib.suppress(asyncio.CancelledError):
+                await starting
+            await models.stop()
+            await asyncio.to_thread(pool.shutdown)
+
+    app = FastAPI(
+        title="textsieve",
+        version=__version__,
+        summary="Convolutional text classifiers: calibrated probabilities and the n-gram spans behind them.",
+        lifespan=lifespan,
+        # The interactive docs pages load their scripts from a CDN; the schema stays available.
+        docs_url=None,
+        redoc_url=None,
+    )
+    app.state.settings = settings
+    app.state.metrics = metrics
+    problems.install(app)
+    for module in (predict, views, admin, health, page):
+        app.include_router(module.router)
+    openapi.install(app)
+    app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes)
+    app.add_middleware(AccessMiddleware, metrics=metrics, enabled=settings.access_log)
+    app.add_middleware(HeadWithBodyMiddleware)  # outermost of ours: see service/web/onewrite.py
+    return app
+
+
+__all__ = ["create_app"]

@@ -1,0 +1,78 @@
+"""The OpenAPI document as the service really answers: every error body is problem+json.
+
+FastAPI documents an error response declared with a model under ``application/json`` and adds
+its own 422 body (``HTTPValidationError``) to every route with parameters, while the service
+answers all of them with ``application/problem+json`` (RFC 9457 §3) built in
+:mod:`textsieve.service.web.problems`. The generated document is rewritten once, here, so that
+clients and schema-driven tests (tests/reliability/test_fuzz.py) see what is actually sent: the Problem
+schema under problem+json for every error, 413 wherever a body is accepted (the body-size limit
+answers before any route), and the admin calls' bearer token as a security scheme.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+
+from fastapi import FastAPI
+
+from textsieve.service.web.problems import MEDIA_TYPE
+
+ADMIN_SCHEME = "adminToken"
+_PROBLEM = "#/components/schemas/Problem"
+_FASTAPI_ERROR_MODELS = ("HTTPValidationError", "ValidationError")
+_METHODS = ("get", "put", "post", "delete", "patch", "head", "options", "trace")
+
+
+def _is_problem(response: dict[str, Any]) -> bool:
+    content = response.get("content")
+    if not content:
+        return True
+    refs = {media.get("schema", {}).get("$ref", "") for media in content.values()}
+    return any(ref == _PROBLEM or ref.rsplit("/", 1)[-1] in _FASTAPI_ERROR_MODELS for ref in refs)
+
+
+def _problem_response(description: str) -> dict[str, Any]:
+    return {"description": description, "content": {MEDIA_TYPE: {"schema": {"$ref": _PROBLEM}}}}
+
+
+def rewrite(document: dict[str, Any]) -> dict[str, Any]:
+    """``document`` with error bodies, the body limit and the admin token stated as served."""
+    secured = False
+    for operations in document.get("paths", {}).values():
+        for method, op in operations.items():
+            if method not in _METHODS:
+                continue
+            responses: dict[str, Any] = op.setdefault("responses", {})
+            for code, response in responses.items():
+                if code[:1] in "45" and _is_problem(response):
+                    responses[code] = _problem_response(response.get("description", "problem details"))
+            if "requestBody" in op and "413" not in responses:
+                responses["413"] = _problem_response("a request limit was exceeded")
+            secured = secured or any(ADMIN_SCHEME in req for req in op.get("security", []))
+    components = document.setdefault("components", {})
+    schemas = components.get("schemas", {})
+    for name in _FASTAPI_ERROR_MODELS:
+        schemas.pop(name, None)
+    if secured:
+        components.setdefault("securitySchemes", {})[ADMIN_SCHEME] = {
+            "type": "http",
+            "scheme": "bearer",
+            "description": "the service's admin token (TEXTSIEVE_ADMIN_TOKEN); admin calls are off without one",
+        }
+    return document
+
+
+def install(app: FastAPI) -> None:
+    """Serve the rewritten document at /openapi.json (built on first request, then cached)."""
+    generate: Callable[[], dict[str, Any]] = app.openapi
+
+    def openapi() -> dict[str, Any]:
+        if app.openapi_schema is None:
+            app.openapi_schema = rewrite(generate())
+        return app.openapi_schema
+
+    app.openapi = openapi  # type: ignore[method-assign]
+
+
+__all__ = ["ADMIN_SCHEME", "install", "rewrite"]

@@ -1,0 +1,45 @@
+"""``GET /``: the reviewer's page (one self-contained HTML file, no external assets).
+
+The Content-Security-Policy allows only the page's own inline script and style, by their
+sha256 (CSP Level 2 hash sources), and network requests to this service: the browser itself
+enforces that nothing is loaded from elsewhere.
+"""
+
+from __future__ import annotations
+
+import base64
+import hashlib
+import re
+from functools import cache
+from importlib import resources
+
+from fastapi import APIRouter
+from fastapi.responses import HTMLResponse
+
+router = APIRouter()
+
+
+def _hashes(html: str, tag: str) -> str:
+    bodies = re.findall(rf"<{tag}>(.*?)</{tag}>", html, flags=re.S)
+    return " ".join(f"'sha256-{base64.b64encode(hashlib.sha256(b.encode()).digest()).decode()}'" for b in bodies)
+
+
+@cache
+def page() -> tuple[str, str]:
+    html = resources.files("textsieve.service.web").joinpath("static/index.html").read_text(encoding="utf-8")
+    csp = (
+        f"default-src 'none'; script-src {_hashes(html, 'script')}; style-src {_hashes(html, 'style')}; "
+        "connect-src 'self'; base-uri 'none'; form-action 'none'; frame-ancestors 'none'"
+    )
+    return html, csp
+
+
+@router.get("/", response_class=HTMLResponse, include_in_schema=False)
+async def index() -> HTMLResponse:
+    html, csp = page()
+    return HTMLResponse(
+        html, headers={"Content-Security-Policy": csp, "X-Content-Type-Options": "nosniff", "Cache-Control": "no-cache"}
+    )
+
+
+__all__ = ["page", "router"]

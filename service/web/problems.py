@@ -1,0 +1,304 @@
+"""Exceptions → ``application/problem+json`` (RFC 9457), in this one place.
+
+Routes raise the classes of :mod:`textsieve.errors`; this table turns each class into a status,
+a problem ``type`` and a ``title``. Every ``type`` is a path on the service itself
+(``/problems/<slug>``) that answers with a short explanation, so the URI is dereferenceable as
+RFC 9457 §3.1.1 recommends. ``instance`` is the request's path and ``request_id`` (an extension
+member) matches the ``X-Request-Id`` header and the access-log line.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass
+from typing import Any
+
+import orjson
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import PlainTextResponse, Response
+from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.types import Scope
+
+from textsieve.errors import (
+    AuthError,
+    BundleError,
+    GateRefusedError,
+    InputError,
+    IntegrityError,
+    LimitError,
+    NotFoundError,
+    StateError,
+    TextsieveError,
+    UnavailableError,
+)
+
+MEDIA_TYPE = "application/problem+json"
+RETRY_AFTER_SECONDS = 2
+log = logging.getLogger("textsieve.service")
+
+
+class AdminDisabledError(AuthError):
+    """Admin calls were made but no admin token is configured (HTTP 403)."""
+
+    def __init__(self) -> None:
+        super().__init__(
+            "admin is disabled on this service: set TEXTSIEVE_ADMIN_TOKEN (at least 16 "
+            "characters) and restart to enable promote and rollback over HTTP",
+            missing=False,
+        )
+
+
+@dataclass(frozen=True, slots=True)
+class Kind:
+    status: int
+    slug: str
+    title: str
+    explanation: str
+
+
+# Looked up along the exception's MRO, so a subclass listed here wins over its parent.
+KINDS: dict[type[BaseException], Kind] = {
+    LimitError: Kind(
+        413,
+        "limit-exceeded",
+        "A request limit was exceeded",
+        "The request is larger than a configured limit; the body names the limit, its "
+        "value and the setting that controls it. Split the request or ask the operator.",
+    ),
+    InputError: Kind(
+        422,
+        "invalid-input",
+        "The request is not valid",
+        "A field is missing, has the wrong type or an unsupported value, or the body is not "
+        "JSON. The 'errors' list names each field and what is allowed.",
+    ),
+    BundleError: Kind(
+        422,
+        "invalid-bundle",
+        "The bundle is not valid",
+        "A bundle failed one of its checks; the detail names the check.",
+    ),
+    NotFoundError: Kind(
+        404, "not-found", "Not found", "The model, version or path does not exist; GET /v1/models lists what does."
+    ),
+    StateError: Kind(
+        409,
+        "state-conflict",
+        "The version's state does not allow this",
+        "The lifecycle transition is not allowed from the version's current state.",
+    ),
+    GateRefusedError: Kind(
+        409,
+        "gate-refused",
+        "A promotion gate refused",
+        "A promotion gate refused; 'gates' holds every gate's result. Fix the cause, "
+        "or promote with force and a reason (recorded in the audit trail).",
+    ),
+    IntegrityError: Kind(
+        503,
+        "integrity",
+        "A stored file failed its check",
+        "A stored blob is missing or its sha256 differs from the record; the version "
+        "cannot be loaded until the registry's storage is repaired.",
+    ),
+    UnavailableError: Kind(
+        503,
+        "unavailable",
+        "Temporarily unavailable",
+        "The service cannot answer this right now (a model is still loading, or the "
+        "registry cannot be reached). Retry after the Retry-After seconds.",
+    ),
+    AdminDisabledError: Kind(
+        403,
+        "admin-disabled",
+        "Admin is disabled",
+        "No admin token is configured, so promote and rollback over HTTP are off. "
+        "Set TEXTSIEVE_ADMIN_TOKEN and restart the service to enable them.",
+    ),
+    AuthError: Kind(
+        403,
+        "forbidden",
+        "The admin token is wrong",
+        "Admin calls need 'Authorization: Bearer <token>' with the service's admin token.",
+    ),
+    TextsieveError: Kind(500, "internal", "Internal error", "The service failed; the request id locates the log line."),
+}
+MISSING_TOKEN = Kind(
+    401,
+    "unauthorized",
+    "An admin token is needed",
+    "Admin calls need 'Authorization: Bearer <token>' with the service's admin token.",
+)
+INTERNAL = KINDS[TextsieveError]
+_HTTP_KINDS = {
+    404: KINDS[NotFoundError],
+    405: Kind(405, "method-not-allowed", "Method not allowed", "The path exists but not for this HTTP method."),
+}
+SLUGS: dict[str, Kind] = {k.slug: k for k in [*KINDS.values(), MISSING_TOKEN, *_HTTP_KINDS.values()]}
+
+
+def kind_of(exc: BaseException) -> Kind:
+    for cls in type(exc).__mro__:
+        if cls in KINDS:
+            if cls is AuthError and getattr(exc, "missing", False):
+                return MISSING_TOKEN
+            return KINDS[cls]
+    return INTERNAL
+
+
+_STANDARD = frozenset({"type", "title", "status", "detail", "instance", "request_id"})
+
+
+def _jsonable(value: Any) -> Any:
+    dump = getattr(value, "model_dump", None)
+    if callable(dump):
+        return dump(mode="json")
+    if isinstance(value, (set, frozenset, tuple)):
+        return list(value)
+    return str(value)
+
+
+def request_id(scope: Scope) -> str | None:
+    state = scope.get("state")
+    return state.get("request_id") if isinstance(state, dict) else None
+
+
+def problem(kind: Kind, detail: str, scope: Scope, *, headers: dict[str, str] | None = None, **extra: Any) -> Response:
+    body: dict[str, Any] = {
+        "type": f"/problems/{kind.slug}",
+        "title": kind.title,
+        "status": kind.status,
+        "detail": detail,
+        "instance": scope.get("path", ""),
+    }
+    rid = request_id(scope)
+    if rid:
+        body["request_id"] = rid
+    body.update({k: v for k, v in extra.items() if v is not None})
+    hdrs = dict(headers or {})
+    if kind.status == 503:
+        hdrs.setdefault("Retry-After", str(RETRY_AFTER_SECONDS))
+    if kind is MISSING_TOKEN:
+        hdrs.setdefault("WWW-Authenticate", 'Bearer realm="textsieve-admin"')
+    return Response(
+        orjson.dumps(body, default=_jsonable, option=orjson.OPT_NON_STR_KEYS),
+        status_code=kind.status,
+        media_type=MEDIA_TYPE,
+        headers=hdrs,
+    )
+
+
+def render(exc: BaseException, scope: Scope) -> Response:
+    """The problem response for any exception; the single exception → HTTP mapping."""
+    kind = kind_of(exc)
+    if isinstance(exc, TextsieveError) and kind is not INTERNAL:
+        ctx = dict(exc.context)
+        if set(ctx) == {"context"} and isinstance(ctx["context"], dict):
+            ctx = dict(ctx["context"])
+        ctx = {k: v for k, v in ctx.items() if k not in _STANDARD}
+        return problem(kind, exc.message, scope, **ctx)
+    log.error(
+        "unhandled error on %s (request %s)",
+        scope.get("path"),
+        request_id(scope),
+        exc_info=(type(exc), exc, exc.__traceback__),
+    )
+    return problem(INTERNAL, "the service failed while answering; the request id locates the log line", scope)
+
+
+def _field(loc: tuple[Any, ...] | list[Any]) -> str:
+    parts = [str(p) for p in loc]
+    if parts and parts[0] in ("body", "query", "path", "header"):
+        parts = parts[1:]
+    return ".".join(parts) or "body"
+
+
+def _validation_problem(exc: RequestValidationError, scope: Scope) -> Response:
+    errors: list[dict[str, Any]] = []
+    for err in exc.errors():
+        field = _field(err.get("loc", ()))
+        msg = str(err.get("msg", "invalid"))
+        if msg.startswith("Value error, "):
+            msg = msg[len("Value error, ") :]
+        kind = err.get("type", "")
+        if kind == "json_invalid":
+            where = err.get("loc", ("body", "?"))[-1]
+            msg = f"the body is not valid JSON (at character {where}: {err.get('ctx', {}).get('error', 'parse error')})"
+            field = "body"
+        elif kind == "missing" and field == "body":
+            msg = 'the body is missing; send a JSON object such as {"texts": ["..."]}'
+        elif kind == "unknown_field":
+            field = ", ".join(err.get("ctx", {}).get("fields", [])) or field
+        elif kind == "model_attributes_type" or (kind == "dict_type" and field == "body"):
+            msg = 'the body must be a JSON object such as {"texts": ["..."]}, sent with Content-Type: application/json'
+        errors.append({"field": field, "message": msg, "type": kind})
+    first = errors[0] if errors else {"field": "body", "message": "invalid"}
+    more = f" (and {len(errors) - 1} more problem(s), see 'errors')" if len(errors) > 1 else ""
+    detail = f"{first['field']}: {first['message']}{more}"
+    return problem(KINDS[InputError], detail, scope, errors=errors)
+
+
+async def _on_textsieve(request: Request, exc: Exception) -> Response:
+    return render(exc, request.scope)
+
+
+async def _on_validation(request: Request, exc: Exception) -> Response:
+    assert isinstance(exc, RequestValidationError)
+    return _validation_problem(exc, request.scope)
+
+
+async def _on_http(request: Request, exc: Exception) -> Response:
+    assert isinstance(exc, StarletteHTTPException)
+    if exc.status_code == 400 and exc.__cause__ is not None:
+        # FastAPI's own body parsing failed below JSON (e.g. bytes that are not UTF-8).
+        why = _unreadable(exc.__cause__)
+        msg = f'the body could not be read as JSON ({why}); send UTF-8 JSON such as {{"texts": ["..."]}}'
+        return problem(
+            KINDS[InputError],
+            f"body: {msg}",
+            request.scope,
+            errors=[{"field": "body", "message": msg, "type": "body_unreadable"}],
+        )
+    kind = _HTTP_KINDS.get(exc.status_code) or Kind(
+        exc.status_code, f"http-{exc.status_code}", str(exc.detail), str(exc.detail)
+    )
+    detail = (
+        f"no such path: {request.method} {request.url.path}; see GET /v1/models or the page at /"
+        if exc.status_code == 404
+        else str(exc.detail)
+    )
+    return problem(kind, detail, request.scope, headers=dict(exc.headers or {}))
+
+
+def _unreadable(cause: BaseException) -> str:
+    """Why the JSON parser gave up, in words (it raises these below its own error type)."""
+    if isinstance(cause, UnicodeDecodeError):
+        return "not UTF-8"
+    if isinstance(cause, RecursionError):
+        return "nested too deeply"
+    if isinstance(cause, ValueError) and "digits" in str(cause):
+        return "a number has too many digits"  # Python's int conversion limit (4300 digits)
+    return type(cause).__name__
+
+
+async def _on_unexpected(request: Request, exc: Exception) -> Response:
+    return render(exc, request.scope)
+
+
+async def _explain(slug: str) -> Response:
+    kind = SLUGS.get(slug)
+    if kind is None:
+        raise NotFoundError(f"no problem type {slug!r}; known: {', '.join(sorted(SLUGS))}")
+    return PlainTextResponse(f"{kind.title} (HTTP {kind.status})\n\n{kind.explanation}\n")
+
+
+def install(app: FastAPI) -> None:
+    app.add_exception_handler(TextsieveError, _on_textsieve)
+    app.add_exception_handler(RequestValidationError, _on_validation)
+    app.add_exception_handler(StarletteHTTPException, _on_http)
+    app.add_exception_handler(Exception, _on_unexpected)
+    app.add_api_route("/problems/{slug}", _explain, methods=["GET"], include_in_schema=False)
+
+
+__all__ = ["AdminDisabledError", "KINDS", "MEDIA_TYPE", "install", "problem", "render"]

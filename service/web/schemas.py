@@ -1,0 +1,225 @@
+"""Request and response bodies of the HTTP API, kept apart from the registry's own rows.
+
+Unknown request fields are refused (422 naming the field and the allowed ones): a typo such as
+``"span": 5`` silently ignored would hand the caller results they did not ask for. Types are
+strict (no ``"3"`` for 3, no ``1.0`` for 1, no ``1`` for true), as the OpenAPI schema states.
+Every text must hold something to classify: empty and whitespace-only texts are refused, and so
+are NUL characters, which no human text contains and which truncate strings in C-based consumers
+of the reply.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic_core import PydanticCustomError
+
+from textsieve.registry.names import MAX_VERSION, MODEL_NAME, MODEL_NAME_RULE
+
+# Bounds the schema states so that no number reaches a database column or a JSON encoder too big
+# for it; the service's own limits (max_spans) are far below.
+MAX_SPANS_FIELD = 2**31 - 1
+
+
+class _Request(BaseModel):
+    model_config = ConfigDict(extra="forbid", strict=True)
+
+    @model_validator(mode="before")
+    @classmethod
+    def _known_fields(cls, data: Any) -> Any:
+        if isinstance(data, dict):
+            unknown = sorted(str(k) for k in data if k not in cls.model_fields)
+            if unknown:
+                raise PydanticCustomError(
+                    "unknown_field",
+                    "unknown field(s) {names}; allowed: {allowed}",
+                    {"names": ", ".join(map(repr, unknown)), "allowed": ", ".join(cls.model_fields), "fields": unknown},
+                )
+        return data
+
+
+class PredictRequest(_Request):
+    # The schema states the rules that JSON Schema can express; the validators below (and the
+    # registry's name check) remain the authority and word the refusals.
+    texts: list[str] = Field(
+        min_length=1,
+        description="texts to classify, each with something besides whitespace and no NUL; limits are service settings",
+        json_schema_extra={"items": {"type": "string", "minLength": 1}},
+    )
+    model: str | None = Field(
+        None,
+        description=f"model name ({MODEL_NAME_RULE}); optional when one model is served",
+        json_schema_extra={"anyOf": [{"type": "string", "pattern": f"^{MODEL_NAME.pattern}$"}, {"type": "null"}]},
+    )
+    version: int | None = Field(None, ge=1, le=MAX_VERSION, description="pin a version; default: the live one")
+    spans: int = Field(3, ge=0, le=MAX_SPANS_FIELD, description="spans per text, strongest first")
+
+    @field_validator("texts")
+    @classmethod
+    def _valid_texts(cls, texts: list[str]) -> list[str]:
+        for i, t in enumerate(texts):
+            if not t.strip():
+                raise ValueError(
+                    f"texts[{i}] is empty{' (only whitespace)' if t else ''}; every text needs something to classify"
+                )
+            nul = t.find("\x00")
+            if nul >= 0:
+                raise ValueError(f"texts[{i}] contains a NUL character (U+0000) at character {nul}; remove it")
+            try:
+                # JSON may carry lone surrogates ("\ud800"); they are not text, cannot be encoded
+                # in the reply, and would otherwise surface as a server error.
+                t.encode("utf-8")
+            except UnicodeEncodeError as exc:
+                raise ValueError(
+                    f"texts[{i}] contains a lone surrogate (U+{ord(t[exc.start]):04X}) at "
+                    f"character {exc.start}; send valid Unicode"
+                ) from None
+        return texts
+
+
+class PromoteRequest(_Request):
+    to: Literal["candidate", "live"]
+    reason: str = Field(min_length=1, max_length=2000, description="recorded in the audit trail")
+    force: bool = Field(False, description="override refusing gates (recorded)")
+    actor: str | None = Field(None, max_length=120, description="who is acting; default: admin-api@<client address>")
+
+
+class RollbackRequest(_Request):
+    reason: str = Field(min_length=1, max_length=2000, description="recorded in the audit trail")
+    actor: str | None = Field(None, max_length=120)
+
+
+class SpanOut(BaseModel):
+    start: int = Field(description="character (code point) offset into the text as sent")
+    end: int = Field(description="exclusive; text[start:end] == text")
+    text: str
+    label: str = Field(description="the class this span supports (the predicted one)")
+    weight: float = Field(description="summed pooled_f · W[label, f] of the filters whose windows form the span")
+    width: int = Field(description="tokens covered")
+
+
+class ResultOut(BaseModel):
+    label: str
+    probabilities: dict[str, float] = Field(description="softmax(logits / T), temperature-calibrated")
+    spans: list[SpanOut]
+    tokens: int = Field(description="tokens in the text before truncation")
+    truncated: bool
+    unknown: int = Field(description="tokens outside the vocabulary, among those kept")
+
+
+class PredictResponse(BaseModel):
+    model: str
+    version: int
+    results: list[ResultOut]
+
+
+class VersionView(BaseModel):
+    model: str
+    version: int
+    state: str
+    labels: list[str]
+    created_at: str
+    published_by: str
+    reason: str | None = None
+    manifest_sha256: str
+    accuracy: float | None = None
+    macro_f1: float | None = None
+    parity_passed: bool
+    promoted_at: str | None = None
+    previous_live: int | None = None
+
+    @classmethod
+    def of(cls, info: Any) -> VersionView:
+        return cls.model_validate({k: getattr(info, k, None) for k in cls.model_fields})
+
+
+class ServingView(BaseModel):
+    version: int | None = Field(description="the version answering unpinned requests here; None when not served")
+    state: str
+    detail: str | None = None
+    loaded_at: str | None = None
+
+
+class ModelView(BaseModel):
+    name: str
+    live: int | None
+    candidate: int | None
+    versions: int
+    updated_at: str | None = None
+    serving: ServingView
+
+    @classmethod
+    def of(cls, info: Any, serving: ServingView) -> ModelView:
+        return cls(
+            name=info.name,
+            live=info.live,
+            candidate=info.candidate,
+            versions=info.versions,
+            updated_at=getattr(info, "updated_at", None),
+            serving=serving,
+        )
+
+
+class ModelDetail(ModelView):
+    history: list[dict[str, Any]] = Field(description="audit events, newest first (at most 20)")
+
+
+class GateView(BaseModel):
+    name: str
+    passed: bool
+    detail: str
+    figures: dict[str, Any] = Field(default_factory=dict)
+
+
+class AdminReply(BaseModel):
+    model: str
+    version: VersionView = Field(description="the version the call acted on (the live one after a rollback)")
+    gates: list[GateView] = Field(default_factory=list)
+    forced: bool = False
+    retired: int | None = None
+    serving: ServingView = Field(description="what this service answers with after the call")
+
+
+class Readiness(BaseModel):
+    ready: bool
+    reason: str = Field(description="one line: what is served, or why not")
+    degraded: list[str] = Field(
+        description="what works less well while the service still answers, e.g. "
+        "an unreachable registry or a new version that failed to load"
+    )
+    models: dict[str, dict[str, Any]] = Field(
+        description="per served model: state, version, and 'failed_version' when a newer one could not be loaded"
+    )
+
+
+class Problem(BaseModel):
+    """RFC 9457 problem details, plus our extension members."""
+
+    model_config = ConfigDict(extra="allow")
+
+    type: str
+    title: str
+    status: int
+    detail: str
+    instance: str
+    request_id: str | None = None
+    errors: list[dict[str, Any]] | None = None
+
+
+__all__ = [
+    "AdminReply",
+    "GateView",
+    "ModelDetail",
+    "ModelView",
+    "PredictRequest",
+    "PredictResponse",
+    "Problem",
+    "PromoteRequest",
+    "Readiness",
+    "ResultOut",
+    "RollbackRequest",
+    "ServingView",
+    "SpanOut",
+    "VersionView",
+]

@@ -1,0 +1,149 @@
+"""Pretrained vectors: the real GloVe excerpt, the word2vec header, and one-line errors."""
+
+from __future__ import annotations
+
+from collections import Counter
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from textsieve.errors import InputError
+from textsieve.exporter.vectors import load_vectors
+from textsieve.registry.tokenizer import Vocabulary
+
+# GloVe 6B, 100 dimensions (Pennington, Socher & Manning, EMNLP 2014); an excerpt described in
+# tests/data/README.md.
+GLOVE = Path(__file__).parents[1] / "data" / "glove_excerpt_100d.txt"
+
+
+def _vocab(*words: str) -> Vocabulary:
+    return Vocabulary.build(Counter({w: 1 for w in words}))
+
+
+def _row(vocab: Vocabulary, loaded_ids: np.ndarray, matrix: np.ndarray, word: str) -> np.ndarray:
+    where = np.flatnonzero(loaded_ids == vocab.index[word])
+    assert where.size == 1, f"{word!r} not loaded"
+    return matrix[where[0]]
+
+
+def _cos(a: np.ndarray, b: np.ndarray) -> float:
+    a, b = a.astype(np.float64), b.astype(np.float64)
+    return float(a @ b / (np.linalg.norm(a) * np.linalg.norm(b)))
+
+
+def test_glove_excerpt_dimension_values_and_similarity() -> None:
+    vocab = _vocab("the", "good", "great", "terrible", "banana", "qqqnotaword")
+    vectors = load_vectors(GLOVE, vocab)
+    assert vectors.dim == 100
+    assert vectors.matrix.shape == (5, 100) and vectors.matrix.dtype == np.float32
+    assert vectors.found == 5  # every word but the made-up one
+    assert vocab.index["qqqnotaword"] not in vectors.ids
+
+    # The first line of the file, as text: "the -0.038194 -0.24487 0.72812 ..." (tests/data/README.md
+    # notes it equals glove.6B.100d.txt's first row, from memory).
+    first_line = GLOVE.read_text(encoding="utf-8").split("\n", 1)[0].split(" ")
+    assert first_line[:4] == ["the", "-0.038194", "-0.24487", "0.72812"]
+    the = _row(vocab, vectors.ids, vectors.matrix, "the")
+    np.testing.assert_array_equal(the, np.array(first_line[1:], dtype=np.float32))
+
+    # From memory, common knowledge about GloVe: related words lie closer than unrelated ones.
+    good = _row(vocab, vectors.ids, vectors.matrix, "good")
+    great = _row(vocab, vectors.ids, vectors.matrix, "great")
+    banana = _row(vocab, vectors.ids, vectors.matrix, "banana")
+    assert _cos(good, great) > _cos(good, banana) + 0.2
+    assert _cos(good, great) > 0.6
+
+
+def test_only_vocabulary_rows_are_kept_and_specials_are_skipped(tmp_path: Path) -> None:
+    f = tmp_path / "v.txt"
+    f.write_text("<unk> 9 9\n<pad> 9 9\nalpha 1 2\nbeta 3 4\ngamma 5 6\n", encoding="utf-8")
+    vocab = _vocab("gamma", "alpha")
+    vectors = load_vectors(f, vocab)
+    # Padding must stay zero and the unknown token random: the file cannot set them.
+    assert sorted(vectors.ids.tolist()) == sorted([vocab.index["alpha"], vocab.index["gamma"]])
+    assert _row(vocab, vectors.ids, vectors.matrix, "gamma").tolist() == [5.0, 6.0]
+
+
+def test_word2vec_header_and_trailing_spaces(tmp_path: Path) -> None:
+    # word2vec's text output: "count dim" first, then rows that end with a space.
+    f = tmp_path / "w2v.txt"
+    f.write_text("2 3\nalpha 0.5 -1 2e-1 \nbeta 1 1 1 \n", encoding="utf-8")
+    vectors = load_vectors(f, _vocab("alpha"))
+    assert vectors.dim == 3
+    np.testing.assert_array_equal(vectors.matrix[0], np.array([0.5, -1, 0.2], dtype=np.float32))
+
+
+def test_words_are_normalised_like_the_tokenizer_and_first_spelling_wins(tmp_path: Path) -> None:
+    f = tmp_path / "v.txt"
+    # "Cafe\u0301" (decomposed, capitalised) normalises to the vocabulary's "café" (NFKC + casefold);
+    # its second spelling further down is ignored.
+    f.write_text("Cafe\u0301 1 1\ncafé 2 2\nDon\u2019t 3 3\n", encoding="utf-8")
+    vocab = _vocab("café", "don't")
+    vectors = load_vectors(f, vocab)
+    assert _row(vocab, vectors.ids, vectors.matrix, "café").tolist() == [1.0, 1.0]
+    assert _row(vocab, vectors.ids, vectors.matrix, "don't").tolist() == [3.0, 3.0]
+
+
+def test_gzip_files_are_read(tmp_path: Path) -> None:
+    import gzip
+
+    f = tmp_path / "v.txt.gz"
+    with gzip.open(f, "wt", encoding="utf-8") as fh:
+        fh.write("alpha 1 2\n")
+    assert load_vectors(f, _vocab("alpha")).found == 1
+
+
+def _error(path: Path, vocab: Vocabulary | None = None) -> str:
+    with pytest.raises(InputError) as info:
+        load_vectors(path, vocab or _vocab("alpha", "beta"))
+    message = info.value.message
+    assert "\n" not in message and str(path) in message
+    return message
+
+
+def test_missing_file(tmp_path: Path) -> None:
+    assert "no such file" in _error(tmp_path / "none.txt")
+
+
+def test_empty_file(tmp_path: Path) -> None:
+    f = tmp_path / "v.txt"
+    f.write_text("", encoding="utf-8")
+    assert "has no vectors" in _error(f)
+
+
+def test_non_utf8(tmp_path: Path) -> None:
+    f = tmp_path / "v.txt"
+    f.write_bytes(b"alpha 1 2\nb\xffeta 3 4\n")
+    assert "line 2: byte offset 11 is not valid UTF-8" in _error(f)
+
+
+def test_ragged_rows(tmp_path: Path) -> None:
+    f = tmp_path / "v.txt"
+    f.write_text("alpha 1 2 3\nzeta 1 2\n", encoding="utf-8")
+    # Checked even for words outside the vocabulary: a ragged file is a broken file.
+    assert "line 2: has 2 values, expected 3" in _error(f)
+
+
+def test_header_dimension_disagrees_with_rows(tmp_path: Path) -> None:
+    f = tmp_path / "v.txt"
+    f.write_text("1 4\nalpha 1 2 3\n", encoding="utf-8")
+    assert "line 2: has 3 values, expected 4" in _error(f)
+
+
+def test_non_numeric_value(tmp_path: Path) -> None:
+    f = tmp_path / "v.txt"
+    f.write_text("alpha 1 2\nbeta 3 x4\n", encoding="utf-8")
+    assert "line 2: value 'x4' is not a number" in _error(f)
+
+
+def test_non_finite_value(tmp_path: Path) -> None:
+    f = tmp_path / "v.txt"
+    f.write_text("alpha 1 nan\n", encoding="utf-8")
+    assert "line 1: has a value that is not finite" in _error(f)
+
+
+def test_binary_word2vec_is_refused(tmp_path: Path) -> None:
+    f = tmp_path / "v.bin"
+    f.write_bytes(b"2 3\nalpha \x00\x00\x80?")
+    assert "binary word2vec files are not supported" in _error(f)

@@ -1,0 +1,87 @@
+"""Helpers for the registry tests (the fixtures live in registry_fixtures.py; other tests may use
+postgres_url for the same skip-or-fail rule)."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+
+import pytest
+
+from textsieve.registry import Registry, open_registry
+
+
+@dataclass(frozen=True)
+class RegistrySpec:
+    """Where a test registry lives: enough to open it again, in this process or another."""
+
+    kind: str
+    location: str
+    blobs: str | None
+
+    def open(self, **kwargs: object) -> Registry:
+        return open_registry(self.location, blobs=self.blobs, **kwargs)  # type: ignore[arg-type]
+
+    def cli_args(self) -> list[str]:
+        return ["--registry", self.location] + (["--blobs", self.blobs] if self.blobs else [])
+
+    @property
+    def blob_dir(self) -> Path:
+        return Path(self.blobs) if self.blobs else Path(self.location) / "blobs"
+
+
+def postgres_url() -> str:
+    """TEXTSIEVE_TEST_PG, or a skip (a failure in CI, where the server must be there)."""
+    url = os.environ.get("TEXTSIEVE_TEST_PG")
+    if not url:
+        message = (
+            "TEXTSIEVE_TEST_PG is not set: run 'bash scripts/test-services.sh' and source .test-env "
+            "(make test does both)"
+        )
+        if os.environ.get("CI"):
+            pytest.fail(message)
+        pytest.skip(message)
+    return url
+
+
+def edit_manifest(bundle: Path, change: dict[str, object], *, rehash: bool = True) -> None:
+    """Change manifest fields (dotted keys), optionally recording the files' current sha256."""
+    path = bundle / "manifest.json"
+    data = json.loads(path.read_text())
+    for key, value in change.items():
+        node = data
+        *parents, last = key.split(".")
+        for p in parents:
+            node = node[p]
+        node[last] = value
+    if rehash:
+        data["files"] = {name: hashlib.sha256((bundle / name).read_bytes()).hexdigest() for name in data["files"]}
+    path.write_text(json.dumps(data, indent=2))
+
+
+def card_variants(base: Path, root: Path, n: int) -> list[Path]:
+    """``n`` distinct bundles from one real bundle: same weights, each with its own model card."""
+    out = []
+    for i in range(n):
+        dst = root / f"variant-{i}"
+        shutil.copytree(base, dst)
+        (dst / "card.md").write_text(f"# variant {i}\n\nSame weights, another card.\n", encoding="utf-8")
+        edit_manifest(dst, {})
+        out.append(dst)
+    return out
+
+
+def write_jsonl(path: Path, rows: list[dict[str, str]]) -> Path:
+    path.write_text("".join(json.dumps(r, ensure_ascii=False) + "\n" for r in rows), encoding="utf-8")
+    return path
+
+
+def read_jsonl(path: Path) -> list[dict[str, str]]:
+    return [json.loads(line) for line in path.read_text(encoding="utf-8").splitlines() if line]
+
+
+__all__ = ["RegistrySpec", "card_variants", "edit_manifest", "postgres_url", "read_jsonl", "write_jsonl"]

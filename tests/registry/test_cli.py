@@ -1,0 +1,167 @@
+"""The registry verbs of the textsieve command: output people read and scripts parse, exit statuses."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import pytest
+
+from tests.helpers.registries import RegistrySpec
+from textsieve.cli import main
+from textsieve.registry.cli import table
+
+
+def run(capsys: pytest.CaptureFixture[str], *argv: str) -> tuple[int, str, str]:
+    code = main(list(argv))
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def assert_aligned(text: str) -> None:
+    """No cell crosses a column boundary: the character before each header column is a space on every line."""
+    lines = text.splitlines()
+    starts = [m.start() for m in re.finditer(r"(?<=  )\S", lines[0])]
+    assert starts
+    for line in lines:
+        for s in starts:
+            if len(line) > s:
+                assert line[s - 1] == " ", (lines[0], line)
+
+
+def test_table_pads_columns_and_right_aligns_numbers() -> None:
+    text = table(["NAME", "N"], [["alpha", 1], ["b", 1234], ["c", None]], right=(1,))
+    assert text.splitlines() == ["NAME      N", "alpha     1", "b      1234", "c         -"]
+
+
+def test_registry_verbs_end_to_end(
+    capsys: pytest.CaptureFixture[str], spec: RegistrySpec, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    r = spec.cli_args()
+    code, out, err = run(
+        capsys,
+        "publish",
+        str(tiny_bundles["a"]),
+        "--model",
+        "spam",
+        *r,
+        "--evalset",
+        str(tiny_data / "test.jsonl"),
+        "--actor",
+        "alice",
+        "--reason",
+        "baseline",
+    )
+    assert (code, out) == (0, "1\n")  # scripts read the version number alone on stdout
+    assert "published 'spam' version 1" in err
+    code, out, _ = run(capsys, "publish", str(tiny_bundles["b"]), "--model", "spam", *r)
+    assert (code, out) == (0, "2\n")
+
+    code, out, _ = run(capsys, "models", *r)
+    assert code == 0
+    header, row = out.splitlines()
+    assert header.split() == ["MODEL", "LIVE", "CANDIDATE", "VERSIONS", "EVAL", "TEXTS", "UPDATED"]
+    assert row.split()[:4] == ["spam", "-", "-", "2"]
+    assert_aligned(out)
+
+    code, out, _ = run(capsys, "promote", "spam", "1", "--to", "live", "--reason", "first", *r)
+    assert code == 0 and "'spam' version 1 is now live" in out
+    assert re.search(r"^labels\s+pass\s+no live version$", out, re.M)
+
+    code, out, _ = run(capsys, "versions", "spam", *r)
+    lines = out.splitlines()
+    assert lines[0].split()[:3] == ["VERSION", "STATE", "ACCURACY"]
+    assert [ln.split()[:2] for ln in lines[1:]] == [["1", "live"], ["2", "registered"]]
+    assert_aligned(out)
+
+    code, out, _ = run(capsys, "show", "spam", *r)
+    assert code == 0 and re.search(r"^state\s+live$", out, re.M) and "model.onnx" in out
+    code, out, _ = run(capsys, "show", "spam", "2", *r)
+    assert code == 0 and re.search(r"^state\s+registered$", out, re.M)
+
+    code, out, _ = run(capsys, "promote", "spam", "2", "--to", "candidate", "--reason", "try", *r)
+    assert code == 0 and "'spam' version 2 is now candidate" in out
+
+    code, out, _ = run(capsys, "rollback", "spam", "--reason", "x", *r)
+    assert code == 2
+
+    code, out, err = run(
+        capsys, "promote", "spam", "2", "--to", "live", "--reason", "hotfix", "--force", *r, "--actor", "bob"
+    )
+    assert code == 0 and "is now live (version 1 retired)" in out
+    code, out, _ = run(capsys, "rollback", "spam", "--reason", "too slow", *r, "--actor", "carol")
+    assert (code, out) == (0, "'spam' version 1 is live again (version 2 retired)\n")
+
+    code, out, _ = run(capsys, "history", "spam", *r)
+    lines = out.splitlines()
+    assert lines[0].split()[:4] == ["EVENT", "TIME", "(UTC)", "KIND"]
+    kinds = [ln.split()[3] for ln in lines[1:]]
+    assert kinds[:3] == ["publish", "evalset", "publish"] and kinds[-1] == "rollback"
+    assert "carol" in lines[-1] and "too slow" in lines[-1]
+    assert_aligned(out)
+
+    code, out, _ = run(capsys, "evalset", "add", "spam", str(tiny_data / "valid.jsonl"), *r)
+    assert code == 0 and out.startswith("evaluation set for 'spam':")
+
+
+def test_a_refused_gate_exits_1_naming_the_gate_and_figures(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    r = ["--registry", str(tmp_path / "reg")]
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r, "--evalset", str(tiny_data / "test.jsonl"))
+    run(capsys, "publish", str(tiny_bundles["relabelled"]), "--model", "m", *r)
+    run(capsys, "promote", "m", "1", "--to", "live", "--reason", "x", *r)
+    code, out, err = run(capsys, "promote", "m", "2", "--to", "live", "--reason", "relabel", *r)
+    assert code == 1 and out == ""
+    last = err.strip().splitlines()[-1]
+    assert last.startswith("textsieve: error: version 2 of 'm' not promoted to live: gate labels refused")
+    assert "drops 'praise'" in last and "--force" in last
+    assert re.search(r"^labels\s+FAIL\s+labels differ", err, re.M)  # the gate table with figures
+
+
+@pytest.mark.parametrize(
+    "argv",
+    [
+        ["versions", "Bad/Name"],
+        ["versions", "nope"],
+        ["show", "m", "x"],
+        ["show", "m", "0"],
+        ["promote", "m", "9", "--to", "live", "--reason", "x"],
+        ["promote", "m", "1", "--to", "live", "--reason", "  "],
+        ["history", ".."],
+        ["publish", "/nonexistent/bundle", "--model", "m"],
+        ["evalset", "add", "m", "/nonexistent.jsonl"],
+        ["rollback", "m", "--reason", "x"],
+    ],
+)
+def test_bad_input_exits_2_with_one_line(
+    argv: list[str], capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    r = ["--registry", str(tmp_path / "reg")]
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)
+    code, out, err = run(capsys, *argv, *r)
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1 and err.startswith("textsieve: error: "), err
+
+
+def test_a_state_outside_the_choices_is_an_argument_error(capsys: pytest.CaptureFixture[str]) -> None:
+    with pytest.raises(SystemExit) as info:
+        main(["promote", "m", "1", "--to", "retired", "--reason", "x"])
+    assert info.value.code == 2
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1 and "invalid choice: 'retired'" in err
+
+
+def test_read_verbs_do_not_create_a_registry(capsys: pytest.CaptureFixture[str], tmp_path: Path) -> None:
+    code, _, err = run(capsys, "models", "--registry", str(tmp_path / "none"))
+    assert code == 2 and "no registry at" in err and not (tmp_path / "none").exists()
+    code, _, err = run(capsys, "models", "--registry", "postgresql://u@127.0.0.1:1/x")
+    assert code == 2 and "--blobs" in err
+
+
+def test_an_empty_registry_lists_no_models(capsys: pytest.CaptureFixture[str], tmp_path: Path) -> None:
+    from textsieve.registry import open_registry
+
+    open_registry(tmp_path / "reg").close()
+    code, out, _ = run(capsys, "models", "--registry", str(tmp_path / "reg"))
+    assert code == 0 and "no models yet" in out

@@ -1,0 +1,253 @@
+"""Promotion gates: what each one checks, its figures (cross-checked with scikit-learn), the
+tolerance edges, forcing, and re-judging when the live version changes while gates run."""
+
+from __future__ import annotations
+
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+import sklearn.metrics
+
+from tests.helpers.registries import RegistrySpec, edit_manifest, read_jsonl, write_jsonl
+from textsieve.errors import GateRefusedError
+from textsieve.registry import GateSettings, Registry
+from textsieve.registry import gates as gates_module
+from textsieve.registry.bundle import open_bundle
+from textsieve.registry.evalsets import LabelledText
+from textsieve.registry.gates import Scores, Side, labels_gate, metric_gates, parity_gate
+from textsieve.registry.runtime import Predictor
+
+
+def _texts(tiny_data: Path) -> list[str]:
+    return [r["text"] for name in ("test.jsonl", "valid.jsonl") for r in read_jsonl(tiny_data / name)]
+
+
+def _predicted(bundle: Path, texts: list[str]) -> tuple[list[str], np.ndarray]:
+    p = Predictor.from_bundle(bundle)
+    preds = p.predict(texts, spans=0)
+    probs = np.array([[pr.probabilities[label] for label in p.labels] for pr in preds])
+    return [pr.label for pr in preds], probs
+
+
+def _evalset_favouring(winner: Path, loser: Path, tiny_data: Path, path: Path) -> tuple[Path, list[int]]:
+    """Texts labelled with ``winner``'s own predictions, half of them where ``loser`` disagrees."""
+    texts = _texts(tiny_data)
+    win, _ = _predicted(winner, texts)
+    lose, _ = _predicted(loser, texts)
+    differ = [i for i in range(len(texts)) if win[i] != lose[i]]
+    same = [i for i in range(len(texts)) if win[i] == lose[i]]
+    assert len(differ) >= 5, "the two tiny models should disagree on some texts"
+    chosen = differ[:60] + same[:60]
+    write_jsonl(path, [{"text": texts[i], "label": win[i]} for i in chosen])
+    return path, chosen
+
+
+def test_metric_gate_refuses_a_worse_candidate_with_figures_matching_scikit_learn(
+    registry: Registry, tiny_bundles: dict[str, Path], tiny_data: Path, tmp_path: Path
+) -> None:
+    a, b = tiny_bundles["a"], tiny_bundles["b"]
+    evalset, chosen = _evalset_favouring(a, b, tiny_data, tmp_path / "eval.jsonl")
+    registry.publish(a, "m", evalset=evalset)
+    registry.publish(b, "m")
+    registry.promote("m", 1, "live", reason="baseline")
+    with pytest.raises(GateRefusedError) as info:
+        registry.promote("m", 2, "live", reason="seed 2")
+    assert "gate macro_f1 refused" in info.value.message
+    gates = {g["name"]: g for g in info.value.context["gates"]}
+    assert gates["parity"]["passed"] and gates["labels"]["passed"]
+    f1 = gates["macro_f1"]
+    assert not f1["passed"]
+    rows = read_jsonl(evalset)
+    truth = [r["label"] for r in rows]
+    texts = [r["text"] for r in rows]
+    b_pred, _ = _predicted(b, texts)
+    # figures against scikit-learn on the same predictions
+    assert f1["figures"]["live"]["macro_f1"] == pytest.approx(1.0)
+    assert f1["figures"]["candidate"]["macro_f1"] == pytest.approx(
+        sklearn.metrics.f1_score(truth, b_pred, average="macro", zero_division=0), abs=1e-12
+    )
+    assert f1["figures"]["candidate"]["accuracy"] == pytest.approx(sklearn.metrics.accuracy_score(truth, b_pred))
+    assert f1["figures"]["texts"] == len(chosen)
+    assert f1["figures"]["change"] == pytest.approx(f1["figures"]["candidate"]["macro_f1"] - 1.0)
+    # nothing moved, and the refusal is on record with its figures
+    assert registry.live("m").version == 1  # type: ignore[union-attr]
+    assert registry.version("m", 2).state == "registered"
+    last = registry.history("m")[-1]
+    assert last.kind == "refuse" and last.details["gates"] == info.value.context["gates"]
+    # a dry run gives the same verdict and records nothing
+    dry = registry.check("m", 2)
+    assert [g.model_dump() for g in dry] == info.value.context["gates"]
+    assert registry.history("m")[-1] == last
+
+
+def test_metric_gate_passes_a_better_candidate(
+    spec: RegistrySpec, tiny_bundles: dict[str, Path], tiny_data: Path, tmp_path: Path
+) -> None:
+    a, b = tiny_bundles["a"], tiny_bundles["b"]
+    evalset, _ = _evalset_favouring(b, a, tiny_data, tmp_path / "eval.jsonl")
+    # isolate the macro-F1 gate: the ECE gate is judged in its own test
+    with spec.open(settings=GateSettings(ece_tolerance=1.0)) as reg:
+        reg.publish(a, "m", evalset=evalset)
+        reg.publish(b, "m")
+        reg.promote("m", 1, "live", reason="baseline")
+        result = reg.promote("m", 2, "live", reason="better on the set")
+    f1 = next(g for g in result.gates if g.name == "macro_f1")
+    assert f1.passed and f1.figures["candidate"]["macro_f1"] == pytest.approx(1.0)
+    assert f1.figures["live"]["macro_f1"] < 1.0
+    assert not result.forced and result.retired == 1
+
+
+def _labels(n: int = 3) -> list[str]:
+    return [f"l{i}" for i in range(n)]
+
+
+def _sides(live: Scores, cand: Scores, monkeypatch: pytest.MonkeyPatch) -> tuple[Side, Side]:
+    """(candidate, live) sides whose load() hands their scores straight to a stubbed score()."""
+    monkeypatch.setattr(gates_module, "score", lambda loaded, examples: loaded)
+    return Side(2, _labels(), lambda: cand), Side(1, _labels(), lambda: live)  # type: ignore[arg-type,return-value]
+
+
+EXAMPLES = [LabelledText("t", "l0")] * 10
+
+
+@pytest.mark.parametrize(
+    ("f1_live", "f1_cand", "passed"),
+    [
+        (0.80, 0.80, True),
+        (0.80, 0.95, True),
+        (0.80, 0.79, True),  # a drop of exactly the tolerance passes
+        (0.80, 0.7899, False),
+        (0.50, 0.30, False),
+    ],
+)
+def test_macro_f1_tolerance_edge(f1_live: float, f1_cand: float, passed: bool, monkeypatch: pytest.MonkeyPatch) -> None:
+    candidate, live = _sides(Scores(10, 0.9, f1_live, 0.05), Scores(10, 0.9, f1_cand, 0.05), monkeypatch)
+    result = metric_gates("m", candidate, live, EXAMPLES, "0" * 64, GateSettings())
+    by_name = {g.name: g for g in result}
+    assert by_name["macro_f1"].passed is passed
+    assert by_name["ece"].passed
+    assert by_name["macro_f1"].figures["macro_f1_tolerance"] == 0.01
+
+
+@pytest.mark.parametrize(
+    ("ece_live", "ece_cand", "passed"),
+    [
+        (0.05, 0.05, True),
+        (0.05, 0.01, True),
+        (0.05, 0.07, True),
+        (0.05, 0.0701, False),
+        (0.0, 0.3, False),
+    ],
+)
+def test_ece_tolerance_edge(ece_live: float, ece_cand: float, passed: bool, monkeypatch: pytest.MonkeyPatch) -> None:
+    candidate, live = _sides(Scores(10, 0.9, 0.8, ece_live), Scores(10, 0.9, 0.8, ece_cand), monkeypatch)
+    by_name = {g.name: g for g in metric_gates("m", candidate, live, EXAMPLES, "0" * 64, GateSettings())}
+    assert by_name["ece"].passed is passed and by_name["macro_f1"].passed
+    assert by_name["ece"].figures["change"] == pytest.approx(ece_cand - ece_live)
+
+
+def test_no_live_version_passes_with_that_detail_and_no_evalset_with_live_fails_with_advice() -> None:
+    side = Side(1, _labels(), lambda: None)  # type: ignore[arg-type,return-value]
+    alone = metric_gates("m", side, None, None, None, GateSettings())
+    assert [(g.passed, g.detail) for g in alone] == [(True, "no live version")] * 2
+    blind = metric_gates("m", side, Side(0, _labels(), lambda: None), None, None, GateSettings())  # type: ignore[arg-type,return-value]
+    assert [g.passed for g in blind] == [False, False]
+    assert "textsieve evalset add m FILE" in blind[0].detail
+
+
+def test_labels_gate() -> None:
+    assert labels_gate(["a", "b"], None, None).detail == "no live version"
+    same = labels_gate(["b", "a"], ["a", "b"], 3)
+    assert same.passed and "different output order" in same.detail
+    differ = labels_gate(["a", "c"], ["a", "b"], 3)
+    assert not differ.passed and differ.figures["added"] == ["c"] and differ.figures["removed"] == ["b"]
+    assert "adds 'c'; drops 'b'" in differ.detail
+
+
+def test_parity_gate_reads_the_stored_report(tiny_bundles: dict[str, Path]) -> None:
+    m = open_bundle(tiny_bundles["a"]).manifest
+    ok = parity_gate(m)
+    assert ok.passed and ok.figures["max_abs_prob_diff"] == m.parity.max_abs_prob_diff
+    bad = parity_gate(m.model_copy(update={"parity": m.parity.model_copy(update={"max_abs_prob_diff": 1.0})}))
+    assert not bad.passed and "parity failed" in bad.detail
+
+
+def test_labels_gate_refuses_a_relabelled_model_unless_forced(
+    registry: Registry, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    registry.publish(tiny_bundles["a"], "m", evalset=tiny_data / "test.jsonl")
+    registry.publish(tiny_bundles["relabelled"], "m")
+    registry.promote("m", 1, "live", reason="baseline")
+    with pytest.raises(GateRefusedError, match=r"gate labels refused.*drops 'praise'") as info:
+        registry.promote("m", 2, "live", reason="relabel")
+    metric = {g["name"]: g for g in info.value.context["gates"]}["macro_f1"]
+    assert "labels this version does not know: 'praise'" in metric["detail"]
+    forced = registry.promote("m", 2, "live", reason="relabel agreed with the clients", force=True)
+    assert forced.forced and forced.version.state == "live"
+    event = registry.history("m")[-1]
+    assert event.details["forced"] and "labels" in event.details["overridden"]
+    assert event.reason == "relabel agreed with the clients"
+
+
+def test_gates_are_judged_again_when_live_changes_meanwhile(
+    spec: RegistrySpec, tiny_bundles: dict[str, Path], tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    c = tmp_path / "c"
+    shutil.copytree(tiny_bundles["a"], c)
+    (c / "card.md").write_text("# c\n")
+    edit_manifest(c, {})
+    with spec.open() as reg, spec.open() as other:
+        for bundle in (tiny_bundles["a"], tiny_bundles["b"], c):
+            reg.publish(bundle, "m")
+        reg.promote("m", 1, "live", reason="baseline")
+        original = Registry._gates
+        seen: list[int | None] = []
+
+        def racing(self: Registry, model, target, live, evalset):  # type: ignore[no-untyped-def]
+            if self is reg:
+                seen.append(None if live is None else live.version)
+                if len(seen) == 1:  # another replica promotes version 3 while our gates run
+                    other.promote("m", 3, "live", reason="meanwhile", force=True)
+            return original(self, model, target, live, evalset)
+
+        monkeypatch.setattr(Registry, "_gates", racing)
+        result = reg.promote("m", 2, "live", reason="mine", force=True)
+    assert seen == [1, 3]
+    assert result.retired == 3 and result.version.previous_live == 3
+    with spec.open() as reg:
+        assert [v.state for v in reg.versions("m")] == ["retired", "live", "retired"]
+        promotes = [e for e in reg.history("m") if e.kind == "promote"]
+        assert [(e.version, e.details["retired"]) for e in promotes] == [(1, None), (3, 1), (2, 3)]
+
+
+def test_under_constant_contention_the_last_round_is_judged_under_the_lock(
+    spec: RegistrySpec, tiny_bundles: dict[str, Path], tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    bundles = []
+    for i in range(5):
+        d = tmp_path / f"v{i}"
+        shutil.copytree(tiny_bundles["a"], d)
+        (d / "card.md").write_text(f"# variant {i}\n")
+        edit_manifest(d, {})
+        bundles.append(d)
+    with spec.open() as reg, spec.open() as other:
+        for bundle in bundles:
+            reg.publish(bundle, "m")
+        reg.promote("m", 1, "live", reason="baseline")
+        original = Registry._gates
+        seen: list[tuple[int | None, bool]] = []
+
+        def racing(self: Registry, model, target, live, evalset):  # type: ignore[no-untyped-def]
+            if self is reg:
+                in_transaction = bool(reg.backend._depth)  # type: ignore[attr-defined]
+                seen.append((None if live is None else live.version, in_transaction))
+                if len(seen) <= 3:  # someone else wins the race every optimistic round
+                    other.promote("m", 2 + len(seen), "live", reason="meanwhile", force=True)
+            return original(self, model, target, live, evalset)
+
+        monkeypatch.setattr(Registry, "_gates", racing)
+        result = reg.promote("m", 2, "live", reason="mine", force=True)
+    assert seen == [(1, False), (3, False), (4, False), (5, True)]
+    assert result.retired == 5 and result.version.state == "live"

@@ -1,0 +1,260 @@
+"""The bad-input catalogue: each hostile or broken request is answered 4xx with an RFC 9457
+problem+json body whose ``detail`` names what is wrong (and, where a setting is involved, the
+limit and the setting), never a 5xx or a traceback.
+
+Covered elsewhere and not repeated here (tests/service/test_errors.py): truncated JSON, a body
+that is not an object, missing/empty/non-list ``texts``, non-string texts, an unknown field
+``span``, version 0 or a string, negative spans, a lone surrogate, an empty body, the three size
+limits at small settings, unknown model/version/path. This module adds the rest of the
+catalogue, at the service's default limits where sizes matter:
+
+- NUL characters (escaped in a text, raw in the body, in a model name);
+- empty and whitespace-only texts, an empty model name;
+- invalid UTF-8 byte sequences (RFC 3629 §3: overlong forms, encoded surrogates, truncated
+  sequences and bytes that never occur in UTF-8);
+- a 1 MB text, 5 MB of texts, 100 000 texts;
+- JSON nested 100 000 deep;
+- several unknown fields at once, and unknown fields in admin bodies;
+- a retired version, versions past what the registry can store, huge or fractional spans;
+- wrong content types.
+
+Decision on unknown fields: refused with 422 naming each unknown field and the allowed ones
+(see service/web/schemas.py and SECURITY.md, API3): a misspelt option silently ignored would give
+callers results they did not ask for, and accepting arbitrary properties invites mass
+assignment once a field is added.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from tests.helpers.service import ADMIN_TOKEN, MODEL, assert_problem, serving, settings_for
+from textsieve.registry import open_registry
+
+pytestmark = pytest.mark.anyio
+JSON = {"content-type": "application/json"}
+MAX_VERSION = 2**31 - 1  # the largest PostgreSQL INTEGER (PostgreSQL docs, "Numeric Types")
+
+
+@pytest.fixture(scope="module")
+def retired_registry(tmp_path_factory: pytest.TempPathFactory, tiny_bundles: dict[str, Path]) -> Path:
+    """Model ``support``: version 1 retired, version 2 live (read-only use)."""
+    folder = tmp_path_factory.mktemp("catalogue") / "registry"
+    with open_registry(folder) as reg:
+        reg.publish(tiny_bundles["a"], MODEL, actor="tests")
+        reg.publish(tiny_bundles["b"], MODEL, actor="tests")
+        reg.promote(MODEL, 1, "live", reason="first", actor="tests", force=True)
+        reg.promote(MODEL, 2, "live", reason="second", actor="tests", force=True)
+    return folder
+
+
+def _big(n_chars: int) -> str:
+    return ("charged twice " * (n_chars // 14 + 1))[:n_chars]
+
+
+# (id, body bytes, status, problem slug, field named in errors (or None), words the detail must contain)
+CATALOGUE: list[tuple[str, bytes, int, str, str | None, list[str]]] = [
+    (
+        "NUL escaped in a text",
+        b'{"texts": ["fine", "bad\\u0000text"]}',
+        422,
+        "invalid-input",
+        "texts",
+        ["texts[1]", "U+0000"],
+    ),
+    ("raw NUL byte in the body", b'{"texts": ["bad\x00text"]}', 422, "invalid-input", "body", ["not valid JSON"]),
+    (
+        "NUL in the model name",
+        b'{"texts": ["a"], "model": "sup\\u0000port"}',
+        422,
+        "invalid-input",
+        None,
+        ["bad model name"],
+    ),
+    ("empty text", b'{"texts": ["fine", ""]}', 422, "invalid-input", "texts", ["texts[1]", "empty"]),
+    ("whitespace-only text", b'{"texts": [" \\t\\n\\u3000"]}', 422, "invalid-input", "texts", ["texts[0]", "empty"]),
+    ("empty model name", b'{"texts": ["a"], "model": ""}', 422, "invalid-input", None, ["bad model name"]),
+    ("byte 0xFF (never in UTF-8)", b'{"texts": ["caf\xff"]}', 422, "invalid-input", "body", ["not UTF-8"]),
+    ("overlong encoding of '/'", b'{"texts": ["a\xc0\xafb"]}', 422, "invalid-input", "body", ["not UTF-8"]),
+    # Python's JSON decoder lets encoded surrogates through (surrogatepass); the text check then names it.
+    (
+        "UTF-8-encoded surrogate",
+        b'{"texts": ["a\xed\xa0\x80b"]}',
+        422,
+        "invalid-input",
+        "texts",
+        ["texts[0]", "lone surrogate"],
+    ),
+    ("truncated 3-byte sequence", b'{"texts": ["a\xe2\x82"]}', 422, "invalid-input", "body", ["not UTF-8"]),
+    ("Latin-1 body", '{"texts": ["déjà vu"]}'.encode("latin-1"), 422, "invalid-input", "body", ["not UTF-8"]),
+    (
+        "a 1 MB text",
+        json.dumps({"texts": [_big(1_000_000)]}).encode(),
+        413,
+        "limit-exceeded",
+        None,
+        ["texts[0]", "1000000 characters", "TEXTSIEVE_MAX_CHARS"],
+    ),
+    (
+        "5 MB of texts",
+        json.dumps({"texts": [_big(19_000)] * 270}).encode(),
+        413,
+        "limit-exceeded",
+        None,
+        ["TEXTSIEVE_MAX_BODY_BYTES"],
+    ),
+    (
+        "100 000 texts",
+        json.dumps({"texts": ["a"] * 100_000}).encode(),
+        413,
+        "limit-exceeded",
+        None,
+        ["100000 texts", "TEXTSIEVE_MAX_TEXTS"],
+    ),
+    (
+        "arrays nested 100 000 deep",
+        b'{"texts": ' + b"[" * 100_000 + b"]" * 100_000 + b"}",
+        422,
+        "invalid-input",
+        "body",
+        ["nested too deeply"],
+    ),
+    (
+        "objects nested 5 000 deep",
+        b'{"texts": ["a"], "x": ' + b'{"a": ' * 5000 + b"1" + b"}" * 5000 + b"}",
+        422,
+        "invalid-input",
+        "body",
+        ["nested too deeply"],
+    ),
+    (
+        "several unknown fields",
+        b'{"texts": ["a"], "modle": "x", "top_k": 3}',
+        422,
+        "invalid-input",
+        "modle, top_k",
+        ["'modle', 'top_k'", "allowed: texts, model, version, spans"],
+    ),
+    (
+        "version past the storable range",
+        b'{"texts": ["a"], "version": 100000000000000000000000}',
+        422,
+        "invalid-input",
+        "version",
+        [str(MAX_VERSION)],
+    ),
+    (
+        "version 2**31",
+        f'{{"texts": ["a"], "version": {2**31}}}'.encode(),
+        422,
+        "invalid-input",
+        "version",
+        [str(MAX_VERSION)],
+    ),
+    (
+        "largest storable version (unknown)",
+        f'{{"texts": ["a"], "version": {MAX_VERSION}}}'.encode(),
+        404,
+        "not-found",
+        None,
+        [f"no version {MAX_VERSION}"],
+    ),
+    ("huge spans", b'{"texts": ["a"], "spans": 100000000000000000000000}', 422, "invalid-input", "spans", []),
+    (
+        "spans above the setting",
+        b'{"texts": ["a"], "spans": 1000000}',
+        422,
+        "invalid-input",
+        None,
+        ["TEXTSIEVE_MAX_SPANS"],
+    ),
+    ("fractional spans", b'{"texts": ["a"], "spans": 2.5}', 422, "invalid-input", "spans", ["integer"]),
+    ("spans as text", b'{"texts": ["a"], "spans": "3"}', 422, "invalid-input", "spans", ["integer"]),
+    (
+        "retired version",
+        b'{"texts": ["a"], "version": 1}',
+        409,
+        "state-conflict",
+        None,
+        ["version 1", "retired", "live version (2)"],
+    ),
+    # Types are strict: no "3" for 3, no 1.0 for 1, no 1 for true (what the OpenAPI schema says).
+    ("version written 1.0", b'{"texts": ["a"], "version": 1.0}', 422, "invalid-input", "version", ["integer"]),
+]
+
+
+@pytest.mark.parametrize(
+    ("body", "status", "slug", "field", "words"), [pytest.param(*case[1:], id=case[0]) for case in CATALOGUE]
+)
+async def test_bad_input_catalogue(
+    retired_registry: Path, body: bytes, status: int, slug: str, field: str | None, words: list[str]
+) -> None:
+    async with serving(settings_for(retired_registry)) as (_, client):
+        r = await client.post("/v1/predict", content=body, headers=JSON)
+    problem = assert_problem(r, status, slug)
+    if field is not None:
+        assert problem["errors"][0]["field"] == field, problem
+    for word in words:
+        assert word in problem["detail"], (word, problem["detail"])
+    assert "Traceback" not in r.text and len(r.content) < 8192
+
+
+@pytest.mark.parametrize(
+    ("content_type", "body"),
+    [
+        ("text/plain", b'{"texts": ["a"]}'),
+        ("application/x-www-form-urlencoded", b"texts=a"),
+        (
+            "multipart/form-data; boundary=x",
+            b'--x\r\nContent-Disposition: form-data; name="texts"\r\n\r\na\r\n--x--\r\n',
+        ),
+    ],
+)
+async def test_bodies_that_are_not_json_are_refused(retired_registry: Path, content_type: str, body: bytes) -> None:
+    async with serving(settings_for(retired_registry)) as (_, client):
+        r = await client.post("/v1/predict", content=body, headers={"content-type": content_type})
+    problem = assert_problem(r, 422, "invalid-input")
+    assert "JSON object" in problem["detail"] or "not valid JSON" in problem["detail"], problem
+
+
+AUTH = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
+
+
+@pytest.mark.parametrize(
+    ("path", "body", "field"),
+    [
+        (f"/v1/models/{MODEL}/versions/1/promote", {"to": "live", "reason": "x", "forced": True}, "forced"),
+        (f"/v1/models/{MODEL}/rollback", {"reason": "x", "version": 1}, "version"),
+    ],
+)
+async def test_unknown_fields_in_admin_bodies_are_refused_and_change_nothing(
+    retired_registry: Path, path: str, body: dict[str, Any], field: str
+) -> None:
+    async with serving(settings_for(retired_registry, admin_token=ADMIN_TOKEN)) as (_, client):
+        r = await client.post(path, json=body, headers=AUTH)
+    problem = assert_problem(r, 422, "invalid-input")
+    assert problem["errors"][0]["field"] == field and "allowed:" in problem["detail"]
+    with open_registry(retired_registry) as reg:
+        assert reg.live(MODEL).version == 2  # type: ignore[union-attr]
+
+
+@pytest.mark.parametrize(
+    "path",
+    [
+        f"/v1/models/{MODEL}/versions/{2**31}",
+        f"/v1/models/{MODEL}/versions/{10**30}",
+        f"/v1/models/{MODEL}/versions/{10**30}/promote",
+    ],
+)
+async def test_version_numbers_in_paths_past_the_storable_range(retired_registry: Path, path: str) -> None:
+    async with serving(settings_for(retired_registry, admin_token=ADMIN_TOKEN)) as (_, client):
+        if path.endswith("promote"):
+            r = await client.post(path, json={"to": "live", "reason": "x"}, headers=AUTH)
+        else:
+            r = await client.get(path)
+    problem = assert_problem(r, 422, "invalid-input")
+    assert str(MAX_VERSION) in problem["detail"]

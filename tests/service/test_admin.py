@@ -1,0 +1,93 @@
+"""Admin over HTTP: disabled without a token, 401/403 for missing/wrong tokens, promote and
+rollback through the registry's rules, and the served version following at once."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from tests.helpers.service import ADMIN_TOKEN, MODEL, assert_problem, serving, settings_for
+from textsieve.registry import open_registry
+
+pytestmark = pytest.mark.anyio
+AUTH = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
+PROMOTE = f"/v1/models/{MODEL}/versions/2/promote"
+ROLLBACK = f"/v1/models/{MODEL}/rollback"
+
+
+async def test_admin_is_disabled_without_a_token(registry_dir: Path) -> None:
+    async with serving(settings_for(registry_dir)) as (_, client):
+        r = await client.post(PROMOTE, json={"to": "live", "reason": "x"}, headers=AUTH)
+        rb = await client.post(ROLLBACK, json={"reason": "x"})
+    body = assert_problem(r, 403, "admin-disabled")
+    assert "TEXTSIEVE_ADMIN_TOKEN" in body["detail"]
+    assert_problem(rb, 403, "admin-disabled")
+    with open_registry(registry_dir) as reg:
+        assert reg.live(MODEL).version == 1  # nothing happened
+
+
+@pytest.mark.parametrize(
+    ("headers", "status", "slug"),
+    [
+        ({}, 401, "unauthorized"),
+        ({"Authorization": f"Basic {ADMIN_TOKEN}"}, 401, "unauthorized"),
+        ({"Authorization": "Bearer"}, 401, "unauthorized"),
+        ({"Authorization": "Bearer " + ADMIN_TOKEN[:-1]}, 403, "forbidden"),
+        ({"Authorization": "Bearer " + ADMIN_TOKEN + "x"}, 403, "forbidden"),
+    ],
+)
+async def test_missing_or_wrong_token(registry_dir: Path, headers: dict[str, str], status: int, slug: str) -> None:
+    async with serving(settings_for(registry_dir, admin_token=ADMIN_TOKEN)) as (_, client):
+        r = await client.post(ROLLBACK, json={"reason": "x"}, headers=headers)
+    assert_problem(r, status, slug)
+    if status == 401:
+        assert r.headers["www-authenticate"].startswith("Bearer")
+
+
+async def test_promote_and_rollback_swap_the_served_version_at_once(registry_dir: Path) -> None:
+    # poll_seconds is long: only the admin call itself can explain the swap.
+    async with serving(settings_for(registry_dir, admin_token=ADMIN_TOKEN, poll_seconds=600)) as (_, client):
+        before = (await client.post("/v1/predict", json={"texts": ["charged twice"]})).json()
+        refused = await client.post(PROMOTE, json={"to": "live", "reason": "try"}, headers=AUTH)
+        promoted = await client.post(
+            PROMOTE,
+            json={"to": "live", "reason": "seed 2 is better", "force": True, "actor": "reviewer-7"},
+            headers=AUTH,
+        )
+        after = (await client.post("/v1/predict", json={"texts": ["charged twice"]})).json()
+        again = await client.post(PROMOTE, json={"to": "live", "reason": "twice"}, headers=AUTH)
+        rolled = await client.post(ROLLBACK, json={"reason": "back to v1"}, headers=AUTH)
+        last = (await client.post("/v1/predict", json={"texts": ["charged twice"]})).json()
+    assert before["version"] == 1
+    # Without an evaluation set the metric gates refuse; the body lists every gate.
+    refusal = assert_problem(refused, 409, "gate-refused")
+    assert {g["name"] for g in refusal["gates"]} >= {"parity", "labels"}
+    assert promoted.status_code == 200, promoted.text
+    reply = promoted.json()
+    assert reply["version"]["version"] == 2 and reply["version"]["state"] == "live"
+    assert reply["forced"] is True and reply["retired"] == 1
+    assert reply["serving"]["version"] == 2 and reply["serving"]["state"] == "ready"
+    assert after["version"] == 2
+    assert_problem(again, 409, "state-conflict")
+    assert rolled.status_code == 200 and rolled.json()["serving"]["version"] == 1
+    assert last["version"] == 1
+    with open_registry(registry_dir) as reg:
+        kinds = [(e.kind, e.actor) for e in reg.history(MODEL)]
+    assert ("promote", "reviewer-7") in kinds
+    assert any(kind == "rollback" and actor.startswith("admin-api@") for kind, actor in kinds)
+
+
+async def test_promote_to_candidate_keeps_serving_live(registry_dir: Path) -> None:
+    async with serving(settings_for(registry_dir, admin_token=ADMIN_TOKEN)) as (_, client):
+        r = await client.post(PROMOTE, json={"to": "candidate", "reason": "shadow it"}, headers=AUTH)
+        bad = await client.post(PROMOTE, json={"to": "production", "reason": "x"}, headers=AUTH)
+        no_reason = await client.post(ROLLBACK, json={}, headers=AUTH)
+        unknown = await client.post(
+            f"/v1/models/{MODEL}/versions/9/promote", json={"to": "live", "reason": "x"}, headers=AUTH
+        )
+    assert r.status_code == 200
+    assert r.json()["version"]["state"] == "candidate" and r.json()["serving"]["version"] == 1
+    assert_problem(bad, 422, "invalid-input")
+    assert_problem(no_reason, 422, "invalid-input")
+    assert_problem(unknown, 404, "not-found")

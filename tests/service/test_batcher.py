@@ -1,0 +1,72 @@
+"""Micro-batching: texts from concurrent requests share batches, batches stay within the bound,
+and every text still gets exactly what the Predictor gives it alone."""
+
+from __future__ import annotations
+
+import asyncio
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from tests.helpers.service import MODEL, serving, settings_for
+from textsieve.registry.runtime import Predictor
+from textsieve.service.inference.packing import CALL_TOKENS, MIN_TEXTS, SLACK, run_packed, sub_batches
+
+pytestmark = pytest.mark.anyio
+TEXTS = [
+    f"ticket {i}: " + " ".join(["charged twice", "login fails", "boiler repair", "thanks"][i % 4 :]) * (1 + i % 5)
+    for i in range(50)
+]
+
+
+async def test_concurrent_requests_share_batches(shared_registry: Path) -> None:
+    settings = settings_for(shared_registry, workers=1, batch_wait_ms=40, batch_max_texts=64)
+    async with serving(settings) as (app, client):
+        replies = await asyncio.gather(*[client.post("/v1/predict", json={"texts": [t]}) for t in TEXTS[:12]])
+        cum, total, batches = app.state.metrics.batch_texts.snapshot((MODEL, "1"))
+    assert all(r.status_code == 200 for r in replies)
+    assert total == 12
+    assert batches < 12  # some requests were answered by a shared onnxruntime call
+
+
+async def test_batches_are_bounded_and_results_in_order(shared_registry: Path, tiny_bundles: dict[str, Path]) -> None:
+    settings = settings_for(shared_registry, batch_max_texts=8, max_texts=100)
+    async with serving(settings) as (app, client):
+        reply = (await client.post("/v1/predict", json={"texts": TEXTS, "spans": 2})).json()
+        hist = app.state.metrics.batch_texts
+        cum, total, batches = hist.snapshot((MODEL, "1"))
+    assert total == len(TEXTS) and batches >= 7
+    assert cum[hist.bounds.index(8.0)] == batches  # every batch had at most 8 texts
+    expected = Predictor.from_bundle(tiny_bundles["a"]).predict(TEXTS, spans=2)
+    for got, want in zip(reply["results"], expected, strict=True):
+        assert got["label"] == want.label
+        assert np.allclose(list(got["probabilities"].values()), list(want.probabilities.values()), atol=1e-5)
+        assert [(s["start"], s["end"]) for s in got["spans"]] == [(s.start, s.end) for s in want.spans]
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.integers(0, 300), min_size=1, max_size=200), st.integers(1, 64))
+def test_sub_batches_cover_every_text_once_with_bounded_padding(lengths: list[int], most: int) -> None:
+    arr = np.asarray(lengths, dtype=np.int64)
+    groups = sub_batches(arr, max_texts=most)
+    flat = np.concatenate(groups)
+    assert sorted(flat.tolist()) == list(range(len(lengths)))
+    for g in groups:
+        sizes = np.maximum(arr[g], 1)
+        assert len(g) <= most
+        assert np.all(np.diff(sizes) >= 0)  # sorted: each sub-batch is padded to its own last text
+        if len(g) > MIN_TEXTS:  # padding within the larger of the two allowances
+            waste = len(g) * sizes.max() - sizes.sum()
+            assert waste <= max(SLACK * sizes.sum(), CALL_TOKENS) + 1e-9
+
+
+def test_packed_run_equals_plain_run(tiny_bundles: dict[str, Path]) -> None:
+    p = Predictor.from_bundle(tiny_bundles["a"], batch_size=16)
+    encoded = [p.encode(t) for t in [*TEXTS, "", "x", "charged " * 500]]
+    plain, packed = p.run(encoded), run_packed(p, encoded)
+    assert np.abs(plain.logits - packed.logits).max() <= 1e-5
+    assert np.array_equal(plain.positions, packed.positions)
+    assert np.abs(plain.contributions - packed.contributions).max() <= 1e-5

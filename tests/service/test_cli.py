@@ -1,0 +1,135 @@
+"""The serve / predict / health verbs against a real uvicorn on 127.0.0.1."""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+import httpx
+import pytest
+
+from tests.helpers.service import MODEL, free_port, settings_for, uvicorn_server
+from textsieve.service.client import highlight, render
+
+CLI = [sys.executable, "-m", "textsieve.cli"]
+
+
+def run(*args: str, timeout: float = 60) -> subprocess.CompletedProcess[str]:
+    env = {k: v for k, v in os.environ.items() if not k.startswith("TEXTSIEVE_")}
+    return subprocess.run([*CLI, *args], capture_output=True, text=True, timeout=timeout, env=env)
+
+
+@pytest.fixture(scope="module")
+def url(shared_registry: Path) -> Iterator[str]:
+    with uvicorn_server(settings_for(shared_registry, port=free_port())) as server:
+        yield server.url
+
+
+def test_health_ready_and_unreachable(url: str) -> None:
+    ok = run("health", "--url", url)
+    assert ok.returncode == 0, ok.stderr
+    assert ok.stdout.count("\n") == 1 and ok.stdout.startswith(f"ready: serving {MODEL} v1")
+    down = run("health", "--url", f"http://127.0.0.1:{free_port()}", "--timeout", "2")
+    assert down.returncode == 1
+    assert down.stdout.count("\n") == 1 and down.stdout.startswith("not ready: cannot reach")
+    bad = run("health", "--url", "localhost:8000")
+    assert bad.returncode == 1 and bad.stdout.startswith("not ready:")
+
+
+def test_predict_prints_label_probabilities_and_marked_spans(url: str) -> None:
+    text = "I was charged twice for one ride"
+    out = run("predict", "--url", url, "--spans", "2", text)
+    assert out.returncode == 0, out.stderr
+    lines = out.stdout.splitlines()
+    assert lines[0].startswith("[1] ") and f"({MODEL} v1)" in lines[0]
+    assert "[" in lines[1] and "]1" in lines[1]  # not a TTY: spans in brackets, numbered
+    assert lines[2].strip().startswith("probabilities")
+    raw = run("predict", "--url", url, "--json", text, "second text")
+    reply = json.loads(raw.stdout)
+    assert reply["version"] == 1 and len(reply["results"]) == 2
+    missing = run("predict", "--url", url, "--model", "nosuch", text)
+    assert missing.returncode == 2
+    assert missing.stderr.count("\n") == 1 and "nosuch" in missing.stderr and "Traceback" not in missing.stderr
+    gone = run("predict", "--url", f"http://127.0.0.1:{free_port()}", text)
+    assert gone.returncode == 1 and "cannot reach" in gone.stderr
+
+
+def test_render_marks_spans_by_code_point_offsets() -> None:
+    text = "👩‍💻 charged twice, e\u0301 again"
+    start = text.index("charged")
+    spans = [
+        {
+            "start": start,
+            "end": start + len("charged twice"),
+            "text": "charged twice",
+            "label": "billing",
+            "weight": 1.5,
+            "width": 2,
+        }
+    ]
+    assert highlight(text, spans, ansi=False) == "👩‍💻 [charged twice]1, e\u0301 again"
+    assert highlight(text, spans, ansi=True) == "👩‍💻 \x1b[1mcharged twice\x1b[0m, e\u0301 again"
+    reply = {
+        "model": "m",
+        "version": 3,
+        "results": [
+            {
+                "label": "billing",
+                "probabilities": {"billing": 0.9, "repair": 0.1},
+                "spans": spans,
+                "tokens": 7,
+                "truncated": True,
+                "unknown": 1,
+            }
+        ],
+    }
+    table = render([text], reply, ansi=False)
+    assert "billing  90.0 %   (m v3)" in table and "1.500" in table and "truncated" in table
+
+
+def test_serve_verb_runs_uvicorn_with_json_logs(shared_registry: Path) -> None:
+    port = free_port()
+    env = {k: v for k, v in os.environ.items() if not k.startswith("TEXTSIEVE_")}
+    env["TEXTSIEVE_WORKERS"] = "1"
+    proc = subprocess.Popen(
+        [*CLI, "serve", "--port", str(port), "--registry", str(shared_registry)],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        env=env,
+    )
+    try:
+        deadline = time.monotonic() + 60
+        while True:
+            try:
+                if httpx.get(f"http://127.0.0.1:{port}/readyz", timeout=2).status_code == 200:
+                    break
+            except httpx.HTTPError:
+                pass
+            assert proc.poll() is None and time.monotonic() < deadline, "serve did not become ready"
+            time.sleep(0.1)
+        r = httpx.post(
+            f"http://127.0.0.1:{port}/v1/predict",
+            json={"texts": ["charged twice"]},
+            headers={"X-Request-Id": "cli-test-1"},
+        )
+        assert r.status_code == 200 and r.json()["version"] == 1
+    finally:
+        proc.send_signal(signal.SIGINT)
+        _, err = proc.communicate(timeout=30)
+    assert proc.returncode == 0, err
+    logged = [json.loads(line) for line in err.splitlines() if line.startswith("{")]
+    access = [e for e in logged if e.get("event") == "request" and e.get("request_id") == "cli-test-1"]
+    assert len(access) == 1 and access[0]["status"] == 200 and access[0]["model"] == MODEL
+
+
+def test_serve_bad_setting_is_exit_2_one_line(shared_registry: Path) -> None:
+    out = run("serve", "--workers", "0", "--registry", str(shared_registry))
+    assert out.returncode == 2
+    assert out.stderr.count("\n") == 1 and "TEXTSIEVE_WORKERS" in out.stderr

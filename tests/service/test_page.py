@@ -1,0 +1,109 @@
+"""GET /: the reviewer's page is self-contained, carries the cautions, and its CSP hashes
+match its inline script and style (hash sources as defined by W3C Content Security Policy
+Level 2, §4.2.4: base64 of the SHA-256 of the element's text)."""
+
+from __future__ import annotations
+
+import base64
+import hashlib
+import re
+from pathlib import Path
+
+import pytest
+
+from tests.helpers.service import serving, settings_for
+
+pytestmark = pytest.mark.anyio
+
+
+async def test_page_is_self_contained_and_shows_the_cautions(shared_registry: Path) -> None:
+    async with serving(settings_for(shared_registry)) as (_, client):
+        r = await client.get("/")
+    assert r.status_code == 200 and r.headers["content-type"].startswith("text/html")
+    html = r.text
+    # No external assets: nothing fetched from another origin, no CDN, no imports.
+    assert not re.search(r"""(src|href)\s*=\s*["']?(https?:)?//""", html)
+    assert "@import" not in html and "url(http" not in html
+    assert not re.search(r"<(link|img|iframe)\b", html)
+    for caution in (
+        "aids for human review",
+        "biases of that training data",
+        "monitoring",
+        "Decisions stay with accountable people",
+    ):
+        assert caution in html
+    csp = r.headers["content-security-policy"]
+    assert "default-src 'none'" in csp and "connect-src 'self'" in csp
+    for tag in ("script", "style"):
+        bodies = re.findall(rf"<{tag}>(.*?)</{tag}>", html, flags=re.S)
+        assert bodies
+        for body in bodies:
+            digest = base64.b64encode(hashlib.sha256(body.encode("utf-8")).digest()).decode()
+            assert f"'sha256-{digest}'" in csp
+    # The page asks the API the page's own origin serves, with code-point offsets.
+    assert 'fetch("/v1/predict"' in html and "Array.from(text)" in html
+
+
+async def test_openapi_documents_the_contract_without_cdn_docs(shared_registry: Path) -> None:
+    async with serving(settings_for(shared_registry)) as (_, client):
+        schema = (await client.get("/openapi.json")).json()
+        docs = await client.get("/docs")
+    assert {
+        "/v1/predict",
+        "/v1/models",
+        "/v1/models/{name}",
+        "/v1/models/{name}/versions",
+        "/v1/models/{name}/versions/{n}",
+        "/v1/models/{name}/versions/{n}/promote",
+        "/v1/models/{name}/rollback",
+        "/healthz",
+        "/readyz",
+        "/metrics",
+    } <= set(schema["paths"])
+    assert docs.status_code == 404
+
+
+def test_page_highlighting_slices_code_points_like_python(tmp_path: Path) -> None:
+    """Run the page's own ``segments`` helper in Node and compare with Python's str slicing."""
+    import json
+    import os
+    import shutil
+    import subprocess
+
+    from textsieve.service.web.page import page
+
+    node = shutil.which("node")
+    if node is None:
+        if os.environ.get("CI"):
+            pytest.fail("node is needed to run the page's script (apt-get install nodejs)")
+        pytest.skip("node is not installed")
+    html, _ = page()
+    helpers = re.findall(r"<script>(.*?)</script>", html, flags=re.S)[0]
+    harness = (
+        helpers + "\nconst cases = JSON.parse(require('fs').readFileSync(0, 'utf8'));\n"
+        "process.stdout.write(JSON.stringify(cases.map(c => segments(c.text, c.spans).map("
+        "s => [s.text, s.rank]))));\n"
+    )
+    script = tmp_path / "segments.js"
+    script.write_text(harness, encoding="utf-8")
+    texts = ["👩‍💻 charged twice 🇫🇷 e\u0301 again", "修理 ok مرحبا \u200b fine 😀😀", "plain text here"]
+    cases = []
+    for text in texts:
+        n = len(text)
+        spans = [
+            {"start": 2, "end": min(9, n), "weight": 1.0, "label": "x", "width": 2},
+            {"start": max(n - 4, 10), "end": n, "weight": 2.0, "label": "x", "width": 1},
+            {"start": 3, "end": 5, "weight": 0.5, "label": "x", "width": 1},
+        ]  # overlaps the first: skipped
+        cases.append({"text": text, "spans": spans})
+    out = subprocess.run(
+        [node, str(script)], input=json.dumps(cases), capture_output=True, text=True, timeout=30, check=True
+    )
+    for case, segs in zip(cases, json.loads(out.stdout), strict=True):
+        text, spans = case["text"], case["spans"]
+        assert "".join(s for s, _ in segs) == text
+        marked = [(s, rank) for s, rank in segs if rank is not None]
+        assert marked == [
+            (text[spans[0]["start"] : spans[0]["end"]], 1),
+            (text[spans[1]["start"] : spans[1]["end"]], 2),
+        ]

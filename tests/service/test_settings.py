@@ -1,0 +1,57 @@
+"""Settings: TEXTSIEVE_* environment variables, overrides, and refusals that name the setting."""
+
+from __future__ import annotations
+
+import pytest
+
+from tests.helpers.service import ADMIN_TOKEN
+from textsieve.errors import InputError
+from textsieve.service.settings import Settings, load_settings
+
+
+def test_environment_and_overrides(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("TEXTSIEVE_MAX_TEXTS", "10")
+    monkeypatch.setenv("TEXTSIEVE_MODELS", "support, triage ,")
+    monkeypatch.setenv("TEXTSIEVE_ADMIN_TOKEN", ADMIN_TOKEN)
+    s = load_settings(port=9001, workers=None)
+    assert s.max_texts == 10 and s.models == ["support", "triage"] and s.port == 9001
+    assert s.admin_enabled and s.admin_token is not None
+    assert ADMIN_TOKEN not in repr(s)  # a secret never shows in logs or tracebacks
+    assert load_settings(max_texts=3).max_texts == 3  # an explicit value beats the environment
+
+
+def test_defaults_are_sane() -> None:
+    s = Settings()
+    assert s.host == "127.0.0.1" and s.workers >= 1 and not s.admin_enabled and s.models == []
+    assert s.max_body_bytes >= s.max_chars
+
+
+@pytest.mark.parametrize(
+    ("overrides", "needle"),
+    [
+        ({"admin_token": "short"}, "at least 16 characters"),
+        ({"workers": 0}, "TEXTSIEVE_WORKERS"),
+        ({"max_texts": 0}, "TEXTSIEVE_MAX_TEXTS"),
+        ({"models": "a,a"}, "listed twice"),
+        ({"max_body_bytes": 2000, "max_chars": 5000}, "smaller than max_chars"),
+        ({"batch_wait_ms": -1}, "TEXTSIEVE_BATCH_WAIT_MS"),
+    ],
+)
+def test_bad_values_are_refused_naming_the_setting(overrides: dict[str, object], needle: str) -> None:
+    with pytest.raises(InputError, match=needle):
+        load_settings(**overrides)
+
+
+def test_blank_token_means_admin_off(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("TEXTSIEVE_ADMIN_TOKEN", "  ")
+    assert not load_settings().admin_enabled
+
+
+def test_public_surface_is_what_all_claims() -> None:
+    import textsieve.service as service
+
+    assert sorted(service.__all__) == ["Settings", "create_app"]
+    for name in service.__all__:
+        assert getattr(service, name).__name__ == name
+    with pytest.raises(AttributeError):
+        service.nothing_here  # noqa: B018

@@ -1,0 +1,197 @@
+"""Hot swap, pinned versions and readiness.
+
+A promotion or rollback made directly in the registry (as another process would) is noticed by
+polling; requests keep succeeding throughout, each names the version that produced it, and its
+numbers are that version's (checked against a Predictor on the version's own bundle).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+
+from tests.helpers.service import MODEL, make_registry, serving, settings_for, wait_ready
+from textsieve.registry import open_registry
+from textsieve.registry.runtime import Predictor
+
+pytestmark = pytest.mark.anyio
+PROBE = ["my card was charged twice", "the boiler repair was quick and great", "cannot log in since Monday"]
+
+
+def _reference(bundle: Path) -> np.ndarray:
+    p = Predictor.from_bundle(bundle)
+    return np.array([list(pred.probabilities.values()) for pred in p.predict(PROBE)])
+
+
+def _probs(reply: dict[str, Any]) -> np.ndarray:
+    return np.array([list(r["probabilities"].values()) for r in reply["results"]])
+
+
+async def _registry(call: str, folder: Path, *args: Any, **kwargs: Any) -> Any:
+    def run() -> Any:
+        with open_registry(folder) as reg:
+            return getattr(reg, call)(*args, **kwargs)
+
+    return await asyncio.to_thread(run)
+
+
+async def test_swap_on_registry_change_without_failed_requests(
+    registry_dir: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    expected = {1: _reference(tiny_bundles["a"]), 2: _reference(tiny_bundles["b"])}
+    assert np.abs(expected[1] - expected[2]).max() > 1e-3  # the two versions are distinguishable
+    replies: list[tuple[int, float, dict[str, Any]]] = []
+    failures: list[str] = []
+    stop = asyncio.Event()
+
+    async with serving(settings_for(registry_dir, poll_seconds=0.1)) as (app, client):
+
+        async def hammer(worker: int) -> None:
+            while not stop.is_set():
+                r = await client.post("/v1/predict", json={"texts": PROBE})
+                if r.status_code != 200:
+                    failures.append(r.text)
+                else:
+                    replies.append((worker, time.monotonic(), r.json()))
+
+        workers = [asyncio.create_task(hammer(i)) for i in range(6)]
+        await asyncio.sleep(0.3)
+        await _registry("promote", registry_dir, MODEL, 2, "live", reason="swap test", actor="tests", force=True)
+        deadline = time.monotonic() + 20
+        while app.state.models.live[MODEL].version != 2 and time.monotonic() < deadline:
+            await asyncio.sleep(0.05)
+        await asyncio.sleep(0.3)
+        await _registry("rollback", registry_dir, MODEL, reason="and back", actor="tests")
+        while app.state.models.live[MODEL].version != 1 and time.monotonic() < deadline:
+            await asyncio.sleep(0.05)
+        await asyncio.sleep(0.3)
+        stop.set()
+        await asyncio.gather(*workers)
+        metrics = (await client.get("/metrics")).text
+
+    assert not failures
+    versions = [reply["version"] for _, _, reply in replies]
+    assert versions[0] == 1 and 2 in versions and versions[-1] == 1
+    for _, _, reply in replies:
+        # Each reply is wholly one version's numbers: nothing mixed within a request.
+        assert np.abs(_probs(reply) - expected[reply["version"]]).max() <= 1e-5
+    for worker in range(6):  # per client, versions go 1 … 2 … 1, never back and forth
+        seq = [reply["version"] for w, _, reply in replies if w == worker]
+        changes = sum(1 for a, b in zip(seq, seq[1:], strict=False) if a != b)
+        assert changes <= 2
+    assert f'textsieve_swaps_total{{model="{MODEL}",outcome="swapped"}} 2' in metrics
+
+
+async def test_in_flight_requests_finish_on_the_version_they_started_with(registry_dir: Path) -> None:
+    async with serving(settings_for(registry_dir, poll_seconds=600)) as (app, client):
+        models = app.state.models
+        old = await models.acquire(MODEL, None)  # a request that has started
+        await _registry("promote", registry_dir, MODEL, 2, "live", reason="swap", actor="tests", force=True)
+        await models.refresh(MODEL, why="test")
+        assert models.live[MODEL].version == 2 and old.version == 1
+        assert not old.closed and old.loaded_in(app.state.pool.procs)  # still usable by its request
+        results = await old.batcher.submit(PROBE, 2)
+        assert len(results) == len(PROBE)
+        new_reply = (await client.post("/v1/predict", json={"texts": PROBE})).json()
+        assert new_reply["version"] == 2
+        models.release(old)
+        for _ in range(100):
+            if old.closed:
+                break
+            await asyncio.sleep(0.01)
+        assert old.closed and not old.loaded_in(app.state.pool.procs)  # sessions dropped once the last request ended
+
+
+async def test_pinned_versions(registry_dir: Path, tiny_bundles: dict[str, Path]) -> None:
+    async with serving(settings_for(registry_dir, pinned_versions=1)) as (app, client):
+        pinned = (await client.post("/v1/predict", json={"texts": PROBE, "version": 2})).json()
+        live = (await client.post("/v1/predict", json={"texts": PROBE, "model": MODEL, "version": 1})).json()
+        default = (await client.post("/v1/predict", json={"texts": PROBE})).json()
+        assert list(app.state.models.pinned) == [(MODEL, 2)]
+    assert pinned["version"] == 2 and live["version"] == 1 and default["version"] == 1
+    assert np.abs(_probs(pinned) - _reference(tiny_bundles["b"])).max() <= 1e-5
+    async with serving(settings_for(registry_dir, pinned_versions=0)) as (_, client):
+        r = await client.post("/v1/predict", json={"texts": PROBE, "version": 2})
+    assert r.status_code == 404 and "TEXTSIEVE_PINNED_VERSIONS" in r.json()["detail"]
+
+
+async def test_not_ready_until_a_live_version_exists(tmp_path: Path, tiny_bundles: dict[str, Path]) -> None:
+    folder = make_registry(tmp_path / "registry", tiny_bundles, live=None)
+    async with serving(settings_for(folder, models=[MODEL], poll_seconds=0.1), ready=False) as (_, client):
+        deadline = time.monotonic() + 20
+        while True:
+            r = await client.get("/readyz")
+            if "no-live-version" in r.text or time.monotonic() > deadline:
+                break
+            await asyncio.sleep(0.05)
+        assert r.status_code == 503 and r.json()["ready"] is False
+        assert "promote" in r.json()["reason"]
+        assert (await client.get("/healthz")).status_code == 200
+        predict = await client.post("/v1/predict", json={"texts": ["a"]})
+        assert predict.status_code == 404 and "no live version" in predict.json()["detail"]
+        await _registry("promote", folder, MODEL, 2, "live", reason="go", actor="tests", force=True)
+        body = await wait_ready(client, timeout=20)
+        assert body["models"][MODEL]["version"] == 2
+
+
+async def test_not_ready_reasons(tmp_path: Path) -> None:
+    async with serving(settings_for(tmp_path / "missing"), ready=False) as (_, client):
+        r = await _settled(client)
+        assert r.status_code == 503 and "startup failed" in r.json()["reason"]
+        assert str(tmp_path / "missing") in r.json()["reason"]
+        assert r.headers["retry-after"]
+        p = await client.post("/v1/predict", json={"texts": ["a"]})
+        assert p.status_code == 503 and p.headers["content-type"] == "application/problem+json"
+    empty = tmp_path / "empty"
+    open_registry(empty).close()
+    async with serving(settings_for(empty), ready=False) as (_, client):
+        r = await _settled(client)
+        assert r.status_code == 503 and "no model has a live version" in r.json()["reason"]
+
+
+async def _settled(client: Any) -> Any:
+    for _ in range(400):
+        r = await client.get("/readyz")
+        if "starting" not in r.json()["reason"]:
+            return r
+        await asyncio.sleep(0.05)
+    raise AssertionError("startup never finished")
+
+
+async def test_damaged_blob_fails_startup_and_a_failed_swap_keeps_the_old_version(registry_dir: Path) -> None:
+    with open_registry(registry_dir) as reg:
+        v1, v2 = reg.version(MODEL, 1), reg.version(MODEL, 2)
+        reg.promote(MODEL, 2, "live", reason="v2 first", actor="tests", force=True)
+        reg.rollback(MODEL, reason="back to 1", actor="tests")
+    blobs = registry_dir / "blobs"
+
+    # 1. The live version's model file is damaged: the service never becomes ready.
+    path = blobs / v1.files["model.onnx"]
+    original = path.read_bytes()
+    path.chmod(0o644)
+    path.write_bytes(original[:-10] + b"0123456789")
+    async with serving(settings_for(registry_dir, poll_seconds=600), ready=False) as (_, client):
+        r = await _settled(client)
+        assert r.status_code == 503
+        assert "could not be loaded" in r.json()["reason"] and "altered" in r.json()["reason"]
+    path.write_bytes(original)
+
+    # 2. Version 2 is damaged after it became live again elsewhere: version 1 keeps serving.
+    async with serving(settings_for(registry_dir, poll_seconds=600)) as (app, client):
+        await _registry("promote", registry_dir, MODEL, 2, "live", reason="again", actor="tests", force=True)
+        path2 = blobs / v2.files["model.onnx"]
+        path2.chmod(0o644)
+        path2.write_bytes(path2.read_bytes()[:-4] + b"xxxx")
+        await app.state.models.poll_once()
+        ready = await client.get("/readyz")
+        predict = (await client.post("/v1/predict", json={"texts": ["a"]})).json()
+        metrics = (await client.get("/metrics")).text
+    assert ready.status_code == 200
+    assert "version 2 could not be loaded" in ready.json()["models"][MODEL]["detail"]
+    assert predict["version"] == 1
+    assert f'textsieve_swaps_total{{model="{MODEL}",outcome="failed"}} 1' in metrics

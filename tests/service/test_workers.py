@@ -1,0 +1,175 @@
+"""Inference in worker processes (the default): same answers as threads, and a worker that dies
+is replaced without losing the request it was running."""
+
+from __future__ import annotations
+
+import asyncio
+import os
+import signal
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from tests.helpers.service import serving, settings_for
+from textsieve.errors import UnavailableError
+from textsieve.registry.runtime import Predictor
+
+pytestmark = pytest.mark.anyio
+TEXTS = [
+    "my card was charged twice",
+    "the brake repair was quick and great",
+    "cannot log in since Monday",
+    "Crème brûlée — 12 € at Hauptstraße",
+    "谢谢, the jigsaw was fine",
+    "x " * 400,
+]
+
+
+async def _predict(settings: object) -> dict:  # type: ignore[type-arg]
+    async with serving(settings) as (_, client):  # type: ignore[arg-type]
+        r = await client.post("/v1/predict", json={"texts": TEXTS, "spans": 3})
+        assert r.status_code == 200, r.text
+        return dict(r.json())
+
+
+async def test_processes_and_threads_answer_the_same(registry_dir: Path, tiny_bundles: dict[str, Path]) -> None:
+    procs = await _predict(settings_for(registry_dir, inference="processes"))
+    threads = await _predict(settings_for(registry_dir, inference="threads"))
+    assert procs == threads  # the same code on the same inputs: equal, not merely close
+    # And both equal the in-process runtime (the exporter's own Predictor).
+    want = Predictor.from_bundle(tiny_bundles["a"]).predict(TEXTS, spans=3)
+    for got, w in zip(procs["results"], want, strict=True):
+        assert got["label"] == w.label
+        assert np.allclose(
+            [got["probabilities"][k] for k in w.probabilities], list(w.probabilities.values()), atol=1e-6
+        )
+        assert [(s["start"], s["end"]) for s in got["spans"]] == [(s.start, s.end) for s in w.spans]
+
+
+async def test_a_killed_worker_is_replaced_and_the_request_still_answered(registry_dir: Path) -> None:
+    async with serving(settings_for(registry_dir, inference="processes", workers=1)) as (app, client):
+        procs = app.state.pool.procs
+        first = await client.post("/v1/predict", json={"texts": TEXTS})
+        assert first.status_code == 200
+        (old_pid,) = procs.pids()
+        os.kill(old_pid, signal.SIGKILL)
+        again = await client.post("/v1/predict", json={"texts": TEXTS})
+        assert again.status_code == 200, again.text
+        assert again.json()["results"] == first.json()["results"]
+        (new_pid,) = procs.pids()
+        assert new_pid != old_pid
+        assert (await client.get("/readyz")).status_code == 200
+
+
+async def test_a_worker_that_keeps_dying_gives_503_not_500(registry_dir: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    async with serving(settings_for(registry_dir, inference="processes", workers=1)) as (app, client):
+        worker = app.state.pool.procs.workers[0]
+        real = worker.submit
+
+        def dies(msg: tuple) -> tuple:  # type: ignore[type-arg]
+            if msg[0] == "run":  # the worker dies with the batch in its pipe, every time
+                os.kill(worker.proc.pid, signal.SIGKILL)
+                worker.proc.join(5)
+            return real(msg)
+
+        monkeypatch.setattr(worker, "submit", dies)
+        r = await client.post("/v1/predict", json={"texts": TEXTS[:2]})
+        assert r.status_code == 503
+        assert r.headers["content-type"].startswith("application/problem+json")
+        assert "replaced" in r.json()["detail"]
+        monkeypatch.setattr(worker, "submit", real)
+        assert (await client.post("/v1/predict", json={"texts": TEXTS[:2]})).status_code == 200
+
+
+def test_unknown_inference_mode_is_refused() -> None:
+    from pydantic import ValidationError
+
+    from textsieve.service.settings import Settings
+
+    with pytest.raises(ValidationError, match="processes"):
+        Settings(registry="x", inference="fibers")
+
+
+def test_unloaded_version_is_unavailable_not_a_crash() -> None:
+    from textsieve.service.inference.workers import WorkerProcesses
+
+    procs = WorkerProcesses(1)
+    try:
+        with pytest.raises(UnavailableError, match="not loaded"):
+            procs.run(0, ("m", 1, 1), ["text"], [0])
+    finally:
+        procs.shutdown()
+
+
+async def test_batches_pipelined_into_one_worker_all_come_back_in_order(registry_dir: Path) -> None:
+    # One worker, several requests at once: each reply must reach the request that sent it.
+    texts = ["my card was charged" + " again" * n for n in range(40)]  # n + 4 tokens: each reply is told apart
+    async with serving(settings_for(registry_dir, inference="processes", workers=1, batch_max_texts=4)) as (_, client):
+        replies = await asyncio.gather(*(client.post("/v1/predict", json={"texts": [t]}) for t in texts))
+        for text, r in zip(texts, replies, strict=True):
+            assert r.status_code == 200
+            (result,) = r.json()["results"]
+            assert result["tokens"] == len(text.split())
+            for span in result["spans"]:
+                assert text[span["start"] : span["end"]] == span["text"]
+
+
+async def test_a_worker_that_cannot_be_restarted_gives_503_then_recovers(
+    registry_dir: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    async with serving(settings_for(registry_dir, inference="processes", workers=1)) as (app, client):
+        worker = app.state.pool.procs.workers[0]
+        real_start = worker.start
+
+        def cannot_start() -> None:
+            raise OSError("fork server gone")
+
+        monkeypatch.setattr(worker, "start", cannot_start)
+        os.kill(worker.proc.pid, signal.SIGKILL)
+        worker.proc.join(5)
+        r = await client.post("/v1/predict", json={"texts": TEXTS[:2]})
+        assert r.status_code == 503, r.text
+        assert "could not be restarted" in r.json()["detail"]
+        monkeypatch.setattr(worker, "start", real_start)
+        r = await client.post("/v1/predict", json={"texts": TEXTS[:2]})
+        assert r.status_code == 200, r.text
+
+
+async def test_worker_processes_that_cannot_start_make_readyz_say_what_to_do(
+    registry_dir: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from textsieve.service.inference import workers as procs
+
+    def cannot_start(self: object) -> None:
+        raise PermissionError("no temporary folder")
+
+    monkeypatch.setattr(procs._Worker, "start", cannot_start)
+    async with serving(settings_for(registry_dir, inference="processes"), ready=False) as (_, client):
+        for _ in range(100):
+            r = await client.get("/readyz")
+            if "TEXTSIEVE_INFERENCE=threads" in r.text:
+                break
+            await asyncio.sleep(0.05)
+        assert r.status_code == 503
+        assert "cannot start inference worker processes" in r.text and "TEXTSIEVE_INFERENCE=threads" in r.text
+        p = await client.post("/v1/predict", json={"texts": ["a text"]})
+        assert p.status_code == 503 and p.headers["content-type"].startswith("application/problem+json")
+
+
+async def test_head_waits_for_the_body_and_both_go_out_back_to_back() -> None:
+    # service/web/onewrite.py: the head is held until the first body part, then both are sent.
+    from textsieve.service.web.onewrite import HeadWithBodyMiddleware
+
+    sent: list[str] = []
+
+    async def app(scope: dict, receive: object, send: object) -> None:  # type: ignore[type-arg]
+        await send({"type": "http.response.start", "status": 200, "headers": []})  # type: ignore[operator]
+        sent.append("app: head handed on")
+        await send({"type": "http.response.body", "body": b"x"})  # type: ignore[operator]
+
+    async def server_send(message: dict) -> None:  # type: ignore[type-arg]
+        sent.append(message["type"])
+
+    await HeadWithBodyMiddleware(app)({"type": "http"}, None, server_send)  # type: ignore[arg-type]
+    assert sent == ["app: head handed on", "http.response.start", "http.response.body"]

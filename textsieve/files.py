@@ -1,0 +1,117 @@
+"""Files both sides write and check: sha256 digests and atomic writes.
+
+A reader sees the old file, the new file, or nothing; never half of one. New files and folders
+get the permissions an ordinary ``open``/``mkdir`` would give under the process's umask, not the
+owner-only modes of ``tempfile`` (data and bundles are often read by another user, e.g. a
+service account).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import os
+import shutil
+import tempfile
+from collections.abc import Iterator
+from pathlib import Path
+
+CHUNK = 1 << 20
+
+
+def _umask() -> int:
+    # os.umask can only be read by setting it; done once, at import, before any thread writes.
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+_UMASK = _umask()
+FILE_MODE = 0o666 & ~_UMASK
+DIR_MODE = 0o777 & ~_UMASK
+
+
+def sha256_file(path: Path) -> str:
+    """Hex sha256 of a file's bytes, read in chunks."""
+    with open(path, "rb") as f:
+        return hashlib.file_digest(f, "sha256").hexdigest()
+
+
+def fsync_dir(path: Path) -> None:
+    """Make a rename or a new entry in ``path`` durable."""
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def atomic_write_bytes(path: Path, data: bytes) -> None:
+    """Write ``data`` to ``path`` through a temporary sibling, fsync'd and renamed into place."""
+    path = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as f:
+            os.fchmod(f.fileno(), FILE_MODE)
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        raise
+    fsync_dir(path.parent)
+
+
+def atomic_write_text(path: Path, text: str) -> None:
+    """:func:`atomic_write_bytes` of UTF-8 text."""
+    atomic_write_bytes(path, text.encode("utf-8"))
+
+
+@contextlib.contextmanager
+def atomic_directory(target: Path, *, replace: bool = False) -> Iterator[Path]:
+    """Yield a temporary sibling folder; on success it is fsync'd and renamed to ``target``.
+
+    With ``replace`` an existing ``target`` is swapped out only after the new one is complete.
+    """
+    target = Path(target)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f"{target.name}.tmp-", dir=target.parent))
+    try:
+        os.chmod(tmp, DIR_MODE)
+        yield tmp
+        for child in tmp.iterdir():
+            if child.is_file():
+                with open(child, "rb") as f:
+                    os.fsync(f.fileno())
+        fsync_dir(tmp)
+        if target.exists():
+            if not replace:
+                raise FileExistsError(target)
+            old = Path(tempfile.mkdtemp(prefix=f"{target.name}.old-", dir=target.parent))
+            os.rename(target, old)
+            try:
+                os.rename(tmp, target)
+            except OSError:
+                os.rename(old, target)  # put the previous folder back rather than leave none
+                raise
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.rename(tmp, target)
+        fsync_dir(target.parent)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+
+
+__all__ = [
+    "CHUNK",
+    "DIR_MODE",
+    "FILE_MODE",
+    "atomic_directory",
+    "atomic_write_bytes",
+    "atomic_write_text",
+    "fsync_dir",
+    "sha256_file",
+]

@@ -1,0 +1,226 @@
+"""Labelled examples from JSONL or CSV files, with one-line errors a person can act on.
+
+Kept free of torch and below both sides: the exporter trains on these files and the registry
+reads evaluation sets with :func:`load_examples`.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+from collections import Counter
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from textsieve.errors import InputError
+
+JSON_SUFFIXES = (".jsonl", ".ndjson", ".json")
+CSV_SUFFIXES = {".csv": ",", ".tsv": "\t"}
+_ALLOWED = "use .jsonl, .ndjson, .json (one JSON object a line, or one JSON array), .csv or .tsv (header row)"
+_BOM = "\ufeff"
+
+
+@dataclass(frozen=True, slots=True)
+class Example:
+    text: str
+    label: str
+
+
+def load_examples(path: Path, text_field: str = "text", label_field: str = "label") -> list[Example]:
+    """Every example of a labelled file; any problem is an :class:`InputError` naming file and line."""
+    path = Path(path)
+    suffix = path.suffix.lower()
+    if suffix not in JSON_SUFFIXES and suffix not in CSV_SUFFIXES:
+        raise InputError(f"{path}: unsupported file type {suffix or '(no extension)'!r}; {_ALLOWED}")
+    text = _read_utf8(path)
+    if not text.strip():
+        raise InputError(f"{path}: the file is empty; it needs labelled rows ({_ALLOWED})")
+    fields = _Fields(path, text_field, label_field)
+    if suffix in CSV_SUFFIXES:
+        examples = list(_csv_rows(path, text, CSV_SUFFIXES[suffix], fields))
+    elif suffix == ".json" and text.lstrip().startswith("["):
+        examples = list(_json_array_rows(path, text, fields))
+    else:
+        examples = list(_jsonl_rows(path, text, fields))
+    if not examples:
+        raise InputError(f"{path}: no labelled rows found; {_ALLOWED}")
+    return examples
+
+
+def check_labels(
+    train: Sequence[Example],
+    valid: Sequence[Example],
+    *,
+    train_name: str = "training data",
+    valid_name: str = "validation data",
+) -> list[str]:
+    """The sorted label names, after checking there are two or more and validation adds none."""
+    counts = Counter(e.label for e in train)
+    if len(counts) < 2:
+        found = ", ".join(repr(label) for label in sorted(counts)) or "none"
+        raise InputError(
+            f"{train_name} has {len(counts)} distinct label ({found}); a classifier needs at least 2 labels"
+        )
+    unseen = sorted({e.label for e in valid} - counts.keys())
+    if unseen:
+        shown = ", ".join(repr(label) for label in unseen[:10]) + (" …" if len(unseen) > 10 else "")
+        known = ", ".join(repr(label) for label in sorted(counts)[:10])
+        raise InputError(
+            f"{valid_name} has labels not in {train_name}: {shown}; allowed are the training labels ({known})"
+        )
+    return sorted(counts)
+
+
+def _read_utf8(path: Path) -> str:
+    try:
+        data = path.read_bytes()
+    except FileNotFoundError:
+        raise InputError(f"{path}: no such file; expected a labelled data file ({_ALLOWED})") from None
+    except IsADirectoryError:
+        raise InputError(f"{path}: is a folder; expected a labelled data file ({_ALLOWED})") from None
+    except OSError as exc:
+        raise InputError(f"{path}: cannot be read ({exc.strerror})") from exc
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = data.count(b"\n", 0, exc.start) + 1
+        raise InputError(
+            f"{path}: line {line}: byte offset {exc.start} is not valid UTF-8 "
+            f"(byte 0x{data[exc.start]:02x}); save the file as UTF-8"
+        ) from None
+    # Spreadsheet programs often start UTF-8 files with a byte-order mark.
+    return text[1:] if text.startswith(_BOM) else text
+
+
+class _Fields:
+    """Turns one parsed record into an Example, or says precisely what is wrong with it."""
+
+    def __init__(self, path: Path, text_field: str, label_field: str) -> None:
+        self.path = path
+        self.text_field = text_field
+        self.label_field = label_field
+
+    def _fail(self, where: str, problem: str) -> InputError:
+        return InputError(f"{self.path}: {where}: {problem}")
+
+    def missing(self, where: str, found: Sequence[str]) -> InputError | None:
+        absent = [f for f in (self.text_field, self.label_field) if f not in found]
+        if not absent:
+            return None
+        names = ", ".join(repr(f) for f in list(found)[:20]) or "none"
+        which = " and ".join(repr(f) for f in absent)
+        return self._fail(
+            where, f"no {which} field (fields found: {names}); name the fields with --text-field and --label-field"
+        )
+
+    def example(self, where: str, record: dict[str, Any]) -> Example:
+        problem = self.missing(where, list(record))
+        if problem:
+            raise problem
+        text = record[self.text_field]
+        if not isinstance(text, str):
+            raise self._fail(where, f"the {self.text_field!r} field is {_kind(text)}; it must be a string")
+        if not text.strip():
+            raise self._fail(where, f"the {self.text_field!r} field is empty; every row needs some text")
+        label = record[self.label_field]
+        if isinstance(label, bool | int):
+            label = json.dumps(label)  # 1 → "1", true → "true": the label as written
+        elif not isinstance(label, str):
+            raise self._fail(
+                where, f"the {self.label_field!r} field is {_kind(label)}; labels must be strings or integers"
+            )
+        if not label.strip():
+            raise self._fail(where, f"the {self.label_field!r} field is empty; every row needs a label")
+        return Example(text, label)
+
+
+def _kind(value: object) -> str:
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return "a boolean"
+    if isinstance(value, int | float):
+        return "a number"
+    if isinstance(value, list):
+        return "an array"
+    if isinstance(value, dict):
+        return "an object"
+    return "a string"
+
+
+def _jsonl_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example]:
+    # split("\n"), not splitlines(): U+2028 and friends may sit unescaped inside JSON strings.
+    for number, line in enumerate(text.split("\n"), start=1):
+        if not line.strip():
+            continue
+        try:
+            record = json.loads(line)
+        except json.JSONDecodeError as exc:
+            raise InputError(
+                f"{path}: line {number}: not valid JSON ({exc.msg} at column {exc.colno}); "
+                "each line must be one JSON object"
+            ) from None
+        if not isinstance(record, dict):
+            raise InputError(
+                f"{path}: line {number}: is {_kind(record)}; "
+                f"each line must be one JSON object with {fields.text_field!r} "
+                f"and {fields.label_field!r} fields"
+            )
+        yield fields.example(f"line {number}", record)
+
+
+def _json_array_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example]:
+    try:
+        records = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise InputError(
+            f"{path}: line {exc.lineno}: not valid JSON ({exc.msg} at column {exc.colno}); "
+            "a .json file holds one JSON array of objects, or one object a line"
+        ) from None
+    for number, record in enumerate(records, start=1):
+        if not isinstance(record, dict):
+            raise InputError(f"{path}: item {number}: is {_kind(record)}; each array item must be a JSON object")
+        yield fields.example(f"item {number}", record)
+
+
+def _csv_rows(path: Path, text: str, delimiter: str, fields: _Fields) -> Iterator[Example]:
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter, strict=True)
+    header: list[str] | None = None
+    last_line = 0
+    try:
+        for row in reader:
+            start, last_line = last_line + 1, reader.line_num
+            if not row or (len(row) == 1 and not row[0].strip()):
+                continue
+            if header is None:
+                header = row
+                duplicates = sorted(name for name, n in Counter(row).items() if n > 1)
+                if duplicates:
+                    raise InputError(
+                        f"{path}: line {start}: the header names {duplicates[0]!r} twice; column names must be unique"
+                    )
+                problem = fields.missing(f"line {start} (header)", header)
+                if problem:
+                    raise problem
+                continue
+            if len(row) != len(header):
+                raise InputError(
+                    f"{path}: line {start}: has {len(row)} columns but the header has "
+                    f"{len(header)}; quote values that contain {_show(delimiter)}"
+                )
+            yield fields.example(f"line {start}", dict(zip(header, row, strict=True)))
+    except csv.Error as exc:
+        raise InputError(
+            f"{path}: line {reader.line_num}: malformed {'TSV' if delimiter == chr(9) else 'CSV'} "
+            f"({exc}); quote fields with double quotes"
+        ) from None
+
+
+def _show(delimiter: str) -> str:
+    return "tabs" if delimiter == "\t" else repr(delimiter)
+
+
+__all__ = ["CSV_SUFFIXES", "JSON_SUFFIXES", "Example", "check_labels", "load_examples"]
