@@ -11,6 +11,7 @@ from __future__ import annotations
 import functools
 import re
 import unicodedata
+import warnings
 from collections import Counter
 from collections.abc import Iterable
 from dataclasses import dataclass
@@ -182,15 +183,35 @@ class Token:
     end: int
 
 
+class UnicodeVersionWarning(UserWarning):
+    """A tokenizer spec recorded another Unicode version than the running Python's tables."""
+
+
+def _check_unicode_version(spec: TokenizerSpec) -> None:
+    """Warn, not refuse: see README, "The bundle". The texts it affects are rare; refusing would
+    make every Python upgrade a re-export of every model."""
+    if spec.unicode_version == unicodedata.unidata_version:
+        return
+    # Python shows a warning once per place and text, so a process says this once per pair of
+    # versions, however many bundles it loads (the service: once in each worker process).
+    warnings.warn(
+        UnicodeVersionWarning(
+            f"this tokenizer spec was recorded with Unicode {spec.unicode_version}, but this Python's "
+            f"tables are Unicode {unicodedata.unidata_version}: characters assigned or changed between "
+            "the two can split differently (the token pattern's letter, mark and format-character "
+            "classes) and normalise differently (NFKC, case folding), so a text that contains them may "
+            "score differently from training; plain text of both versions tokenizes the same"
+        ),
+        stacklevel=3,
+    )
+
+
 class Tokenizer:
     """Splits text into tokens with offsets, as described by a :class:`TokenizerSpec`."""
 
     def __init__(self, spec: TokenizerSpec | None = None) -> None:
         self.spec = spec or TokenizerSpec()
-        if self.spec.unicode_version != unicodedata.unidata_version:
-            # Character classes come from this Python's Unicode tables; other tables could
-            # split a few rare characters differently from training.
-            pass
+        _check_unicode_version(self.spec)
         self._finditer = _pattern(self.spec.split_cjk).finditer
         self._fold = self.spec.case == "casefold"
         self._route = _Route(self.spec.split_cjk, self._fold)
@@ -276,4 +297,4 @@ class Vocabulary:
         return cls(tokens)
 
 
-__all__ = ["PAD", "UNK", "Token", "Tokenizer", "TokenizerSpec", "Vocabulary"]
+__all__ = ["PAD", "UNK", "Token", "Tokenizer", "TokenizerSpec", "UnicodeVersionWarning", "Vocabulary"]

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import unicodedata
+import warnings
 from collections import Counter
 
 import pytest
@@ -10,7 +11,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from textsieve.errors import BundleError
-from textsieve.registry.tokenizer import PAD, UNK, Tokenizer, TokenizerSpec, Vocabulary
+from textsieve.registry.tokenizer import PAD, UNK, Tokenizer, TokenizerSpec, UnicodeVersionWarning, Vocabulary
 
 TOK = Tokenizer()
 
@@ -173,3 +174,24 @@ def test_every_composing_character_takes_the_full_pattern() -> None:
     # Hangul syllables compose algorithmically (no decomposition entry): L + V and LV + T.
     assert unicodedata.normalize("NFC", "\u1100\u1161\u11a8") == "\uac01"
     assert all(unicodedata.normalize("NFC", "\uac00" + t) != "\uac00" + t for t in HANGUL_COMPOSING if t >= "\u11a8")
+
+
+def test_another_unicode_version_warns_naming_both_and_still_tokenizes() -> None:
+    # "3.2.0" is the frozen table Python keeps as unicodedata.ucd_3_2_0 (for IDNA), so it can
+    # never be this Python's own version.
+    recorded = unicodedata.ucd_3_2_0.unidata_version
+    assert recorded != unicodedata.unidata_version
+    with pytest.warns(UnicodeVersionWarning) as caught:
+        tok = Tokenizer(TokenizerSpec(unicode_version=recorded))
+    assert len(caught) == 1
+    message = str(caught[0].message)
+    assert f"Unicode {recorded}" in message and f"Unicode {unicodedata.unidata_version}" in message
+    assert "NFKC" in message and "classes" in message
+    assert caught[0].filename == __file__  # points at the code that loaded the spec
+    assert tok.split("Charged twice") == TOK.split("Charged twice")
+
+
+def test_the_running_unicode_version_is_silent() -> None:
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # any warning fails the test, whatever pytest's settings
+        Tokenizer(TokenizerSpec(unicode_version=unicodedata.unidata_version))
