@@ -26,6 +26,7 @@ import os
 from pathlib import Path
 from types import TracebackType
 
+from textsieve.environment import POSTGRES_SCHEMES as PG_SCHEMES
 from textsieve.errors import (
     BundleError,
     GateRefusedError,
@@ -48,7 +49,6 @@ from textsieve.registry.records import EvalsetInfo, Event, GateResult, ModelInfo
 DB_FILE = "registry.sqlite3"
 BLOB_DIR = "blobs"
 CACHE_DIR = "cache"
-PG_SCHEMES = ("postgresql://", "postgres://")
 _GATE_ATTEMPTS = 3
 _CHANGES_LIMIT = 1000
 

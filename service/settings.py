@@ -12,6 +12,8 @@ from typing import Annotated, Any, Literal
 from pydantic import Field, SecretStr, field_validator, model_validator
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
+from textsieve.environment import DEFAULT_REGISTRY, check_blobs, check_registry
+
 MIN_TOKEN_CHARS = 16
 
 
@@ -24,7 +26,7 @@ class Settings(BaseSettings):
 
     model_config = SettingsConfigDict(env_prefix="TEXTSIEVE_", extra="forbid", validate_default=True)
 
-    registry: str = Field("./textsieve-registry", description="registry folder or postgresql:// URL")
+    registry: str = Field(DEFAULT_REGISTRY, description="registry folder or postgresql:// URL")
     blobs: str | None = Field(None, description="blob folder when the registry is a postgresql:// URL")
     host: str = "127.0.0.1"
     port: int = Field(8000, ge=0, le=65535)
@@ -61,6 +63,17 @@ class Settings(BaseSettings):
     poll_seconds: float = Field(2.0, gt=0, le=3600, description="how often the registry's change cursor is read")
     pinned_versions: int = Field(2, ge=0, le=32, description="non-live versions kept loaded for pinned requests")
     access_log: bool = Field(True, description="one JSON line per request on stderr")
+
+    # The same rules as the registry verbs apply to TEXTSIEVE_REGISTRY and TEXTSIEVE_BLOBS.
+    @field_validator("registry")
+    @classmethod
+    def _registry_location(cls, v: str) -> str:
+        return check_registry(v)
+
+    @field_validator("blobs")
+    @classmethod
+    def _blob_folder(cls, v: str | None) -> str | None:
+        return None if v is None else check_blobs(v)
 
     @field_validator("models", mode="before")
     @classmethod

@@ -35,6 +35,10 @@ def test_defaults_are_sane() -> None:
         ({"models": "a,a"}, "listed twice"),
         ({"max_body_bytes": 2000, "max_chars": 5000}, "smaller than max_chars"),
         ({"batch_wait_ms": -1}, "TEXTSIEVE_BATCH_WAIT_MS"),
+        # The registry verbs' rules (textsieve/environment.py), so serve and they agree.
+        ({"registry": " "}, r"\(TEXTSIEVE_REGISTRY\): empty"),
+        ({"registry": "https://h/r"}, "https:// is not a registry"),
+        ({"blobs": ""}, r"\(TEXTSIEVE_BLOBS\): empty"),
     ],
 )
 def test_bad_values_are_refused_naming_the_setting(overrides: dict[str, object], needle: str) -> None:
