@@ -1,18 +1,26 @@
 """The registry verbs of the ``textsieve`` command: publish, models, versions, show, promote,
-rollback, history and evalset add. Tables are plain aligned text; errors are raised and the
-command's main() prints them as one line with the error's exit status."""
+rollback, history and evalset add, each with its flags (:func:`register`) next to its handler.
+Tables are plain aligned text; errors are raised and the command's main() prints them as one
+line with the error's exit status.
+
+Building the command line imports this module for every run of ``textsieve`` (and for every
+press of TAB when completing), so the registry itself is imported inside the handlers.
+"""
 
 from __future__ import annotations
 
 import argparse
 import sys
 from collections.abc import Sequence
-from typing import Any, TextIO
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, TextIO
 
+from textsieve.environment import DEFAULT_REGISTRY, registry_location
 from textsieve.errors import GateRefusedError, NotFoundError
-from textsieve.registry.api import Registry, open_registry
-from textsieve.registry.names import validate_version
-from textsieve.registry.records import Event, GateResult
+
+if TYPE_CHECKING:
+    from textsieve.registry.api import Registry
+    from textsieve.registry.records import Event, GateResult
 
 NONE = "-"
 
@@ -34,7 +42,10 @@ def when(at: str | None) -> str:
 
 
 def _open(args: argparse.Namespace, *, create: bool = False) -> Registry:
-    return open_registry(args.registry, blobs=getattr(args, "blobs", None), create=create)
+    from textsieve.registry.api import open_registry
+
+    where = registry_location(args.registry, getattr(args, "blobs", None))
+    return open_registry(where.registry, blobs=where.blobs, create=create)
 
 
 def _out(text: str, stream: TextIO | None = None) -> None:
@@ -43,6 +54,90 @@ def _out(text: str, stream: TextIO | None = None) -> None:
 
 def gate_table(gates: Sequence[GateResult]) -> str:
     return table(["GATE", "RESULT", "DETAIL"], [[g.name, "pass" if g.passed else "FAIL", g.detail] for g in gates])
+
+
+# -- the verbs and their flags -------------------------------------------------------------
+def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    """Add the registry verbs, each with its flags and its handler, to the ``textsieve`` command."""
+    p = sub.add_parser("publish", help="store a bundle as the next version of a model")
+    p.add_argument("bundle", type=Path, help="bundle folder written by 'textsieve export'")
+    p.add_argument("--model", required=True, help="model name: a-z, 0-9, '.', '_', '-' (at most 64)")
+    p.add_argument("--evalset", type=Path, help="also register this labelled file as the model's evaluation set")
+    p.add_argument("--reason", default="", help="why, recorded in the audit trail")
+    add_location_args(p)
+    _actor_arg(p)
+    p.set_defaults(func=cli_publish)
+
+    p = sub.add_parser("models", help="table of models")
+    add_location_args(p)
+    p.set_defaults(func=cli_models)
+
+    p = sub.add_parser("versions", help="table of a model's versions")
+    _model_arg(p)
+    add_location_args(p)
+    p.set_defaults(func=cli_versions)
+
+    p = sub.add_parser("show", help="one version in full")
+    _model_arg(p)
+    p.add_argument("version", nargs="?", help="version number (default: the live version)")
+    add_location_args(p)
+    p.set_defaults(func=cli_show)
+
+    p = sub.add_parser("promote", help="move a version to candidate or live, through the gates")
+    _model_arg(p)
+    p.add_argument("version", type=int, help="version number")
+    p.add_argument(
+        "--to",
+        choices=["candidate", "live"],
+        required=True,
+        help="candidate: the one version under trial; live: the served one, after the gates",
+    )
+    p.add_argument("--reason", required=True, help="why, recorded in the audit trail")
+    p.add_argument("--force", action="store_true", help="override failed gates (recorded)")
+    add_location_args(p)
+    _actor_arg(p)
+    p.set_defaults(func=cli_promote)
+
+    p = sub.add_parser("rollback", help="make the previous live version live again")
+    _model_arg(p)
+    p.add_argument("--reason", required=True, help="why, recorded in the audit trail")
+    add_location_args(p)
+    _actor_arg(p)
+    p.set_defaults(func=cli_rollback)
+
+    p = sub.add_parser("history", help="audit trail of a model")
+    _model_arg(p)
+    add_location_args(p)
+    p.set_defaults(func=cli_history)
+
+    p = sub.add_parser("evalset", help="evaluation sets used by the promotion gates")
+    esub = p.add_subparsers(dest="evalset_command", required=True)
+    pe = esub.add_parser("add", help="register a labelled file as a model's evaluation set")
+    _model_arg(pe)
+    pe.add_argument("file", type=Path, help="labelled JSONL or CSV file")
+    pe.add_argument("--text-field", default="text", help="JSONL key or CSV column holding the text")
+    pe.add_argument("--label-field", default="label", help="JSONL key or CSV column holding the label")
+    add_location_args(pe)
+    _actor_arg(pe)
+    pe.set_defaults(func=cli_evalset_add)
+
+
+def add_location_args(p: argparse.ArgumentParser) -> None:
+    """``--registry`` and ``--blobs``; unset, they fall back on the environment when the verb runs."""
+    p.add_argument(
+        "--registry",
+        help="registry folder, or a postgresql:// URL with --blobs naming its blob folder "
+        f"(default: $TEXTSIEVE_REGISTRY, else {DEFAULT_REGISTRY})",
+    )
+    p.add_argument("--blobs", help="blob folder when --registry is a postgresql:// URL (default: $TEXTSIEVE_BLOBS)")
+
+
+def _model_arg(p: argparse.ArgumentParser) -> None:
+    p.add_argument("model", help="model name")
+
+
+def _actor_arg(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--actor", help="who is acting, recorded in the audit trail (default: the OS user)")
 
 
 # -- verbs --------------------------------------------------------------------------------
@@ -101,6 +196,9 @@ def cli_versions(args: argparse.Namespace) -> int:
 
 
 def cli_show(args: argparse.Namespace) -> int:
+    from textsieve.registry.names import validate_version
+    from textsieve.registry.records import GateResult
+
     with _open(args) as reg:
         if args.version is None:
             info = reg.live(args.model)
@@ -164,6 +262,8 @@ def cli_show(args: argparse.Namespace) -> int:
 
 
 def cli_promote(args: argparse.Namespace) -> int:
+    from textsieve.registry.records import GateResult
+
     with _open(args) as reg:
         try:
             result = reg.promote(
@@ -242,6 +342,7 @@ def _labels(labels: Sequence[str], limit: int = 4) -> str:
 
 
 __all__ = [
+    "add_location_args",
     "cli_evalset_add",
     "cli_history",
     "cli_models",
@@ -251,6 +352,7 @@ __all__ = [
     "cli_show",
     "cli_versions",
     "gate_table",
+    "register",
     "summarise",
     "table",
 ]

@@ -1,4 +1,4 @@
-"""``textsieve serve``: settings from the environment and flags, then uvicorn.
+"""``textsieve serve``: its flags, settings from them and the environment, then uvicorn.
 
 Shutdown. On SIGTERM (or Ctrl-C) uvicorn closes the listening socket, lets the requests it has
 accepted finish (up to ``GRACEFUL_SECONDS``), then runs the app's shutdown. Afterwards it
@@ -15,17 +15,35 @@ import signal
 import sys
 from types import FrameType
 
-from textsieve.service.settings import load_settings
+from textsieve.registry.cli import add_location_args
 
 GRACEFUL_SECONDS = 10
 
 
+def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    """Add ``serve``. Its flags default to None: the settings fill in the environment, then their defaults."""
+    p = sub.add_parser("serve", help="serve predictions over HTTP")
+    p.add_argument("--host", help="address to listen on (default: $TEXTSIEVE_HOST, else 127.0.0.1)")
+    p.add_argument("--port", type=int, help="port to listen on (default: $TEXTSIEVE_PORT, else 8000)")
+    p.add_argument(
+        "--models",
+        help="comma-separated model names to serve (default: $TEXTSIEVE_MODELS, else every model with a live version)",
+    )
+    p.add_argument("--workers", type=int, help="inference workers (default: $TEXTSIEVE_WORKERS, else one per core)")
+    p.add_argument(
+        "--inference",
+        choices=("processes", "threads"),
+        help="run inference workers as processes (fastest) or as threads of the server "
+        "(default: $TEXTSIEVE_INFERENCE, else processes)",
+    )
+    add_location_args(p)
+    p.set_defaults(func=cli_serve)
+
+
 def cli_serve(args: argparse.Namespace) -> int:
-    import uvicorn
+    from textsieve.service.settings import load_settings
 
-    from textsieve.service import logs
-    from textsieve.service.web.app import create_app
-
+    # Settings first: a bad flag or TEXTSIEVE_* value is one line before anything heavy loads.
     settings = load_settings(
         host=args.host,
         port=args.port,
@@ -35,6 +53,12 @@ def cli_serve(args: argparse.Namespace) -> int:
         workers=getattr(args, "workers", None),
         inference=getattr(args, "inference", None),
     )
+
+    import uvicorn
+
+    from textsieve.service import logs
+    from textsieve.service.web.app import create_app
+
     logs.configure()
     log = logging.getLogger("textsieve.service")
     log.info(
@@ -75,4 +99,4 @@ def cli_serve(args: argparse.Namespace) -> int:
     return 0
 
 
-__all__ = ["cli_serve"]
+__all__ = ["cli_serve", "register"]

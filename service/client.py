@@ -1,22 +1,47 @@
-"""``textsieve predict`` and ``textsieve health``: small clients of a running service."""
+"""``textsieve predict`` and ``textsieve health``: small clients of a running service, with their flags.
+
+httpx is imported inside the handlers: this module is imported whenever the command line is built.
+"""
 
 from __future__ import annotations
 
 import argparse
 import os
 import sys
-from typing import Any, TextIO
+from typing import TYPE_CHECKING, Any, TextIO
 
-import httpx
-
+from textsieve.environment import DEFAULT_URL, check_url, service_url
 from textsieve.errors import InputError, UnavailableError
 
+if TYPE_CHECKING:
+    import httpx
+
 BOLD, RESET = "\x1b[1m", "\x1b[0m"
+URL_HELP = f"address of the running service (default: $TEXTSIEVE_URL, else {DEFAULT_URL})"
+
+
+def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    """Add ``predict`` and ``health`` to the ``textsieve`` command."""
+    p = sub.add_parser("predict", help="ask a running service; prints label, probabilities and spans")
+    p.add_argument("texts", nargs="+", help="texts to classify, one argument each")
+    p.add_argument("--url", help=URL_HELP)
+    p.add_argument("--model", help="model to ask (needed when the service serves several)")
+    p.add_argument("--version", type=int, help="pin a version of the model (default: its live version)")
+    p.add_argument("--spans", type=int, default=3, help="most n-gram spans to show per text")
+    p.add_argument("--json", action="store_true", help="print the raw JSON reply")
+    p.set_defaults(func=cli_predict)
+
+    p = sub.add_parser("health", help="exit 0 when the service is ready, 1 otherwise, with one line of why")
+    p.add_argument("--url", help=URL_HELP)
+    p.add_argument("--timeout", type=float, default=5.0, help="seconds to wait for the reply")
+    p.set_defaults(func=cli_health)
 
 
 def _base(url: str) -> str:
-    if not url.startswith(("http://", "https://")):
-        raise InputError(f"--url {url!r}: give the service's address, e.g. http://127.0.0.1:8000")
+    try:
+        check_url(url)
+    except ValueError as exc:
+        raise InputError(f"--url {url!r}: {exc}") from exc
     return url.rstrip("/")
 
 
@@ -75,7 +100,9 @@ def _ansi(stream: TextIO) -> bool:
 
 
 def cli_predict(args: argparse.Namespace) -> int:
-    base = _base(args.url)
+    import httpx
+
+    base = _base(service_url(args.url))
     payload: dict[str, Any] = {"texts": list(args.texts), "spans": args.spans}
     if args.model:
         payload["model"] = args.model
@@ -101,22 +128,28 @@ def cli_predict(args: argparse.Namespace) -> int:
 
 
 def cli_health(args: argparse.Namespace) -> int:
-    """Exit 0 when /readyz says ready, 1 otherwise; always exactly one line."""
+    """Exit 0 when /readyz says ready, 1 otherwise; always exactly one line.
+
+    A bad ``TEXTSIEVE_URL`` is a broken configuration, not an unready service: exit 2, like every verb.
+    """
+    import httpx
+
+    url = service_url(args.url)
     try:
-        base = _base(args.url)
+        base = _base(url)
         with httpx.Client(timeout=args.timeout) as client:
             r = client.get(f"{base}/readyz")
     except InputError as exc:
         print(f"not ready: {exc.message}")
         return 1
     except httpx.HTTPError as exc:
-        print(f"not ready: cannot reach {args.url} ({type(exc).__name__})")
+        print(f"not ready: cannot reach {url} ({type(exc).__name__})")
         return 1
     try:
         body = r.json()
         reason = str(body.get("reason", "")).replace("\n", " ")
     except (ValueError, AttributeError):
-        reason = f"HTTP {r.status_code} from {args.url}/readyz is not a textsieve readiness reply"
+        reason = f"HTTP {r.status_code} from {url}/readyz is not a textsieve readiness reply"
     if r.status_code == 200:
         print(f"ready: {reason}")
         return 0
@@ -124,4 +157,4 @@ def cli_health(args: argparse.Namespace) -> int:
     return 1
 
 
-__all__ = ["cli_health", "cli_predict", "highlight", "render"]
+__all__ = ["cli_health", "cli_predict", "highlight", "register", "render"]

@@ -1,213 +1,148 @@
-"""The ``textsieve`` command: one verb per job, heavy imports only inside the verb that needs them."""
+# PYTHON_ARGCOMPLETE_OK
+"""The ``textsieve`` command: the top parser, the sides' verbs, and the one mapping of failures to exit
+statuses.
+
+Each verb's flags live with its handler, in the side that owns it (``register(sub)`` in
+``exporter/cli.py``, ``registry/cli.py``, ``service/cli.py``, ``service/client.py``, ``demo.py``).
+Those modules are imported for every run and every completion, so they import their heavy
+dependencies inside the handlers; a handler that needs an extra that is not installed ends here, as
+one line saying which extra to install.
+"""
 
 from __future__ import annotations
 
 import argparse
 import os
 import sys
-from collections.abc import Callable, Sequence
-from pathlib import Path
+from collections.abc import Sequence
+from typing import TYPE_CHECKING, Any
 
-from textsieve import __version__
+from textsieve import __version__, demo
 from textsieve.errors import TextsieveError
+from textsieve.exporter import cli as exporter_cli
+from textsieve.registry import cli as registry_cli
+from textsieve.service import cli as service_cli
+from textsieve.service import client as service_client
 
-DEFAULT_REGISTRY = "./textsieve-registry"
+DESCRIPTION = (
+    "Export, version and serve convolutional text classifiers: train one and export it to a parity-checked "
+    "ONNX bundle, publish bundles to a registry, promote versions through gates or roll them back, and serve "
+    "calibrated predictions with the n-gram spans behind them over HTTP."
+)
+EPILOG = (
+    "Run 'textsieve VERB --help' for a verb's options. Tab completion for bash or zsh: "
+    'eval "$(textsieve completion bash)".'
+)
+SHELLS = ("bash", "zsh")
+
+# The import that failed → the optional dependencies that provide it (pyproject.toml).
+EXTRAS = {
+    "torch": "train",
+    "onnxscript": "train",
+    "tqdm": "train",
+    "fastapi": "serve",
+    "uvicorn": "serve",
+    "pydantic_settings": "serve",
+    "orjson": "serve",
+    "psycopg": "serve",
+}
+EXTRA_NAMES = {"train": "training", "serve": "serving"}
+
+
+class _HelpFormatter(argparse.ArgumentDefaultsHelpFormatter):
+    """Shows each option's default, except the empty ones ("(default: None)" tells nobody anything)."""
+
+    def _get_help_string(self, action: argparse.Action) -> str | None:
+        default = action.default
+        if default is None or default is False or (isinstance(default, str) and not default) or action.required:
+            return action.help
+        return super()._get_help_string(action)
+
+
+if TYPE_CHECKING:
+    _SubParsers = argparse._SubParsersAction[argparse.ArgumentParser]
+else:  # not subscriptable at run time
+    _SubParsers = argparse._SubParsersAction
+
+
+class _Verbs(_SubParsers):
+    """A verb's one-line help, from the list of verbs, also heads its own ``--help``."""
+
+    def add_parser(self, name: str, **kwargs: Any) -> argparse.ArgumentParser:
+        if "help" in kwargs:
+            kwargs.setdefault("description", kwargs["help"])
+        return super().add_parser(name, **kwargs)
 
 
 class _Parser(argparse.ArgumentParser):
+    """Usage errors as one line and exit status 2, like every other bad-input path."""
+
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        # argparse makes the sub-parsers from this class, so every verb, on every side, gets the
+        # same help layout and error line without importing anything from here.
+        kwargs.setdefault("formatter_class", _HelpFormatter)
+        super().__init__(*args, **kwargs)
+        self.register("action", "parsers", _Verbs)
+
     def error(self, message: str) -> None:  # type: ignore[override]
-        # One line and exit status 2, like every other bad-input path.
-        print(
-            f"textsieve: error: {message} (see 'textsieve {self.prog.split()[-1]} --help')"
-            if " " in self.prog
-            else f"textsieve: error: {message} (see 'textsieve --help')",
-            file=sys.stderr,
-        )
+        # self.prog is the whole command so far: "textsieve", "textsieve promote", "textsieve evalset add".
+        print(f"textsieve: error: {message} (see '{self.prog} --help')", file=sys.stderr)
         raise SystemExit(2)
 
 
-def _registry_arg(p: argparse.ArgumentParser) -> None:
-    p.add_argument(
-        "--registry",
-        default=os.environ.get("TEXTSIEVE_REGISTRY", DEFAULT_REGISTRY),
-        help="registry folder, or a postgresql:// URL (then --blobs names the blob folder); "
-        "default $TEXTSIEVE_REGISTRY or ./textsieve-registry",
-    )
-    p.add_argument(
-        "--blobs",
-        default=os.environ.get("TEXTSIEVE_BLOBS"),
-        help="blob folder when --registry is a postgresql:// URL ($TEXTSIEVE_BLOBS)",
-    )
-
-
-def _actor_arg(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--actor", default=None, help="who is acting (default: the OS user)")
-
-
 def build_parser() -> argparse.ArgumentParser:
-    parser = _Parser(prog="textsieve", description=__doc__)
+    parser = _Parser(prog="textsieve", description=DESCRIPTION, epilog=EPILOG)
     parser.add_argument("--version", action="version", version=f"textsieve {__version__}")
-    sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
-
-    p = sub.add_parser("demo", help="invented data → train → export → publish → promote → serve")
-    p.add_argument("--workdir", type=Path, default=Path("demo-run"))
-    p.add_argument("--no-serve", action="store_true", help="stop after promoting")
-    p.add_argument("--host", default="127.0.0.1")
-    p.add_argument("--port", type=int, default=8000)
-    p.add_argument("--epochs", type=int, default=None)
-    _registry_arg(p)
-    p.set_defaults(func=_lazy("textsieve.demo", "run_demo"))
-
-    p = sub.add_parser("train", help="train a convolutional text classifier")
-    p.add_argument("data", type=Path, help="labelled JSONL or CSV file")
-    p.add_argument("--out", type=Path, required=True, help="run folder to write")
-    p.add_argument("--valid", type=Path, help="validation file (default: a seeded 10 %% split of DATA)")
-    p.add_argument("--text-field", default="text")
-    p.add_argument("--label-field", default="label")
-    p.add_argument("--vectors", type=Path, help="pretrained vectors, GloVe/word2vec text format")
-    p.add_argument("--vectors-mode", choices=["static", "non-static"], default="non-static")
-    p.add_argument("--embedding-dim", type=int, default=128, help="without --vectors")
-    p.add_argument("--widths", default="3,4,5", help="filter widths, comma separated (Kim, 2014)")
-    p.add_argument("--maps", type=int, default=100, help="feature maps per width (Kim, 2014)")
-    p.add_argument("--dropout", type=float, default=0.5)
-    p.add_argument("--max-norm", type=float, default=3.0)
-    p.add_argument("--batch-size", type=int, default=50)
-    p.add_argument("--epochs", type=int, default=20, help="upper bound; early stopping on validation")
-    p.add_argument("--patience", type=int, default=3)
-    p.add_argument("--learning-rate", type=float, default=1e-3)
-    p.add_argument("--min-count", type=int, default=1)
-    p.add_argument("--max-vocab", type=int, default=50000)
-    p.add_argument("--length-percentile", type=float, default=99.0)
-    p.add_argument("--seed", type=int, default=13)
-    p.add_argument("--quiet", action="store_true", help="no progress bar")
-    p.set_defaults(func=_lazy("textsieve.exporter.train", "cli_train"))
-
-    p = sub.add_parser("export", help="export a run to a parity-checked ONNX bundle")
-    p.add_argument("run", type=Path)
-    p.add_argument("--out", type=Path, required=True)
-    p.add_argument("--tolerance", type=float, default=1e-4, help="max |Δprobability| torch vs ONNX")
-    p.add_argument("--test", type=Path, help="held-out file for the manifest's metrics (default: validation)")
-    p.add_argument(
-        "--layout",
-        choices=("auto", "tap-tables", "convolution"),
-        default="auto",
-        help="how the graph computes the convolution: precomputed per-word tap tables "
-        "(fast; auto picks it when they fit in 256 MiB) or Conv over embeddings",
+    sub: argparse._SubParsersAction[argparse.ArgumentParser] = parser.add_subparsers(
+        dest="command", required=True, parser_class=_Parser
     )
-    p.set_defaults(func=_lazy("textsieve.exporter.export", "cli_export"))
-
-    p = sub.add_parser("publish", help="store a bundle as the next version of a model")
-    p.add_argument("bundle", type=Path)
-    p.add_argument("--model", required=True)
-    p.add_argument("--evalset", type=Path, help="also register this labelled file as the model's evaluation set")
-    p.add_argument("--reason", default="")
-    _registry_arg(p)
-    _actor_arg(p)
-    p.set_defaults(func=_lazy("textsieve.registry.cli", "cli_publish"))
-
-    p = sub.add_parser("models", help="table of models")
-    _registry_arg(p)
-    p.set_defaults(func=_lazy("textsieve.registry.cli", "cli_models"))
-
-    p = sub.add_parser("versions", help="table of a model's versions")
-    p.add_argument("model")
-    _registry_arg(p)
-    p.set_defaults(func=_lazy("textsieve.registry.cli", "cli_versions"))
-
-    p = sub.add_parser("show", help="one version in full")
-    p.add_argument("model")
-    p.add_argument("version", nargs="?", help="number (default: the live version)")
-    _registry_arg(p)
-    p.set_defaults(func=_lazy("textsieve.registry.cli", "cli_show"))
-
-    p = sub.add_parser("promote", help="move a version to candidate or live, through the gates")
-    p.add_argument("model")
-    p.add_argument("version", type=int)
-    p.add_argument("--to", choices=["candidate", "live"], required=True)
-    p.add_argument("--reason", required=True)
-    p.add_argument("--force", action="store_true", help="override failed gates (recorded)")
-    _registry_arg(p)
-    _actor_arg(p)
-    p.set_defaults(func=_lazy("textsieve.registry.cli", "cli_promote"))
-
-    p = sub.add_parser("rollback", help="make the previous live version live again")
-    p.add_argument("model")
-    p.add_argument("--reason", required=True)
-    _registry_arg(p)
-    _actor_arg(p)
-    p.set_defaults(func=_lazy("textsieve.registry.cli", "cli_rollback"))
-
-    p = sub.add_parser("history", help="audit trail of a model")
-    p.add_argument("model")
-    _registry_arg(p)
-    p.set_defaults(func=_lazy("textsieve.registry.cli", "cli_history"))
-
-    p = sub.add_parser("evalset", help="evaluation sets used by the promotion gates")
-    esub = p.add_subparsers(dest="evalset_command", required=True, parser_class=_Parser)
-    pe = esub.add_parser("add", help="register a labelled file as a model's evaluation set")
-    pe.add_argument("model")
-    pe.add_argument("file", type=Path)
-    pe.add_argument("--text-field", default="text")
-    pe.add_argument("--label-field", default="label")
-    _registry_arg(pe)
-    _actor_arg(pe)
-    pe.set_defaults(func=_lazy("textsieve.registry.cli", "cli_evalset_add"))
-
-    p = sub.add_parser("serve", help="serve predictions over HTTP")
-    p.add_argument("--host", default=os.environ.get("TEXTSIEVE_HOST", "127.0.0.1"))
-    p.add_argument("--port", type=int, default=int(os.environ.get("TEXTSIEVE_PORT", "8000")))
-    p.add_argument("--models", help="comma-separated model names to serve (default: every model with a live version)")
-    p.add_argument("--workers", type=int, help="inference workers (default: one per core)")
-    p.add_argument(
-        "--inference",
-        choices=("processes", "threads"),
-        help="run inference workers as processes (default; fastest) or as threads of the server",
-    )
-    _registry_arg(p)
-    p.set_defaults(func=_lazy("textsieve.service.cli", "cli_serve"))
-
-    p = sub.add_parser("predict", help="ask a running service; prints label, probabilities and spans")
-    p.add_argument("texts", nargs="+")
-    p.add_argument("--url", default=os.environ.get("TEXTSIEVE_URL", "http://127.0.0.1:8000"))
-    p.add_argument("--model")
-    p.add_argument("--version", type=int)
-    p.add_argument("--spans", type=int, default=3)
-    p.add_argument("--json", action="store_true", help="print the raw JSON reply")
-    p.set_defaults(func=_lazy("textsieve.service.client", "cli_predict"))
-
-    p = sub.add_parser("health", help="exit 0 when the service is ready, 1 otherwise, with one line of why")
-    p.add_argument("--url", default=os.environ.get("TEXTSIEVE_URL", "http://127.0.0.1:8000"))
-    p.add_argument("--timeout", type=float, default=5.0)
-    p.set_defaults(func=_lazy("textsieve.service.client", "cli_health"))
+    demo.register(sub)
+    exporter_cli.register(sub)
+    registry_cli.register(sub)
+    service_cli.register(sub)
+    service_client.register(sub)
+    _register_completion(sub)
     return parser
 
 
-def _lazy(module: str, name: str) -> Callable[[argparse.Namespace], int]:
-    def run(args: argparse.Namespace) -> int:
-        import importlib
+def _register_completion(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    p = sub.add_parser("completion", help="print the shell code that completes textsieve's verbs and flags")
+    p.add_argument(
+        "shell", choices=SHELLS, help='shell to complete in; load it with eval "$(textsieve completion SHELL)"'
+    )
+    p.set_defaults(func=cli_completion)
 
-        try:
-            mod = importlib.import_module(module)
-        except ModuleNotFoundError as exc:
-            if exc.name in ("torch", "onnxscript", "tqdm"):
-                raise TextsieveError(
-                    f"'{args.command}' needs the training extras: pip install 'textsieve[train]'"
-                ) from exc
-            if exc.name in ("fastapi", "uvicorn", "pydantic_settings", "orjson", "psycopg"):
-                raise TextsieveError(
-                    f"'{args.command}' needs the serving extras: pip install 'textsieve[serve]'"
-                ) from exc
+
+def cli_completion(args: argparse.Namespace) -> int:
+    from argcomplete.shell_integration import shellcode
+
+    print(shellcode(["textsieve"], shell=args.shell), end="")
+    return 0
+
+
+def run(args: argparse.Namespace) -> int:
+    """The verb's handler; a missing optional dependency becomes the extra to install."""
+    try:
+        return int(args.func(args) or 0)
+    except ModuleNotFoundError as exc:
+        extra = EXTRAS.get((exc.name or "").partition(".")[0])
+        if extra is None:
             raise
-        result: int | None = getattr(mod, name)(args)
-        return result or 0
-
-    return run
+        raise TextsieveError(
+            f"'{args.command}' needs the {EXTRA_NAMES[extra]} extras: pip install 'textsieve[{extra}]'"
+        ) from exc
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    if "_ARGCOMPLETE" in os.environ:
+        # A shell asks for completions (the code 'textsieve completion' prints sets this): answer and exit.
+        # Plain runs skip even the import.
+        import argcomplete
+
+        argcomplete.autocomplete(parser)
     try:
-        args = build_parser().parse_args(argv)
-        return int(args.func(args))
+        return run(parser.parse_args(argv))
     except TextsieveError as exc:
         print(f"textsieve: error: {exc.message}", file=sys.stderr)
         return exc.exit_code

@@ -11,6 +11,9 @@ import json
 import shlex
 from pathlib import Path
 
+from textsieve.environment import registry_location
+from textsieve.registry.cli import add_location_args, cli_models
+
 MODEL = "helpdesk"
 EXAMPLE = [
     "The chain is not broken, but I was charged twice this month.",
@@ -22,16 +25,30 @@ def _step(n: int, text: str) -> None:
     print(f"\n== step {n}/6: {text}", flush=True)
 
 
+def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    """Add ``demo`` to the ``textsieve`` command."""
+    p = sub.add_parser("demo", help="invented data → train → export → publish → promote → serve")
+    p.add_argument("--workdir", type=Path, default=Path("demo-run"), help="folder for the data, run and bundle")
+    p.add_argument("--no-serve", action="store_true", help="stop after promoting")
+    p.add_argument("--host", default="127.0.0.1", help="address to serve on")
+    p.add_argument("--port", type=int, default=8000, help="port to serve on")
+    p.add_argument("--epochs", type=int, help="upper bound on training epochs (default: that of 'textsieve train')")
+    add_location_args(p)
+    p.set_defaults(func=run_demo)
+
+
 def run_demo(args: argparse.Namespace) -> int:
+    # Where the registry is, checked before minutes of training rather than after.
+    where = registry_location(args.registry, args.blobs)
+
     from textsieve.exporter.demo_data import write_splits
     from textsieve.exporter.export import export
     from textsieve.exporter.train import TrainConfig, train
     from textsieve.registry import open_registry
-    from textsieve.registry.cli import cli_models
     from textsieve.service.cli import cli_serve
 
     work: Path = args.workdir
-    registry = args.registry
+    registry = where.registry
 
     _step(1, "invented data: help-desk messages to a fictional bike-share and tool library")
     paths = write_splits(work / "data")
@@ -54,7 +71,7 @@ def run_demo(args: argparse.Namespace) -> int:
     )
 
     _step(4, f"publish to the registry at {registry}")
-    with open_registry(registry, blobs=args.blobs) as reg:
+    with open_registry(registry, blobs=where.blobs) as reg:
         info = reg.publish(bundle, MODEL, reason="demo", evalset=paths["test"])
         print(f"  published {MODEL} version {info.version}")
 
@@ -63,7 +80,7 @@ def run_demo(args: argparse.Namespace) -> int:
         promotion = reg.promote(MODEL, info.version, to="live", reason="demo: gates passed")
         for gate in promotion.gates:
             print(f"  gate {gate.name:<10} {'passed' if gate.passed else 'FAILED'}  {gate.detail}")
-    cli_models(args)
+    cli_models(argparse.Namespace(registry=registry, blobs=where.blobs))
 
     url = f"http://{args.host}:{args.port}"
     body = json.dumps({"texts": EXAMPLE, "spans": 2})
@@ -75,4 +92,4 @@ def run_demo(args: argparse.Namespace) -> int:
         print("\n(--no-serve: not starting the service)")
         return 0
     _step(6, f"serve on {url} (Ctrl-C to stop)")
-    return cli_serve(argparse.Namespace(host=args.host, port=args.port, registry=str(registry), blobs=args.blobs))
+    return cli_serve(argparse.Namespace(host=args.host, port=args.port, registry=registry, blobs=where.blobs))
