@@ -1,222 +1,312 @@
-"""Counters, gauges and histograms in the Prometheus text exposition format (version 0.0.4).
+"""What the service measures, kept in prometheus_client and exposed in the Prometheus text format.
 
-Written here rather than taken from a client library to keep the serving install small. The
-format: ``# HELP`` / ``# TYPE`` lines, then ``name{label="value"} number``; histograms expose
-cumulative ``_bucket{le=...}`` series ending in ``le="+Inf"``, plus ``_sum`` and ``_count``
-(Prometheus documentation, "Exposition formats"). Worker threads update these, so each family
-takes the registry's lock; updates happen once per batch or request, never per text.
+Each app gets a private ``CollectorRegistry`` (``create_app`` runs many times in one test
+process; the library's global default registry would refuse the second app's families).
+
+The hot path never calls ``.labels()``: resolving a child takes a lock and a dict look-up
+(about 2 µs, measured), so the children of a served version are resolved once
+(:meth:`ServiceMetrics.for_version`, kept by its batcher) and those of an HTTP route and status
+once per distinct triple (:meth:`ServiceMetrics.answered`).
+
+Two collectors of our own, both run only when ``/metrics`` is scraped:
+
+- :class:`CountedHistogram` for the queue wait: every text of a request's slice of a batch waited
+  the same time, and the library's ``observe`` takes one value at a time, so a 128-text batch
+  would cost 128 locked observations on the event loop; this one takes ``(value, count)``.
+- :class:`WorkerProcessCollector` reads ``/proc/<pid>/stat`` and ``statm`` of each inference
+  worker process (rather than asking the worker: a request in a worker's pipe waits behind the
+  batches queued there, and a stuck worker would stall the scrape, while ``/proc`` answers at once).
 """
 
 from __future__ import annotations
 
 import bisect
+import copy
 import math
+import os
 import threading
-from collections.abc import Iterable, Sequence
-from typing import TypeVar
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from dataclasses import dataclass
 
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, Info, ProcessCollector, generate_latest
+from prometheus_client.metrics_core import CounterMetricFamily, GaugeMetricFamily, HistogramMetricFamily, Metric
+from prometheus_client.registry import Collector
+
+# generate_latest writes text format 0.0.4; recent prometheus_client versions name 1.0.0 in
+# CONTENT_TYPE_LATEST (it negotiates escaping for UTF-8 metric names, which ours never need).
 CONTENT_TYPE = "text/plain; version=0.0.4; charset=utf-8"
-Labels = tuple[str, ...]
 
 SECONDS_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
 SIZE_BUCKETS = (1, 2, 4, 8, 16, 32, 64, 128, 256, 512, 1024, 2048, 4096)
+WorkerPids = Callable[[], Iterable[tuple[int, int]]]  # (worker index, pid) of each running worker
 
 
-def _escape_label(value: str) -> str:
-    return value.replace("\\", "\\\\").replace("\n", "\\n").replace('"', '\\"')
+def _le(bound: float) -> str:
+    """A bucket bound as prometheus_client's own histograms write it ("1.0", "0.0005", "+Inf")."""
+    return "+Inf" if math.isinf(bound) else repr(float(bound))
 
 
-def _escape_help(text: str) -> str:
-    return text.replace("\\", "\\\\").replace("\n", "\\n")
+class _CountedChild:
+    __slots__ = ("_bounds", "_counts", "_lock", "_sum")
 
+    def __init__(self, bounds: tuple[float, ...]) -> None:
+        self._bounds = bounds
+        self._counts = [0] * (len(bounds) + 1)  # per bucket, not cumulative; the last is +Inf
+        self._sum = 0.0
+        self._lock = threading.Lock()
 
-def _number(v: float) -> str:
-    if math.isinf(v):
-        return "+Inf" if v > 0 else "-Inf"
-    if math.isnan(v):
-        return "NaN"
-    if float(v).is_integer() and abs(v) < 1e15:
-        return str(int(v))
-    return repr(float(v))
-
-
-def _series(name: str, labelnames: Sequence[str], values: Labels, extra: tuple[str, str] | None = None) -> str:
-    pairs = [f'{k}="{_escape_label(v)}"' for k, v in zip(labelnames, values, strict=True)]
-    if extra:
-        pairs.append(f'{extra[0]}="{extra[1]}"')
-    return f"{name}{{{','.join(pairs)}}}" if pairs else name
-
-
-class _Family:
-    kind = "untyped"
-
-    def __init__(self, name: str, help: str, labelnames: Sequence[str], lock: threading.Lock) -> None:
-        self.name = name
-        self.help = help
-        self.labelnames = tuple(labelnames)
-        self._lock = lock
-
-    def _check(self, labels: Labels) -> Labels:
-        if len(labels) != len(self.labelnames):
-            raise ValueError(f"{self.name} takes labels {self.labelnames}, got {labels}")
-        return tuple(str(v) for v in labels)
-
-    def header(self) -> list[str]:
-        return [f"# HELP {self.name} {_escape_help(self.help)}", f"# TYPE {self.name} {self.kind}"]
-
-    def lines(self) -> list[str]:
-        raise NotImplementedError
-
-
-class Counter(_Family):
-    kind = "counter"
-
-    def __init__(self, name: str, help: str, labelnames: Sequence[str], lock: threading.Lock) -> None:
-        super().__init__(name, help, labelnames, lock)
-        self._values: dict[Labels, float] = {}
-
-    def inc(self, labels: Labels = (), amount: float = 1.0) -> None:
-        if amount < 0:
-            raise ValueError("a counter only goes up")
-        key = self._check(labels)
+    def observe(self, value: float, count: int = 1) -> None:
+        """Record ``value`` ``count`` times."""
+        if count < 0:
+            raise ValueError("an observation count cannot be negative")
         with self._lock:
-            self._values[key] = self._values.get(key, 0.0) + amount
+            self._counts[bisect.bisect_left(self._bounds, value)] += count  # "le": first bound >= value
+            self._sum += value * count
 
-    def value(self, labels: Labels = ()) -> float:
+    def buckets(self) -> tuple[list[tuple[str, float]], float]:
         with self._lock:
-            return self._values.get(self._check(labels), 0.0)
-
-    def lines(self) -> list[str]:
-        return [f"{_series(self.name, self.labelnames, k)} {_number(v)}" for k, v in sorted(self._values.items())]
-
-
-class Gauge(Counter):
-    kind = "gauge"
-
-    def set(self, labels: Labels, value: float) -> None:
-        key = self._check(labels)
-        with self._lock:
-            self._values[key] = float(value)
-
-    def remove(self, labels: Labels) -> None:
-        with self._lock:
-            self._values.pop(self._check(labels), None)
+            counts, total = list(self._counts), self._sum
+        cumulative, acc = [], 0
+        for bound, c in zip((*self._bounds, math.inf), counts, strict=True):
+            acc += c
+            cumulative.append((_le(bound), float(acc)))
+        return cumulative, total
 
 
-class Histogram(_Family):
-    kind = "histogram"
+class CountedHistogram(Collector):
+    """A labelled histogram family whose observations carry a count."""
 
-    def __init__(
-        self, name: str, help: str, labelnames: Sequence[str], lock: threading.Lock, buckets: Sequence[float]
-    ) -> None:
-        super().__init__(name, help, labelnames, lock)
-        if list(buckets) != sorted(set(buckets)) or not buckets:
+    def __init__(self, name: str, documentation: str, labelnames: Sequence[str], buckets: Sequence[float]) -> None:
+        if not buckets or list(buckets) != sorted(set(buckets)):
             raise ValueError("histogram buckets must be increasing and unique")
-        self.bounds = tuple(float(b) for b in buckets)
-        # per label set: counts per bucket (not cumulative), sum, count
-        self._data: dict[Labels, tuple[list[int], list[float]]] = {}
+        self.name, self.documentation, self.labelnames = name, documentation, tuple(labelnames)
+        self._bounds = tuple(float(b) for b in buckets)
+        self._children: dict[tuple[str, ...], _CountedChild] = {}
+        self._lock = threading.Lock()
 
-    def observe(self, labels: Labels, value: float) -> None:
-        self.observe_many(labels, (value,))
-
-    def observe_many(self, labels: Labels, values: Iterable[float], times: Iterable[int] | None = None) -> None:
-        """Observe each value (``times[i]`` times each, when given)."""
-        key = self._check(labels)
-        values = list(values)
-        repeats = [1] * len(values) if times is None else list(times)
+    def labels(self, *values: str) -> _CountedChild:
+        if len(values) != len(self.labelnames):
+            raise ValueError(f"{self.name} takes labels {self.labelnames}, got {values}")
         with self._lock:
-            counts, total = self._data.setdefault(key, ([0] * (len(self.bounds) + 1), [0.0]))
-            for v, t in zip(values, repeats, strict=True):
-                # "le" buckets: v lands in the first bound >= v.
-                counts[bisect.bisect_left(self.bounds, v)] += t
-                total[0] += v * t
+            return self._children.setdefault(tuple(values), _CountedChild(self._bounds))
 
-    def snapshot(self, labels: Labels) -> tuple[list[int], float, int]:
-        """Cumulative bucket counts, sum and count (for tests and the readiness view)."""
+    def collect(self) -> Iterator[Metric]:
+        family = HistogramMetricFamily(self.name, self.documentation, labels=self.labelnames)
         with self._lock:
-            counts, total = self._data.get(self._check(labels), ([0] * (len(self.bounds) + 1), [0.0]))
-            cum, acc = [], 0
-            for c in counts:
-                acc += c
-                cum.append(acc)
-            return cum, total[0], acc
-
-    def lines(self) -> list[str]:
-        out: list[str] = []
-        for key, (counts, total) in sorted(self._data.items()):
-            acc = 0
-            for bound, c in zip((*self.bounds, math.inf), counts, strict=True):
-                acc += c
-                out.append(f"{_series(self.name + '_bucket', self.labelnames, key, ('le', _number(bound)))} {acc}")
-            out.append(f"{_series(self.name + '_sum', self.labelnames, key)} {_number(total[0])}")
-            out.append(f"{_series(self.name + '_count', self.labelnames, key)} {acc}")
-        return out
+            children = sorted(self._children.items())
+        for values, child in children:
+            buckets, total = child.buckets()
+            family.add_metric(list(values), buckets, total)
+        yield family
 
 
-_F = TypeVar("_F", bound=_Family)
+def _sysconf(name: str, default: int) -> int:
+    try:
+        return int(os.sysconf(name))
+    except (AttributeError, ValueError, OSError):
+        return default
 
 
-class Registry:
-    """A set of metric families rendered together."""
+_TICKS = _sysconf("SC_CLK_TCK", 100)
+_PAGE = _sysconf("SC_PAGE_SIZE", 4096)
+
+
+def _read_proc(pid: int) -> tuple[float, float, float, float] | None:
+    """CPU seconds, start time since boot, resident and shared bytes of ``pid``; None once it is gone."""
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as f:
+            # The command name may hold spaces and parentheses: fields are counted after the last ")".
+            stat = f.read().rsplit(b")", 1)[1].split()
+        with open(f"/proc/{pid}/statm", "rb") as f:
+            statm = f.read().split()
+    except (OSError, IndexError):
+        return None
+    # proc(5): stat's fields 14 and 15 are utime and stime, 22 starttime, in clock ticks (index
+    # 0 here is field 3); statm's second and third fields are resident and resident-shared pages.
+    cpu = (int(stat[11]) + int(stat[12])) / _TICKS
+    return cpu, int(stat[19]) / _TICKS, int(statm[1]) * _PAGE, int(statm[2]) * _PAGE
+
+
+def _boot_time() -> float:
+    try:
+        with open("/proc/stat", "rb") as f:
+            for line in f:
+                if line.startswith(b"btime "):
+                    return float(line.split()[1])
+    except OSError:
+        pass
+    return 0.0
+
+
+class WorkerProcessCollector(Collector):
+    """CPU, memory and start time of each inference worker process, labelled by worker index."""
 
     def __init__(self) -> None:
-        self._lock = threading.Lock()
-        self._families: list[_Family] = []
+        self.pids: WorkerPids | None = None  # set while a pool of worker processes runs
+        self._boot = _boot_time()
 
-    def counter(self, name: str, help: str, labels: Sequence[str] = ()) -> Counter:
-        return self._add(Counter(name, help, labels, self._lock))
+    def collect(self) -> Iterator[Metric]:
+        if self.pids is None or not self._boot:  # threads mode, or no /proc on this system
+            return
+        w = ("worker",)
+        rss = GaugeMetricFamily("textsieve_worker_resident_memory_bytes", "Resident memory of a worker.", labels=w)
+        shared = GaugeMetricFamily(
+            "textsieve_worker_shared_memory_bytes",
+            "Resident memory of a worker that is file-backed or shared (libraries, the model file): "
+            "summing resident memory over workers counts it once per worker.",
+            labels=w,
+        )
+        cpu = CounterMetricFamily("textsieve_worker_cpu_seconds", "User and system CPU time of a worker.", labels=w)
+        start = GaugeMetricFamily(
+            "textsieve_worker_start_time_seconds",
+            "Start time of a worker since the Unix epoch; it changes when a dead worker is replaced.",
+            labels=w,
+        )
+        for index, pid in self.pids():
+            read = _read_proc(pid)
+            if read is None:  # ended between listing and reading: it is being replaced
+                continue
+            seconds, started, resident, shared_bytes = read
+            label = [str(index)]
+            cpu.add_metric(label, seconds)
+            start.add_metric(label, self._boot + started)
+            rss.add_metric(label, resident)
+            shared.add_metric(label, shared_bytes)
+        yield from (rss, shared, cpu, start)
 
-    def gauge(self, name: str, help: str, labels: Sequence[str] = ()) -> Gauge:
-        return self._add(Gauge(name, help, labels, self._lock))
 
-    def histogram(self, name: str, help: str, labels: Sequence[str], buckets: Sequence[float]) -> Histogram:
-        return self._add(Histogram(name, help, labels, self._lock, buckets))
+class _WithoutCreated(Collector):
+    """The registry minus the ``*_created`` series the library adds to counters and histograms:
+    they were never part of what this service exposes, and they would double its series."""
 
-    def _add(self, family: _F) -> _F:
-        if any(f.name == family.name for f in self._families):
-            raise ValueError(f"metric {family.name} registered twice")
-        self._families.append(family)
-        return family
+    def __init__(self, registry: CollectorRegistry) -> None:
+        self._registry = registry
 
-    def render(self) -> str:
-        with self._lock:
-            lines: list[str] = []
-            for fam in self._families:
-                lines.extend(fam.header())
-                lines.extend(fam.lines())
-        return "\n".join(lines) + "\n"
+    def collect(self) -> Iterator[Metric]:
+        for metric in self._registry.collect():
+            if metric.type in ("counter", "histogram"):
+                created = metric.name + "_created"
+                metric = copy.copy(metric)
+                metric.samples = [s for s in metric.samples if s.name != created]
+            yield metric
+
+
+@dataclass(frozen=True, slots=True)
+class VersionMetrics:
+    """One served version's label children, resolved once and updated per request or batch."""
+
+    requests: Counter
+    texts: Counter
+    tokens: Counter
+    unknown: Counter
+    truncated: Counter
+    batch_texts: Histogram
+    inference: Histogram
+    queue_wait: _CountedChild
 
 
 class ServiceMetrics:
     """The service's metric families; model-level ones are labelled by model and version."""
 
     def __init__(self) -> None:
-        r = self.registry = Registry()
+        r = self.registry = CollectorRegistry()
         mv = ("model", "version")
-        self.http_requests = r.counter(
-            "textsieve_http_requests_total", "HTTP requests answered.", ("method", "route", "status")
+        self.http_requests = Counter(
+            "textsieve_http_requests_total", "HTTP requests answered.", ("method", "route", "status"), registry=r
         )
-        self.http_seconds = r.histogram(
-            "textsieve_http_request_seconds", "Time to answer an HTTP request.", ("route",), SECONDS_BUCKETS
+        self.http_seconds = Histogram(
+            "textsieve_http_request_seconds",
+            "Time to answer an HTTP request.",
+            ("route",),
+            buckets=SECONDS_BUCKETS,
+            registry=r,
         )
-        self.predict_requests = r.counter("textsieve_predict_requests_total", "Prediction requests answered.", mv)
-        self.texts = r.counter("textsieve_texts_total", "Texts scored.", mv)
-        self.tokens = r.counter("textsieve_tokens_total", "Tokens scored (after truncation).", mv)
-        self.unknown = r.counter("textsieve_unknown_tokens_total", "Scored tokens outside the vocabulary.", mv)
-        self.truncated = r.counter("textsieve_truncated_texts_total", "Texts cut to the model's max_length.", mv)
-        self.batch_texts = r.histogram("textsieve_batch_texts", "Texts per onnxruntime batch.", mv, SIZE_BUCKETS)
-        self.queue_wait = r.histogram(
+        self.predict_requests = Counter(
+            "textsieve_predict_requests_total", "Prediction requests answered.", mv, registry=r
+        )
+        self.texts = Counter("textsieve_texts_total", "Texts scored.", mv, registry=r)
+        self.tokens = Counter("textsieve_tokens_total", "Tokens scored (after truncation).", mv, registry=r)
+        self.unknown = Counter(
+            "textsieve_unknown_tokens_total", "Scored tokens outside the vocabulary.", mv, registry=r
+        )
+        self.truncated = Counter(
+            "textsieve_truncated_texts_total", "Texts cut to the model's max_length.", mv, registry=r
+        )
+        self.batch_texts = Histogram(
+            "textsieve_batch_texts", "Texts per onnxruntime batch.", mv, buckets=SIZE_BUCKETS, registry=r
+        )
+        self.queue_wait = CountedHistogram(
             "textsieve_queue_wait_seconds", "Time a text waited before its batch started.", mv, SECONDS_BUCKETS
         )
-        self.inference = r.histogram(
-            "textsieve_inference_seconds", "Time to encode, run and explain one batch.", mv, SECONDS_BUCKETS
+        r.register(self.queue_wait)
+        self.inference = Histogram(
+            "textsieve_inference_seconds",
+            "Time to encode, run and explain one batch.",
+            mv,
+            buckets=SECONDS_BUCKETS,
+            registry=r,
         )
-        self.served = r.gauge("textsieve_served_version", "Version answering unpinned requests, per model.", ("model",))
-        self.ready = r.gauge("textsieve_ready", "1 when every served model is loaded and warmed.")
-        self.swaps = r.counter("textsieve_swaps_total", "Version changes of a served model.", ("model", "outcome"))
+        self.served = Gauge(
+            "textsieve_served_version", "Version answering unpinned requests, per model.", ("model",), registry=r
+        )
+        self.served_info = Info(
+            "textsieve_served_model",
+            "The version answering unpinned requests, per model, and its manifest's sha256.",
+            ("model",),
+            registry=r,
+        )
+        self.ready = Gauge("textsieve_ready", "1 when every served model is loaded and warmed.", registry=r)
+        self.swaps = Counter(
+            "textsieve_swaps_total", "Version changes of a served model.", ("model", "outcome"), registry=r
+        )
+        self.worker_processes = WorkerProcessCollector()
+        r.register(self.worker_processes)
+        ProcessCollector(registry=r)  # the server process's own process_* series
+        self._versions: dict[tuple[str, int], VersionMetrics] = {}
+        self._http: dict[tuple[str, str, int], tuple[Counter, Histogram]] = {}
+        self._exposed = _WithoutCreated(r)
 
-    def render(self) -> str:
-        return self.registry.render()
+    def for_version(self, model: str, version: int) -> VersionMetrics:
+        """The children of one served version (cached: each is resolved once)."""
+        found = self._versions.get((model, version))
+        if found is None:
+            v = (model, str(version))
+            found = VersionMetrics(
+                requests=self.predict_requests.labels(*v),
+                texts=self.texts.labels(*v),
+                tokens=self.tokens.labels(*v),
+                unknown=self.unknown.labels(*v),
+                truncated=self.truncated.labels(*v),
+                batch_texts=self.batch_texts.labels(*v),
+                inference=self.inference.labels(*v),
+                queue_wait=self.queue_wait.labels(*v),
+            )
+            found = self._versions.setdefault((model, version), found)
+        return found
+
+    def answered(self, method: str, route: str, status: int, seconds: float) -> None:
+        """Count one HTTP request (route is the matched path template, so the keys stay few)."""
+        key = (method, route, status)
+        pair = self._http.get(key)
+        if pair is None:
+            pair = self._http.setdefault(
+                key, (self.http_requests.labels(method, route, str(status)), self.http_seconds.labels(route))
+            )
+        pair[0].inc()
+        pair[1].observe(seconds)
+
+    def now_serving(self, model: str, version: int, manifest_sha256: str | None) -> None:
+        """A model's unpinned version changed (at startup or on a swap)."""
+        self.served.labels(model).set(version)
+        info = {"version": str(version)} | ({"manifest_sha256": manifest_sha256} if manifest_sha256 else {})
+        self.served_info.labels(model).info(info)
+
+    def watch_workers(self, pids: WorkerPids | None) -> None:
+        """Report these worker processes when scraped (None: there are none, e.g. threads mode)."""
+        self.worker_processes.pids = pids
+
+    def render(self) -> bytes:
+        return generate_latest(self._exposed)
 
 
-__all__ = ["CONTENT_TYPE", "Counter", "Gauge", "Histogram", "Registry", "ServiceMetrics"]
+__all__ = ["CONTENT_TYPE", "CountedHistogram", "ServiceMetrics", "VersionMetrics", "WorkerProcessCollector"]

@@ -114,10 +114,9 @@ class Batcher:
     ) -> None:
         self.served = served
         self.pool = pool
-        self.metrics = metrics
         self.max_texts = max_texts
         self.wait = wait_ms / 1000.0
-        self._labels = (served.name, str(served.version))
+        self.metrics = metrics.for_version(served.name, served.version)  # children resolved once, not per batch
         self._queue: deque[_Job] = deque()
         self._wakeup = asyncio.Event()
         self._task: asyncio.Task[None] | None = None
@@ -216,16 +215,15 @@ class Batcher:
                     p.job.future.set_exception(exc)
             return
         done = fut.result()
-        m, labels = self.metrics, self._labels
-        m.batch_texts.observe(labels, len(done.results))
-        m.inference.observe(labels, done.seconds)
-        m.texts.inc(labels, len(done.results))
-        m.tokens.inc(labels, done.tokens)
-        m.unknown.inc(labels, done.unknown)
-        m.truncated.inc(labels, done.truncated)
-        m.queue_wait.observe_many(
-            labels, [done.started - p.job.enqueued for p in pieces], [p.hi - p.lo for p in pieces]
-        )
+        m = self.metrics
+        m.batch_texts.observe(len(done.results))
+        m.inference.observe(done.seconds)
+        m.texts.inc(len(done.results))
+        m.tokens.inc(done.tokens)
+        m.unknown.inc(done.unknown)
+        m.truncated.inc(done.truncated)
+        for p in pieces:  # every text of a piece waited as long as its request
+            m.queue_wait.observe(done.started - p.job.enqueued, p.hi - p.lo)
         at = 0
         for p in pieces:
             job = p.job

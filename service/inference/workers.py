@@ -336,7 +336,16 @@ class WorkerProcesses:
         return all(key in w.loaded for w in self.workers)
 
     def pids(self) -> list[int]:
-        return [int(w.proc.pid) for w in self.workers if w.proc is not None]
+        return [pid for _, pid in self.processes()]
+
+    def processes(self) -> list[tuple[int, int]]:
+        """(index, pid) of each running worker process (the metrics page reads their /proc)."""
+        out = []
+        for w in self.workers:
+            proc = w.proc  # read once: a replacement may swap it meanwhile
+            if proc is not None and proc.pid is not None:
+                out.append((w.index, int(proc.pid)))
+        return out
 
     def shutdown(self) -> None:
         for w in self.workers:

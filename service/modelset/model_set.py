@@ -142,7 +142,7 @@ class ModelSet:
         return notes
 
     def _update_ready(self) -> None:
-        self.metrics.ready.set((), 1.0 if self.readiness()[0] else 0.0)
+        self.metrics.ready.set(1.0 if self.readiness()[0] else 0.0)
 
     def describe(self) -> dict[str, object]:
         out: dict[str, object] = {}
@@ -235,15 +235,15 @@ class ModelSet:
                     status.state = "failed"
                 status.failed_version = version
                 status.detail = f"version {version} could not be loaded: {exc.message}"
-                self.metrics.swaps.inc((name, "failed"))
+                self.metrics.swaps.labels(name, "failed").inc()
                 log.error("model %s: loading version %s failed (%s): %s", name, version, why, exc.message)
                 self._update_ready()
                 return current
             # The switch: one assignment on the event loop thread.
             self.live[name] = new
             status.state, status.detail, status.failures, status.failed_version = "ready", "", 0, None
-            self.metrics.served.set((name,), version)
-            self.metrics.swaps.inc((name, "startup" if current is None else "swapped"))
+            self.metrics.now_serving(name, version, new.manifest_sha256)
+            self.metrics.swaps.labels(name, "startup" if current is None else "swapped").inc()
             log.info("model %s: now serving version %s (%s, loaded in %.2fs)", name, version, why, new.load_seconds)
             if current is not None:
                 self._retire(current)

@@ -65,8 +65,7 @@ class AccessMiddleware:
         finally:
             seconds = time.perf_counter() - started
             route = _route(scope)
-            self.metrics.http_requests.inc((scope["method"], route, str(status)))
-            self.metrics.http_seconds.observe((route,), seconds)
+            self.metrics.answered(scope["method"], route, status, seconds)
             if self.enabled:
                 fields: dict[str, Any] = {
                     "event": "request",

@@ -32,6 +32,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     @contextlib.asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         pool = InferencePool(settings.workers, settings.inference)
+        metrics.watch_workers(pool.procs.processes if pool.procs is not None else None)
         store = RegistryThread(settings.registry, settings.blobs)
         models = ModelSet(settings, store, pool, metrics)
         app.state.store, app.state.pool, app.state.models = store, pool, models
@@ -44,6 +45,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                 await starting
             await models.stop()
             await asyncio.to_thread(pool.shutdown)
+            metrics.watch_workers(None)
 
     app = FastAPI(
         title="textsieve",

@@ -74,7 +74,7 @@ async def predict(
         models.release(served)
     state = request.state
     state.model, state.version, state.texts = served.name, served.version, len(body.texts)
-    metrics.predict_requests.inc((served.name, str(served.version)))
+    metrics.for_version(served.name, served.version).requests.inc()
     payload = {"model": served.name, "version": served.version, "results": results}
     return Response(
         orjson.dumps(payload),

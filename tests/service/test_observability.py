@@ -3,22 +3,55 @@
 The format rules checked here are those of the Prometheus documentation, "Exposition formats"
 (text format 0.0.4): HELP/TYPE lines before a family's samples, label values escaped with
 backslashes, histogram buckets cumulative in ``le`` and ending at ``+Inf`` equal to ``_count``.
+Each page is read twice: by the strict parser below, and by prometheus_client's own parser
+(``text_string_to_metric_families``), a reader written outside this project.
 """
 
 from __future__ import annotations
 
+import asyncio
 import json
 import logging
 import math
+import os
 import re
+import time
 from collections import defaultdict
 from pathlib import Path
 
 import pytest
+from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
+from prometheus_client.parser import text_string_to_metric_families
 
 from tests.helpers.service import MODEL, serving, settings_for
+from textsieve.registry import open_registry
 from textsieve.service.logs import JsonFormatter
-from textsieve.service.telemetry import Registry
+from textsieve.service.telemetry import CountedHistogram, ServiceMetrics
+
+# Every series name the service exposes besides the library's process_* ones: the contract
+# dashboards are built on (README "Metrics"). A rename here is a breaking change.
+EXPOSED = {
+    "textsieve_http_requests_total",
+    *(
+        f"textsieve_{h}_{s}"
+        for h in ("http_request_seconds", "batch_texts", "queue_wait_seconds", "inference_seconds")
+        for s in ("bucket", "sum", "count")
+    ),
+    "textsieve_predict_requests_total",
+    "textsieve_texts_total",
+    "textsieve_tokens_total",
+    "textsieve_unknown_tokens_total",
+    "textsieve_truncated_texts_total",
+    "textsieve_served_version",
+    "textsieve_served_model_info",
+    "textsieve_ready",
+    "textsieve_swaps_total",
+    "textsieve_worker_resident_memory_bytes",
+    "textsieve_worker_shared_memory_bytes",
+    "textsieve_worker_cpu_seconds_total",
+    "textsieve_worker_start_time_seconds",
+}
+Samples = dict[tuple[str, tuple[tuple[str, str], ...]], float]
 
 pytestmark = pytest.mark.anyio
 
@@ -54,7 +87,7 @@ def parse(text: str) -> tuple[dict[str, str], dict[tuple[str, tuple[tuple[str, s
     return types, samples
 
 
-def check_histograms(types: dict[str, str], samples: dict) -> int:  # type: ignore[type-arg]
+def check_histograms(types: dict[str, str], samples: Samples) -> int:
     checked = 0
     for family, kind in types.items():
         if kind != "histogram":
@@ -76,6 +109,20 @@ def check_histograms(types: dict[str, str], samples: dict) -> int:  # type: igno
     return checked
 
 
+def outside(text: str) -> Samples:
+    """Every sample as prometheus_client's parser reads it (label values unescaped)."""
+    return {
+        (s.name, tuple(sorted(s.labels.items()))): s.value
+        for family in text_string_to_metric_families(text)
+        for s in family.samples
+    }
+
+
+def manifest_sha256(registry: Path, version: int) -> str:
+    with open_registry(registry) as reg:
+        return str(reg.version(MODEL, version).manifest_sha256)
+
+
 async def test_metrics_count_what_was_served(shared_registry: Path) -> None:
     texts = ["charged twice qzxv", "login fails wbbt plonk", "great " * 400, "ok"]
     async with serving(settings_for(shared_registry)) as (_, client):
@@ -84,6 +131,8 @@ async def test_metrics_count_what_was_served(shared_registry: Path) -> None:
         r = await client.get("/metrics")
     assert r.headers["content-type"] == "text/plain; version=0.0.4; charset=utf-8"
     types, samples = parse(r.text)
+    assert outside(r.text) == samples  # two independent readers agree on every sample
+    assert {name for name, _ in samples if not name.startswith("process_")} == EXPOSED
     assert check_histograms(types, samples) >= 4
     mv = (("model", MODEL), ("version", "1"))
     assert samples[("textsieve_texts_total", mv)] == len(texts)
@@ -93,26 +142,134 @@ async def test_metrics_count_what_was_served(shared_registry: Path) -> None:
     assert samples[("textsieve_queue_wait_seconds_count", mv)] == len(texts)  # one observation per text
     assert samples[("textsieve_batch_texts_sum", mv)] == len(texts)
     assert samples[("textsieve_served_version", (("model", MODEL),))] == 1
+    info = (("manifest_sha256", manifest_sha256(shared_registry, 1)), *mv)
+    assert samples[("textsieve_served_model_info", info)] == 1
     assert samples[("textsieve_ready", ())] == 1
     key = (("method", "POST"), ("route", "/v1/predict"), ("status", "422"))
     assert samples[("textsieve_http_requests_total", key)] == 1
+    assert samples[("process_resident_memory_bytes", ())] > 0  # the server process's own
+    assert samples[("process_cpu_seconds_total", ())] > 0
 
 
-def test_label_values_are_escaped() -> None:
-    reg = Registry()
-    c = reg.counter("x_total", "help with \\ and\nnewline", ("what",))
-    c.inc(('a "quoted" \\ back\nslash',), 2)
-    h = reg.histogram("y_seconds", "h", (), (0.1, 1.0))
-    h.observe_many((), [0.05, 0.1, 0.5, 3.0])
-    text = reg.render()
-    assert 'x_total{what="a \\"quoted\\" \\\\ back\\nslash"} 2' in text
+def test_label_values_and_help_are_escaped() -> None:
+    metrics = ServiceMetrics()
+    weird = 'a "quoted" \\ back\nslash'
+    metrics.swaps.labels(weird, "failed").inc(2)
+    c = Counter("x_total", "help with \\ and\nnewline", ("what",), registry=metrics.registry)
+    c.labels("a").inc()
+    text = metrics.render().decode()
+    assert 'textsieve_swaps_total{model="a \\"quoted\\" \\\\ back\\nslash",outcome="failed"} 2.0' in text
     assert "# HELP x_total help with \\\\ and\\nnewline" in text
-    types, samples = parse(text)
-    assert samples[("y_seconds_bucket", (("le", "0.1"),))] == 2  # "le" is inclusive
-    assert samples[("y_seconds_bucket", (("le", "+Inf"),))] == 4
-    assert samples[("y_seconds_sum", ())] == pytest.approx(3.65)
+    parse(text)
+    assert outside(text)[("textsieve_swaps_total", (("model", weird), ("outcome", "failed")))] == 2
     with pytest.raises(ValueError):
-        c.inc(("a",), -1)
+        c.labels("a").inc(-1)
+
+
+def test_counted_histogram_equals_the_library_histogram_observed_one_by_one() -> None:
+    counted = CountedHistogram("y_seconds", "h", ("what",), (0.1, 1.0))
+    reference = CollectorRegistry()  # prometheus_client's own Histogram is the reference
+    one_by_one = Histogram("y_seconds", "h", ("what",), buckets=(0.1, 1.0), registry=reference)
+    for value in (0.05, 0.1, 0.5, 3.0):
+        counted.labels("a").observe(value)
+    registry = CollectorRegistry()
+    registry.register(counted)
+    first = outside(generate_latest(registry).decode())
+    a = (("what", "a"),)
+    assert first[("y_seconds_bucket", (("le", "0.1"), *a))] == 2  # "le" is inclusive
+    assert first[("y_seconds_bucket", (("le", "+Inf"), *a))] == 4
+    assert first[("y_seconds_sum", a)] == pytest.approx(3.65)
+    for value, times in ((0.2, 3), (0.1, 0), (7.5, 2)):
+        counted.labels("b").observe(value, times)
+    for what, value, times in (
+        ("a", 0.05, 1),
+        ("a", 0.1, 1),
+        ("a", 0.5, 1),
+        ("a", 3.0, 1),
+        ("b", 0.2, 3),
+        ("b", 7.5, 2),
+    ):
+        for _ in range(times):
+            one_by_one.labels(what).observe(value)
+    ours = outside(generate_latest(registry).decode())
+    theirs = {k: v for k, v in outside(generate_latest(reference).decode()).items() if "_created" not in k[0]}
+    assert ours.keys() == theirs.keys()  # same series, same "le" spellings
+    assert all(ours[k] == pytest.approx(theirs[k]) for k in ours)
+    with pytest.raises(ValueError):
+        counted.labels("a").observe(0.1, -1)
+
+
+def _vmrss_bytes(pid: int) -> float:
+    status = Path(f"/proc/{pid}/status").read_text()
+    kb = re.search(r"^VmRSS:\s+(\d+) kB$", status, re.MULTILINE)
+    assert kb, status
+    return int(kb.group(1)) * 1024.0
+
+
+def _schedstat_seconds(pid: int) -> float:
+    return int(Path(f"/proc/{pid}/schedstat").read_text().split()[0]) / 1e9
+
+
+@pytest.mark.skipif(not Path("/proc/self/schedstat").exists(), reason="needs Linux /proc with schedstat")
+async def test_each_worker_process_reports_memory_and_cpu(shared_registry: Path) -> None:
+    started = time.time()
+    async with serving(settings_for(shared_registry, inference="processes", workers=2)) as (app, client):
+        assert (await client.post("/v1/predict", json={"texts": ["charged twice"] * 50})).status_code == 200
+        text = (await client.get("/metrics")).text
+        pids = dict(app.state.pool.procs.processes())
+        # proc(5): status's VmRSS and schedstat's run time are the kernel's other reports of the
+        # same figures (stat's utime + stime are scaled to the scheduler's run time, in ticks).
+        rss = {i: _vmrss_bytes(pid) for i, pid in pids.items()}
+        ran = {i: _schedstat_seconds(pid) for i, pid in pids.items()}
+    parse(text)
+    samples = outside(text)
+    assert sorted(pids) == [0, 1] and os.getpid() not in pids.values()
+    for i in pids:
+        w = (("worker", str(i)),)
+        resident = samples[("textsieve_worker_resident_memory_bytes", w)]
+        assert resident == pytest.approx(rss[i], rel=0.05)  # idle workers: no change between the reads
+        assert 0 < samples[("textsieve_worker_shared_memory_bytes", w)] <= resident
+        cpu = samples[("textsieve_worker_cpu_seconds_total", w)]
+        assert cpu > 0  # each worker loaded and warmed the version itself
+        assert cpu == pytest.approx(ran[i], abs=0.05)
+        assert started - 2 <= samples[("textsieve_worker_start_time_seconds", w)] <= time.time() + 1
+    assert {labels for name, labels in samples if name == "textsieve_worker_cpu_seconds_total"} == {
+        (("worker", "0"),),
+        (("worker", "1"),),
+    }
+
+    async with serving(settings_for(shared_registry, inference="threads", workers=2)) as (_, client):
+        threads = outside((await client.get("/metrics")).text)
+    assert not [name for name, _ in threads if name.startswith("textsieve_worker_")]  # no worker processes
+
+
+async def test_served_model_info_follows_a_swap(registry_dir: Path) -> None:
+    sha = {v: manifest_sha256(registry_dir, v) for v in (1, 2)}
+    assert sha[1] != sha[2]
+
+    def info(samples: Samples) -> dict[tuple[tuple[str, str], ...], float]:
+        return {labels: value for (name, labels), value in samples.items() if name == "textsieve_served_model_info"}
+
+    def served(version: int) -> dict[tuple[tuple[str, str], ...], float]:
+        return {(("manifest_sha256", sha[version]), ("model", MODEL), ("version", str(version))): 1.0}
+
+    def change(call: str, *args: object, **kwargs: object) -> None:
+        with open_registry(registry_dir) as reg:
+            getattr(reg, call)(MODEL, *args, actor="tests", **kwargs)
+
+    async with serving(settings_for(registry_dir, poll_seconds=600, inference="threads")) as (app, client):
+        before = outside((await client.get("/metrics")).text)
+        await asyncio.to_thread(change, "promote", 2, "live", reason="info test", force=True)
+        await app.state.models.refresh(MODEL, why="test")
+        after = outside((await client.get("/metrics")).text)
+        await asyncio.to_thread(change, "rollback", reason="and back")
+        await app.state.models.refresh(MODEL, why="test")
+        back = outside((await client.get("/metrics")).text)
+    assert info(before) == served(1)
+    assert info(after) == served(2)  # the old version's series is gone, not left beside the new one
+    assert info(back) == served(1)
+    assert after[("textsieve_served_version", (("model", MODEL),))] == 2  # the gauge stays beside the info
+    assert back[("textsieve_swaps_total", (("model", MODEL), ("outcome", "swapped")))] == 2
 
 
 async def test_request_ids_and_one_json_log_line_per_request(

@@ -84,7 +84,7 @@ async def test_swap_on_registry_change_without_failed_requests(
         seq = [reply["version"] for w, _, reply in replies if w == worker]
         changes = sum(1 for a, b in zip(seq, seq[1:], strict=False) if a != b)
         assert changes <= 2
-    assert f'textsieve_swaps_total{{model="{MODEL}",outcome="swapped"}} 2' in metrics
+    assert f'textsieve_swaps_total{{model="{MODEL}",outcome="swapped"}} 2.0\n' in metrics
 
 
 async def test_in_flight_requests_finish_on_the_version_they_started_with(registry_dir: Path) -> None:
@@ -194,4 +194,4 @@ async def test_damaged_blob_fails_startup_and_a_failed_swap_keeps_the_old_versio
     assert ready.status_code == 200
     assert "version 2 could not be loaded" in ready.json()["models"][MODEL]["detail"]
     assert predict["version"] == 1
-    assert f'textsieve_swaps_total{{model="{MODEL}",outcome="failed"}} 1' in metrics
+    assert f'textsieve_swaps_total{{model="{MODEL}",outcome="failed"}} 1.0\n' in metrics
