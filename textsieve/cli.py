@@ -10,6 +10,7 @@ from pathlib import Path
 
 from textsieve import __version__
 from textsieve.errors import TextsieveError
+from textsieve.exporter import cli as exporter_cli
 
 DEFAULT_REGISTRY = "./textsieve-registry"
 
@@ -58,43 +59,7 @@ def build_parser() -> argparse.ArgumentParser:
     _registry_arg(p)
     p.set_defaults(func=_lazy("textsieve.demo", "run_demo"))
 
-    p = sub.add_parser("train", help="train a convolutional text classifier")
-    p.add_argument("data", type=Path, help="labelled JSONL or CSV file")
-    p.add_argument("--out", type=Path, required=True, help="run folder to write")
-    p.add_argument("--valid", type=Path, help="validation file (default: a seeded 10 %% split of DATA)")
-    p.add_argument("--text-field", default="text")
-    p.add_argument("--label-field", default="label")
-    p.add_argument("--vectors", type=Path, help="pretrained vectors, GloVe/word2vec text format")
-    p.add_argument("--vectors-mode", choices=["static", "non-static"], default="non-static")
-    p.add_argument("--embedding-dim", type=int, default=128, help="without --vectors")
-    p.add_argument("--widths", default="3,4,5", help="filter widths, comma separated (Kim, 2014)")
-    p.add_argument("--maps", type=int, default=100, help="feature maps per width (Kim, 2014)")
-    p.add_argument("--dropout", type=float, default=0.5)
-    p.add_argument("--max-norm", type=float, default=3.0)
-    p.add_argument("--batch-size", type=int, default=50)
-    p.add_argument("--epochs", type=int, default=20, help="upper bound; early stopping on validation")
-    p.add_argument("--patience", type=int, default=3)
-    p.add_argument("--learning-rate", type=float, default=1e-3)
-    p.add_argument("--min-count", type=int, default=1)
-    p.add_argument("--max-vocab", type=int, default=50000)
-    p.add_argument("--length-percentile", type=float, default=99.0)
-    p.add_argument("--seed", type=int, default=13)
-    p.add_argument("--quiet", action="store_true", help="no progress bar")
-    p.set_defaults(func=_lazy("textsieve.exporter.train", "cli_train"))
-
-    p = sub.add_parser("export", help="export a run to a parity-checked ONNX bundle")
-    p.add_argument("run", type=Path)
-    p.add_argument("--out", type=Path, required=True)
-    p.add_argument("--tolerance", type=float, default=1e-4, help="max |Δprobability| torch vs ONNX")
-    p.add_argument("--test", type=Path, help="held-out file for the manifest's metrics (default: validation)")
-    p.add_argument(
-        "--layout",
-        choices=("auto", "tap-tables", "convolution"),
-        default="auto",
-        help="how the graph computes the convolution: precomputed per-word tap tables "
-        "(fast; auto picks it when they fit in 256 MiB) or Conv over embeddings",
-    )
-    p.set_defaults(func=_lazy("textsieve.exporter.export", "cli_export"))
+    exporter_cli.register(sub)
 
     p = sub.add_parser("publish", help="store a bundle as the next version of a model")
     p.add_argument("bundle", type=Path)
