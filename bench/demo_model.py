@@ -19,7 +19,7 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parent.parent
 CACHE = ROOT / "bench" / ".cache"
 MODEL_NAME = "helpdesk"
-EXPECTED = {"embedding_dim": 128, "widths": [3, 4, 5], "maps": 100}
+EXPECTED = (128, [3, 4, 5], 100)  # embedding_dim, widths, maps
 # Speed depends on the architecture, not the weights; 3 epochs already reach ~100% validation
 # accuracy on the demo data and keep a fresh clone's `make bench` within its time budget.
 EPOCHS = 3
@@ -34,12 +34,16 @@ class DemoModel:
 
 
 def _architecture_ok(run: Path, bundle: Path) -> bool:
+    from textsieve.errors import InputError
+    from textsieve.exporter.run_folder import read_run_info
+    from textsieve.registry.manifest import MANIFEST, Manifest
+
     try:
-        arch = json.loads((run / "run.json").read_text())["architecture"]
-        manifest = json.loads((bundle / "manifest.json").read_text())
-    except (OSError, ValueError, KeyError):
+        arch = read_run_info(run).architecture
+        manifest = Manifest.model_validate_json((bundle / MANIFEST).read_bytes())
+    except (OSError, ValueError, InputError):  # pydantic's ValidationError is a ValueError
         return False
-    return all(arch.get(k) == v for k, v in EXPECTED.items()) and manifest.get("architecture") == arch
+    return (arch.embedding_dim, arch.widths, arch.maps) == EXPECTED and manifest.architecture == arch
 
 
 def _layout(bundle: Path) -> str | None:

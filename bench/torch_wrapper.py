@@ -21,7 +21,7 @@ import uvicorn
 from fastapi import FastAPI
 from pydantic import BaseModel
 
-from textsieve.exporter.train import load_run
+from textsieve.exporter.run_folder import load_run
 from textsieve.registry.tokenizer import Tokenizer
 
 
@@ -33,9 +33,9 @@ class PredictIn(BaseModel):
 def build_app(run_dir: Path, temperature: float = 1.0) -> FastAPI:
     model, vocab, run = load_run(run_dir)
     model.eval()
-    labels = run["labels"]
-    max_length = run["lengths"]["max_length"]
-    min_length = run["lengths"]["min_length"]
+    labels = run.labels
+    max_length = run.lengths.max_length
+    min_length = run.lengths.min_length
     tokenizer = Tokenizer()
     app = FastAPI()
 

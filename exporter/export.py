@@ -1,18 +1,23 @@
-"""``textsieve export``: a trained run → a parity-checked, calibrated ONNX bundle."""
+"""``textsieve export``: a trained run → a parity-checked, calibrated ONNX bundle.
+
+read the run → write the graph → PyTorch reference → calibrate → parity check
+→ held-out metrics → card and manifest; all in a temporary folder renamed into place at the end
+"""
 
 from __future__ import annotations
 
-import argparse
 import datetime as dt
-import sys
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 
 from textsieve import __version__
 from textsieve.errors import InputError, ParityError
+from textsieve.exporter.run_folder import VALID_JSONL, LoadedRun, RunInfo, load_run
 from textsieve.files import atomic_directory, atomic_write_text, sha256_file
+from textsieve.labelled import Example, load_examples
 from textsieve.registry import measures
 from textsieve.registry.bundle import check_graph, manifest_json
 from textsieve.registry.manifest import (
@@ -22,10 +27,15 @@ from textsieve.registry.manifest import (
     MODEL_FILE,
     OUTPUTS,
     VOCAB_FILE,
+    CalibrationInfo,
     Manifest,
+    Metrics,
+    OnnxInfo,
+    ParityReport,
     TensorInfo,
+    VocabularyInfo,
 )
-from textsieve.registry.runtime import Encoded, Predictor
+from textsieve.registry.runtime import Encoded, Outputs, Predictor
 from textsieve.registry.tokenizer import Tokenizer, Vocabulary
 
 OPSET = 18  # the lowest opset torch's dynamo exporter writes
@@ -36,15 +46,18 @@ LAYOUTS = ("auto", "tap-tables", "convolution")
 TAP_TABLE_BUDGET = 256 * 2**20  # bytes; "auto" falls back to convolution above this
 
 
-def choose_layout(model: Any, requested: str = "auto") -> str:
+GraphLayout = Literal["tap-tables", "convolution"]
+
+
+def choose_layout(model: Any, requested: str = "auto") -> GraphLayout:
     """``tap-tables`` unless asked otherwise or its tables would exceed :data:`TAP_TABLE_BUDGET`."""
     from textsieve.exporter.model import tap_table_bytes
 
     if requested not in LAYOUTS:
         raise InputError(f"unknown layout {requested!r}; allowed: {', '.join(LAYOUTS)}")
-    if requested != "auto":
-        return requested
-    return "tap-tables" if tap_table_bytes(model) <= TAP_TABLE_BUDGET else "convolution"
+    if requested == "tap-tables" or (requested == "auto" and tap_table_bytes(model) <= TAP_TABLE_BUDGET):
+        return "tap-tables"
+    return "convolution"
 
 
 def export_onnx(model: Any, path: Path, min_length: int, layout: str = "tap-tables") -> None:
@@ -101,20 +114,16 @@ def torch_logits(model: Any, encoded: list[Encoded], width: int, batch_size: int
     return np.concatenate(logits).astype(np.float64), np.concatenate(positions)
 
 
-def _predictor(model_path: Path, run: dict[str, Any], vocab: Vocabulary, temperature: float = 1.0) -> Predictor:
-    from textsieve.registry.manifest import ArchitectureInfo
-    from textsieve.registry.tokenizer import TokenizerSpec
-
-    arch = ArchitectureInfo.model_validate(run["architecture"])
+def _predictor(model_path: Path, info: RunInfo, vocab: Vocabulary, temperature: float = 1.0) -> Predictor:
     return Predictor(
         model_path,
-        labels=run["labels"],
+        labels=info.labels,
         temperature=temperature,
-        tokenizer=Tokenizer(TokenizerSpec.model_validate(run["tokenizer"])),
+        tokenizer=Tokenizer(info.tokenizer),
         vocab=vocab,
-        max_length=run["lengths"]["max_length"],
-        min_length=run["lengths"]["min_length"],
-        filter_widths=arch.filter_widths(),
+        max_length=info.lengths.max_length,
+        min_length=info.lengths.min_length,
+        filter_widths=info.architecture.filter_widths(),
     )
 
 
@@ -127,158 +136,206 @@ def export(
     layout: str = "auto",
     log: Any = print,
 ) -> Manifest:
-    from textsieve.exporter.train import load_run
-    from textsieve.labelled import load_examples
-
-    model, vocab, run = load_run(run_dir)
-    model.eval()
-    labels: list[str] = run["labels"]
-    label_index = {name: i for i, name in enumerate(labels)}
-    valid = load_examples(Path(run_dir) / "valid.jsonl")
-    if test is not None:
-        held_out = load_examples(test, run["training"]["text_field"], run["training"]["label_field"])
-        unseen = sorted({e.label for e in held_out} - set(labels))
-        if unseen:
-            raise InputError(
-                f"{test}: labels not known to the model: {', '.join(unseen)}; allowed: {', '.join(labels)}"
-            )
-    else:
-        held_out = valid
-    if out.exists() and not (out / MANIFEST).is_file() and any(out.iterdir()):
-        raise InputError(f"{out}: exists and is not a bundle; choose an empty or new folder")
-
-    layout = choose_layout(model, layout)
+    """Write ``out``, a bundle of ``run_dir``'s model; nothing is written when parity fails."""
+    if not tolerance > 0:  # 0, negative or NaN: no graph could pass, so it is a mistyped flag
+        raise InputError(f"--tolerance {tolerance}: must be a positive number, e.g. 1e-4")
+    sources = read_sources(run_dir, test)
+    _check_out(out)
+    run = sources.run
+    chosen = choose_layout(run.model, layout)
     with atomic_directory(out, replace=True) as tmp:
-        log(f"exporting to ONNX ({layout} layout) …")
-        export_onnx(model, tmp / MODEL_FILE, run["lengths"]["min_length"], layout)
-        atomic_write_text(tmp / VOCAB_FILE, vocab.dumps())
-        ort = _predictor(tmp / MODEL_FILE, run, vocab)
-        enc_valid = [ort.encode(e.text) for e in valid]
-        targets = np.array([label_index[e.label] for e in valid], dtype=np.int64)
-
-        # Calibration on validation (Guo et al., 2017): T minimises NLL of softmax(z / T).
+        log(f"exporting to ONNX ({chosen} layout) …")
+        ort = write_graph(tmp, run, chosen)
+        valid = [ort.encode(e.text) for e in sources.valid]
+        targets = _targets(sources.valid, run.info.labels)
         log(f"checking parity and calibrating on {len(valid)} validation texts …")
-        ref_logits, ref_pos = torch_logits(model, enc_valid, run["lengths"]["max_length"])
-        temperature = measures.fit_temperature(ref_logits, targets)
-        p_before = measures.softmax(ref_logits)
-        ref_probs = measures.softmax(ref_logits, temperature)
-        calibration = {
-            "temperature": temperature,
-            "texts": len(valid),
-            "nll_before": measures.nll(ref_logits, targets),
-            "nll_after": measures.nll(ref_logits, targets, temperature),
-            "ece_before": measures.expected_calibration_error(p_before, targets),
-            "ece_after": measures.expected_calibration_error(ref_probs, targets),
-        }
-
-        # Parity: onnxruntime on length-sorted batches padded to their own longest, against
-        # PyTorch on file-order batches padded to max_length.
-        ort.temperature = temperature
-        got = ort.run(enc_valid)
-        probs = ort.probabilities(got.logits)
-        alone_diff = 0.0
-        for e, row in zip(enc_valid[:INVARIANCE_TEXTS], range(INVARIANCE_TEXTS), strict=False):
-            single = ort.run([e])
-            alone_diff = max(alone_diff, float(np.abs(ort.probabilities(single.logits)[0] - probs[row]).max()))
-        max_diff = float(np.abs(probs - ref_probs).max())
-        label_agree = float((probs.argmax(1) == ref_probs.argmax(1)).mean())
-        pos_agree = float((got.positions == ref_pos).mean())
-        parity = {
-            "texts": len(valid),
-            "max_abs_prob_diff": max_diff,
-            "label_agreement": label_agree,
-            "position_agreement": pos_agree,
-            "batch_invariance_max_diff": alone_diff,
-            "tolerance": tolerance,
-            "passed": bool(max_diff <= tolerance and label_agree == 1.0 and alone_diff <= tolerance),
-        }
+        ref_logits, ref_positions = torch_logits(run.model, valid, run.info.lengths.max_length)
+        calibration = calibrate(ref_logits, targets)
+        ort.temperature = calibration.temperature
+        parity, got = check_parity(ort, valid, ref_logits, ref_positions, tolerance)
         _print_parity(parity, calibration, log)
-        if not parity["passed"]:
-            raise ParityError(
-                f"parity check failed: max |Δprobability| {max_diff:.2e} (tolerance {tolerance:.0e}), "
-                f"label agreement {label_agree:.2%}, alone-vs-batched {alone_diff:.2e}; no bundle written"
-            )
-
-        # Held-out metrics, from the exported graph with calibrated probabilities.
-        enc_held = enc_valid if test is None else [ort.encode(e.text) for e in held_out]
-        held_targets = targets if test is None else np.array([label_index[e.label] for e in held_out])
-        held_logits = got.logits if test is None else ort.run(enc_held).logits
-        held_probs = ort.probabilities(held_logits)
-        predicted = held_probs.argmax(1)
-        metric_block = {
-            "split": "validation" if test is None else f"test:{Path(test).name}",
-            "texts": len(held_out),
-            "accuracy": measures.accuracy(held_targets, predicted),
-            "macro_f1": measures.macro_f1(held_targets, predicted, len(labels)),
-            "ece": measures.expected_calibration_error(held_probs, held_targets),
-            "nll": measures.nll(held_logits, held_targets, temperature),
-        }
-
-        draft: dict[str, Any] = {
-            "labels": labels,
-            "tokenizer": run["tokenizer"],
-            "vocabulary": {"size": len(vocab), **{k: v for k, v in run["vocabulary"].items() if k != "size"}},
-            "lengths": run["lengths"],
-            "architecture": run["architecture"],
-            "onnx": {
-                "opset": OPSET,
-                "layout": layout,
-                "inputs": [
-                    TensorInfo(name="token_ids", dtype="int64", shape=["batch", "seq"]),
-                    TensorInfo(name="lengths", dtype="int64", shape=["batch"]),
-                ],
-                "outputs": [
-                    TensorInfo(name="logits", dtype="float32", shape=["batch", len(labels)]),
-                    TensorInfo(name="pooled", dtype="float32", shape=["batch", "filters"]),
-                    TensorInfo(name="positions", dtype="int64", shape=["batch", "filters"]),
-                    TensorInfo(name="contributions", dtype="float32", shape=["batch", "filters", len(labels)]),
-                ],
-            },
-            "calibration": calibration,
-            "parity": parity,
-            "metrics": metric_block,
-            "training": {k: v for k, v in run["training"].items() if k != "history"},
-            "tool_version": __version__,
-            "created_at": dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat(),
-        }
-        placeholder = {MODEL_FILE: "0" * 64, VOCAB_FILE: "0" * 64, CARD_FILE: "0" * 64}
-        from textsieve.exporter.card import render_card
-
-        card = render_card(Manifest.model_validate({**draft, "files": placeholder}))
-        atomic_write_text(tmp / CARD_FILE, card)
-        files = {name: sha256_file(tmp / name) for name in (MODEL_FILE, VOCAB_FILE, CARD_FILE)}
-        manifest = Manifest.model_validate({**draft, "files": files})
-        check_graph(tmp, manifest)
-        atomic_write_text(tmp / MANIFEST, manifest_json(manifest))
+        _require_parity(parity)
+        metrics = held_out_metrics(ort, sources, targets, got.logits)
+        manifest = write_manifest(tmp, describe_bundle(run, chosen, calibration, parity, metrics))
     return manifest
 
 
-def _print_parity(parity: dict[str, Any], cal: dict[str, Any], log: Any) -> None:
+@dataclass(frozen=True)
+class Sources:
+    """What an export reads: the run, its validation rows and the held-out rows for the metrics."""
+
+    run: LoadedRun
+    valid: list[Example]
+    test: Path | None
+    held_out: list[Example]  # the validation rows unless a test file was given
+
+
+def read_sources(run_dir: Path, test: Path | None) -> Sources:
+    run = load_run(run_dir)
+    labels = run.info.labels
+    valid = load_examples(Path(run_dir) / VALID_JSONL)
+    if test is None:
+        return Sources(run, valid, None, valid)
+    held_out = load_examples(test, run.info.training.text_field, run.info.training.label_field)
+    unseen = sorted({e.label for e in held_out} - set(labels))
+    if unseen:
+        raise InputError(f"{test}: labels not known to the model: {', '.join(unseen)}; allowed: {', '.join(labels)}")
+    return Sources(run, valid, Path(test), held_out)
+
+
+def _check_out(out: Path) -> None:
+    if out.exists() and not (out / MANIFEST).is_file() and any(out.iterdir()):
+        raise InputError(f"{out}: exists and is not a bundle; choose an empty or new folder")
+
+
+def _targets(examples: list[Example], labels: list[str]) -> np.ndarray:
+    index = {name: i for i, name in enumerate(labels)}
+    return np.array([index[e.label] for e in examples], dtype=np.int64)
+
+
+def write_graph(folder: Path, run: LoadedRun, layout: GraphLayout) -> Predictor:
+    """model.onnx and vocab.txt into ``folder``; returns onnxruntime on that graph (temperature 1)."""
+    export_onnx(run.model, folder / MODEL_FILE, run.info.lengths.min_length, layout)
+    atomic_write_text(folder / VOCAB_FILE, run.vocabulary.dumps())
+    return _predictor(folder / MODEL_FILE, run.info, run.vocabulary)
+
+
+def calibrate(logits: np.ndarray, targets: np.ndarray) -> CalibrationInfo:
+    """Temperature scaling on validation (Guo et al., 2017): T minimises the NLL of softmax(z / T)."""
+    temperature = measures.fit_temperature(logits, targets)
+    return CalibrationInfo(
+        temperature=temperature,
+        texts=len(targets),
+        nll_before=measures.nll(logits, targets),
+        nll_after=measures.nll(logits, targets, temperature),
+        ece_before=measures.expected_calibration_error(measures.softmax(logits), targets),
+        ece_after=measures.expected_calibration_error(measures.softmax(logits, temperature), targets),
+    )
+
+
+def check_parity(
+    ort: Predictor, encoded: list[Encoded], ref_logits: np.ndarray, ref_positions: np.ndarray, tolerance: float
+) -> tuple[ParityReport, Outputs]:
+    """onnxruntime on length-sorted batches padded to their own longest, against PyTorch on
+    file-order batches padded to max_length; and a text alone against the same text in a batch."""
+    ref_probs = measures.softmax(ref_logits, ort.temperature)
+    got = ort.run(encoded)
+    probs = ort.probabilities(got.logits)
+    alone_diff = 0.0
+    for e, row in zip(encoded[:INVARIANCE_TEXTS], range(INVARIANCE_TEXTS), strict=False):
+        single = ort.run([e])
+        alone_diff = max(alone_diff, float(np.abs(ort.probabilities(single.logits)[0] - probs[row]).max()))
+    max_diff = float(np.abs(probs - ref_probs).max())
+    label_agree = float((probs.argmax(1) == ref_probs.argmax(1)).mean())
+    parity = ParityReport(
+        texts=len(encoded),
+        max_abs_prob_diff=max_diff,
+        label_agreement=label_agree,
+        position_agreement=float((got.positions == ref_positions).mean()),
+        batch_invariance_max_diff=alone_diff,
+        tolerance=tolerance,
+        passed=bool(max_diff <= tolerance and label_agree == 1.0 and alone_diff <= tolerance),
+    )
+    return parity, got
+
+
+def _require_parity(parity: ParityReport) -> None:
+    if not parity.passed:
+        raise ParityError(
+            f"parity check failed: max |Δprobability| {parity.max_abs_prob_diff:.2e} "
+            f"(tolerance {parity.tolerance:.0e}), label agreement {parity.label_agreement:.2%}, "
+            f"alone-vs-batched {parity.batch_invariance_max_diff:.2e}; no bundle written"
+        )
+
+
+def held_out_metrics(ort: Predictor, sources: Sources, valid_targets: np.ndarray, valid_logits: np.ndarray) -> Metrics:
+    """Accuracy, macro-F1, ECE and NLL from the exported graph with calibrated probabilities."""
+    if sources.test is None:
+        split, targets, logits = "validation", valid_targets, valid_logits
+    else:
+        split = f"test:{sources.test.name}"
+        targets = _targets(sources.held_out, sources.run.info.labels)
+        logits = ort.run([ort.encode(e.text) for e in sources.held_out]).logits
+    probs = ort.probabilities(logits)
+    predicted = probs.argmax(1)
+    return Metrics(
+        split=split,
+        texts=len(sources.held_out),
+        accuracy=measures.accuracy(targets, predicted),
+        macro_f1=measures.macro_f1(targets, predicted, len(sources.run.info.labels)),
+        ece=measures.expected_calibration_error(probs, targets),
+        nll=measures.nll(logits, targets, ort.temperature),
+    )
+
+
+_PLACEHOLDER_FILES = {MODEL_FILE: "0" * 64, VOCAB_FILE: "0" * 64, CARD_FILE: "0" * 64}
+
+
+def describe_bundle(
+    run: LoadedRun, layout: GraphLayout, calibration: CalibrationInfo, parity: ParityReport, metrics: Metrics
+) -> Manifest:
+    """The manifest with placeholder file hashes (the card is rendered from it before they are known)."""
+    info, labels = run.info, run.info.labels
+    return Manifest(
+        labels=labels,
+        tokenizer=info.tokenizer,
+        vocabulary=VocabularyInfo(
+            size=len(run.vocabulary), min_count=info.vocabulary.min_count, max_size=info.vocabulary.max_size
+        ),
+        lengths=info.lengths,
+        architecture=info.architecture,
+        onnx=OnnxInfo(
+            opset=OPSET,
+            layout=layout,
+            inputs=[
+                TensorInfo(name="token_ids", dtype="int64", shape=["batch", "seq"]),
+                TensorInfo(name="lengths", dtype="int64", shape=["batch"]),
+            ],
+            outputs=[
+                TensorInfo(name="logits", dtype="float32", shape=["batch", len(labels)]),
+                TensorInfo(name="pooled", dtype="float32", shape=["batch", "filters"]),
+                TensorInfo(name="positions", dtype="int64", shape=["batch", "filters"]),
+                TensorInfo(name="contributions", dtype="float32", shape=["batch", "filters", len(labels)]),
+            ],
+        ),
+        calibration=calibration,
+        parity=parity,
+        metrics=metrics,
+        training=info.training.record(),
+        tool_version=__version__,
+        created_at=dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat(),
+        files=_PLACEHOLDER_FILES,
+    )
+
+
+def write_manifest(folder: Path, draft: Manifest) -> Manifest:
+    """card.md from the draft, then manifest.json with every file's sha256, after the graph's own check."""
+    from textsieve.exporter.card import render_card
+
+    atomic_write_text(folder / CARD_FILE, render_card(draft))
+    files = {name: sha256_file(folder / name) for name in (MODEL_FILE, VOCAB_FILE, CARD_FILE)}
+    manifest = Manifest.model_validate(draft.model_dump() | {"files": files})
+    check_graph(folder, manifest)
+    atomic_write_text(folder / MANIFEST, manifest_json(manifest))
+    return manifest
+
+
+def _print_parity(parity: ParityReport, cal: CalibrationInfo, log: Any) -> None:
     rows = [
-        ("texts compared", f"{parity['texts']}"),
+        ("texts compared", f"{parity.texts}"),
         (
             "max |Δprobability| (torch vs onnxruntime)",
-            f"{parity['max_abs_prob_diff']:.2e}  (tolerance {parity['tolerance']:.0e})",
+            f"{parity.max_abs_prob_diff:.2e}  (tolerance {parity.tolerance:.0e})",
         ),
-        ("label agreement", f"{parity['label_agreement']:.2%}"),
-        ("argmax-position agreement", f"{parity['position_agreement']:.2%}"),
-        ("alone vs batched, max |Δprobability|", f"{parity['batch_invariance_max_diff']:.2e}"),
-        ("temperature", f"{cal['temperature']:.4f}"),
-        ("NLL before → after", f"{cal['nll_before']:.4f} → {cal['nll_after']:.4f}"),
-        ("ECE before → after", f"{cal['ece_before']:.4f} → {cal['ece_after']:.4f}"),
-        ("parity", "PASSED" if parity["passed"] else "FAILED"),
+        ("label agreement", f"{parity.label_agreement:.2%}"),
+        ("argmax-position agreement", f"{parity.position_agreement:.2%}"),
+        ("alone vs batched, max |Δprobability|", f"{parity.batch_invariance_max_diff:.2e}"),
+        ("temperature", f"{cal.temperature:.4f}"),
+        ("NLL before → after", f"{cal.nll_before:.4f} → {cal.nll_after:.4f}"),
+        ("ECE before → after", f"{cal.ece_before:.4f} → {cal.ece_after:.4f}"),
+        ("parity", "PASSED" if parity.passed else "FAILED"),
     ]
     width = max(len(r[0]) for r in rows)
     log("parity report")
     for name, value in rows:
         log(f"  {name:<{width}}  {value}")
-
-
-def cli_export(args: argparse.Namespace) -> int:
-    def log(msg: str) -> None:
-        print(msg, file=sys.stderr if msg.endswith("…") else sys.stdout, flush=True)
-
-    manifest = export(args.run, args.out, tolerance=args.tolerance, test=args.test, layout=args.layout, log=log)
-    m = manifest.metrics
-    print(f"bundle written to {args.out} ({m.split}: accuracy {m.accuracy:.4f}, macro-F1 {m.macro_f1:.4f})")
-    return 0

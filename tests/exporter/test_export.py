@@ -13,7 +13,7 @@ import torch
 from textsieve.cli import main
 from textsieve.errors import ParityError
 from textsieve.exporter.export import export
-from textsieve.exporter.train import load_run
+from textsieve.exporter.run_folder import load_run
 from textsieve.registry.bundle import open_bundle
 from textsieve.registry.manifest import CARD_FILE, MANIFEST, MODEL_FILE, VOCAB_FILE
 from textsieve.registry.measures import nll
@@ -26,10 +26,10 @@ def _torch_probs(run: Path, texts: list[str], temperature: float) -> np.ndarray:
     """Reference: the PyTorch model, each text alone, padded to exactly its own length."""
     model, vocab, meta = load_run(run)
     model.eval()
-    from textsieve.registry.tokenizer import Tokenizer, TokenizerSpec
+    from textsieve.registry.tokenizer import Tokenizer
 
-    tok = Tokenizer(TokenizerSpec.model_validate(meta["tokenizer"]))
-    max_len, min_len = meta["lengths"]["max_length"], meta["lengths"]["min_length"]
+    tok = Tokenizer(meta.tokenizer)
+    max_len, min_len = meta.lengths.max_length, meta.lengths.min_length
     rows = []
     with torch.inference_mode():
         for text in texts:
@@ -143,6 +143,16 @@ def test_export_bad_run_folder_exits_2(tmp_path: Path, capsys: pytest.CaptureFix
     assert main(["export", str(tmp_path / "nope"), "--out", str(tmp_path / "b")]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and err[0].startswith("textsieve: error:")
+
+
+@pytest.mark.parametrize("tolerance", ["0", "-0.5", "nan"])
+def test_a_tolerance_that_nothing_can_meet_is_bad_input(
+    tolerance: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    assert main(["export", str(tmp_path / "run"), "--out", str(tmp_path / "b"), "--tolerance", tolerance]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err == [f"textsieve: error: --tolerance {float(tolerance)}: must be a positive number, e.g. 1e-4"]
+    assert not (tmp_path / "b").exists()
 
 
 def _sentences() -> list[tuple[str, str]]:

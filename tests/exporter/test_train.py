@@ -13,19 +13,20 @@ import torch
 
 from textsieve.cli import build_parser, main
 from textsieve.errors import InputError
-from textsieve.exporter.train import (
+from textsieve.exporter.encode import encode_texts
+from textsieve.exporter.fit import evaluate
+from textsieve.exporter.run_folder import (
     MODEL_PT,
     RUN_JSON,
     VALID_JSONL,
     VOCAB_TXT,
-    TrainConfig,
-    encode_texts,
-    evaluate,
+    RunInfo,
     load_run,
-    train,
+    read_run_info,
 )
+from textsieve.exporter.train import TrainConfig, train
 from textsieve.files import sha256_file
-from textsieve.registry.manifest import ArchitectureInfo, LengthInfo, TrainingInfo, VectorsInfo
+from textsieve.registry.manifest import LengthInfo, TrainingInfo, VectorsInfo
 from textsieve.registry.tokenizer import TokenizerSpec, Vocabulary
 
 # Small enough to train in about a second on 2 cores.
@@ -78,14 +79,22 @@ def test_kim_defaults() -> None:
 def test_run_folder_follows_the_contract(tiny_run: Path, data: Path) -> None:
     assert sorted(p.name for p in tiny_run.iterdir()) == sorted([MODEL_PT, VOCAB_TXT, VALID_JSONL, RUN_JSON])
     assert [p.name for p in tiny_run.parent.iterdir()] == ["run"], "no temp folders left behind"
-    run = json.loads((tiny_run / RUN_JSON).read_text(encoding="utf-8"))
-    assert set(run) == {"labels", "tokenizer", "vocabulary", "lengths", "architecture", "training", "tool_version"}
-    assert run["labels"] == ["billing", "repair"]
-    assert run["tokenizer"] == TokenizerSpec().model_dump()
-    LengthInfo.model_validate(run["lengths"])
-    arch = ArchitectureInfo.model_validate(run["architecture"])
+    text = (tiny_run / RUN_JSON).read_text(encoding="utf-8")
+    on_disk = json.loads(text)
+    assert set(on_disk) == {"labels", "tokenizer", "vocabulary", "lengths", "architecture", "training", "tool_version"}
+    assert set(on_disk["vocabulary"]) == {"size", "min_count", "max_size"}
+    epoch_keys = {"epoch", "train_loss", "valid_loss", "valid_accuracy"}
+    assert on_disk["training"]["history"] and all(set(h) == epoch_keys for h in on_disk["training"]["history"])
+    run = read_run_info(tiny_run)
+    # The typed model is the file: reading and writing it back gives the same bytes.
+    assert json.dumps(run.model_dump(), indent=2, ensure_ascii=False) + "\n" == text
+    assert run.labels == ["billing", "repair"]
+    assert run.tokenizer == TokenizerSpec()
+    assert LengthInfo.model_validate(on_disk["lengths"]) == run.lengths
+    arch = run.architecture
     assert (arch.embedding_dim, arch.widths, arch.maps, arch.vectors) == (16, [3, 4, 5], 6, None)
-    training = TrainingInfo.model_validate({k: v for k, v in run["training"].items() if k != "history"})
+    training = TrainingInfo.model_validate(run.training.model_dump(exclude={"history"}))
+    assert training == run.training.record()
     # Without --valid, a seeded 10 % split stratified by label: 12 of each label's 120 rows.
     assert (training.rows, training.valid_rows) == (216, 24)
     valid = [json.loads(line) for line in (tiny_run / VALID_JSONL).read_text(encoding="utf-8").splitlines()]
@@ -93,22 +102,32 @@ def test_run_folder_follows_the_contract(tiny_run: Path, data: Path) -> None:
     train_texts = [json.loads(line)["text"] for line in data.read_text(encoding="utf-8").splitlines()]
     assert all(r["text"] in train_texts for r in valid)
     vocab = Vocabulary.load(tiny_run / VOCAB_TXT)
-    assert len(vocab) == run["vocabulary"]["size"] and {"charged", "brake", "monday"} <= set(vocab.tokens)
-    history = run["training"]["history"]
-    assert [h["epoch"] for h in history] == list(range(1, training.epochs + 1))
+    assert len(vocab) == run.vocabulary.size and {"charged", "brake", "monday"} <= set(vocab.tokens)
+    history = run.training.history
+    assert [h.epoch for h in history] == list(range(1, training.epochs + 1))
     assert 1 <= training.best_epoch <= training.epochs
+
+
+def test_run_json_tolerates_unknown_top_level_keys(tiny_run: Path, tmp_path: Path) -> None:
+    # Reading never refused extra top-level keys; the typed model keeps it that way.
+    run = _copy_run(tiny_run, tmp_path / "r")
+    content = json.loads((run / RUN_JSON).read_text(encoding="utf-8"))
+    content["note"] = "added by hand"
+    (run / RUN_JSON).write_text(json.dumps(content), encoding="utf-8")
+    assert read_run_info(run) == RunInfo.model_validate(json.loads((tiny_run / RUN_JSON).read_text(encoding="utf-8")))
 
 
 def test_the_run_learns_and_keeps_the_best_epoch(tiny_run: Path) -> None:
     model, vocab, run = load_run(tiny_run)
     valid = [json.loads(line) for line in (tiny_run / VALID_JSONL).read_text(encoding="utf-8").splitlines()]
-    encoded = encode_texts([r["text"] for r in valid], vocab, run["lengths"]["max_length"])
-    targets = np.array([run["labels"].index(r["label"]) for r in valid])
-    loss, accuracy = evaluate(model, encoded, targets, run["lengths"]["min_length"])
-    best = run["training"]["history"][run["training"]["best_epoch"] - 1]
+    encoded = encode_texts([r["text"] for r in valid], vocab, run.lengths.max_length)
+    targets = np.array([run.labels.index(r["label"]) for r in valid])
+    loss, accuracy = evaluate(model, encoded, targets, run.lengths.min_length)
+    best = run.training.history[run.training.best_epoch - 1]
+    assert best == run.best
     # The saved weights are the best epoch's: they reproduce its recorded validation loss.
-    assert loss == pytest.approx(best["valid_loss"], abs=1e-5)
-    assert accuracy == best["valid_accuracy"]
+    assert loss == pytest.approx(best.valid_loss, abs=1e-5)
+    assert accuracy == best.valid_accuracy
     assert accuracy >= 0.9  # one keyword decides the label
     # Kim (2014), section 2.1: output weight rows kept within the l2 limit s = 3.
     assert torch.all(model.output.weight.norm(dim=1) <= 3.0 + 1e-5)
@@ -168,7 +187,7 @@ def test_pretrained_vectors(mode: str, data: Path, tmp_path: Path) -> None:
         == 0
     )
     model, vocab, run = load_run(out)
-    arch = ArchitectureInfo.model_validate(run["architecture"])
+    arch = run.architecture
     assert arch.embedding_dim == 6, "the vectors' dimension wins over the default"
     assert arch.vectors == VectorsInfo(file_sha256=sha256_file(vectors_path), dim=6, found=5, mode=mode)
     weight = model.embedding.weight.detach()
@@ -209,8 +228,8 @@ def test_length_statistics_by_hand(tmp_path: Path) -> None:
         )
         == 0
     )
-    lengths = json.loads((out / RUN_JSON).read_text(encoding="utf-8"))["lengths"]
-    assert lengths == {"max_length": 91, "min_length": 5, "percentile": 90.0, "truncation_rate": 0.09}
+    lengths = read_run_info(out).lengths
+    assert lengths == LengthInfo(max_length=91, min_length=5, percentile=90.0, truncation_rate=0.09)
 
     # A low percentile cannot go below the widest filter.
     out2 = tmp_path / "run2"
@@ -234,9 +253,9 @@ def test_length_statistics_by_hand(tmp_path: Path) -> None:
         )
         == 0
     )
-    lengths = json.loads((out2 / RUN_JSON).read_text(encoding="utf-8"))["lengths"]
-    assert (lengths["max_length"], lengths["min_length"]) == (7, 7)
-    assert lengths["truncation_rate"] == pytest.approx(93 / 100)
+    lengths = read_run_info(out2).lengths
+    assert (lengths.max_length, lengths.min_length) == (7, 7)
+    assert lengths.truncation_rate == pytest.approx(93 / 100)
 
 
 def test_a_previous_run_is_replaced(data: Path, tmp_path: Path) -> None:
@@ -251,10 +270,10 @@ def test_a_previous_run_is_replaced(data: Path, tmp_path: Path) -> None:
 def test_early_stopping_stops_after_patience(data: Path, tmp_path: Path) -> None:
     out = tmp_path / "run"
     assert main(["train", str(data), "--out", str(out), *TINY, "--epochs", "12", "--patience", "1"]) == 0
-    training = json.loads((out / RUN_JSON).read_text(encoding="utf-8"))["training"]
-    epochs, best = training["epochs"], training["best_epoch"]
+    training = read_run_info(out).training
+    epochs, best = training.epochs, training.best_epoch
     assert epochs == 12 or epochs == best + 1
-    losses = [h["valid_loss"] for h in training["history"]]
+    losses = [h.valid_loss for h in training.history]
     assert losses[best - 1] == min(losses[:best])
 
 
@@ -403,4 +422,4 @@ def test_train_function_returns_the_folder(data: Path, tmp_path: Path) -> None:
     config = TrainConfig(data=data, out=tmp_path / "r", embedding_dim=8, maps=4, epochs=1, quiet=True)
     assert train(config) == tmp_path / "r"
     model, vocab, run = load_run(tmp_path / "r")
-    assert model.training is False and len(vocab) == run["vocabulary"]["size"]
+    assert model.training is False and len(vocab) == run.vocabulary.size

@@ -49,7 +49,7 @@ async def test_probabilities_match_pytorch_softmax_over_temperature(
     shared_registry: Path, tiny_runs: dict[str, Path], tiny_bundles: dict[str, Path], tiny_data: Path
 ) -> None:
     torch = pytest.importorskip("torch")
-    from textsieve.exporter.train import load_run
+    from textsieve.exporter.run_folder import load_run
 
     texts = _texts(tiny_data) + EDGE_TEXTS
     async with serving(settings_for(shared_registry)) as (_, client):
@@ -63,7 +63,7 @@ async def test_probabilities_match_pytorch_softmax_over_temperature(
     temperature = bundle.manifest.calibration.temperature
     p = Predictor.from_bundle(bundle)  # only its tokenizer: the encoding is the bundle's contract
     encoded = [p.encode(t) for t in texts]
-    width = max(max(len(e.ids) for e in encoded), run["lengths"]["min_length"])
+    width = max(max(len(e.ids) for e in encoded), run.lengths.min_length)
     ids = torch.zeros((len(texts), width), dtype=torch.long)
     for i, e in enumerate(encoded):
         ids[i, : len(e.ids)] = torch.tensor(e.ids, dtype=torch.long)
@@ -71,13 +71,13 @@ async def test_probabilities_match_pytorch_softmax_over_temperature(
     with torch.inference_mode():
         reference = torch.softmax(model(ids, lengths).double() / temperature, dim=1).numpy()
 
-    labels = run["labels"]
+    labels = run.labels
     served = np.array([[res["probabilities"][name] for name in labels] for res in reply["results"]])
     assert np.abs(served - reference).max() <= 1e-5
     assert [res["label"] for res in reply["results"]] == [labels[i] for i in reference.argmax(1)]
     for res, e in zip(reply["results"], encoded, strict=True):
         assert res["tokens"] == e.tokens
-        assert res["truncated"] == (e.tokens > run["lengths"]["max_length"])
+        assert res["truncated"] == (e.tokens > run.lengths.max_length)
         assert res["unknown"] == sum(1 for i in e.ids if i == 1)
     truncated = reply["results"][len(texts) - 2]
     assert truncated["truncated"] and truncated["tokens"] == 400
@@ -107,12 +107,12 @@ async def test_spans_are_the_filters_pooled_windows_recomputed_with_numpy(
     shared_registry: Path, tiny_runs: dict[str, Path], tiny_bundles: dict[str, Path], tiny_data: Path
 ) -> None:
     pytest.importorskip("torch")
-    from textsieve.exporter.train import load_run
+    from textsieve.exporter.run_folder import load_run
 
     texts = _texts(tiny_data, 40) + EDGE_TEXTS
     model, _, run = load_run(tiny_runs["a"])
     state = {k: v.detach().double().numpy() for k, v in model.state_dict().items()}
-    maps, widths = run["architecture"]["maps"], run["architecture"]["widths"]
+    maps, widths = run.architecture.maps, run.architecture.widths
 
     p = Predictor.from_bundle(tiny_bundles["a"])
     encoded = [p.encode(t) for t in texts]

@@ -1,0 +1,143 @@
+"""The data made ready to train on: labelled rows split, a vocabulary built, lengths chosen, ids encoded."""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from textsieve.errors import InputError
+from textsieve.exporter.config import DEFAULT_EMBEDDING_DIM, TrainConfig
+from textsieve.exporter.encode import TokenIds, encode_texts, encode_tokens
+from textsieve.exporter.vectors import PretrainedVectors, load_vectors
+from textsieve.labelled import Example, check_labels, load_examples
+from textsieve.registry.manifest import LengthInfo
+from textsieve.registry.tokenizer import Tokenizer, Vocabulary
+
+VALID_SHARE = 0.1
+
+
+@dataclass(frozen=True)
+class Prepared:
+    """Everything the training loop reads, and what the run folder records about the data."""
+
+    train: list[Example]
+    valid: list[Example]
+    labels: list[str]
+    vocabulary: Vocabulary
+    lengths: LengthInfo
+    train_ids: TokenIds
+    valid_ids: TokenIds
+    train_y: np.ndarray
+    valid_y: np.ndarray
+    vectors: PretrainedVectors | None
+    embedding_dim: int
+
+
+def prepare(config: TrainConfig) -> Prepared:
+    train_rows, valid_rows, labels = split_examples(config)
+    tokenizer = Tokenizer()
+    train_tokens = [tokenizer.split(e.text)[0] for e in train_rows]
+    vocabulary = build_vocabulary(train_tokens, config)
+    lengths = length_info(np.array([len(t) for t in train_tokens]), config)
+    vectors = _pretrained(config, vocabulary, tokenizer)
+    index = {label: i for i, label in enumerate(labels)}
+    return Prepared(
+        train=train_rows,
+        valid=valid_rows,
+        labels=labels,
+        vocabulary=vocabulary,
+        lengths=lengths,
+        train_ids=encode_tokens(train_tokens, vocabulary, lengths.max_length),
+        valid_ids=encode_texts([e.text for e in valid_rows], vocabulary, lengths.max_length, tokenizer),
+        train_y=np.array([index[e.label] for e in train_rows], dtype=np.int64),
+        valid_y=np.array([index[e.label] for e in valid_rows], dtype=np.int64),
+        vectors=vectors,
+        embedding_dim=config.embedding_dim if vectors is None else vectors.dim,
+    )
+
+
+def split_examples(config: TrainConfig) -> tuple[list[Example], list[Example], list[str]]:
+    """Training rows, validation rows (``--valid`` or a held-out split) and the labels in output order."""
+    examples = load_examples(config.data, config.text_field, config.label_field)
+    if config.valid is not None:
+        valid_rows = load_examples(config.valid, config.text_field, config.label_field)
+        labels = check_labels(examples, valid_rows, train_name=str(config.data), valid_name=str(config.valid))
+        return examples, valid_rows, labels
+    # The one-label check comes first: a split of one-label data would fail confusingly.
+    check_labels(examples, [], train_name=str(config.data))
+    train_rows, valid_rows = split_validation(examples, config.seed, config.data)
+    labels = check_labels(train_rows, valid_rows, train_name=str(config.data))
+    return train_rows, valid_rows, labels
+
+
+def split_validation(examples: list[Example], seed: int, source: Path) -> tuple[list[Example], list[Example]]:
+    """A seeded validation split stratified by label, so every validation label is also trained on."""
+    rng = np.random.default_rng([seed, 1])
+    by_label: dict[str, list[int]] = {}
+    for i, example in enumerate(examples):
+        by_label.setdefault(example.label, []).append(i)
+    held: set[int] = set()
+    for label in sorted(by_label):
+        rows = np.array(by_label[label])
+        rng.shuffle(rows)
+        take = min(math.floor(len(rows) * VALID_SHARE + 0.5), len(rows) - 1)
+        held.update(int(i) for i in rows[:take])
+    if not held:
+        raise InputError(
+            f"{source}: {len(examples)} rows are too few to hold out a "
+            f"{VALID_SHARE:.0%} validation split; add rows or pass --valid FILE"
+        )
+    train = [e for i, e in enumerate(examples) if i not in held]
+    valid = [e for i, e in enumerate(examples) if i in held]
+    return train, valid
+
+
+def build_vocabulary(train_tokens: list[list[str]], config: TrainConfig) -> Vocabulary:
+    counts = Counter(t for tokens in train_tokens for t in tokens)
+    vocabulary = Vocabulary.build(counts, min_count=config.min_count, max_size=config.max_vocab)
+    if len(vocabulary) <= 2:
+        raise InputError(
+            f"{config.data}: no word occurs at least {config.min_count} times in the training "
+            "texts; lower --min-count or add data"
+        )
+    return vocabulary
+
+
+def length_info(token_counts: np.ndarray, config: TrainConfig) -> LengthInfo:
+    min_length = max(config.widths)
+    # numpy's default percentile is Hyndman & Fan (1996) definition 7; the epsilon keeps an
+    # exact integer from being pushed up by float rounding.
+    at_percentile = float(np.percentile(token_counts, config.length_percentile))
+    max_length = max(math.ceil(at_percentile - 1e-9), min_length)
+    truncated = float(np.mean(token_counts > max_length))
+    return LengthInfo(
+        max_length=max_length, min_length=min_length, percentile=config.length_percentile, truncation_rate=truncated
+    )
+
+
+def _pretrained(config: TrainConfig, vocabulary: Vocabulary, tokenizer: Tokenizer) -> PretrainedVectors | None:
+    if config.vectors is None:
+        return None
+    vectors = load_vectors(config.vectors, vocabulary, tokenizer=tokenizer)
+    # argparse cannot tell an explicit 128 from the default, so only another value conflicts.
+    if config.embedding_dim not in (DEFAULT_EMBEDDING_DIM, vectors.dim):
+        raise InputError(
+            f"{config.vectors}: vectors file has dimension {vectors.dim} but --embedding-dim "
+            f"is {config.embedding_dim}; drop --embedding-dim or make them equal"
+        )
+    return vectors
+
+
+__all__ = [
+    "VALID_SHARE",
+    "Prepared",
+    "build_vocabulary",
+    "length_info",
+    "prepare",
+    "split_examples",
+    "split_validation",
+]
