@@ -12,7 +12,7 @@ from typing import Any, TextIO
 from textsieve.errors import GateRefusedError, NotFoundError
 from textsieve.registry.api import Registry, open_registry
 from textsieve.registry.names import validate_version
-from textsieve.registry.records import Event, GateResult
+from textsieve.registry.records import Event, GateResult, State
 
 NONE = "-"
 
@@ -90,7 +90,7 @@ def cli_versions(args: argparse.Namespace) -> int:
                     _labels(v.labels),
                     when(v.created_at),
                     v.published_by,
-                    when(v.promoted_at) if v.state == "live" else None,
+                    when(v.promoted_at) if v.state == State.LIVE else None,
                 ]
                 for v in versions
             ],
@@ -121,7 +121,7 @@ def cli_show(args: argparse.Namespace) -> int:
         ("state", info.state),
         ("labels", ", ".join(info.labels)),
         ("published", f"{when(info.created_at)} by {info.published_by}" + (f" ({info.reason})" if info.reason else "")),
-        ("live since", when(info.promoted_at) if info.state == "live" else NONE),
+        ("live since", when(info.promoted_at) if info.state == State.LIVE else NONE),
         ("previous live", info.previous_live if info.previous_live is not None else NONE),
         ("manifest sha256", info.manifest_sha256),
         (
