@@ -33,7 +33,7 @@ def _psycopg() -> Any:
     return psycopg
 
 
-def translate(exc: Exception, where: str) -> RegistryError:
+def translate(exc: Exception, where: str) -> RegistryError | UnavailableError:
     psycopg = _psycopg()
     first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
     if isinstance(exc, psycopg.errors.IntegrityError):

@@ -21,7 +21,7 @@ from textsieve.registry._db import Backend, Params, Row, Tx
 BUSY_TIMEOUT_S = 30.0
 
 
-def translate(exc: sqlite3.Error, where: str) -> RegistryError:
+def translate(exc: sqlite3.Error, where: str) -> RegistryError | UnavailableError:
     text = str(exc)
     if isinstance(exc, sqlite3.IntegrityError):
         return StateError(f"{where}: the change conflicts with the registry's rules ({text})")

@@ -44,7 +44,7 @@ from textsieve.registry.manifest import MANIFEST, Manifest
 from textsieve.registry.migrations import migrate
 from textsieve.registry.names import resolve_actor, validate_model_name, validate_reason, validate_version
 from textsieve.registry.queries import Queries
-from textsieve.registry.records import EvalsetInfo, Event, GateResult, ModelInfo, Promotion, VersionInfo
+from textsieve.registry.records import EvalsetInfo, Event, GateResult, ModelInfo, Promotion, State, VersionInfo
 
 DB_FILE = "registry.sqlite3"
 BLOB_DIR = "blobs"
@@ -104,14 +104,14 @@ class Registry:
         with self.backend.read() as tx:
             q = Queries(tx)
             self._require_model(q, model)
-            return q.in_state(model, "live")
+            return q.in_state(model, State.LIVE)
 
     def candidate(self, model: str) -> VersionInfo | None:
         model = validate_model_name(model)
         with self.backend.read() as tx:
             q = Queries(tx)
             self._require_model(q, model)
-            return q.in_state(model, "candidate")
+            return q.in_state(model, State.CANDIDATE)
 
     def evalset(self, model: str) -> EvalsetInfo | None:
         model = validate_model_name(model)
@@ -273,7 +273,7 @@ class Registry:
             q = Queries(tx)
             self._require_model(q, model)
             versions = q.versions(model)
-            reference = q.in_state(model, "live") or (versions[-1] if versions else None)
+            reference = q.in_state(model, State.LIVE) or (versions[-1] if versions else None)
         normalised = load_evalset(file, text_field=text_field, label_field=label_field)
         if reference is not None:
             _check_evalset_labels(file, normalised, reference.labels, version=reference.version)
@@ -331,27 +331,34 @@ class Registry:
         with self.backend.read() as tx:
             q = Queries(tx)
             target = self._require_version(q, model, version)
-            live = q.in_state(model, "live")
+            live = q.in_state(model, State.LIVE)
             evalset = q.evalset(model)
         return self._gates(model, target, live, evalset)
 
     def promote(
-        self, model: str, version: int, to: str = "live", *, reason: str, actor: str | None = None, force: bool = False
+        self,
+        model: str,
+        version: int,
+        to: str = State.LIVE,
+        *,
+        reason: str,
+        actor: str | None = None,
+        force: bool = False,
     ) -> Promotion:
         """Move a version to ``candidate`` or ``live``; GateRefusedError when a gate refuses and not forced."""
         model, version = validate_model_name(model), validate_version(version)
-        if to not in ("candidate", "live"):
+        if to not in (State.CANDIDATE, State.LIVE):
             raise InputError(f"cannot promote to {to!r}; allowed: candidate, live")
         reason = validate_reason(reason, required=True)
         actor = resolve_actor(actor)
-        if to == "candidate":
+        if to == State.CANDIDATE:
             return self._to_candidate(model, version, reason, actor)
         for attempt in range(_GATE_ATTEMPTS + 1):
             if attempt < _GATE_ATTEMPTS:
                 with self.backend.read() as tx:
                     q = Queries(tx)
                     target = self._require_version(q, model, version)
-                    live = q.in_state(model, "live")
+                    live = q.in_state(model, State.LIVE)
                     evalset = q.evalset(model)
                 gates = self._judge(model, target, live, evalset)
                 with self.backend.write() as tx:
@@ -359,11 +366,11 @@ class Registry:
                     tx.lock_model(model)
                     current = self._require_version(q, model, version)
                     if (
-                        _num(q.in_state(model, "live")) != _num(live)
+                        _num(q.in_state(model, State.LIVE)) != _num(live)
                         or _id(q.evalset(model)) != _id(evalset)
                         or current.state != target.state
                     ):
-                        if current.state == "live":
+                        if current.state == State.LIVE:
                             raise StateError(
                                 f"version {version} of {model!r} became live meanwhile (another promotion)"
                             )
@@ -375,7 +382,7 @@ class Registry:
                     q = Queries(tx)
                     tx.lock_model(model)
                     target = self._require_version(q, model, version)
-                    live = q.in_state(model, "live")
+                    live = q.in_state(model, State.LIVE)
                     gates = self._judge(model, target, live, q.evalset(model))
                     outcome = self._apply_live(q, target, live, gates, reason=reason, actor=actor, force=force)
             event_id, info, failed = outcome
@@ -387,7 +394,7 @@ class Registry:
     def _judge(
         self, model: str, target: VersionInfo, live: VersionInfo | None, evalset: EvalsetInfo | None
     ) -> list[GateResult]:
-        _allowed(target, "live")
+        _allowed(target, State.LIVE)
         for digest in target.files.values():
             self.blobs.verify(digest)  # a damaged version is never promoted, forced or not
         return self._gates(model, target, live, evalset)
@@ -416,11 +423,17 @@ class Registry:
                 actor=actor,
                 at=now,
                 reason=reason,
-                details={"to": "live", "from": target.state, "live": _num(live), "gates": gate_dump, "failed": failed},
+                details={
+                    "to": State.LIVE,
+                    "from": target.state,
+                    "live": _num(live),
+                    "gates": gate_dump,
+                    "failed": failed,
+                },
             )
             return event_id, None, failed
         if live is not None:
-            q.set_state(model, live.version, "retired")
+            q.set_state(model, live.version, State.RETIRED)
         q.make_live(model, version, at=now, previous_live=_num(live), keep_previous=False)
         event_id = q.add_event(
             model=model,
@@ -430,7 +443,7 @@ class Registry:
             at=now,
             reason=reason,
             details={
-                "to": "live",
+                "to": State.LIVE,
                 "from": target.state,
                 "retired": _num(live),
                 "gates": gate_dump,
@@ -447,11 +460,11 @@ class Registry:
             q = Queries(tx)
             tx.lock_model(model)
             target = self._require_version(q, model, version)
-            _allowed(target, "candidate")
-            previous = q.in_state(model, "candidate")
+            _allowed(target, State.CANDIDATE)
+            previous = q.in_state(model, State.CANDIDATE)
             if previous is not None:
-                q.set_state(model, previous.version, "registered")
-            q.set_state(model, version, "candidate")
+                q.set_state(model, previous.version, State.REGISTERED)
+            q.set_state(model, version, State.CANDIDATE)
             event_id = q.add_event(
                 model=model,
                 version=version,
@@ -460,7 +473,7 @@ class Registry:
                 at=now,
                 reason=reason,
                 details={
-                    "to": "candidate",
+                    "to": State.CANDIDATE,
                     "from": target.state,
                     "replaced_candidate": _num(previous),
                     "gates": [],
@@ -491,10 +504,10 @@ class Registry:
                     live, target = self._rollback_pair(q, model)
                     for digest in target.files.values():
                         self.blobs.verify(digest)
-                elif _num(q.in_state(model, "live")) != live.version:
+                elif _num(q.in_state(model, State.LIVE)) != live.version:
                     continue
                 now = utc_now()
-                q.set_state(model, live.version, "retired")
+                q.set_state(model, live.version, State.RETIRED)
                 q.make_live(model, target.version, at=now, previous_live=None, keep_previous=True)
                 q.add_event(
                     model=model,
@@ -514,7 +527,7 @@ class Registry:
     def _rollback_pair(self, q: Queries, model: str) -> tuple[VersionInfo, VersionInfo]:
         """(the live version, the one to restore), or StateError when there is none."""
         self._require_model(q, model)
-        live = q.in_state(model, "live")
+        live = q.in_state(model, State.LIVE)
         if live is None:
             raise StateError(f"{model!r} has no live version, so there is nothing to roll back")
         if live.previous_live is None:
@@ -547,7 +560,7 @@ class Registry:
             if version is not None:
                 return self._require_version(q, model, validate_version(version))
             self._require_model(q, model)
-            live = q.in_state(model, "live")
+            live = q.in_state(model, State.LIVE)
         if live is None:
             raise NotFoundError(
                 f"{model!r} has no live version; promote one (textsieve promote {model} N --to live) "
@@ -578,10 +591,13 @@ def _id(e: EvalsetInfo | None) -> int | None:
     return None if e is None else e.id
 
 
-_ALLOWED_FROM = {"candidate": ("registered", "retired"), "live": ("registered", "candidate", "retired")}
+_ALLOWED_FROM: dict[State, tuple[State, ...]] = {
+    State.CANDIDATE: (State.REGISTERED, State.RETIRED),
+    State.LIVE: (State.REGISTERED, State.CANDIDATE, State.RETIRED),
+}
 
 
-def _allowed(target: VersionInfo, to: str) -> None:
+def _allowed(target: VersionInfo, to: State) -> None:
     if target.state in _ALLOWED_FROM[to]:
         return
     if target.state == to:
@@ -589,7 +605,7 @@ def _allowed(target: VersionInfo, to: str) -> None:
     raise StateError(
         f"version {target.version} of {target.model!r} is {target.state} and cannot become {to}; "
         f"allowed from: {', '.join(_ALLOWED_FROM[to])}"
-        + ("; use rollback or promote another version" if target.state == "live" else "")
+        + ("; use rollback or promote another version" if target.state == State.LIVE else "")
     )
 
 

@@ -170,6 +170,8 @@ def cli_models(args: argparse.Namespace) -> int:
 
 
 def cli_versions(args: argparse.Namespace) -> int:
+    from textsieve.registry.records import State
+
     with _open(args) as reg:
         versions = reg.versions(args.model)
     _out(
@@ -185,7 +187,7 @@ def cli_versions(args: argparse.Namespace) -> int:
                     _labels(v.labels),
                     when(v.created_at),
                     v.published_by,
-                    when(v.promoted_at) if v.state == "live" else None,
+                    when(v.promoted_at) if v.state == State.LIVE else None,
                 ]
                 for v in versions
             ],
@@ -197,7 +199,7 @@ def cli_versions(args: argparse.Namespace) -> int:
 
 def cli_show(args: argparse.Namespace) -> int:
     from textsieve.registry.names import validate_version
-    from textsieve.registry.records import GateResult
+    from textsieve.registry.records import GateResult, State
 
     with _open(args) as reg:
         if args.version is None:
@@ -219,7 +221,7 @@ def cli_show(args: argparse.Namespace) -> int:
         ("state", info.state),
         ("labels", ", ".join(info.labels)),
         ("published", f"{when(info.created_at)} by {info.published_by}" + (f" ({info.reason})" if info.reason else "")),
-        ("live since", when(info.promoted_at) if info.state == "live" else NONE),
+        ("live since", when(info.promoted_at) if info.state == State.LIVE else NONE),
         ("previous live", info.previous_live if info.previous_live is not None else NONE),
         ("manifest sha256", info.manifest_sha256),
         (

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from textsieve.errors import RegistryError
+from textsieve.errors import RegistryError, UnavailableError
 from textsieve.registry._db import Backend
 
 
@@ -133,8 +133,8 @@ def _up_to_date(backend: Backend, known: list[str]) -> bool:
     try:
         with backend.read() as tx:
             rows = tx.all("SELECT name FROM schema_migrations")
-    except RegistryError:
-        return False  # no table yet (or unreadable): the write path decides
+    except (RegistryError, UnavailableError):
+        return False  # no table yet, or unreadable (e.g. locked): the write path decides
     return {r["name"] for r in rows} == set(known)
 
 

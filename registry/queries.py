@@ -7,7 +7,7 @@ from collections.abc import Iterable
 from typing import Any
 
 from textsieve.registry._db import Tx
-from textsieve.registry.records import EvalsetInfo, Event, ModelInfo, VersionInfo
+from textsieve.registry.records import EvalsetInfo, Event, ModelInfo, State, VersionInfo
 
 _VERSION_COLUMNS = (
     "model, version, state, labels, manifest_sha256, created_at, published_by, reason, "
@@ -136,12 +136,14 @@ class Queries:
         files = self._files(model)
         return [VersionInfo.from_row(r, files.get(int(r["version"]), {})) for r in rows]
 
-    def in_state(self, model: str, state: str) -> VersionInfo | None:
-        row = self.tx.one("SELECT version FROM versions WHERE model = ? AND state = ?", (model, state))
+    # Bound as a plain string (str() of a member is its value): drivers differ in how they adapt
+    # Enum members (psycopg dumps a plain Enum by its name), and the column holds the values.
+    def in_state(self, model: str, state: State) -> VersionInfo | None:
+        row = self.tx.one("SELECT version FROM versions WHERE model = ? AND state = ?", (model, str(state)))
         return None if row is None else self.version(model, int(row["version"]))
 
-    def set_state(self, model: str, version: int, state: str) -> None:
-        self.tx.run("UPDATE versions SET state = ? WHERE model = ? AND version = ?", (state, model, version))
+    def set_state(self, model: str, version: int, state: State) -> None:
+        self.tx.run("UPDATE versions SET state = ? WHERE model = ? AND version = ?", (str(state), model, version))
 
     def make_live(self, model: str, version: int, *, at: str, previous_live: int | None, keep_previous: bool) -> None:
         if keep_previous:

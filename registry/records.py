@@ -3,12 +3,23 @@
 from __future__ import annotations
 
 import json
+from enum import StrEnum
 from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
-State = Literal["registered", "candidate", "live", "retired"]
-STATES: tuple[State, ...] = ("registered", "candidate", "live", "retired")
+
+class State(StrEnum):
+    """A version's lifecycle state. The values are the strings stored in the database and
+    written in JSON, so a member equals its stored string and prints as it."""
+
+    REGISTERED = "registered"
+    CANDIDATE = "candidate"
+    LIVE = "live"
+    RETIRED = "retired"
+
+
+STATES: tuple[State, ...] = tuple(State)  # in lifecycle order
 EventKind = Literal["publish", "evalset", "promote", "refuse", "rollback"]
 
 

@@ -9,8 +9,9 @@
     │   ├── NotFoundError          unknown model, version or evaluation set: CLI exit 2, HTTP 404
     │   ├── StateError             transition not allowed from the current state: CLI exit 2, HTTP 409
     │   ├── GateRefusedError       a promotion gate refused: CLI exit 1, HTTP 409
-    │   ├── IntegrityError         a stored blob is missing or its sha256 differs: HTTP 500-class 503
-    │   └── UnavailableError       the metadata store cannot be reached: HTTP 503
+    │   └── IntegrityError         a stored blob is missing or its sha256 differs: CLI exit 1, HTTP 503
+    ├── UnavailableError           cannot answer now, retry (registry unreachable, worker gone, shutting down):
+    │                              CLI exit 1, HTTP 503
     └── AuthError                  missing or wrong admin token: HTTP 401/403
 
 Lower-layer errors (sqlite3, psycopg, onnxruntime, torch, OSError) are translated at one
@@ -75,8 +76,12 @@ class IntegrityError(RegistryError):
     exit_code = 1
 
 
-class UnavailableError(RegistryError):
-    """The registry's metadata store cannot be reached right now."""
+class UnavailableError(TextsieveError):
+    """Not possible right now, worth retrying: the registry's database cannot be reached, an
+    inference worker stopped, a model is still loading, or the service is shutting down.
+
+    Not a :class:`RegistryError`: most of its causes have nothing to do with the registry.
+    """
 
     exit_code = 1
 

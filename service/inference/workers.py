@@ -10,9 +10,13 @@ already serialised as JSON, which the server embeds as it is (``orjson.Fragment`
 
 Workers are forked from a fork server started once per server process, which has already
 imported the inference modules, so starting or replacing a worker takes milliseconds. Every
-version a worker serves is loaded and warmed in it (``load``) before requests can reach it;
-``drop`` frees it. A worker that dies is replaced on the spot and given the versions it had;
-the batch it was running is tried once more on the new worker, then fails with 503.
+version a worker serves is loaded and warmed in it (:class:`Load`) before requests can reach
+it; :class:`Drop` frees it. A worker that dies is replaced on the spot and given the versions it
+had; the batch it was running is tried once more on the new worker, then fails with 503.
+
+The messages on the pipe are the small classes below, imported by both ends, so a misspelt
+operation is a type error rather than an "unknown operation" reply; the worker answers each
+with an :class:`Outcome` and a value.
 """
 
 from __future__ import annotations
@@ -25,6 +29,7 @@ import threading
 from collections import deque
 from concurrent.futures import Future
 from dataclasses import dataclass, field
+from enum import StrEnum
 from pathlib import Path
 from typing import Any
 
@@ -34,6 +39,47 @@ from textsieve.errors import BundleError, UnavailableError
 
 log = logging.getLogger("textsieve.service")
 Key = tuple[str, int, int]  # model, version, load number (a version may be loaded twice)
+
+
+@dataclass(frozen=True, slots=True)
+class Load:
+    """Load and warm a version's bundle under ``key``; replies None."""
+
+    key: Key
+    bundle: str
+    batch_size: int
+
+
+@dataclass(frozen=True, slots=True)
+class Run:
+    """Score ``texts`` with ``key``, ``ks[i]`` spans for text i; replies (JSON replies, tokens, unknown, truncated)."""
+
+    key: Key
+    texts: list[str]
+    ks: list[int]
+
+
+@dataclass(frozen=True, slots=True)
+class Drop:
+    """Forget ``key`` and free its memory; replies None."""
+
+    key: Key
+
+
+@dataclass(frozen=True, slots=True)
+class Held:
+    """Which keys the worker has loaded; replies a sorted list."""
+
+
+Message = Load | Run | Drop | Held  # what the server sends a worker (None asks it to end)
+
+
+class Outcome(StrEnum):
+    """How the worker ended a request; the reply's value depends on it."""
+
+    OK = "ok"  # the value is the request's result
+    BUNDLE = "bundle"  # the bundle failed a check: the value is the BundleError's message
+    ERROR = "error"  # anything else went wrong: the value says what
 
 
 @dataclass
@@ -70,40 +116,37 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
             return
         if msg is None:
             return
-        op, key = msg[0], msg[1]
         try:
-            if op == "run":
-                texts, ks = msg[2], msg[3]
-                p = predictors[key]
-                encoded = [p.encode(t) for t in texts]
+            if isinstance(msg, Run):
+                p = predictors[msg.key]
+                encoded = [p.encode(t) for t in msg.texts]
                 out = run_packed(p, encoded)
-                results = explain(p, encoded, out, ks)
+                results = explain(p, encoded, out, msg.ks)
                 tokens = unknown = truncated = 0
                 for e in encoded:
                     tokens += len(e.ids)
                     unknown += e.unknown
                     truncated += e.tokens > len(e.ids)
                 # Each reply serialised here, once: the server embeds the bytes as they are.
-                conn.send(("ok", ([orjson.dumps(r) for r in results], tokens, unknown, truncated)))
-            elif op == "load":
-                bundle, batch_size = msg[2], msg[3]
-                checked = open_bundle(Path(bundle))
-                p = Predictor.from_bundle(checked, threads=1, batch_size=batch_size)
+                conn.send((Outcome.OK, ([orjson.dumps(r) for r in results], tokens, unknown, truncated)))
+            elif isinstance(msg, Load):
+                checked = open_bundle(Path(msg.bundle))
+                p = Predictor.from_bundle(checked, threads=1, batch_size=msg.batch_size)
                 warm_and_check(p, list(checked.manifest.labels))
-                predictors[key] = p
-                conn.send(("ok", None))
-            elif op == "held":
-                conn.send(("ok", sorted(predictors)))
-            elif op == "drop":
-                if predictors.pop(key, None) is not None:
+                predictors[msg.key] = p
+                conn.send((Outcome.OK, None))
+            elif isinstance(msg, Held):
+                conn.send((Outcome.OK, sorted(predictors)))
+            elif isinstance(msg, Drop):
+                if predictors.pop(msg.key, None) is not None:
                     release_freed_memory()
-                conn.send(("ok", None))
+                conn.send((Outcome.OK, None))
             else:
-                conn.send(("error", f"unknown operation {op!r}"))
+                conn.send((Outcome.ERROR, f"unknown request {msg!r}"))
         except BundleError as exc:
-            conn.send(("bundle", exc.message))
+            conn.send((Outcome.BUNDLE, exc.message))
         except Exception as exc:  # noqa: BLE001 - reported to the server, which decides
-            conn.send(("error", f"{type(exc).__name__}: {exc}"))
+            conn.send((Outcome.ERROR, f"{type(exc).__name__}: {exc}"))
 
 
 _context_lock = threading.Lock()
@@ -145,7 +188,7 @@ class _Worker:
     proc: Any = None
     conn: multiprocessing.connection.Connection | None = None
     generation: int = 0
-    pending: deque[Future[tuple[str, Any]]] = field(default_factory=deque)
+    pending: deque[Future[tuple[Outcome, Any]]] = field(default_factory=deque)
     send_lock: threading.Lock = field(default_factory=threading.Lock)
     replace_lock: threading.Lock = field(default_factory=threading.Lock)
     loaded: dict[Key, Loaded] = field(default_factory=dict)
@@ -157,7 +200,7 @@ class _Worker:
         proc = ctx.Process(target=_serve, args=(child,), name=f"textsieve-worker-{self.index}", daemon=True)
         proc.start()
         child.close()
-        pending: deque[Future[tuple[str, Any]]] = deque()
+        pending: deque[Future[tuple[Outcome, Any]]] = deque()
         with self.send_lock:
             self.proc, self.conn, self.pending = proc, parent, pending
             self.generation += 1
@@ -166,7 +209,7 @@ class _Worker:
         )
         self.reader.start()
 
-    def _read(self, conn: multiprocessing.connection.Connection, pending: deque[Future[tuple[str, Any]]]) -> None:
+    def _read(self, conn: multiprocessing.connection.Connection, pending: deque[Future[tuple[Outcome, Any]]]) -> None:
         """Replies, in order, to the requests sent on ``conn``; owns closing it."""
         try:
             while True:
@@ -185,8 +228,8 @@ class _Worker:
                 fut.set_exception(_Died())
             conn.close()
 
-    def submit(self, msg: tuple[Any, ...]) -> tuple[int, Future[tuple[str, Any]]]:
-        fut: Future[tuple[str, Any]] = Future()
+    def submit(self, msg: Message) -> tuple[int, Future[tuple[Outcome, Any]]]:
+        fut: Future[tuple[Outcome, Any]] = Future()
         with self.send_lock:
             gen = self.generation
             if self.conn is None:
@@ -199,7 +242,7 @@ class _Worker:
                 raise _Died() from exc
         return gen, fut
 
-    def call(self, msg: tuple[Any, ...], *, retry: bool) -> Any:
+    def call(self, msg: Message, *, retry: bool) -> Any:
         """Send one request and wait for its reply; replace the worker if it died on the way."""
         for attempt in (1, 2):
             gen = self.generation
@@ -213,9 +256,9 @@ class _Worker:
                 raise UnavailableError(
                     "an inference worker stopped while running this request; it has been replaced: retry"
                 ) from exc
-            if status == "ok":
+            if status == Outcome.OK:
                 return value
-            if status == "bundle":
+            if status == Outcome.BUNDLE:
                 raise BundleError(value)
             raise UnavailableError(f"inference failed: {value}")
         raise AssertionError("unreachable")
@@ -237,11 +280,11 @@ class _Worker:
                 ) from exc
             for key, item in list(self.loaded.items()):
                 try:
-                    _, fut = self.submit(("load", key, str(item.bundle), item.batch_size))
+                    _, fut = self.submit(Load(key, str(item.bundle), item.batch_size))
                     status, value = fut.result()
                 except _Died:
-                    status, value = "error", "the new worker stopped too"
-                if status != "ok":
+                    status, value = Outcome.ERROR, "the new worker stopped too"
+                if status != Outcome.OK:
                     log.error("inference worker %s: reloading %s v%s failed: %s", self.index, key[0], key[1], value)
                     self.loaded.pop(key, None)
 
@@ -299,7 +342,7 @@ class WorkerProcesses:
         done: list[_Worker] = []
         try:
             for w in self.workers:
-                w.call(("load", key, str(item.bundle), batch_size), retry=True)
+                w.call(Load(key, str(item.bundle), batch_size), retry=True)
                 w.loaded[key] = item
                 done.append(w)
         except BaseException:
@@ -315,7 +358,7 @@ class WorkerProcesses:
         if w.loaded.pop(key, None) is None:
             return
         try:
-            w.call(("drop", key), retry=False)
+            w.call(Drop(key), retry=False)
         except UnavailableError:
             pass  # a worker that died has nothing left to free
 
@@ -324,12 +367,12 @@ class WorkerProcesses:
         w = self.workers[index % len(self.workers)]
         if key not in w.loaded:
             raise UnavailableError(f"model {key[0]} version {key[1]} is not loaded in inference worker {index}")
-        replies, tokens, unknown, truncated = w.call(("run", key, texts, ks), retry=True)
+        replies, tokens, unknown, truncated = w.call(Run(key, texts, ks), retry=True)
         return [orjson.Fragment(r) for r in replies], tokens, unknown, truncated
 
     def held(self) -> list[list[Key]]:
         """What each worker process itself says it has loaded (for tests and diagnostics)."""
-        return [list(map(tuple, w.call(("held", None), retry=False))) for w in self.workers]
+        return [list(map(tuple, w.call(Held(), retry=False))) for w in self.workers]
 
     def holds(self, key: Key) -> bool:
         """Whether every worker has ``key`` loaded."""
@@ -354,4 +397,4 @@ class WorkerProcesses:
         self._started = False
 
 
-__all__ = ["WorkerProcesses"]
+__all__ = ["Drop", "Held", "Load", "Message", "Outcome", "Run", "WorkerProcesses"]

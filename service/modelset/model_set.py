@@ -26,9 +26,11 @@ import logging
 import time
 from collections import OrderedDict
 from dataclasses import dataclass
+from enum import StrEnum
 from typing import NoReturn
 
 from textsieve.errors import InputError, NotFoundError, StateError, TextsieveError, UnavailableError
+from textsieve.registry import State
 from textsieve.service.inference.batcher import Batcher, InferencePool
 from textsieve.service.inference.memory import release_freed_memory
 from textsieve.service.modelset.loader import ServedModel, load_served
@@ -40,9 +42,19 @@ log = logging.getLogger("textsieve.service")
 MAX_RETRY_SECONDS = 300.0
 
 
+class ServingState(StrEnum):
+    """What this service does with a model; the values are what /readyz and the model views show."""
+
+    LOADING = "loading"
+    READY = "ready"
+    FAILED = "failed"  # its live version could not be loaded (or the model is unknown)
+    NO_LIVE_VERSION = "no-live-version"
+    NOT_SERVED = "not-served"  # only in views: a model this service has no status for
+
+
 @dataclass
 class ModelStatus:
-    state: str = "loading"  # loading | ready | failed | no-live-version
+    state: ServingState = ServingState.LOADING
     detail: str = ""
     failures: int = 0
     retry_at: float = 0.0
@@ -85,10 +97,10 @@ class ModelSet:
         await self.store.open()
         # Read the cursor before loading: a promotion that lands during the load is then seen
         # by the first poll instead of being missed.
-        self._cursor = int(await self.store.call("cursor"))
+        self._cursor = await self.store.cursor()
         names = list(self.settings.models)
         if not names:
-            names = [m.name for m in await self.store.call("models") if getattr(m, "live", None) is not None]
+            names = [m.name for m in await self.store.models() if m.live is not None]
             for name in names:
                 self.status.setdefault(name, ModelStatus())
         for name in names:
@@ -149,7 +161,7 @@ class ModelSet:
         for name, st in sorted(self.status.items()):
             s = self.live.get(name)
             entry: dict[str, object] = {
-                "state": "ready" if s is not None and st.state == "ready" else st.state,
+                "state": ServingState.READY if s is not None and st.state == ServingState.READY else st.state,
                 **({"detail": st.detail} if st.detail else {}),
                 **(s.describe() if s is not None else {}),
             }
@@ -163,10 +175,10 @@ class ModelSet:
         st = self.status.get(name)
         s = self.live.get(name)
         if st is None:
-            return {"version": None, "state": "not-served", "detail": None, "loaded_at": None}
+            return {"version": None, "state": ServingState.NOT_SERVED, "detail": None, "loaded_at": None}
         return {
             "version": s.version if s else None,
-            "state": "ready" if s and st.state == "ready" else st.state,
+            "state": ServingState.READY if s and st.state == ServingState.READY else st.state,
             "detail": st.detail or None,
             "loaded_at": s.loaded_at if s else None,
         }
@@ -176,7 +188,7 @@ class ModelSet:
         return self._locks.setdefault(key, asyncio.Lock())
 
     async def _load(self, name: str, version: int, manifest_sha256: str | None) -> ServedModel:
-        bundle = await self.store.call("fetch", name, version)
+        bundle = await self.store.fetch(name, version)
         served = await asyncio.to_thread(
             load_served,
             bundle,
@@ -203,9 +215,9 @@ class ModelSet:
             status = self.status.setdefault(name, ModelStatus())
             current = self.live.get(name)
             try:
-                info = await self.store.call("live", name)
+                info = await self.store.live(name)
             except NotFoundError as exc:
-                status.state, status.detail = "failed", exc.message
+                status.state, status.detail = ServingState.FAILED, exc.message
                 self._update_ready()
                 return current
             if info is None:
@@ -214,25 +226,30 @@ class ModelSet:
                         # Serving every live model: one without a live version is not ours to wait for.
                         self.status.pop(name, None)
                     else:
-                        status.state, status.detail = "no-live-version", "promote a version to live"
+                        status.state, status.detail = ServingState.NO_LIVE_VERSION, "promote a version to live"
                 self._update_ready()
                 return current
-            version = int(info.version)
+            version = info.version
             if current is not None and current.version == version:
                 if status.failed_version is not None:  # the registry went back to what we serve
-                    status.state, status.detail, status.failures, status.failed_version = "ready", "", 0, None
+                    status.state, status.detail, status.failures, status.failed_version = (
+                        ServingState.READY,
+                        "",
+                        0,
+                        None,
+                    )
                     self._update_ready()
                 return current
-            status.state = "loading" if current is None else status.state
+            status.state = ServingState.LOADING if current is None else status.state
             try:
-                new = await self._load(name, version, getattr(info, "manifest_sha256", None))
+                new = await self._load(name, version, info.manifest_sha256)
             except TextsieveError as exc:
                 status.failures += 1
                 status.retry_at = time.monotonic() + min(
                     self.settings.poll_seconds * 2**status.failures, MAX_RETRY_SECONDS
                 )
                 if current is None:
-                    status.state = "failed"
+                    status.state = ServingState.FAILED
                 status.failed_version = version
                 status.detail = f"version {version} could not be loaded: {exc.message}"
                 self.metrics.swaps.labels(name, "failed").inc()
@@ -241,7 +258,7 @@ class ModelSet:
                 return current
             # The switch: one assignment on the event loop thread.
             self.live[name] = new
-            status.state, status.detail, status.failures, status.failed_version = "ready", "", 0, None
+            status.state, status.detail, status.failures, status.failed_version = ServingState.READY, "", 0, None
             self.metrics.now_serving(name, version, new.manifest_sha256)
             self.metrics.swaps.labels(name, "startup" if current is None else "swapped").inc()
             log.info("model %s: now serving version %s (%s, loaded in %.2fs)", name, version, why, new.load_seconds)
@@ -306,13 +323,13 @@ class ModelSet:
     async def _missing(self, name: str) -> NoReturn:
         st = self.status.get(name)
         if st is not None:
-            if st.state == "no-live-version":
+            if st.state == ServingState.NO_LIVE_VERSION:
                 raise NotFoundError(f"model {name!r} has no live version; pin one with 'version' or promote one")
             raise UnavailableError(f"model {name!r} is not ready ({st.state}{': ' + st.detail if st.detail else ''})")
         if self.settings.models:
             raise NotFoundError(f"model {name!r} is not served here; served: {', '.join(self.settings.models)}")
         # Serving every live model: a name we do not know is either unknown or not live yet.
-        info = await self.store.call("live", name)  # NotFoundError for an unknown model
+        info = await self.store.live(name)  # NotFoundError for an unknown model
         if info is None:
             raise NotFoundError(f"model {name!r} has no live version; pin one with 'version' or promote one")
         raise UnavailableError(f"model {name!r} became live recently and is still loading")
@@ -325,8 +342,8 @@ class ModelSet:
         if cached is not None:
             self.pinned.move_to_end(key)
             return cached
-        info = await self.store.call("version", name, version)  # NotFoundError when unknown
-        if info.state == "retired":
+        info = await self.store.version(name, version)  # NotFoundError when unknown
+        if info.state == State.RETIRED:
             live = self.live.get(name)
             instead = f"the live version ({live.version})" if live is not None else "the live version"
             raise StateError(
@@ -334,7 +351,7 @@ class ModelSet:
                 "a candidate or a registered version, or roll back to it",
                 model=name,
                 version=version,
-                state="retired",
+                state=State.RETIRED,
             )
         if self.settings.pinned_versions == 0:
             raise NotFoundError(
@@ -348,7 +365,7 @@ class ModelSet:
             live = self.live.get(name)
             if live is not None and live.version == version:
                 return live
-            served = await self._load(name, version, getattr(info, "manifest_sha256", None))
+            served = await self._load(name, version, info.manifest_sha256)
             self.pinned[key] = served
             while len(self.pinned) > self.settings.pinned_versions:
                 _, old = self.pinned.popitem(last=False)
@@ -387,16 +404,16 @@ class ModelSet:
             await self._discover()
             self._update_ready()
             return
-        cursor, events = await self.store.call("changes_since", self._cursor)
-        self._cursor = int(cursor)
-        changed = {str(e.model) for e in events}
+        assert self._cursor is not None  # read by _discover, which has run
+        self._cursor, events = await self.store.changes_since(self._cursor)
+        changed = {e.model for e in events}
         if self.settings.models:
             changed &= set(self.settings.models)
         now = time.monotonic()
         retry = {
             n
             for n, st in self.status.items()
-            if (st.state == "failed" or st.failed_version is not None) and st.retry_at <= now
+            if (st.state == ServingState.FAILED or st.failed_version is not None) and st.retry_at <= now
         }
         for name in changed:
             self._drop_pinned(name)
@@ -405,4 +422,4 @@ class ModelSet:
         self._update_ready()
 
 
-__all__ = ["ModelSet", "ModelStatus"]
+__all__ = ["ModelSet", "ModelStatus", "ServingState"]

@@ -1,7 +1,9 @@
 """The registry as the service uses it: every call on one dedicated thread.
 
 SQLite connections belong to the thread that opened them, and registry calls block, so the
-registry is opened and used on a single worker thread and awaited from the event loop.
+registry is opened and used on a single worker thread and awaited from the event loop. Each
+registry operation the service needs has a typed method of the same name here, so a renamed
+or re-typed registry method is a type error, not a failure at request time.
 """
 
 from __future__ import annotations
@@ -10,11 +12,13 @@ import asyncio
 import functools
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
-from typing import Any, TypeVar
+from typing import ParamSpec, TypeVar
 
 from textsieve.errors import UnavailableError
+from textsieve.registry import Bundle, Event, ModelInfo, Promotion, Registry, VersionInfo, open_registry
 from textsieve.service.settings import public_location
 
+P = ParamSpec("P")
 T = TypeVar("T")
 
 
@@ -24,40 +28,70 @@ class RegistryThread:
         self.label = public_location(location)  # for messages: no database password
         self.blobs = blobs
         self._executor = ThreadPoolExecutor(1, thread_name_prefix="textsieve-registry")
-        self._registry: Any = None
+        self._registry: Registry | None = None
 
-    def _open(self) -> Any:
-        from textsieve.registry.api import open_registry
-
+    def _open(self) -> Registry:
         # create=False: a mistyped registry path is reported instead of becoming a new, empty registry.
         return open_registry(self.location, blobs=self.blobs, create=False)
 
-    async def _call(self, fn: Callable[..., T], *args: Any, **kwargs: Any) -> T:
+    async def _run(self, fn: Callable[P, T], *args: P.args, **kwargs: P.kwargs) -> T:
+        """``fn(*args, **kwargs)`` on the registry thread; its exceptions are raised here unchanged."""
         loop = asyncio.get_running_loop()
         return await loop.run_in_executor(self._executor, functools.partial(fn, *args, **kwargs))
 
     async def open(self) -> None:
         if self._registry is None:
-            self._registry = await self._call(self._open)
+            self._registry = await self._run(self._open)
 
     @property
     def is_open(self) -> bool:
         return self._registry is not None
 
     @property
-    def registry(self) -> Any:
+    def registry(self) -> Registry:
+        """The open registry; only to be used on the registry thread (through the methods below)."""
         if self._registry is None:
             raise UnavailableError(f"the registry at {self.label} is not open yet")
         return self._registry
 
-    async def call(self, method: str, *args: Any, **kwargs: Any) -> Any:
-        """``registry.<method>(*args, **kwargs)`` on the registry thread."""
-        return await self._call(getattr(self.registry, method), *args, **kwargs)
+    # -- reading ------------------------------------------------------------------------
+    async def models(self) -> list[ModelInfo]:
+        return await self._run(self.registry.models)
+
+    async def versions(self, model: str) -> list[VersionInfo]:
+        return await self._run(self.registry.versions, model)
+
+    async def version(self, model: str, version: int) -> VersionInfo:
+        return await self._run(self.registry.version, model, version)
+
+    async def live(self, model: str) -> VersionInfo | None:
+        return await self._run(self.registry.live, model)
+
+    async def history(self, model: str) -> list[Event]:
+        return await self._run(self.registry.history, model)
+
+    async def cursor(self) -> int:
+        return await self._run(self.registry.cursor)
+
+    async def changes_since(self, cursor: int) -> tuple[int, list[Event]]:
+        return await self._run(self.registry.changes_since, cursor)
+
+    async def fetch(self, model: str, version: int | None = None) -> Bundle:
+        return await self._run(self.registry.fetch, model, version)
+
+    # -- changing -----------------------------------------------------------------------
+    async def promote(
+        self, model: str, version: int, to: str, *, reason: str, actor: str | None = None, force: bool = False
+    ) -> Promotion:
+        return await self._run(self.registry.promote, model, version, to, reason=reason, actor=actor, force=force)
+
+    async def rollback(self, model: str, *, reason: str, actor: str | None = None) -> VersionInfo:
+        return await self._run(self.registry.rollback, model, reason=reason, actor=actor)
 
     async def close(self) -> None:
         if self._registry is not None:
             reg, self._registry = self._registry, None
-            await self._call(reg.close)
+            await self._run(reg.close)
         self._executor.shutdown(wait=True)
 
 

@@ -70,8 +70,8 @@ async def promote(
     name: str, n: str, body: PromoteRequest, request: Request, _: Admin, store: RegistryDep, models: ModelsDep
 ) -> AdminReply:
     version = _version_number(n)
-    result = await store.call(
-        "promote", name, version, body.to, reason=body.reason, actor=_actor(request, body.actor), force=body.force
+    result = await store.promote(
+        name, version, body.to, reason=body.reason, actor=_actor(request, body.actor), force=body.force
     )
     await models.refresh(name, why=f"promote via admin API: {body.reason}")
     request.state.model, request.state.version = name, version
@@ -95,7 +95,7 @@ async def promote(
 async def rollback(
     name: str, body: RollbackRequest, request: Request, _: Admin, store: RegistryDep, models: ModelsDep
 ) -> AdminReply:
-    info = await store.call("rollback", name, reason=body.reason, actor=_actor(request, body.actor))
+    info = await store.rollback(name, reason=body.reason, actor=_actor(request, body.actor))
     await models.refresh(name, why=f"rollback via admin API: {body.reason}")
     request.state.model, request.state.version = name, info.version
     return AdminReply(

@@ -15,6 +15,7 @@ from typing import Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 from pydantic_core import PydanticCustomError
 
+from textsieve.registry import ModelInfo, VersionInfo
 from textsieve.registry.names import MAX_VERSION, MODEL_NAME, MODEL_NAME_RULE
 
 # Bounds the schema states so that no number reaches a database column or a JSON encoder too big
@@ -130,8 +131,8 @@ class VersionView(BaseModel):
     previous_live: int | None = None
 
     @classmethod
-    def of(cls, info: Any) -> VersionView:
-        return cls.model_validate({k: getattr(info, k, None) for k in cls.model_fields})
+    def of(cls, info: VersionInfo) -> VersionView:
+        return cls.model_validate({k: getattr(info, k) for k in cls.model_fields})
 
 
 class ServingView(BaseModel):
@@ -150,13 +151,13 @@ class ModelView(BaseModel):
     serving: ServingView
 
     @classmethod
-    def of(cls, info: Any, serving: ServingView) -> ModelView:
+    def of(cls, info: ModelInfo, serving: ServingView) -> ModelView:
         return cls(
             name=info.name,
             live=info.live,
             candidate=info.candidate,
             versions=info.versions,
-            updated_at=getattr(info, "updated_at", None),
+            updated_at=info.updated_at,
             serving=serving,
         )
 

@@ -26,17 +26,17 @@ def _version_number(n: str) -> int:
 
 @router.get("", response_model=list[ModelView], responses=_PROBLEM, summary="Every model in the registry")
 async def list_models(store: RegistryDep, models: ModelsDep) -> list[ModelView]:
-    infos = await store.call("models")
+    infos = await store.models()
     return [ModelView.of(m, ServingView.model_validate(models.serving(m.name))) for m in infos]
 
 
 @router.get("/{name}", response_model=ModelDetail, responses=_PROBLEM, summary="One model and its recent history")
 async def get_model(name: str, store: RegistryDep, models: ModelsDep) -> ModelDetail:
-    infos = {m.name: m for m in await store.call("models")}
-    events = await store.call("history", name)  # NotFoundError for an unknown model
+    infos = {m.name: m for m in await store.models()}
+    events = await store.history(name)  # NotFoundError for an unknown model
     info = infos.get(name)
     if info is None:  # created between the two reads; ask once more
-        info = {m.name: m for m in await store.call("models")}[name]
+        info = {m.name: m for m in await store.models()}[name]
     view = ModelView.of(info, ServingView.model_validate(models.serving(name)))
     recent = [e.model_dump(mode="json") for e in sorted(events, key=lambda e: e.id, reverse=True)[:HISTORY]]
     return ModelDetail(**view.model_dump(), history=recent)
@@ -44,12 +44,12 @@ async def get_model(name: str, store: RegistryDep, models: ModelsDep) -> ModelDe
 
 @router.get("/{name}/versions", response_model=list[VersionView], responses=_PROBLEM, summary="A model's versions")
 async def list_versions(name: str, store: RegistryDep) -> list[VersionView]:
-    return [VersionView.of(v) for v in await store.call("versions", name)]
+    return [VersionView.of(v) for v in await store.versions(name)]
 
 
 @router.get("/{name}/versions/{n}", response_model=VersionView, responses=_PROBLEM, summary="One version")
 async def get_version(name: str, store: RegistryDep, n: str = Path(description="version number")) -> VersionView:
-    return VersionView.of(await store.call("version", name, _version_number(n)))
+    return VersionView.of(await store.version(name, _version_number(n)))
 
 
 __all__ = ["router"]

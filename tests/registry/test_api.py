@@ -400,9 +400,20 @@ print("ok")
 
 
 def test_public_names() -> None:
+    """``__all__`` names exactly the package's public objects (HTTPX keeps the same test)."""
+    import inspect
+
     import textsieve.registry as r
 
     assert sorted(set(r.__all__)) == sorted(r.__all__)
     for name in r.__all__:
         assert hasattr(r, name), name
+        assert not name.startswith("_"), f"{name} is private"
+        obj = getattr(r, name)
+        assert not inspect.ismodule(obj), f"{name} is a module, import it by its path instead"
+        home = getattr(obj, "__module__", None) or r.__name__
+        assert home.startswith("textsieve.registry") and "._" not in home, f"{name} comes from {home}"
+    # Every public object the package namespace holds is listed (submodules are reached by path).
+    public = {n for n, v in vars(r).items() if not n.startswith("_") and not inspect.ismodule(v)}
+    assert public == set(r.__all__)
     assert r.open_registry is open_registry and r.Registry is Registry

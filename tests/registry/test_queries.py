@@ -3,11 +3,13 @@ invariants the database itself enforces."""
 
 from __future__ import annotations
 
+import re
+
 import pytest
 
 from tests.helpers.registries import RegistrySpec
 from textsieve.errors import RegistryError, StateError
-from textsieve.registry import Registry
+from textsieve.registry import STATES, Registry, State
 from textsieve.registry.migrations import MIGRATIONS, Migration, applied, migrate
 from textsieve.registry.queries import Queries
 
@@ -79,6 +81,22 @@ def test_states_outside_the_lifecycle_are_refused(registry: Registry) -> None:
         q = Queries(tx)
         q.ensure_model("m", NOW)
         _insert(q, 1, "staging")
+
+
+def test_the_state_enum_holds_the_strings_the_schema_allows(registry: Registry) -> None:
+    """The database and JSON keep the stored strings: each member is its string and reads back as the member."""
+    check = re.search(r"CHECK \(state IN \(([^)]*)\)\)", MIGRATIONS[0].sql)
+    assert check is not None
+    assert [s.strip().strip("'") for s in check.group(1).split(",")] == [str(s) for s in STATES] == list(State)
+    with registry.backend.write() as tx:
+        q = Queries(tx)
+        q.ensure_model("m", NOW)
+        _insert(q, 1, State.CANDIDATE)
+    with registry.backend.read() as tx:
+        assert tx.all("SELECT state FROM versions") == [{"state": "candidate"}]
+        info = Queries(tx).in_state("m", State.CANDIDATE)
+    assert info is not None and info.state is State.CANDIDATE
+    assert info.model_dump(mode="json")["state"] == "candidate" and f"{info.state}" == "candidate"
 
 
 def test_a_failed_write_transaction_leaves_nothing(registry: Registry) -> None:

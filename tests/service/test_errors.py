@@ -156,3 +156,31 @@ async def test_no_client_mistake_is_a_500(shared_registry: Path) -> None:
             assert r.status_code in (200, 404, 413, 422), (body, r.status_code, r.text)
             if r.status_code != 200:
                 assert r.headers["content-type"] == PROBLEM
+
+
+# The class → status table, checked against the error tree of textsieve/errors.py: each class
+# keeps its status, CLI exit code and place (UnavailableError reports worker crashes and
+# shutdown too, so it is not a RegistryError, yet still a 503 with Retry-After and exit 1).
+@pytest.mark.parametrize(
+    ("error", "status", "slug", "exit_code", "registry_error"),
+    [
+        ("UnavailableError", 503, "unavailable", 1, False),
+        ("IntegrityError", 503, "integrity", 1, True),
+        ("NotFoundError", 404, "not-found", 2, True),
+        ("StateError", 409, "state-conflict", 2, True),
+        ("GateRefusedError", 409, "gate-refused", 1, True),
+    ],
+)
+def test_error_classes_map_to_their_status_and_exit_code(
+    error: str, status: int, slug: str, exit_code: int, registry_error: bool
+) -> None:
+    from textsieve import errors
+    from textsieve.service.web.problems import render
+
+    exc = getattr(errors, error)("something is off")
+    assert isinstance(exc, errors.RegistryError) is registry_error
+    assert isinstance(exc, errors.TextsieveError) and exc.exit_code == exit_code
+    r = render(exc, {"type": "http", "path": "/v1/models"})
+    body = json.loads(bytes(r.body))
+    assert r.status_code == status and body["type"] == f"/problems/{slug}"
+    assert ("retry-after" in r.headers) is (status == 503)

@@ -6,7 +6,9 @@ from __future__ import annotations
 import asyncio
 import os
 import signal
+from concurrent.futures import Future
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -14,6 +16,7 @@ import pytest
 from tests.helpers.service import serving, settings_for
 from textsieve.errors import UnavailableError
 from textsieve.registry.runtime import Predictor
+from textsieve.service.inference.workers import Message, Outcome, Run
 
 pytestmark = pytest.mark.anyio
 TEXTS = [
@@ -67,8 +70,8 @@ async def test_a_worker_that_keeps_dying_gives_503_not_500(registry_dir: Path, m
         worker = app.state.pool.procs.workers[0]
         real = worker.submit
 
-        def dies(msg: tuple) -> tuple:  # type: ignore[type-arg]
-            if msg[0] == "run":  # the worker dies with the batch in its pipe, every time
+        def dies(msg: Message) -> tuple[int, Future[tuple[Outcome, Any]]]:
+            if isinstance(msg, Run):  # the worker dies with the batch in its pipe, every time
                 os.kill(worker.proc.pid, signal.SIGKILL)
                 worker.proc.join(5)
             return real(msg)
