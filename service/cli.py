@@ -69,8 +69,11 @@ def cli_serve(args: argparse.Namespace) -> int:
         "on" if settings.admin_enabled else "off",
     )
     print(f"textsieve: serving on http://{settings.host}:{settings.port}/ (Ctrl-C stops)", file=sys.stderr, flush=True)
+    app = create_app(settings)
     config = uvicorn.Config(
-        create_app(settings),
+        app,
+        http=app.state.guard.protocol(),  # connection cap and read deadline: service/web/transport.py
+        timeout_keep_alive=settings.keepalive_seconds,
         host=settings.host,
         port=settings.port,
         access_log=False,

@@ -7,6 +7,7 @@ so tests construct their own.
 from __future__ import annotations
 
 import os
+from pathlib import Path
 from typing import Annotated, Any, Literal
 
 from pydantic import Field, SecretStr, field_validator, model_validator
@@ -15,6 +16,35 @@ from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 from textsieve.environment import DEFAULT_REGISTRY, check_blobs, check_registry
 
 MIN_TOKEN_CHARS = 16
+
+
+MIB = 1024 * 1024
+
+
+def memory_bytes() -> int:
+    """Memory this process may use: the cgroup v2 limit when one is set (containers), else physical RAM."""
+    physical = os.sysconf("SC_PHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    try:
+        text = Path("/sys/fs/cgroup/memory.max").read_text(encoding="ascii").strip()
+    except OSError:
+        return int(physical)
+    return min(int(physical), int(text)) if text.isdigit() else int(physical)
+
+
+def _body_budget() -> int:
+    # 1/128 of memory for request bodies in flight, between 16 and 256 MiB: 24 GiB gives 192 MiB.
+    return max(16 * MIB, min(256 * MIB, memory_bytes() // 128))
+
+
+def _max_connections() -> int:
+    # An open connection holds up to ~64 KiB of unread body in the server (uvicorn's flow-control
+    # high-water mark) plus its socket buffers: one per 16 MiB of memory keeps that under 1/200 of
+    # memory (24 GiB: 1536 connections), between 64 and 4096, and below the open-file limit.
+    import resource
+
+    soft, _ = resource.getrlimit(resource.RLIMIT_NOFILE)
+    by_memory = max(64, min(4096, memory_bytes() // (16 * MIB)))
+    return max(16, min(by_memory, soft - 64)) if soft > 0 else by_memory
 
 
 def _cores() -> int:
@@ -58,6 +88,36 @@ class Settings(BaseSettings):
     max_chars: int = Field(20_000, ge=1, description="most characters in one text")
     max_body_bytes: int = Field(4 * 1024 * 1024, ge=1024, description="largest request body")
     max_spans: int = Field(20, ge=0, description="most spans a request may ask for per text")
+
+    queue_wait_ms: float = Field(
+        250.0,
+        gt=0,
+        le=60_000,
+        description="longest admitted work waits for inference; beyond it a request is refused at once "
+        "(503 + Retry-After), sized from the measured rate",
+    )
+    body_budget_bytes: int = Field(
+        default_factory=_body_budget,
+        ge=1024,
+        description="request-body bytes buffered across all connections (default: memory/128, 16–256 MiB); "
+        "beyond it 503 + Retry-After before the body is read",
+    )
+    max_connections: int = Field(
+        default_factory=_max_connections,
+        ge=1,
+        description="open connections per replica (default from memory and the open-file limit); "
+        "beyond it new connections get 503 + Retry-After and are closed",
+    )
+    read_timeout_seconds: float = Field(
+        15.0,
+        gt=0,
+        le=3600,
+        description="longest a client may take to send one request's headers and body; a slower one is "
+        "answered 408 and closed",
+    )
+    keepalive_seconds: int = Field(
+        5, ge=1, le=3600, description="an idle keep-alive connection is closed after this long"
+    )
 
     admin_token: SecretStr | None = Field(None, description="bearer token for the admin calls; unset: admin is off")
     poll_seconds: float = Field(2.0, gt=0, le=3600, description="how often the registry's change cursor is read")
@@ -111,6 +171,11 @@ class Settings(BaseSettings):
             raise ValueError(
                 f"max_body_bytes ({self.max_body_bytes}) is smaller than max_chars "
                 f"({self.max_chars}): a single text of the allowed size could never be sent"
+            )
+        if self.body_budget_bytes < self.max_body_bytes:
+            raise ValueError(
+                f"body_budget_bytes ({self.body_budget_bytes}) is smaller than max_body_bytes "
+                f"({self.max_body_bytes}): a request of the allowed size could never be admitted"
             )
         return self
 

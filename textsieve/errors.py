@@ -11,7 +11,9 @@
     │   ├── GateRefusedError       a promotion gate refused: CLI exit 1, HTTP 409
     │   └── IntegrityError         a stored blob is missing or its sha256 differs: CLI exit 1, HTTP 503
     ├── UnavailableError           cannot answer now, retry (registry unreachable, worker gone, shutting down):
-    │                              CLI exit 1, HTTP 503
+    │   │                          CLI exit 1, HTTP 503
+    │   └── OverloadedError        this replica is at a bound (queue, bodies, connections): HTTP 503 + Retry-After
+    ├── DeadlinePassedError        the caller's own deadline passed before inference started: HTTP 504
     └── AuthError                  missing or wrong admin token: HTTP 401/403
 
 Lower-layer errors (sqlite3, psycopg, onnxruntime, torch, OSError) are translated at one
@@ -86,6 +88,20 @@ class UnavailableError(TextsieveError):
     exit_code = 1
 
 
+class OverloadedError(UnavailableError):
+    """This replica has more work queued than it can start within its admitted wait."""
+
+    def __init__(self, message: str, *, retry_after: int, **context: Any) -> None:
+        super().__init__(message, **context)
+        self.retry_after = retry_after
+
+
+class DeadlinePassedError(TextsieveError):
+    """The caller's own deadline passed before inference started; nothing was computed."""
+
+    exit_code = 1
+
+
 class AuthError(TextsieveError):
     """Admin credentials are missing or wrong."""
 
@@ -97,11 +113,13 @@ class AuthError(TextsieveError):
 __all__ = [
     "AuthError",
     "BundleError",
+    "DeadlinePassedError",
     "GateRefusedError",
     "InputError",
     "IntegrityError",
     "LimitError",
     "NotFoundError",
+    "OverloadedError",
     "ParityError",
     "RegistryError",
     "StateError",

@@ -29,6 +29,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from textsieve.errors import UnavailableError
+from textsieve.service.inference.admission import Admission
 from textsieve.service.inference.packing import run_packed
 from textsieve.service.inference.spans import explain
 from textsieve.service.inference.workers import WorkerProcesses
@@ -37,12 +38,15 @@ from textsieve.service.telemetry import ServiceMetrics
 
 Result = dict[str, Any]
 PIPELINE = 2  # batches in flight per worker process
+# Fair order: each pass over the queue takes at most this many texts from a request before the
+# next request's turn, so one large request does not hold many small ones behind it.
+QUANTUM = 16
 
 
 class InferencePool:
     """``workers`` threads; thread i only ever uses session i of a version, or worker process i."""
 
-    def __init__(self, workers: int, mode: str = "threads") -> None:
+    def __init__(self, workers: int, mode: str = "threads", *, queue_wait_ms: float = 250.0) -> None:
         self.workers = workers
         self.mode = mode
         self.procs = WorkerProcesses(workers) if mode == "processes" else None
@@ -55,6 +59,7 @@ class InferencePool:
             self.threads, thread_name_prefix="textsieve-infer", initializer=self._name_thread
         )
         self._slots: asyncio.Semaphore | None = None
+        self.admission = Admission(max_wait_seconds=queue_wait_ms / 1000.0, threads=self.threads)
 
     def _name_thread(self) -> None:
         self._local.index = next(self._numbers)
@@ -87,6 +92,7 @@ class _Job:
     results: list[Result | None]
     taken: int = 0
     pending: int = 0
+    deadline: float | None = None  # perf_counter time from the caller's Textsieve-Deadline header
 
 
 @dataclass(slots=True)
@@ -127,25 +133,42 @@ class Batcher:
             self._collect(), name=f"batcher {self.served.name} v{self.served.version}"
         )
 
-    async def submit(self, texts: list[str], spans: int) -> list[Result]:
+    async def submit(self, texts: list[str], spans: int, *, deadline: float | None = None) -> list[Result]:
+        """Queue ``texts`` and wait for their results; refused at once when the replica is full."""
         if self._task is None or self._task.done():
             raise UnavailableError(f"model {self.served.name} version {self.served.version} is not accepting work")
-        loop = asyncio.get_running_loop()
-        job = _Job(texts, spans, loop.create_future(), time.perf_counter(), [None] * len(texts), 0, len(texts))
-        self._queue.append(job)
-        self._wakeup.set()
-        return await job.future
+        admission = self.pool.admission
+        admission.check_deadline(deadline)
+        admission.admit(len(texts))
+        try:
+            loop = asyncio.get_running_loop()
+            job = _Job(texts, spans, loop.create_future(), time.perf_counter(), [None] * len(texts), 0, len(texts))
+            job.deadline = deadline
+            self._queue.append(job)
+            self._wakeup.set()
+            return await job.future
+        finally:
+            admission.finished(len(texts))
 
     def _take(self, room: int) -> list[_Piece]:
+        """Up to ``room`` texts, QUANTUM per request per turn, requests taking turns in arrival order."""
         pieces: list[_Piece] = []
+        now = time.perf_counter()
         while room > 0 and self._queue:
-            job = self._queue[0]
-            hi = min(len(job.texts), job.taken + room)
+            job = self._queue.popleft()
+            if job.taken == 0 and job.deadline is not None and now > job.deadline:
+                try:
+                    self.pool.admission.check_deadline(job.deadline, now)
+                except Exception as exc:  # the deadline passed while queued: answer without computing
+                    if not job.future.done():
+                        job.future.set_exception(exc)
+                continue
+            hi = min(len(job.texts), job.taken + min(room, QUANTUM))
             pieces.append(_Piece(job, job.taken, hi))
             room -= hi - job.taken
             job.taken = hi
-            if hi == len(job.texts):
-                self._queue.popleft()
+            if hi < len(job.texts):
+                self._queue.append(job)  # its next turn comes after the requests behind it
         return pieces
 
     async def _collect(self) -> None:
@@ -215,6 +238,7 @@ class Batcher:
                     p.job.future.set_exception(exc)
             return
         done = fut.result()
+        self.pool.admission.measured(len(done.results), done.seconds)
         m = self.metrics
         m.batch_texts.observe(len(done.results))
         m.inference.observe(done.seconds)

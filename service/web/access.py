@@ -51,6 +51,7 @@ class AccessMiddleware:
         state = scope.setdefault("state", {})
         state["request_id"] = rid
         started = time.perf_counter()
+        state["received"] = started  # a caller's Textsieve-Deadline counts from here
         status = 500
 
         async def send_with_id(message: Message) -> None:

@@ -21,8 +21,9 @@ from textsieve.service.settings import Settings, load_settings
 from textsieve.service.telemetry import ServiceMetrics
 from textsieve.service.web import admin, health, openapi, page, predict, problems, views
 from textsieve.service.web.access import AccessMiddleware
-from textsieve.service.web.bodylimit import BodyLimitMiddleware
+from textsieve.service.web.bodylimit import BodyBudget, BodyLimitMiddleware
 from textsieve.service.web.onewrite import HeadWithBodyMiddleware
+from textsieve.service.web.transport import ConnectionGuard
 
 
 def create_app(settings: Settings | None = None) -> FastAPI:
@@ -31,7 +32,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @contextlib.asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
-        pool = InferencePool(settings.workers, settings.inference)
+        pool = InferencePool(settings.workers, settings.inference, queue_wait_ms=settings.queue_wait_ms)
         metrics.watch_workers(pool.procs.processes if pool.procs is not None else None)
         store = RegistryThread(settings.registry, settings.blobs)
         models = ModelSet(settings, store, pool, metrics)
@@ -58,11 +59,16 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     )
     app.state.settings = settings
     app.state.metrics = metrics
+    # Bounds across requests (see bodylimit.py and transport.py); serve hands the guard to uvicorn.
+    app.state.budget = budget = BodyBudget(settings.body_budget_bytes)
+    app.state.guard = ConnectionGuard(
+        max_connections=settings.max_connections, read_timeout=settings.read_timeout_seconds
+    )
     problems.install(app)
     for module in (predict, views, admin, health, page):
         app.include_router(module.router)
     openapi.install(app)
-    app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes)
+    app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes, budget=budget)
     app.add_middleware(AccessMiddleware, metrics=metrics, enabled=settings.access_log)
     app.add_middleware(HeadWithBodyMiddleware)  # outermost of ours: see service/web/onewrite.py
     return app

@@ -1,19 +1,59 @@
-"""Refuse request bodies above ``max_body_bytes`` before anything parses them.
+"""Request bodies: the per-request limit and the replica's budget for bodies in flight.
 
-A declared Content-Length over the limit is refused without reading; a body without one
-(chunked) is read up to the limit and replayed to the app. The refusal is the same
-problem+json as every other limit (built by :mod:`textsieve.service.web.problems`).
+``max_body_bytes`` bounds one request: a declared Content-Length over it is refused (413)
+without reading, a chunked body when it crosses it. ``body_budget_bytes`` bounds all of them
+together: every request reserves its body's bytes (the declared length at once, a chunked body
+as it arrives) before they are read, and gives them back when it has been answered. A request
+that would take the replica past the budget is refused at once with 503, Retry-After and
+``Connection: close`` (so its unread body is never read), instead of every slow or stalled
+upload holding megabytes until memory runs out. When the bodies in flight drop back to none
+after a burst, freed memory is handed back to the operating system (see
+:mod:`textsieve.service.inference.memory`), so a replica's memory returns near its idle level.
+
+The refusals are the same problem+json as every other limit (:mod:`textsieve.service.web.problems`).
 """
 
 from __future__ import annotations
 
+import time
+
 from starlette.datastructures import Headers
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
-from textsieve.errors import LimitError
+from textsieve.errors import LimitError, OverloadedError
+from textsieve.service.inference.memory import release_freed_memory
 from textsieve.service.web.problems import render
 
 _WITH_BODY = frozenset({"POST", "PUT", "PATCH"})
+TRIM_AFTER_BYTES = 8 * 1024 * 1024  # hand memory back once at least this much passed through
+TRIM_EVERY_SECONDS = 1.0
+
+
+class BodyBudget:
+    """Bytes of request bodies reserved across every connection of this replica."""
+
+    def __init__(self, limit: int) -> None:
+        self.limit = limit
+        self.used = 0
+        self.refused = 0
+        self._since_trim = 0
+        self._trimmed_at = 0.0
+
+    def take(self, n: int) -> bool:
+        if self.used + n > self.limit:
+            self.refused += 1
+            return False
+        self.used += n
+        self._since_trim += n
+        return True
+
+    def give_back(self, n: int) -> None:
+        self.used -= n
+        if self.used == 0 and self._since_trim >= TRIM_AFTER_BYTES:
+            now = time.monotonic()
+            if now - self._trimmed_at >= TRIM_EVERY_SECONDS:
+                self._trimmed_at, self._since_trim = now, 0
+                release_freed_memory()
 
 
 def _too_large(limit: int, got: int | None) -> LimitError:
@@ -25,47 +65,74 @@ def _too_large(limit: int, got: int | None) -> LimitError:
     )
 
 
+def _over_budget(budget: BodyBudget) -> OverloadedError:
+    return OverloadedError(
+        f"this replica is already holding {budget.used} bytes of request bodies, its budget is "
+        f"{budget.limit} (TEXTSIEVE_BODY_BUDGET_BYTES): retry after the Retry-After seconds, or on another replica",
+        retry_after=1,
+    )
+
+
 class BodyLimitMiddleware:
-    def __init__(self, app: ASGIApp, max_bytes: int) -> None:
+    def __init__(self, app: ASGIApp, max_bytes: int, budget: BodyBudget) -> None:
         self.app = app
         self.max_bytes = max_bytes
+        self.budget = budget
+
+    async def _refuse(self, exc: Exception, scope: Scope, receive: Receive, send: Send) -> None:
+        response = render(exc, scope)
+        response.headers["Connection"] = "close"  # the unread rest of the body is never read
+        await response(scope, receive, send)
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http" or scope["method"] not in _WITH_BODY:
             await self.app(scope, receive, send)
             return
         declared = Headers(scope=scope).get("content-length")
-        if declared is not None:
-            if declared.isdigit() and int(declared) > self.max_bytes:
-                await render(_too_large(self.max_bytes, int(declared)), scope)(scope, receive, send)
-                return
-            await self.app(scope, receive, send)
+        expected = int(declared) if declared is not None and declared.isdigit() else None
+        if expected is not None and expected > self.max_bytes:
+            await self._refuse(_too_large(self.max_bytes, expected), scope, receive, send)
             return
-        chunks: list[bytes] = []
-        size = 0
-        while True:
-            message = await receive()
-            if message["type"] != "http.request":  # the client went away
-                return
-            chunk = message.get("body", b"")
-            size += len(chunk)
-            if size > self.max_bytes:
-                await render(_too_large(self.max_bytes, None), scope)(scope, receive, send)
-                return
-            chunks.append(chunk)
-            if not message.get("more_body", False):
-                break
-        body = b"".join(chunks)
-        sent = False
+        taken = 0
+        try:
+            if expected:
+                if not self.budget.take(expected):
+                    await self._refuse(_over_budget(self.budget), scope, receive, send)
+                    return
+                taken = expected
+            chunks: list[bytes] = []
+            size = 0
+            while True:
+                message = await receive()
+                if message["type"] != "http.request":  # the client went away (or was timed out)
+                    return
+                chunk = message.get("body", b"")
+                size += len(chunk)
+                if size > self.max_bytes:
+                    await self._refuse(_too_large(self.max_bytes, None), scope, receive, send)
+                    return
+                if size > taken:  # a chunked body reserves as it arrives
+                    if not self.budget.take(size - taken):
+                        await self._refuse(_over_budget(self.budget), scope, receive, send)
+                        return
+                    taken = size
+                chunks.append(chunk)
+                if not message.get("more_body", False):
+                    break
+            body = b"".join(chunks)
+            del chunks
+            sent = False
 
-        async def replay() -> Message:
-            nonlocal sent
-            if not sent:
-                sent = True
-                return {"type": "http.request", "body": body, "more_body": False}
-            return await receive()
+            async def replay() -> Message:
+                nonlocal sent
+                if not sent:
+                    sent = True
+                    return {"type": "http.request", "body": body, "more_body": False}
+                return await receive()
 
-        await self.app(scope, replay, send)
+            await self.app(scope, replay, send)
+        finally:
+            self.budget.give_back(taken)
 
 
-__all__ = ["BodyLimitMiddleware"]
+__all__ = ["BodyBudget", "BodyLimitMiddleware"]

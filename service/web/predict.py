@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
-from typing import Any
+import time
+from typing import Annotated, Any
 
 import orjson
-from fastapi import APIRouter, Request, Response
+from fastapi import APIRouter, Header, Request, Response
 
 from textsieve.errors import InputError, LimitError
 from textsieve.service.settings import Settings
@@ -14,6 +15,7 @@ from textsieve.service.web.problems import MEDIA_TYPE
 from textsieve.service.web.schemas import PredictRequest, PredictResponse, Problem
 
 router = APIRouter()
+MAX_DEADLINE_MS = 3_600_000
 _PROBLEM: dict[str, Any] = {"model": Problem, "content": {MEDIA_TYPE: {}}}
 
 
@@ -59,17 +61,35 @@ def check_limits(body: PredictRequest, settings: Settings) -> None:
         413: _PROBLEM,
         422: _PROBLEM,
         503: _PROBLEM,
+        504: _PROBLEM,
     },
     summary="Classify texts; each result has calibrated probabilities and the n-gram spans behind the label",
 )
 async def predict(
-    body: PredictRequest, request: Request, models: ModelsDep, settings: SettingsDep, metrics: MetricsDep
+    body: PredictRequest,
+    request: Request,
+    models: ModelsDep,
+    settings: SettingsDep,
+    metrics: MetricsDep,
+    deadline_ms: Annotated[
+        float | None,
+        Header(
+            alias="Textsieve-Deadline",
+            gt=0,
+            le=MAX_DEADLINE_MS,
+            description="the caller's own deadline in milliseconds from arrival: work that cannot start "
+            "before it is dropped and answered 504",
+        ),
+    ] = None,
 ) -> Response:
     check_limits(body, settings)
+    deadline = None
+    if deadline_ms is not None:
+        deadline = getattr(request.state, "received", time.perf_counter()) + deadline_ms / 1000.0
     served = await models.acquire(body.model, body.version)
     try:
         assert served.batcher is not None
-        results = await served.batcher.submit(body.texts, body.spans)
+        results = await served.batcher.submit(body.texts, body.spans, deadline=deadline)
     finally:
         models.release(served)
     state = request.state

@@ -23,11 +23,13 @@ from starlette.types import Scope
 from textsieve.errors import (
     AuthError,
     BundleError,
+    DeadlinePassedError,
     GateRefusedError,
     InputError,
     IntegrityError,
     LimitError,
     NotFoundError,
+    OverloadedError,
     StateError,
     TextsieveError,
     UnavailableError,
@@ -108,6 +110,22 @@ KINDS: dict[type[BaseException], Kind] = {
         "Temporarily unavailable",
         "The service cannot answer this right now (a model is still loading, or the "
         "registry cannot be reached). Retry after the Retry-After seconds.",
+    ),
+    OverloadedError: Kind(
+        503,
+        "overloaded",
+        "This replica is at capacity",
+        "The replica refused the request at once rather than queue it past its admitted wait "
+        "(TEXTSIEVE_QUEUE_WAIT_MS), or its request bodies or connections are at their bounds. "
+        "Nothing was computed: retry after the Retry-After seconds, or on another replica.",
+    ),
+    DeadlinePassedError: Kind(
+        504,
+        "deadline-passed",
+        "The caller's deadline passed",
+        "The request carried a Textsieve-Deadline header and inference could not start before "
+        "it passed; nothing was computed. Retrying with the same deadline under the same load "
+        "will likely fail again.",
     ),
     AdminDisabledError: Kind(
         403,
@@ -197,7 +215,9 @@ def render(exc: BaseException, scope: Scope) -> Response:
         if set(ctx) == {"context"} and isinstance(ctx["context"], dict):
             ctx = dict(ctx["context"])
         ctx = {k: v for k, v in ctx.items() if k not in _STANDARD}
-        return problem(kind, exc.message, scope, **ctx)
+        retry_after = getattr(exc, "retry_after", None)
+        headers = {"Retry-After": str(retry_after)} if retry_after is not None else None
+        return problem(kind, exc.message, scope, headers=headers, **ctx)
     log.error(
         "unhandled error on %s (request %s)",
         scope.get("path"),

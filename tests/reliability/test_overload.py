@@ -1,0 +1,268 @@
+"""Overload and hostile clients: bounded bodies, connections and queues; refusals that come at once.
+
+Against the real ``textsieve serve`` (uvicorn on loopback), since the guards live in the
+server's protocol and middleware. Status codes: 503 with Retry-After for a replica at capacity
+and 408 for a request that arrives too slowly (RFC 9110 §15.6.4 and §15.5.9); 504 for a
+caller's own deadline that passed before inference started (the HTTP status that the gRPC
+status DEADLINE_EXCEEDED is mapped to in Google's HTTP mapping of gRPC codes; from memory).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import select
+import socket
+import time
+from collections.abc import Iterator
+from pathlib import Path
+from types import SimpleNamespace
+from typing import Any
+
+import httpx
+import pytest
+
+from tests.helpers.servers import running_server
+from tests.helpers.service import make_registry, serving, settings_for
+from textsieve.errors import DeadlinePassedError, OverloadedError
+from textsieve.service.inference.admission import Admission
+from textsieve.service.inference.batcher import QUANTUM, Batcher, _Job
+
+MIB = 1024 * 1024
+
+
+@pytest.fixture(scope="module")
+def registry_path(tmp_path_factory: pytest.TempPathFactory, tiny_bundles: dict[str, Path]) -> Path:
+    return make_registry(tmp_path_factory.mktemp("overload") / "registry", tiny_bundles)
+
+
+def _connect(port: int) -> socket.socket:
+    s = socket.create_connection(("127.0.0.1", port), timeout=10)
+    s.setblocking(True)
+    return s
+
+
+def _head(length: int) -> bytes:
+    return (
+        f"POST /v1/predict HTTP/1.1\r\nHost: t\r\nContent-Type: application/json\r\nContent-Length: {length}\r\n\r\n"
+    ).encode()
+
+
+def _response(s: socket.socket, timeout: float) -> bytes:
+    """What the server sent within ``timeout`` (until it closed the connection or went quiet)."""
+    out = b""
+    end = time.monotonic() + timeout
+    while (left := end - time.monotonic()) > 0:
+        ready, _, _ = select.select([s], [], [], left)
+        if not ready:
+            break
+        try:
+            chunk = s.recv(65536)
+        except ConnectionError:
+            break
+        if not chunk:
+            break
+        out += chunk
+    return out
+
+
+def _status(raw: bytes) -> int:
+    return int(raw.split(b" ", 2)[1]) if raw.startswith(b"HTTP/1.1 ") else 0
+
+
+def _problem(raw: bytes) -> dict[str, Any]:
+    body: dict[str, Any] = json.loads(raw.split(b"\r\n\r\n", 1)[1])
+    return body
+
+
+@pytest.fixture
+def sockets() -> Iterator[list[socket.socket]]:
+    opened: list[socket.socket] = []
+    yield opened
+    for s in opened:
+        s.close()
+
+
+def test_stalled_bodies_are_bounded_by_the_budget_and_released_by_the_read_deadline(
+    registry_path: Path, tmp_path: Path, sockets: list[socket.socket]
+) -> None:
+    budget, body = 8 * MIB, 2 * MIB
+    with running_server(
+        str(registry_path),
+        tmp_path / "server.log",
+        workers=1,
+        inference="threads",
+        body_budget_bytes=budget,
+        max_body_bytes=body,
+        read_timeout_seconds=4,
+    ) as server:
+        idle = server.rss_bytes()
+        statuses = []
+        started = time.monotonic()
+        for _ in range(12):  # each declares 2 MiB, sends all but the last byte, then stalls
+            s = _connect(server.port)
+            sockets.append(s)
+            s.sendall(_head(body))
+            refusal = _response(s, 0.3)
+            if refusal:
+                statuses.append(_status(refusal))
+                assert b"retry-after: 1" in refusal.lower() and b"connection: close" in refusal.lower()
+                assert _problem(refusal)["type"] == "/problems/overloaded"
+                continue
+            s.sendall(b" " * (body - 1))
+            statuses.append(0)  # admitted, now stalled
+        assert statuses.count(0) == budget // body, statuses  # the rest were refused before their body was read
+        assert statuses.count(503) == 12 - budget // body
+        held = server.rss_bytes()
+        # The stalled bodies cost about the budget, not 12 x 2 MiB (uvicorn keeps up to 64 KiB per connection).
+        assert held - idle < budget + 12 * 64 * 1024 + 24 * MIB, (idle, held)
+        # Past the read deadline every stalled upload is answered 408 and closed; the budget is free again.
+        answers = [_response(s, 8) for s in sockets if s.fileno() != -1]
+        assert time.monotonic() - started < 15
+        timed_out = [a for a in answers if _status(a) == 408]
+        assert len(timed_out) == budget // body, [a[:40] for a in answers]
+        r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["charged twice"]}, timeout=10)
+        assert r.status_code == 200, r.text
+        after = server.rss_bytes()
+        assert after <= idle * 1.10, (idle, held, after)
+
+
+def test_slow_and_silent_clients_are_closed_at_the_read_deadline(
+    registry_path: Path, tmp_path: Path, sockets: list[socket.socket]
+) -> None:
+    with running_server(
+        str(registry_path), tmp_path / "server.log", workers=1, inference="threads", read_timeout_seconds=2
+    ) as server:
+        silent = _connect(server.port)
+        trickle = _connect(server.port)
+        sockets += [silent, trickle]
+        started = time.monotonic()
+        head = _head(40)
+        for i in range(len(head)):  # one byte every 0.25 s: the headers alone would take 20 s
+            try:
+                trickle.send(head[i : i + 1])
+            except OSError:
+                break
+            time.sleep(0.25)
+            if time.monotonic() - started > 6:
+                break
+        for s in (silent, trickle):
+            answer = _response(s, 5)
+            assert _status(answer) == 408, answer[:200]
+            assert s.recv(1) == b""  # and closed
+        assert time.monotonic() - started < 8
+        # Ordinary clients are unaffected.
+        r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["a refund please"]}, timeout=10)
+        assert r.status_code == 200
+
+
+def test_connections_beyond_the_cap_are_refused_at_once(
+    registry_path: Path, tmp_path: Path, sockets: list[socket.socket]
+) -> None:
+    cap = 6
+    with running_server(
+        str(registry_path),
+        tmp_path / "server.log",
+        workers=1,
+        inference="threads",
+        max_connections=cap,
+        read_timeout_seconds=30,
+    ) as server:
+        time.sleep(0.5)  # the readiness poll's connection has closed
+        held = [_connect(server.port) for _ in range(cap)]
+        sockets += held
+        time.sleep(0.3)
+        extra = _connect(server.port)
+        sockets.append(extra)
+        started = time.monotonic()
+        answer = _response(extra, 5)
+        assert time.monotonic() - started < 1.0
+        assert _status(answer) == 503 and b"retry-after: 1" in answer.lower(), answer[:300]
+        assert "TEXTSIEVE_MAX_CONNECTIONS" in _problem(answer)["detail"]
+        for s in held:
+            s.close()
+        time.sleep(0.3)
+        r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["the app crashes"]}, timeout=10)
+        assert r.status_code == 200
+
+
+# -- admission control ----------------------------------------------------------------------------
+def test_admission_admits_what_the_measured_rate_finishes_within_the_wait() -> None:
+    a = Admission(max_wait_seconds=0.25, threads=2)
+    a.measured(texts=1000, seconds=0.5)  # 2,000 texts/s per thread, 4,000 for the replica
+    assert a.rate == pytest.approx(4000)
+    assert a.limit == 1000
+    a.admit(900)
+    a.admit(100)
+    with pytest.raises(OverloadedError) as refused:
+        a.admit(1)
+    assert refused.value.retry_after == 1 and "TEXTSIEVE_QUEUE_WAIT_MS" in refused.value.message
+    a.finished(1000)
+    a.admit(5000)  # an empty queue admits one request whatever its size
+    assert a.refused == 1
+
+
+def test_a_passed_deadline_is_refused_and_counted() -> None:
+    a = Admission(max_wait_seconds=0.25, threads=1)
+    a.check_deadline(None)
+    a.check_deadline(time.perf_counter() + 10)
+    with pytest.raises(DeadlinePassedError):
+        a.check_deadline(time.perf_counter() - 0.01)
+    assert a.deadline_passed == 1
+
+
+def test_small_requests_take_turns_with_a_large_one() -> None:
+    # Fair order: a 256-text request queued first must not hold 20 single-text requests back.
+    pool = SimpleNamespace(admission=Admission(max_wait_seconds=1, threads=1))
+    batcher = Batcher(SimpleNamespace(name="m", version=1), pool, None, max_texts=128, wait_ms=0)  # type: ignore[arg-type]
+    loop = asyncio.new_event_loop()
+    try:
+        big = _Job(["x"] * 256, 0, loop.create_future(), 0.0, [None] * 256, 0, 256)
+        small = [_Job(["y"], 0, loop.create_future(), 0.0, [None], 0, 1) for _ in range(20)]
+        batcher._queue.extend([big, *small])
+        first = batcher._take(128)
+    finally:
+        loop.close()
+    taken: dict[int, int] = {}
+    for p in first:
+        taken[id(p.job)] = taken.get(id(p.job), 0) + p.hi - p.lo
+    assert all(taken.get(id(j)) == 1 for j in small)  # every small request is in the first batch
+    assert taken[id(big)] == 128 - 20 and sum(taken.values()) == 128
+    assert QUANTUM < 128
+
+
+@pytest.mark.anyio
+async def test_a_deadline_that_passes_before_inference_is_answered_504(registry_path: Path) -> None:
+    async with serving(settings_for(registry_path)) as (_, client):
+        ok = await client.post("/v1/predict", json={"texts": ["hello"]}, headers={"Textsieve-Deadline": "60000"})
+        assert ok.status_code == 200
+        late = await client.post("/v1/predict", json={"texts": ["hello"]}, headers={"Textsieve-Deadline": "0.001"})
+        assert late.status_code == 504, late.text
+        assert late.json()["type"] == "/problems/deadline-passed"
+        bad = await client.post("/v1/predict", json={"texts": ["hello"]}, headers={"Textsieve-Deadline": "soon"})
+        assert bad.status_code == 422
+
+
+def test_overload_is_refused_at_once_with_retry_after_and_nothing_is_lost(registry_path: Path, tmp_path: Path) -> None:
+    # A tiny admitted wait and many large requests at once: some are refused (503, Retry-After),
+    # every other one is answered in full; no other status appears.
+    texts = [f"my order {i} arrived damaged and support never replied" for i in range(256)]
+    with running_server(
+        str(registry_path), tmp_path / "server.log", workers=1, inference="threads", queue_wait_ms=5
+    ) as server:
+
+        async def burst() -> list[httpx.Response]:
+            limits = httpx.Limits(max_connections=64)
+            async with httpx.AsyncClient(base_url=server.url, timeout=30, limits=limits) as c:
+                return await asyncio.gather(*(c.post("/v1/predict", json={"texts": texts}) for _ in range(48)))
+
+        replies = asyncio.run(burst())
+    statuses = [r.status_code for r in replies]
+    assert set(statuses) <= {200, 503}, statuses
+    assert statuses.count(503) >= 1 and statuses.count(200) >= 1, statuses
+    for r in replies:
+        if r.status_code == 503:
+            assert r.headers["retry-after"].isdigit()
+            assert r.json()["type"] == "/problems/overloaded"
+        else:
+            assert len(r.json()["results"]) == 256
