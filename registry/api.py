@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import datetime as dt
 import os
+import time
 from pathlib import Path
 from types import TracebackType
 
@@ -44,13 +45,25 @@ from textsieve.registry.manifest import MANIFEST, Manifest
 from textsieve.registry.migrations import migrate
 from textsieve.registry.names import resolve_actor, validate_model_name, validate_reason, validate_version
 from textsieve.registry.queries import Queries
-from textsieve.registry.records import EvalsetInfo, Event, GateResult, ModelInfo, Promotion, State, VersionInfo
+from textsieve.registry.records import (
+    EvalsetInfo,
+    Event,
+    GarbageReport,
+    GateResult,
+    ModelInfo,
+    Promotion,
+    State,
+    VersionInfo,
+)
 
 DB_FILE = "registry.sqlite3"
 BLOB_DIR = "blobs"
 CACHE_DIR = "cache"
 _GATE_ATTEMPTS = 3
 _CHANGES_LIMIT = 1000
+# Unreferenced blobs younger than this are kept by garbage collection: a publish may be between
+# storing them and recording the version that refers to them.
+GC_GRACE_SECONDS = 3600.0
 
 
 def utc_now() -> str:
@@ -164,6 +177,44 @@ class Registry:
                 f"version {info.version} of {info.model!r} has a manifest this textsieve cannot read"
             ) from exc
         return Bundle(folder, manifest)
+
+    # -- garbage ------------------------------------------------------------------------------
+    def collect_garbage(self, *, older_than: float = GC_GRACE_SECONDS, dry_run: bool = False) -> GarbageReport:
+        """Remove blobs that no version and no evaluation set refers to (left by killed publishes).
+
+        A referenced blob is never removed. An unreferenced one is removed only once it is older
+        than ``older_than`` seconds: a publish stores its blobs before the transaction that
+        refers to them, and reusing an old blob makes it recent again, so a publish running
+        alongside never loses a blob it is about to record.
+        """
+        if older_than < 0:
+            raise InputError(f"older_than must be zero or more seconds, got {older_than}")
+        cutoff = time.time() - older_than
+        stored = list(self.blobs.stored())  # listed before the references are read: see above
+        with self.backend.read() as tx:
+            referenced = Queries(tx).referenced_blobs()
+        removed: list[str] = []
+        removed_bytes = spared = 0
+        for digest, mtime, size in stored:
+            if digest in referenced:
+                continue
+            if mtime > cutoff:
+                spared += 1
+                continue
+            if not dry_run and not self.blobs.remove_if_older(digest, cutoff):
+                spared += 1  # reused by a publish since it was listed
+                continue
+            removed.append(digest)
+            removed_bytes += size
+        temporary = 0 if dry_run else self.blobs.sweep_temporary(older_than=max(older_than, 60.0))
+        return GarbageReport(
+            referenced=len(referenced),
+            removed=sorted(removed),
+            removed_bytes=removed_bytes,
+            spared_recent=spared,
+            temporary_removed=temporary,
+            dry_run=dry_run,
+        )
 
     # -- publishing -----------------------------------------------------------------------
     def publish(

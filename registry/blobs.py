@@ -15,7 +15,7 @@ import re
 import shutil
 import tempfile
 import time
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from pathlib import Path
 
 from textsieve.errors import IntegrityError, RegistryError
@@ -59,6 +59,7 @@ class BlobStore:
     def put_bytes(self, data: bytes) -> str:
         digest = hashlib.sha256(data).hexdigest()
         if self._intact(digest):
+            self._touch(digest)
             return digest
         self._write(digest, [data])
         return digest
@@ -77,6 +78,7 @@ class BlobStore:
             digest = h.hexdigest()
             if self._intact(digest):
                 os.unlink(tmp)
+                self._touch(digest)
             else:
                 # A damaged blob of the same name is replaced: the new content is the right one.
                 os.replace(tmp, self.root / digest)
@@ -102,6 +104,32 @@ class BlobStore:
                 os.unlink(tmp)
             raise
         fsync_dir(self.root)
+
+    def _touch(self, digest: str) -> None:
+        # A publish that reuses an old unreferenced blob makes it recent, so that garbage
+        # collection (which spares recent blobs) cannot remove it before the publish commits.
+        with contextlib.suppress(FileNotFoundError):
+            os.utime(self.path(digest))
+
+    def stored(self) -> Iterator[tuple[str, float, int]]:
+        """(digest, mtime, size) of every blob; temporary files and foreign names are skipped."""
+        with contextlib.suppress(FileNotFoundError):
+            for entry in os.scandir(self.root):
+                if _SHA256.fullmatch(entry.name) and entry.is_file(follow_symlinks=False):
+                    with contextlib.suppress(FileNotFoundError):
+                        st = entry.stat(follow_symlinks=False)
+                        yield entry.name, st.st_mtime, st.st_size
+
+    def remove_if_older(self, digest: str, cutoff: float) -> bool:
+        """Remove the blob unless it changed or was reused (touched) after ``cutoff``; True if removed."""
+        path = self.path(digest)
+        try:
+            if path.stat().st_mtime > cutoff:
+                return False
+            os.unlink(path)
+        except FileNotFoundError:
+            return False
+        return True
 
     def _intact(self, digest: str) -> bool:
         try:

@@ -207,6 +207,14 @@ class Queries:
         )
         return [Event.from_row(r) for r in rows]
 
+    def referenced_blobs(self) -> set[str]:
+        """Every sha256 a version (its files and manifest) or an evaluation set refers to."""
+        rows = self.tx.all(
+            "SELECT sha256 AS d FROM version_files UNION SELECT manifest_sha256 FROM versions "
+            "UNION SELECT sha256 FROM evalsets"
+        )
+        return {str(r["d"]) for r in rows}
+
     def last_event_id(self) -> int:
         row = self.tx.one("SELECT MAX(id) AS n FROM events")
         return int(row["n"] or 0) if row else 0

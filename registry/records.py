@@ -27,6 +27,17 @@ class _Record(BaseModel):
     model_config = ConfigDict(frozen=True)
 
 
+class GarbageReport(_Record):
+    """What a garbage collection of the blob folder found and removed."""
+
+    referenced: int = Field(description="blobs a version or an evaluation set refers to (all kept)")
+    removed: list[str] = Field(description="sha256 of the unreferenced blobs removed (or, dry run, to remove)")
+    removed_bytes: int
+    spared_recent: int = Field(description="unreferenced blobs younger than the grace period, kept for now")
+    temporary_removed: int = Field(description="temporary files left by killed writers")
+    dry_run: bool
+
+
 class VersionInfo(_Record):
     model: str
     version: int
@@ -141,6 +152,7 @@ __all__ = [
     "EvalsetInfo",
     "Event",
     "EventKind",
+    "GarbageReport",
     "GateResult",
     "ModelInfo",
     "Promotion",

@@ -125,3 +125,44 @@ def test_sweep_removes_only_stale_temporary_files(tmp_path: Path) -> None:
     os.utime(old, (past, past))
     assert store.sweep_temporary() == 1
     assert not old.exists() and new.exists() and (tmp_path / digest).exists()
+
+
+# -- garbage collection ---------------------------------------------------------------------------
+def test_garbage_collection_removes_only_old_unreferenced_blobs(tmp_path: Path, tiny_bundles: dict[str, Path]) -> None:
+    import os
+    import time
+
+    from textsieve.registry import open_registry
+
+    with open_registry(tmp_path / "reg") as reg:
+        info = reg.publish(tiny_bundles["a"], "m", actor="tests", evalset=None)
+        referenced = set(info.files.values())
+        orphan_old = reg.blobs.put_bytes(b"left by a killed publish")
+        orphan_new = reg.blobs.put_bytes(b"a publish in progress")
+        past = time.time() - 7200
+        os.utime(reg.blobs.path(orphan_old), (past, past))
+        dry = reg.collect_garbage(dry_run=True)
+        assert dry.removed == [orphan_old] and reg.blobs.has(orphan_old)
+        report = reg.collect_garbage()  # default grace: an hour
+        assert report.removed == [orphan_old] and report.spared_recent == 1
+        assert report.removed_bytes == len(b"left by a killed publish")
+        assert not reg.blobs.has(orphan_old) and reg.blobs.has(orphan_new)
+        assert {d for d, _, _ in reg.blobs.stored()} == referenced | {orphan_new}
+        assert reg.collect_garbage(older_than=0).removed == [orphan_new]
+        for digest in referenced:  # every referenced blob is still there and intact
+            reg.blobs.verify(digest)
+        reg.fetch("m", 1)
+
+
+def test_reusing_an_old_orphan_makes_it_recent(tmp_path: Path) -> None:
+    import os
+    import time
+
+    from textsieve.registry import open_registry
+
+    with open_registry(tmp_path / "reg") as reg:
+        digest = reg.blobs.put_bytes(b"content a publish will reuse")
+        past = time.time() - 7200
+        os.utime(reg.blobs.path(digest), (past, past))
+        assert reg.blobs.put_bytes(b"content a publish will reuse") == digest  # a new publish stores it again
+        assert reg.collect_garbage().removed == []

@@ -362,6 +362,19 @@ def test_kills_at_random_moments_leave_a_valid_registry_of_complete_versions(
     assert len(outcomes) == TRIALS
     assert len(killed) >= TRIALS // 3, f"too few operations were cut short: {outcomes}"
     assert killed.count("publish") >= 5 and killed.count("live") >= 5, outcomes
+    with spec.open() as reg:
+        # Killed publishes left blobs no version refers to: garbage collection removes exactly
+        # those and keeps every referenced blob intact.
+        referenced = {d for v in reg.versions(MODEL) for d in v.files.values()}
+        evalset_info = reg.evalset(MODEL)
+        if evalset_info is not None:
+            referenced.add(evalset_info.sha256)
+        before = {d for d, _, _ in reg.blobs.stored()}
+        report = reg.collect_garbage(older_than=0)
+        assert set(report.removed) == before - referenced, report  # one evaluation set file in this test
+        assert {d for d, _, _ in reg.blobs.stored()} >= referenced
+        for digest in referenced:
+            reg.blobs.verify(digest)
     with spec.open() as reg:  # still fully usable
         n = reg.publish(bundles[-1], MODEL, actor="crash-test").version
         reg.promote(MODEL, n, "live", reason="after the kills", actor="crash-test", force=True)
