@@ -121,6 +121,21 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     _actor_arg(pe)
     pe.set_defaults(func=cli_evalset_add)
 
+    p = sub.add_parser(
+        "gc",
+        help="delete blobs that no version or evaluation set refers to (left by killed publishes)",
+    )
+    p.add_argument(
+        "--older-than",
+        type=float,
+        default=3600.0,
+        metavar="SECONDS",
+        help="spare unreferenced blobs younger than this: a publish in progress may be about to record them",
+    )
+    p.add_argument("--dry-run", action="store_true", help="list what would be deleted, delete nothing")
+    add_location_args(p)
+    p.set_defaults(func=cli_gc)
+
 
 def add_location_args(p: argparse.ArgumentParser) -> None:
     """``--registry`` and ``--blobs``; unset, they fall back on the environment when the verb runs."""
@@ -316,6 +331,21 @@ def cli_evalset_add(args: argparse.Namespace) -> int:
 
 
 # -- helpers ------------------------------------------------------------------------------
+def cli_gc(args: argparse.Namespace) -> int:
+    with _open(args) as reg:
+        report = reg.collect_garbage(older_than=args.older_than, dry_run=args.dry_run)
+    verb = "would delete" if report.dry_run else "deleted"
+    rows = [[digest[:16] + "…"] for digest in report.removed]
+    if rows:
+        _out(table(["UNREFERENCED BLOB"], rows))
+    _out(
+        f"{verb} {len(report.removed)} unreferenced blobs ({report.removed_bytes} bytes); kept {report.referenced} "
+        f"referenced; spared {report.spared_recent} younger than {args.older_than:g} s; "
+        f"{report.temporary_removed} temporary files removed"
+    )
+    return 0
+
+
 def summarise(e: Event) -> str:
     d: dict[str, Any] = e.details
     if e.kind == "publish":

@@ -165,3 +165,25 @@ def test_an_empty_registry_lists_no_models(capsys: pytest.CaptureFixture[str], t
     open_registry(tmp_path / "reg").close()
     code, out, _ = run(capsys, "models", "--registry", str(tmp_path / "reg"))
     assert code == 0 and "no models yet" in out
+
+
+def test_gc_deletes_old_unreferenced_blobs_and_says_so(tmp_path: Path, tiny_bundles: dict[str, Path]) -> None:
+    import os
+    import time
+
+    from textsieve.cli import main
+    from textsieve.registry import open_registry
+
+    with open_registry(tmp_path / "reg") as reg:
+        reg.publish(tiny_bundles["a"], "m", actor="tests")
+        orphan = reg.blobs.put_bytes(b"orphan")
+        os.utime(reg.blobs.path(orphan), (time.time() - 7200,) * 2)
+    args = ["gc", "--registry", str(tmp_path / "reg")]
+    assert main([*args, "--dry-run"]) == 0
+    with open_registry(tmp_path / "reg") as reg:
+        assert reg.blobs.has(orphan)
+    assert main(args) == 0
+    with open_registry(tmp_path / "reg") as reg:
+        assert not reg.blobs.has(orphan)
+        reg.fetch("m", 1)
+    assert main([*args, "--older-than", "-1"]) == 2
