@@ -27,6 +27,7 @@ import os
 import threading
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, Info, ProcessCollector, generate_latest
 from prometheus_client.metrics_core import CounterMetricFamily, GaugeMetricFamily, HistogramMetricFamily, Metric
@@ -175,6 +176,52 @@ class WorkerProcessCollector(Collector):
         yield from (rss, shared, cpu, start)
 
 
+class OverloadCollector(Collector):
+    """The replica's bounds (connections, request bodies, the inference queue), read when scraped.
+
+    The guards keep plain integer counts (they sit on the hot path); this turns them into series.
+    """
+
+    def __init__(self) -> None:
+        self.guard: Any = None  # service.web.transport.ConnectionGuard (only under uvicorn)
+        self.budget: Any = None  # service.web.bodylimit.BodyBudget
+        self.admission: Any = None  # service.inference.admission.Admission, while the pool runs
+
+    def collect(self) -> Iterator[Metric]:
+        refused = CounterMetricFamily(
+            "textsieve_overload_refusals",
+            "Requests or connections refused at once because this replica was at a bound "
+            "(connections, body_budget, queue) or the caller's deadline had passed (deadline).",
+            labels=("reason",),
+        )
+        guard, budget, admission = self.guard, self.budget, self.admission
+        if guard is not None:
+            refused.add_metric(["connections"], guard.refused)
+            yield GaugeMetricFamily("textsieve_connections_open", "Open client connections.", value=guard.open)
+            yield CounterMetricFamily(
+                "textsieve_connections_timed_out",
+                "Connections closed because a request's headers and body did not arrive in time.",
+                value=guard.timed_out,
+            )
+        if budget is not None:
+            refused.add_metric(["body_budget"], budget.refused)
+            yield GaugeMetricFamily(
+                "textsieve_body_bytes_in_flight", "Request-body bytes reserved across connections.", value=budget.used
+            )
+        if admission is not None:
+            refused.add_metric(["queue"], admission.refused)
+            refused.add_metric(["deadline"], admission.deadline_passed)
+            yield GaugeMetricFamily(
+                "textsieve_queue_texts", "Texts admitted and not yet answered.", value=admission.queued
+            )
+            yield GaugeMetricFamily(
+                "textsieve_queue_limit_texts",
+                "Most texts admitted at once: the measured rate times the admitted wait.",
+                value=admission.limit,
+            )
+        yield refused
+
+
 class _WithoutCreated(Collector):
     """The registry minus the ``*_created`` series the library adds to counters and histograms:
     they were never part of what this service exposes, and they would double its series."""
@@ -261,6 +308,8 @@ class ServiceMetrics:
         )
         self.worker_processes = WorkerProcessCollector()
         r.register(self.worker_processes)
+        self.overload = OverloadCollector()
+        r.register(self.overload)
         ProcessCollector(registry=r)  # the server process's own process_* series
         self._versions: dict[tuple[str, int], VersionMetrics] = {}
         self._http: dict[tuple[str, str, int], tuple[Counter, Histogram]] = {}
@@ -309,4 +358,11 @@ class ServiceMetrics:
         return generate_latest(self._exposed)
 
 
-__all__ = ["CONTENT_TYPE", "CountedHistogram", "ServiceMetrics", "VersionMetrics", "WorkerProcessCollector"]
+__all__ = [
+    "CONTENT_TYPE",
+    "CountedHistogram",
+    "OverloadCollector",
+    "ServiceMetrics",
+    "VersionMetrics",
+    "WorkerProcessCollector",
+]

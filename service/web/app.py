@@ -34,6 +34,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         pool = InferencePool(settings.workers, settings.inference, queue_wait_ms=settings.queue_wait_ms)
         metrics.watch_workers(pool.procs.processes if pool.procs is not None else None)
+        metrics.overload.admission = pool.admission
         store = RegistryThread(settings.registry, settings.blobs)
         models = ModelSet(settings, store, pool, metrics)
         app.state.store, app.state.pool, app.state.models = store, pool, models
@@ -64,6 +65,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.guard = ConnectionGuard(
         max_connections=settings.max_connections, read_timeout=settings.read_timeout_seconds
     )
+    metrics.overload.guard, metrics.overload.budget = app.state.guard, budget
     problems.install(app)
     for module in (predict, views, admin, health, page):
         app.include_router(module.router)

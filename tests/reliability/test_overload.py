@@ -75,6 +75,22 @@ def _problem(raw: bytes) -> dict[str, Any]:
     return body
 
 
+def scraped(url: str) -> dict[tuple[str, tuple[tuple[str, str], ...]], float]:
+    """/metrics read with prometheus_client's own parser."""
+    from prometheus_client.parser import text_string_to_metric_families
+
+    text = httpx.get(f"{url}/metrics", timeout=10).text
+    return {
+        (s.name, tuple(sorted(s.labels.items()))): s.value
+        for family in text_string_to_metric_families(text)
+        for s in family.samples
+    }
+
+
+def refusals(url: str, reason: str) -> float:
+    return scraped(url)[("textsieve_overload_refusals_total", (("reason", reason),))]
+
+
 @pytest.fixture
 def sockets() -> Iterator[list[socket.socket]]:
     opened: list[socket.socket] = []
@@ -123,6 +139,9 @@ def test_stalled_bodies_are_bounded_by_the_budget_and_released_by_the_read_deadl
         assert len(timed_out) == budget // body, [a[:40] for a in answers]
         r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["charged twice"]}, timeout=10)
         assert r.status_code == 200, r.text
+        assert refusals(server.url, "body_budget") == statuses.count(503)
+        assert scraped(server.url)[("textsieve_connections_timed_out_total", ())] >= budget // body
+        assert scraped(server.url)[("textsieve_body_bytes_in_flight", ())] == 0
         after = server.rss_bytes()
         assert after <= idle * 1.10, (idle, held, after)
 
@@ -154,6 +173,7 @@ def test_slow_and_silent_clients_are_closed_at_the_read_deadline(
         # Ordinary clients are unaffected.
         r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["a refund please"]}, timeout=10)
         assert r.status_code == 200
+        assert scraped(server.url)[("textsieve_connections_timed_out_total", ())] == 2
 
 
 def test_connections_beyond_the_cap_are_refused_at_once(
@@ -184,6 +204,7 @@ def test_connections_beyond_the_cap_are_refused_at_once(
         time.sleep(0.3)
         r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["the app crashes"]}, timeout=10)
         assert r.status_code == 200
+        assert refusals(server.url, "connections") == 1
 
 
 # -- admission control ----------------------------------------------------------------------------
@@ -214,7 +235,9 @@ def test_a_passed_deadline_is_refused_and_counted() -> None:
 def test_small_requests_take_turns_with_a_large_one() -> None:
     # Fair order: a 256-text request queued first must not hold 20 single-text requests back.
     pool = SimpleNamespace(admission=Admission(max_wait_seconds=1, threads=1))
-    batcher = Batcher(SimpleNamespace(name="m", version=1), pool, None, max_texts=128, wait_ms=0)  # type: ignore[arg-type]
+    from textsieve.service.telemetry import ServiceMetrics
+
+    batcher = Batcher(SimpleNamespace(name="m", version=1), pool, ServiceMetrics(), max_texts=128, wait_ms=0)  # type: ignore[arg-type]
     loop = asyncio.new_event_loop()
     try:
         big = _Job(["x"] * 256, 0, loop.create_future(), 0.0, [None] * 256, 0, 256)
@@ -257,9 +280,11 @@ def test_overload_is_refused_at_once_with_retry_after_and_nothing_is_lost(regist
                 return await asyncio.gather(*(c.post("/v1/predict", json={"texts": texts}) for _ in range(48)))
 
         replies = asyncio.run(burst())
+        refused_queue = refusals(server.url, "queue")
     statuses = [r.status_code for r in replies]
     assert set(statuses) <= {200, 503}, statuses
     assert statuses.count(503) >= 1 and statuses.count(200) >= 1, statuses
+    assert refused_queue == statuses.count(503)
     for r in replies:
         if r.status_code == 503:
             assert r.headers["retry-after"].isdigit()

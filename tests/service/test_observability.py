@@ -50,6 +50,13 @@ EXPOSED = {
     "textsieve_worker_shared_memory_bytes",
     "textsieve_worker_cpu_seconds_total",
     "textsieve_worker_start_time_seconds",
+    # The overload bounds (service/web/transport.py, bodylimit.py, inference/admission.py).
+    "textsieve_overload_refusals_total",
+    "textsieve_connections_open",
+    "textsieve_connections_timed_out_total",
+    "textsieve_body_bytes_in_flight",
+    "textsieve_queue_texts",
+    "textsieve_queue_limit_texts",
 }
 Samples = dict[tuple[str, tuple[tuple[str, str], ...]], float]
 
