@@ -5,7 +5,7 @@ BIN := $(VENV)/bin
 PIP := $(BIN)/pip
 STAMP := $(VENV)/.installed-$(shell cat pyproject.toml constraints.txt | sha256sum | cut -c1-12)
 
-.PHONY: demo test check venv services bench soak clean
+.PHONY: demo test check venv services bench soak overload clean
 
 $(STAMP): pyproject.toml constraints.txt
 	test -x $(BIN)/python || $(PY) -m venv $(VENV)
@@ -33,8 +33,14 @@ bench: venv
 	$(PIP) install --quiet -c constraints.txt -e '.[bench]'
 	$(BIN)/python bench/run.py
 
+# SOAK_MINUTES=60 make soak: an hour of mixed load with hot swaps; memory must stay within 10 %.
+SOAK_MINUTES ?= 10
 soak: venv
-	$(BIN)/python bench/soak.py
+	$(BIN)/python bench/soak.py --seconds $$(( $(SOAK_MINUTES) * 60 ))
+
+# 1,000 connections against one replica: every request answered in time or refused at once.
+overload: venv
+	$(BIN)/python bench/overload.py
 
 clean:
 	rm -rf $(VENV) demo-run textsieve-registry .pytest_cache .mypy_cache .ruff_cache .import_linter_cache .test-env
