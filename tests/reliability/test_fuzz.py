@@ -28,9 +28,22 @@ from schemathesis.specs.openapi import checks as openapi_checks
 from tests.helpers.servers import ADMIN_TOKEN, MODEL, running_server
 from tests.helpers.service import make_registry
 
-REQUESTS = 2200
+REQUESTS = 5000
+
+
+def _with_deadline(case: Any) -> bool:
+    return any(k.lower() == "textsieve-deadline" for k in (case.headers or {}))
+
+
+def no_server_error(ctx: Any, response: Any, case: Any) -> bool | None:
+    """Any 5xx fails, except 504 for a request that set its own (generated, often tiny) deadline."""
+    if response.status_code == 504 and _with_deadline(case):
+        return None
+    return not_a_server_error(ctx, response, case)  # type: ignore[no-any-return]
+
+
 CHECKS = [
-    not_a_server_error,
+    no_server_error,
     openapi_checks.status_code_conformance,
     openapi_checks.content_type_conformance,
     openapi_checks.response_headers_conformance,
@@ -80,7 +93,8 @@ def test_generated_requests_get_documented_answers_and_no_server_error(
             headers = {"Authorization": f"Bearer {ADMIN_TOKEN}"} if admin else None
             response = case.call(base_url=server.url, session=session, headers=headers, timeout=60)
             sent[case.operation.label] += 1
-            statuses[(case.operation.label, response.status_code)] += 1
+            deadline_passed = response.status_code == 504 and _with_deadline(case)
+            statuses[(case.operation.label, 0 if deadline_passed else response.status_code)] += 1
             case.validate_response(response, checks=CHECKS, headers=headers)
 
         fuzz()
@@ -88,7 +102,7 @@ def test_generated_requests_get_documented_answers_and_no_server_error(
         log = server.output()
 
     total = sum(sent.values())
-    assert total >= 2000, sent
+    assert total >= REQUESTS * 0.95, sent
     assert set(sent) == {op.label for op in operations}, "every operation was exercised"
     assert not [key for key in statuses if key[1] >= 500], statuses
     assert "unhandled error" not in log, log[-3000:]
