@@ -15,6 +15,8 @@ ENV PIP_NO_CACHE_DIR=1 \
     PIP_DISABLE_PIP_VERSION_CHECK=1
 WORKDIR /src
 COPY pyproject.toml README.md ./
+# Every dependency at the version the tests ran with (`make lock`); both images install with it.
+COPY requirements/lock.txt requirements/lock.txt
 COPY textsieve textsieve
 COPY registry registry
 COPY service service
@@ -22,7 +24,7 @@ COPY exporter exporter
 RUN pip wheel --no-deps --wheel-dir /wheels .
 # The venv is built where it will live, so its scripts' paths are right in the next stage.
 RUN python -m venv /opt/textsieve \
- && /opt/textsieve/bin/pip install "$(ls /wheels/textsieve-*.whl)[serve]"
+ && /opt/textsieve/bin/pip install -c requirements/lock.txt "$(ls /wheels/textsieve-*.whl)[serve]"
 
 # -- runtime: what both images share ------------------------------------------------------
 FROM ${PYTHON_IMAGE} AS runtime
@@ -59,9 +61,12 @@ ENV PIP_NO_CACHE_DIR=1 \
     PIP_DISABLE_PIP_VERSION_CHECK=1
 USER root
 COPY --from=build /wheels /tmp/wheels
-RUN pip install --index-url "${TORCH_INDEX_URL}" "torch==2.13.0" \
- && pip install "$(ls /tmp/wheels/textsieve-*.whl)[train]" "torch==2.13.0" \
- && rm -rf /tmp/wheels
+COPY --from=build /src/requirements/lock.txt /tmp/lock.txt
+# Only torch comes from that index (--no-deps); its dependencies and the training extras then
+# come from PyPI at the locked versions, with the torch just installed satisfying the lock's pin.
+RUN pip install --no-deps --index-url "${TORCH_INDEX_URL}" "torch==2.13.0+cpu" \
+ && pip install -c /tmp/lock.txt "$(ls /tmp/wheels/textsieve-*.whl)[train]" \
+ && rm -rf /tmp/wheels /tmp/lock.txt
 USER textsieve
 # Training and export are jobs that end, not a service to probe.
 HEALTHCHECK NONE

@@ -16,7 +16,7 @@ from fastapi import APIRouter, Depends, Request
 
 from textsieve.errors import AuthError
 from textsieve.service.web.deps import ModelsDep, RegistryDep, SettingsDep
-from textsieve.service.web.openapi import ADMIN_SCHEME
+from textsieve.service.web.openapi import ADMIN_SCHEME, Tag
 from textsieve.service.web.problems import MEDIA_TYPE, AdminDisabledError
 from textsieve.service.web.schemas import (
     AdminReply,
@@ -61,6 +61,8 @@ def _actor(request: Request, given: str | None) -> str:
 
 @router.post(
     "/{name}/versions/{n}/promote",
+    operation_id="promoteVersion",
+    tags=[Tag.ADMIN],
     response_model=AdminReply,
     responses=_RESPONSES,
     openapi_extra=_SECURED,
@@ -87,6 +89,8 @@ async def promote(
 
 @router.post(
     "/{name}/rollback",
+    operation_id="rollbackModel",
+    tags=[Tag.ADMIN],
     response_model=AdminReply,
     responses=_RESPONSES,
     openapi_extra=_SECURED,

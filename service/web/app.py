@@ -54,6 +54,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         version=__version__,
         summary="Convolutional text classifiers: calibrated probabilities and the n-gram spans behind them.",
         lifespan=lifespan,
+        openapi_tags=openapi.TAGS,
         # The interactive docs pages load their scripts from a CDN; the schema stays available.
         docs_url=None,
         redoc_url=None,

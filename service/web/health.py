@@ -7,18 +7,21 @@ from fastapi import APIRouter, Response
 
 from textsieve.service.telemetry import CONTENT_TYPE
 from textsieve.service.web.deps import MetricsDep, ModelsDep
+from textsieve.service.web.openapi import Tag
 from textsieve.service.web.schemas import Readiness
 
 router = APIRouter()
 
 
-@router.get("/healthz", summary="Liveness: the process answers")
+@router.get("/healthz", operation_id="getLiveness", tags=[Tag.HEALTH], summary="Liveness: the process answers")
 async def healthz() -> dict[str, str]:
     return {"status": "alive"}
 
 
 @router.get(
     "/readyz",
+    operation_id="getReadiness",
+    tags=[Tag.HEALTH],
     summary="Readiness: every served model is loaded and warmed (503 otherwise)",
     response_class=Response,
     responses={
@@ -38,6 +41,8 @@ async def readyz(models: ModelsDep) -> Response:
 
 @router.get(
     "/metrics",
+    operation_id="getMetrics",
+    tags=[Tag.HEALTH],
     summary="Prometheus text format",
     response_class=Response,
     responses={200: {"content": {"text/plain": {"schema": {"type": "string"}}}}},

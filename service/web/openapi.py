@@ -7,11 +7,17 @@ answers all of them with ``application/problem+json`` (RFC 9457 §3) built in
 clients and schema-driven tests (tests/reliability/test_fuzz.py) see what is actually sent: the Problem
 schema under problem+json for every error, 413 wherever a body is accepted (the body-size limit
 answers before any route), and the admin calls' bearer token as a security scheme.
+
+Generated clients name their methods after operation ids and group them by tag, so every route
+states a short ``operation_id`` (FastAPI's default, ``predict_v1_predict_post``, changes with the
+path and reads badly as a method name) and exactly one :class:`Tag`; scripts/check_openapi.py and
+tests/service/test_openapi.py hold every operation to that.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable
+from enum import StrEnum
 from typing import Any
 
 from fastapi import FastAPI
@@ -19,6 +25,38 @@ from fastapi import FastAPI
 from textsieve.service.web.problems import MEDIA_TYPE
 
 ADMIN_SCHEME = "adminToken"
+
+
+class Tag(StrEnum):
+    """The areas of the API; each operation carries exactly one."""
+
+    PREDICTIONS = "predictions"
+    REGISTRY = "registry"
+    ADMIN = "admin"
+    HEALTH = "health"
+
+
+TAGS: list[dict[str, Any]] = [
+    {
+        "name": Tag.PREDICTIONS.value,
+        "description": "Labels, calibrated probabilities and the n-gram spans behind them, "
+        "from a model's live version or a version the request names.",
+    },
+    {
+        "name": Tag.REGISTRY.value,
+        "description": "Read-only views of the registry: models, their versions and recent history, "
+        "with what this replica serves of each.",
+    },
+    {
+        "name": Tag.ADMIN.value,
+        "description": "Promote and roll back versions through the registry's gates; "
+        "needs the admin bearer token, and every call is an audit event.",
+    },
+    {
+        "name": Tag.HEALTH.value,
+        "description": "Liveness, readiness and Prometheus metrics, for probes, load balancers and scrapers.",
+    },
+]
 _PROBLEM = "#/components/schemas/Problem"
 _FASTAPI_ERROR_MODELS = ("HTTPValidationError", "ValidationError")
 _METHODS = ("get", "put", "post", "delete", "patch", "head", "options", "trace")
@@ -75,4 +113,4 @@ def install(app: FastAPI) -> None:
     app.openapi = openapi  # type: ignore[method-assign]
 
 
-__all__ = ["ADMIN_SCHEME", "install", "rewrite"]
+__all__ = ["ADMIN_SCHEME", "TAGS", "Tag", "install", "rewrite"]

@@ -34,7 +34,7 @@ def page() -> tuple[str, str]:
     return html, csp
 
 
-@router.get("/", response_class=HTMLResponse, include_in_schema=False)
+@router.get("/", operation_id="getReviewerPage", response_class=HTMLResponse, include_in_schema=False)
 async def index() -> HTMLResponse:
     html, csp = page()
     return HTMLResponse(

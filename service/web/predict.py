@@ -11,6 +11,7 @@ from fastapi import APIRouter, Header, Request, Response
 from textsieve.errors import InputError, LimitError
 from textsieve.service.settings import Settings
 from textsieve.service.web.deps import MetricsDep, ModelsDep, SettingsDep
+from textsieve.service.web.openapi import Tag
 from textsieve.service.web.problems import MEDIA_TYPE
 from textsieve.service.web.schemas import PredictRequest, PredictResponse, Problem
 
@@ -53,6 +54,8 @@ def check_limits(body: PredictRequest, settings: Settings) -> None:
 
 @router.post(
     "/v1/predict",
+    operation_id="predict",
+    tags=[Tag.PREDICTIONS],
     response_class=Response,
     responses={
         200: {"model": PredictResponse, "description": "one result per text, in order"},

@@ -43,6 +43,7 @@ DOCKERFILE = ROOT / "Dockerfile"
 COMPOSE = ROOT / "compose.yaml"
 ENV_EXAMPLE = ROOT / "deploy" / "textsieve.env.example"
 DOCKERIGNORE = ROOT / ".dockerignore"
+LOCK = ROOT / "requirements" / "lock.txt"
 CONTAINER_URL = f"http://127.0.0.1:{loopback.CONTAINER_PORT}"
 
 
@@ -220,19 +221,44 @@ def test_serving_image_installs_no_training_extras(dockerfile: Parsed) -> None:
     assert "[train]" not in serve_runs and "torch" not in serve_runs
 
 
-def test_training_image_pins_the_cpu_torch_of_the_constraints(dockerfile: Parsed) -> None:
+def locked_torch() -> str:
+    pins = [line.strip() for line in LOCK.read_text(encoding="utf-8").splitlines() if line.startswith("torch==")]
+    assert len(pins) == 1, pins
+    return pins[0]
+
+
+def test_training_image_pins_the_cpu_torch_of_the_lock(dockerfile: Parsed) -> None:
     _, stages = dockerfile
     train = next(s for s in stages if s.name == "train")
-    pins = [
-        line.strip()
-        for line in (ROOT / "constraints.txt").read_text(encoding="utf-8").splitlines()
-        if line.startswith("torch==")
-    ]
-    assert len(pins) == 1
+    pin = locked_torch()
+    assert pin.endswith("+cpu"), f"the lock must hold the CPU build of torch (make lock): {pin}"
     runs = " ".join(train.runs)
-    assert f'"{pins[0]}"' in runs and "[train]" in runs
+    assert f'"{pin}"' in runs and "[train]" in runs
     assert "TORCH_INDEX_URL" in train.args and train.args["TORCH_INDEX_URL"].rstrip("/").endswith("/cpu")
-    assert '--index-url "${TORCH_INDEX_URL}"' in runs
+    # Only torch comes from that index: everything else from the locked versions.
+    from_index = [cmd for cmd in pip_installs(train) if '--index-url "${TORCH_INDEX_URL}"' in cmd]
+    assert len(from_index) == 1 and "--no-deps" in from_index[0].split(), from_index
+
+
+def pip_installs(stage: Stage) -> list[str]:
+    """Each ``pip install`` command of a stage's RUN lines (split at ``&&``)."""
+    return [cmd.strip() for run in stage.runs for cmd in run.split("&&") if "pip install" in cmd]
+
+
+def test_both_images_install_the_project_with_the_lock(dockerfile: Parsed) -> None:
+    _, stages = dockerfile
+    build, train = (next(s for s in stages if s.name == name) for name in ("build", "train"))
+    lock = LOCK.relative_to(ROOT).as_posix()
+    # The build stage copies the lock to the same relative path (its WORKDIR is where the sources go).
+    assert [lock, lock] in build.copies
+    from_build = [args for args in train.copies if args[0] == "--from=build" and args[1].endswith(f"/{lock}")]
+    assert len(from_build) == 1, train.copies
+    for stage, path in ((build, lock), (train, from_build[0][-1])):
+        project = [cmd for cmd in pip_installs(stage) if "textsieve-" in cmd]
+        assert project, f"{stage.name} installs no wheel of the project"
+        for cmd in project:
+            words = shlex.split(cmd)
+            assert "-c" in words and words[words.index("-c") + 1] == path, f"{stage.name}: {cmd}"
 
 
 def test_dockerfile_copies_every_package_folder_and_the_context_keeps_them(dockerfile: Parsed) -> None:
@@ -243,8 +269,9 @@ def test_dockerfile_copies_every_package_folder_and_the_context_keeps_them(docke
     needed = set(package_folders()) | {
         "pyproject.toml",
         pyproject["project"]["readme"],
+        LOCK.relative_to(ROOT).as_posix(),
     }
-    assert needed <= sources, f"the wheel needs {needed - sources}"
+    assert needed <= sources, f"the build stage needs {needed - sources}"
     for src in sources:
         assert (ROOT / src).exists(), src
     # .dockerignore: exclude everything, re-include what is copied (the dev venv is GBs).

@@ -1,9 +1,9 @@
-"""The serving install: ``pip install 'textsieve[serve]'`` into a fresh venv gives a working
-``textsieve serve`` and no torch.
+"""The serving install: ``pip install -c requirements/lock.txt '.[serve]'`` (README "Scaling
+out") into a fresh venv gives a working ``textsieve serve`` and no torch.
 
 One venv for the module (the pip install is the slow part): the project's wheel is built from
-a copy of its sources, installed with the serving extras through the machine's ordinary pip
-configuration, then used the way a deployment uses it: serve a published bundle, answer
+a copy of its sources, installed with the serving extras and the lock through the machine's
+ordinary pip configuration, then used the way a deployment uses it: serve a published bundle, answer
 ``/readyz`` and ``/v1/predict``, pass ``textsieve health`` (the Docker image's probe).
 The installed size is printed; README "Scaling out" quotes it.
 """
@@ -31,6 +31,7 @@ from tests.helpers.layout import package_folders
 
 ROOT = Path(__file__).resolve().parents[2]
 PYPROJECT = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))
+LOCK = ROOT / "requirements" / "lock.txt"
 MODEL = "support"
 TEXTS = ["I was charged twice for my order", "the app crashes when I open settings", "thanks, all sorted now", "ok"]
 # The serving venv measured 249 MB of site-packages (numpy, onnx, onnxruntime, the web stack).
@@ -103,7 +104,9 @@ def serve_venv(tmp_path_factory: pytest.TempPathFactory) -> ServeVenv:
     made = run([python, "-m", "venv", base / "venv"], cwd=base)
     assert made.returncode == 0, made.stderr
     started = time.monotonic()
-    installed = run([base / "venv" / "bin" / "pip", "install", "--quiet", f"{wheels[0]}[serve]"], cwd=base, timeout=900)
+    installed = run(
+        [base / "venv" / "bin" / "pip", "install", "--quiet", "-c", LOCK, f"{wheels[0]}[serve]"], cwd=base, timeout=900
+    )
     assert installed.returncode == 0, installed.stderr[-3000:]
     return ServeVenv(base / "venv", wheels[0], time.monotonic() - started)
 
