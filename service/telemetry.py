@@ -191,12 +191,18 @@ class OverloadCollector(Collector):
         refused = CounterMetricFamily(
             "textsieve_overload_refusals",
             "Requests or connections refused at once because this replica was at a bound "
-            "(connections, body_budget, queue) or the caller's deadline had passed (deadline).",
+            "(connections, requests, body_budget, queue) or the caller's deadline had passed (deadline).",
             labels=("reason",),
         )
         guard, budget, admission = self.guard, self.budget, self.admission
         if guard is not None:
             refused.add_metric(["connections"], guard.refused)
+            refused.add_metric(["requests"], guard.refused_requests)
+            yield GaugeMetricFamily(
+                "textsieve_requests_limit",
+                "Most requests inside the application at once (adapts to keep them within the admitted wait).",
+                value=int(guard.limit),
+            )
             yield GaugeMetricFamily("textsieve_connections_open", "Open client connections.", value=guard.open)
             yield CounterMetricFamily(
                 "textsieve_connections_timed_out",

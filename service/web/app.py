@@ -23,7 +23,7 @@ from textsieve.service.web import admin, health, openapi, page, predict, problem
 from textsieve.service.web.access import AccessMiddleware
 from textsieve.service.web.bodylimit import BodyBudget, BodyLimitMiddleware
 from textsieve.service.web.onewrite import HeadWithBodyMiddleware
-from textsieve.service.web.transport import ConnectionGuard
+from textsieve.service.web.transport import ConnectionGuard, InflightMiddleware
 
 
 def create_app(settings: Settings | None = None) -> FastAPI:
@@ -64,7 +64,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     # Bounds across requests (see bodylimit.py and transport.py); serve hands the guard to uvicorn.
     app.state.budget = budget = BodyBudget(settings.body_budget_bytes)
     app.state.guard = ConnectionGuard(
-        max_connections=settings.max_connections, read_timeout=settings.read_timeout_seconds
+        max_connections=settings.max_connections,
+        read_timeout=settings.read_timeout_seconds,
+        target_seconds=settings.queue_wait_ms / 1000.0,
+        min_requests=2 * settings.workers,
     )
     metrics.overload.guard, metrics.overload.budget = app.state.guard, budget
     problems.install(app)
@@ -73,7 +76,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     openapi.install(app)
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes, budget=budget)
     app.add_middleware(AccessMiddleware, metrics=metrics, enabled=settings.access_log)
-    app.add_middleware(HeadWithBodyMiddleware)  # outermost of ours: see service/web/onewrite.py
+    app.add_middleware(HeadWithBodyMiddleware)  # see service/web/onewrite.py
+    app.add_middleware(InflightMiddleware, guard=app.state.guard)  # outermost: times whole requests
     return app
 
 

@@ -8,6 +8,13 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
 - **Connection cap.** A connection beyond ``max_connections`` is answered at once with a
   problem+json 503 carrying ``Retry-After`` and ``Connection: close``, and closed, before
   anything is read from it.
+- **Requests in the app.** A request whose headers arrive while ``limit`` requests are already
+  inside the application is answered 503 at once from here, before any Python of the app runs,
+  so a crowd of callers cannot make the event loop itself the queue. The limit adapts (additive
+  increase, multiplicative decrease, as TCP's congestion window does; Jacobson, 1988): every
+  tenth of a second, if the requests finished in it took longer on average than the admitted
+  wait (``queue_wait_ms``), it shrinks by a tenth; if the limit was reached and they were fast,
+  it grows by one.
 - **Read deadline.** From the moment a connection opens, or a keep-alive connection's next
   request begins, the client has ``read_timeout_seconds`` to send the request's headers and
   whole body. Past it the connection is answered 408 (RFC 9110 §15.5.9) if no response has
@@ -20,6 +27,7 @@ Both are counted (:class:`ConnectionGuard`) and exposed in ``/metrics``.
 from __future__ import annotations
 
 import asyncio
+import time
 from typing import Any
 
 import orjson
@@ -28,28 +36,45 @@ from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
 from textsieve.service.web.problems import MEDIA_TYPE
 
 
-def _raw_response(status: int, reason: str, slug: str, title: str, detail: str, retry_after: int | None) -> bytes:
+def _raw_response(
+    status: int, reason: str, slug: str, title: str, detail: str, retry_after: int | None, *, close: bool = True
+) -> bytes:
     body = orjson.dumps({"type": f"/problems/{slug}", "title": title, "status": status, "detail": detail})
     head = [
         f"HTTP/1.1 {status} {reason}",
         f"content-type: {MEDIA_TYPE}",
         f"content-length: {len(body)}",
-        "connection: close",
+        "connection: close" if close else "connection: keep-alive",
     ]
     if retry_after is not None:
         head.append(f"retry-after: {retry_after}")
     return ("\r\n".join(head) + "\r\n\r\n").encode("ascii") + body
 
 
+RETRY_AFTER_SECONDS = 1
+
+
 class ConnectionGuard:
     """The replica's connection cap and read deadline, and what they refused or closed."""
 
-    def __init__(self, *, max_connections: int, read_timeout: float) -> None:
+    def __init__(
+        self, *, max_connections: int, read_timeout: float, target_seconds: float = 0.25, min_requests: int = 4
+    ) -> None:
         self.max_connections = max_connections
         self.read_timeout = read_timeout
         self.open = 0
         self.refused = 0
         self.timed_out = 0
+        # Requests inside the application and their adaptive limit.
+        self.target = target_seconds
+        self.min_requests = min_requests
+        self.limit = float(max(min_requests, min(64, max_connections)))
+        self.inflight = 0
+        self.refused_requests = 0
+        self._window_end = 0.0
+        self._count = 0
+        self._seconds = 0.0
+        self._saturated = False
         self.over_capacity = _raw_response(
             503,
             "Service Unavailable",
@@ -59,6 +84,19 @@ class ConnectionGuard:
             "retry after the Retry-After seconds, or on another replica",
             1,
         )
+        busy = (
+            503,
+            "Service Unavailable",
+            "overloaded",
+            "This replica is at capacity",
+            "this replica has as many requests in progress as it can answer within its admitted wait "
+            "(TEXTSIEVE_QUEUE_WAIT_MS): retry after the Retry-After seconds, or on another replica",
+            RETRY_AFTER_SECONDS,
+        )
+        self.busy = _raw_response(*busy)
+        # Refusing on a kept-alive connection costs a parse and a write; closing it would make a
+        # client that retries at once pay (and make the server pay) a new connection each time.
+        self.busy_keep_alive = _raw_response(*busy, close=False)
         self.too_slow = _raw_response(
             408,
             "Request Timeout",
@@ -69,18 +107,38 @@ class ConnectionGuard:
             None,
         )
 
+    def request_may_start(self) -> bool:
+        if self.inflight >= int(self.limit):
+            self._saturated = True
+            self.refused_requests += 1
+            return False
+        return True
+
+    def request_finished(self, seconds: float, now: float) -> None:
+        self._count += 1
+        self._seconds += seconds
+        if now < self._window_end:
+            return
+        if self._count and self._seconds / self._count > self.target:
+            self.limit = max(float(self.min_requests), self.limit * 0.9)
+        elif self._saturated:
+            self.limit = min(float(self.max_connections), self.limit + 1.0)
+        self._window_end, self._count, self._seconds, self._saturated = now + 0.1, 0, 0.0, False
+
     def protocol(self) -> type[HttpToolsProtocol]:
         """uvicorn's httptools protocol with this guard's cap and deadline (``uvicorn.Config(http=…)``)."""
         guard = self
 
         class GuardedHttpToolsProtocol(HttpToolsProtocol):
+            _over_cap = False  # refused at connection time: uvicorn never saw this connection
             _refused = False
+            _skipping = False  # a refused request's body is being read past and dropped
             _read_timer: asyncio.TimerHandle | None = None
 
             def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
                 if guard.open >= guard.max_connections:
                     guard.refused += 1
-                    self._refused = True
+                    self._over_cap = True
                     self.transport = transport
                     transport.write(guard.over_capacity)
                     transport.close()
@@ -90,14 +148,14 @@ class ConnectionGuard:
                 self._arm()
 
             def connection_lost(self, exc: Exception | None) -> None:
-                if self._refused:
+                if self._over_cap:
                     return
                 guard.open -= 1
                 self._disarm()
                 super().connection_lost(exc)
 
             def data_received(self, data: bytes) -> None:
-                if self._refused:
+                if self._over_cap or self._refused:
                     return
                 super().data_received(data)
 
@@ -106,9 +164,46 @@ class ConnectionGuard:
                 if self._read_timer is None:
                     self._arm()
 
+            def on_headers_complete(self) -> None:
+                if not guard.request_may_start():
+                    cycle: Any = self.cycle
+                    pipelined = cycle is not None and not cycle.response_complete
+                    if pipelined or not self.parser.should_keep_alive():
+                        self._disarm()
+                        self._refused = True  # the parser may still call back for the rest of this read
+                        self.transport.write(guard.busy)
+                        self.transport.close()
+                    else:
+                        self._skipping = True
+                        self.transport.write(guard.busy_keep_alive)
+                        # The refusal goes out now; this connection's next request is read only after
+                        # the Retry-After it was given. A caller that retries at once (ignoring it)
+                        # would otherwise turn refusals into the event loop's whole work and starve
+                        # the requests it admitted.
+                        self.flow.pause_reading()
+                        self.loop.call_later(RETRY_AFTER_SECONDS, self._resume)
+                    return
+                super().on_headers_complete()
+
+            def on_body(self, body: bytes) -> None:
+                if not (self._refused or self._skipping):
+                    super().on_body(body)
+
             def on_message_complete(self) -> None:
+                if self._refused:
+                    return
                 self._disarm()
+                if self._skipping:  # the refused request has been read past: wait for the next one
+                    self._skipping = False
+                    self.timeout_keep_alive_task = self.loop.call_later(
+                        self.timeout_keep_alive, self.timeout_keep_alive_handler
+                    )
+                    return
                 super().on_message_complete()
+
+            def _resume(self) -> None:
+                if not self.transport.is_closing():
+                    self.flow.resume_reading()
 
             def _arm(self) -> None:
                 self._read_timer = self.loop.call_later(guard.read_timeout, self._too_slow)
@@ -131,4 +226,26 @@ class ConnectionGuard:
         return GuardedHttpToolsProtocol
 
 
-__all__ = ["ConnectionGuard"]
+class InflightMiddleware:
+    """Counts the requests inside the application and times them, for the guard's adaptive limit."""
+
+    def __init__(self, app: Any, guard: ConnectionGuard) -> None:
+        self.app = app
+        self.guard = guard
+
+    async def __call__(self, scope: Any, receive: Any, send: Any) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        guard = self.guard
+        guard.inflight += 1
+        started = time.perf_counter()
+        try:
+            await self.app(scope, receive, send)
+        finally:
+            guard.inflight -= 1
+            now = time.perf_counter()
+            guard.request_finished(now - started, now)
+
+
+__all__ = ["ConnectionGuard", "InflightMiddleware"]

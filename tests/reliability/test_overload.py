@@ -291,3 +291,25 @@ def test_overload_is_refused_at_once_with_retry_after_and_nothing_is_lost(regist
             assert r.json()["type"] == "/problems/overloaded"
         else:
             assert len(r.json()["results"]) == 256
+
+
+def test_the_request_limit_shrinks_when_slow_and_grows_when_full_and_fast() -> None:
+    # Additive increase, multiplicative decrease (Jacobson, 1988), on the mean time in the app.
+    from textsieve.service.web.transport import ConnectionGuard
+
+    g = ConnectionGuard(max_connections=1000, read_timeout=15, target_seconds=0.25, min_requests=4)
+    start = g.limit
+    assert start == 64
+    g.request_finished(0.8, now=1.0)  # a slow window
+    assert g.limit == pytest.approx(start * 0.9)
+    for k in range(40):
+        g.request_finished(0.8, now=2.0 + k)
+    assert g.limit == 4  # never below the floor
+    g.inflight = 4
+    assert not g.request_may_start() and g.refused_requests == 1
+    g.request_finished(0.01, now=100.0)  # fast, and the limit was reached: one more
+    assert g.limit == 5
+    g.request_finished(0.01, now=101.0)  # fast but not full: unchanged
+    assert g.limit == 5
+    g.inflight = 4
+    assert g.request_may_start()

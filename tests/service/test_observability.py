@@ -53,6 +53,7 @@ EXPOSED = {
     # The overload bounds (service/web/transport.py, bodylimit.py, inference/admission.py).
     "textsieve_overload_refusals_total",
     "textsieve_connections_open",
+    "textsieve_requests_limit",
     "textsieve_connections_timed_out_total",
     "textsieve_body_bytes_in_flight",
     "textsieve_queue_texts",
