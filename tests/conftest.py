@@ -6,40 +6,26 @@ against outside references use tests/data/ or reference libraries.
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 
 import pytest
 
-# Fixtures every part of the suite uses: registries on SQLite and PostgreSQL, served apps.
-pytest_plugins = ["tests.helpers.registry_fixtures", "tests.helpers.service"]
+from tests.helpers.jsonl import read_jsonl, write_jsonl
+from tests.helpers.training import export_tiny, train_tiny
 
-TINY = dict(embedding_dim=16, maps=8, epochs=4, patience=2, batch_size=50)
+# Fixtures more than one part uses: registry specs on SQLite and PostgreSQL (registry,
+# reliability), served apps and a clean environment (service, reliability, all). Fixtures one
+# part alone uses live in that part's conftest.py.
+pytest_plugins = ["tests.helpers.registry_fixtures", "tests.helpers.service"]
 
 
 def _relabel(src: Path, dst: Path, mapping: dict[str, str]) -> None:
     dst.mkdir(parents=True, exist_ok=True)
     for name in ("train.jsonl", "valid.jsonl", "test.jsonl"):
-        rows = [json.loads(line) for line in (src / name).read_text(encoding="utf-8").splitlines() if line]
+        rows = read_jsonl(src / name)
         for row in rows:
             row["label"] = mapping.get(row["label"], row["label"])
-        (dst / name).write_text("".join(json.dumps(r, ensure_ascii=False) + "\n" for r in rows), encoding="utf-8")
-
-
-def train_tiny(data: Path, out: Path, *, seed: int, **overrides: object) -> Path:
-    from textsieve.exporter.train import TrainConfig, train
-
-    config = TrainConfig(
-        data=data / "train.jsonl", out=out, valid=data / "valid.jsonl", seed=seed, quiet=True, **{**TINY, **overrides}
-    )  # type: ignore[arg-type]
-    return train(config)
-
-
-def export_tiny(run: Path, out: Path) -> Path:
-    from textsieve.exporter.export import export
-
-    export(run, out, log=lambda *_: None)
-    return out
+        write_jsonl(dst / name, rows)
 
 
 @pytest.fixture(scope="session")

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+from collections.abc import Callable
 from pathlib import Path
 
 import pytest
@@ -73,100 +74,121 @@ def test_json_array_of_the_published_sentiment_set_loads() -> None:
         load_examples(path, label_field="class")
 
 
-def test_missing_file(tmp_path: Path) -> None:
-    assert "no such file" in _error(tmp_path / "nope.jsonl")
-
-
-def test_folder_instead_of_file(tmp_path: Path) -> None:
-    (tmp_path / "d.csv").mkdir()
-    assert "is a folder" in _error(tmp_path / "d.csv")
-
-
-@pytest.mark.parametrize("content", ["", "\n\n  \n"])
-def test_empty_file(tmp_path: Path, content: str) -> None:
-    assert "empty" in _error(_write(tmp_path / "d.jsonl", content))
-
-
-def test_csv_with_header_only(tmp_path: Path) -> None:
-    assert "no labelled rows" in _error(_write(tmp_path / "d.csv", "text,label\n"))
-
-
-def test_non_utf8_names_line_and_byte_offset(tmp_path: Path) -> None:
-    data = b'{"text": "ok", "label": "a"}\n' + b'{"text": "caf\xe9", "label": "b"}\n'
-    message = _error(_write(tmp_path / "d.jsonl", data))
-    offset = data.index(b"\xe9")
-    assert f"line 2: byte offset {offset} is not valid UTF-8" in message
-    assert "0xe9" in message and "UTF-8" in message
-
-
-def test_invalid_json_line(tmp_path: Path) -> None:
-    message = _error(_write(tmp_path / "d.jsonl", '{"text": "a", "label": "x"}\n{"text": "b", label: "y"}\n'))
-    assert "line 2: not valid JSON" in message and "one JSON object" in message
-
-
-def test_json_line_that_is_not_an_object(tmp_path: Path) -> None:
-    message = _error(_write(tmp_path / "d.jsonl", '["a", "x"]\n'))
-    assert "line 1: is an array" in message
-
-
-def test_missing_field_names_fields_found(tmp_path: Path) -> None:
-    message = _error(_write(tmp_path / "d.jsonl", '{"body": "a", "label": "x"}\n'))
-    assert "line 1: no 'text' field" in message
-    assert "fields found: 'body', 'label'" in message and "--text-field" in message
-
-
-def test_missing_field_in_csv_header(tmp_path: Path) -> None:
-    message = _error(_write(tmp_path / "d.csv", "body,category\na,x\n"))
-    assert "line 1 (header): no 'text' and 'label' field" in message
-    assert "'body', 'category'" in message
-
-
 def test_other_field_names_are_used(tmp_path: Path) -> None:
     f = _write(tmp_path / "d.jsonl", '{"body": "a", "category": "x"}\n')
     assert load_examples(f, text_field="body", label_field="category") == [Example("a", "x")]
 
 
-@pytest.mark.parametrize("text", ["", "   \t "])
-def test_empty_text(tmp_path: Path, text: str) -> None:
-    rows = [{"text": "fine", "label": "a"}, {"text": text, "label": "b"}]
-    message = _error(_write(tmp_path / "d.jsonl", "".join(json.dumps(r) + "\n" for r in rows)))
-    assert "line 2: the 'text' field is empty" in message
+@pytest.mark.parametrize(
+    ("make", "expected_msg"),
+    [
+        pytest.param(lambda path: None, "no such file", id="missing file"),
+        pytest.param(lambda path: path.mkdir(), "is a folder", id="a folder"),
+    ],
+)
+def test_a_path_that_is_not_a_file(tmp_path: Path, make: Callable[[Path], None], expected_msg: str) -> None:
+    path = tmp_path / "d.csv"
+    make(path)
+    assert expected_msg in _error(path)
 
 
-@pytest.mark.parametrize(("value", "kind"), [(3, "a number"), (None, "null"), (["a"], "an array")])
-def test_non_string_text(tmp_path: Path, value: object, kind: str) -> None:
-    message = _error(_write(tmp_path / "d.jsonl", json.dumps({"text": value, "label": "a"}) + "\n"))
-    assert f"line 1: the 'text' field is {kind}; it must be a string" in message
+_NON_UTF8 = b'{"text": "ok", "label": "a"}\n' + b'{"text": "caf\xe9", "label": "b"}\n'
+_NON_UTF8_AT = _NON_UTF8.index(b"\xe9")  # the byte offset the message must name
 
 
-@pytest.mark.parametrize(("value", "expected"), [(None, "is null"), (1.5, "is a number"), ("  ", "is empty")])
-def test_bad_labels(tmp_path: Path, value: object, expected: str) -> None:
-    message = _error(_write(tmp_path / "d.jsonl", json.dumps({"text": "a", "label": value}) + "\n"))
-    assert f"the 'label' field {expected}" in message
+def _jsonl(*rows: object) -> str:
+    return "".join(json.dumps(r) + "\n" for r in rows)
 
 
-def test_unsupported_extension(tmp_path: Path) -> None:
-    message = _error(_write(tmp_path / "d.xlsx", "whatever"))
-    assert "unsupported file type '.xlsx'" in message and ".jsonl" in message and ".csv" in message
-
-
-def test_ragged_csv_row(tmp_path: Path) -> None:
-    message = _error(_write(tmp_path / "d.csv", "text,label\na,x\nb,y,z\n"))
-    assert "line 3: has 3 columns but the header has 2" in message
-
-
-def test_csv_line_numbers_count_quoted_line_breaks(tmp_path: Path) -> None:
-    message = _error(_write(tmp_path / "d.csv", 'text,label\n"two\nlines",x\n"",y\n'))
-    assert "line 4: the 'text' field is empty" in message
-
-
-def test_malformed_csv(tmp_path: Path) -> None:
-    message = _error(_write(tmp_path / "d.csv", 'text,label\n"a"b,x\n'))
-    assert "line 2: malformed CSV" in message
-
-
-def test_duplicate_header(tmp_path: Path) -> None:
-    assert "names 'text' twice" in _error(_write(tmp_path / "d.csv", "text,text,label\na,b,c\n"))
+# file name, content -> words the one-line message must contain (besides the file's path)
+@pytest.mark.parametrize(
+    ("name", "content", "expected_msg"),
+    [
+        pytest.param("d.jsonl", "", ["empty"], id="empty file"),
+        pytest.param("d.jsonl", "\n\n  \n", ["empty"], id="blank lines only"),
+        pytest.param("d.csv", "text,label\n", ["no labelled rows"], id="CSV header only"),
+        pytest.param(
+            "d.jsonl",
+            _NON_UTF8,
+            [f"line 2: byte offset {_NON_UTF8_AT} is not valid UTF-8", "0xe9", "UTF-8"],
+            id="not UTF-8",
+        ),
+        pytest.param(
+            "d.jsonl",
+            '{"text": "a", "label": "x"}\n{"text": "b", label: "y"}\n',
+            ["line 2: not valid JSON", "one JSON object"],
+            id="a line not JSON",
+        ),
+        pytest.param("d.jsonl", '["a", "x"]\n', ["line 1: is an array"], id="a line not an object"),
+        pytest.param(
+            "d.jsonl",
+            '{"body": "a", "label": "x"}\n',
+            ["line 1: no 'text' field", "fields found: 'body', 'label'", "--text-field"],
+            id="no text field",
+        ),
+        pytest.param(
+            "d.csv",
+            "body,category\na,x\n",
+            ["line 1 (header): no 'text' and 'label' field", "'body', 'category'"],
+            id="CSV header without the fields",
+        ),
+        pytest.param(
+            "d.jsonl",
+            _jsonl({"text": "fine", "label": "a"}, {"text": "", "label": "b"}),
+            ["line 2: the 'text' field is empty"],
+            id="empty text",
+        ),
+        pytest.param(
+            "d.jsonl",
+            _jsonl({"text": "fine", "label": "a"}, {"text": "   \t ", "label": "b"}),
+            ["line 2: the 'text' field is empty"],
+            id="whitespace text",
+        ),
+        pytest.param(
+            "d.jsonl",
+            _jsonl({"text": 3, "label": "a"}),
+            ["line 1: the 'text' field is a number; it must be a string"],
+            id="text a number",
+        ),
+        pytest.param(
+            "d.jsonl",
+            _jsonl({"text": None, "label": "a"}),
+            ["line 1: the 'text' field is null; it must be a string"],
+            id="text null",
+        ),
+        pytest.param(
+            "d.jsonl",
+            _jsonl({"text": ["a"], "label": "a"}),
+            ["line 1: the 'text' field is an array; it must be a string"],
+            id="text an array",
+        ),
+        pytest.param("d.jsonl", _jsonl({"text": "a", "label": None}), ["the 'label' field is null"], id="label null"),
+        pytest.param(
+            "d.jsonl", _jsonl({"text": "a", "label": 1.5}), ["the 'label' field is a number"], id="label a fraction"
+        ),
+        pytest.param("d.jsonl", _jsonl({"text": "a", "label": "  "}), ["the 'label' field is empty"], id="label blank"),
+        pytest.param(
+            "d.xlsx", "whatever", ["unsupported file type '.xlsx'", ".jsonl", ".csv"], id="unsupported extension"
+        ),
+        pytest.param(
+            "d.csv", "text,label\na,x\nb,y,z\n", ["line 3: has 3 columns but the header has 2"], id="ragged CSV row"
+        ),
+        pytest.param(
+            "d.csv",
+            'text,label\n"two\nlines",x\n"",y\n',
+            ["line 4: the 'text' field is empty"],
+            id="CSV line numbers count quoted line breaks",
+        ),
+        pytest.param("d.csv", 'text,label\n"a"b,x\n', ["line 2: malformed CSV"], id="malformed CSV"),
+        pytest.param("d.csv", "text,text,label\na,b,c\n", ["names 'text' twice"], id="duplicate header"),
+    ],
+)
+def test_bad_data_file_is_one_line_naming_the_file(
+    tmp_path: Path, name: str, content: str | bytes, expected_msg: list[str]
+) -> None:
+    message = _error(_write(tmp_path / name, content))
+    for words in expected_msg:
+        assert words in message, (words, message)
 
 
 def test_check_labels_returns_sorted_names() -> None:
@@ -174,15 +196,26 @@ def test_check_labels_returns_sorted_names() -> None:
     assert check_labels(train, [Example("d", "m")]) == ["m", "z"]
 
 
-def test_check_labels_needs_two() -> None:
-    with pytest.raises(InputError, match=r"1 distinct label \('only'\); a classifier needs at least 2"):
-        check_labels([Example("a", "only"), Example("b", "only")], [])
-
-
-def test_check_labels_names_unseen_validation_labels() -> None:
-    train = [Example("a", "x"), Example("b", "y")]
-    with pytest.raises(InputError, match=r"labels not in .*: 'q', 'w'; allowed .* \('x', 'y'\)"):
-        check_labels(train, [Example("c", "w"), Example("d", "x"), Example("e", "q")])
+@pytest.mark.parametrize(
+    ("train", "valid", "expected_msg"),
+    [
+        pytest.param(
+            [Example("a", "only"), Example("b", "only")],
+            [],
+            r"1 distinct label \('only'\); a classifier needs at least 2",
+            id="one label",
+        ),
+        pytest.param(
+            [Example("a", "x"), Example("b", "y")],
+            [Example("c", "w"), Example("d", "x"), Example("e", "q")],
+            r"labels not in .*: 'q', 'w'; allowed .* \('x', 'y'\)",
+            id="validation labels unseen in training",
+        ),
+    ],
+)
+def test_check_labels_refusals(train: list[Example], valid: list[Example], expected_msg: str) -> None:
+    with pytest.raises(InputError, match=expected_msg):
+        check_labels(train, valid)
 
 
 def test_data_module_does_not_import_torch() -> None:

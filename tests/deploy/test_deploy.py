@@ -13,7 +13,6 @@ from __future__ import annotations
 import http.server
 import inspect
 import json
-import os
 import re
 import shlex
 import sys
@@ -30,6 +29,8 @@ import pytest
 import yaml
 from pydantic import ValidationError
 
+from tests.helpers import registries
+from tests.helpers.jsonl import read_jsonl
 from tests.helpers.layout import package_folders
 from textsieve.cli import main as textsieve_main
 from textsieve.service.settings import Settings
@@ -445,13 +446,7 @@ def test_health_command_probes_the_readiness_endpoint(
 def postgres_url() -> str:
     """TEXTSIEVE_TEST_PG (scripts/test-services.sh): a skip on a developer machine without it,
     a failure in CI, where the server must be there. Asked for before the bundles are trained."""
-    url = os.environ.get("TEXTSIEVE_TEST_PG")
-    if not url:
-        message = "TEXTSIEVE_TEST_PG is not set: run 'bash scripts/test-services.sh' and source .test-env"
-        if os.environ.get("CI"):
-            pytest.fail(message)
-        pytest.skip(message)
-    return url
+    return registries.postgres_url()
 
 
 @pytest.mark.postgres
@@ -459,8 +454,7 @@ def test_topology_on_loopback(
     postgres_url: str, tiny_bundles: dict[str, Path], tiny_data: Path, tmp_path: Path
 ) -> None:
     pg = postgres_url
-    rows = [json.loads(line) for line in (tiny_data / "test.jsonl").read_text(encoding="utf-8").splitlines() if line]
-    texts = [r["text"] for r in rows[:12]]
+    texts = [r["text"] for r in read_jsonl(tiny_data / "test.jsonl")[:12]]
     report = topology.run_scenario(
         pg, [tiny_bundles["a"], tiny_bundles["b"]], workdir=tmp_path, texts=texts, poll_seconds=0.5, install_nginx=True
     )

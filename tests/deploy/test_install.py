@@ -28,6 +28,7 @@ import numpy as np
 import pytest
 
 from tests.helpers.layout import package_folders
+from tests.helpers.net import exited, free_port, wait_ready
 
 ROOT = Path(__file__).resolve().parents[2]
 PYPROJECT = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))
@@ -166,7 +167,7 @@ def served(serve_venv: ServeVenv, tiny_bundles: dict[str, Path], tmp_path: Path)
     with open_registry(registry) as reg:
         reg.publish(tiny_bundles["a"], MODEL, actor="tests")
         reg.promote(MODEL, 1, "live", reason="serve-only install test", actor="tests")
-    sock_port = _free_port()
+    sock_port = free_port()
     url = f"http://127.0.0.1:{sock_port}"
     log = tmp_path / "serve.log"
     with open(log, "wb") as out:
@@ -189,16 +190,7 @@ def served(serve_venv: ServeVenv, tiny_bundles: dict[str, Path], tmp_path: Path)
             start_new_session=True,
         )
     try:
-        deadline = time.monotonic() + START_TIMEOUT_S
-        while True:
-            try:
-                if httpx.get(f"{url}/readyz", timeout=2).status_code == 200:
-                    break
-            except httpx.HTTPError:
-                pass
-            assert proc.poll() is None, f"textsieve serve exited ({proc.returncode}):\n{log.read_text()[-3000:]}"
-            assert time.monotonic() < deadline, f"not ready after {START_TIMEOUT_S}s:\n{log.read_text()[-3000:]}"
-            time.sleep(0.1)
+        wait_ready(url, timeout=START_TIMEOUT_S, gone=exited(proc, log))
         yield url
     finally:
         proc.send_signal(signal.SIGTERM)
@@ -207,15 +199,6 @@ def served(serve_venv: ServeVenv, tiny_bundles: dict[str, Path], tmp_path: Path)
         except subprocess.TimeoutExpired:
             proc.kill()
             proc.wait(20)
-
-
-def _free_port() -> int:
-    import socket
-
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        port: int = s.getsockname()[1]
-        return port
 
 
 def test_serve_only_install_serves_a_published_bundle(

@@ -18,11 +18,6 @@ from textsieve.exporter.demo_data import LABELS, MAX_TOKENS, MIN_TOKENS, generat
 NEGATION = re.compile(r"\bnot\b|n't\b")
 
 
-@pytest.fixture(scope="module")
-def rows() -> list[dict[str, str]]:
-    return generate()
-
-
 def _read_jsonl(path: Path) -> list[dict[str, str]]:
     # strict decoding: a byte that is not UTF-8 raises here instead of turning into U+FFFD
     text = path.read_bytes().decode("utf-8", errors="strict")
@@ -51,22 +46,22 @@ def test_output_does_not_depend_on_hash_seed(tmp_path: Path) -> None:
         assert (tmp_path / "2" / f"{name}.jsonl").read_bytes() == here
 
 
-def test_labels_and_balance(rows: list[dict[str, str]]) -> None:
-    assert len(rows) == 6000
-    assert all(set(row) == {"text", "label"} for row in rows)
-    counts = collections.Counter(row["label"] for row in rows)
+def test_labels_and_balance(demo_rows: list[dict[str, str]]) -> None:
+    assert len(demo_rows) == 6000
+    assert all(set(row) == {"text", "label"} for row in demo_rows)
+    counts = collections.Counter(row["label"] for row in demo_rows)
     assert sorted(counts) == sorted(LABELS)
     for label, count in counts.items():
-        assert 0.15 <= count / len(rows) <= 0.40, (label, count)
+        assert 0.15 <= count / len(demo_rows) <= 0.40, (label, count)
 
 
-def test_texts_are_distinct(rows: list[dict[str, str]]) -> None:
+def test_texts_are_distinct(demo_rows: list[dict[str, str]]) -> None:
     # duplicates would leak between train and test once split
-    assert len({row["text"] for row in rows}) == len(rows)
+    assert len({row["text"] for row in demo_rows}) == len(demo_rows)
 
 
-def test_lengths_in_range_and_varied(rows: list[dict[str, str]]) -> None:
-    lengths = [token_count(row["text"]) for row in rows]
+def test_lengths_in_range_and_varied(demo_rows: list[dict[str, str]]) -> None:
+    lengths = [token_count(row["text"]) for row in demo_rows]
     assert MIN_TOKENS == 5 and MAX_TOKENS == 60
     assert min(lengths) >= MIN_TOKENS and max(lengths) <= MAX_TOKENS
     assert min(lengths) <= 8 and max(lengths) >= 45
@@ -77,18 +72,18 @@ def test_token_count_counts_words_and_punctuation() -> None:
     assert token_count("My account isn't locked, thanks!") == 9
 
 
-def test_each_label_has_negated_and_contrast_examples(rows: list[dict[str, str]]) -> None:
+def test_each_label_has_negated_and_contrast_examples(demo_rows: list[dict[str, str]]) -> None:
     for label in LABELS:
-        texts = [row["text"] for row in rows if row["label"] == label]
+        texts = [row["text"] for row in demo_rows if row["label"] == label]
         assert sum(bool(NEGATION.search(t)) for t in texts) >= 150, label
         assert sum(" but " in t or "until" in t for t in texts) >= 100, label
 
 
-def test_negation_twins_share_words_but_not_labels(rows: list[dict[str, str]]) -> None:
+def test_negation_twins_share_words_but_not_labels(demo_rows: list[dict[str, str]]) -> None:
     # "The chain is not broken, but I was charged twice." (billing) has exactly the words of
     # "The chain is broken, but I was not charged twice." (repair).
     bags: dict[tuple[str, ...], set[str]] = collections.defaultdict(set)
-    for row in rows:
+    for row in demo_rows:
         bags[tuple(sorted(re.findall(r"\w+", row["text"].lower())))].add(row["label"])
     assert any(len(labels) > 1 for labels in bags.values())
 
@@ -113,19 +108,19 @@ def test_word_order_matters_for_a_linear_model() -> None:
     assert bigram >= 0.97, bigram
 
 
-def test_text_exercises_non_ascii(rows: list[dict[str, str]]) -> None:
-    joined = "".join(row["text"] for row in rows)
+def test_text_exercises_non_ascii(demo_rows: list[dict[str, str]]) -> None:
+    joined = "".join(row["text"] for row in demo_rows)
     for needle in ("é", "ü", "ø", "自転車", "谢谢", "€", "❤️"):
         assert needle in joined, needle
     assert any(ord(ch) > 0xFFFF for ch in joined), "no emoji outside the Basic Multilingual Plane"
 
 
-def test_write_splits_sizes_and_disjoint(tmp_path: Path, rows: list[dict[str, str]]) -> None:
+def test_write_splits_sizes_and_disjoint(tmp_path: Path, demo_rows: list[dict[str, str]]) -> None:
     paths = write_splits(tmp_path / "demo")
     assert set(paths) == {"train", "valid", "test"}
     splits = {name: _read_jsonl(path) for name, path in paths.items()}
     assert [len(splits[n]) for n in ("train", "valid", "test")] == [4800, 600, 600]
-    assert splits["train"] + splits["valid"] + splits["test"] == rows
+    assert splits["train"] + splits["valid"] + splits["test"] == demo_rows
     seen = [{row["text"] for row in split} for split in splits.values()]
     assert not (seen[0] & seen[1] or seen[0] & seen[2] or seen[1] & seen[2])
 
@@ -165,10 +160,10 @@ def test_module_says_data_is_invented() -> None:
     assert "not test reference data" in doc
 
 
-def test_disagreement_flips_labels_not_texts(rows: list[dict[str, str]]) -> None:
+def test_disagreement_flips_labels_not_texts(demo_rows: list[dict[str, str]]) -> None:
     clean = generate(disagreement=0.0)
-    assert [r["text"] for r in clean] == [r["text"] for r in rows]
-    flipped = sum(a["label"] != b["label"] for a, b in zip(clean, rows, strict=True))
+    assert [r["text"] for r in clean] == [r["text"] for r in demo_rows]
+    flipped = sum(a["label"] != b["label"] for a, b in zip(clean, demo_rows, strict=True))
     # 5 % of 6,000 is 300; a binomial standard deviation is about 17.
     assert 230 <= flipped <= 370, flipped
     with pytest.raises(ValueError, match="disagreement"):

@@ -102,48 +102,29 @@ def _error(path: Path, vocab: Vocabulary | None = None) -> str:
     return message
 
 
-def test_missing_file(tmp_path: Path) -> None:
-    assert "no such file" in _error(tmp_path / "none.txt")
-
-
-def test_empty_file(tmp_path: Path) -> None:
-    f = tmp_path / "v.txt"
-    f.write_text("", encoding="utf-8")
-    assert "has no vectors" in _error(f)
-
-
-def test_non_utf8(tmp_path: Path) -> None:
-    f = tmp_path / "v.txt"
-    f.write_bytes(b"alpha 1 2\nb\xffeta 3 4\n")
-    assert "line 2: byte offset 11 is not valid UTF-8" in _error(f)
-
-
-def test_ragged_rows(tmp_path: Path) -> None:
-    f = tmp_path / "v.txt"
-    f.write_text("alpha 1 2 3\nzeta 1 2\n", encoding="utf-8")
-    # Checked even for words outside the vocabulary: a ragged file is a broken file.
-    assert "line 2: has 2 values, expected 3" in _error(f)
-
-
-def test_header_dimension_disagrees_with_rows(tmp_path: Path) -> None:
-    f = tmp_path / "v.txt"
-    f.write_text("1 4\nalpha 1 2 3\n", encoding="utf-8")
-    assert "line 2: has 3 values, expected 4" in _error(f)
-
-
-def test_non_numeric_value(tmp_path: Path) -> None:
-    f = tmp_path / "v.txt"
-    f.write_text("alpha 1 2\nbeta 3 x4\n", encoding="utf-8")
-    assert "line 2: value 'x4' is not a number" in _error(f)
-
-
-def test_non_finite_value(tmp_path: Path) -> None:
-    f = tmp_path / "v.txt"
-    f.write_text("alpha 1 nan\n", encoding="utf-8")
-    assert "line 1: has a value that is not finite" in _error(f)
-
-
-def test_binary_word2vec_is_refused(tmp_path: Path) -> None:
-    f = tmp_path / "v.bin"
-    f.write_bytes(b"2 3\nalpha \x00\x00\x80?")
-    assert "binary word2vec files are not supported" in _error(f)
+# file name, content (None: no file) -> words of the one-line error, which names the file
+@pytest.mark.parametrize(
+    ("name", "content", "expected_msg"),
+    [
+        pytest.param("none.txt", None, "no such file", id="missing file"),
+        pytest.param("v.txt", b"", "has no vectors", id="empty file"),
+        pytest.param(
+            "v.txt", b"alpha 1 2\nb\xffeta 3 4\n", "line 2: byte offset 11 is not valid UTF-8", id="not UTF-8"
+        ),
+        # Checked even for words outside the vocabulary: a ragged file is a broken file.
+        pytest.param("v.txt", b"alpha 1 2 3\nzeta 1 2\n", "line 2: has 2 values, expected 3", id="ragged rows"),
+        pytest.param(
+            "v.txt", b"1 4\nalpha 1 2 3\n", "line 2: has 3 values, expected 4", id="header dimension disagrees"
+        ),
+        pytest.param("v.txt", b"alpha 1 2\nbeta 3 x4\n", "line 2: value 'x4' is not a number", id="not a number"),
+        pytest.param("v.txt", b"alpha 1 nan\n", "line 1: has a value that is not finite", id="not finite"),
+        pytest.param(
+            "v.bin", b"2 3\nalpha \x00\x00\x80?", "binary word2vec files are not supported", id="binary word2vec"
+        ),
+    ],
+)
+def test_bad_vectors_file(tmp_path: Path, name: str, content: bytes | None, expected_msg: str) -> None:
+    path = tmp_path / name
+    if content is not None:
+        path.write_bytes(content)
+    assert expected_msg in _error(path)

@@ -10,8 +10,7 @@ import shutil
 from dataclasses import dataclass
 from pathlib import Path
 
-import pytest
-
+from tests.helpers.environment import skip_or_fail
 from textsieve.registry import Registry, open_registry
 
 
@@ -38,13 +37,10 @@ def postgres_url() -> str:
     """TEXTSIEVE_TEST_PG, or a skip (a failure in CI, where the server must be there)."""
     url = os.environ.get("TEXTSIEVE_TEST_PG")
     if not url:
-        message = (
+        skip_or_fail(
             "TEXTSIEVE_TEST_PG is not set: run 'bash scripts/test-services.sh' and source .test-env "
             "(make test does both)"
         )
-        if os.environ.get("CI"):
-            pytest.fail(message)
-        pytest.skip(message)
     return url
 
 
@@ -75,13 +71,4 @@ def card_variants(base: Path, root: Path, n: int) -> list[Path]:
     return out
 
 
-def write_jsonl(path: Path, rows: list[dict[str, str]]) -> Path:
-    path.write_text("".join(json.dumps(r, ensure_ascii=False) + "\n" for r in rows), encoding="utf-8")
-    return path
-
-
-def read_jsonl(path: Path) -> list[dict[str, str]]:
-    return [json.loads(line) for line in path.read_text(encoding="utf-8").splitlines() if line]
-
-
-__all__ = ["RegistrySpec", "card_variants", "edit_manifest", "postgres_url", "read_jsonl", "write_jsonl"]
+__all__ = ["RegistrySpec", "card_variants", "edit_manifest", "postgres_url"]

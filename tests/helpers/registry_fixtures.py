@@ -1,4 +1,5 @@
-"""Fixtures shared by the registry tests: one registry per test, on SQLite and on PostgreSQL.
+"""Fixtures for tests that need a registry on each backend, SQLite and PostgreSQL: ``spec`` (the
+registry and reliability tests use it); the opened ``registry`` lives in tests/registry/conftest.py.
 
 Loaded for the whole suite by ``pytest_plugins`` in tests/conftest.py. PostgreSQL tests run against the real
 server that scripts/test-services.sh starts (its URL in TEXTSIEVE_TEST_PG); each test gets its
@@ -16,7 +17,6 @@ from pathlib import Path
 import pytest
 
 from tests.helpers.registries import RegistrySpec, postgres_url
-from textsieve.registry import Registry
 
 
 @pytest.fixture
@@ -41,12 +41,3 @@ def spec(request: pytest.FixtureRequest, tmp_path: Path) -> RegistrySpec:
         return RegistrySpec("sqlite", str(tmp_path / "reg"), None)
     url = request.getfixturevalue("pg_schema_url")
     return RegistrySpec("postgres", url, str(tmp_path / "blobs"))
-
-
-@pytest.fixture
-def registry(spec: RegistrySpec) -> Iterator[Registry]:
-    reg = spec.open()
-    try:
-        yield reg
-    finally:
-        reg.close()

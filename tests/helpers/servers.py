@@ -2,8 +2,8 @@
 
 - :class:`ServerProcess`: the real ``textsieve serve`` (uvicorn) in a subprocess on a free port
   of 127.0.0.1, so signals, sockets and exit statuses are the production ones.
-- :func:`direct_probabilities`: a version's probabilities computed straight with onnxruntime
-  and SciPy, bypassing the service's batcher, packing and span code.
+- :class:`DirectModel`: a version's probabilities computed straight with onnxruntime and
+  SciPy, bypassing the service's batcher, packing and span code.
 - :class:`PgCluster`: a throwaway PostgreSQL cluster (initdb into a temporary folder) that a
   test may stop and start; the shared server on port 5432 is never touched.
 """
@@ -14,39 +14,20 @@ import contextlib
 import os
 import shutil
 import signal
-import socket
 import subprocess
 import sys
 import tempfile
-import time
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
-import httpx
 import numpy as np
-import pytest
 
-ADMIN_TOKEN = "reliability-admin-token-5f1c9e"
-MODEL = "support"
+from tests.helpers.environment import child_env, skip_or_fail
+from tests.helpers.net import exited, free_port, wait_ready
+
 READY_TIMEOUT_S = 90.0
-
-
-def free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        port: int = s.getsockname()[1]
-        return port
-
-
-def child_env(**settings: object) -> dict[str, str]:
-    """This environment without the caller's TEXTSIEVE_* settings, plus ``settings`` as TEXTSIEVE_<NAME>."""
-    env = {k: v for k, v in os.environ.items() if not k.startswith("TEXTSIEVE_")}
-    env["PYTHONUNBUFFERED"] = "1"
-    for name, value in settings.items():
-        if value is not None:
-            env[f"TEXTSIEVE_{name.upper()}"] = str(value)
-    return env
 
 
 @dataclass
@@ -89,22 +70,17 @@ class ServerProcess:
             out.close()
         return cls(proc, f"http://127.0.0.1:{port}", port, log)
 
-    def wait_ready(self, timeout: float = READY_TIMEOUT_S) -> dict[str, object]:
-        deadline = time.monotonic() + timeout
-        last = ""
-        while time.monotonic() < deadline:
-            if self.proc.poll() is not None:
-                raise AssertionError(f"the server exited with {self.proc.returncode}:\n{self.output()[-3000:]}")
-            try:
-                r = httpx.get(f"{self.url}/readyz", timeout=2)
-                if r.status_code == 200:
-                    body: dict[str, object] = r.json()
-                    return body
-                last = r.text
-            except httpx.HTTPError as exc:
-                last = repr(exc)
-            time.sleep(0.05)
-        raise AssertionError(f"not ready after {timeout}s: {last}\n{self.output()[-3000:]}")
+    def wait_ready(self, timeout: float = READY_TIMEOUT_S) -> dict[str, Any]:
+        try:
+            return wait_ready(self.url, timeout=timeout, gone=self.gone)
+        except AssertionError as exc:
+            if self.proc.poll() is None:  # still running but not ready: its log says why
+                raise AssertionError(f"{exc}\n{self.output()[-3000:]}") from None
+            raise
+
+    def gone(self) -> str | None:
+        """Why this server will never answer (it exited, with its log's end), or None."""
+        return exited(self.proc, self.log)()
 
     def output(self) -> str:
         return self.log.read_text(encoding="utf-8", errors="replace")
@@ -203,9 +179,7 @@ def require_own_cluster() -> Path:
     elif os.geteuid() != 0:
         problem = "starting a private PostgreSQL cluster needs root (to run initdb as the postgres user)"
     if problem:
-        if os.environ.get("CI"):
-            pytest.fail(problem)
-        pytest.skip(problem)
+        skip_or_fail(problem)
     assert binaries is not None
     return binaries
 
@@ -314,15 +288,4 @@ def own_cluster(password: str) -> Iterator[PgCluster]:
         cluster.destroy()
 
 
-__all__ = [
-    "ADMIN_TOKEN",
-    "MODEL",
-    "DirectModel",
-    "PgCluster",
-    "ServerProcess",
-    "child_env",
-    "free_port",
-    "own_cluster",
-    "require_own_cluster",
-    "running_server",
-]
+__all__ = ["DirectModel", "PgCluster", "ServerProcess", "own_cluster", "require_own_cluster", "running_server"]

@@ -1,17 +1,15 @@
-"""Fixtures and helpers shared by the service tests (tests/test_service_*.py).
+"""Fixtures and helpers for tests that serve the app: the service and reliability tests.
 
 In-process tests drive the ASGI app through ``httpx.ASGITransport`` with the lifespan run by
-hand; a few tests use a real uvicorn on a random free port of 127.0.0.1.
+hand; a few tests use a real uvicorn on a random free port of 127.0.0.1. Loaded for the whole
+suite by ``pytest_plugins`` in tests/conftest.py (``clean_env`` guards every test).
 """
 
 from __future__ import annotations
 
-import asyncio
 import contextlib
 import os
-import socket
 import threading
-import time
 from collections.abc import AsyncIterator, Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -20,28 +18,34 @@ from typing import Any
 import httpx
 import pytest
 
+from tests.helpers.net import wait_ready, wait_ready_async
 from textsieve.registry import open_registry
 from textsieve.service.settings import Settings
 from textsieve.service.web.app import create_app
 
 ADMIN_TOKEN = "test-admin-token-0123456789"
+AUTH = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
 MODEL = "support"
 
 
-@pytest.fixture
+@pytest.fixture(scope="module")
 def anyio_backend() -> str:
+    """Module scope, as anyio's own default has it, so a module may share one served app."""
     return "asyncio"
 
 
-@pytest.fixture(autouse=True)
-def clean_env(monkeypatch: pytest.MonkeyPatch) -> None:
+@pytest.fixture(autouse=True, scope="session")
+def clean_env() -> Iterator[None]:
     """Settings read TEXTSIEVE_* variables; a developer's own must not leak into tests.
 
+    Session scope, so they are gone before any fixture builds settings, module-scoped servers included.
     TEXTSIEVE_TEST_* name the test services (.test-env), not settings, and are kept.
     """
-    for key in list(os.environ):
-        if key.startswith("TEXTSIEVE_") and not key.startswith("TEXTSIEVE_TEST_"):
-            monkeypatch.delenv(key)
+    with pytest.MonkeyPatch.context() as mp:
+        for key in list(os.environ):
+            if key.startswith("TEXTSIEVE_") and not key.startswith("TEXTSIEVE_TEST_"):
+                mp.delenv(key)
+        yield
 
 
 def make_registry(folder: Path, bundles: dict[str, Path], *, live: int | None = 1) -> Path:
@@ -59,28 +63,10 @@ def registry_dir(tmp_path: Path, tiny_bundles: dict[str, Path]) -> Path:
     return make_registry(tmp_path / "registry", tiny_bundles)
 
 
-@pytest.fixture(scope="module")
-def shared_registry(tmp_path_factory: pytest.TempPathFactory, tiny_bundles: dict[str, Path]) -> Path:
-    """Read-only use only: one registry for a whole module."""
-    return make_registry(tmp_path_factory.mktemp("shared-registry") / "registry", tiny_bundles)
-
-
 def settings_for(registry: Path, **overrides: Any) -> Settings:
     base: dict[str, Any] = {"registry": str(registry), "workers": 2, "poll_seconds": 0.2, "access_log": False}
     base.update(overrides)
     return Settings(**base)
-
-
-async def wait_ready(client: httpx.AsyncClient, timeout: float = 60.0) -> dict[str, Any]:
-    deadline = time.monotonic() + timeout
-    while True:
-        r = await client.get("/readyz")
-        if r.status_code == 200:
-            body: dict[str, Any] = r.json()
-            return body
-        if time.monotonic() > deadline:
-            raise AssertionError(f"service not ready after {timeout}s: {r.text}")
-        await asyncio.sleep(0.05)
 
 
 @contextlib.asynccontextmanager
@@ -91,15 +77,8 @@ async def serving(settings: Settings, *, ready: bool = True) -> AsyncIterator[tu
         transport = httpx.ASGITransport(app=app)
         async with httpx.AsyncClient(transport=transport, base_url="http://service.test", timeout=60) as client:
             if ready:
-                await wait_ready(client)
+                await wait_ready_async(client)
             yield app, client
-
-
-def free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        port: int = s.getsockname()[1]
-        return port
 
 
 @dataclass
@@ -120,20 +99,17 @@ def uvicorn_server(settings: Settings) -> Iterator[LiveServer]:
     thread.start()
     url = f"http://127.0.0.1:{settings.port}"
     try:
-        deadline = time.monotonic() + 60
-        while True:
-            try:
-                if httpx.get(f"{url}/readyz", timeout=2).status_code == 200:
-                    break
-            except httpx.HTTPError:
-                pass
-            if time.monotonic() > deadline or not thread.is_alive():
-                raise AssertionError("uvicorn did not become ready")
-            time.sleep(0.05)
+        wait_ready(url, gone=lambda: None if thread.is_alive() else "uvicorn's thread ended")
         yield LiveServer(url, app)
     finally:
         server.should_exit = True
         thread.join(timeout=20)
+
+
+def log_text(caplog: pytest.LogCaptureFixture) -> str:
+    """Every captured log record as one line: message, structured fields and traceback, for
+    checks that a secret appears nowhere in them."""
+    return "\n".join(f"{r.getMessage()} {r.__dict__.get('fields', '')} {r.exc_text or ''}" for r in caplog.records)
 
 
 PROBLEM = "application/problem+json"

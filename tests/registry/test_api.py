@@ -10,6 +10,7 @@ import json
 import shutil
 import subprocess
 import sys
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -17,7 +18,8 @@ import onnx
 import pytest
 from onnx import TensorProto, helper
 
-from tests.helpers.registries import RegistrySpec, edit_manifest, read_jsonl, write_jsonl
+from tests.helpers.jsonl import read_jsonl, write_jsonl
+from tests.helpers.registries import RegistrySpec, edit_manifest
 from textsieve.errors import BundleError, InputError, IntegrityError, NotFoundError, StateError
 from textsieve.registry import Registry, open_registry
 from textsieve.registry.runtime import Predictor
@@ -101,33 +103,53 @@ def _renamed_io_onnx(bundle: Path) -> None:
     onnx.save(model, str(bundle / "model.onnx"))
 
 
-BAD_BUNDLES = {
-    # name: (how to break a copy of bundle 'a', words the refusal must contain)
-    "no manifest": (lambda b: (b / "manifest.json").unlink(), "no manifest.json"),
-    "manifest not JSON": (lambda b: (b / "manifest.json").write_text("{not json"), "manifest.json"),
-    "schema: unknown field": (lambda b: edit_manifest(b, {"surprise": 1}), "surprise"),
-    "schema: duplicate labels": (lambda b: edit_manifest(b, {"labels": ["x", "x", "y", "z"]}), "labels must be unique"),
-    "file sha256 differs": (lambda b: (b / "vocab.txt").write_text("<pad>\n<unk>\nsneaky\n"), "vocab.txt has sha256"),
-    "listed file missing": (lambda b: (b / "card.md").unlink(), "card.md is listed in the manifest but missing"),
-    "unlisted file": (lambda b: (b / "extra.bin").write_bytes(b"x"), "not listed in the manifest: extra.bin"),
-    "onnx unreadable": (lambda b: (_garbage_onnx(b), edit_manifest(b, {})), "not a valid ONNX model"),
-    "onnx inputs differ": (lambda b: (_renamed_io_onnx(b), edit_manifest(b, {})), "inputs are"),
-    "parity failed": (lambda b: edit_manifest(b, {"parity.passed": False}), "parity check failed"),
-    "parity beyond tolerance": (lambda b: edit_manifest(b, {"parity.max_abs_prob_diff": 0.5}), "parity check failed"),
-    "vocabulary size": (lambda b: edit_manifest(b, {"vocabulary.size": 3}), "vocab.txt has"),
-}
+# how to break a copy of bundle 'a' -> words the refusal must contain
+BAD_BUNDLES = [
+    pytest.param(lambda b: (b / "manifest.json").unlink(), "no manifest.json", id="no manifest"),
+    pytest.param(lambda b: (b / "manifest.json").write_text("{not json"), "manifest.json", id="manifest not JSON"),
+    pytest.param(lambda b: edit_manifest(b, {"surprise": 1}), "surprise", id="schema: unknown field"),
+    pytest.param(
+        lambda b: edit_manifest(b, {"labels": ["x", "x", "y", "z"]}),
+        "labels must be unique",
+        id="schema: duplicate labels",
+    ),
+    pytest.param(
+        lambda b: (b / "vocab.txt").write_text("<pad>\n<unk>\nsneaky\n"),
+        "vocab.txt has sha256",
+        id="file sha256 differs",
+    ),
+    pytest.param(
+        lambda b: (b / "card.md").unlink(), "card.md is listed in the manifest but missing", id="listed file missing"
+    ),
+    pytest.param(
+        lambda b: (b / "extra.bin").write_bytes(b"x"), "not listed in the manifest: extra.bin", id="unlisted file"
+    ),
+    pytest.param(lambda b: (_garbage_onnx(b), edit_manifest(b, {})), "not a valid ONNX model", id="onnx unreadable"),
+    pytest.param(lambda b: (_renamed_io_onnx(b), edit_manifest(b, {})), "inputs are", id="onnx inputs differ"),
+    pytest.param(lambda b: edit_manifest(b, {"parity.passed": False}), "parity check failed", id="parity failed"),
+    pytest.param(
+        lambda b: edit_manifest(b, {"parity.max_abs_prob_diff": 0.5}),
+        "parity check failed",
+        id="parity beyond tolerance",
+    ),
+    pytest.param(lambda b: edit_manifest(b, {"vocabulary.size": 3}), "vocab.txt has", id="vocabulary size"),
+]
 
 
-@pytest.mark.parametrize("case", list(BAD_BUNDLES))
+@pytest.mark.parametrize(("breaker", "expected_msg"), BAD_BUNDLES)
 def test_a_bundle_failing_any_check_is_refused_and_nothing_is_stored(
-    case: str, registry: Registry, spec: RegistrySpec, tiny_bundles: dict[str, Path], tmp_path: Path
+    breaker: Callable[[Path], object],
+    expected_msg: str,
+    registry: Registry,
+    spec: RegistrySpec,
+    tiny_bundles: dict[str, Path],
+    tmp_path: Path,
 ) -> None:
-    breaker, words = BAD_BUNDLES[case]
     bundle = copy_bundle(tiny_bundles["a"], tmp_path / "bad")
     breaker(bundle)
     with pytest.raises(BundleError) as info:
         registry.publish(bundle, "spam")
-    assert words in info.value.message
+    assert expected_msg in info.value.message
     assert_nothing_stored(registry, spec)
 
 
@@ -226,18 +248,41 @@ def test_lifecycle_one_live_one_candidate_promote_retires_and_rollback_walks_bac
     assert_invariants(registry, "m")
 
 
-def test_rollback_without_live(registry: Registry, tiny_bundles: dict[str, Path]) -> None:
+# Model "m" has version 1, registered; nothing is live.
+@pytest.mark.parametrize(
+    ("call", "error", "expected_msg"),
+    [
+        pytest.param(
+            lambda reg: reg.rollback("m", reason="x"), StateError, "no live version", id="rollback, none live"
+        ),
+        pytest.param(
+            lambda reg: reg.promote("m", 1, "live", reason=" "), InputError, "reason is required", id="blank reason"
+        ),
+        pytest.param(
+            lambda reg: reg.promote("m", 1, "retired", reason="x"),
+            InputError,
+            "allowed: candidate, live",
+            id="promote to retired",
+        ),
+        pytest.param(
+            lambda reg: reg.promote("m", 7, "live", reason="x"),
+            NotFoundError,
+            "no version 7; its versions are 1–1",
+            id="unknown version",
+        ),
+        pytest.param(lambda reg: reg.versions("nope"), NotFoundError, "no model 'nope'", id="unknown model"),
+    ],
+)
+def test_refused_calls_on_a_model_with_nothing_live(
+    call: Callable[[Registry], object],
+    error: type[Exception],
+    expected_msg: str,
+    registry: Registry,
+    tiny_bundles: dict[str, Path],
+) -> None:
     registry.publish(tiny_bundles["a"], "m")
-    with pytest.raises(StateError, match="no live version"):
-        registry.rollback("m", reason="x")
-    with pytest.raises(InputError, match="reason is required"):
-        registry.promote("m", 1, "live", reason=" ")
-    with pytest.raises(InputError, match="allowed: candidate, live"):
-        registry.promote("m", 1, "retired", reason="x")
-    with pytest.raises(NotFoundError, match="no version 7; its versions are 1–1"):
-        registry.promote("m", 7, "live", reason="x")
-    with pytest.raises(NotFoundError, match="no model 'nope'"):
-        registry.versions("nope")
+    with pytest.raises(error, match=expected_msg):
+        call(registry)
 
 
 def test_history_records_every_change_with_actor_utc_time_reason_and_gates(

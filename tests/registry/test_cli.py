@@ -119,29 +119,39 @@ def test_a_refused_gate_exits_1_naming_the_gate_and_figures(
     assert re.search(r"^labels\s+FAIL\s+labels differ", err, re.M)  # the gate table with figures
 
 
+# Model "m" has version 1, registered; nothing is live.
 @pytest.mark.parametrize(
-    "argv",
+    ("argv", "expected_msg"),
     [
-        ["versions", "Bad/Name"],
-        ["versions", "nope"],
-        ["show", "m", "x"],
-        ["show", "m", "0"],
-        ["promote", "m", "9", "--to", "live", "--reason", "x"],
-        ["promote", "m", "1", "--to", "live", "--reason", "  "],
-        ["history", ".."],
-        ["publish", "/nonexistent/bundle", "--model", "m"],
-        ["evalset", "add", "m", "/nonexistent.jsonl"],
-        ["rollback", "m", "--reason", "x"],
+        pytest.param(["versions", "Bad/Name"], "bad model name 'Bad/Name'", id="bad model name"),
+        pytest.param(["versions", "nope"], "no model 'nope'", id="unknown model"),
+        pytest.param(["show", "m", "x"], "bad version 'x'", id="version a letter"),
+        pytest.param(["show", "m", "0"], "bad version 0", id="version 0"),
+        pytest.param(
+            ["promote", "m", "9", "--to", "live", "--reason", "x"], "no version 9", id="promote an unknown version"
+        ),
+        pytest.param(
+            ["promote", "m", "1", "--to", "live", "--reason", "  "], "a reason is required", id="blank reason"
+        ),
+        pytest.param(["history", ".."], "bad model name '..'", id="model name '..'"),
+        pytest.param(["publish", "/nonexistent/bundle", "--model", "m"], "not a folder", id="publish no folder"),
+        pytest.param(["evalset", "add", "m", "/nonexistent.jsonl"], "no such file", id="evaluation set missing"),
+        pytest.param(["rollback", "m", "--reason", "x"], "no live version", id="rollback with nothing live"),
     ],
 )
 def test_bad_input_exits_2_with_one_line(
-    argv: list[str], capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path]
+    argv: list[str],
+    expected_msg: str,
+    capsys: pytest.CaptureFixture[str],
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
 ) -> None:
     r = ["--registry", str(tmp_path / "reg")]
     run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)
     code, out, err = run(capsys, *argv, *r)
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1 and err.startswith("textsieve: error: "), err
+    assert expected_msg in err, err
 
 
 def test_a_state_outside_the_choices_is_an_argument_error(capsys: pytest.CaptureFixture[str]) -> None:

@@ -10,7 +10,8 @@ import numpy as np
 import pytest
 import sklearn.metrics
 
-from tests.helpers.registries import RegistrySpec, edit_manifest, read_jsonl, write_jsonl
+from tests.helpers.jsonl import read_jsonl, write_jsonl
+from tests.helpers.registries import RegistrySpec, edit_manifest
 from textsieve.errors import GateRefusedError
 from textsieve.registry import GateSettings, Registry
 from textsieve.registry import gates as gates_module

@@ -25,8 +25,8 @@ from schemathesis import GenerationMode
 from schemathesis.checks import not_a_server_error
 from schemathesis.specs.openapi import checks as openapi_checks
 
-from tests.helpers.servers import ADMIN_TOKEN, MODEL, running_server
-from tests.helpers.service import make_registry
+from tests.helpers.servers import running_server
+from tests.helpers.service import ADMIN_TOKEN, AUTH, MODEL, make_registry
 
 REQUESTS = 5000
 
@@ -90,7 +90,7 @@ def test_generated_requests_get_documented_answers_and_no_server_error(
         @settings(max_examples=REQUESTS, deadline=None, database=None, suppress_health_check=list(HealthCheck))
         @given(case=cases, admin=st.booleans())
         def fuzz(case: Any, admin: bool) -> None:
-            headers = {"Authorization": f"Bearer {ADMIN_TOKEN}"} if admin else None
+            headers = AUTH if admin else None
             response = case.call(base_url=server.url, session=session, headers=headers, timeout=60)
             sent[case.operation.label] += 1
             deadline_passed = response.status_code == 504 and _with_deadline(case)

@@ -30,9 +30,10 @@ import json
 from pathlib import Path
 from typing import Any
 
+import httpx
 import pytest
 
-from tests.helpers.service import ADMIN_TOKEN, MODEL, assert_problem, serving, settings_for
+from tests.helpers.service import AUTH, MODEL, assert_problem
 from textsieve.registry import open_registry
 
 pytestmark = pytest.mark.anyio
@@ -40,161 +41,169 @@ JSON = {"content-type": "application/json"}
 MAX_VERSION = 2**31 - 1  # the largest PostgreSQL INTEGER (PostgreSQL docs, "Numeric Types")
 
 
-@pytest.fixture(scope="module")
-def retired_registry(tmp_path_factory: pytest.TempPathFactory, tiny_bundles: dict[str, Path]) -> Path:
-    """Model ``support``: version 1 retired, version 2 live (read-only use)."""
-    folder = tmp_path_factory.mktemp("catalogue") / "registry"
-    with open_registry(folder) as reg:
-        reg.publish(tiny_bundles["a"], MODEL, actor="tests")
-        reg.publish(tiny_bundles["b"], MODEL, actor="tests")
-        reg.promote(MODEL, 1, "live", reason="first", actor="tests", force=True)
-        reg.promote(MODEL, 2, "live", reason="second", actor="tests", force=True)
-    return folder
-
-
 def _big(n_chars: int) -> str:
     return ("charged twice " * (n_chars // 14 + 1))[:n_chars]
 
 
-# (id, body bytes, status, problem slug, field named in errors (or None), words the detail must contain)
-CATALOGUE: list[tuple[str, bytes, int, str, str | None, list[str]]] = [
-    (
-        "NUL escaped in a text",
+# body bytes, status, problem slug, field named in errors (or None), words the detail must contain
+CATALOGUE = [
+    pytest.param(
         b'{"texts": ["fine", "bad\\u0000text"]}',
         422,
         "invalid-input",
         "texts",
         ["texts[1]", "U+0000"],
+        id="NUL escaped in a text",
     ),
-    ("raw NUL byte in the body", b'{"texts": ["bad\x00text"]}', 422, "invalid-input", "body", ["not valid JSON"]),
-    (
-        "NUL in the model name",
+    pytest.param(
+        b'{"texts": ["bad\x00text"]}', 422, "invalid-input", "body", ["not valid JSON"], id="raw NUL byte in the body"
+    ),
+    pytest.param(
         b'{"texts": ["a"], "model": "sup\\u0000port"}',
         422,
         "invalid-input",
         None,
         ["bad model name"],
+        id="NUL in the model name",
     ),
-    ("empty text", b'{"texts": ["fine", ""]}', 422, "invalid-input", "texts", ["texts[1]", "empty"]),
-    ("whitespace-only text", b'{"texts": [" \\t\\n\\u3000"]}', 422, "invalid-input", "texts", ["texts[0]", "empty"]),
-    ("empty model name", b'{"texts": ["a"], "model": ""}', 422, "invalid-input", None, ["bad model name"]),
-    ("byte 0xFF (never in UTF-8)", b'{"texts": ["caf\xff"]}', 422, "invalid-input", "body", ["not UTF-8"]),
-    ("overlong encoding of '/'", b'{"texts": ["a\xc0\xafb"]}', 422, "invalid-input", "body", ["not UTF-8"]),
+    pytest.param(b'{"texts": ["fine", ""]}', 422, "invalid-input", "texts", ["texts[1]", "empty"], id="empty text"),
+    pytest.param(
+        b'{"texts": [" \\t\\n\\u3000"]}',
+        422,
+        "invalid-input",
+        "texts",
+        ["texts[0]", "empty"],
+        id="whitespace-only text",
+    ),
+    pytest.param(
+        b'{"texts": ["a"], "model": ""}', 422, "invalid-input", None, ["bad model name"], id="empty model name"
+    ),
+    pytest.param(
+        b'{"texts": ["caf\xff"]}', 422, "invalid-input", "body", ["not UTF-8"], id="byte 0xFF (never in UTF-8)"
+    ),
+    pytest.param(
+        b'{"texts": ["a\xc0\xafb"]}', 422, "invalid-input", "body", ["not UTF-8"], id="overlong encoding of '/'"
+    ),
     # Python's JSON decoder lets encoded surrogates through (surrogatepass); the text check then names it.
-    (
-        "UTF-8-encoded surrogate",
+    pytest.param(
         b'{"texts": ["a\xed\xa0\x80b"]}',
         422,
         "invalid-input",
         "texts",
         ["texts[0]", "lone surrogate"],
+        id="UTF-8-encoded surrogate",
     ),
-    ("truncated 3-byte sequence", b'{"texts": ["a\xe2\x82"]}', 422, "invalid-input", "body", ["not UTF-8"]),
-    ("Latin-1 body", '{"texts": ["déjà vu"]}'.encode("latin-1"), 422, "invalid-input", "body", ["not UTF-8"]),
-    (
-        "a 1 MB text",
+    pytest.param(
+        b'{"texts": ["a\xe2\x82"]}', 422, "invalid-input", "body", ["not UTF-8"], id="truncated 3-byte sequence"
+    ),
+    pytest.param(
+        '{"texts": ["déjà vu"]}'.encode("latin-1"), 422, "invalid-input", "body", ["not UTF-8"], id="Latin-1 body"
+    ),
+    pytest.param(
         json.dumps({"texts": [_big(1_000_000)]}).encode(),
         413,
         "limit-exceeded",
         None,
         ["texts[0]", "1000000 characters", "TEXTSIEVE_MAX_CHARS"],
+        id="a 1 MB text",
     ),
-    (
-        "5 MB of texts",
+    pytest.param(
         json.dumps({"texts": [_big(19_000)] * 270}).encode(),
         413,
         "limit-exceeded",
         None,
         ["TEXTSIEVE_MAX_BODY_BYTES"],
+        id="5 MB of texts",
     ),
-    (
-        "100 000 texts",
+    pytest.param(
         json.dumps({"texts": ["a"] * 100_000}).encode(),
         413,
         "limit-exceeded",
         None,
         ["100000 texts", "TEXTSIEVE_MAX_TEXTS"],
+        id="100 000 texts",
     ),
-    (
-        "arrays nested 100 000 deep",
+    pytest.param(
         b'{"texts": ' + b"[" * 100_000 + b"]" * 100_000 + b"}",
         422,
         "invalid-input",
         "body",
         ["nested too deeply"],
+        id="arrays nested 100 000 deep",
     ),
-    (
-        "objects nested 5 000 deep",
+    pytest.param(
         b'{"texts": ["a"], "x": ' + b'{"a": ' * 5000 + b"1" + b"}" * 5000 + b"}",
         422,
         "invalid-input",
         "body",
         ["nested too deeply"],
+        id="objects nested 5 000 deep",
     ),
-    (
-        "several unknown fields",
+    pytest.param(
         b'{"texts": ["a"], "modle": "x", "top_k": 3}',
         422,
         "invalid-input",
         "modle, top_k",
         ["'modle', 'top_k'", "allowed: texts, model, version, spans"],
+        id="several unknown fields",
     ),
-    (
-        "version past the storable range",
+    pytest.param(
         b'{"texts": ["a"], "version": 100000000000000000000000}',
         422,
         "invalid-input",
         "version",
         [str(MAX_VERSION)],
+        id="version past the storable range",
     ),
-    (
-        "version 2**31",
+    pytest.param(
         f'{{"texts": ["a"], "version": {2**31}}}'.encode(),
         422,
         "invalid-input",
         "version",
         [str(MAX_VERSION)],
+        id="version 2**31",
     ),
-    (
-        "largest storable version (unknown)",
+    pytest.param(
         f'{{"texts": ["a"], "version": {MAX_VERSION}}}'.encode(),
         404,
         "not-found",
         None,
         [f"no version {MAX_VERSION}"],
+        id="largest storable version (unknown)",
     ),
-    ("huge spans", b'{"texts": ["a"], "spans": 100000000000000000000000}', 422, "invalid-input", "spans", []),
-    (
-        "spans above the setting",
+    pytest.param(
+        b'{"texts": ["a"], "spans": 100000000000000000000000}', 422, "invalid-input", "spans", [], id="huge spans"
+    ),
+    pytest.param(
         b'{"texts": ["a"], "spans": 1000000}',
         422,
         "invalid-input",
         None,
         ["TEXTSIEVE_MAX_SPANS"],
+        id="spans above the setting",
     ),
-    ("fractional spans", b'{"texts": ["a"], "spans": 2.5}', 422, "invalid-input", "spans", ["integer"]),
-    ("spans as text", b'{"texts": ["a"], "spans": "3"}', 422, "invalid-input", "spans", ["integer"]),
-    (
-        "retired version",
+    pytest.param(b'{"texts": ["a"], "spans": 2.5}', 422, "invalid-input", "spans", ["integer"], id="fractional spans"),
+    pytest.param(b'{"texts": ["a"], "spans": "3"}', 422, "invalid-input", "spans", ["integer"], id="spans as text"),
+    pytest.param(
         b'{"texts": ["a"], "version": 1}',
         409,
         "state-conflict",
         None,
         ["version 1", "retired", "live version (2)"],
+        id="retired version",
     ),
     # Types are strict: no "3" for 3, no 1.0 for 1, no 1 for true (what the OpenAPI schema says).
-    ("version written 1.0", b'{"texts": ["a"], "version": 1.0}', 422, "invalid-input", "version", ["integer"]),
+    pytest.param(
+        b'{"texts": ["a"], "version": 1.0}', 422, "invalid-input", "version", ["integer"], id="version written 1.0"
+    ),
 ]
 
 
-@pytest.mark.parametrize(
-    ("body", "status", "slug", "field", "words"), [pytest.param(*case[1:], id=case[0]) for case in CATALOGUE]
-)
+@pytest.mark.parametrize(("body", "status", "slug", "field", "words"), CATALOGUE)
 async def test_bad_input_catalogue(
-    retired_registry: Path, body: bytes, status: int, slug: str, field: str | None, words: list[str]
+    retired_client: httpx.AsyncClient, body: bytes, status: int, slug: str, field: str | None, words: list[str]
 ) -> None:
-    async with serving(settings_for(retired_registry)) as (_, client):
-        r = await client.post("/v1/predict", content=body, headers=JSON)
+    r = await retired_client.post("/v1/predict", content=body, headers=JSON)
     problem = assert_problem(r, status, slug)
     if field is not None:
         assert problem["errors"][0]["field"] == field, problem
@@ -206,36 +215,41 @@ async def test_bad_input_catalogue(
 @pytest.mark.parametrize(
     ("content_type", "body"),
     [
-        ("text/plain", b'{"texts": ["a"]}'),
-        ("application/x-www-form-urlencoded", b"texts=a"),
-        (
+        pytest.param("text/plain", b'{"texts": ["a"]}', id="JSON sent as text/plain"),
+        pytest.param("application/x-www-form-urlencoded", b"texts=a", id="a form"),
+        pytest.param(
             "multipart/form-data; boundary=x",
             b'--x\r\nContent-Disposition: form-data; name="texts"\r\n\r\na\r\n--x--\r\n',
+            id="a multipart form",
         ),
     ],
 )
-async def test_bodies_that_are_not_json_are_refused(retired_registry: Path, content_type: str, body: bytes) -> None:
-    async with serving(settings_for(retired_registry)) as (_, client):
-        r = await client.post("/v1/predict", content=body, headers={"content-type": content_type})
+async def test_bodies_that_are_not_json_are_refused(
+    retired_client: httpx.AsyncClient, content_type: str, body: bytes
+) -> None:
+    r = await retired_client.post("/v1/predict", content=body, headers={"content-type": content_type})
     problem = assert_problem(r, 422, "invalid-input")
     assert "JSON object" in problem["detail"] or "not valid JSON" in problem["detail"], problem
-
-
-AUTH = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
 
 
 @pytest.mark.parametrize(
     ("path", "body", "field"),
     [
-        (f"/v1/models/{MODEL}/versions/1/promote", {"to": "live", "reason": "x", "forced": True}, "forced"),
-        (f"/v1/models/{MODEL}/rollback", {"reason": "x", "version": 1}, "version"),
+        pytest.param(
+            f"/v1/models/{MODEL}/versions/1/promote",
+            {"to": "live", "reason": "x", "forced": True},
+            "forced",
+            id="promote with 'forced'",
+        ),
+        pytest.param(
+            f"/v1/models/{MODEL}/rollback", {"reason": "x", "version": 1}, "version", id="rollback to a version"
+        ),
     ],
 )
 async def test_unknown_fields_in_admin_bodies_are_refused_and_change_nothing(
-    retired_registry: Path, path: str, body: dict[str, Any], field: str
+    retired_client: httpx.AsyncClient, retired_registry: Path, path: str, body: dict[str, Any], field: str
 ) -> None:
-    async with serving(settings_for(retired_registry, admin_token=ADMIN_TOKEN)) as (_, client):
-        r = await client.post(path, json=body, headers=AUTH)
+    r = await retired_client.post(path, json=body, headers=AUTH)
     problem = assert_problem(r, 422, "invalid-input")
     assert problem["errors"][0]["field"] == field and "allowed:" in problem["detail"]
     with open_registry(retired_registry) as reg:
@@ -245,16 +259,15 @@ async def test_unknown_fields_in_admin_bodies_are_refused_and_change_nothing(
 @pytest.mark.parametrize(
     "path",
     [
-        f"/v1/models/{MODEL}/versions/{2**31}",
-        f"/v1/models/{MODEL}/versions/{10**30}",
-        f"/v1/models/{MODEL}/versions/{10**30}/promote",
+        pytest.param(f"/v1/models/{MODEL}/versions/{2**31}", id="view version 2**31"),
+        pytest.param(f"/v1/models/{MODEL}/versions/{10**30}", id="view version 10**30"),
+        pytest.param(f"/v1/models/{MODEL}/versions/{10**30}/promote", id="promote version 10**30"),
     ],
 )
-async def test_version_numbers_in_paths_past_the_storable_range(retired_registry: Path, path: str) -> None:
-    async with serving(settings_for(retired_registry, admin_token=ADMIN_TOKEN)) as (_, client):
-        if path.endswith("promote"):
-            r = await client.post(path, json={"to": "live", "reason": "x"}, headers=AUTH)
-        else:
-            r = await client.get(path)
+async def test_version_numbers_in_paths_past_the_storable_range(retired_client: httpx.AsyncClient, path: str) -> None:
+    if path.endswith("promote"):
+        r = await retired_client.post(path, json={"to": "live", "reason": "x"}, headers=AUTH)
+    else:
+        r = await retired_client.get(path)
     problem = assert_problem(r, 422, "invalid-input")
     assert str(MAX_VERSION) in problem["detail"]

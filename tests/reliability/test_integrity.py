@@ -10,12 +10,12 @@ requests pinned to the broken version, the readiness report and the recovery.
 from __future__ import annotations
 
 import asyncio
-import time
 from collections.abc import Callable
 from pathlib import Path
 
 import pytest
 
+from tests.helpers.net import readyz_until
 from tests.helpers.service import MODEL, serving, settings_for
 from textsieve.errors import IntegrityError
 from textsieve.registry import open_registry
@@ -86,7 +86,9 @@ async def test_a_damaged_new_live_version_is_refused_while_the_old_one_keeps_ser
             reg.promote(MODEL, 2, "live", reason="promoted elsewhere", actor="tests", force=True)
         path, original, word = _damage(registry_dir, kind)
 
-        ready = await _until(client, lambda body: "failed_version" in body["models"][MODEL])
+        ready = await readyz_until(
+            client, lambda body: "failed_version" in body["models"][MODEL], timeout=20, awaiting="the failed version"
+        )
         entry = ready["models"][MODEL]
         assert ready["ready"] is True, "the service still answers every request"
         assert entry["version"] == 1 and entry["state"] == "ready"
@@ -110,16 +112,8 @@ async def test_a_damaged_new_live_version_is_refused_while_the_old_one_keeps_ser
         if path.exists():
             path.chmod(0o644)
         path.write_bytes(original)
-        healed = await _until(client, lambda body: body["models"][MODEL].get("version") == 2, timeout=30)
+        healed = await readyz_until(
+            client, lambda body: body["models"][MODEL].get("version") == 2, timeout=30, awaiting="version 2 to serve"
+        )
         assert "failed_version" not in healed["models"][MODEL] and not healed["degraded"]
         assert (await client.post("/v1/predict", json={"texts": ["charged twice"]})).json()["version"] == 2
-
-
-async def _until(client: object, ok: Callable[[dict], bool], timeout: float = 20) -> dict:  # type: ignore[type-arg]
-    deadline = time.monotonic() + timeout
-    while True:
-        body = (await client.get("/readyz")).json()  # type: ignore[attr-defined]
-        if ok(body):
-            return body  # type: ignore[no-any-return]
-        assert time.monotonic() < deadline, body
-        await asyncio.sleep(0.05)

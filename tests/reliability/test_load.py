@@ -14,7 +14,6 @@ batch-invariance tolerance).
 from __future__ import annotations
 
 import asyncio
-import json
 import random
 import time
 from pathlib import Path
@@ -23,15 +22,16 @@ from typing import Any
 import httpx
 import numpy as np
 
-from tests.helpers.servers import ADMIN_TOKEN, MODEL, DirectModel, running_server
-from tests.helpers.service import make_registry
+from tests.helpers.jsonl import read_jsonl
+from tests.helpers.net import readyz_until
+from tests.helpers.servers import DirectModel, running_server
+from tests.helpers.service import ADMIN_TOKEN, AUTH, MODEL, make_registry
 from textsieve.registry import open_registry
 
 CLIENTS = 32
 REQUESTS_PER_CLIENT = 50
 ROUNDS = 4  # each round: promote version 2, then roll back to version 1
 TOLERANCE = 1e-5
-AUTH = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
 EXTRA_TEXTS = [
     "The tyre is flat 😀 and the café's app won't load… 修理 please",
     "charged twice " * 120,  # longer than max_length: truncated
@@ -41,7 +41,7 @@ EXTRA_TEXTS = [
 
 
 def _pool(data: Path) -> list[str]:
-    rows = [json.loads(line) for line in (data / "test.jsonl").read_text(encoding="utf-8").splitlines() if line]
+    rows = read_jsonl(data / "test.jsonl")
     return [r["text"] for r in rows[:150]] + EXTRA_TEXTS
 
 
@@ -117,10 +117,6 @@ async def _drive(
                         failures.append(f"client {i}: HTTP {r.status_code}: {r.text[:300]}")
                 done += 1
 
-    async def served_version(http: httpx.AsyncClient) -> int:
-        body = (await http.get("/readyz")).json()
-        return int(body["models"][MODEL]["version"])
-
     async def change(step: int, http: httpx.AsyncClient) -> None:
         # Odd rounds go through the admin API (the reply comes after the swap); even rounds
         # change the registry directly and wait for the poller to bring the service along.
@@ -142,10 +138,12 @@ async def _drive(
             assert r.json()["serving"]["version"] == target
         else:
             await asyncio.to_thread(_change_registry, registry, kind)
-            deadline = time.monotonic() + 20
-            while await served_version(http) != target:
-                assert time.monotonic() < deadline, f"the service did not follow the {kind} in 20 s"
-                await asyncio.sleep(0.02)
+            await readyz_until(
+                http,
+                lambda body: body["models"][MODEL]["version"] == target,
+                timeout=20,
+                awaiting=f"the service to follow the {kind}",
+            )
         swaps.append((kind, via))
 
     async def swapper() -> None:

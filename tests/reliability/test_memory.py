@@ -20,7 +20,7 @@ from pathlib import Path
 
 import pytest
 
-from tests.helpers.service import ADMIN_TOKEN, MODEL, serving, settings_for
+from tests.helpers.service import ADMIN_TOKEN, AUTH, MODEL, serving, settings_for
 from textsieve.service.inference.memory import release_freed_memory
 
 MiB = 2**20
@@ -72,7 +72,6 @@ async def test_swaps_under_load_keep_no_unloaded_version_alive(registry_dir: Pat
         return sum(1 for o in gc.get_objects() if type(o) is kind)  # type(): no attribute lookups
 
     texts = [f"my card was charged twice for order {i} and the refund is late" for i in range(200)]
-    headers = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
     settings = settings_for(registry_dir, admin_token=ADMIN_TOKEN, poll_seconds=600, workers=2, inference=inference)
     async with serving(settings) as (app, client):
         stop = asyncio.Event()
@@ -89,11 +88,11 @@ async def test_swaps_under_load_keep_no_unloaded_version_alive(registry_dir: Pat
             if i % 2 == 0:
                 r = await client.post(
                     f"/v1/models/{MODEL}/versions/2/promote",
-                    headers=headers,
+                    headers=AUTH,
                     json={"to": "live", "reason": "memory test", "force": True},
                 )
             else:
-                r = await client.post(f"/v1/models/{MODEL}/rollback", headers=headers, json={"reason": "memory test"})
+                r = await client.post(f"/v1/models/{MODEL}/rollback", headers=AUTH, json={"reason": "memory test"})
             assert r.status_code == 200, r.text
             await app.state.models.poll_once()  # the change events drop pinned copies, as the poller would
             await asyncio.sleep(0.05)

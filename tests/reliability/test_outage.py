@@ -22,22 +22,12 @@ from typing import Any
 import httpx
 import pytest
 
-from tests.helpers.servers import ADMIN_TOKEN, MODEL, own_cluster
-from tests.helpers.service import serving, settings_for
+from tests.helpers.net import readyz_until
+from tests.helpers.servers import own_cluster
+from tests.helpers.service import ADMIN_TOKEN, AUTH, MODEL, log_text, serving, settings_for
 from textsieve.registry import open_registry
 
 pytestmark = pytest.mark.anyio
-AUTH = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
-
-
-async def _until(client: httpx.AsyncClient, check: Any, timeout: float = 30) -> dict[str, Any]:
-    deadline = time.monotonic() + timeout
-    while True:
-        body: dict[str, Any] = (await client.get("/readyz")).json()
-        if check(body):
-            return body
-        assert time.monotonic() < deadline, body
-        await asyncio.sleep(0.05)
 
 
 async def test_predictions_continue_through_a_registry_outage_and_polling_resumes(
@@ -66,7 +56,7 @@ async def test_predictions_continue_through_a_registry_outage_and_polling_resume
             assert not (await client.get("/readyz")).json()["degraded"]
 
             await asyncio.to_thread(cluster.stop, "immediate")
-            down = await _until(client, lambda b: b["degraded"])
+            down = await readyz_until(client, lambda b: b["degraded"], timeout=30, awaiting="the outage note")
             seen.append(repr(down))
             assert down["ready"] is True
             note = " ".join(down["degraded"])
@@ -95,17 +85,19 @@ async def test_predictions_continue_through_a_registry_outage_and_polling_resume
                 assert "PostgreSQL unavailable" in r.json()["detail"]
 
             await asyncio.to_thread(cluster.start)
-            await _until(client, lambda b: not b["degraded"])
+            await readyz_until(client, lambda b: not b["degraded"], timeout=30, awaiting="the note to clear")
             # Polling resumed: a promotion made by another process is picked up.
             with open_registry(cluster.url, blobs=blobs) as reg:
                 reg.promote(MODEL, 2, "live", reason="after the outage", actor="tests", force=True)
-            await _until(client, lambda b: b["models"][MODEL].get("version") == 2)
+            await readyz_until(
+                client, lambda b: b["models"][MODEL].get("version") == 2, timeout=30, awaiting="version 2"
+            )
             assert (await call("POST", "/v1/predict", json={"texts": ["a"]})).json()["version"] == 2
             back = await call("POST", f"/v1/models/{MODEL}/rollback", headers=AUTH, json={"reason": "works again"})
             assert back.status_code == 200 and back.json()["serving"]["version"] == 1
             seen.append((await client.get("/metrics")).text)
 
-    logged = "\n".join(f"{r.getMessage()} {r.__dict__.get('fields', '')} {r.exc_text or ''}" for r in caplog.records)
+    logged = log_text(caplog)
     assert "PostgreSQL unavailable" in logged, "the outage is logged"
     assert password not in logged, "the database password leaked into the log"
     assert not [s for s in seen if password in s], "the database password leaked into a response"

@@ -18,7 +18,6 @@ import shutil
 import subprocess
 import sys
 import textwrap
-import time
 import urllib.parse
 from pathlib import Path
 from typing import Any
@@ -28,15 +27,16 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from tests.helpers.environment import child_env
+from tests.helpers.net import free_port, poll_readyz
 from tests.helpers.registries import edit_manifest
-from tests.helpers.servers import ADMIN_TOKEN, MODEL, ServerProcess, child_env, free_port
-from tests.helpers.service import assert_problem, serving, settings_for
+from tests.helpers.servers import ServerProcess
+from tests.helpers.service import ADMIN_TOKEN, AUTH, MODEL, assert_problem, log_text, serving, settings_for
 from textsieve.errors import BundleError, InputError
 from textsieve.registry import open_registry
 from textsieve.registry.names import MODEL_NAME, validate_model_name
 
 ROOT = Path(__file__).resolve().parents[2]
-AUTH = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
 ADMIN_CALLS = [
     (f"/v1/models/{MODEL}/versions/2/promote", {"to": "live", "reason": "security test", "force": True}),
     (f"/v1/models/{MODEL}/rollback", {"reason": "security test"}),
@@ -120,15 +120,11 @@ async def test_tokens_never_reach_the_log_or_a_reply(registry_dir: Path, caplog:
             await client.get("/openapi.json"),
         ):
             seen.append(r.text + repr(dict(r.headers)))
-    logged = _log_text(caplog)
+    logged = log_text(caplog)
     assert "sec-1" in logged, "the access log was captured"
     for secret in (ADMIN_TOKEN, wrong):
         assert secret not in logged
         assert not [s for s in seen if secret in s]
-
-
-def _log_text(caplog: pytest.LogCaptureFixture) -> str:
-    return "\n".join(f"{r.getMessage()} {r.__dict__.get('fields', '')} {r.exc_text or ''}" for r in caplog.records)
 
 
 def test_serve_keeps_database_passwords_and_tokens_out_of_its_output(tmp_path: Path) -> None:
@@ -142,16 +138,7 @@ def test_serve_keeps_database_passwords_and_tokens_out_of_its_output(tmp_path: P
     )
     replies: list[str] = []
     try:
-        deadline = time.monotonic() + 60
-        while True:
-            try:
-                r = httpx.get(f"{server.url}/readyz", timeout=5)
-                if "startup failed" in r.text:
-                    break
-            except httpx.HTTPError:
-                pass
-            assert time.monotonic() < deadline and server.proc.poll() is None, server.output()[-2000:]
-            time.sleep(0.1)
+        r = poll_readyz(server.url, lambda r: "startup failed" in r.text, awaiting="start-up to fail", gone=server.gone)
         replies.append(r.text)
         for method, path, kw in [
             ("GET", "/v1/models", {}),

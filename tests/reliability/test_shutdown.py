@@ -17,8 +17,8 @@ from pathlib import Path
 
 import httpx
 
-from tests.helpers.servers import MODEL, ServerProcess
-from tests.helpers.service import make_registry
+from tests.helpers.servers import ServerProcess
+from tests.helpers.service import MODEL, make_registry
 from textsieve.service.cli import GRACEFUL_SECONDS
 
 # The graceful-shutdown timeout of `textsieve serve`, then the app's own shutdown (closing the

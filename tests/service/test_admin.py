@@ -7,11 +7,10 @@ from pathlib import Path
 
 import pytest
 
-from tests.helpers.service import ADMIN_TOKEN, MODEL, assert_problem, serving, settings_for
+from tests.helpers.service import ADMIN_TOKEN, AUTH, MODEL, assert_problem, serving, settings_for
 from textsieve.registry import open_registry
 
 pytestmark = pytest.mark.anyio
-AUTH = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
 PROMOTE = f"/v1/models/{MODEL}/versions/2/promote"
 ROLLBACK = f"/v1/models/{MODEL}/rollback"
 

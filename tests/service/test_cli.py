@@ -3,36 +3,27 @@
 from __future__ import annotations
 
 import json
-import os
 import signal
 import subprocess
 import sys
-import time
-from collections.abc import Iterator
 from pathlib import Path
 
 import httpx
-import pytest
 
-from tests.helpers.service import MODEL, free_port, settings_for, uvicorn_server
+from tests.helpers.environment import child_env
+from tests.helpers.net import exited, free_port, wait_ready
+from tests.helpers.service import MODEL
 from textsieve.service.client import highlight, render
 
 CLI = [sys.executable, "-m", "textsieve.cli"]
 
 
 def run(*args: str, timeout: float = 60) -> subprocess.CompletedProcess[str]:
-    env = {k: v for k, v in os.environ.items() if not k.startswith("TEXTSIEVE_")}
-    return subprocess.run([*CLI, *args], capture_output=True, text=True, timeout=timeout, env=env)
+    return subprocess.run([*CLI, *args], capture_output=True, text=True, timeout=timeout, env=child_env())
 
 
-@pytest.fixture(scope="module")
-def url(shared_registry: Path) -> Iterator[str]:
-    with uvicorn_server(settings_for(shared_registry, port=free_port())) as server:
-        yield server.url
-
-
-def test_health_ready_and_unreachable(url: str) -> None:
-    ok = run("health", "--url", url)
+def test_health_ready_and_unreachable(live_url: str) -> None:
+    ok = run("health", "--url", live_url)
     assert ok.returncode == 0, ok.stderr
     assert ok.stdout.count("\n") == 1 and ok.stdout.startswith(f"ready: serving {MODEL} v1")
     down = run("health", "--url", f"http://127.0.0.1:{free_port()}", "--timeout", "2")
@@ -42,18 +33,18 @@ def test_health_ready_and_unreachable(url: str) -> None:
     assert bad.returncode == 1 and bad.stdout.startswith("not ready:")
 
 
-def test_predict_prints_label_probabilities_and_marked_spans(url: str) -> None:
+def test_predict_prints_label_probabilities_and_marked_spans(live_url: str) -> None:
     text = "I was charged twice for one ride"
-    out = run("predict", "--url", url, "--spans", "2", text)
+    out = run("predict", "--url", live_url, "--spans", "2", text)
     assert out.returncode == 0, out.stderr
     lines = out.stdout.splitlines()
     assert lines[0].startswith("[1] ") and f"({MODEL} v1)" in lines[0]
     assert "[" in lines[1] and "]1" in lines[1]  # not a TTY: spans in brackets, numbered
     assert lines[2].strip().startswith("probabilities")
-    raw = run("predict", "--url", url, "--json", text, "second text")
+    raw = run("predict", "--url", live_url, "--json", text, "second text")
     reply = json.loads(raw.stdout)
     assert reply["version"] == 1 and len(reply["results"]) == 2
-    missing = run("predict", "--url", url, "--model", "nosuch", text)
+    missing = run("predict", "--url", live_url, "--model", "nosuch", text)
     assert missing.returncode == 2
     assert missing.stderr.count("\n") == 1 and "nosuch" in missing.stderr and "Traceback" not in missing.stderr
     gone = run("predict", "--url", f"http://127.0.0.1:{free_port()}", text)
@@ -95,25 +86,15 @@ def test_render_marks_spans_by_code_point_offsets() -> None:
 
 def test_serve_verb_runs_uvicorn_with_json_logs(shared_registry: Path) -> None:
     port = free_port()
-    env = {k: v for k, v in os.environ.items() if not k.startswith("TEXTSIEVE_")}
-    env["TEXTSIEVE_WORKERS"] = "1"
     proc = subprocess.Popen(
         [*CLI, "serve", "--port", str(port), "--registry", str(shared_registry)],
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
         text=True,
-        env=env,
+        env=child_env(workers=1),
     )
     try:
-        deadline = time.monotonic() + 60
-        while True:
-            try:
-                if httpx.get(f"http://127.0.0.1:{port}/readyz", timeout=2).status_code == 200:
-                    break
-            except httpx.HTTPError:
-                pass
-            assert proc.poll() is None and time.monotonic() < deadline, "serve did not become ready"
-            time.sleep(0.1)
+        wait_ready(f"http://127.0.0.1:{port}", gone=exited(proc))
         r = httpx.post(
             f"http://127.0.0.1:{port}/v1/predict",
             json={"texts": ["charged twice"]},

@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import json
+from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
 
+import httpx
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
@@ -15,75 +17,128 @@ from tests.helpers.service import MODEL, PROBLEM, assert_problem, serving, setti
 pytestmark = pytest.mark.anyio
 
 
-@pytest.fixture
-def limits(shared_registry: Path) -> Any:
-    return settings_for(shared_registry, max_texts=4, max_chars=50, max_body_bytes=2048, max_spans=5)
+BIG = json.dumps({"texts": ["y" * 40] * 60}).encode()  # 2,651 bytes: over the 2 KiB of small_limits_client
+JSON = {"content-type": "application/json"}
 
 
-async def test_too_many_texts_is_413_naming_the_limit(limits: Any) -> None:
-    async with serving(limits) as (_, client):
-        r = await client.post("/v1/predict", json={"texts": ["a"] * 5})
-    body = assert_problem(r, 413, "limit-exceeded")
-    assert body["limit"] == {"name": "max_texts", "setting": "TEXTSIEVE_MAX_TEXTS", "value": 4, "got": 5}
-    assert "TEXTSIEVE_MAX_TEXTS" in body["detail"] and "4" in body["detail"]
+async def _chunks(data: bytes, size: int = 500) -> AsyncIterator[bytes]:
+    """The body without a Content-Length (chunked), so the limit is found by reading."""
+    for i in range(0, len(data), size):
+        yield data[i : i + size]
 
 
-async def test_too_long_text_is_413_naming_index_and_limit(limits: Any) -> None:
-    async with serving(limits) as (_, client):
-        r = await client.post("/v1/predict", json={"texts": ["fine", "x" * 51]})
-        ok = await client.post("/v1/predict", json={"texts": ["x" * 50]})
-    body = assert_problem(r, 413, "limit-exceeded")
-    assert body["limit"]["name"] == "max_chars" and body["limit"]["index"] == 1 and body["limit"]["got"] == 51
-    assert "texts[1]" in body["detail"]
-    assert ok.status_code == 200
+def _limit(name: str, setting: str, value: int, got: int | None, **more: int) -> dict[str, Any]:
+    return {"name": name, "setting": setting, "value": value, "got": got, **more}
 
 
-async def test_body_over_max_bytes_is_413_declared_or_chunked(limits: Any) -> None:
-    big = json.dumps({"texts": ["y" * 40] * 60}).encode()
-    assert len(big) > 2048
-
-    async def chunks() -> Any:
-        for i in range(0, len(big), 500):
-            yield big[i : i + 500]
-
-    async with serving(limits) as (_, client):
-        declared = await client.post("/v1/predict", content=big, headers={"content-type": "application/json"})
-        chunked = await client.post("/v1/predict", content=chunks(), headers={"content-type": "application/json"})
-        small_chunked = await client.post(
-            "/v1/predict", content=_aiter(b'{"texts": ["a b"]}'), headers={"content-type": "application/json"}
-        )
-    body = assert_problem(declared, 413, "limit-exceeded")
-    assert body["limit"]["name"] == "max_body_bytes" and body["limit"]["got"] == len(big)
-    assert_problem(chunked, 413, "limit-exceeded")
-    assert small_chunked.status_code == 200, small_chunked.text
-
-
-async def _aiter(data: bytes) -> Any:
-    yield data
+# (request body, sent chunked?) -> status, problem slug, the problem's "limit" member, words in its detail
+@pytest.mark.parametrize(
+    ("body", "chunked", "status", "slug", "limit", "words"),
+    [
+        pytest.param(
+            {"texts": ["a"] * 5},
+            False,
+            413,
+            "limit-exceeded",
+            _limit("max_texts", "TEXTSIEVE_MAX_TEXTS", 4, 5),
+            ["TEXTSIEVE_MAX_TEXTS", "4"],
+            id="5 texts, 4 allowed",
+        ),
+        pytest.param(
+            {"texts": ["fine", "x" * 51]},
+            False,
+            413,
+            "limit-exceeded",
+            _limit("max_chars", "TEXTSIEVE_MAX_CHARS", 50, 51, index=1),
+            ["texts[1]"],
+            id="51 characters in texts[1], 50 allowed",
+        ),
+        pytest.param(
+            BIG,
+            False,
+            413,
+            "limit-exceeded",
+            _limit("max_body_bytes", "TEXTSIEVE_MAX_BODY_BYTES", 2048, len(BIG)),
+            [],
+            id="declared body over 2 KiB",
+        ),
+        pytest.param(
+            BIG,
+            True,
+            413,
+            "limit-exceeded",
+            _limit("max_body_bytes", "TEXTSIEVE_MAX_BODY_BYTES", 2048, None),
+            [],
+            id="chunked body over 2 KiB",
+        ),
+        pytest.param(
+            {"texts": ["a"], "spans": 6},
+            False,
+            422,
+            "invalid-input",
+            _limit("max_spans", "TEXTSIEVE_MAX_SPANS", 5, 6),
+            [],
+            id="6 spans, 5 allowed",
+        ),
+    ],
+)
+async def test_a_request_over_a_limit_is_refused_naming_the_limit_and_setting(
+    small_limits_client: httpx.AsyncClient,
+    body: dict[str, Any] | bytes,
+    chunked: bool,
+    status: int,
+    slug: str,
+    limit: dict[str, Any],
+    words: list[str],
+) -> None:
+    content = body if isinstance(body, bytes) else json.dumps(body).encode()
+    assert len(BIG) > 2048
+    r = await small_limits_client.post("/v1/predict", content=_chunks(content) if chunked else content, headers=JSON)
+    problem = assert_problem(r, status, slug)
+    assert problem["limit"] == limit
+    for word in words:
+        assert word in problem["detail"], (word, problem["detail"])
 
 
 @pytest.mark.parametrize(
+    ("body", "chunked"),
+    [
+        pytest.param({"texts": ["x" * 50]}, False, id="a text of exactly 50 characters"),
+        pytest.param({"texts": ["a b"]}, True, id="a small chunked body"),
+    ],
+)
+async def test_a_request_at_the_limits_is_answered(
+    small_limits_client: httpx.AsyncClient, body: dict[str, Any], chunked: bool
+) -> None:
+    content = json.dumps(body).encode()
+    r = await small_limits_client.post("/v1/predict", content=_chunks(content) if chunked else content, headers=JSON)
+    assert r.status_code == 200, r.text
+
+
+# body -> the field the first error names, words in its message
+@pytest.mark.parametrize(
     ("content", "field", "needle"),
     [
-        (b'{"texts": ["a",', "body", "not valid JSON"),
-        (b'["a", "b"]', "body", "JSON object"),
-        (b"{}", "texts", "Field required"),
-        (b'{"texts": []}', "texts", "at least 1"),
-        (b'{"texts": "one string"}', "texts", "list"),
-        (b'{"texts": [1, 2]}', "texts.0", "string"),
-        (b'{"texts": ["a"], "span": 3}', "span", "allowed: texts, model, version, spans"),
-        (b'{"texts": ["a"], "version": 0}', "version", "greater than or equal to 1"),
-        (b'{"texts": ["a"], "version": "two"}', "version", "integer"),
-        (b'{"texts": ["a"], "spans": -1}', "spans", "greater than or equal to 0"),
-        (b'{"texts": ["ok", "\\ud800 lone"]}', "texts", "lone surrogate"),
-        (b"", "body", "body is missing"),
+        pytest.param(b'{"texts": ["a",', "body", "not valid JSON", id="truncated JSON"),
+        pytest.param(b'["a", "b"]', "body", "JSON object", id="an array, not an object"),
+        pytest.param(b"{}", "texts", "Field required", id="no texts"),
+        pytest.param(b'{"texts": []}', "texts", "at least 1", id="no text in texts"),
+        pytest.param(b'{"texts": "one string"}', "texts", "list", id="texts a string"),
+        pytest.param(b'{"texts": [1, 2]}', "texts.0", "string", id="texts of numbers"),
+        pytest.param(
+            b'{"texts": ["a"], "span": 3}', "span", "allowed: texts, model, version, spans", id="unknown field"
+        ),
+        pytest.param(b'{"texts": ["a"], "version": 0}', "version", "greater than or equal to 1", id="version 0"),
+        pytest.param(b'{"texts": ["a"], "version": "two"}', "version", "integer", id="version a word"),
+        pytest.param(b'{"texts": ["a"], "spans": -1}', "spans", "greater than or equal to 0", id="negative spans"),
+        pytest.param(b'{"texts": ["ok", "\\ud800 lone"]}', "texts", "lone surrogate", id="a lone surrogate"),
+        pytest.param(b"", "body", "body is missing", id="empty body"),
     ],
 )
 async def test_malformed_requests_are_422_with_field_errors(
-    shared_registry: Path, content: bytes, field: str, needle: str
+    shared_client: httpx.AsyncClient, content: bytes, field: str, needle: str
 ) -> None:
-    async with serving(settings_for(shared_registry)) as (_, client):
-        r = await client.post("/v1/predict", content=content, headers={"content-type": "application/json"})
+    r = await shared_client.post("/v1/predict", content=content, headers=JSON)
     body = assert_problem(r, 422, "invalid-input")
     assert body["errors"], body
     assert body["errors"][0]["field"] == field
@@ -91,38 +146,61 @@ async def test_malformed_requests_are_422_with_field_errors(
     assert body["detail"].startswith(field)
 
 
-async def test_spans_above_the_limit_is_422_naming_it(limits: Any) -> None:
-    async with serving(limits) as (_, client):
-        r = await client.post("/v1/predict", json={"texts": ["a"], "spans": 6})
-    body = assert_problem(r, 422, "invalid-input")
-    assert body["limit"]["setting"] == "TEXTSIEVE_MAX_SPANS"
+# request -> status, problem slug, words in its detail
+@pytest.mark.parametrize(
+    ("method", "path", "body", "status", "slug", "words"),
+    [
+        pytest.param(
+            "POST", "/v1/predict", {"texts": ["a"], "model": "nosuch"}, 404, "not-found", ["nosuch"], id="unknown model"
+        ),
+        pytest.param(
+            "POST",
+            "/v1/predict",
+            {"texts": ["a"], "model": "Bad Name!"},
+            422,
+            "invalid-input",
+            ["bad model name"],
+            id="bad model name",
+        ),
+        pytest.param(
+            "POST",
+            "/v1/predict",
+            {"texts": ["a"], "model": MODEL, "version": 99},
+            404,
+            "not-found",
+            ["no version 99"],
+            id="unknown version",
+        ),
+        pytest.param("GET", "/v2/predict", None, 404, "not-found", [], id="unknown path"),
+        pytest.param("GET", "/v1/predict", None, 405, "method-not-allowed", [], id="GET on predict"),
+        pytest.param("GET", "/v1/models/nosuch", None, 404, "not-found", [], id="view of an unknown model"),
+        pytest.param(
+            "GET", f"/v1/models/{MODEL}/versions/99", None, 404, "not-found", [], id="view of an unknown version"
+        ),
+        pytest.param(
+            "GET", f"/v1/models/{MODEL}/versions/zero", None, 422, "invalid-input", [], id="view of version 'zero'"
+        ),
+    ],
+)
+async def test_unknown_model_version_and_path(
+    shared_client: httpx.AsyncClient,
+    method: str,
+    path: str,
+    body: dict[str, Any] | None,
+    status: int,
+    slug: str,
+    words: list[str],
+) -> None:
+    r = await shared_client.request(method, path, json=body)
+    problem = assert_problem(r, status, slug)
+    for word in words:
+        assert word in problem["detail"], (word, problem["detail"])
 
 
-async def test_unknown_model_version_and_path_are_404(shared_registry: Path) -> None:
-    async with serving(settings_for(shared_registry)) as (_, client):
-        model = await client.post("/v1/predict", json={"texts": ["a"], "model": "nosuch"})
-        bad_name = await client.post("/v1/predict", json={"texts": ["a"], "model": "Bad Name!"})
-        version = await client.post("/v1/predict", json={"texts": ["a"], "model": MODEL, "version": 99})
-        path = await client.get("/v2/predict")
-        method = await client.get("/v1/predict")
-        view = await client.get("/v1/models/nosuch")
-        view_version = await client.get(f"/v1/models/{MODEL}/versions/99")
-        view_bad = await client.get(f"/v1/models/{MODEL}/versions/zero")
-    assert "nosuch" in assert_problem(model, 404, "not-found")["detail"]
-    assert "bad model name" in assert_problem(bad_name, 422, "invalid-input")["detail"]
-    assert "no version 99" in assert_problem(version, 404, "not-found")["detail"]
-    assert_problem(path, 404, "not-found")
-    assert_problem(method, 405, "method-not-allowed")
-    assert_problem(view, 404, "not-found")
-    assert_problem(view_version, 404, "not-found")
-    assert_problem(view_bad, 422, "invalid-input")
-
-
-async def test_problem_types_resolve_to_explanations(shared_registry: Path) -> None:
-    async with serving(settings_for(shared_registry)) as (_, client):
-        r = await client.post("/v1/predict", json={"texts": []})
-        explained = await client.get(r.json()["type"])
-        unknown = await client.get("/problems/nope")
+async def test_problem_types_resolve_to_explanations(shared_client: httpx.AsyncClient) -> None:
+    r = await shared_client.post("/v1/predict", json={"texts": []})
+    explained = await shared_client.get(r.json()["type"])
+    unknown = await shared_client.get("/problems/nope")
     assert explained.status_code == 200 and "HTTP 422" in explained.text
     assert unknown.status_code == 404
 

@@ -11,6 +11,7 @@ from pathlib import Path
 
 import pytest
 
+from tests.helpers.environment import skip_or_fail
 from tests.helpers.service import serving, settings_for
 
 pytestmark = pytest.mark.anyio
@@ -66,7 +67,6 @@ async def test_openapi_documents_the_contract_without_cdn_docs(shared_registry: 
 def test_page_highlighting_slices_code_points_like_python(tmp_path: Path) -> None:
     """Run the page's own ``segments`` helper in Node and compare with Python's str slicing."""
     import json
-    import os
     import shutil
     import subprocess
 
@@ -74,9 +74,7 @@ def test_page_highlighting_slices_code_points_like_python(tmp_path: Path) -> Non
 
     node = shutil.which("node")
     if node is None:
-        if os.environ.get("CI"):
-            pytest.fail("node is needed to run the page's script (apt-get install nodejs)")
-        pytest.skip("node is not installed")
+        skip_or_fail("node is needed to run the page's script (apt-get install nodejs)")
     html, _ = page()
     helpers = re.findall(r"<script>(.*?)</script>", html, flags=re.S)[0]
     harness = (

@@ -5,60 +5,17 @@ What the page shows is compared with what the API answers for the same texts.
 
 from __future__ import annotations
 
-import os
-import shutil
 from pathlib import Path
 
 import httpx
-import pytest
 
-from tests.helpers.service import free_port, settings_for, uvicorn_server
+from tests.helpers.net import free_port
+from tests.helpers.service import settings_for, uvicorn_server
 
-CHROMIUM = "/usr/bin/chromium"
-CHROMEDRIVER = "/usr/bin/chromedriver"
 TEXTS = [
     "I was charged twice for the same ride, please refund me.",
     "The dock at the station is broken again 😞 and the chain snapped.",
 ]
-
-
-def _have_browser() -> bool:
-    return os.access(CHROMIUM, os.X_OK) and os.access(CHROMEDRIVER, os.X_OK)
-
-
-@pytest.fixture()
-def browser(tmp_path: Path):  # type: ignore[no-untyped-def]
-    if not _have_browser():
-        if os.environ.get("CI"):
-            pytest.fail("Chromium/ChromeDriver missing in CI: scripts/test-services.sh installs them")
-        pytest.skip("Chromium not installed (run scripts/test-services.sh)")
-    from selenium import webdriver
-    from selenium.webdriver.chrome.service import Service
-
-    opts = webdriver.ChromeOptions()
-    opts.binary_location = CHROMIUM
-    # Flags from this machine's notes: no sandbox as root, and no background traffic to the
-    # closed network.
-    for flag in (
-        "--headless=new",
-        "--no-sandbox",
-        "--disable-gpu",
-        "--disable-quic",
-        "--no-first-run",
-        "--disable-background-networking",
-        "--disable-component-update",
-        "--disable-sync",
-        "--window-size=1200,1400",
-        f"--user-data-dir={tmp_path / 'profile'}",
-    ):
-        opts.add_argument(flag)
-    opts.set_capability("goog:loggingPrefs", {"browser": "ALL"})
-    driver = webdriver.Chrome(service=Service(CHROMEDRIVER), options=opts)
-    try:
-        yield driver
-    finally:
-        driver.quit()
-        shutil.rmtree(tmp_path / "profile", ignore_errors=True)
 
 
 def test_page_classifies_and_highlights_like_the_api(browser, registry_dir: Path, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]

@@ -11,7 +11,6 @@
 from __future__ import annotations
 
 import asyncio
-import json
 from pathlib import Path
 from typing import Any
 
@@ -21,7 +20,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from tests.helpers.service import MODEL, free_port, serving, settings_for, uvicorn_server
+from tests.helpers.jsonl import read_jsonl
+from tests.helpers.service import MODEL, serving, settings_for
 from textsieve.registry.bundle import open_bundle
 from textsieve.registry.runtime import Predictor
 from textsieve.service.inference.spans import explain
@@ -30,8 +30,7 @@ pytestmark = pytest.mark.anyio
 
 
 def _texts(data: Path, n: int = 60) -> list[str]:
-    rows = [json.loads(line) for line in (data / "test.jsonl").read_text(encoding="utf-8").splitlines() if line]
-    return [r["text"] for r in rows[:n]]
+    return [r["text"] for r in read_jsonl(data / "test.jsonl")[:n]]
 
 
 # The service refuses empty and whitespace-only texts (422, tests/reliability/test_input.py);
@@ -242,12 +241,6 @@ _unicode_text = st.lists(
 )
 # What the service accepts as a text: something besides whitespace, and no NUL (see schemas.py).
 _unicode_text = _unicode_text.filter(lambda t: t.strip() and "\x00" not in t)
-
-
-@pytest.fixture(scope="module")
-def live_url(shared_registry: Path) -> Any:
-    with uvicorn_server(settings_for(shared_registry, port=free_port())) as server:
-        yield server.url
 
 
 def test_offsets_index_the_text_as_sent_for_any_unicode(live_url: str) -> None:

@@ -15,7 +15,8 @@ from typing import Any
 import numpy as np
 import pytest
 
-from tests.helpers.service import MODEL, make_registry, serving, settings_for, wait_ready
+from tests.helpers.net import poll_readyz_async, wait_ready_async
+from tests.helpers.service import MODEL, make_registry, serving, settings_for
 from textsieve.registry import open_registry
 from textsieve.registry.runtime import Predictor
 
@@ -123,19 +124,16 @@ async def test_pinned_versions(registry_dir: Path, tiny_bundles: dict[str, Path]
 async def test_not_ready_until_a_live_version_exists(tmp_path: Path, tiny_bundles: dict[str, Path]) -> None:
     folder = make_registry(tmp_path / "registry", tiny_bundles, live=None)
     async with serving(settings_for(folder, models=[MODEL], poll_seconds=0.1), ready=False) as (_, client):
-        deadline = time.monotonic() + 20
-        while True:
-            r = await client.get("/readyz")
-            if "no-live-version" in r.text or time.monotonic() > deadline:
-                break
-            await asyncio.sleep(0.05)
+        r = await poll_readyz_async(
+            client, lambda r: "no-live-version" in r.text, timeout=20, awaiting="the no-live-version reason"
+        )
         assert r.status_code == 503 and r.json()["ready"] is False
         assert "promote" in r.json()["reason"]
         assert (await client.get("/healthz")).status_code == 200
         predict = await client.post("/v1/predict", json={"texts": ["a"]})
         assert predict.status_code == 404 and "no live version" in predict.json()["detail"]
         await _registry("promote", folder, MODEL, 2, "live", reason="go", actor="tests", force=True)
-        body = await wait_ready(client, timeout=20)
+        body = await wait_ready_async(client, timeout=20)
         assert body["models"][MODEL]["version"] == 2
 
 
@@ -155,12 +153,9 @@ async def test_not_ready_reasons(tmp_path: Path) -> None:
 
 
 async def _settled(client: Any) -> Any:
-    for _ in range(400):
-        r = await client.get("/readyz")
-        if "starting" not in r.json()["reason"]:
-            return r
-        await asyncio.sleep(0.05)
-    raise AssertionError("startup never finished")
+    return await poll_readyz_async(
+        client, lambda r: "starting" not in r.json()["reason"], timeout=20, awaiting="start-up to finish"
+    )
 
 
 async def test_damaged_blob_fails_startup_and_a_failed_swap_keeps_the_old_version(registry_dir: Path) -> None:
