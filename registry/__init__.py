@@ -9,12 +9,10 @@ line imports ``textsieve.registry.cli`` for every run and every TAB completion, 
 pay for numpy and the bundle format to print a help page.
 """
 
-from __future__ import annotations
+import importlib as _importlib
+import typing as _typing
 
-import importlib
-from typing import TYPE_CHECKING, Any
-
-if TYPE_CHECKING:
+if _typing.TYPE_CHECKING:
     from textsieve.registry.api import Registry, open_registry
     from textsieve.registry.bundle import Bundle, open_bundle
     from textsieve.registry.gates import GateSettings, Scores
@@ -68,8 +66,10 @@ __all__ = [
 ]
 
 
-def __getattr__(name: str) -> Any:
+def __getattr__(name: str) -> object:
     home = _HOMES.get(name)
     if home is None:
         raise AttributeError(f"module 'textsieve.registry' has no attribute {name!r}")
-    return getattr(importlib.import_module(f"textsieve.registry.{home}"), name)
+    value = getattr(_importlib.import_module(f"textsieve.registry.{home}"), name)
+    globals()[name] = value  # looked up once; later uses find it in the namespace
+    return value
