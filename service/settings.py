@@ -96,6 +96,12 @@ class Settings(BaseSettings):
         description="longest admitted work waits for inference; beyond it a request is refused at once "
         "(503 + Retry-After), sized from the measured rate",
     )
+    max_requests: int = Field(
+        default_factory=lambda: 32 * _cores(),
+        ge=1,
+        description="requests inside the app at once to start from (default: 32 per core); the limit then adapts "
+        "to keep their mean time under queue_wait_ms, and beyond it requests get 503 + Retry-After",
+    )
     body_budget_bytes: int = Field(
         default_factory=_body_budget,
         ge=1024,

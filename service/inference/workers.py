@@ -128,25 +128,25 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
                     unknown += e.unknown
                     truncated += e.tokens > len(e.ids)
                 # Each reply serialised here, once: the server embeds the bytes as they are.
-                conn.send((Outcome.OK, ([orjson.dumps(r) for r in results], tokens, unknown, truncated)))
+                conn.send((Outcome.OK.value, ([orjson.dumps(r) for r in results], tokens, unknown, truncated)))
             elif isinstance(msg, Load):
                 checked = open_bundle(Path(msg.bundle))
                 p = Predictor.from_bundle(checked, threads=1, batch_size=msg.batch_size)
                 warm_and_check(p, list(checked.manifest.labels))
                 predictors[msg.key] = p
-                conn.send((Outcome.OK, None))
+                conn.send((Outcome.OK.value, None))
             elif isinstance(msg, Held):
-                conn.send((Outcome.OK, sorted(predictors)))
+                conn.send((Outcome.OK.value, sorted(predictors)))
             elif isinstance(msg, Drop):
                 if predictors.pop(msg.key, None) is not None:
                     release_freed_memory()
-                conn.send((Outcome.OK, None))
+                conn.send((Outcome.OK.value, None))
             else:
-                conn.send((Outcome.ERROR, f"unknown request {msg!r}"))
+                conn.send((Outcome.ERROR.value, f"unknown request {msg!r}"))
         except BundleError as exc:
-            conn.send((Outcome.BUNDLE, exc.message))
+            conn.send((Outcome.BUNDLE.value, exc.message))
         except Exception as exc:  # noqa: BLE001 - reported to the server, which decides
-            conn.send((Outcome.ERROR, f"{type(exc).__name__}: {exc}"))
+            conn.send((Outcome.ERROR.value, f"{type(exc).__name__}: {exc}"))
 
 
 _context_lock = threading.Lock()
@@ -214,12 +214,13 @@ class _Worker:
         try:
             while True:
                 try:
-                    reply = conn.recv()
+                    status, value = conn.recv()
                 except (EOFError, OSError):
                     break
                 with self.send_lock:
                     fut = pending.popleft()
-                fut.set_result(reply)
+                # The status crosses the pipe as a plain string: the server unpickles no class of ours.
+                fut.set_result((Outcome(status), value))
         finally:
             with self.send_lock:
                 left = list(pending)

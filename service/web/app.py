@@ -68,6 +68,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         read_timeout=settings.read_timeout_seconds,
         target_seconds=settings.queue_wait_ms / 1000.0,
         min_requests=2 * settings.workers,
+        start_requests=settings.max_requests,
     )
     metrics.overload.guard, metrics.overload.budget = app.state.guard, budget
     problems.install(app)

@@ -10,11 +10,12 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   anything is read from it.
 - **Requests in the app.** A request whose headers arrive while ``limit`` requests are already
   inside the application is answered 503 at once from here, before any Python of the app runs,
-  so a crowd of callers cannot make the event loop itself the queue. The limit adapts (additive
-  increase, multiplicative decrease, as TCP's congestion window does; Jacobson, 1988): every
-  tenth of a second, if the requests finished in it took longer on average than the admitted
-  wait (``queue_wait_ms``), it shrinks by a tenth; if the limit was reached and they were fast,
-  it grows by one.
+  so a crowd of callers cannot make the event loop itself the queue. The limit adapts, in the
+  spirit of TCP's congestion window (Jacobson, 1988): it starts at ``max_requests``; every tenth
+  of a second, if the requests finished in it took
+  longer on average than the admitted wait (``queue_wait_ms``), it shrinks in proportion to the
+  excess (by a tenth to a half); if the limit was reached and they were in time, it grows by a
+  tenth.
 - **Read deadline.** From the moment a connection opens, or a keep-alive connection's next
   request begins, the client has ``read_timeout_seconds`` to send the request's headers and
   whole body. Past it the connection is answered 408 (RFC 9110 §15.5.9) if no response has
@@ -58,7 +59,13 @@ class ConnectionGuard:
     """The replica's connection cap and read deadline, and what they refused or closed."""
 
     def __init__(
-        self, *, max_connections: int, read_timeout: float, target_seconds: float = 0.25, min_requests: int = 4
+        self,
+        *,
+        max_connections: int,
+        read_timeout: float,
+        target_seconds: float = 0.25,
+        min_requests: int = 4,
+        start_requests: int = 64,
     ) -> None:
         self.max_connections = max_connections
         self.read_timeout = read_timeout
@@ -68,7 +75,7 @@ class ConnectionGuard:
         # Requests inside the application and their adaptive limit.
         self.target = target_seconds
         self.min_requests = min_requests
-        self.limit = float(max(min_requests, min(64, max_connections)))
+        self.limit = float(max(min_requests, min(start_requests, max_connections)))
         self.inflight = 0
         self.refused_requests = 0
         self._window_end = 0.0
@@ -119,10 +126,11 @@ class ConnectionGuard:
         self._seconds += seconds
         if now < self._window_end:
             return
-        if self._count and self._seconds / self._count > self.target:
-            self.limit = max(float(self.min_requests), self.limit * 0.9)
-        elif self._saturated:
-            self.limit = min(float(self.max_connections), self.limit + 1.0)
+        mean = self._seconds / self._count if self._count else 0.0
+        if mean > self.target:  # shrink in proportion to the excess, at most by half a window
+            self.limit = max(float(self.min_requests), self.limit * max(0.5, min(0.9, self.target / mean)))
+        elif self._saturated:  # full and in time: grow by a tenth (at least one)
+            self.limit = min(float(self.max_connections), max(self.limit + 1.0, self.limit * 1.1))
         self._window_end, self._count, self._seconds, self._saturated = now + 0.1, 0, 0.0, False
 
     def protocol(self) -> type[HttpToolsProtocol]:
@@ -177,11 +185,11 @@ class ConnectionGuard:
                         self._skipping = True
                         self.transport.write(guard.busy_keep_alive)
                         # The refusal goes out now; this connection's next request is read only after
-                        # the Retry-After it was given. A caller that retries at once (ignoring it)
-                        # would otherwise turn refusals into the event loop's whole work and starve
-                        # the requests it admitted.
+                        # half the Retry-After it was given. A caller that retries at once (ignoring
+                        # it) would otherwise turn refusals into the event loop's whole work and
+                        # starve the requests it admitted.
                         self.flow.pause_reading()
-                        self.loop.call_later(RETRY_AFTER_SECONDS, self._resume)
+                        self.loop.call_later(RETRY_AFTER_SECONDS / 2, self._resume)
                     return
                 super().on_headers_complete()
 

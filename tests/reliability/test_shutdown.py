@@ -62,7 +62,10 @@ def test_sigterm_refuses_new_connections_finishes_accepted_requests_and_exits_0(
     tmp_path: Path, tiny_bundles: dict[str, Path]
 ) -> None:
     registry = make_registry(tmp_path / "registry", tiny_bundles, live=1)
-    server = ServerProcess.start(str(registry), tmp_path / "server.log", access_log="false")
+    # Seconds of queued work on purpose (this tests draining, not admission): a long admitted wait.
+    server = ServerProcess.start(
+        str(registry), tmp_path / "server.log", access_log="false", queue_wait_ms=60000, max_requests=1000
+    )
     try:
         server.wait_ready()
         body = json.dumps({"texts": [f"{TEXT} {i}" for i in range(TEXTS_PER_REQUEST)], "spans": 3}).encode()
