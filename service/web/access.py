@@ -18,6 +18,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from textsieve.service.logs import ACCESS
 from textsieve.service.telemetry import ServiceMetrics
+from textsieve.service.web.transport import ConnectionGuard
 
 _SAFE_ID = re.compile(r"[A-Za-z0-9._:-]{1,128}")
 log = logging.getLogger(ACCESS)
@@ -37,10 +38,13 @@ def _route(scope: Scope) -> str:
 
 
 class AccessMiddleware:
-    def __init__(self, app: ASGIApp, metrics: ServiceMetrics, enabled: bool = True) -> None:
+    def __init__(
+        self, app: ASGIApp, metrics: ServiceMetrics, enabled: bool = True, guard: ConnectionGuard | None = None
+    ) -> None:
         self.app = app
         self.metrics = metrics
         self.enabled = enabled
+        self.guard = guard  # counts and times the requests inside the app (service/web/transport.py)
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
@@ -61,10 +65,17 @@ class AccessMiddleware:
                 MutableHeaders(scope=message)["X-Request-Id"] = rid
             await send(message)
 
+        guard = self.guard
+        if guard is not None:
+            guard.inflight += 1
         try:
             await self.app(scope, receive, send_with_id)
         finally:
-            seconds = time.perf_counter() - started
+            ended = time.perf_counter()
+            seconds = ended - started
+            if guard is not None:
+                guard.inflight -= 1
+                guard.request_finished(seconds, ended)
             route = _route(scope)
             self.metrics.answered(scope["method"], route, status, seconds)
             if self.enabled:

@@ -23,7 +23,7 @@ from textsieve.service.web import admin, health, openapi, page, predict, problem
 from textsieve.service.web.access import AccessMiddleware
 from textsieve.service.web.bodylimit import BodyBudget, BodyLimitMiddleware
 from textsieve.service.web.onewrite import HeadWithBodyMiddleware
-from textsieve.service.web.transport import ConnectionGuard, InflightMiddleware
+from textsieve.service.web.transport import ConnectionGuard
 
 
 def create_app(settings: Settings | None = None) -> FastAPI:
@@ -76,9 +76,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         app.include_router(module.router)
     openapi.install(app)
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes, budget=budget)
-    app.add_middleware(AccessMiddleware, metrics=metrics, enabled=settings.access_log)
-    app.add_middleware(HeadWithBodyMiddleware)  # see service/web/onewrite.py
-    app.add_middleware(InflightMiddleware, guard=app.state.guard)  # outermost: times whole requests
+    app.add_middleware(AccessMiddleware, metrics=metrics, enabled=settings.access_log, guard=app.state.guard)
+    app.add_middleware(HeadWithBodyMiddleware)  # outermost of ours: see service/web/onewrite.py
     return app
 
 

@@ -95,11 +95,14 @@ class BodyLimitMiddleware:
             return
         taken = 0
         try:
-            if expected:
-                if not self.budget.take(expected):
+            if expected is not None:
+                # A declared length is reserved whole before anything is read; the app reads it.
+                if expected and not self.budget.take(expected):
                     await self._refuse(_over_budget(self.budget), scope, receive, send)
                     return
                 taken = expected
+                await self.app(scope, receive, send)
+                return
             chunks: list[bytes] = []
             size = 0
             while True:

@@ -28,7 +28,6 @@ Both are counted (:class:`ConnectionGuard`) and exposed in ``/metrics``.
 from __future__ import annotations
 
 import asyncio
-import time
 from typing import Any
 
 import orjson
@@ -234,26 +233,4 @@ class ConnectionGuard:
         return GuardedHttpToolsProtocol
 
 
-class InflightMiddleware:
-    """Counts the requests inside the application and times them, for the guard's adaptive limit."""
-
-    def __init__(self, app: Any, guard: ConnectionGuard) -> None:
-        self.app = app
-        self.guard = guard
-
-    async def __call__(self, scope: Any, receive: Any, send: Any) -> None:
-        if scope["type"] != "http":
-            await self.app(scope, receive, send)
-            return
-        guard = self.guard
-        guard.inflight += 1
-        started = time.perf_counter()
-        try:
-            await self.app(scope, receive, send)
-        finally:
-            guard.inflight -= 1
-            now = time.perf_counter()
-            guard.request_finished(now - started, now)
-
-
-__all__ = ["ConnectionGuard", "InflightMiddleware"]
+__all__ = ["ConnectionGuard"]
