@@ -12,17 +12,18 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   inside the application is answered 503 at once from here, before any Python of the app runs,
   so a crowd of callers cannot make the event loop itself the queue. The limit adapts, in the
   spirit of TCP's congestion window (Jacobson, 1988): it starts at ``max_requests``; every tenth
-  of a second, if the requests finished in it took
-  longer on average than the admitted wait (``queue_wait_ms``), it shrinks in proportion to the
-  excess (by a tenth to a half); if the limit was reached and they were in time, it grows by a
-  tenth.
+  of a second, if the requests finished in it took longer on average than the admitted wait
+  (``queue_wait_ms``), it shrinks in proportion to the excess (by a tenth to a half); if the
+  limit was reached and they were in time, it grows by a tenth. A refused connection's next
+  request is read only after half the Retry-After it was given. The access middleware
+  (:mod:`textsieve.service.web.access`) counts and times the requests inside the app.
 - **Read deadline.** From the moment a connection opens, or a keep-alive connection's next
   request begins, the client has ``read_timeout_seconds`` to send the request's headers and
   whole body. Past it the connection is answered 408 (RFC 9110 §15.5.9) if no response has
   started, and closed. Idle keep-alive connections are closed by uvicorn after
   ``keepalive_seconds`` (its ``timeout_keep_alive``).
 
-Both are counted (:class:`ConnectionGuard`) and exposed in ``/metrics``.
+All of it is counted (:class:`ConnectionGuard`) and exposed in ``/metrics``.
 """
 
 from __future__ import annotations
