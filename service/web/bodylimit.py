@@ -15,7 +15,7 @@ The refusals are the same problem+json as every other limit (:mod:`textsieve.ser
 
 from __future__ import annotations
 
-import time
+import asyncio
 
 from starlette.datastructures import Headers
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
@@ -37,7 +37,7 @@ class BodyBudget:
         self.used = 0
         self.refused = 0
         self._since_trim = 0
-        self._trimmed_at = 0.0
+        self._trim_pending = False
 
     def take(self, n: int) -> bool:
         if self.used + n > self.limit:
@@ -49,11 +49,17 @@ class BodyBudget:
 
     def give_back(self, n: int) -> None:
         self.used -= n
-        if self.used == 0 and self._since_trim >= TRIM_AFTER_BYTES:
-            now = time.monotonic()
-            if now - self._trimmed_at >= TRIM_EVERY_SECONDS:
-                self._trimmed_at, self._since_trim = now, 0
-                release_freed_memory()
+        if self.used == 0 and self._since_trim >= TRIM_AFTER_BYTES and not self._trim_pending:
+            # A moment later, not now: the request that gave its bytes back is still unwinding
+            # (its body, a logged traceback) and frees them only after this returns.
+            self._trim_pending = True
+            asyncio.get_running_loop().call_later(TRIM_EVERY_SECONDS, self._trim)
+
+    def _trim(self) -> None:
+        self._trim_pending = False
+        if self.used == 0:
+            self._since_trim = 0
+            release_freed_memory()
 
 
 def _too_large(limit: int, got: int | None) -> LimitError:
