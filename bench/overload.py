@@ -88,7 +88,9 @@ def main() -> int:
             server.stop()
     raw_errors: dict[str, int] = dict(result.raw["errors"])  # type: ignore[arg-type]
     lost = sum(v for k, v in raw_errors.items() if k != "status")
-    answered, refused = counts.get("status_200", 0), counts.get("status_503", 0)
+    # Refusals from the protocol never reach the app's request counts: take them by reason.
+    answered = counts.get("status_200", 0)
+    refused = sum(v for k, v in counts.items() if not k.startswith(("status_", "in_app_")))
     lat = result.latency_ms
     print(f"  requests      {result.requests:,} in {took:.1f} s ({result.requests_per_second:,.0f}/s)")
     print(f"  answered 200  {answered:,.0f}")
