@@ -32,7 +32,7 @@ TARGET |= {
     "implementation_name": "cpython",
 }
 # PyPI's torch wheels for Linux x86_64 depend on these (the CUDA runtime, several GB); the CPU build does not.
-CUDA_PREFIXES = ("nvidia-", "triton", "cuda-")
+CUDA_PREFIXES = ("nvidia-", "cuda-")
 
 
 def locked() -> dict[str, Version]:
