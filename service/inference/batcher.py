@@ -28,7 +28,7 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
 
-from textsieve.errors import UnavailableError
+from textsieve.errors import DeadlinePassedError, UnavailableError
 from textsieve.service.inference.admission import Admission
 from textsieve.service.inference.packing import run_packed
 from textsieve.service.inference.spans import explain
@@ -156,13 +156,13 @@ class Batcher:
         now = time.perf_counter()
         while room > 0 and self._queue:
             job = self._queue.popleft()
-            if job.taken == 0 and job.deadline is not None and now > job.deadline:
+            if job.taken == 0:
                 try:
                     self.pool.admission.check_deadline(job.deadline, now)
-                except Exception as exc:  # the deadline passed while queued: answer without computing
+                except DeadlinePassedError as exc:  # passed while queued: answer without computing
                     if not job.future.done():
                         job.future.set_exception(exc)
-                continue
+                    continue
             hi = min(len(job.texts), job.taken + min(room, QUANTUM))
             pieces.append(_Piece(job, job.taken, hi))
             room -= hi - job.taken
