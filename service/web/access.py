@@ -18,7 +18,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from textsieve.service.logs import ACCESS
 from textsieve.service.telemetry import ServiceMetrics
-from textsieve.service.web.transport import ConnectionGuard
+from textsieve.service.web.transport import PROBE_PATHS, WITH_BODY, ConnectionGuard
 
 _SAFE_ID = re.compile(r"[A-Za-z0-9._:-]{1,128}")
 log = logging.getLogger(ACCESS)
@@ -65,17 +65,35 @@ class AccessMiddleware:
                 MutableHeaders(scope=message)["X-Request-Id"] = rid
             await send(message)
 
-        guard = self.guard
+        # The adaptive request limit counts and times work, not uploads: a request enters it once
+        # its whole body has arrived (at once when it has none), so slow or stalled uploads (bounded
+        # by the body budget and the read deadline) neither fill the limit nor shrink it. Probes
+        # stay outside it: a busy replica must still answer its liveness and readiness checks.
+        guard = None if scope["path"] in PROBE_PATHS else self.guard
+        entered: float | None = None
+        app_receive = receive
         if guard is not None:
-            guard.inflight += 1
+            if scope["method"] in WITH_BODY:
+
+                async def app_receive() -> Message:
+                    nonlocal entered
+                    message = await receive()
+                    if entered is None and message["type"] == "http.request" and not message.get("more_body"):
+                        entered = time.perf_counter()
+                        guard.inflight += 1
+                    return message
+
+            else:
+                entered = started
+                guard.inflight += 1
         try:
-            await self.app(scope, receive, send_with_id)
+            await self.app(scope, app_receive, send_with_id)
         finally:
             ended = time.perf_counter()
             seconds = ended - started
-            if guard is not None:
+            if guard is not None and entered is not None:
                 guard.inflight -= 1
-                guard.request_finished(seconds, ended)
+                guard.request_finished(ended - entered, ended)
             route = _route(scope)
             self.metrics.answered(scope["method"], route, status, seconds)
             if self.enabled:

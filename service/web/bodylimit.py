@@ -16,6 +16,7 @@ The refusals are the same problem+json as every other limit (:mod:`textsieve.ser
 from __future__ import annotations
 
 import asyncio
+import gc
 
 from starlette.datastructures import Headers
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
@@ -23,8 +24,8 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 from textsieve.errors import LimitError, OverloadedError
 from textsieve.service.inference.memory import release_freed_memory
 from textsieve.service.web.problems import render
+from textsieve.service.web.transport import WITH_BODY
 
-_WITH_BODY = frozenset({"POST", "PUT", "PATCH"})
 TRIM_AFTER_BYTES = 8 * 1024 * 1024  # hand memory back once at least this much passed through
 TRIM_EVERY_SECONDS = 1.0
 
@@ -59,6 +60,10 @@ class BodyBudget:
         self._trim_pending = False
         if self.used == 0:
             self._since_trim = 0
+            # A closed connection's protocol, request cycle and body chunks refer to each other, so
+            # only the cycle collector frees them, and in a quiet replica it may not run for minutes;
+            # until it does the allocator has nothing to hand back.
+            gc.collect()
             release_freed_memory()
 
 
@@ -91,7 +96,7 @@ class BodyLimitMiddleware:
         await response(scope, receive, send)
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
-        if scope["type"] != "http" or scope["method"] not in _WITH_BODY:
+        if scope["type"] != "http" or scope["method"] not in WITH_BODY:
             await self.app(scope, receive, send)
             return
         declared = Headers(scope=scope).get("content-length")

@@ -9,7 +9,8 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   problem+json 503 carrying ``Retry-After`` and ``Connection: close``, and closed, before
   anything is read from it.
 - **Requests in the app.** A request whose headers arrive while ``limit`` requests are already
-  inside the application is answered 503 at once from here, before any Python of the app runs,
+  inside the application (counted from when their whole body has arrived; probes never count
+  and are never refused) is answered 503 at once from here, before any Python of the app runs,
   so a crowd of callers cannot make the event loop itself the queue. The limit adapts, in the
   spirit of TCP's congestion window (Jacobson, 1988): it starts at ``max_requests``; every tenth
   of a second, if the requests finished in it took longer on average than the admitted wait
@@ -35,6 +36,12 @@ import orjson
 from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
 
 from textsieve.service.web.problems import MEDIA_TYPE
+
+# Liveness, readiness and metrics: cheap, bodiless, and what an orchestrator restarts or drains a
+# replica by, so they are never refused by the request limit (a busy replica is alive).
+PROBE_PATHS = frozenset({"/healthz", "/readyz", "/metrics"})
+_PROBE_TARGETS = frozenset(p.encode() for p in PROBE_PATHS)
+WITH_BODY = frozenset({"POST", "PUT", "PATCH"})
 
 
 def _raw_response(
@@ -173,7 +180,7 @@ class ConnectionGuard:
                     self._arm()
 
             def on_headers_complete(self) -> None:
-                if not guard.request_may_start():
+                if self.url.split(b"?", 1)[0] not in _PROBE_TARGETS and not guard.request_may_start():
                     cycle: Any = self.cycle
                     pipelined = cycle is not None and not cycle.response_complete
                     if pipelined or not self.parser.should_keep_alive():
@@ -234,4 +241,4 @@ class ConnectionGuard:
         return GuardedHttpToolsProtocol
 
 
-__all__ = ["ConnectionGuard"]
+__all__ = ["PROBE_PATHS", "WITH_BODY", "ConnectionGuard"]

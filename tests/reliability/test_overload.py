@@ -102,7 +102,7 @@ def sockets() -> Iterator[list[socket.socket]]:
 def test_stalled_bodies_are_bounded_by_the_budget_and_released_by_the_read_deadline(
     registry_path: Path, tmp_path: Path, sockets: list[socket.socket]
 ) -> None:
-    budget, body = 8 * MIB, 2 * MIB
+    budget, body = 8 * MIB + 64 * 1024, 2 * MIB  # room for four stalled uploads and one small request
     with running_server(
         str(registry_path),
         tmp_path / "server.log",
@@ -111,6 +111,7 @@ def test_stalled_bodies_are_bounded_by_the_budget_and_released_by_the_read_deadl
         body_budget_bytes=budget,
         max_body_bytes=body,
         read_timeout_seconds=4,
+        max_requests=2,  # fewer than the uploads that will stall: they must not fill the request limit
     ) as server:
         idle = server.rss_bytes()
         statuses = []
@@ -130,6 +131,11 @@ def test_stalled_bodies_are_bounded_by_the_budget_and_released_by_the_read_deadl
         assert statuses.count(0) == budget // body, statuses  # the rest were refused before their body was read
         assert statuses.count(503) == 12 - budget // body
         held = server.rss_bytes()
+        # Stalled uploads are not work: probes and a whole request are still answered while they hold.
+        for path in ("/healthz", "/readyz", "/metrics"):
+            assert httpx.get(f"{server.url}{path}", timeout=5).status_code == 200, path
+        r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["refund please"]}, timeout=10)
+        assert r.status_code == 200, r.text
         # The stalled bodies cost about the budget, not 12 x 2 MiB (uvicorn keeps up to 64 KiB per connection).
         assert held - idle < budget + 12 * 64 * 1024 + 24 * MIB, (idle, held)
         # Past the read deadline every stalled upload is answered 408 and closed; the budget is free again.
