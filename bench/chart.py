@@ -16,7 +16,10 @@ def draw(results: dict[str, Any], out: Path) -> None:
     import matplotlib.pyplot as plt
     import matplotlib.ticker
 
-    rt, fl, sv, tw = results["runtime"], results["flop_limit"], results["service"], results["torch_wrapper"]
+    rt, sv, tw = results["runtime"], results["service"], results["torch_wrapper"]
+    # Older results.json files kept the FLOP limit at the top; newer ones under "history".
+    fl = results["history"]["flop_limit"] if "history" in results else results["flop_limit"]
+    floor = results.get("http_floor")
     load = results["load"]
     batch_label = f"{load['connections']} clients × {load['texts_per_request']} texts"
     bars = [
@@ -33,6 +36,11 @@ def draw(results: dict[str, Any], out: Path) -> None:
         (f"service, {batch_label}", sv["batched"]["texts_per_s"], "#2e7d32"),
         (f"service, {batch_label}, spans 0", sv["batched_no_spans"]["texts_per_s"], "#81c784"),
         (f"service, {load['connections']} clients × 1 text", sv["single"]["texts_per_s"], "#a5d6a7"),
+        *(
+            [(f"HTTP floor, {load['connections']} clients × 1 text", floor["single"]["texts_per_s"], "#bdbdbd")]
+            if floor
+            else []
+        ),
         (f"torch_wrapper, {batch_label}", tw["batched"]["texts_per_s"], "#c62828"),
         (f"torch_wrapper, {load['connections']} clients × 1 text", tw["single"]["texts_per_s"], "#ef9a9a"),
     ]

@@ -162,4 +162,30 @@ def run_load(url: str, bodies: list[bytes], *, connections: int, seconds: float,
     return LoadResult(tool, int(raw["requests"]), raw["duration_us"] / 1e6, errors, lat, cpu, raw)
 
 
-__all__ = ["LoadResult", "ensure_wrk", "run_load"]
+def run_open_loop(url: str, bodies: list[bytes], *, rate: float, seconds: float, connections: int) -> dict[str, object]:
+    """``rate`` requests a second for ``seconds`` against ``url``, whatever the replies (bench/openloop.py)."""
+    with tempfile.TemporaryDirectory(prefix="textsieve-bench-") as tmp:
+        body_file = Path(tmp) / "bodies.jsonl"
+        body_file.write_bytes(b"\n".join(b.replace(b"\n", b" ") for b in bodies) + b"\n")
+        result_file = Path(tmp) / "result.json"
+        cmd = [
+            sys.executable,
+            str(Path(__file__).with_name("openloop.py")),
+            url,
+            str(body_file),
+            repr(rate),
+            repr(seconds),
+            str(connections),
+            str(result_file),
+        ]
+        proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+        cpu = _wait_rusage(proc, seconds + 120)
+        err = proc.stderr.read().decode() if proc.stderr else ""
+        if proc.returncode != 0 or not result_file.exists():
+            raise RuntimeError(f"open-loop client failed (exit {proc.returncode}): {err.strip()[-2000:]}")
+        result: dict[str, object] = json.loads(result_file.read_text())
+    result["client_cpu_s"] = round(cpu, 3)
+    return result
+
+
+__all__ = ["LoadResult", "ensure_wrk", "run_load", "run_open_loop"]

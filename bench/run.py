@@ -1,5 +1,6 @@
-"""``make bench``: serving speed side by side with the raw runtime, a hand-written PyTorch
-wrapper and the arithmetic limit, on this machine, in one run.
+"""``make bench``: serving speed side by side with the graph alone, the raw runtime, an HTTP floor
+and a hand-written PyTorch wrapper, on this machine, in one run; then open-loop tail latency and
+the service's memory (PSS).
 
 Writes bench/results.json and bench/throughput_latency.png and prints a table. Every figure
 comes from this run; nothing is carried over. bench/README.md says what each line means.
@@ -13,7 +14,7 @@ is computed within a round and the median over rounds is reported. How busy the 
 machine was is recorded beside the figures, and the CPU seconds per 1,000 texts (which other
 work disturbs far less) are reported too.
 
-    .venv/bin/python bench/run.py [--seconds 6] [--rounds 3] [--texts 4096] [--quick]
+    .venv/bin/python bench/run.py [--seconds 6] [--rounds 3] [--open-loop-seconds 10] [--texts 4096] [--quick]
 """
 
 from __future__ import annotations
@@ -48,13 +49,30 @@ VARIANTS = ("sorted", "fixed", "graph", "graph_fixed", "conv_graph", "conv_graph
 CONNECTIONS = 32
 TEXTS_PER_REQUEST = 16
 SPANS = 3
-TARGETS = {  # issue 5's acceptance figures: key -> (comparison, bound)
-    "service_vs_runtime": (">=", 0.6),
-    "service_vs_torch_wrapper": (">=", 5.0),
-    "spans_overhead": ("<=", 1.15),
-    "bucketing_speedup": (">=", 1.5),
-    "runtime_vs_flop_limit": (">=", 0.7),
+OPEN_LOOP_SHARES = (0.5, 0.8)  # of the closed-loop single-text rate measured in the same run
+OPEN_LOOP_CONNECTIONS = 64
+TARGETS = {  # key -> (comparison, bound, the issue that set it)
+    "runtime_vs_graph": (">=", 0.5, 15),
+    "service_vs_runtime": (">=", 0.85, 15),
+    "single_text_vs_http_floor": (">=", 0.5, 15),
+    "open_loop_p99_ms_at_50pct": ("<=", 20.0, 15),
+    "service_pss_mb": ("<=", 250.0, 15),
+    "service_vs_torch_wrapper": (">=", 5.0, 5),
+    "spans_overhead": ("<=", 1.15, 5),
 }
+# Figures kept for comparison with earlier runs, no longer targets (bench/README.md says why):
+# the FLOP limit counts a convolution the tap-tables graph never performs, and bucketing is
+# bounded by the text mix.
+HISTORY = (
+    "runtime_vs_flop_limit",
+    "graph_vs_flop_limit",
+    "conv_graph_vs_flop_limit",
+    "bucketing_speedup",
+    "bucketing_speedup_end_to_end",
+    "bucketing_speedup_per_cpu",
+    "bucketing_speedup_conv_layout",
+    "tap_tables_vs_conv_graph",
+)
 
 
 def say(msg: str) -> None:
@@ -207,11 +225,41 @@ def start_torch_wrapper(model: demo_model.DemoModel, work: Path, temperature: fl
     return servers.start("torch_wrapper", cmd, "/healthz", port, work / "torch_wrapper.log")
 
 
-def check_and_warm(server: servers.Server, body_list: list[bytes], wrk: str | None) -> None:
+def start_http_floor(work: Path, reply_bytes: int) -> servers.Server:
+    port = servers.free_port()
+    cmd = [sys.executable, str(HERE / "http_floor.py"), "--port", str(port), "--reply-bytes", str(reply_bytes)]
+    return servers.start("http_floor", cmd, "/readyz", port, work / "http_floor.log")
+
+
+def mean_reply_bytes(server: servers.Server, body_list: list[bytes], n: int = 64) -> int:
+    """The mean size of ``server``'s replies to the first ``n`` bodies: the floor answers this many bytes."""
+    sizes = [len(servers.post_json(server.url + "/v1/predict", body)) for body in body_list[:n]]
+    return round(sum(sizes) / len(sizes))
+
+
+def check_and_warm(server: servers.Server, body_list: list[bytes], wrk: str | None, per_request: int) -> None:
     reply = json.loads(servers.post_json(server.url + "/v1/predict", body_list[0]))
-    if len(reply.get("results", [])) != TEXTS_PER_REQUEST:
-        raise RuntimeError(f"{server.name} answered {str(reply)[:300]}; expected {TEXTS_PER_REQUEST} results")
+    if len(reply.get("results", [])) != per_request:
+        raise RuntimeError(f"{server.name} answered {str(reply)[:300]}; expected {per_request} results")
     loadgen.run_load(server.url + "/v1/predict", body_list, connections=CONNECTIONS, seconds=2, wrk=wrk)
+
+
+def open_loop(server: servers.Server, body_list: list[bytes], max_rate: float, seconds: float) -> dict[str, Any]:
+    """Open-loop windows at each share of ``max_rate``: p50/p99/p99.9 from each request's intended send time."""
+    out: dict[str, Any] = {"max_single_text_rate": round(max_rate, 1), "connections": OPEN_LOOP_CONNECTIONS}
+    for share in OPEN_LOOP_SHARES:
+        say(f"open loop: {share:.0%} of {max_rate:.0f} requests/s for {seconds:g} s …")
+        cpu0 = server.cpu_seconds()
+        res = loadgen.run_open_loop(
+            server.url + "/v1/predict",
+            body_list,
+            rate=share * max_rate,
+            seconds=seconds,
+            connections=OPEN_LOOP_CONNECTIONS,
+        )
+        res["server_cores_busy"] = round((server.cpu_seconds() - cpu0) / float(res["duration_s"]), 3)
+        out[f"at_{round(share * 100)}pct"] = res
+    return out
 
 
 # -- the figures ----------------------------------------------------------------------------
@@ -231,10 +279,18 @@ def bench_flops(model: demo_model.DemoModel, lengths: list[int], min_length: int
     }
 
 
-def summarize(rt: dict[str, Any], fl: dict[str, Any], sv: dict[str, Any], tw: dict[str, Any]) -> dict[str, float]:
+def summarize(
+    rt: dict[str, Any], fl: dict[str, Any], sv: dict[str, Any], tw: dict[str, Any], floor: dict[str, Any]
+) -> dict[str, float]:
     runtime = rt["sorted"]["texts_per_s"]
     return {
+        # The model's own limit is the graph alone; the runtime adds tokenizing, padding and results.
+        "runtime_vs_graph": runtime / rt["graph"]["texts_per_s"],
         "service_vs_runtime": sv["batched"]["texts_per_s"] / runtime,
+        "single_text_vs_http_floor": sv["single"]["texts_per_s"] / floor["single"]["texts_per_s"],
+        "single_text_vs_http_floor_per_cpu": (
+            floor["single"]["server_cpu_s_per_1k_texts"] / sv["single"]["server_cpu_s_per_1k_texts"]
+        ),
         "service_vs_torch_wrapper": sv["batched"]["texts_per_s"] / tw["batched"]["texts_per_s"],
         "spans_overhead": sv["batched_no_spans"]["texts_per_s"] / sv["batched"]["texts_per_s"],
         # Padding only changes the graph's work, so the graph-only pair measures it; the end-to-end
@@ -258,10 +314,10 @@ def summarize(rt: dict[str, Any], fl: dict[str, Any], sv: dict[str, Any], tw: di
     }
 
 
-def table(rt: dict[str, Any], fl: dict[str, Any], sv: dict[str, Any], tw: dict[str, Any]) -> str:
+def table(rt: dict[str, Any], fl: dict[str, Any], sv: dict[str, Any], tw: dict[str, Any], floor: dict[str, Any]) -> str:
     ml = rt["max_length"]
     rows: list[tuple[str, str, float, dict[str, float] | None, float | None]] = [
-        ("flop_limit", "conv FLOPs ÷ 2-thread matmul rate", fl["texts_per_s"], None, None),
+        ("flop_limit (history)", "conv FLOPs ÷ 2-thread matmul rate", fl["texts_per_s"], None, None),
         (
             "runtime",
             "in-process, sorted batches, tokenizing incl.",
@@ -305,7 +361,7 @@ def table(rt: dict[str, Any], fl: dict[str, Any], sv: dict[str, Any], tw: dict[s
             rt["conv_graph_fixed"]["cpu_s_per_1k_texts"],
         ),
     ]
-    for who, res in (("service", sv), ("torch_wrapper", tw)):
+    for who, res in (("service", sv), ("http_floor", floor), ("torch_wrapper", tw)):
         for load, label in (
             ("batched", f"{CONNECTIONS} clients × {TEXTS_PER_REQUEST} texts, spans {SPANS}"),
             ("batched_no_spans", f"{CONNECTIONS} clients × {TEXTS_PER_REQUEST} texts, spans 0"),
@@ -319,6 +375,40 @@ def table(rt: dict[str, Any], fl: dict[str, Any], sv: dict[str, Any], tw: dict[s
         lat_s = "".join(f"{lat[k]:>9.1f}" for k in ("p50", "p95", "p99")) if lat else " " * 27
         cpu_s = f"{cpu:>10.3f}" if cpu is not None else ""
         lines.append(f"{who:<20}{label:<46}{rate:>9.0f}{lat_s}{cpu_s}")
+    return "\n".join(lines)
+
+
+def open_loop_table(ol: dict[str, Any]) -> str:
+    lines = [
+        f"open loop, {ol['connections']} connections at most, "
+        f"shares of {ol['max_single_text_rate']:.0f} single-text requests/s (closed-loop maximum, this run)",
+        f"{'':<8}{'req/s':>8}{'answered':>10}{'errors':>8}{'p50 ms':>9}{'p99 ms':>9}{'p99.9 ms':>10}"
+        f"{'max ms':>9}{'send lag p99':>14}{'server cores':>14}",
+    ]
+    for key, res in ol.items():
+        if not key.startswith("at_"):
+            continue
+        lat = res["latency_ms"]
+        lines.append(
+            f"{key[3:]:<8}{res['rate']:>8.0f}{res['answered']:>10}{sum(res['errors'].values()):>8}"
+            f"{lat['p50']:>9.1f}{lat['p99']:>9.1f}{lat['p99.9']:>10.1f}{lat['max']:>9.1f}"
+            f"{res['send_lag_ms']['p99']:>14.1f}{res['server_cores_busy']:>14.2f}"
+        )
+    return "\n".join(lines)
+
+
+def memory_lines(mem: dict[str, Any]) -> str:
+    lines = [
+        f"service memory: PSS {mem['pss_mb']:.0f} MB summed over {len(mem['processes'])} processes "
+        f"(summed RSS {mem['rss_mb']:.0f} MB)"
+    ]
+    for p in mem["processes"]:
+        lines.append(
+            f"  pid {p['pid']:<8} PSS {p['pss_mb']:>6.1f} MB "
+            f"(anon {p['pss_anon_mb']:>6.1f}, file {p['pss_file_mb']:>5.1f})  "
+            f"RSS {p['rss_mb']:>6.1f} MB  {p['command'][:60]}"
+        )
+    lines.append("  PSS by mapping: " + ", ".join(f"{k} {v:.1f}" for k, v in mem["mappings_pss_mb"].items()))
     return "\n".join(lines)
 
 
@@ -353,6 +443,9 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     parser.add_argument("--seconds", type=float, default=6.0, help="length of each HTTP load window")
     parser.add_argument("--inprocess-seconds", type=float, default=1.5, help="length of each in-process window")
     parser.add_argument("--rounds", type=int, default=3, help="interleaved rounds (odd: the median is one of them)")
+    parser.add_argument(
+        "--open-loop-seconds", type=float, default=10.0, help="length of each open-loop window (one per share)"
+    )
     parser.add_argument("--texts", type=int, default=4096)
     parser.add_argument("--quick", action="store_true", help="short windows, one round: for trying the script")
     parser.add_argument(
@@ -364,7 +457,7 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     )
     args = parser.parse_args(argv)
     if args.quick:
-        args.seconds, args.inprocess_seconds, args.rounds = 3.0, 1.0, 1
+        args.seconds, args.inprocess_seconds, args.rounds, args.open_loop_seconds = 3.0, 1.0, 1, 4.0
     return args
 
 
@@ -388,16 +481,20 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
     lengths = [min(n, p.max_length) for n in token_counts]
     fl = bench_flops(model, lengths, p.min_length)
 
-    service = torch_wrapper = None
+    service = torch_wrapper = floor_server = None
     try:
         service = start_service(model, work)
         torch_wrapper = start_torch_wrapper(model, work, manifest["calibration"]["temperature"])
-        check_and_warm(service, batched[SPANS], wrk)
-        check_and_warm(torch_wrapper, batched[SPANS], wrk)
+        reply_bytes = mean_reply_bytes(service, single)
+        floor_server = start_http_floor(work, reply_bytes)
+        check_and_warm(service, batched[SPANS], wrk, TEXTS_PER_REQUEST)
+        check_and_warm(torch_wrapper, batched[SPANS], wrk, TEXTS_PER_REQUEST)
+        loadgen.run_load(floor_server.url + "/v1/predict", single, connections=CONNECTIONS, seconds=2, wrk=wrk)
         http_loads = {
             ("service", "batched"): (service, batched[SPANS], TEXTS_PER_REQUEST),
             ("service", "batched_no_spans"): (service, batched[0], TEXTS_PER_REQUEST),
             ("service", "single"): (service, single, 1),
+            ("http_floor", "single"): (floor_server, single, 1),
             ("torch_wrapper", "batched"): (torch_wrapper, batched[SPANS], TEXTS_PER_REQUEST),
             ("torch_wrapper", "single"): (torch_wrapper, single, 1),
         }
@@ -413,13 +510,21 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
                     rt_windows[v].append(runtime.window(v, args.inprocess_seconds))
             for key, (server, body_list, per_request) in http_loads.items():
                 http_windows[key].append(measure_http(server, body_list, per_request, seconds=args.seconds, wrk=wrk))
-        sv: dict[str, Any] = {load: typical(w) for (who, load), w in http_windows.items() if who == "service"}
-        tw: dict[str, Any] = {load: typical(w) for (who, load), w in http_windows.items() if who == "torch_wrapper"}
-        for res, server in ((sv, service), (tw, torch_wrapper)):
+        sv, floor, tw = (
+            {load: typical(w) for (who, load), w in http_windows.items() if who == name}
+            for name in ("service", "http_floor", "torch_wrapper")
+        )
+        floor["reply_bytes"] = reply_bytes
+        # Open loop after the closed-loop rounds, at shares of the single-text rate they measured.
+        max_rate = median([w["requests_per_s"] for w in http_windows[("service", "single")]])
+        sv["open_loop"] = open_loop(service, single, max_rate, args.open_loop_seconds)
+        # Memory after every load has run through the service: what a replica holds in steady state.
+        sv["memory"] = service.memory()
+        for res, server in ((sv, service), (floor, floor_server), (tw, torch_wrapper)):
             res["peak_rss_mb"] = server.peak_rss_mb()
             res["threads"] = server.threads()
     finally:
-        for started_server in (service, torch_wrapper):
+        for started_server in (service, floor_server, torch_wrapper):
             if started_server is not None:
                 started_server.stop()
 
@@ -436,19 +541,36 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
         summarize(
             {v: rt_rounds[v][r] for v in VARIANTS},
             fl,
-            {load: w[r] for (who, load), w in http_windows.items() if who == "service"},
-            {load: w[r] for (who, load), w in http_windows.items() if who == "torch_wrapper"},
+            *(
+                {load: w[r] for (who, load), w in http_windows.items() if who == name}
+                for name in ("service", "torch_wrapper", "http_floor")
+            ),
         )
         for r in range(args.rounds)
     ]
     figures = {k: median([f[k] for f in per_round]) for k in per_round[0]}
+    # Measured once, after the rounds: no per-round ratio to take.
+    figures["open_loop_p99_ms_at_50pct"] = sv["open_loop"]["at_50pct"]["latency_ms"]["p99"]
+    figures["open_loop_p99_ms_at_80pct"] = sv["open_loop"]["at_80pct"]["latency_ms"]["p99"]
+    figures["service_pss_mb"] = sv["memory"]["pss_mb"]
+    figures["service_rss_sum_mb"] = sv["memory"]["rss_mb"]
     every = [w for windows in http_windows.values() for w in windows]
     results: dict[str, Any] = {
-        **{k: round(v, 4) for k, v in figures.items()},
+        **{k: round(v, 4) for k, v in figures.items() if k not in HISTORY},
         "per_round": [{k: round(v, 4) for k, v in f.items()} for f in per_round],
         "targets": {
-            k: {"bound": f"{op} {bound}", "met": bool(figures[k] >= bound if op == ">=" else figures[k] <= bound)}
-            for k, (op, bound) in TARGETS.items()
+            k: {
+                "bound": f"{op} {bound}",
+                "issue": issue,
+                "met": bool(figures[k] >= bound if op == ">=" else figures[k] <= bound),
+            }
+            for k, (op, bound, issue) in TARGETS.items()
+        },
+        "history": {
+            "note": "no longer targets (bench/README.md): the FLOP limit counts a convolution the tap-tables "
+            "graph does not perform; bucketing is bounded by the text mix",
+            **{k: round(figures[k], 4) for k in HISTORY},
+            "flop_limit": fl,
         },
         "measured_at": dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat(),
         "machine": machine(),
@@ -483,8 +605,8 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
             "generator": sv["batched"]["loadgen"],
         },
         "runtime": rt,
-        "flop_limit": fl,
         "service": sv,
+        "http_floor": floor,
         "torch_wrapper": tw,
         "bench_seconds": round(time.perf_counter() - started, 1),
     }
@@ -495,25 +617,26 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
         chart.draw(results, CHART)
     except ModuleNotFoundError as exc:
         say(f"no chart: {exc.name} is missing (pip install matplotlib)")
-    print(table(rt, fl, sv, tw))
+    print(table(rt, fl, sv, tw, floor))
     print()
-    for name, (op, bound) in TARGETS.items():
+    print(open_loop_table(sv["open_loop"]))
+    print()
+    for name, (op, bound, issue) in TARGETS.items():
         met = results["targets"][name]["met"]
-        print(f"{name:<32}{figures[name]:>8.3f}   target {op} {bound:<5} {'met' if met else 'NOT met'}")
+        print(f"{name:<34}{figures[name]:>8.3f}   target {op} {bound:<6} {'met' if met else 'NOT met'} (issue {issue})")
     for name in (
-        "bucketing_speedup_end_to_end",
-        "bucketing_speedup_per_cpu",
-        "bucketing_speedup_conv_layout",
-        "graph_vs_flop_limit",
-        "conv_graph_vs_flop_limit",
-        "tap_tables_vs_conv_graph",
+        "service_rss_sum_mb",
+        "single_text_vs_http_floor_per_cpu",
         "service_vs_runtime_per_cpu",
         "service_vs_torch_wrapper_per_cpu",
         "service_vs_torch_wrapper_single",
+        "open_loop_p99_ms_at_80pct",
+        "p99_ms_single_text_32_clients",
     ):
-        print(f"{name:<32}{figures[name]:>8.3f}")
-    print(f"{'p99_ms_single_text_32_clients':<32}{figures['p99_ms_single_text_32_clients']:>8.1f}")
-    print(f"\nserver peak RSS: service {sv['peak_rss_mb']:.0f} MB, torch_wrapper {tw['peak_rss_mb']:.0f} MB")
+        print(f"{name:<34}{figures[name]:>8.3f}")
+    print("history (no longer targets): " + ", ".join(f"{k} {figures[k]:.3f}" for k in HISTORY))
+    print(f"\n{memory_lines(sv['memory'])}")
+    print(f"server peak RSS: service {sv['peak_rss_mb']:.0f} MB, torch_wrapper {tw['peak_rss_mb']:.0f} MB")
     print(
         f"noise: load average {results['load_average_before'][0]} before, {results['load_average_after'][0]} after; "
         f"other processes kept {results['background_cores_busy']:.2f} of {results['machine']['cores']} cores "

@@ -40,6 +40,31 @@ def process_tree(pid: int) -> list[int]:
     return found
 
 
+def _kb_fields(text: str) -> dict[str, int]:
+    """``Name:   123 kB`` lines as {Name: 123}."""
+    out = {}
+    for line in text.splitlines():
+        name, _, rest = line.partition(":")
+        value = rest.split()
+        if len(value) == 2 and value[1] == "kB":
+            out[name] = int(value[0])
+    return out
+
+
+def _pss_by_mapping(smaps: str) -> dict[str, int]:
+    """PSS in kB per mapped object in one /proc/PID/smaps: a file's base name, [heap], [stack] or [anon]."""
+    out: dict[str, int] = {}
+    name = "[anon]"
+    for line in smaps.splitlines():
+        first = line.split(None, 5)
+        if first and "-" in first[0] and not first[0].endswith(":"):  # a mapping's header line
+            path = first[5].strip() if len(first) == 6 else ""
+            name = Path(path).name if path.startswith("/") else (path or "[anon]")
+        elif line.startswith("Pss:"):
+            out[name] = out.get(name, 0) + int(line.split()[1])
+    return out
+
+
 @dataclass
 class Server:
     name: str
@@ -73,6 +98,46 @@ class Server:
             except OSError:
                 continue
         return total / 1024 if total else float("nan")
+
+    def memory(self, top: int = 12) -> dict[str, object]:
+        """Memory now, as proportional set size (PSS) summed over the server and its descendants.
+
+        A page shared by k processes counts 1/k in each one's PSS (/proc/PID/smaps_rollup), so the
+        sum is what the server really holds; summed RSS counts the pages forked workers share with
+        their fork server (the interpreter, numpy, onnxruntime's library) once per process.
+        ``mappings`` splits the PSS by what is mapped (a library file, the heap, anonymous memory)
+        from /proc/PID/smaps, summed over the processes, largest first.
+        """
+        processes = []
+        by_mapping: dict[str, int] = {}
+        for pid in self.pids():
+            try:
+                rollup = _kb_fields(Path(f"/proc/{pid}/smaps_rollup").read_text())
+                smaps = Path(f"/proc/{pid}/smaps").read_text()
+                cmdline = Path(f"/proc/{pid}/cmdline").read_bytes().replace(b"\0", b" ").decode(errors="replace")
+            except OSError:
+                continue
+            processes.append(
+                {
+                    "pid": pid,
+                    "command": cmdline.strip()[:120],
+                    "pss_mb": rollup.get("Pss", 0) / 1024,
+                    "rss_mb": rollup.get("Rss", 0) / 1024,
+                    "pss_anon_mb": rollup.get("Pss_Anon", 0) / 1024,
+                    "pss_file_mb": rollup.get("Pss_File", 0) / 1024,
+                }
+            )
+            for name, kb in _pss_by_mapping(smaps).items():
+                by_mapping[name] = by_mapping.get(name, 0) + kb
+        ranked = sorted(by_mapping.items(), key=lambda kv: -kv[1])
+        rest = sum(kb for _, kb in ranked[top:])
+        return {
+            "pss_mb": round(sum(float(p["pss_mb"]) for p in processes), 1),  # type: ignore[arg-type]
+            "rss_mb": round(sum(float(p["rss_mb"]) for p in processes), 1),  # type: ignore[arg-type]
+            "processes": [{k: round(v, 1) if isinstance(v, float) else v for k, v in p.items()} for p in processes],
+            "mappings_pss_mb": {name: round(kb / 1024, 1) for name, kb in ranked[:top]}
+            | {"(everything else)": round(rest / 1024, 1)},
+        }
 
     def threads(self) -> int:
         return len(os.listdir(f"/proc/{self.proc.pid}/task"))

@@ -14,8 +14,18 @@ import logging
 import signal
 import sys
 from types import FrameType
+from typing import TYPE_CHECKING, Any
 
 from textsieve.registry.cli import add_location_args
+
+if TYPE_CHECKING:  # the web stack is imported only when a server starts (tests/test_cli.py)
+    from collections.abc import Callable
+
+    import uvicorn
+    from uvicorn._types import ASGIApplication
+
+    from textsieve.service.settings import Settings
+    from textsieve.service.web.transport import ConnectionGuard
 
 GRACEFUL_SECONDS = 10
 
@@ -38,6 +48,26 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     )
     add_location_args(p)
     p.set_defaults(func=cli_serve)
+
+
+def server_config(
+    app: ASGIApplication | Callable[..., Any], guard: ConnectionGuard, settings: Settings
+) -> uvicorn.Config:
+    """How ``serve`` runs uvicorn; bench/http_floor.py runs its floor app with the same."""
+    import uvicorn
+
+    return uvicorn.Config(
+        app,
+        http=guard.protocol(),  # connection cap and read deadline: service/web/transport.py
+        timeout_keep_alive=settings.keepalive_seconds,
+        host=settings.host,
+        port=settings.port,
+        access_log=False,
+        log_config=None,
+        lifespan="on",
+        timeout_graceful_shutdown=GRACEFUL_SECONDS,
+        server_header=False,
+    )
 
 
 def cli_serve(args: argparse.Namespace) -> int:
@@ -70,19 +100,7 @@ def cli_serve(args: argparse.Namespace) -> int:
     )
     print(f"textsieve: serving on http://{settings.host}:{settings.port}/ (Ctrl-C stops)", file=sys.stderr, flush=True)
     app = create_app(settings)
-    config = uvicorn.Config(
-        app,
-        http=app.state.guard.protocol(),  # connection cap and read deadline: service/web/transport.py
-        timeout_keep_alive=settings.keepalive_seconds,
-        host=settings.host,
-        port=settings.port,
-        access_log=False,
-        log_config=None,
-        lifespan="on",
-        timeout_graceful_shutdown=GRACEFUL_SECONDS,
-        server_header=False,
-    )
-    server = uvicorn.Server(config)
+    server = uvicorn.Server(server_config(app, app.state.guard, settings))
     stopped: list[int] = []
 
     def _on_sigterm(signum: int, frame: FrameType | None) -> None:
@@ -102,4 +120,4 @@ def cli_serve(args: argparse.Namespace) -> int:
     return 0
 
 
-__all__ = ["cli_serve", "register"]
+__all__ = ["cli_serve", "register", "server_config"]

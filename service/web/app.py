@@ -26,6 +26,17 @@ from textsieve.service.web.onewrite import HeadWithBodyMiddleware
 from textsieve.service.web.transport import ConnectionGuard
 
 
+def connection_guard(settings: Settings) -> ConnectionGuard:
+    """The connection cap, read deadline and adaptive request limit that ``settings`` ask for."""
+    return ConnectionGuard(
+        max_connections=settings.max_connections,
+        read_timeout=settings.read_timeout_seconds,
+        target_seconds=settings.queue_wait_ms / 1000.0,
+        min_requests=2 * settings.workers,
+        start_requests=settings.max_requests,
+    )
+
+
 def create_app(settings: Settings | None = None) -> FastAPI:
     settings = settings if settings is not None else load_settings()
     metrics = ServiceMetrics()
@@ -63,13 +74,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.metrics = metrics
     # Bounds across requests (see bodylimit.py and transport.py); serve hands the guard to uvicorn.
     app.state.budget = budget = BodyBudget(settings.body_budget_bytes)
-    app.state.guard = ConnectionGuard(
-        max_connections=settings.max_connections,
-        read_timeout=settings.read_timeout_seconds,
-        target_seconds=settings.queue_wait_ms / 1000.0,
-        min_requests=2 * settings.workers,
-        start_requests=settings.max_requests,
-    )
+    app.state.guard = connection_guard(settings)
     metrics.overload.guard, metrics.overload.budget = app.state.guard, budget
     problems.install(app)
     for module in (predict, views, admin, health, page):
@@ -81,4 +86,4 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     return app
 
 
-__all__ = ["create_app"]
+__all__ = ["connection_guard", "create_app"]

@@ -4,7 +4,7 @@ that topology keeps its promises end to end: PostgreSQL, two ``textsieve serve``
 and nginx on 127.0.0.1.
 
 No Docker engine runs here, so the Docker files are parsed (compose.yaml by PyYAML, the
-Dockerfile by the small parser below, following the Dockerfile reference's rules for
+Dockerfile by the small parser in tests/helpers/dockerfile.py, following the Dockerfile reference's rules for
 comments, line continuations and the exec form) and held against what the topology runs.
 """
 
@@ -19,8 +19,6 @@ import sys
 import threading
 import tomllib
 import urllib.parse
-from collections.abc import Iterator
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -30,6 +28,7 @@ import yaml
 from pydantic import ValidationError
 
 from tests.helpers import registries
+from tests.helpers.dockerfile import Parsed, Stage, effective, parse_dockerfile
 from tests.helpers.jsonl import read_jsonl
 from tests.helpers.layout import package_folders
 from textsieve.cli import main as textsieve_main
@@ -46,104 +45,6 @@ ENV_EXAMPLE = ROOT / "deploy" / "textsieve.env.example"
 DOCKERIGNORE = ROOT / ".dockerignore"
 LOCK = ROOT / "requirements" / "lock.txt"
 CONTAINER_URL = f"http://127.0.0.1:{loopback.CONTAINER_PORT}"
-
-
-# -- a Dockerfile parser (Dockerfile reference: comments, "\" continuations, exec form) -------
-@dataclass
-class Stage:
-    name: str
-    base: str
-    env: dict[str, str] = field(default_factory=dict)
-    args: dict[str, str] = field(default_factory=dict)
-    user: str | None = None
-    cmd: list[str] | None = None
-    healthcheck: list[str] | None = None
-    expose: list[str] = field(default_factory=list)
-    runs: list[str] = field(default_factory=list)
-    copies: list[list[str]] = field(default_factory=list)
-
-
-Parsed = tuple[dict[str, str], list[Stage]]
-
-
-def instructions(text: str) -> Iterator[tuple[str, str]]:
-    """(KEYWORD, arguments) pairs, continuation lines joined and comment lines dropped."""
-    pending = ""
-    for raw in text.splitlines():
-        stripped = raw.strip()
-        if stripped.startswith("#") or (not stripped and not pending):
-            continue
-        if stripped.endswith("\\"):
-            pending += stripped[:-1] + " "
-            continue
-        line = (pending + stripped).strip()
-        pending = ""
-        keyword, _, rest = line.partition(" ")
-        yield keyword.upper(), rest.strip()
-    assert not pending, "the Dockerfile ends inside a continued line"
-
-
-def exec_form(args: str) -> list[str]:
-    value = json.loads(args)
-    assert isinstance(value, list) and all(isinstance(v, str) for v in value), f"not the exec form: {args}"
-    return value
-
-
-def parse_dockerfile(text: str) -> Parsed:
-    """Global ARGs and the stages in order, each with what it sets itself (not inherited)."""
-    global_args: dict[str, str] = {}
-    stages: list[Stage] = []
-    for keyword, args in instructions(text):
-        if keyword == "FROM":
-            words = args.split()
-            base = re.sub(r"\$\{(\w+)\}", lambda m: global_args[m.group(1)], words[0])
-            name = words[2] if len(words) == 3 and words[1].upper() == "AS" else f"stage-{len(stages)}"
-            stages.append(Stage(name=name, base=base))
-            continue
-        if keyword == "ARG":
-            name, _, default = args.partition("=")
-            (stages[-1].args if stages else global_args)[name] = default
-            continue
-        stage = stages[-1]
-        if keyword == "ENV":
-            for item in shlex.split(args):
-                key, _, value = item.partition("=")
-                stage.env[key] = value
-        elif keyword == "USER":
-            stage.user = args
-        elif keyword == "CMD":
-            stage.cmd = exec_form(args)
-        elif keyword == "HEALTHCHECK":
-            if args.upper() == "NONE":
-                stage.healthcheck = []
-                continue
-            options, _, command = args.partition("CMD ")
-            assert all(o.startswith("--") for o in options.split()), f"HEALTHCHECK options: {options}"
-            stage.healthcheck = exec_form(command)
-        elif keyword == "EXPOSE":
-            stage.expose += args.split()
-        elif keyword == "RUN":
-            stage.runs.append(args)
-        elif keyword == "COPY":
-            stage.copies.append(args.split())
-    return global_args, stages
-
-
-def effective(stages: list[Stage], name: str) -> Stage:
-    """A stage with what it inherits from the stages it is built FROM (env, user, cmd, ...)."""
-    by_name = {s.name: s for s in stages}
-    chain = [by_name[name]]
-    while chain[-1].base in by_name:
-        chain.append(by_name[chain[-1].base])
-    out = Stage(name=name, base=chain[-1].base)
-    for s in reversed(chain):
-        out.env.update(s.env)
-        out.user = s.user or out.user
-        out.cmd = s.cmd or out.cmd
-        out.healthcheck = out.healthcheck if s.healthcheck is None else s.healthcheck
-        out.expose += s.expose
-        out.runs += s.runs
-    return out
 
 
 @pytest.fixture(scope="module")
