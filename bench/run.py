@@ -57,6 +57,7 @@ TARGETS = {  # key -> (comparison, bound, the issue that set it)
     "single_text_vs_http_floor": (">=", 0.5, 15),
     "open_loop_p99_ms_at_50pct": ("<=", 20.0, 15),
     "service_pss_mb": ("<=", 250.0, 15),
+    "overload_guards_throughput_ratio": (">=", 0.97, 16),
     "service_vs_torch_wrapper": (">=", 5.0, 5),
     "spans_overhead": ("<=", 1.15, 5),
 }
@@ -225,6 +226,14 @@ def start_torch_wrapper(model: demo_model.DemoModel, work: Path, temperature: fl
     return servers.start("torch_wrapper", cmd, "/healthz", port, work / "torch_wrapper.log")
 
 
+def start_unguarded(model: demo_model.DemoModel, work: Path) -> servers.Server:
+    """The same service minus its overload layer (bench/unguarded_server.py): what the guards cost."""
+    registry = demo_model.live_registry(model, work / "registry-unguarded")
+    port = servers.free_port()
+    cmd = [sys.executable, str(HERE / "unguarded_server.py"), "--registry", str(registry), "--port", str(port)]
+    return servers.start("unguarded", cmd, "/readyz", port, work / "unguarded.log")
+
+
 def start_http_floor(work: Path, reply_bytes: int) -> servers.Server:
     port = servers.free_port()
     cmd = [sys.executable, str(HERE / "http_floor.py"), "--port", str(port), "--reply-bytes", str(reply_bytes)]
@@ -280,10 +289,18 @@ def bench_flops(model: demo_model.DemoModel, lengths: list[int], min_length: int
 
 
 def summarize(
-    rt: dict[str, Any], fl: dict[str, Any], sv: dict[str, Any], tw: dict[str, Any], floor: dict[str, Any]
+    rt: dict[str, Any],
+    fl: dict[str, Any],
+    sv: dict[str, Any],
+    tw: dict[str, Any],
+    floor: dict[str, Any],
+    unguarded: dict[str, Any],
 ) -> dict[str, float]:
     runtime = rt["sorted"]["texts_per_s"]
     return {
+        # What the overload layer (connection guard, body budget, request limit, admission) costs
+        # at normal load: the same service with and without it, side by side.
+        "overload_guards_throughput_ratio": sv["batched"]["texts_per_s"] / unguarded["batched"]["texts_per_s"],
         # The model's own limit is the graph alone; the runtime adds tokenizing, padding and results.
         "runtime_vs_graph": runtime / rt["graph"]["texts_per_s"],
         "service_vs_runtime": sv["batched"]["texts_per_s"] / runtime,
@@ -481,17 +498,20 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
     lengths = [min(n, p.max_length) for n in token_counts]
     fl = bench_flops(model, lengths, p.min_length)
 
-    service = torch_wrapper = floor_server = None
+    service = torch_wrapper = floor_server = unguarded = None
     try:
         service = start_service(model, work)
+        unguarded = start_unguarded(model, work)
         torch_wrapper = start_torch_wrapper(model, work, manifest["calibration"]["temperature"])
         reply_bytes = mean_reply_bytes(service, single)
         floor_server = start_http_floor(work, reply_bytes)
         check_and_warm(service, batched[SPANS], wrk, TEXTS_PER_REQUEST)
         check_and_warm(torch_wrapper, batched[SPANS], wrk, TEXTS_PER_REQUEST)
+        check_and_warm(unguarded, batched[SPANS], wrk, TEXTS_PER_REQUEST)
         loadgen.run_load(floor_server.url + "/v1/predict", single, connections=CONNECTIONS, seconds=2, wrk=wrk)
         http_loads = {
             ("service", "batched"): (service, batched[SPANS], TEXTS_PER_REQUEST),
+            ("unguarded", "batched"): (unguarded, batched[SPANS], TEXTS_PER_REQUEST),
             ("service", "batched_no_spans"): (service, batched[0], TEXTS_PER_REQUEST),
             ("service", "single"): (service, single, 1),
             ("http_floor", "single"): (floor_server, single, 1),
@@ -524,7 +544,7 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
             res["peak_rss_mb"] = server.peak_rss_mb()
             res["threads"] = server.threads()
     finally:
-        for started_server in (service, floor_server, torch_wrapper):
+        for started_server in (service, floor_server, torch_wrapper, unguarded):
             if started_server is not None:
                 started_server.stop()
 
@@ -543,7 +563,7 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
             fl,
             *(
                 {load: w[r] for (who, load), w in http_windows.items() if who == name}
-                for name in ("service", "torch_wrapper", "http_floor")
+                for name in ("service", "torch_wrapper", "http_floor", "unguarded")
             ),
         )
         for r in range(args.rounds)
