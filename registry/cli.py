@@ -441,9 +441,7 @@ def gates_in_force(settings: ModelSettings) -> str:
     if settings.get(MCNEMAR):
         parts.append(f"mcnemar (refuses when significantly worse: p < {settings.get(MCNEMAR_P):g})")
     if settings.get(TOLERANCES):
-        parts.append(
-            f"macro_f1 (drop ≤ {settings.get(MACRO_F1_DROP):g}), ece (rise ≤ {settings.get(ECE_RISE):g})"
-        )
+        parts.append(f"macro_f1 (drop ≤ {settings.get(MACRO_F1_DROP):g}), ece (rise ≤ {settings.get(ECE_RISE):g})")
     return "gates on promotion to live: " + ", ".join(parts)
 
 

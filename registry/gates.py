@@ -193,7 +193,9 @@ class Side:
 
 def report_path(model: str, version: int) -> str:
     """Where the service serves a version's evaluation report, and the command that writes it."""
-    return f"/v1/models/{model}/versions/{version}/report (write it: textsieve evaluate {model} {version} --against live)"
+    return (
+        f"/v1/models/{model}/versions/{version}/report (write it: textsieve evaluate {model} {version} --against live)"
+    )
 
 
 def metric_gates(

@@ -65,7 +65,9 @@ class Setting(Generic[T]):
     @staticmethod
     def number(key: str, default: float, low: float, high: float, group: Group, help: str) -> Setting[float]:
         """A number from ``low`` to ``high`` (both included)."""
-        return Setting(key, default, group, help, f"a number from {low:g} to {high:g}", _number(low, high, low_open=False))
+        return Setting(
+            key, default, group, help, f"a number from {low:g} to {high:g}", _number(low, high, low_open=False)
+        )
 
     @staticmethod
     def level(key: str, default: float, low: float, high: float, group: Group, help: str) -> Setting[float]:

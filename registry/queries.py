@@ -218,7 +218,8 @@ class Queries:
         self.tx.run(
             "INSERT INTO model_settings (model, key, value, set_by, set_at, reason, event_id) "
             "VALUES (?, ?, ?, ?, ?, ?, ?) ON CONFLICT (model, key) DO UPDATE SET value = excluded.value, "
-            "set_by = excluded.set_by, set_at = excluded.set_at, reason = excluded.reason, event_id = excluded.event_id",
+            "set_by = excluded.set_by, set_at = excluded.set_at, reason = excluded.reason, "
+            "event_id = excluded.event_id",
             (model, key, dumps(value), by, at, reason, event_id),
         )
 
