@@ -113,8 +113,8 @@ class ModelSet:
             for name in names:
                 self.status.setdefault(name, ModelStatus())
         for name in names:
-            await self.refresh(name, why="startup")
             await self.read_settings(name)
+            await self.refresh(name, why="startup")
         self._discovered = True
         self.startup_error = None
 
@@ -209,6 +209,7 @@ class ModelSet:
             manifest_sha256=manifest_sha256,
             procs=self.pool.procs,
         )
+        served.review_threshold = self.review_thresholds.get(name)
         served.batcher = Batcher(
             served,
             self.pool,
@@ -315,6 +316,10 @@ class ModelSet:
             self.review_thresholds.pop(name, None)
         else:
             self.review_thresholds[name] = threshold
+        # Every loaded version of the model: live and pinned alike answer for the same model.
+        for served in [self.live.get(name), *(s for key, s in self.pinned.items() if key[0] == name)]:
+            if served is not None:
+                served.review_threshold = threshold
 
     # -- requests -----------------------------------------------------------------------------
     async def acquire(self, name: str | None, version: int | None) -> ServedModel:

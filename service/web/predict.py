@@ -117,9 +117,6 @@ async def predict(
         results = await served.batcher.submit(body.texts, body.spans, deadline=deadline)
     finally:
         models.release(served)
-    threshold = models.review_thresholds.get(served.name)
-    if threshold is not None:
-        mark_for_review(results, threshold)
     state = request.state
     state.model, state.version, state.texts = served.name, served.version, len(body.texts)
     metrics.for_version(served.name, served.version).requests.inc()
@@ -131,11 +128,4 @@ async def predict(
     )
 
 
-def mark_for_review(results: list[dict[str, Any]], threshold: float) -> None:
-    """Selective prediction (Geifman & El-Yaniv, 2017): a result whose top probability is below
-    the model's review threshold is handed to a person rather than trusted as it is."""
-    for r in results:
-        r["needs_review"] = max(r["probabilities"].values()) < threshold
-
-
-__all__ = ["check_limits", "mark_for_review", "router"]
+__all__ = ["check_limits", "router"]

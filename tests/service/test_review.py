@@ -92,9 +92,10 @@ async def test_needs_review_follows_the_threshold_set_and_cleared(
         assert app.state.models.live[MODEL] is served
 
 
-async def test_a_threshold_set_before_start_is_known_at_load(registry_dir: Path) -> None:
+@pytest.mark.parametrize("inference", ["processes", "threads"])
+async def test_a_threshold_set_before_start_is_known_at_load(registry_dir: Path, inference: str) -> None:
     _set(registry_dir, values={"review_threshold": 1.0}, reason="everything to people")
-    async with serving(settings_for(registry_dir)) as (_, client):
+    async with serving(settings_for(registry_dir, inference=inference)) as (_, client):
         results = await _predict(client)
     # every top probability is below 1, so a threshold of 1 hands every text to a person
     assert [r["needs_review"] for r in results] == [True] * len(TEXTS)
