@@ -16,6 +16,7 @@ if _typing.TYPE_CHECKING:
     from textsieve.registry.api import Registry, open_registry
     from textsieve.registry.bundle import Bundle, open_bundle
     from textsieve.registry.gates import GateSettings, Scores
+    from textsieve.registry.model_settings import ModelSettings
     from textsieve.registry.names import validate_model_name
     from textsieve.registry.records import (
         STATES,
@@ -36,6 +37,7 @@ _HOMES = {
     "open_bundle": "bundle",
     "GateSettings": "gates",
     "Scores": "gates",
+    "ModelSettings": "model_settings",
     "validate_model_name": "names",
     "STATES": "records",
     "EvalsetInfo": "records",
@@ -55,6 +57,7 @@ __all__ = [
     "GateResult",
     "GateSettings",
     "ModelInfo",
+    "ModelSettings",
     "Promotion",
     "Registry",
     "Scores",

@@ -43,6 +43,7 @@ from textsieve.registry.evalsets import NormalisedEvalset, load_evalset, parse_s
 from textsieve.registry.gates import GateSettings, Side, labels_gate, metric_gates, parity_gate
 from textsieve.registry.manifest import MANIFEST, Manifest
 from textsieve.registry.migrations import migrate
+from textsieve.registry.model_settings import MCNEMAR, TOLERANCES, Group, ModelSettings, Value, setting
 from textsieve.registry.names import resolve_actor, validate_model_name, validate_reason, validate_version
 from textsieve.registry.queries import Queries
 from textsieve.registry.records import (
@@ -132,6 +133,17 @@ class Registry:
             q = Queries(tx)
             self._require_model(q, model)
             return q.evalset(model)
+
+    def model_settings(self, model: str) -> ModelSettings:
+        """The model's settings (gate tolerances, review threshold), each with who set it, when and why."""
+        model = validate_model_name(model)
+        with self.backend.read() as tx:
+            q = Queries(tx)
+            self._require_model(q, model)
+            return self._settings_in(q, model)
+
+    def _settings_in(self, q: Queries, model: str) -> ModelSettings:
+        return ModelSettings.resolve(model, q.setting_rows(model), self.settings.as_defaults())
 
     def history(self, model: str) -> list[Event]:
         model = validate_model_name(model)
@@ -375,6 +387,73 @@ class Registry:
         )
         return info
 
+    # -- settings -------------------------------------------------------------------------
+    def change_settings(
+        self,
+        model: str,
+        values: dict[str, Value] | None = None,
+        *,
+        reset: tuple[str, ...] | list[str] = (),
+        reason: str,
+        actor: str | None = None,
+        group: Group | None = None,
+    ) -> tuple[ModelSettings, list[str]]:
+        """Set some settings and return others to their defaults, in one audited change.
+
+        Returns the settings afterwards and the keys that changed (a value equal to the one in
+        force, already chosen the same way, is no change and is not recorded). ``group`` limits
+        the keys to one group (what one verb may change).
+        """
+        model = validate_model_name(model)
+        reason = validate_reason(reason, required=True)
+        actor = resolve_actor(actor)
+        chosen = {setting(k, group).key: setting(k, group).validate(v) for k, v in (values or {}).items()}
+        back = [setting(k, group).key for k in reset]
+        both = sorted(set(chosen) & set(back))
+        if both:
+            raise InputError(f"{', '.join(both)}: set and reset at once; choose one")
+        now = utc_now()
+        with self.backend.write() as tx:
+            q = Queries(tx)
+            self._require_model(q, model)
+            tx.lock_model(model)
+            before = self._settings_in(q, model)
+            changes: dict[str, dict[str, Value]] = {}
+            for key, value in chosen.items():
+                old = before.values[key]
+                if old.is_default or old.value != value:
+                    changes[key] = {"from": old.value, "to": value}
+            for key in back:
+                old = before.values[key]
+                if not old.is_default:
+                    changes[key] = {"from": old.value, "to": old.default, "default": True}
+            if not changes:
+                return before, []
+            after = {k: v.value for k, v in before.values.items()} | {k: c["to"] for k, c in changes.items()}
+            if not after[TOLERANCES.key] and not after[MCNEMAR.key]:
+                raise InputError(
+                    f"{TOLERANCES.key}=off needs {MCNEMAR.key}=on: at least one gate must compare a candidate "
+                    "with the live version"
+                )
+            event_id = q.add_event(
+                model=model,
+                version=None,
+                kind="settings",
+                actor=actor,
+                at=now,
+                reason=reason,
+                details={"changes": changes},
+            )
+            for key, change in changes.items():
+                if change.get("default"):
+                    q.drop_setting(model, key)
+                else:
+                    q.put_setting(
+                        model=model, key=key, value=change["to"], by=actor, at=now, reason=reason, event_id=event_id
+                    )
+            q.touch_model(model, now)
+            return self._settings_in(q, model), sorted(changes)
+
     # -- lifecycle ------------------------------------------------------------------------
     def check(self, model: str, version: int) -> list[GateResult]:
         """Run the promotion-to-live gates without promoting (nothing is recorded)."""
@@ -384,7 +463,8 @@ class Registry:
             target = self._require_version(q, model, version)
             live = q.in_state(model, State.LIVE)
             evalset = q.evalset(model)
-        return self._gates(model, target, live, evalset)
+            settings = self._settings_in(q, model)
+        return self._gates(model, target, live, evalset, settings)
 
     def promote(
         self,
@@ -411,7 +491,8 @@ class Registry:
                     target = self._require_version(q, model, version)
                     live = q.in_state(model, State.LIVE)
                     evalset = q.evalset(model)
-                gates = self._judge(model, target, live, evalset)
+                    settings = self._settings_in(q, model)
+                gates = self._judge(model, target, live, evalset, settings)
                 with self.backend.write() as tx:
                     q = Queries(tx)
                     tx.lock_model(model)
@@ -419,6 +500,7 @@ class Registry:
                     if (
                         _num(q.in_state(model, State.LIVE)) != _num(live)
                         or _id(q.evalset(model)) != _id(evalset)
+                        or self._settings_in(q, model) != settings
                         or current.state != target.state
                     ):
                         if current.state == State.LIVE:
@@ -434,7 +516,7 @@ class Registry:
                     tx.lock_model(model)
                     target = self._require_version(q, model, version)
                     live = q.in_state(model, State.LIVE)
-                    gates = self._judge(model, target, live, q.evalset(model))
+                    gates = self._judge(model, target, live, q.evalset(model), self._settings_in(q, model))
                     outcome = self._apply_live(q, target, live, gates, reason=reason, actor=actor, force=force)
             event_id, info, failed = outcome
             if info is None:
@@ -443,12 +525,17 @@ class Registry:
         raise AssertionError("unreachable: the last attempt runs under the lock")
 
     def _judge(
-        self, model: str, target: VersionInfo, live: VersionInfo | None, evalset: EvalsetInfo | None
+        self,
+        model: str,
+        target: VersionInfo,
+        live: VersionInfo | None,
+        evalset: EvalsetInfo | None,
+        settings: ModelSettings,
     ) -> list[GateResult]:
         _allowed(target, State.LIVE)
         for digest in target.files.values():
             self.blobs.verify(digest)  # a damaged version is never promoted, forced or not
-        return self._gates(model, target, live, evalset)
+        return self._gates(model, target, live, evalset, settings)
 
     def _apply_live(
         self,
@@ -590,7 +677,12 @@ class Registry:
 
     # -- helpers --------------------------------------------------------------------------
     def _gates(
-        self, model: str, target: VersionInfo, live: VersionInfo | None, evalset: EvalsetInfo | None
+        self,
+        model: str,
+        target: VersionInfo,
+        live: VersionInfo | None,
+        evalset: EvalsetInfo | None,
+        settings: ModelSettings,
     ) -> list[GateResult]:
         manifest = Manifest.model_validate_json(self.blobs.read_bytes(target.files[MANIFEST]))
         gates = [parity_gate(manifest), labels_gate(target.labels, None if live is None else live.labels, _num(live))]
@@ -599,9 +691,8 @@ class Registry:
             examples = parse_stored(self.blobs.read_bytes(evalset.sha256))
         cand = Side(target.version, target.labels, lambda: self._materialize(target))
         live_side = None if live is None else Side(live.version, live.labels, lambda: self._materialize(live))
-        gates += metric_gates(
-            model, cand, live_side, examples, None if evalset is None else evalset.sha256, self.settings
-        )
+        digest = None if evalset is None else evalset.sha256
+        gates += metric_gates(model, cand, live_side, examples, digest, GateSettings.of(settings))
         return gates
 
     def _resolve(self, model: str, version: int | None) -> VersionInfo:

@@ -1,5 +1,5 @@
 """The registry verbs of the ``textsieve`` command: publish, models, versions, show, promote,
-rollback, history and evalset add, each with its flags (:func:`register`) next to its handler.
+rollback, history, evalset add, gates and review-threshold, each with its flags (:func:`register`) next to its handler.
 Tables are plain aligned text; errors are raised and the command's main() prints them as one
 line with the error's exit status.
 
@@ -20,6 +20,7 @@ from textsieve.errors import GateRefusedError, NotFoundError
 
 if TYPE_CHECKING:
     from textsieve.registry.api import Registry
+    from textsieve.registry.model_settings import ModelSettings, SettingValue
     from textsieve.registry.records import Event, GateResult
 
 NONE = "-"
@@ -120,6 +121,44 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     add_location_args(pe)
     _actor_arg(pe)
     pe.set_defaults(func=cli_evalset_add)
+
+    p = sub.add_parser(
+        "gates",
+        help="show or change a model's promotion-gate settings (tolerances, the McNemar gate)",
+        description="Without --set/--reset: a table of the settings. Keys: macro_f1_drop and ece_rise (fixed "
+        "tolerances against live, on while tolerances=on); mcnemar=on refuses a candidate significantly worse "
+        "than live (exact McNemar p below mcnemar_p and more texts right→wrong than wrong→right).",
+    )
+    _model_arg(p)
+    p.add_argument(
+        "--set",
+        action="append",
+        default=[],
+        metavar="KEY=VALUE",
+        help="choose a value, e.g. mcnemar=on, mcnemar_p=0.05, macro_f1_drop=0.01 (repeat for several)",
+    )
+    p.add_argument("--reset", action="append", default=[], metavar="KEY", help="back to the default (repeatable)")
+    p.add_argument("--reason", default="", help="why, recorded in the audit trail (required with --set/--reset)")
+    add_location_args(p)
+    _actor_arg(p)
+    p.set_defaults(func=cli_gates)
+
+    p = sub.add_parser(
+        "review-threshold",
+        help="show, set or clear the confidence below which the service marks results needs_review",
+    )
+    _model_arg(p)
+    change = p.add_mutually_exclusive_group()
+    change.add_argument(
+        "--set",
+        metavar="THRESHOLD",
+        help="a probability above 0 and at most 1: results whose top probability is below it get needs_review: true",
+    )
+    change.add_argument("--clear", action="store_true", help="no threshold: replies carry no needs_review field")
+    p.add_argument("--reason", default="", help="why, recorded in the audit trail (required with --set/--clear)")
+    add_location_args(p)
+    _actor_arg(p)
+    p.set_defaults(func=cli_review_threshold)
 
     p = sub.add_parser(
         "gc",
@@ -330,6 +369,82 @@ def cli_evalset_add(args: argparse.Namespace) -> int:
     return 0
 
 
+def cli_gates(args: argparse.Namespace) -> int:
+    from textsieve.registry.model_settings import Group, parse_assignment
+
+    values = dict(parse_assignment(text, Group.GATES) for text in args.set)
+    with _open(args) as reg:
+        if values or args.reset:
+            settings, changed = reg.change_settings(
+                args.model, values, reset=args.reset, reason=args.reason, actor=args.actor, group=Group.GATES
+            )
+        else:
+            settings, changed = reg.model_settings(args.model), None
+    _out(settings_table(settings.in_group(Group.GATES)))
+    _out(gates_in_force(settings))
+    if changed is not None:
+        _out(f"changed: {', '.join(changed)}" if changed else "nothing changed: every value was already so")
+    return 0
+
+
+def cli_review_threshold(args: argparse.Namespace) -> int:
+    from textsieve.registry.model_settings import REVIEW_THRESHOLD
+
+    key = REVIEW_THRESHOLD.key
+    with _open(args) as reg:
+        value = None if args.set is None else REVIEW_THRESHOLD.parse(args.set)
+        if value is not None:
+            settings, changed = reg.change_settings(args.model, {key: value}, reason=args.reason, actor=args.actor)
+        elif args.clear or args.set is not None:  # "--set none" clears too
+            settings, changed = reg.change_settings(args.model, reset=[key], reason=args.reason, actor=args.actor)
+        else:
+            settings, changed = reg.model_settings(args.model), None
+    v = settings.values[key]
+    if v.value is None:
+        text = f"{args.model}: no review threshold; replies carry no needs_review field"
+    else:
+        text = f"{args.model}: review threshold {v.value:g}; results whose top probability is below it need review"
+    if not v.is_default:
+        text += f" (set {when(v.set_at)} by {v.set_by}: {v.reason})"
+    _out(text)
+    if changed == []:
+        _out("nothing changed: it was already so")
+    return 0
+
+
+def settings_table(values: Sequence[SettingValue]) -> str:
+    from textsieve.registry.model_settings import SETTINGS
+
+    return table(
+        ["SETTING", "VALUE", "DEFAULT", "SOURCE", "SET (UTC)", "BY", "WHY", "ALLOWED"],
+        [
+            [
+                v.key,
+                SETTINGS[v.key].show(v.value),
+                SETTINGS[v.key].show(v.default),
+                "default" if v.is_default else "set",
+                when(v.set_at) if v.set_at else None,
+                v.set_by,
+                v.reason,
+                SETTINGS[v.key].allowed,
+            ]
+            for v in values
+        ],
+    )
+
+
+def gates_in_force(settings: ModelSettings) -> str:
+    """One line: which gates compare a candidate with live, as the settings stand."""
+    from textsieve.registry.model_settings import ECE_RISE, MACRO_F1_DROP, MCNEMAR, MCNEMAR_P, TOLERANCES
+
+    parts = ["parity", "labels"]
+    if settings.get(MCNEMAR):
+        parts.append(f"mcnemar (refuses when significantly worse: p < {settings.get(MCNEMAR_P):g})")
+    if settings.get(TOLERANCES):
+        parts.append(f"macro_f1 (drop ≤ {settings.get(MACRO_F1_DROP):g}), ece (rise ≤ {settings.get(ECE_RISE):g})")
+    return "gates on promotion to live: " + ", ".join(parts)
+
+
 # -- helpers ------------------------------------------------------------------------------
 def cli_gc(args: argparse.Namespace) -> int:
     with _open(args) as reg:
@@ -355,6 +470,11 @@ def summarise(e: Event) -> str:
         return f"{d.get('source')}: {d.get('texts')} texts"
     if e.kind == "rollback":
         return f"live {d.get('from')} → {d.get('to')}"
+    if e.kind == "settings":
+        return "; ".join(
+            f"{key} {_shown(c.get('from'))} → {_shown(c.get('to'))}{' (default)' if c.get('default') else ''}"
+            for key, c in d.get("changes", {}).items()
+        )
     gates = " ".join(f"{g['name']}:{'pass' if g['passed'] else 'FAIL'}" for g in d.get("gates", []))
     if e.kind == "refuse":
         return f"to live refused; {gates}"
@@ -368,6 +488,12 @@ def summarise(e: Event) -> str:
     return text + (f"; {gates}" if gates else "")
 
 
+def _shown(value: object) -> str:
+    if isinstance(value, bool):
+        return "on" if value else "off"
+    return "none" if value is None else f"{value:g}" if isinstance(value, float) else str(value)
+
+
 def _labels(labels: Sequence[str], limit: int = 4) -> str:
     shown = ",".join(labels[:limit])
     return shown + (f",+{len(labels) - limit}" if len(labels) > limit else "")
@@ -376,15 +502,19 @@ def _labels(labels: Sequence[str], limit: int = 4) -> str:
 __all__ = [
     "add_location_args",
     "cli_evalset_add",
+    "cli_gates",
     "cli_history",
     "cli_models",
     "cli_promote",
     "cli_publish",
+    "cli_review_threshold",
     "cli_rollback",
     "cli_show",
     "cli_versions",
     "gate_table",
+    "gates_in_force",
     "register",
+    "settings_table",
     "summarise",
     "table",
 ]

@@ -8,6 +8,14 @@
 - ``ece``: on the same set, expected calibration error (15 equal-width bins; Naeini et al.,
   2015; Guo et al., 2017, eq. 3) does not rise by more than ``ece_tolerance`` (default 0.02).
 
+- ``mcnemar`` (when the model's ``mcnemar`` setting is on): refuse a candidate that is
+  significantly worse than live on the same texts: the exact McNemar p of the texts the two
+  versions disagree on is below ``mcnemar_p`` *and* more texts went right→wrong than
+  wrong→right (McNemar, 1947; recommended for comparing two classifiers on one test set by
+  Dietterich, 1998, §3.2). Unlike a fixed tolerance it accounts for the evaluation set's size:
+  with 600 texts a 0.01 change is noise, with 50,000 it is not. With ``tolerances`` off the
+  statistical gate replaces the two fixed ones; with both on, both must pass.
+
 Without a live version there is nothing to compare with: ``labels``, ``macro_f1`` and ``ece``
 pass with detail "no live version" (the candidate's own scores are still recorded when an
 evaluation set exists). With a live version but no evaluation set the metric gates fail and
@@ -31,7 +39,17 @@ from textsieve.registry import measures
 from textsieve.registry.bundle import Bundle
 from textsieve.registry.evalsets import LabelledText, unknown_labels
 from textsieve.registry.manifest import Manifest
+from textsieve.registry.model_settings import (
+    ECE_RISE,
+    MACRO_F1_DROP,
+    MCNEMAR,
+    MCNEMAR_P,
+    TOLERANCES,
+    ModelSettings,
+    Value,
+)
 from textsieve.registry.records import GateResult
+from textsieve.registry.stats import mcnemar_exact_p
 
 # Floating-point slack so that a change of exactly the tolerance passes as documented.
 _EPS = 1e-12
@@ -40,8 +58,33 @@ ECE_BINS = 15
 
 @dataclass(frozen=True)
 class GateSettings:
-    macro_f1_tolerance: float = 0.01
-    ece_tolerance: float = 0.02
+    """The gates' settings for one model (registry-wide defaults when given to ``open_registry``)."""
+
+    macro_f1_tolerance: float = MACRO_F1_DROP.default
+    ece_tolerance: float = ECE_RISE.default
+    tolerances: bool = TOLERANCES.default
+    mcnemar: bool = MCNEMAR.default
+    mcnemar_p: float = MCNEMAR_P.default
+
+    def as_defaults(self) -> dict[str, Value]:
+        """These values as per-model setting defaults (keys of textsieve.registry.model_settings)."""
+        return {
+            MACRO_F1_DROP.key: self.macro_f1_tolerance,
+            ECE_RISE.key: self.ece_tolerance,
+            TOLERANCES.key: self.tolerances,
+            MCNEMAR.key: self.mcnemar,
+            MCNEMAR_P.key: self.mcnemar_p,
+        }
+
+    @classmethod
+    def of(cls, settings: ModelSettings) -> GateSettings:
+        return cls(
+            macro_f1_tolerance=settings.get(MACRO_F1_DROP),
+            ece_tolerance=settings.get(ECE_RISE),
+            tolerances=settings.get(TOLERANCES),
+            mcnemar=settings.get(MCNEMAR),
+            mcnemar_p=settings.get(MCNEMAR_P),
+        )
 
 
 @dataclass(frozen=True)
@@ -52,8 +95,21 @@ class Scores:
     ece: float
 
 
+@dataclass(frozen=True)
+class Graded:
+    """Scores plus, per text, whether the version got it right (what McNemar's test pairs up)."""
+
+    scores: Scores
+    correct: NDArray[np.bool_]
+
+
 def score(bundle: Bundle, examples: list[LabelledText]) -> Scores:
     """Score a bundle on labelled texts with onnxruntime, exactly as the service would."""
+    return grade(bundle, examples).scores
+
+
+def grade(bundle: Bundle, examples: list[LabelledText]) -> Graded:
+    """:func:`score`, keeping each text's right or wrong."""
     from textsieve.registry.runtime import Predictor
 
     labels = bundle.manifest.labels
@@ -63,12 +119,13 @@ def score(bundle: Bundle, examples: list[LabelledText]) -> Scores:
     out = predictor.run([predictor.encode(e.text) for e in examples])
     probs = predictor.probabilities(out.logits)
     predicted = probs.argmax(axis=1)
-    return Scores(
+    scores = Scores(
         texts=len(examples),
         accuracy=measures.accuracy(targets, predicted),
         macro_f1=present_macro_f1(targets, predicted),
         ece=measures.expected_calibration_error(probs, targets, bins=ECE_BINS),
     )
+    return Graded(scores, predicted == targets)
 
 
 def present_macro_f1(targets: NDArray[np.int64], predicted: NDArray[np.int64]) -> float:
@@ -134,6 +191,13 @@ class Side:
     load: Callable[[], Bundle]
 
 
+def report_path(model: str, version: int) -> str:
+    """Where the service serves a version's evaluation report, and the command that writes it."""
+    return (
+        f"/v1/models/{model}/versions/{version}/report (write it: textsieve evaluate {model} {version} --against live)"
+    )
+
+
 def metric_gates(
     model: str,
     candidate: Side,
@@ -142,13 +206,17 @@ def metric_gates(
     evalset_sha256: str | None,
     settings: GateSettings,
 ) -> list[GateResult]:
-    names = ("macro_f1", "ece")
+    names = (["mcnemar"] if settings.mcnemar else []) + (["macro_f1", "ece"] if settings.tolerances else [])
     base: dict[str, object] = {
         "evalset_sha256": evalset_sha256,
         "texts": None if evalset is None else len(evalset),
         "macro_f1_tolerance": settings.macro_f1_tolerance,
         "ece_tolerance": settings.ece_tolerance,
     }
+    if settings.mcnemar:
+        base["mcnemar_p_level"] = settings.mcnemar_p
+    if not names:
+        return []
     if evalset is None:
         if live is None:
             return [GateResult(name=n, passed=True, detail="no live version", figures=base) for n in names]
@@ -158,33 +226,35 @@ def metric_gates(
         )
         return [GateResult(name=n, passed=False, detail=detail, figures=base) for n in names]
 
-    cand_scores, problem = _score_side(candidate, evalset)
-    if cand_scores is None:
+    cand, problem = _score_side(candidate, evalset, paired=settings.mcnemar)
+    if cand is None:
         return [
             GateResult(name=n, passed=False, detail=f"version {candidate.version}: {problem}", figures=base)
             for n in names
         ]
+    cand_scores = cand.scores
     figures = {**base, "candidate": asdict(cand_scores)}
     if live is None:
         detail = "no live version"
-        return [
-            GateResult(
-                name="macro_f1",
-                passed=True,
-                figures=figures,
-                detail=f"{detail} (candidate macro-F1 {cand_scores.macro_f1:.4f})",
-            ),
-            GateResult(
-                name="ece", passed=True, figures=figures, detail=f"{detail} (candidate ECE {cand_scores.ece:.4f})"
-            ),
-        ]
-    live_scores, problem = _score_side(live, evalset)
-    if live_scores is None:
+        own = {
+            "mcnemar": f"{detail} (candidate accuracy {cand_scores.accuracy:.4f})",
+            "macro_f1": f"{detail} (candidate macro-F1 {cand_scores.macro_f1:.4f})",
+            "ece": f"{detail} (candidate ECE {cand_scores.ece:.4f})",
+        }
+        return [GateResult(name=n, passed=True, figures=figures, detail=own[n]) for n in names]
+    live_graded, problem = _score_side(live, evalset, paired=settings.mcnemar)
+    if live_graded is None:
         return [
             GateResult(name=n, passed=False, detail=f"live version {live.version}: {problem}", figures=figures)
             for n in names
         ]
+    live_scores = live_graded.scores
     figures = {**figures, "live": asdict(live_scores)}
+    out: list[GateResult] = []
+    if settings.mcnemar:
+        out.append(_mcnemar_gate(model, candidate.version, live.version, cand, live_graded, figures, settings))
+    if not settings.tolerances:
+        return out
 
     drop = live_scores.macro_f1 - cand_scores.macro_f1
     f1_ok = drop <= settings.macro_f1_tolerance + _EPS
@@ -208,30 +278,77 @@ def metric_gates(
             f"(change {rise:+.4f}, allowed rise {settings.ece_tolerance:.4f}) on {len(evalset)} texts"
         ),
     )
-    return [f1, ece]
+    return [*out, f1, ece]
 
 
-def _score_side(side: Side, evalset: list[LabelledText]) -> tuple[Scores | None, str]:
+def _mcnemar_gate(
+    model: str,
+    version: int,
+    live_version: int,
+    cand: Graded,
+    live: Graded,
+    figures: dict[str, object],
+    settings: GateSettings,
+) -> GateResult:
+    """Refuse only a significant step backwards: p below the level and more right→wrong than wrong→right."""
+    right_to_wrong = int(np.count_nonzero(live.correct & ~cand.correct))
+    wrong_to_right = int(np.count_nonzero(~live.correct & cand.correct))
+    p = mcnemar_exact_p(right_to_wrong, wrong_to_right)
+    n = int(cand.correct.size)
+    delta = cand.scores.accuracy - live.scores.accuracy
+    worse = p < settings.mcnemar_p and right_to_wrong > wrong_to_right
+    report = report_path(model, version)
+    figures = {
+        **figures,
+        "n": n,
+        "right_to_wrong": right_to_wrong,
+        "wrong_to_right": wrong_to_right,
+        "mcnemar_p": p,
+        "accuracy_delta": delta,
+        "report": report.split(" ", 1)[0],
+    }
+    counts = (
+        f"{right_to_wrong} texts right→wrong vs {wrong_to_right} wrong→right against live version {live_version} "
+        f"on {n} texts, exact McNemar p = {p:.3g}, accuracy {delta:+.4f}"
+    )
+    if worse:
+        detail = f"significantly worse: {counts} (p < {settings.mcnemar_p:g}); see the report at {report}"
+    elif p < settings.mcnemar_p:
+        detail = f"significantly better: {counts}"
+    else:
+        detail = f"no significant difference at p < {settings.mcnemar_p:g}: {counts}"
+    return GateResult(name="mcnemar", passed=not worse, detail=detail, figures=figures)
+
+
+def _score_side(side: Side, evalset: list[LabelledText], *, paired: bool) -> tuple[Graded | None, str]:
     unknown = unknown_labels([e.label for e in evalset], side.labels)
     if unknown:
         shown = ", ".join(repr(x) for x in unknown[:10])
         return None, f"the evaluation set has labels this version does not know: {shown}"
     try:
-        return score(side.load(), evalset), ""
+        bundle = side.load()
+        # Only the paired test needs each text's outcome; score() alone is what the tolerances use.
+        return (grade(bundle, evalset) if paired else Graded(score(bundle, evalset), _NO_ANSWERS)), ""
     except TextsieveError as exc:
         return None, f"cannot be scored: {exc.message}"
     except (RuntimeError, ValueError, OSError) as exc:  # onnxruntime's own errors subclass RuntimeError
         return None, f"cannot be scored: {str(exc).splitlines()[0][:200] if str(exc) else type(exc).__name__}"
 
 
+_NO_ANSWERS: NDArray[np.bool_] = np.zeros(0, dtype=np.bool_)
+
+
 __all__ = [
     "ECE_BINS",
     "GateSettings",
+    "Graded",
     "Scores",
     "Side",
     "labels_gate",
     "metric_gates",
     "parity_gate",
     "present_macro_f1",
+    "grade",
+    "report_path",
     "score",
 ]

@@ -92,6 +92,23 @@ MIGRATIONS: tuple[Migration, ...] = (
         CREATE INDEX events_model ON events (model, id)
     """,
     ),
+    Migration(
+        "0005_model_settings",
+        # One row per setting a person chose for a model; a key without a row has its default.
+        # event_id points at the audit event that set the value (who, why, the old value).
+        """
+        CREATE TABLE model_settings (
+            model TEXT NOT NULL REFERENCES models(name),
+            key TEXT NOT NULL,
+            value TEXT NOT NULL,
+            set_by TEXT NOT NULL,
+            set_at TEXT NOT NULL,
+            reason TEXT NOT NULL,
+            event_id BIGINT NOT NULL,
+            PRIMARY KEY (model, key)
+        )
+    """,
+    ),
 )
 
 _TABLE = "CREATE TABLE IF NOT EXISTS schema_migrations (name TEXT PRIMARY KEY, applied_at TEXT NOT NULL)"

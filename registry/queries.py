@@ -207,6 +207,25 @@ class Queries:
         )
         return [Event.from_row(r) for r in rows]
 
+    # -- per-model settings ---------------------------------------------------------------
+    def setting_rows(self, model: str) -> list[dict[str, Any]]:
+        return self.tx.all(
+            "SELECT key, value, set_by, set_at, reason, event_id FROM model_settings WHERE model = ? ORDER BY key",
+            (model,),
+        )
+
+    def put_setting(self, *, model: str, key: str, value: Any, by: str, at: str, reason: str, event_id: int) -> None:
+        self.tx.run(
+            "INSERT INTO model_settings (model, key, value, set_by, set_at, reason, event_id) "
+            "VALUES (?, ?, ?, ?, ?, ?, ?) ON CONFLICT (model, key) DO UPDATE SET value = excluded.value, "
+            "set_by = excluded.set_by, set_at = excluded.set_at, reason = excluded.reason, "
+            "event_id = excluded.event_id",
+            (model, key, dumps(value), by, at, reason, event_id),
+        )
+
+    def drop_setting(self, model: str, key: str) -> None:
+        self.tx.run("DELETE FROM model_settings WHERE model = ? AND key = ?", (model, key))
+
     def referenced_blobs(self) -> set[str]:
         """Every sha256 a version (its files and manifest) or an evaluation set refers to."""
         rows = self.tx.all(

@@ -20,7 +20,7 @@ class State(StrEnum):
 
 
 STATES: tuple[State, ...] = tuple(State)  # in lifecycle order
-EventKind = Literal["publish", "evalset", "promote", "refuse", "rollback"]
+EventKind = Literal["publish", "evalset", "promote", "refuse", "rollback", "settings"]
 
 
 class _Record(BaseModel):

@@ -31,7 +31,7 @@ from typing import Any
 from textsieve.errors import DeadlinePassedError, UnavailableError
 from textsieve.service.inference.admission import Admission
 from textsieve.service.inference.packing import run_packed
-from textsieve.service.inference.spans import explain
+from textsieve.service.inference.spans import explain, mark_for_review
 from textsieve.service.inference.workers import WorkerProcesses
 from textsieve.service.modelset.loader import ServedModel
 from textsieve.service.telemetry import ServiceMetrics
@@ -214,13 +214,16 @@ class Batcher:
         started = time.perf_counter()
         procs = self.pool.procs
         key = self.served.worker_key
+        review = self.served.review_threshold
         if procs is not None and key is not None:
-            results, tokens, unknown, truncated = procs.run(self.pool.index(), key, texts, ks)
+            results, tokens, unknown, truncated = procs.run(self.pool.index(), key, texts, ks, review)
             return _Done(results, started, time.perf_counter() - started, tokens, unknown, truncated)
         p = self.served.predictors[self.pool.index()]
         encoded = [p.encode(t) for t in texts]
         out = run_packed(p, encoded)
         results = explain(p, encoded, out, ks)
+        if review is not None:
+            mark_for_review(results, review)
         done = _Done(results, started, time.perf_counter() - started)
         for e in encoded:
             done.tokens += len(e.ids)

@@ -41,6 +41,13 @@ def explain(p: Predictor, encoded: list[Encoded], out: Outputs, ks: list[int]) -
     return results
 
 
+def mark_for_review(results: list[dict[str, Any]], threshold: float) -> None:
+    """Selective prediction (Geifman & El-Yaniv, 2017): a result whose top probability is below
+    the model's review threshold is marked for a person to check rather than trusted as it is."""
+    for r in results:
+        r["needs_review"] = max(r["probabilities"].values()) < threshold
+
+
 def _spans(
     p: Predictor, encoded: list[Encoded], out: Outputs, best: np.ndarray, ks: np.ndarray
 ) -> list[list[dict[str, Any]]]:

@@ -57,6 +57,7 @@ class Run:
     key: Key
     texts: list[str]
     ks: list[int]
+    review: float | None = None  # the model's review threshold: results below it get needs_review
 
 
 @dataclass(frozen=True, slots=True)
@@ -105,7 +106,7 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
     from textsieve.registry.runtime import Predictor
     from textsieve.service.inference.memory import release_freed_memory
     from textsieve.service.inference.packing import run_packed
-    from textsieve.service.inference.spans import explain
+    from textsieve.service.inference.spans import explain, mark_for_review
     from textsieve.service.modelset.loader import warm_and_check
 
     predictors: dict[Key, Predictor] = {}
@@ -122,6 +123,8 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
                 encoded = [p.encode(t) for t in msg.texts]
                 out = run_packed(p, encoded)
                 results = explain(p, encoded, out, msg.ks)
+                if msg.review is not None:
+                    mark_for_review(results, msg.review)
                 tokens = unknown = truncated = 0
                 for e in encoded:
                     tokens += len(e.ids)
@@ -363,12 +366,14 @@ class WorkerProcesses:
         except UnavailableError:
             pass  # a worker that died has nothing left to free
 
-    def run(self, index: int, key: Key, texts: list[str], ks: list[int]) -> tuple[list[Any], int, int, int]:
+    def run(
+        self, index: int, key: Key, texts: list[str], ks: list[int], review: float | None = None
+    ) -> tuple[list[Any], int, int, int]:
         """Reply per text as an ``orjson.Fragment`` (JSON made by the worker), and batch counts."""
         w = self.workers[index % len(self.workers)]
         if key not in w.loaded:
             raise UnavailableError(f"model {key[0]} version {key[1]} is not loaded in inference worker {index}")
-        replies, tokens, unknown, truncated = w.call(Run(key, texts, ks), retry=True)
+        replies, tokens, unknown, truncated = w.call(Run(key, texts, ks, review), retry=True)
         return [orjson.Fragment(r) for r in replies], tokens, unknown, truncated
 
     def held(self) -> list[list[Key]]:

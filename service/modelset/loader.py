@@ -47,6 +47,9 @@ class ServedModel:
     retiring: bool = False
     closed: bool = field(default=False)
     worker_key: tuple[str, int, int] | None = None  # set when loaded in the worker processes
+    # The model's review threshold (a registry setting of the model, not of this version): read
+    # by the batcher for each batch, so a change applies from the next batch on.
+    review_threshold: float | None = None
 
     @property
     def key(self) -> tuple[str, int]:

@@ -15,6 +15,10 @@ clears on the next successful poll.
 
 Pinned versions. A request may pin any version except a retired one; pinned versions are
 dropped from memory when their model changes, so the next pinned request checks the state again.
+
+Review thresholds. A model's ``review_threshold`` setting (per model, not per version) is read
+when the model is first served and again whenever a ``settings`` event for it is polled; a
+settings change alone swaps nothing and keeps pinned versions loaded.
 """
 
 from __future__ import annotations
@@ -31,6 +35,7 @@ from typing import NoReturn
 
 from textsieve.errors import InputError, NotFoundError, StateError, TextsieveError, UnavailableError
 from textsieve.registry import State
+from textsieve.registry.model_settings import REVIEW_THRESHOLD
 from textsieve.service.inference.batcher import Batcher, InferencePool
 from textsieve.service.inference.memory import release_freed_memory
 from textsieve.service.modelset.loader import ServedModel, load_served
@@ -79,6 +84,10 @@ class ModelSet:
         self._retiring: set[ServedModel] = set()
         self._discovered = False
         self._closing: set[asyncio.Task[None]] = set()
+        # model → its review threshold; a model without one has no entry (replies then carry no
+        # needs_review field).
+        self.review_thresholds: dict[str, float] = {}
+        self._settings_read: set[str] = set()
 
     # -- lifecycle ------------------------------------------------------------------------
     async def start(self) -> None:
@@ -104,6 +113,7 @@ class ModelSet:
             for name in names:
                 self.status.setdefault(name, ModelStatus())
         for name in names:
+            await self.read_settings(name)
             await self.refresh(name, why="startup")
         self._discovered = True
         self.startup_error = None
@@ -199,6 +209,7 @@ class ModelSet:
             manifest_sha256=manifest_sha256,
             procs=self.pool.procs,
         )
+        served.review_threshold = self.review_thresholds.get(name)
         served.batcher = Batcher(
             served,
             self.pool,
@@ -292,6 +303,24 @@ class ModelSet:
             await asyncio.to_thread(self.pool.procs.drop, served.worker_key)
         await asyncio.to_thread(release_freed_memory)
 
+    async def read_settings(self, name: str) -> None:
+        """Learn ``name``'s review threshold from the registry (a model it does not know has none)."""
+        try:
+            settings = await self.store.model_settings(name)
+        except NotFoundError:
+            self.review_thresholds.pop(name, None)
+            return
+        self._settings_read.add(name)
+        threshold = settings.get(REVIEW_THRESHOLD)
+        if threshold is None:
+            self.review_thresholds.pop(name, None)
+        else:
+            self.review_thresholds[name] = threshold
+        # Every loaded version of the model: live and pinned alike answer for the same model.
+        for served in [self.live.get(name), *(s for key, s in self.pinned.items() if key[0] == name)]:
+            if served is not None:
+                served.review_threshold = threshold
+
     # -- requests -----------------------------------------------------------------------------
     async def acquire(self, name: str | None, version: int | None) -> ServedModel:
         """The version a request will use; pair with :meth:`release`."""
@@ -365,6 +394,8 @@ class ModelSet:
             live = self.live.get(name)
             if live is not None and live.version == version:
                 return live
+            if name not in self._settings_read:
+                await self.read_settings(name)
             served = await self._load(name, version, info.manifest_sha256)
             self.pinned[key] = served
             while len(self.pinned) > self.settings.pinned_versions:
@@ -406,9 +437,14 @@ class ModelSet:
             return
         assert self._cursor is not None  # read by _discover, which has run
         self._cursor, events = await self.store.changes_since(self._cursor)
-        changed = {e.model for e in events}
+        # A settings change swaps nothing: it only refreshes what the service knows of the settings.
+        changed = {e.model for e in events if e.kind != "settings"}
+        resettled = {e.model for e in events if e.kind == "settings"}
         if self.settings.models:
             changed &= set(self.settings.models)
+            resettled &= set(self.settings.models)
+        for name in sorted(resettled & (self._settings_read | set(self.status))):
+            await self.read_settings(name)
         now = time.monotonic()
         retry = {
             n

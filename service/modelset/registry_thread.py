@@ -15,7 +15,16 @@ from concurrent.futures import ThreadPoolExecutor
 from typing import ParamSpec, TypeVar
 
 from textsieve.errors import UnavailableError
-from textsieve.registry import Bundle, Event, ModelInfo, Promotion, Registry, VersionInfo, open_registry
+from textsieve.registry import (
+    Bundle,
+    Event,
+    ModelInfo,
+    ModelSettings,
+    Promotion,
+    Registry,
+    VersionInfo,
+    open_registry,
+)
 from textsieve.service.settings import public_location
 
 P = ParamSpec("P")
@@ -75,6 +84,9 @@ class RegistryThread:
 
     async def changes_since(self, cursor: int) -> tuple[int, list[Event]]:
         return await self._run(self.registry.changes_since, cursor)
+
+    async def model_settings(self, model: str) -> ModelSettings:
+        return await self._run(self.registry.model_settings, model)
 
     async def fetch(self, model: str, version: int | None = None) -> Bundle:
         return await self._run(self.registry.fetch, model, version)

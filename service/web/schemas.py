@@ -100,6 +100,13 @@ class SpanOut(BaseModel):
     width: int = Field(description="tokens covered")
 
 
+def _boolean_when_present(schema: dict[str, Any]) -> None:
+    # The field is left out rather than sent as null, so the schema says boolean, not boolean-or-null.
+    schema.pop("anyOf", None)
+    schema.pop("default", None)
+    schema["type"] = "boolean"
+
+
 class ResultOut(BaseModel):
     label: str
     probabilities: dict[str, float] = Field(description="softmax(logits / T), temperature-calibrated")
@@ -107,6 +114,12 @@ class ResultOut(BaseModel):
     tokens: int = Field(description="tokens in the text before truncation")
     truncated: bool
     unknown: int = Field(description="tokens outside the vocabulary, among those kept")
+    needs_review: bool | None = Field(
+        None,
+        description="present only when the model has a review threshold (textsieve review-threshold): true "
+        "when the top probability is below it, so a person should check this result",
+        json_schema_extra=_boolean_when_present,
+    )
 
 
 class PredictResponse(BaseModel):

@@ -197,3 +197,116 @@ def test_gc_deletes_old_unreferenced_blobs_and_says_so(tmp_path: Path, tiny_bund
         assert not reg.blobs.has(orphan)
         reg.fetch("m", 1)
     assert main([*args, "--older-than", "-1"]) == 2
+
+
+def test_gates_shows_and_changes_settings_with_a_reason(
+    capsys: pytest.CaptureFixture[str], spec: RegistrySpec, tiny_bundles: dict[str, Path]
+) -> None:
+    r = spec.cli_args()
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)
+    code, out, _ = run(capsys, "gates", "m", *r)
+    lines = out.splitlines()
+    assert code == 0 and lines[0].split() == [
+        "SETTING",
+        "VALUE",
+        "DEFAULT",
+        "SOURCE",
+        "SET",
+        "(UTC)",
+        "BY",
+        "WHY",
+        "ALLOWED",
+    ]
+    assert_aligned("\n".join(lines[:-1]))
+    assert lines[1].split()[:4] == ["macro_f1_drop", "0.01", "0.01", "default"]
+    assert lines[-1] == "gates on promotion to live: parity, labels, macro_f1 (drop ≤ 0.01), ece (rise ≤ 0.02)"
+
+    code, out, _ = run(
+        capsys,
+        "gates",
+        "m",
+        "--set",
+        "mcnemar=on",
+        "--set",
+        "mcnemar_p=0.01",
+        "--reason",
+        "600 texts",
+        "--actor",
+        "lead",
+        *r,
+    )
+    assert code == 0
+    rows = {line.split()[0]: line for line in out.splitlines()[1:6]}
+    assert rows["mcnemar"].split()[:4] == ["mcnemar", "on", "off", "set"]
+    assert "lead" in rows["mcnemar_p"] and "600 texts" in rows["mcnemar_p"]
+    assert "mcnemar (refuses when significantly worse: p < 0.01)" in out
+    assert out.splitlines()[-1] == "changed: mcnemar, mcnemar_p"
+
+    code, out, _ = run(capsys, "gates", "m", "--reset", "mcnemar_p", "--reason", "back", *r)
+    assert code == 0 and out.splitlines()[-1] == "changed: mcnemar_p"
+    code, out, _ = run(capsys, "history", "m", *r)
+    assert "mcnemar off → on; mcnemar_p 0.05 → 0.01" in out and "mcnemar_p 0.01 → 0.05 (default)" in out
+
+
+def test_review_threshold_verb(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    r = ["--registry", str(tmp_path / "reg")]
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)
+    assert (
+        run(capsys, "review-threshold", "m", *r)[1] == "m: no review threshold; replies carry no needs_review field\n"
+    )
+    code, out, _ = run(
+        capsys, "review-threshold", "m", "--set", "0.82", "--reason", "calibrated", "--actor", "lead", *r
+    )
+    assert code == 0 and out.startswith(
+        "m: review threshold 0.82; results whose top probability is below it need review"
+    )
+    assert "by lead: calibrated" in out
+    code, out, _ = run(capsys, "review-threshold", "m", "--clear", "--reason", "trial over", *r)
+    assert code == 0 and "no review threshold" in out
+    code, out, _ = run(capsys, "review-threshold", "m", "--clear", "--reason", "again", *r)
+    assert out.splitlines()[-1] == "nothing changed: it was already so"
+
+
+@pytest.mark.parametrize(
+    ("argv", "expected_msg"),
+    [
+        pytest.param(
+            ["gates", "m", "--set", "bogus=1", "--reason", "x"],
+            "unknown setting 'bogus'; allowed: macro_f1_drop (a number from 0 to 1); ece_rise",
+            id="unknown-key",
+        ),
+        pytest.param(
+            ["gates", "m", "--set", "mcnemar_p=0.7", "--reason", "x"],
+            "bad value '0.7' for mcnemar_p: a number above 0 and at most 0.5",
+            id="out-of-range",
+        ),
+        pytest.param(
+            ["gates", "m", "--set", "mcnemar=yes please", "--reason", "x"], "for mcnemar: on or off", id="word"
+        ),
+        pytest.param(["gates", "m", "--set", "mcnemar"], "write KEY=VALUE", id="no-equals"),
+        pytest.param(["gates", "m", "--set", "mcnemar=on"], "a reason is required", id="no-reason"),
+        pytest.param(
+            ["gates", "m", "--set", "review_threshold=0.8", "--reason", "x"], "unknown setting", id="wrong-verb"
+        ),
+        pytest.param(["gates", "m", "--set", "tolerances=off", "--reason", "x"], "needs mcnemar=on", id="no-gate-left"),
+        pytest.param(["gates", "ghost"], "no model 'ghost'", id="unknown-model"),
+        pytest.param(["review-threshold", "m", "--set", "1.2", "--reason", "x"], "at most 1, or none", id="t-range"),
+        pytest.param(["review-threshold", "m", "--set", "high", "--reason", "x"], "bad value 'high'", id="t-word"),
+        pytest.param(["review-threshold", "m", "--set", "0.9"], "a reason is required", id="t-no-reason"),
+    ],
+)
+def test_settings_verbs_bad_input_exits_2_with_one_line(
+    argv: list[str],
+    expected_msg: str,
+    capsys: pytest.CaptureFixture[str],
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
+) -> None:
+    r = ["--registry", str(tmp_path / "reg")]
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)
+    code, out, err = run(capsys, *argv, *r)
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1 and err.startswith("textsieve: error: "), err
+    assert expected_msg in err, err

@@ -206,12 +206,12 @@ def test_gates_are_judged_again_when_live_changes_meanwhile(
         original = Registry._gates
         seen: list[int | None] = []
 
-        def racing(self: Registry, model, target, live, evalset):  # type: ignore[no-untyped-def]
+        def racing(self: Registry, model, target, live, evalset, settings):  # type: ignore[no-untyped-def]
             if self is reg:
                 seen.append(None if live is None else live.version)
                 if len(seen) == 1:  # another replica promotes version 3 while our gates run
                     other.promote("m", 3, "live", reason="meanwhile", force=True)
-            return original(self, model, target, live, evalset)
+            return original(self, model, target, live, evalset, settings)
 
         monkeypatch.setattr(Registry, "_gates", racing)
         result = reg.promote("m", 2, "live", reason="mine", force=True)
@@ -240,15 +240,152 @@ def test_under_constant_contention_the_last_round_is_judged_under_the_lock(
         original = Registry._gates
         seen: list[tuple[int | None, bool]] = []
 
-        def racing(self: Registry, model, target, live, evalset):  # type: ignore[no-untyped-def]
+        def racing(self: Registry, model, target, live, evalset, settings):  # type: ignore[no-untyped-def]
             if self is reg:
                 in_transaction = bool(reg.backend._depth)  # type: ignore[attr-defined]
                 seen.append((None if live is None else live.version, in_transaction))
                 if len(seen) <= 3:  # someone else wins the race every optimistic round
                     other.promote("m", 2 + len(seen), "live", reason="meanwhile", force=True)
-            return original(self, model, target, live, evalset)
+            return original(self, model, target, live, evalset, settings)
 
         monkeypatch.setattr(Registry, "_gates", racing)
         result = reg.promote("m", 2, "live", reason="mine", force=True)
     assert seen == [(1, False), (3, False), (4, False), (5, True)]
     assert result.retired == 5 and result.version.state == "live"
+
+
+# -- the statistical gate (McNemar) --------------------------------------------------------
+def _graded_sides(
+    live_correct: list[bool], cand_correct: list[bool], monkeypatch: pytest.MonkeyPatch
+) -> tuple[Side, Side]:
+    """(candidate, live) sides whose grade() hands back the given right/wrong per text."""
+
+    def graded(correct: list[bool]) -> gates_module.Graded:
+        acc = sum(correct) / len(correct)
+        return gates_module.Graded(Scores(len(correct), acc, acc, 0.05), np.array(correct, dtype=bool))
+
+    monkeypatch.setattr(gates_module, "grade", lambda loaded, examples: loaded)
+    live, cand = graded(live_correct), graded(cand_correct)
+    return Side(2, _labels(), lambda: cand), Side(1, _labels(), lambda: live)  # type: ignore[arg-type,return-value]
+
+
+def _pairs(both: int, right_to_wrong: int, wrong_to_right: int, neither: int) -> tuple[list[bool], list[bool]]:
+    """(live, candidate) right/wrong per text with the given 2×2 counts."""
+    live = [True] * both + [True] * right_to_wrong + [False] * wrong_to_right + [False] * neither
+    cand = [True] * both + [False] * right_to_wrong + [True] * wrong_to_right + [False] * neither
+    return live, cand
+
+
+MCNEMAR_ON = GateSettings(mcnemar=True)
+
+
+@pytest.mark.parametrize(
+    ("b", "c"),
+    [(1, 7), (7, 1), (10, 10), (30, 12), (12, 30), (0, 6), (6, 0), (104, 52), (0, 0)],
+)
+def test_mcnemar_gate_p_equals_scipy_binomtest(b: int, c: int, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The exact McNemar p is the two-sided binomial p of b in b + c at 1/2 (McNemar, 1947;
+    Dietterich, 1998, §3.2); reference: scipy.stats.binomtest(b, b + c, 0.5).pvalue."""
+    import scipy.stats
+
+    live, cand = _pairs(50, b, c, 9)
+    candidate, live_side = _graded_sides(live, cand, monkeypatch)
+    gate = metric_gates("m", candidate, live_side, [LabelledText("t", "l0")] * len(live), "0" * 64, MCNEMAR_ON)[0]
+    assert gate.name == "mcnemar"
+    f = gate.figures
+    assert (f["n"], f["right_to_wrong"], f["wrong_to_right"]) == (len(live), b, c)
+    ref = 1.0 if b + c == 0 else scipy.stats.binomtest(b, b + c, 0.5).pvalue
+    assert f["mcnemar_p"] == pytest.approx(ref, rel=1e-9)
+    assert f["accuracy_delta"] == pytest.approx((c - b) / len(live))
+    # refused exactly when significantly worse: p below the level and more right→wrong
+    assert gate.passed is not (ref < 0.05 and b > c)
+
+
+def test_mcnemar_published_worked_example(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Fagerland, Lydersen & Laake (2013), "The McNemar test for binary matched-pairs data",
+    BMC Medical Research Methodology 13:91, example of Bentur et al. (2009): 21 patients,
+    airway hyper-responsiveness before/after transplantation, discordant pairs 1 and 7; exact
+    conditional p = 0.070 (values from memory; 2 · 9/256 = 0.0703 by hand)."""
+    live, cand = _pairs(1, 1, 7, 12)
+    candidate, live_side = _graded_sides(live, cand, monkeypatch)
+    gate = metric_gates("m", candidate, live_side, [LabelledText("t", "l0")] * 21, "0" * 64, MCNEMAR_ON)[0]
+    assert gate.figures["n"] == 21
+    assert round(gate.figures["mcnemar_p"], 3) == 0.070
+    assert gate.passed  # 0.070 is not below 0.05, and the candidate gained more than it lost
+    strict = GateSettings(mcnemar=True, mcnemar_p=0.1)
+    reversed_live, reversed_cand = _pairs(1, 7, 1, 12)  # the same table the other way: worse at the 0.1 level
+    candidate, live_side = _graded_sides(reversed_live, reversed_cand, monkeypatch)
+    gate = metric_gates("m", candidate, live_side, [LabelledText("t", "l0")] * 21, "0" * 64, strict)[0]
+    assert not gate.passed and "p = 0.0703" in gate.detail
+
+
+def test_mcnemar_refusal_names_figures_report_and_command(monkeypatch: pytest.MonkeyPatch) -> None:
+    live, cand = _pairs(100, 30, 10, 20)
+    candidate, live_side = _graded_sides(live, cand, monkeypatch)
+    gate = metric_gates("model-x", candidate, live_side, [LabelledText("t", "l0")] * 160, "0" * 64, MCNEMAR_ON)[0]
+    assert not gate.passed
+    for part in (
+        "30 texts right→wrong vs 10 wrong→right",
+        "live version 1",
+        "on 160 texts",
+        "p = 0.00222",  # scipy.stats.binomtest(30, 40).pvalue = 0.002221...
+        "accuracy -0.1250",
+        "/v1/models/model-x/versions/2/report",
+        "textsieve evaluate model-x 2 --against live",
+    ):
+        assert part in gate.detail
+    assert gate.figures["report"] == "/v1/models/model-x/versions/2/report"
+
+
+def test_tolerances_off_leaves_only_the_statistical_gate(monkeypatch: pytest.MonkeyPatch) -> None:
+    live, cand = _pairs(100, 3, 1, 20)  # macro-F1 and accuracy drop 0.0161: beyond the 0.01 tolerance
+    settings = GateSettings(mcnemar=True, tolerances=False)
+    candidate, live_side = _graded_sides(live, cand, monkeypatch)
+    result = metric_gates("m", candidate, live_side, [LabelledText("t", "l0")] * 124, "0" * 64, settings)
+    assert [(g.name, g.passed) for g in result] == [("mcnemar", True)]
+    both = metric_gates("m", candidate, live_side, [LabelledText("t", "l0")] * 124, "0" * 64, MCNEMAR_ON)
+    assert [(g.name, g.passed) for g in both] == [("mcnemar", True), ("macro_f1", False), ("ece", True)]
+
+
+def test_mcnemar_without_live_or_evalset() -> None:
+    side = Side(1, _labels(), lambda: None)  # type: ignore[arg-type,return-value]
+    alone = metric_gates("m", side, None, None, None, MCNEMAR_ON)
+    assert [(g.name, g.passed, g.detail) for g in alone][0] == ("mcnemar", True, "no live version")
+    blind = metric_gates("m", side, Side(0, _labels(), lambda: None), None, None, MCNEMAR_ON)  # type: ignore[arg-type,return-value]
+    assert [g.passed for g in blind] == [False, False, False]
+
+
+def test_per_model_settings_drive_promotion(
+    registry: Registry, tiny_bundles: dict[str, Path], tiny_data: Path, tmp_path: Path
+) -> None:
+    """On real bundles: the statistical gate refuses a candidate that is right on none of the texts
+    where live is right and it differs, and the refusal names the figures; a setting changed in
+    the registry is what the next promotion uses."""
+    import scipy.stats
+
+    a, b = tiny_bundles["a"], tiny_bundles["b"]
+    evalset, chosen = _evalset_favouring(a, b, tiny_data, tmp_path / "eval.jsonl")
+    registry.publish(a, "m", evalset=evalset)
+    registry.publish(b, "m")
+    registry.promote("m", 1, "live", reason="baseline")
+    registry.change_settings("m", {"mcnemar": True, "tolerances": False}, reason="statistical gate", actor="lead")
+    with pytest.raises(GateRefusedError) as info:
+        registry.promote("m", 2, "live", reason="seed 2")
+    message = info.value.message
+    assert "gate mcnemar refused: significantly worse" in message
+    gates = {g["name"]: g for g in info.value.context["gates"]}
+    assert set(gates) == {"parity", "labels", "mcnemar"}
+    f = gates["mcnemar"]["figures"]
+    rows = read_jsonl(evalset)
+    b_pred, _ = _predicted(b, [r["text"] for r in rows])
+    # live (a) labelled the set itself, so it is right on every text; b is wrong where it differs
+    differ = sum(p != r["label"] for p, r in zip(b_pred, rows, strict=True))
+    assert (f["n"], f["right_to_wrong"], f["wrong_to_right"]) == (len(chosen), differ, 0)
+    assert f["mcnemar_p"] == pytest.approx(scipy.stats.binomtest(differ, differ, 0.5).pvalue, rel=1e-9)
+    assert "/v1/models/m/versions/2/report" in message and f"{differ} texts right→wrong" in message
+
+    # With the level set below this p the same candidate passes: promotion reads the settings
+    # the registry holds at that moment.
+    registry.change_settings("m", {"mcnemar_p": f["mcnemar_p"] / 2}, reason="stricter evidence", actor="lead")
+    result = registry.promote("m", 2, "live", reason="seed 2 again")
+    assert [g.name for g in result.gates] == ["parity", "labels", "mcnemar"] and not result.forced
