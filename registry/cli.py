@@ -372,7 +372,7 @@ def cli_verdicts(args: argparse.Namespace) -> int:
             missing = f"; no verdict {', '.join(map(str, gone.missing))} of {args.model!r}" if gone.missing else ""
             _out(f"deleted {len(gone.deleted)} verdicts of {args.model!r} (audit event {gone.event_id}){missing}")
             return 0
-        verdicts = reg.verdicts.list(args.model, version=args.version)
+        verdicts = reg.verdicts.of(args.model, version=args.version)
         agreement = reg.verdicts.agreement(args.model)
     if args.export is not None:
         if not verdicts:

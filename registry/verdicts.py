@@ -145,7 +145,7 @@ class Verdicts:
         assert row is not None
         return VerdictInfo.from_row(row)
 
-    def list(self, model: str, *, version: int | None = None) -> list[VerdictInfo]:
+    def of(self, model: str, *, version: int | None = None) -> list[VerdictInfo]:
         """Every verdict on the model (or one version), oldest first."""
         model = validate_model_name(model)
         reg = self._registry

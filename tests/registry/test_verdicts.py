@@ -55,7 +55,7 @@ def test_verdicts_are_stored_shared_and_summarised_with_a_wilson_interval(
         _record(other, 2, TEXTS[4], "account", "account", who="Søren")
     # ... and a restart: everything is read back from storage by a fresh handle.
     with spec.open() as fresh:
-        rows = fresh.verdicts.list("helpdesk")
+        rows = fresh.verdicts.of("helpdesk")
         agreement = fresh.verdicts.agreement("helpdesk")
     assert [r.version for r in rows] == [1] * 9 + [2]
     assert rows[-1].text == TEXTS[4] and rows[-1].reviewer == "Søren" and rows[-1].agrees
@@ -65,7 +65,7 @@ def test_verdicts_are_stored_shared_and_summarised_with_a_wilson_interval(
         # Reference: scipy.stats.binomtest(...).proportion_ci(method="wilson") (Wilson, 1927).
         ref = sps.binomtest(a.agreed, a.verdicts).proportion_ci(confidence_level=0.95, method="wilson")
         assert a.low == pytest.approx(ref.low, abs=1e-9) and a.high == pytest.approx(ref.high, abs=1e-9)
-    assert [r.version for r in registry.verdicts.list("helpdesk", version=2)] == [2]
+    assert [r.version for r in registry.verdicts.of("helpdesk", version=2)] == [2]
 
 
 @pytest.mark.parametrize(
@@ -97,7 +97,7 @@ def test_bad_verdicts_are_refused_and_nothing_is_stored(
         registry.verdicts.record("helpdesk", 1, **{**fields, **change})  # type: ignore[arg-type]
     if "label" in expected_msg:
         assert "allowed: account, billing, praise, repair" in caught.value.message
-    assert registry.verdicts.list("helpdesk") == []
+    assert registry.verdicts.of("helpdesk") == []
 
 
 def test_verdicts_on_unknown_models_or_versions_are_not_found(
@@ -107,7 +107,7 @@ def test_verdicts_on_unknown_models_or_versions_are_not_found(
     with pytest.raises(NotFoundError, match="has no version 7"):
         _record(registry, 7, TEXTS[0], "billing", "billing")
     with pytest.raises(NotFoundError, match="no model 'other'"):
-        registry.verdicts.list("other")
+        registry.verdicts.of("other")
 
 
 def test_deletion_by_date_and_by_id_is_audited_without_the_texts(
@@ -122,7 +122,7 @@ def test_deletion_by_date_and_by_id_is_audited_without_the_texts(
     assert gone.deleted == ids[:2] and gone.missing == []
     gone = registry.verdicts.delete("helpdesk", ids=[ids[3], 999_999], actor="dpo", reason="request #41")
     assert gone.deleted == [ids[3]] and gone.missing == [999_999]
-    assert [v.id for v in registry.verdicts.list("helpdesk")] == [ids[2], ids[4]]
+    assert [v.id for v in registry.verdicts.of("helpdesk")] == [ids[2], ids[4]]
     events = [e for e in registry.history("helpdesk") if e.kind == "verdicts-delete"]
     assert [(e.actor, e.reason, e.details["ids"]) for e in events] == [
         ("dpo", "retention: 12 months", ids[:2]),
@@ -157,7 +157,7 @@ def test_export_is_labelled_data_that_the_reader_and_evalset_add_accept(
     for text, label in zip(TEXTS, verdicts, strict=True):
         _record(registry, 1, text, "billing", label)
     out = tmp_path / "verdicts.jsonl"
-    assert export_jsonl(registry.verdicts.list("helpdesk"), out) == len(TEXTS)
+    assert export_jsonl(registry.verdicts.of("helpdesk"), out) == len(TEXTS)
     # The project's one reader of labelled files reads the export as is, U+2028 included.
     examples = load_examples(out)
     assert [(e.text, e.label) for e in examples] == list(zip(TEXTS, verdicts, strict=True))

@@ -59,7 +59,7 @@ async def review_client(review_registry: Path) -> AsyncIterator[httpx.AsyncClien
 
 def _stored(registry: Path) -> list[tuple[str, str, str]]:
     with open_registry(registry) as reg:
-        return [(v.text, v.verdict_label, v.reviewer) for v in reg.verdicts.list(MODEL)]
+        return [(v.text, v.verdict_label, v.reviewer) for v in reg.verdicts.of(MODEL)]
 
 
 async def test_a_reviewer_records_a_correction_and_it_is_in_the_registry(
