@@ -43,9 +43,6 @@ if TYPE_CHECKING:
     from textsieve.registry.api import Registry
 
 _COLUMNS = "id, model, version, text, predicted_label, predicted_probability, verdict_label, reviewer, at"
-# Fields of an exported row besides text and label: where the label came from. The reviewer's
-# name stays in the registry: a training file travels further than the people in it need to.
-EXPORT_FIELDS = ("text", "label", "verdict_id", "model", "version", "predicted_label", "predicted_probability", "at")
 MAX_DELETE_IDS = 10_000
 
 
@@ -261,7 +258,11 @@ def _ids_of(tx: Tx, model: str, wanted: list[int]) -> list[int]:
 
 
 def export_jsonl(verdicts: Sequence[VerdictInfo], path: Path) -> int:
-    """Write verdicts as labelled JSONL (``text`` and ``label``: the reviewer's label), atomically."""
+    """Write verdicts as labelled JSONL (``text`` and ``label``: the reviewer's label), atomically.
+
+    Besides text and label, each row says where the label came from. The reviewer's name stays in
+    the registry: a training file travels further than the people named in it need to.
+    """
     path = Path(path)
     if path.suffix.lower() not in JSON_SUFFIXES or path.suffix.lower() == ".json":
         raise InputError(f"{path}: export writes JSONL; name the file .jsonl or .ndjson")
@@ -287,4 +288,4 @@ def export_jsonl(verdicts: Sequence[VerdictInfo], path: Path) -> int:
     return len(lines)
 
 
-__all__ = ["EXPORT_FIELDS", "MAX_DELETE_IDS", "Deletion", "Verdicts", "check_text", "export_jsonl", "utc_cutoff"]
+__all__ = ["MAX_DELETE_IDS", "Deletion", "Verdicts", "check_text", "export_jsonl", "utc_cutoff"]
