@@ -86,7 +86,7 @@ _PLACES = (
     "Riverside",
     "Market Square",
     "Hauptstraße",
-    "Café Lumière",
+    "Café Tisserène",
     "Old Mill",
     "Østre Park",
     "Library Lane",

@@ -56,6 +56,7 @@ from textsieve.registry.records import (
     State,
     VersionInfo,
 )
+from textsieve.registry.verdicts import Verdicts
 
 DB_FILE = "registry.sqlite3"
 BLOB_DIR = "blobs"
@@ -95,6 +96,11 @@ class Registry:
 
     def __repr__(self) -> str:
         return f"Registry({self.location!r})"
+
+    @property
+    def verdicts(self) -> Verdicts:
+        """Reviewers' verdicts on this registry's models (see :mod:`textsieve.registry.verdicts`)."""
+        return Verdicts(self)
 
     # -- reading --------------------------------------------------------------------------
     def models(self) -> list[ModelInfo]:

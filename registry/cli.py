@@ -1,5 +1,6 @@
 """The registry verbs of the ``textsieve`` command: publish, models, versions, show, promote,
-rollback, history, evalset add, gates and review-threshold, each with its flags (:func:`register`) next to its handler.
+rollback, history, evalset add, gates, review-threshold, verdicts and gc, each with its flags (:func:`register`)
+next to its handler.
 Tables are plain aligned text; errors are raised and the command's main() prints them as one
 line with the error's exit status.
 
@@ -16,7 +17,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
 from textsieve.environment import DEFAULT_REGISTRY, registry_location
-from textsieve.errors import GateRefusedError, NotFoundError
+from textsieve.errors import GateRefusedError, InputError, NotFoundError
 
 if TYPE_CHECKING:
     from textsieve.registry.api import Registry
@@ -159,6 +160,32 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     add_location_args(p)
     _actor_arg(p)
     p.set_defaults(func=cli_review_threshold)
+
+    p = sub.add_parser(
+        "verdicts",
+        help="reviewers' verdicts on a model's predictions: agreement per version, export as labelled data, deletion",
+    )
+    _model_arg(p)
+    p.add_argument("--version", type=int, help="only this version's verdicts (listing and export)")
+    p.add_argument("--last", type=int, default=20, metavar="N", help="list the N most recent verdicts (0: none)")
+    p.add_argument(
+        "--export",
+        type=Path,
+        metavar="FILE",
+        help="write the verdicts as labelled JSONL (text, label = the reviewer's label) for train and evalset add",
+    )
+    p.add_argument(
+        "--delete-before",
+        metavar="DATE",
+        help="delete the verdicts recorded before DATE (2026-11-30 = its start, UTC; or an ISO 8601 time)",
+    )
+    p.add_argument(
+        "--delete", type=int, action="append", default=[], metavar="ID", help="delete the verdict with this id (repeat)"
+    )
+    p.add_argument("--reason", default="", help="why verdicts are deleted (required with --delete*), audited")
+    add_location_args(p)
+    _actor_arg(p)
+    p.set_defaults(func=cli_verdicts)
 
     p = sub.add_parser(
         "gc",
@@ -445,6 +472,86 @@ def gates_in_force(settings: ModelSettings) -> str:
     return "gates on promotion to live: " + ", ".join(parts)
 
 
+def cli_verdicts(args: argparse.Namespace) -> int:
+    from textsieve.registry.verdicts import export_jsonl
+
+    deleting = args.delete_before is not None or bool(args.delete)
+    if deleting and args.export is not None:
+        raise InputError("export and delete in separate runs, so the file holds what was there before the deletion")
+    if args.last < 0:
+        raise InputError(f"--last {args.last}: give 0 or more verdicts to list")
+    with _open(args) as reg:
+        if deleting:
+            gone = reg.verdicts.delete(
+                args.model, before=args.delete_before, ids=args.delete, actor=args.actor, reason=args.reason
+            )
+            missing = f"; no verdict {', '.join(map(str, gone.missing))} of {args.model!r}" if gone.missing else ""
+            _out(f"deleted {len(gone.deleted)} verdicts of {args.model!r} (audit event {gone.event_id}){missing}")
+            return 0
+        verdicts = reg.verdicts.of(args.model, version=args.version)
+        agreement = reg.verdicts.agreement(args.model)
+    if args.export is not None:
+        if not verdicts:
+            raise InputError(f"no verdicts on {args.model!r} to export; nothing written to {args.export}")
+        n = export_jsonl(verdicts, args.export)
+        _out(f"wrote {n} verdicts to {args.export} (text, label: the reviewer's label)")
+        return 0
+    if not verdicts:
+        _out(f"no verdicts on {args.model!r} yet; reviewers record them on the service's page (GET /)")
+        return 0
+    shown = verdicts[-args.last :] if args.last else []
+    if shown:
+        _out(
+            table(
+                ["ID", "TIME (UTC)", "VERSION", "REVIEWER", "PREDICTED", "P", "VERDICT", "TEXT"],
+                [
+                    [
+                        v.id,
+                        when(v.at),
+                        v.version,
+                        v.reviewer,
+                        v.predicted_label,
+                        f"{v.predicted_probability:.3f}",
+                        "confirmed" if v.agrees else f"→ {v.verdict_label}",
+                        _short(v.text),
+                    ]
+                    for v in shown
+                ],
+                right=(0, 2, 5),
+            )
+        )
+        _out(f"({len(shown)} of {len(verdicts)} shown; --last N for more)\n")
+    rows = [a for a in agreement if args.version is None or a.version == args.version]
+    _out(
+        table(
+            ["VERSION", "VERDICTS", "CONFIRMED", "AGREEMENT", "95% INTERVAL", "FIRST", "LAST"],
+            [
+                [
+                    a.version,
+                    a.verdicts,
+                    a.agreed,
+                    f"{a.agreed / a.verdicts:.1%}",
+                    f"{a.low:.1%}–{a.high:.1%}",
+                    when(a.first_at),
+                    when(a.last_at),
+                ]
+                for a in rows
+            ],
+            right=(0, 1, 2, 3),
+        )
+    )
+    _out(
+        "agreement: the share of labels reviewers confirmed, with a Wilson 95 % interval; a running estimate "
+        "of live accuracy over the texts reviewers chose to judge, not a random sample"
+    )
+    return 0
+
+
+def _short(text: str, limit: int = 48) -> str:
+    flat = " ".join(text.split())
+    return flat if len(flat) <= limit else flat[: limit - 1] + "…"
+
+
 # -- helpers ------------------------------------------------------------------------------
 def cli_gc(args: argparse.Namespace) -> int:
     with _open(args) as reg:
@@ -475,6 +582,9 @@ def summarise(e: Event) -> str:
             f"{key} {_shown(c.get('from'))} → {_shown(c.get('to'))}{' (default)' if c.get('default') else ''}"
             for key, c in d.get("changes", {}).items()
         )
+    if e.kind == "verdicts-delete":
+        before = f" recorded before {when(d['before'])}" if d.get("before") else ""
+        return f"deleted {d.get('deleted')} verdicts{before}; ids {_ids(d.get('ids', []))}"
     gates = " ".join(f"{g['name']}:{'pass' if g['passed'] else 'FAIL'}" for g in d.get("gates", []))
     if e.kind == "refuse":
         return f"to live refused; {gates}"
@@ -494,6 +604,11 @@ def _shown(value: object) -> str:
     return "none" if value is None else f"{value:g}" if isinstance(value, float) else str(value)
 
 
+def _ids(ids: Sequence[int], limit: int = 8) -> str:
+    shown = ",".join(map(str, ids[:limit])) or NONE
+    return shown + (f",+{len(ids) - limit}" if len(ids) > limit else "")
+
+
 def _labels(labels: Sequence[str], limit: int = 4) -> str:
     shown = ",".join(labels[:limit])
     return shown + (f",+{len(labels) - limit}" if len(labels) > limit else "")
@@ -510,6 +625,7 @@ __all__ = [
     "cli_review_threshold",
     "cli_rollback",
     "cli_show",
+    "cli_verdicts",
     "cli_versions",
     "gate_table",
     "gates_in_force",

@@ -109,6 +109,28 @@ MIGRATIONS: tuple[Migration, ...] = (
         )
     """,
     ),
+    # Reviewers' verdicts on single predictions: the text they judged, what the version said and
+    # the label they gave. Rows are only added or deleted (data-protection requests), never changed.
+    Migration(
+        "0007_verdicts",
+        """
+        CREATE TABLE verdicts (
+            id {serial},
+            model TEXT NOT NULL,
+            version INTEGER NOT NULL,
+            text TEXT NOT NULL,
+            predicted_label TEXT NOT NULL,
+            predicted_probability DOUBLE PRECISION NOT NULL
+                CHECK (predicted_probability >= 0 AND predicted_probability <= 1),
+            verdict_label TEXT NOT NULL,
+            reviewer TEXT NOT NULL,
+            at TEXT NOT NULL,
+            FOREIGN KEY (model, version) REFERENCES versions (model, version)
+        );
+        CREATE INDEX verdicts_model ON verdicts (model, version, id);
+        CREATE INDEX verdicts_at ON verdicts (model, at)
+    """,
+    ),
 )
 
 _TABLE = "CREATE TABLE IF NOT EXISTS schema_migrations (name TEXT PRIMARY KEY, applied_at TEXT NOT NULL)"

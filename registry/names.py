@@ -72,6 +72,16 @@ def resolve_actor(actor: str | None) -> str:
     return actor
 
 
+def validate_reviewer(reviewer: object) -> str:
+    """The person who gave a verdict, as they named themselves: 1–120 printable characters."""
+    if not isinstance(reviewer, str) or not reviewer.strip():
+        raise InputError("a verdict needs the reviewer's name: who judged the prediction")
+    reviewer = reviewer.strip()
+    if len(reviewer) > MAX_ACTOR or not _printable(reviewer):
+        raise InputError(f"bad reviewer {reviewer[:40]!r}: 1–{MAX_ACTOR} printable characters")
+    return reviewer
+
+
 def validate_reason(reason: str, *, required: bool) -> str:
     reason = (reason or "").strip()
     if required and not reason:
@@ -90,5 +100,6 @@ __all__ = [
     "resolve_actor",
     "validate_model_name",
     "validate_reason",
+    "validate_reviewer",
     "validate_version",
 ]

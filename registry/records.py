@@ -20,7 +20,7 @@ class State(StrEnum):
 
 
 STATES: tuple[State, ...] = tuple(State)  # in lifecycle order
-EventKind = Literal["publish", "evalset", "promote", "refuse", "rollback", "settings"]
+EventKind = Literal["publish", "evalset", "promote", "refuse", "rollback", "settings", "verdicts-delete"]
 
 
 class _Record(BaseModel):
@@ -123,6 +123,45 @@ class Promotion(_Record):
     event_id: int
 
 
+class VerdictInfo(_Record):
+    """One reviewer's verdict on one prediction: what the version said and the label they gave."""
+
+    id: int
+    model: str
+    version: int
+    text: str
+    predicted_label: str
+    predicted_probability: float = Field(description="the calibrated probability the reviewer was shown")
+    verdict_label: str
+    reviewer: str
+    at: str
+
+    @property
+    def agrees(self) -> bool:
+        return self.verdict_label == self.predicted_label
+
+    @classmethod
+    def from_row(cls, row: dict[str, Any]) -> VerdictInfo:
+        return cls.model_validate(row)
+
+
+class Agreement(_Record):
+    """How often reviewers confirmed one version's labels: a running estimate of its live accuracy."""
+
+    model: str
+    version: int
+    verdicts: int
+    agreed: int
+    low: float = Field(description="Wilson 95 % interval, lower end (0 with no verdicts)")
+    high: float = Field(description="Wilson 95 % interval, upper end (1 with no verdicts)")
+    first_at: str | None
+    last_at: str | None
+
+    @property
+    def rate(self) -> float | None:
+        return None if self.verdicts == 0 else self.agreed / self.verdicts
+
+
 class Event(_Record):
     id: int
     model: str
@@ -149,6 +188,7 @@ class Event(_Record):
 
 __all__ = [
     "STATES",
+    "Agreement",
     "EvalsetInfo",
     "Event",
     "EventKind",
@@ -157,5 +197,6 @@ __all__ = [
     "ModelInfo",
     "Promotion",
     "State",
+    "VerdictInfo",
     "VersionInfo",
 ]

@@ -10,7 +10,7 @@ import os
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from pydantic import Field, SecretStr, field_validator, model_validator
+from pydantic import Field, SecretStr, ValidationInfo, field_validator, model_validator
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
 from textsieve.environment import DEFAULT_REGISTRY, check_blobs, check_registry
@@ -126,6 +126,11 @@ class Settings(BaseSettings):
     )
 
     admin_token: SecretStr | None = Field(None, description="bearer token for the admin calls; unset: admin is off")
+    review_token: SecretStr | None = Field(
+        None,
+        description="bearer token reviewers use to record verdicts (POST /v1/verdicts); never accepted for admin "
+        "calls; unset: recording verdicts is off",
+    )
     poll_seconds: float = Field(2.0, gt=0, le=3600, description="how often the registry's change cursor is read")
     pinned_versions: int = Field(2, ge=0, le=32, description="non-live versions kept loaded for pinned requests")
     access_log: bool = Field(True, description="one JSON line per request on stderr")
@@ -155,21 +160,35 @@ class Settings(BaseSettings):
             raise ValueError(f"models are listed twice: {', '.join(sorted({m for m in v if v.count(m) > 1}))}")
         return v
 
-    @field_validator("admin_token", mode="before")
+    @field_validator("admin_token", "review_token", mode="before")
     @classmethod
     def _empty_token_is_none(cls, v: Any) -> Any:
         return None if isinstance(v, str) and not v.strip() else v
 
-    @field_validator("admin_token")
+    @field_validator("admin_token", "review_token")
     @classmethod
-    def _long_token(cls, v: SecretStr | None) -> SecretStr | None:
+    def _long_token(cls, v: SecretStr | None, info: ValidationInfo) -> SecretStr | None:
         # A short shared secret can be guessed over HTTP; refuse it rather than warn.
         if v is not None and len(v.get_secret_value()) < MIN_TOKEN_CHARS:
+            which = "admin" if info.field_name == "admin_token" else "review"
             raise ValueError(
-                f"the admin token must be at least {MIN_TOKEN_CHARS} characters "
+                f"the {which} token must be at least {MIN_TOKEN_CHARS} characters "
                 "(e.g. python -c 'import secrets; print(secrets.token_urlsafe(32))')"
             )
         return v
+
+    @model_validator(mode="after")
+    def _separate_tokens(self) -> Settings:
+        # One secret for both roles would let every reviewer promote: the roles must stay apart.
+        if (
+            self.admin_token is not None
+            and self.review_token is not None
+            and self.admin_token.get_secret_value() == self.review_token.get_secret_value()
+        ):
+            raise ValueError(
+                "review_token equals admin_token: reviewers would hold the admin token; give each role its own token"
+            )
+        return self
 
     @model_validator(mode="after")
     def _body_fits_one_text(self) -> Settings:
@@ -188,6 +207,10 @@ class Settings(BaseSettings):
     @property
     def admin_enabled(self) -> bool:
         return self.admin_token is not None
+
+    @property
+    def review_enabled(self) -> bool:
+        return self.review_token is not None
 
     @property
     def registry_label(self) -> str:

@@ -25,6 +25,7 @@ from textsieve.registry import (
     VersionInfo,
     open_registry,
 )
+from textsieve.registry.records import VerdictInfo
 from textsieve.service.settings import public_location
 
 P = ParamSpec("P")
@@ -99,6 +100,28 @@ class RegistryThread:
 
     async def rollback(self, model: str, *, reason: str, actor: str | None = None) -> VersionInfo:
         return await self._run(self.registry.rollback, model, reason=reason, actor=actor)
+
+    async def record_verdict(
+        self,
+        model: str,
+        version: int,
+        *,
+        text: str,
+        predicted_label: str,
+        predicted_probability: float,
+        verdict_label: str,
+        reviewer: str,
+    ) -> VerdictInfo:
+        return await self._run(
+            self.registry.verdicts.record,
+            model,
+            version,
+            text=text,
+            predicted_label=predicted_label,
+            predicted_probability=predicted_probability,
+            verdict_label=verdict_label,
+            reviewer=reviewer,
+        )
 
     async def close(self) -> None:
         if self._registry is not None:

@@ -6,7 +6,7 @@ answers all of them with ``application/problem+json`` (RFC 9457 §3) built in
 :mod:`textsieve.service.web.problems`. The generated document is rewritten once, here, so that
 clients and schema-driven tests (tests/reliability/test_fuzz.py) see what is actually sent: the Problem
 schema under problem+json for every error, 413 wherever a body is accepted (the body-size limit
-answers before any route), and the admin calls' bearer token as a security scheme.
+answers before any route), and the admin and reviewer bearer tokens as security schemes.
 
 Generated clients name their methods after operation ids and group them by tag, so every route
 states a short ``operation_id`` (FastAPI's default, ``predict_v1_predict_post``, changes with the
@@ -25,6 +25,12 @@ from fastapi import FastAPI
 from textsieve.service.web.problems import MEDIA_TYPE
 
 ADMIN_SCHEME = "adminToken"
+REVIEW_SCHEME = "reviewerToken"
+_SCHEMES = {
+    ADMIN_SCHEME: "the service's admin token (TEXTSIEVE_ADMIN_TOKEN); admin calls are off without one",
+    REVIEW_SCHEME: "the service's reviewer token (TEXTSIEVE_REVIEW_TOKEN), distinct from the admin token; "
+    "recording verdicts is off without one",
+}
 
 
 class Tag(StrEnum):
@@ -33,6 +39,7 @@ class Tag(StrEnum):
     PREDICTIONS = "predictions"
     REGISTRY = "registry"
     ADMIN = "admin"
+    REVIEWS = "reviews"
     HEALTH = "health"
 
 
@@ -51,6 +58,11 @@ TAGS: list[dict[str, Any]] = [
         "name": Tag.ADMIN.value,
         "description": "Promote and roll back versions through the registry's gates; "
         "needs the admin bearer token, and every call is an audit event.",
+    },
+    {
+        "name": Tag.REVIEWS.value,
+        "description": "Reviewers' verdicts on predictions: confirm or correct a label; needs the reviewer "
+        "bearer token, and the verdicts are stored in the registry for agreement figures and new training data.",
     },
     {
         "name": Tag.HEALTH.value,
@@ -76,7 +88,7 @@ def _problem_response(description: str) -> dict[str, Any]:
 
 def rewrite(document: dict[str, Any]) -> dict[str, Any]:
     """``document`` with error bodies, the body limit and the admin token stated as served."""
-    secured = False
+    secured: set[str] = set()
     for operations in document.get("paths", {}).values():
         for method, op in operations.items():
             if method not in _METHODS:
@@ -87,16 +99,16 @@ def rewrite(document: dict[str, Any]) -> dict[str, Any]:
                     responses[code] = _problem_response(response.get("description", "problem details"))
             if "requestBody" in op and "413" not in responses:
                 responses["413"] = _problem_response("a request limit was exceeded")
-            secured = secured or any(ADMIN_SCHEME in req for req in op.get("security", []))
+            secured |= {scheme for req in op.get("security", []) for scheme in req}
     components = document.setdefault("components", {})
     schemas = components.get("schemas", {})
     for name in _FASTAPI_ERROR_MODELS:
         schemas.pop(name, None)
-    if secured:
-        components.setdefault("securitySchemes", {})[ADMIN_SCHEME] = {
+    for scheme in sorted(secured & set(_SCHEMES)):
+        components.setdefault("securitySchemes", {})[scheme] = {
             "type": "http",
             "scheme": "bearer",
-            "description": "the service's admin token (TEXTSIEVE_ADMIN_TOKEN); admin calls are off without one",
+            "description": _SCHEMES[scheme],
         }
     return document
 
@@ -113,4 +125,4 @@ def install(app: FastAPI) -> None:
     app.openapi = openapi  # type: ignore[method-assign]
 
 
-__all__ = ["ADMIN_SCHEME", "TAGS", "Tag", "install", "rewrite"]
+__all__ = ["ADMIN_SCHEME", "REVIEW_SCHEME", "TAGS", "Tag", "install", "rewrite"]

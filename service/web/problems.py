@@ -51,6 +51,21 @@ class AdminDisabledError(AuthError):
         )
 
 
+class ReviewerAuthError(AuthError):
+    """The reviewer token is missing or wrong on a verdict call (HTTP 401/403)."""
+
+
+class ReviewDisabledError(ReviewerAuthError):
+    """A verdict was sent but no reviewer token is configured (HTTP 403)."""
+
+    def __init__(self) -> None:
+        super().__init__(
+            "recording verdicts is disabled on this service: set TEXTSIEVE_REVIEW_TOKEN (at least 16 "
+            "characters, not the admin token) and restart to let reviewers record verdicts",
+            missing=False,
+        )
+
+
 @dataclass(frozen=True, slots=True)
 class Kind:
     status: int
@@ -140,6 +155,20 @@ KINDS: dict[type[BaseException], Kind] = {
         "The admin token is wrong",
         "Admin calls need 'Authorization: Bearer <token>' with the service's admin token.",
     ),
+    ReviewDisabledError: Kind(
+        403,
+        "review-disabled",
+        "Recording verdicts is disabled",
+        "No reviewer token is configured, so verdicts cannot be recorded over HTTP. "
+        "Set TEXTSIEVE_REVIEW_TOKEN and restart the service to enable them.",
+    ),
+    ReviewerAuthError: Kind(
+        403,
+        "reviewer-forbidden",
+        "The reviewer token is wrong",
+        "Recording a verdict needs 'Authorization: Bearer <token>' with the service's reviewer token "
+        "(TEXTSIEVE_REVIEW_TOKEN); the admin token is not accepted there, nor the reviewer token for admin calls.",
+    ),
     TextsieveError: Kind(500, "internal", "Internal error", "The service failed; the request id locates the log line."),
 }
 MISSING_TOKEN = Kind(
@@ -148,19 +177,34 @@ MISSING_TOKEN = Kind(
     "An admin token is needed",
     "Admin calls need 'Authorization: Bearer <token>' with the service's admin token.",
 )
+MISSING_REVIEW_TOKEN = Kind(
+    401,
+    "reviewer-unauthorized",
+    "A reviewer token is needed",
+    "Recording a verdict needs 'Authorization: Bearer <token>' with the service's reviewer token.",
+)
+# A missing token is 401 with the realm to authenticate against; a wrong one is the class's 403.
+_MISSING: dict[type[BaseException], tuple[Kind, str]] = {
+    AuthError: (MISSING_TOKEN, "textsieve-admin"),
+    ReviewerAuthError: (MISSING_REVIEW_TOKEN, "textsieve-review"),
+}
+_REALMS = {kind.slug: realm for kind, realm in _MISSING.values()}
 INTERNAL = KINDS[TextsieveError]
 _HTTP_KINDS = {
     404: KINDS[NotFoundError],
     405: Kind(405, "method-not-allowed", "Method not allowed", "The path exists but not for this HTTP method."),
 }
-SLUGS: dict[str, Kind] = {k.slug: k for k in [*KINDS.values(), MISSING_TOKEN, *_HTTP_KINDS.values()]}
+SLUGS: dict[str, Kind] = {
+    k.slug: k for k in [*KINDS.values(), MISSING_TOKEN, MISSING_REVIEW_TOKEN, *_HTTP_KINDS.values()]
+}
 
 
 def kind_of(exc: BaseException) -> Kind:
     for cls in type(exc).__mro__:
         if cls in KINDS:
-            if cls is AuthError and getattr(exc, "missing", False):
-                return MISSING_TOKEN
+            if getattr(exc, "missing", False):
+                role = next(c for c in type(exc).__mro__ if c in _MISSING)
+                return _MISSING[role][0]
             return KINDS[cls]
     return INTERNAL
 
@@ -197,8 +241,9 @@ def problem(kind: Kind, detail: str, scope: Scope, *, headers: dict[str, str] | 
     hdrs = dict(headers or {})
     if kind.status == 503:
         hdrs.setdefault("Retry-After", str(RETRY_AFTER_SECONDS))
-    if kind is MISSING_TOKEN:
-        hdrs.setdefault("WWW-Authenticate", 'Bearer realm="textsieve-admin"')
+    realm = _REALMS.get(kind.slug)
+    if realm is not None:
+        hdrs.setdefault("WWW-Authenticate", f'Bearer realm="{realm}"')
     return Response(
         orjson.dumps(body, default=_jsonable, option=orjson.OPT_NON_STR_KEYS),
         status_code=kind.status,
@@ -321,4 +366,13 @@ def install(app: FastAPI) -> None:
     app.add_api_route("/problems/{slug}", _explain, methods=["GET"], include_in_schema=False)
 
 
-__all__ = ["AdminDisabledError", "KINDS", "MEDIA_TYPE", "install", "problem", "render"]
+__all__ = [
+    "AdminDisabledError",
+    "KINDS",
+    "ReviewDisabledError",
+    "ReviewerAuthError",
+    "MEDIA_TYPE",
+    "install",
+    "problem",
+    "render",
+]

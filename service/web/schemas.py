@@ -79,6 +79,51 @@ class PredictRequest(_Request):
         return texts
 
 
+class VerdictRequest(_Request):
+    """A reviewer's verdict on one prediction: the text, what the version said, and the right label."""
+
+    model: str = Field(
+        description=f"model name ({MODEL_NAME_RULE}), as the prediction's reply named it",
+        json_schema_extra={"pattern": f"^{MODEL_NAME.pattern}$"},
+    )
+    version: int = Field(ge=1, le=MAX_VERSION, description="the version that made the prediction")
+    text: str = Field(
+        min_length=1,
+        description="the text as it was classified; stored so the verdict can become training data",
+    )
+    predicted_label: str = Field(min_length=1, max_length=200, description="the label the version gave")
+    predicted_probability: float = Field(ge=0, le=1, description="the calibrated probability shown with it")
+    verdict_label: str = Field(
+        min_length=1,
+        max_length=200,
+        description="the reviewer's label: the predicted one to confirm it, another of the version's labels to "
+        "correct it",
+    )
+    reviewer: str = Field(min_length=1, max_length=120, description="who judged: recorded with the verdict")
+
+    @field_validator("text")
+    @classmethod
+    def _valid_text(cls, text: str) -> str:
+        from textsieve.errors import InputError
+        from textsieve.registry.verdicts import check_text
+
+        try:
+            return check_text(text)
+        except InputError as exc:
+            raise ValueError(exc.message) from None
+
+
+class VerdictReply(BaseModel):
+    id: int = Field(description="the verdict's id: 'textsieve verdicts MODEL --delete ID' removes it")
+    model: str
+    version: int
+    predicted_label: str
+    verdict_label: str
+    agrees: bool = Field(description="true when the reviewer confirmed the predicted label")
+    reviewer: str
+    at: str = Field(description="when it was recorded (ISO 8601, UTC)")
+
+
 class PromoteRequest(_Request):
     to: Literal["candidate", "live"]
     reason: str = Field(min_length=1, max_length=2000, description="recorded in the audit trail")
@@ -235,5 +280,7 @@ __all__ = [
     "RollbackRequest",
     "ServingView",
     "SpanOut",
+    "VerdictReply",
+    "VerdictRequest",
     "VersionView",
 ]

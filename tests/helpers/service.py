@@ -25,6 +25,8 @@ from textsieve.service.web.app import create_app
 
 ADMIN_TOKEN = "test-admin-token-0123456789"
 AUTH = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
+REVIEW_TOKEN = "test-review-token-9876543210"
+REVIEW_AUTH = {"Authorization": f"Bearer {REVIEW_TOKEN}"}
 MODEL = "support"
 
 

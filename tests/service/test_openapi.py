@@ -30,6 +30,7 @@ OPERATIONS = {
     "getVersion": ("GET /v1/models/{name}/versions/{n}", Tag.REGISTRY),
     "promoteVersion": ("POST /v1/models/{name}/versions/{n}/promote", Tag.ADMIN),
     "rollbackModel": ("POST /v1/models/{name}/rollback", Tag.ADMIN),
+    "recordVerdict": ("POST /v1/verdicts", Tag.REVIEWS),
     "getLiveness": ("GET /healthz", Tag.HEALTH),
     "getReadiness": ("GET /readyz", Tag.HEALTH),
     "getMetrics": ("GET /metrics", Tag.HEALTH),
@@ -108,5 +109,6 @@ def test_the_check_script_finds_nothing_wrong_and_catches_a_default_id(document:
     broken["paths"]["/healthz"]["get"]["tags"] = ["health", "admin"]
     assert module.faults(broken) == [
         "POST /v1/predict: operationId 'predict_v1_predict_post' is not an explicit camelCase name (operation_id=...)",
-        "GET /healthz: tags ['health', 'admin'] are not exactly one of ['admin', 'health', 'predictions', 'registry']",
+        "GET /healthz: tags ['health', 'admin'] are not exactly one of "
+        "['admin', 'health', 'predictions', 'registry', 'reviews']",
     ]

@@ -105,3 +105,63 @@ def test_page_highlighting_slices_code_points_like_python(tmp_path: Path) -> Non
             (text[spans[0]["start"] : spans[0]["end"]], 1),
             (text[spans[1]["start"] : spans[1]["end"]], 2),
         ]
+
+
+def test_page_keys_map_to_verdict_actions(tmp_path: Path) -> None:
+    """Run the page's own ``keyAction`` helper in Node: Y confirms, C then a digit corrects, N/P move."""
+    import json
+    import shutil
+    import subprocess
+
+    from textsieve.service.web.page import page
+
+    node = shutil.which("node")
+    if node is None:
+        skip_or_fail("node is needed to run the page's script (apt-get install nodejs)")
+    html, _ = page()
+    helpers = re.findall(r"<script>(.*?)</script>", html, flags=re.S)[0]
+    labels = ["billing", "repair", "account", "praise"]
+    presses = [("y", False), ("Y", False), ("c", False), ("2", True), ("4", True), ("5", True), ("2", False)]
+    presses += [("n", False), ("J", False), ("ArrowDown", False), ("p", False), ("k", False), ("x", False)]
+    script = tmp_path / "keys.js"
+    script.write_text(
+        helpers + f"\nprocess.stdout.write(JSON.stringify({json.dumps(presses)}.map("
+        f"([k, c]) => keyAction(k, {json.dumps(labels)}, c))));\n",
+        encoding="utf-8",
+    )
+    out = subprocess.run([node, str(script)], capture_output=True, text=True, timeout=30, check=True)
+    assert json.loads(out.stdout) == [
+        {"action": "confirm"},
+        {"action": "confirm"},
+        {"action": "choose"},
+        {"action": "correct", "label": "repair"},
+        {"action": "correct", "label": "praise"},
+        None,  # no fifth label
+        None,  # a digit means nothing until C was pressed
+        {"action": "next"},
+        {"action": "next"},
+        {"action": "next"},
+        {"action": "previous"},
+        {"action": "previous"},
+        None,
+    ]
+
+
+def test_page_palette_has_no_orange_and_keeps_the_token_out_of_urls() -> None:
+    import colorsys
+
+    from textsieve.service.web.page import page
+
+    html, _ = page()
+    style = re.findall(r"<style>(.*?)</style>", html, flags=re.S)[0]
+    colours = [tuple(int(h[i : i + 2], 16) / 255 for i in (0, 2, 4)) for h in re.findall(r"#([0-9a-fA-F]{6})\b", style)]
+    colours += [tuple(int(v) / 255 for v in m) for m in re.findall(r"(\d+), (\d+), (\d+)", style)]
+    assert len(colours) > 10
+    for r, g, b in colours:
+        hue, lightness, saturation = colorsys.rgb_to_hls(r, g, b)
+        # Orange spans hues of roughly 15°-45° (common practice, e.g. the CSS named colour
+        # "orange" is 39°, "darkorange" 33°); greys and near-whites carry no hue worth the name.
+        assert not (15 / 360 <= hue <= 45 / 360 and saturation > 0.35 and 0.2 < lightness < 0.92), (r, g, b)
+    script = "\n".join(re.findall(r"<script>(.*?)</script>", html, flags=re.S))
+    assert 'fetch("/v1/verdicts"' in script and "sessionStorage" in script
+    assert "localStorage" not in script and "location.search" not in script and "?token" not in script

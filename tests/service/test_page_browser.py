@@ -1,6 +1,8 @@
-"""The reviewer page in a real headless Chromium: paste texts, press Classify, read the cards.
+"""The reviewer page in a real headless Chromium: paste texts, queue them, read the cards, and
+record verdicts with the keyboard.
 
-What the page shows is compared with what the API answers for the same texts.
+What the page shows is compared with what the API answers for the same texts, and the verdicts
+it records with what the registry and ``textsieve verdicts`` read back.
 """
 
 from __future__ import annotations
@@ -8,9 +10,12 @@ from __future__ import annotations
 from pathlib import Path
 
 import httpx
+import pytest
 
 from tests.helpers.net import free_port
-from tests.helpers.service import settings_for, uvicorn_server
+from tests.helpers.service import MODEL, REVIEW_TOKEN, settings_for, uvicorn_server
+from textsieve.cli import main
+from textsieve.registry import open_registry
 
 TEXTS = [
     "I was charged twice for the same ride, please refund me.",
@@ -48,3 +53,54 @@ def test_page_classifies_and_highlights_like_the_api(browser, registry_dir: Path
         # The Content-Security-Policy must not have blocked any of the page's own code.
         severe = [e for e in browser.get_log("browser") if e["level"] == "SEVERE"]
         assert severe == []
+
+
+def test_a_reviewer_corrects_and_confirms_with_the_keyboard_and_the_cli_sees_it(  # type: ignore[no-untyped-def]
+    browser, registry_dir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    settings = settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)
+    with uvicorn_server(settings) as server:
+        api = httpx.post(f"{server.url}/v1/predict", json={"texts": TEXTS, "spans": 3}, timeout=30).json()
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        page_text = browser.find_element(By.TAG_NAME, "body").text
+        # The shortcuts are on the page, beside the cautions.
+        assert "confirm the label" in page_text and "next text" in page_text and "accountable people" in page_text
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN)
+        browser.find_element(By.ID, "start").click()
+        wait.until(lambda d: d.find_element(By.ID, "signed").is_displayed())
+        browser.find_element(By.ID, "texts").send_keys("\n".join(TEXTS))
+        browser.find_element(By.ID, "go").click()
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == len(TEXTS))
+        cards = browser.find_elements(By.CSS_SELECTOR, "article.result")
+        first = api["results"][0]
+        labels = list(first["probabilities"])  # the reply's order, which the card numbers 1, 2, ...
+        target = next(label for label in labels if label != first["label"])
+        # C then the label's digit corrects the first text; the queue then moves to the second.
+        ActionChains(browser).send_keys("c").send_keys(str(labels.index(target) + 1)).perform()
+        wait.until(lambda d: cards[0].get_attribute("data-state") == "corrected")
+        wait.until(lambda d: "current" in (cards[1].get_attribute("class") or ""))
+        ActionChains(browser).send_keys("y").perform()
+        wait.until(lambda d: cards[1].get_attribute("data-state") == "confirmed")
+        assert f"corrected to {target} by Kwame" in cards[0].text
+        # The token stays in this tab's session storage, never in the address.
+        assert browser.execute_script("return sessionStorage.getItem('textsieve.reviewToken')") == REVIEW_TOKEN
+        assert REVIEW_TOKEN not in browser.current_url
+        severe = [e for e in browser.get_log("browser") if e["level"] == "SEVERE"]
+        assert severe == []
+    with open_registry(registry_dir) as reg:
+        stored = [(v.text, v.predicted_label, v.verdict_label, v.reviewer) for v in reg.verdicts.of(MODEL)]
+    assert stored == [
+        (TEXTS[0], first["label"], target, "Kwame"),
+        (TEXTS[1], api["results"][1]["label"], api["results"][1]["label"], "Kwame"),
+    ]
+    capsys.readouterr()
+    assert main(["verdicts", MODEL, "--registry", str(registry_dir)]) == 0
+    out = capsys.readouterr().out
+    assert f"→ {target}" in out and "confirmed" in out and "Kwame" in out
+    assert any(line.split()[:4] == ["1", "2", "1", "50.0%"] for line in out.splitlines())

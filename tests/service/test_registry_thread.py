@@ -40,6 +40,14 @@ ERROR_CASES: list[tuple[str, Call, type[TextsieveError], str]] = [
     ("bad cursor", lambda s: s.changes_since(-1), InputError, "bad cursor -1"),
     ("promote to", lambda s: s.promote("m", 1, "retired", reason="r"), InputError, "cannot promote to 'retired'"),
     ("rollback", lambda s: s.rollback("nobody", reason="r"), NotFoundError, "no model 'nobody'"),
+    (
+        "record verdict",
+        lambda s: s.record_verdict(
+            "nobody", 1, text="t", predicted_label="a", predicted_probability=0.5, verdict_label="a", reviewer="r"
+        ),
+        NotFoundError,
+        "no model 'nobody'",
+    ),
 ]
 
 

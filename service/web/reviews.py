@@ -1,0 +1,103 @@
+"""``POST /v1/verdicts``: a reviewer confirms or corrects one prediction's label.
+
+Guarded by the reviewer token (``TEXTSIEVE_REVIEW_TOKEN``), a role apart from admin: this route
+accepts only the reviewer token and the admin routes only the admin token, so a reviewer cannot
+promote and an admin script cannot record verdicts in a reviewer's name. Without a configured
+token the route answers 403 ``/problems/review-disabled``. The token is compared with
+``secrets.compare_digest``.
+
+The verdict is written to the registry before the reply (a reviewer is told it is stored only
+when it is), through the service's registry thread. Verdicts are rare next to predictions, one
+per reviewer action, so they need no batching; the text obeys the prediction limits
+(``TEXTSIEVE_MAX_CHARS`` per text, ``TEXTSIEVE_MAX_BODY_BYTES`` per body).
+"""
+
+from __future__ import annotations
+
+import secrets
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Depends, Request
+from fastapi.responses import JSONResponse
+
+from textsieve.errors import LimitError
+from textsieve.service.settings import Settings
+from textsieve.service.web.deps import RegistryDep, SettingsDep
+from textsieve.service.web.openapi import REVIEW_SCHEME, Tag
+from textsieve.service.web.problems import MEDIA_TYPE, ReviewDisabledError, ReviewerAuthError
+from textsieve.service.web.schemas import Problem, VerdictReply, VerdictRequest
+
+router = APIRouter()
+_P = {"model": Problem, "content": {MEDIA_TYPE: {}}}
+_RESPONSES: dict[int | str, dict[str, Any]] = {401: _P, 403: _P, 404: _P, 413: _P, 422: _P, 503: _P}
+
+
+async def require_reviewer(request: Request, settings: SettingsDep) -> None:
+    if settings.review_token is None:
+        raise ReviewDisabledError()
+    header = request.headers.get("authorization", "")
+    scheme, _, token = header.strip().partition(" ")
+    if not header:
+        raise ReviewerAuthError("recording a verdict needs an 'Authorization: Bearer <token>' header", missing=True)
+    if scheme.lower() != "bearer" or not token.strip():
+        raise ReviewerAuthError("the Authorization header must be 'Bearer <token>'", missing=True)
+    expected = settings.review_token.get_secret_value().encode()
+    if not secrets.compare_digest(token.strip().encode(), expected):
+        raise ReviewerAuthError("the reviewer token is wrong (the admin token is not accepted here)", missing=False)
+
+
+Reviewer = Annotated[None, Depends(require_reviewer)]
+
+
+def _check_length(body: VerdictRequest, settings: Settings) -> None:
+    if len(body.text) > settings.max_chars:
+        raise LimitError(
+            f"text has {len(body.text)} characters; the limit is {settings.max_chars} per text "
+            "(TEXTSIEVE_MAX_CHARS), as for predictions",
+            limit={
+                "name": "max_chars",
+                "setting": "TEXTSIEVE_MAX_CHARS",
+                "value": settings.max_chars,
+                "got": len(body.text),
+            },
+        )
+
+
+@router.post(
+    "/v1/verdicts",
+    operation_id="recordVerdict",
+    tags=[Tag.REVIEWS],
+    status_code=201,
+    response_model=VerdictReply,
+    responses=_RESPONSES,
+    openapi_extra={"security": [{REVIEW_SCHEME: []}]},
+    summary="Record a reviewer's verdict on one prediction: confirm its label or correct it",
+)
+async def record_verdict(
+    body: VerdictRequest, request: Request, _: Reviewer, settings: SettingsDep, store: RegistryDep
+) -> JSONResponse:
+    _check_length(body, settings)
+    info = await store.record_verdict(
+        body.model,
+        body.version,
+        text=body.text,
+        predicted_label=body.predicted_label,
+        predicted_probability=body.predicted_probability,
+        verdict_label=body.verdict_label,
+        reviewer=body.reviewer,
+    )
+    request.state.model, request.state.version = info.model, info.version
+    reply = VerdictReply(
+        id=info.id,
+        model=info.model,
+        version=info.version,
+        predicted_label=info.predicted_label,
+        verdict_label=info.verdict_label,
+        agrees=info.agrees,
+        reviewer=info.reviewer,
+        at=info.at,
+    )
+    return JSONResponse(reply.model_dump(), status_code=201)
+
+
+__all__ = ["require_reviewer", "router"]
