@@ -36,15 +36,17 @@ from textsieve.errors import (
     RegistryError,
     StateError,
 )
-from textsieve.registry._db import Backend
+from textsieve.registry._db import Backend, Tx
 from textsieve.registry.blobs import BlobStore, materialize
 from textsieve.registry.bundle import Bundle, open_bundle
 from textsieve.registry.evalsets import NormalisedEvalset, load_evalset, parse_stored, unknown_labels
-from textsieve.registry.gates import GateSettings, Side, labels_gate, metric_gates, parity_gate
+from textsieve.registry.gates import GateSettings, Side, labels_gate, metric_gates, parity_gate, shadow_gate
 from textsieve.registry.manifest import MANIFEST, Manifest
 from textsieve.registry.migrations import migrate
 from textsieve.registry.names import resolve_actor, validate_model_name, validate_reason, validate_version
 from textsieve.registry.queries import Queries
+from textsieve.registry.shadow import ShadowCounts, StoredText, Tally
+from textsieve.registry.shadow_queries import ShadowQueries
 from textsieve.registry.records import (
     EvalsetInfo,
     Event,
@@ -384,7 +386,8 @@ class Registry:
             target = self._require_version(q, model, version)
             live = q.in_state(model, State.LIVE)
             evalset = q.evalset(model)
-        return self._gates(model, target, live, evalset)
+            shadow = self._shadow_for_gate(tx, model, live, target)
+        return self._gates(model, target, live, evalset, shadow)
 
     def promote(
         self,
@@ -411,7 +414,8 @@ class Registry:
                     target = self._require_version(q, model, version)
                     live = q.in_state(model, State.LIVE)
                     evalset = q.evalset(model)
-                gates = self._judge(model, target, live, evalset)
+                    shadow = self._shadow_for_gate(tx, model, live, target)
+                gates = self._judge(model, target, live, evalset, shadow)
                 with self.backend.write() as tx:
                     q = Queries(tx)
                     tx.lock_model(model)
@@ -434,7 +438,8 @@ class Registry:
                     tx.lock_model(model)
                     target = self._require_version(q, model, version)
                     live = q.in_state(model, State.LIVE)
-                    gates = self._judge(model, target, live, q.evalset(model))
+                    shadow = self._shadow_for_gate(tx, model, live, target)
+                    gates = self._judge(model, target, live, q.evalset(model), shadow)
                     outcome = self._apply_live(q, target, live, gates, reason=reason, actor=actor, force=force)
             event_id, info, failed = outcome
             if info is None:
@@ -443,12 +448,24 @@ class Registry:
         raise AssertionError("unreachable: the last attempt runs under the lock")
 
     def _judge(
-        self, model: str, target: VersionInfo, live: VersionInfo | None, evalset: EvalsetInfo | None
+        self,
+        model: str,
+        target: VersionInfo,
+        live: VersionInfo | None,
+        evalset: EvalsetInfo | None,
+        shadow: ShadowCounts | None,
     ) -> list[GateResult]:
         _allowed(target, State.LIVE)
         for digest in target.files.values():
             self.blobs.verify(digest)  # a damaged version is never promoted, forced or not
-        return self._gates(model, target, live, evalset)
+        return self._gates(model, target, live, evalset, shadow)
+
+    def _shadow_for_gate(self, tx: Tx, model: str, live: VersionInfo | None, target: VersionInfo) -> ShadowCounts | None:
+        # Read only when the gate is on. Shadow counts grow all the time, so unlike the live
+        # version and the evaluation set they are not re-checked before the promotion commits.
+        if self.settings.shadow_agreement_min is None or live is None:
+            return None
+        return ShadowQueries(tx).pair(model, live.version, target.version)
 
     def _apply_live(
         self,
@@ -588,9 +605,67 @@ class Registry:
             )
         return live, self._require_version(q, model, live.previous_live)
 
+    # -- shadow counts ------------------------------------------------------------------------
+    def add_shadow_counts(
+        self,
+        model: str,
+        live_version: int,
+        candidate_version: int,
+        tally: Tally,
+        *,
+        keep_texts: int = 0,
+        keep_seconds: float = 7 * 86400.0,
+    ) -> None:
+        """Add one replica's shadow tally to the pair's sums, in one transaction (see registry/shadow.py).
+
+        With ``keep_texts`` > 0 the tally's disagreeing texts are stored too, and the model's stored
+        texts are trimmed to the newest ``keep_texts`` and to those younger than ``keep_seconds``.
+        """
+        model = validate_model_name(model)
+        live_version, candidate_version = validate_version(live_version), validate_version(candidate_version)
+        if tally.empty and not tally.kept:
+            return
+        now = utc_now()
+        cutoff = (dt.datetime.now(dt.UTC) - dt.timedelta(seconds=max(keep_seconds, 0.0))).isoformat(
+            timespec="microseconds"
+        )
+        with self.backend.write() as tx:
+            q = Queries(tx)
+            self._require_model(q, model)
+            sq = ShadowQueries(tx)
+            sq.add(model, live_version, candidate_version, tally, now)
+            if keep_texts > 0 and tally.kept:
+                sq.keep_texts(model, live_version, candidate_version, tally, now)
+            sq.trim_texts(model, keep_texts, cutoff)
+
+    def shadow_counts(self, model: str) -> list[ShadowCounts]:
+        """Every (live, candidate) pair's shadow counts, the most recently updated first."""
+        model = validate_model_name(model)
+        with self.backend.read() as tx:
+            self._require_model(Queries(tx), model)
+            return ShadowQueries(tx).pairs(model)
+
+    def shadow_pair(self, model: str, live_version: int, candidate_version: int) -> ShadowCounts | None:
+        model = validate_model_name(model)
+        with self.backend.read() as tx:
+            self._require_model(Queries(tx), model)
+            return ShadowQueries(tx).pair(model, validate_version(live_version), validate_version(candidate_version))
+
+    def shadow_texts(self, model: str, live_version: int, candidate_version: int, limit: int = 50) -> list[StoredText]:
+        """The newest kept disagreeing texts of a pair (none unless a replica was told to keep them)."""
+        model = validate_model_name(model)
+        with self.backend.read() as tx:
+            self._require_model(Queries(tx), model)
+            return ShadowQueries(tx).texts(model, live_version, candidate_version, max(1, limit))
+
     # -- helpers --------------------------------------------------------------------------
     def _gates(
-        self, model: str, target: VersionInfo, live: VersionInfo | None, evalset: EvalsetInfo | None
+        self,
+        model: str,
+        target: VersionInfo,
+        live: VersionInfo | None,
+        evalset: EvalsetInfo | None,
+        shadow: ShadowCounts | None = None,
     ) -> list[GateResult]:
         manifest = Manifest.model_validate_json(self.blobs.read_bytes(target.files[MANIFEST]))
         gates = [parity_gate(manifest), labels_gate(target.labels, None if live is None else live.labels, _num(live))]
@@ -602,6 +677,8 @@ class Registry:
         gates += metric_gates(
             model, cand, live_side, examples, None if evalset is None else evalset.sha256, self.settings
         )
+        if self.settings.shadow_agreement_min is not None:
+            gates.append(shadow_gate(shadow, target.version, _num(live), self.settings))
         return gates
 
     def _resolve(self, model: str, version: int | None) -> VersionInfo:

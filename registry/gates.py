@@ -7,6 +7,9 @@
   ``macro_f1_tolerance`` (default 0.01) against the live version.
 - ``ece``: on the same set, expected calibration error (15 equal-width bins; Naeini et al.,
   2015; Guo et al., 2017, eq. 3) does not rise by more than ``ece_tolerance`` (default 0.02).
+- ``shadow_agreement`` (optional, off unless ``shadow_agreement_min`` is set): over at least
+  ``shadow_min_texts`` live texts the replicas scored in the shadow, the candidate agreed with
+  the live version's label at least that often.
 
 Without a live version there is nothing to compare with: ``labels``, ``macro_f1`` and ``ece``
 pass with detail "no live version" (the candidate's own scores are still recorded when an
@@ -32,6 +35,8 @@ from textsieve.registry.bundle import Bundle
 from textsieve.registry.evalsets import LabelledText, unknown_labels
 from textsieve.registry.manifest import Manifest
 from textsieve.registry.records import GateResult
+from textsieve.registry.shadow import ShadowCounts
+from textsieve.registry.stats import wilson_interval
 
 # Floating-point slack so that a change of exactly the tolerance passes as documented.
 _EPS = 1e-12
@@ -42,6 +47,9 @@ ECE_BINS = 15
 class GateSettings:
     macro_f1_tolerance: float = 0.01
     ece_tolerance: float = 0.02
+    # The shadow-agreement gate is off (None) unless a level is set; see shadow_gate.
+    shadow_agreement_min: float | None = None
+    shadow_min_texts: int = 1000
 
 
 @dataclass(frozen=True)
@@ -211,6 +219,48 @@ def metric_gates(
     return [f1, ece]
 
 
+def shadow_gate(
+    counts: ShadowCounts | None, candidate: int, live: int | None, settings: GateSettings
+) -> GateResult:
+    """``shadow_agreement``: over at least ``shadow_min_texts`` live texts scored in the shadow, the
+    candidate gave the live version's label to at least ``shadow_agreement_min`` of them.
+
+    The point estimate is compared, and the Wilson 95 % interval (Wilson, 1927) is recorded beside
+    it, so a reader sees how firm the figure is. Without a live version there is nothing to agree with.
+    """
+    level, need = settings.shadow_agreement_min, settings.shadow_min_texts
+    base: dict[str, object] = {"agreement_min": level, "min_texts": need, "live": live, "candidate": candidate}
+    if live is None:
+        return GateResult(name="shadow_agreement", passed=True, detail="no live version", figures=base)
+    if level is None:
+        return GateResult(name="shadow_agreement", passed=True, detail="gate off", figures=base)
+    texts = 0 if counts is None else counts.texts
+    agreed = 0 if counts is None else counts.agreed
+    lo, hi = wilson_interval(agreed, texts)
+    figures = {**base, "texts": texts, "agreed": agreed, "interval95": [lo, hi]}
+    if texts < need:
+        return GateResult(
+            name="shadow_agreement",
+            passed=False,
+            figures=figures,
+            detail=(
+                f"only {texts} live texts scored in the shadow of live version {live} (need {need}); "
+                f"keep version {candidate} as candidate while replicas serve traffic (TEXTSIEVE_SHADOW_RATE)"
+            ),
+        )
+    agreement = agreed / texts
+    ok = agreement + _EPS >= level
+    return GateResult(
+        name="shadow_agreement",
+        passed=ok,
+        figures={**figures, "agreement": agreement},
+        detail=(
+            f"agrees with live version {live} on {agreement:.2%} of {texts} live texts "
+            f"(95 % interval {lo:.2%}–{hi:.2%}; required {level:.2%})"
+        ),
+    )
+
+
 def _score_side(side: Side, evalset: list[LabelledText]) -> tuple[Scores | None, str]:
     unknown = unknown_labels([e.label for e in evalset], side.labels)
     if unknown:
@@ -234,4 +284,5 @@ __all__ = [
     "parity_gate",
     "present_macro_f1",
     "score",
+    "shadow_gate",
 ]
