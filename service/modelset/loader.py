@@ -18,6 +18,7 @@ import numpy as np
 
 from textsieve.errors import BundleError
 from textsieve.registry.bundle import Bundle, open_bundle
+from textsieve.registry.drift import DriftBaseline, Window
 from textsieve.registry.runtime import Predictor, make_session
 
 if TYPE_CHECKING:
@@ -47,6 +48,8 @@ class ServedModel:
     retiring: bool = False
     closed: bool = field(default=False)
     worker_key: tuple[str, int, int] | None = None  # set when loaded in the worker processes
+    baseline: DriftBaseline | None = None  # the bundle's drift baseline (None for bundles without one)
+    window: Window | None = None  # live texts' drift counts, when drift bookkeeping is on
 
     @property
     def key(self) -> tuple[str, int]:
@@ -130,6 +133,7 @@ def load_served(
             load_seconds=time.perf_counter() - started,
             manifest_sha256=manifest_sha256,
             worker_key=key,
+            baseline=bundle.manifest.drift,
         )
     checked = open_bundle(bundle.path)
     first = Predictor.from_bundle(checked, threads=1, batch_size=batch_size)
@@ -151,6 +155,7 @@ def load_served(
         loaded_at=dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat(),
         load_seconds=time.perf_counter() - started,
         manifest_sha256=manifest_sha256,
+        baseline=checked.manifest.drift,
     )
 
 

@@ -16,6 +16,7 @@ from typing import ParamSpec, TypeVar
 
 from textsieve.errors import UnavailableError
 from textsieve.registry import Bundle, Event, ModelInfo, Promotion, Registry, VersionInfo, open_registry
+from textsieve.registry.shadow import Tally
 from textsieve.service.settings import public_location
 
 P = ParamSpec("P")
@@ -67,6 +68,9 @@ class RegistryThread:
     async def live(self, model: str) -> VersionInfo | None:
         return await self._run(self.registry.live, model)
 
+    async def candidate(self, model: str) -> VersionInfo | None:
+        return await self._run(self.registry.candidate, model)
+
     async def history(self, model: str) -> list[Event]:
         return await self._run(self.registry.history, model)
 
@@ -87,6 +91,19 @@ class RegistryThread:
 
     async def rollback(self, model: str, *, reason: str, actor: str | None = None) -> VersionInfo:
         return await self._run(self.registry.rollback, model, reason=reason, actor=actor)
+
+    async def add_shadow_counts(
+        self, model: str, live: int, candidate: int, tally: Tally, *, keep_texts: int, keep_seconds: float
+    ) -> None:
+        await self._run(
+            self.registry.add_shadow_counts,
+            model,
+            live,
+            candidate,
+            tally,
+            keep_texts=keep_texts,
+            keep_seconds=keep_seconds,
+        )
 
     async def close(self) -> None:
         if self._registry is not None:
