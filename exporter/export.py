@@ -314,6 +314,7 @@ def describe_bundle(
         tool_version=__version__,
         created_at=dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat(),
         files=_PLACEHOLDER_FILES,
+        drift=None,  # added by export() once the validation texts are scored
     )
 
 

@@ -45,8 +45,6 @@ from textsieve.registry.manifest import MANIFEST, Manifest
 from textsieve.registry.migrations import migrate
 from textsieve.registry.names import resolve_actor, validate_model_name, validate_reason, validate_version
 from textsieve.registry.queries import Queries
-from textsieve.registry.shadow import ShadowCounts, StoredText, Tally
-from textsieve.registry.shadow_queries import ShadowQueries
 from textsieve.registry.records import (
     EvalsetInfo,
     Event,
@@ -57,6 +55,8 @@ from textsieve.registry.records import (
     State,
     VersionInfo,
 )
+from textsieve.registry.shadow import ShadowCounts, StoredText, Tally
+from textsieve.registry.shadow_queries import ShadowQueries
 
 DB_FILE = "registry.sqlite3"
 BLOB_DIR = "blobs"
@@ -460,7 +460,9 @@ class Registry:
             self.blobs.verify(digest)  # a damaged version is never promoted, forced or not
         return self._gates(model, target, live, evalset, shadow)
 
-    def _shadow_for_gate(self, tx: Tx, model: str, live: VersionInfo | None, target: VersionInfo) -> ShadowCounts | None:
+    def _shadow_for_gate(
+        self, tx: Tx, model: str, live: VersionInfo | None, target: VersionInfo
+    ) -> ShadowCounts | None:
         # Read only when the gate is on. Shadow counts grow all the time, so unlike the live
         # version and the evaluation set they are not re-checked before the promotion commits.
         if self.settings.shadow_agreement_min is None or live is None:
@@ -625,10 +627,9 @@ class Registry:
         live_version, candidate_version = validate_version(live_version), validate_version(candidate_version)
         if tally.empty and not tally.kept:
             return
-        now = utc_now()
-        cutoff = (dt.datetime.now(dt.UTC) - dt.timedelta(seconds=max(keep_seconds, 0.0))).isoformat(
-            timespec="microseconds"
-        )
+        at = dt.datetime.now(dt.UTC)
+        now = at.isoformat(timespec="microseconds")  # as utc_now() writes it
+        cutoff = (at - dt.timedelta(seconds=max(keep_seconds, 0.0))).isoformat(timespec="microseconds")
         with self.backend.write() as tx:
             q = Queries(tx)
             self._require_model(q, model)

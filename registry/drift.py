@@ -107,7 +107,7 @@ def count(
     """One batch's flat count vector (see the module docstring)."""
     share = unknown / np.maximum(kept, 1)
     parts = [
-        stats.histogram(tokens, layout.edges["tokens"]),
+        stats.histogram(tokens.astype(np.float64), layout.edges["tokens"]),
         stats.histogram(share, layout.edges["unknown_share"]),
         stats.histogram((tokens > kept).astype(np.float64), layout.edges["truncated"]),
         np.bincount(best, minlength=layout.labels)[: layout.labels].tolist(),

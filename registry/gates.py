@@ -219,9 +219,7 @@ def metric_gates(
     return [f1, ece]
 
 
-def shadow_gate(
-    counts: ShadowCounts | None, candidate: int, live: int | None, settings: GateSettings
-) -> GateResult:
+def shadow_gate(counts: ShadowCounts | None, candidate: int, live: int | None, settings: GateSettings) -> GateResult:
     """``shadow_agreement``: over at least ``shadow_min_texts`` live texts scored in the shadow, the
     candidate gave the live version's label to at least ``shadow_agreement_min`` of them.
 

@@ -101,8 +101,9 @@ class ShadowCounts(_Record):
     texts: int = Field(description="texts both versions labelled")
     agreed: int = Field(description="texts both versions gave the same label")
     dropped: int = Field(description="sampled texts not scored because the shadow queue was full")
-    delta_sum: float = Field(description="sum over texts of the candidate's minus the live version's probability "
-                             "of the live label")
+    delta_sum: float = Field(
+        description="sum over texts of the candidate's minus the live version's probability of the live label"
+    )
     flushes: int
     first_at: str
     updated_at: str

@@ -12,6 +12,7 @@ from textsieve.errors import InputError
 from textsieve.registry.cli import NONE, _open, _out, add_location_args, table, when
 
 if TYPE_CHECKING:
+    from textsieve.registry.records import VersionInfo
     from textsieve.registry.shadow import ShadowCounts, StoredText
 
 
@@ -64,8 +65,8 @@ def cli_shadow(args: argparse.Namespace) -> int:
     return 0
 
 
-def _num(info: object) -> int | None:
-    return None if info is None else int(getattr(info, "version"))
+def _num(info: VersionInfo | None) -> int | None:
+    return None if info is None else info.version
 
 
 def render(c: ShadowCounts, texts: list[StoredText]) -> str:
@@ -126,10 +127,20 @@ def pairs_table(pairs: list[ShadowCounts]) -> str:
         agreement = NONE if not c.texts else f"{c.agreed / c.texts:.2%}"
         interval = NONE if not c.texts else f"{lo:.2%} – {hi:.2%}"
         rows.append(
-            [c.live_version, c.candidate_version, f"{c.texts:,}", agreement, interval, f"{c.dropped:,}", when(c.updated_at)]
+            [
+                c.live_version,
+                c.candidate_version,
+                f"{c.texts:,}",
+                agreement,
+                interval,
+                f"{c.dropped:,}",
+                when(c.updated_at),
+            ]
         )
     return table(
-        ["LIVE", "CANDIDATE", "TEXTS", "AGREEMENT", "95 % INTERVAL", "DROPPED", "UPDATED (UTC)"], rows, right=(0, 1, 2, 5)
+        ["LIVE", "CANDIDATE", "TEXTS", "AGREEMENT", "95 % INTERVAL", "DROPPED", "UPDATED (UTC)"],
+        rows,
+        right=(0, 1, 2, 5),
     )
 
 

@@ -138,12 +138,16 @@ class Settings(BaseSettings):
         "(0: off); the counts go to the registry (textsieve shadow MODEL)",
     )
     shadow_queue_texts: int = Field(
-        2048, ge=1, le=1_000_000, description="most texts waiting for shadow scoring; beyond it samples are dropped "
-        "and counted"
+        2048,
+        ge=1,
+        le=1_000_000,
+        description="most texts waiting for shadow scoring; beyond it samples are dropped and counted",
     )
     shadow_flush_seconds: float = Field(
-        10.0, gt=0, le=3600, description="how often shadow counts are added to the registry (a crash loses at most "
-        "this much)"
+        10.0,
+        gt=0,
+        le=3600,
+        description="how often shadow counts are added to the registry (a crash loses at most this much)",
     )
     shadow_keep_texts: int = Field(
         0,

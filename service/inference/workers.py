@@ -85,7 +85,7 @@ class Held:
 
 Message = Load | Run | Score | Drop | Held  # what the server sends a worker (None asks it to end)
 # JSON replies, tokens, unknown, truncated, each text's label index and its probability, drift counts
-RunReply = tuple[list[bytes], int, int, int, Any, Any, Any]
+RunReply = tuple[list[Any], int, int, int, Any, Any, Any]
 
 
 class Outcome(StrEnum):

@@ -35,10 +35,10 @@ from textsieve.registry import State
 from textsieve.registry.drift import DriftReport, Layout, Window, compare
 from textsieve.service.inference.batcher import Batcher, InferencePool
 from textsieve.service.inference.memory import release_freed_memory
+from textsieve.service.liveloop.shadow import ShadowScorer
 from textsieve.service.modelset.loader import ServedModel, load_served
 from textsieve.service.modelset.registry_thread import RegistryThread
 from textsieve.service.settings import Settings
-from textsieve.service.liveloop.shadow import ShadowScorer
 from textsieve.service.telemetry import ServiceMetrics
 
 log = logging.getLogger("textsieve.service")
@@ -203,9 +203,7 @@ class ModelSet:
     def _lock(self, key: object) -> asyncio.Lock:
         return self._locks.setdefault(key, asyncio.Lock())
 
-    async def _load(
-        self, name: str, version: int, manifest_sha256: str | None, *, batcher: bool = True
-    ) -> ServedModel:
+    async def _load(self, name: str, version: int, manifest_sha256: str | None, *, batcher: bool = True) -> ServedModel:
         bundle = await self.store.fetch(name, version)
         served = await asyncio.to_thread(
             load_served,
@@ -416,8 +414,9 @@ class ModelSet:
                 self.candidates[name] = await self._load(name, info.version, info.manifest_sha256, batcher=False)
             except TextsieveError as exc:
                 # Shadow scoring is an aid: serving goes on without it, and the next change retries.
-                log.error("model %s: candidate version %s not loaded for shadow scoring: %s", name, info.version,
-                          exc.message)
+                log.error(
+                    "model %s: candidate version %s not loaded for shadow scoring: %s", name, info.version, exc.message
+                )
                 return
             log.info("model %s: candidate version %s scored in the shadow of live traffic", name, info.version)
 

@@ -71,7 +71,7 @@ async def get_drift(name: str, store: RegistryDep, models: ModelsDep, settings: 
                 ],
             )
         )
-    return DriftView(model=name, versions=versions)
+    return DriftView(model=name, scope="replica", versions=versions)
 
 
 __all__ = ["router"]
