@@ -1,7 +1,7 @@
 """A replica killed (SIGKILL) while flushing shadow counts loses at most that flush and corrupts nothing.
 
 The child below is what a replica's flusher does (registry/api.py ``add_shadow_counts``), in a
-tight loop so that the kill lands inside a flush: each flush adds 10 texts, 7 agreeing, 3
+tight loop so that the kill lands inside a flush: each flush adds 10 texts, 8 agreeing, 4
 transitions rows and a kept text, in one transaction, and prints "ok" once it has committed.
 """
 
@@ -74,7 +74,7 @@ def test_sigkill_mid_flush_loses_at_most_one_flush(spec: RegistrySpec, tiny_bund
         # Every acknowledged flush is there; at most one more committed before its "ok" was printed.
         assert flushes in (acked, acked + 1)
         # Nothing half-applied: every column agrees with a whole number of flushes.
-        assert (counts.texts, counts.agreed) == (10 * flushes, 7 * flushes)
+        assert (counts.texts, counts.agreed) == (10 * flushes, 8 * flushes)
         assert counts.delta_sum == pytest.approx(-0.5 * flushes)
         cells = {(t.live_label, t.candidate_label): t.texts for t in counts.transitions}
         assert cells == {

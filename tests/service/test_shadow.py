@@ -110,11 +110,15 @@ async def test_replies_are_the_same_with_shadow_scoring_on(
     body = {"texts": _texts(tiny_data, 12), "spans": 3}
     replies = []
     for rate in (0.0, 1.0):
-        async with serving(_settings(spec, shadow_rate=rate)) as (app, client):
+        # Worker processes (the default): the candidate is scored in them too.
+        async with serving(_settings(spec, shadow_rate=rate, inference="processes")) as (app, client):
             r = await client.post("/v1/predict", json=body)
             assert r.status_code == 200
             replies.append((r.content, r.headers["X-Model-Version"]))
             assert (app.state.models.shadow is not None) == (rate > 0)
+            if rate > 0:
+                counts = await _counts_when(spec, lambda c: c.texts >= len(body["texts"]))
+                assert counts.texts == len(body["texts"])
     assert replies[0] == replies[1]  # byte for byte
 
 
