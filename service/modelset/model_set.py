@@ -15,6 +15,12 @@ clears on the next successful poll.
 
 Pinned versions. A request may pin any version except a retired one; pinned versions are
 dropped from memory when their model changes, so the next pinned request checks the state again.
+
+Shadow candidates. With ``shadow_rate`` > 0 a model's ``candidate`` version is loaded beside its
+live one (no batcher: only the shadow task scores it, see service/liveloop/shadow.py) and
+reloaded or dropped when the registry says the candidate changed. A candidate that fails to load
+only stops shadow scoring; serving goes on. Every live and pinned version keeps a drift window
+(registry/drift.py) unless ``drift`` is off.
 """
 
 from __future__ import annotations
