@@ -19,7 +19,7 @@ from __future__ import annotations
 
 from collections import deque
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -71,6 +71,7 @@ class Layout:
 
     edges: dict[str, tuple[float, ...]]
     labels: int
+    arrays: dict[str, NDArray[np.float64]] = field(default_factory=dict, compare=False, repr=False)
 
     @classmethod
     def of(cls, labels: int, baseline: DriftBaseline | None = None) -> Layout:
@@ -80,6 +81,10 @@ class Layout:
                 if h.edges is not None and name in edges:
                     edges[name] = tuple(h.edges)
         return cls(edges, labels)
+
+    def __post_init__(self) -> None:
+        # As arrays once: count() runs for every batch.
+        object.__setattr__(self, "arrays", {k: np.asarray(v, dtype=np.float64) for k, v in self.edges.items()})
 
     def bins(self, name: str) -> int:
         return self.labels if name == "label" else len(self.edges[name]) - 1
@@ -106,15 +111,22 @@ def count(
 ) -> NDArray[np.int64]:
     """One batch's flat count vector (see the module docstring)."""
     share = unknown / np.maximum(kept, 1)
+    e = layout.arrays
     parts = [
-        stats.histogram(tokens.astype(np.float64), layout.edges["tokens"]),
-        stats.histogram(share, layout.edges["unknown_share"]),
-        stats.histogram((tokens > kept).astype(np.float64), layout.edges["truncated"]),
-        np.bincount(best, minlength=layout.labels)[: layout.labels].tolist(),
-        stats.histogram(top, layout.edges["top_probability"]),
-        [int(unknown.sum()), int(kept.sum())],
+        _bins(tokens, e["tokens"]),
+        _bins(share, e["unknown_share"]),
+        np.array([int((tokens <= kept).sum()), int((tokens > kept).sum())], dtype=np.int64),
+        np.bincount(best, minlength=layout.labels)[: layout.labels],
+        _bins(top, e["top_probability"]),
+        np.array([int(unknown.sum()), int(kept.sum())], dtype=np.int64),
     ]
-    return np.fromiter((c for part in parts for c in part), dtype=np.int64, count=layout.size)
+    return np.concatenate(parts).astype(np.int64, copy=False)
+
+
+def _bins(values: NDArray[np.generic], edges: NDArray[np.float64]) -> NDArray[np.int64]:
+    """:func:`textsieve.registry.stats.histogram` without the list round trip (it runs per batch)."""
+    which = np.clip(np.searchsorted(edges, values, side="right") - 1, 0, len(edges) - 2)
+    return np.bincount(which, minlength=len(edges) - 1)
 
 
 def count_encoded(layout: Layout, encoded: Sequence[Encoded], probs: NDArray[np.floating]) -> NDArray[np.int64]:

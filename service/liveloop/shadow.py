@@ -15,6 +15,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import logging
+import time
 from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -33,6 +34,7 @@ from textsieve.service.telemetry import ServiceMetrics
 
 log = logging.getLogger("textsieve.service")
 BATCH_TEXTS = 128  # most texts scored in one candidate call
+DRAIN_SECONDS = 5.0  # at shutdown, how long queued samples may still be scored
 PairKey = tuple[str, int, int]  # model, live version, candidate version
 
 
@@ -70,6 +72,7 @@ class ShadowScorer:
         self.tallies: dict[PairKey, Tally] = {}
         self._tasks: list[asyncio.Task[None]] = []
         self.flush_failures = 0
+        self._scoring = False
 
     # -- the request side ------------------------------------------------------------------
     def offer(self, model: str, live: int, live_labels: list[str], texts: list[str], scores: LiveScores) -> None:
@@ -108,14 +111,22 @@ class ShadowScorer:
             loop.create_task(self._flush_loop(), name="shadow flushing"),
         ]
 
-    async def stop(self) -> None:
-        """Stop scoring and flush what was counted (a clean shutdown loses nothing already scored)."""
+    async def stop(self, drain_seconds: float = DRAIN_SECONDS) -> None:
+        """Score what is queued (for at most ``drain_seconds``), stop, and flush: a clean shutdown
+        loses no sample it had taken; what is still queued after the drain is counted as dropped."""
+        end = time.monotonic() + drain_seconds
+        while (self._queue or self._scoring) and time.monotonic() < end and self._tasks:
+            await asyncio.sleep(0.01)
         for task in self._tasks:
             task.cancel()
         for task in self._tasks:
             with contextlib.suppress(asyncio.CancelledError):
                 await task
         self._tasks = []
+        while self._queue:
+            item = self._queue.popleft()
+            self.queued_texts -= len(item.texts)
+            self._drop([item], "the service stopped before it was scored")
         await self.flush()
 
     # -- scoring -----------------------------------------------------------------------------
@@ -125,6 +136,7 @@ class ShadowScorer:
                 self._wakeup.clear()
                 await self._wakeup.wait()
             items = self._take()
+            self._scoring = True
             try:
                 await self._score(items)
             except asyncio.CancelledError:
@@ -134,6 +146,8 @@ class ShadowScorer:
             except Exception as exc:  # keep scoring whatever one batch hit; the log has the traceback
                 log.exception("shadow scoring failed")
                 self._drop(items, type(exc).__name__)
+            finally:
+                self._scoring = False
 
     def _take(self) -> list[_Item]:
         """Queued items of the first item's model, up to BATCH_TEXTS texts (at least one item)."""

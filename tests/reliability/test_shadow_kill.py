@@ -18,6 +18,7 @@ import pytest
 
 from tests.helpers.environment import child_env
 from tests.helpers.registries import RegistrySpec
+from textsieve.registry.shadow import ShadowCounts
 
 MODEL = "support"
 CHILD = r"""
@@ -95,3 +96,61 @@ def test_sigkill_mid_flush_loses_at_most_one_flush(spec: RegistrySpec, tiny_bund
         if spec.kind == "sqlite":
             with reg.backend.read() as tx:
                 assert tx.all("PRAGMA integrity_check") == [{"integrity_check": "ok"}]
+
+
+def _consistent(counts: ShadowCounts) -> None:
+    """Sums that only whole flushes keep equal: transitions add up to texts, agreement to the diagonal."""
+    assert sum(t.texts for t in counts.transitions) == counts.texts
+    assert sum(t.texts for t in counts.transitions if t.live_label == t.candidate_label) == counts.agreed
+
+
+def test_a_killed_replica_keeps_what_it_flushed_and_the_next_one_adds_to_it(
+    spec: RegistrySpec, tiny_bundles: dict[str, Path], tiny_data: Path, tmp_path: Path
+) -> None:
+    import httpx
+
+    from tests.helpers.jsonl import read_jsonl
+    from tests.helpers.servers import ServerProcess
+
+    with spec.open() as reg:
+        reg.publish(tiny_bundles["a"], MODEL, actor="tests")
+        reg.publish(tiny_bundles["b"], MODEL, actor="tests")
+        reg.promote(MODEL, 1, "live", reason="start", actor="tests", force=True)
+        reg.promote(MODEL, 2, "candidate", reason="trial", actor="tests")
+    texts = [r["text"] for r in read_jsonl(tiny_data / "test.jsonl")[:80]]
+    settings = {"shadow_rate": 1.0, "shadow_flush_seconds": 0.1, "access_log": "false"}
+
+    def read() -> ShadowCounts | None:
+        with spec.open() as reg:
+            return reg.shadow_pair(MODEL, 1, 2)
+
+    def send(url: str, batch: list[str]) -> None:
+        for i in range(0, len(batch), 2):
+            r = httpx.post(f"{url}/v1/predict", json={"texts": batch[i : i + 2], "spans": 0}, timeout=60)
+            assert r.status_code == 200
+
+    first = ServerProcess.start(spec.location, tmp_path / "first.log", blobs=spec.blobs, workers=1, **settings)
+    try:
+        first.wait_ready()
+        send(first.url, texts[:60])
+        end = time.monotonic() + 60
+        while (c := read()) is None or c.texts < 20:
+            assert time.monotonic() < end, f"no shadow counts flushed: {first.output()[-2000:]}"
+            time.sleep(0.05)
+        first.proc.send_signal(signal.SIGKILL)  # flushing every 0.1 s: likely inside or near one
+        first.proc.wait(timeout=30)
+    finally:
+        first.stop()
+    killed = read()
+    assert killed is not None and 20 <= killed.texts <= 60 and killed.dropped == 0
+    _consistent(killed)
+
+    second = ServerProcess.start(spec.location, tmp_path / "second.log", blobs=spec.blobs, workers=1, **settings)
+    try:
+        second.wait_ready()
+        send(second.url, texts[60:80])
+    finally:
+        assert second.terminate() == 0  # a clean stop flushes what was scored
+    after = read()
+    assert after is not None and after.texts == killed.texts + 20
+    _consistent(after)
