@@ -387,7 +387,7 @@ class Registry:
             live = q.in_state(model, State.LIVE)
             evalset = q.evalset(model)
             shadow = self._shadow_for_gate(tx, model, live, target)
-        return self._gates(model, target, live, evalset, shadow)
+        return self._gates(model, target, live, evalset, shadow=shadow)
 
     def promote(
         self,
@@ -458,7 +458,9 @@ class Registry:
         _allowed(target, State.LIVE)
         for digest in target.files.values():
             self.blobs.verify(digest)  # a damaged version is never promoted, forced or not
-        return self._gates(model, target, live, evalset, shadow)
+        if shadow is None:  # the common case keeps _gates' four-argument call
+            return self._gates(model, target, live, evalset)
+        return self._gates(model, target, live, evalset, shadow=shadow)
 
     def _shadow_for_gate(
         self, tx: Tx, model: str, live: VersionInfo | None, target: VersionInfo
