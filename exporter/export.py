@@ -20,6 +20,7 @@ from textsieve.files import atomic_directory, atomic_write_text, sha256_file
 from textsieve.labelled import Example, load_examples
 from textsieve.registry import measures
 from textsieve.registry.bundle import check_graph, manifest_json
+from textsieve.registry.drift import DriftBaseline, Layout, baseline, count_encoded
 from textsieve.registry.manifest import (
     CARD_FILE,
     INPUTS,
@@ -156,7 +157,9 @@ def export(
         _print_parity(parity, calibration, log)
         _require_parity(parity)
         metrics = held_out_metrics(ort, sources, targets, got.logits)
-        manifest = write_manifest(tmp, describe_bundle(run, chosen, calibration, parity, metrics))
+        draft = describe_bundle(run, chosen, calibration, parity, metrics)
+        draft = draft.model_copy(update={"drift": drift_baseline(ort, valid, got.logits)})
+        manifest = write_manifest(tmp, draft)
     return manifest
 
 
@@ -239,6 +242,12 @@ def check_parity(
     return parity, got
 
 
+def drift_baseline(ort: Predictor, encoded: list[Encoded], logits: np.ndarray) -> DriftBaseline:
+    """The validation texts' drift signals, counted exactly as a serving replica counts live texts."""
+    layout = Layout.of(len(ort.labels))
+    return baseline(layout, count_encoded(layout, encoded, ort.probabilities(logits)), source="validation")
+
+
 def _require_parity(parity: ParityReport) -> None:
     if not parity.passed:
         raise ParityError(
@@ -305,6 +314,7 @@ def describe_bundle(
         tool_version=__version__,
         created_at=dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat(),
         files=_PLACEHOLDER_FILES,
+        drift=None,  # added by export() once the validation texts are scored
     )
 
 

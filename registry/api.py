@@ -36,11 +36,11 @@ from textsieve.errors import (
     RegistryError,
     StateError,
 )
-from textsieve.registry._db import Backend
+from textsieve.registry._db import Backend, Tx
 from textsieve.registry.blobs import BlobStore, materialize
 from textsieve.registry.bundle import Bundle, open_bundle
 from textsieve.registry.evalsets import NormalisedEvalset, load_evalset, parse_stored, unknown_labels
-from textsieve.registry.gates import GateSettings, Side, labels_gate, metric_gates, parity_gate
+from textsieve.registry.gates import GateSettings, Side, labels_gate, metric_gates, parity_gate, shadow_gate
 from textsieve.registry.manifest import MANIFEST, Manifest
 from textsieve.registry.migrations import migrate
 from textsieve.registry.model_settings import MCNEMAR, TOLERANCES, Group, ModelSettings, Value, setting
@@ -56,6 +56,8 @@ from textsieve.registry.records import (
     State,
     VersionInfo,
 )
+from textsieve.registry.shadow import ShadowCounts, StoredText, Tally
+from textsieve.registry.shadow_queries import ShadowQueries
 from textsieve.registry.verdicts import Verdicts
 
 DB_FILE = "registry.sqlite3"
@@ -470,7 +472,8 @@ class Registry:
             live = q.in_state(model, State.LIVE)
             evalset = q.evalset(model)
             settings = self._settings_in(q, model)
-        return self._gates(model, target, live, evalset, settings)
+            shadow = self._shadow_for_gate(tx, model, live, target, settings)
+        return self._gates(model, target, live, evalset, settings, shadow=shadow)
 
     def promote(
         self,
@@ -498,7 +501,8 @@ class Registry:
                     live = q.in_state(model, State.LIVE)
                     evalset = q.evalset(model)
                     settings = self._settings_in(q, model)
-                gates = self._judge(model, target, live, evalset, settings)
+                    shadow = self._shadow_for_gate(tx, model, live, target, settings)
+                gates = self._judge(model, target, live, evalset, settings, shadow)
                 with self.backend.write() as tx:
                     q = Queries(tx)
                     tx.lock_model(model)
@@ -522,7 +526,9 @@ class Registry:
                     tx.lock_model(model)
                     target = self._require_version(q, model, version)
                     live = q.in_state(model, State.LIVE)
-                    gates = self._judge(model, target, live, q.evalset(model), self._settings_in(q, model))
+                    settings = self._settings_in(q, model)
+                    shadow = self._shadow_for_gate(tx, model, live, target, settings)
+                    gates = self._judge(model, target, live, q.evalset(model), settings, shadow)
                     outcome = self._apply_live(q, target, live, gates, reason=reason, actor=actor, force=force)
             event_id, info, failed = outcome
             if info is None:
@@ -537,11 +543,23 @@ class Registry:
         live: VersionInfo | None,
         evalset: EvalsetInfo | None,
         settings: ModelSettings,
+        shadow: ShadowCounts | None,
     ) -> list[GateResult]:
         _allowed(target, State.LIVE)
         for digest in target.files.values():
             self.blobs.verify(digest)  # a damaged version is never promoted, forced or not
-        return self._gates(model, target, live, evalset, settings)
+        if shadow is None:  # the common case keeps _gates' five-argument call
+            return self._gates(model, target, live, evalset, settings)
+        return self._gates(model, target, live, evalset, settings, shadow=shadow)
+
+    def _shadow_for_gate(
+        self, tx: Tx, model: str, live: VersionInfo | None, target: VersionInfo, settings: ModelSettings
+    ) -> ShadowCounts | None:
+        # Read only when the gate is on. Shadow counts grow all the time, so unlike the live
+        # version and the evaluation set they are not re-checked before the promotion commits.
+        if GateSettings.of(settings).shadow_agreement_min is None or live is None:
+            return None
+        return ShadowQueries(tx).pair(model, live.version, target.version)
 
     def _apply_live(
         self,
@@ -681,6 +699,58 @@ class Registry:
             )
         return live, self._require_version(q, model, live.previous_live)
 
+    # -- shadow counts ------------------------------------------------------------------------
+    def add_shadow_counts(
+        self,
+        model: str,
+        live_version: int,
+        candidate_version: int,
+        tally: Tally,
+        *,
+        keep_texts: int = 0,
+        keep_seconds: float = 7 * 86400.0,
+    ) -> None:
+        """Add one replica's shadow tally to the pair's sums, in one transaction (see registry/shadow.py).
+
+        With ``keep_texts`` > 0 the tally's disagreeing texts are stored too, and the model's stored
+        texts are trimmed to the newest ``keep_texts`` and to those younger than ``keep_seconds``.
+        """
+        model = validate_model_name(model)
+        live_version, candidate_version = validate_version(live_version), validate_version(candidate_version)
+        if tally.empty and not tally.kept:
+            return
+        at = dt.datetime.now(dt.UTC)
+        now = at.isoformat(timespec="microseconds")  # as utc_now() writes it
+        cutoff = (at - dt.timedelta(seconds=max(keep_seconds, 0.0))).isoformat(timespec="microseconds")
+        with self.backend.write() as tx:
+            q = Queries(tx)
+            self._require_model(q, model)
+            sq = ShadowQueries(tx)
+            sq.add(model, live_version, candidate_version, tally, now)
+            if keep_texts > 0 and tally.kept:
+                sq.keep_texts(model, live_version, candidate_version, tally, now)
+            sq.trim_texts(model, keep_texts, cutoff)
+
+    def shadow_counts(self, model: str) -> list[ShadowCounts]:
+        """Every (live, candidate) pair's shadow counts, the most recently updated first."""
+        model = validate_model_name(model)
+        with self.backend.read() as tx:
+            self._require_model(Queries(tx), model)
+            return ShadowQueries(tx).pairs(model)
+
+    def shadow_pair(self, model: str, live_version: int, candidate_version: int) -> ShadowCounts | None:
+        model = validate_model_name(model)
+        with self.backend.read() as tx:
+            self._require_model(Queries(tx), model)
+            return ShadowQueries(tx).pair(model, validate_version(live_version), validate_version(candidate_version))
+
+    def shadow_texts(self, model: str, live_version: int, candidate_version: int, limit: int = 50) -> list[StoredText]:
+        """The newest kept disagreeing texts of a pair (none unless a replica was told to keep them)."""
+        model = validate_model_name(model)
+        with self.backend.read() as tx:
+            self._require_model(Queries(tx), model)
+            return ShadowQueries(tx).texts(model, live_version, candidate_version, max(1, limit))
+
     # -- helpers --------------------------------------------------------------------------
     def _gates(
         self,
@@ -689,6 +759,7 @@ class Registry:
         live: VersionInfo | None,
         evalset: EvalsetInfo | None,
         settings: ModelSettings,
+        shadow: ShadowCounts | None = None,
     ) -> list[GateResult]:
         manifest = Manifest.model_validate_json(self.blobs.read_bytes(target.files[MANIFEST]))
         gates = [parity_gate(manifest), labels_gate(target.labels, None if live is None else live.labels, _num(live))]
@@ -698,7 +769,10 @@ class Registry:
         cand = Side(target.version, target.labels, lambda: self._materialize(target))
         live_side = None if live is None else Side(live.version, live.labels, lambda: self._materialize(live))
         digest = None if evalset is None else evalset.sha256
-        gates += metric_gates(model, cand, live_side, examples, digest, GateSettings.of(settings))
+        gate_settings = GateSettings.of(settings)
+        gates += metric_gates(model, cand, live_side, examples, digest, gate_settings)
+        if gate_settings.shadow_agreement_min is not None:
+            gates.append(shadow_gate(shadow, target.version, _num(live), gate_settings))
         return gates
 
     def _resolve(self, model: str, version: int | None) -> VersionInfo:

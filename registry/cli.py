@@ -1,6 +1,6 @@
 """The registry verbs of the ``textsieve`` command: publish, models, versions, show, promote,
-rollback, history, evalset add, gates, review-threshold, verdicts and gc, each with its flags (:func:`register`)
-next to its handler.
+rollback, history, evalset add, gates, review-threshold, verdicts and gc (shadow lives in shadow_cli.py), each with
+its flags (:func:`register`) next to its handler.
 Tables are plain aligned text; errors are raised and the command's main() prints them as one
 line with the error's exit status.
 
@@ -201,6 +201,10 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p.add_argument("--dry-run", action="store_true", help="list what would be deleted, delete nothing")
     add_location_args(p)
     p.set_defaults(func=cli_gc)
+
+    from textsieve.registry import shadow_cli  # its own module (it imports this one's helpers)
+
+    shadow_cli.register(sub)
 
 
 def add_location_args(p: argparse.ArgumentParser) -> None:

@@ -7,6 +7,9 @@
   ``macro_f1_tolerance`` (default 0.01) against the live version.
 - ``ece``: on the same set, expected calibration error (15 equal-width bins; Naeini et al.,
   2015; Guo et al., 2017, eq. 3) does not rise by more than ``ece_tolerance`` (default 0.02).
+- ``shadow_agreement`` (optional, off unless ``shadow_agreement_min`` is set): over at least
+  ``shadow_min_texts`` live texts the replicas scored in the shadow, the candidate agreed with
+  the live version's label at least that often.
 
 - ``mcnemar`` (when the model's ``mcnemar`` setting is on): refuse a candidate that is
   significantly worse than live on the same texts: the exact McNemar p of the texts the two
@@ -44,12 +47,15 @@ from textsieve.registry.model_settings import (
     MACRO_F1_DROP,
     MCNEMAR,
     MCNEMAR_P,
+    SHADOW_AGREEMENT_MIN,
+    SHADOW_MIN_TEXTS,
     TOLERANCES,
     ModelSettings,
     Value,
 )
 from textsieve.registry.records import GateResult
-from textsieve.registry.stats import mcnemar_exact_p
+from textsieve.registry.shadow import ShadowCounts
+from textsieve.registry.stats import mcnemar_exact_p, wilson_interval
 
 # Floating-point slack so that a change of exactly the tolerance passes as documented.
 _EPS = 1e-12
@@ -65,6 +71,9 @@ class GateSettings:
     tolerances: bool = TOLERANCES.default
     mcnemar: bool = MCNEMAR.default
     mcnemar_p: float = MCNEMAR_P.default
+    # The shadow-agreement gate is off (None) unless a level is set; see shadow_gate.
+    shadow_agreement_min: float | None = SHADOW_AGREEMENT_MIN.default
+    shadow_min_texts: int = int(SHADOW_MIN_TEXTS.default)
 
     def as_defaults(self) -> dict[str, Value]:
         """These values as per-model setting defaults (keys of textsieve.registry.model_settings)."""
@@ -74,6 +83,8 @@ class GateSettings:
             TOLERANCES.key: self.tolerances,
             MCNEMAR.key: self.mcnemar,
             MCNEMAR_P.key: self.mcnemar_p,
+            SHADOW_AGREEMENT_MIN.key: self.shadow_agreement_min,
+            SHADOW_MIN_TEXTS.key: float(self.shadow_min_texts),
         }
 
     @classmethod
@@ -84,6 +95,8 @@ class GateSettings:
             tolerances=settings.get(TOLERANCES),
             mcnemar=settings.get(MCNEMAR),
             mcnemar_p=settings.get(MCNEMAR_P),
+            shadow_agreement_min=settings.get(SHADOW_AGREEMENT_MIN),
+            shadow_min_texts=int(settings.get(SHADOW_MIN_TEXTS)),
         )
 
 
@@ -320,6 +333,46 @@ def _mcnemar_gate(
     return GateResult(name="mcnemar", passed=not worse, detail=detail, figures=figures)
 
 
+def shadow_gate(counts: ShadowCounts | None, candidate: int, live: int | None, settings: GateSettings) -> GateResult:
+    """``shadow_agreement``: over at least ``shadow_min_texts`` live texts scored in the shadow, the
+    candidate gave the live version's label to at least ``shadow_agreement_min`` of them.
+
+    The point estimate is compared, and the Wilson 95 % interval (Wilson, 1927) is recorded beside
+    it, so a reader sees how firm the figure is. Without a live version there is nothing to agree with.
+    """
+    level, need = settings.shadow_agreement_min, settings.shadow_min_texts
+    base: dict[str, object] = {"agreement_min": level, "min_texts": need, "live": live, "candidate": candidate}
+    if live is None:
+        return GateResult(name="shadow_agreement", passed=True, detail="no live version", figures=base)
+    if level is None:
+        return GateResult(name="shadow_agreement", passed=True, detail="gate off", figures=base)
+    texts = 0 if counts is None else counts.texts
+    agreed = 0 if counts is None else counts.agreed
+    lo, hi = wilson_interval(agreed, texts)
+    figures = {**base, "texts": texts, "agreed": agreed, "interval95": [lo, hi]}
+    if texts < need:
+        return GateResult(
+            name="shadow_agreement",
+            passed=False,
+            figures=figures,
+            detail=(
+                f"only {texts} live texts scored in the shadow of live version {live} (need {need}); "
+                f"keep version {candidate} as candidate while replicas serve traffic (TEXTSIEVE_SHADOW_RATE)"
+            ),
+        )
+    agreement = agreed / texts
+    ok = agreement + _EPS >= level
+    return GateResult(
+        name="shadow_agreement",
+        passed=ok,
+        figures={**figures, "agreement": agreement},
+        detail=(
+            f"agrees with live version {live} on {agreement:.2%} of {texts} live texts "
+            f"(95 % interval {lo:.2%}–{hi:.2%}; required {level:.2%})"
+        ),
+    )
+
+
 def _score_side(side: Side, evalset: list[LabelledText], *, paired: bool) -> tuple[Graded | None, str]:
     unknown = unknown_labels([e.label for e in evalset], side.labels)
     if unknown:
@@ -351,4 +404,5 @@ __all__ = [
     "grade",
     "report_path",
     "score",
+    "shadow_gate",
 ]

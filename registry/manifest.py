@@ -10,6 +10,7 @@ from typing import Final, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
+from textsieve.registry.drift import DriftBaseline
 from textsieve.registry.tokenizer import TokenizerSpec
 
 FORMAT: Final = "textsieve-bundle"
@@ -159,6 +160,8 @@ class Manifest(_Strict):
     tool_version: str
     created_at: str
     files: dict[str, str] = Field(description="file name → sha256 of every other file in the bundle")
+    # Optional: bundles exported before drift signals existed have none, and load as before.
+    drift: DriftBaseline | None = Field(None, description="the validation texts' drift signals, recorded at export")
 
     @field_validator("labels")
     @classmethod

@@ -109,6 +109,49 @@ MIGRATIONS: tuple[Migration, ...] = (
         )
     """,
     ),
+    Migration(
+        "0006_shadow_counts",
+        # Counts of the candidate scored in the shadow of live traffic, per (live, candidate)
+        # pair; replicas add theirs with UPSERTs, so every column is a sum. Disagreeing texts
+        # are kept only when a replica is told to (bounded and aged out by the writers).
+        """
+        CREATE TABLE shadow_pairs (
+            model TEXT NOT NULL,
+            live_version INTEGER NOT NULL,
+            candidate_version INTEGER NOT NULL,
+            texts BIGINT NOT NULL,
+            agreed BIGINT NOT NULL,
+            dropped BIGINT NOT NULL,
+            delta_sum DOUBLE PRECISION NOT NULL,
+            flushes BIGINT NOT NULL,
+            first_at TEXT NOT NULL,
+            updated_at TEXT NOT NULL,
+            PRIMARY KEY (model, live_version, candidate_version)
+        );
+        CREATE TABLE shadow_transitions (
+            model TEXT NOT NULL,
+            live_version INTEGER NOT NULL,
+            candidate_version INTEGER NOT NULL,
+            live_label TEXT NOT NULL,
+            candidate_label TEXT NOT NULL,
+            texts BIGINT NOT NULL,
+            PRIMARY KEY (model, live_version, candidate_version, live_label, candidate_label)
+        );
+        CREATE TABLE shadow_texts (
+            id {serial},
+            model TEXT NOT NULL,
+            live_version INTEGER NOT NULL,
+            candidate_version INTEGER NOT NULL,
+            text TEXT NOT NULL,
+            live_label TEXT NOT NULL,
+            live_probability DOUBLE PRECISION NOT NULL,
+            candidate_label TEXT NOT NULL,
+            candidate_probability DOUBLE PRECISION NOT NULL,
+            at TEXT NOT NULL
+        );
+        CREATE INDEX shadow_texts_model ON shadow_texts (model, id)
+    """,
+    ),
     # Reviewers' verdicts on single predictions: the text they judged, what the version said and
     # the label they gave. Rows are only added or deleted (data-protection requests), never changed.
     Migration(

@@ -156,6 +156,14 @@ ECE_RISE = declare(Setting.number("ece_rise", 0.02, 0.0, 1.0, G, "largest ECE ri
 TOLERANCES = declare(Setting.switch("tolerances", True, G, "enforce the two fixed tolerances above"))
 MCNEMAR = declare(Setting.switch("mcnemar", False, G, "refuse a candidate significantly worse than live (McNemar)"))
 MCNEMAR_P = declare(Setting.level("mcnemar_p", 0.05, 0.0, 0.5, G, "significance level of the McNemar gate"))
+SHADOW_AGREEMENT_MIN = declare(
+    Setting.optional(
+        "shadow_agreement_min", 0.0, 1.0, G, "least share of live texts the candidate must label as live did (shadow)"
+    )
+)
+SHADOW_MIN_TEXTS = declare(
+    Setting.number("shadow_min_texts", 1000, 1, 1e9, G, "live texts scored in the shadow before that share counts")
+)
 REVIEW_THRESHOLD = declare(
     Setting.optional("review_threshold", 0.0, 1.0, R, "results whose top probability is below it need review")
 )
@@ -256,6 +264,8 @@ __all__ = [
     "SettingValue",
     "Value",
     "allowed_keys",
+    "SHADOW_AGREEMENT_MIN",
+    "SHADOW_MIN_TEXTS",
     "declare",
     "parse_assignment",
     "setting",

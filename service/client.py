@@ -1,4 +1,4 @@
-"""``textsieve predict`` and ``textsieve health``: small clients of a running service, with their flags.
+"""``textsieve predict``, ``drift`` and ``health``: small clients of a running service, with their flags.
 
 httpx is imported inside the handlers: this module is imported whenever the command line is built.
 """
@@ -21,7 +21,7 @@ URL_HELP = f"address of the running service (default: $TEXTSIEVE_URL, else {DEFA
 
 
 def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
-    """Add ``predict`` and ``health`` to the ``textsieve`` command."""
+    """Add ``predict``, ``drift`` and ``health`` to the ``textsieve`` command."""
     p = sub.add_parser("predict", help="ask a running service; prints label, probabilities and spans")
     p.add_argument("texts", nargs="+", help="texts to classify, one argument each")
     p.add_argument("--url", help=URL_HELP)
@@ -30,6 +30,12 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p.add_argument("--spans", type=int, default=3, help="most n-gram spans to show per text")
     p.add_argument("--json", action="store_true", help="print the raw JSON reply")
     p.set_defaults(func=cli_predict)
+
+    p = sub.add_parser("drift", help="drift signals of a model's live texts on a running service, with PSI bands")
+    p.add_argument("model", help="model name")
+    p.add_argument("--url", help=URL_HELP)
+    p.add_argument("--json", action="store_true", help="print the raw JSON reply")
+    p.set_defaults(func=cli_drift)
 
     p = sub.add_parser("health", help="exit 0 when the service is ready, 1 otherwise, with one line of why")
     p.add_argument("--url", help=URL_HELP)
@@ -127,6 +133,70 @@ def cli_predict(args: argparse.Namespace) -> int:
     return 0
 
 
+def render_drift(reply: dict[str, Any]) -> str:
+    """One block per served version: the window, the rates beside the baseline's, and each signal's band."""
+    model = reply["model"]
+    if not reply["versions"]:
+        return f"{model}: this replica serves no version of it with a drift window (TEXTSIEVE_DRIFT off, or not served)"
+    lines: list[str] = []
+    for v in reply["versions"]:
+        base = v["baseline"]
+        lines.append(
+            f"{model} v{v['version']} ({v['role']}): {v['texts']:,} live texts in this replica's window "
+            f"of {v['window_texts']:,}"
+        )
+        if base is None:
+            lines.append(f"  {v['detail']}")
+            lines.append("")
+            continue
+
+        def rate(x: float | None) -> str:
+            return "-" if x is None else f"{x:.2%}"
+
+        lines.append(
+            f"  unknown tokens {rate(v['unknown_rate'])} (baseline {rate(base['unknown_rate'])}) · "
+            f"truncated {rate(v['truncation_rate'])} (baseline {rate(base['truncation_rate'])}) · "
+            f"baseline: {base['texts']:,} {base['source']} texts"
+        )
+        rows = [("SIGNAL", "PSI", "JS DISTANCE", "BAND")]
+        for s in v["signals"]:
+            psi = "-" if s["psi"] is None else f"{s['psi']:.4f}"
+            js = "-" if s["js_distance"] is None else f"{s['js_distance']:.4f}"
+            rows.append((s["name"], psi, js, s["band"] or "-"))
+        widths = [max(len(r[c]) for r in rows) for c in range(4)]
+        for r in rows:
+            cells = [r[0].ljust(widths[0]), r[1].rjust(widths[1]), r[2].rjust(widths[2]), r[3]]
+            lines.append("  " + "  ".join(cells))
+        lines.append(f"  {v['detail']}")
+        lines.append("")
+    lines.append(
+        "Bands: PSI < 0.1 stable, 0.1-0.25 watch, > 0.25 act (common practice). Drift says the texts changed, "
+        "not that the labels are wrong: have people review a sample before acting."
+    )
+    return "\n".join(lines)
+
+
+def cli_drift(args: argparse.Namespace) -> int:
+    import urllib.parse
+
+    import httpx
+
+    base = _base(service_url(args.url))
+    try:
+        with httpx.Client(timeout=30.0) as client:
+            r = client.get(f"{base}/v1/models/{urllib.parse.quote(args.model, safe='')}/drift")
+    except httpx.HTTPError as exc:
+        raise UnavailableError(
+            f"cannot reach {base} ({type(exc).__name__}: {exc}); is 'textsieve serve' running?"
+        ) from exc
+    if r.status_code >= 500:
+        raise UnavailableError(_problem_detail(r))
+    if r.status_code != 200:
+        raise InputError(_problem_detail(r))
+    print(r.text if args.json else render_drift(r.json()))
+    return 0
+
+
 def cli_health(args: argparse.Namespace) -> int:
     """Exit 0 when /readyz says ready, 1 otherwise; always exactly one line.
 
@@ -157,4 +227,4 @@ def cli_health(args: argparse.Namespace) -> int:
     return 1
 
 
-__all__ = ["cli_health", "cli_predict", "highlight", "register", "render"]
+__all__ = ["cli_drift", "cli_health", "cli_predict", "highlight", "register", "render", "render_drift"]

@@ -135,6 +135,37 @@ class Settings(BaseSettings):
     pinned_versions: int = Field(2, ge=0, le=32, description="non-live versions kept loaded for pinned requests")
     access_log: bool = Field(True, description="one JSON line per request on stderr")
 
+    shadow_rate: float = Field(
+        0.1,
+        ge=0,
+        le=1,
+        description="share of live requests also scored by the model's candidate version, after the reply "
+        "(0: off); the counts go to the registry (textsieve shadow MODEL)",
+    )
+    shadow_queue_texts: int = Field(
+        2048,
+        ge=1,
+        le=1_000_000,
+        description="most texts waiting for shadow scoring; beyond it samples are dropped and counted",
+    )
+    shadow_flush_seconds: float = Field(
+        10.0,
+        gt=0,
+        le=3600,
+        description="how often shadow counts are added to the registry (a crash loses at most this much)",
+    )
+    shadow_keep_texts: int = Field(
+        0,
+        ge=0,
+        le=100_000,
+        description="keep the newest N texts the candidate labels differently, for review (0: keep no text)",
+    )
+    shadow_keep_days: float = Field(7.0, gt=0, le=3650, description="kept texts older than this are deleted")
+    drift: bool = Field(True, description="count drift signals of live texts per served version")
+    drift_window_texts: int = Field(
+        10_000, ge=100, le=10_000_000, description="the rolling window of live texts drift signals are computed over"
+    )
+
     # The same rules as the registry verbs apply to TEXTSIEVE_REGISTRY and TEXTSIEVE_BLOBS.
     @field_validator("registry")
     @classmethod

@@ -228,6 +228,59 @@ class OverloadCollector(Collector):
         yield refused
 
 
+@dataclass(frozen=True, slots=True)
+class ShadowMetrics:
+    """Shadow scoring's families, labelled by model (off the request path: ``.labels()`` is fine)."""
+
+    texts: Counter
+    agreed: Counter
+    dropped: Counter
+    flushes: Counter
+
+
+class LiveLoopCollector(Collector):
+    """The shadow queue and each served version's drift figures, computed when scraped.
+
+    PSI and Jensen–Shannon distance cost a few small NumPy calls per signal; doing them here
+    rather than per batch keeps the request path to one vector addition.
+    """
+
+    def __init__(self) -> None:
+        self.models: Any = None  # service.modelset.model_set.ModelSet, while the app runs
+
+    def collect(self) -> Iterator[Metric]:
+        models = self.models
+        if models is None:
+            return
+        shadow = getattr(models, "shadow", None)
+        if shadow is not None:
+            yield GaugeMetricFamily(
+                "textsieve_shadow_queue_texts", "Texts waiting for shadow scoring.", value=shadow.queued_texts
+            )
+        mv = ("model", "version")
+        window = GaugeMetricFamily(
+            "textsieve_drift_window_texts", "Live texts in the drift window of a served version.", labels=mv
+        )
+        psi = GaugeMetricFamily(
+            "textsieve_drift_psi",
+            "Population stability index of a drift signal, live window against the bundle's baseline.",
+            labels=(*mv, "signal"),
+        )
+        js = GaugeMetricFamily(
+            "textsieve_drift_js_distance",
+            "Jensen-Shannon distance (natural log) of a drift signal, live window against the baseline.",
+            labels=(*mv, "signal"),
+        )
+        for name, version, report in models.drift_reports():
+            labels = [name, str(version)]
+            window.add_metric(labels, report.texts)
+            for sig in report.signals:
+                if sig.psi is not None and sig.js_distance is not None:
+                    psi.add_metric([*labels, sig.name], sig.psi)
+                    js.add_metric([*labels, sig.name], sig.js_distance)
+        yield from (window, psi, js)
+
+
 class _WithoutCreated(Collector):
     """The registry minus the ``*_created`` series the library adds to counters and histograms:
     they were never part of what this service exposes, and they would double its series."""
@@ -316,6 +369,31 @@ class ServiceMetrics:
         r.register(self.worker_processes)
         self.overload = OverloadCollector()
         r.register(self.overload)
+        self.shadow = ShadowMetrics(
+            texts=Counter(
+                "textsieve_shadow_texts_total", "Live texts also scored by the candidate.", ("model",), registry=r
+            ),
+            agreed=Counter(
+                "textsieve_shadow_agreed_texts_total",
+                "Shadow-scored texts the candidate gave the live version's label.",
+                ("model",),
+                registry=r,
+            ),
+            dropped=Counter(
+                "textsieve_shadow_dropped_texts_total",
+                "Texts sampled for shadow scoring but dropped (queue full, or scoring failed).",
+                ("model",),
+                registry=r,
+            ),
+            flushes=Counter(
+                "textsieve_shadow_flushes_total",
+                "Shadow-count flushes to the registry, per outcome (ok, failed).",
+                ("outcome",),
+                registry=r,
+            ),
+        )
+        self.live_loop = LiveLoopCollector()
+        r.register(self.live_loop)
         ProcessCollector(registry=r)  # the server process's own process_* series
         self._versions: dict[tuple[str, int], VersionMetrics] = {}
         self._http: dict[tuple[str, str, int], tuple[Counter, Histogram]] = {}
@@ -367,8 +445,10 @@ class ServiceMetrics:
 __all__ = [
     "CONTENT_TYPE",
     "CountedHistogram",
+    "LiveLoopCollector",
     "OverloadCollector",
     "ServiceMetrics",
+    "ShadowMetrics",
     "VersionMetrics",
     "WorkerProcessCollector",
 ]

@@ -28,7 +28,11 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
+from numpy.typing import NDArray
+
 from textsieve.errors import DeadlinePassedError, UnavailableError
+from textsieve.registry.drift import count_encoded
 from textsieve.service.inference.admission import Admission
 from textsieve.service.inference.packing import run_packed
 from textsieve.service.inference.spans import explain, mark_for_review
@@ -93,6 +97,19 @@ class _Job:
     taken: int = 0
     pending: int = 0
     deadline: float | None = None  # perf_counter time from the caller's Textsieve-Deadline header
+    scores: LiveScores | None = None  # kept only for requests sampled for shadow scoring
+
+
+@dataclass(slots=True)
+class LiveScores:
+    """Each text's label index and calibrated probability of that label (what shadow scoring compares)."""
+
+    best: NDArray[np.int32]
+    top: NDArray[np.float64]
+
+    @classmethod
+    def empty(cls, n: int) -> LiveScores:
+        return cls(np.zeros(n, dtype=np.int32), np.zeros(n, dtype=np.float64))
 
 
 @dataclass(slots=True)
@@ -110,6 +127,9 @@ class _Done:
     tokens: int = 0
     unknown: int = 0
     truncated: int = 0
+    best: Any = None  # per text, in batch order: label index and its probability
+    top: Any = None
+    counts: Any = None  # drift counts of the batch, when asked for
 
 
 class Batcher:
@@ -135,6 +155,19 @@ class Batcher:
 
     async def submit(self, texts: list[str], spans: int, *, deadline: float | None = None) -> list[Result]:
         """Queue ``texts`` and wait for their results; refused at once when the replica is full."""
+        return (await self._submit(texts, spans, deadline, keep_scores=False))[0]
+
+    async def submit_scored(
+        self, texts: list[str], spans: int, *, deadline: float | None = None
+    ) -> tuple[list[Result], LiveScores]:
+        """:meth:`submit`, plus each text's label index and probability (for shadow scoring)."""
+        results, scores = await self._submit(texts, spans, deadline, keep_scores=True)
+        assert scores is not None
+        return results, scores
+
+    async def _submit(
+        self, texts: list[str], spans: int, deadline: float | None, *, keep_scores: bool
+    ) -> tuple[list[Result], LiveScores | None]:
         if self._task is None or self._task.done():
             raise UnavailableError(f"model {self.served.name} version {self.served.version} is not accepting work")
         admission = self.pool.admission
@@ -144,9 +177,11 @@ class Batcher:
             loop = asyncio.get_running_loop()
             job = _Job(texts, spans, loop.create_future(), time.perf_counter(), [None] * len(texts), 0, len(texts))
             job.deadline = deadline
+            if keep_scores:
+                job.scores = LiveScores.empty(len(texts))
             self._queue.append(job)
             self._wakeup.set()
-            return await job.future
+            return await job.future, job.scores
         finally:
             admission.finished(len(texts))
 
@@ -215,16 +250,23 @@ class Batcher:
         procs = self.pool.procs
         key = self.served.worker_key
         review = self.served.review_threshold
+        window = self.served.window
         if procs is not None and key is not None:
-            results, tokens, unknown, truncated = procs.run(self.pool.index(), key, texts, ks, review)
-            return _Done(results, started, time.perf_counter() - started, tokens, unknown, truncated)
+            results, tokens, unknown, truncated, best, top, counts = procs.run(
+                self.pool.index(), key, texts, ks, review, drift=window is not None
+            )
+            seconds = time.perf_counter() - started
+            return _Done(results, started, seconds, tokens, unknown, truncated, best, top, counts)
         p = self.served.predictors[self.pool.index()]
         encoded = [p.encode(t) for t in texts]
         out = run_packed(p, encoded)
-        results = explain(p, encoded, out, ks)
+        probs = p.probabilities(out.logits)
+        results = explain(p, encoded, out, ks, probs=probs)
         if review is not None:
             mark_for_review(results, review)
-        done = _Done(results, started, time.perf_counter() - started)
+        done = _Done(results, started, time.perf_counter() - started, best=probs.argmax(axis=1), top=probs.max(axis=1))
+        if window is not None:
+            done.counts = count_encoded(window.layout, encoded, probs)
         for e in encoded:
             done.tokens += len(e.ids)
             done.unknown += e.unknown
@@ -251,10 +293,16 @@ class Batcher:
         m.truncated.inc(done.truncated)
         for p in pieces:  # every text of a piece waited as long as its request
             m.queue_wait.observe(done.started - p.job.enqueued, p.hi - p.lo)
+        window = self.served.window
+        if window is not None and done.counts is not None:
+            window.add(len(done.results), done.counts)
         at = 0
         for p in pieces:
             job = p.job
             n = p.hi - p.lo
+            if job.scores is not None:
+                job.scores.best[p.lo : p.hi] = done.best[at : at + n]
+                job.scores.top[p.lo : p.hi] = done.top[at : at + n]
             job.results[p.lo : p.hi] = done.results[at : at + n]
             at += n
             job.pending -= n
@@ -281,4 +329,4 @@ class Batcher:
         return sum(len(j.texts) - j.taken for j in self._queue)
 
 
-__all__ = ["Batcher", "InferencePool"]
+__all__ = ["Batcher", "InferencePool", "LiveScores"]

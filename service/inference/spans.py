@@ -17,11 +17,14 @@ import numpy as np
 from textsieve.registry.runtime import SPAN_FLOOR, Encoded, Outputs, Predictor
 
 
-def explain(p: Predictor, encoded: list[Encoded], out: Outputs, ks: list[int]) -> list[dict[str, Any]]:
-    """One public result dict per text; text i gets at most ``ks[i]`` spans."""
+def explain(
+    p: Predictor, encoded: list[Encoded], out: Outputs, ks: list[int], *, probs: np.ndarray | None = None
+) -> list[dict[str, Any]]:
+    """One public result dict per text; text i gets at most ``ks[i]`` spans (``probs``: already computed)."""
     n = len(encoded)
     labels = p.labels
-    probs = p.probabilities(out.logits)
+    if probs is None:
+        probs = p.probabilities(out.logits)
     best = probs.argmax(axis=1)
     spans_by_row = _spans(p, encoded, out, best, np.asarray(ks, dtype=np.int64))
     results: list[dict[str, Any]] = []

@@ -52,12 +52,24 @@ class Load:
 
 @dataclass(frozen=True, slots=True)
 class Run:
-    """Score ``texts`` with ``key``, ``ks[i]`` spans for text i; replies (JSON replies, tokens, unknown, truncated)."""
+    """Score ``texts`` with ``key``, ``ks[i]`` spans for text i; replies a :data:`RunReply`.
+
+    With ``drift`` the worker also counts the batch's drift signals (a few vectorised NumPy calls).
+    """
 
     key: Key
     texts: list[str]
     ks: list[int]
     review: float | None = None  # the model's review threshold: results below it get needs_review
+    drift: bool = False
+
+
+@dataclass(frozen=True, slots=True)
+class Score:
+    """Only the calibrated probabilities of ``texts`` (shadow scoring: no spans, no JSON); replies an array."""
+
+    key: Key
+    texts: list[str]
 
 
 @dataclass(frozen=True, slots=True)
@@ -72,7 +84,9 @@ class Held:
     """Which keys the worker has loaded; replies a sorted list."""
 
 
-Message = Load | Run | Drop | Held  # what the server sends a worker (None asks it to end)
+Message = Load | Run | Score | Drop | Held  # what the server sends a worker (None asks it to end)
+# JSON replies, tokens, unknown, truncated, each text's label index and its probability, drift counts
+RunReply = tuple[list[Any], int, int, int, Any, Any, Any]
 
 
 class Outcome(StrEnum):
@@ -100,9 +114,11 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
     # the pipe closes and the worker ends on its own.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    import numpy as np
     import orjson
 
     from textsieve.registry.bundle import open_bundle
+    from textsieve.registry.drift import Layout, count_encoded
     from textsieve.registry.runtime import Predictor
     from textsieve.service.inference.memory import release_freed_memory
     from textsieve.service.inference.packing import run_packed
@@ -110,6 +126,7 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
     from textsieve.service.modelset.loader import warm_and_check
 
     predictors: dict[Key, Predictor] = {}
+    layouts: dict[Key, Layout] = {}
     while True:
         try:
             msg = conn.recv()
@@ -122,7 +139,8 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
                 p = predictors[msg.key]
                 encoded = [p.encode(t) for t in msg.texts]
                 out = run_packed(p, encoded)
-                results = explain(p, encoded, out, msg.ks)
+                probs = p.probabilities(out.logits)
+                results = explain(p, encoded, out, msg.ks, probs=probs)
                 if msg.review is not None:
                     mark_for_review(results, msg.review)
                 tokens = unknown = truncated = 0
@@ -130,17 +148,33 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
                     tokens += len(e.ids)
                     unknown += e.unknown
                     truncated += e.tokens > len(e.ids)
+                counts = count_encoded(layouts[msg.key], encoded, probs) if msg.drift else None
                 # Each reply serialised here, once: the server embeds the bytes as they are.
-                conn.send((Outcome.OK.value, ([orjson.dumps(r) for r in results], tokens, unknown, truncated)))
+                reply = (
+                    [orjson.dumps(r) for r in results],
+                    tokens,
+                    unknown,
+                    truncated,
+                    probs.argmax(axis=1).astype(np.int32),
+                    probs.max(axis=1),
+                    counts,
+                )
+                conn.send((Outcome.OK.value, reply))
+            elif isinstance(msg, Score):
+                p = predictors[msg.key]
+                out = run_packed(p, [p.encode(t) for t in msg.texts])
+                conn.send((Outcome.OK.value, p.probabilities(out.logits)))
             elif isinstance(msg, Load):
                 checked = open_bundle(Path(msg.bundle))
                 p = Predictor.from_bundle(checked, threads=1, batch_size=msg.batch_size)
                 warm_and_check(p, list(checked.manifest.labels))
                 predictors[msg.key] = p
+                layouts[msg.key] = Layout.of(len(checked.manifest.labels), checked.manifest.drift)
                 conn.send((Outcome.OK.value, None))
             elif isinstance(msg, Held):
                 conn.send((Outcome.OK.value, sorted(predictors)))
             elif isinstance(msg, Drop):
+                layouts.pop(msg.key, None)
                 if predictors.pop(msg.key, None) is not None:
                     release_freed_memory()
                 conn.send((Outcome.OK.value, None))
@@ -166,6 +200,7 @@ def _fork_context() -> Any:
                 [
                     "textsieve.service.inference.workers",
                     "textsieve.registry.runtime",
+                    "textsieve.registry.drift",
                     "textsieve.service.inference.spans",
                     "textsieve.service.inference.packing",
                     "textsieve.service.modelset.loader",
@@ -367,14 +402,31 @@ class WorkerProcesses:
             pass  # a worker that died has nothing left to free
 
     def run(
-        self, index: int, key: Key, texts: list[str], ks: list[int], review: float | None = None
-    ) -> tuple[list[Any], int, int, int]:
-        """Reply per text as an ``orjson.Fragment`` (JSON made by the worker), and batch counts."""
+        self,
+        index: int,
+        key: Key,
+        texts: list[str],
+        ks: list[int],
+        review: float | None = None,
+        *,
+        drift: bool = False,
+    ) -> RunReply:
+        """Reply per text as an ``orjson.Fragment`` (JSON made by the worker), batch counts, each
+        text's label index and probability, and (with ``drift``) the batch's drift counts. Results
+        whose top probability is below ``review`` are marked needs_review."""
+        w = self._worker(index, key)
+        replies, tokens, unknown, truncated, best, top, counts = w.call(Run(key, texts, ks, review, drift), retry=True)
+        return [orjson.Fragment(r) for r in replies], tokens, unknown, truncated, best, top, counts
+
+    def score(self, index: int, key: Key, texts: list[str]) -> Any:
+        """Calibrated probabilities of ``texts`` (rows in order, columns in the version's label order)."""
+        return self._worker(index, key).call(Score(key, texts), retry=True)
+
+    def _worker(self, index: int, key: Key) -> _Worker:
         w = self.workers[index % len(self.workers)]
         if key not in w.loaded:
             raise UnavailableError(f"model {key[0]} version {key[1]} is not loaded in inference worker {index}")
-        replies, tokens, unknown, truncated = w.call(Run(key, texts, ks, review), retry=True)
-        return [orjson.Fragment(r) for r in replies], tokens, unknown, truncated
+        return w
 
     def held(self) -> list[list[Key]]:
         """What each worker process itself says it has loaded (for tests and diagnostics)."""

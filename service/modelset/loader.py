@@ -18,6 +18,7 @@ import numpy as np
 
 from textsieve.errors import BundleError
 from textsieve.registry.bundle import Bundle, open_bundle
+from textsieve.registry.drift import DriftBaseline, Window
 from textsieve.registry.runtime import Predictor, make_session
 
 if TYPE_CHECKING:
@@ -50,6 +51,8 @@ class ServedModel:
     # The model's review threshold (a registry setting of the model, not of this version): read
     # by the batcher for each batch, so a change applies from the next batch on.
     review_threshold: float | None = None
+    baseline: DriftBaseline | None = None  # the bundle's drift baseline (None for bundles without one)
+    window: Window | None = None  # live texts' drift counts, when drift bookkeeping is on
 
     @property
     def key(self) -> tuple[str, int]:
@@ -133,6 +136,7 @@ def load_served(
             load_seconds=time.perf_counter() - started,
             manifest_sha256=manifest_sha256,
             worker_key=key,
+            baseline=bundle.manifest.drift,
         )
     checked = open_bundle(bundle.path)
     first = Predictor.from_bundle(checked, threads=1, batch_size=batch_size)
@@ -154,6 +158,7 @@ def load_served(
         loaded_at=dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat(),
         load_seconds=time.perf_counter() - started,
         manifest_sha256=manifest_sha256,
+        baseline=checked.manifest.drift,
     )
 
 

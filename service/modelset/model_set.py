@@ -19,6 +19,12 @@ dropped from memory when their model changes, so the next pinned request checks 
 Review thresholds. A model's ``review_threshold`` setting (per model, not per version) is read
 when the model is first served and again whenever a ``settings`` event for it is polled; a
 settings change alone swaps nothing and keeps pinned versions loaded.
+
+Shadow candidates. With ``shadow_rate`` > 0 a model's ``candidate`` version is loaded beside its
+live one (no batcher: only the shadow task scores it, see service/liveloop/shadow.py) and
+reloaded or dropped when the registry says the candidate changed. A candidate that fails to load
+only stops shadow scoring; serving goes on. Every live and pinned version keeps a drift window
+(registry/drift.py) unless ``drift`` is off.
 """
 
 from __future__ import annotations
@@ -27,6 +33,7 @@ import asyncio
 import contextlib
 import datetime as dt
 import logging
+import random
 import time
 from collections import OrderedDict
 from dataclasses import dataclass
@@ -35,9 +42,11 @@ from typing import NoReturn
 
 from textsieve.errors import InputError, NotFoundError, StateError, TextsieveError, UnavailableError
 from textsieve.registry import State
+from textsieve.registry.drift import DriftReport, Layout, Window, compare
 from textsieve.registry.model_settings import REVIEW_THRESHOLD
 from textsieve.service.inference.batcher import Batcher, InferencePool
 from textsieve.service.inference.memory import release_freed_memory
+from textsieve.service.liveloop.shadow import ShadowScorer
 from textsieve.service.modelset.loader import ServedModel, load_served
 from textsieve.service.modelset.registry_thread import RegistryThread
 from textsieve.service.settings import Settings
@@ -88,10 +97,19 @@ class ModelSet:
         # needs_review field).
         self.review_thresholds: dict[str, float] = {}
         self._settings_read: set[str] = set()
+        # Shadow scoring: each model's candidate version, loaded beside its live one.
+        self.candidates: dict[str, ServedModel] = {}
+        self.shadow: ShadowScorer | None = None
+        if settings.shadow_rate > 0:
+            self.shadow = ShadowScorer(
+                settings, pool, store, metrics, candidate=self.use_candidate, release=self.release
+            )
 
     # -- lifecycle ------------------------------------------------------------------------
     async def start(self) -> None:
         """Load every served model's live version, then poll for changes."""
+        if self.shadow is not None:
+            self.shadow.start()
         try:
             await self._discover()
         except TextsieveError as exc:
@@ -115,6 +133,7 @@ class ModelSet:
         for name in names:
             await self.read_settings(name)
             await self.refresh(name, why="startup")
+            await self.refresh_candidate(name)
         self._discovered = True
         self.startup_error = None
 
@@ -123,9 +142,12 @@ class ModelSet:
             self._poller.cancel()
             with contextlib.suppress(asyncio.CancelledError):
                 await self._poller
-        served = {*self.live.values(), *self.pinned.values(), *self._retiring}
+        if self.shadow is not None:
+            await self.shadow.stop()  # flushes what was counted while the registry is still open
+        served = {*self.live.values(), *self.pinned.values(), *self.candidates.values(), *self._retiring}
         self.live.clear()
         self.pinned.clear()
+        self.candidates.clear()
         for s in served:
             await self._close(s)
         if self._closing:
@@ -197,7 +219,7 @@ class ModelSet:
     def _lock(self, key: object) -> asyncio.Lock:
         return self._locks.setdefault(key, asyncio.Lock())
 
-    async def _load(self, name: str, version: int, manifest_sha256: str | None) -> ServedModel:
+    async def _load(self, name: str, version: int, manifest_sha256: str | None, *, batcher: bool = True) -> ServedModel:
         bundle = await self.store.fetch(name, version)
         served = await asyncio.to_thread(
             load_served,
@@ -210,6 +232,10 @@ class ModelSet:
             procs=self.pool.procs,
         )
         served.review_threshold = self.review_thresholds.get(name)
+        if not batcher:  # a shadow candidate: scored by the shadow task only, no drift window
+            return served
+        if self.settings.drift:
+            served.window = Window(Layout.of(len(served.labels), served.baseline), self.settings.drift_window_texts)
         served.batcher = Batcher(
             served,
             self.pool,
@@ -403,6 +429,63 @@ class ModelSet:
                 self._retire(old)
             return served
 
+    # -- shadow scoring and drift -------------------------------------------------------------
+    async def refresh_candidate(self, name: str) -> None:
+        """Load ``name``'s candidate beside its live version for shadow scoring (or drop one that went)."""
+        if self.shadow is None:
+            return
+        async with self._lock(("candidate", name)):
+            current = self.candidates.get(name)
+            try:
+                info = await self.store.candidate(name)
+            except NotFoundError:
+                info = None
+            if info is not None and current is not None and current.version == info.version:
+                return
+            if current is not None:
+                del self.candidates[name]
+                self._retire(current)
+            if info is None or name not in self.live:
+                return
+            try:
+                self.candidates[name] = await self._load(name, info.version, info.manifest_sha256, batcher=False)
+            except TextsieveError as exc:
+                # Shadow scoring is an aid: serving goes on without it, and the next change retries.
+                log.error(
+                    "model %s: candidate version %s not loaded for shadow scoring: %s", name, info.version, exc.message
+                )
+                return
+            log.info("model %s: candidate version %s scored in the shadow of live traffic", name, info.version)
+
+    def use_candidate(self, name: str) -> ServedModel | None:
+        """The loaded candidate of ``name``, counted as in use (pair with :meth:`release`), or None."""
+        cand = self.candidates.get(name)
+        if cand is None or cand.closed or cand.retiring:
+            return None
+        cand.active += 1
+        return cand
+
+    def shadow_sample(self, served: ServedModel) -> bool:
+        """Whether this request (answered by ``served``) is also scored by the candidate."""
+        return (
+            self.shadow is not None
+            and served.name in self.candidates
+            and self.live.get(served.name) is served  # live traffic only, not pinned requests
+            and random.random() < self.settings.shadow_rate
+        )
+
+    def drift_reports(self, name: str | None = None) -> list[tuple[str, int, DriftReport]]:
+        """(model, version, report) of every served version with a drift window (of ``name`` only, if given)."""
+        out = []
+        seen: set[int] = set()
+        for served in [*self.live.values(), *self.pinned.values()]:
+            if served.window is None or id(served) in seen or (name is not None and served.name != name):
+                continue
+            seen.add(id(served))
+            report = compare(served.window.layout, served.baseline, served.window.counts())
+            out.append((served.name, served.version, report))
+        return sorted(out, key=lambda t: (t[0], t[1]))
+
     def _drop_pinned(self, name: str) -> None:
         """Forget the pinned versions of a changed model: their state may have changed too."""
         for key in [k for k in self.pinned if k[0] == name]:
@@ -455,6 +538,8 @@ class ModelSet:
             self._drop_pinned(name)
         for name in sorted(changed | retry):
             await self.refresh(name, why="registry change" if name in changed else "retry")
+        for name in sorted(changed):
+            await self.refresh_candidate(name)
         self._update_ready()
 
 

@@ -26,6 +26,7 @@ from textsieve.registry import (
     open_registry,
 )
 from textsieve.registry.records import VerdictInfo
+from textsieve.registry.shadow import Tally
 from textsieve.service.settings import public_location
 
 P = ParamSpec("P")
@@ -77,6 +78,9 @@ class RegistryThread:
     async def live(self, model: str) -> VersionInfo | None:
         return await self._run(self.registry.live, model)
 
+    async def candidate(self, model: str) -> VersionInfo | None:
+        return await self._run(self.registry.candidate, model)
+
     async def history(self, model: str) -> list[Event]:
         return await self._run(self.registry.history, model)
 
@@ -121,6 +125,19 @@ class RegistryThread:
             predicted_probability=predicted_probability,
             verdict_label=verdict_label,
             reviewer=reviewer,
+        )
+
+    async def add_shadow_counts(
+        self, model: str, live: int, candidate: int, tally: Tally, *, keep_texts: int, keep_seconds: float
+    ) -> None:
+        await self._run(
+            self.registry.add_shadow_counts,
+            model,
+            live,
+            candidate,
+            tally,
+            keep_texts=keep_texts,
+            keep_seconds=keep_seconds,
         )
 
     async def close(self) -> None:

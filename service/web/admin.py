@@ -76,6 +76,7 @@ async def promote(
         name, version, body.to, reason=body.reason, actor=_actor(request, body.actor), force=body.force
     )
     await models.refresh(name, why=f"promote via admin API: {body.reason}")
+    await models.refresh_candidate(name)
     request.state.model, request.state.version = name, version
     return AdminReply(
         model=name,
@@ -101,6 +102,7 @@ async def rollback(
 ) -> AdminReply:
     info = await store.rollback(name, reason=body.reason, actor=_actor(request, body.actor))
     await models.refresh(name, why=f"rollback via admin API: {body.reason}")
+    await models.refresh_candidate(name)
     request.state.model, request.state.version = name, info.version
     return AdminReply(
         model=name, version=VersionView.of(info), serving=ServingView.model_validate(models.serving(name))

@@ -52,7 +52,7 @@ TAGS: list[dict[str, Any]] = [
     {
         "name": Tag.REGISTRY.value,
         "description": "Read-only views of the registry: models, their versions and recent history, "
-        "with what this replica serves of each.",
+        "with what this replica serves of each, and drift signals of the live texts it answered.",
     },
     {
         "name": Tag.ADMIN.value,

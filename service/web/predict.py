@@ -8,6 +8,7 @@ from typing import Any
 
 import orjson
 from fastapi import APIRouter, Request, Response
+from starlette.background import BackgroundTask
 
 from textsieve.errors import InputError, LimitError
 from textsieve.service.settings import Settings
@@ -112,9 +113,18 @@ async def predict(
     raw = request.headers.get(DEADLINE_HEADER)
     deadline = None if raw is None else _deadline(raw, request)
     served = await models.acquire(body.model, body.version)
+    background = None
     try:
         assert served.batcher is not None
-        results = await served.batcher.submit(body.texts, body.spans, deadline=deadline)
+        if models.shadow_sample(served):
+            results, scores = await served.batcher.submit_scored(body.texts, body.spans, deadline=deadline)
+            # Offered to the shadow queue only once the reply has been sent (and never waited for).
+            assert models.shadow is not None
+            background = BackgroundTask(
+                models.shadow.offer_after_reply, served.name, served.version, served.labels, body.texts, scores
+            )
+        else:
+            results = await served.batcher.submit(body.texts, body.spans, deadline=deadline)
     finally:
         models.release(served)
     state = request.state
@@ -125,6 +135,7 @@ async def predict(
         orjson.dumps(payload),
         media_type="application/json",
         headers={"X-Model-Version": f"{served.name}/{served.version}"},
+        background=background,
     )
 
 

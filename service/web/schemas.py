@@ -252,6 +252,42 @@ class Readiness(BaseModel):
     )
 
 
+class SignalView(BaseModel):
+    name: Literal["tokens", "unknown_share", "truncated", "label", "top_probability"]
+    psi: float | None = Field(description="population stability index against the baseline; null without one")
+    js_distance: float | None = Field(description="Jensen-Shannon distance (natural log), 0 to sqrt(ln 2)")
+    band: Literal["stable", "watch", "act"] | None = Field(
+        description="PSI < 0.1 stable, 0.1-0.25 watch, > 0.25 act (common practice)"
+    )
+
+
+class BaselineView(BaseModel):
+    source: str
+    texts: int
+    unknown_rate: float
+    truncation_rate: float
+
+
+class VersionDrift(BaseModel):
+    version: int
+    role: Literal["live", "pinned"]
+    texts: int = Field(description="live texts in this replica's window")
+    window_texts: int = Field(description="the window's size (TEXTSIEVE_DRIFT_WINDOW_TEXTS)")
+    unknown_rate: float | None
+    truncation_rate: float | None
+    baseline: BaselineView | None = Field(description="null: the bundle has no baseline (exported before 0006)")
+    detail: str
+    signals: list[SignalView]
+
+
+class DriftView(BaseModel):
+    model: str
+    scope: Literal["replica"] = Field(
+        "replica", description="figures of the replica that answered; each replica keeps its own window"
+    )
+    versions: list[VersionDrift]
+
+
 class Problem(BaseModel):
     """RFC 9457 problem details, plus our extension members."""
 

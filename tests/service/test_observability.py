@@ -58,6 +58,11 @@ EXPOSED = {
     "textsieve_body_bytes_in_flight",
     "textsieve_queue_texts",
     "textsieve_queue_limit_texts",
+    # The live loop (service/liveloop/): the shadow queue, and drift of the live texts per version.
+    "textsieve_shadow_queue_texts",
+    "textsieve_drift_window_texts",
+    "textsieve_drift_psi",
+    "textsieve_drift_js_distance",
 }
 Samples = dict[tuple[str, tuple[tuple[str, str], ...]], float]
 

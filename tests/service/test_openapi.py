@@ -34,6 +34,7 @@ OPERATIONS = {
     "getLiveness": ("GET /healthz", Tag.HEALTH),
     "getReadiness": ("GET /readyz", Tag.HEALTH),
     "getMetrics": ("GET /metrics", Tag.HEALTH),
+    "getDrift": ("GET /v1/models/{name}/drift", Tag.REGISTRY),
 }
 METHODS = ("get", "put", "post", "delete", "patch", "head", "options", "trace")
 

@@ -1,0 +1,255 @@
+"""Drift signals: what texts look like to a model, as histograms a baseline and a live window share.
+
+Five signals, each a histogram over fixed bins so that the export's baseline (the validation
+texts) and a replica's rolling window of live texts are comparable bin for bin:
+
+- ``tokens``: tokens per text before truncation;
+- ``unknown_share``: share of a text's kept tokens outside the vocabulary;
+- ``truncated``: whether a text was cut to ``max_length`` (two bins: whole, cut);
+- ``label``: the predicted label (one bin per label, in the manifest's order);
+- ``top_probability``: the calibrated probability of the predicted label.
+
+A batch's counts are one flat int64 vector (every signal's bins, then the batch's unknown and
+kept token totals) made with a few vectorised NumPy calls, so workers can count every batch
+for a few microseconds and the server only adds vectors. PSI and Jensen–Shannon distance come
+from :mod:`textsieve.registry.stats`; the bands are the usual reading (common practice).
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
+
+import numpy as np
+from numpy.typing import NDArray
+from pydantic import BaseModel, ConfigDict, Field
+
+from textsieve.registry import stats
+
+if TYPE_CHECKING:
+    from textsieve.registry.runtime import Encoded
+
+SIGNALS: tuple[str, ...] = ("tokens", "unknown_share", "truncated", "label", "top_probability")
+# Edges as stats.histogram reads them: [e_i, e_i+1), the last bin closed and catching anything
+# above it (a text of 2,000 tokens lands in the last tokens bin).
+TOKEN_EDGES: tuple[float, ...] = (0, 1, 2, 3, 4, 6, 8, 12, 16, 24, 32, 48, 64, 96, 128, 192, 256, 512)
+UNKNOWN_EDGES: tuple[float, ...] = (0.0, 1e-9, 0.05, 0.1, 0.2, 0.35, 0.5, 1.0)
+TRUNCATED_EDGES: tuple[float, ...] = (0.0, 0.5, 1.0)
+TOP_EDGES: tuple[float, ...] = (0.0, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95, 0.99, 1.0)
+DEFAULT_EDGES: dict[str, tuple[float, ...]] = {
+    "tokens": TOKEN_EDGES,
+    "unknown_share": UNKNOWN_EDGES,
+    "truncated": TRUNCATED_EDGES,
+    "top_probability": TOP_EDGES,
+}
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class SignalHistogram(_Strict):
+    edges: list[float] | None = Field(description="bin edges; None for the label mix (one bin per label)")
+    counts: list[int]
+
+
+class DriftBaseline(_Strict):
+    """The signals of the texts a bundle was checked on, recorded at export (an optional manifest part)."""
+
+    source: str = Field(description="which texts: 'validation'")
+    texts: int = Field(ge=1)
+    unknown_rate: float = Field(ge=0, le=1, description="unknown tokens / kept tokens")
+    truncation_rate: float = Field(ge=0, le=1, description="share of texts cut to max_length")
+    histograms: dict[str, SignalHistogram]
+
+
+@dataclass(frozen=True)
+class Layout:
+    """Where each signal's bins sit in a flat count vector, for one model's labels and edges."""
+
+    edges: dict[str, tuple[float, ...]]
+    labels: int
+    arrays: dict[str, NDArray[np.float64]] = field(default_factory=dict, compare=False, repr=False)
+
+    @classmethod
+    def of(cls, labels: int, baseline: DriftBaseline | None = None) -> Layout:
+        edges = dict(DEFAULT_EDGES)
+        if baseline is not None:  # the bundle's own edges win, so its baseline stays comparable
+            for name, h in baseline.histograms.items():
+                if h.edges is not None and name in edges:
+                    edges[name] = tuple(h.edges)
+        return cls(edges, labels)
+
+    def __post_init__(self) -> None:
+        # As arrays once: count() runs for every batch.
+        object.__setattr__(self, "arrays", {k: np.asarray(v, dtype=np.float64) for k, v in self.edges.items()})
+
+    def bins(self, name: str) -> int:
+        return self.labels if name == "label" else len(self.edges[name]) - 1
+
+    def slices(self) -> dict[str, slice]:
+        out, at = {}, 0
+        for name in SIGNALS:
+            out[name] = slice(at, at + self.bins(name))
+            at += self.bins(name)
+        return out
+
+    @property
+    def size(self) -> int:
+        return sum(self.bins(n) for n in SIGNALS) + 2  # + unknown tokens, kept tokens
+
+
+def count(
+    layout: Layout,
+    tokens: NDArray[np.int64],
+    kept: NDArray[np.int64],
+    unknown: NDArray[np.int64],
+    best: NDArray[np.int64],
+    top: NDArray[np.floating],
+) -> NDArray[np.int64]:
+    """One batch's flat count vector (see the module docstring)."""
+    share = unknown / np.maximum(kept, 1)
+    e = layout.arrays
+    parts = [
+        _bins(tokens, e["tokens"]),
+        _bins(share, e["unknown_share"]),
+        np.array([int((tokens <= kept).sum()), int((tokens > kept).sum())], dtype=np.int64),
+        np.bincount(best, minlength=layout.labels)[: layout.labels],
+        _bins(top, e["top_probability"]),
+        np.array([int(unknown.sum()), int(kept.sum())], dtype=np.int64),
+    ]
+    return np.concatenate(parts).astype(np.int64, copy=False)
+
+
+def _bins(values: NDArray[np.generic], edges: NDArray[np.float64]) -> NDArray[np.int64]:
+    """:func:`textsieve.registry.stats.histogram` without the list round trip (it runs per batch)."""
+    which = np.clip(np.searchsorted(edges, values, side="right") - 1, 0, len(edges) - 2)
+    return np.bincount(which, minlength=len(edges) - 1)
+
+
+def count_encoded(layout: Layout, encoded: Sequence[Encoded], probs: NDArray[np.floating]) -> NDArray[np.int64]:
+    """:func:`count` for encoded texts and their calibrated probabilities (rows in the same order)."""
+    n = len(encoded)
+    tokens = np.fromiter((e.tokens for e in encoded), dtype=np.int64, count=n)
+    kept = np.fromiter((len(e.ids) for e in encoded), dtype=np.int64, count=n)
+    unknown = np.fromiter((e.unknown for e in encoded), dtype=np.int64, count=n)
+    return count(layout, tokens, kept, unknown, probs.argmax(axis=1), probs.max(axis=1))
+
+
+def baseline(
+    layout: Layout,
+    counts: NDArray[np.int64],
+    *,
+    source: str = "validation",
+) -> DriftBaseline:
+    """A baseline from a count vector (the export's validation texts)."""
+    sl = layout.slices()
+    texts = int(counts[sl["truncated"]].sum())
+    hists = {
+        name: SignalHistogram(
+            edges=None if name == "label" else list(layout.edges[name]), counts=[int(c) for c in counts[sl[name]]]
+        )
+        for name in SIGNALS
+    }
+    unknown, kept = int(counts[-2]), int(counts[-1])
+    return DriftBaseline(
+        source=source,
+        texts=max(texts, 1),
+        unknown_rate=unknown / kept if kept else 0.0,
+        truncation_rate=int(counts[sl["truncated"]][1]) / texts if texts else 0.0,
+        histograms=hists,
+    )
+
+
+@dataclass(frozen=True)
+class SignalDrift:
+    name: str
+    psi: float | None
+    js_distance: float | None
+    band: str | None
+
+
+@dataclass(frozen=True)
+class DriftReport:
+    """One version's window against its baseline; figures are None where either side is empty."""
+
+    texts: int
+    unknown_rate: float | None
+    truncation_rate: float | None
+    baseline: DriftBaseline | None
+    signals: list[SignalDrift]
+
+
+def compare(layout: Layout, base: DriftBaseline | None, counts: NDArray[np.int64]) -> DriftReport:
+    """PSI and Jensen–Shannon distance of each signal, window (``counts``) against ``base``."""
+    sl = layout.slices()
+    texts = int(counts[sl["truncated"]].sum())
+    unknown, kept = int(counts[-2]), int(counts[-1])
+    signals = []
+    for name in SIGNALS:
+        window = counts[sl[name]]
+        expected = None if base is None else base.histograms.get(name)
+        if expected is None or texts == 0 or sum(expected.counts) == 0 or len(expected.counts) != len(window):
+            signals.append(SignalDrift(name, None, None, None))
+            continue
+        psi = stats.population_stability_index(expected.counts, window)
+        js = stats.jensen_shannon_distance(expected.counts, window)
+        signals.append(SignalDrift(name, psi, js, stats.psi_band(psi)))
+    return DriftReport(
+        texts=texts,
+        unknown_rate=unknown / kept if kept else None,
+        truncation_rate=int(counts[sl["truncated"]][1]) / texts if texts else None,
+        baseline=base,
+        signals=signals,
+    )
+
+
+class Window:
+    """The most recent ``size`` texts' counts (whole batches: it may hold up to one batch more).
+
+    Batches are kept as vectors with a running sum, so adding one and dropping the oldest are
+    a vector addition each; the server thread is the only writer.
+    """
+
+    def __init__(self, layout: Layout, size: int) -> None:
+        self.layout = layout
+        self.size = size
+        self._chunks: deque[tuple[int, NDArray[np.int64]]] = deque()
+        self._total = np.zeros(layout.size, dtype=np.int64)
+        self._texts = 0
+
+    def add(self, texts: int, counts: NDArray[np.int64]) -> None:
+        if texts <= 0 or len(counts) != self.layout.size:
+            return
+        self._chunks.append((texts, counts))
+        self._total += counts
+        self._texts += texts
+        while self._chunks and self._texts - self._chunks[0][0] >= self.size:
+            n, old = self._chunks.popleft()
+            self._total -= old
+            self._texts -= n
+
+    @property
+    def texts(self) -> int:
+        return self._texts
+
+    def counts(self) -> NDArray[np.int64]:
+        return self._total.copy()
+
+
+__all__ = [
+    "DEFAULT_EDGES",
+    "SIGNALS",
+    "DriftBaseline",
+    "DriftReport",
+    "Layout",
+    "SignalDrift",
+    "SignalHistogram",
+    "Window",
+    "baseline",
+    "compare",
+    "count",
+    "count_encoded",
+]

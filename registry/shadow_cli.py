@@ -1,0 +1,147 @@
+"""``textsieve shadow MODEL``: how the candidate labels live traffic, from the counts replicas flushed.
+
+Imported whenever the command line is built, so the registry is imported inside the handler.
+"""
+
+from __future__ import annotations
+
+import argparse
+from typing import TYPE_CHECKING
+
+from textsieve.errors import InputError
+from textsieve.registry.cli import NONE, _open, _out, add_location_args, table, when
+
+if TYPE_CHECKING:
+    from textsieve.registry.records import VersionInfo
+    from textsieve.registry.shadow import ShadowCounts, StoredText
+
+
+def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    p = sub.add_parser(
+        "shadow",
+        help="agreement of the candidate with the live version on live traffic scored in the shadow",
+    )
+    p.add_argument("model", help="model name")
+    p.add_argument("--live", type=int, help="live version of the pair (default: the current live version)")
+    p.add_argument("--candidate", type=int, help="candidate version of the pair (default: the current candidate)")
+    p.add_argument("--all", action="store_true", help="a table of every pair with counts instead")
+    p.add_argument(
+        "--texts",
+        type=int,
+        default=0,
+        metavar="N",
+        help="also show the newest N disagreeing texts (kept only where a replica was told to keep them)",
+    )
+    add_location_args(p)
+    p.set_defaults(func=cli_shadow)
+
+
+def cli_shadow(args: argparse.Namespace) -> int:
+    if args.texts < 0:
+        raise InputError(f"--texts {args.texts}: give 0 or more")
+    with _open(args) as reg:
+        if args.all:
+            _out(pairs_table(reg.shadow_counts(args.model)))
+            return 0
+        live = args.live if args.live is not None else _num(reg.live(args.model))
+        candidate = args.candidate if args.candidate is not None else _num(reg.candidate(args.model))
+        if live is None or candidate is None:
+            missing = "live version" if live is None else "candidate"
+            _out(
+                f"{args.model!r} has no {missing}, so no current pair; name one with --live N --candidate M, "
+                "or see every pair with --all"
+            )
+            return 0
+        counts = reg.shadow_pair(args.model, live, candidate)
+        texts = reg.shadow_texts(args.model, live, candidate, args.texts) if args.texts else []
+    if counts is None:
+        _out(
+            f"no shadow counts yet for candidate v{candidate} beside live v{live} of {args.model!r}: replicas "
+            "score a sample of live texts with the candidate (TEXTSIEVE_SHADOW_RATE) and flush every "
+            "TEXTSIEVE_SHADOW_FLUSH_SECONDS"
+        )
+        return 0
+    _out(render(counts, texts))
+    return 0
+
+
+def _num(info: VersionInfo | None) -> int | None:
+    return None if info is None else info.version
+
+
+def render(c: ShadowCounts, texts: list[StoredText]) -> str:
+    lines = [
+        f"{c.model}: candidate v{c.candidate_version} in the shadow of live v{c.live_version} "
+        f"({c.flushes} flushes, {when(c.first_at)} – {when(c.updated_at)})",
+    ]
+    rows: list[list[object]] = [["texts compared", f"{c.texts:,}"]]
+    if c.texts:
+        lo, hi = c.agreement_interval()
+        rows.append(["agreement", f"{c.agreed / c.texts:.2%}  (95 % Wilson interval {lo:.2%} – {hi:.2%})"])
+        rows.append(["mean change, P(live label)", f"{c.mean_delta:+.4f}  (candidate minus live)"])
+    rows.append(["dropped", f"{c.dropped:,} sampled texts not scored (shadow queue full)"])
+    lines.append(table(["", ""], rows).split("\n", 1)[1])
+    if c.transitions:
+        lines += ["", "label transitions (rows: live label, columns: candidate label)", transition_table(c)]
+    if texts:
+        lines += ["", f"newest {len(texts)} disagreeing texts kept for review"]
+        lines.append(
+            table(
+                ["TIME (UTC)", "LIVE", "P", "CANDIDATE", "P", "TEXT"],
+                [
+                    [
+                        when(t.at),
+                        t.live_label,
+                        f"{t.live_probability:.2f}",
+                        t.candidate_label,
+                        f"{t.candidate_probability:.2f}",
+                        t.text.replace("\n", " ")[:80],
+                    ]
+                    for t in texts
+                ],
+                right=(2, 4),
+            )
+        )
+    lines += [
+        "",
+        "Agreement is not accuracy: it says how often the candidate would change a label people see. "
+        "Check disagreements with reviewers before promoting.",
+    ]
+    return "\n".join(lines)
+
+
+def transition_table(c: ShadowCounts) -> str:
+    live_labels = sorted({t.live_label for t in c.transitions})
+    cand_labels = sorted({t.candidate_label for t in c.transitions})
+    cells = {(t.live_label, t.candidate_label): t.texts for t in c.transitions}
+    rows = [[a, *[f"{cells.get((a, b), 0):,}" for b in cand_labels]] for a in live_labels]
+    return table(["LIVE \\ CANDIDATE", *cand_labels], rows, right=tuple(range(1, len(cand_labels) + 1)))
+
+
+def pairs_table(pairs: list[ShadowCounts]) -> str:
+    if not pairs:
+        return "no shadow counts yet"
+    rows = []
+    for c in pairs:
+        lo, hi = c.agreement_interval()
+        agreement = NONE if not c.texts else f"{c.agreed / c.texts:.2%}"
+        interval = NONE if not c.texts else f"{lo:.2%} – {hi:.2%}"
+        rows.append(
+            [
+                c.live_version,
+                c.candidate_version,
+                f"{c.texts:,}",
+                agreement,
+                interval,
+                f"{c.dropped:,}",
+                when(c.updated_at),
+            ]
+        )
+    return table(
+        ["LIVE", "CANDIDATE", "TEXTS", "AGREEMENT", "95 % INTERVAL", "DROPPED", "UPDATED (UTC)"],
+        rows,
+        right=(0, 1, 2, 5),
+    )
+
+
+__all__ = ["cli_shadow", "pairs_table", "register", "render", "transition_table"]

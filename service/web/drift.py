@@ -1,0 +1,77 @@
+"""``GET /v1/models/{name}/drift``: how this replica's live texts compare with each version's baseline."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from fastapi import APIRouter
+
+from textsieve.registry.drift import DriftReport
+from textsieve.service.web.deps import ModelsDep, RegistryDep, SettingsDep
+from textsieve.service.web.openapi import Tag
+from textsieve.service.web.problems import MEDIA_TYPE
+from textsieve.service.web.schemas import BaselineView, DriftView, Problem, SignalView, VersionDrift
+
+router = APIRouter(prefix="/v1/models")
+_PROBLEM: dict[int | str, dict[str, Any]] = {
+    404: {"model": Problem, "content": {MEDIA_TYPE: {}}},
+    503: {"model": Problem, "content": {MEDIA_TYPE: {}}},
+}
+
+
+def _detail(report: DriftReport) -> str:
+    if report.baseline is None:
+        return "no baseline: this bundle was exported without drift signals; export it again to get them"
+    if report.texts == 0:
+        return "no live texts in the window yet"
+    worst = max((s for s in report.signals if s.psi is not None), key=lambda s: s.psi or 0.0, default=None)
+    if worst is None:
+        return "nothing to compare"
+    return f"largest PSI: {worst.name} {worst.psi:.3f} ({worst.band}) over {report.texts} live texts"
+
+
+@router.get(
+    "/{name}/drift",
+    operation_id="getDrift",
+    tags=[Tag.REGISTRY],
+    response_model=DriftView,
+    responses=_PROBLEM,
+    summary="Drift signals of the live texts this replica answered, against each served version's baseline",
+)
+async def get_drift(name: str, store: RegistryDep, models: ModelsDep, settings: SettingsDep) -> DriftView:
+    reports = models.drift_reports(name)
+    if not reports:
+        await store.live(name)  # NotFoundError (404) for a model the registry does not know
+    live = models.live.get(name)
+    versions = []
+    for _, version, report in reports:
+        base = report.baseline
+        versions.append(
+            VersionDrift(
+                version=version,
+                role="live" if live is not None and live.version == version else "pinned",
+                texts=report.texts,
+                window_texts=settings.drift_window_texts,
+                unknown_rate=report.unknown_rate,
+                truncation_rate=report.truncation_rate,
+                baseline=None
+                if base is None
+                else BaselineView(
+                    source=base.source,
+                    texts=base.texts,
+                    unknown_rate=base.unknown_rate,
+                    truncation_rate=base.truncation_rate,
+                ),
+                detail=_detail(report),
+                signals=[
+                    SignalView.model_validate(
+                        {"name": s.name, "psi": s.psi, "js_distance": s.js_distance, "band": s.band}
+                    )
+                    for s in report.signals
+                ],
+            )
+        )
+    return DriftView(model=name, scope="replica", versions=versions)
+
+
+__all__ = ["router"]

@@ -1,0 +1,170 @@
+"""Shadow counts in the registry (registry/shadow.py, shadow_queries.py), on SQLite and PostgreSQL:
+replicas add up, kept texts stay bounded, the optional agreement gate, and ``textsieve shadow``."""
+
+from __future__ import annotations
+
+import threading
+from pathlib import Path
+
+import pytest
+from scipy import stats as sps
+
+from tests.helpers.registries import RegistrySpec
+from textsieve.cli import main
+from textsieve.registry import GateSettings, Registry
+from textsieve.registry.migrations import applied
+from textsieve.registry.shadow import KeptText, Tally
+
+MODEL = "support"
+
+
+def _tally(live: list[str], cand: list[str], delta: float = 0.0) -> Tally:
+    t = Tally()
+    t.add(live, cand, delta)
+    return t
+
+
+@pytest.fixture
+def published(spec: RegistrySpec, tiny_bundles: dict[str, Path]) -> RegistrySpec:
+    """``support``: v1 live, v2 candidate (the tiny bundles a and b)."""
+    with spec.open() as reg:
+        reg.publish(tiny_bundles["a"], MODEL, actor="tests")
+        reg.publish(tiny_bundles["b"], MODEL, actor="tests")
+        reg.promote(MODEL, 1, "live", reason="start", actor="tests", force=True)
+        reg.promote(MODEL, 2, "candidate", reason="trial", actor="tests")
+    return spec
+
+
+def test_the_step_is_recorded(registry: Registry) -> None:
+    assert "0006_shadow_counts" in applied(registry.backend)
+
+
+def test_two_replicas_flushing_at_once_add_up(published: RegistrySpec) -> None:
+    # Two registry handles (two replicas' connections) each flush 25 tallies at the same time;
+    # the sums must be exactly what was sent: additive UPSERTs never overwrite one another.
+    live = ["billing", "bug", "billing", "praise"]
+    cand = ["billing", "billing", "billing", "praise"]
+    errors: list[BaseException] = []
+
+    def replica() -> None:
+        try:
+            with published.open() as reg:
+                for _ in range(25):
+                    reg.add_shadow_counts(MODEL, 1, 2, _tally(live, cand, delta=-0.25))
+        except BaseException as exc:  # noqa: BLE001 - reported below
+            errors.append(exc)
+
+    threads = [threading.Thread(target=replica) for _ in range(2)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not errors
+    with published.open() as reg:
+        counts = reg.shadow_pair(MODEL, 1, 2)
+    assert counts is not None
+    assert (counts.texts, counts.agreed, counts.flushes) == (200, 150, 50)
+    assert counts.delta_sum == pytest.approx(-12.5)
+    assert counts.mean_delta == pytest.approx(-0.0625)
+    cells = {(t.live_label, t.candidate_label): t.texts for t in counts.transitions}
+    assert cells == {("billing", "billing"): 100, ("bug", "billing"): 50, ("praise", "praise"): 50}
+    assert sum(cells.values()) == counts.texts
+
+
+def test_agreement_interval_is_wilson(published: RegistrySpec) -> None:
+    # Reference: scipy.stats.binomtest(...).proportion_ci(method="wilson") (Wilson, 1927).
+    with published.open() as reg:
+        reg.add_shadow_counts(MODEL, 1, 2, _tally(["a"] * 263, ["a"] * 81 + ["b"] * 182))
+        counts = reg.shadow_pair(MODEL, 1, 2)
+    assert counts is not None
+    ref = sps.binomtest(81, 263).proportion_ci(confidence_level=0.95, method="wilson")
+    lo, hi = counts.agreement_interval()
+    assert (lo, hi) == (pytest.approx(ref.low, abs=1e-12), pytest.approx(ref.high, abs=1e-12))
+
+
+def test_texts_are_not_kept_unless_asked(published: RegistrySpec) -> None:
+    t = Tally()
+    t.add(["a"], ["b"], 0.0, [KeptText("a private text", "a", 0.9, "b", 0.6)], keep_at_most=0)
+    assert t.kept == []
+    with published.open() as reg:
+        reg.add_shadow_counts(MODEL, 1, 2, t, keep_texts=0)
+        assert reg.shadow_texts(MODEL, 1, 2) == []
+
+
+def test_kept_texts_are_bounded_and_aged_out(published: RegistrySpec) -> None:
+    def kept(i: int) -> KeptText:
+        return KeptText(f"text {i}", "a", 0.9, "b", 0.7)
+
+    with published.open() as reg:
+        for start in (0, 4, 8):
+            t = Tally()
+            t.add(["a"] * 4, ["b"] * 4, 0.0, [kept(start + i) for i in range(4)], keep_at_most=5)
+            reg.add_shadow_counts(MODEL, 1, 2, t, keep_texts=5)
+        newest = [s.text for s in reg.shadow_texts(MODEL, 1, 2, limit=100)]
+        assert newest == ["text 11", "text 10", "text 9", "text 8", "text 7"]  # the newest 5, newest first
+        # A retention age of zero deletes every text stored before this flush.
+        t = Tally()
+        t.add(["a"], ["b"], 0.0, [kept(99)], keep_at_most=5)
+        reg.add_shadow_counts(MODEL, 1, 2, t, keep_texts=5, keep_seconds=0.0)
+        assert [s.text for s in reg.shadow_texts(MODEL, 1, 2)] == ["text 99"]
+        counts = reg.shadow_pair(MODEL, 1, 2)
+    assert counts is not None and counts.texts == 13
+
+
+def test_failed_flush_merges_back_without_loss() -> None:
+    pending = _tally(["a", "b"], ["a", "a"], 0.5)
+    pending.dropped = 3
+    fresh = _tally(["b"], ["b"], -0.1)
+    fresh.merge(pending)
+    assert (fresh.texts, fresh.agreed, fresh.dropped) == (3, 2, 3)
+    assert fresh.delta_sum == pytest.approx(0.4)
+    assert fresh.transitions == {("a", "a"): 1, ("b", "a"): 1, ("b", "b"): 1}
+
+
+def _shadow_gate(spec: RegistrySpec, **settings: object) -> dict[str, object]:
+    with spec.open(settings=GateSettings(**settings)) as reg:  # type: ignore[arg-type]
+        gates = {g.name: g for g in reg.check(MODEL, 2)}
+    gate = gates["shadow_agreement"]
+    return {"passed": gate.passed, "detail": gate.detail, **gate.figures}
+
+
+def test_shadow_gate_is_off_by_default(published: RegistrySpec) -> None:
+    with published.open() as reg:
+        assert "shadow_agreement" not in {g.name for g in reg.check(MODEL, 2)}
+
+
+def test_shadow_gate_needs_enough_texts_then_the_level(published: RegistrySpec) -> None:
+    with published.open() as reg:
+        reg.add_shadow_counts(MODEL, 1, 2, _tally(["a"] * 50, ["a"] * 46 + ["b"] * 4))
+    few = _shadow_gate(published, shadow_agreement_min=0.9, shadow_min_texts=100)
+    assert few["passed"] is False and "only 50 live texts" in str(few["detail"])
+    ok = _shadow_gate(published, shadow_agreement_min=0.92, shadow_min_texts=50)  # 46/50 = 0.92 exactly
+    assert ok["passed"] is True and ok["agreement"] == pytest.approx(0.92)
+    low = _shadow_gate(published, shadow_agreement_min=0.95, shadow_min_texts=50)
+    assert low["passed"] is False and "required 95.00%" in str(low["detail"])
+    ref = sps.binomtest(46, 50).proportion_ci(confidence_level=0.95, method="wilson")
+    assert low["interval95"] == [pytest.approx(ref.low), pytest.approx(ref.high)]
+
+
+def test_cli_shows_the_current_pair(published: RegistrySpec, capsys: pytest.CaptureFixture[str]) -> None:
+    with published.open() as reg:
+        t = _tally(["billing"] * 6 + ["bug"] * 4, ["billing"] * 5 + ["bug"] * 5, delta=-0.3)
+        t.dropped = 7
+        reg.add_shadow_counts(MODEL, 1, 2, t)
+    assert main(["shadow", MODEL, *published.cli_args()]) == 0
+    out = capsys.readouterr().out
+    assert "candidate v2 in the shadow of live v1" in out
+    assert "texts compared" in out and " 10" in out
+    assert "90.00%" in out  # 9 of 10 agree
+    lo, hi = sps.binomtest(9, 10).proportion_ci(method="wilson")
+    assert f"{lo:.2%} – {hi:.2%}" in out
+    assert "-0.0300" in out and "7 sampled texts" in out
+    rows = {line.split()[0]: line.split()[1:] for line in out.splitlines() if line.startswith(("billing", "bug"))}
+    assert rows == {"billing": ["5", "1"], "bug": ["0", "4"]}  # columns: billing, bug
+
+
+def test_cli_without_counts_says_how_they_come(published: RegistrySpec, capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["shadow", MODEL, *published.cli_args()]) == 0
+    assert "no shadow counts yet" in capsys.readouterr().out
+    assert main(["shadow", MODEL, "--all", *published.cli_args()]) == 0
+    assert "no shadow counts yet" in capsys.readouterr().out

@@ -1,0 +1,114 @@
+"""``GET /v1/models/{name}/drift``, the drift series in /metrics and ``textsieve drift``: the window
+holds what was answered (checked against the replies themselves), PSI against its formula in
+NumPy and Jensen–Shannon against SciPy, and a bundle without a baseline says so."""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.spatial.distance import jensenshannon
+
+from tests.helpers.jsonl import read_jsonl
+from tests.helpers.registries import edit_manifest
+from tests.helpers.service import MODEL, assert_problem, serving, settings_for
+from textsieve.registry import open_registry
+from textsieve.registry.bundle import open_bundle
+from textsieve.registry.stats import PSI_FLOOR
+from textsieve.service.client import render_drift
+
+pytestmark = pytest.mark.anyio
+
+
+def _psi_numpy(expected: list[int], actual: list[int]) -> float:
+    # PSI = Σ (a_i − e_i) · ln(a_i / e_i) over shares (Yurdakul, 2018, eq. 1), floored as documented.
+    e = np.maximum(np.asarray(expected, float) / sum(expected), PSI_FLOOR)
+    a = np.maximum(np.asarray(actual, float) / sum(actual), PSI_FLOOR)
+    return float(np.sum((a - e) * np.log(a / e)))
+
+
+async def test_drift_window_matches_the_replies(
+    registry_dir: Path, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    texts = [r["text"] for r in read_jsonl(tiny_data / "test.jsonl")[:90]]
+    texts += ["zzqv " * 300]  # one long, unknown, truncated text
+    settings = settings_for(registry_dir, inference="threads", shadow_rate=0.0)
+    async with serving(settings) as (_, client):
+        results = []
+        for i in range(0, len(texts), 13):
+            r = await client.post("/v1/predict", json={"texts": texts[i : i + 13], "spans": 0})
+            assert r.status_code == 200
+            results += r.json()["results"]
+        view = (await client.get(f"/v1/models/{MODEL}/drift")).json()
+        metrics = (await client.get("/metrics")).text
+        missing = await client.get("/v1/models/nosuchmodel/drift")
+    assert_problem(missing, 404, "not-found")
+    [v] = view["versions"]
+    assert (view["model"], view["scope"], v["version"], v["role"]) == (MODEL, "replica", 1, "live")
+    assert v["texts"] == len(texts)
+    assert v["truncation_rate"] == pytest.approx(sum(r["truncated"] for r in results) / len(texts))
+    base = open_bundle(tiny_bundles["a"]).manifest.drift
+    assert base is not None and v["baseline"]["texts"] == base.texts
+
+    signals = {s["name"]: s for s in v["signals"]}
+    labels = open_bundle(tiny_bundles["a"]).manifest.labels
+    live_mix = [sum(r["label"] == name for r in results) for name in labels]  # from the replies themselves
+    expected_mix = base.histograms["label"].counts
+    assert signals["label"]["psi"] == pytest.approx(_psi_numpy(expected_mix, live_mix), abs=1e-12)
+    # Reference: scipy.spatial.distance.jensenshannon (natural log).
+    assert signals["label"]["js_distance"] == pytest.approx(
+        float(jensenshannon(np.asarray(expected_mix, float), np.asarray(live_mix, float))), abs=1e-12
+    )
+    edges = base.histograms["tokens"].edges
+    assert edges is not None
+    lengths = np.clip([r["tokens"] for r in results], edges[0], edges[-1])
+    live_tokens = np.histogram(lengths, bins=np.asarray(edges, float))[0].tolist()  # NumPy's histogram
+    assert signals["tokens"]["psi"] == pytest.approx(
+        _psi_numpy(base.histograms["tokens"].counts, live_tokens), abs=1e-12
+    )
+    for s in signals.values():
+        assert s["band"] == ("stable" if s["psi"] < 0.1 else "watch" if s["psi"] <= 0.25 else "act")
+    line = f'textsieve_drift_psi{{model="{MODEL}",signal="label",version="1"}}'
+    assert any(
+        x.startswith(line) and float(x.split()[-1]) == pytest.approx(signals["label"]["psi"])
+        for x in metrics.splitlines()
+    )
+    assert f'textsieve_drift_window_texts{{model="{MODEL}",version="1"}} {float(len(texts))}' in metrics
+
+    shown = render_drift(view)
+    assert f"{MODEL} v1 (live): {len(texts)} live texts" in shown
+    assert "label" in shown and signals["label"]["band"] in shown and "PSI < 0.1 stable" in shown
+
+
+async def test_a_bundle_without_a_baseline_says_so(tmp_path: Path, tiny_bundles: dict[str, Path]) -> None:
+    old = tmp_path / "old-bundle"
+    shutil.copytree(tiny_bundles["a"], old)
+    data = json.loads((old / "manifest.json").read_text())
+    data.pop("drift")  # as bundles exported before drift signals were
+    (old / "manifest.json").write_text(json.dumps(data))
+    edit_manifest(old, {})
+    folder = tmp_path / "registry"
+    with open_registry(folder) as reg:
+        reg.publish(old, MODEL, actor="tests")
+        reg.promote(MODEL, 1, "live", reason="old bundle", actor="tests", force=True)
+    async with serving(settings_for(folder, inference="threads")) as (_, client):
+        assert (await client.post("/v1/predict", json={"texts": ["my card was charged twice"]})).status_code == 200
+        r = await client.get(f"/v1/models/{MODEL}/drift")
+        metrics = (await client.get("/metrics")).text
+    assert r.status_code == 200
+    [v] = r.json()["versions"]
+    assert v["baseline"] is None and v["detail"].startswith("no baseline")
+    assert v["texts"] == 1 and all(s["psi"] is None and s["band"] is None for s in v["signals"])
+    assert "textsieve_drift_psi{" not in metrics
+    assert "no baseline" in render_drift(r.json())
+
+
+async def test_drift_off_keeps_no_window(registry_dir: Path) -> None:
+    async with serving(settings_for(registry_dir, inference="threads", drift=False)) as (_, client):
+        await client.post("/v1/predict", json={"texts": ["my card was charged twice"]})
+        r = await client.get(f"/v1/models/{MODEL}/drift")
+    assert r.status_code == 200 and r.json()["versions"] == []
+    assert "serves no version of it with a drift window" in render_drift(r.json())
