@@ -42,6 +42,8 @@ def test_defaults_are_the_documented_ones(registry: Registry, model: str) -> Non
         "tolerances": True,
         "mcnemar": False,
         "mcnemar_p": 0.05,
+        "shadow_agreement_min": None,  # the shadow-agreement gate off
+        "shadow_min_texts": 1000.0,
         "review_threshold": None,
     }
     assert all(v.is_default and v.set_by is None for v in s.values.values())
