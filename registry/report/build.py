@@ -163,7 +163,8 @@ def build_report(
         except (ValueError, RuntimeError, OSError, KeyError) as exc:
             notes.append(f"{section.title}: could not be produced ({type(exc).__name__}: {exc})")
     report["notes"] = notes
-    return finite(report)
+    clean: dict[str, Any] = finite(report)
+    return clean
 
 
 CAUTIONS = (
