@@ -475,7 +475,10 @@ class Registry:
 
     def report_content(self, model: str, version: int, kind: str) -> tuple[ReportInfo, bytes]:
         """The newest stored report's ``json`` or ``html`` bytes, re-hashed on read."""
-        info = self.stored_report(model, version)
+        return self.report_file(self.stored_report(model, version), kind)
+
+    def report_file(self, info: ReportInfo, kind: str) -> tuple[ReportInfo, bytes]:
+        """A stored report's ``json`` or ``html`` bytes, re-hashed on read."""
         if kind not in ("json", "html"):
             raise InputError(f"report kind {kind!r}; allowed: json, html")
         return info, self.blobs.read_bytes(info.json_sha256 if kind == "json" else info.html_sha256)
