@@ -15,7 +15,7 @@ from concurrent.futures import ThreadPoolExecutor
 from typing import ParamSpec, TypeVar
 
 from textsieve.errors import UnavailableError
-from textsieve.registry import Bundle, Event, ModelInfo, Promotion, Registry, VersionInfo, open_registry
+from textsieve.registry import Bundle, Event, ModelInfo, Promotion, Registry, ReportInfo, VersionInfo, open_registry
 from textsieve.service.settings import public_location
 
 P = ParamSpec("P")
@@ -78,6 +78,9 @@ class RegistryThread:
 
     async def fetch(self, model: str, version: int | None = None) -> Bundle:
         return await self._run(self.registry.fetch, model, version)
+
+    async def report_content(self, model: str, version: int, kind: str) -> tuple[ReportInfo, bytes]:
+        return await self._run(self.registry.report_content, model, version, kind)
 
     # -- changing -----------------------------------------------------------------------
     async def promote(
