@@ -483,6 +483,21 @@ class Registry:
             raise InputError(f"report kind {kind!r}; allowed: json, html")
         return info, self.blobs.read_bytes(info.json_sha256 if kind == "json" else info.html_sha256)
 
+    def card(self, model: str, version: int) -> str:
+        """The version's model card as published: named, and linking its evaluation report
+        (the bundle's own card.md is immutable; see registry/report/card.py)."""
+        from textsieve.registry.manifest import CARD_FILE
+        from textsieve.registry.report.card import published_card
+
+        info = self.version(model, version)
+        try:
+            report: ReportInfo | None = self.stored_report(info.model, info.version)
+        except NotFoundError:
+            report = None
+        digest = info.files.get(CARD_FILE)
+        text = self.blobs.read_bytes(digest).decode("utf-8") if digest else ""
+        return published_card(text, info.model, info.version, report)
+
     def _report_quietly(self, model: str, version: int, against: int | None, actor: str) -> ReportInfo | None:
         """Build the report publishing and promotion owe, never raising: they must not fail over a report.
         A failure is recorded as a ``report_failed`` event; no evaluation set, or one whose labels the

@@ -82,6 +82,9 @@ class RegistryThread:
     async def report_content(self, model: str, version: int, kind: str) -> tuple[ReportInfo, bytes]:
         return await self._run(self.registry.report_content, model, version, kind)
 
+    async def card(self, model: str, version: int) -> str:
+        return await self._run(self.registry.card, model, version)
+
     # -- changing -----------------------------------------------------------------------
     async def promote(
         self, model: str, version: int, to: str, *, reason: str, actor: str | None = None, force: bool = False

@@ -1,4 +1,5 @@
-"""``GET /v1/models/{name}/versions/{n}/report``: a version's stored evaluation report.
+"""``GET /v1/models/{name}/versions/{n}/report``: a version's stored evaluation report; ``…/card``:
+its model card as published (named, linking the report).
 
 HTML by default (the self-contained page, with a Content-Security-Policy that allows only its
 own inline style: it runs no script and loads nothing), report.json with
@@ -12,7 +13,7 @@ from __future__ import annotations
 from typing import Any
 
 from fastapi import APIRouter, Path, Request
-from fastapi.responses import HTMLResponse, Response
+from fastapi.responses import HTMLResponse, PlainTextResponse, Response
 
 from textsieve.registry.names import validate_version
 from textsieve.registry.report.html import report_csp
@@ -59,6 +60,25 @@ async def get_report(
         return Response(data, media_type="application/json", headers=headers)
     html = data.decode("utf-8")
     return HTMLResponse(html, headers={**headers, "Content-Security-Policy": report_csp(html)})
+
+
+@router.get(
+    "/{name}/versions/{n}/card",
+    operation_id="getVersionCard",
+    tags=[Tag.REGISTRY],
+    response_class=PlainTextResponse,
+    responses={
+        200: {"description": "the model card (Markdown)", "content": {"text/markdown": {"schema": {"type": "string"}}}},
+        404: _RESPONSES[404],
+        503: _RESPONSES[503],
+    },
+    summary="A version's model card as published: named, and linking its evaluation report",
+)
+async def get_card(name: str, store: RegistryDep, n: str = Path(description="version number")) -> PlainTextResponse:
+    text = await store.card(name, validate_version(n))
+    return PlainTextResponse(
+        text, media_type="text/markdown; charset=utf-8", headers={"X-Content-Type-Options": "nosniff"}
+    )
 
 
 __all__ = ["router", "wants_json"]
