@@ -61,7 +61,7 @@ async def test_report_is_json_when_asked(client: httpx.AsyncClient, accept: str)
         pytest.param(f"/v1/models/{MODEL}/versions/1/report", 404, "not-found", "textsieve evaluate", id="no-report"),
         pytest.param(f"/v1/models/{MODEL}/versions/9/report", 404, "not-found", "no version 9", id="no-version"),
         pytest.param("/v1/models/nobody/versions/1/report", 404, "not-found", "no model 'nobody'", id="no-model"),
-        pytest.param(f"/v1/models/{MODEL}/versions/x/report", 422, "bad-input", "bad version", id="bad-version"),
+        pytest.param(f"/v1/models/{MODEL}/versions/x/report", 422, "invalid-input", "bad version", id="bad-version"),
     ],
 )
 async def test_report_refusals(client: httpx.AsyncClient, path: str, status: int, slug: str, expected: str) -> None:
