@@ -216,7 +216,8 @@ def bar_chart(
         y_range = (lo, hi)
     n_series = max(len(series), 1)
     group = max(40.0, 14.0 * n_series + 16)
-    width = width or max(320.0, 90 + group * len(categories))
+    legend = 74 + sum(24 + 7 * len(name) for name, _ in series) if len(series) > 1 else 0
+    width = width or max(320.0, 90 + group * len(categories), legend)
     fr = _Frame((0.0, float(max(len(categories), 1))), y_range, width, height)
     out = [_open(width, height, title, f"{y_label} for {len(categories)} groups", "bar")]
     out.append(fr.axes("", y_label, x_ticks=False))

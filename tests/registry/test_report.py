@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import json
 import random
+import re
 from pathlib import Path
 from typing import Any
 
@@ -371,6 +372,87 @@ def test_published_card_names_the_model_and_links_the_report(
     assert "## Cautions" in card  # the bundle's own card, kept whole
     # the bundle's file itself is untouched (immutable, sha256-checked)
     assert (tiny_bundles["a"] / "card.md").read_text(encoding="utf-8").startswith("# Model card: (set on publish)")
+
+
+# -- the command -----------------------------------------------------------------------------------
+def _run(capsys: pytest.CaptureFixture[str], *argv: str) -> tuple[int, str, str]:
+    from textsieve.cli import main
+
+    code = main(list(argv))
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_evaluate_writes_both_files_and_a_summary(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    r = ["--registry", str(tmp_path / "reg")]
+    evalset = str(tiny_data / "test.jsonl")
+    assert _run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", "--evalset", evalset, *r)[0] == 0
+    assert _run(capsys, "promote", "m", "1", "--to", "live", "--reason", "first", *r)[0] == 0
+    assert _run(capsys, "publish", str(tiny_bundles["b"]), "--model", "m", *r)[0] == 0
+    out_dir = tmp_path / "out"
+    code, out, err = _run(capsys, "evaluate", "m", "2", "--against", "live", "--out", str(out_dir), *r)
+    assert code == 0, err
+    report = json.loads((out_dir / "report.json").read_text(encoding="utf-8"))
+    assert (report["version"], report["comparison"]["against"], report["n"]) == (2, 1, 90)
+    assert (out_dir / "report.html").read_text(encoding="utf-8").startswith("<!doctype html>")
+    assert re.search(r"^accuracy\s+" + f"{report['metrics']['accuracy']:.4f}", out, flags=re.M)
+    assert "against version 1:" in out and "McNemar p" in out
+    assert sorted(p.name for p in out_dir.iterdir()) == ["report.html", "report.json"]  # no temporary left
+    # a file evaluation set other than the registered one is a report of its own
+    other = tmp_path / "two.jsonl"
+    other.write_text("".join(line + "\n" for line in evalset_lines(tiny_data)[:20]), encoding="utf-8")
+    code, out, _ = _run(capsys, "evaluate", "m", "2", "--evalset", str(other), "--out", str(tmp_path / "o2"), *r)
+    assert code == 0 and " on 20 texts" in out
+
+
+def evalset_lines(tiny_data: Path) -> list[str]:
+    return (tiny_data / "test.jsonl").read_text(encoding="utf-8").splitlines()
+
+
+@pytest.mark.parametrize(
+    ("argv", "content", "expected_msg"),
+    [
+        pytest.param(["m", "7"], None, "'m' has no version 7; its versions are 1–1", id="unknown-version"),
+        pytest.param(["nobody", "1"], None, "no model 'nobody'", id="unknown-model"),
+        pytest.param(["m", "1", "--evalset", "{file}"], "", "the file is empty", id="empty-set"),
+        pytest.param(
+            ["m", "1", "--evalset", "{file}"],
+            '{"text": "hi", "label": "weather"}\n',
+            "labels version 1 does not know: 'weather'",
+            id="labels-differ",
+        ),
+        pytest.param(["m", "1", "--against", "live"], None, "'m' has no live version", id="no-live"),
+        pytest.param(["m", "1", "--against", "one"], None, "give 'live' or a version number", id="bad-against"),
+        pytest.param(["m", "1", "--against", "1"], None, "that is the version under report", id="self"),
+    ],
+)
+def test_evaluate_bad_input_is_one_line_and_exit_2(
+    capsys: pytest.CaptureFixture[str],
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
+    tiny_data: Path,
+    argv: list[str],
+    content: str | None,
+    expected_msg: str,
+) -> None:
+    r = ["--registry", str(tmp_path / "reg")]
+    assert (
+        _run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", "--evalset", str(tiny_data / "test.jsonl"), *r)[
+            0
+        ]
+        == 0
+    )
+    file = tmp_path / "set.jsonl"
+    if content is not None:
+        file.write_text(content, encoding="utf-8")
+    code, out, err = _run(
+        capsys, "evaluate", *[a.replace("{file}", str(file)) for a in argv], "--out", str(tmp_path / "o"), *r
+    )
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1 and expected_msg in err, err
+    assert not (tmp_path / "o").exists()
 
 
 # -- real data: the UCI sentences ------------------------------------------------------------------
