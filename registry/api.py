@@ -457,6 +457,14 @@ class Registry:
         assert stored is not None
         return stored
 
+    def reports(self, model: str) -> list[ReportInfo]:
+        """Every stored report of the model's versions, by version then age."""
+        model = validate_model_name(model)
+        with self.backend.read() as tx:
+            q = Queries(tx)
+            self._require_model(q, model)
+            return q.reports(model)
+
     def stored_report(self, model: str, version: int) -> ReportInfo:
         """The version's newest stored report (on the current evaluation set when there is one);
         NotFoundError saying how to make one when there is none."""

@@ -235,6 +235,12 @@ class Queries:
         )
         return None if row is None else ReportInfo.from_row(row)
 
+    def reports(self, model: str) -> list[ReportInfo]:
+        rows = self.tx.all(
+            f"SELECT {self._REPORT_COLUMNS} FROM reports WHERE model = ? ORDER BY version, created_at", (model,)
+        )
+        return [ReportInfo.from_row(r) for r in rows]
+
     def newest_report(self, model: str, version: int, prefer_evalset: str | None) -> ReportInfo | None:
         """The version's report on ``prefer_evalset`` if there is one, else its newest on any set."""
         rows = self.tx.all(

@@ -329,6 +329,7 @@ def test_report_is_stored_once_and_served_back(
     _, html = registry.report_content("m", 2, "html")
     assert html.startswith(b"<!doctype html>")
     # garbage collection keeps what reports refer to
+    assert registry.reports("m") == [first, made]
     gc = registry.collect_garbage(older_than=0)
     assert not {made.json_sha256, made.html_sha256, first.json_sha256} & set(gc.removed)
 
