@@ -39,6 +39,7 @@ import demo_model  # noqa: E402
 import flops  # noqa: E402
 import inprocess  # noqa: E402
 import loadgen  # noqa: E402
+import report as report_bench  # noqa: E402
 import servers  # noqa: E402
 from texts import bench_texts  # noqa: E402
 
@@ -548,6 +549,10 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
             if started_server is not None:
                 started_server.stop()
 
+    say("evaluation report on 10,000 texts (issue 12) …")
+    report_timing = report_bench.bench_report(model.bundle, 10_000)
+    say(f"  report {report_timing['report_s']} s, against another version {report_timing['report_against_s']} s")
+
     # A round's in-process figure is the better of its two back-to-back windows.
     rt_rounds = {
         v: [max(w[2 * r : 2 * r + 2], key=lambda x: x["texts_per_s"]) for r in range(args.rounds)]
@@ -628,6 +633,7 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
         "service": sv,
         "http_floor": floor,
         "torch_wrapper": tw,
+        "report": report_timing,
         "bench_seconds": round(time.perf_counter() - started, 1),
     }
     write_json(RESULTS, results)

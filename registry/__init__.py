@@ -25,6 +25,7 @@ if _typing.TYPE_CHECKING:
         GateResult,
         ModelInfo,
         Promotion,
+        ReportInfo,
         State,
         VersionInfo,
     )
@@ -45,6 +46,7 @@ _HOMES = {
     "GateResult": "records",
     "ModelInfo": "records",
     "Promotion": "records",
+    "ReportInfo": "records",
     "State": "records",
     "VersionInfo": "records",
 }
@@ -60,6 +62,7 @@ __all__ = [
     "ModelSettings",
     "Promotion",
     "Registry",
+    "ReportInfo",
     "Scores",
     "State",
     "VersionInfo",

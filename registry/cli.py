@@ -205,6 +205,9 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     from textsieve.registry import shadow_cli  # its own module (it imports this one's helpers)
 
     shadow_cli.register(sub)
+    from textsieve.registry.report import cli as report_cli  # argparse only: as light as this module
+
+    report_cli.register(sub)
 
 
 def add_location_args(p: argparse.ArgumentParser) -> None:
@@ -589,6 +592,8 @@ def summarise(e: Event) -> str:
     if e.kind == "verdicts-delete":
         before = f" recorded before {when(d['before'])}" if d.get("before") else ""
         return f"deleted {d.get('deleted')} verdicts{before}; ids {_ids(d.get('ids', []))}"
+    if e.kind == "report_failed":
+        return f"evaluation report not made: {d.get('error')}"
     gates = " ".join(f"{g['name']}:{'pass' if g['passed'] else 'FAIL'}" for g in d.get("gates", []))
     if e.kind == "refuse":
         return f"to live refused; {gates}"

@@ -22,6 +22,7 @@ from textsieve.registry import (
     ModelSettings,
     Promotion,
     Registry,
+    ReportInfo,
     VersionInfo,
     open_registry,
 )
@@ -95,6 +96,12 @@ class RegistryThread:
 
     async def fetch(self, model: str, version: int | None = None) -> Bundle:
         return await self._run(self.registry.fetch, model, version)
+
+    async def report_content(self, model: str, version: int, kind: str) -> tuple[ReportInfo, bytes]:
+        return await self._run(self.registry.report_content, model, version, kind)
+
+    async def card(self, model: str, version: int) -> str:
+        return await self._run(self.registry.card, model, version)
 
     # -- changing -----------------------------------------------------------------------
     async def promote(

@@ -19,7 +19,7 @@ from textsieve.service.modelset.model_set import ModelSet
 from textsieve.service.modelset.registry_thread import RegistryThread
 from textsieve.service.settings import Settings, load_settings
 from textsieve.service.telemetry import ServiceMetrics
-from textsieve.service.web import admin, drift, health, openapi, page, predict, problems, reviews, views
+from textsieve.service.web import admin, drift, health, openapi, page, predict, problems, reports, reviews, views
 from textsieve.service.web.access import AccessMiddleware
 from textsieve.service.web.bodylimit import BodyBudget, BodyLimitMiddleware
 from textsieve.service.web.onewrite import HeadWithBodyMiddleware
@@ -79,7 +79,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.guard = connection_guard(settings)
     metrics.overload.guard, metrics.overload.budget = app.state.guard, budget
     problems.install(app)
-    for module in (predict, views, drift, admin, reviews, health, page):
+    for module in (predict, views, reports, drift, admin, reviews, health, page):
         app.include_router(module.router)
     openapi.install(app)
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes, budget=budget)

@@ -369,6 +369,9 @@ def test_kills_at_random_moments_leave_a_valid_registry_of_complete_versions(
         evalset_info = reg.evalset(MODEL)
         if evalset_info is not None:
             referenced.add(evalset_info.sha256)
+        # Evaluation reports that publishes and promotions stored (issue 12) are referenced too.
+        for stored_report in reg.reports(MODEL):
+            referenced |= {stored_report.json_sha256, stored_report.html_sha256, stored_report.evalset_sha256}
         before = {d for d, _, _ in reg.blobs.stored()}
         report = reg.collect_garbage(older_than=0)
         assert set(report.removed) == before - referenced, report  # one evaluation set file in this test

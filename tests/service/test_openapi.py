@@ -28,6 +28,8 @@ OPERATIONS = {
     "getModel": ("GET /v1/models/{name}", Tag.REGISTRY),
     "listVersions": ("GET /v1/models/{name}/versions", Tag.REGISTRY),
     "getVersion": ("GET /v1/models/{name}/versions/{n}", Tag.REGISTRY),
+    "getVersionReport": ("GET /v1/models/{name}/versions/{n}/report", Tag.REGISTRY),
+    "getVersionCard": ("GET /v1/models/{name}/versions/{n}/card", Tag.REGISTRY),
     "promoteVersion": ("POST /v1/models/{name}/versions/{n}/promote", Tag.ADMIN),
     "rollbackModel": ("POST /v1/models/{name}/rollback", Tag.ADMIN),
     "recordVerdict": ("POST /v1/verdicts", Tag.REVIEWS),

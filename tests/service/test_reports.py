@@ -1,0 +1,100 @@
+"""GET /v1/models/{name}/versions/{n}/report and …/card: the stored report as HTML (with its own
+Content-Security-Policy) or JSON, problem+json when there is none, and the page in Chromium."""
+
+from __future__ import annotations
+
+import json
+from collections.abc import AsyncIterator
+from pathlib import Path
+from typing import Any
+
+import httpx
+import pytest
+
+from tests.helpers.net import free_port
+from tests.helpers.service import MODEL, assert_problem, make_registry, serving, settings_for, uvicorn_server
+from textsieve.registry import open_registry
+
+pytestmark = pytest.mark.anyio
+
+
+@pytest.fixture(scope="module")
+def report_registry(tmp_path_factory: pytest.TempPathFactory, tiny_bundles: dict[str, Path], tiny_data: Path) -> Path:
+    """``support`` v1 live, v2 with a report against v1 on the tiny test set; v1 has none."""
+    folder = make_registry(tmp_path_factory.mktemp("report-registry") / "registry", tiny_bundles)
+    with open_registry(folder) as reg:
+        reg.add_evalset(MODEL, tiny_data / "test.jsonl", actor="tests")
+        reg.report(MODEL, 2, against=1, actor="tests")
+    return folder
+
+
+@pytest.fixture(scope="module")
+async def client(report_registry: Path) -> AsyncIterator[httpx.AsyncClient]:
+    async with serving(settings_for(report_registry)) as (_, c):
+        yield c
+
+
+async def test_report_is_html_by_default_with_the_csp(client: httpx.AsyncClient) -> None:
+    r = await client.get(f"/v1/models/{MODEL}/versions/2/report")
+    assert r.status_code == 200, r.text
+    assert r.headers["content-type"].startswith("text/html")
+    csp = r.headers["content-security-policy"]
+    assert "default-src 'none'" in csp and "script-src 'none'" in csp and "style-src 'sha256-" in csp
+    assert r.headers["x-content-type-options"] == "nosniff"
+    assert "Compared with version 1" in r.text and "<script" not in r.text
+
+
+@pytest.mark.parametrize(
+    "accept", ["application/json", "application/json, text/html;q=0.5", "application/json;q=1"], ids=str
+)
+async def test_report_is_json_when_asked(client: httpx.AsyncClient, accept: str) -> None:
+    r = await client.get(f"/v1/models/{MODEL}/versions/2/report", headers={"Accept": accept})
+    assert r.status_code == 200 and r.headers["content-type"] == "application/json"
+    body: dict[str, Any] = r.json()
+    assert (body["model"], body["version"], body["comparison"]["against"]) == (MODEL, 2, 1)
+    assert set(body["metrics"]) >= {"accuracy", "macro_f1", "ece"}
+
+
+@pytest.mark.parametrize(
+    ("path", "status", "slug", "expected"),
+    [
+        pytest.param(f"/v1/models/{MODEL}/versions/1/report", 404, "not-found", "textsieve evaluate", id="no-report"),
+        pytest.param(f"/v1/models/{MODEL}/versions/9/report", 404, "not-found", "no version 9", id="no-version"),
+        pytest.param("/v1/models/nobody/versions/1/report", 404, "not-found", "no model 'nobody'", id="no-model"),
+        pytest.param(f"/v1/models/{MODEL}/versions/x/report", 422, "invalid-input", "bad version", id="bad-version"),
+    ],
+)
+async def test_report_refusals(client: httpx.AsyncClient, path: str, status: int, slug: str, expected: str) -> None:
+    body = assert_problem(await client.get(path), status, slug)
+    assert expected in body["detail"]
+
+
+async def test_card_names_the_model_and_links_the_report(client: httpx.AsyncClient) -> None:
+    r = await client.get(f"/v1/models/{MODEL}/versions/2/card")
+    assert r.status_code == 200 and r.headers["content-type"].startswith("text/markdown")
+    assert r.text.startswith(f"# Model card: {MODEL}, version 2")
+    assert f"/v1/models/{MODEL}/versions/2/report" in r.text
+
+
+def test_report_renders_in_chromium(browser: Any, report_registry: Path, tmp_path: Path) -> None:
+    from selenium.webdriver.common.by import By
+
+    with uvicorn_server(settings_for(report_registry, port=free_port())) as server:
+        data = json.loads(
+            httpx.get(f"{server.url}/v1/models/{MODEL}/versions/2/report", headers={"Accept": "application/json"}).text
+        )
+        browser.get(f"{server.url}/v1/models/{MODEL}/versions/2/report")
+        assert browser.find_element(By.TAG_NAME, "h1").text.startswith(f"Evaluation report: {MODEL} version 2")
+        plots = browser.find_elements(By.CSS_SELECTOR, "svg.plot")
+        assert len(plots) >= 6
+        for plot in plots:  # drawn, not collapsed to nothing by a blocked style
+            assert plot.size["width"] > 100 and plot.size["height"] > 100
+        cells = browser.find_elements(By.CSS_SELECTOR, "svg.plot-heatmap text.cell-text")
+        k = len(data["labels"])
+        assert len(cells) == k * k
+        assert [c.text.split(" ")[0] for c in cells] == [str(x) for row in data["confusion"]["counts"] for x in row]
+        assert "human review" in browser.find_element(By.TAG_NAME, "body").text
+        browser.save_screenshot(str(tmp_path / "report.png"))
+        assert (tmp_path / "report.png").stat().st_size > 10_000
+        severe = [e for e in browser.get_log("browser") if e["level"] == "SEVERE"]
+        assert severe == []  # nothing blocked by the Content-Security-Policy, no errors
