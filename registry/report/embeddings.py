@@ -170,21 +170,29 @@ def _against(
         return f"Version {name} shares {len(words)} words with this one: too few to compare embeddings."
     before = other.trained[ids_b].astype(np.float64)
     after = run.trained[ids_a].astype(np.float64)
-    rotation = procrustes_rotation(before, after)
+    shared_start = _shared_start(run, other)
+    # Runs fine-tuned from the same pretrained rows share their axes: a rotation would only hide
+    # part of what training moved. Otherwise the axes are arbitrary and must be aligned first.
+    if not shared_start:
+        before = before @ procrustes_rotation(before, after)
     section = _compare(
         words,
-        (before @ rotation).astype(np.float32),
+        before.astype(np.float32),
         after.astype(np.float32),
         kind="against",
-        title=f"From {name} to this version (rotated onto it by orthogonal Procrustes)",
+        title=(
+            f"From {name} to this version"
+            + ("" if shared_start else " (rotated onto it by orthogonal Procrustes)")
+        ),
         top=top,
         neighbours=neighbours,
         seed=seed,
     )
     section["against"] = name
     section["shared_words"] = len(words)
-    section["shared_start"] = _shared_start(run, other)
-    if not section["shared_start"] and section["note"] is None:
+    section["shared_start"] = shared_start
+    section["aligned"] = not shared_start
+    if not shared_start and section["note"] is None:
         section["note"] = (
             "The two versions did not start from the same pretrained vectors: each began from its own random "
             "vectors, so these distances mostly show the different starts, not what training learnt."

@@ -308,6 +308,8 @@ def triggers(
     counts: list[Counter[tuple[int, ...]]] = [Counter() for _ in range(widths.shape[0])]
     for row, enc in enumerate(encoded):
         n = len(enc.ids)
+        if n == 0:  # an empty text's only window is padding: no n-gram to name
+            continue
         for f in np.flatnonzero(out.pooled[row] > 0).tolist():
             s = int(out.positions[row, f])
             counts[f][tuple(enc.ids[s : min(s + int(widths[f]), n)])] += 1
