@@ -24,6 +24,7 @@ if _typing.TYPE_CHECKING:
         GateResult,
         ModelInfo,
         Promotion,
+        ReportInfo,
         State,
         VersionInfo,
     )
@@ -43,6 +44,7 @@ _HOMES = {
     "GateResult": "records",
     "ModelInfo": "records",
     "Promotion": "records",
+    "ReportInfo": "records",
     "State": "records",
     "VersionInfo": "records",
 }
@@ -57,6 +59,7 @@ __all__ = [
     "ModelInfo",
     "Promotion",
     "Registry",
+    "ReportInfo",
     "Scores",
     "State",
     "VersionInfo",

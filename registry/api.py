@@ -22,8 +22,10 @@ always finishes.
 from __future__ import annotations
 
 import datetime as dt
+import hashlib
 import os
 import time
+from collections.abc import Callable
 from pathlib import Path
 from types import TracebackType
 
@@ -35,11 +37,19 @@ from textsieve.errors import (
     NotFoundError,
     RegistryError,
     StateError,
+    TextsieveError,
 )
 from textsieve.registry._db import Backend
 from textsieve.registry.blobs import BlobStore, materialize
 from textsieve.registry.bundle import Bundle, open_bundle
-from textsieve.registry.evalsets import NormalisedEvalset, load_evalset, parse_stored, unknown_labels
+from textsieve.registry.evalsets import (
+    LabelledText,
+    NormalisedEvalset,
+    load_evalset,
+    normalise,
+    parse_stored,
+    unknown_labels,
+)
 from textsieve.registry.gates import GateSettings, Side, labels_gate, metric_gates, parity_gate
 from textsieve.registry.manifest import MANIFEST, Manifest
 from textsieve.registry.migrations import migrate
@@ -52,6 +62,7 @@ from textsieve.registry.records import (
     GateResult,
     ModelInfo,
     Promotion,
+    ReportInfo,
     State,
     VersionInfo,
 )
@@ -303,7 +314,10 @@ class Registry:
                 self._record_evalset(q, model, normalised, evalset_sha, Path(evalset).name, now, actor, reason)
             q.touch_model(model, now)
             info = q.version(model, n)
+            live_now = q.in_state(model, State.LIVE)
         assert info is not None
+        if normalised is not None:
+            self._report_quietly(model, n, _num(live_now), actor)  # evaluation report; never fails the publish
         return info
 
     def add_evalset(
@@ -375,6 +389,129 @@ class Registry:
         )
         return info
 
+    # -- evaluation reports ---------------------------------------------------------------
+    def report(
+        self,
+        model: str,
+        version: int,
+        *,
+        against: int | None = None,
+        examples: list[LabelledText] | None = None,
+        actor: str | None = None,
+        progress: Callable[[str], None] | None = None,
+    ) -> ReportInfo:
+        """The version's evaluation report on ``examples`` (default: the model's evaluation set),
+        compared with version ``against`` when given: the stored one, or built and stored now.
+
+        One report per (version, evaluation-set sha256, ``against``): asking again costs a lookup.
+        """
+        from textsieve.registry.report.files import make_report
+
+        model, version = validate_model_name(model), validate_version(version)
+        with self.backend.read() as tx:
+            q = Queries(tx)
+            target = self._require_version(q, model, version)
+            other = None if against is None else self._require_version(q, model, validate_version(against))
+            registered = q.evalset(model)
+        data: bytes | None = None
+        if examples is None:
+            if registered is None:
+                raise InputError(
+                    f"{model!r} has no evaluation set; pass one (textsieve evaluate {model} {version} --evalset FILE) "
+                    f"or register it (textsieve evalset add {model} FILE)"
+                )
+            digest = registered.sha256
+        else:
+            data = normalise(examples).data
+            digest = hashlib.sha256(data).hexdigest()
+        if other is not None and other.version == version:
+            other = None  # a version compared with itself says nothing
+        against_n = _num(other)
+        with self.backend.read() as tx:
+            stored = Queries(tx).report(model, version, digest, against_n)
+        if stored is not None:
+            return stored
+        if examples is None:
+            examples = parse_stored(self.blobs.read_bytes(digest))
+        pair = None if other is None else (self._materialize(other), other.version)
+        _, json_bytes, html_bytes = make_report(
+            self._materialize(target), examples, model=model, version=version, against=pair, progress=progress
+        )
+        self.blobs.ensure()
+        if data is not None:
+            self.blobs.put_bytes(data)  # kept with the report: the texts it was computed on
+        info = ReportInfo(
+            model=model,
+            version=version,
+            evalset_sha256=digest,
+            against=against_n,
+            json_sha256=self.blobs.put_bytes(json_bytes),
+            html_sha256=self.blobs.put_bytes(html_bytes),
+            created_at=utc_now(),
+            created_by=resolve_actor(actor),
+        )
+        with self.backend.write() as tx:
+            q = Queries(tx)
+            q.add_report(info)
+            stored = q.report(model, version, digest, against_n)
+        assert stored is not None
+        return stored
+
+    def stored_report(self, model: str, version: int) -> ReportInfo:
+        """The version's newest stored report (on the current evaluation set when there is one);
+        NotFoundError saying how to make one when there is none."""
+        model, version = validate_model_name(model), validate_version(version)
+        with self.backend.read() as tx:
+            q = Queries(tx)
+            self._require_version(q, model, version)
+            current = q.evalset(model)
+            info = q.newest_report(model, version, None if current is None else current.sha256)
+        if info is None:
+            raise NotFoundError(
+                f"version {version} of {model!r} has no evaluation report yet; make one with "
+                f"'textsieve evaluate {model} {version}' (publishing with --evalset and promoting also make one)"
+            )
+        return info
+
+    def report_content(self, model: str, version: int, kind: str) -> tuple[ReportInfo, bytes]:
+        """The newest stored report's ``json`` or ``html`` bytes, re-hashed on read."""
+        return self.report_file(self.stored_report(model, version), kind)
+
+    def report_file(self, info: ReportInfo, kind: str) -> tuple[ReportInfo, bytes]:
+        """A stored report's ``json`` or ``html`` bytes, re-hashed on read."""
+        if kind not in ("json", "html"):
+            raise InputError(f"report kind {kind!r}; allowed: json, html")
+        return info, self.blobs.read_bytes(info.json_sha256 if kind == "json" else info.html_sha256)
+
+    def _report_quietly(self, model: str, version: int, against: int | None, actor: str) -> ReportInfo | None:
+        """Build the report publishing and promotion owe, never raising: they must not fail over a report.
+        A failure is recorded as a ``report_failed`` event; no evaluation set, or one whose labels the
+        version does not know (the gates say so already), means there is simply nothing to report."""
+        try:
+            with self.backend.read() as tx:
+                q = Queries(tx)
+                registered = q.evalset(model)
+                target = q.version(model, version)
+            if registered is None or target is None or unknown_labels(registered.labels, target.labels):
+                return None
+            return self.report(model, version, against=against, actor=actor)
+        except (TextsieveError, ValueError, RuntimeError, OSError) as exc:
+            message = exc.message if isinstance(exc, TextsieveError) else f"{type(exc).__name__}: {exc}"
+            try:
+                with self.backend.write() as tx:
+                    Queries(tx).add_event(
+                        model=model,
+                        version=version,
+                        kind="report_failed",
+                        actor=actor,
+                        at=utc_now(),
+                        reason="",
+                        details={"against": against, "error": message[:500]},
+                    )
+            except (TextsieveError, OSError):
+                pass  # the registry itself failing will show in the next call; the publish stands
+            return None
+
     # -- lifecycle ------------------------------------------------------------------------
     def check(self, model: str, version: int) -> list[GateResult]:
         """Run the promotion-to-live gates without promoting (nothing is recorded)."""
@@ -403,7 +540,11 @@ class Registry:
         reason = validate_reason(reason, required=True)
         actor = resolve_actor(actor)
         if to == State.CANDIDATE:
-            return self._to_candidate(model, version, reason, actor)
+            promotion = self._to_candidate(model, version, reason, actor)
+            # -- evaluation report of this attempt (never fails the promotion) --
+            live_now = self.live(model)
+            report = self._report_quietly(model, version, _num(live_now), actor)
+            return promotion.model_copy(update={"report": report})
         for attempt in range(_GATE_ATTEMPTS + 1):
             if attempt < _GATE_ATTEMPTS:
                 with self.backend.read() as tx:
@@ -437,9 +578,15 @@ class Registry:
                     gates = self._judge(model, target, live, q.evalset(model))
                     outcome = self._apply_live(q, target, live, gates, reason=reason, actor=actor, force=force)
             event_id, info, failed = outcome
+            # -- evaluation report of this attempt, against the live version the gates judged with
+            # (stored before a refusal is raised, so the refusal can point at report_path(); never fails) --
+            report = self._report_quietly(model, version, _num(live), actor)
+            # -- end of the report hook --
             if info is None:
                 raise _refusal(model, version, gates, failed, event_id)
-            return Promotion(version=info, gates=gates, forced=bool(failed), retired=_num(live), event_id=event_id)
+            return Promotion(
+                version=info, gates=gates, forced=bool(failed), retired=_num(live), event_id=event_id, report=report
+            )
         raise AssertionError("unreachable: the last attempt runs under the lock")
 
     def _judge(

@@ -136,6 +136,10 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     add_location_args(p)
     p.set_defaults(func=cli_gc)
 
+    from textsieve.registry.report import cli as report_cli  # argparse only: as light as this module
+
+    report_cli.register(sub)
+
 
 def add_location_args(p: argparse.ArgumentParser) -> None:
     """``--registry`` and ``--blobs``; unset, they fall back on the environment when the verb runs."""
@@ -355,6 +359,8 @@ def summarise(e: Event) -> str:
         return f"{d.get('source')}: {d.get('texts')} texts"
     if e.kind == "rollback":
         return f"live {d.get('from')} → {d.get('to')}"
+    if e.kind == "report_failed":
+        return f"evaluation report not made: {d.get('error')}"
     gates = " ".join(f"{g['name']}:{'pass' if g['passed'] else 'FAIL'}" for g in d.get("gates", []))
     if e.kind == "refuse":
         return f"to live refused; {gates}"

@@ -92,6 +92,25 @@ MIGRATIONS: tuple[Migration, ...] = (
         CREATE INDEX events_model ON events (model, id)
     """,
     ),
+    # One report per (version, evaluation set, version compared against; 0 = none), so each is
+    # computed once; its JSON and HTML are blobs.
+    Migration(
+        "0004_reports",
+        """
+        CREATE TABLE reports (
+            model TEXT NOT NULL,
+            version INTEGER NOT NULL,
+            evalset_sha256 TEXT NOT NULL,
+            against INTEGER NOT NULL,
+            json_sha256 TEXT NOT NULL,
+            html_sha256 TEXT NOT NULL,
+            created_at TEXT NOT NULL,
+            created_by TEXT NOT NULL,
+            PRIMARY KEY (model, version, evalset_sha256, against),
+            FOREIGN KEY (model, version) REFERENCES versions (model, version)
+        )
+    """,
+    ),
 )
 
 _TABLE = "CREATE TABLE IF NOT EXISTS schema_migrations (name TEXT PRIMARY KEY, applied_at TEXT NOT NULL)"

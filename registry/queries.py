@@ -7,7 +7,7 @@ from collections.abc import Iterable
 from typing import Any
 
 from textsieve.registry._db import Tx
-from textsieve.registry.records import EvalsetInfo, Event, ModelInfo, State, VersionInfo
+from textsieve.registry.records import EvalsetInfo, Event, ModelInfo, ReportInfo, State, VersionInfo
 
 _VERSION_COLUMNS = (
     "model, version, state, labels, manifest_sha256, created_at, published_by, reason, "
@@ -207,11 +207,49 @@ class Queries:
         )
         return [Event.from_row(r) for r in rows]
 
+    # -- reports --------------------------------------------------------------------------
+    _REPORT_COLUMNS = "model, version, evalset_sha256, against, json_sha256, html_sha256, created_at, created_by"
+
+    def add_report(self, info: ReportInfo) -> None:
+        """Record a report; one computed meanwhile by another process for the same key is kept."""
+        self.tx.run(
+            f"INSERT INTO reports ({self._REPORT_COLUMNS}) VALUES (?, ?, ?, ?, ?, ?, ?, ?) "
+            "ON CONFLICT (model, version, evalset_sha256, against) DO NOTHING",
+            (
+                info.model,
+                info.version,
+                info.evalset_sha256,
+                info.against or 0,
+                info.json_sha256,
+                info.html_sha256,
+                info.created_at,
+                info.created_by,
+            ),
+        )
+
+    def report(self, model: str, version: int, evalset_sha256: str, against: int | None) -> ReportInfo | None:
+        row = self.tx.one(
+            f"SELECT {self._REPORT_COLUMNS} FROM reports "
+            "WHERE model = ? AND version = ? AND evalset_sha256 = ? AND against = ?",
+            (model, version, evalset_sha256, against or 0),
+        )
+        return None if row is None else ReportInfo.from_row(row)
+
+    def newest_report(self, model: str, version: int, prefer_evalset: str | None) -> ReportInfo | None:
+        """The version's report on ``prefer_evalset`` if there is one, else its newest on any set."""
+        rows = self.tx.all(
+            f"SELECT {self._REPORT_COLUMNS} FROM reports WHERE model = ? AND version = ? ORDER BY created_at DESC",
+            (model, version),
+        )
+        best = [r for r in rows if r["evalset_sha256"] == prefer_evalset] or rows
+        return ReportInfo.from_row(best[0]) if best else None
+
     def referenced_blobs(self) -> set[str]:
-        """Every sha256 a version (its files and manifest) or an evaluation set refers to."""
+        """Every sha256 a version (its files and manifest), an evaluation set or a report refers to."""
         rows = self.tx.all(
             "SELECT sha256 AS d FROM version_files UNION SELECT manifest_sha256 FROM versions "
-            "UNION SELECT sha256 FROM evalsets"
+            "UNION SELECT sha256 FROM evalsets UNION SELECT json_sha256 FROM reports "
+            "UNION SELECT html_sha256 FROM reports UNION SELECT evalset_sha256 FROM reports"
         )
         return {str(r["d"]) for r in rows}
 

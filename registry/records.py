@@ -20,7 +20,7 @@ class State(StrEnum):
 
 
 STATES: tuple[State, ...] = tuple(State)  # in lifecycle order
-EventKind = Literal["publish", "evalset", "promote", "refuse", "rollback"]
+EventKind = Literal["publish", "evalset", "promote", "refuse", "rollback", "report_failed"]
 
 
 class _Record(BaseModel):
@@ -108,6 +108,41 @@ class EvalsetInfo(_Record):
         )
 
 
+def report_path(model: str, version: int) -> str:
+    """Where the service serves a version's evaluation report."""
+    return f"/v1/models/{model}/versions/{version}/report"
+
+
+class ReportInfo(_Record):
+    """A stored evaluation report: one per (version, evaluation set, version compared against)."""
+
+    model: str
+    version: int
+    evalset_sha256: str
+    against: int | None = Field(description="the version it was compared with, or None")
+    json_sha256: str = Field(description="blob holding report.json")
+    html_sha256: str = Field(description="blob holding report.html")
+    created_at: str
+    created_by: str
+
+    @property
+    def path(self) -> str:
+        return report_path(self.model, self.version)
+
+    @classmethod
+    def from_row(cls, row: dict[str, Any]) -> ReportInfo:
+        return cls(
+            model=row["model"],
+            version=int(row["version"]),
+            evalset_sha256=row["evalset_sha256"],
+            against=int(row["against"]) or None,
+            json_sha256=row["json_sha256"],
+            html_sha256=row["html_sha256"],
+            created_at=row["created_at"],
+            created_by=row["created_by"],
+        )
+
+
 class GateResult(_Record):
     name: str
     passed: bool
@@ -121,6 +156,7 @@ class Promotion(_Record):
     forced: bool
     retired: int | None = Field(description="the version that was live before, now retired")
     event_id: int
+    report: ReportInfo | None = Field(default=None, description="the evaluation report this attempt produced")
 
 
 class Event(_Record):

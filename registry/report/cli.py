@@ -1,0 +1,158 @@
+"""``textsieve evaluate``: a version's evaluation report, written as report.json and report.html
+and stored in the registry (computed once per version, evaluation set and version compared).
+
+Imported for every run of ``textsieve``: the registry and NumPy are imported inside the handler.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from textsieve.errors import InputError
+
+if TYPE_CHECKING:
+    from textsieve.registry.api import Registry
+
+
+def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    from textsieve.registry.cli import _actor_arg, add_location_args
+
+    p = sub.add_parser(
+        "evaluate",
+        help="a version's evaluation report (report.json and a self-contained report.html)",
+        description="Score a version on an evaluation set and write report.json and report.html: metrics with "
+        "bootstrap intervals, per-class figures, confusion matrix, calibration, selective prediction, "
+        "accuracy by length, the worst mistakes, and with --against a paired comparison. The report is "
+        "stored in the registry, so asking again is instant.",
+    )
+    p.add_argument("model", help="model name")
+    p.add_argument("version", help="version number")
+    p.add_argument("--evalset", type=Path, help="labelled JSONL or CSV file (default: the model's evaluation set)")
+    p.add_argument("--text-field", default="text", help="with --evalset: JSONL key or CSV column holding the text")
+    p.add_argument("--label-field", default="label", help="with --evalset: JSONL key or CSV column holding the label")
+    p.add_argument("--against", metavar="live|N", help="compare with the live version or version N on the same texts")
+    p.add_argument("--out", type=Path, help="folder for report.json and report.html (default: report-MODEL-VERSION)")
+    add_location_args(p)
+    _actor_arg(p)
+    p.set_defaults(func=cli_evaluate)
+
+
+def _against(reg: Registry, model: str, version: int, text: str | None) -> int | None:
+    from textsieve.registry.names import validate_version
+
+    if text is None:
+        return None
+    if text == "live":
+        live = reg.live(model)
+        if live is None:
+            raise InputError(f"--against live: {model!r} has no live version; name one with --against N")
+        if live.version == version:
+            print(f"version {version} is the live version: nothing to compare with", file=sys.stderr)
+            return None
+        return live.version
+    try:
+        n = validate_version(text)
+    except InputError as exc:
+        raise InputError(f"--against {text!r}: give 'live' or a version number") from exc
+    if n == version:
+        raise InputError(f"--against {n}: that is the version under report; name another one or 'live'")
+    return n
+
+
+def cli_evaluate(args: argparse.Namespace) -> int:
+    from textsieve.files import atomic_write_bytes
+    from textsieve.registry.cli import _open
+    from textsieve.registry.evalsets import load_evalset
+    from textsieve.registry.names import validate_version
+    from textsieve.registry.report.files import HTML_FILE, JSON_FILE
+
+    version = validate_version(args.version)
+    examples = None
+    if args.evalset is not None:
+        examples = load_evalset(args.evalset, text_field=args.text_field, label_field=args.label_field).examples
+    out = args.out if args.out is not None else Path(f"report-{args.model}-{version}")
+    with _open(args) as reg:
+        reg.version(args.model, version)  # unknown model or version: said before any scoring
+        against = _against(reg, args.model, version, args.against)
+
+        def progress(stage: str) -> None:
+            print(f"evaluate: {stage}…", file=sys.stderr, flush=True)
+
+        info = reg.report(args.model, version, against=against, examples=examples, actor=args.actor, progress=progress)
+        _, json_bytes = reg.report_file(info, "json")
+        _, html_bytes = reg.report_file(info, "html")
+    import json
+
+    report = json.loads(json_bytes)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+        atomic_write_bytes(out / JSON_FILE, json_bytes)
+        atomic_write_bytes(out / HTML_FILE, html_bytes)
+    except OSError as exc:
+        raise InputError(f"{out}: cannot write the report ({exc.strerror or exc}); choose another --out") from exc
+    print(summary(report))
+    print(f"\nwrote {out / JSON_FILE} and {out / HTML_FILE}", file=sys.stderr)
+    return 0
+
+
+def summary(report: dict[str, Any]) -> str:
+    """The report's headline figures as readable tables."""
+    from textsieve.registry.cli import table
+
+    def f(x: object) -> str:
+        return "-" if not isinstance(x, int | float) else f"{x:.4f}"
+
+    def ci(pair: object) -> str:
+        return "-" if not isinstance(pair, list) or None in pair else f"{pair[0]:.4f}–{pair[1]:.4f}"
+
+    m = report["metrics"]
+    lines = [
+        f"{report['model']} version {report['version']} on {report['n']} texts "
+        f"(evaluation set {report['evalset_sha256'][:12]}…)",
+        "",
+        table(
+            ["FIGURE", "VALUE", "95% INTERVAL"],
+            [
+                ["accuracy", f(m["accuracy"]), ci(m["accuracy_ci"])],
+                ["macro-F1", f(m["macro_f1"]), ci(m["macro_f1_ci"])],
+                ["ECE", f(m["ece"]), ""],
+                ["MCE", f(m["mce"]), ""],
+                ["Brier", f(m["brier"]), ""],
+                ["NLL", f(m["nll"]), ""],
+            ],
+            right=(1, 2),
+        ),
+        "",
+        table(
+            ["LABEL", "PRECISION", "RECALL", "F1", "SUPPORT"],
+            [[k, f(v["precision"]), f(v["recall"]), f(v["f1"]), v["support"]] for k, v in report["per_class"].items()],
+            right=(1, 2, 3, 4),
+        ),
+        "",
+        table(
+            ["TARGET ACCURACY", "THRESHOLD", "KEEPS"],
+            [
+                [f"{t['target_accuracy']:.2f}", f(t["threshold"]), f"{t['coverage']:.1%}"]
+                for t in report["selective_targets"]
+            ],
+            right=(0, 1, 2),
+        ),
+    ]
+    c = report.get("comparison")
+    if c:
+        lines += [
+            "",
+            f"against version {c['against']}: accuracy {c['accuracy_delta']:+.4f} ({ci(c['accuracy_delta_ci'])}), "
+            f"macro-F1 {c['macro_f1_delta']:+.4f} ({ci(c['macro_f1_delta_ci'])}); right→wrong {c['right_to_wrong']}, "
+            f"wrong→right {c['wrong_to_right']}, wrong→other wrong {c['wrong_to_other_wrong']}; "
+            f"McNemar p {c['mcnemar_p']:.4g}; detectable difference {f(c['minimum_detectable_difference'])}",
+        ]
+    for note in report.get("notes", []):
+        lines.append(f"note: {note}")
+    return "\n".join(lines)
+
+
+__all__ = ["cli_evaluate", "register", "summary"]
