@@ -35,9 +35,9 @@ from numpy.typing import NDArray
 from textsieve.registry.runtime import Encoded, Outputs, Predictor
 from textsieve.registry.stats import bootstrap_interval
 
-# Upper edges of the length bands in tokens (the last band is open): short help-desk lines,
-# ordinary sentences, long sentences, paragraphs.
-LENGTH_BANDS = (5, 10, 20, 40)
+# Token-count bands (inclusive; the last is open), the same as the report's "by text length"
+# (build.LENGTH_BANDS): the caller passes those so both tables line up.
+LENGTH_BANDS: tuple[tuple[int, int | None], ...] = ((0, 5), (6, 10), (11, 20), (21, 40), (41, 80), (81, None))
 VARIANTS = ("random", "alternate", "beyond_width")
 # Verdict thresholds on ratio = mean |Δp| beyond width ÷ mean |Δp| random shuffle. Half is the
 # line between "mostly" and not (common practice for the word); below 1 % mean |Δp| under a full
@@ -87,19 +87,14 @@ def intact_share(order: NDArray[np.int64], width: int) -> float:
     return float(runs.mean())
 
 
-def band_names(bands: Sequence[int]) -> list[tuple[str, int, int | None]]:
-    """(name, lowest, highest or None) for each band; lengths count tokens the model sees."""
-    out: list[tuple[str, int, int | None]] = []
-    lo = 1
-    for hi in bands:
-        out.append((f"{lo}–{hi}", lo, hi))
-        lo = hi + 1
-    out.append((f"{lo}+", lo, None))
-    return out
+def band_name(band: tuple[int, int | None]) -> str:
+    lo, hi = band
+    return f"{lo}+" if hi is None else f"{lo}–{hi}"
 
 
-def _band_index(lengths: NDArray[np.int64], bands: Sequence[int]) -> NDArray[np.int64]:
-    return np.searchsorted(np.asarray(bands), lengths, side="left").astype(np.int64)
+def in_band(lengths: NDArray[np.int64], band: tuple[int, int | None]) -> NDArray[np.bool_]:
+    lo, hi = band
+    return (lengths >= lo) & (True if hi is None else lengths <= hi)
 
 
 # -- the probe ------------------------------------------------------------------------------------
@@ -124,7 +119,7 @@ def order_probe(
     texts: Sequence[str],
     *,
     seeds: Sequence[int] = (0, 1, 2),
-    bands: Sequence[int] = LENGTH_BANDS,
+    bands: Sequence[tuple[int, int | None]] = LENGTH_BANDS,
     window: int | None = None,
 ) -> dict[str, Any]:
     """Label changes and mean |Δp| of the predicted class under three reorderings; see the module doc."""
@@ -202,10 +197,9 @@ def order_probe(
         result[variant] = entry
         result[f"_{variant}"] = (ch, dp)  # per-text means, removed below
 
-    band_of = _band_index(lengths, bands)
-    for b, (name, lo, hi) in enumerate(band_names(bands)):
-        rows_b = band_of == b
-        row: dict[str, Any] = {"band": name, "lowest": lo, "highest": hi, "n": int(rows_b.sum())}
+    for band in bands:
+        rows_b = in_band(lengths, band)
+        row: dict[str, Any] = {"band": band_name(band), "lowest": band[0], "highest": band[1], "n": int(rows_b.sum())}
         for variant in VARIANTS:
             ch, dp = result[f"_{variant}"]
             row[variant] = _figures(ch[rows_b], dp[rows_b])
@@ -389,7 +383,8 @@ __all__ = [
     "LENGTH_BANDS",
     "VARIANTS",
     "alternate_order",
-    "band_names",
+    "band_name",
+    "in_band",
     "beyond_width_order",
     "filter_section",
     "intact_share",

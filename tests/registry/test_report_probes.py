@@ -197,8 +197,8 @@ def test_order_probe_matches_a_numpy_recomputation(
         _, dp = _direct_figures(reference, predictor, kept, figures)
         assert row["mean_abs_dp"] == pytest.approx(dp.mean(), abs=TOL)
     # Per band: the same per-text figures, grouped by the documented edges.
-    edges = [(1, 5), (6, 10), (11, 20), (21, 40), (41, 10**9)]
-    assert [b["band"] for b in result["bands"]] == ["1–5", "6–10", "11–20", "21–40", "41+"]
+    edges = [(0, 5), (6, 10), (11, 20), (21, 40), (41, 80), (81, 10**9)]
+    assert [b["band"] for b in result["bands"]] == ["0–5", "6–10", "11–20", "21–40", "41–80", "81+"]
     for band, (lo, hi) in zip(result["bands"], edges, strict=True):
         rows = np.array([lo <= n <= hi for n in ns])
         assert band["n"] == int(rows.sum())
