@@ -71,9 +71,9 @@ def tsne_map(before: NDArray[np.floating], after: NDArray[np.floating], seed: in
     m = points.shape[0]
     # Perplexity must stay below the number of points; a third of them is a common small-set choice.
     perplexity = float(min(30.0, max(2.0, (m - 1) / 3)))
-    coords = TSNE(
-        n_components=2, perplexity=perplexity, init="pca", random_state=seed, method="exact"
-    ).fit_transform(points)
+    coords = TSNE(n_components=2, perplexity=perplexity, init="pca", random_state=seed, method="exact").fit_transform(
+        points
+    )
     k = before.shape[0]
     return {
         "seed": seed,
@@ -124,7 +124,10 @@ def _compare(
     ]
     if moved.size >= 3:
         try:
-            section["map"] = {"words": [words[i] for i in moved.tolist()], **tsne_map(before[moved], after[moved], seed)}
+            section["map"] = {
+                "words": [words[i] for i in moved.tolist()],
+                **tsne_map(before[moved], after[moved], seed),
+            }
         except ImportError:
             section["note"] = "The 2-D map needs scikit-learn: pip install '.[report]'."
     return section
@@ -181,8 +184,7 @@ def _against(
         after.astype(np.float32),
         kind="against",
         title=(
-            f"From {name} to this version"
-            + ("" if shared_start else " (rotated onto it by orthogonal Procrustes)")
+            f"From {name} to this version" + ("" if shared_start else " (rotated onto it by orthogonal Procrustes)")
         ),
         top=top,
         neighbours=neighbours,

@@ -49,7 +49,6 @@ RESAMPLES = 1000
 BOOTSTRAP_SEED = 0
 
 
-
 # -- the reorderings (index arrays: new position i holds old token order[i]) --------------------
 def random_order(n: int, rng: np.random.Generator) -> NDArray[np.int64]:
     """A uniform shuffle, redrawn (at most a few times) when it happens to be the identity."""
@@ -136,7 +135,10 @@ def order_probe(
         "alternate": [[alternate_order(n) for n in lengths]],
         # Seeded per text so adding texts to the set does not change the others' reorderings.
         "beyond_width": [
-            [beyond_width_order(n, window, np.random.default_rng([seeds[0] if seeds else 0, i, 1])) for i, n in enumerate(lengths)]
+            [
+                beyond_width_order(n, window, np.random.default_rng([seeds[0] if seeds else 0, i, 1]))
+                for i, n in enumerate(lengths)
+            ]
         ],
     }
     runs: list[str] = [" ".join(p) for p in kept]
@@ -192,7 +194,8 @@ def order_probe(
         )
         if variant == "random":
             entry["per_seed"] = [
-                {"seed": int(s), **_figures(c, d)} for s, c, d in zip(seeds, change[variant], delta[variant], strict=True)
+                {"seed": int(s), **_figures(c, d)}
+                for s, c, d in zip(seeds, change[variant], delta[variant], strict=True)
             ]
         result[variant] = entry
         result[f"_{variant}"] = (ch, dp)  # per-text means, removed below
@@ -294,9 +297,7 @@ def output_weights(out: Outputs) -> NDArray[np.float64]:
     return weights
 
 
-def triggers(
-    predictor: Predictor, encoded: Sequence[Encoded], out: Outputs
-) -> list[Counter[tuple[int, ...]]]:
+def triggers(predictor: Predictor, encoded: Sequence[Encoded], out: Outputs) -> list[Counter[tuple[int, ...]]]:
     """Per filter, how often each n-gram (as vocabulary ids) was its max-over-time window with a pooled value > 0."""
     widths = predictor.filter_widths
     counts: list[Counter[tuple[int, ...]]] = [Counter() for _ in range(widths.shape[0])]

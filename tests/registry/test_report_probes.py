@@ -7,6 +7,7 @@ NearestNeighbors and TSNE, SciPy's orthogonal_procrustes, and the GloVe excerpt 
 
 from __future__ import annotations
 
+import html.parser
 import json
 from collections import Counter
 from pathlib import Path
@@ -436,3 +437,141 @@ def test_static_run_reports_no_movement(tmp_path: Path) -> None:
     run = _fake_run(tmp_path / "run", words, start.copy(), start, "static")
     (part,) = embeddings.embedding_section(run)["comparisons"]
     assert part["moved"] == [] and part["still"] == 50 and "static" in part["note"]
+
+
+# -- the sections in a report, and their HTML ------------------------------------------------------
+class _Page(html.parser.HTMLParser):
+    """Python's own HTML parser as the check that fragments nest: every element closed in order."""
+
+    VOID = {"br", "meta", "input", "img", "hr"}
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.stack: list[str] = []
+        self.tags: Counter[str] = Counter()
+        self.attrs: list[str] = []
+        self.text: list[str] = []
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        self.tags[tag] += 1
+        self.attrs.extend(name for name, _ in attrs)
+        if tag not in self.VOID:
+            self.stack.append(tag)
+
+    def handle_startendtag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        self.tags[tag] += 1
+        self.attrs.extend(name for name, _ in attrs)
+
+    def handle_endtag(self, tag: str) -> None:
+        assert self.stack and self.stack[-1] == tag, f"</{tag}> closes <{self.stack[-1] if self.stack else None}>"
+        self.stack.pop()
+
+    def handle_data(self, data: str) -> None:
+        self.text.append(data)
+
+
+def _parse(fragment: str) -> _Page:
+    page = _Page()
+    page.feed(fragment)
+    page.close()
+    assert page.stack == [], f"unclosed elements: {page.stack}"
+    # The report's Content-Security-Policy allows no script and no style attribute (CSP Level 2).
+    assert page.tags["script"] == 0 and "style" not in page.attrs and not any(a.startswith("on") for a in page.attrs)
+    return page
+
+
+def test_sections_in_a_built_report(tiny_bundles: dict[str, Path], tiny_runs: dict[str, Path], tiny_data: Path) -> None:
+    from textsieve.labelled import load_examples
+    from textsieve.registry.bundle import open_bundle
+    from textsieve.registry.report import build
+    from textsieve.registry.report.html import render_html
+    from textsieve.registry.report.probe_sections import probe_sections
+
+    assert probes.LENGTH_BANDS == build.LENGTH_BANDS, "the probe's bands line up with the by-length table"
+    sections = probe_sections(tiny_runs["a"], against_run=tiny_runs["b"], against_name="version 2")
+    examples = load_examples(tiny_data / "test.jsonl")
+    report = build.build_report(
+        open_bundle(tiny_bundles["a"]), examples, model="m", version=1, extra_sections=sections, bootstrap_resamples=20
+    )
+    assert report["notes"] == []
+    stored = json.loads(json.dumps(report, allow_nan=False))  # what report.json keeps, and all the pages get
+    for variant in probes.VARIANTS:  # issue 12's keys scripts rely on
+        assert 0.0 <= stored["order_probe"][variant]["label_change_rate"] <= 1.0
+    assert stored["filters"]["filters_total"] == len(Predictor.from_bundle(tiny_bundles["a"]).filter_widths)
+    assert stored["embeddings"]["comparisons"][0]["against"] == "version 2"
+    page = _parse(render_html(stored, sections))
+    assert page.tags["svg"] >= 4  # two order-probe charts, the filter widths, the embedding map
+
+
+def test_fragments_escape_what_they_show() -> None:
+    hostile = "<script>alert(1)</script>"
+    order = {
+        "probed": 3,
+        "skipped_short": 1,
+        "widths": [3],
+        "rules": {"random": hostile},
+        "random": {"label_change_rate": 0.5, "mean_abs_dp": 0.1, "intact_ngram_share": 0.0, "per_seed": []},
+        "alternate": {"label_change_rate": None, "mean_abs_dp": None, "intact_ngram_share": None},
+        "beyond_width": {"label_change_rate": 0.0, "mean_abs_dp": 0.0, "intact_ngram_share": 1.0},
+        "bands": [
+            {"band": "0–5", "n": 3, **{v: {"label_change_rate": 0.5, "mean_abs_dp": 0.1} for v in probes.VARIANTS}}
+        ],
+        "verdict": {"finding": "too_few", "text": hostile},
+    }
+    filters = {
+        "filters_total": 2,
+        "dead": [1],
+        "by_class": {hostile: [{"ngram": hostile, "count": 2}]},
+        "filters": [
+            {
+                "index": 0,
+                "width": 3,
+                "fires": 2,
+                "fire_rate": 1.0,
+                "pushes": hostile,
+                "margin": 0.5,
+                "agreement": 1.0,
+                "top": [{"ngram": hostile, "count": 2}],
+            },
+            {
+                "index": 1,
+                "width": 3,
+                "fires": 0,
+                "fire_rate": 0.0,
+                "pushes": None,
+                "margin": None,
+                "agreement": None,
+                "top": [],
+            },
+        ],
+    }
+    moved = {
+        "note": None,
+        "comparisons": [
+            {
+                "title": hostile,
+                "words": 3,
+                "mean_distance": 0.5,
+                "median_distance": 0.5,
+                "still": 0,
+                "note": hostile,
+                "moved": [{"word": hostile, "distance": 1.0, "before": [hostile], "after": ["b"]}] * 3,
+                "map": {
+                    "words": [hostile, "b", "c"],
+                    "seed": 0,
+                    "perplexity": 2.0,
+                    "before": [[0, 0], [1, 1], [2, 0]],
+                    "after": [[0, 1], [1, 2], [2, 1]],
+                },
+            }
+        ],
+    }
+    from textsieve.registry.report.probe_html import render_embeddings, render_filters, render_order_probe
+
+    for fragment in (render_order_probe(order), render_filters(filters), render_embeddings(moved)):
+        page = _parse(fragment)
+        assert hostile in "".join(page.text), "shown as text"
+    assert "#1" in render_filters(filters) and "Dead filters" in render_filters(filters)
+    note = render_embeddings(embeddings.embedding_section(None))
+    shown = _parse(note)
+    assert shown.tags["p"] == 1 and "".join(shown.text) == embeddings.NO_RUN, "without a run folder: one line instead"
