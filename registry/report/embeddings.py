@@ -44,7 +44,7 @@ def unit_rows(x: NDArray[np.floating]) -> NDArray[np.float64]:
 
 def cosine_distance_rows(a: NDArray[np.floating], b: NDArray[np.floating]) -> NDArray[np.float64]:
     """1 − cos between a[i] and b[i], clipped to [0, 2] as rounding can step outside it."""
-    return np.clip(1.0 - np.sum(unit_rows(a) * unit_rows(b), axis=1), 0.0, 2.0)
+    return np.asarray(np.clip(1.0 - np.sum(unit_rows(a) * unit_rows(b), axis=1), 0.0, 2.0), dtype=np.float64)
 
 
 def nearest(space: NDArray[np.floating], rows: NDArray[np.int64], k: int) -> NDArray[np.int64]:
@@ -60,7 +60,7 @@ def nearest(space: NDArray[np.floating], rows: NDArray[np.int64], k: int) -> NDA
 def procrustes_rotation(source: NDArray[np.floating], target: NDArray[np.floating]) -> NDArray[np.float64]:
     """The orthogonal R minimising ‖source·R − target‖_F (Schönemann, 1966): R = U·Vᵀ from svd(sourceᵀ·target)."""
     u, _, vt = np.linalg.svd(np.asarray(source, np.float64).T @ np.asarray(target, np.float64))
-    return u @ vt
+    return np.asarray(u @ vt, dtype=np.float64)
 
 
 def tsne_map(before: NDArray[np.floating], after: NDArray[np.floating], seed: int = MAP_SEED) -> dict[str, Any]:

@@ -107,7 +107,8 @@ def reorder_text(pieces: Sequence[str], order: NDArray[np.int64]) -> str:
     return " ".join(pieces[i] for i in order.tolist())
 
 
-def _figures(changed: NDArray[np.bool_], dp: NDArray[np.float64]) -> dict[str, float | None]:
+def _figures(changed: NDArray[Any], dp: NDArray[Any]) -> dict[str, float | None]:
+    """Share of labels changed (per text: 0/1, or the share over seeds) and mean |Δp|."""
     if changed.size == 0:
         return {"label_change_rate": None, "mean_abs_dp": None}
     return {"label_change_rate": float(changed.mean()), "mean_abs_dp": float(dp.mean())}
@@ -275,8 +276,8 @@ def _verdict(result: dict[str, Any], lengths: NDArray[np.int64], window: int) ->
         out.update(
             finding="inconclusive",
             text=(
-                f"The figures cannot tell whether the model relies mostly on order inside its filter widths: {figures}; "
-                f"the interval straddles {MOSTLY}."
+                "The figures cannot tell whether the model relies mostly on order inside its filter widths: "
+                f"{figures}; the interval straddles {MOSTLY}."
             ),
         )
     return out

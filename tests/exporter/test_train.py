@@ -191,7 +191,13 @@ def test_pretrained_vectors(mode: str, keyword_data: Path, tmp_path: Path) -> No
     # The run records the starting rows (as the vectors file has them) and the trained matrix for the report.
     record = read_run_embeddings(out)
     assert record.vectors_mode == mode
-    assert sorted(record.vocabulary.tokens[i] for i in record.start_ids) == ["bike", "brake", "broken", "charged", "refund"]
+    assert sorted(record.vocabulary.tokens[i] for i in record.start_ids) == [
+        "bike",
+        "brake",
+        "broken",
+        "charged",
+        "refund",
+    ]
     for i, row in zip(record.start_ids.tolist(), record.start, strict=True):
         np.testing.assert_array_equal(row, vectors[record.vocabulary.tokens[i]])
     np.testing.assert_array_equal(record.trained, weight.numpy())
