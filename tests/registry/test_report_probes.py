@@ -175,13 +175,14 @@ def test_order_probe_matches_a_numpy_recomputation(
     assert result["probed"] == len(kept) and result["n"] == len(texts)
     window = max(predictor.filter_widths.tolist()) + 1
     assert result["window"] == window
-    # The same seeded draws the probe documents: seed s for text i is default_rng([s, i]).
+    # The same seeded draws the probe documents: seed s shuffles the texts in order, the
+    # window shuffles come from default_rng([first seed, 1]).
+    rngs = [np.random.default_rng(s) for s in seeds]
+    beyond = np.random.default_rng([seeds[0], 1])
     draws = {
-        "random": [[probes.random_order(n, np.random.default_rng([s, i])) for i, n in enumerate(ns)] for s in seeds],
+        "random": [[probes.random_order(n, rng) for n in ns] for rng in rngs],
         "alternate": [[probes.alternate_order(n) for n in ns]],
-        "beyond_width": [
-            [probes.beyond_width_order(n, window, np.random.default_rng([seeds[0], i, 1])) for i, n in enumerate(ns)]
-        ],
+        "beyond_width": [[probes.beyond_width_order(n, window, beyond) for n in ns]],
     }
     per_text: dict[str, tuple[np.ndarray, np.ndarray]] = {}
     for variant, runs in draws.items():
