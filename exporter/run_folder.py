@@ -5,6 +5,8 @@
       model.pt      the best epoch's weights (a torch state dict)
       vocab.txt     one token a line, padding and unknown first
       valid.jsonl   the validation rows, for the exporter's parity check and calibration
+      embeddings.npz  trained embedding matrix and starting pretrained rows, for the evaluation
+                    report (registry/report/embedding_files.py; never copied into a bundle)
 
 The file names and run.json's keys are the format: folders written before :class:`RunInfo`
 existed hold exactly these and still load. Reading run.json needs no torch; the weights do.
@@ -23,12 +25,14 @@ from textsieve.errors import BundleError, InputError
 from textsieve.files import atomic_directory
 from textsieve.labelled import Example
 from textsieve.registry.manifest import ArchitectureInfo, LengthInfo, TrainingInfo
+from textsieve.registry.report.embedding_files import EMBEDDINGS_NPZ, embedding_arrays
 from textsieve.registry.tokenizer import TokenizerSpec, Vocabulary
 
 if TYPE_CHECKING:
     import torch
 
     from textsieve.exporter.model import SentenceCNN
+    from textsieve.exporter.vectors import PretrainedVectors
 
 RUN_JSON = "run.json"
 MODEL_PT = "model.pt"
@@ -115,9 +119,20 @@ def check_out(out: Path) -> None:
 
 
 def write_run(
-    out: Path, info: RunInfo, state: dict[str, torch.Tensor], vocabulary: Vocabulary, valid: list[Example]
+    out: Path,
+    info: RunInfo,
+    state: dict[str, torch.Tensor],
+    vocabulary: Vocabulary,
+    valid: list[Example],
+    *,
+    start: PretrainedVectors | None = None,
 ) -> None:
-    """Build the folder beside ``out`` and rename it into place, so no reader sees half a run."""
+    """Build the folder beside ``out`` and rename it into place, so no reader sees half a run.
+
+    ``start``: the pretrained rows the embedding began from, recorded with the trained matrix
+    in embeddings.npz so the evaluation report can show how the vectors moved.
+    """
+    import numpy as np
     import torch
 
     valid_lines = "".join(json.dumps({"text": e.text, "label": e.label}, ensure_ascii=False) + "\n" for e in valid)
@@ -129,6 +144,14 @@ def write_run(
     try:
         with atomic_directory(out, replace=True) as tmp:
             torch.save(state, tmp / MODEL_PT)
+            vectors = info.architecture.vectors
+            arrays = embedding_arrays(
+                state["embedding.weight"].detach().cpu().numpy(),
+                None if start is None else start.ids,
+                None if start is None else start.matrix,
+                "" if vectors is None else vectors.mode,
+            )
+            np.savez(tmp / EMBEDDINGS_NPZ, allow_pickle=False, **arrays)
             for name, text in files.items():
                 (tmp / name).write_bytes(text.encode("utf-8"))
             check_out(out)  # again: something may have appeared there while we trained
@@ -219,6 +242,7 @@ def _load_vocabulary(path: Path, info: RunInfo) -> Vocabulary:
 
 
 __all__ = [
+    "EMBEDDINGS_NPZ",
     "MODEL_PT",
     "RUN_JSON",
     "RUN_KEYS",

@@ -28,7 +28,9 @@ def train(config: TrainConfig) -> Path:
     check_out(config.out)  # before the training, not only after it: a bad --out should not cost minutes
     prep = prepare(config)
     fitted = fit(config, prep)
-    write_run(config.out, describe_run(config, prep, fitted), fitted.state, prep.vocabulary, prep.valid)
+    write_run(
+        config.out, describe_run(config, prep, fitted), fitted.state, prep.vocabulary, prep.valid, start=prep.vectors
+    )
     return config.out
 
 

@@ -20,6 +20,7 @@ from textsieve.errors import InputError
 from textsieve.exporter.encode import encode_texts
 from textsieve.exporter.fit import evaluate
 from textsieve.exporter.run_folder import (
+    EMBEDDINGS_NPZ,
     MODEL_PT,
     RUN_JSON,
     VALID_JSONL,
@@ -31,6 +32,7 @@ from textsieve.exporter.run_folder import (
 from textsieve.exporter.train import TrainConfig, train
 from textsieve.files import sha256_file
 from textsieve.registry.manifest import LengthInfo, TrainingInfo, VectorsInfo
+from textsieve.registry.report.embedding_files import read_run_embeddings
 from textsieve.registry.tokenizer import TokenizerSpec, Vocabulary
 
 
@@ -46,7 +48,9 @@ def test_kim_defaults() -> None:
 
 
 def test_run_folder_follows_the_contract(keyword_run: Path, keyword_data: Path) -> None:
-    assert sorted(p.name for p in keyword_run.iterdir()) == sorted([MODEL_PT, VOCAB_TXT, VALID_JSONL, RUN_JSON])
+    assert sorted(p.name for p in keyword_run.iterdir()) == sorted(
+        [MODEL_PT, VOCAB_TXT, VALID_JSONL, RUN_JSON, EMBEDDINGS_NPZ]
+    )
     assert [p.name for p in keyword_run.parent.iterdir()] == ["run"], "no temp folders left behind"
     text = (keyword_run / RUN_JSON).read_text(encoding="utf-8")
     on_disk = json.loads(text)
@@ -75,6 +79,18 @@ def test_run_folder_follows_the_contract(keyword_run: Path, keyword_data: Path) 
     history = run.training.history
     assert [h.epoch for h in history] == list(range(1, training.epochs + 1))
     assert 1 <= training.best_epoch <= training.epochs
+
+
+def test_run_records_its_embedding_matrix_for_the_report(keyword_run: Path) -> None:
+    """embeddings.npz holds model.pt's embedding matrix (read back with plain NumPy, no torch) and,
+    without --vectors, no starting vectors."""
+    with np.load(keyword_run / EMBEDDINGS_NPZ, allow_pickle=False) as npz:
+        assert sorted(npz.files) == ["start", "start_ids", "trained", "vectors_mode"]
+        trained = npz["trained"]
+        assert npz["start_ids"].shape == (0,) and npz["start"].shape == (0, 16) and str(npz["vectors_mode"]) == ""
+    state = torch.load(keyword_run / MODEL_PT, weights_only=True)
+    np.testing.assert_array_equal(trained, state["embedding.weight"].numpy())
+    assert trained.dtype == np.float32
 
 
 def test_run_json_tolerates_unknown_top_level_keys(keyword_run: Path, tmp_path: Path) -> None:
@@ -172,6 +188,19 @@ def test_pretrained_vectors(mode: str, keyword_data: Path, tmp_path: Path) -> No
         assert all(same), "static mode never changes the pretrained rows"
     else:
         assert not any(same), "non-static mode fine-tunes them"
+    # The run records the starting rows (as the vectors file has them) and the trained matrix for the report.
+    record = read_run_embeddings(out)
+    assert record.vectors_mode == mode
+    assert sorted(record.vocabulary.tokens[i] for i in record.start_ids) == [
+        "bike",
+        "brake",
+        "broken",
+        "charged",
+        "refund",
+    ]
+    for i, row in zip(record.start_ids.tolist(), record.start, strict=True):
+        np.testing.assert_array_equal(row, vectors[record.vocabulary.tokens[i]])
+    np.testing.assert_array_equal(record.trained, weight.numpy())
 
 
 def test_length_statistics_by_hand(tmp_path: Path) -> None:
