@@ -486,12 +486,17 @@ class Registry:
         examples: list[LabelledText] | None = None,
         actor: str | None = None,
         progress: Callable[[str], None] | None = None,
+        run: Path | None = None,
+        against_run: Path | None = None,
     ) -> ReportInfo:
         """The version's evaluation report on ``examples`` (default: the model's evaluation set),
         compared with version ``against`` when given: the stored one, or built and stored now.
 
         One report per (version, evaluation-set sha256, ``against``): asking again costs a lookup.
+        Given training run folders (``run``, ``against_run``: the registry keeps none), the report
+        is built again with how the embeddings moved, and replaces the stored one.
         """
+        with_runs = run is not None or against_run is not None
         from textsieve.registry.report.files import make_report
 
         model, version = validate_model_name(model), validate_version(version)
@@ -516,13 +521,20 @@ class Registry:
         against_n = _num(other)
         with self.backend.read() as tx:
             stored = Queries(tx).report(model, version, digest, against_n)
-        if stored is not None:
+        if stored is not None and not with_runs:
             return stored
         if examples is None:
             examples = parse_stored(self.blobs.read_bytes(digest))
         pair = None if other is None else (self._materialize(other), other.version)
         _, json_bytes, html_bytes = make_report(
-            self._materialize(target), examples, model=model, version=version, against=pair, progress=progress
+            self._materialize(target),
+            examples,
+            model=model,
+            version=version,
+            against=pair,
+            progress=progress,
+            run=run,
+            against_run=against_run,
         )
         self.blobs.ensure()
         if data is not None:
@@ -539,7 +551,7 @@ class Registry:
         )
         with self.backend.write() as tx:
             q = Queries(tx)
-            q.add_report(info)
+            q.add_report(info, replace=with_runs)
             stored = q.report(model, version, digest, against_n)
         assert stored is not None
         return stored

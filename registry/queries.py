@@ -229,11 +229,18 @@ class Queries:
     # -- reports --------------------------------------------------------------------------
     _REPORT_COLUMNS = "model, version, evalset_sha256, against, json_sha256, html_sha256, created_at, created_by"
 
-    def add_report(self, info: ReportInfo) -> None:
-        """Record a report; one computed meanwhile by another process for the same key is kept."""
+    def add_report(self, info: ReportInfo, *, replace: bool = False) -> None:
+        """Record a report; one computed meanwhile by another process for the same key is kept,
+        unless ``replace`` (a fuller report of the same key: built with the training run folders)."""
+        on_conflict = (
+            "DO UPDATE SET json_sha256 = excluded.json_sha256, html_sha256 = excluded.html_sha256, "
+            "created_at = excluded.created_at, created_by = excluded.created_by"
+            if replace
+            else "DO NOTHING"
+        )
         self.tx.run(
             f"INSERT INTO reports ({self._REPORT_COLUMNS}) VALUES (?, ?, ?, ?, ?, ?, ?, ?) "
-            "ON CONFLICT (model, version, evalset_sha256, against) DO NOTHING",
+            f"ON CONFLICT (model, version, evalset_sha256, against) {on_conflict}",
             (
                 info.model,
                 info.version,

@@ -19,6 +19,7 @@ import hashlib
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -68,8 +69,18 @@ class Section:
     render: Callable[[dict[str, Any]], str]
 
 
-# The lead adds the probes here (order_probe, filters, embeddings): one entry each.
+# Sections beyond the core, drawn after it. Empty here: registry/report/probe_sections.py builds
+# the probes (word order, filters, embeddings) on this module's Section, so the default list is
+# made when a report is built (default_sections) rather than imported at the top.
 EXTRA_SECTIONS: list[Section] = []
+
+
+def default_sections(run: Path | None = None, against_run: Path | None = None) -> list[Section]:
+    """The sections every report carries: :data:`EXTRA_SECTIONS` and the three probes
+    (``run``/``against_run``: training run folders, for how the embeddings moved)."""
+    from textsieve.registry.report.probe_sections import probe_sections
+
+    return [*EXTRA_SECTIONS, *probe_sections(run, against_run=against_run)]
 
 
 @dataclass
@@ -154,7 +165,7 @@ def build_report(
     context = Context(bundle, cand.predictor, texts, [e.label for e in examples], LENGTH_BANDS, None)
     if against is not None:
         context.against = against[0]
-    for section in EXTRA_SECTIONS if extra_sections is None else extra_sections:
+    for section in default_sections() if extra_sections is None else extra_sections:
         say(section.key)
         try:
             report[section.key] = section.compute(context)
@@ -523,6 +534,7 @@ def _comparison(
 __all__ = [
     "CALIBRATION_BINS",
     "EXTRA_SECTIONS",
+    "default_sections",
     "LENGTH_BANDS",
     "SCHEMA",
     "TARGET_ACCURACIES",

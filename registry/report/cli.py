@@ -35,6 +35,12 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p.add_argument("--label-field", default="label", help="with --evalset: JSONL key or CSV column holding the label")
     p.add_argument("--against", metavar="live|N", help="compare with the live version or version N on the same texts")
     p.add_argument("--out", type=Path, help="folder for report.json and report.html (default: report-MODEL-VERSION)")
+    p.add_argument(
+        "--run", type=Path, metavar="DIR", help="the version's training run folder: adds how its embeddings moved"
+    )
+    p.add_argument(
+        "--against-run", type=Path, metavar="DIR", help="the other version's run folder (with --against): compares them"
+    )
     add_location_args(p)
     _actor_arg(p)
     p.set_defaults(func=cli_evaluate)
@@ -81,7 +87,19 @@ def cli_evaluate(args: argparse.Namespace) -> int:
         def progress(stage: str) -> None:
             print(f"evaluate: {stage}…", file=sys.stderr, flush=True)
 
-        info = reg.report(args.model, version, against=against, examples=examples, actor=args.actor, progress=progress)
+        for flag, folder in (("--run", args.run), ("--against-run", args.against_run)):
+            if folder is not None and not folder.is_dir():
+                raise InputError(f"{flag} {folder}: not a folder; give a training run folder (textsieve train --out)")
+        info = reg.report(
+            args.model,
+            version,
+            against=against,
+            examples=examples,
+            actor=args.actor,
+            progress=progress,
+            run=args.run,
+            against_run=args.against_run,
+        )
         _, json_bytes = reg.report_file(info, "json")
         _, html_bytes = reg.report_file(info, "html")
     import json

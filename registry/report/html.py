@@ -14,7 +14,7 @@ from html import escape
 from typing import Any
 
 from textsieve.registry.report import svg
-from textsieve.registry.report.build import EXTRA_SECTIONS, Section
+from textsieve.registry.report.build import Section, default_sections
 
 STYLE = """
 body{font-family:system-ui,sans-serif;margin:0 auto;max-width:1100px;padding:1rem 1.5rem;color:#1a1a1a;
@@ -337,9 +337,9 @@ def _comparison(r: dict[str, Any]) -> str:
 
 
 def render_html(report: dict[str, Any], sections: Sequence[Section] | None = None) -> str:
-    """The whole page for a report (``sections``: extra sections to draw, default :data:`EXTRA_SECTIONS`)."""
+    """The whole page for a report (``sections``: extra sections to draw, default :func:`default_sections`)."""
     extra = []
-    for section in EXTRA_SECTIONS if sections is None else sections:
+    for section in default_sections() if sections is None else sections:
         if report.get(section.key) is not None:
             extra.append(f'<section id="{escape(section.key)}"><h2>{escape(section.title)}</h2>')
             extra.append(section.render(report[section.key]) + "</section>")
