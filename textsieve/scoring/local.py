@@ -238,9 +238,9 @@ def score_file(
     opts = options or Options()
     err = stream or sys.stderr
     started = time.monotonic()
+    check_output(output)
     in_fmt = formats.detect(str(source), opts.input_format, "--input-format")
     out_fmt = formats.detect(str(output), opts.output_format, "--output-format")
-    check_output(output)
     if opts.chunk_rows < 1:
         raise InputError(f"--chunk-rows must be 1 or more, not {opts.chunk_rows}")
     reader = formats.open_reader(source, in_fmt)
