@@ -88,7 +88,7 @@ def test_parquet_read_by_pyarrow_and_csv_read_by_the_csv_module_match(
     assert pq.ParquetFile(tmp_path / "s.parquet").num_row_groups == 3  # one per chunk
     assert_same_results(table.to_pylist(), want, model.labels)
     assert table.column("id").to_pylist() == [r["id"] for r in rows]
-    assert table.column("input:class").to_pylist() == [r["class"] for r in rows]  # int type kept
+    assert table.column("class").to_pylist() == [r["class"] for r in rows]  # the JSON ints stay int64
     meta = json.loads(pq.read_schema(tmp_path / "s.parquet").metadata[b"textsieve"])
     assert (meta["version"], meta["bundle_sha256"]) == (2, model.bundle_sha256)
     with open(tmp_path / "s.csv", newline="", encoding="utf-8") as f:
