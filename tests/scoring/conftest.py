@@ -128,4 +128,3 @@ def wait_until(predicate: object, timeout: float, what: str) -> None:
 def loopback_cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[DaskCluster]:
     with dask_cluster(tmp_path_factory.mktemp("dask")) as cluster:
         yield cluster
-

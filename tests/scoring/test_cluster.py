@@ -87,16 +87,12 @@ def test_jsonl_split_at_byte_offsets_loses_and_repeats_no_line(
     out = tmp_path / "dataset"
     with open_registry(scoring_registry, create=False) as reg:
         # 37,000 bytes: boundaries fall inside lines, and inside multi-byte characters.
-        summary = score_on_cluster(
-            reg, MODEL, str(src), out, cluster=loopback_cluster.address, partition_bytes=37_000
-        )
+        summary = score_on_cluster(reg, MODEL, str(src), out, cluster=loopback_cluster.address, partition_bytes=37_000)
     assert summary.rows == 3000 and len(list(out.glob("part-*.parquet"))) > 5
     _assert_equal_tables(_dataset(out), want)
 
 
-def test_a_worker_killed_mid_run_is_retried_and_the_output_is_complete(
-    scoring_registry: Path, tmp_path: Path
-) -> None:
+def test_a_worker_killed_mid_run_is_retried_and_the_output_is_complete(scoring_registry: Path, tmp_path: Path) -> None:
     rows = [{**r, "id": i} for i, r in enumerate(uci_rows() * 4)]
     src = _parquet(tmp_path / "uci.parquet", rows, group=300)  # 40 partitions
     want = _local(src, tmp_path / "local.parquet", scoring_registry)

@@ -161,13 +161,32 @@ def _tamper(registry: Path) -> None:
 
 BAD_INPUT = [
     pytest.param(["missing.jsonl", "--out", "o.jsonl"], 2, "missing.jsonl: no such file", id="missing-file"),
-    pytest.param(["in.jsonl", "--out", "o.jsonl", "--text-field", "body"], 2, "no row among the first 2 has the field 'body'", id="wrong-text-field"),  # noqa: E501
-    pytest.param(["in.csv", "--out", "o.jsonl", "--text-field", "body"], 2, "the input has no column 'body'", id="wrong-csv-column"),  # noqa: E501
+    pytest.param(
+        ["in.jsonl", "--out", "o.jsonl", "--text-field", "body"],
+        2,
+        "no row among the first 2 has the field 'body'",
+        id="wrong-text-field",
+    ),  # noqa: E501
+    pytest.param(
+        ["in.csv", "--out", "o.jsonl", "--text-field", "body"],
+        2,
+        "the input has no column 'body'",
+        id="wrong-csv-column",
+    ),  # noqa: E501
     pytest.param(["in.jsonl", "--out", "o.jsonl", "--model", "nosuch"], 2, "no model 'nosuch'", id="unknown-model"),
-    pytest.param(["in.jsonl", "--out", "o.jsonl", "--version", "9"], 2, "'support' has no version 9", id="unknown-version"),  # noqa: E501
-    pytest.param(["in.jsonl", "--out", "outdir"], 2, "outdir: is a folder; --out names the file", id="folder-as-output"),
+    pytest.param(
+        ["in.jsonl", "--out", "o.jsonl", "--version", "9"], 2, "'support' has no version 9", id="unknown-version"
+    ),  # noqa: E501
+    pytest.param(
+        ["in.jsonl", "--out", "outdir"], 2, "outdir: is a folder; --out names the file", id="folder-as-output"
+    ),
     pytest.param(["in.jsonl", "--out", "o.txt"], 2, "cannot tell the format from the name", id="unknown-format"),
-    pytest.param(["in.jsonl", "--out", "o.jsonl", "--keep", "nope"], 2, "--keep names column(s) the input does not have: nope", id="unknown-keep"),  # noqa: E501
+    pytest.param(
+        ["in.jsonl", "--out", "o.jsonl", "--keep", "nope"],
+        2,
+        "--keep names column(s) the input does not have: nope",
+        id="unknown-keep",
+    ),  # noqa: E501
     pytest.param(["in.jsonl", "--out", "o.jsonl", "tamper"], 1, "has been altered", id="tampered-blob"),
 ]
 
@@ -234,7 +253,9 @@ def test_a_killed_run_leaves_no_output_and_resume_gives_the_same_file(scoring_re
     assert not state.parent.exists()
 
 
-def test_resume_refuses_a_changed_input(scoring_registry: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+def test_resume_refuses_a_changed_input(
+    scoring_registry: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     from textsieve.scoring import formats
 
     src = write_jsonl(tmp_path / "in.jsonl", uci_rows()[:500])

@@ -115,7 +115,13 @@ def cli_score(args: argparse.Namespace) -> int:
             from textsieve.scoring.local import score_file
 
             summary = score_file(
-                reg, args.model, Path(args.input), Path(args.out), version=args.version, options=options, resume=args.resume
+                reg,
+                args.model,
+                Path(args.input),
+                Path(args.out),
+                version=args.version,
+                options=options,
+                resume=args.resume,
             )
     print(summary.line())
     return 0

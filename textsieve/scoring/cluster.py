@@ -250,7 +250,8 @@ def _connect(address: str) -> Any:
     except ModuleNotFoundError as exc:
         raise InputError(f"--cluster needs Dask distributed: {CLUSTER_EXTRA}") from exc
     try:
-        return Client(address, timeout="15s", set_as_default=False)
+        # distributed's Client.__init__ has no annotations.
+        return Client(address, timeout="15s", set_as_default=False)  # type: ignore[no-untyped-call]
     except (OSError, TimeoutError) as exc:
         raise UnavailableError(
             f"cannot reach the Dask scheduler at {address} ({exc}); start one with 'dask scheduler' "
@@ -286,9 +287,9 @@ def score_on_cluster(
     resolved = resolve(registry, model, version)
     sample = _sample(parts)
     layout = _layout(sample, input_schema, opts, resolved)
-    renamed_sample = [
-        {layout.renamed[c]: r.get(c) for c in layout.kept} for r in sample if isinstance(r, dict)
-    ] or [{layout.renamed[c]: None for c in layout.kept}]
+    renamed_sample = [{layout.renamed[c]: r.get(c) for c in layout.kept} for r in sample if isinstance(r, dict)] or [
+        {layout.renamed[c]: None for c in layout.kept}
+    ]
     for r in renamed_sample:
         r.update(dict.fromkeys(layout.results))
     schema = formats.output_schema(layout, renamed_sample, input_schema)
@@ -336,7 +337,13 @@ def score_on_cluster(
     _swap_in(dataset, output)
     shutil.rmtree(work, ignore_errors=True)
     return Summary(
-        output, rows, errors, resolved.model, resolved.version, resolved.bundle_sha256, time.monotonic() - started,
+        output,
+        rows,
+        errors,
+        resolved.model,
+        resolved.version,
+        resolved.bundle_sha256,
+        time.monotonic() - started,
         counts[0],
     )
 
@@ -386,7 +393,9 @@ def _run(
         for p in todo
     }
     try:
-        for future, table in as_completed(futures, with_results=True, loop=client.loop):
+        # distributed's as_completed has no annotations.
+        done_iter = as_completed(futures, with_results=True, loop=client.loop)  # type: ignore[no-untyped-call]
+        for future, table in done_iter:
             part = futures[future]
             formats.write_part(dataset / _part_name(part.index), table)
             future.release()

@@ -51,9 +51,7 @@ class Layout:
         }
 
 
-def plan(
-    input_columns: Sequence[str], keep: Sequence[str] | None, labels: Sequence[str], *, spans: bool
-) -> Layout:
+def plan(input_columns: Sequence[str], keep: Sequence[str] | None, labels: Sequence[str], *, spans: bool) -> Layout:
     """The layout for these input columns; ``keep`` None keeps them all, and naming one that is not
     in the input is bad input."""
     if keep is None:

@@ -189,9 +189,7 @@ def _combine(futures: Sequence[tuple[slice, Future[Scored]]], count: int, classe
     spans = None
     if parts[0].spans is not None:
         spans = [s for p in parts for s in (p.spans or [])]
-    return Scored(
-        np.concatenate([p.best for p in parts]), np.concatenate([p.probabilities for p in parts]), spans
-    )
+    return Scored(np.concatenate([p.best for p in parts]), np.concatenate([p.probabilities for p in parts]), spans)
 
 
 def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolved: Resolved) -> Layout:
@@ -283,9 +281,7 @@ def score_file(
                 split(first, opts.text_field, strict=True, first_row=0)
         work.mkdir(exist_ok=True)
         with _locked(work):
-            return _stream(
-                run, previous, expected, reader, first, chunks, layout, resolved, opts, output, err, started
-            )
+            return _stream(run, previous, expected, reader, first, chunks, layout, resolved, opts, output, err, started)
     finally:
         reader.close()
 

@@ -41,9 +41,7 @@ def score_texts(predictor: Predictor, texts: Sequence[str], spans: int) -> Score
     best = probs.argmax(axis=1)
     found = None
     if spans > 0:
-        found = [
-            [s.public() for s in predictor.spans(e, out, i, int(best[i]), spans)] for i, e in enumerate(encoded)
-        ]
+        found = [[s.public() for s in predictor.spans(e, out, i, int(best[i]), spans)] for i, e in enumerate(encoded)]
     return Scored(best, probs, found)
 
 
