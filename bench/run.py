@@ -530,7 +530,8 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
         sc = results["scoring"]
         print(
             f"textsieve score: {sc['score_vs_runtime']:.3f} of the runtime end to end ({sc['texts']:,} texts, target "
-            f">= {SCORE_VS_RUNTIME}); peak RSS {sc['peak_rss']['process_tree_mb']} MB at {sc['peak_rss']['rows']} rows; "
+            f">= {SCORE_VS_RUNTIME}); peak RSS {sc['peak_rss']['process_tree_mb']} MB "
+            f"at {sc['peak_rss']['rows']} rows; "
             f"Dask, two local workers: {sc['dask']['dask_vs_local']:.3f} of local scoring"
         )
     print(
