@@ -3,6 +3,8 @@
 #                    docker build -t textsieve:serve .
 #   train            serve plus the training extras (PyTorch CPU build) for train/export
 #                    docker build --target train -t textsieve:train .
+#   cluster          serve plus Dask distributed and pyarrow: a scheduler or worker for `textsieve score --cluster`
+#                    docker build --target cluster -t textsieve:cluster .
 #                    --build-arg TORCH_INDEX_URL=...  where the CPU build of torch comes from
 # Settings are environment variables (TEXTSIEVE_*, see README "Scaling out"); the
 # container listens on port 8000 and runs as the unprivileged user `textsieve`.
@@ -71,6 +73,21 @@ USER textsieve
 # Training and export are jobs that end, not a service to probe.
 HEALTHCHECK NONE
 CMD ["textsieve", "--help"]
+
+# -- cluster: a Dask scheduler or worker that scores partitions (README "Scoring on a Dask cluster") --
+FROM runtime AS cluster
+ENV PIP_NO_CACHE_DIR=1 \
+    PIP_DISABLE_PIP_VERSION_CHECK=1
+USER root
+COPY --from=build /wheels /tmp/wheels
+COPY --from=build /src/requirements/lock.txt /tmp/lock.txt
+RUN pip install -c /tmp/lock.txt "$(ls /tmp/wheels/textsieve-*.whl)[serve,cluster]" \
+ && rm -rf /tmp/wheels /tmp/lock.txt
+USER textsieve
+# Dask's own processes; compose.yaml (profile "cluster") names the scheduler or worker command.
+HEALTHCHECK NONE
+EXPOSE 8786
+CMD ["dask", "scheduler"]
 
 # -- serve: the default target ------------------------------------------------------------
 FROM runtime AS serve

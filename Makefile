@@ -19,7 +19,7 @@ $(STAMP): pyproject.toml $(LOCK)
 	test -x $(BIN)/python || $(PY) -m venv $(VENV)
 	$(PIP) install --quiet --upgrade pip
 	$(PIP) install --quiet -c $(LOCK) --no-deps $(TORCH_FROM) torch
-	$(PIP) install --quiet -c $(LOCK) -e '.[serve,train,dev,check]'
+	$(PIP) install --quiet -c $(LOCK) -e '.[serve,train,report,parquet,cluster,dev,check]'
 	rm -f $(VENV)/.installed-* && touch $@
 
 venv: $(STAMP)

@@ -44,6 +44,7 @@ import servers  # noqa: E402
 from texts import bench_texts  # noqa: E402
 
 RESULTS = HERE / "results.json"
+SCORE_VS_RUNTIME = 0.8  # issue 14: textsieve score end to end against the in-process runtime
 AUTOGROUP = Path("/proc/self/autogroup")
 CHART = HERE / "throughput_latency.png"
 VARIANTS = ("sorted", "fixed", "graph", "graph_fixed", "conv_graph", "conv_graph_fixed")
@@ -467,6 +468,9 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     parser.add_argument("--texts", type=int, default=4096)
     parser.add_argument("--quick", action="store_true", help="short windows, one round: for trying the script")
     parser.add_argument(
+        "--no-scoring", action="store_true", help="skip textsieve score's figures (bench/score.py, a few minutes)"
+    )
+    parser.add_argument(
         "--nice",
         type=int,
         default=-10,
@@ -636,6 +640,15 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
         "report": report_timing,
         "bench_seconds": round(time.perf_counter() - started, 1),
     }
+    if not args.no_scoring:
+        import score
+
+        say("textsieve score: end to end against the runtime, memory against input size, Dask against local …")
+        sizes = {"texts": 20_000, "rss_rows": (10_000, 200_000), "dask_texts": 20_000} if args.quick else {}
+        results["scoring"] = score.bench_score(demo_model.CACHE / "score-work", say=say, **sizes)
+        met = results["scoring"]["score_vs_runtime"] >= SCORE_VS_RUNTIME
+        results["targets"]["score_vs_runtime"] = {"bound": f">= {SCORE_VS_RUNTIME}", "met": met}
+    results["bench_seconds"] = round(time.perf_counter() - started, 1)
     write_json(RESULTS, results)
     try:
         import chart
@@ -663,6 +676,14 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
     print("history (no longer targets): " + ", ".join(f"{k} {figures[k]:.3f}" for k in HISTORY))
     print(f"\n{memory_lines(sv['memory'])}")
     print(f"server peak RSS: service {sv['peak_rss_mb']:.0f} MB, torch_wrapper {tw['peak_rss_mb']:.0f} MB")
+    if "scoring" in results:
+        sc = results["scoring"]
+        print(
+            f"textsieve score: {sc['score_vs_runtime']:.3f} of the runtime end to end ({sc['texts']:,} texts, target "
+            f">= {SCORE_VS_RUNTIME}); peak RSS {sc['peak_rss']['process_tree_mb']} MB "
+            f"at {sc['peak_rss']['rows']} rows; "
+            f"Dask, two local workers: {sc['dask']['dask_vs_local']:.3f} of local scoring"
+        )
     print(
         f"noise: load average {results['load_average_before'][0]} before, {results['load_average_after'][0]} after; "
         f"other processes kept {results['background_cores_busy']:.2f} of {results['machine']['cores']} cores "

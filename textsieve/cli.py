@@ -21,6 +21,7 @@ from textsieve import __version__, demo
 from textsieve.errors import TextsieveError
 from textsieve.exporter import cli as exporter_cli
 from textsieve.registry import cli as registry_cli
+from textsieve.scoring import cli as scoring_cli
 from textsieve.service import cli as service_cli
 from textsieve.service import client as service_client
 
@@ -45,8 +46,12 @@ EXTRAS = {
     "pydantic_settings": "serve",
     "orjson": "serve",
     "psycopg": "serve",
+    "pyarrow": "parquet",
+    "pandas": "cluster",
+    "dask": "cluster",
+    "distributed": "cluster",
 }
-EXTRA_NAMES = {"train": "training", "serve": "serving"}
+EXTRA_NAMES = {"train": "training", "serve": "serving", "parquet": "Parquet", "cluster": "Dask cluster"}
 
 
 class _HelpFormatter(argparse.ArgumentDefaultsHelpFormatter):
@@ -101,6 +106,7 @@ def build_parser() -> argparse.ArgumentParser:
     registry_cli.register(sub)
     service_cli.register(sub)
     service_client.register(sub)
+    scoring_cli.register(sub)
     _register_completion(sub)
     return parser
 

@@ -1,0 +1,139 @@
+"""``textsieve score --cluster``: a real Dask scheduler and worker processes, started with Dask's own
+commands on loopback, score partitions that equal local scoring, also when a worker is SIGKILLed."""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from tests.helpers.environment import child_env
+from tests.helpers.service import MODEL
+from tests.scoring.conftest import ROOT, DaskCluster, dask_cluster, uci_rows, write_jsonl
+from textsieve.cli import main
+
+TOLERANCE = 1e-6  # the issue's bound (labels identical, probabilities within 1e-6)
+
+
+def _parquet(path: Path, rows: list[dict[str, object]], group: int) -> Path:
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    pq.write_table(pa.Table.from_pylist(rows), path, row_group_size=group)
+    return path
+
+
+def _assert_equal_tables(got: object, want: object) -> None:
+    import numpy as np
+    import pyarrow as pa
+
+    assert isinstance(got, pa.Table) and isinstance(want, pa.Table)
+    assert got.num_rows == want.num_rows
+    assert got.column("id").to_pylist() == want.column("id").to_pylist()  # input order kept
+    assert got.column("label").to_pylist() == want.column("label").to_pylist()
+    for name in want.column_names:
+        if name.startswith("probability:"):
+            diff = np.abs(np.asarray(got.column(name)) - np.asarray(want.column(name)))
+            assert diff.max() <= TOLERANCE, name
+
+
+def _local(src: Path, out: Path, registry: Path, *extra: object) -> object:
+    import pyarrow.parquet as pq
+
+    argv = ["score", str(src), "--model", MODEL, "--out", str(out), "--registry", str(registry), "--workers", "0"]
+    assert main([*argv, *map(str, extra)]) == 0
+    return pq.read_table(out)
+
+
+def _dataset(folder: Path) -> object:
+    import pyarrow.dataset as ds
+
+    # Part files are named part-NNNNN in partition order; the dataset reads them in name order.
+    return ds.dataset(folder, format="parquet").to_table()
+
+
+def test_a_multi_partition_parquet_file_scored_on_two_workers_equals_local_scoring(
+    loopback_cluster: DaskCluster, scoring_registry: Path, tmp_path: Path
+) -> None:
+    import json
+
+    rows = uci_rows()
+    src = _parquet(tmp_path / "uci.parquet", rows, group=400)  # 8 row groups → 8 partitions
+    want = _local(src, tmp_path / "local.parquet", scoring_registry, "--spans", 2)
+    out = tmp_path / "dataset"
+    assert main(["score", str(src), "--model", MODEL, "--out", str(out), "--registry", str(scoring_registry),
+                 "--cluster", loopback_cluster.address, "--spans", "2"]) == 0  # fmt: skip
+    parts = sorted(p.name for p in out.iterdir())
+    assert parts == ["_textsieve.json", *(f"part-{i:05d}.parquet" for i in range(8))]
+    got = _dataset(out)
+    _assert_equal_tables(got, want)
+    assert got.column("spans").to_pylist() == want.column("spans").to_pylist()  # type: ignore[attr-defined]
+    meta = json.loads((out / "_textsieve.json").read_text(encoding="utf-8"))
+    assert (meta["model"], meta["version"], meta["rows"], meta["partitions"]) == (MODEL, 1, 3000, 8)
+
+
+def test_jsonl_split_at_byte_offsets_loses_and_repeats_no_line(
+    loopback_cluster: DaskCluster, scoring_registry: Path, tmp_path: Path
+) -> None:
+    from textsieve.registry import open_registry
+    from textsieve.scoring.cluster import score_on_cluster
+
+    src = write_jsonl(tmp_path / "uci.jsonl", uci_rows())
+    want = _local(src, tmp_path / "local.parquet", scoring_registry)
+    out = tmp_path / "dataset"
+    with open_registry(scoring_registry, create=False) as reg:
+        # 37,000 bytes: boundaries fall inside lines, and inside multi-byte characters.
+        summary = score_on_cluster(reg, MODEL, str(src), out, cluster=loopback_cluster.address, partition_bytes=37_000)
+    assert summary.rows == 3000 and len(list(out.glob("part-*.parquet"))) > 5
+    _assert_equal_tables(_dataset(out), want)
+
+
+def test_a_worker_killed_mid_run_is_retried_and_the_output_is_complete(scoring_registry: Path, tmp_path: Path) -> None:
+    rows = [{**r, "id": i} for i, r in enumerate(uci_rows() * 4)]
+    src = _parquet(tmp_path / "uci.parquet", rows, group=300)  # 40 partitions
+    want = _local(src, tmp_path / "local.parquet", scoring_registry)
+    out = tmp_path / "dataset"
+    with dask_cluster(tmp_path, workers=2) as cluster:
+        victim = cluster.workers[0]
+        cmd = [sys.executable, "-m", "textsieve.cli", "score", str(src), "--model", MODEL, "--out", str(out),
+               "--registry", str(scoring_registry), "--cluster", cluster.address, "--progress-every", "0"]  # fmt: skip
+        proc = subprocess.Popen(
+            cmd, env=child_env() | {"PYTHONPATH": str(ROOT)}, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True
+        )
+        assert proc.stderr is not None
+        first = proc.stderr.readline()  # the first partition written: both workers hold work now
+        assert "texts" in first, first
+        os.kill(victim.pid, signal.SIGKILL)
+        stdout, stderr = proc.communicate(timeout=300)
+        assert victim.wait() == -signal.SIGKILL
+    assert proc.returncode == 0, stderr
+    assert "scored 12,000 rows" in stdout
+    _assert_equal_tables(_dataset(out), want)
+
+
+@pytest.mark.parametrize(
+    ("argv", "expected_msg"),
+    [
+        pytest.param(["in.csv"], "--cluster reads Parquet or JSONL", id="csv-input"),
+        pytest.param(["missing.parquet"], "missing.parquet: no such file", id="missing-file"),
+        pytest.param(["in.parquet", "--text-field", "body"], "the input has no column 'body'", id="wrong-field"),
+    ],
+)
+def test_cluster_bad_input_is_one_line_exit_2(
+    argv: list[str], expected_msg: str, scoring_registry: Path, tmp_path: Path
+) -> None:
+    _parquet(tmp_path / "in.parquet", [{"text": "hello"}], group=10)
+    (tmp_path / "in.csv").write_text("text\nhello\n", encoding="utf-8")
+    out = subprocess.run(
+        [sys.executable, "-m", "textsieve.cli", "score", *argv, "--model", MODEL, "--out", "ds",
+         "--registry", str(scoring_registry), "--cluster", "tcp://127.0.0.1:9"],
+        capture_output=True, text=True, timeout=120, cwd=tmp_path, env=child_env() | {"PYTHONPATH": str(ROOT)},
+    )  # fmt: skip
+    assert out.returncode == 2, out.stderr
+    lines = out.stderr.splitlines()
+    assert len(lines) == 1 and expected_msg in lines[0], out.stderr
+    assert not (tmp_path / "ds").exists()

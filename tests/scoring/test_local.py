@@ -1,0 +1,279 @@
+"""``textsieve score`` on this machine: the same numbers as the HTTP service, every format read back
+with an outside reader, bad rows kept and counted, resume, and bad input refused with nothing written."""
+
+from __future__ import annotations
+
+import csv
+import json
+import os
+import signal
+import subprocess
+import sys
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from tests.helpers.environment import child_env
+from tests.helpers.service import MODEL, serving, settings_for
+from tests.scoring.conftest import ROOT, uci_rows, wait_until, write_jsonl
+from textsieve.cli import main
+
+TOLERANCE = 1e-6  # the issue's bound; float32 graphs agree to ~1e-7 (DEVELOPERS.md "Numbers")
+
+
+def score(*argv: object) -> int:
+    return main(["score", *map(str, argv)])
+
+
+def read_jsonl(path: Path) -> list[dict[str, Any]]:
+    # split("\n"), not splitlines(): JSON strings may hold U+2028 and other characters it splits on.
+    return [json.loads(line) for line in path.read_text(encoding="utf-8").split("\n") if line]
+
+
+def assert_same_results(got: list[dict[str, Any]], want: list[dict[str, Any]], labels: list[str]) -> None:
+    assert len(got) == len(want)
+    for g, w in zip(got, want, strict=True):
+        assert g["label"] == w["label"], (g, w)
+        for x in labels:
+            assert abs(float(g[f"probability:{x}"]) - w["probabilities"][x]) <= TOLERANCE
+
+
+# -- the service as the reference -----------------------------------------------------------------
+@pytest.mark.anyio
+async def test_local_scoring_equals_the_services_replies_on_the_uci_sentences(
+    scoring_registry: Path, uci_jsonl: Path, tmp_path: Path
+) -> None:
+    out = tmp_path / "scored.jsonl"
+    # Two worker processes and small chunks: the pieces a text is batched with differ from the service's.
+    assert score(uci_jsonl, "--model", MODEL, "--out", out, "--registry", scoring_registry, "--spans", 3,
+                 "--workers", 2, "--chunk-rows", 700) == 0  # fmt: skip
+    got = read_jsonl(out)
+    texts = [r["text"] for r in uci_rows()]
+    replies: list[dict[str, Any]] = []
+    async with serving(settings_for(scoring_registry)) as (_, client):
+        for lo in range(0, len(texts), 200):
+            r = await client.post("/v1/predict", json={"texts": texts[lo : lo + 200], "model": MODEL, "spans": 3})
+            assert r.status_code == 200, r.text
+            body = r.json()
+            assert body["version"] == 1
+            replies += body["results"]
+    labels = list(replies[0]["probabilities"])
+    assert_same_results(got, replies, labels)
+    assert [r["text"] for r in got] == texts  # input order kept, columns carried over
+    assert [[(s["start"], s["end"], s["text"]) for s in r["spans"]] for r in got] == [
+        [(s["start"], s["end"], s["text"]) for s in r["spans"]] for r in replies
+    ]
+    assert {r["error"] for r in got} == {None}
+    meta = json.loads((tmp_path / "scored.jsonl.meta.json").read_text(encoding="utf-8"))
+    assert (meta["model"], meta["version"], meta["rows"], meta["errors"]) == (MODEL, 1, 3000, 0)
+    assert len(meta["bundle_sha256"]) == 64 and meta["labels"] == labels
+
+
+# -- formats read back by outside readers ------------------------------------------------------------
+def test_parquet_read_by_pyarrow_and_csv_read_by_the_csv_module_match(
+    scoring_registry: Path, uci_jsonl: Path, tmp_path: Path
+) -> None:
+    import pyarrow.parquet as pq
+
+    from textsieve import load_model
+
+    common = ["--model", MODEL, "--version", 2, "--registry", scoring_registry, "--workers", 0, "--chunk-rows", 1000]
+    assert score(uci_jsonl, "--out", tmp_path / "s.parquet", *common) == 0
+    assert score(uci_jsonl, "--out", tmp_path / "s.csv", *common) == 0
+    model = load_model(scoring_registry, MODEL, 2)
+    rows = uci_rows()
+    want = [p.public() for p in model.predict([str(r["text"]) for r in rows], spans=0)]
+    table = pq.read_table(tmp_path / "s.parquet")
+    assert pq.ParquetFile(tmp_path / "s.parquet").num_row_groups == 3  # one per chunk
+    assert_same_results(table.to_pylist(), want, model.labels)
+    assert table.column("id").to_pylist() == [r["id"] for r in rows]
+    assert table.column("class").to_pylist() == [r["class"] for r in rows]  # the JSON ints stay int64
+    meta = json.loads(pq.read_schema(tmp_path / "s.parquet").metadata[b"textsieve"])
+    assert (meta["version"], meta["bundle_sha256"]) == (2, model.bundle_sha256)
+    with open(tmp_path / "s.csv", newline="", encoding="utf-8") as f:
+        back = list(csv.DictReader(f))
+    assert_same_results(back, want, model.labels)
+    assert [r["text"] for r in back] == [r["text"] for r in rows]  # quotes, commas and newlines survive
+
+
+def test_a_csv_input_keeps_only_the_asked_columns_and_renames_clashing_ones(
+    scoring_registry: Path, tmp_path: Path
+) -> None:
+    src = tmp_path / "in.csv"
+    with open(src, "w", newline="", encoding="utf-8") as f:
+        w = csv.writer(f)
+        w.writerow(["body", "label", "error", "probability:x", "other"])
+        w.writerow(["the chain is broken", "repair", "e", "p", "o"])
+        w.writerow(["I was charged twice, refund please", "billing", "e", "p", "o"])
+    out = tmp_path / "out.jsonl"
+    assert score(src, "--model", MODEL, "--out", out, "--registry", scoring_registry, "--text-field", "body",
+                 "--keep", "body,label,error,probability:x", "--workers", 0) == 0  # fmt: skip
+    rows = read_jsonl(out)
+    assert list(rows[0])[:4] == ["body", "input:label", "input:error", "input:probability:x"]
+    assert rows[1]["input:label"] == "billing" and rows[1]["label"] in {"account", "billing", "praise", "repair"}
+    assert "other" not in rows[0]
+
+
+# -- bad rows are kept and counted, or stop the run with --strict ---------------------------------------
+BAD_ROWS = [
+    ({"text": "the chain is broken"}, None),
+    ({"text": ""}, "text field 'text' is empty"),
+    ({"text": "   "}, "text field 'text' is empty"),
+    ({"other": "x"}, "text field 'text' is missing"),
+    ({"text": None}, "text field 'text' is missing"),
+    ({"text": 42}, "text field 'text' is a int, not a string"),
+    ({"text": "refund please"}, None),
+]
+
+
+def test_rows_without_a_text_get_an_error_and_are_counted(
+    scoring_registry: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    src = tmp_path / "in.jsonl"
+    lines = [json.dumps(row) for row, _ in BAD_ROWS]
+    lines.insert(3, "{not json")
+    src.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    out = tmp_path / "out.jsonl"
+    assert score(src, "--model", MODEL, "--out", out, "--registry", scoring_registry, "--workers", 0) == 0
+    rows = read_jsonl(out)
+    expected = [e for _, e in BAD_ROWS]
+    expected.insert(3, "line 4 is not valid JSON")
+    assert [r["error"] for r in rows] == expected
+    assert [r["label"] is None for r in rows] == [e is not None for e in expected]
+    assert "6 row(s) had no text to score" in capsys.readouterr().out
+
+    assert score(src, "--model", MODEL, "--out", out, "--registry", scoring_registry, "--strict") == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err == ["textsieve: error: row 2: text field 'text' is empty (--strict stops at the first such row)"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["in.jsonl", "out.jsonl", "out.jsonl.meta.json"]
+
+
+# -- bad input: one line, exit 2 (1 for a blob that fails its sha256), nothing written ---------------------
+def _tamper(registry: Path) -> None:
+    blobs = sorted((registry / "blobs").iterdir(), key=lambda p: p.stat().st_size)
+    with open(blobs[-1], "r+b") as f:  # the largest blob: model.onnx
+        f.seek(100)
+        byte = f.read(1)
+        f.seek(100)
+        f.write(bytes([byte[0] ^ 1]))
+
+
+BAD_INPUT = [
+    pytest.param(["missing.jsonl", "--out", "o.jsonl"], 2, "missing.jsonl: no such file", id="missing-file"),
+    pytest.param(
+        ["in.jsonl", "--out", "o.jsonl", "--text-field", "body"],
+        2,
+        "no row among the first 2 has the field 'body'",
+        id="wrong-text-field",
+    ),  # noqa: E501
+    pytest.param(
+        ["in.csv", "--out", "o.jsonl", "--text-field", "body"],
+        2,
+        "the input has no column 'body'",
+        id="wrong-csv-column",
+    ),  # noqa: E501
+    pytest.param(["in.jsonl", "--out", "o.jsonl", "--model", "nosuch"], 2, "no model 'nosuch'", id="unknown-model"),
+    pytest.param(
+        ["in.jsonl", "--out", "o.jsonl", "--version", "9"], 2, "'support' has no version 9", id="unknown-version"
+    ),  # noqa: E501
+    pytest.param(
+        ["in.jsonl", "--out", "outdir"], 2, "outdir: is a folder; --out names the file", id="folder-as-output"
+    ),
+    pytest.param(["in.jsonl", "--out", "o.txt"], 2, "cannot tell the format from the name", id="unknown-format"),
+    pytest.param(
+        ["in.jsonl", "--out", "o.jsonl", "--keep", "nope"],
+        2,
+        "--keep names column(s) the input does not have: nope",
+        id="unknown-keep",
+    ),  # noqa: E501
+    pytest.param(["in.jsonl", "--out", "o.jsonl", "tamper"], 1, "has been altered", id="tampered-blob"),
+]
+
+
+@pytest.mark.parametrize(("argv", "status", "expected_msg"), BAD_INPUT)
+def test_bad_input_is_one_line_and_leaves_nothing(
+    argv: list[str], status: int, expected_msg: str, tiny_bundles: dict[str, Path], tmp_path: Path
+) -> None:
+    from tests.helpers.service import make_registry
+
+    registry = make_registry(tmp_path / "registry", tiny_bundles)
+    work = tmp_path / "work"
+    work.mkdir()
+    write_jsonl(work / "in.jsonl", [{"text": "the chain is broken"}, {"text": "refund please"}])
+    (work / "in.csv").write_text("text\nhello\n", encoding="utf-8")
+    (work / "outdir").mkdir()
+    if "tamper" in argv:
+        argv.remove("tamper")
+        _tamper(registry)
+    if "--model" not in argv:
+        argv += ["--model", MODEL]
+    before = sorted(p.name for p in work.iterdir())
+    out = subprocess.run(
+        [sys.executable, "-m", "textsieve.cli", "score", *argv, "--registry", str(registry), "--workers", "0"],
+        capture_output=True, text=True, timeout=120, cwd=work, env=child_env() | {"PYTHONPATH": str(ROOT)},
+    )  # fmt: skip
+    assert out.returncode == status, out.stderr
+    lines = out.stderr.splitlines()
+    assert len(lines) == 1 and lines[0].startswith("textsieve: error: ") and expected_msg in lines[0], out.stderr
+    assert sorted(p.name for p in work.iterdir()) == before and not any((work / "outdir").iterdir())
+
+
+# -- interrupted runs ---------------------------------------------------------------------------------
+def test_a_killed_run_leaves_no_output_and_resume_gives_the_same_file(scoring_registry: Path, tmp_path: Path) -> None:
+    rows = uci_rows() * 4
+    src = write_jsonl(tmp_path / "in.jsonl", [{**r, "id": i} for i, r in enumerate(rows)])
+    reference = tmp_path / "reference.csv"
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 0, "--chunk-rows", 100, "--spans", 2]
+    assert score(src, "--out", reference, *common) == 0
+
+    out = tmp_path / "out.csv"
+    state = tmp_path / ".out.csv.score-partial" / "state.json"
+    cmd = [sys.executable, "-m", "textsieve.cli", "score", str(src), "--out", str(out), *map(str, common)]
+    env = child_env() | {"PYTHONPATH": str(ROOT)}
+    proc = subprocess.Popen(cmd, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+
+    def some_chunks_done() -> bool:
+        try:
+            return json.loads(state.read_text(encoding="utf-8"))["chunks"] >= 5
+        except (FileNotFoundError, ValueError):
+            return False
+
+    wait_until(some_chunks_done, 120, "five chunks")
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.wait()
+    assert not out.exists()
+    done = json.loads(state.read_text(encoding="utf-8"))["rows"]
+    assert 0 < done < len(rows)
+    # A crash between writing a chunk and recording it leaves bytes the state does not count.
+    with open(state.parent / "output.part", "ab") as f:
+        f.write(b"half a row,")
+    assert score(src, "--out", out, *common, "--resume") == 0
+    assert out.read_bytes() == reference.read_bytes()
+    assert not state.parent.exists()
+
+
+def test_resume_refuses_a_changed_input(
+    scoring_registry: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from textsieve.scoring import formats
+
+    src = write_jsonl(tmp_path / "in.jsonl", uci_rows()[:500])
+    out = tmp_path / "out.jsonl"
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 0, "--chunk-rows", 100]
+    calls = {"n": 0}
+    real = formats.JsonlWriter.write
+
+    def interrupted(self: formats.JsonlWriter, rows: Any) -> None:
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise KeyboardInterrupt
+        real(self, rows)
+
+    monkeypatch.setattr(formats.JsonlWriter, "write", interrupted)
+    assert score(src, "--out", out, *common) == 130
+    monkeypatch.undo()
+    assert not out.exists() and (tmp_path / ".out.jsonl.score-partial" / "state.json").is_file()
+    write_jsonl(src, uci_rows()[:501])
+    assert score(src, "--out", out, *common, "--resume") == 2
+    assert not out.exists()

@@ -1,0 +1,130 @@
+"""The ``textsieve score`` verb: its flags next to its handler. numpy, onnxruntime, pyarrow and Dask
+are imported inside the handler (this module is imported on every run and every TAB press)."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+from textsieve.errors import InputError
+from textsieve.registry.cli import add_location_args
+
+FORMAT_CHOICES = ("jsonl", "csv", "parquet")
+
+
+def _positive(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a whole number: {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be 1 or more, not {value}")
+    return value
+
+
+def _count(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a whole number: {text!r}") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"must be 0 or more, not {value}")
+    return value
+
+
+def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    """Add ``score`` to the ``textsieve`` command."""
+    p = sub.add_parser(
+        "score",
+        help="label every row of a JSONL, CSV or Parquet file with a registered model, on every core or a Dask cluster",
+    )
+    p.add_argument("input", help="file to score (.jsonl, .csv or .parquet); with --cluster also a URL fsspec reads")
+    p.add_argument("--model", required=True, help="model name in the registry")
+    p.add_argument("--version", type=_positive, help="version number (default: the live version, pinned at the start)")
+    p.add_argument(
+        "--out",
+        required=True,
+        help="file to write (.jsonl, .csv or .parquet), in place only when complete; with --cluster a folder "
+        "that becomes a Parquet dataset",
+    )
+    p.add_argument("--text-field", default="text", help="the column or JSON field holding each row's text")
+    p.add_argument("--spans", type=_count, default=0, help="n-gram spans to add per row (0: none)")
+    p.add_argument(
+        "--keep",
+        help="comma-separated input columns to carry into the output (default: all; '' for none)",
+    )
+    p.add_argument("--strict", action="store_true", help="stop at the first row whose text is missing or empty")
+    p.add_argument("--resume", action="store_true", help="continue an interrupted run from its last completed chunk")
+    p.add_argument("--workers", type=_count, help="worker processes (default: one per core; 0: in this process)")
+    p.add_argument("--chunk-rows", type=_positive, default=8192, help="rows read, scored and written at a time")
+    p.add_argument("--input-format", choices=FORMAT_CHOICES, help="input format when the name does not say")
+    p.add_argument("--output-format", choices=FORMAT_CHOICES, help="output format when the name does not say")
+    p.add_argument(
+        "--cluster", help="a Dask scheduler's address (tcp://HOST:8786): score the input's partitions on its workers"
+    )
+    p.add_argument(
+        "--partition-mb",
+        type=_positive,
+        default=64,
+        help="with --cluster: MiB of JSONL per partition (Parquet partitions are its row groups)",
+    )
+    p.add_argument(
+        "--progress-every", type=float, default=10.0, help="seconds between progress lines when stderr is no terminal"
+    )
+    add_location_args(p)
+    p.set_defaults(func=cli_score)
+
+
+def cli_score(args: argparse.Namespace) -> int:
+    from textsieve.environment import registry_location
+    from textsieve.registry.api import open_registry
+    from textsieve.scoring.columns import parse_keep
+    from textsieve.scoring.local import Options
+
+    keep = parse_keep(args.keep)
+    options = Options(
+        text_field=args.text_field,
+        keep=None if keep is None else tuple(keep),
+        spans=args.spans,
+        strict=args.strict,
+        workers=args.workers,
+        chunk_rows=args.chunk_rows,
+        input_format=args.input_format,
+        output_format=args.output_format,
+        progress_every=args.progress_every,
+    )
+    where = registry_location(args.registry, args.blobs)
+    with open_registry(where.registry, blobs=where.blobs, create=False) as reg:
+        if args.cluster:
+            from textsieve.scoring.cluster import score_on_cluster
+
+            if args.output_format not in (None, "parquet"):
+                raise InputError("--cluster writes a Parquet dataset; drop --output-format or make it parquet")
+            summary = score_on_cluster(
+                reg,
+                args.model,
+                args.input,
+                Path(args.out),
+                cluster=args.cluster,
+                version=args.version,
+                options=options,
+                resume=args.resume,
+                partition_bytes=args.partition_mb << 20,
+            )
+        else:
+            from textsieve.scoring.local import score_file
+
+            summary = score_file(
+                reg,
+                args.model,
+                Path(args.input),
+                Path(args.out),
+                version=args.version,
+                options=options,
+                resume=args.resume,
+            )
+    print(summary.line())
+    return 0
+
+
+__all__ = ["register"]

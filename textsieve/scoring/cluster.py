@@ -1,0 +1,425 @@
+"""``textsieve score --cluster tcp://HOST:8786``: the input's partitions scored on Dask workers, written
+by this process as a partitioned Parquet dataset.
+
+- Partitions: a Parquet file's row groups, or byte ranges of a JSONL file (a partition owns the lines
+  that start inside its range). Workers read them themselves, so INPUT must be a path every worker
+  can read or a URL fsspec understands (s3://, gs://, http://, …); only descriptors travel.
+- The bundle: this process resolves the version once and fetches it from the registry (every blob
+  re-hashed), then ships its files to every worker once (``scatter(broadcast=True)``). A worker checks
+  each file's sha256 against the registry's record once, keeps the folder for the run, and keeps one
+  single-thread onnxruntime session per worker thread.
+- Results come back as Arrow tables and this process writes ``part-NNNNN.parquet`` (one per
+  partition, input order) into a temporary folder that is renamed to OUTPUT when every partition is
+  in; ``_textsieve.json`` beside the parts records the model, version and bundle sha256 once.
+- A worker that dies mid-run: the scheduler reschedules its partitions on the others (Dask's own
+  retry of lost tasks); a partition is written once, whichever worker finished it.
+- ``--resume`` keeps the parts already written and submits only the missing partitions.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import shutil
+import sys
+import tempfile
+import threading
+import time
+import uuid
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, TextIO
+
+from textsieve.errors import InputError, IntegrityError, UnavailableError
+from textsieve.files import atomic_write_text, fsync_dir
+from textsieve.scoring import formats
+from textsieve.scoring.columns import Layout, plan
+from textsieve.scoring.local import STATE_FORMAT, Options, Summary, metadata, work_dir
+from textsieve.scoring.model import Resolved, resolve
+from textsieve.scoring.progress import Progress
+from textsieve.scoring.rows import Unreadable, output_rows, score_texts, split
+
+if TYPE_CHECKING:
+    import pyarrow as pa
+
+    from textsieve.registry.api import Registry
+    from textsieve.registry.runtime import Predictor
+
+SIDECAR = "_textsieve.json"
+SAMPLE_ROWS = 1000
+CLUSTER_EXTRA = "pip install 'textsieve[cluster]'"
+
+
+@dataclass(frozen=True)
+class Partition:
+    """What a worker reads: a JSONL byte range or a Parquet file's row groups."""
+
+    index: int
+    url: str
+    fmt: str
+    start: int = 0
+    end: int = 0
+    row_groups: tuple[int, ...] = ()
+
+
+@dataclass(frozen=True)
+class Payload:
+    """A bundle's files as bytes, with the sha256 the registry recorded for each."""
+
+    bundle_sha256: str
+    files: dict[str, bytes]
+    digests: dict[str, str]
+
+
+@dataclass(frozen=True)
+class Task:
+    """Everything a worker needs besides the partition and the bundle."""
+
+    layout: Layout
+    schema: pa.Schema
+    text_field: str
+    spans: int
+    strict: bool
+
+
+# -- on the workers ---------------------------------------------------------------------------
+_FOLDERS: dict[str, Path] = {}
+_FOLDERS_LOCK = threading.Lock()
+_THREAD = threading.local()
+
+
+def _bundle_folder(payload: Payload) -> Path:
+    """The worker's verified copy of the bundle: hashed once per worker process, then reused."""
+    with _FOLDERS_LOCK:
+        folder = _FOLDERS.get(payload.bundle_sha256)
+        if folder is not None:
+            return folder
+        folder = Path(tempfile.mkdtemp(prefix=f"textsieve-bundle-{payload.bundle_sha256[:12]}-"))
+        for name, data in payload.files.items():
+            actual = hashlib.sha256(data).hexdigest()
+            if actual != payload.digests[name]:
+                shutil.rmtree(folder, ignore_errors=True)
+                raise IntegrityError(
+                    f"bundle file {name} reached a worker with sha256 {actual[:12]}…, the registry says "
+                    f"{payload.digests[name][:12]}…"
+                )
+            (folder / name).write_bytes(data)
+        _FOLDERS[payload.bundle_sha256] = folder
+        return folder
+
+
+def _predictor(payload: Payload) -> Predictor:
+    """One session per worker thread: onnxruntime sessions are run by one thread at a time here."""
+    from textsieve.registry.runtime import Predictor
+
+    sessions: dict[str, Predictor] | None = getattr(_THREAD, "sessions", None)
+    if sessions is None:
+        sessions = _THREAD.sessions = {}
+    found = sessions.get(payload.bundle_sha256)
+    if found is None:
+        found = sessions[payload.bundle_sha256] = Predictor.from_bundle(_bundle_folder(payload), threads=1)
+    return found
+
+
+def read_partition(part: Partition) -> list[Any]:
+    """The partition's rows, read with fsspec (local paths included)."""
+    import fsspec
+
+    if part.fmt == "parquet":
+        import pyarrow.parquet as pq
+
+        with fsspec.open(part.url, "rb") as f:
+            table = pq.ParquetFile(f).read_row_groups(list(part.row_groups))
+        rows: list[Any] = table.to_pylist()
+        return rows
+    rows = []
+    with fsspec.open(part.url, "rb") as f:
+        if part.start > 0:
+            f.seek(part.start - 1)
+            f.readline()  # the line that started before this range belongs to the previous partition
+        while f.tell() < part.end:
+            raw = f.readline()
+            if not raw:
+                break
+            if not raw.strip():
+                continue
+            try:
+                rows.append(json.loads(raw))
+            except ValueError:
+                rows.append(Unreadable(f"a line of partition {part.index} is not valid JSON"))
+    return rows
+
+
+def score_partition(payload: Payload, part: Partition, task: Task) -> pa.Table:
+    """Runs on a worker: read, score and lay out one partition."""
+    rows = read_partition(part)
+    try:
+        chunk = split(rows, task.text_field, strict=task.strict, first_row=0)
+    except InputError as exc:
+        raise InputError(f"partition {part.index}: {exc.message}") from None
+    scored = score_texts(_predictor(payload), chunk.texts, task.spans)
+    out = output_rows(rows, chunk, scored, task.layout)
+    return formats.to_table(out, task.schema, 0)
+
+
+# -- on the client ------------------------------------------------------------------------------
+def partitions(url: str, fmt: str, partition_bytes: int) -> tuple[list[Partition], pa.Schema | None]:
+    import fsspec
+
+    fs, path = fsspec.core.url_to_fs(url)
+    try:
+        info = fs.info(path)
+    except FileNotFoundError:
+        raise InputError(f"{url}: no such file") from None
+    if info.get("type") == "directory":
+        raise InputError(f"{url}: is a folder; INPUT is one JSONL or Parquet file")
+    if fmt == "parquet":
+        import pyarrow.parquet as pq
+
+        with fs.open(path, "rb") as f:
+            try:
+                pf = pq.ParquetFile(f)
+            except Exception as exc:  # pyarrow raises several kinds for a file that is not Parquet
+                raise InputError(f"{url}: not a Parquet file ({exc})") from exc
+            groups = pf.metadata.num_row_groups
+            schema = pf.schema_arrow
+        return [Partition(i, url, fmt, row_groups=(i,)) for i in range(groups)], schema
+    size = int(info["size"])
+    parts = [
+        Partition(i, url, fmt, start=lo, end=min(lo + partition_bytes, size))
+        for i, lo in enumerate(range(0, max(size, 1), partition_bytes))
+    ]
+    return parts, None
+
+
+def _sample(parts: Sequence[Partition]) -> list[Any]:
+    if not parts:
+        return []
+    first = parts[0]
+    if first.fmt == "jsonl":
+        first = Partition(0, first.url, first.fmt, 0, min(first.end, 1 << 20))
+    return read_partition(first)[:SAMPLE_ROWS]
+
+
+def _layout(sample: list[Any], input_schema: pa.Schema | None, opts: Options, resolved: Resolved) -> Layout:
+    if input_schema is not None:
+        columns = list(input_schema.names)
+        if opts.text_field not in columns:
+            raise InputError(
+                f"the input has no column {opts.text_field!r}; its columns: {', '.join(columns[:20])}; "
+                "pass --text-field NAME"
+            )
+    else:
+        seen: dict[str, None] = {}
+        for row in sample:
+            if isinstance(row, dict):
+                seen.update(dict.fromkeys(row))
+        if sample and opts.text_field not in seen:
+            raise InputError(
+                f"no row among the first {len(sample):,} has the field {opts.text_field!r}; fields seen: "
+                f"{', '.join(list(seen)[:20]) or 'none'}; pass --text-field NAME"
+            )
+        columns = list(seen)
+    return plan(columns, None if opts.keep is None else list(opts.keep), resolved.labels, spans=opts.spans > 0)
+
+
+def _payload(resolved: Resolved) -> Payload:
+    files = {}
+    for name, digest in resolved.files.items():
+        data = (resolved.folder / name).read_bytes()
+        if hashlib.sha256(data).hexdigest() != digest:
+            raise IntegrityError(f"{resolved.folder / name}: changed since the registry verified it; run again")
+        files[name] = data
+    return Payload(resolved.bundle_sha256, files, dict(resolved.files))
+
+
+def _check_output(output: Path) -> None:
+    if output.is_file():
+        raise InputError(f"{output}: is a file; with --cluster, --out names a folder for the Parquet dataset")
+    if output.is_dir() and any(output.iterdir()) and not (output / SIDECAR).is_file():
+        raise InputError(f"{output}: is a folder holding other files; name a new folder (or one this verb wrote)")
+    if not output.parent.is_dir():
+        raise InputError(f"{output.parent}: no such folder for --out; create it first")
+
+
+def _connect(address: str) -> Any:
+    try:
+        from distributed import Client
+    except ModuleNotFoundError as exc:
+        raise InputError(f"--cluster needs Dask distributed: {CLUSTER_EXTRA}") from exc
+    try:
+        # distributed's Client.__init__ has no annotations.
+        return Client(address, timeout="15s", set_as_default=False)  # type: ignore[no-untyped-call]
+    except (OSError, TimeoutError) as exc:
+        raise UnavailableError(
+            f"cannot reach the Dask scheduler at {address} ({exc}); start one with 'dask scheduler' "
+            "(README: Scoring on a Dask cluster)"
+        ) from exc
+    except ValueError as exc:
+        raise InputError(f"--cluster {address!r}: not a scheduler address, e.g. tcp://HOST:8786 ({exc})") from exc
+
+
+def score_on_cluster(
+    registry: Registry,
+    model: str,
+    source: str,
+    output: Path,
+    *,
+    cluster: str,
+    version: int | None = None,
+    options: Options | None = None,
+    resume: bool = False,
+    partition_bytes: int = 64 << 20,
+    stream: TextIO | None = None,
+) -> Summary:
+    """Score ``source`` on the Dask cluster at ``cluster`` into the Parquet dataset folder ``output``."""
+    opts = options or Options()
+    err = stream or sys.stderr
+    started = time.monotonic()
+    fmt = formats.detect(source, opts.input_format, "--input-format")
+    if fmt == "csv":
+        raise InputError("--cluster reads Parquet or JSONL (CSV cannot be split at byte offsets safely)")
+    formats._pyarrow()
+    _check_output(output)
+    parts, input_schema = partitions(source, fmt, partition_bytes)
+    resolved = resolve(registry, model, version)
+    sample = _sample(parts)
+    layout = _layout(sample, input_schema, opts, resolved)
+    renamed_sample = [{layout.renamed[c]: r.get(c) for c in layout.kept} for r in sample if isinstance(r, dict)] or [
+        {layout.renamed[c]: None for c in layout.kept}
+    ]
+    for r in renamed_sample:
+        r.update(dict.fromkeys(layout.results))
+    schema = formats.output_schema(layout, renamed_sample, input_schema)
+    task = Task(layout, schema, opts.text_field, opts.spans, opts.strict)
+    work = work_dir(output)
+    dataset = work / "dataset"
+    expected = {
+        "format": STATE_FORMAT,
+        "input": {"url": source, "partitions": len(parts)},
+        "options": opts.fixed(),
+        **resolved.describe(),
+    }
+    if work.is_dir():
+        old = _load_state(work)
+        if not resume or old != expected:
+            if resume:
+                print(f"textsieve: the unfinished run in {work} differs; starting over", file=err)
+            shutil.rmtree(work)
+    dataset.mkdir(parents=True, exist_ok=True)
+    atomic_write_text(work / "state.json", json.dumps(expected) + "\n")
+    done = {p.index for p in parts if (dataset / _part_name(p.index)).is_file()}
+    todo = [p for p in parts if p.index not in done]
+    counts = _count_existing(dataset, done)
+    client = _connect(cluster)
+    progress = Progress(
+        f"scoring {output.name} on {cluster}",
+        fraction=lambda: len(done) / len(parts) if parts else 1.0,
+        stream=err,
+        every=opts.progress_every,
+        start_count=counts[0],
+    )
+    rows, errors = counts
+    try:
+        rows, errors = _run(client, _payload(resolved), todo, task, dataset, done, progress, rows, errors)
+    except InputError:
+        shutil.rmtree(work, ignore_errors=True)
+        raise
+    finally:
+        progress.close()
+        client.close()
+    meta = metadata(resolved, layout, opts, rows, errors, source)
+    meta["partitions"] = len(parts)
+    atomic_write_text(dataset / SIDECAR, json.dumps(meta, indent=2, ensure_ascii=False) + "\n")
+    fsync_dir(dataset)
+    _swap_in(dataset, output)
+    shutil.rmtree(work, ignore_errors=True)
+    return Summary(
+        output,
+        rows,
+        errors,
+        resolved.model,
+        resolved.version,
+        resolved.bundle_sha256,
+        time.monotonic() - started,
+        counts[0],
+    )
+
+
+def _part_name(index: int) -> str:
+    return f"part-{index:05d}.parquet"
+
+
+def _load_state(work: Path) -> dict[str, Any] | None:
+    try:
+        data: dict[str, Any] = json.loads((work / "state.json").read_text(encoding="utf-8"))
+    except (FileNotFoundError, ValueError):
+        return None
+    return data
+
+
+def _count_existing(dataset: Path, done: set[int]) -> tuple[int, int]:
+    import pyarrow.parquet as pq
+
+    rows = errors = 0
+    for i in done:
+        table = pq.read_table(dataset / _part_name(i), columns=["error"])
+        rows += table.num_rows
+        errors += table.num_rows - table.column("error").null_count
+    return rows, errors
+
+
+def _run(
+    client: Any,
+    payload: Payload,
+    todo: Sequence[Partition],
+    task: Task,
+    dataset: Path,
+    done: set[int],
+    progress: Progress,
+    rows: int,
+    errors: int,
+) -> tuple[int, int]:
+    from distributed import as_completed
+
+    if not todo:
+        return rows, errors
+    shipped = client.scatter(payload, broadcast=True, hash=False)
+    run = uuid.uuid4().hex[:8]
+    futures = {
+        client.submit(score_partition, shipped, p, task, key=f"textsieve-score-{run}-{p.index}", pure=False): p
+        for p in todo
+    }
+    try:
+        # distributed's as_completed has no annotations.
+        done_iter = as_completed(futures, with_results=True, loop=client.loop)  # type: ignore[no-untyped-call]
+        for future, table in done_iter:
+            part = futures[future]
+            formats.write_part(dataset / _part_name(part.index), table)
+            future.release()
+            done.add(part.index)
+            rows += table.num_rows
+            errors += table.num_rows - table.column("error").null_count
+            progress.update(rows)
+    except BaseException:
+        client.cancel(list(futures))
+        raise
+    progress.update(rows, force=True)
+    return rows, errors
+
+
+def _swap_in(dataset: Path, output: Path) -> None:
+    """Rename the finished dataset to OUTPUT; a dataset this verb wrote before is replaced only afterwards."""
+    if output.exists():
+        old = output.with_name(f".{output.name}.old-{os.getpid()}")
+        os.rename(output, old)
+        os.rename(dataset, output)
+        shutil.rmtree(old, ignore_errors=True)
+    else:
+        os.rename(dataset, output)
+    fsync_dir(output.parent)
+
+
+__all__ = ["Partition", "Payload", "SIDECAR", "partitions", "read_partition", "score_on_cluster", "score_partition"]

@@ -1,0 +1,396 @@
+"""Chunked readers and writers for JSONL, CSV and Parquet, so memory holds a few chunks whatever
+the file's size.
+
+JSONL and CSV are written by appending to one file whose committed length the resume state records;
+Parquet is written as one small file per chunk and merged (one row group per chunk) at the end,
+because a Parquet file is unreadable until its footer is written.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import csv
+import io
+import json
+import os
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from textsieve.errors import InputError
+from textsieve.files import FILE_MODE, fsync_dir
+from textsieve.scoring.columns import ERROR, LABEL, SPANS, Layout, probability_column
+from textsieve.scoring.rows import Row, Unreadable
+
+if TYPE_CHECKING:
+    import pyarrow as pa
+
+FORMATS = ("jsonl", "csv", "parquet")
+_SUFFIXES = {".jsonl": "jsonl", ".ndjson": "jsonl", ".csv": "csv", ".parquet": "parquet", ".pq": "parquet"}
+PARQUET_EXTRA = "pip install 'textsieve[parquet]'"
+
+
+def detect(path: str, given: str | None, flag: str) -> str:
+    """The format named by ``flag`` or else by the file's suffix."""
+    if given is not None:
+        return given
+    fmt = _SUFFIXES.get(Path(path.split("?")[0]).suffix.lower())
+    if fmt is None:
+        raise InputError(
+            f"{path}: cannot tell the format from the name; use a .jsonl, .csv or .parquet name or pass {flag}"
+        )
+    return fmt
+
+
+def _pyarrow() -> Any:
+    try:
+        import pyarrow
+        import pyarrow.parquet
+    except ModuleNotFoundError as exc:
+        raise InputError(f"Parquet needs pyarrow: {PARQUET_EXTRA}") from exc
+    return pyarrow
+
+
+# -- readers ------------------------------------------------------------------------------------
+class Reader:
+    """Rows of a file in chunks; ``columns`` is None when the format has no header (JSONL)."""
+
+    columns: list[str] | None = None
+    schema: pa.Schema | None = None
+    total_rows: int | None = None
+
+    def chunks(self, size: int, skip: int = 0) -> Iterator[list[Any]]:
+        raise NotImplementedError
+
+    def fraction(self) -> float | None:
+        """How much of the input has been read, 0–1, for the ETA."""
+        return None
+
+    def close(self) -> None:
+        pass
+
+
+def _open_binary(path: Path) -> io.BufferedReader:
+    if path.is_dir():
+        raise InputError(f"{path}: is a folder; INPUT is one JSONL, CSV or Parquet file")
+    try:
+        return open(path, "rb")
+    except FileNotFoundError:
+        raise InputError(f"{path}: no such file") from None
+    except OSError as exc:
+        raise InputError(f"{path}: cannot be read ({exc.strerror})") from exc
+
+
+class _ByteCounted(Reader):
+    def __init__(self, path: Path) -> None:
+        self.path = path
+        self.file = _open_binary(path)
+        self.size = max(os.fstat(self.file.fileno()).st_size, 1)
+        self.read = 0
+
+    def fraction(self) -> float | None:
+        return min(self.read / self.size, 1.0)
+
+    def close(self) -> None:
+        self.file.close()
+
+    def _lines(self) -> Iterator[bytes]:
+        for raw in self.file:
+            self.read += len(raw)
+            yield raw
+
+
+class JsonlReader(_ByteCounted):
+    """One JSON object a line; blank lines are skipped, a line that is not JSON becomes an error row."""
+
+    def chunks(self, size: int, skip: int = 0) -> Iterator[list[Any]]:
+        seen = 0
+        chunk: list[Any] = []
+        for number, raw in enumerate(self._lines(), start=1):
+            if not raw.strip():
+                continue
+            seen += 1
+            if seen <= skip:
+                continue
+            try:
+                chunk.append(json.loads(raw))
+            except ValueError:
+                chunk.append(Unreadable(f"line {number} is not valid JSON"))
+            if len(chunk) >= size:
+                yield chunk
+                chunk = []
+        if chunk:
+            yield chunk
+
+
+class CsvReader(_ByteCounted):
+    """A header line, then rows; every value is a string, as the csv module reads them."""
+
+    def __init__(self, path: Path) -> None:
+        super().__init__(path)
+        self._text = self._decoded()
+        self._reader = csv.reader(self._text)
+        try:
+            self.columns = next(self._reader)
+        except StopIteration:
+            raise InputError(f"{path}: empty; a CSV file starts with a header line") from None
+        except csv.Error as exc:
+            raise InputError(f"{path}: not CSV ({exc})") from exc
+
+    def _decoded(self) -> Iterator[str]:
+        for number, raw in enumerate(self._lines(), start=1):
+            try:
+                text = raw.decode("utf-8")
+            except UnicodeDecodeError:
+                raise InputError(f"{self.path}: line {number} is not UTF-8") from None
+            yield text.removeprefix("\ufeff") if number == 1 else text
+
+    def chunks(self, size: int, skip: int = 0) -> Iterator[list[Any]]:
+        names = self.columns or []
+        chunk: list[Any] = []
+        try:
+            for seen, values in enumerate(self._reader, start=1):
+                if seen <= skip:
+                    continue
+                chunk.append(dict(zip(names, values, strict=False)))
+                if len(chunk) >= size:
+                    yield chunk
+                    chunk = []
+        except csv.Error as exc:
+            raise InputError(f"{self.path}: not CSV near line {self._reader.line_num} ({exc})") from exc
+        if chunk:
+            yield chunk
+
+
+class ParquetReader(Reader):
+    """Record batches of the requested size; the column types are kept for a Parquet output."""
+
+    def __init__(self, path: Path) -> None:
+        pa = _pyarrow()
+        if path.is_dir():
+            raise InputError(f"{path}: is a folder; INPUT is one JSONL, CSV or Parquet file")
+        if not path.exists():
+            raise InputError(f"{path}: no such file")
+        try:
+            self.file = pa.parquet.ParquetFile(path)
+        except (OSError, pa.ArrowException) as exc:
+            raise InputError(f"{path}: not a Parquet file ({exc})") from exc
+        self.schema = self.file.schema_arrow
+        self.columns = list(self.schema.names)
+        self.total_rows = self.file.metadata.num_rows
+        self.done = 0
+
+    def fraction(self) -> float | None:
+        return self.done / self.total_rows if self.total_rows else None
+
+    def chunks(self, size: int, skip: int = 0) -> Iterator[list[Any]]:
+        position = 0
+        for batch in self.file.iter_batches(batch_size=size):
+            n = batch.num_rows
+            if position + n <= skip:
+                position += n
+                self.done = position
+                continue
+            if position < skip:
+                batch = batch.slice(skip - position)
+            position += n
+            self.done = position
+            yield batch.to_pylist()
+
+    def close(self) -> None:
+        self.file.close()
+
+
+def open_reader(path: Path, fmt: str) -> Reader:
+    if fmt == "jsonl":
+        return JsonlReader(path)
+    if fmt == "csv":
+        return CsvReader(path)
+    return ParquetReader(path)
+
+
+# -- values -------------------------------------------------------------------------------------
+def _json_default(value: object) -> object:
+    if isinstance(value, bytes):
+        return value.decode("utf-8", "replace")
+    return str(value)
+
+
+def _dumps(value: object) -> str:
+    return json.dumps(value, ensure_ascii=False, default=_json_default)
+
+
+# -- JSONL and CSV: one file, appended chunk by chunk --------------------------------------------
+class AppendWriter:
+    """Appends chunks to ``path``; :meth:`commit` makes them durable and returns the committed length."""
+
+    def __init__(self, path: Path, layout: Layout, *, start: int) -> None:
+        self.path = path
+        self.layout = layout
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, FILE_MODE)
+        self.file = os.fdopen(fd, "r+b")
+        # A chunk written after the last committed state is thrown away: the state says where it ended.
+        self.file.truncate(start)
+        self.file.seek(start)
+        if start == 0:
+            self.file.write(self.header())
+
+    def header(self) -> bytes:
+        return b""
+
+    def encode(self, rows: Sequence[Row]) -> bytes:
+        raise NotImplementedError
+
+    def write(self, rows: Sequence[Row]) -> None:
+        self.file.write(self.encode(rows))
+
+    def commit(self) -> int:
+        self.file.flush()
+        os.fsync(self.file.fileno())
+        return self.file.tell()
+
+    def close(self) -> None:
+        self.file.close()
+
+
+class JsonlWriter(AppendWriter):
+    def encode(self, rows: Sequence[Row]) -> bytes:
+        return "".join(_dumps(r) + "\n" for r in rows).encode("utf-8")
+
+
+class CsvWriter(AppendWriter):
+    """Spans are a JSON array in their cell; a missing value is an empty cell."""
+
+    def header(self) -> bytes:
+        buf = io.StringIO()
+        csv.writer(buf).writerow(self.layout.columns)
+        return buf.getvalue().encode("utf-8")
+
+    def encode(self, rows: Sequence[Row]) -> bytes:
+        buf = io.StringIO()
+        w = csv.writer(buf)
+        cols = self.layout.columns
+        for r in rows:
+            w.writerow([_cell(r[c]) for c in cols])
+        return buf.getvalue().encode("utf-8")
+
+
+def _cell(value: object) -> object:
+    if value is None or isinstance(value, str | int | float):
+        return "" if value is None else value
+    return _dumps(value)
+
+
+# -- Parquet: one file per chunk, merged at the end ------------------------------------------------
+def span_type() -> pa.DataType:
+    pa = _pyarrow()
+    return pa.list_(
+        pa.struct(
+            [
+                ("start", pa.int64()),
+                ("end", pa.int64()),
+                ("text", pa.string()),
+                ("label", pa.string()),
+                ("weight", pa.float64()),
+                ("width", pa.int64()),
+            ]
+        )
+    )
+
+
+def result_fields(layout: Layout) -> list[pa.Field]:
+    pa = _pyarrow()
+    fields = [pa.field(LABEL, pa.string())]
+    fields += [pa.field(probability_column(x), pa.float64()) for x in layout.labels]
+    if layout.spans:
+        fields.append(pa.field(SPANS, span_type()))
+    fields.append(pa.field(ERROR, pa.string()))
+    return fields
+
+
+def output_schema(layout: Layout, rows: Sequence[Row], input_schema: pa.Schema | None) -> pa.Schema:
+    """Kept columns keep a Parquet input's types; from JSONL or CSV they take the first chunk's."""
+    pa = _pyarrow()
+    fields = []
+    for name in layout.kept:
+        out = layout.renamed[name]
+        if input_schema is not None and name in input_schema.names:
+            fields.append(pa.field(out, input_schema.field(name).type))
+            continue
+        try:
+            kind = pa.array([r[out] for r in rows]).type
+        except (pa.ArrowException, ValueError, TypeError) as exc:
+            raise InputError(f"column {name!r} mixes value types; drop it with --keep ({exc})") from exc
+        fields.append(pa.field(out, pa.string() if pa.types.is_null(kind) else kind))
+    return pa.schema(fields + result_fields(layout))
+
+
+def to_table(rows: Sequence[Row], schema: pa.Schema, first_row: int) -> pa.Table:
+    pa = _pyarrow()
+    arrays = []
+    for field in schema:
+        values = [r[field.name] for r in rows]
+        try:
+            arrays.append(pa.array(values, type=field.type))
+        except (pa.ArrowException, ValueError, TypeError, OverflowError) as exc:
+            raise InputError(
+                f"rows {first_row + 1}–{first_row + len(rows)}: column {field.name!r} does not hold "
+                f"{field.type} values as in the first rows; drop it with --keep ({exc})"
+            ) from exc
+    return pa.Table.from_arrays(arrays, schema=schema)
+
+
+def write_part(path: Path, table: pa.Table) -> None:
+    """One chunk's rows as a complete Parquet file, in place only once it is whole."""
+    pa = _pyarrow()
+    tmp = path.with_name(f".{path.name}.tmp")
+    pa.parquet.write_table(table, tmp)
+    with open(tmp, "rb") as f:
+        os.fsync(f.fileno())
+    os.replace(tmp, path)
+    fsync_dir(path.parent)
+
+
+def merge_parts(parts: Sequence[Path], target: Path, schema: pa.Schema, metadata: dict[str, object]) -> None:
+    """The parts' rows, in order, as one Parquet file (a row group per part) carrying ``metadata``."""
+    pa = _pyarrow()
+    schema = schema.with_metadata({b"textsieve": json.dumps(metadata).encode("utf-8")})
+    with pa.parquet.ParquetWriter(target, schema) as writer:
+        for part in parts:
+            writer.write_table(pa.parquet.read_table(part).cast(schema))
+    with open(target, "rb") as f:
+        os.fsync(f.fileno())
+
+
+def read_metadata(path: Path) -> dict[str, Any]:
+    """The textsieve metadata of a Parquet file this module wrote."""
+    pa = _pyarrow()
+    meta = pa.parquet.read_schema(path).metadata or {}
+    result: dict[str, Any] = json.loads(meta[b"textsieve"])
+    return result
+
+
+def remove_quietly(path: Path) -> None:
+    with contextlib.suppress(FileNotFoundError):
+        os.unlink(path)
+
+
+__all__ = [
+    "FORMATS",
+    "AppendWriter",
+    "CsvReader",
+    "CsvWriter",
+    "JsonlReader",
+    "JsonlWriter",
+    "ParquetReader",
+    "Reader",
+    "detect",
+    "merge_parts",
+    "open_reader",
+    "output_schema",
+    "read_metadata",
+    "result_fields",
+    "span_type",
+    "to_table",
+    "write_part",
+]

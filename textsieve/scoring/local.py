@@ -1,0 +1,463 @@
+"""``textsieve score`` on this machine: stream the input in chunks through the worker processes and
+write the output under a temporary name, renamed into place only when complete.
+
+The unfinished run lives in a folder beside OUTPUT (``.OUTPUT.score-partial/``): the output so far
+(``output.part`` for JSONL/CSV, ``parts/NNNNNN.parquet`` for Parquet) and ``state.json``. A chunk is
+first made durable (fsync), then the state is atomically replaced to count it; so the state never
+counts a chunk that is not on disk, and output written after the last state (a crash between the two
+steps) is cut off again on resume, at the length the state records. The state also pins the version,
+the bundle's sha256, the options and the input's size and mtime: ``--resume`` refuses a run whose input
+or options changed rather than splice two different runs into one file.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime as dt
+import fcntl
+import json
+import os
+import shutil
+import sys
+import time
+from collections import deque
+from collections.abc import Iterator, Sequence
+from concurrent.futures import Future
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, TextIO
+
+from textsieve import __version__
+from textsieve.errors import InputError, UnavailableError
+from textsieve.files import atomic_write_text, fsync_dir
+from textsieve.scoring import formats
+from textsieve.scoring.columns import Layout, plan
+from textsieve.scoring.model import Resolved, resolve
+from textsieve.scoring.pool import Pool, default_workers, pieces, result
+from textsieve.scoring.progress import Progress
+from textsieve.scoring.rows import Scored, Split, output_rows, split
+
+if TYPE_CHECKING:
+    import pyarrow as pa
+
+    from textsieve.registry.api import Registry
+
+STATE_FORMAT = 1
+DEFAULT_CHUNK = 8192
+# Chunks in flight: one being written while the workers score the next two; memory holds three.
+DEPTH = 3
+CAUTION = (
+    "Predictions are aids for human review: they can carry bias from the training data and need "
+    "monitoring; decisions stay with accountable people."
+)
+
+
+@dataclass(frozen=True)
+class Options:
+    """How to score: which field, what to keep, spans, strictness, and how to split the work."""
+
+    text_field: str = "text"
+    keep: tuple[str, ...] | None = None
+    spans: int = 0
+    strict: bool = False
+    workers: int | None = None  # None: one per core; 0: in this process
+    chunk_rows: int = DEFAULT_CHUNK
+    input_format: str | None = None
+    output_format: str | None = None
+    progress_every: float = 10.0
+
+    def fixed(self) -> dict[str, object]:
+        """What a resumed run must share with the run it continues."""
+        return {
+            "text_field": self.text_field,
+            "keep": None if self.keep is None else list(self.keep),
+            "spans": self.spans,
+            "strict": self.strict,
+            "chunk_rows": self.chunk_rows,
+        }
+
+
+@dataclass
+class Summary:
+    """What a run did: rows written, rows without a text, the version used, the time it took."""
+
+    output: Path
+    rows: int
+    errors: int
+    model: str
+    version: int
+    bundle_sha256: str
+    seconds: float
+    resumed_rows: int = 0
+    extra_columns: list[str] = field(default_factory=list)
+
+    def line(self) -> str:
+        rate = (self.rows - self.resumed_rows) / self.seconds if self.seconds > 0 else 0.0
+        resumed = f", {self.resumed_rows:,} of them from the interrupted run" if self.resumed_rows else ""
+        errors = f"; {self.errors:,} row(s) had no text to score (see their 'error' column)" if self.errors else ""
+        return (
+            f"scored {self.rows:,} rows with {self.model} version {self.version} "
+            f"(bundle sha256 {self.bundle_sha256[:12]}…) in {self.seconds:.1f} s, {rate:,.0f} texts/s{resumed}"
+            f"{errors} → {self.output}"
+        )
+
+
+def work_dir(output: Path) -> Path:
+    return output.with_name(f".{output.name}.score-partial")
+
+
+def sidecar(output: Path) -> Path:
+    """Where the model, version and bundle sha256 of a JSONL or CSV output are recorded."""
+    return output.with_name(f"{output.name}.meta.json")
+
+
+def check_output(output: Path) -> None:
+    if output.is_dir():
+        raise InputError(f"{output}: is a folder; --out names the file to write (.jsonl, .csv or .parquet)")
+    if not output.parent.is_dir():
+        raise InputError(f"{output.parent}: no such folder for --out; create it first")
+
+
+def _input_identity(path: Path) -> dict[str, object]:
+    st = path.stat()
+    return {"path": str(path.resolve()), "size": st.st_size, "mtime_ns": st.st_mtime_ns}
+
+
+@contextlib.contextmanager
+def _locked(work: Path) -> Iterator[None]:
+    fd = os.open(work / "lock", os.O_RDWR | os.O_CREAT, 0o644)
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            raise UnavailableError(f"another 'textsieve score' is writing the same output ({work})") from None
+        yield
+    finally:
+        os.close(fd)
+
+
+class _Run:
+    """One run's state and output files, in the work folder."""
+
+    def __init__(self, work: Path, out_fmt: str) -> None:
+        self.work = work
+        self.out_fmt = out_fmt
+        self.state: dict[str, Any] = {}
+
+    @property
+    def state_path(self) -> Path:
+        return self.work / "state.json"
+
+    @property
+    def parts(self) -> Path:
+        return self.work / "parts"
+
+    def load(self) -> dict[str, Any] | None:
+        try:
+            data: dict[str, Any] = json.loads(self.state_path.read_text(encoding="utf-8"))
+        except (FileNotFoundError, ValueError):
+            return None
+        return data if data.get("format") == STATE_FORMAT else None
+
+    def save(self) -> None:
+        atomic_write_text(self.state_path, json.dumps(self.state, indent=1) + "\n")
+
+    def part(self, index: int) -> Path:
+        return self.parts / f"{index:06d}.parquet"
+
+
+def _resume_state(run: _Run, expected: dict[str, Any], out: TextIO) -> dict[str, Any] | None:
+    old = run.load()
+    if old is None:
+        print(f"textsieve: nothing to resume for {run.work.name}; starting from the first row", file=out)
+        return None
+    for key in ("input", "options", "output_format", "model", "version", "bundle_sha256"):
+        if old.get(key) != expected[key]:
+            raise InputError(
+                f"--resume: the unfinished run in {run.work} used another {key.replace('_', ' ')} "
+                f"({old.get(key)!r}, now {expected[key]!r}); run without --resume to start over"
+            )
+    return old
+
+
+def _combine(futures: Sequence[tuple[slice, Future[Scored]]], count: int, classes: int) -> Scored:
+    import numpy as np
+
+    if not futures:
+        return Scored(np.zeros(0, np.int64), np.zeros((0, classes), np.float64), [] if count == 0 else None)
+    parts = [result(f) for _, f in futures]
+    spans = None
+    if parts[0].spans is not None:
+        spans = [s for p in parts for s in (p.spans or [])]
+    return Scored(np.concatenate([p.best for p in parts]), np.concatenate([p.probabilities for p in parts]), spans)
+
+
+def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolved: Resolved) -> Layout:
+    if reader.columns is not None:
+        if opts.text_field not in reader.columns:
+            raise InputError(
+                f"the input has no column {opts.text_field!r}; its columns: {', '.join(reader.columns[:20])}; "
+                "pass --text-field NAME"
+            )
+        columns = reader.columns
+    else:
+        seen: dict[str, None] = {}
+        for row in first:
+            if isinstance(row, dict):
+                seen.update(dict.fromkeys(row))
+        if first and opts.text_field not in seen:
+            shown = ", ".join(list(seen)[:20]) or "none"
+            raise InputError(
+                f"no row among the first {len(first):,} has the field {opts.text_field!r}; fields seen: {shown}; "
+                "pass --text-field NAME"
+            )
+        columns = list(seen)
+    keep = None if opts.keep is None else list(opts.keep)
+    return plan(columns, keep, resolved.labels, spans=opts.spans > 0)
+
+
+def score_file(
+    registry: Registry,
+    model: str,
+    source: Path,
+    output: Path,
+    *,
+    version: int | None = None,
+    options: Options | None = None,
+    resume: bool = False,
+    stream: TextIO | None = None,
+) -> Summary:
+    """Score every row of ``source`` with ``model`` (its live version, or ``version``) into ``output``.
+
+    Bad input (a missing file, a wrong text field, an unknown model or version, a folder as output)
+    is an InputError or NotFoundError before anything is written; a tampered blob is an
+    IntegrityError before the first row.
+    """
+    opts = options or Options()
+    err = stream or sys.stderr
+    started = time.monotonic()
+    check_output(output)
+    in_fmt = formats.detect(str(source), opts.input_format, "--input-format")
+    out_fmt = formats.detect(str(output), opts.output_format, "--output-format")
+    if opts.chunk_rows < 1:
+        raise InputError(f"--chunk-rows must be 1 or more, not {opts.chunk_rows}")
+    reader = formats.open_reader(source, in_fmt)
+    try:
+        if out_fmt == "parquet":
+            formats._pyarrow()
+        resolved = resolve(registry, model, version)
+        expected = {
+            "format": STATE_FORMAT,
+            "input": _input_identity(source),
+            "options": opts.fixed(),
+            "output_format": out_fmt,
+            **resolved.describe(),
+        }
+        work = work_dir(output)
+        run = _Run(work, out_fmt)
+        previous = None
+        if work.is_dir():
+            with _locked(work):
+                previous = _resume_state(run, expected, err) if resume else None
+                if previous is None:
+                    if not resume:
+                        print(f"textsieve: discarding the unfinished run in {work} (--resume continues it)", file=err)
+                    shutil.rmtree(work)
+        elif resume:
+            print(f"textsieve: nothing to resume for {output.name}; starting from the first row", file=err)
+        skip = int(previous["rows"]) if previous else 0
+        chunks = reader.chunks(opts.chunk_rows, skip=skip)
+        first = next(chunks, [])
+        if previous:
+            layout = Layout(
+                tuple(previous["layout"]["kept"]),
+                dict(previous["layout"]["renamed"]),
+                resolved.labels,
+                opts.spans > 0,
+            )
+        else:
+            layout = _layout_for(reader, first, opts, resolved)
+            if opts.strict:
+                split(first, opts.text_field, strict=True, first_row=0)
+        work.mkdir(exist_ok=True)
+        with _locked(work):
+            return _stream(run, previous, expected, reader, first, chunks, layout, resolved, opts, output, err, started)
+    finally:
+        reader.close()
+
+
+def _stream(
+    run: _Run,
+    previous: dict[str, Any] | None,
+    expected: dict[str, Any],
+    reader: formats.Reader,
+    first: list[Any],
+    chunks: Iterator[list[Any]],
+    layout: Layout,
+    resolved: Resolved,
+    opts: Options,
+    output: Path,
+    err: TextIO,
+    started: float,
+) -> Summary:
+    run.state = previous or {
+        **expected,
+        "layout": {"kept": list(layout.kept), "renamed": layout.renamed},
+        "chunks": 0,
+        "rows": 0,
+        "errors": 0,
+        "committed_bytes": 0,
+    }
+    resumed = int(run.state["rows"])
+    if previous is None:
+        run.save()
+    writer: formats.AppendWriter | None = None
+    schema: pa.Schema | None = None
+    if run.out_fmt == "parquet":
+        run.parts.mkdir(exist_ok=True)
+        if run.state["chunks"]:
+            schema = formats._pyarrow().parquet.read_schema(run.part(0))
+    else:
+        kind = formats.JsonlWriter if run.out_fmt == "jsonl" else formats.CsvWriter
+        writer = kind(run.work / "output.part", layout, start=int(run.state["committed_bytes"]))
+    workers = default_workers() if opts.workers is None else opts.workers
+    pool = Pool(resolved.folder, workers=workers)
+    progress = Progress(
+        f"scoring {output.name}", fraction=reader.fraction, stream=err, every=opts.progress_every, start_count=resumed
+    )
+    classes = len(resolved.labels)
+    finished = False
+    try:
+        pending: deque[tuple[list[Any], Split, list[tuple[slice, Future[Scored]]], int]] = deque()
+        row = resumed
+        for chunk in _chain(first, chunks):
+            part = split(chunk, opts.text_field, strict=opts.strict, first_row=row)
+            futures = [(s, pool.submit(part.texts[s], opts.spans)) for s in pieces(part.texts, pool.parallel)]
+            pending.append((chunk, part, futures, row))
+            row += len(chunk)
+            while len(pending) >= DEPTH:
+                schema = _flush(run, writer, schema, reader, layout, classes, opts, *pending.popleft())
+                progress.update(int(run.state["rows"]))
+        while pending:
+            schema = _flush(run, writer, schema, reader, layout, classes, opts, *pending.popleft())
+            progress.update(int(run.state["rows"]))
+        progress.update(int(run.state["rows"]), force=True)
+        if writer is not None:
+            writer.close()
+            writer = None
+        _finish(run, layout, resolved, opts, output, schema, reader)
+        finished = True
+    except InputError:
+        # Bad input is not worth resuming: the input has to change. Leave nothing behind.
+        pool.close(cancel=True)
+        if writer is not None:
+            writer.close()
+        shutil.rmtree(run.work, ignore_errors=True)
+        raise
+    except KeyboardInterrupt:
+        pool.close(cancel=True)
+        print(
+            f"\ntextsieve: stopped after {run.state['rows']:,} rows; OUTPUT was not written. "
+            "Run the same command with --resume to continue.",
+            file=err,
+        )
+        raise
+    finally:
+        progress.close()
+        if writer is not None:
+            writer.close()
+        if finished:
+            pool.close()
+        else:
+            pool.close(cancel=True)
+    return Summary(
+        output,
+        int(run.state["rows"]),
+        int(run.state["errors"]),
+        resolved.model,
+        resolved.version,
+        resolved.bundle_sha256,
+        time.monotonic() - started,
+        resumed,
+    )
+
+
+def _chain(first: list[Any], rest: Iterator[list[Any]]) -> Iterator[list[Any]]:
+    if first:
+        yield first
+    yield from rest
+
+
+def _flush(
+    run: _Run,
+    writer: formats.AppendWriter | None,
+    schema: pa.Schema | None,
+    reader: formats.Reader,
+    layout: Layout,
+    classes: int,
+    opts: Options,
+    chunk: list[Any],
+    part: Split,
+    futures: list[tuple[slice, Future[Scored]]],
+    first_row: int,
+) -> pa.Schema | None:
+    scored = _combine(futures, len(part.texts), classes)
+    rows = output_rows(chunk, part, scored, layout)
+    if writer is not None:
+        writer.write(rows)
+        run.state["committed_bytes"] = writer.commit()
+    else:
+        if schema is None:
+            schema = formats.output_schema(layout, rows, reader.schema)
+        formats.write_part(run.part(int(run.state["chunks"])), formats.to_table(rows, schema, first_row))
+    run.state["chunks"] = int(run.state["chunks"]) + 1
+    run.state["rows"] = int(run.state["rows"]) + len(chunk)
+    run.state["errors"] = int(run.state["errors"]) + len(part.problems)
+    run.save()
+    return schema
+
+
+def metadata(resolved: Resolved, layout: Layout, opts: Options, rows: int, errors: int, source: str) -> dict[str, Any]:
+    """What the output records once: the version that scored it, and how."""
+    return {
+        **resolved.describe(),
+        "labels": list(resolved.labels),
+        "text_field": opts.text_field,
+        "spans": opts.spans,
+        "rows": rows,
+        "errors": errors,
+        "input": source,
+        **layout.describe(),
+        "scored_at": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
+        "textsieve_version": __version__,
+        "caution": CAUTION,
+    }
+
+
+def _finish(
+    run: _Run,
+    layout: Layout,
+    resolved: Resolved,
+    opts: Options,
+    output: Path,
+    schema: pa.Schema | None,
+    reader: formats.Reader,
+) -> None:
+    meta = metadata(
+        resolved, layout, opts, int(run.state["rows"]), int(run.state["errors"]), str(run.state["input"]["path"])
+    )
+    if run.out_fmt == "parquet":
+        if schema is None:
+            schema = formats.output_schema(layout, [], reader.schema)
+        built = run.work / "output.parquet"
+        parts = [run.part(i) for i in range(int(run.state["chunks"]))]
+        formats.merge_parts(parts, built, schema, meta)
+        os.replace(built, output)
+    else:
+        os.replace(run.work / "output.part", output)
+        atomic_write_text(sidecar(output), json.dumps(meta, indent=2, ensure_ascii=False) + "\n")
+    fsync_dir(output.parent)
+    shutil.rmtree(run.work, ignore_errors=True)
+
+
+__all__ = ["DEFAULT_CHUNK", "Options", "Summary", "check_output", "metadata", "score_file", "sidecar", "work_dir"]

@@ -1,0 +1,149 @@
+"""A registered model version, resolved once and verified, loaded for scoring in this process: what
+``textsieve.load_model`` hands back, and what ``textsieve score`` resolves before its first row."""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from textsieve.errors import InputError, NotFoundError
+
+if TYPE_CHECKING:
+    import pandas as pd
+
+    from textsieve.registry.api import Registry
+    from textsieve.registry.runtime import Prediction, Predictor
+
+
+@dataclass(frozen=True)
+class Resolved:
+    """A version pinned for a whole run, and the verified local copy of its bundle."""
+
+    model: str
+    version: int
+    bundle_sha256: str  # the sha256 of its manifest, which lists the sha256 of every other file
+    labels: tuple[str, ...]
+    folder: Path
+    files: dict[str, str]
+
+    def describe(self) -> dict[str, object]:
+        return {"model": self.model, "version": self.version, "bundle_sha256": self.bundle_sha256}
+
+
+def resolve(registry: Registry, model: str, version: int | None = None) -> Resolved:
+    """Pin ``version`` (the live one when None) and fetch its bundle, every blob re-hashed."""
+    info = registry.version(model, version) if version is not None else registry.live(model)
+    if info is None:
+        raise NotFoundError(
+            f"{model!r} has no live version; promote one (textsieve promote {model} N --to live) or pass --version N"
+        )
+    # fetch() with the pinned number, never "live" again: a promotion during the run changes nothing.
+    bundle = registry.fetch(info.model, info.version)
+    return Resolved(info.model, info.version, info.manifest_sha256, tuple(info.labels), bundle.path, dict(info.files))
+
+
+def _open(registry: Registry | str | os.PathLike[str], blobs: str | os.PathLike[str] | None) -> tuple[Registry, bool]:
+    from textsieve.registry.api import Registry, open_registry
+
+    if isinstance(registry, Registry):
+        return registry, False
+    return open_registry(registry, blobs=blobs, create=False), True
+
+
+class Model:
+    """A model version loaded for scoring in this process (one onnxruntime session).
+
+    Predictions are aids for human review: they can carry bias from the training data and need
+    monitoring; decisions stay with accountable people.
+    """
+
+    def __init__(self, resolved: Resolved, *, threads: int = 1) -> None:
+        from textsieve.registry.runtime import Predictor
+
+        self._resolved = resolved
+        self._predictor: Predictor = Predictor.from_bundle(resolved.folder, threads=threads)
+
+    @property
+    def name(self) -> str:
+        """The model's name in the registry."""
+        return self._resolved.model
+
+    @property
+    def version(self) -> int:
+        """The version number this object scores with (fixed when it was loaded)."""
+        return self._resolved.version
+
+    @property
+    def bundle_sha256(self) -> str:
+        """sha256 of the version's manifest, which lists every other bundle file's sha256."""
+        return self._resolved.bundle_sha256
+
+    @property
+    def labels(self) -> list[str]:
+        """The labels in the model's output order."""
+        return list(self._resolved.labels)
+
+    def __repr__(self) -> str:
+        return f"Model({self.name!r}, version={self.version})"
+
+    def predict(self, texts: Sequence[str], *, spans: int = 3) -> list[Prediction]:
+        """Label, calibrated probabilities and up to ``spans`` n-gram spans for each text, in order."""
+        if isinstance(texts, str):
+            raise InputError("predict takes a list of texts, not one string: predict([text])")
+        bad = [i for i, t in enumerate(texts) if not isinstance(t, str)]
+        if bad:
+            raise InputError(f"texts must be strings; item {bad[0]} is a {type(texts[bad[0]]).__name__}")
+        if spans < 0:
+            raise InputError(f"spans must be 0 or more, not {spans}")
+        return self._predictor.predict(list(texts), spans=spans)
+
+    def score_frame(self, frame: pd.DataFrame, column: str = "text", *, spans: int = 0) -> pd.DataFrame:
+        """``frame`` with the result columns added (``label``, ``probability:LABEL`` each, ``spans`` when
+        asked, ``error``), the same columns ``textsieve score`` writes. Rows whose text is missing, empty
+        or not a string get ``error`` set and no label; an input column that a result column would
+        shadow is renamed ``input:NAME``."""
+        import pandas as pd
+
+        from textsieve.scoring.columns import plan
+        from textsieve.scoring.rows import output_rows, score_texts, split
+
+        if column not in frame.columns:
+            raise InputError(f"no column {column!r} in the frame; it has: {', '.join(map(str, frame.columns))}")
+        names = [str(c) for c in frame.columns]
+        layout = plan(names, [], self.labels, spans=spans > 0)
+        values: list[Any] = frame[column].tolist()
+        rows = [{column: v if isinstance(v, str) else None if _missing(pd, v) else v} for v in values]
+        part = split(rows, column, strict=False, first_row=0)
+        scored = score_texts(self._predictor, part.texts, spans)
+        results = pd.DataFrame(output_rows(rows, part, scored, layout), index=frame.index, columns=layout.results)
+        renames = plan(names, None, self.labels, spans=spans > 0).renamed
+        return pd.concat([frame.rename(columns={c: renames[str(c)] for c in frame.columns}), results], axis=1)
+
+
+def _missing(pd: Any, value: object) -> bool:
+    """None, NaN, NaT and pandas' NA stand for a missing text."""
+    return value is None or (not isinstance(value, list | tuple | dict) and bool(pd.isna(value)))
+
+
+def load_model(
+    registry: Registry | str | os.PathLike[str],
+    name: str,
+    version: int | None = None,
+    *,
+    blobs: str | os.PathLike[str] | None = None,
+    threads: int = 1,
+) -> Model:
+    """Load ``name``'s live version (or ``version``) from a registry object, folder or postgresql:// URL
+    (with ``blobs``), after re-checking the sha256 of every file of its bundle."""
+    reg, owned = _open(registry, blobs)
+    try:
+        return Model(resolve(reg, name, version), threads=threads)
+    finally:
+        if owned:
+            reg.close()
+
+
+__all__ = ["Model", "Resolved", "load_model", "resolve"]

@@ -1,0 +1,113 @@
+"""Worker processes for scoring: one single-thread onnxruntime session per process, one process per
+core (two single-thread sessions beat one two-thread session on this graph: design.md's measurements).
+
+A worker loads the bundle folder it is given once, when it starts; the parent has verified that
+folder against the registry's sha256 before any worker sees it. ``workers=0`` scores in the calling
+process instead (tests, tiny files, and machines where forking is not wanted).
+"""
+
+from __future__ import annotations
+
+import multiprocessing
+import os
+from collections.abc import Sequence
+from concurrent.futures import Future, ProcessPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+from textsieve.errors import UnavailableError
+from textsieve.scoring.rows import Scored, score_texts
+
+if TYPE_CHECKING:
+    from textsieve.registry.runtime import Predictor
+
+_PREDICTOR: Predictor | None = None
+
+
+def _load(bundle: str, batch_size: int) -> None:
+    global _PREDICTOR
+    from textsieve.registry.runtime import Predictor
+
+    _PREDICTOR = Predictor.from_bundle(Path(bundle), threads=1, batch_size=batch_size)
+
+
+def _score(texts: list[str], spans: int) -> Scored:
+    assert _PREDICTOR is not None, "the worker's initializer loads the predictor"
+    return score_texts(_PREDICTOR, texts, spans)
+
+
+def default_workers() -> int:
+    """One per core this process may run on."""
+    try:
+        return max(len(os.sched_getaffinity(0)), 1)
+    except AttributeError:  # not on Linux
+        return max(os.cpu_count() or 1, 1)
+
+
+class Pool:
+    """Scores lists of texts on ``workers`` processes (or in this process when 0), in submission order."""
+
+    def __init__(self, bundle: Path, *, workers: int, batch_size: int = 64) -> None:
+        self.workers = workers
+        self._executor: ProcessPoolExecutor | None = None
+        self._local: Predictor | None = None
+        if workers == 0:
+            from textsieve.registry.runtime import Predictor
+
+            self._local = Predictor.from_bundle(bundle, threads=1, batch_size=batch_size)
+        else:
+            # forkserver: workers start from a clean process, not a copy of this one's threads and memory.
+            self._executor = ProcessPoolExecutor(
+                max_workers=workers,
+                mp_context=multiprocessing.get_context("forkserver"),
+                initializer=_load,
+                initargs=(str(bundle), batch_size),
+            )
+
+    @property
+    def parallel(self) -> int:
+        return max(self.workers, 1)
+
+    def submit(self, texts: list[str], spans: int) -> Future[Scored]:
+        if self._executor is None:
+            assert self._local is not None
+            done: Future[Scored] = Future()
+            done.set_result(score_texts(self._local, texts, spans))
+            return done
+        try:
+            return self._executor.submit(_score, texts, spans)
+        except BrokenProcessPool as exc:
+            raise _stopped() from exc
+
+    def close(self, *, cancel: bool = False) -> None:
+        if self._executor is not None:
+            self._executor.shutdown(wait=not cancel, cancel_futures=cancel)
+
+
+def result(future: Future[Scored]) -> Scored:
+    """The future's result; a worker that died becomes one line, not a traceback."""
+    try:
+        return future.result()
+    except BrokenProcessPool as exc:
+        raise _stopped() from exc
+
+
+def _stopped() -> UnavailableError:
+    return UnavailableError(
+        "a scoring worker process stopped (killed, or out of memory); run the same command with --resume "
+        "to continue from the last completed chunk"
+    )
+
+
+def pieces(texts: Sequence[str], parallel: int, minimum: int = 256) -> list[slice]:
+    """Split a chunk so every worker gets work and each piece is long enough to sort by length."""
+    n = len(texts)
+    if n == 0:
+        return []
+    count = max(1, min(2 * parallel, n // minimum or 1))
+    step = -(-n // count)
+    return [slice(lo, min(lo + step, n)) for lo in range(0, n, step)]
+
+
+__all__ = ["Pool", "default_workers", "pieces", "result"]

@@ -1,0 +1,121 @@
+"""From input rows to output rows: pick each row's text (or say why it has none), score the texts,
+and lay the results out in the output's columns. Shared by local runs, Dask workers and the API."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
+
+from textsieve.errors import InputError
+from textsieve.scoring.columns import ERROR, LABEL, SPANS, Layout, probability_column
+
+if TYPE_CHECKING:
+    import numpy as np
+    from numpy.typing import NDArray
+
+    from textsieve.registry.runtime import Predictor
+
+Row = dict[str, Any]
+
+
+class Unreadable(str):
+    """A line that holds no row at all (not JSON); its text says why. Stands in for the row."""
+
+
+@dataclass(slots=True)
+class Scored:
+    """Results for a list of texts, in their order: best class index, probabilities, spans."""
+
+    best: NDArray[np.int64]
+    probabilities: NDArray[np.float64]
+    spans: list[list[dict[str, object]]] | None
+
+
+def score_texts(predictor: Predictor, texts: Sequence[str], spans: int) -> Scored:
+    """The service's arithmetic (Predictor.run, temperature-scaled softmax, spans) without building
+    a Prediction object per text."""
+    encoded = [predictor.encode(t) for t in texts]
+    out = predictor.run(encoded)
+    probs = predictor.probabilities(out.logits)
+    best = probs.argmax(axis=1)
+    found = None
+    if spans > 0:
+        found = [[s.public() for s in predictor.spans(e, out, i, int(best[i]), spans)] for i, e in enumerate(encoded)]
+    return Scored(best, probs, found)
+
+
+def text_problem(row: Any, field: str) -> str | None:
+    """Why this row has no text to score, or None when it has one."""
+    if isinstance(row, Unreadable):
+        return str(row)
+    if not isinstance(row, dict):
+        return "not a JSON object"
+    if field not in row or row[field] is None:
+        return f"text field {field!r} is missing"
+    value = row[field]
+    if not isinstance(value, str):
+        return f"text field {field!r} is a {type(value).__name__}, not a string"
+    if not value.strip():
+        return f"text field {field!r} is empty"
+    return None
+
+
+@dataclass(slots=True)
+class Split:
+    """A chunk's texts to score, and the rows that have none (row index → why)."""
+
+    texts: list[str]
+    scored_rows: list[int]
+    problems: dict[int, str]
+
+
+def split(rows: Sequence[Any], field: str, *, strict: bool, first_row: int) -> Split:
+    """Separate scorable rows from bad ones; with ``strict`` the first bad row is an InputError."""
+    texts: list[str] = []
+    scored: list[int] = []
+    problems: dict[int, str] = {}
+    for i, row in enumerate(rows):
+        problem = text_problem(row, field)
+        if problem is None:
+            texts.append(row[field])
+            scored.append(i)
+        elif strict:
+            raise InputError(f"row {first_row + i + 1}: {problem} (--strict stops at the first such row)")
+        else:
+            problems[i] = problem
+    return Split(texts, scored, problems)
+
+
+def output_rows(rows: Sequence[Any], part: Split, results: Scored, layout: Layout) -> list[Row]:
+    """The output rows of one chunk, in input order."""
+    labels = layout.labels
+    prob_cols = [probability_column(x) for x in labels]
+    kept = [(c, layout.renamed[c]) for c in layout.kept]
+    probs = results.probabilities.tolist()
+    best = results.best.tolist()
+    position = {row: j for j, row in enumerate(part.scored_rows)}
+    out: list[Row] = []
+    for i, row in enumerate(rows):
+        source = row if isinstance(row, dict) else {}
+        rec: Row = {name: source.get(c) for c, name in kept}
+        j = position.get(i)
+        if j is None:
+            rec[LABEL] = None
+            for col in prob_cols:
+                rec[col] = None
+            if layout.spans:
+                rec[SPANS] = None
+            rec[ERROR] = part.problems[i]
+        else:
+            rec[LABEL] = labels[best[j]]
+            for col, p in zip(prob_cols, probs[j], strict=True):
+                rec[col] = p
+            if layout.spans:
+                rec[SPANS] = results.spans[j] if results.spans is not None else []
+            rec[ERROR] = None
+        out.append(rec)
+    return out
+
+
+__all__ = ["Row", "Unreadable", "Scored", "Split", "output_rows", "score_texts", "split", "text_problem"]
