@@ -33,6 +33,7 @@ from enum import StrEnum
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import orjson
 
 from textsieve.errors import BundleError, UnavailableError
@@ -114,7 +115,6 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
     # the pipe closes and the worker ends on its own.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
-    import numpy as np
     import orjson
 
     from textsieve.registry.bundle import open_bundle
@@ -149,21 +149,24 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
                     unknown += e.unknown
                     truncated += e.tokens > len(e.ids)
                 counts = count_encoded(layouts[msg.key], encoded, probs) if msg.drift else None
-                # Each reply serialised here, once: the server embeds the bytes as they are.
+                # Each reply serialised here, once: the server embeds the bytes as they are. Arrays
+                # travel as raw bytes, never as pickled NumPy objects: the server unpickles nothing
+                # but plain data from a worker (tests/reliability/test_security.py).
                 reply = (
                     [orjson.dumps(r) for r in results],
                     tokens,
                     unknown,
                     truncated,
-                    probs.argmax(axis=1).astype(np.int32),
-                    probs.max(axis=1),
-                    counts,
+                    probs.argmax(axis=1).astype(np.int32).tobytes(),
+                    probs.max(axis=1).astype(np.float64).tobytes(),
+                    None if counts is None else counts.astype(np.int64).tobytes(),
                 )
                 conn.send((Outcome.OK.value, reply))
             elif isinstance(msg, Score):
                 p = predictors[msg.key]
                 out = run_packed(p, [p.encode(t) for t in msg.texts])
-                conn.send((Outcome.OK.value, p.probabilities(out.logits)))
+                probs = p.probabilities(out.logits).astype(np.float64)
+                conn.send((Outcome.OK.value, (probs.shape[1], probs.tobytes())))
             elif isinstance(msg, Load):
                 checked = open_bundle(Path(msg.bundle))
                 p = Predictor.from_bundle(checked, threads=1, batch_size=msg.batch_size)
@@ -416,11 +419,20 @@ class WorkerProcesses:
         whose top probability is below ``review`` are marked needs_review."""
         w = self._worker(index, key)
         replies, tokens, unknown, truncated, best, top, counts = w.call(Run(key, texts, ks, review, drift), retry=True)
-        return [orjson.Fragment(r) for r in replies], tokens, unknown, truncated, best, top, counts
+        return (
+            [orjson.Fragment(r) for r in replies],
+            tokens,
+            unknown,
+            truncated,
+            np.frombuffer(best, dtype=np.int32),
+            np.frombuffer(top, dtype=np.float64),
+            None if counts is None else np.frombuffer(counts, dtype=np.int64),
+        )
 
     def score(self, index: int, key: Key, texts: list[str]) -> Any:
         """Calibrated probabilities of ``texts`` (rows in order, columns in the version's label order)."""
-        return self._worker(index, key).call(Score(key, texts), retry=True)
+        columns, raw = self._worker(index, key).call(Score(key, texts), retry=True)
+        return np.frombuffer(raw, dtype=np.float64).reshape(-1, columns)
 
     def _worker(self, index: int, key: Key) -> _Worker:
         w = self.workers[index % len(self.workers)]

@@ -151,8 +151,14 @@ def test_rows_without_a_text_get_an_error_and_are_counted(
 
 # -- bad input: one line, exit 2 (1 for a blob that fails its sha256), nothing written ---------------------
 def _tamper(registry: Path) -> None:
-    blobs = sorted((registry / "blobs").iterdir(), key=lambda p: p.stat().st_size)
-    with open(blobs[-1], "r+b") as f:  # the largest blob: model.onnx
+    from textsieve.registry import open_registry
+
+    with open_registry(str(registry)) as reg:  # the live version's model.onnx (reports are blobs too)
+        live = reg.live(MODEL)
+        assert live is not None
+        digest = live.files["model.onnx"]
+    blob = next(p for p in (registry / "blobs").rglob("*") if p.is_file() and p.name == digest)
+    with open(blob, "r+b") as f:
         f.seek(100)
         byte = f.read(1)
         f.seek(100)
