@@ -190,7 +190,12 @@ async def _soak(
     samples: list[tuple[float, int]] = []
     began = time.monotonic()
     until = began + args.seconds
-    limits = httpx.Limits(max_connections=args.clients + 2)
+    # A kept-alive connection is reused only while the server will still keep it: httpx's default
+    # idle expiry (5 s) equals the server's TEXTSIEVE_KEEPALIVE_SECONDS, and a request sent just as
+    # the server closes the idle connection fails on the client side (ReadError /
+    # RemoteProtocolError, never reaching the server). Expiring a second earlier avoids that race.
+    keepalive = float(os.environ.get("TEXTSIEVE_KEEPALIVE_SECONDS", "5"))
+    limits = httpx.Limits(max_connections=args.clients + 2, keepalive_expiry=max(0.5, keepalive - 1.0))
     async with httpx.AsyncClient(base_url=url, timeout=60, limits=limits) as http:
         await asyncio.gather(
             _memory(pid, began, args.warmup, until, samples),
