@@ -41,6 +41,7 @@ test: venv services
 bench: venv
 	$(PIP) install --quiet -c $(LOCK) -e '.[bench]'
 	$(BIN)/python bench/run.py
+	$(BIN)/python bench/liveloop.py
 
 # SOAK_MINUTES=60 make soak: an hour of mixed load with hot swaps; memory must stay within 10 %.
 SOAK_MINUTES ?= 10

@@ -109,7 +109,7 @@ def measure(args: argparse.Namespace) -> int:
         for name, env in CONFIGS.items():
             started_servers[name] = start(name, registry, work, env)
         for server in started_servers.values():
-            run.check_and_warm(server, body_list, wrk)
+            run.check_and_warm(server, body_list, wrk, run.TEXTS_PER_REQUEST)
         windows: dict[str, list[dict[str, Any]]] = {name: [] for name in CONFIGS}
         ratios: dict[str, list[float]] = {key: [] for key in BOUNDS}
         for r in range(args.rounds):
