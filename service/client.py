@@ -51,6 +51,25 @@ def _base(url: str) -> str:
     return url.rstrip("/")
 
 
+def _ok(base: str, method: str, path: str, timeout: float, **kwargs: Any) -> Any:
+    """One call to the service, answered 200: else UnavailableError (unreachable, 5xx) or
+    InputError (4xx), each with the problem's detail."""
+    import httpx
+
+    try:
+        with httpx.Client(timeout=timeout) as client:
+            r = client.request(method, f"{base}{path}", **kwargs)
+    except httpx.HTTPError as exc:
+        raise UnavailableError(
+            f"cannot reach {base} ({type(exc).__name__}: {exc}); is 'textsieve serve' running?"
+        ) from exc
+    if r.status_code >= 500:
+        raise UnavailableError(_problem_detail(r))
+    if r.status_code != 200:
+        raise InputError(_problem_detail(r))
+    return r
+
+
 def _problem_detail(r: httpx.Response) -> str:
     try:
         body = r.json()
@@ -106,7 +125,6 @@ def _ansi(stream: TextIO) -> bool:
 
 
 def cli_predict(args: argparse.Namespace) -> int:
-    import httpx
 
     base = _base(service_url(args.url))
     payload: dict[str, Any] = {"texts": list(args.texts), "spans": args.spans}
@@ -114,17 +132,7 @@ def cli_predict(args: argparse.Namespace) -> int:
         payload["model"] = args.model
     if args.version is not None:
         payload["version"] = args.version
-    try:
-        with httpx.Client(timeout=60.0) as client:
-            r = client.post(f"{base}/v1/predict", json=payload)
-    except httpx.HTTPError as exc:
-        raise UnavailableError(
-            f"cannot reach {base} ({type(exc).__name__}: {exc}); is 'textsieve serve' running?"
-        ) from exc
-    if r.status_code >= 500:
-        raise UnavailableError(_problem_detail(r))
-    if r.status_code != 200:
-        raise InputError(_problem_detail(r))
+    r = _ok(base, "POST", "/v1/predict", 60.0, json=payload)
     reply = r.json()
     if args.json:
         print(r.text)
@@ -179,20 +187,9 @@ def render_drift(reply: dict[str, Any]) -> str:
 def cli_drift(args: argparse.Namespace) -> int:
     import urllib.parse
 
-    import httpx
 
     base = _base(service_url(args.url))
-    try:
-        with httpx.Client(timeout=30.0) as client:
-            r = client.get(f"{base}/v1/models/{urllib.parse.quote(args.model, safe='')}/drift")
-    except httpx.HTTPError as exc:
-        raise UnavailableError(
-            f"cannot reach {base} ({type(exc).__name__}: {exc}); is 'textsieve serve' running?"
-        ) from exc
-    if r.status_code >= 500:
-        raise UnavailableError(_problem_detail(r))
-    if r.status_code != 200:
-        raise InputError(_problem_detail(r))
+    r = _ok(base, "GET", f"/v1/models/{urllib.parse.quote(args.model, safe='')}/drift", 30.0)
     print(r.text if args.json else render_drift(r.json()))
     return 0
 
