@@ -187,7 +187,6 @@ def render_drift(reply: dict[str, Any]) -> str:
 def cli_drift(args: argparse.Namespace) -> int:
     import urllib.parse
 
-
     base = _base(service_url(args.url))
     r = _ok(base, "GET", f"/v1/models/{urllib.parse.quote(args.model, safe='')}/drift", 30.0)
     print(r.text if args.json else render_drift(r.json()))
