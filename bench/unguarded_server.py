@@ -17,13 +17,24 @@ import os
 
 import uvicorn
 
+KNOWN = {"protocol", "body", "access", "admission"}
+
 
 def main() -> None:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--registry", required=True)
     p.add_argument("--port", type=int, required=True)
+    p.add_argument(
+        "--keep",
+        default="",
+        help="comma-separated guards to keep, for finding what costs: protocol, body, access, admission",
+    )
     args = p.parse_args()
-    os.environ["TEXTSIEVE_QUEUE_WAIT_MS"] = "60000"  # the setting's maximum: admission never refuses
+    keep = {k for k in args.keep.split(",") if k}
+    if keep - KNOWN:
+        p.error(f"--keep: unknown {sorted(keep - KNOWN)}; known: {sorted(KNOWN)}")
+    if "admission" not in keep:
+        os.environ["TEXTSIEVE_QUEUE_WAIT_MS"] = "60000"  # the setting's maximum: admission never refuses
 
     from textsieve.service import logs
     from textsieve.service.settings import Settings
@@ -34,13 +45,14 @@ def main() -> None:
     logs.configure()
     settings = Settings(registry=args.registry, host="127.0.0.1", port=args.port)
     app = create_app(settings)
-    app.user_middleware = [m for m in app.user_middleware if m.cls is not BodyLimitMiddleware]
+    if "body" not in keep:
+        app.user_middleware = [m for m in app.user_middleware if m.cls is not BodyLimitMiddleware]
     for m in app.user_middleware:
-        if m.cls is AccessMiddleware:
+        if m.cls is AccessMiddleware and "access" not in keep:
             m.kwargs["guard"] = None
     config = uvicorn.Config(
         app,
-        http="httptools",
+        http=app.state.guard.protocol() if "protocol" in keep else "httptools",
         timeout_keep_alive=settings.keepalive_seconds,
         host=settings.host,
         port=settings.port,
