@@ -13,8 +13,12 @@ from this mix:
     14 %  registry views (models, one model, its versions, one version)
     14 %  /readyz, /metrics, /healthz
 
-What it prints: requests by kind and status, the error count (any failure, or any status other
-than the expected one), throughput, and the server's resident memory (VmRSS from /proc, summed
+Clients behave as the README asks callers to: a ``503`` refusal with ``Retry-After`` (the
+replica's overload bounds, on a machine busy with other work) is waited out and retried, up to
+three times; refusals are counted on their own row, not as errors.
+
+What it prints: requests by kind and status, refusals, the error count (any failure, or any
+status other than the expected one), throughput, and the server's resident memory (VmRSS from /proc, summed
 over the server and its worker processes; the median of the 30 s after the warm-up and of the
 last 30 s). Exit status 0 only when there was
 no error, memory stayed within ``--memory-tolerance`` (10 %) of its post-warm-up value, and
@@ -54,6 +58,7 @@ from texts import bench_texts  # noqa: E402
 
 MODEL = demo_model.MODEL_NAME
 WINDOW = 30.0  # seconds of memory samples (one every 5 s) summarised at each end
+RETRIES = 3  # refusals waited out per request before its last try counts whatever it gets
 MIX = [("predict", 62), ("pinned", 5), ("bad", 5), ("view", 14), ("probe", 14)]
 BAD_BODIES = [
     b'{"texts": []}',
@@ -115,6 +120,28 @@ def _rss_bytes(pid: int) -> int:
     return total
 
 
+def _refusal(r: Any) -> float | None:
+    """The seconds a 503 refusal asks the caller to wait (its Retry-After), or None if ``r`` is not one."""
+    if r.status_code != 503 or r.headers.get("content-type") != "application/problem+json":
+        return None
+    retry_after = r.headers.get("retry-after", "")
+    return float(retry_after) if retry_after.isdigit() else None
+
+
+async def _send(http: Any, method: str, path: str, tally: Tally, kind: str, **kw: Any) -> Any:
+    """One request as a well-behaved caller sends it: a 503 refusal with Retry-After (the replica's
+    overload bounds, SECURITY.md) is waited out and retried, up to RETRIES times; each refusal is
+    counted (kind "refused"), not as an error. Any other answer is returned."""
+    for _ in range(RETRIES):
+        r = await http.request(method, path, **kw)
+        wait = _refusal(r)
+        if wait is None:
+            return r
+        tally.record("refused", f"{kind} 503", True)
+        await asyncio.sleep(wait)
+    return await http.request(method, path, **kw)
+
+
 async def _client(http: Any, rng: random.Random, pool: list[str], until: float, tally: Tally) -> None:
     kinds, weights = zip(*MIX, strict=True)
     while time.monotonic() < until:
@@ -125,12 +152,18 @@ async def _client(http: Any, rng: random.Random, pool: list[str], until: float, 
                 body: dict[str, Any] = {"texts": texts, "spans": rng.randint(0, 5)}
                 if kind == "pinned":
                     body["version"] = 3
-                r = await http.post("/v1/predict", json=body)
+                r = await _send(http, "POST", "/v1/predict", tally, kind, json=body)
                 ok = r.status_code == 200 and len(r.json()["results"]) == len(texts)
                 tally.texts += len(texts) if ok else 0
             elif kind == "bad":
-                r = await http.post(
-                    "/v1/predict", content=rng.choice(BAD_BODIES), headers={"content-type": "application/json"}
+                r = await _send(
+                    http,
+                    "POST",
+                    "/v1/predict",
+                    tally,
+                    kind,
+                    content=rng.choice(BAD_BODIES),
+                    headers={"content-type": "application/json"},
                 )
                 ok = 400 <= r.status_code < 500 and r.headers.get("content-type") == "application/problem+json"
             elif kind == "view":
@@ -142,10 +175,10 @@ async def _client(http: Any, rng: random.Random, pool: list[str], until: float, 
                         f"/v1/models/{MODEL}/versions/{rng.randint(1, 3)}",
                     ]
                 )
-                r = await http.get(path)
+                r = await _send(http, "GET", path, tally, kind)
                 ok = r.status_code == 200
             else:
-                r = await http.get(rng.choice(["/readyz", "/metrics", "/healthz"]))
+                r = await http.get(rng.choice(["/readyz", "/metrics", "/healthz"]))  # never refused
                 ok = r.status_code == 200
             tally.record(kind, str(r.status_code), ok, "" if ok else r.text)
         except Exception as exc:  # noqa: BLE001 - every failure is counted and reported, none stops the soak
@@ -283,7 +316,7 @@ def main(argv: list[str] | None = None) -> int:
         f"\nrequests: {total} in {elapsed:.0f} s ({total / elapsed:.0f}/s), texts scored: {tally.texts} "
         f"({tally.texts / elapsed:.0f}/s)"
     )
-    for kind, _ in [*MIX, ("promote", 0), ("rollback", 0)]:
+    for kind, _ in [*MIX, ("promote", 0), ("rollback", 0), ("refused", 0)]:
         row = {outcome: n for (k, outcome), n in sorted(tally.counts.items()) if k == kind}
         if row:
             print(f"  {kind:9s} {sum(row.values()):8d}  " + "  ".join(f"{o}: {n}" for o, n in row.items()))
