@@ -1,15 +1,19 @@
 """Dynamic micro-batching: texts from concurrent requests share onnxruntime calls.
 
-Threading model. ``workers`` inference threads (default: one per core). With
-``inference=threads`` each owns one single-thread onnxruntime session of every loaded version
-and does all of a batch's work itself; onnxruntime releases the GIL inside ``session.run``, but
-tokenizing and building replies take turns with the event loop on the GIL. With
-``inference=processes`` (the default) thread i hands each batch to worker process i and waits
-(:mod:`textsieve.service.inference.workers`), so that work runs in parallel too. Each served
-version has one collector task on the event loop: it waits for a free thread, then takes queued
+Threading model. With ``inference=processes`` (the default) the collector hands each batch
+from the event loop to the least busy worker process and the worker's reply comes back to the
+loop (:mod:`textsieve.service.inference.workers`), with no inference thread in between: every
+hand-over between threads waits its turn for the GIL behind whatever the loop is running, which
+cost single-text requests most of their latency. With ``inference=threads``, ``workers``
+inference threads (default: one per core) each own one single-thread onnxruntime session of every
+loaded version and do all of a batch's work themselves; onnxruntime releases the GIL inside
+``session.run``, but tokenizing and building replies take turns with the event loop on the GIL.
+At most ``workers`` × 2 batches are in flight with processes (one computing and one waiting in
+each worker's pipe), ``workers`` with threads. Each served
+version has one collector task on the event loop: it waits for a free slot, then takes queued
 texts in arrival order, up to ``batch_max_texts``, waiting at most ``batch_wait_ms`` after the
-oldest text arrived for more to join. Under load the wait for a free thread is what fills
-batches; the explicit wait only matters when threads are idle. The thread encodes the batch,
+oldest text arrived for more to join. Under load the wait for a free slot is what fills
+batches; the explicit wait only matters when workers are idle. The worker encodes the batch,
 sorts it by length and runs it as sub-batches each padded only to its own longest text
 (:mod:`textsieve.service.inference.packing`), and builds the reply dicts, so the event loop only
 routes finished results. Graph outputs are masked, so a text's result does not depend on its
@@ -234,7 +238,11 @@ class Batcher:
                     continue
                 texts = [t for p in pieces for t in p.job.texts[p.lo : p.hi]]
                 ks = [p.job.spans for p in pieces for _ in range(p.hi - p.lo)]
-                fut = loop.run_in_executor(self.pool.executor, self._work, texts, ks)
+                fut: asyncio.Future[_Done]
+                if self.pool.procs is not None and self.served.worker_key is not None:
+                    fut = loop.create_task(self._work_in_process(texts, ks))
+                else:
+                    fut = loop.run_in_executor(self.pool.executor, self._work, texts, ks)
             except BaseException:  # cancelled at shutdown: texts already taken must not hang
                 slots.release()
                 for p in pieces:
@@ -243,6 +251,19 @@ class Batcher:
                 raise
             self._inflight.add(fut)
             fut.add_done_callback(functools.partial(self._finish, pieces=pieces))
+
+    async def _work_in_process(self, texts: list[str], ks: list[int]) -> _Done:
+        """On the event loop: the batch goes to a worker process and its reply comes back here,
+        with no inference thread in between (see WorkerProcesses.run_async)."""
+        procs, key = self.pool.procs, self.served.worker_key
+        assert procs is not None and key is not None
+        window = self.served.window
+        started = time.perf_counter()
+        results, tokens, unknown, truncated, best, top, counts = await procs.run_async(
+            key, texts, ks, self.served.review_threshold, drift=window is not None, executor=self.pool.executor
+        )
+        seconds = time.perf_counter() - started
+        return _Done(results, started, seconds, tokens, unknown, truncated, best, top, counts)
 
     def _work(self, texts: list[str], ks: list[int]) -> _Done:
         """On an inference thread: encode, run, explain, build reply dicts (here or in its process)."""

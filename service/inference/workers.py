@@ -3,10 +3,12 @@
 With threads (``TEXTSIEVE_INFERENCE=threads``) onnxruntime computes in parallel, but
 tokenizing, padding and building replies are Python and take turns on one GIL with the event
 loop; on the 2-core benchmark machine that capped the server at about 1.25 busy cores. With
-processes (the default) each inference thread of the pool drives one worker process of its own
-over a pipe: the thread sends the texts of a batch and waits (the wait releases the GIL), the
-worker encodes, runs its single-thread session, explains, and sends back each text's reply
-already serialised as JSON, which the server embeds as it is (``orjson.Fragment``).
+processes (the default) the event loop puts each batch into the pipe of the least busy worker
+process (:meth:`WorkerProcesses.run_async`); the worker encodes, runs its single-thread session,
+explains, and sends back each text's reply already serialised as JSON, which the server embeds
+as it is (``orjson.Fragment``); one reply thread per worker reads its pipe and hands each reply to
+the loop. Blocking calls (loading, dropping, shadow scoring, a batch too large for the pipe, the
+retry after a worker died) go through :meth:`_Worker.call` from a thread.
 
 Workers are forked from a fork server started once per server process, which has already
 imported the inference modules, so starting or replacing a worker takes milliseconds. Every
@@ -21,15 +23,18 @@ with an :class:`Outcome` and a value.
 
 from __future__ import annotations
 
+import asyncio
+import gc
 import itertools
 import logging
 import multiprocessing
 import multiprocessing.connection
 import threading
 from collections import deque
-from concurrent.futures import Future
+from concurrent.futures import Executor, Future
 from dataclasses import dataclass, field
 from enum import StrEnum
+from multiprocessing.reduction import ForkingPickler
 from pathlib import Path
 from typing import Any
 
@@ -127,6 +132,9 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
 
     predictors: dict[Key, Predictor] = {}
     layouts: dict[Key, Layout] = {}
+    # What the forkserver imported and this worker inherited lives as long as the worker: out of
+    # the cycle collector's scans, a full collection no longer holds up a batch (see service/cli.py).
+    gc.freeze()
     while True:
         try:
             msg = conn.recv()
@@ -187,6 +195,56 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
             conn.send((Outcome.BUNDLE.value, exc.message))
         except Exception as exc:  # noqa: BLE001 - reported to the server, which decides
             conn.send((Outcome.ERROR.value, f"{type(exc).__name__}: {exc}"))
+
+
+# A batch is put into a worker's pipe from the event loop only when it surely fits in the
+# socket's buffer (Linux gives a Unix socket pair at least 200 KiB): a full pipe would block the
+# loop until the worker drained it. Larger batches (long texts) are sent from a thread.
+SEND_FROM_LOOP_MAX_BYTES = 64 * 1024
+
+
+def pickled(msg: Message) -> bytes:
+    """``msg`` as ``Connection.send`` would put it on the pipe (the worker's ``recv`` reads either)."""
+    return bytes(ForkingPickler.dumps(msg))
+
+
+def _value(status: Outcome | str, value: Any) -> Any:
+    """A worker's reply as a value, or the error it stands for."""
+    if status == Outcome.OK:
+        return value
+    if status == Outcome.BUNDLE:
+        raise BundleError(value)
+    raise UnavailableError(f"inference failed: {value}")
+
+
+def _unpack(value: Any) -> RunReply:
+    """A :class:`Run` reply as the batcher uses it: each text's JSON as an ``orjson.Fragment``, arrays from bytes."""
+    replies, tokens, unknown, truncated, best, top, counts = value
+    return (
+        [orjson.Fragment(r) for r in replies],
+        tokens,
+        unknown,
+        truncated,
+        np.frombuffer(best, dtype=np.int32),
+        np.frombuffer(top, dtype=np.float64),
+        None if counts is None else np.frombuffer(counts, dtype=np.int64),
+    )
+
+
+def _copy_outcome(src: asyncio.Future[RunReply], dst: asyncio.Future[RunReply]) -> None:
+    """When ``src`` ends, end ``dst`` the same way (unless it was cancelled meanwhile)."""
+
+    def copy(f: asyncio.Future[RunReply]) -> None:
+        if dst.done():
+            return
+        if f.cancelled():
+            dst.cancel()
+        elif (exc := f.exception()) is not None:
+            dst.set_exception(exc)
+        else:
+            dst.set_result(f.result())
+
+    src.add_done_callback(copy)
 
 
 _context_lock = threading.Lock()
@@ -270,7 +328,8 @@ class _Worker:
                 fut.set_exception(_Died())
             conn.close()
 
-    def submit(self, msg: Message) -> tuple[int, Future[tuple[Outcome, Any]]]:
+    def submit(self, msg: Message, payload: bytes | None = None) -> tuple[int, Future[tuple[Outcome, Any]]]:
+        """Put ``msg`` in the worker's pipe (as ``payload`` when the caller has pickled it already)."""
         fut: Future[tuple[Outcome, Any]] = Future()
         with self.send_lock:
             gen = self.generation
@@ -278,7 +337,10 @@ class _Worker:
                 raise _Died()
             self.pending.append(fut)
             try:
-                self.conn.send(msg)
+                if payload is not None:
+                    self.conn.send_bytes(payload)
+                else:
+                    self.conn.send(msg)
             except (OSError, ValueError) as exc:
                 self.pending.remove(fut)
                 raise _Died() from exc
@@ -298,11 +360,7 @@ class _Worker:
                 raise UnavailableError(
                     "an inference worker stopped while running this request; it has been replaced: retry"
                 ) from exc
-            if status == Outcome.OK:
-                return value
-            if status == Outcome.BUNDLE:
-                raise BundleError(value)
-            raise UnavailableError(f"inference failed: {value}")
+            return _value(status, value)
         raise AssertionError("unreachable")
 
     def _replace(self, gen: int) -> None:
@@ -417,17 +475,59 @@ class WorkerProcesses:
         """Reply per text as an ``orjson.Fragment`` (JSON made by the worker), batch counts, each
         text's label index and probability, and (with ``drift``) the batch's drift counts. Results
         whose top probability is below ``review`` are marked needs_review."""
-        w = self._worker(index, key)
-        replies, tokens, unknown, truncated, best, top, counts = w.call(Run(key, texts, ks, review, drift), retry=True)
-        return (
-            [orjson.Fragment(r) for r in replies],
-            tokens,
-            unknown,
-            truncated,
-            np.frombuffer(best, dtype=np.int32),
-            np.frombuffer(top, dtype=np.float64),
-            None if counts is None else np.frombuffer(counts, dtype=np.int64),
-        )
+        return _unpack(self._worker(index, key).call(Run(key, texts, ks, review, drift), retry=True))
+
+    def run_async(
+        self,
+        key: Key,
+        texts: list[str],
+        ks: list[int],
+        review: float | None,
+        *,
+        drift: bool,
+        executor: Executor,
+    ) -> asyncio.Future[RunReply]:
+        """:meth:`run` from the event loop, with no inference thread in between: the batch goes
+        into the least busy worker's pipe from here, and the worker's reply thread hands the reply
+        straight back to the loop. Each hand-over between threads waits its turn for the GIL behind
+        whatever the loop is running, so the threaded path's three per batch cost single-text
+        requests most of their latency (bench/README.md). A batch too large to be sure of fitting in
+        the pipe, and the retry after a worker died, run on ``executor`` instead (both block)."""
+        loop = asyncio.get_running_loop()
+        msg = Run(key, texts, ks, review, drift)
+        w = min(self._holding(key), key=lambda w: len(w.pending))
+        payload = pickled(msg)
+        if len(payload) > SEND_FROM_LOOP_MAX_BYTES:
+            return loop.run_in_executor(executor, lambda: _unpack(w.call(msg, retry=True)))
+        result: asyncio.Future[RunReply] = loop.create_future()
+        try:
+            gen, fut = w.submit(msg, payload)
+        except _Died:
+            gen = w.generation
+            _copy_outcome(loop.run_in_executor(executor, self._run_again, w, gen, msg), result)
+            return result
+
+        def settle(f: Future[tuple[Outcome, Any]]) -> None:  # on the loop
+            if result.done():
+                return
+            exc = f.exception()
+            if isinstance(exc, _Died):  # as call(): replace the worker, try once more on the new one
+                _copy_outcome(loop.run_in_executor(executor, self._run_again, w, gen, msg), result)
+                return
+            try:
+                if exc is not None:
+                    raise exc
+                result.set_result(_unpack(_value(*f.result())))
+            except (BundleError, UnavailableError) as error:
+                result.set_exception(error)
+
+        fut.add_done_callback(lambda f: loop.call_soon_threadsafe(settle, f))  # on the reply thread
+        return result
+
+    def _run_again(self, w: _Worker, gen: int, msg: Run) -> RunReply:
+        """Blocking: replace worker ``w`` (dead since generation ``gen``) and run ``msg`` on it once more."""
+        w._replace(gen)
+        return _unpack(w.call(msg, retry=False))
 
     def score(self, index: int, key: Key, texts: list[str]) -> Any:
         """Calibrated probabilities of ``texts`` (rows in order, columns in the version's label order)."""
@@ -439,6 +539,12 @@ class WorkerProcesses:
         if key not in w.loaded:
             raise UnavailableError(f"model {key[0]} version {key[1]} is not loaded in inference worker {index}")
         return w
+
+    def _holding(self, key: Key) -> list[_Worker]:
+        held = [w for w in self.workers if key in w.loaded]
+        if not held:
+            raise UnavailableError(f"model {key[0]} version {key[1]} is not loaded in any inference worker")
+        return held
 
     def held(self) -> list[list[Key]]:
         """What each worker process itself says it has loaded (for tests and diagnostics)."""

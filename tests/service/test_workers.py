@@ -70,11 +70,11 @@ async def test_a_worker_that_keeps_dying_gives_503_not_500(registry_dir: Path, m
         worker = app.state.pool.procs.workers[0]
         real = worker.submit
 
-        def dies(msg: Message) -> tuple[int, Future[tuple[Outcome, Any]]]:
+        def dies(msg: Message, payload: bytes | None = None) -> tuple[int, Future[tuple[Outcome, Any]]]:
             if isinstance(msg, Run):  # the worker dies with the batch in its pipe, every time
                 os.kill(worker.proc.pid, signal.SIGKILL)
                 worker.proc.join(5)
-            return real(msg)
+            return real(msg, payload)
 
         monkeypatch.setattr(worker, "submit", dies)
         r = await client.post("/v1/predict", json={"texts": TEXTS[:2]})
@@ -176,3 +176,31 @@ async def test_head_waits_for_the_body_and_both_go_out_back_to_back() -> None:
 
     await HeadWithBodyMiddleware(app)({"type": "http"}, None, server_send)  # type: ignore[arg-type]
     assert sent == ["app: head handed on", "http.response.start", "http.response.body"]
+
+
+async def test_batches_go_from_the_event_loop_to_the_worker_with_no_inference_thread(
+    registry_dir: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The default path hands a batch to a worker process from the event loop; a batch too large to
+    # be sure of fitting in the pipe goes from an inference thread instead. Both answer the same.
+    from textsieve.service.inference import workers
+
+    async with serving(settings_for(registry_dir, inference="processes", workers=2)) as (app, client):
+        executor = app.state.pool.executor
+        handed: list[object] = []
+        real_submit = executor.submit
+
+        def counting(fn: Any, /, *args: Any, **kwargs: Any) -> Future[Any]:
+            handed.append(fn)
+            return real_submit(fn, *args, **kwargs)
+
+        monkeypatch.setattr(executor, "submit", counting)
+        body = {"texts": TEXTS, "spans": 3}
+        from_loop = await client.post("/v1/predict", json=body)
+        assert from_loop.status_code == 200, from_loop.text
+        assert handed == []  # no inference thread took part
+        monkeypatch.setattr(workers, "SEND_FROM_LOOP_MAX_BYTES", 0)
+        from_thread = await client.post("/v1/predict", json=body)
+        assert from_thread.status_code == 200, from_thread.text
+        assert len(handed) == 1
+        assert from_thread.json()["results"] == from_loop.json()["results"]
