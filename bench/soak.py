@@ -190,14 +190,22 @@ async def _swapper(http: Any, token: str, every: float, until: float, tally: Tal
     while time.monotonic() + every < until:
         await asyncio.sleep(every)
         if promote:
-            r = await http.post(
+            r = await _send(
+                http,
+                "POST",
                 f"/v1/models/{MODEL}/versions/2/promote",
+                tally,
+                "promote",
                 headers={"Authorization": f"Bearer {token}"},
                 json={"to": "live", "reason": "soak swap", "force": True},
             )
         else:
-            r = await http.post(
+            r = await _send(
+                http,
+                "POST",
                 f"/v1/models/{MODEL}/rollback",
+                tally,
+                "rollback",
                 headers={"Authorization": f"Bearer {token}"},
                 json={"reason": "soak swap back"},
             )
