@@ -38,7 +38,8 @@ class Encoded:
 
     text: str
     ids: list[int]
-    offsets: list[tuple[int, int]]
+    starts: list[int]  # each kept token's character offsets into ``text``
+    ends: list[int]
     tokens: int  # before truncation
     unknown: int  # unknown tokens among those kept
 
@@ -157,13 +158,13 @@ class Predictor:
 
     # -- encoding -------------------------------------------------------------------------
     def encode(self, text: str) -> Encoded:
-        tokens, offsets = self.tokenizer.split(text)
+        tokens, starts, ends = self.tokenizer.bounds(text)
         n = len(tokens)
         if n > self.max_length:
-            tokens = tokens[: self.max_length]
-            offsets = offsets[: self.max_length]
+            cut = self.max_length
+            tokens, starts, ends = tokens[:cut], starts[:cut], ends[:cut]
         ids = self.vocab.encode(tokens)
-        return Encoded(text, ids, offsets, n, ids.count(self.vocab.unk_id))
+        return Encoded(text, ids, starts, ends, n, ids.count(self.vocab.unk_id))
 
     # -- the graph ------------------------------------------------------------------------
     def run_arrays(self, token_ids: NDArray[np.int64], lengths: NDArray[np.int64]) -> list[NDArray]:  # type: ignore[type-arg]
@@ -235,7 +236,7 @@ class Predictor:
         name = self.labels[label]
         result = []
         for s, e, w, members in merged[:k]:
-            cs, ce = enc.offsets[s][0], enc.offsets[e - 1][1]
+            cs, ce = enc.starts[s], enc.ends[e - 1]
             result.append(Span(cs, ce, enc.text[cs:ce], name, float(w), e - s, s, e, sorted(members)))
         return result
 
