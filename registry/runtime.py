@@ -23,6 +23,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from textsieve.registry.bundle import Bundle, open_bundle
+from textsieve.registry.encoder import Encoder
 from textsieve.registry.measures import softmax
 from textsieve.registry.tokenizer import Tokenizer, Vocabulary
 
@@ -133,6 +134,7 @@ class Predictor:
         self.temperature = temperature
         self.tokenizer = tokenizer
         self.vocab = vocab
+        self.encoder = Encoder(tokenizer, vocab)
         self.max_length = max_length
         self.min_length = min_length
         self.filter_widths = np.asarray(filter_widths, dtype=np.int64)
@@ -158,12 +160,11 @@ class Predictor:
 
     # -- encoding -------------------------------------------------------------------------
     def encode(self, text: str) -> Encoded:
-        tokens, starts, ends = self.tokenizer.bounds(text)
-        n = len(tokens)
+        ids, starts, ends = self.encoder(text)
+        n = len(ids)
         if n > self.max_length:
             cut = self.max_length
-            tokens, starts, ends = tokens[:cut], starts[:cut], ends[:cut]
-        ids = self.vocab.encode(tokens)
+            ids, starts, ends = ids[:cut], starts[:cut], ends[:cut]
         return Encoded(text, ids, starts, ends, n, ids.count(self.vocab.unk_id))
 
     # -- the graph ------------------------------------------------------------------------

@@ -281,27 +281,33 @@ class Tokenizer:
         adding up their offsets runs at C speed; Python runs per token only where a token needs
         normalising on its own.
         """
-        if text.isascii():
-            # ASCII case folding keeps every character in place, so the folded text can be
-            # split directly and its pieces are already normalised.
-            pieces = _SIMPLE_SPLIT(text.lower() if self._fold else text)
+        whole = self.fold_whole(text)
+        if whole is not None:
+            pieces = whole[1](whole[0])
             tokens = pieces[1::2]
         else:
             route = self._route(text)
-            if route is None:
-                pieces = self._full_split(text)
-                tokens = list(map(self.normalize, pieces[1::2]))
-            elif route[1]:
-                # Likewise when every character folds in place (see _Route): fold once, split once.
-                pieces = route[0]((text.casefold() if self._fold else text).replace("\u2019", "'"))
-                tokens = pieces[1::2]
-            else:
-                pieces = route[0](text)
-                tokens = list(map(self.normalize, pieces[1::2]))
+            pieces = (self._full_split if route is None else route[0])(text)
+            tokens = list(map(self.normalize, pieces[1::2]))
         # Running sums of the pieces' lengths: even entries are where tokens start, odd ones where
         # they end, the last is the text's length.
         edges = list(itertools.accumulate(map(len, pieces)))
         return tokens, edges[0:-1:2], edges[1::2]
+
+    def fold_whole(self, text: str) -> tuple[str, _Split] | None:
+        """The text normalised whole, and the split that finds its tokens, when that is exact.
+
+        ASCII case folding keeps every character in place, and so does every character of a text
+        that :class:`_Route` lets fold whole: then the tokens are exactly the pattern's matches on
+        the normalised text, already normalised, at the same offsets. None for texts whose tokens
+        must be found first and normalised one by one.
+        """
+        if text.isascii():
+            return (text.lower() if self._fold else text), _SIMPLE_SPLIT
+        route = self._route(text)
+        if route is None or not route[1]:
+            return None
+        return (text.casefold() if self._fold else text).replace("\u2019", "'"), route[0]
 
     def split_slow(self, text: str) -> tuple[list[str], list[tuple[int, int]]]:
         """:meth:`split` with the full pattern only; the reference its fast paths are tested against."""
