@@ -24,6 +24,8 @@ from textsieve.registry.tokenizer import Tokenizer, Vocabulary
 # Chunks cached per pattern before the cache starts over: a few MB at most (a chunk's entry is
 # its string and a tuple of small ints), far more chunks than a language's common words.
 CAPACITY = 1 << 14
+# New chunks a text adds to the cache at most when it holds more than that many.
+LEARN_PER_TEXT = 4
 # A chunk whose tokens cannot be chained with the next chunk's: empty (two spaces in a row) or
 # ending in other whitespace, which would have to join the next chunk's first gap. Any value
 # that is not iterable makes the fast path fall back, as an uncached chunk (None) does.
@@ -65,6 +67,10 @@ class Encoder:
                 # Every chunk's first gap counts a space before it; the first chunk has none.
                 edges = list(accumulate(flat, initial=-1))
                 return ids, edges[1::2], edges[2::2]
+            # What Tokenizer.bounds does with a text folded whole, without folding it again.
+            pieces = split(folded)
+            edges = list(accumulate(map(len, pieces)))
+            return self.vocab.encode(pieces[1::2]), edges[0:-1:2], edges[1::2]
         tokens, starts, ends = self.tokenizer.bounds(text)
         return self.vocab.encode(tokens), starts, ends
 
@@ -78,19 +84,21 @@ class Encoder:
         """Tokenize and cache the chunks not cached yet; None when a chunk is irregular."""
         get = self.vocab.index.get
         unk = self.vocab.unk_id
+        # Learning a chunk costs more than its share of Tokenizer.bounds; a text of mostly new
+        # chunks learns a few of them and takes bounds, so it costs about what it did before
+        # the cache, and a word that recurs is learnt within a few texts.
+        budget = LEARN_PER_TEXT if entries.count(None) > LEARN_PER_TEXT else len(entries)
         for i, entry in enumerate(entries):
             if entry is None:
+                if not budget:
+                    return None
+                budget -= 1
                 chunk = chunks[i]
-                pieces = split(" " + chunk)
-                if pieces[-1]:  # also a chunk without tokens: its only piece is a gap
-                    entry = _IRREGULAR
+                if chunk.isascii() and chunk.isalnum():
+                    # Letters and digits only: one word under either pattern (no ideographs).
+                    entry = (get(chunk, unk), 1, len(chunk))
                 else:
-                    entry = tuple(
-                        chain.from_iterable(
-                            (get(tok, unk), len(gap), len(tok))
-                            for gap, tok in zip(pieces[0::2], pieces[1::2], strict=False)
-                        )
-                    )
+                    entry = self._tokenize(split, chunk, get, unk)
                 if len(cache) >= self.capacity:
                     cache.clear()
                 cache[chunk] = entries[i] = entry
@@ -98,5 +106,16 @@ class Encoder:
                 return None
         return list(chain.from_iterable(entries))  # type: ignore[arg-type]
 
+    @staticmethod
+    def _tokenize(split: Split, chunk: str, get: Callable[[str, int], int], unk: int) -> Entry:
+        pieces = split(" " + chunk)
+        if pieces[-1]:  # also a chunk without tokens: its only piece is a gap
+            return _IRREGULAR
+        entry: list[int] = []
+        for k in range(1, len(pieces), 2):
+            token = pieces[k]
+            entry += (get(token, unk), len(pieces[k - 1]), len(token))
+        return tuple(entry)
 
-__all__ = ["CAPACITY", "Encoder"]
+
+__all__ = ["CAPACITY", "LEARN_PER_TEXT", "Encoder"]

@@ -13,7 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from tests.registry.test_tokenizer import TRICKY
-from textsieve.registry.encoder import Encoder
+from textsieve.registry.encoder import LEARN_PER_TEXT, Encoder
 from textsieve.registry.tokenizer import PAD, UNK, Tokenizer, TokenizerSpec, Vocabulary
 
 CASEFOLD = Tokenizer()
@@ -100,3 +100,15 @@ def test_the_cache_never_holds_more_than_its_capacity() -> None:
         assert encoder(text) == _reference(CASEFOLD, vocab, text)
     assert encoder._caches
     assert all(len(cache) <= 4 for cache in encoder._caches.values())
+
+
+def test_a_text_of_mostly_new_chunks_learns_a_few_and_is_still_exact() -> None:
+    vocab = _vocab()
+    encoder = Encoder(CASEFOLD, vocab)
+    text = " ".join(f"new{i}," for i in range(10))  # 10 distinct chunks, all new
+    assert encoder(text) == _reference(CASEFOLD, vocab, text)
+    learnt = sum(len(cache) for cache in encoder._caches.values())
+    assert learnt == LEARN_PER_TEXT
+    for _ in range(3):  # each pass learns a few more, the last all that are left
+        assert encoder(text) == _reference(CASEFOLD, vocab, text)
+    assert sum(len(cache) for cache in encoder._caches.values()) == 10
