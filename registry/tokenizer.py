@@ -288,11 +288,24 @@ class Tokenizer:
         else:
             route = self._route(text)
             pieces = (self._full_split if route is None else route[0])(text)
-            tokens = list(map(self.normalize, pieces[1::2]))
+            tokens = self._normalize_each(pieces[1::2], text)
         # Running sums of the pieces' lengths: even entries are where tokens start, odd ones where
         # they end, the last is the text's length.
         edges = list(itertools.accumulate(map(len, pieces)))
         return tokens, edges[0:-1:2], edges[1::2]
+
+    def _normalize_each(self, tokens: list[str], text: str) -> list[str]:
+        """``[self.normalize(t) for t in tokens]``, normalising all of them in one go.
+
+        Tokens joined by U+0000 normalise as they would one by one: NFKC never composes,
+        reorders or decomposes across it (a starter that is no part of any composition or
+        decomposition, UAX #15), case folding and the apostrophe map one character at a time.
+        A text that contains U+0000 itself (a token of its own) takes the per-token way.
+        """
+        if not tokens or "\x00" in text:  # no tokens: the join would give one empty one
+            return list(map(self.normalize, tokens))
+        joined = unicodedata.normalize("NFKC", "\x00".join(tokens)).replace("\u2019", "'")
+        return (joined.casefold() if self._fold else joined).split("\x00")
 
     def fold_whole(self, text: str) -> tuple[str, _Split] | None:
         """The text normalised whole, and the split that finds its tokens, when that is exact.

@@ -177,6 +177,10 @@ def test_fast_paths_on_examples() -> None:
         "豈 compatibility 兀 ideographs",
         "a\u2019b 東\u3099 x",
         "Ωmega ohm\u2126 K\u212a",
+        # tokens normalised in one go (joined by U+0000): nothing may compose across the joins
+        "Straße \u1100 \u1161 e \u0301x \u0301",
+        "\u200b \u200d",
+        "ß\x00ß a\x00",
     ]:
         assert TOK.split(text) == TOK.split_slow(text), text
 
