@@ -23,6 +23,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from textsieve.registry.bundle import Bundle, open_bundle
+from textsieve.registry.encoder import Encoder
 from textsieve.registry.measures import softmax
 from textsieve.registry.tokenizer import Tokenizer, Vocabulary
 
@@ -38,7 +39,8 @@ class Encoded:
 
     text: str
     ids: list[int]
-    offsets: list[tuple[int, int]]
+    starts: list[int]  # each kept token's character offsets into ``text``
+    ends: list[int]
     tokens: int  # before truncation
     unknown: int  # unknown tokens among those kept
 
@@ -132,6 +134,7 @@ class Predictor:
         self.temperature = temperature
         self.tokenizer = tokenizer
         self.vocab = vocab
+        self.encoder = Encoder(tokenizer, vocab)
         self.max_length = max_length
         self.min_length = min_length
         self.filter_widths = np.asarray(filter_widths, dtype=np.int64)
@@ -157,13 +160,12 @@ class Predictor:
 
     # -- encoding -------------------------------------------------------------------------
     def encode(self, text: str) -> Encoded:
-        tokens, offsets = self.tokenizer.split(text)
-        n = len(tokens)
+        ids, starts, ends = self.encoder(text)
+        n = len(ids)
         if n > self.max_length:
-            tokens = tokens[: self.max_length]
-            offsets = offsets[: self.max_length]
-        ids = self.vocab.encode(tokens)
-        return Encoded(text, ids, offsets, n, ids.count(self.vocab.unk_id))
+            cut = self.max_length
+            ids, starts, ends = ids[:cut], starts[:cut], ends[:cut]
+        return Encoded(text, ids, starts, ends, n, ids.count(self.vocab.unk_id))
 
     # -- the graph ------------------------------------------------------------------------
     def run_arrays(self, token_ids: NDArray[np.int64], lengths: NDArray[np.int64]) -> list[NDArray]:  # type: ignore[type-arg]
@@ -235,7 +237,7 @@ class Predictor:
         name = self.labels[label]
         result = []
         for s, e, w, members in merged[:k]:
-            cs, ce = enc.offsets[s][0], enc.offsets[e - 1][1]
+            cs, ce = enc.starts[s], enc.ends[e - 1]
             result.append(Span(cs, ce, enc.text[cs:ce], name, float(w), e - s, s, e, sorted(members)))
         return result
 

@@ -9,11 +9,12 @@ afterwards, only to look it up in the vocabulary. That is what lets a span's
 from __future__ import annotations
 
 import functools
+import itertools
 import re
 import unicodedata
 import warnings
 from collections import Counter
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Literal
@@ -99,8 +100,27 @@ def _pattern(split_cjk: bool) -> re.Pattern[str]:
 
 # On text without combining marks, format characters or ideographs the full pattern reduces
 # to this one, which the regex engine runs several times faster; tests check that both give
-# the same tokens and offsets.
-_SIMPLE = re.compile("\\w+(?:['\u2019]\\w+)*|[^\\s\\w]")
+# the same tokens and offsets. The quantifiers are possessive (no backtracking): giving back
+# a word character could never let an apostrophe or the end of a word match, so the matches
+# are the same, found with less bookkeeping.
+_SIMPLE = re.compile("\\w++(?:['\u2019]\\w++)*+|[^\\s\\w]")
+
+
+def _capturing(pattern: re.Pattern[str]) -> re.Pattern[str]:
+    """``pattern`` as one capturing group, so that its ``split`` alternates gap, token, gap, ….
+
+    ``re.split`` then finds every token in one call at C speed, and the pieces' lengths add up to
+    the offsets; no Python runs per token. The pattern must not capture anything itself, or its
+    groups would appear among the pieces.
+    """
+    if pattern.groups:
+        raise ValueError(f"a token pattern must have no capturing groups, this one has {pattern.groups}")
+    return re.compile(f"({pattern.pattern})", pattern.flags)
+
+
+# A capturing pattern's bound ``split``: text → [gap, token, gap, token, …, gap].
+_Split = Callable[[str], list[str]]
+_SIMPLE_SPLIT: _Split = _capturing(_SIMPLE).split
 
 
 _NON_ASCII = re.compile("[^\x00-\x7f]")
@@ -120,8 +140,18 @@ HANGUL_COMPOSING = frozenset(chr(cp) for cp in (*range(0x1161, 0x1176), *range(0
 def _cjk_simple() -> re.Pattern[str]:
     """The full pattern for text with ideographs but no combining marks or format characters."""
     cjk = "".join(_class_range(lo, hi) for lo, hi in _CJK_RANGES)
-    word = f"[^\\W{cjk}]+(?:['\u2019][^\\W{cjk}]+)*"
+    word = f"[^\\W{cjk}]++(?:['\u2019][^\\W{cjk}]++)*+"
     return re.compile(f"{word}|[{cjk}]|[^\\s\\w]")
+
+
+@functools.cache
+def _cjk_simple_split() -> _Split:
+    return _capturing(_cjk_simple()).split
+
+
+@functools.cache
+def _full_split(split_cjk: bool) -> _Split:
+    return _capturing(_pattern(split_cjk)).split
 
 
 class _Route:
@@ -142,22 +172,34 @@ class _Route:
     def __init__(self, split_cjk: bool, fold: bool) -> None:
         self.split_cjk = split_cjk
         self.fold = fold
-        self.known: dict[str, tuple[bool, bool, bool]] = {}
+        # Each character seen is in ``seen`` and in the sets of the facts that hold for it; a
+        # text's route is then a few set operations on its distinct non-ASCII characters. A
+        # character joins ``seen`` last, so another thread never finds it with facts missing.
+        self.seen: set[str] = set()
+        self.full: set[str] = set()
+        self.cjk: set[str] = set()
+        self.unfolding: set[str] = set()
 
-    def __call__(self, text: str) -> tuple[re.Pattern[str], bool] | None:
-        """(pattern, fold the whole text first), or None for the full pattern."""
-        known = self.known
-        cjk = False
-        whole = True
-        for c in _NON_ASCII.findall(text):
-            facts = known.get(c)
-            if facts is None:
-                facts = known[c] = self._facts(c)
-            if facts[0]:
-                return None
-            cjk = cjk or facts[1]
-            whole = whole and facts[2]
-        return (_cjk_simple() if cjk else _SIMPLE), whole
+    def __call__(self, text: str) -> tuple[_Split, bool] | None:
+        """(the pattern's split, fold the whole text first), or None for the full pattern."""
+        chars = set(_NON_ASCII.findall(text))
+        if not chars <= self.seen:
+            self._learn(chars - self.seen)
+        if not chars.isdisjoint(self.full):
+            return None
+        split = _SIMPLE_SPLIT if chars.isdisjoint(self.cjk) else _cjk_simple_split()
+        return split, chars.isdisjoint(self.unfolding)
+
+    def _learn(self, chars: set[str]) -> None:
+        for c in chars:
+            full, cjk, fold = self._facts(c)
+            if full:
+                self.full.add(c)
+            if cjk:
+                self.cjk.add(c)
+            if not fold:
+                self.unfolding.add(c)
+            self.seen.add(c)
 
     def _facts(self, c: str) -> tuple[bool, bool, bool]:
         cp = ord(c)
@@ -213,6 +255,7 @@ class Tokenizer:
         self.spec = spec or TokenizerSpec()
         _check_unicode_version(self.spec)
         self._finditer = _pattern(self.spec.split_cjk).finditer
+        self._full_split = _full_split(self.spec.split_cjk)
         self._fold = self.spec.case == "casefold"
         self._route = _Route(self.spec.split_cjk, self._fold)
 
@@ -227,25 +270,57 @@ class Tokenizer:
 
     def split(self, text: str) -> tuple[list[str], list[tuple[int, int]]]:
         """Normalised tokens and their (start, end) offsets, as two parallel lists."""
+        tokens, starts, ends = self.bounds(text)
+        return tokens, list(zip(starts, ends, strict=True))
+
+    def bounds(self, text: str) -> tuple[list[str], list[int], list[int]]:
+        """Normalised tokens, their start offsets and their end offsets, as three parallel lists.
+
+        What :meth:`split` gives, without a tuple per token. Each route splits the text with a
+        capturing pattern (gap, token, gap, …, see :func:`_capturing`), so finding the tokens and
+        adding up their offsets runs at C speed; Python runs per token only where a token needs
+        normalising on its own.
+        """
+        whole = self.fold_whole(text)
+        if whole is not None:
+            pieces = whole[1](whole[0])
+            tokens = pieces[1::2]
+        else:
+            route = self._route(text)
+            pieces = (self._full_split if route is None else route[0])(text)
+            tokens = self._normalize_each(pieces[1::2], text)
+        # Running sums of the pieces' lengths: even entries are where tokens start, odd ones where
+        # they end, the last is the text's length.
+        edges = list(itertools.accumulate(map(len, pieces)))
+        return tokens, edges[0:-1:2], edges[1::2]
+
+    def _normalize_each(self, tokens: list[str], text: str) -> list[str]:
+        """``[self.normalize(t) for t in tokens]``, normalising all of them in one go.
+
+        Tokens joined by U+0000 normalise as they would one by one: NFKC never composes,
+        reorders or decomposes across it (a starter that is no part of any composition or
+        decomposition, UAX #15), case folding and the apostrophe map one character at a time.
+        A text that contains U+0000 itself (a token of its own) takes the per-token way.
+        """
+        if not tokens or "\x00" in text:  # no tokens: the join would give one empty one
+            return list(map(self.normalize, tokens))
+        joined = unicodedata.normalize("NFKC", "\x00".join(tokens)).replace("\u2019", "'")
+        return (joined.casefold() if self._fold else joined).split("\x00")
+
+    def fold_whole(self, text: str) -> tuple[str, _Split] | None:
+        """The text normalised whole, and the split that finds its tokens, when that is exact.
+
+        ASCII case folding keeps every character in place, and so does every character of a text
+        that :class:`_Route` lets fold whole: then the tokens are exactly the pattern's matches on
+        the normalised text, already normalised, at the same offsets. None for texts whose tokens
+        must be found first and normalised one by one.
+        """
         if text.isascii():
-            # ASCII case folding keeps every character in place, so the folded text can be
-            # matched directly and its pieces are already normalised.
-            matches = list(_SIMPLE.finditer(text.lower() if self._fold else text))
-            return [m.group() for m in matches], [m.span() for m in matches]
+            return (text.lower() if self._fold else text), _SIMPLE_SPLIT
         route = self._route(text)
-        if route is not None and route[1]:
-            # Likewise when every character folds in place (see _Route): fold once, match once.
-            folded = (text.casefold() if self._fold else text).replace("\u2019", "'")
-            matches = list(route[0].finditer(folded))
-            return [m.group() for m in matches], [m.span() for m in matches]
-        finditer = self._finditer if route is None else route[0].finditer
-        norm = self.normalize
-        tokens: list[str] = []
-        offsets: list[tuple[int, int]] = []
-        for m in finditer(text):
-            tokens.append(norm(m.group()))
-            offsets.append(m.span())
-        return tokens, offsets
+        if route is None or not route[1]:
+            return None
+        return (text.casefold() if self._fold else text).replace("\u2019", "'"), route[0]
 
     def split_slow(self, text: str) -> tuple[list[str], list[tuple[int, int]]]:
         """:meth:`split` with the full pattern only; the reference its fast paths are tested against."""
@@ -281,9 +356,7 @@ class Vocabulary:
         return cls([PAD, UNK, *kept])
 
     def encode(self, tokens: Iterable[str]) -> list[int]:
-        get = self.index.get
-        unk = self.unk_id
-        return [get(t, unk) for t in tokens]
+        return list(map(self.index.get, tokens, itertools.repeat(self.unk_id)))
 
     def dumps(self) -> str:
         return "".join(t + "\n" for t in self.tokens)

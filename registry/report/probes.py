@@ -97,7 +97,7 @@ def in_band(lengths: NDArray[np.int64], band: tuple[int, int | None]) -> NDArray
 # -- the probe ------------------------------------------------------------------------------------
 def _reordered(enc: Encoded, order: NDArray[np.int64]) -> Encoded:
     ids = enc.ids
-    return Encoded(enc.text, [ids[i] for i in order.tolist()], [], len(ids), enc.unknown)
+    return Encoded(enc.text, [ids[i] for i in order.tolist()], [], [], len(ids), enc.unknown)
 
 
 def reorder_text(pieces: Sequence[str], order: NDArray[np.int64]) -> str:

@@ -104,7 +104,7 @@ def _spans(
         g_row[chosen].tolist(), g_start[chosen].tolist(), g_end[chosen].tolist(), g_weight[chosen].tolist(), strict=True
     ):
         enc = encoded[r]
-        cs, ce = enc.offsets[s][0], enc.offsets[e - 1][1]
+        cs, ce = enc.starts[s], enc.ends[e - 1]
         found[r].append(
             {"start": cs, "end": ce, "text": enc.text[cs:ce], "label": labels[best[r]], "weight": w, "width": e - s}
         )

@@ -214,7 +214,7 @@ def test_pad_places_each_text_at_the_left_of_its_row(tiny_bundles: dict[str, Pat
     rng = random.Random(5)
     for _ in range(50):
         batch = [
-            Encoded("", [rng.randrange(2, 50) for _ in range(rng.randrange(0, 12))], [], 0, 0)
+            Encoded("", [rng.randrange(2, 50) for _ in range(rng.randrange(0, 12))], [], [], 0, 0)
             for _ in range(rng.randrange(1, 9))
         ]
         for width in (None, p.max_length):

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import sys
 import unicodedata
 import warnings
@@ -132,6 +133,29 @@ def test_fast_paths_equal_the_full_pattern(text: str) -> None:
     # split() takes ASCII and "plain Unicode" shortcuts; split_slow() uses only the full
     # pattern. They must agree token for token and offset for offset.
     assert TOK.split(text) == TOK.split_slow(text)
+    tokens, starts, ends = TOK.bounds(text)
+    assert (tokens, list(zip(starts, ends, strict=True))) == TOK.split_slow(text)
+
+
+KEEP = Tokenizer(TokenizerSpec(case="keep", split_cjk=False))
+
+
+@settings(max_examples=600, deadline=None)
+@given(st.one_of(_texts(), st.text(max_size=40)))
+def test_fast_paths_equal_the_full_pattern_when_case_is_kept(text: str) -> None:
+    # The other spec: nothing folded, ideographs inside words; the same routes, other patterns.
+    assert KEEP.split(text) == KEEP.split_slow(text)
+
+
+def test_a_token_pattern_that_captures_is_refused() -> None:
+    # bounds() reads tokens as every second piece of a capturing split (gap, token, gap, ...);
+    # a group inside the pattern would put its own pieces among them (re.split's documented
+    # behaviour), so building such a splitter must fail loudly.
+    from textsieve.registry.tokenizer import _capturing
+
+    with pytest.raises(ValueError, match="no capturing groups"):
+        _capturing(re.compile("(\\w)+|[^\\s\\w]"))
+    assert _capturing(re.compile("\\w+|[^\\s\\w]")).split("a, b") == ["", "a", "", ",", " ", "b", ""]
 
 
 def test_fast_paths_on_examples() -> None:
@@ -153,6 +177,10 @@ def test_fast_paths_on_examples() -> None:
         "豈 compatibility 兀 ideographs",
         "a\u2019b 東\u3099 x",
         "Ωmega ohm\u2126 K\u212a",
+        # tokens normalised in one go (joined by U+0000): nothing may compose across the joins
+        "Straße \u1100 \u1161 e \u0301x \u0301",
+        "\u200b \u200d",
+        "ß\x00ß a\x00",
     ]:
         assert TOK.split(text) == TOK.split_slow(text), text
 

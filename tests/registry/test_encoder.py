@@ -1,0 +1,114 @@
+"""Encoder: the serving path's ids and offsets equal the reference tokenizer's, cached or not.
+
+The reference is ``Tokenizer.split_slow`` (the full token pattern, each token normalised on its
+own: the spec in registry/tokenizer.py) followed by ``Vocabulary.encode``. The encoder caches
+the tokens of space-separated chunks, so each case runs cold and warm, with a cache large
+enough to keep everything and with one that starts over every few chunks.
+"""
+
+from __future__ import annotations
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from tests.registry.test_tokenizer import TRICKY
+from textsieve.registry.encoder import LEARN_PER_TEXT, Encoder
+from textsieve.registry.tokenizer import PAD, UNK, Tokenizer, TokenizerSpec, Vocabulary
+
+CASEFOLD = Tokenizer()
+KEEP = Tokenizer(TokenizerSpec(case="keep", split_cjk=False))
+WORDS = ["team", "the", "app", ",", ".", "don't", "café", "東", "straße", "strasse", "ß", "ok", "!", "i̇stanbul"]
+
+
+def _vocab() -> Vocabulary:
+    return Vocabulary([PAD, UNK, *WORDS])
+
+
+def _reference(tok: Tokenizer, vocab: Vocabulary, text: str) -> tuple[list[int], list[int], list[int]]:
+    tokens, offsets = tok.split_slow(text)
+    return vocab.encode(tokens), [s for s, _ in offsets], [e for _, e in offsets]
+
+
+def _texts() -> st.SearchStrategy[str]:
+    # Words the vocabulary knows, the tokenizer's hard characters, and every kind of gap:
+    # single and double spaces, newlines, tabs, no-break spaces, leading and trailing ones.
+    pieces = st.one_of(
+        st.sampled_from(WORDS + [w.upper() for w in WORDS] + TRICKY),
+        st.text(max_size=6),
+        st.sampled_from([" ", " ", " ", "  ", "\n", "\t", "\u00a0", ",", "'", "\u2019"]),
+    )
+    return st.lists(pieces, max_size=24).map("".join)
+
+
+@pytest.mark.parametrize("tok", [CASEFOLD, KEEP], ids=["casefold", "case kept"])
+@pytest.mark.parametrize("capacity", [1 << 14, 3], ids=["cache keeps all", "cache starts over"])
+@settings(max_examples=300, deadline=None)
+@given(texts=st.lists(_texts(), min_size=1, max_size=6))
+def test_ids_and_offsets_equal_the_reference_cold_and_warm(tok: Tokenizer, capacity: int, texts: list[str]) -> None:
+    vocab = _vocab()
+    encoder = Encoder(tok, vocab, capacity=capacity)
+    for _ in range(2):  # the second pass finds the chunks cached
+        for text in texts:
+            assert encoder(text) == _reference(tok, vocab, text), text
+
+
+@pytest.mark.parametrize(
+    "text",
+    [
+        pytest.param("Hi team, the app.", id="ASCII, one chunk with a symbol"),
+        pytest.param("Hi  team", id="two spaces: an empty chunk"),
+        pytest.param(" team ", id="leading and trailing space"),
+        pytest.param("team\n", id="a chunk ending in a newline"),
+        pytest.param("team\n ok", id="a chunk ending in a newline, then another chunk"),
+        pytest.param("team\t\u00a0 the,  app ", id="tab and no-break space before a space"),
+        pytest.param("team,\n\nthe app", id="newlines inside a chunk"),
+        pytest.param("", id="empty"),
+        pytest.param("Café STRASSE Straße", id="plain Unicode folded whole"),
+        pytest.param("team 東京 ok", id="ideographs: the other pattern"),
+        pytest.param("İstanbul ﬁ e\u0301 ok", id="tokens normalised one by one"),
+        pytest.param("DON’T don't", id="both apostrophes"),
+    ],
+)
+def test_examples_equal_the_reference(text: str) -> None:
+    vocab = _vocab()
+    encoder = Encoder(CASEFOLD, vocab)
+    assert encoder(text) == _reference(CASEFOLD, vocab, text)
+    assert encoder(text) == _reference(CASEFOLD, vocab, text)
+
+
+def test_ideographs_take_their_own_pattern_and_cache() -> None:
+    # With ideographs split, "東京," is two ideographs and a comma; with split_cjk off (the
+    # case-kept spec here) it is one word and a comma. Chunks such as "team," occur in texts of
+    # both routes of one encoder.
+    vocab = _vocab()
+    cjk = Encoder(CASEFOLD, vocab)
+    kept = Encoder(KEEP, vocab)
+    for text in ["team, ok", "東京, team, ok", "team,", "東京,", "ok 東京,"]:
+        assert cjk(text) == _reference(CASEFOLD, vocab, text)
+        assert kept(text) == _reference(KEEP, vocab, text)
+    assert cjk("東京,")[0] == [vocab.index["東"], vocab.unk_id, vocab.index[","]]
+    assert kept("東京,")[0] == [vocab.unk_id, vocab.index[","]]
+    assert len(cjk._caches) == 2
+
+
+def test_the_cache_never_holds_more_than_its_capacity() -> None:
+    vocab = _vocab()
+    encoder = Encoder(CASEFOLD, vocab, capacity=4)
+    for i in range(50):
+        text = f"w{i} the app, team{i % 7}"
+        assert encoder(text) == _reference(CASEFOLD, vocab, text)
+    assert encoder._caches
+    assert all(len(cache) <= 4 for cache in encoder._caches.values())
+
+
+def test_a_text_of_mostly_new_chunks_learns_a_few_and_is_still_exact() -> None:
+    vocab = _vocab()
+    encoder = Encoder(CASEFOLD, vocab)
+    text = " ".join(f"new{i}," for i in range(10))  # 10 distinct chunks, all new
+    assert encoder(text) == _reference(CASEFOLD, vocab, text)
+    learnt = sum(len(cache) for cache in encoder._caches.values())
+    assert learnt == LEARN_PER_TEXT
+    for _ in range(3):  # each pass learns a few more, the last all that are left
+        assert encoder(text) == _reference(CASEFOLD, vocab, text)
+    assert sum(len(cache) for cache in encoder._caches.values()) == 10
