@@ -26,6 +26,9 @@ from textsieve.registry.tokenizer import Tokenizer, Vocabulary
 CAPACITY = 1 << 14
 # New chunks a text adds to the cache at most when it holds more than that many.
 LEARN_PER_TEXT = 4
+# Longer chunks are never cached, so the cache's memory stays bounded (CAPACITY × this many
+# characters, a few MB) whatever a caller sends: a text of long unbroken chunks takes bounds.
+MAX_CHUNK_CHARS = 40
 # A chunk whose tokens cannot be chained with the next chunk's: empty (two spaces in a row) or
 # ending in other whitespace, which would have to join the next chunk's first gap. Any value
 # that is not iterable makes the fast path fall back, as an uncached chunk (None) does.
@@ -94,6 +97,8 @@ class Encoder:
                     return None
                 budget -= 1
                 chunk = chunks[i]
+                if len(chunk) > MAX_CHUNK_CHARS:
+                    return None
                 if chunk.isascii() and chunk.isalnum():
                     # Letters and digits only: one word under either pattern (no ideographs).
                     entry = (get(chunk, unk), 1, len(chunk))
@@ -118,4 +123,4 @@ class Encoder:
         return tuple(entry)
 
 
-__all__ = ["CAPACITY", "LEARN_PER_TEXT", "Encoder"]
+__all__ = ["CAPACITY", "LEARN_PER_TEXT", "MAX_CHUNK_CHARS", "Encoder"]

@@ -13,7 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from tests.registry.test_tokenizer import TRICKY
-from textsieve.registry.encoder import LEARN_PER_TEXT, Encoder
+from textsieve.registry.encoder import LEARN_PER_TEXT, MAX_CHUNK_CHARS, Encoder
 from textsieve.registry.tokenizer import PAD, UNK, Tokenizer, TokenizerSpec, Vocabulary
 
 CASEFOLD = Tokenizer()
@@ -112,3 +112,16 @@ def test_a_text_of_mostly_new_chunks_learns_a_few_and_is_still_exact() -> None:
     for _ in range(3):  # each pass learns a few more, the last all that are left
         assert encoder(text) == _reference(CASEFOLD, vocab, text)
     assert sum(len(cache) for cache in encoder._caches.values()) == 10
+
+
+def test_long_chunks_are_never_cached_and_still_exact() -> None:
+    # A caller sending long unbroken chunks must not grow the cache by their length.
+    vocab = _vocab()
+    encoder = Encoder(CASEFOLD, vocab)
+    long_chunk = "x" * (MAX_CHUNK_CHARS + 1)
+    text = f"the {long_chunk} app"
+    for _ in range(3):
+        assert encoder(text) == _reference(CASEFOLD, vocab, text)
+    cached = {chunk for cache in encoder._caches.values() for chunk in cache}
+    assert long_chunk not in cached
+    assert all(len(chunk) <= MAX_CHUNK_CHARS for chunk in cached)
