@@ -17,7 +17,12 @@ read replayed: a body, limit or header the app refuses (it words those refusals)
 content type, a chunked body, a client that went away, a replica without its models yet.
 Refusals once the request is valid (an unknown model or version, overloaded, deadline passed,
 unavailable) are rendered by :func:`textsieve.service.web.problems.render`, as the app's
-exception handlers render them. tests/service/test_lane.py compares both paths reply by reply.
+exception handlers render them (one difference: an unexpected error's 500 carries the
+X-Request-Id header here, which the app's outermost error layer cannot add).
+tests/service/test_lane.py compares both paths reply by reply.
+
+A middleware added to the app never sees the requests the lane answers: whatever it should do
+for predictions has to be done here too.
 """
 
 from __future__ import annotations
