@@ -38,7 +38,6 @@ def main() -> None:
 
     from textsieve.service import logs
     from textsieve.service.settings import Settings
-    from textsieve.service.web.access import AccessMiddleware
     from textsieve.service.web.app import create_app
     from textsieve.service.web.bodylimit import BodyLimitMiddleware
 
@@ -47,9 +46,10 @@ def main() -> None:
     app = create_app(settings)
     if "body" not in keep:
         app.user_middleware = [m for m in app.user_middleware if m.cls is not BodyLimitMiddleware]
-    for m in app.user_middleware:
-        if m.cls is AccessMiddleware and "access" not in keep:
-            m.kwargs["guard"] = None
+        if app.lane is not None:
+            app.lane.budget = None
+    if "access" not in keep:
+        app.state.access.guard = None  # the access middleware's and the predict lane's
     config = uvicorn.Config(
         app,
         http=app.state.guard.protocol() if "protocol" in keep else "httptools",

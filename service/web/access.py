@@ -3,6 +3,8 @@
 A pure ASGI middleware (no response buffering). The request id is the caller's
 ``X-Request-Id`` when it is short and plain, else a fresh UUID4; it is echoed as a response
 header, put in problem bodies and logged, so a caller's report leads straight to the log line.
+The predict lane (:mod:`textsieve.service.web.lane`) answers most predictions without this
+middleware and books them through the same :func:`begin` and :meth:`Access.finish`.
 """
 
 from __future__ import annotations
@@ -31,31 +33,68 @@ def new_request_id() -> str:
     return f"{_ids.getrandbits(128):032x}"
 
 
+def begin(scope: Scope, given: str) -> tuple[str, float]:
+    """The request's id (``given``, the caller's X-Request-Id, when short and plain) and its
+    arrival time, both also put in its state."""
+    rid = given if _SAFE_ID.fullmatch(given) else new_request_id()
+    state = scope.setdefault("state", {})
+    state["request_id"] = rid
+    started = time.perf_counter()
+    state["received"] = started  # a caller's Textsieve-Deadline counts from here
+    return rid, started
+
+
 def _route(scope: Scope) -> str:
     route = scope.get("route")
     path = getattr(route, "path", None)
     return path if isinstance(path, str) else "unmatched"
 
 
-class AccessMiddleware:
-    def __init__(
-        self, app: ASGIApp, metrics: ServiceMetrics, enabled: bool = True, guard: ConnectionGuard | None = None
-    ) -> None:
-        self.app = app
+class Access:
+    """Where answered requests are booked: the HTTP metrics, the access log and the guard's count."""
+
+    def __init__(self, metrics: ServiceMetrics, enabled: bool = True, guard: ConnectionGuard | None = None) -> None:
         self.metrics = metrics
         self.enabled = enabled
         self.guard = guard  # counts and times the requests inside the app (service/web/transport.py)
+
+    def finish(self, scope: Scope, route: str, status: int, started: float, entered: float | None) -> None:
+        """Book one answered request; ``entered`` is when it entered the guard's count (None: it never did)."""
+        ended = time.perf_counter()
+        seconds = ended - started
+        guard = self.guard
+        if guard is not None and entered is not None:
+            guard.inflight -= 1
+            guard.request_finished(ended - entered, ended)
+        self.metrics.answered(scope["method"], route, status, seconds)
+        if self.enabled:
+            state = scope["state"]
+            fields: dict[str, Any] = {
+                "event": "request",
+                "request_id": state["request_id"],
+                "method": scope["method"],
+                "path": scope["path"],
+                "route": route,
+                "status": status,
+                "duration_ms": round(seconds * 1000, 3),
+                "client": (scope.get("client") or ("", 0))[0],
+            }
+            for key in ("model", "version", "texts"):
+                if key in state:
+                    fields[key] = state[key]
+            log.info("request", extra={"fields": fields})
+
+
+class AccessMiddleware:
+    def __init__(self, app: ASGIApp, access: Access) -> None:
+        self.app = app
+        self.access = access
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
             await self.app(scope, receive, send)
             return
-        given = Headers(scope=scope).get("x-request-id", "")
-        rid = given if _SAFE_ID.fullmatch(given) else new_request_id()
-        state = scope.setdefault("state", {})
-        state["request_id"] = rid
-        started = time.perf_counter()
-        state["received"] = started  # a caller's Textsieve-Deadline counts from here
+        rid, started = begin(scope, Headers(scope=scope).get("x-request-id", ""))
         status = 500
 
         async def send_with_id(message: Message) -> None:
@@ -69,7 +108,7 @@ class AccessMiddleware:
         # its whole body has arrived (at once when it has none), so slow or stalled uploads (bounded
         # by the body budget and the read deadline) neither fill the limit nor shrink it. Probes
         # stay outside it: a busy replica must still answer its liveness and readiness checks.
-        guard = None if scope["path"] in PROBE_PATHS else self.guard
+        guard = None if scope["path"] in PROBE_PATHS else self.access.guard
         entered: float | None = None
         app_receive = receive
         if guard is not None:
@@ -89,28 +128,7 @@ class AccessMiddleware:
         try:
             await self.app(scope, app_receive, send_with_id)
         finally:
-            ended = time.perf_counter()
-            seconds = ended - started
-            if guard is not None and entered is not None:
-                guard.inflight -= 1
-                guard.request_finished(ended - entered, ended)
-            route = _route(scope)
-            self.metrics.answered(scope["method"], route, status, seconds)
-            if self.enabled:
-                fields: dict[str, Any] = {
-                    "event": "request",
-                    "request_id": rid,
-                    "method": scope["method"],
-                    "path": scope["path"],
-                    "route": route,
-                    "status": status,
-                    "duration_ms": round(seconds * 1000, 3),
-                    "client": (scope.get("client") or ("", 0))[0],
-                }
-                for key in ("model", "version", "texts"):
-                    if key in state:
-                        fields[key] = state[key]
-                log.info("request", extra={"fields": fields})
+            self.access.finish(scope, _route(scope), status, started, entered)
 
 
-__all__ = ["AccessMiddleware"]
+__all__ = ["Access", "AccessMiddleware", "begin"]

@@ -20,8 +20,9 @@ from textsieve.service.modelset.registry_thread import RegistryThread
 from textsieve.service.settings import Settings, load_settings
 from textsieve.service.telemetry import ServiceMetrics
 from textsieve.service.web import admin, drift, health, openapi, page, predict, problems, reports, reviews, views
-from textsieve.service.web.access import AccessMiddleware
+from textsieve.service.web.access import Access, AccessMiddleware
 from textsieve.service.web.bodylimit import BodyBudget, BodyLimitMiddleware
+from textsieve.service.web.lane import LanedFastAPI, PredictLane
 from textsieve.service.web.onewrite import HeadWithBodyMiddleware
 from textsieve.service.web.transport import ConnectionGuard
 
@@ -37,7 +38,8 @@ def connection_guard(settings: Settings) -> ConnectionGuard:
     )
 
 
-def create_app(settings: Settings | None = None) -> FastAPI:
+def create_app(settings: Settings | None = None, *, fast_lane: bool = True) -> LanedFastAPI:
+    """The service's app; ``fast_lane=False`` leaves every request to FastAPI's stack (tests compare the two)."""
     settings = settings if settings is not None else load_settings()
     metrics = ServiceMetrics()
 
@@ -62,7 +64,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             metrics.watch_workers(None)
             metrics.live_loop.models = None
 
-    app = FastAPI(
+    app = LanedFastAPI(
         title="textsieve",
         version=__version__,
         summary="Convolutional text classifiers: calibrated probabilities and the n-gram spans behind them.",
@@ -83,8 +85,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         app.include_router(module.router)
     openapi.install(app)
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes, budget=budget)
-    app.add_middleware(AccessMiddleware, metrics=metrics, enabled=settings.access_log, guard=app.state.guard)
-    app.add_middleware(HeadWithBodyMiddleware)  # outermost of ours: see service/web/onewrite.py
+    app.state.access = access = Access(metrics, enabled=settings.access_log, guard=app.state.guard)
+    app.add_middleware(AccessMiddleware, access=access)
+    app.add_middleware(HeadWithBodyMiddleware)  # outermost of ours in the stack: see service/web/onewrite.py
+    if fast_lane:  # in front of the whole stack: see service/web/lane.py
+        app.lane = PredictLane(app.full, app.state, settings, metrics, access, budget)
     return app
 
 

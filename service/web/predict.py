@@ -2,16 +2,22 @@
 
 from __future__ import annotations
 
+import functools
 import math
 import time
+from collections.abc import Awaitable, Callable
+from dataclasses import dataclass
 from typing import Any
 
 import orjson
 from fastapi import APIRouter, Request, Response
 from starlette.background import BackgroundTask
+from starlette.types import Scope
 
 from textsieve.errors import InputError, LimitError
+from textsieve.service.modelset.model_set import ModelSet
 from textsieve.service.settings import Settings
+from textsieve.service.telemetry import ServiceMetrics
 from textsieve.service.web.deps import MetricsDep, ModelsDep, SettingsDep
 from textsieve.service.web.openapi import Tag
 from textsieve.service.web.problems import MEDIA_TYPE
@@ -22,8 +28,8 @@ MAX_DEADLINE_MS = 3_600_000
 DEADLINE_HEADER = "Textsieve-Deadline"
 
 
-def _deadline(raw: str, request: Request) -> float:
-    """The perf_counter time by which inference must start, from the header's milliseconds."""
+def deadline_at(raw: str, received: float) -> float:
+    """The perf_counter time by which inference must start: the header's milliseconds after ``received``."""
     try:
         ms = float(raw)
     except ValueError:
@@ -33,7 +39,6 @@ def _deadline(raw: str, request: Request) -> float:
             f"header {DEADLINE_HEADER}: {raw[:40]!r} is not allowed; give milliseconds, more than 0 "
             f"and at most {MAX_DEADLINE_MS}"
         )
-    received: float = getattr(request.state, "received", time.perf_counter())
     return received + ms / 1000.0
 
 
@@ -111,32 +116,50 @@ async def predict(
     # Read by hand rather than as a FastAPI Header parameter: validating an absent header costs
     # every request a few microseconds; the parameter is documented in openapi_extra above.
     raw = request.headers.get(DEADLINE_HEADER)
-    deadline = None if raw is None else _deadline(raw, request)
+    deadline = None if raw is None else deadline_at(raw, getattr(request.state, "received", time.perf_counter()))
+    answer = await classify(body, deadline, models, metrics, request.scope)
+    return Response(
+        answer.body,
+        media_type="application/json",
+        headers={"X-Model-Version": answer.model_version},
+        background=None if answer.after_reply is None else BackgroundTask(answer.after_reply),
+    )
+
+
+@dataclass(frozen=True, slots=True)
+class Answer:
+    """A prediction's reply body, its X-Model-Version, and what runs once it has been sent."""
+
+    body: bytes
+    model_version: str
+    after_reply: Callable[[], Awaitable[None]] | None
+
+
+async def classify(
+    body: PredictRequest, deadline: float | None, models: ModelSet, metrics: ServiceMetrics, scope: Scope
+) -> Answer:
+    """The work behind ``POST /v1/predict`` once the request is valid (the route and the lane,
+    :mod:`textsieve.service.web.lane`, both call it); the access log's fields go in ``scope``'s state."""
     served = await models.acquire(body.model, body.version)
-    background = None
+    after_reply = None
     try:
         assert served.batcher is not None
         if models.shadow_sample(served):
             results, scores = await served.batcher.submit_scored(body.texts, body.spans, deadline=deadline)
             # Offered to the shadow queue only once the reply has been sent (and never waited for).
             assert models.shadow is not None
-            background = BackgroundTask(
+            after_reply = functools.partial(
                 models.shadow.offer_after_reply, served.name, served.version, served.labels, body.texts, scores
             )
         else:
             results = await served.batcher.submit(body.texts, body.spans, deadline=deadline)
     finally:
         models.release(served)
-    state = request.state
-    state.model, state.version, state.texts = served.name, served.version, len(body.texts)
+    state = scope.setdefault("state", {})
+    state["model"], state["version"], state["texts"] = served.name, served.version, len(body.texts)
     metrics.for_version(served.name, served.version).requests.inc()
     payload = {"model": served.name, "version": served.version, "results": results}
-    return Response(
-        orjson.dumps(payload),
-        media_type="application/json",
-        headers={"X-Model-Version": f"{served.name}/{served.version}"},
-        background=background,
-    )
+    return Answer(orjson.dumps(payload), f"{served.name}/{served.version}", after_reply)
 
 
-__all__ = ["check_limits", "router"]
+__all__ = ["DEADLINE_HEADER", "Answer", "check_limits", "classify", "deadline_at", "router"]

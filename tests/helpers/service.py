@@ -72,9 +72,11 @@ def settings_for(registry: Path, **overrides: Any) -> Settings:
 
 
 @contextlib.asynccontextmanager
-async def serving(settings: Settings, *, ready: bool = True) -> AsyncIterator[tuple[Any, httpx.AsyncClient]]:
+async def serving(
+    settings: Settings, *, ready: bool = True, fast_lane: bool = True
+) -> AsyncIterator[tuple[Any, httpx.AsyncClient]]:
     """The app with its lifespan running, and an in-process client."""
-    app = create_app(settings)
+    app = create_app(settings, fast_lane=fast_lane)
     async with app.router.lifespan_context(app):
         transport = httpx.ASGITransport(app=app)
         async with httpx.AsyncClient(transport=transport, base_url="http://service.test", timeout=60) as client:
