@@ -176,7 +176,9 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
                 probs = p.probabilities(out.logits).astype(np.float64)
                 conn.send((Outcome.OK.value, (probs.shape[1], probs.tobytes())))
             elif isinstance(msg, Load):
-                checked = open_bundle(Path(msg.bundle))
+                # The server ran the whole check on this folder (service/modelset/loader.py); the
+                # files are re-hashed here, the graph check is not repeated.
+                checked = open_bundle(Path(msg.bundle), check_onnx=False)
                 p = Predictor.from_bundle(checked, threads=1, batch_size=msg.batch_size)
                 warm_and_check(p, list(checked.manifest.labels))
                 predictors[msg.key] = p
