@@ -2,7 +2,8 @@
 core (two single-thread sessions beat one two-thread session on this graph: design.md's measurements).
 
 A worker loads the bundle folder it is given once, when it starts; the parent has verified that
-folder against the registry's sha256 before any worker sees it. ``workers=0`` scores in the calling
+folder against the registry's sha256 before any worker sees it (see ``_load`` for what the worker
+checks again). ``workers=0`` scores in the calling
 process instead (tests, tiny files, and machines where forking is not wanted).
 """
 
@@ -27,9 +28,16 @@ _PREDICTOR: Predictor | None = None
 
 def _load(bundle: str, batch_size: int) -> None:
     global _PREDICTOR
+    from textsieve.registry.bundle import open_bundle
     from textsieve.registry.runtime import Predictor
 
-    _PREDICTOR = Predictor.from_bundle(Path(bundle), threads=1, batch_size=batch_size)
+    # The folder is the registry's verified copy: every file was re-hashed against the version's
+    # record before the first row (textsieve/scoring/model.py), and those bytes passed the whole
+    # check, graph included, when the version was published. The worker re-hashes the files again
+    # but does not repeat the graph check: it imports the onnx package, ~0.75 s a worker, which
+    # was a fifth of scoring 100,000 texts (bench/score.py).
+    checked = open_bundle(Path(bundle), check_onnx=False)
+    _PREDICTOR = Predictor.from_bundle(checked, threads=1, batch_size=batch_size)
 
 
 def _score(texts: list[str], spans: int) -> Scored:
