@@ -146,7 +146,7 @@ def read_partition(part: Partition) -> list[Any]:
             if not raw.strip():
                 continue
             try:
-                rows.append(json.loads(raw))
+                rows.append(formats.json_loads(raw))
             except ValueError:
                 rows.append(Unreadable(f"a line of partition {part.index} is not valid JSON"))
     return rows

@@ -13,7 +13,8 @@ import csv
 import io
 import json
 import os
-from collections.abc import Iterator, Sequence
+import re
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -21,6 +22,12 @@ from textsieve.errors import InputError
 from textsieve.files import FILE_MODE, fsync_dir
 from textsieve.scoring.columns import ERROR, LABEL, SPANS, Layout, probability_column
 from textsieve.scoring.rows import Row, Unreadable
+
+_orjson_loads: Callable[[bytes], Any] | None
+try:
+    from orjson import loads as _orjson_loads
+except ImportError:  # a scoring install without the serve extras: the standard module does it all
+    _orjson_loads = None
 
 if TYPE_CHECKING:
     import pyarrow as pa
@@ -113,7 +120,7 @@ class JsonlReader(_ByteCounted):
             if seen <= skip:
                 continue
             try:
-                chunk.append(json.loads(raw))
+                chunk.append(json_loads(raw))
             except ValueError:
                 chunk.append(Unreadable(f"line {number} is not valid JSON"))
             if len(chunk) >= size:
@@ -210,6 +217,26 @@ def open_reader(path: Path, fmt: str) -> Reader:
 
 
 # -- values -------------------------------------------------------------------------------------
+# orjson reads an integer of more than 64 bits as a float, silently; a line with a run of 19 or more
+# digits anywhere (even inside a string) is left to the standard module.
+_LONG_DIGITS = re.compile(rb"[0-9]{19}")
+
+
+def json_loads(raw: bytes) -> Any:
+    """``json.loads(raw)``, through orjson when it is installed (the ``serve`` extras have it) and the
+    line is plain UTF-8 JSON: several times faster, and on the 2-core bench the standard module's
+    parsing was a third of the scoring process's CPU. Anything orjson refuses (NaN, integers over 64
+    bits, lone surrogates, a byte-order mark, other encodings) or might read differently (an integer
+    too long for 64 bits, which it turns into a float) is parsed by the standard module, so
+    what a line means never depends on whether orjson is there."""
+    if _orjson_loads is not None and _LONG_DIGITS.search(raw) is None:
+        try:
+            return _orjson_loads(raw)
+        except ValueError:
+            pass
+    return json.loads(raw)
+
+
 def _json_default(value: object) -> object:
     if isinstance(value, bytes):
         return value.decode("utf-8", "replace")
