@@ -501,13 +501,11 @@ class WorkerProcesses:
         payload = pickled(msg)
         if len(payload) > SEND_FROM_LOOP_MAX_BYTES:
             return loop.run_in_executor(executor, lambda: _unpack(w.call(msg, retry=True)))
-        result: asyncio.Future[RunReply] = loop.create_future()
         try:
             gen, fut = w.submit(msg, payload)
-        except _Died:
-            gen = w.generation
-            _copy_outcome(loop.run_in_executor(executor, self._run_again, w, gen, msg), result)
-            return result
+        except _Died:  # the worker was already gone: replace it and run the batch there
+            return loop.run_in_executor(executor, self._run_again, w, w.generation, msg)
+        result: asyncio.Future[RunReply] = loop.create_future()
 
         def settle(f: Future[tuple[Outcome, Any]]) -> None:  # on the loop
             if result.done():
@@ -520,7 +518,7 @@ class WorkerProcesses:
                 if exc is not None:
                     raise exc
                 result.set_result(_unpack(_value(*f.result())))
-            except (BundleError, UnavailableError) as error:
+            except Exception as error:  # noqa: BLE001 - whatever it is, the batch's requests get it, never hang
                 result.set_exception(error)
 
         fut.add_done_callback(lambda f: loop.call_soon_threadsafe(settle, f))  # on the reply thread
