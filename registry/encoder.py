@@ -1,17 +1,19 @@
 """Text → vocabulary ids and character offsets: the tokenizer and vocabulary at serving speed.
 
 Every served text passes through here while holding the GIL, so this is the Python that the
-inference threads take turns on. Most texts (ASCII, or plain Unicode that folds in place, see
-:meth:`Tokenizer.fold_whole`) are normalised whole, and their tokens are then the token
-pattern's matches on the normalised text. Those matches never contain the space character and
-the pattern looks neither behind nor ahead, so the text's tokens are the tokens of its
-space-separated chunks, in order: ``"hi team, the app"`` → ``hi`` · ``team,`` → ``team`` ``,`` ·
-``the`` · ``app``. A chunk's tokens, as vocabulary ids with the lengths of each token and of
-the gap before it, are cached (a word seen once is usually seen again), so a text costs one
-``str.split``, one dictionary look-up per chunk and a few passes over plain lists, all at C
-speed, instead of a regular-expression scan. Chunks not yet cached are tokenized with the
-same pattern; texts with a route that normalises token by token go through
-:meth:`Tokenizer.bounds`. Tests hold the result equal to the reference tokenizer's.
+inference threads take turns on. The token patterns of every route but the full one (see
+:meth:`Tokenizer.chunk_split`) never match the space character and look neither behind nor
+ahead, so a text's tokens are the tokens of its space-separated chunks, in order, each token
+normalised on its own as the spec says: ``"Hi team, the app"`` → ``Hi`` · ``team,`` → ``team``
+``,`` · ``the`` · ``app`` → ``hi`` ``team`` ``,`` ``the`` ``app``. A chunk's tokens, as
+vocabulary ids with the lengths of each token and of the gap before it, are cached (a word seen
+once is usually seen again), so a text costs one ``str.split``, one dictionary look-up per chunk
+and a few passes over plain lists, all at C speed, instead of a regular-expression scan and a
+normalisation. Characters after a chunk's last token (a newline, a dash on its own, the empty
+chunk between two spaces) are cached as a gap with no token (id ``_GAP``), dropped from the
+result. Chunks not cached yet are tokenized with the same pattern; texts of the full pattern's
+route, and texts with too many new or too long chunks, go through :meth:`Tokenizer.bounds`.
+Tests hold the result equal to the reference tokenizer's.
 """
 
 from __future__ import annotations
@@ -29,13 +31,12 @@ LEARN_PER_TEXT = 4
 # Longer chunks are never cached, so the cache's memory stays bounded (CAPACITY × this many
 # characters, a few MB) whatever a caller sends: a text of long unbroken chunks takes bounds.
 MAX_CHUNK_CHARS = 40
-# A chunk whose tokens cannot be chained with the next chunk's: empty (two spaces in a row) or
-# ending in other whitespace, which would have to join the next chunk's first gap. Any value
-# that is not iterable makes the fast path fall back, as an uncached chunk (None) does.
-_IRREGULAR = 0
+# The id of a gap with no token: what follows a chunk's last token (or a whole chunk without
+# tokens), carried as a token of length 0 so the next chunk's offsets still add up.
+_GAP = -1
 
 Split = Callable[[str], list[str]]  # a capturing pattern's split: gap, token, gap, …, gap
-Entry = tuple[int, ...] | int
+Entry = tuple[int, ...]
 
 
 class Encoder:
@@ -51,29 +52,33 @@ class Encoder:
 
     def __call__(self, text: str) -> tuple[list[int], list[int], list[int]]:
         """Every token's id, start and end (no truncation)."""
-        whole = self.tokenizer.fold_whole(text)
-        if whole is not None:
-            folded, split = whole
+        split = self.tokenizer.chunk_split(text)
+        if split is not None:
             cache = self._caches.get(split)
             if cache is None:
                 cache = self._caches.setdefault(split, {})
-            chunks = folded.split(" ")
+            chunks = text.split(" ")
             entries = list(map(cache.get, chunks))
             flat: list[int] | None
             try:
                 flat = list(chain.from_iterable(entries))  # type: ignore[arg-type]
-            except TypeError:  # a chunk not cached yet, or an irregular one
+            except TypeError:  # a chunk not cached yet
                 flat = self._learn(cache, split, chunks, entries)
             if flat is not None:
                 ids = flat[0::3]
                 del flat[0::3]  # leaves gap, token, gap, token, …
                 # Every chunk's first gap counts a space before it; the first chunk has none.
                 edges = list(accumulate(flat, initial=-1))
-                return ids, edges[1::2], edges[2::2]
-            # What Tokenizer.bounds does with a text folded whole, without folding it again.
-            pieces = split(folded)
-            edges = list(accumulate(map(len, pieces)))
-            return self.vocab.encode(pieces[1::2]), edges[0:-1:2], edges[1::2]
+                starts, ends = edges[1::2], edges[2::2]
+                if _GAP in ids:  # few per text, at chunk ends: deleted one by one at C speed
+                    k = ids.index(_GAP)
+                    while True:
+                        del ids[k], starts[k], ends[k]
+                        try:
+                            k = ids.index(_GAP, k)
+                        except ValueError:
+                            break
+                return ids, starts, ends
         tokens, starts, ends = self.tokenizer.bounds(text)
         return self.vocab.encode(tokens), starts, ends
 
@@ -84,9 +89,7 @@ class Encoder:
         chunks: list[str],
         entries: list[Entry | None],
     ) -> list[int] | None:
-        """Tokenize and cache the chunks not cached yet; None when a chunk is irregular."""
-        get = self.vocab.index.get
-        unk = self.vocab.unk_id
+        """Tokenize and cache the chunks not cached yet; None when the text should take bounds."""
         # Learning a chunk costs more than its share of Tokenizer.bounds; a text of mostly new
         # chunks learns a few of them and takes bounds, so it costs about what it did before
         # the cache, and a word that recurs is learnt within a few texts.
@@ -99,27 +102,26 @@ class Encoder:
                 chunk = chunks[i]
                 if len(chunk) > MAX_CHUNK_CHARS:
                     return None
-                if chunk.isascii() and chunk.isalnum():
-                    # Letters and digits only: one word under either pattern (no ideographs).
-                    entry = (get(chunk, unk), 1, len(chunk))
-                else:
-                    entry = self._tokenize(split, chunk, get, unk)
+                entry = self._tokenize(split, chunk)
                 if len(cache) >= self.capacity:
                     cache.clear()
                 cache[chunk] = entries[i] = entry
-            if entry is _IRREGULAR:
-                return None
         return list(chain.from_iterable(entries))  # type: ignore[arg-type]
 
-    @staticmethod
-    def _tokenize(split: Split, chunk: str, get: Callable[[str, int], int], unk: int) -> Entry:
-        pieces = split(" " + chunk)
-        if pieces[-1]:  # also a chunk without tokens: its only piece is a gap
-            return _IRREGULAR
+    def _tokenize(self, split: Split, chunk: str) -> Entry:
+        """(id, gap before, length) per token of `` chunk``, then any gap after its last token."""
+        get, unk = self.vocab.index.get, self.vocab.unk_id
+        if chunk.isascii() and chunk.isalnum():
+            # Letters and digits only: one word under any route, normalised by case alone.
+            return (get(self.tokenizer.normalize(chunk), unk), 1, len(chunk))
+        pieces = split(" " + chunk)  # gap, token, gap, …, gap (a chunk without tokens: one gap)
+        tokens = pieces[1::2]
         entry: list[int] = []
-        for k in range(1, len(pieces), 2):
-            token = pieces[k]
-            entry += (get(token, unk), len(pieces[k - 1]), len(token))
+        gaps = pieces[0:-1:2]  # the gap before each token
+        for gap, token, norm in zip(gaps, tokens, map(self.tokenizer.normalize, tokens), strict=True):
+            entry += (get(norm, unk), len(gap), len(token))
+        if pieces[-1]:
+            entry += (_GAP, len(pieces[-1]), 0)
         return tuple(entry)
 
 

@@ -125,3 +125,32 @@ def test_long_chunks_are_never_cached_and_still_exact() -> None:
     cached = {chunk for cache in encoder._caches.values() for chunk in cache}
     assert long_chunk not in cached
     assert all(len(chunk) <= MAX_CHUNK_CHARS for chunk in cached)
+
+
+@pytest.mark.parametrize(
+    "text",
+    [
+        pytest.param("team — ok\n", id="a chunk without tokens and a trailing newline"),
+        pytest.param("Straße  ok", id="a token that changes length when folded, two spaces"),
+        pytest.param("DON’T 東京, team", id="ideographs and the other apostrophe"),
+    ],
+)
+def test_warm_texts_of_the_chunk_routes_never_take_bounds(text: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    # Gaps without tokens are cached with the chunk, and texts that do not fold in place are
+    # split chunk by chunk on the original text: once learnt, none of them needs the whole-text path.
+    vocab = _vocab()
+    encoder = Encoder(CASEFOLD, vocab)
+    expected = _reference(CASEFOLD, vocab, text)
+    assert encoder(text) == expected
+
+    def refuse(_: str) -> None:
+        raise AssertionError("took Tokenizer.bounds")
+
+    monkeypatch.setattr(CASEFOLD, "bounds", refuse)
+    assert encoder(text) == expected
+
+
+def test_texts_of_the_full_pattern_still_take_bounds() -> None:
+    # A combining mark sends a text to the full pattern, which is split whole.
+    assert CASEFOLD.chunk_split("e\u0301 ok") is None
+    assert CASEFOLD.chunk_split("plain ok") is not None
