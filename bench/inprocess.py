@@ -1,8 +1,13 @@
-"""onnxruntime in-process: the ceiling any server of this model can reach on this machine.
+"""The model's own pipeline without a server: the ceiling any server of this model can reach here.
 
-Layout (the design's measured best): one single-thread session per core, each driven by its
-own Python thread; ``session.run`` releases the GIL, so the threads compute in parallel and
-only tokenizing and padding take turns on the GIL. Each thread gets half the texts.
+Layout (the measured best, :class:`Processes`): one process per core, each with one
+single-thread onnxruntime session driven by its main thread over its share of the texts; the
+processes start each window together and their rates add up. The older layout, one process
+with a thread per core (:class:`InProcess` with ``sessions=2``), lets the graphs run in
+parallel (``session.run`` releases the GIL) but makes tokenizing and padding take turns on the
+GIL: with encoding now about as costly as the graph, it reached only ~0.75 of the processes'
+rate (2026-12-02, 31.5–34k against 41.8–42.0k texts/s on the demo model), so ``make bench``
+reports it as history (``runtime_threads``) beside the processes.
 
 Variants, all from the same texts:
 - ``sorted``: encode 512 texts, sort them by length, run batches of 64 each padded to its own
@@ -21,10 +26,13 @@ exported with the convolution layout (the graph the FLOP limit describes), when 
 
 from __future__ import annotations
 
+import multiprocessing
 import threading
 import time
 from collections.abc import Callable
+from multiprocessing.connection import Connection
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -115,9 +123,22 @@ def graph_only(p: Predictor, texts: list[str], *, fixed: bool = False) -> Callab
 
 
 class InProcess:
-    """The four variants prepared once; ``window`` measures one of them for a while."""
+    """The variants prepared once; ``window`` measures one of them for a while.
 
-    def __init__(self, bundle: Path, texts: list[str], sessions: int = 2, conv_bundle: Path | None = None) -> None:
+    ``only_sorted`` keeps just the ``sorted`` variant (no texts encoded ahead for the graph-only ones);
+    ``warm=False`` leaves the encoder's caches as cold as a first pass finds them.
+    """
+
+    def __init__(
+        self,
+        bundle: Path,
+        texts: list[str],
+        sessions: int = 2,
+        conv_bundle: Path | None = None,
+        *,
+        warm: bool = True,
+        only_sorted: bool = False,
+    ) -> None:
         self.predictors = load(bundle, sessions)
         parts = _halves(texts, sessions)
         makers: dict[str, Callable[[Predictor, list[str]], Callable[[], int]]] = {
@@ -126,6 +147,8 @@ class InProcess:
             "graph": graph_only,
             "graph_fixed": lambda p, t: graph_only(p, t, fixed=True),
         }
+        if only_sorted:
+            makers = {"sorted": sorted_pipeline}
         self.work = {
             name: [make(p, part) for p, part in zip(self.predictors, parts, strict=True)]
             for name, make in makers.items()
@@ -136,13 +159,132 @@ class InProcess:
             self.work["conv_graph_fixed"] = [
                 graph_only(p, part, fixed=True) for p, part in zip(conv, parts, strict=True)
             ]
-        for work in self.work.values():
-            for w in work:
-                w()  # warm: the first runs of a new shape allocate
+        if warm:
+            for work in self.work.values():
+                for w in work:
+                    w()  # the first runs of a new shape allocate
 
     def window(self, variant: str, seconds: float) -> dict[str, float]:
         rate, cpu = _parallel(self.work[variant], seconds)
         return {"texts_per_s": rate, "cpu_s_per_1k_texts": cpu}
 
+    def once(self, variant: str = "sorted") -> float:
+        """Seconds for one pass of ``variant`` over the texts, the sessions' threads in parallel."""
+        threads = [threading.Thread(target=w) for w in self.work[variant]]
+        started = time.perf_counter()
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join()
+        return time.perf_counter() - started
 
-__all__ = ["BATCH", "InProcess", "load"]
+
+def _child(
+    bundle: str,
+    texts: list[str],
+    conv_bundle: str | None,
+    conn: Connection,
+    barrier: Any,
+    options: dict[str, bool],
+) -> None:
+    """One process of :class:`Processes`: a one-session :class:`InProcess`, run on command."""
+    try:
+        conv = Path(conv_bundle) if conv_bundle else None
+        one = InProcess(Path(bundle), texts, sessions=1, conv_bundle=conv, **options)
+    except BaseException as exc:  # noqa: BLE001 - reported to the parent, which raises it
+        conn.send(("error", repr(exc)))
+        return
+    conn.send(("ready", None))
+    while True:
+        msg = conn.recv()
+        if msg is None:
+            return
+        kind, variant, seconds = msg
+        barrier.wait()
+        try:
+            conn.send(("done", one.window(variant, seconds) if kind == "window" else one.once(variant)))
+        except Exception as exc:  # noqa: BLE001 - reported to the parent, which raises it
+            conn.send(("error", repr(exc)))
+
+
+class Processes:
+    """The variants of :class:`InProcess` in ``sessions`` processes, one session each, run together.
+
+    Each process gets every ``sessions``-th text (as the threads of :class:`InProcess` do); a
+    window starts in all of them at once (a barrier) and the rates add up; CPU per 1,000 texts
+    is the processes' CPU over their texts. ``warm`` and ``only_sorted`` are passed on to each
+    process's :class:`InProcess` (cold and sorted only: a one-pass figure, :meth:`once`, that
+    pays what a first pass pays).
+    """
+
+    def __init__(
+        self,
+        bundle: Path,
+        texts: list[str],
+        sessions: int = 2,
+        conv_bundle: Path | None = None,
+        *,
+        warm: bool = True,
+        only_sorted: bool = False,
+    ) -> None:
+        options = {"warm": warm, "only_sorted": only_sorted}
+        ctx = multiprocessing.get_context("spawn")  # nothing inherited: each process loads its own session
+        barrier = ctx.Barrier(sessions)
+        self.conns: list[Connection] = []
+        self.procs = []
+        for i in range(sessions):
+            ours, theirs = ctx.Pipe()
+            proc = ctx.Process(
+                target=_child,
+                args=(str(bundle), texts[i::sessions], conv_bundle and str(conv_bundle), theirs, barrier, options),
+                daemon=True,
+            )
+            proc.start()
+            theirs.close()
+            self.conns.append(ours)
+            self.procs.append(proc)
+        for conn in self.conns:
+            kind, detail = conn.recv()
+            if kind != "ready":
+                self.close()
+                raise RuntimeError(f"a runtime process could not start: {detail}")
+
+    def _all(self, kind: str, variant: str, seconds: float) -> list[Any]:
+        for conn in self.conns:
+            conn.send((kind, variant, seconds))
+        replies = [conn.recv() for conn in self.conns]
+        failed = [detail for status, detail in replies if status != "done"]
+        if failed:
+            raise RuntimeError(f"a runtime process failed: {failed[0]}")
+        return [detail for _, detail in replies]
+
+    def window(self, variant: str, seconds: float) -> dict[str, float]:
+        parts = self._all("window", variant, seconds)
+        rate = sum(p["texts_per_s"] for p in parts)
+        # Each process's CPU per text, weighted by its share of the texts done in the window.
+        cpu = sum(p["cpu_s_per_1k_texts"] * p["texts_per_s"] for p in parts) / rate
+        return {"texts_per_s": rate, "cpu_s_per_1k_texts": cpu}
+
+    def once(self, variant: str = "sorted") -> float:
+        """Seconds until every process has made one pass of ``variant`` over its texts."""
+        return float(max(self._all("once", variant, 0.0)))
+
+    def close(self) -> None:
+        for conn in self.conns:
+            try:
+                conn.send(None)
+            except OSError:
+                pass
+        for proc in self.procs:
+            proc.join(timeout=10)
+            if proc.is_alive():
+                proc.kill()
+
+    def __enter__(self) -> Processes:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+__all__ = ["BATCH", "InProcess", "Processes", "load"]

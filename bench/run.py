@@ -65,9 +65,10 @@ TARGETS = {  # key -> (comparison, bound, the issue that set it)
 }
 # Figures kept for comparison with earlier runs, no longer targets (bench/README.md says why):
 # the FLOP limit counts a convolution the tap-tables graph never performs, and bucketing is
-# bounded by the text mix.
+# bounded by the text mix; the runtime's older layout (threads in one process) loses to the GIL.
 HISTORY = (
     "runtime_vs_flop_limit",
+    "runtime_threads_vs_graph",
     "graph_vs_flop_limit",
     "conv_graph_vs_flop_limit",
     "bucketing_speedup",
@@ -343,6 +344,8 @@ def summarize(
         "bucketing_speedup_end_to_end": rt["sorted"]["texts_per_s"] / rt["fixed"]["texts_per_s"],
         "bucketing_speedup_per_cpu": rt["graph_fixed"]["cpu_s_per_1k_texts"] / rt["graph"]["cpu_s_per_1k_texts"],
         "runtime_vs_flop_limit": runtime / fl["texts_per_s"],
+        # One process, a thread per session: the layout the runtime had before (bench/inprocess.py).
+        "runtime_threads_vs_graph": rt["sorted_threads"]["texts_per_s"] / rt["graph"]["texts_per_s"],
         "graph_vs_flop_limit": rt["graph"]["texts_per_s"] / fl["texts_per_s"],
         # The convolution layout (same run, Conv over embeddings): the graph the FLOP limit describes.
         "conv_graph_vs_flop_limit": rt["conv_graph"]["texts_per_s"] / fl["texts_per_s"],
@@ -364,10 +367,17 @@ def table(rt: dict[str, Any], fl: dict[str, Any], sv: dict[str, Any], tw: dict[s
         ("flop_limit (history)", "conv FLOPs ÷ 2-thread matmul rate", fl["texts_per_s"], None, None),
         (
             "runtime",
-            "in-process, sorted batches, tokenizing incl.",
+            "process per core, sorted batches, tokenizing incl.",
             rt["sorted"]["texts_per_s"],
             None,
             rt["sorted"]["cpu_s_per_1k_texts"],
+        ),
+        (
+            "runtime (history)",
+            "same, one process, a thread per session",
+            rt["sorted_threads"]["texts_per_s"],
+            None,
+            rt["sorted_threads"]["cpu_s_per_1k_texts"],
         ),
         (
             "runtime",
@@ -522,8 +532,10 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
     wrk = loadgen.ensure_wrk(say)
     batched = {k: bodies(texts, TEXTS_PER_REQUEST, k) for k in (SPANS, 0)}
     single = bodies(texts, 1, SPANS)
-    runtime = inprocess.InProcess(model.bundle, texts, conv_bundle=model.conv_bundle)
-    p = runtime.predictors[0]
+    runtime = inprocess.Processes(model.bundle, texts, conv_bundle=model.conv_bundle)
+    # The older layout, threads in one process, for history (bench/inprocess.py says why).
+    threads = inprocess.InProcess(model.bundle, texts, only_sorted=True)
+    p = threads.predictors[0]
     token_counts = [len(p.tokenizer.split(t)[0]) for t in texts]
     lengths = [min(n, p.max_length) for n in token_counts]
     fl = bench_flops(model, lengths, p.min_length)
@@ -547,7 +559,7 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
             ("torch_wrapper", "batched"): (torch_wrapper, batched[SPANS], TEXTS_PER_REQUEST),
             ("torch_wrapper", "single"): (torch_wrapper, single, 1),
         }
-        rt_windows: dict[str, list[dict[str, Any]]] = {v: [] for v in VARIANTS}
+        rt_windows: dict[str, list[dict[str, Any]]] = {v: [] for v in (*VARIANTS, "sorted_threads")}
         http_windows: dict[tuple[str, str], list[dict[str, Any]]] = {k: [] for k in http_loads}
         for r in range(args.rounds):
             say(
@@ -557,6 +569,7 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
             for _ in range(2):  # in-process windows are short: two of each per round
                 for v in VARIANTS:
                     rt_windows[v].append(runtime.window(v, args.inprocess_seconds))
+                rt_windows["sorted_threads"].append(threads.window("sorted", args.inprocess_seconds))
             # Odd rounds run the loads in reverse: no server is always measured first.
             for key, (server, body_list, per_request) in list(http_loads.items())[:: -1 if r % 2 else 1]:
                 http_windows[key].append(measure_http(server, body_list, per_request, seconds=args.seconds, wrk=wrk))
@@ -580,6 +593,7 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
         for started_server in (service, floor_server, torch_wrapper, unguarded):
             if started_server is not None:
                 started_server.stop()
+        runtime.close()
 
     say("evaluation report on 10,000 texts (issue 12) …")
     report_timing = report_bench.bench_report(model.bundle, 10_000)
@@ -596,7 +610,7 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
     # then the median over rounds: one lucky or unlucky window cannot swing it.
     per_round = [
         summarize(
-            {v: rt_rounds[v][r] for v in VARIANTS},
+            {v: rt_rounds[v][r] for v in rt_rounds},
             fl,
             *(
                 {load: w[r] for (who, load), w in http_windows.items() if who == name}

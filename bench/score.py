@@ -6,7 +6,8 @@ runs alone at any size:
 
 - ``score_vs_runtime``: ``textsieve score in.jsonl --out out.jsonl`` end to end (process start, bundle
   check, reading, scoring on one worker process per core, writing) against the runtime's own pipeline
-  (one single-thread session per core on threads, length-sorted chunks, no I/O) on the same texts.
+  (one process per core with a single-thread session, length-sorted chunks, no I/O;
+  bench/inprocess.py) on the same texts.
 - ``peak_rss``: the peak resident memory of the scoring process and of the whole process tree
   (workers included), sampled every 50 ms, for a small and a large input of the same texts.
 - ``dask_vs_local``: a scheduler and two ``dask worker --nthreads 1`` processes started with Dask's
@@ -23,7 +24,6 @@ import signal
 import socket
 import subprocess
 import sys
-import threading
 import time
 from pathlib import Path
 from typing import Any
@@ -82,17 +82,9 @@ def run_score(argv: list[str]) -> dict[str, float]:
 
 
 def runtime_seconds(bundle: Path, texts: list[str], sessions: int) -> float:
-    """The runtime's pipeline over ``texts`` once, split across one single-thread session per core."""
-    predictors = inprocess.load(bundle, sessions)
-    parts = [texts[i::sessions] for i in range(sessions)]
-    work = [inprocess.sorted_pipeline(p, part) for p, part in zip(predictors, parts, strict=True)]
-    threads = [threading.Thread(target=w) for w in work]
-    started = time.perf_counter()
-    for t in threads:
-        t.start()
-    for t in threads:
-        t.join()
-    return time.perf_counter() - started
+    """The runtime's pipeline over ``texts`` once, one process per core, encoder caches cold."""
+    with inprocess.Processes(bundle, texts, sessions, warm=False, only_sorted=True) as runtime:
+        return runtime.once("sorted")
 
 
 def _free_port() -> int:
