@@ -1,13 +1,17 @@
-"""Reading JSONL lines: the fast parser (orjson, when installed) must mean exactly what Python's
-own json module means by every line, including the lines orjson refuses; the reference is the
-standard library's ``json.loads``."""
+"""Reading and writing JSONL lines: the fast parser and writer (orjson, when installed) must mean
+exactly what Python's own json module means by every line, including the values orjson refuses or
+would write another way; the reference is the standard library's ``json.loads`` and ``json.dumps``."""
 
 from __future__ import annotations
 
+import datetime as dt
+import decimal
 import json
 import math
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from textsieve.scoring import formats
 
@@ -51,3 +55,47 @@ def test_json_loads_refuses_what_the_standard_module_refuses(raw: bytes) -> None
 def test_the_fast_parser_is_used_when_installed() -> None:
     pytest.importorskip("orjson")
     assert formats._orjson_loads is not None
+
+
+# -- writing: json_line writes the value the standard module writes --------------------------------
+class _Label(str):
+    pass
+
+
+WRITTEN = [
+    {"id": 1, "label": "billing", "probabilities": {"billing": 0.9999679, "repair": 3.2e-05}},
+    {"text": "Crème brûlée — 12 € 谢谢", "n": [1, 2.5, -0.0, 1e-05, 1e16, 5e-324, 1.7976931348623157e308]},
+    {"missing": None, "flags": [True, False]},
+    {"score": math.nan, "inf": -math.inf},  # orjson would write null
+    {"big": 123456789012345678901234567890, "neg": -9223372036854775809},  # over 64 bits
+    {"bytes": b"raw \xff", "when": dt.datetime(2026, 12, 2, 23, 0), "amount": decimal.Decimal("12.50")},
+    {"label": _Label("billing"), "day": dt.date(2026, 12, 2)},
+    {1: "a non-string key"},
+    {"spans": [{"start": 0, "end": 5, "text": "hello", "weight": 0.123456789}]},
+]
+
+
+@pytest.mark.parametrize("value", WRITTEN)
+def test_json_line_writes_what_the_standard_module_writes(value: dict[object, object]) -> None:
+    line = formats.json_line(value)
+    assert b"\n" not in line
+    assert _same(json.loads(line), json.loads(formats._dumps(value)))
+
+
+@settings(max_examples=400, deadline=None)
+@given(
+    st.recursive(
+        st.none() | st.booleans() | st.integers() | st.floats() | st.text(alphabet=st.characters(codec="utf-8")),
+        lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=5), inner, max_size=4),
+        max_leaves=12,
+    )
+)
+def test_json_line_reads_back_as_the_standard_module_wrote_it(value: object) -> None:
+    assert _same(json.loads(formats.json_line({"v": value})), json.loads(formats._dumps({"v": value})))
+
+
+def test_the_fast_writer_is_used_when_installed() -> None:
+    pytest.importorskip("orjson")
+    row = {"label": "repair", "p": 0.25}
+    assert formats.json_line(row) == b'{"label":"repair","p":0.25}'
+    assert formats.json_line({"p": math.nan}) == b'{"p": NaN}'  # the standard module's way

@@ -24,10 +24,18 @@ from textsieve.scoring.columns import ERROR, LABEL, SPANS, Layout, probability_c
 from textsieve.scoring.rows import Row, Unreadable
 
 _orjson_loads: Callable[[bytes], Any] | None
+_orjson_dumps: Callable[..., bytes] | None
 try:
+    from orjson import OPT_PASSTHROUGH_DATACLASS, OPT_PASSTHROUGH_DATETIME, OPT_PASSTHROUGH_SUBCLASS
+    from orjson import dumps as _orjson_dumps
     from orjson import loads as _orjson_loads
+
+    # Types orjson would write its own way (dates as RFC 3339, dataclasses as objects, subclasses of
+    # str and int as their base) are refused instead, and so go to the standard module.
+    _ORJSON_STRICT = OPT_PASSTHROUGH_DATACLASS | OPT_PASSTHROUGH_DATETIME | OPT_PASSTHROUGH_SUBCLASS
 except ImportError:  # a scoring install without the serve extras: the standard module does it all
-    _orjson_loads = None
+    _orjson_loads = _orjson_dumps = None
+    _ORJSON_STRICT = 0
 
 if TYPE_CHECKING:
     import pyarrow as pa
@@ -247,6 +255,28 @@ def _dumps(value: object) -> str:
     return json.dumps(value, ensure_ascii=False, default=_json_default)
 
 
+def json_line(value: object) -> bytes:
+    """One row as a line of JSON (no newline): the same value :func:`_dumps` writes, faster.
+
+    orjson writes it when installed: without spaces, and floats in their shortest form either way
+    (3.2e-05 may read 0.000032), the same numbers when read back. Whatever orjson would write as
+    another value is left to the standard module: it writes NaN and ±Infinity as null, so a
+    line with a null in it is written again by the standard module (NaN stays NaN, as before),
+    and it refuses integers over 64 bits, keys that are not strings, lone surrogates and types it
+    does not know or would write its own way (dates, decimals, bytes, NumPy scalars). On the
+    2-core bench the standard module's writing was a third of the scoring process's CPU.
+    """
+    if _orjson_dumps is not None:
+        try:
+            line = _orjson_dumps(value, option=_ORJSON_STRICT)
+        except TypeError:
+            pass
+        else:
+            if b"null" not in line:
+                return line
+    return _dumps(value).encode("utf-8")
+
+
 # -- JSONL and CSV: one file, appended chunk by chunk --------------------------------------------
 class AppendWriter:
     """Appends chunks to ``path``; :meth:`commit` makes them durable and returns the committed length."""
@@ -282,7 +312,7 @@ class AppendWriter:
 
 class JsonlWriter(AppendWriter):
     def encode(self, rows: Sequence[Row]) -> bytes:
-        return "".join(_dumps(r) + "\n" for r in rows).encode("utf-8")
+        return b"".join(json_line(r) + b"\n" for r in rows)
 
 
 class CsvWriter(AppendWriter):
@@ -409,6 +439,7 @@ __all__ = [
     "CsvWriter",
     "JsonlReader",
     "JsonlWriter",
+    "json_line",
     "ParquetReader",
     "Reader",
     "detect",
