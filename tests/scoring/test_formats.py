@@ -99,3 +99,22 @@ def test_the_fast_writer_is_used_when_installed() -> None:
     row = {"label": "repair", "p": 0.25}
     assert formats.json_line(row) == b'{"label":"repair","p":0.25}'
     assert formats.json_line({"p": math.nan}) == b'{"p": NaN}'  # the standard module's way
+
+
+def test_rows_with_missing_values_still_take_the_fast_writer() -> None:
+    pytest.importorskip("orjson")
+    # A scored row's error column is None: one top-level null, orjson's line is kept.
+    assert formats.json_line({"label": "repair", "error": None}) == b'{"label":"repair","error":null}'
+    # A null orjson would write for NaN beside it is one too many: the standard module writes the row.
+    assert formats.json_line({"x": math.inf, "error": None}) == b'{"x": Infinity, "error": null}'
+    assert formats.json_line({"t": "null pointer", "error": None}) == b'{"t": "null pointer", "error": null}'
+
+
+@pytest.mark.parametrize("digits", [18, 19, 40])
+def test_a_run_of_nineteen_digits_goes_to_the_standard_module(digits: int, monkeypatch: pytest.MonkeyPatch) -> None:
+    pytest.importorskip("orjson")
+    raw = b'{"n": ' + b"9" * digits + b', "s": "a' + b"1" * (digits - 1) + b'b"}'
+    seen: list[bytes] = []
+    monkeypatch.setattr(formats, "_orjson_loads", lambda b: seen.append(b) or json.loads(b))
+    assert formats.json_loads(raw) == json.loads(raw)
+    assert bool(seen) == (digits < 19)

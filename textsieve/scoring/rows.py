@@ -109,8 +109,7 @@ def output_rows(rows: Sequence[Any], part: Split, results: Scored, layout: Layou
             rec[ERROR] = part.problems[i]
         else:
             rec[LABEL] = labels[best[j]]
-            for col, p in zip(prob_cols, probs[j], strict=True):
-                rec[col] = p
+            rec.update(zip(prob_cols, probs[j], strict=True))
             if layout.spans:
                 rec[SPANS] = results.spans[j] if results.spans is not None else []
             rec[ERROR] = None
