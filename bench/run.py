@@ -694,10 +694,12 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
         results["targets"]["score_vs_runtime"] = {"bound": f">= {SCORE_VS_RUNTIME}", "met": met}
     results["bench_seconds"] = round(time.perf_counter() - started, 1)
     write_json(RESULTS, results)
+    wrote = [RESULTS]
     try:
         import chart
 
         chart.draw(results, CHART)
+        wrote.append(CHART)
     except ModuleNotFoundError as exc:
         say(f"no chart: {exc.name} is missing (pip install matplotlib)")
     print(table(rt, fl, sv, tw, floor))
@@ -733,10 +735,7 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
         f"other processes kept {results['background_cores_busy']:.2f} of {results['machine']['cores']} cores "
         "busy during the HTTP windows (this script included)"
     )
-    print(
-        f"wrote {RESULTS.relative_to(HERE.parent)} and {CHART.relative_to(HERE.parent)} "
-        f"in {results['bench_seconds']:.0f} s"
-    )
+    print(f"wrote {' and '.join(str(w.relative_to(HERE.parent)) for w in wrote)} in {results['bench_seconds']:.0f} s")
     return 0
 
 
