@@ -1,7 +1,7 @@
 """Text → vocabulary ids and character offsets: the tokenizer and vocabulary at serving speed.
 
 Every served text passes through here while holding the GIL, so this is the Python that the
-inference threads take turns on. The token patterns of every route but the full one (see
+inference threads take turns on. The token patterns of every route (see
 :meth:`Tokenizer.chunk_split`) never match the space character and look neither behind nor
 ahead, so a text's tokens are the tokens of its space-separated chunks, in order, each token
 normalised on its own as the spec says: ``"Hi team, the app"`` → ``Hi`` · ``team,`` → ``team``
@@ -11,8 +11,9 @@ once is usually seen again), so a text costs one ``str.split``, one dictionary l
 and a few passes over plain lists, all at C speed, instead of a regular-expression scan and a
 normalisation. Characters after a chunk's last token (a newline, a dash on its own, the empty
 chunk between two spaces) are cached as a gap with no token (id ``_GAP``), dropped from the
-result. Chunks not cached yet are tokenized with the same pattern; texts of the full pattern's
-route, and texts with too many new or too long chunks, go through :meth:`Tokenizer.bounds`.
+result. Chunks not cached yet are tokenized with the text's route's pattern (one cache per
+pattern); texts with too many new chunks or a chunk too long to cache go through
+:meth:`Tokenizer.bounds`.
 Tests hold the result equal to the reference tokenizer's.
 """
 
@@ -53,32 +54,32 @@ class Encoder:
     def __call__(self, text: str) -> tuple[list[int], list[int], list[int]]:
         """Every token's id, start and end (no truncation)."""
         split = self.tokenizer.chunk_split(text)
-        if split is not None:
-            cache = self._caches.get(split)
-            if cache is None:
-                cache = self._caches.setdefault(split, {})
-            chunks = text.split(" ")
-            entries = list(map(cache.get, chunks))
-            flat: list[int] | None
-            try:
-                flat = list(chain.from_iterable(entries))  # type: ignore[arg-type]
-            except TypeError:  # a chunk not cached yet
-                flat = self._learn(cache, split, chunks, entries)
-            if flat is not None:
-                ids = flat[0::3]
-                del flat[0::3]  # leaves gap, token, gap, token, …
-                # Every chunk's first gap counts a space before it; the first chunk has none.
-                edges = list(accumulate(flat, initial=-1))
-                starts, ends = edges[1::2], edges[2::2]
-                if _GAP in ids:  # few per text, at chunk ends: deleted one by one at C speed
-                    k = ids.index(_GAP)
-                    while True:
-                        del ids[k], starts[k], ends[k]
-                        try:
-                            k = ids.index(_GAP, k)
-                        except ValueError:
-                            break
-                return ids, starts, ends
+        cache = self._caches.get(split)
+        if cache is None:
+            cache = self._caches.setdefault(split, {})
+        chunks = text.split(" ")
+        entries = list(map(cache.get, chunks))
+        flat: list[int] | None
+        try:
+            flat = list(chain.from_iterable(entries))  # type: ignore[arg-type]
+        except TypeError:  # a chunk not cached yet
+            flat = self._learn(cache, split, chunks, entries)
+        if flat is not None:
+            ids = flat[0::3]
+            del flat[0::3]  # leaves gap, token, gap, token, …
+            # Every chunk's first gap counts a space before it; the first chunk has none.
+            edges = list(accumulate(flat, initial=-1))
+            starts, ends = edges[1::2], edges[2::2]
+            if _GAP in ids:  # few per text, at chunk ends: deleted one by one at C speed
+                k = ids.index(_GAP)
+                while True:
+                    del ids[k], starts[k], ends[k]
+                    try:
+                        k = ids.index(_GAP, k)
+                    except ValueError:
+                        break
+            return ids, starts, ends
+        # Too many new chunks, or a chunk too long to cache: the whole text at once.
         tokens, starts, ends = self.tokenizer.bounds(text)
         return self.vocab.encode(tokens), starts, ends
 

@@ -307,19 +307,18 @@ class Tokenizer:
         joined = unicodedata.normalize("NFKC", "\x00".join(tokens)).replace("\u2019", "'")
         return (joined.casefold() if self._fold else joined).split("\x00")
 
-    def chunk_split(self, text: str) -> _Split | None:
-        """The split that finds ``text``'s tokens chunk by chunk, or None for the full pattern.
+    def chunk_split(self, text: str) -> _Split:
+        """The split that finds ``text``'s tokens chunk by chunk.
 
-        The simple patterns (ASCII text, and text :class:`_Route` keeps off the full pattern)
-        never match a space and look neither behind nor ahead, so the tokens of the original
-        text are those of its space-separated chunks, each normalised on its own
-        (:meth:`normalize`). Texts of the full pattern (combining marks, format characters:
-        rare) are split whole by :meth:`bounds`, as the spec describes them.
+        Every route's pattern (the full one included: a word is word characters and marks, a
+        symbol excludes whitespace) never matches a space and looks neither behind nor ahead, so
+        the tokens of a text are those of its space-separated chunks, in order, each normalised
+        on its own (:meth:`normalize`), at the same offsets.
         """
         if text.isascii():
             return _SIMPLE_SPLIT
         route = self._route(text)
-        return None if route is None else route[0]
+        return self._full_split if route is None else route[0]
 
     def fold_whole(self, text: str) -> tuple[str, _Split] | None:
         """The text normalised whole, and the split that finds its tokens, when that is exact.

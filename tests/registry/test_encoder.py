@@ -150,7 +150,13 @@ def test_warm_texts_of_the_chunk_routes_never_take_bounds(text: str, monkeypatch
     assert encoder(text) == expected
 
 
-def test_texts_of_the_full_pattern_still_take_bounds() -> None:
-    # A combining mark sends a text to the full pattern, which is split whole.
-    assert CASEFOLD.chunk_split("e\u0301 ok") is None
-    assert CASEFOLD.chunk_split("plain ok") is not None
+def test_texts_of_the_full_pattern_are_cached_by_chunk_too(monkeypatch: pytest.MonkeyPatch) -> None:
+    # A combining mark sends a text to the full pattern; its chunks are cached under that pattern.
+    vocab = _vocab()
+    encoder = Encoder(CASEFOLD, vocab)
+    text = "Cafe\u0301 team ❤\ufe0f ok"
+    expected = _reference(CASEFOLD, vocab, text)
+    assert encoder(text) == expected
+    monkeypatch.setattr(CASEFOLD, "bounds", lambda _: pytest.fail("took Tokenizer.bounds"))
+    assert encoder(text) == expected
+    assert CASEFOLD._full_split in encoder._caches
