@@ -7,8 +7,8 @@ the demo model's registry. Each round loads one and then the other (the order al
 window's speed depends on what ran just before it) with ``make bench``'s "service batched" load:
 32 kept-alive connections, 16 texts a request, 3 spans, closed loop. It reads from /proc the CPU
 time of each server's whole process tree and, apart, of its worker processes (those whose command
-line is the multiprocessing fork server's child), and prints each window, the medians and the
-per-round ratios b ÷ a.
+line is the multiprocessing fork server's child), and from /metrics the mean texts per batch, and
+prints each window, the medians and the per-round ratios b ÷ a.
 """
 
 from __future__ import annotations
@@ -17,6 +17,7 @@ import argparse
 import os
 import statistics
 import sys
+import urllib.request
 from pathlib import Path
 from typing import Any
 
@@ -55,10 +56,22 @@ def _ppid(pid: int) -> int:
     return int(Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[1])
 
 
+def batches(server: servers.Server) -> tuple[float, float]:
+    """Texts and batches the server has run so far (its batch-size histogram on /metrics)."""
+    page = urllib.request.urlopen(server.url + "/metrics", timeout=10).read().decode()
+    found = {"sum": 0.0, "count": 0.0}
+    for line in page.splitlines():
+        for part in found:
+            if line.startswith(f"textsieve_batch_texts_{part}{{"):
+                found[part] += float(line.rsplit(" ", 1)[1])
+    return found["sum"], found["count"]
+
+
 def window(server: servers.Server, body_list: list[bytes], seconds: float, wrk: str | None) -> dict[str, float]:
-    cpu0, work0 = server.cpu_seconds(), worker_seconds(server)
+    cpu0, work0, (texts0, batches0) = server.cpu_seconds(), worker_seconds(server), batches(server)
     res = loadgen.run_load(server.url + "/v1/predict", body_list, connections=CONNECTIONS, seconds=seconds, wrk=wrk)
     cpu, work = server.cpu_seconds() - cpu0, worker_seconds(server) - work0
+    texts1, batches1 = batches(server)
     if res.errors:
         raise RuntimeError(f"{server.name}: {res.errors} failed requests ({res.raw['errors']}); see {server.log}")
     texts = res.requests * TEXTS_PER_REQUEST
@@ -68,6 +81,7 @@ def window(server: servers.Server, body_list: list[bytes], seconds: float, wrk: 
         "worker_us_per_text": 1e6 * work / texts,
         "rest_us_per_text": 1e6 * (cpu - work) / texts,
         "p99_ms": res.latency_ms["p99"],
+        "texts_per_batch": (texts1 - texts0) / max(batches1 - batches0, 1),
     }
 
 
@@ -76,7 +90,11 @@ def start(name: str, checkout: Path, registry: Path, work: Path) -> servers.Serv
     cmd = [str(Path(sys.executable).with_name("textsieve")), "serve", "--registry", str(registry), "--port", str(port)]
     # A shared, busy machine must not make either server shed load (503): the bound is raised for both.
     env = {"PYTHONPATH": str(checkout.resolve()), "TEXTSIEVE_QUEUE_WAIT_MS": "20000"}
-    return servers.start(name, cmd, "/readyz", port, work / f"checkout-ab-{name}.log", env=env)
+    # Run from the checkout itself: the worker processes' fork server is started with `python -c`,
+    # which puts the working directory first on its path, ahead of PYTHONPATH (Python 3.11's fork
+    # server does not apply the sys_path it is given), so from anywhere else both servers' workers
+    # would import the textsieve found there.
+    return servers.start(name, cmd, "/readyz", port, work / f"checkout-ab-{name}.log", env=env, cwd=checkout.resolve())
 
 
 def main() -> int:
@@ -105,7 +123,7 @@ def main() -> int:
                 print(
                     f"round {r} {name}: {w['texts_per_s']:8.0f} texts/s  {w['cpu_s_per_1k']:.4f} CPU-s/1k texts  "
                     f"workers {w['worker_us_per_text']:5.1f} µs/text  rest {w['rest_us_per_text']:5.1f}  "
-                    f"p99 {w['p99_ms']:.1f} ms",
+                    f"p99 {w['p99_ms']:.1f} ms  {w['texts_per_batch']:.0f} texts a batch",
                     flush=True,
                 )
         print(f"\nload average at the end: {os.getloadavg()}")
@@ -117,7 +135,7 @@ def main() -> int:
 
 
 def report(rows: dict[str, list[dict[str, Any]]]) -> None:
-    keys = ["texts_per_s", "cpu_s_per_1k", "worker_us_per_text", "rest_us_per_text", "p99_ms"]
+    keys = ["texts_per_s", "cpu_s_per_1k", "worker_us_per_text", "rest_us_per_text", "p99_ms", "texts_per_batch"]
     for k in keys:
         a = [w[k] for w in rows["a"]]
         b = [w[k] for w in rows["b"]]
