@@ -161,11 +161,12 @@ def start(
     *,
     env: dict[str, str] | None = None,
     timeout: float = 180.0,
+    cwd: Path | None = None,
 ) -> Server:
     log.parent.mkdir(parents=True, exist_ok=True)
     fh = open(log, "wb")  # a file, not a pipe: a full pipe would stall a chatty server
     # Same session as the caller: it shares the caller's scheduling autogroup (see run.raise_priority).
-    proc = subprocess.Popen(cmd, stdout=fh, stderr=subprocess.STDOUT, env={**os.environ, **(env or {})})
+    proc = subprocess.Popen(cmd, stdout=fh, stderr=subprocess.STDOUT, env={**os.environ, **(env or {})}, cwd=cwd)
     fh.close()
     server = Server(name, proc, f"http://127.0.0.1:{port}", log)
     deadline = time.monotonic() + timeout

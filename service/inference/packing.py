@@ -10,6 +10,8 @@ windows are masked in the graph, so the cut points do not change any text's resu
 
 from __future__ import annotations
 
+import itertools
+
 import numpy as np
 from numpy.typing import NDArray
 
@@ -28,27 +30,28 @@ def sub_batches(
     max_texts: int | None = None,
     call_tokens: int = CALL_TOKENS,
 ) -> list[NDArray[np.int64]]:
-    """Row indices per sub-batch, shortest texts first."""
+    """Row indices per sub-batch, shortest texts first: consecutive runs of the length order."""
     order = np.argsort(lengths, kind="stable")
-    groups: list[list[int]] = []
-    current: list[int] = []
-    tokens = 0
-    for i in order.tolist():
-        n = max(int(lengths[i]), 1)
-        full = max_texts is not None and len(current) >= max_texts
-        wasteful = (len(current) + 1) * n - (tokens + n) > max(slack * (tokens + n), call_tokens)
-        if current and (full or (wasteful and len(current) >= min_texts)):
-            groups.append(current)
-            current, tokens = [], 0
-        current.append(i)
+    most = len(order) if max_texts is None else max_texts
+    cuts: list[int] = []
+    count = tokens = 0
+    for at, n in enumerate(np.maximum(lengths[order], 1).tolist()):
+        if count and (
+            count >= most
+            or (count >= min_texts and (count + 1) * n - (tokens + n) > max(slack * (tokens + n), call_tokens))
+        ):
+            cuts.append(at)
+            count = tokens = 0
+        count += 1
         tokens += n
-    if current:
-        groups.append(current)
-    return [np.asarray(g, dtype=np.int64) for g in groups]
+    return np.split(order, cuts) if len(order) else []
 
 
 def run_packed(p: Predictor, encoded: list[Encoded]) -> Outputs:
-    """Like ``Predictor.run``, with sub-batches cut by padding waste instead of a fixed size."""
+    """Like ``Predictor.run``, with sub-batches cut by padding waste instead of a fixed size.
+
+    Each sub-batch is padded as ``Predictor.pad`` pads it; the ids of the whole batch are
+    gathered once, in length order, so a sub-batch's are one slice of them."""
     n = len(encoded)
     lengths = np.fromiter((len(e.ids) for e in encoded), dtype=np.int64, count=n)
     classes, filters = len(p.labels), len(p.filter_widths)
@@ -56,8 +59,21 @@ def run_packed(p: Predictor, encoded: list[Encoded]) -> Outputs:
     pooled = np.empty((n, filters), np.float32)
     positions = np.empty((n, filters), np.int64)
     contributions = np.empty((n, filters, classes), np.float32)
-    for idx in sub_batches(lengths, max_texts=p.batch_size):
-        lg, pl, ps, ct = p.run_arrays(*p.pad([encoded[i] for i in idx]))
+    groups = sub_batches(lengths, max_texts=p.batch_size)
+    order = np.concatenate(groups) if groups else np.zeros(0, dtype=np.int64)
+    flat = np.fromiter(
+        itertools.chain.from_iterable(encoded[i].ids for i in order.tolist()), dtype=np.int64, count=int(lengths.sum())
+    )
+    at = 0
+    for idx in groups:
+        rows = lengths[idx]
+        seq = max(int(rows.max(initial=0)), p.min_length)
+        ids = np.zeros((len(idx), seq), dtype=np.int64)
+        total = int(rows.sum())
+        if total:
+            ids[np.arange(seq) < rows[:, None]] = flat[at : at + total]
+        at += total
+        lg, pl, ps, ct = p.run_arrays(ids, rows)
         logits[idx], pooled[idx], positions[idx], contributions[idx] = lg, pl, ps, ct
     return Outputs(logits, pooled, positions, contributions)
 

@@ -29,6 +29,8 @@ import itertools
 import logging
 import multiprocessing
 import multiprocessing.connection
+import os
+import struct
 import threading
 from collections import deque
 from concurrent.futures import Executor, Future
@@ -36,12 +38,16 @@ from dataclasses import dataclass, field
 from enum import StrEnum
 from multiprocessing.reduction import ForkingPickler
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import orjson
 
 from textsieve.errors import BundleError, UnavailableError
+
+if TYPE_CHECKING:
+    from textsieve.registry.drift import Layout
+    from textsieve.registry.runtime import Predictor
 
 log = logging.getLogger("textsieve.service")
 Key = tuple[str, int, int]  # model, version, load number (a version may be loaded twice)
@@ -111,6 +117,54 @@ class Loaded:
     batch_size: int
 
 
+def _run(p: Predictor, layout: Layout, msg: Run) -> tuple[Any, ...]:
+    """A :class:`Run` in the worker: encode, run, explain; each text's reply serialised here, once
+    (the server embeds the bytes as they are). Arrays travel as raw bytes, never as pickled NumPy
+    objects: the server unpickles nothing but plain data from a worker
+    (tests/reliability/test_security.py)."""
+    from textsieve.registry.drift import count
+    from textsieve.service.inference.packing import run_packed
+    from textsieve.service.inference.spans import explain, mark_for_review
+
+    encoded = [p.encode(t) for t in msg.texts]
+    out = run_packed(p, encoded)
+    probs = p.probabilities(out.logits)
+    best = probs.argmax(axis=1)
+    top = probs.max(axis=1)
+    results = explain(p, encoded, out, msg.ks, probs=probs)
+    if msg.review is not None:
+        mark_for_review(results, msg.review)
+    n = len(encoded)
+    kept = np.fromiter((len(e.ids) for e in encoded), dtype=np.int64, count=n)
+    unknown = np.fromiter((e.unknown for e in encoded), dtype=np.int64, count=n)
+    tokens = np.fromiter((e.tokens for e in encoded), dtype=np.int64, count=n)  # before truncation
+    # count_encoded's vector, from the arrays already at hand
+    counts = count(layout, tokens, kept, unknown, best, top) if msg.drift else None
+    return (
+        [orjson.dumps(r) for r in results],
+        int(kept.sum()),
+        int(unknown.sum()),
+        int((tokens > kept).sum()),
+        best.astype(np.int32).tobytes(),
+        top.astype(np.float64).tobytes(),
+        None if counts is None else counts.astype(np.int64).tobytes(),
+    )
+
+
+def _send(conn: multiprocessing.connection.Connection, obj: Any) -> None:
+    """``conn.send(obj)`` in one write. ``Connection.send`` writes a message over 16 KiB (a batch's
+    replies) as its 4-byte length and then its body, two system calls that each wake the server's
+    reply thread; the server's ``recv`` reads the same bytes either way."""
+    body = ForkingPickler.dumps(obj)
+    if len(body) > 0x7FFFFFFF:
+        conn.send_bytes(body)
+        return
+    data = memoryview(struct.pack("!i", len(body)) + body)
+    fd = conn.fileno()
+    while data:
+        data = data[os.write(fd, data) :]
+
+
 def _serve(conn: multiprocessing.connection.Connection) -> None:
     """The worker's loop: one request, one reply, until told to stop or the pipe closes."""
     import signal
@@ -120,14 +174,11 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
     # the pipe closes and the worker ends on its own.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
-    import orjson
-
     from textsieve.registry.bundle import open_bundle
-    from textsieve.registry.drift import Layout, count_encoded
+    from textsieve.registry.drift import Layout
     from textsieve.registry.runtime import Predictor
     from textsieve.service.inference.memory import release_freed_memory
     from textsieve.service.inference.packing import run_packed
-    from textsieve.service.inference.spans import explain, mark_for_review
     from textsieve.service.modelset.loader import warm_and_check
 
     predictors: dict[Key, Predictor] = {}
@@ -144,37 +195,12 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
             return
         try:
             if isinstance(msg, Run):
-                p = predictors[msg.key]
-                encoded = [p.encode(t) for t in msg.texts]
-                out = run_packed(p, encoded)
-                probs = p.probabilities(out.logits)
-                results = explain(p, encoded, out, msg.ks, probs=probs)
-                if msg.review is not None:
-                    mark_for_review(results, msg.review)
-                tokens = unknown = truncated = 0
-                for e in encoded:
-                    tokens += len(e.ids)
-                    unknown += e.unknown
-                    truncated += e.tokens > len(e.ids)
-                counts = count_encoded(layouts[msg.key], encoded, probs) if msg.drift else None
-                # Each reply serialised here, once: the server embeds the bytes as they are. Arrays
-                # travel as raw bytes, never as pickled NumPy objects: the server unpickles nothing
-                # but plain data from a worker (tests/reliability/test_security.py).
-                reply = (
-                    [orjson.dumps(r) for r in results],
-                    tokens,
-                    unknown,
-                    truncated,
-                    probs.argmax(axis=1).astype(np.int32).tobytes(),
-                    probs.max(axis=1).astype(np.float64).tobytes(),
-                    None if counts is None else counts.astype(np.int64).tobytes(),
-                )
-                conn.send((Outcome.OK.value, reply))
+                _send(conn, (Outcome.OK.value, _run(predictors[msg.key], layouts[msg.key], msg)))
             elif isinstance(msg, Score):
                 p = predictors[msg.key]
                 out = run_packed(p, [p.encode(t) for t in msg.texts])
                 probs = p.probabilities(out.logits).astype(np.float64)
-                conn.send((Outcome.OK.value, (probs.shape[1], probs.tobytes())))
+                _send(conn, (Outcome.OK.value, (probs.shape[1], probs.tobytes())))
             elif isinstance(msg, Load):
                 # The server ran the whole check on this folder (service/modelset/loader.py); the
                 # files are re-hashed here, the graph check is not repeated.
@@ -183,20 +209,20 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
                 warm_and_check(p, list(checked.manifest.labels))
                 predictors[msg.key] = p
                 layouts[msg.key] = Layout.of(len(checked.manifest.labels), checked.manifest.drift)
-                conn.send((Outcome.OK.value, None))
+                _send(conn, (Outcome.OK.value, None))
             elif isinstance(msg, Held):
-                conn.send((Outcome.OK.value, sorted(predictors)))
+                _send(conn, (Outcome.OK.value, sorted(predictors)))
             elif isinstance(msg, Drop):
                 layouts.pop(msg.key, None)
                 if predictors.pop(msg.key, None) is not None:
                     release_freed_memory()
-                conn.send((Outcome.OK.value, None))
+                _send(conn, (Outcome.OK.value, None))
             else:
-                conn.send((Outcome.ERROR.value, f"unknown request {msg!r}"))
+                _send(conn, (Outcome.ERROR.value, f"unknown request {msg!r}"))
         except BundleError as exc:
-            conn.send((Outcome.BUNDLE.value, exc.message))
+            _send(conn, (Outcome.BUNDLE.value, exc.message))
         except Exception as exc:  # noqa: BLE001 - reported to the server, which decides
-            conn.send((Outcome.ERROR.value, f"{type(exc).__name__}: {exc}"))
+            _send(conn, (Outcome.ERROR.value, f"{type(exc).__name__}: {exc}"))
 
 
 # A batch is put into a worker's pipe from the event loop only when it surely fits in the

@@ -81,3 +81,53 @@ def test_packed_run_equals_plain_run(tiny_bundles: dict[str, Path]) -> None:
     assert np.abs(plain.logits - packed.logits).max() <= 1e-5
     assert np.array_equal(plain.positions, packed.positions)
     assert np.abs(plain.contributions - packed.contributions).max() <= 1e-5
+
+
+def _sub_batches_one_by_one(lengths: np.ndarray, most: int) -> list[list[int]]:
+    """sub_batches' rule, one text at a time, as it was first written (the reference)."""
+    groups: list[list[int]] = []
+    current: list[int] = []
+    tokens = 0
+    for i in np.argsort(lengths, kind="stable").tolist():
+        n = max(int(lengths[i]), 1)
+        wasteful = (len(current) + 1) * n - (tokens + n) > max(SLACK * (tokens + n), CALL_TOKENS)
+        if current and (len(current) >= most or (wasteful and len(current) >= MIN_TEXTS)):
+            groups.append(current)
+            current, tokens = [], 0
+        current.append(i)
+        tokens += n
+    if current:
+        groups.append(current)
+    return groups
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.integers(0, 300), min_size=0, max_size=300), st.integers(1, 200))
+def test_sub_batches_cut_where_the_one_by_one_rule_cuts(lengths: list[int], most: int) -> None:
+    arr = np.asarray(lengths, dtype=np.int64)
+    assert [g.tolist() for g in sub_batches(arr, max_texts=most)] == _sub_batches_one_by_one(arr, most)
+
+
+def test_packed_sub_batches_are_padded_as_predictor_pads_them(tiny_bundles: dict[str, Path]) -> None:
+    """run_packed pads from one array of the batch's ids; each sub-batch's graph inputs, and so its
+    outputs, are exactly those of Predictor.pad on the same texts."""
+    p = Predictor.from_bundle(tiny_bundles["a"], batch_size=16)
+    encoded = [p.encode(t) for t in [*TEXTS, "", "x", "charged " * 500, "a b"]]
+    calls: list[tuple[np.ndarray, np.ndarray]] = []
+    run_arrays = p.run_arrays
+
+    def recording(ids: np.ndarray, lengths: np.ndarray) -> Any:
+        calls.append((ids.copy(), lengths.copy()))
+        return run_arrays(ids, lengths)
+
+    p.run_arrays = recording  # type: ignore[method-assign]
+    packed = run_packed(p, encoded)
+    groups = sub_batches(np.array([len(e.ids) for e in encoded]), max_texts=p.batch_size)
+    assert len(calls) == len(groups) > 3
+    for (ids, lengths), idx in zip(calls, groups, strict=True):
+        want_ids, want_lengths = p.pad([encoded[i] for i in idx])
+        assert ids.dtype == want_ids.dtype and lengths.dtype == want_lengths.dtype
+        assert np.array_equal(ids, want_ids) and np.array_equal(lengths, want_lengths)
+        lg, pl, ps, ct = run_arrays(want_ids, want_lengths)
+        assert np.array_equal(packed.logits[idx], lg) and np.array_equal(packed.positions[idx], ps)
+        assert np.array_equal(packed.pooled[idx], pl) and np.array_equal(packed.contributions[idx], ct)

@@ -1,0 +1,141 @@
+"""The service's batch span bookkeeping (service/inference/spans.py) against Predictor.spans.
+
+``Predictor.spans`` (registry/runtime.py) explains one text at a time with plain Python loops
+and is what the exporter's parity check and the registry's gates use; the service finds the same
+windows for a whole batch at once, on a dense grid (``_windows``) or, for grids too large, by
+sorting window keys (``_windows_sorted``). Both must give the very same spans: offsets, text,
+weights to the last bit, order. The graph's outputs are the real model's on hard Unicode, and
+made-up ones (hypothesis) that force ties, overlaps, clipped windows and empty texts.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from textsieve.registry.runtime import Encoded, Outputs, Predictor
+from textsieve.service.inference import spans
+from textsieve.service.inference.spans import explain
+
+HARD = [
+    "my card was charged twice 😀 for the café's ride… 修理 please",
+    "👩‍💻 login broken again, e\u0301 n\u0303o a\u0308\u0323 can't reset",
+    "\u200f שלום the invoice \u202e is wrong مرحبا \u200b thanks",
+    "ﬁx the Ⅻ repair １２３ ありがとう\tgreat\nservice",
+    "🇫🇷👍🏽 great great great thanks thanks the technician fixed it",
+    "charged " * 80,  # longer than max_length: truncated
+    "ok",
+    "qzxv wbbt plonk",
+    "",  # no tokens: no spans
+    "नमस्ते refund \ufeff\u2060 please",
+]
+
+
+def _reference(p: Predictor, encoded: list[Encoded], out: Outputs, ks: list[int]) -> list[list[dict[str, Any]]]:
+    best = p.probabilities(out.logits).argmax(axis=1)
+    return [
+        [s.public() for s in p.spans(e, out, row, int(best[row]), k)]
+        for row, (e, k) in enumerate(zip(encoded, ks, strict=True))
+    ]
+
+
+def _both_paths(
+    p: Predictor, encoded: list[Encoded], out: Outputs, ks: list[int], monkeypatch: pytest.MonkeyPatch
+) -> tuple[list[list[dict[str, Any]]], list[list[dict[str, Any]]]]:
+    dense = [r["spans"] for r in explain(p, encoded, out, ks)]
+    with monkeypatch.context() as m:
+        m.setattr(spans, "DENSE_CELLS", 0)  # every grid is "too large": the sorting path
+        by_sorting = [r["spans"] for r in explain(p, encoded, out, ks)]
+    return dense, by_sorting
+
+
+@pytest.fixture(scope="module")
+def predictor(tiny_bundles: dict[str, Path]) -> Predictor:
+    return Predictor.from_bundle(tiny_bundles["a"])
+
+
+def test_dense_and_sorted_windows_equal_predictor_spans_on_hard_unicode(
+    tiny_bundles: dict[str, Path], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    found = 0
+    for key in ("a", "b"):
+        p = Predictor.from_bundle(tiny_bundles[key])
+        encoded = [p.encode(t) for t in HARD]
+        out = p.run(encoded)
+        lengths = np.array([len(e.ids) for e in encoded])
+        best = p.probabilities(out.logits).argmax(axis=1)
+        # The batch above takes the dense path (else this test would only check the sorting one).
+        assert spans._windows(p, lengths, out, best, np.full(len(HARD), 3)) is not None
+        for ks in ([1] * len(HARD), [3] * len(HARD), [20] * len(HARD), [i % 4 for i in range(len(HARD))]):
+            want = _reference(p, encoded, out, ks)
+            dense, by_sorting = _both_paths(p, encoded, out, ks, monkeypatch)
+            assert dense == want
+            assert by_sorting == want
+            for text, row in zip(HARD, dense, strict=True):
+                for s in row:
+                    assert text[s["start"] : s["end"]] == s["text"]
+            found += sum(len(r) for r in dense)
+    assert found > 50
+
+
+@st.composite
+def _outputs(draw: st.DrawFn, p: Predictor, encoded: list[Encoded]) -> tuple[Outputs, list[int]]:
+    """Graph outputs as the graph could give them: each filter's window starts inside its text
+    (at most at length − width, or 0). Starts drawn from the first ``reach`` positions pile many
+    filters into one window (sums of several terms, where the order of adding shows); shares drawn
+    from a few values make windows tie; some rows get no positive share at all."""
+    n, widths, classes = len(encoded), p.filter_widths, len(p.labels)
+    rng = np.random.default_rng(draw(st.integers(0, 2**32 - 1)))
+    lengths = np.array([len(e.ids) for e in encoded])
+    last = np.maximum(lengths[:, None] - widths[None, :], 0)
+    reach = draw(st.sampled_from([1, 2, 3, 1000]))
+    positions = (rng.random((n, len(widths))) * np.minimum(last + 1, reach)).astype(np.int64)
+    # float32 shares of like size add up exactly in float64 whatever the order; shares 10⁻⁹ and
+    # 10⁴ apart do not, so a sum taken in another order than Predictor.spans's would show.
+    scales = np.array([1e-9, 1e-4, 1.0, 1e4])
+    pool = [-1.0, 0.0, 0.125, 0.5, 3.0, 1 / 3, *(rng.random(6) * rng.choice(scales, 6)).tolist()]
+    values = np.array(draw(st.lists(st.sampled_from(pool), min_size=1, max_size=5)))
+    contributions = rng.choice(values, size=(n, len(widths), classes)).astype(np.float32)
+    logits = rng.normal(size=(n, classes)).astype(np.float32)
+    pooled = np.abs(rng.normal(size=(n, len(widths)))).astype(np.float32)
+    ks = draw(st.lists(st.integers(0, 6), min_size=n, max_size=n))
+    return Outputs(logits, pooled, positions, contributions), ks
+
+
+def test_dense_and_sorted_windows_equal_predictor_spans_on_made_up_outputs(
+    predictor: Predictor, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    p = predictor
+    encoded = [p.encode(t) for t in HARD + ["a b", "refund", "the the the the"]]
+
+    @settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+    @given(_outputs(p, encoded))
+    def check(drawn: tuple[Outputs, list[int]]) -> None:
+        out, ks = drawn
+        want = _reference(p, encoded, out, ks)
+        dense, by_sorting = _both_paths(p, encoded, out, ks, monkeypatch)
+        assert dense == want
+        assert by_sorting == want
+
+    check()
+
+
+def test_a_window_outside_its_text_takes_the_sorting_path(predictor: Predictor) -> None:
+    """The graph never gives one (warm_and_check would refuse such a bundle); if it did, the
+    dense grid would put the window in the wrong cell, so the batch goes the old way instead."""
+    p = predictor
+    encoded = [p.encode(t) for t in ("my card was charged twice", "login broken")]
+    out = p.run(encoded)
+    best = p.probabilities(out.logits).argmax(axis=1)
+    lengths = np.array([len(e.ids) for e in encoded])
+    ks = np.array([3, 3])
+    assert spans._windows(p, lengths, out, best, ks) is not None
+    out.positions[1, 0] = lengths[1]  # starts at the text's end
+    assert spans._windows(p, lengths, out, best, ks) is None
+    out.positions[1, 0] = -1
+    assert spans._windows(p, lengths, out, best, ks) is None
