@@ -1,0 +1,169 @@
+"""Two checkouts of the service side by side: single-text requests, alternating windows.
+
+    .venv/bin/python bench/checkout_ab.py --a /path/to/main-checkout --b . [--floor] [--rounds 6] [--seconds 5]
+    .venv/bin/python bench/checkout_ab.py --a . --b . --b-env TEXTSIEVE_BATCH_WAIT_MS=0
+
+Each side is ``textsieve serve`` run from its own checkout (``PYTHONPATH`` pointing at it, with
+its own ``TEXTSIEVE_*`` variables from ``--a-env``/``--b-env``) on its own copy of the demo
+model's registry. Each round loads every server in turn (the order rotates and reverses: a
+window's speed depends on what ran just before it) with single-text requests over 32 kept-alive
+connections, closed loop, and reads from /proc the CPU time of the event loop (the server's main
+thread), of the server's other threads and of its worker processes. With ``--floor`` the HTTP
+floor (bench/http_floor.py from side b's checkout, answering the mean size of b's replies)
+takes a window in each round too, and ``single_text_vs_http_floor`` is computed per round for
+both sides. Prints each window and the medians; ratios are of the same round.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE))
+
+import demo_model  # noqa: E402
+import loadgen  # noqa: E402
+import servers  # noqa: E402
+from run import CONNECTIONS, SPANS, bodies, mean_reply_bytes, median  # noqa: E402
+from texts import bench_texts  # noqa: E402
+
+_TICKS = os.sysconf("SC_CLK_TCK")
+SERVE = "import sys; from textsieve.cli import main; sys.exit(main())"
+
+
+def _jiffies(path: str) -> int:
+    fields = Path(path).read_text().rsplit(")", 1)[1].split()
+    return int(fields[11]) + int(fields[12])
+
+
+def cpu_split(server: servers.Server) -> dict[str, float]:
+    """CPU seconds so far: the event loop (main thread), the server's other threads, its children."""
+    pid = server.proc.pid
+    loop = whole = children = 0
+    try:
+        loop = _jiffies(f"/proc/{pid}/task/{pid}/stat")
+        whole = _jiffies(f"/proc/{pid}/stat")
+    except OSError:
+        pass
+    for child in server.pids():
+        if child != pid:
+            try:
+                children += _jiffies(f"/proc/{child}/stat")
+            except OSError:
+                continue
+    return {"loop": loop / _TICKS, "threads": (whole - loop) / _TICKS, "workers": children / _TICKS}
+
+
+def window(server: servers.Server, body_list: list[bytes], seconds: float, wrk: str | None) -> dict[str, float]:
+    before = cpu_split(server)
+    res = loadgen.run_load(server.url + "/v1/predict", body_list, connections=CONNECTIONS, seconds=seconds, wrk=wrk)
+    after = cpu_split(server)
+    if res.errors or not res.requests:
+        raise RuntimeError(f"{server.name}: {res.errors} failed requests of {res.requests}; see {server.log}")
+    used = {k: after[k] - before[k] for k in after}
+    total = sum(used.values())
+    return {
+        "requests_per_s": res.requests / res.seconds,
+        "server_cpu_ms_per_request": 1000 * total / res.requests,
+        "loop_cpu_ms_per_request": 1000 * used["loop"] / res.requests,
+        "threads_cpu_ms_per_request": 1000 * used["threads"] / res.requests,
+        "workers_cpu_ms_per_request": 1000 * used["workers"] / res.requests,
+        "server_cores_busy": total / res.seconds,
+        "loop_cores_busy": used["loop"] / res.seconds,
+        "p50_ms": res.latency_ms["p50"],
+        "p99_ms": res.latency_ms["p99"],
+    }
+
+
+def _env(pairs: list[str]) -> dict[str, str]:
+    out = {}
+    for pair in pairs:
+        name, _, value = pair.partition("=")
+        out[name] = value
+    return out
+
+
+def main() -> int:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--a", required=True, help="checkout of side a (its folder holding textsieve/)")
+    p.add_argument("--b", required=True, help="checkout of side b")
+    p.add_argument("--a-env", action="append", default=[], metavar="NAME=VALUE")
+    p.add_argument("--b-env", action="append", default=[], metavar="NAME=VALUE")
+    p.add_argument("--rounds", type=int, default=6)
+    p.add_argument("--seconds", type=float, default=5.0)
+    p.add_argument("--floor", action="store_true", help="also load the HTTP floor (b's checkout) in each round")
+    args = p.parse_args()
+
+    model = demo_model.ensure_model()
+    work = demo_model.CACHE / "work"
+    body_list = bodies(bench_texts(4096), 1, SPANS)
+    wrk = loadgen.ensure_wrk()
+    sides = {"a": (Path(args.a).resolve(), _env(args.a_env)), "b": (Path(args.b).resolve(), _env(args.b_env))}
+    started: dict[str, servers.Server] = {}
+    try:
+        for name, (checkout, env) in sides.items():
+            registry = demo_model.live_registry(model, work / f"registry-checkout-ab-{name}")
+            port = servers.free_port()
+            cmd = [sys.executable, "-c", SERVE, "serve", "--registry", str(registry), "--port", str(port)]
+            side_env = {**env, "PYTHONPATH": str(checkout)}
+            started[name] = servers.start(name, cmd, "/readyz", port, work / f"checkout-ab-{name}.log", env=side_env)
+            loadgen.run_load(started[name].url + "/v1/predict", body_list, connections=CONNECTIONS, seconds=2, wrk=wrk)
+        names = ["a", "b"]
+        if args.floor:
+            port = servers.free_port()
+            size = mean_reply_bytes(started["b"], body_list)
+            cmd = [sys.executable, str(sides["b"][0] / "bench" / "http_floor.py"), "--port", str(port)]
+            cmd += ["--reply-bytes", str(size)]
+            env = {"PYTHONPATH": str(sides["b"][0])}
+            started["floor"] = servers.start("floor", cmd, "/readyz", port, work / "checkout-ab-floor.log", env=env)
+            names.append("floor")
+        rounds: list[dict[str, dict[str, float]]] = []
+        for i in range(args.rounds):
+            if len(names) == 2:
+                order = names if i % 2 == 0 else names[::-1]
+            else:  # each name first, middle and last in turn, forwards and backwards
+                order = names[i % len(names) :] + names[: i % len(names)]
+                order = order if i % 2 == 0 else order[::-1]
+            got = {name: window(started[name], body_list, args.seconds, wrk) for name in order}
+            rounds.append(got)
+            print(
+                f"round {i + 1} ({' then '.join(order)}; load {os.getloadavg()[0]:.2f}): "
+                + "; ".join(
+                    f"{n} {w['requests_per_s']:.0f} req/s, server {w['server_cpu_ms_per_request']:.3f} CPU-ms/req "
+                    f"({w['server_cores_busy']:.2f} cores), loop {w['loop_cpu_ms_per_request']:.3f} "
+                    f"({w['loop_cores_busy']:.2f} cores), p99 {w['p99_ms']:.1f} ms"
+                    for n, w in got.items()
+                ),
+                flush=True,
+            )
+    finally:
+        for server in started.values():
+            server.stop()
+    print(summary(rounds))
+    return 0
+
+
+def summary(rounds: list[dict[str, dict[str, float]]]) -> str:
+    out = []
+    if "floor" in rounds[0]:
+        for n in ("a", "b"):
+            vs = [r[n]["requests_per_s"] / r["floor"]["requests_per_s"] for r in rounds]
+            out.append(f"single_text_vs_http_floor ({n}): median {median(vs):.3f} ({min(vs):.3f}–{max(vs):.3f})")
+        floor = [r["floor"]["requests_per_s"] for r in rounds]
+        out.append(f"floor requests_per_s: median {median(floor):.0f} ({min(floor):.0f}–{max(floor):.0f})")
+    for key in rounds[0]["a"]:
+        per = {n: [r[n][key] for r in rounds] for n in ("a", "b")}
+        ratios = [r["b"][key] / r["a"][key] for r in rounds if r["a"][key]]
+        out.append(
+            f"{key}: a {median(per['a']):.3f} ({min(per['a']):.3f}–{max(per['a']):.3f}), "
+            f"b {median(per['b']):.3f} ({min(per['b']):.3f}–{max(per['b']):.3f}), "
+            f"b/a {median(ratios):.3f} ({min(ratios):.3f}–{max(ratios):.3f})"
+        )
+    return "\n".join(out)
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
