@@ -57,7 +57,11 @@ class InferencePool:
     def __init__(self, workers: int, mode: str = "threads", *, queue_wait_ms: float = 250.0) -> None:
         self.workers = workers
         self.mode = mode
-        self.procs = WorkerProcesses(workers) if mode == "processes" else None
+        try:  # the loop the pool is made on reads the workers' replies (see WorkerProcesses)
+            loop: asyncio.AbstractEventLoop | None = asyncio.get_running_loop()
+        except RuntimeError:
+            loop = None
+        self.procs = WorkerProcesses(workers, loop) if mode == "processes" else None
         # With processes, two threads (two batches in flight) per worker: the next batch waits
         # in the worker's pipe while it computes the current one (see procs._Worker).
         self.threads = workers * (PIPELINE if self.procs is not None else 1)
