@@ -1,9 +1,9 @@
 """Two checkouts of the service side by side: single-text requests, alternating windows.
 
     .venv/bin/python bench/checkout_ab.py --a /path/to/main-checkout --b . [--floor] [--rounds 6] [--seconds 5]
-    .venv/bin/python bench/checkout_ab.py --a . --b . --b-env TEXTSIEVE_BATCH_WAIT_MS=0
+    .venv/bin/python bench/checkout_ab.py --a . --b . --b-env TEXTSIEVE_BATCH_WAIT_MS=0 --texts 16
 
-Each side is ``textsieve serve`` run from its own checkout (``PYTHONPATH`` pointing at it, with
+Requests carry one text (``--texts`` for more; the CPU figures stay per request). Each side is ``textsieve serve`` run from its own checkout (``PYTHONPATH`` pointing at it, with
 its own ``TEXTSIEVE_*`` variables from ``--a-env``/``--b-env``) on its own copy of the demo
 model's registry. Each round loads every server in turn (the order rotates and reverses: a
 window's speed depends on what ran just before it) with single-text requests over 32 kept-alive
@@ -95,11 +95,12 @@ def main() -> int:
     p.add_argument("--rounds", type=int, default=6)
     p.add_argument("--seconds", type=float, default=5.0)
     p.add_argument("--floor", action="store_true", help="also load the HTTP floor (b's checkout) in each round")
+    p.add_argument("--texts", type=int, default=1, help="texts per request (make bench's batched load: 16)")
     args = p.parse_args()
 
     model = demo_model.ensure_model()
     work = demo_model.CACHE / "work"
-    body_list = bodies(bench_texts(4096), 1, SPANS)
+    body_list = bodies(bench_texts(4096), args.texts, SPANS)
     wrk = loadgen.ensure_wrk()
     sides = {"a": (Path(args.a).resolve(), _env(args.a_env)), "b": (Path(args.b).resolve(), _env(args.b_env))}
     started: dict[str, servers.Server] = {}
