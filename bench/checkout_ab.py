@@ -2,16 +2,19 @@
 
     .venv/bin/python bench/checkout_ab.py --a /path/to/main-checkout --b . [--floor] [--rounds 6] [--seconds 5]
     .venv/bin/python bench/checkout_ab.py --a . --b . --b-env TEXTSIEVE_BATCH_WAIT_MS=0 --texts 16
+    .venv/bin/python bench/checkout_ab.py --a /path/to/main-checkout --b . --floors 600   # server stacks only
 
-Requests carry one text (``--texts`` for more; the CPU figures stay per request). Each side is ``textsieve serve`` run from its own checkout (``PYTHONPATH`` pointing at it, with
-its own ``TEXTSIEVE_*`` variables from ``--a-env``/``--b-env``) on its own copy of the demo
-model's registry. Each round loads every server in turn (the order rotates and reverses: a
-window's speed depends on what ran just before it) with single-text requests over 32 kept-alive
-connections, closed loop, and reads from /proc the CPU time of the event loop (the server's main
-thread), of the server's other threads and of its worker processes. With ``--floor`` the HTTP
-floor (bench/http_floor.py from side b's checkout, answering the mean size of b's replies)
-takes a window in each round too, and ``single_text_vs_http_floor`` is computed per round for
-both sides. Prints each window and the medians; ratios are of the same round.
+Requests carry one text (``--texts`` for more; the CPU figures stay per request). Each side is
+``textsieve serve`` run from its own checkout (``PYTHONPATH`` pointing at it, with its own
+``TEXTSIEVE_*`` variables from ``--a-env``/``--b-env``) on its own copy of the demo model's
+registry; with ``--floors`` each side runs its checkout's bench/http_floor.py instead. Each
+round loads every server in turn (the order rotates and reverses: a window's speed depends on
+what ran just before it) with single-text requests over 32 kept-alive connections, closed loop,
+and reads from /proc the CPU time of the event loop (the server's main thread), of the server's
+other threads and of its worker processes. With ``--floor`` the HTTP floor (bench/http_floor.py
+from side b's checkout, answering the mean size of b's replies) takes a window in each round
+too, and ``single_text_vs_http_floor`` is computed per round for both sides. Prints each window
+and the medians; ratios are of the same round.
 """
 
 from __future__ import annotations
@@ -96,6 +99,12 @@ def main() -> int:
     p.add_argument("--seconds", type=float, default=5.0)
     p.add_argument("--floor", action="store_true", help="also load the HTTP floor (b's checkout) in each round")
     p.add_argument("--texts", type=int, default=1, help="texts per request (make bench's batched load: 16)")
+    p.add_argument(
+        "--floors",
+        type=int,
+        metavar="BYTES",
+        help="run each side's HTTP floor (answering BYTES) instead of the service",
+    )
     args = p.parse_args()
 
     model = demo_model.ensure_model()
@@ -109,6 +118,9 @@ def main() -> int:
             registry = demo_model.live_registry(model, work / f"registry-checkout-ab-{name}")
             port = servers.free_port()
             cmd = [sys.executable, "-c", SERVE, "serve", "--registry", str(registry), "--port", str(port)]
+            if args.floors:  # the side's own server stack with a fixed reply (bench/http_floor.py)
+                cmd = [sys.executable, str(checkout / "bench" / "http_floor.py"), "--port", str(port)]
+                cmd += ["--reply-bytes", str(args.floors)]
             side_env = {**env, "PYTHONPATH": str(checkout)}
             started[name] = servers.start(name, cmd, "/readyz", port, work / f"checkout-ab-{name}.log", env=side_env)
             loadgen.run_load(started[name].url + "/v1/predict", body_list, connections=CONNECTIONS, seconds=2, wrk=wrk)
@@ -158,6 +170,8 @@ def summary(rounds: list[dict[str, dict[str, float]]]) -> str:
     for key in rounds[0]["a"]:
         per = {n: [r[n][key] for r in rounds] for n in ("a", "b")}
         ratios = [r["b"][key] / r["a"][key] for r in rounds if r["a"][key]]
+        if not ratios:
+            continue
         out.append(
             f"{key}: a {median(per['a']):.3f} ({min(per['a']):.3f}–{max(per['a']):.3f}), "
             f"b {median(per['b']):.3f} ({min(per['b']):.3f}–{max(per['b']):.3f}), "
