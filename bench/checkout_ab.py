@@ -60,9 +60,11 @@ def cpu_split(server: servers.Server) -> dict[str, float]:
     return {"loop": loop / _TICKS, "threads": (whole - loop) / _TICKS, "workers": children / _TICKS}
 
 
-def window(server: servers.Server, body_list: list[bytes], seconds: float, wrk: str | None) -> dict[str, float]:
+def window(
+    server: servers.Server, body_list: list[bytes], seconds: float, wrk: str | None, connections: int = CONNECTIONS
+) -> dict[str, float]:
     before = cpu_split(server)
-    res = loadgen.run_load(server.url + "/v1/predict", body_list, connections=CONNECTIONS, seconds=seconds, wrk=wrk)
+    res = loadgen.run_load(server.url + "/v1/predict", body_list, connections=connections, seconds=seconds, wrk=wrk)
     after = cpu_split(server)
     if res.errors or not res.requests:
         raise RuntimeError(f"{server.name}: {res.errors} failed requests of {res.requests}; see {server.log}")
@@ -99,6 +101,7 @@ def main() -> int:
     p.add_argument("--seconds", type=float, default=5.0)
     p.add_argument("--floor", action="store_true", help="also load the HTTP floor (b's checkout) in each round")
     p.add_argument("--texts", type=int, default=1, help="texts per request (make bench's batched load: 16)")
+    p.add_argument("--connections", type=int, default=CONNECTIONS, help="closed-loop connections")
     p.add_argument(
         "--floors",
         type=int,
@@ -140,7 +143,7 @@ def main() -> int:
             else:  # each name first, middle and last in turn, forwards and backwards
                 order = names[i % len(names) :] + names[: i % len(names)]
                 order = order if i % 2 == 0 else order[::-1]
-            got = {name: window(started[name], body_list, args.seconds, wrk) for name in order}
+            got = {name: window(started[name], body_list, args.seconds, wrk, args.connections) for name in order}
             rounds.append(got)
             print(
                 f"round {i + 1} ({' then '.join(order)}; load {os.getloadavg()[0]:.2f}): "
