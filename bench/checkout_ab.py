@@ -1,25 +1,28 @@
-"""Two checkouts of textsieve served side by side under the benchmark's batched load, in turn.
+"""Two checkouts of the service side by side: single-text requests, alternating windows.
 
-    .venv/bin/python bench/checkout_ab.py --a /path/to/base --b . [--rounds 8] [--seconds 6]
+    .venv/bin/python bench/checkout_ab.py --a /path/to/main-checkout --b . [--floor] [--rounds 6] [--seconds 5]
+    .venv/bin/python bench/checkout_ab.py --a . --b . --b-env TEXTSIEVE_BATCH_WAIT_MS=0 --texts 16
+    .venv/bin/python bench/checkout_ab.py --a /path/to/main-checkout --b . --floors 600   # server stacks only
 
-Each checkout's ``textsieve serve`` runs with ``PYTHONPATH`` on that checkout, on its own copy of
-the demo model's registry. Each round loads one and then the other (the order alternates: a
-window's speed depends on what ran just before it) with ``make bench``'s "service batched" load:
-32 kept-alive connections, 16 texts a request, 3 spans, closed loop. It reads from /proc the CPU
-time of each server's whole process tree and, apart, of its worker processes (those whose command
-line is the multiprocessing fork server's child), and from /metrics the mean texts per batch, and
-prints each window, the medians and the per-round ratios b ÷ a.
+Requests carry one text (``--texts`` for more; the CPU figures stay per request). Each side is
+``textsieve serve`` run from its own checkout (``PYTHONPATH`` pointing at it, with its own
+``TEXTSIEVE_*`` variables from ``--a-env``/``--b-env``) on its own copy of the demo model's
+registry; with ``--floors`` each side runs its checkout's bench/http_floor.py instead. Each
+round loads every server in turn (the order rotates and reverses: a window's speed depends on
+what ran just before it) with single-text requests over 32 kept-alive connections, closed loop,
+and reads from /proc the CPU time of the event loop (the server's main thread), of the server's
+other threads and of its worker processes. With ``--floor`` the HTTP floor (bench/http_floor.py
+from side b's checkout, answering the mean size of b's replies) takes a window in each round
+too, and ``single_text_vs_http_floor`` is computed per round for both sides. Prints each window
+and the medians; ratios are of the same round.
 """
 
 from __future__ import annotations
 
 import argparse
 import os
-import statistics
 import sys
-import urllib.request
 from pathlib import Path
-from typing import Any
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
@@ -27,123 +30,157 @@ sys.path.insert(0, str(HERE))
 import demo_model  # noqa: E402
 import loadgen  # noqa: E402
 import servers  # noqa: E402
-from run import CONNECTIONS, SPANS, TEXTS_PER_REQUEST, bodies  # noqa: E402
+from run import CONNECTIONS, SPANS, bodies, mean_reply_bytes, median  # noqa: E402
 from texts import bench_texts  # noqa: E402
 
 _TICKS = os.sysconf("SC_CLK_TCK")
+SERVE = "import sys; from textsieve.cli import main; sys.exit(main())"
 
 
-def _cpu(pid: int) -> float:
-    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
-    return (int(fields[11]) + int(fields[12])) / _TICKS
+def _jiffies(path: str) -> int:
+    fields = Path(path).read_text().rsplit(")", 1)[1].split()
+    return int(fields[11]) + int(fields[12])
 
 
-def worker_seconds(server: servers.Server) -> float:
-    """CPU of the worker processes: below the server, forked by the fork server (not the fork server itself)."""
-    total = 0.0
-    for pid in server.pids():
-        try:
-            cmd = Path(f"/proc/{pid}/cmdline").read_bytes()
-            parent_cmd = Path(f"/proc/{_ppid(pid)}/cmdline").read_bytes()
-            if b"forkserver" in cmd and b"forkserver" in parent_cmd:
-                total += _cpu(pid)
-        except OSError:
-            continue
-    return total
+def cpu_split(server: servers.Server) -> dict[str, float]:
+    """CPU seconds so far: the event loop (main thread), the server's other threads, its children."""
+    pid = server.proc.pid
+    loop = whole = children = 0
+    try:
+        loop = _jiffies(f"/proc/{pid}/task/{pid}/stat")
+        whole = _jiffies(f"/proc/{pid}/stat")
+    except OSError:
+        pass
+    for child in server.pids():
+        if child != pid:
+            try:
+                children += _jiffies(f"/proc/{child}/stat")
+            except OSError:
+                continue
+    return {"loop": loop / _TICKS, "threads": (whole - loop) / _TICKS, "workers": children / _TICKS}
 
 
-def _ppid(pid: int) -> int:
-    return int(Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[1])
-
-
-def batches(server: servers.Server) -> tuple[float, float]:
-    """Texts and batches the server has run so far (its batch-size histogram on /metrics)."""
-    page = urllib.request.urlopen(server.url + "/metrics", timeout=10).read().decode()
-    found = {"sum": 0.0, "count": 0.0}
-    for line in page.splitlines():
-        for part in found:
-            if line.startswith(f"textsieve_batch_texts_{part}{{"):
-                found[part] += float(line.rsplit(" ", 1)[1])
-    return found["sum"], found["count"]
-
-
-def window(server: servers.Server, body_list: list[bytes], seconds: float, wrk: str | None) -> dict[str, float]:
-    cpu0, work0, (texts0, batches0) = server.cpu_seconds(), worker_seconds(server), batches(server)
-    res = loadgen.run_load(server.url + "/v1/predict", body_list, connections=CONNECTIONS, seconds=seconds, wrk=wrk)
-    cpu, work = server.cpu_seconds() - cpu0, worker_seconds(server) - work0
-    texts1, batches1 = batches(server)
-    if res.errors:
-        raise RuntimeError(f"{server.name}: {res.errors} failed requests ({res.raw['errors']}); see {server.log}")
-    texts = res.requests * TEXTS_PER_REQUEST
+def window(
+    server: servers.Server, body_list: list[bytes], seconds: float, wrk: str | None, connections: int = CONNECTIONS
+) -> dict[str, float]:
+    before = cpu_split(server)
+    res = loadgen.run_load(server.url + "/v1/predict", body_list, connections=connections, seconds=seconds, wrk=wrk)
+    after = cpu_split(server)
+    if res.errors or not res.requests:
+        raise RuntimeError(f"{server.name}: {res.errors} failed requests of {res.requests}; see {server.log}")
+    used = {k: after[k] - before[k] for k in after}
+    total = sum(used.values())
     return {
-        "texts_per_s": texts / res.seconds,
-        "cpu_s_per_1k": 1000 * cpu / texts,
-        "worker_us_per_text": 1e6 * work / texts,
-        "rest_us_per_text": 1e6 * (cpu - work) / texts,
+        "requests_per_s": res.requests / res.seconds,
+        "server_cpu_ms_per_request": 1000 * total / res.requests,
+        "loop_cpu_ms_per_request": 1000 * used["loop"] / res.requests,
+        "threads_cpu_ms_per_request": 1000 * used["threads"] / res.requests,
+        "workers_cpu_ms_per_request": 1000 * used["workers"] / res.requests,
+        "server_cores_busy": total / res.seconds,
+        "loop_cores_busy": used["loop"] / res.seconds,
+        "p50_ms": res.latency_ms["p50"],
         "p99_ms": res.latency_ms["p99"],
-        "texts_per_batch": (texts1 - texts0) / max(batches1 - batches0, 1),
     }
 
 
-def start(name: str, checkout: Path, registry: Path, work: Path) -> servers.Server:
-    port = servers.free_port()
-    cmd = [str(Path(sys.executable).with_name("textsieve")), "serve", "--registry", str(registry), "--port", str(port)]
-    # A shared, busy machine must not make either server shed load (503): the bound is raised for both.
-    env = {"PYTHONPATH": str(checkout.resolve()), "TEXTSIEVE_QUEUE_WAIT_MS": "20000"}
-    # Run from the checkout itself: the worker processes' fork server is started with `python -c`,
-    # which puts the working directory first on its path, ahead of PYTHONPATH (Python 3.11's fork
-    # server does not apply the sys_path it is given), so from anywhere else both servers' workers
-    # would import the textsieve found there.
-    return servers.start(name, cmd, "/readyz", port, work / f"checkout-ab-{name}.log", env=env, cwd=checkout.resolve())
+def _env(pairs: list[str]) -> dict[str, str]:
+    out = {}
+    for pair in pairs:
+        name, _, value = pair.partition("=")
+        out[name] = value
+    return out
 
 
 def main() -> int:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--a", type=Path, required=True, help="the base checkout")
-    parser.add_argument("--b", type=Path, required=True, help="the changed checkout")
-    parser.add_argument("--rounds", type=int, default=8)
-    parser.add_argument("--seconds", type=float, default=6.0)
-    args = parser.parse_args()
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--a", required=True, help="checkout of side a (its folder holding textsieve/)")
+    p.add_argument("--b", required=True, help="checkout of side b")
+    p.add_argument("--a-env", action="append", default=[], metavar="NAME=VALUE")
+    p.add_argument("--b-env", action="append", default=[], metavar="NAME=VALUE")
+    p.add_argument("--rounds", type=int, default=6)
+    p.add_argument("--seconds", type=float, default=5.0)
+    p.add_argument("--floor", action="store_true", help="also load the HTTP floor (b's checkout) in each round")
+    p.add_argument("--texts", type=int, default=1, help="texts per request (make bench's batched load: 16)")
+    p.add_argument("--connections", type=int, default=CONNECTIONS, help="closed-loop connections")
+    p.add_argument(
+        "--floors",
+        type=int,
+        metavar="BYTES",
+        help="run each side's HTTP floor (answering BYTES) instead of the service",
+    )
+    args = p.parse_args()
+
     model = demo_model.ensure_model()
     work = demo_model.CACHE / "work"
-    body_list = bodies(bench_texts(4096), TEXTS_PER_REQUEST, SPANS)
+    body_list = bodies(bench_texts(4096), args.texts, SPANS)
     wrk = loadgen.ensure_wrk()
-    started = {}
+    sides = {"a": (Path(args.a).resolve(), _env(args.a_env)), "b": (Path(args.b).resolve(), _env(args.b_env))}
+    started: dict[str, servers.Server] = {}
     try:
-        for name, checkout in (("a", args.a), ("b", args.b)):
-            registry = demo_model.live_registry(model, work / f"checkout-ab-registry-{name}")
-            started[name] = start(name, checkout, registry, work)
-        for s in started.values():  # warm: the first batches of each shape allocate
-            loadgen.run_load(s.url + "/v1/predict", body_list, connections=CONNECTIONS, seconds=2, wrk=wrk)
-        rows: dict[str, list[dict[str, float]]] = {"a": [], "b": []}
-        for r in range(args.rounds):
-            for name in ("a", "b") if r % 2 == 0 else ("b", "a"):
-                w = window(started[name], body_list, args.seconds, wrk)
-                rows[name].append(w)
-                print(
-                    f"round {r} {name}: {w['texts_per_s']:8.0f} texts/s  {w['cpu_s_per_1k']:.4f} CPU-s/1k texts  "
-                    f"workers {w['worker_us_per_text']:5.1f} µs/text  rest {w['rest_us_per_text']:5.1f}  "
-                    f"p99 {w['p99_ms']:.1f} ms  {w['texts_per_batch']:.0f} texts a batch",
-                    flush=True,
-                )
-        print(f"\nload average at the end: {os.getloadavg()}")
-        report(rows)
+        for name, (checkout, env) in sides.items():
+            registry = demo_model.live_registry(model, work / f"registry-checkout-ab-{name}")
+            port = servers.free_port()
+            cmd = [sys.executable, "-c", SERVE, "serve", "--registry", str(registry), "--port", str(port)]
+            if args.floors:  # the side's own server stack with a fixed reply (bench/http_floor.py)
+                cmd = [sys.executable, str(checkout / "bench" / "http_floor.py"), "--port", str(port)]
+                cmd += ["--reply-bytes", str(args.floors)]
+            side_env = {**env, "PYTHONPATH": str(checkout)}
+            started[name] = servers.start(name, cmd, "/readyz", port, work / f"checkout-ab-{name}.log", env=side_env)
+            loadgen.run_load(started[name].url + "/v1/predict", body_list, connections=CONNECTIONS, seconds=2, wrk=wrk)
+        names = ["a", "b"]
+        if args.floor:
+            port = servers.free_port()
+            size = mean_reply_bytes(started["b"], body_list)
+            cmd = [sys.executable, str(sides["b"][0] / "bench" / "http_floor.py"), "--port", str(port)]
+            cmd += ["--reply-bytes", str(size)]
+            env = {"PYTHONPATH": str(sides["b"][0])}
+            started["floor"] = servers.start("floor", cmd, "/readyz", port, work / "checkout-ab-floor.log", env=env)
+            names.append("floor")
+        rounds: list[dict[str, dict[str, float]]] = []
+        for i in range(args.rounds):
+            if len(names) == 2:
+                order = names if i % 2 == 0 else names[::-1]
+            else:  # each name first, middle and last in turn, forwards and backwards
+                order = names[i % len(names) :] + names[: i % len(names)]
+                order = order if i % 2 == 0 else order[::-1]
+            got = {name: window(started[name], body_list, args.seconds, wrk, args.connections) for name in order}
+            rounds.append(got)
+            print(
+                f"round {i + 1} ({' then '.join(order)}; load {os.getloadavg()[0]:.2f}): "
+                + "; ".join(
+                    f"{n} {w['requests_per_s']:.0f} req/s, server {w['server_cpu_ms_per_request']:.3f} CPU-ms/req "
+                    f"({w['server_cores_busy']:.2f} cores), loop {w['loop_cpu_ms_per_request']:.3f} "
+                    f"({w['loop_cores_busy']:.2f} cores), p99 {w['p99_ms']:.1f} ms"
+                    for n, w in got.items()
+                ),
+                flush=True,
+            )
     finally:
-        for s in started.values():
-            s.stop()
+        for server in started.values():
+            server.stop()
+    print(summary(rounds))
     return 0
 
 
-def report(rows: dict[str, list[dict[str, Any]]]) -> None:
-    keys = ["texts_per_s", "cpu_s_per_1k", "worker_us_per_text", "rest_us_per_text", "p99_ms", "texts_per_batch"]
-    for k in keys:
-        a = [w[k] for w in rows["a"]]
-        b = [w[k] for w in rows["b"]]
-        ratios = [y / x for x, y in zip(a, b, strict=True) if x]
-        print(
-            f"{k:20s} a {statistics.median(a):10.4g}  b {statistics.median(b):10.4g}  "
-            f"b/a median {statistics.median(ratios):.3f} (range {min(ratios):.3f}–{max(ratios):.3f})"
+def summary(rounds: list[dict[str, dict[str, float]]]) -> str:
+    out = []
+    if "floor" in rounds[0]:
+        for n in ("a", "b"):
+            vs = [r[n]["requests_per_s"] / r["floor"]["requests_per_s"] for r in rounds]
+            out.append(f"single_text_vs_http_floor ({n}): median {median(vs):.3f} ({min(vs):.3f}–{max(vs):.3f})")
+        floor = [r["floor"]["requests_per_s"] for r in rounds]
+        out.append(f"floor requests_per_s: median {median(floor):.0f} ({min(floor):.0f}–{max(floor):.0f})")
+    for key in rounds[0]["a"]:
+        per = {n: [r[n][key] for r in rounds] for n in ("a", "b")}
+        ratios = [r["b"][key] / r["a"][key] for r in rounds if r["a"][key]]
+        if not ratios:
+            continue
+        out.append(
+            f"{key}: a {median(per['a']):.3f} ({min(per['a']):.3f}–{max(per['a']):.3f}), "
+            f"b {median(per['b']):.3f} ({min(per['b']):.3f}–{max(per['b']):.3f}), "
+            f"b/a {median(ratios):.3f} ({min(ratios):.3f}–{max(ratios):.3f})"
         )
+    return "\n".join(out)
 
 
 if __name__ == "__main__":

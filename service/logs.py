@@ -14,6 +14,7 @@ import datetime as dt
 import logging
 import sys
 import threading
+import time
 from typing import Any, TextIO
 
 import orjson
@@ -21,13 +22,29 @@ import orjson
 ACCESS = "textsieve.access"
 
 
+def _head(created: float, level: str, name: str) -> dict[str, Any]:
+    return {
+        "ts": dt.datetime.fromtimestamp(created, dt.UTC).isoformat(timespec="milliseconds"),
+        "level": level,
+        "logger": name,
+    }
+
+
+def fields_line(created: float, name: str, fields: dict[str, Any]) -> str:
+    """The line :class:`JsonFormatter` makes of an INFO record of logger ``name`` carrying ``fields``."""
+    return orjson.dumps(_head(created, "info", name) | fields, default=str).decode()
+
+
+def _fields_line_or_note(created: float, name: str, fields: dict[str, Any]) -> str:
+    try:
+        return fields_line(created, name, fields)
+    except Exception as exc:  # noqa: BLE001 - logging must never stop the writer
+        return fields_line(created, name, {"event": "unwritable", "error": f"{type(exc).__name__}: {exc}"})
+
+
 class JsonFormatter(logging.Formatter):
     def format(self, record: logging.LogRecord) -> str:
-        entry: dict[str, Any] = {
-            "ts": dt.datetime.fromtimestamp(record.created, dt.UTC).isoformat(timespec="milliseconds"),
-            "level": record.levelname.lower(),
-            "logger": record.name,
-        }
+        entry = _head(record.created, record.levelname.lower(), record.name)
         fields = getattr(record, "fields", None)
         if isinstance(fields, dict):
             entry.update(fields)
@@ -48,7 +65,8 @@ class BatchedLineHandler(logging.Handler):
         super().__init__()
         self.stream = stream
         self.flush_seconds = flush_seconds
-        self._pending: list[str] = []
+        # Lines, or (time, logger name, fields) to be made into lines by the writer thread.
+        self._pending: list[str | tuple[float, str, dict[str, Any]]] = []
         self._write_lock = threading.Lock()
         self._wake = threading.Event()
         self._closed = False
@@ -66,6 +84,13 @@ class BatchedLineHandler(logging.Handler):
         if record.levelno >= logging.WARNING:
             self._wake.set()
 
+    def add_fields(self, name: str, fields: dict[str, Any]) -> None:
+        """An INFO line of logger ``name`` carrying ``fields``, made and written by the writer thread:
+        what ``logging.getLogger(name).info(..., extra={"fields": fields})`` would write, without a
+        LogRecord (nor the caller's stack frame it looks up) made on the caller's thread. The access
+        log takes this path for every request (see :func:`line_handler`)."""
+        self._pending.append((time.time(), name, fields))  # one append: atomic, as flush swaps the list
+
     def _run(self) -> None:
         while not self._closed:
             self._wake.wait(self.flush_seconds)
@@ -75,9 +100,10 @@ class BatchedLineHandler(logging.Handler):
     def flush(self) -> None:
         with self._write_lock:
             with self.lock:  # type: ignore[union-attr]
-                lines, self._pending = self._pending, []
-            if not lines:
+                pending, self._pending = self._pending, []
+            if not pending:
                 return
+            lines = [p if isinstance(p, str) else _fields_line_or_note(*p) for p in pending]
             try:
                 self.stream.write("\n".join(lines) + "\n")
                 self.stream.flush()
@@ -91,6 +117,33 @@ class BatchedLineHandler(logging.Handler):
         super().close()
 
 
+def line_handler(logger: logging.Logger) -> BatchedLineHandler | None:
+    """The handler that an INFO record of ``logger`` would reach, when that is one
+    :class:`BatchedLineHandler` with the :class:`JsonFormatter` and nothing filters on the way (as
+    :func:`configure` sets things up): the caller may then hand it fields (``add_fields``) instead
+    of logging a record. None otherwise (another handler, a filter, a level that drops INFO, a
+    test's log capture), and the caller logs as usual."""
+    if logger.disabled or logger.filters or not logger.isEnabledFor(logging.INFO):
+        return None
+    found: BatchedLineHandler | None = None
+    node: logging.Logger | None = logger
+    while node is not None:
+        for h in node.handlers:
+            if (
+                found is not None
+                or not isinstance(h, BatchedLineHandler)
+                or type(h.formatter) is not JsonFormatter
+                or h.filters
+                or h.level > logging.INFO
+            ):
+                return None
+            found = h
+        if not node.propagate:
+            break
+        node = node.parent
+    return found
+
+
 def configure(level: str = "INFO") -> None:
     """Route textsieve's and uvicorn's loggers to stderr as JSON lines (used by ``serve``)."""
     handler = BatchedLineHandler(sys.stderr)
@@ -102,4 +155,4 @@ def configure(level: str = "INFO") -> None:
         logger.propagate = False
 
 
-__all__ = ["ACCESS", "BatchedLineHandler", "FLUSH_SECONDS", "JsonFormatter", "configure"]
+__all__ = ["ACCESS", "BatchedLineHandler", "FLUSH_SECONDS", "JsonFormatter", "configure", "fields_line", "line_handler"]

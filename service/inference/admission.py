@@ -22,6 +22,8 @@ from textsieve.errors import DeadlinePassedError, OverloadedError
 INITIAL_TEXTS_PER_SECOND_PER_THREAD = 1000.0
 # Exponential decay of the rate estimate, per text measured: recent work counts the most.
 DECAY_TEXTS = 2000.0
+# Weight of each admission in ``mean_queued``: about the last 30 requests count.
+MEAN_WEIGHT = 1 / 32
 
 
 class Admission:
@@ -31,6 +33,7 @@ class Admission:
         self.max_wait = max_wait_seconds
         self.threads = threads
         self.queued = 0
+        self.mean_queued = 0.0  # admitted texts as each request is admitted, averaged (the batcher's target)
         self.refused = 0
         self.deadline_passed = 0
         self._texts = 0.0  # decayed sums of texts and thread-seconds measured
@@ -60,6 +63,7 @@ class Admission:
                 retry_after=max(1, math.ceil(wait)),
             )
         self.queued += texts
+        self.mean_queued += (self.queued - self.mean_queued) * MEAN_WEIGHT
 
     def finished(self, texts: int) -> None:
         self.queued -= texts

@@ -9,10 +9,14 @@ inference threads (default: one per core) each own one single-thread onnxruntime
 loaded version and do all of a batch's work themselves; onnxruntime releases the GIL inside
 ``session.run``, but tokenizing and building replies take turns with the event loop on the GIL.
 At most ``workers`` × 2 batches are in flight with processes (one computing and one waiting in
-each worker's pipe), ``workers`` with threads. Each served
-version has one collector task on the event loop: it waits for a free slot, then takes queued
-texts in arrival order, up to ``batch_max_texts``, waiting at most ``batch_wait_ms`` after the
-oldest text arrived for more to join. Under load the wait for a free slot is what fills
+each worker's pipe), ``workers`` with threads.
+
+Dispatch. A batch's worth of texts is the recently admitted texts shared out over the workers
+(:meth:`Batcher._target`). When a request's texts make the queue reach it and a slot is free,
+the batch leaves at once from that request's own task. Otherwise each served version's collector
+task on the event loop waits for a free slot, then for the queue to reach the target, or
+``batch_wait_ms`` after the oldest text arrived, whichever comes first, and takes queued texts
+in arrival order, up to ``batch_max_texts``. Under load the wait for a free slot is what fills
 batches; the explicit wait only matters when workers are idle. The worker encodes the batch,
 sorts it by length and runs it as sub-batches each padded only to its own longest text
 (:mod:`textsieve.service.inference.packing`), and builds the reply dicts, so the event loop only
@@ -25,6 +29,7 @@ from __future__ import annotations
 import asyncio
 import functools
 import itertools
+import math
 import threading
 import time
 from collections import deque
@@ -57,7 +62,11 @@ class InferencePool:
     def __init__(self, workers: int, mode: str = "threads", *, queue_wait_ms: float = 250.0) -> None:
         self.workers = workers
         self.mode = mode
-        self.procs = WorkerProcesses(workers) if mode == "processes" else None
+        try:  # the loop the pool is made on reads the workers' replies (see WorkerProcesses)
+            loop: asyncio.AbstractEventLoop | None = asyncio.get_running_loop()
+        except RuntimeError:
+            loop = None
+        self.procs = WorkerProcesses(workers, loop) if mode == "processes" else None
         # With processes, two threads (two batches in flight) per worker: the next batch waits
         # in the worker's pipe while it computes the current one (see procs._Worker).
         self.threads = workers * (PIPELINE if self.procs is not None else 1)
@@ -148,6 +157,7 @@ class Batcher:
         self.wait = wait_ms / 1000.0
         self.metrics = metrics.for_version(served.name, served.version)  # children resolved once, not per batch
         self._queue: deque[_Job] = deque()
+        self._untaken = 0  # texts queued and not yet taken into a batch
         self._wakeup = asyncio.Event()
         self._task: asyncio.Task[None] | None = None
         self._inflight: set[asyncio.Future[_Done]] = set()
@@ -184,7 +194,14 @@ class Batcher:
             if keep_scores:
                 job.scores = LiveScores.empty(len(texts))
             self._queue.append(job)
-            self._wakeup.set()
+            self._untaken += len(texts)
+            # Enough texts for a batch and a slot free: it leaves now, from this request's task,
+            # rather than when the collector's turn on the loop comes (after every request that
+            # arrived in the same burst): the workers start while the loop still reads requests.
+            while self._untaken >= self._target() and not self.pool.slots.locked():
+                await self._dispatch_now()
+            if self._queue:  # what is left: the collector's
+                self._wakeup.set()
             return await job.future, job.scores
         finally:
             admission.finished(len(texts))
@@ -199,19 +216,35 @@ class Batcher:
                 try:
                     self.pool.admission.check_deadline(job.deadline, now)
                 except DeadlinePassedError as exc:  # passed while queued: answer without computing
+                    self._untaken -= len(job.texts)
                     if not job.future.done():
                         job.future.set_exception(exc)
                     continue
             hi = min(len(job.texts), job.taken + min(room, QUANTUM))
             pieces.append(_Piece(job, job.taken, hi))
             room -= hi - job.taken
+            self._untaken -= hi - job.taken
             job.taken = hi
             if hi < len(job.texts):
                 self._queue.append(job)  # its next turn comes after the requests behind it
         return pieces
 
+    def _target(self) -> int:
+        """Texts worth a batch now: the texts recently admitted, shared out over the worker
+        processes (or inference threads), at least 1 and at most ``max_texts``.
+
+        Under a closed loop of N single-text callers, about N/workers texts go per batch: while the
+        workers compute one group, the event loop answers the previous group and reads the next
+        requests, instead of the whole crowd travelling as one batch (loop and workers then take
+        turns, each idle while the other works: bench/README.md). One caller alone waits for no one.
+        """
+        mean = self.pool.admission.mean_queued
+        return max(1, min(self.max_texts, math.ceil(mean / self.pool.workers)))
+
     async def _collect(self) -> None:
-        loop = asyncio.get_running_loop()
+        """Batches whose texts did not reach :meth:`_target` on arrival (see :meth:`_submit`): once a
+        slot is free, the queued texts go when they reach the target, or ``wait`` after the oldest
+        arrived, whichever comes first."""
         slots = self.pool.slots
         while True:
             while not self._queue:
@@ -220,37 +253,53 @@ class Batcher:
             await slots.acquire()
             pieces: list[_Piece] = []
             try:
-                deadline = self._queue[0].enqueued + self.wait if self._queue else 0.0
-                pieces = self._take(self.max_texts)
-                count = sum(p.hi - p.lo for p in pieces)
-                while count < self.max_texts and (left := deadline - time.perf_counter()) > 0:
+                while self._queue and self._untaken < self._target():
+                    left = self._queue[0].enqueued + self.wait - time.perf_counter()
+                    if left <= 0:
+                        break
                     self._wakeup.clear()
-                    if not self._queue:
-                        try:
-                            await asyncio.wait_for(self._wakeup.wait(), left)
-                        except TimeoutError:
-                            break
-                    more = self._take(self.max_texts - count)
-                    pieces.extend(more)
-                    count += sum(p.hi - p.lo for p in more)
-                if not pieces:
+                    try:
+                        await asyncio.wait_for(self._wakeup.wait(), left)
+                    except TimeoutError:
+                        break
+                pieces = self._take(self.max_texts)
+                if not pieces:  # a request's own dispatch took them meanwhile
                     slots.release()
                     continue
-                texts = [t for p in pieces for t in p.job.texts[p.lo : p.hi]]
-                ks = [p.job.spans for p in pieces for _ in range(p.hi - p.lo)]
-                fut: asyncio.Future[_Done]
-                if self.pool.procs is not None and self.served.worker_key is not None:
-                    fut = loop.create_task(self._work_in_process(texts, ks))
-                else:
-                    fut = loop.run_in_executor(self.pool.executor, self._work, texts, ks)
+                self._dispatch(pieces)
             except BaseException:  # cancelled at shutdown: texts already taken must not hang
                 slots.release()
                 for p in pieces:
                     if not p.job.future.done():
                         p.job.future.set_exception(UnavailableError("the service is shutting down"))
                 raise
-            self._inflight.add(fut)
-            fut.add_done_callback(functools.partial(self._finish, pieces=pieces))
+
+    async def _dispatch_now(self) -> None:
+        """Take a free slot (the caller saw one: this does not wait) and send the queue's texts."""
+        slots = self.pool.slots
+        await slots.acquire()
+        pieces = self._take(self.max_texts)
+        if not pieces:  # their deadlines passed
+            slots.release()
+            return
+        try:
+            self._dispatch(pieces)
+        except BaseException:
+            slots.release()
+            raise
+
+    def _dispatch(self, pieces: list[_Piece]) -> None:
+        """Send ``pieces`` as one batch (a slot is already held for it); ``_finish`` routes the results."""
+        texts = [t for p in pieces for t in p.job.texts[p.lo : p.hi]]
+        ks = [p.job.spans for p in pieces for _ in range(p.hi - p.lo)]
+        fut: asyncio.Future[_Done]
+        loop = asyncio.get_running_loop()
+        if self.pool.procs is not None and self.served.worker_key is not None:
+            fut = loop.create_task(self._work_in_process(texts, ks))
+        else:
+            fut = loop.run_in_executor(self.pool.executor, self._work, texts, ks)
+        self._inflight.add(fut)
+        fut.add_done_callback(functools.partial(self._finish, pieces=pieces))
 
     async def _work_in_process(self, texts: list[str], ks: list[int]) -> _Done:
         """On the event loop: the batch goes to a worker process and its reply comes back here,
@@ -340,6 +389,7 @@ class Batcher:
                 pass
         while self._queue:
             job = self._queue.popleft()
+            self._untaken -= len(job.texts) - job.taken
             if not job.future.done():
                 job.future.set_exception(UnavailableError("the service is shutting down"))
         if self._inflight:
@@ -347,7 +397,7 @@ class Batcher:
 
     @property
     def queued(self) -> int:
-        return sum(len(j.texts) - j.taken for j in self._queue)
+        return self._untaken
 
 
 __all__ = ["Batcher", "InferencePool", "LiveScores"]

@@ -6,8 +6,10 @@ loop; on the 2-core benchmark machine that capped the server at about 1.25 busy 
 processes (the default) the event loop puts each batch into the pipe of the least busy worker
 process (:meth:`WorkerProcesses.run_async`); the worker encodes, runs its single-thread session,
 explains, and sends back each text's reply already serialised as JSON, which the server embeds
-as it is (``orjson.Fragment``); one reply thread per worker reads its pipe and hands each reply to
-the loop. Blocking calls (loading, dropping, shadow scoring, a batch too large for the pipe, the
+as it is (``orjson.Fragment``); the event loop reads each worker's pipe itself when it becomes
+readable (``loop.add_reader``) and settles the batch's future there (without a loop, for instance
+a ``WorkerProcesses`` made outside the server, a reader thread per worker does).
+Blocking calls (loading, dropping, shadow scoring, a batch too large for the pipe, the
 retry after a worker died) go through :meth:`_Worker.call` from a thread.
 
 Workers are forked from a fork server started once per server process, which has already
@@ -31,6 +33,7 @@ import multiprocessing
 import multiprocessing.connection
 import os
 import struct
+import sys
 import threading
 from collections import deque
 from concurrent.futures import Executor, Future
@@ -296,30 +299,137 @@ def _fork_context() -> Any:
                     "onnxruntime",
                 ]
             )
+            _start_fork_server()
             _context = ctx
         return _context
+
+
+def _start_fork_server() -> None:
+    """Start the fork server importing from this process's module search path.
+
+    Python 3.11's fork server runs as ``python -c`` and imports its preload before it applies the
+    ``sys_path`` it is handed, so its first search entry is the working directory: a server
+    started from a folder holding another ``textsieve`` (a source checkout, an older copy) would
+    have its workers run that folder's code. ``PYTHONSAFEPATH`` leaves the working directory out
+    and ``PYTHONPATH`` hands it this process's own search path, in order (an empty entry, this
+    process's working directory, as that directory).
+    """
+    from multiprocessing import forkserver
+
+    saved = {key: os.environ.get(key) for key in ("PYTHONSAFEPATH", "PYTHONPATH")}
+    os.environ["PYTHONSAFEPATH"] = "1"
+    os.environ["PYTHONPATH"] = os.pathsep.join(os.path.abspath(p) for p in sys.path)
+    try:
+        forkserver.ensure_running()
+    finally:
+        for key, value in saved.items():
+            if value is None:
+                os.environ.pop(key, None)
+            else:
+                os.environ[key] = value
 
 
 class _Died(Exception):
     """The worker process ended (or its pipe closed) before replying."""
 
 
+Waiter = Future[tuple[Outcome, Any]] | asyncio.Future[tuple[Outcome, Any]]
+# multiprocessing.Connection's framing: a 4-byte big-endian length, or -1 and an 8-byte length.
+_SHORT = struct.Struct("!i")
+_LONG = struct.Struct("!Q")
+READ_BYTES = 256 * 1024
+
+
+def _on_thread_of(loop: asyncio.AbstractEventLoop) -> bool:
+    try:
+        return asyncio.get_running_loop() is loop
+    except RuntimeError:
+        return False
+
+
+class _Replies:
+    """One pipe's replies, each handed to the oldest request still waiting on it (the worker
+    answers in order). Whoever reads the pipe (the event loop, or a reader thread when there is
+    none) feeds the bytes here; a reply may arrive in several reads, several in one."""
+
+    def __init__(self, conn: multiprocessing.connection.Connection, lock: threading.Lock) -> None:
+        self.conn = conn
+        self.fd = conn.fileno()
+        self.lock = lock  # the worker's send_lock: ``pending`` is appended to under it
+        self.pending: deque[Waiter] = deque()
+        self.closed = threading.Event()
+        self.watched = False  # the event loop reads it (add_reader)
+        self.by_thread = False  # a reader thread reads it
+        self._buf = bytearray()
+
+    def feed(self, data: bytes) -> None:
+        buf = self._buf
+        buf += data
+        at = 0
+        while len(buf) - at >= 4:
+            (size,) = _SHORT.unpack_from(buf, at)
+            head = 4
+            if size == -1:
+                if len(buf) - at < 12:
+                    break
+                (size,) = _LONG.unpack_from(buf, at + 4)
+                head = 12
+            end = at + head + size
+            if len(buf) < end:
+                break
+            # The status crosses the pipe as a plain string: the server unpickles no class of ours.
+            status, value = ForkingPickler.loads(bytes(buf[at + head : end]))
+            at = end
+            with self.lock:
+                waiter = self.pending.popleft()
+            if not waiter.done():
+                waiter.set_result((Outcome(status), value))
+        if at:
+            del buf[:at]
+
+    def close(self) -> None:
+        """The pipe is done with: what still waits on it fails with _Died; closes the connection."""
+        if self.closed.is_set():
+            return
+        self.closed.set()
+        with self.lock:
+            left = list(self.pending)
+            self.pending.clear()
+        for waiter in left:
+            try:
+                if not waiter.done():
+                    waiter.set_exception(_Died())
+            except RuntimeError:  # an event loop that has closed meanwhile: nobody waits any more
+                pass
+        self.conn.close()
+
+
 @dataclass(eq=False)
 class _Worker:
-    """One worker process. Requests are pipelined: several threads may have one in its pipe at
+    """One worker process. Requests are pipelined: several callers may have one in its pipe at
     once (the worker answers in order), so it starts the next batch the moment it sends a reply
-    instead of idling while the server hands out more work. A reader thread matches replies to
-    requests, first in first out."""
+    instead of idling while the server hands out more work. With an event loop (the server's),
+    the loop itself reads the pipe when it becomes readable (``add_reader``) and settles each
+    reply's future there, so a reply reaches its requests without a thread hand-over (each one
+    waits its turn for the GIL behind whatever the loop runs: bench/README.md); without one, a
+    reader thread does."""
 
     index: int
+    loop: asyncio.AbstractEventLoop | None = None
     proc: Any = None
     conn: multiprocessing.connection.Connection | None = None
+    replies: _Replies | None = None
     generation: int = 0
-    pending: deque[Future[tuple[Outcome, Any]]] = field(default_factory=deque)
     send_lock: threading.Lock = field(default_factory=threading.Lock)
     replace_lock: threading.Lock = field(default_factory=threading.Lock)
     loaded: dict[Key, Loaded] = field(default_factory=dict)
     reader: threading.Thread | None = None
+
+    @property
+    def pending(self) -> int:
+        """Requests in the worker's pipe."""
+        replies = self.replies
+        return 0 if replies is None else len(replies.pending)
 
     def start(self) -> None:
         ctx = _fork_context()
@@ -327,52 +437,104 @@ class _Worker:
         proc = ctx.Process(target=_serve, args=(child,), name=f"textsieve-worker-{self.index}", daemon=True)
         proc.start()
         child.close()
-        pending: deque[Future[tuple[Outcome, Any]]] = deque()
+        replies = _Replies(parent, self.send_lock)
         with self.send_lock:
-            self.proc, self.conn, self.pending = proc, parent, pending
+            self.proc, self.conn, self.replies = proc, parent, replies
             self.generation += 1
-        self.reader = threading.Thread(
-            target=self._read, args=(parent, pending), name=f"textsieve-worker-{self.index}-replies", daemon=True
-        )
-        self.reader.start()
+        if self.loop is None or not self._on_loop(self._watch, replies):
+            replies.by_thread = True
+            self.reader = threading.Thread(
+                target=self._read, args=(replies,), name=f"textsieve-worker-{self.index}-replies", daemon=True
+            )
+            self.reader.start()
 
-    def _read(self, conn: multiprocessing.connection.Connection, pending: deque[Future[tuple[Outcome, Any]]]) -> None:
-        """Replies, in order, to the requests sent on ``conn``; owns closing it."""
+    def _on_loop(self, fn: Any, *args: Any) -> bool:
+        """Run ``fn`` on the event loop: now when called on it, else as soon as it can; False when it has closed."""
+        loop = self.loop
+        assert loop is not None
+        if _on_thread_of(loop):
+            fn(*args)
+            return True
         try:
-            while True:
-                try:
-                    status, value = conn.recv()
-                except (EOFError, OSError):
-                    break
-                with self.send_lock:
-                    fut = pending.popleft()
-                # The status crosses the pipe as a plain string: the server unpickles no class of ours.
-                fut.set_result((Outcome(status), value))
-        finally:
-            with self.send_lock:
-                left = list(pending)
-                pending.clear()
-            for fut in left:
-                fut.set_exception(_Died())
-            conn.close()
+            loop.call_soon_threadsafe(fn, *args)
+        except RuntimeError:
+            return False
+        return True
 
-    def submit(self, msg: Message, payload: bytes | None = None) -> tuple[int, Future[tuple[Outcome, Any]]]:
-        """Put ``msg`` in the worker's pipe (as ``payload`` when the caller has pickled it already)."""
-        fut: Future[tuple[Outcome, Any]] = Future()
+    def _watch(self, replies: _Replies) -> None:  # on the loop
+        if not replies.closed.is_set():
+            assert self.loop is not None
+            self.loop.add_reader(replies.fd, self._readable, replies)
+            replies.watched = True
+
+    def _readable(self, replies: _Replies) -> None:  # on the loop, when the pipe has bytes (or is closed)
+        if not self._read_once(replies):
+            self._detach(replies)
+
+    def _read_once(self, replies: _Replies) -> bool:
+        """One read of the pipe (it blocks only when nothing is there yet); False once it is done with."""
+        try:
+            data = os.read(replies.fd, READ_BYTES)
+        except InterruptedError:
+            return True
+        except OSError:
+            return False
+        if not data:
+            return False
+        try:
+            replies.feed(data)
+        except Exception as exc:  # noqa: BLE001 - a reply that cannot be read ends this pipe, not the server
+            log.error("inference worker %s sent an unreadable reply: %s", self.index, exc)
+            return False
+        return True
+
+    def _detach(self, replies: _Replies) -> None:  # on the loop (or once it has closed)
+        if replies.closed.is_set():
+            return
+        if replies.watched and self.loop is not None:
+            try:
+                self.loop.remove_reader(replies.fd)
+            except (RuntimeError, ValueError, OSError):
+                pass  # the loop has closed: nothing is registered any more
+        replies.close()
+
+    def _read(self, replies: _Replies) -> None:
+        """The reader thread, when there is no event loop: replies in order until the pipe closes."""
+        try:
+            while self._read_once(replies):
+                pass
+        finally:
+            replies.close()
+
+    def submit(self, msg: Message, payload: bytes | None = None, waiter: Waiter | None = None) -> tuple[int, Waiter]:
+        """Put ``msg`` in the worker's pipe (as ``payload`` when the caller has pickled it already);
+        its reply settles ``waiter`` (a new thread-safe future unless given)."""
+        fut: Waiter = Future() if waiter is None else waiter
         with self.send_lock:
             gen = self.generation
-            if self.conn is None:
+            replies = self.replies
+            if self.conn is None or replies is None or replies.closed.is_set():
                 raise _Died()
-            self.pending.append(fut)
+            replies.pending.append(fut)
             try:
                 if payload is not None:
                     self.conn.send_bytes(payload)
                 else:
                     self.conn.send(msg)
             except (OSError, ValueError) as exc:
-                self.pending.remove(fut)
+                replies.pending.remove(fut)
                 raise _Died() from exc
         return gen, fut
+
+    def _wait(self, fut: Future[tuple[Outcome, Any]]) -> tuple[Outcome, Any]:
+        """The reply to a blocking call. Called on the event loop's own thread (a test, a diagnostic),
+        it reads the pipe itself: the loop cannot while it waits here."""
+        replies = self.replies
+        if self.loop is not None and replies is not None and not replies.by_thread and _on_thread_of(self.loop):
+            while not fut.done() and not replies.closed.is_set():
+                if not self._read_once(replies):
+                    self._detach(replies)
+        return fut.result()
 
     def call(self, msg: Message, *, retry: bool) -> Any:
         """Send one request and wait for its reply; replace the worker if it died on the way."""
@@ -380,7 +542,8 @@ class _Worker:
             gen = self.generation
             try:
                 gen, fut = self.submit(msg)
-                status, value = fut.result()
+                assert isinstance(fut, Future)
+                status, value = self._wait(fut)
             except _Died as exc:
                 self._replace(gen)
                 if retry and attempt == 1:
@@ -409,7 +572,8 @@ class _Worker:
             for key, item in list(self.loaded.items()):
                 try:
                     _, fut = self.submit(Load(key, str(item.bundle), item.batch_size))
-                    status, value = fut.result()
+                    assert isinstance(fut, Future)
+                    status, value = self._wait(fut)
                 except _Died:
                     status, value = Outcome.ERROR, "the new worker stopped too"
                 if status != Outcome.OK:
@@ -417,7 +581,8 @@ class _Worker:
                     self.loaded.pop(key, None)
 
     def stop(self, timeout: float = 5.0) -> None:
-        """Ask the worker to end (it finishes what is in its pipe first), then make sure it has."""
+        """Ask the worker to end (it finishes what is in its pipe first), then make sure it has; the
+        replies it sent before ending still reach their requests."""
         with self.send_lock:
             conn, self.conn = self.conn, None
             if conn is not None:
@@ -431,16 +596,26 @@ class _Worker:
                 self.proc.kill()
                 self.proc.join(timeout)
             self.proc = None
+        replies = self.replies
         if self.reader is not None:
             self.reader.join(timeout)  # it sees the pipe close, fails what was left, closes it
             self.reader = None
+        elif replies is not None and not replies.by_thread and self.loop is not None:
+            if _on_thread_of(self.loop):  # the process has ended: read what it left, up to the end
+                while self._read_once(replies):
+                    pass
+                self._detach(replies)
+            elif not replies.closed.wait(timeout):  # the loop reads up to the end and closes it
+                if not self._on_loop(self._detach, replies):
+                    replies.close()  # the loop has closed
 
 
 class WorkerProcesses:
     """``count`` worker processes; inference thread i talks to worker ``i % count``."""
 
-    def __init__(self, count: int) -> None:
-        self.workers = [_Worker(i) for i in range(count)]
+    def __init__(self, count: int, loop: asyncio.AbstractEventLoop | None = None) -> None:
+        """``loop``: the event loop that reads the workers' replies (without one, a thread per worker does)."""
+        self.workers = [_Worker(i, loop) for i in range(count)]
         self._started = False
         self._start_lock = threading.Lock()
         self._loads = itertools.count(1)
@@ -515,25 +690,27 @@ class WorkerProcesses:
         drift: bool,
         executor: Executor,
     ) -> asyncio.Future[RunReply]:
-        """:meth:`run` from the event loop, with no inference thread in between: the batch goes
-        into the least busy worker's pipe from here, and the worker's reply thread hands the reply
-        straight back to the loop. Each hand-over between threads waits its turn for the GIL behind
-        whatever the loop is running, so the threaded path's three per batch cost single-text
-        requests most of their latency (bench/README.md). A batch too large to be sure of fitting in
+        """:meth:`run` from the event loop, with no thread in between: the batch goes into the least
+        busy worker's pipe from here, and the loop reads the reply off the pipe. Each hand-over
+        between threads waits its turn for the GIL behind whatever the loop is running, so the
+        threaded path's three per batch cost single-text requests most of their latency
+        (bench/README.md). A batch too large to be sure of fitting in
         the pipe, and the retry after a worker died, run on ``executor`` instead (both block)."""
         loop = asyncio.get_running_loop()
         msg = Run(key, texts, ks, review, drift)
-        w = min(self._holding(key), key=lambda w: len(w.pending))
+        w = min(self._holding(key), key=lambda w: w.pending)
         payload = pickled(msg)
         if len(payload) > SEND_FROM_LOOP_MAX_BYTES:
             return loop.run_in_executor(executor, lambda: _unpack(w.call(msg, retry=True)))
+        # With the loop reading the pipe, the reply settles an asyncio future right here on the loop.
+        waiter: Waiter | None = loop.create_future() if w.loop is loop else None
         try:
-            gen, fut = w.submit(msg, payload)
+            gen, fut = w.submit(msg, payload, waiter)
         except _Died:  # the worker was already gone: replace it and run the batch there
             return loop.run_in_executor(executor, self._run_again, w, w.generation, msg)
         result: asyncio.Future[RunReply] = loop.create_future()
 
-        def settle(f: Future[tuple[Outcome, Any]]) -> None:  # on the loop
+        def settle(f: Waiter) -> None:  # on the loop
             if result.done():
                 return
             exc = f.exception()
@@ -547,7 +724,10 @@ class WorkerProcesses:
             except Exception as error:  # noqa: BLE001 - whatever it is, the batch's requests get it, never hang
                 result.set_exception(error)
 
-        fut.add_done_callback(lambda f: loop.call_soon_threadsafe(settle, f))  # on the reply thread
+        if waiter is not None:
+            waiter.add_done_callback(settle)
+        else:  # a reader thread settles it
+            fut.add_done_callback(lambda f: loop.call_soon_threadsafe(settle, f))
         return result
 
     def _run_again(self, w: _Worker, gen: int, msg: Run) -> RunReply:

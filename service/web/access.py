@@ -18,7 +18,7 @@ from typing import Any
 from starlette.datastructures import Headers, MutableHeaders
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
-from textsieve.service.logs import ACCESS
+from textsieve.service.logs import ACCESS, line_handler
 from textsieve.service.telemetry import ServiceMetrics
 from textsieve.service.web.transport import PROBE_PATHS, WITH_BODY, ConnectionGuard
 
@@ -82,7 +82,11 @@ class Access:
             for key in ("model", "version", "texts"):
                 if key in state:
                     fields[key] = state[key]
-            log.info("request", extra={"fields": fields})
+            handler = line_handler(log)
+            if handler is not None:  # as the line below would, with no LogRecord made on the loop
+                handler.add_fields(ACCESS, fields)
+            else:
+                log.info("request", extra={"fields": fields})
 
 
 class AccessMiddleware:

@@ -60,6 +60,46 @@ def _raw_response(
 
 
 RETRY_AFTER_SECONDS = 1
+_CONTINUE = b"HTTP/1.1 100 Continue\r\n\r\n"
+
+
+class _HeadWithBody:
+    """What one request's response cycle writes to (uvicorn's ``RequestResponseCycle.transport``):
+    the connection's transport, except that the response's head is held until its first body
+    part and both go out in one write. uvicorn writes the head at ``http.response.start`` and the
+    body at ``http.response.body``, two system calls per reply; the second is a tenth of the event
+    loop's time under single-text load (bench/README.md), and a replica killed between the two
+    would leave a head with no body (see service/web/onewrite.py). An interim ``100 Continue`` goes
+    out at once; a held head goes out before the transport closes."""
+
+    __slots__ = ("_transport", "_head", "_armed")
+
+    def __init__(self, transport: asyncio.Transport) -> None:
+        self._transport = transport
+        self._head: bytes | None = None
+        self._armed = True  # the cycle's first write, but for 100 Continue, is its head
+
+    def write(self, data: bytes | bytearray | memoryview) -> None:
+        if self._head is not None:
+            head, self._head = self._head, None
+            self._transport.write(head + data)
+        elif self._armed and data != _CONTINUE:
+            self._armed = False
+            self._head = bytes(data)
+        else:
+            self._transport.write(data)
+
+    def close(self) -> None:
+        if self._head is not None:
+            head, self._head = self._head, None
+            self._transport.write(head)
+        self._transport.close()
+
+    def is_closing(self) -> bool:
+        return self._transport.is_closing()
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._transport, name)
 
 
 class ConnectionGuard:
@@ -198,7 +238,11 @@ class ConnectionGuard:
                         self.flow.pause_reading()
                         self.loop.call_later(RETRY_AFTER_SECONDS / 2, self._resume)
                     return
+                before = self.cycle
                 super().on_headers_complete()
+                cycle = self.cycle
+                if cycle is not None and cycle is not before:  # made just now, for this request
+                    cycle.transport = _HeadWithBody(self.transport)
 
             def on_body(self, body: bytes) -> None:
                 if not (self._refused or self._skipping):

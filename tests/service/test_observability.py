@@ -10,6 +10,7 @@ Each page is read twice: by the strict parser below, and by prometheus_client's 
 from __future__ import annotations
 
 import asyncio
+import datetime as dt
 import json
 import logging
 import math
@@ -314,3 +315,66 @@ async def test_request_ids_and_one_json_log_line_per_request(
     assert first["duration_ms"] > 0 and first["method"] == "POST"
     assert [line["status"] for line in lines] == [200, 200, 200, 422]
     assert all("\n" not in JsonFormatter().format(r) for r in records)
+
+
+async def test_access_lines_handed_to_the_line_writer_equal_what_logging_writes(
+    shared_registry: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # As `textsieve serve` sets logging up (logs.configure), the access log hands each request's
+    # fields to the line writer without a LogRecord; the line must be the one logging would write.
+    import io
+
+    from textsieve.service.logs import ACCESS, BatchedLineHandler, line_handler
+
+    stream = io.StringIO()
+    handler = BatchedLineHandler(stream, flush_seconds=60)
+    handler.setFormatter(JsonFormatter())
+    textsieve_logger = logging.getLogger("textsieve")
+    monkeypatch.setattr(textsieve_logger, "handlers", [handler])
+    monkeypatch.setattr(textsieve_logger, "propagate", False)
+    old_level = textsieve_logger.level
+    textsieve_logger.setLevel(logging.INFO)  # setLevel, not setattr: it clears the loggers' level caches
+    access = logging.getLogger(ACCESS)
+    try:
+        assert line_handler(access) is handler
+        # A filter on the way (or any other handler) sends lines through logging instead.
+        keep_all = logging.Filter()
+        handler.addFilter(keep_all)
+        assert line_handler(access) is None
+        handler.removeFilter(keep_all)
+        assert line_handler(access) is handler
+        async with serving(settings_for(shared_registry, access_log=True)) as (_, client):
+            handler.flush()
+            stream.seek(0)
+            stream.truncate()
+            r = await client.post("/v1/predict", json={"texts": ["a", "b"]}, headers={"X-Request-Id": "fast-1"})
+            # The same fields through logging (the path taken when another handler is set up).
+            fields = {"event": "request", "request_id": "through-logging", "status": 200}
+            access.info("request", extra={"fields": fields})
+            handler.add_fields(ACCESS, dict(fields))
+            handler.flush()
+    finally:
+        handler.close()
+        textsieve_logger.setLevel(old_level)
+    assert r.status_code == 200
+    lines = [json.loads(line) for line in stream.getvalue().splitlines()]
+    fast = [x for x in lines if x.get("request_id") == "fast-1"]
+    assert len(fast) == 1
+    assert {k: v for k, v in fast[0].items() if k not in ("ts", "duration_ms")} == {
+        "level": "info",
+        "logger": ACCESS,
+        "event": "request",
+        "request_id": "fast-1",
+        "method": "POST",
+        "path": "/v1/predict",
+        "route": "/v1/predict",
+        "status": 200,
+        "client": fast[0]["client"],
+        "model": MODEL,
+        "version": 1,
+        "texts": 2,
+    }
+    logged, handed = [x for x in lines if x.get("request_id") == "through-logging"]
+    apart = dt.datetime.fromisoformat(handed["ts"]) - dt.datetime.fromisoformat(logged["ts"])
+    assert set(logged) == set(handed) and abs(apart.total_seconds()) < 1
+    assert {k: v for k, v in logged.items() if k != "ts"} == {k: v for k, v in handed.items() if k != "ts"}

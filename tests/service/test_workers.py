@@ -6,6 +6,8 @@ from __future__ import annotations
 import asyncio
 import os
 import signal
+import subprocess
+import sys
 from concurrent.futures import Future
 from pathlib import Path
 from typing import Any
@@ -70,11 +72,11 @@ async def test_a_worker_that_keeps_dying_gives_503_not_500(registry_dir: Path, m
         worker = app.state.pool.procs.workers[0]
         real = worker.submit
 
-        def dies(msg: Message, payload: bytes | None = None) -> tuple[int, Future[tuple[Outcome, Any]]]:
+        def dies(msg: Message, payload: bytes | None = None, waiter: Any = None) -> tuple[int, Any]:
             if isinstance(msg, Run):  # the worker dies with the batch in its pipe, every time
                 os.kill(worker.proc.pid, signal.SIGKILL)
                 worker.proc.join(5)
-            return real(msg, payload)
+            return real(msg, payload, waiter)
 
         monkeypatch.setattr(worker, "submit", dies)
         r = await client.post("/v1/predict", json={"texts": TEXTS[:2]})
@@ -204,3 +206,92 @@ async def test_batches_go_from_the_event_loop_to_the_worker_with_no_inference_th
         assert from_thread.status_code == 200, from_thread.text
         assert len(handed) == 1
         assert from_thread.json()["results"] == from_loop.json()["results"]
+
+
+async def test_the_event_loop_reads_the_replies_and_no_reply_thread_runs(registry_dir: Path) -> None:
+    import threading
+
+    async with serving(settings_for(registry_dir, inference="processes", workers=2)) as (app, client):
+        r = await client.post("/v1/predict", json={"texts": TEXTS[:3]})
+        assert r.status_code == 200
+        procs = app.state.pool.procs
+        assert all(w.replies.watched and not w.replies.by_thread for w in procs.workers)
+        assert not [t.name for t in threading.enumerate() if t.name.endswith("-replies")]
+        # A blocking call made on the loop's own thread reads its reply itself (the loop cannot).
+        models = app.state.models
+        in_use = sorted(s.worker_key for s in [*models.live.values(), *models.pinned.values()])
+        assert procs.held() == [in_use] * 2
+
+
+def test_replies_cut_anywhere_or_several_in_one_read_reach_their_callers_in_order() -> None:
+    # The framing is multiprocessing's own (Connection.send on the worker's side): cut the bytes
+    # at every possible place, and all at once, and every caller gets its own reply.
+    import multiprocessing
+    import threading
+
+    from textsieve.service.inference.workers import _Replies
+
+    sent = [("ok", {"n": i, "pad": "é" * (i * 37)}) for i in range(12)]
+    sent.append(("ok", ["x" * 100_000, 1]))  # larger than a single read of the pipe buffer may give
+    a, b = multiprocessing.Pipe(duplex=True)
+    writer = threading.Thread(target=lambda: [b.send(m) for m in sent])
+    writer.start()
+    raw = b""
+    while len(raw) < 4 or a.poll(0.5):
+        raw += os.read(a.fileno(), 1 << 20)
+    writer.join()
+    for step in (1, 7, 4096, len(raw)):
+        replies = _Replies(a, threading.Lock())
+        waiters: list[Future[Any]] = [Future() for _ in sent]
+        replies.pending.extend(waiters)
+        for at in range(0, len(raw), step):
+            replies.feed(raw[at : at + step])
+        assert [w.result() for w in waiters] == [(Outcome(s), v) for s, v in sent]
+        assert not replies.pending
+    a.close()
+    b.close()
+
+
+async def test_a_worker_killed_with_batches_in_flight_answers_every_request(registry_dir: Path) -> None:
+    # The loop reads the replies: a worker's end (EOF on its pipe) fails what it held, and each of
+    # those batches runs once more on its replacement. No request hangs, none gets a 500.
+    texts = [f"my card was charged {n} times" for n in range(24)]
+    async with serving(settings_for(registry_dir, inference="processes", workers=1, batch_max_texts=2)) as (
+        app,
+        client,
+    ):
+        procs = app.state.pool.procs
+        want = (await client.post("/v1/predict", json={"texts": texts})).json()["results"]
+        (old_pid,) = procs.pids()
+        sent = [asyncio.create_task(client.post("/v1/predict", json={"texts": [t]})) for t in texts]
+        while procs.workers[0].pending == 0:
+            await asyncio.sleep(0.001)
+        os.kill(old_pid, signal.SIGKILL)
+        replies = await asyncio.wait_for(asyncio.gather(*sent), 60)
+        assert [r.status_code for r in replies] == [200] * len(texts), [r.text for r in replies if r.status_code != 200]
+        assert [r.json()["results"][0] for r in replies] == want
+        (new_pid,) = procs.pids()
+        assert new_pid != old_pid
+
+
+def test_fork_server_imports_what_this_process_imports(tmp_path: Path) -> None:
+    """Workers run this process's textsieve, not one in the working directory (Python 3.11's
+    fork server imports its preload with the working directory first on its search path)."""
+    decoy = tmp_path / "cwd" / "textsieve"
+    decoy.mkdir(parents=True)
+    marker = tmp_path / "decoy-imported"
+    (decoy / "__init__.py").write_text(f"open({str(marker)!r}, 'w').close()\nraise ImportError('decoy')\n")
+    script = tmp_path / "start.py"
+    script.write_text(
+        "import os\n"
+        "from textsieve.service.inference.workers import _fork_context\n"
+        "if __name__ == '__main__':\n"
+        "    p = _fork_context().Process(target=os.getpid)\n"
+        "    p.start()\n"
+        "    p.join(60)\n"
+        "    raise SystemExit(p.exitcode)\n"
+    )
+    env = {k: v for k, v in os.environ.items() if k not in ("PYTHONPATH", "PYTHONSAFEPATH")}
+    done = subprocess.run([sys.executable, str(script)], cwd=decoy.parent, env=env, timeout=120, capture_output=True)
+    assert done.returncode == 0, done.stderr.decode()[-2000:]
+    assert not marker.exists(), "the fork server imported the textsieve in the working directory"
