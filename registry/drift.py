@@ -82,9 +82,17 @@ class Layout:
                     edges[name] = tuple(h.edges)
         return cls(edges, labels)
 
+    inner: dict[str, NDArray[np.float64]] = field(default_factory=dict, compare=False, repr=False)
+    offsets: dict[str, int] = field(default_factory=dict, compare=False, repr=False)
+
     def __post_init__(self) -> None:
         # As arrays once: count() runs for every batch.
         object.__setattr__(self, "arrays", {k: np.asarray(v, dtype=np.float64) for k, v in self.edges.items()})
+        # The edges between the first and the last: searchsorted(inner, v, side="right") is the bin
+        # of stats.histogram ([e_i, e_i+1), below the first edge in the first bin, at or above the
+        # last in the last) without the clip.
+        object.__setattr__(self, "inner", {k: v[1:-1].copy() for k, v in self.arrays.items()})
+        object.__setattr__(self, "offsets", {k: s.start for k, s in self.slices().items()})
 
     def bins(self, name: str) -> int:
         return self.labels if name == "label" else len(self.edges[name]) - 1
@@ -109,24 +117,24 @@ def count(
     best: NDArray[np.int64],
     top: NDArray[np.floating],
 ) -> NDArray[np.int64]:
-    """One batch's flat count vector (see the module docstring)."""
+    """One batch's flat count vector (see the module docstring).
+
+    Every text's bin of every signal, offset to where that signal's bins sit, counted by one
+    ``np.bincount``: it runs for every batch the service answers, and a batch of one text paid
+    ~70 µs for a dozen small NumPy calls."""
     share = unknown / np.maximum(kept, 1)
-    e = layout.arrays
-    parts = [
-        _bins(tokens, e["tokens"]),
-        _bins(share, e["unknown_share"]),
-        np.array([int((tokens <= kept).sum()), int((tokens > kept).sum())], dtype=np.int64),
-        np.bincount(best, minlength=layout.labels)[: layout.labels],
-        _bins(top, e["top_probability"]),
-        np.array([int(unknown.sum()), int(kept.sum())], dtype=np.int64),
-    ]
-    return np.concatenate(parts).astype(np.int64, copy=False)
-
-
-def _bins(values: NDArray[np.generic], edges: NDArray[np.float64]) -> NDArray[np.int64]:
-    """:func:`textsieve.registry.stats.histogram` without the list round trip (it runs per batch)."""
-    which = np.clip(np.searchsorted(edges, values, side="right") - 1, 0, len(edges) - 2)
-    return np.bincount(which, minlength=len(edges) - 1)
+    inner, at = layout.inner, layout.offsets
+    where = np.concatenate(
+        (
+            np.searchsorted(inner["tokens"], tokens, side="right") + at["tokens"],
+            np.searchsorted(inner["unknown_share"], share, side="right") + at["unknown_share"],
+            (tokens > kept) + at["truncated"],  # not truncated, then truncated
+            best + at["label"],
+            np.searchsorted(inner["top_probability"], top, side="right") + at["top_probability"],
+        )
+    )
+    counts = np.bincount(where, minlength=layout.size - 2)
+    return np.append(counts, (int(unknown.sum()), int(kept.sum()))).astype(np.int64, copy=False)
 
 
 def count_encoded(layout: Layout, encoded: Sequence[Encoded], probs: NDArray[np.floating]) -> NDArray[np.int64]:

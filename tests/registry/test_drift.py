@@ -47,6 +47,29 @@ def test_counts_equal_numpy_histograms() -> None:
     assert all(int(c[sl[s]].sum()) == n for s in SIGNALS)
 
 
+def test_counts_at_and_beyond_every_edge_equal_numpy_histograms() -> None:
+    """Values on each edge, between, below the first and above the last (NumPy's histogram as
+    the reference: [e_i, e_i+1), the last bin closed; beyond the ends clipped into them)."""
+    layout = Layout.of(3)
+    e_tok, e_share, e_top = (np.asarray(layout.edges[k]) for k in ("tokens", "unknown_share", "top_probability"))
+    tokens = np.concatenate((e_tok, e_tok + 0.5, [-1, 10_000])).astype(np.int64)
+    n = len(tokens)
+    kept = np.maximum(np.minimum(tokens, 64), 0)
+    top = np.resize(np.concatenate((e_top, (e_top[:-1] + e_top[1:]) / 2, [1.5])), n)
+    share_wanted = np.resize(np.concatenate((e_share, [0.07, 0.99])), n)
+    unknown = np.round(share_wanted * np.maximum(kept, 1)).astype(np.int64)
+    best = np.arange(n) % 3
+    c = count(layout, tokens, kept, unknown, best, top)
+    sl = layout.slices()
+    assert c[sl["tokens"]].tolist() == _numpy_histogram(tokens.astype(float), layout.edges["tokens"])
+    share = unknown / np.maximum(kept, 1)
+    assert c[sl["unknown_share"]].tolist() == _numpy_histogram(share, layout.edges["unknown_share"])
+    assert c[sl["top_probability"]].tolist() == _numpy_histogram(top, layout.edges["top_probability"])
+    assert c[sl["truncated"]].tolist() == [int((tokens <= kept).sum()), int((tokens > kept).sum())]
+    assert c[sl["label"]].tolist() == [n // 3 + (n % 3 > 0), n // 3 + (n % 3 > 1), n // 3]
+    assert c.dtype == np.int64 and len(c) == layout.size
+
+
 def test_psi_of_a_hand_worked_label_mix() -> None:
     # Hand-worked: baseline label shares (.1, .2, .3, .4), live (.2, .2, .3, .3):
     # PSI = (.2-.1)·ln 2 + 0 + 0 + (.3-.4)·ln(.3/.4) = 0.0693147 + 0.0287682 = 0.0980829
