@@ -51,15 +51,22 @@ def run_packed(p: Predictor, encoded: list[Encoded]) -> Outputs:
     """Like ``Predictor.run``, with sub-batches cut by padding waste instead of a fixed size.
 
     Each sub-batch is padded as ``Predictor.pad`` pads it; the ids of the whole batch are
-    gathered once, in length order, so a sub-batch's are one slice of them."""
+    gathered once, in length order, so a sub-batch's are one slice of them. A batch that makes
+    one sub-batch (a few texts, or texts of similar lengths) is run as it came, in one call."""
     n = len(encoded)
+    if 0 < n <= min(MIN_TEXTS, p.batch_size):  # never cut: sub_batches would give one group
+        return Outputs(*p.run_arrays(*p.pad(encoded)))
     lengths = np.fromiter((len(e.ids) for e in encoded), dtype=np.int64, count=n)
+    groups = sub_batches(lengths, max_texts=p.batch_size)
+    if len(groups) == 1:
+        # One call: the texts as they came, padded to the longest (the same width as sorted),
+        # with no gather or scatter; each row's outputs do not depend on the other rows'.
+        return Outputs(*p.run_arrays(*p.pad(encoded)))
     classes, filters = len(p.labels), len(p.filter_widths)
     logits = np.empty((n, classes), np.float32)
     pooled = np.empty((n, filters), np.float32)
     positions = np.empty((n, filters), np.int64)
     contributions = np.empty((n, filters, classes), np.float32)
-    groups = sub_batches(lengths, max_texts=p.batch_size)
     order = np.concatenate(groups) if groups else np.zeros(0, dtype=np.int64)
     flat = np.fromiter(
         itertools.chain.from_iterable(encoded[i].ids for i in order.tolist()), dtype=np.int64, count=int(lengths.sum())
