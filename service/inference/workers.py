@@ -33,7 +33,6 @@ import multiprocessing
 import multiprocessing.connection
 import os
 import struct
-import sys
 import threading
 from collections import deque
 from concurrent.futures import Executor, Future
@@ -47,6 +46,7 @@ import numpy as np
 import orjson
 
 from textsieve.errors import BundleError, UnavailableError
+from textsieve.forking import fork_server
 
 if TYPE_CHECKING:
     from textsieve.registry.drift import Layout
@@ -287,8 +287,7 @@ def _fork_context() -> Any:
     global _context
     with _context_lock:
         if _context is None:
-            ctx = multiprocessing.get_context("forkserver")
-            ctx.set_forkserver_preload(
+            _context = fork_server(
                 [
                     "textsieve.service.inference.workers",
                     "textsieve.registry.runtime",
@@ -299,34 +298,7 @@ def _fork_context() -> Any:
                     "onnxruntime",
                 ]
             )
-            _start_fork_server()
-            _context = ctx
         return _context
-
-
-def _start_fork_server() -> None:
-    """Start the fork server importing from this process's module search path.
-
-    Python 3.11's fork server runs as ``python -c`` and imports its preload before it applies the
-    ``sys_path`` it is handed, so its first search entry is the working directory: a server
-    started from a folder holding another ``textsieve`` (a source checkout, an older copy) would
-    have its workers run that folder's code. ``PYTHONSAFEPATH`` leaves the working directory out
-    and ``PYTHONPATH`` hands it this process's own search path, in order (an empty entry, this
-    process's working directory, as that directory).
-    """
-    from multiprocessing import forkserver
-
-    saved = {key: os.environ.get(key) for key in ("PYTHONSAFEPATH", "PYTHONPATH")}
-    os.environ["PYTHONSAFEPATH"] = "1"
-    os.environ["PYTHONPATH"] = os.pathsep.join(os.path.abspath(p) for p in sys.path)
-    try:
-        forkserver.ensure_running()
-    finally:
-        for key, value in saved.items():
-            if value is None:
-                os.environ.pop(key, None)
-            else:
-                os.environ[key] = value
 
 
 class _Died(Exception):
