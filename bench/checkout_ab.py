@@ -23,6 +23,7 @@ import argparse
 import os
 import sys
 from pathlib import Path
+from typing import Any
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
@@ -30,7 +31,7 @@ sys.path.insert(0, str(HERE))
 import demo_model  # noqa: E402
 import loadgen  # noqa: E402
 import servers  # noqa: E402
-from run import CONNECTIONS, SPANS, bodies, mean_reply_bytes, median  # noqa: E402
+from run import CONNECTIONS, OPEN_LOOP_CONNECTIONS, SPANS, bodies, mean_reply_bytes, median  # noqa: E402
 from texts import bench_texts  # noqa: E402
 
 _TICKS = os.sysconf("SC_CLK_TCK")
@@ -108,6 +109,13 @@ def main() -> int:
         metavar="BYTES",
         help="run each side's HTTP floor (answering BYTES) instead of the service",
     )
+    p.add_argument(
+        "--open-loop",
+        type=float,
+        metavar="RATE",
+        help="instead of the closed loop, send RATE requests a second at fixed times (bench/openloop.py, "
+        f"{OPEN_LOOP_CONNECTIONS} connections at most) and compare latency from each intended send time",
+    )
     args = p.parse_args()
 
     model = demo_model.ensure_model()
@@ -143,8 +151,22 @@ def main() -> int:
             else:  # each name first, middle and last in turn, forwards and backwards
                 order = names[i % len(names) :] + names[: i % len(names)]
                 order = order if i % 2 == 0 else order[::-1]
-            got = {name: window(started[name], body_list, args.seconds, wrk, args.connections) for name in order}
+            if args.open_loop:
+                got = {name: open_window(started[name], body_list, args.open_loop, args.seconds) for name in order}
+            else:
+                got = {name: window(started[name], body_list, args.seconds, wrk, args.connections) for name in order}
             rounds.append(got)
+            if args.open_loop:
+                print(
+                    f"round {i + 1} ({' then '.join(order)}; load {os.getloadavg()[0]:.2f}): "
+                    + "; ".join(
+                        f"{n} p50 {w['p50_ms']:.1f} p99 {w['p99_ms']:.1f} p99.9 {w['p99.9_ms']:.1f} ms, "
+                        f"{w['server_cores_busy']:.2f} cores"
+                        for n, w in got.items()
+                    ),
+                    flush=True,
+                )
+                continue
             print(
                 f"round {i + 1} ({' then '.join(order)}; load {os.getloadavg()[0]:.2f}): "
                 + "; ".join(
@@ -160,6 +182,25 @@ def main() -> int:
             server.stop()
     print(summary(rounds))
     return 0
+
+
+def open_window(server: servers.Server, body_list: list[bytes], rate: float, seconds: float) -> dict[str, float]:
+    """Requests at a fixed rate for ``seconds``: latency percentiles from each intended send time."""
+    before = cpu_split(server)
+    res: dict[str, Any] = loadgen.run_open_loop(
+        server.url + "/v1/predict", body_list, rate=rate, seconds=seconds, connections=OPEN_LOOP_CONNECTIONS
+    )
+    used = sum(cpu_split(server).values()) - sum(before.values())
+    if any(res["errors"].values()):
+        raise RuntimeError(f"{server.name}: {res['errors']} failed requests; see {server.log}")
+    lat = res["latency_ms"]
+    return {
+        "p50_ms": lat["p50"],
+        "p99_ms": lat["p99"],
+        "p99.9_ms": lat["p99.9"],
+        "send_lag_p99_ms": res["send_lag_ms"]["p99"],
+        "server_cores_busy": used / float(res["duration_s"]),
+    }
 
 
 def summary(rounds: list[dict[str, dict[str, float]]]) -> str:

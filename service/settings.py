@@ -82,11 +82,11 @@ class Settings(BaseSettings):
         le=4096,
         description="most texts a worker takes at once (sorted by length and cut into onnxruntime calls by padding)",
     )
-    # 0: when a worker is free the queued texts go at once; under load the wait for a free worker
-    # is what fills batches (bench/README.md: single texts 1.12x the requests/s of 1 ms, batched
-    # requests unchanged).
+    # Under load the wait for a free worker is what fills batches; this wait only matters while a
+    # worker is free (bench/README.md, "The batch wait": 32 single-text callers 1.12x the requests/s
+    # of 1 ms with 0, 0.98x of 0 with 0.3; near the open-loop maximum 0 gave the worst tails).
     batch_wait_ms: float = Field(
-        0.0, ge=0, le=1000, description="longest a text waits for others to fill its batch once a worker is free"
+        0.3, ge=0, le=1000, description="longest a text waits for others to fill its batch once a worker is free"
     )
 
     max_texts: int = Field(256, ge=1, description="most texts in one request")

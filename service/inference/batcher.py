@@ -17,9 +17,8 @@ the batch leaves at once from that request's own task. Otherwise each served ver
 task on the event loop waits for a free slot, then for the queue to reach the target, or
 ``batch_wait_ms`` after the oldest text arrived, whichever comes first, and takes queued texts
 in arrival order, up to ``batch_max_texts``. Under load the wait for a free slot is what fills
-batches; the explicit wait only matters when workers are idle, so it is 0 unless set (a free
-worker takes what is queued at once: single texts from 32 callers 1.12x the requests/s of a
-1 ms wait, 16-text requests unchanged; bench/README.md). The worker encodes the batch,
+batches; the explicit wait only matters when workers are idle, so it is short (0.3 ms unless
+set; bench/README.md, "The batch wait"). The worker encodes the batch,
 sorts it by length and runs it as sub-batches each padded only to its own longest text
 (:mod:`textsieve.service.inference.packing`), and builds the reply dicts, so the event loop only
 routes finished results. Graph outputs are masked, so a text's result does not depend on its
