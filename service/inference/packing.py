@@ -4,7 +4,9 @@ onnxruntime's cost grows with the padded area (texts × longest text), plus a fi
 call, so a batch of mixed lengths is sorted and cut wherever padding would exceed both
 ``SLACK`` of the real tokens and ``CALL_TOKENS`` padded positions (about what one call's fixed
 cost buys with the tap-tables layout: ~100 µs per call against ~1 µs per padded position on
-the 2-core benchmark machine); a sub-batch keeps at least ``MIN_TEXTS`` texts. Padded
+the 2-core benchmark machine); a sub-batch keeps at least ``MIN_TEXTS`` texts, and a batch of
+at most that many runs as one call: below ~24 rows a call's cost per text rises faster than
+the padding it saves (bench/packing_ab.py; bench/README.md, "Packing small batches"). Padded
 windows are masked in the graph, so the cut points do not change any text's result.
 """
 
@@ -18,7 +20,7 @@ from numpy.typing import NDArray
 from textsieve.registry.runtime import Encoded, Outputs, Predictor
 
 SLACK = 0.25
-MIN_TEXTS = 4
+MIN_TEXTS = 24
 CALL_TOKENS = 128
 
 
@@ -57,7 +59,7 @@ def run_packed(p: Predictor, encoded: list[Encoded]) -> Outputs:
     if 0 < n <= min(MIN_TEXTS, p.batch_size):  # never cut: sub_batches would give one group
         return Outputs(*p.run_arrays(*p.pad(encoded)))
     lengths = np.fromiter((len(e.ids) for e in encoded), dtype=np.int64, count=n)
-    groups = sub_batches(lengths, max_texts=p.batch_size)
+    groups = sub_batches(lengths, min_texts=MIN_TEXTS, max_texts=p.batch_size)
     if len(groups) == 1:
         # One call: the texts as they came, padded to the longest (the same width as sorted),
         # with no gather or scatter; each row's outputs do not depend on the other rows'.
