@@ -5,8 +5,10 @@
     .venv/bin/python bench/checkout_ab.py --a /path/to/main-checkout --b . --floors 600   # server stacks only
 
 Requests carry one text (``--texts`` for more; the CPU figures stay per request). Each side is
-``textsieve serve`` run from its own checkout (``PYTHONPATH`` pointing at it, with its own
-``TEXTSIEVE_*`` variables from ``--a-env``/``--b-env``) on its own copy of the demo model's
+``textsieve serve`` run from its own checkout (``PYTHONPATH`` pointing at it and
+``PYTHONSAFEPATH=1``, so a working directory holding a checkout does not come first; each side
+prints where it imports textsieve from; with its own ``TEXTSIEVE_*`` variables from
+``--a-env``/``--b-env``) on its own copy of the demo model's
 registry; with ``--floors`` each side runs its checkout's bench/http_floor.py instead. Each
 round loads every server in turn (the order rotates and reverses: a window's speed depends on
 what ran just before it) with single-text requests over 32 kept-alive connections, closed loop,
@@ -21,6 +23,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import subprocess
 import sys
 from pathlib import Path
 from typing import Any
@@ -84,6 +87,21 @@ def window(
     }
 
 
+def _imported_from(env: dict[str, str]) -> str:
+    """Where a server started with ``env`` imports textsieve from; refuses any other checkout than
+    the one named in its ``PYTHONPATH``."""
+    where = subprocess.run(
+        [sys.executable, "-c", "import textsieve; print(textsieve.__file__)"],
+        env={**os.environ, **env},
+        capture_output=True,
+        text=True,
+        check=True,
+    ).stdout.strip()
+    if not Path(where).resolve().is_relative_to(Path(env["PYTHONPATH"]).resolve()):
+        raise SystemExit(f"a server would import textsieve from {where}, not from {env['PYTHONPATH']}")
+    return where
+
+
 def _env(pairs: list[str]) -> dict[str, str]:
     out = {}
     for pair in pairs:
@@ -132,7 +150,11 @@ def main() -> int:
             if args.floors:  # the side's own server stack with a fixed reply (bench/http_floor.py)
                 cmd = [sys.executable, str(checkout / "bench" / "http_floor.py"), "--port", str(port)]
                 cmd += ["--reply-bytes", str(args.floors)]
-            side_env = {**env, "PYTHONPATH": str(checkout)}
+            # PYTHONSAFEPATH: ``python -c`` would otherwise put the working directory first on
+            # sys.path, and a working directory holding a checkout (this one, as documented) would
+            # serve its own code on both sides (it did, until 2026-12-03: see bench/README.md).
+            side_env = {**env, "PYTHONPATH": str(checkout), "PYTHONSAFEPATH": "1"}
+            print(f"side {name}: {_imported_from(side_env)}", flush=True)
             started[name] = servers.start(name, cmd, "/readyz", port, work / f"checkout-ab-{name}.log", env=side_env)
             loadgen.run_load(started[name].url + "/v1/predict", body_list, connections=CONNECTIONS, seconds=2, wrk=wrk)
         names = ["a", "b"]
