@@ -60,14 +60,16 @@ QUANTUM = 16
 class InferencePool:
     """``workers`` threads; thread i only ever uses session i of a version, or worker process i."""
 
-    def __init__(self, workers: int, mode: str = "threads", *, queue_wait_ms: float = 250.0) -> None:
+    def __init__(
+        self, workers: int, mode: str = "threads", *, queue_wait_ms: float = 250.0, worker_scheduling: str = "normal"
+    ) -> None:
         self.workers = workers
         self.mode = mode
         try:  # the loop the pool is made on reads the workers' replies (see WorkerProcesses)
             loop: asyncio.AbstractEventLoop | None = asyncio.get_running_loop()
         except RuntimeError:
             loop = None
-        self.procs = WorkerProcesses(workers, loop) if mode == "processes" else None
+        self.procs = WorkerProcesses(workers, loop, scheduling=worker_scheduling) if mode == "processes" else None
         # With processes, two threads (two batches in flight) per worker: the next batch waits
         # in the worker's pipe while it computes the current one (see procs._Worker).
         self.threads = workers * (PIPELINE if self.procs is not None else 1)

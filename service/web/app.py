@@ -45,7 +45,12 @@ def create_app(settings: Settings | None = None, *, fast_lane: bool = True) -> L
 
     @contextlib.asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
-        pool = InferencePool(settings.workers, settings.inference, queue_wait_ms=settings.queue_wait_ms)
+        pool = InferencePool(
+            settings.workers,
+            settings.inference,
+            queue_wait_ms=settings.queue_wait_ms,
+            worker_scheduling=settings.worker_scheduling,
+        )
         metrics.watch_workers(pool.procs.processes if pool.procs is not None else None)
         metrics.overload.admission = pool.admission
         store = RegistryThread(settings.registry, settings.blobs)

@@ -87,6 +87,29 @@ async def test_a_worker_that_keeps_dying_gives_503_not_500(registry_dir: Path, m
         assert (await client.post("/v1/predict", json={"texts": TEXTS[:2]})).status_code == 200
 
 
+@pytest.mark.skipif(not hasattr(os, "SCHED_BATCH"), reason="SCHED_BATCH is a Linux scheduling policy")
+async def test_workers_run_as_batch_work_when_told_to(registry_dir: Path) -> None:
+    # The policy the kernel reports for each worker process (sched_getscheduler(2)), after a
+    # prediction has gone through it, for TEXTSIEVE_WORKER_SCHEDULING=batch and the default.
+    for scheduling, policy in (("batch", os.SCHED_BATCH), ("normal", os.SCHED_OTHER)):
+        settings = settings_for(registry_dir, inference="processes", workers=2, worker_scheduling=scheduling)
+        async with serving(settings) as (app, client):
+            assert (await client.post("/v1/predict", json={"texts": TEXTS[:2]})).status_code == 200
+            pids = app.state.pool.procs.pids()
+            assert len(pids) == 2
+            assert [os.sched_getscheduler(pid) for pid in pids] == [policy, policy], scheduling
+    assert os.sched_getscheduler(0) == os.SCHED_OTHER  # the server's own process is left as it was
+
+
+def test_unknown_worker_scheduling_is_refused() -> None:
+    from pydantic import ValidationError
+
+    from textsieve.service.settings import Settings
+
+    with pytest.raises(ValidationError, match="'normal' or 'batch'"):
+        Settings(registry="x", worker_scheduling="fifo")
+
+
 def test_unknown_inference_mode_is_refused() -> None:
     from pydantic import ValidationError
 
