@@ -156,8 +156,8 @@ def _run(p: Predictor, layout: Layout, msg: Run) -> tuple[Any, ...]:
 
 def _send(conn: multiprocessing.connection.Connection, obj: Any) -> None:
     """``conn.send(obj)`` in one write. ``Connection.send`` writes a message over 16 KiB (a batch's
-    replies) as its 4-byte length and then its body, two system calls that each wake the server's
-    reply thread; the server's ``recv`` reads the same bytes either way."""
+    replies) as its 4-byte length and then its body, two system calls that each wake whoever reads
+    the pipe (the server's event loop); the reader sees the same bytes either way."""
     body = ForkingPickler.dumps(obj)
     if len(body) > 0x7FFFFFFF:
         conn.send_bytes(body)
