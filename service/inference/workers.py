@@ -26,6 +26,7 @@ with an :class:`Outcome` and a value.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import gc
 import itertools
 import logging
@@ -168,8 +169,9 @@ def _send(conn: multiprocessing.connection.Connection, obj: Any) -> None:
         data = data[os.write(fd, data) :]
 
 
-def _schedule_as_batch_work() -> bool:
-    """Put this process under Linux's SCHED_BATCH policy; False where there is none or it is refused.
+def _schedule_as_batch_work() -> None:
+    """Put this process under Linux's SCHED_BATCH policy (where there is none, or a sandbox refuses
+    it, the process keeps the default policy: only speed differs).
 
     A worker woken by a batch then does not preempt the event loop that sent it (the kernel treats
     it as CPU-bound, non-interactive work): the loop goes on reading and answering requests and
@@ -179,13 +181,9 @@ def _schedule_as_batch_work() -> bool:
     were 1.25× and 1.4× longer (the woken worker waits for the loop), so it is a setting,
     ``TEXTSIEVE_WORKER_SCHEDULING=batch``, not the default (bench/README.md, "Workers as batch work")."""
     policy = getattr(os, "SCHED_BATCH", None)
-    if policy is None:
-        return False
-    try:
-        os.sched_setscheduler(0, policy, os.sched_param(0))
-    except OSError:  # a sandbox that forbids it: the worker runs under the default policy
-        return False
-    return True
+    if policy is not None:
+        with contextlib.suppress(OSError):
+            os.sched_setscheduler(0, policy, os.sched_param(0))
 
 
 def _serve(conn: multiprocessing.connection.Connection, scheduling: str = "normal") -> None:
@@ -611,7 +609,9 @@ class _Worker:
 class WorkerProcesses:
     """``count`` worker processes; inference thread i talks to worker ``i % count``."""
 
-    def __init__(self, count: int, loop: asyncio.AbstractEventLoop | None = None, *, scheduling: str = "batch") -> None:
+    def __init__(
+        self, count: int, loop: asyncio.AbstractEventLoop | None = None, *, scheduling: str = "normal"
+    ) -> None:
         """``loop``: the event loop that reads the workers' replies (without one, a thread per worker does);
         ``scheduling``: "batch" runs the workers under SCHED_BATCH (:func:`_schedule_as_batch_work`)."""
         self.workers = [_Worker(i, loop, scheduling) for i in range(count)]
