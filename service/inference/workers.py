@@ -176,10 +176,9 @@ def _schedule_as_batch_work() -> None:
     A worker woken by a batch then does not preempt the event loop that sent it (the kernel treats
     it as CPU-bound, non-interactive work): the loop goes on reading and answering requests and
     the worker computes on what the loop leaves. Its CPU share is unchanged: it is not a lower
-    priority (nice). On 2 cores with 32 single-text callers that gave 1.04-1.09× the requests/s
-    and, at a fixed arrival rate near capacity, half the p99; at half the capacity the p50 and p99
-    were 1.25× and 1.4× longer (the woken worker waits for the loop), so it is a setting,
-    ``TEXTSIEVE_WORKER_SCHEDULING=batch``, not the default (bench/README.md, "Workers as batch work")."""
+    priority (nice). It helps near capacity and costs latency at light load (the woken worker
+    waits for the loop), so it is a setting, ``TEXTSIEVE_WORKER_SCHEDULING=batch``, not the
+    default; the measurements are in bench/README.md, "Workers as batch work"."""
     policy = getattr(os, "SCHED_BATCH", None)
     if policy is not None:
         with contextlib.suppress(OSError):
