@@ -76,11 +76,12 @@ class Settings(BaseSettings):
         description="where workers run: processes (tokenizing and spans outside the server's GIL; "
         "fastest) or threads (one process, less memory)",
     )
-    worker_scheduling: Literal["normal", "batch"] = Field(
-        "normal",
-        description="the worker processes' Linux scheduling policy: normal, or batch (SCHED_BATCH: a worker "
-        "woken by a batch does not take the core from the event loop; more single-text requests/s and shorter "
-        "tails near capacity, longer latency at light load: bench/README.md, 'Workers as batch work')",
+    worker_scheduling: Literal["adaptive", "normal", "batch"] = Field(
+        "adaptive",
+        description="the worker processes' Linux scheduling policy: batch (SCHED_BATCH: a worker woken by a "
+        "batch does not take the core from the event loop; more single-text requests/s and shorter tails near "
+        "capacity, longer latency at light load), normal, or adaptive: batch while the event loop keeps 60 % "
+        "of a core busy, normal once it is below 45 % (bench/README.md, 'Workers as batch work')",
     )
     batch_max_texts: int = Field(
         128,

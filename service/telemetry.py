@@ -144,6 +144,7 @@ class WorkerProcessCollector(Collector):
 
     def __init__(self) -> None:
         self.pids: WorkerPids | None = None  # set while a pool of worker processes runs
+        self.pool: Any = None  # service.inference.batcher.InferencePool: its scheduling policy
         self._boot = _boot_time()
 
     def collect(self) -> Iterator[Metric]:
@@ -174,6 +175,18 @@ class WorkerProcessCollector(Collector):
             rss.add_metric(label, resident)
             shared.add_metric(label, shared_bytes)
         yield from (rss, shared, cpu, start)
+        pool = self.pool
+        if pool is not None:
+            yield GaugeMetricFamily(
+                "textsieve_workers_batch_scheduled",
+                "1 while the worker processes run under Linux SCHED_BATCH (TEXTSIEVE_WORKER_SCHEDULING), else 0.",
+                value=int(pool.scheduling == "batch"),
+            )
+            yield CounterMetricFamily(
+                "textsieve_worker_scheduling_switches",
+                "How often TEXTSIEVE_WORKER_SCHEDULING=adaptive moved the workers between policies.",
+                value=pool.scheduling_switches,
+            )
 
 
 class OverloadCollector(Collector):
@@ -434,9 +447,11 @@ class ServiceMetrics:
         info = {"version": str(version)} | ({"manifest_sha256": manifest_sha256} if manifest_sha256 else {})
         self.served_info.labels(model).info(info)
 
-    def watch_workers(self, pids: WorkerPids | None) -> None:
-        """Report these worker processes when scraped (None: there are none, e.g. threads mode)."""
+    def watch_workers(self, pids: WorkerPids | None, pool: Any = None) -> None:
+        """Report these worker processes, and ``pool``'s scheduling policy, when scraped (None: there
+        are none, e.g. threads mode)."""
         self.worker_processes.pids = pids
+        self.worker_processes.pool = pool if pids is not None else None
 
     def render(self) -> bytes:
         return generate_latest(self._exposed)

@@ -55,6 +55,13 @@ PIPELINE = 2  # batches in flight per worker process
 # Fair order: each pass over the queue takes at most this many texts from a request before the
 # next request's turn, so one large request does not hold many small ones behind it.
 QUANTUM = 16
+# TEXTSIEVE_WORKER_SCHEDULING=adaptive: every ADAPT_SECONDS the event loop's own CPU share over
+# the last interval decides; at BUSY_ON of a core or more the workers go under SCHED_BATCH, at
+# BUSY_OFF or less back to the normal policy (in between, as they were). bench/README.md, "Workers
+# as batch work, when the loop is busy".
+ADAPT_SECONDS = 0.25
+BUSY_ON = 0.6
+BUSY_OFF = 0.45
 
 
 class InferencePool:
@@ -80,6 +87,32 @@ class InferencePool:
         )
         self._slots: asyncio.Semaphore | None = None
         self.admission = Admission(max_wait_seconds=queue_wait_ms / 1000.0, threads=self.threads)
+        # The worker processes' policy now ("normal" or "batch"), and how often "adaptive" changed it.
+        self.scheduling = "batch" if worker_scheduling == "batch" else "normal"
+        self.scheduling_switches = 0
+        self._adapting: asyncio.TimerHandle | None = None
+        self._mark = (time.monotonic(), time.thread_time())
+        if self.procs is not None and worker_scheduling == "adaptive" and loop is not None:
+            self._adapting = loop.call_later(ADAPT_SECONDS, self._adapt, loop)
+
+    def _adapt(self, loop: asyncio.AbstractEventLoop) -> None:
+        """On the event loop, every ADAPT_SECONDS: the workers run under SCHED_BATCH while the loop
+        itself is busy, and under the normal policy when it is not.
+
+        A worker woken by a batch otherwise often takes the loop's core at once; near capacity the
+        loop (which reads, batches and answers every request) is worth more on its core, while at
+        light load the worker should start at once (bench/README.md, "Workers as batch work"). The
+        loop's own CPU time over the last interval tells which case this is, for one clock read."""
+        assert self.procs is not None
+        wall, cpu = time.monotonic(), time.thread_time()  # thread_time: the loop's thread only
+        share = (cpu - self._mark[1]) / max(wall - self._mark[0], 1e-6)
+        self._mark = (wall, cpu)
+        want = "batch" if share >= BUSY_ON else "normal" if share <= BUSY_OFF else self.scheduling
+        if want != self.scheduling:
+            self.scheduling = want
+            self.scheduling_switches += 1
+            self.procs.set_scheduling(want)
+        self._adapting = loop.call_later(ADAPT_SECONDS, self._adapt, loop)
 
     def _name_thread(self) -> None:
         self._local.index = next(self._numbers)
@@ -98,6 +131,8 @@ class InferencePool:
         return self._executor
 
     def shutdown(self) -> None:
+        if self._adapting is not None:
+            self._adapting.cancel()
         self._executor.shutdown(wait=True, cancel_futures=True)
         if self.procs is not None:
             self.procs.shutdown()

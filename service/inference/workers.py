@@ -177,8 +177,10 @@ def _schedule_as_batch_work() -> None:
     it as CPU-bound, non-interactive work): the loop goes on reading and answering requests and
     the worker computes on what the loop leaves. Its CPU share is unchanged: it is not a lower
     priority (nice). It helps near capacity and costs latency at light load (the woken worker
-    waits for the loop), so it is a setting, ``TEXTSIEVE_WORKER_SCHEDULING=batch``, not the
-    default; the measurements are in bench/README.md, "Workers as batch work"."""
+    waits for the loop), so by default (``TEXTSIEVE_WORKER_SCHEDULING=adaptive``) the server
+    moves the workers under it only while its event loop is busy (``InferencePool._adapt``,
+    :meth:`WorkerProcesses.set_scheduling`); ``batch`` keeps them under it from the start. The
+    measurements are in bench/README.md, "Workers as batch work"."""
     policy = getattr(os, "SCHED_BATCH", None)
     if policy is not None:
         with contextlib.suppress(OSError):
@@ -612,8 +614,9 @@ class WorkerProcesses:
         self, count: int, loop: asyncio.AbstractEventLoop | None = None, *, scheduling: str = "normal"
     ) -> None:
         """``loop``: the event loop that reads the workers' replies (without one, a thread per worker does);
-        ``scheduling``: "batch" runs the workers under SCHED_BATCH (:func:`_schedule_as_batch_work`)."""
-        self.workers = [_Worker(i, loop, scheduling) for i in range(count)]
+        ``scheduling``: "batch" runs the workers under SCHED_BATCH (:func:`_schedule_as_batch_work`),
+        "normal" and "adaptive" start them under the normal policy (:meth:`set_scheduling` moves them)."""
+        self.workers = [_Worker(i, loop, "normal" if scheduling == "adaptive" else scheduling) for i in range(count)]
         self._started = False
         self._start_lock = threading.Lock()
         self._loads = itertools.count(1)
@@ -632,6 +635,16 @@ class WorkerProcesses:
                         "fix that, or set TEXTSIEVE_INFERENCE=threads to run inference in the server process"
                     ) from exc
                 self._started = True
+
+    def set_scheduling(self, policy: str) -> None:
+        """Put every running worker (and any that replaces one) under ``policy``: "normal" or "batch"."""
+        linux = getattr(os, "SCHED_BATCH" if policy == "batch" else "SCHED_OTHER", None)
+        for w in self.workers:
+            w.scheduling = policy
+            proc = w.proc
+            if linux is not None and proc is not None and proc.pid is not None:
+                with contextlib.suppress(OSError):
+                    os.sched_setscheduler(proc.pid, linux, os.sched_param(0))
 
     def new_key(self, name: str, version: int) -> Key:
         return (name, version, next(self._loads))

@@ -51,7 +51,7 @@ def create_app(settings: Settings | None = None, *, fast_lane: bool = True) -> L
             queue_wait_ms=settings.queue_wait_ms,
             worker_scheduling=settings.worker_scheduling,
         )
-        metrics.watch_workers(pool.procs.processes if pool.procs is not None else None)
+        metrics.watch_workers(pool.procs.processes if pool.procs is not None else None, pool)
         metrics.overload.admission = pool.admission
         store = RegistryThread(settings.registry, settings.blobs)
         models = ModelSet(settings, store, pool, metrics)

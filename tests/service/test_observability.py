@@ -51,6 +51,8 @@ EXPOSED = {
     "textsieve_worker_shared_memory_bytes",
     "textsieve_worker_cpu_seconds_total",
     "textsieve_worker_start_time_seconds",
+    "textsieve_workers_batch_scheduled",
+    "textsieve_worker_scheduling_switches_total",
     # The overload bounds (service/web/transport.py, bodylimit.py, inference/admission.py).
     "textsieve_overload_refusals_total",
     "textsieve_connections_open",

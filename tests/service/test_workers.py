@@ -8,6 +8,7 @@ import os
 import signal
 import subprocess
 import sys
+import time
 from concurrent.futures import Future
 from pathlib import Path
 from typing import Any
@@ -90,7 +91,7 @@ async def test_a_worker_that_keeps_dying_gives_503_not_500(registry_dir: Path, m
 @pytest.mark.skipif(not hasattr(os, "SCHED_BATCH"), reason="SCHED_BATCH is a Linux scheduling policy")
 async def test_workers_run_as_batch_work_when_told_to(registry_dir: Path) -> None:
     # The policy the kernel reports for each worker process (sched_getscheduler(2)), after a
-    # prediction has gone through it, for TEXTSIEVE_WORKER_SCHEDULING=batch and the default.
+    # prediction has gone through it, for TEXTSIEVE_WORKER_SCHEDULING=batch and normal.
     for scheduling, policy in (("batch", os.SCHED_BATCH), ("normal", os.SCHED_OTHER)):
         settings = settings_for(registry_dir, inference="processes", workers=2, worker_scheduling=scheduling)
         async with serving(settings) as (app, client):
@@ -101,12 +102,44 @@ async def test_workers_run_as_batch_work_when_told_to(registry_dir: Path) -> Non
     assert os.sched_getscheduler(0) == os.SCHED_OTHER  # the server's own process is left as it was
 
 
+@pytest.mark.skipif(not hasattr(os, "SCHED_BATCH"), reason="SCHED_BATCH is a Linux scheduling policy")
+async def test_adaptive_scheduling_follows_the_event_loops_own_load(registry_dir: Path) -> None:
+    # The default, TEXTSIEVE_WORKER_SCHEDULING=adaptive: the workers go under SCHED_BATCH once the
+    # event loop has kept BUSY_ON of a core busy over an interval, and back when it is idle; each
+    # worker's policy is read from the kernel, and /metrics says the same.
+    from textsieve.service.inference.batcher import ADAPT_SECONDS
+
+    async def until(scheduling: str) -> list[int]:
+        for _ in range(200):
+            if pool.scheduling == scheduling:
+                return [os.sched_getscheduler(pid) for pid in pool.procs.pids()]  # at once, on the loop
+            await asyncio.sleep(0.01)
+        raise AssertionError(f"the workers never went {scheduling}")
+
+    settings = settings_for(registry_dir, inference="processes", workers=2)
+    assert settings.worker_scheduling == "adaptive"
+    async with serving(settings) as (app, client):
+        assert (await client.post("/v1/predict", json={"texts": TEXTS[:2]})).status_code == 200
+        pool = app.state.pool
+        await asyncio.sleep(2 * ADAPT_SECONDS)
+        assert await until("normal") == [os.SCHED_OTHER] * 2
+        end = time.thread_time() + 3 * ADAPT_SECONDS  # the loop's thread busy for three intervals
+        while time.thread_time() < end:
+            pass
+        assert await until("batch") == [os.SCHED_BATCH] * 2
+        assert await until("normal") == [os.SCHED_OTHER] * 2  # idle again: the next interval undoes it
+        assert pool.scheduling_switches == 2
+        page = (await client.get("/metrics")).text
+        assert "textsieve_worker_scheduling_switches_total 2.0" in page
+        assert "textsieve_workers_batch_scheduled 0.0" in page
+
+
 def test_unknown_worker_scheduling_is_refused() -> None:
     from pydantic import ValidationError
 
     from textsieve.service.settings import Settings
 
-    with pytest.raises(ValidationError, match="'normal' or 'batch'"):
+    with pytest.raises(ValidationError, match="'adaptive', 'normal' or 'batch'"):
         Settings(registry="x", worker_scheduling="fifo")
 
 
