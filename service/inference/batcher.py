@@ -92,6 +92,7 @@ class InferencePool:
         self.scheduling_switches = 0
         self._adapting: asyncio.TimerHandle | None = None
         self._mark = (time.monotonic(), time.thread_time())
+        self._placed: list[int] = []  # the worker pids the policy was last applied to
         if self.procs is not None and worker_scheduling == "adaptive" and loop is not None:
             self._adapting = loop.call_later(ADAPT_SECONDS, self._adapt, loop)
 
@@ -108,10 +109,14 @@ class InferencePool:
         share = (cpu - self._mark[1]) / max(wall - self._mark[0], 1e-6)
         self._mark = (wall, cpu)
         want = "batch" if share >= BUSY_ON else "normal" if share <= BUSY_OFF else self.scheduling
+        pids = self.procs.pids()
         if want != self.scheduling:
             self.scheduling = want
             self.scheduling_switches += 1
             self.procs.set_scheduling(want)
+        elif pids != self._placed:  # a worker was replaced meanwhile: it may have started as it was
+            self.procs.set_scheduling(want)
+        self._placed = pids
         self._adapting = loop.call_later(ADAPT_SECONDS, self._adapt, loop)
 
     def _name_thread(self) -> None:

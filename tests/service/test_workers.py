@@ -134,6 +134,38 @@ async def test_adaptive_scheduling_follows_the_event_loops_own_load(registry_dir
         assert "textsieve_workers_batch_scheduled 0.0" in page
 
 
+@pytest.mark.skipif(not hasattr(os, "SCHED_BATCH"), reason="SCHED_BATCH is a Linux scheduling policy")
+async def test_a_replaced_worker_is_put_under_the_adaptive_policy(
+    registry_dir: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The loop counts as busy whatever it does, so the policy stays batch; a worker replaced after
+    # the switch is put under it as well, even when it started under the normal policy (a
+    # replacement racing the switch: simulated by starting it as "normal").
+    from textsieve.service.inference import batcher
+
+    monkeypatch.setattr(batcher, "BUSY_ON", 0.0)
+    monkeypatch.setattr(batcher, "BUSY_OFF", -1.0)
+    async with serving(settings_for(registry_dir, inference="processes", workers=2)) as (app, client):
+        assert (await client.post("/v1/predict", json={"texts": TEXTS[:2]})).status_code == 200
+        pool = app.state.pool
+        while pool.scheduling != "batch":
+            await asyncio.sleep(0.01)
+        worker = pool.procs.workers[0]
+        worker.scheduling = "normal"
+        old = worker.proc.pid
+        os.kill(old, signal.SIGKILL)
+        worker.proc.join(5)
+        assert (await client.post("/v1/predict", json={"texts": TEXTS[:2]})).status_code == 200
+        assert worker.proc.pid != old
+        for _ in range(200):
+            if [os.sched_getscheduler(pid) for pid in pool.procs.pids()] == [os.SCHED_BATCH] * 2:
+                break
+            await asyncio.sleep(0.01)
+        else:
+            raise AssertionError("the replaced worker was left under the normal policy")
+        assert pool.scheduling_switches == 1  # put under it without a switch
+
+
 def test_unknown_worker_scheduling_is_refused() -> None:
     from pydantic import ValidationError
 
