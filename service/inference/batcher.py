@@ -28,6 +28,7 @@ batch neighbours.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import functools
 import itertools
 import math
@@ -90,7 +91,9 @@ class InferencePool:
         # The worker processes' policy now ("normal" or "batch"), and how often "adaptive" changed it.
         self.scheduling = "batch" if worker_scheduling == "batch" else "normal"
         self.scheduling_switches = 0
-        self._adapting: asyncio.TimerHandle | None = None
+        self._adapting: asyncio.TimerHandle | None = None  # touched on the loop only
+        self._adapt_loop = loop
+        self._adapt_stopped = False
         self._mark = (time.monotonic(), time.thread_time())
         self._placed: list[int] = []  # the worker pids the policy was last applied to
         if self.procs is not None and worker_scheduling == "adaptive" and loop is not None:
@@ -105,6 +108,9 @@ class InferencePool:
         light load the worker should start at once (bench/README.md, "Workers as batch work"). The
         loop's own CPU time over the last interval tells which case this is, for one clock read."""
         assert self.procs is not None
+        if self._adapt_stopped:
+            self._adapting = None
+            return
         wall, cpu = time.monotonic(), time.thread_time()  # thread_time: the loop's thread only
         share = (cpu - self._mark[1]) / max(wall - self._mark[0], 1e-6)
         self._mark = (wall, cpu)
@@ -135,9 +141,26 @@ class InferencePool:
     def executor(self) -> ThreadPoolExecutor:
         return self._executor
 
-    def shutdown(self) -> None:
+    def _stop_adapting(self) -> None:  # on the loop: its timer handles are not thread-safe (uvloop's)
+        self._adapt_stopped = True
         if self._adapting is not None:
             self._adapting.cancel()
+            self._adapting = None
+
+    def shutdown(self) -> None:
+        """Stop the workers (blocking: the server calls it off the event loop)."""
+        self._adapt_stopped = True  # the timer does not re-arm, wherever this is called from
+        loop = self._adapt_loop
+        if loop is not None:
+            try:
+                on_loop = asyncio.get_running_loop() is loop
+            except RuntimeError:
+                on_loop = False
+            if on_loop:
+                self._stop_adapting()
+            else:
+                with contextlib.suppress(RuntimeError):  # the loop has closed: its timers went with it
+                    loop.call_soon_threadsafe(self._stop_adapting)
         self._executor.shutdown(wait=True, cancel_futures=True)
         if self.procs is not None:
             self.procs.shutdown()

@@ -132,6 +132,8 @@ async def test_adaptive_scheduling_follows_the_event_loops_own_load(registry_dir
         page = (await client.get("/metrics")).text
         assert "textsieve_worker_scheduling_switches_total 2.0" in page
         assert "textsieve_workers_batch_scheduled 0.0" in page
+    # Shutdown (run off the loop, as the lifespan does) stopped the timer on the loop's own thread.
+    assert pool._adapting is None and pool._adapt_stopped
 
 
 @pytest.mark.skipif(not hasattr(os, "SCHED_BATCH"), reason="SCHED_BATCH is a Linux scheduling policy")
