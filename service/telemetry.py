@@ -179,7 +179,8 @@ class WorkerProcessCollector(Collector):
         if pool is not None:
             yield GaugeMetricFamily(
                 "textsieve_workers_batch_scheduled",
-                "1 while the worker processes run under Linux SCHED_BATCH (TEXTSIEVE_WORKER_SCHEDULING), else 0.",
+                "1 while the server has put the worker processes under Linux SCHED_BATCH "
+                "(TEXTSIEVE_WORKER_SCHEDULING; a system that refuses the policy leaves them as they were), else 0.",
                 value=int(pool.scheduling == "batch"),
             )
             yield CounterMetricFamily(
