@@ -35,6 +35,7 @@ sys.path.insert(0, str(HERE))
 import demo_model  # noqa: E402
 import loadgen  # noqa: E402
 import servers  # noqa: E402
+from checkout_ab import window  # noqa: E402
 from run import CONNECTIONS, SPANS, bodies, mean_reply_bytes, median  # noqa: E402
 from texts import bench_texts  # noqa: E402
 
@@ -92,20 +93,6 @@ def serve_replicas(kind: str, count: int, port: int, reply_bytes: int) -> int:
     for child in children:
         os.waitpid(child, 0)
     return 0
-
-
-def window(server: servers.Server, body_list: list[bytes], seconds: float, wrk: str | None) -> dict[str, float]:
-    cpu0 = server.cpu_seconds()
-    res = loadgen.run_load(server.url + "/v1/predict", body_list, connections=CONNECTIONS, seconds=seconds, wrk=wrk)
-    cpu = server.cpu_seconds() - cpu0
-    if res.errors or not res.requests:
-        raise RuntimeError(f"{server.name}: {res.errors} failed requests of {res.requests}; see {server.log}")
-    return {
-        "requests_per_s": res.requests / res.seconds,
-        "server_cpu_ms_per_request": 1000 * cpu / res.requests,
-        "server_cores_busy": cpu / res.seconds,
-        "p99_ms": res.latency_ms["p99"],
-    }
 
 
 def main() -> int:
