@@ -142,7 +142,6 @@ class InferencePool:
         return self._executor
 
     def _stop_adapting(self) -> None:  # on the loop: its timer handles are not thread-safe (uvloop's)
-        self._adapt_stopped = True
         if self._adapting is not None:
             self._adapting.cancel()
             self._adapting = None

@@ -169,30 +169,28 @@ def _send(conn: multiprocessing.connection.Connection, obj: Any) -> None:
         data = data[os.write(fd, data) :]
 
 
-def _schedule_as_batch_work() -> None:
-    """Put this process under Linux's SCHED_BATCH policy (where there is none, or a sandbox refuses
-    it, the process keeps the default policy: only speed differs).
+def _place(pid: int, policy: str) -> None:
+    """Put process ``pid`` (a worker) under Linux's SCHED_BATCH policy (``policy`` "batch") or the
+    normal one; where there is no such policy, or the system refuses it, the process stays as it
+    was: only speed differs. A process may move its own children between the two unprivileged.
 
-    A worker woken by a batch then does not preempt the event loop that sent it (the kernel treats
-    it as CPU-bound, non-interactive work): the loop goes on reading and answering requests and
-    the worker computes on what the loop leaves. Its CPU share is unchanged: it is not a lower
-    priority (nice). It helps near capacity and costs latency at light load (the woken worker
-    waits for the loop), so by default (``TEXTSIEVE_WORKER_SCHEDULING=adaptive``) the server
-    moves the workers under it only while its event loop is busy (``InferencePool._adapt``,
-    :meth:`WorkerProcesses.set_scheduling`); ``batch`` keeps them under it from the start. The
-    measurements are in bench/README.md, "Workers as batch work"."""
-    policy = getattr(os, "SCHED_BATCH", None)
-    if policy is not None:
+    A worker under SCHED_BATCH that is woken by a batch does not preempt the event loop that sent
+    it (the kernel treats it as CPU-bound, non-interactive work): the loop goes on reading and
+    answering requests and the worker computes on what the loop leaves. Its CPU share is
+    unchanged: it is not a lower priority (nice). It helps near capacity and costs latency at
+    light load (the woken worker waits for the loop), so by default
+    (``TEXTSIEVE_WORKER_SCHEDULING=adaptive``) the server moves the workers under it only while its
+    event loop is busy (``InferencePool._adapt``); ``batch`` keeps them under it from the start.
+    The measurements are in bench/README.md, "Workers as batch work"."""
+    linux = getattr(os, "SCHED_BATCH" if policy == "batch" else "SCHED_OTHER", None)
+    if linux is not None:
         with contextlib.suppress(OSError):
-            os.sched_setscheduler(0, policy, os.sched_param(0))
+            os.sched_setscheduler(pid, linux, os.sched_param(0))
 
 
-def _serve(conn: multiprocessing.connection.Connection, scheduling: str = "normal") -> None:
+def _serve(conn: multiprocessing.connection.Connection) -> None:
     """The worker's loop: one request, one reply, until told to stop or the pipe closes."""
     import signal
-
-    if scheduling == "batch":
-        _schedule_as_batch_work()
 
     # Ctrl-C (and a SIGTERM sent to the whole process group) must not end a worker in the middle
     # of a batch: the server finishes its requests, then stops the workers; if the server dies,
@@ -410,7 +408,7 @@ class _Worker:
 
     index: int
     loop: asyncio.AbstractEventLoop | None = None
-    scheduling: str = "normal"  # or "batch": SCHED_BATCH (see _schedule_as_batch_work)
+    scheduling: str = "normal"  # or "batch": SCHED_BATCH (see _place)
     proc: Any = None
     conn: multiprocessing.connection.Connection | None = None
     replies: _Replies | None = None
@@ -429,11 +427,11 @@ class _Worker:
     def start(self) -> None:
         ctx = _fork_context()
         parent, child = ctx.Pipe(duplex=True)
-        proc = ctx.Process(
-            target=_serve, args=(child, self.scheduling), name=f"textsieve-worker-{self.index}", daemon=True
-        )
+        proc = ctx.Process(target=_serve, args=(child,), name=f"textsieve-worker-{self.index}", daemon=True)
         proc.start()
         child.close()
+        if self.scheduling != "normal":  # a new process starts under the normal policy
+            _place(proc.pid, self.scheduling)
         replies = _Replies(parent, self.send_lock)
         with self.send_lock:
             self.proc, self.conn, self.replies = proc, parent, replies
@@ -614,7 +612,7 @@ class WorkerProcesses:
         self, count: int, loop: asyncio.AbstractEventLoop | None = None, *, scheduling: str = "normal"
     ) -> None:
         """``loop``: the event loop that reads the workers' replies (without one, a thread per worker does);
-        ``scheduling``: "batch" runs the workers under SCHED_BATCH (:func:`_schedule_as_batch_work`),
+        ``scheduling``: "batch" runs the workers under SCHED_BATCH (:func:`_place`),
         "normal" and "adaptive" start them under the normal policy (:meth:`set_scheduling` moves them)."""
         self.workers = [_Worker(i, loop, "normal" if scheduling == "adaptive" else scheduling) for i in range(count)]
         self._started = False
@@ -638,13 +636,11 @@ class WorkerProcesses:
 
     def set_scheduling(self, policy: str) -> None:
         """Put every running worker (and any that replaces one) under ``policy``: "normal" or "batch"."""
-        linux = getattr(os, "SCHED_BATCH" if policy == "batch" else "SCHED_OTHER", None)
         for w in self.workers:
             w.scheduling = policy
             proc = w.proc
-            if linux is not None and proc is not None and proc.pid is not None:
-                with contextlib.suppress(OSError):
-                    os.sched_setscheduler(proc.pid, linux, os.sched_param(0))
+            if proc is not None and proc.pid is not None:
+                _place(proc.pid, policy)
 
     def new_key(self, name: str, version: int) -> Key:
         return (name, version, next(self._loads))
