@@ -81,7 +81,8 @@ class Settings(BaseSettings):
         description="the worker processes' Linux scheduling policy: batch (SCHED_BATCH: a worker woken by a "
         "batch does not take the core from the event loop; more single-text requests/s and shorter tails near "
         "capacity, longer latency at light load), normal, or adaptive: batch while the event loop keeps 60 % "
-        "of a core busy, normal once it is below 45 % (bench/README.md, 'Workers as batch work')",
+        "of a core busy, normal once it is below 45 %; while adaptive has them under batch, batches also gather on "
+        "the first worker with room (bench/README.md, 'Workers as batch work', 'Gathering batches on one worker')",
     )
     batch_max_texts: int = Field(
         128,

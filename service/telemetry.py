@@ -180,7 +180,8 @@ class WorkerProcessCollector(Collector):
             yield GaugeMetricFamily(
                 "textsieve_workers_batch_scheduled",
                 "1 while the server has put the worker processes under Linux SCHED_BATCH "
-                "(TEXTSIEVE_WORKER_SCHEDULING; a system that refuses the policy leaves them as they were), else 0.",
+                "(TEXTSIEVE_WORKER_SCHEDULING; a system that refuses the policy leaves them as they were; under "
+                "adaptive, batches then also gather on the first worker with room), else 0.",
                 value=int(pool.scheduling == "batch"),
             )
             yield CounterMetricFamily(

@@ -1,7 +1,8 @@
 """Dynamic micro-batching: texts from concurrent requests share onnxruntime calls.
 
 Threading model. With ``inference=processes`` (the default) the collector hands each batch
-from the event loop to the least busy worker process and the worker's reply comes back to the
+from the event loop to the least busy worker process (while the loop is busy, to the first with
+room: :meth:`InferencePool._adapt`) and the worker's reply comes back to the
 loop (:mod:`textsieve.service.inference.workers`), with no inference thread in between: every
 hand-over between threads waits its turn for the GIL behind whatever the loop is running, which
 cost single-text requests most of their latency. With ``inference=threads``, ``workers``
@@ -47,12 +48,11 @@ from textsieve.registry.drift import count_encoded
 from textsieve.service.inference.admission import Admission
 from textsieve.service.inference.packing import run_packed
 from textsieve.service.inference.spans import explain, mark_for_review
-from textsieve.service.inference.workers import WorkerProcesses
+from textsieve.service.inference.workers import PIPELINE, WorkerProcesses
 from textsieve.service.modelset.loader import ServedModel
 from textsieve.service.telemetry import ServiceMetrics
 
 Result = dict[str, Any]
-PIPELINE = 2  # batches in flight per worker process
 # Fair order: each pass over the queue takes at most this many texts from a request before the
 # next request's turn, so one large request does not hold many small ones behind it.
 QUANTUM = 16
@@ -100,13 +100,18 @@ class InferencePool:
             self._adapting = loop.call_later(ADAPT_SECONDS, self._adapt, loop)
 
     def _adapt(self, loop: asyncio.AbstractEventLoop) -> None:
-        """On the event loop, every ADAPT_SECONDS: the workers run under SCHED_BATCH while the loop
-        itself is busy, and under the normal policy when it is not.
+        """On the event loop, every ADAPT_SECONDS: while the loop itself is busy, the workers run
+        under SCHED_BATCH and batches gather on the first worker with room (``procs.gather``, the
+        whole queue a batch); when it is not, the normal policy and the least busy worker.
 
         A worker woken by a batch otherwise often takes the loop's core at once; near capacity the
         loop (which reads, batches and answers every request) is worth more on its core, while at
-        light load the worker should start at once (bench/README.md, "Workers as batch work"). The
-        loop's own CPU time over the last interval tells which case this is, for one clock read."""
+        light load the worker should start at once (bench/README.md, "Workers as batch work"). A
+        busy loop is also when small requests make small batches, whose fixed cost weighs most:
+        one worker taking larger batches pays it less often and keeps its caches warm, and the
+        next worker takes a batch as soon as the first has one computing and one waiting
+        (bench/README.md, "Gathering batches on one worker"). The loop's own CPU time over the
+        last interval tells which case this is, for one clock read."""
         assert self.procs is not None
         if self._adapt_stopped:
             self._adapting = None
@@ -120,10 +125,16 @@ class InferencePool:
             self.scheduling = want
             self.scheduling_switches += 1
             self.procs.set_scheduling(want)
+            self.procs.gather = want == "batch"
         elif pids != self._placed:  # a worker was replaced meanwhile: it may have started as it was
             self.procs.set_scheduling(want)
         self._placed = pids
         self._adapting = loop.call_later(ADAPT_SECONDS, self._adapt, loop)
+
+    def sharing(self) -> int:
+        """Over how many workers the queued texts are shared out (:meth:`Batcher._target`): all of
+        them, except while the workers gather on the first free one (``adaptive``, the loop busy)."""
+        return 1 if self.procs is not None and self.procs.gather else self.workers
 
     def _name_thread(self) -> None:
         self._local.index = next(self._numbers)
@@ -296,7 +307,8 @@ class Batcher:
 
     def _target(self) -> int:
         """Texts worth a batch now: the texts recently admitted, shared out over the worker
-        processes (or inference threads), at least 1 and at most ``max_texts``.
+        processes (or inference threads; all to one while they gather, see
+        :meth:`InferencePool._adapt`), at least 1 and at most ``max_texts``.
 
         Under a closed loop of N single-text callers, about N/workers texts go per batch: while the
         workers compute one group, the event loop answers the previous group and reads the next
@@ -304,7 +316,7 @@ class Batcher:
         turns, each idle while the other works: bench/README.md). One caller alone waits for no one.
         """
         mean = self.pool.admission.mean_queued
-        return max(1, min(self.max_texts, math.ceil(mean / self.pool.workers)))
+        return max(1, min(self.max_texts, math.ceil(mean / self.pool.sharing())))
 
     async def _collect(self) -> None:
         """Batches whose texts did not reach :meth:`_target` on arrival (see :meth:`_submit`): once a

@@ -4,7 +4,8 @@ With threads (``TEXTSIEVE_INFERENCE=threads``) onnxruntime computes in parallel,
 tokenizing, padding and building replies are Python and take turns on one GIL with the event
 loop; on the 2-core benchmark machine that capped the server at about 1.25 busy cores. With
 processes (the default) the event loop puts each batch into the pipe of the least busy worker
-process (:meth:`WorkerProcesses.run_async`); the worker encodes, runs its single-thread session,
+process (while the loop is busy, of the first with room: :attr:`WorkerProcesses.gather`;
+:meth:`WorkerProcesses.run_async`); the worker encodes, runs its single-thread session,
 explains, and sends back each text's reply already serialised as JSON, which the server embeds
 as it is (``orjson.Fragment``); the event loop reads each worker's pipe itself when it becomes
 readable (``loop.add_reader``) and settles the batch's future there (without a loop, for instance
@@ -252,6 +253,7 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
 # socket's buffer (Linux gives a Unix socket pair at least 200 KiB): a full pipe would block the
 # loop until the worker drained it. Larger batches (long texts) are sent from a thread.
 SEND_FROM_LOOP_MAX_BYTES = 64 * 1024
+PIPELINE = 2  # batches in flight per worker process: one computing, the next waiting in its pipe
 
 
 def pickled(msg: Message) -> bytes:
@@ -615,6 +617,10 @@ class WorkerProcesses:
         ``scheduling``: "batch" runs the workers under SCHED_BATCH (:func:`_place`),
         "normal" and "adaptive" start them under the normal policy (:meth:`set_scheduling` moves them)."""
         self.workers = [_Worker(i, loop, "normal" if scheduling == "adaptive" else scheduling) for i in range(count)]
+        # True: a batch goes to the first worker with a free place in its pipeline, the others only
+        # taking what it cannot (set by the pool while its event loop is busy: InferencePool._adapt);
+        # False: to the least busy worker.
+        self.gather = False
         self._started = False
         self._start_lock = threading.Lock()
         self._loads = itertools.count(1)
@@ -698,14 +704,17 @@ class WorkerProcesses:
         executor: Executor,
     ) -> asyncio.Future[RunReply]:
         """:meth:`run` from the event loop, with no thread in between: the batch goes into the least
-        busy worker's pipe from here, and the loop reads the reply off the pipe. Each hand-over
+        busy worker's pipe from here (with :attr:`gather`, the first one with room in its pipeline),
+        and the loop reads the reply off the pipe. Each hand-over
         between threads waits its turn for the GIL behind whatever the loop is running, so the
         threaded path's three per batch cost single-text requests most of their latency
         (bench/README.md). A batch too large to be sure of fitting in
         the pipe, and the retry after a worker died, run on ``executor`` instead (both block)."""
         loop = asyncio.get_running_loop()
         msg = Run(key, texts, ks, review, drift)
-        w = min(self._holding(key), key=lambda w: w.pending)
+        holding = self._holding(key)
+        first_free = next((h for h in holding if h.pending < PIPELINE), None) if self.gather else None
+        w = first_free if first_free is not None else min(holding, key=lambda w: w.pending)
         payload = pickled(msg)
         if len(payload) > SEND_FROM_LOOP_MAX_BYTES:
             return loop.run_in_executor(executor, lambda: _unpack(w.call(msg, retry=True)))

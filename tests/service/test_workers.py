@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import orjson
 import pytest
 
 from tests.helpers.service import serving, settings_for
@@ -135,13 +136,56 @@ async def test_adaptive_scheduling_follows_the_event_loops_own_load(
         while time.thread_time() < end:
             pass
         assert await until("batch") == [os.SCHED_BATCH] * 2
+        assert (pool.procs.gather, pool.sharing()) == (True, 1)  # batches gather on one worker
         assert await until("normal") == [os.SCHED_OTHER] * 2  # idle again: the next interval undoes it
+        assert (pool.procs.gather, pool.sharing()) == (False, 2)
         assert pool.scheduling_switches == 2
         page = (await client.get("/metrics")).text
         assert "textsieve_worker_scheduling_switches_total 2.0" in page
         assert "textsieve_workers_batch_scheduled 0.0" in page
     # Shutdown (run off the loop, as the lifespan does) stopped the timer on the loop's own thread.
     assert pool._adapting is None and pool._adapt_stopped
+
+
+async def test_while_the_loop_is_busy_batches_gather_on_the_first_worker_with_room(
+    registry_dir: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The loop counts as busy whatever it does (BUSY_ON 0), so the workers gather: batches fill the
+    # first worker's pipeline (PIPELINE batches: one computing, one waiting) before the next worker
+    # gets one, and a batch is the whole queue rather than its share per worker. Without gathering,
+    # two batches sent back to back go one to each worker. Either way every batch is answered, and
+    # with the same bytes.
+    from textsieve.service.inference import batcher
+    from textsieve.service.inference.workers import PIPELINE
+
+    monkeypatch.setattr(batcher, "BUSY_ON", 0.0)
+    monkeypatch.setattr(batcher, "BUSY_OFF", -1.0)
+    async with serving(settings_for(registry_dir, inference="processes", workers=2)) as (app, client):
+        assert (await client.post("/v1/predict", json={"texts": TEXTS[:2]})).status_code == 200
+        pool = app.state.pool
+        procs = pool.procs
+        while not procs.gather:
+            await asyncio.sleep(0.01)
+        assert pool.sharing() == 1
+        key = next(iter(app.state.models.live.values())).worker_key
+
+        async def send(batches: int) -> tuple[list[int], list[Any]]:
+            futures = [
+                procs.run_async(key, TEXTS[:3], [2] * 3, None, drift=False, executor=pool.executor)
+                for _ in range(batches)
+            ]
+            pending = [w.pending for w in procs.workers]  # before the loop runs again: nothing read yet
+            return pending, [orjson.dumps((await f)[0]) for f in futures]  # each text's JSON, as served
+
+        gathered, replies = await send(PIPELINE)
+        assert gathered == [PIPELINE, 0]
+        overflow, replies_overflow = await send(PIPELINE + 1)  # the first is full: the next takes it
+        assert overflow == [PIPELINE, 1]
+        procs.gather = False
+        spread, replies_spread = await send(2)
+        assert spread == [1, 1]
+        assert len(set(replies + replies_overflow + replies_spread)) == 1
+        assert len(orjson.loads(replies[0])) == 3
 
 
 @pytest.mark.skipif(not hasattr(os, "SCHED_BATCH"), reason="SCHED_BATCH is a Linux scheduling policy")
