@@ -4,11 +4,13 @@ is replaced without losing the request it was running."""
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import os
 import signal
 import subprocess
 import sys
 import time
+from collections.abc import AsyncIterator
 from concurrent.futures import Future
 from pathlib import Path
 from typing import Any
@@ -147,6 +149,21 @@ async def test_adaptive_scheduling_follows_the_event_loops_own_load(
     assert pool._adapting is None and pool._adapt_stopped
 
 
+@contextlib.asynccontextmanager
+async def _loop_always_busy(registry_dir: Path, monkeypatch: pytest.MonkeyPatch) -> AsyncIterator[tuple[Any, Any]]:
+    """Two worker processes, with the event loop counted as busy whatever it does (BUSY_ON 0):
+    ``adaptive`` has put them under SCHED_BATCH, gathering, once this yields (app, client)."""
+    from textsieve.service.inference import batcher
+
+    monkeypatch.setattr(batcher, "BUSY_ON", 0.0)
+    monkeypatch.setattr(batcher, "BUSY_OFF", -1.0)
+    async with serving(settings_for(registry_dir, inference="processes", workers=2)) as (app, client):
+        assert (await client.post("/v1/predict", json={"texts": TEXTS[:2]})).status_code == 200
+        while app.state.pool.scheduling != "batch":
+            await asyncio.sleep(0.01)
+        yield app, client
+
+
 async def test_while_the_loop_is_busy_batches_gather_on_the_first_worker_with_room(
     registry_dir: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
@@ -155,18 +172,12 @@ async def test_while_the_loop_is_busy_batches_gather_on_the_first_worker_with_ro
     # gets one, and a batch is the whole queue rather than its share per worker. Without gathering,
     # two batches sent back to back go one to each worker. Either way every batch is answered, and
     # with the same bytes.
-    from textsieve.service.inference import batcher
     from textsieve.service.inference.workers import PIPELINE
 
-    monkeypatch.setattr(batcher, "BUSY_ON", 0.0)
-    monkeypatch.setattr(batcher, "BUSY_OFF", -1.0)
-    async with serving(settings_for(registry_dir, inference="processes", workers=2)) as (app, client):
-        assert (await client.post("/v1/predict", json={"texts": TEXTS[:2]})).status_code == 200
+    async with _loop_always_busy(registry_dir, monkeypatch) as (app, _):
         pool = app.state.pool
         procs = pool.procs
-        while not procs.gather:
-            await asyncio.sleep(0.01)
-        assert pool.sharing() == 1
+        assert procs.gather and pool.sharing() == 1
         key = next(iter(app.state.models.live.values())).worker_key
 
         async def send(batches: int) -> tuple[list[int], list[Any]]:
@@ -195,15 +206,8 @@ async def test_a_replaced_worker_is_put_under_the_adaptive_policy(
     # The loop counts as busy whatever it does, so the policy stays batch; a worker replaced after
     # the switch is put under it as well, even when it started under the normal policy (a
     # replacement racing the switch: simulated by starting it as "normal").
-    from textsieve.service.inference import batcher
-
-    monkeypatch.setattr(batcher, "BUSY_ON", 0.0)
-    monkeypatch.setattr(batcher, "BUSY_OFF", -1.0)
-    async with serving(settings_for(registry_dir, inference="processes", workers=2)) as (app, client):
-        assert (await client.post("/v1/predict", json={"texts": TEXTS[:2]})).status_code == 200
+    async with _loop_always_busy(registry_dir, monkeypatch) as (app, client):
         pool = app.state.pool
-        while pool.scheduling != "batch":
-            await asyncio.sleep(0.01)
         worker = pool.procs.workers[0]
         worker.scheduling = "normal"
         old = worker.proc.pid
