@@ -133,7 +133,7 @@ class InferencePool:
 
     def sharing(self) -> int:
         """Over how many workers the queued texts are shared out (:meth:`Batcher._target`): all of
-        them, except while the workers gather on the first free one (``adaptive``, the loop busy)."""
+        them, except while the workers gather on the first with room (``adaptive``, the loop busy)."""
         return 1 if self.procs is not None and self.procs.gather else self.workers
 
     def _name_thread(self) -> None:
