@@ -319,6 +319,28 @@ async def test_request_ids_and_one_json_log_line_per_request(
     assert all("\n" not in JsonFormatter().format(r) for r in records)
 
 
+def test_log_timestamps_equal_what_datetime_writes() -> None:
+    # Reference: the standard library's datetime.fromtimestamp(t, UTC).isoformat(timespec=
+    # "milliseconds"), which the log lines used to call. Random times, and times just below and
+    # above whole seconds and milliseconds, where its microsecond rounding (half to even) and
+    # millisecond truncation decide the digits; also before 1970 and lines of one second in turn.
+    import random
+
+    from textsieve.service.logs import timestamp
+
+    rng = random.Random(20261203)
+    times = [rng.uniform(0, 4e9) for _ in range(20_000)]
+    times += [
+        s + f
+        for s in (0, 1_764_777_384, 4_102_444_799)
+        for f in (0.0, 0.0005, 0.0009995, 0.9994999, 0.9995, 0.9999994, 0.9999995, 0.9999996)
+    ]
+    times += [1_764_777_384 + k / 1e6 for k in range(-1500, 1500)]
+    times += [-1.5, -0.0000004, -86_400.9999996]
+    for t in times:
+        assert timestamp(t) == dt.datetime.fromtimestamp(t, dt.UTC).isoformat(timespec="milliseconds"), t
+
+
 async def test_access_lines_handed_to_the_line_writer_equal_what_logging_writes(
     shared_registry: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
