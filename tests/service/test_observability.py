@@ -27,7 +27,7 @@ from prometheus_client.parser import text_string_to_metric_families
 from tests.helpers.service import MODEL, serving, settings_for
 from textsieve.registry import open_registry
 from textsieve.service.logs import JsonFormatter
-from textsieve.service.telemetry import CountedHistogram, ServiceMetrics
+from textsieve.service.telemetry import CountedHistogram, PlainCounter, ServiceMetrics
 
 # Every series name the service exposes besides the library's process_* ones: the contract
 # dashboards are built on (README "Metrics"). A rename here is a breaking change.
@@ -213,6 +213,29 @@ def test_counted_histogram_equals_the_library_histogram_observed_one_by_one() ->
     assert all(ours[k] == pytest.approx(theirs[k]) for k in ours)
     with pytest.raises(ValueError):
         counted.labels("a").observe(0.1, -1)
+
+
+def test_plain_counter_equals_the_library_counter() -> None:
+    # prometheus_client's own Counter is the reference: the same increments must be written as the
+    # same series (its _created series aside, which the service never exposed).
+    ours = PlainCounter("z_total", "c", ("what", "code"))
+    reference = CollectorRegistry()
+    theirs = Counter("z_total", "c", ("what", "code"), registry=reference)
+    for what, code, amount in (("a", "200", 1), ("b", "503", 2.5), ("a", "200", 3), ("c", "200", 0)):
+        ours.labels(what, code).inc(amount)
+        theirs.labels(what, code).inc(amount)
+    registry = CollectorRegistry()
+    registry.register(ours)
+    written = generate_latest(registry).decode()
+    expected = "".join(
+        line + "\n" for line in generate_latest(reference).decode().splitlines() if "_created" not in line
+    )
+    assert written == expected
+    assert outside(written)[("z_total", (("code", "200"), ("what", "a")))] == 4
+    with pytest.raises(ValueError):
+        ours.labels("a", "200").inc(-1)
+    with pytest.raises(ValueError):
+        PlainCounter("z", "c", ())
 
 
 def _vmrss_bytes(pid: int) -> float:
