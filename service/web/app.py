@@ -57,6 +57,9 @@ def create_app(settings: Settings | None = None, *, fast_lane: bool = True) -> L
         models = ModelSet(settings, store, pool, metrics)
         app.state.store, app.state.pool, app.state.models = store, pool, models
         metrics.live_loop.models = models
+        lane = getattr(app, "lane", None)
+        if lane is not None:
+            lane.models = models
         starting = asyncio.get_running_loop().create_task(models.start(), name="load served models")
         try:
             yield
@@ -68,6 +71,8 @@ def create_app(settings: Settings | None = None, *, fast_lane: bool = True) -> L
             await asyncio.to_thread(pool.shutdown)
             metrics.watch_workers(None)
             metrics.live_loop.models = None
+            if lane is not None:
+                lane.models = None
 
     app = LanedFastAPI(
         title="textsieve",
@@ -94,7 +99,7 @@ def create_app(settings: Settings | None = None, *, fast_lane: bool = True) -> L
     app.add_middleware(AccessMiddleware, access=access)
     app.add_middleware(HeadWithBodyMiddleware)  # outermost of ours in the stack: see service/web/onewrite.py
     if fast_lane:  # in front of the whole stack: see service/web/lane.py
-        app.lane = PredictLane(app.full, app.state, settings, metrics, access, budget)
+        app.lane = PredictLane(app.full, settings, metrics, access, budget)
     return app
 
 

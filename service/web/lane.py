@@ -30,7 +30,6 @@ from __future__ import annotations
 import time
 
 from fastapi import FastAPI
-from starlette.datastructures import State
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from textsieve.errors import TextsieveError
@@ -64,14 +63,16 @@ class PredictLane:
     def __init__(
         self,
         full: ASGIApp,
-        state: State,
         settings: Settings,
         metrics: ServiceMetrics,
         access: Access,
         budget: BodyBudget | None,
     ) -> None:
         self.full = full
-        self.state = state  # the app's: its models appear there once the lifespan has started
+        # The app's models, handed over by its lifespan once started (None before and after it).
+        # Read from here, not from ``state``: a starlette State looks an attribute up in its own
+        # dict only after the plain lookup has failed and made an AttributeError, every request.
+        self.models: ModelSet | None = None
         self.settings = settings
         self.metrics = metrics
         self.access = access
@@ -81,7 +82,7 @@ class PredictLane:
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         plain = _plain_headers(scope)
-        models = getattr(self.state, "models", None)
+        models = self.models
         budget = self.budget
         if (
             plain is None
