@@ -10,6 +10,7 @@ of the reply.
 
 from __future__ import annotations
 
+import functools
 from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
@@ -23,13 +24,19 @@ from textsieve.registry.names import MAX_VERSION, MODEL_NAME, MODEL_NAME_RULE
 MAX_SPANS_FIELD = 2**31 - 1
 
 
+@functools.cache
+def _field_names(model: type[BaseModel]) -> frozenset[str]:
+    """A request model's field names, looked up once (every predict request checks its keys)."""
+    return frozenset(model.model_fields)
+
+
 class _Request(BaseModel):
     model_config = ConfigDict(extra="forbid", strict=True)
 
     @model_validator(mode="before")
     @classmethod
     def _known_fields(cls, data: Any) -> Any:
-        if isinstance(data, dict):
+        if isinstance(data, dict) and not data.keys() <= _field_names(cls):
             unknown = sorted(str(k) for k in data if k not in cls.model_fields)
             if unknown:
                 raise PydanticCustomError(
