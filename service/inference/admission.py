@@ -38,6 +38,7 @@ class Admission:
         self.deadline_passed = 0
         self._texts = 0.0  # decayed sums of texts and thread-seconds measured
         self._seconds = 0.0
+        self._limit = self._limit_now()
 
     @property
     def rate(self) -> float:
@@ -48,12 +49,16 @@ class Admission:
 
     @property
     def limit(self) -> int:
-        """Most texts admitted at once: what the measured rate finishes within ``max_wait``."""
+        """Most texts admitted at once: what the measured rate finishes within ``max_wait``
+        (kept from the last measurement: every request reads it, a batch changes it)."""
+        return self._limit
+
+    def _limit_now(self) -> int:
         return max(1, int(self.rate * self.max_wait))
 
     def admit(self, texts: int) -> None:
         """Count ``texts`` as admitted, or raise OverloadedError (the caller answers 503 at once)."""
-        if self.queued > 0 and self.queued + texts > self.limit:
+        if self.queued > 0 and self.queued + texts > self._limit:
             self.refused += 1
             wait = self.queued / self.rate
             raise OverloadedError(
@@ -75,6 +80,7 @@ class Admission:
         keep = math.exp(-texts / DECAY_TEXTS)
         self._texts = self._texts * keep + texts
         self._seconds = self._seconds * keep + seconds
+        self._limit = self._limit_now()
 
     def check_deadline(self, deadline: float | None, now: float | None = None) -> None:
         """Raise DeadlinePassedError when the caller's deadline (a perf_counter time) has passed."""
