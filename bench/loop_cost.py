@@ -1,0 +1,228 @@
+"""What the service's app costs the event loop per request, in-process, with no HTTP and no model.
+
+    .venv/bin/python bench/loop_cost.py [--requests 20000] [--texts 1] [--floor]
+    .venv/bin/python bench/loop_cost.py --instructions [--requests 2000]   # needs valgrind
+
+The app (``create_app``, the predict lane, the batcher, the access log and metrics, as
+``textsieve serve`` configures them) is called as an ASGI callable by 32 in-process clients, each
+sending its next request when the last is answered; the worker processes are loaded as in the
+server, but once one real reply has been read, each batch is answered at once with copies of it,
+so what is counted is the app's own Python: validation, the lane, the batcher's queue and
+dispatch, routing the replies, the access log, the metrics. ``--floor`` calls the HTTP floor's app
+(bench/http_floor.py: the same body parsed and validated, a fixed reply) the same way.
+
+By default it prints CPU µs per request (process CPU time over the window). Machine speed moves
+that by ±20 % between runs here, so ``--instructions`` runs the same under valgrind's callgrind
+with instrumentation switched on for the measured window only and prints instructions per
+request, which repeat within ~1 % from run to run: the figure to compare two versions of the
+loop's code by (bench/README.md, "The loop's own work"). It takes about a minute.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import gc
+import logging
+import os
+import re
+import shutil
+import subprocess
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE))
+
+import demo_model  # noqa: E402
+from run import SPANS, bodies  # noqa: E402
+from texts import bench_texts  # noqa: E402
+
+CLIENTS = 32
+
+
+async def one_request(app: Any, body: bytes, client: int) -> int:
+    """One ``POST /v1/predict`` through ``app``; its status."""
+    scope = {
+        "type": "http",
+        "asgi": {"version": "3.0"},
+        "http_version": "1.1",
+        "method": "POST",
+        "scheme": "http",
+        "path": "/v1/predict",
+        "raw_path": b"/v1/predict",
+        "query_string": b"",
+        "root_path": "",
+        "headers": [
+            (b"host", b"bench"),
+            (b"content-type", b"application/json"),
+            (b"content-length", str(len(body)).encode()),
+        ],
+        "client": ("127.0.0.1", 1000 + client),
+        "server": ("127.0.0.1", 8000),
+        "state": {},
+    }
+    messages = [{"type": "http.request", "body": body, "more_body": False}]
+    status: list[int] = []
+
+    async def receive() -> dict[str, Any]:
+        if messages:
+            return messages.pop()
+        await asyncio.sleep(3600)  # the client never goes away
+        raise AssertionError("unreachable")
+
+    async def send(message: dict[str, Any]) -> None:
+        if message["type"] == "http.response.start":
+            status.append(message["status"])
+
+    await app(scope, receive, send)
+    return status[0] if status else 0
+
+
+async def drive(app: Any, body_list: list[bytes], total: int) -> None:
+    """``total`` requests through ``app`` from CLIENTS closed-loop clients."""
+    done = 0
+
+    async def client(i: int) -> None:
+        nonlocal done
+        k = i
+        while done < total:
+            status = await one_request(app, body_list[k % len(body_list)], i)
+            if status != 200:
+                raise RuntimeError(f"request answered {status}; raise TEXTSIEVE_QUEUE_WAIT_MS if it was 503")
+            k += CLIENTS
+            done += 1
+
+    await asyncio.gather(*(client(i) for i in range(CLIENTS)))
+
+
+def _callgrind(on: bool) -> None:
+    if os.environ.get("LOOP_COST_CALLGRIND"):
+        subprocess.run(["callgrind_control", "-i", "on" if on else "off", str(os.getpid())], capture_output=True)
+
+
+async def measure(app: Any, body_list: list[bytes], requests: int) -> float:
+    """CPU seconds of this process per request over ``requests`` requests (after a warm-up)."""
+    await drive(app, body_list, 2000)
+    gc.freeze()  # as the server does once started (service/cli.py)
+    _callgrind(True)
+    started = time.process_time()
+    await drive(app, body_list, requests)
+    spent = time.process_time() - started
+    _callgrind(False)
+    return spent / requests
+
+
+async def service(body_list: list[bytes], requests: int) -> float:
+    import numpy as np
+
+    from textsieve.service import logs
+    from textsieve.service.settings import load_settings
+    from textsieve.service.web.app import create_app
+
+    model = demo_model.ensure_model()
+    folder = demo_model.CACHE / "work" / f"registry-loop-cost-{os.getpid()}"  # runs side by side apart
+    registry = demo_model.live_registry(model, folder)
+    logs.configure()  # as `textsieve serve` does: the access log's lines are made, then dropped here
+    sink = open(os.devnull, "w")  # noqa: SIM115 - lives as long as the process
+    for handler in logging.getLogger("textsieve").handlers:
+        if isinstance(handler, logs.BatchedLineHandler):
+            handler.stream = sink
+    app = create_app(load_settings(host="127.0.0.1", port=1, registry=str(registry)))
+    async with app.router.lifespan_context(app):
+        while not app.state.models.readiness()[0]:
+            await asyncio.sleep(0.1)
+        procs = app.state.pool.procs
+        if procs is None:
+            raise SystemExit("needs TEXTSIEVE_INFERENCE=processes (the default)")
+        real = procs.run_async
+        canned: dict[Any, Any] = {}
+
+        def answer(key: Any, texts: list[str], ks: list[int], review: Any, *, drift: bool, executor: Any) -> Any:
+            if key not in canned:  # the first batch of a version goes to a worker; its reply is kept
+                fut = real(key, texts, ks, review, drift=drift, executor=executor)
+                fut.add_done_callback(lambda f: canned.setdefault(key, f.result()))
+                return fut
+            results, tokens, unknown, truncated, best, top, counts = canned[key]
+            n = len(texts)
+            fut = asyncio.get_running_loop().create_future()
+            fut.set_result(
+                (
+                    [results[0]] * n,
+                    tokens * n,
+                    unknown * n,
+                    truncated * n,
+                    np.repeat(best[:1], n),
+                    np.repeat(top[:1], n),
+                    counts,
+                )
+            )
+            return fut
+
+        procs.run_async = answer
+        try:
+            return await measure(app, body_list, requests)
+        finally:
+            shutil.rmtree(folder, ignore_errors=True)
+
+
+async def floor(body_list: list[bytes], requests: int) -> float:
+    from http_floor import fixed_reply, make_app
+
+    from textsieve.service.settings import load_settings
+
+    return await measure(make_app(fixed_reply(600), load_settings(host="127.0.0.1", port=1)), body_list, requests)
+
+
+def under_callgrind(argv: list[str], requests: int) -> int:
+    """This script again under callgrind, instrumented only while measuring: instructions a request."""
+    if shutil.which("valgrind") is None or shutil.which("callgrind_control") is None:
+        print("--instructions needs valgrind (apt-get install valgrind)", file=sys.stderr)
+        return 2
+    out = demo_model.CACHE / "work" / "loop-cost.callgrind"
+    out.parent.mkdir(parents=True, exist_ok=True)
+    env = os.environ | {
+        "LOOP_COST_CALLGRIND": "1",
+        "PYTHONMALLOC": "malloc",  # valgrind sees every allocation
+        # Under valgrind time runs ~30x slower: no batch wait, no scheduling switches, no overload
+        # refusals, so that the same requests take the same path in every run.
+        "TEXTSIEVE_BATCH_WAIT_MS": "0",
+        "TEXTSIEVE_WORKER_SCHEDULING": "normal",
+        "TEXTSIEVE_QUEUE_WAIT_MS": "60000",
+    }
+    args = [a for a in argv if a != "--instructions"]
+    cmd = ["valgrind", "--tool=callgrind", "--instr-atstart=no", f"--callgrind-out-file={out}"]
+    run = subprocess.run([*cmd, sys.executable, __file__, *args], env=env, capture_output=True, text=True)
+    found = re.search(r"Collected : (\d+)", run.stderr)
+    if run.returncode != 0 or found is None:
+        print(run.stdout + run.stderr[-3000:], file=sys.stderr)
+        return 1
+    print(f"{int(found.group(1)) / requests:,.0f} instructions a request (callgrind, {requests} requests)")
+    return 0
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument(
+        "--requests", type=int, default=None, help="measured requests (20000; 2000 with --instructions)"
+    )
+    parser.add_argument("--texts", type=int, default=1, help="texts per request")
+    parser.add_argument("--floor", action="store_true", help="the HTTP floor's app instead of the service's")
+    parser.add_argument("--instructions", action="store_true", help="count instructions under callgrind")
+    args = parser.parse_args(argv)
+    requests = args.requests or (2000 if args.instructions else 20000)
+    if args.instructions:
+        return under_callgrind([*(sys.argv[1:] if argv is None else argv), "--requests", str(requests)], requests)
+    body_list = bodies(bench_texts(4096), args.texts, SPANS)
+    run = floor if args.floor else service
+    per_request = asyncio.run(run(body_list, requests))
+    if not os.environ.get("LOOP_COST_CALLGRIND"):
+        what = "HTTP floor's app" if args.floor else "service's app (workers answered from a copy)"
+        print(f"{what}: {per_request * 1e6:.1f} CPU-µs a request over {requests} requests of {args.texts} text(s)")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
