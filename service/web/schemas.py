@@ -76,8 +76,10 @@ class PredictRequest(_Request):
                 raise ValueError(f"texts[{i}] contains a NUL character (U+0000) at character {nul}; remove it")
             try:
                 # JSON may carry lone surrogates ("\ud800"); they are not text, cannot be encoded
-                # in the reply, and would otherwise surface as a server error.
-                t.encode("utf-8")
+                # in the reply, and would otherwise surface as a server error. An ASCII string
+                # (a flag CPython keeps on it) has none, and is not encoded for nothing.
+                if not t.isascii():
+                    t.encode("utf-8")
             except UnicodeEncodeError as exc:
                 raise ValueError(
                     f"texts[{i}] contains a lone surrogate (U+{ord(t[exc.start]):04X}) at "
