@@ -34,7 +34,7 @@ def timestamp(created: float) -> str:
     datetime object and its UTC offset's formatting cost ~3 µs of interpreter time a line (the
     writer holds the GIL meanwhile), this ~0.6. Microseconds are rounded half to even, as
     ``datetime.fromtimestamp`` rounds them, and milliseconds truncated, as ``isoformat`` does;
-    tests/service/test_logs.py compares the two on random and boundary times."""
+    tests/service/test_observability.py compares the two on random and boundary times."""
     global _second
     frac, whole = math.modf(created)
     micros = round(frac * 1e6)
