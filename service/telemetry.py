@@ -32,7 +32,7 @@ import os
 import threading
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Generic, TypeVar
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Info, ProcessCollector, generate_latest
 from prometheus_client.metrics_core import CounterMetricFamily, GaugeMetricFamily, HistogramMetricFamily, Metric
@@ -50,6 +50,9 @@ WorkerPids = Callable[[], Iterable[tuple[int, int]]]  # (worker index, pid) of e
 def _le(bound: float) -> str:
     """A bucket bound as prometheus_client's own histograms write it ("1.0", "0.0005", "+Inf")."""
     return "+Inf" if math.isinf(bound) else repr(float(bound))
+
+
+Child = TypeVar("Child")
 
 
 class _CounterChild:
@@ -70,7 +73,33 @@ class _CounterChild:
             return self._value
 
 
-class PlainCounter(Collector):
+class _Family(Collector, Generic[Child]):
+    """A labelled metric family of our own: its children, made on first use of their labels."""
+
+    def __init__(self, name: str, documentation: str, labelnames: Sequence[str]) -> None:
+        self.name, self.documentation, self.labelnames = name, documentation, tuple(labelnames)
+        self._children: dict[tuple[str, ...], Child] = {}
+        self._lock = threading.Lock()
+
+    def _new_child(self) -> Child:
+        raise NotImplementedError
+
+    def labels(self, *values: str) -> Child:
+        if len(values) != len(self.labelnames):
+            raise ValueError(f"{self.name} takes labels {self.labelnames}, got {values}")
+        with self._lock:
+            child = self._children.get(values)
+            if child is None:
+                child = self._children[values] = self._new_child()
+            return child
+
+    def _children_now(self) -> list[tuple[tuple[str, ...], Child]]:
+        """(label values, child) of every child, in the order they were made."""
+        with self._lock:
+            return list(self._children.items())
+
+
+class PlainCounter(_Family[_CounterChild]):
     """A labelled counter family whose children cost a lock and an addition per ``inc``.
 
     The library's ``Counter.inc`` checks the metric's state and goes through a value object and
@@ -81,21 +110,14 @@ class PlainCounter(Collector):
     def __init__(self, name: str, documentation: str, labelnames: Sequence[str]) -> None:
         if not name.endswith("_total"):
             raise ValueError(f"counter {name!r}: the name must end in _total")
-        self.name, self.documentation, self.labelnames = name, documentation, tuple(labelnames)
-        self._children: dict[tuple[str, ...], _CounterChild] = {}
-        self._lock = threading.Lock()
+        super().__init__(name, documentation, labelnames)
 
-    def labels(self, *values: str) -> _CounterChild:
-        if len(values) != len(self.labelnames):
-            raise ValueError(f"{self.name} takes labels {self.labelnames}, got {values}")
-        with self._lock:
-            return self._children.setdefault(tuple(values), _CounterChild())
+    def _new_child(self) -> _CounterChild:
+        return _CounterChild()
 
     def collect(self) -> Iterator[Metric]:
         family = CounterMetricFamily(self.name, self.documentation, labels=self.labelnames)
-        with self._lock:
-            children = list(self._children.items())
-        for values, child in children:
+        for values, child in self._children_now():
             family.add_metric(list(values), child.get())
         yield family
 
@@ -127,27 +149,21 @@ class _CountedChild:
         return cumulative, total
 
 
-class CountedHistogram(Collector):
+class CountedHistogram(_Family[_CountedChild]):
     """A labelled histogram family whose observations carry a count."""
 
     def __init__(self, name: str, documentation: str, labelnames: Sequence[str], buckets: Sequence[float]) -> None:
         if not buckets or list(buckets) != sorted(set(buckets)):
             raise ValueError("histogram buckets must be increasing and unique")
-        self.name, self.documentation, self.labelnames = name, documentation, tuple(labelnames)
+        super().__init__(name, documentation, labelnames)
         self._bounds = tuple(float(b) for b in buckets)
-        self._children: dict[tuple[str, ...], _CountedChild] = {}
-        self._lock = threading.Lock()
 
-    def labels(self, *values: str) -> _CountedChild:
-        if len(values) != len(self.labelnames):
-            raise ValueError(f"{self.name} takes labels {self.labelnames}, got {values}")
-        with self._lock:
-            return self._children.setdefault(tuple(values), _CountedChild(self._bounds))
+    def _new_child(self) -> _CountedChild:
+        return _CountedChild(self._bounds)
 
     def collect(self) -> Iterator[Metric]:
         family = HistogramMetricFamily(self.name, self.documentation, labels=self.labelnames)
-        with self._lock:
-            children = sorted(self._children.items())
+        children = sorted(self._children_now())
         for values, child in children:
             buckets, total = child.buckets()
             family.add_metric(list(values), buckets, total)
