@@ -28,7 +28,7 @@ import tempfile
 import threading
 import time
 import uuid
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
@@ -124,17 +124,23 @@ def _predictor(payload: Payload) -> Predictor:
     return found
 
 
-def _is_local(fs: Any) -> bool:
-    """Whether ``fs`` is fsspec's local file system: Arrow then opens the path itself.
+@contextlib.contextmanager
+def _parquet_source(fs: Any, path: str) -> Iterator[Any]:
+    """What to hand ``pyarrow.parquet.ParquetFile`` for ``path`` on fsspec file system ``fs``.
 
-    Given a Python file object instead, Arrow's column readers hold buffers that only the GIL may
-    release, and a reader's last reference can be dropped by an Arrow pool thread after the
-    interpreter began to exit, which aborts the process ("terminate called without an active
-    exception", seen in CI: `score --cluster` refusing a missing column exited -6 once; under CPU
-    contention here 5 runs in 120). Remote files still go through fsspec's file objects."""
+    A local file goes as its path, and Arrow opens it itself. Given a Python file object instead,
+    Arrow's column readers hold buffers that only the GIL may release, and a reader's last
+    reference can be dropped by an Arrow pool thread after the interpreter began to exit, which
+    aborts the process ("terminate called without an active exception", seen in CI: `score
+    --cluster` refusing a missing column exited -6 once; under CPU contention here 5 runs in
+    120). Remote files still go through fsspec's file objects, closed on leaving."""
     from fsspec.implementations.local import LocalFileSystem
 
-    return isinstance(fs, LocalFileSystem)
+    if isinstance(fs, LocalFileSystem):
+        yield path
+    else:
+        with fs.open(path, "rb") as f:
+            yield f
 
 
 def read_partition(part: Partition) -> list[Any]:
@@ -144,12 +150,8 @@ def read_partition(part: Partition) -> list[Any]:
     if part.fmt == "parquet":
         import pyarrow.parquet as pq
 
-        fs, path = fsspec.core.url_to_fs(part.url)
-        if _is_local(fs):
-            table = pq.ParquetFile(path).read_row_groups(list(part.row_groups))
-        else:
-            with fs.open(path, "rb") as f:
-                table = pq.ParquetFile(f).read_row_groups(list(part.row_groups))
+        with _parquet_source(*fsspec.core.url_to_fs(part.url)) as source:
+            table = pq.ParquetFile(source).read_row_groups(list(part.row_groups))
         rows: list[Any] = table.to_pylist()
         return rows
     rows = []
@@ -196,8 +198,7 @@ def partitions(url: str, fmt: str, partition_bytes: int) -> tuple[list[Partition
     if fmt == "parquet":
         import pyarrow.parquet as pq
 
-        with contextlib.ExitStack() as stack:
-            source = path if _is_local(fs) else stack.enter_context(fs.open(path, "rb"))
+        with _parquet_source(fs, path) as source:
             try:
                 pf = pq.ParquetFile(source)
             except Exception as exc:  # pyarrow raises several kinds for a file that is not Parquet
