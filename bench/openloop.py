@@ -20,6 +20,7 @@ uvloop when installed: the client shares the cores with the server it measures a
 from __future__ import annotations
 
 import asyncio
+import gc
 import json
 import sys
 import time
@@ -133,20 +134,40 @@ async def run(url: str, bodies: list[bytes], rate: float, seconds: float, connec
             return
         latencies.append(time.perf_counter() - due)
 
+    # Only the requests in flight are held (a set the done ones leave), and the end is one future:
+    # holding every task of the run made each of the client's own cyclic-GC passes walk tens of
+    # thousands of them (pauses of 50-150 ms, counted as the server's latency), and waiting for
+    # them all with asyncio.wait stalled the client for ~80 ms at the end (bench/README.md).
+    pending: set[asyncio.Future[None]] = set()
+    all_done = asyncio.get_running_loop().create_future()
+    sending = True
+
+    def finished(task: asyncio.Future[None]) -> None:
+        pending.discard(task)
+        if not pending and not sending and not all_done.done():
+            all_done.set_result(None)
+
     total = int(rate * seconds)
+    gc.collect()
+    gc.freeze()  # what was built before the window is never walked again by the collector
     start = time.perf_counter() + 0.05
-    tasks = []
     for i in range(total):
         due = start + i / rate
         delay = due - time.perf_counter()
         if delay > 0:
             await asyncio.sleep(delay)
-        tasks.append(asyncio.ensure_future(one(i, due)))
+        task = asyncio.ensure_future(one(i, due))
+        pending.add(task)
+        task.add_done_callback(finished)
     sent_by = time.perf_counter()
-    _done, pending = await asyncio.wait(tasks, timeout=30.0) if tasks else (set(), set())
-    for task in pending:
-        task.cancel()
-        errors["timeout"] += 1
+    sending = False
+    if pending:
+        try:
+            await asyncio.wait_for(asyncio.shield(all_done), timeout=30.0)
+        except TimeoutError:
+            for late in list(pending):
+                late.cancel()
+                errors["timeout"] += 1
     duration = time.perf_counter() - start
     ms = sorted(x * 1000 for x in latencies)
     lag_ms = sorted(x * 1000 for x in lags)
