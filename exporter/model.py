@@ -65,6 +65,17 @@ class SentenceCNN(nn.Module):
         w.mul_(limit / norms)
 
 
+def contributions(pooled: Tensor, weight: Tensor) -> Tensor:
+    """``contribution[b, f, c] = pooled[b, f] * W[c, f]``, so that logits = Σ_f contribution + bias.
+
+    Computed as [batch, classes, filters] and transposed: onnxruntime's Mul broadcasting a
+    [batch, filters, 1] by a [1, filters, classes] runs a loop per few elements (~230 µs for 128
+    texts, 300 filters, 4 classes, 13 % of the whole graph), the transposed layout one long
+    vectorised loop per class (~37 µs with the Transpose). The products are the same floats.
+    """
+    return (pooled.unsqueeze(1) * weight.unsqueeze(0)).transpose(1, 2)
+
+
 class ExportGraph(nn.Module):
     """The graph written to ONNX: logits plus what span finding needs."""
 
@@ -75,9 +86,7 @@ class ExportGraph(nn.Module):
     def forward(self, token_ids: Tensor, lengths: Tensor) -> tuple[Tensor, Tensor, Tensor, Tensor]:
         pooled, positions = self.model.features(token_ids, lengths)
         logits = self.model.output(pooled)
-        # contribution[b, f, c] = pooled[b, f] * W[c, f]: logits = Σ_f contribution + bias.
-        contributions = pooled.unsqueeze(2) * self.model.output.weight.t().unsqueeze(0)
-        return logits, pooled, positions, contributions
+        return logits, pooled, positions, contributions(pooled, self.model.output.weight)
 
 
 class TapTableGraph(nn.Module):
@@ -146,8 +155,7 @@ class TapTableGraph(nn.Module):
             positions.append(where)
         pooled_all = torch.cat(pooled, dim=1)
         logits = self.model.output(pooled_all)
-        contributions = pooled_all.unsqueeze(2) * self.model.output.weight.t().unsqueeze(0)
-        return logits, pooled_all, torch.cat(positions, dim=1), contributions
+        return logits, pooled_all, torch.cat(positions, dim=1), contributions(pooled_all, self.model.output.weight)
 
 
 def tap_table_bytes(model: SentenceCNN) -> int:

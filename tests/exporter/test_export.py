@@ -139,6 +139,25 @@ def test_both_layouts_match_pytorch_and_the_manifest_says_which(
     assert export_module.choose_layout(model, "tap-tables") == "tap-tables"
 
 
+def test_contributions_are_each_filters_share_of_each_logit(
+    tiny_bundles: dict[str, Path], tiny_runs: dict[str, Path], tiny_data: Path
+) -> None:
+    # The graph's contributions output, held to its definition with NumPy: for a linear output
+    # layer logits = W·pooled + b, contribution[b, f, c] = pooled[b, f] * W[c, f] and
+    # Σ_f contribution + b = logits (Kim, 2014, eq. 1-4: the softmax layer on the pooled
+    # features; the decomposition is common practice for linear attribution). The weights come
+    # from the PyTorch run, not from the graph.
+    model, _, _ = load_run(tiny_runs["a"])
+    weight = model.output.weight.detach().numpy()
+    bias = model.output.bias.detach().numpy()
+    rows = [json.loads(x) for x in (tiny_data / "test.jsonl").read_text(encoding="utf-8").splitlines()]
+    p = Predictor.from_bundle(tiny_bundles["a"])
+    out = p.run([p.encode(r["text"]) for r in rows[:50]])
+    assert out.contributions.shape == (50, weight.shape[1], weight.shape[0])
+    assert np.array_equal(out.contributions, out.pooled[:, :, None] * weight.T[None, :, :])  # the same float32 products
+    np.testing.assert_allclose(out.contributions.sum(axis=1) + bias, out.logits, rtol=0, atol=1e-4)
+
+
 def test_export_bad_run_folder_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["export", str(tmp_path / "nope"), "--out", str(tmp_path / "b")]) == 2
     err = capsys.readouterr().err.strip().splitlines()
