@@ -91,10 +91,11 @@ class Settings(BaseSettings):
         description="most texts a worker takes at once (sorted by length and cut into onnxruntime calls by padding)",
     )
     # Under load the wait for a free worker is what fills batches; this wait only matters while a
-    # worker is free (bench/README.md, "The batch wait": 32 single-text callers 1.12x the requests/s
-    # of 1 ms with 0, 0.98x of 0 with 0.3; near the open-loop maximum 0 gave the worst tails).
+    # worker is free (bench/README.md, "The batch wait": on 2026-12-04's code and machine, 32
+    # single-text callers 1.22x the requests/s of 0.3 ms with 0.1, at the same CPU a request and
+    # the same tails at half load; 0 gave a little worse tails than 0.1 at half load).
     batch_wait_ms: float = Field(
-        0.3, ge=0, le=1000, description="longest a text waits for others to fill its batch once a worker is free"
+        0.1, ge=0, le=1000, description="longest a text waits for others to fill its batch once a worker is free"
     )
 
     max_texts: int = Field(256, ge=1, description="most texts in one request")

@@ -18,7 +18,7 @@ the batch leaves at once from that request's own task. Otherwise each served ver
 task on the event loop waits for a free slot, then for the queue to reach the target, or
 ``batch_wait_ms`` after the oldest text arrived, whichever comes first, and takes queued texts
 in arrival order, up to ``batch_max_texts``. Under load the wait for a free slot is what fills
-batches; the explicit wait only matters when workers are idle, so it is short (0.3 ms unless
+batches; the explicit wait only matters when workers are idle, so it is short (0.1 ms unless
 set; bench/README.md, "The batch wait"). The worker encodes the batch,
 sorts it by length and runs it as sub-batches each padded only to its own longest text
 (:mod:`textsieve.service.inference.packing`), and builds the reply dicts, so the event loop only
