@@ -142,11 +142,11 @@ def test_both_layouts_match_pytorch_and_the_manifest_says_which(
 def test_contributions_are_each_filters_share_of_each_logit(
     tiny_bundles: dict[str, Path], tiny_runs: dict[str, Path], tiny_data: Path
 ) -> None:
-    # The graph's contributions output, held to its definition with NumPy: for a linear output
-    # layer logits = W·pooled + b, contribution[b, f, c] = pooled[b, f] * W[c, f] and
-    # Σ_f contribution + b = logits (Kim, 2014, eq. 1-4: the softmax layer on the pooled
-    # features; the decomposition is common practice for linear attribution). The weights come
-    # from the PyTorch run, not from the graph.
+    # The graph's contributions output, held to its definition with NumPy: the pooled features z
+    # feed a fully connected softmax layer, y = W·z + b (Kim, 2014, section 2, the output layer
+    # at test time; equation numbering from memory), so contribution[b, f, c] = z[b, f] * W[c, f]
+    # and Σ_f contribution + b = logits (splitting a linear layer into per-feature terms is
+    # common practice). The weights come from the PyTorch run, not from the graph.
     model, _, _ = load_run(tiny_runs["a"])
     weight = model.output.weight.detach().numpy()
     bias = model.output.bias.detach().numpy()
