@@ -163,7 +163,7 @@ async def run(url: str, bodies: list[bytes], rate: float, seconds: float, connec
     sending = False
     if pending:
         try:
-            await asyncio.wait_for(asyncio.shield(all_done), timeout=30.0)
+            await asyncio.wait_for(all_done, timeout=30.0)
         except TimeoutError:
             for late in list(pending):
                 late.cancel()
