@@ -23,6 +23,7 @@ from textsieve.service.web import admin, drift, health, openapi, page, predict, 
 from textsieve.service.web.access import Access, AccessMiddleware
 from textsieve.service.web.bodylimit import BodyBudget, BodyLimitMiddleware
 from textsieve.service.web.lane import LanedFastAPI, PredictLane
+from textsieve.service.web.methods import HeadAsGetMiddleware
 from textsieve.service.web.onewrite import HeadWithBodyMiddleware
 from textsieve.service.web.transport import ConnectionGuard
 
@@ -94,6 +95,7 @@ def create_app(settings: Settings | None = None, *, fast_lane: bool = True) -> L
     for module in (predict, views, reports, drift, admin, reviews, health, page):
         app.include_router(module.router)
     openapi.install(app)
+    app.add_middleware(HeadAsGetMiddleware)  # innermost of ours: the router sees GET, the layers above HEAD
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes, budget=budget)
     app.state.access = access = Access(metrics, enabled=settings.access_log, guard=app.state.guard)
     app.add_middleware(AccessMiddleware, access=access)

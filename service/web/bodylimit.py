@@ -23,7 +23,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from textsieve.errors import LimitError, OverloadedError
 from textsieve.service.inference.memory import release_freed_memory
-from textsieve.service.web.problems import render
+from textsieve.service.web.problems import ContentEncodingError, render
 from textsieve.service.web.transport import WITH_BODY
 
 TRIM_AFTER_BYTES = 8 * 1024 * 1024  # hand memory back once at least this much passed through
@@ -99,7 +99,17 @@ class BodyLimitMiddleware:
         if scope["type"] != "http" or scope["method"] not in WITH_BODY:
             await self.app(scope, receive, send)
             return
-        declared = Headers(scope=scope).get("content-length")
+        headers = Headers(scope=scope)
+        coding = headers.get("content-encoding", "").strip()
+        if coding and coding.lower() != "identity":
+            # A compressed body would be read, counted and parsed as if it were JSON; say so at once
+            # (RFC 9110 §15.5.16, with Accept-Encoding naming what is accepted: RFC 7694).
+            response = render(ContentEncodingError(coding), scope)
+            response.headers["Accept-Encoding"] = "identity"
+            response.headers["Connection"] = "close"  # its body is never read
+            await response(scope, receive, send)
+            return
+        declared = headers.get("content-length")
         expected = int(declared) if declared is not None and declared.isdigit() else None
         if expected is not None and expected > self.max_bytes:
             await self._refuse(_too_large(self.max_bytes, expected), scope, receive, send)

@@ -188,7 +188,7 @@ def _plain_headers(scope: Scope) -> tuple[int, str, str | None] | None:
             if content_type is not None:
                 return None
             content_type = value
-        elif name == b"transfer-encoding":
+        elif name in (b"transfer-encoding", b"content-encoding"):
             return None
         elif name == b"x-request-id":
             if not seen_id:  # the first one counts, as starlette's Headers.get has it

@@ -5,8 +5,9 @@ its own 422 body (``HTTPValidationError``) to every route with parameters, while
 answers all of them with ``application/problem+json`` (RFC 9457 §3) built in
 :mod:`textsieve.service.web.problems`. The generated document is rewritten once, here, so that
 clients and schema-driven tests (tests/reliability/test_fuzz.py) see what is actually sent: the Problem
-schema under problem+json for every error, 413 wherever a body is accepted (the body-size limit
-answers before any route), and the admin and reviewer bearer tokens as security schemes.
+schema under problem+json for every error, 413 and 415 wherever a body is accepted (the body-size
+limit and the refusal of compressed bodies answer before any route), and the admin and reviewer
+bearer tokens as security schemes.
 
 Generated clients name their methods after operation ids and group them by tag, so every route
 states a short ``operation_id`` (FastAPI's default, ``predict_v1_predict_post``, changes with the
@@ -97,8 +98,9 @@ def rewrite(document: dict[str, Any]) -> dict[str, Any]:
             for code, response in responses.items():
                 if code[:1] in "45" and _is_problem(response):
                     responses[code] = _problem_response(response.get("description", "problem details"))
-            if "requestBody" in op and "413" not in responses:
-                responses["413"] = _problem_response("a request limit was exceeded")
+            if "requestBody" in op:
+                responses.setdefault("413", _problem_response("a request limit was exceeded"))
+                responses.setdefault("415", _problem_response("the body was sent compressed (Content-Encoding)"))
             secured |= {scheme for req in op.get("security", []) for scheme in req}
     components = document.setdefault("components", {})
     schemas = components.get("schemas", {})

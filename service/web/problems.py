@@ -34,6 +34,7 @@ from textsieve.errors import (
     TextsieveError,
     UnavailableError,
 )
+from textsieve.service.web.methods import allowed
 
 MEDIA_TYPE = "application/problem+json"
 RETRY_AFTER_SECONDS = 2
@@ -66,6 +67,16 @@ class ReviewDisabledError(ReviewerAuthError):
         )
 
 
+class ContentEncodingError(InputError):
+    """A request body sent compressed (Content-Encoding other than identity): HTTP 415."""
+
+    def __init__(self, coding: str) -> None:
+        super().__init__(
+            f"the request body has Content-Encoding {coding!r}; this service reads request bodies "
+            "uncompressed only: send the JSON without Content-Encoding"
+        )
+
+
 @dataclass(frozen=True, slots=True)
 class Kind:
     status: int
@@ -82,6 +93,13 @@ KINDS: dict[type[BaseException], Kind] = {
         "A request limit was exceeded",
         "The request is larger than a configured limit; the body names the limit, its "
         "value and the setting that controls it. Split the request or ask the operator.",
+    ),
+    ContentEncodingError: Kind(
+        415,
+        "unsupported-content-encoding",
+        "The body's content coding is not accepted",
+        "Request bodies are read as sent, uncompressed; the response's Accept-Encoding header "
+        "names what is accepted (identity). Send the body without Content-Encoding.",
     ),
     InputError: Kind(
         422,
@@ -328,12 +346,15 @@ async def _on_http(request: Request, exc: Exception) -> Response:
     kind = _HTTP_KINDS.get(exc.status_code) or Kind(
         exc.status_code, f"http-{exc.status_code}", str(exc.detail), str(exc.detail)
     )
-    detail = (
-        f"no such path: {request.method} {request.url.path}; see GET /v1/models or the page at /"
-        if exc.status_code == 404
-        else str(exc.detail)
-    )
-    return problem(kind, detail, request.scope, headers=dict(exc.headers or {}))
+    headers = dict(exc.headers or {})
+    if exc.status_code == 404:
+        detail = f"no such path: {request.method} {request.url.path}; see GET /v1/models or the page at /"
+    elif exc.status_code == 405 and "Allow" in headers:
+        headers["Allow"] = allowed(headers["Allow"])
+        detail = f"{request.url.path} answers {headers['Allow']} only (see the Allow header)"
+    else:
+        detail = str(exc.detail)
+    return problem(kind, detail, request.scope, headers=headers)
 
 
 def _unreadable(cause: BaseException) -> str:
@@ -368,6 +389,7 @@ def install(app: FastAPI) -> None:
 
 __all__ = [
     "AdminDisabledError",
+    "ContentEncodingError",
     "KINDS",
     "ReviewDisabledError",
     "ReviewerAuthError",

@@ -241,7 +241,9 @@ class ConnectionGuard:
                 before = self.cycle
                 super().on_headers_complete()
                 cycle = self.cycle
-                if cycle is not None and cycle is not before:  # made just now, for this request
+                # Made just now, for this request. A reply to HEAD is a head alone: uvicorn writes
+                # no body after it, so there is nothing to hold it for.
+                if cycle is not None and cycle is not before and cycle.scope["method"] != "HEAD":
                     cycle.transport = _HeadWithBody(self.transport)
 
             def on_body(self, body: bytes) -> None:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import gzip
 import json
 from collections.abc import AsyncIterator
 from pathlib import Path
@@ -172,7 +173,12 @@ async def test_malformed_requests_are_422_with_field_errors(
             id="unknown version",
         ),
         pytest.param("GET", "/v2/predict", None, 404, "not-found", [], id="unknown path"),
-        pytest.param("GET", "/v1/predict", None, 405, "method-not-allowed", [], id="GET on predict"),
+        pytest.param(
+            "GET", "/v1/predict", None, 405, "method-not-allowed", ["/v1/predict answers POST"], id="GET on predict"
+        ),
+        pytest.param(
+            "DELETE", "/healthz", None, 405, "method-not-allowed", ["/healthz answers GET, HEAD"], id="DELETE healthz"
+        ),
         pytest.param("GET", "/v1/models/nosuch", None, 404, "not-found", [], id="view of an unknown model"),
         pytest.param(
             "GET", f"/v1/models/{MODEL}/versions/99", None, 404, "not-found", [], id="view of an unknown version"
@@ -195,6 +201,40 @@ async def test_unknown_model_version_and_path(
     problem = assert_problem(r, status, slug)
     for word in words:
         assert word in problem["detail"], (word, problem["detail"])
+
+
+@pytest.mark.parametrize(
+    ("path", "allow"), [("/v1/predict", "POST"), ("/healthz", "GET, HEAD"), ("/metrics", "GET, HEAD")]
+)
+async def test_a_405_lists_every_allowed_method_head_beside_get(
+    shared_client: httpx.AsyncClient, path: str, allow: str
+) -> None:
+    # RFC 9110 §15.5.6: a 405 carries Allow with the target's methods; §9.1: a server that
+    # answers GET answers HEAD too, so Allow names both.
+    r = await shared_client.request("PUT", path)
+    assert_problem(r, 405, "method-not-allowed")
+    assert r.headers["allow"] == allow
+
+
+@pytest.mark.parametrize("coding", ["gzip", "deflate", "br", "GZIP"])
+@pytest.mark.parametrize("path", ["/v1/predict", "/v1/verdicts"])
+async def test_a_compressed_request_body_is_refused_with_415_naming_what_is_accepted(
+    shared_client: httpx.AsyncClient, coding: str, path: str
+) -> None:
+    # RFC 9110 §15.5.16: 415 for a content coding the server does not accept, with Accept-Encoding
+    # naming what it does (RFC 7694 §3). Before, a gzip body read as "not UTF-8" (422).
+    body = gzip.compress(json.dumps({"texts": ["my card was charged twice"]}).encode())
+    r = await shared_client.post(path, content=body, headers={**JSON, "content-encoding": coding})
+    problem = assert_problem(r, 415, "unsupported-content-encoding")
+    assert repr(coding) in problem["detail"] and "without Content-Encoding" in problem["detail"]
+    assert r.headers["accept-encoding"] == "identity"
+
+
+async def test_identity_and_an_empty_content_encoding_are_read_as_they_are(shared_client: httpx.AsyncClient) -> None:
+    body = json.dumps({"texts": ["my card was charged twice"]}).encode()
+    for coding in ("identity", "Identity", ""):
+        r = await shared_client.post("/v1/predict", content=body, headers={**JSON, "content-encoding": coding})
+        assert r.status_code == 200, (coding, r.text)
 
 
 async def test_problem_types_resolve_to_explanations(shared_client: httpx.AsyncClient) -> None:

@@ -91,3 +91,56 @@ def test_the_real_server_answers_whole_replies_to_kept_alive_and_pipelined_reque
         replies = _replies(server.port, _post(short) + _post(longer) + _post(short), 3)
         assert [h.split(b"\r\n")[0] for h, _ in replies] == [b"HTTP/1.1 200 OK"] * 3
         assert [r["results"][0]["tokens"] for _, r in replies] == [5, 8, 5]
+
+
+def _heads_and_bodies(port: int, requests: bytes, head_only: list[bool]) -> list[tuple[bytes, bytes]]:
+    """Send ``requests`` on one connection and read one reply per entry of ``head_only``: its head,
+    and its Content-Length of body bytes, or none for a reply to HEAD (whatever its Content-Length)."""
+    out: list[tuple[bytes, bytes]] = []
+    got = b""
+    with socket.create_connection(("127.0.0.1", port), timeout=5) as s:
+        s.sendall(requests)
+        for bare in head_only:
+            while b"\r\n\r\n" not in got or (
+                not bare and len(got.partition(b"\r\n\r\n")[2]) < _content_length(got.partition(b"\r\n\r\n")[0])
+            ):
+                chunk = s.recv(65536)  # a reply held back times out here (TimeoutError)
+                assert chunk, "the server closed the connection"
+                got += chunk
+            head, _, rest = got.partition(b"\r\n\r\n")
+            length = 0 if bare else _content_length(head)
+            out.append((head, rest[:length]))
+            got = rest[length:]
+        s.settimeout(0.3)
+        try:
+            extra = s.recv(65536)
+        except TimeoutError:
+            extra = b""
+        assert got + extra == b""  # no body after a reply to HEAD
+    return out
+
+
+def _content_length(head: bytes) -> int:
+    return int(head.lower().split(b"content-length: ")[1].split(b"\r\n")[0])
+
+
+def test_head_is_answered_at_once_as_get_without_its_body_on_a_kept_alive_connection(
+    registry_dir: Path, tmp_path: Path
+) -> None:
+    # RFC 9110 §9.3.2: HEAD is GET without the content, with the headers GET would send (its
+    # Content-Length included). The guarded protocol held every head until a body came, and uvicorn
+    # writes none after HEAD: `curl -I /healthz` waited for ever (found 2026-12-04).
+    def request(method: str, path: str) -> bytes:
+        return f"{method} {path} HTTP/1.1\r\nhost: x\r\n\r\n".encode()
+
+    with running_server(str(registry_dir), tmp_path / "server.log", workers=1) as server:
+        for path in ("/healthz", "/readyz", "/v1/models"):
+            ((get_head, get_body),) = _heads_and_bodies(server.port, request("GET", path), [False])
+            replies = _heads_and_bodies(
+                server.port, request("HEAD", path) + request("GET", path) + request("HEAD", path), [True, False, True]
+            )
+            assert [h.split(b"\r\n")[0] for h, _ in replies] == [b"HTTP/1.1 200 OK"] * 3
+            assert [_content_length(h) for h, _ in replies] == [len(get_body)] * 3
+            assert json.loads(replies[1][1]) == json.loads(get_body) or path == "/readyz"
+        ((head, _),) = _heads_and_bodies(server.port, request("HEAD", "/v1/predict"), [True])
+        assert head.startswith(b"HTTP/1.1 405 ") and b"\r\nallow: POST" in head

@@ -115,3 +115,13 @@ def test_the_check_script_finds_nothing_wrong_and_catches_a_default_id(document:
         "GET /healthz: tags ['health', 'admin'] are not exactly one of "
         "['admin', 'health', 'predictions', 'registry', 'reviews']",
     ]
+
+
+def test_every_operation_with_a_body_states_the_refusals_made_before_any_route(document: dict[str, Any]) -> None:
+    # BodyLimitMiddleware answers these for every route that takes a body: 413 over the size limit,
+    # 415 for a compressed body (service/web/bodylimit.py).
+    with_body = [op for ops in document["paths"].values() for op in ops.values() if "requestBody" in op]
+    assert with_body
+    for op in with_body:
+        for code in ("413", "415"):
+            assert "application/problem+json" in op["responses"][code]["content"], (op["operationId"], code)
