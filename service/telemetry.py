@@ -293,6 +293,11 @@ class OverloadCollector(Collector):
                 "Connections closed because a request's headers and body did not arrive in time.",
                 value=guard.timed_out,
             )
+            yield CounterMetricFamily(
+                "textsieve_connections_malformed",
+                "Connections closed because a request could not be parsed as HTTP/1.1 (answered 400).",
+                value=guard.malformed_requests,
+            )
         if budget is not None:
             refused.add_metric(["body_budget"], budget.refused)
             yield GaugeMetricFamily(

@@ -212,8 +212,25 @@ _HTTP_KINDS = {
     404: KINDS[NotFoundError],
     405: Kind(405, "method-not-allowed", "Method not allowed", "The path exists but not for this HTTP method."),
 }
+# Answered by the connection layer (service/web/transport.py) before any application code runs.
+REQUEST_TIMEOUT = Kind(
+    408,
+    "request-timeout",
+    "The request arrived too slowly",
+    "A request's headers and whole body must arrive within TEXTSIEVE_READ_TIMEOUT_SECONDS of the "
+    "connection opening (or of the previous reply on a kept-alive connection); the connection was "
+    "closed. Send each request whole, without pauses.",
+)
+MALFORMED = Kind(
+    400,
+    "malformed-request",
+    "The request is not valid HTTP",
+    "The request line, a header, the Content-Length or the chunked framing could not be parsed as "
+    "HTTP/1.1 (RFC 9112); the connection was closed. Nothing was computed.",
+)
 SLUGS: dict[str, Kind] = {
-    k.slug: k for k in [*KINDS.values(), MISSING_TOKEN, MISSING_REVIEW_TOKEN, *_HTTP_KINDS.values()]
+    k.slug: k
+    for k in [*KINDS.values(), MISSING_TOKEN, MISSING_REVIEW_TOKEN, *_HTTP_KINDS.values(), REQUEST_TIMEOUT, MALFORMED]
 }
 
 

@@ -35,7 +35,7 @@ from typing import Any
 import orjson
 from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
 
-from textsieve.service.web.problems import MEDIA_TYPE
+from textsieve.service.web.problems import MALFORMED, MEDIA_TYPE, REQUEST_TIMEOUT
 
 # Liveness, readiness and metrics: cheap, bodiless, and what an orchestrator restarts or drains a
 # replica by, so they are never refused by the request limit (a busy replica is alive).
@@ -152,14 +152,25 @@ class ConnectionGuard:
         # client that retries at once pay (and make the server pay) a new connection each time.
         self.busy_keep_alive = _raw_response(*busy, close=False)
         self.too_slow = _raw_response(
-            408,
+            REQUEST_TIMEOUT.status,
             "Request Timeout",
-            "request-timeout",
-            "The request arrived too slowly",
+            REQUEST_TIMEOUT.slug,
+            REQUEST_TIMEOUT.title,
             f"the request's headers and body did not arrive within {read_timeout:g} s "
             "(TEXTSIEVE_READ_TIMEOUT_SECONDS); the connection is closed",
             None,
         )
+        # uvicorn's own answer to bytes its parser refuses is plain text; every error here is problem+json.
+        self.malformed = _raw_response(
+            MALFORMED.status,
+            "Bad Request",
+            MALFORMED.slug,
+            MALFORMED.title,
+            "the request could not be parsed as HTTP/1.1: check its request line, headers, Content-Length "
+            "(one, a whole number) and chunked framing; the connection is closed",
+            None,
+        )
+        self.malformed_requests = 0
 
     def request_may_start(self) -> bool:
         if self.inflight >= int(self.limit):
@@ -213,6 +224,13 @@ class ConnectionGuard:
                 if self._over_cap or self._refused:
                     return
                 super().data_received(data)
+
+            def send_400_response(self, msg: str) -> None:  # uvicorn calls it when the parser refuses
+                guard.malformed_requests += 1
+                self._refused = True  # whatever else arrives on this connection is not read
+                self._disarm()
+                self.transport.write(guard.malformed)
+                self.transport.close()
 
             def on_message_begin(self) -> None:
                 super().on_message_begin()

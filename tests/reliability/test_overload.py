@@ -182,6 +182,42 @@ def test_slow_and_silent_clients_are_closed_at_the_read_deadline(
         assert scraped(server.url)[("textsieve_connections_timed_out_total", ())] == 2
 
 
+_BODY = b'{"texts":["a"]}'
+MALFORMED = {
+    # RFC 9112 §6.3: a negative or repeated, differing Content-Length, and Content-Length beside
+    # Transfer-Encoding, are framing errors a server must not guess at (request smuggling).
+    "negative length": b"POST /v1/predict HTTP/1.1\r\nHost: t\r\nContent-Length: -5\r\n\r\n" + _BODY,
+    "two lengths": b"POST /v1/predict HTTP/1.1\r\nHost: t\r\nContent-Length: 15\r\nContent-Length: 16\r\n\r\n" + _BODY,
+    "length and chunked": b"POST /v1/predict HTTP/1.1\r\nHost: t\r\nContent-Length: 15\r\n"
+    b"Transfer-Encoding: chunked\r\n\r\nf\r\n" + _BODY + b"\r\n0\r\n\r\n",
+    "bad chunk size": b"POST /v1/predict HTTP/1.1\r\nHost: t\r\nTransfer-Encoding: chunked\r\n\r\nzz\r\n" + _BODY,
+    "not HTTP": b"HELLO\r\n\r\n",
+    "NUL in a header": b"GET /healthz HTTP/1.1\r\nHost: t\r\nX-A: a\x00b\r\n\r\n",
+}
+
+
+def test_requests_that_are_not_valid_http_are_answered_400_problem_json_and_closed(
+    registry_path: Path, tmp_path: Path
+) -> None:
+    with running_server(str(registry_path), tmp_path / "server.log", workers=1, inference="threads") as server:
+        for name, raw in MALFORMED.items():
+            with _connect(server.port) as s:
+                # A valid request pipelined after the bad one must not be answered: nothing after a
+                # framing error can be trusted to start where the client meant.
+                s.sendall(raw + b"GET /healthz HTTP/1.1\r\nHost: t\r\n\r\n")
+                answer = _response(s, 5)
+            assert _status(answer) == 400, (name, answer[:200])
+            assert b"content-type: application/problem+json" in answer.lower() and b"connection: close" in answer
+            problem = _problem(answer)
+            assert problem["type"] == "/problems/malformed-request" and "HTTP/1.1" in problem["detail"], name
+            assert answer.count(b"HTTP/1.1 ") == 1, name
+        explained = httpx.get(f"{server.url}/problems/malformed-request", timeout=10)
+        assert explained.status_code == 200 and "HTTP 400" in explained.text
+        assert scraped(server.url)[("textsieve_connections_malformed_total", ())] == len(MALFORMED)
+        r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["a refund please"]}, timeout=10)
+        assert r.status_code == 200
+
+
 def test_connections_beyond_the_cap_are_refused_at_once(
     registry_path: Path, tmp_path: Path, sockets: list[socket.socket]
 ) -> None:

@@ -58,6 +58,7 @@ EXPOSED = {
     "textsieve_connections_open",
     "textsieve_requests_limit",
     "textsieve_connections_timed_out_total",
+    "textsieve_connections_malformed_total",
     "textsieve_body_bytes_in_flight",
     "textsieve_queue_texts",
     "textsieve_queue_limit_texts",
