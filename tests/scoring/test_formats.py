@@ -1,13 +1,18 @@
 """Reading and writing JSONL lines: the fast parser and writer (orjson, when installed) must mean
 exactly what Python's own json module means by every line, including the values orjson refuses or
-would write another way; the reference is the standard library's ``json.loads`` and ``json.dumps``."""
+would write another way; the reference is the standard library's ``json.loads`` and ``json.dumps``.
+Reading CSV: well-formed files as the standard library's ``csv.DictReader`` reads them, and the
+ways a file breaks RFC 4180 (§2: fields with commas, quotes or line breaks are quoted) said, not
+guessed at."""
 
 from __future__ import annotations
 
+import csv
 import datetime as dt
 import decimal
 import json
 import math
+from pathlib import Path
 
 import pytest
 from hypothesis import given, settings
@@ -118,3 +123,69 @@ def test_a_run_of_nineteen_digits_goes_to_the_standard_module(digits: int, monke
     monkeypatch.setattr(formats, "_orjson_loads", lambda b: seen.append(b) or json.loads(b))
     assert formats.json_loads(raw) == json.loads(raw)
     assert bool(seen) == (digits < 19)
+
+
+# -- CSV ------------------------------------------------------------------------------------------
+def _read_csv(path: Path, size: int = 3, skip: int = 0) -> list[object]:
+    reader = formats.open_reader(path, "csv")
+    try:
+        return [row for chunk in reader.chunks(size, skip=skip) for row in chunk]
+    finally:
+        reader.close()
+
+
+WELL_FORMED = (
+    "id,text,note\r\n"
+    '1,"a comma, inside",x\r\n'
+    '2,"a ""quoted"" word",\r\n'
+    '3,"two\r\nlines",y\r\n'
+    "\r\n"
+    "4,plain,z\r\n"
+    "5,caf\u00e9 \u2014 \u8c22\u8c22,\r\n"
+)
+
+
+@pytest.mark.parametrize("skip", [0, 2, 5])
+def test_a_well_formed_csv_reads_as_the_csv_modules_dict_reader_reads_it(tmp_path: Path, skip: int) -> None:
+    path = tmp_path / "in.csv"
+    path.write_bytes(b"\xef\xbb\xbf" + WELL_FORMED.encode("utf-8"))  # with a byte-order mark, as Excel writes
+    with open(path, newline="", encoding="utf-8-sig") as f:
+        reference = list(csv.DictReader(f))  # blank lines skipped, as DictReader does
+    assert len(reference) == 5
+    assert _read_csv(path, skip=skip) == reference[skip:]
+
+
+def test_a_row_whose_values_do_not_line_up_with_the_header_is_an_error_row_not_a_shifted_text(
+    tmp_path: Path,
+) -> None:
+    from textsieve.scoring.rows import Misshapen, split
+
+    path = tmp_path / "in.csv"
+    path.write_text('id,text\n1,hello, world\n2,fine\n3\n4,"ok, quoted"\n', encoding="utf-8")
+    rows = _read_csv(path)
+    assert [type(r) for r in rows] == [Misshapen, dict, Misshapen, dict]
+    assert rows[0] == {"id": "1", "text": "hello"} and rows[2] == {"id": "3"}  # the values kept for the output
+    part = split(rows, "text", strict=False, first_row=0)
+    assert part.texts == ["fine", "ok, quoted"]
+    assert part.problems == {
+        0: "line 2 has 3 values and the header 2 columns; quote a field that holds a comma",
+        2: "line 4 has 1 values and the header 2 columns; quote a field that holds a comma",
+    }
+    with pytest.raises(formats.InputError, match="row 1: line 2 has 3 values"):
+        split(rows, "text", strict=True, first_row=0)
+
+
+@pytest.mark.parametrize(
+    ("content", "words"),
+    [
+        ('text\nhi\n"opened and\nnever closed\nhello\n', "the row that starts on line 3 (a quote opened there is"),
+        ('text\n"closed" then more\nhello\n', "the row that starts on line 2 (',' expected after '\"')"),
+        ("text,id,text\na,1,b\n", "the column 'text' twice (columns 1 and 3)"),
+    ],
+)
+def test_a_csv_that_breaks_rfc_4180_stops_the_run_naming_the_line(tmp_path: Path, content: str, words: str) -> None:
+    path = tmp_path / "in.csv"
+    path.write_text(content, encoding="utf-8")
+    with pytest.raises(formats.InputError) as caught:
+        _read_csv(path)
+    assert words in str(caught.value)

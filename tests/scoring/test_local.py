@@ -194,6 +194,18 @@ BAD_INPUT = [
         id="unknown-keep",
     ),  # noqa: E501
     pytest.param(["in.jsonl", "--out", "o.jsonl", "tamper"], 1, "has been altered", id="tampered-blob"),
+    pytest.param(
+        ["open-quote.csv", "--out", "o.jsonl"],
+        2,
+        "open-quote.csv: not CSV in the row that starts on line 3 (a quote opened there is never closed)",
+        id="csv-quote-left-open",
+    ),
+    pytest.param(
+        ["two-texts.csv", "--out", "o.jsonl"],
+        2,
+        "the header names the column 'text' twice (columns 1 and 2)",
+        id="csv-column-named-twice",
+    ),
 ]
 
 
@@ -208,6 +220,9 @@ def test_bad_input_is_one_line_and_leaves_nothing(
     work.mkdir()
     write_jsonl(work / "in.jsonl", [{"text": "the chain is broken"}, {"text": "refund please"}])
     (work / "in.csv").write_text("text\nhello\n", encoding="utf-8")
+    # A quote opened and never closed would have read every later line into one text.
+    (work / "open-quote.csv").write_text('text\nhello\n"the chain\nrefund please\n', encoding="utf-8")
+    (work / "two-texts.csv").write_text("text,text\nhello,world\n", encoding="utf-8")
     (work / "outdir").mkdir()
     if "tamper" in argv:
         argv.remove("tamper")

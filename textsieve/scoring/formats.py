@@ -21,7 +21,7 @@ from typing import TYPE_CHECKING, Any
 from textsieve.errors import InputError
 from textsieve.files import FILE_MODE, fsync_dir
 from textsieve.scoring.columns import ERROR, LABEL, SPANS, Layout, probability_column
-from textsieve.scoring.rows import Row, Unreadable
+from textsieve.scoring.rows import Misshapen, Row, Unreadable
 
 _orjson_loads: Callable[[bytes], Any] | None
 _orjson_dumps: Callable[..., bytes] | None
@@ -139,18 +139,38 @@ class JsonlReader(_ByteCounted):
 
 
 class CsvReader(_ByteCounted):
-    """A header line, then rows; every value is a string, as the csv module reads them."""
+    """A header line, then rows; every value is a string, as the csv module reads them. Blank lines
+    are skipped; a row with more or fewer values than the header is an error row (see
+    :class:`Misshapen`); a quote out of place stops the run with the line it is on."""
 
     def __init__(self, path: Path) -> None:
         super().__init__(path)
+        try:
+            self._start()
+        except BaseException:
+            self.file.close()  # a refused file is not left open
+            raise
+
+    def _start(self) -> None:
+        path = self.path
         self._text = self._decoded()
-        self._reader = csv.reader(self._text)
+        # strict: a quote that does not close where RFC 4180 says it must is an error, not a field
+        # that silently runs on through the rows after it.
+        self._reader = csv.reader(self._text, strict=True)
         try:
             self.columns = next(self._reader)
         except StopIteration:
             raise InputError(f"{path}: empty; a CSV file starts with a header line") from None
         except csv.Error as exc:
             raise InputError(f"{path}: not CSV ({exc})") from exc
+        first: dict[str, int] = {}
+        for number, name in enumerate(self.columns, start=1):
+            if name in first:
+                raise InputError(
+                    f"{path}: the header names the column {name!r} twice (columns {first[name]} and {number}); "
+                    "give every column its own name"
+                )
+            first[name] = number
 
     def _decoded(self) -> Iterator[str]:
         for number, raw in enumerate(self._lines(), start=1):
@@ -162,17 +182,37 @@ class CsvReader(_ByteCounted):
 
     def chunks(self, size: int, skip: int = 0) -> Iterator[list[Any]]:
         names = self.columns or []
+        width = len(names)
         chunk: list[Any] = []
+        seen = 0
+        begun = self._reader.line_num + 1  # the line the next row starts on
         try:
-            for seen, values in enumerate(self._reader, start=1):
+            for values in self._reader:
+                row_line, begun = begun, self._reader.line_num + 1
+                if not values:  # a blank line (the csv module reads it as no values): skipped, as in JSONL
+                    continue
+                seen += 1
                 if seen <= skip:
                     continue
-                chunk.append(dict(zip(names, values, strict=False)))
+                row = dict(zip(names, values, strict=False))
+                if len(values) != width:
+                    # An unquoted comma inside a text shifts every value after it: scoring what lands
+                    # in the text column would score the wrong words.
+                    row = Misshapen(
+                        row,
+                        f"line {row_line} has {len(values)} values and the header {width} "
+                        "columns; quote a field that holds a comma",
+                    )
+                chunk.append(row)
                 if len(chunk) >= size:
                     yield chunk
                     chunk = []
         except csv.Error as exc:
-            raise InputError(f"{self.path}: not CSV near line {self._reader.line_num} ({exc})") from exc
+            why = "a quote opened there is never closed" if "end of data" in str(exc) else str(exc)
+            raise InputError(
+                f"{self.path}: not CSV in the row that starts on line {begun} ({why}); a field that holds a comma, "
+                "a quote or a line break is quoted whole, and a quote inside it doubled (RFC 4180)"
+            ) from exc
         if chunk:
             yield chunk
 

@@ -23,6 +23,18 @@ class Unreadable(str):
     """A line that holds no row at all (not JSON); its text says why. Stands in for the row."""
 
 
+class Misshapen(dict[str, Any]):
+    """A CSV row whose values do not line up with the header (more or fewer of them), so which
+    value is the text cannot be trusted: the values are kept for the output's columns, the row is
+    not scored, and ``problem`` says why."""
+
+    __slots__ = ("problem",)
+
+    def __init__(self, values: dict[str, Any], problem: str) -> None:
+        super().__init__(values)
+        self.problem = problem
+
+
 @dataclass(slots=True)
 class Scored:
     """Results for a list of texts, in their order: best class index, probabilities, spans."""
@@ -49,6 +61,8 @@ def text_problem(row: Any, field: str) -> str | None:
     """Why this row has no text to score, or None when it has one."""
     if isinstance(row, Unreadable):
         return str(row)
+    if isinstance(row, Misshapen):
+        return row.problem
     if not isinstance(row, dict):
         return "not a JSON object"
     if field not in row or row[field] is None:
@@ -117,4 +131,4 @@ def output_rows(rows: Sequence[Any], part: Split, results: Scored, layout: Layou
     return out
 
 
-__all__ = ["Row", "Unreadable", "Scored", "Split", "output_rows", "score_texts", "split", "text_problem"]
+__all__ = ["Misshapen", "Row", "Unreadable", "Scored", "Split", "output_rows", "score_texts", "split", "text_problem"]
