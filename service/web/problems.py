@@ -314,6 +314,21 @@ def _field(loc: tuple[Any, ...] | list[Any]) -> str:
     return ".".join(parts) or "body"
 
 
+def _body_shape(scope: Scope) -> str:
+    """What the matched route's body looks like, from its request model's required fields."""
+    field = getattr(scope.get("route"), "body_field", None)
+    model = getattr(getattr(field, "field_info", None), "annotation", None)
+    fields = getattr(model, "model_fields", None)
+    if not isinstance(fields, dict):
+        return "a JSON object"
+    required = [name for name, info in fields.items() if info.is_required()]
+    if required == ["texts"]:
+        return 'a JSON object such as {"texts": ["..."]}'
+    if not required:
+        return "a JSON object"
+    return "a JSON object with the field(s) " + ", ".join(f'"{name}"' for name in required)
+
+
 def _validation_problem(exc: RequestValidationError, scope: Scope) -> Response:
     errors: list[dict[str, Any]] = []
     for err in exc.errors():
@@ -327,11 +342,11 @@ def _validation_problem(exc: RequestValidationError, scope: Scope) -> Response:
             msg = f"the body is not valid JSON (at character {where}: {err.get('ctx', {}).get('error', 'parse error')})"
             field = "body"
         elif kind == "missing" and field == "body":
-            msg = 'the body is missing; send a JSON object such as {"texts": ["..."]}'
+            msg = f"the body is missing; send {_body_shape(scope)}"
         elif kind == "unknown_field":
             field = ", ".join(err.get("ctx", {}).get("fields", [])) or field
         elif kind == "model_attributes_type" or (kind == "dict_type" and field == "body"):
-            msg = 'the body must be a JSON object such as {"texts": ["..."]}, sent with Content-Type: application/json'
+            msg = f"the body must be {_body_shape(scope)}, sent with Content-Type: application/json"
         errors.append({"field": field, "message": msg, "type": kind})
     first = errors[0] if errors else {"field": "body", "message": "invalid"}
     more = f" (and {len(errors) - 1} more problem(s), see 'errors')" if len(errors) > 1 else ""
@@ -353,7 +368,7 @@ async def _on_http(request: Request, exc: Exception) -> Response:
     if exc.status_code == 400 and exc.__cause__ is not None:
         # FastAPI's own body parsing failed below JSON (e.g. bytes that are not UTF-8).
         why = _unreadable(exc.__cause__)
-        msg = f'the body could not be read as JSON ({why}); send UTF-8 JSON such as {{"texts": ["..."]}}'
+        msg = f"the body could not be read as JSON ({why}); send UTF-8 JSON: {_body_shape(request.scope)}"
         return problem(
             KINDS[InputError],
             f"body: {msg}",

@@ -90,3 +90,23 @@ async def test_promote_to_candidate_keeps_serving_live(registry_dir: Path) -> No
     assert_problem(bad, 422, "invalid-input")
     assert_problem(no_reason, 422, "invalid-input")
     assert_problem(unknown, 404, "not-found")
+
+
+@pytest.mark.parametrize(
+    ("path", "content", "words"),
+    [
+        (PROMOTE, None, 'the body is missing; send a JSON object with the field(s) "to", "reason"'),
+        (ROLLBACK, b"[1]", 'the body must be a JSON object with the field(s) "reason"'),
+        ("/v1/predict", None, 'the body is missing; send a JSON object such as {"texts": ["..."]}'),
+    ],
+)
+async def test_a_missing_or_non_object_body_is_told_what_this_route_takes(
+    registry_dir: Path, path: str, content: bytes | None, words: str
+) -> None:
+    # Before, every route's refusal showed the predict body as its example.
+    async with serving(settings_for(registry_dir, admin_token=ADMIN_TOKEN)) as (_, client):
+        r = await client.post(path, content=content, headers={**AUTH, "content-type": "application/json"})
+    body = assert_problem(r, 422, "invalid-input")
+    assert words in body["detail"], body["detail"]
+    with open_registry(registry_dir) as reg:
+        assert reg.live(MODEL).version == 1
