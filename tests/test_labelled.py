@@ -168,6 +168,24 @@ def _jsonl(*rows: object) -> str:
         ),
         pytest.param("d.jsonl", _jsonl({"text": "a", "label": "  "}), ["the 'label' field is empty"], id="label blank"),
         pytest.param(
+            "d.jsonl",
+            _jsonl({"text": "a", "label": "ok"}, {"text": "b", "label": "two\nlines"}),
+            ["line 2: the label 'two\\nlines' holds a control character (U+000A)"],
+            id="label with a line break",
+        ),
+        pytest.param(
+            "d.csv",
+            'text,label\na,"tab\there"\n',
+            ["line 2: the label 'tab\\there' holds a control character (U+0009)"],
+            id="label with a tab",
+        ),
+        pytest.param(
+            "d.jsonl",
+            _jsonl({"text": "a", "label": "billing "}),
+            ["line 1: the label 'billing ' begins or ends with spaces"],
+            id="label with a trailing space",
+        ),
+        pytest.param(
             "d.xlsx", "whatever", ["unsupported file type '.xlsx'", ".jsonl", ".csv"], id="unsupported extension"
         ),
         pytest.param(

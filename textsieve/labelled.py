@@ -9,6 +9,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+import unicodedata
 from collections import Counter
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
@@ -134,7 +135,22 @@ class _Fields:
             )
         if not label.strip():
             raise self._fail(where, f"the {self.label_field!r} field is empty; every row needs a label")
+        problem = _label_problem(label)
+        if problem:
+            raise self._fail(where, f"the label {label!r} {problem}")
         return Example(text, label)
+
+
+def _label_problem(label: str) -> str | None:
+    """Why a label cannot name a class, or None. A label becomes a JSON key, a CSV and Parquet column
+    name (``probability:LABEL``), a metric's label value and a line of the CLI's tables, and labels are
+    compared exactly, so it holds no control characters (line breaks, tabs) and no spaces at its ends."""
+    bad = next((c for c in label if unicodedata.category(c) == "Cc"), None)
+    if bad is not None:
+        return f"holds a control character (U+{ord(bad):04X}); labels are one line of printable text"
+    if label != label.strip():
+        return "begins or ends with spaces; write it without them (labels are compared exactly)"
+    return None
 
 
 def _kind(value: object) -> str:
