@@ -135,9 +135,9 @@ class _Fields:
             )
         if not label.strip():
             raise self._fail(where, f"the {self.label_field!r} field is empty; every row needs a label")
-        problem = _label_problem(label)
-        if problem:
-            raise self._fail(where, f"the label {label!r} {problem}")
+        why = _label_problem(label)
+        if why:
+            raise self._fail(where, f"the label {label!r} {why}")
         return Example(text, label)
 
 
