@@ -172,6 +172,7 @@ def bench_score(
 
     shutil.rmtree(work, ignore_errors=True)
     work.mkdir(parents=True)
+    demo_model.compile_bytecode()  # start-up as an installed package has it: score_vs_runtime counts it
     model = demo_model.ensure_model(say)
     bundle = bundle or model.bundle
     registry = demo_model.live_registry(demo_model.DemoModel(model.run, bundle, model.source), work / "registry")
