@@ -176,7 +176,8 @@ class SignalDrift:
     name: str
     psi: float | None
     js_distance: float | None
-    band: str | None
+    band: str | None  # None without a baseline, or while the window is under ``min_texts``
+    min_texts: int | None = None  # the window from which the band is more than noise (stats.psi_min_texts)
 
 
 @dataclass(frozen=True)
@@ -204,7 +205,11 @@ def compare(layout: Layout, base: DriftBaseline | None, counts: NDArray[np.int64
             continue
         psi = stats.population_stability_index(expected.counts, window)
         js = stats.jensen_shannon_distance(expected.counts, window)
-        signals.append(SignalDrift(name, psi, js, stats.psi_band(psi)))
+        # A band only once the window is large enough that the baseline's own texts, sampled as
+        # often, would read "stable" 95 times in 100; before that the figures are shown, not judged.
+        least = stats.psi_min_texts(len(window), int(sum(expected.counts)))
+        band = stats.psi_band(psi) if least is not None and texts >= least else None
+        signals.append(SignalDrift(name, psi, js, band, least))
     return DriftReport(
         texts=texts,
         unknown_rate=unknown / kept if kept else None,

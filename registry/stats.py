@@ -139,6 +139,35 @@ def psi_band(value: float) -> str:
     return "act"
 
 
+def chi2_quantile(q: float, dof: int) -> float:
+    """The ``q`` quantile of the chi-square distribution with ``dof`` degrees of freedom: exact for
+    1 and 2 (the square of a normal quantile; −2 ln(1 − q)), the Wilson–Hilferty cube-root normal
+    approximation above (Wilson & Hilferty, 1931), within 1 % of the exact value there for the
+    quantiles used here (tests compare it with scipy.stats.chi2.ppf)."""
+    if not 0.0 < q < 1.0 or dof < 1:
+        raise ValueError(f"need 0 < q < 1 and dof >= 1, got q={q}, dof={dof}")
+    if dof == 1:
+        return NormalDist().inv_cdf((1.0 + q) / 2.0) ** 2
+    if dof == 2:
+        return -2.0 * math.log1p(-q)
+    k = 2.0 / (9.0 * dof)
+    return float(dof * (1.0 - k + NormalDist().inv_cdf(q) * math.sqrt(k)) ** 3)
+
+
+def psi_min_texts(bins: int, baseline: int, threshold: float = 0.1, q: float = 0.95) -> int | None:
+    """The fewest live texts for which a window drawn from the baseline's own distribution stays
+    under ``threshold`` PSI with probability ``q``; None when no window size does (the baseline is
+    too small). With no drift, PSI is approximately (1/n + 1/N) · χ²(bins − 1) for a window of n
+    and a baseline of N texts (Yurdakul, 2018, §3): below this size a "watch" or "act" band is
+    mostly sampling noise."""
+    if bins < 2 or baseline < 1:
+        return None
+    room = threshold / chi2_quantile(q, bins - 1) - 1.0 / baseline
+    if room <= 0:
+        return None
+    return math.ceil(1.0 / room)
+
+
 def histogram(values: Sequence[float] | NDArray[np.floating], edges: Sequence[float]) -> list[int]:
     """Counts in the bins ``[edges[i], edges[i+1])``, the last bin closed; values outside the
     edges fall in the first or last bin (a drift histogram must count every text)."""
@@ -153,11 +182,13 @@ __all__ = [
     "Z95",
     "binomial_two_sided_p",
     "bootstrap_interval",
+    "chi2_quantile",
     "histogram",
     "jensen_shannon_distance",
     "mcnemar_exact_p",
     "minimum_detectable_difference",
     "population_stability_index",
     "psi_band",
+    "psi_min_texts",
     "wilson_interval",
 ]

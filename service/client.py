@@ -170,7 +170,11 @@ def render_drift(reply: dict[str, Any]) -> str:
         for s in v["signals"]:
             psi = "-" if s["psi"] is None else f"{s['psi']:.4f}"
             js = "-" if s["js_distance"] is None else f"{s['js_distance']:.4f}"
-            rows.append((s["name"], psi, js, s["band"] or "-"))
+            band = s["band"]
+            if band is None and s["psi"] is not None:
+                least = s.get("min_texts")
+                band = f"- (from {least:,} texts)" if least else "- (baseline too small)"
+            rows.append((s["name"], psi, js, band or "-"))
         widths = [max(len(r[c]) for r in rows) for c in range(4)]
         for r in rows:
             cells = [r[0].ljust(widths[0]), r[1].rjust(widths[1]), r[2].rjust(widths[2]), r[3]]
@@ -178,7 +182,8 @@ def render_drift(reply: dict[str, Any]) -> str:
         lines.append(f"  {v['detail']}")
         lines.append("")
     lines.append(
-        "Bands: PSI < 0.1 stable, 0.1-0.25 watch, > 0.25 act (common practice). Drift says the texts changed, "
+        "Bands: PSI < 0.1 stable, 0.1-0.25 watch, > 0.25 act (common practice), given once the window is large "
+        "enough that sampling noise alone would read stable (Yurdakul, 2018). Drift says the texts changed, "
         "not that the labels are wrong: have people review a sample before acting."
     )
     return "\n".join(lines)

@@ -27,7 +27,19 @@ def _detail(report: DriftReport) -> str:
     worst = max((s for s in report.signals if s.psi is not None), key=lambda s: s.psi or 0.0, default=None)
     if worst is None:
         return "nothing to compare"
-    return f"largest PSI: {worst.name} {worst.psi:.3f} ({worst.band}) over {report.texts} live texts"
+    band = f" ({worst.band})" if worst.band else ""
+    said = f"largest PSI: {worst.name} {worst.psi:.3f}{band} over {report.texts} live texts"
+    unjudged = [s for s in report.signals if s.psi is not None and s.band is None]
+    never = [s.name for s in unjudged if s.min_texts is None]
+    if never:
+        return (
+            f"{said}; the baseline's {report.baseline.texts:,} texts are too few to judge {', '.join(never)} at any "
+            "window size: export with a larger validation set"
+        )
+    if unjudged:
+        most = max(s.min_texts or 0 for s in unjudged)
+        return f"{said}; too few to tell drift from sampling noise: bands from {most:,} texts"
+    return said
 
 
 @router.get(
@@ -65,7 +77,13 @@ async def get_drift(name: str, store: RegistryDep, models: ModelsDep, settings: 
                 detail=_detail(report),
                 signals=[
                     SignalView.model_validate(
-                        {"name": s.name, "psi": s.psi, "js_distance": s.js_distance, "band": s.band}
+                        {
+                            "name": s.name,
+                            "psi": s.psi,
+                            "js_distance": s.js_distance,
+                            "band": s.band,
+                            "min_texts": s.min_texts,
+                        }
                     )
                     for s in report.signals
                 ],

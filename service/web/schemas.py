@@ -266,7 +266,13 @@ class SignalView(BaseModel):
     psi: float | None = Field(description="population stability index against the baseline; null without one")
     js_distance: float | None = Field(description="Jensen-Shannon distance (natural log), 0 to sqrt(ln 2)")
     band: Literal["stable", "watch", "act"] | None = Field(
-        description="PSI < 0.1 stable, 0.1-0.25 watch, > 0.25 act (common practice)"
+        description="PSI < 0.1 stable, 0.1-0.25 watch, > 0.25 act (common practice); null without a "
+        "baseline, or while the window holds fewer than min_texts texts"
+    )
+    min_texts: int | None = Field(
+        description="live texts from which the band is more than sampling noise: below it, texts drawn from "
+        "the baseline itself would read 'watch' or worse more than 5 times in 100 (Yurdakul, 2018); null when "
+        "the baseline is too small for any window"
     )
 
 

@@ -14,6 +14,7 @@ from scipy.spatial.distance import jensenshannon
 
 from tests.helpers.jsonl import read_jsonl
 from tests.helpers.registries import edit_manifest
+from textsieve.registry import stats
 from textsieve.registry.bundle import open_bundle
 from textsieve.registry.drift import SIGNALS, Layout, Window, compare, count, count_encoded
 from textsieve.registry.runtime import Predictor
@@ -74,9 +75,10 @@ def test_psi_of_a_hand_worked_label_mix() -> None:
     # Hand-worked: baseline label shares (.1, .2, .3, .4), live (.2, .2, .3, .3):
     # PSI = (.2-.1)·ln 2 + 0 + 0 + (.3-.4)·ln(.3/.4) = 0.0693147 + 0.0287682 = 0.0980829
     # (formula: Yurdakul, 2018, eq. 1) - just under the 0.1 "stable" bound (common practice).
+    # 1,000 texts a side: enough for a band (stats.psi_min_texts, tested in test_stats.py).
     layout = Layout.of(4)
-    base_best = np.repeat(np.arange(4), [10, 20, 30, 40])
-    live_best = np.repeat(np.arange(4), [20, 20, 30, 30])
+    base_best = np.repeat(np.arange(4), [100, 200, 300, 400])
+    live_best = np.repeat(np.arange(4), [200, 200, 300, 300])
 
     def vector(best: np.ndarray) -> np.ndarray:
         n = len(best)
@@ -92,6 +94,25 @@ def test_psi_of_a_hand_worked_label_mix() -> None:
     assert label.band == "stable"
     same = next(s for s in report.signals if s.name == "tokens")
     assert same.psi == pytest.approx(0.0) and same.js_distance == pytest.approx(0.0) and same.band == "stable"
+    assert label.min_texts is not None and label.min_texts <= 1000
+
+
+def test_a_window_too_small_to_tell_drift_from_noise_gets_figures_and_no_band() -> None:
+    from textsieve.registry.drift import baseline
+
+    layout = Layout.of(4)
+
+    def vector(best: np.ndarray) -> np.ndarray:
+        n = len(best)
+        return count(layout, np.full(n, 10), np.full(n, 10), np.zeros(n, np.int64), best, np.full(n, 0.9))
+
+    base = baseline(layout, vector(np.repeat(np.arange(4), [150, 150, 150, 150])))  # 600 texts
+    few = compare(layout, base, vector(np.array([0, 1, 2])))  # three live texts, one label never seen
+    label = next(s for s in few.signals if s.name == "label")
+    assert label.psi is not None and label.psi > 0.25  # it would read "act" ...
+    assert label.band is None and label.min_texts == stats.psi_min_texts(4, 600)  # ... but is not judged
+    enough = compare(layout, base, vector(np.arange(label.min_texts) % 4))
+    assert next(s for s in enough.signals if s.name == "label").band == "stable"
 
 
 @pytest.fixture(scope="module")

@@ -90,3 +90,39 @@ def test_histogram_counts_every_value() -> None:
     assert counts == [3, 1, 2]
     assert sum(counts) == 6
     assert counts == list(np.histogram(np.clip([-5, 0, 0.5, 1, 2, 99], 0, 3), [0, 1, 2, 3])[0])
+
+
+@pytest.mark.parametrize("q", [0.9, 0.95, 0.99])
+def test_chi2_quantile_is_within_1_percent_of_scipy(q: float) -> None:
+    from scipy.stats import chi2
+
+    for dof in range(1, 101):
+        assert stats.chi2_quantile(q, dof) == pytest.approx(chi2.ppf(q, dof), rel=0.01), dof
+    assert stats.chi2_quantile(0.95, 1) == pytest.approx(chi2.ppf(0.95, 1), rel=1e-12)  # exact for 1 and 2
+    assert stats.chi2_quantile(0.95, 2) == pytest.approx(chi2.ppf(0.95, 2), rel=1e-12)
+
+
+@pytest.mark.parametrize(("shares", "baseline"), [((0.1, 0.2, 0.3, 0.4), 600), ((0.5, 0.5), 300), ((0.1,) * 10, 2000)])
+def test_psi_min_texts_keeps_sampling_noise_stable_95_times_in_100(shares: tuple[float, ...], baseline: int) -> None:
+    # Monte Carlo against the published approximation (Yurdakul, 2018, §3: with no drift, PSI is
+    # about (1/n + 1/N)·χ²(B − 1)): a baseline and a window drawn from the same distribution, the
+    # window at psi_min_texts, read "watch" or worse (PSI ≥ 0.1) about 5 times in 100; a window a
+    # quarter that size, far more often.
+    rng = np.random.default_rng(2026)
+    n = stats.psi_min_texts(len(shares), baseline)
+    assert n is not None
+
+    def noisy(size: int) -> float:
+        trials = 2000
+        base = rng.multinomial(baseline, shares, size=trials)
+        window = rng.multinomial(size, shares, size=trials)
+        psi = [stats.population_stability_index(b, w) for b, w in zip(base, window, strict=True)]
+        return float(np.mean(np.asarray(psi) >= 0.1))
+
+    assert noisy(n) <= 0.08
+    assert noisy(max(n // 4, 1)) >= 0.2
+
+
+def test_psi_min_texts_is_none_when_the_baseline_alone_is_too_noisy() -> None:
+    assert stats.psi_min_texts(17, 100) is None  # 16 degrees of freedom: (1/100)·26.3 > 0.1 already
+    assert stats.psi_min_texts(1, 1000) is None and stats.psi_min_texts(4, 0) is None
