@@ -90,3 +90,17 @@ def test_importing_textsieve_loads_no_heavy_dependency() -> None:
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60, env=env)
     assert out.returncode == 0, out.stderr
     assert out.stdout.strip() == "[]"
+
+
+def test_predict_reads_a_generator_once_and_refuses_what_the_http_api_refuses(scoring_registry: Path) -> None:
+    import textsieve
+    from textsieve.errors import InputError
+
+    model = textsieve.load_model(scoring_registry, "support")
+    texts = ["the chain is broken", "refund please"]
+    # A generator was emptied by the type check and gave no predictions at all.
+    assert [p.label for p in model.predict(t for t in texts)] == [p.label for p in model.predict(texts)]
+    for bad, words in (([""], "texts[0] is empty"), (["ok", "  \n"], "texts[1] is empty"), (["ok", 3], "an int")):
+        with pytest.raises(InputError) as caught:
+            model.predict(bad)
+        assert words in str(caught.value)

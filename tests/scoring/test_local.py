@@ -122,7 +122,7 @@ BAD_ROWS = [
     ({"text": "   "}, "text field 'text' is empty"),
     ({"other": "x"}, "text field 'text' is missing"),
     ({"text": None}, "text field 'text' is missing"),
-    ({"text": 42}, "text field 'text' is a int, not a string"),
+    ({"text": 42}, "text field 'text' is an int, not a string"),
     ({"text": "refund please"}, None),
 ]
 

@@ -10,6 +10,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError, NotFoundError
+from textsieve.scoring.rows import article
 
 if TYPE_CHECKING:
     import pandas as pd
@@ -93,12 +94,16 @@ class Model:
         """Label, calibrated probabilities and up to ``spans`` n-gram spans for each text, in order."""
         if isinstance(texts, str):
             raise InputError("predict takes a list of texts, not one string: predict([text])")
-        bad = [i for i, t in enumerate(texts) if not isinstance(t, str)]
-        if bad:
-            raise InputError(f"texts must be strings; item {bad[0]} is a {type(texts[bad[0]]).__name__}")
+        items = list(texts)  # once: a generator is read here, not emptied by the checks below
+        for i, t in enumerate(items):
+            if not isinstance(t, str):
+                raise InputError(f"texts must be strings; item {i} is {article(type(t).__name__)}")
+            if not t.strip():
+                # As the HTTP API answers (422): a label for no words would be the model's prior.
+                raise InputError(f"texts[{i}] is empty; every text needs something to classify")
         if spans < 0:
             raise InputError(f"spans must be 0 or more, not {spans}")
-        return self._predictor.predict(list(texts), spans=spans)
+        return self._predictor.predict(items, spans=spans)
 
     def score_frame(self, frame: pd.DataFrame, column: str = "text", *, spans: int = 0) -> pd.DataFrame:
         """``frame`` with the result columns added (``label``, ``probability:LABEL`` each, ``spans`` when

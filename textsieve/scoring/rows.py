@@ -57,6 +57,11 @@ def score_texts(predictor: Predictor, texts: Sequence[str], spans: int) -> Score
     return Scored(best, probs, found)
 
 
+def article(noun: str) -> str:
+    """``noun`` with "a" or "an" before it, by its first letter: "an int", "a float"."""
+    return f"{'an' if noun[:1].lower() in 'aeiou' else 'a'} {noun}"
+
+
 def text_problem(row: Any, field: str) -> str | None:
     """Why this row has no text to score, or None when it has one."""
     if isinstance(row, Unreadable):
@@ -69,7 +74,7 @@ def text_problem(row: Any, field: str) -> str | None:
         return f"text field {field!r} is missing"
     value = row[field]
     if not isinstance(value, str):
-        return f"text field {field!r} is a {type(value).__name__}, not a string"
+        return f"text field {field!r} is {article(type(value).__name__)}, not a string"
     if not value.strip():
         return f"text field {field!r} is empty"
     return None
@@ -131,4 +136,15 @@ def output_rows(rows: Sequence[Any], part: Split, results: Scored, layout: Layou
     return out
 
 
-__all__ = ["Misshapen", "Row", "Unreadable", "Scored", "Split", "output_rows", "score_texts", "split", "text_problem"]
+__all__ = [
+    "Misshapen",
+    "article",
+    "Row",
+    "Unreadable",
+    "Scored",
+    "Split",
+    "output_rows",
+    "score_texts",
+    "split",
+    "text_problem",
+]
