@@ -101,7 +101,9 @@ class VerdictRequest(_Request):
         description="the text as it was classified; stored so the verdict can become training data",
     )
     predicted_label: str = Field(min_length=1, max_length=200, description="the label the version gave")
-    predicted_probability: float = Field(ge=0, le=1, description="the calibrated probability shown with it")
+    predicted_probability: float = Field(
+        ge=0, le=1, allow_inf_nan=False, description="the calibrated probability shown with it"
+    )
     verdict_label: str = Field(
         min_length=1,
         max_length=200,

@@ -3,6 +3,7 @@ changes what is served, and verdict bodies meet the same limits and problem+json
 
 from __future__ import annotations
 
+import json
 from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
@@ -151,6 +152,21 @@ async def test_bad_verdicts_get_the_same_problems_as_predictions(
     assert expected in body["detail"] or expected in str(body.get("errors")), body
     if status == 413:
         assert body["limit"]["setting"] == expected
+    assert _stored(review_registry) == before
+
+
+async def test_a_probability_that_is_not_a_number_is_named_so(
+    review_client: httpx.AsyncClient, review_registry: Path
+) -> None:
+    # NaN is not JSON (RFC 8259 §6) but Python's and pydantic's readers take it; it was refused as
+    # "less than or equal to 1", which it is not either.
+    before = _stored(review_registry)
+    body = json.dumps(VERDICT).replace('"predicted_probability": 0.91', '"predicted_probability": NaN')
+    assert "NaN" in body
+    r = await review_client.post(
+        "/v1/verdicts", content=body.encode(), headers={**REVIEW_AUTH, "Content-Type": "application/json"}
+    )
+    assert "predicted_probability: Input should be a finite number" in assert_problem(r, 422, "invalid-input")["detail"]
     assert _stored(review_registry) == before
 
 
