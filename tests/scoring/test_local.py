@@ -97,6 +97,29 @@ def test_parquet_read_by_pyarrow_and_csv_read_by_the_csv_module_match(
     assert [r["text"] for r in back] == [r["text"] for r in rows]  # quotes, commas and newlines survive
 
 
+def test_a_tsv_file_is_read_and_written_with_tabs_as_the_csv_module_does(
+    scoring_registry: Path, tmp_path: Path
+) -> None:
+    # As `textsieve train` reads .tsv (textsieve/labelled.py): CSV's quoting rules, a tab between fields.
+    from textsieve import load_model
+
+    texts = ["the chain is broken", 'a "quoted"\tword, and a comma', "two\nlines\twith a tab"]
+    src = tmp_path / "in.tsv"
+    with open(src, "w", newline="", encoding="utf-8") as f:
+        w = csv.writer(f, delimiter="\t")
+        w.writerow(["id", "text"])
+        w.writerows([i, t] for i, t in enumerate(texts))
+    assert "\t" in src.read_text(encoding="utf-8").splitlines()[0]
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 0]
+    assert score(src, "--out", tmp_path / "out.tsv", *common) == 0
+    with open(tmp_path / "out.tsv", newline="", encoding="utf-8") as f:
+        back = list(csv.DictReader(f, delimiter="\t"))
+    assert [r["text"] for r in back] == texts and [r["id"] for r in back] == ["0", "1", "2"]
+    model = load_model(scoring_registry, MODEL)
+    assert_same_results(back, [p.public() for p in model.predict(texts, spans=0)], model.labels)
+    assert json.loads((tmp_path / "out.tsv.meta.json").read_text())["rows"] == 3
+
+
 def test_a_csv_input_keeps_only_the_asked_columns_and_renames_clashing_ones(
     scoring_registry: Path, tmp_path: Path
 ) -> None:

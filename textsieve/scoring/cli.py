@@ -9,7 +9,7 @@ from pathlib import Path
 from textsieve.errors import InputError
 from textsieve.registry.cli import add_location_args
 
-FORMAT_CHOICES = ("jsonl", "csv", "parquet")
+FORMAT_CHOICES = ("jsonl", "csv", "tsv", "parquet")
 
 
 def _positive(text: str) -> int:
@@ -36,15 +36,18 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     """Add ``score`` to the ``textsieve`` command."""
     p = sub.add_parser(
         "score",
-        help="label every row of a JSONL, CSV or Parquet file with a registered model, on every core or a Dask cluster",
+        help="label every row of a JSONL, CSV, TSV or Parquet file with a registered model, on every core or a "
+        "Dask cluster",
     )
-    p.add_argument("input", help="file to score (.jsonl, .csv or .parquet); with --cluster also a URL fsspec reads")
+    p.add_argument(
+        "input", help="file to score (.jsonl, .csv, .tsv or .parquet); with --cluster also a URL fsspec reads"
+    )
     p.add_argument("--model", required=True, help="model name in the registry")
     p.add_argument("--version", type=_positive, help="version number (default: the live version, pinned at the start)")
     p.add_argument(
         "--out",
         required=True,
-        help="file to write (.jsonl, .csv or .parquet), in place only when complete; with --cluster a folder "
+        help="file to write (.jsonl, .csv, .tsv or .parquet), in place only when complete; with --cluster a folder "
         "that becomes a Parquet dataset",
     )
     p.add_argument("--text-field", default="text", help="the column or JSON field holding each row's text")

@@ -300,8 +300,11 @@ def score_on_cluster(
     err = stream or sys.stderr
     started = time.monotonic()
     fmt = formats.detect(source, opts.input_format, "--input-format")
-    if fmt == "csv":
-        raise InputError("--cluster reads Parquet or JSONL (CSV cannot be split at byte offsets safely)")
+    if fmt in formats.DELIMITERS:
+        raise InputError(
+            f"--cluster reads Parquet or JSONL ({fmt.upper()} cannot be split at byte offsets safely: a quoted "
+            "field may hold line breaks)"
+        )
     formats._pyarrow()
     _check_output(output)
     parts, input_schema = partitions(source, fmt, partition_bytes)

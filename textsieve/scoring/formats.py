@@ -40,8 +40,17 @@ except ImportError:  # a scoring install without the serve extras: the standard 
 if TYPE_CHECKING:
     import pyarrow as pa
 
-FORMATS = ("jsonl", "csv", "parquet")
-_SUFFIXES = {".jsonl": "jsonl", ".ndjson": "jsonl", ".csv": "csv", ".parquet": "parquet", ".pq": "parquet"}
+FORMATS = ("jsonl", "csv", "tsv", "parquet")
+_SUFFIXES = {
+    ".jsonl": "jsonl",
+    ".ndjson": "jsonl",
+    ".csv": "csv",
+    ".tsv": "tsv",
+    ".parquet": "parquet",
+    ".pq": "parquet",
+}
+# The field separator of each delimited format (as ``textsieve train`` reads them, textsieve/labelled.py).
+DELIMITERS = {"csv": ",", "tsv": "\t"}
 PARQUET_EXTRA = "pip install 'textsieve[parquet]'"
 
 
@@ -52,7 +61,7 @@ def detect(path: str, given: str | None, flag: str) -> str:
     fmt = _SUFFIXES.get(Path(path.split("?")[0]).suffix.lower())
     if fmt is None:
         raise InputError(
-            f"{path}: cannot tell the format from the name; use a .jsonl, .csv or .parquet name or pass {flag}"
+            f"{path}: cannot tell the format from the name; use a .jsonl, .csv, .tsv or .parquet name or pass {flag}"
         )
     return fmt
 
@@ -87,7 +96,7 @@ class Reader:
 
 def _open_binary(path: Path) -> io.BufferedReader:
     if path.is_dir():
-        raise InputError(f"{path}: is a folder; INPUT is one JSONL, CSV or Parquet file")
+        raise InputError(f"{path}: is a folder; INPUT is one JSONL, CSV, TSV or Parquet file")
     try:
         return open(path, "rb")
     except FileNotFoundError:
@@ -143,8 +152,9 @@ class CsvReader(_ByteCounted):
     are skipped; a row with more or fewer values than the header is an error row (see
     :class:`Misshapen`); a quote out of place stops the run with the line it is on."""
 
-    def __init__(self, path: Path) -> None:
+    def __init__(self, path: Path, delimiter: str = ",") -> None:
         super().__init__(path)
+        self.delimiter = delimiter
         try:
             self._start()
         except BaseException:
@@ -156,7 +166,7 @@ class CsvReader(_ByteCounted):
         self._text = self._decoded()
         # strict: a quote that does not close where RFC 4180 says it must is an error, not a field
         # that silently runs on through the rows after it.
-        self._reader = csv.reader(self._text, strict=True)
+        self._reader = csv.reader(self._text, delimiter=self.delimiter, strict=True)
         try:
             self.columns = next(self._reader)
         except StopIteration:
@@ -201,7 +211,7 @@ class CsvReader(_ByteCounted):
                     row = Misshapen(
                         row,
                         f"line {row_line} has {len(values)} values and the header {width} "
-                        "columns; quote a field that holds a comma",
+                        f"columns; quote a field that holds {_separator(self.delimiter)}",
                     )
                 chunk.append(row)
                 if len(chunk) >= size:
@@ -210,11 +220,16 @@ class CsvReader(_ByteCounted):
         except csv.Error as exc:
             why = "a quote opened there is never closed" if "end of data" in str(exc) else str(exc)
             raise InputError(
-                f"{self.path}: not CSV in the row that starts on line {begun} ({why}); a field that holds a comma, "
-                "a quote or a line break is quoted whole, and a quote inside it doubled (RFC 4180)"
+                f"{self.path}: not {'TSV' if self.delimiter == chr(9) else 'CSV'} in the row that starts on line "
+                f"{begun} ({why}); a field that holds {_separator(self.delimiter)}, a quote or a line break is quoted "
+                "whole, and a quote inside it doubled (RFC 4180)"
             ) from exc
         if chunk:
             yield chunk
+
+
+def _separator(delimiter: str) -> str:
+    return "a tab" if delimiter == "\t" else "a comma" if delimiter == "," else repr(delimiter)
 
 
 class ParquetReader(Reader):
@@ -223,7 +238,7 @@ class ParquetReader(Reader):
     def __init__(self, path: Path) -> None:
         pa = _pyarrow()
         if path.is_dir():
-            raise InputError(f"{path}: is a folder; INPUT is one JSONL, CSV or Parquet file")
+            raise InputError(f"{path}: is a folder; INPUT is one JSONL, CSV, TSV or Parquet file")
         if not path.exists():
             raise InputError(f"{path}: no such file")
         try:
@@ -259,8 +274,8 @@ class ParquetReader(Reader):
 def open_reader(path: Path, fmt: str) -> Reader:
     if fmt == "jsonl":
         return JsonlReader(path)
-    if fmt == "csv":
-        return CsvReader(path)
+    if fmt in DELIMITERS:
+        return CsvReader(path, DELIMITERS[fmt])
     return ParquetReader(path)
 
 
@@ -365,18 +380,26 @@ class JsonlWriter(AppendWriter):
 class CsvWriter(AppendWriter):
     """Spans are a JSON array in their cell; a missing value is an empty cell."""
 
+    delimiter = ","
+
     def header(self) -> bytes:
         buf = io.StringIO()
-        csv.writer(buf).writerow(self.layout.columns)
+        csv.writer(buf, delimiter=self.delimiter).writerow(self.layout.columns)
         return buf.getvalue().encode("utf-8")
 
     def encode(self, rows: Sequence[Row]) -> bytes:
         buf = io.StringIO()
-        w = csv.writer(buf)
+        w = csv.writer(buf, delimiter=self.delimiter)
         cols = self.layout.columns
         for r in rows:
             w.writerow([_cell(r[c]) for c in cols])
         return buf.getvalue().encode("utf-8")
+
+
+class TsvWriter(CsvWriter):
+    """CSV's rules with a tab between fields (a field holding a tab, a quote or a line break is quoted)."""
+
+    delimiter = "\t"
 
 
 def _cell(value: object) -> object:
@@ -484,6 +507,7 @@ __all__ = [
     "AppendWriter",
     "CsvReader",
     "CsvWriter",
+    "TsvWriter",
     "JsonlReader",
     "JsonlWriter",
     "json_line",

@@ -113,7 +113,7 @@ def sidecar(output: Path) -> Path:
 
 def check_output(output: Path) -> None:
     if output.is_dir():
-        raise InputError(f"{output}: is a folder; --out names the file to write (.jsonl, .csv or .parquet)")
+        raise InputError(f"{output}: is a folder; --out names the file to write (.jsonl, .csv, .tsv or .parquet)")
     if not output.parent.is_dir():
         raise InputError(f"{output.parent}: no such folder for --out; create it first")
 
@@ -318,7 +318,8 @@ def _stream(
         if run.state["chunks"]:
             schema = formats._pyarrow().parquet.read_schema(run.part(0))
     else:
-        kind = formats.JsonlWriter if run.out_fmt == "jsonl" else formats.CsvWriter
+        kinds = {"jsonl": formats.JsonlWriter, "csv": formats.CsvWriter, "tsv": formats.TsvWriter}
+        kind = kinds[run.out_fmt]
         writer = kind(run.work / "output.part", layout, start=int(run.state["committed_bytes"]))
     workers = default_workers() if opts.workers is None else opts.workers
     pool = Pool(resolved.folder, workers=workers)
