@@ -51,19 +51,34 @@ class Encoder:
         # tuple (id, gap before, token length) per token, the gap counting the space before it.
         self._caches: dict[Split, dict[str, Entry]] = {}
 
-    def __call__(self, text: str) -> tuple[list[int], list[int], list[int]]:
-        """Every token's id, start and end (no truncation)."""
+    def _flat(self, text: str) -> list[int] | None:
+        """(id, gap before, length) of every token and trailing gap of every chunk, one flat list;
+        None when the text should take :meth:`Tokenizer.bounds` instead."""
         split = self.tokenizer.chunk_split(text)
         cache = self._caches.get(split)
         if cache is None:
             cache = self._caches.setdefault(split, {})
         chunks = text.split(" ")
         entries = list(map(cache.get, chunks))
-        flat: list[int] | None
         try:
-            flat = list(chain.from_iterable(entries))  # type: ignore[arg-type]
+            return list(chain.from_iterable(entries))  # type: ignore[arg-type]
         except TypeError:  # a chunk not cached yet
-            flat = self._learn(cache, split, chunks, entries)
+            return self._learn(cache, split, chunks, entries)
+
+    def ids(self, text: str) -> list[int]:
+        """Every token's id (no truncation): :meth:`__call__` without the offsets, which only spans
+        use; about 30 % less work a text (bench/README.md, "Encoding without offsets")."""
+        flat = self._flat(text)
+        if flat is None:
+            return self.vocab.encode(self.tokenizer.bounds(text)[0])
+        ids = flat[0::3]
+        if _GAP in ids:
+            ids = [i for i in ids if i != _GAP]
+        return ids
+
+    def __call__(self, text: str) -> tuple[list[int], list[int], list[int]]:
+        """Every token's id, start and end (no truncation)."""
+        flat = self._flat(text)
         if flat is not None:
             ids = flat[0::3]
             del flat[0::3]  # leaves gap, token, gap, token, …

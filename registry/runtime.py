@@ -35,18 +35,42 @@ DEFAULT_BATCH = 64
 
 @dataclass(slots=True)
 class Encoded:
-    """One text, ready for the graph."""
+    """One text, ready for the graph. Its tokens' character offsets (``starts``, ``ends``) are
+    found when first read if the text was encoded without them (``Predictor.encode(text,
+    offsets=False)``): only spans read them."""
 
     text: str
     ids: list[int]
-    starts: list[int]  # each kept token's character offsets into ``text``
-    ends: list[int]
+    _starts: list[int] | None  # each kept token's character offsets into ``text``; None: not yet
+    _ends: list[int] | None
     tokens: int  # before truncation
     unknown: int  # unknown tokens among those kept
+    _encoder: Encoder | None = None  # finds the offsets when they are read
 
     @property
     def truncated(self) -> bool:
         return self.tokens > len(self.ids)
+
+    @property
+    def starts(self) -> list[int]:
+        if self._starts is None:
+            self._find_offsets()
+        assert self._starts is not None
+        return self._starts
+
+    @property
+    def ends(self) -> list[int]:
+        if self._ends is None:
+            self._find_offsets()
+        assert self._ends is not None
+        return self._ends
+
+    def _find_offsets(self) -> None:
+        if self._encoder is None:
+            raise ValueError("this Encoded was made without offsets and cannot find them")
+        _, starts, ends = self._encoder(self.text)
+        kept = len(self.ids)
+        self._starts, self._ends = starts[:kept], ends[:kept]
 
 
 @dataclass(slots=True)
@@ -159,7 +183,15 @@ class Predictor:
         )
 
     # -- encoding -------------------------------------------------------------------------
-    def encode(self, text: str) -> Encoded:
+    def encode(self, text: str, *, offsets: bool = True) -> Encoded:
+        """The text's ids, cut to ``max_length``; ``offsets=False`` leaves the tokens' character
+        offsets to be found if and when they are read (a text that gets no spans never needs them)."""
+        if not offsets:
+            ids = self.encoder.ids(text)
+            n = len(ids)
+            if n > self.max_length:
+                ids = ids[: self.max_length]
+            return Encoded(text, ids, None, None, n, ids.count(self.vocab.unk_id), self.encoder)
         ids, starts, ends = self.encoder(text)
         n = len(ids)
         if n > self.max_length:
@@ -242,7 +274,7 @@ class Predictor:
         return result
 
     def predict(self, texts: list[str], *, spans: int = 3) -> list[Prediction]:
-        encoded = [self.encode(t) for t in texts]
+        encoded = [self.encode(t, offsets=spans > 0) for t in texts]
         out = self.run(encoded)
         return self.results(encoded, out, spans=spans)
 

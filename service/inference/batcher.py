@@ -405,7 +405,7 @@ class Batcher:
             seconds = time.perf_counter() - started
             return _Done(results, started, seconds, tokens, unknown, truncated, best, top, counts)
         p = self.served.predictors[self.pool.index()]
-        encoded = [p.encode(t) for t in texts]
+        encoded = [p.encode(t, offsets=k > 0) for t, k in zip(texts, ks, strict=True)]
         out = run_packed(p, encoded)
         probs = p.probabilities(out.logits)
         results = explain(p, encoded, out, ks, probs=probs)

@@ -131,7 +131,8 @@ def _run(p: Predictor, layout: Layout, msg: Run) -> tuple[Any, ...]:
     from textsieve.service.inference.packing import run_packed
     from textsieve.service.inference.spans import explain, mark_for_review
 
-    encoded = [p.encode(t) for t in msg.texts]
+    # Offsets only for the texts that get spans (only spans read them).
+    encoded = [p.encode(t, offsets=k > 0) for t, k in zip(msg.texts, msg.ks, strict=True)]
     out = run_packed(p, encoded)
     probs = p.probabilities(out.logits)
     best = probs.argmax(axis=1)
@@ -222,7 +223,7 @@ def _serve(conn: multiprocessing.connection.Connection) -> None:
                 _send(conn, (Outcome.OK.value, _run(predictors[msg.key], layouts[msg.key], msg)))
             elif isinstance(msg, Score):
                 p = predictors[msg.key]
-                out = run_packed(p, [p.encode(t) for t in msg.texts])
+                out = run_packed(p, [p.encode(t, offsets=False) for t in msg.texts])
                 probs = p.probabilities(out.logits).astype(np.float64)
                 _send(conn, (Outcome.OK.value, (probs.shape[1], probs.tobytes())))
             elif isinstance(msg, Load):

@@ -208,7 +208,7 @@ class ShadowScorer:
         from textsieve.service.inference.packing import run_packed
 
         p = cand.predictors[self.pool.index()]
-        out = run_packed(p, [p.encode(t) for t in texts])
+        out = run_packed(p, [p.encode(t, offsets=False) for t in texts])
         return p.probabilities(out.logits)
 
     def _compare(self, item: _Item, cand: ServedModel, probs: NDArray[np.floating]) -> None:

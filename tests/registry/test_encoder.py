@@ -8,6 +8,8 @@ enough to keep everything and with one that starts over every few chunks.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -48,9 +50,12 @@ def _texts() -> st.SearchStrategy[str]:
 def test_ids_and_offsets_equal_the_reference_cold_and_warm(tok: Tokenizer, capacity: int, texts: list[str]) -> None:
     vocab = _vocab()
     encoder = Encoder(tok, vocab, capacity=capacity)
+    ids_only = Encoder(tok, vocab, capacity=capacity)  # its own cache: ids() learns chunks too
     for _ in range(2):  # the second pass finds the chunks cached
         for text in texts:
-            assert encoder(text) == _reference(tok, vocab, text), text
+            reference = _reference(tok, vocab, text)
+            assert encoder(text) == reference, text
+            assert ids_only.ids(text) == reference[0], text
 
 
 @pytest.mark.parametrize(
@@ -75,6 +80,9 @@ def test_examples_equal_the_reference(text: str) -> None:
     encoder = Encoder(CASEFOLD, vocab)
     assert encoder(text) == _reference(CASEFOLD, vocab, text)
     assert encoder(text) == _reference(CASEFOLD, vocab, text)
+    assert encoder.ids(text) == _reference(CASEFOLD, vocab, text)[0]
+    cold = Encoder(CASEFOLD, vocab)
+    assert cold.ids(text) == _reference(CASEFOLD, vocab, text)[0]  # learning through ids()
 
 
 def test_ideographs_take_their_own_pattern_and_cache() -> None:
@@ -90,6 +98,24 @@ def test_ideographs_take_their_own_pattern_and_cache() -> None:
     assert cjk("東京,")[0] == [vocab.index["東"], vocab.unk_id, vocab.index[","]]
     assert kept("東京,")[0] == [vocab.unk_id, vocab.index[","]]
     assert len(cjk._caches) == 2
+
+
+def test_offsets_left_out_are_found_when_read_and_equal_the_eager_ones(tiny_bundles: dict[str, Path]) -> None:
+    from textsieve.registry.runtime import Predictor
+
+    p = Predictor.from_bundle(tiny_bundles["a"])
+    long = " ".join(["the chain is broken, and the refund?"] * 40)  # past max_length: cut
+    for text in ("Hi team, the app.", "team\n ok  東京", long, "ok"):
+        eager, lazy = p.encode(text), p.encode(text, offsets=False)
+        assert lazy._starts is None and lazy._ends is None  # nothing computed yet
+        assert (lazy.ids, lazy.tokens, lazy.unknown, lazy.truncated) == (
+            eager.ids,
+            eager.tokens,
+            eager.unknown,
+            eager.truncated,
+        )
+        assert (lazy.starts, lazy.ends) == (eager.starts, eager.ends) and len(lazy.starts) == len(lazy.ids)
+    assert p.encode(long).truncated
 
 
 def test_the_cache_never_holds_more_than_its_capacity() -> None:

@@ -47,7 +47,7 @@ class Scored:
 def score_texts(predictor: Predictor, texts: Sequence[str], spans: int) -> Scored:
     """The service's arithmetic (Predictor.run, temperature-scaled softmax, spans) without building
     a Prediction object per text."""
-    encoded = [predictor.encode(t) for t in texts]
+    encoded = [predictor.encode(t, offsets=spans > 0) for t in texts]
     out = predictor.run(encoded)
     probs = predictor.probabilities(out.logits)
     best = probs.argmax(axis=1)
