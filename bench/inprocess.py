@@ -11,7 +11,11 @@ reports it as history (``runtime_threads``) beside the processes.
 
 Variants, all from the same texts:
 - ``sorted``: encode 512 texts, sort them by length, run batches of 64 each padded to its own
-  longest (``Predictor.run``) — what "runtime" reports;
+  longest (``Predictor.run``) — what "runtime" reports. The texts are encoded without their
+  tokens' character offsets (``Predictor.encode(text, offsets=False)``): only spans read them, and
+  a scorer without spans (``textsieve score``'s default) leaves them out the same way;
+- ``sorted_offsets``: the same with every token's offsets, as a server pays for texts that get
+  spans (reported as history, ``runtime_with_offsets_vs_graph``);
 - ``fixed``: encode 512 texts, run batches of 64 in arrival order, each padded to the model's
   max_length;
 - ``graph``: the ``sorted`` batches pre-built, timing ``session.run`` alone;
@@ -77,7 +81,7 @@ def _halves(texts: list[str], parts: int) -> list[list[str]]:
     return [texts[i::parts] for i in range(parts)]
 
 
-def sorted_pipeline(p: Predictor, texts: list[str]) -> Callable[[], int]:
+def sorted_pipeline(p: Predictor, texts: list[str], *, offsets: bool = False) -> Callable[[], int]:
     """Encode a chunk, sort it, run it in batches each padded to its own longest.
 
     Chunks keep each thread's stretches of Python (which hold the GIL) short, so the other
@@ -87,7 +91,7 @@ def sorted_pipeline(p: Predictor, texts: list[str]) -> Callable[[], int]:
 
     def run() -> int:
         for lo in range(0, len(texts), CHUNK):
-            p.run([p.encode(t) for t in texts[lo : lo + CHUNK]])
+            p.run([p.encode(t, offsets=offsets) for t in texts[lo : lo + CHUNK]])
         return len(texts)
 
     return run
@@ -98,7 +102,7 @@ def fixed_pipeline(p: Predictor, texts: list[str]) -> Callable[[], int]:
 
     def run() -> int:
         for lo in range(0, len(texts), CHUNK):
-            encoded = [p.encode(t) for t in texts[lo : lo + CHUNK]]
+            encoded = [p.encode(t, offsets=False) for t in texts[lo : lo + CHUNK]]
             for b in range(0, len(encoded), BATCH):
                 p.run_arrays(*p.pad(encoded[b : b + BATCH], width=p.max_length))
         return len(texts)
@@ -143,6 +147,7 @@ class InProcess:
         parts = _halves(texts, sessions)
         makers: dict[str, Callable[[Predictor, list[str]], Callable[[], int]]] = {
             "sorted": sorted_pipeline,
+            "sorted_offsets": lambda p, t: sorted_pipeline(p, t, offsets=True),
             "fixed": fixed_pipeline,
             "graph": graph_only,
             "graph_fixed": lambda p, t: graph_only(p, t, fixed=True),
