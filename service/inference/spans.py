@@ -89,15 +89,22 @@ def _spans(
     row_sorted = g_row[order]
     rank = np.arange(len(order)) - np.searchsorted(row_sorted, row_sorted, side="left")
     chosen = order[rank < ks[row_sorted]]
-    names = [p.labels[c] for c in best.tolist()]
+    labels = p.labels
+    best_list = best.tolist()
+    last = -1
+    starts: list[int] = []
+    ends: list[int] = []
+    text = name = ""
+    into: list[dict[str, Any]] = []
+    # ``chosen`` is in row order, so a row's offsets and label are looked up once for all its spans.
     for r, s, e, w in zip(
         g_row[chosen].tolist(), g_start[chosen].tolist(), g_end[chosen].tolist(), g_weight[chosen].tolist(), strict=True
     ):
-        enc = encoded[r]
-        cs, ce = enc.starts[s], enc.ends[e - 1]
-        found[r].append(
-            {"start": cs, "end": ce, "text": enc.text[cs:ce], "label": names[r], "weight": w, "width": e - s}
-        )
+        if r != last:
+            enc = encoded[r]
+            starts, ends, text, name, into, last = enc.starts, enc.ends, enc.text, labels[best_list[r]], found[r], r
+        cs, ce = starts[s], ends[e - 1]
+        into.append({"start": cs, "end": ce, "text": text[cs:ce], "label": name, "weight": w, "width": e - s})
     return found
 
 
