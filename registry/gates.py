@@ -129,7 +129,7 @@ def grade(bundle: Bundle, examples: list[LabelledText]) -> Graded:
     index = {name: i for i, name in enumerate(labels)}
     targets = np.array([index[e.label] for e in examples], dtype=np.int64)
     predictor = Predictor.from_bundle(bundle, threads=1)
-    out = predictor.run([predictor.encode(e.text) for e in examples])
+    out = predictor.run([predictor.encode(e.text, offsets=False) for e in examples])
     probs = predictor.probabilities(out.logits)
     predicted = probs.argmax(axis=1)
     scores = Scores(
