@@ -53,24 +53,20 @@ class Encoded:
 
     @property
     def starts(self) -> list[int]:
-        if self._starts is None:
-            self._find_offsets()
-        assert self._starts is not None
-        return self._starts
+        return self._offsets()[0]
 
     @property
     def ends(self) -> list[int]:
-        if self._ends is None:
-            self._find_offsets()
-        assert self._ends is not None
-        return self._ends
+        return self._offsets()[1]
 
-    def _find_offsets(self) -> None:
-        if self._encoder is None:
-            raise ValueError("this Encoded was made without offsets and cannot find them")
-        _, starts, ends = self._encoder(self.text)
-        kept = len(self.ids)
-        self._starts, self._ends = starts[:kept], ends[:kept]
+    def _offsets(self) -> tuple[list[int], list[int]]:
+        if self._starts is None or self._ends is None:
+            if self._encoder is None:
+                raise ValueError("this Encoded was made without offsets and cannot find them")
+            _, starts, ends = self._encoder(self.text)
+            kept = len(self.ids)
+            self._starts, self._ends = starts[:kept], ends[:kept]
+        return self._starts, self._ends
 
 
 @dataclass(slots=True)
