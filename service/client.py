@@ -44,11 +44,16 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
 
 
 def _base(url: str) -> str:
+    """The service's base address; a probe's own URL (``…/readyz``, ``…/healthz``), as a deployment
+    script may hold it, stands for the service it probes."""
     try:
         check_url(url)
     except ValueError as exc:
         raise InputError(f"--url {url!r}: {exc}") from exc
-    return url.rstrip("/")
+    base = url.rstrip("/")
+    for probe in ("/readyz", "/healthz"):
+        base = base.removesuffix(probe)
+    return base
 
 
 def _ok(base: str, method: str, path: str, timeout: float, **kwargs: Any) -> Any:
@@ -224,6 +229,8 @@ def cli_health(args: argparse.Namespace) -> int:
     if r.status_code == 200:
         print(f"ready: {reason}")
         return 0
+    if not reason and r.status_code == 404:
+        reason = f"HTTP 404 from {base}/readyz: --url is the service's address, e.g. http://127.0.0.1:8000"
     print(f"not ready: {reason or f'HTTP {r.status_code}'}")
     return 1
 

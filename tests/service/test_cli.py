@@ -31,6 +31,13 @@ def test_health_ready_and_unreachable(live_url: str) -> None:
     assert down.stdout.count("\n") == 1 and down.stdout.startswith("not ready: cannot reach")
     bad = run("health", "--url", "localhost:8000")
     assert bad.returncode == 1 and bad.stdout.startswith("not ready:")
+    # A deployment script may hold the probe's own URL: it stands for the service it probes.
+    for probe in ("/readyz", "/healthz/"):
+        same = run("health", "--url", live_url + probe)
+        assert same.returncode == 0 and same.stdout.startswith(f"ready: serving {MODEL} v1"), same.stdout
+    elsewhere = run("health", "--url", live_url + "/api")
+    assert elsewhere.returncode == 1
+    assert "HTTP 404" in elsewhere.stdout and "--url is the service's address" in elsewhere.stdout
 
 
 def test_predict_prints_label_probabilities_and_marked_spans(live_url: str) -> None:
