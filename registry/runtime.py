@@ -182,18 +182,19 @@ class Predictor:
     def encode(self, text: str, *, offsets: bool = True) -> Encoded:
         """The text's ids, cut to ``max_length``; ``offsets=False`` leaves the tokens' character
         offsets to be found if and when they are read (a text that gets no spans never needs them)."""
-        if not offsets:
-            ids = self.encoder.ids(text)
-            n = len(ids)
-            if n > self.max_length:
-                ids = ids[: self.max_length]
-            return Encoded(text, ids, None, None, n, ids.count(self.vocab.unk_id), self.encoder)
-        ids, starts, ends = self.encoder(text)
+        starts: list[int] | None
+        ends: list[int] | None
+        if offsets:
+            ids, starts, ends = self.encoder(text)
+        else:
+            ids, starts, ends = self.encoder.ids(text), None, None
         n = len(ids)
         if n > self.max_length:
             cut = self.max_length
-            ids, starts, ends = ids[:cut], starts[:cut], ends[:cut]
-        return Encoded(text, ids, starts, ends, n, ids.count(self.vocab.unk_id))
+            ids = ids[:cut]
+            if starts is not None and ends is not None:
+                starts, ends = starts[:cut], ends[:cut]
+        return Encoded(text, ids, starts, ends, n, ids.count(self.vocab.unk_id), None if offsets else self.encoder)
 
     # -- the graph ------------------------------------------------------------------------
     def run_arrays(self, token_ids: NDArray[np.int64], lengths: NDArray[np.int64]) -> list[NDArray]:  # type: ignore[type-arg]
