@@ -155,6 +155,7 @@ class CsvReader(_ByteCounted):
     def __init__(self, path: Path, delimiter: str = ",") -> None:
         super().__init__(path)
         self.delimiter = delimiter
+        self.kind = "TSV" if delimiter == "\t" else "CSV"
         try:
             self._start()
         except BaseException:
@@ -170,9 +171,9 @@ class CsvReader(_ByteCounted):
         try:
             self.columns = next(self._reader)
         except StopIteration:
-            raise InputError(f"{path}: empty; a CSV file starts with a header line") from None
+            raise InputError(f"{path}: empty; a {self.kind} file starts with a header line") from None
         except csv.Error as exc:
-            raise InputError(f"{path}: not CSV ({exc})") from exc
+            raise InputError(f"{path}: not {self.kind} ({exc})") from exc
         first: dict[str, int] = {}
         for number, name in enumerate(self.columns, start=1):
             if name in first:
@@ -220,7 +221,7 @@ class CsvReader(_ByteCounted):
         except csv.Error as exc:
             why = "a quote opened there is never closed" if "end of data" in str(exc) else str(exc)
             raise InputError(
-                f"{self.path}: not {'TSV' if self.delimiter == chr(9) else 'CSV'} in the row that starts on line "
+                f"{self.path}: not {self.kind} in the row that starts on line "
                 f"{begun} ({why}); a field that holds {_separator(self.delimiter)}, a quote or a line break is quoted "
                 "whole, and a quote inside it doubled (RFC 4180)"
             ) from exc
