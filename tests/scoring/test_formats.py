@@ -19,6 +19,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from textsieve.scoring import formats
+from textsieve.scoring.rows import Unreadable
 
 LINES = [
     b'{"text": "plain", "id": 1}',
@@ -123,6 +124,37 @@ def test_a_run_of_nineteen_digits_goes_to_the_standard_module(digits: int, monke
     monkeypatch.setattr(formats, "_orjson_loads", lambda b: seen.append(b) or json.loads(b))
     assert formats.json_loads(raw) == json.loads(raw)
     assert bool(seen) == (digits < 19)
+
+
+@pytest.mark.parametrize("block", [1, 64, 1 << 20])
+@pytest.mark.parametrize("skip", [0, 5])
+def test_a_jsonl_file_reads_line_by_line_as_the_standard_module_reads_it(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, block: int, skip: int
+) -> None:
+    """Blocks with and without a long run of digits, blank lines and lines that are not JSON, read
+    in blocks of one line, a few lines and the whole file: each row is json.loads of its line."""
+    lines = [line.rstrip(b"\n") for line in LINES] + [b"", b"   ", b"not json", b'{"text": "after"}']
+    lines = lines + lines[::-1] + [b'{"text": "plain", "id": %d}' % i for i in range(20)]
+    path = tmp_path / "in.jsonl"
+    path.write_bytes(b"\n".join(lines) + b"\n")
+    expected: list[object] = []
+    for number, raw in enumerate(lines, start=1):
+        if raw.strip():
+            try:
+                expected.append(json.loads(raw))
+            except ValueError:
+                expected.append(f"line {number} is not valid JSON")
+    monkeypatch.setattr(formats, "_BLOCK", block)
+    reader = formats.open_reader(path, "jsonl")
+    got = [row for chunk in reader.chunks(4, skip=skip) for row in chunk]
+    assert reader.fraction() == 1.0
+    reader.close()
+    assert len(got) == len(expected) - skip
+    for row, want in zip(got, expected[skip:], strict=True):
+        if isinstance(want, str):
+            assert isinstance(row, Unreadable) and str(row) == want
+        else:
+            assert _same(row, want)
 
 
 # -- CSV ------------------------------------------------------------------------------------------

@@ -128,21 +128,31 @@ class JsonlReader(_ByteCounted):
     """One JSON object a line; blank lines are skipped, a line that is not JSON becomes an error row."""
 
     def chunks(self, size: int, skip: int = 0) -> Iterator[list[Any]]:
-        seen = 0
+        seen = number = 0
         chunk: list[Any] = []
-        for number, raw in enumerate(self._lines(), start=1):
-            if not raw.strip():
-                continue
-            seen += 1
-            if seen <= skip:
-                continue
-            try:
-                chunk.append(json_loads(raw))
-            except ValueError:
-                chunk.append(Unreadable(f"line {number} is not valid JSON"))
-            if len(chunk) >= size:
-                yield chunk
-                chunk = []
+        # Lines are read a block at a time, and a block without a long run of digits anywhere is
+        # parsed by orjson with no check a line (what json_loads checks, once for the block): the
+        # scoring process reads every row, so this is ~0.3 µs a row of its own CPU.
+        while lines := self.file.readlines(_BLOCK):
+            self.read += sum(map(len, lines))
+            loads = _orjson_loads if _orjson_loads is not None and _plain_block(lines) else json_loads
+            for raw in lines:
+                number += 1
+                if not raw.strip():
+                    continue
+                seen += 1
+                if seen <= skip:
+                    continue
+                try:
+                    chunk.append(loads(raw))
+                except ValueError:
+                    try:  # orjson refused it: the standard module's reading, as json_loads does
+                        chunk.append(json.loads(raw))
+                    except ValueError:
+                        chunk.append(Unreadable(f"line {number} is not valid JSON"))
+                if len(chunk) >= size:
+                    yield chunk
+                    chunk = []
         if chunk:
             yield chunk
 
@@ -287,6 +297,15 @@ def open_reader(path: Path, fmt: str) -> Reader:
 # speed, several times faster than a regular expression that tries every position.
 _DIGITS_TO_ZERO = bytes(0x30 if 0x30 <= b <= 0x39 else 0x78 for b in range(256))
 _LONG_RUN = b"0" * 19
+
+
+# JSONL is read in blocks of about this many bytes (whole lines).
+_BLOCK = 1 << 20
+
+
+def _plain_block(lines: list[bytes]) -> bool:
+    """Whether no line of the block holds a run of 19 or more digits (see :func:`json_loads`)."""
+    return _LONG_RUN not in b"".join(lines).translate(_DIGITS_TO_ZERO)
 
 
 def json_loads(raw: bytes) -> Any:
