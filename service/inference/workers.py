@@ -319,6 +319,7 @@ def _fork_context() -> Any:
                     "textsieve.service.inference.packing",
                     "textsieve.service.modelset.loader",
                     "onnxruntime",
+                    "textsieve.registry.prewarm",
                 ]
             )
         return _context

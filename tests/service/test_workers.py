@@ -441,3 +441,28 @@ def test_fork_server_imports_what_this_process_imports(tmp_path: Path) -> None:
     done = subprocess.run([sys.executable, str(script)], cwd=decoy.parent, env=env, timeout=120, capture_output=True)
     assert done.returncode == 0, done.stderr.decode()[-2000:]
     assert not marker.exists(), "the fork server imported the textsieve in the working directory"
+
+
+_SERVICE_START = "from textsieve.service.inference.workers import _fork_context as start\nargs = ()\n"
+_SCORE_START = (
+    "from textsieve.forking import fork_server as start\nfrom textsieve.scoring.cli import PRELOAD\nargs = (PRELOAD,)\n"
+)
+
+
+@pytest.mark.parametrize("start", [_SERVICE_START, _SCORE_START], ids=["service", "score"])
+def test_workers_inherit_the_scan_of_the_unicode_database_from_the_fork_server(tmp_path: Path, start: str) -> None:
+    """The tokenizer's scan of every code point (~0.09 s) is done once by the fork server, not by
+    each worker process on its first model (textsieve/registry/prewarm.py)."""
+    script = tmp_path / "start.py"
+    script.write_text(
+        "import sys\n" + start + "def check():\n"
+        "    from textsieve.registry import tokenizer\n"
+        "    sys.exit(0 if tokenizer._marks_and_formats.cache_info().currsize == 1 else 3)\n"
+        "if __name__ == '__main__':\n"
+        "    p = start(*args).Process(target=check)\n"
+        "    p.start()\n"
+        "    p.join(60)\n"
+        "    raise SystemExit(p.exitcode)\n"
+    )
+    done = subprocess.run([sys.executable, str(script)], cwd=tmp_path, timeout=120, capture_output=True)
+    assert done.returncode == 0, done.stderr.decode()[-2000:]

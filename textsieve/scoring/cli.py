@@ -79,7 +79,13 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
 
 
 # What a scoring worker imports (textsieve/scoring/pool.py), imported once by the fork server.
-PRELOAD = ("textsieve.scoring.pool", "textsieve.registry.runtime", "textsieve.registry.bundle", "onnxruntime")
+PRELOAD = (
+    "textsieve.scoring.pool",
+    "textsieve.registry.runtime",
+    "textsieve.registry.bundle",
+    "onnxruntime",
+    "textsieve.registry.prewarm",
+)
 
 
 def cli_score(args: argparse.Namespace) -> int:
