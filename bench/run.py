@@ -756,7 +756,9 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
         sc = results["scoring"]
         print(
             f"textsieve score: {sc['score_vs_runtime']:.3f} of the runtime end to end ({sc['texts']:,} texts, target "
-            f">= {SCORE_VS_RUNTIME}); peak RSS {sc['peak_rss']['process_tree_mb']} MB "
+            f">= {SCORE_VS_RUNTIME}; a one-row run takes {sc['fixed_seconds']:.2f} s, which alone caps it at "
+            f"{sc['ceiling_at_fixed_cost']:.3f}; {sc['score_vs_runtime_large']:.3f} at {sc['large_rows']:,} rows); "
+            f"peak RSS {sc['peak_rss']['process_tree_mb']} MB "
             f"at {sc['peak_rss']['rows']} rows; "
             f"Dask, two local workers: {sc['dask']['dask_vs_local']:.3f} of local scoring"
         )

@@ -8,6 +8,13 @@ runs alone at any size:
   check, reading, scoring on one worker process per core, writing) against the runtime's own pipeline
   (one process per core with a single-thread session, length-sorted chunks, no I/O;
   bench/inprocess.py) on the same texts.
+- ``fixed_seconds``: the same command on a one-row file (process start, imports, the registry and
+  bundle checks, the workers' start and model load, writing, exit): what every run pays whatever
+  its size. ``ceiling_at_fixed_cost`` = runtime ÷ (runtime + fixed): the best ``score_vs_runtime``
+  can be at this size if reading, laying out and writing the rows cost nothing.
+- ``score_vs_runtime_large``: the large input of ``peak_rss`` (1,000,000 rows by default, the same
+  texts over again) end to end, against the runtime's rate on the same texts measured above: the
+  fixed cost spread over ten times the rows, what a backlog sees.
 - ``peak_rss``: the peak resident memory of the scoring process and of the whole process tree
   (workers included), sampled every 50 ms, for a small and a large input of the same texts.
 - ``dask_vs_local``: a scheduler and two ``dask worker --nthreads 1`` processes started with Dask's
@@ -194,6 +201,10 @@ def bench_score(
         "runtime_texts_per_s": round(texts / runtime),
         "score_vs_runtime": round(runtime / end_to_end["seconds"], 3),
     }
+    one = _write_jsonl(work / "one.jsonl", corpus, 1)
+    fixed = min(run_score([str(one), "--out", str(work / "one.out.jsonl"), *common])["seconds"] for _ in range(3))
+    result["fixed_seconds"] = round(fixed, 3)
+    result["ceiling_at_fixed_cost"] = round(runtime / (runtime + fixed), 3)
 
     small, large = rss_rows
     say(f"peak RSS: {small:,} rows against {large:,} rows …")
@@ -210,6 +221,9 @@ def bench_score(
         "process_tree_mb": [round(rss[small]["peak_tree_rss_mb"], 1), round(rss[large]["peak_tree_rss_mb"], 1)],
         "growth_mb": round(rss[large]["peak_tree_rss_mb"] - rss[small]["peak_tree_rss_mb"], 1),
     }
+    result["large_rows"] = large
+    result["large_seconds"] = round(rss[large]["seconds"], 2)
+    result["score_vs_runtime_large"] = round(large / result["runtime_texts_per_s"] / rss[large]["seconds"], 3)
 
     say(f"Dask, two local workers, against local scoring: {dask_texts:,} texts …")
     table = pa.table({"id": list(range(dask_texts)), "text": [pool[i % len(pool)] for i in range(dask_texts)]})
