@@ -314,6 +314,19 @@ def _field(loc: tuple[Any, ...] | list[Any]) -> str:
     return ".".join(parts) or "body"
 
 
+def _content_type(scope: Scope) -> str | None:
+    for name, value in scope.get("headers", ()):
+        if name == b"content-type":
+            return str(value.decode("latin-1"))
+    return None
+
+
+def _is_json(content_type: str) -> bool:
+    """What FastAPI reads as JSON: application/json or application/*+json, any parameters."""
+    kind = content_type.split(";", 1)[0].strip().lower()
+    return kind == "application/json" or (kind.startswith("application/") and kind.endswith("+json"))
+
+
 def _body_shape(scope: Scope) -> str:
     """What the matched route's body looks like, from its request model's required fields."""
     field = getattr(scope.get("route"), "body_field", None)
@@ -346,7 +359,14 @@ def _validation_problem(exc: RequestValidationError, scope: Scope) -> Response:
         elif kind == "unknown_field":
             field = ", ".join(err.get("ctx", {}).get("fields", [])) or field
         elif kind == "model_attributes_type" or (kind == "dict_type" and field == "body"):
-            msg = f"the body must be {_body_shape(scope)}, sent with Content-Type: application/json"
+            sent = _content_type(scope)
+            if sent is None or _is_json(sent):
+                msg = f"the body must be {_body_shape(scope)}, sent with Content-Type: application/json"
+            else:  # the body was never read as JSON: say so, whatever it holds (curl -d sends a form)
+                msg = (
+                    f"the body was sent as Content-Type: {sent[:100]}, which is not read as JSON; "
+                    f"send {_body_shape(scope)} with Content-Type: application/json"
+                )
         errors.append({"field": field, "message": msg, "type": kind})
     first = errors[0] if errors else {"field": "body", "message": "invalid"}
     more = f" (and {len(errors) - 1} more problem(s), see 'errors')" if len(errors) > 1 else ""

@@ -230,6 +230,9 @@ async def test_bodies_that_are_not_json_are_refused(
     r = await retired_client.post("/v1/predict", content=body, headers={"content-type": content_type})
     problem = assert_problem(r, 422, "invalid-input")
     assert "JSON object" in problem["detail"] or "not valid JSON" in problem["detail"], problem
+    # The type it was sent as is named, and the one to use: curl -d sends a form, a common slip.
+    assert f"Content-Type: {content_type}" in problem["detail"], problem
+    assert "with Content-Type: application/json" in problem["detail"], problem
 
 
 @pytest.mark.parametrize(
