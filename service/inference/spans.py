@@ -1,14 +1,8 @@
 """Reply dicts for a whole batch: labels, calibrated probabilities and spans, vectorised.
 
-The numbers are those of :meth:`Predictor.results` (the span measure is documented there:
-each filter's max-over-time window is an n-gram detector, Jacovi et al., 2018, and its weight
-is ``pooled_f · W[c, f]``, its additive share of class c's logit). This module only moves the
-per-window bookkeeping from Python loops into NumPy so a batch costs a few array operations
-instead of ~100 µs of Python per text. Sums are accumulated with ``np.bincount`` in the same
-order as the loops there, so the results are equal, not merely close; the tests compare them
-(tests/service/test_spans.py). The windows of a batch are found on a dense grid of cells, one per
-(text, start, width): a 128-text batch of the benchmark's texts costs ~3.5 µs a text there against
-~8.4 µs by sorting the windows' keys, which is kept for grids too large to allocate.
+The numbers are those of :meth:`Predictor.results`; the spans come from
+:func:`textsieve.registry.spans.batch_spans`, which finds a whole batch's in a few array
+operations instead of ~100 µs of Python per text (file scoring uses it too).
 """
 
 from __future__ import annotations
@@ -17,7 +11,8 @@ from typing import Any
 
 import numpy as np
 
-from textsieve.registry.runtime import SPAN_FLOOR, Encoded, Outputs, Predictor
+from textsieve.registry.runtime import Encoded, Outputs, Predictor
+from textsieve.registry.spans import batch_spans
 
 
 def explain(
@@ -28,7 +23,7 @@ def explain(
     if probs is None:
         probs = p.probabilities(out.logits)
     best = probs.argmax(axis=1)
-    spans_by_row = _spans(p, encoded, out, best, np.asarray(ks, dtype=np.int64))
+    spans_by_row = batch_spans(p, encoded, out, best, np.asarray(ks, dtype=np.int64))
     return [
         {
             "label": labels[c],
@@ -49,121 +44,4 @@ def mark_for_review(results: list[dict[str, Any]], threshold: float) -> None:
         r["needs_review"] = max(r["probabilities"].values()) < threshold
 
 
-def _spans(
-    p: Predictor, encoded: list[Encoded], out: Outputs, best: np.ndarray, ks: np.ndarray
-) -> list[list[dict[str, Any]]]:
-    n = len(encoded)
-    found: list[list[dict[str, Any]]] = [[] for _ in range(n)]
-    lengths = np.fromiter((len(e.ids) for e in encoded), dtype=np.int64, count=n)
-    if n == 0 or not ((lengths > 0) & (ks > 0)).any():
-        return found
-    windows = _windows(p, lengths, out, best, ks)
-    if windows is None:
-        windows = _windows_sorted(p, lengths, out, best, ks)
-    w_row, w_start, w_end, totals = windows
-    if totals.size == 0:
-        return found
-
-    # Keep windows at or above SPAN_FLOOR of their row's strongest.
-    row_max = np.full(n, -np.inf)
-    np.maximum.at(row_max, w_row, totals)
-    keep = totals >= SPAN_FLOOR * row_max[w_row]
-    w_row, w_start, w_end, totals = w_row[keep], w_start[keep], w_end[keep], totals[keep]
-
-    # Merge overlapping windows: a window opens a new span when it starts at or after the
-    # furthest end seen so far in its row (rows are offset so they never overlap).
-    stride = int(lengths.max()) + 1
-    flat_start = w_row * stride + w_start
-    reach = np.maximum.accumulate(w_row * stride + w_end)
-    opens = np.ones(len(totals), dtype=bool)
-    opens[1:] = flat_start[1:] >= reach[:-1]
-    group = np.cumsum(opens) - 1
-    g_weight = np.bincount(group, weights=totals)
-    first = np.flatnonzero(opens)
-    g_row = w_row[first]
-    g_start = w_start[first]
-    g_end = np.maximum.reduceat(w_end, first)
-
-    # Strongest first within each row; equal weights keep left-to-right order (stable sort).
-    order = np.lexsort((np.arange(len(g_weight)), -g_weight, g_row))
-    row_sorted = g_row[order]
-    rank = np.arange(len(order)) - np.searchsorted(row_sorted, row_sorted, side="left")
-    chosen = order[rank < ks[row_sorted]]
-    labels = p.labels
-    best_list = best.tolist()
-    last = -1
-    starts: list[int] = []
-    ends: list[int] = []
-    text = name = ""
-    into: list[dict[str, Any]] = []
-    # ``chosen`` is in row order, so a row's offsets and label are looked up once for all its spans.
-    for r, s, e, w in zip(
-        g_row[chosen].tolist(), g_start[chosen].tolist(), g_end[chosen].tolist(), g_weight[chosen].tolist(), strict=True
-    ):
-        if r != last:
-            enc = encoded[r]
-            starts, ends, text, name, into, last = enc.starts, enc.ends, enc.text, labels[best_list[r]], found[r], r
-        cs, ce = starts[s], ends[e - 1]
-        into.append({"start": cs, "end": ce, "text": text[cs:ce], "label": name, "weight": w, "width": e - s})
-    return found
-
-
-Windows = tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]  # row, start, end, summed weight
-# The dense window grid (rows x starts x widths) is used up to this many cells; beyond it (many
-# long texts at once) the windows are found by sorting their keys instead.
-DENSE_CELLS = 1 << 20
-
-
-def _windows(p: Predictor, lengths: np.ndarray, out: Outputs, best: np.ndarray, ks: np.ndarray) -> Windows | None:
-    """Every window a filter fired on (its share of the chosen class > 0), with the shares summed,
-    in (row, start, end) order: one ``np.bincount`` over a dense grid, one cell per (row, start,
-    width), instead of sorting the fired filters' keys. The row-major scan meets a window's filters
-    in ascending order and every other filter adds 0 to cell 0 (no window has width 0), so each
-    total is the same sum in the same order as :meth:`Predictor.spans`. None when the grid would
-    be too large or the graph gave a window start outside its text (the sorting path then does
-    exactly what it always did)."""
-    n = len(lengths)
-    stride = int(lengths.max()) + 1
-    cells = int(p.filter_widths.max(initial=0)) + 1  # widths 1 .. the widest filter
-    if n * stride * cells > DENSE_CELLS:
-        return None
-    starts = out.positions
-    text_ends = lengths[:, None]
-    if starts.min(initial=0) < 0 or not (starts < text_ends).all(where=text_ends > 0):
-        return None
-    contrib = out.contributions[np.arange(n), :, best]  # [n, F]: filter shares of the chosen class
-    fired = contrib > 0
-    fired &= ((lengths > 0) & (ks > 0))[:, None]
-    # cell = (row · stride + start) · cells + (end − start), with end = min(start + width, length)
-    key = starts * (cells - 1)
-    key += np.minimum(starts + p.filter_widths, text_ends)
-    key += (np.arange(n) * (stride * cells))[:, None]
-    key *= fired
-    totals = np.bincount(
-        key.ravel(), weights=np.multiply(contrib, fired, dtype=np.float64).ravel(), minlength=n * stride * cells
-    )
-    totals[0] = 0.0  # where the filters that did not fire went
-    cell = np.flatnonzero(totals > 0)
-    w_row, rest = np.divmod(cell, stride * cells)
-    w_start, w_width = np.divmod(rest, cells)
-    return w_row, w_start, w_start + w_width, totals[cell]
-
-
-def _windows_sorted(p: Predictor, lengths: np.ndarray, out: Outputs, best: np.ndarray, ks: np.ndarray) -> Windows:
-    """:func:`_windows` by sorting the fired filters' window keys (any grid size)."""
-    n = len(lengths)
-    contrib = out.contributions[np.arange(n), :, best]
-    eligible = (lengths > 0) & (ks > 0)
-    fired_rows, fired_f = np.nonzero((contrib > 0) & eligible[:, None])  # row-major: filters ascending
-    weights = contrib[fired_rows, fired_f].astype(np.float64)
-    starts = out.positions[fired_rows, fired_f]
-    ends = np.minimum(starts + p.filter_widths[fired_f], lengths[fired_rows])
-    # One window per distinct (row, start, end); np.unique sorts them like the loop's sorted().
-    stride = int(lengths.max()) + 1
-    key = (fired_rows * stride + starts) * stride + ends
-    uniq, inverse = np.unique(key, return_inverse=True)
-    totals = np.bincount(inverse, weights=weights)  # adds in filter order, starting from 0.0
-    return uniq // (stride * stride), (uniq // stride) % stride, uniq % stride, totals
-
-
-__all__ = ["explain"]
+__all__ = ["explain", "mark_for_review"]

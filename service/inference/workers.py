@@ -316,6 +316,7 @@ def _fork_context() -> Any:
                     "textsieve.registry.runtime",
                     "textsieve.registry.drift",
                     "textsieve.service.inference.spans",
+                    "textsieve.registry.spans",
                     "textsieve.service.inference.packing",
                     "textsieve.service.modelset.loader",
                     "onnxruntime",

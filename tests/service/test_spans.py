@@ -1,8 +1,9 @@
-"""The service's batch span bookkeeping (service/inference/spans.py) against Predictor.spans.
+"""The batch span bookkeeping (registry/spans.py, used by the service's workers and by file
+scoring) against Predictor.spans.
 
 ``Predictor.spans`` (registry/runtime.py) explains one text at a time with plain Python loops
-and is what the exporter's parity check and the registry's gates use; the service finds the same
-windows for a whole batch at once, on a dense grid (``_windows``) or, for grids too large, by
+and is what the exporter's parity check and the registry's gates use; the batch path finds the
+same windows for a whole batch at once, on a dense grid (``_windows``) or, for grids too large, by
 sorting window keys (``_windows_sorted``). Both must give the very same spans: offsets, text,
 weights to the last bit, order. The graph's outputs are the real model's on hard Unicode, and
 made-up ones (hypothesis) that force ties, overlaps, clipped windows and empty texts.
@@ -18,8 +19,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from textsieve.registry import spans
 from textsieve.registry.runtime import Encoded, Outputs, Predictor
-from textsieve.service.inference import spans
 from textsieve.service.inference.spans import explain
 
 HARD = [
@@ -139,3 +140,34 @@ def test_a_window_outside_its_text_takes_the_sorting_path(predictor: Predictor) 
     assert spans._windows(p, lengths, out, best, ks) is None
     out.positions[1, 0] = -1
     assert spans._windows(p, lengths, out, best, ks) is None
+
+
+@pytest.mark.parametrize("k", [1, 3, 7])
+def test_file_scoring_finds_the_same_spans_as_predictor_spans(predictor: Predictor, k: int) -> None:
+    """textsieve score (and its Dask workers) take the batch path too (textsieve/scoring/rows.py)."""
+    from textsieve.scoring.rows import score_texts
+
+    texts = [t for t in HARD if t] * 3  # the scorer refuses empty texts before this point
+    encoded = [predictor.encode(t) for t in texts]
+    assert score_texts(predictor, texts, k).spans == _reference(
+        predictor, encoded, predictor.run(encoded), [k] * len(texts)
+    )
+
+
+def test_a_batch_too_large_for_one_grid_is_taken_in_blocks_of_rows_with_the_same_spans(
+    predictor: Predictor, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    texts = [t for t in HARD if t] * 4
+    encoded = [predictor.encode(t) for t in texts]
+    out = predictor.run(encoded)
+    best = predictor.probabilities(out.logits).argmax(axis=1)
+    ks = np.full(len(texts), 3)
+    want = _reference(predictor, encoded, out, [3] * len(texts))
+    stride = max(len(e.ids) for e in encoded) + 1
+    cells = int(predictor.filter_widths.max()) + 1
+    blocks: list[int] = []
+    real = spans._spans
+    monkeypatch.setattr(spans, "_spans", lambda p, e, *rest: blocks.append(len(e)) or real(p, e, *rest))
+    monkeypatch.setattr(spans, "DENSE_CELLS", stride * cells * 5)  # five texts a grid
+    assert spans.batch_spans(predictor, encoded, out, best, ks) == want
+    assert blocks == [5] * (len(texts) // 5) + ([len(texts) % 5] if len(texts) % 5 else [])
