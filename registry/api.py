@@ -36,6 +36,7 @@ from textsieve.errors import (
     InputError,
     NotFoundError,
     RegistryError,
+    SavedThenInterrupted,
     StateError,
     TextsieveError,
 )
@@ -337,7 +338,14 @@ class Registry:
             live_now = q.in_state(model, State.LIVE)
         assert info is not None
         if normalised is not None:
-            self._report_quietly(model, n, _num(live_now), actor)  # evaluation report; never fails the publish
+            try:
+                self._report_quietly(model, n, _num(live_now), actor)  # evaluation report; never fails the publish
+            except SavedThenInterrupted:
+                raise SavedThenInterrupted(
+                    f"{model!r} version {n} is published; its evaluation report was not made "
+                    f"(textsieve evaluate {model} {n} makes it)",
+                    info,
+                ) from None
         return info
 
     def add_evalset(
@@ -617,7 +625,10 @@ class Registry:
             if registered is None or target is None or unknown_labels(registered.labels, target.labels):
                 return None
             return self.report(model, version, against=against, actor=actor)
-        except (TextsieveError, ValueError, RuntimeError, OSError) as exc:
+        except (TextsieveError, ValueError, RuntimeError, OSError, KeyboardInterrupt) as exc:
+            if isinstance(exc, KeyboardInterrupt):
+                # Ctrl-C after the change was committed: the caller says what stands (SavedThenInterrupted).
+                raise SavedThenInterrupted("") from None
             message = exc.message if isinstance(exc, TextsieveError) else f"{type(exc).__name__}: {exc}"
             try:
                 with self.backend.write() as tx:
@@ -667,7 +678,10 @@ class Registry:
             promotion = self._to_candidate(model, version, reason, actor)
             # -- evaluation report of this attempt (never fails the promotion) --
             live_now = self.live(model)
-            report = self._report_quietly(model, version, _num(live_now), actor)
+            try:
+                report = self._report_quietly(model, version, _num(live_now), actor)
+            except SavedThenInterrupted:
+                raise SavedThenInterrupted(_unreported(promotion.version), promotion) from None
             return promotion.model_copy(update={"report": report})
         for attempt in range(_GATE_ATTEMPTS + 1):
             if attempt < _GATE_ATTEMPTS:
@@ -709,7 +723,13 @@ class Registry:
             event_id, info, failed = outcome
             # -- evaluation report of this attempt, against the live version the gates judged with
             # (stored before a refusal is raised, so the refusal can point at report_path(); never fails) --
-            report = self._report_quietly(model, version, _num(live), actor)
+            try:
+                report = self._report_quietly(model, version, _num(live), actor)
+            except SavedThenInterrupted:
+                if info is None:  # refused: nothing changed but the refusal's record, which it says
+                    raise _refusal(model, version, gates, failed, event_id) from None
+                done = Promotion(version=info, gates=gates, forced=bool(failed), retired=_num(live), event_id=event_id)
+                raise SavedThenInterrupted(_unreported(info), done) from None
             # -- end of the report hook --
             if info is None:
                 raise _refusal(model, version, gates, failed, event_id)
@@ -1010,6 +1030,13 @@ def _allowed(target: VersionInfo, to: State) -> None:
         f"version {target.version} of {target.model!r} is {target.state} and cannot become {to}; "
         f"allowed from: {', '.join(_ALLOWED_FROM[to])}"
         + ("; use rollback or promote another version" if target.state == State.LIVE else "")
+    )
+
+
+def _unreported(info: VersionInfo) -> str:
+    return (
+        f"{info.model!r} version {info.version} is now {info.state}; its evaluation report was not made "
+        f"(textsieve evaluate {info.model} {info.version} makes it)"
     )
 
 

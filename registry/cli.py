@@ -17,7 +17,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
 from textsieve.environment import DEFAULT_REGISTRY, registry_location
-from textsieve.errors import GateRefusedError, InputError, NotFoundError
+from textsieve.errors import GateRefusedError, InputError, NotFoundError, SavedThenInterrupted
 
 if TYPE_CHECKING:
     from textsieve.registry.api import Registry
@@ -230,14 +230,23 @@ def _actor_arg(p: argparse.ArgumentParser) -> None:
 
 # -- verbs --------------------------------------------------------------------------------
 def cli_publish(args: argparse.Namespace) -> int:
+    from textsieve.registry.records import VersionInfo
+
+    stopped: SavedThenInterrupted | None = None
     with _open(args, create=True) as reg:
-        info = reg.publish(args.bundle, args.model, actor=args.actor, reason=args.reason, evalset=args.evalset)
+        try:
+            info = reg.publish(args.bundle, args.model, actor=args.actor, reason=args.reason, evalset=args.evalset)
+        except SavedThenInterrupted as exc:  # Ctrl-C in the report after the commit: say what stands
+            assert isinstance(exc.result, VersionInfo)
+            info, stopped = exc.result, exc
         extra = ""
-        if args.evalset is not None:
+        if args.evalset is not None and stopped is None:
             es = reg.evalset(info.model)
             extra = f"; evaluation set {args.evalset.name}: {es.texts if es else 0} texts"
     print(f"published {info.model!r} version {info.version} (labels: {', '.join(info.labels)}){extra}", file=sys.stderr)
     _out(str(info.version))
+    if stopped is not None:
+        raise stopped
     return 0
 
 
@@ -352,8 +361,9 @@ def cli_show(args: argparse.Namespace) -> int:
 
 
 def cli_promote(args: argparse.Namespace) -> int:
-    from textsieve.registry.records import GateResult
+    from textsieve.registry.records import GateResult, Promotion
 
+    stopped: SavedThenInterrupted | None = None
     with _open(args) as reg:
         try:
             result = reg.promote(
@@ -363,11 +373,16 @@ def cli_promote(args: argparse.Namespace) -> int:
             gates = [GateResult.model_validate(g) for g in exc.context.get("gates", [])]
             _out(gate_table(gates), sys.stderr)
             raise
+        except SavedThenInterrupted as exc:  # Ctrl-C in the report after the commit: say what stands
+            assert isinstance(exc.result, Promotion)
+            result, stopped = exc.result, exc
     if result.gates:
         _out(gate_table(result.gates))
     tail = f" (version {result.retired} retired)" if result.retired is not None else ""
     forced = f"; FORCED past {', '.join(g.name for g in result.gates if not g.passed)}" if result.forced else ""
     _out(f"{result.version.model!r} version {result.version.version} is now {result.version.state}{tail}{forced}")
+    if stopped is not None:
+        raise stopped
     return 0
 
 

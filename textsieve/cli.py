@@ -18,7 +18,7 @@ from collections.abc import Sequence
 from typing import TYPE_CHECKING, Any
 
 from textsieve import __version__, demo
-from textsieve.errors import TextsieveError
+from textsieve.errors import SavedThenInterrupted, TextsieveError
 from textsieve.exporter import cli as exporter_cli
 from textsieve.registry import cli as registry_cli
 from textsieve.scoring import cli as scoring_cli
@@ -139,6 +139,18 @@ def run(args: argparse.Namespace) -> int:
         ) from exc
 
 
+def _interrupted_within(exc: BaseException) -> bool:
+    """Whether a KeyboardInterrupt is among the exceptions that led to ``exc``."""
+    seen: set[int] = set()
+    cause: BaseException | None = exc
+    while cause is not None and id(cause) not in seen:
+        if isinstance(cause, KeyboardInterrupt):
+            return True
+        seen.add(id(cause))
+        cause = cause.__cause__ or cause.__context__
+    return False
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     if "_ARGCOMPLETE" in os.environ:
@@ -152,9 +164,18 @@ def main(argv: Sequence[str] | None = None) -> int:
     except TextsieveError as exc:
         print(f"textsieve: error: {exc.message}", file=sys.stderr)
         return exc.exit_code
+    except SavedThenInterrupted as exc:
+        print(f"textsieve: interrupted after the change was saved: {exc.saved}", file=sys.stderr)
+        return 130
     except KeyboardInterrupt:
         print("textsieve: interrupted", file=sys.stderr)
         return 130
+    except Exception as exc:
+        # Ctrl-C inside a native module's import (onnxruntime's) surfaces as its ImportError.
+        if _interrupted_within(exc):
+            print("textsieve: interrupted", file=sys.stderr)
+            return 130
+        raise
     except BrokenPipeError:
         # The reader went away (`textsieve models | head`): not an error worth a traceback.
         devnull = os.open(os.devnull, os.O_WRONLY)

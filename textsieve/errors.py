@@ -110,6 +110,17 @@ class AuthError(TextsieveError):
         self.missing = missing
 
 
+class SavedThenInterrupted(KeyboardInterrupt):
+    """Ctrl-C arrived in the optional work that follows a committed change (its evaluation report):
+    the change stands. ``saved`` says what was saved; ``result`` is what the call would have
+    returned, so a command can still show it."""
+
+    def __init__(self, saved: str, result: object = None) -> None:
+        super().__init__(saved)
+        self.saved = saved
+        self.result = result
+
+
 __all__ = [
     "AuthError",
     "BundleError",
@@ -122,6 +133,7 @@ __all__ = [
     "OverloadedError",
     "ParityError",
     "RegistryError",
+    "SavedThenInterrupted",
     "StateError",
     "TextsieveError",
     "UnavailableError",

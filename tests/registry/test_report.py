@@ -362,6 +362,68 @@ def test_a_report_failure_never_breaks_a_publish(
     assert (last.kind, last.version, last.details["error"]) == ("report_failed", 1, "RuntimeError: scoring exploded")
 
 
+@pytest.mark.parametrize("step", ["publish", "candidate", "live"])
+def test_ctrl_c_in_the_report_after_a_commit_says_what_was_saved(
+    capsys: pytest.CaptureFixture[str],
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
+    tiny_data: Path,
+    monkeypatch: pytest.MonkeyPatch,
+    step: str,
+) -> None:
+    """The report runs after the publish or promotion has committed: Ctrl-C there must not read as
+    'interrupted' alone (which says nothing was done) but say what stands, and still show it."""
+    from textsieve.registry.report import files
+
+    r = ["--registry", str(tmp_path / "reg")]
+    evalset = str(tiny_data / "test.jsonl")
+    if step != "publish":
+        assert _run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", "--evalset", evalset, *r)[0] == 0
+        assert _run(capsys, "promote", "m", "1", "--to", "live", "--reason", "first", *r)[0] == 0
+        assert _run(capsys, "publish", str(tiny_bundles["b"]), "--model", "m", *r)[0] == 0
+
+    def pressed(*args: object, **kwargs: object) -> None:
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(files, "make_report", pressed)
+    if step == "publish":
+        code, out, err = _run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", "--evalset", evalset, *r)
+        assert (code, out) == (130, "1\n")
+        assert err.splitlines()[-1] == (
+            "textsieve: interrupted after the change was saved: 'm' version 1 is published; its evaluation "
+            "report was not made (textsieve evaluate m 1 makes it)"
+        )
+    else:
+        code, out, err = _run(capsys, "promote", "m", "2", "--to", step, "--reason", "x", "--force", *r)
+        assert code == 130
+        assert out.splitlines()[-1].startswith(f"'m' version 2 is now {step}")
+        assert err == (
+            f"textsieve: interrupted after the change was saved: 'm' version 2 is now {step}; its evaluation "
+            "report was not made (textsieve evaluate m 2 makes it)\n"
+        )
+    monkeypatch.undo()
+    code, out, _ = _run(capsys, "versions", "m", *r)
+    state = {"publish": "registered"}.get(step, step)
+    assert code == 0 and out.splitlines()[-1].split()[:2] == ["2" if step != "publish" else "1", state]
+
+
+def test_ctrl_c_inside_a_native_import_is_one_line_and_exit_130(
+    capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """onnxruntime's import turns a Ctrl-C into ImportError('initialization failed')."""
+    from textsieve import cli
+
+    def verb(args: object) -> int:
+        try:
+            raise KeyboardInterrupt
+        except KeyboardInterrupt:
+            raise ImportError("initialization failed") from None
+
+    monkeypatch.setattr(cli, "run", verb)
+    assert cli.main(["models"]) == 130
+    assert capsys.readouterr().err == "textsieve: interrupted\n"
+
+
 def test_published_card_names_the_model_and_links_the_report(
     registry: Registry, tiny_bundles: dict[str, Path], tiny_data: Path
 ) -> None:
