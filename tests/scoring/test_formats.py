@@ -131,19 +131,28 @@ def test_a_run_of_nineteen_digits_goes_to_the_standard_module(digits: int, monke
 def test_a_jsonl_file_reads_line_by_line_as_the_standard_module_reads_it(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch, block: int, skip: int
 ) -> None:
-    """Blocks with and without a long run of digits, blank lines and lines that are not JSON, read
-    in blocks of one line, a few lines and the whole file: each row is json.loads of its line."""
+    """Blocks with and without a long run of digits, blank lines, lines that are not JSON and lone
+    surrogates, read in blocks of one line, a few lines and the whole file: each row is json.loads
+    of its line, or the error row that says why it cannot be."""
     lines = [line.rstrip(b"\n") for line in LINES] + [b"", b"   ", b"not json", b'{"text": "after"}']
     lines = lines + lines[::-1] + [b'{"text": "plain", "id": %d}' % i for i in range(20)]
+    lines += [b'{"text": "a pair \\ud83d\\ude00 is one character"}', b'{"text": "ok", "\\uDC00": 1}']
     path = tmp_path / "in.jsonl"
     path.write_bytes(b"\n".join(lines) + b"\n")
     expected: list[object] = []
     for number, raw in enumerate(lines, start=1):
         if raw.strip():
             try:
-                expected.append(json.loads(raw))
+                row = json.loads(raw)
             except ValueError:
                 expected.append(f"line {number} is not valid JSON")
+                continue
+            try:  # a lone surrogate (in a value or a key) cannot be written as UTF-8: an error row
+                json.dumps(row, ensure_ascii=False).encode("utf-8")
+            except UnicodeEncodeError:
+                expected.append(f"line {number} {formats.LONE_SURROGATE}")
+            else:
+                expected.append(row)
     monkeypatch.setattr(formats, "_BLOCK", block)
     reader = formats.open_reader(path, "jsonl")
     got = [row for chunk in reader.chunks(4, skip=skip) for row in chunk]

@@ -210,6 +210,7 @@ BAD_INPUT = [
         ["in.jsonl", "--out", "outdir"], 2, "outdir: is a folder; --out names the file", id="folder-as-output"
     ),
     pytest.param(["in.jsonl", "--out", "o.txt"], 2, "cannot tell the format from the name", id="unknown-format"),
+    pytest.param(["in.jsonl", "--out", "in.jsonl"], 2, "--out names the input file itself", id="output-is-the-input"),
     pytest.param(
         ["in.jsonl", "--out", "o.jsonl", "--keep", "nope"],
         2,
@@ -261,6 +262,7 @@ def test_bad_input_is_one_line_and_leaves_nothing(
     lines = out.stderr.splitlines()
     assert len(lines) == 1 and lines[0].startswith("textsieve: error: ") and expected_msg in lines[0], out.stderr
     assert sorted(p.name for p in work.iterdir()) == before and not any((work / "outdir").iterdir())
+    assert (work / "in.jsonl").read_text(encoding="utf-8").count("\n") == 2  # the input is untouched
 
 
 # -- interrupted runs ---------------------------------------------------------------------------------

@@ -166,9 +166,13 @@ def read_partition(part: Partition) -> list[Any]:
             if not raw.strip():
                 continue
             try:
-                rows.append(formats.json_loads(raw))
+                row = formats.json_loads(raw)
             except ValueError:
                 rows.append(Unreadable(f"a line of partition {part.index} is not valid JSON"))
+                continue
+            if formats.lone_surrogate(row, raw):
+                row = Unreadable(f"a line of partition {part.index} {formats.LONE_SURROGATE}")
+            rows.append(row)
     return rows
 
 

@@ -135,7 +135,9 @@ class JsonlReader(_ByteCounted):
         # scoring process reads every row, so this is ~0.3 µs a row of its own CPU.
         while lines := self.file.readlines(_BLOCK):
             self.read += sum(map(len, lines))
-            loads = _orjson_loads if _orjson_loads is not None and _plain_block(lines) else json_loads
+            block = b"".join(lines)
+            loads = _orjson_loads if _orjson_loads is not None and _plain_block(block) else json_loads
+            escapes = _SURROGATE_ESCAPE in block.lower()  # a \uD800–\uDFFF escape somewhere in the block
             for raw in lines:
                 number += 1
                 if not raw.strip():
@@ -144,12 +146,15 @@ class JsonlReader(_ByteCounted):
                 if seen <= skip:
                     continue
                 try:
-                    chunk.append(loads(raw))
+                    row = loads(raw)
                 except ValueError:
                     try:  # orjson refused it: the standard module's reading, as json_loads does
-                        chunk.append(json.loads(raw))
+                        row = json.loads(raw)
                     except ValueError:
-                        chunk.append(Unreadable(f"line {number} is not valid JSON"))
+                        row = Unreadable(f"line {number} is not valid JSON")
+                if escapes and lone_surrogate(row, raw):
+                    row = Unreadable(f"line {number} {LONE_SURROGATE}")
+                chunk.append(row)
                 if len(chunk) >= size:
                     yield chunk
                     chunk = []
@@ -303,9 +308,29 @@ _LONG_RUN = b"0" * 19
 _BLOCK = 1 << 20
 
 
-def _plain_block(lines: list[bytes]) -> bool:
+def _plain_block(block: bytes) -> bool:
     """Whether no line of the block holds a run of 19 or more digits (see :func:`json_loads`)."""
-    return _LONG_RUN not in b"".join(lines).translate(_DIGITS_TO_ZERO)
+    return _LONG_RUN not in block.translate(_DIGITS_TO_ZERO)
+
+
+# JSON can write a UTF-16 surrogate as an escape (\ud800) without its pair; Python reads it into a
+# string that no UTF-8 file (the output, the service, the tokenizer's offsets) can hold. Such a row
+# is an error row, as the service answers such a text with 422, rather than a crash at write time.
+_SURROGATE_ESCAPE = b"\\ud"
+LONE_SURROGATE = (
+    "holds a lone surrogate (a \\uD800–\\uDFFF escape without its pair), which UTF-8 cannot hold; the row is not scored"
+)
+
+
+def lone_surrogate(row: Any, raw: bytes) -> bool:
+    """Whether a parsed JSON ``row`` holds a lone surrogate anywhere (a key or a value)."""
+    if _SURROGATE_ESCAPE not in raw.lower():
+        return False
+    try:
+        json.dumps(row, ensure_ascii=False).encode("utf-8")
+    except UnicodeEncodeError:
+        return True
+    return False
 
 
 def json_loads(raw: bytes) -> Any:

@@ -237,6 +237,9 @@ def score_file(
     err = stream or sys.stderr
     started = time.monotonic()
     check_output(output)
+    if output.exists() and source.exists() and os.path.samefile(output, source):
+        # The finished output is renamed over OUTPUT: the input would be lost, replaced by its scores.
+        raise InputError(f"{output}: --out names the input file itself; write the scores to another file")
     in_fmt = formats.detect(str(source), opts.input_format, "--input-format")
     out_fmt = formats.detect(str(output), opts.output_format, "--output-format")
     if opts.chunk_rows < 1:
