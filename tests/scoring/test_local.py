@@ -172,6 +172,20 @@ def test_rows_without_a_text_get_an_error_and_are_counted(
     assert sorted(p.name for p in tmp_path.iterdir()) == ["in.jsonl", "out.jsonl", "out.jsonl.meta.json"]
 
 
+def test_an_input_file_name_that_is_not_utf8_is_recorded_with_its_bytes_escaped(
+    scoring_registry: Path, tmp_path: Path
+) -> None:
+    """Linux file names are bytes; Python keeps the bytes that are not UTF-8 as lone surrogates,
+    which the UTF-8 metadata cannot hold (the run used to fail after the output was in place)."""
+    src = tmp_path / os.fsdecode(b"tickets-\xff.jsonl")
+    src.write_text(json.dumps({"text": "the chain is broken"}) + "\n", encoding="utf-8")
+    out = tmp_path / "out.jsonl"
+    assert score(src, "--model", MODEL, "--out", out, "--registry", scoring_registry, "--workers", 0) == 0
+    meta = json.loads((tmp_path / "out.jsonl.meta.json").read_text(encoding="utf-8"))
+    assert meta["input"].endswith("tickets-\\xff.jsonl")
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted([src.name, "out.jsonl", "out.jsonl.meta.json"])
+
+
 # -- bad input: one line, exit 2 (1 for a blob that fails its sha256), nothing written ---------------------
 def _tamper(registry: Path) -> None:
     from textsieve.registry import open_registry

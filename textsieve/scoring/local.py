@@ -430,7 +430,9 @@ def metadata(resolved: Resolved, layout: Layout, opts: Options, rows: int, error
         "spans": opts.spans,
         "rows": rows,
         "errors": errors,
-        "input": source,
+        # A file name that is not UTF-8 (bytes Python keeps as lone surrogates) is written with
+        # those bytes as \xNN, so the metadata stays UTF-8 JSON.
+        "input": os.fsencode(source).decode("utf-8", "backslashreplace"),
         **layout.describe(),
         "scored_at": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
         "textsieve_version": __version__,
