@@ -100,7 +100,16 @@ def test_predict_reads_a_generator_once_and_refuses_what_the_http_api_refuses(sc
     texts = ["the chain is broken", "refund please"]
     # A generator was emptied by the type check and gave no predictions at all.
     assert [p.label for p in model.predict(t for t in texts)] == [p.label for p in model.predict(texts)]
-    for bad, words in (([""], "texts[0] is empty"), (["ok", "  \n"], "texts[1] is empty"), (["ok", 3], "an int")):
+    for bad, words in (
+        ([""], "texts[0] is empty"),
+        (["ok", "  \n"], "texts[1] is empty"),
+        (["ok", 3], "an int"),
+        (["ok", "a\x00b"], "texts[1] contains a NUL character (U+0000) at character 1"),
+        (["caf\u00e9 \ud800"], "texts[0] contains a lone surrogate (U+D800) at character 5"),
+    ):
         with pytest.raises(InputError) as caught:
             model.predict(bad)
         assert words in str(caught.value)
+    for spans in (-1, 1.5, "2", True, None):
+        with pytest.raises(InputError, match="spans must be a whole number, 0 or more"):
+            model.predict(texts, spans=spans)  # type: ignore[arg-type]

@@ -101,8 +101,20 @@ class Model:
             if not t.strip():
                 # As the HTTP API answers (422): a label for no words would be the model's prior.
                 raise InputError(f"texts[{i}] is empty; every text needs something to classify")
-        if spans < 0:
-            raise InputError(f"spans must be 0 or more, not {spans}")
+            # The HTTP API's other refusals (service/web/schemas.py), in the same words.
+            nul = t.find("\x00")
+            if nul >= 0:
+                raise InputError(f"texts[{i}] contains a NUL character (U+0000) at character {nul}; remove it")
+            if not t.isascii():
+                try:
+                    t.encode("utf-8")
+                except UnicodeEncodeError as exc:
+                    raise InputError(
+                        f"texts[{i}] contains a lone surrogate (U+{ord(t[exc.start]):04X}) at "
+                        f"character {exc.start}; send valid Unicode"
+                    ) from None
+        if isinstance(spans, bool) or not isinstance(spans, int) or spans < 0:
+            raise InputError(f"spans must be a whole number, 0 or more, not {spans!r}")
         return self._predictor.predict(items, spans=spans)
 
     def score_frame(self, frame: pd.DataFrame, column: str = "text", *, spans: int = 0) -> pd.DataFrame:
