@@ -129,8 +129,23 @@ def _ansi(stream: TextIO) -> bool:
     return stream.isatty() and not os.environ.get("NO_COLOR")
 
 
-def cli_predict(args: argparse.Namespace) -> int:
+def _utf8_argument(value: str, what: str) -> str:
+    """``value`` as given on the command line; bytes that are not UTF-8 (which Python keeps as lone
+    surrogates) cannot go into a JSON request: one line saying so, not httpx's UnicodeEncodeError."""
+    try:
+        value.encode("utf-8")
+    except UnicodeEncodeError as exc:
+        raise InputError(
+            f"{what} is not valid UTF-8 (bytes that do not decode at character {exc.start}); pass UTF-8 text"
+        ) from None
+    return value
 
+
+def cli_predict(args: argparse.Namespace) -> int:
+    for i, text in enumerate(args.texts):
+        _utf8_argument(text, f"text {i + 1}")
+    if args.model:
+        _utf8_argument(args.model, "--model")
     base = _base(service_url(args.url))
     payload: dict[str, Any] = {"texts": list(args.texts), "spans": args.spans}
     if args.model:

@@ -60,6 +60,12 @@ def test_a_service_address_needs_http_and_a_host(url: str) -> None:
         service_url(environ={"TEXTSIEVE_URL": url})
 
 
+@pytest.mark.parametrize("url", ["http://127.0.0.1:99999", "http://h:80x", "http://h:-1"])
+def test_a_service_address_needs_a_port_that_is_a_port(url: str) -> None:
+    with pytest.raises(ValueError, match="the port is not a number from 1 to 65535"):
+        check_url(url)
+
+
 @pytest.mark.parametrize("url", ["http://127.0.0.1:8000", "https://sieve.example/base/", "http://[::1]:9"])
 def test_service_addresses_that_pass(url: str) -> None:
     assert check_url(url) == url

@@ -51,6 +51,10 @@ def check_url(value: str) -> str:
     parts = urlsplit(value)
     if parts.scheme not in URL_SCHEMES or not parts.netloc:
         raise ValueError(f"not an http:// or https:// address with a host, e.g. {DEFAULT_URL}")
+    try:
+        parts.port  # noqa: B018 - urllib checks the port (a number from 0 to 65535) when it is read
+    except ValueError:
+        raise ValueError(f"the port is not a number from 1 to 65535, e.g. {DEFAULT_URL}") from None
     return value
 
 

@@ -40,6 +40,16 @@ def test_health_ready_and_unreachable(live_url: str) -> None:
     assert "HTTP 404" in elsewhere.stdout and "--url is the service's address" in elsewhere.stdout
 
 
+def test_predict_arguments_that_are_not_utf8_are_one_line_and_exit_2() -> None:
+    """Linux arguments are bytes; ones that do not decode cannot go into a JSON request."""
+    import os
+
+    for args in ([os.fsdecode(b"tomato\xffsoil")], ["--model", os.fsdecode(b"m\xff"), "hello"]):
+        out = run("predict", "--url", "http://127.0.0.1:9", *args)
+        assert out.returncode == 2, out.stderr
+        assert out.stderr.count("\n") == 1 and "is not valid UTF-8" in out.stderr, out.stderr
+
+
 def test_predict_prints_label_probabilities_and_marked_spans(live_url: str) -> None:
     text = "I was charged twice for one ride"
     out = run("predict", "--url", live_url, "--spans", "2", text)
