@@ -64,6 +64,14 @@ def check_graph(bundle: Path, manifest: Manifest) -> None:
         }
         if have != expected:
             raise BundleError(f"{path}: {kind}s are {have}, expected {expected}")
+    logits = next(v for v in model.graph.output if v.name == "logits")
+    dims = logits.type.tensor_type.shape.dim
+    classes = dims[-1].dim_value if len(dims) == 2 and dims[-1].HasField("dim_value") else None
+    if classes != len(manifest.labels):
+        raise BundleError(
+            f"{path}: the graph scores {classes if classes is not None else 'an unknown number of'} classes, "
+            f"the manifest names {len(manifest.labels)} labels ({', '.join(manifest.labels)[:200]})"
+        )
     listed_in = {t.name: t.dtype for t in manifest.onnx.inputs}
     listed_out = {t.name: t.dtype for t in manifest.onnx.outputs}
     if listed_in != INPUTS or listed_out != OUTPUTS:

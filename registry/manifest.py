@@ -28,7 +28,8 @@ _SHA256 = r"^[0-9a-f]{64}$"
 
 
 class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    # Every number a manifest records is finite: NaN would also never equal itself on re-reading.
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
 
 
 class VocabularyInfo(_Strict):
@@ -123,11 +124,11 @@ class ParityReport(_Strict):
 
 class Metrics(_Strict):
     split: str
-    texts: int
-    accuracy: float
-    macro_f1: float
-    ece: float
-    nll: float
+    texts: int = Field(ge=0)
+    accuracy: float = Field(ge=0, le=1)
+    macro_f1: float = Field(ge=0, le=1)
+    ece: float = Field(ge=0, le=1)
+    nll: float = Field(ge=0)
 
 
 class TrainingInfo(_Strict):
@@ -170,6 +171,12 @@ class Manifest(_Strict):
             raise ValueError("labels must be unique")
         if any(not label.strip() for label in v):
             raise ValueError("labels must be non-empty")
+        from textsieve.labelled import label_problem
+
+        for label in v:  # the rules training applies to the labels it reads
+            problem = label_problem(label)
+            if problem is not None:
+                raise ValueError(f"label {label!r} {problem}")
         return v
 
     @field_validator("files")

@@ -135,13 +135,13 @@ class _Fields:
             )
         if not label.strip():
             raise self._fail(where, f"the {self.label_field!r} field is empty; every row needs a label")
-        why = _label_problem(label)
+        why = label_problem(label)
         if why:
             raise self._fail(where, f"the label {label!r} {why}")
         return Example(text, label)
 
 
-def _label_problem(label: str) -> str | None:
+def label_problem(label: str) -> str | None:
     """Why a label cannot name a class, or None. A label becomes a JSON key, a CSV and Parquet column
     name (``probability:LABEL``), a metric's label value and a line of the CLI's tables, and labels are
     compared exactly, so it holds no control characters (line breaks, tabs) and no spaces at its ends."""
@@ -239,4 +239,4 @@ def _show(delimiter: str) -> str:
     return "tabs" if delimiter == "\t" else repr(delimiter)
 
 
-__all__ = ["CSV_SUFFIXES", "JSON_SUFFIXES", "Example", "check_labels", "load_examples"]
+__all__ = ["CSV_SUFFIXES", "JSON_SUFFIXES", "Example", "check_labels", "label_problem", "load_examples"]

@@ -133,6 +133,22 @@ BAD_BUNDLES = [
         id="parity beyond tolerance",
     ),
     pytest.param(lambda b: edit_manifest(b, {"vocabulary.size": 3}), "vocab.txt has", id="vocabulary size"),
+    pytest.param(
+        lambda b: edit_manifest(b, {"labels": ["x", "y", "z"]}),
+        "the graph scores 4 classes, the manifest names 3 labels",
+        id="labels fewer than the graph's classes",
+    ),
+    pytest.param(
+        lambda b: edit_manifest(b, {"labels": ["a\nb", "c", "d", "e"]}),
+        "holds a control character (U+000A)",
+        id="a label with a line break",
+    ),
+    pytest.param(
+        lambda b: edit_manifest(b, {"metrics.accuracy": float("nan")}),
+        "metrics.accuracy: Input should be a finite number",
+        id="NaN accuracy",  # it read as 'manifest.json changed while it was being checked' (NaN != NaN)
+    ),
+    pytest.param(lambda b: edit_manifest(b, {"metrics.macro_f1": 5.0}), "metrics.macro_f1", id="macro-F1 above 1"),
 ]
 
 
