@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import datetime as dt
 import hashlib
+import math
 import os
 import time
 from collections.abc import Callable
@@ -218,8 +219,9 @@ class Registry:
         refers to them, and reusing an old blob makes it recent again, so a publish running
         alongside never loses a blob it is about to record.
         """
-        if older_than < 0:
-            raise InputError(f"older_than must be zero or more seconds, got {older_than}")
+        if not math.isfinite(older_than) or older_than < 0:
+            # NaN compares false with every mtime, so it would delete blobs a publish is about to record.
+            raise InputError(f"older_than {older_than!r}: give a finite number of seconds, 0 or more")
         cutoff = time.time() - older_than
         stored = list(self.blobs.stored())  # listed before the references are read: see above
         with self.backend.read() as tx:

@@ -11,6 +11,7 @@ press of TAB when completing), so the registry itself is imported inside the han
 from __future__ import annotations
 
 import argparse
+import math
 import sys
 from collections.abc import Sequence
 from pathlib import Path
@@ -561,6 +562,11 @@ def _short(text: str, limit: int = 48) -> str:
 
 # -- helpers ------------------------------------------------------------------------------
 def cli_gc(args: argparse.Namespace) -> int:
+    if not math.isfinite(args.older_than) or args.older_than < 0:
+        raise InputError(
+            f"--older-than {args.older_than:g}: give a number of seconds, 0 or more "
+            "(0 deletes every unreferenced blob, the default 3600 spares the last hour's)"
+        )
     with _open(args) as reg:
         report = reg.collect_garbage(older_than=args.older_than, dry_run=args.dry_run)
     verb = "would delete" if report.dry_run else "deleted"

@@ -137,6 +137,9 @@ def test_a_refused_gate_exits_1_naming_the_gate_and_figures(
         pytest.param(["publish", "/nonexistent/bundle", "--model", "m"], "not a folder", id="publish no folder"),
         pytest.param(["evalset", "add", "m", "/nonexistent.jsonl"], "no such file", id="evaluation set missing"),
         pytest.param(["rollback", "m", "--reason", "x"], "no live version", id="rollback with nothing live"),
+        pytest.param(["gc", "--older-than", "nan"], "--older-than nan: give a number of seconds", id="gc nan"),
+        pytest.param(["gc", "--older-than", "inf"], "--older-than inf: give a number of seconds", id="gc inf"),
+        pytest.param(["gc", "--older-than", "-1"], "--older-than -1: give a number of seconds", id="gc negative"),
     ],
 )
 def test_bad_input_exits_2_with_one_line(
@@ -188,13 +191,18 @@ def test_gc_deletes_old_unreferenced_blobs_and_says_so(tmp_path: Path, tiny_bund
         reg.publish(tiny_bundles["a"], "m", actor="tests")
         orphan = reg.blobs.put_bytes(b"orphan")
         os.utime(reg.blobs.path(orphan), (time.time() - 7200,) * 2)
+        young = reg.blobs.put_bytes(b"a publish in progress")
     args = ["gc", "--registry", str(tmp_path / "reg")]
+    # NaN compares false with every time, so it once spared nothing; it is refused like a negative age.
+    assert main([*args, "--older-than", "nan"]) == 2
+    with open_registry(tmp_path / "reg") as reg:
+        assert reg.blobs.has(orphan) and reg.blobs.has(young)
     assert main([*args, "--dry-run"]) == 0
     with open_registry(tmp_path / "reg") as reg:
         assert reg.blobs.has(orphan)
     assert main(args) == 0
     with open_registry(tmp_path / "reg") as reg:
-        assert not reg.blobs.has(orphan)
+        assert not reg.blobs.has(orphan) and reg.blobs.has(young)
         reg.fetch("m", 1)
     assert main([*args, "--older-than", "-1"]) == 2
 
