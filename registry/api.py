@@ -240,8 +240,13 @@ class Registry:
             removed.append(digest)
             removed_bytes += size
         temporary = 0 if dry_run else self.blobs.sweep_temporary(older_than=max(older_than, 60.0))
+        present = {digest for digest, _, _ in stored}
+        # A publish alongside may have stored and recorded blobs since the listing: look again.
+        missing = [digest for digest in referenced - present if not self.blobs.has(digest)]
         return GarbageReport(
             referenced=len(referenced),
+            missing=len(missing),
+            blob_folder_missing=not self.blobs.exists(),
             removed=sorted(removed),
             removed_bytes=removed_bytes,
             spared_recent=spared,

@@ -18,7 +18,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
 from textsieve.environment import DEFAULT_REGISTRY, registry_location
-from textsieve.errors import GateRefusedError, InputError, NotFoundError
+from textsieve.errors import GateRefusedError, InputError, IntegrityError, NotFoundError
 
 if TYPE_CHECKING:
     from textsieve.registry.api import Registry
@@ -569,15 +569,29 @@ def cli_gc(args: argparse.Namespace) -> int:
         )
     with _open(args) as reg:
         report = reg.collect_garbage(older_than=args.older_than, dry_run=args.dry_run)
+        folder = reg.blobs.root
     verb = "would delete" if report.dry_run else "deleted"
     rows = [[digest[:16] + "…"] for digest in report.removed]
     if rows:
         _out(table(["UNREFERENCED BLOB"], rows))
+    kept = f"kept {report.referenced - report.missing} referenced"
+    if report.missing:
+        kept += f", {report.missing} referenced missing"
     _out(
-        f"{verb} {len(report.removed)} unreferenced blobs ({report.removed_bytes} bytes); kept {report.referenced} "
-        f"referenced; spared {report.spared_recent} younger than {args.older_than:g} s; "
+        f"{verb} {len(report.removed)} unreferenced blobs ({report.removed_bytes} bytes); {kept}; "
+        f"spared {report.spared_recent} younger than {args.older_than:g} s; "
         f"{report.temporary_removed} temporary files removed"
     )
+    if report.blob_folder_missing and report.missing:
+        raise IntegrityError(
+            f"the blob folder {folder} is missing, so every referenced blob ({report.missing}) is missing and no "
+            "version can be fetched or served; restore the folder from a backup"
+        )
+    if report.missing:
+        raise IntegrityError(
+            f"{report.missing} of {report.referenced} referenced blobs are missing from {folder}; versions "
+            "that use them cannot be fetched or served; restore them from a backup"
+        )
     return 0
 
 

@@ -207,6 +207,43 @@ def test_gc_deletes_old_unreferenced_blobs_and_says_so(tmp_path: Path, tiny_bund
     assert main([*args, "--older-than", "-1"]) == 2
 
 
+@pytest.mark.parametrize("dry_run", [[], ["--dry-run"]], ids=["gc", "gc --dry-run"])
+def test_gc_on_a_damaged_blob_folder_says_what_is_wrong_in_one_line(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path], dry_run: list[str]
+) -> None:
+    import shutil
+
+    from textsieve.registry import open_registry
+
+    with open_registry(tmp_path / "reg") as reg:
+        referenced = len(reg.publish(tiny_bundles["a"], "m", actor="tests").files)
+    blobs = tmp_path / "reg" / "blobs"
+    args = ["gc", *dry_run, "--registry", str(tmp_path / "reg")]
+
+    one = blobs / sorted(p.name for p in blobs.iterdir())[0]
+    one.rename(tmp_path / "aside")
+    code, out, err = run(capsys, *args)
+    assert code == 1 and f"kept {referenced - 1} referenced, 1 referenced missing;" in out
+    assert err == (
+        f"textsieve: error: 1 of {referenced} referenced blobs are missing from {blobs}; versions that "
+        "use them cannot be fetched or served; restore them from a backup\n"
+    )
+
+    shutil.rmtree(blobs)
+    code, out, err = run(capsys, *args)
+    assert code == 1 and f"kept 0 referenced, {referenced} referenced missing;" in out
+    assert len(err.splitlines()) == 1, err
+    assert f"the blob folder {blobs} is missing, so every referenced blob ({referenced}) is missing" in err
+
+    blobs.write_bytes(b"")  # a file where the folder should be: it once ended in NotADirectoryError's traceback
+    code, out, err = run(capsys, *args)
+    assert (code, out) == (2, "")
+    assert err == (
+        f"textsieve: error: {blobs}: not a folder, but the registry keeps its blobs there; move it aside "
+        "and put the blob folder back in its place\n"
+    )
+
+
 def test_gates_shows_and_changes_settings_with_a_reason(
     capsys: pytest.CaptureFixture[str], spec: RegistrySpec, tiny_bundles: dict[str, Path]
 ) -> None:
