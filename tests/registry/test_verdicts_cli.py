@@ -100,6 +100,17 @@ def test_deletion_by_id_and_date_is_audited_and_needs_a_reason(
     ("argv", "expected_msg"),
     [
         pytest.param(["--delete-before", "last tuesday", "--reason", "x"], "bad date 'last tuesday'", id="bad-date"),
+        pytest.param(
+            ["--delete-before", "9999-12-31T23:00:00-05:00", "--reason", "x"],
+            "date '9999-12-31T23:00:00-05:00' is out of range: in UTC it must fall from 0001-01-01T00:00:00Z to "
+            "9999-12-31T23:59:59Z",
+            id="after-year-9999-in-utc",
+        ),
+        pytest.param(
+            ["--delete-before", "0001-01-01T00:30:00+01:00", "--reason", "x"],
+            "date '0001-01-01T00:30:00+01:00' is out of range",
+            id="before-year-1-in-utc",
+        ),
         pytest.param(["--export", "out.csv"], "name the file .jsonl", id="export-suffix"),
         pytest.param(["--export", "x.jsonl", "--delete", "1", "--reason", "x"], "separate runs", id="both"),
         pytest.param(["--last", "-1"], "--last -1", id="negative-last"),
