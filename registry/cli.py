@@ -23,7 +23,7 @@ from textsieve.errors import GateRefusedError, InputError, IntegrityError, NotFo
 if TYPE_CHECKING:
     from textsieve.registry.api import Registry
     from textsieve.registry.model_settings import ModelSettings, SettingValue
-    from textsieve.registry.records import Event, GateResult
+    from textsieve.registry.records import Agreement, Event, GateResult
 
 NONE = "-"
 
@@ -500,12 +500,12 @@ def cli_verdicts(args: argparse.Namespace) -> int:
         agreement = reg.verdicts.agreement(args.model)
     if args.export is not None:
         if not verdicts:
-            raise InputError(f"no verdicts on {args.model!r} to export; nothing written to {args.export}")
+            raise InputError(f"{_no_verdicts(args, agreement)}; nothing written to {args.export}")
         n = export_jsonl(verdicts, args.export)
         _out(f"wrote {n} verdicts to {args.export} (text, label: the reviewer's label)")
         return 0
     if not verdicts:
-        _out(f"no verdicts on {args.model!r} yet; reviewers record them on the service's page (GET /)")
+        _out(f"{_no_verdicts(args, agreement)}; reviewers record them on the service's page (GET /)")
         return 0
     shown = verdicts[-args.last :] if args.last else []
     if shown:
@@ -553,6 +553,15 @@ def cli_verdicts(args: argparse.Namespace) -> int:
         "of live accuracy over the texts reviewers chose to judge, not a random sample"
     )
     return 0
+
+
+def _no_verdicts(args: argparse.Namespace, agreement: Sequence[Agreement]) -> str:
+    """Why the listing is empty: no verdicts at all, or none on the version asked for (and which have some)."""
+    if args.version is None or not agreement:
+        return f"no verdicts on {args.model!r} yet"
+    judged = [a.version for a in agreement]
+    which = f"version {judged[0]} has" if len(judged) == 1 else f"versions {', '.join(map(str, judged))} have"
+    return f"no verdicts on version {args.version} of {args.model!r} yet ({which} some)"
 
 
 def _short(text: str, limit: int = 48) -> str:
