@@ -2,11 +2,16 @@
 
 from __future__ import annotations
 
+import os
 import re
+import shutil
+import subprocess
+import sys
 from pathlib import Path
 
 import pytest
 
+from tests.helpers.environment import child_env
 from tests.helpers.registries import RegistrySpec
 from textsieve.cli import main
 from textsieve.registry.cli import table
@@ -178,6 +183,90 @@ def test_an_empty_registry_lists_no_models(capsys: pytest.CaptureFixture[str], t
     open_registry(tmp_path / "reg").close()
     code, out, _ = run(capsys, "models", "--registry", str(tmp_path / "reg"))
     assert code == 0 and "no models yet" in out
+
+
+def _as_a_user_bound_by_file_modes(path: Path) -> list[str]:
+    """A command prefix under which ``path``'s mode binds: as root, setpriv (util-linux) drops the
+    capabilities that override file modes (capabilities(7): CAP_DAC_OVERRIDE, CAP_DAC_READ_SEARCH)."""
+    prefix: list[str] = []
+    if os.geteuid() == 0:
+        setpriv = shutil.which("setpriv")
+        if setpriv is None:
+            pytest.skip("running as root, and setpriv (util-linux) is not there to drop root's override of file modes")
+        drop = "-dac_override,-dac_read_search"
+        prefix = [setpriv, f"--bounding-set={drop}", f"--inh-caps={drop}"]
+    probe = "import os, sys; sys.exit(3 if os.access(sys.argv[1], os.W_OK) else 0)"
+    if subprocess.run([*prefix, sys.executable, "-c", probe, str(path)], timeout=60, check=False).returncode:
+        pytest.skip(f"{path} stays writable for this user whatever its mode")
+    return prefix
+
+
+@pytest.mark.parametrize(
+    ("read_only", "journal", "argv", "expected_msg"),
+    [
+        pytest.param(
+            ".",
+            False,
+            ["models"],
+            "the registry folder is not writable, and SQLite writes beside the database even to read it "
+            "(its lock and journal files registry.sqlite3-shm and registry.sqlite3-wal); make the folder writable "
+            "for this user, or copy the registry folder somewhere writable and point --registry",
+            id="folder",
+        ),
+        pytest.param(
+            # As in a copy taken while a server had the registry open; SQLite said "unable to open database file".
+            ".",
+            True,
+            ["models"],
+            "the registry folder is not writable, and SQLite writes beside the database even to read it",
+            id="folder-with-a-journal",
+        ),
+        pytest.param(
+            "registry.sqlite3",
+            False,
+            ["review-threshold", "m", "--set", "0.5", "--reason", "x"],
+            "registry.sqlite3: the registry database file is not writable, so the registry cannot be changed; "
+            "make it writable for this user, or copy the registry folder",
+            id="database-file",
+        ),
+    ],
+)
+def test_a_read_only_registry_is_one_line_saying_what_to_make_writable(
+    tmp_path: Path, tiny_bundles: dict[str, Path], read_only: str, journal: bool, argv: list[str], expected_msg: str
+) -> None:
+    from textsieve.registry import open_registry
+
+    reg = tmp_path / "reg"
+    with open_registry(reg) as registry:
+        registry.publish(tiny_bundles["a"], "m", actor="tests")
+    if journal:
+        (reg / "registry.sqlite3-wal").touch()
+    target = reg / read_only
+    mode = target.stat().st_mode
+    target.chmod(0o555 if target.is_dir() else 0o444)
+    try:
+        done = subprocess.run(
+            [
+                *_as_a_user_bound_by_file_modes(target),
+                sys.executable,
+                "-m",
+                "textsieve.cli",
+                *argv,
+                "--registry",
+                str(reg),
+            ],
+            capture_output=True,
+            text=True,
+            timeout=120,
+            env=child_env(),
+            check=False,
+        )
+    finally:
+        target.chmod(mode)
+    # UnavailableError's status, as for a registry that cannot be reached (textsieve/errors.py).
+    assert (done.returncode, done.stdout) == (1, ""), done.stderr
+    assert len(done.stderr.splitlines()) == 1 and done.stderr.startswith("textsieve: error: "), done.stderr
+    assert expected_msg in done.stderr, done.stderr
 
 
 def test_gc_deletes_old_unreferenced_blobs_and_says_so(tmp_path: Path, tiny_bundles: dict[str, Path]) -> None:
