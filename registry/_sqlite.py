@@ -21,7 +21,7 @@ from textsieve.registry._db import Backend, Params, Row, Tx
 BUSY_TIMEOUT_S = 30.0
 
 
-def translate(exc: sqlite3.Error, where: str) -> RegistryError | UnavailableError:
+def translate(exc: sqlite3.Error, where: str, path: Path | None = None) -> RegistryError | UnavailableError:
     text = str(exc)
     if isinstance(exc, sqlite3.IntegrityError):
         return StateError(f"{where}: the change conflicts with the registry's rules ({text})")
@@ -29,9 +29,40 @@ def translate(exc: sqlite3.Error, where: str) -> RegistryError | UnavailableErro
         return UnavailableError(
             f"{where}: the registry database stayed locked by another writer for {BUSY_TIMEOUT_S:.0f} s; try again"
         )
+    if isinstance(exc, sqlite3.OperationalError) and ("readonly" in text or "unable to open" in text):
+        unwritable = None if path is None else _unwritable(path)
+        if unwritable is not None:
+            return UnavailableError(unwritable)
     if isinstance(exc, sqlite3.OperationalError) and "unable to open" in text:
         return UnavailableError(f"{where}: cannot open the registry database ({text})")
     return RegistryError(f"{where}: registry database error: {text}")
+
+
+def _unwritable(path: Path) -> str | None:
+    """What this process may not write for SQLite to use the database at ``path``, and what to do; None if nothing."""
+    # SQLite's own message ("unable to open database file", "attempt to write a readonly database")
+    # names neither the folder nor the file, and a reader does not expect to need write access at all.
+    folder = path.parent
+    copy = "or copy the registry folder somewhere writable and point --registry (or TEXTSIEVE_REGISTRY) at the copy"
+    if not os.access(folder, os.W_OK):
+        return (
+            f"{folder}: the registry folder is not writable, and SQLite writes beside the database even to read it "
+            f"(its lock and journal files {path.name}-shm and {path.name}-wal); make the folder writable for this "
+            f"user, {copy}"
+        )
+    if path.exists() and not os.access(path, os.W_OK):
+        return (
+            f"{path}: the registry database file is not writable, so the registry cannot be changed; make it "
+            f"writable for this user, {copy}"
+        )
+    for name in (f"{path.name}-wal", f"{path.name}-shm"):
+        file = folder / name
+        if file.exists() and not os.access(file, os.W_OK):
+            return (
+                f"{file}: SQLite's journal or lock file is not writable, and SQLite writes to it to use the "
+                f"database; make it writable for this user, {copy}"
+            )
+    return None
 
 
 class _SqliteTx(Tx):
@@ -83,7 +114,7 @@ class SqliteBackend(Backend):
                 conn.execute("PRAGMA synchronous=FULL")
                 conn.execute("PRAGMA foreign_keys=ON")
             except sqlite3.Error as exc:
-                raise translate(exc, self.description) from exc
+                raise translate(exc, self.description, self.path) from exc
             self._conn, self._pid = conn, os.getpid()
         return self._conn
 
@@ -106,21 +137,21 @@ class SqliteBackend(Backend):
         try:
             conn.execute(begin)
         except sqlite3.Error as exc:
-            raise translate(exc, self.description) from exc
+            raise translate(exc, self.description, self.path) from exc
         try:
             yield _SqliteTx(conn)
         except BaseException as exc:
             with contextlib.suppress(sqlite3.Error):
                 conn.execute("ROLLBACK")
             if isinstance(exc, sqlite3.Error):
-                raise translate(exc, self.description) from exc
+                raise translate(exc, self.description, self.path) from exc
             raise
         try:
             conn.execute("COMMIT")
         except sqlite3.Error as exc:
             with contextlib.suppress(sqlite3.Error):
                 conn.execute("ROLLBACK")
-            raise translate(exc, self.description) from exc
+            raise translate(exc, self.description, self.path) from exc
 
     def read(self) -> contextlib.AbstractContextManager[Tx]:
         return self._transaction("BEGIN DEFERRED")

@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import datetime as dt
 import hashlib
+import math
 import os
 import time
 from collections.abc import Callable
@@ -219,8 +220,9 @@ class Registry:
         refers to them, and reusing an old blob makes it recent again, so a publish running
         alongside never loses a blob it is about to record.
         """
-        if older_than < 0:
-            raise InputError(f"older_than must be zero or more seconds, got {older_than}")
+        if not math.isfinite(older_than) or older_than < 0:
+            # NaN compares false with every mtime, so it would delete blobs a publish is about to record.
+            raise InputError(f"older_than {older_than!r}: give a finite number of seconds, 0 or more")
         cutoff = time.time() - older_than
         stored = list(self.blobs.stored())  # listed before the references are read: see above
         with self.backend.read() as tx:
@@ -239,8 +241,13 @@ class Registry:
             removed.append(digest)
             removed_bytes += size
         temporary = 0 if dry_run else self.blobs.sweep_temporary(older_than=max(older_than, 60.0))
+        present = {digest for digest, _, _ in stored}
+        # A publish alongside may have stored and recorded blobs since the listing: look again.
+        missing = [digest for digest in referenced - present if not self.blobs.has(digest)]
         return GarbageReport(
             referenced=len(referenced),
+            missing=len(missing),
+            blob_folder_missing=not self.blobs.exists(),
             removed=sorted(removed),
             removed_bytes=removed_bytes,
             spared_recent=spared,

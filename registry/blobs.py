@@ -41,8 +41,32 @@ class BlobStore:
     def ensure(self) -> None:
         try:
             self.root.mkdir(parents=True, exist_ok=True)
+        except FileExistsError as exc:
+            raise self._not_a_folder() from exc
         except OSError as exc:
             raise RegistryError(f"{self.root}: cannot create the blob folder ({exc.strerror})") from exc
+
+    def exists(self) -> bool:
+        """Whether the blob folder is there (a registry with nothing published yet has none)."""
+        return self.root.is_dir()
+
+    def _not_a_folder(self) -> RegistryError:
+        return RegistryError(
+            f"{self.root}: not a folder, but the registry keeps its blobs there; move it aside and put the "
+            "blob folder back in its place"
+        )
+
+    def _entries(self) -> Iterator[os.DirEntry[str]]:
+        """The blob folder's entries; none when the folder is missing."""
+        try:
+            with os.scandir(self.root) as entries:
+                yield from entries
+        except FileNotFoundError:
+            return
+        except NotADirectoryError as exc:
+            raise self._not_a_folder() from exc
+        except OSError as exc:
+            raise RegistryError(f"{self.root}: cannot list the blob folder ({exc.strerror})") from exc
 
     def path(self, digest: str) -> Path:
         return self.root / _check_digest(digest)
@@ -113,12 +137,11 @@ class BlobStore:
 
     def stored(self) -> Iterator[tuple[str, float, int]]:
         """(digest, mtime, size) of every blob; temporary files and foreign names are skipped."""
-        with contextlib.suppress(FileNotFoundError):
-            for entry in os.scandir(self.root):
-                if _SHA256.fullmatch(entry.name) and entry.is_file(follow_symlinks=False):
-                    with contextlib.suppress(FileNotFoundError):
-                        st = entry.stat(follow_symlinks=False)
-                        yield entry.name, st.st_mtime, st.st_size
+        for entry in self._entries():
+            if _SHA256.fullmatch(entry.name) and entry.is_file(follow_symlinks=False):
+                with contextlib.suppress(FileNotFoundError):
+                    st = entry.stat(follow_symlinks=False)
+                    yield entry.name, st.st_mtime, st.st_size
 
     def remove_if_older(self, digest: str, cutoff: float) -> bool:
         """Remove the blob unless it changed or was reused (touched) after ``cutoff``; True if removed."""
@@ -197,13 +220,12 @@ class BlobStore:
         """Remove temporary files left by writers that were killed; returns how many."""
         removed = 0
         cutoff = time.time() - older_than
-        with contextlib.suppress(FileNotFoundError):
-            for entry in os.scandir(self.root):
-                if entry.name.startswith(_TMP_PREFIX):
-                    with contextlib.suppress(FileNotFoundError):
-                        if entry.stat().st_mtime < cutoff:
-                            os.unlink(entry.path)
-                            removed += 1
+        for entry in self._entries():
+            if entry.name.startswith(_TMP_PREFIX):
+                with contextlib.suppress(FileNotFoundError):
+                    if entry.stat().st_mtime < cutoff:
+                        os.unlink(entry.path)
+                        removed += 1
         return removed
 
 

@@ -11,18 +11,19 @@ press of TAB when completing), so the registry itself is imported inside the han
 from __future__ import annotations
 
 import argparse
+import math
 import sys
 from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
 from textsieve.environment import DEFAULT_REGISTRY, registry_location
-from textsieve.errors import GateRefusedError, InputError, NotFoundError, SavedThenInterrupted
+from textsieve.errors import GateRefusedError, InputError, IntegrityError, NotFoundError, SavedThenInterrupted
 
 if TYPE_CHECKING:
     from textsieve.registry.api import Registry
     from textsieve.registry.model_settings import ModelSettings, SettingValue
-    from textsieve.registry.records import Event, GateResult
+    from textsieve.registry.records import Agreement, Event, GateResult
 
 NONE = "-"
 
@@ -514,12 +515,12 @@ def cli_verdicts(args: argparse.Namespace) -> int:
         agreement = reg.verdicts.agreement(args.model)
     if args.export is not None:
         if not verdicts:
-            raise InputError(f"no verdicts on {args.model!r} to export; nothing written to {args.export}")
+            raise InputError(f"{_no_verdicts(args, agreement)}; nothing written to {args.export}")
         n = export_jsonl(verdicts, args.export)
         _out(f"wrote {n} verdicts to {args.export} (text, label: the reviewer's label)")
         return 0
     if not verdicts:
-        _out(f"no verdicts on {args.model!r} yet; reviewers record them on the service's page (GET /)")
+        _out(f"{_no_verdicts(args, agreement)}; reviewers record them on the service's page (GET /)")
         return 0
     shown = verdicts[-args.last :] if args.last else []
     if shown:
@@ -569,6 +570,15 @@ def cli_verdicts(args: argparse.Namespace) -> int:
     return 0
 
 
+def _no_verdicts(args: argparse.Namespace, agreement: Sequence[Agreement]) -> str:
+    """Why the listing is empty: no verdicts at all, or none on the version asked for (and which have some)."""
+    if args.version is None or not agreement:
+        return f"no verdicts on {args.model!r} yet"
+    judged = [a.version for a in agreement]
+    which = f"version {judged[0]} has" if len(judged) == 1 else f"versions {', '.join(map(str, judged))} have"
+    return f"no verdicts on version {args.version} of {args.model!r} yet ({which} some)"
+
+
 def _short(text: str, limit: int = 48) -> str:
     flat = " ".join(text.split())
     return flat if len(flat) <= limit else flat[: limit - 1] + "…"
@@ -576,17 +586,36 @@ def _short(text: str, limit: int = 48) -> str:
 
 # -- helpers ------------------------------------------------------------------------------
 def cli_gc(args: argparse.Namespace) -> int:
+    if not math.isfinite(args.older_than) or args.older_than < 0:
+        raise InputError(
+            f"--older-than {args.older_than:g}: give a number of seconds, 0 or more "
+            "(0 deletes every unreferenced blob, the default 3600 spares the last hour's)"
+        )
     with _open(args) as reg:
         report = reg.collect_garbage(older_than=args.older_than, dry_run=args.dry_run)
+        folder = reg.blobs.root
     verb = "would delete" if report.dry_run else "deleted"
     rows = [[digest[:16] + "…"] for digest in report.removed]
     if rows:
         _out(table(["UNREFERENCED BLOB"], rows))
+    kept = f"kept {report.referenced - report.missing} referenced"
+    if report.missing:
+        kept += f", {report.missing} referenced missing"
     _out(
-        f"{verb} {len(report.removed)} unreferenced blobs ({report.removed_bytes} bytes); kept {report.referenced} "
-        f"referenced; spared {report.spared_recent} younger than {args.older_than:g} s; "
+        f"{verb} {len(report.removed)} unreferenced blobs ({report.removed_bytes} bytes); {kept}; "
+        f"spared {report.spared_recent} younger than {args.older_than:g} s; "
         f"{report.temporary_removed} temporary files removed"
     )
+    if report.blob_folder_missing and report.missing:
+        raise IntegrityError(
+            f"the blob folder {folder} is missing, so every referenced blob ({report.missing}) is missing and no "
+            "version can be fetched or served; restore the folder from a backup"
+        )
+    if report.missing:
+        raise IntegrityError(
+            f"{report.missing} of {report.referenced} referenced blobs are missing from {folder}; versions "
+            "that use them cannot be fetched or served; restore them from a backup"
+        )
     return 0
 
 

@@ -33,6 +33,8 @@ class GarbageReport(_Record):
     """What a garbage collection of the blob folder found and removed."""
 
     referenced: int = Field(description="blobs a version or an evaluation set refers to (all kept)")
+    missing: int = Field(description="referenced blobs that are not in the blob folder (a damaged registry)")
+    blob_folder_missing: bool = Field(description="the blob folder itself is missing: every referenced blob is")
     removed: list[str] = Field(description="sha256 of the unreferenced blobs removed (or, dry run, to remove)")
     removed_bytes: int
     spared_recent: int = Field(description="unreferenced blobs younger than the grace period, kept for now")

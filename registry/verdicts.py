@@ -70,8 +70,14 @@ def utc_cutoff(text: str) -> str:
         ) from None
     if moment.tzinfo is None:
         moment = moment.replace(tzinfo=dt.UTC)
+    try:
+        utc = moment.astimezone(dt.UTC)
+    except OverflowError:  # e.g. 9999-12-31T23:00:00-05:00 is in year 10000 in UTC
+        raise InputError(
+            f"date {text[:40]!r} is out of range: in UTC it must fall from 0001-01-01T00:00:00Z to 9999-12-31T23:59:59Z"
+        ) from None
     # Stored times are isoformat(timespec="microseconds") in UTC, so the same spelling compares as text.
-    return moment.astimezone(dt.UTC).isoformat(timespec="microseconds")
+    return utc.isoformat(timespec="microseconds")
 
 
 def check_text(text: object) -> str:

@@ -59,6 +59,36 @@ def test_a_usage_error_points_at_the_verbs_own_help(capsys: pytest.CaptureFixtur
     assert len(err) == 1 and err[0].endswith("(see 'textsieve evalset add --help')"), err
 
 
+@pytest.mark.parametrize(
+    ("argv", "expected"),
+    [
+        pytest.param(
+            ["evalset"],
+            "textsieve: error: the following arguments are required: command (choose from 'add') "
+            "(see 'textsieve evalset --help')",
+            id="evalset without its command",
+        ),
+        pytest.param(
+            ["evalset", "drop"],
+            "textsieve: error: argument command: invalid choice: 'drop' (choose from 'add') "
+            "(see 'textsieve evalset --help')",
+            id="evalset with an unknown command",
+        ),
+        pytest.param(
+            [], "textsieve: error: the following arguments are required: command (choose from 'demo', ", id="no verb"
+        ),
+    ],
+)
+def test_a_missing_or_unknown_command_is_named_with_its_choices(
+    capsys: pytest.CaptureFixture[str], argv: list[str], expected: str
+) -> None:
+    with pytest.raises(SystemExit) as exc:
+        main(argv)
+    assert exc.value.code == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith(expected), err  # never the attribute argparse stores it in
+
+
 # -- settings from the environment ------------------------------------------------------------
 # (verb and arguments, environment, what the one line says): each verb that reads a variable refuses a
 # bad value of it the same way, naming it and what is allowed.

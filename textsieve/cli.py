@@ -91,8 +91,21 @@ class _Parser(argparse.ArgumentParser):
 
     def error(self, message: str) -> None:  # type: ignore[override]
         # self.prog is the whole command so far: "textsieve", "textsieve promote", "textsieve evalset add".
-        print(f"textsieve: error: {message} (see '{self.prog} --help')", file=sys.stderr)
+        print(f"textsieve: error: {self._name_the_verbs(message)} (see '{self.prog} --help')", file=sys.stderr)
         raise SystemExit(2)
+
+    def _name_the_verbs(self, message: str) -> str:
+        """argparse names a missing or unknown verb by the attribute it is stored in ('evalset_command'):
+        call it a command, and list the commands when none was given."""
+        for action in self._actions:
+            if not isinstance(action, argparse._SubParsersAction) or action.dest == argparse.SUPPRESS:
+                continue
+            if message == f"the following arguments are required: {action.dest}":
+                choices = ", ".join(map(repr, action.choices))
+                return f"the following arguments are required: command (choose from {choices})"
+            if message.startswith(f"argument {action.dest}: "):
+                return "argument command: " + message.removeprefix(f"argument {action.dest}: ")
+        return message
 
 
 def build_parser() -> argparse.ArgumentParser:

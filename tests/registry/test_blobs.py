@@ -154,6 +154,20 @@ def test_garbage_collection_removes_only_old_unreferenced_blobs(tmp_path: Path, 
         reg.fetch("m", 1)
 
 
+@pytest.mark.parametrize("older_than", [float("nan"), float("inf"), -1.0])
+def test_garbage_collection_refuses_an_age_that_is_not_a_finite_number_of_seconds(
+    tmp_path: Path, older_than: float
+) -> None:
+    from textsieve.errors import InputError
+    from textsieve.registry import open_registry
+
+    with open_registry(tmp_path / "reg") as reg:
+        young = reg.blobs.put_bytes(b"a publish in progress")
+        with pytest.raises(InputError, match="give a finite number of seconds, 0 or more"):
+            reg.collect_garbage(older_than=older_than)
+        assert reg.blobs.has(young)
+
+
 def test_reusing_an_old_orphan_makes_it_recent(tmp_path: Path) -> None:
     import os
     import time

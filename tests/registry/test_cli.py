@@ -2,11 +2,16 @@
 
 from __future__ import annotations
 
+import os
 import re
+import shutil
+import subprocess
+import sys
 from pathlib import Path
 
 import pytest
 
+from tests.helpers.environment import child_env
 from tests.helpers.registries import RegistrySpec
 from textsieve.cli import main
 from textsieve.registry.cli import table
@@ -137,6 +142,9 @@ def test_a_refused_gate_exits_1_naming_the_gate_and_figures(
         pytest.param(["publish", "/nonexistent/bundle", "--model", "m"], "not a folder", id="publish no folder"),
         pytest.param(["evalset", "add", "m", "/nonexistent.jsonl"], "no such file", id="evaluation set missing"),
         pytest.param(["rollback", "m", "--reason", "x"], "no live version", id="rollback with nothing live"),
+        pytest.param(["gc", "--older-than", "nan"], "--older-than nan: give a number of seconds", id="gc nan"),
+        pytest.param(["gc", "--older-than", "inf"], "--older-than inf: give a number of seconds", id="gc inf"),
+        pytest.param(["gc", "--older-than", "-1"], "--older-than -1: give a number of seconds", id="gc negative"),
     ],
 )
 def test_bad_input_exits_2_with_one_line(
@@ -177,6 +185,90 @@ def test_an_empty_registry_lists_no_models(capsys: pytest.CaptureFixture[str], t
     assert code == 0 and "no models yet" in out
 
 
+def _as_a_user_bound_by_file_modes(path: Path) -> list[str]:
+    """A command prefix under which ``path``'s mode binds: as root, setpriv (util-linux) drops the
+    capabilities that override file modes (capabilities(7): CAP_DAC_OVERRIDE, CAP_DAC_READ_SEARCH)."""
+    prefix: list[str] = []
+    if os.geteuid() == 0:
+        setpriv = shutil.which("setpriv")
+        if setpriv is None:
+            pytest.skip("running as root, and setpriv (util-linux) is not there to drop root's override of file modes")
+        drop = "-dac_override,-dac_read_search"
+        prefix = [setpriv, f"--bounding-set={drop}", f"--inh-caps={drop}"]
+    probe = "import os, sys; sys.exit(3 if os.access(sys.argv[1], os.W_OK) else 0)"
+    if subprocess.run([*prefix, sys.executable, "-c", probe, str(path)], timeout=60, check=False).returncode:
+        pytest.skip(f"{path} stays writable for this user whatever its mode")
+    return prefix
+
+
+@pytest.mark.parametrize(
+    ("read_only", "journal", "argv", "expected_msg"),
+    [
+        pytest.param(
+            ".",
+            False,
+            ["models"],
+            "the registry folder is not writable, and SQLite writes beside the database even to read it "
+            "(its lock and journal files registry.sqlite3-shm and registry.sqlite3-wal); make the folder writable "
+            "for this user, or copy the registry folder somewhere writable and point --registry",
+            id="folder",
+        ),
+        pytest.param(
+            # As in a copy taken while a server had the registry open; SQLite said "unable to open database file".
+            ".",
+            True,
+            ["models"],
+            "the registry folder is not writable, and SQLite writes beside the database even to read it",
+            id="folder-with-a-journal",
+        ),
+        pytest.param(
+            "registry.sqlite3",
+            False,
+            ["review-threshold", "m", "--set", "0.5", "--reason", "x"],
+            "registry.sqlite3: the registry database file is not writable, so the registry cannot be changed; "
+            "make it writable for this user, or copy the registry folder",
+            id="database-file",
+        ),
+    ],
+)
+def test_a_read_only_registry_is_one_line_saying_what_to_make_writable(
+    tmp_path: Path, tiny_bundles: dict[str, Path], read_only: str, journal: bool, argv: list[str], expected_msg: str
+) -> None:
+    from textsieve.registry import open_registry
+
+    reg = tmp_path / "reg"
+    with open_registry(reg) as registry:
+        registry.publish(tiny_bundles["a"], "m", actor="tests")
+    if journal:
+        (reg / "registry.sqlite3-wal").touch()
+    target = reg / read_only
+    mode = target.stat().st_mode
+    target.chmod(0o555 if target.is_dir() else 0o444)
+    try:
+        done = subprocess.run(
+            [
+                *_as_a_user_bound_by_file_modes(target),
+                sys.executable,
+                "-m",
+                "textsieve.cli",
+                *argv,
+                "--registry",
+                str(reg),
+            ],
+            capture_output=True,
+            text=True,
+            timeout=120,
+            env=child_env(),
+            check=False,
+        )
+    finally:
+        target.chmod(mode)
+    # UnavailableError's status, as for a registry that cannot be reached (textsieve/errors.py).
+    assert (done.returncode, done.stdout) == (1, ""), done.stderr
+    assert len(done.stderr.splitlines()) == 1 and done.stderr.startswith("textsieve: error: "), done.stderr
+    assert expected_msg in done.stderr, done.stderr
+
+
 def test_gc_deletes_old_unreferenced_blobs_and_says_so(tmp_path: Path, tiny_bundles: dict[str, Path]) -> None:
     import os
     import time
@@ -188,15 +280,57 @@ def test_gc_deletes_old_unreferenced_blobs_and_says_so(tmp_path: Path, tiny_bund
         reg.publish(tiny_bundles["a"], "m", actor="tests")
         orphan = reg.blobs.put_bytes(b"orphan")
         os.utime(reg.blobs.path(orphan), (time.time() - 7200,) * 2)
+        young = reg.blobs.put_bytes(b"a publish in progress")
     args = ["gc", "--registry", str(tmp_path / "reg")]
+    # NaN compares false with every time, so it once spared nothing; it is refused like a negative age.
+    assert main([*args, "--older-than", "nan"]) == 2
+    with open_registry(tmp_path / "reg") as reg:
+        assert reg.blobs.has(orphan) and reg.blobs.has(young)
     assert main([*args, "--dry-run"]) == 0
     with open_registry(tmp_path / "reg") as reg:
         assert reg.blobs.has(orphan)
     assert main(args) == 0
     with open_registry(tmp_path / "reg") as reg:
-        assert not reg.blobs.has(orphan)
+        assert not reg.blobs.has(orphan) and reg.blobs.has(young)
         reg.fetch("m", 1)
     assert main([*args, "--older-than", "-1"]) == 2
+
+
+@pytest.mark.parametrize("dry_run", [[], ["--dry-run"]], ids=["gc", "gc --dry-run"])
+def test_gc_on_a_damaged_blob_folder_says_what_is_wrong_in_one_line(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path], dry_run: list[str]
+) -> None:
+    import shutil
+
+    from textsieve.registry import open_registry
+
+    with open_registry(tmp_path / "reg") as reg:
+        referenced = len(reg.publish(tiny_bundles["a"], "m", actor="tests").files)
+    blobs = tmp_path / "reg" / "blobs"
+    args = ["gc", *dry_run, "--registry", str(tmp_path / "reg")]
+
+    one = blobs / sorted(p.name for p in blobs.iterdir())[0]
+    one.rename(tmp_path / "aside")
+    code, out, err = run(capsys, *args)
+    assert code == 1 and f"kept {referenced - 1} referenced, 1 referenced missing;" in out
+    assert err == (
+        f"textsieve: error: 1 of {referenced} referenced blobs are missing from {blobs}; versions that "
+        "use them cannot be fetched or served; restore them from a backup\n"
+    )
+
+    shutil.rmtree(blobs)
+    code, out, err = run(capsys, *args)
+    assert code == 1 and f"kept 0 referenced, {referenced} referenced missing;" in out
+    assert len(err.splitlines()) == 1, err
+    assert f"the blob folder {blobs} is missing, so every referenced blob ({referenced}) is missing" in err
+
+    blobs.write_bytes(b"")  # a file where the folder should be: it once ended in NotADirectoryError's traceback
+    code, out, err = run(capsys, *args)
+    assert (code, out) == (2, "")
+    assert err == (
+        f"textsieve: error: {blobs}: not a folder, but the registry keeps its blobs there; move it aside "
+        "and put the blob folder back in its place\n"
+    )
 
 
 def test_gates_shows_and_changes_settings_with_a_reason(

@@ -77,6 +77,22 @@ def test_export_feeds_evalset_add_and_the_training_reader(
     assert sorted((e.text, e.label) for e in train) == sorted((t, v) for t, _, v in TEXTS)
 
 
+def test_a_version_without_verdicts_is_told_apart_from_a_model_without_any(
+    capsys: pytest.CaptureFixture[str], judged: RegistrySpec, tiny_bundles: dict[str, Path], tmp_path: Path
+) -> None:
+    with judged.open() as reg:
+        reg.publish(tiny_bundles["b"], "helpdesk", actor="ci")  # version 2: no verdicts; version 1 has 4
+    r = judged.cli_args()
+    code, out, err = run(capsys, "verdicts", "helpdesk", "--version", "2", *r)
+    assert (code, err) == (0, "")
+    assert out.startswith("no verdicts on version 2 of 'helpdesk' yet (version 1 has some); reviewers record")
+    target = tmp_path / "v2.jsonl"
+    code, out, err = run(capsys, "verdicts", "helpdesk", "--version", "2", "--export", str(target), *r)
+    assert code == 2 and out == "" and len(err.strip().splitlines()) == 1
+    assert "no verdicts on version 2 of 'helpdesk' yet (version 1 has some); nothing written" in err
+    assert not target.exists()
+
+
 def test_deletion_by_id_and_date_is_audited_and_needs_a_reason(
     capsys: pytest.CaptureFixture[str], judged: RegistrySpec
 ) -> None:
@@ -100,6 +116,17 @@ def test_deletion_by_id_and_date_is_audited_and_needs_a_reason(
     ("argv", "expected_msg"),
     [
         pytest.param(["--delete-before", "last tuesday", "--reason", "x"], "bad date 'last tuesday'", id="bad-date"),
+        pytest.param(
+            ["--delete-before", "9999-12-31T23:00:00-05:00", "--reason", "x"],
+            "date '9999-12-31T23:00:00-05:00' is out of range: in UTC it must fall from 0001-01-01T00:00:00Z to "
+            "9999-12-31T23:59:59Z",
+            id="after-year-9999-in-utc",
+        ),
+        pytest.param(
+            ["--delete-before", "0001-01-01T00:30:00+01:00", "--reason", "x"],
+            "date '0001-01-01T00:30:00+01:00' is out of range",
+            id="before-year-1-in-utc",
+        ),
         pytest.param(["--export", "out.csv"], "name the file .jsonl", id="export-suffix"),
         pytest.param(["--export", "x.jsonl", "--delete", "1", "--reason", "x"], "separate runs", id="both"),
         pytest.param(["--last", "-1"], "--last -1", id="negative-last"),
