@@ -28,9 +28,17 @@ if TYPE_CHECKING:
 NONE = "-"
 
 
+def _one_line(cell: str) -> str:
+    """A cell on one line: a reason may hold line breaks and tabs (kept as written in the registry),
+    which would split a table's row; each break is shown as ↵."""
+    if "\n" in cell or "\r" in cell or "\t" in cell:
+        cell = cell.replace("\r\n", "\n").replace("\r", "\n").replace("\n", " ↵ ").replace("\t", " ")
+    return cell
+
+
 def table(headers: Sequence[str], rows: Sequence[Sequence[object]], *, right: Sequence[int] = ()) -> str:
     """Columns padded to their widest cell, two spaces apart; ``right`` lists right-aligned columns."""
-    cells = [[str(h) for h in headers]] + [[NONE if c is None else str(c) for c in row] for row in rows]
+    cells = [[str(h) for h in headers]] + [[NONE if c is None else _one_line(str(c)) for c in row] for row in rows]
     widths = [max(len(row[i]) for row in cells) for i in range(len(headers))]
     lines = []
     for row in cells:

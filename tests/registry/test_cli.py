@@ -39,6 +39,16 @@ def test_table_pads_columns_and_right_aligns_numbers() -> None:
     assert text.splitlines() == ["NAME      N", "alpha     1", "b      1234", "c         -"]
 
 
+def test_a_reason_with_line_breaks_stays_on_its_row() -> None:
+    """Reasons keep their line breaks in the registry; a table shows each as ↵ so rows stay rows."""
+    text = table(["EVENT", "REASON", "BY"], [[1, "first line\nsecond\r\nthird\tend", "ana"], [2, "ok", "bo"]])
+    assert text.splitlines() == [
+        "EVENT  REASON                           BY",
+        "1      first line ↵ second ↵ third end  ana",
+        "2      ok                               bo",
+    ]
+
+
 def test_registry_verbs_end_to_end(
     capsys: pytest.CaptureFixture[str], spec: RegistrySpec, tiny_bundles: dict[str, Path], tiny_data: Path
 ) -> None:
