@@ -32,6 +32,13 @@ def _check_digest(digest: str) -> str:
     return digest
 
 
+def _missing(digest: str, root: Path) -> str:
+    return (
+        f"blob {digest[:12]}… is missing from {root} (the blob folder: --blobs / TEXTSIEVE_BLOBS, else the "
+        "registry folder's blobs/; a version published with another --blobs has its files there)"
+    )
+
+
 class BlobStore:
     """Blobs under one folder, named by the sha256 of their content."""
 
@@ -168,7 +175,7 @@ class BlobStore:
         try:
             actual = sha256_file(path)
         except FileNotFoundError:
-            raise IntegrityError(f"blob {digest[:12]}… is missing from {self.root}", digest=digest) from None
+            raise IntegrityError(_missing(digest, self.root), digest=digest) from None
         except OSError as exc:
             raise IntegrityError(f"blob {digest[:12]}… cannot be read ({exc.strerror})", digest=digest) from exc
         if actual != digest:
@@ -183,7 +190,7 @@ class BlobStore:
         try:
             data = self.path(digest).read_bytes()
         except FileNotFoundError:
-            raise IntegrityError(f"blob {digest[:12]}… is missing from {self.root}", digest=digest) from None
+            raise IntegrityError(_missing(digest, self.root), digest=digest) from None
         except OSError as exc:
             raise IntegrityError(f"blob {digest[:12]}… cannot be read ({exc.strerror})", digest=digest) from exc
         actual = hashlib.sha256(data).hexdigest()
@@ -207,7 +214,7 @@ class BlobStore:
         except FileNotFoundError:
             with contextlib.suppress(FileNotFoundError):
                 os.unlink(target)
-            raise IntegrityError(f"blob {digest[:12]}… is missing from {self.root}", digest=digest) from None
+            raise IntegrityError(_missing(digest, self.root), digest=digest) from None
         actual = h.hexdigest()
         if actual != digest:
             os.unlink(target)

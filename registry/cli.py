@@ -226,7 +226,11 @@ def add_location_args(p: argparse.ArgumentParser) -> None:
         help="registry folder, or a postgresql:// URL with --blobs naming its blob folder "
         f"(default: $TEXTSIEVE_REGISTRY, else {DEFAULT_REGISTRY})",
     )
-    p.add_argument("--blobs", help="blob folder when --registry is a postgresql:// URL (default: $TEXTSIEVE_BLOBS)")
+    p.add_argument(
+        "--blobs",
+        help="blob folder: required with a postgresql:// --registry; a folder registry uses REGISTRY/blobs "
+        "unless this names another (default: $TEXTSIEVE_BLOBS); pass the same one to every verb",
+    )
 
 
 def _model_arg(p: argparse.ArgumentParser) -> None:

@@ -57,7 +57,11 @@ class Settings(BaseSettings):
     model_config = SettingsConfigDict(env_prefix="TEXTSIEVE_", extra="forbid", validate_default=True)
 
     registry: str = Field(DEFAULT_REGISTRY, description="registry folder or postgresql:// URL")
-    blobs: str | None = Field(None, description="blob folder when the registry is a postgresql:// URL")
+    blobs: str | None = Field(
+        None,
+        description="blob folder: required with a postgresql:// registry; a folder registry uses REGISTRY/blobs "
+        "unless it is set",
+    )
     host: str = "127.0.0.1"
     port: int = Field(8000, ge=0, le=65535)
     models: Annotated[list[str], NoDecode] = Field(
