@@ -826,6 +826,11 @@ class Registry:
         return event_id, q.version(model, version), failed
 
     def _to_candidate(self, model: str, version: int, reason: str, actor: str) -> Promotion:
+        with self.backend.read() as tx:
+            target = self._require_version(Queries(tx), model, version)
+        _allowed(target, State.CANDIDATE)
+        for digest in target.files.values():
+            self.blobs.verify(digest)  # every replica loads a candidate (shadow scoring): never a damaged one
         now = utc_now()
         with self.backend.write() as tx:
             q = Queries(tx)

@@ -388,6 +388,10 @@ def test_a_damaged_version_is_never_promoted(
     with pytest.raises(IntegrityError):
         registry.promote("m", 1, "live", reason="go", force=True)
     assert registry.live("m") is None
+    # Nor made the candidate, which every replica loads for shadow scoring.
+    with pytest.raises(IntegrityError):
+        registry.promote("m", 1, "candidate", reason="trial")
+    assert registry.version("m", 1).state == "registered"
 
 
 def test_changes_since_reports_each_event_once(registry: Registry, tiny_bundles: dict[str, Path]) -> None:
