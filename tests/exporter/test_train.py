@@ -290,6 +290,8 @@ def _bad_files(folder: Path) -> None:
     write_jsonl(folder / "emptytext.jsonl", [{"text": "a", "label": "x"}, {"text": " ", "label": "y"}])
     write_jsonl(folder / "unseen.jsonl", [{"text": "a", "label": "billing"}, {"text": "b", "label": "shipping"}])
     write_jsonl(folder / "few.jsonl", [{"text": "a", "label": "x"}, {"text": "b", "label": "y"}])
+    write_jsonl(folder / "once.jsonl", [{"text": f"the shed {i}", "label": f"shelf {i}"} for i in range(40)])
+    write_jsonl(folder / "fours.jsonl", [{"text": f"the pantry {i}", "label": "ab"[i % 2]} for i in range(8)])
     _vectors_file(folder / "vec6.txt", dim=6)
     (folder / "afile").write_text("not a run", encoding="utf-8")
     (folder / "notrun").mkdir()
@@ -312,7 +314,21 @@ OUT = ["--out", "{tmp}/out"]
         pytest.param(["{tmp}/latin1.jsonl", *OUT], "line 1: byte offset 13 is not valid UTF-8", id="not UTF-8"),
         pytest.param(["{tmp}/emptytext.jsonl", *OUT], "line 2: the 'text' field is empty", id="empty text"),
         pytest.param(["{data}", "--valid", "{tmp}/unseen.jsonl", *OUT], "labels not in", id="unseen valid label"),
-        pytest.param(["{tmp}/few.jsonl", *OUT], "too few to hold out", id="too few to hold out"),
+        pytest.param(
+            ["{tmp}/few.jsonl", *OUT],
+            "every label has too few rows to hold out a 10% validation split (2 labels, at most 1 row each); "
+            "a label needs at least 5 rows",
+            id="too few to hold out",
+        ),
+        # VALID_SHARE 10 % of a label's rows, rounded half up: 0.4 of 4 rows rounds to none, 0.5 of 5 to one.
+        pytest.param(
+            ["{tmp}/once.jsonl", *OUT], "(40 labels, at most 1 row each); a label needs at least 5", id="labels once"
+        ),
+        pytest.param(
+            ["{tmp}/fours.jsonl", *OUT],
+            "(2 labels, at most 4 rows each); a label needs at least 5",
+            id="labels 4 times",
+        ),
         pytest.param(
             ["{data}", *OUT, "--vectors", "{tmp}/vec6.txt", "--embedding-dim", "16"],
             "vectors file has dimension 6 but --embedding-dim is 16",
