@@ -226,6 +226,15 @@ def load_run(run_dir: Path) -> LoadedRun:
         raise InputError(
             f"{model_path}: does not match run.json's architecture and vocabulary ({str(exc).splitlines()[0][:200]})"
         ) from None
+    # 'textsieve train' stops before writing such weights, but an older or hand-edited run may hold
+    # them, and every probability they give is nan.
+    broken = sorted(name for name, tensor in state.items() if not bool(torch.isfinite(tensor).all()))
+    if broken:
+        shown = ", ".join(broken[:3]) + (f" and {len(broken) - 3} more" if len(broken) > 3 else "")
+        raise InputError(
+            f"{model_path}: the weights are not finite (nan or inf in {shown}): the training diverged; "
+            "train again with a lower --learning-rate"
+        )
     return LoadedRun(model.eval(), vocabulary, info)
 
 

@@ -292,6 +292,11 @@ def _bad_files(folder: Path) -> None:
     write_jsonl(folder / "few.jsonl", [{"text": "a", "label": "x"}, {"text": "b", "label": "y"}])
     write_jsonl(folder / "once.jsonl", [{"text": f"the shed {i}", "label": f"shelf {i}"} for i in range(40)])
     write_jsonl(folder / "fours.jsonl", [{"text": f"the pantry {i}", "label": "ab"[i % 2]} for i in range(8)])
+    # Finite float32 values near its largest (3.4e38): the first sums overflow to inf, and inf - inf is nan.
+    (folder / "huge16.txt").write_text(
+        "".join(f"{w} {' '.join(['3e38'] * 16)}\n" for w in ("charged", "refund", "broken", "brake", "bike", "the")),
+        encoding="utf-8",
+    )
     _vectors_file(folder / "vec6.txt", dim=6)
     (folder / "afile").write_text("not a run", encoding="utf-8")
     (folder / "notrun").mkdir()
@@ -336,6 +341,24 @@ OUT = ["--out", "{tmp}/out"]
         ),
         pytest.param(["{data}", *OUT, "--vectors", "{tmp}/none.txt"], "no such file", id="vectors missing"),
         pytest.param(["{data}", "--out", "{tmp}/afile"], "is an existing file", id="out is a file"),
+        pytest.param(
+            ["{data}", *OUT, "--vectors", "{tmp}/huge16.txt"],
+            "training stopped: the training loss became nan at epoch 1",
+            id="loss not finite",
+        ),
+        pytest.param(
+            ["{data}", *OUT, "--learning-rate", "1e30"],
+            "--learning-rate 1e+30 is out of range; it must be above 0 and at most 1",
+            id="learning rate 1e30",
+        ),
+        pytest.param(
+            ["{data}", *OUT, "--learning-rate", "1e308"],
+            "--learning-rate 1e+308 is out of range",
+            id="learning rate 1e308",
+        ),
+        pytest.param(
+            ["{data}", *OUT, "--learning-rate", "0"], "--learning-rate 0.0 is out of range", id="learning rate 0"
+        ),
         pytest.param(
             ["{data}", "--out", "{tmp}/notrun"], "is a folder that is not a previous run", id="out is another folder"
         ),
@@ -388,6 +411,12 @@ def _edit_run_json(run: Path, change: Callable[[dict[str, Any]], object]) -> Non
     (run / RUN_JSON).write_text(json.dumps(content), encoding="utf-8")
 
 
+def _nan_weights(run: Path, name: str) -> None:
+    state = torch.load(run / MODEL_PT, weights_only=True)
+    state[name].view(-1)[0] = float("nan")
+    torch.save(state, run / MODEL_PT)
+
+
 # how to break a copy of a good run (in a folder named "copied") -> the message, which names the file
 @pytest.mark.parametrize(
     ("damage", "expected_msg"),
@@ -413,6 +442,11 @@ def _edit_run_json(run: Path, change: Callable[[dict[str, Any]], object]) -> Non
             lambda run: _edit_run_json(run, lambda c: c["architecture"].update(maps=7)),
             r"copied/model\.pt: does not match run\.json",
             id="weights of another shape",
+        ),
+        pytest.param(
+            lambda run: _nan_weights(run, "output.bias"),
+            r"copied/model\.pt: the weights are not finite \(nan or inf in output\.bias\)",
+            id="weights not finite",
         ),
         pytest.param(
             lambda run: (run / VOCAB_TXT).write_text("<pad>\n<unk>\nonly\n", encoding="utf-8"),
