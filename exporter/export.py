@@ -176,7 +176,9 @@ class Sources:
 def read_sources(run_dir: Path, test: Path | None) -> Sources:
     run = load_run(run_dir)
     labels = run.info.labels
-    valid = load_examples(Path(run_dir) / VALID_JSONL)
+    valid_path = Path(run_dir) / VALID_JSONL
+    valid = load_examples(valid_path)
+    _check_valid_labels(valid, labels, valid_path)
     if test is None:
         return Sources(run, valid, None, valid)
     held_out = load_examples(test, run.info.training.text_field, run.info.training.label_field)
@@ -184,6 +186,20 @@ def read_sources(run_dir: Path, test: Path | None) -> Sources:
     if unseen:
         raise InputError(f"{test}: labels not known to the model: {', '.join(unseen)}; allowed: {', '.join(labels)}")
     return Sources(run, valid, Path(test), held_out)
+
+
+def _check_valid_labels(valid: list[Example], labels: list[str], path: Path) -> None:
+    """Every validation row's label is one of the model's: calibration and parity score them all."""
+    known = set(labels)
+    row = next((i for i, e in enumerate(valid) if e.label not in known), None)
+    if row is None:
+        return
+    # load_examples gives one example for each non-blank line of a JSON Lines file, in order.
+    lines = [n for n, line in enumerate(path.read_text(encoding="utf-8").split("\n"), start=1) if line.strip()]
+    raise InputError(
+        f"{path}: line {lines[row]}: the label {valid[row].label!r} is not one the model knows "
+        f"({', '.join(labels)}); remove the row, or train again on data that has the label"
+    )
 
 
 def _check_out(out: Path) -> None:

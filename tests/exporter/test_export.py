@@ -15,7 +15,7 @@ import torch
 from textsieve.cli import main
 from textsieve.errors import ParityError
 from textsieve.exporter.export import export
-from textsieve.exporter.run_folder import MODEL_PT, load_run
+from textsieve.exporter.run_folder import MODEL_PT, VALID_JSONL, load_run
 from textsieve.registry.bundle import open_bundle
 from textsieve.registry.manifest import CARD_FILE, MANIFEST, MODEL_FILE, VOCAB_FILE
 from textsieve.registry.measures import nll
@@ -172,8 +172,13 @@ def _nan_weights(run: Path) -> None:
     torch.save(state, run / MODEL_PT)
 
 
-# how to break a copy of keyword_run, the --out ({tmp}: this test's folder, which holds a file "afile")
-# -> words of the one-line error
+def _unknown_valid_label(run: Path) -> None:
+    with open(run / VALID_JSONL, "a", encoding="utf-8") as f:  # a blank line 25, then the row on line 26
+        f.write('\n{"text": "the kettle is on", "label": "kitchen"}\n')
+
+
+# how to break a copy of keyword_run (24 validation rows), the --out ({tmp}: this test's folder, which
+# holds a file "afile") -> words of the one-line error
 @pytest.mark.parametrize(
     ("damage", "out", "expected_msg"),
     [
@@ -182,6 +187,12 @@ def _nan_weights(run: Path) -> None:
             "{tmp}/bundle",
             "run/model.pt: the weights are not finite (nan or inf in output.bias): the training diverged",
             id="weights not finite",
+        ),
+        pytest.param(
+            _unknown_valid_label,
+            "{tmp}/bundle",
+            "run/valid.jsonl: line 26: the label 'kitchen' is not one the model knows (billing, repair)",
+            id="validation label unknown to the model",
         ),
     ],
 )
