@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING, Any, NamedTuple
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from textsieve.errors import BundleError, InputError
-from textsieve.files import atomic_directory
+from textsieve.files import atomic_directory, file_in_the_way
 from textsieve.labelled import Example
 from textsieve.registry.manifest import ArchitectureInfo, LengthInfo, TrainingInfo
 from textsieve.registry.report.embedding_files import EMBEDDINGS_NPZ, embedding_arrays
@@ -115,6 +115,11 @@ def check_out(out: Path) -> None:
     elif out.exists() or out.is_symlink():
         raise InputError(
             f"--out {out}: is an existing file; name a new or empty folder, or a previous run folder to replace"
+        )
+    elif (blocker := file_in_the_way(out)) is not None:
+        raise InputError(
+            f"--out {out}: {blocker} is an existing file, so no folder can be made inside it; "
+            "name a new folder elsewhere"
         )
 
 

@@ -342,6 +342,11 @@ OUT = ["--out", "{tmp}/out"]
         pytest.param(["{data}", *OUT, "--vectors", "{tmp}/none.txt"], "no such file", id="vectors missing"),
         pytest.param(["{data}", "--out", "{tmp}/afile"], "is an existing file", id="out is a file"),
         pytest.param(
+            ["{data}", "--out", "{tmp}/afile/sub"],
+            "/afile is an existing file, so no folder can be made inside it",
+            id="out inside a file",
+        ),
+        pytest.param(
             ["{data}", *OUT, "--vectors", "{tmp}/huge16.txt"],
             "training stopped: the training loss became nan at epoch 1",
             id="loss not finite",
