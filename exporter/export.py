@@ -7,6 +7,7 @@ read the run → write the graph → PyTorch reference → calibrate → parity 
 from __future__ import annotations
 
 import datetime as dt
+import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Literal
@@ -16,7 +17,7 @@ import numpy as np
 from textsieve import __version__
 from textsieve.errors import InputError, ParityError
 from textsieve.exporter.run_folder import VALID_JSONL, LoadedRun, RunInfo, load_run
-from textsieve.files import atomic_directory, atomic_write_text, sha256_file
+from textsieve.files import atomic_directory, atomic_write_text, file_in_the_way, sha256_file
 from textsieve.labelled import Example, load_examples
 from textsieve.registry import measures
 from textsieve.registry.bundle import check_graph, manifest_json
@@ -203,8 +204,27 @@ def _check_valid_labels(valid: list[Example], labels: list[str], path: Path) -> 
 
 
 def _check_out(out: Path) -> None:
-    if out.exists() and not (out / MANIFEST).is_file() and any(out.iterdir()):
-        raise InputError(f"{out}: exists and is not a bundle; choose an empty or new folder")
+    """``out`` may become a bundle folder: absent, empty, or a previous bundle to replace."""
+    try:
+        str(out).encode("utf-8")
+    except UnicodeEncodeError:
+        shown = os.fsencode(out).decode("utf-8", "backslashreplace")
+        raise InputError(
+            f"--out {shown}: the path is not valid UTF-8; onnxruntime opens the model by its name, "
+            "which must be UTF-8 text: name the bundle folder in UTF-8"
+        ) from None
+    if out.is_dir():
+        if not (out / MANIFEST).is_file() and any(out.iterdir()):
+            raise InputError(f"{out}: exists and is not a bundle; choose an empty or new folder")
+    elif out.exists() or out.is_symlink():
+        raise InputError(
+            f"--out {out}: is an existing file; name a new or empty folder, or a previous bundle folder to replace"
+        )
+    elif (blocker := file_in_the_way(out)) is not None:
+        raise InputError(
+            f"--out {out}: {blocker} is an existing file, so no folder can be made inside it; "
+            "name a new folder elsewhere"
+        )
 
 
 def _targets(examples: list[Example], labels: list[str]) -> np.ndarray:

@@ -194,6 +194,20 @@ def _unknown_valid_label(run: Path) -> None:
             "run/valid.jsonl: line 26: the label 'kitchen' is not one the model knows (billing, repair)",
             id="validation label unknown to the model",
         ),
+        pytest.param(None, "{tmp}/afile", "--out {tmp}/afile: is an existing file", id="out is a file"),
+        pytest.param(
+            None,
+            "{tmp}/afile/sub",
+            "--out {tmp}/afile/sub: {tmp}/afile is an existing file, so no folder can be made inside it",
+            id="out inside a file",
+        ),
+        # What `$'b\xffun'` gives Python on Linux: the byte 0xff as a lone surrogate (PEP 383).
+        pytest.param(
+            None,
+            "{tmp}/b\udcffun",
+            "--out {tmp}/b\\xffun: the path is not valid UTF-8; onnxruntime opens the model by its name",
+            id="out not UTF-8",
+        ),
     ],
 )
 def test_bad_run_or_out_exits_2_with_one_line(
