@@ -26,6 +26,10 @@ KIM_DROPOUT = 0.5
 KIM_MAX_NORM = 3.0
 KIM_BATCH_SIZE = 50
 ADAM_LEARNING_RATE = 1e-3
+# Adam moves each weight by at most about the learning rate a step (Kingma & Ba, 2015, section
+# 2.1, from memory); the embeddings start within ±0.25, so steps above 1 only wreck the weights,
+# and steps near float32's limit overflow them (nan losses, or torch refusing the value outright).
+MAX_LEARNING_RATE = 1.0
 
 
 @dataclass(frozen=True)
@@ -100,7 +104,12 @@ class TrainConfig:
             ("--batch-size", self.batch_size, self.batch_size >= 1, "at least 1"),
             ("--epochs", self.epochs, self.epochs >= 1, "at least 1"),
             ("--patience", self.patience, self.patience >= 1, "at least 1"),
-            ("--learning-rate", self.learning_rate, 0 < self.learning_rate < math.inf, "a positive number"),
+            (
+                "--learning-rate",
+                self.learning_rate,
+                0 < self.learning_rate <= MAX_LEARNING_RATE,
+                f"above 0 and at most {MAX_LEARNING_RATE:g} (Adam's step size; the default is {ADAM_LEARNING_RATE:g})",
+            ),
             ("--min-count", self.min_count, self.min_count >= 1, "at least 1"),
             (
                 "--max-vocab",
@@ -145,6 +154,7 @@ __all__ = [
     "KIM_MAPS",
     "KIM_MAX_NORM",
     "KIM_WIDTHS",
+    "MAX_LEARNING_RATE",
     "TrainConfig",
     "VectorsMode",
     "parse_widths",

@@ -7,6 +7,7 @@ read the run → write the graph → PyTorch reference → calibrate → parity 
 from __future__ import annotations
 
 import datetime as dt
+import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Literal
@@ -16,7 +17,7 @@ import numpy as np
 from textsieve import __version__
 from textsieve.errors import InputError, ParityError
 from textsieve.exporter.run_folder import VALID_JSONL, LoadedRun, RunInfo, load_run
-from textsieve.files import atomic_directory, atomic_write_text, sha256_file
+from textsieve.files import atomic_directory, atomic_write_text, file_in_the_way, sha256_file
 from textsieve.labelled import Example, load_examples
 from textsieve.registry import measures
 from textsieve.registry.bundle import check_graph, manifest_json
@@ -176,7 +177,9 @@ class Sources:
 def read_sources(run_dir: Path, test: Path | None) -> Sources:
     run = load_run(run_dir)
     labels = run.info.labels
-    valid = load_examples(Path(run_dir) / VALID_JSONL)
+    valid_path = Path(run_dir) / VALID_JSONL
+    valid = load_examples(valid_path)
+    _check_valid_labels(valid, labels, valid_path)
     if test is None:
         return Sources(run, valid, None, valid)
     held_out = load_examples(test, run.info.training.text_field, run.info.training.label_field)
@@ -186,9 +189,42 @@ def read_sources(run_dir: Path, test: Path | None) -> Sources:
     return Sources(run, valid, Path(test), held_out)
 
 
+def _check_valid_labels(valid: list[Example], labels: list[str], path: Path) -> None:
+    """Every validation row's label is one of the model's: calibration and parity score them all."""
+    known = set(labels)
+    row = next((i for i, e in enumerate(valid) if e.label not in known), None)
+    if row is None:
+        return
+    # load_examples gives one example for each non-blank line of a JSON Lines file, in order.
+    lines = [n for n, line in enumerate(path.read_text(encoding="utf-8").split("\n"), start=1) if line.strip()]
+    raise InputError(
+        f"{path}: line {lines[row]}: the label {valid[row].label!r} is not one the model knows "
+        f"({', '.join(labels)}); remove the row, or train again on data that has the label"
+    )
+
+
 def _check_out(out: Path) -> None:
-    if out.exists() and not (out / MANIFEST).is_file() and any(out.iterdir()):
-        raise InputError(f"{out}: exists and is not a bundle; choose an empty or new folder")
+    """``out`` may become a bundle folder: absent, empty, or a previous bundle to replace."""
+    try:
+        str(out).encode("utf-8")
+    except UnicodeEncodeError:
+        shown = os.fsencode(out).decode("utf-8", "backslashreplace")
+        raise InputError(
+            f"--out {shown}: the path is not valid UTF-8; onnxruntime opens the model by its name, "
+            "which must be UTF-8 text: name the bundle folder in UTF-8"
+        ) from None
+    if out.is_dir():
+        if not (out / MANIFEST).is_file() and any(out.iterdir()):
+            raise InputError(f"{out}: exists and is not a bundle; choose an empty or new folder")
+    elif out.exists() or out.is_symlink():
+        raise InputError(
+            f"--out {out}: is an existing file; name a new or empty folder, or a previous bundle folder to replace"
+        )
+    elif (blocker := file_in_the_way(out)) is not None:
+        raise InputError(
+            f"--out {out}: {blocker} is an existing file, so no folder can be made inside it; "
+            "name a new folder elsewhere"
+        )
 
 
 def _targets(examples: list[Example], labels: list[str]) -> np.ndarray:

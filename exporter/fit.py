@@ -16,7 +16,8 @@ import numpy as np
 import torch
 from torch.nn import functional as F
 
-from textsieve.exporter.config import TrainConfig
+from textsieve.errors import InputError
+from textsieve.exporter.config import ADAM_LEARNING_RATE, TrainConfig
 from textsieve.exporter.encode import TokenIds, pad_batch
 from textsieve.exporter.model import SentenceCNN
 from textsieve.exporter.prepare import Prepared
@@ -124,13 +125,13 @@ def _train_epoch(
     batches: list[np.ndarray],
     prep: Prepared,
     config: TrainConfig,
-    description: str,
+    epoch: int,
 ) -> float:
     """One pass over the training batches; returns the mean training loss."""
     model.train()
     train_y = torch.from_numpy(prep.train_y)
     loss_sum = 0.0
-    with Progress(len(batches), description, enabled=bar_wanted(config.quiet)) as bar:
+    with Progress(len(batches), f"epoch {epoch}/{config.epochs}", enabled=bar_wanted(config.quiet)) as bar:
         for rows in batches:
             ids, lengths = pad_batch(prep.train_ids, rows, prep.lengths.min_length)
             loss = F.cross_entropy(model(ids, lengths), train_y[torch.from_numpy(rows)])
@@ -140,6 +141,7 @@ def _train_epoch(
             if config.max_norm is not None:
                 model.apply_max_norm(config.max_norm)
             value = float(loss.detach())
+            _require_finite(value, "training", epoch, config)
             loss_sum += value * len(rows)
             bar.advance(loss=value)
     return loss_sum / len(prep.train)
@@ -154,8 +156,9 @@ def _fit(config: TrainConfig, prep: Prepared) -> Fitted:
     for epoch in range(1, config.epochs + 1):
         started = time.perf_counter()
         batches = _batches(prep.train_ids.lengths, config.batch_size, rng)
-        train_loss = _train_epoch(model, optimizer, batches, prep, config, f"epoch {epoch}/{config.epochs}")
+        train_loss = _train_epoch(model, optimizer, batches, prep, config, epoch)
         valid_loss, valid_accuracy = evaluate(model, prep.valid_ids, prep.valid_y, prep.lengths.min_length)
+        _require_finite(valid_loss, "validation", epoch, config)
         history.append(Epoch(epoch=epoch, train_loss=train_loss, valid_loss=valid_loss, valid_accuracy=valid_accuracy))
         improved = valid_loss < best_loss - MIN_IMPROVEMENT
         if improved:
@@ -171,9 +174,25 @@ def _fit(config: TrainConfig, prep: Prepared) -> Fitted:
         if waited >= config.patience:
             say(f"stopping early: validation loss has not improved for {waited} epochs; keeping epoch {best_epoch}")
             break
-    if best_state is None:  # every validation loss was nan: keep the last weights rather than none
-        best_epoch, best_state = len(history), model.state_dict()
+    assert best_state is not None  # the first epoch's loss is finite, so it improved on inf
     return Fitted(best_state, history, best_epoch)
+
+
+def _require_finite(loss: float, which: str, epoch: int, config: TrainConfig) -> None:
+    """Stop at the first nan or inf: once the model's values overflow, every later step keeps them so,
+    and a run folder of such weights could never be exported."""
+    if math.isfinite(loss):
+        return
+    rate = config.learning_rate
+    advice = f"lower --learning-rate (it is {rate:g}" + (
+        f"; the default is {ADAM_LEARNING_RATE:g})" if rate > ADAM_LEARNING_RATE else ")"
+    )
+    if config.vectors is not None:
+        advice = f"check {config.vectors} for very large values, or {advice}"
+    raise InputError(
+        f"training stopped: the {which} loss became {loss} at epoch {epoch} (the model's values overflowed); "
+        f"{advice}; no run folder was written"
+    )
 
 
 __all__ = ["MIN_IMPROVEMENT", "UNIFORM_INIT", "Fitted", "build_model", "evaluate", "fit"]

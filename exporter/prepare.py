@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import math
 from collections import Counter
 from dataclasses import dataclass
@@ -84,16 +85,23 @@ def split_validation(examples: list[Example], seed: int, source: Path) -> tuple[
     for label in sorted(by_label):
         rows = np.array(by_label[label])
         rng.shuffle(rows)
-        take = min(math.floor(len(rows) * VALID_SHARE + 0.5), len(rows) - 1)
-        held.update(int(i) for i in rows[:take])
+        held.update(int(i) for i in rows[: _held_out(len(rows))])
     if not held:
+        needed = next(n for n in itertools.count(2) if _held_out(n) >= 1)
+        most = max(len(rows) for rows in by_label.values())
         raise InputError(
-            f"{source}: {len(examples)} rows are too few to hold out a "
-            f"{VALID_SHARE:.0%} validation split; add rows or pass --valid FILE"
+            f"{source}: every label has too few rows to hold out a {VALID_SHARE:.0%} validation split "
+            f"({len(by_label)} labels, at most {most} row{'s' if most != 1 else ''} each); a label needs at "
+            f"least {needed} rows to give one to validation and train on the rest: add rows, or pass --valid FILE"
         )
     train = [e for i, e in enumerate(examples) if i not in held]
     valid = [e for i, e in enumerate(examples) if i in held]
     return train, valid
+
+
+def _held_out(rows: int) -> int:
+    """Rows of a label held out for validation: its rounded share, always leaving one to train on."""
+    return min(math.floor(rows * VALID_SHARE + 0.5), rows - 1)
 
 
 def build_vocabulary(train_tokens: list[list[str]], config: TrainConfig) -> Vocabulary:

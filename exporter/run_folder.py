@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING, Any, NamedTuple
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from textsieve.errors import BundleError, InputError
-from textsieve.files import atomic_directory
+from textsieve.files import atomic_directory, file_in_the_way
 from textsieve.labelled import Example
 from textsieve.registry.manifest import ArchitectureInfo, LengthInfo, TrainingInfo
 from textsieve.registry.report.embedding_files import EMBEDDINGS_NPZ, embedding_arrays
@@ -115,6 +115,11 @@ def check_out(out: Path) -> None:
     elif out.exists() or out.is_symlink():
         raise InputError(
             f"--out {out}: is an existing file; name a new or empty folder, or a previous run folder to replace"
+        )
+    elif (blocker := file_in_the_way(out)) is not None:
+        raise InputError(
+            f"--out {out}: {blocker} is an existing file, so no folder can be made inside it; "
+            "name a new folder elsewhere"
         )
 
 
@@ -226,6 +231,15 @@ def load_run(run_dir: Path) -> LoadedRun:
         raise InputError(
             f"{model_path}: does not match run.json's architecture and vocabulary ({str(exc).splitlines()[0][:200]})"
         ) from None
+    # 'textsieve train' stops before writing such weights, but an older or hand-edited run may hold
+    # them, and every probability they give is nan.
+    broken = sorted(name for name, tensor in state.items() if not bool(torch.isfinite(tensor).all()))
+    if broken:
+        shown = ", ".join(broken[:3]) + (f" and {len(broken) - 3} more" if len(broken) > 3 else "")
+        raise InputError(
+            f"{model_path}: the weights are not finite (nan or inf in {shown}): the training diverged; "
+            "train again with a lower --learning-rate"
+        )
     return LoadedRun(model.eval(), vocabulary, info)
 
 

@@ -69,6 +69,17 @@ def atomic_write_text(path: Path, text: str) -> None:
     atomic_write_bytes(path, text.encode("utf-8"))
 
 
+def file_in_the_way(path: Path) -> Path | None:
+    """The nearest existing ancestor of ``path`` when it is not a folder, so that no folder can be made
+    at ``path``; None when the nearest existing ancestor is a folder."""
+    for parent in Path(path).parents:
+        if parent.is_dir():
+            return None
+        if parent.exists() or parent.is_symlink():  # a file, or a link to nothing
+            return parent
+    return None
+
+
 @contextlib.contextmanager
 def atomic_directory(target: Path, *, replace: bool = False) -> Iterator[Path]:
     """Yield a temporary sibling folder; on success it is fsync'd and renamed to ``target``.
@@ -112,6 +123,7 @@ __all__ = [
     "atomic_directory",
     "atomic_write_bytes",
     "atomic_write_text",
+    "file_in_the_way",
     "fsync_dir",
     "sha256_file",
 ]

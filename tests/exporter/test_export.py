@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import json
 import random
+import shutil
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -13,7 +15,7 @@ import torch
 from textsieve.cli import main
 from textsieve.errors import ParityError
 from textsieve.exporter.export import export
-from textsieve.exporter.run_folder import load_run
+from textsieve.exporter.run_folder import MODEL_PT, VALID_JSONL, load_run
 from textsieve.registry.bundle import open_bundle
 from textsieve.registry.manifest import CARD_FILE, MANIFEST, MODEL_FILE, VOCAB_FILE
 from textsieve.registry.measures import nll
@@ -162,6 +164,71 @@ def test_export_bad_run_folder_exits_2(tmp_path: Path, capsys: pytest.CaptureFix
     assert main(["export", str(tmp_path / "nope"), "--out", str(tmp_path / "b")]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and err[0].startswith("textsieve: error:")
+
+
+def _nan_weights(run: Path) -> None:
+    state = torch.load(run / MODEL_PT, weights_only=True)
+    state["output.bias"][0] = float("nan")
+    torch.save(state, run / MODEL_PT)
+
+
+def _unknown_valid_label(run: Path) -> None:
+    with open(run / VALID_JSONL, "a", encoding="utf-8") as f:  # a blank line 25, then the row on line 26
+        f.write('\n{"text": "the kettle is on", "label": "kitchen"}\n')
+
+
+# how to break a copy of keyword_run (24 validation rows), the --out ({tmp}: this test's folder, which
+# holds a file "afile") -> words of the one-line error
+@pytest.mark.parametrize(
+    ("damage", "out", "expected_msg"),
+    [
+        pytest.param(
+            _nan_weights,
+            "{tmp}/bundle",
+            "run/model.pt: the weights are not finite (nan or inf in output.bias): the training diverged",
+            id="weights not finite",
+        ),
+        pytest.param(
+            _unknown_valid_label,
+            "{tmp}/bundle",
+            "run/valid.jsonl: line 26: the label 'kitchen' is not one the model knows (billing, repair)",
+            id="validation label unknown to the model",
+        ),
+        pytest.param(None, "{tmp}/afile", "--out {tmp}/afile: is an existing file", id="out is a file"),
+        pytest.param(
+            None,
+            "{tmp}/afile/sub",
+            "--out {tmp}/afile/sub: {tmp}/afile is an existing file, so no folder can be made inside it",
+            id="out inside a file",
+        ),
+        # What `$'b\xffun'` gives Python on Linux: the byte 0xff as a lone surrogate (PEP 383).
+        pytest.param(
+            None,
+            "{tmp}/b\udcffun",
+            "--out {tmp}/b\\xffun: the path is not valid UTF-8; onnxruntime opens the model by its name",
+            id="out not UTF-8",
+        ),
+    ],
+)
+def test_bad_run_or_out_exits_2_with_one_line(
+    damage: Callable[[Path], None] | None,
+    out: str,
+    expected_msg: str,
+    keyword_run: Path,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    run = tmp_path / "run"
+    shutil.copytree(keyword_run, run)
+    if damage is not None:
+        damage(run)
+    (tmp_path / "afile").write_text("not a bundle", encoding="utf-8")
+    assert main(["export", str(run), "--out", out.format(tmp=tmp_path)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and err.startswith("textsieve: error: "), err
+    assert expected_msg.format(tmp=tmp_path) in err
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["afile", "run"], "nothing written"
+    assert (tmp_path / "afile").read_text(encoding="utf-8") == "not a bundle"
 
 
 @pytest.mark.parametrize("tolerance", ["0", "-0.5", "nan"])

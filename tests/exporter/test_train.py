@@ -290,6 +290,13 @@ def _bad_files(folder: Path) -> None:
     write_jsonl(folder / "emptytext.jsonl", [{"text": "a", "label": "x"}, {"text": " ", "label": "y"}])
     write_jsonl(folder / "unseen.jsonl", [{"text": "a", "label": "billing"}, {"text": "b", "label": "shipping"}])
     write_jsonl(folder / "few.jsonl", [{"text": "a", "label": "x"}, {"text": "b", "label": "y"}])
+    write_jsonl(folder / "once.jsonl", [{"text": f"the shed {i}", "label": f"shelf {i}"} for i in range(40)])
+    write_jsonl(folder / "fours.jsonl", [{"text": f"the pantry {i}", "label": "ab"[i % 2]} for i in range(8)])
+    # Finite float32 values near its largest (3.4e38): the first sums overflow to inf, and inf - inf is nan.
+    (folder / "huge16.txt").write_text(
+        "".join(f"{w} {' '.join(['3e38'] * 16)}\n" for w in ("charged", "refund", "broken", "brake", "bike", "the")),
+        encoding="utf-8",
+    )
     _vectors_file(folder / "vec6.txt", dim=6)
     (folder / "afile").write_text("not a run", encoding="utf-8")
     (folder / "notrun").mkdir()
@@ -312,7 +319,21 @@ OUT = ["--out", "{tmp}/out"]
         pytest.param(["{tmp}/latin1.jsonl", *OUT], "line 1: byte offset 13 is not valid UTF-8", id="not UTF-8"),
         pytest.param(["{tmp}/emptytext.jsonl", *OUT], "line 2: the 'text' field is empty", id="empty text"),
         pytest.param(["{data}", "--valid", "{tmp}/unseen.jsonl", *OUT], "labels not in", id="unseen valid label"),
-        pytest.param(["{tmp}/few.jsonl", *OUT], "too few to hold out", id="too few to hold out"),
+        pytest.param(
+            ["{tmp}/few.jsonl", *OUT],
+            "every label has too few rows to hold out a 10% validation split (2 labels, at most 1 row each); "
+            "a label needs at least 5 rows",
+            id="too few to hold out",
+        ),
+        # VALID_SHARE 10 % of a label's rows, rounded half up: 0.4 of 4 rows rounds to none, 0.5 of 5 to one.
+        pytest.param(
+            ["{tmp}/once.jsonl", *OUT], "(40 labels, at most 1 row each); a label needs at least 5", id="labels once"
+        ),
+        pytest.param(
+            ["{tmp}/fours.jsonl", *OUT],
+            "(2 labels, at most 4 rows each); a label needs at least 5",
+            id="labels 4 times",
+        ),
         pytest.param(
             ["{data}", *OUT, "--vectors", "{tmp}/vec6.txt", "--embedding-dim", "16"],
             "vectors file has dimension 6 but --embedding-dim is 16",
@@ -320,6 +341,29 @@ OUT = ["--out", "{tmp}/out"]
         ),
         pytest.param(["{data}", *OUT, "--vectors", "{tmp}/none.txt"], "no such file", id="vectors missing"),
         pytest.param(["{data}", "--out", "{tmp}/afile"], "is an existing file", id="out is a file"),
+        pytest.param(
+            ["{data}", "--out", "{tmp}/afile/sub"],
+            "/afile is an existing file, so no folder can be made inside it",
+            id="out inside a file",
+        ),
+        pytest.param(
+            ["{data}", *OUT, "--vectors", "{tmp}/huge16.txt"],
+            "training stopped: the training loss became nan at epoch 1",
+            id="loss not finite",
+        ),
+        pytest.param(
+            ["{data}", *OUT, "--learning-rate", "1e30"],
+            "--learning-rate 1e+30 is out of range; it must be above 0 and at most 1",
+            id="learning rate 1e30",
+        ),
+        pytest.param(
+            ["{data}", *OUT, "--learning-rate", "1e308"],
+            "--learning-rate 1e+308 is out of range",
+            id="learning rate 1e308",
+        ),
+        pytest.param(
+            ["{data}", *OUT, "--learning-rate", "0"], "--learning-rate 0.0 is out of range", id="learning rate 0"
+        ),
         pytest.param(
             ["{data}", "--out", "{tmp}/notrun"], "is a folder that is not a previous run", id="out is another folder"
         ),
@@ -372,6 +416,12 @@ def _edit_run_json(run: Path, change: Callable[[dict[str, Any]], object]) -> Non
     (run / RUN_JSON).write_text(json.dumps(content), encoding="utf-8")
 
 
+def _nan_weights(run: Path, name: str) -> None:
+    state = torch.load(run / MODEL_PT, weights_only=True)
+    state[name].view(-1)[0] = float("nan")
+    torch.save(state, run / MODEL_PT)
+
+
 # how to break a copy of a good run (in a folder named "copied") -> the message, which names the file
 @pytest.mark.parametrize(
     ("damage", "expected_msg"),
@@ -397,6 +447,11 @@ def _edit_run_json(run: Path, change: Callable[[dict[str, Any]], object]) -> Non
             lambda run: _edit_run_json(run, lambda c: c["architecture"].update(maps=7)),
             r"copied/model\.pt: does not match run\.json",
             id="weights of another shape",
+        ),
+        pytest.param(
+            lambda run: _nan_weights(run, "output.bias"),
+            r"copied/model\.pt: the weights are not finite \(nan or inf in output\.bias\)",
+            id="weights not finite",
         ),
         pytest.param(
             lambda run: (run / VOCAB_TXT).write_text("<pad>\n<unk>\nonly\n", encoding="utf-8"),
