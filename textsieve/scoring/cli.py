@@ -4,6 +4,7 @@ are imported inside the handler (this module is imported on every run and every 
 from __future__ import annotations
 
 import argparse
+import math
 from pathlib import Path
 
 from textsieve.errors import InputError
@@ -29,6 +30,16 @@ def _count(text: str) -> int:
         raise argparse.ArgumentTypeError(f"not a whole number: {text!r}") from None
     if value < 0:
         raise argparse.ArgumentTypeError(f"must be 0 or more, not {value}")
+    return value
+
+
+def _seconds(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number of seconds: {text!r}") from None
+    if not math.isfinite(value) or value <= 0:
+        raise argparse.ArgumentTypeError(f"must be a number of seconds above 0, not {text}")
     return value
 
 
@@ -72,7 +83,7 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         help="with --cluster: MiB of JSONL per partition (Parquet partitions are its row groups)",
     )
     p.add_argument(
-        "--progress-every", type=float, default=10.0, help="seconds between progress lines when stderr is no terminal"
+        "--progress-every", type=_seconds, default=10.0, help="seconds between progress lines when stderr is no terminal"
     )
     add_location_args(p)
     p.set_defaults(func=cli_score)
