@@ -226,6 +226,12 @@ BAD_INPUT = [
     pytest.param(["in.jsonl", "--out", "o.txt"], 2, "cannot tell the format from the name", id="unknown-format"),
     pytest.param(["in.jsonl", "--out", "in.jsonl"], 2, "--out names the input file itself", id="output-is-the-input"),
     pytest.param(
+        ["in.jsonl", "--out", "o.jsonl", "--progress-every", "nan"],
+        2,
+        "--progress-every: must be a number of seconds above 0, not nan",
+        id="progress-every-nan",
+    ),
+    pytest.param(
         ["in.jsonl", "--out", "o.jsonl", "--keep", "nope"],
         2,
         "--keep names column(s) the input does not have: nope",

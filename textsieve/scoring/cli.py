@@ -83,7 +83,10 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         help="with --cluster: MiB of JSONL per partition (Parquet partitions are its row groups)",
     )
     p.add_argument(
-        "--progress-every", type=_seconds, default=10.0, help="seconds between progress lines when stderr is no terminal"
+        "--progress-every",
+        type=_seconds,
+        default=10.0,
+        help="seconds between progress lines when stderr is no terminal",
     )
     add_location_args(p)
     p.set_defaults(func=cli_score)
