@@ -104,16 +104,33 @@ def test_the_fast_writer_is_used_when_installed() -> None:
     pytest.importorskip("orjson")
     row = {"label": "repair", "p": 0.25}
     assert formats.json_line(row) == b'{"label":"repair","p":0.25}'
-    assert formats.json_line({"p": math.nan}) == b'{"p": NaN}'  # the standard module's way
 
 
-def test_rows_with_missing_values_still_take_the_fast_writer() -> None:
-    pytest.importorskip("orjson")
-    # A scored row's error column is None: one top-level null, orjson's line is kept.
-    assert formats.json_line({"label": "repair", "error": None}) == b'{"label":"repair","error":null}'
-    # A null orjson would write for NaN beside it is one too many: the standard module writes the row.
-    assert formats.json_line({"x": math.inf, "error": None}) == b'{"x": Infinity, "error": null}'
-    assert formats.json_line({"t": "null pointer", "error": None}) == b'{"t": "null pointer", "error": null}'
+def _strict(line: bytes) -> object:
+    """json.loads refusing NaN and ±Infinity, which RFC 8259 JSON does not have (§6)."""
+
+    def refuse(word: str) -> None:
+        raise ValueError(f"{word} is not JSON")
+
+    return json.loads(line, parse_constant=refuse)
+
+
+@pytest.mark.parametrize(
+    ("value", "written"),
+    [
+        ({"x": math.inf, "error": None}, {"x": None, "error": None}),
+        ({"t": "null pointer", "n": -math.inf, "error": None}, {"t": "null pointer", "n": None, "error": None}),
+        # rows the standard module writes (an integer over 64 bits, a nested NaN): the same rule
+        ({"big": 2**70, "x": math.nan}, {"big": 2**70, "x": None}),
+        ({"big": 2**70, "deep": [1.5, {"y": math.nan}]}, {"big": 2**70, "deep": [1.5, {"y": None}]}),
+    ],
+)
+def test_non_finite_numbers_are_written_as_null_so_every_line_is_json(
+    value: dict[str, object], written: dict[str, object]
+) -> None:
+    """Input read as Python's json module reads it may hold NaN or Infinity; JSON has neither
+    (RFC 8259 §6), so they are written as null, as orjson, pandas and JavaScript write them."""
+    assert _strict(formats.json_line(value)) == written
 
 
 @pytest.mark.parametrize("digits", [18, 19, 40])

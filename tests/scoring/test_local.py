@@ -228,7 +228,7 @@ BAD_INPUT = [
     pytest.param(
         ["in.jsonl", "--out", "o.jsonl", "--progress-every", "nan"],
         2,
-        "--progress-every: must be a number of seconds above 0, not nan",
+        "--progress-every: must be a number of seconds, 0 or more, not nan",
         id="progress-every-nan",
     ),
     pytest.param(

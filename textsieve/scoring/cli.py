@@ -38,8 +38,8 @@ def _seconds(text: str) -> float:
         value = float(text)
     except ValueError:
         raise argparse.ArgumentTypeError(f"not a number of seconds: {text!r}") from None
-    if not math.isfinite(value) or value <= 0:
-        raise argparse.ArgumentTypeError(f"must be a number of seconds above 0, not {text}")
+    if not math.isfinite(value) or value < 0:  # 0: a line at every update
+        raise argparse.ArgumentTypeError(f"must be a number of seconds, 0 or more, not {text}")
     return value
 
 

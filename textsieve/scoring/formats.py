@@ -12,9 +12,9 @@ import contextlib
 import csv
 import io
 import json
+import math
 import os
 from collections.abc import Callable, Iterator, Sequence
-from operator import countOf
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -355,32 +355,40 @@ def _json_default(value: object) -> object:
 
 
 def _dumps(value: object) -> str:
-    return json.dumps(value, ensure_ascii=False, default=_json_default)
+    """``value`` as JSON text. JSON has no NaN or ±Infinity (RFC 8259 §6): a non-finite number
+    (which the input may carry, as Python's json module reads ``NaN``) is written as null, as
+    orjson, pandas and JavaScript write it, so every line parses with any JSON reader."""
+    try:
+        return json.dumps(value, ensure_ascii=False, default=_json_default, allow_nan=False)
+    except ValueError:
+        return json.dumps(_finite(value), ensure_ascii=False, default=_json_default, allow_nan=False)
+
+
+def _finite(value: object) -> object:
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, dict):
+        return {k: _finite(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_finite(v) for v in value]
+    return value
 
 
 def json_line(value: object) -> bytes:
     """One row as a line of JSON (no newline): the same value :func:`_dumps` writes, faster.
 
     orjson writes it when installed: without spaces, and floats in their shortest form either way
-    (3.2e-05 may read 0.000032), the same numbers when read back. Whatever orjson would write as
-    another value is left to the standard module. orjson writes NaN and ±Infinity as null, so its
-    line is kept only when it holds exactly one ``null`` per top-level None of the row (a missing
-    value, the error column of a scored row): any other null, or the word inside a string, sends
-    the row to the standard module, which writes NaN as NaN as before. orjson refuses integers
-    over 64 bits, keys that are not strings, lone surrogates and types it does not know or would
-    write its own way (dates, decimals, bytes, NumPy scalars, subclasses): those rows go to the
-    standard module too. On the 2-core bench the standard module's writing was a third of the
-    scoring process's CPU.
+    (3.2e-05 may read 0.000032), the same numbers when read back; NaN and ±Infinity as null, as
+    :func:`_dumps` does. orjson refuses integers over 64 bits, keys that are not strings, lone
+    surrogates and types it does not know or would write its own way (dates, decimals, bytes,
+    NumPy scalars, subclasses): those rows go to the standard module. On the 2-core bench the
+    standard module's writing was a third of the scoring process's CPU.
     """
     if _orjson_dumps is not None:
         try:
-            line = _orjson_dumps(value, option=_ORJSON_STRICT)
+            return _orjson_dumps(value, option=_ORJSON_STRICT)
         except TypeError:
             pass
-        else:
-            nones = countOf(value.values(), None) if isinstance(value, dict) else 0
-            if line.count(b"null") == nones:
-                return line
     return _dumps(value).encode("utf-8")
 
 
