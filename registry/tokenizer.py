@@ -255,6 +255,29 @@ def _check_unicode_version(spec: TokenizerSpec) -> None:
     )
 
 
+def has_no_tokens(text: str) -> bool:
+    """Whether no tokenizer spec finds a token in ``text``: every character is whitespace or an
+    invisible format character (category Cf: zero-width space, joiners, bidi controls), which
+    separate tokens and never become one. Read up to the first character that is neither, so a
+    text with a visible first character costs one step."""
+    for c in text:
+        if not c.isspace() and (c.isascii() or unicodedata.category(c) != "Cf"):
+            return False
+    return True
+
+
+def nothing_to_classify(text: str) -> str | None:
+    """Why ``text`` gives the model nothing to classify (a label for no tokens would be the model's
+    prior, whatever the text), or None: the words the HTTP API, the Python API and file scoring
+    refuse such a text with."""
+    if not text.strip():
+        return "is empty (only whitespace)" if text else "is empty"
+    if has_no_tokens(text):
+        shown = next(c for c in text if not c.isspace())
+        return f"has only whitespace and invisible characters (such as U+{ord(shown):04X}), no words"
+    return None
+
+
 class Tokenizer:
     """Splits text into tokens with offsets, as described by a :class:`TokenizerSpec`."""
 

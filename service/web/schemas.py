@@ -18,6 +18,7 @@ from pydantic_core import PydanticCustomError
 
 from textsieve.registry import ModelInfo, VersionInfo
 from textsieve.registry.names import MAX_VERSION, MODEL_NAME, MODEL_NAME_RULE
+from textsieve.registry.tokenizer import nothing_to_classify
 
 # Bounds the schema states so that no number reaches a database column or a JSON encoder too big
 # for it; the service's own limits (max_spans) are far below.
@@ -67,10 +68,9 @@ class PredictRequest(_Request):
     @classmethod
     def _valid_texts(cls, texts: list[str]) -> list[str]:
         for i, t in enumerate(texts):
-            if not t.strip():
-                raise ValueError(
-                    f"texts[{i}] is empty{' (only whitespace)' if t else ''}; every text needs something to classify"
-                )
+            why = nothing_to_classify(t)
+            if why is not None:
+                raise ValueError(f"texts[{i}] {why}; every text needs something to classify")
             nul = t.find("\x00")
             if nul >= 0:
                 raise ValueError(f"texts[{i}] contains a NUL character (U+0000) at character {nul}; remove it")

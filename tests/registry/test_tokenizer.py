@@ -13,7 +13,15 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from textsieve.errors import BundleError
-from textsieve.registry.tokenizer import PAD, UNK, Tokenizer, TokenizerSpec, UnicodeVersionWarning, Vocabulary
+from textsieve.registry.tokenizer import (
+    PAD,
+    UNK,
+    Tokenizer,
+    TokenizerSpec,
+    UnicodeVersionWarning,
+    Vocabulary,
+    has_no_tokens,
+)
 
 TOK = Tokenizer()
 
@@ -388,3 +396,22 @@ def test_normal_forms_of_hard_sequences(text: str, expected: list[str]) -> None:
     assert TOK.split(text)[0] == expected
     for t in TOK.tokenize(text):
         assert t.norm == unicodedata.normalize("NFKC", text[t.start : t.end]).replace("\u2019", "'").casefold()
+
+
+_SPARSE = st.text(
+    alphabet=st.sampled_from(
+        [" ", "\t", "\n", "\u3000", "\u00a0", "\u200b", "\u200d", "\u2060", "\ufeff", "\u202e", "\u00ad"]
+        + ["a", "\u0301", "\u4e00", "!", "\x00", "\U0001f600", "\u0600", "\U000e0001"]
+    ),
+    max_size=8,
+)
+
+
+@settings(max_examples=500, deadline=None)
+@given(_SPARSE, st.booleans())
+def test_has_no_tokens_is_what_every_spec_finds(text: str, split_cjk: bool) -> None:
+    """The check the HTTP API, the Python API and file scoring refuse a text with (nothing to
+    classify) holds exactly when the tokenizer finds no token, under either spec."""
+    tokenizer = Tokenizer(TokenizerSpec(split_cjk=split_cjk))
+    assert has_no_tokens(text) == (not tokenizer.tokenize(text))
+    assert has_no_tokens(text) == (not tokenizer.bounds(text)[0])

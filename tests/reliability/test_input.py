@@ -76,6 +76,14 @@ CATALOGUE = [
         id="whitespace-only text",
     ),
     pytest.param(
+        b'{"texts": ["fine", "\\u200b \\u2060\\ufeff"]}',
+        422,
+        "invalid-input",
+        "texts",
+        ["texts[1]", "only whitespace and invisible characters (such as U+200B), no words"],
+        id="invisible characters only (no token: the label would be the model's prior)",
+    ),
+    pytest.param(
         b'{"texts": ["a"], "model": ""}', 422, "invalid-input", None, ["bad model name"], id="empty model name"
     ),
     pytest.param(

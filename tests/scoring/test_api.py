@@ -103,6 +103,7 @@ def test_predict_reads_a_generator_once_and_refuses_what_the_http_api_refuses(sc
     for bad, words in (
         ([""], "texts[0] is empty"),
         (["ok", "  \n"], "texts[1] is empty"),
+        (["ok", "\u2060"], "texts[1] has only whitespace and invisible characters (such as U+2060)"),
         (["ok", 3], "an int"),
         (["ok", "a\x00b"], "texts[1] contains a NUL character (U+0000) at character 1"),
         (["caf\u00e9 \ud800"], "texts[0] contains a lone surrogate (U+D800) at character 5"),

@@ -142,7 +142,11 @@ def test_a_csv_input_keeps_only_the_asked_columns_and_renames_clashing_ones(
 BAD_ROWS = [
     ({"text": "the chain is broken"}, None),
     ({"text": ""}, "text field 'text' is empty"),
-    ({"text": "   "}, "text field 'text' is empty"),
+    ({"text": "   "}, "text field 'text' is empty (only whitespace)"),
+    (
+        {"text": "\u200b\u200d"},
+        "text field 'text' has only whitespace and invisible characters (such as U+200B), no words",
+    ),
     ({"other": "x"}, "text field 'text' is missing"),
     ({"text": None}, "text field 'text' is missing"),
     ({"text": 42}, "text field 'text' is an int, not a string"),
@@ -164,7 +168,7 @@ def test_rows_without_a_text_get_an_error_and_are_counted(
     expected.insert(3, "line 4 is not valid JSON")
     assert [r["error"] for r in rows] == expected
     assert [r["label"] is None for r in rows] == [e is not None for e in expected]
-    assert "6 row(s) had no text to score" in capsys.readouterr().out
+    assert "7 row(s) had no text to score" in capsys.readouterr().out
 
     assert score(src, "--model", MODEL, "--out", out, "--registry", scoring_registry, "--strict") == 2
     err = capsys.readouterr().err.strip().splitlines()

@@ -24,6 +24,7 @@ from tests.helpers.jsonl import read_jsonl
 from tests.helpers.service import MODEL, serving, settings_for
 from textsieve.registry.bundle import open_bundle
 from textsieve.registry.runtime import Predictor
+from textsieve.registry.tokenizer import nothing_to_classify
 from textsieve.service.inference.spans import explain
 
 pytestmark = pytest.mark.anyio
@@ -239,8 +240,8 @@ _unicode_text = st.lists(
         st.sampled_from([" ", "", "  ", "\u00a0", "\u3000"]), min_size=len(parts), max_size=len(parts)
     ).map(lambda seps: "".join(p + s for p, s in zip(parts, seps, strict=True)))
 )
-# What the service accepts as a text: something besides whitespace, and no NUL (see schemas.py).
-_unicode_text = _unicode_text.filter(lambda t: t.strip() and "\x00" not in t)
+# What the service accepts as a text: something to classify, and no NUL (see schemas.py).
+_unicode_text = _unicode_text.filter(lambda t: nothing_to_classify(t) is None and "\x00" not in t)
 
 
 def test_offsets_index_the_text_as_sent_for_any_unicode(live_url: str) -> None:

@@ -10,6 +10,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError, NotFoundError
+from textsieve.registry.tokenizer import nothing_to_classify
 from textsieve.scoring.rows import article
 
 if TYPE_CHECKING:
@@ -98,9 +99,10 @@ class Model:
         for i, t in enumerate(items):
             if not isinstance(t, str):
                 raise InputError(f"texts must be strings; item {i} is {article(type(t).__name__)}")
-            if not t.strip():
+            why = nothing_to_classify(t)
+            if why is not None:
                 # As the HTTP API answers (422): a label for no words would be the model's prior.
-                raise InputError(f"texts[{i}] is empty; every text needs something to classify")
+                raise InputError(f"texts[{i}] {why}; every text needs something to classify")
             # The HTTP API's other refusals (service/web/schemas.py), in the same words.
             nul = t.find("\x00")
             if nul >= 0:

@@ -8,6 +8,7 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError
+from textsieve.registry.tokenizer import nothing_to_classify
 from textsieve.scoring.columns import Layout
 
 if TYPE_CHECKING:
@@ -80,8 +81,9 @@ def text_problem(row: Any, field: str) -> str | None:
     value = row[field]
     if not isinstance(value, str):
         return f"text field {field!r} is {article(type(value).__name__)}, not a string"
-    if not value.strip():
-        return f"text field {field!r} is empty"
+    why = nothing_to_classify(value)
+    if why is not None:
+        return f"text field {field!r} {why}"
     return None
 
 
