@@ -39,12 +39,31 @@ def _one_line(cell: str) -> str:
 def table(headers: Sequence[str], rows: Sequence[Sequence[object]], *, right: Sequence[int] = ()) -> str:
     """Columns padded to their widest cell, two spaces apart; ``right`` lists right-aligned columns."""
     cells = [[str(h) for h in headers]] + [[NONE if c is None else _one_line(str(c)) for c in row] for row in rows]
-    widths = [max(len(row[i]) for row in cells) for i in range(len(headers))]
+    widths = [max(_columns(row[i]) for row in cells) for i in range(len(headers))]
     lines = []
     for row in cells:
-        parts = [c.rjust(w) if i in right else c.ljust(w) for i, (c, w) in enumerate(zip(row, widths, strict=True))]
+        parts = []
+        for i, (c, w) in enumerate(zip(row, widths, strict=True)):
+            pad = " " * (w - _columns(c))
+            parts.append(pad + c if i in right else c + pad)
         lines.append("  ".join(parts).rstrip())
     return "\n".join(lines)
+
+
+def _columns(cell: str) -> int:
+    """The terminal columns ``cell`` takes: wide characters (East Asian Wide and Fullwidth: 汉字,
+    most emoji) take two, combining marks and zero-width format characters none (Unicode UAX #11;
+    common practice in terminals)."""
+    if cell.isascii():
+        return len(cell)
+    import unicodedata
+
+    width = 0
+    for c in cell:
+        if unicodedata.combining(c) or unicodedata.category(c) in ("Mn", "Me", "Cf"):
+            continue
+        width += 2 if unicodedata.east_asian_width(c) in ("W", "F") else 1
+    return width
 
 
 def when(at: str | None) -> str:

@@ -119,7 +119,7 @@ def _number(low: float, high: float, *, low_open: bool = True) -> Callable[[obje
     def check(value: object) -> float | None:
         if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
             return None
-        v = float(value)
+        v = float(value) + 0.0  # -0.0 + 0.0 is 0.0: "-0" is stored and shown as 0
         above = v > low if low_open else v >= low
         return v if above and v <= high else None
 

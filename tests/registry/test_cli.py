@@ -39,6 +39,14 @@ def test_table_pads_columns_and_right_aligns_numbers() -> None:
     assert text.splitlines() == ["NAME      N", "alpha     1", "b      1234", "c         -"]
 
 
+def test_wide_characters_keep_the_columns_in_line() -> None:
+    """A reviewer named in Chinese, an emoji in a reason: two terminal columns a character (UAX #11),
+    a combining accent none; the next column starts at the same place on every row."""
+    text = table(["BY", "N"], [["王小明", 1], ["ana", 22], ["e\u0301mile 👍", 3]], right=(1,))
+    lines = text.splitlines()
+    assert lines == ["BY         N", "王小明     1", "ana       22", "e\u0301mile 👍   3"]
+
+
 def test_a_reason_with_line_breaks_stays_on_its_row() -> None:
     """Reasons keep their line breaks in the registry; a table shows each as ↵ so rows stay rows."""
     text = table(["EVENT", "REASON", "BY"], [[1, "first line\nsecond\r\nthird\tend", "ana"], [2, "ok", "bo"]])

@@ -197,3 +197,10 @@ def test_declaring_a_setting_is_one_line_and_twice_is_refused() -> None:
 
     with pytest.raises(ValueError, match="declared twice"):
         declare(Setting.number(MACRO_F1_DROP.key, 0.5, 0.0, 1.0, Group.GATES, "again"))
+
+
+def test_minus_zero_is_stored_and_shown_as_zero() -> None:
+    """float("-0") is -0.0, which equals 0 and printed as '-0' in the gates table."""
+    setting = SETTINGS["macro_f1_drop"]
+    value = setting.parse("-0")
+    assert value == 0.0 and str(value) == "0.0" and setting.show(value) == "0"
