@@ -254,7 +254,10 @@ def _schedstat_seconds(pid: int) -> float:
 async def test_each_worker_process_reports_memory_and_cpu(shared_registry: Path) -> None:
     started = time.time()
     async with serving(settings_for(shared_registry, inference="processes", workers=2)) as (app, client):
-        assert (await client.post("/v1/predict", json={"texts": ["charged twice"] * 50})).status_code == 200
+        # Enough work for the workers' CPU to show in clock ticks (10 ms): they now start with the
+        # tokenizer's warm-up done by their fork server, so loading a tiny model may take less.
+        for _ in range(20):
+            assert (await client.post("/v1/predict", json={"texts": ["charged twice"] * 50})).status_code == 200
         text = (await client.get("/metrics")).text
         pids = dict(app.state.pool.procs.processes())
         # proc(5): status's VmRSS and schedstat's run time are the kernel's other reports of the
@@ -264,13 +267,13 @@ async def test_each_worker_process_reports_memory_and_cpu(shared_registry: Path)
     parse(text)
     samples = outside(text)
     assert sorted(pids) == [0, 1] and os.getpid() not in pids.values()
+    assert sum(samples[("textsieve_worker_cpu_seconds_total", (("worker", str(i)),))] for i in pids) > 0
     for i in pids:
         w = (("worker", str(i)),)
         resident = samples[("textsieve_worker_resident_memory_bytes", w)]
         assert resident == pytest.approx(rss[i], rel=0.05)  # idle workers: no change between the reads
         assert 0 < samples[("textsieve_worker_shared_memory_bytes", w)] <= resident
         cpu = samples[("textsieve_worker_cpu_seconds_total", w)]
-        assert cpu > 0  # each worker loaded and warmed the version itself
         assert cpu == pytest.approx(ran[i], abs=0.05)
         assert started - 2 <= samples[("textsieve_worker_start_time_seconds", w)] <= time.time() + 1
     assert {labels for name, labels in samples if name == "textsieve_worker_cpu_seconds_total"} == {
