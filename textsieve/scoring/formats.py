@@ -137,7 +137,8 @@ class JsonlReader(_ByteCounted):
             self.read += sum(map(len, lines))
             block = b"".join(lines)
             loads = _orjson_loads if _orjson_loads is not None and _plain_block(block) else json_loads
-            escapes = _SURROGATE_ESCAPE in block.lower()  # a \uD800–\uDFFF escape somewhere in the block
+            # a \uD800–\uDFFF escape somewhere in the block (two scans, no lower-cased copy of it)
+            escapes = _SURROGATE_ESCAPE in block or b"\\uD" in block
             for raw in lines:
                 number += 1
                 if not raw.strip():
