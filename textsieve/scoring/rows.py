@@ -130,21 +130,12 @@ def output_rows(rows: Sequence[Any], part: Split, results: Scored, layout: Layou
     out: list[Row] = []
     append = out.append
     missing: list[Any] = [None] * len(kept)
-    if not part.problems:  # every row scored, in order: no look-up of where its result is
-        for j, row in enumerate(rows):
-            values: list[Any] = list(map(row.get, kept)) if kept else []
-            values.append(labels[best[j]])
-            values += probs[j]
-            if found is not None:
-                values.append(found[j])
-            values.append(None)
-            append(dict(zip(columns, values, strict=True)))
-        return out
-    position = {row: j for j, row in enumerate(part.scored_rows)}
     unscored: list[Any] = [None] * (len(labels) + 1 + (found is not None))
+    # Where each row's result is: row i's is result i when every row was scored (no look-up).
+    position = {row: j for j, row in enumerate(part.scored_rows)} if part.problems else None
     for i, row in enumerate(rows):
-        values = list(map(row.get, kept)) if kept and isinstance(row, dict) else missing[:]
-        at = position.get(i)
+        values: list[Any] = list(map(row.get, kept)) if kept and isinstance(row, dict) else missing[:]
+        at = i if position is None else position.get(i)
         if at is None:
             values += unscored
             values.append(part.problems[i])
