@@ -278,6 +278,27 @@ def nothing_to_classify(text: str) -> str | None:
     return None
 
 
+def text_refusal(text: str) -> str | None:
+    """Why a text sent to be classified is refused, or None: nothing to classify, a NUL (no human
+    text holds one; C-based consumers cut strings at it), or a lone surrogate (JSON may carry
+    ``"\\ud800"``; it is not text and cannot be encoded in a reply). The words the HTTP API
+    (service/web/schemas.py), ``load_model(...).predict`` and a verdict's text are refused with,
+    after what names the text."""
+    why = nothing_to_classify(text)
+    if why is not None:
+        return f"{why}; every text needs something to classify"
+    nul = text.find("\x00")
+    if nul >= 0:
+        return f"contains a NUL character (U+0000) at character {nul}; remove it"
+    if not text.isascii():  # an ASCII string (a flag CPython keeps on it) has no surrogate
+        try:
+            text.encode("utf-8")
+        except UnicodeEncodeError as exc:
+            code = ord(text[exc.start])
+            return f"contains a lone surrogate (U+{code:04X}) at character {exc.start}; send valid Unicode"
+    return None
+
+
 class Tokenizer:
     """Splits text into tokens with offsets, as described by a :class:`TokenizerSpec`."""
 

@@ -38,6 +38,7 @@ from textsieve.registry.names import (
 from textsieve.registry.queries import Queries
 from textsieve.registry.records import Agreement, VerdictInfo
 from textsieve.registry.stats import wilson_interval
+from textsieve.registry.tokenizer import text_refusal
 
 if TYPE_CHECKING:
     from textsieve.registry.api import Registry
@@ -83,16 +84,9 @@ def utc_cutoff(text: str) -> str:
 def check_text(text: object) -> str:
     if not isinstance(text, str) or not text.strip():
         raise InputError("the verdict's text is empty; send the text the prediction was made for")
-    nul = text.find("\x00")
-    if nul >= 0:
-        raise InputError(f"the verdict's text contains a NUL character (U+0000) at character {nul}; remove it")
-    try:
-        text.encode("utf-8")
-    except UnicodeEncodeError as exc:
-        raise InputError(
-            f"the verdict's text contains a lone surrogate (U+{ord(text[exc.start]):04X}) at character "
-            f"{exc.start}; send valid Unicode"
-        ) from None
+    why = text_refusal(text)  # what a prediction's text is refused for: no verdict can be on one
+    if why is not None:
+        raise InputError(f"the verdict's text {why}")
     return text
 
 

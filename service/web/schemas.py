@@ -18,7 +18,7 @@ from pydantic_core import PydanticCustomError
 
 from textsieve.registry import ModelInfo, VersionInfo
 from textsieve.registry.names import MAX_VERSION, MODEL_NAME, MODEL_NAME_RULE
-from textsieve.registry.tokenizer import nothing_to_classify
+from textsieve.registry.tokenizer import text_refusal
 
 # Bounds the schema states so that no number reaches a database column or a JSON encoder too big
 # for it; the service's own limits (max_spans) are far below.
@@ -68,23 +68,9 @@ class PredictRequest(_Request):
     @classmethod
     def _valid_texts(cls, texts: list[str]) -> list[str]:
         for i, t in enumerate(texts):
-            why = nothing_to_classify(t)
+            why = text_refusal(t)
             if why is not None:
-                raise ValueError(f"texts[{i}] {why}; every text needs something to classify")
-            nul = t.find("\x00")
-            if nul >= 0:
-                raise ValueError(f"texts[{i}] contains a NUL character (U+0000) at character {nul}; remove it")
-            try:
-                # JSON may carry lone surrogates ("\ud800"); they are not text, cannot be encoded
-                # in the reply, and would otherwise surface as a server error. An ASCII string
-                # (a flag CPython keeps on it) has none, and is not encoded for nothing.
-                if not t.isascii():
-                    t.encode("utf-8")
-            except UnicodeEncodeError as exc:
-                raise ValueError(
-                    f"texts[{i}] contains a lone surrogate (U+{ord(t[exc.start]):04X}) at "
-                    f"character {exc.start}; send valid Unicode"
-                ) from None
+                raise ValueError(f"texts[{i}] {why}")
         return texts
 
 

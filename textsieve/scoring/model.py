@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError, NotFoundError
-from textsieve.registry.tokenizer import nothing_to_classify
+from textsieve.registry.tokenizer import text_refusal
 from textsieve.scoring.rows import article
 
 if TYPE_CHECKING:
@@ -99,22 +99,9 @@ class Model:
         for i, t in enumerate(items):
             if not isinstance(t, str):
                 raise InputError(f"texts must be strings; item {i} is {article(type(t).__name__)}")
-            why = nothing_to_classify(t)
+            why = text_refusal(t)  # what the HTTP API answers 422 to, in the same words
             if why is not None:
-                # As the HTTP API answers (422): a label for no words would be the model's prior.
-                raise InputError(f"texts[{i}] {why}; every text needs something to classify")
-            # The HTTP API's other refusals (service/web/schemas.py), in the same words.
-            nul = t.find("\x00")
-            if nul >= 0:
-                raise InputError(f"texts[{i}] contains a NUL character (U+0000) at character {nul}; remove it")
-            if not t.isascii():
-                try:
-                    t.encode("utf-8")
-                except UnicodeEncodeError as exc:
-                    raise InputError(
-                        f"texts[{i}] contains a lone surrogate (U+{ord(t[exc.start]):04X}) at "
-                        f"character {exc.start}; send valid Unicode"
-                    ) from None
+                raise InputError(f"texts[{i}] {why}")
         if isinstance(spans, bool) or not isinstance(spans, int) or spans < 0:
             raise InputError(f"spans must be a whole number, 0 or more, not {spans!r}")
         return self._predictor.predict(items, spans=spans)
