@@ -17,7 +17,7 @@ import numpy as np
 from textsieve import __version__
 from textsieve.errors import InputError, ParityError
 from textsieve.exporter.run_folder import VALID_JSONL, LoadedRun, RunInfo, load_run
-from textsieve.files import atomic_directory, atomic_write_text, file_in_the_way, sha256_file
+from textsieve.files import atomic_directory, atomic_write_text, check_out_folder, sha256_file
 from textsieve.labelled import Example, load_examples
 from textsieve.registry import measures
 from textsieve.registry.bundle import check_graph, manifest_json
@@ -213,18 +213,7 @@ def _check_out(out: Path) -> None:
             f"--out {shown}: the path is not valid UTF-8; onnxruntime opens the model by its name, "
             "which must be UTF-8 text: name the bundle folder in UTF-8"
         ) from None
-    if out.is_dir():
-        if not (out / MANIFEST).is_file() and any(out.iterdir()):
-            raise InputError(f"{out}: exists and is not a bundle; choose an empty or new folder")
-    elif out.exists() or out.is_symlink():
-        raise InputError(
-            f"--out {out}: is an existing file; name a new or empty folder, or a previous bundle folder to replace"
-        )
-    elif (blocker := file_in_the_way(out)) is not None:
-        raise InputError(
-            f"--out {out}: {blocker} is an existing file, so no folder can be made inside it; "
-            "name a new folder elsewhere"
-        )
+    check_out_folder(out, kind="bundle", previous=MANIFEST)
 
 
 def _targets(examples: list[Example], labels: list[str]) -> np.ndarray:

@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING, Any, NamedTuple
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from textsieve.errors import BundleError, InputError
-from textsieve.files import atomic_directory, file_in_the_way
+from textsieve.files import atomic_directory, check_out_folder
 from textsieve.labelled import Example
 from textsieve.registry.manifest import ArchitectureInfo, LengthInfo, TrainingInfo
 from textsieve.registry.report.embedding_files import EMBEDDINGS_NPZ, embedding_arrays
@@ -106,21 +106,7 @@ def is_run_dir(path: Path) -> bool:
 
 def check_out(out: Path) -> None:
     """``out`` may become a run folder: absent, empty, or a previous run to replace."""
-    if out.is_dir():
-        if any(out.iterdir()) and not is_run_dir(out):
-            raise InputError(
-                f"--out {out}: is a folder that is not a previous run (no {RUN_JSON}); "
-                "name a new or empty folder, or a previous run folder to replace"
-            )
-    elif out.exists() or out.is_symlink():
-        raise InputError(
-            f"--out {out}: is an existing file; name a new or empty folder, or a previous run folder to replace"
-        )
-    elif (blocker := file_in_the_way(out)) is not None:
-        raise InputError(
-            f"--out {out}: {blocker} is an existing file, so no folder can be made inside it; "
-            "name a new folder elsewhere"
-        )
+    check_out_folder(out, kind="run", previous=RUN_JSON)
 
 
 def write_run(

@@ -16,6 +16,8 @@ import tempfile
 from collections.abc import Iterator
 from pathlib import Path
 
+from textsieve.errors import InputError
+
 CHUNK = 1 << 20
 
 
@@ -80,6 +82,26 @@ def file_in_the_way(path: Path) -> Path | None:
     return None
 
 
+def check_out_folder(out: Path, *, kind: str, previous: str) -> None:
+    """``out`` (a ``--out`` for a ``kind`` folder: "run", "bundle") may become one: absent, empty,
+    or a previous one to replace, which holds the file ``previous``; else InputError, one line."""
+    if out.is_dir():
+        if any(out.iterdir()) and not (out / previous).is_file():
+            raise InputError(
+                f"--out {out}: is a folder that is not a previous {kind} (no {previous}); "
+                f"name a new or empty folder, or a previous {kind} folder to replace"
+            )
+    elif out.exists() or out.is_symlink():
+        raise InputError(
+            f"--out {out}: is an existing file; name a new or empty folder, or a previous {kind} folder to replace"
+        )
+    elif (blocker := file_in_the_way(out)) is not None:
+        raise InputError(
+            f"--out {out}: {blocker} is an existing file, so no folder can be made inside it; "
+            "name a new folder elsewhere"
+        )
+
+
 @contextlib.contextmanager
 def atomic_directory(target: Path, *, replace: bool = False) -> Iterator[Path]:
     """Yield a temporary sibling folder; on success it is fsync'd and renamed to ``target``.
@@ -123,6 +145,7 @@ __all__ = [
     "atomic_directory",
     "atomic_write_bytes",
     "atomic_write_text",
+    "check_out_folder",
     "file_in_the_way",
     "fsync_dir",
     "sha256_file",
