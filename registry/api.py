@@ -839,7 +839,9 @@ class Registry:
             _allowed(target, State.CANDIDATE)
             previous = q.in_state(model, State.CANDIDATE)
             if previous is not None:
-                q.set_state(model, previous.version, State.REGISTERED)
+                # Back to what it was: a version that has been live (a retired one on trial again) stays retired.
+                back = State.RETIRED if previous.promoted_at is not None else State.REGISTERED
+                q.set_state(model, previous.version, back)
             q.set_state(model, version, State.CANDIDATE)
             event_id = q.add_event(
                 model=model,

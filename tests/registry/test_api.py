@@ -260,6 +260,13 @@ def test_lifecycle_one_live_one_candidate_promote_retires_and_rollback_walks_bac
     assert registry.rollback("m", reason="c too").version == 1
     with pytest.raises(StateError, match="no version was live before"):
         registry.rollback("m", reason="nothing left")
+
+    # A retired version on trial again, replaced by another candidate, goes back to retired (it has
+    # been live): 'registered' would hide that from the versions table.
+    assert registry.promote("m", 3, "candidate", reason="c again").version.state == "candidate"
+    assert registry.promote("m", 2, "candidate", reason="b instead").version.state == "candidate"
+    assert registry.version("m", 3).state == "retired"
+    assert_invariants(registry, "m")
     assert registry.live("m").version == 1  # type: ignore[union-attr]
     assert_invariants(registry, "m")
 
