@@ -116,9 +116,9 @@ DENSE_CELLS = 1 << 20
 def _windows(p: Predictor, lengths: np.ndarray, out: Outputs, best: np.ndarray, ks: np.ndarray) -> Windows | None:
     """Every window a filter fired on (its share of the chosen class > 0), with the shares summed,
     in (row, start, end) order: one ``np.bincount`` over a dense grid, one cell per (row, start,
-    width), instead of sorting the fired filters' keys. The row-major scan meets a window's filters
-    in ascending order and every other filter adds 0 to cell 0 (no window has width 0), so each
-    total is the same sum in the same order as :meth:`Predictor.spans`. None when the grid would
+    width), instead of sorting the fired filters' keys. The fired filters are taken in row-major
+    order, which meets a window's filters in ascending order, so each total is the same sum in the
+    same order as :meth:`Predictor.spans`. None when the grid would
     be too large or the graph gave a window start outside its text (the sorting path then does
     exactly what it always did)."""
     n = len(lengths)
@@ -137,11 +137,10 @@ def _windows(p: Predictor, lengths: np.ndarray, out: Outputs, best: np.ndarray, 
     key = starts * (cells - 1)
     key += np.minimum(starts + p.filter_widths, text_ends)
     key += (np.arange(n) * (stride * cells))[:, None]
-    key *= fired
+    which = np.flatnonzero(fired)  # about half of them: the rest would only add zeros
     totals = np.bincount(
-        key.ravel(), weights=np.multiply(contrib, fired, dtype=np.float64).ravel(), minlength=n * stride * cells
+        key.ravel()[which], weights=contrib.ravel()[which].astype(np.float64), minlength=n * stride * cells
     )
-    totals[0] = 0.0  # where the filters that did not fire went
     cell = np.flatnonzero(totals > 0)
     w_row, rest = np.divmod(cell, stride * cells)
     w_start, w_width = np.divmod(rest, cells)
