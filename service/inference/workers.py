@@ -27,6 +27,7 @@ with an :class:`Outcome` and a value.
 from __future__ import annotations
 
 import asyncio
+import atexit
 import contextlib
 import gc
 import itertools
@@ -605,6 +606,8 @@ class _Worker:
                 while self._read_once(replies):
                     pass
                 self._detach(replies)
+            elif not self.loop.is_running():  # no loop will read it (stopped before the shutdown ran)
+                replies.close()
             elif not replies.closed.wait(timeout):  # the loop reads up to the end and closes it
                 if not self._on_loop(self._detach, replies):
                     replies.close()  # the loop has closed
@@ -642,6 +645,11 @@ class WorkerProcesses:
                         "fix that, or set TEXTSIEVE_INFERENCE=threads to run inference in the server process"
                     ) from exc
                 self._started = True
+                # Workers ignore SIGTERM (a signal to the process group must not cut a batch), so
+                # multiprocessing's exit hook, which terminates daemon children and then joins
+                # them, would wait for ever on a server stopped before its shutdown ran (a SIGTERM
+                # while it was still loading models). This hook runs first and stops them.
+                atexit.register(self.shutdown)
 
     def set_scheduling(self, policy: str) -> None:
         """Put every running worker (and any that replaces one) under ``policy``: "normal" or "batch"."""
@@ -792,6 +800,7 @@ class WorkerProcesses:
         return out
 
     def shutdown(self) -> None:
+        atexit.unregister(self.shutdown)
         for w in self.workers:
             with w.replace_lock:
                 w.stop()

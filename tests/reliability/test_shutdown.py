@@ -118,3 +118,33 @@ def test_sigterm_refuses_new_connections_finishes_accepted_requests_and_exits_0(
         f"refusing after {refused_at - signalled:.2f}s, last answer at {finished - signalled:.2f}s, "
         f"exit 0 at {exited - signalled:.2f}s"
     )
+
+
+def test_sigterm_while_the_models_still_load_ends_the_server_and_its_workers(
+    tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """An orchestrator may stop a replica before it is ready. The worker processes ignore SIGTERM
+    (a signal to the process group must not cut a batch), and the server used to wait for ever at
+    exit for the ones its loading had started (found by probing: 6 of 6 tries on the demo model)."""
+    import psutil
+
+    registry = make_registry(tmp_path / "registry", tiny_bundles, live=1)
+    server = ServerProcess.start(str(registry), tmp_path / "server.log")
+    try:
+        deadline = time.monotonic() + 60
+        while time.monotonic() < deadline:  # alive: the app answers, the models are loading
+            try:
+                if httpx.get(f"{server.url}/healthz", timeout=1).status_code == 200:
+                    break
+            except httpx.HTTPError:
+                time.sleep(0.02)
+        children = psutil.Process(server.proc.pid).children(recursive=True)
+        signalled = time.monotonic()
+        server.proc.send_signal(signal.SIGTERM)
+        server.proc.wait(timeout=EXIT_BOUND_S + 5)
+        took = time.monotonic() - signalled
+    finally:
+        server.stop()
+    assert took <= EXIT_BOUND_S, f"{took:.1f} s to exit\n{server.output()[-2000:]}"
+    _, alive = psutil.wait_procs(children, timeout=10)
+    assert not alive, f"left running: {[p.cmdline() for p in alive]}"
