@@ -75,6 +75,21 @@ def _ok(base: str, method: str, path: str, timeout: float, **kwargs: Any) -> Any
     return r
 
 
+def _reply(r: httpx.Response, *keys: str) -> dict[str, Any]:
+    """A 200 reply's JSON object, holding ``keys``; another server's reply (HTML, other JSON) is
+    one line saying so, not a JSONDecodeError or a KeyError."""
+    try:
+        body = r.json()
+    except ValueError:
+        body = None
+    if not isinstance(body, dict) or any(k not in body for k in keys):
+        raise UnavailableError(
+            f"{r.request.url} answered HTTP {r.status_code} but not as textsieve does "
+            f"({r.headers.get('content-type', 'no content type')}); is --url the textsieve service?"
+        )
+    return body
+
+
 def _problem_detail(r: httpx.Response) -> str:
     try:
         body = r.json()
@@ -153,7 +168,7 @@ def cli_predict(args: argparse.Namespace) -> int:
     if args.version is not None:
         payload["version"] = args.version
     r = _ok(base, "POST", "/v1/predict", 60.0, json=payload)
-    reply = r.json()
+    reply = _reply(r, "results")
     if args.json:
         print(r.text)
     else:
@@ -214,7 +229,8 @@ def cli_drift(args: argparse.Namespace) -> int:
 
     base = _base(service_url(args.url))
     r = _ok(base, "GET", f"/v1/models/{urllib.parse.quote(args.model, safe='')}/drift", 30.0)
-    print(r.text if args.json else render_drift(r.json()))
+    reply = _reply(r, "model", "versions")
+    print(r.text if args.json else render_drift(reply))
     return 0
 
 
@@ -236,12 +252,16 @@ def cli_health(args: argparse.Namespace) -> int:
     except httpx.HTTPError as exc:
         print(f"not ready: cannot reach {url} ({type(exc).__name__})")
         return 1
+    ours = True
     try:
         body = r.json()
         reason = str(body.get("reason", "")).replace("\n", " ")
+        ours = isinstance(body.get("ready"), bool)
     except (ValueError, AttributeError):
-        reason = f"HTTP {r.status_code} from {url}/readyz is not a textsieve readiness reply"
-    if r.status_code == 200:
+        ours = False
+    if not ours:  # another server answered: whatever its status, this is not a ready textsieve
+        reason = f"HTTP {r.status_code} from {base}/readyz is not a textsieve readiness reply; is --url the service?"
+    elif r.status_code == 200:
         print(f"ready: {reason}")
         return 0
     if not reason and r.status_code == 404:

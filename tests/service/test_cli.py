@@ -131,3 +131,39 @@ def test_serve_bad_setting_is_exit_2_one_line(shared_registry: Path) -> None:
     out = run("serve", "--workers", "0", "--registry", str(shared_registry))
     assert out.returncode == 2
     assert out.stderr.count("\n") == 1 and "TEXTSIEVE_WORKERS" in out.stderr
+
+
+def test_clients_pointed_at_another_server_say_so_in_one_line(tmp_path: Path) -> None:
+    """An address that answers 200 with a page (a proxy's, another service's) is not a ready
+    textsieve (health said 'ready', exit 0), and predict and drift gave a JSONDecodeError traceback."""
+    import http.server
+    import threading
+
+    class Page(http.server.BaseHTTPRequestHandler):
+        def _page(self) -> None:
+            body = b"<!doctype html><title>welcome</title>"
+            self.send_response(200)
+            self.send_header("Content-Type", "text/html")
+            self.send_header("Content-Length", str(len(body)))
+            self.end_headers()
+            self.wfile.write(body)
+
+        do_GET = do_POST = _page
+
+        def log_message(self, *args: object) -> None:
+            pass
+
+    other = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Page)
+    threading.Thread(target=other.serve_forever, daemon=True).start()
+    url = f"http://127.0.0.1:{other.server_address[1]}"
+    try:
+        health = run("health", "--url", url)
+        assert health.returncode == 1 and health.stdout.startswith("not ready: "), health.stdout
+        assert "is not a textsieve readiness reply" in health.stdout
+        for args in (["predict", "--url", url, "hello"], ["drift", MODEL, "--url", url]):
+            out = run(*args)
+            assert out.returncode != 0 and out.stderr.count("\n") == 1, out.stderr
+            assert "not as textsieve does (text/html); is --url the textsieve service?" in out.stderr
+    finally:
+        other.shutdown()
+        other.server_close()
