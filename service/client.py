@@ -259,11 +259,13 @@ def cli_health(args: argparse.Namespace) -> int:
         ours = isinstance(body.get("ready"), bool)
     except (ValueError, AttributeError):
         ours = False
-    if not ours:  # another server answered: whatever its status, this is not a ready textsieve
-        reason = f"HTTP {r.status_code} from {base}/readyz is not a textsieve readiness reply; is --url the service?"
-    elif r.status_code == 200:
-        print(f"ready: {reason}")
-        return 0
+        reason = ""
+    if r.status_code == 200:
+        if ours:
+            print(f"ready: {reason}")
+            return 0
+        # Another server answered 200 (a page, other JSON): not a ready textsieve.
+        reason = f"HTTP 200 from {base}/readyz is not a textsieve readiness reply; is --url the service?"
     if not reason and r.status_code == 404:
         reason = f"HTTP 404 from {base}/readyz: --url is the service's address, e.g. http://127.0.0.1:8000"
     print(f"not ready: {reason or f'HTTP {r.status_code}'}")
