@@ -36,13 +36,21 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p.set_defaults(func=cli_shadow)
 
 
+# Disagreeing texts shown at most: far more than a replica keeps (TEXTSIEVE_SHADOW_KEEP_TEXTS), and
+# within what the database's integer takes (a larger --texts was an OverflowError).
+MAX_TEXTS = 1_000_000
+
+
 def cli_shadow(args: argparse.Namespace) -> int:
-    if args.texts < 0:
-        raise InputError(f"--texts {args.texts}: give 0 or more")
+    if not 0 <= args.texts <= MAX_TEXTS:
+        raise InputError(f"--texts {args.texts}: give 0 to {MAX_TEXTS:,}")
     with _open(args) as reg:
         if args.all:
             _out(pairs_table(reg.shadow_counts(args.model)))
             return 0
+        for number in (args.live, args.candidate):
+            if number is not None:
+                reg.version(args.model, number)  # NotFoundError naming the versions it has
         live = args.live if args.live is not None else _num(reg.live(args.model))
         candidate = args.candidate if args.candidate is not None else _num(reg.candidate(args.model))
         if live is None or candidate is None:

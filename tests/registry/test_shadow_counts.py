@@ -168,3 +168,22 @@ def test_cli_without_counts_says_how_they_come(published: RegistrySpec, capsys: 
     assert "no shadow counts yet" in capsys.readouterr().out
     assert main(["shadow", MODEL, "--all", *published.cli_args()]) == 0
     assert "no shadow counts yet" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize(
+    ("argv", "words"),
+    [
+        (["--candidate", "99"], "has no version 99"),
+        (["--live", "99", "--candidate", "1"], "has no version 99"),
+        (["--texts", "9223372036854775808"], "--texts 9223372036854775808: give 0 to 1,000,000"),
+        (["--texts", "-1"], "give 0 to"),
+    ],
+)
+def test_cli_refuses_versions_it_does_not_have_and_text_counts_out_of_range(
+    published: RegistrySpec, capsys: pytest.CaptureFixture[str], argv: list[str], words: str
+) -> None:
+    """--candidate 99 said 'no shadow counts yet for candidate v99'; a huge --texts was an
+    OverflowError from the database (found by probing)."""
+    assert main(["shadow", MODEL, *argv, *published.cli_args()]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and words in err, err
