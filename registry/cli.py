@@ -29,11 +29,18 @@ NONE = "-"
 
 
 def _one_line(cell: str) -> str:
-    """A cell on one line: a reason may hold line breaks and tabs (kept as written in the registry),
-    which would split a table's row; each break is shown as ↵."""
+    """A cell on one line and harmless to a terminal: a reason may hold line breaks and tabs (kept
+    as written in the registry), which would split a table's row, each break shown as ↵; a text
+    sent by a client may hold other control characters (an ESC starting a terminal escape
+    sequence that clears the screen or recolours what follows), each shown as a backslash, an x
+    and two hex digits."""
+    if cell.isprintable():
+        return cell
     if "\n" in cell or "\r" in cell or "\t" in cell:
         cell = cell.replace("\r\n", "\n").replace("\r", "\n").replace("\n", " ↵ ").replace("\t", " ")
-    return cell
+    import unicodedata
+
+    return "".join(f"\\x{ord(c):02x}" if unicodedata.category(c) == "Cc" else c for c in cell)
 
 
 def table(headers: Sequence[str], rows: Sequence[Sequence[object]], *, right: Sequence[int] = ()) -> str:

@@ -39,6 +39,14 @@ def test_table_pads_columns_and_right_aligns_numbers() -> None:
     assert text.splitlines() == ["NAME      N", "alpha     1", "b      1234", "c         -"]
 
 
+def test_control_characters_from_clients_reach_the_terminal_escaped() -> None:
+    """A text a client sent (kept by shadow scoring, or in a verdict) printed raw, ESC and all:
+    '\x1b[2J' cleared the operator's screen (found by probing)."""
+    text = table(["TEXT"], [["\x1b[2J\x1b[31mINJECTED\x07 done\x9b"]])
+    assert text.splitlines()[1] == "\\x1b[2J\\x1b[31mINJECTED\\x07 done\\x9b"
+    assert "\x1b" not in text and "\x07" not in text
+
+
 def test_wide_characters_keep_the_columns_in_line() -> None:
     """A reviewer named in Chinese, an emoji in a reason: two terminal columns a character (UAX #11),
     a combining accent none; the next column starts at the same place on every row."""
