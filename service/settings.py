@@ -7,6 +7,7 @@ so tests construct their own.
 from __future__ import annotations
 
 import os
+import re
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
@@ -49,6 +50,9 @@ def _max_connections() -> int:
 
 def _cores() -> int:
     return max(1, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1))
+
+
+_B64TOKEN = re.compile(r"[A-Za-z0-9\-._~+/]+=*")
 
 
 class Settings(BaseSettings):
@@ -218,10 +222,18 @@ class Settings(BaseSettings):
     @classmethod
     def _long_token(cls, v: SecretStr | None, info: ValidationInfo) -> SecretStr | None:
         # A short shared secret can be guessed over HTTP; refuse it rather than warn.
+        which = "admin" if info.field_name == "admin_token" else "review"
         if v is not None and len(v.get_secret_value()) < MIN_TOKEN_CHARS:
-            which = "admin" if info.field_name == "admin_token" else "review"
             raise ValueError(
                 f"the {which} token must be at least {MIN_TOKEN_CHARS} characters "
+                "(e.g. python -c 'import secrets; print(secrets.token_urlsafe(32))')"
+            )
+        # A token outside a Bearer token's characters (RFC 6750 §2.1: letters, digits, -._~+/ and
+        # trailing =) can never match what a client sends: a header is not UTF-8 and is trimmed.
+        if v is not None and not _B64TOKEN.fullmatch(v.get_secret_value()):
+            raise ValueError(
+                f"the {which} token may hold only letters, digits and - . _ ~ + / (then = padding), as a "
+                "Bearer token is written (RFC 6750 §2.1); no spaces or other characters "
                 "(e.g. python -c 'import secrets; print(secrets.token_urlsafe(32))')"
             )
         return v

@@ -30,6 +30,9 @@ def test_defaults_are_sane() -> None:
     ("overrides", "needle"),
     [
         ({"admin_token": "short"}, "at least 16 characters"),
+        # Found by probing: accepted, then no Authorization header could ever match them.
+        ({"admin_token": "pässwörd-0123456789abc"}, r"letters, digits and - \. _ ~ \+ /"),
+        ({"review_token": "abcdefghijklmnop0123  "}, r"the review token may hold only"),
         ({"workers": 0}, "TEXTSIEVE_WORKERS"),
         ({"max_texts": 0}, "TEXTSIEVE_MAX_TEXTS"),
         ({"models": "a,a"}, "listed twice"),
