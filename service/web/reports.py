@@ -34,12 +34,40 @@ _RESPONSES: dict[int | str, dict[str, Any]] = {
 
 
 def wants_json(request: Request) -> bool:
-    """JSON when the Accept header names application/json before (or without) text/html."""
-    accept = request.headers.get("accept", "").lower()
-    kinds = [part.split(";")[0].strip() for part in accept.split(",")]
-    if "application/json" not in kinds:
+    """JSON when the Accept header prefers application/json to text/html (RFC 9110 §12.5.1: each
+    type takes the quality of its most specific matching range, q=0 meaning not acceptable); on a
+    tie, when it names application/json before text/html, or names only the former; else HTML."""
+    ranges: list[tuple[str, float]] = []
+    for part in request.headers.get("accept", "").lower().split(","):
+        kind, *params = (p.strip() for p in part.split(";"))
+        q = 1.0
+        for param in params:
+            name, _, value = param.partition("=")
+            if name.strip() == "q":
+                try:
+                    q = min(max(float(value), 0.0), 1.0)
+                except ValueError:
+                    q = 0.0
+                q = q if q == q else 0.0  # NaN
+        if kind:
+            ranges.append((kind, q))
+    json_q, html_q = _quality(ranges, "application/json"), _quality(ranges, "text/html")
+    if json_q != html_q:
+        return json_q > html_q
+    kinds = [k for k, _ in ranges]
+    if json_q == 0 or "application/json" not in kinds:  # a tie through */*: the page
         return False
     return "text/html" not in kinds or kinds.index("application/json") < kinds.index("text/html")
+
+
+def _quality(ranges: list[tuple[str, float]], media: str) -> float:
+    """The q of the most specific range matching ``media`` (exact, then type/*, then */*), 0 if none."""
+    major = media.split("/", 1)[0] + "/*"
+    for wanted in (media, major, "*/*"):
+        found = [q for kind, q in ranges if kind == wanted]
+        if found:
+            return max(found)
+    return 0.0
 
 
 @router.get(

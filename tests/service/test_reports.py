@@ -44,6 +44,26 @@ async def test_report_is_html_by_default_with_the_csp(client: httpx.AsyncClient)
     assert "Compared with version 1" in r.text and "<script" not in r.text
 
 
+# RFC 9110 §12.5.1: the type with the higher quality wins, whatever the order; q=0 is "not acceptable".
+@pytest.mark.parametrize(
+    ("accept", "json"),
+    [
+        ("application/json;q=0, text/html", False),
+        ("application/json;q=0.1, text/html;q=0.9", False),
+        ("text/html;q=0, application/json;q=0.5", True),
+        ("text/html;q=0.2, application/*", True),
+        ("*/*;q=0.1, application/json;q=0", False),
+        ("text/html, application/json", False),
+    ],
+    ids=str,
+)
+async def test_report_follows_the_quality_values_of_accept(client: httpx.AsyncClient, accept: str, json: bool) -> None:
+    """Only the order of the types decided (found by probing)."""
+    r = await client.get(f"/v1/models/{MODEL}/versions/2/report", headers={"Accept": accept})
+    assert r.status_code == 200
+    assert r.headers["content-type"].startswith("application/json" if json else "text/html")
+
+
 @pytest.mark.parametrize(
     "accept", ["application/json", "application/json, text/html;q=0.5", "application/json;q=1"], ids=str
 )
