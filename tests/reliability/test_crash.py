@@ -210,6 +210,7 @@ def _replay(reg: Registry) -> tuple[dict[int, str], dict[int, int | None]]:
     """Version states and remembered predecessors, derived from the audit trail alone."""
     state: dict[int, str] = {}
     previous: dict[int, int | None] = {}
+    been_live: set[int] = set()  # a replaced candidate goes back to retired if it has been live
 
     def holder(s: str) -> int | None:
         return next((v for v, st in state.items() if st == s), None)
@@ -222,13 +223,14 @@ def _replay(reg: Registry) -> tuple[dict[int, str], dict[int, int | None]]:
         elif e.kind == "promote" and e.details["to"] == "candidate":
             old = holder("candidate")
             if old is not None:
-                state[old] = "registered"
+                state[old] = "retired" if old in been_live else "registered"
             state[v] = "candidate"
         elif e.kind == "promote":
             old = holder("live")
             if old is not None:
                 state[old] = "retired"
             state[v], previous[v] = "live", old
+            been_live.add(v)
         elif e.kind == "rollback":
             assert holder("live") == e.details["from"]
             state[e.details["from"]] = "retired"
