@@ -149,10 +149,10 @@ class JsonlReader(_ByteCounted):
                 try:
                     row = loads(raw)
                 except ValueError:
-                    try:  # orjson refused it: the standard module's reading, as json_loads does
-                        row = json.loads(raw)
-                    except ValueError:
-                        row = Unreadable(f"line {number} is not valid JSON")
+                    row = Unreadable(f"line {number} is not valid JSON")
+                    if loads is not json_loads:  # orjson refused it: the standard module's reading, as json_loads does
+                        with contextlib.suppress(ValueError):
+                            row = json.loads(raw)
                 if escapes and lone_surrogate(row, raw):
                     row = Unreadable(f"line {number} {LONE_SURROGATE}")
                 chunk.append(row)
