@@ -1054,12 +1054,16 @@ def _unreported(info: VersionInfo) -> str:
     )
 
 
+# Worded for the admin API's body fields; the promote verb names its flags instead (registry/cli.py).
+OVERRIDE_HINT = "fix it, or override it with force and a reason (both recorded)"
+
+
 def _refusal(model: str, version: int, gates: list[GateResult], failed: list[str], event_id: int) -> GateRefusedError:
     first = next(g for g in gates if not g.passed)
     more = f" (and {len(failed) - 1} more: {', '.join(failed[1:])})" if len(failed) > 1 else ""
     return GateRefusedError(
         f"version {version} of {model!r} not promoted to live: gate {first.name} refused: {first.detail}{more}; "
-        "fix it, or override with --force and a --reason (recorded)",
+        + OVERRIDE_HINT,
         gates=[g.model_dump() for g in gates],
         failed=failed,
         event_id=event_id,

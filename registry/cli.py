@@ -411,7 +411,11 @@ def cli_promote(args: argparse.Namespace) -> int:
         except GateRefusedError as exc:
             gates = [GateResult.model_validate(g) for g in exc.context.get("gates", [])]
             _out(gate_table(gates), sys.stderr)
-            raise
+            # The registry's message serves the admin API too; here the override is these flags.
+            from textsieve.registry.api import OVERRIDE_HINT
+
+            hint = "fix it, or override it with --force and --reason (both recorded)"
+            raise GateRefusedError(exc.message.replace(OVERRIDE_HINT, hint), **exc.context) from None
         except SavedThenInterrupted as exc:  # Ctrl-C in the report after the commit: say what stands
             assert isinstance(exc.result, Promotion)
             result, stopped = exc.result, exc

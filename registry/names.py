@@ -85,7 +85,7 @@ def validate_reviewer(reviewer: object) -> str:
 def validate_reason(reason: str, *, required: bool) -> str:
     reason = (reason or "").strip()
     if required and not reason:
-        raise InputError("a reason is required: say why, e.g. --reason 'macro-F1 +2 points on the March set'")
+        raise InputError("a reason is required: say why, e.g. 'macro-F1 +2 points on the March set'")
     if len(reason) > MAX_REASON:
         raise InputError(f"reason is {len(reason)} characters; at most {MAX_REASON} are kept")
     if not _printable(reason.replace("\n", " ").replace("\t", " ")):

@@ -10,9 +10,11 @@ the process; for SIGTERM that would make every orderly stop look like a crash (e
 from __future__ import annotations
 
 import argparse
+import errno
 import gc
 import logging
 import signal
+import socket
 import sys
 from types import FrameType
 from typing import TYPE_CHECKING, Any
@@ -71,11 +73,71 @@ def server_config(
     )
 
 
+def listen(host: str, port: int) -> list[socket.socket]:
+    """Bind the listening sockets before anything loads, so that a port in use or a host that is not
+    this machine's is one line and an exit status, not a log record after "serving on".
+
+    Like asyncio's ``create_server`` (which uvicorn calls when given a host and port): one socket
+    per address the host resolves to, SO_REUSEADDR, IPv6 sockets IPv6-only. Port 0 lets the
+    system choose; every address then gets the port the first was given.
+    """
+    from textsieve.errors import InputError, UnavailableError
+
+    where = f"{host}:{port}" if ":" not in host else f"[{host}]:{port}"
+    try:
+        infos = socket.getaddrinfo(host or None, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)
+    except (socket.gaierror, UnicodeError) as exc:
+        raise InputError(f"--host / TEXTSIEVE_HOST {host!r}: not an address of this machine ({exc})") from None
+    sockets: list[socket.socket] = []
+    seen: set[tuple[int, object]] = set()
+    try:
+        for family, kind, proto, _, address in infos:
+            if (family, address[:2]) in seen:
+                continue
+            seen.add((family, address[:2]))
+            sock = socket.socket(family, kind, proto)
+            sockets.append(sock)
+            sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+            if family == socket.AF_INET6:
+                sock.setsockopt(socket.IPPROTO_IPV6, socket.IPV6_V6ONLY, 1)
+            if port == 0 and len(sockets) > 1:
+                address = (address[0], sockets[0].getsockname()[1], *address[2:])
+            try:
+                sock.bind(address)
+            except OSError as exc:
+                if exc.errno == errno.EADDRINUSE:
+                    raise UnavailableError(
+                        f"cannot listen on {where}: the port is in use by another process; stop it, "
+                        "or choose another port (--port or TEXTSIEVE_PORT)"
+                    ) from None
+                if exc.errno == errno.EACCES:
+                    raise InputError(
+                        f"cannot listen on {where}: permission denied (ports below 1024 need privileges); "
+                        "choose a port from 1024 to 65535 (--port or TEXTSIEVE_PORT)"
+                    ) from None
+                raise InputError(
+                    f"cannot listen on {where}: {exc.strerror or exc}; give an address of this machine "
+                    "(--host or TEXTSIEVE_HOST), e.g. 127.0.0.1 or 0.0.0.0"
+                ) from None
+    except BaseException:
+        for sock in sockets:
+            sock.close()
+        raise
+    return sockets
+
+
+def bound_url(sockets: list[socket.socket]) -> str:
+    """``http://HOST:PORT`` of the first listening socket: the port the system chose for port 0."""
+    host, port = sockets[0].getsockname()[:2]
+    return f"http://[{host}]:{port}" if ":" in host else f"http://{host}:{port}"
+
+
 def cli_serve(args: argparse.Namespace) -> int:
     from textsieve.service.settings import load_settings
 
     # Settings first: a bad flag or TEXTSIEVE_* value is one line before anything heavy loads.
     settings = load_settings(
+        flags={name: f"--{name}" for name in ("host", "port", "registry", "blobs", "models", "workers", "inference")},
         host=args.host,
         port=args.port,
         registry=args.registry,
@@ -85,6 +147,9 @@ def cli_serve(args: argparse.Namespace) -> int:
         inference=getattr(args, "inference", None),
     )
 
+    sockets = listen(settings.host, settings.port)
+    url = bound_url(sockets)
+
     import uvicorn
 
     from textsieve.service import logs
@@ -93,13 +158,12 @@ def cli_serve(args: argparse.Namespace) -> int:
     logs.configure()
     log = logging.getLogger("textsieve.service")
     log.info(
-        "serving on http://%s:%s (page at /, readiness at /readyz); registry %s; admin %s",
-        settings.host,
-        settings.port,
+        "serving on %s (page at /, readiness at /readyz); registry %s; admin %s",
+        url,
         settings.registry_label,
         "on" if settings.admin_enabled else "off",
     )
-    print(f"textsieve: serving on http://{settings.host}:{settings.port}/ (Ctrl-C stops)", file=sys.stderr, flush=True)
+    print(f"textsieve: serving on {url}/ (Ctrl-C stops)", file=sys.stderr, flush=True)
     app = create_app(settings)
     server = uvicorn.Server(server_config(app, app.state.guard, settings))
     stopped: list[int] = []
@@ -116,14 +180,16 @@ def cli_serve(args: argparse.Namespace) -> int:
     # (the open-loop tail in bench/README.md); the documented use of gc.freeze (Python docs, gc).
     gc.freeze()
     try:
-        server.run()
+        server.run(sockets=sockets)
     except KeyboardInterrupt:
         pass  # Ctrl-C: uvicorn has shut down gracefully and re-raised SIGINT
     finally:
         signal.signal(signal.SIGTERM, previous)
+        for sock in sockets:
+            sock.close()
     if stopped:
         log.info("stopped on SIGTERM after answering the requests in flight")
     return 0
 
 
-__all__ = ["cli_serve", "register", "server_config"]
+__all__ = ["bound_url", "cli_serve", "listen", "register", "server_config"]

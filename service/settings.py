@@ -8,13 +8,14 @@ from __future__ import annotations
 
 import os
 import re
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
 from pydantic import Field, SecretStr, ValidationInfo, field_validator, model_validator
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
-from textsieve.environment import DEFAULT_REGISTRY, check_blobs, check_registry
+from textsieve.environment import DEFAULT_REGISTRY, POSTGRES_SCHEMES, check_blobs, check_registry
 
 MIN_TOKEN_CHARS = 16
 
@@ -192,7 +193,11 @@ class Settings(BaseSettings):
     @field_validator("registry")
     @classmethod
     def _registry_location(cls, v: str) -> str:
-        return check_registry(v)
+        v = check_registry(v)
+        # A file never becomes a registry folder: refused now, not retried by the server for ever.
+        if "://" not in v and Path(v).exists() and not Path(v).is_dir():
+            raise ValueError(f"{v} is a file; give a registry folder or a postgresql:// URL")
+        return v
 
     @field_validator("blobs")
     @classmethod
@@ -209,6 +214,14 @@ class Settings(BaseSettings):
     @field_validator("models")
     @classmethod
     def _unique_models(cls, v: list[str]) -> list[str]:
+        from textsieve.errors import InputError
+        from textsieve.registry.names import validate_model_name
+
+        for name in v:
+            try:
+                validate_model_name(name)
+            except InputError as exc:  # a name no registry can hold would be retried for ever
+                raise ValueError(exc.message) from None
         if len(set(v)) != len(v):
             raise ValueError(f"models are listed twice: {', '.join(sorted({m for m in v if v.count(m) > 1}))}")
         return v
@@ -252,6 +265,15 @@ class Settings(BaseSettings):
         return self
 
     @model_validator(mode="after")
+    def _blobs_for_postgres(self) -> Settings:
+        if self.blobs is None and self.registry.startswith(POSTGRES_SCHEMES):
+            raise ValueError(
+                "a postgresql:// registry needs a blob folder: set TEXTSIEVE_BLOBS (serve --blobs FOLDER) "
+                "to the folder its publishers write blobs to"
+            )
+        return self
+
+    @model_validator(mode="after")
     def _body_fits_one_text(self) -> Settings:
         if self.max_body_bytes < self.max_chars:
             raise ValueError(
@@ -286,8 +308,12 @@ def public_location(location: str) -> str:
     return describe(location)
 
 
-def load_settings(**overrides: Any) -> Settings:
-    """Environment plus explicit overrides (None means "not given"); bad values raise InputError."""
+def load_settings(*, flags: Mapping[str, str] | None = None, **overrides: Any) -> Settings:
+    """Environment plus explicit overrides (None means "not given"); bad values raise InputError.
+
+    ``flags`` maps a setting to the command-line flag that gave its override, so that a bad
+    ``--port`` is named as the flag, not as the environment variable it was not read from.
+    """
     from pydantic import ValidationError
 
     from textsieve.errors import InputError
@@ -299,7 +325,10 @@ def load_settings(**overrides: Any) -> Settings:
         first = exc.errors()[0]
         name = ".".join(str(p) for p in first["loc"])
         msg = str(first["msg"]).removeprefix("Value error, ")
-        where = f"setting {name} (TEXTSIEVE_{name.upper()})" if name else "settings"
+        if name in given and flags and name in flags:
+            where = flags[name]
+        else:
+            where = f"setting {name} (TEXTSIEVE_{name.upper()})" if name else "settings"
         raise InputError(f"{where}: {msg}") from exc
 
 

@@ -158,11 +158,16 @@ class ModelSet:
     def readiness(self) -> tuple[bool, str]:
         if not self.started:
             return False, "starting: loading the live version of each served model"
+        # Readiness answers callers who hold no token: it names no folder or database of this
+        # machine (the server's log does, with the whole reason).
         if self.startup_error and not self.live:
-            return False, f"startup failed: {self.startup_error}"
+            return False, (
+                f"startup failed: the registry could not be read (the server's log says why); "
+                f"retrying every {self.settings.poll_seconds:g} s"
+            )
         if not self.status:
             return False, (
-                f"no model has a live version in the registry {self.settings.registry_label}; "
+                "no model has a live version in the registry; "
                 "publish and promote one (textsieve promote NAME VERSION --to live)"
             )
         waiting = [

@@ -44,7 +44,11 @@ class RegistryThread:
 
     def _open(self) -> Registry:
         # create=False: a mistyped registry path is reported instead of becoming a new, empty registry.
-        return open_registry(self.location, blobs=self.blobs, create=False)
+        registry = open_registry(self.location, blobs=self.blobs, create=False)
+        # Its messages reach HTTP callers who hold no token ("no model 'x' in ..."): they name
+        # no folder or database of this machine; the server's log says which registry it reads.
+        registry.location = "this service's registry"
+        return registry
 
     async def _run(self, fn: Callable[P, T], *args: P.args, **kwargs: P.kwargs) -> T:
         """``fn(*args, **kwargs)`` on the registry thread; its exceptions are raised here unchanged."""

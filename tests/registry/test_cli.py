@@ -146,7 +146,7 @@ def test_a_refused_gate_exits_1_naming_the_gate_and_figures(
     assert code == 1 and out == ""
     last = err.strip().splitlines()[-1]
     assert last.startswith("textsieve: error: version 2 of 'm' not promoted to live: gate labels refused")
-    assert "drops 'praise'" in last and "--force" in last
+    assert "drops 'praise'" in last and "override it with --force and --reason" in last
     assert re.search(r"^labels\s+FAIL\s+labels differ", err, re.M)  # the gate table with figures
 
 

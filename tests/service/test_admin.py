@@ -62,6 +62,8 @@ async def test_promote_and_rollback_swap_the_served_version_at_once(registry_dir
     # Without an evaluation set the metric gates refuse; the body lists every gate.
     refusal = assert_problem(refused, 409, "gate-refused")
     assert {g["name"] for g in refusal["gates"]} >= {"parity", "labels"}
+    # The override is named as this API's body fields, not as the CLI's flags.
+    assert "override it with force and a reason" in refusal["detail"] and "--force" not in refusal["detail"]
     assert promoted.status_code == 200, promoted.text
     reply = promoted.json()
     assert reply["version"]["version"] == 2 and reply["version"]["state"] == "live"

@@ -42,11 +42,23 @@ def test_defaults_are_sane() -> None:
         ({"registry": " "}, r"\(TEXTSIEVE_REGISTRY\): empty"),
         ({"registry": "https://h/r"}, "https:// is not a registry"),
         ({"blobs": ""}, r"\(TEXTSIEVE_BLOBS\): empty"),
+        # Values the server would otherwise retry for ever (found by probing).
+        ({"models": "triage,Support!"}, r"\(TEXTSIEVE_MODELS\): bad model name 'Support!'"),
+        ({"registry": "postgresql://u@h/db"}, "a postgresql:// registry needs a blob folder"),
+        ({"registry": __file__}, "is a file; give a registry folder"),
     ],
 )
 def test_bad_values_are_refused_naming_the_setting(overrides: dict[str, object], needle: str) -> None:
     with pytest.raises(InputError, match=needle):
         load_settings(**overrides)
+
+
+def test_a_bad_flag_is_named_as_the_flag_not_the_variable() -> None:
+    flags = {"port": "--port", "workers": "--workers"}
+    with pytest.raises(InputError, match=r"^--port: Input should be greater than or equal to 0$"):
+        load_settings(flags=flags, port=-5)
+    with pytest.raises(InputError, match=r"^setting max_texts \(TEXTSIEVE_MAX_TEXTS\)"):
+        load_settings(flags=flags, max_texts=0)  # no flag gave it
 
 
 def test_blank_token_means_admin_off(monkeypatch: pytest.MonkeyPatch) -> None:
