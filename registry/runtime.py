@@ -276,23 +276,22 @@ class Predictor:
         return self.results(encoded, out, spans=spans)
 
     def results(self, encoded: list[Encoded], out: Outputs, *, spans: int = 3) -> list[Prediction]:
+        """One :class:`Prediction` a text. Its spans are :meth:`spans`' for the top label, found for
+        the whole batch at once (registry/spans.py; the tests hold the two equal)."""
+        from textsieve.registry.spans import batch_span_objects
+
         probs = self.probabilities(out.logits)
         best = probs.argmax(axis=1)
         labels = self.labels
-        preds = []
-        for row, enc in enumerate(encoded):
-            c = int(best[row])
-            preds.append(
-                Prediction(
-                    labels[c],
-                    dict(zip(labels, probs[row].tolist(), strict=True)),
-                    self.spans(enc, out, row, c, spans),
-                    enc.tokens,
-                    enc.truncated,
-                    enc.unknown,
-                )
-            )
-        return preds
+        found: list[list[Span]] = (
+            batch_span_objects(self, encoded, out, best, np.full(len(encoded), spans, dtype=np.int64))
+            if spans > 0
+            else [[] for _ in encoded]
+        )
+        return [
+            Prediction(labels[c], dict(zip(labels, row, strict=True)), s, enc.tokens, enc.truncated, enc.unknown)
+            for enc, c, row, s in zip(encoded, best.tolist(), probs.tolist(), found, strict=True)
+        ]
 
 
 __all__ = ["Encoded", "Outputs", "Prediction", "Predictor", "Span", "make_session", "SPAN_FLOOR"]

@@ -1,7 +1,9 @@
 """Spans for a whole batch at once, vectorised: the windows each text's filters fired on, summed,
 merged and ranked in a few array operations instead of :meth:`Predictor.spans`'s Python loop a
 text (~5 µs a text in a batch of 128, against ~50 µs). Shared by the service's workers
-(textsieve/service/inference/spans.py) and file scoring (textsieve/scoring/rows.py).
+(textsieve/service/inference/spans.py), file scoring (textsieve/scoring/rows.py) and
+:meth:`Predictor.predict` (``load_model(...).predict``), which also gets each span's token positions
+and filters (:func:`batch_span_objects`).
 
 The span measure is :meth:`Predictor.spans`'s (each filter's max-over-time window is an n-gram
 detector, Jacovi et al., 2018, and its weight is ``pooled_f · W[c, f]``, its additive share of
@@ -14,11 +16,15 @@ windows' keys, which is kept for grids too large to allocate.
 
 from __future__ import annotations
 
-from typing import Any
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any, TypeVar
 
 import numpy as np
 
-from textsieve.registry.runtime import SPAN_FLOOR, Encoded, Outputs, Predictor
+from textsieve.registry.runtime import SPAN_FLOOR, Encoded, Outputs, Predictor, Span
+
+T = TypeVar("T")
 
 
 def batch_spans(
@@ -30,16 +36,36 @@ def batch_spans(
 
     A batch whose grid would exceed ``DENSE_CELLS`` (a scoring worker's 2,048 texts, say) is taken
     in blocks of rows that fit it: each text's spans depend on its own row alone."""
+    return _in_blocks(p, encoded, out, best, ks, _public)
+
+
+def batch_span_objects(
+    p: Predictor, encoded: list[Encoded], out: Outputs, best: np.ndarray, ks: np.ndarray
+) -> list[list[Span]]:
+    """:meth:`Predictor.spans` for every text of the batch at once, whole :class:`Span` objects:
+    :func:`batch_spans`' fields plus each span's token positions and the filters whose windows it
+    merged (what ``load_model(...).predict`` returns)."""
+    return _in_blocks(p, encoded, out, best, ks, _objects)
+
+
+def _in_blocks(
+    p: Predictor,
+    encoded: list[Encoded],
+    out: Outputs,
+    best: np.ndarray,
+    ks: np.ndarray,
+    build: Callable[[Predictor, list[Encoded], Outputs, np.ndarray, _Chosen], list[list[T]]],
+) -> list[list[T]]:
     n = len(encoded)
     stride = max((len(e.ids) for e in encoded), default=0) + 1
     rows = max(DENSE_CELLS // (stride * _cells(p)), 1)
     if n <= rows:
-        return _spans(p, encoded, out, best, ks)
-    found: list[list[dict[str, Any]]] = []
+        return _spans(p, encoded, out, best, ks, build)
+    found: list[list[T]] = []
     for lo in range(0, n, rows):
         hi = min(lo + rows, n)
         block = Outputs(out.logits[lo:hi], out.pooled[lo:hi], out.positions[lo:hi], out.contributions[lo:hi])
-        found += _spans(p, encoded[lo:hi], block, best[lo:hi], ks[lo:hi])
+        found += _spans(p, encoded[lo:hi], block, best[lo:hi], ks[lo:hi], build)
     return found
 
 
@@ -48,20 +74,43 @@ def _cells(p: Predictor) -> int:
     return int(p.filter_widths.max(initial=0)) + 1
 
 
+@dataclass(frozen=True, slots=True)
+class _Chosen:
+    """The spans kept, in row order and strongest first within a row: row, first token, end token,
+    summed weight; and, when asked for, what finds their filters: every merged group's first
+    token as ``row · stride + start`` (ascending), each group's place among the chosen spans (−1:
+    not chosen), the rows' strongest window and the fired filters."""
+
+    row: np.ndarray
+    start: np.ndarray
+    end: np.ndarray
+    weight: np.ndarray
+    group_starts: np.ndarray
+    span_of_group: np.ndarray
+    row_max: np.ndarray
+    stride: int
+    fired: _Fired | None
+
+
 def _spans(
-    p: Predictor, encoded: list[Encoded], out: Outputs, best: np.ndarray, ks: np.ndarray
-) -> list[list[dict[str, Any]]]:
+    p: Predictor,
+    encoded: list[Encoded],
+    out: Outputs,
+    best: np.ndarray,
+    ks: np.ndarray,
+    build: Callable[[Predictor, list[Encoded], Outputs, np.ndarray, _Chosen], list[list[T]]],
+) -> list[list[T]]:
     n = len(encoded)
-    found: list[list[dict[str, Any]]] = [[] for _ in range(n)]
     lengths = np.fromiter((len(e.ids) for e in encoded), dtype=np.int64, count=n)
     if n == 0 or not ((lengths > 0) & (ks > 0)).any():
-        return found
-    windows = _windows(p, lengths, out, best, ks)
+        return [[] for _ in range(n)]
+    members = build is _objects
+    windows = _windows(p, lengths, out, best, ks, members)
     if windows is None:
-        windows = _windows_sorted(p, lengths, out, best, ks)
-    w_row, w_start, w_end, totals = windows
+        windows = _windows_sorted(p, lengths, out, best, ks, members)
+    w_row, w_start, w_end, totals, fired = windows
     if totals.size == 0:
-        return found
+        return [[] for _ in range(n)]
 
     # Keep windows at or above SPAN_FLOOR of their row's strongest.
     row_max = np.full(n, -np.inf)
@@ -88,6 +137,26 @@ def _spans(
     row_sorted = g_row[order]
     rank = np.arange(len(order)) - np.searchsorted(row_sorted, row_sorted, side="left")
     chosen = order[rank < ks[row_sorted]]
+    span_of_group = np.full(len(g_weight), -1)
+    span_of_group[chosen] = np.arange(len(chosen))
+    picked = _Chosen(
+        g_row[chosen],
+        g_start[chosen],
+        g_end[chosen],
+        g_weight[chosen],
+        flat_start[first],
+        span_of_group,
+        row_max,
+        stride,
+        fired,
+    )
+    return build(p, encoded, out, best, picked)
+
+
+def _public(
+    p: Predictor, encoded: list[Encoded], out: Outputs, best: np.ndarray, c: _Chosen
+) -> list[list[dict[str, Any]]]:
+    found: list[list[dict[str, Any]]] = [[] for _ in range(len(encoded))]
     labels = p.labels
     best_list = best.tolist()
     last = -1
@@ -95,10 +164,8 @@ def _spans(
     ends: list[int] = []
     text = name = ""
     into: list[dict[str, Any]] = []
-    # ``chosen`` is in row order, so a row's offsets and label are looked up once for all its spans.
-    for r, s, e, w in zip(
-        g_row[chosen].tolist(), g_start[chosen].tolist(), g_end[chosen].tolist(), g_weight[chosen].tolist(), strict=True
-    ):
+    # Spans are in row order, so a row's offsets and label are looked up once for all its spans.
+    for r, s, e, w in zip(c.row.tolist(), c.start.tolist(), c.end.tolist(), c.weight.tolist(), strict=True):
         if r != last:
             enc = encoded[r]
             starts, ends, text, name, into, last = enc.starts, enc.ends, enc.text, labels[best_list[r]], found[r], r
@@ -107,13 +174,54 @@ def _spans(
     return found
 
 
-Windows = tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]  # row, start, end, summed weight
+def _objects(p: Predictor, encoded: list[Encoded], out: Outputs, best: np.ndarray, c: _Chosen) -> list[list[Span]]:
+    # A span's filters: the fired filters whose window was kept (the same comparison with the same
+    # floats as the windows' own) and fell in its group: the last group starting at or before it.
+    f = c.fired
+    assert f is not None, "the windows were found with members=True"
+    kept = f.total >= SPAN_FLOOR * c.row_max[f.row]
+    rows, filters = f.row[kept], f.filter[kept]
+    group = np.searchsorted(c.group_starts, rows * c.stride + f.start[kept], side="right") - 1
+    span = c.span_of_group[group]
+    member = span >= 0
+    span, filters = span[member], filters[member]
+    order = np.argsort(span, kind="stable")  # a span's filters stay ascending (row-major order)
+    listed = filters[order].tolist()
+    ends = np.cumsum(np.bincount(span, minlength=len(c.row))).tolist()
+
+    found: list[list[Span]] = [[] for _ in range(len(encoded))]
+    labels = p.labels
+    best_list = best.tolist()
+    lo = 0
+    for r, s, e, w, hi in zip(c.row.tolist(), c.start.tolist(), c.end.tolist(), c.weight.tolist(), ends, strict=True):
+        enc = encoded[r]
+        cs, ce = enc.starts[s], enc.ends[e - 1]
+        found[r].append(Span(cs, ce, enc.text[cs:ce], labels[best_list[r]], w, e - s, s, e, listed[lo:hi]))
+        lo = hi
+    return found
+
+
+@dataclass(frozen=True, slots=True)
+class _Fired:
+    """Each fired filter (row-major, so a row's filters ascending): its row, its index, its window's
+    first token and the summed weight of its window (what decides whether the window is kept)."""
+
+    row: np.ndarray
+    filter: np.ndarray
+    start: np.ndarray
+    total: np.ndarray
+
+
+# row, start, end, summed weight of each window; the fired filters when asked for
+Windows = tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, _Fired | None]
 # The dense window grid (rows x starts x widths) is used up to this many cells; beyond it (many
 # long texts at once) the windows are found by sorting their keys instead.
 DENSE_CELLS = 1 << 20
 
 
-def _windows(p: Predictor, lengths: np.ndarray, out: Outputs, best: np.ndarray, ks: np.ndarray) -> Windows | None:
+def _windows(
+    p: Predictor, lengths: np.ndarray, out: Outputs, best: np.ndarray, ks: np.ndarray, members: bool = False
+) -> Windows | None:
     """Every window a filter fired on (its share of the chosen class > 0), with the shares summed,
     in (row, start, end) order: one ``np.bincount`` over a dense grid, one cell per (row, start,
     width), instead of sorting the fired filters' keys. The fired filters are taken in row-major
@@ -144,10 +252,16 @@ def _windows(p: Predictor, lengths: np.ndarray, out: Outputs, best: np.ndarray, 
     cell = np.flatnonzero(totals > 0)
     w_row, rest = np.divmod(cell, stride * cells)
     w_start, w_width = np.divmod(rest, cells)
-    return w_row, w_start, w_start + w_width, totals[cell]
+    fired_filters = None
+    if members:
+        rows, filters = np.divmod(which, contrib.shape[1])
+        fired_filters = _Fired(rows, filters, starts.ravel()[which], totals[key.ravel()[which]])
+    return w_row, w_start, w_start + w_width, totals[cell], fired_filters
 
 
-def _windows_sorted(p: Predictor, lengths: np.ndarray, out: Outputs, best: np.ndarray, ks: np.ndarray) -> Windows:
+def _windows_sorted(
+    p: Predictor, lengths: np.ndarray, out: Outputs, best: np.ndarray, ks: np.ndarray, members: bool = False
+) -> Windows:
     """:func:`_windows` by sorting the fired filters' window keys (any grid size)."""
     n = len(lengths)
     contrib = out.contributions[np.arange(n), :, best]
@@ -161,7 +275,8 @@ def _windows_sorted(p: Predictor, lengths: np.ndarray, out: Outputs, best: np.nd
     key = (fired_rows * stride + starts) * stride + ends
     uniq, inverse = np.unique(key, return_inverse=True)
     totals = np.bincount(inverse, weights=weights)  # adds in filter order, starting from 0.0
-    return uniq // (stride * stride), (uniq // stride) % stride, uniq % stride, totals
+    fired_filters = _Fired(fired_rows, fired_f, starts, totals[inverse]) if members else None
+    return uniq // (stride * stride), (uniq // stride) % stride, uniq % stride, totals, fired_filters
 
 
-__all__ = ["DENSE_CELLS", "batch_spans"]
+__all__ = ["DENSE_CELLS", "batch_span_objects", "batch_spans"]

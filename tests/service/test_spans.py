@@ -55,6 +55,20 @@ def _both_paths(
     return dense, by_sorting
 
 
+def _objects_equal_reference(
+    p: Predictor, encoded: list[Encoded], out: Outputs, ks: list[int], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The whole Span objects ``load_model(...).predict`` returns (token positions and filters too),
+    by both window paths, equal to Predictor.spans's, field for field."""
+    best = p.probabilities(out.logits).argmax(axis=1)
+    want = [p.spans(e, out, row, int(best[row]), k) for row, (e, k) in enumerate(zip(encoded, ks, strict=True))]
+    ks_array = np.asarray(ks, dtype=np.int64)
+    assert spans.batch_span_objects(p, encoded, out, best, ks_array) == want
+    with monkeypatch.context() as m:
+        m.setattr(spans, "DENSE_CELLS", 0)
+        assert spans.batch_span_objects(p, encoded, out, best, ks_array) == want
+
+
 @pytest.fixture(scope="module")
 def predictor(tiny_bundles: dict[str, Path]) -> Predictor:
     return Predictor.from_bundle(tiny_bundles["a"])
@@ -77,6 +91,7 @@ def test_dense_and_sorted_windows_equal_predictor_spans_on_hard_unicode(
             dense, by_sorting = _both_paths(p, encoded, out, ks, monkeypatch)
             assert dense == want
             assert by_sorting == want
+            _objects_equal_reference(p, encoded, out, ks, monkeypatch)
             for text, row in zip(HARD, dense, strict=True):
                 for s in row:
                     assert text[s["start"] : s["end"]] == s["text"]
@@ -122,8 +137,21 @@ def test_dense_and_sorted_windows_equal_predictor_spans_on_made_up_outputs(
         dense, by_sorting = _both_paths(p, encoded, out, ks, monkeypatch)
         assert dense == want
         assert by_sorting == want
+        _objects_equal_reference(p, encoded, out, ks, monkeypatch)
 
     check()
+
+
+def test_predict_returns_the_per_text_spans_with_their_tokens_and_filters(predictor: Predictor) -> None:
+    """Predictor.predict (load_model(...).predict) finds spans for the whole list at once."""
+    texts = [t for t in HARD if t]
+    got = predictor.predict(texts, spans=4)
+    encoded = [predictor.encode(t) for t in texts]
+    out = predictor.run(encoded)
+    best = predictor.probabilities(out.logits).argmax(axis=1)
+    assert [g.spans for g in got] == [predictor.spans(e, out, i, int(best[i]), 4) for i, e in enumerate(encoded)]
+    assert sum(len(g.spans) for g in got) >= 5 and all(s.filters for g in got for s in g.spans)
+    assert all(g.spans == [] for g in predictor.predict(texts, spans=0))
 
 
 def test_a_window_outside_its_text_takes_the_sorting_path(predictor: Predictor) -> None:
