@@ -52,31 +52,29 @@ class TokenizerSpec(BaseModel):
     unicode_version: str = unicodedata.unidata_version
 
 
-def _ranges(codepoints: Iterable[int]) -> str:
-    """Collapse sorted code points into a regex character-class body."""
-    parts: list[str] = []
-    start = prev = -2
+def _pairs(codepoints: Iterable[int]) -> list[tuple[int, int]]:
+    """Sorted code points as (first, last) runs."""
+    pairs: list[tuple[int, int]] = []
     for cp in codepoints:
-        if cp == prev + 1:
-            prev = cp
-            continue
-        if start >= 0:
-            parts.append(_class_range(start, prev))
-        start = prev = cp
-    if start >= 0:
-        parts.append(_class_range(start, prev))
-    return "".join(parts)
+        if pairs and cp == pairs[-1][1] + 1:
+            pairs[-1] = (pairs[-1][0], cp)
+        else:
+            pairs.append((cp, cp))
+    return pairs
+
+
+def _class_body(pairs: Iterable[tuple[int, int]]) -> str:
+    """(first, last) runs as a regex character-class body."""
+    return "".join(_class_range(lo, hi) for lo, hi in pairs)
 
 
 def _class_range(lo: int, hi: int) -> str:
     return re.escape(chr(lo)) if lo == hi else f"{re.escape(chr(lo))}-{re.escape(chr(hi))}"
 
 
-@functools.cache
-def _marks_and_formats() -> tuple[str, str]:
-    """Character-class bodies of every combining mark (category M*) and every format character
-    (Cf) in this Python's Unicode database: a scan of all 1,114,112 code points, ~0.09 s, once a
-    process. The fork server does it before it forks any worker (textsieve/registry/prewarm.py)."""
+def scan_marks_and_formats() -> tuple[list[tuple[int, int]], list[tuple[int, int]]]:
+    """Every combining mark (category M*) and every format character (Cf) of this Python's Unicode
+    database, as runs: a scan of all 1,114,112 code points, ~0.08 s."""
     marks: list[int] = []
     formats: list[int] = []
     for cp in range(0x110000):
@@ -85,13 +83,27 @@ def _marks_and_formats() -> tuple[str, str]:
             marks.append(cp)
         elif cat == "Cf":
             formats.append(cp)
-    return _ranges(marks), _ranges(formats)
+    return _pairs(marks), _pairs(formats)
+
+
+@functools.cache
+def _marks_and_formats() -> tuple[str, str]:
+    """Character-class bodies of every combining mark and every format character. Read from
+    registry/_unicode_tables.py when it was made from this Python's Unicode version (the tests
+    scan again and compare); otherwise scanned, once a process (the fork servers do it before they
+    fork: textsieve/registry/prewarm.py)."""
+    from textsieve.registry import _unicode_tables as tables
+
+    if tables.UNICODE_VERSION == unicodedata.unidata_version:
+        return _class_body(tables.MARKS), _class_body(tables.FORMATS)
+    marks, formats = scan_marks_and_formats()
+    return _class_body(marks), _class_body(formats)
 
 
 @functools.cache
 def _pattern(split_cjk: bool) -> re.Pattern[str]:
     m, cf = _marks_and_formats()
-    cjk = "".join(_class_range(lo, hi) for lo, hi in _CJK_RANGES) if split_cjk else ""
+    cjk = _class_body(_CJK_RANGES) if split_cjk else ""
     # A word: letters/digits/underscore (minus ideographs) with any combining marks, and
     # inner apostrophes so that "don't" stays one token.
     word_char = f"(?:[^\\W{cjk}]|[{m}])" if cjk else f"(?:\\w|[{m}])"
@@ -146,7 +158,7 @@ HANGUL_COMPOSING = frozenset(chr(cp) for cp in (*range(0x1161, 0x1176), *range(0
 @functools.cache
 def _cjk_simple() -> re.Pattern[str]:
     """The full pattern for text with ideographs but no combining marks or format characters."""
-    cjk = "".join(_class_range(lo, hi) for lo, hi in _CJK_RANGES)
+    cjk = _class_body(_CJK_RANGES)
     word = f"[^\\W{cjk}]++(?:['\u2019][^\\W{cjk}]++)*+"
     return re.compile(f"{word}|[{cjk}]|[^\\s\\w]")
 

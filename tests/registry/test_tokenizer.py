@@ -213,6 +213,31 @@ def test_every_composing_character_takes_the_full_pattern() -> None:
     assert all(unicodedata.normalize("NFC", "\uac00" + t) != "\uac00" + t for t in HANGUL_COMPOSING if t >= "\u11a8")
 
 
+def test_the_stored_unicode_tables_are_this_pythons_marks_and_format_characters(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """registry/_unicode_tables.py spares each process a scan of every code point; it must hold what
+    the scan finds (categories M* and Cf, The Unicode Standard §4.5), and another Python's version
+    must scan instead of trusting it."""
+    from textsieve.registry import _unicode_tables as tables
+    from textsieve.registry import tokenizer
+
+    marks, formats = tokenizer.scan_marks_and_formats()
+    assert marks[0] == (0x0300, 0x036F)  # combining grave accent .. latin small letter x: from memory
+    assert (0x200B, 0x200F) in formats and (0xFEFF, 0xFEFF) in formats  # ZWSP .. RLM, and the BOM
+    if tables.UNICODE_VERSION == unicodedata.unidata_version:
+        assert (list(tables.MARKS), list(tables.FORMATS)) == (marks, formats), (
+            "registry/_unicode_tables.py is stale: run .venv/bin/python scripts/unicode_tables.py"
+        )
+    monkeypatch.setattr(tables, "UNICODE_VERSION", "0.0.0")
+    monkeypatch.setattr(tables, "MARKS", ())  # were they read, the classes would come out empty
+    tokenizer._marks_and_formats.cache_clear()
+    try:
+        assert tokenizer._marks_and_formats() == (tokenizer._class_body(marks), tokenizer._class_body(formats))
+    finally:
+        tokenizer._marks_and_formats.cache_clear()
+
+
 def test_another_unicode_version_warns_naming_both_and_still_tokenizes() -> None:
     # "3.2.0" is the frozen table Python keeps as unicodedata.ucd_3_2_0 (for IDNA), so it can
     # never be this Python's own version.
