@@ -516,7 +516,10 @@ class ModelSet:
         if self.registry_error is None:  # log the change, not every failed round
             log.warning("registry poll failed: %s", message)
             since = dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat()
-            self.registry_error = f"{message} (since {since}; the versions already loaded keep serving)"
+            # Shown on /readyz, which anyone may call: no host, database or folder (the log has them).
+            self.registry_error = (
+                f"unavailable since {since} (the server's log says why); the versions already loaded keep serving"
+            )
 
     async def poll_once(self) -> None:
         if not self._discovered:

@@ -61,6 +61,10 @@ async def test_predictions_continue_through_a_registry_outage_and_polling_resume
             assert down["ready"] is True
             note = " ".join(down["degraded"])
             assert "registry" in note and "unavailable" in note.lower()
+            assert f":{cluster.port}" not in note and "127.0.0.1" not in note  # anyone may read /readyz
+            assert any(
+                "registry poll failed" in r.getMessage() and str(cluster.port) in r.getMessage() for r in caplog.records
+            )
 
             replies = [
                 await call("POST", "/v1/predict", json={"texts": ["login fails", "great work"]}) for _ in range(20)
