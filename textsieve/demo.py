@@ -45,7 +45,12 @@ def run_demo(args: argparse.Namespace) -> int:
     from textsieve.exporter.export import export
     from textsieve.exporter.train import TrainConfig, train
     from textsieve.registry import open_registry
-    from textsieve.service.cli import cli_serve
+    from textsieve.service.cli import cli_serve, listen
+
+    if not args.no_serve:
+        # Likewise the address it will serve on: a port in use is one line now, not after training.
+        for sock in listen(args.host, args.port):
+            sock.close()
 
     work: Path = args.workdir
     registry = where.registry

@@ -211,6 +211,11 @@ def test_serve_on_port_0_says_the_port_it_got_and_a_port_in_use_is_one_line(shar
         again = run("serve", "--port", match[1], "--registry", str(shared_registry))
         assert again.returncode == 1 and again.stderr.count("\n") == 1, again.stderr
         assert f"cannot listen on 127.0.0.1:{match[1]}: the port is in use" in again.stderr
+        # The demo checks the port before its minutes of training, and writes nothing.
+        work = shared_registry.parent / "demo-on-a-busy-port"
+        demo = run("demo", "--port", match[1], "--workdir", str(work), "--registry", str(work / "registry"))
+        assert demo.returncode == 1 and demo.stderr.count("\n") == 1 and "the port is in use" in demo.stderr
+        assert demo.stdout == "" and not work.exists()
         missing = httpx.get(f"{url}/v1/models/no-such-model")
         assert missing.status_code == 404 and "no model 'no-such-model' in this service's registry" in missing.text
         assert str(shared_registry) not in missing.text
