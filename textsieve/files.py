@@ -100,6 +100,17 @@ def check_out_folder(out: Path, *, kind: str, previous: str) -> None:
             f"--out {out}: {blocker} is an existing file, so no folder can be made inside it; "
             "name a new folder elsewhere"
         )
+    # The folder is written as a sibling and renamed (atomic_directory): where the first new folder
+    # goes must take one, found now rather than after minutes of work (a read-only mount, a folder
+    # of another user). The probe is made and removed at once.
+    where = next((p for p in Path(out).absolute().parents if p.is_dir()), None)
+    if where is not None:
+        try:
+            os.rmdir(tempfile.mkdtemp(prefix=".textsieve-probe-", dir=where))
+        except OSError as exc:
+            raise InputError(
+                f"--out {out}: cannot make a folder in {where} ({exc.strerror or exc}); name a folder you can write to"
+            ) from None
 
 
 @contextlib.contextmanager

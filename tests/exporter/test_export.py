@@ -197,6 +197,12 @@ def _unknown_valid_label(run: Path) -> None:
         pytest.param(None, "{tmp}/afile", "--out {tmp}/afile: is an existing file", id="out is a file"),
         pytest.param(
             None,
+            "/sys/textsieve-test-bundle",
+            "--out /sys/textsieve-test-bundle: cannot make a folder in /sys (Operation not permitted)",
+            id="out where nothing can be written",
+        ),
+        pytest.param(
+            None,
             "{tmp}/afile/sub",
             "--out {tmp}/afile/sub: {tmp}/afile is an existing file, so no folder can be made inside it",
             id="out inside a file",

@@ -346,6 +346,12 @@ OUT = ["--out", "{tmp}/out"]
             "/afile is an existing file, so no folder can be made inside it",
             id="out inside a file",
         ),
+        # /sys takes no new folder even from root (a read-only place that file modes cannot make here).
+        pytest.param(
+            ["{data}", "--out", "/sys/textsieve-test/run"],
+            "--out /sys/textsieve-test/run: cannot make a folder in /sys (Operation not permitted)",
+            id="out where nothing can be written",
+        ),
         pytest.param(
             ["{data}", *OUT, "--vectors", "{tmp}/huge16.txt"],
             "training stopped: the training loss became nan at epoch 1",
