@@ -101,16 +101,22 @@ def check_out_folder(out: Path, *, kind: str, previous: str) -> None:
             "name a new folder elsewhere"
         )
     # The folder is written as a sibling and renamed (atomic_directory): where the first new folder
-    # goes must take one, found now rather than after minutes of work (a read-only mount, a folder
-    # of another user). The probe is made and removed at once.
+    # goes must take one.
     where = next((p for p in Path(out).absolute().parents if p.is_dir()), None)
     if where is not None:
-        try:
-            os.rmdir(tempfile.mkdtemp(prefix=".textsieve-probe-", dir=where))
-        except OSError as exc:
-            raise InputError(
-                f"--out {out}: cannot make a folder in {where} ({exc.strerror or exc}); name a folder you can write to"
-            ) from None
+        check_writable(where, out)
+
+
+def check_writable(folder: Path, out: Path) -> None:
+    """InputError naming ``--out out`` unless a folder can be made in ``folder`` (its outputs are
+    written as siblings and renamed): a read-only place or another user's folder is found before
+    the work, not after it. The probe folder is removed at once."""
+    try:
+        os.rmdir(tempfile.mkdtemp(prefix=".textsieve-probe-", dir=folder))
+    except OSError as exc:
+        raise InputError(
+            f"--out {out}: cannot make a folder in {folder} ({exc.strerror or exc}); name a folder you can write to"
+        ) from None
 
 
 @contextlib.contextmanager

@@ -121,6 +121,11 @@ def test_a_worker_killed_mid_run_is_retried_and_the_output_is_complete(scoring_r
         pytest.param(["in.csv"], "--cluster reads Parquet or JSONL", id="csv-input"),
         pytest.param(["missing.parquet"], "missing.parquet: no such file", id="missing-file"),
         pytest.param(["in.parquet", "--text-field", "body"], "the input has no column 'body'", id="wrong-field"),
+        pytest.param(
+            ["in.parquet", "--out", "/sys/ds"],
+            "--out /sys/ds: cannot make a folder in /sys (Operation not permitted)",
+            id="output-where-nothing-can-be-written",
+        ),
     ],
 )
 def test_cluster_bad_input_is_one_line_exit_2(
@@ -129,7 +134,7 @@ def test_cluster_bad_input_is_one_line_exit_2(
     _parquet(tmp_path / "in.parquet", [{"text": "hello"}], group=10)
     (tmp_path / "in.csv").write_text("text\nhello\n", encoding="utf-8")
     out = subprocess.run(
-        [sys.executable, "-m", "textsieve.cli", "score", *argv, "--model", MODEL, "--out", "ds",
+        [sys.executable, "-m", "textsieve.cli", "score", "--out", "ds", *argv, "--model", MODEL,
          "--registry", str(scoring_registry), "--cluster", "tcp://127.0.0.1:9"],
         capture_output=True, text=True, timeout=120, cwd=tmp_path, env=child_env() | {"PYTHONPATH": str(ROOT)},
     )  # fmt: skip

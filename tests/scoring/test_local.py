@@ -228,6 +228,13 @@ BAD_INPUT = [
         ["in.jsonl", "--out", "outdir"], 2, "outdir: is a folder; --out names the file", id="folder-as-output"
     ),
     pytest.param(["in.jsonl", "--out", "o.txt"], 2, "cannot tell the format from the name", id="unknown-format"),
+    # /sys takes no new file or folder even from root; this was a PermissionError traceback.
+    pytest.param(
+        ["in.jsonl", "--out", "/sys/o.jsonl"],
+        2,
+        "--out /sys/o.jsonl: cannot make a folder in /sys (Operation not permitted)",
+        id="output-where-nothing-can-be-written",
+    ),
     pytest.param(["in.jsonl", "--out", "in.jsonl"], 2, "--out names the input file itself", id="output-is-the-input"),
     pytest.param(
         ["in.jsonl", "--out", "o.jsonl", "--progress-every", "nan"],

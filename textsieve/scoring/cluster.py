@@ -34,7 +34,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
 from textsieve.errors import InputError, IntegrityError, UnavailableError
-from textsieve.files import atomic_write_text, fsync_dir
+from textsieve.files import atomic_write_text, check_writable, fsync_dir
 from textsieve.scoring import formats
 from textsieve.scoring.columns import Layout, plan
 from textsieve.scoring.local import STATE_FORMAT, Options, Summary, metadata, work_dir
@@ -267,6 +267,7 @@ def _check_output(output: Path) -> None:
         raise InputError(f"{output}: is a folder holding other files; name a new folder (or one this verb wrote)")
     if not output.parent.is_dir():
         raise InputError(f"{output.parent}: no such folder for --out; create it first")
+    check_writable(output.parent, output)
 
 
 def _connect(address: str) -> Any:

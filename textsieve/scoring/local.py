@@ -29,7 +29,7 @@ from typing import TYPE_CHECKING, Any, TextIO
 
 from textsieve import __version__
 from textsieve.errors import InputError, UnavailableError
-from textsieve.files import atomic_write_text, fsync_dir
+from textsieve.files import atomic_write_text, check_writable, fsync_dir
 from textsieve.scoring import formats
 from textsieve.scoring.columns import Layout, plan
 from textsieve.scoring.model import Resolved, resolve
@@ -116,6 +116,7 @@ def check_output(output: Path) -> None:
         raise InputError(f"{output}: is a folder; --out names the file to write (.jsonl, .csv, .tsv or .parquet)")
     if not output.parent.is_dir():
         raise InputError(f"{output.parent}: no such folder for --out; create it first")
+    check_writable(output.parent, output)
 
 
 def _input_identity(path: Path) -> dict[str, object]:
