@@ -489,6 +489,13 @@ def evalset_lines(tiny_data: Path) -> list[str]:
         pytest.param(["m", "1", "--against", "live"], None, "'m' has no live version", id="no-live"),
         pytest.param(["m", "1", "--against", "one"], None, "give 'live' or a version number", id="bad-against"),
         pytest.param(["m", "1", "--against", "1"], None, "that is the version under report", id="self"),
+        # Found only after the scoring before; /sys takes no new folder even from root.
+        pytest.param(
+            ["m", "1", "--out", "/sys/textsieve-report"],
+            None,
+            "--out /sys/textsieve-report: cannot make a folder in /sys (Operation not permitted)",
+            id="out-not-writable",
+        ),
     ],
 )
 def test_evaluate_bad_input_is_one_line_and_exit_2(
@@ -511,7 +518,7 @@ def test_evaluate_bad_input_is_one_line_and_exit_2(
     if content is not None:
         file.write_text(content, encoding="utf-8")
     code, out, err = _run(
-        capsys, "evaluate", *[a.replace("{file}", str(file)) for a in argv], "--out", str(tmp_path / "o"), *r
+        capsys, "evaluate", "--out", str(tmp_path / "o"), *[a.replace("{file}", str(file)) for a in argv], *r
     )
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1 and expected_msg in err, err
