@@ -77,6 +77,16 @@ class ContentEncodingError(InputError):
         )
 
 
+class TransferCodingError(InputError):
+    """A request body sent with a transfer coding other than chunked (e.g. gzip, chunked): HTTP 501."""
+
+    def __init__(self, codings: list[str]) -> None:
+        super().__init__(
+            f"the request body has Transfer-Encoding {', '.join(codings)!r}; this service reads request bodies "
+            "as sent or chunked only: send the JSON with Content-Length, or with Transfer-Encoding: chunked alone"
+        )
+
+
 @dataclass(frozen=True, slots=True)
 class Kind:
     status: int
@@ -100,6 +110,13 @@ KINDS: dict[type[BaseException], Kind] = {
         "The body's content coding is not accepted",
         "Request bodies are read as sent, uncompressed; the response's Accept-Encoding header "
         "names what is accepted (identity). Send the body without Content-Encoding.",
+    ),
+    TransferCodingError: Kind(
+        501,
+        "unsupported-transfer-coding",
+        "The body's transfer coding is not implemented",
+        "Request bodies are read with Content-Length or Transfer-Encoding: chunked; any other transfer coding "
+        "(RFC 9112 §6.1) is not undone here, so the body would be read as if it were JSON. Send it uncompressed.",
     ),
     InputError: Kind(
         422,
@@ -446,6 +463,7 @@ __all__ = [
     "ReviewDisabledError",
     "ReviewerAuthError",
     "MEDIA_TYPE",
+    "TransferCodingError",
     "install",
     "problem",
     "render",
