@@ -245,9 +245,24 @@ MALFORMED = Kind(
     "The request line, a header, the Content-Length or the chunked framing could not be parsed as "
     "HTTP/1.1 (RFC 9112); the connection was closed. Nothing was computed.",
 )
+HEAD_TOO_LARGE = Kind(
+    431,
+    "request-head-too-large",
+    "The request's headers are too large",
+    "A request's line and headers together must fit in the bound the 431 detail names; the connection "
+    "was closed. Send shorter headers and put data in the body. Nothing was computed.",
+)
 SLUGS: dict[str, Kind] = {
     k.slug: k
-    for k in [*KINDS.values(), MISSING_TOKEN, MISSING_REVIEW_TOKEN, *_HTTP_KINDS.values(), REQUEST_TIMEOUT, MALFORMED]
+    for k in [
+        *KINDS.values(),
+        MISSING_TOKEN,
+        MISSING_REVIEW_TOKEN,
+        *_HTTP_KINDS.values(),
+        REQUEST_TIMEOUT,
+        MALFORMED,
+        HEAD_TOO_LARGE,
+    ]
 }
 
 

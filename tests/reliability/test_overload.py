@@ -10,6 +10,7 @@ status DEADLINE_EXCEEDED is mapped to in Google's HTTP mapping of gRPC codes; fr
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import json
 import select
 import socket
@@ -27,6 +28,7 @@ from tests.helpers.service import make_registry, serving, settings_for
 from textsieve.errors import DeadlinePassedError, OverloadedError
 from textsieve.service.inference.admission import Admission
 from textsieve.service.inference.batcher import QUANTUM, Batcher, _Job
+from textsieve.service.web.transport import MAX_HEAD_BYTES
 
 MIB = 1024 * 1024
 
@@ -216,6 +218,40 @@ def test_requests_that_are_not_valid_http_are_answered_400_problem_json_and_clos
         assert scraped(server.url)[("textsieve_connections_malformed_total", ())] == len(MALFORMED)
         r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["a refund please"]}, timeout=10)
         assert r.status_code == 200
+
+
+def test_a_request_head_past_its_bound_is_answered_431_and_closed_before_it_fills_memory(
+    registry_path: Path, tmp_path: Path
+) -> None:
+    # The parser holds a header it has not seen the end of; before, one header line of 100 MiB sent
+    # within the read deadline grew the server by 100 MiB and was then answered 200.
+    with running_server(str(registry_path), tmp_path / "server.log", workers=1, inference="threads") as server:
+        idle = server.rss_bytes()
+        with _connect(server.port) as s:
+            s.sendall(b"GET /healthz HTTP/1.1\r\nHost: t\r\nX-Big: ")
+            sent = 0
+            with contextlib.suppress(OSError):  # the server closes the connection mid-way
+                while sent < 64 * MIB:
+                    s.sendall(b"a" * MIB)
+                    sent += MIB
+            answer = _response(s, 5)
+        assert sent < 64 * MIB and server.rss_bytes() < idle + 16 * MIB, (sent, idle, server.rss_bytes())
+        assert _status(answer) == 431, answer[:200]
+        assert b"content-type: application/problem+json" in answer.lower() and b"connection: close" in answer
+        problem = _problem(answer)
+        assert problem["type"] == "/problems/request-head-too-large" and str(MAX_HEAD_BYTES) in problem["detail"]
+        explained = httpx.get(f"{server.url}{problem['type']}", timeout=10)
+        assert explained.status_code == 200 and "HTTP 431" in explained.text
+        # Long but ordinary heads pass: a 10 kB request id, thousands of short headers, pipelined requests.
+        r = httpx.get(f"{server.url}/healthz", headers={"x-request-id": "a" * 10_000}, timeout=10)
+        assert r.status_code == 200
+        many = b"".join(b"X-H%d: v\r\n" % i for i in range(5000))
+        assert len(many) < MAX_HEAD_BYTES
+        one = b"POST /v1/predict HTTP/1.1\r\nHost: t\r\nContent-Type: application/json\r\nContent-Length: 15\r\n"
+        with _connect(server.port) as s:
+            s.sendall((one + many + b"\r\n" + _BODY) * 20 + b"GET /healthz HTTP/1.1\r\nConnection: close\r\n\r\n")
+            answer = _response(s, 10)
+        assert answer.count(b"HTTP/1.1 200 OK") == 21, answer[:300]
 
 
 def test_connections_beyond_the_cap_are_refused_at_once(
