@@ -23,6 +23,12 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   it has not seen the end of in memory, so without a bound one connection could fill the
   replica's memory with a single endless header line within the read deadline (the body budget
   bounds bodies only).
+- **No upgrades.** The service speaks HTTP/1.1 only (uvicorn runs with ``ws="none"``), but the
+  parser, on a request with ``Upgrade`` and ``Connection: upgrade``, ends the request at its
+  headers and stops: ``curl --http2`` on ``http://`` sends ``Upgrade: h2c`` with every first
+  request, and its body was lost (answered 422 "the body is missing"), a WebSocket handshake got
+  an empty 403. RFC 9110 §7.8 lets a server ignore Upgrade, so the request is parsed again
+  without it and answered as HTTP/1.1.
 - **Read deadline.** From the moment a connection opens, or a keep-alive connection's next
   request begins, the client has ``read_timeout_seconds`` to send the request's headers and
   whole body. Past it the connection is answered 408 (RFC 9110 §15.5.9) if no response has
@@ -37,6 +43,7 @@ from __future__ import annotations
 import asyncio
 from typing import Any
 
+import httptools
 import orjson
 from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
 
@@ -244,7 +251,7 @@ class ConnectionGuard:
                 if self._over_cap or self._refused:
                     return
                 self._head_began = False
-                super().data_received(data)
+                self._feed(data)
                 if self._in_head and not self._refused:
                     # All of this read went into an unfinished head, but for the read it began in (at
                     # most one read's size more than the limit is held).
@@ -254,6 +261,38 @@ class ConnectionGuard:
                         self._disarm()
                         self.transport.write(guard.head_too_large)
                         self.transport.close()
+
+            def _feed(self, data: bytes) -> None:
+                """uvicorn's ``data_received``, but for an upgrade, which is declined (see the module's docstring)."""
+                self._unset_keepalive_if_required()
+                try:
+                    self.parser.feed_data(data)
+                except httptools.HttpParserError:
+                    msg = "Invalid HTTP request received."
+                    self.logger.warning(msg)
+                    self.send_400_response(msg)
+                except httptools.HttpParserUpgrade as exc:
+                    if self._should_upgrade():
+                        self._without_upgrade(data[exc.args[0] :])
+
+            def _should_upgrade(self) -> bool:
+                # True: uvicorn leaves the request alone (no cycle, no body), and _feed parses it again.
+                # CONNECT asks for a tunnel, not an upgrade: it is answered as it was parsed (405).
+                return bool(self.parser.should_upgrade()) and self.scope["method"] != "CONNECT"
+
+            def _without_upgrade(self, rest: bytes) -> None:
+                """Parse the request again from its head without Upgrade, then ``rest`` (its body and on)."""
+                version = self.parser.get_http_version().encode("ascii")
+                head = [self.scope["method"].encode("ascii"), b" ", self.url, b" HTTP/", version, b"\r\n"]
+                for name, value in self.headers:
+                    if name == b"connection":
+                        value = b",".join(t for t in value.split(b",") if t.strip().lower() != b"upgrade")
+                        if not value.strip():
+                            continue
+                    if name != b"upgrade":
+                        head += [name, b": ", value, b"\r\n"]
+                self.parser = httptools.HttpRequestParser(self)
+                self._feed(b"".join(head) + b"\r\n" + rest)
 
             def send_400_response(self, msg: str) -> None:  # uvicorn calls it when the parser refuses
                 guard.malformed_requests += 1

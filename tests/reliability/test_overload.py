@@ -254,6 +254,41 @@ def test_a_request_head_past_its_bound_is_answered_431_and_closed_before_it_fill
         assert answer.count(b"HTTP/1.1 200 OK") == 21, answer[:300]
 
 
+_UPGRADES = {
+    # What curl --http2 sends on http:// with its first request, body and all.
+    "h2c": b"Upgrade: h2c\r\nConnection: Upgrade, HTTP2-Settings\r\nHTTP2-Settings: AAMAAABkAARAAAAAAAIAAAAA\r\n",
+    "websocket": b"Upgrade: websocket\r\nConnection: upgrade\r\nSec-WebSocket-Key: dGhlIHNhbXBsZSBub25jZQ==\r\n"
+    b"Sec-WebSocket-Version: 13\r\n",
+}
+
+
+@pytest.mark.parametrize("upgrade", list(_UPGRADES))
+def test_an_upgrade_is_declined_and_the_request_answered_as_http_1_1_body_and_all(
+    registry_path: Path, tmp_path: Path, upgrade: str
+) -> None:
+    # RFC 9110 §7.8: a server may ignore Upgrade. The parser ended such a request at its headers, so
+    # a prediction sent by curl --http2 was answered 422 "the body is missing", and a WebSocket
+    # handshake an empty 403 that was not problem+json.
+    body = json.dumps({"texts": ["my card was charged twice"]}).encode()
+    one = b"POST /v1/predict HTTP/1.1\r\nHost: t\r\nContent-Type: application/json\r\n" + _UPGRADES[upgrade]
+    with running_server(str(registry_path), tmp_path / "server.log", workers=1, inference="threads") as server:
+        expected = httpx.post(f"{server.url}/v1/predict", content=body, headers={"content-type": "application/json"})
+        with _connect(server.port) as s:
+            # A length, then chunks split across reads; a request pipelined behind them is answered too.
+            s.sendall(one + b"Content-Length: %d\r\n\r\n" % len(body) + body)
+            s.sendall(one + b"Transfer-Encoding: chunked\r\n\r\n%x\r\n" % len(body) + body[:9])
+            time.sleep(0.2)
+            s.sendall(body[9:] + b"\r\n0\r\n\r\nGET /healthz HTTP/1.1\r\nHost: t\r\nConnection: close\r\n\r\n")
+            answer = _response(s, 10)
+        replies = answer.split(b"HTTP/1.1 ")[1:]
+        assert [_status(b"HTTP/1.1 " + r) for r in replies] == [200, 200, 200], answer[:300]
+        for reply in replies[:2]:
+            assert json.loads(reply.split(b"\r\n\r\n", 1)[1]) == expected.json()
+        with _connect(server.port) as s:
+            s.sendall(b"GET /healthz HTTP/1.1\r\nHost: t\r\n" + _UPGRADES[upgrade] + b"\r\n")
+            assert _status(_response(s, 2)) == 200
+
+
 def test_connections_beyond_the_cap_are_refused_at_once(
     registry_path: Path, tmp_path: Path, sockets: list[socket.socket]
 ) -> None:
