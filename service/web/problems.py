@@ -374,9 +374,15 @@ def _body_shape(scope: Scope) -> str:
     return "a JSON object with the field(s) " + ", ".join(f'"{name}"' for name in required)
 
 
+# A reply names what is wrong, it does not echo the body: 100,000 wrong items or one key of
+# megabytes would otherwise get a reply several times the size of the request.
+MAX_LISTED_ERRORS = 20
+
+
 def _validation_problem(exc: RequestValidationError, scope: Scope) -> Response:
     errors: list[dict[str, Any]] = []
-    for err in exc.errors():
+    found = exc.errors()
+    for err in found[:MAX_LISTED_ERRORS]:
         field = _field(err.get("loc", ()))
         msg = str(err.get("msg", "invalid"))
         if msg.startswith("Value error, "):
@@ -401,7 +407,9 @@ def _validation_problem(exc: RequestValidationError, scope: Scope) -> Response:
                 )
         errors.append({"field": field, "message": msg, "type": kind})
     first = errors[0] if errors else {"field": "body", "message": "invalid"}
-    more = f" (and {len(errors) - 1} more problem(s), see 'errors')" if len(errors) > 1 else ""
+    more = f" (and {len(found) - 1} more problem(s), see 'errors')" if len(found) > 1 else ""
+    if len(found) > len(errors):
+        more = f" (and {len(found) - 1} more problem(s); 'errors' lists the first {len(errors)})"
     detail = f"{first['field']}: {first['message']}{more}"
     return problem(KINDS[InputError], detail, scope, errors=errors)
 
