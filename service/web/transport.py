@@ -180,7 +180,7 @@ class ConnectionGuard:
             "Bad Request",
             MALFORMED.slug,
             MALFORMED.title,
-            "the request could not be parsed as HTTP/1.1: check its request line, headers, Content-Length "
+            "the request could not be parsed as HTTP/1.1: check its request line, headers (one Host), Content-Length "
             "(one, a whole number) and chunked framing; the connection is closed",
             None,
         )
@@ -309,6 +309,12 @@ class ConnectionGuard:
 
             def on_headers_complete(self) -> None:
                 self._in_head = False
+                hosts = sum(1 for name, _ in self.headers if name == b"host")
+                if hosts > 1 or (hosts == 0 and self.parser.get_http_version() == "1.1"):
+                    # RFC 9112 §3.2: a server must answer 400 to an HTTP/1.1 request without a Host,
+                    # or with two (a proxy in front may have read the other one).
+                    self.send_400_response("Host missing or repeated")
+                    return
                 if self.url.split(b"?", 1)[0] not in _PROBE_TARGETS and not guard.request_may_start():
                     cycle: Any = self.cycle
                     pipelined = cycle is not None and not cycle.response_complete

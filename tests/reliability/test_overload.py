@@ -195,6 +195,9 @@ MALFORMED = {
     "bad chunk size": b"POST /v1/predict HTTP/1.1\r\nHost: t\r\nTransfer-Encoding: chunked\r\n\r\nzz\r\n" + _BODY,
     "not HTTP": b"HELLO\r\n\r\n",
     "NUL in a header": b"GET /healthz HTTP/1.1\r\nHost: t\r\nX-A: a\x00b\r\n\r\n",
+    # RFC 9112 §3.2: an HTTP/1.1 request has exactly one Host (before, both were answered 200).
+    "no Host": b"POST /v1/predict HTTP/1.1\r\nContent-Type: application/json\r\nContent-Length: 15\r\n\r\n" + _BODY,
+    "two Hosts": b"GET /healthz HTTP/1.1\r\nHost: t\r\nHost: u\r\n\r\n",
 }
 
 
@@ -249,7 +252,9 @@ def test_a_request_head_past_its_bound_is_answered_431_and_closed_before_it_fill
         assert len(many) < MAX_HEAD_BYTES
         one = b"POST /v1/predict HTTP/1.1\r\nHost: t\r\nContent-Type: application/json\r\nContent-Length: 15\r\n"
         with _connect(server.port) as s:
-            s.sendall((one + many + b"\r\n" + _BODY) * 20 + b"GET /healthz HTTP/1.1\r\nConnection: close\r\n\r\n")
+            s.sendall(
+                (one + many + b"\r\n" + _BODY) * 20 + b"GET /healthz HTTP/1.1\r\nHost: t\r\nConnection: close\r\n\r\n"
+            )
             answer = _response(s, 10)
         assert answer.count(b"HTTP/1.1 200 OK") == 21, answer[:300]
 
