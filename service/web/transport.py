@@ -276,14 +276,14 @@ class ConnectionGuard:
                         self._without_upgrade(data[exc.args[0] :])
 
             def _should_upgrade(self) -> bool:
-                # True: uvicorn leaves the request alone (no cycle, no body), and _feed parses it again.
-                # CONNECT asks for a tunnel, not an upgrade: it is answered as it was parsed (405).
-                return bool(self.parser.should_upgrade()) and self.scope["method"] != "CONNECT"
+                # True: the request is left alone (no checks, no cycle, no body), and _feed parses it
+                # again. CONNECT asks for a tunnel, not an upgrade: it is answered as it was parsed (405).
+                return bool(self.parser.should_upgrade()) and self.parser.get_method() != b"CONNECT"
 
             def _without_upgrade(self, rest: bytes) -> None:
                 """Parse the request again from its head without Upgrade, then ``rest`` (its body and on)."""
                 version = self.parser.get_http_version().encode("ascii")
-                head = [self.scope["method"].encode("ascii"), b" ", self.url, b" HTTP/", version, b"\r\n"]
+                head = [self.parser.get_method(), b" ", self.url, b" HTTP/", version, b"\r\n"]
                 for name, value in self.headers:
                     if name == b"connection":
                         value = b",".join(t for t in value.split(b",") if t.strip().lower() != b"upgrade")
@@ -309,6 +309,8 @@ class ConnectionGuard:
 
             def on_headers_complete(self) -> None:
                 self._in_head = False
+                if self._should_upgrade():  # checked and admitted once, when parsed again (see _feed)
+                    return
                 hosts = sum(1 for name, _ in self.headers if name == b"host")
                 if hosts > 1 or (hosts == 0 and self.parser.get_http_version() == "1.1"):
                     # RFC 9112 §3.2: a server must answer 400 to an HTTP/1.1 request without a Host,

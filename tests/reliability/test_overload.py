@@ -292,6 +292,12 @@ def test_an_upgrade_is_declined_and_the_request_answered_as_http_1_1_body_and_al
         with _connect(server.port) as s:
             s.sendall(b"GET /healthz HTTP/1.1\r\nHost: t\r\n" + _UPGRADES[upgrade] + b"\r\n")
             assert _status(_response(s, 2)) == 200
+        # Checked once, when parsed again: without a Host it is one 400 (and was a traceback besides).
+        with _connect(server.port) as s:
+            s.sendall(b"GET /healthz HTTP/1.1\r\n" + _UPGRADES[upgrade] + b"\r\n")
+            answer = _response(s, 2)
+        assert answer.count(b"HTTP/1.1 ") == 1 and _status(answer) == 400, answer[:200]
+        assert "Traceback" not in server.output()
 
 
 def test_connections_beyond_the_cap_are_refused_at_once(
