@@ -70,6 +70,7 @@ def server_config(
         lifespan="on",
         timeout_graceful_shutdown=GRACEFUL_SECONDS,
         server_header=False,
+        ws="none",  # no WebSocket routes; an Upgrade is declined (service/web/transport.py)
     )
 
 

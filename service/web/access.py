@@ -23,6 +23,9 @@ from textsieve.service.telemetry import ServiceMetrics
 from textsieve.service.web.transport import PROBE_PATHS, WITH_BODY, ConnectionGuard
 
 _SAFE_ID = re.compile(r"[A-Za-z0-9._:-]{1,128}")
+# Booked for a request the app returned from without answering: its client went away mid-body, or
+# the connection layer answered it (400 for broken chunked framing, 408). nginx's "client closed request".
+CLIENT_GONE = 499
 log = logging.getLogger(ACCESS)
 # Request ids need to be unique, not secret. os.urandom (behind uuid4) releases the GIL, and
 # with inference threads busy, getting it back can cost the event loop milliseconds per request.
@@ -99,7 +102,7 @@ class AccessMiddleware:
             await self.app(scope, receive, send)
             return
         rid, started = begin(scope, Headers(scope=scope).get("x-request-id", ""))
-        status = 500
+        status = 0  # no response started
 
         async def send_with_id(message: Message) -> None:
             nonlocal status
@@ -131,8 +134,11 @@ class AccessMiddleware:
                 guard.inflight += 1
         try:
             await self.app(scope, app_receive, send_with_id)
+        except BaseException:
+            status = status or 500  # the server answers it 500
+            raise
         finally:
-            self.access.finish(scope, _route(scope), status, started, entered)
+            self.access.finish(scope, _route(scope), status or CLIENT_GONE, started, entered)
 
 
-__all__ = ["Access", "AccessMiddleware", "begin"]
+__all__ = ["CLIENT_GONE", "Access", "AccessMiddleware", "begin"]

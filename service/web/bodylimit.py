@@ -23,7 +23,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from textsieve.errors import LimitError, OverloadedError
 from textsieve.service.inference.memory import release_freed_memory
-from textsieve.service.web.problems import ContentEncodingError, render
+from textsieve.service.web.problems import ContentEncodingError, TransferCodingError, render
 from textsieve.service.web.transport import WITH_BODY
 
 TRIM_AFTER_BYTES = 8 * 1024 * 1024  # hand memory back once at least this much passed through
@@ -108,6 +108,12 @@ class BodyLimitMiddleware:
             response.headers["Accept-Encoding"] = "identity"
             response.headers["Connection"] = "close"  # its body is never read
             await response(scope, receive, send)
+            return
+        # The parser takes "gzip, chunked" (chunked last) and undoes only the chunking; the gzip would
+        # be read as JSON. RFC 9112 §6.1: a transfer coding the server does not understand is a 501.
+        codings = [c.strip() for v in headers.getlist("transfer-encoding") for c in v.split(",") if c.strip()]
+        if any(c.lower() != "chunked" for c in codings):
+            await self._refuse(TransferCodingError(codings), scope, receive, send)
             return
         declared = headers.get("content-length")
         expected = int(declared) if declared is not None and declared.isdigit() else None

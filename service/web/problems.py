@@ -77,6 +77,16 @@ class ContentEncodingError(InputError):
         )
 
 
+class TransferCodingError(InputError):
+    """A request body sent with a transfer coding other than chunked (e.g. gzip, chunked): HTTP 501."""
+
+    def __init__(self, codings: list[str]) -> None:
+        super().__init__(
+            f"the request body has Transfer-Encoding {', '.join(codings)!r}; this service reads request bodies "
+            "as sent or chunked only: send the JSON with Content-Length, or with Transfer-Encoding: chunked alone"
+        )
+
+
 @dataclass(frozen=True, slots=True)
 class Kind:
     status: int
@@ -100,6 +110,13 @@ KINDS: dict[type[BaseException], Kind] = {
         "The body's content coding is not accepted",
         "Request bodies are read as sent, uncompressed; the response's Accept-Encoding header "
         "names what is accepted (identity). Send the body without Content-Encoding.",
+    ),
+    TransferCodingError: Kind(
+        501,
+        "unsupported-transfer-coding",
+        "The body's transfer coding is not implemented",
+        "Request bodies are read with Content-Length or Transfer-Encoding: chunked; any other transfer coding "
+        "(RFC 9112 §6.1) is not undone here, so the body would be read as if it were JSON. Send it uncompressed.",
     ),
     InputError: Kind(
         422,
@@ -225,12 +242,27 @@ MALFORMED = Kind(
     400,
     "malformed-request",
     "The request is not valid HTTP",
-    "The request line, a header, the Content-Length or the chunked framing could not be parsed as "
-    "HTTP/1.1 (RFC 9112); the connection was closed. Nothing was computed.",
+    "The request line, a header (an HTTP/1.1 request has exactly one Host), the Content-Length or the "
+    "chunked framing could not be parsed as HTTP/1.1 (RFC 9112); the connection was closed. Nothing was computed.",
+)
+HEAD_TOO_LARGE = Kind(
+    431,
+    "request-head-too-large",
+    "The request's headers are too large",
+    "A request's line and headers together must fit in the bound the 431 detail names; the connection "
+    "was closed. Send shorter headers and put data in the body. Nothing was computed.",
 )
 SLUGS: dict[str, Kind] = {
     k.slug: k
-    for k in [*KINDS.values(), MISSING_TOKEN, MISSING_REVIEW_TOKEN, *_HTTP_KINDS.values(), REQUEST_TIMEOUT, MALFORMED]
+    for k in [
+        *KINDS.values(),
+        MISSING_TOKEN,
+        MISSING_REVIEW_TOKEN,
+        *_HTTP_KINDS.values(),
+        REQUEST_TIMEOUT,
+        MALFORMED,
+        HEAD_TOO_LARGE,
+    ]
 }
 
 
@@ -342,9 +374,15 @@ def _body_shape(scope: Scope) -> str:
     return "a JSON object with the field(s) " + ", ".join(f'"{name}"' for name in required)
 
 
+# A reply names what is wrong, it does not echo the body: 100,000 wrong items or one key of
+# megabytes would otherwise get a reply several times the size of the request.
+MAX_LISTED_ERRORS = 20
+
+
 def _validation_problem(exc: RequestValidationError, scope: Scope) -> Response:
     errors: list[dict[str, Any]] = []
-    for err in exc.errors():
+    found = exc.errors()
+    for err in found[:MAX_LISTED_ERRORS]:
         field = _field(err.get("loc", ()))
         msg = str(err.get("msg", "invalid"))
         if msg.startswith("Value error, "):
@@ -369,7 +407,9 @@ def _validation_problem(exc: RequestValidationError, scope: Scope) -> Response:
                 )
         errors.append({"field": field, "message": msg, "type": kind})
     first = errors[0] if errors else {"field": "body", "message": "invalid"}
-    more = f" (and {len(errors) - 1} more problem(s), see 'errors')" if len(errors) > 1 else ""
+    more = f" (and {len(found) - 1} more problem(s), see 'errors')" if len(found) > 1 else ""
+    if len(found) > len(errors):
+        more = f" (and {len(found) - 1} more problem(s); 'errors' lists the first {len(errors)})"
     detail = f"{first['field']}: {first['message']}{more}"
     return problem(KINDS[InputError], detail, scope, errors=errors)
 
@@ -446,6 +486,7 @@ __all__ = [
     "ReviewDisabledError",
     "ReviewerAuthError",
     "MEDIA_TYPE",
+    "TransferCodingError",
     "install",
     "problem",
     "render",

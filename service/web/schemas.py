@@ -23,6 +23,8 @@ from textsieve.registry.tokenizer import text_refusal
 # Bounds the schema states so that no number reaches a database column or a JSON encoder too big
 # for it; the service's own limits (max_spans) are far below.
 MAX_SPANS_FIELD = 2**31 - 1
+NAMED_UNKNOWN = 10  # unknown fields named in a refusal, each cut to NAME_CHARS: it names, it does not echo
+NAME_CHARS = 40
 
 
 @functools.cache
@@ -40,10 +42,17 @@ class _Request(BaseModel):
         if isinstance(data, dict) and not data.keys() <= _field_names(cls):
             unknown = sorted(str(k) for k in data if k not in cls.model_fields)
             if unknown:
+                named = [n if len(n) <= NAME_CHARS else n[:NAME_CHARS] + "..." for n in unknown[:NAMED_UNKNOWN]]
+                more = f" and {len(unknown) - len(named)} more" if len(unknown) > len(named) else ""
                 raise PydanticCustomError(
                     "unknown_field",
-                    "unknown field(s) {names}; allowed: {allowed}",
-                    {"names": ", ".join(map(repr, unknown)), "allowed": ", ".join(cls.model_fields), "fields": unknown},
+                    "unknown field(s) {names}{more}; allowed: {allowed}",
+                    {
+                        "names": ", ".join(map(repr, named)),
+                        "more": more,
+                        "allowed": ", ".join(cls.model_fields),
+                        "fields": named,
+                    },
                 )
         return data
 

@@ -18,6 +18,17 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   limit was reached and they were in time, it grows by a tenth. A refused connection's next
   request is read only after half the Retry-After it was given. The access middleware
   (:mod:`textsieve.service.web.access`) counts and times the requests inside the app.
+- **Head size.** A request's line and headers together may hold ``MAX_HEAD_BYTES``; past it the
+  request is answered 431 (RFC 6585 §5) and the connection closed. The parser keeps a header
+  it has not seen the end of in memory, so without a bound one connection could fill the
+  replica's memory with a single endless header line within the read deadline (the body budget
+  bounds bodies only).
+- **No upgrades.** The service speaks HTTP/1.1 only (uvicorn runs with ``ws="none"``), but the
+  parser, on a request with ``Upgrade`` and ``Connection: upgrade``, ends the request at its
+  headers and stops: ``curl --http2`` on ``http://`` sends ``Upgrade: h2c`` with every first
+  request, and its body was lost (answered 422 "the body is missing"), a WebSocket handshake got
+  an empty 403. RFC 9110 §7.8 lets a server ignore Upgrade, so the request is parsed again
+  without it and answered as HTTP/1.1.
 - **Read deadline.** From the moment a connection opens, or a keep-alive connection's next
   request begins, the client has ``read_timeout_seconds`` to send the request's headers and
   whole body. Past it the connection is answered 408 (RFC 9110 §15.5.9) if no response has
@@ -32,16 +43,18 @@ from __future__ import annotations
 import asyncio
 from typing import Any
 
+import httptools
 import orjson
 from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
 
-from textsieve.service.web.problems import MALFORMED, MEDIA_TYPE, REQUEST_TIMEOUT
+from textsieve.service.web.problems import HEAD_TOO_LARGE, MALFORMED, MEDIA_TYPE, REQUEST_TIMEOUT
 
 # Liveness, readiness and metrics: cheap, bodiless, and what an orchestrator restarts or drains a
 # replica by, so they are never refused by the request limit (a busy replica is alive).
 PROBE_PATHS = frozenset({"/healthz", "/readyz", "/metrics"})
 _PROBE_TARGETS = frozenset(p.encode() for p in PROBE_PATHS)
 WITH_BODY = frozenset({"POST", "PUT", "PATCH"})
+MAX_HEAD_BYTES = 64 * 1024  # nginx's default buffers hold 32 KiB of headers; a browser's cookies fit in 8
 
 
 def _raw_response(
@@ -113,6 +126,7 @@ class ConnectionGuard:
         target_seconds: float = 0.25,
         min_requests: int = 4,
         start_requests: int = 64,
+        max_head_bytes: int = MAX_HEAD_BYTES,
     ) -> None:
         self.max_connections = max_connections
         self.read_timeout = read_timeout
@@ -166,11 +180,21 @@ class ConnectionGuard:
             "Bad Request",
             MALFORMED.slug,
             MALFORMED.title,
-            "the request could not be parsed as HTTP/1.1: check its request line, headers, Content-Length "
+            "the request could not be parsed as HTTP/1.1: check its request line, headers (one Host), Content-Length "
             "(one, a whole number) and chunked framing; the connection is closed",
             None,
         )
         self.malformed_requests = 0
+        self.max_head_bytes = max_head_bytes
+        self.head_too_large = _raw_response(
+            HEAD_TOO_LARGE.status,
+            "Request Header Fields Too Large",
+            HEAD_TOO_LARGE.slug,
+            HEAD_TOO_LARGE.title,
+            f"the request's line and headers exceeded {max_head_bytes} bytes: send shorter headers (a long "
+            "cookie or token?) and put data in the body; the connection is closed",
+            None,
+        )
 
     def request_may_start(self) -> bool:
         if self.inflight >= int(self.limit):
@@ -200,6 +224,9 @@ class ConnectionGuard:
             _refused = False
             _skipping = False  # a refused request's body is being read past and dropped
             _read_timer: asyncio.TimerHandle | None = None
+            _in_head = False  # a request has begun and its headers have not all arrived
+            _head_began = False  # ... and it began in the data being read now
+            _head_bytes = 0  # bytes read in whole while in the head (the first read's share is not counted)
 
             def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
                 if guard.open >= guard.max_connections:
@@ -223,7 +250,49 @@ class ConnectionGuard:
             def data_received(self, data: bytes) -> None:
                 if self._over_cap or self._refused:
                     return
-                super().data_received(data)
+                self._head_began = False
+                self._feed(data)
+                if self._in_head and not self._refused:
+                    # All of this read went into an unfinished head, but for the read it began in (at
+                    # most one read's size more than the limit is held).
+                    self._head_bytes += 0 if self._head_began else len(data)
+                    if self._head_bytes > guard.max_head_bytes:
+                        self._refused = True
+                        self._disarm()
+                        self.transport.write(guard.head_too_large)
+                        self.transport.close()
+
+            def _feed(self, data: bytes) -> None:
+                """uvicorn's ``data_received``, but for an upgrade, which is declined (see the module's docstring)."""
+                self._unset_keepalive_if_required()
+                try:
+                    self.parser.feed_data(data)
+                except httptools.HttpParserError:
+                    msg = "Invalid HTTP request received."
+                    self.logger.warning(msg)
+                    self.send_400_response(msg)
+                except httptools.HttpParserUpgrade as exc:
+                    if self._should_upgrade():
+                        self._without_upgrade(data[exc.args[0] :])
+
+            def _should_upgrade(self) -> bool:
+                # True: the request is left alone (no checks, no cycle, no body), and _feed parses it
+                # again. CONNECT asks for a tunnel, not an upgrade: it is answered as it was parsed (405).
+                return bool(self.parser.should_upgrade()) and self.parser.get_method() != b"CONNECT"
+
+            def _without_upgrade(self, rest: bytes) -> None:
+                """Parse the request again from its head without Upgrade, then ``rest`` (its body and on)."""
+                version = self.parser.get_http_version().encode("ascii")
+                head = [self.parser.get_method(), b" ", self.url, b" HTTP/", version, b"\r\n"]
+                for name, value in self.headers:
+                    if name == b"connection":
+                        value = b",".join(t for t in value.split(b",") if t.strip().lower() != b"upgrade")
+                        if not value.strip():
+                            continue
+                    if name != b"upgrade":
+                        head += [name, b": ", value, b"\r\n"]
+                self.parser = httptools.HttpRequestParser(self)
+                self._feed(b"".join(head) + b"\r\n" + rest)
 
             def send_400_response(self, msg: str) -> None:  # uvicorn calls it when the parser refuses
                 guard.malformed_requests += 1
@@ -233,11 +302,21 @@ class ConnectionGuard:
                 self.transport.close()
 
             def on_message_begin(self) -> None:
+                self._in_head, self._head_began, self._head_bytes = True, True, 0
                 super().on_message_begin()
                 if self._read_timer is None:
                     self._arm()
 
             def on_headers_complete(self) -> None:
+                self._in_head = False
+                if self._should_upgrade():  # checked and admitted once, when parsed again (see _feed)
+                    return
+                hosts = sum(1 for name, _ in self.headers if name == b"host")
+                if hosts > 1 or (hosts == 0 and self.parser.get_http_version() == "1.1"):
+                    # RFC 9112 §3.2: a server must answer 400 to an HTTP/1.1 request without a Host,
+                    # or with two (a proxy in front may have read the other one).
+                    self.send_400_response("Host missing or repeated")
+                    return
                 if self.url.split(b"?", 1)[0] not in _PROBE_TARGETS and not guard.request_may_start():
                     cycle: Any = self.cycle
                     pipelined = cycle is not None and not cycle.response_complete
@@ -305,4 +384,4 @@ class ConnectionGuard:
         return GuardedHttpToolsProtocol
 
 
-__all__ = ["PROBE_PATHS", "WITH_BODY", "ConnectionGuard"]
+__all__ = ["MAX_HEAD_BYTES", "PROBE_PATHS", "WITH_BODY", "ConnectionGuard"]

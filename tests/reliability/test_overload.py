@@ -10,6 +10,7 @@ status DEADLINE_EXCEEDED is mapped to in Google's HTTP mapping of gRPC codes; fr
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import json
 import select
 import socket
@@ -27,6 +28,7 @@ from tests.helpers.service import make_registry, serving, settings_for
 from textsieve.errors import DeadlinePassedError, OverloadedError
 from textsieve.service.inference.admission import Admission
 from textsieve.service.inference.batcher import QUANTUM, Batcher, _Job
+from textsieve.service.web.transport import MAX_HEAD_BYTES
 
 MIB = 1024 * 1024
 
@@ -193,6 +195,9 @@ MALFORMED = {
     "bad chunk size": b"POST /v1/predict HTTP/1.1\r\nHost: t\r\nTransfer-Encoding: chunked\r\n\r\nzz\r\n" + _BODY,
     "not HTTP": b"HELLO\r\n\r\n",
     "NUL in a header": b"GET /healthz HTTP/1.1\r\nHost: t\r\nX-A: a\x00b\r\n\r\n",
+    # RFC 9112 §3.2: an HTTP/1.1 request has exactly one Host (before, both were answered 200).
+    "no Host": b"POST /v1/predict HTTP/1.1\r\nContent-Type: application/json\r\nContent-Length: 15\r\n\r\n" + _BODY,
+    "two Hosts": b"GET /healthz HTTP/1.1\r\nHost: t\r\nHost: u\r\n\r\n",
 }
 
 
@@ -216,6 +221,83 @@ def test_requests_that_are_not_valid_http_are_answered_400_problem_json_and_clos
         assert scraped(server.url)[("textsieve_connections_malformed_total", ())] == len(MALFORMED)
         r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["a refund please"]}, timeout=10)
         assert r.status_code == 200
+
+
+def test_a_request_head_past_its_bound_is_answered_431_and_closed_before_it_fills_memory(
+    registry_path: Path, tmp_path: Path
+) -> None:
+    # The parser holds a header it has not seen the end of; before, one header line of 100 MiB sent
+    # within the read deadline grew the server by 100 MiB and was then answered 200.
+    with running_server(str(registry_path), tmp_path / "server.log", workers=1, inference="threads") as server:
+        idle = server.rss_bytes()
+        with _connect(server.port) as s:
+            s.sendall(b"GET /healthz HTTP/1.1\r\nHost: t\r\nX-Big: ")
+            sent = 0
+            with contextlib.suppress(OSError):  # the server closes the connection mid-way
+                while sent < 64 * MIB:
+                    s.sendall(b"a" * MIB)
+                    sent += MIB
+            answer = _response(s, 5)
+        assert sent < 64 * MIB and server.rss_bytes() < idle + 16 * MIB, (sent, idle, server.rss_bytes())
+        assert _status(answer) == 431, answer[:200]
+        assert b"content-type: application/problem+json" in answer.lower() and b"connection: close" in answer
+        problem = _problem(answer)
+        assert problem["type"] == "/problems/request-head-too-large" and str(MAX_HEAD_BYTES) in problem["detail"]
+        explained = httpx.get(f"{server.url}{problem['type']}", timeout=10)
+        assert explained.status_code == 200 and "HTTP 431" in explained.text
+        # Long but ordinary heads pass: a 10 kB request id, thousands of short headers, pipelined requests.
+        r = httpx.get(f"{server.url}/healthz", headers={"x-request-id": "a" * 10_000}, timeout=10)
+        assert r.status_code == 200
+        many = b"".join(b"X-H%d: v\r\n" % i for i in range(5000))
+        assert len(many) < MAX_HEAD_BYTES
+        one = b"POST /v1/predict HTTP/1.1\r\nHost: t\r\nContent-Type: application/json\r\nContent-Length: 15\r\n"
+        with _connect(server.port) as s:
+            s.sendall(
+                (one + many + b"\r\n" + _BODY) * 20 + b"GET /healthz HTTP/1.1\r\nHost: t\r\nConnection: close\r\n\r\n"
+            )
+            answer = _response(s, 10)
+        assert answer.count(b"HTTP/1.1 200 OK") == 21, answer[:300]
+
+
+_UPGRADES = {
+    # What curl --http2 sends on http:// with its first request, body and all.
+    "h2c": b"Upgrade: h2c\r\nConnection: Upgrade, HTTP2-Settings\r\nHTTP2-Settings: AAMAAABkAARAAAAAAAIAAAAA\r\n",
+    "websocket": b"Upgrade: websocket\r\nConnection: upgrade\r\nSec-WebSocket-Key: dGhlIHNhbXBsZSBub25jZQ==\r\n"
+    b"Sec-WebSocket-Version: 13\r\n",
+}
+
+
+@pytest.mark.parametrize("upgrade", list(_UPGRADES))
+def test_an_upgrade_is_declined_and_the_request_answered_as_http_1_1_body_and_all(
+    registry_path: Path, tmp_path: Path, upgrade: str
+) -> None:
+    # RFC 9110 §7.8: a server may ignore Upgrade. The parser ended such a request at its headers, so
+    # a prediction sent by curl --http2 was answered 422 "the body is missing", and a WebSocket
+    # handshake an empty 403 that was not problem+json.
+    body = json.dumps({"texts": ["my card was charged twice"]}).encode()
+    one = b"POST /v1/predict HTTP/1.1\r\nHost: t\r\nContent-Type: application/json\r\n" + _UPGRADES[upgrade]
+    with running_server(str(registry_path), tmp_path / "server.log", workers=1, inference="threads") as server:
+        expected = httpx.post(f"{server.url}/v1/predict", content=body, headers={"content-type": "application/json"})
+        with _connect(server.port) as s:
+            # A length, then chunks split across reads; a request pipelined behind them is answered too.
+            s.sendall(one + b"Content-Length: %d\r\n\r\n" % len(body) + body)
+            s.sendall(one + b"Transfer-Encoding: chunked\r\n\r\n%x\r\n" % len(body) + body[:9])
+            time.sleep(0.2)
+            s.sendall(body[9:] + b"\r\n0\r\n\r\nGET /healthz HTTP/1.1\r\nHost: t\r\nConnection: close\r\n\r\n")
+            answer = _response(s, 10)
+        replies = answer.split(b"HTTP/1.1 ")[1:]
+        assert [_status(b"HTTP/1.1 " + r) for r in replies] == [200, 200, 200], answer[:300]
+        for reply in replies[:2]:
+            assert json.loads(reply.split(b"\r\n\r\n", 1)[1]) == expected.json()
+        with _connect(server.port) as s:
+            s.sendall(b"GET /healthz HTTP/1.1\r\nHost: t\r\n" + _UPGRADES[upgrade] + b"\r\n")
+            assert _status(_response(s, 2)) == 200
+        # Checked once, when parsed again: without a Host it is one 400 (and was a traceback besides).
+        with _connect(server.port) as s:
+            s.sendall(b"GET /healthz HTTP/1.1\r\n" + _UPGRADES[upgrade] + b"\r\n")
+            answer = _response(s, 2)
+        assert answer.count(b"HTTP/1.1 ") == 1 and _status(answer) == 400, answer[:200]
+        assert "Traceback" not in server.output()
 
 
 def test_connections_beyond_the_cap_are_refused_at_once(

@@ -230,6 +230,26 @@ async def test_a_compressed_request_body_is_refused_with_415_naming_what_is_acce
     assert r.headers["accept-encoding"] == "identity"
 
 
+@pytest.mark.parametrize("coding", ["gzip, chunked", "x-custom, chunked", "GZIP,chunked"])
+@pytest.mark.parametrize("path", ["/v1/predict", "/v1/verdicts"])
+async def test_a_transfer_coding_besides_chunked_is_refused_with_501(
+    shared_client: httpx.AsyncClient, coding: str, path: str
+) -> None:
+    # RFC 9112 §6.1: 501 for a transfer coding the server does not understand. The HTTP parser
+    # undoes only the chunking, so before, a gzip body read as "not UTF-8" (422) and any other
+    # coding's bytes were classified as if they were the JSON itself (200).
+    body = json.dumps({"texts": ["my card was charged twice"]}).encode()
+    for content in (gzip.compress(body), body):
+        r = await shared_client.post(path, content=content, headers={**JSON, "transfer-encoding": coding})
+        problem = assert_problem(r, 501, "unsupported-transfer-coding")
+        named = coding.split(",")[0]
+        assert f"Transfer-Encoding '{named}, chunked'" in problem["detail"], problem["detail"]
+        assert "Transfer-Encoding: chunked alone" in problem["detail"]
+        assert r.headers["connection"] == "close"
+    r = await shared_client.post(path, content=_chunks(body), headers={**JSON, "transfer-encoding": "Chunked"})
+    assert r.status_code != 501, r.text
+
+
 async def test_identity_and_an_empty_content_encoding_are_read_as_they_are(shared_client: httpx.AsyncClient) -> None:
     body = json.dumps({"texts": ["my card was charged twice"]}).encode()
     for coding in ("identity", "Identity", ""):

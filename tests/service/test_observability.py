@@ -19,6 +19,7 @@ import re
 import time
 from collections import defaultdict
 from pathlib import Path
+from typing import Any
 
 import pytest
 from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
@@ -166,6 +167,30 @@ async def test_metrics_count_what_was_served(shared_registry: Path) -> None:
     assert samples[("textsieve_http_requests_total", key)] == 1
     assert samples[("process_resident_memory_bytes", ())] > 0  # the server process's own
     assert samples[("process_cpu_seconds_total", ())] > 0
+
+
+async def test_a_client_gone_mid_body_is_booked_499_not_500(shared_registry: Path) -> None:
+    # A chunked body whose client goes away (or whose framing the connection layer refuses with
+    # 400) reaches the app as a disconnect; it was booked as a 500, a server error nobody made.
+    async with serving(settings_for(shared_registry)) as (app, client):
+        messages = [{"type": "http.request", "body": b'{"texts"', "more_body": True}, {"type": "http.disconnect"}]
+        sent: list[Any] = []
+
+        async def receive() -> Any:
+            return messages.pop(0)
+
+        async def send(message: Any) -> None:
+            sent.append(message)
+
+        headers = [(b"host", b"t"), (b"content-type", b"application/json"), (b"transfer-encoding", b"chunked")]
+        scope = {"type": "http", "asgi": {"version": "3.0"}, "http_version": "1.1", "method": "POST", "scheme": "http"}
+        scope |= {"path": "/v1/predict", "raw_path": b"/v1/predict", "query_string": b"", "headers": headers}
+        await app(scope, receive, send)
+        samples = outside((await client.get("/metrics")).text)
+    assert sent == []
+    key = (("method", "POST"), ("route", "unmatched"), ("status", "499"))
+    assert samples[("textsieve_http_requests_total", key)] == 1
+    assert not [k for k in samples if k[0] == "textsieve_http_requests_total" and ("status", "500") in k[1]]
 
 
 def test_label_values_and_help_are_escaped() -> None:
