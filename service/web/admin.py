@@ -15,7 +15,7 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Depends, Request
 
 from textsieve.errors import AuthError
-from textsieve.service.web.deps import ModelsDep, RegistryDep, SettingsDep
+from textsieve.service.web.deps import ModelsDep, RegistryDep, SettingsDep, no_query
 from textsieve.service.web.openapi import ADMIN_SCHEME, Tag
 from textsieve.service.web.problems import MEDIA_TYPE, AdminDisabledError
 from textsieve.service.web.schemas import (
@@ -61,6 +61,7 @@ def _actor(request: Request, given: str | None) -> str:
 
 @router.post(
     "/{name}/versions/{n}/promote",
+    dependencies=[Depends(no_query)],
     operation_id="promoteVersion",
     tags=[Tag.ADMIN],
     response_model=AdminReply,
@@ -90,6 +91,7 @@ async def promote(
 
 @router.post(
     "/{name}/rollback",
+    dependencies=[Depends(no_query)],
     operation_id="rollbackModel",
     tags=[Tag.ADMIN],
     response_model=AdminReply,

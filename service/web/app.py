@@ -84,6 +84,9 @@ def create_app(settings: Settings | None = None, *, fast_lane: bool = True) -> L
         # The interactive docs pages load their scripts from a CDN; the schema stays available.
         docs_url=None,
         redoc_url=None,
+        # /healthz/ was redirected to an address built from the request's Host header (any host,
+        # and http:// behind a TLS proxy); a path with a slash too many is a 404 naming the right one.
+        redirect_slashes=False,
     )
     app.state.settings = settings
     app.state.metrics = metrics

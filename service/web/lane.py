@@ -230,7 +230,13 @@ class LanedFastAPI(FastAPI):
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         lane = self.lane
-        if lane is not None and scope["type"] == "http" and scope["path"] == PATH and scope["method"] == "POST":
+        if (
+            lane is not None
+            and scope["type"] == "http"
+            and scope["path"] == PATH
+            and scope["method"] == "POST"
+            and not scope["query_string"]  # refused by the full app (deps.no_query)
+        ):
             await lane(scope, receive, send)
         else:
             await super().__call__(scope, receive, send)

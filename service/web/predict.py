@@ -10,7 +10,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import orjson
-from fastapi import APIRouter, Request, Response
+from fastapi import APIRouter, Depends, Request, Response
 from starlette.background import BackgroundTask
 from starlette.types import Scope
 
@@ -18,7 +18,7 @@ from textsieve.errors import InputError, LimitError
 from textsieve.service.modelset.model_set import ModelSet
 from textsieve.service.settings import Settings
 from textsieve.service.telemetry import ServiceMetrics
-from textsieve.service.web.deps import MetricsDep, ModelsDep, SettingsDep
+from textsieve.service.web.deps import MetricsDep, ModelsDep, SettingsDep, no_query
 from textsieve.service.web.openapi import Tag
 from textsieve.service.web.problems import MEDIA_TYPE
 from textsieve.service.web.schemas import PredictRequest, PredictResponse, Problem
@@ -79,6 +79,7 @@ def check_limits(body: PredictRequest, settings: Settings) -> None:
 
 @router.post(
     "/v1/predict",
+    dependencies=[Depends(no_query)],
     operation_id="predict",
     tags=[Tag.PREDICTIONS],
     response_class=Response,

@@ -440,7 +440,9 @@ async def _on_http(request: Request, exc: Exception) -> Response:
     )
     headers = dict(exc.headers or {})
     if exc.status_code == 404:
-        detail = f"no such path: {request.method} {request.url.path}; see GET /v1/models or the page at /"
+        path = request.url.path
+        hint = f"; paths here end without a slash: {path.rstrip('/')}" if len(path) > 1 and path.endswith("/") else ""
+        detail = f"no such path: {request.method} {path}{hint}; see GET /v1/models or the page at /"
     elif exc.status_code == 405 and "Allow" in headers:
         headers["Allow"] = allowed(headers["Allow"])
         detail = f"{request.url.path} answers {headers['Allow']} only (see the Allow header)"

@@ -22,7 +22,7 @@ from fastapi.responses import JSONResponse
 
 from textsieve.errors import LimitError
 from textsieve.service.settings import Settings
-from textsieve.service.web.deps import RegistryDep, SettingsDep
+from textsieve.service.web.deps import RegistryDep, SettingsDep, no_query
 from textsieve.service.web.openapi import REVIEW_SCHEME, Tag
 from textsieve.service.web.problems import MEDIA_TYPE, ReviewDisabledError, ReviewerAuthError
 from textsieve.service.web.schemas import Problem, VerdictReply, VerdictRequest
@@ -65,6 +65,7 @@ def _check_length(body: VerdictRequest, settings: Settings) -> None:
 
 @router.post(
     "/v1/verdicts",
+    dependencies=[Depends(no_query)],
     operation_id="recordVerdict",
     tags=[Tag.REVIEWS],
     status_code=201,

@@ -173,6 +173,44 @@ async def test_malformed_requests_are_422_with_field_errors(
             id="unknown version",
         ),
         pytest.param("GET", "/v2/predict", None, 404, "not-found", [], id="unknown path"),
+        # A query string was ignored on the POST routes: ?model=x got the live model's answer.
+        pytest.param(
+            "POST",
+            "/v1/predict?model=nosuch&version=3",
+            {"texts": ["a"]},
+            422,
+            "invalid-input",
+            ["POST /v1/predict reads no query parameters (got 'model', 'version')", "JSON body"],
+            id="query string on predict",
+        ),
+        pytest.param(
+            "POST",
+            f"/v1/models/{MODEL}/rollback?force=true",
+            {"reason": "x"},
+            422,
+            "invalid-input",
+            ["reads no query parameters (got 'force')"],
+            id="query string on an admin call",
+        ),
+        # A slash too many was redirected (307) to an address made from the Host header.
+        pytest.param(
+            "GET",
+            "/healthz/",
+            None,
+            404,
+            "not-found",
+            ["paths here end without a slash: /healthz"],
+            id="slash too many",
+        ),
+        pytest.param(
+            "POST",
+            "/v1/predict/",
+            {"texts": ["a"]},
+            404,
+            "not-found",
+            ["paths here end without a slash: /v1/predict"],
+            id="slash too many on predict",
+        ),
         pytest.param(
             "GET", "/v1/predict", None, 405, "method-not-allowed", ["/v1/predict answers POST"], id="GET on predict"
         ),
@@ -197,8 +235,9 @@ async def test_unknown_model_version_and_path(
     slug: str,
     words: list[str],
 ) -> None:
-    r = await shared_client.request(method, path, json=body)
+    r = await shared_client.request(method, path, json=body, headers={"Host": "elsewhere.example"})
     problem = assert_problem(r, status, slug)
+    assert "location" not in r.headers
     for word in words:
         assert word in problem["detail"], (word, problem["detail"])
 
