@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import functools
 import math
+import re
 import time
 from collections.abc import Awaitable, Callable
 from dataclasses import dataclass
@@ -28,13 +29,15 @@ MAX_DEADLINE_MS = 3_600_000
 DEADLINE_HEADER = "Textsieve-Deadline"
 
 
+_MILLISECONDS = re.compile(r"[0-9]{1,9}(?:\.[0-9]{1,9})?")
+
+
 def deadline_at(raw: str, received: float) -> float:
     """The perf_counter time by which inference must start: the header's milliseconds after ``received``."""
-    try:
-        ms = float(raw)
-    except ValueError:
-        ms = math.nan
-    if not 0 < ms <= MAX_DEADLINE_MS:  # also refuses nan and inf
+    # Digits with an optional fraction: float() alone also took "1_000", " 5 ", "1e3" and other
+    # scripts' digits, none of them how a header value of milliseconds is written.
+    ms = float(raw) if _MILLISECONDS.fullmatch(raw) else math.nan
+    if not 0 < ms <= MAX_DEADLINE_MS:  # also refuses nan
         raise InputError(
             f"header {DEADLINE_HEADER}: {raw[:40]!r} is not allowed; give milliseconds, more than 0 "
             f"and at most {MAX_DEADLINE_MS}"

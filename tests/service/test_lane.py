@@ -59,6 +59,9 @@ CASES = [
     Case("unknown version", {"texts": [TEXT], "version": 9}, 404, "lane"),
     Case("deadline passed", {"texts": [TEXT]}, 504, "lane", headers={"Textsieve-Deadline": "0.000001"}),
     Case("bad deadline header", {"texts": [TEXT]}, 422, "app", headers={"Textsieve-Deadline": "soon"}),
+    # float() took these (found by probing); a header of milliseconds is digits with a fraction.
+    Case("deadline with underscores", {"texts": [TEXT]}, 422, "app", headers={"Textsieve-Deadline": "1_000"}),
+    Case("deadline as an exponent", {"texts": [TEXT]}, 422, "app", headers={"Textsieve-Deadline": "6e4"}),
     Case("bad JSON", b'{"texts": ["a",', 422, "app"),
     Case("raw control character in a string", b'{"texts": ["a\tb"]}', 422, "app"),
     Case("unknown field", {"texts": [TEXT], "span": 2}, 422, "app"),
