@@ -1103,6 +1103,16 @@ def public_location(location: str) -> str:
     return describe(location)
 
 
+def check_location(location: str) -> str:
+    """``location`` if it can name a registry; a postgresql:// URL libpq cannot read is an InputError
+    that does not show the URL (its password may be what is wrong)."""
+    if location.startswith(PG_SCHEMES):
+        from textsieve.registry._postgres import check_url
+
+        check_url(location)
+    return location
+
+
 def open_registry(
     location: str | os.PathLike[str],
     *,
@@ -1173,4 +1183,13 @@ def _check_folder(folder: Path, create: bool) -> None:
         raise InputError(f"{folder}: cannot create the registry folder ({exc.strerror})") from exc
 
 
-__all__ = ["BLOB_DIR", "CACHE_DIR", "DB_FILE", "Registry", "open_registry", "public_location", "utc_now"]
+__all__ = [
+    "BLOB_DIR",
+    "CACHE_DIR",
+    "DB_FILE",
+    "Registry",
+    "check_location",
+    "open_registry",
+    "public_location",
+    "utc_now",
+]
