@@ -20,6 +20,11 @@ from textsieve.errors import InputError, RegistryError, StateError, UnavailableE
 from textsieve.registry._db import Backend, Params, Row, Tx
 
 CONNECT_TIMEOUT_S = 5
+# How long a writer waits for the write lock before giving up (UnavailableError: try again), as
+# SQLite's busy timeout does: a session that holds it and stopped (a suspended command, a client
+# whose network went) would otherwise stall every other writer, and with it a replica's registry
+# thread (its polls and views too), for as long as that session lasts.
+LOCK_TIMEOUT_S = 30.0
 _WRITE_LOCK = (
     "SELECT pg_advisory_xact_lock(('x' || substr(md5('textsieve:' || current_schema()), 1, 16))::bit(64)::bigint)"
 )
@@ -38,6 +43,10 @@ def translate(exc: Exception, where: str) -> RegistryError | UnavailableError:
     first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
     if isinstance(exc, psycopg.errors.IntegrityError):
         return StateError(f"{where}: the change conflicts with the registry's rules ({first})")
+    if isinstance(exc, psycopg.errors.LockNotAvailable):
+        return UnavailableError(
+            f"{where}: the registry's write lock stayed held by another writer for {LOCK_TIMEOUT_S:.0f} s; try again"
+        )
     transient = psycopg.OperationalError | psycopg.errors.SerializationFailure | psycopg.errors.DeadlockDetected
     if isinstance(exc, transient):
         return UnavailableError(f"{where}: PostgreSQL unavailable: {first}")
@@ -173,7 +182,7 @@ class PostgresBackend(Backend):
         return self._transaction("BEGIN ISOLATION LEVEL REPEATABLE READ, READ ONLY")
 
     def write(self) -> contextlib.AbstractContextManager[Tx]:
-        return self._transaction("BEGIN", _WRITE_LOCK)
+        return self._transaction("BEGIN", f"SET LOCAL lock_timeout = {round(LOCK_TIMEOUT_S * 1000)}", _WRITE_LOCK)
 
     def close(self) -> None:
         with self._lock:
