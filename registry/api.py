@@ -255,6 +255,19 @@ class Registry:
             dry_run=dry_run,
         )
 
+    def _require_blob_folder(self) -> None:
+        """Refuse to store into a blob folder that holds none of the blobs the registry refers to: a
+        mistyped --blobs or an unmounted shared volume would otherwise get files that every other verb
+        and replica looks for in the registry's real blob folder, and never finds."""
+        with self.backend.read() as tx:
+            referenced = Queries(tx).referenced_blobs()
+        if referenced and not any(self.blobs.has(digest) for digest in referenced):
+            raise InputError(
+                f"{self.blobs.root}: holds none of the {len(referenced)} blobs this registry refers to, so it is "
+                "not the registry's blob folder; pass the folder every verb and replica uses "
+                "(--blobs / TEXTSIEVE_BLOBS; is its volume mounted?)"
+            )
+
     # -- publishing -----------------------------------------------------------------------
     def publish(
         self,
@@ -284,6 +297,7 @@ class Registry:
 
         # Blobs first, metadata last: a crash in between leaves unreferenced blobs, never a
         # version whose files are missing.
+        self._require_blob_folder()
         self.blobs.ensure()
         self.blobs.sweep_temporary()
         files: dict[str, tuple[str, int]] = {}
@@ -377,6 +391,7 @@ class Registry:
         normalised = load_evalset(file, text_field=text_field, label_field=label_field)
         if reference is not None:
             _check_evalset_labels(file, normalised, reference.labels, version=reference.version)
+        self._require_blob_folder()
         self.blobs.ensure()
         digest = self.blobs.put_bytes(normalised.data)
         now = utc_now()
@@ -1103,6 +1118,16 @@ def public_location(location: str) -> str:
     return describe(location)
 
 
+def check_location(location: str) -> str:
+    """``location`` if it can name a registry; a postgresql:// URL libpq cannot read is an InputError
+    that does not show the URL (its password may be what is wrong)."""
+    if location.startswith(PG_SCHEMES):
+        from textsieve.registry._postgres import check_url
+
+        check_url(location)
+    return location
+
+
 def open_registry(
     location: str | os.PathLike[str],
     *,
@@ -1173,4 +1198,13 @@ def _check_folder(folder: Path, create: bool) -> None:
         raise InputError(f"{folder}: cannot create the registry folder ({exc.strerror})") from exc
 
 
-__all__ = ["BLOB_DIR", "CACHE_DIR", "DB_FILE", "Registry", "open_registry", "public_location", "utc_now"]
+__all__ = [
+    "BLOB_DIR",
+    "CACHE_DIR",
+    "DB_FILE",
+    "Registry",
+    "check_location",
+    "open_registry",
+    "public_location",
+    "utc_now",
+]

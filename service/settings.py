@@ -197,6 +197,14 @@ class Settings(BaseSettings):
         # A file never becomes a registry folder: refused now, not retried by the server for ever.
         if "://" not in v and Path(v).exists() and not Path(v).is_dir():
             raise ValueError(f"{v} is a file; give a registry folder or a postgresql:// URL")
+        if v.startswith(POSTGRES_SCHEMES):  # nor is a URL libpq cannot read
+            from textsieve.errors import InputError
+            from textsieve.registry.api import check_location
+
+            try:
+                check_location(v)
+            except InputError as exc:
+                raise ValueError(exc.message) from None
         return v
 
     @field_validator("blobs")

@@ -429,6 +429,26 @@ def test_a_second_handle_sees_the_same_registry(spec: RegistrySpec, tiny_bundles
         assert two.history("m") == one.history("m")
 
 
+def test_a_blob_folder_holding_none_of_the_registrys_blobs_takes_nothing(
+    spec: RegistrySpec, tmp_path: Path, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    """A mistyped --blobs (or a shared volume not mounted) must not get a version whose files no other
+    verb or replica will find in the registry's own blob folder."""
+    with spec.open() as reg:
+        reg.publish(tiny_bundles["a"], "m")
+        before = reg.cursor()
+    elsewhere = tmp_path / "mistyped-blobs"
+    with open_registry(spec.location, blobs=elsewhere) as wrong:
+        with pytest.raises(InputError, match="holds none of the .* blobs this registry refers to"):
+            wrong.publish(tiny_bundles["b"], "m")
+        with pytest.raises(InputError, match="not the registry's blob folder"):
+            wrong.add_evalset("m", tiny_data / "valid.jsonl")
+        assert not elsewhere.exists()
+        assert [v.version for v in wrong.versions("m")] == [1] and wrong.cursor() == before
+    with spec.open() as reg:
+        assert reg.publish(tiny_bundles["b"], "m").version == 2  # the registry's own folder still takes it
+
+
 # -- opening ------------------------------------------------------------------------------
 def test_open_registry_refuses_what_is_not_a_registry(tmp_path: Path) -> None:
     (tmp_path / "file").write_text("x")

@@ -21,8 +21,10 @@ import time
 from collections import deque
 from pathlib import Path
 
+import pytest
+
 from tests.helpers.registries import RegistrySpec, card_variants
-from textsieve.errors import NotFoundError
+from textsieve.errors import NotFoundError, UnavailableError
 
 PROMOTER = r"""
 import json, sys, time
@@ -235,3 +237,38 @@ def test_sqlite_writers_wait_for_each_other_instead_of_failing(tmp_path: Path, t
         assert not errors
         assert waited >= 0.4  # it waited for the other writer
         assert two.live("m").version == 1  # type: ignore[union-attr]
+
+
+def test_a_writer_stalled_inside_its_transaction_makes_others_give_up_not_hang(
+    spec: RegistrySpec, tiny_bundles: dict[str, Path], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A session that holds the write lock and stops (a suspended command, a lost client) costs the
+    other writers their lock timeout, then an UnavailableError (exit 1, HTTP 503), on both backends."""
+    import threading
+
+    from textsieve.registry import _postgres, _sqlite
+
+    monkeypatch.setattr(_sqlite, "BUSY_TIMEOUT_S", 1.0)
+    monkeypatch.setattr(_postgres, "LOCK_TIMEOUT_S", 1.0)
+    with spec.open() as one, spec.open() as two:
+        one.publish(tiny_bundles["a"], "m")
+        entered, release = threading.Event(), threading.Event()
+
+        def hold() -> None:
+            with one.backend.write() as tx:
+                tx.run("UPDATE models SET updated_at = ? WHERE name = ?", ("held", "m"))
+                entered.set()
+                release.wait(60)
+
+        t = threading.Thread(target=hold)
+        t.start()
+        try:
+            assert entered.wait(10)
+            began = time.perf_counter()
+            with pytest.raises(UnavailableError, match="another writer for 1 s; try again"):
+                two.change_settings("m", {"mcnemar_p": 0.04}, reason="waits, then gives up")
+            assert time.perf_counter() - began < 10
+        finally:
+            release.set()
+            t.join()
+        assert two.change_settings("m", {"mcnemar_p": 0.04}, reason="the lock is free again")[1] == ["mcnemar_p"]
