@@ -22,6 +22,7 @@ always finishes.
 from __future__ import annotations
 
 import datetime as dt
+import functools
 import hashlib
 import math
 import os
@@ -42,7 +43,7 @@ from textsieve.errors import (
     TextsieveError,
 )
 from textsieve.registry._db import Backend, Tx
-from textsieve.registry.blobs import BlobStore, materialize
+from textsieve.registry.blobs import OWNER_FILE, BlobStore, materialize
 from textsieve.registry.bundle import Bundle, open_bundle
 from textsieve.registry.evalsets import (
     LabelledText,
@@ -54,7 +55,7 @@ from textsieve.registry.evalsets import (
 )
 from textsieve.registry.gates import GateSettings, Side, labels_gate, metric_gates, parity_gate, shadow_gate
 from textsieve.registry.manifest import MANIFEST, Manifest
-from textsieve.registry.migrations import migrate
+from textsieve.registry.migrations import FIRST_MIGRATION, migrate
 from textsieve.registry.model_settings import MCNEMAR, TOLERANCES, Group, ModelSettings, Value, setting
 from textsieve.registry.names import resolve_actor, validate_model_name, validate_reason, validate_version
 from textsieve.registry.queries import Queries
@@ -91,10 +92,19 @@ class Registry:
     """A registry: metadata in SQLite or PostgreSQL, artifacts in a content-addressed blob folder."""
 
     def __init__(
-        self, backend: Backend, blobs: BlobStore, cache: Path, *, location: str, settings: GateSettings | None = None
+        self,
+        backend: Backend,
+        blobs: BlobStore,
+        cache: Path,
+        *,
+        location: str,
+        settings: GateSettings | None = None,
+        blobs_inside: bool = False,
     ) -> None:
         self.backend = backend
         self.blobs = blobs
+        # A folder registry's own blobs/ (no --blobs): no other registry's folder can be there by mistake.
+        self.blobs_inside = blobs_inside
         self.cache = Path(cache)
         self.location = location
         self.settings = settings or GateSettings()
@@ -223,10 +233,22 @@ class Registry:
         if not math.isfinite(older_than) or older_than < 0:
             # NaN compares false with every mtime, so it would delete blobs a publish is about to record.
             raise InputError(f"older_than {older_than!r}: give a finite number of seconds, 0 or more")
+        owner = self._check_blob_owner()
         cutoff = time.time() - older_than
         stored = list(self.blobs.stored())  # listed before the references are read: see above
         with self.backend.read() as tx:
             referenced = Queries(tx).referenced_blobs()
+        if owner is None and stored:
+            # An unmarked folder (from before the marks) outside a folder registry is taken for this
+            # registry's only when it holds some of the blobs this registry refers to.
+            if not self.blobs_inside and not any(digest in referenced for digest, _, _ in stored):
+                raise InputError(
+                    f"{self.blobs.root}: holds {len(stored)} blobs and none this registry refers to, and names no "
+                    "registry: it looks like another registry's blob folder, so nothing was deleted; pass this "
+                    "registry's own folder (--blobs / TEXTSIEVE_BLOBS), or publish to this one first to mark it"
+                )
+            if not dry_run:
+                self.blobs.claim(self.registry_id)
         removed: list[str] = []
         removed_bytes = spared = 0
         for digest, mtime, size in stored:
@@ -258,7 +280,9 @@ class Registry:
     def _require_blob_folder(self) -> None:
         """Refuse to store into a blob folder that holds none of the blobs the registry refers to: a
         mistyped --blobs or an unmounted shared volume would otherwise get files that every other verb
-        and replica looks for in the registry's real blob folder, and never finds."""
+        and replica looks for in the registry's real blob folder, and never finds. Nor into another
+        registry's folder; an unmarked one becomes this registry's."""
+        owner = self._check_blob_owner()
         with self.backend.read() as tx:
             referenced = Queries(tx).referenced_blobs()
         if referenced and not any(self.blobs.has(digest) for digest in referenced):
@@ -267,6 +291,28 @@ class Registry:
                 "not the registry's blob folder; pass the folder every verb and replica uses "
                 "(--blobs / TEXTSIEVE_BLOBS; is its volume mounted?)"
             )
+        if owner is None:
+            self.blobs.claim(self.registry_id)
+
+    @functools.cached_property
+    def registry_id(self) -> str:
+        """This registry's identity: a digest of when its schema was first made (a copy of the
+        database, a backup restored, keeps it; another registry has its own)."""
+        with self.backend.read() as tx:
+            row = tx.one("SELECT applied_at FROM schema_migrations WHERE name = ?", (FIRST_MIGRATION,))
+        made = "" if row is None else str(row["applied_at"])
+        return hashlib.sha256(f"textsieve registry made {made}".encode()).hexdigest()[:24]
+
+    def _check_blob_owner(self) -> str | None:
+        """The blob folder's owner; InputError when it is another registry's."""
+        owner = self.blobs.owner()
+        if owner is not None and owner != self.registry_id:
+            raise InputError(
+                f"{self.blobs.root}: is another registry's blob folder (its {OWNER_FILE} names {owner}; this "
+                f"registry is {self.registry_id}): storing or collecting garbage there would mix or delete that "
+                "registry's blobs; pass this registry's own blob folder (--blobs / TEXTSIEVE_BLOBS)"
+            )
+        return owner
 
     # -- publishing -----------------------------------------------------------------------
     def publish(
@@ -1174,7 +1220,14 @@ def open_registry(
     except BaseException:
         backend.close()
         raise
-    return Registry(backend, BlobStore(blob_root), cache_dir, location=location_text, settings=settings)
+    return Registry(
+        backend,
+        BlobStore(blob_root),
+        cache_dir,
+        location=location_text,
+        settings=settings,
+        blobs_inside=not text.startswith(PG_SCHEMES) and blobs is None,
+    )
 
 
 def _check_folder(folder: Path, create: bool) -> None:

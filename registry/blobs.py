@@ -23,6 +23,9 @@ from textsieve.files import CHUNK, fsync_dir, sha256_file
 
 _SHA256 = re.compile(r"[0-9a-f]{64}")
 _TMP_PREFIX = ".tmp-"
+# Names the registry whose blobs these are: two registries sharing one folder would each take the
+# other's blobs for garbage (registry/api.py, ``_check_blob_owner``).
+OWNER_FILE = ".registry-id"
 STALE_TMP_SECONDS = 24 * 3600
 
 
@@ -77,6 +80,36 @@ class BlobStore:
 
     def path(self, digest: str) -> Path:
         return self.root / _check_digest(digest)
+
+    # -- the owner ------------------------------------------------------------------------
+    def owner(self) -> str | None:
+        """The id of the registry this folder's blobs belong to (``OWNER_FILE``); None when unmarked."""
+        try:
+            text = (self.root / OWNER_FILE).read_text(encoding="ascii").strip()
+        except (FileNotFoundError, NotADirectoryError):
+            return None
+        except (OSError, UnicodeDecodeError) as exc:
+            raise RegistryError(
+                f"{self.root / OWNER_FILE}: cannot be read ({exc}); it names the folder's registry"
+            ) from exc
+        return text or None
+
+    def claim(self, registry_id: str) -> None:
+        """Mark the folder as ``registry_id``'s: written and renamed into place as a blob is, so a
+        process killed half-way leaves a temporary file that garbage collection sweeps."""
+        self.ensure()
+        fd, tmp = tempfile.mkstemp(prefix=_TMP_PREFIX, dir=self.root)
+        try:
+            with os.fdopen(fd, "w", encoding="ascii") as out:
+                out.write(registry_id + "\n")
+                out.flush()
+                os.fsync(out.fileno())
+            os.replace(tmp, self.root / OWNER_FILE)
+        except BaseException:
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(tmp)
+            raise
+        fsync_dir(self.root)
 
     def has(self, digest: str) -> bool:
         return self.path(digest).is_file()

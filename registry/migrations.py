@@ -195,6 +195,8 @@ MIGRATIONS: tuple[Migration, ...] = (
     ),
 )
 
+FIRST_MIGRATION = MIGRATIONS[0].name  # when it was applied is the registry's identity (Registry.registry_id)
+
 _TABLE = "CREATE TABLE IF NOT EXISTS schema_migrations (name TEXT PRIMARY KEY, applied_at TEXT NOT NULL)"
 
 
@@ -239,4 +241,4 @@ def _up_to_date(backend: Backend, known: list[str]) -> bool:
     return {r["name"] for r in rows} == set(known)
 
 
-__all__ = ["MIGRATIONS", "Migration", "applied", "migrate"]
+__all__ = ["FIRST_MIGRATION", "MIGRATIONS", "Migration", "applied", "migrate"]

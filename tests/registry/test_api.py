@@ -22,6 +22,7 @@ from tests.helpers.jsonl import read_jsonl, write_jsonl
 from tests.helpers.registries import RegistrySpec, edit_manifest
 from textsieve.errors import BundleError, InputError, IntegrityError, NotFoundError, StateError
 from textsieve.registry import Registry, open_registry
+from textsieve.registry.blobs import OWNER_FILE
 from textsieve.registry.runtime import Predictor
 
 
@@ -447,6 +448,38 @@ def test_a_blob_folder_holding_none_of_the_registrys_blobs_takes_nothing(
         assert [v.version for v in wrong.versions("m")] == [1] and wrong.cursor() == before
     with spec.open() as reg:
         assert reg.publish(tiny_bundles["b"], "m").version == 2  # the registry's own folder still takes it
+
+
+def test_another_registrys_blob_folder_is_neither_written_nor_collected(
+    spec: RegistrySpec, tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """Found by probing: gc on one registry with TEXTSIEVE_BLOBS naming another's folder deleted
+    every blob the other referenced (9 of 16, then 'blob … is missing' on promote). A folder now
+    names the registry it belongs to, and the others leave it alone."""
+    with spec.open() as reg:
+        reg.publish(tiny_bundles["a"], "m")
+        theirs = {p.name: p.stat().st_mtime for p in spec.blob_dir.iterdir()}
+        owner = reg.registry_id
+    assert (spec.blob_dir / OWNER_FILE).read_text(encoding="ascii").strip() == owner
+    other_location = tmp_path / "other-registry"
+    with open_registry(other_location, blobs=spec.blob_dir) as other:
+        assert other.registry_id != owner
+        with pytest.raises(InputError, match=f"is another registry's blob folder \\(its {OWNER_FILE} names {owner}"):
+            other.collect_garbage(older_than=0)
+        with pytest.raises(InputError, match="is another registry's blob folder"):
+            other.publish(tiny_bundles["b"], "m")
+    assert {p.name: p.stat().st_mtime for p in spec.blob_dir.iterdir()} == theirs  # nothing deleted or added
+    with spec.open() as reg:
+        assert reg.collect_garbage(older_than=0).removed == [] and reg.fetch("m", 1)
+
+    # A folder from before the marks, holding blobs this registry does not refer to, is not taken.
+    (spec.blob_dir / OWNER_FILE).unlink()
+    with open_registry(tmp_path / "third-registry", blobs=spec.blob_dir) as third:
+        with pytest.raises(InputError, match="none this registry refers to, and names no registry"):
+            third.collect_garbage(older_than=0)
+    with spec.open() as reg:  # its own registry takes it back on the next gc
+        assert reg.collect_garbage(older_than=0).removed == []
+    assert (spec.blob_dir / OWNER_FILE).read_text(encoding="ascii").strip() == owner
 
 
 # -- opening ------------------------------------------------------------------------------

@@ -335,7 +335,7 @@ def test_gc_on_a_damaged_blob_folder_says_what_is_wrong_in_one_line(
     blobs = tmp_path / "reg" / "blobs"
     args = ["gc", *dry_run, "--registry", str(tmp_path / "reg")]
 
-    one = blobs / sorted(p.name for p in blobs.iterdir())[0]
+    one = blobs / sorted(p.name for p in blobs.iterdir() if not p.name.startswith("."))[0]  # a blob, not the mark
     one.rename(tmp_path / "aside")
     code, out, err = run(capsys, *args)
     assert code == 1 and f"kept {referenced - 1} referenced, 1 referenced missing;" in out
