@@ -97,19 +97,7 @@ class BlobStore:
     def claim(self, registry_id: str) -> None:
         """Mark the folder as ``registry_id``'s: written and renamed into place as a blob is, so a
         process killed half-way leaves a temporary file that garbage collection sweeps."""
-        self.ensure()
-        fd, tmp = tempfile.mkstemp(prefix=_TMP_PREFIX, dir=self.root)
-        try:
-            with os.fdopen(fd, "w", encoding="ascii") as out:
-                out.write(registry_id + "\n")
-                out.flush()
-                os.fsync(out.fileno())
-            os.replace(tmp, self.root / OWNER_FILE)
-        except BaseException:
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(tmp)
-            raise
-        fsync_dir(self.root)
+        self._write(OWNER_FILE, [registry_id.encode("ascii") + b"\n"])
 
     def has(self, digest: str) -> bool:
         return self.path(digest).is_file()
@@ -153,7 +141,8 @@ class BlobStore:
             raise
         return digest
 
-    def _write(self, digest: str, chunks: list[bytes]) -> None:
+    def _write(self, name: str, chunks: list[bytes]) -> None:
+        """``chunks`` as the file ``name`` of the folder, through a temporary file renamed into place."""
         self.ensure()
         fd, tmp = tempfile.mkstemp(prefix=_TMP_PREFIX, dir=self.root)
         try:
@@ -162,7 +151,7 @@ class BlobStore:
                     out.write(chunk)
                 out.flush()
                 os.fsync(out.fileno())
-            os.replace(tmp, self.root / digest)
+            os.replace(tmp, self.root / name)
         except BaseException:
             with contextlib.suppress(FileNotFoundError):
                 os.unlink(tmp)

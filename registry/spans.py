@@ -25,6 +25,8 @@ import numpy as np
 from textsieve.registry.runtime import SPAN_FLOOR, Encoded, Outputs, Predictor, Span
 
 T = TypeVar("T")
+# What turns the chosen spans into a batch's results: public dicts, or Span objects.
+Build = Callable[[Predictor, list[Encoded], Outputs, np.ndarray, "_Chosen"], list[list[T]]]
 
 
 def batch_spans(
@@ -54,7 +56,7 @@ def _in_blocks(
     out: Outputs,
     best: np.ndarray,
     ks: np.ndarray,
-    build: Callable[[Predictor, list[Encoded], Outputs, np.ndarray, _Chosen], list[list[T]]],
+    build: Build[T],
 ) -> list[list[T]]:
     n = len(encoded)
     stride = max((len(e.ids) for e in encoded), default=0) + 1
@@ -98,7 +100,7 @@ def _spans(
     out: Outputs,
     best: np.ndarray,
     ks: np.ndarray,
-    build: Callable[[Predictor, list[Encoded], Outputs, np.ndarray, _Chosen], list[list[T]]],
+    build: Build[T],
 ) -> list[list[T]]:
     n = len(encoded)
     lengths = np.fromiter((len(e.ids) for e in encoded), dtype=np.int64, count=n)
