@@ -252,6 +252,14 @@ HEAD_TOO_LARGE = Kind(
     "A request's line and headers together must fit in the bound the 431 detail names; the connection "
     "was closed. Send shorter headers and put data in the body. Nothing was computed.",
 )
+UNKNOWN_METHOD = Kind(
+    501,
+    "unknown-method",
+    "The request method is not one this service knows",
+    "The request's method is not an HTTP method the service recognises (RFC 9110 §9.1: answered 501); "
+    "the connection was closed. Its paths answer GET, HEAD and POST, as the Allow header of a 405 lists "
+    "for each. Nothing was computed.",
+)
 SLUGS: dict[str, Kind] = {
     k.slug: k
     for k in [
@@ -262,6 +270,7 @@ SLUGS: dict[str, Kind] = {
         REQUEST_TIMEOUT,
         MALFORMED,
         HEAD_TOO_LARGE,
+        UNKNOWN_METHOD,
     ]
 }
 

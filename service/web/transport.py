@@ -41,19 +41,22 @@ All of it is counted (:class:`ConnectionGuard`) and exposed in ``/metrics``.
 from __future__ import annotations
 
 import asyncio
+import re
 from typing import Any
 
 import httptools
 import orjson
 from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
 
-from textsieve.service.web.problems import HEAD_TOO_LARGE, MALFORMED, MEDIA_TYPE, REQUEST_TIMEOUT
+from textsieve.service.web.problems import HEAD_TOO_LARGE, MALFORMED, MEDIA_TYPE, REQUEST_TIMEOUT, UNKNOWN_METHOD
 
 # Liveness, readiness and metrics: cheap, bodiless, and what an orchestrator restarts or drains a
 # replica by, so they are never refused by the request limit (a busy replica is alive).
 PROBE_PATHS = frozenset({"/healthz", "/readyz", "/metrics"})
 _PROBE_TARGETS = frozenset(p.encode() for p in PROBE_PATHS)
 WITH_BODY = frozenset({"POST", "PUT", "PATCH"})
+# A request line: a method token (RFC 9110 §5.6.2), a target and an HTTP version.
+_REQUEST_LINE = re.compile(rb"[!#$%&'*+.^_`|~0-9A-Za-z-]+ [^ \r\n]+ HTTP/[0-9]\.[0-9]\r?\n")
 MAX_HEAD_BYTES = 64 * 1024  # nginx's default buffers hold 32 KiB of headers; a browser's cookies fit in 8
 
 
@@ -185,6 +188,15 @@ class ConnectionGuard:
             None,
         )
         self.malformed_requests = 0
+        self.unknown_method = _raw_response(
+            UNKNOWN_METHOD.status,
+            "Not Implemented",
+            UNKNOWN_METHOD.slug,
+            UNKNOWN_METHOD.title,
+            "the request's method is not an HTTP method this service knows; it answers GET, HEAD and POST "
+            "(a 405 names which for each path); the connection is closed",
+            None,
+        )
         self.max_head_bytes = max_head_bytes
         self.head_too_large = _raw_response(
             HEAD_TOO_LARGE.status,
@@ -267,6 +279,16 @@ class ConnectionGuard:
                 self._unset_keepalive_if_required()
                 try:
                     self.parser.feed_data(data)
+                except httptools.HttpParserInvalidMethodError:
+                    if not _REQUEST_LINE.match(data):
+                        self.send_400_response("Invalid HTTP request received.")  # not a request line at all
+                        return
+                    # RFC 9110 §9.1: a well-formed request with a method the server does not know is
+                    # answered 501, not 400.
+                    self._refused = True
+                    self._disarm()
+                    self.transport.write(guard.unknown_method)
+                    self.transport.close()
                 except httptools.HttpParserError:
                     msg = "Invalid HTTP request received."
                     self.logger.warning(msg)

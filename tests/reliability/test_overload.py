@@ -219,6 +219,12 @@ def test_requests_that_are_not_valid_http_are_answered_400_problem_json_and_clos
         explained = httpx.get(f"{server.url}/problems/malformed-request", timeout=10)
         assert explained.status_code == 200 and "HTTP 400" in explained.text
         assert scraped(server.url)[("textsieve_connections_malformed_total", ())] == len(MALFORMED)
+        # A well-formed request with a method no one defined: 501 (RFC 9110 §9.1), not 400.
+        with _connect(server.port) as s:
+            s.sendall(b"FOO /healthz HTTP/1.1\r\nHost: t\r\n\r\n")
+            answer = _response(s, 5)
+        assert _status(answer) == 501 and b"connection: close" in answer, answer[:200]
+        assert _problem(answer)["type"] == "/problems/unknown-method"
         r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["a refund please"]}, timeout=10)
         assert r.status_code == 200
 

@@ -302,7 +302,12 @@ async def test_problem_types_resolve_to_explanations(shared_client: httpx.AsyncC
     unknown = await shared_client.get("/problems/nope")
     assert explained.status_code == 200 and "HTTP 422" in explained.text
     # The connection layer's own answers (service/web/transport.py) name types that resolve too.
-    for slug, status in (("request-timeout", 408), ("malformed-request", 400), ("overloaded", 503)):
+    for slug, status in (
+        ("request-timeout", 408),
+        ("malformed-request", 400),
+        ("overloaded", 503),
+        ("unknown-method", 501),
+    ):
         r = await shared_client.get(f"/problems/{slug}")
         assert r.status_code == 200 and f"HTTP {status}" in r.text, slug
     assert unknown.status_code == 404
