@@ -61,7 +61,7 @@ def _actor(request: Request, given: str | None) -> str:
 
 @router.post(
     "/{name}/versions/{n}/promote",
-    dependencies=[Depends(no_query)],
+    dependencies=[Depends(require_admin), Depends(no_query)],  # the token first: 401/403 before any other answer
     operation_id="promoteVersion",
     tags=[Tag.ADMIN],
     response_model=AdminReply,
@@ -91,7 +91,7 @@ async def promote(
 
 @router.post(
     "/{name}/rollback",
-    dependencies=[Depends(no_query)],
+    dependencies=[Depends(require_admin), Depends(no_query)],  # the token first: 401/403 before any other answer
     operation_id="rollbackModel",
     tags=[Tag.ADMIN],
     response_model=AdminReply,

@@ -65,7 +65,7 @@ def _check_length(body: VerdictRequest, settings: Settings) -> None:
 
 @router.post(
     "/v1/verdicts",
-    dependencies=[Depends(no_query)],
+    dependencies=[Depends(require_reviewer), Depends(no_query)],  # the token first: 401/403 before any other answer
     operation_id="recordVerdict",
     tags=[Tag.REVIEWS],
     status_code=201,

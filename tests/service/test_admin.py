@@ -44,6 +44,19 @@ async def test_missing_or_wrong_token(registry_dir: Path, headers: dict[str, str
         assert r.headers["www-authenticate"].startswith("Bearer")
 
 
+async def test_an_admin_call_with_a_query_string_is_refused_after_its_token_is_checked(registry_dir: Path) -> None:
+    """Every field goes in the body: ?force=true was ignored. The token is still checked first, so a
+    caller without it learns nothing but 401."""
+    async with serving(settings_for(registry_dir, admin_token=ADMIN_TOKEN)) as (_, client):
+        without = await client.post(f"{PROMOTE}?force=true", json={"to": "live", "reason": "x"})
+        assert_problem(without, 401, "unauthorized")
+        refused = await client.post(f"{PROMOTE}?force=true", json={"to": "live", "reason": "x"}, headers=AUTH)
+        problem = assert_problem(refused, 422, "invalid-input")
+        assert "reads no query parameters (got 'force'); send every field in the JSON body" in problem["detail"]
+    with open_registry(registry_dir) as reg:
+        assert reg.live(MODEL).version == 1  # nothing promoted
+
+
 async def test_promote_and_rollback_swap_the_served_version_at_once(registry_dir: Path) -> None:
     # poll_seconds is long: only the admin call itself can explain the swap.
     async with serving(settings_for(registry_dir, admin_token=ADMIN_TOKEN, poll_seconds=600)) as (_, client):
