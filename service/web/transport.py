@@ -381,6 +381,26 @@ class ConnectionGuard:
                     return
                 super().on_message_complete()
 
+            _eof = False  # the client half-closed after a whole request (see eof_received)
+
+            def eof_received(self) -> bool | None:  # type: ignore[override]  # asyncio.Protocol allows a bool
+                # A client may send a whole request and then shut its side for writing (RFC 9112
+                # §9.6 has a client half-close when done sending). uvicorn took that for a
+                # disconnect: the reply was never written. Keep the connection open for writing while
+                # a whole request still waits for its reply, and close it once it is answered; a
+                # request cut short, or none, closes it now as before.
+                cycle: Any = self.cycle
+                if cycle is not None and not cycle.response_complete and not cycle.more_body and not self._refused:
+                    self._eof = True
+                    return True
+                return None
+
+            def on_response_complete(self) -> None:
+                super().on_response_complete()
+                if self._eof and not self.pipeline and not self.transport.is_closing():
+                    self._unset_keepalive_if_required()
+                    self.transport.close()
+
             def _resume(self) -> None:
                 if not self.transport.is_closing():
                     self.flow.resume_reading()

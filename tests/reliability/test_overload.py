@@ -445,3 +445,24 @@ def test_the_request_limit_shrinks_when_slow_and_grows_when_full_and_fast() -> N
     assert g.limit == 5
     g.inflight = 4
     assert g.request_may_start()
+
+
+def test_a_client_that_half_closes_after_its_request_still_gets_the_reply(registry_path: Path, tmp_path: Path) -> None:
+    """A client may shut its side for writing once its request is sent (RFC 9112 §9.6); uvicorn took
+    that for a disconnect and wrote nothing. A request cut short still ends the connection at once."""
+    body = b'{"texts": ["the chain came off twice"]}'
+    pipelined = b"GET /healthz HTTP/1.1\r\nHost: t\r\n\r\nGET /readyz HTTP/1.1\r\nHost: t\r\n\r\n"
+    with running_server(str(registry_path), tmp_path / "server.log", workers=1, inference="threads") as server:
+        for name, raw, answers in (
+            ("a whole prediction", _head(len(body)) + body, [200]),
+            ("two pipelined requests", pipelined, [200, 200]),
+            ("a body cut short", _head(len(body) + 10) + body, []),
+        ):
+            with _connect(server.port) as s:
+                s.sendall(raw)
+                s.shutdown(socket.SHUT_WR)
+                started = time.monotonic()
+                answer = _response(s, 10)
+            statuses = [int(part.split(b" ", 1)[0]) for part in answer.split(b"HTTP/1.1 ")[1:]]
+            assert statuses == answers, (name, answer[:300])
+            assert time.monotonic() - started < 5, name  # closed once answered, not at the read deadline
