@@ -104,3 +104,36 @@ def test_a_reviewer_corrects_and_confirms_with_the_keyboard_and_the_cli_sees_it(
     out = capsys.readouterr().out
     assert f"→ {target}" in out and "confirmed" in out and "Kwame" in out
     assert any(line.split()[:4] == ["1", "2", "1", "50.0%"] for line in out.splitlines())
+
+
+def test_a_shortcut_judges_the_card_that_holds_the_keyboard_focus(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """Tabbing into the second card's buttons makes it the card the shortcuts act on: Y there
+    confirms the second text, not the first one the queue had selected."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    settings = settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)
+    with uvicorn_server(settings) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN)
+        browser.find_element(By.ID, "start").click()
+        browser.find_element(By.ID, "texts").send_keys("\n".join(TEXTS))
+        browser.find_element(By.ID, "go").click()
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == len(TEXTS))
+        cards = browser.find_elements(By.CSS_SELECTOR, "article.result")
+        in_second = "return document.querySelectorAll('article.result')[1].contains(document.activeElement)"
+        for _ in range(20):
+            if browser.execute_script(in_second):
+                break
+            ActionChains(browser).send_keys(Keys.TAB).perform()
+        assert browser.execute_script(in_second)
+        assert "current" in (cards[1].get_attribute("class") or "")
+        ActionChains(browser).send_keys("y").perform()
+        wait.until(lambda d: cards[1].get_attribute("data-state") == "confirmed")
+        assert cards[0].get_attribute("data-state") == "pending"
+    with open_registry(registry_dir) as reg:
+        assert [v.text for v in reg.verdicts.of(MODEL)] == [TEXTS[1]]
