@@ -137,3 +137,27 @@ def test_a_shortcut_judges_the_card_that_holds_the_keyboard_focus(browser, regis
         assert cards[0].get_attribute("data-state") == "pending"
     with open_registry(registry_dir) as reg:
         assert [v.text for v in reg.verdicts.of(MODEL)] == [TEXTS[1]]
+
+
+def test_a_service_with_recording_off_is_not_blamed_on_the_reviewer_token(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """With no reviewer token configured the page shows the service's reason (403
+    review-disabled) and does not send the reviewer to sign in again, which cannot help."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN)
+        browser.find_element(By.ID, "start").click()
+        browser.find_element(By.ID, "texts").send_keys(TEXTS[0])
+        browser.find_element(By.ID, "go").click()
+        wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.result"))
+        card = browser.find_element(By.CSS_SELECTOR, "article.result")
+        card.find_element(By.CSS_SELECTOR, "button.confirm").click()
+        note = card.find_element(By.CSS_SELECTOR, ".note")
+        wait.until(lambda d: note.text)
+        assert "recording verdicts is disabled" in note.text and "TEXTSIEVE_REVIEW_TOKEN" in note.text
+        assert "sign in" not in note.text.lower()
+        assert card.get_attribute("data-state") == "pending"
