@@ -161,3 +161,25 @@ def test_a_service_with_recording_off_is_not_blamed_on_the_reviewer_token(browse
         assert "recording verdicts is disabled" in note.text and "TEXTSIEVE_REVIEW_TOKEN" in note.text
         assert "sign in" not in note.text.lower()
         assert card.get_attribute("data-state") == "pending"
+
+
+def test_a_long_unbroken_span_stays_inside_its_card(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """A span holding a long token (a pasted link, a hash) wraps in the span table instead of
+    widening the whole page."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    text = "refund " + "0123456789abcdef" * 40 + " charged twice"
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        api = httpx.post(f"{server.url}/v1/predict", json={"texts": [text], "spans": 3}, timeout=30).json()
+        assert max(len(s["text"]) for s in api["results"][0]["spans"]) > 600
+        browser.get(server.url + "/")
+        browser.find_element(By.ID, "texts").send_keys(text)
+        browser.find_element(By.ID, "go").click()
+        WebDriverWait(browser, 30).until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.result"))
+        browser.find_element(By.CSS_SELECTOR, "article.result summary").click()
+        widths = browser.execute_script(
+            "const c = document.querySelector('article.result'); const e = document.documentElement;"
+            "return [c.scrollWidth, c.clientWidth, e.scrollWidth, e.clientWidth]"
+        )
+        assert widths[0] <= widths[1] and widths[2] <= widths[3], widths
