@@ -183,3 +183,32 @@ def test_a_long_unbroken_span_stays_inside_its_card(browser, registry_dir: Path)
             "return [c.scrollWidth, c.clientWidth, e.scrollWidth, e.clientWidth]"
         )
         assert widths[0] <= widths[1] and widths[2] <= widths[3], widths
+
+
+def test_a_right_to_left_text_is_shown_right_to_left(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """Each text takes its direction from its own first strong character (dir=auto): an Arabic
+    sentence's closing '!' sits at its left end, where it ends, not at its right end."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    texts = ["شكرا على إصلاح الفرامل بسرعة!", TEXTS[0]]
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        browser.get(server.url + "/")
+        browser.find_element(By.ID, "texts").send_keys("\n".join(texts))
+        browser.find_element(By.ID, "go").click()
+        WebDriverWait(browser, 30).until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        directions = browser.execute_script(
+            "return Array.from(document.querySelectorAll('article.result .text'), (b) => getComputedStyle(b).direction)"
+        )
+        assert directions == ["rtl", "ltr"]
+        # Where the first and the last character are drawn, in the box as it is shown.
+        first, last = browser.execute_script(
+            "const box = document.querySelector('article.result .text');"
+            "const walk = document.createTreeWalker(box, NodeFilter.SHOW_TEXT); const nodes = [];"
+            "while (walk.nextNode()) if (walk.currentNode.parentNode.tagName !== 'SUP') nodes.push(walk.currentNode);"
+            "const x = (n, i) => { const r = document.createRange(); r.setStart(n, i); r.setEnd(n, i + 1);"
+            "  return r.getBoundingClientRect().left; };"
+            "const end = nodes[nodes.length - 1];"
+            "return [x(nodes[0], 0), x(end, end.length - 1)]"
+        )
+        assert last < first
