@@ -212,3 +212,36 @@ def test_a_right_to_left_text_is_shown_right_to_left(browser, registry_dir: Path
             "return [x(nodes[0], 0), x(end, end.length - 1)]"
         )
         assert last < first
+
+
+def test_a_refused_batch_leaves_the_queue_under_review(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """Queueing too many texts shows the service's problem detail, naming the limit, above the
+    queue; the cards still awaiting verdicts and the line saying what scored them stay."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), max_texts=3)) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        box = browser.find_element(By.ID, "texts")
+        box.send_keys("\n".join(TEXTS))
+        browser.find_element(By.ID, "go").click()
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        batch = browser.find_element(By.ID, "batch").text
+        box.clear()
+        box.send_keys("\n".join(["refund please"] * 4))
+        browser.find_element(By.ID, "go").click()
+        wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.error"))
+        error = browser.find_element(By.CSS_SELECTOR, "article.error").text
+        assert "4 texts in one request; the limit is 3 (TEXTSIEVE_MAX_TEXTS)" in error
+        cards = browser.find_elements(By.CSS_SELECTOR, "article.result:not(.error)")
+        assert len(cards) == len(TEXTS)
+        for card, text in zip(cards, TEXTS, strict=True):
+            assert card.find_element(By.CSS_SELECTOR, ".text").text.startswith(text[:20])
+        assert browser.find_element(By.ID, "batch").text == batch
+        # The next accepted batch replaces the queue and the error with it.
+        box.clear()
+        box.send_keys("refund please")
+        browser.find_element(By.ID, "go").click()
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 1)
+        assert browser.find_elements(By.CSS_SELECTOR, "article.error") == []
