@@ -245,3 +245,27 @@ def test_a_refused_batch_leaves_the_queue_under_review(browser, registry_dir: Pa
         browser.find_element(By.ID, "go").click()
         wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 1)
         assert browser.find_elements(By.CSS_SELECTOR, "article.error") == []
+
+
+def test_ctrl_enter_while_a_batch_is_scoring_sends_it_once(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """The shortcut obeys the Queue button: while a batch is on its way (a slow network, made
+    here by delaying the page's fetch), pressing Ctrl+Enter again sends nothing more."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        browser.get(server.url + "/")
+        browser.execute_script(
+            "window.predictCalls = 0; const plain = window.fetch;"
+            "window.fetch = (url, init) => {"
+            "  if (String(url).includes('/v1/predict')) window.predictCalls += 1;"
+            "  return new Promise((ok) => setTimeout(ok, 500)).then(() => plain(url, init)); };"
+        )
+        browser.find_element(By.ID, "texts").send_keys("\n".join(TEXTS))
+        ActionChains(browser).key_down(Keys.CONTROL).send_keys(Keys.ENTER).send_keys(Keys.ENTER).send_keys(
+            Keys.ENTER
+        ).key_up(Keys.CONTROL).perform()
+        WebDriverWait(browser, 30).until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        assert browser.execute_script("return window.predictCalls") == 1
