@@ -269,3 +269,20 @@ def test_ctrl_enter_while_a_batch_is_scoring_sends_it_once(browser, registry_dir
         ).key_up(Keys.CONTROL).perform()
         WebDriverWait(browser, 30).until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
         assert browser.execute_script("return window.predictCalls") == 1
+
+
+def test_a_text_over_the_length_limit_is_named_by_its_line_in_the_box(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """The service names the text by its place in the request (texts[1], blank lines already
+    dropped, counted from 0); the page adds the line of the box the reviewer pasted it on."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), max_chars=60)) as server:
+        browser.get(server.url + "/")
+        box = browser.find_element(By.ID, "texts")
+        browser.execute_script("arguments[0].value = arguments[1]", box, "refund me\n\n\n" + "charged twice " * 5)
+        browser.find_element(By.ID, "go").click()
+        WebDriverWait(browser, 30).until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.error"))
+        error = browser.find_element(By.CSS_SELECTOR, "article.error").text
+        assert "texts[1] has 69 characters; the limit is 60 per text (TEXTSIEVE_MAX_CHARS)" in error
+        assert "line 4" in error
