@@ -286,3 +286,24 @@ def test_a_text_over_the_length_limit_is_named_by_its_line_in_the_box(browser, r
         error = browser.find_element(By.CSS_SELECTOR, "article.error").text
         assert "texts[1] has 69 characters; the limit is 60 per text (TEXTSIEVE_MAX_CHARS)" in error
         assert "line 4" in error
+
+
+def test_the_page_shows_either_the_sign_in_form_or_who_is_signed_in(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """Before signing in there is no 'Reviewing as' line nor a Sign out button; after it, the
+    form is gone; signing out brings it back."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        form, signed = browser.find_element(By.ID, "sign-in"), browser.find_element(By.ID, "signed")
+        assert form.is_displayed() and not signed.is_displayed()
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN)
+        browser.find_element(By.ID, "start").click()
+        wait.until(lambda d: signed.is_displayed())
+        assert not form.is_displayed() and "Reviewing as Kwame" in signed.text
+        browser.find_element(By.ID, "sign-out").click()
+        wait.until(lambda d: form.is_displayed())
+        assert not signed.is_displayed()
