@@ -307,3 +307,26 @@ def test_the_page_shows_either_the_sign_in_form_or_who_is_signed_in(browser, reg
         browser.find_element(By.ID, "sign-out").click()
         wait.until(lambda d: form.is_displayed())
         assert not signed.is_displayed()
+
+
+def test_a_token_no_service_could_hold_is_refused_at_sign_in(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """A reviewer token is written as a Bearer token (RFC 6750 §2.1), as the service's own
+    must be; one with other characters is refused by the sign-in form, not later by fetch."""
+    from selenium.webdriver.common.by import By
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
+        browser.get(server.url + "/")
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        token = browser.find_element(By.ID, "token")
+        token.send_keys("tok€n with spaces " * 2)
+        browser.find_element(By.ID, "start").click()
+        assert browser.find_element(By.ID, "sign-in").is_displayed()
+        assert browser.execute_script("return sessionStorage.getItem('textsieve.reviewToken')") is None
+        assert browser.execute_script("return arguments[0].validity.patternMismatch", token)
+        assert "letters, digits" in (token.get_attribute("title") or "")  # what the browser's bubble adds
+        # A token as the service's are written still signs in, spaces pasted around it too.
+        token.clear()
+        token.send_keys(f" {REVIEW_TOKEN} ")
+        browser.find_element(By.ID, "start").click()
+        assert browser.find_element(By.ID, "signed").is_displayed()
+        assert browser.execute_script("return sessionStorage.getItem('textsieve.reviewToken')") == REVIEW_TOKEN
