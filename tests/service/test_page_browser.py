@@ -104,3 +104,229 @@ def test_a_reviewer_corrects_and_confirms_with_the_keyboard_and_the_cli_sees_it(
     out = capsys.readouterr().out
     assert f"→ {target}" in out and "confirmed" in out and "Kwame" in out
     assert any(line.split()[:4] == ["1", "2", "1", "50.0%"] for line in out.splitlines())
+
+
+def test_a_shortcut_judges_the_card_that_holds_the_keyboard_focus(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """Tabbing into the second card's buttons makes it the card the shortcuts act on: Y there
+    confirms the second text, not the first one the queue had selected."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    settings = settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)
+    with uvicorn_server(settings) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN)
+        browser.find_element(By.ID, "start").click()
+        browser.find_element(By.ID, "texts").send_keys("\n".join(TEXTS))
+        browser.find_element(By.ID, "go").click()
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == len(TEXTS))
+        cards = browser.find_elements(By.CSS_SELECTOR, "article.result")
+        in_second = "return document.querySelectorAll('article.result')[1].contains(document.activeElement)"
+        for _ in range(20):
+            if browser.execute_script(in_second):
+                break
+            ActionChains(browser).send_keys(Keys.TAB).perform()
+        assert browser.execute_script(in_second)
+        assert "current" in (cards[1].get_attribute("class") or "")
+        ActionChains(browser).send_keys("y").perform()
+        wait.until(lambda d: cards[1].get_attribute("data-state") == "confirmed")
+        assert cards[0].get_attribute("data-state") == "pending"
+    with open_registry(registry_dir) as reg:
+        assert [v.text for v in reg.verdicts.of(MODEL)] == [TEXTS[1]]
+
+
+def test_a_service_with_recording_off_is_not_blamed_on_the_reviewer_token(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """With no reviewer token configured the page shows the service's reason (403
+    review-disabled) and does not send the reviewer to sign in again, which cannot help."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN)
+        browser.find_element(By.ID, "start").click()
+        browser.find_element(By.ID, "texts").send_keys(TEXTS[0])
+        browser.find_element(By.ID, "go").click()
+        wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.result"))
+        card = browser.find_element(By.CSS_SELECTOR, "article.result")
+        card.find_element(By.CSS_SELECTOR, "button.confirm").click()
+        note = card.find_element(By.CSS_SELECTOR, ".note")
+        wait.until(lambda d: note.text)
+        assert "recording verdicts is disabled" in note.text and "TEXTSIEVE_REVIEW_TOKEN" in note.text
+        assert "sign in" not in note.text.lower()
+        assert card.get_attribute("data-state") == "pending"
+
+
+def test_a_long_unbroken_span_stays_inside_its_card(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """A span holding a long token (a pasted link, a hash) wraps in the span table instead of
+    widening the whole page."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    text = "refund " + "0123456789abcdef" * 40 + " charged twice"
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        api = httpx.post(f"{server.url}/v1/predict", json={"texts": [text], "spans": 3}, timeout=30).json()
+        assert max(len(s["text"]) for s in api["results"][0]["spans"]) > 600
+        browser.get(server.url + "/")
+        browser.find_element(By.ID, "texts").send_keys(text)
+        browser.find_element(By.ID, "go").click()
+        WebDriverWait(browser, 30).until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.result"))
+        browser.find_element(By.CSS_SELECTOR, "article.result summary").click()
+        widths = browser.execute_script(
+            "const c = document.querySelector('article.result'); const e = document.documentElement;"
+            "return [c.scrollWidth, c.clientWidth, e.scrollWidth, e.clientWidth]"
+        )
+        assert widths[0] <= widths[1] and widths[2] <= widths[3], widths
+
+
+def test_a_right_to_left_text_is_shown_right_to_left(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """Each text takes its direction from its own first strong character (dir=auto): an Arabic
+    sentence's closing '!' sits at its left end, where it ends, not at its right end."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    texts = ["شكرا على إصلاح الفرامل بسرعة!", TEXTS[0]]
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        browser.get(server.url + "/")
+        browser.find_element(By.ID, "texts").send_keys("\n".join(texts))
+        browser.find_element(By.ID, "go").click()
+        WebDriverWait(browser, 30).until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        directions = browser.execute_script(
+            "return Array.from(document.querySelectorAll('article.result .text'), (b) => getComputedStyle(b).direction)"
+        )
+        assert directions == ["rtl", "ltr"]
+        # Where the first and the last character are drawn, in the box as it is shown.
+        first, last = browser.execute_script(
+            "const box = document.querySelector('article.result .text');"
+            "const walk = document.createTreeWalker(box, NodeFilter.SHOW_TEXT); const nodes = [];"
+            "while (walk.nextNode()) if (walk.currentNode.parentNode.tagName !== 'SUP') nodes.push(walk.currentNode);"
+            "const x = (n, i) => { const r = document.createRange(); r.setStart(n, i); r.setEnd(n, i + 1);"
+            "  return r.getBoundingClientRect().left; };"
+            "const end = nodes[nodes.length - 1];"
+            "return [x(nodes[0], 0), x(end, end.length - 1)]"
+        )
+        assert last < first
+
+
+def test_a_refused_batch_leaves_the_queue_under_review(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """Queueing too many texts shows the service's problem detail, naming the limit, above the
+    queue; the cards still awaiting verdicts and the line saying what scored them stay."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), max_texts=3)) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        box = browser.find_element(By.ID, "texts")
+        box.send_keys("\n".join(TEXTS))
+        browser.find_element(By.ID, "go").click()
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        batch = browser.find_element(By.ID, "batch").text
+        box.clear()
+        box.send_keys("\n".join(["refund please"] * 4))
+        browser.find_element(By.ID, "go").click()
+        wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.error"))
+        error = browser.find_element(By.CSS_SELECTOR, "article.error").text
+        assert "4 texts in one request; the limit is 3 (TEXTSIEVE_MAX_TEXTS)" in error
+        cards = browser.find_elements(By.CSS_SELECTOR, "article.result:not(.error)")
+        assert len(cards) == len(TEXTS)
+        for card, text in zip(cards, TEXTS, strict=True):
+            assert card.find_element(By.CSS_SELECTOR, ".text").text.startswith(text[:20])
+        assert browser.find_element(By.ID, "batch").text == batch
+        # The next accepted batch replaces the queue and the error with it.
+        box.clear()
+        box.send_keys("refund please")
+        browser.find_element(By.ID, "go").click()
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 1)
+        assert browser.find_elements(By.CSS_SELECTOR, "article.error") == []
+
+
+def test_ctrl_enter_while_a_batch_is_scoring_sends_it_once(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """The shortcut obeys the Queue button: while a batch is on its way (a slow network, made
+    here by delaying the page's fetch), pressing Ctrl+Enter again sends nothing more."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        browser.get(server.url + "/")
+        browser.execute_script(
+            "window.predictCalls = 0; const plain = window.fetch;"
+            "window.fetch = (url, init) => {"
+            "  if (String(url).includes('/v1/predict')) window.predictCalls += 1;"
+            "  return new Promise((ok) => setTimeout(ok, 500)).then(() => plain(url, init)); };"
+        )
+        browser.find_element(By.ID, "texts").send_keys("\n".join(TEXTS))
+        ActionChains(browser).key_down(Keys.CONTROL).send_keys(Keys.ENTER).send_keys(Keys.ENTER).send_keys(
+            Keys.ENTER
+        ).key_up(Keys.CONTROL).perform()
+        WebDriverWait(browser, 30).until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        assert browser.execute_script("return window.predictCalls") == 1
+
+
+def test_a_text_over_the_length_limit_is_named_by_its_line_in_the_box(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """The service names the text by its place in the request (texts[1], blank lines already
+    dropped, counted from 0); the page adds the line of the box the reviewer pasted it on."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), max_chars=60)) as server:
+        browser.get(server.url + "/")
+        box = browser.find_element(By.ID, "texts")
+        browser.execute_script("arguments[0].value = arguments[1]", box, "refund me\n\n\n" + "charged twice " * 5)
+        browser.find_element(By.ID, "go").click()
+        WebDriverWait(browser, 30).until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.error"))
+        error = browser.find_element(By.CSS_SELECTOR, "article.error").text
+        assert "texts[1] has 69 characters; the limit is 60 per text (TEXTSIEVE_MAX_CHARS)" in error
+        assert "line 4" in error
+
+
+def test_the_page_shows_either_the_sign_in_form_or_who_is_signed_in(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """Before signing in there is no 'Reviewing as' line nor a Sign out button; after it, the
+    form is gone; signing out brings it back."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        form, signed = browser.find_element(By.ID, "sign-in"), browser.find_element(By.ID, "signed")
+        assert form.is_displayed() and not signed.is_displayed()
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN)
+        browser.find_element(By.ID, "start").click()
+        wait.until(lambda d: signed.is_displayed())
+        assert not form.is_displayed() and "Reviewing as Kwame" in signed.text
+        browser.find_element(By.ID, "sign-out").click()
+        wait.until(lambda d: form.is_displayed())
+        assert not signed.is_displayed()
+
+
+def test_a_token_no_service_could_hold_is_refused_at_sign_in(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """A reviewer token is written as a Bearer token (RFC 6750 §2.1), as the service's own
+    must be; one with other characters is refused by the sign-in form, not later by fetch."""
+    from selenium.webdriver.common.by import By
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
+        browser.get(server.url + "/")
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        token = browser.find_element(By.ID, "token")
+        token.send_keys("tok€n with spaces " * 2)
+        browser.find_element(By.ID, "start").click()
+        assert browser.find_element(By.ID, "sign-in").is_displayed()
+        assert browser.execute_script("return sessionStorage.getItem('textsieve.reviewToken')") is None
+        assert browser.execute_script("return arguments[0].validity.patternMismatch", token)
+        assert "letters, digits" in (token.get_attribute("title") or "")  # what the browser's bubble adds
+        # A token as the service's are written still signs in, spaces pasted around it too.
+        token.clear()
+        token.send_keys(f" {REVIEW_TOKEN} ")
+        browser.find_element(By.ID, "start").click()
+        assert browser.find_element(By.ID, "signed").is_displayed()
+        assert browser.execute_script("return sessionStorage.getItem('textsieve.reviewToken')") == REVIEW_TOKEN
