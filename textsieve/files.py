@@ -102,9 +102,14 @@ def check_out_folder(out: Path, *, kind: str, previous: str) -> None:
         )
     # The folder is written as a sibling and renamed (atomic_directory): where the first new folder
     # goes must take one.
-    where = next((p for p in Path(out).absolute().parents if p.is_dir()), None)
+    where = nearest_folder(Path(out).parent)
     if where is not None:
         check_writable(where, out)
+
+
+def nearest_folder(path: Path) -> Path | None:
+    """``path`` when it is a folder, else its nearest ancestor that is; None when none is."""
+    return next((p for p in (Path(path).absolute(), *Path(path).absolute().parents) if p.is_dir()), None)
 
 
 def check_writable(folder: Path, out: Path) -> None:
@@ -163,7 +168,9 @@ __all__ = [
     "atomic_write_bytes",
     "atomic_write_text",
     "check_out_folder",
+    "check_writable",
     "file_in_the_way",
     "fsync_dir",
+    "nearest_folder",
     "sha256_file",
 ]

@@ -69,7 +69,7 @@ def _against(reg: Registry, model: str, version: int, text: str | None) -> int |
 
 
 def cli_evaluate(args: argparse.Namespace) -> int:
-    from textsieve.files import atomic_write_bytes, check_writable
+    from textsieve.files import atomic_write_bytes, check_writable, nearest_folder
     from textsieve.registry.cli import _open
     from textsieve.registry.evalsets import load_evalset
     from textsieve.registry.names import validate_version
@@ -81,7 +81,7 @@ def cli_evaluate(args: argparse.Namespace) -> int:
         examples = load_evalset(args.evalset, text_field=args.text_field, label_field=args.label_field).examples
     out = args.out if args.out is not None else Path(f"report-{args.model}-{version}")
     # A place the report cannot be written to is said before the scoring, not after it.
-    writes_in = out if out.is_dir() else next((p for p in out.absolute().parents if p.is_dir()), None)
+    writes_in = nearest_folder(out)
     if writes_in is not None:
         check_writable(writes_in, out)
     with _open(args) as reg:
