@@ -6,6 +6,7 @@ httpx is imported inside the handlers: this module is imported whenever the comm
 from __future__ import annotations
 
 import argparse
+import math
 import os
 import sys
 from typing import TYPE_CHECKING, Any, TextIO
@@ -15,9 +16,22 @@ from textsieve.errors import InputError, UnavailableError
 
 if TYPE_CHECKING:
     import httpx
+    from pydantic import BaseModel
 
 BOLD, RESET = "\x1b[1m", "\x1b[0m"
 URL_HELP = f"address of the running service (default: $TEXTSIEVE_URL, else {DEFAULT_URL})"
+
+
+def _timeout(text: str) -> float:
+    """A ``--timeout``: seconds, more than 0 (httpx would wait for ever on none, and a NaN or a
+    negative value reached the socket as a ValueError traceback)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number of seconds: {text!r}") from None
+    if not math.isfinite(value) or value <= 0:
+        raise argparse.ArgumentTypeError(f"must be a number of seconds more than 0, not {text}")
+    return value
 
 
 def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -29,17 +43,19 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p.add_argument("--version", type=int, help="pin a version of the model (default: its live version)")
     p.add_argument("--spans", type=int, default=3, help="most n-gram spans to show per text")
     p.add_argument("--json", action="store_true", help="print the raw JSON reply")
+    p.add_argument("--timeout", type=_timeout, default=60.0, help="seconds to wait for the reply")
     p.set_defaults(func=cli_predict)
 
     p = sub.add_parser("drift", help="drift signals of a model's live texts on a running service, with PSI bands")
     p.add_argument("model", help="model name")
     p.add_argument("--url", help=URL_HELP)
     p.add_argument("--json", action="store_true", help="print the raw JSON reply")
+    p.add_argument("--timeout", type=_timeout, default=30.0, help="seconds to wait for the reply")
     p.set_defaults(func=cli_drift)
 
     p = sub.add_parser("health", help="exit 0 when the service is ready, 1 otherwise, with one line of why")
     p.add_argument("--url", help=URL_HELP)
-    p.add_argument("--timeout", type=float, default=5.0, help="seconds to wait for the reply")
+    p.add_argument("--timeout", type=_timeout, default=5.0, help="seconds to wait for the reply")
     p.set_defaults(func=cli_health)
 
 
@@ -75,22 +91,62 @@ def _ok(base: str, method: str, path: str, timeout: float, **kwargs: Any) -> Any
     return r
 
 
-def _reply(r: httpx.Response, *keys: str) -> dict[str, Any]:
-    """A 200 reply's JSON object, holding ``keys``; another server's reply (HTML, other JSON) is
-    one line saying so, not a JSONDecodeError or a KeyError."""
+def _reply(r: httpx.Response, shape: type[BaseModel]) -> dict[str, Any]:
+    """A 200 reply's JSON object, checked against the service's own response model (``shape``,
+    from ``service/web/schemas.py``): another server's reply (HTML, other JSON, a field of another
+    type) is one line saying so, not a JSONDecodeError, KeyError or TypeError from printing it."""
+    from pydantic import ValidationError
+
     try:
         body = r.json()
     except ValueError:
         body = None
-    if not isinstance(body, dict) or any(k not in body for k in keys):
+    if not isinstance(body, dict):
         raise UnavailableError(
             f"{r.request.url} answered HTTP {r.status_code} but not as textsieve does "
             f"({r.headers.get('content-type', 'no content type')}); is --url the textsieve service?"
         )
+    try:
+        shape.model_validate(body)
+    except ValidationError as exc:
+        first = exc.errors()[0]
+        where = ".".join(str(part) for part in first["loc"]) or "the reply"
+        raise UnavailableError(
+            f"{r.request.url} answered HTTP {r.status_code} but not as textsieve does "
+            f"({where}: {first['msg']}); is --url the textsieve service, of this version?"
+        ) from None
     return body
 
 
+def _predictions(r: httpx.Response, texts: list[str]) -> dict[str, Any]:
+    """A predict reply with one result for each text sent, each naming a label it gives a probability."""
+    from textsieve.service.web.schemas import PredictResponse
+
+    reply = _reply(r, PredictResponse)
+    results = reply["results"]
+    bad = (
+        f"{len(results)} results for {len(texts)} texts"
+        if len(results) != len(texts)
+        else next(
+            (
+                f"result {i}'s label is not among its probabilities"
+                for i, res in enumerate(results, 1)
+                if res["label"] not in res["probabilities"]
+            ),
+            None,
+        )
+    )
+    if bad:
+        raise UnavailableError(f"{r.request.url} answered HTTP 200 but not as textsieve does ({bad})")
+    return reply
+
+
 def _problem_detail(r: httpx.Response) -> str:
+    if r.is_redirect:
+        return (
+            f"HTTP {r.status_code} {r.reason_phrase}: {r.request.url} sends callers to "
+            f"{r.headers.get('location', 'no address')}; give --url the service's own address"
+        )
     try:
         body = r.json()
     except ValueError:
@@ -167,8 +223,8 @@ def cli_predict(args: argparse.Namespace) -> int:
         payload["model"] = args.model
     if args.version is not None:
         payload["version"] = args.version
-    r = _ok(base, "POST", "/v1/predict", 60.0, json=payload)
-    reply = _reply(r, "results")
+    r = _ok(base, "POST", "/v1/predict", args.timeout, json=payload)
+    reply = _predictions(r, list(args.texts))
     if args.json:
         print(r.text)
     else:
@@ -228,8 +284,10 @@ def cli_drift(args: argparse.Namespace) -> int:
     import urllib.parse
 
     base = _base(service_url(args.url))
-    r = _ok(base, "GET", f"/v1/models/{urllib.parse.quote(args.model, safe='')}/drift", 30.0)
-    reply = _reply(r, "model", "versions")
+    from textsieve.service.web.schemas import DriftView
+
+    r = _ok(base, "GET", f"/v1/models/{urllib.parse.quote(args.model, safe='')}/drift", args.timeout)
+    reply = _reply(r, DriftView)
     print(r.text if args.json else render_drift(reply))
     return 0
 
@@ -266,7 +324,9 @@ def cli_health(args: argparse.Namespace) -> int:
             return 0
         # Another server answered 200 (a page, other JSON): not a ready textsieve.
         reason = f"HTTP 200 from {base}/readyz is not a textsieve readiness reply; is --url the service?"
-    if not reason and r.status_code == 404:
+    if r.is_redirect:
+        reason = _problem_detail(r)
+    elif not reason and r.status_code == 404:
         reason = f"HTTP 404 from {base}/readyz: --url is the service's address, e.g. http://127.0.0.1:8000"
     print(f"not ready: {reason or f'HTTP {r.status_code}'}")
     return 1

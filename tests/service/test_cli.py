@@ -259,3 +259,117 @@ def test_clients_pointed_at_another_server_say_so_in_one_line(tmp_path: Path) ->
     finally:
         other.shutdown()
         other.server_close()
+
+
+def _mutations(node: object, path: tuple[object, ...] = ()) -> list[tuple[tuple[object, ...], object]]:
+    """Every (path, replacement) that deletes a member or gives a value another JSON type; a
+    replacement of ``KeyError`` stands for deletion."""
+    out: list[tuple[tuple[object, ...], object]] = []
+    children: list[tuple[object, object]] = []
+    if isinstance(node, dict):
+        children = list(node.items())
+    elif isinstance(node, list):
+        children = list(enumerate(node))
+    for key, child in children:
+        here = (*path, key)
+        out += [(here, KeyError), *((here, other) for other in (None, "x", -7, 2.5, True, [], {}) if other != child)]
+        out += _mutations(child, here)
+    return out
+
+
+def _apply(reply: object, path: tuple[object, ...], value: object) -> object:
+    import copy
+
+    changed = copy.deepcopy(reply)
+    node: object = changed
+    for key in path[:-1]:
+        node = node[key]  # type: ignore[index]
+    if value is KeyError:
+        del node[path[-1]]  # type: ignore[union-attr,attr-defined]
+    else:
+        node[path[-1]] = value  # type: ignore[index]
+    return changed
+
+
+def test_predict_and_drift_replies_of_another_shape_are_one_line_never_a_traceback(live_url: str) -> None:
+    """A server that answers 200 with JSON of another shape (another product, an older or newer
+    service) made `textsieve predict` print a KeyError or TypeError traceback while rendering it
+    (e.g. {"results": [{"label": 5}]}). Each member of a real reply is deleted or given another
+    JSON type in turn: the reply is either refused in one line or printed (common practice:
+    validate what crosses a process boundary)."""
+    from textsieve.errors import UnavailableError
+    from textsieve.service.client import _predictions, _reply, render_drift
+    from textsieve.service.web.schemas import DriftView
+
+    texts = ["I was charged twice for one ride", "the gears slip on every hill"]
+    real = httpx.post(f"{live_url}/v1/predict", json={"texts": texts, "spans": 2})
+    drift = httpx.get(f"{live_url}/v1/models/{MODEL}/drift")
+    assert real.status_code == 200 and drift.status_code == 200
+    cases = [
+        ("predict", real, _mutations(real.json())),
+        ("drift", drift, _mutations(drift.json())),
+    ]
+    refused = printed = 0
+    for kind, original, mutations in cases:
+        assert len(mutations) > 50
+        for path, value in mutations:
+            body = _apply(original.json(), path, value)
+            r = httpx.Response(200, json=body, request=original.request)
+            try:
+                if kind == "predict":
+                    reply = _predictions(r, texts)
+                    rendered = render(texts, reply, ansi=False)
+                else:
+                    rendered = render_drift(_reply(r, DriftView))
+            except UnavailableError as exc:
+                assert "answered HTTP 200 but not as textsieve does (" in exc.message and "\n" not in exc.message
+                refused += 1
+            else:
+                assert isinstance(rendered, str)
+                printed += 1
+    assert refused > 0 and printed > 0
+
+
+def test_client_verbs_against_odd_servers_and_timeouts(tmp_path: Path) -> None:
+    """A redirect names where it sends callers; a server that never answers ends after --timeout;
+    a --timeout that is not a positive number is exit 2 (NaN and -1 were ValueError tracebacks from
+    the socket)."""
+    import http.server
+    import threading
+    import time
+
+    class Odd(http.server.BaseHTTPRequestHandler):
+        def _answer(self) -> None:
+            if self.path.startswith("/slow"):
+                time.sleep(5)
+            self.send_response(302)
+            self.send_header("Location", "http://elsewhere.invalid/")
+            self.send_header("Content-Length", "0")
+            self.end_headers()
+
+        do_GET = do_POST = _answer
+
+        def log_message(self, *args: object) -> None:
+            pass
+
+    other = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Odd)
+    threading.Thread(target=other.serve_forever, daemon=True).start()
+    url = f"http://127.0.0.1:{other.server_address[1]}"
+    try:
+        health = run("health", "--url", url)
+        assert health.returncode == 1 and health.stdout.count("\n") == 1
+        assert "sends callers to http://elsewhere.invalid/" in health.stdout, health.stdout
+        predict = run("predict", "--url", url, "hello")
+        assert predict.returncode == 2 and predict.stderr.count("\n") == 1
+        assert "sends callers to http://elsewhere.invalid/; give --url the service's own address" in predict.stderr
+        started = time.monotonic()
+        slow = run("predict", "--url", url + "/slow", "--timeout", "0.5", "hello")
+        assert slow.returncode == 1 and "ReadTimeout" in slow.stderr and time.monotonic() - started < 4.5
+        for verb in (["health"], ["predict", "hello"], ["drift", MODEL]):
+            for bad in ("nan", "-1", "0", "inf", "soon"):
+                out = run(*verb, "--url", url, "--timeout", bad)
+                assert out.returncode == 2 and out.stderr.count("\n") == 1, out.stderr
+                assert "argument --timeout: " in out.stderr
+    finally:
+        other.shutdown()
+        other.server_close()
