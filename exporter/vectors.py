@@ -1,6 +1,8 @@
 """Pretrained word vectors in the GloVe / word2vec text format, read for one vocabulary only.
 
-Format: an optional word2vec header line ``count dim``, then one ``word v1 ... vD`` per line.
+Format: an optional word2vec header line ``count dim``, then one ``word v1 ... vD`` per line. A row
+whose word holds spaces (more than D fields, the extra ones not numbers) is skipped: no token holds
+a space.
 The file is streamed line by line and only rows whose word is in the vocabulary are parsed,
 so a multi-gigabyte file costs memory only for the vectors actually used. Kept free of torch.
 """
@@ -63,6 +65,10 @@ def load_vectors(path: Path, vocabulary: Vocabulary, *, tokenizer: Tokenizer | N
             if values < 1:
                 raise InputError(f"{path}: line {number}: has a word but no values; {_FORMAT}")
             dim = values
+        elif values > dim and not any(map(_is_float, parts[1 : values - dim + 1])):
+            # A "word" holding spaces (". . .", "at name@domain.com": a few rows of the large Common
+            # Crawl GloVe files, from memory): never one token, as the tokenizer splits at spaces.
+            continue
         elif values != dim:
             raise InputError(
                 f"{path}: line {number}: has {values} values, expected {dim} (every row must have the same dimension)"

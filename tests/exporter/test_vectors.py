@@ -85,6 +85,21 @@ def test_words_are_normalised_like_the_tokenizer_and_first_spelling_wins(tmp_pat
     assert _row(vocab, vectors.ids, vectors.matrix, "don't").tolist() == [3.0, 3.0]
 
 
+def test_rows_whose_word_holds_spaces_are_skipped_not_refused(tmp_path: Path) -> None:
+    """The large Common Crawl GloVe files (Pennington et al., 2014) hold a few rows whose word has
+    spaces in it, such as ". . ." (from memory): those files were refused at that row ("has 302
+    values, expected 300"). No token holds a space, so such a row is skipped; an extra number is
+    still a ragged row."""
+    f = tmp_path / "v.txt"
+    f.write_text("alpha 1 2\n. . . 7 7\nat name@domain.com 8 8\nbeta 3 4\n", encoding="utf-8")
+    vocab = _vocab("alpha", "beta", ".", "at")
+    vectors = load_vectors(f, vocab)
+    assert sorted(vectors.ids.tolist()) == sorted([vocab.index["alpha"], vocab.index["beta"]])
+    assert _row(vocab, vectors.ids, vectors.matrix, "beta").tolist() == [3.0, 4.0]
+    f.write_text("alpha 1 2\nbeta 3 4 5\n", encoding="utf-8")
+    assert "line 2: has 3 values, expected 2" in _error(f)
+
+
 def test_gzip_files_are_read(tmp_path: Path) -> None:
     import gzip
 
