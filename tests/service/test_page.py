@@ -64,6 +64,31 @@ async def test_openapi_documents_the_contract_without_cdn_docs(shared_registry: 
     assert docs.status_code == 404
 
 
+def _run_helpers(tmp_path: Path, name: str, call: str, cases: object) -> object:
+    """Run the page's pure helpers (its first script) in Node on ``cases`` (JSON on stdin)."""
+    import json
+    import shutil
+    import subprocess
+
+    from textsieve.service.web.page import page
+
+    node = shutil.which("node")
+    if node is None:
+        skip_or_fail("node is needed to run the page's script (apt-get install nodejs)")
+    html, _ = page()
+    helpers = re.findall(r"<script>(.*?)</script>", html, flags=re.S)[0]
+    script = tmp_path / f"{name}.js"
+    script.write_text(
+        helpers + "\nconst cases = JSON.parse(require('fs').readFileSync(0, 'utf8'));\n"
+        f"process.stdout.write(JSON.stringify({call}));\n",
+        encoding="utf-8",
+    )
+    out = subprocess.run(
+        [node, str(script)], input=json.dumps(cases), capture_output=True, text=True, timeout=60, check=True
+    )
+    return json.loads(out.stdout)
+
+
 def test_page_highlighting_slices_code_points_like_python(tmp_path: Path) -> None:
     """Run the page's own ``segments`` helper in Node and compare with Python's str slicing."""
     import json
@@ -105,6 +130,36 @@ def test_page_highlighting_slices_code_points_like_python(tmp_path: Path) -> Non
             (text[spans[0]["start"] : spans[0]["end"]], 1),
             (text[spans[1]["start"] : spans[1]["end"]], 2),
         ]
+
+
+def test_page_reads_retry_after_as_rfc_9110_defines_it(tmp_path: Path) -> None:
+    """RFC 9110 §10.2.3: Retry-After is delay-seconds or an HTTP-date, and a recipient takes all
+    three forms of HTTP-date (§5.6.7, whose example instant the three dates below are)."""
+    now = 784111777000 - 90_000  # 90 s before Sun, 06 Nov 1994 08:49:37 GMT, in ms since 1970
+    values = [
+        "120",
+        "0",
+        "Sun, 06 Nov 1994 08:49:37 GMT",  # IMF-fixdate
+        "Sunday, 06-Nov-94 08:49:37 GMT",  # obsolete RFC 850 format
+        "Sun Nov  6 08:49:37 1994",  # ANSI C's asctime() format
+        "Sat, 05 Nov 1994 08:49:37 GMT",  # a day past: try now
+        "soon",
+        "1.5",
+        "",
+    ]
+    call = f"cases.map(v => retryAfterSeconds(v, {now})).map(s => [s, s === null ? null : tryAgainIn(s)])"
+    out = _run_helpers(tmp_path, "retry", call, values)
+    assert out == [
+        [120, "try again in 2 min"],
+        [0, "try again now"],
+        [90, "try again in 90 s"],
+        [90, "try again in 90 s"],
+        [90, "try again in 90 s"],
+        [0, "try again now"],
+        [None, None],
+        [None, None],
+        [None, None],
+    ]
 
 
 def test_page_keys_map_to_verdict_actions(tmp_path: Path) -> None:

@@ -7,11 +7,13 @@ it records with what the registry and ``textsieve verdicts`` read back.
 
 from __future__ import annotations
 
+import time
 from pathlib import Path
 
 import httpx
 import pytest
 
+from tests.helpers.gateway import Reply, gateway_in_front_of
 from tests.helpers.net import free_port
 from tests.helpers.service import MODEL, REVIEW_TOKEN, settings_for, uvicorn_server
 from textsieve.cli import main
@@ -330,3 +332,135 @@ def test_a_token_no_service_could_hold_is_refused_at_sign_in(browser, registry_d
         browser.find_element(By.ID, "start").click()
         assert browser.find_element(By.ID, "signed").is_displayed()
         assert browser.execute_script("return sessionStorage.getItem('textsieve.reviewToken')") == REVIEW_TOKEN
+
+
+# What a gateway in front of the service answers while the service is down, slow or shedding
+# load; tests/helpers/gateway.py answers it instead of forwarding.
+PROXY_PAGE_502 = b"<html><head><title>502 Bad Gateway</title></head><body><h1>502 Bad Gateway</h1></body></html>"
+HTML = (("Content-Type", "text/html"),)
+
+
+def _queue(browser, texts: list[str]) -> None:  # type: ignore[no-untyped-def]
+    from selenium.webdriver.common.by import By
+
+    box = browser.find_element(By.ID, "texts")
+    box.clear()
+    box.send_keys("\n".join(texts))
+    browser.find_element(By.ID, "go").click()
+
+
+def test_a_gateway_reply_that_is_not_the_services_is_named_by_its_status(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """A batch answered by a gateway (an HTML 502, an empty 503 or 504, a 429) is shown with its
+    status and reason phrase and, for 503 and 429, the wait its Retry-After asks (RFC 9110
+    §10.2.3, seconds or an HTTP-date); before, the page showed 'request failed: SyntaxError'.
+    The queue under review stays as it was."""
+    from email.utils import formatdate
+
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with (
+        uvicorn_server(settings_for(registry_dir, port=free_port())) as server,
+        gateway_in_front_of(server.url) as gateway,
+    ):
+        browser.get(gateway.url + "/")
+        wait = WebDriverWait(browser, 30)
+        _queue(browser, TEXTS)
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == len(TEXTS))
+        batch = browser.find_element(By.ID, "batch").text
+        # The service's own refusal when overloaded (service/web/problems.py's detail), as a
+        # gateway might replay it: its detail stays first, the wait is added.
+        overloaded = (
+            b'{"type":"/problems/overloaded","title":"This replica is at capacity","status":503,'
+            b'"detail":"this replica is at capacity: retry after the Retry-After seconds, or on another replica"}'
+        )
+        cases = [
+            (
+                Reply(502, "Bad Gateway", PROXY_PAGE_502, HTML),
+                "the server answered 502 Bad Gateway, not a problem+json reply",
+            ),
+            (Reply(502, "Bad Gateway", PROXY_PAGE_502, HTML), "Try again in a moment"),
+            # No reason phrase (RFC 9112 §4 allows it): RFC 9110 §15.6.5's is shown.
+            (Reply(504, "", b""), "the server answered 504 Gateway Timeout, not a problem+json reply"),
+            (Reply(503, "Service Unavailable", b"", (("Retry-After", "2"),)), "503 Service Unavailable"),
+            (Reply(503, "Service Unavailable", b"", (("Retry-After", "2"),)), "Try again in 2 s"),
+            # An IMF-fixdate five minutes ahead (RFC 9110 §5.6.7, written by Python's email.utils).
+            (Reply(429, "Too Many Requests", b"", (("Retry-After", "{in 5 min}"),)), "Try again in 5 min"),
+            (
+                Reply(
+                    503,
+                    "Service Unavailable",
+                    overloaded,
+                    (("Content-Type", "application/problem+json"), ("Retry-After", "2")),
+                ),
+                "or on another replica (try again in 2 s)",
+            ),
+        ]
+        for reply, expected in cases:
+            headers = tuple(
+                (k, formatdate(time.time() + 300, usegmt=True) if v == "{in 5 min}" else v) for k, v in reply.headers
+            )
+            gateway.answer("POST", "/v1/predict", Reply(reply.status, reply.reason, reply.body, headers))
+            browser.execute_script("document.querySelector('#queue .error')?.remove()")
+            _queue(browser, ["refund please"])
+            wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.error"))
+            error = browser.find_element(By.CSS_SELECTOR, "article.error").text
+            assert expected in error and "SyntaxError" not in error, (reply.status, error)
+            assert "Nothing was scored" in error or reply.body == overloaded, error
+            cards = browser.find_elements(By.CSS_SELECTOR, "article.result:not(.error)")
+            assert len(cards) == len(TEXTS) and browser.find_element(By.ID, "batch").text == batch
+        assert len(gateway.answered) == len(cases)
+        # The service back, the next batch replaces the queue.
+        gateway.forward("POST", "/v1/predict")
+        _queue(browser, ["refund please"])
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 1)
+        assert browser.find_elements(By.CSS_SELECTOR, "article.error") == []
+
+
+def test_a_gateway_reply_on_verdicts_status_and_models_is_named_by_its_status(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """Every other call the page makes says what answered too: the readiness line (which said
+    'service unreachable'), the model list (which failed silently) and a verdict (which showed
+    'request failed: SyntaxError'); the card then still awaits its verdict, and records it once
+    the service is back."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    settings = settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)
+    with uvicorn_server(settings) as server, gateway_in_front_of(server.url) as gateway:
+        gateway.answer("GET", "/readyz", Reply(503, "Service Unavailable", b""))
+        gateway.answer("GET", "/v1/models", Reply(504, "", b""))
+        browser.get(gateway.url + "/")
+        wait = WebDriverWait(browser, 30)
+        status, models = browser.find_element(By.ID, "status"), browser.find_element(By.ID, "models-note")
+        wait.until(lambda d: status.text != "checking…" and models.text)
+        assert "503 Service Unavailable" in status.text
+        assert "504 Gateway Timeout, not a problem+json reply" in models.text
+        assert "default model still serves" in models.text
+        gateway.forward("GET", "/readyz")
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN)
+        browser.find_element(By.ID, "start").click()
+        _queue(browser, TEXTS[:1])
+        wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.result"))
+        wait.until(lambda d: "ready" in (status.get_attribute("class") or ""))
+        card = browser.find_element(By.CSS_SELECTOR, "article.result")
+        note = card.find_element(By.CSS_SELECTOR, ".note")
+        for reply, expected in [
+            (
+                Reply(502, "Bad Gateway", PROXY_PAGE_502, HTML),
+                "the server answered 502 Bad Gateway, not a problem+json reply",
+            ),
+            (Reply(503, "Service Unavailable", b"", (("Retry-After", "3"),)), "Try again in 3 s"),
+        ]:
+            gateway.answer("POST", "/v1/verdicts", reply)
+            browser.execute_script("arguments[0].textContent = ''", note)
+            card.find_element(By.CSS_SELECTOR, "button.confirm").click()
+            wait.until(lambda d: note.text)
+            assert expected in note.text and "SyntaxError" not in note.text, note.text
+            assert "not confirmed as recorded" in note.text and "sign in" not in note.text.lower()
+            assert card.get_attribute("data-state") == "pending"
+        gateway.forward("POST", "/v1/verdicts")
+        card.find_element(By.CSS_SELECTOR, "button.confirm").click()
+        wait.until(lambda d: card.get_attribute("data-state") == "confirmed")
+    with open_registry(registry_dir) as reg:
+        assert [v.text for v in reg.verdicts.of(MODEL)] == [TEXTS[0]]
