@@ -14,6 +14,7 @@ import httpx
 import pytest
 
 from tests.helpers.gateway import Reply, gateway_in_front_of
+from tests.helpers.graphemes import clustered, widened
 from tests.helpers.net import free_port
 from tests.helpers.service import MODEL, REVIEW_TOKEN, settings_for, uvicorn_server
 from textsieve.cli import main
@@ -464,3 +465,69 @@ def test_a_gateway_reply_on_verdicts_status_and_models_is_named_by_its_status(br
         wait.until(lambda d: card.get_attribute("data-state") == "confirmed")
     with open_registry(registry_dir) as reg:
         assert [v.text for v in reg.verdicts.of(MODEL)] == [TEXTS[0]]
+
+
+# Texts whose spans, from the tiny test model, start or end inside a grapheme cluster: the
+# tokenizer makes a skin tone and each regional indicator a token of its own and splits at a
+# zero-width joiner. Clusters are marked as tests/helpers/graphemes.py reads them.
+CLUSTERED = [
+    "my card |👩🏽\u200d💻| charged twice",
+    "thanks |👨\u200d👩\u200d👧\u200d👦| charged twice",
+    "the chain snapped |🇫🇷||👍🏿| brake fixed",
+    "refund |🇫🇷||🇫🇷| ok then",
+    "|e\u0301| refund |क्ष||मा| क|रें| |👍🏿| charged",
+    "|👩🏽\u200d💻| fixed it |👍🏿|",
+]
+
+
+def test_a_highlight_never_splits_a_character(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """Every highlight boundary in the page is a grapheme cluster boundary (UAX #29; the
+    clusters written down by hand in tests/helpers/graphemes.py), and each highlight holds its
+    span's whole text (the API's text[start:end]): emoji with skin tones and ZWJ sequences,
+    flags, a combining accent and a Devanagari conjunct."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    texts, bounds = zip(*(clustered(m) for m in CLUSTERED), strict=True)
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        api = httpx.post(f"{server.url}/v1/predict", json={"texts": list(texts), "spans": 20}, timeout=30).json()
+        inside = {"start": 0, "end": 0}
+        for text, bound, result in zip(texts, bounds, api["results"], strict=True):
+            for span in result["spans"]:
+                assert text[span["start"] : span["end"]] == span["text"]  # the API's promise
+                for side in ("start", "end"):
+                    inside[side] += span[side] not in bound
+        # What this test is about: the API's spans split clusters at both ends.
+        assert inside["start"] >= 1 and inside["end"] >= 1, inside
+        browser.get(server.url + "/")
+        browser.find_element(By.ID, "spans").clear()
+        browser.find_element(By.ID, "spans").send_keys("20")
+        browser.execute_script(
+            "arguments[0].value = arguments[1]", browser.find_element(By.ID, "texts"), "\n".join(texts)
+        )
+        browser.find_element(By.ID, "go").click()
+        WebDriverWait(browser, 30).until(
+            lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == len(texts)
+        )
+        # Each card's text as shown: [piece, highlighted?] in order, the ranks (sup) left out.
+        shown = browser.execute_script(
+            "return Array.from(document.querySelectorAll('article.result .text'), (box) =>"
+            "  Array.from(box.childNodes, (n) => n.nodeType === Node.TEXT_NODE ? [n.data, false]"
+            "    : [n.firstChild.data, true]))"
+        )
+    for text, bound, result, pieces in zip(texts, bounds, api["results"], shown, strict=True):
+        assert "".join(piece for piece, _ in pieces) == text
+        marks, at = [], 0
+        for piece, highlighted in pieces:
+            if highlighted:
+                marks.append((at, at + len(piece)))  # Python counts code points, as the API does
+            at += len(piece)
+        for start, end in marks:
+            assert start in bound and end in bound, (text, text[start:end])
+        for span in result["spans"]:
+            assert any(a <= span["start"] and span["end"] <= b for a, b in marks), (text, span["text"])
+        # Each highlight is the union of its spans widened to whole clusters, no wider; spans
+        # that met inside one cluster share one highlight.
+        for a, b in marks:
+            held = [widened(bound, s["start"], s["end"]) for s in result["spans"] if a <= s["start"] < b]
+            assert held and (min(w[0] for w in held), max(w[1] for w in held)) == (a, b), (text, text[a:b])
