@@ -531,3 +531,39 @@ def test_a_highlight_never_splits_a_character(browser, registry_dir: Path) -> No
         for a, b in marks:
             held = [widened(bound, s["start"], s["end"]) for s in result["spans"] if a <= s["start"] < b]
             assert held and (min(w[0] for w in held), max(w[1] for w in held)) == (a, b), (text, text[a:b])
+
+
+def test_the_queue_fits_a_320_px_wide_screen(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """On a 320 CSS px wide screen (WCAG 2.1 SC 1.4.10 Reflow's width) with the span tables
+    open, nothing is wider than the screen, and no word of a span is broken across lines; the
+    table scrolls inside its card instead, and the keyboard reaches that scroller (a named region)."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        browser.execute_cdp_cmd(
+            "Emulation.setDeviceMetricsOverride", {"width": 320, "height": 900, "deviceScaleFactor": 1, "mobile": True}
+        )
+        browser.get(server.url + "/")
+        assert browser.execute_script("return innerWidth") == 320
+        _queue(browser, TEXTS)
+        WebDriverWait(browser, 30).until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        for summary in browser.find_elements(By.CSS_SELECTOR, "article.result summary"):
+            summary.click()
+        widths = browser.execute_script(
+            "const e = document.documentElement; return [e.scrollWidth, e.clientWidth,"
+            " ...Array.from(document.querySelectorAll('article.result'), (c) => c.scrollWidth - c.clientWidth)]"
+        )
+        assert widths[0] <= widths[1] and all(extra <= 0 for extra in widths[2:]), widths
+        # Each word of each span's cell is drawn on one line (one client rect per word).
+        broken = browser.execute_script(
+            "const out = []; for (const td of document.querySelectorAll('article.result td:nth-child(2)')) {"
+            "  const node = td.firstChild; let at = 0;"
+            "  for (const word of node.data.split(' ')) {"
+            "    const r = document.createRange(); r.setStart(node, at); r.setEnd(node, at + word.length);"
+            "    if (word && r.getClientRects().length > 1) out.push(word); at += word.length + 1; } }"
+            "return out"
+        )
+        assert broken == []
+        scroller = browser.find_element(By.CSS_SELECTOR, "article.result details > [role=region]")
+        assert scroller.get_attribute("tabindex") == "0" and scroller.accessible_name
