@@ -567,3 +567,34 @@ def test_the_queue_fits_a_320_px_wide_screen(browser, registry_dir: Path) -> Non
         assert broken == []
         scroller = browser.find_element(By.CSS_SELECTOR, "article.result details > [role=region]")
         assert scroller.get_attribute("tabindex") == "0" and scroller.accessible_name
+
+
+def test_a_screen_reader_hears_which_card_has_focus_and_what_happened(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """The card the queue focuses is named by its place, label and probability (its accessible
+    name as Chromium computes it, W3C Accessible Name and Description Computation 1.2); a
+    refused batch is an alert and a verdict's outcome a status (WAI-ARIA 1.2 live regions), so
+    they are read out without moving the focus."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    settings = settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN, max_texts=2)
+    with uvicorn_server(settings) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        _queue(browser, TEXTS)
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        cards = browser.find_elements(By.CSS_SELECTOR, "article.result")
+        focused = browser.switch_to.active_element
+        assert focused == cards[0]
+        pill, conf = (cards[0].find_element(By.CSS_SELECTOR, c).text for c in (".pill", ".top .conf"))
+        name = focused.accessible_name
+        assert "#1" in name and pill in name and conf in name and "awaiting verdict" in name, name
+        # Without signing in, Y explains why nothing was recorded, in the card's status.
+        ActionChains(browser).send_keys("y").perform()
+        note = cards[0].find_element(By.CSS_SELECTOR, ".note")
+        wait.until(lambda d: note.text)
+        assert note.aria_role == "status" and cards[0].find_element(By.CSS_SELECTOR, ".verdict").aria_role == "status"
+        _queue(browser, ["refund please"] * 3)
+        wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.error"))
+        assert browser.find_element(By.CSS_SELECTOR, "article.error").aria_role == "alert"
