@@ -598,3 +598,37 @@ def test_a_screen_reader_hears_which_card_has_focus_and_what_happened(browser, r
         _queue(browser, ["refund please"] * 3)
         wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.error"))
         assert browser.find_element(By.CSS_SELECTOR, "article.error").aria_role == "alert"
+
+
+def test_signing_in_and_out_by_keyboard_keeps_the_focus_on_the_page(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """The sign-in form and the Sign out button hide themselves while they hold the focus; the
+    focus then moves where the reviewer goes next (WCAG 2.1 SC 2.4.3 Focus Order): after signing
+    in, to the card awaiting a verdict (Y then records it) or to the texts box; after signing
+    out, to the name field. Before, it fell to the page's body and Tab started from the top."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    active = "const a = document.activeElement; return a === document.body ? 'body' : (a.id || a.className)"
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + Keys.ENTER)
+        wait.until(lambda d: d.find_element(By.ID, "signed").is_displayed())
+        assert browser.execute_script(active) == "texts"
+        browser.find_element(By.ID, "sign-out").send_keys(Keys.ENTER)
+        wait.until(lambda d: d.find_element(By.ID, "sign-in").is_displayed())
+        assert browser.execute_script(active) == "reviewer"
+        # Y before signing in sends the reviewer to the form; signing in brings them back to the card.
+        _queue(browser, TEXTS[:1])
+        wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.result"))
+        ActionChains(browser).send_keys("y").perform()
+        wait.until(lambda d: browser.execute_script(active) == "reviewer")
+        ActionChains(browser).send_keys("Kwame", Keys.TAB, REVIEW_TOKEN, Keys.ENTER).perform()
+        wait.until(lambda d: d.find_element(By.ID, "signed").is_displayed())
+        assert browser.execute_script(active) == "result current"
+        ActionChains(browser).send_keys("y").perform()
+        card = browser.find_element(By.CSS_SELECTOR, "article.result")
+        wait.until(lambda d: card.get_attribute("data-state") == "confirmed")
