@@ -10,8 +10,8 @@ from __future__ import annotations
 
 from itertools import accumulate
 
-# Each multi-code-point cluster the texts use, with the UAX #29 rule (revision 43, Unicode 15.1,
-# and later) that keeps it whole.
+# Each multi-code-point cluster the texts use, with the UAX #29 rule (as of Unicode 15.1, which
+# added GB9c for Indic conjuncts) that keeps it whole.
 CLUSTERS = {
     # An emoji, a skin tone (Emoji_Modifier: Grapheme_Cluster_Break=Extend, GB9), a zero-width
     # joiner (ZWJ, GB9) and a pictograph joined to it (GB11).
