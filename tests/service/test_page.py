@@ -12,6 +12,7 @@ from pathlib import Path
 import pytest
 
 from tests.helpers.environment import skip_or_fail
+from tests.helpers.graphemes import clustered, widened
 from tests.helpers.service import serving, settings_for
 
 pytestmark = pytest.mark.anyio
@@ -64,8 +65,8 @@ async def test_openapi_documents_the_contract_without_cdn_docs(shared_registry: 
     assert docs.status_code == 404
 
 
-def test_page_highlighting_slices_code_points_like_python(tmp_path: Path) -> None:
-    """Run the page's own ``segments`` helper in Node and compare with Python's str slicing."""
+def _run_helpers(tmp_path: Path, name: str, call: str, cases: object) -> object:
+    """Run the page's pure helpers (its first script) in Node on ``cases`` (JSON on stdin)."""
     import json
     import shutil
     import subprocess
@@ -77,16 +78,29 @@ def test_page_highlighting_slices_code_points_like_python(tmp_path: Path) -> Non
         skip_or_fail("node is needed to run the page's script (apt-get install nodejs)")
     html, _ = page()
     helpers = re.findall(r"<script>(.*?)</script>", html, flags=re.S)[0]
-    harness = (
+    script = tmp_path / f"{name}.js"
+    script.write_text(
         helpers + "\nconst cases = JSON.parse(require('fs').readFileSync(0, 'utf8'));\n"
-        "process.stdout.write(JSON.stringify(cases.map(c => segments(c.text, c.spans).map("
-        "s => [s.text, s.rank]))));\n"
+        f"process.stdout.write(JSON.stringify({call}));\n",
+        encoding="utf-8",
     )
-    script = tmp_path / "segments.js"
-    script.write_text(harness, encoding="utf-8")
-    texts = ["👩‍💻 charged twice 🇫🇷 e\u0301 again", "修理 ok مرحبا \u200b fine 😀😀", "plain text here"]
+    out = subprocess.run(
+        [node, str(script)], input=json.dumps(cases), capture_output=True, text=True, timeout=60, check=True
+    )
+    return json.loads(out.stdout)
+
+
+def test_page_highlighting_slices_code_points_like_python(tmp_path: Path) -> None:
+    """Run the page's own ``segments`` helper in Node and compare with Python's str slicing, the
+    highlights widened to the texts' grapheme clusters as UAX #29 draws them (tests/helpers/graphemes.py)."""
+    texts = [
+        "|👩🏽\u200d💻| charged twice |🇫🇷||🇫🇷| |e\u0301| again",
+        "修理 ok مرحبا \u200b fine 😀😀 |क्ष||मा| क|रें|",
+        "plain text here",
+    ]
     cases = []
-    for text in texts:
+    for marked in texts:
+        text, _ = clustered(marked)
         n = len(text)
         spans = [
             {"start": 2, "end": min(9, n), "weight": 1.0, "label": "x", "width": 2},
@@ -94,17 +108,73 @@ def test_page_highlighting_slices_code_points_like_python(tmp_path: Path) -> Non
             {"start": 3, "end": 5, "weight": 0.5, "label": "x", "width": 1},
         ]  # overlaps the first: skipped
         cases.append({"text": text, "spans": spans})
-    out = subprocess.run(
-        [node, str(script)], input=json.dumps(cases), capture_output=True, text=True, timeout=30, check=True
-    )
-    for case, segs in zip(cases, json.loads(out.stdout), strict=True):
-        text, spans = case["text"], case["spans"]
-        assert "".join(s for s, _ in segs) == text
-        marked = [(s, rank) for s, rank in segs if rank is not None]
-        assert marked == [
-            (text[spans[0]["start"] : spans[0]["end"]], 1),
-            (text[spans[1]["start"] : spans[1]["end"]], 2),
+    # And every single span of every text, one case each: each boundary falls anywhere.
+    singles = []
+    for marked in texts[:2]:
+        text, _ = clustered(marked)
+        singles += [
+            {"text": text, "spans": [{"start": a, "end": b, "weight": 1.0, "label": "x", "width": 1}]}
+            for a in range(len(text))
+            for b in range(a + 1, len(text) + 1)
         ]
+    call = "cases.map(c => segments(c.text, c.spans).map(s => [s.text, s.rank, s.ranks]))"
+    out = _run_helpers(tmp_path, "segments", call, cases + singles)
+    assert isinstance(out, list)
+    for case, segs in zip(cases + singles, out, strict=True):
+        text, spans = case["text"], case["spans"]
+        _, bounds = clustered(next(m for m in texts if clustered(m)[0] == text))
+        assert "".join(s for s, _, _ in segs) == text
+        marked_segs = [(s, rank) for s, rank, _ in segs if rank is not None]
+        shown = [widened(bounds, spans[i]["start"], spans[i]["end"]) for i in range(min(2, len(spans)))]
+        assert marked_segs == [(text[a:b], i + 1) for i, (a, b) in enumerate(shown)]
+
+
+def test_page_highlights_sharing_a_character_become_one(tmp_path: Path) -> None:
+    """Two spans the API gives apart (the token before a skin tone, and the skin tone) meet inside
+    one cluster once widened: they are shown as one highlight carrying both ranks."""
+    text, bounds = clustered("fixed |👍🏿| it")
+    thumb = text.index("👍")
+    spans = [
+        {"start": 0, "end": thumb + 1, "weight": 1.0, "label": "x", "width": 2},
+        {"start": thumb + 1, "end": len(text), "weight": 0.5, "label": "x", "width": 2},
+    ]
+    out = _run_helpers(
+        tmp_path,
+        "shared",
+        "segments(cases.text, cases.spans).map(s => [s.text, s.ranks])",
+        {"text": text, "spans": spans},
+    )
+    assert bounds[-1] == len(text) and out == [[text, [1, 2]]]
+
+
+def test_page_reads_retry_after_as_rfc_9110_defines_it(tmp_path: Path) -> None:
+    """RFC 9110 §10.2.3: Retry-After is delay-seconds or an HTTP-date, and a recipient takes all
+    three forms of HTTP-date (§5.6.7, whose example instant the three dates below are)."""
+    now = 784111777000 - 90_000  # 90 s before Sun, 06 Nov 1994 08:49:37 GMT, in ms since 1970
+    values = [
+        "120",
+        "0",
+        "Sun, 06 Nov 1994 08:49:37 GMT",  # IMF-fixdate
+        "Sunday, 06-Nov-94 08:49:37 GMT",  # obsolete RFC 850 format
+        "Sun Nov  6 08:49:37 1994",  # ANSI C's asctime() format
+        "Sat, 05 Nov 1994 08:49:37 GMT",  # a day past: try now
+        "soon",
+        "1.5",
+        "",
+    ]
+    call = f"cases.map(v => retryAfterSeconds(v, {now})).map(s => [s, s === null ? null : tryAgainIn(s)])"
+    out = _run_helpers(tmp_path, "retry", call, values)
+    assert out == [
+        [120, "try again in 2 min"],
+        [0, "try again now"],
+        [90, "try again in 90 s"],
+        [90, "try again in 90 s"],
+        [90, "try again in 90 s"],
+        [0, "try again now"],
+        [None, None],
+        [None, None],
+        [None, None],
+    ]
 
 
 def test_page_keys_map_to_verdict_actions(tmp_path: Path) -> None:

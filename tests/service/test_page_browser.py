@@ -7,11 +7,14 @@ it records with what the registry and ``textsieve verdicts`` read back.
 
 from __future__ import annotations
 
+import time
 from pathlib import Path
 
 import httpx
 import pytest
 
+from tests.helpers.gateway import Reply, gateway_in_front_of
+from tests.helpers.graphemes import clustered, widened
 from tests.helpers.net import free_port
 from tests.helpers.service import MODEL, REVIEW_TOKEN, settings_for, uvicorn_server
 from textsieve.cli import main
@@ -330,3 +333,302 @@ def test_a_token_no_service_could_hold_is_refused_at_sign_in(browser, registry_d
         browser.find_element(By.ID, "start").click()
         assert browser.find_element(By.ID, "signed").is_displayed()
         assert browser.execute_script("return sessionStorage.getItem('textsieve.reviewToken')") == REVIEW_TOKEN
+
+
+# What a gateway in front of the service answers while the service is down, slow or shedding
+# load; tests/helpers/gateway.py answers it instead of forwarding.
+PROXY_PAGE_502 = b"<html><head><title>502 Bad Gateway</title></head><body><h1>502 Bad Gateway</h1></body></html>"
+HTML = (("Content-Type", "text/html"),)
+
+
+def _queue(browser, texts: list[str]) -> None:  # type: ignore[no-untyped-def]
+    from selenium.webdriver.common.by import By
+
+    box = browser.find_element(By.ID, "texts")
+    box.clear()
+    box.send_keys("\n".join(texts))
+    browser.find_element(By.ID, "go").click()
+
+
+def test_a_gateway_reply_that_is_not_the_services_is_named_by_its_status(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """A batch answered by a gateway (an HTML 502, an empty 503 or 504, a 429) is shown with its
+    status and reason phrase and, for 503 and 429, the wait its Retry-After asks (RFC 9110
+    §10.2.3, seconds or an HTTP-date); before, the page showed 'request failed: SyntaxError'.
+    The queue under review stays as it was."""
+    from email.utils import formatdate
+
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with (
+        uvicorn_server(settings_for(registry_dir, port=free_port())) as server,
+        gateway_in_front_of(server.url) as gateway,
+    ):
+        browser.get(gateway.url + "/")
+        wait = WebDriverWait(browser, 30)
+        _queue(browser, TEXTS)
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == len(TEXTS))
+        batch = browser.find_element(By.ID, "batch").text
+        # The service's own refusal when overloaded (service/web/problems.py's detail), as a
+        # gateway might replay it: its detail stays first, the wait is added.
+        overloaded = (
+            b'{"type":"/problems/overloaded","title":"This replica is at capacity","status":503,'
+            b'"detail":"this replica is at capacity: retry after the Retry-After seconds, or on another replica"}'
+        )
+        cases = [
+            (
+                Reply(502, "Bad Gateway", PROXY_PAGE_502, HTML),
+                "the server answered 502 Bad Gateway, not a problem+json reply",
+            ),
+            (Reply(502, "Bad Gateway", PROXY_PAGE_502, HTML), "Try again in a moment"),
+            # No reason phrase (RFC 9112 §4 allows it): RFC 9110 §15.6.5's is shown.
+            (Reply(504, "", b""), "the server answered 504 Gateway Timeout, not a problem+json reply"),
+            (Reply(503, "Service Unavailable", b"", (("Retry-After", "2"),)), "503 Service Unavailable"),
+            (Reply(503, "Service Unavailable", b"", (("Retry-After", "2"),)), "Try again in 2 s"),
+            # An IMF-fixdate five minutes ahead (RFC 9110 §5.6.7, written by Python's email.utils).
+            (Reply(429, "Too Many Requests", b"", (("Retry-After", "{in 5 min}"),)), "Try again in 5 min"),
+            (
+                Reply(
+                    503,
+                    "Service Unavailable",
+                    overloaded,
+                    (("Content-Type", "application/problem+json"), ("Retry-After", "2")),
+                ),
+                "or on another replica (try again in 2 s)",
+            ),
+        ]
+        for reply, expected in cases:
+            headers = tuple(
+                (k, formatdate(time.time() + 300, usegmt=True) if v == "{in 5 min}" else v) for k, v in reply.headers
+            )
+            gateway.answer("POST", "/v1/predict", Reply(reply.status, reply.reason, reply.body, headers))
+            browser.execute_script("document.querySelector('#queue .error')?.remove()")
+            _queue(browser, ["refund please"])
+            wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.error"))
+            error = browser.find_element(By.CSS_SELECTOR, "article.error").text
+            assert expected in error and "SyntaxError" not in error, (reply.status, error)
+            assert "Nothing was scored" in error or reply.body == overloaded, error
+            cards = browser.find_elements(By.CSS_SELECTOR, "article.result:not(.error)")
+            assert len(cards) == len(TEXTS) and browser.find_element(By.ID, "batch").text == batch
+        assert len(gateway.answered) == len(cases)
+        # The service back, the next batch replaces the queue.
+        gateway.forward("POST", "/v1/predict")
+        _queue(browser, ["refund please"])
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 1)
+        assert browser.find_elements(By.CSS_SELECTOR, "article.error") == []
+
+
+def test_a_gateway_reply_on_verdicts_status_and_models_is_named_by_its_status(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """Every other call the page makes says what answered too: the readiness line (which said
+    'service unreachable'), the model list (which failed silently) and a verdict (which showed
+    'request failed: SyntaxError'); the card then still awaits its verdict, and records it once
+    the service is back."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    settings = settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)
+    with uvicorn_server(settings) as server, gateway_in_front_of(server.url) as gateway:
+        gateway.answer("GET", "/readyz", Reply(503, "Service Unavailable", b""))
+        gateway.answer("GET", "/v1/models", Reply(504, "", b""))
+        browser.get(gateway.url + "/")
+        wait = WebDriverWait(browser, 30)
+        status, models = browser.find_element(By.ID, "status"), browser.find_element(By.ID, "models-note")
+        wait.until(lambda d: status.text != "checking…" and models.text)
+        assert "503 Service Unavailable" in status.text
+        assert "504 Gateway Timeout, not a problem+json reply" in models.text
+        assert "default model still serves" in models.text
+        gateway.forward("GET", "/readyz")
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN)
+        browser.find_element(By.ID, "start").click()
+        _queue(browser, TEXTS[:1])
+        wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.result"))
+        wait.until(lambda d: "ready" in (status.get_attribute("class") or ""))
+        card = browser.find_element(By.CSS_SELECTOR, "article.result")
+        note = card.find_element(By.CSS_SELECTOR, ".note")
+        for reply, expected in [
+            (
+                Reply(502, "Bad Gateway", PROXY_PAGE_502, HTML),
+                "the server answered 502 Bad Gateway, not a problem+json reply",
+            ),
+            (Reply(503, "Service Unavailable", b"", (("Retry-After", "3"),)), "Try again in 3 s"),
+        ]:
+            gateway.answer("POST", "/v1/verdicts", reply)
+            browser.execute_script("arguments[0].textContent = ''", note)
+            card.find_element(By.CSS_SELECTOR, "button.confirm").click()
+            wait.until(lambda d: note.text)
+            assert expected in note.text and "SyntaxError" not in note.text, note.text
+            assert "not confirmed as recorded" in note.text and "sign in" not in note.text.lower()
+            assert card.get_attribute("data-state") == "pending"
+        gateway.forward("POST", "/v1/verdicts")
+        card.find_element(By.CSS_SELECTOR, "button.confirm").click()
+        wait.until(lambda d: card.get_attribute("data-state") == "confirmed")
+    with open_registry(registry_dir) as reg:
+        assert [v.text for v in reg.verdicts.of(MODEL)] == [TEXTS[0]]
+
+
+# Texts whose spans, from the tiny test model, start or end inside a grapheme cluster: the
+# tokenizer makes a skin tone and each regional indicator a token of its own and splits at a
+# zero-width joiner. Clusters are marked as tests/helpers/graphemes.py reads them.
+CLUSTERED = [
+    "my card |👩🏽\u200d💻| charged twice",
+    "thanks |👨\u200d👩\u200d👧\u200d👦| charged twice",
+    "the chain snapped |🇫🇷||👍🏿| brake fixed",
+    "refund |🇫🇷||🇫🇷| ok then",
+    "|e\u0301| refund |क्ष||मा| क|रें| |👍🏿| charged",
+    "|👩🏽\u200d💻| fixed it |👍🏿|",
+]
+
+
+def test_a_highlight_never_splits_a_character(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """Every highlight boundary in the page is a grapheme cluster boundary (UAX #29; the
+    clusters written down by hand in tests/helpers/graphemes.py), and each highlight holds its
+    span's whole text (the API's text[start:end]): emoji with skin tones and ZWJ sequences,
+    flags, a combining accent and a Devanagari conjunct."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    texts, bounds = zip(*(clustered(m) for m in CLUSTERED), strict=True)
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        api = httpx.post(f"{server.url}/v1/predict", json={"texts": list(texts), "spans": 20}, timeout=30).json()
+        inside = {"start": 0, "end": 0}
+        for text, bound, result in zip(texts, bounds, api["results"], strict=True):
+            for span in result["spans"]:
+                assert text[span["start"] : span["end"]] == span["text"]  # the API's promise
+                for side in ("start", "end"):
+                    inside[side] += span[side] not in bound
+        # What this test is about: the API's spans split clusters at both ends.
+        assert inside["start"] >= 1 and inside["end"] >= 1, inside
+        browser.get(server.url + "/")
+        browser.find_element(By.ID, "spans").clear()
+        browser.find_element(By.ID, "spans").send_keys("20")
+        browser.execute_script(
+            "arguments[0].value = arguments[1]", browser.find_element(By.ID, "texts"), "\n".join(texts)
+        )
+        browser.find_element(By.ID, "go").click()
+        WebDriverWait(browser, 30).until(
+            lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == len(texts)
+        )
+        # Each card's text as shown: [piece, highlighted?] in order, the ranks (sup) left out.
+        shown = browser.execute_script(
+            "return Array.from(document.querySelectorAll('article.result .text'), (box) =>"
+            "  Array.from(box.childNodes, (n) => n.nodeType === Node.TEXT_NODE ? [n.data, false]"
+            "    : [n.firstChild.data, true]))"
+        )
+    for text, bound, result, pieces in zip(texts, bounds, api["results"], shown, strict=True):
+        assert "".join(piece for piece, _ in pieces) == text
+        marks, at = [], 0
+        for piece, highlighted in pieces:
+            if highlighted:
+                marks.append((at, at + len(piece)))  # Python counts code points, as the API does
+            at += len(piece)
+        for start, end in marks:
+            assert start in bound and end in bound, (text, text[start:end])
+        for span in result["spans"]:
+            assert any(a <= span["start"] and span["end"] <= b for a, b in marks), (text, span["text"])
+        # Each highlight is the union of its spans widened to whole clusters, no wider; spans
+        # that met inside one cluster share one highlight.
+        for a, b in marks:
+            held = [widened(bound, s["start"], s["end"]) for s in result["spans"] if a <= s["start"] < b]
+            assert held and (min(w[0] for w in held), max(w[1] for w in held)) == (a, b), (text, text[a:b])
+
+
+def test_the_queue_fits_a_320_px_wide_screen(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """On a 320 CSS px wide screen (WCAG 2.1 SC 1.4.10 Reflow's width) with the span tables
+    open, nothing is wider than the screen, and no word of a span is broken across lines; the
+    table scrolls inside its card instead, and the keyboard reaches that scroller (a named region)."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        browser.execute_cdp_cmd(
+            "Emulation.setDeviceMetricsOverride", {"width": 320, "height": 900, "deviceScaleFactor": 1, "mobile": True}
+        )
+        browser.get(server.url + "/")
+        assert browser.execute_script("return innerWidth") == 320
+        _queue(browser, TEXTS)
+        WebDriverWait(browser, 30).until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        for summary in browser.find_elements(By.CSS_SELECTOR, "article.result summary"):
+            summary.click()
+        widths = browser.execute_script(
+            "const e = document.documentElement; return [e.scrollWidth, e.clientWidth,"
+            " ...Array.from(document.querySelectorAll('article.result'), (c) => c.scrollWidth - c.clientWidth)]"
+        )
+        assert widths[0] <= widths[1] and all(extra <= 0 for extra in widths[2:]), widths
+        # Each word of each span's cell is drawn on one line (one client rect per word).
+        broken = browser.execute_script(
+            "const out = []; for (const td of document.querySelectorAll('article.result td:nth-child(2)')) {"
+            "  const node = td.firstChild; let at = 0;"
+            "  for (const word of node.data.split(' ')) {"
+            "    const r = document.createRange(); r.setStart(node, at); r.setEnd(node, at + word.length);"
+            "    if (word && r.getClientRects().length > 1) out.push(word); at += word.length + 1; } }"
+            "return out"
+        )
+        assert broken == []
+        scroller = browser.find_element(By.CSS_SELECTOR, "article.result details > [role=region]")
+        assert scroller.get_attribute("tabindex") == "0" and scroller.accessible_name
+
+
+def test_a_screen_reader_hears_which_card_has_focus_and_what_happened(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """The card the queue focuses is named by its place, label and probability (its accessible
+    name as Chromium computes it, W3C Accessible Name and Description Computation 1.2); a
+    refused batch is an alert and a verdict's outcome a status (WAI-ARIA 1.2 live regions), so
+    they are read out without moving the focus."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    settings = settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN, max_texts=2)
+    with uvicorn_server(settings) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        _queue(browser, TEXTS)
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        cards = browser.find_elements(By.CSS_SELECTOR, "article.result")
+        focused = browser.switch_to.active_element
+        assert focused == cards[0]
+        pill, conf = (cards[0].find_element(By.CSS_SELECTOR, c).text for c in (".pill", ".top .conf"))
+        name = focused.accessible_name
+        assert "#1" in name and pill in name and conf in name and "awaiting verdict" in name, name
+        # Without signing in, Y explains why nothing was recorded, in the card's status.
+        ActionChains(browser).send_keys("y").perform()
+        note = cards[0].find_element(By.CSS_SELECTOR, ".note")
+        wait.until(lambda d: note.text)
+        assert note.aria_role == "status" and cards[0].find_element(By.CSS_SELECTOR, ".verdict").aria_role == "status"
+        _queue(browser, ["refund please"] * 3)
+        wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.error"))
+        assert browser.find_element(By.CSS_SELECTOR, "article.error").aria_role == "alert"
+
+
+def test_signing_in_and_out_by_keyboard_keeps_the_focus_on_the_page(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """The sign-in form and the Sign out button hide themselves while they hold the focus; the
+    focus then moves where the reviewer goes next (WCAG 2.1 SC 2.4.3 Focus Order): after signing
+    in, to the card awaiting a verdict (Y then records it) or to the texts box; after signing
+    out, to the name field. Before, it fell to the page's body and Tab started from the top."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    active = "const a = document.activeElement; return a === document.body ? 'body' : (a.id || a.className)"
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + Keys.ENTER)
+        wait.until(lambda d: d.find_element(By.ID, "signed").is_displayed())
+        assert browser.execute_script(active) == "texts"
+        browser.find_element(By.ID, "sign-out").send_keys(Keys.ENTER)
+        wait.until(lambda d: d.find_element(By.ID, "sign-in").is_displayed())
+        assert browser.execute_script(active) == "reviewer"
+        # Y before signing in sends the reviewer to the form; signing in brings them back to the card.
+        _queue(browser, TEXTS[:1])
+        wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.result"))
+        ActionChains(browser).send_keys("y").perform()
+        wait.until(lambda d: browser.execute_script(active) == "reviewer")
+        ActionChains(browser).send_keys("Kwame", Keys.TAB, REVIEW_TOKEN, Keys.ENTER).perform()
+        wait.until(lambda d: d.find_element(By.ID, "signed").is_displayed())
+        assert browser.execute_script(active) == "result current"
+        ActionChains(browser).send_keys("y").perform()
+        card = browser.find_element(By.CSS_SELECTOR, "article.result")
+        wait.until(lambda d: card.get_attribute("data-state") == "confirmed")
