@@ -1,8 +1,8 @@
 """The registry verbs of the ``textsieve`` command: publish, models, versions, show, promote,
 rollback, history, evalset add, gates, review-threshold, verdicts and gc (shadow lives in shadow_cli.py), each with
 its flags (:func:`register`) next to its handler.
-Tables are plain aligned text; errors are raised and the command's main() prints them as one
-line with the error's exit status.
+Tables are plain aligned text, fitted to the terminal and safe to print (``registry/tables.py``);
+errors are raised and the command's main() prints them as one line with the error's exit status.
 
 Building the command line imports this module for every run of ``textsieve`` (and for every
 press of TAB when completing), so the registry itself is imported inside the handlers.
@@ -19,58 +19,20 @@ from typing import TYPE_CHECKING, Any, TextIO
 
 from textsieve.environment import DEFAULT_REGISTRY, registry_location
 from textsieve.errors import GateRefusedError, InputError, IntegrityError, NotFoundError, SavedThenInterrupted
+from textsieve.registry import tables
+from textsieve.registry.tables import NONE, key_values, one_line
 
 if TYPE_CHECKING:
     from textsieve.registry.api import Registry
     from textsieve.registry.model_settings import ModelSettings, SettingValue
     from textsieve.registry.records import Agreement, Event, GateResult
 
-NONE = "-"
 
-
-def _one_line(cell: str) -> str:
-    """A cell on one line and harmless to a terminal: a reason may hold line breaks and tabs (kept
-    as written in the registry), which would split a table's row, each break shown as ↵; a text
-    sent by a client may hold other control characters (an ESC starting a terminal escape
-    sequence that clears the screen or recolours what follows), each shown as a backslash, an x
-    and two hex digits."""
-    if cell.isprintable():
-        return cell
-    if "\n" in cell or "\r" in cell or "\t" in cell:
-        cell = cell.replace("\r\n", "\n").replace("\r", "\n").replace("\n", " ↵ ").replace("\t", " ")
-    import unicodedata
-
-    return "".join(f"\\x{ord(c):02x}" if unicodedata.category(c) == "Cc" else c for c in cell)
-
-
-def table(headers: Sequence[str], rows: Sequence[Sequence[object]], *, right: Sequence[int] = ()) -> str:
-    """Columns padded to their widest cell, two spaces apart; ``right`` lists right-aligned columns."""
-    cells = [[str(h) for h in headers]] + [[NONE if c is None else _one_line(str(c)) for c in row] for row in rows]
-    widths = [max(_columns(row[i]) for row in cells) for i in range(len(headers))]
-    lines = []
-    for row in cells:
-        parts = []
-        for i, (c, w) in enumerate(zip(row, widths, strict=True)):
-            pad = " " * (w - _columns(c))
-            parts.append(pad + c if i in right else c + pad)
-        lines.append("  ".join(parts).rstrip())
-    return "\n".join(lines)
-
-
-def _columns(cell: str) -> int:
-    """The terminal columns ``cell`` takes: wide characters (East Asian Wide and Fullwidth: 汉字,
-    most emoji) take two, combining marks and zero-width format characters none (Unicode UAX #11;
-    common practice in terminals)."""
-    if cell.isascii():
-        return len(cell)
-    import unicodedata
-
-    width = 0
-    for c in cell:
-        if unicodedata.combining(c) or unicodedata.category(c) in ("Mn", "Me", "Cf"):
-            continue
-        width += 2 if unicodedata.east_asian_width(c) in ("W", "F") else 1
-    return width
+def table(
+    headers: Sequence[str], rows: Sequence[Sequence[object]], *, right: Sequence[int] = (), wrap: Sequence[int] = ()
+) -> str:
+    """A table fitted to the terminal (``registry/tables.py``); ``wrap`` lists its free-text columns."""
+    return tables.table(headers, rows, right=right, wrap_columns=wrap)
 
 
 def when(at: str | None) -> str:
@@ -90,7 +52,9 @@ def _out(text: str, stream: TextIO | None = None) -> None:
 
 
 def gate_table(gates: Sequence[GateResult]) -> str:
-    return table(["GATE", "RESULT", "DETAIL"], [[g.name, "pass" if g.passed else "FAIL", g.detail] for g in gates])
+    return table(
+        ["GATE", "RESULT", "DETAIL"], [[g.name, "pass" if g.passed else "FAIL", g.detail] for g in gates], wrap=(2,)
+    )
 
 
 # -- the verbs and their flags -------------------------------------------------------------
@@ -282,7 +246,8 @@ def cli_publish(args: argparse.Namespace) -> int:
         if args.evalset is not None and stopped is None:
             es = reg.evalset(info.model)
             extra = f"; evaluation set {args.evalset.name}: {es.texts if es else 0} texts"
-    print(f"published {info.model!r} version {info.version} (labels: {', '.join(info.labels)}){extra}", file=sys.stderr)
+    labels = one_line(", ".join(info.labels))
+    print(f"published {info.model!r} version {info.version} (labels: {labels}){extra}", file=sys.stderr)
     _out(str(info.version))
     if stopped is not None:
         raise stopped
@@ -328,6 +293,7 @@ def cli_versions(args: argparse.Namespace) -> int:
                 for v in versions
             ],
             right=(0, 2, 3),
+            wrap=(5, 7),
         )
     )
     return 0
@@ -389,8 +355,7 @@ def cli_show(args: argparse.Namespace) -> int:
             else f"{evalset.source}: {evalset.texts} texts, added {when(evalset.added_at)} by {evalset.added_by}",
         ),
     ]
-    width = max(len(k) for k, _ in rows)
-    _out("\n".join(f"{k:<{width}}  {v}" for k, v in rows))
+    _out(key_values(rows))
     _out("\nfiles\n" + table(["FILE", "SHA256"], [[name, digest] for name, digest in sorted(info.files.items())]))
     last_gates = next((e for e in reversed(events) if e.kind in ("promote", "refuse") and e.details.get("gates")), None)
     if last_gates is not None:
@@ -446,6 +411,7 @@ def cli_history(args: argparse.Namespace) -> int:
             ["EVENT", "TIME (UTC)", "KIND", "VERSION", "ACTOR", "REASON", "DETAIL"],
             [[e.id, when(e.at), e.kind, e.version, e.actor, e.reason or NONE, summarise(e)] for e in events],
             right=(0, 3),
+            wrap=(4, 5, 6),
         )
     )
     return 0
@@ -456,7 +422,7 @@ def cli_evalset_add(args: argparse.Namespace) -> int:
         info = reg.add_evalset(
             args.model, args.file, text_field=args.text_field, label_field=args.label_field, actor=args.actor
         )
-    counts = ", ".join(f"{label} {n}" for label, n in info.labels.items())
+    counts = one_line(", ".join(f"{label} {n}" for label, n in info.labels.items()))
     _out(f"evaluation set for {info.model!r}: {info.texts} texts ({counts}), sha256 {info.sha256[:12]}…")
     return 0
 
@@ -497,7 +463,7 @@ def cli_review_threshold(args: argparse.Namespace) -> int:
     else:
         text = f"{args.model}: review threshold {v.value:g}; results whose top probability is below it need review"
     if not v.is_default:
-        text += f" (set {when(v.set_at)} by {v.set_by}: {v.reason})"
+        text += f" (set {when(v.set_at)} by {v.set_by}: {one_line(v.reason or NONE)})"
     _out(text)
     if changed == []:
         _out("nothing changed: it was already so")
@@ -522,6 +488,7 @@ def settings_table(values: Sequence[SettingValue]) -> str:
             ]
             for v in values
         ],
+        wrap=(5, 6, 7),
     )
 
 
@@ -583,6 +550,7 @@ def cli_verdicts(args: argparse.Namespace) -> int:
                     for v in shown
                 ],
                 right=(0, 2, 5),
+                wrap=(3, 4, 6, 7),
             )
         )
         _out(f"({len(shown)} of {len(verdicts)} shown; --last N for more)\n")
