@@ -62,9 +62,11 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     """Add the registry verbs, each with its flags and its handler, to the ``textsieve`` command."""
     p = sub.add_parser("publish", help="store a bundle as the next version of a model")
     p.add_argument("bundle", type=Path, help="bundle folder written by 'textsieve export'")
-    p.add_argument("--model", required=True, help="model name: a-z, 0-9, '.', '_', '-' (at most 64)")
-    p.add_argument("--evalset", type=Path, help="also register this labelled file as the model's evaluation set")
-    p.add_argument("--reason", default="", help="why, recorded in the audit trail")
+    p.add_argument("--model", action=_Once, required=True, help="model name: a-z, 0-9, '.', '_', '-' (at most 64)")
+    p.add_argument(
+        "--evalset", action=_Once, type=Path, help="also register this labelled file as the model's evaluation set"
+    )
+    p.add_argument("--reason", action=_Once, default="", help="why, recorded in the audit trail")
     add_location_args(p)
     _actor_arg(p)
     p.set_defaults(func=cli_publish)
@@ -89,11 +91,12 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p.add_argument("version", type=int, help="version number")
     p.add_argument(
         "--to",
+        action=_Once,
         choices=["candidate", "live"],
         required=True,
         help="candidate: the one version under trial; live: the served one, after the gates",
     )
-    p.add_argument("--reason", required=True, help="why, recorded in the audit trail")
+    p.add_argument("--reason", action=_Once, required=True, help="why, recorded in the audit trail")
     p.add_argument("--force", action="store_true", help="override failed gates (recorded)")
     add_location_args(p)
     _actor_arg(p)
@@ -101,7 +104,7 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
 
     p = sub.add_parser("rollback", help="make the previous live version live again")
     _model_arg(p)
-    p.add_argument("--reason", required=True, help="why, recorded in the audit trail")
+    p.add_argument("--reason", action=_Once, required=True, help="why, recorded in the audit trail")
     add_location_args(p)
     _actor_arg(p)
     p.set_defaults(func=cli_rollback)
@@ -138,7 +141,9 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         help="choose a value, e.g. mcnemar=on, mcnemar_p=0.05, macro_f1_drop=0.01 (repeat for several)",
     )
     p.add_argument("--reset", action="append", default=[], metavar="KEY", help="back to the default (repeatable)")
-    p.add_argument("--reason", default="", help="why, recorded in the audit trail (required with --set/--reset)")
+    p.add_argument(
+        "--reason", action=_Once, default="", help="why, recorded in the audit trail (required with --set/--reset)"
+    )
     add_location_args(p)
     _actor_arg(p)
     p.set_defaults(func=cli_gates)
@@ -151,11 +156,14 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     change = p.add_mutually_exclusive_group()
     change.add_argument(
         "--set",
+        action=_Once,
         metavar="THRESHOLD",
         help="a probability above 0 and at most 1: results whose top probability is below it get needs_review: true",
     )
     change.add_argument("--clear", action="store_true", help="no threshold: replies carry no needs_review field")
-    p.add_argument("--reason", default="", help="why, recorded in the audit trail (required with --set/--clear)")
+    p.add_argument(
+        "--reason", action=_Once, default="", help="why, recorded in the audit trail (required with --set/--clear)"
+    )
     add_location_args(p)
     _actor_arg(p)
     p.set_defaults(func=cli_review_threshold)
@@ -175,13 +183,16 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     )
     p.add_argument(
         "--delete-before",
+        action=_Once,
         metavar="DATE",
         help="delete the verdicts recorded before DATE (2026-11-30 = its start, UTC; or an ISO 8601 time)",
     )
     p.add_argument(
         "--delete", type=int, action="append", default=[], metavar="ID", help="delete the verdict with this id (repeat)"
     )
-    p.add_argument("--reason", default="", help="why verdicts are deleted (required with --delete*), audited")
+    p.add_argument(
+        "--reason", action=_Once, default="", help="why verdicts are deleted (required with --delete*), audited"
+    )
     add_location_args(p)
     _actor_arg(p)
     p.set_defaults(func=cli_verdicts)
@@ -209,6 +220,27 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     report_cli.register(sub)
 
 
+class _Once(argparse._StoreAction):
+    """A flag of a verb that changes the registry refuses a second, different value. argparse keeps the
+    last, so a flag appended by a script (``promote m 3 --to candidate … --to live``) silently decided
+    what was changed and what the audit trail says. Other flags keep last-wins, the getopt habit that
+    wrappers (and the tests' default flags) rely on to override a default."""
+
+    def __call__(
+        self,
+        parser: argparse.ArgumentParser,
+        namespace: argparse.Namespace,
+        values: Any,
+        option_string: str | None = None,
+    ) -> None:
+        first = getattr(namespace, self.dest, None)
+        seen: set[str] = getattr(namespace, "_given_once", set())
+        if self.dest in seen and first != values:
+            parser.error(f"argument {'/'.join(self.option_strings)}: given twice with different values; give it once")
+        namespace._given_once = seen | {self.dest}
+        setattr(namespace, self.dest, values)
+
+
 def add_location_args(p: argparse.ArgumentParser) -> None:
     """``--registry`` and ``--blobs``; unset, they fall back on the environment when the verb runs."""
     p.add_argument(
@@ -228,7 +260,7 @@ def _model_arg(p: argparse.ArgumentParser) -> None:
 
 
 def _actor_arg(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--actor", help="who is acting, recorded in the audit trail (default: the OS user)")
+    p.add_argument("--actor", action=_Once, help="who is acting, recorded in the audit trail (default: the OS user)")
 
 
 # -- verbs --------------------------------------------------------------------------------
@@ -430,7 +462,14 @@ def cli_evalset_add(args: argparse.Namespace) -> int:
 def cli_gates(args: argparse.Namespace) -> int:
     from textsieve.registry.model_settings import Group, parse_assignment
 
-    values = dict(parse_assignment(text, Group.GATES) for text in args.set)
+    values: dict[str, Any] = {}
+    typed: dict[str, str] = {}
+    for text in args.set:
+        key, value = parse_assignment(text, Group.GATES)
+        if key in values and values[key] != value:
+            # dict() kept the last, silently: `--set mcnemar=on … --set mcnemar=off` turned it off.
+            raise InputError(f"--set {key} given twice ({typed[key]!r}, then {text!r}); set each key once")
+        values[key], typed[key] = value, text
     with _open(args) as reg:
         if values or args.reset:
             settings, changed = reg.change_settings(
@@ -449,6 +488,9 @@ def cli_review_threshold(args: argparse.Namespace) -> int:
     from textsieve.registry.model_settings import REVIEW_THRESHOLD
 
     key = REVIEW_THRESHOLD.key
+    if args.set is not None and not args.set.strip():
+        # An empty value cleared the threshold: `--set "$THRESHOLD"` with the variable unset.
+        raise InputError(f"--set {args.set!r}: give a probability above 0 and at most 1, or clear it with --clear")
     with _open(args) as reg:
         value = None if args.set is None else REVIEW_THRESHOLD.parse(args.set)
         if value is not None:
