@@ -88,7 +88,7 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
 
     p = sub.add_parser("promote", help="move a version to candidate or live, through the gates")
     _model_arg(p)
-    p.add_argument("version", type=int, help="version number")
+    p.add_argument("version", type=version_number, help="version number")
     p.add_argument(
         "--to",
         action=_Once,
@@ -173,7 +173,7 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         help="reviewers' verdicts on a model's predictions: agreement per version, export as labelled data, deletion",
     )
     _model_arg(p)
-    p.add_argument("--version", type=int, help="only this version's verdicts (listing and export)")
+    p.add_argument("--version", type=version_number, help="only this version's verdicts (listing and export)")
     p.add_argument("--last", type=int, default=20, metavar="N", help="list the N most recent verdicts (0: none)")
     p.add_argument(
         "--export",
@@ -239,6 +239,17 @@ class _Once(argparse._StoreAction):
             parser.error(f"argument {'/'.join(self.option_strings)}: given twice with different values; give it once")
         namespace._given_once = seen | {self.dest}
         setattr(namespace, self.dest, values)
+
+
+def version_number(text: str) -> int:
+    """argparse's type for a version: '1e3' is refused with the rule (whole numbers from 1 to 2³¹−1),
+    not argparse's 'invalid int value', and 0 or -1 before the registry is opened."""
+    from textsieve.registry.names import validate_version
+
+    try:
+        return validate_version(text)
+    except InputError as exc:
+        raise argparse.ArgumentTypeError(exc.message) from None
 
 
 def add_location_args(p: argparse.ArgumentParser) -> None:
@@ -738,4 +749,5 @@ __all__ = [
     "settings_table",
     "summarise",
     "table",
+    "version_number",
 ]

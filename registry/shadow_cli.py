@@ -9,7 +9,7 @@ import argparse
 from typing import TYPE_CHECKING
 
 from textsieve.errors import InputError
-from textsieve.registry.cli import _open, _out, add_location_args, table, when
+from textsieve.registry.cli import _open, _out, add_location_args, table, version_number, when
 from textsieve.registry.tables import NONE, key_values
 
 if TYPE_CHECKING:
@@ -23,8 +23,10 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         help="agreement of the candidate with the live version on live traffic scored in the shadow",
     )
     p.add_argument("model", help="model name")
-    p.add_argument("--live", type=int, help="live version of the pair (default: the current live version)")
-    p.add_argument("--candidate", type=int, help="candidate version of the pair (default: the current candidate)")
+    p.add_argument("--live", type=version_number, help="live version of the pair (default: the current live version)")
+    p.add_argument(
+        "--candidate", type=version_number, help="candidate version of the pair (default: the current candidate)"
+    )
     p.add_argument("--all", action="store_true", help="a table of every pair with counts instead")
     p.add_argument(
         "--texts",

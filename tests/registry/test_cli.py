@@ -266,6 +266,26 @@ def test_a_flag_given_twice_with_two_values_is_refused(
     assert info.value.code == 2 and len(err.splitlines()) == 1 and expected_msg in err, err
 
 
+@pytest.mark.parametrize(
+    "argv",
+    [
+        ["promote", "m", "1e3", "--to", "live", "--reason", "x"],
+        ["verdicts", "m", "--version", "1e3"],
+        ["shadow", "m", "--live", "1e3"],
+    ],
+    ids=["promote VERSION", "verdicts --version", "shadow --live"],
+)
+def test_a_version_that_is_no_whole_number_is_named_with_the_rule(
+    argv: list[str], capsys: pytest.CaptureFixture[str], tmp_path: Path
+) -> None:
+    """Before: "invalid int value: '1e3'" here, while show and evaluate stated the rule."""
+    with pytest.raises(SystemExit) as info:
+        main([*argv, "--registry", str(tmp_path / "reg")])
+    err = capsys.readouterr().err
+    assert info.value.code == 2 and len(err.splitlines()) == 1, err
+    assert "bad version '1e3': versions are whole numbers from 1 to 2147483647" in err
+
+
 def test_a_later_location_flag_overrides_an_earlier_one(
     capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path]
 ) -> None:
