@@ -286,6 +286,18 @@ def test_a_version_that_is_no_whole_number_is_named_with_the_rule(
     assert "bad version '1e3': versions are whole numbers from 1 to 2147483647" in err
 
 
+def test_a_registry_file_that_is_no_database_says_what_to_do(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path
+) -> None:
+    """Before: SQLite's words alone ('file is not a database'). An SQLite database starts with the 16
+    bytes 'SQLite format 3\\x00' (sqlite.org/fileformat.html, 1.3); this file does not."""
+    (tmp_path / "reg").mkdir()
+    (tmp_path / "reg" / "registry.sqlite3").write_bytes(b"not a database at all\n" * 300)
+    code, out, err = run(capsys, "models", "--registry", str(tmp_path / "reg"))
+    assert (code, out) == (2, "") and len(err.splitlines()) == 1, err
+    assert "not a registry database or is damaged: restore the registry folder from a backup" in err
+
+
 def test_a_later_location_flag_overrides_an_earlier_one(
     capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path]
 ) -> None:
