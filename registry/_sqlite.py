@@ -35,6 +35,12 @@ def translate(exc: sqlite3.Error, where: str, path: Path | None = None) -> Regis
             return UnavailableError(unwritable)
     if isinstance(exc, sqlite3.OperationalError) and "unable to open" in text:
         return UnavailableError(f"{where}: cannot open the registry database ({text})")
+    if isinstance(exc, sqlite3.DatabaseError) and ("not a database" in text or "malformed" in text):
+        # SQLite's words alone leave the operator guessing what to do about it.
+        return RegistryError(
+            f"{where}: registry database error: {text}; this file is not a registry database or is damaged: "
+            "restore the registry folder from a backup, or point --registry (or TEXTSIEVE_REGISTRY) at another"
+        )
     return RegistryError(f"{where}: registry database error: {text}")
 
 

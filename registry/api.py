@@ -1191,6 +1191,18 @@ def open_registry(
     that holds no registry yet is a NotFoundError instead of becoming a new, empty registry.
     """
     text = os.fspath(location)
+    # Path("") is the current folder: `--registry "$UNSET"` made a registry there (and `" "` a folder
+    # named by a space), where the same value in TEXTSIEVE_REGISTRY is refused.
+    if not text.strip():
+        raise InputError(
+            f"the registry location is empty ({text!r}); give a registry folder or a postgresql:// URL "
+            "to --registry, or leave it out for $TEXTSIEVE_REGISTRY, else ./textsieve-registry"
+        )
+    if blobs is not None and not os.fspath(blobs).strip():
+        raise InputError(
+            f"the blob folder is empty ({os.fspath(blobs)!r}); give a folder to --blobs, or leave it out "
+            "(a folder registry keeps its blobs in REGISTRY/blobs)"
+        )
     if text.startswith(PG_SCHEMES):
         if blobs is None:
             raise InputError(

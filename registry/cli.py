@@ -1,8 +1,8 @@
 """The registry verbs of the ``textsieve`` command: publish, models, versions, show, promote,
 rollback, history, evalset add, gates, review-threshold, verdicts and gc (shadow lives in shadow_cli.py), each with
 its flags (:func:`register`) next to its handler.
-Tables are plain aligned text; errors are raised and the command's main() prints them as one
-line with the error's exit status.
+Tables are plain aligned text, fitted to the terminal and safe to print (``registry/tables.py``);
+errors are raised and the command's main() prints them as one line with the error's exit status.
 
 Building the command line imports this module for every run of ``textsieve`` (and for every
 press of TAB when completing), so the registry itself is imported inside the handlers.
@@ -19,58 +19,20 @@ from typing import TYPE_CHECKING, Any, TextIO
 
 from textsieve.environment import DEFAULT_REGISTRY, registry_location
 from textsieve.errors import GateRefusedError, InputError, IntegrityError, NotFoundError, SavedThenInterrupted
+from textsieve.registry import tables
+from textsieve.registry.tables import NONE, key_values, one_line
 
 if TYPE_CHECKING:
     from textsieve.registry.api import Registry
     from textsieve.registry.model_settings import ModelSettings, SettingValue
     from textsieve.registry.records import Agreement, Event, GateResult
 
-NONE = "-"
 
-
-def _one_line(cell: str) -> str:
-    """A cell on one line and harmless to a terminal: a reason may hold line breaks and tabs (kept
-    as written in the registry), which would split a table's row, each break shown as ↵; a text
-    sent by a client may hold other control characters (an ESC starting a terminal escape
-    sequence that clears the screen or recolours what follows), each shown as a backslash, an x
-    and two hex digits."""
-    if cell.isprintable():
-        return cell
-    if "\n" in cell or "\r" in cell or "\t" in cell:
-        cell = cell.replace("\r\n", "\n").replace("\r", "\n").replace("\n", " ↵ ").replace("\t", " ")
-    import unicodedata
-
-    return "".join(f"\\x{ord(c):02x}" if unicodedata.category(c) == "Cc" else c for c in cell)
-
-
-def table(headers: Sequence[str], rows: Sequence[Sequence[object]], *, right: Sequence[int] = ()) -> str:
-    """Columns padded to their widest cell, two spaces apart; ``right`` lists right-aligned columns."""
-    cells = [[str(h) for h in headers]] + [[NONE if c is None else _one_line(str(c)) for c in row] for row in rows]
-    widths = [max(_columns(row[i]) for row in cells) for i in range(len(headers))]
-    lines = []
-    for row in cells:
-        parts = []
-        for i, (c, w) in enumerate(zip(row, widths, strict=True)):
-            pad = " " * (w - _columns(c))
-            parts.append(pad + c if i in right else c + pad)
-        lines.append("  ".join(parts).rstrip())
-    return "\n".join(lines)
-
-
-def _columns(cell: str) -> int:
-    """The terminal columns ``cell`` takes: wide characters (East Asian Wide and Fullwidth: 汉字,
-    most emoji) take two, combining marks and zero-width format characters none (Unicode UAX #11;
-    common practice in terminals)."""
-    if cell.isascii():
-        return len(cell)
-    import unicodedata
-
-    width = 0
-    for c in cell:
-        if unicodedata.combining(c) or unicodedata.category(c) in ("Mn", "Me", "Cf"):
-            continue
-        width += 2 if unicodedata.east_asian_width(c) in ("W", "F") else 1
-    return width
+def table(
+    headers: Sequence[str], rows: Sequence[Sequence[object]], *, right: Sequence[int] = (), wrap: Sequence[int] = ()
+) -> str:
+    """A table fitted to the terminal (``registry/tables.py``); ``wrap`` lists its free-text columns."""
+    return tables.table(headers, rows, right=right, wrap_columns=wrap)
 
 
 def when(at: str | None) -> str:
@@ -90,7 +52,9 @@ def _out(text: str, stream: TextIO | None = None) -> None:
 
 
 def gate_table(gates: Sequence[GateResult]) -> str:
-    return table(["GATE", "RESULT", "DETAIL"], [[g.name, "pass" if g.passed else "FAIL", g.detail] for g in gates])
+    return table(
+        ["GATE", "RESULT", "DETAIL"], [[g.name, "pass" if g.passed else "FAIL", g.detail] for g in gates], wrap=(2,)
+    )
 
 
 # -- the verbs and their flags -------------------------------------------------------------
@@ -98,9 +62,11 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     """Add the registry verbs, each with its flags and its handler, to the ``textsieve`` command."""
     p = sub.add_parser("publish", help="store a bundle as the next version of a model")
     p.add_argument("bundle", type=Path, help="bundle folder written by 'textsieve export'")
-    p.add_argument("--model", required=True, help="model name: a-z, 0-9, '.', '_', '-' (at most 64)")
-    p.add_argument("--evalset", type=Path, help="also register this labelled file as the model's evaluation set")
-    p.add_argument("--reason", default="", help="why, recorded in the audit trail")
+    p.add_argument("--model", action=_Once, required=True, help="model name: a-z, 0-9, '.', '_', '-' (at most 64)")
+    p.add_argument(
+        "--evalset", action=_Once, type=Path, help="also register this labelled file as the model's evaluation set"
+    )
+    p.add_argument("--reason", action=_Once, default="", help="why, recorded in the audit trail")
     add_location_args(p)
     _actor_arg(p)
     p.set_defaults(func=cli_publish)
@@ -122,14 +88,15 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
 
     p = sub.add_parser("promote", help="move a version to candidate or live, through the gates")
     _model_arg(p)
-    p.add_argument("version", type=int, help="version number")
+    p.add_argument("version", type=version_number, help="version number")
     p.add_argument(
         "--to",
+        action=_Once,
         choices=["candidate", "live"],
         required=True,
         help="candidate: the one version under trial; live: the served one, after the gates",
     )
-    p.add_argument("--reason", required=True, help="why, recorded in the audit trail")
+    p.add_argument("--reason", action=_Once, required=True, help="why, recorded in the audit trail")
     p.add_argument("--force", action="store_true", help="override failed gates (recorded)")
     add_location_args(p)
     _actor_arg(p)
@@ -137,7 +104,7 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
 
     p = sub.add_parser("rollback", help="make the previous live version live again")
     _model_arg(p)
-    p.add_argument("--reason", required=True, help="why, recorded in the audit trail")
+    p.add_argument("--reason", action=_Once, required=True, help="why, recorded in the audit trail")
     add_location_args(p)
     _actor_arg(p)
     p.set_defaults(func=cli_rollback)
@@ -174,7 +141,9 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         help="choose a value, e.g. mcnemar=on, mcnemar_p=0.05, macro_f1_drop=0.01 (repeat for several)",
     )
     p.add_argument("--reset", action="append", default=[], metavar="KEY", help="back to the default (repeatable)")
-    p.add_argument("--reason", default="", help="why, recorded in the audit trail (required with --set/--reset)")
+    p.add_argument(
+        "--reason", action=_Once, default="", help="why, recorded in the audit trail (required with --set/--reset)"
+    )
     add_location_args(p)
     _actor_arg(p)
     p.set_defaults(func=cli_gates)
@@ -187,11 +156,14 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     change = p.add_mutually_exclusive_group()
     change.add_argument(
         "--set",
+        action=_Once,
         metavar="THRESHOLD",
         help="a probability above 0 and at most 1: results whose top probability is below it get needs_review: true",
     )
     change.add_argument("--clear", action="store_true", help="no threshold: replies carry no needs_review field")
-    p.add_argument("--reason", default="", help="why, recorded in the audit trail (required with --set/--clear)")
+    p.add_argument(
+        "--reason", action=_Once, default="", help="why, recorded in the audit trail (required with --set/--clear)"
+    )
     add_location_args(p)
     _actor_arg(p)
     p.set_defaults(func=cli_review_threshold)
@@ -201,7 +173,7 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         help="reviewers' verdicts on a model's predictions: agreement per version, export as labelled data, deletion",
     )
     _model_arg(p)
-    p.add_argument("--version", type=int, help="only this version's verdicts (listing and export)")
+    p.add_argument("--version", type=version_number, help="only this version's verdicts (listing and export)")
     p.add_argument("--last", type=int, default=20, metavar="N", help="list the N most recent verdicts (0: none)")
     p.add_argument(
         "--export",
@@ -211,13 +183,16 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     )
     p.add_argument(
         "--delete-before",
+        action=_Once,
         metavar="DATE",
         help="delete the verdicts recorded before DATE (2026-11-30 = its start, UTC; or an ISO 8601 time)",
     )
     p.add_argument(
         "--delete", type=int, action="append", default=[], metavar="ID", help="delete the verdict with this id (repeat)"
     )
-    p.add_argument("--reason", default="", help="why verdicts are deleted (required with --delete*), audited")
+    p.add_argument(
+        "--reason", action=_Once, default="", help="why verdicts are deleted (required with --delete*), audited"
+    )
     add_location_args(p)
     _actor_arg(p)
     p.set_defaults(func=cli_verdicts)
@@ -245,6 +220,38 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     report_cli.register(sub)
 
 
+class _Once(argparse._StoreAction):
+    """A flag of a verb that changes the registry refuses a second, different value. argparse keeps the
+    last, so a flag appended by a script (``promote m 3 --to candidate … --to live``) silently decided
+    what was changed and what the audit trail says. Other flags keep last-wins, the getopt habit that
+    wrappers (and the tests' default flags) rely on to override a default."""
+
+    def __call__(
+        self,
+        parser: argparse.ArgumentParser,
+        namespace: argparse.Namespace,
+        values: Any,
+        option_string: str | None = None,
+    ) -> None:
+        first = getattr(namespace, self.dest, None)
+        seen: set[str] = getattr(namespace, "_given_once", set())
+        if self.dest in seen and first != values:
+            parser.error(f"argument {'/'.join(self.option_strings)}: given twice with different values; give it once")
+        namespace._given_once = seen | {self.dest}
+        setattr(namespace, self.dest, values)
+
+
+def version_number(text: str) -> int:
+    """argparse's type for a version: '1e3' is refused with the rule (whole numbers from 1 to 2³¹−1),
+    not argparse's 'invalid int value', and 0 or -1 before the registry is opened."""
+    from textsieve.registry.names import validate_version
+
+    try:
+        return validate_version(text)
+    except InputError as exc:
+        raise argparse.ArgumentTypeError(exc.message) from None
+
+
 def add_location_args(p: argparse.ArgumentParser) -> None:
     """``--registry`` and ``--blobs``; unset, they fall back on the environment when the verb runs."""
     p.add_argument(
@@ -264,7 +271,7 @@ def _model_arg(p: argparse.ArgumentParser) -> None:
 
 
 def _actor_arg(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--actor", help="who is acting, recorded in the audit trail (default: the OS user)")
+    p.add_argument("--actor", action=_Once, help="who is acting, recorded in the audit trail (default: the OS user)")
 
 
 # -- verbs --------------------------------------------------------------------------------
@@ -282,7 +289,8 @@ def cli_publish(args: argparse.Namespace) -> int:
         if args.evalset is not None and stopped is None:
             es = reg.evalset(info.model)
             extra = f"; evaluation set {args.evalset.name}: {es.texts if es else 0} texts"
-    print(f"published {info.model!r} version {info.version} (labels: {', '.join(info.labels)}){extra}", file=sys.stderr)
+    labels = one_line(", ".join(info.labels))
+    print(f"published {info.model!r} version {info.version} (labels: {labels}){extra}", file=sys.stderr)
     _out(str(info.version))
     if stopped is not None:
         raise stopped
@@ -328,6 +336,7 @@ def cli_versions(args: argparse.Namespace) -> int:
                 for v in versions
             ],
             right=(0, 2, 3),
+            wrap=(5, 7),
         )
     )
     return 0
@@ -389,8 +398,7 @@ def cli_show(args: argparse.Namespace) -> int:
             else f"{evalset.source}: {evalset.texts} texts, added {when(evalset.added_at)} by {evalset.added_by}",
         ),
     ]
-    width = max(len(k) for k, _ in rows)
-    _out("\n".join(f"{k:<{width}}  {v}" for k, v in rows))
+    _out(key_values(rows))
     _out("\nfiles\n" + table(["FILE", "SHA256"], [[name, digest] for name, digest in sorted(info.files.items())]))
     last_gates = next((e for e in reversed(events) if e.kind in ("promote", "refuse") and e.details.get("gates")), None)
     if last_gates is not None:
@@ -446,6 +454,7 @@ def cli_history(args: argparse.Namespace) -> int:
             ["EVENT", "TIME (UTC)", "KIND", "VERSION", "ACTOR", "REASON", "DETAIL"],
             [[e.id, when(e.at), e.kind, e.version, e.actor, e.reason or NONE, summarise(e)] for e in events],
             right=(0, 3),
+            wrap=(4, 5, 6),
         )
     )
     return 0
@@ -456,7 +465,7 @@ def cli_evalset_add(args: argparse.Namespace) -> int:
         info = reg.add_evalset(
             args.model, args.file, text_field=args.text_field, label_field=args.label_field, actor=args.actor
         )
-    counts = ", ".join(f"{label} {n}" for label, n in info.labels.items())
+    counts = one_line(", ".join(f"{label} {n}" for label, n in info.labels.items()))
     _out(f"evaluation set for {info.model!r}: {info.texts} texts ({counts}), sha256 {info.sha256[:12]}…")
     return 0
 
@@ -464,7 +473,14 @@ def cli_evalset_add(args: argparse.Namespace) -> int:
 def cli_gates(args: argparse.Namespace) -> int:
     from textsieve.registry.model_settings import Group, parse_assignment
 
-    values = dict(parse_assignment(text, Group.GATES) for text in args.set)
+    values: dict[str, Any] = {}
+    typed: dict[str, str] = {}
+    for text in args.set:
+        key, value = parse_assignment(text, Group.GATES)
+        if key in values and values[key] != value:
+            # dict() kept the last, silently: `--set mcnemar=on … --set mcnemar=off` turned it off.
+            raise InputError(f"--set {key} given twice ({typed[key]!r}, then {text!r}); set each key once")
+        values[key], typed[key] = value, text
     with _open(args) as reg:
         if values or args.reset:
             settings, changed = reg.change_settings(
@@ -483,6 +499,9 @@ def cli_review_threshold(args: argparse.Namespace) -> int:
     from textsieve.registry.model_settings import REVIEW_THRESHOLD
 
     key = REVIEW_THRESHOLD.key
+    if args.set is not None and not args.set.strip():
+        # An empty value cleared the threshold: `--set "$THRESHOLD"` with the variable unset.
+        raise InputError(f"--set {args.set!r}: give a probability above 0 and at most 1, or clear it with --clear")
     with _open(args) as reg:
         value = None if args.set is None else REVIEW_THRESHOLD.parse(args.set)
         if value is not None:
@@ -497,7 +516,7 @@ def cli_review_threshold(args: argparse.Namespace) -> int:
     else:
         text = f"{args.model}: review threshold {v.value:g}; results whose top probability is below it need review"
     if not v.is_default:
-        text += f" (set {when(v.set_at)} by {v.set_by}: {v.reason})"
+        text += f" (set {when(v.set_at)} by {v.set_by}: {one_line(v.reason or NONE)})"
     _out(text)
     if changed == []:
         _out("nothing changed: it was already so")
@@ -522,6 +541,7 @@ def settings_table(values: Sequence[SettingValue]) -> str:
             ]
             for v in values
         ],
+        wrap=(5, 6, 7),
     )
 
 
@@ -583,6 +603,7 @@ def cli_verdicts(args: argparse.Namespace) -> int:
                     for v in shown
                 ],
                 right=(0, 2, 5),
+                wrap=(3, 4, 6, 7),
             )
         )
         _out(f"({len(shown)} of {len(verdicts)} shown; --last N for more)\n")
@@ -728,4 +749,5 @@ __all__ = [
     "settings_table",
     "summarise",
     "table",
+    "version_number",
 ]

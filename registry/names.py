@@ -88,8 +88,15 @@ def validate_reason(reason: str, *, required: bool) -> str:
         raise InputError("a reason is required: say why, e.g. 'macro-F1 +2 points on the March set'")
     if len(reason) > MAX_REASON:
         raise InputError(f"reason is {len(reason)} characters; at most {MAX_REASON} are kept")
-    if not _printable(reason.replace("\n", " ").replace("\t", " ")):
-        raise InputError("reason contains control characters; use plain text")
+    bad = next((c for c in reason if c not in "\n\t" and unicodedata.category(c) in ("Cc", "Cs")), None)
+    if bad is not None:
+        at = reason.index(bad) + 1
+        if unicodedata.category(bad) == "Cs":  # what Python makes of command-line bytes that are not UTF-8
+            raise InputError(f"reason holds bytes that are not UTF-8 (at character {at}); write it as UTF-8 text")
+        raise InputError(
+            f"reason holds a control character (U+{ord(bad):04X}, character {at}); write plain text: "
+            "line breaks and tabs are kept, other control characters (escape sequences) are not"
+        )
     return reason
 
 

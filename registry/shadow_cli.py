@@ -9,7 +9,8 @@ import argparse
 from typing import TYPE_CHECKING
 
 from textsieve.errors import InputError
-from textsieve.registry.cli import NONE, _open, _out, add_location_args, table, when
+from textsieve.registry.cli import _open, _out, add_location_args, table, version_number, when
+from textsieve.registry.tables import NONE, key_values
 
 if TYPE_CHECKING:
     from textsieve.registry.records import VersionInfo
@@ -22,8 +23,10 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         help="agreement of the candidate with the live version on live traffic scored in the shadow",
     )
     p.add_argument("model", help="model name")
-    p.add_argument("--live", type=int, help="live version of the pair (default: the current live version)")
-    p.add_argument("--candidate", type=int, help="candidate version of the pair (default: the current candidate)")
+    p.add_argument("--live", type=version_number, help="live version of the pair (default: the current live version)")
+    p.add_argument(
+        "--candidate", type=version_number, help="candidate version of the pair (default: the current candidate)"
+    )
     p.add_argument("--all", action="store_true", help="a table of every pair with counts instead")
     p.add_argument(
         "--texts",
@@ -88,7 +91,7 @@ def render(c: ShadowCounts, texts: list[StoredText]) -> str:
         rows.append(["agreement", f"{c.agreed / c.texts:.2%}  (95 % Wilson interval {lo:.2%} – {hi:.2%})"])
         rows.append(["mean change, P(live label)", f"{c.mean_delta:+.4f}  (candidate minus live)"])
     rows.append(["dropped", f"{c.dropped:,} sampled texts not scored (shadow queue full)"])
-    lines.append(table(["", ""], rows).split("\n", 1)[1])
+    lines.append(key_values([(str(k), v) for k, v in rows]))
     if c.transitions:
         lines += ["", "label transitions (rows: live label, columns: candidate label)", transition_table(c)]
     if texts:
@@ -108,6 +111,7 @@ def render(c: ShadowCounts, texts: list[StoredText]) -> str:
                     for t in texts
                 ],
                 right=(2, 4),
+                wrap=(1, 3, 5),
             )
         )
     lines += [
@@ -123,7 +127,7 @@ def transition_table(c: ShadowCounts) -> str:
     cand_labels = sorted({t.candidate_label for t in c.transitions})
     cells = {(t.live_label, t.candidate_label): t.texts for t in c.transitions}
     rows = [[a, *[f"{cells.get((a, b), 0):,}" for b in cand_labels]] for a in live_labels]
-    return table(["LIVE \\ CANDIDATE", *cand_labels], rows, right=tuple(range(1, len(cand_labels) + 1)))
+    return table(["LIVE \\ CANDIDATE", *cand_labels], rows, right=tuple(range(1, len(cand_labels) + 1)), wrap=(0,))
 
 
 def pairs_table(pairs: list[ShadowCounts]) -> str:

@@ -266,6 +266,8 @@ def export_jsonl(verdicts: Sequence[VerdictInfo], path: Path) -> int:
     path = Path(path)
     if path.suffix.lower() not in JSON_SUFFIXES or path.suffix.lower() == ".json":
         raise InputError(f"{path}: export writes JSONL; name the file .jsonl or .ndjson")
+    if path.parent.exists() and not path.parent.is_dir():
+        raise InputError(f"{path.parent}: not a folder; export to a file in a folder")
     if not path.parent.is_dir():
         raise InputError(f"{path.parent}: no such folder; create it or export elsewhere")
     lines = []

@@ -13,6 +13,7 @@ from typing import TYPE_CHECKING, Any, TextIO
 
 from textsieve.environment import DEFAULT_URL, check_url, service_url
 from textsieve.errors import InputError, UnavailableError
+from textsieve.registry.tables import one_line
 
 if TYPE_CHECKING:
     import httpx
@@ -156,41 +157,49 @@ def _problem_detail(r: httpx.Response) -> str:
 
 
 def highlight(text: str, spans: list[dict[str, Any]], *, ansi: bool) -> str:
-    """The text with its spans marked: bold on a terminal, [brackets]ⁿ otherwise."""
+    """The text with its spans marked: bold on a terminal, [brackets]ⁿ otherwise; on one line, its
+    control characters shown as escapes (``registry/tables.py``), so only our own marks reach the terminal."""
     out: list[str] = []
     at = 0
     ranked = sorted(enumerate(spans, 1), key=lambda item: item[1]["start"])
     for rank, s in ranked:
         if s["start"] < at:
             continue
-        out.append(text[at : s["start"]])
-        piece = text[s["start"] : s["end"]]
+        out.append(one_line(text[at : s["start"]]))
+        piece = one_line(text[s["start"] : s["end"]])
         out.append(f"{BOLD}{piece}{RESET}" if ansi else f"[{piece}]{rank}")
         at = s["end"]
-    out.append(text[at:])
+    out.append(one_line(text[at:]))
     return "".join(out)
 
 
 def render(texts: list[str], reply: dict[str, Any], *, ansi: bool) -> str:
+    from textsieve.registry.tables import table, terminal_width
+
     lines: list[str] = []
     for i, (text, res) in enumerate(zip(texts, reply["results"], strict=True), 1):
         label = res["label"]
         probs = sorted(res["probabilities"].items(), key=lambda kv: -kv[1])
-        head = f"{BOLD}{label}{RESET}" if ansi else label
+        head = f"{BOLD}{one_line(label)}{RESET}" if ansi else one_line(label)
         lines.append(
-            f"[{i}] {head}  {100 * res['probabilities'][label]:.1f} %   ({reply['model']} v{reply['version']})"
+            f"[{i}] {head}  {100 * res['probabilities'][label]:.1f} %   "
+            f"({one_line(str(reply['model']))} v{reply['version']})"
         )
         lines.append(f"    {highlight(text, res['spans'], ansi=ansi)}")
-        lines.append("    probabilities  " + "  ".join(f"{k} {v:.4f}" for k, v in probs))
+        lines.append("    probabilities  " + "  ".join(f"{one_line(k)} {v:.4f}" for k, v in probs))
         if res["spans"]:
-            rows = [("#", "weight", "tokens", "chars", "span")]
-            rows += [
-                (str(n), f"{s['weight']:.3f}", str(s["width"]), f"{s['start']}-{s['end']}", s["text"])
+            rows = [
+                (n, f"{s['weight']:.3f}", s["width"], f"{s['start']}-{s['end']}", s["text"])
                 for n, s in enumerate(res["spans"], 1)
             ]
-            widths = [max(len(r[c]) for r in rows) for c in range(4)]
-            for r in rows:
-                lines.append("    " + "  ".join(r[c].ljust(widths[c]) for c in range(4)) + "  " + r[4])
+            width = terminal_width()
+            spans = table(
+                ["#", "weight", "tokens", "chars", "span"],
+                rows,
+                wrap_columns=(4,),
+                width=None if width is None else width - 4,
+            )
+            lines += ["    " + line for line in spans.splitlines()]
         extra = " · truncated" if res["truncated"] else ""
         lines.append(f"    tokens {res['tokens']} · unknown {res['unknown']}{extra}")
     return "\n".join(lines)
@@ -245,7 +254,7 @@ def render_drift(reply: dict[str, Any]) -> str:
             f"of {v['window_texts']:,}"
         )
         if base is None:
-            lines.append(f"  {v['detail']}")
+            lines.append(f"  {one_line(str(v['detail']))}")
             lines.append("")
             continue
 
@@ -270,7 +279,7 @@ def render_drift(reply: dict[str, Any]) -> str:
         for r in rows:
             cells = [r[0].ljust(widths[0]), r[1].rjust(widths[1]), r[2].rjust(widths[2]), r[3]]
             lines.append("  " + "  ".join(cells))
-        lines.append(f"  {v['detail']}")
+        lines.append(f"  {one_line(str(v['detail']))}")
         lines.append("")
     lines.append(
         "Bands: PSI < 0.1 stable, 0.1-0.25 watch, > 0.25 act (common practice), given once the window is large "
@@ -313,7 +322,7 @@ def cli_health(args: argparse.Namespace) -> int:
     ours = True
     try:
         body = r.json()
-        reason = str(body.get("reason", "")).replace("\n", " ")
+        reason = one_line(str(body.get("reason", "")))
         ours = isinstance(body.get("ready"), bool)
     except (ValueError, AttributeError):
         ours = False

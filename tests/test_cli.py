@@ -137,6 +137,44 @@ def test_a_bad_environment_value_is_exit_2_and_one_line(
     assert out.stdout == "" and list(tmp_path.iterdir()) == [], "nothing done before the check"
 
 
+def test_an_error_quoting_control_characters_is_still_one_harmless_line(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path
+) -> None:
+    """A path holding ESC and a line break, quoted in the error line, was printed raw: the line split in
+    two and the terminal obeyed the escape (ECMA-48 CSI ``ESC [ 31 m``: red from there on)."""
+    code = main(["publish", str(tmp_path / "x\x1b[31m\ny"), "--model", "m", "--registry", str(tmp_path / "reg")])
+    err = capsys.readouterr().err
+    assert code == 2 and err.count("\n") == 1 and "\x1b" not in err, err
+    assert "x\\x1b[31m ↵ y: not a folder" in err
+
+
+@pytest.mark.parametrize("unbuffered", ["1", ""], ids=["unbuffered", "buffered"])
+@pytest.mark.parametrize(
+    "argv", [["completion", "bash"], ["models", "--registry", "reg"]], ids=["completion", "models"]
+)
+def test_a_reader_that_went_away_ends_it_quietly(argv: list[str], unbuffered: str, tmp_path: Path) -> None:
+    """``textsieve models | head -0``: the pipe's reader gone before the first write. Before: a
+    BrokenPipeError traceback (its handler sat after ``except Exception``, which took it) or, with
+    the output buffered, 'Exception ignored … BrokenPipeError' from the flush at exit, status 120."""
+    from textsieve.registry import open_registry
+
+    open_registry(tmp_path / "reg").close()
+    env = child_env()
+    env.pop("PYTHONUNBUFFERED", None)
+    if unbuffered:
+        env["PYTHONUNBUFFERED"] = unbuffered
+    read, write = os.pipe()
+    os.close(read)  # writing now fails with EPIPE (pipe(7)); Python ignores SIGPIPE, so it is an error
+    try:
+        done = subprocess.run(
+            [*CLI, *argv], stdout=write, stderr=subprocess.PIPE, text=True, cwd=tmp_path, env=env, timeout=120
+        )
+    finally:
+        os.close(write)
+    # 141 = 128 + SIGPIPE (13), what a shell reports for a writer its pipe ended (common practice).
+    assert (done.returncode, done.stderr) == (141, "")
+
+
 def test_a_variable_a_verb_does_not_use_cannot_stop_it(tmp_path: Path) -> None:
     from textsieve.registry import open_registry
 

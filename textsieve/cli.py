@@ -21,6 +21,7 @@ from textsieve import __version__, demo
 from textsieve.errors import SavedThenInterrupted, TextsieveError
 from textsieve.exporter import cli as exporter_cli
 from textsieve.registry import cli as registry_cli
+from textsieve.registry.tables import one_line
 from textsieve.scoring import cli as scoring_cli
 from textsieve.service import cli as service_cli
 from textsieve.service import client as service_client
@@ -164,6 +165,13 @@ def _interrupted_within(exc: BaseException) -> bool:
     return False
 
 
+def _reader_gone() -> None:
+    """stdout's reader has gone: what is still buffered goes nowhere, so the flush at exit cannot fail
+    too. 141 is the status a shell gives a process that SIGPIPE ended (128 + 13; common practice)."""
+    devnull = os.open(os.devnull, os.O_WRONLY)
+    os.dup2(devnull, sys.stdout.fileno())
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     if "_ARGCOMPLETE" in os.environ:
@@ -173,9 +181,22 @@ def main(argv: Sequence[str] | None = None) -> int:
 
         argcomplete.autocomplete(parser)
     try:
-        return run(parser.parse_args(argv))
+        code = run(parser.parse_args(argv))
+        # Output to a pipe is buffered: a reader gone (`| head`) shows here, where it is handled below,
+        # not in the flush at exit ("Exception ignored ... BrokenPipeError", exit status 120).
+        sys.stdout.flush()
+        return code
+    except SystemExit:  # --help and --version print, then argparse exits: the same flush, the same quiet end
+        try:
+            sys.stdout.flush()
+        except BrokenPipeError:
+            _reader_gone()
+            raise SystemExit(141) from None
+        raise
     except TextsieveError as exc:
-        print(f"textsieve: error: {exc.message}", file=sys.stderr)
+        # One line, whatever the message quotes: a path, a label or another server's problem detail may
+        # hold line breaks or terminal escapes.
+        print(f"textsieve: error: {one_line(exc.message)}", file=sys.stderr)
         return exc.exit_code
     except SavedThenInterrupted as exc:
         print(f"textsieve: interrupted after the change was saved: {exc.saved}", file=sys.stderr)
@@ -183,17 +204,17 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("textsieve: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # The reader went away (`textsieve history m | head`): not an error worth a traceback. Before
+        # `except Exception`, which would otherwise take it (BrokenPipeError is an OSError).
+        _reader_gone()
+        return 141
     except Exception as exc:
         # Ctrl-C inside a native module's import (onnxruntime's) surfaces as its ImportError.
         if _interrupted_within(exc):
             print("textsieve: interrupted", file=sys.stderr)
             return 130
         raise
-    except BrokenPipeError:
-        # The reader went away (`textsieve models | head`): not an error worth a traceback.
-        devnull = os.open(os.devnull, os.O_WRONLY)
-        os.dup2(devnull, sys.stdout.fileno())
-        return 141
 
 
 if __name__ == "__main__":

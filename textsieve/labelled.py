@@ -9,6 +9,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+import stat
 import unicodedata
 from collections import Counter
 from collections.abc import Iterator, Sequence
@@ -77,6 +78,10 @@ def check_labels(
 
 def _read_utf8(path: Path) -> str:
     try:
+        mode = path.stat().st_mode
+        if stat.S_ISCHR(mode) or stat.S_ISBLK(mode) or stat.S_ISSOCK(mode):
+            # /dev/zero under a .jsonl name read until memory ran out (a MemoryError traceback).
+            raise InputError(f"{path}: is a device or socket, not a file; expected a labelled data file ({_ALLOWED})")
         data = path.read_bytes()
     except FileNotFoundError:
         raise InputError(f"{path}: no such file; expected a labelled data file ({_ALLOWED})") from None

@@ -152,6 +152,7 @@ def summary(report: dict[str, Any]) -> str:
             ["LABEL", "PRECISION", "RECALL", "F1", "SUPPORT"],
             [[k, f(v["precision"]), f(v["recall"]), f(v["f1"]), v["support"]] for k, v in report["per_class"].items()],
             right=(1, 2, 3, 4),
+            wrap=(0,),
         ),
         "",
         table(

@@ -41,12 +41,15 @@ def clean_env() -> Iterator[None]:
     """Settings read TEXTSIEVE_* variables; a developer's own must not leak into tests.
 
     Session scope, so they are gone before any fixture builds settings, module-scoped servers included.
-    TEXTSIEVE_TEST_* name the test services (.test-env), not settings, and are kept.
+    TEXTSIEVE_TEST_* name the test services (.test-env), not settings, and are kept. COLUMNS goes too:
+    the CLI's tables fit it (registry/tables.py), and a developer's terminal must not rewrap the
+    tables tests read; the tests that fit a width set it themselves.
     """
     with pytest.MonkeyPatch.context() as mp:
         for key in list(os.environ):
             if key.startswith("TEXTSIEVE_") and not key.startswith("TEXTSIEVE_TEST_"):
                 mp.delenv(key)
+        mp.delenv("COLUMNS", raising=False)
         yield
 
 

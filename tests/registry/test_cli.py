@@ -171,6 +171,21 @@ def test_a_refused_gate_exits_1_naming_the_gate_and_figures(
         pytest.param(["gc", "--older-than", "nan"], "--older-than nan: give a number of seconds", id="gc nan"),
         pytest.param(["gc", "--older-than", "inf"], "--older-than inf: give a number of seconds", id="gc inf"),
         pytest.param(["gc", "--older-than", "-1"], "--older-than -1: give a number of seconds", id="gc negative"),
+        pytest.param(
+            ["gates", "m", "--set", "mcnemar=on", "--set", "mcnemar=off", "--reason", "x"],
+            "--set mcnemar given twice ('mcnemar=on', then 'mcnemar=off'); set each key once",
+            id="gates --set one key twice",
+        ),
+        pytest.param(
+            ["review-threshold", "m", "--set", "", "--reason", "x"],
+            "--set '': give a probability above 0 and at most 1, or clear it with --clear",
+            id="review-threshold --set empty (cleared the threshold)",
+        ),
+        pytest.param(
+            ["promote", "m", "1", "--to", "candidate", "--reason", "ok\x1b[2J"],
+            "reason holds a control character (U+001B, character 3)",
+            id="reason with an ECMA-48 escape",
+        ),
     ],
 )
 def test_bad_input_exits_2_with_one_line(
@@ -186,6 +201,112 @@ def test_bad_input_exits_2_with_one_line(
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1 and err.startswith("textsieve: error: "), err
     assert expected_msg in err, err
+
+
+@pytest.mark.parametrize(
+    ("flags", "expected_msg"),
+    [
+        (["--registry", ""], "the registry location is empty (''); give a registry folder or a postgresql:// URL"),
+        (["--registry", " "], "the registry location is empty (' ')"),
+        (["--registry", "reg", "--blobs", ""], "the blob folder is empty (''); give a folder to --blobs"),
+    ],
+    ids=["--registry ''", "--registry ' '", "--blobs ''"],
+)
+def test_an_empty_location_flag_is_refused_not_taken_for_this_folder(
+    flags: list[str],
+    expected_msg: str,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
+) -> None:
+    """``--registry "$UNSET"`` made a registry in the current folder (Path('') is '.'), ``' '`` a folder named
+    by a space, and ``--blobs ''`` put the blobs in the current folder; the same values in
+    TEXTSIEVE_REGISTRY and TEXTSIEVE_BLOBS were refused."""
+    monkeypatch.chdir(tmp_path)
+    code, out, err = run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *flags)
+    assert (code, out) == (2, "") and len(err.splitlines()) == 1 and expected_msg in err, err
+    assert list(tmp_path.iterdir()) == [], "nothing written here"
+
+
+def test_a_device_given_as_a_labelled_file_is_refused_before_it_is_read(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """/dev/zero under a .jsonl name was read until memory ran out: a MemoryError traceback."""
+    r = ["--registry", str(tmp_path / "reg")]
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)
+    (tmp_path / "zero.jsonl").symlink_to("/dev/zero")
+    code, out, err = run(capsys, "evalset", "add", "m", str(tmp_path / "zero.jsonl"), *r)
+    assert (code, out) == (2, "") and len(err.splitlines()) == 1
+    assert "zero.jsonl: is a device or socket, not a file; expected a labelled data file" in err
+
+
+@pytest.mark.parametrize(
+    ("argv", "expected_msg"),
+    [
+        # argparse keeps the last of a repeated flag: a flag appended by a script silently promoted to live.
+        pytest.param(
+            ["promote", "m", "1", "--to", "candidate", "--reason", "x", "--to", "live"],
+            "argument --to: given twice with different values; give it once",
+            id="--to twice",
+        ),
+        pytest.param(
+            ["review-threshold", "m", "--set", "0.5", "--reason", "x", "--set", "0.9"],
+            "argument --set: given twice with different values; give it once",
+            id="review-threshold --set twice",
+        ),
+    ],
+)
+def test_a_flag_given_twice_with_two_values_is_refused(
+    argv: list[str], expected_msg: str, capsys: pytest.CaptureFixture[str], tmp_path: Path
+) -> None:
+    with pytest.raises(SystemExit) as info:
+        main([*argv, "--registry", str(tmp_path / "reg")])
+    err = capsys.readouterr().err
+    assert info.value.code == 2 and len(err.splitlines()) == 1 and expected_msg in err, err
+
+
+@pytest.mark.parametrize(
+    "argv",
+    [
+        ["promote", "m", "1e3", "--to", "live", "--reason", "x"],
+        ["verdicts", "m", "--version", "1e3"],
+        ["shadow", "m", "--live", "1e3"],
+    ],
+    ids=["promote VERSION", "verdicts --version", "shadow --live"],
+)
+def test_a_version_that_is_no_whole_number_is_named_with_the_rule(
+    argv: list[str], capsys: pytest.CaptureFixture[str], tmp_path: Path
+) -> None:
+    """Before: "invalid int value: '1e3'" here, while show and evaluate stated the rule."""
+    with pytest.raises(SystemExit) as info:
+        main([*argv, "--registry", str(tmp_path / "reg")])
+    err = capsys.readouterr().err
+    assert info.value.code == 2 and len(err.splitlines()) == 1, err
+    assert "bad version '1e3': versions are whole numbers from 1 to 2147483647" in err
+
+
+def test_a_registry_file_that_is_no_database_says_what_to_do(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path
+) -> None:
+    """Before: SQLite's words alone ('file is not a database'). An SQLite database starts with the 16
+    bytes 'SQLite format 3\\x00' (sqlite.org/fileformat.html, 1.3); this file does not."""
+    (tmp_path / "reg").mkdir()
+    (tmp_path / "reg" / "registry.sqlite3").write_bytes(b"not a database at all\n" * 300)
+    code, out, err = run(capsys, "models", "--registry", str(tmp_path / "reg"))
+    assert (code, out) == (2, "") and len(err.splitlines()) == 1, err
+    assert "not a registry database or is damaged: restore the registry folder from a backup" in err
+
+
+def test_a_later_location_flag_overrides_an_earlier_one(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """A wrapper's default --registry, overridden by the caller's: flags that name no change keep last-wins."""
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", "--registry", str(tmp_path / "reg"))
+    code, out, _ = run(
+        capsys, "versions", "m", "--registry", str(tmp_path / "nowhere"), "--registry", str(tmp_path / "reg")
+    )
+    assert code == 0 and out.splitlines()[1].split()[:2] == ["1", "registered"]
 
 
 def test_a_state_outside_the_choices_is_an_argument_error(capsys: pytest.CaptureFixture[str]) -> None:

@@ -107,7 +107,14 @@ def test_reasons() -> None:
     ("argument", "required", "expected_msg"),
     [
         pytest.param("   ", True, "a reason is required: say why", id="blank, required"),
-        pytest.param("bad\x1b[31m", False, "control characters", id="terminal escape code"),
+        pytest.param(
+            "bad\x1b[31m",
+            False,
+            "reason holds a control character (U+001B, character 4); write plain text: line breaks and tabs are kept",
+            id="terminal escape code (ECMA-48 ESC)",
+        ),
+        pytest.param("ok\rthen", False, "control character (U+000D, character 3)", id="carriage return"),
+        pytest.param("ok\udcffthen", False, "reason holds bytes that are not UTF-8 (at character 3)", id="not UTF-8"),
         pytest.param("x" * 5000, False, "reason is 5000 characters; at most 2000 are kept", id="5000 characters"),
     ],
 )

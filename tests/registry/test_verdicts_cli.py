@@ -128,6 +128,8 @@ def test_deletion_by_id_and_date_is_audited_and_needs_a_reason(
             id="before-year-1-in-utc",
         ),
         pytest.param(["--export", "out.csv"], "name the file .jsonl", id="export-suffix"),
+        # Before: "/dev/null: no such folder; create it" (it exists; POSIX has /dev/null everywhere).
+        pytest.param(["--export", "/dev/null/x.jsonl"], "/dev/null: not a folder", id="export-under-a-file"),
         pytest.param(["--export", "x.jsonl", "--delete", "1", "--reason", "x"], "separate runs", id="both"),
         pytest.param(["--last", "-1"], "--last -1", id="negative-last"),
         pytest.param(["--version", "9"], "has no version 9", id="unknown-version"),

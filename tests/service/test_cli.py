@@ -7,6 +7,7 @@ import re
 import signal
 import subprocess
 import sys
+import unicodedata
 from pathlib import Path
 
 import httpx
@@ -101,6 +102,39 @@ def test_render_marks_spans_by_code_point_offsets() -> None:
     }
     table = render([text], reply, ansi=False)
     assert "billing  90.0 %   (m v3)" in table and "1.500" in table and "truncated" in table
+
+
+def test_render_shows_control_characters_from_the_text_and_the_reply_as_escapes(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """The text as typed and the labels and span texts another server sends were printed raw: a line
+    break split the text's line and an ESC (ECMA-48 CSI ``ESC [ 2 J``) cleared the screen."""
+    monkeypatch.setenv("COLUMNS", "60")
+    text = "line one\nrefund \x1b[2Jplease " + "z" * 200
+    start = text.index("refund")
+    reply = {
+        "model": "m\x1b]0;title\x07",
+        "version": 1,
+        "results": [
+            {
+                "label": "bill\x1b[31ming",
+                "probabilities": {"bill\x1b[31ming": 0.9, "repair": 0.1},
+                "spans": [
+                    {"start": start, "end": len(text), "text": text[start:], "label": "x", "weight": 1.0, "width": 2}
+                ],
+                "tokens": 4,
+                "truncated": False,
+                "unknown": 0,
+            }
+        ],
+    }
+    shown = render([text], reply, ansi=False)
+    assert not any(unicodedata.category(c) == "Cc" for c in shown.replace("\n", ""))  # ECMA-48 C0/C1
+    assert "[1] bill\\x1b[31ming  90.0 %   (m\\x1b]0;title\\x07 v1)" in shown
+    assert "line one ↵ [refund \\x1b[2Jplease" in shown
+    span_lines = shown.splitlines()[3:-1]  # the spans table, wrapped to the 60 columns COLUMNS gives
+    assert span_lines[0].split() == ["#", "weight", "tokens", "chars", "span"]
+    assert all(len(line) <= 60 for line in span_lines), span_lines
 
 
 def test_serve_verb_runs_uvicorn_with_json_logs(shared_registry: Path) -> None:

@@ -1,0 +1,219 @@
+"""The CLI's plain-text tables: cells made safe for a terminal, measured in terminal columns, and free-text
+columns wrapped to the terminal's width.
+
+Every verb that prints a table goes through :func:`table` (the registry verbs, ``shadow``, ``evaluate``,
+``predict``), and the command's error line through :func:`one_line`, so what a table can hold is decided
+here once:
+
+- **Safe cells.** Reasons, labels, reviewer names and texts sent by clients are stored as written. A line
+  break or tab would split a row; a C0 or C1 control character (ECMA-48: ESC starting a sequence that
+  clears the screen or recolours what follows, BEL, CSI) would act on the operator's terminal; a bidi
+  override (Unicode UAX #9) would reorder the rest of the line. Line breaks are shown as ↵, a tab as a
+  space, every other such character as a visible escape (``\\x1b``, ``\\u202e``).
+- **Widths** are terminal columns, not code points: East Asian Wide and Fullwidth characters take two,
+  combining marks and zero-width format characters none (Unicode UAX #11), so CJK text stays aligned.
+- **Wrapping.** A table wider than the terminal wraps the columns its verb names as free text, at spaces
+  where it can, within words where it must; numbers, states and times are never split. Nothing is cut:
+  the whole text stays in the table.
+- **Where the width comes from.** ``COLUMNS`` when set (``shutil.get_terminal_size`` honours it), else
+  the terminal's own width when the output is a terminal. Output that is not a terminal (a pipe, a
+  file) with no ``COLUMNS`` is not wrapped: each row stays one line holding its whole text, so
+  ``grep``, ``sort`` and ``awk`` see one record a line, and a pager can scroll sideways.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import sys
+import unicodedata
+from collections.abc import Sequence
+from typing import Literal, TextIO
+
+NONE = "-"
+# A wrapped column is never made narrower than this (or its header): narrower, a reason reads as a
+# column of syllables, and a line slightly wider than the terminal is the lesser harm.
+MIN_WRAPPED = 12
+# ... unless the terminal is too narrow for that; never below the widest escape (``\u202e``).
+MIN_NARROW = 6
+# A terminal that reports no size (0 columns: some containers' pseudo-terminals) is taken as the
+# classic 80 (common practice).
+DEFAULT_COLUMNS = 80
+
+# Bidirectional formatting characters (Unicode UAX #9, section 2): they reorder what follows them on the line.
+_BIDI = frozenset("\u061c\u200e\u200f\u202a\u202b\u202c\u202d\u202e\u2066\u2067\u2068\u2069")
+_BREAKS = {"\r\n", "\n", "\r", "\x0b", "\x0c", "\x85", "\u2028", "\u2029"}
+
+
+def _escape(c: str) -> str:
+    return f"\\x{ord(c):02x}" if ord(c) < 0x100 else f"\\u{ord(c):04x}"
+
+
+def _unsafe(c: str) -> bool:
+    """A character a terminal acts on instead of showing: C0 and C1 controls (ECMA-48, category Cc), line
+    and paragraph separators, bidi formatting characters, and lone surrogates (bytes that were not UTF-8),
+    which cannot even be written to a UTF-8 stream."""
+    return unicodedata.category(c) in ("Cc", "Cs", "Zl", "Zp") or c in _BIDI
+
+
+def _units(text: str) -> list[tuple[str, int]]:
+    """``text`` as the pieces a terminal shows, each with the columns it takes: a character with the
+    combining marks after it, a line break as ↵, any other unsafe character as its escape."""
+    units: list[tuple[str, int]] = []
+    i = 0
+    while i < len(text):
+        c = text[i]
+        pair = text[i : i + 2]
+        if pair == "\r\n" or c in _BREAKS:
+            units += [(" ", 1), ("↵", 1), (" ", 1)]
+            i += 2 if pair == "\r\n" else 1
+            continue
+        i += 1
+        if c == "\t":
+            units.append((" ", 1))
+        elif _unsafe(c):
+            shown = _escape(c)
+            units.append((shown, len(shown)))
+        elif units and _zero_width(c) and units[-1][0] not in (" ", "↵"):
+            units[-1] = (units[-1][0] + c, units[-1][1])
+        else:
+            units.append((c, _char_columns(c)))
+    return units
+
+
+def _zero_width(c: str) -> bool:
+    return unicodedata.combining(c) != 0 or unicodedata.category(c) in ("Mn", "Me", "Cf")
+
+
+def _char_columns(c: str) -> int:
+    if _zero_width(c):
+        return 0
+    return 2 if unicodedata.east_asian_width(c) in ("W", "F") else 1
+
+
+def one_line(text: str) -> str:
+    """``text`` on one line and harmless to a terminal (line breaks as ↵, tabs as spaces, other control,
+    separator and bidi characters as escapes)."""
+    if text.isprintable():  # no Cc, Cf, Cs, Zl, Zp: nothing to replace
+        return text
+    return "".join(u for u, _ in _units(text))
+
+
+def columns(text: str) -> int:
+    """The terminal columns ``text`` (already made safe by :func:`one_line`) takes (Unicode UAX #11)."""
+    if text.isascii():
+        return len(text)
+    return sum(_char_columns(c) for c in text)
+
+
+def terminal_width(stream: TextIO | None = None) -> int | None:
+    """The width to fit tables to, or None for no limit: ``COLUMNS`` when it holds a positive number,
+    else the width of ``stream`` (stdout) when it is a terminal; output to a pipe or file is not fitted."""
+    stream = stream or sys.stdout
+    env = os.environ.get("COLUMNS", "").strip()
+    if env.isdigit() and int(env) > 0:
+        return shutil.get_terminal_size().columns  # reads COLUMNS itself
+    try:
+        if not stream.isatty():
+            return None
+        width = os.get_terminal_size(stream.fileno()).columns
+    except (AttributeError, ValueError, OSError):  # a stream with no file behind it (captured output)
+        return None
+    return width or DEFAULT_COLUMNS
+
+
+def wrap(text: str, width: int) -> list[str]:
+    """``text`` made safe and broken into lines of at most ``width`` columns: at spaces, and inside a
+    word only when the word alone is wider (an escape such as ``\\x1b`` is never split)."""
+    lines: list[list[tuple[str, int]]] = []
+    line: list[tuple[str, int]] = []
+    used = 0
+    for unit in _units(text):
+        piece, w = unit
+        if piece == " " and not line:
+            continue  # a wrapped line does not start with the space it broke at
+        if used + w > width and line:
+            if piece == " ":
+                lines.append(line)
+                line, used = [], 0
+                continue
+            space = max((i for i, (p, _) in enumerate(line) if p == " "), default=-1)
+            if space >= 0:
+                lines.append(line[:space])
+                line = line[space + 1 :]
+            else:
+                lines.append(line)
+                line = []
+            used = sum(uw for _, uw in line)
+            if used + w > width and line:
+                lines.append(line)
+                line, used = [], 0
+        line.append(unit)
+        used += w
+    if line or not lines:
+        lines.append(line)
+    return ["".join(p for p, _ in ln).rstrip(" ") for ln in lines]
+
+
+Width = int | None | Literal["terminal"]
+
+
+def table(
+    headers: Sequence[str],
+    rows: Sequence[Sequence[object]],
+    *,
+    right: Sequence[int] = (),
+    wrap_columns: Sequence[int] = (),
+    width: Width = "terminal",
+) -> str:
+    """Columns padded to their widest cell, two spaces apart; ``right`` lists right-aligned columns.
+
+    ``wrap_columns`` lists the free-text columns: when the table is wider than ``width`` (the terminal's,
+    see :func:`terminal_width`; None: no limit), they are narrowed, the widest first, and their cells
+    wrapped onto more lines of the same row."""
+    raw = [[str(h) for h in headers]] + [[NONE if c is None else str(c) for c in row] for row in rows]
+    natural = [max(columns(one_line(row[i])) for row in raw) for i in range(len(headers))]
+    limit = terminal_width() if width == "terminal" else width
+    widths = _fit(natural, [columns(one_line(h)) for h in raw[0]], wrap_columns, limit)
+    lines = []
+    for row in raw:
+        cells = [
+            wrap(c, widths[i]) if i in wrap_columns and widths[i] < natural[i] else [one_line(c)]
+            for i, c in enumerate(row)
+        ]
+        for k in range(max(len(c) for c in cells)):
+            parts = []
+            for i, (cell, w) in enumerate(zip(cells, widths, strict=True)):
+                text = cell[k] if k < len(cell) else ""
+                pad = " " * (w - columns(text))
+                parts.append(pad + text if i in right else text + pad)
+            lines.append("  ".join(parts).rstrip())
+    return "\n".join(lines)
+
+
+def _fit(natural: list[int], headers: list[int], wrap_columns: Sequence[int], limit: int | None) -> list[int]:
+    """Column widths within ``limit``: the wrapped columns share what the others leave, each keeping its
+    natural width when that is under an equal share (the rest is shared again among the wider ones), and
+    none narrower than its header and :data:`MIN_WRAPPED`, or :data:`MIN_NARROW` when that is too wide."""
+    total = sum(natural) + 2 * (len(natural) - 1)
+    if limit is None or total <= limit or not wrap_columns:
+        return natural
+    free = sorted(set(wrap_columns), key=lambda i: natural[i])
+    budget = limit - (total - sum(natural[i] for i in free))
+    for floor in (MIN_WRAPPED, MIN_NARROW):
+        widths, left = list(natural), budget
+        for n, i in enumerate(free):
+            share = left // (len(free) - n)
+            widths[i] = min(natural[i], max(share, floor, headers[i]))
+            left -= widths[i]
+        if left >= 0:
+            break
+    return widths
+
+
+def key_values(rows: Sequence[tuple[str, object]], *, width: Width = "terminal") -> str:
+    """``key  value`` lines, keys padded to the longest; a long value wraps under its own start."""
+    return table(["", ""], rows, wrap_columns=(1,), width=width).split("\n", 1)[1]
+
+
+__all__ = ["NONE", "columns", "key_values", "one_line", "table", "terminal_width", "wrap"]

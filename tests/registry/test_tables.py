@@ -1,0 +1,163 @@
+"""The CLI's tables (registry/tables.py): fitted to the terminal, safe to print, aligned by display width.
+
+Widths are measured with rich's ``cell_len`` (``rich.cells``, a terminal-rendering library in the lock
+through import-linter and schemathesis): an implementation of terminal cell widths independent of ours,
+both following Unicode UAX #11 (East Asian Wide and Fullwidth characters take two cells, combining marks
+none). Control characters are those of ECMA-48 (C0 and C1, Unicode category Cc).
+"""
+
+from __future__ import annotations
+
+import fcntl
+import io
+import os
+import struct
+import termios
+import unicodedata
+from pathlib import Path
+
+import pytest
+from rich.cells import cell_len
+
+from tests.registry.test_cli import run
+from textsieve.registry.tables import one_line, table, terminal_width, wrap
+
+WORD = "w" * 500  # one 500-character word: can only be split inside itself
+REASON = f"before\x1b[2Jafter\rreturn\nnewline\ttab {WORD} 汉字の理由を書きます、長い説明 end"
+
+
+def _starts(header: str, names: list[str]) -> list[int]:
+    """The terminal column where each named header begins."""
+    return [cell_len(header[: header.index(name)]) for name in names]
+
+
+def _cut(line: str, start: int, end: int | None) -> str:
+    """The part of ``line`` between two terminal columns, which no character may straddle."""
+    col, out = 0, []
+    for c in line:
+        if end is not None and col >= end:
+            break
+        if col >= start:
+            out.append(c)
+        col += cell_len(c)
+        assert col <= start or col - cell_len(c) >= start, f"a character straddles column {start}: {line!r}"
+    return "".join(out).strip()
+
+
+def _no_controls(text: str) -> bool:
+    return not any(unicodedata.category(c) == "Cc" for c in text.replace("\n", ""))
+
+
+def test_a_long_reason_wraps_within_the_width_and_keeps_every_character() -> None:
+    """Before: one 1,000-column line. Escape sequence, carriage return and line feed are shown, the
+    500-character word is split, CJK text counts two cells a character, and the columns stay in line."""
+    text = table(
+        ["EVENT", "ACTOR", "REASON", "BY"],
+        [[1, "王小明", REASON, "李四"], [22, "ana", "short", "bo"]],
+        right=(0,),
+        wrap_columns=(2,),
+        width=60,
+    )
+    lines = text.splitlines()
+    assert all(cell_len(line) <= 60 for line in lines), [cell_len(line) for line in lines]
+    assert _no_controls(text)
+    reason_at, by_at = _starts(lines[0], ["REASON", "BY"])
+    row = lines[1 : 1 + sum(1 for ln in lines[1:] if not ln.lstrip().startswith("22"))]
+    assert _cut(row[0], 0, reason_at).split() == ["1", "王小明"]
+    assert _cut(row[0], by_at, None) == "李四"
+    pieces = [_cut(line, reason_at, by_at) for line in row]
+    shown = "".join("".join(p.split()) for p in pieces)
+    expected = one_line(REASON)
+    assert expected.startswith(r"before\x1b[2Jafter ↵ return ↵ newline tab www")  # ESC as \x1b, CR and LF as ↵
+    assert shown == "".join(expected.split())  # nothing cut (spaces aside: lines break at them)
+    assert max(cell_len(p) for p in pieces) <= by_at - reason_at - 2
+    assert lines[-1].split() == ["22", "ana", "short", "bo"]
+
+
+def test_without_a_width_each_row_is_one_line_holding_its_whole_text() -> None:
+    """Output to a pipe: one record a line for grep and awk, the whole reason in it, still made safe."""
+    text = table(["EVENT", "REASON"], [[1, REASON], [2, "ok"]], wrap_columns=(1,), width=None)
+    lines = text.splitlines()
+    assert len(lines) == 3 and lines[1].endswith(one_line(REASON)) and _no_controls(text)
+
+
+def test_only_the_free_text_columns_are_wrapped() -> None:
+    """A time or a number split over two lines would misread; the named free-text column takes the cut."""
+    stamp = "2026-12-05 01:31:21Z"
+    text = table(["TIME", "REASON"], [[stamp, "x " * 60]], wrap_columns=(1,), width=40)
+    assert all(line.startswith((stamp, " " * len(stamp))) for line in text.splitlines()[1:])
+    assert all(cell_len(line) <= 40 for line in text.splitlines())
+
+
+@pytest.mark.parametrize(
+    ("text", "expected"),
+    [
+        pytest.param("a\u202eb", "a\\u202eb", id="right-to-left override (UAX #9) escaped"),
+        pytest.param("a\u2066b\u2069", "a\\u2066b\\u2069", id="bidi isolates (UAX #9) escaped"),
+        pytest.param("a\u2028b", "a ↵ b", id="line separator (Zl) as a line break"),
+        pytest.param("a\x85b", "a ↵ b", id="next line, C1 NEL, as a line break"),
+        pytest.param("a\udcffb", "a\\udcffb", id="lone surrogate (bytes not UTF-8) escaped"),
+        pytest.param("e\u0301 👍 王", "e\u0301 👍 王", id="combining mark, emoji and CJK kept"),
+    ],
+)
+def test_characters_a_terminal_acts_on_are_shown_not_obeyed(text: str, expected: str) -> None:
+    assert one_line(text) == expected
+    io.TextIOWrapper(io.BytesIO(), encoding="utf-8", errors="strict").write(one_line(text))  # no UnicodeEncodeError
+
+
+def test_wrapping_counts_wide_characters_as_two_cells() -> None:
+    """Ten CJK characters in a column of 7 cells: three a line (6 cells), never 7 characters (14 cells)."""
+    lines = wrap("汉" * 10, 7)
+    assert lines == ["汉汉汉", "汉汉汉", "汉汉汉", "汉"]
+    assert wrap(r"ab" + "\x1b" * 3, 6) == ["ab\\x1b", "\\x1b", "\\x1b"]  # an escape is never split
+
+
+def test_columns_honoured_else_a_terminal_s_own_width_else_no_limit(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("COLUMNS", "77")
+    assert terminal_width(io.StringIO()) == 77  # COLUMNS wins, as shutil.get_terminal_size documents
+    monkeypatch.delenv("COLUMNS")
+    assert terminal_width(io.StringIO()) is None  # a pipe or a file: not fitted
+    main_fd, tty_fd = os.openpty()
+    try:
+        with open(tty_fd, "w", closefd=False) as tty:
+            fcntl.ioctl(tty_fd, termios.TIOCSWINSZ, struct.pack("HHHH", 24, 52, 0, 0))
+            assert terminal_width(tty) == 52  # the terminal's own size (tty_ioctl(4): TIOCGWINSZ)
+            fcntl.ioctl(tty_fd, termios.TIOCSWINSZ, struct.pack("HHHH", 0, 0, 0, 0))
+            assert terminal_width(tty) == 80  # a terminal that reports no size: the classic 80 (common practice)
+    finally:
+        os.close(main_fd)
+        os.close(tty_fd)
+
+
+def test_history_gates_and_show_fit_columns_and_keep_the_whole_reason(
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
+) -> None:
+    """Before: a 500-character --reason made history, gates and show print lines of 500+ columns."""
+    r = ["--registry", str(tmp_path / "reg")]
+    reason = f"第一行\nline two\twith a tab {WORD} 结束"
+    assert run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", "--reason", reason, *r)[0] == 0
+    assert run(capsys, "gates", "m", "--set", "mcnemar=on", "--reason", reason, *r)[0] == 0
+    whole = "".join(one_line(reason).split())
+    # The gates table's fixed columns (key, value, default, source, time) take 73 of 80 columns.
+    for argv, column, width in (
+        (["history", "m"], ("REASON", "DETAIL"), 80),
+        (["gates", "m"], ("WHY", "ALLOWED"), 100),
+    ):
+        monkeypatch.setenv("COLUMNS", str(width))
+        code, out, _ = run(capsys, *argv, *r)
+        table_lines = [ln for ln in out.splitlines() if not ln.startswith("gates on promotion")]
+        assert code == 0 and all(cell_len(line) <= width for line in table_lines), argv
+        assert _no_controls(out)
+        start, end = _starts(table_lines[0], list(column))
+        assert whole in "".join("".join(_cut(line, start, end).split()) for line in table_lines[1:]), argv
+    monkeypatch.setenv("COLUMNS", "80")
+    code, out, _ = run(capsys, "show", "m", "1", *r)
+    assert code == 0 and all(cell_len(line) <= 80 for line in out.splitlines())
+    assert whole in "".join(out.split()) and _no_controls(out)
+
+    monkeypatch.delenv("COLUMNS")  # captured output is no terminal: rows are lines, whole
+    code, out, _ = run(capsys, "history", "m", *r)
+    assert code == 0 and len(out.splitlines()) == 3 and one_line(reason) in out.splitlines()[1]
