@@ -270,7 +270,8 @@ HEAD_TOO_LARGE = Kind(
     431,
     "request-head-too-large",
     "The request's headers are too large",
-    "A request's line and headers together must fit in the bound the 431 detail names; the connection "
+    "A request's line and headers together must fit in the bound the 431 detail names (TEXTSIEVE_MAX_HEAD_BYTES); "
+    "the connection "
     "was closed. Send shorter headers and put data in the body. Nothing was computed.",
 )
 UNKNOWN_METHOD = Kind(
