@@ -384,6 +384,9 @@ def test_connections_beyond_the_cap_are_refused_at_once(
         r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["the app crashes"]}, timeout=10)
         assert r.status_code == 200
         assert refusals(server.url, "connections") == 1
+        # No request was read from it, and it is in the HTTP family as such.
+        key = (("method", "unknown"), ("route", "unmatched"), ("status", "503"))
+        assert scraped(server.url)[("textsieve_http_requests_total", key)] == 1
 
 
 # -- admission control ----------------------------------------------------------------------------
@@ -461,7 +464,17 @@ def test_overload_is_refused_at_once_with_retry_after_and_nothing_is_lost(regist
         replies = asyncio.run(burst())
         # Refused by the inference queue, or (the limit adapting to the 5 ms wait) before the app ran.
         refused_queue = refusals(server.url, "queue") + refusals(server.url, "requests")
+        metrics = scraped(server.url)
     statuses = [r.status_code for r in replies]
+    # Every refusal is in the HTTP family, the app's and the connection layer's alike.
+    counted = sum(
+        v
+        for (name, labels), v in metrics.items()
+        if name == "textsieve_http_requests_total"
+        and ("status", "503") in labels
+        and ("route", "/readyz") not in labels
+    )  # /readyz answered 503 while the models loaded
+    assert counted == statuses.count(503), metrics
     assert set(statuses) <= {200, 503}, statuses
     assert statuses.count(503) >= 1 and statuses.count(200) >= 1, statuses
     assert refused_queue == statuses.count(503)
