@@ -144,6 +144,16 @@ class Settings(BaseSettings):
         description="longest a client may take to send one request's headers and body; a slower one is "
         "answered 408 and closed",
     )
+    # 64 KiB: nginx's default buffers hold 32 KiB of headers and a browser's cookies fit in 8 (common
+    # practice); at least 8 KiB, the common per-line limit of web servers, so ordinary requests always
+    # fit; at most 1 MiB, since every open connection may hold this much (and one read more).
+    max_head_bytes: int = Field(
+        64 * 1024,
+        ge=8 * 1024,
+        le=1024 * 1024,
+        description="largest request line and headers together (8 KiB to 1 MiB); a larger head is answered 431 "
+        "and the connection closed",
+    )
     keepalive_seconds: int = Field(
         5, ge=1, le=3600, description="an idle keep-alive connection is closed after this long"
     )

@@ -16,6 +16,7 @@ from fastapi import APIRouter, Depends, Request
 
 from textsieve.errors import AuthError
 from textsieve.service.web.deps import ModelsDep, RegistryDep, SettingsDep, no_query
+from textsieve.service.web.jsonbody import JsonBodyRoute
 from textsieve.service.web.openapi import ADMIN_SCHEME, Tag
 from textsieve.service.web.problems import MEDIA_TYPE, AdminDisabledError
 from textsieve.service.web.schemas import (
@@ -29,7 +30,7 @@ from textsieve.service.web.schemas import (
 )
 from textsieve.service.web.views import _version_number
 
-router = APIRouter(prefix="/v1/models")
+router = APIRouter(prefix="/v1/models", route_class=JsonBodyRoute)
 _P = {"model": Problem, "content": {MEDIA_TYPE: {}}}
 _RESPONSES: dict[int | str, dict[str, Any]] = {401: _P, 403: _P, 404: _P, 409: _P, 422: _P, 503: _P}
 _SECURED: dict[str, Any] = {"security": [{ADMIN_SCHEME: []}]}

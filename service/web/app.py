@@ -28,14 +28,17 @@ from textsieve.service.web.onewrite import HeadWithBodyMiddleware
 from textsieve.service.web.transport import ConnectionGuard
 
 
-def connection_guard(settings: Settings) -> ConnectionGuard:
-    """The connection cap, read deadline and adaptive request limit that ``settings`` ask for."""
+def connection_guard(settings: Settings, metrics: ServiceMetrics | None = None) -> ConnectionGuard:
+    """The connection cap, read deadline, head bound and adaptive request limit that ``settings``
+    ask for; the replies it writes itself are counted in ``metrics``."""
     return ConnectionGuard(
         max_connections=settings.max_connections,
         read_timeout=settings.read_timeout_seconds,
         target_seconds=settings.queue_wait_ms / 1000.0,
         min_requests=2 * settings.workers,
         start_requests=settings.max_requests,
+        max_head_bytes=settings.max_head_bytes,
+        metrics=metrics,
     )
 
 
@@ -92,7 +95,7 @@ def create_app(settings: Settings | None = None, *, fast_lane: bool = True) -> L
     app.state.metrics = metrics
     # Bounds across requests (see bodylimit.py and transport.py); serve hands the guard to uvicorn.
     app.state.budget = budget = BodyBudget(settings.body_budget_bytes)
-    app.state.guard = connection_guard(settings)
+    app.state.guard = connection_guard(settings, metrics)
     metrics.overload.guard, metrics.overload.budget = app.state.guard, budget
     problems.install(app)
     for module in (predict, views, reports, drift, admin, reviews, health, page):

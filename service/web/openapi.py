@@ -6,7 +6,8 @@ answers all of them with ``application/problem+json`` (RFC 9457 §3) built in
 :mod:`textsieve.service.web.problems`. The generated document is rewritten once, here, so that
 clients and schema-driven tests (tests/reliability/test_fuzz.py) see what is actually sent: the Problem
 schema under problem+json for every error, 413 and 415 wherever a body is accepted (the body-size
-limit and the refusal of compressed bodies answer before any route), and the admin and reviewer
+limit and the refusal of compressed bodies answer before any route, and a JSON body not in UTF-8 is
+415 too, service/web/jsonbody.py), and the admin and reviewer
 bearer tokens as security schemes.
 
 Generated clients name their methods after operation ids and group them by tag, so every route
@@ -100,7 +101,9 @@ def rewrite(document: dict[str, Any]) -> dict[str, Any]:
                     responses[code] = _problem_response(response.get("description", "problem details"))
             if "requestBody" in op:
                 responses.setdefault("413", _problem_response("a request limit was exceeded"))
-                responses.setdefault("415", _problem_response("the body was sent compressed (Content-Encoding)"))
+                responses.setdefault(
+                    "415", _problem_response("the body was sent compressed (Content-Encoding), or not as UTF-8")
+                )
             secured |= {scheme for req in op.get("security", []) for scheme in req}
     components = document.setdefault("components", {})
     schemas = components.get("schemas", {})

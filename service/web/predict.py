@@ -20,11 +20,12 @@ from textsieve.service.modelset.model_set import ModelSet
 from textsieve.service.settings import Settings
 from textsieve.service.telemetry import ServiceMetrics
 from textsieve.service.web.deps import MetricsDep, ModelsDep, SettingsDep, no_query
+from textsieve.service.web.jsonbody import JsonBodyRoute
 from textsieve.service.web.openapi import Tag
 from textsieve.service.web.problems import MEDIA_TYPE
 from textsieve.service.web.schemas import PredictRequest, PredictResponse, Problem
 
-router = APIRouter()
+router = APIRouter(route_class=JsonBodyRoute)
 MAX_DEADLINE_MS = 3_600_000
 DEADLINE_HEADER = "Textsieve-Deadline"
 

@@ -37,6 +37,9 @@ from textsieve.errors import (
 from textsieve.service.web.methods import allowed
 
 MEDIA_TYPE = "application/problem+json"
+# Where service/web/jsonbody.py keeps a body's refusal (in the request's state) until the route's
+# dependencies have run.
+BODY_REFUSAL = "body_refusal"
 RETRY_AFTER_SECONDS = 2
 log = logging.getLogger("textsieve.service")
 
@@ -87,6 +90,16 @@ class TransferCodingError(InputError):
         )
 
 
+class CharsetError(InputError):
+    """A JSON body not in UTF-8: another charset declared, or UTF-16/UTF-32 found (HTTP 415)."""
+
+    def __init__(self, found: str, shape: str) -> None:
+        super().__init__(
+            f"{found}; JSON request bodies are read as UTF-8 only (RFC 8259 §8.1): send {shape} encoded as "
+            "UTF-8, with Content-Type: application/json (a charset parameter, if any, utf-8)"
+        )
+
+
 @dataclass(frozen=True, slots=True)
 class Kind:
     status: int
@@ -110,6 +123,14 @@ KINDS: dict[type[BaseException], Kind] = {
         "The body's content coding is not accepted",
         "Request bodies are read as sent, uncompressed; the response's Accept-Encoding header "
         "names what is accepted (identity). Send the body without Content-Encoding.",
+    ),
+    CharsetError: Kind(
+        415,
+        "unsupported-charset",
+        "The body's character encoding is not accepted",
+        "JSON request bodies are read as UTF-8 (RFC 8259 §8.1): a Content-Type charset other than utf-8, or a "
+        "body in UTF-16 or UTF-32 (told by its byte-order mark or its NUL bytes), is refused; the response's "
+        "Accept header names the media type to send. A UTF-8 byte-order mark is ignored.",
     ),
     TransferCodingError: Kind(
         501,
@@ -249,7 +270,8 @@ HEAD_TOO_LARGE = Kind(
     431,
     "request-head-too-large",
     "The request's headers are too large",
-    "A request's line and headers together must fit in the bound the 431 detail names; the connection "
+    "A request's line and headers together must fit in the bound the 431 detail names (TEXTSIEVE_MAX_HEAD_BYTES); "
+    "the connection "
     "was closed. Send shorter headers and put data in the body. Nothing was computed.",
 )
 UNKNOWN_METHOD = Kind(
@@ -368,7 +390,7 @@ def _is_json(content_type: str) -> bool:
     return kind == "application/json" or (kind.startswith("application/") and kind.endswith("+json"))
 
 
-def _body_shape(scope: Scope) -> str:
+def body_shape(scope: Scope) -> str:
     """What the matched route's body looks like, from its request model's required fields."""
     field = getattr(scope.get("route"), "body_field", None)
     model = getattr(getattr(field, "field_info", None), "annotation", None)
@@ -397,22 +419,18 @@ def _validation_problem(exc: RequestValidationError, scope: Scope) -> Response:
         if msg.startswith("Value error, "):
             msg = msg[len("Value error, ") :]
         kind = err.get("type", "")
-        if kind == "json_invalid":
-            where = err.get("loc", ("body", "?"))[-1]
-            msg = f"the body is not valid JSON (at character {where}: {err.get('ctx', {}).get('error', 'parse error')})"
-            field = "body"
-        elif kind == "missing" and field == "body":
-            msg = f"the body is missing; send {_body_shape(scope)}"
+        if kind == "missing" and field == "body":
+            msg = f"the body is missing; send {body_shape(scope)}"
         elif kind == "unknown_field":
             field = ", ".join(err.get("ctx", {}).get("fields", [])) or field
         elif kind == "model_attributes_type" or (kind == "dict_type" and field == "body"):
             sent = _content_type(scope)
             if sent is None or _is_json(sent):
-                msg = f"the body must be {_body_shape(scope)}, sent with Content-Type: application/json"
+                msg = f"the body must be {body_shape(scope)}, sent with Content-Type: application/json"
             else:  # the body was never read as JSON: say so, whatever it holds (curl -d sends a form)
                 msg = (
                     f"the body was sent as Content-Type: {sent[:100]}, which is not read as JSON; "
-                    f"send {_body_shape(scope)} with Content-Type: application/json"
+                    f"send {body_shape(scope)} with Content-Type: application/json"
                 )
         errors.append({"field": field, "message": msg, "type": kind})
     first = errors[0] if errors else {"field": "body", "message": "invalid"}
@@ -429,15 +447,22 @@ async def _on_textsieve(request: Request, exc: Exception) -> Response:
 
 async def _on_validation(request: Request, exc: Exception) -> Response:
     assert isinstance(exc, RequestValidationError)
+    refusal = request.scope.get("state", {}).get(BODY_REFUSAL)
+    if refusal is not None:  # the body was not read (service/web/jsonbody.py): that is what to fix
+        response = render(refusal, request.scope)
+        if isinstance(refusal, CharsetError):
+            # RFC 9110 §12.5.1: Accept in a response names what the resource takes in a request.
+            response.headers["Accept"] = "application/json"
+        return response
     return _validation_problem(exc, request.scope)
 
 
 async def _on_http(request: Request, exc: Exception) -> Response:
     assert isinstance(exc, StarletteHTTPException)
     if exc.status_code == 400 and exc.__cause__ is not None:
-        # FastAPI's own body parsing failed below JSON (e.g. bytes that are not UTF-8).
-        why = _unreadable(exc.__cause__)
-        msg = f"the body could not be read as JSON ({why}); send UTF-8 JSON: {_body_shape(request.scope)}"
+        # FastAPI could not read the body (JSON bodies are read by service/web/jsonbody.py).
+        why = type(exc.__cause__).__name__
+        msg = f"the body could not be read ({why}); send UTF-8 JSON: {body_shape(request.scope)}"
         return problem(
             KINDS[InputError],
             f"body: {msg}",
@@ -460,17 +485,6 @@ async def _on_http(request: Request, exc: Exception) -> Response:
     return problem(kind, detail, request.scope, headers=headers)
 
 
-def _unreadable(cause: BaseException) -> str:
-    """Why the JSON parser gave up, in words (it raises these below its own error type)."""
-    if isinstance(cause, UnicodeDecodeError):
-        return "not UTF-8"
-    if isinstance(cause, RecursionError):
-        return "nested too deeply"
-    if isinstance(cause, ValueError) and "digits" in str(cause):
-        return "a number has too many digits"  # Python's int conversion limit (4300 digits)
-    return type(cause).__name__
-
-
 async def _on_unexpected(request: Request, exc: Exception) -> Response:
     return render(exc, request.scope)
 
@@ -491,13 +505,16 @@ def install(app: FastAPI) -> None:
 
 
 __all__ = [
+    "BODY_REFUSAL",
     "AdminDisabledError",
+    "CharsetError",
     "ContentEncodingError",
     "KINDS",
     "ReviewDisabledError",
     "ReviewerAuthError",
     "MEDIA_TYPE",
     "TransferCodingError",
+    "body_shape",
     "install",
     "problem",
     "render",

@@ -23,11 +23,12 @@ from fastapi.responses import JSONResponse
 from textsieve.errors import LimitError
 from textsieve.service.settings import Settings
 from textsieve.service.web.deps import RegistryDep, SettingsDep, no_query
+from textsieve.service.web.jsonbody import JsonBodyRoute
 from textsieve.service.web.openapi import REVIEW_SCHEME, Tag
 from textsieve.service.web.problems import MEDIA_TYPE, ReviewDisabledError, ReviewerAuthError
 from textsieve.service.web.schemas import Problem, VerdictReply, VerdictRequest
 
-router = APIRouter()
+router = APIRouter(route_class=JsonBodyRoute)
 _P = {"model": Problem, "content": {MEDIA_TYPE: {}}}
 _RESPONSES: dict[int | str, dict[str, Any]] = {401: _P, 403: _P, 404: _P, 413: _P, 422: _P, 503: _P}
 

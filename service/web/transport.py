@@ -18,11 +18,15 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   limit was reached and they were in time, it grows by a tenth. A refused connection's next
   request is read only after half the Retry-After it was given. The access middleware
   (:mod:`textsieve.service.web.access`) counts and times the requests inside the app.
-- **Head size.** A request's line and headers together may hold ``MAX_HEAD_BYTES``; past it the
-  request is answered 431 (RFC 6585 §5) and the connection closed. The parser keeps a header
-  it has not seen the end of in memory, so without a bound one connection could fill the
-  replica's memory with a single endless header line within the read deadline (the body budget
-  bounds bodies only).
+- **Head size.** A request's line and headers together may hold ``max_head_bytes``
+  (``TEXTSIEVE_MAX_HEAD_BYTES``); past it the request is answered 431 (RFC 6585 §5) and the
+  connection closed. The parser keeps a header it has not seen the end of in memory, so without a
+  bound one connection could fill the replica's memory with a single endless header line within
+  the read deadline (the body budget bounds bodies only). An unfinished head is refused once the
+  reads after the one it began in pass the bound (so at most one read more is held); a whole head
+  is measured as parsed (its line, and each header's name and value with their separators) when
+  it spans more than the bound's bytes of reads. Before, only the first check ran, and a 100 kB
+  head that arrived in one read was answered as if it were within 64 KiB.
 - **No upgrades.** The service speaks HTTP/1.1 only (uvicorn runs with ``ws="none"``), but the
   parser, on a request with ``Upgrade`` and ``Connection: upgrade``, ends the request at its
   headers and stops: ``curl --http2`` on ``http://`` sends ``Upgrade: h2c`` with every first
@@ -35,7 +39,10 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   started, and closed. Idle keep-alive connections are closed by uvicorn after
   ``keepalive_seconds`` (its ``timeout_keep_alive``).
 
-All of it is counted (:class:`ConnectionGuard`) and exposed in ``/metrics``.
+All of it is counted (:class:`ConnectionGuard`) and exposed in ``/metrics``; every reply written
+here to a request the application never saw (400, 408, 431, 501, 503) is also counted in
+``textsieve_http_requests_total`` and ``textsieve_http_request_seconds`` with the route
+``unmatched`` (and the method ``unknown`` when it was not read), as the app's own replies are.
 """
 
 from __future__ import annotations
@@ -48,6 +55,7 @@ import httptools
 import orjson
 from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
 
+from textsieve.service.telemetry import ServiceMetrics
 from textsieve.service.web.problems import HEAD_TOO_LARGE, MALFORMED, MEDIA_TYPE, REQUEST_TIMEOUT, UNKNOWN_METHOD
 
 # Liveness, readiness and metrics: cheap, bodiless, and what an orchestrator restarts or drains a
@@ -57,7 +65,9 @@ _PROBE_TARGETS = frozenset(p.encode() for p in PROBE_PATHS)
 WITH_BODY = frozenset({"POST", "PUT", "PATCH"})
 # A request line: a method token (RFC 9110 §5.6.2), a target and an HTTP version.
 _REQUEST_LINE = re.compile(rb"[!#$%&'*+.^_`|~0-9A-Za-z-]+ [^ \r\n]+ HTTP/[0-9]\.[0-9]\r?\n")
-MAX_HEAD_BYTES = 64 * 1024  # nginx's default buffers hold 32 KiB of headers; a browser's cookies fit in 8
+# The route label of a reply written here: no route was matched, as for the app's own 404s.
+UNMATCHED = "unmatched"
+UNKNOWN_METHOD_LABEL = "unknown"  # the request line was not read (or named no method httptools knows)
 
 
 def _raw_response(
@@ -129,10 +139,12 @@ class ConnectionGuard:
         target_seconds: float = 0.25,
         min_requests: int = 4,
         start_requests: int = 64,
-        max_head_bytes: int = MAX_HEAD_BYTES,
+        max_head_bytes: int = 64 * 1024,
+        metrics: ServiceMetrics | None = None,
     ) -> None:
         self.max_connections = max_connections
         self.read_timeout = read_timeout
+        self.metrics = metrics  # where the replies written here are counted (None: nowhere)
         self.open = 0
         self.refused = 0
         self.timed_out = 0
@@ -203,10 +215,15 @@ class ConnectionGuard:
             "Request Header Fields Too Large",
             HEAD_TOO_LARGE.slug,
             HEAD_TOO_LARGE.title,
-            f"the request's line and headers exceeded {max_head_bytes} bytes: send shorter headers (a long "
-            "cookie or token?) and put data in the body; the connection is closed",
+            f"the request's line and headers exceeded {max_head_bytes} bytes (TEXTSIEVE_MAX_HEAD_BYTES): send "
+            "shorter headers (a long cookie or token?) and put data in the body; the connection is closed",
             None,
         )
+
+    def answered(self, method: str, status: int, seconds: float) -> None:
+        """Count a reply written here to a request the application never saw."""
+        if self.metrics is not None:
+            self.metrics.answered(method, UNMATCHED, status, seconds)
 
     def request_may_start(self) -> bool:
         if self.inflight >= int(self.limit):
@@ -239,6 +256,11 @@ class ConnectionGuard:
             _in_head = False  # a request has begun and its headers have not all arrived
             _head_began = False  # ... and it began in the data being read now
             _head_bytes = 0  # bytes read in whole while in the head (the first read's share is not counted)
+            _read = 0  # the size of the read being parsed
+            _head_upper = 0  # bytes of the reads the head arrived in: an upper bound of its size
+            _began = 0.0  # when the current request began (loop time)
+            _app_has_it = False  # the current request was handed to the application
+            url = b""  # uvicorn sets it when a request begins; a connection may time out before any does
 
             def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
                 if guard.open >= guard.max_connections:
@@ -247,6 +269,7 @@ class ConnectionGuard:
                     self.transport = transport
                     transport.write(guard.over_capacity)
                     transport.close()
+                    guard.answered(UNKNOWN_METHOD_LABEL, 503, 0.0)
                     return
                 guard.open += 1
                 super().connection_made(transport)
@@ -263,16 +286,38 @@ class ConnectionGuard:
                 if self._over_cap or self._refused:
                     return
                 self._head_began = False
+                self._read = len(data)
+                if self._in_head:
+                    self._head_upper += len(data)
                 self._feed(data)
                 if self._in_head and not self._refused:
                     # All of this read went into an unfinished head, but for the read it began in (at
                     # most one read's size more than the limit is held).
                     self._head_bytes += 0 if self._head_began else len(data)
                     if self._head_bytes > guard.max_head_bytes:
-                        self._refused = True
-                        self._disarm()
-                        self.transport.write(guard.head_too_large)
-                        self.transport.close()
+                        self._head_too_large()
+
+            def _head_too_large(self) -> None:
+                self._refused = True
+                self._disarm()
+                self.transport.write(guard.head_too_large)
+                self.transport.close()
+                self._count(431)
+
+            def _parsed_head_bytes(self) -> int:
+                """The head's size as parsed: 'METHOD target HTTP/1.1\\r\\n', each 'name: value\\r\\n', '\\r\\n'."""
+                line = len(self.parser.get_method()) + len(self.url) + 12
+                return line + sum(len(name) + len(value) + 4 for name, value in self.headers) + 2
+
+            def _count(self, status: int, seconds: float | None = None) -> None:
+                """Count a reply written here, unless the application has the request (it books it then)."""
+                if self._app_has_it:
+                    return
+                # The method is known once the target has been read (the parser reads the method first).
+                method = self.parser.get_method().decode("ascii") if self.url else UNKNOWN_METHOD_LABEL
+                if seconds is None:
+                    seconds = self.loop.time() - self._began if self._began else 0.0
+                guard.answered(method, status, seconds)
 
             def _feed(self, data: bytes) -> None:
                 """uvicorn's ``data_received``, but for an upgrade, which is declined (see the module's docstring)."""
@@ -289,6 +334,7 @@ class ConnectionGuard:
                     self._disarm()
                     self.transport.write(guard.unknown_method)
                     self.transport.close()
+                    self._count(501)
                 except httptools.HttpParserError:
                     msg = "Invalid HTTP request received."
                     self.logger.warning(msg)
@@ -314,7 +360,9 @@ class ConnectionGuard:
                     if name != b"upgrade":
                         head += [name, b": ", value, b"\r\n"]
                 self.parser = httptools.HttpRequestParser(self)
-                self._feed(b"".join(head) + b"\r\n" + rest)
+                again = b"".join(head) + b"\r\n" + rest
+                self._read = len(again)  # the head's upper bound when it is parsed again
+                self._feed(again)
 
             def send_400_response(self, msg: str) -> None:  # uvicorn calls it when the parser refuses
                 guard.malformed_requests += 1
@@ -322,15 +370,20 @@ class ConnectionGuard:
                 self._disarm()
                 self.transport.write(guard.malformed)
                 self.transport.close()
+                self._count(400)
 
             def on_message_begin(self) -> None:
                 self._in_head, self._head_began, self._head_bytes = True, True, 0
+                self._head_upper, self._began, self._app_has_it = self._read, self.loop.time(), False
                 super().on_message_begin()
                 if self._read_timer is None:
                     self._arm()
 
             def on_headers_complete(self) -> None:
                 self._in_head = False
+                if self._head_upper > guard.max_head_bytes and self._parsed_head_bytes() > guard.max_head_bytes:
+                    self._head_too_large()  # a head that arrived whole in few reads
+                    return
                 if self._should_upgrade():  # checked and admitted once, when parsed again (see _feed)
                     return
                 hosts = sum(1 for name, _ in self.headers if name == b"host")
@@ -342,6 +395,7 @@ class ConnectionGuard:
                 if self.url.split(b"?", 1)[0] not in _PROBE_TARGETS and not guard.request_may_start():
                     cycle: Any = self.cycle
                     pipelined = cycle is not None and not cycle.response_complete
+                    self._count(503)
                     if pipelined or not self.parser.should_keep_alive():
                         self._disarm()
                         self._refused = True  # the parser may still call back for the rest of this read
@@ -362,8 +416,10 @@ class ConnectionGuard:
                 cycle = self.cycle
                 # Made just now, for this request. A reply to HEAD is a head alone: uvicorn writes
                 # no body after it, so there is nothing to hold it for.
-                if cycle is not None and cycle is not before and cycle.scope["method"] != "HEAD":
-                    cycle.transport = _HeadWithBody(self.transport)
+                if cycle is not None and cycle is not before:
+                    self._app_has_it = True
+                    if cycle.scope["method"] != "HEAD":
+                        cycle.transport = _HeadWithBody(self.transport)
 
             def on_body(self, body: bytes) -> None:
                 if not (self._refused or self._skipping):
@@ -421,9 +477,10 @@ class ConnectionGuard:
                 cycle: Any = self.cycle
                 if cycle is None or not cycle.response_started:
                     self.transport.write(guard.too_slow)
+                    self._count(408, guard.read_timeout)  # the deadline ran from when the timer was armed
                 self.transport.close()
 
         return GuardedHttpToolsProtocol
 
 
-__all__ = ["MAX_HEAD_BYTES", "PROBE_PATHS", "WITH_BODY", "ConnectionGuard"]
+__all__ = ["PROBE_PATHS", "UNMATCHED", "WITH_BODY", "ConnectionGuard"]

@@ -10,7 +10,7 @@ from pathlib import Path
 import httpx
 import pytest
 
-from tests.helpers.service import ADMIN_TOKEN, MODEL, serving, settings_for
+from tests.helpers.service import ADMIN_TOKEN, MODEL, REVIEW_TOKEN, serving, settings_for
 from textsieve.registry import open_registry
 
 
@@ -28,8 +28,10 @@ def retired_registry(tmp_path_factory: pytest.TempPathFactory, tiny_bundles: dic
 
 @pytest.fixture(scope="module")
 async def retired_client(retired_registry: Path) -> AsyncIterator[httpx.AsyncClient]:
-    """The app at default limits on ``retired_registry``, admin calls allowed with ``AUTH``,
+    """The app at default limits on ``retired_registry``, admin calls allowed with ``AUTH`` and
+    verdicts with ``REVIEW_AUTH``,
     served once per module: the bad-input tables send it requests it refuses, which change
     nothing, so one app answers every row."""
-    async with serving(settings_for(retired_registry, admin_token=ADMIN_TOKEN)) as (_, client):
+    settings = settings_for(retired_registry, admin_token=ADMIN_TOKEN, review_token=REVIEW_TOKEN)
+    async with serving(settings) as (_, client):
         yield client

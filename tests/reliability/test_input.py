@@ -33,7 +33,7 @@ from typing import Any
 import httpx
 import pytest
 
-from tests.helpers.service import AUTH, MODEL, assert_problem
+from tests.helpers.service import AUTH, MODEL, REVIEW_AUTH, assert_problem
 from textsieve.registry import open_registry
 
 pytestmark = pytest.mark.anyio
@@ -289,6 +289,30 @@ async def test_unknown_fields_in_admin_bodies_are_refused_and_change_nothing(
     r = await retired_client.post(path, json=body, headers=AUTH)
     problem = assert_problem(r, 422, "invalid-input")
     assert problem["errors"][0]["field"] == field and "allowed:" in problem["detail"]
+    with open_registry(retired_registry) as reg:
+        assert reg.live(MODEL).version == 2  # type: ignore[union-attr]
+
+
+@pytest.mark.parametrize(
+    ("path", "auth"),
+    [
+        pytest.param("/v1/predict", {}, id="predict"),
+        pytest.param(f"/v1/models/{MODEL}/versions/1/promote", AUTH, id="promote"),
+        pytest.param(f"/v1/models/{MODEL}/rollback", AUTH, id="rollback"),
+        pytest.param("/v1/verdicts", REVIEW_AUTH, id="verdicts"),
+    ],
+)
+async def test_an_unknown_field_named_by_a_lone_surrogate_is_named_as_escaped(
+    retired_client: httpx.AsyncClient, retired_registry: Path, path: str, auth: dict[str, str]
+) -> None:
+    # Python's JSON reader lets an escaped lone surrogate through (RFC 8259 §8.2 leaves it to the
+    # reader); as a field name it was put in the refusal as it was, which no UTF-8 reply can hold
+    # (RFC 3629 §3), so the problem's encoder failed and every JSON route answered 500.
+    body = b'{"\\ud800x": 1, "\\udfff": 2}'
+    r = await retired_client.post(path, content=body, headers={**JSON, **auth})
+    problem = assert_problem(r, 422, "invalid-input")
+    assert problem["errors"][0]["field"] == "\\ud800x, \\udfff", problem
+    assert "unknown field(s)" in problem["detail"]
     with open_registry(retired_registry) as reg:
         assert reg.live(MODEL).version == 2  # type: ignore[union-attr]
 

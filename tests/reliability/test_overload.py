@@ -28,9 +28,10 @@ from tests.helpers.service import make_registry, serving, settings_for
 from textsieve.errors import DeadlinePassedError, OverloadedError
 from textsieve.service.inference.admission import Admission
 from textsieve.service.inference.batcher import QUANTUM, Batcher, _Job
-from textsieve.service.web.transport import MAX_HEAD_BYTES
+from textsieve.service.settings import Settings
 
 MIB = 1024 * 1024
+MAX_HEAD_BYTES = Settings.model_fields["max_head_bytes"].default
 
 
 @pytest.fixture(scope="module")
@@ -181,7 +182,17 @@ def test_slow_and_silent_clients_are_closed_at_the_read_deadline(
         # Ordinary clients are unaffected.
         r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["a refund please"]}, timeout=10)
         assert r.status_code == 200
-        assert scraped(server.url)[("textsieve_connections_timed_out_total", ())] == 2
+        metrics = scraped(server.url)
+        assert metrics[("textsieve_connections_timed_out_total", ())] == 2
+        # Also in the HTTP families, as the app's own replies are (before, in none of them).
+        timed_out = [
+            v
+            for (name, labels), v in metrics.items()
+            if name == "textsieve_http_requests_total"
+            and ("status", "408") in labels
+            and ("route", "unmatched") in labels
+        ]
+        assert sum(timed_out) == 2, metrics
 
 
 _BODY = b'{"texts":["a"]}'
@@ -265,6 +276,44 @@ def test_a_request_head_past_its_bound_is_answered_431_and_closed_before_it_fill
         assert answer.count(b"HTTP/1.1 200 OK") == 21, answer[:300]
 
 
+def test_the_head_bound_is_a_setting_holds_for_a_head_read_at_once_and_its_refusals_are_counted(
+    registry_path: Path, tmp_path: Path
+) -> None:
+    # Before, the bound was a constant, and a head was measured only over the reads after the one it
+    # began in: a 100 kB head sent in one write (one read on loopback) was answered 200. Replies the
+    # connection layer wrote itself (431, 400, 501) were in no HTTP metric.
+    bound = 16 * 1024
+    line = b"GET /healthz HTTP/1.1\r\nHost: t\r\nConnection: close\r\nX-Big: "
+    with running_server(
+        str(registry_path), tmp_path / "server.log", workers=1, inference="threads", max_head_bytes=bound
+    ) as server:
+        before = scraped(server.url)
+        with _connect(server.port) as s:  # 4 bytes under the bound, the blank line included
+            s.sendall(line + b"a" * (bound - len(line) - 6) + b"\r\n\r\n")
+            assert _status(_response(s, 5)) == 200
+        for size in (bound + 1 - len(line) - 4, 100_000):  # a byte over the bound; 100 kB
+            with _connect(server.port) as s:
+                s.sendall(line + b"a" * size + b"\r\n\r\n")
+                answer = _response(s, 5)
+            assert _status(answer) == 431, (size, answer[:200])
+            assert str(bound) in _problem(answer)["detail"] and b"connection: close" in answer
+        with _connect(server.port) as s:  # RFC 9112 §3.2: an HTTP/1.1 request without Host is a 400
+            s.sendall(b"POST /v1/predict HTTP/1.1\r\nContent-Length: 2\r\n\r\n{}")
+            assert _status(_response(s, 5)) == 400
+        with _connect(server.port) as s:  # RFC 9110 §9.1: a method the server does not know is a 501
+            s.sendall(b"FROB / HTTP/1.1\r\nHost: t\r\n\r\n")
+            assert _status(_response(s, 5)) == 501
+        after = scraped(server.url)
+
+    def added(method: str, status: str) -> float:
+        key = ("textsieve_http_requests_total", (("method", method), ("route", "unmatched"), ("status", status)))
+        return after.get(key, 0.0) - before.get(key, 0.0)
+
+    assert (added("GET", "431"), added("POST", "400"), added("unknown", "501")) == (2, 1, 1)
+    timed = ("textsieve_http_request_seconds_count", (("route", "unmatched"),))
+    assert after[timed] - before.get(timed, 0.0) == 4
+
+
 _UPGRADES = {
     # What curl --http2 sends on http:// with its first request, body and all.
     "h2c": b"Upgrade: h2c\r\nConnection: Upgrade, HTTP2-Settings\r\nHTTP2-Settings: AAMAAABkAARAAAAAAAIAAAAA\r\n",
@@ -335,6 +384,9 @@ def test_connections_beyond_the_cap_are_refused_at_once(
         r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["the app crashes"]}, timeout=10)
         assert r.status_code == 200
         assert refusals(server.url, "connections") == 1
+        # No request was read from it, and it is in the HTTP family as such.
+        key = (("method", "unknown"), ("route", "unmatched"), ("status", "503"))
+        assert scraped(server.url)[("textsieve_http_requests_total", key)] == 1
 
 
 # -- admission control ----------------------------------------------------------------------------
@@ -412,7 +464,17 @@ def test_overload_is_refused_at_once_with_retry_after_and_nothing_is_lost(regist
         replies = asyncio.run(burst())
         # Refused by the inference queue, or (the limit adapting to the 5 ms wait) before the app ran.
         refused_queue = refusals(server.url, "queue") + refusals(server.url, "requests")
+        metrics = scraped(server.url)
     statuses = [r.status_code for r in replies]
+    # Every refusal is in the HTTP family, the app's and the connection layer's alike.
+    counted = sum(
+        v
+        for (name, labels), v in metrics.items()
+        if name == "textsieve_http_requests_total"
+        and ("status", "503") in labels
+        and ("route", "/readyz") not in labels
+    )  # /readyz answered 503 while the models loaded
+    assert counted == statuses.count(503), metrics
     assert set(statuses) <= {200, 503}, statuses
     assert statuses.count(503) >= 1 and statuses.count(200) >= 1, statuses
     assert refused_queue == statuses.count(503)

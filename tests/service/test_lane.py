@@ -74,7 +74,15 @@ CASES = [
     Case("body over the limit", {"texts": ["y" * 40] * 60}, 413, "app"),
     Case("over the body budget", {"texts": [TEXT]}, 503, "app", over_budget=True),
     Case("empty body", b"", 422, "app"),
-    Case("a byte-order mark (the app's parser allows it)", b'\xef\xbb\xbf{"texts": ["a b c"]}', 200, "app"),
+    # RFC 8259 §8.1: JSON between systems is UTF-8; a reader MAY ignore a byte-order mark (here it does).
+    Case("a UTF-8 byte-order mark, ignored", b'\xef\xbb\xbf{"texts": ["a b c"]}', 200, "app"),
+    Case("UTF-16 with its byte-order mark", '{"texts": ["a b c"]}'.encode("utf-16"), 415, "app"),
+    Case("UTF-16BE without a mark", '{"texts": ["a b c"]}'.encode("utf-16-be"), 415, "app"),
+    Case("UTF-32LE without a mark", '{"texts": ["a b c"]}'.encode("utf-32-le"), 415, "app"),
+    Case("a charset other than UTF-8", {"texts": [TEXT]}, 415, "app", content_type="application/json; charset=utf-16"),
+    Case(
+        "UTF-8 declared in upper case", {"texts": [TEXT]}, 200, "lane", content_type="application/json; charset=UTF-8"
+    ),
     Case("another content type", {"texts": [TEXT]}, 422, "app", content_type="text/plain"),
     Case("no content type", {"texts": [TEXT]}, 422, "app", content_type=None),
 ]

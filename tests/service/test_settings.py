@@ -38,6 +38,17 @@ def test_defaults_are_sane() -> None:
         ({"models": "a,a"}, "listed twice"),
         ({"max_body_bytes": 2000, "max_chars": 5000}, "smaller than max_chars"),
         ({"batch_wait_ms": -1}, "TEXTSIEVE_BATCH_WAIT_MS"),
+        # Below a web server's common 8 KiB line limit an ordinary request would not fit; above 1 MiB
+        # a connection could hold that much in an unfinished head.
+        (
+            {"max_head_bytes": 4096},
+            r"^setting max_head_bytes \(TEXTSIEVE_MAX_HEAD_BYTES\): .*greater than or equal to 8192$",
+        ),
+        (
+            {"max_head_bytes": 2**20 + 1},
+            r"\(TEXTSIEVE_MAX_HEAD_BYTES\): Input should be less than or equal to 1048576$",
+        ),
+        ({"max_head_bytes": "64k"}, r"\(TEXTSIEVE_MAX_HEAD_BYTES\): Input should be a valid integer"),
         # The registry verbs' rules (textsieve/environment.py), so serve and they agree.
         ({"registry": " "}, r"\(TEXTSIEVE_REGISTRY\): empty"),
         ({"registry": "https://h/r"}, "https:// is not a registry"),

@@ -1,0 +1,147 @@
+"""JSON request bodies: read as UTF-8 only, and refused only once the route's token has been checked.
+
+RFC 8259 §8.1: JSON exchanged between systems MUST be encoded as UTF-8. FastAPI reads a JSON body
+with ``json.loads(bytes)``, which guesses UTF-16 and UTF-32 from a byte-order mark or from where
+the NUL bytes are, and it ignores the media type's ``charset``; so a UTF-16 body and a
+``Content-Type: application/json; charset=utf-16`` were answered as if they were UTF-8, on every
+JSON route, while the refusals told callers to send UTF-8. Here every route that reads a JSON
+body (:class:`JsonBodyRoute`) reads it as UTF-8 or refuses it:
+
+- a ``charset`` other than ``utf-8`` (any case, quoted or not) is refused with 415 naming it
+  (RFC 8259 §11 defines no charset parameter; ``utf-8`` is harmless and stays accepted);
+- a body in UTF-16 or UTF-32, told by its byte-order mark or by a NUL byte among its first two
+  (a JSON text begins with an ASCII character, so UTF-8 JSON never has one there; RFC 4627 §3's
+  rule), is refused with 415 naming the encoding found;
+- a UTF-8 byte-order mark is ignored, as RFC 8259 §8.1 allows a parser to: the bytes after it are
+  UTF-8 and mean the same, and common tools add one (Windows PowerShell 5.1's ``-Encoding utf8``,
+  from memory), so refusing it would fail callers for nothing. The lane
+  (:mod:`~textsieve.service.web.lane`) does not read such a body; it hands it here.
+- bytes that are not UTF-8 at all, JSON that does not parse, nesting deeper than the reader's
+  recursion and numbers past Python's 4300 digits are 422, as before.
+
+FastAPI reads the body before it runs a route's dependencies, so any such refusal used to come
+before the admin or reviewer token's 401/403 (DEVELOPERS.md: the token is checked before anything
+else about the request). The request here keeps the refusal in its state and hands FastAPI a
+value no request model takes; the dependencies run (the token, a query string), then the body's
+validation fails and :mod:`~textsieve.service.web.problems` answers with the refusal kept.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Callable, Coroutine
+from typing import Any
+
+from fastapi import Request, Response
+from fastapi.routing import APIRoute
+
+from textsieve.errors import InputError
+from textsieve.service.web.problems import BODY_REFUSAL, CharsetError, body_shape
+
+UTF8_BOM = b"\xef\xbb\xbf"
+# Longest first: UTF-32LE's mark begins with UTF-16LE's.
+_MARKS = (
+    (b"\x00\x00\xfe\xff", "UTF-32BE"),
+    (b"\xff\xfe\x00\x00", "UTF-32LE"),
+    (b"\xfe\xff", "UTF-16BE"),
+    (b"\xff\xfe", "UTF-16LE"),
+)
+
+
+def charsets(content_type: str) -> list[str]:
+    """The ``charset`` parameters of a Content-Type, lowercased and unquoted (RFC 9110 §8.3.2)."""
+    found = []
+    for param in content_type.split(";")[1:]:
+        name, eq, value = param.partition("=")
+        if eq and name.strip().lower() == "charset":
+            found.append(value.strip().strip('"').strip().lower())
+    return found
+
+
+def foreign_encoding(body: bytes) -> str | None:
+    """The UTF-16 or UTF-32 form ``body`` is in and how it shows (the same guess Python's
+    ``json.detect_encoding`` makes), or None."""
+    for mark, name in _MARKS:
+        if body.startswith(mark):
+            return f"{name} (its byte-order mark {mark.hex(' ').upper()})"
+    head = body[:4]
+    if len(head) < 2 or (head[0] and head[1]):
+        return None
+    if not head[0]:
+        name = "UTF-16BE" if head[1] or len(head) < 4 else "UTF-32BE"
+    else:
+        name = "UTF-16LE" if len(head) < 4 or head[2] or head[3] else "UTF-32LE"
+    return f"{name} (a NUL byte among its first bytes {head.hex(' ').upper()})"
+
+
+def _unreadable(why: str, shape: Callable[[], str], cause: BaseException) -> InputError:
+    message = f"the body could not be read as JSON ({why}); send UTF-8 JSON: {shape()}"
+    error = InputError(f"body: {message}", errors=[{"field": "body", "message": message, "type": "body_unreadable"}])
+    error.__cause__ = cause
+    return error
+
+
+def parse(body: bytes, content_type: str, shape: Callable[[], str]) -> Any:
+    """The JSON value of a request body sent as ``content_type``; raises :class:`InputError`
+    (:class:`CharsetError` for another encoding) with the words for the reply. ``shape()`` says
+    what the route's body looks like, for the refusals that say what to send."""
+    for charset in charsets(content_type):
+        if charset != "utf-8":
+            raise CharsetError(f"Content-Type: {content_type[:100]} declares charset {charset[:40]!r}", shape())
+    found = foreign_encoding(body)
+    if found is not None:
+        raise CharsetError(f"the body is {found}", shape())
+    skip = len(UTF8_BOM) if body.startswith(UTF8_BOM) else 0
+    try:
+        # surrogatepass, as json.loads(bytes) decodes: an encoded surrogate is then named by the field's check.
+        text = (body[skip:] if skip else body).decode("utf-8", "surrogatepass")
+    except UnicodeDecodeError as exc:
+        raise _unreadable(f"not UTF-8: {exc.reason} at byte {exc.start + skip}", shape, exc) from None
+    try:
+        return json.loads(text)
+    except json.JSONDecodeError as exc:
+        message = f"the body is not valid JSON (at character {exc.pos}: {exc.msg})"
+        raise InputError(
+            f"body: {message}", errors=[{"field": "body", "message": message, "type": "json_invalid"}]
+        ) from exc
+    except RecursionError as exc:
+        raise _unreadable("nested too deeply", shape, exc) from None
+    except ValueError as exc:  # Python's int conversion limit (4300 digits)
+        raise _unreadable("a number has too many digits", shape, exc) from None
+
+
+class Refused:
+    """What a refused body is handed to FastAPI as: no request model accepts it, so its
+    validation fails after the route's dependencies have run."""
+
+    __slots__ = ()
+
+
+REFUSED = Refused()
+
+
+class _Utf8JsonRequest(Request):
+    async def json(self) -> Any:
+        if not hasattr(self, "_json"):
+            content_type = self.headers.get("content-type", "")
+            try:
+                self._json = parse(await self.body(), content_type, lambda: body_shape(self.scope))
+            except InputError as exc:
+                self.scope.setdefault("state", {})[BODY_REFUSAL] = exc
+                self._json = REFUSED
+        return self._json
+
+
+class JsonBodyRoute(APIRoute):
+    """A route whose JSON body is read by :func:`parse` (``APIRouter(route_class=JsonBodyRoute)``)."""
+
+    def get_route_handler(self) -> Callable[[Request], Coroutine[Any, Any, Response]]:
+        handler = super().get_route_handler()
+
+        async def read_as_utf8(request: Request) -> Response:
+            return await handler(_Utf8JsonRequest(request.scope, request.receive))
+
+        return read_as_utf8
+
+
+__all__ = ["REFUSED", "JsonBodyRoute", "charsets", "foreign_encoding", "parse"]
