@@ -185,6 +185,21 @@ def _jsonl(*rows: object) -> str:
             ["line 1: the label 'billing ' begins or ends with spaces"],
             id="label with a trailing space",
         ),
+        # A label is recorded with each reviewer's verdict (at most 200 characters there): a longer
+        # one trained and published, and no verdict on its class could be recorded.
+        pytest.param(
+            "d.jsonl",
+            _jsonl({"text": "a", "label": "x" * 201}),
+            ["line 1: the label 'xxx", "is 201 characters long; a label holds at most 200"],
+            id="label too long",
+        ),
+        # RFC 8259 §8.2: a \\ud800 escape alone names no character; a reply holding it cannot be UTF-8.
+        pytest.param(
+            "d.jsonl",
+            b'{"text": "a", "label": "ok\\ud800"}\n',
+            ["line 1: the label", "holds a lone surrogate (U+D800)"],
+            id="label with a lone surrogate",
+        ),
         pytest.param(
             "d.xlsx", "whatever", ["unsupported file type '.xlsx'", ".jsonl", ".csv"], id="unsupported extension"
         ),

@@ -24,6 +24,9 @@ CSV_SUFFIXES = {".csv": ",", ".tsv": "\t"}
 _ALLOWED = "use .jsonl, .ndjson, .json (one JSON object a line, or one JSON array), .csv or .tsv (header row)"
 _BOM = "\ufeff"
 
+# The longest label: reviewers' verdicts record it (service/web/schemas.py VerdictRequest).
+MAX_LABEL_CHARS = 200
+
 
 @dataclass(frozen=True, slots=True)
 class Example:
@@ -149,8 +152,14 @@ class _Fields:
 def label_problem(label: str) -> str | None:
     """Why a label cannot name a class, or None. A label becomes a JSON key, a CSV and Parquet column
     name (``probability:LABEL``), a metric's label value and a line of the CLI's tables, and labels are
-    compared exactly, so it holds no control characters (line breaks, tabs) and no spaces at its ends."""
-    bad = next((c for c in label if unicodedata.category(c) == "Cc"), None)
+    compared exactly, so it holds no control characters (line breaks, tabs) and no spaces at its ends.
+    It is recorded with each reviewer's verdict, which holds at most ``MAX_LABEL_CHARS``; and it holds
+    no lone surrogate (a ``\\ud800`` escape in JSON), which no UTF-8 reply can carry."""
+    if len(label) > MAX_LABEL_CHARS:
+        return f"is {len(label):,} characters long; a label holds at most {MAX_LABEL_CHARS}"
+    bad = next((c for c in label if unicodedata.category(c) in ("Cc", "Cs")), None)
+    if bad is not None and unicodedata.category(bad) == "Cs":
+        return f"holds a lone surrogate (U+{ord(bad):04X}), which is not text; labels are UTF-8 text"
     if bad is not None:
         return f"holds a control character (U+{ord(bad):04X}); labels are one line of printable text"
     if label != label.strip():
@@ -244,4 +253,12 @@ def _show(delimiter: str) -> str:
     return "tabs" if delimiter == "\t" else repr(delimiter)
 
 
-__all__ = ["CSV_SUFFIXES", "JSON_SUFFIXES", "Example", "check_labels", "label_problem", "load_examples"]
+__all__ = [
+    "CSV_SUFFIXES",
+    "JSON_SUFFIXES",
+    "MAX_LABEL_CHARS",
+    "Example",
+    "check_labels",
+    "label_problem",
+    "load_examples",
+]

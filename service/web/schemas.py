@@ -16,6 +16,7 @@ from typing import Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 from pydantic_core import PydanticCustomError
 
+from textsieve.labelled import MAX_LABEL_CHARS
 from textsieve.registry import ModelInfo, VersionInfo
 from textsieve.registry.names import MAX_VERSION, MODEL_NAME, MODEL_NAME_RULE
 from textsieve.registry.tokenizer import text_refusal
@@ -103,13 +104,13 @@ class VerdictRequest(_Request):
         min_length=1,
         description="the text as it was classified; stored so the verdict can become training data",
     )
-    predicted_label: str = Field(min_length=1, max_length=200, description="the label the version gave")
+    predicted_label: str = Field(min_length=1, max_length=MAX_LABEL_CHARS, description="the label the version gave")
     predicted_probability: float = Field(
         ge=0, le=1, allow_inf_nan=False, description="the calibrated probability shown with it"
     )
     verdict_label: str = Field(
         min_length=1,
-        max_length=200,
+        max_length=MAX_LABEL_CHARS,
         description="the reviewer's label: the predicted one to confirm it, another of the version's labels to "
         "correct it",
     )
