@@ -326,6 +326,30 @@ def public_location(location: str) -> str:
     return describe(location)
 
 
+def _allowed(name: str) -> str:
+    """What a setting may hold, from its type and bounds: 'a whole number from 0 to 32 (what it is)'."""
+    import annotated_types as at
+
+    field = Settings.model_fields[name]
+    kind = {int: "a whole number", float: "a number", bool: "true or false"}.get(field.annotation)  # type: ignore[arg-type]
+    if kind is None:
+        return f"it is {field.description}" if field.description else "see the README's settings table"
+
+    def shown(v: float) -> str:
+        return f"{v:,}" if float(v).is_integer() else f"{v:g}"
+
+    low = next((shown(m.ge) for m in field.metadata if isinstance(m, at.Ge)), None)
+    low = low or next((f"more than {shown(m.gt)}" for m in field.metadata if isinstance(m, at.Gt)), None)
+    high = next((shown(m.le) for m in field.metadata if isinstance(m, at.Le)), None)
+    if low is not None and high is not None:
+        kind += f" from {low} to {high}" if not low.startswith("more") else f", {low} and at most {high}"
+    elif low is not None:
+        kind += f", {low} or more" if not low.startswith("more") else f", {low}"
+    elif high is not None:
+        kind += f", at most {high}"
+    return f"allowed: {kind}" + (f" ({field.description})" if field.description else "")
+
+
 def load_settings(*, flags: Mapping[str, str] | None = None, **overrides: Any) -> Settings:
     """Environment plus explicit overrides (None means "not given"); bad values raise InputError.
 
@@ -343,6 +367,8 @@ def load_settings(*, flags: Mapping[str, str] | None = None, **overrides: Any) -
         first = exc.errors()[0]
         name = ".".join(str(p) for p in first["loc"])
         msg = str(first["msg"]).removeprefix("Value error, ")
+        if first["type"] != "value_error" and name in Settings.model_fields:
+            msg += f"; {_allowed(name)}"  # pydantic's words name neither the form nor the range
         if name in given and flags and name in flags:
             where = flags[name]
         else:

@@ -42,11 +42,12 @@ def test_defaults_are_sane() -> None:
         # a connection could hold that much in an unfinished head.
         (
             {"max_head_bytes": 4096},
-            r"^setting max_head_bytes \(TEXTSIEVE_MAX_HEAD_BYTES\): .*greater than or equal to 8192$",
+            r"^setting max_head_bytes \(TEXTSIEVE_MAX_HEAD_BYTES\): .*greater than or equal to 8192; "
+            r"allowed: a whole number from 8,192 to 1,048,576 \(largest request line",
         ),
         (
             {"max_head_bytes": 2**20 + 1},
-            r"\(TEXTSIEVE_MAX_HEAD_BYTES\): Input should be less than or equal to 1048576$",
+            r"\(TEXTSIEVE_MAX_HEAD_BYTES\): Input should be less than or equal to 1048576; allowed: ",
         ),
         ({"max_head_bytes": "64k"}, r"\(TEXTSIEVE_MAX_HEAD_BYTES\): Input should be a valid integer"),
         # The registry verbs' rules (textsieve/environment.py), so serve and they agree.
@@ -64,9 +65,25 @@ def test_bad_values_are_refused_naming_the_setting(overrides: dict[str, object],
         load_settings(**overrides)
 
 
+@pytest.mark.parametrize(
+    ("overrides", "allowed"),
+    [
+        ({"pinned_versions": "m=0"}, "allowed: a whole number from 0 to 32 (non-live versions kept loaded"),
+        ({"drift": "maybe"}, "allowed: true or false (count drift signals"),
+        ({"queue_wait_ms": 0}, "allowed: a number, more than 0 and at most 60,000 (longest admitted work"),
+    ],
+)
+def test_a_value_of_the_wrong_form_or_range_is_told_what_is_allowed(overrides: dict[str, object], allowed: str) -> None:
+    """pydantic's own words ('Input should be a valid integer') named neither the range nor what the
+    setting is for; the one line now states both, from the setting's type, bounds and description."""
+    with pytest.raises(InputError) as info:
+        load_settings(**overrides)
+    assert info.value.message.endswith(")") and allowed in info.value.message, info.value.message
+
+
 def test_a_bad_flag_is_named_as_the_flag_not_the_variable() -> None:
     flags = {"port": "--port", "workers": "--workers"}
-    with pytest.raises(InputError, match=r"^--port: Input should be greater than or equal to 0$"):
+    with pytest.raises(InputError, match=r"^--port: Input should be greater than or equal to 0; allowed: a whole"):
         load_settings(flags=flags, port=-5)
     with pytest.raises(InputError, match=r"^setting max_texts \(TEXTSIEVE_MAX_TEXTS\)"):
         load_settings(flags=flags, max_texts=0)  # no flag gave it
