@@ -335,8 +335,9 @@ def _allowed(name: str) -> str:
     if kind is None:
         return f"it is {field.description}" if field.description else "see the README's settings table"
 
-    def shown(v: float) -> str:
-        return f"{v:,}" if float(v).is_integer() else f"{v:g}"
+    def shown(bound: object) -> str:
+        v = float(bound)  # type: ignore[arg-type]  # annotated_types types its bounds as protocols
+        return f"{int(v):,}" if v.is_integer() else f"{v:g}"
 
     low = next((shown(m.ge) for m in field.metadata if isinstance(m, at.Ge)), None)
     low = low or next((f"more than {shown(m.gt)}" for m in field.metadata if isinstance(m, at.Gt)), None)
