@@ -13,7 +13,7 @@ here once:
 - **Widths** are terminal columns, not code points: East Asian Wide and Fullwidth characters take two,
   combining marks and zero-width format characters none (Unicode UAX #11), so CJK text stays aligned.
 - **Wrapping.** A table wider than the terminal wraps the columns its verb names as free text, at spaces
-  where it can, within words where it must; numbers, states and times are never split. Nothing is cut:
+  or after a comma, semicolon, slash or bar where it can, within words where it must; numbers, states and times are never split. Nothing is cut:
   the whole text stays in the table.
 - **Where the width comes from.** ``COLUMNS`` when set (``shutil.get_terminal_size`` honours it), else
   the terminal's own width when the output is a terminal. Output that is not a terminal (a pipe, a
@@ -42,6 +42,8 @@ DEFAULT_COLUMNS = 80
 
 # Bidirectional formatting characters (Unicode UAX #9, section 2): they reorder what follows them on the line.
 _BIDI = frozenset("\u061c\u200e\u200f\u202a\u202b\u202c\u202d\u202e\u2066\u2067\u2068\u2069")
+# Where a word may end a wrapped line besides a space: after list separators (common practice).
+_AFTER = frozenset(",;/|")
 _BREAKS = {"\r\n", "\n", "\r", "\x0b", "\x0c", "\x85", "\u2028", "\u2029"}
 
 
@@ -123,8 +125,9 @@ def terminal_width(stream: TextIO | None = None) -> int | None:
 
 
 def wrap(text: str, width: int) -> list[str]:
-    """``text`` made safe and broken into lines of at most ``width`` columns: at spaces, and inside a
-    word only when the word alone is wider (an escape such as ``\\x1b`` is never split)."""
+    """``text`` made safe and broken into lines of at most ``width`` columns: at spaces or after a comma,
+    semicolon, slash or bar, and inside a word only when the word alone is wider (an escape such as
+    ``\\x1b`` is never split)."""
     lines: list[list[tuple[str, int]]] = []
     line: list[tuple[str, int]] = []
     used = 0
@@ -137,10 +140,13 @@ def wrap(text: str, width: int) -> list[str]:
                 lines.append(line)
                 line, used = [], 0
                 continue
-            space = max((i for i, (p, _) in enumerate(line) if p == " "), default=-1)
-            if space >= 0:
-                lines.append(line[:space])
-                line = line[space + 1 :]
+            cut = max((i for i, (p, _) in enumerate(line) if p in _AFTER or p == " "), default=-1)
+            if cut >= 0 and line[cut][0] == " ":
+                lines.append(line[:cut])
+                line = line[cut + 1 :]
+            elif cut >= 0:  # after a comma or the like of a list with no spaces ("account,billing,praise")
+                lines.append(line[: cut + 1])
+                line = line[cut + 1 :]
             else:
                 lines.append(line)
                 line = []

@@ -74,6 +74,18 @@ def test_a_long_reason_wraps_within_the_width_and_keeps_every_character() -> Non
     assert lines[-1].split() == ["22", "ana", "short", "bo"]
 
 
+def test_a_list_without_spaces_breaks_after_its_commas_not_inside_its_words() -> None:
+    """A bundle's labels are shown comma-joined ("account,billing,praise,repair"); at 80 columns the
+    history table split them as "account,bill" / "ing,praise,r" / "epair". Breaking after a list
+    separator rather than inside a word is common practice for lists in narrow columns (not UAX #14,
+    which keeps a comma with the letter after it, as in "e.g.")."""
+    labels = "account,billing,praise,repair"
+    assert wrap(labels, 12) == ["account,", "billing,", "praise,", "repair"]
+    assert wrap(labels, 16) == ["account,billing,", "praise,repair"]
+    assert wrap("a;b/c|d e", 4) == ["a;b/", "c|d", "e"]
+    assert wrap("unbroken" * 3, 10) == ["unbrokenun", "brokenunbr", "oken"]  # no separator: inside the word
+
+
 def test_without_a_width_each_row_is_one_line_holding_its_whole_text() -> None:
     """Output to a pipe: one record a line for grep and awk, the whole reason in it, still made safe."""
     text = table(["EVENT", "REASON"], [[1, REASON], [2, "ok"]], wrap_columns=(1,), width=None)
