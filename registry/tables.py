@@ -13,8 +13,8 @@ here once:
 - **Widths** are terminal columns, not code points: East Asian Wide and Fullwidth characters take two,
   combining marks and zero-width format characters none (Unicode UAX #11), so CJK text stays aligned.
 - **Wrapping.** A table wider than the terminal wraps the columns its verb names as free text, at spaces
-  or after a comma, semicolon, slash or bar where it can, within words where it must; numbers, states and times are never split. Nothing is cut:
-  the whole text stays in the table.
+  or after a comma, semicolon, slash or bar where it can, within words where it must; numbers, states
+  and times are never split. Nothing is cut: the whole text stays in the table.
 - **Where the width comes from.** ``COLUMNS`` when set (``shutil.get_terminal_size`` honours it), else
   the terminal's own width when the output is a terminal. Output that is not a terminal (a pipe, a
   file) with no ``COLUMNS`` is not wrapped: each row stays one line holding its whole text, so
