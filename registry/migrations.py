@@ -193,6 +193,20 @@ MIGRATIONS: tuple[Migration, ...] = (
         CREATE INDEX verdicts_at ON verdicts (model, at)
     """,
     ),
+    # The Idempotency-Key a verdict was recorded under (draft-ietf-httpapi-idempotency-key-header)
+    # and the sha256 of what the request asked (registry/verdicts.py fingerprint). They live on the
+    # verdict's own row, so the key is stored in the same INSERT as the verdict and goes when the
+    # verdict is deleted. Older rows keep NULL: they were recorded without a key. The unique index
+    # is what makes two concurrent requests with one key store one verdict.
+    Migration(
+        "0008_verdict_keys",
+        """
+        ALTER TABLE verdicts ADD COLUMN idempotency_key TEXT;
+        ALTER TABLE verdicts ADD COLUMN request_sha256 TEXT;
+        CREATE UNIQUE INDEX verdicts_idempotency_key ON verdicts (model, idempotency_key)
+            WHERE idempotency_key IS NOT NULL
+    """,
+    ),
 )
 
 FIRST_MIGRATION = MIGRATIONS[0].name  # when it was applied is the registry's identity (Registry.registry_id)

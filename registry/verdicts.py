@@ -12,11 +12,18 @@ every replica (one table in SQLite or PostgreSQL), survive restarts, and serve t
 
 A verdict stores the text it judges because that is what makes it reusable as training data; the
 texts are kept only because a reviewer chose to submit them, and :meth:`Verdicts.delete` removes them.
+
+A verdict may be recorded under an idempotency key (the ``Idempotency-Key`` of
+draft-ietf-httpapi-idempotency-key-header): the first request with a key stores the verdict, a
+repeat of the same request with it gets that verdict back instead of a second one, and the same key
+with another request is refused. The key is stored on the verdict's row with the sha256 of what the
+request asked, so it lives exactly as long as the verdict: that is the keys' whole expiry policy.
 """
 
 from __future__ import annotations
 
 import datetime as dt
+import hashlib
 import json
 import math
 from collections.abc import Sequence
@@ -24,7 +31,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from textsieve.errors import InputError
+from textsieve.errors import InputError, KeyReusedError
 from textsieve.files import atomic_write_text
 from textsieve.labelled import JSON_SUFFIXES
 from textsieve.registry._db import Tx
@@ -44,7 +51,11 @@ if TYPE_CHECKING:
     from textsieve.registry.api import Registry
 
 _COLUMNS = "id, model, version, text, predicted_label, predicted_probability, verdict_label, reviewer, at"
+# What a keyed request's fingerprint covers: every field it asks to store, as validated.
+_ASKED = ("model", "version", "text", "predicted_label", "predicted_probability", "verdict_label", "reviewer")
 MAX_DELETE_IDS = 10_000
+MAX_KEY_CHARS = 255
+KEY_RULE = f"1 to {MAX_KEY_CHARS} printable ASCII characters (space to ~)"
 
 
 @dataclass(frozen=True)
@@ -79,6 +90,28 @@ def utc_cutoff(text: str) -> str:
         ) from None
     # Stored times are isoformat(timespec="microseconds") in UTC, so the same spelling compares as text.
     return utc.isoformat(timespec="microseconds")
+
+
+@dataclass(frozen=True)
+class Recorded:
+    """A verdict recorded under an idempotency key, and whether the key had already recorded it."""
+
+    verdict: VerdictInfo
+    replayed: bool
+
+
+def check_key(key: object) -> str:
+    """An idempotency key: 1–255 printable ASCII characters, the characters of an RFC 8941 string."""
+    if not isinstance(key, str) or not 1 <= len(key) <= MAX_KEY_CHARS or not all(" " <= c <= "~" for c in key):
+        shown = repr(key)[:60]
+        raise InputError(f"bad idempotency key {shown}: {KEY_RULE}")
+    return key
+
+
+def fingerprint(fields: dict[str, object]) -> str:
+    """sha256 of a request's validated fields as canonical JSON (sorted keys, no spaces, UTF-8)."""
+    canonical = json.dumps(fields, sort_keys=True, ensure_ascii=False, separators=(",", ":"), allow_nan=False)
+    return hashlib.sha256(canonical.encode("utf-8")).hexdigest()
 
 
 def check_text(text: object) -> str:
@@ -123,6 +156,57 @@ class Verdicts:
         reviewer: str,
     ) -> VerdictInfo:
         """Store one verdict; both labels must be labels of that version."""
+        return self._store(
+            model,
+            version,
+            None,
+            text=text,
+            predicted_label=predicted_label,
+            predicted_probability=predicted_probability,
+            verdict_label=verdict_label,
+            reviewer=reviewer,
+        ).verdict
+
+    def record_once(
+        self,
+        model: str,
+        version: int,
+        *,
+        key: str,
+        text: str,
+        predicted_label: str,
+        predicted_probability: float,
+        verdict_label: str,
+        reviewer: str,
+    ) -> Recorded:
+        """Store one verdict under an idempotency key, scoped to the model.
+
+        The same key with the same request returns the verdict it recorded (``replayed``) and
+        stores nothing; with another request it is a :class:`KeyReusedError`.
+        """
+        return self._store(
+            model,
+            version,
+            check_key(key),
+            text=text,
+            predicted_label=predicted_label,
+            predicted_probability=predicted_probability,
+            verdict_label=verdict_label,
+            reviewer=reviewer,
+        )
+
+    def _store(
+        self,
+        model: str,
+        version: int,
+        key: str | None,
+        *,
+        text: str,
+        predicted_label: str,
+        predicted_probability: float,
+        verdict_label: str,
+        reviewer: str,
+    ) -> Recorded:
         model, version = validate_model_name(model), validate_version(version)
         text = check_text(text)
         probability = _check_probability(predicted_probability)
@@ -134,13 +218,30 @@ class Verdicts:
             info = reg._require_version(Queries(tx), model, version)
             _check_label("predicted label", predicted_label, info.labels, model, version)
             _check_label("verdict label", verdict_label, info.labels, model, version)
+            values = (model, version, text, predicted_label, probability, verdict_label, reviewer)
+            asked = None if key is None else fingerprint(dict(zip(_ASKED, values, strict=True)))
+            # With a key, the unique index (model, idempotency_key) decides which of two concurrent
+            # requests stores its verdict: the other inserts nothing and reads the winner's row.
             row = tx.one(
                 "INSERT INTO verdicts (model, version, text, predicted_label, predicted_probability, verdict_label, "
-                f"reviewer, at) VALUES (?, ?, ?, ?, ?, ?, ?, ?) RETURNING {_COLUMNS}",
-                (model, version, text, predicted_label, probability, verdict_label, reviewer, utc_now()),
+                "reviewer, at, idempotency_key, request_sha256) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?) "
+                "ON CONFLICT (model, idempotency_key) WHERE idempotency_key IS NOT NULL DO NOTHING "
+                f"RETURNING {_COLUMNS}",
+                (*values, utc_now(), key, asked),
             )
-        assert row is not None
-        return VerdictInfo.from_row(row)
+            if row is not None:
+                return Recorded(VerdictInfo.from_row(row), replayed=False)
+            first = tx.one(
+                f"SELECT {_COLUMNS}, request_sha256 FROM verdicts WHERE model = ? AND idempotency_key = ?", (model, key)
+            )
+        assert first is not None and key is not None  # only a key can conflict, and its row is committed
+        if first.pop("request_sha256") != asked:
+            raise KeyReusedError(
+                f"idempotency key {key[:60]!r} was already used for another verdict on {model!r} (#{first['id']}, "
+                f"recorded {first['at']}); a retry must repeat that request exactly, and a new verdict needs a new key",
+                verdict_id=first["id"],
+            )
+        return Recorded(VerdictInfo.from_row(first), replayed=True)
 
     def of(self, model: str, *, version: int | None = None) -> list[VerdictInfo]:
         """Every verdict on the model (or one version), oldest first."""
@@ -290,4 +391,16 @@ def export_jsonl(verdicts: Sequence[VerdictInfo], path: Path) -> int:
     return len(lines)
 
 
-__all__ = ["MAX_DELETE_IDS", "Deletion", "Verdicts", "check_text", "export_jsonl", "utc_cutoff"]
+__all__ = [
+    "KEY_RULE",
+    "MAX_DELETE_IDS",
+    "MAX_KEY_CHARS",
+    "Deletion",
+    "Recorded",
+    "Verdicts",
+    "check_key",
+    "check_text",
+    "export_jsonl",
+    "fingerprint",
+    "utc_cutoff",
+]

@@ -2,7 +2,8 @@
 
     TextsieveError                 base; never raised itself
     ├── InputError                 bad user input (data file, argument, request): CLI exit 2, HTTP 422
-    │   └── LimitError             a request limit was exceeded: HTTP 413
+    │   ├── LimitError             a request limit was exceeded: HTTP 413
+    │   └── KeyReusedError         an idempotency key already recorded a different request: HTTP 422
     ├── BundleError                a bundle is malformed or fails a check: CLI exit 2, HTTP 422
     │   └── ParityError            exported model disagrees with its source: CLI exit 1
     ├── RegistryError              registry state or storage problem
@@ -42,6 +43,10 @@ class InputError(TextsieveError):
 
 class LimitError(InputError):
     """A configured request limit was exceeded."""
+
+
+class KeyReusedError(InputError):
+    """An idempotency key came again with a request unlike the one it first recorded."""
 
 
 class BundleError(TextsieveError):
@@ -128,6 +133,7 @@ __all__ = [
     "GateRefusedError",
     "InputError",
     "IntegrityError",
+    "KeyReusedError",
     "LimitError",
     "NotFoundError",
     "OverloadedError",

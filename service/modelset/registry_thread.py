@@ -26,8 +26,8 @@ from textsieve.registry import (
     VersionInfo,
     open_registry,
 )
-from textsieve.registry.records import VerdictInfo
 from textsieve.registry.shadow import Tally
+from textsieve.registry.verdicts import Recorded
 from textsieve.service.settings import public_location
 
 P = ParamSpec("P")
@@ -126,11 +126,26 @@ class RegistryThread:
         predicted_probability: float,
         verdict_label: str,
         reviewer: str,
-    ) -> VerdictInfo:
+        idempotency_key: str | None = None,
+    ) -> Recorded:
+        """Store a verdict; under an idempotency key, a repeat returns the verdict the key recorded."""
+        if idempotency_key is None:
+            info = await self._run(
+                self.registry.verdicts.record,
+                model,
+                version,
+                text=text,
+                predicted_label=predicted_label,
+                predicted_probability=predicted_probability,
+                verdict_label=verdict_label,
+                reviewer=reviewer,
+            )
+            return Recorded(info, replayed=False)
         return await self._run(
-            self.registry.verdicts.record,
+            self.registry.verdicts.record_once,
             model,
             version,
+            key=idempotency_key,
             text=text,
             predicted_label=predicted_label,
             predicted_probability=predicted_probability,

@@ -27,6 +27,7 @@ from textsieve.errors import (
     GateRefusedError,
     InputError,
     IntegrityError,
+    KeyReusedError,
     LimitError,
     NotFoundError,
     OverloadedError,
@@ -34,6 +35,7 @@ from textsieve.errors import (
     TextsieveError,
     UnavailableError,
 )
+from textsieve.service.web.idempotency import IdempotencyKeyError
 from textsieve.service.web.methods import allowed
 
 MEDIA_TYPE = "application/problem+json"
@@ -138,6 +140,22 @@ KINDS: dict[type[BaseException], Kind] = {
         "The body's transfer coding is not implemented",
         "Request bodies are read with Content-Length or Transfer-Encoding: chunked; any other transfer coding "
         "(RFC 9112 §6.1) is not undone here, so the body would be read as if it were JSON. Send it uncompressed.",
+    ),
+    IdempotencyKeyError: Kind(
+        400,
+        "bad-idempotency-key",
+        "The Idempotency-Key header is not valid",
+        "An Idempotency-Key (draft-ietf-httpapi-idempotency-key-header) is sent once, as one Structured Field "
+        'string (RFC 8941 §3.3.3): 1 to 255 printable ASCII characters inside double quotes, such as "8e03978e-'
+        '40d5-43e8-bc93-6894a57f9324". Nothing was recorded.',
+    ),
+    KeyReusedError: Kind(
+        422,
+        "idempotency-key-reused",
+        "The Idempotency-Key was already used for another request",
+        "The key already recorded a verdict, and this request differs from the one that recorded it "
+        "(its model, version, text, labels, probability or reviewer). Nothing new was recorded. A retry must "
+        "repeat the first request exactly; a new verdict needs a new key.",
     ),
     InputError: Kind(
         422,

@@ -3,7 +3,9 @@ browser tests (this module holds no tests).
 
 It forwards every request to the service and hands back the service's reply, except the requests
 a test tells it to answer itself, as a gateway does while the service behind it is down, slow or
-shedding load: an HTML 502, an empty 503 or 504, a 429 with ``Retry-After``. The page is loaded
+shedding load: an HTML 502, an empty 503 or 504, a 429 with ``Retry-After``. A reply marked
+``after_forwarding`` is sent only once the service has answered, and instead of that answer: the
+gateway that times out (504) after the service acted, so the page never learns that it did. The page is loaded
 through it, so the page's own origin (its CSP's ``connect-src 'self'``) is the proxy's.
 """
 
@@ -32,6 +34,7 @@ class Reply:
     reason: str
     body: bytes = b""
     headers: tuple[tuple[str, str], ...] = ()
+    after_forwarding: bool = False  # forward first, drop the service's reply, send this one
 
 
 class Gateway:
@@ -44,6 +47,7 @@ class Gateway:
         self._rules: dict[tuple[str, str], Reply] = {}
         self._lock = threading.Lock()
         self.answered: list[tuple[str, str]] = []
+        self.dropped: list[int] = []  # statuses of the service's replies an after_forwarding rule replaced
         self.url = ""
 
     def answer(self, method: str, path: str, reply: Reply) -> None:
@@ -87,7 +91,7 @@ def _handler(gateway: Gateway) -> type[BaseHTTPRequestHandler]:
             length = int(self.headers.get("Content-Length") or 0)
             body = self.rfile.read(length) if length else b""
             own = gateway.rule(self.command, self.path.split("?", 1)[0])
-            if own is not None:
+            if own is not None and not own.after_forwarding:
                 self._send(own.status, own.reason, list(own.headers), own.body)
                 return
             conn = http.client.HTTPConnection(gateway.upstream_host, gateway.upstream_port, timeout=60)
@@ -97,9 +101,13 @@ def _handler(gateway: Gateway) -> type[BaseHTTPRequestHandler]:
                 r = conn.getresponse()
                 data = r.read()
                 headers = [(k, v) for k, v in r.getheaders() if k.lower() not in HOP_BY_HOP]
-                self._send(r.status, r.reason, headers, data)
             finally:
                 conn.close()
+            if own is not None:
+                gateway.dropped.append(r.status)
+                self._send(own.status, own.reason, list(own.headers), own.body)
+                return
+            self._send(r.status, r.reason, headers, data)
 
         do_GET = do_POST = do_HEAD = _relay
 

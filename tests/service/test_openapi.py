@@ -125,3 +125,19 @@ def test_every_operation_with_a_body_states_the_refusals_made_before_any_route(d
     for op in with_body:
         for code in ("413", "415"):
             assert "application/problem+json" in op["responses"][code]["content"], (op["operationId"], code)
+
+
+def test_record_verdict_documents_the_idempotency_key_header(document: dict[str, Any]) -> None:
+    """draft-ietf-httpapi-idempotency-key-header: ``Idempotency-Key`` is a request header whose value
+    is an RFC 8941 String (§3.3.3: printable ASCII in double quotes, only ``"`` and ``\\`` escaped)."""
+    op = document["paths"]["/v1/verdicts"]["post"]
+    params = [p for p in op.get("parameters", []) if p["in"] == "header" and p["name"] == "Idempotency-Key"]
+    assert len(params) == 1 and params[0]["required"] is False and params[0]["description"]
+    pattern = re.compile(params[0]["schema"]["pattern"])
+    draft_example = '"8e03978e-40d5-43e8-bc93-6894a57f9324"'
+    for good in (draft_example, '"a\\"b"', '"a\\\\b"', '" "'):
+        assert pattern.fullmatch(good), good
+    for bad in ("8e03978e-40d5", '""', '"a\\nb"', '"abc', '"a"b"', '"clé"'):
+        assert not pattern.fullmatch(bad), bad
+    for code in ("400", "422"):
+        assert "application/problem+json" in op["responses"][code]["content"], code

@@ -467,6 +467,43 @@ def test_a_gateway_reply_on_verdicts_status_and_models_is_named_by_its_status(br
         assert [v.text for v in reg.verdicts.of(MODEL)] == [TEXTS[0]]
 
 
+def test_a_verdict_whose_reply_a_gateway_lost_is_recorded_once_when_pressed_again(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """The gateway passes the verdict to the service, which stores it, then answers the page 504
+    itself. The card says the verdict is not confirmed and that pressing again is safe; pressing
+    again sends the card's same Idempotency-Key (draft-ietf-httpapi-idempotency-key-header), so the
+    service answers with the verdict it stored: one verdict in the registry, not two (before, two)."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    settings = settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)
+    with uvicorn_server(settings) as server, gateway_in_front_of(server.url) as gateway:
+        browser.get(gateway.url + "/")
+        wait = WebDriverWait(browser, 30)
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN)
+        browser.find_element(By.ID, "start").click()
+        _queue(browser, TEXTS[:1])
+        wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.result"))
+        card = browser.find_element(By.CSS_SELECTOR, "article.result")
+        note = card.find_element(By.CSS_SELECTOR, ".note")
+        gateway.answer("POST", "/v1/verdicts", Reply(504, "Gateway Timeout", b"", after_forwarding=True))
+        card.find_element(By.CSS_SELECTOR, "button.confirm").click()
+        wait.until(lambda d: note.text)
+        assert gateway.dropped == [201], "the service stored the verdict; the page got the gateway's 504"
+        assert "504 Gateway Timeout" in note.text and "not confirmed as recorded" in note.text, note.text
+        assert "Pressing the button again is safe" in note.text
+        assert card.get_attribute("data-state") == "pending"
+        with open_registry(registry_dir) as reg:
+            stored = reg.verdicts.of(MODEL)
+        assert len(stored) == 1
+        gateway.forward("POST", "/v1/verdicts")
+        card.find_element(By.CSS_SELECTOR, "button.confirm").click()
+        wait.until(lambda d: card.get_attribute("data-state") == "confirmed")
+        assert f"#{stored[0].id}" in card.find_element(By.CSS_SELECTOR, ".verdict").text
+    with open_registry(registry_dir) as reg:
+        assert reg.verdicts.of(MODEL) == stored
+
+
 # Texts whose spans, from the tiny test model, start or end inside a grapheme cluster: the
 # tokenizer makes a skin tone and each regional indicator a token of its own and splits at a
 # zero-width joiner. Clusters are marked as tests/helpers/graphemes.py reads them.
