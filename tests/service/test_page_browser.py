@@ -42,14 +42,36 @@ def test_page_classifies_and_highlights_like_the_api(browser, registry_dir: Path
         browser.find_element(By.ID, "go").click()
         wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == len(TEXTS))
         cards = browser.find_elements(By.CSS_SELECTOR, "article.result")
-        for card, result in zip(cards, api["results"], strict=True):
+        for card, result, sent in zip(cards, api["results"], TEXTS, strict=True):
             assert card.find_element(By.CSS_SELECTOR, ".pill").text == result["label"]
             marks = card.find_elements(By.CSS_SELECTOR, ".text mark")
-            shown = sorted(
-                m.get_attribute("textContent")[: -len(m.find_element(By.TAG_NAME, "sup").get_attribute("textContent"))]
-                for m in marks
-            )
+            shown = sorted(m.get_attribute("textContent") for m in marks)
             assert shown == sorted(s["text"] for s in result["spans"])
+            # The ranks are drawn beside the highlights, not written into the text: selecting and
+            # copying the text gives the text as sent (they were '<sup>' digits: "ride,1").
+            assert sorted(m.get_attribute("data-rank") for m in marks) == [str(i) for i in range(1, len(marks) + 1)]
+            copied = browser.execute_script(
+                "const r = document.createRange(); r.selectNodeContents(arguments[0]);"
+                "const s = getSelection(); s.removeAllRanges(); s.addRange(r); return s.toString();",
+                card.find_element(By.CSS_SELECTOR, ".text"),
+            )
+            assert copied == sent
+            count = len(result["spans"])
+            summary = card.find_element(By.CSS_SELECTOR, "details summary").get_attribute("textContent")
+            assert summary == f"{count} span{'s' if count != 1 else ''} in detail"
+        browser.find_element(By.ID, "spans").clear()
+        browser.find_element(By.ID, "spans").send_keys("1")
+        browser.find_element(By.ID, "texts").clear()
+        browser.find_element(By.ID, "texts").send_keys(TEXTS[0])
+        browser.find_element(By.ID, "go").click()
+
+        def summaries(d):  # type: ignore[no-untyped-def]  # read at once: the cards are redrawn meanwhile
+            return d.execute_script(
+                "return Array.from(document.querySelectorAll('details summary'), (e) => e.textContent)"
+            )
+
+        wait.until(lambda d: any(t.startswith("1 ") for t in summaries(d)))
+        assert "1 span in detail" in summaries(browser), summaries(browser)  # not "1 spans"
         browser.save_screenshot(str(tmp_path / "page.png"))
         assert (tmp_path / "page.png").stat().st_size > 10_000
         wait.until(ec.presence_of_element_located((By.ID, "status")))
