@@ -354,3 +354,108 @@ def test_resume_refuses_a_changed_input(
     write_jsonl(src, uci_rows()[:501])
     assert score(src, "--out", out, *common, "--resume") == 2
     assert not out.exists()
+
+
+def _interrupt_at_third_chunk(monkeypatch: pytest.MonkeyPatch, out_format: str) -> None:
+    """Ctrl-C as the third chunk is written: two chunks are counted in the state."""
+    from textsieve.scoring import formats
+
+    calls = {"n": 0}
+    if out_format == "parquet":
+        real_part = formats.write_part
+
+        def part(path: Path, table: Any, crc32: int = 0) -> int:
+            calls["n"] += 1
+            if calls["n"] == 3:
+                raise KeyboardInterrupt
+            return real_part(path, table, crc32)
+
+        monkeypatch.setattr(formats, "write_part", part)
+    else:
+        real_write = formats.JsonlWriter.write
+
+        def write(self: formats.JsonlWriter, rows: Any) -> None:
+            calls["n"] += 1
+            if calls["n"] == 3:
+                raise KeyboardInterrupt
+            real_write(self, rows)
+
+        monkeypatch.setattr(formats.JsonlWriter, "write", write)
+
+
+def _garble(path: Path) -> None:
+    data = bytearray(path.read_bytes())
+    data[len(data) // 2] ^= 0x20  # one bit of one byte: same length, same file
+    path.write_bytes(bytes(data))
+
+
+def _edit_state(partial: Path, change: Any) -> None:
+    state = json.loads((partial / "state.json").read_text(encoding="utf-8"))
+    (partial / "state.json").write_text(json.dumps(change(state)), encoding="utf-8")
+
+
+# Each was a resume that exited 0 with a wrong OUTPUT (the missing bytes as NULs, garbage spliced in,
+# one chunk's rows twice) or a traceback (a Parquet part pyarrow cannot read, a state.json of
+# another shape).
+DAMAGE = [
+    pytest.param("jsonl", lambda p: (p / "output.part").unlink(), "no longer what it wrote", id="output-deleted"),
+    pytest.param("jsonl", lambda p: os.truncate(p / "output.part", 100), "no longer what it wrote", id="output-cut"),
+    pytest.param("jsonl", lambda p: _garble(p / "output.part"), "no longer what it wrote", id="output-changed"),
+    pytest.param("parquet", lambda p: (p / "parts" / "000001.parquet").unlink(), "no longer", id="part-deleted"),
+    pytest.param(
+        "parquet",
+        lambda p: (p / "parts" / "000000.parquet").write_bytes(b"PAR1 garbage"),
+        "no longer",
+        id="part-garbage",
+    ),
+    pytest.param(
+        "parquet",
+        lambda p: (p / "parts" / "000001.parquet").write_bytes((p / "parts" / "000000.parquet").read_bytes()),
+        "no longer",
+        id="part-replaced",
+    ),
+    pytest.param("jsonl", lambda p: (p / "state.json").write_text("[1]"), "nothing to resume", id="state-a-list"),
+    pytest.param(
+        "jsonl", lambda p: _edit_state(p, lambda s: {**s, "rows": "200"}), "nothing to resume", id="state-rows-a-string"
+    ),
+    pytest.param(
+        "jsonl",
+        lambda p: _edit_state(p, lambda s: {k: v for k, v in s.items() if k != "layout"}),
+        "nothing to resume",
+        id="state-without-layout",
+    ),
+]
+
+
+@pytest.mark.parametrize(("out_format", "damage", "notice"), DAMAGE)
+def test_resume_after_the_partial_folder_was_damaged_starts_over(
+    out_format: str,
+    damage: Any,
+    notice: str,
+    scoring_registry: Path,
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    src = write_jsonl(tmp_path / "in.jsonl", uci_rows()[:500])
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 0, "--chunk-rows", 100]
+    reference = tmp_path / f"reference.{out_format}"
+    assert score(src, "--out", reference, *common) == 0
+    out = tmp_path / f"out.{out_format}"
+    _interrupt_at_third_chunk(monkeypatch, out_format)
+    assert score(src, "--out", out, *common) == 130
+    monkeypatch.undo()
+    partial = tmp_path / f".out.{out_format}.score-partial"
+    assert json.loads((partial / "state.json").read_text(encoding="utf-8"))["rows"] == 200
+    damage(partial)
+    capsys.readouterr()
+    assert score(src, "--out", out, *common, "--resume") == 0
+    assert notice in capsys.readouterr().err
+    if out_format == "parquet":
+        import pyarrow.parquet as pq
+
+        # pyarrow reads both files; equals() compares every column, not the metadata (its scored_at differs)
+        assert pq.read_table(out).equals(pq.read_table(reference))
+    else:
+        assert out.read_bytes() == reference.read_bytes()
+    assert not partial.exists()

@@ -14,12 +14,13 @@ import io
 import json
 import math
 import os
+import zlib
 from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError
-from textsieve.files import FILE_MODE, fsync_dir
+from textsieve.files import FILE_MODE, atomic_write_bytes
 from textsieve.scoring.columns import ERROR, LABEL, SPANS, Layout, probability_column
 from textsieve.scoring.rows import Misshapen, Row, Unreadable
 
@@ -395,18 +396,23 @@ def json_line(value: object) -> bytes:
 
 # -- JSONL and CSV: one file, appended chunk by chunk --------------------------------------------
 class AppendWriter:
-    """Appends chunks to ``path``; :meth:`commit` makes them durable and returns the committed length."""
+    """Appends chunks to ``path``; :meth:`commit` makes them durable and returns the committed length.
 
-    def __init__(self, path: Path, layout: Layout, *, start: int) -> None:
+    ``crc32`` is the CRC-32 of every byte written so far (``start`` bytes of it checked by
+    :func:`committed_crc32` on resume), so a resumed run can tell a file that is no longer what it
+    wrote (deleted, cut short, overwritten) from its own output."""
+
+    def __init__(self, path: Path, layout: Layout, *, start: int, crc32: int = 0) -> None:
         self.path = path
         self.layout = layout
+        self.crc32 = crc32
         fd = os.open(path, os.O_RDWR | os.O_CREAT, FILE_MODE)
         self.file = os.fdopen(fd, "r+b")
         # A chunk written after the last committed state is thrown away: the state says where it ended.
         self.file.truncate(start)
         self.file.seek(start)
         if start == 0:
-            self.file.write(self.header())
+            self._put(self.header())
 
     def header(self) -> bytes:
         return b""
@@ -415,7 +421,11 @@ class AppendWriter:
         raise NotImplementedError
 
     def write(self, rows: Sequence[Row]) -> None:
-        self.file.write(self.encode(rows))
+        self._put(self.encode(rows))
+
+    def _put(self, data: bytes) -> None:
+        self.file.write(data)
+        self.crc32 = zlib.crc32(data, self.crc32)
 
     def commit(self) -> int:
         self.file.flush()
@@ -521,15 +531,38 @@ def to_table(rows: Sequence[Row], schema: pa.Schema, first_row: int) -> pa.Table
     return pa.Table.from_arrays(arrays, schema=schema)
 
 
-def write_part(path: Path, table: pa.Table) -> None:
-    """One chunk's rows as a complete Parquet file, in place only once it is whole."""
+def write_part(path: Path, table: pa.Table, crc32: int = 0) -> int:
+    """One chunk's rows as a complete Parquet file, in place only once it is whole; returns the
+    CRC-32 of the parts before it (``crc32``) and this one's bytes (see :class:`AppendWriter`)."""
     pa = _pyarrow()
-    tmp = path.with_name(f".{path.name}.tmp")
-    pa.parquet.write_table(table, tmp)
-    with open(tmp, "rb") as f:
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
-    fsync_dir(path.parent)
+    sink = pa.BufferOutputStream()
+    pa.parquet.write_table(table, sink)
+    data = sink.getvalue().to_pybytes()
+    atomic_write_bytes(path, data)
+    return zlib.crc32(data, crc32)
+
+
+def committed_crc32(paths: Sequence[Path], length: int | None = None) -> int | None:
+    """The CRC-32 of the files' bytes one after the other (of the first ``length`` bytes of one
+    file), or None when a file is missing or shorter than ``length``: what a resumed run checks
+    against the CRC-32 its state recorded as it wrote them."""
+    crc = 0
+    for path in paths:
+        try:
+            with open(path, "rb") as f:
+                left = length
+                while left is None or left > 0:
+                    block = f.read(_BLOCK if left is None else min(left, _BLOCK))
+                    if not block:
+                        break
+                    crc = zlib.crc32(block, crc)
+                    if left is not None:
+                        left -= len(block)
+        except FileNotFoundError:
+            return None
+        if left:
+            return None
+    return crc
 
 
 def merge_parts(parts: Sequence[Path], target: Path, schema: pa.Schema, metadata: dict[str, object]) -> None:
@@ -567,6 +600,7 @@ __all__ = [
     "json_line",
     "ParquetReader",
     "Reader",
+    "committed_crc32",
     "detect",
     "merge_parts",
     "open_reader",

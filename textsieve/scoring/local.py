@@ -42,7 +42,8 @@ if TYPE_CHECKING:
 
     from textsieve.registry.api import Registry
 
-STATE_FORMAT = 1
+# 2: the state records the CRC-32 of the output written so far (committed_crc32).
+STATE_FORMAT = 2
 DEFAULT_CHUNK = 8192
 # Chunks in flight: one being written while the workers score the next two; memory holds three.
 DEPTH = 3
@@ -154,17 +155,52 @@ class _Run:
         return self.work / "parts"
 
     def load(self) -> dict[str, Any] | None:
+        """The saved state, or None when there is none this version can continue (missing, cut
+        short, from another state format, or not the shape it writes)."""
         try:
-            data: dict[str, Any] = json.loads(self.state_path.read_text(encoding="utf-8"))
+            data = json.loads(self.state_path.read_text(encoding="utf-8"))
         except (FileNotFoundError, ValueError):
             return None
-        return data if data.get("format") == STATE_FORMAT else None
+        return data if _well_formed(data) else None
+
+    def damage(self, state: dict[str, Any]) -> str | None:
+        """Why the output the state counts is no longer on disk as it was written, or None."""
+        if self.out_fmt == "parquet":
+            files = [self.part(i) for i in range(state["chunks"])]
+            length = None
+            what = "its Parquet parts are"
+        else:
+            files = [self.work / "output.part"]
+            length = state["committed_bytes"]
+            what = "output.part is"
+        if formats.committed_crc32(files, length) != state["committed_crc32"]:
+            return f"{what} no longer what it wrote (missing, cut short or changed)"
+        return None
 
     def save(self) -> None:
         atomic_write_text(self.state_path, json.dumps(self.state, indent=1) + "\n")
 
     def part(self, index: int) -> Path:
         return self.parts / f"{index:06d}.parquet"
+
+
+def _well_formed(state: object) -> bool:
+    """Whether ``state`` has the keys and types :func:`_stream` saves (a state.json edited or
+    damaged otherwise is not continued: it would be a traceback, or rows skipped)."""
+    if not isinstance(state, dict) or state.get("format") != STATE_FORMAT:
+        return False
+    counts = ("chunks", "rows", "errors", "committed_bytes", "committed_crc32")
+    if not all(type(state.get(key)) is int and state[key] >= 0 for key in counts):
+        return False
+    layout = state.get("layout")
+    if not isinstance(layout, dict):
+        return False
+    kept, renamed = layout.get("kept"), layout.get("renamed")
+    return (
+        isinstance(kept, list)
+        and isinstance(renamed, dict)
+        and all(isinstance(c, str) and isinstance(renamed.get(c), str) for c in kept)
+    )
 
 
 def _resume_state(run: _Run, expected: dict[str, Any], out: TextIO) -> dict[str, Any] | None:
@@ -178,6 +214,14 @@ def _resume_state(run: _Run, expected: dict[str, Any], out: TextIO) -> dict[str,
                 f"--resume: the unfinished run in {run.work} used another {key.replace('_', ' ')} "
                 f"({old.get(key)!r}, now {expected[key]!r}); run without --resume to start over"
             )
+    why = run.damage(old)
+    if why is not None:
+        # Appending to it would splice garbage, or a file padded with NUL bytes, into OUTPUT.
+        print(
+            f"textsieve: cannot continue the unfinished run in {run.work.name}: {why}; starting from the first row",
+            file=out,
+        )
+        return None
     return old
 
 
@@ -311,6 +355,7 @@ def _stream(
         "rows": 0,
         "errors": 0,
         "committed_bytes": 0,
+        "committed_crc32": 0,
     }
     resumed = int(run.state["rows"])
     if previous is None:
@@ -324,7 +369,12 @@ def _stream(
     else:
         kinds = {"jsonl": formats.JsonlWriter, "csv": formats.CsvWriter, "tsv": formats.TsvWriter}
         kind = kinds[run.out_fmt]
-        writer = kind(run.work / "output.part", layout, start=int(run.state["committed_bytes"]))
+        writer = kind(
+            run.work / "output.part",
+            layout,
+            start=int(run.state["committed_bytes"]),
+            crc32=int(run.state["committed_crc32"]),
+        )
     workers = default_workers() if opts.workers is None else opts.workers
     pool = Pool(resolved.folder, workers=workers)
     progress = Progress(
@@ -411,10 +461,14 @@ def _flush(
     if writer is not None:
         writer.write(rows)
         run.state["committed_bytes"] = writer.commit()
+        run.state["committed_crc32"] = writer.crc32
     else:
         if schema is None:
             schema = formats.output_schema(layout, rows, reader.schema)
-        formats.write_part(run.part(int(run.state["chunks"])), formats.to_table(rows, schema, first_row))
+        table = formats.to_table(rows, schema, first_row)
+        run.state["committed_crc32"] = formats.write_part(
+            run.part(int(run.state["chunks"])), table, int(run.state["committed_crc32"])
+        )
     run.state["chunks"] = int(run.state["chunks"]) + 1
     run.state["rows"] = int(run.state["rows"]) + len(chunk)
     run.state["errors"] = int(run.state["errors"]) + len(part.problems)
