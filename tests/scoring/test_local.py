@@ -459,3 +459,51 @@ def test_resume_after_the_partial_folder_was_damaged_starts_over(
     else:
         assert out.read_bytes() == reference.read_bytes()
     assert not partial.exists()
+
+
+@pytest.mark.parametrize(
+    ("signum", "status", "last_line"),
+    [(signal.SIGINT, 130, "textsieve: interrupted"), (signal.SIGTERM, 143, "textsieve: stopped by SIGTERM")],
+)
+def test_a_signal_to_the_process_group_stops_cleanly_and_resume_gives_the_same_file(
+    signum: int, status: int, last_line: str, scoring_registry: Path, tmp_path: Path
+) -> None:
+    """Ctrl-C (SIGINT to the foreground process group) and a job runner's SIGTERM to the group reach
+    the worker processes too. SIGTERM killed the run where it stood (status -15, multiprocessing's
+    leaked-semaphore warning); SIGINT could print a worker's KeyboardInterrupt traceback."""
+    rows = uci_rows() * 20  # 600 chunks: the signal comes long before the end
+    src = write_jsonl(tmp_path / "in.jsonl", [{**r, "id": i} for i, r in enumerate(rows)])
+    reference = tmp_path / "reference.jsonl"
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 2, "--chunk-rows", 100]
+    assert score(src, "--out", reference, *common) == 0
+
+    out = tmp_path / "out.jsonl"
+    state = tmp_path / ".out.jsonl.score-partial" / "state.json"
+    cmd = [sys.executable, "-m", "textsieve.cli", "score", str(src), "--out", str(out), *map(str, common)]
+    env = child_env() | {"PYTHONPATH": str(ROOT)}
+    proc = subprocess.Popen(
+        cmd, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, start_new_session=True
+    )
+
+    def some_chunks_done() -> bool:
+        try:
+            return json.loads(state.read_text(encoding="utf-8"))["chunks"] >= 3
+        except (FileNotFoundError, ValueError):
+            return False
+
+    try:
+        wait_until(some_chunks_done, 120, "three chunks")
+        os.killpg(proc.pid, signum)
+        _, err = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)
+            proc.wait()
+    lines = err.strip().splitlines()
+    assert proc.returncode == status, err
+    assert lines[-1] == last_line and "Traceback" not in err and "leaked" not in err, err
+    assert lines[-2].startswith("textsieve: stopped after ") and "--resume" in lines[-2], err
+    assert not out.exists()
+    assert 0 < json.loads(state.read_text(encoding="utf-8"))["rows"] < len(rows)
+    assert score(src, "--out", out, *common, "--resume") == 0
+    assert out.read_bytes() == reference.read_bytes()

@@ -28,6 +28,13 @@ _PREDICTOR: Predictor | None = None
 
 def _load(bundle: str, batch_size: int) -> None:
     global _PREDICTOR
+    import signal
+
+    # Ctrl-C reaches the whole foreground process group: the scoring process decides (it keeps
+    # the chunks done and stops the pool); a worker that took it printed a KeyboardInterrupt
+    # traceback. SIGTERM keeps its default: the pool stops a broken worker with it, and a worker
+    # that ignored it outlived the run, blocked for ever on its queue.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
     from textsieve.registry.bundle import open_bundle
     from textsieve.registry.runtime import Predictor
 
