@@ -142,3 +142,24 @@ def test_cluster_bad_input_is_one_line_exit_2(
     lines = out.stderr.splitlines()
     assert len(lines) == 1 and expected_msg in lines[0], out.stderr
     assert not (tmp_path / "ds").exists()
+
+
+def test_a_jsonl_field_first_seen_after_the_sample_stops_the_run(
+    loopback_cluster: DaskCluster, scoring_registry: Path, tmp_path: Path
+) -> None:
+    """The columns come from the first 1,000 rows; a field first seen after them was dropped from
+    every row of the dataset (JSON Lines rows need not share their fields, RFC 8259 §4)."""
+    from textsieve.errors import InputError
+    from textsieve.registry import open_registry
+    from textsieve.scoring.cluster import score_on_cluster
+
+    rows: list[dict[str, object]] = [{"text": r["text"]} for r in uci_rows()[:1100]]
+    rows[1049] = {**rows[1049], "ticket": 7}
+    src = write_jsonl(tmp_path / "in.jsonl", rows)
+    out = tmp_path / "dataset"
+    with open_registry(scoring_registry, create=False) as reg, pytest.raises(InputError) as caught:
+        score_on_cluster(reg, MODEL, str(src), out, cluster=loopback_cluster.address)
+    assert (
+        "partition 0: row 1,050 has the field 'ticket', which none of the first 1,000 rows has" in caught.value.message
+    )
+    assert not out.exists() and sorted(p.name for p in tmp_path.iterdir()) == ["in.jsonl"]

@@ -507,3 +507,27 @@ def test_a_signal_to_the_process_group_stops_cleanly_and_resume_gives_the_same_f
     assert 0 < json.loads(state.read_text(encoding="utf-8"))["rows"] < len(rows)
     assert score(src, "--out", out, *common, "--resume") == 0
     assert out.read_bytes() == reference.read_bytes()
+
+
+def test_a_jsonl_field_first_seen_after_the_first_chunk_is_refused_or_kept_never_dropped(
+    scoring_registry: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """JSON Lines rows need not share their fields (RFC 8259 leaves an object's members to each
+    object). The output's columns come from the first chunk; a field first seen later was left out
+    of every row, exit 0, and --keep refused to name it."""
+    rows: list[dict[str, object]] = [{"text": "the chain is broken"}] * 5 + [{"text": "refund please", "ticket": 7}]
+    src = write_jsonl(tmp_path / "in.jsonl", rows)
+    out = tmp_path / "out.jsonl"
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 0, "--chunk-rows", 2]
+    assert score(src, "--out", out, *common) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "row 6 has the field 'ticket', which none of the first 2 rows has" in err[0], err
+    assert "--keep text,ticket" in err[0]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["in.jsonl"]
+
+    assert score(src, "--out", out, *common, "--keep", "text,ticket") == 0
+    assert "no row among the first 2 has the field(s) 'ticket'" in capsys.readouterr().err
+    # the json module reads the input and the output: every row's own value, null where it has none
+    assert [r["ticket"] for r in read_jsonl(out)] == [
+        r.get("ticket") for r in map(json.loads, src.read_text().split("\n")[:-1])
+    ]

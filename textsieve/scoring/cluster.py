@@ -40,7 +40,7 @@ from textsieve.scoring.columns import Layout, plan
 from textsieve.scoring.local import STATE_FORMAT, Options, Summary, metadata, work_dir
 from textsieve.scoring.model import Resolved, resolve
 from textsieve.scoring.progress import Progress
-from textsieve.scoring.rows import Unreadable, output_rows, score_texts, split
+from textsieve.scoring.rows import Unreadable, check_fields, output_rows, score_texts, split
 
 if TYPE_CHECKING:
     import pyarrow as pa
@@ -83,6 +83,8 @@ class Task:
     text_field: str
     spans: int
     strict: bool
+    fields: frozenset[str] | None = None  # JSONL with every field kept: the fields the sample had
+    sampled: int = 0
 
 
 # -- on the workers ---------------------------------------------------------------------------
@@ -180,6 +182,7 @@ def score_partition(payload: Payload, part: Partition, task: Task) -> pa.Table:
     """Runs on a worker: read, score and lay out one partition."""
     rows = read_partition(part)
     try:
+        check_fields(rows, task.fields, first_row=0, sampled=task.sampled)
         chunk = split(rows, task.text_field, strict=task.strict, first_row=0)
     except InputError as exc:
         raise InputError(f"partition {part.index}: {exc.message}") from None
@@ -247,7 +250,8 @@ def _layout(sample: list[Any], input_schema: pa.Schema | None, opts: Options, re
                 f"{', '.join(list(seen)[:20]) or 'none'}; pass --text-field NAME"
             )
         columns = list(seen)
-    return plan(columns, None if opts.keep is None else list(opts.keep), resolved.labels, spans=opts.spans > 0)
+    keep = None if opts.keep is None else list(opts.keep)
+    return plan(columns, keep, resolved.labels, spans=opts.spans > 0, header=input_schema is not None)
 
 
 def _payload(resolved: Resolved) -> Payload:
@@ -322,7 +326,8 @@ def score_on_cluster(
     for r in renamed_sample:
         r.update(dict.fromkeys(layout.results))
     schema = formats.output_schema(layout, renamed_sample, input_schema)
-    task = Task(layout, schema, opts.text_field, opts.spans, opts.strict)
+    fields = frozenset(layout.kept) if input_schema is None and opts.keep is None else None
+    task = Task(layout, schema, opts.text_field, opts.spans, opts.strict, fields, len(sample))
     work = work_dir(output)
     dataset = work / "dataset"
     expected = {

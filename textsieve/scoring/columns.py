@@ -51,15 +51,23 @@ class Layout:
         }
 
 
-def plan(input_columns: Sequence[str], keep: Sequence[str] | None, labels: Sequence[str], *, spans: bool) -> Layout:
+def plan(
+    input_columns: Sequence[str],
+    keep: Sequence[str] | None,
+    labels: Sequence[str],
+    *,
+    spans: bool,
+    header: bool = True,
+) -> Layout:
     """The layout for these input columns; ``keep`` None keeps them all, and naming one that is not
-    in the input is bad input."""
+    in the input is bad input when the input has a header (``header``); JSON Lines rows each name
+    their own fields, and ``input_columns`` are those of its first rows only."""
     if keep is None:
         kept = list(dict.fromkeys(input_columns))
     else:
         present = set(input_columns)
         missing = [c for c in keep if c not in present]
-        if missing:
+        if missing and header:
             shown = ", ".join(list(input_columns)[:20]) or "none"
             raise InputError(f"--keep names column(s) the input does not have: {', '.join(missing)}; it has: {shown}")
         kept = list(dict.fromkeys(keep))

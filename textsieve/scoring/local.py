@@ -35,7 +35,7 @@ from textsieve.scoring.columns import Layout, plan
 from textsieve.scoring.model import Resolved, resolve
 from textsieve.scoring.pool import Pool, default_workers, pieces, result
 from textsieve.scoring.progress import Progress
-from textsieve.scoring.rows import Scored, Split, output_rows, split
+from textsieve.scoring.rows import Scored, Split, check_fields, output_rows, split
 
 if TYPE_CHECKING:
     import pyarrow as pa
@@ -237,7 +237,7 @@ def _combine(futures: Sequence[tuple[slice, Future[Scored]]], count: int, classe
     return Scored(np.concatenate([p.best for p in parts]), np.concatenate([p.probabilities for p in parts]), spans)
 
 
-def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolved: Resolved) -> Layout:
+def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolved: Resolved, err: TextIO) -> Layout:
     if reader.columns is not None:
         if opts.text_field not in reader.columns:
             raise InputError(
@@ -258,7 +258,15 @@ def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolve
             )
         columns = list(seen)
     keep = None if opts.keep is None else list(opts.keep)
-    return plan(columns, keep, resolved.labels, spans=opts.spans > 0)
+    if reader.columns is None and keep is not None:
+        unseen = [c for c in keep if c not in seen]
+        if unseen and first:
+            print(
+                f"textsieve: no row among the first {len(first):,} has the field(s) {', '.join(map(repr, unseen))}; "
+                "--keep writes them empty where a row lacks them",
+                file=err,
+            )
+    return plan(columns, keep, resolved.labels, spans=opts.spans > 0, header=reader.columns is not None)
 
 
 def score_file(
@@ -324,12 +332,17 @@ def score_file(
                 opts.spans > 0,
             )
         else:
-            layout = _layout_for(reader, first, opts, resolved)
+            layout = _layout_for(reader, first, opts, resolved, err)
             if opts.strict:
                 split(first, opts.text_field, strict=True, first_row=0)
+        # JSON Lines rows each name their fields: with every field kept, a field the first chunk
+        # did not have would have no column (it was left out of every row, silently).
+        fields = frozenset(layout.kept) if reader.columns is None and opts.keep is None else None
         work.mkdir(exist_ok=True)
         with _locked(work):
-            return _stream(run, previous, expected, reader, first, chunks, layout, resolved, opts, output, err, started)
+            return _stream(
+                run, previous, expected, reader, first, chunks, layout, fields, resolved, opts, output, err, started
+            )
     finally:
         reader.close()
 
@@ -342,6 +355,7 @@ def _stream(
     first: list[Any],
     chunks: Iterator[list[Any]],
     layout: Layout,
+    fields: frozenset[str] | None,
     resolved: Resolved,
     opts: Options,
     output: Path,
@@ -386,6 +400,8 @@ def _stream(
         pending: deque[tuple[list[Any], Split, list[tuple[slice, Future[Scored]]], int]] = deque()
         row = resumed
         for chunk in _chain(first, chunks):
+            # Only a row after the first chunk can hold a new field, so that chunk was full.
+            check_fields(chunk, fields, first_row=row, sampled=opts.chunk_rows)
             part = split(chunk, opts.text_field, strict=opts.strict, first_row=row)
             futures = [(s, pool.submit(part.texts[s], opts.spans)) for s in pieces(part.texts, pool.parallel)]
             pending.append((chunk, part, futures, row))
