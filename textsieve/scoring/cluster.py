@@ -50,6 +50,7 @@ if TYPE_CHECKING:
 
 SIDECAR = "_textsieve.json"
 SAMPLE_ROWS = 1000
+SAMPLE_BYTES = 1 << 20  # of a JSONL input, read for the sample
 CLUSTER_EXTRA = "pip install 'textsieve[cluster]'"
 
 
@@ -227,11 +228,14 @@ def _sample(parts: Sequence[Partition]) -> list[Any]:
         return []
     first = parts[0]
     if first.fmt == "jsonl":
-        first = Partition(0, first.url, first.fmt, 0, min(first.end, 1 << 20))
+        first = Partition(0, first.url, first.fmt, 0, min(first.end, SAMPLE_BYTES))
     return read_partition(first)[:SAMPLE_ROWS]
 
 
-def _layout(sample: list[Any], input_schema: pa.Schema | None, opts: Options, resolved: Resolved) -> Layout:
+def _layout(
+    sample: list[Any], input_schema: pa.Schema | None, opts: Options, resolved: Resolved, *, whole: bool
+) -> Layout:
+    """The output's layout; ``whole``: the sample is every row of the input."""
     if input_schema is not None:
         columns = list(input_schema.names)
         if opts.text_field not in columns:
@@ -251,7 +255,7 @@ def _layout(sample: list[Any], input_schema: pa.Schema | None, opts: Options, re
             )
         columns = list(seen)
     keep = None if opts.keep is None else list(opts.keep)
-    return plan(columns, keep, resolved.labels, spans=opts.spans > 0, header=input_schema is not None)
+    return plan(columns, keep, resolved.labels, spans=opts.spans > 0, complete=input_schema is not None or whole)
 
 
 def _payload(resolved: Resolved) -> Payload:
@@ -319,7 +323,8 @@ def score_on_cluster(
     parts, input_schema = partitions(source, fmt, partition_bytes)
     resolved = resolve(registry, model, version)
     sample = _sample(parts)
-    layout = _layout(sample, input_schema, opts, resolved)
+    whole = len(parts) == 1 and parts[0].end <= SAMPLE_BYTES and len(sample) < SAMPLE_ROWS
+    layout = _layout(sample, input_schema, opts, resolved, whole=whole)
     renamed_sample = [{layout.renamed[c]: r.get(c) for c in layout.kept} for r in sample if isinstance(r, dict)] or [
         {layout.renamed[c]: None for c in layout.kept}
     ]

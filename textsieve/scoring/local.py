@@ -258,15 +258,17 @@ def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolve
             )
         columns = list(seen)
     keep = None if opts.keep is None else list(opts.keep)
-    if reader.columns is None and keep is not None:
-        unseen = [c for c in keep if c not in seen]
-        if unseen and first:
+    # A first chunk shorter than a chunk is the whole file: a field it lacks is in no row.
+    complete = reader.columns is not None or len(first) < opts.chunk_rows
+    if not complete and keep is not None:
+        unseen = [c for c in keep if c not in columns]
+        if unseen:
             print(
                 f"textsieve: no row among the first {len(first):,} has the field(s) {', '.join(map(repr, unseen))}; "
                 "--keep writes them empty where a row lacks them",
                 file=err,
             )
-    return plan(columns, keep, resolved.labels, spans=opts.spans > 0, header=reader.columns is not None)
+    return plan(columns, keep, resolved.labels, spans=opts.spans > 0, complete=complete)
 
 
 def score_file(
