@@ -236,6 +236,13 @@ BAD_INPUT = [
         id="output-where-nothing-can-be-written",
     ),
     pytest.param(["in.jsonl", "--out", "in.jsonl"], 2, "--out names the input file itself", id="output-is-the-input"),
+    # The input was replaced by the metadata written beside a JSONL, CSV or TSV output.
+    pytest.param(
+        ["o.jsonl.meta.json", "--input-format", "jsonl", "--out", "o.jsonl"],
+        2,
+        "o.jsonl: its metadata goes to o.jsonl.meta.json, which is the input file",
+        id="output-metadata-is-the-input",
+    ),
     pytest.param(
         ["in.jsonl", "--out", "o.jsonl", "--progress-every", "nan"],
         2,
@@ -278,6 +285,7 @@ def test_bad_input_is_one_line_and_leaves_nothing(
     # A quote opened and never closed would have read every later line into one text.
     (work / "open-quote.csv").write_text('text\nhello\n"the chain\nrefund please\n', encoding="utf-8")
     (work / "two-texts.csv").write_text("text,text\nhello,world\n", encoding="utf-8")
+    write_jsonl(work / "o.jsonl.meta.json", [{"text": "the chain is broken"}])
     (work / "outdir").mkdir()
     if "tamper" in argv:
         argv.remove("tamper")
@@ -294,6 +302,7 @@ def test_bad_input_is_one_line_and_leaves_nothing(
     assert len(lines) == 1 and lines[0].startswith("textsieve: error: ") and expected_msg in lines[0], out.stderr
     assert sorted(p.name for p in work.iterdir()) == before and not any((work / "outdir").iterdir())
     assert (work / "in.jsonl").read_text(encoding="utf-8").count("\n") == 2  # the input is untouched
+    assert json.loads((work / "o.jsonl.meta.json").read_text(encoding="utf-8")) == {"text": "the chain is broken"}
 
 
 # -- interrupted runs ---------------------------------------------------------------------------------

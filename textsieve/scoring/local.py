@@ -297,6 +297,13 @@ def score_file(
         raise InputError(f"{output}: --out names the input file itself; write the scores to another file")
     in_fmt = formats.detect(str(source), opts.input_format, "--input-format")
     out_fmt = formats.detect(str(output), opts.output_format, "--output-format")
+    meta = sidecar(output)
+    if out_fmt != "parquet" and meta.exists() and source.exists() and os.path.samefile(meta, source):
+        # The metadata of a JSONL, CSV or TSV output is written to OUTPUT.meta.json, over the input.
+        raise InputError(
+            f"{output}: its metadata goes to {meta.name}, which is the input file; "
+            "name the input or the output differently"
+        )
     if opts.chunk_rows < 1:
         raise InputError(f"--chunk-rows must be 1 or more, not {opts.chunk_rows}")
     reader = formats.open_reader(source, in_fmt)
