@@ -247,3 +247,34 @@ def test_a_csv_that_breaks_rfc_4180_stops_the_run_naming_the_line(tmp_path: Path
     with pytest.raises(formats.InputError) as caught:
         _read_csv(path)
     assert words in str(caught.value)
+
+
+@pytest.mark.parametrize("newline", ["\r", "\n"], ids=["cr", "lf"])
+def test_a_csv_with_other_line_ends_reads_as_the_csv_modules_dict_reader_reads_it(tmp_path: Path, newline: str) -> None:
+    """A lone \\r ends a line in files from old spreadsheet programs; the csv module reads it as a line
+    end (its documentation: open the file with newline=''), and so does `textsieve train`. Scoring
+    stopped with the csv module's 'new-line character seen in unquoted field'."""
+    path = tmp_path / "in.csv"
+    path.write_bytes(WELL_FORMED.replace("\r\n", newline).encode("utf-8"))
+    with open(path, newline="", encoding="utf-8") as f:
+        reference = list(csv.DictReader(f))
+    assert len(reference) == 5 and reference[2]["text"] == f"two{newline}lines"
+    assert _read_csv(path) == reference
+
+
+@pytest.mark.parametrize(
+    ("content", "words"),
+    [
+        # Excel's "Unicode text" export: UTF-16 with a byte-order mark (the codec's own BOM)
+        ("id\ttext\n1\tcaf\u00e9\n".encode("utf-16"), "is UTF-16 text"),
+        (b"id,text\r1,ok\r2,caf\xe9\r", "line 3 is not UTF-8"),  # Latin-1 after lines ended by \r alone
+        (b'id,text\r\n1,"two\r\nlines"\r\n2,caf\xe9\r\n', "line 4 is not UTF-8"),
+    ],
+    ids=["utf-16", "latin-1-cr", "latin-1-crlf"],
+)
+def test_a_csv_that_is_not_utf8_stops_the_run_naming_the_line(tmp_path: Path, content: bytes, words: str) -> None:
+    path = tmp_path / "in.csv"
+    path.write_bytes(content)
+    with pytest.raises(formats.InputError) as caught:
+        _read_csv(path)
+    assert words in str(caught.value) and "save" in str(caught.value)

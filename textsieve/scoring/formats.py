@@ -119,11 +119,6 @@ class _ByteCounted(Reader):
     def close(self) -> None:
         self.file.close()
 
-    def _lines(self) -> Iterator[bytes]:
-        for raw in self.file:
-            self.read += len(raw)
-            yield raw
-
 
 class JsonlReader(_ByteCounted):
     """One JSON object a line; blank lines are skipped, a line that is not JSON becomes an error row."""
@@ -176,8 +171,14 @@ class CsvReader(_ByteCounted):
         try:
             self._start()
         except BaseException:
-            self.file.close()  # a refused file is not left open
+            self.close()  # a refused file is not left open
             raise
+
+    def close(self) -> None:
+        text = getattr(self, "_text", None)
+        if text is not None:
+            text.close()  # its text wrapper lets go of the file before the file closes
+        super().close()
 
     def _start(self) -> None:
         path = self.path
@@ -201,12 +202,21 @@ class CsvReader(_ByteCounted):
             first[name] = number
 
     def _decoded(self) -> Iterator[str]:
-        for number, raw in enumerate(self._lines(), start=1):
-            try:
-                text = raw.decode("utf-8")
-            except UnicodeDecodeError:
-                raise InputError(f"{self.path}: line {number} is not UTF-8") from None
-            yield text.removeprefix("\ufeff") if number == 1 else text
+        # newline="": a line ends at \n, \r\n or a lone \r (as old spreadsheet exports end them),
+        # as the csv module asks for and as `textsieve train` reads the same file; a line break inside
+        # a quoted field is kept as written. utf-8-sig: a leading byte-order mark is not a character.
+        text = io.TextIOWrapper(self.file, encoding="utf-8-sig", newline="")
+        try:
+            # not `yield from`: closing this generator would close the text wrapper, and the file with it
+            for line in text:  # noqa: UP028
+                yield line
+        except UnicodeDecodeError:
+            raise InputError(_not_utf8(self.path)) from None
+        finally:
+            text.detach()  # the binary file stays open for close()
+
+    def fraction(self) -> float | None:
+        return min(self.file.tell() / self.size, 1.0)
 
     def chunks(self, size: int, skip: int = 0) -> Iterator[list[Any]]:
         names = self.columns or []
@@ -244,6 +254,30 @@ class CsvReader(_ByteCounted):
             ) from exc
         if chunk:
             yield chunk
+
+
+def _not_utf8(path: Path) -> str:
+    """Where a text file stops being UTF-8, found again from the start (the decoder reads ahead)."""
+    with open(path, "rb") as f:
+        if f.read(2) in (b"\xff\xfe", b"\xfe\xff"):
+            return (
+                f"{path}: is UTF-16 text (as a spreadsheet's 'Unicode text' export writes it), not UTF-8; "
+                "save it as CSV UTF-8"
+            )
+        f.seek(0)
+        number = 1
+        for raw in f:
+            try:
+                raw.decode("utf-8")
+            except UnicodeDecodeError as exc:
+                return f"{path}: line {number + _lone_returns(raw[: exc.start])} is not UTF-8; save the file as UTF-8"
+            number += 1 + _lone_returns(raw.rstrip(b"\r\n"))
+    return f"{path}: is not UTF-8; save the file as UTF-8"
+
+
+def _lone_returns(raw: bytes) -> int:
+    """Line ends that are a \r alone in ``raw``."""
+    return raw.replace(b"\r\n", b"").count(b"\r")
 
 
 def _separator(delimiter: str) -> str:
