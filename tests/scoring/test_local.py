@@ -256,6 +256,15 @@ BAD_INPUT = [
         id="unknown-keep",
     ),  # noqa: E501
     pytest.param(["in.jsonl", "--out", "o.jsonl", "tamper"], 1, "has been altered", id="tampered-blob"),
+    # Every row was an error row ("is an int, not a string"), exit 0. A Parquet BYTE_ARRAY column
+    # without the STRING annotation is bytes, not text (Apache Parquet's logical types); pyarrow
+    # reads it as binary.
+    pytest.param(
+        ["numbers.parquet", "--out", "o.jsonl"], 2, "the text column 'text' holds int64 values", id="parquet-int-text"
+    ),
+    pytest.param(
+        ["bytes.parquet", "--out", "o.jsonl"], 2, "the text column 'text' holds binary values", id="parquet-binary-text"
+    ),
     pytest.param(
         ["open-quote.csv", "--out", "o.jsonl"],
         2,
@@ -286,6 +295,11 @@ def test_bad_input_is_one_line_and_leaves_nothing(
     (work / "open-quote.csv").write_text('text\nhello\n"the chain\nrefund please\n', encoding="utf-8")
     (work / "two-texts.csv").write_text("text,text\nhello,world\n", encoding="utf-8")
     write_jsonl(work / "o.jsonl.meta.json", [{"text": "the chain is broken"}])
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    pq.write_table(pa.table({"text": pa.array([1, 2], pa.int64())}), work / "numbers.parquet")
+    pq.write_table(pa.table({"text": pa.array([b"the chain", b"refund"], pa.binary())}), work / "bytes.parquet")
     (work / "outdir").mkdir()
     if "tamper" in argv:
         argv.remove("tamper")

@@ -243,6 +243,7 @@ def _layout(
                 f"the input has no column {opts.text_field!r}; its columns: {', '.join(columns[:20])}; "
                 "pass --text-field NAME"
             )
+        formats.check_text_column(input_schema, opts.text_field)
     else:
         seen: dict[str, None] = {}
         for row in sample:

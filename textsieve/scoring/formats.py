@@ -323,6 +323,21 @@ class ParquetReader(Reader):
         self.file.close()
 
 
+def check_text_column(schema: pa.Schema, name: str) -> None:
+    """InputError unless Parquet column ``name`` holds strings (plain, large, view or dictionary
+    encoded, or only nulls): a column of numbers or bytes made every row an error row, exit 0."""
+    pa = _pyarrow()
+    kind = schema.field(name).type
+    value = kind.value_type if pa.types.is_dictionary(kind) else kind
+    string_view = getattr(pa.types, "is_string_view", lambda _: False)
+    if pa.types.is_string(value) or pa.types.is_large_string(value) or string_view(value) or pa.types.is_null(value):
+        return
+    raise InputError(
+        f"the text column {name!r} holds {kind} values; --text-field names a column of strings "
+        "(Parquet string, large_string or dictionary-encoded strings, UTF-8)"
+    )
+
+
 def open_reader(path: Path, fmt: str) -> Reader:
     if fmt == "jsonl":
         return JsonlReader(path)
@@ -634,6 +649,7 @@ __all__ = [
     "json_line",
     "ParquetReader",
     "Reader",
+    "check_text_column",
     "committed_crc32",
     "detect",
     "merge_parts",

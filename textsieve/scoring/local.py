@@ -244,6 +244,8 @@ def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolve
                 f"the input has no column {opts.text_field!r}; its columns: {', '.join(reader.columns[:20])}; "
                 "pass --text-field NAME"
             )
+        if reader.schema is not None:
+            formats.check_text_column(reader.schema, opts.text_field)
         columns = reader.columns
     else:
         seen: dict[str, None] = {}
