@@ -265,6 +265,13 @@ BAD_INPUT = [
     pytest.param(
         ["bytes.parquet", "--out", "o.jsonl"], 2, "the text column 'text' holds binary values", id="parquet-binary-text"
     ),
+    # JSON text is UTF-8 (RFC 8259 §8.1): bytes that are not were written as U+FFFD, exit 0.
+    pytest.param(
+        ["blob.parquet", "--out", "o.jsonl"],
+        2,
+        "row 2: column 'blob' holds bytes that are not UTF-8 text, which a JSONL file cannot hold",
+        id="parquet-bytes-kept-in-jsonl",
+    ),
     pytest.param(
         ["open-quote.csv", "--out", "o.jsonl"],
         2,
@@ -300,6 +307,9 @@ def test_bad_input_is_one_line_and_leaves_nothing(
 
     pq.write_table(pa.table({"text": pa.array([1, 2], pa.int64())}), work / "numbers.parquet")
     pq.write_table(pa.table({"text": pa.array([b"the chain", b"refund"], pa.binary())}), work / "bytes.parquet")
+    pq.write_table(
+        pa.table({"text": ["the chain", "refund"], "blob": [b"caf\xc3\xa9", b"\xff\x00"]}), work / "blob.parquet"
+    )
     (work / "outdir").mkdir()
     if "tamper" in argv:
         argv.remove("tamper")

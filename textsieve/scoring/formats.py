@@ -401,8 +401,35 @@ def json_loads(raw: bytes) -> Any:
 
 def _json_default(value: object) -> object:
     if isinstance(value, bytes):
+        # A kept column of bytes is checked first (check_bytes); bytes nested in a list or struct are not.
         return value.decode("utf-8", "replace")
     return str(value)
+
+
+def binary_columns(schema: pa.Schema | None, kept: Sequence[str]) -> list[str]:
+    """The kept columns of a Parquet input that hold bytes (binary, large or fixed-size)."""
+    if schema is None:
+        return []
+    pa = _pyarrow()
+    is_bytes = (pa.types.is_binary, pa.types.is_large_binary, pa.types.is_fixed_size_binary)
+    return [c for c in kept if c in schema.names and any(t(schema.field(c).type) for t in is_bytes)]
+
+
+def check_bytes(rows: Sequence[Any], columns: Sequence[str], *, first_row: int, out_fmt: str) -> None:
+    """InputError naming the first value of ``columns`` that is bytes but not UTF-8: a JSONL, CSV or
+    TSV file holds text, and such a value was written with U+FFFD in place of its bytes."""
+    for name in columns:
+        for i, row in enumerate(rows):
+            value = row.get(name) if isinstance(row, dict) else None
+            if isinstance(value, bytes):
+                try:
+                    value.decode("utf-8")
+                except UnicodeDecodeError:
+                    raise InputError(
+                        f"row {first_row + i + 1:,}: column {name!r} holds bytes that are not UTF-8 text, which a "
+                        f"{out_fmt.upper()} file cannot hold; write Parquet (an OUTPUT ending .parquet) or leave the "
+                        "column out with --keep"
+                    ) from None
 
 
 def _dumps(value: object) -> str:
@@ -649,6 +676,8 @@ __all__ = [
     "json_line",
     "ParquetReader",
     "Reader",
+    "binary_columns",
+    "check_bytes",
     "check_text_column",
     "committed_crc32",
     "detect",

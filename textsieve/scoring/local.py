@@ -400,6 +400,7 @@ def _stream(
             start=int(run.state["committed_bytes"]),
             crc32=int(run.state["committed_crc32"]),
         )
+    binary = formats.binary_columns(reader.schema, layout.kept) if writer is not None else []
     workers = default_workers() if opts.workers is None else opts.workers
     pool = Pool(resolved.folder, workers=workers)
     progress = Progress(
@@ -413,6 +414,7 @@ def _stream(
         for chunk in _chain(first, chunks):
             # Only a row after the first chunk can hold a new field, so that chunk was full.
             check_fields(chunk, fields, first_row=row, sampled=opts.chunk_rows)
+            formats.check_bytes(chunk, binary, first_row=row, out_fmt=run.out_fmt)
             part = split(chunk, opts.text_field, strict=opts.strict, first_row=row)
             futures = [(s, pool.submit(part.texts[s], opts.spans)) for s in pieces(part.texts, pool.parallel)]
             pending.append((chunk, part, futures, row))
