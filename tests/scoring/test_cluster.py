@@ -165,3 +165,36 @@ def test_a_jsonl_field_first_seen_after_the_sample_stops_the_run(
         "partition 0: row 1,050 has the field 'ticket', which none of the first 1,000 rows has" in caught.value.message
     )
     assert not out.exists() and sorted(p.name for p in tmp_path.iterdir()) == ["in.jsonl"]
+
+
+def test_resume_scores_a_damaged_part_again(
+    loopback_cluster: DaskCluster, scoring_registry: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A part file of the unfinished run that is no longer Parquet was a pyarrow traceback on --resume."""
+    from textsieve.registry import open_registry
+    from textsieve.scoring import formats
+    from textsieve.scoring.cluster import score_on_cluster
+
+    src = _parquet(tmp_path / "uci.parquet", [{**r, "id": i} for i, r in enumerate(uci_rows())], group=500)
+    want = _local(src, tmp_path / "local.parquet", scoring_registry)
+    out = tmp_path / "dataset"
+    real = formats.write_part
+    calls = {"n": 0}
+
+    def write_part(path: Path, table: object, crc32: int = 0) -> int:
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise KeyboardInterrupt
+        return real(path, table, crc32)
+
+    monkeypatch.setattr(formats, "write_part", write_part)
+    with open_registry(scoring_registry, create=False) as reg, pytest.raises(KeyboardInterrupt):
+        score_on_cluster(reg, MODEL, str(src), out, cluster=loopback_cluster.address)
+    monkeypatch.undo()
+    written = sorted((tmp_path / ".dataset.score-partial" / "dataset").glob("part-*.parquet"))
+    assert len(written) == 2
+    written[0].write_bytes(b"PAR1 not a Parquet file")
+    with open_registry(scoring_registry, create=False) as reg:
+        summary = score_on_cluster(reg, MODEL, str(src), out, cluster=loopback_cluster.address, resume=True)
+    assert summary.rows == 3000
+    _assert_equal_tables(_dataset(out), want)

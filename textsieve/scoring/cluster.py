@@ -351,8 +351,8 @@ def score_on_cluster(
     dataset.mkdir(parents=True, exist_ok=True)
     atomic_write_text(work / "state.json", json.dumps(expected) + "\n")
     done = {p.index for p in parts if (dataset / _part_name(p.index)).is_file()}
+    counts = _count_existing(dataset, done, err)
     todo = [p for p in parts if p.index not in done]
-    counts = _count_existing(dataset, done)
     client = _connect(cluster)
     progress = Progress(
         f"scoring {output.name} on {cluster}",
@@ -400,12 +400,20 @@ def _load_state(work: Path) -> dict[str, Any] | None:
     return data
 
 
-def _count_existing(dataset: Path, done: set[int]) -> tuple[int, int]:
+def _count_existing(dataset: Path, done: set[int], err: TextIO) -> tuple[int, int]:
+    """Rows and error rows in the parts already written; a part that is no longer Parquet (damaged
+    since) leaves ``done`` and is scored again, rather than stop the resumed run with a traceback."""
+    import pyarrow as pa
     import pyarrow.parquet as pq
 
     rows = errors = 0
-    for i in done:
-        table = pq.read_table(dataset / _part_name(i), columns=["error"])
+    for i in sorted(done):
+        try:
+            table = pq.read_table(dataset / _part_name(i), columns=["error"])
+        except (OSError, pa.ArrowException):
+            print(f"textsieve: {_part_name(i)} of the unfinished run cannot be read; scoring it again", file=err)
+            done.discard(i)
+            continue
         rows += table.num_rows
         errors += table.num_rows - table.column("error").null_count
     return rows, errors
