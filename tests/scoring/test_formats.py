@@ -154,6 +154,7 @@ def test_a_jsonl_file_reads_line_by_line_as_the_standard_module_reads_it(
     lines = [line.rstrip(b"\n") for line in LINES] + [b"", b"   ", b"not json", b'{"text": "after"}']
     lines = lines + lines[::-1] + [b'{"text": "plain", "id": %d}' % i for i in range(20)]
     lines += [b'{"text": "a pair \\ud83d\\ude00 is one character"}', b'{"text": "ok", "\\uDC00": 1}']
+    lines += [b'{"text": "caf\xe9 in Latin-1"}', b'{"text": "a NUL \x00 unescaped"}']  # RFC 8259 §8.1, §7
     path = tmp_path / "in.jsonl"
     path.write_bytes(b"\n".join(lines) + b"\n")
     expected: list[object] = []
@@ -162,7 +163,12 @@ def test_a_jsonl_file_reads_line_by_line_as_the_standard_module_reads_it(
             try:
                 row = json.loads(raw)
             except ValueError:
-                expected.append(f"line {number} is not valid JSON")
+                try:
+                    raw.decode("utf-8")  # the codec as the reference for "is UTF-8"
+                except UnicodeDecodeError:
+                    expected.append(f"line {number} is not UTF-8 (JSON Lines text is UTF-8, RFC 8259 §8.1)")
+                else:
+                    expected.append(f"line {number} is not valid JSON")
                 continue
             try:  # a lone surrogate (in a value or a key) cannot be written as UTF-8: an error row
                 json.dumps(row, ensure_ascii=False).encode("utf-8")

@@ -149,6 +149,8 @@ class JsonlReader(_ByteCounted):
                     if loads is not json_loads:  # orjson refused it: the standard module's reading, as json_loads does
                         with contextlib.suppress(ValueError):
                             row = json.loads(raw)
+                    if isinstance(row, Unreadable) and not _is_utf8(raw):
+                        row = Unreadable(f"line {number} is not UTF-8 (JSON Lines text is UTF-8, RFC 8259 §8.1)")
                 if escapes and lone_surrogate(row, raw):
                     row = Unreadable(f"line {number} {LONE_SURROGATE}")
                 chunk.append(row)
@@ -357,6 +359,14 @@ _LONG_RUN = b"0" * 19
 
 # JSONL is read in blocks of about this many bytes (whole lines).
 _BLOCK = 1 << 20
+
+
+def _is_utf8(raw: bytes) -> bool:
+    try:
+        raw.decode("utf-8")
+    except UnicodeDecodeError:
+        return False
+    return True
 
 
 def _plain_block(block: bytes) -> bool:
