@@ -255,6 +255,18 @@ def test_a_csv_that_breaks_rfc_4180_stops_the_run_naming_the_line(tmp_path: Path
     assert words in str(caught.value)
 
 
+def test_blank_lines_before_the_header_are_skipped(tmp_path: Path) -> None:
+    """An empty first line made the header no columns at all ("the input has no column 'text'; its
+    columns: ;"). The reference: csv.DictReader on the same file without those lines."""
+    path = tmp_path / "in.csv"
+    path.write_bytes(b"\xef\xbb\xbf\r\n  \r\n" + WELL_FORMED.encode("utf-8"))
+    with open(tmp_path / "reference.csv", "w", encoding="utf-8", newline="") as f:
+        f.write(WELL_FORMED)
+    with open(tmp_path / "reference.csv", newline="", encoding="utf-8") as f:
+        reference = list(csv.DictReader(f))
+    assert _read_csv(path) == reference
+
+
 @pytest.mark.parametrize("newline", ["\r", "\n"], ids=["cr", "lf"])
 def test_a_csv_with_other_line_ends_reads_as_the_csv_modules_dict_reader_reads_it(tmp_path: Path, newline: str) -> None:
     """A lone \\r ends a line in files from old spreadsheet programs; the csv module reads it as a line

@@ -189,7 +189,9 @@ class CsvReader(_ByteCounted):
         # that silently runs on through the rows after it.
         self._reader = csv.reader(self._text, delimiter=self.delimiter, strict=True)
         try:
-            self.columns = next(self._reader)
+            # Blank lines before the header (an export's empty first line) are skipped, as
+            # `textsieve train` skips them; the header was read as no columns at all.
+            self.columns = next(row for row in self._reader if row and (len(row) > 1 or row[0].strip()))
         except StopIteration:
             raise InputError(f"{path}: empty; a {self.kind} file starts with a header line") from None
         except csv.Error as exc:
