@@ -278,6 +278,14 @@ BAD_INPUT = [
         "open-quote.csv: not CSV in the row that starts on line 3 (a quote opened there is never closed)",
         id="csv-quote-left-open",
     ),
+    # A ';'-separated file named .csv (a spreadsheet's export where ',' is the decimal mark) was told
+    # to pass --text-field, which cannot help: RFC 4180 separates fields with commas.
+    pytest.param(
+        ["semicolons.csv", "--out", "o.jsonl"],
+        2,
+        "the header holds ';', not the CSV separator: textsieve reads CSV with ',' and TSV with tabs",
+        id="semicolon-separated-csv",
+    ),
     pytest.param(
         ["two-texts.csv", "--out", "o.jsonl"],
         2,
@@ -301,6 +309,7 @@ def test_bad_input_is_one_line_and_leaves_nothing(
     # A quote opened and never closed would have read every later line into one text.
     (work / "open-quote.csv").write_text('text\nhello\n"the chain\nrefund please\n', encoding="utf-8")
     (work / "two-texts.csv").write_text("text,text\nhello,world\n", encoding="utf-8")
+    (work / "semicolons.csv").write_text("id;text\n1;the chain is broken\n", encoding="utf-8")
     write_jsonl(work / "o.jsonl.meta.json", [{"text": "the chain is broken"}])
     import pyarrow as pa
     import pyarrow.parquet as pq

@@ -237,12 +237,29 @@ def _combine(futures: Sequence[tuple[slice, Future[Scored]]], count: int, classe
     return Scored(np.concatenate([p.best for p in parts]), np.concatenate([p.probabilities for p in parts]), spans)
 
 
+def _other_separator(reader: formats.Reader) -> str | None:
+    """What to do when a delimited file's header is one column holding another separator (a
+    ';'-separated file named .csv, as spreadsheets write them where ',' is the decimal mark)."""
+    if not isinstance(reader, formats.CsvReader) or len(reader.columns or []) != 1:
+        return None
+    header = (reader.columns or [""])[0]
+    found = next((s for s in (";", "\t", "|", ",") if s in header and s != reader.delimiter), None)
+    if found is None:
+        return None
+    if found == "\t":
+        return "the header holds tabs: the file looks tab-separated; name it .tsv or pass --input-format tsv"
+    return (
+        f"the header holds {found!r}, not the {reader.kind} separator: textsieve reads CSV with ',' and TSV with "
+        "tabs (RFC 4180 quoting); save the file with one of those"
+    )
+
+
 def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolved: Resolved, err: TextIO) -> Layout:
     if reader.columns is not None:
         if opts.text_field not in reader.columns:
             raise InputError(
                 f"the input has no column {opts.text_field!r}; its columns: {', '.join(reader.columns[:20])}; "
-                "pass --text-field NAME"
+                f"{_other_separator(reader) or 'pass --text-field NAME'}"
             )
         if reader.schema is not None:
             formats.check_text_column(reader.schema, opts.text_field)
