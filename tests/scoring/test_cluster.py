@@ -122,6 +122,7 @@ def test_a_worker_killed_mid_run_is_retried_and_the_output_is_complete(scoring_r
         pytest.param(["missing.parquet"], "missing.parquet: no such file", id="missing-file"),
         pytest.param(["in.parquet", "--text-field", "body"], "the input has no column 'body'", id="wrong-field"),
         pytest.param(["ints.parquet"], "the text column 'text' holds int64 values", id="parquet-int-text"),
+        pytest.param(["two.parquet"], "the schema names the column 'text' twice", id="parquet-column-named-twice"),
         pytest.param(
             ["in.parquet", "--out", "/sys/ds"],
             "--out /sys/ds: cannot make a folder in /sys (Operation not permitted)",
@@ -134,6 +135,12 @@ def test_cluster_bad_input_is_one_line_exit_2(
 ) -> None:
     _parquet(tmp_path / "in.parquet", [{"text": "hello"}], group=10)
     _parquet(tmp_path / "ints.parquet", [{"text": 7}], group=10)
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    pq.write_table(
+        pa.Table.from_arrays([pa.array(["a"]), pa.array(["b"])], names=["text", "text"]), tmp_path / "two.parquet"
+    )
     (tmp_path / "in.csv").write_text("text\nhello\n", encoding="utf-8")
     out = subprocess.run(
         [sys.executable, "-m", "textsieve.cli", "score", "--out", "ds", *argv, "--model", MODEL,

@@ -278,6 +278,13 @@ BAD_INPUT = [
         "open-quote.csv: not CSV in the row that starts on line 3 (a quote opened there is never closed)",
         id="csv-quote-left-open",
     ),
+    # pyarrow writes and reads a schema naming a column twice; it was a KeyError traceback.
+    pytest.param(
+        ["two-notes.parquet", "--out", "o.jsonl"],
+        2,
+        "two-notes.parquet: the schema names the column 'note' twice (columns 2 and 3)",
+        id="parquet-column-named-twice",
+    ),
     # A ';'-separated file named .csv (a spreadsheet's export where ',' is the decimal mark) was told
     # to pass --text-field, which cannot help: RFC 4180 separates fields with commas.
     pytest.param(
@@ -315,6 +322,8 @@ def test_bad_input_is_one_line_and_leaves_nothing(
     import pyarrow.parquet as pq
 
     pq.write_table(pa.table({"text": pa.array([1, 2], pa.int64())}), work / "numbers.parquet")
+    notes = [pa.array(["the chain", "refund"]), pa.array(["a", "b"]), pa.array(["c", "d"])]
+    pq.write_table(pa.Table.from_arrays(notes, names=["text", "note", "note"]), work / "two-notes.parquet")
     pq.write_table(pa.table({"text": pa.array([b"the chain", b"refund"], pa.binary())}), work / "bytes.parquet")
     pq.write_table(
         pa.table({"text": ["the chain", "refund"], "blob": [b"caf\xc3\xa9", b"\xff\x00"]}), work / "blob.parquet"

@@ -214,6 +214,7 @@ def partitions(url: str, fmt: str, partition_bytes: int) -> tuple[list[Partition
             groups = pf.metadata.num_row_groups
             schema = pf.schema_arrow
             pf.close()
+        formats.check_unique(url, schema.names, "the schema")
         return [Partition(i, url, fmt, row_groups=(i,)) for i in range(groups)], schema
     size = int(info["size"])
     parts = [

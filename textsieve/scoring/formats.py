@@ -196,14 +196,7 @@ class CsvReader(_ByteCounted):
             raise InputError(f"{path}: empty; a {self.kind} file starts with a header line") from None
         except csv.Error as exc:
             raise InputError(f"{path}: not {self.kind} ({exc})") from exc
-        first: dict[str, int] = {}
-        for number, name in enumerate(self.columns, start=1):
-            if name in first:
-                raise InputError(
-                    f"{path}: the header names the column {name!r} twice (columns {first[name]} and {number}); "
-                    "give every column its own name"
-                )
-            first[name] = number
+        check_unique(path, self.columns, "the header")
 
     def _decoded(self) -> Iterator[str]:
         # newline="": a line ends at \n, \r\n or a lone \r (as old spreadsheet exports end them),
@@ -284,6 +277,19 @@ def _lone_returns(raw: bytes) -> int:
     return raw.replace(b"\r\n", b"").count(b"\r")
 
 
+def check_unique(path: object, columns: Sequence[str], where: str) -> None:
+    """InputError naming a column ``where`` names twice: a row is a dict, so one of the two would be
+    lost without a word (a Parquet file may hold such columns; pyarrow reads them side by side)."""
+    first: dict[str, int] = {}
+    for number, name in enumerate(columns, start=1):
+        if name in first:
+            raise InputError(
+                f"{path}: {where} names the column {name!r} twice (columns {first[name]} and {number}); "
+                "give every column its own name"
+            )
+        first[name] = number
+
+
 def _separator(delimiter: str) -> str:
     return "a tab" if delimiter == "\t" else "a comma" if delimiter == "," else repr(delimiter)
 
@@ -303,6 +309,11 @@ class ParquetReader(Reader):
             raise InputError(f"{path}: not a Parquet file ({exc})") from exc
         self.schema = self.file.schema_arrow
         self.columns = list(self.schema.names)
+        try:
+            check_unique(path, self.columns, "the schema")
+        except InputError:
+            self.file.close()
+            raise
         self.total_rows = self.file.metadata.num_rows
         self.done = 0
 
@@ -690,6 +701,7 @@ __all__ = [
     "Reader",
     "binary_columns",
     "check_bytes",
+    "check_unique",
     "check_text_column",
     "committed_crc32",
     "detect",
