@@ -189,6 +189,19 @@ def test_a_jsonl_file_reads_line_by_line_as_the_standard_module_reads_it(
             assert _same(row, want)
 
 
+def test_a_jsonl_file_whose_lines_end_in_a_lone_cr_stops_the_run(tmp_path: Path) -> None:
+    """JSON Lines ends each line with \\n (jsonlines.org; \\r\\n too, the \\r being JSON whitespace,
+    RFC 8259 §2). A file whose lines end in \\r alone was one line: "no row among the first 1 has
+    the field 'text'; fields seen: none", or, after a first \\n line, one error row for all the rest."""
+    path = tmp_path / "in.jsonl"
+    path.write_bytes(b'{"text": "first"}\n{"text": "a"}\r{"text": "b"}\r{"text": "c"}\r')
+    reader = formats.open_reader(path, "jsonl")
+    with pytest.raises(formats.InputError) as caught:
+        [row for chunk in reader.chunks(10) for row in chunk]
+    reader.close()
+    assert "line 2 holds several JSON values separated by a lone \\r" in caught.value.message
+
+
 # -- CSV ------------------------------------------------------------------------------------------
 def _read_csv(path: Path, size: int = 3, skip: int = 0) -> list[object]:
     reader = formats.open_reader(path, "csv")

@@ -151,6 +151,11 @@ class JsonlReader(_ByteCounted):
                             row = json.loads(raw)
                     if isinstance(row, Unreadable) and not _is_utf8(raw):
                         row = Unreadable(f"line {number} is not UTF-8 (JSON Lines text is UTF-8, RFC 8259 §8.1)")
+                    elif isinstance(row, Unreadable) and _cr_separated(raw):
+                        raise InputError(
+                            f"{self.path}: line {number} holds several JSON values separated by a lone \\r (old Mac "
+                            "line ends); JSON Lines ends each line with \\n or \\r\\n: convert the line ends"
+                        ) from None
                 if escapes and lone_surrogate(row, raw):
                     row = Unreadable(f"line {number} {LONE_SURROGATE}")
                 chunk.append(row)
@@ -372,6 +377,19 @@ _LONG_RUN = b"0" * 19
 
 # JSONL is read in blocks of about this many bytes (whole lines).
 _BLOCK = 1 << 20
+
+
+def _cr_separated(raw: bytes) -> bool:
+    """Whether a line that is not JSON is JSON values with a lone \\r between them: a raw \\r can only
+    be whitespace in JSON (RFC 8259 §2, §7), so such a line is a file whose lines end in \\r alone."""
+    pieces = [p for p in raw.split(b"\r") if p.strip()]
+    if len(pieces) < 2:
+        return False
+    try:
+        json.loads(pieces[0])
+    except ValueError:
+        return False
+    return True
 
 
 def _is_utf8(raw: bytes) -> bool:
