@@ -214,6 +214,20 @@ def _jsonl(*rows: object) -> str:
         ),
         pytest.param("d.csv", 'text,label\n"a"b,x\n', ["line 2: malformed CSV"], id="malformed CSV"),
         pytest.param("d.csv", "text,text,label\na,b,c\n", ["names 'text' twice"], id="duplicate header"),
+        # RFC 8259 §8.2: an escaped lone surrogate is legal JSON no UTF-8 text can hold; it was a
+        # UnicodeEncodeError traceback from train (after training), evaluate and evalset add.
+        pytest.param(
+            "d.jsonl",
+            '{"text": "ok", "label": "a"}\n{"text": "half \\ud800 a pair", "label": "b"}\n',
+            ["line 2: the 'text' field holds a lone surrogate"],
+            id="text with a lone surrogate",
+        ),
+        pytest.param(
+            "d.jsonl",
+            '{"text": "ok", "label": "\\udc00"}\n',
+            ["line 1: the 'label' field holds a lone surrogate"],
+            id="label with a lone surrogate",
+        ),
     ],
 )
 def test_bad_data_file_is_one_line_naming_the_file(

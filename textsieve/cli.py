@@ -18,7 +18,7 @@ from collections.abc import Sequence
 from typing import TYPE_CHECKING, Any
 
 from textsieve import __version__, demo
-from textsieve.errors import SavedThenInterrupted, TextsieveError
+from textsieve.errors import SavedThenInterrupted, Terminated, TextsieveError
 from textsieve.exporter import cli as exporter_cli
 from textsieve.registry import cli as registry_cli
 from textsieve.registry.tables import one_line
@@ -201,6 +201,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except SavedThenInterrupted as exc:
         print(f"textsieve: interrupted after the change was saved: {exc.saved}", file=sys.stderr)
         return 130
+    except Terminated:
+        print("textsieve: stopped by SIGTERM", file=sys.stderr)
+        return 143
     except KeyboardInterrupt:
         print("textsieve: interrupted", file=sys.stderr)
         return 130

@@ -126,6 +126,11 @@ class SavedThenInterrupted(KeyboardInterrupt):
         self.result = result
 
 
+class Terminated(KeyboardInterrupt):
+    """SIGTERM arrived during a verb that stops on it as on Ctrl-C (``textsieve score``: its work so
+    far kept for ``--resume``); CLI exit 143, as a shell reports a process ended by SIGTERM."""
+
+
 __all__ = [
     "AuthError",
     "BundleError",
@@ -140,6 +145,7 @@ __all__ = [
     "ParityError",
     "RegistryError",
     "SavedThenInterrupted",
+    "Terminated",
     "StateError",
     "TextsieveError",
     "UnavailableError",

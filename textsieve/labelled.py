@@ -134,6 +134,8 @@ class _Fields:
             raise self._fail(where, f"the {self.text_field!r} field is {_kind(text)}; it must be a string")
         if not text.strip():
             raise self._fail(where, f"the {self.text_field!r} field is empty; every row needs some text")
+        if _lone_surrogate(text):
+            raise self._fail(where, f"the {self.text_field!r} field {_LONE_SURROGATE}")
         label = record[self.label_field]
         if isinstance(label, bool | int):
             label = json.dumps(label)  # 1 → "1", true → "true": the label as written
@@ -146,7 +148,26 @@ class _Fields:
         why = label_problem(label)
         if why:
             raise self._fail(where, f"the label {label!r} {why}")
+        if _lone_surrogate(label):
+            raise self._fail(where, f"the {self.label_field!r} field {_LONE_SURROGATE}")
         return Example(text, label)
+
+
+# JSON may escape one half of a UTF-16 pair alone (\ud800); Python reads it into a string that no
+# UTF-8 file can hold: the run folder, the vocabulary and the evaluation set's blob each failed to
+# be written with a UnicodeEncodeError traceback, after the training or scoring.
+_LONE_SURROGATE = (
+    "holds a lone surrogate (a \\uD800–\\uDFFF escape without its pair), which UTF-8 cannot hold; "
+    "write the character whole or drop it"
+)
+
+
+def _lone_surrogate(value: str) -> bool:
+    try:
+        value.encode("utf-8")
+    except UnicodeEncodeError:
+        return True
+    return False
 
 
 def label_problem(label: str) -> str | None:

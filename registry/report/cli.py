@@ -7,6 +7,7 @@ Imported for every run of ``textsieve``: the registry and NumPy are imported ins
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -81,6 +82,15 @@ def cli_evaluate(args: argparse.Namespace) -> int:
         examples = load_evalset(args.evalset, text_field=args.text_field, label_field=args.label_field).examples
     out = args.out if args.out is not None else Path(f"report-{args.model}-{version}")
     # A place the report cannot be written to is said before the scoring, not after it.
+    if out.exists() and not out.is_dir():
+        raise InputError(f"--out {out}: is a file; --out names a folder for {JSON_FILE} and {HTML_FILE}")
+    for name in (JSON_FILE, HTML_FILE):
+        # The report is renamed over OUT/NAME: an evaluation set of that name there would be lost.
+        if args.evalset is not None and (out / name).exists() and os.path.samefile(out / name, args.evalset):
+            raise InputError(
+                f"--out {out}: the report's {name} would replace the evaluation set {args.evalset}; "
+                "choose another --out"
+            )
     writes_in = nearest_folder(out)
     if writes_in is not None:
         check_writable(writes_in, out)

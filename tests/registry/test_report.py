@@ -489,6 +489,10 @@ def evalset_lines(tiny_data: Path) -> list[str]:
         pytest.param(["m", "1", "--against", "live"], None, "'m' has no live version", id="no-live"),
         pytest.param(["m", "1", "--against", "one"], None, "give 'live' or a version number", id="bad-against"),
         pytest.param(["m", "1", "--against", "1"], None, "that is the version under report", id="self"),
+        # A file as --out was found only after the scoring, with its progress lines before the error.
+        pytest.param(
+            ["m", "1", "--out", "{file}"], "x", "is a file; --out names a folder for report.json", id="out-a-file"
+        ),
         # Found only after the scoring before; /sys takes no new folder even from root.
         pytest.param(
             ["m", "1", "--out", "/sys/textsieve-report"],
@@ -523,6 +527,23 @@ def test_evaluate_bad_input_is_one_line_and_exit_2(
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1 and expected_msg in err, err
     assert not (tmp_path / "o").exists()
+
+
+def test_evaluate_refuses_to_write_its_report_over_the_evaluation_set(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    """An evaluation set kept as OUT/report.json was replaced by the report, exit 0."""
+    r = ["--registry", str(tmp_path / "reg")]
+    assert _run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)[0] == 0
+    folder = tmp_path / "work"
+    folder.mkdir()
+    evalset = folder / "report.json"
+    evalset.write_text("".join(line + "\n" for line in evalset_lines(tiny_data)[:20]), encoding="utf-8")
+    before = evalset.read_bytes()
+    code, out, err = _run(capsys, "evaluate", "m", "1", "--evalset", str(evalset), "--out", str(folder), *r)
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1 and "would replace the evaluation set" in err, err
+    assert evalset.read_bytes() == before and sorted(p.name for p in folder.iterdir()) == ["report.json"]
 
 
 # -- real data: the UCI sentences ------------------------------------------------------------------

@@ -121,6 +121,8 @@ def test_a_worker_killed_mid_run_is_retried_and_the_output_is_complete(scoring_r
         pytest.param(["in.csv"], "--cluster reads Parquet or JSONL", id="csv-input"),
         pytest.param(["missing.parquet"], "missing.parquet: no such file", id="missing-file"),
         pytest.param(["in.parquet", "--text-field", "body"], "the input has no column 'body'", id="wrong-field"),
+        pytest.param(["ints.parquet"], "the text column 'text' holds int64 values", id="parquet-int-text"),
+        pytest.param(["two.parquet"], "the schema names the column 'text' twice", id="parquet-column-named-twice"),
         pytest.param(
             ["in.parquet", "--out", "/sys/ds"],
             "--out /sys/ds: cannot make a folder in /sys (Operation not permitted)",
@@ -132,6 +134,13 @@ def test_cluster_bad_input_is_one_line_exit_2(
     argv: list[str], expected_msg: str, scoring_registry: Path, tmp_path: Path
 ) -> None:
     _parquet(tmp_path / "in.parquet", [{"text": "hello"}], group=10)
+    _parquet(tmp_path / "ints.parquet", [{"text": 7}], group=10)
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    pq.write_table(
+        pa.Table.from_arrays([pa.array(["a"]), pa.array(["b"])], names=["text", "text"]), tmp_path / "two.parquet"
+    )
     (tmp_path / "in.csv").write_text("text\nhello\n", encoding="utf-8")
     out = subprocess.run(
         [sys.executable, "-m", "textsieve.cli", "score", "--out", "ds", *argv, "--model", MODEL,
@@ -142,3 +151,57 @@ def test_cluster_bad_input_is_one_line_exit_2(
     lines = out.stderr.splitlines()
     assert len(lines) == 1 and expected_msg in lines[0], out.stderr
     assert not (tmp_path / "ds").exists()
+
+
+def test_a_jsonl_field_first_seen_after_the_sample_stops_the_run(
+    loopback_cluster: DaskCluster, scoring_registry: Path, tmp_path: Path
+) -> None:
+    """The columns come from the first 1,000 rows; a field first seen after them was dropped from
+    every row of the dataset (JSON Lines rows need not share their fields, RFC 8259 §4)."""
+    from textsieve.errors import InputError
+    from textsieve.registry import open_registry
+    from textsieve.scoring.cluster import score_on_cluster
+
+    rows: list[dict[str, object]] = [{"text": r["text"]} for r in uci_rows()[:1100]]
+    rows[1049] = {**rows[1049], "ticket": 7}
+    src = write_jsonl(tmp_path / "in.jsonl", rows)
+    out = tmp_path / "dataset"
+    with open_registry(scoring_registry, create=False) as reg, pytest.raises(InputError) as caught:
+        score_on_cluster(reg, MODEL, str(src), out, cluster=loopback_cluster.address)
+    assert (
+        "partition 0: row 1,050 has the field 'ticket', which none of the first 1,000 rows has" in caught.value.message
+    )
+    assert not out.exists() and sorted(p.name for p in tmp_path.iterdir()) == ["in.jsonl"]
+
+
+def test_resume_scores_a_damaged_part_again(
+    loopback_cluster: DaskCluster, scoring_registry: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A part file of the unfinished run that is no longer Parquet was a pyarrow traceback on --resume."""
+    from textsieve.registry import open_registry
+    from textsieve.scoring import formats
+    from textsieve.scoring.cluster import score_on_cluster
+
+    src = _parquet(tmp_path / "uci.parquet", [{**r, "id": i} for i, r in enumerate(uci_rows())], group=500)
+    want = _local(src, tmp_path / "local.parquet", scoring_registry)
+    out = tmp_path / "dataset"
+    real = formats.write_part
+    calls = {"n": 0}
+
+    def write_part(path: Path, table: object, crc32: int = 0) -> int:
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise KeyboardInterrupt
+        return real(path, table, crc32)
+
+    monkeypatch.setattr(formats, "write_part", write_part)
+    with open_registry(scoring_registry, create=False) as reg, pytest.raises(KeyboardInterrupt):
+        score_on_cluster(reg, MODEL, str(src), out, cluster=loopback_cluster.address)
+    monkeypatch.undo()
+    written = sorted((tmp_path / ".dataset.score-partial" / "dataset").glob("part-*.parquet"))
+    assert len(written) == 2
+    written[0].write_bytes(b"PAR1 not a Parquet file")
+    with open_registry(scoring_registry, create=False) as reg:
+        summary = score_on_cluster(reg, MODEL, str(src), out, cluster=loopback_cluster.address, resume=True)
+    assert summary.rows == 3000
+    _assert_equal_tables(_dataset(out), want)

@@ -154,6 +154,7 @@ def test_a_jsonl_file_reads_line_by_line_as_the_standard_module_reads_it(
     lines = [line.rstrip(b"\n") for line in LINES] + [b"", b"   ", b"not json", b'{"text": "after"}']
     lines = lines + lines[::-1] + [b'{"text": "plain", "id": %d}' % i for i in range(20)]
     lines += [b'{"text": "a pair \\ud83d\\ude00 is one character"}', b'{"text": "ok", "\\uDC00": 1}']
+    lines += [b'{"text": "caf\xe9 in Latin-1"}', b'{"text": "a NUL \x00 unescaped"}']  # RFC 8259 §8.1, §7
     path = tmp_path / "in.jsonl"
     path.write_bytes(b"\n".join(lines) + b"\n")
     expected: list[object] = []
@@ -162,7 +163,12 @@ def test_a_jsonl_file_reads_line_by_line_as_the_standard_module_reads_it(
             try:
                 row = json.loads(raw)
             except ValueError:
-                expected.append(f"line {number} is not valid JSON")
+                try:
+                    raw.decode("utf-8")  # the codec as the reference for "is UTF-8"
+                except UnicodeDecodeError:
+                    expected.append(f"line {number} is not UTF-8 (JSON Lines text is UTF-8, RFC 8259 §8.1)")
+                else:
+                    expected.append(f"line {number} is not valid JSON")
                 continue
             try:  # a lone surrogate (in a value or a key) cannot be written as UTF-8: an error row
                 json.dumps(row, ensure_ascii=False).encode("utf-8")
@@ -181,6 +187,19 @@ def test_a_jsonl_file_reads_line_by_line_as_the_standard_module_reads_it(
             assert isinstance(row, Unreadable) and str(row) == want
         else:
             assert _same(row, want)
+
+
+def test_a_jsonl_file_whose_lines_end_in_a_lone_cr_stops_the_run(tmp_path: Path) -> None:
+    """JSON Lines ends each line with \\n (jsonlines.org; \\r\\n too, the \\r being JSON whitespace,
+    RFC 8259 §2). A file whose lines end in \\r alone was one line: "no row among the first 1 has
+    the field 'text'; fields seen: none", or, after a first \\n line, one error row for all the rest."""
+    path = tmp_path / "in.jsonl"
+    path.write_bytes(b'{"text": "first"}\n{"text": "a"}\r{"text": "b"}\r{"text": "c"}\r')
+    reader = formats.open_reader(path, "jsonl")
+    with pytest.raises(formats.InputError) as caught:
+        [row for chunk in reader.chunks(10) for row in chunk]
+    reader.close()
+    assert "line 2 holds several JSON values separated by a lone \\r" in caught.value.message
 
 
 # -- CSV ------------------------------------------------------------------------------------------
@@ -247,3 +266,46 @@ def test_a_csv_that_breaks_rfc_4180_stops_the_run_naming_the_line(tmp_path: Path
     with pytest.raises(formats.InputError) as caught:
         _read_csv(path)
     assert words in str(caught.value)
+
+
+def test_blank_lines_before_the_header_are_skipped(tmp_path: Path) -> None:
+    """An empty first line made the header no columns at all ("the input has no column 'text'; its
+    columns: ;"). The reference: csv.DictReader on the same file without those lines."""
+    path = tmp_path / "in.csv"
+    path.write_bytes(b"\xef\xbb\xbf\r\n  \r\n" + WELL_FORMED.encode("utf-8"))
+    with open(tmp_path / "reference.csv", "w", encoding="utf-8", newline="") as f:
+        f.write(WELL_FORMED)
+    with open(tmp_path / "reference.csv", newline="", encoding="utf-8") as f:
+        reference = list(csv.DictReader(f))
+    assert _read_csv(path) == reference
+
+
+@pytest.mark.parametrize("newline", ["\r", "\n"], ids=["cr", "lf"])
+def test_a_csv_with_other_line_ends_reads_as_the_csv_modules_dict_reader_reads_it(tmp_path: Path, newline: str) -> None:
+    """A lone \\r ends a line in files from old spreadsheet programs; the csv module reads it as a line
+    end (its documentation: open the file with newline=''), and so does `textsieve train`. Scoring
+    stopped with the csv module's 'new-line character seen in unquoted field'."""
+    path = tmp_path / "in.csv"
+    path.write_bytes(WELL_FORMED.replace("\r\n", newline).encode("utf-8"))
+    with open(path, newline="", encoding="utf-8") as f:
+        reference = list(csv.DictReader(f))
+    assert len(reference) == 5 and reference[2]["text"] == f"two{newline}lines"
+    assert _read_csv(path) == reference
+
+
+@pytest.mark.parametrize(
+    ("content", "words"),
+    [
+        # Excel's "Unicode text" export: UTF-16 with a byte-order mark (the codec's own BOM)
+        ("id\ttext\n1\tcaf\u00e9\n".encode("utf-16"), "is UTF-16 text"),
+        (b"id,text\r1,ok\r2,caf\xe9\r", "line 3 is not UTF-8"),  # Latin-1 after lines ended by \r alone
+        (b'id,text\r\n1,"two\r\nlines"\r\n2,caf\xe9\r\n', "line 4 is not UTF-8"),
+    ],
+    ids=["utf-16", "latin-1-cr", "latin-1-crlf"],
+)
+def test_a_csv_that_is_not_utf8_stops_the_run_naming_the_line(tmp_path: Path, content: bytes, words: str) -> None:
+    path = tmp_path / "in.csv"
+    path.write_bytes(content)
+    with pytest.raises(formats.InputError) as caught:
+        _read_csv(path)
+    assert words in str(caught.value) and "save" in str(caught.value)

@@ -236,6 +236,13 @@ BAD_INPUT = [
         id="output-where-nothing-can-be-written",
     ),
     pytest.param(["in.jsonl", "--out", "in.jsonl"], 2, "--out names the input file itself", id="output-is-the-input"),
+    # The input was replaced by the metadata written beside a JSONL, CSV or TSV output.
+    pytest.param(
+        ["o.jsonl.meta.json", "--input-format", "jsonl", "--out", "o.jsonl"],
+        2,
+        "o.jsonl: its metadata goes to o.jsonl.meta.json, which is the input file",
+        id="output-metadata-is-the-input",
+    ),
     pytest.param(
         ["in.jsonl", "--out", "o.jsonl", "--progress-every", "nan"],
         2,
@@ -249,11 +256,42 @@ BAD_INPUT = [
         id="unknown-keep",
     ),  # noqa: E501
     pytest.param(["in.jsonl", "--out", "o.jsonl", "tamper"], 1, "has been altered", id="tampered-blob"),
+    # Every row was an error row ("is an int, not a string"), exit 0. A Parquet BYTE_ARRAY column
+    # without the STRING annotation is bytes, not text (Apache Parquet's logical types); pyarrow
+    # reads it as binary.
+    pytest.param(
+        ["numbers.parquet", "--out", "o.jsonl"], 2, "the text column 'text' holds int64 values", id="parquet-int-text"
+    ),
+    pytest.param(
+        ["bytes.parquet", "--out", "o.jsonl"], 2, "the text column 'text' holds binary values", id="parquet-binary-text"
+    ),
+    # JSON text is UTF-8 (RFC 8259 §8.1): bytes that are not were written as U+FFFD, exit 0.
+    pytest.param(
+        ["blob.parquet", "--out", "o.jsonl"],
+        2,
+        "row 2: column 'blob' holds bytes that are not UTF-8 text, which a JSONL file cannot hold",
+        id="parquet-bytes-kept-in-jsonl",
+    ),
     pytest.param(
         ["open-quote.csv", "--out", "o.jsonl"],
         2,
         "open-quote.csv: not CSV in the row that starts on line 3 (a quote opened there is never closed)",
         id="csv-quote-left-open",
+    ),
+    # pyarrow writes and reads a schema naming a column twice; it was a KeyError traceback.
+    pytest.param(
+        ["two-notes.parquet", "--out", "o.jsonl"],
+        2,
+        "two-notes.parquet: the schema names the column 'note' twice (columns 2 and 3)",
+        id="parquet-column-named-twice",
+    ),
+    # A ';'-separated file named .csv (a spreadsheet's export where ',' is the decimal mark) was told
+    # to pass --text-field, which cannot help: RFC 4180 separates fields with commas.
+    pytest.param(
+        ["semicolons.csv", "--out", "o.jsonl"],
+        2,
+        "the header holds ';', not the CSV separator: textsieve reads CSV with ',' and TSV with tabs",
+        id="semicolon-separated-csv",
     ),
     pytest.param(
         ["two-texts.csv", "--out", "o.jsonl"],
@@ -278,6 +316,18 @@ def test_bad_input_is_one_line_and_leaves_nothing(
     # A quote opened and never closed would have read every later line into one text.
     (work / "open-quote.csv").write_text('text\nhello\n"the chain\nrefund please\n', encoding="utf-8")
     (work / "two-texts.csv").write_text("text,text\nhello,world\n", encoding="utf-8")
+    (work / "semicolons.csv").write_text("id;text\n1;the chain is broken\n", encoding="utf-8")
+    write_jsonl(work / "o.jsonl.meta.json", [{"text": "the chain is broken"}])
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    pq.write_table(pa.table({"text": pa.array([1, 2], pa.int64())}), work / "numbers.parquet")
+    notes = [pa.array(["the chain", "refund"]), pa.array(["a", "b"]), pa.array(["c", "d"])]
+    pq.write_table(pa.Table.from_arrays(notes, names=["text", "note", "note"]), work / "two-notes.parquet")
+    pq.write_table(pa.table({"text": pa.array([b"the chain", b"refund"], pa.binary())}), work / "bytes.parquet")
+    pq.write_table(
+        pa.table({"text": ["the chain", "refund"], "blob": [b"caf\xc3\xa9", b"\xff\x00"]}), work / "blob.parquet"
+    )
     (work / "outdir").mkdir()
     if "tamper" in argv:
         argv.remove("tamper")
@@ -294,6 +344,7 @@ def test_bad_input_is_one_line_and_leaves_nothing(
     assert len(lines) == 1 and lines[0].startswith("textsieve: error: ") and expected_msg in lines[0], out.stderr
     assert sorted(p.name for p in work.iterdir()) == before and not any((work / "outdir").iterdir())
     assert (work / "in.jsonl").read_text(encoding="utf-8").count("\n") == 2  # the input is untouched
+    assert json.loads((work / "o.jsonl.meta.json").read_text(encoding="utf-8")) == {"text": "the chain is broken"}
 
 
 # -- interrupted runs ---------------------------------------------------------------------------------
@@ -354,3 +405,180 @@ def test_resume_refuses_a_changed_input(
     write_jsonl(src, uci_rows()[:501])
     assert score(src, "--out", out, *common, "--resume") == 2
     assert not out.exists()
+
+
+def _interrupt_at_third_chunk(monkeypatch: pytest.MonkeyPatch, out_format: str) -> None:
+    """Ctrl-C as the third chunk is written: two chunks are counted in the state."""
+    from textsieve.scoring import formats
+
+    calls = {"n": 0}
+    if out_format == "parquet":
+        real_part = formats.write_part
+
+        def part(path: Path, table: Any, crc32: int = 0) -> int:
+            calls["n"] += 1
+            if calls["n"] == 3:
+                raise KeyboardInterrupt
+            return real_part(path, table, crc32)
+
+        monkeypatch.setattr(formats, "write_part", part)
+    else:
+        real_write = formats.JsonlWriter.write
+
+        def write(self: formats.JsonlWriter, rows: Any) -> None:
+            calls["n"] += 1
+            if calls["n"] == 3:
+                raise KeyboardInterrupt
+            real_write(self, rows)
+
+        monkeypatch.setattr(formats.JsonlWriter, "write", write)
+
+
+def _garble(path: Path) -> None:
+    data = bytearray(path.read_bytes())
+    data[len(data) // 2] ^= 0x20  # one bit of one byte: same length, same file
+    path.write_bytes(bytes(data))
+
+
+def _edit_state(partial: Path, change: Any) -> None:
+    state = json.loads((partial / "state.json").read_text(encoding="utf-8"))
+    (partial / "state.json").write_text(json.dumps(change(state)), encoding="utf-8")
+
+
+# Each was a resume that exited 0 with a wrong OUTPUT (the missing bytes as NULs, garbage spliced in,
+# one chunk's rows twice) or a traceback (a Parquet part pyarrow cannot read, a state.json of
+# another shape).
+DAMAGE = [
+    pytest.param("jsonl", lambda p: (p / "output.part").unlink(), "no longer what it wrote", id="output-deleted"),
+    pytest.param("jsonl", lambda p: os.truncate(p / "output.part", 100), "no longer what it wrote", id="output-cut"),
+    pytest.param("jsonl", lambda p: _garble(p / "output.part"), "no longer what it wrote", id="output-changed"),
+    pytest.param("parquet", lambda p: (p / "parts" / "000001.parquet").unlink(), "no longer", id="part-deleted"),
+    pytest.param(
+        "parquet",
+        lambda p: (p / "parts" / "000000.parquet").write_bytes(b"PAR1 garbage"),
+        "no longer",
+        id="part-garbage",
+    ),
+    pytest.param(
+        "parquet",
+        lambda p: (p / "parts" / "000001.parquet").write_bytes((p / "parts" / "000000.parquet").read_bytes()),
+        "no longer",
+        id="part-replaced",
+    ),
+    pytest.param("jsonl", lambda p: (p / "state.json").write_text("[1]"), "nothing to resume", id="state-a-list"),
+    pytest.param(
+        "jsonl", lambda p: _edit_state(p, lambda s: {**s, "rows": "200"}), "nothing to resume", id="state-rows-a-string"
+    ),
+    pytest.param(
+        "jsonl",
+        lambda p: _edit_state(p, lambda s: {k: v for k, v in s.items() if k != "layout"}),
+        "nothing to resume",
+        id="state-without-layout",
+    ),
+]
+
+
+@pytest.mark.parametrize(("out_format", "damage", "notice"), DAMAGE)
+def test_resume_after_the_partial_folder_was_damaged_starts_over(
+    out_format: str,
+    damage: Any,
+    notice: str,
+    scoring_registry: Path,
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    src = write_jsonl(tmp_path / "in.jsonl", uci_rows()[:500])
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 0, "--chunk-rows", 100]
+    reference = tmp_path / f"reference.{out_format}"
+    assert score(src, "--out", reference, *common) == 0
+    out = tmp_path / f"out.{out_format}"
+    _interrupt_at_third_chunk(monkeypatch, out_format)
+    assert score(src, "--out", out, *common) == 130
+    monkeypatch.undo()
+    partial = tmp_path / f".out.{out_format}.score-partial"
+    assert json.loads((partial / "state.json").read_text(encoding="utf-8"))["rows"] == 200
+    damage(partial)
+    capsys.readouterr()
+    assert score(src, "--out", out, *common, "--resume") == 0
+    assert notice in capsys.readouterr().err
+    if out_format == "parquet":
+        import pyarrow.parquet as pq
+
+        # pyarrow reads both files; equals() compares every column, not the metadata (its scored_at differs)
+        assert pq.read_table(out).equals(pq.read_table(reference))
+    else:
+        assert out.read_bytes() == reference.read_bytes()
+    assert not partial.exists()
+
+
+@pytest.mark.parametrize(
+    ("signum", "status", "last_line"),
+    [(signal.SIGINT, 130, "textsieve: interrupted"), (signal.SIGTERM, 143, "textsieve: stopped by SIGTERM")],
+)
+def test_a_signal_to_the_process_group_stops_cleanly_and_resume_gives_the_same_file(
+    signum: int, status: int, last_line: str, scoring_registry: Path, tmp_path: Path
+) -> None:
+    """Ctrl-C (SIGINT to the foreground process group) and a job runner's SIGTERM to the group reach
+    the worker processes too. SIGTERM killed the run where it stood (status -15, multiprocessing's
+    leaked-semaphore warning); SIGINT could print a worker's KeyboardInterrupt traceback."""
+    rows = uci_rows() * 20  # 600 chunks: the signal comes long before the end
+    src = write_jsonl(tmp_path / "in.jsonl", [{**r, "id": i} for i, r in enumerate(rows)])
+    reference = tmp_path / "reference.jsonl"
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 2, "--chunk-rows", 100]
+    assert score(src, "--out", reference, *common) == 0
+
+    out = tmp_path / "out.jsonl"
+    state = tmp_path / ".out.jsonl.score-partial" / "state.json"
+    cmd = [sys.executable, "-m", "textsieve.cli", "score", str(src), "--out", str(out), *map(str, common)]
+    env = child_env() | {"PYTHONPATH": str(ROOT)}
+    proc = subprocess.Popen(
+        cmd, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, start_new_session=True
+    )
+
+    def some_chunks_done() -> bool:
+        try:
+            return json.loads(state.read_text(encoding="utf-8"))["chunks"] >= 3
+        except (FileNotFoundError, ValueError):
+            return False
+
+    try:
+        wait_until(some_chunks_done, 120, "three chunks")
+        os.killpg(proc.pid, signum)
+        _, err = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)
+            proc.wait()
+    lines = err.strip().splitlines()
+    assert proc.returncode == status, err
+    assert lines[-1] == last_line and "Traceback" not in err and "leaked" not in err, err
+    assert lines[-2].startswith("textsieve: stopped after ") and "--resume" in lines[-2], err
+    assert not out.exists()
+    assert 0 < json.loads(state.read_text(encoding="utf-8"))["rows"] < len(rows)
+    assert score(src, "--out", out, *common, "--resume") == 0
+    assert out.read_bytes() == reference.read_bytes()
+
+
+def test_a_jsonl_field_first_seen_after_the_first_chunk_is_refused_or_kept_never_dropped(
+    scoring_registry: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """JSON Lines rows need not share their fields (RFC 8259 leaves an object's members to each
+    object). The output's columns come from the first chunk; a field first seen later was left out
+    of every row, exit 0, and --keep refused to name it."""
+    rows: list[dict[str, object]] = [{"text": "the chain is broken"}] * 5 + [{"text": "refund please", "ticket": 7}]
+    src = write_jsonl(tmp_path / "in.jsonl", rows)
+    out = tmp_path / "out.jsonl"
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 0, "--chunk-rows", 2]
+    assert score(src, "--out", out, *common) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "row 6 has the field 'ticket', which none of the first 2 rows has" in err[0], err
+    assert "--keep text,ticket" in err[0]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["in.jsonl"]
+
+    assert score(src, "--out", out, *common, "--keep", "text,ticket") == 0
+    assert "no row among the first 2 has the field(s) 'ticket'" in capsys.readouterr().err
+    # the json module reads the input and the output: every row's own value, null where it has none
+    assert [r["ticket"] for r in read_jsonl(out)] == [
+        r.get("ticket") for r in map(json.loads, src.read_text().split("\n")[:-1])
+    ]

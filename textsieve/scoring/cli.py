@@ -4,10 +4,12 @@ are imported inside the handler (this module is imported on every run and every 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import math
+from collections.abc import Iterator
 from pathlib import Path
 
-from textsieve.errors import InputError
+from textsieve.errors import InputError, Terminated
 from textsieve.registry.cli import add_location_args
 
 FORMAT_CHOICES = ("jsonl", "csv", "tsv", "parquet")
@@ -102,7 +104,29 @@ PRELOAD = (
 )
 
 
+@contextlib.contextmanager
+def _stopped_by_sigterm() -> Iterator[None]:
+    """SIGTERM (a job runner's or a container's stop, ``kill``) ends the run as Ctrl-C does: the
+    chunks done are kept for ``--resume``, OUTPUT is not written, one line says so (exit 143).
+    Without this the process died where it stood, with multiprocessing's warnings on stderr."""
+    import signal
+
+    def stop(signum: int, frame: object) -> None:
+        raise Terminated
+
+    previous = signal.signal(signal.SIGTERM, stop)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
 def cli_score(args: argparse.Namespace) -> int:
+    with _stopped_by_sigterm():
+        return _score(args)
+
+
+def _score(args: argparse.Namespace) -> int:
     if not args.cluster and args.workers != 0:
         # The workers' fork server imports NumPy, onnxruntime and the runtime on the other core while
         # this process imports the registry and checks the bundle (~0.3 s of a 100,000-text run).

@@ -40,7 +40,7 @@ from textsieve.scoring.columns import Layout, plan
 from textsieve.scoring.local import STATE_FORMAT, Options, Summary, metadata, work_dir
 from textsieve.scoring.model import Resolved, resolve
 from textsieve.scoring.progress import Progress
-from textsieve.scoring.rows import Unreadable, output_rows, score_texts, split
+from textsieve.scoring.rows import Unreadable, check_fields, output_rows, score_texts, split
 
 if TYPE_CHECKING:
     import pyarrow as pa
@@ -50,6 +50,7 @@ if TYPE_CHECKING:
 
 SIDECAR = "_textsieve.json"
 SAMPLE_ROWS = 1000
+SAMPLE_BYTES = 1 << 20  # of a JSONL input, read for the sample
 CLUSTER_EXTRA = "pip install 'textsieve[cluster]'"
 
 
@@ -83,6 +84,8 @@ class Task:
     text_field: str
     spans: int
     strict: bool
+    fields: frozenset[str] | None = None  # JSONL with every field kept: the fields the sample had
+    sampled: int = 0
 
 
 # -- on the workers ---------------------------------------------------------------------------
@@ -180,6 +183,7 @@ def score_partition(payload: Payload, part: Partition, task: Task) -> pa.Table:
     """Runs on a worker: read, score and lay out one partition."""
     rows = read_partition(part)
     try:
+        check_fields(rows, task.fields, first_row=0, sampled=task.sampled)
         chunk = split(rows, task.text_field, strict=task.strict, first_row=0)
     except InputError as exc:
         raise InputError(f"partition {part.index}: {exc.message}") from None
@@ -210,6 +214,7 @@ def partitions(url: str, fmt: str, partition_bytes: int) -> tuple[list[Partition
             groups = pf.metadata.num_row_groups
             schema = pf.schema_arrow
             pf.close()
+        formats.check_unique(url, schema.names, "the schema")
         return [Partition(i, url, fmt, row_groups=(i,)) for i in range(groups)], schema
     size = int(info["size"])
     parts = [
@@ -224,11 +229,14 @@ def _sample(parts: Sequence[Partition]) -> list[Any]:
         return []
     first = parts[0]
     if first.fmt == "jsonl":
-        first = Partition(0, first.url, first.fmt, 0, min(first.end, 1 << 20))
+        first = Partition(0, first.url, first.fmt, 0, min(first.end, SAMPLE_BYTES))
     return read_partition(first)[:SAMPLE_ROWS]
 
 
-def _layout(sample: list[Any], input_schema: pa.Schema | None, opts: Options, resolved: Resolved) -> Layout:
+def _layout(
+    sample: list[Any], input_schema: pa.Schema | None, opts: Options, resolved: Resolved, *, whole: bool
+) -> Layout:
+    """The output's layout; ``whole``: the sample is every row of the input."""
     if input_schema is not None:
         columns = list(input_schema.names)
         if opts.text_field not in columns:
@@ -236,6 +244,7 @@ def _layout(sample: list[Any], input_schema: pa.Schema | None, opts: Options, re
                 f"the input has no column {opts.text_field!r}; its columns: {', '.join(columns[:20])}; "
                 "pass --text-field NAME"
             )
+        formats.check_text_column(input_schema, opts.text_field)
     else:
         seen: dict[str, None] = {}
         for row in sample:
@@ -247,7 +256,8 @@ def _layout(sample: list[Any], input_schema: pa.Schema | None, opts: Options, re
                 f"{', '.join(list(seen)[:20]) or 'none'}; pass --text-field NAME"
             )
         columns = list(seen)
-    return plan(columns, None if opts.keep is None else list(opts.keep), resolved.labels, spans=opts.spans > 0)
+    keep = None if opts.keep is None else list(opts.keep)
+    return plan(columns, keep, resolved.labels, spans=opts.spans > 0, complete=input_schema is not None or whole)
 
 
 def _payload(resolved: Resolved) -> Payload:
@@ -315,14 +325,16 @@ def score_on_cluster(
     parts, input_schema = partitions(source, fmt, partition_bytes)
     resolved = resolve(registry, model, version)
     sample = _sample(parts)
-    layout = _layout(sample, input_schema, opts, resolved)
+    whole = len(parts) == 1 and parts[0].end <= SAMPLE_BYTES and len(sample) < SAMPLE_ROWS
+    layout = _layout(sample, input_schema, opts, resolved, whole=whole)
     renamed_sample = [{layout.renamed[c]: r.get(c) for c in layout.kept} for r in sample if isinstance(r, dict)] or [
         {layout.renamed[c]: None for c in layout.kept}
     ]
     for r in renamed_sample:
         r.update(dict.fromkeys(layout.results))
     schema = formats.output_schema(layout, renamed_sample, input_schema)
-    task = Task(layout, schema, opts.text_field, opts.spans, opts.strict)
+    fields = frozenset(layout.kept) if input_schema is None and opts.keep is None else None
+    task = Task(layout, schema, opts.text_field, opts.spans, opts.strict, fields, len(sample))
     work = work_dir(output)
     dataset = work / "dataset"
     expected = {
@@ -340,8 +352,8 @@ def score_on_cluster(
     dataset.mkdir(parents=True, exist_ok=True)
     atomic_write_text(work / "state.json", json.dumps(expected) + "\n")
     done = {p.index for p in parts if (dataset / _part_name(p.index)).is_file()}
+    counts = _count_existing(dataset, done, err)
     todo = [p for p in parts if p.index not in done]
-    counts = _count_existing(dataset, done)
     client = _connect(cluster)
     progress = Progress(
         f"scoring {output.name} on {cluster}",
@@ -389,12 +401,20 @@ def _load_state(work: Path) -> dict[str, Any] | None:
     return data
 
 
-def _count_existing(dataset: Path, done: set[int]) -> tuple[int, int]:
+def _count_existing(dataset: Path, done: set[int], err: TextIO) -> tuple[int, int]:
+    """Rows and error rows in the parts already written; a part that is no longer Parquet (damaged
+    since) leaves ``done`` and is scored again, rather than stop the resumed run with a traceback."""
+    import pyarrow as pa
     import pyarrow.parquet as pq
 
     rows = errors = 0
-    for i in done:
-        table = pq.read_table(dataset / _part_name(i), columns=["error"])
+    for i in sorted(done):
+        try:
+            table = pq.read_table(dataset / _part_name(i), columns=["error"])
+        except (OSError, pa.ArrowException):
+            print(f"textsieve: {_part_name(i)} of the unfinished run cannot be read; scoring it again", file=err)
+            done.discard(i)
+            continue
         rows += table.num_rows
         errors += table.num_rows - table.column("error").null_count
     return rows, errors

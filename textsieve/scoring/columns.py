@@ -51,15 +51,24 @@ class Layout:
         }
 
 
-def plan(input_columns: Sequence[str], keep: Sequence[str] | None, labels: Sequence[str], *, spans: bool) -> Layout:
+def plan(
+    input_columns: Sequence[str],
+    keep: Sequence[str] | None,
+    labels: Sequence[str],
+    *,
+    spans: bool,
+    complete: bool = True,
+) -> Layout:
     """The layout for these input columns; ``keep`` None keeps them all, and naming one that is not
-    in the input is bad input."""
+    in the input is bad input when ``input_columns`` are all the input has (``complete``: a header,
+    or every row of a JSON Lines file; otherwise they are the fields of its first rows only, and a
+    later row may have the one ``keep`` names)."""
     if keep is None:
         kept = list(dict.fromkeys(input_columns))
     else:
         present = set(input_columns)
         missing = [c for c in keep if c not in present]
-        if missing:
+        if missing and complete:
             shown = ", ".join(list(input_columns)[:20]) or "none"
             raise InputError(f"--keep names column(s) the input does not have: {', '.join(missing)}; it has: {shown}")
         kept = list(dict.fromkeys(keep))

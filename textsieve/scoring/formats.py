@@ -14,12 +14,13 @@ import io
 import json
 import math
 import os
+import zlib
 from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError
-from textsieve.files import FILE_MODE, fsync_dir
+from textsieve.files import FILE_MODE, atomic_write_bytes
 from textsieve.scoring.columns import ERROR, LABEL, SPANS, Layout, probability_column
 from textsieve.scoring.rows import Misshapen, Row, Unreadable
 
@@ -118,11 +119,6 @@ class _ByteCounted(Reader):
     def close(self) -> None:
         self.file.close()
 
-    def _lines(self) -> Iterator[bytes]:
-        for raw in self.file:
-            self.read += len(raw)
-            yield raw
-
 
 class JsonlReader(_ByteCounted):
     """One JSON object a line; blank lines are skipped, a line that is not JSON becomes an error row."""
@@ -153,6 +149,13 @@ class JsonlReader(_ByteCounted):
                     if loads is not json_loads:  # orjson refused it: the standard module's reading, as json_loads does
                         with contextlib.suppress(ValueError):
                             row = json.loads(raw)
+                    if isinstance(row, Unreadable) and not _is_utf8(raw):
+                        row = Unreadable(f"line {number} is not UTF-8 (JSON Lines text is UTF-8, RFC 8259 §8.1)")
+                    elif isinstance(row, Unreadable) and _cr_separated(raw):
+                        raise InputError(
+                            f"{self.path}: line {number} holds several JSON values separated by a lone \\r (old Mac "
+                            "line ends); JSON Lines ends each line with \\n or \\r\\n: convert the line ends"
+                        ) from None
                 if escapes and lone_surrogate(row, raw):
                     row = Unreadable(f"line {number} {LONE_SURROGATE}")
                 chunk.append(row)
@@ -175,8 +178,14 @@ class CsvReader(_ByteCounted):
         try:
             self._start()
         except BaseException:
-            self.file.close()  # a refused file is not left open
+            self.close()  # a refused file is not left open
             raise
+
+    def close(self) -> None:
+        text = getattr(self, "_text", None)
+        if text is not None:
+            text.close()  # its text wrapper lets go of the file before the file closes
+        super().close()
 
     def _start(self) -> None:
         path = self.path
@@ -185,27 +194,31 @@ class CsvReader(_ByteCounted):
         # that silently runs on through the rows after it.
         self._reader = csv.reader(self._text, delimiter=self.delimiter, strict=True)
         try:
-            self.columns = next(self._reader)
+            # Blank lines before the header (an export's empty first line) are skipped, as
+            # `textsieve train` skips them; the header was read as no columns at all.
+            self.columns = next(row for row in self._reader if row and (len(row) > 1 or row[0].strip()))
         except StopIteration:
             raise InputError(f"{path}: empty; a {self.kind} file starts with a header line") from None
         except csv.Error as exc:
             raise InputError(f"{path}: not {self.kind} ({exc})") from exc
-        first: dict[str, int] = {}
-        for number, name in enumerate(self.columns, start=1):
-            if name in first:
-                raise InputError(
-                    f"{path}: the header names the column {name!r} twice (columns {first[name]} and {number}); "
-                    "give every column its own name"
-                )
-            first[name] = number
+        check_unique(path, self.columns, "the header")
 
     def _decoded(self) -> Iterator[str]:
-        for number, raw in enumerate(self._lines(), start=1):
-            try:
-                text = raw.decode("utf-8")
-            except UnicodeDecodeError:
-                raise InputError(f"{self.path}: line {number} is not UTF-8") from None
-            yield text.removeprefix("\ufeff") if number == 1 else text
+        # newline="": a line ends at \n, \r\n or a lone \r (as old spreadsheet exports end them),
+        # as the csv module asks for and as `textsieve train` reads the same file; a line break inside
+        # a quoted field is kept as written. utf-8-sig: a leading byte-order mark is not a character.
+        text = io.TextIOWrapper(self.file, encoding="utf-8-sig", newline="")
+        try:
+            # not `yield from`: closing this generator would close the text wrapper, and the file with it
+            for line in text:  # noqa: UP028
+                yield line
+        except UnicodeDecodeError:
+            raise InputError(_not_utf8(self.path)) from None
+        finally:
+            text.detach()  # the binary file stays open for close()
+
+    def fraction(self) -> float | None:
+        return min(self.file.tell() / self.size, 1.0)
 
     def chunks(self, size: int, skip: int = 0) -> Iterator[list[Any]]:
         names = self.columns or []
@@ -245,6 +258,43 @@ class CsvReader(_ByteCounted):
             yield chunk
 
 
+def _not_utf8(path: Path) -> str:
+    """Where a text file stops being UTF-8, found again from the start (the decoder reads ahead)."""
+    with open(path, "rb") as f:
+        if f.read(2) in (b"\xff\xfe", b"\xfe\xff"):
+            return (
+                f"{path}: is UTF-16 text (as a spreadsheet's 'Unicode text' export writes it), not UTF-8; "
+                "save it as CSV UTF-8"
+            )
+        f.seek(0)
+        number = 1
+        for raw in f:
+            try:
+                raw.decode("utf-8")
+            except UnicodeDecodeError as exc:
+                return f"{path}: line {number + _lone_returns(raw[: exc.start])} is not UTF-8; save the file as UTF-8"
+            number += 1 + _lone_returns(raw.rstrip(b"\r\n"))
+    return f"{path}: is not UTF-8; save the file as UTF-8"
+
+
+def _lone_returns(raw: bytes) -> int:
+    """Line ends that are a \r alone in ``raw``."""
+    return raw.replace(b"\r\n", b"").count(b"\r")
+
+
+def check_unique(path: object, columns: Sequence[str], where: str) -> None:
+    """InputError naming a column ``where`` names twice: a row is a dict, so one of the two would be
+    lost without a word (a Parquet file may hold such columns; pyarrow reads them side by side)."""
+    first: dict[str, int] = {}
+    for number, name in enumerate(columns, start=1):
+        if name in first:
+            raise InputError(
+                f"{path}: {where} names the column {name!r} twice (columns {first[name]} and {number}); "
+                "give every column its own name"
+            )
+        first[name] = number
+
+
 def _separator(delimiter: str) -> str:
     return "a tab" if delimiter == "\t" else "a comma" if delimiter == "," else repr(delimiter)
 
@@ -264,6 +314,11 @@ class ParquetReader(Reader):
             raise InputError(f"{path}: not a Parquet file ({exc})") from exc
         self.schema = self.file.schema_arrow
         self.columns = list(self.schema.names)
+        try:
+            check_unique(path, self.columns, "the schema")
+        except InputError:
+            self.file.close()
+            raise
         self.total_rows = self.file.metadata.num_rows
         self.done = 0
 
@@ -288,6 +343,21 @@ class ParquetReader(Reader):
         self.file.close()
 
 
+def check_text_column(schema: pa.Schema, name: str) -> None:
+    """InputError unless Parquet column ``name`` holds strings (plain, large, view or dictionary
+    encoded, or only nulls): a column of numbers or bytes made every row an error row, exit 0."""
+    pa = _pyarrow()
+    kind = schema.field(name).type
+    value = kind.value_type if pa.types.is_dictionary(kind) else kind
+    string_view = getattr(pa.types, "is_string_view", lambda _: False)
+    if pa.types.is_string(value) or pa.types.is_large_string(value) or string_view(value) or pa.types.is_null(value):
+        return
+    raise InputError(
+        f"the text column {name!r} holds {kind} values; --text-field names a column of strings "
+        "(Parquet string, large_string or dictionary-encoded strings, UTF-8)"
+    )
+
+
 def open_reader(path: Path, fmt: str) -> Reader:
     if fmt == "jsonl":
         return JsonlReader(path)
@@ -307,6 +377,27 @@ _LONG_RUN = b"0" * 19
 
 # JSONL is read in blocks of about this many bytes (whole lines).
 _BLOCK = 1 << 20
+
+
+def _cr_separated(raw: bytes) -> bool:
+    """Whether a line that is not JSON is JSON values with a lone \\r between them: a raw \\r can only
+    be whitespace in JSON (RFC 8259 §2, §7), so such a line is a file whose lines end in \\r alone."""
+    pieces = [p for p in raw.split(b"\r") if p.strip()]
+    if len(pieces) < 2:
+        return False
+    try:
+        json.loads(pieces[0])
+    except ValueError:
+        return False
+    return True
+
+
+def _is_utf8(raw: bytes) -> bool:
+    try:
+        raw.decode("utf-8")
+    except UnicodeDecodeError:
+        return False
+    return True
 
 
 def _plain_block(block: bytes) -> bool:
@@ -351,8 +442,35 @@ def json_loads(raw: bytes) -> Any:
 
 def _json_default(value: object) -> object:
     if isinstance(value, bytes):
+        # A kept column of bytes is checked first (check_bytes); bytes nested in a list or struct are not.
         return value.decode("utf-8", "replace")
     return str(value)
+
+
+def binary_columns(schema: pa.Schema | None, kept: Sequence[str]) -> list[str]:
+    """The kept columns of a Parquet input that hold bytes (binary, large or fixed-size)."""
+    if schema is None:
+        return []
+    pa = _pyarrow()
+    is_bytes = (pa.types.is_binary, pa.types.is_large_binary, pa.types.is_fixed_size_binary)
+    return [c for c in kept if c in schema.names and any(t(schema.field(c).type) for t in is_bytes)]
+
+
+def check_bytes(rows: Sequence[Any], columns: Sequence[str], *, first_row: int, out_fmt: str) -> None:
+    """InputError naming the first value of ``columns`` that is bytes but not UTF-8: a JSONL, CSV or
+    TSV file holds text, and such a value was written with U+FFFD in place of its bytes."""
+    for name in columns:
+        for i, row in enumerate(rows):
+            value = row.get(name) if isinstance(row, dict) else None
+            if isinstance(value, bytes):
+                try:
+                    value.decode("utf-8")
+                except UnicodeDecodeError:
+                    raise InputError(
+                        f"row {first_row + i + 1:,}: column {name!r} holds bytes that are not UTF-8 text, which a "
+                        f"{out_fmt.upper()} file cannot hold; write Parquet (an OUTPUT ending .parquet) or leave the "
+                        "column out with --keep"
+                    ) from None
 
 
 def _dumps(value: object) -> str:
@@ -395,18 +513,23 @@ def json_line(value: object) -> bytes:
 
 # -- JSONL and CSV: one file, appended chunk by chunk --------------------------------------------
 class AppendWriter:
-    """Appends chunks to ``path``; :meth:`commit` makes them durable and returns the committed length."""
+    """Appends chunks to ``path``; :meth:`commit` makes them durable and returns the committed length.
 
-    def __init__(self, path: Path, layout: Layout, *, start: int) -> None:
+    ``crc32`` is the CRC-32 of every byte written so far (``start`` bytes of it checked by
+    :func:`committed_crc32` on resume), so a resumed run can tell a file that is no longer what it
+    wrote (deleted, cut short, overwritten) from its own output."""
+
+    def __init__(self, path: Path, layout: Layout, *, start: int, crc32: int = 0) -> None:
         self.path = path
         self.layout = layout
+        self.crc32 = crc32
         fd = os.open(path, os.O_RDWR | os.O_CREAT, FILE_MODE)
         self.file = os.fdopen(fd, "r+b")
         # A chunk written after the last committed state is thrown away: the state says where it ended.
         self.file.truncate(start)
         self.file.seek(start)
         if start == 0:
-            self.file.write(self.header())
+            self._put(self.header())
 
     def header(self) -> bytes:
         return b""
@@ -415,7 +538,11 @@ class AppendWriter:
         raise NotImplementedError
 
     def write(self, rows: Sequence[Row]) -> None:
-        self.file.write(self.encode(rows))
+        self._put(self.encode(rows))
+
+    def _put(self, data: bytes) -> None:
+        self.file.write(data)
+        self.crc32 = zlib.crc32(data, self.crc32)
 
     def commit(self) -> int:
         self.file.flush()
@@ -521,15 +648,38 @@ def to_table(rows: Sequence[Row], schema: pa.Schema, first_row: int) -> pa.Table
     return pa.Table.from_arrays(arrays, schema=schema)
 
 
-def write_part(path: Path, table: pa.Table) -> None:
-    """One chunk's rows as a complete Parquet file, in place only once it is whole."""
+def write_part(path: Path, table: pa.Table, crc32: int = 0) -> int:
+    """One chunk's rows as a complete Parquet file, in place only once it is whole; returns the
+    CRC-32 of the parts before it (``crc32``) and this one's bytes (see :class:`AppendWriter`)."""
     pa = _pyarrow()
-    tmp = path.with_name(f".{path.name}.tmp")
-    pa.parquet.write_table(table, tmp)
-    with open(tmp, "rb") as f:
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
-    fsync_dir(path.parent)
+    sink = pa.BufferOutputStream()
+    pa.parquet.write_table(table, sink)
+    data = sink.getvalue().to_pybytes()
+    atomic_write_bytes(path, data)
+    return zlib.crc32(data, crc32)
+
+
+def committed_crc32(paths: Sequence[Path], length: int | None = None) -> int | None:
+    """The CRC-32 of the files' bytes one after the other (of the first ``length`` bytes of one
+    file), or None when a file is missing or shorter than ``length``: what a resumed run checks
+    against the CRC-32 its state recorded as it wrote them."""
+    crc = 0
+    for path in paths:
+        try:
+            with open(path, "rb") as f:
+                left = length
+                while left is None or left > 0:
+                    block = f.read(_BLOCK if left is None else min(left, _BLOCK))
+                    if not block:
+                        break
+                    crc = zlib.crc32(block, crc)
+                    if left is not None:
+                        left -= len(block)
+        except FileNotFoundError:
+            return None
+        if left:
+            return None
+    return crc
 
 
 def merge_parts(parts: Sequence[Path], target: Path, schema: pa.Schema, metadata: dict[str, object]) -> None:
@@ -567,6 +717,11 @@ __all__ = [
     "json_line",
     "ParquetReader",
     "Reader",
+    "binary_columns",
+    "check_bytes",
+    "check_unique",
+    "check_text_column",
+    "committed_crc32",
     "detect",
     "merge_parts",
     "open_reader",

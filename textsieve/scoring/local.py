@@ -35,14 +35,15 @@ from textsieve.scoring.columns import Layout, plan
 from textsieve.scoring.model import Resolved, resolve
 from textsieve.scoring.pool import Pool, default_workers, pieces, result
 from textsieve.scoring.progress import Progress
-from textsieve.scoring.rows import Scored, Split, output_rows, split
+from textsieve.scoring.rows import Scored, Split, check_fields, output_rows, split
 
 if TYPE_CHECKING:
     import pyarrow as pa
 
     from textsieve.registry.api import Registry
 
-STATE_FORMAT = 1
+# 2: the state records the CRC-32 of the output written so far (committed_crc32).
+STATE_FORMAT = 2
 DEFAULT_CHUNK = 8192
 # Chunks in flight: one being written while the workers score the next two; memory holds three.
 DEPTH = 3
@@ -154,17 +155,52 @@ class _Run:
         return self.work / "parts"
 
     def load(self) -> dict[str, Any] | None:
+        """The saved state, or None when there is none this version can continue (missing, cut
+        short, from another state format, or not the shape it writes)."""
         try:
-            data: dict[str, Any] = json.loads(self.state_path.read_text(encoding="utf-8"))
+            data = json.loads(self.state_path.read_text(encoding="utf-8"))
         except (FileNotFoundError, ValueError):
             return None
-        return data if data.get("format") == STATE_FORMAT else None
+        return data if _well_formed(data) else None
+
+    def damage(self, state: dict[str, Any]) -> str | None:
+        """Why the output the state counts is no longer on disk as it was written, or None."""
+        if self.out_fmt == "parquet":
+            files = [self.part(i) for i in range(state["chunks"])]
+            length = None
+            what = "its Parquet parts are"
+        else:
+            files = [self.work / "output.part"]
+            length = state["committed_bytes"]
+            what = "output.part is"
+        if formats.committed_crc32(files, length) != state["committed_crc32"]:
+            return f"{what} no longer what it wrote (missing, cut short or changed)"
+        return None
 
     def save(self) -> None:
         atomic_write_text(self.state_path, json.dumps(self.state, indent=1) + "\n")
 
     def part(self, index: int) -> Path:
         return self.parts / f"{index:06d}.parquet"
+
+
+def _well_formed(state: object) -> bool:
+    """Whether ``state`` has the keys and types :func:`_stream` saves (a state.json edited or
+    damaged otherwise is not continued: it would be a traceback, or rows skipped)."""
+    if not isinstance(state, dict) or state.get("format") != STATE_FORMAT:
+        return False
+    counts = ("chunks", "rows", "errors", "committed_bytes", "committed_crc32")
+    if not all(type(state.get(key)) is int and state[key] >= 0 for key in counts):
+        return False
+    layout = state.get("layout")
+    if not isinstance(layout, dict):
+        return False
+    kept, renamed = layout.get("kept"), layout.get("renamed")
+    return (
+        isinstance(kept, list)
+        and isinstance(renamed, dict)
+        and all(isinstance(c, str) and isinstance(renamed.get(c), str) for c in kept)
+    )
 
 
 def _resume_state(run: _Run, expected: dict[str, Any], out: TextIO) -> dict[str, Any] | None:
@@ -178,6 +214,14 @@ def _resume_state(run: _Run, expected: dict[str, Any], out: TextIO) -> dict[str,
                 f"--resume: the unfinished run in {run.work} used another {key.replace('_', ' ')} "
                 f"({old.get(key)!r}, now {expected[key]!r}); run without --resume to start over"
             )
+    why = run.damage(old)
+    if why is not None:
+        # Appending to it would splice garbage, or a file padded with NUL bytes, into OUTPUT.
+        print(
+            f"textsieve: cannot continue the unfinished run in {run.work.name}: {why}; starting from the first row",
+            file=out,
+        )
+        return None
     return old
 
 
@@ -193,13 +237,32 @@ def _combine(futures: Sequence[tuple[slice, Future[Scored]]], count: int, classe
     return Scored(np.concatenate([p.best for p in parts]), np.concatenate([p.probabilities for p in parts]), spans)
 
 
-def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolved: Resolved) -> Layout:
+def _other_separator(reader: formats.Reader) -> str | None:
+    """What to do when a delimited file's header is one column holding another separator (a
+    ';'-separated file named .csv, as spreadsheets write them where ',' is the decimal mark)."""
+    if not isinstance(reader, formats.CsvReader) or len(reader.columns or []) != 1:
+        return None
+    header = (reader.columns or [""])[0]
+    found = next((s for s in (";", "\t", "|", ",") if s in header and s != reader.delimiter), None)
+    if found is None:
+        return None
+    if found == "\t":
+        return "the header holds tabs: the file looks tab-separated; name it .tsv or pass --input-format tsv"
+    return (
+        f"the header holds {found!r}, not the {reader.kind} separator: textsieve reads CSV with ',' and TSV with "
+        "tabs (RFC 4180 quoting); save the file with one of those"
+    )
+
+
+def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolved: Resolved, err: TextIO) -> Layout:
     if reader.columns is not None:
         if opts.text_field not in reader.columns:
             raise InputError(
                 f"the input has no column {opts.text_field!r}; its columns: {', '.join(reader.columns[:20])}; "
-                "pass --text-field NAME"
+                f"{_other_separator(reader) or 'pass --text-field NAME'}"
             )
+        if reader.schema is not None:
+            formats.check_text_column(reader.schema, opts.text_field)
         columns = reader.columns
     else:
         seen: dict[str, None] = {}
@@ -214,7 +277,17 @@ def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolve
             )
         columns = list(seen)
     keep = None if opts.keep is None else list(opts.keep)
-    return plan(columns, keep, resolved.labels, spans=opts.spans > 0)
+    # A first chunk shorter than a chunk is the whole file: a field it lacks is in no row.
+    complete = reader.columns is not None or len(first) < opts.chunk_rows
+    if not complete and keep is not None:
+        unseen = [c for c in keep if c not in columns]
+        if unseen:
+            print(
+                f"textsieve: no row among the first {len(first):,} has the field(s) {', '.join(map(repr, unseen))}; "
+                "--keep writes them empty where a row lacks them",
+                file=err,
+            )
+    return plan(columns, keep, resolved.labels, spans=opts.spans > 0, complete=complete)
 
 
 def score_file(
@@ -243,6 +316,13 @@ def score_file(
         raise InputError(f"{output}: --out names the input file itself; write the scores to another file")
     in_fmt = formats.detect(str(source), opts.input_format, "--input-format")
     out_fmt = formats.detect(str(output), opts.output_format, "--output-format")
+    meta = sidecar(output)
+    if out_fmt != "parquet" and meta.exists() and source.exists() and os.path.samefile(meta, source):
+        # The metadata of a JSONL, CSV or TSV output is written to OUTPUT.meta.json, over the input.
+        raise InputError(
+            f"{output}: its metadata goes to {meta.name}, which is the input file; "
+            "name the input or the output differently"
+        )
     if opts.chunk_rows < 1:
         raise InputError(f"--chunk-rows must be 1 or more, not {opts.chunk_rows}")
     reader = formats.open_reader(source, in_fmt)
@@ -280,12 +360,17 @@ def score_file(
                 opts.spans > 0,
             )
         else:
-            layout = _layout_for(reader, first, opts, resolved)
+            layout = _layout_for(reader, first, opts, resolved, err)
             if opts.strict:
                 split(first, opts.text_field, strict=True, first_row=0)
+        # JSON Lines rows each name their fields: with every field kept, a field the first chunk
+        # did not have would have no column (it was left out of every row, silently).
+        fields = frozenset(layout.kept) if reader.columns is None and opts.keep is None else None
         work.mkdir(exist_ok=True)
         with _locked(work):
-            return _stream(run, previous, expected, reader, first, chunks, layout, resolved, opts, output, err, started)
+            return _stream(
+                run, previous, expected, reader, first, chunks, layout, fields, resolved, opts, output, err, started
+            )
     finally:
         reader.close()
 
@@ -298,6 +383,7 @@ def _stream(
     first: list[Any],
     chunks: Iterator[list[Any]],
     layout: Layout,
+    fields: frozenset[str] | None,
     resolved: Resolved,
     opts: Options,
     output: Path,
@@ -311,6 +397,7 @@ def _stream(
         "rows": 0,
         "errors": 0,
         "committed_bytes": 0,
+        "committed_crc32": 0,
     }
     resumed = int(run.state["rows"])
     if previous is None:
@@ -324,7 +411,13 @@ def _stream(
     else:
         kinds = {"jsonl": formats.JsonlWriter, "csv": formats.CsvWriter, "tsv": formats.TsvWriter}
         kind = kinds[run.out_fmt]
-        writer = kind(run.work / "output.part", layout, start=int(run.state["committed_bytes"]))
+        writer = kind(
+            run.work / "output.part",
+            layout,
+            start=int(run.state["committed_bytes"]),
+            crc32=int(run.state["committed_crc32"]),
+        )
+    binary = formats.binary_columns(reader.schema, layout.kept) if writer is not None else []
     workers = default_workers() if opts.workers is None else opts.workers
     pool = Pool(resolved.folder, workers=workers)
     progress = Progress(
@@ -336,6 +429,9 @@ def _stream(
         pending: deque[tuple[list[Any], Split, list[tuple[slice, Future[Scored]]], int]] = deque()
         row = resumed
         for chunk in _chain(first, chunks):
+            # Only a row after the first chunk can hold a new field, so that chunk was full.
+            check_fields(chunk, fields, first_row=row, sampled=opts.chunk_rows)
+            formats.check_bytes(chunk, binary, first_row=row, out_fmt=run.out_fmt)
             part = split(chunk, opts.text_field, strict=opts.strict, first_row=row)
             futures = [(s, pool.submit(part.texts[s], opts.spans)) for s in pieces(part.texts, pool.parallel)]
             pending.append((chunk, part, futures, row))
@@ -411,10 +507,14 @@ def _flush(
     if writer is not None:
         writer.write(rows)
         run.state["committed_bytes"] = writer.commit()
+        run.state["committed_crc32"] = writer.crc32
     else:
         if schema is None:
             schema = formats.output_schema(layout, rows, reader.schema)
-        formats.write_part(run.part(int(run.state["chunks"])), formats.to_table(rows, schema, first_row))
+        table = formats.to_table(rows, schema, first_row)
+        run.state["committed_crc32"] = formats.write_part(
+            run.part(int(run.state["chunks"])), table, int(run.state["committed_crc32"])
+        )
     run.state["chunks"] = int(run.state["chunks"]) + 1
     run.state["rows"] = int(run.state["rows"]) + len(chunk)
     run.state["errors"] = int(run.state["errors"]) + len(part.problems)

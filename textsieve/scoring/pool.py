@@ -11,6 +11,8 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import threading
+import time
 from collections.abc import Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
@@ -26,8 +28,53 @@ if TYPE_CHECKING:
 _PREDICTOR: Predictor | None = None
 
 
-def _load(bundle: str, batch_size: int) -> None:
+def _exit_with(parent: int) -> None:
+    """End this worker when the scoring process ``parent`` ends. A worker waits on its queue, whose
+    write end it holds itself, so it never sees the end of a parent killed outright (SIGKILL, the
+    OOM killer): it and the fork server stayed, blocked, for ever."""
+    import select
+
+    try:
+        fd = os.pidfd_open(parent)
+    except (AttributeError, OSError):  # not Linux 5.3+; the parent may be gone already
+        if not _alive(parent):
+            os._exit(0)
+
+        def watch() -> None:
+            while _alive(parent):
+                time.sleep(1.0)
+            os._exit(0)
+
+    else:
+
+        def watch() -> None:
+            select.select([fd], [], [])  # readable once the process has ended
+            os._exit(0)
+
+    threading.Thread(target=watch, name="textsieve-parent-watch", daemon=True).start()
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _load(bundle: str, batch_size: int, parent: int) -> None:
     global _PREDICTOR
+    import signal
+
+    _exit_with(parent)
+
+    # Ctrl-C reaches the whole foreground process group: the scoring process decides (it keeps
+    # the chunks done and stops the pool); a worker that took it printed a KeyboardInterrupt
+    # traceback. SIGTERM keeps its default: the pool stops a broken worker with it, and a worker
+    # that ignored it outlived the run, blocked for ever on its queue.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
     from textsieve.registry.bundle import open_bundle
     from textsieve.registry.runtime import Predictor
 
@@ -70,7 +117,7 @@ class Pool:
                 max_workers=workers,
                 mp_context=multiprocessing.get_context("forkserver"),
                 initializer=_load,
-                initargs=(str(bundle), batch_size),
+                initargs=(str(bundle), batch_size, os.getpid()),
             )
 
     @property

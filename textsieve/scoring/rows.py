@@ -5,6 +5,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from itertools import chain
 from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError
@@ -87,6 +88,38 @@ def text_problem(row: Any, field: str) -> str | None:
     return None
 
 
+def new_field(rows: Sequence[Any], known: frozenset[str]) -> tuple[int, str] | None:
+    """The first row (its index) holding a field not in ``known``, with that field; None when no
+    row does. JSON Lines rows need not share their fields: the output's columns are fixed by the
+    first rows, and a field that first appears later has no column to go to."""
+    dicts = [r for r in rows if type(r) is dict]
+    if known.issuperset(chain.from_iterable(dicts)):  # the common case: one pass at C speed
+        return None
+    for i, row in enumerate(rows):
+        if type(row) is dict:
+            for name in row:
+                if name not in known:
+                    return i, name
+    return None
+
+
+def check_fields(rows: Sequence[Any], known: frozenset[str] | None, *, first_row: int, sampled: int) -> None:
+    """InputError naming the first row with a field outside ``known`` (None: the columns were
+    named by ``--keep``, and other fields are left out on purpose)."""
+    if known is None:
+        return
+    found = new_field(rows, known)
+    if found is None:
+        return
+    i, name = found
+    example = ",".join([*sorted(known), name])
+    raise InputError(
+        f"row {first_row + i + 1:,} has the field {name!r}, which none of the first {sampled:,} rows has, so the "
+        f"output has no column for it; name the fields to carry with --keep (e.g. --keep {example}) "
+        "or leave them all out with --keep ''"
+    )
+
+
 @dataclass(slots=True)
 class Split:
     """A chunk's texts to score, and the rows that have none (row index → why)."""
@@ -152,6 +185,8 @@ def output_rows(rows: Sequence[Any], part: Split, results: Scored, layout: Layou
 __all__ = [
     "Misshapen",
     "article",
+    "check_fields",
+    "new_field",
     "Row",
     "Unreadable",
     "Scored",

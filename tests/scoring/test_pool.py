@@ -1,0 +1,79 @@
+"""The scoring workers: Ctrl-C reaches every process of the foreground group, and only the scoring
+process may act on it (POSIX: the terminal sends SIGINT to the foreground process group)."""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+from tests.helpers.environment import child_env
+from tests.scoring.conftest import ROOT, wait_until
+from textsieve.scoring.pool import Pool, result
+
+
+def test_a_worker_sent_sigint_while_idle_goes_on_scoring(tiny_bundles: dict[str, Path]) -> None:
+    pool = Pool(tiny_bundles["a"], workers=1)
+    try:
+        first = result(pool.submit(["the chain is broken"], 0))
+        assert pool._executor is not None
+        (pid,) = list(pool._executor._processes)
+        worker = pool._executor._processes[pid]
+        for _ in range(10):  # the worker waits on its queue meanwhile; one that took SIGINT died there
+            if not worker.is_alive():
+                break
+            os.kill(pid, signal.SIGINT)
+            time.sleep(0.05)
+        assert worker.is_alive()
+        again = result(pool.submit(["the chain is broken"], 0))
+        assert again.probabilities.tolist() == first.probabilities.tolist()
+        assert worker.is_alive()
+    finally:
+        pool.close()
+
+
+def _ended(pid: int) -> bool:
+    """Whether ``pid`` has ended (gone, or a zombie waiting to be reaped: proc(5))."""
+    try:
+        status = Path(f"/proc/{pid}/status").read_text(encoding="utf-8")
+    except FileNotFoundError:
+        return True
+    return "\nState:\tZ" in status
+
+
+def test_the_workers_end_when_the_scoring_process_is_killed(tiny_bundles: dict[str, Path]) -> None:
+    """SIGKILL (or the OOM killer) gives the scoring process no chance to stop its pool; its
+    workers waited on their queue for ever, and kept the fork server alive with them."""
+    code = (
+        "import sys\n"
+        "from pathlib import Path\n"
+        "from textsieve.scoring.pool import Pool, result\n"
+        "pool = Pool(Path(sys.argv[1]), workers=1)\n"
+        "result(pool.submit(['the chain is broken'], 0))\n"
+        "print(*pool._executor._processes, flush=True)\n"
+        "sys.stdin.read()\n"
+    )
+    proc = subprocess.Popen(
+        [sys.executable, "-c", code, str(tiny_bundles["a"])],
+        stdin=subprocess.PIPE,
+        stdout=subprocess.PIPE,
+        text=True,
+        env=child_env() | {"PYTHONPATH": str(ROOT)},
+    )
+    assert proc.stdout is not None
+    workers = [int(pid) for pid in proc.stdout.readline().split()]
+    try:
+        assert len(workers) == 1 and not _ended(workers[0])
+        proc.kill()
+        proc.wait()
+        wait_until(lambda: all(map(_ended, workers)), 10, "the worker to end after its scoring process")
+    finally:
+        for pid in workers:
+            if not _ended(pid):
+                os.kill(pid, signal.SIGKILL)
+        for pipe in (proc.stdin, proc.stdout):
+            if pipe is not None:
+                pipe.close()
