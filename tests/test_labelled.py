@@ -193,13 +193,6 @@ def _jsonl(*rows: object) -> str:
             ["line 1: the label 'xxx", "is 201 characters long; a label holds at most 200"],
             id="label too long",
         ),
-        # RFC 8259 §8.2: a \\ud800 escape alone names no character; a reply holding it cannot be UTF-8.
-        pytest.param(
-            "d.jsonl",
-            b'{"text": "a", "label": "ok\\ud800"}\n',
-            ["line 1: the label", "holds a lone surrogate (U+D800)"],
-            id="label with a lone surrogate",
-        ),
         pytest.param(
             "d.xlsx", "whatever", ["unsupported file type '.xlsx'", ".jsonl", ".csv"], id="unsupported extension"
         ),
@@ -225,7 +218,7 @@ def _jsonl(*rows: object) -> str:
         pytest.param(
             "d.jsonl",
             '{"text": "ok", "label": "\\udc00"}\n',
-            ["line 1: the 'label' field holds a lone surrogate"],
+            ["line 1: the label '\\udc00' holds a lone surrogate"],
             id="label with a lone surrogate",
         ),
     ],

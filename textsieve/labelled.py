@@ -148,8 +148,6 @@ class _Fields:
         why = label_problem(label)
         if why:
             raise self._fail(where, f"the label {label!r} {why}")
-        if _lone_surrogate(label):
-            raise self._fail(where, f"the {self.label_field!r} field {_LONE_SURROGATE}")
         return Example(text, label)
 
 
@@ -178,9 +176,9 @@ def label_problem(label: str) -> str | None:
     no lone surrogate (a ``\\ud800`` escape in JSON), which no UTF-8 reply can carry."""
     if len(label) > MAX_LABEL_CHARS:
         return f"is {len(label):,} characters long; a label holds at most {MAX_LABEL_CHARS}"
-    bad = next((c for c in label if unicodedata.category(c) in ("Cc", "Cs")), None)
-    if bad is not None and unicodedata.category(bad) == "Cs":
-        return f"holds a lone surrogate (U+{ord(bad):04X}), which is not text; labels are UTF-8 text"
+    if _lone_surrogate(label):
+        return _LONE_SURROGATE
+    bad = next((c for c in label if unicodedata.category(c) == "Cc"), None)
     if bad is not None:
         return f"holds a control character (U+{ord(bad):04X}); labels are one line of printable text"
     if label != label.strip():
