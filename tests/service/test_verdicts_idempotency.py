@@ -17,7 +17,6 @@ import threading
 import uuid
 from collections.abc import AsyncIterator
 from pathlib import Path
-from typing import Any
 
 import httpx
 import pytest
@@ -34,19 +33,11 @@ from tests.helpers.service import (
     settings_for,
     uvicorn_server,
 )
+from tests.service.test_verdicts import VERDICT
 from textsieve.registry import open_registry
 from textsieve.service.settings import Settings
 
 pytestmark = pytest.mark.anyio
-VERDICT: dict[str, Any] = {
-    "model": MODEL,
-    "version": 1,
-    "text": "I was charged twice for one ride at Station Road.",
-    "predicted_label": "billing",
-    "predicted_probability": 0.91,
-    "verdict_label": "billing",
-    "reviewer": "Priya",
-}
 HEADER = "Idempotency-Key"
 REPLAYED = "Textsieve-Replayed"
 
