@@ -87,6 +87,23 @@ def window(
     }
 
 
+def _side_registry(bundle: Path, folder: Path, env: dict[str, str]) -> Path:
+    """A fresh registry whose live version of the demo model is ``bundle``, made by the side's CLI."""
+    import shutil
+
+    shutil.rmtree(folder, ignore_errors=True)
+    folder.parent.mkdir(parents=True, exist_ok=True)
+    where = ["--registry", str(folder)]
+    name = demo_model.MODEL_NAME
+    for argv in (
+        ["publish", str(bundle), "--model", name, "--reason", "bench", *where],
+        ["promote", name, "1", "--to", "candidate", "--reason", "bench", *where],
+        ["promote", name, "1", "--to", "live", "--reason", "bench", *where],
+    ):
+        subprocess.run([sys.executable, "-c", SERVE, *argv], env={**os.environ, **env}, check=True, capture_output=True)
+    return folder
+
+
 def _imported_from(env: dict[str, str]) -> str:
     """Where a server started with ``env`` imports textsieve from; refuses any other checkout than
     the one named in its ``PYTHONPATH``."""
@@ -144,17 +161,19 @@ def main() -> int:
     started: dict[str, servers.Server] = {}
     try:
         for name, (checkout, env) in sides.items():
-            registry = demo_model.live_registry(model, work / f"registry-checkout-ab-{name}")
-            port = servers.free_port()
-            cmd = [sys.executable, "-c", SERVE, "serve", "--registry", str(registry), "--port", str(port)]
-            if args.floors:  # the side's own server stack with a fixed reply (bench/http_floor.py)
-                cmd = [sys.executable, str(checkout / "bench" / "http_floor.py"), "--port", str(port)]
-                cmd += ["--reply-bytes", str(args.floors)]
             # PYTHONSAFEPATH: ``python -c`` would otherwise put the working directory first on
             # sys.path, and a working directory holding a checkout (this one, as documented) would
             # serve its own code on both sides (it did, until 2026-12-03: see bench/README.md).
             side_env = {**env, "PYTHONPATH": str(checkout), "PYTHONSAFEPATH": "1"}
             print(f"side {name}: {_imported_from(side_env)}", flush=True)
+            # Each side's registry is made by its own code: an older checkout refuses a registry whose
+            # schema a newer one has migrated.
+            registry = _side_registry(model.bundle, work / f"registry-checkout-ab-{name}", side_env)
+            port = servers.free_port()
+            cmd = [sys.executable, "-c", SERVE, "serve", "--registry", str(registry), "--port", str(port)]
+            if args.floors:  # the side's own server stack with a fixed reply (bench/http_floor.py)
+                cmd = [sys.executable, str(checkout / "bench" / "http_floor.py"), "--port", str(port)]
+                cmd += ["--reply-bytes", str(args.floors)]
             started[name] = servers.start(name, cmd, "/readyz", port, work / f"checkout-ab-{name}.log", env=side_env)
             loadgen.run_load(started[name].url + "/v1/predict", body_list, connections=CONNECTIONS, seconds=2, wrk=wrk)
         names = ["a", "b"]
