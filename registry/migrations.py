@@ -1,7 +1,12 @@
 """Named schema migration steps, applied in order, each inside the one write transaction.
 
 ``schema_migrations`` records the name of every step applied. A registry opened by an
-older textsieve that finds a step it does not know refuses to touch it rather than guess.
+older textsieve that finds a step it does not know refuses to touch it rather than guess,
+unless the newer textsieve that applied the step recorded it in ``schema_additive_steps``: an
+additive step (new nullable columns, new tables, indexes that the older code's writes satisfy)
+leaves everything an older release reads and writes as it was, so the older release carries on,
+and replicas of two releases can share one registry through a rolling upgrade (common practice:
+the "expand" half of an expand-and-contract schema change).
 Steps are written in SQL both SQLite and PostgreSQL accept; ``{serial}`` is the one type that
 differs (an ever-increasing integer key: ids are never reused, so event ids work as cursors).
 Times are ISO 8601 UTC text and JSON is text, so both engines store exactly the same values.
@@ -19,6 +24,9 @@ from textsieve.registry._db import Backend
 class Migration:
     name: str
     sql: str
+    # True when an older textsieve that knows nothing of this step may still read and write the
+    # registry after it: the step only adds (nullable columns, tables, indexes its writes satisfy).
+    additive: bool = False
 
 
 MIGRATIONS: tuple[Migration, ...] = (
@@ -206,12 +214,14 @@ MIGRATIONS: tuple[Migration, ...] = (
         CREATE UNIQUE INDEX verdicts_idempotency_key ON verdicts (model, idempotency_key)
             WHERE idempotency_key IS NOT NULL
     """,
+        additive=True,  # verdicts recorded without a key leave both columns NULL, as older releases do
     ),
 )
 
 FIRST_MIGRATION = MIGRATIONS[0].name  # when it was applied is the registry's identity (Registry.registry_id)
 
 _TABLE = "CREATE TABLE IF NOT EXISTS schema_migrations (name TEXT PRIMARY KEY, applied_at TEXT NOT NULL)"
+_ADDITIVE = "CREATE TABLE IF NOT EXISTS schema_additive_steps (name TEXT PRIMARY KEY)"
 
 
 def applied(backend: Backend) -> list[str]:
@@ -229,8 +239,10 @@ def migrate(backend: Backend, now: str, steps: tuple[Migration, ...] = MIGRATION
     done_now: list[str] = []
     with backend.write() as tx:
         tx.run(_TABLE)
+        tx.run(_ADDITIVE)
         done = {r["name"] for r in tx.all("SELECT name FROM schema_migrations")}
-        unknown = sorted(done - set(known))
+        additive = {r["name"] for r in tx.all("SELECT name FROM schema_additive_steps")}
+        unknown = sorted(done - set(known) - additive)
         if unknown:
             raise RegistryError(
                 f"{backend.description}: the registry has schema step {unknown[-1]!r}, "
@@ -241,18 +253,26 @@ def migrate(backend: Backend, now: str, steps: tuple[Migration, ...] = MIGRATION
                 continue
             tx.script(step.sql.format(**backend.ddl_types))
             tx.run("INSERT INTO schema_migrations (name, applied_at) VALUES (?, ?)", (step.name, now))
+            if step.additive:
+                tx.run("INSERT INTO schema_additive_steps (name) VALUES (?)", (step.name,))
             done_now.append(step.name)
     return done_now
 
 
 def _up_to_date(backend: Backend, known: list[str]) -> bool:
-    """The common case (every step applied) answered without taking the write lock."""
+    """The common cases answered without taking the write lock: every step applied, and no other
+    than a newer release's additive ones."""
     try:
         with backend.read() as tx:
-            rows = tx.all("SELECT name FROM schema_migrations")
+            done = {r["name"] for r in tx.all("SELECT name FROM schema_migrations")}
+            if done == set(known):
+                return True
+            if not done >= set(known):
+                return False
+            newer = done - set(known)
+            return newer <= {r["name"] for r in tx.all("SELECT name FROM schema_additive_steps")}
     except (RegistryError, UnavailableError):
         return False  # no table yet, or unreadable (e.g. locked): the write path decides
-    return {r["name"] for r in rows} == set(known)
 
 
 __all__ = ["FIRST_MIGRATION", "MIGRATIONS", "Migration", "applied", "migrate"]

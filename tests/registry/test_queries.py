@@ -46,6 +46,40 @@ def test_a_registry_from_a_newer_textsieve_is_refused(registry: Registry, spec: 
         spec.open()
 
 
+@pytest.mark.parametrize("additive", [True, False])
+def test_a_newer_releases_additive_steps_leave_the_registry_to_an_older_one(
+    registry: Registry, spec: RegistrySpec, additive: bool
+) -> None:
+    """A newer release that only adds (a nullable column, a table) records its step as additive, and
+    this release, which knows nothing of it, reads and writes the registry as before: replicas of two
+    releases share one registry through a rolling upgrade (the expand half of an expand-and-contract
+    schema change: common practice). A step not marked additive is still refused."""
+    newer = Migration(
+        "9001_newer",
+        "ALTER TABLE verdicts ADD COLUMN later_note TEXT; CREATE TABLE later_things (id {serial})",
+        additive=additive,
+    )
+    assert migrate(registry.backend, NOW, steps=(*MIGRATIONS, newer)) == ["9001_newer"]
+    if not additive:
+        with pytest.raises(RegistryError, match=r"schema step '9001_newer'.*upgrade textsieve"):
+            spec.open()
+        return
+    assert migrate(registry.backend, NOW) == []  # this release: nothing to apply, nothing refused
+    with spec.open() as older:
+        assert applied(older.backend) == sorted([m.name for m in MIGRATIONS] + ["9001_newer"])
+        with older.backend.write() as tx:
+            q = Queries(tx)
+            q.ensure_model("m", NOW)
+            _insert(q, 1, "live")
+        with older.backend.read() as tx:
+            assert [v.state for v in Queries(tx).versions("m")] == ["live"]
+    # A later newer step that is not additive is refused, though an additive one came before it.
+    breaking = Migration("9002_breaking", "ALTER TABLE verdicts ADD COLUMN must TEXT")
+    migrate(registry.backend, NOW, steps=(*MIGRATIONS, newer, breaking))
+    with pytest.raises(RegistryError, match=r"schema step '9002_breaking'"):
+        spec.open()
+
+
 def _insert(q: Queries, version: int, state: str) -> None:
     q.insert_version(
         model="m",
