@@ -10,12 +10,16 @@ import re
 import subprocess
 import sys
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import pytest
 
 from tests.helpers.environment import child_env
 from tests.helpers.service import make_registry
 from tests.scoring.conftest import ROOT, uci_rows
+
+if TYPE_CHECKING:
+    from textsieve.scoring.model import Model
 
 README = ROOT / "README.md"
 
@@ -114,3 +118,68 @@ def test_predict_reads_a_generator_once_and_refuses_what_the_http_api_refuses(sc
     for spans in (-1, 1.5, "2", True, None):
         with pytest.raises(InputError, match="spans must be a whole number, 0 or more"):
             model.predict(texts, spans=spans)  # type: ignore[arg-type]
+
+
+@pytest.fixture(scope="module")
+def support(scoring_registry: Path) -> Model:
+    import textsieve
+
+    return textsieve.load_model(scoring_registry, "support")
+
+
+def _refusal(call: object) -> str:
+    """The InputError message ``call()`` raises (anything else, or nothing, fails the test)."""
+    from textsieve.errors import InputError
+
+    with pytest.raises(InputError) as caught:
+        call()  # type: ignore[operator]
+    return str(caught.value)
+
+
+def _frame() -> object:
+    import pandas as pd
+
+    return pd.DataFrame({"text": ["refund my fee", "the chain came off"]})
+
+
+@pytest.mark.parametrize(
+    "texts,words",
+    [
+        # Iterating these gives something other than the texts (Python's data model: a dict iterates
+        # its keys, bytes its ints; pandas: a DataFrame iterates its column labels), which was classified.
+        pytest.param(lambda: {"refund my fee": 1}, "not a dict (it would classify its keys", id="dict"),
+        pytest.param(_frame, "not a DataFrame (it would classify its keys or column names)", id="DataFrame"),
+        pytest.param(lambda: b"refund my fee", "not a bytes (decode it to a str first)", id="bytes"),
+        # Not iterable at all: a TypeError from list() before.
+        pytest.param(lambda: None, "not None", id="None"),
+        pytest.param(lambda: 7, "not an int", id="int"),
+        # NumPy: a 0-d array is one value and cannot be iterated (a TypeError before).
+        pytest.param(lambda: __import__("numpy").array("refund my fee"), "not a 0-dimensional array", id="0-d array"),
+    ],
+)
+def test_predict_refuses_what_is_not_a_list_of_texts(support: Model, texts: object, words: str) -> None:
+    message = _refusal(lambda: support.predict(texts()))  # type: ignore[operator]
+    assert message.startswith("predict takes a list of texts") and words in message
+
+
+def test_predict_names_a_missing_or_undecoded_item_plainly(support: Model) -> None:
+    import numpy as np
+
+    assert _refusal(lambda: support.predict(["ok", None])).endswith("item 1 is None")
+    assert _refusal(lambda: support.predict(["ok", float("nan")])).endswith("item 1 is a float (NaN)")
+    # numpy.char: an array of b"..." holds numpy.bytes_ items, which are not str.
+    assert "item 0 is a bytes_ (decode it to a str first)" in _refusal(
+        lambda: support.predict(np.array([b"refund", b"chain"]))
+    )
+
+
+def test_predict_takes_numpy_integers_for_spans_and_caps_a_huge_number(support: Model) -> None:
+    import numpy as np
+
+    texts = ["I was charged twice this month and want a refund", "the front brake is broken"]
+    want = support.predict(texts, spans=2)
+    # numpy.int64 is a numbers.Integral (NumPy registers its integer types there): a whole number.
+    assert support.predict(texts, spans=np.int64(2)) == want
+    everything = support.predict(texts, spans=10**6)
+    # 10**30 does not fit NumPy's int64 (an OverflowError before); it asks for every span, as 10**6 does.
+    assert support.predict(texts, spans=10**30) == everything

@@ -4,8 +4,9 @@
 from __future__ import annotations
 
 import os
-from collections.abc import Sequence
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
+from numbers import Integral
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -91,20 +92,16 @@ class Model:
     def __repr__(self) -> str:
         return f"Model({self.name!r}, version={self.version})"
 
-    def predict(self, texts: Sequence[str], *, spans: int = 3) -> list[Prediction]:
+    def predict(self, texts: Iterable[str], *, spans: int = 3) -> list[Prediction]:
         """Label, calibrated probabilities and up to ``spans`` n-gram spans for each text, in order."""
-        if isinstance(texts, str):
-            raise InputError("predict takes a list of texts, not one string: predict([text])")
-        items = list(texts)  # once: a generator is read here, not emptied by the checks below
+        items = _text_list(texts)
         for i, t in enumerate(items):
             if not isinstance(t, str):
-                raise InputError(f"texts must be strings; item {i} is {article(type(t).__name__)}")
+                raise InputError(f"texts must be strings; item {i} is {_kind(t)}")
             why = text_refusal(t)  # what the HTTP API answers 422 to, in the same words
             if why is not None:
                 raise InputError(f"texts[{i}] {why}")
-        if isinstance(spans, bool) or not isinstance(spans, int) or spans < 0:
-            raise InputError(f"spans must be a whole number, 0 or more, not {spans!r}")
-        return self._predictor.predict(items, spans=spans)
+        return self._predictor.predict(items, spans=_spans(spans))
 
     def score_frame(self, frame: pd.DataFrame, column: str = "text", *, spans: int = 0) -> pd.DataFrame:
         """``frame`` with the result columns added (``label``, ``probability:LABEL`` each, ``spans`` when
@@ -127,6 +124,49 @@ class Model:
         results = pd.DataFrame(output_rows(rows, part, scored, layout), index=frame.index, columns=layout.results)
         renames = plan(names, None, self.labels, spans=spans > 0).renamed
         return pd.concat([frame.rename(columns={c: renames[str(c)] for c in frame.columns}), results], axis=1)
+
+
+def _text_list(texts: object) -> list[Any]:
+    """``texts`` as a list, read once (a generator is not emptied by the checks that follow). What
+    iterates to something other than texts (a string's characters, a mapping's keys, a frame's column
+    names) is refused, not classified."""
+    if isinstance(texts, str):
+        raise InputError("predict takes a list of texts, not one string: predict([text])")
+    if isinstance(texts, bytes | bytearray) or getattr(texts, "ndim", None) == 0:
+        one = "a 0-dimensional array" if getattr(texts, "ndim", None) == 0 else _kind(texts)
+        raise InputError(f"predict takes a list of texts, not {one}: predict([text])")
+    if isinstance(texts, Mapping) or hasattr(texts, "columns"):
+        raise InputError(
+            f"predict takes a list of texts, not {_kind(texts)} (it would classify its keys or column names); "
+            "pass one column (predict(frame['text'])) or use score_frame(frame, 'text')"
+        )
+    if not isinstance(texts, Iterable):
+        raise InputError(f"predict takes a list of texts, not {_kind(texts)}")
+    return list(texts)
+
+
+def _kind(value: object) -> str:
+    """What a value is, for a message: "None", "a float (NaN)", "an int", "a bytes (decode it first)"."""
+    if value is None:
+        return "None"
+    name = article(type(value).__name__)
+    if isinstance(value, float) and value != value:
+        return f"{name} (NaN)"
+    if isinstance(value, bytes | bytearray):
+        return f"{name} (decode it to a str first)"
+    return name
+
+
+# Spans a text can have are bounded by the model's filters; a larger number asks for all of them and
+# is capped here, within the int64 the span finder counts in (10**30 was an OverflowError from NumPy).
+MAX_SPANS = 2**31 - 1
+
+
+def _spans(spans: object) -> int:
+    """``spans`` as an int: a whole number, 0 or more (NumPy's integers too); InputError otherwise."""
+    if isinstance(spans, bool) or not isinstance(spans, Integral) or spans < 0:
+        raise InputError(f"spans must be a whole number, 0 or more, not {spans!r}")
+    return min(int(spans), MAX_SPANS)
 
 
 def _missing(pd: Any, value: object) -> bool:
