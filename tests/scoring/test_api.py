@@ -183,3 +183,85 @@ def test_predict_takes_numpy_integers_for_spans_and_caps_a_huge_number(support: 
     everything = support.predict(texts, spans=10**6)
     # 10**30 does not fit NumPy's int64 (an OverflowError before); it asks for every span, as 10**6 does.
     assert support.predict(texts, spans=10**30) == everything
+
+
+@pytest.mark.parametrize(
+    "make,column,words",
+    [
+        # pandas: selecting a duplicated label gives a DataFrame, which has no .tolist (AttributeError before).
+        pytest.param(
+            lambda pd: pd.DataFrame([["refund", "chain"]], columns=["text", "text"]),
+            "text",
+            "the frame has 2 columns labelled 'text'",
+            id="duplicate label",
+        ),
+        pytest.param(lambda pd: pd.Series(["refund"]), "text", "not a Series", id="Series"),
+        pytest.param(lambda pd: [{"text": "refund"}], "text", "not a list", id="list of rows"),
+        # pyarrow's Table has .columns too: the message printed its arrays as the frame's columns.
+        pytest.param(
+            lambda pd: __import__("pyarrow").table({"text": ["refund"]}),
+            "text",
+            "not a Table; convert it with .to_pandas()",
+            id="pyarrow Table",
+        ),
+        # A list is not hashable (Python's data model): a TypeError from `in frame.columns` before.
+        pytest.param(lambda pd: pd.DataFrame({"text": ["refund"]}), ["text"], "no column ['text']", id="list label"),
+        pytest.param(lambda pd: pd.DataFrame(), "text", "it has: none", id="no columns"),
+    ],
+)
+def test_score_frame_refuses_what_is_not_a_frame_with_one_such_column(
+    support: Model, make: object, column: object, words: str
+) -> None:
+    import pandas as pd
+
+    assert words in _refusal(lambda: support.score_frame(make(pd), column))  # type: ignore[operator, arg-type]
+
+
+@pytest.mark.parametrize("spans", [-1, 1.5, "2", None, True])
+def test_score_frame_checks_spans_as_predict_does(support: Model, spans: object) -> None:
+    # -1 was taken as 0 and 1.5 as "some"; "2" and None were TypeErrors from `spans > 0`.
+    message = _refusal(lambda: support.score_frame(_frame(), "text", spans=spans))  # type: ignore[arg-type]
+    assert message == f"spans must be a whole number, 0 or more, not {spans!r}"
+
+
+def test_score_frame_marks_a_nul_or_lone_surrogate_row_as_predict_refuses_it(support: Model) -> None:
+    import pandas as pd
+
+    texts = ["refund my fee", "refund\x00my fee", "caf\u00e9 \ud800", "the chain came off"]
+    # dtype=object: pandas' default string dtype (pyarrow) cannot hold a lone surrogate at all.
+    scored = support.score_frame(pd.DataFrame({"text": pd.Series(texts, dtype=object)}), "text")
+    errors = scored["error"].tolist()
+    assert errors[1] == "text field 'text' contains a NUL character (U+0000) at character 6; remove it"
+    assert errors[2] == "text field 'text' contains a lone surrogate (U+D800) at character 5; send valid Unicode"
+    assert scored["label"].isna().tolist() == [False, True, True, False]
+    want = support.predict([texts[0], texts[3]])
+    assert scored["label"].tolist()[::3] == [p.label for p in want]
+
+
+def test_score_frame_keeps_the_column_labels_no_result_column_shadows(support: Model) -> None:
+    import pandas as pd
+
+    frame = pd.DataFrame({0: ["refund my fee"], "0": ["x"], "label": ["billing"]})
+    scored = support.score_frame(frame, 0)
+    # The int label 0 was renamed "0", beside the string "0": two columns named "0", and scored[0] a KeyError.
+    assert list(scored.columns[:3]) == [0, "0", "input:label"]
+    assert scored[0].tolist() == ["refund my fee"] and scored["0"].tolist() == ["x"]
+
+
+def test_score_frame_lines_results_up_with_duplicate_and_multiindex_rows(support: Model) -> None:
+    import pandas as pd
+
+    texts = ["refund my fee", "the chain came off", "I cannot log in", "thanks a lot"]
+    want = support.predict(texts)
+    for index in (
+        pd.Index([7, 7, 3, 7]),
+        pd.MultiIndex.from_tuples([("a", 1), ("a", 2), ("b", 1), ("a", 1)]),
+    ):
+        frame = pd.DataFrame({"text": texts}, index=index).iloc[::-1]  # neither sorted nor unique
+        scored = support.score_frame(frame, "text")
+        assert scored.index.equals(frame.index)  # pandas: the same labels in the same order
+        assert scored["text"].tolist() == texts[::-1]
+        assert scored["label"].tolist() == [p.label for p in want[::-1]]
+        for name in support.labels:
+            got = scored[f"probability:{name}"].tolist()
+            assert got == pytest.approx([p.probabilities[name] for p in want[::-1]], abs=1e-6)

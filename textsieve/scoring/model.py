@@ -11,7 +11,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError, NotFoundError
-from textsieve.registry.tokenizer import text_refusal
+from textsieve.registry.tokenizer import nothing_to_classify, text_refusal
 from textsieve.scoring.rows import article
 
 if TYPE_CHECKING:
@@ -105,25 +105,56 @@ class Model:
 
     def score_frame(self, frame: pd.DataFrame, column: str = "text", *, spans: int = 0) -> pd.DataFrame:
         """``frame`` with the result columns added (``label``, ``probability:LABEL`` each, ``spans`` when
-        asked, ``error``), the same columns ``textsieve score`` writes. Rows whose text is missing, empty
-        or not a string get ``error`` set and no label; an input column that a result column would
-        shadow is renamed ``input:NAME``."""
+        asked, ``error``), the same columns ``textsieve score`` writes. Rows whose text is missing, empty,
+        not a string or refused by ``predict`` (a NUL, a lone surrogate) get ``error`` set and no label,
+        in the frame's own row order and index; an input column that a result column would shadow is
+        renamed ``input:NAME``."""
         import pandas as pd
 
         from textsieve.scoring.columns import plan
         from textsieve.scoring.rows import output_rows, score_texts, split
 
-        if column not in frame.columns:
-            raise InputError(f"no column {column!r} in the frame; it has: {', '.join(map(str, frame.columns))}")
+        spans = _spans(spans)
+        _check_frame(pd, frame, column)
         names = [str(c) for c in frame.columns]
         layout = plan(names, [], self.labels, spans=spans > 0)
         values: list[Any] = frame[column].tolist()
-        rows = [{column: v if isinstance(v, str) else None if _missing(pd, v) else v} for v in values]
+        rows = [_row(column, v if isinstance(v, str) else None if _missing(pd, v) else v) for v in values]
         part = split(rows, column, strict=False, first_row=0)
         scored = score_texts(self._predictor, part.texts, spans)
         results = pd.DataFrame(output_rows(rows, part, scored, layout), index=frame.index, columns=layout.results)
         renames = plan(names, None, self.labels, spans=spans > 0).renamed
-        return pd.concat([frame.rename(columns={c: renames[str(c)] for c in frame.columns}), results], axis=1)
+        # Only the labels a result column would shadow change; the rest keep their own (an int stays an int).
+        clashing = {c: renames[str(c)] for c in frame.columns if renames[str(c)] != str(c)}
+        return pd.concat([frame.rename(columns=clashing), results], axis=1)
+
+
+def _check_frame(pd: Any, frame: object, column: object) -> None:
+    """InputError unless ``frame`` is a pandas DataFrame with exactly one column labelled ``column``."""
+    if not isinstance(frame, pd.DataFrame):
+        hint = "; convert it with .to_pandas()" if hasattr(frame, "to_pandas") else ""
+        raise InputError(f"score_frame takes a pandas DataFrame, not {_kind(frame)}{hint}")
+    try:
+        count = sum(1 for c in frame.columns if c == column)
+    except (TypeError, ValueError):  # an unhashable or array-like label
+        count = 0
+    if count == 0:
+        shown = ", ".join(map(str, frame.columns[:20])) or "none"
+        raise InputError(f"no column {column!r} in the frame; it has: {shown}")
+    if count > 1:
+        raise InputError(f"the frame has {count} columns labelled {column!r}; give the text column a label of its own")
+
+
+def _row(column: str, value: object) -> dict[str, Any]:
+    """One input row; a text the HTTP API would refuse (a NUL, a lone surrogate) is not scored."""
+    from textsieve.scoring.rows import Misshapen
+
+    # Nothing to classify is split()'s to say, in the words textsieve score writes; the rest is refused here.
+    if isinstance(value, str) and nothing_to_classify(value) is None:
+        why = text_refusal(value)
+        if why is not None:
+            return Misshapen({column: value}, f"text field {column!r} {why}")
+    return {column: value}
 
 
 def _text_list(texts: object) -> list[Any]:
