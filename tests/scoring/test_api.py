@@ -265,3 +265,36 @@ def test_score_frame_lines_results_up_with_duplicate_and_multiindex_rows(support
         for name in support.labels:
             got = scored[f"probability:{name}"].tolist()
             assert got == pytest.approx([p.probabilities[name] for p in want[::-1]], abs=1e-6)
+
+
+@pytest.mark.parametrize(
+    "call,words",
+    [
+        # os.fspath(None) and os.fspath(3) are TypeErrors (Python's os module); so was each call here.
+        pytest.param(
+            lambda ts, reg: ts.open_registry(None),
+            "the registry location must be a folder path (str or pathlib.Path) or a postgresql:// URL, not NoneType",
+            id="open_registry(None)",
+        ),
+        pytest.param(lambda ts, reg: ts.open_registry(3, create=False), "not int", id="open_registry(3)"),
+        pytest.param(
+            lambda ts, reg: ts.open_registry(reg, blobs=5, create=False),
+            "the blob folder must be a folder path (str or pathlib.Path), or None, not int",
+            id="blobs=5",
+        ),
+        pytest.param(lambda ts, reg: ts.load_model(None, "support"), "not NoneType", id="load_model(None)"),
+        # onnxruntime took threads=-1 and 0 silently and threads="2" was its TypeError.
+        pytest.param(
+            lambda ts, reg: ts.load_model(reg, "support", threads="2"),
+            "threads must be a whole number, 1 or more (onnxruntime threads), not '2'",
+            id="threads='2'",
+        ),
+        pytest.param(lambda ts, reg: ts.load_model(reg, "support", threads=-1), "not -1", id="threads=-1"),
+    ],
+)
+def test_open_registry_and_load_model_refuse_arguments_of_the_wrong_kind(
+    scoring_registry: Path, call: object, words: str
+) -> None:
+    import textsieve
+
+    assert words in _refusal(lambda: call(textsieve, scoring_registry))  # type: ignore[operator]

@@ -215,6 +215,9 @@ def load_model(
 ) -> Model:
     """Load ``name``'s live version (or ``version``) from a registry object, folder or postgresql:// URL
     (with ``blobs``), after re-checking the sha256 of every file of its bundle."""
+    count: object = threads  # as passed, which the annotation does not promise
+    if isinstance(count, bool) or not isinstance(count, Integral) or count < 1:
+        raise InputError(f"threads must be a whole number, 1 or more (onnxruntime threads), not {count!r}")
     reg, owned = _open(registry, blobs)
     try:
         return Model(resolve(reg, name, version), threads=threads)
