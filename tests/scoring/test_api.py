@@ -298,3 +298,54 @@ def test_open_registry_and_load_model_refuse_arguments_of_the_wrong_kind(
     import textsieve
 
     assert words in _refusal(lambda: call(textsieve, scoring_registry))  # type: ignore[operator]
+
+
+def test_score_file_takes_str_paths_and_a_registry_folder_as_load_model_does(
+    scoring_registry: Path, tmp_path: Path
+) -> None:
+    import json
+
+    import textsieve
+
+    source = tmp_path / "in.jsonl"
+    source.write_text('{"text": "refund my fee"}\n{"text": "the chain came off"}\n', encoding="utf-8")
+    # str paths were an AttributeError ('str' object has no attribute 'is_dir'), a registry folder one
+    # from resolve() ('str' object has no attribute 'live').
+    out = tmp_path / "out.jsonl"
+    opts = textsieve.Options(workers=0)
+    summary = textsieve.score_file(
+        str(scoring_registry), "support", str(source), str(out), options=opts, stream=io.StringIO()
+    )
+    assert (summary.rows, summary.errors, summary.version) == (2, 0, 1)
+    got = [json.loads(line)["label"] for line in out.read_text(encoding="utf-8").splitlines()]
+    model = textsieve.load_model(scoring_registry, "support")
+    assert got == [p.label for p in model.predict(["refund my fee", "the chain came off"])]
+
+
+@pytest.mark.parametrize(
+    "options,words",
+    [
+        # What each was before: an AttributeError; scored as 0; a TypeError; a ValueError from the process
+        # pool; the columns t, e, x, t; "no row has the field None"; a TypeError.
+        ({"workers": 0}, "options must be textsieve.Options(...), not a dict"),
+        (dict(workers=0, spans=-1), "spans must be a whole number, 0 or more, not -1"),
+        (dict(workers=0, spans="2"), "spans must be a whole number, 0 or more, not '2'"),
+        (dict(workers=-1), "workers must be None (one per core), 0 (this process) or more, not -1"),
+        (dict(workers=0, keep="text"), "keep must be None or a list of column names, not 'text'"),
+        (dict(workers=0, text_field=None), "text_field must be a non-empty str, not None"),
+        (dict(workers=0, chunk_rows=2.5), "chunk_rows must be a whole number, 1 or more, not 2.5"),
+    ],
+)
+def test_score_file_refuses_options_of_the_wrong_kind_before_writing(
+    scoring_registry: Path, tmp_path: Path, options: dict[str, object], words: str
+) -> None:
+    import textsieve
+
+    source = tmp_path / "in.jsonl"
+    source.write_text('{"text": "refund my fee"}\n', encoding="utf-8")
+    # The first case passes the dict itself, as a caller guessing the keyword might.
+    opts = options if words.startswith("options must") else textsieve.Options(**options)  # type: ignore[arg-type]
+    out = tmp_path / "out.jsonl"
+    message = _refusal(lambda: textsieve.score_file(scoring_registry, "support", source, out, options=opts))  # type: ignore[arg-type]
+    assert words in message
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["in.jsonl"]  # nothing written
