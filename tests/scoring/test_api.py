@@ -349,3 +349,27 @@ def test_score_file_refuses_options_of_the_wrong_kind_before_writing(
     message = _refusal(lambda: textsieve.score_file(scoring_registry, "support", source, out, options=opts))  # type: ignore[arg-type]
     assert words in message
     assert sorted(p.name for p in tmp_path.iterdir()) == ["in.jsonl"]  # nothing written
+
+
+def test_a_model_pickles_for_worker_processes_and_refuses_a_changed_bundle(support: Model, tmp_path: Path) -> None:
+    import pickle
+    import shutil
+
+    from textsieve.errors import BundleError
+    from textsieve.scoring.model import Model, Resolved
+
+    texts = ["refund my fee", "the chain came off", "I cannot log in"]
+    # joblib, multiprocessing and Dask pickle what they run; the onnxruntime session made that a TypeError.
+    again = pickle.loads(pickle.dumps(support))
+    assert (again.name, again.version, again.bundle_sha256) == (support.name, support.version, support.bundle_sha256)
+    assert again.predict(texts, spans=2) == support.predict(texts, spans=2)
+    copy = tmp_path / "bundle"
+    shutil.copytree(support._resolved.folder, copy)
+    moved = Model(Resolved(**{**vars(support._resolved), "folder": copy}))
+    data = pickle.dumps(moved)
+    (copy / "manifest.json").write_bytes((copy / "manifest.json").read_bytes() + b" ")
+    with pytest.raises(BundleError, match="changed since support v1 was loaded"):
+        pickle.loads(data)
+    shutil.rmtree(copy)
+    with pytest.raises(BundleError, match="call load_model in this process"):
+        pickle.loads(data)

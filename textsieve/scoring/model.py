@@ -67,7 +67,13 @@ class Model:
         from textsieve.registry.runtime import Predictor
 
         self._resolved = resolved
+        self._threads = threads
         self._predictor: Predictor = Predictor.from_bundle(resolved.folder, threads=threads)
+
+    def __reduce__(self) -> tuple[Any, tuple[Resolved, int]]:
+        # The onnxruntime session cannot be pickled (joblib, multiprocessing and Dask pickle what they
+        # run): the copy loads the same verified folder again, re-checking it, in the process it lands in.
+        return _reload, (self._resolved, self._threads)
 
     @property
     def name(self) -> str:
@@ -155,6 +161,26 @@ def _row(column: str, value: object) -> dict[str, Any]:
         if why is not None:
             return Misshapen({column: value}, f"text field {column!r} {why}")
     return {column: value}
+
+
+def _reload(resolved: Resolved, threads: int) -> Model:
+    """An unpickled :class:`Model`: its bundle folder checked again, manifest first."""
+    import hashlib
+
+    from textsieve.errors import BundleError
+    from textsieve.registry.manifest import MANIFEST
+
+    manifest = resolved.folder / MANIFEST
+    try:
+        digest = hashlib.sha256(manifest.read_bytes()).hexdigest()
+    except OSError as exc:
+        raise BundleError(
+            f"{resolved.model} v{resolved.version}: its bundle copy {resolved.folder} cannot be read here "
+            f"({exc.strerror or exc}); call load_model in this process instead of passing the model to it"
+        ) from exc
+    if digest != resolved.bundle_sha256:
+        raise BundleError(f"{manifest}: changed since {resolved.model} v{resolved.version} was loaded; load it again")
+    return Model(resolved, threads=threads)
 
 
 def _text_list(texts: object) -> list[Any]:
