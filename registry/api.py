@@ -1190,6 +1190,14 @@ def open_registry(
     (``<blobs>/../cache``) unless ``cache`` names another folder. With ``create=False`` a folder
     that holds no registry yet is a NotFoundError instead of becoming a new, empty registry.
     """
+    # os.fspath would raise TypeError (None, an int) or hand bytes to the str checks below.
+    for what, value, allowed in (
+        ("registry location", location, "a folder path (str or pathlib.Path) or a postgresql:// URL"),
+        ("blob folder", blobs, "a folder path (str or pathlib.Path), or None"),
+        ("cache folder", cache, "a folder path (str or pathlib.Path), or None"),
+    ):
+        if not isinstance(value, str | os.PathLike) and (value is not None or what == "registry location"):
+            raise InputError(f"the {what} must be {allowed}, not {type(value).__name__}")
     text = os.fspath(location)
     # Path("") is the current folder: `--registry "$UNSET"` made a registry there (and `" "` a folder
     # named by a space), where the same value in TEXTSIEVE_REGISTRY is refused.

@@ -56,6 +56,11 @@ def cli_shadow(args: argparse.Namespace) -> int:
                 reg.version(args.model, number)  # NotFoundError naming the versions it has
         live = args.live if args.live is not None else _num(reg.live(args.model))
         candidate = args.candidate if args.candidate is not None else _num(reg.candidate(args.model))
+        if live is not None and live == candidate:
+            # A version is never scored in its own shadow; "no counts yet" would suggest waiting for some.
+            raise InputError(
+                f"--live and --candidate both name version {live} of {args.model!r}; a pair is two versions"
+            )
         if live is None or candidate is None:
             missing = "live version" if live is None else "candidate"
             _out(

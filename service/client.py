@@ -292,11 +292,21 @@ def render_drift(reply: dict[str, Any]) -> str:
 def cli_drift(args: argparse.Namespace) -> int:
     import urllib.parse
 
+    from textsieve.registry.names import validate_model_name
+
+    # Said here, not by the server: "../x" or "a/b" came back as "no such path", and as "cannot reach"
+    # when the service was down, which is exit 1, a retry, for a name that can never work.
+    validate_model_name(args.model)
     base = _base(service_url(args.url))
     from textsieve.service.web.schemas import DriftView
 
     r = _ok(base, "GET", f"/v1/models/{urllib.parse.quote(args.model, safe='')}/drift", args.timeout)
     reply = _reply(r, DriftView)
+    if reply["model"] != args.model:
+        raise UnavailableError(
+            f"{r.request.url} answered with the drift of {one_line(str(reply['model']))!r}, not of "
+            f"{args.model!r}; is --url the textsieve service?"
+        )
     print(r.text if args.json else render_drift(reply))
     return 0
 

@@ -19,7 +19,8 @@ __version__ = "0.1.0"
 if _typing.TYPE_CHECKING:
     from textsieve.registry.api import Registry, open_registry
     from textsieve.registry.runtime import Prediction, Span
-    from textsieve.scoring.local import Options, Summary, score_file
+    from textsieve.scoring.api import score_file
+    from textsieve.scoring.local import Options, Summary
     from textsieve.scoring.model import Model, load_model
 
 # Public name → the module that defines it.
@@ -32,7 +33,7 @@ _HOMES = {
     "load_model": "textsieve.scoring.model",
     "Options": "textsieve.scoring.local",
     "Summary": "textsieve.scoring.local",
-    "score_file": "textsieve.scoring.local",
+    "score_file": "textsieve.scoring.api",  # checks a Python caller's arguments, then scoring.local's
 }
 
 __all__ = [

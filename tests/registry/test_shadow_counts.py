@@ -177,6 +177,9 @@ def test_cli_without_counts_says_how_they_come(published: RegistrySpec, capsys: 
         (["--live", "99", "--candidate", "1"], "has no version 99"),
         (["--texts", "9223372036854775808"], "--texts 9223372036854775808: give 0 to 1,000,000"),
         (["--texts", "-1"], "give 0 to"),
+        # A version beside itself said "no shadow counts yet", as if some might come.
+        (["--live", "1", "--candidate", "1"], "--live and --candidate both name version 1 of"),
+        (["--candidate", "1"], "a pair is two versions"),
     ],
 )
 def test_cli_refuses_versions_it_does_not_have_and_text_counts_out_of_range(

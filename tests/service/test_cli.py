@@ -412,3 +412,44 @@ def test_client_verbs_against_odd_servers_and_timeouts(tmp_path: Path) -> None:
     finally:
         other.shutdown()
         other.server_close()
+
+
+def test_drift_refuses_a_bad_model_name_before_asking_and_a_reply_about_another_model(
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """`drift ../x` against a stopped service was exit 1 "cannot reach" (worth a retry) and against a
+    running one "no such path"; a 200 reply about another model was printed as this one's drift."""
+    import http.server
+    import threading
+
+    from textsieve.cli import main
+
+    class Other(http.server.BaseHTTPRequestHandler):
+        def do_GET(self) -> None:
+            body = json.dumps({"model": "support", "scope": "replica", "versions": []}).encode()
+            self.send_response(200)
+            self.send_header("Content-Type", "application/json")
+            self.send_header("Content-Length", str(len(body)))
+            self.end_headers()
+            self.wfile.write(body)
+
+        def log_message(self, *args: object) -> None:
+            pass
+
+    for name in ("../x", "a/b", "Support"):
+        assert main(["drift", name, "--url", f"http://127.0.0.1:{free_port()}"]) == 2
+        err = capsys.readouterr().err
+        assert err.count("\n") == 1 and f"bad model name {name!r}" in err, err
+    other = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Other)
+    threading.Thread(target=other.serve_forever, daemon=True).start()
+    try:
+        url = f"http://127.0.0.1:{other.server_address[1]}"
+        assert main(["drift", "support", "--url", url]) == 0
+        assert "support: this replica serves no version" in capsys.readouterr().out
+        assert main(["drift", "billing", "--url", url]) == 1
+        captured = capsys.readouterr()
+        assert captured.out == "" and captured.err.count("\n") == 1
+        assert "answered with the drift of 'support', not of 'billing'" in captured.err
+    finally:
+        other.shutdown()
+        other.server_close()

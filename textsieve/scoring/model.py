@@ -4,13 +4,14 @@
 from __future__ import annotations
 
 import os
-from collections.abc import Sequence
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
+from numbers import Integral
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError, NotFoundError
-from textsieve.registry.tokenizer import text_refusal
+from textsieve.registry.tokenizer import nothing_to_classify, text_refusal
 from textsieve.scoring.rows import article
 
 if TYPE_CHECKING:
@@ -66,7 +67,13 @@ class Model:
         from textsieve.registry.runtime import Predictor
 
         self._resolved = resolved
+        self._threads = threads
         self._predictor: Predictor = Predictor.from_bundle(resolved.folder, threads=threads)
+
+    def __reduce__(self) -> tuple[Any, tuple[Resolved, int]]:
+        # The onnxruntime session cannot be pickled (joblib, multiprocessing and Dask pickle what they
+        # run): the copy loads the same verified folder again, re-checking it, in the process it lands in.
+        return _reload, (self._resolved, self._threads)
 
     @property
     def name(self) -> str:
@@ -91,42 +98,132 @@ class Model:
     def __repr__(self) -> str:
         return f"Model({self.name!r}, version={self.version})"
 
-    def predict(self, texts: Sequence[str], *, spans: int = 3) -> list[Prediction]:
+    def predict(self, texts: Iterable[str], *, spans: int = 3) -> list[Prediction]:
         """Label, calibrated probabilities and up to ``spans`` n-gram spans for each text, in order."""
-        if isinstance(texts, str):
-            raise InputError("predict takes a list of texts, not one string: predict([text])")
-        items = list(texts)  # once: a generator is read here, not emptied by the checks below
+        items = _text_list(texts)
         for i, t in enumerate(items):
             if not isinstance(t, str):
-                raise InputError(f"texts must be strings; item {i} is {article(type(t).__name__)}")
+                raise InputError(f"texts must be strings; item {i} is {_kind(t)}")
             why = text_refusal(t)  # what the HTTP API answers 422 to, in the same words
             if why is not None:
                 raise InputError(f"texts[{i}] {why}")
-        if isinstance(spans, bool) or not isinstance(spans, int) or spans < 0:
-            raise InputError(f"spans must be a whole number, 0 or more, not {spans!r}")
-        return self._predictor.predict(items, spans=spans)
+        return self._predictor.predict(items, spans=_spans(spans))
 
     def score_frame(self, frame: pd.DataFrame, column: str = "text", *, spans: int = 0) -> pd.DataFrame:
         """``frame`` with the result columns added (``label``, ``probability:LABEL`` each, ``spans`` when
-        asked, ``error``), the same columns ``textsieve score`` writes. Rows whose text is missing, empty
-        or not a string get ``error`` set and no label; an input column that a result column would
-        shadow is renamed ``input:NAME``."""
+        asked, ``error``), the same columns ``textsieve score`` writes. Rows whose text is missing, empty,
+        not a string or refused by ``predict`` (a NUL, a lone surrogate) get ``error`` set and no label,
+        in the frame's own row order and index; an input column that a result column would shadow is
+        renamed ``input:NAME``."""
         import pandas as pd
 
         from textsieve.scoring.columns import plan
         from textsieve.scoring.rows import output_rows, score_texts, split
 
-        if column not in frame.columns:
-            raise InputError(f"no column {column!r} in the frame; it has: {', '.join(map(str, frame.columns))}")
+        spans = _spans(spans)
+        _check_frame(pd, frame, column)
         names = [str(c) for c in frame.columns]
         layout = plan(names, [], self.labels, spans=spans > 0)
         values: list[Any] = frame[column].tolist()
-        rows = [{column: v if isinstance(v, str) else None if _missing(pd, v) else v} for v in values]
+        rows = [_row(column, v if isinstance(v, str) else None if _missing(pd, v) else v) for v in values]
         part = split(rows, column, strict=False, first_row=0)
         scored = score_texts(self._predictor, part.texts, spans)
         results = pd.DataFrame(output_rows(rows, part, scored, layout), index=frame.index, columns=layout.results)
         renames = plan(names, None, self.labels, spans=spans > 0).renamed
-        return pd.concat([frame.rename(columns={c: renames[str(c)] for c in frame.columns}), results], axis=1)
+        # Only the labels a result column would shadow change; the rest keep their own (an int stays an int).
+        clashing = {c: renames[str(c)] for c in frame.columns if renames[str(c)] != str(c)}
+        return pd.concat([frame.rename(columns=clashing), results], axis=1)
+
+
+def _check_frame(pd: Any, frame: object, column: object) -> None:
+    """InputError unless ``frame`` is a pandas DataFrame with exactly one column labelled ``column``."""
+    if not isinstance(frame, pd.DataFrame):
+        hint = "; convert it with .to_pandas()" if hasattr(frame, "to_pandas") else ""
+        raise InputError(f"score_frame takes a pandas DataFrame, not {_kind(frame)}{hint}")
+    try:
+        count = sum(1 for c in frame.columns if c == column)
+    except (TypeError, ValueError):  # an unhashable or array-like label
+        count = 0
+    if count == 0:
+        shown = ", ".join(map(str, frame.columns[:20])) or "none"
+        raise InputError(f"no column {column!r} in the frame; it has: {shown}")
+    if count > 1:
+        raise InputError(f"the frame has {count} columns labelled {column!r}; give the text column a label of its own")
+
+
+def _row(column: str, value: object) -> dict[str, Any]:
+    """One input row; a text the HTTP API would refuse (a NUL, a lone surrogate) is not scored."""
+    from textsieve.scoring.rows import Misshapen
+
+    # Nothing to classify is split()'s to say, in the words textsieve score writes; the rest is refused here.
+    if isinstance(value, str) and nothing_to_classify(value) is None:
+        why = text_refusal(value)
+        if why is not None:
+            return Misshapen({column: value}, f"text field {column!r} {why}")
+    return {column: value}
+
+
+def _reload(resolved: Resolved, threads: int) -> Model:
+    """An unpickled :class:`Model`: its bundle folder checked again, manifest first."""
+    import hashlib
+
+    from textsieve.errors import BundleError
+    from textsieve.registry.manifest import MANIFEST
+
+    manifest = resolved.folder / MANIFEST
+    try:
+        digest = hashlib.sha256(manifest.read_bytes()).hexdigest()
+    except OSError as exc:
+        raise BundleError(
+            f"{resolved.model} v{resolved.version}: its bundle copy {resolved.folder} cannot be read here "
+            f"({exc.strerror or exc}); call load_model in this process instead of passing the model to it"
+        ) from exc
+    if digest != resolved.bundle_sha256:
+        raise BundleError(f"{manifest}: changed since {resolved.model} v{resolved.version} was loaded; load it again")
+    return Model(resolved, threads=threads)
+
+
+def _text_list(texts: object) -> list[Any]:
+    """``texts`` as a list, read once (a generator is not emptied by the checks that follow). What
+    iterates to something other than texts (a string's characters, a mapping's keys, a frame's column
+    names) is refused, not classified."""
+    if isinstance(texts, str):
+        raise InputError("predict takes a list of texts, not one string: predict([text])")
+    if isinstance(texts, bytes | bytearray) or getattr(texts, "ndim", None) == 0:
+        one = "a 0-dimensional array" if getattr(texts, "ndim", None) == 0 else _kind(texts)
+        raise InputError(f"predict takes a list of texts, not {one}: predict([text])")
+    if isinstance(texts, Mapping) or hasattr(texts, "columns"):
+        raise InputError(
+            f"predict takes a list of texts, not {_kind(texts)} (it would classify its keys or column names); "
+            "pass one column (predict(frame['text'])) or use score_frame(frame, 'text')"
+        )
+    if not isinstance(texts, Iterable):
+        raise InputError(f"predict takes a list of texts, not {_kind(texts)}")
+    return list(texts)
+
+
+def _kind(value: object) -> str:
+    """What a value is, for a message: "None", "a float (NaN)", "an int", "a bytes (decode it first)"."""
+    if value is None:
+        return "None"
+    name = article(type(value).__name__)
+    if isinstance(value, float) and value != value:
+        return f"{name} (NaN)"
+    if isinstance(value, bytes | bytearray):
+        return f"{name} (decode it to a str first)"
+    return name
+
+
+# Spans a text can have are bounded by the model's filters; a larger number asks for all of them and
+# is capped here, within the int64 the span finder counts in (10**30 was an OverflowError from NumPy).
+MAX_SPANS = 2**31 - 1
+
+
+def _spans(spans: object) -> int:
+    """``spans`` as an int: a whole number, 0 or more (NumPy's integers too); InputError otherwise."""
+    if isinstance(spans, bool) or not isinstance(spans, Integral) or spans < 0:
+        raise InputError(f"spans must be a whole number, 0 or more, not {spans!r}")
+    return min(int(spans), MAX_SPANS)
 
 
 def _missing(pd: Any, value: object) -> bool:
@@ -144,6 +241,9 @@ def load_model(
 ) -> Model:
     """Load ``name``'s live version (or ``version``) from a registry object, folder or postgresql:// URL
     (with ``blobs``), after re-checking the sha256 of every file of its bundle."""
+    count: object = threads  # as passed, which the annotation does not promise
+    if isinstance(count, bool) or not isinstance(count, Integral) or count < 1:
+        raise InputError(f"threads must be a whole number, 1 or more (onnxruntime threads), not {count!r}")
     reg, owned = _open(registry, blobs)
     try:
         return Model(resolve(reg, name, version), threads=threads)
