@@ -2,12 +2,16 @@
 
 from __future__ import annotations
 
+import contextlib
+import http.server
 import json
 import re
 import signal
 import subprocess
 import sys
+import threading
 import unicodedata
+from collections.abc import Iterator
 from pathlib import Path
 
 import httpx
@@ -23,6 +27,18 @@ CLI = [sys.executable, "-m", "textsieve.cli"]
 
 def run(*args: str, timeout: float = 60) -> subprocess.CompletedProcess[str]:
     return subprocess.run([*CLI, *args], capture_output=True, text=True, timeout=timeout, env=child_env())
+
+
+@contextlib.contextmanager
+def another_server(handler: type[http.server.BaseHTTPRequestHandler]) -> Iterator[str]:
+    """A stand-in for whatever else may answer at --url (a proxy, another service), on loopback; its URL."""
+    server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), handler)
+    threading.Thread(target=server.serve_forever, daemon=True).start()
+    try:
+        yield f"http://127.0.0.1:{server.server_address[1]}"
+    finally:
+        server.shutdown()
+        server.server_close()
 
 
 def test_health_ready_and_unreachable(live_url: str) -> None:
@@ -267,8 +283,6 @@ def test_serve_on_port_0_says_the_port_it_got_and_a_port_in_use_is_one_line(shar
 def test_clients_pointed_at_another_server_say_so_in_one_line(tmp_path: Path) -> None:
     """An address that answers 200 with a page (a proxy's, another service's) is not a ready
     textsieve (health said 'ready', exit 0), and predict and drift gave a JSONDecodeError traceback."""
-    import http.server
-    import threading
 
     class Page(http.server.BaseHTTPRequestHandler):
         def _page(self) -> None:
@@ -284,10 +298,7 @@ def test_clients_pointed_at_another_server_say_so_in_one_line(tmp_path: Path) ->
         def log_message(self, *args: object) -> None:
             pass
 
-    other = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Page)
-    threading.Thread(target=other.serve_forever, daemon=True).start()
-    url = f"http://127.0.0.1:{other.server_address[1]}"
-    try:
+    with another_server(Page) as url:
         health = run("health", "--url", url)
         assert health.returncode == 1 and health.stdout.startswith("not ready: "), health.stdout
         assert "is not a textsieve readiness reply" in health.stdout
@@ -295,9 +306,6 @@ def test_clients_pointed_at_another_server_say_so_in_one_line(tmp_path: Path) ->
             out = run(*args)
             assert out.returncode != 0 and out.stderr.count("\n") == 1, out.stderr
             assert "not as textsieve does (text/html); is --url the textsieve service?" in out.stderr
-    finally:
-        other.shutdown()
-        other.server_close()
 
 
 def _mutations(node: object, path: tuple[object, ...] = ()) -> list[tuple[tuple[object, ...], object]]:
@@ -373,8 +381,6 @@ def test_client_verbs_against_odd_servers_and_timeouts(tmp_path: Path) -> None:
     """A redirect names where it sends callers; a server that never answers ends after --timeout;
     a --timeout that is not a positive number is exit 2 (NaN and -1 were ValueError tracebacks from
     the socket)."""
-    import http.server
-    import threading
     import time
 
     class Odd(http.server.BaseHTTPRequestHandler):
@@ -391,10 +397,7 @@ def test_client_verbs_against_odd_servers_and_timeouts(tmp_path: Path) -> None:
         def log_message(self, *args: object) -> None:
             pass
 
-    other = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Odd)
-    threading.Thread(target=other.serve_forever, daemon=True).start()
-    url = f"http://127.0.0.1:{other.server_address[1]}"
-    try:
+    with another_server(Odd) as url:
         health = run("health", "--url", url)
         assert health.returncode == 1 and health.stdout.count("\n") == 1
         assert "sends callers to http://elsewhere.invalid/" in health.stdout, health.stdout
@@ -409,9 +412,6 @@ def test_client_verbs_against_odd_servers_and_timeouts(tmp_path: Path) -> None:
                 out = run(*verb, "--url", url, "--timeout", bad)
                 assert out.returncode == 2 and out.stderr.count("\n") == 1, out.stderr
                 assert "argument --timeout: " in out.stderr
-    finally:
-        other.shutdown()
-        other.server_close()
 
 
 def test_drift_refuses_a_bad_model_name_before_asking_and_a_reply_about_another_model(
@@ -419,9 +419,6 @@ def test_drift_refuses_a_bad_model_name_before_asking_and_a_reply_about_another_
 ) -> None:
     """`drift ../x` against a stopped service was exit 1 "cannot reach" (worth a retry) and against a
     running one "no such path"; a 200 reply about another model was printed as this one's drift."""
-    import http.server
-    import threading
-
     from textsieve.cli import main
 
     class Other(http.server.BaseHTTPRequestHandler):
@@ -440,16 +437,10 @@ def test_drift_refuses_a_bad_model_name_before_asking_and_a_reply_about_another_
         assert main(["drift", name, "--url", f"http://127.0.0.1:{free_port()}"]) == 2
         err = capsys.readouterr().err
         assert err.count("\n") == 1 and f"bad model name {name!r}" in err, err
-    other = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Other)
-    threading.Thread(target=other.serve_forever, daemon=True).start()
-    try:
-        url = f"http://127.0.0.1:{other.server_address[1]}"
+    with another_server(Other) as url:
         assert main(["drift", "support", "--url", url]) == 0
         assert "support: this replica serves no version" in capsys.readouterr().out
         assert main(["drift", "billing", "--url", url]) == 1
         captured = capsys.readouterr()
         assert captured.out == "" and captured.err.count("\n") == 1
         assert "answered with the drift of 'support', not of 'billing'" in captured.err
-    finally:
-        other.shutdown()
-        other.server_close()
