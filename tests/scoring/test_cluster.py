@@ -123,6 +123,11 @@ def test_a_worker_killed_mid_run_is_retried_and_the_output_is_complete(scoring_r
         pytest.param(["in.parquet", "--text-field", "body"], "the input has no column 'body'", id="wrong-field"),
         pytest.param(["ints.parquet"], "the text column 'text' holds int64 values", id="parquet-int-text"),
         pytest.param(["two.parquet"], "the schema names the column 'text' twice", id="parquet-column-named-twice"),
+        # As the local reader (test_formats.py): a \r alone ends no JSON Lines line (RFC 8259 §2 makes
+        # it whitespace), so the whole file read as one line that is not JSON.
+        pytest.param(
+            ["cr.jsonl"], "cr.jsonl: line 1 holds several JSON values separated by a lone \\r", id="cr-only-jsonl"
+        ),
         pytest.param(
             ["in.parquet", "--out", "/sys/ds"],
             "--out /sys/ds: cannot make a folder in /sys (Operation not permitted)",
@@ -142,6 +147,7 @@ def test_cluster_bad_input_is_one_line_exit_2(
         pa.Table.from_arrays([pa.array(["a"]), pa.array(["b"])], names=["text", "text"]), tmp_path / "two.parquet"
     )
     (tmp_path / "in.csv").write_text("text\nhello\n", encoding="utf-8")
+    (tmp_path / "cr.jsonl").write_bytes(b'{"text": "a"}\r{"text": "b"}\r')
     out = subprocess.run(
         [sys.executable, "-m", "textsieve.cli", "score", "--out", "ds", *argv, "--model", MODEL,
          "--registry", str(scoring_registry), "--cluster", "tcp://127.0.0.1:9"],

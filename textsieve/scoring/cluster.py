@@ -162,8 +162,10 @@ def read_partition(part: Partition) -> list[Any]:
         if part.start > 0:
             f.seek(part.start - 1)
             f.readline()  # the line that started before this range belongs to the previous partition
+        number = 0  # lines of a partition that starts the file are numbered as the file's
         while f.tell() < part.end:
             raw = f.readline()
+            number += 1
             if not raw:
                 break
             if not raw.strip():
@@ -171,6 +173,9 @@ def read_partition(part: Partition) -> list[Any]:
             try:
                 row = formats.json_loads(raw)
             except ValueError:
+                if formats.cr_separated(raw):  # as the local reader: a file whose lines end in \r alone
+                    where = f"line {number}" if part.start == 0 else f"a line of partition {part.index}"
+                    raise formats.cr_line_ends(f"{part.url}: {where}") from None
                 rows.append(Unreadable(f"a line of partition {part.index} is not valid JSON"))
                 continue
             if formats.lone_surrogate(row, raw):

@@ -151,11 +151,8 @@ class JsonlReader(_ByteCounted):
                             row = json.loads(raw)
                     if isinstance(row, Unreadable) and not _is_utf8(raw):
                         row = Unreadable(f"line {number} is not UTF-8 (JSON Lines text is UTF-8, RFC 8259 §8.1)")
-                    elif isinstance(row, Unreadable) and _cr_separated(raw):
-                        raise InputError(
-                            f"{self.path}: line {number} holds several JSON values separated by a lone \\r (old Mac "
-                            "line ends); JSON Lines ends each line with \\n or \\r\\n: convert the line ends"
-                        ) from None
+                    elif isinstance(row, Unreadable) and cr_separated(raw):
+                        raise cr_line_ends(f"{self.path}: line {number}") from None
                 if escapes and lone_surrogate(row, raw):
                     row = Unreadable(f"line {number} {LONE_SURROGATE}")
                 chunk.append(row)
@@ -379,7 +376,15 @@ _LONG_RUN = b"0" * 19
 _BLOCK = 1 << 20
 
 
-def _cr_separated(raw: bytes) -> bool:
+def cr_line_ends(where: str) -> InputError:
+    """The refusal of a JSONL file whose lines end in a lone \\r, at ``where`` ("FILE: line N")."""
+    return InputError(
+        f"{where} holds several JSON values separated by a lone \\r (old Mac line ends); JSON Lines ends "
+        "each line with \\n or \\r\\n: convert the line ends"
+    )
+
+
+def cr_separated(raw: bytes) -> bool:
     """Whether a line that is not JSON is JSON values with a lone \\r between them: a raw \\r can only
     be whitespace in JSON (RFC 8259 §2, §7), so such a line is a file whose lines end in \\r alone."""
     pieces = [p for p in raw.split(b"\r") if p.strip()]
@@ -722,6 +727,8 @@ __all__ = [
     "check_unique",
     "check_text_column",
     "committed_crc32",
+    "cr_line_ends",
+    "cr_separated",
     "detect",
     "merge_parts",
     "open_reader",
