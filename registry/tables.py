@@ -13,8 +13,9 @@ here once:
 - **Widths** are terminal columns, not code points: East Asian Wide and Fullwidth characters take two,
   combining marks and zero-width format characters none (Unicode UAX #11), so CJK text stays aligned.
 - **Wrapping.** A table wider than the terminal wraps the columns its verb names as free text, at spaces
-  or after a comma, semicolon, slash or bar where it can, within words where it must; numbers, states
-  and times are never split. Nothing is cut: the whole text stays in the table.
+  or after a comma, semicolon, slash or bar where it can, within words where it must; numbers and
+  states are never split, and times only at their space (date over time) when the free text alone
+  cannot make the table fit. Nothing is cut: the whole text stays in the table.
 - **Where the width comes from.** ``COLUMNS`` when set (``shutil.get_terminal_size`` honours it), else
   the terminal's own width when the output is a terminal. Output that is not a terminal (a pipe, a
   file) with no ``COLUMNS`` is not wrapped: each row stays one line holding its whole text, so
@@ -24,6 +25,7 @@ here once:
 from __future__ import annotations
 
 import os
+import re
 import shutil
 import sys
 import unicodedata
@@ -176,16 +178,25 @@ def table(
 
     ``wrap_columns`` lists the free-text columns: when the table is wider than ``width`` (the terminal's,
     see :func:`terminal_width`; None: no limit), they are narrowed, the widest first, and their cells
-    wrapped onto more lines of the same row."""
+    wrapped onto more lines of the same row. When that is not enough, columns of times
+    (``2026-12-05 01:32:30Z``) fold at their space, the date over the time, and the free text is
+    fitted again to the room that leaves."""
     raw = [[str(h) for h in headers]] + [[NONE if c is None else str(c) for c in row] for row in rows]
     natural = [max(columns(one_line(row[i])) for row in raw) for i in range(len(headers))]
     limit = terminal_width() if width == "terminal" else width
-    widths = _fit(natural, [columns(one_line(h)) for h in raw[0]], wrap_columns, limit)
+    header_widths = [columns(one_line(h)) for h in raw[0]]
+    widths = _fit(natural, header_widths, wrap_columns, limit, floors=(MIN_WRAPPED,))
+    folding = _time_columns(raw[1:]) if limit is not None and _total(widths) > limit else []
+    narrowed = list(natural)
+    for i in folding:
+        narrowed[i] = max(header_widths[i], *(columns(p) for row in raw[1:] for p in row[i].split(" ")))
+    if limit is not None and _total(widths) > limit:
+        widths = _fit(narrowed, header_widths, wrap_columns, limit)
+    wrapped = set(wrap_columns) | set(folding)
     lines = []
     for row in raw:
         cells = [
-            wrap(c, widths[i]) if i in wrap_columns and widths[i] < natural[i] else [one_line(c)]
-            for i, c in enumerate(row)
+            wrap(c, widths[i]) if i in wrapped and widths[i] < natural[i] else [one_line(c)] for i, c in enumerate(row)
         ]
         for k in range(max(len(c) for c in cells)):
             parts = []
@@ -197,16 +208,41 @@ def table(
     return "\n".join(lines)
 
 
-def _fit(natural: list[int], headers: list[int], wrap_columns: Sequence[int], limit: int | None) -> list[int]:
+_TIME = re.compile(r"\d{4}-\d\d-\d\d \d\d:\d\d(:\d\d)?Z")
+
+
+def _time_columns(rows: list[list[str]]) -> list[int]:
+    """The columns whose every cell is a time as the CLI shows it (or NONE), with at least one time."""
+    if not rows:
+        return []
+    return [
+        i
+        for i in range(len(rows[0]))
+        if all(row[i] == NONE or _TIME.fullmatch(row[i]) for row in rows) and any(row[i] != NONE for row in rows)
+    ]
+
+
+def _total(widths: list[int]) -> int:
+    return sum(widths) + 2 * (len(widths) - 1)
+
+
+def _fit(
+    natural: list[int],
+    headers: list[int],
+    wrap_columns: Sequence[int],
+    limit: int | None,
+    *,
+    floors: Sequence[int] = (MIN_WRAPPED, MIN_NARROW),
+) -> list[int]:
     """Column widths within ``limit``: the wrapped columns share what the others leave, each keeping its
     natural width when that is under an equal share (the rest is shared again among the wider ones), and
     none narrower than its header and :data:`MIN_WRAPPED`, or :data:`MIN_NARROW` when that is too wide."""
-    total = sum(natural) + 2 * (len(natural) - 1)
+    total = _total(natural)
     if limit is None or total <= limit or not wrap_columns:
         return natural
     free = sorted(set(wrap_columns), key=lambda i: natural[i])
     budget = limit - (total - sum(natural[i] for i in free))
-    for floor in (MIN_WRAPPED, MIN_NARROW):
+    for floor in floors:
         widths, left = list(natural), budget
         for n, i in enumerate(free):
             share = left // (len(free) - n)

@@ -101,6 +101,22 @@ def test_only_the_free_text_columns_are_wrapped() -> None:
     assert all(cell_len(line) <= 40 for line in text.splitlines())
 
 
+def test_times_fold_date_over_time_only_when_the_free_text_cannot_fit() -> None:
+    """`versions` at 80 columns was wider than the terminal by its two 20-column times alone. When the
+    free text cannot fit at its usual narrowest, a time column folds at its space (the date over the
+    time, neither ever split: common practice for narrow tables) and the free text gets the room."""
+    stamp, labels = "2026-12-05 01:31:21Z", "account,billing,praise,repair"
+    headers, row = ["V", "LABELS", "PUBLISHED", "LIVE SINCE"], [[1, labels, stamp, None]]
+    roomy = table(headers, row, wrap_columns=(1,), width=60)
+    assert stamp in roomy  # the labels fit at 12 columns or more: the time stays whole
+    narrow = table(headers, row, wrap_columns=(1,), width=40).splitlines()
+    assert all(cell_len(line) <= 40 for line in narrow)
+    cells = [line[_starts(narrow[0], ["PUBLISHED"])[0] :].split()[0] for line in narrow[1:3]]
+    assert cells == ["2026-12-05", "01:31:21Z"]
+    assert "".join(_cut(line, 3, _starts(narrow[0], ["PUBLISHED"])[0]) for line in narrow[1:]) == labels
+    assert table(headers, row, wrap_columns=(1,), width=None).count("\n") == 1  # no width: one line a row
+
+
 @pytest.mark.parametrize(
     ("text", "expected"),
     [
