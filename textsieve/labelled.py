@@ -131,7 +131,7 @@ class _Fields:
             raise problem
         text = record[self.text_field]
         if not isinstance(text, str):
-            raise self._fail(where, f"the {self.text_field!r} field is {_kind(text)}; it must be a string")
+            raise self._fail(where, f"the {self.text_field!r} field is {json_kind(text)}; it must be a string")
         if not text.strip():
             raise self._fail(where, f"the {self.text_field!r} field is empty; every row needs some text")
         if _lone_surrogate(text):
@@ -141,7 +141,7 @@ class _Fields:
             label = json.dumps(label)  # 1 → "1", true → "true": the label as written
         elif not isinstance(label, str):
             raise self._fail(
-                where, f"the {self.label_field!r} field is {_kind(label)}; labels must be strings or integers"
+                where, f"the {self.label_field!r} field is {json_kind(label)}; labels must be strings or integers"
             )
         if not label.strip():
             raise self._fail(where, f"the {self.label_field!r} field is empty; every row needs a label")
@@ -186,18 +186,21 @@ def label_problem(label: str) -> str | None:
     return None
 
 
-def _kind(value: object) -> str:
+def json_kind(value: object) -> str:
+    """What a value read from JSON (or a Parquet cell) is, in JSON's own words (RFC 8259 §3)."""
     if value is None:
         return "null"
     if isinstance(value, bool):
         return "a boolean"
     if isinstance(value, int | float):
         return "a number"
-    if isinstance(value, list):
+    if isinstance(value, list | tuple):
         return "an array"
     if isinstance(value, dict):
         return "an object"
-    return "a string"
+    if isinstance(value, str):
+        return "a string"
+    return f"a value of type {type(value).__name__}"  # a Parquet cell: bytes, a date, a decimal
 
 
 def _jsonl_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example]:
@@ -214,7 +217,7 @@ def _jsonl_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example]:
             ) from None
         if not isinstance(record, dict):
             raise InputError(
-                f"{path}: line {number}: is {_kind(record)}; "
+                f"{path}: line {number}: is {json_kind(record)}; "
                 f"each line must be one JSON object with {fields.text_field!r} "
                 f"and {fields.label_field!r} fields"
             )
@@ -231,7 +234,7 @@ def _json_array_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example
         ) from None
     for number, record in enumerate(records, start=1):
         if not isinstance(record, dict):
-            raise InputError(f"{path}: item {number}: is {_kind(record)}; each array item must be a JSON object")
+            raise InputError(f"{path}: item {number}: is {json_kind(record)}; each array item must be a JSON object")
         yield fields.example(f"item {number}", record)
 
 
@@ -276,6 +279,7 @@ __all__ = [
     "CSV_SUFFIXES",
     "JSON_SUFFIXES",
     "MAX_LABEL_CHARS",
+    "json_kind",
     "Example",
     "check_labels",
     "label_problem",

@@ -149,7 +149,11 @@ BAD_ROWS = [
     ),
     ({"other": "x"}, "text field 'text' is missing"),
     ({"text": None}, "text field 'text' is missing"),
-    ({"text": 42}, "text field 'text' is an int, not a string"),
+    # JSON's own names for its values (RFC 8259 §3); it said "an int", Python's word.
+    ({"text": 42}, "text field 'text' is a number, not a string"),
+    ({"text": ["a"]}, "text field 'text' is an array, not a string"),
+    ({"text": {"a": 1}}, "text field 'text' is an object, not a string"),
+    ({"text": True}, "text field 'text' is a boolean, not a string"),
     ({"text": "refund please"}, None),
 ]
 
@@ -168,7 +172,7 @@ def test_rows_without_a_text_get_an_error_and_are_counted(
     expected.insert(3, "line 4 is not valid JSON")
     assert [r["error"] for r in rows] == expected
     assert [r["label"] is None for r in rows] == [e is not None for e in expected]
-    assert "7 row(s) had no text to score" in capsys.readouterr().out
+    assert f"{sum(e is not None for e in expected)} row(s) had no text to score" in capsys.readouterr().out
 
     assert score(src, "--model", MODEL, "--out", out, "--registry", scoring_registry, "--strict") == 2
     err = capsys.readouterr().err.strip().splitlines()

@@ -9,6 +9,7 @@ from itertools import chain
 from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError
+from textsieve.labelled import json_kind
 from textsieve.registry.tokenizer import nothing_to_classify
 from textsieve.scoring.columns import Layout
 
@@ -81,7 +82,7 @@ def text_problem(row: Any, field: str) -> str | None:
         return f"text field {field!r} is missing"
     value = row[field]
     if not isinstance(value, str):
-        return f"text field {field!r} is {article(type(value).__name__)}, not a string"
+        return f"text field {field!r} is {json_kind(value)}, not a string"
     why = nothing_to_classify(value)
     if why is not None:
         return f"text field {field!r} {why}"
