@@ -111,10 +111,14 @@ def _outputs(draw: st.DrawFn, p: Predictor, encoded: list[Encoded]) -> tuple[Out
     last = np.maximum(lengths[:, None] - widths[None, :], 0)
     reach = draw(st.sampled_from([1, 2, 3, 1000]))
     positions = (rng.random((n, len(widths))) * np.minimum(last + 1, reach)).astype(np.int64)
+    # A row without tokens is all padding: its positions mean nothing and may be anything.
+    positions[lengths == 0] = rng.integers(0, 1 << 40, size=(int((lengths == 0).sum()), len(widths)))
     # float32 shares of like size add up exactly in float64 whatever the order; shares 10⁻⁹ and
     # 10⁴ apart do not, so a sum taken in another order than Predictor.spans's would show.
     scales = np.array([1e-9, 1e-4, 1.0, 1e4])
-    pool = [-1.0, 0.0, 0.125, 0.5, 3.0, 1 / 3, *(rng.random(6) * rng.choice(scales, 6)).tolist()]
+    # −0.0 and NaN are not shares that fired (Predictor.spans keeps share > 0 alone); the dense
+    # path adds every filter with those as zeros, which must leave each total as it was.
+    pool = [-1.0, 0.0, -0.0, np.nan, 0.125, 0.5, 3.0, 1 / 3, *(rng.random(6) * rng.choice(scales, 6)).tolist()]
     values = np.array(draw(st.lists(st.sampled_from(pool), min_size=1, max_size=5)))
     contributions = rng.choice(values, size=(n, len(widths), classes)).astype(np.float32)
     logits = rng.normal(size=(n, classes)).astype(np.float32)
