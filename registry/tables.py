@@ -185,13 +185,14 @@ def table(
     natural = [max(columns(one_line(row[i])) for row in raw) for i in range(len(headers))]
     limit = terminal_width() if width == "terminal" else width
     header_widths = [columns(one_line(h)) for h in raw[0]]
-    widths = _fit(natural, header_widths, wrap_columns, limit, floors=(MIN_WRAPPED,))
+    words = {i: max(_longest_word(row[i]) for row in raw[1:]) if len(raw) > 1 else 0 for i in wrap_columns}
+    widths = _fit(natural, header_widths, wrap_columns, limit, words=words, floors=(MIN_WRAPPED,))
     folding = _time_columns(raw[1:]) if limit is not None and _total(widths) > limit else []
     narrowed = list(natural)
     for i in folding:
         narrowed[i] = max(header_widths[i], *(columns(p) for row in raw[1:] for p in row[i].split(" ")))
     if limit is not None and _total(widths) > limit:
-        widths = _fit(narrowed, header_widths, wrap_columns, limit)
+        widths = _fit(narrowed, header_widths, wrap_columns, limit, words=words)
     wrapped = set(wrap_columns) | set(folding)
     lines = []
     for row in raw:
@@ -222,8 +223,21 @@ def _time_columns(rows: list[list[str]]) -> list[int]:
     ]
 
 
+_WORD_ENDS = re.compile(r" |(?<=[,;/|])")
+
+
+def _longest_word(text: str) -> int:
+    """The columns of the widest piece :func:`wrap` never splits when it has room: a word, or a list
+    item with its separator (``account,``)."""
+    return max(columns(w) for w in _WORD_ENDS.split(one_line(text)))
+
+
 def _total(widths: list[int]) -> int:
     return sum(widths) + 2 * (len(widths) - 1)
+
+
+# In _fit's floors: each wrapped column's longest word (at most MIN_WRAPPED, at least MIN_NARROW).
+WORDS = -1
 
 
 def _fit(
@@ -232,25 +246,34 @@ def _fit(
     wrap_columns: Sequence[int],
     limit: int | None,
     *,
-    floors: Sequence[int] = (MIN_WRAPPED, MIN_NARROW),
+    words: dict[int, int] | None = None,
+    floors: Sequence[int] = (MIN_WRAPPED, WORDS, MIN_NARROW),
 ) -> list[int]:
     """Column widths within ``limit``: the wrapped columns share what the others leave, each keeping its
     natural width when that is under an equal share (the rest is shared again among the wider ones), and
-    none narrower than its header and :data:`MIN_WRAPPED`, or :data:`MIN_NARROW` when that is too wide."""
+    none narrower than its header and a floor: :data:`MIN_WRAPPED`; else its longest word, so that no
+    word is split; else :data:`MIN_NARROW`. When no floor lets the table fit, its words are kept whole:
+    splitting them would not stop the line from overflowing."""
     total = _total(natural)
     if limit is None or total <= limit or not wrap_columns:
         return natural
     free = sorted(set(wrap_columns), key=lambda i: natural[i])
     budget = limit - (total - sum(natural[i] for i in free))
+    words = words or {}
+    kept_words: list[int] | None = None
+    widths = list(natural)
     for floor in floors:
         widths, left = list(natural), budget
         for n, i in enumerate(free):
             share = left // (len(free) - n)
-            widths[i] = min(natural[i], max(share, floor, headers[i]))
+            least = max(MIN_NARROW, min(words.get(i, MIN_WRAPPED), MIN_WRAPPED)) if floor == WORDS else floor
+            widths[i] = min(natural[i], max(share, least, headers[i]))
             left -= widths[i]
         if left >= 0:
-            break
-    return widths
+            return widths
+        if floor == WORDS:
+            kept_words = widths
+    return kept_words or widths
 
 
 def key_values(rows: Sequence[tuple[str, object]], *, width: Width = "terminal") -> str:

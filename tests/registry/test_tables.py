@@ -117,6 +117,26 @@ def test_times_fold_date_over_time_only_when_the_free_text_cannot_fit() -> None:
     assert table(headers, row, wrap_columns=(1,), width=None).count("\n") == 1  # no width: one line a row
 
 
+def test_a_list_keeps_its_words_whole_when_no_width_would_make_the_table_fit() -> None:
+    """`versions` at 80 columns showed its labels in a 6-column LABELS as "accoun" / "t," / "billin" /
+    "g,": the table overflowed the terminal anyway, so splitting words gained nothing. A wrapped column
+    now narrows to its longest word (here "account,") before it splits words, and splits them only
+    when that makes the table fit."""
+    labels = "account,billing,praise,repair"
+    fixed = ["registered", "2026-12-05 01:31:21Z", "0.9317", "0.9304", "passed"]
+    headers = ["STATE", "PUBLISHED", "ACCURACY", "MACRO-F1", "PARITY", "LABELS"]
+    # 10 + 10 (the time folded) + 8 + 8 + 6 + 8 + 5 gaps × 2 = 60 columns with whole words; 58 with
+    # 6-column labels; 64 with 12.
+    for width in (40, 50, 57, 60, 63):
+        lines = table(headers, [[*fixed, labels]], wrap_columns=(5,), width=width).splitlines()
+        at = _starts(lines[0], ["LABELS"])[0]
+        assert [line[at:].strip() for line in lines[1:]] == ["account,", "billing,", "praise,", "repair"], width
+    lines = table(headers, [[*fixed, labels]], wrap_columns=(5,), width=58).splitlines()
+    assert all(cell_len(line) <= 58 for line in lines)  # where splitting words makes it fit, it does
+    at = _starts(lines[0], ["LABELS"])[0]
+    assert "".join(line[at:].strip() for line in lines[1:]) == labels
+
+
 @pytest.mark.parametrize(
     ("text", "expected"),
     [
