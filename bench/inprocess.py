@@ -21,6 +21,12 @@ Variants, all from the same texts:
 - ``graph``: the ``sorted`` batches pre-built, timing ``session.run`` alone;
 - ``graph_fixed``: the ``fixed`` batches pre-built, timing ``session.run`` alone.
 
+- ``worker`` and ``worker_no_spans``: a service worker's own work on batches of ``WORKER_BATCH``
+  texts (what the server gathers from 16-text requests under load): ``workers._run`` (encode,
+  graph, probabilities, reply dicts with 3 spans or none, drift counts, each reply serialised)
+  and the reply pickled for the pipe. A server running this code cannot be faster than this
+  rate, whatever its HTTP stack costs: ``service_vs_runtime_ceiling`` in ``make bench``.
+
 ``graph`` against ``graph_fixed`` isolates what padding costs: tokenizing is the same work
 either way, so the end-to-end pair (``sorted`` against ``fixed``) shows a diluted effect.
 
@@ -44,6 +50,10 @@ from textsieve.registry.runtime import Encoded, Predictor
 
 BATCH = 64
 CHUNK = 512  # texts encoded and sorted together
+# Texts in a worker's batch under the bench's 16-text load (the server's textsieve_batch_texts
+# histogram: ~100 on average in the runs of 2026-12-02 and 2026-12-04).
+WORKER_BATCH = 96
+WORKER_SPANS = 3  # bench/run.py's SPANS
 
 
 def load(bundle: Path, sessions: int = 2) -> list[Predictor]:
@@ -110,6 +120,27 @@ def fixed_pipeline(p: Predictor, texts: list[str]) -> Callable[[], int]:
     return run
 
 
+def worker_pipeline(p: Predictor, texts: list[str], *, spans: int = WORKER_SPANS) -> Callable[[], int]:
+    """A service worker's batches (``workers._run`` and the reply's pickling), ``spans`` spans a text."""
+    from multiprocessing.reduction import ForkingPickler
+
+    from textsieve.registry.drift import Layout
+    from textsieve.service.inference.workers import Run, _run
+
+    layout = Layout.of(len(p.labels))
+    runs = [
+        Run(("bench", 1), texts[lo : lo + WORKER_BATCH], [spans] * len(texts[lo : lo + WORKER_BATCH]), None, True)
+        for lo in range(0, len(texts), WORKER_BATCH)
+    ]
+
+    def run() -> int:
+        for msg in runs:
+            ForkingPickler.dumps(_run(p, layout, msg))
+        return len(texts)
+
+    return run
+
+
 def graph_only(p: Predictor, texts: list[str], *, fixed: bool = False) -> Callable[[], int]:
     encoded: list[Encoded] = [p.encode(t) for t in texts]
     if fixed:
@@ -151,6 +182,8 @@ class InProcess:
             "fixed": fixed_pipeline,
             "graph": graph_only,
             "graph_fixed": lambda p, t: graph_only(p, t, fixed=True),
+            "worker": worker_pipeline,
+            "worker_no_spans": lambda p, t: worker_pipeline(p, t, spans=0),
         }
         if only_sorted:
             makers = {"sorted": sorted_pipeline}
@@ -292,4 +325,4 @@ class Processes:
         self.close()
 
 
-__all__ = ["BATCH", "InProcess", "Processes", "load"]
+__all__ = ["BATCH", "WORKER_BATCH", "InProcess", "Processes", "load"]

@@ -47,7 +47,17 @@ RESULTS = HERE / "results.json"
 SCORE_VS_RUNTIME = 0.8  # issue 14: textsieve score end to end against the in-process runtime
 AUTOGROUP = Path("/proc/self/autogroup")
 CHART = HERE / "throughput_latency.png"
-VARIANTS = ("sorted", "sorted_offsets", "fixed", "graph", "graph_fixed", "conv_graph", "conv_graph_fixed")
+VARIANTS = (
+    "sorted",
+    "sorted_offsets",
+    "fixed",
+    "graph",
+    "graph_fixed",
+    "conv_graph",
+    "conv_graph_fixed",
+    "worker",
+    "worker_no_spans",
+)
 CONNECTIONS = 32
 TEXTS_PER_REQUEST = 16
 SPANS = 3
@@ -347,6 +357,13 @@ def summarize(
         # The model's own limit is the graph alone; the runtime adds tokenizing, padding and results.
         "runtime_vs_graph": runtime / rt["graph"]["texts_per_s"],
         "service_vs_runtime": sv["batched"]["texts_per_s"] / runtime,
+        # What service_vs_runtime could be at most with this worker code: its batches (3 spans, reply
+        # dicts, drift counts, pickling) in one process per core, with HTTP, the event loop and the
+        # pipe costing nothing (bench/inprocess.py, ``worker``). Not a target: it shows how much of
+        # the gap any server stack could close.
+        "service_vs_runtime_ceiling": rt["worker"]["texts_per_s"] / runtime,
+        "service_vs_runtime_ceiling_no_spans": rt["worker_no_spans"]["texts_per_s"] / runtime,
+        "spans_overhead_in_worker": rt["worker_no_spans"]["texts_per_s"] / rt["worker"]["texts_per_s"],
         "single_text_vs_http_floor": sv["single"]["texts_per_s"] / floor["single"]["texts_per_s"],
         "single_text_vs_http_floor_per_cpu": (
             floor["single"]["server_cpu_s_per_1k_texts"] / sv["single"]["server_cpu_s_per_1k_texts"]
@@ -438,6 +455,20 @@ def table(rt: dict[str, Any], fl: dict[str, Any], sv: dict[str, Any], tw: dict[s
             rt["conv_graph_fixed"]["texts_per_s"],
             None,
             rt["conv_graph_fixed"]["cpu_s_per_1k_texts"],
+        ),
+        (
+            "service worker",
+            f"its batches of {inprocess.WORKER_BATCH}, spans {SPANS}, no HTTP",
+            rt["worker"]["texts_per_s"],
+            None,
+            rt["worker"]["cpu_s_per_1k_texts"],
+        ),
+        (
+            "service worker",
+            f"its batches of {inprocess.WORKER_BATCH}, spans 0, no HTTP",
+            rt["worker_no_spans"]["texts_per_s"],
+            None,
+            rt["worker_no_spans"]["cpu_s_per_1k_texts"],
         ),
     ]
     for who, res in (("service", sv), ("http_floor", floor), ("torch_wrapper", tw)):
@@ -740,6 +771,9 @@ def measure(args: argparse.Namespace, priority: dict[str, Any]) -> int:
         met = results["targets"][name]["met"]
         print(f"{name:<34}{figures[name]:>8.3f}   target {op} {bound:<6} {'met' if met else 'NOT met'} (issue {issue})")
     for name in (
+        "service_vs_runtime_ceiling",
+        "service_vs_runtime_ceiling_no_spans",
+        "spans_overhead_in_worker",
         "service_rss_sum_mb",
         "single_text_vs_http_floor_per_cpu",
         "service_vs_runtime_per_cpu",
