@@ -13,8 +13,9 @@ import numpy as np
 from textsieve.errors import InputError
 from textsieve.exporter.config import DEFAULT_EMBEDDING_DIM, TrainConfig
 from textsieve.exporter.encode import TokenIds, encode_texts, encode_tokens
+from textsieve.exporter.progress import say
 from textsieve.exporter.vectors import PretrainedVectors, load_vectors
-from textsieve.labelled import Example, check_labels, load_examples
+from textsieve.labelled import Example, case_twins, check_labels, load_examples
 from textsieve.registry.manifest import LengthInfo
 from textsieve.registry.tokenizer import Tokenizer, Vocabulary
 
@@ -40,6 +41,11 @@ class Prepared:
 
 def prepare(config: TrainConfig) -> Prepared:
     train_rows, valid_rows, labels = split_examples(config)
+    for twins in case_twins(labels):
+        say(
+            f"warning: the labels {' and '.join(map(repr, twins))} differ only in case or character width; "
+            "they train as separate classes: if they mean one class, write them alike"
+        )
     tokenizer = Tokenizer()
     train_tokens = [tokenizer.split(e.text)[0] for e in train_rows]
     vocabulary = build_vocabulary(train_tokens, config)

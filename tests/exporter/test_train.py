@@ -291,6 +291,8 @@ def _bad_files(folder: Path) -> None:
     write_jsonl(folder / "unseen.jsonl", [{"text": "a", "label": "billing"}, {"text": "b", "label": "shipping"}])
     write_jsonl(folder / "few.jsonl", [{"text": "a", "label": "x"}, {"text": "b", "label": "y"}])
     write_jsonl(folder / "once.jsonl", [{"text": f"the shed {i}", "label": f"shelf {i}"} for i in range(40)])
+    forms = ["caf\u00e9", "cafe\u0301", "repair"]  # one label in two Unicode forms (UAX #15 canonical equivalence)
+    write_jsonl(folder / "forms.jsonl", [{"text": f"the counter {i}", "label": forms[i % 3]} for i in range(30)])
     write_jsonl(folder / "fours.jsonl", [{"text": f"the pantry {i}", "label": "ab"[i % 2]} for i in range(8)])
     # Finite float32 values near its largest (3.4e38): the first sums overflow to inf, and inf - inf is nan.
     (folder / "huge16.txt").write_text(
@@ -317,6 +319,11 @@ OUT = ["--out", "{tmp}/out"]
         ),
         pytest.param(["{tmp}/onelabel.jsonl", *OUT], "1 distinct label ('x')", id="one label"),
         pytest.param(["{tmp}/latin1.jsonl", *OUT], "line 1: byte offset 13 is not valid UTF-8", id="not UTF-8"),
+        pytest.param(
+            ["{tmp}/forms.jsonl", *OUT],
+            "has labels that are the same text in different Unicode forms: 'cafe\u0301' (cafe<U+0301>, 10 rows)",
+            id="one label in two Unicode forms",
+        ),
         pytest.param(["{tmp}/emptytext.jsonl", *OUT], "line 2: the 'text' field is empty", id="empty text"),
         pytest.param(["{data}", "--valid", "{tmp}/unseen.jsonl", *OUT], "labels not in", id="unseen valid label"),
         pytest.param(
@@ -474,6 +481,16 @@ def test_load_run_errors_name_the_file(
     damage(run)
     with pytest.raises(InputError, match=expected_msg):
         load_run(run)
+
+
+def test_labels_differing_only_in_case_train_with_a_warning(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    labels = ["Billing", "billing", "repair"]
+    rows = [{"text": f"the dock {i} word{i % 7}", "label": labels[i % 3]} for i in range(60)]
+    data = write_jsonl(tmp_path / "case.jsonl", rows)
+    assert main(["train", str(data), "--out", str(tmp_path / "run"), *TINY_FLAGS, "--epochs", "1"]) == 0
+    err = capsys.readouterr().err
+    assert "warning: the labels 'Billing' and 'billing' differ only in case" in err
+    assert read_run_info(tmp_path / "run").labels == ["Billing", "billing", "repair"], "labels stay as written"
 
 
 def test_train_function_returns_the_folder(keyword_data: Path, tmp_path: Path) -> None:
