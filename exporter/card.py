@@ -3,7 +3,7 @@ Model Reporting", FAT*)."""
 
 from __future__ import annotations
 
-from textsieve.registry.manifest import Manifest
+from textsieve.registry.manifest import LengthInfo, Manifest
 
 CAUTIONS = """\
 ## Cautions
@@ -19,6 +19,24 @@ CAUTIONS = """\
 """
 
 
+def ordinal(p: float) -> str:
+    """99 → '99th', 1 → '1st', 22 → '22nd', 99.5 → '99.5th'."""
+    n = int(p) if float(p).is_integer() else p
+    if isinstance(n, float):
+        return f"{n}th"
+    suffix = "th" if 10 <= n % 100 <= 20 else {1: "st", 2: "nd", 3: "rd"}.get(n % 10, "th")
+    return f"{n}{suffix}"
+
+
+def truncation_rule(lengths: LengthInfo) -> str:
+    """Where max_length came from. It is the percentile of training lengths unless that is shorter
+    than the widest filter, which a text must fill (prepare.length_info): then it is the widest filter."""
+    percentile = f"the {ordinal(lengths.percentile)} percentile of training lengths"
+    if lengths.max_length == lengths.min_length:
+        return f"the widest filter, as {percentile} is no longer"
+    return percentile
+
+
 def render_card(m: Manifest, *, model_name: str = "(set on publish)") -> str:
     a = m.architecture
     c = m.calibration
@@ -27,6 +45,7 @@ def render_card(m: Manifest, *, model_name: str = "(set on publish)") -> str:
         if a.vectors
         else "embeddings learned from scratch"
     )
+    max_norm = "no max-norm constraint" if a.max_norm is None else f"max-norm {a.max_norm:g}"
     lines = [
         f"# Model card: {model_name}",
         "",
@@ -40,9 +59,9 @@ def render_card(m: Manifest, *, model_name: str = "(set on publish)") -> str:
         "",
         f"A convolutional sentence classifier (Kim, 2014): {a.embedding_dim}-dimensional {vectors}; filter",
         f"widths {', '.join(map(str, a.widths))} with {a.maps} feature maps each, ReLU, max-over-time pooling,",
-        f"dropout {a.dropout}, max-norm {a.max_norm}. Vocabulary {m.vocabulary.size} tokens;",
-        f"texts are truncated to {m.lengths.max_length} tokens (the {m.lengths.percentile:g}th percentile of",
-        f"training lengths; {m.lengths.truncation_rate:.2%} of training texts were longer).",
+        f"dropout {a.dropout}, {max_norm}. Vocabulary {m.vocabulary.size} tokens;",
+        f"texts are truncated to {m.lengths.max_length} tokens ({truncation_rule(m.lengths)};",
+        f"{m.lengths.truncation_rate:.2%} of training texts were longer).",
         "",
         "## Data",
         "",

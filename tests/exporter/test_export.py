@@ -14,10 +14,11 @@ import torch
 
 from textsieve.cli import main
 from textsieve.errors import ParityError
+from textsieve.exporter.card import ordinal, render_card
 from textsieve.exporter.export import export
 from textsieve.exporter.run_folder import MODEL_PT, VALID_JSONL, load_run
 from textsieve.registry.bundle import open_bundle
-from textsieve.registry.manifest import CARD_FILE, MANIFEST, MODEL_FILE, VOCAB_FILE
+from textsieve.registry.manifest import CARD_FILE, MANIFEST, MODEL_FILE, VOCAB_FILE, LengthInfo
 from textsieve.registry.measures import nll
 from textsieve.registry.runtime import Predictor
 
@@ -53,6 +54,59 @@ def test_bundle_files_and_manifest(tiny_bundles: dict[str, Path]) -> None:
     assert m.calibration.nll_after <= m.calibration.nll_before + 1e-12
     card = (tiny_bundles["a"] / CARD_FILE).read_text(encoding="utf-8")
     assert "aids for human review" in card and "bias" in card and "Monitor" in card
+
+
+def test_card_states_the_manifests_figures(tiny_bundles: dict[str, Path]) -> None:
+    m = open_bundle(tiny_bundles["a"]).manifest
+    card = (tiny_bundles["a"] / CARD_FILE).read_text(encoding="utf-8")
+    lengths = m.lengths
+    assert lengths.max_length > lengths.min_length, "the tiny model's 99th percentile is above its widest filter"
+    assert (
+        f"texts are truncated to {lengths.max_length} tokens (the 99th percentile of training lengths;\n"
+        f"{lengths.truncation_rate:.2%} of training texts were longer)"
+    ) in card
+    assert f"max-norm {m.architecture.max_norm:g}." in card
+    assert f"| {m.metrics.split} | {m.metrics.texts} | {m.metrics.accuracy:.4f} | {m.metrics.macro_f1:.4f} |" in card
+    assert f"T = {m.calibration.temperature:.4f}" in card
+
+
+def test_card_says_when_max_length_is_the_widest_filter(tiny_bundles: dict[str, Path]) -> None:
+    # prepare.length_info raises max_length to the widest filter when the percentile is shorter: the card
+    # said "the 1th percentile of training lengths" for a length no percentile gave.
+    m = open_bundle(tiny_bundles["a"]).manifest
+    widest = max(m.architecture.widths)
+    raised = m.model_copy(
+        update={
+            "lengths": LengthInfo(max_length=widest, min_length=widest, percentile=1.0, truncation_rate=0.93),
+            "architecture": m.architecture.model_copy(update={"max_norm": None}),
+        }
+    )
+    card = render_card(raised)
+    assert (
+        f"truncated to {widest} tokens (the widest filter, as the 1st percentile of training lengths is no longer;"
+    ) in card
+    assert "no max-norm constraint" in card and "None" not in card
+
+
+@pytest.mark.parametrize(
+    ("percentile", "words"),
+    [
+        (1, "1st"),
+        (2, "2nd"),
+        (3, "3rd"),
+        (4, "4th"),
+        (11, "11th"),
+        (12, "12th"),
+        (13, "13th"),
+        (21, "21st"),
+        (22, "22nd"),
+        (99, "99th"),
+        (99.5, "99.5th"),
+        (100, "100th"),
+    ],
+)  # English ordinal suffixes (common practice)
+def test_ordinal(percentile: float, words: str) -> None:
+    assert ordinal(percentile) == words
 
 
 def test_onnx_matches_pytorch_on_mixed_lengths(

@@ -203,7 +203,7 @@ def test_pretrained_vectors(mode: str, keyword_data: Path, tmp_path: Path) -> No
     np.testing.assert_array_equal(record.trained, weight.numpy())
 
 
-def test_length_statistics_by_hand(tmp_path: Path) -> None:
+def test_length_statistics_by_hand(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     # Texts of 1..100 tokens. numpy's default percentile (Hyndman & Fan, 1996, definition 7)
     # of 1..100 at 90 % is 1 + 0.9 * 99 = 90.1, so max_length = ceil(90.1) = 91 and the 9 texts
     # of 92..100 tokens (9 %) are truncated.
@@ -231,6 +231,8 @@ def test_length_statistics_by_hand(tmp_path: Path) -> None:
     )
     lengths = read_run_info(out).lengths
     assert lengths == LengthInfo(max_length=91, min_length=5, percentile=90.0, truncation_rate=0.09)
+    said = capsys.readouterr().out
+    assert "max_length   91 tokens (the 90th percentile of training lengths); truncates 9.0% of" in said
 
     # A low percentile cannot go below the widest filter.
     out2 = tmp_path / "run2"
@@ -257,6 +259,9 @@ def test_length_statistics_by_hand(tmp_path: Path) -> None:
     lengths = read_run_info(out2).lengths
     assert (lengths.max_length, lengths.min_length) == (7, 7)
     assert lengths.truncation_rate == pytest.approx(93 / 100)
+    # The 1st percentile (1.99 tokens) is not what max_length is, and the summary does not say it is.
+    said = capsys.readouterr().out
+    assert "max_length   7 tokens (the widest filter, as the 1st percentile of training lengths is no longer)" in said
 
 
 def test_a_previous_run_is_replaced(keyword_data: Path, tmp_path: Path) -> None:
