@@ -298,6 +298,7 @@ def _bad_files(folder: Path) -> None:
     write_jsonl(folder / "once.jsonl", [{"text": f"the shed {i}", "label": f"shelf {i}"} for i in range(40)])
     forms = ["caf\u00e9", "cafe\u0301", "repair"]  # one label in two Unicode forms (UAX #15 canonical equivalence)
     write_jsonl(folder / "forms.jsonl", [{"text": f"the counter {i}", "label": forms[i % 3]} for i in range(30)])
+    write_jsonl(folder / "samefive.jsonl", [{"text": "the same line", "label": "ab"[i % 2]} for i in range(40)])
     write_jsonl(folder / "fours.jsonl", [{"text": f"the pantry {i}", "label": "ab"[i % 2]} for i in range(8)])
     # Finite float32 values near its largest (3.4e38): the first sums overflow to inf, and inf - inf is nan.
     (folder / "huge16.txt").write_text(
@@ -340,6 +341,12 @@ OUT = ["--out", "{tmp}/out"]
         # VALID_SHARE 10 % of a label's rows, rounded half up: 0.4 of 4 rows rounds to none, 0.5 of 5 to one.
         pytest.param(
             ["{tmp}/once.jsonl", *OUT], "(40 labels, at most 1 row each); a label needs at least 5", id="labels once"
+        ),
+        pytest.param(
+            ["{tmp}/samefive.jsonl", *OUT],
+            "every label has too few distinct texts to hold out a 10% validation split (2 labels, at most 20 rows "
+            "but 1 distinct text each; copies of a text stay on one side of the split)",
+            id="one text many times",
         ),
         pytest.param(
             ["{tmp}/fours.jsonl", *OUT],
@@ -486,6 +493,52 @@ def test_load_run_errors_name_the_file(
     damage(run)
     with pytest.raises(InputError, match=expected_msg):
         load_run(run)
+
+
+def _model_inputs(rows: list[dict[str, str]]) -> set[tuple[str, ...]]:
+    from textsieve.registry.tokenizer import Tokenizer
+
+    return {tuple(Tokenizer().split(r["text"])[0]) for r in rows}
+
+
+def test_copies_of_a_text_stay_on_one_side_of_the_held_out_split(
+    keyword_data: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # 30 texts, each 8 times (half of the copies re-cased and re-spaced: the same tokens): a row-wise split
+    # held out copies of training rows, so validation loss, early stopping and the export's calibration
+    # measured memory (data leakage; common practice to split such data by group).
+    base = [json.loads(line) for line in keyword_data.read_text(encoding="utf-8").splitlines()[:30]]
+    rows = [dict(r, text=r["text"].upper().replace(" ", "  ") if k % 2 else r["text"]) for k in range(8) for r in base]
+    data = write_jsonl(tmp_path / "copies.jsonl", rows)
+    out = tmp_path / "run"
+    assert main(["train", str(data), "--out", str(out), *TINY_FLAGS, "--epochs", "1"]) == 0
+    assert "note: 210 rows repeat the tokens of an earlier row" in capsys.readouterr().err
+    valid = [json.loads(line) for line in (out / VALID_JSONL).read_text(encoding="utf-8").splitlines()]
+    held = _model_inputs(valid)
+    assert valid and len(held) < len(valid), "copies held out together"
+    copies_of_held = [r for r in rows if _model_inputs([r]) <= held]
+    assert len(copies_of_held) == len(valid), "every copy of a held-out text is in validation, none in training"
+    info = read_run_info(out)
+    assert info.training.rows + info.training.valid_rows == len(rows)
+    assert sorted({r["label"] for r in valid}) == info.labels, "still stratified: each label in validation"
+
+
+def test_a_split_without_copies_is_the_plain_stratified_one(keyword_data: Path, keyword_run: Path) -> None:
+    # Each held-out label keeps its rounded 10 % (VALID_SHARE) when every text is distinct.
+    rows = [json.loads(line) for line in keyword_data.read_text(encoding="utf-8").splitlines()]
+    assert len(_model_inputs(rows)) == len(rows)
+    valid = [json.loads(line) for line in (keyword_run / VALID_JSONL).read_text(encoding="utf-8").splitlines()]
+    assert sorted(r["label"] for r in valid) == ["billing"] * 12 + ["repair"] * 12
+
+
+def test_validation_rows_that_are_training_rows_are_named(
+    keyword_data: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    rows = [json.loads(line) for line in keyword_data.read_text(encoding="utf-8").splitlines()]
+    valid = write_jsonl(tmp_path / "valid.jsonl", rows[:5] + [{"text": "a brand new line", "label": "billing"}])
+    out = tmp_path / "run"
+    assert main(["train", str(keyword_data), "--valid", str(valid), "--out", str(out), *TINY_FLAGS]) == 0
+    assert f"warning: 5 of 6 rows of {valid} (83.3%) have the tokens of a training row" in capsys.readouterr().err
 
 
 def test_labels_differing_only_in_case_train_with_a_warning(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
