@@ -16,7 +16,7 @@ from textsieve.cli import main
 from textsieve.errors import ParityError
 from textsieve.exporter.card import ordinal, render_card
 from textsieve.exporter.export import export
-from textsieve.exporter.run_folder import MODEL_PT, VALID_JSONL, load_run
+from textsieve.exporter.run_folder import MODEL_PT, RUN_JSON, VALID_JSONL, VOCAB_TXT, load_run
 from textsieve.registry.bundle import open_bundle
 from textsieve.registry.manifest import CARD_FILE, MANIFEST, MODEL_FILE, VOCAB_FILE, LengthInfo
 from textsieve.registry.measures import nll
@@ -220,13 +220,28 @@ def test_export_bad_run_folder_exits_2(tmp_path: Path, capsys: pytest.CaptureFix
     assert len(err) == 1 and err[0].startswith("textsieve: error:")
 
 
+def _without_digests(run: Path) -> None:
+    """A run folder written before run.json recorded its files' sha256 (they load unchecked)."""
+    info = json.loads((run / RUN_JSON).read_text(encoding="utf-8"))
+    del info["files"]
+    (run / RUN_JSON).write_text(json.dumps(info), encoding="utf-8")
+
+
+def _swap_vocabulary_lines(run: Path) -> None:
+    lines = (run / VOCAB_TXT).read_text(encoding="utf-8").split("\n")
+    lines[2], lines[3] = lines[3], lines[2]
+    (run / VOCAB_TXT).write_text("\n".join(lines), encoding="utf-8")
+
+
 def _nan_weights(run: Path) -> None:
+    _without_digests(run)
     state = torch.load(run / MODEL_PT, weights_only=True)
     state["output.bias"][0] = float("nan")
     torch.save(state, run / MODEL_PT)
 
 
 def _unknown_valid_label(run: Path) -> None:
+    _without_digests(run)
     with open(run / VALID_JSONL, "a", encoding="utf-8") as f:  # a blank line 25, then the row on line 26
         f.write('\n{"text": "the kettle is on", "label": "kitchen"}\n')
 
@@ -247,6 +262,14 @@ def _unknown_valid_label(run: Path) -> None:
             "{tmp}/bundle",
             "run/valid.jsonl: line 26: the label 'kitchen' is not one the model knows (billing, repair)",
             id="validation label unknown to the model",
+        ),
+        # Two tokens' ids swapped: the graph and the PyTorch reference read the same wrong vocabulary, so
+        # parity passed and the bundle scored every text with the two words exchanged.
+        pytest.param(
+            _swap_vocabulary_lines,
+            "{tmp}/bundle",
+            "run/vocab.txt: changed since training (sha256 ",
+            id="vocabulary edited after training",
         ),
         pytest.param(None, "{tmp}/afile", "--out {tmp}/afile: is an existing file", id="out is a file"),
         pytest.param(

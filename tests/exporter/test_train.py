@@ -54,7 +54,17 @@ def test_run_folder_follows_the_contract(keyword_run: Path, keyword_data: Path) 
     assert [p.name for p in keyword_run.parent.iterdir()] == ["run"], "no temp folders left behind"
     text = (keyword_run / RUN_JSON).read_text(encoding="utf-8")
     on_disk = json.loads(text)
-    assert set(on_disk) == {"labels", "tokenizer", "vocabulary", "lengths", "architecture", "training", "tool_version"}
+    assert set(on_disk) == {
+        "labels",
+        "tokenizer",
+        "vocabulary",
+        "lengths",
+        "architecture",
+        "training",
+        "tool_version",
+        "files",
+    }
+    assert on_disk["files"] == {name: sha256_file(keyword_run / name) for name in (MODEL_PT, VOCAB_TXT, VALID_JSONL)}
     assert set(on_disk["vocabulary"]) == {"size", "min_count", "max_size"}
     epoch_keys = {"epoch", "train_loss", "valid_loss", "valid_accuracy"}
     assert on_disk["training"]["history"] and all(set(h) == epoch_keys for h in on_disk["training"]["history"])
@@ -441,6 +451,28 @@ def _edit_run_json(run: Path, change: Callable[[dict[str, Any]], object]) -> Non
     (run / RUN_JSON).write_text(json.dumps(content), encoding="utf-8")
 
 
+def _older_run(damage: Callable[[Path], object]) -> Callable[[Path], None]:
+    """``damage`` to a run folder written before run.json recorded its files' sha256: the checks behind
+    that one still name what is wrong."""
+
+    def apply(run: Path) -> None:
+        _edit_run_json(run, lambda c: c.pop("files"))
+        damage(run)
+
+    return apply
+
+
+def _swap_vocabulary_lines(run: Path) -> None:
+    lines = (run / VOCAB_TXT).read_text(encoding="utf-8").split("\n")
+    lines[2], lines[3] = lines[3], lines[2]
+    (run / VOCAB_TXT).write_text("\n".join(lines), encoding="utf-8")
+
+
+def _cut_valid(run: Path) -> None:
+    lines = (run / VALID_JSONL).read_text(encoding="utf-8").splitlines(keepends=True)
+    (run / VALID_JSONL).write_text("".join(lines[:5]), encoding="utf-8")
+
+
 def _nan_weights(run: Path, name: str) -> None:
     state = torch.load(run / MODEL_PT, weights_only=True)
     state[name].view(-1)[0] = float("nan")
@@ -464,7 +496,7 @@ def _nan_weights(run: Path, name: str) -> None:
             id="run.json with a bad width",
         ),
         pytest.param(
-            lambda run: (run / MODEL_PT).write_bytes(b"not a zip"),
+            _older_run(lambda run: (run / MODEL_PT).write_bytes(b"not a zip")),
             r"copied/model\.pt: not a readable weights file",
             id="weights not a zip",
         ),
@@ -474,14 +506,29 @@ def _nan_weights(run: Path, name: str) -> None:
             id="weights of another shape",
         ),
         pytest.param(
-            lambda run: _nan_weights(run, "output.bias"),
+            _older_run(lambda run: _nan_weights(run, "output.bias")),
             r"copied/model\.pt: the weights are not finite \(nan or inf in output\.bias\)",
             id="weights not finite",
         ),
         pytest.param(
-            lambda run: (run / VOCAB_TXT).write_text("<pad>\n<unk>\nonly\n", encoding="utf-8"),
+            _older_run(lambda run: (run / VOCAB_TXT).write_text("<pad>\n<unk>\nonly\n", encoding="utf-8")),
             r"copied/vocab\.txt: has 3 tokens but run\.json says",
             id="vocabulary of another size",
+        ),
+        # Edits the checks above cannot see: same sizes, same shapes, finite weights.
+        pytest.param(
+            _swap_vocabulary_lines,
+            r"copied/vocab\.txt: changed since training \(sha256 [0-9a-f]{12}…, run\.json records [0-9a-f]{12}…\)",
+            id="vocabulary lines swapped",
+        ),
+        pytest.param(_cut_valid, r"copied/valid\.jsonl: changed since training", id="validation rows cut short"),
+        pytest.param(
+            lambda run: _nan_weights(run, "output.bias"),
+            r"copied/model\.pt: changed since training",
+            id="weights edited",
+        ),
+        pytest.param(
+            lambda run: (run / VALID_JSONL).unlink(), r"copied/valid\.jsonl: missing", id="validation rows missing"
         ),
     ],
 )
