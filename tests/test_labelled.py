@@ -163,6 +163,14 @@ def _jsonl(*rows: object) -> str:
             ["line 1: the 'text' field is an array; it must be a string"],
             id="text an array",
         ),
+        # Old Mac line ends: the whole file is one line of JSON values with a raw \r between them (RFC 8259
+        # section 2: \r is whitespace between tokens), which json reported as "Extra data at column 30".
+        pytest.param(
+            "d.jsonl",
+            '{"text": "a", "label": "x"}\r{"text": "b", "label": "y"}\r',
+            ["line 1 holds several JSON values separated by a lone \\r (old Mac line ends)", "convert the line ends"],
+            id="JSONL with lone CR line ends",
+        ),
         pytest.param("d.jsonl", _jsonl({"text": "a", "label": None}), ["the 'label' field is null"], id="label null"),
         pytest.param(
             "d.jsonl", _jsonl({"text": "a", "label": 1.5}), ["the 'label' field is a number"], id="label a fraction"

@@ -254,6 +254,11 @@ def _jsonl_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example]:
         try:
             record = json.loads(line)
         except json.JSONDecodeError as exc:
+            if _cr_separated(line):
+                raise InputError(
+                    f"{path}: line {number} holds several JSON values separated by a lone \\r (old Mac line "
+                    "ends); JSON Lines ends each line with \\n or \\r\\n: convert the line ends"
+                ) from None
             raise InputError(
                 f"{path}: line {number}: not valid JSON ({exc.msg} at column {exc.colno}); "
                 "each line must be one JSON object"
@@ -265,6 +270,20 @@ def _jsonl_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example]:
                 f"and {fields.label_field!r} fields"
             )
         yield fields.example(f"line {number}", record)
+
+
+def _cr_separated(line: str) -> bool:
+    """Whether a line that is not JSON is JSON values with a lone \\r between them: a raw \\r can only be
+    whitespace in JSON (RFC 8259 §2, §7), so it is a file whose lines end in \\r alone (the scorer's
+    reader, scoring/formats.py, refuses such files in the same words)."""
+    pieces = [p for p in line.split("\r") if p.strip()]
+    if len(pieces) < 2:
+        return False
+    try:
+        json.loads(pieces[0])
+    except ValueError:
+        return False
+    return True
 
 
 def _json_array_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example]:
