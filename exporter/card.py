@@ -3,7 +3,7 @@ Model Reporting", FAT*)."""
 
 from __future__ import annotations
 
-from textsieve.registry.manifest import LengthInfo, Manifest
+from textsieve.registry.manifest import CalibrationInfo, LengthInfo, Manifest
 
 CAUTIONS = """\
 ## Cautions
@@ -35,6 +35,23 @@ def truncation_rule(lengths: LengthInfo) -> str:
     if lengths.max_length == lengths.min_length:
         return f"the widest filter, as {percentile} is no longer"
     return percentile
+
+
+def _calibration(c: CalibrationInfo) -> list[str]:
+    from textsieve.exporter.export import temperature_fitted
+
+    if temperature_fitted(c):
+        return [
+            f"Temperature scaling (Guo et al., 2017) fitted on {c.texts} validation texts: T = {c.temperature:.4f};",
+            f"NLL {c.nll_before:.4f} → {c.nll_after:.4f}, ECE {c.ece_before:.4f} → {c.ece_after:.4f}.",
+        ]
+    return [
+        f"Not calibrated: the model classifies all {c.texts} validation texts correctly, so temperature scaling",
+        "(Guo et al., 2017) has no minimum (a lower T always lowers their loss) and gives no evidence of how",
+        "confident the model should be; T = 1, the trained model's own probabilities",
+        f"(NLL {c.nll_before:.4f}, ECE {c.ece_before:.4f}). Treat them as uncalibrated; a larger or harder",
+        "validation set (--valid) lets the export fit T.",
+    ]
 
 
 def render_card(m: Manifest, *, model_name: str = "(set on publish)") -> str:
@@ -77,8 +94,7 @@ def render_card(m: Manifest, *, model_name: str = "(set on publish)") -> str:
         "",
         "## Calibration",
         "",
-        f"Temperature scaling (Guo et al., 2017) fitted on {c.texts} validation texts: T = {c.temperature:.4f};",
-        f"NLL {c.nll_before:.4f} → {c.nll_after:.4f}, ECE {c.ece_before:.4f} → {c.ece_after:.4f}.",
+        *_calibration(c),
         "",
         "## Export check",
         "",

@@ -229,8 +229,15 @@ def write_graph(folder: Path, run: LoadedRun, layout: GraphLayout) -> Predictor:
 
 
 def calibrate(logits: np.ndarray, targets: np.ndarray) -> CalibrationInfo:
-    """Temperature scaling on validation (Guo et al., 2017): T minimises the NLL of softmax(z / T)."""
-    temperature = measures.fit_temperature(logits, targets)
+    """Temperature scaling on validation (Guo et al., 2017): T minimises the NLL of softmax(z / T).
+
+    When every validation text's own class has the strictly largest logit, the NLL falls towards 0 as
+    T → 0 and has no minimum: the search stopped at its bound, T = 0.05, which multiplied every logit
+    by 20 and served probabilities near 1 for the texts the model gets wrong too (3 easy validation
+    texts were enough). Such a set says nothing about how confident the model should be, so T stays 1:
+    the trained model's own probabilities (:func:`temperature_fitted` tells the two apart).
+    """
+    temperature = 1.0 if separated(logits, targets) else measures.fit_temperature(logits, targets)
     return CalibrationInfo(
         temperature=temperature,
         texts=len(targets),
@@ -239,6 +246,20 @@ def calibrate(logits: np.ndarray, targets: np.ndarray) -> CalibrationInfo:
         ece_before=measures.expected_calibration_error(measures.softmax(logits), targets),
         ece_after=measures.expected_calibration_error(measures.softmax(logits, temperature), targets),
     )
+
+
+def separated(logits: np.ndarray, targets: np.ndarray) -> bool:
+    """Whether each row's target logit is strictly above all its others (then NLL(T) → 0 as T → 0)."""
+    rows = np.arange(len(targets))
+    own = logits[rows, targets]
+    others = logits.copy()
+    others[rows, targets] = -np.inf
+    return bool(len(targets)) and bool((own > others.max(axis=1)).all())
+
+
+def temperature_fitted(calibration: CalibrationInfo) -> bool:
+    """False when :func:`calibrate` kept T = 1 because the validation texts were all told apart."""
+    return not (calibration.temperature == 1.0 and calibration.nll_after == calibration.nll_before)
 
 
 def check_parity(
@@ -365,7 +386,11 @@ def _print_parity(parity: ParityReport, cal: CalibrationInfo, log: Any) -> None:
         ("label agreement", f"{parity.label_agreement:.2%}"),
         ("argmax-position agreement", f"{parity.position_agreement:.2%}"),
         ("alone vs batched, max |Δprobability|", f"{parity.batch_invariance_max_diff:.2e}"),
-        ("temperature", f"{cal.temperature:.4f}"),
+        (
+            "temperature",
+            f"{cal.temperature:.4f}"
+            + ("" if temperature_fitted(cal) else "  (not fitted: every validation text is classified correctly)"),
+        ),
         ("NLL before → after", f"{cal.nll_before:.4f} → {cal.nll_after:.4f}"),
         ("ECE before → after", f"{cal.ece_before:.4f} → {cal.ece_after:.4f}"),
         ("parity", "PASSED" if parity.passed else "FAILED"),

@@ -15,7 +15,7 @@ import torch
 from textsieve.cli import main
 from textsieve.errors import ParityError
 from textsieve.exporter.card import ordinal, render_card
-from textsieve.exporter.export import export
+from textsieve.exporter.export import calibrate, export, temperature_fitted
 from textsieve.exporter.run_folder import MODEL_PT, RUN_JSON, VALID_JSONL, VOCAB_TXT, load_run
 from textsieve.registry.bundle import open_bundle
 from textsieve.registry.manifest import CARD_FILE, MANIFEST, MODEL_FILE, VOCAB_FILE, LengthInfo
@@ -146,6 +146,42 @@ def test_temperature_matches_scipy_minimiser(tiny_bundles: dict[str, Path], tiny
         lambda t: nll(out.logits, targets, t), bounds=(0.05, 20), method="bounded", options={"xatol": 1e-8}
     )
     assert predictor.temperature == pytest.approx(best.x, rel=1e-3)
+
+
+def test_validation_texts_all_told_apart_leave_the_temperature_at_1() -> None:
+    # Three texts, each with its own class ahead: the NLL keeps falling as T shrinks, so scipy's bounded
+    # minimiser ends at the bound, which is no minimum (Guo et al., 2017, eq. for NLL; scipy as reference).
+    from scipy.optimize import minimize_scalar
+
+    logits = np.array([[2.0, -1.0], [0.3, 0.1], [-0.5, 1.5]])
+    targets = np.array([0, 0, 1])
+    best = minimize_scalar(
+        lambda t: nll(logits, targets, t), bounds=(0.05, 20), method="bounded", options={"xatol": 1e-8}
+    )
+    assert best.x == pytest.approx(0.05, abs=1e-5), "the minimiser stops at the bound"
+    grid = np.geomspace(0.05, 20, 50)
+    assert np.all(np.diff([nll(logits, targets, t) for t in grid]) > 0), "NLL rises with T: no interior minimum"
+    cal = calibrate(logits, targets)
+    assert (cal.temperature, cal.nll_after, cal.ece_after) == (1.0, cal.nll_before, cal.ece_before)
+    assert not temperature_fitted(cal)
+    # One text on the wrong side: a minimum exists, and it is scipy's.
+    wrong = np.array([0, 1, 1])
+    cal = calibrate(logits, wrong)
+    assert temperature_fitted(cal)
+    ref = minimize_scalar(lambda t: nll(logits, wrong, t), bounds=(0.05, 20), method="bounded", options={"xatol": 1e-8})
+    assert cal.temperature == pytest.approx(ref.x, rel=1e-3)
+
+
+def test_card_says_when_the_temperature_was_not_fitted(tiny_bundles: dict[str, Path]) -> None:
+    m = open_bundle(tiny_bundles["a"]).manifest
+    fitted = render_card(m)
+    assert f"fitted on {m.calibration.texts} validation texts: T = {m.calibration.temperature:.4f}" in fitted
+    kept = m.calibration.model_copy(
+        update={"temperature": 1.0, "nll_after": m.calibration.nll_before, "ece_after": m.calibration.ece_before}
+    )
+    card = render_card(m.model_copy(update={"calibration": kept}))
+    assert f"Not calibrated: the model classifies all {m.calibration.texts} validation texts correctly" in card
+    assert "fitted on" not in card
 
 
 def test_parity_failure_exits_1_and_writes_nothing(
