@@ -18,7 +18,7 @@ from textsieve import __version__
 from textsieve.errors import InputError, ParityError
 from textsieve.exporter.run_folder import VALID_JSONL, LoadedRun, RunInfo, load_run
 from textsieve.files import atomic_directory, atomic_write_text, check_out_folder, sha256_file
-from textsieve.labelled import Example, load_examples
+from textsieve.labelled import Example, load_examples, name_unknown
 from textsieve.registry import measures
 from textsieve.registry.bundle import check_graph, manifest_json
 from textsieve.registry.drift import DriftBaseline, Layout, baseline, count_encoded
@@ -185,7 +185,10 @@ def read_sources(run_dir: Path, test: Path | None) -> Sources:
     held_out = load_examples(test, run.info.training.text_field, run.info.training.label_field)
     unseen = sorted({e.label for e in held_out} - set(labels))
     if unseen:
-        raise InputError(f"{test}: labels not known to the model: {', '.join(unseen)}; allowed: {', '.join(labels)}")
+        raise InputError(
+            f"{test}: labels not known to the model: {', '.join(name_unknown(x, labels) for x in unseen)}; "
+            f"allowed: {', '.join(labels)}"
+        )
     return Sources(run, valid, Path(test), held_out)
 
 
@@ -198,7 +201,7 @@ def _check_valid_labels(valid: list[Example], labels: list[str], path: Path) -> 
     # load_examples gives one example for each non-blank line of a JSON Lines file, in order.
     lines = [n for n, line in enumerate(path.read_text(encoding="utf-8").split("\n"), start=1) if line.strip()]
     raise InputError(
-        f"{path}: line {lines[row]}: the label {valid[row].label!r} is not one the model knows "
+        f"{path}: line {lines[row]}: the label {name_unknown(valid[row].label, labels)} is not one the model knows "
         f"({', '.join(labels)}); remove the row, or train again on data that has the label"
     )
 

@@ -10,7 +10,7 @@ from pathlib import Path
 import pytest
 
 from textsieve.errors import InputError
-from textsieve.labelled import Example, case_twins, check_labels, load_examples
+from textsieve.labelled import Example, case_twins, check_labels, load_examples, name_unknown
 
 DATA = Path(__file__).parent / "data"
 
@@ -293,6 +293,15 @@ def test_case_twins_are_labels_equal_after_nfkc_and_case_folding() -> None:
     labels = ["Billing", "billing", "\uff42illing", "repair", "Repair", "other"]
     assert case_twins(labels) == [["Billing", "billing", "\uff42illing"], ["repair", "Repair"]]
     assert case_twins(["a", "b"]) == []
+
+
+def test_an_unknown_label_in_another_unicode_form_shows_both_forms() -> None:
+    # U+00E9 and e + U+0301 are canonically equivalent (UAX #15), as unicodedata.normalize confirms above.
+    known = ["caf\u00e9", "repair"]
+    assert name_unknown("cafe\u0301", known) == (
+        "'cafe\u0301' (cafe<U+0301>; the model's is caf<U+00E9>, another Unicode form)"
+    )
+    assert name_unknown("kitchen", known) == "'kitchen'"
 
 
 def test_data_module_does_not_import_torch() -> None:

@@ -117,6 +117,16 @@ def case_twins(labels: Sequence[str]) -> list[list[str]]:
     return [group for group in groups.values() if len(group) > 1]
 
 
+def name_unknown(label: str, known: Sequence[str]) -> str:
+    """``label`` quoted for an error about labels a model does not know, with the code points of it and
+    of a known label it equals under NFC: both print as 'café', and only the code points tell why."""
+    form = unicodedata.normalize("NFC", label)
+    twin = next((k for k in known if unicodedata.normalize("NFC", k) == form), None)
+    if twin is None:
+        return repr(label)
+    return f"{label!r} ({_code_points(label)}; the model's is {_code_points(twin)}, another Unicode form)"
+
+
 def _code_points(text: str) -> str:
     """A label's characters past ASCII as code points, so two look-alikes can be told apart."""
     return "".join(c if " " <= c <= "~" else f"<U+{ord(c):04X}>" for c in text)
@@ -347,4 +357,5 @@ __all__ = [
     "check_labels",
     "label_problem",
     "load_examples",
+    "name_unknown",
 ]
