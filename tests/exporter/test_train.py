@@ -340,6 +340,11 @@ OUT = ["--out", "{tmp}/out"]
             "has labels that are the same text in different Unicode forms: 'cafe\u0301' (cafe<U+0301>, 10 rows)",
             id="one label in two Unicode forms",
         ),
+        pytest.param(
+            ["{data}", *OUT, "--text-field", "label"],
+            "--text-field and --label-field both name 'label'; the model would read the label it is to predict",
+            id="text field is the label field",
+        ),
         pytest.param(["{tmp}/emptytext.jsonl", *OUT], "line 2: the 'text' field is empty", id="empty text"),
         pytest.param(["{data}", "--valid", "{tmp}/unseen.jsonl", *OUT], "labels not in", id="unseen valid label"),
         pytest.param(
