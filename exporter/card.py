@@ -28,6 +28,11 @@ def ordinal(p: float) -> str:
     return f"{n}{suffix}"
 
 
+def tokens(n: int) -> str:
+    """'1 token', '14 tokens'."""
+    return f"{n} token{'' if n == 1 else 's'}"
+
+
 def truncation_rule(lengths: LengthInfo) -> str:
     """Where max_length came from. It is the percentile of training lengths unless that is shorter
     than the widest filter, which a text must fill (prepare.length_info): then it is the widest filter."""
@@ -77,7 +82,7 @@ def render_card(m: Manifest, *, model_name: str = "(set on publish)") -> str:
         f"A convolutional sentence classifier (Kim, 2014): {a.embedding_dim}-dimensional {vectors}; filter",
         f"widths {', '.join(map(str, a.widths))} with {a.maps} feature maps each, ReLU, max-over-time pooling,",
         f"dropout {a.dropout}, {max_norm}. Vocabulary {m.vocabulary.size} tokens;",
-        f"texts are truncated to {m.lengths.max_length} tokens ({truncation_rule(m.lengths)};",
+        f"texts are truncated to {tokens(m.lengths.max_length)} ({truncation_rule(m.lengths)};",
         f"{m.lengths.truncation_rate:.2%} of training texts were longer).",
         "",
         "## Data",

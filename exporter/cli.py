@@ -144,7 +144,7 @@ def cli_export(args: argparse.Namespace) -> int:
 
 def summary(info: RunInfo, out: Path) -> str:
     """A few lines a person reads after training."""
-    from textsieve.exporter.card import truncation_rule
+    from textsieve.exporter.card import tokens, truncation_rule
 
     lengths, training, vocabulary = info.lengths, info.training, info.vocabulary
     lines = [
@@ -152,7 +152,7 @@ def summary(info: RunInfo, out: Path) -> str:
         f"labels       {len(info.labels)}: {', '.join(info.labels)}",
         f"texts        {training.rows:,} training, {training.valid_rows:,} validation",
         f"vocabulary   {vocabulary.size:,} tokens (min count {vocabulary.min_count})",
-        f"max_length   {lengths.max_length} tokens ({truncation_rule(lengths)}); "
+        f"max_length   {tokens(lengths.max_length)} ({truncation_rule(lengths)}); "
         f"truncates {lengths.truncation_rate:.1%} of training texts",
     ]
     if (v := info.architecture.vectors) is not None:

@@ -86,6 +86,10 @@ def test_card_says_when_max_length_is_the_widest_filter(tiny_bundles: dict[str, 
         f"truncated to {widest} tokens (the widest filter, as the 1st percentile of training lengths is no longer;"
     ) in card
     assert "no max-norm constraint" in card and "None" not in card
+    one = raised.model_copy(
+        update={"lengths": LengthInfo(max_length=1, min_length=1, percentile=30.0, truncation_rate=0.27)}
+    )
+    assert "texts are truncated to 1 token (the widest filter" in render_card(one)
 
 
 @pytest.mark.parametrize(
