@@ -42,6 +42,17 @@ def truncation_rule(lengths: LengthInfo) -> str:
     return percentile
 
 
+def _metrics_caveat(m: Manifest) -> list[str]:
+    """Validation figures are not held-out figures: the same texts chose the epoch and the temperature."""
+    if m.metrics.split != "validation":
+        return []
+    return [
+        "",
+        "These are the validation texts, which also chose the training epoch (early stopping) and the",
+        "temperature, so the figures are optimistic; `textsieve export --test FILE` measures held-out texts.",
+    ]
+
+
 def _calibration(c: CalibrationInfo) -> list[str]:
     from textsieve.exporter.export import temperature_fitted
 
@@ -96,6 +107,7 @@ def render_card(m: Manifest, *, model_name: str = "(set on publish)") -> str:
         "| --- | ---: | ---: | ---: | ---: | ---: |",
         f"| {m.metrics.split} | {m.metrics.texts} | {m.metrics.accuracy:.4f} | {m.metrics.macro_f1:.4f} | "
         f"{m.metrics.ece:.4f} | {m.metrics.nll:.4f} |",
+        *_metrics_caveat(m),
         "",
         "## Calibration",
         "",

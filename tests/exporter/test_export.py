@@ -68,6 +68,12 @@ def test_card_states_the_manifests_figures(tiny_bundles: dict[str, Path]) -> Non
     assert f"max-norm {m.architecture.max_norm:g}." in card
     assert f"| {m.metrics.split} | {m.metrics.texts} | {m.metrics.accuracy:.4f} | {m.metrics.macro_f1:.4f} |" in card
     assert f"T = {m.calibration.temperature:.4f}" in card
+    # Metrics measured on the texts that chose the epoch and T are not held-out figures (common practice).
+    caveat = "These are the validation texts, which also chose the training epoch (early stopping)"
+    assert (caveat in card) == (m.metrics.split == "validation")
+    held_out = m.model_copy(update={"metrics": m.metrics.model_copy(update={"split": "test:test.jsonl"})})
+    on_validation = m.model_copy(update={"metrics": m.metrics.model_copy(update={"split": "validation"})})
+    assert caveat not in render_card(held_out) and caveat in render_card(on_validation)
 
 
 def test_card_says_when_max_length_is_the_widest_filter(tiny_bundles: dict[str, Path]) -> None:
