@@ -3,7 +3,7 @@ Model Reporting", FAT*)."""
 
 from __future__ import annotations
 
-from textsieve.registry.manifest import Manifest
+from textsieve.registry.manifest import CalibrationInfo, LengthInfo, Manifest
 
 CAUTIONS = """\
 ## Cautions
@@ -19,6 +19,57 @@ CAUTIONS = """\
 """
 
 
+def ordinal(p: float) -> str:
+    """99 → '99th', 1 → '1st', 22 → '22nd', 99.5 → '99.5th'."""
+    n = int(p) if float(p).is_integer() else p
+    if isinstance(n, float):
+        return f"{n}th"
+    suffix = "th" if 10 <= n % 100 <= 20 else {1: "st", 2: "nd", 3: "rd"}.get(n % 10, "th")
+    return f"{n}{suffix}"
+
+
+def tokens(n: int) -> str:
+    """'1 token', '14 tokens'."""
+    return f"{n} token{'' if n == 1 else 's'}"
+
+
+def truncation_rule(lengths: LengthInfo) -> str:
+    """Where max_length came from. It is the percentile of training lengths unless that is shorter
+    than the widest filter, which a text must fill (prepare.length_info): then it is the widest filter."""
+    percentile = f"the {ordinal(lengths.percentile)} percentile of training lengths"
+    if lengths.max_length == lengths.min_length:
+        return f"the widest filter, as {percentile} is no longer"
+    return percentile
+
+
+def _metrics_caveat(m: Manifest) -> list[str]:
+    """Validation figures are not held-out figures: the same texts chose the epoch and the temperature."""
+    if m.metrics.split != "validation":
+        return []
+    return [
+        "",
+        "These are the validation texts, which also chose the training epoch (early stopping) and the",
+        "temperature, so the figures are optimistic; `textsieve export --test FILE` measures held-out texts.",
+    ]
+
+
+def _calibration(c: CalibrationInfo) -> list[str]:
+    from textsieve.exporter.export import temperature_fitted
+
+    if temperature_fitted(c):
+        return [
+            f"Temperature scaling (Guo et al., 2017) fitted on {c.texts} validation texts: T = {c.temperature:.4f};",
+            f"NLL {c.nll_before:.4f} → {c.nll_after:.4f}, ECE {c.ece_before:.4f} → {c.ece_after:.4f}.",
+        ]
+    return [
+        f"Not calibrated: the model classifies all {c.texts} validation texts correctly, so temperature scaling",
+        "(Guo et al., 2017) has no minimum (a lower T always lowers their loss) and gives no evidence of how",
+        "confident the model should be; T = 1, the trained model's own probabilities",
+        f"(NLL {c.nll_before:.4f}, ECE {c.ece_before:.4f}). Treat them as uncalibrated; a larger or harder",
+        "validation set (--valid) lets the export fit T.",
+    ]
+
+
 def render_card(m: Manifest, *, model_name: str = "(set on publish)") -> str:
     a = m.architecture
     c = m.calibration
@@ -27,6 +78,7 @@ def render_card(m: Manifest, *, model_name: str = "(set on publish)") -> str:
         if a.vectors
         else "embeddings learned from scratch"
     )
+    max_norm = "no max-norm constraint" if a.max_norm is None else f"max-norm {a.max_norm:g}"
     lines = [
         f"# Model card: {model_name}",
         "",
@@ -40,9 +92,9 @@ def render_card(m: Manifest, *, model_name: str = "(set on publish)") -> str:
         "",
         f"A convolutional sentence classifier (Kim, 2014): {a.embedding_dim}-dimensional {vectors}; filter",
         f"widths {', '.join(map(str, a.widths))} with {a.maps} feature maps each, ReLU, max-over-time pooling,",
-        f"dropout {a.dropout}, max-norm {a.max_norm}. Vocabulary {m.vocabulary.size} tokens;",
-        f"texts are truncated to {m.lengths.max_length} tokens (the {m.lengths.percentile:g}th percentile of",
-        f"training lengths; {m.lengths.truncation_rate:.2%} of training texts were longer).",
+        f"dropout {a.dropout}, {max_norm}. Vocabulary {m.vocabulary.size} tokens;",
+        f"texts are truncated to {tokens(m.lengths.max_length)} ({truncation_rule(m.lengths)};",
+        f"{m.lengths.truncation_rate:.2%} of training texts were longer).",
         "",
         "## Data",
         "",
@@ -55,11 +107,11 @@ def render_card(m: Manifest, *, model_name: str = "(set on publish)") -> str:
         "| --- | ---: | ---: | ---: | ---: | ---: |",
         f"| {m.metrics.split} | {m.metrics.texts} | {m.metrics.accuracy:.4f} | {m.metrics.macro_f1:.4f} | "
         f"{m.metrics.ece:.4f} | {m.metrics.nll:.4f} |",
+        *_metrics_caveat(m),
         "",
         "## Calibration",
         "",
-        f"Temperature scaling (Guo et al., 2017) fitted on {c.texts} validation texts: T = {c.temperature:.4f};",
-        f"NLL {c.nll_before:.4f} → {c.nll_after:.4f}, ECE {c.ece_before:.4f} → {c.ece_after:.4f}.",
+        *_calibration(c),
         "",
         "## Export check",
         "",

@@ -144,14 +144,16 @@ def cli_export(args: argparse.Namespace) -> int:
 
 def summary(info: RunInfo, out: Path) -> str:
     """A few lines a person reads after training."""
+    from textsieve.exporter.card import tokens, truncation_rule
+
     lengths, training, vocabulary = info.lengths, info.training, info.vocabulary
     lines = [
         f"run folder   {out}",
         f"labels       {len(info.labels)}: {', '.join(info.labels)}",
         f"texts        {training.rows:,} training, {training.valid_rows:,} validation",
         f"vocabulary   {vocabulary.size:,} tokens (min count {vocabulary.min_count})",
-        f"max_length   {lengths.max_length} tokens ({_ordinal(lengths.percentile)} percentile of training "
-        f"lengths); truncates {lengths.truncation_rate:.1%} of training texts",
+        f"max_length   {tokens(lengths.max_length)} ({truncation_rule(lengths)}); "
+        f"truncates {lengths.truncation_rate:.1%} of training texts",
     ]
     if (v := info.architecture.vectors) is not None:
         lines.append(f"vectors      {v.found:,} of {vocabulary.size - 2:,} words found, {v.dim} dimensions, {v.mode}")
@@ -160,14 +162,6 @@ def summary(info: RunInfo, out: Path) -> str:
         f"validation   accuracy {info.best.valid_accuracy:.3f}, loss {info.best.valid_loss:.4f}",
     ]
     return "\n".join(lines)
-
-
-def _ordinal(p: float) -> str:
-    n = int(p) if float(p).is_integer() else p
-    if isinstance(n, float):
-        return f"{n}th"
-    suffix = "th" if 10 <= n % 100 <= 20 else {1: "st", 2: "nd", 3: "rd"}.get(n % 10, "th")
-    return f"{n}{suffix}"
 
 
 __all__ = ["cli_export", "cli_train", "register", "summary"]

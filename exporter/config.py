@@ -129,6 +129,13 @@ class TrainConfig:
         for flag, value, ok, allowed in rules:
             if not ok:
                 raise InputError(f"{flag} {value} is out of range; it must be {allowed}")
+        if self.text_field == self.label_field:
+            # Each text would be its own label: a model that reads the answer (it trained to 100 % before
+            # the split grouped copies; now every label is one text, which no split can hold out).
+            raise InputError(
+                f"--text-field and --label-field both name {self.text_field!r}; the model would read the label "
+                "it is to predict: name the field that holds the text with --text-field"
+            )
         if self.vectors_mode not in ("static", "non-static"):
             raise InputError(f"--vectors-mode {self.vectors_mode!r}: choose static or non-static")
         if self.vectors_mode == "static" and self.vectors is None:

@@ -33,6 +33,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from textsieve.files import atomic_write_text
+from textsieve.registry.tokenizer import Tokenizer
 
 LABELS: tuple[str, ...] = ("billing", "repair", "account", "praise")
 _PROBLEM_LABELS: tuple[str, ...] = ("billing", "repair", "account")
@@ -326,13 +327,21 @@ def generate(n: int = 6000, seed: int = 7, disagreement: float = DISAGREEMENT) -
     rng = random.Random(seed)
     flips = random.Random(f"disagreement-{seed}")
     seen: dict[str, str] = {}
+    # Distinct as the model reads them: a message and its lower-cased copy are one input, which a
+    # split would put on both sides (36 of the 6,000 did: copies of training rows in valid and test).
+    split = Tokenizer().split
+    inputs: set[tuple[str, ...]] = set()
     # Bounded so a future template change that runs out of distinct texts fails loudly.
     for _ in range(n * 50):
         if len(seen) == n:
             break
         label = rng.choice(LABELS)
         text = _message(rng, label)
-        if MIN_TOKENS <= token_count(text) <= MAX_TOKENS and text not in seen:
+        if not MIN_TOKENS <= token_count(text) <= MAX_TOKENS:
+            continue
+        tokens = tuple(split(text)[0])
+        if tokens not in inputs:
+            inputs.add(tokens)
             seen[text] = label
     else:
         if len(seen) < n:

@@ -18,7 +18,7 @@ from textsieve import __version__
 from textsieve.errors import InputError, ParityError
 from textsieve.exporter.run_folder import VALID_JSONL, LoadedRun, RunInfo, load_run
 from textsieve.files import atomic_directory, atomic_write_text, check_out_folder, sha256_file
-from textsieve.labelled import Example, load_examples
+from textsieve.labelled import Example, load_examples, name_unknown
 from textsieve.registry import measures
 from textsieve.registry.bundle import check_graph, manifest_json
 from textsieve.registry.drift import DriftBaseline, Layout, baseline, count_encoded
@@ -185,7 +185,10 @@ def read_sources(run_dir: Path, test: Path | None) -> Sources:
     held_out = load_examples(test, run.info.training.text_field, run.info.training.label_field)
     unseen = sorted({e.label for e in held_out} - set(labels))
     if unseen:
-        raise InputError(f"{test}: labels not known to the model: {', '.join(unseen)}; allowed: {', '.join(labels)}")
+        raise InputError(
+            f"{test}: labels not known to the model: {', '.join(name_unknown(x, labels) for x in unseen)}; "
+            f"allowed: {', '.join(labels)}"
+        )
     return Sources(run, valid, Path(test), held_out)
 
 
@@ -198,7 +201,7 @@ def _check_valid_labels(valid: list[Example], labels: list[str], path: Path) -> 
     # load_examples gives one example for each non-blank line of a JSON Lines file, in order.
     lines = [n for n, line in enumerate(path.read_text(encoding="utf-8").split("\n"), start=1) if line.strip()]
     raise InputError(
-        f"{path}: line {lines[row]}: the label {valid[row].label!r} is not one the model knows "
+        f"{path}: line {lines[row]}: the label {name_unknown(valid[row].label, labels)} is not one the model knows "
         f"({', '.join(labels)}); remove the row, or train again on data that has the label"
     )
 
@@ -229,8 +232,15 @@ def write_graph(folder: Path, run: LoadedRun, layout: GraphLayout) -> Predictor:
 
 
 def calibrate(logits: np.ndarray, targets: np.ndarray) -> CalibrationInfo:
-    """Temperature scaling on validation (Guo et al., 2017): T minimises the NLL of softmax(z / T)."""
-    temperature = measures.fit_temperature(logits, targets)
+    """Temperature scaling on validation (Guo et al., 2017): T minimises the NLL of softmax(z / T).
+
+    When every validation text's own class has the strictly largest logit, the NLL falls towards 0 as
+    T → 0 and has no minimum: the search stopped at its bound, T = 0.05, which multiplied every logit
+    by 20 and served probabilities near 1 for the texts the model gets wrong too (3 easy validation
+    texts were enough). Such a set says nothing about how confident the model should be, so T stays 1:
+    the trained model's own probabilities (:func:`temperature_fitted` tells the two apart).
+    """
+    temperature = 1.0 if separated(logits, targets) else measures.fit_temperature(logits, targets)
     return CalibrationInfo(
         temperature=temperature,
         texts=len(targets),
@@ -239,6 +249,20 @@ def calibrate(logits: np.ndarray, targets: np.ndarray) -> CalibrationInfo:
         ece_before=measures.expected_calibration_error(measures.softmax(logits), targets),
         ece_after=measures.expected_calibration_error(measures.softmax(logits, temperature), targets),
     )
+
+
+def separated(logits: np.ndarray, targets: np.ndarray) -> bool:
+    """Whether each row's target logit is strictly above all its others (then NLL(T) → 0 as T → 0)."""
+    rows = np.arange(len(targets))
+    own = logits[rows, targets]
+    others = logits.copy()
+    others[rows, targets] = -np.inf
+    return bool(len(targets)) and bool((own > others.max(axis=1)).all())
+
+
+def temperature_fitted(calibration: CalibrationInfo) -> bool:
+    """False when :func:`calibrate` kept T = 1 because the validation texts were all told apart."""
+    return not (calibration.temperature == 1.0 and calibration.nll_after == calibration.nll_before)
 
 
 def check_parity(
@@ -365,7 +389,11 @@ def _print_parity(parity: ParityReport, cal: CalibrationInfo, log: Any) -> None:
         ("label agreement", f"{parity.label_agreement:.2%}"),
         ("argmax-position agreement", f"{parity.position_agreement:.2%}"),
         ("alone vs batched, max |Δprobability|", f"{parity.batch_invariance_max_diff:.2e}"),
-        ("temperature", f"{cal.temperature:.4f}"),
+        (
+            "temperature",
+            f"{cal.temperature:.4f}"
+            + ("" if temperature_fitted(cal) else "  (not fitted: every validation text is classified correctly)"),
+        ),
         ("NLL before → after", f"{cal.nll_before:.4f} → {cal.nll_after:.4f}"),
         ("ECE before → after", f"{cal.ece_before:.4f} → {cal.ece_after:.4f}"),
         ("parity", "PASSED" if parity.passed else "FAILED"),

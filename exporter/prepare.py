@@ -5,6 +5,7 @@ from __future__ import annotations
 import itertools
 import math
 from collections import Counter
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -13,8 +14,9 @@ import numpy as np
 from textsieve.errors import InputError
 from textsieve.exporter.config import DEFAULT_EMBEDDING_DIM, TrainConfig
 from textsieve.exporter.encode import TokenIds, encode_texts, encode_tokens
+from textsieve.exporter.progress import say
 from textsieve.exporter.vectors import PretrainedVectors, load_vectors
-from textsieve.labelled import Example, check_labels, load_examples
+from textsieve.labelled import Example, case_twins, check_labels, load_examples
 from textsieve.registry.manifest import LengthInfo
 from textsieve.registry.tokenizer import Tokenizer, Vocabulary
 
@@ -39,9 +41,18 @@ class Prepared:
 
 
 def prepare(config: TrainConfig) -> Prepared:
-    train_rows, valid_rows, labels = split_examples(config)
     tokenizer = Tokenizer()
-    train_tokens = [tokenizer.split(e.text)[0] for e in train_rows]
+    tokens = TokenMemo(tokenizer)
+    train_rows, valid_rows, labels = split_examples(config, tokens)
+    for twins in case_twins(labels):
+        say(
+            f"warning: the labels {' and '.join(map(repr, twins))} differ only in case or character width; "
+            "they train as separate classes: if they mean one class, write them alike"
+        )
+    if config.valid is not None:
+        _warn_of_overlap(train_rows, valid_rows, tokens, config.valid)
+    train_tokens = [tokens[e.text] for e in train_rows]
+    tokens.clear()
     vocabulary = build_vocabulary(train_tokens, config)
     lengths = length_info(np.array([len(t) for t in train_tokens]), config)
     vectors = _pretrained(config, vocabulary, tokenizer)
@@ -61,7 +72,26 @@ def prepare(config: TrainConfig) -> Prepared:
     )
 
 
-def split_examples(config: TrainConfig) -> tuple[list[Example], list[Example], list[str]]:
+class TokenMemo(dict[str, list[str]]):
+    """A text's tokens, split once however often the split and the encoding ask."""
+
+    def __init__(self, tokenizer: Tokenizer | None = None) -> None:
+        super().__init__()
+        self._split = (tokenizer or Tokenizer()).split
+
+    def __missing__(self, text: str) -> list[str]:
+        tokens = self[text] = self._split(text)[0]
+        return tokens
+
+
+def _model_input(tokens: Sequence[str]) -> str:
+    """One key for texts the model cannot tell apart: the same tokens (case, spacing and NFKC folded)."""
+    return "\x1f".join(tokens)
+
+
+def split_examples(
+    config: TrainConfig, tokens: Mapping[str, Sequence[str]] | None = None
+) -> tuple[list[Example], list[Example], list[str]]:
     """Training rows, validation rows (``--valid`` or a held-out split) and the labels in output order."""
     examples = load_examples(config.data, config.text_field, config.label_field)
     if config.valid is not None:
@@ -70,33 +100,87 @@ def split_examples(config: TrainConfig) -> tuple[list[Example], list[Example], l
         return examples, valid_rows, labels
     # The one-label check comes first: a split of one-label data would fail confusingly.
     check_labels(examples, [], train_name=str(config.data))
-    train_rows, valid_rows = split_validation(examples, config.seed, config.data)
+    train_rows, valid_rows = split_validation(examples, config.seed, config.data, tokens)
     labels = check_labels(train_rows, valid_rows, train_name=str(config.data))
     return train_rows, valid_rows, labels
 
 
-def split_validation(examples: list[Example], seed: int, source: Path) -> tuple[list[Example], list[Example]]:
-    """A seeded validation split stratified by label, so every validation label is also trained on."""
+def split_validation(
+    examples: list[Example], seed: int, source: Path, tokens: Mapping[str, Sequence[str]] | None = None
+) -> tuple[list[Example], list[Example]]:
+    """A seeded validation split stratified by label, so every validation label is also trained on.
+
+    Rows the model cannot tell apart (the same tokens) stay on one side: a copy in validation of a
+    training row measures memory, not generalisation, yet early stopping, the export's calibration and
+    the bundle's metrics would all trust it (data leakage; common practice to split by group).
+    """
+    tokens = tokens if tokens is not None else TokenMemo()
     rng = np.random.default_rng([seed, 1])
-    by_label: dict[str, list[int]] = {}
+    groups: dict[str, list[int]] = {}  # model input -> its rows, in file order
     for i, example in enumerate(examples):
-        by_label.setdefault(example.label, []).append(i)
+        groups.setdefault(_model_input(tokens[example.text]), []).append(i)
+    by_label: dict[str, list[list[int]]] = {}  # each group is stratified by its first row's label
+    for rows in groups.values():
+        by_label.setdefault(examples[rows[0]].label, []).append(rows)
+    rows_of = Counter(e.label for e in examples)
+    trained = rows_of.copy()  # rows of each label left to train on
     held: set[int] = set()
     for label in sorted(by_label):
-        rows = np.array(by_label[label])
-        rng.shuffle(rows)
-        held.update(int(i) for i in rows[: _held_out(len(rows))])
+        label_groups = by_label[label]
+        order = np.arange(len(label_groups))
+        rng.shuffle(order)
+        target, taken = _held_out(rows_of[label]), 0
+        for g in order:
+            rows = label_groups[int(g)]
+            losing = Counter(examples[i].label for i in rows)
+            if taken + len(rows) > target or any(trained[k] <= n for k, n in losing.items()):
+                continue
+            held.update(rows)
+            trained.subtract(losing)
+            taken += len(rows)
     if not held:
-        needed = next(n for n in itertools.count(2) if _held_out(n) >= 1)
-        most = max(len(rows) for rows in by_label.values())
-        raise InputError(
-            f"{source}: every label has too few rows to hold out a {VALID_SHARE:.0%} validation split "
-            f"({len(by_label)} labels, at most {most} row{'s' if most != 1 else ''} each); a label needs at "
-            f"least {needed} rows to give one to validation and train on the rest: add rows, or pass --valid FILE"
+        raise _too_few_to_hold_out(examples, by_label, source)
+    if len(groups) < len(examples):
+        say(
+            f"note: {len(examples) - len(groups):,} rows repeat the tokens of an earlier row; such copies "
+            "are kept on one side of the validation split"
         )
     train = [e for i, e in enumerate(examples) if i not in held]
     valid = [e for i, e in enumerate(examples) if i in held]
     return train, valid
+
+
+def _too_few_to_hold_out(examples: list[Example], by_label: dict[str, list[list[int]]], source: Path) -> InputError:
+    needed = next(n for n in itertools.count(2) if _held_out(n) >= 1)
+    rows_of = Counter(e.label for e in examples)
+    most = max(rows_of.values())
+    advice = "add rows, or pass --valid FILE"
+    if sum(len(g) for g in by_label.values()) < len(examples):
+        distinct = max(len(g) for g in by_label.values())
+        return InputError(
+            f"{source}: every label has too few distinct texts to hold out a {VALID_SHARE:.0%} validation split "
+            f"({len(rows_of)} labels, at most {most} rows but {distinct} distinct text{'s' if distinct != 1 else ''} "
+            f"each; copies of a text stay on one side of the split): {advice}"
+        )
+    return InputError(
+        f"{source}: every label has too few rows to hold out a {VALID_SHARE:.0%} validation split "
+        f"({len(rows_of)} labels, at most {most} row{'s' if most != 1 else ''} each); a label needs at "
+        f"least {needed} rows to give one to validation and train on the rest: {advice}"
+    )
+
+
+def _warn_of_overlap(
+    train: list[Example], valid: list[Example], tokens: Mapping[str, Sequence[str]], valid_path: Path
+) -> None:
+    """--valid rows the model also trains on make validation loss, early stopping and calibration optimistic."""
+    seen = {_model_input(tokens[e.text]) for e in train}
+    shared = sum(_model_input(tokens[e.text]) in seen for e in valid)
+    if shared:
+        say(
+            f"warning: {shared:,} of {len(valid):,} rows of {valid_path} ({shared / len(valid):.1%}) have the tokens "
+            "of a training row; "
+            "validation loss, early stopping and the export's calibration will trust them: remove them from one file"
+        )
 
 
 def _held_out(rows: int) -> int:
@@ -143,6 +227,7 @@ def _pretrained(config: TrainConfig, vocabulary: Vocabulary, tokenizer: Tokenize
 __all__ = [
     "VALID_SHARE",
     "Prepared",
+    "TokenMemo",
     "build_vocabulary",
     "length_info",
     "prepare",

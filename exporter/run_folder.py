@@ -1,7 +1,8 @@
 """The run folder ``textsieve train`` writes and ``textsieve export`` reads.
 
     RUN/
-      run.json      RunInfo: labels, tokenizer, vocabulary, lengths, architecture, training, tool_version
+      run.json      RunInfo: labels, tokenizer, vocabulary, lengths, architecture, training, tool_version,
+                    and files: the sha256 of model.pt, vocab.txt and valid.jsonl, checked on load
       model.pt      the best epoch's weights (a torch state dict)
       vocab.txt     one token a line, padding and unknown first
       valid.jsonl   the validation rows, for the exporter's parity check and calibration
@@ -22,7 +23,7 @@ from typing import TYPE_CHECKING, Any, NamedTuple
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from textsieve.errors import BundleError, InputError
-from textsieve.files import atomic_directory, check_out_folder
+from textsieve.files import atomic_directory, check_out_folder, sha256_file
 from textsieve.labelled import Example
 from textsieve.registry.manifest import ArchitectureInfo, LengthInfo, TrainingInfo
 from textsieve.registry.report.embedding_files import EMBEDDINGS_NPZ, embedding_arrays
@@ -39,6 +40,7 @@ MODEL_PT = "model.pt"
 VOCAB_TXT = "vocab.txt"
 VALID_JSONL = "valid.jsonl"
 RUN_KEYS = ("labels", "tokenizer", "vocabulary", "lengths", "architecture", "training", "tool_version")
+CHECKED_FILES = (MODEL_PT, VOCAB_TXT, VALID_JSONL)  # what the export reads besides run.json
 
 
 class Epoch(BaseModel):
@@ -85,6 +87,9 @@ class RunInfo(BaseModel):
     architecture: ArchitectureInfo
     training: RunTraining
     tool_version: str
+    # sha256 of the files the export reads (model.pt, vocab.txt, valid.jsonl); folders written before
+    # it was recorded have none and load unchecked.
+    files: dict[str, str] | None = None
 
     @property
     def best(self) -> Epoch:
@@ -127,11 +132,7 @@ def write_run(
     import torch
 
     valid_lines = "".join(json.dumps({"text": e.text, "label": e.label}, ensure_ascii=False) + "\n" for e in valid)
-    files = {
-        VOCAB_TXT: vocabulary.dumps(),
-        VALID_JSONL: valid_lines,
-        RUN_JSON: json.dumps(info.model_dump(), indent=2, ensure_ascii=False) + "\n",
-    }
+    files = {VOCAB_TXT: vocabulary.dumps(), VALID_JSONL: valid_lines}
     try:
         with atomic_directory(out, replace=True) as tmp:
             torch.save(state, tmp / MODEL_PT)
@@ -145,6 +146,11 @@ def write_run(
             np.savez(tmp / EMBEDDINGS_NPZ, allow_pickle=False, **arrays)
             for name, text in files.items():
                 (tmp / name).write_bytes(text.encode("utf-8"))
+            # run.json last, with the digests of what it describes: an edited, truncated or swapped file is
+            # then named by the export instead of becoming a bundle that passes parity with the wrong data.
+            digests = {name: sha256_file(tmp / name) for name in CHECKED_FILES}
+            run_json = json.dumps(info.model_copy(update={"files": digests}).model_dump(), indent=2, ensure_ascii=False)
+            (tmp / RUN_JSON).write_bytes((run_json + "\n").encode("utf-8"))
             check_out(out)  # again: something may have appeared there while we trained
     except OSError as exc:
         raise InputError(f"--out {out}: cannot write the run folder ({exc.strerror or exc})") from exc
@@ -193,6 +199,7 @@ def load_run(run_dir: Path) -> LoadedRun:
 
     run_dir = Path(run_dir)
     info = read_run_info(run_dir)
+    check_run_files(run_dir, info)
     vocabulary = _load_vocabulary(run_dir / VOCAB_TXT, info)
     arch = info.architecture
     model = SentenceCNN(
@@ -229,6 +236,27 @@ def load_run(run_dir: Path) -> LoadedRun:
     return LoadedRun(model.eval(), vocabulary, info)
 
 
+def check_run_files(run_dir: Path, info: RunInfo) -> None:
+    """Each file run.json records a sha256 for is the file training wrote. A vocab.txt with two lines
+    swapped, a valid.jsonl cut short by a copy, or model.pt from another run each exported before,
+    passed parity (the graph and the reference read the same wrong files) and shipped."""
+    for name, recorded in (info.files or {}).items():
+        if name not in CHECKED_FILES:
+            continue  # a file a later release records; this one does not read it
+        path = Path(run_dir) / name
+        try:
+            actual = sha256_file(path)
+        except FileNotFoundError:
+            raise InputError(f"{path}: missing; every run folder has one") from None
+        except OSError as exc:
+            raise InputError(f"{path}: cannot be read ({exc.strerror or exc})") from None
+        if actual != recorded:
+            raise InputError(
+                f"{path}: changed since training (sha256 {actual[:12]}…, run.json records {recorded[:12]}…); "
+                "restore the file or train again"
+            )
+
+
 def _load_vocabulary(path: Path, info: RunInfo) -> Vocabulary:
     try:
         vocabulary = Vocabulary.load(path)
@@ -242,6 +270,7 @@ def _load_vocabulary(path: Path, info: RunInfo) -> Vocabulary:
 
 
 __all__ = [
+    "CHECKED_FILES",
     "EMBEDDINGS_NPZ",
     "MODEL_PT",
     "RUN_JSON",
@@ -254,6 +283,7 @@ __all__ = [
     "RunTraining",
     "RunVocabulary",
     "check_out",
+    "check_run_files",
     "is_run_dir",
     "load_run",
     "read_run_info",

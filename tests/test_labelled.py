@@ -3,13 +3,14 @@
 from __future__ import annotations
 
 import json
+import unicodedata
 from collections.abc import Callable
 from pathlib import Path
 
 import pytest
 
 from textsieve.errors import InputError
-from textsieve.labelled import Example, check_labels, load_examples
+from textsieve.labelled import Example, case_twins, check_labels, load_examples, name_unknown
 
 DATA = Path(__file__).parent / "data"
 
@@ -162,6 +163,14 @@ def _jsonl(*rows: object) -> str:
             ["line 1: the 'text' field is an array; it must be a string"],
             id="text an array",
         ),
+        # Old Mac line ends: the whole file is one line of JSON values with a raw \r between them (RFC 8259
+        # section 2: \r is whitespace between tokens), which json reported as "Extra data at column 30".
+        pytest.param(
+            "d.jsonl",
+            '{"text": "a", "label": "x"}\r{"text": "b", "label": "y"}\r',
+            ["line 1 holds several JSON values separated by a lone \\r (old Mac line ends)", "convert the line ends"],
+            id="JSONL with lone CR line ends",
+        ),
         pytest.param("d.jsonl", _jsonl({"text": "a", "label": None}), ["the 'label' field is null"], id="label null"),
         pytest.param(
             "d.jsonl", _jsonl({"text": "a", "label": 1.5}), ["the 'label' field is a number"], id="label a fraction"
@@ -251,11 +260,48 @@ def test_check_labels_returns_sorted_names() -> None:
             r"labels not in .*: 'q', 'w'; allowed .* \('x', 'y'\)",
             id="validation labels unseen in training",
         ),
+        # Canonical equivalence (Unicode Standard Annex #15, section 1.1): U+00E9 and e + U+0301 are
+        # one text to a reader; unicodedata (the Unicode Character Database) says so, not this project.
+        pytest.param(
+            [Example("a", "caf\u00e9"), Example("b", "cafe\u0301"), Example("c", "repair")],
+            [],
+            "same text in different Unicode forms: 'cafe\u0301' \\(cafe<U\\+0301>, 1 row\\) and 'caf\u00e9' "
+            r"\(caf<U\+00E9>, 1 row\); they would train as separate classes",
+            id="one label in two Unicode forms",
+        ),
+        pytest.param(
+            [Example("a", "caf\u00e9"), Example("b", "repair")],
+            [Example("c", "cafe\u0301")],
+            "the label 'cafe\u0301' \\(cafe<U\\+0301>\\), which .* writes in another Unicode form \\(caf<U\\+00E9>\\)",
+            id="validation label in another Unicode form",
+        ),
     ],
 )
 def test_check_labels_refusals(train: list[Example], valid: list[Example], expected_msg: str) -> None:
     with pytest.raises(InputError, match=expected_msg):
         check_labels(train, valid)
+
+
+def test_unicode_forms_of_one_label_are_canonically_equivalent() -> None:
+    # The premise of the refusal above, held to the Unicode Character Database (unicodedata).
+    assert "caf\u00e9" != "cafe\u0301"
+    assert unicodedata.normalize("NFC", "cafe\u0301") == "caf\u00e9"
+
+
+def test_case_twins_are_labels_equal_after_nfkc_and_case_folding() -> None:
+    # Full-width letters fold to ASCII under NFKC (compatibility decomposition, UAX #15).
+    labels = ["Billing", "billing", "\uff42illing", "repair", "Repair", "other"]
+    assert case_twins(labels) == [["Billing", "billing", "\uff42illing"], ["repair", "Repair"]]
+    assert case_twins(["a", "b"]) == []
+
+
+def test_an_unknown_label_in_another_unicode_form_shows_both_forms() -> None:
+    # U+00E9 and e + U+0301 are canonically equivalent (UAX #15), as unicodedata.normalize confirms above.
+    known = ["caf\u00e9", "repair"]
+    assert name_unknown("cafe\u0301", known) == (
+        "'cafe\u0301' (cafe<U+0301>; the model's is caf<U+00E9>, another Unicode form)"
+    )
+    assert name_unknown("kitchen", known) == "'kitchen'"
 
 
 def test_data_module_does_not_import_torch() -> None:

@@ -64,6 +64,7 @@ def check_labels(
 ) -> list[str]:
     """The sorted label names, after checking there are two or more and validation adds none."""
     counts = Counter(e.label for e in train)
+    _refuse_look_alikes(counts, {e.label for e in valid}, train_name, valid_name)
     if len(counts) < 2:
         found = ", ".join(repr(label) for label in sorted(counts)) or "none"
         raise InputError(
@@ -77,6 +78,58 @@ def check_labels(
             f"{valid_name} has labels not in {train_name}: {shown}; allowed are the training labels ({known})"
         )
     return sorted(counts)
+
+
+def _refuse_look_alikes(train: Counter[str], valid: set[str], train_name: str, valid_name: str) -> None:
+    """Two labels that are one text in two Unicode forms (NFC: a precomposed \u00e9 against e with a
+    combining \u0301) look the same to every person, yet would train as two classes whose names print
+    alike: 'labels 3: café, café, repair'. A validation label in one form against a training label
+    in the other was "not in the training data", quoting both as 'café'."""
+    by_form: dict[str, list[str]] = {}
+    for label in sorted(train):
+        by_form.setdefault(unicodedata.normalize("NFC", label), []).append(label)
+    for form, labels in by_form.items():
+        if len(labels) > 1:
+            shown = " and ".join(
+                f"{label!r} ({_code_points(label)}, {train[label]} row{'s' if train[label] != 1 else ''})"
+                for label in labels[:3]
+            )
+            raise InputError(
+                f"{train_name} has labels that are the same text in different Unicode forms: {shown}; "
+                f"they would train as separate classes: write each label one way, e.g. {_code_points(form)} (NFC)"
+            )
+    for label in sorted(valid - train.keys()):
+        twins = by_form.get(unicodedata.normalize("NFC", label), [])
+        if twins:
+            raise InputError(
+                f"{valid_name} has the label {label!r} ({_code_points(label)}), which {train_name} writes "
+                f"in another Unicode form ({_code_points(twins[0])}); labels are compared exactly: "
+                f"write it as in {train_name}"
+            )
+
+
+def case_twins(labels: Sequence[str]) -> list[list[str]]:
+    """Groups of labels that differ only in case or compatibility form ('Billing', 'billing'): legal,
+    since labels are compared exactly, but more often two spellings of one class than two classes."""
+    groups: dict[str, list[str]] = {}
+    for label in labels:
+        groups.setdefault(unicodedata.normalize("NFKC", label).casefold(), []).append(label)
+    return [group for group in groups.values() if len(group) > 1]
+
+
+def name_unknown(label: str, known: Sequence[str]) -> str:
+    """``label`` quoted for an error about labels a model does not know, with the code points of it and
+    of a known label it equals under NFC: both print as 'café', and only the code points tell why."""
+    form = unicodedata.normalize("NFC", label)
+    twin = next((k for k in known if unicodedata.normalize("NFC", k) == form), None)
+    if twin is None:
+        return repr(label)
+    return f"{label!r} ({_code_points(label)}; the model's is {_code_points(twin)}, another Unicode form)"
+
+
+def _code_points(text: str) -> str:
+    """A label's characters past ASCII as code points, so two look-alikes can be told apart."""
+    return "".join(c if " " <= c <= "~" else f"<U+{ord(c):04X}>" for c in text)
 
 
 def _read_utf8(path: Path) -> str:
@@ -211,6 +264,11 @@ def _jsonl_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example]:
         try:
             record = json.loads(line)
         except json.JSONDecodeError as exc:
+            if _cr_separated(line):
+                raise InputError(
+                    f"{path}: line {number} holds several JSON values separated by a lone \\r (old Mac line "
+                    "ends); JSON Lines ends each line with \\n or \\r\\n: convert the line ends"
+                ) from None
             raise InputError(
                 f"{path}: line {number}: not valid JSON ({exc.msg} at column {exc.colno}); "
                 "each line must be one JSON object"
@@ -222,6 +280,20 @@ def _jsonl_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example]:
                 f"and {fields.label_field!r} fields"
             )
         yield fields.example(f"line {number}", record)
+
+
+def _cr_separated(line: str) -> bool:
+    """Whether a line that is not JSON is JSON values with a lone \\r between them: a raw \\r can only be
+    whitespace in JSON (RFC 8259 §2, §7), so it is a file whose lines end in \\r alone (the scorer's
+    reader, scoring/formats.py, refuses such files in the same words)."""
+    pieces = [p for p in line.split("\r") if p.strip()]
+    if len(pieces) < 2:
+        return False
+    try:
+        json.loads(pieces[0])
+    except ValueError:
+        return False
+    return True
 
 
 def _json_array_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example]:
@@ -281,7 +353,9 @@ __all__ = [
     "MAX_LABEL_CHARS",
     "json_kind",
     "Example",
+    "case_twins",
     "check_labels",
     "label_problem",
     "load_examples",
+    "name_unknown",
 ]

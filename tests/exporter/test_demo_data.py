@@ -58,6 +58,10 @@ def test_labels_and_balance(demo_rows: list[dict[str, str]]) -> None:
 def test_texts_are_distinct(demo_rows: list[dict[str, str]]) -> None:
     # duplicates would leak between train and test once split
     assert len({row["text"] for row in demo_rows}) == len(demo_rows)
+    # ... and so would texts the model cannot tell apart: a message and its lower-cased copy (36 pairs did).
+    # The reference is a plain casefold of the word and punctuation runs, not the project's tokenizer.
+    words = [tuple(re.findall(r"\w+|[^\w\s]", row["text"].casefold())) for row in demo_rows]
+    assert len(set(words)) == len(demo_rows)
 
 
 def test_lengths_in_range_and_varied(demo_rows: list[dict[str, str]]) -> None:

@@ -14,10 +14,11 @@ import torch
 
 from textsieve.cli import main
 from textsieve.errors import ParityError
-from textsieve.exporter.export import export
-from textsieve.exporter.run_folder import MODEL_PT, VALID_JSONL, load_run
+from textsieve.exporter.card import ordinal, render_card
+from textsieve.exporter.export import calibrate, export, temperature_fitted
+from textsieve.exporter.run_folder import MODEL_PT, RUN_JSON, VALID_JSONL, VOCAB_TXT, load_run
 from textsieve.registry.bundle import open_bundle
-from textsieve.registry.manifest import CARD_FILE, MANIFEST, MODEL_FILE, VOCAB_FILE
+from textsieve.registry.manifest import CARD_FILE, MANIFEST, MODEL_FILE, VOCAB_FILE, LengthInfo
 from textsieve.registry.measures import nll
 from textsieve.registry.runtime import Predictor
 
@@ -53,6 +54,69 @@ def test_bundle_files_and_manifest(tiny_bundles: dict[str, Path]) -> None:
     assert m.calibration.nll_after <= m.calibration.nll_before + 1e-12
     card = (tiny_bundles["a"] / CARD_FILE).read_text(encoding="utf-8")
     assert "aids for human review" in card and "bias" in card and "Monitor" in card
+
+
+def test_card_states_the_manifests_figures(tiny_bundles: dict[str, Path]) -> None:
+    m = open_bundle(tiny_bundles["a"]).manifest
+    card = (tiny_bundles["a"] / CARD_FILE).read_text(encoding="utf-8")
+    lengths = m.lengths
+    assert lengths.max_length > lengths.min_length, "the tiny model's 99th percentile is above its widest filter"
+    assert (
+        f"texts are truncated to {lengths.max_length} tokens (the 99th percentile of training lengths;\n"
+        f"{lengths.truncation_rate:.2%} of training texts were longer)"
+    ) in card
+    assert f"max-norm {m.architecture.max_norm:g}." in card
+    assert f"| {m.metrics.split} | {m.metrics.texts} | {m.metrics.accuracy:.4f} | {m.metrics.macro_f1:.4f} |" in card
+    assert f"T = {m.calibration.temperature:.4f}" in card
+    # Metrics measured on the texts that chose the epoch and T are not held-out figures (common practice).
+    caveat = "These are the validation texts, which also chose the training epoch (early stopping)"
+    assert (caveat in card) == (m.metrics.split == "validation")
+    held_out = m.model_copy(update={"metrics": m.metrics.model_copy(update={"split": "test:test.jsonl"})})
+    on_validation = m.model_copy(update={"metrics": m.metrics.model_copy(update={"split": "validation"})})
+    assert caveat not in render_card(held_out) and caveat in render_card(on_validation)
+
+
+def test_card_says_when_max_length_is_the_widest_filter(tiny_bundles: dict[str, Path]) -> None:
+    # prepare.length_info raises max_length to the widest filter when the percentile is shorter: the card
+    # said "the 1th percentile of training lengths" for a length no percentile gave.
+    m = open_bundle(tiny_bundles["a"]).manifest
+    widest = max(m.architecture.widths)
+    raised = m.model_copy(
+        update={
+            "lengths": LengthInfo(max_length=widest, min_length=widest, percentile=1.0, truncation_rate=0.93),
+            "architecture": m.architecture.model_copy(update={"max_norm": None}),
+        }
+    )
+    card = render_card(raised)
+    assert (
+        f"truncated to {widest} tokens (the widest filter, as the 1st percentile of training lengths is no longer;"
+    ) in card
+    assert "no max-norm constraint" in card and "None" not in card
+    one = raised.model_copy(
+        update={"lengths": LengthInfo(max_length=1, min_length=1, percentile=30.0, truncation_rate=0.27)}
+    )
+    assert "texts are truncated to 1 token (the widest filter" in render_card(one)
+
+
+@pytest.mark.parametrize(
+    ("percentile", "words"),
+    [
+        (1, "1st"),
+        (2, "2nd"),
+        (3, "3rd"),
+        (4, "4th"),
+        (11, "11th"),
+        (12, "12th"),
+        (13, "13th"),
+        (21, "21st"),
+        (22, "22nd"),
+        (99, "99th"),
+        (99.5, "99.5th"),
+        (100, "100th"),
+    ],
+)  # English ordinal suffixes (common practice)
+def test_ordinal(percentile: float, words: str) -> None:
+    assert ordinal(percentile) == words
 
 
 def test_onnx_matches_pytorch_on_mixed_lengths(
@@ -92,6 +156,42 @@ def test_temperature_matches_scipy_minimiser(tiny_bundles: dict[str, Path], tiny
         lambda t: nll(out.logits, targets, t), bounds=(0.05, 20), method="bounded", options={"xatol": 1e-8}
     )
     assert predictor.temperature == pytest.approx(best.x, rel=1e-3)
+
+
+def test_validation_texts_all_told_apart_leave_the_temperature_at_1() -> None:
+    # Three texts, each with its own class ahead: the NLL keeps falling as T shrinks, so scipy's bounded
+    # minimiser ends at the bound, which is no minimum (Guo et al., 2017, eq. for NLL; scipy as reference).
+    from scipy.optimize import minimize_scalar
+
+    logits = np.array([[2.0, -1.0], [0.3, 0.1], [-0.5, 1.5]])
+    targets = np.array([0, 0, 1])
+    best = minimize_scalar(
+        lambda t: nll(logits, targets, t), bounds=(0.05, 20), method="bounded", options={"xatol": 1e-8}
+    )
+    assert best.x == pytest.approx(0.05, abs=1e-5), "the minimiser stops at the bound"
+    grid = np.geomspace(0.05, 20, 50)
+    assert np.all(np.diff([nll(logits, targets, t) for t in grid]) > 0), "NLL rises with T: no interior minimum"
+    cal = calibrate(logits, targets)
+    assert (cal.temperature, cal.nll_after, cal.ece_after) == (1.0, cal.nll_before, cal.ece_before)
+    assert not temperature_fitted(cal)
+    # One text on the wrong side: a minimum exists, and it is scipy's.
+    wrong = np.array([0, 1, 1])
+    cal = calibrate(logits, wrong)
+    assert temperature_fitted(cal)
+    ref = minimize_scalar(lambda t: nll(logits, wrong, t), bounds=(0.05, 20), method="bounded", options={"xatol": 1e-8})
+    assert cal.temperature == pytest.approx(ref.x, rel=1e-3)
+
+
+def test_card_says_when_the_temperature_was_not_fitted(tiny_bundles: dict[str, Path]) -> None:
+    m = open_bundle(tiny_bundles["a"]).manifest
+    fitted = render_card(m)
+    assert f"fitted on {m.calibration.texts} validation texts: T = {m.calibration.temperature:.4f}" in fitted
+    kept = m.calibration.model_copy(
+        update={"temperature": 1.0, "nll_after": m.calibration.nll_before, "ece_after": m.calibration.ece_before}
+    )
+    card = render_card(m.model_copy(update={"calibration": kept}))
+    assert f"Not calibrated: the model classifies all {m.calibration.texts} validation texts correctly" in card
+    assert "fitted on" not in card
 
 
 def test_parity_failure_exits_1_and_writes_nothing(
@@ -166,13 +266,28 @@ def test_export_bad_run_folder_exits_2(tmp_path: Path, capsys: pytest.CaptureFix
     assert len(err) == 1 and err[0].startswith("textsieve: error:")
 
 
+def _without_digests(run: Path) -> None:
+    """A run folder written before run.json recorded its files' sha256 (they load unchecked)."""
+    info = json.loads((run / RUN_JSON).read_text(encoding="utf-8"))
+    del info["files"]
+    (run / RUN_JSON).write_text(json.dumps(info), encoding="utf-8")
+
+
+def _swap_vocabulary_lines(run: Path) -> None:
+    lines = (run / VOCAB_TXT).read_text(encoding="utf-8").split("\n")
+    lines[2], lines[3] = lines[3], lines[2]
+    (run / VOCAB_TXT).write_text("\n".join(lines), encoding="utf-8")
+
+
 def _nan_weights(run: Path) -> None:
+    _without_digests(run)
     state = torch.load(run / MODEL_PT, weights_only=True)
     state["output.bias"][0] = float("nan")
     torch.save(state, run / MODEL_PT)
 
 
 def _unknown_valid_label(run: Path) -> None:
+    _without_digests(run)
     with open(run / VALID_JSONL, "a", encoding="utf-8") as f:  # a blank line 25, then the row on line 26
         f.write('\n{"text": "the kettle is on", "label": "kitchen"}\n')
 
@@ -193,6 +308,14 @@ def _unknown_valid_label(run: Path) -> None:
             "{tmp}/bundle",
             "run/valid.jsonl: line 26: the label 'kitchen' is not one the model knows (billing, repair)",
             id="validation label unknown to the model",
+        ),
+        # Two tokens' ids swapped: the graph and the PyTorch reference read the same wrong vocabulary, so
+        # parity passed and the bundle scored every text with the two words exchanged.
+        pytest.param(
+            _swap_vocabulary_lines,
+            "{tmp}/bundle",
+            "run/vocab.txt: changed since training (sha256 ",
+            id="vocabulary edited after training",
         ),
         pytest.param(None, "{tmp}/afile", "--out {tmp}/afile: is an existing file", id="out is a file"),
         pytest.param(

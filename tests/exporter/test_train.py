@@ -54,7 +54,17 @@ def test_run_folder_follows_the_contract(keyword_run: Path, keyword_data: Path) 
     assert [p.name for p in keyword_run.parent.iterdir()] == ["run"], "no temp folders left behind"
     text = (keyword_run / RUN_JSON).read_text(encoding="utf-8")
     on_disk = json.loads(text)
-    assert set(on_disk) == {"labels", "tokenizer", "vocabulary", "lengths", "architecture", "training", "tool_version"}
+    assert set(on_disk) == {
+        "labels",
+        "tokenizer",
+        "vocabulary",
+        "lengths",
+        "architecture",
+        "training",
+        "tool_version",
+        "files",
+    }
+    assert on_disk["files"] == {name: sha256_file(keyword_run / name) for name in (MODEL_PT, VOCAB_TXT, VALID_JSONL)}
     assert set(on_disk["vocabulary"]) == {"size", "min_count", "max_size"}
     epoch_keys = {"epoch", "train_loss", "valid_loss", "valid_accuracy"}
     assert on_disk["training"]["history"] and all(set(h) == epoch_keys for h in on_disk["training"]["history"])
@@ -203,7 +213,7 @@ def test_pretrained_vectors(mode: str, keyword_data: Path, tmp_path: Path) -> No
     np.testing.assert_array_equal(record.trained, weight.numpy())
 
 
-def test_length_statistics_by_hand(tmp_path: Path) -> None:
+def test_length_statistics_by_hand(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     # Texts of 1..100 tokens. numpy's default percentile (Hyndman & Fan, 1996, definition 7)
     # of 1..100 at 90 % is 1 + 0.9 * 99 = 90.1, so max_length = ceil(90.1) = 91 and the 9 texts
     # of 92..100 tokens (9 %) are truncated.
@@ -231,6 +241,8 @@ def test_length_statistics_by_hand(tmp_path: Path) -> None:
     )
     lengths = read_run_info(out).lengths
     assert lengths == LengthInfo(max_length=91, min_length=5, percentile=90.0, truncation_rate=0.09)
+    said = capsys.readouterr().out
+    assert "max_length   91 tokens (the 90th percentile of training lengths); truncates 9.0% of" in said
 
     # A low percentile cannot go below the widest filter.
     out2 = tmp_path / "run2"
@@ -257,6 +269,9 @@ def test_length_statistics_by_hand(tmp_path: Path) -> None:
     lengths = read_run_info(out2).lengths
     assert (lengths.max_length, lengths.min_length) == (7, 7)
     assert lengths.truncation_rate == pytest.approx(93 / 100)
+    # The 1st percentile (1.99 tokens) is not what max_length is, and the summary does not say it is.
+    said = capsys.readouterr().out
+    assert "max_length   7 tokens (the widest filter, as the 1st percentile of training lengths is no longer)" in said
 
 
 def test_a_previous_run_is_replaced(keyword_data: Path, tmp_path: Path) -> None:
@@ -291,6 +306,9 @@ def _bad_files(folder: Path) -> None:
     write_jsonl(folder / "unseen.jsonl", [{"text": "a", "label": "billing"}, {"text": "b", "label": "shipping"}])
     write_jsonl(folder / "few.jsonl", [{"text": "a", "label": "x"}, {"text": "b", "label": "y"}])
     write_jsonl(folder / "once.jsonl", [{"text": f"the shed {i}", "label": f"shelf {i}"} for i in range(40)])
+    forms = ["caf\u00e9", "cafe\u0301", "repair"]  # one label in two Unicode forms (UAX #15 canonical equivalence)
+    write_jsonl(folder / "forms.jsonl", [{"text": f"the counter {i}", "label": forms[i % 3]} for i in range(30)])
+    write_jsonl(folder / "samefive.jsonl", [{"text": "the same line", "label": "ab"[i % 2]} for i in range(40)])
     write_jsonl(folder / "fours.jsonl", [{"text": f"the pantry {i}", "label": "ab"[i % 2]} for i in range(8)])
     # Finite float32 values near its largest (3.4e38): the first sums overflow to inf, and inf - inf is nan.
     (folder / "huge16.txt").write_text(
@@ -317,6 +335,16 @@ OUT = ["--out", "{tmp}/out"]
         ),
         pytest.param(["{tmp}/onelabel.jsonl", *OUT], "1 distinct label ('x')", id="one label"),
         pytest.param(["{tmp}/latin1.jsonl", *OUT], "line 1: byte offset 13 is not valid UTF-8", id="not UTF-8"),
+        pytest.param(
+            ["{tmp}/forms.jsonl", *OUT],
+            "has labels that are the same text in different Unicode forms: 'cafe\u0301' (cafe<U+0301>, 10 rows)",
+            id="one label in two Unicode forms",
+        ),
+        pytest.param(
+            ["{data}", *OUT, "--text-field", "label"],
+            "--text-field and --label-field both name 'label'; the model would read the label it is to predict",
+            id="text field is the label field",
+        ),
         pytest.param(["{tmp}/emptytext.jsonl", *OUT], "line 2: the 'text' field is empty", id="empty text"),
         pytest.param(["{data}", "--valid", "{tmp}/unseen.jsonl", *OUT], "labels not in", id="unseen valid label"),
         pytest.param(
@@ -328,6 +356,12 @@ OUT = ["--out", "{tmp}/out"]
         # VALID_SHARE 10 % of a label's rows, rounded half up: 0.4 of 4 rows rounds to none, 0.5 of 5 to one.
         pytest.param(
             ["{tmp}/once.jsonl", *OUT], "(40 labels, at most 1 row each); a label needs at least 5", id="labels once"
+        ),
+        pytest.param(
+            ["{tmp}/samefive.jsonl", *OUT],
+            "every label has too few distinct texts to hold out a 10% validation split (2 labels, at most 20 rows "
+            "but 1 distinct text each; copies of a text stay on one side of the split)",
+            id="one text many times",
         ),
         pytest.param(
             ["{tmp}/fours.jsonl", *OUT],
@@ -422,6 +456,28 @@ def _edit_run_json(run: Path, change: Callable[[dict[str, Any]], object]) -> Non
     (run / RUN_JSON).write_text(json.dumps(content), encoding="utf-8")
 
 
+def _older_run(damage: Callable[[Path], object]) -> Callable[[Path], None]:
+    """``damage`` to a run folder written before run.json recorded its files' sha256: the checks behind
+    that one still name what is wrong."""
+
+    def apply(run: Path) -> None:
+        _edit_run_json(run, lambda c: c.pop("files"))
+        damage(run)
+
+    return apply
+
+
+def _swap_vocabulary_lines(run: Path) -> None:
+    lines = (run / VOCAB_TXT).read_text(encoding="utf-8").split("\n")
+    lines[2], lines[3] = lines[3], lines[2]
+    (run / VOCAB_TXT).write_text("\n".join(lines), encoding="utf-8")
+
+
+def _cut_valid(run: Path) -> None:
+    lines = (run / VALID_JSONL).read_text(encoding="utf-8").splitlines(keepends=True)
+    (run / VALID_JSONL).write_text("".join(lines[:5]), encoding="utf-8")
+
+
 def _nan_weights(run: Path, name: str) -> None:
     state = torch.load(run / MODEL_PT, weights_only=True)
     state[name].view(-1)[0] = float("nan")
@@ -445,7 +501,7 @@ def _nan_weights(run: Path, name: str) -> None:
             id="run.json with a bad width",
         ),
         pytest.param(
-            lambda run: (run / MODEL_PT).write_bytes(b"not a zip"),
+            _older_run(lambda run: (run / MODEL_PT).write_bytes(b"not a zip")),
             r"copied/model\.pt: not a readable weights file",
             id="weights not a zip",
         ),
@@ -455,14 +511,29 @@ def _nan_weights(run: Path, name: str) -> None:
             id="weights of another shape",
         ),
         pytest.param(
-            lambda run: _nan_weights(run, "output.bias"),
+            _older_run(lambda run: _nan_weights(run, "output.bias")),
             r"copied/model\.pt: the weights are not finite \(nan or inf in output\.bias\)",
             id="weights not finite",
         ),
         pytest.param(
-            lambda run: (run / VOCAB_TXT).write_text("<pad>\n<unk>\nonly\n", encoding="utf-8"),
+            _older_run(lambda run: (run / VOCAB_TXT).write_text("<pad>\n<unk>\nonly\n", encoding="utf-8")),
             r"copied/vocab\.txt: has 3 tokens but run\.json says",
             id="vocabulary of another size",
+        ),
+        # Edits the checks above cannot see: same sizes, same shapes, finite weights.
+        pytest.param(
+            _swap_vocabulary_lines,
+            r"copied/vocab\.txt: changed since training \(sha256 [0-9a-f]{12}…, run\.json records [0-9a-f]{12}…\)",
+            id="vocabulary lines swapped",
+        ),
+        pytest.param(_cut_valid, r"copied/valid\.jsonl: changed since training", id="validation rows cut short"),
+        pytest.param(
+            lambda run: _nan_weights(run, "output.bias"),
+            r"copied/model\.pt: changed since training",
+            id="weights edited",
+        ),
+        pytest.param(
+            lambda run: (run / VALID_JSONL).unlink(), r"copied/valid\.jsonl: missing", id="validation rows missing"
         ),
     ],
 )
@@ -474,6 +545,62 @@ def test_load_run_errors_name_the_file(
     damage(run)
     with pytest.raises(InputError, match=expected_msg):
         load_run(run)
+
+
+def _model_inputs(rows: list[dict[str, str]]) -> set[tuple[str, ...]]:
+    from textsieve.registry.tokenizer import Tokenizer
+
+    return {tuple(Tokenizer().split(r["text"])[0]) for r in rows}
+
+
+def test_copies_of_a_text_stay_on_one_side_of_the_held_out_split(
+    keyword_data: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # 30 texts, each 8 times (half of the copies re-cased and re-spaced: the same tokens): a row-wise split
+    # held out copies of training rows, so validation loss, early stopping and the export's calibration
+    # measured memory (data leakage; common practice to split such data by group).
+    base = [json.loads(line) for line in keyword_data.read_text(encoding="utf-8").splitlines()[:30]]
+    rows = [dict(r, text=r["text"].upper().replace(" ", "  ") if k % 2 else r["text"]) for k in range(8) for r in base]
+    data = write_jsonl(tmp_path / "copies.jsonl", rows)
+    out = tmp_path / "run"
+    assert main(["train", str(data), "--out", str(out), *TINY_FLAGS, "--epochs", "1"]) == 0
+    assert "note: 210 rows repeat the tokens of an earlier row" in capsys.readouterr().err
+    valid = [json.loads(line) for line in (out / VALID_JSONL).read_text(encoding="utf-8").splitlines()]
+    held = _model_inputs(valid)
+    assert valid and len(held) < len(valid), "copies held out together"
+    copies_of_held = [r for r in rows if _model_inputs([r]) <= held]
+    assert len(copies_of_held) == len(valid), "every copy of a held-out text is in validation, none in training"
+    info = read_run_info(out)
+    assert info.training.rows + info.training.valid_rows == len(rows)
+    assert sorted({r["label"] for r in valid}) == info.labels, "still stratified: each label in validation"
+
+
+def test_a_split_without_copies_is_the_plain_stratified_one(keyword_data: Path, keyword_run: Path) -> None:
+    # Each held-out label keeps its rounded 10 % (VALID_SHARE) when every text is distinct.
+    rows = [json.loads(line) for line in keyword_data.read_text(encoding="utf-8").splitlines()]
+    assert len(_model_inputs(rows)) == len(rows)
+    valid = [json.loads(line) for line in (keyword_run / VALID_JSONL).read_text(encoding="utf-8").splitlines()]
+    assert sorted(r["label"] for r in valid) == ["billing"] * 12 + ["repair"] * 12
+
+
+def test_validation_rows_that_are_training_rows_are_named(
+    keyword_data: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    rows = [json.loads(line) for line in keyword_data.read_text(encoding="utf-8").splitlines()]
+    valid = write_jsonl(tmp_path / "valid.jsonl", rows[:5] + [{"text": "a brand new line", "label": "billing"}])
+    out = tmp_path / "run"
+    assert main(["train", str(keyword_data), "--valid", str(valid), "--out", str(out), *TINY_FLAGS]) == 0
+    assert f"warning: 5 of 6 rows of {valid} (83.3%) have the tokens of a training row" in capsys.readouterr().err
+
+
+def test_labels_differing_only_in_case_train_with_a_warning(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    labels = ["Billing", "billing", "repair"]
+    rows = [{"text": f"the dock {i} word{i % 7}", "label": labels[i % 3]} for i in range(60)]
+    data = write_jsonl(tmp_path / "case.jsonl", rows)
+    assert main(["train", str(data), "--out", str(tmp_path / "run"), *TINY_FLAGS, "--epochs", "1"]) == 0
+    err = capsys.readouterr().err
+    assert "warning: the labels 'Billing' and 'billing' differ only in case" in err
+    assert read_run_info(tmp_path / "run").labels == ["Billing", "billing", "repair"], "labels stay as written"
 
 
 def test_train_function_returns_the_folder(keyword_data: Path, tmp_path: Path) -> None:
