@@ -68,7 +68,7 @@ DEFAULT_TEXTS = (
     "thank you so much, the new dashboard is great",
     "how do I change the email address on my account",
     "my parcel has not arrived and tracking shows nothing",
-    "",
+    "ok",
 )
 
 

@@ -201,6 +201,9 @@ def render(texts: list[str], reply: dict[str, Any], *, ansi: bool) -> str:
             )
             lines += ["    " + line for line in spans.splitlines()]
         extra = " · truncated" if res["truncated"] else ""
+        # Present only when the model has a review threshold (textsieve review-threshold).
+        if res.get("needs_review"):
+            extra += " · needs review"
         lines.append(f"    tokens {res['tokens']} · unknown {res['unknown']}{extra}")
     return "\n".join(lines)
 

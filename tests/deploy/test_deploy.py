@@ -342,6 +342,14 @@ def test_health_command_probes_the_readiness_endpoint(
     assert len(capsys.readouterr().out.strip().splitlines()) == 1
 
 
+def test_topology_default_texts_are_ones_the_service_accepts() -> None:
+    # `deploy/topology.py --bundle … --bundle …` as the README runs it sends these; an empty text
+    # is a 422 (nothing to classify), which failed the run at its first prediction.
+    from textsieve.service.web.schemas import PredictRequest
+
+    PredictRequest(texts=list(topology.DEFAULT_TEXTS))
+
+
 # -- the topology, end to end -----------------------------------------------------------------
 @pytest.fixture(scope="session")
 def postgres_url() -> str:

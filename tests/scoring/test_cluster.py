@@ -3,6 +3,7 @@ commands on loopback, score partitions that equal local scoring, also when a wor
 
 from __future__ import annotations
 
+import importlib.util
 import os
 import signal
 import subprocess
@@ -120,6 +121,14 @@ def test_a_worker_killed_mid_run_is_retried_and_the_output_is_complete(scoring_r
     [
         pytest.param(["in.csv"], "--cluster reads Parquet or JSONL", id="csv-input"),
         pytest.param(["missing.parquet"], "missing.parquet: no such file", id="missing-file"),
+        # A URL whose fsspec filesystem is missing or unknown was a traceback (ImportError, ValueError).
+        pytest.param(
+            ["s3://bucket/in.parquet"],
+            "s3://bucket/in.parquet: Install s3fs to access S3, here and on every worker",
+            id="url-filesystem-not-installed",
+            marks=pytest.mark.skipif(importlib.util.find_spec("s3fs") is not None, reason="s3fs is installed"),
+        ),
+        pytest.param(["nosuch://x/in.parquet"], "nosuch://x/in.parquet: Protocol not known: nosuch", id="url-unknown"),
         pytest.param(["in.parquet", "--text-field", "body"], "the input has no column 'body'", id="wrong-field"),
         pytest.param(["ints.parquet"], "the text column 'text' holds int64 values", id="parquet-int-text"),
         pytest.param(["two.parquet"], "the schema names the column 'text' twice", id="parquet-column-named-twice"),

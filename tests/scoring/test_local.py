@@ -212,6 +212,13 @@ def _tamper(registry: Path) -> None:
 
 BAD_INPUT = [
     pytest.param(["missing.jsonl", "--out", "o.jsonl"], 2, "missing.jsonl: no such file", id="missing-file"),
+    # A URL, which only --cluster reads, was taken for a path: "s3:/bucket/t.jsonl: no such file".
+    pytest.param(
+        ["s3://bucket/t.jsonl", "--out", "o.jsonl"],
+        2,
+        "s3://bucket/t.jsonl: a URL is read only with --cluster",
+        id="url-without-cluster",
+    ),
     pytest.param(
         ["in.jsonl", "--out", "o.jsonl", "--text-field", "body"],
         2,

@@ -120,6 +120,24 @@ def test_render_marks_spans_by_code_point_offsets() -> None:
     assert "billing  90.0 %   (m v3)" in table and "1.500" in table and "truncated" in table
 
 
+@pytest.mark.parametrize(
+    ("needs_review", "shown"),
+    [
+        pytest.param(True, True, id="below-the-threshold"),
+        pytest.param(False, False, id="at-or-above-it"),
+        pytest.param(None, False, id="no-threshold-no-field"),
+    ],
+)
+def test_render_says_when_a_result_needs_review(needs_review: bool | None, shown: bool) -> None:
+    """A model with a review threshold marks results below it; predict printed nothing of it."""
+    result = {"label": "billing", "probabilities": {"billing": 0.6, "repair": 0.4}, "spans": []}
+    result |= {"tokens": 3, "truncated": False, "unknown": 0}
+    if needs_review is not None:
+        result["needs_review"] = needs_review
+    lines = render(["charged twice"], {"model": "m", "version": 1, "results": [result]}, ansi=False).splitlines()
+    assert lines[-1] == "    tokens 3 · unknown 0" + (" · needs review" if shown else "")
+
+
 def test_render_shows_control_characters_from_the_text_and_the_reply_as_escapes(
     monkeypatch: pytest.MonkeyPatch,
 ) -> None:

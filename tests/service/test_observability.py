@@ -141,6 +141,15 @@ def manifest_sha256(registry: Path, version: int) -> str:
         return str(reg.version(MODEL, version).manifest_sha256)
 
 
+def test_the_readme_metrics_table_lists_every_exposed_series() -> None:
+    # The table is where dashboard authors read the contract; a series missing there is undocumented.
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text(encoding="utf-8")
+    section = readme.split("### Metrics", 1)[1].split("\n### ", 1)[0]
+    rows = set(re.findall(r"^\| `(textsieve_[a-z_]+)` \|", section, re.M))
+    families = {re.sub(r"_(bucket|sum|count)$", "", name) for name in EXPOSED}
+    assert families <= rows, f"README's Metrics table lacks {sorted(families - rows)}"
+
+
 async def test_metrics_count_what_was_served(shared_registry: Path) -> None:
     texts = ["charged twice qzxv", "login fails wbbt plonk", "great " * 400, "ok"]
     async with serving(settings_for(shared_registry)) as (_, client):

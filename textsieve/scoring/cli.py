@@ -171,6 +171,8 @@ def _score(args: argparse.Namespace) -> int:
         else:
             from textsieve.scoring.local import score_file
 
+            if "://" in args.input:  # Path() would make s3://b/f "s3:/b/f: no such file"
+                raise InputError(f"{args.input}: a URL is read only with --cluster; give a local file")
             summary = score_file(
                 reg,
                 args.model,

@@ -201,7 +201,12 @@ def score_partition(payload: Payload, part: Partition, task: Task) -> pa.Table:
 def partitions(url: str, fmt: str, partition_bytes: int) -> tuple[list[Partition], pa.Schema | None]:
     import fsspec
 
-    fs, path = fsspec.core.url_to_fs(url)
+    try:
+        fs, path = fsspec.core.url_to_fs(url)
+    except ImportError as exc:  # fsspec knows the scheme; its filesystem package is not installed
+        raise InputError(f"{url}: {exc}, here and on every worker, to read such a URL") from exc
+    except ValueError as exc:  # "Protocol not known: …"
+        raise InputError(f"{url}: {exc}; give a path or a URL an fsspec filesystem reads") from exc
     try:
         info = fs.info(path)
     except FileNotFoundError:
