@@ -25,7 +25,7 @@ from textsieve.registry.tables import NONE, key_values, one_line
 if TYPE_CHECKING:
     from textsieve.registry.api import Registry
     from textsieve.registry.model_settings import ModelSettings, SettingValue
-    from textsieve.registry.records import Agreement, Event, GateResult
+    from textsieve.registry.records import Agreement, EvalsetInfo, Event, GateResult
 
 
 def table(
@@ -285,12 +285,15 @@ def cli_publish(args: argparse.Namespace) -> int:
         except SavedThenInterrupted as exc:  # Ctrl-C in the report after the commit: say what stands
             assert isinstance(exc.result, VersionInfo)
             info, stopped = exc.result, exc
-        extra = ""
+        extra, warning = "", None
         if args.evalset is not None and stopped is None:
             es = reg.evalset(info.model)
             extra = f"; evaluation set {args.evalset.name}: {es.texts if es else 0} texts"
+            warning = None if es is None else small_evalset_warning(reg, es)
     labels = one_line(", ".join(info.labels))
     print(f"published {info.model!r} version {info.version} (labels: {labels}){extra}", file=sys.stderr)
+    if warning:
+        print(warning, file=sys.stderr)
     _out(str(info.version))
     if stopped is not None:
         raise stopped
@@ -465,9 +468,29 @@ def cli_evalset_add(args: argparse.Namespace) -> int:
         info = reg.add_evalset(
             args.model, args.file, text_field=args.text_field, label_field=args.label_field, actor=args.actor
         )
+        warning = small_evalset_warning(reg, info)
     counts = one_line(", ".join(f"{label} {n}" for label, n in info.labels.items()))
     _out(f"evaluation set for {info.model!r}: {info.texts} texts ({counts}), sha256 {info.sha256[:12]}…")
+    if warning:
+        print(warning, file=sys.stderr)
     return 0
+
+
+def small_evalset_warning(reg: Registry, info: EvalsetInfo) -> str | None:
+    """One line when the metric gates would refuse ``info`` as too small for the model's live (else
+    newest) version under its settings: registering it is allowed, judging on it is not."""
+    from textsieve.registry.gates import GateSettings, evalset_shortfall, too_small_advice
+
+    reference = reg.live(info.model) or next(reversed(reg.versions(info.model)), None)
+    if reference is None:
+        return None
+    shortfall = evalset_shortfall(info.labels, reference.labels, GateSettings.of(reg.model_settings(info.model)))
+    if shortfall is None:
+        return None
+    return one_line(
+        f"warning: the metric gates will refuse to judge a promotion to live on this set ({shortfall[0]}); "
+        + too_small_advice(info.model)
+    )
 
 
 def cli_gates(args: argparse.Namespace) -> int:
@@ -547,14 +570,26 @@ def settings_table(values: Sequence[SettingValue]) -> str:
 
 def gates_in_force(settings: ModelSettings) -> str:
     """One line: which gates compare a candidate with live, as the settings stand."""
-    from textsieve.registry.model_settings import ECE_RISE, MACRO_F1_DROP, MCNEMAR, MCNEMAR_P, TOLERANCES
+    from textsieve.registry.model_settings import (
+        ECE_RISE,
+        EVALSET_MIN_PER_LABEL,
+        EVALSET_MIN_TEXTS,
+        MACRO_F1_DROP,
+        MCNEMAR,
+        MCNEMAR_P,
+        TOLERANCES,
+    )
 
     parts = ["parity", "labels"]
     if settings.get(MCNEMAR):
         parts.append(f"mcnemar (refuses when significantly worse: p < {settings.get(MCNEMAR_P):g})")
     if settings.get(TOLERANCES):
         parts.append(f"macro_f1 (drop ≤ {settings.get(MACRO_F1_DROP):g}), ece (rise ≤ {settings.get(ECE_RISE):g})")
-    return "gates on promotion to live: " + ", ".join(parts)
+    size = (
+        f"; the metric gates judge on an evaluation set of at least {settings.get(EVALSET_MIN_TEXTS):g} texts "
+        f"and {settings.get(EVALSET_MIN_PER_LABEL):g} per label"
+    )
+    return "gates on promotion to live: " + ", ".join(parts) + size
 
 
 def cli_verdicts(args: argparse.Namespace) -> int:

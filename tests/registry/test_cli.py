@@ -500,7 +500,10 @@ def test_gates_shows_and_changes_settings_with_a_reason(
     ]
     assert_aligned("\n".join(lines[:-1]))
     assert lines[1].split()[:4] == ["macro_f1_drop", "0.01", "0.01", "default"]
-    assert lines[-1] == "gates on promotion to live: parity, labels, macro_f1 (drop ≤ 0.01), ece (rise ≤ 0.02)"
+    assert lines[-1] == (
+        "gates on promotion to live: parity, labels, macro_f1 (drop ≤ 0.01), ece (rise ≤ 0.02); "
+        "the metric gates judge on an evaluation set of at least 50 texts and 5 per label"
+    )
 
     code, out, _ = run(
         capsys,
@@ -572,6 +575,11 @@ def test_review_threshold_verb(
             ["gates", "m", "--set", "review_threshold=0.8", "--reason", "x"], "unknown setting", id="wrong-verb"
         ),
         pytest.param(["gates", "m", "--set", "tolerances=off", "--reason", "x"], "needs mcnemar=on", id="no-gate-left"),
+        pytest.param(
+            ["gates", "m", "--set", "evalset_min_texts=2.5", "--reason", "x"],
+            "bad value '2.5' for evalset_min_texts: a whole number from 1 to 1,000,000,000",
+            id="fraction-of-a-text",
+        ),
         pytest.param(["gates", "ghost"], "no model 'ghost'", id="unknown-model"),
         pytest.param(["review-threshold", "m", "--set", "1.2", "--reason", "x"], "at most 1, or none", id="t-range"),
         pytest.param(["review-threshold", "m", "--set", "high", "--reason", "x"], "bad value 'high'", id="t-word"),
@@ -591,3 +599,18 @@ def test_settings_verbs_bad_input_exits_2_with_one_line(
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1 and err.startswith("textsieve: error: "), err
     assert expected_msg in err, err
+
+
+def test_evalset_add_warns_when_the_gates_would_find_it_too_small(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    r = ["--registry", str(tmp_path / "reg")]
+    one = tmp_path / "one.jsonl"
+    one.write_text((tiny_data / "test.jsonl").read_text().splitlines()[0] + "\n")
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)
+    code, out, err = run(capsys, "evalset", "add", "m", str(one), *r)
+    assert code == 0 and out.startswith("evaluation set for 'm': 1 texts")
+    assert err.startswith("warning: the metric gates will refuse to judge a promotion to live on this set (1 texts")
+    assert len(err.splitlines()) == 1 and "textsieve gates m --set evalset_min_texts=N" in err
+    code, out, err = run(capsys, "evalset", "add", "m", str(tiny_data / "test.jsonl"), *r)  # 90 texts, 19+ a label
+    assert code == 0 and err == ""
