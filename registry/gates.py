@@ -329,14 +329,15 @@ def metric_gates(
         return out
 
     drop = live_scores.macro_f1 - cand_scores.macro_f1
+    change = cand_scores.macro_f1 - live_scores.macro_f1  # not -drop: equal scores read +0.0000, not -0.0000
     f1_ok = drop <= settings.macro_f1_tolerance + _EPS
     f1 = GateResult(
         name="macro_f1",
         passed=f1_ok,
-        figures={**figures, "change": -drop},
+        figures={**figures, "change": change},
         detail=(
             f"macro-F1 {cand_scores.macro_f1:.4f} vs live {live_scores.macro_f1:.4f} "
-            f"(change {-drop:+.4f}, allowed drop {settings.macro_f1_tolerance:.4f}) on {len(evalset)} texts"
+            f"(change {change:+.4f}, allowed drop {settings.macro_f1_tolerance:.4f}) on {len(evalset)} texts"
         ),
     )
     rise = cand_scores.ece - live_scores.ece

@@ -449,6 +449,7 @@ def test_an_evalset_at_the_floor_is_judged_and_without_live_nothing_is_refused(m
     judged = metric_gates("m", candidate, live, at_floor, "0" * 64, GateSettings())
     assert [(g.name, g.passed) for g in judged] == [("macro_f1", True), ("ece", True)]
     assert "on 50 texts" in judged[0].detail
+    assert "(change +0.0000," in judged[0].detail  # equal scores read +0.0000, not -0.0000 (-(0.0) is -0.0)
     # With no live version nothing is compared, so a small set refuses nothing (as before).
     alone = metric_gates("m", candidate, None, _set({"l0": 1}), "0" * 64, GateSettings())
     assert all(g.passed and g.detail.startswith("no live version") for g in alone)
