@@ -614,3 +614,42 @@ def test_evalset_add_warns_when_the_gates_would_find_it_too_small(
     assert len(err.splitlines()) == 1 and "textsieve gates m --set evalset_min_texts=N" in err
     code, out, err = run(capsys, "evalset", "add", "m", str(tiny_data / "test.jsonl"), *r)  # 90 texts, 19+ a label
     assert code == 0 and err == ""
+
+
+@pytest.mark.parametrize(
+    ("text", "expected_msg"),
+    [
+        pytest.param("a\x00b", "contains a NUL character (U+0000) at character 1; remove it", id="NUL"),
+        pytest.param("\u200b\u2060", "has only whitespace and invisible characters (such as U+200B)", id="zero-width"),
+    ],
+)
+def test_every_reader_of_labelled_texts_refuses_what_the_service_refuses(
+    text: str,
+    expected_msg: str,
+    capsys: pytest.CaptureFixture[str],
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
+    tiny_data: Path,
+) -> None:
+    """train, evalset add, publish --evalset and evaluate --evalset took such rows (the gates and
+    reports then judged versions on texts no caller can send); each now exits 2 naming file and line."""
+    import json
+
+    r = ["--registry", str(tmp_path / "reg")]
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)
+    rows = [json.loads(line) for line in (tiny_data / "test.jsonl").read_text().splitlines()[:3]]
+    rows.insert(1, {"text": text, "label": rows[0]["label"]})
+    bad = tmp_path / "bad.jsonl"
+    bad.write_text("".join(json.dumps(row) + "\n" for row in rows))
+    for argv in (
+        ["evalset", "add", "m", str(bad), *r],
+        ["publish", str(tiny_bundles["b"]), "--model", "m", "--evalset", str(bad), *r],
+        ["evaluate", "m", "1", "--evalset", str(bad), "--out", str(tmp_path / "report"), *r],
+        ["train", str(bad), "--out", str(tmp_path / "run")],
+    ):
+        code, out, err = run(capsys, *argv)
+        assert code == 2 and out == "", (argv, err)
+        assert err.startswith(f"textsieve: error: {bad}: line 2: the 'text' field {expected_msg}"), (argv, err)
+        assert len(err.strip().splitlines()) == 1, err
+    assert len(run(capsys, "versions", "m", *r)[1].strip().splitlines()) == 2  # header and version 1: nothing stored
+    assert not (tmp_path / "run").exists() and not (tmp_path / "report").exists()

@@ -12,8 +12,8 @@ from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError, NotFoundError, StateError
 from textsieve.registry.records import State
-from textsieve.registry.tokenizer import nothing_to_classify, text_refusal
 from textsieve.scoring.rows import article
+from textsieve.texts import nothing_to_classify, text_refusal
 
 if TYPE_CHECKING:
     import pandas as pd
