@@ -899,6 +899,7 @@ class Registry:
             target = self._require_version(q, model, version)
             _allowed(target, State.CANDIDATE)
             previous = q.in_state(model, State.CANDIDATE)
+            back: State | None = None
             if previous is not None:
                 # Back to what it was: a version that has been live (a retired one on trial again) stays retired.
                 back = State.RETIRED if previous.promoted_at is not None else State.REGISTERED
@@ -915,6 +916,7 @@ class Registry:
                     "to": State.CANDIDATE,
                     "from": target.state,
                     "replaced_candidate": _num(previous),
+                    "replaced_candidate_to": back,  # registered, or retired if it had been live
                     "gates": [],
                     "forced": False,
                 },

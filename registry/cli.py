@@ -743,7 +743,9 @@ def summarise(e: Event) -> str:
     if d.get("retired") is not None:
         text += f", retired {d['retired']}"
     if d.get("replaced_candidate") is not None:
-        text += f", candidate {d['replaced_candidate']} back to registered"
+        # Events written before the state was recorded say "back" without where to.
+        to = d.get("replaced_candidate_to")
+        text += f", candidate {d['replaced_candidate']} back" + (f" to {to}" if to else "")
     if d.get("forced"):
         text += f"; FORCED past {', '.join(d.get('overridden', []))}"
     return text + (f"; {gates}" if gates else "")

@@ -653,3 +653,24 @@ def test_every_reader_of_labelled_texts_refuses_what_the_service_refuses(
         assert len(err.strip().splitlines()) == 1, err
     assert len(run(capsys, "versions", "m", *r)[1].strip().splitlines()) == 2  # header and version 1: nothing stored
     assert not (tmp_path / "run").exists() and not (tmp_path / "report").exists()
+
+
+def test_history_says_where_a_replaced_candidate_went(
+    capsys: pytest.CaptureFixture[str], spec: RegistrySpec, tiny_bundles: dict[str, Path]
+) -> None:
+    """A replaced candidate that had been live goes back to retired, and history said "back to
+    registered" for it; the event now records the state it went to."""
+    r = spec.cli_args()
+    for key in ("a", "b", "relabelled"):
+        run(capsys, "publish", str(tiny_bundles[key]), "--model", "m", *r)
+    run(capsys, "promote", "m", "1", "--to", "live", "--reason", "first", *r)
+    run(capsys, "promote", "m", "2", "--to", "live", "--reason", "second", "--force", *r)  # 1 retired
+    run(capsys, "promote", "m", "1", "--to", "candidate", "--reason", "retry 1 in the shadow", *r)
+    code, out, err = run(capsys, "promote", "m", "3", "--to", "candidate", "--reason", "try 3 instead", *r)
+    assert code == 0, err
+    run(capsys, "promote", "m", "1", "--to", "candidate", "--reason", "1 again", *r)
+    states = {line.split()[0]: line.split()[1] for line in run(capsys, "versions", "m", *r)[1].splitlines()[1:]}
+    assert states == {"1": "candidate", "2": "live", "3": "registered"}
+    history = run(capsys, "history", "m", *r)[1]
+    assert "registered → candidate, candidate 1 back to retired" in history, history
+    assert "retired → candidate, candidate 3 back to registered" in history, history
