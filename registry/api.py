@@ -481,6 +481,8 @@ class Registry:
                 "texts": info.texts,
                 "labels": info.labels,
                 "source": source,
+                "repeated_texts": normalised.repeated,
+                "conflicting_texts": len(normalised.conflicting),
             },
         )
         return info

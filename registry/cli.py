@@ -285,14 +285,14 @@ def cli_publish(args: argparse.Namespace) -> int:
         except SavedThenInterrupted as exc:  # Ctrl-C in the report after the commit: say what stands
             assert isinstance(exc.result, VersionInfo)
             info, stopped = exc.result, exc
-        extra, warning = "", None
+        extra, warnings = "", []
         if args.evalset is not None and stopped is None:
             es = reg.evalset(info.model)
             extra = f"; evaluation set {args.evalset.name}: {es.texts if es else 0} texts"
-            warning = None if es is None else small_evalset_warning(reg, es)
+            warnings = [] if es is None else evalset_warnings(reg, es)
     labels = one_line(", ".join(info.labels))
     print(f"published {info.model!r} version {info.version} (labels: {labels}){extra}", file=sys.stderr)
-    if warning:
+    for warning in warnings:
         print(warning, file=sys.stderr)
     _out(str(info.version))
     if stopped is not None:
@@ -468,12 +468,31 @@ def cli_evalset_add(args: argparse.Namespace) -> int:
         info = reg.add_evalset(
             args.model, args.file, text_field=args.text_field, label_field=args.label_field, actor=args.actor
         )
-        warning = small_evalset_warning(reg, info)
+        warnings = evalset_warnings(reg, info)
     counts = one_line(", ".join(f"{label} {n}" for label, n in info.labels.items()))
     _out(f"evaluation set for {info.model!r}: {info.texts} texts ({counts}), sha256 {info.sha256[:12]}…")
-    if warning:
+    for warning in warnings:
         print(warning, file=sys.stderr)
     return 0
+
+
+def evalset_warnings(reg: Registry, info: EvalsetInfo) -> list[str]:
+    """What to say about an evaluation set just registered: repeated or contradicting texts (from its
+    audit event), and a size the metric gates would refuse."""
+    from textsieve.registry.evalsets import repeats_warning
+
+    event = next(
+        (
+            e
+            for e in reversed(reg.history(info.model))
+            if e.kind == "evalset" and e.details.get("evalset_id") == info.id
+        ),
+        None,
+    )
+    d = {} if event is None else event.details
+    lines = [repeats_warning(int(d.get("repeated_texts", 0)), int(d.get("conflicting_texts", 0)), info.texts)]
+    lines.append(small_evalset_warning(reg, info))
+    return [line for line in lines if line]
 
 
 def small_evalset_warning(reg: Registry, info: EvalsetInfo) -> str | None:
@@ -723,7 +742,9 @@ def summarise(e: Event) -> str:
         m = d.get("metrics", {})
         return f"labels {_labels(d.get('labels', []))}; macro-F1 {m.get('macro_f1', 0):.4f}"
     if e.kind == "evalset":
-        return f"{d.get('source')}: {d.get('texts')} texts"
+        repeats = f", {d['repeated_texts']} repeated" if d.get("repeated_texts") else ""
+        conflicts = f", {d['conflicting_texts']} with two labels or more" if d.get("conflicting_texts") else ""
+        return f"{d.get('source')}: {d.get('texts')} texts{repeats}{conflicts}"
     if e.kind == "rollback":
         return f"live {d.get('from')} → {d.get('to')}"
     if e.kind == "settings":

@@ -674,3 +674,31 @@ def test_history_says_where_a_replaced_candidate_went(
     history = run(capsys, "history", "m", *r)[1]
     assert "registered → candidate, candidate 1 back to retired" in history, history
     assert "retired → candidate, candidate 3 back to registered" in history, history
+
+
+def test_evalset_add_reports_repeated_and_contradicting_texts(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    """A text twice counts twice in every figure, and a text under two labels is wrong for every version
+    on one of them; both were registered without a word. They are kept (two reviewers may disagree on a
+    text) but said on stderr and recorded in the evalset event."""
+    import json
+
+    r = ["--registry", str(tmp_path / "reg")]
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)
+    rows = [json.loads(line) for line in (tiny_data / "test.jsonl").read_text().splitlines()]
+    other = next(label for label in ("billing", "repair") if label != rows[0]["label"])
+    extra = [rows[1], rows[2], {"text": rows[0]["text"], "label": other}]
+    path = tmp_path / "dup.jsonl"
+    path.write_text("".join(json.dumps(row) + "\n" for row in rows + extra))
+    code, out, err = run(capsys, "evalset", "add", "m", str(path), *r)
+    assert code == 0 and out.startswith(f"evaluation set for 'm': {len(rows) + 3} texts")
+    assert err.splitlines() == [
+        f"warning: 3 of the {len(rows) + 3} rows repeat an earlier row's text (each counts in every figure); "
+        "1 texts have more than one label, so every version is wrong on one of them"
+    ]
+    assert (
+        f"dup.jsonl: {len(rows) + 3} texts, 3 repeated, 1 with two labels or more" in run(capsys, "history", "m", *r)[1]
+    )
+    code, _, err = run(capsys, "evalset", "add", "m", str(tiny_data / "test.jsonl"), *r)
+    assert code == 0 and err == ""
