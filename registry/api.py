@@ -974,9 +974,12 @@ class Registry:
         if live is None:
             raise StateError(f"{model!r} has no live version, so there is nothing to roll back")
         if live.previous_live is None:
+            # After rollbacks the versions that were live since are retired, so "no version was live
+            # before it" read as false: this is the start of the chain, not the absence of history.
             raise StateError(
-                f"version {live.version} of {model!r} is live and no version was live before "
-                "it; promote another version instead"
+                f"version {live.version} of {model!r} is live and was its first live version, so rollback has "
+                f"nothing earlier to return to; promote another version instead (textsieve promote {model} N "
+                "--to live)"
             )
         return live, self._require_version(q, model, live.previous_live)
 
