@@ -491,3 +491,30 @@ def test_a_one_text_evalset_refuses_promotion_until_forced_or_the_floor_is_lower
     metric = {g.name: g for g in result.gates}["macro_f1"]
     assert not result.forced and metric.passed
     assert metric.detail.endswith("on 1 texts") and metric.figures["evalset_min_texts"] == 1
+
+
+def test_grading_a_large_set_runs_the_graph_on_bounded_chunks_with_the_same_scores(
+    tiny_bundles: dict[str, Path], tiny_data: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The gates ran a whole evaluation set through one Predictor.run, which keeps every filter's
+    outputs for every text (gigabytes on a large set) where the gates need only the logits; the
+    figures are those of the whole set at once, checked with scikit-learn."""
+    rows = read_jsonl(tiny_data / "test.jsonl") + read_jsonl(tiny_data / "valid.jsonl")
+    examples = [LabelledText(r["text"], r["label"]) for r in rows]
+    bundle = open_bundle(tiny_bundles["a"])
+    sizes: list[int] = []
+    original = Predictor.run
+
+    def counting(self: Predictor, encoded: list, **kwargs: object) -> object:  # type: ignore[type-arg]
+        sizes.append(len(encoded))
+        return original(self, encoded, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(Predictor, "run", counting)
+    monkeypatch.setattr(gates_module, "GRADE_CHUNK", 64)
+    graded = gates_module.grade(bundle, examples)
+    assert max(sizes) <= 64 and sum(sizes) == len(examples)
+    truth = [e.label for e in examples]
+    predicted, _ = _predicted(tiny_bundles["a"], [e.text for e in examples])
+    assert graded.scores.accuracy == pytest.approx(sklearn.metrics.accuracy_score(truth, predicted))
+    assert graded.scores.macro_f1 == pytest.approx(sklearn.metrics.f1_score(truth, predicted, average="macro"))
+    assert graded.correct.tolist() == [p == t for p, t in zip(predicted, truth, strict=True)]
