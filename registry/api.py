@@ -717,11 +717,13 @@ class Registry:
 
     # -- lifecycle ------------------------------------------------------------------------
     def check(self, model: str, version: int) -> list[GateResult]:
-        """Run the promotion-to-live gates without promoting (nothing is recorded)."""
+        """Run the promotion-to-live gates without promoting (nothing is recorded); StateError when the
+        version could not become live (already live), as promote would say."""
         model, version = validate_model_name(model), validate_version(version)
         with self.backend.read() as tx:
             q = Queries(tx)
             target = self._require_version(q, model, version)
+            _allowed(target, State.LIVE)
             live = q.in_state(model, State.LIVE)
             evalset = q.evalset(model)
             settings = self._settings_in(q, model)

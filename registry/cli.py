@@ -96,8 +96,14 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         required=True,
         help="candidate: the one version under trial; live: the served one, after the gates",
     )
-    p.add_argument("--reason", action=_Once, required=True, help="why, recorded in the audit trail")
+    p.add_argument("--reason", action=_Once, help="why, recorded in the audit trail (required unless --dry-run)")
     p.add_argument("--force", action="store_true", help="override failed gates (recorded)")
+    p.add_argument(
+        "--dry-run",
+        action="store_true",
+        help="with --to live: run the gates against the live version and print them; change and record nothing "
+        "(exit 1 when a gate would refuse)",
+    )
     add_location_args(p)
     _actor_arg(p)
     p.set_defaults(func=cli_promote)
@@ -413,6 +419,10 @@ def cli_show(args: argparse.Namespace) -> int:
 def cli_promote(args: argparse.Namespace) -> int:
     from textsieve.registry.records import GateResult, Promotion
 
+    if args.dry_run:
+        return _promote_dry_run(args)
+    if args.reason is None:
+        raise InputError("promote needs --reason TEXT (recorded in the audit trail); only --dry-run goes without")
     stopped: SavedThenInterrupted | None = None
     with _open(args) as reg:
         try:
@@ -437,6 +447,28 @@ def cli_promote(args: argparse.Namespace) -> int:
     _out(f"{result.version.model!r} version {result.version.version} is now {result.version.state}{tail}{forced}")
     if stopped is not None:
         raise stopped
+    return 0
+
+
+def _promote_dry_run(args: argparse.Namespace) -> int:
+    """The gates a promotion to live would run now, printed; nothing changed or recorded."""
+    if args.to != "live":
+        raise InputError("--dry-run runs the gates of a promotion to live; --to candidate has none to run")
+    if args.force:
+        raise InputError("--dry-run with --force: a dry run changes nothing, so there is nothing to force; drop one")
+    with _open(args) as reg:
+        gates = reg.check(args.model, args.version)
+    _out(gate_table(gates))
+    failed = [g for g in gates if not g.passed]
+    if failed:
+        more = f" (and {len(failed) - 1} more: {', '.join(g.name for g in failed[1:])})" if len(failed) > 1 else ""
+        raise GateRefusedError(
+            f"version {args.version} of {args.model!r} would not be promoted to live: gate {failed[0].name} would "
+            f"refuse: {failed[0].detail}{more}; nothing was changed or recorded (dry run)"
+        )
+    _out(
+        f"{args.model!r} version {args.version} would be promoted to live: every gate passes (dry run; nothing changed)"
+    )
     return 0
 
 

@@ -702,3 +702,34 @@ def test_evalset_add_reports_repeated_and_contradicting_texts(
     )
     code, _, err = run(capsys, "evalset", "add", "m", str(tiny_data / "test.jsonl"), *r)
     assert code == 0 and err == ""
+
+
+def test_promote_dry_run_prints_the_gates_and_changes_nothing(
+    capsys: pytest.CaptureFixture[str], spec: RegistrySpec, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    """Seeing whether a promotion would pass needed a real attempt (a refusal recorded, or a change
+    made); --dry-run runs the same gates (Registry.check) and writes nothing."""
+    r = spec.cli_args()
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", "--evalset", str(tiny_data / "test.jsonl"), *r)
+    run(capsys, "publish", str(tiny_bundles["relabelled"]), "--model", "m", *r)
+    run(capsys, "publish", str(tiny_bundles["b"]), "--model", "m", *r)
+    code, out, err = run(capsys, "promote", "m", "1", "--to", "live", "--dry-run", *r)
+    assert code == 0 and out.splitlines()[-1].startswith("'m' version 1 would be promoted to live: every gate passes")
+    assert run(capsys, "history", "m", *r)[1].count("promote") == 0  # a dry run is no event
+    run(capsys, "promote", "m", "1", "--to", "live", "--reason", "first", *r)
+    events = run(capsys, "history", "m", *r)[1]
+    code, out, err = run(capsys, "promote", "m", "2", "--to", "live", "--dry-run", *r)
+    assert code == 1 and re.search(r"^labels\s+FAIL\s+labels differ", out, re.M)
+    assert err.startswith("textsieve: error: version 2 of 'm' would not be promoted to live: gate labels would refuse")
+    assert err.strip().endswith("nothing was changed or recorded (dry run)") and len(err.strip().splitlines()) == 1
+    assert run(capsys, "history", "m", *r)[1] == events  # no refusal recorded
+    assert "2  registered" in run(capsys, "versions", "m", *r)[1]
+    for argv, words in (
+        (["promote", "m", "1", "--to", "live", "--dry-run"], "version 1 of 'm' is already live"),
+        (["promote", "m", "3", "--to", "candidate", "--dry-run"], "--to candidate has none to run"),
+        (["promote", "m", "3", "--to", "live", "--dry-run", "--force"], "nothing to force"),
+        (["promote", "m", "3", "--to", "live"], "promote needs --reason TEXT"),
+    ):
+        code, out, err = run(capsys, *argv, *r)
+        assert code == 2 and out == "" and words in err and len(err.strip().splitlines()) == 1, (argv, err)
+    assert run(capsys, "history", "m", *r)[1] == events
