@@ -481,6 +481,8 @@ class Registry:
                 "texts": info.texts,
                 "labels": info.labels,
                 "source": source,
+                "repeated_texts": normalised.repeated,
+                "conflicting_texts": len(normalised.conflicting),
             },
         )
         return info
@@ -715,11 +717,13 @@ class Registry:
 
     # -- lifecycle ------------------------------------------------------------------------
     def check(self, model: str, version: int) -> list[GateResult]:
-        """Run the promotion-to-live gates without promoting (nothing is recorded)."""
+        """Run the promotion-to-live gates without promoting (nothing is recorded); StateError when the
+        version could not become live (already live), as promote would say."""
         model, version = validate_model_name(model), validate_version(version)
         with self.backend.read() as tx:
             q = Queries(tx)
             target = self._require_version(q, model, version)
+            _allowed(target, State.LIVE)
             live = q.in_state(model, State.LIVE)
             evalset = q.evalset(model)
             settings = self._settings_in(q, model)
@@ -899,6 +903,7 @@ class Registry:
             target = self._require_version(q, model, version)
             _allowed(target, State.CANDIDATE)
             previous = q.in_state(model, State.CANDIDATE)
+            back: State | None = None
             if previous is not None:
                 # Back to what it was: a version that has been live (a retired one on trial again) stays retired.
                 back = State.RETIRED if previous.promoted_at is not None else State.REGISTERED
@@ -915,6 +920,7 @@ class Registry:
                     "to": State.CANDIDATE,
                     "from": target.state,
                     "replaced_candidate": _num(previous),
+                    "replaced_candidate_to": back,  # registered, or retired if it had been live
                     "gates": [],
                     "forced": False,
                 },
@@ -970,9 +976,12 @@ class Registry:
         if live is None:
             raise StateError(f"{model!r} has no live version, so there is nothing to roll back")
         if live.previous_live is None:
+            # After rollbacks the versions that were live since are retired, so "no version was live
+            # before it" read as false: this is the start of the chain, not the absence of history.
             raise StateError(
-                f"version {live.version} of {model!r} is live and no version was live before "
-                "it; promote another version instead"
+                f"version {live.version} of {model!r} is live and was its first live version, so rollback has "
+                f"nothing earlier to return to; promote another version instead (textsieve promote {model} N "
+                "--to live)"
             )
         return live, self._require_version(q, model, live.previous_live)
 

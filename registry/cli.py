@@ -25,7 +25,7 @@ from textsieve.registry.tables import NONE, key_values, one_line
 if TYPE_CHECKING:
     from textsieve.registry.api import Registry
     from textsieve.registry.model_settings import ModelSettings, SettingValue
-    from textsieve.registry.records import Agreement, Event, GateResult
+    from textsieve.registry.records import Agreement, EvalsetInfo, Event, GateResult
 
 
 def table(
@@ -96,8 +96,14 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         required=True,
         help="candidate: the one version under trial; live: the served one, after the gates",
     )
-    p.add_argument("--reason", action=_Once, required=True, help="why, recorded in the audit trail")
+    p.add_argument("--reason", action=_Once, help="why, recorded in the audit trail (required unless --dry-run)")
     p.add_argument("--force", action="store_true", help="override failed gates (recorded)")
+    p.add_argument(
+        "--dry-run",
+        action="store_true",
+        help="with --to live: run the gates against the live version and print them; change and record nothing "
+        "(exit 1 when a gate would refuse)",
+    )
     add_location_args(p)
     _actor_arg(p)
     p.set_defaults(func=cli_promote)
@@ -285,12 +291,15 @@ def cli_publish(args: argparse.Namespace) -> int:
         except SavedThenInterrupted as exc:  # Ctrl-C in the report after the commit: say what stands
             assert isinstance(exc.result, VersionInfo)
             info, stopped = exc.result, exc
-        extra = ""
+        extra, warnings = "", []
         if args.evalset is not None and stopped is None:
             es = reg.evalset(info.model)
             extra = f"; evaluation set {args.evalset.name}: {es.texts if es else 0} texts"
+            warnings = [] if es is None else evalset_warnings(reg, es)
     labels = one_line(", ".join(info.labels))
     print(f"published {info.model!r} version {info.version} (labels: {labels}){extra}", file=sys.stderr)
+    for warning in warnings:
+        print(warning, file=sys.stderr)
     _out(str(info.version))
     if stopped is not None:
         raise stopped
@@ -410,6 +419,10 @@ def cli_show(args: argparse.Namespace) -> int:
 def cli_promote(args: argparse.Namespace) -> int:
     from textsieve.registry.records import GateResult, Promotion
 
+    if args.dry_run:
+        return _promote_dry_run(args)
+    if args.reason is None:
+        raise InputError("promote needs --reason TEXT (recorded in the audit trail); only --dry-run goes without")
     stopped: SavedThenInterrupted | None = None
     with _open(args) as reg:
         try:
@@ -434,6 +447,28 @@ def cli_promote(args: argparse.Namespace) -> int:
     _out(f"{result.version.model!r} version {result.version.version} is now {result.version.state}{tail}{forced}")
     if stopped is not None:
         raise stopped
+    return 0
+
+
+def _promote_dry_run(args: argparse.Namespace) -> int:
+    """The gates a promotion to live would run now, printed; nothing changed or recorded."""
+    if args.to != "live":
+        raise InputError("--dry-run runs the gates of a promotion to live; --to candidate has none to run")
+    if args.force:
+        raise InputError("--dry-run with --force: a dry run changes nothing, so there is nothing to force; drop one")
+    with _open(args) as reg:
+        gates = reg.check(args.model, args.version)
+    _out(gate_table(gates))
+    failed = [g for g in gates if not g.passed]
+    if failed:
+        more = f" (and {len(failed) - 1} more: {', '.join(g.name for g in failed[1:])})" if len(failed) > 1 else ""
+        raise GateRefusedError(
+            f"version {args.version} of {args.model!r} would not be promoted to live: gate {failed[0].name} would "
+            f"refuse: {failed[0].detail}{more}; nothing was changed or recorded (dry run)"
+        )
+    _out(
+        f"{args.model!r} version {args.version} would be promoted to live: every gate passes (dry run; nothing changed)"
+    )
     return 0
 
 
@@ -465,9 +500,48 @@ def cli_evalset_add(args: argparse.Namespace) -> int:
         info = reg.add_evalset(
             args.model, args.file, text_field=args.text_field, label_field=args.label_field, actor=args.actor
         )
+        warnings = evalset_warnings(reg, info)
     counts = one_line(", ".join(f"{label} {n}" for label, n in info.labels.items()))
     _out(f"evaluation set for {info.model!r}: {info.texts} texts ({counts}), sha256 {info.sha256[:12]}…")
+    for warning in warnings:
+        print(warning, file=sys.stderr)
     return 0
+
+
+def evalset_warnings(reg: Registry, info: EvalsetInfo) -> list[str]:
+    """What to say about an evaluation set just registered: repeated or contradicting texts (from its
+    audit event), and a size the metric gates would refuse."""
+    from textsieve.registry.evalsets import repeats_warning
+
+    event = next(
+        (
+            e
+            for e in reversed(reg.history(info.model))
+            if e.kind == "evalset" and e.details.get("evalset_id") == info.id
+        ),
+        None,
+    )
+    d = {} if event is None else event.details
+    lines = [repeats_warning(int(d.get("repeated_texts", 0)), int(d.get("conflicting_texts", 0)), info.texts)]
+    lines.append(small_evalset_warning(reg, info))
+    return [line for line in lines if line]
+
+
+def small_evalset_warning(reg: Registry, info: EvalsetInfo) -> str | None:
+    """One line when the metric gates would refuse ``info`` as too small for the model's live (else
+    newest) version under its settings: registering it is allowed, judging on it is not."""
+    from textsieve.registry.gates import GateSettings, evalset_shortfall, too_small_advice
+
+    reference = reg.live(info.model) or next(reversed(reg.versions(info.model)), None)
+    if reference is None:
+        return None
+    shortfall = evalset_shortfall(info.labels, reference.labels, GateSettings.of(reg.model_settings(info.model)))
+    if shortfall is None:
+        return None
+    return one_line(
+        f"warning: the metric gates will refuse to judge a promotion to live on this set ({shortfall[0]}); "
+        + too_small_advice(info.model)
+    )
 
 
 def cli_gates(args: argparse.Namespace) -> int:
@@ -547,14 +621,26 @@ def settings_table(values: Sequence[SettingValue]) -> str:
 
 def gates_in_force(settings: ModelSettings) -> str:
     """One line: which gates compare a candidate with live, as the settings stand."""
-    from textsieve.registry.model_settings import ECE_RISE, MACRO_F1_DROP, MCNEMAR, MCNEMAR_P, TOLERANCES
+    from textsieve.registry.model_settings import (
+        ECE_RISE,
+        EVALSET_MIN_PER_LABEL,
+        EVALSET_MIN_TEXTS,
+        MACRO_F1_DROP,
+        MCNEMAR,
+        MCNEMAR_P,
+        TOLERANCES,
+    )
 
     parts = ["parity", "labels"]
     if settings.get(MCNEMAR):
         parts.append(f"mcnemar (refuses when significantly worse: p < {settings.get(MCNEMAR_P):g})")
     if settings.get(TOLERANCES):
         parts.append(f"macro_f1 (drop ≤ {settings.get(MACRO_F1_DROP):g}), ece (rise ≤ {settings.get(ECE_RISE):g})")
-    return "gates on promotion to live: " + ", ".join(parts)
+    size = (
+        f"; the metric gates judge on an evaluation set of at least {settings.get(EVALSET_MIN_TEXTS):g} texts "
+        f"and {settings.get(EVALSET_MIN_PER_LABEL):g} per label"
+    )
+    return "gates on promotion to live: " + ", ".join(parts) + size
 
 
 def cli_verdicts(args: argparse.Namespace) -> int:
@@ -688,7 +774,9 @@ def summarise(e: Event) -> str:
         m = d.get("metrics", {})
         return f"labels {_labels(d.get('labels', []))}; macro-F1 {m.get('macro_f1', 0):.4f}"
     if e.kind == "evalset":
-        return f"{d.get('source')}: {d.get('texts')} texts"
+        repeats = f", {d['repeated_texts']} repeated" if d.get("repeated_texts") else ""
+        conflicts = f", {d['conflicting_texts']} with two labels or more" if d.get("conflicting_texts") else ""
+        return f"{d.get('source')}: {d.get('texts')} texts{repeats}{conflicts}"
     if e.kind == "rollback":
         return f"live {d.get('from')} → {d.get('to')}"
     if e.kind == "settings":
@@ -708,7 +796,9 @@ def summarise(e: Event) -> str:
     if d.get("retired") is not None:
         text += f", retired {d['retired']}"
     if d.get("replaced_candidate") is not None:
-        text += f", candidate {d['replaced_candidate']} back to registered"
+        # Events written before the state was recorded say "back" without where to.
+        to = d.get("replaced_candidate_to")
+        text += f", candidate {d['replaced_candidate']} back" + (f" to {to}" if to else "")
     if d.get("forced"):
         text += f"; FORCED past {', '.join(d.get('overridden', []))}"
     return text + (f"; {gates}" if gates else "")

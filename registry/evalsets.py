@@ -26,6 +26,10 @@ class NormalisedEvalset:
     data: bytes
     examples: list[LabelledText]
     labels: dict[str, int]
+    # Texts that occur more than once count once per row in every figure, and a text given two labels
+    # is wrong for every version on one of them: both are kept (two reviewers may disagree) but reported.
+    repeated: int = 0  # rows whose text an earlier row has
+    conflicting: tuple[str, ...] = ()  # texts given more than one label
 
 
 def load_evalset(path: Path, *, text_field: str = "text", label_field: str = "label") -> NormalisedEvalset:
@@ -41,7 +45,22 @@ def normalise(examples: list[LabelledText]) -> NormalisedEvalset:
     data = "".join(
         json.dumps({"label": e.label, "text": e.text}, ensure_ascii=False, sort_keys=True) + "\n" for e in examples
     ).encode("utf-8")
-    return NormalisedEvalset(data, examples, dict(sorted(Counter(e.label for e in examples).items())))
+    seen: dict[str, set[str]] = {}
+    for e in examples:
+        seen.setdefault(e.text, set()).add(e.label)
+    conflicting = tuple(text for text, labels in seen.items() if len(labels) > 1)
+    labels = dict(sorted(Counter(e.label for e in examples).items()))
+    return NormalisedEvalset(data, examples, labels, len(examples) - len(seen), conflicting)
+
+
+def repeats_warning(repeated: int, conflicting: int, texts: int) -> str | None:
+    """One line about repeated and contradicting texts in an evaluation set, or None."""
+    if not repeated:
+        return None
+    line = f"warning: {repeated} of the {texts} rows repeat an earlier row's text (each counts in every figure)"
+    if conflicting:
+        line += f"; {conflicting} texts have more than one label, so every version is wrong on one of them"
+    return line
 
 
 def parse_stored(data: bytes) -> list[LabelledText]:
@@ -57,4 +76,12 @@ def unknown_labels(evalset_labels: dict[str, int] | list[str], model_labels: lis
     return sorted(set(evalset_labels) - set(model_labels))
 
 
-__all__ = ["LabelledText", "NormalisedEvalset", "load_evalset", "normalise", "parse_stored", "unknown_labels"]
+__all__ = [
+    "LabelledText",
+    "NormalisedEvalset",
+    "load_evalset",
+    "normalise",
+    "parse_stored",
+    "repeats_warning",
+    "unknown_labels",
+]

@@ -70,6 +70,12 @@ class Setting(Generic[T]):
         )
 
     @staticmethod
+    def count(key: str, default: int, low: int, high: int, group: Group, help: str) -> Setting[float]:
+        """A whole number from ``low`` to ``high`` (a number of texts): 2.5 texts is no minimum anyone
+        meant, and was taken as 2. Stored as a float, like the other numbers."""
+        return Setting(key, float(default), group, help, f"a whole number from {low:,} to {high:,}", _count(low, high))
+
+    @staticmethod
     def level(key: str, default: float, low: float, high: float, group: Group, help: str) -> Setting[float]:
         """A number above ``low`` and at most ``high`` (a probability level, never 0)."""
         return Setting(key, default, group, help, f"a number above {low:g} and at most {high:g}", _number(low, high))
@@ -126,6 +132,16 @@ def _number(low: float, high: float, *, low_open: bool = True) -> Callable[[obje
     return check
 
 
+def _count(low: int, high: int) -> Callable[[object], float | None]:
+    inner = _number(low, high, low_open=False)
+
+    def check(value: object) -> float | None:
+        v = inner(value)
+        return v if v is not None and v.is_integer() else None
+
+    return check
+
+
 def _switch(value: object) -> bool | None:
     return value if isinstance(value, bool) else None
 
@@ -162,7 +178,14 @@ SHADOW_AGREEMENT_MIN = declare(
     )
 )
 SHADOW_MIN_TEXTS = declare(
-    Setting.number("shadow_min_texts", 1000, 1, 1e9, G, "live texts scored in the shadow before that share counts")
+    Setting.count("shadow_min_texts", 1000, 1, 10**9, G, "live texts scored in the shadow before that share counts")
+)
+# How small an evaluation set the metric gates judge on (registry/gates.py, "Too small a set").
+EVALSET_MIN_TEXTS = declare(
+    Setting.count("evalset_min_texts", 50, 1, 10**9, G, "least evaluation-set texts the metric gates judge on")
+)
+EVALSET_MIN_PER_LABEL = declare(
+    Setting.count("evalset_min_per_label", 5, 0, 10**9, G, "least evaluation-set texts of each label of the version")
 )
 REVIEW_THRESHOLD = declare(
     Setting.optional("review_threshold", 0.0, 1.0, R, "results whose top probability is below it need review")
@@ -251,6 +274,8 @@ class ModelSettings(BaseModel):
 
 __all__ = [
     "ECE_RISE",
+    "EVALSET_MIN_PER_LABEL",
+    "EVALSET_MIN_TEXTS",
     "MACRO_F1_DROP",
     "MCNEMAR",
     "MCNEMAR_P",

@@ -45,7 +45,7 @@ from textsieve.registry.names import (
 from textsieve.registry.queries import Queries
 from textsieve.registry.records import Agreement, VerdictInfo
 from textsieve.registry.stats import wilson_interval
-from textsieve.registry.tokenizer import text_refusal
+from textsieve.texts import text_refusal
 
 if TYPE_CHECKING:
     from textsieve.registry.api import Registry

@@ -230,6 +230,33 @@ def _jsonl(*rows: object) -> str:
             ["line 1: the label '\\udc00' holds a lone surrogate"],
             id="label with a lone surrogate",
         ),
+        # What the service refuses to classify (textsieve/texts.py) was trained and judged on: a NUL, and
+        # a text of only zero-width characters (U+200B ZERO WIDTH SPACE, U+2060 WORD JOINER: category Cf in
+        # the Unicode Character Database, so no tokenizer spec finds a token in them).
+        pytest.param(
+            "d.jsonl",
+            '{"text": "ok", "label": "a"}\n{"text": "bad\\u0000text", "label": "b"}\n',
+            ["line 2: the 'text' field contains a NUL character (U+0000) at character 3; remove it"],
+            id="text with a NUL",
+        ),
+        pytest.param(
+            "d.jsonl",
+            '{"text": "ok", "label": "a"}\n{"text": "\\u200b \\u2060", "label": "b"}\n',
+            ["line 2: the 'text' field has only whitespace and invisible characters (such as U+200B), no words"],
+            id="text of zero-width characters",
+        ),
+        pytest.param(
+            "d.csv",
+            "text,label\nok,a\n\u2060\u200b,b\n",
+            ["line 3: the 'text' field has only whitespace and invisible characters (such as U+2060)"],
+            id="CSV text of zero-width characters",
+        ),
+        pytest.param(
+            "d.json",
+            '[{"text": "ok", "label": "a"}, {"text": "x\\u0000", "label": "b"}]',
+            ["item 2: the 'text' field contains a NUL character (U+0000) at character 1"],
+            id="JSON array text with a NUL",
+        ),
     ],
 )
 def test_bad_data_file_is_one_line_naming_the_file(
@@ -311,3 +338,30 @@ def test_data_module_does_not_import_torch() -> None:
     code = "import sys, textsieve.labelled, textsieve.exporter.vectors; print('torch' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
+
+
+@pytest.mark.parametrize(
+    "text",
+    [
+        pytest.param("nul\x00inside", id="NUL"),
+        pytest.param("\u200b\u200c\u200d", id="zero-width only"),
+        pytest.param("\ufeff ", id="BOM and space"),
+        pytest.param("half \udfff", id="lone surrogate"),
+    ],
+)
+def test_a_labelled_file_refuses_what_the_service_refuses(tmp_path: Path, text: str) -> None:
+    """Every reader of labelled files (train, evaluate, evalset add, publish --evalset) and the HTTP API
+    agree: a row the service would refuse (textsieve.texts.text_refusal) is an error naming the row."""
+    from textsieve.service.web.schemas import PredictRequest
+    from textsieve.texts import text_refusal
+
+    with pytest.raises(ValueError, match="texts"):
+        PredictRequest.model_validate({"texts": [text]})  # the service's own refusal (HTTP 422)
+    why = text_refusal(text)
+    assert why is not None
+    path = tmp_path / "d.jsonl"
+    path.write_text(_jsonl({"text": "fine", "label": "a"}, {"text": text, "label": "b"}), encoding="utf-8")
+    message = _error(path)
+    assert message.startswith(f"{path}: line 2: the 'text' field "), message
+    if "surrogate" not in why:  # the reader names a lone surrogate in its own (older) words
+        assert message.endswith(why), message

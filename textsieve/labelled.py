@@ -1,7 +1,8 @@
 """Labelled examples from JSONL or CSV files, with one-line errors a person can act on.
 
 Kept free of torch and below both sides: the exporter trains on these files and the registry
-reads evaluation sets with :func:`load_examples`.
+reads evaluation sets with :func:`load_examples`. A row's text obeys the rules the service's
+(textsieve/texts.py), so no model is trained or judged on a text no caller could send.
 """
 
 from __future__ import annotations
@@ -18,6 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from textsieve.errors import InputError
+from textsieve.texts import text_refusal
 
 JSON_SUFFIXES = (".jsonl", ".ndjson", ".json")
 CSV_SUFFIXES = {".csv": ",", ".tsv": "\t"}
@@ -189,6 +191,11 @@ class _Fields:
             raise self._fail(where, f"the {self.text_field!r} field is empty; every row needs some text")
         if _lone_surrogate(text):
             raise self._fail(where, f"the {self.text_field!r} field {_LONE_SURROGATE}")
+        # What the service refuses to classify (only invisible characters, a NUL) is refused here too,
+        # in its words: training on such a row, or judging a version on it, used texts no caller can send.
+        why = text_refusal(text)
+        if why is not None:
+            raise self._fail(where, f"the {self.text_field!r} field {why}")
         label = record[self.label_field]
         if isinstance(label, bool | int):
             label = json.dumps(label)  # 1 → "1", true → "true": the label as written

@@ -19,7 +19,7 @@ from pydantic_core import PydanticCustomError
 from textsieve.labelled import MAX_LABEL_CHARS
 from textsieve.registry import ModelInfo, VersionInfo
 from textsieve.registry.names import MAX_VERSION, MODEL_NAME, MODEL_NAME_RULE
-from textsieve.registry.tokenizer import text_refusal
+from textsieve.texts import text_refusal
 
 # Bounds the schema states so that no number reaches a database column or a JSON encoder too big
 # for it; the service's own limits (max_spans) are far below.

@@ -259,7 +259,8 @@ def test_lifecycle_one_live_one_candidate_promote_retires_and_rollback_walks_bac
     assert registry.rollback("m", reason="b misbehaves").version == 3
     assert [v.state for v in registry.versions("m")] == ["retired", "retired", "live"]
     assert registry.rollback("m", reason="c too").version == 1
-    with pytest.raises(StateError, match="no version was live before"):
+    # versions 3 and 2 were live after 1 and are retired: "no version was live before it" read as false
+    with pytest.raises(StateError, match="version 1 of 'm' is live and was its first live version, so rollback"):
         registry.rollback("m", reason="nothing left")
 
     # A retired version on trial again, replaced by another candidate, goes back to retired (it has

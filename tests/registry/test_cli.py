@@ -500,7 +500,10 @@ def test_gates_shows_and_changes_settings_with_a_reason(
     ]
     assert_aligned("\n".join(lines[:-1]))
     assert lines[1].split()[:4] == ["macro_f1_drop", "0.01", "0.01", "default"]
-    assert lines[-1] == "gates on promotion to live: parity, labels, macro_f1 (drop ≤ 0.01), ece (rise ≤ 0.02)"
+    assert lines[-1] == (
+        "gates on promotion to live: parity, labels, macro_f1 (drop ≤ 0.01), ece (rise ≤ 0.02); "
+        "the metric gates judge on an evaluation set of at least 50 texts and 5 per label"
+    )
 
     code, out, _ = run(
         capsys,
@@ -572,6 +575,11 @@ def test_review_threshold_verb(
             ["gates", "m", "--set", "review_threshold=0.8", "--reason", "x"], "unknown setting", id="wrong-verb"
         ),
         pytest.param(["gates", "m", "--set", "tolerances=off", "--reason", "x"], "needs mcnemar=on", id="no-gate-left"),
+        pytest.param(
+            ["gates", "m", "--set", "evalset_min_texts=2.5", "--reason", "x"],
+            "bad value '2.5' for evalset_min_texts: a whole number from 1 to 1,000,000,000",
+            id="fraction-of-a-text",
+        ),
         pytest.param(["gates", "ghost"], "no model 'ghost'", id="unknown-model"),
         pytest.param(["review-threshold", "m", "--set", "1.2", "--reason", "x"], "at most 1, or none", id="t-range"),
         pytest.param(["review-threshold", "m", "--set", "high", "--reason", "x"], "bad value 'high'", id="t-word"),
@@ -591,3 +599,137 @@ def test_settings_verbs_bad_input_exits_2_with_one_line(
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1 and err.startswith("textsieve: error: "), err
     assert expected_msg in err, err
+
+
+def test_evalset_add_warns_when_the_gates_would_find_it_too_small(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    r = ["--registry", str(tmp_path / "reg")]
+    one = tmp_path / "one.jsonl"
+    one.write_text((tiny_data / "test.jsonl").read_text().splitlines()[0] + "\n")
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)
+    code, out, err = run(capsys, "evalset", "add", "m", str(one), *r)
+    assert code == 0 and out.startswith("evaluation set for 'm': 1 texts")
+    assert err.startswith("warning: the metric gates will refuse to judge a promotion to live on this set (1 texts")
+    assert len(err.splitlines()) == 1 and "textsieve gates m --set evalset_min_texts=N" in err
+    code, out, err = run(capsys, "evalset", "add", "m", str(tiny_data / "test.jsonl"), *r)  # 90 texts, 19+ a label
+    assert code == 0 and err == ""
+
+
+@pytest.mark.parametrize(
+    ("text", "expected_msg"),
+    [
+        pytest.param("a\x00b", "contains a NUL character (U+0000) at character 1; remove it", id="NUL"),
+        pytest.param("\u200b\u2060", "has only whitespace and invisible characters (such as U+200B)", id="zero-width"),
+    ],
+)
+def test_every_reader_of_labelled_texts_refuses_what_the_service_refuses(
+    text: str,
+    expected_msg: str,
+    capsys: pytest.CaptureFixture[str],
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
+    tiny_data: Path,
+) -> None:
+    """train, evalset add, publish --evalset and evaluate --evalset took such rows (the gates and
+    reports then judged versions on texts no caller can send); each now exits 2 naming file and line."""
+    import json
+
+    r = ["--registry", str(tmp_path / "reg")]
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)
+    rows = [json.loads(line) for line in (tiny_data / "test.jsonl").read_text().splitlines()[:3]]
+    rows.insert(1, {"text": text, "label": rows[0]["label"]})
+    bad = tmp_path / "bad.jsonl"
+    bad.write_text("".join(json.dumps(row) + "\n" for row in rows))
+    for argv in (
+        ["evalset", "add", "m", str(bad), *r],
+        ["publish", str(tiny_bundles["b"]), "--model", "m", "--evalset", str(bad), *r],
+        ["evaluate", "m", "1", "--evalset", str(bad), "--out", str(tmp_path / "report"), *r],
+        ["train", str(bad), "--out", str(tmp_path / "run")],
+    ):
+        code, out, err = run(capsys, *argv)
+        assert code == 2 and out == "", (argv, err)
+        assert err.startswith(f"textsieve: error: {bad}: line 2: the 'text' field {expected_msg}"), (argv, err)
+        assert len(err.strip().splitlines()) == 1, err
+    assert len(run(capsys, "versions", "m", *r)[1].strip().splitlines()) == 2  # header and version 1: nothing stored
+    assert not (tmp_path / "run").exists() and not (tmp_path / "report").exists()
+
+
+def test_history_says_where_a_replaced_candidate_went(
+    capsys: pytest.CaptureFixture[str], spec: RegistrySpec, tiny_bundles: dict[str, Path]
+) -> None:
+    """A replaced candidate that had been live goes back to retired, and history said "back to
+    registered" for it; the event now records the state it went to."""
+    r = spec.cli_args()
+    for key in ("a", "b", "relabelled"):
+        run(capsys, "publish", str(tiny_bundles[key]), "--model", "m", *r)
+    run(capsys, "promote", "m", "1", "--to", "live", "--reason", "first", *r)
+    run(capsys, "promote", "m", "2", "--to", "live", "--reason", "second", "--force", *r)  # 1 retired
+    run(capsys, "promote", "m", "1", "--to", "candidate", "--reason", "retry 1 in the shadow", *r)
+    code, out, err = run(capsys, "promote", "m", "3", "--to", "candidate", "--reason", "try 3 instead", *r)
+    assert code == 0, err
+    run(capsys, "promote", "m", "1", "--to", "candidate", "--reason", "1 again", *r)
+    states = {line.split()[0]: line.split()[1] for line in run(capsys, "versions", "m", *r)[1].splitlines()[1:]}
+    assert states == {"1": "candidate", "2": "live", "3": "registered"}
+    history = run(capsys, "history", "m", *r)[1]
+    assert "registered → candidate, candidate 1 back to retired" in history, history
+    assert "retired → candidate, candidate 3 back to registered" in history, history
+
+
+def test_evalset_add_reports_repeated_and_contradicting_texts(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    """A text twice counts twice in every figure, and a text under two labels is wrong for every version
+    on one of them; both were registered without a word. They are kept (two reviewers may disagree on a
+    text) but said on stderr and recorded in the evalset event."""
+    import json
+
+    r = ["--registry", str(tmp_path / "reg")]
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)
+    rows = [json.loads(line) for line in (tiny_data / "test.jsonl").read_text().splitlines()]
+    other = next(label for label in ("billing", "repair") if label != rows[0]["label"])
+    extra = [rows[1], rows[2], {"text": rows[0]["text"], "label": other}]
+    path = tmp_path / "dup.jsonl"
+    path.write_text("".join(json.dumps(row) + "\n" for row in rows + extra))
+    code, out, err = run(capsys, "evalset", "add", "m", str(path), *r)
+    assert code == 0 and out.startswith(f"evaluation set for 'm': {len(rows) + 3} texts")
+    assert err.splitlines() == [
+        f"warning: 3 of the {len(rows) + 3} rows repeat an earlier row's text (each counts in every figure); "
+        "1 texts have more than one label, so every version is wrong on one of them"
+    ]
+    assert (
+        f"dup.jsonl: {len(rows) + 3} texts, 3 repeated, 1 with two labels or more" in run(capsys, "history", "m", *r)[1]
+    )
+    code, _, err = run(capsys, "evalset", "add", "m", str(tiny_data / "test.jsonl"), *r)
+    assert code == 0 and err == ""
+
+
+def test_promote_dry_run_prints_the_gates_and_changes_nothing(
+    capsys: pytest.CaptureFixture[str], spec: RegistrySpec, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    """Seeing whether a promotion would pass needed a real attempt (a refusal recorded, or a change
+    made); --dry-run runs the same gates (Registry.check) and writes nothing."""
+    r = spec.cli_args()
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", "--evalset", str(tiny_data / "test.jsonl"), *r)
+    run(capsys, "publish", str(tiny_bundles["relabelled"]), "--model", "m", *r)
+    run(capsys, "publish", str(tiny_bundles["b"]), "--model", "m", *r)
+    code, out, err = run(capsys, "promote", "m", "1", "--to", "live", "--dry-run", *r)
+    assert code == 0 and out.splitlines()[-1].startswith("'m' version 1 would be promoted to live: every gate passes")
+    assert run(capsys, "history", "m", *r)[1].count("promote") == 0  # a dry run is no event
+    run(capsys, "promote", "m", "1", "--to", "live", "--reason", "first", *r)
+    events = run(capsys, "history", "m", *r)[1]
+    code, out, err = run(capsys, "promote", "m", "2", "--to", "live", "--dry-run", *r)
+    assert code == 1 and re.search(r"^labels\s+FAIL\s+labels differ", out, re.M)
+    assert err.startswith("textsieve: error: version 2 of 'm' would not be promoted to live: gate labels would refuse")
+    assert err.strip().endswith("nothing was changed or recorded (dry run)") and len(err.strip().splitlines()) == 1
+    assert run(capsys, "history", "m", *r)[1] == events  # no refusal recorded
+    assert "2  registered" in run(capsys, "versions", "m", *r)[1]
+    for argv, words in (
+        (["promote", "m", "1", "--to", "live", "--dry-run"], "version 1 of 'm' is already live"),
+        (["promote", "m", "3", "--to", "candidate", "--dry-run"], "--to candidate has none to run"),
+        (["promote", "m", "3", "--to", "live", "--dry-run", "--force"], "nothing to force"),
+        (["promote", "m", "3", "--to", "live"], "promote needs --reason TEXT"),
+    ):
+        code, out, err = run(capsys, *argv, *r)
+        assert code == 2 and out == "" and words in err and len(err.strip().splitlines()) == 1, (argv, err)
+    assert run(capsys, "history", "m", *r)[1] == events

@@ -3,6 +3,7 @@ tolerance edges, forcing, and re-judging when the live version changes while gat
 
 from __future__ import annotations
 
+import dataclasses
 import shutil
 from pathlib import Path
 
@@ -88,8 +89,9 @@ def test_metric_gate_passes_a_better_candidate(
 ) -> None:
     a, b = tiny_bundles["a"], tiny_bundles["b"]
     evalset, _ = _evalset_favouring(b, a, tiny_data, tmp_path / "eval.jsonl")
-    # isolate the macro-F1 gate: the ECE gate is judged in its own test
-    with spec.open(settings=GateSettings(ece_tolerance=1.0)) as reg:
+    # isolate the macro-F1 gate: the ECE gate is judged in its own test; b predicts no 'praise', so the
+    # set it labelled has none, which the size floor would refuse first
+    with spec.open(settings=GateSettings(ece_tolerance=1.0, evalset_min_per_label=0)) as reg:
         reg.publish(a, "m", evalset=evalset)
         reg.publish(b, "m")
         reg.promote("m", 1, "live", reason="baseline")
@@ -111,6 +113,9 @@ def _sides(live: Scores, cand: Scores, monkeypatch: pytest.MonkeyPatch) -> tuple
 
 
 EXAMPLES = [LabelledText("t", "l0")] * 10
+# The unit tables below judge stubbed scores on a few one-label texts: the size floor
+# (test_a_too_small_evalset_*) would refuse them before the figure under test is looked at.
+ANY_SIZE = GateSettings(evalset_min_texts=1, evalset_min_per_label=0)
 
 
 @pytest.mark.parametrize(
@@ -125,7 +130,7 @@ EXAMPLES = [LabelledText("t", "l0")] * 10
 )
 def test_macro_f1_tolerance_edge(f1_live: float, f1_cand: float, passed: bool, monkeypatch: pytest.MonkeyPatch) -> None:
     candidate, live = _sides(Scores(10, 0.9, f1_live, 0.05), Scores(10, 0.9, f1_cand, 0.05), monkeypatch)
-    result = metric_gates("m", candidate, live, EXAMPLES, "0" * 64, GateSettings())
+    result = metric_gates("m", candidate, live, EXAMPLES, "0" * 64, ANY_SIZE)
     by_name = {g.name: g for g in result}
     assert by_name["macro_f1"].passed is passed
     assert by_name["ece"].passed
@@ -144,7 +149,7 @@ def test_macro_f1_tolerance_edge(f1_live: float, f1_cand: float, passed: bool, m
 )
 def test_ece_tolerance_edge(ece_live: float, ece_cand: float, passed: bool, monkeypatch: pytest.MonkeyPatch) -> None:
     candidate, live = _sides(Scores(10, 0.9, 0.8, ece_live), Scores(10, 0.9, 0.8, ece_cand), monkeypatch)
-    by_name = {g.name: g for g in metric_gates("m", candidate, live, EXAMPLES, "0" * 64, GateSettings())}
+    by_name = {g.name: g for g in metric_gates("m", candidate, live, EXAMPLES, "0" * 64, ANY_SIZE)}
     assert by_name["ece"].passed is passed and by_name["macro_f1"].passed
     assert by_name["ece"].figures["change"] == pytest.approx(ece_cand - ece_live)
 
@@ -276,7 +281,7 @@ def _pairs(both: int, right_to_wrong: int, wrong_to_right: int, neither: int) ->
     return live, cand
 
 
-MCNEMAR_ON = GateSettings(mcnemar=True)
+MCNEMAR_ON = GateSettings(mcnemar=True, evalset_min_texts=1, evalset_min_per_label=0)
 
 
 @pytest.mark.parametrize(
@@ -312,7 +317,7 @@ def test_mcnemar_published_worked_example(monkeypatch: pytest.MonkeyPatch) -> No
     assert gate.figures["n"] == 21
     assert round(gate.figures["mcnemar_p"], 3) == 0.070
     assert gate.passed  # 0.070 is not below 0.05, and the candidate gained more than it lost
-    strict = GateSettings(mcnemar=True, mcnemar_p=0.1)
+    strict = GateSettings(mcnemar=True, mcnemar_p=0.1, evalset_min_texts=1, evalset_min_per_label=0)
     reversed_live, reversed_cand = _pairs(1, 7, 1, 12)  # the same table the other way: worse at the 0.1 level
     candidate, live_side = _graded_sides(reversed_live, reversed_cand, monkeypatch)
     gate = metric_gates("m", candidate, live_side, [LabelledText("t", "l0")] * 21, "0" * 64, strict)[0]
@@ -339,7 +344,7 @@ def test_mcnemar_refusal_names_figures_report_and_command(monkeypatch: pytest.Mo
 
 def test_tolerances_off_leaves_only_the_statistical_gate(monkeypatch: pytest.MonkeyPatch) -> None:
     live, cand = _pairs(100, 3, 1, 20)  # macro-F1 and accuracy drop 0.0161: beyond the 0.01 tolerance
-    settings = GateSettings(mcnemar=True, tolerances=False)
+    settings = GateSettings(mcnemar=True, tolerances=False, evalset_min_texts=1, evalset_min_per_label=0)
     candidate, live_side = _graded_sides(live, cand, monkeypatch)
     result = metric_gates("m", candidate, live_side, [LabelledText("t", "l0")] * 124, "0" * 64, settings)
     assert [(g.name, g.passed) for g in result] == [("mcnemar", True)]
@@ -389,3 +394,127 @@ def test_per_model_settings_drive_promotion(
     registry.change_settings("m", {"mcnemar_p": f["mcnemar_p"] / 2}, reason="stricter evidence", actor="lead")
     result = registry.promote("m", 2, "live", reason="seed 2 again")
     assert [g.name for g in result.gates] == ["parity", "labels", "mcnemar"] and not result.forced
+
+
+# -- too small an evaluation set --------------------------------------------------------------
+def _set(counts: dict[str, int]) -> list[LabelledText]:
+    return [LabelledText(f"text {label} {i}", label) for label, n in counts.items() for i in range(n)]
+
+
+@pytest.mark.parametrize(
+    ("counts", "settings", "expected_msg"),
+    [
+        pytest.param({"l0": 1}, GateSettings(), "1 texts, need at least 50 (evalset_min_texts)", id="one-text"),
+        pytest.param(
+            {"l0": 60},
+            GateSettings(),
+            "labels with fewer than 5 texts (evalset_min_per_label): 'l1' 0, 'l2' 0",
+            id="one-label",
+        ),
+        pytest.param(
+            {"l0": 30, "l1": 26, "l2": 4}, GateSettings(), "(evalset_min_per_label): 'l2' 4;", id="one-label-short"
+        ),
+        pytest.param(
+            {"l0": 40, "l1": 40, "l2": 40},
+            GateSettings(evalset_min_texts=200),
+            "120 texts, need at least 200",
+            id="raised-floor",
+        ),
+    ],
+)
+def test_a_too_small_evalset_is_refused_by_every_metric_gate_saying_what_is_needed(
+    counts: dict[str, int], settings: GateSettings, expected_msg: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A 1-text or one-label set passed "on 1 texts"; with a live version it is now refused, before
+    anything is scored, naming the shortfall, the settings to lower and how to add texts."""
+    candidate, live = _sides(Scores(1, 1.0, 1.0, 0.0), Scores(1, 1.0, 1.0, 0.0), monkeypatch)
+    on = dataclasses.replace(settings, mcnemar=True)
+    result = metric_gates("m", candidate, live, _set(counts), "0" * 64, on)
+    assert [(g.name, g.passed) for g in result] == [("mcnemar", False), ("macro_f1", False), ("ece", False)]
+    for gate in result:
+        assert gate.detail.startswith("the evaluation set is too small to judge against live version 1: ")
+        assert expected_msg in gate.detail
+        assert "textsieve evalset add m FILE" in gate.detail
+        assert "textsieve gates m --set evalset_min_texts=N --set evalset_min_per_label=N --reason" in gate.detail
+        assert gate.figures["label_counts"] == counts
+        assert (gate.figures["evalset_min_texts"], gate.figures["evalset_min_per_label"]) == (
+            settings.evalset_min_texts,
+            settings.evalset_min_per_label,
+        )
+
+
+def test_an_evalset_at_the_floor_is_judged_and_without_live_nothing_is_refused(monkeypatch: pytest.MonkeyPatch) -> None:
+    candidate, live = _sides(Scores(50, 0.9, 0.8, 0.05), Scores(50, 0.9, 0.8, 0.05), monkeypatch)
+    at_floor = _set({"l0": 40, "l1": 5, "l2": 5})  # exactly 50 texts and 5 of the rarest label
+    judged = metric_gates("m", candidate, live, at_floor, "0" * 64, GateSettings())
+    assert [(g.name, g.passed) for g in judged] == [("macro_f1", True), ("ece", True)]
+    assert "on 50 texts" in judged[0].detail
+    assert "(change +0.0000," in judged[0].detail  # equal scores read +0.0000, not -0.0000 (-(0.0) is -0.0)
+    # With no live version nothing is compared, so a small set refuses nothing (as before).
+    alone = metric_gates("m", candidate, None, _set({"l0": 1}), "0" * 64, GateSettings())
+    assert all(g.passed and g.detail.startswith("no live version") for g in alone)
+    # Labels a version does not know are named first: that is what to fix.
+    other = Side(1, ["x", "y"], live.load)
+    unknown = metric_gates("m", candidate, other, _set({"l0": 1}), "0" * 64, GateSettings())
+    assert "labels this version does not know: 'l0'" in unknown[0].detail
+
+
+def test_a_one_text_evalset_refuses_promotion_until_forced_or_the_floor_is_lowered(
+    registry: Registry, tiny_bundles: dict[str, Path], tiny_data: Path, tmp_path: Path
+) -> None:
+    one = tmp_path / "one.jsonl"
+    write_jsonl(one, read_jsonl(tiny_data / "test.jsonl")[:1])
+    registry.publish(tiny_bundles["a"], "m", evalset=one)
+    registry.publish(tiny_bundles["b"], "m")
+    registry.promote("m", 1, "live", reason="first: nothing to compare with")
+    with pytest.raises(GateRefusedError, match=r"gate macro_f1 refused: the evaluation set is too small") as info:
+        registry.promote("m", 2, "live", reason="seed 2")
+    assert "1 texts, need at least 50" in info.value.message and "(and 1 more: ece)" in info.value.message
+    refused = registry.history("m")[-1]
+    assert refused.kind == "refuse" and refused.details["failed"] == ["macro_f1", "ece"]
+    assert registry.live("m").version == 1  # type: ignore[union-attr]
+
+    # --force with a reason still overrides, and says so in the audit trail
+    forced = registry.promote("m", 2, "live", reason="hotfix, set too small to judge", force=True)
+    assert forced.forced and forced.version.state == "live"
+    event = registry.history("m")[-1]
+    assert event.details["overridden"] == ["macro_f1", "ece"] and event.reason == "hotfix, set too small to judge"
+
+    # lowering the floor is an audited settings change, and the gates then judge on the one text
+    registry.rollback("m", reason="back to 1")
+    registry.change_settings(  # (tolerances wide open: which of a and b gets the one text right is not the point)
+        "m",
+        {"evalset_min_texts": 1, "evalset_min_per_label": 0, "macro_f1_drop": 1.0, "ece_rise": 1.0},
+        reason="a smoke test set on purpose",
+    )
+    result = registry.promote("m", 2, "live", reason="judged on the one text")
+    metric = {g.name: g for g in result.gates}["macro_f1"]
+    assert not result.forced and metric.passed
+    assert metric.detail.endswith("on 1 texts") and metric.figures["evalset_min_texts"] == 1
+
+
+def test_grading_a_large_set_runs_the_graph_on_bounded_chunks_with_the_same_scores(
+    tiny_bundles: dict[str, Path], tiny_data: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The gates ran a whole evaluation set through one Predictor.run, which keeps every filter's
+    outputs for every text (gigabytes on a large set) where the gates need only the logits; the
+    figures are those of the whole set at once, checked with scikit-learn."""
+    rows = read_jsonl(tiny_data / "test.jsonl") + read_jsonl(tiny_data / "valid.jsonl")
+    examples = [LabelledText(r["text"], r["label"]) for r in rows]
+    bundle = open_bundle(tiny_bundles["a"])
+    sizes: list[int] = []
+    original = Predictor.run
+
+    def counting(self: Predictor, encoded: list, **kwargs: object) -> object:  # type: ignore[type-arg]
+        sizes.append(len(encoded))
+        return original(self, encoded, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(Predictor, "run", counting)
+    monkeypatch.setattr(gates_module, "GRADE_CHUNK", 64)
+    graded = gates_module.grade(bundle, examples)
+    assert max(sizes) <= 64 and sum(sizes) == len(examples)
+    truth = [e.label for e in examples]
+    predicted, _ = _predicted(tiny_bundles["a"], [e.text for e in examples])
+    assert graded.scores.accuracy == pytest.approx(sklearn.metrics.accuracy_score(truth, predicted))
+    assert graded.scores.macro_f1 == pytest.approx(sklearn.metrics.f1_score(truth, predicted, average="macro"))
+    assert graded.correct.tolist() == [p == t for p, t in zip(predicted, truth, strict=True)]

@@ -44,6 +44,8 @@ def test_defaults_are_the_documented_ones(registry: Registry, model: str) -> Non
         "mcnemar_p": 0.05,
         "shadow_agreement_min": None,  # the shadow-agreement gate off
         "shadow_min_texts": 1000.0,
+        "evalset_min_texts": 50.0,  # the size floor of the metric gates (registry/gates.py)
+        "evalset_min_per_label": 5.0,
         "review_threshold": None,
     }
     assert all(v.is_default and v.set_by is None for v in s.values.values())
@@ -170,6 +172,9 @@ def test_unknown_model_is_not_found(registry: Registry) -> None:
         (" mcnemar_p = 0.01", ("mcnemar_p", 0.01)),
         ("review_threshold=none", ("review_threshold", None)),
         ("review_threshold=0.9", ("review_threshold", 0.9)),
+        ("evalset_min_texts=200", ("evalset_min_texts", 200.0)),
+        ("evalset_min_per_label=0", ("evalset_min_per_label", 0.0)),
+        ("shadow_min_texts=1e3", ("shadow_min_texts", 1000.0)),
     ],
 )
 def test_parse_assignment(text: str, expected: tuple[str, object]) -> None:
@@ -184,6 +189,11 @@ def test_parse_assignment(text: str, expected: tuple[str, object]) -> None:
         pytest.param("macro_f1_drop=1e9", "bad value '1e9' for macro_f1_drop: a number from 0 to 1", id="range"),
         pytest.param("macro_f1_drop=inf", "bad value 'inf' for macro_f1_drop", id="inf"),
         pytest.param("macro_f1_drop=none", "bad value 'none' for macro_f1_drop", id="none-not-optional"),
+        # Counts of texts are whole numbers: 2.5 was stored and used as 2.
+        pytest.param("shadow_min_texts=2.5", "for shadow_min_texts: a whole number from 1 to", id="fraction"),
+        pytest.param("evalset_min_texts=0", "for evalset_min_texts: a whole number from 1 to", id="no-texts"),
+        pytest.param("evalset_min_per_label=-1", "for evalset_min_per_label: a whole number from 0", id="negative"),
+        pytest.param("evalset_min_per_label=nan", "bad value 'nan' for evalset_min_per_label", id="nan"),
     ],
 )
 def test_parse_assignment_refusals(text: str, expected_msg: str) -> None:

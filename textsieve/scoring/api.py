@@ -35,10 +35,12 @@ def score_file(
     resume: bool = False,
     stream: TextIO | None = None,
     blobs: str | os.PathLike[str] | None = None,
+    retired: bool = False,
 ) -> Summary:
     """Score every row of ``source`` with ``model`` (its live version, or ``version``) into ``output``:
     what ``textsieve score`` runs. ``registry`` is a Registry, a folder or a postgresql:// URL (with
-    ``blobs``). Bad input is an InputError or NotFoundError before anything is written."""
+    ``blobs``). Bad input is an InputError or NotFoundError before anything is written; a retired
+    ``version`` is a StateError unless ``retired`` is True (as in :func:`textsieve.load_model`)."""
     paths = {"source": _path("source", source), "output": _path("output", output)}
     if options is not None and not isinstance(options, Options):
         raise InputError(f"options must be textsieve.Options(...), not {_kind(options)}")
@@ -46,10 +48,20 @@ def score_file(
     _check_options(opts)
     if not isinstance(resume, bool):
         raise InputError(f"resume must be True or False, not {resume!r}")
+    if not isinstance(retired, bool):
+        raise InputError(f"retired must be True or False, not {retired!r}")
     reg, owned = _open(registry, blobs)
     try:
         return _score_file(
-            reg, model, paths["source"], paths["output"], version=version, options=opts, resume=resume, stream=stream
+            reg,
+            model,
+            paths["source"],
+            paths["output"],
+            version=version,
+            options=opts,
+            resume=resume,
+            stream=stream,
+            retired=retired,
         )
     finally:
         if owned:

@@ -58,6 +58,11 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p.add_argument("--model", required=True, help="model name in the registry")
     p.add_argument("--version", type=_positive, help="version number (default: the live version, pinned at the start)")
     p.add_argument(
+        "--retired",
+        action="store_true",
+        help="allow --version to name a retired version (refused otherwise, as the HTTP API refuses to pin one)",
+    )
+    p.add_argument(
         "--out",
         required=True,
         help="file to write (.jsonl, .csv, .tsv or .parquet), in place only when complete; with --cluster a folder "
@@ -166,6 +171,7 @@ def _score(args: argparse.Namespace) -> int:
                 version=args.version,
                 options=options,
                 resume=args.resume,
+                retired=args.retired,
                 partition_bytes=args.partition_mb << 20,
             )
         else:
@@ -181,6 +187,7 @@ def _score(args: argparse.Namespace) -> int:
                 version=args.version,
                 options=options,
                 resume=args.resume,
+                retired=args.retired,
             )
     print(summary.line())
     return 0

@@ -319,6 +319,7 @@ def score_on_cluster(
     resume: bool = False,
     partition_bytes: int = 64 << 20,
     stream: TextIO | None = None,
+    retired: bool = False,
 ) -> Summary:
     """Score ``source`` on the Dask cluster at ``cluster`` into the Parquet dataset folder ``output``."""
     opts = options or Options()
@@ -333,7 +334,7 @@ def score_on_cluster(
     formats._pyarrow()
     _check_output(output)
     parts, input_schema = partitions(source, fmt, partition_bytes)
-    resolved = resolve(registry, model, version)
+    resolved = resolve(registry, model, version, retired=retired)
     sample = _sample(parts)
     whole = len(parts) == 1 and parts[0].end <= SAMPLE_BYTES and len(sample) < SAMPLE_ROWS
     layout = _layout(sample, input_schema, opts, resolved, whole=whole)

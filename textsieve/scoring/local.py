@@ -300,6 +300,7 @@ def score_file(
     options: Options | None = None,
     resume: bool = False,
     stream: TextIO | None = None,
+    retired: bool = False,
 ) -> Summary:
     """Score every row of ``source`` with ``model`` (its live version, or ``version``) into ``output``.
 
@@ -329,7 +330,7 @@ def score_file(
     try:
         if out_fmt == "parquet":
             formats._pyarrow()
-        resolved = resolve(registry, model, version)
+        resolved = resolve(registry, model, version, retired=retired)
         expected = {
             "format": STATE_FORMAT,
             "input": _input_identity(source),

@@ -10,9 +10,10 @@ from numbers import Integral
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from textsieve.errors import InputError, NotFoundError
-from textsieve.registry.tokenizer import nothing_to_classify, text_refusal
+from textsieve.errors import InputError, NotFoundError, StateError
+from textsieve.registry.records import State
 from textsieve.scoring.rows import article
+from textsieve.texts import nothing_to_classify, text_refusal
 
 if TYPE_CHECKING:
     import pandas as pd
@@ -36,12 +37,26 @@ class Resolved:
         return {"model": self.model, "version": self.version, "bundle_sha256": self.bundle_sha256}
 
 
-def resolve(registry: Registry, model: str, version: int | None = None) -> Resolved:
-    """Pin ``version`` (the live one when None) and fetch its bundle, every blob re-hashed."""
+def resolve(registry: Registry, model: str, version: int | None = None, *, retired: bool = False) -> Resolved:
+    """Pin ``version`` (the live one when None) and fetch its bundle, every blob re-hashed.
+
+    A retired version is refused unless ``retired`` is True, as ``POST /v1/predict`` refuses to pin
+    one: it was taken out of service, and scoring with it by accident (a stale version number in a
+    script) should not pass silently. Reproducing its old results is what ``retired=True`` is for."""
+    if not isinstance(retired, bool):
+        raise InputError(f"retired must be True or False, not {retired!r}")
     info = registry.version(model, version) if version is not None else registry.live(model)
     if info is None:
         raise NotFoundError(
             f"{model!r} has no live version; promote one (textsieve promote {model} N --to live) or pass --version N"
+        )
+    if info.state == State.RETIRED and not retired:
+        live = registry.live(info.model)
+        instead = f"the live version ({live.version})" if live is not None else "the live version"
+        raise StateError(
+            f"version {info.version} of {info.model!r} is retired and no longer served; use {instead}, a candidate "
+            "or a registered version, or ask for the retired one explicitly (load_model(..., retired=True); "
+            "textsieve score --retired) to reproduce its results"
         )
     # fetch() with the pinned number, never "live" again: a promotion during the run changes nothing.
     bundle = registry.fetch(info.model, info.version)
@@ -238,15 +253,17 @@ def load_model(
     *,
     blobs: str | os.PathLike[str] | None = None,
     threads: int = 1,
+    retired: bool = False,
 ) -> Model:
     """Load ``name``'s live version (or ``version``) from a registry object, folder or postgresql:// URL
-    (with ``blobs``), after re-checking the sha256 of every file of its bundle."""
+    (with ``blobs``), after re-checking the sha256 of every file of its bundle. A retired version is a
+    StateError, as the HTTP API refuses to pin one, unless ``retired=True``."""
     count: object = threads  # as passed, which the annotation does not promise
     if isinstance(count, bool) or not isinstance(count, Integral) or count < 1:
         raise InputError(f"threads must be a whole number, 1 or more (onnxruntime threads), not {count!r}")
     reg, owned = _open(registry, blobs)
     try:
-        return Model(resolve(reg, name, version), threads=threads)
+        return Model(resolve(reg, name, version, retired=retired), threads=threads)
     finally:
         if owned:
             reg.close()

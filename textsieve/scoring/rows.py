@@ -10,8 +10,8 @@ from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError
 from textsieve.labelled import json_kind
-from textsieve.registry.tokenizer import nothing_to_classify
 from textsieve.scoring.columns import Layout
+from textsieve.texts import nothing_to_classify
 
 if TYPE_CHECKING:
     import numpy as np

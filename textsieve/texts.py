@@ -1,0 +1,62 @@
+"""The rules a text to classify obeys, in one place below every side.
+
+The HTTP API (service/web/schemas.py), ``load_model(...).predict``, file scoring, reviewers'
+verdicts and every labelled file read for training, evaluation or the promotion gates
+(textsieve/labelled.py) refuse the same texts in the same words: a text with nothing to classify
+(empty, or only whitespace and invisible format characters), a NUL, or a lone surrogate. A model
+trained or judged on texts the service would never accept learns from, or is scored on, inputs
+that cannot reach it. Kept free of the tokenizer's imports so the lowest layer can use it;
+registry/tokenizer.py names these too, and its tests hold :func:`has_no_tokens` to every
+tokenizer spec.
+"""
+
+from __future__ import annotations
+
+import unicodedata
+
+
+def has_no_tokens(text: str) -> bool:
+    """Whether no tokenizer spec finds a token in ``text``: every character is whitespace or an
+    invisible format character (category Cf: zero-width space, joiners, bidi controls), which
+    separate tokens and never become one. Read up to the first character that is neither, so a
+    text with a visible first character costs one step."""
+    for c in text:
+        if not c.isspace() and (c.isascii() or unicodedata.category(c) != "Cf"):
+            return False
+    return True
+
+
+def nothing_to_classify(text: str) -> str | None:
+    """Why ``text`` gives the model nothing to classify (a label for no tokens would be the model's
+    prior, whatever the text), or None: the words the HTTP API, the Python API and file scoring
+    refuse such a text with."""
+    if not text.strip():
+        return "is empty (only whitespace)" if text else "is empty"
+    if has_no_tokens(text):
+        shown = next(c for c in text if not c.isspace())
+        return f"has only whitespace and invisible characters (such as U+{ord(shown):04X}), no words"
+    return None
+
+
+def text_refusal(text: str) -> str | None:
+    """Why a text sent to be classified is refused, or None: nothing to classify, a NUL (no human
+    text holds one; C-based consumers cut strings at it), or a lone surrogate (JSON may carry
+    ``"\\ud800"``; it is not text and cannot be encoded in a reply). The words the HTTP API
+    (service/web/schemas.py), ``load_model(...).predict``, a verdict's text and a labelled file's
+    rows (textsieve/labelled.py) are refused with, after what names the text."""
+    why = nothing_to_classify(text)
+    if why is not None:
+        return f"{why}; every text needs something to classify"
+    nul = text.find("\x00")
+    if nul >= 0:
+        return f"contains a NUL character (U+0000) at character {nul}; remove it"
+    if not text.isascii():  # an ASCII string (a flag CPython keeps on it) has no surrogate
+        try:
+            text.encode("utf-8")
+        except UnicodeEncodeError as exc:
+            code = ord(text[exc.start])
+            return f"contains a lone surrogate (U+{code:04X}) at character {exc.start}; send valid Unicode"
+    return None
+
+
+__all__ = ["has_no_tokens", "nothing_to_classify", "text_refusal"]
