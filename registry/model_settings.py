@@ -61,6 +61,9 @@ class Setting(Generic[T]):
     allowed: str  # what the values may be, in words, for messages and help
     check: Callable[[object], T | None]  # the value as stored, or None when not allowed
     kind: Kind = Kind.NUMBER
+    # How a stored value is read back, when that differs from ``check`` (what a new value must pass):
+    # a value an older release stored under looser rules keeps the meaning it had there.
+    stored: Callable[[object], T | None] | None = None
 
     @staticmethod
     def number(key: str, default: float, low: float, high: float, group: Group, help: str) -> Setting[float]:
@@ -73,7 +76,8 @@ class Setting(Generic[T]):
     def count(key: str, default: int, low: int, high: int, group: Group, help: str) -> Setting[float]:
         """A whole number from ``low`` to ``high`` (a number of texts): 2.5 texts is no minimum anyone
         meant, and was taken as 2. Stored as a float, like the other numbers."""
-        return Setting(key, float(default), group, help, f"a whole number from {low:,} to {high:,}", _count(low, high))
+        allowed = f"a whole number from {low:,} to {high:,}"
+        return Setting(key, float(default), group, help, allowed, _count(low, high), stored=_count_stored(low, high))
 
     @staticmethod
     def level(key: str, default: float, low: float, high: float, group: Group, help: str) -> Setting[float]:
@@ -140,6 +144,18 @@ def _count(low: int, high: int) -> Callable[[object], float | None]:
         return v if v is not None and v.is_integer() else None
 
     return check
+
+
+def _count_stored(low: int, high: int) -> Callable[[object], float | None]:
+    """A count as stored: releases before whole numbers were required stored 2.5 and used it as 2
+    (``int``); such a value is read as the whole number it acted as, not dropped for the default."""
+    inner = _number(low, high, low_open=False)
+
+    def read(value: object) -> float | None:
+        v = inner(value)
+        return None if v is None else float(int(v))
+
+    return read
 
 
 def _switch(value: object) -> bool | None:
@@ -257,7 +273,7 @@ class ModelSettings(BaseModel):
             default = defaults.get(key, s.default)
             row = stored.get(key)
             raw = None if row is None else json.loads(row["value"])
-            value = s.check(raw)
+            value = (s.stored or s.check)(raw)
             if row is None or (value is None and not (raw is None and s.kind == Kind.OPTIONAL)):
                 values[key] = SettingValue(key=key, value=default, default=default)
             else:

@@ -156,6 +156,23 @@ def test_a_stored_key_this_version_does_not_know_is_ignored(registry: Registry, 
     assert set(registry.model_settings(model).values) == set(SETTINGS)
 
 
+def test_a_fraction_an_older_release_stored_for_a_count_keeps_the_meaning_it_had(
+    registry: Registry, model: str
+) -> None:
+    """Counts of texts became whole numbers only; a release before that stored shadow_min_texts 2.5 and
+    used it as 2 (int). Read back, it was dropped for the default, 1,000, silently; it stays 2."""
+    with registry.backend.write() as tx:
+        tx.run(
+            "INSERT INTO model_settings (model, key, value, set_by, set_at, reason, event_id) "
+            "VALUES (?, ?, ?, ?, ?, ?, ?)",
+            (model, "shadow_min_texts", "2.5", "x", "2026-12-01T00:00:00+00:00", "older release", 0),
+        )
+    value = registry.model_settings(model).values["shadow_min_texts"]
+    assert value.value == 2.0 and not value.is_default and value.set_by == "x"
+    with pytest.raises(InputError, match="a whole number"):
+        registry.change_settings(model, {"shadow_min_texts": 2.5}, actor="y", reason="again")
+
+
 def test_unknown_model_is_not_found(registry: Registry) -> None:
     from textsieve.errors import NotFoundError
 
