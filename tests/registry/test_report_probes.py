@@ -66,6 +66,19 @@ class NumpyCNN:
             gaps.append(top[-1] - top[-2] if acts.shape[0] > 1 else np.full(acts.shape[1], np.inf))
         return np.concatenate(pooled), np.concatenate(where), np.concatenate(gaps)
 
+    def near_max_starts(self, ids: list[int], f: int, tol: float) -> list[int]:
+        """Filter ``f``'s window starts whose activation is within ``tol`` of its largest (a near tie:
+        float32 in the graph may pick any of them)."""
+        x = self.embedding[ids] if ids else np.zeros((0, self.embedding.shape[1]))
+        for width, (w, b) in zip(self.widths, self.convs, strict=True):
+            if f < len(b):
+                padded = np.vstack([x, np.zeros((max(width - len(ids), 0), x.shape[1]))])
+                windows = np.lib.stride_tricks.sliding_window_view(padded, width, axis=0)
+                acts = np.einsum("tdk,dk->t", windows, w[f]) + b[f]
+                return np.flatnonzero(acts >= acts.max() - tol).tolist()
+            f -= len(b)
+        raise IndexError(f)
+
     def probabilities(self, ids: list[int]) -> np.ndarray:
         pooled, _, _ = self.features(ids)
         logits = self.out_w @ pooled + self.out_b
@@ -264,17 +277,23 @@ def test_filter_triggers_match_a_numpy_convolution(
     section = probes.filter_section(predictor, texts, labels, top=3)
     filters = len(predictor.filter_widths)
     expected: list[Counter[str]] = [Counter() for _ in range(filters)]
+    tied: list[Counter[str]] = [Counter() for _ in range(filters)]  # texts where the n-gram may be the window
     fired = np.zeros((len(texts), filters), dtype=bool)
     for row, text in enumerate(texts):
         ids = predictor.encode(text).ids
         pooled, where, gaps = reference.features(ids)
         fired[row] = pooled > 0
         for f in np.flatnonzero(pooled > 0):
-            if gaps[f] < 1e-4:  # a near tie between two windows: float32 may pick either
-                continue
             width = predictor.filter_widths[f]
-            s = int(where[f])
-            expected[f][" ".join(predictor.vocab.tokens[i] for i in ids[s : min(s + width, len(ids))])] += 1
+
+            def ngram(s: int, width: int = width) -> str:
+                return " ".join(predictor.vocab.tokens[i] for i in ids[s : min(s + width, len(ids))])
+
+            if gaps[f] < 1e-4:  # a near tie between windows: float32 may pick any of them
+                for g in {ngram(s) for s in reference.near_max_starts(ids, int(f), 1e-4)}:
+                    tied[f][g] += 1
+                continue
+            expected[f][ngram(int(where[f]))] += 1
     by_index = {e["index"]: e for e in section["filters"]}
     assert section["dead"] == [f for f in range(filters) if not fired[:, f].any()]
     for f in range(filters):
@@ -282,8 +301,9 @@ def test_filter_triggers_match_a_numpy_convolution(
         assert entry["fires"] == int(fired[:, f].sum())
         assert entry["width"] == int(predictor.filter_widths[f])
         for t in entry["top"]:
-            # every listed n-gram was that filter's window at least as often as the reference counts
-            assert t["count"] >= expected[f][t["ngram"]] > 0
+            # every listed n-gram was that filter's window in the texts the reference says it was,
+            # plus at most the near ties it was one of (a text repeating "i use the app" ties exactly)
+            assert expected[f][t["ngram"]] <= t["count"] <= expected[f][t["ngram"]] + tied[f][t["ngram"]]
         if expected[f]:
             most = expected[f].most_common(1)[0][1]
             assert entry["top"][0]["count"] >= most

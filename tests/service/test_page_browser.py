@@ -536,6 +536,12 @@ CLUSTERED = [
     "refund |🇫🇷||🇫🇷| ok then",
     "|e\u0301| refund |क्ष||मा| क|रें| |👍🏿| charged",
     "|👩🏽\u200d💻| fixed it |👍🏿|",
+    # Several places a span may start inside a cluster, so that some do whatever the tiny model
+    # learnt (its training data changes now and then; the texts above alone stopped doing it).
+    "|🇫🇷||🇫🇷||🇫🇷| refund",
+    "charged |🇫🇷||🇫🇷||🇫🇷| twice",
+    "|👨\u200d👩\u200d👧\u200d👦| broken brake",
+    "great |👩🏽\u200d💻| thanks |👍🏿| great",
 ]
 
 
