@@ -286,7 +286,7 @@ def test_filter_triggers_match_a_numpy_convolution(
         for f in np.flatnonzero(pooled > 0):
             width = predictor.filter_widths[f]
 
-            def ngram(s: int, width: int = width) -> str:
+            def ngram(s: int, width: int = width, ids: list[int] = ids) -> str:
                 return " ".join(predictor.vocab.tokens[i] for i in ids[s : min(s + width, len(ids))])
 
             if gaps[f] < 1e-4:  # a near tie between windows: float32 may pick any of them
