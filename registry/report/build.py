@@ -29,7 +29,7 @@ from textsieve.errors import InputError, TextsieveError
 from textsieve.registry import measures, stats
 from textsieve.registry.bundle import Bundle
 from textsieve.registry.evalsets import LabelledText, normalise, unknown_labels
-from textsieve.registry.runtime import Encoded, Outputs, Predictor
+from textsieve.registry.runtime import Encoded, Predictor
 
 SCHEMA = 1
 CALIBRATION_BINS = 15  # the gates' ECE uses the same 15 bins
@@ -89,7 +89,6 @@ class _Scored:
 
     predictor: Predictor
     encoded: list[Encoded]
-    out: Outputs
     logits: NDArray[np.float64]
     raw: NDArray[np.float64]  # probabilities at T = 1
     probs: NDArray[np.float64]  # calibrated, as served
@@ -210,11 +209,11 @@ def _score(predictor: Predictor, texts: list[str], labels: list[str]) -> _Scored
     order = [own.index(name) for name in labels]
     # Offsets are found only for the few texts whose spans the report shows (the worst mistakes).
     encoded = [predictor.encode(t, offsets=False) for t in texts]
-    out = predictor.run(encoded)
-    logits = np.asarray(out.logits, dtype=np.float64)[:, order]
+    # Logits alone, in chunks: the worst mistakes' spans run their few texts again (_spans).
+    logits = np.asarray(predictor.logits(encoded), dtype=np.float64)[:, order]
     raw = measures.softmax(logits, 1.0)
     probs = measures.softmax(logits, predictor.temperature)
-    return _Scored(predictor, encoded, out, logits, raw, probs, probs.argmax(axis=1).astype(np.int64), order)
+    return _Scored(predictor, encoded, logits, raw, probs, probs.argmax(axis=1).astype(np.int64), order)
 
 
 def _cm(t: NDArray[np.int64], p: NDArray[np.int64], k: int) -> NDArray[np.int64]:
@@ -422,7 +421,9 @@ def _clip(text: str) -> str:
 
 def _spans(s: _Scored, row: int, report_class: int) -> list[dict[str, object]]:
     own = s.order[report_class]
-    return [sp.public() for sp in s.predictor.spans(s.encoded[row], s.out, row, own, 3)]
+    enc = s.encoded[row]
+    # The text run alone: its outputs are those it had in the whole set (padding is masked).
+    return [sp.public() for sp in s.predictor.spans(enc, s.predictor.run([enc]), 0, own, 3)]
 
 
 def _worst(targets: NDArray[np.int64], s: _Scored, labels: list[str]) -> list[dict[str, Any]]:

@@ -32,7 +32,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from textsieve.registry.runtime import Encoded, Outputs, Predictor
+from textsieve.registry.runtime import LOGITS_CHUNK, Encoded, Outputs, Predictor
 from textsieve.registry.stats import bootstrap_interval
 
 # Token-count bands (inclusive; the last is open), the same as the report's "by text length"
@@ -142,7 +142,8 @@ def order_probe(
     for variant in VARIANTS:
         for draw in orders[variant]:
             runs.extend(_reordered(e, o) for e, o in zip(kept, draw, strict=True))
-    probs = predictor.probabilities(predictor.run(runs).logits) if runs else None
+    # Six runs of every text: logits alone, in chunks (Predictor.logits), not every filter's outputs.
+    probs = predictor.probabilities(predictor.logits(runs)) if runs else None
 
     change: dict[str, list[NDArray[np.bool_]]] = {}
     delta: dict[str, list[NDArray[np.float64]]] = {}
@@ -282,15 +283,19 @@ def _verdict(result: dict[str, Any], lengths: NDArray[np.int64], window: int) ->
 # -- filters --------------------------------------------------------------------------------------
 def output_weights(out: Outputs) -> NDArray[np.float64]:
     """W[c, f] for every filter that fired, recovered from contributions = pooled · W (NaN if never)."""
-    filters, classes = out.contributions.shape[1], out.contributions.shape[2]
-    weights = np.full((classes, filters), np.nan)
+    filters = out.contributions.shape[1]
     if out.pooled.shape[0] == 0:
-        return weights
+        return _weights(np.full(filters, -np.inf), np.zeros((filters, out.contributions.shape[2])))
     best = out.pooled.argmax(axis=0)  # the largest pooled value divides with the least rounding
-    top = out.pooled[best, np.arange(filters)].astype(np.float64)
-    fired = top > 0
-    contrib = out.contributions[best, np.arange(filters), :].astype(np.float64)  # [F, C]
-    weights[:, fired] = (contrib[fired] / top[fired, None]).T
+    return _weights(out.pooled[best, np.arange(filters)], out.contributions[best, np.arange(filters), :])
+
+
+def _weights(top: NDArray[np.floating], contrib: NDArray[np.floating]) -> NDArray[np.float64]:
+    """W[c, f] from each filter's largest pooled value ``top`` [F] and its contributions [F, C]."""
+    weights = np.full((contrib.shape[1], contrib.shape[0]), np.nan)
+    top64 = top.astype(np.float64)
+    fired = top64 > 0
+    weights[:, fired] = (contrib[fired].astype(np.float64) / top64[fired, None]).T
     return weights
 
 
@@ -318,20 +323,45 @@ def triggers(predictor: Predictor, encoded: Sequence[Encoded], out: Outputs) -> 
     return counts
 
 
+def _filter_outputs(
+    predictor: Predictor, encoded: list[Encoded]
+) -> tuple[NDArray[np.float32], NDArray[np.float64], list[Counter[tuple[int, ...]]]]:
+    """Every text's pooled values, the output weights and each filter's trigger counts, the graph run
+    on :data:`~textsieve.registry.runtime.LOGITS_CHUNK` texts at a time: one run of a whole large
+    set keeps every filter's window and per-class contributions for every text (gigabytes), where
+    only the pooled values are needed for all of them. The same figures as one run: each filter's
+    weights come from the first text with its largest pooled value, as ``output_weights`` takes it."""
+    filters = len(predictor.filter_widths)
+    pooled = np.empty((len(encoded), filters), np.float32)
+    counts: list[Counter[tuple[int, ...]]] = [Counter() for _ in range(filters)]
+    top = np.full(filters, -np.inf, dtype=np.float32)
+    contrib = np.zeros((filters, len(predictor.labels)), np.float32)
+    for lo in range(0, len(encoded), LOGITS_CHUNK):
+        part = encoded[lo : lo + LOGITS_CHUNK]
+        out = predictor.run(part)
+        pooled[lo : lo + len(part)] = out.pooled
+        for found, more in zip(counts, triggers(predictor, part, out), strict=True):
+            found.update(more)
+        best = out.pooled.argmax(axis=0)
+        value = out.pooled[best, np.arange(filters)]
+        higher = value > top  # strictly: an equal value in a later chunk is not the first
+        top[higher] = value[higher]
+        contrib[higher] = out.contributions[best[higher], np.flatnonzero(higher), :]
+    return pooled, _weights(top, contrib), counts
+
+
 def filter_section(
     predictor: Predictor, texts: Sequence[str], labels: Sequence[str], *, top: int = 5
 ) -> dict[str, Any]:
     """Each filter's most frequent triggering n-grams, the class it pushes towards, and dead filters."""
     if len(texts) != len(labels):
         raise ValueError(f"{len(texts)} texts but {len(labels)} labels")
-    encoded = [predictor.encode(t) for t in texts]
-    out = predictor.run(encoded)
-    weights = output_weights(out)
-    counts = triggers(predictor, encoded, out)
+    encoded = [predictor.encode(t, offsets=False) for t in texts]
+    pooled, weights, counts = _filter_outputs(predictor, encoded)
     names = predictor.labels
     vocab = predictor.vocab.tokens
     gold = np.array([names.index(x) if x in names else -1 for x in labels], dtype=np.int64)
-    fires = out.pooled > 0  # [n, F]
+    fires = pooled > 0  # [n, F]
     filters: list[dict[str, Any]] = []
     dead: list[int] = []
     for f, width in enumerate(predictor.filter_widths.tolist()):
@@ -355,7 +385,7 @@ def filter_section(
             weights={names[k]: float(w[k]) for k in range(w.shape[0])},
             # Of the evaluation texts it fires on, the share whose true label is its class.
             agreement=float(agree.mean()),
-            mean_pooled=float(out.pooled[fires[:, f], f].mean()),
+            mean_pooled=float(pooled[fires[:, f], f].mean()),
             top=[
                 {"ngram": " ".join(vocab[i] for i in key), "count": k}
                 for key, k in sorted(counts[f].items(), key=lambda kv: (-kv[1], kv[0]))[:top]

@@ -277,6 +277,48 @@ def test_extra_sections_are_computed_rendered_or_noted(
     assert "no run folder for this version" in html
 
 
+def test_a_report_runs_the_graph_on_bounded_chunks_with_the_same_figures(
+    pair: tuple[Bundle, Bundle], tiny_eval: list[LabelledText], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The report ran its whole evaluation set through one Predictor.run (and the order probe six
+    copies of it), which keeps every filter's window and per-class contributions for every text:
+    gigabytes on a large set. Scores, the order probe and the filters now take chunks; the report
+    is the same, figure for figure, the worst mistakes' spans too (each text's outputs do not depend
+    on what it runs with)."""
+    from textsieve.registry import runtime
+    from textsieve.registry.report import probes
+    from textsieve.registry.report.probe_sections import probe_sections
+
+    def report() -> dict[str, Any]:
+        return build_report(
+            pair[0],
+            tiny_eval,
+            model="tiny",
+            version=2,
+            against=(pair[1], 1),
+            bootstrap_resamples=50,
+            seed=7,
+            extra_sections=probe_sections(),
+        )
+
+    whole = report()
+    sizes: list[int] = []
+    original = Predictor.run
+
+    def counting(self: Predictor, encoded: list[Any], **kwargs: Any) -> Any:
+        sizes.append(len(encoded))
+        return original(self, encoded, **kwargs)
+
+    monkeypatch.setattr(Predictor, "run", counting)
+    monkeypatch.setattr(runtime, "LOGITS_CHUNK", 7)
+    monkeypatch.setattr(probes, "LOGITS_CHUNK", 7)
+    chunked = report()
+    assert max(sizes) <= 7 and len(tiny_eval) > 7
+    assert any(m["spans"] for m in whole["worst"])
+    for key in ("metrics", "per_class", "worst", "comparison", "order_probe", "filters"):
+        assert chunked[key] == whole[key], key
+
+
 @pytest.mark.parametrize(
     ("rows", "expected_msg"),
     [
