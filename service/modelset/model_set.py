@@ -48,7 +48,7 @@ from textsieve.service.inference.batcher import Batcher, InferencePool
 from textsieve.service.inference.memory import release_freed_memory
 from textsieve.service.liveloop.shadow import ShadowScorer
 from textsieve.service.modelset.loader import ServedModel, load_served
-from textsieve.service.modelset.registry_thread import RegistryThread
+from textsieve.service.modelset.registry_thread import RegistryThread, private_detail
 from textsieve.service.settings import Settings
 from textsieve.service.telemetry import ServiceMetrics
 
@@ -114,7 +114,7 @@ class ModelSet:
             await self._discover()
         except TextsieveError as exc:
             self.startup_error = exc.message
-            log.error("startup failed: %s (retrying every %ss)", exc.message, self.settings.poll_seconds)
+            log.error("startup failed: %s (retrying every %ss)", private_detail(exc), self.settings.poll_seconds)
         finally:
             self.started = True
             self._update_ready()
@@ -295,7 +295,7 @@ class ModelSet:
                 status.failed_version = version
                 status.detail = f"version {version} could not be loaded: {exc.message}"
                 self.metrics.swaps.labels(name, "failed").inc()
-                log.error("model %s: loading version %s failed (%s): %s", name, version, why, exc.message)
+                log.error("model %s: loading version %s failed (%s): %s", name, version, why, private_detail(exc))
                 self._update_ready()
                 return current
             # The switch: one assignment on the event loop thread.
@@ -457,7 +457,10 @@ class ModelSet:
             except TextsieveError as exc:
                 # Shadow scoring is an aid: serving goes on without it, and the next change retries.
                 log.error(
-                    "model %s: candidate version %s not loaded for shadow scoring: %s", name, info.version, exc.message
+                    "model %s: candidate version %s not loaded for shadow scoring: %s",
+                    name,
+                    info.version,
+                    private_detail(exc),
                 )
                 return
             log.info("model %s: candidate version %s scored in the shadow of live traffic", name, info.version)
@@ -503,7 +506,7 @@ class ModelSet:
             try:
                 await self.poll_once()
             except TextsieveError as exc:
-                self._registry_failed(exc.message)
+                self._registry_failed(private_detail(exc))
             except Exception as exc:  # keep polling whatever one round hit; the log has the traceback
                 log.exception("registry poll failed")
                 self._registry_failed(f"{type(exc).__name__} while polling (see the log)")

@@ -15,6 +15,7 @@ from __future__ import annotations
 import asyncio
 import logging
 import secrets
+import threading
 import time
 from pathlib import Path
 from typing import Any
@@ -22,14 +23,13 @@ from typing import Any
 import httpx
 import pytest
 
-from tests.helpers.net import readyz_until
-from tests.helpers.servers import own_cluster
+from tests.helpers.net import poll_readyz, readyz_until
+from tests.helpers.servers import own_cluster, running_server
 from tests.helpers.service import ADMIN_TOKEN, AUTH, MODEL, log_text, serving, settings_for
 from textsieve.registry import open_registry
 
-pytestmark = pytest.mark.anyio
 
-
+@pytest.mark.anyio
 async def test_predictions_continue_through_a_registry_outage_and_polling_resumes(
     tmp_path: Path, tiny_bundles: dict[str, Path], caplog: pytest.LogCaptureFixture
 ) -> None:
@@ -86,7 +86,11 @@ async def test_predictions_continue_through_a_registry_outage_and_polling_resume
                 assert r.headers["content-type"] == "application/problem+json"
                 assert r.json()["type"] == "/problems/unavailable"
                 assert int(r.headers["retry-after"]) > 0
-                assert "PostgreSQL unavailable" in r.json()["detail"]
+                detail = r.json()["detail"]
+                assert "registry's database cannot be reached" in detail and "log says why" in detail, detail
+                # Views need no token: the reply names no database, user, host or port (DEVELOPERS.md).
+                for private in (str(cluster.port), "127.0.0.1", "postgres", "PostgreSQL unavailable"):
+                    assert private not in detail, (private, detail)
 
             await asyncio.to_thread(cluster.start)
             await readyz_until(client, lambda b: not b["degraded"], timeout=30, awaiting="the note to clear")
@@ -105,3 +109,81 @@ async def test_predictions_continue_through_a_registry_outage_and_polling_resume
     assert "PostgreSQL unavailable" in logged, "the outage is logged"
     assert password not in logged, "the database password leaked into the log"
     assert not [s for s in seen if password in s], "the database password leaked into a response"
+
+
+def _predict_forever(url: str, stop: threading.Event, replies: list[tuple[int, int | None]]) -> None:
+    with httpx.Client(base_url=url, timeout=30) as client:
+        while not stop.is_set():
+            try:
+                r = client.post("/v1/predict", json={"texts": ["login fails", "charged twice"]})
+                replies.append((r.status_code, r.json().get("version") if r.status_code == 200 else None))
+            except httpx.HTTPError as exc:
+                replies.append((0, None))
+                stop.set()
+                raise AssertionError(f"a prediction failed at the transport: {exc!r}") from exc
+
+
+def test_a_real_server_with_worker_processes_rides_out_an_outage_under_load_and_names_no_database(
+    tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """textsieve serve (uvicorn, worker processes) while its PostgreSQL is stopped and started under a
+    steady stream of predictions. Before, every reply that met the outage (a view, an admin call, a
+    prediction pinned to a version not in memory) carried the registry's words to any caller:
+    'postgresql://postgres@127.0.0.1:PORT/postgres: PostgreSQL unavailable: connection to server at
+    "127.0.0.1", port PORT failed', the database's user, host, port and name."""
+    password = f"pw-{secrets.token_hex(12)}"
+    with own_cluster(password) as cluster:
+        blobs = tmp_path / "blobs"
+        with open_registry(cluster.url, blobs=blobs) as reg:
+            for key in ("a", "b", "relabelled"):
+                reg.publish(tiny_bundles[key], MODEL, actor="tests")
+            reg.promote(MODEL, 1, "live", reason="start", actor="tests", force=True)
+        with running_server(
+            cluster.url, tmp_path / "serve.log", blobs=str(blobs), admin_token=ADMIN_TOKEN, poll_seconds=0.2
+        ) as server:
+            stop, replies = threading.Event(), []
+            load = [threading.Thread(target=_predict_forever, args=(server.url, stop, replies)) for _ in range(2)]
+            for t in load:
+                t.start()
+            try:
+                cluster.stop("immediate")
+                down = poll_readyz(
+                    server.url, lambda r: bool(r.json()["degraded"]), timeout=30, awaiting="the outage note"
+                ).json()
+                assert down["ready"] is True
+                assert httpx.get(f"{server.url}/healthz", timeout=10).status_code == 200
+                answers = [
+                    httpx.post(f"{server.url}/v1/predict", json={"texts": ["a"], "version": 3}, timeout=30),
+                    httpx.get(f"{server.url}/v1/models", timeout=30),
+                    httpx.get(f"{server.url}/v1/models/{MODEL}/versions/2", timeout=30),
+                    httpx.post(
+                        f"{server.url}/v1/models/{MODEL}/rollback", headers=AUTH, json={"reason": "x"}, timeout=30
+                    ),
+                ]
+                for r in answers:
+                    assert r.status_code == 503 and int(r.headers["retry-after"]) > 0, r.text
+                    assert r.headers["content-type"] == "application/problem+json"
+                    detail = r.json()["detail"]
+                    for private in (str(cluster.port), "127.0.0.1", "postgres"):
+                        assert private not in detail, (r.request.url, private, detail)
+                during = len(replies)
+                cluster.start()
+                poll_readyz(server.url, lambda r: not r.json()["degraded"], timeout=30, awaiting="the note to clear")
+                with open_registry(cluster.url, blobs=blobs) as reg:
+                    reg.promote(MODEL, 2, "live", reason="after the outage", actor="tests", force=True)
+                poll_readyz(
+                    server.url, lambda r: r.json()["models"][MODEL].get("version") == 2, timeout=30, awaiting="v2"
+                )
+                pinned = httpx.post(f"{server.url}/v1/predict", json={"texts": ["a"], "version": 3}, timeout=30)
+                assert pinned.status_code == 200 and pinned.json()["version"] == 3, pinned.text
+                time.sleep(0.5)
+            finally:
+                stop.set()
+                for t in load:
+                    t.join()
+            log = server.output()
+    assert during > 0 and {status for status, _ in replies} == {200}, sorted(set(replies))
+    assert {version for _, version in replies} == {1, 2}
+    # The operator's log keeps the registry's own words, without the password.
+    assert "PostgreSQL unavailable" in log and str(cluster.port) in log
+    assert password not in log
