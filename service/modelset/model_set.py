@@ -377,6 +377,11 @@ class ModelSet:
         if len(self.status) == 1:
             return next(iter(self.status))
         if not self.status:
+            if not self._discovered:  # the registry has not been read: nobody knows yet what it holds
+                raise UnavailableError(
+                    "this service has not read its registry yet: it is starting, or the registry cannot be "
+                    "reached (/readyz and the server's log say which); retry after the Retry-After seconds"
+                )
             raise UnavailableError("no model is served yet: publish and promote one, then retry")
         raise InputError(f"several models are served ({', '.join(sorted(self.status))}); name one in 'model'")
 

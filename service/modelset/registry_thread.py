@@ -41,6 +41,10 @@ _UNAVAILABLE = (
     "the registry's database cannot be reached or stayed busy (the server's log says why); "
     "the versions already loaded keep serving: retry after the Retry-After seconds"
 )
+_NOT_OPEN = (
+    "this service has not opened its registry yet: it is starting, or the registry cannot be reached "
+    "(the server's log says why); retry after the Retry-After seconds"
+)
 _CONFLICT = "the change conflicts with the registry's rules (the server's log says which)"
 _FAILED = "the registry's database failed (the server's log says why)"
 
@@ -117,7 +121,9 @@ class RegistryThread:
     def registry(self) -> Registry:
         """The open registry; only to be used on the registry thread (through the methods below)."""
         if self._registry is None:
-            raise UnavailableError(f"the registry at {self.label} is not open yet")
+            # Anyone may meet this (a view, a pinned prediction while the service starts or its database
+            # is down): no location in it; the server's log names the registry and why it is not open.
+            raise UnavailableError(_NOT_OPEN)
         return self._registry
 
     # -- reading ------------------------------------------------------------------------

@@ -24,7 +24,7 @@ import httpx
 import pytest
 
 from tests.helpers.net import poll_readyz, readyz_until
-from tests.helpers.servers import own_cluster, running_server
+from tests.helpers.servers import ServerProcess, own_cluster, running_server
 from tests.helpers.service import ADMIN_TOKEN, AUTH, MODEL, log_text, serving, settings_for
 from textsieve.registry import open_registry
 
@@ -187,3 +187,49 @@ def test_a_real_server_with_worker_processes_rides_out_an_outage_under_load_and_
     # The operator's log keeps the registry's own words, without the password.
     assert "PostgreSQL unavailable" in log and str(cluster.port) in log
     assert password not in log
+
+
+def test_a_server_started_while_its_database_is_down_says_so_and_serves_once_it_is_up(
+    tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """textsieve serve (uvicorn, worker processes) started while its PostgreSQL is stopped. Before,
+    a prediction naming no model told the caller 'no model is served yet: publish and promote one'
+    (nothing was wrong with the registry's contents), and one naming its model or pinning a version,
+    and the views, answered 'the registry at postgresql://postgres@127.0.0.1:PORT/postgres is not open
+    yet' to callers who hold no token."""
+    password = f"pw-{secrets.token_hex(12)}"
+    with own_cluster(password) as cluster:
+        blobs = tmp_path / "blobs"
+        with open_registry(cluster.url, blobs=blobs) as reg:
+            reg.publish(tiny_bundles["a"], MODEL, actor="tests")
+            reg.publish(tiny_bundles["b"], MODEL, actor="tests")
+            reg.promote(MODEL, 1, "live", reason="start", actor="tests", force=True)
+        cluster.stop("immediate")
+        server = ServerProcess.start(cluster.url, tmp_path / "serve.log", blobs=str(blobs), poll_seconds=0.2)
+        try:
+            poll_readyz(
+                server.url,
+                lambda r: r.status_code == 503 and "startup failed" in r.json()["reason"],
+                timeout=60,
+                awaiting="the startup failure",
+                gone=server.gone,
+            )
+            assert httpx.get(f"{server.url}/healthz", timeout=10).status_code == 200  # alive, not ready
+            answers = [
+                httpx.post(f"{server.url}/v1/predict", json=body, timeout=30)
+                for body in ({"texts": ["a"]}, {"texts": ["a"], "model": MODEL}, {"texts": ["a"], "version": 2})
+            ]
+            answers.append(httpx.get(f"{server.url}/v1/models", timeout=30))
+            for r in answers:
+                assert r.status_code == 503 and int(r.headers["retry-after"]) > 0, r.text
+                detail = r.json()["detail"]
+                assert "publish" not in detail and "registry" in detail and "log" in detail, detail
+                for private in (str(cluster.port), "127.0.0.1", "postgres"):
+                    assert private not in detail, (r.request.url, private, detail)
+            cluster.start()
+            poll_readyz(server.url, timeout=60, awaiting="ready once the database is up", gone=server.gone)
+            for body in ({"texts": ["a"]}, {"texts": ["a"], "version": 2}):
+                r = httpx.post(f"{server.url}/v1/predict", json=body, timeout=30)
+                assert r.status_code == 200, r.text
+        finally:
+            server.stop()

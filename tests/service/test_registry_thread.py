@@ -88,13 +88,13 @@ async def test_every_call_runs_on_the_thread_that_opened_the_registry(
 async def test_calls_before_open_or_after_close_are_unavailable_not_attribute_errors(tmp_path: Path) -> None:
     open_registry(tmp_path / "reg").close()
     store = RegistryThread(str(tmp_path / "reg"))
-    with pytest.raises(UnavailableError, match="not open yet"):
+    with pytest.raises(UnavailableError, match="has not opened its registry yet"):
         await store.models()
     await store.open()
     assert store.is_open and isinstance(store.registry, Registry)
     await store.close()
     assert not store.is_open
-    with pytest.raises(UnavailableError, match="not open yet"):
+    with pytest.raises(UnavailableError, match="has not opened its registry yet"):
         await store.cursor()
 
 
