@@ -147,9 +147,22 @@ class PostgresBackend(Backend):
     @contextlib.contextmanager
     def _transaction_body(self, begin: str, *setup: str) -> Iterator[Tx]:
         psycopg = _psycopg()
+        kept = self._conn is not None
         conn = self._connection()
         try:
-            conn.execute(begin)
+            try:
+                conn.execute(begin)
+            except psycopg.OperationalError:
+                if not kept:
+                    raise
+                # The connection kept from an earlier call may have been closed by the server since (a
+                # restart, a failover, an idle timeout), which shows only when it is used. Nothing has run
+                # in this transaction yet, so one fresh connection is tried before calling it an outage.
+                with contextlib.suppress(psycopg.Error):
+                    conn.close()
+                self._conn = None
+                conn = self._connection()
+                conn.execute(begin)
             for statement in setup:
                 conn.execute(statement)
         except psycopg.Error as exc:

@@ -233,3 +233,45 @@ def test_a_server_started_while_its_database_is_down_says_so_and_serves_once_it_
                 assert r.status_code == 200, r.text
         finally:
             server.stop()
+
+
+@pytest.mark.parametrize("mode", ["fast", "immediate"])
+def test_the_first_registry_calls_after_the_database_restarted_succeed(
+    tmp_path: Path, tiny_bundles: dict[str, Path], mode: str
+) -> None:
+    """The registry keeps one connection; a restarted PostgreSQL closes it, which shows only when it is
+    next used. Before, that first use failed: with the database up again, a view and an admin call on a
+    real textsieve serve were each answered 503 'unavailable' once (its poller, here slower than the
+    calls, had not yet hit the dead connection). Now a transaction that fails at its BEGIN on a kept
+    connection is begun once more on a fresh one (nothing had run in it)."""
+    password = f"pw-{secrets.token_hex(12)}"
+    with own_cluster(password) as cluster:
+        blobs = tmp_path / "blobs"
+        with open_registry(cluster.url, blobs=blobs) as reg:
+            reg.publish(tiny_bundles["a"], MODEL, actor="tests")
+            reg.publish(tiny_bundles["b"], MODEL, actor="tests")
+            reg.promote(MODEL, 1, "live", reason="start", actor="tests", force=True)
+        with running_server(
+            cluster.url, tmp_path / "serve.log", blobs=str(blobs), admin_token=ADMIN_TOKEN, poll_seconds=60
+        ) as server:
+            assert httpx.get(f"{server.url}/v1/models", timeout=10).status_code == 200
+            cluster.stop(mode)
+            cluster.start()
+            view = httpx.get(f"{server.url}/v1/models/{MODEL}/versions", timeout=30)
+            assert view.status_code == 200, view.text
+            cluster.stop(mode)
+            cluster.start()
+            promote = httpx.post(
+                f"{server.url}/v1/models/{MODEL}/versions/2/promote",
+                headers=AUTH,
+                json={"to": "live", "reason": "after a restart", "force": True},
+                timeout=30,
+            )
+            assert promote.status_code == 200 and promote.json()["serving"]["version"] == 2, promote.text
+        # The CLI's handle is the same backend: a registry opened before the restart reads after it.
+        with open_registry(cluster.url, blobs=blobs) as reg:
+            assert reg.live(MODEL) is not None
+            cluster.stop(mode)
+            cluster.start()
+            live = reg.live(MODEL)
+            assert live is not None and live.version == 2
