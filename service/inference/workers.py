@@ -669,9 +669,13 @@ class WorkerProcesses:
         done: list[_Worker] = []
         try:
             for w in self.workers:
-                w.call(Load(key, str(item.bundle), batch_size), retry=True)
+                # Booked before it is sent: if the worker dies once it has loaded and another caller
+                # replaces it before this returns, the replacement loads this version too. Booked after,
+                # the new process never had it while batches were sent there (KeyError, 503). No batch
+                # can name the key before this load returns, so booking it early sends none too soon.
                 w.loaded[key] = item
                 done.append(w)
+                w.call(Load(key, str(item.bundle), batch_size), retry=True)
         except BaseException:
             for w in done:
                 self._drop_one(w, key)

@@ -466,3 +466,41 @@ def test_workers_inherit_the_scan_of_the_unicode_database_from_the_fork_server(t
     )
     done = subprocess.run([sys.executable, str(script)], cwd=tmp_path, timeout=120, capture_output=True)
     assert done.returncode == 0, done.stderr.decode()[-2000:]
+
+
+def test_a_version_loaded_while_its_worker_is_replaced_reaches_the_new_process(
+    tiny_bundles: dict[str, Path], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Found by SIGKILLing workers during hot swaps under load (real serve, pinned requests): one
+    request was answered 503 'inference failed: KeyError: ('support', 3, 53)'. A version was loaded
+    in a worker that then died, and another caller (a batch that found it dead) replaced the worker
+    before the load was booked: the replacement reloaded what was booked, without that version, yet
+    the server then counted it as loaded there and sent its batches to a process that never had it.
+    Here the same interleaving is made deterministic: the worker is killed and replaced right after
+    its Load reply."""
+    from textsieve.service.inference.workers import Load, WorkerProcesses, _Worker
+
+    procs = WorkerProcesses(1)
+    try:
+        first = procs.new_key("m", 1)
+        procs.load(first, tiny_bundles["a"], 16)
+        second = procs.new_key("m", 2)
+        real_call = _Worker.call
+
+        def call_then_die(self: _Worker, msg: Message, *, retry: bool) -> Any:
+            value = real_call(self, msg, retry=retry)
+            if isinstance(msg, Load) and msg.key == second:
+                gen = self.generation
+                os.kill(self.proc.pid, signal.SIGKILL)
+                self.proc.join(10)
+                self._replace(gen)  # what another caller does on finding the worker dead
+            return value
+
+        monkeypatch.setattr(_Worker, "call", call_then_die)
+        procs.load(second, tiny_bundles["b"], 16)
+        monkeypatch.undo()
+        assert [sorted(keys) for keys in procs.held()] == [sorted([first, second])]  # what the new process has
+        replies = procs.run(0, second, ["my card was charged twice"], [1])
+        assert len(replies[0]) == 1
+    finally:
+        procs.shutdown()
