@@ -504,3 +504,43 @@ def test_a_version_loaded_while_its_worker_is_replaced_reaches_the_new_process(
         assert len(replies[0]) == 1
     finally:
         procs.shutdown()
+
+
+def test_a_batch_sent_while_a_replaced_worker_reloads_waits_for_its_version(
+    tiny_bundles: dict[str, Path], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The same probe (workers SIGKILLed during swaps under load) kept answering a few requests 503
+    'inference failed: KeyError', unpinned ones too: a replaced worker was visible to batches as soon
+    as it started, with every version still booked in it, while its versions were reloaded one by
+    one; a batch sent in between reached the process before its version's Load. Here the reload's
+    way to the pipe is slowed (a sleep before each Load is sent) to hold that window open."""
+    import threading
+
+    from textsieve.service.inference.workers import Load, WorkerProcesses, _Worker
+
+    procs = WorkerProcesses(1)
+    try:
+        key = procs.new_key("m", 1)
+        procs.load(key, tiny_bundles["a"], 16)
+        real_submit = _Worker.submit
+
+        def slow_loads(self: _Worker, msg: Message, payload: bytes | None = None, waiter: Any = None) -> Any:
+            if isinstance(msg, Load):
+                time.sleep(0.5)
+            return real_submit(self, msg, payload, waiter)
+
+        monkeypatch.setattr(_Worker, "submit", slow_loads)
+        w = procs.workers[0]
+        gen = w.generation
+        os.kill(w.proc.pid, signal.SIGKILL)
+        w.proc.join(10)
+        replacing = threading.Thread(target=w._replace, args=(gen,))
+        replacing.start()
+        while w.generation == gen:  # the new process is there ...
+            time.sleep(0.001)
+        replies = procs.run(0, key, ["my card was charged twice"], [1])  # ... and a batch is sent to it
+        replacing.join(30)
+        assert len(replies[0]) == 1
+    finally:
+        monkeypatch.undo()
+        procs.shutdown()
