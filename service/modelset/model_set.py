@@ -535,7 +535,12 @@ class ModelSet:
             self._update_ready()
             return
         assert self._cursor is not None  # read by _discover, which has run
-        self._cursor, events = await self.store.changes_since(self._cursor)
+        # The cursor moves on only once every change read here has been acted on (the end of this
+        # method): when the registry goes away in between (a view of the new live version, its
+        # fetch), the next poll reads the same changes again. Before, they were lost, and a version
+        # promoted just before an outage was never served after it. Acting twice is harmless: a
+        # refresh to the version already served does nothing.
+        cursor, events = await self.store.changes_since(self._cursor)
         # A settings change swaps nothing: it only refreshes what the service knows of the settings.
         changed = {e.model for e in events if e.kind != "settings"}
         resettled = {e.model for e in events if e.kind == "settings"}
@@ -556,6 +561,7 @@ class ModelSet:
             await self.refresh(name, why="registry change" if name in changed else "retry")
         for name in sorted(changed):
             await self.refresh_candidate(name)
+        self._cursor = cursor
         self._update_ready()
 
 
