@@ -275,3 +275,44 @@ def test_the_first_registry_calls_after_the_database_restarted_succeed(
             cluster.start()
             live = reg.live(MODEL)
             assert live is not None and live.version == 2
+
+
+def test_a_table_lock_held_elsewhere_is_a_prompt_503_and_a_degraded_note_not_a_hang(
+    tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """Another session holds an ACCESS EXCLUSIVE lock on the registry's tables (LOCK TABLE here; a
+    schema change, VACUUM FULL or a session left open do the same). Before, every read waited for it
+    without limit on a real textsieve serve: a view and a pinned prediction were still unanswered
+    after 15 s, the poller hung and /readyz reported nothing degraded. Now reads give up after the
+    registry's read lock timeout (5 s): a 503 with Retry-After, the degraded note, predictions from
+    loaded versions throughout, and everything back once the lock is released."""
+    import psycopg
+
+    password = f"pw-{secrets.token_hex(12)}"
+    with own_cluster(password) as cluster:
+        blobs = tmp_path / "blobs"
+        with open_registry(cluster.url, blobs=blobs) as reg:
+            reg.publish(tiny_bundles["a"], MODEL, actor="tests")
+            reg.publish(tiny_bundles["b"], MODEL, actor="tests")
+            reg.promote(MODEL, 1, "live", reason="start", actor="tests", force=True)
+        with running_server(cluster.url, tmp_path / "serve.log", blobs=str(blobs), poll_seconds=0.2) as server:
+            with psycopg.connect(cluster.url, autocommit=False) as locker:
+                locker.execute("LOCK TABLE events, versions IN ACCESS EXCLUSIVE MODE")
+                began = time.monotonic()
+                view = httpx.get(f"{server.url}/v1/models", timeout=30)
+                pinned = httpx.post(f"{server.url}/v1/predict", json={"texts": ["a"], "version": 2}, timeout=30)
+                for r in (view, pinned):
+                    assert r.status_code == 503 and int(r.headers["retry-after"]) > 0, r.text
+                    assert "postgres" not in r.json()["detail"] and str(cluster.port) not in r.json()["detail"]
+                assert time.monotonic() - began < 20  # two bounded waits, not a hang
+                down = poll_readyz(server.url, lambda r: bool(r.json()["degraded"]), timeout=20, awaiting="the note")
+                assert down.status_code == 200
+                live = httpx.post(f"{server.url}/v1/predict", json={"texts": ["a"]}, timeout=30)
+                assert live.status_code == 200 and live.json()["version"] == 1
+                locker.rollback()
+            poll_readyz(server.url, lambda r: not r.json()["degraded"], timeout=30, awaiting="the note to clear")
+            assert httpx.get(f"{server.url}/v1/models", timeout=30).status_code == 200
+            r = httpx.post(f"{server.url}/v1/predict", json={"texts": ["a"], "version": 2}, timeout=30)
+            assert r.status_code == 200 and r.json()["version"] == 2
+        log = server.output()
+    assert "stayed locked by another session" in log
