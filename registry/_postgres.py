@@ -25,6 +25,11 @@ CONNECT_TIMEOUT_S = 5
 # whose network went) would otherwise stall every other writer, and with it a replica's registry
 # thread (its polls and views too), for as long as that session lasts.
 LOCK_TIMEOUT_S = 30.0
+# How long any other statement waits for a lock. Reads take none that a writer holds (MVCC), but
+# an ACCESS EXCLUSIVE lock (a schema change, LOCK TABLE, VACUUM FULL, a session left open holding
+# one) blocked them for as long as it was held: a replica's views, pinned loads and polls hung with
+# no error and /readyz said nothing. Writes wait LOCK_TIMEOUT_S (SET LOCAL in their transaction).
+READ_LOCK_TIMEOUT_S = 5.0
 _WRITE_LOCK = (
     "SELECT pg_advisory_xact_lock(('x' || substr(md5('textsieve:' || current_schema()), 1, 16))::bit(64)::bigint)"
 )
@@ -38,12 +43,17 @@ def _psycopg() -> Any:
     return psycopg
 
 
-def translate(exc: Exception, where: str) -> RegistryError | UnavailableError:
+def translate(exc: Exception, where: str, *, writing: bool = True) -> RegistryError | UnavailableError:
     psycopg = _psycopg()
     first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
     if isinstance(exc, psycopg.errors.IntegrityError):
         return StateError(f"{where}: the change conflicts with the registry's rules ({first})")
     if isinstance(exc, psycopg.errors.LockNotAvailable):
+        if not writing:
+            return UnavailableError(
+                f"{where}: a registry table stayed locked by another session (a schema change, LOCK TABLE or "
+                f"VACUUM FULL) for {READ_LOCK_TIMEOUT_S:g} s; try again"
+            )
         return UnavailableError(
             f"{where}: the registry's write lock stayed held by another writer for {LOCK_TIMEOUT_S:.0f} s; try again"
         )
@@ -123,9 +133,15 @@ class PostgresBackend(Backend):
         psycopg = _psycopg()
         if self._conn is None or self._pid != os.getpid() or self._conn.closed or self._conn.broken:
             try:
-                self._conn = psycopg.connect(
+                conn = psycopg.connect(
                     self.url, autocommit=True, connect_timeout=CONNECT_TIMEOUT_S, row_factory=psycopg.rows.dict_row
                 )
+                try:
+                    conn.execute(f"SET lock_timeout = {round(READ_LOCK_TIMEOUT_S * 1000)}")  # the session's default
+                except BaseException:
+                    conn.close()
+                    raise
+                self._conn = conn
             except psycopg.Error as exc:
                 raise translate(exc, self.description) from exc
             self._pid = os.getpid()
@@ -146,27 +162,41 @@ class PostgresBackend(Backend):
 
     @contextlib.contextmanager
     def _transaction_body(self, begin: str, *setup: str) -> Iterator[Tx]:
+        writing = "READ ONLY" not in begin
         psycopg = _psycopg()
+        kept = self._conn is not None
         conn = self._connection()
         try:
-            conn.execute(begin)
+            try:
+                conn.execute(begin)
+            except psycopg.OperationalError:
+                if not kept:
+                    raise
+                # The connection kept from an earlier call may have been closed by the server since (a
+                # restart, a failover, an idle timeout), which shows only when it is used. Nothing has run
+                # in this transaction yet, so one fresh connection is tried before calling it an outage.
+                with contextlib.suppress(psycopg.Error):
+                    conn.close()
+                self._conn = None
+                conn = self._connection()
+                conn.execute(begin)
             for statement in setup:
                 conn.execute(statement)
         except psycopg.Error as exc:
             self._abort(conn)
-            raise translate(exc, self.description) from exc
+            raise translate(exc, self.description, writing=writing) from exc
         try:
             yield _PgTx(conn)
         except BaseException as exc:
             self._abort(conn)
             if isinstance(exc, psycopg.Error):
-                raise translate(exc, self.description) from exc
+                raise translate(exc, self.description, writing=writing) from exc
             raise
         try:
             conn.execute("COMMIT")
         except psycopg.Error as exc:
             self._abort(conn)
-            raise translate(exc, self.description) from exc
+            raise translate(exc, self.description, writing=writing) from exc
 
     def _abort(self, conn: Any) -> None:
         psycopg = _psycopg()

@@ -430,7 +430,9 @@ class _Worker:
         replies = self.replies
         return 0 if replies is None else len(replies.pending)
 
-    def start(self) -> None:
+    def start(self, first: list[Message] | None = None) -> list[Future[tuple[Outcome, Any]]]:
+        """Start the process; ``first`` goes into its pipe before any other caller can send to it
+        (their futures are returned)."""
         ctx = _fork_context()
         parent, child = ctx.Pipe(duplex=True)
         proc = ctx.Process(target=_serve, args=(child,), name=f"textsieve-worker-{self.index}", daemon=True)
@@ -439,15 +441,26 @@ class _Worker:
         if self.scheduling != "normal":  # a new process starts under the normal policy
             _place(proc.pid, self.scheduling)
         replies = _Replies(parent, self.send_lock)
+        waiters: list[Future[tuple[Outcome, Any]]] = []
         with self.send_lock:
             self.proc, self.conn, self.replies = proc, parent, replies
             self.generation += 1
+            for msg in first or ():
+                fut: Future[tuple[Outcome, Any]] = Future()
+                replies.pending.append(fut)
+                try:
+                    parent.send(msg)
+                except (OSError, ValueError):
+                    replies.pending.remove(fut)
+                    fut.set_exception(_Died())
+                waiters.append(fut)
         if self.loop is None or not self._on_loop(self._watch, replies):
             replies.by_thread = True
             self.reader = threading.Thread(
                 target=self._read, args=(replies,), name=f"textsieve-worker-{self.index}-replies", daemon=True
             )
             self.reader.start()
+        return waiters
 
     def _on_loop(self, fn: Any, *args: Any) -> bool:
         """Run ``fn`` on the event loop: now when called on it, else as soon as it can; False when it has closed."""
@@ -563,17 +576,19 @@ class _Worker:
             code = self.proc.exitcode if self.proc is not None else None
             log.error("inference worker %s stopped (exit code %s); starting a new one", self.index, code)
             self.stop(timeout=0.5)
+            # Every version it had goes into the new pipe before anyone else can send there: a batch
+            # sent to the new worker while it reloads then waits behind its version's Load (the
+            # worker answers in order) instead of reaching a process without it (KeyError, 503).
+            items = list(self.loaded.items())
             try:
-                self.start()
+                waiters = self.start([Load(key, str(item.bundle), item.batch_size) for key, item in items])
             except Exception as exc:  # noqa: BLE001 - e.g. the fork server is gone; the next call tries again
                 log.error("inference worker %s could not be restarted: %s", self.index, exc)
                 raise UnavailableError(
                     f"inference worker {self.index} could not be restarted ({exc}); retry shortly"
                 ) from exc
-            for key, item in list(self.loaded.items()):
+            for (key, _item), fut in zip(items, waiters, strict=True):
                 try:
-                    _, fut = self.submit(Load(key, str(item.bundle), item.batch_size))
-                    assert isinstance(fut, Future)
                     status, value = self._wait(fut)
                 except _Died:
                     status, value = Outcome.ERROR, "the new worker stopped too"
@@ -669,9 +684,13 @@ class WorkerProcesses:
         done: list[_Worker] = []
         try:
             for w in self.workers:
-                w.call(Load(key, str(item.bundle), batch_size), retry=True)
+                # Booked before it is sent: if the worker dies once it has loaded and another caller
+                # replaces it before this returns, the replacement loads this version too. Booked after,
+                # the new process never had it while batches were sent there (KeyError, 503). No batch
+                # can name the key before this load returns, so booking it early sends none too soon.
                 w.loaded[key] = item
                 done.append(w)
+                w.call(Load(key, str(item.bundle), batch_size), retry=True)
         except BaseException:
             for w in done:
                 self._drop_one(w, key)

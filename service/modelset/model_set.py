@@ -48,7 +48,7 @@ from textsieve.service.inference.batcher import Batcher, InferencePool
 from textsieve.service.inference.memory import release_freed_memory
 from textsieve.service.liveloop.shadow import ShadowScorer
 from textsieve.service.modelset.loader import ServedModel, load_served
-from textsieve.service.modelset.registry_thread import RegistryThread
+from textsieve.service.modelset.registry_thread import RegistryThread, private_detail
 from textsieve.service.settings import Settings
 from textsieve.service.telemetry import ServiceMetrics
 
@@ -114,7 +114,7 @@ class ModelSet:
             await self._discover()
         except TextsieveError as exc:
             self.startup_error = exc.message
-            log.error("startup failed: %s (retrying every %ss)", exc.message, self.settings.poll_seconds)
+            log.error("startup failed: %s (retrying every %ss)", private_detail(exc), self.settings.poll_seconds)
         finally:
             self.started = True
             self._update_ready()
@@ -295,7 +295,7 @@ class ModelSet:
                 status.failed_version = version
                 status.detail = f"version {version} could not be loaded: {exc.message}"
                 self.metrics.swaps.labels(name, "failed").inc()
-                log.error("model %s: loading version %s failed (%s): %s", name, version, why, exc.message)
+                log.error("model %s: loading version %s failed (%s): %s", name, version, why, private_detail(exc))
                 self._update_ready()
                 return current
             # The switch: one assignment on the event loop thread.
@@ -377,6 +377,11 @@ class ModelSet:
         if len(self.status) == 1:
             return next(iter(self.status))
         if not self.status:
+            if not self._discovered:  # the registry has not been read: nobody knows yet what it holds
+                raise UnavailableError(
+                    "this service has not read its registry yet: it is starting, or the registry cannot be "
+                    "reached (/readyz and the server's log say which); retry after the Retry-After seconds"
+                )
             raise UnavailableError("no model is served yet: publish and promote one, then retry")
         raise InputError(f"several models are served ({', '.join(sorted(self.status))}); name one in 'model'")
 
@@ -457,7 +462,10 @@ class ModelSet:
             except TextsieveError as exc:
                 # Shadow scoring is an aid: serving goes on without it, and the next change retries.
                 log.error(
-                    "model %s: candidate version %s not loaded for shadow scoring: %s", name, info.version, exc.message
+                    "model %s: candidate version %s not loaded for shadow scoring: %s",
+                    name,
+                    info.version,
+                    private_detail(exc),
                 )
                 return
             log.info("model %s: candidate version %s scored in the shadow of live traffic", name, info.version)
@@ -503,7 +511,7 @@ class ModelSet:
             try:
                 await self.poll_once()
             except TextsieveError as exc:
-                self._registry_failed(exc.message)
+                self._registry_failed(private_detail(exc))
             except Exception as exc:  # keep polling whatever one round hit; the log has the traceback
                 log.exception("registry poll failed")
                 self._registry_failed(f"{type(exc).__name__} while polling (see the log)")
@@ -527,7 +535,12 @@ class ModelSet:
             self._update_ready()
             return
         assert self._cursor is not None  # read by _discover, which has run
-        self._cursor, events = await self.store.changes_since(self._cursor)
+        # The cursor moves on only once every change read here has been acted on (the end of this
+        # method): when the registry goes away in between (a view of the new live version, its
+        # fetch), the next poll reads the same changes again. Before, they were lost, and a version
+        # promoted just before an outage was never served after it. Acting twice is harmless: a
+        # refresh to the version already served does nothing.
+        cursor, events = await self.store.changes_since(self._cursor)
         # A settings change swaps nothing: it only refreshes what the service knows of the settings.
         changed = {e.model for e in events if e.kind != "settings"}
         resettled = {e.model for e in events if e.kind == "settings"}
@@ -548,6 +561,7 @@ class ModelSet:
             await self.refresh(name, why="registry change" if name in changed else "retry")
         for name in sorted(changed):
             await self.refresh_candidate(name)
+        self._cursor = cursor
         self._update_ready()
 
 

@@ -10,11 +10,12 @@ from __future__ import annotations
 
 import asyncio
 import functools
+import sqlite3
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from typing import ParamSpec, TypeVar
 
-from textsieve.errors import UnavailableError
+from textsieve.errors import RegistryError, StateError, TextsieveError, UnavailableError
 from textsieve.registry import (
     Bundle,
     Event,
@@ -31,6 +32,52 @@ from textsieve.registry.verdicts import Recorded
 from textsieve.service.settings import public_location
 
 P = ParamSpec("P")
+
+# What a caller of the service is told when the registry's storage fails. The registry's own words
+# name its database (user, host, port, database) or its folder, and the driver's add hosts and ports:
+# right for the CLI's operator, wrong for HTTP callers who hold no token (views, pinned predictions,
+# /readyz). The server's log keeps the registry's words (:func:`private_detail`).
+_UNAVAILABLE = (
+    "the registry's database cannot be reached or stayed busy (the server's log says why); "
+    "the versions already loaded keep serving: retry after the Retry-After seconds"
+)
+_NOT_OPEN = (
+    "this service has not opened its registry yet: it is starting, or the registry cannot be reached "
+    "(the server's log says why); retry after the Retry-After seconds"
+)
+_CONFLICT = "the change conflicts with the registry's rules (the server's log says which)"
+_FAILED = "the registry's database failed (the server's log says why)"
+
+
+def _from_storage(exc: BaseException) -> bool:
+    """Whether ``exc`` is the registry's translation of its database driver's error (``raise … from``)."""
+    cause = exc.__cause__
+    return isinstance(cause, sqlite3.Error) or type(cause).__module__.split(".")[0] == "psycopg"
+
+
+def public(exc: TextsieveError) -> TextsieveError:
+    """``exc``, or for a failure of the registry's storage the same class of error in words that
+    name no database, host or folder."""
+    if not _from_storage(exc):
+        return exc
+    if isinstance(exc, UnavailableError):
+        return UnavailableError(_UNAVAILABLE)
+    if isinstance(exc, StateError):
+        return StateError(_CONFLICT)
+    if isinstance(exc, RegistryError):
+        return RegistryError(_FAILED)
+    return exc
+
+
+def private_detail(exc: BaseException) -> str:
+    """The whole story of an error for the server's log: the registry's own words when
+    :func:`public` reworded them."""
+    cause = exc.__cause__
+    if isinstance(cause, TextsieveError) and _from_storage(cause):
+        return cause.message
+    return exc.message if isinstance(exc, TextsieveError) else str(exc)
+
+
 T = TypeVar("T")
 
 
@@ -51,9 +98,16 @@ class RegistryThread:
         return registry
 
     async def _run(self, fn: Callable[P, T], *args: P.args, **kwargs: P.kwargs) -> T:
-        """``fn(*args, **kwargs)`` on the registry thread; its exceptions are raised here unchanged."""
+        """``fn(*args, **kwargs)`` on the registry thread; its exceptions are raised here unchanged,
+        but for the storage's own failures, which are raised in words for any caller (:func:`public`)."""
         loop = asyncio.get_running_loop()
-        return await loop.run_in_executor(self._executor, functools.partial(fn, *args, **kwargs))
+        try:
+            return await loop.run_in_executor(self._executor, functools.partial(fn, *args, **kwargs))
+        except TextsieveError as exc:
+            said = public(exc)
+            if said is exc:
+                raise
+            raise said from exc
 
     async def open(self) -> None:
         if self._registry is None:
@@ -67,7 +121,9 @@ class RegistryThread:
     def registry(self) -> Registry:
         """The open registry; only to be used on the registry thread (through the methods below)."""
         if self._registry is None:
-            raise UnavailableError(f"the registry at {self.label} is not open yet")
+            # Anyone may meet this (a view, a pinned prediction while the service starts or its database
+            # is down): no location in it; the server's log names the registry and why it is not open.
+            raise UnavailableError(_NOT_OPEN)
         return self._registry
 
     # -- reading ------------------------------------------------------------------------
@@ -173,4 +229,4 @@ class RegistryThread:
         self._executor.shutdown(wait=True)
 
 
-__all__ = ["RegistryThread"]
+__all__ = ["RegistryThread", "private_detail", "public"]

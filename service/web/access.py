@@ -20,11 +20,13 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from textsieve.service.logs import ACCESS, line_handler
 from textsieve.service.telemetry import ServiceMetrics
-from textsieve.service.web.transport import PROBE_PATHS, WITH_BODY, ConnectionGuard
+from textsieve.service.web.transport import ANSWERED_HERE, PROBE_PATHS, WITH_BODY, ConnectionGuard
 
 _SAFE_ID = re.compile(r"[A-Za-z0-9._:-]{1,128}")
-# Booked for a request the app returned from without answering: its client went away mid-body, or
-# the connection layer answered it (400 for broken chunked framing, 408). nginx's "client closed request".
+# Booked for a request whose client went away mid-body (whatever the app made of the missing body,
+# its reply went nowhere): nginx's "client closed request". When the connection layer answered it
+# instead (408 for a body that stalled past the read deadline, 400 for broken chunked framing), that
+# status is booked, as the client got it (transport.ANSWERED_HERE, read only on this rare path).
 CLIENT_GONE = 499
 log = logging.getLogger(ACCESS)
 # Request ids need to be unique, not secret. os.urandom (behind uuid4) releases the GIL, and
@@ -117,16 +119,22 @@ class AccessMiddleware:
         # stay outside it: a busy replica must still answer its liveness and readiness checks.
         guard = None if scope["path"] in PROBE_PATHS else self.access.guard
         entered: float | None = None
+        # The connection ended before the body did: whatever the app answers after that goes nowhere.
+        # The client got the connection layer's reply (408, 400) or none at all (499).
+        cut = False
         app_receive = receive
         if guard is not None:
             if scope["method"] in WITH_BODY:
 
                 async def app_receive() -> Message:
-                    nonlocal entered
+                    nonlocal entered, cut
                     message = await receive()
-                    if entered is None and message["type"] == "http.request" and not message.get("more_body"):
-                        entered = time.perf_counter()
-                        guard.inflight += 1
+                    if entered is None:
+                        if message["type"] != "http.request":
+                            cut = True
+                        elif not message.get("more_body"):
+                            entered = time.perf_counter()
+                            guard.inflight += 1
                     return message
 
             else:
@@ -138,7 +146,8 @@ class AccessMiddleware:
             status = status or 500  # the server answers it 500
             raise
         finally:
-            self.access.finish(scope, _route(scope), status or CLIENT_GONE, started, entered)
+            booked = scope.get(ANSWERED_HERE, CLIENT_GONE) if cut else status or CLIENT_GONE
+            self.access.finish(scope, _route(scope), booked, started, entered)
 
 
 __all__ = ["CLIENT_GONE", "Access", "AccessMiddleware", "begin"]

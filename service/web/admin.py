@@ -9,16 +9,14 @@ After a successful call the service swaps to the new live version before answeri
 
 from __future__ import annotations
 
-import secrets
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Request
 
-from textsieve.errors import AuthError
 from textsieve.service.web.deps import ModelsDep, RegistryDep, SettingsDep, no_query
 from textsieve.service.web.jsonbody import JsonBodyRoute
 from textsieve.service.web.openapi import ADMIN_SCHEME, Tag
-from textsieve.service.web.problems import MEDIA_TYPE, AdminDisabledError
+from textsieve.service.web.problems import MEDIA_TYPE
 from textsieve.service.web.schemas import (
     AdminReply,
     GateView,
@@ -28,6 +26,7 @@ from textsieve.service.web.schemas import (
     ServingView,
     VersionView,
 )
+from textsieve.service.web.tokens import admin_refusal
 from textsieve.service.web.views import _version_number
 
 router = APIRouter(prefix="/v1/models", route_class=JsonBodyRoute)
@@ -37,17 +36,9 @@ _SECURED: dict[str, Any] = {"security": [{ADMIN_SCHEME: []}]}
 
 
 async def require_admin(request: Request, settings: SettingsDep) -> None:
-    if settings.admin_token is None:
-        raise AdminDisabledError()
-    header = request.headers.get("authorization", "")
-    scheme, _, token = header.strip().partition(" ")
-    if not header:
-        raise AuthError("admin calls need an 'Authorization: Bearer <token>' header", missing=True)
-    if scheme.lower() != "bearer" or not token.strip():
-        raise AuthError("the Authorization header must be 'Bearer <token>'", missing=True)
-    expected = settings.admin_token.get_secret_value().encode()
-    if not secrets.compare_digest(token.strip().encode(), expected):
-        raise AuthError("the admin token is wrong", missing=False)
+    refusal = admin_refusal(settings, request.headers.get("authorization", ""))
+    if refusal is not None:
+        raise refusal
 
 
 Admin = Annotated[None, Depends(require_admin)]

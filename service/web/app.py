@@ -25,6 +25,7 @@ from textsieve.service.web.bodylimit import BodyBudget, BodyLimitMiddleware
 from textsieve.service.web.lane import LanedFastAPI, PredictLane
 from textsieve.service.web.methods import HeadAsGetMiddleware
 from textsieve.service.web.onewrite import HeadWithBodyMiddleware
+from textsieve.service.web.tokens import TokenGate, admin_refusal, reviewer_refusal
 from textsieve.service.web.transport import ConnectionGuard
 
 
@@ -102,7 +103,13 @@ def create_app(settings: Settings | None = None, *, fast_lane: bool = True) -> L
         app.include_router(module.router)
     openapi.install(app)
     app.add_middleware(HeadAsGetMiddleware)  # innermost of ours: the router sees GET, the layers above HEAD
-    app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes, budget=budget)
+    # The routers' own routes: the app's list holds the included routers, not their routes.
+    tokens = TokenGate.of(
+        settings,
+        [*admin.router.routes, *reviews.router.routes],
+        {admin.require_admin: admin_refusal, reviews.require_reviewer: reviewer_refusal},
+    )
+    app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes, budget=budget, tokens=tokens)
     app.state.access = access = Access(metrics, enabled=settings.access_log, guard=app.state.guard)
     app.add_middleware(AccessMiddleware, access=access)
     app.add_middleware(HeadWithBodyMiddleware)  # outermost of ours in the stack: see service/web/onewrite.py

@@ -11,6 +11,7 @@ after a burst, freed memory is handed back to the operating system (see
 :mod:`textsieve.service.inference.memory`), so a replica's memory returns near its idle level.
 
 The refusals are the same problem+json as every other limit (:mod:`textsieve.service.web.problems`).
+On the admin and verdict routes the token is checked before any of them (:mod:`textsieve.service.web.tokens`).
 """
 
 from __future__ import annotations
@@ -24,6 +25,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 from textsieve.errors import LimitError, OverloadedError
 from textsieve.service.inference.memory import release_freed_memory
 from textsieve.service.web.problems import ContentEncodingError, TransferCodingError, render
+from textsieve.service.web.tokens import TokenGate
 from textsieve.service.web.transport import WITH_BODY
 
 TRIM_AFTER_BYTES = 8 * 1024 * 1024  # hand memory back once at least this much passed through
@@ -85,10 +87,11 @@ def _over_budget(budget: BodyBudget) -> OverloadedError:
 
 
 class BodyLimitMiddleware:
-    def __init__(self, app: ASGIApp, max_bytes: int, budget: BodyBudget) -> None:
+    def __init__(self, app: ASGIApp, max_bytes: int, budget: BodyBudget, tokens: TokenGate | None = None) -> None:
         self.app = app
         self.max_bytes = max_bytes
         self.budget = budget
+        self.tokens = tokens  # the admin and reviewer routes' tokens, checked before anything else here
 
     async def _refuse(self, exc: Exception, scope: Scope, receive: Receive, send: Send) -> None:
         response = render(exc, scope)
@@ -100,6 +103,16 @@ class BodyLimitMiddleware:
             await self.app(scope, receive, send)
             return
         headers = Headers(scope=scope)
+        if self.tokens is not None:
+            refusal = self.tokens.refusal(scope)
+            if refusal is not None:
+                # A caller without the route's token learns nothing about its body, and none of it
+                # is read (service/web/tokens.py); a body it announced is left unread, so close.
+                response = render(refusal, scope)
+                if headers.get("content-length", "0") != "0" or "transfer-encoding" in headers:
+                    response.headers["Connection"] = "close"
+                await response(scope, receive, send)
+                return
         coding = headers.get("content-encoding", "").strip()
         if coding and coding.lower() != "identity":
             # A compressed body would be read, counted and parsed as if it were JSON; say so at once

@@ -35,6 +35,7 @@ from textsieve.errors import (
     TextsieveError,
     UnavailableError,
 )
+from textsieve.service.modelset.registry_thread import private_detail
 from textsieve.service.web.idempotency import IdempotencyKeyError
 from textsieve.service.web.methods import allowed
 
@@ -372,6 +373,9 @@ def render(exc: BaseException, scope: Scope) -> Response:
     """The problem response for any exception; the single exception → HTTP mapping."""
     kind = kind_of(exc)
     if isinstance(exc, TextsieveError) and kind is not INTERNAL:
+        if exc.__cause__ is not None and (detail := private_detail(exc)) != exc.message:
+            # The reply says "the server's log says why" (service/modelset/registry_thread.py): say it here.
+            log.warning("%s on %s (request %s): %s", kind.status, scope.get("path"), request_id(scope), detail)
         ctx = dict(exc.context)
         if set(ctx) == {"context"} and isinstance(ctx["context"], dict):
             ctx = dict(ctx["context"])

@@ -22,7 +22,6 @@ with its verdict, so a concurrent repeat waits for the first and is answered as 
 
 from __future__ import annotations
 
-import secrets
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Request
@@ -34,8 +33,9 @@ from textsieve.service.web.deps import RegistryDep, SettingsDep, no_query
 from textsieve.service.web.idempotency import HEADER, SCHEMA, IdempotencyKey
 from textsieve.service.web.jsonbody import JsonBodyRoute
 from textsieve.service.web.openapi import REVIEW_SCHEME, Tag
-from textsieve.service.web.problems import MEDIA_TYPE, ReviewDisabledError, ReviewerAuthError
+from textsieve.service.web.problems import MEDIA_TYPE
 from textsieve.service.web.schemas import Problem, VerdictReply, VerdictRequest
+from textsieve.service.web.tokens import reviewer_refusal
 
 router = APIRouter(route_class=JsonBodyRoute)
 _P = {"model": Problem, "content": {MEDIA_TYPE: {}}}
@@ -62,17 +62,9 @@ _KEY_PARAMETER = {
 
 
 async def require_reviewer(request: Request, settings: SettingsDep) -> None:
-    if settings.review_token is None:
-        raise ReviewDisabledError()
-    header = request.headers.get("authorization", "")
-    scheme, _, token = header.strip().partition(" ")
-    if not header:
-        raise ReviewerAuthError("recording a verdict needs an 'Authorization: Bearer <token>' header", missing=True)
-    if scheme.lower() != "bearer" or not token.strip():
-        raise ReviewerAuthError("the Authorization header must be 'Bearer <token>'", missing=True)
-    expected = settings.review_token.get_secret_value().encode()
-    if not secrets.compare_digest(token.strip().encode(), expected):
-        raise ReviewerAuthError("the reviewer token is wrong (the admin token is not accepted here)", missing=False)
+    refusal = reviewer_refusal(settings, request.headers.get("authorization", ""))
+    if refusal is not None:
+        raise refusal
 
 
 Reviewer = Annotated[None, Depends(require_reviewer)]

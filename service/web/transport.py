@@ -67,6 +67,10 @@ WITH_BODY = frozenset({"POST", "PUT", "PATCH"})
 _REQUEST_LINE = re.compile(rb"[!#$%&'*+.^_`|~0-9A-Za-z-]+ [^ \r\n]+ HTTP/[0-9]\.[0-9]\r?\n")
 # The route label of a reply written here: no route was matched, as for the app's own 404s.
 UNMATCHED = "unmatched"
+# The scope key of the status written here to a request the application holds (a body that stalled
+# past the read deadline, 408, or whose chunked framing broke, 400): the access middleware books
+# that, what the client got, instead of a disconnect (service/web/access.py).
+ANSWERED_HERE = "textsieve.answered_by_connection"
 UNKNOWN_METHOD_LABEL = "unknown"  # the request line was not read (or named no method httptools knows)
 
 
@@ -310,8 +314,12 @@ class ConnectionGuard:
                 return line + sum(len(name) + len(value) + 4 for name, value in self.headers) + 2
 
             def _count(self, status: int, seconds: float | None = None) -> None:
-                """Count a reply written here, unless the application has the request (it books it then)."""
+                """Count a reply written here, unless the application has the request: it books it then,
+                with the status left in its scope when no reply of its own had started."""
                 if self._app_has_it:
+                    cycle: Any = self.cycle
+                    if cycle is not None and not cycle.response_started:
+                        cycle.scope[ANSWERED_HERE] = status
                     return
                 # The method is known once the target has been read (the parser reads the method first).
                 method = self.parser.get_method().decode("ascii") if self.url else UNKNOWN_METHOD_LABEL
@@ -483,4 +491,4 @@ class ConnectionGuard:
         return GuardedHttpToolsProtocol
 
 
-__all__ = ["PROBE_PATHS", "UNMATCHED", "WITH_BODY", "ConnectionGuard"]
+__all__ = ["ANSWERED_HERE", "PROBE_PATHS", "UNMATCHED", "WITH_BODY", "ConnectionGuard"]

@@ -15,9 +15,11 @@ import logging
 import re
 import secrets
 import shutil
+import socket
 import subprocess
 import sys
 import textwrap
+import time
 import urllib.parse
 from pathlib import Path
 from typing import Any
@@ -30,8 +32,17 @@ from hypothesis import strategies as st
 from tests.helpers.environment import child_env
 from tests.helpers.net import free_port, poll_readyz
 from tests.helpers.registries import edit_manifest
-from tests.helpers.servers import ServerProcess
-from tests.helpers.service import ADMIN_TOKEN, AUTH, MODEL, assert_problem, log_text, serving, settings_for
+from tests.helpers.servers import ServerProcess, running_server
+from tests.helpers.service import (
+    ADMIN_TOKEN,
+    AUTH,
+    MODEL,
+    REVIEW_TOKEN,
+    assert_problem,
+    log_text,
+    serving,
+    settings_for,
+)
 from textsieve.errors import BundleError, InputError
 from textsieve.registry import open_registry
 from textsieve.registry.names import MODEL_NAME, validate_model_name
@@ -97,6 +108,160 @@ def test_short_admin_tokens_are_refused_at_startup(tmp_path: Path) -> None:
 
     with pytest.raises(InputError, match="at least 16 characters"):
         load_settings(registry=str(tmp_path), admin_token="hunter2")
+
+
+# -- the token before anything about the body ----------------------------------------------------
+def _raw_reply(port: int, request: bytes, wait: float = 3.0) -> tuple[int, dict[str, str], bytes]:
+    """Send ``request`` on a fresh connection (a body may be announced and never sent) and read the
+    reply the server writes within ``wait`` seconds: status, headers (lowercase) and body."""
+    with socket.create_connection(("127.0.0.1", port), timeout=wait) as s:
+        s.sendall(request)
+        raw = b""
+        end = time.monotonic() + wait
+        while b"\r\n\r\n" not in raw or len(raw.split(b"\r\n\r\n", 1)[1]) < _length(raw):
+            s.settimeout(max(0.01, end - time.monotonic()))
+            try:
+                chunk = s.recv(65536)
+            except (TimeoutError, ConnectionError):
+                break
+            if not chunk:
+                break
+            raw += chunk
+    if not raw:
+        return 0, {}, b""
+    head, _, body = raw.partition(b"\r\n\r\n")
+    lines = head.decode("latin-1").split("\r\n")
+    headers = {k.strip().lower(): v.strip() for k, _, v in (line.partition(":") for line in lines[1:])}
+    return int(lines[0].split(" ")[1]), headers, body
+
+
+def _length(raw: bytes) -> int:
+    match = re.search(rb"(?im)^content-length: *([0-9]+)", raw)
+    return int(match.group(1)) if match else 0
+
+
+def _head(path: str, authorization: str | None, *lines: str) -> bytes:
+    head = [f"POST {path} HTTP/1.1", "Host: t", "Content-Type: application/json", *lines]
+    if authorization is not None:
+        head.append(f"Authorization: {authorization}")
+    return ("\r\n".join(head) + "\r\n\r\n").encode()
+
+
+_SMALL = json.dumps({"reason": "x"}).encode()
+# What the body middleware refuses before the route runs (service/web/bodylimit.py), each with the
+# status an authorised caller gets for it.
+_BODY_REFUSALS = [
+    pytest.param(
+        lambda: [f"Content-Length: {len(_SMALL)}", "Content-Encoding: gzip"], _SMALL, 415, id="compressed body"
+    ),
+    pytest.param(lambda: ["Content-Length: 50000000"], b"", 413, id="50 MB announced, never sent"),
+    pytest.param(lambda: ["Transfer-Encoding: gzip, chunked"], b"5\r\nhello\r\n", 501, id="gzip transfer coding"),
+    pytest.param(lambda: ["Transfer-Encoding: chunked"], b"400\r\n" + b" " * 100, 408, id="chunked body that stalls"),
+]
+_GUARDED = [
+    (f"/v1/models/{MODEL}/versions/2/promote", "admin"),
+    (f"/v1/models/{MODEL}/rollback", "admin"),
+    ("/v1/verdicts", "review"),
+]
+
+
+@pytest.mark.parametrize(("lines", "body", "authorised_status"), _BODY_REFUSALS)
+def test_callers_without_the_token_get_401_or_403_before_any_body_refusal_and_no_body_is_read(
+    registry_dir: Path, tmp_path: Path, lines: Any, body: bytes, authorised_status: int
+) -> None:
+    """Before, a compressed, oversized or otherwise unreadable body was refused 415/413/501 to anyone on
+    the admin and verdict routes (the body middleware ran before the route's token check), and a
+    stalled one held the connection until the read deadline; every other refusal came after the
+    401/403. Common practice: an unauthenticated caller of a protected route learns nothing else
+    about how its request would be treated, and the server does no work for it, reading its body
+    least of all. RFC 9110 §15.5.2 (401, with WWW-Authenticate, §11.6.1) and §15.5.4 (403);
+    RFC 6750 §3 (the Bearer challenge)."""
+    with running_server(
+        str(registry_dir),
+        tmp_path / "serve.log",
+        workers=1,
+        inference="threads",
+        admin_token=ADMIN_TOKEN,
+        review_token=REVIEW_TOKEN,
+        max_body_bytes=64 * 1024,
+        read_timeout_seconds=2,
+    ) as server:
+        before = _history(registry_dir)
+        tokens = {"admin": ADMIN_TOKEN, "review": REVIEW_TOKEN}
+        for path, role in _GUARDED:
+            other = REVIEW_TOKEN if role == "admin" else ADMIN_TOKEN
+            for authorization, status in (
+                (None, 401),
+                ("Bearer wrong-token-0123456789", 403),
+                (f"Bearer {other}", 403),
+            ):
+                started = time.monotonic()
+                got, headers, reply = _raw_reply(server.port, _head(path, authorization, *lines()) + body)
+                assert got == status, (path, authorization, got, reply[:300])
+                # At once, not after the read deadline: nothing of the body was waited for.
+                assert time.monotonic() - started < 1.5, (path, authorization)
+                assert headers["content-type"] == "application/problem+json"
+                problem = json.loads(reply)
+                assert problem["status"] == status and "token" in problem["detail"].lower(), problem
+                assert headers["connection"] == "close"  # the announced body is never read
+                if status == 401:
+                    assert headers["www-authenticate"].startswith("Bearer "), headers
+            # The right token: the body's own refusal, as before (the token does not waive it).
+            got, headers, reply = _raw_reply(server.port, _head(path, f"Bearer {tokens[role]}", *lines()) + body, 5)
+            assert got == authorised_status, (path, got, reply[:300])
+        assert _history(registry_dir) == before
+
+
+def test_a_replica_out_of_body_budget_answers_a_caller_without_the_token_401_not_503(
+    registry_dir: Path, tmp_path: Path
+) -> None:
+    """The body budget's 503 (SECURITY.md §9) is a body refusal too: an unauthenticated caller gets the
+    401 whatever the budget holds, and an authorised one the 503 with Retry-After (RFC 9110 §15.6.4)."""
+    with running_server(
+        str(registry_dir),
+        tmp_path / "serve.log",
+        workers=1,
+        inference="threads",
+        admin_token=ADMIN_TOKEN,
+        max_body_bytes=64 * 1024,
+        body_budget_bytes=64 * 1024,
+    ) as server:
+        path = f"/v1/models/{MODEL}/rollback"
+        with socket.create_connection(("127.0.0.1", server.port), timeout=5) as stalled:
+            # Announces the whole budget and sends none of it: the budget is reserved and held.
+            stalled.sendall(_head("/v1/predict", None, f"Content-Length: {64 * 1024}"))
+            time.sleep(0.3)
+            got, headers, _ = _raw_reply(server.port, _head(path, None, f"Content-Length: {len(_SMALL)}") + _SMALL)
+            assert got == 401 and headers["www-authenticate"].startswith("Bearer "), (got, headers)
+            got, headers, _ = _raw_reply(
+                server.port, _head(path, f"Bearer {ADMIN_TOKEN}", f"Content-Length: {len(_SMALL)}") + _SMALL
+            )
+            assert got == 503 and headers["retry-after"] == "1", (got, headers)
+
+
+@pytest.mark.parametrize(("path", "role"), _GUARDED)
+def test_a_plain_request_without_the_token_is_refused_without_its_body_and_the_connection_is_usable_again(
+    registry_dir: Path, tmp_path: Path, path: str, role: str
+) -> None:
+    """A well-formed request without its token gets the same 401 it always did, now before its
+    body is read, and a bodiless one leaves the connection open for the next request."""
+    with (
+        running_server(
+            str(registry_dir),
+            tmp_path / "serve.log",
+            workers=1,
+            inference="threads",
+            admin_token=ADMIN_TOKEN,
+            review_token=REVIEW_TOKEN,
+        ) as server,
+        httpx.Client(base_url=server.url, timeout=10) as client,
+    ):
+        r = client.post(path, json={"reason": "x"})
+        problem = assert_problem(r, 401, "unauthorized" if role == "admin" else "reviewer-unauthorized")
+        assert "Authorization" in problem["detail"]
+        r = client.post(path)  # no body at all
+        assert r.status_code == 401 and r.headers.get("connection") != "close", r.headers
+        assert client.get("/healthz").status_code == 200
 
 
 # -- no secret in logs or replies (OWASP API8) ----------------------------------------------------

@@ -13,7 +13,16 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from tests.helpers.service import MODEL, PROBLEM, assert_problem, serving, settings_for
+from tests.helpers.service import (
+    ADMIN_TOKEN,
+    MODEL,
+    PROBLEM,
+    REVIEW_AUTH,
+    REVIEW_TOKEN,
+    assert_problem,
+    serving,
+    settings_for,
+)
 
 pytestmark = pytest.mark.anyio
 
@@ -246,15 +255,27 @@ async def test_a_405_lists_every_allowed_method_head_beside_get(
     assert r.headers["allow"] == allow
 
 
+@pytest.fixture(scope="module")
+async def tokens_client(shared_registry: Path) -> AsyncIterator[httpx.AsyncClient]:
+    """Like ``shared_client`` with the admin and reviewer tokens set."""
+    async with serving(settings_for(shared_registry, admin_token=ADMIN_TOKEN, review_token=REVIEW_TOKEN)) as (_, c):
+        yield c
+
+
+# The verdict route needs its token before its body is looked at (service/web/tokens.py).
+_AUTHORISED = {"/v1/predict": {}, "/v1/verdicts": REVIEW_AUTH}
+
+
 @pytest.mark.parametrize("coding", ["gzip", "deflate", "br", "GZIP"])
 @pytest.mark.parametrize("path", ["/v1/predict", "/v1/verdicts"])
 async def test_a_compressed_request_body_is_refused_with_415_naming_what_is_accepted(
-    shared_client: httpx.AsyncClient, coding: str, path: str
+    tokens_client: httpx.AsyncClient, coding: str, path: str
 ) -> None:
     # RFC 9110 §15.5.16: 415 for a content coding the server does not accept, with Accept-Encoding
     # naming what it does (RFC 7694 §3). Before, a gzip body read as "not UTF-8" (422).
     body = gzip.compress(json.dumps({"texts": ["my card was charged twice"]}).encode())
-    r = await shared_client.post(path, content=body, headers={**JSON, "content-encoding": coding})
+    headers = {**JSON, "content-encoding": coding, **_AUTHORISED[path]}
+    r = await tokens_client.post(path, content=body, headers=headers)
     problem = assert_problem(r, 415, "unsupported-content-encoding")
     assert repr(coding) in problem["detail"] and "without Content-Encoding" in problem["detail"]
     assert r.headers["accept-encoding"] == "identity"
@@ -263,20 +284,22 @@ async def test_a_compressed_request_body_is_refused_with_415_naming_what_is_acce
 @pytest.mark.parametrize("coding", ["gzip, chunked", "x-custom, chunked", "GZIP,chunked"])
 @pytest.mark.parametrize("path", ["/v1/predict", "/v1/verdicts"])
 async def test_a_transfer_coding_besides_chunked_is_refused_with_501(
-    shared_client: httpx.AsyncClient, coding: str, path: str
+    tokens_client: httpx.AsyncClient, coding: str, path: str
 ) -> None:
     # RFC 9112 §6.1: 501 for a transfer coding the server does not understand. The HTTP parser
     # undoes only the chunking, so before, a gzip body read as "not UTF-8" (422) and any other
     # coding's bytes were classified as if they were the JSON itself (200).
     body = json.dumps({"texts": ["my card was charged twice"]}).encode()
     for content in (gzip.compress(body), body):
-        r = await shared_client.post(path, content=content, headers={**JSON, "transfer-encoding": coding})
+        headers = {**JSON, "transfer-encoding": coding, **_AUTHORISED[path]}
+        r = await tokens_client.post(path, content=content, headers=headers)
         problem = assert_problem(r, 501, "unsupported-transfer-coding")
         named = coding.split(",")[0]
         assert f"Transfer-Encoding '{named}, chunked'" in problem["detail"], problem["detail"]
         assert "Transfer-Encoding: chunked alone" in problem["detail"]
         assert r.headers["connection"] == "close"
-    r = await shared_client.post(path, content=_chunks(body), headers={**JSON, "transfer-encoding": "Chunked"})
+    headers = {**JSON, "transfer-encoding": "Chunked", **_AUTHORISED[path]}
+    r = await tokens_client.post(path, content=_chunks(body), headers=headers)
     assert r.status_code != 501, r.text
 
 

@@ -202,6 +202,87 @@ async def test_a_client_gone_mid_body_is_booked_499_not_500(shared_registry: Pat
     assert not [k for k in samples if k[0] == "textsieve_http_requests_total" and ("status", "500") in k[1]]
 
 
+def _logged_request(log: Path, rid: str, timeout: float = 5.0) -> dict[str, Any]:
+    """The access-log line of request ``rid`` in a server's JSON log (written within a flush or two)."""
+    end = time.monotonic() + timeout
+    while True:
+        for line in log.read_text(encoding="utf-8", errors="replace").splitlines():
+            if line.startswith("{"):
+                entry = json.loads(line)
+                if entry.get("event") == "request" and entry.get("request_id") == rid:
+                    return dict(entry)
+        assert time.monotonic() < end, f"no access-log line for {rid}"
+        time.sleep(0.1)
+
+
+# Bodies the client starts and the connection layer answers (service/web/transport.py): a body that
+# stalls past the read deadline is 408 (RFC 9110 §15.5.9); a chunk whose size is not hexadecimal
+# breaks the chunked framing (RFC 9112 §7.1), 400. Each goes to predict and to a token-guarded route
+# (with its token), whose bodies the app reads at different layers.
+_STARTED_BODIES = [
+    pytest.param("/v1/predict", "Content-Length: 100", b'{"texts": [', 408, id="predict, body stalls"),
+    pytest.param("/v1/predict", "Transfer-Encoding: chunked", b'b\r\n{"texts": [\r\n', 408, id="predict, chunks stall"),
+    pytest.param(
+        "/v1/predict", "Transfer-Encoding: chunked", b'b\r\n{"texts": [\r\nzz\r\n', 400, id="predict, bad chunk"
+    ),
+    pytest.param("/v1/verdicts", "Content-Length: 100", b'{"model": ', 408, id="verdicts, body stalls"),
+    pytest.param("/v1/verdicts", "Transfer-Encoding: chunked", b'3\r\n{"m\r\nzz\r\n', 400, id="verdicts, bad chunk"),
+]
+
+
+def test_the_access_log_and_metrics_book_what_the_connection_layer_answered_a_started_body(
+    shared_registry: Path, tmp_path: Path
+) -> None:
+    """Before, the app saw these as a client gone mid-body and booked 499 while the client had got a
+    408 or a 400 (the connection layer's own counters had them). Now the log line and
+    textsieve_http_requests_total carry the status that went out, once."""
+    import socket
+
+    import httpx
+
+    from tests.helpers.servers import running_server
+    from tests.helpers.service import REVIEW_TOKEN
+
+    log = tmp_path / "serve.log"
+    with running_server(
+        str(shared_registry), log, workers=1, inference="threads", read_timeout_seconds=1, review_token=REVIEW_TOKEN
+    ) as server:
+        for i, param in enumerate(_STARTED_BODIES):
+            path, framing, body, status = param.values
+            rid = f"started-body-{i}"
+            head = (
+                f"POST {path} HTTP/1.1\r\nHost: t\r\nContent-Type: application/json\r\n{framing}\r\n"
+                f"X-Request-Id: {rid}\r\nAuthorization: Bearer {REVIEW_TOKEN}\r\n\r\n"
+            )
+            with socket.create_connection(("127.0.0.1", server.port), timeout=5) as s:
+                s.sendall(head.encode() + body)
+                reply = s.recv(65536)
+            assert reply.startswith(f"HTTP/1.1 {status} ".encode()), (param.id, reply[:200])
+            entry = _logged_request(log, rid)
+            assert entry["status"] == status, (param.id, entry)
+            assert entry["path"] == path
+        # A client that goes away mid-body got nothing: 499, not the 422 the app then made of the
+        # missing body (before, that was booked for a declared length).
+        for i, path in enumerate(("/v1/predict", "/v1/verdicts")):
+            rid = f"gone-mid-body-{i}"
+            head = (
+                f"POST {path} HTTP/1.1\r\nHost: t\r\nContent-Type: application/json\r\nContent-Length: 100\r\n"
+                f"X-Request-Id: {rid}\r\nAuthorization: Bearer {REVIEW_TOKEN}\r\n\r\n"
+            )
+            with socket.create_connection(("127.0.0.1", server.port), timeout=5) as s:
+                s.sendall(head.encode() + b'{"texts": [')
+                time.sleep(0.2)
+            entry = _logged_request(log, rid)
+            assert entry["status"] == 499, entry
+        samples = outside(httpx.get(f"{server.url}/metrics", timeout=10).text)
+    booked = defaultdict(float)
+    for (name, labels), value in samples.items():
+        if name == "textsieve_http_requests_total" and ("method", "POST") in labels:
+            booked[dict(labels)["status"]] += value
+    assert booked["408"] == 3 and booked["400"] == 2, dict(booked)
+    assert booked["499"] == 2 and booked["422"] == 0, dict(booked)
+
+
 def test_label_values_and_help_are_escaped() -> None:
     metrics = ServiceMetrics()
     weird = 'a "quoted" \\ back\nslash'

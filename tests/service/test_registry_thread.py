@@ -1,4 +1,5 @@
-"""The service's registry boundary: typed calls, all on one thread, errors arriving unchanged."""
+"""The service's registry boundary: typed calls, all on one thread, errors arriving unchanged (but for
+the storage's own failures, reworded to name no folder or database)."""
 
 from __future__ import annotations
 
@@ -87,13 +88,13 @@ async def test_every_call_runs_on_the_thread_that_opened_the_registry(
 async def test_calls_before_open_or_after_close_are_unavailable_not_attribute_errors(tmp_path: Path) -> None:
     open_registry(tmp_path / "reg").close()
     store = RegistryThread(str(tmp_path / "reg"))
-    with pytest.raises(UnavailableError, match="not open yet"):
+    with pytest.raises(UnavailableError, match="has not opened its registry yet"):
         await store.models()
     await store.open()
     assert store.is_open and isinstance(store.registry, Registry)
     await store.close()
     assert not store.is_open
-    with pytest.raises(UnavailableError, match="not open yet"):
+    with pytest.raises(UnavailableError, match="has not opened its registry yet"):
         await store.cursor()
 
 
@@ -111,3 +112,26 @@ async def test_a_state_conflict_on_the_thread_is_a_state_error(
 def _publish(location: str, bundle: Path) -> None:
     with open_registry(location) as reg:
         reg.publish(bundle, "m", actor="tests")
+
+
+async def test_a_storage_failure_reaches_callers_in_words_that_name_no_folder(tmp_path: Path) -> None:
+    """A SQLite registry whose database is damaged: the registry's words name its folder (right for
+    the CLI); the service's callers, who may hold no token, get the same class without it, and
+    private_detail keeps the registry's words for the log (DEVELOPERS.md: callers without a token
+    learn no folder, host or database of the machine)."""
+    from textsieve.service.modelset.registry_thread import private_detail
+
+    folder = tmp_path / "secret-folder-name" / "reg"
+    open_registry(folder).close()
+    store = RegistryThread(str(folder))
+    await store.open()
+    try:
+        for db in folder.glob("registry.sqlite3*"):  # what sqlite reads is no longer a database
+            db.write_bytes(b"this is not a database" * 512)
+        with pytest.raises(TextsieveError) as caught:
+            await store.models()
+    finally:
+        await store.close()
+    assert "secret-folder-name" not in caught.value.message, caught.value.message
+    assert "log says why" in caught.value.message
+    assert "secret-folder-name" in private_detail(caught.value)

@@ -192,3 +192,38 @@ async def test_damaged_blob_fails_startup_and_a_failed_swap_keeps_the_old_versio
     assert "version 2 could not be loaded" in ready.json()["models"][MODEL]["detail"]
     assert predict["version"] == 1
     assert f'textsieve_swaps_total{{model="{MODEL}",outcome="failed"}} 1.0\n' in metrics
+
+
+async def test_a_change_read_just_before_the_registry_went_away_is_acted_on_once_it_is_back(
+    registry_dir: Path,
+) -> None:
+    """Found on a real textsieve serve whose PostgreSQL was stopped right after a promotion: after the
+    database came back the replica kept serving the old version (still version 1 twenty seconds
+    later, while its /readyz said nothing was degraded). The poll had read the promotion and moved
+    its cursor past it, then the registry went away while the new live version was looked up; the
+    change was lost. Here the look-up fails once, as it did during that outage."""
+    from tests.helpers.net import readyz_until
+    from textsieve.errors import UnavailableError
+
+    async with serving(settings_for(registry_dir, poll_seconds=0.1)) as (app, client):
+        store = app.state.store
+        real_live = store.live
+        failed = asyncio.Event()
+
+        async def live_once_unreachable(name: str) -> Any:
+            if not failed.is_set():
+                failed.set()
+                raise UnavailableError("the registry's database cannot be reached (a stand-in for the outage)")
+            return await real_live(name)
+
+        store.live = live_once_unreachable
+        await _registry(
+            "promote", registry_dir, MODEL, 2, "live", reason="before the outage", actor="tests", force=True
+        )
+        await asyncio.wait_for(failed.wait(), 10)
+        body = await readyz_until(
+            client, lambda b: b["models"][MODEL].get("version") == 2, timeout=10, awaiting="version 2 after the outage"
+        )
+        assert not body["degraded"]
+        r = await client.post("/v1/predict", json={"texts": PROBE})
+        assert r.json()["version"] == 2

@@ -466,3 +466,81 @@ def test_workers_inherit_the_scan_of_the_unicode_database_from_the_fork_server(t
     )
     done = subprocess.run([sys.executable, str(script)], cwd=tmp_path, timeout=120, capture_output=True)
     assert done.returncode == 0, done.stderr.decode()[-2000:]
+
+
+def test_a_version_loaded_while_its_worker_is_replaced_reaches_the_new_process(
+    tiny_bundles: dict[str, Path], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Found by SIGKILLing workers during hot swaps under load (real serve, pinned requests): one
+    request was answered 503 'inference failed: KeyError: ('support', 3, 53)'. A version was loaded
+    in a worker that then died, and another caller (a batch that found it dead) replaced the worker
+    before the load was booked: the replacement reloaded what was booked, without that version, yet
+    the server then counted it as loaded there and sent its batches to a process that never had it.
+    Here the same interleaving is made deterministic: the worker is killed and replaced right after
+    its Load reply."""
+    from textsieve.service.inference.workers import Load, WorkerProcesses, _Worker
+
+    procs = WorkerProcesses(1)
+    try:
+        first = procs.new_key("m", 1)
+        procs.load(first, tiny_bundles["a"], 16)
+        second = procs.new_key("m", 2)
+        real_call = _Worker.call
+
+        def call_then_die(self: _Worker, msg: Message, *, retry: bool) -> Any:
+            value = real_call(self, msg, retry=retry)
+            if isinstance(msg, Load) and msg.key == second:
+                gen = self.generation
+                os.kill(self.proc.pid, signal.SIGKILL)
+                self.proc.join(10)
+                self._replace(gen)  # what another caller does on finding the worker dead
+            return value
+
+        monkeypatch.setattr(_Worker, "call", call_then_die)
+        procs.load(second, tiny_bundles["b"], 16)
+        monkeypatch.undo()
+        assert [sorted(keys) for keys in procs.held()] == [sorted([first, second])]  # what the new process has
+        replies = procs.run(0, second, ["my card was charged twice"], [1])
+        assert len(replies[0]) == 1
+    finally:
+        procs.shutdown()
+
+
+def test_a_batch_sent_while_a_replaced_worker_reloads_waits_for_its_version(
+    tiny_bundles: dict[str, Path], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The same probe (workers SIGKILLed during swaps under load) kept answering a few requests 503
+    'inference failed: KeyError', unpinned ones too: a replaced worker was visible to batches as soon
+    as it started, with every version still booked in it, while its versions were reloaded one by
+    one; a batch sent in between reached the process before its version's Load. Here the reload's
+    way to the pipe is slowed (a sleep before each Load is sent) to hold that window open."""
+    import threading
+
+    from textsieve.service.inference.workers import Load, WorkerProcesses, _Worker
+
+    procs = WorkerProcesses(1)
+    try:
+        key = procs.new_key("m", 1)
+        procs.load(key, tiny_bundles["a"], 16)
+        real_submit = _Worker.submit
+
+        def slow_loads(self: _Worker, msg: Message, payload: bytes | None = None, waiter: Any = None) -> Any:
+            if isinstance(msg, Load):
+                time.sleep(0.5)
+            return real_submit(self, msg, payload, waiter)
+
+        monkeypatch.setattr(_Worker, "submit", slow_loads)
+        w = procs.workers[0]
+        gen = w.generation
+        os.kill(w.proc.pid, signal.SIGKILL)
+        w.proc.join(10)
+        replacing = threading.Thread(target=w._replace, args=(gen,))
+        replacing.start()
+        while w.generation == gen:  # the new process is there ...
+            time.sleep(0.001)
+        replies = procs.run(0, key, ["my card was charged twice"], [1])  # ... and a batch is sent to it
+        replacing.join(30)
+        assert len(replies[0]) == 1
+    finally:
+        monkeypatch.undo()
+        procs.shutdown()
