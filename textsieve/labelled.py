@@ -271,11 +271,8 @@ def _jsonl_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example]:
         try:
             record = json.loads(line)
         except json.JSONDecodeError as exc:
-            if _cr_separated(line):
-                raise InputError(
-                    f"{path}: line {number} holds several JSON values separated by a lone \\r (old Mac line "
-                    "ends); JSON Lines ends each line with \\n or \\r\\n: convert the line ends"
-                ) from None
+            if cr_separated(line):
+                raise cr_line_ends(f"{path}: line {number}") from None
             raise InputError(
                 f"{path}: line {number}: not valid JSON ({exc.msg} at column {exc.colno}); "
                 "each line must be one JSON object"
@@ -289,11 +286,20 @@ def _jsonl_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example]:
         yield fields.example(f"line {number}", record)
 
 
-def _cr_separated(line: str) -> bool:
+def cr_line_ends(where: str) -> InputError:
+    """The refusal of a JSONL file whose lines end in a lone \\r, at ``where`` ("FILE: line N"): the
+    labelled-file reader's and the scorer's (scoring/formats.py, scoring/cluster.py)."""
+    return InputError(
+        f"{where} holds several JSON values separated by a lone \\r (old Mac line ends); JSON Lines ends "
+        "each line with \\n or \\r\\n: convert the line ends"
+    )
+
+
+def cr_separated(line: str | bytes) -> bool:
     """Whether a line that is not JSON is JSON values with a lone \\r between them: a raw \\r can only be
-    whitespace in JSON (RFC 8259 §2, §7), so it is a file whose lines end in \\r alone (the scorer's
-    reader, scoring/formats.py, refuses such files in the same words)."""
-    pieces = [p for p in line.split("\r") if p.strip()]
+    whitespace in JSON (RFC 8259 §2, §7), so it is a file whose lines end in \\r alone."""
+    text = line.decode("utf-8", "surrogateescape") if isinstance(line, bytes) else line
+    pieces = [p for p in text.split("\r") if p.strip()]
     if len(pieces) < 2:
         return False
     try:
@@ -362,6 +368,8 @@ __all__ = [
     "Example",
     "case_twins",
     "check_labels",
+    "cr_line_ends",
+    "cr_separated",
     "label_problem",
     "load_examples",
     "name_unknown",

@@ -35,6 +35,7 @@ from typing import TYPE_CHECKING, Any, TextIO
 
 from textsieve.errors import InputError, IntegrityError, UnavailableError
 from textsieve.files import atomic_write_text, check_writable, fsync_dir
+from textsieve.labelled import cr_line_ends, cr_separated
 from textsieve.scoring import formats
 from textsieve.scoring.columns import Layout, plan
 from textsieve.scoring.local import STATE_FORMAT, Options, Summary, metadata, work_dir
@@ -173,9 +174,9 @@ def read_partition(part: Partition) -> list[Any]:
             try:
                 row = formats.json_loads(raw)
             except ValueError:
-                if formats.cr_separated(raw):  # as the local reader: a file whose lines end in \r alone
+                if cr_separated(raw):  # as the local reader: a file whose lines end in \r alone
                     where = f"line {number}" if part.start == 0 else f"a line of partition {part.index}"
-                    raise formats.cr_line_ends(f"{part.url}: {where}") from None
+                    raise cr_line_ends(f"{part.url}: {where}") from None
                 rows.append(Unreadable(f"a line of partition {part.index} is not valid JSON"))
                 continue
             if formats.lone_surrogate(row, raw):

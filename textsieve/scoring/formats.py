@@ -21,6 +21,7 @@ from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError
 from textsieve.files import FILE_MODE, atomic_write_bytes
+from textsieve.labelled import cr_line_ends, cr_separated
 from textsieve.scoring.columns import ERROR, LABEL, SPANS, Layout, probability_column
 from textsieve.scoring.rows import Misshapen, Row, Unreadable
 
@@ -376,27 +377,6 @@ _LONG_RUN = b"0" * 19
 _BLOCK = 1 << 20
 
 
-def cr_line_ends(where: str) -> InputError:
-    """The refusal of a JSONL file whose lines end in a lone \\r, at ``where`` ("FILE: line N")."""
-    return InputError(
-        f"{where} holds several JSON values separated by a lone \\r (old Mac line ends); JSON Lines ends "
-        "each line with \\n or \\r\\n: convert the line ends"
-    )
-
-
-def cr_separated(raw: bytes) -> bool:
-    """Whether a line that is not JSON is JSON values with a lone \\r between them: a raw \\r can only
-    be whitespace in JSON (RFC 8259 §2, §7), so such a line is a file whose lines end in \\r alone."""
-    pieces = [p for p in raw.split(b"\r") if p.strip()]
-    if len(pieces) < 2:
-        return False
-    try:
-        json.loads(pieces[0])
-    except ValueError:
-        return False
-    return True
-
-
 def _is_utf8(raw: bytes) -> bool:
     try:
         raw.decode("utf-8")
@@ -727,8 +707,6 @@ __all__ = [
     "check_unique",
     "check_text_column",
     "committed_crc32",
-    "cr_line_ends",
-    "cr_separated",
     "detect",
     "merge_parts",
     "open_reader",
