@@ -37,11 +37,7 @@ async def test_predictions_continue_through_a_registry_outage_and_polling_resume
     caplog.set_level(logging.DEBUG)
     seen: list[str] = []  # every response body and header, for the secret check
     with own_cluster(password) as cluster:
-        blobs = tmp_path / "blobs"
-        with open_registry(cluster.url, blobs=blobs) as reg:
-            reg.publish(tiny_bundles["a"], MODEL, actor="tests")
-            reg.publish(tiny_bundles["b"], MODEL, actor="tests")
-            reg.promote(MODEL, 1, "live", reason="start", actor="tests", force=True)
+        blobs = _two_versions_first_live(cluster.url, tmp_path / "blobs", tiny_bundles)
         settings = settings_for(tmp_path / "unused", poll_seconds=0.2, admin_token=ADMIN_TOKEN, access_log=True)
         settings = settings.model_copy(update={"registry": cluster.url, "blobs": str(blobs)})
 
@@ -123,6 +119,15 @@ def _predict_forever(url: str, stop: threading.Event, replies: list[tuple[int, i
                 raise AssertionError(f"a prediction failed at the transport: {exc!r}") from exc
 
 
+def _two_versions_first_live(url: str, blobs: Path, bundles: dict[str, Path]) -> Path:
+    """Versions 1 and 2 of MODEL published to the registry at ``url``, 1 live; the blob folder."""
+    with open_registry(url, blobs=blobs) as reg:
+        reg.publish(bundles["a"], MODEL, actor="tests")
+        reg.publish(bundles["b"], MODEL, actor="tests")
+        reg.promote(MODEL, 1, "live", reason="start", actor="tests", force=True)
+    return blobs
+
+
 def test_a_real_server_with_worker_processes_rides_out_an_outage_under_load_and_names_no_database(
     tmp_path: Path, tiny_bundles: dict[str, Path]
 ) -> None:
@@ -199,11 +204,7 @@ def test_a_server_started_while_its_database_is_down_says_so_and_serves_once_it_
     yet' to callers who hold no token."""
     password = f"pw-{secrets.token_hex(12)}"
     with own_cluster(password) as cluster:
-        blobs = tmp_path / "blobs"
-        with open_registry(cluster.url, blobs=blobs) as reg:
-            reg.publish(tiny_bundles["a"], MODEL, actor="tests")
-            reg.publish(tiny_bundles["b"], MODEL, actor="tests")
-            reg.promote(MODEL, 1, "live", reason="start", actor="tests", force=True)
+        blobs = _two_versions_first_live(cluster.url, tmp_path / "blobs", tiny_bundles)
         cluster.stop("immediate")
         server = ServerProcess.start(cluster.url, tmp_path / "serve.log", blobs=str(blobs), poll_seconds=0.2)
         try:
@@ -246,11 +247,7 @@ def test_the_first_registry_calls_after_the_database_restarted_succeed(
     connection is begun once more on a fresh one (nothing had run in it)."""
     password = f"pw-{secrets.token_hex(12)}"
     with own_cluster(password) as cluster:
-        blobs = tmp_path / "blobs"
-        with open_registry(cluster.url, blobs=blobs) as reg:
-            reg.publish(tiny_bundles["a"], MODEL, actor="tests")
-            reg.publish(tiny_bundles["b"], MODEL, actor="tests")
-            reg.promote(MODEL, 1, "live", reason="start", actor="tests", force=True)
+        blobs = _two_versions_first_live(cluster.url, tmp_path / "blobs", tiny_bundles)
         with running_server(
             cluster.url, tmp_path / "serve.log", blobs=str(blobs), admin_token=ADMIN_TOKEN, poll_seconds=60
         ) as server:
@@ -290,11 +287,7 @@ def test_a_table_lock_held_elsewhere_is_a_prompt_503_and_a_degraded_note_not_a_h
 
     password = f"pw-{secrets.token_hex(12)}"
     with own_cluster(password) as cluster:
-        blobs = tmp_path / "blobs"
-        with open_registry(cluster.url, blobs=blobs) as reg:
-            reg.publish(tiny_bundles["a"], MODEL, actor="tests")
-            reg.publish(tiny_bundles["b"], MODEL, actor="tests")
-            reg.promote(MODEL, 1, "live", reason="start", actor="tests", force=True)
+        blobs = _two_versions_first_live(cluster.url, tmp_path / "blobs", tiny_bundles)
         with running_server(cluster.url, tmp_path / "serve.log", blobs=str(blobs), poll_seconds=0.2) as server:
             with psycopg.connect(cluster.url, autocommit=False) as locker:
                 locker.execute("LOCK TABLE events, versions IN ACCESS EXCLUSIVE MODE")
