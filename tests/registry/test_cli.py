@@ -416,6 +416,69 @@ def test_a_read_only_registry_is_one_line_saying_what_to_make_writable(
     assert expected_msg in done.stderr, done.stderr
 
 
+@pytest.mark.parametrize(
+    ("argv", "expected_msg"),
+    [
+        pytest.param(
+            ["gc", "--older-than", "0"],
+            "the blob folder is not writable for this user (Permission denied), so no blob could be deleted "
+            "(list them with gc --dry-run); make it writable for this user, or point --blobs",
+            id="gc",
+        ),
+        pytest.param(
+            ["publish", "BUNDLE_B", "--model", "m"],
+            "the blob folder is not writable for this user (Permission denied), so nothing could be stored and "
+            "nothing was recorded; make it writable",
+            id="publish",
+        ),
+    ],
+)
+def test_a_read_only_blob_folder_is_one_line_and_changes_nothing(
+    tmp_path: Path, tiny_bundles: dict[str, Path], argv: list[str], expected_msg: str
+) -> None:
+    """A blob folder this user may not write (a read-only volume) was a PermissionError traceback from gc
+    (deleting an orphan) and publish (storing a blob)."""
+    import time
+
+    from textsieve.registry import open_registry
+
+    reg = tmp_path / "reg"
+    with open_registry(reg) as registry:
+        registry.publish(tiny_bundles["a"], "m", actor="tests")
+        orphan = registry.blobs.put_bytes(b"left by a killed publish")
+        os.utime(registry.blobs.path(orphan), (time.time() - 7200,) * 2)
+    blobs = reg / "blobs"
+    before = sorted(p.name for p in blobs.iterdir())
+    argv = [str(tiny_bundles["b"]) if a == "BUNDLE_B" else a for a in argv]
+    blobs.chmod(0o555)
+    try:
+        done = subprocess.run(
+            [
+                *_as_a_user_bound_by_file_modes(blobs),
+                sys.executable,
+                "-m",
+                "textsieve.cli",
+                *argv,
+                "--registry",
+                str(reg),
+            ],
+            capture_output=True,
+            text=True,
+            timeout=120,
+            env=child_env(),
+            check=False,
+        )
+    finally:
+        blobs.chmod(0o755)
+    # UnavailableError's status, as for a read-only registry database (textsieve/errors.py).
+    assert (done.returncode, done.stdout) == (1, ""), done.stderr
+    assert len(done.stderr.splitlines()) == 1 and done.stderr.startswith("textsieve: error: "), done.stderr
+    assert expected_msg in done.stderr, done.stderr
+    assert sorted(p.name for p in blobs.iterdir()) == before
+    with open_registry(reg) as registry:
+        assert [v.version for v in registry.versions("m")] == [1]
+
+
 def test_gc_deletes_old_unreferenced_blobs_and_says_so(tmp_path: Path, tiny_bundles: dict[str, Path]) -> None:
     import os
     import time
