@@ -115,8 +115,15 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     _actor_arg(p)
     p.set_defaults(func=cli_rollback)
 
-    p = sub.add_parser("history", help="audit trail of a model")
+    p = sub.add_parser("history", help="audit trail of a model, oldest first")
     _model_arg(p)
+    p.add_argument(
+        "--last",
+        type=event_count,
+        metavar="N",
+        help="only the N most recent events (default: all; stderr says how many more there are)",
+    )
+    p.add_argument("--version", type=version_number, help="only this version's events")
     add_location_args(p)
     p.set_defaults(func=cli_history)
 
@@ -256,6 +263,17 @@ def version_number(text: str) -> int:
         return validate_version(text)
     except InputError as exc:
         raise argparse.ArgumentTypeError(exc.message) from None
+
+
+def event_count(text: str) -> int:
+    """argparse's type for ``history --last``: a whole number of events from 1."""
+    try:
+        n = int(text)
+    except ValueError:
+        n = 0
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"{text!r}: give a whole number of events from 1 (leave --last out for all)")
+    return n
 
 
 def add_location_args(p: argparse.ArgumentParser) -> None:
@@ -483,7 +501,13 @@ def cli_rollback(args: argparse.Namespace) -> int:
 
 def cli_history(args: argparse.Namespace) -> int:
     with _open(args) as reg:
-        events = reg.history(args.model)
+        events, total = reg.history_page(args.model, version=args.version, last=args.last)
+    if total > len(events):
+        # On stderr: what is piped stays the table alone.
+        print(
+            f"the last {len(events)} of {total} events (from event {events[0].id}); leave out --last for all",
+            file=sys.stderr,
+        )
     _out(
         table(
             ["EVENT", "TIME (UTC)", "KIND", "VERSION", "ACTOR", "REASON", "DETAIL"],
