@@ -17,7 +17,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
-from textsieve.environment import DEFAULT_REGISTRY, registry_location
+from textsieve.environment import DEFAULT_REGISTRY, POSTGRES_SCHEMES, registry_location
 from textsieve.errors import GateRefusedError, InputError, IntegrityError, NotFoundError, SavedThenInterrupted
 from textsieve.registry import tables
 from textsieve.registry.tables import NONE, key_values, one_line
@@ -291,7 +291,23 @@ def add_location_args(p: argparse.ArgumentParser) -> None:
 
 
 def _model_arg(p: argparse.ArgumentParser) -> None:
-    p.add_argument("model", help="model name")
+    p.add_argument("model", help="model name").completer = complete_models  # type: ignore[attr-defined]
+
+
+def complete_models(prefix: str, parsed_args: argparse.Namespace, **_: Any) -> list[str]:
+    """argcomplete's completer for a model name: the models of a folder registry (--registry typed before
+    the name, else $TEXTSIEVE_REGISTRY, else the default). A PostgreSQL registry is not asked, so that a
+    press of TAB never waits on a database; any failure offers nothing rather than breaking the shell."""
+    try:
+        where = registry_location(getattr(parsed_args, "registry", None), getattr(parsed_args, "blobs", None))
+        if where.registry.startswith(POSTGRES_SCHEMES) or not Path(where.registry, "registry.sqlite3").is_file():
+            return []
+        from textsieve.registry.api import open_registry
+
+        with open_registry(where.registry, blobs=where.blobs, create=False) as reg:
+            return [m.name for m in reg.models() if m.name.startswith(prefix)]
+    except Exception:
+        return []
 
 
 def _actor_arg(p: argparse.ArgumentParser) -> None:
