@@ -176,12 +176,26 @@ class Registry:
     def _settings_in(self, q: Queries, model: str) -> ModelSettings:
         return ModelSettings.resolve(model, q.setting_rows(model), self.settings.as_defaults())
 
-    def history(self, model: str) -> list[Event]:
+    def history(self, model: str, *, version: int | None = None, last: int | None = None) -> list[Event]:
+        """The model's audit trail, oldest first; only ``version``'s events, only the ``last`` ones."""
+        return self.history_page(model, version=version, last=last)[0]
+
+    def history_page(
+        self, model: str, *, version: int | None = None, last: int | None = None
+    ) -> tuple[list[Event], int]:
+        """:meth:`history` and how many events there are in all (with the same ``version``), read together."""
         model = validate_model_name(model)
+        if version is not None:
+            version = validate_version(version)
+        if last is not None and (isinstance(last, bool) or not isinstance(last, int) or last < 1):
+            raise InputError(f"last {last!r}: give a whole number of events from 1, or None for all")
         with self.backend.read() as tx:
             q = Queries(tx)
             self._require_model(q, model)
-            return q.events(model)
+            if version is not None:
+                self._require_version(q, model, version)
+            events = q.events(model, version=version, last=last)
+            return events, (len(events) if last is None else q.count_events(model, version=version))
 
     def cursor(self) -> int:
         """Id of the newest event (0 when there is none): pass it to :meth:`changes_since` later."""

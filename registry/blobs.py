@@ -18,7 +18,7 @@ import time
 from collections.abc import Iterator, Mapping
 from pathlib import Path
 
-from textsieve.errors import IntegrityError, RegistryError
+from textsieve.errors import IntegrityError, RegistryError, UnavailableError
 from textsieve.files import CHUNK, fsync_dir, sha256_file
 
 _SHA256 = re.compile(r"[0-9a-f]{64}")
@@ -27,6 +27,8 @@ _TMP_PREFIX = ".tmp-"
 # other's blobs for garbage (registry/api.py, ``_check_blob_owner``).
 OWNER_FILE = ".registry-id"
 STALE_TMP_SECONDS = 24 * 3600
+# What a folder this user may not write (its mode, an ACL, a read-only mount) raises.
+_NOT_WRITABLE = frozenset({errno.EACCES, errno.EPERM, errno.EROFS})
 
 
 def _check_digest(digest: str) -> str:
@@ -81,6 +83,22 @@ class BlobStore:
     def path(self, digest: str) -> Path:
         return self.root / _check_digest(digest)
 
+    def _not_writable(self, exc: OSError, what: str) -> OSError | UnavailableError:
+        """A folder this user may not write, as one line saying so (the status of a read-only registry
+        database); any other OSError as it was."""
+        if exc.errno not in _NOT_WRITABLE:
+            return exc
+        return UnavailableError(
+            f"{self.root}: the blob folder is not writable for this user ({exc.strerror}), so {what}; make it "
+            "writable for this user, or point --blobs (or TEXTSIEVE_BLOBS) at the registry's writable blob folder"
+        )
+
+    def _mkstemp(self) -> tuple[int, str]:
+        try:
+            return tempfile.mkstemp(prefix=_TMP_PREFIX, dir=self.root)
+        except OSError as exc:
+            raise self._not_writable(exc, "nothing could be stored and nothing was recorded") from exc
+
     # -- the owner ------------------------------------------------------------------------
     def owner(self) -> str | None:
         """The id of the registry this folder's blobs belong to (``OWNER_FILE``); None when unmarked."""
@@ -119,7 +137,7 @@ class BlobStore:
     def _put_stream(self, f) -> str:  # type: ignore[no-untyped-def]
         self.ensure()
         h = hashlib.sha256()
-        fd, tmp = tempfile.mkstemp(prefix=_TMP_PREFIX, dir=self.root)
+        fd, tmp = self._mkstemp()
         try:
             with os.fdopen(fd, "wb") as out:
                 while chunk := f.read(CHUNK):
@@ -144,7 +162,7 @@ class BlobStore:
     def _write(self, name: str, chunks: list[bytes]) -> None:
         """``chunks`` as the file ``name`` of the folder, through a temporary file renamed into place."""
         self.ensure()
-        fd, tmp = tempfile.mkstemp(prefix=_TMP_PREFIX, dir=self.root)
+        fd, tmp = self._mkstemp()
         try:
             with os.fdopen(fd, "wb") as out:
                 for chunk in chunks:
@@ -181,6 +199,8 @@ class BlobStore:
             os.unlink(path)
         except FileNotFoundError:
             return False
+        except OSError as exc:
+            raise self._not_writable(exc, "no blob could be deleted (list them with gc --dry-run)") from exc
         return True
 
     def _intact(self, digest: str) -> bool:
@@ -253,7 +273,10 @@ class BlobStore:
             if entry.name.startswith(_TMP_PREFIX):
                 with contextlib.suppress(FileNotFoundError):
                     if entry.stat().st_mtime < cutoff:
-                        os.unlink(entry.path)
+                        try:
+                            os.unlink(entry.path)
+                        except OSError as exc:
+                            raise self._not_writable(exc, "temporary files left by killed writers stay") from exc
                         removed += 1
         return removed
 

@@ -17,7 +17,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
-from textsieve.environment import DEFAULT_REGISTRY, registry_location
+from textsieve.environment import DEFAULT_REGISTRY, POSTGRES_SCHEMES, registry_location
 from textsieve.errors import GateRefusedError, InputError, IntegrityError, NotFoundError, SavedThenInterrupted
 from textsieve.registry import tables
 from textsieve.registry.tables import NONE, key_values, one_line
@@ -115,8 +115,15 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     _actor_arg(p)
     p.set_defaults(func=cli_rollback)
 
-    p = sub.add_parser("history", help="audit trail of a model")
+    p = sub.add_parser("history", help="audit trail of a model, oldest first")
     _model_arg(p)
+    p.add_argument(
+        "--last",
+        type=event_count,
+        metavar="N",
+        help="only the N most recent events (default: all; stderr says how many more there are)",
+    )
+    p.add_argument("--version", type=version_number, help="only this version's events")
     add_location_args(p)
     p.set_defaults(func=cli_history)
 
@@ -258,6 +265,17 @@ def version_number(text: str) -> int:
         raise argparse.ArgumentTypeError(exc.message) from None
 
 
+def event_count(text: str) -> int:
+    """argparse's type for ``history --last``: a whole number of events from 1."""
+    try:
+        n = int(text)
+    except ValueError:
+        n = 0
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"{text!r}: give a whole number of events from 1 (leave --last out for all)")
+    return n
+
+
 def add_location_args(p: argparse.ArgumentParser) -> None:
     """``--registry`` and ``--blobs``; unset, they fall back on the environment when the verb runs."""
     p.add_argument(
@@ -273,7 +291,23 @@ def add_location_args(p: argparse.ArgumentParser) -> None:
 
 
 def _model_arg(p: argparse.ArgumentParser) -> None:
-    p.add_argument("model", help="model name")
+    p.add_argument("model", help="model name").completer = complete_models  # type: ignore[attr-defined]
+
+
+def complete_models(prefix: str, parsed_args: argparse.Namespace, **_: Any) -> list[str]:
+    """argcomplete's completer for a model name: the models of a folder registry (--registry typed before
+    the name, else $TEXTSIEVE_REGISTRY, else the default). A PostgreSQL registry is not asked, so that a
+    press of TAB never waits on a database; any failure offers nothing rather than breaking the shell."""
+    try:
+        where = registry_location(getattr(parsed_args, "registry", None), getattr(parsed_args, "blobs", None))
+        if where.registry.startswith(POSTGRES_SCHEMES) or not Path(where.registry, "registry.sqlite3").is_file():
+            return []
+        from textsieve.registry.api import open_registry
+
+        with open_registry(where.registry, blobs=where.blobs, create=False) as reg:
+            return [m.name for m in reg.models() if m.name.startswith(prefix)]
+    except Exception:
+        return []
 
 
 def _actor_arg(p: argparse.ArgumentParser) -> None:
@@ -483,7 +517,13 @@ def cli_rollback(args: argparse.Namespace) -> int:
 
 def cli_history(args: argparse.Namespace) -> int:
     with _open(args) as reg:
-        events = reg.history(args.model)
+        events, total = reg.history_page(args.model, version=args.version, last=args.last)
+    if total > len(events):
+        # On stderr: what is piped stays the table alone.
+        print(
+            f"the last {len(events)} of {total} events (from event {events[0].id}); leave out --last for all",
+            file=sys.stderr,
+        )
     _out(
         table(
             ["EVENT", "TIME (UTC)", "KIND", "VERSION", "ACTOR", "REASON", "DETAIL"],

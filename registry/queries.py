@@ -193,12 +193,26 @@ class Queries:
         assert row is not None
         return int(row["id"])
 
-    def events(self, model: str) -> list[Event]:
-        rows = self.tx.all(
-            "SELECT id, model, version, kind, actor, at, reason, details FROM events WHERE model = ? ORDER BY id",
-            (model,),
-        )
+    def events(self, model: str, *, version: int | None = None, last: int | None = None) -> list[Event]:
+        """A model's events oldest first: all of them, or one version's, or only the ``last`` of those."""
+        where, params = _event_filter(model, version)
+        if last is None:
+            rows = self.tx.all(
+                f"SELECT id, model, version, kind, actor, at, reason, details FROM events WHERE {where} ORDER BY id",
+                params,
+            )
+        else:  # newest first to LIMIT them in the database, whatever the history's length; then turned round
+            rows = self.tx.all(
+                f"SELECT id, model, version, kind, actor, at, reason, details FROM events WHERE {where} "
+                "ORDER BY id DESC LIMIT ?",
+                (*params, last),
+            )[::-1]
         return [Event.from_row(r) for r in rows]
+
+    def count_events(self, model: str, *, version: int | None = None) -> int:
+        where, params = _event_filter(model, version)
+        row = self.tx.one(f"SELECT COUNT(*) AS n FROM events WHERE {where}", params)
+        return int(row["n"]) if row else 0
 
     def events_after(self, cursor: int, limit: int) -> list[Event]:
         rows = self.tx.all(
@@ -288,6 +302,12 @@ class Queries:
     def last_event_id(self) -> int:
         row = self.tx.one("SELECT MAX(id) AS n FROM events")
         return int(row["n"] or 0) if row else 0
+
+
+def _event_filter(model: str, version: int | None) -> tuple[str, tuple[object, ...]]:
+    if version is None:
+        return "model = ?", (model,)
+    return "model = ? AND version = ?", (model, version)
 
 
 __all__ = ["Queries", "dumps"]

@@ -9,7 +9,7 @@ import argparse
 from typing import TYPE_CHECKING
 
 from textsieve.errors import InputError
-from textsieve.registry.cli import _open, _out, add_location_args, table, version_number, when
+from textsieve.registry.cli import _open, _out, add_location_args, complete_models, table, version_number, when
 from textsieve.registry.tables import NONE, key_values
 
 if TYPE_CHECKING:
@@ -22,7 +22,7 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         "shadow",
         help="agreement of the candidate with the live version on live traffic scored in the shadow",
     )
-    p.add_argument("model", help="model name")
+    p.add_argument("model", help="model name").completer = complete_models  # type: ignore[attr-defined]
     p.add_argument("--live", type=version_number, help="live version of the pair (default: the current live version)")
     p.add_argument(
         "--candidate", type=version_number, help="candidate version of the pair (default: the current candidate)"

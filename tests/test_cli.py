@@ -263,7 +263,7 @@ def test_serve_help_states_the_settings_defaults() -> None:
 
 
 # -- shell completion ---------------------------------------------------------------------------
-def complete(line: str, tmp_path: Path, shell: str = "bash") -> list[str]:
+def complete(line: str, tmp_path: Path, shell: str = "bash", **env: str) -> list[str]:
     """What argcomplete answers for ``line``, asked the way its shell code asks (argcomplete's README,
     "Debugging"): COMP_LINE and COMP_POINT in the environment, the answer in a file instead of fd 8."""
     answer = tmp_path / "completions"
@@ -280,7 +280,9 @@ def complete(line: str, tmp_path: Path, shell: str = "bash") -> list[str]:
             COMP_LINE=line,
             COMP_POINT=str(len(line)),
             **zsh,
+            **env,
         ),
+        cwd=tmp_path,
         check=False,
     )
     assert out.returncode == 0, out.stderr
@@ -321,6 +323,57 @@ printf '%s\\n' "${COMPREPLY[@]}"
     registered, *replies = out.stdout.splitlines()
     assert registered.startswith("complete ") and registered.endswith(" textsieve")
     assert sorted(r.strip() for r in replies) == ["--reason", "--registry"]
+
+
+def test_completion_offers_the_registrys_model_names(tmp_path: Path, tiny_bundles: dict[str, Path]) -> None:
+    """A model name was never completed (only verbs and flags): the verbs that take one now offer the
+    models of the folder registry named before it, by --registry or TEXTSIEVE_REGISTRY."""
+    from textsieve.registry import open_registry
+
+    reg = tmp_path / "reg"
+    with open_registry(reg) as registry:
+        for name in ("helpdesk", "reviews", "routing"):
+            registry.publish(tiny_bundles["a"], name, actor="tests")
+    r = f"--registry {reg}"
+    for verb in ("versions", "show", "history", "promote", "rollback", "gates", "shadow", "evaluate", "evalset add"):
+        assert {c.strip() for c in complete(f"textsieve {verb} {r} r", tmp_path)} == {"reviews", "routing"}, verb
+    models = {"helpdesk", "reviews", "routing"}
+    assert models <= {c.strip() for c in complete("textsieve versions ", tmp_path, TEXTSIEVE_REGISTRY=str(reg))}
+    # Only model names: no completions from a registry that is not there, and none is made by asking.
+    assert models.isdisjoint(
+        c.strip() for c in complete(f"textsieve versions --registry {tmp_path / 'none'} ", tmp_path)
+    )
+    assert not (tmp_path / "none").exists() and not (tmp_path / "textsieve-registry").exists()
+    # A PostgreSQL registry is not asked (a TAB press never waits on a database): flags only.
+    pg = {c.strip() for c in complete("textsieve versions --registry postgresql://u@127.0.0.1:1/x ", tmp_path)}
+    assert "--blobs" in pg and models.isdisjoint(pg)
+
+
+@pytest.mark.skipif(shutil.which("bash") is None, reason="bash is not installed")
+def test_the_bash_completion_code_completes_a_model_name(tmp_path: Path, tiny_bundles: dict[str, Path]) -> None:
+    """Sourced in bash, as a user's ~/.bashrc does, the code completes a model name after the verb."""
+    from textsieve.registry import open_registry
+
+    reg = tmp_path / "reg"
+    with open_registry(reg) as registry:
+        registry.publish(tiny_bundles["a"], "helpdesk", actor="tests")
+    bin_dir = tmp_path / "bin"
+    bin_dir.mkdir()
+    launcher = bin_dir / "textsieve"
+    launcher.write_text(f'#!/bin/sh\nexec {shlex.join(CLI)} "$@"\n', encoding="utf-8")
+    launcher.chmod(0o755)
+    script = """
+eval "$(textsieve completion bash)"
+COMP_LINE="textsieve history he"; COMP_POINT=${#COMP_LINE}; COMP_WORDS=(textsieve history he); COMP_CWORD=2
+_python_argcomplete textsieve he history
+printf '%s\\n' "${COMPREPLY[@]}"
+"""
+    env = child_env(PATH=f"{bin_dir}{os.pathsep}{os.environ['PATH']}", TEXTSIEVE_REGISTRY=str(reg))
+    out = subprocess.run(
+        ["bash", "-c", script], capture_output=True, text=True, timeout=60, env=env, cwd=tmp_path, check=False
+    )
+    assert out.returncode == 0, out.stderr
+    assert [r.strip() for r in out.stdout.splitlines()] == ["helpdesk"], out
 
 
 def test_completion_for_an_unknown_shell_is_a_usage_error(tmp_path: Path) -> None:

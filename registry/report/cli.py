@@ -29,7 +29,9 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         "accuracy by length, the worst mistakes, and with --against a paired comparison. The report is "
         "stored in the registry, so asking again is instant.",
     )
-    p.add_argument("model", help="model name")
+    from textsieve.registry.cli import complete_models  # loaded already: it registers this verb
+
+    p.add_argument("model", help="model name").completer = complete_models  # type: ignore[attr-defined]
     p.add_argument("version", help="version number")
     p.add_argument("--evalset", type=Path, help="labelled JSONL or CSV file (default: the model's evaluation set)")
     p.add_argument("--text-field", default="text", help="with --evalset: JSONL key or CSV column holding the text")

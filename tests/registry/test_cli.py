@@ -416,6 +416,69 @@ def test_a_read_only_registry_is_one_line_saying_what_to_make_writable(
     assert expected_msg in done.stderr, done.stderr
 
 
+@pytest.mark.parametrize(
+    ("argv", "expected_msg"),
+    [
+        pytest.param(
+            ["gc", "--older-than", "0"],
+            "the blob folder is not writable for this user (Permission denied), so no blob could be deleted "
+            "(list them with gc --dry-run); make it writable for this user, or point --blobs",
+            id="gc",
+        ),
+        pytest.param(
+            ["publish", "BUNDLE_B", "--model", "m"],
+            "the blob folder is not writable for this user (Permission denied), so nothing could be stored and "
+            "nothing was recorded; make it writable",
+            id="publish",
+        ),
+    ],
+)
+def test_a_read_only_blob_folder_is_one_line_and_changes_nothing(
+    tmp_path: Path, tiny_bundles: dict[str, Path], argv: list[str], expected_msg: str
+) -> None:
+    """A blob folder this user may not write (a read-only volume) was a PermissionError traceback from gc
+    (deleting an orphan) and publish (storing a blob)."""
+    import time
+
+    from textsieve.registry import open_registry
+
+    reg = tmp_path / "reg"
+    with open_registry(reg) as registry:
+        registry.publish(tiny_bundles["a"], "m", actor="tests")
+        orphan = registry.blobs.put_bytes(b"left by a killed publish")
+        os.utime(registry.blobs.path(orphan), (time.time() - 7200,) * 2)
+    blobs = reg / "blobs"
+    before = sorted(p.name for p in blobs.iterdir())
+    argv = [str(tiny_bundles["b"]) if a == "BUNDLE_B" else a for a in argv]
+    blobs.chmod(0o555)
+    try:
+        done = subprocess.run(
+            [
+                *_as_a_user_bound_by_file_modes(blobs),
+                sys.executable,
+                "-m",
+                "textsieve.cli",
+                *argv,
+                "--registry",
+                str(reg),
+            ],
+            capture_output=True,
+            text=True,
+            timeout=120,
+            env=child_env(),
+            check=False,
+        )
+    finally:
+        blobs.chmod(0o755)
+    # UnavailableError's status, as for a read-only registry database (textsieve/errors.py).
+    assert (done.returncode, done.stdout) == (1, ""), done.stderr
+    assert len(done.stderr.splitlines()) == 1 and done.stderr.startswith("textsieve: error: "), done.stderr
+    assert expected_msg in done.stderr, done.stderr
+    assert sorted(p.name for p in blobs.iterdir()) == before
+    with open_registry(reg) as registry:
+        assert [v.version for v in registry.versions("m")] == [1]
+
+
 def test_gc_deletes_old_unreferenced_blobs_and_says_so(tmp_path: Path, tiny_bundles: dict[str, Path]) -> None:
     import os
     import time
@@ -674,6 +737,68 @@ def test_history_says_where_a_replaced_candidate_went(
     history = run(capsys, "history", "m", *r)[1]
     assert "registered → candidate, candidate 1 back to retired" in history, history
     assert "retired → candidate, candidate 3 back to registered" in history, history
+
+
+def test_history_last_shows_the_newest_events_and_says_how_many_more_there_are(
+    capsys: pytest.CaptureFixture[str], spec: RegistrySpec, tiny_bundles: dict[str, Path]
+) -> None:
+    """A long audit trail could only be read whole (hundreds of settings changes and promotions): --last N
+    shows the N newest, oldest first as the whole history is, and --version one version's events."""
+    r = spec.cli_args()
+    for key in ("a", "b"):
+        run(capsys, "publish", str(tiny_bundles[key]), "--model", "m", *r)
+    run(capsys, "promote", "m", "1", "--to", "live", "--reason", "first", *r)
+    for i in range(8):
+        run(capsys, "review-threshold", "m", "--set", f"0.{i + 1}", "--reason", f"change {i}", *r)
+    run(capsys, "promote", "m", "2", "--to", "candidate", "--reason", "try 2", *r)
+
+    def ids(out: str) -> list[int]:
+        return [int(line.split()[0]) for line in out.splitlines()[1:]]
+
+    code, whole, err = run(capsys, "history", "m", *r)
+    assert code == 0 and err == "" and len(ids(whole)) == 12 and ids(whole) == sorted(ids(whole))
+    code, out, err = run(capsys, "history", "m", "--last", "3", *r)
+    assert code == 0 and ids(out) == ids(whole)[-3:], out
+    assert out.splitlines()[0] == whole.splitlines()[0] and "try 2" in out.splitlines()[-1]
+    assert err == f"the last 3 of 12 events (from event {ids(whole)[-3]}); leave out --last for all\n"
+    code, out, err = run(capsys, "history", "m", "--last", "500", *r)
+    assert (code, out, err) == (0, whole, "")
+    code, out, err = run(capsys, "history", "m", "--version", "2", *r)
+    assert code == 0 and err == "" and [line.split()[4] for line in out.splitlines()[1:]] == ["2", "2"], out
+    code, out, err = run(capsys, "history", "m", "--version", "1", "--last", "1", *r)
+    assert code == 0 and len(ids(out)) == 1 and "first" in out and "the last 1 of 2 events" in err
+
+
+@pytest.mark.parametrize(
+    ("argv", "expected_msg"),
+    [
+        pytest.param(["--last", "0"], "argument --last: '0': give a whole number of events from 1", id="zero"),
+        pytest.param(["--last", "-2"], "argument --last: '-2': give a whole number of events from 1", id="negative"),
+        pytest.param(["--last", "2.5"], "argument --last: '2.5': give a whole number of events from 1", id="fraction"),
+        pytest.param(["--version", "9"], "'m' has no version 9; its versions are 1–1", id="unknown-version"),
+        pytest.param(
+            ["--version", "0"],
+            "argument --version: bad version 0: versions are whole numbers from 1",
+            id="version-zero",
+        ),
+    ],
+)
+def test_history_refuses_a_bad_last_or_version_in_one_line(
+    capsys: pytest.CaptureFixture[str],
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
+    argv: list[str],
+    expected_msg: str,
+) -> None:
+    r = ["--registry", str(tmp_path / "reg")]
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)
+    try:
+        code, out, err = run(capsys, "history", "m", *argv, *r)
+    except SystemExit as exc:  # argparse's usage errors
+        code, (out, err) = int(str(exc.code)), capsys.readouterr()
+    assert (code, out) == (2, ""), err
+    assert len(err.splitlines()) == 1 and err.startswith("textsieve: error: "), err
+    assert expected_msg in err, err
 
 
 def test_evalset_add_reports_repeated_and_contradicting_texts(
