@@ -111,7 +111,7 @@ def render(c: ShadowCounts, texts: list[StoredText]) -> str:
                         f"{t.live_probability:.2f}",
                         t.candidate_label,
                         f"{t.candidate_probability:.2f}",
-                        t.text.replace("\n", " ")[:80],
+                        t.text,  # whole: table() shows line breaks as ↵ and wraps it to the terminal
                     ]
                     for t in texts
                 ],
