@@ -159,6 +159,9 @@ def test_cli_shows_the_current_pair(published: RegistrySpec, capsys: pytest.Capt
     lo, hi = sps.binomtest(9, 10).proportion_ci(method="wilson")
     assert f"{lo:.2%} – {hi:.2%}" in out
     assert "-0.0300" in out and "7 sampled texts" in out
+    # Drops count a failed batch and a stop's leftovers too (service/liveloop/shadow.py _drop, stop):
+    # the line must not send an operator to the queue's size alone.
+    assert "7 sampled texts not scored (queue full, scoring failed or service stopped)" in out
     rows = {line.split()[0]: line.split()[1:] for line in out.splitlines() if line.startswith(("billing", "bug"))}
     assert rows == {"billing": ["5", "1"], "bug": ["0", "4"]}  # columns: billing, bug
 
