@@ -668,6 +668,8 @@ def gates_in_force(settings: ModelSettings) -> str:
         MACRO_F1_DROP,
         MCNEMAR,
         MCNEMAR_P,
+        SHADOW_AGREEMENT_MIN,
+        SHADOW_MIN_TEXTS,
         TOLERANCES,
     )
 
@@ -676,6 +678,12 @@ def gates_in_force(settings: ModelSettings) -> str:
         parts.append(f"mcnemar (refuses when significantly worse: p < {settings.get(MCNEMAR_P):g})")
     if settings.get(TOLERANCES):
         parts.append(f"macro_f1 (drop ≤ {settings.get(MACRO_F1_DROP):g}), ece (rise ≤ {settings.get(ECE_RISE):g})")
+    agreement = settings.get(SHADOW_AGREEMENT_MIN)
+    if agreement is not None:  # off unless set; when set it refuses promotions, so the line names it
+        parts.append(
+            f"shadow_agreement (agreement with live ≥ {agreement:g} over at least "
+            f"{settings.get(SHADOW_MIN_TEXTS):g} shadow texts)"
+        )
     size = (
         f"; the metric gates judge on an evaluation set of at least {settings.get(EVALSET_MIN_TEXTS):g} texts "
         f"and {settings.get(EVALSET_MIN_PER_LABEL):g} per label"

@@ -100,7 +100,9 @@ class ShadowCounts(_Record):
     candidate_version: int
     texts: int = Field(description="texts both versions labelled")
     agreed: int = Field(description="texts both versions gave the same label")
-    dropped: int = Field(description="sampled texts not scored because the shadow queue was full")
+    dropped: int = Field(
+        description="sampled texts not scored: the shadow queue was full, their batch failed, or the service stopped"
+    )
     delta_sum: float = Field(
         description="sum over texts of the candidate's minus the live version's probability of the live label"
     )

@@ -95,7 +95,8 @@ def render(c: ShadowCounts, texts: list[StoredText]) -> str:
         lo, hi = c.agreement_interval()
         rows.append(["agreement", f"{c.agreed / c.texts:.2%}  (95 % Wilson interval {lo:.2%} – {hi:.2%})"])
         rows.append(["mean change, P(live label)", f"{c.mean_delta:+.4f}  (candidate minus live)"])
-    rows.append(["dropped", f"{c.dropped:,} sampled texts not scored (shadow queue full)"])
+    # Not only a full queue: a failed batch (a worker died) and a stop's leftovers count here too.
+    rows.append(["dropped", f"{c.dropped:,} sampled texts not scored (queue full, scoring failed or service stopped)"])
     lines.append(key_values([(str(k), v) for k, v in rows]))
     if c.transitions:
         lines += ["", "label transitions (rows: live label, columns: candidate label)", transition_table(c)]
@@ -111,7 +112,7 @@ def render(c: ShadowCounts, texts: list[StoredText]) -> str:
                         f"{t.live_probability:.2f}",
                         t.candidate_label,
                         f"{t.candidate_probability:.2f}",
-                        t.text.replace("\n", " ")[:80],
+                        t.text,  # whole: table() shows line breaks as ↵ and wraps it to the terminal
                     ]
                     for t in texts
                 ],

@@ -467,7 +467,7 @@ class ServiceMetrics:
             ),
             dropped=Counter(
                 "textsieve_shadow_dropped_texts_total",
-                "Texts sampled for shadow scoring but dropped (queue full, or scoring failed).",
+                "Texts sampled for shadow scoring but dropped (queue full, scoring failed, or the service stopped).",
                 ("model",),
                 registry=r,
             ),

@@ -71,6 +71,7 @@ class ShadowScorer:
         self._wakeup = asyncio.Event()
         self.tallies: dict[PairKey, Tally] = {}
         self._tasks: list[asyncio.Task[None]] = []
+        self._flushing: asyncio.Task[None] | None = None  # the flush the flushing task runs, if any
         self.flush_failures = 0
         self._scoring = False
 
@@ -123,6 +124,9 @@ class ShadowScorer:
             with contextlib.suppress(asyncio.CancelledError):
                 await task
         self._tasks = []
+        if self._flushing is not None:  # a flush the cancel interrupted finishes its pairs first
+            flushing, self._flushing = self._flushing, None
+            await flushing
         while self._queue:
             item = self._queue.popleft()
             self.queued_texts -= len(item.texts)
@@ -243,7 +247,11 @@ class ShadowScorer:
     async def _flush_loop(self) -> None:
         while True:
             await asyncio.sleep(self.settings.shadow_flush_seconds)
-            await self.flush()
+            # Its own task, shielded: stop() cancels this loop, and a flush cancelled between two
+            # pairs would lose the tallies it had taken and not written yet.
+            self._flushing = asyncio.get_running_loop().create_task(self.flush(), name="shadow flush")
+            await asyncio.shield(self._flushing)
+            self._flushing = None
 
     async def flush(self) -> None:
         """Add every pair's tally to the registry and start new ones; a failed pair is kept for the next try."""

@@ -591,6 +591,13 @@ def test_gates_shows_and_changes_settings_with_a_reason(
 
     code, out, _ = run(capsys, "gates", "m", "--reset", "mcnemar_p", "--reason", "back", *r)
     assert code == 0 and out.splitlines()[-1] == "changed: mcnemar_p"
+
+    # The shadow gate, once a level is set, refuses promotions too: the line names it.
+    code, out, _ = run(
+        capsys, "gates", "m", "--set", "shadow_agreement_min=0.95", "--set", "shadow_min_texts=500", "--reason", "s", *r
+    )
+    assert code == 0
+    assert "shadow_agreement (agreement with live ≥ 0.95 over at least 500 shadow texts)" in out.splitlines()[-2]
     code, out, _ = run(capsys, "history", "m", *r)
     assert "mcnemar off → on; mcnemar_p 0.05 → 0.01" in out and "mcnemar_p 0.01 → 0.05 (default)" in out
 

@@ -159,8 +159,28 @@ def test_cli_shows_the_current_pair(published: RegistrySpec, capsys: pytest.Capt
     lo, hi = sps.binomtest(9, 10).proportion_ci(method="wilson")
     assert f"{lo:.2%} – {hi:.2%}" in out
     assert "-0.0300" in out and "7 sampled texts" in out
+    # Drops count a failed batch and a stop's leftovers too (service/liveloop/shadow.py _drop, stop):
+    # the line must not send an operator to the queue's size alone.
+    assert "7 sampled texts not scored (queue full, scoring failed or service stopped)" in out
     rows = {line.split()[0]: line.split()[1:] for line in out.splitlines() if line.startswith(("billing", "bug"))}
     assert rows == {"billing": ["5", "1"], "bug": ["0", "4"]}  # columns: billing, bug
+
+
+def test_cli_shows_kept_texts_whole(
+    published: RegistrySpec, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A kept text is there for a person to review: before, the table cut it at 80 characters with
+    no mark, and turned its line breaks into spaces (every other table shows them as ↵)."""
+    text = "The rear light flickers on the way home.\nAlso my invoice lists a repair I never asked for, twice."
+    assert len(text) > 80
+    t = Tally()
+    t.add(["repair"], ["billing"], 0.0, [KeptText(text, "repair", 0.6, "billing", 0.55)], keep_at_most=5)
+    with published.open() as reg:
+        reg.add_shadow_counts(MODEL, 1, 2, t, keep_texts=5)
+    monkeypatch.delenv("COLUMNS", raising=False)  # piped, no width: one row a line with its whole text
+    assert main(["shadow", MODEL, "--texts", "5", *published.cli_args()]) == 0
+    out = capsys.readouterr().out
+    assert text.replace("\n", " ↵ ") in out  # how every table shows a line break (registry/tables.py)
 
 
 def test_cli_without_counts_says_how_they_come(published: RegistrySpec, capsys: pytest.CaptureFixture[str]) -> None:

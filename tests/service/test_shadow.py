@@ -163,3 +163,43 @@ def test_the_queue_bound_is_in_texts(tmp_path: Path) -> None:
     assert scorer.tallies[("m", 1, 2)].dropped == 4
     assert len(released) == 4  # every use of the candidate was handed back
     assert 'textsieve_shadow_dropped_texts_total{model="m"} 4.0' in metrics.render().decode()
+
+
+class _SlowStore:
+    """Takes shadow counts as the registry thread does, the first pair held until ``go`` is set."""
+
+    def __init__(self) -> None:
+        self.written: list[tuple[str, int, int, int]] = []
+        self.started = asyncio.Event()
+        self.go = asyncio.Event()
+
+    async def add_shadow_counts(self, model: str, live: int, candidate: int, tally: Any, **_: Any) -> None:
+        self.started.set()
+        await self.go.wait()
+        self.written.append((model, live, candidate, tally.texts))
+
+
+async def test_stopping_during_a_flush_writes_every_pair_the_flush_had_taken(tmp_path: Path) -> None:
+    """Before, stop() cancelled the flushing task while it waited on a pair's write, and the pairs
+    after it, already taken from the tallies, were never written (with the registry thread the pair
+    being written still landed; this store loses it too, so all three were missing)."""
+    settings = Settings(registry=str(tmp_path / "r"), shadow_flush_seconds=0.01, workers=1, access_log=False)
+    store = _SlowStore()
+    scorer = ShadowScorer(
+        settings,
+        None,  # type: ignore[arg-type]
+        store,  # type: ignore[arg-type]
+        ServiceMetrics(),
+        candidate=lambda _: None,
+        release=lambda _: None,
+    )
+    for model, texts in (("m", 3), ("n", 5), ("o", 7)):
+        scorer._tally((model, 1, 2)).texts = texts
+    scorer.start()
+    await asyncio.wait_for(store.started.wait(), 10)
+    stopping = asyncio.ensure_future(scorer.stop(drain_seconds=0))
+    while scorer._tasks:  # until stop() has cancelled and awaited the scoring and flushing tasks
+        await asyncio.sleep(0.001)
+    store.go.set()
+    await asyncio.wait_for(stopping, 10)
+    assert sorted(store.written) == [("m", 1, 2, 3), ("n", 1, 2, 5), ("o", 1, 2, 7)]
