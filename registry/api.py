@@ -1013,7 +1013,10 @@ class Registry:
         """Add one replica's shadow tally to the pair's sums, in one transaction (see registry/shadow.py).
 
         With ``keep_texts`` > 0 the tally's disagreeing texts are stored too, and the model's stored
-        texts are trimmed to the newest ``keep_texts`` and to those younger than ``keep_seconds``.
+        texts are trimmed to the newest ``keep_texts``. Texts older than ``keep_seconds`` are deleted
+        either way. A replica that keeps none (``keep_texts`` 0, the default) stores none and leaves the
+        count to the replicas that keep some: it used to delete every kept text of the model at its
+        first flush, so one replica left at the default emptied what the others kept for review.
         """
         model = validate_model_name(model)
         live_version, candidate_version = validate_version(live_version), validate_version(candidate_version)
@@ -1029,7 +1032,7 @@ class Registry:
             sq.add(model, live_version, candidate_version, tally, now)
             if keep_texts > 0 and tally.kept:
                 sq.keep_texts(model, live_version, candidate_version, tally, now)
-            sq.trim_texts(model, keep_texts, cutoff)
+            sq.trim_texts(model, keep_texts if keep_texts > 0 else None, cutoff)
 
     def shadow_counts(self, model: str) -> list[ShadowCounts]:
         """Every (live, candidate) pair's shadow counts, the most recently updated first."""

@@ -55,9 +55,12 @@ class ShadowQueries:
                 ),
             )
 
-    def trim_texts(self, model: str, keep: int, older_than: str) -> int:
-        """Forget kept texts beyond the newest ``keep`` of ``model``, and any stored before ``older_than``."""
+    def trim_texts(self, model: str, keep: int | None, older_than: str) -> int:
+        """Forget kept texts of ``model`` stored before ``older_than``, and those beyond the newest ``keep``
+        (None: no count)."""
         removed = self.tx.run("DELETE FROM shadow_texts WHERE model = ? AND at < ?", (model, older_than))
+        if keep is None:
+            return removed
         row = self.tx.one(
             "SELECT id FROM shadow_texts WHERE model = ? ORDER BY id DESC LIMIT 1 OFFSET ?", (model, max(keep, 0))
         )

@@ -191,7 +191,10 @@ class Settings(BaseSettings):
         0,
         ge=0,
         le=100_000,
-        description="keep the newest N texts the candidate labels differently, for review (0: keep no text)",
+        description=(
+            "keep the newest N texts the candidate labels differently, for review "
+            "(0: store none; texts other replicas keep are left to their age limit)"
+        ),
     )
     shadow_keep_days: float = Field(7.0, gt=0, le=3650, description="kept texts older than this are deleted")
     drift: bool = Field(True, description="count drift signals of live texts per served version")

@@ -111,6 +111,22 @@ def test_kept_texts_are_bounded_and_aged_out(published: RegistrySpec) -> None:
     assert counts is not None and counts.texts == 13
 
 
+def test_a_replica_that_keeps_no_texts_leaves_the_others_kept_texts(published: RegistrySpec) -> None:
+    """Two replicas, one with TEXTSIEVE_SHADOW_KEEP_TEXTS=5, one at the default 0. The second one's
+    flush used to delete every kept text of the model (a count trim to 0), so one replica at the
+    default emptied the review list the other kept; now it stores none and trims by age alone."""
+    with published.open() as reg:
+        t = Tally()
+        t.add(["a"] * 3, ["b"] * 3, 0.0, [KeptText(f"text {i}", "a", 0.9, "b", 0.7) for i in range(3)], keep_at_most=5)
+        reg.add_shadow_counts(MODEL, 1, 2, t, keep_texts=5)
+        other = Tally()
+        other.add(["a"], ["b"], 0.0, [], keep_at_most=0)
+        reg.add_shadow_counts(MODEL, 1, 2, other, keep_texts=0)
+        assert [s.text for s in reg.shadow_texts(MODEL, 1, 2)] == ["text 2", "text 1", "text 0"]
+        reg.add_shadow_counts(MODEL, 1, 2, other, keep_texts=0, keep_seconds=0.0)  # the age still applies
+        assert reg.shadow_texts(MODEL, 1, 2) == []
+
+
 def test_failed_flush_merges_back_without_loss() -> None:
     pending = _tally(["a", "b"], ["a", "a"], 0.5)
     pending.dropped = 3
