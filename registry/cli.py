@@ -732,7 +732,7 @@ def cli_verdicts(args: argparse.Namespace) -> int:
                         v.predicted_label,
                         f"{v.predicted_probability:.3f}",
                         "confirmed" if v.agrees else f"→ {v.verdict_label}",
-                        _short(v.text),
+                        v.text,  # whole: the table wraps it to the terminal, one line a row when piped
                     ]
                     for v in shown
                 ],
@@ -774,11 +774,6 @@ def _no_verdicts(args: argparse.Namespace, agreement: Sequence[Agreement]) -> st
     judged = [a.version for a in agreement]
     which = f"version {judged[0]} has" if len(judged) == 1 else f"versions {', '.join(map(str, judged))} have"
     return f"no verdicts on version {args.version} of {args.model!r} yet ({which} some)"
-
-
-def _short(text: str, limit: int = 48) -> str:
-    flat = " ".join(text.split())
-    return flat if len(flat) <= limit else flat[: limit - 1] + "…"
 
 
 # -- helpers ------------------------------------------------------------------------------

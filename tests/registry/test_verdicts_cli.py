@@ -37,6 +37,28 @@ def judged(spec: RegistrySpec, tiny_bundles: dict[str, Path]) -> RegistrySpec:
     return spec
 
 
+def test_a_verdict_s_text_is_listed_whole(
+    capsys: pytest.CaptureFixture[str], judged: RegistrySpec, tiny_bundles: dict[str, Path]
+) -> None:
+    """The listing cut texts at 48 characters with "…" (the export had them whole, the README says
+    tables keep texts whole): a reviewer could not read what was judged. Piped, each row is one
+    line holding the whole text, line breaks shown as ↵."""
+    long = "The rear derailleur on the loaner bike skips every third gear change on the hill\nand squeaks."
+    with judged.open() as reg:
+        reg.verdicts.record(
+            "helpdesk",
+            1,
+            text=long,
+            predicted_label="repair",
+            predicted_probability=0.9,
+            verdict_label="repair",
+            reviewer="Bo",
+        )
+    code, out, _ = run(capsys, "verdicts", "helpdesk", *judged.cli_args())
+    assert code == 0
+    assert long.replace("\n", " ↵ ") in out and "…" not in out.split("\n\n", 1)[0]
+
+
 def test_verdicts_table_shows_each_verdict_and_agreement_with_its_interval(
     capsys: pytest.CaptureFixture[str], judged: RegistrySpec
 ) -> None:
