@@ -194,24 +194,30 @@ class Queries:
         return int(row["id"])
 
     def events(self, model: str, *, version: int | None = None, last: int | None = None) -> list[Event]:
-        """A model's events oldest first: all of them, or one version's, or only the ``last`` of those."""
-        where, params = _event_filter(model, version)
-        if last is None:
+        """A model's events oldest first: all of them, or those about one version (:meth:`Event.concerns`:
+        its own, and the promotions and rollbacks recorded against another version that changed its
+        state), or only the ``last`` of those."""
+        columns = "id, model, version, kind, actor, at, reason, details"
+        if version is not None:  # which promotions and rollbacks concern it is in their details
             rows = self.tx.all(
-                f"SELECT id, model, version, kind, actor, at, reason, details FROM events WHERE {where} ORDER BY id",
-                params,
+                f"SELECT {columns} FROM events WHERE model = ? AND (version = ? OR kind IN ('promote', 'rollback')) "
+                "ORDER BY id",
+                (model, version),
             )
+            events = [e for e in map(Event.from_row, rows) if e.concerns(version)]
+            return events if last is None else events[-last:]
+        if last is None:
+            rows = self.tx.all(f"SELECT {columns} FROM events WHERE model = ? ORDER BY id", (model,))
         else:  # newest first to LIMIT them in the database, whatever the history's length; then turned round
-            rows = self.tx.all(
-                f"SELECT id, model, version, kind, actor, at, reason, details FROM events WHERE {where} "
-                "ORDER BY id DESC LIMIT ?",
-                (*params, last),
-            )[::-1]
+            rows = self.tx.all(f"SELECT {columns} FROM events WHERE model = ? ORDER BY id DESC LIMIT ?", (model, last))[
+                ::-1
+            ]
         return [Event.from_row(r) for r in rows]
 
     def count_events(self, model: str, *, version: int | None = None) -> int:
-        where, params = _event_filter(model, version)
-        row = self.tx.one(f"SELECT COUNT(*) AS n FROM events WHERE {where}", params)
+        if version is not None:
+            return len(self.events(model, version=version))
+        row = self.tx.one("SELECT COUNT(*) AS n FROM events WHERE model = ?", (model,))
         return int(row["n"]) if row else 0
 
     def events_after(self, cursor: int, limit: int) -> list[Event]:
@@ -302,12 +308,6 @@ class Queries:
     def last_event_id(self) -> int:
         row = self.tx.one("SELECT MAX(id) AS n FROM events")
         return int(row["n"] or 0) if row else 0
-
-
-def _event_filter(model: str, version: int | None) -> tuple[str, tuple[object, ...]]:
-    if version is None:
-        return "model = ?", (model,)
-    return "model = ? AND version = ?", (model, version)
 
 
 __all__ = ["Queries", "dumps"]

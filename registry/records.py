@@ -225,6 +225,17 @@ class Event(_Record):
             details=json.loads(row["details"]),
         )
 
+    def concerns(self, version: int) -> bool:
+        """Whether this event is about ``version`` or changed its state while recording another one: a
+        promotion to live that retired it, a promotion to candidate that replaced it, a rollback away
+        from it (each recorded against the version it made live or candidate)."""
+        if self.version == version:
+            return True
+        d = self.details
+        if self.kind == "promote":
+            return d.get("retired") == version or d.get("replaced_candidate") == version
+        return self.kind == "rollback" and d.get("from") == version
+
 
 __all__ = [
     "STATES",

@@ -776,6 +776,26 @@ def test_history_last_shows_the_newest_events_and_says_how_many_more_there_are(
     assert code == 0 and len(ids(out)) == 1 and "first" in out and "the last 1 of 2 events" in err
 
 
+def test_a_version_s_history_holds_the_events_that_retired_it(
+    capsys: pytest.CaptureFixture[str], spec: RegistrySpec, tiny_bundles: dict[str, Path]
+) -> None:
+    """A promotion to live that retires the old live version, and a rollback away from a version, are
+    recorded against the version made live: `history --version N` left them out, so a
+    retired version's own history did not say how it came to be retired."""
+    r = spec.cli_args()
+    for key in ("a", "b"):
+        run(capsys, "publish", str(tiny_bundles[key]), "--model", "m", *r)
+    run(capsys, "promote", "m", "1", "--to", "live", "--reason", "first", *r)
+    run(capsys, "promote", "m", "2", "--to", "live", "--reason", "second", "--force", *r)
+    code, out, _ = run(capsys, "history", "m", "--version", "1", *r)
+    assert code == 0 and "second" in out, out  # version 2's promotion retired version 1
+    run(capsys, "rollback", "m", "--reason", "back to one", *r)
+    code, out, _ = run(capsys, "history", "m", "--version", "2", *r)
+    assert code == 0 and "back to one" in out, out  # the rollback away from version 2
+    code, out, err = run(capsys, "history", "m", "--version", "2", "--last", "1", *r)
+    assert code == 0 and "back to one" in out and "second" not in out and "the last 1 of 3 events" in err, (out, err)
+
+
 @pytest.mark.parametrize(
     ("argv", "expected_msg"),
     [
