@@ -19,17 +19,31 @@ _PROBLEM: dict[int | str, dict[str, Any]] = {
 }
 
 
+_SEVERITY = {"stable": 1, "watch": 2, "act": 3}  # registry/stats.py's bands
+
+
 def _detail(report: DriftReport) -> str:
     if report.baseline is None:
         return "no baseline: this bundle was exported without drift signals; export it again to get them"
     if report.texts == 0:
         return "no live texts in the window yet"
-    worst = max((s for s in report.signals if s.psi is not None), key=lambda s: s.psi or 0.0, default=None)
-    if worst is None:
+    measured = [s for s in report.signals if s.psi is not None]
+    if not measured:
         return "nothing to compare"
-    band = f" ({worst.band})" if worst.band else ""
-    said = f"largest PSI: {worst.name} {worst.psi:.3f}{band} over {report.texts} live texts"
-    unjudged = [s for s in report.signals if s.psi is not None and s.band is None]
+    # The headline is the signal whose band matters most ("act" over "watch" over "stable", then the
+    # larger PSI); a larger PSI on a signal too few texts to judge yet is named after it, as such.
+    # Before, the largest raw PSI led even when it had no band and a smaller one said "act".
+    judged = [s for s in measured if s.band is not None]
+    if judged:
+        worst = max(judged, key=lambda s: (_SEVERITY.get(s.band or "", 0), s.psi or 0.0))
+        said = f"largest drift: {worst.name} PSI {worst.psi:.3f} ({worst.band}) over {report.texts} live texts"
+        larger = max((s for s in measured if s.band is None), key=lambda s: s.psi or 0.0, default=None)
+        if larger is not None and (larger.psi or 0.0) > (worst.psi or 0.0):
+            said += f"; {larger.name} reads PSI {larger.psi:.3f}, not yet judged"
+    else:
+        worst = max(measured, key=lambda s: s.psi or 0.0)
+        said = f"largest PSI: {worst.name} {worst.psi:.3f} over {report.texts} live texts"
+    unjudged = [s for s in measured if s.band is None]
     never = [s.name for s in unjudged if s.min_texts is None]
     if never:
         return (

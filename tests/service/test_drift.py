@@ -126,3 +126,26 @@ async def test_drift_off_keeps_no_window(registry_dir: Path) -> None:
         r = await client.get(f"/v1/models/{MODEL}/drift")
     assert r.status_code == 200 and r.json()["versions"] == []
     assert "serves no version of it with a drift window" in render_drift(r.json())
+
+
+def test_the_detail_line_leads_with_the_band_that_matters_not_the_largest_unjudged_psi() -> None:
+    """A signal whose window is still too small to judge can read a large PSI by chance; the line led
+    with it ("largest PSI: tokens 0.900") while a judged signal said "act". It now leads with the
+    most severe band (then the larger PSI) and names the larger unjudged reading after it, as such."""
+    from textsieve.registry.drift import DriftBaseline, DriftReport, SignalDrift
+    from textsieve.service.web.drift import _detail
+
+    base = DriftBaseline(source="validation", texts=600, unknown_rate=0.01, truncation_rate=0.0, histograms={})
+
+    def report(*signals: SignalDrift) -> DriftReport:
+        return DriftReport(texts=300, unknown_rate=0.0, truncation_rate=0.0, baseline=base, signals=list(signals))
+
+    label = SignalDrift("label", 0.31, 0.2, "act")
+    tokens = SignalDrift("tokens", 0.9, 0.4, None, min_texts=469)
+    top = SignalDrift("top_probability", 0.12, 0.1, "watch")
+    line = _detail(report(tokens, top, label))
+    assert line.startswith("largest drift: label PSI 0.310 (act) over 300 live texts"), line
+    assert "tokens reads PSI 0.900, not yet judged" in line and "bands from 469 texts" in line
+    stable = SignalDrift("label", 0.05, 0.02, "stable")
+    assert _detail(report(stable, top)).startswith("largest drift: top_probability PSI 0.120 (watch)")
+    assert _detail(report(tokens)).startswith("largest PSI: tokens 0.900 over 300 live texts")  # nothing judged
