@@ -269,12 +269,14 @@ def test_a_plain_request_without_the_token_is_refused_without_its_body_and_the_c
 async def test_tokens_never_reach_the_log_or_a_reply(registry_dir: Path, caplog: pytest.LogCaptureFixture) -> None:
     caplog.set_level(logging.DEBUG)
     wrong = f"wrong-{secrets.token_hex(12)}"
-    settings = settings_for(registry_dir, admin_token=ADMIN_TOKEN, access_log=True)
-    assert ADMIN_TOKEN not in repr(settings) and ADMIN_TOKEN not in str(settings.model_dump())
+    settings = settings_for(registry_dir, admin_token=ADMIN_TOKEN, review_token=REVIEW_TOKEN, access_log=True)
+    for token in (ADMIN_TOKEN, REVIEW_TOKEN):
+        assert token not in repr(settings) and token not in str(settings.model_dump())
     seen: list[str] = []
+    reviewer = {"Authorization": f"Bearer {REVIEW_TOKEN}"}
     async with serving(settings) as (_, client):
-        for headers in (AUTH, {"Authorization": f"Bearer {wrong}"}, {"Authorization": wrong}):
-            for path, body in ADMIN_CALLS:
+        for headers in (AUTH, reviewer, {"Authorization": f"Bearer {wrong}"}, {"Authorization": wrong}):
+            for path, body in [*ADMIN_CALLS, ("/v1/verdicts", {"model": MODEL, "text": "a b", "reviewer": "sec"})]:
                 r = await client.post(path, json=body, headers=headers)
                 seen.append(r.text + repr(dict(r.headers)))
         for r in (
@@ -287,7 +289,7 @@ async def test_tokens_never_reach_the_log_or_a_reply(registry_dir: Path, caplog:
             seen.append(r.text + repr(dict(r.headers)))
     logged = log_text(caplog)
     assert "sec-1" in logged, "the access log was captured"
-    for secret in (ADMIN_TOKEN, wrong):
+    for secret in (ADMIN_TOKEN, REVIEW_TOKEN, wrong):
         assert secret not in logged
         assert not [s for s in seen if secret in s]
 
