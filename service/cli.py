@@ -13,6 +13,7 @@ import argparse
 import errno
 import gc
 import logging
+import os
 import signal
 import socket
 import sys
@@ -71,6 +72,11 @@ def server_config(
         timeout_graceful_shutdown=GRACEFUL_SECONDS,
         server_header=False,
         ws="none",  # no WebSocket routes; an Upgrade is declined (service/web/transport.py)
+        # uvicorn believes X-Forwarded-For from 127.0.0.1 unless FORWARDED_ALLOW_IPS says otherwise,
+        # and serve binds 127.0.0.1 with no proxy in front by default: every caller could then
+        # write any text as its client address in the access log (CWE-348, CWE-117). Only proxies
+        # an operator names are believed (deploy/ names nginx); otherwise the socket's peer is logged.
+        proxy_headers=bool(os.environ.get("FORWARDED_ALLOW_IPS", "").strip()),
     )
 
 

@@ -1,7 +1,8 @@
 """report.html: one self-contained page drawn from report.json alone (inline CSS and SVG, no script).
 
 The page loads nothing: :func:`report_csp` allows only its own ``<style>`` by sha256 (CSP
-Level 2 hash source), as the reviewer page does, and no script at all.
+Level 2 hash source), as the reviewer page does, and no script at all. The page states the same
+policy in a ``<meta http-equiv>``, so the file holds to it when opened from disk.
 """
 
 from __future__ import annotations
@@ -33,14 +34,17 @@ mark{background:#cfe8e6;padding:0 .1rem}.worse{color:#a13a36}.better{color:#2f7a
 """
 
 
-def report_csp(html: str) -> str:
-    """The page's Content-Security-Policy: its own inline style by hash, nothing else."""
-    styles = re.findall(r"<style>(.*?)</style>", html, flags=re.S)
+def _policy(styles: Sequence[str]) -> str:
     hashes = " ".join(f"'sha256-{base64.b64encode(hashlib.sha256(s.encode()).digest()).decode()}'" for s in styles)
     return (
         f"default-src 'none'; style-src {hashes}; img-src 'none'; script-src 'none'; base-uri 'none'; "
-        "form-action 'none'; frame-ancestors 'none'"
+        "form-action 'none'"
     )
+
+
+def report_csp(html: str) -> str:
+    """The page's Content-Security-Policy: its own inline style by hash, nothing else."""
+    return _policy(re.findall(r"<style>(.*?)</style>", html, flags=re.S)) + "; frame-ancestors 'none'"
 
 
 def _num(x: object, digits: int = 4) -> str:
@@ -358,6 +362,11 @@ def render_html(report: dict[str, Any], sections: Sequence[Section] | None = Non
     title = f"Evaluation report: {report['model']} version {report.get('version')}"
     return (
         '<!doctype html><html lang="en"><head><meta charset="utf-8">'
+        # The file carries its policy too: report.html opened from disk (written by `textsieve
+        # evaluate`, or saved from the service) has no response header to lock it down, and escaping
+        # would be its only guard. A <meta> policy cannot hold frame-ancestors (CSP Level 3 §3.3:
+        # ignored there, with a console error); the service's header adds it.
+        f'<meta http-equiv="Content-Security-Policy" content="{_policy([STYLE])}">'
         '<meta name="viewport" content="width=device-width, initial-scale=1">'
         f"<title>{escape(title)}</title><style>{STYLE}</style></head><body>{body}</body></html>"
     )

@@ -22,6 +22,7 @@ import urllib.parse
 from pathlib import Path
 from typing import Any
 
+import httpx
 import numpy as np
 import pytest
 import yaml
@@ -279,7 +280,7 @@ def test_template_placeholders_are_the_ones_filled_in() -> None:
     rendered = loopback.render_template(
         loopback.NGINX_TEMPLATE.read_text(encoding="utf-8"), {k: f"value-of-{k}" for k in loopback.TEMPLATE_VARS}
     )
-    assert "$proxy_add_x_forwarded_for" in rendered and "$upstream_addr" in rendered, "nginx's variables kept"
+    assert "$remote_addr" in rendered and "$upstream_addr" in rendered, "nginx's variables kept"
 
 
 def _size(value: str) -> int:
@@ -397,3 +398,46 @@ def test_topology_on_loopback(
                 [public["probabilities"][k] for k in labels],
                 atol=loopback.PROBABILITY_TOLERANCE,
             )
+
+
+def test_nginx_hands_the_replicas_the_address_it_saw_not_one_a_client_forged() -> None:
+    """The template in real nginx, in front of two plain HTTP servers that note the X-Forwarded-For
+    they get. A client's own X-Forwarded-For must not reach a replica: compose trusts every proxy
+    (FORWARDED_ALLOW_IPS "*"), where uvicorn takes the list's first entry as the client (CWE-348)."""
+    import shutil
+    import tempfile
+
+    seen: list[list[str]] = []
+
+    class Handler(http.server.BaseHTTPRequestHandler):
+        def do_GET(self) -> None:  # noqa: N802 (the http.server API)
+            seen.append(self.headers.get_all("X-Forwarded-For") or [])
+            self.send_response(200)
+            self.send_header("Content-Length", "0")
+            self.end_headers()
+
+        def log_message(self, *args: object) -> None:
+            pass
+
+    # nginx runs as `nobody` under root, in a folder it can reach (as the topology's Balancer does).
+    folder = Path(tempfile.mkdtemp(prefix="textsieve-nginx-xff-"))
+    with (
+        http.server.ThreadingHTTPServer(("127.0.0.1", 0), Handler) as one,
+        http.server.ThreadingHTTPServer(("127.0.0.1", 0), Handler) as two,
+    ):
+        for server in (one, two):
+            threading.Thread(target=server.serve_forever, daemon=True).start()
+        upstreams = [f"127.0.0.1:{s.server_address[1]}" for s in (one, two)]
+        balancer = loopback.Balancer(loopback.nginx_executable(), folder, loopback.free_port(), upstreams)
+        try:
+            balancer.start()
+            for forged in ("203.0.113.9", "203.0.113.9, 198.51.100.7"):
+                seen.clear()
+                r = httpx.get(f"{balancer.url}/healthz", headers={"X-Forwarded-For": forged}, timeout=10)
+                assert r.status_code == 200
+                assert seen == [["127.0.0.1"]], seen
+        finally:
+            balancer.stop()
+            for server in (one, two):
+                server.shutdown()
+            shutil.rmtree(folder, ignore_errors=True)

@@ -269,12 +269,14 @@ def test_a_plain_request_without_the_token_is_refused_without_its_body_and_the_c
 async def test_tokens_never_reach_the_log_or_a_reply(registry_dir: Path, caplog: pytest.LogCaptureFixture) -> None:
     caplog.set_level(logging.DEBUG)
     wrong = f"wrong-{secrets.token_hex(12)}"
-    settings = settings_for(registry_dir, admin_token=ADMIN_TOKEN, access_log=True)
-    assert ADMIN_TOKEN not in repr(settings) and ADMIN_TOKEN not in str(settings.model_dump())
+    settings = settings_for(registry_dir, admin_token=ADMIN_TOKEN, review_token=REVIEW_TOKEN, access_log=True)
+    for token in (ADMIN_TOKEN, REVIEW_TOKEN):
+        assert token not in repr(settings) and token not in str(settings.model_dump())
     seen: list[str] = []
+    reviewer = {"Authorization": f"Bearer {REVIEW_TOKEN}"}
     async with serving(settings) as (_, client):
-        for headers in (AUTH, {"Authorization": f"Bearer {wrong}"}, {"Authorization": wrong}):
-            for path, body in ADMIN_CALLS:
+        for headers in (AUTH, reviewer, {"Authorization": f"Bearer {wrong}"}, {"Authorization": wrong}):
+            for path, body in [*ADMIN_CALLS, ("/v1/verdicts", {"model": MODEL, "text": "a b", "reviewer": "sec"})]:
                 r = await client.post(path, json=body, headers=headers)
                 seen.append(r.text + repr(dict(r.headers)))
         for r in (
@@ -287,7 +289,7 @@ async def test_tokens_never_reach_the_log_or_a_reply(registry_dir: Path, caplog:
             seen.append(r.text + repr(dict(r.headers)))
     logged = log_text(caplog)
     assert "sec-1" in logged, "the access log was captured"
-    for secret in (ADMIN_TOKEN, wrong):
+    for secret in (ADMIN_TOKEN, REVIEW_TOKEN, wrong):
         assert secret not in logged
         assert not [s for s in seen if secret in s]
 
@@ -322,6 +324,43 @@ def test_serve_keeps_database_passwords_and_tokens_out_of_its_output(tmp_path: P
     for secret in (password, ADMIN_TOKEN):
         assert secret not in output, f"{secret} in the server's output"
         assert not [s for s in replies if secret in s]
+
+
+# -- the access log names the caller it saw (CWE-117, CWE-348) -------------------------------------
+FORGED = ["203.0.113.9", '<img src=x onerror=alert(1)> "} {"level":"error']
+
+
+def _logged_clients(server: ServerProcess, forged: str) -> list[object]:
+    """The client each of two requests forging ``forged`` is logged as (the server has no model: it answers anyway)."""
+    poll_readyz(server.url, lambda r: True, awaiting="the server to listen", gone=server.gone)
+    for value in (forged, f"{forged}, 198.51.100.7"):
+        r = httpx.get(f"{server.url}/healthz", headers={"X-Forwarded-For": value, "X-Request-Id": "xff"}, timeout=30)
+        assert r.status_code == 200, r.text
+    assert server.terminate() == 0
+    lines = [json.loads(line) for line in server.output().splitlines() if line.startswith("{")]
+    return [line["client"] for line in lines if line.get("request_id") == "xff"]
+
+
+@pytest.mark.parametrize("forged", FORGED)
+def test_a_caller_cannot_write_its_client_address_into_the_access_log(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, forged: str
+) -> None:
+    """X-Forwarded-For is believed only from a proxy an operator names in FORWARDED_ALLOW_IPS
+    (uvicorn's variable, which deploy/ sets): ``serve`` binds 127.0.0.1 with no proxy in front
+    by default, and uvicorn's own default believes every caller there."""
+    monkeypatch.delenv("FORWARDED_ALLOW_IPS", raising=False)
+    server = ServerProcess.start(str(tmp_path / "registry"), tmp_path / "alone.log", workers=1, access_log="true")
+    try:
+        assert _logged_clients(server, forged) == ["127.0.0.1", "127.0.0.1"]
+    finally:
+        server.stop()
+    # A proxy named in FORWARDED_ALLOW_IPS is believed: the address it appended is the client.
+    monkeypatch.setenv("FORWARDED_ALLOW_IPS", "127.0.0.1")
+    server = ServerProcess.start(str(tmp_path / "registry"), tmp_path / "proxied.log", workers=1, access_log="true")
+    try:
+        assert _logged_clients(server, forged)[-1] == "198.51.100.7"
+    finally:
+        server.stop()
 
 
 # -- names and files stay inside the registry (OWASP API1, API8) ----------------------------------

@@ -697,3 +697,57 @@ def test_signing_in_and_out_by_keyboard_keeps_the_focus_on_the_page(browser, reg
         ActionChains(browser).send_keys("y").perform()
         card = browser.find_element(By.CSS_SELECTOR, "article.result")
         wait.until(lambda d: card.get_attribute("data-state") == "confirmed")
+
+
+# Script injection (CWE-79) through what reaches the page from callers and bundles: texts, span
+# texts and labels, each trying to leave its element, its attribute or its URL (OWASP XSS
+# Prevention Cheat Sheet, rules 1, 2 and 5). The page writes them as text nodes only.
+HOSTILE = (
+    '</script><script>window.__hit = "script"</script>',
+    '"><img src=x onerror="window.__hit = \'img\'">',
+    "javascript:window.__hit='url'",
+    "'><svg onload=\"window.__hit = 'svg'\"></svg>",
+)
+
+
+def test_hostile_texts_and_labels_are_shown_as_text_and_run_nothing(  # type: ignore[no-untyped-def]
+    browser, tiny_bundles: dict[str, Path], tmp_path: Path
+) -> None:
+    import json
+    import shutil
+
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    from tests.helpers.registries import edit_manifest
+
+    bundle = tmp_path / "bundle"
+    shutil.copytree(tiny_bundles["a"], bundle)
+    labels = json.loads((bundle / "manifest.json").read_text())["labels"]
+    hostile_labels = [f"{label}{HOSTILE[i % len(HOSTILE)]}" for i, label in enumerate(labels)]
+    edit_manifest(bundle, {"labels": hostile_labels})
+    with open_registry(tmp_path / "registry") as reg:
+        reg.publish(bundle, MODEL, actor="tests")
+        reg.promote(MODEL, 1, "live", reason="tests start here", actor="tests", force=True)
+    texts = [f"{TEXTS[i % len(TEXTS)]} {h}" for i, h in enumerate(HOSTILE)]
+    with uvicorn_server(settings_for(tmp_path / "registry", port=free_port(), review_token=REVIEW_TOKEN)) as server:
+        browser.get(server.url + "/")
+        scripts = len(browser.find_elements(By.TAG_NAME, "script"))
+        browser.find_element(By.ID, "reviewer").send_keys("<img src=x onerror=\"window.__hit = 'name'\">")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + "\n")
+        browser.find_element(By.ID, "texts").send_keys("\n".join(texts))
+        browser.find_element(By.ID, "go").click()
+        WebDriverWait(browser, 30).until(
+            lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == len(texts)
+        )
+        cards = browser.find_elements(By.CSS_SELECTOR, "article.result")
+        for card, sent in zip(cards, texts, strict=True):
+            assert card.find_element(By.CSS_SELECTOR, ".pill").text in hostile_labels
+            assert card.find_element(By.CSS_SELECTOR, ".text").get_attribute("textContent") == sent
+        body = browser.find_element(By.TAG_NAME, "body").get_attribute("textContent")
+        assert all(label in body for label in hostile_labels), "each label is shown, as text"
+        assert browser.execute_script("return window.__hit") is None
+        assert len(browser.find_elements(By.TAG_NAME, "script")) == scripts
+        for tag in ("img", "iframe", "a[href^='javascript']"):
+            assert browser.find_elements(By.CSS_SELECTOR, tag) == [], f"a {tag} was injected"
+        assert [e for e in browser.get_log("browser") if e["level"] == "SEVERE"] == []

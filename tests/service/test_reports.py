@@ -118,3 +118,56 @@ def test_report_renders_in_chromium(browser: Any, report_registry: Path, tmp_pat
         assert (tmp_path / "report.png").stat().st_size > 10_000
         severe = [e for e in browser.get_log("browser") if e["level"] == "SEVERE"]
         assert severe == []  # nothing blocked by the Content-Security-Policy, no errors
+
+
+# Script injection (CWE-79) through what an evaluation set and a bundle put on the page: labels
+# and texts, each trying to leave its element, its attribute or its URL (OWASP XSS Prevention
+# Cheat Sheet, rules 1, 2 and 5). The report has no script, so any that runs was injected.
+HOSTILE = (
+    '</script><script>window.__hit = "script"</script>',
+    '"><img src=x onerror="window.__hit = \'img\'">',
+    "javascript:window.__hit='url'",
+    "'><svg onload=\"window.__hit = 'svg'\"></svg>",
+)
+
+
+def test_a_report_file_shows_hostile_labels_and_texts_as_text_and_runs_no_script(
+    browser: Any, tiny_bundles: dict[str, Path], tiny_data: Path, tmp_path: Path
+) -> None:
+    import shutil
+
+    from selenium.webdriver.common.by import By
+
+    from tests.helpers.registries import edit_manifest
+    from textsieve.labelled import load_examples
+    from textsieve.registry.bundle import open_bundle
+    from textsieve.registry.evalsets import LabelledText
+    from textsieve.registry.report.files import make_report
+
+    bundle = tmp_path / "bundle"
+    shutil.copytree(tiny_bundles["a"], bundle)
+    labels = json.loads((bundle / "manifest.json").read_text())["labels"]
+    renamed = {label: f"{label}{HOSTILE[i % len(HOSTILE)]}" for i, label in enumerate(labels)}
+    edit_manifest(bundle, {"labels": [renamed[label] for label in labels]})
+    examples = [
+        LabelledText(f"{e.text} {HOSTILE[i % len(HOSTILE)]}", renamed[e.label])
+        for i, e in enumerate(load_examples(tiny_data / "test.jsonl"))
+    ]
+    _, _, html = make_report(open_bundle(bundle), examples, model="hostile", version=1)
+    page = tmp_path / "report.html"  # opened from disk, as `textsieve evaluate` leaves it: no header
+    page.write_bytes(html)
+    spliced = tmp_path / "spliced.html"  # what an escaping fault would let through
+    spliced.write_bytes(html.replace(b"<body>", b'<body><script>window.__hit = "spliced"</script>', 1))
+
+    browser.get(page.as_uri())
+    body = browser.find_element(By.TAG_NAME, "body").text
+    assert all(renamed[label] in body for label in labels), "each label is shown, as text"
+    assert browser.execute_script("return window.__hit") is None
+    for tag in ("script", "img", "iframe", "a"):
+        assert browser.find_elements(By.TAG_NAME, tag) == [], f"a <{tag}> was injected"
+    assert [e for e in browser.get_log("browser") if e["level"] == "SEVERE"] == []  # its policy allows its style
+
+    browser.get(spliced.as_uri())
+    assert browser.execute_script("return window.__hit") is None, "the file's own policy stops a script"
+    blocked = [e["message"] for e in browser.get_log("browser") if e["level"] == "SEVERE"]
+    assert any("Content Security Policy" in m for m in blocked), blocked
