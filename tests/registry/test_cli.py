@@ -348,6 +348,31 @@ def _as_a_user_bound_by_file_modes(path: Path) -> list[str]:
     return prefix
 
 
+def _run_with_read_only(target: Path, reg: Path, argv: list[str]) -> subprocess.CompletedProcess[str]:
+    """``textsieve ARGV --registry REG`` as a user bound by file modes, ``target`` read-only meanwhile."""
+    mode = target.stat().st_mode
+    target.chmod(0o555 if target.is_dir() else 0o444)
+    try:
+        return subprocess.run(
+            [
+                *_as_a_user_bound_by_file_modes(target),
+                sys.executable,
+                "-m",
+                "textsieve.cli",
+                *argv,
+                "--registry",
+                str(reg),
+            ],
+            capture_output=True,
+            text=True,
+            timeout=120,
+            env=child_env(),
+            check=False,
+        )
+    finally:
+        target.chmod(mode)
+
+
 @pytest.mark.parametrize(
     ("read_only", "journal", "argv", "expected_msg"),
     [
@@ -388,28 +413,7 @@ def test_a_read_only_registry_is_one_line_saying_what_to_make_writable(
         registry.publish(tiny_bundles["a"], "m", actor="tests")
     if journal:
         (reg / "registry.sqlite3-wal").touch()
-    target = reg / read_only
-    mode = target.stat().st_mode
-    target.chmod(0o555 if target.is_dir() else 0o444)
-    try:
-        done = subprocess.run(
-            [
-                *_as_a_user_bound_by_file_modes(target),
-                sys.executable,
-                "-m",
-                "textsieve.cli",
-                *argv,
-                "--registry",
-                str(reg),
-            ],
-            capture_output=True,
-            text=True,
-            timeout=120,
-            env=child_env(),
-            check=False,
-        )
-    finally:
-        target.chmod(mode)
+    done = _run_with_read_only(reg / read_only, reg, argv)
     # UnavailableError's status, as for a registry that cannot be reached (textsieve/errors.py).
     assert (done.returncode, done.stdout) == (1, ""), done.stderr
     assert len(done.stderr.splitlines()) == 1 and done.stderr.startswith("textsieve: error: "), done.stderr
@@ -450,26 +454,7 @@ def test_a_read_only_blob_folder_is_one_line_and_changes_nothing(
     blobs = reg / "blobs"
     before = sorted(p.name for p in blobs.iterdir())
     argv = [str(tiny_bundles["b"]) if a == "BUNDLE_B" else a for a in argv]
-    blobs.chmod(0o555)
-    try:
-        done = subprocess.run(
-            [
-                *_as_a_user_bound_by_file_modes(blobs),
-                sys.executable,
-                "-m",
-                "textsieve.cli",
-                *argv,
-                "--registry",
-                str(reg),
-            ],
-            capture_output=True,
-            text=True,
-            timeout=120,
-            env=child_env(),
-            check=False,
-        )
-    finally:
-        blobs.chmod(0o755)
+    done = _run_with_read_only(blobs, reg, argv)
     # UnavailableError's status, as for a read-only registry database (textsieve/errors.py).
     assert (done.returncode, done.stdout) == (1, ""), done.stderr
     assert len(done.stderr.splitlines()) == 1 and done.stderr.startswith("textsieve: error: "), done.stderr
