@@ -201,7 +201,12 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         help="delete the verdicts recorded before DATE (2026-11-30 = its start, UTC; or an ISO 8601 time)",
     )
     p.add_argument(
-        "--delete", type=int, action="append", default=[], metavar="ID", help="delete the verdict with this id (repeat)"
+        "--delete",
+        type=int,
+        action="append",
+        default=[],
+        metavar="ID",
+        help="delete the verdict with this id (repeat; an unknown id refuses the whole deletion)",
     )
     p.add_argument(
         "--reason", action=_Once, default="", help="why verdicts are deleted (required with --delete*), audited"
@@ -704,8 +709,7 @@ def cli_verdicts(args: argparse.Namespace) -> int:
             gone = reg.verdicts.delete(
                 args.model, before=args.delete_before, ids=args.delete, actor=args.actor, reason=args.reason
             )
-            missing = f"; no verdict {', '.join(map(str, gone.missing))} of {args.model!r}" if gone.missing else ""
-            _out(f"deleted {len(gone.deleted)} verdicts of {args.model!r} (audit event {gone.event_id}){missing}")
+            _out(f"deleted {len(gone.deleted)} verdicts of {args.model!r} (audit event {gone.event_id})")
             return 0
         verdicts = reg.verdicts.of(args.model, version=args.version)
         agreement = reg.verdicts.agreement(args.model)
