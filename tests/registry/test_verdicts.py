@@ -80,6 +80,7 @@ def test_verdicts_are_stored_shared_and_summarised_with_a_wilson_interval(
         pytest.param({"text": "a\ud800b"}, "lone surrogate", id="surrogate-text"),
         pytest.param({"reviewer": ""}, "reviewer's name", id="no-reviewer"),
         pytest.param({"reviewer": "a\x07b"}, "bad reviewer", id="control-reviewer"),
+        pytest.param({"reviewer": "a\u200bna"}, "bad reviewer 'a\\\\u200bna' \\(U\\+200B", id="zero-width-reviewer"),
     ],
 )
 def test_bad_verdicts_are_refused_and_nothing_is_stored(
@@ -98,6 +99,25 @@ def test_bad_verdicts_are_refused_and_nothing_is_stored(
     if "label" in expected_msg:
         assert "allowed: account, billing, praise, repair" in caught.value.message
     assert registry.verdicts.of("helpdesk") == []
+
+
+def test_names_stored_before_the_format_character_rule_still_read_back(
+    registry: Registry, tiny_bundles: dict[str, Path], tmp_path: Path
+) -> None:
+    """Names are refused on input only: a verdict and an audit event written when U+202E and U+200B
+    were still accepted are read, listed and exported as stored."""
+    registry.publish(tiny_bundles["a"], "helpdesk", actor="ci")
+    vid = _record(registry, 1, TEXTS[0], "billing", "billing")
+    reviewer, actor = "ana\u202egnp", "o\u200bps"
+    with registry.backend.write() as tx:
+        tx.run("UPDATE verdicts SET reviewer = ? WHERE id = ?", (reviewer, vid))
+        tx.run("UPDATE events SET actor = ? WHERE model = ? AND kind = 'publish'", (actor, "helpdesk"))
+    assert [v.reviewer for v in registry.verdicts.of("helpdesk")] == [reviewer]
+    assert [e.actor for e in registry.history("helpdesk")] == [actor]
+    assert export_jsonl(registry.verdicts.of("helpdesk"), tmp_path / "out.jsonl") == 1
+    # A later change by someone else is still recorded next to them.
+    registry.verdicts.delete("helpdesk", ids=[vid], actor="dpo", reason="request #7")
+    assert [e.actor for e in registry.history("helpdesk")] == [actor, "dpo"]
 
 
 def test_verdicts_on_unknown_models_or_versions_are_not_found(
