@@ -55,7 +55,28 @@ def _metrics_caveat(m: Manifest) -> list[str]:
 
 def _calibration(c: CalibrationInfo) -> list[str]:
     from textsieve.exporter.export import temperature_fitted
+    from textsieve.registry.measures import TEMPERATURE_BOUNDS, temperature_bound
 
+    bound = temperature_bound(c.temperature) if temperature_fitted(c) else None
+    figures = f"(NLL {c.nll_before:.4f} → {c.nll_after:.4f}, ECE {c.ece_before:.4f} → {c.ece_after:.4f})"
+    if bound == "upper":
+        return [
+            f"Not a fit: temperature scaling (Guo et al., 2017) on {c.texts} validation texts stopped at the upper",
+            f"bound of its search, T = {TEMPERATURE_BOUNDS[1]:g} {figures}. The loss kept falling as the",
+            "probabilities flattened towards uniform: the model's scores carry little information about the",
+            "right label of these texts, or the model is badly over-confident (often sure and wrong). Its",
+            "probabilities are near uniform and say little. Check the training and validation labels and the",
+            "metrics above before serving it; retrain (more or cleaner data, more epochs) rather than trust it.",
+        ]
+    if bound == "lower":
+        return [
+            f"Not a fit: temperature scaling (Guo et al., 2017) on {c.texts} validation texts stopped at the lower",
+            f"bound of its search, T = {TEMPERATURE_BOUNDS[0]:g} {figures}. The loss kept falling as the",
+            "probabilities sharpened, so every logit is multiplied by 20 and probabilities sit near 0 or 1, for",
+            "the texts the model gets wrong too: the model looks badly under-confident on these texts, which",
+            "are too few or too easy to say how confident it should be. Treat the probabilities as",
+            "uncalibrated; a larger or harder validation set (--valid) lets the export fit T.",
+        ]
     if temperature_fitted(c):
         return [
             f"Temperature scaling (Guo et al., 2017) fitted on {c.texts} validation texts: T = {c.temperature:.4f};",

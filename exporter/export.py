@@ -379,6 +379,23 @@ def write_manifest(folder: Path, draft: Manifest) -> Manifest:
     return manifest
 
 
+def _temperature_note(cal: CalibrationInfo) -> str:
+    if not temperature_fitted(cal):
+        return "  (not fitted: every validation text is classified correctly)"
+    bound = measures.temperature_bound(cal.temperature)
+    if bound == "upper":
+        return (
+            "  (not a fit: the search stopped at its upper bound; the model's scores carry little information "
+            "about the labels of these texts, so its probabilities are near uniform: see the card's Calibration)"
+        )
+    if bound == "lower":
+        return (
+            "  (not a fit: the search stopped at its lower bound; every logit is multiplied by 20 and "
+            "probabilities sit near 0 or 1: see the card's Calibration)"
+        )
+    return ""
+
+
 def _print_parity(parity: ParityReport, cal: CalibrationInfo, log: Any) -> None:
     rows = [
         ("texts compared", f"{parity.texts}"),
@@ -389,11 +406,7 @@ def _print_parity(parity: ParityReport, cal: CalibrationInfo, log: Any) -> None:
         ("label agreement", f"{parity.label_agreement:.2%}"),
         ("argmax-position agreement", f"{parity.position_agreement:.2%}"),
         ("alone vs batched, max |Δprobability|", f"{parity.batch_invariance_max_diff:.2e}"),
-        (
-            "temperature",
-            f"{cal.temperature:.4f}"
-            + ("" if temperature_fitted(cal) else "  (not fitted: every validation text is classified correctly)"),
-        ),
+        ("temperature", f"{cal.temperature:.4f}" + _temperature_note(cal)),
         ("NLL before → after", f"{cal.nll_before:.4f} → {cal.nll_after:.4f}"),
         ("ECE before → after", f"{cal.ece_before:.4f} → {cal.ece_after:.4f}"),
         ("parity", "PASSED" if parity.passed else "FAILED"),

@@ -29,10 +29,17 @@ if TYPE_CHECKING:
 
 
 def table(
-    headers: Sequence[str], rows: Sequence[Sequence[object]], *, right: Sequence[int] = (), wrap: Sequence[int] = ()
+    headers: Sequence[str],
+    rows: Sequence[Sequence[object]],
+    *,
+    right: Sequence[int] = (),
+    wrap: Sequence[int] = (),
+    optional: Sequence[int] = (),
+    shown_by: str = "",
 ) -> str:
-    """A table fitted to the terminal (``registry/tables.py``); ``wrap`` lists its free-text columns."""
-    return tables.table(headers, rows, right=right, wrap_columns=wrap)
+    """A table fitted to the terminal (``registry/tables.py``); ``wrap`` lists its free-text columns,
+    ``optional`` those left out (in that order) when wrapping is not enough, ``shown_by`` where they are."""
+    return tables.table(headers, rows, right=right, wrap_columns=wrap, optional=optional, shown_by=shown_by)
 
 
 def when(at: str | None) -> str:
@@ -201,7 +208,12 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         help="delete the verdicts recorded before DATE (2026-11-30 = its start, UTC; or an ISO 8601 time)",
     )
     p.add_argument(
-        "--delete", type=int, action="append", default=[], metavar="ID", help="delete the verdict with this id (repeat)"
+        "--delete",
+        type=int,
+        action="append",
+        default=[],
+        metavar="ID",
+        help="delete the verdict with this id (repeat; an unknown id refuses the whole deletion)",
     )
     p.add_argument(
         "--reason", action=_Once, default="", help="why verdicts are deleted (required with --delete*), audited"
@@ -380,6 +392,11 @@ def cli_versions(args: argparse.Namespace) -> int:
             ],
             right=(0, 2, 3),
             wrap=(5, 7),
+            # On a narrow terminal, first what says least here and `show` says in full: a parity that
+            # passed (publish refuses a failed one), the live row's promotion time, then accuracy
+            # (macro-F1, which the gates judge, stays).
+            optional=((4,) if all(v.parity_passed for v in versions) else ()) + (8, 2),
+            shown_by=f"'textsieve show {args.model} VERSION' shows every field",
         )
     )
     return 0
@@ -704,8 +721,7 @@ def cli_verdicts(args: argparse.Namespace) -> int:
             gone = reg.verdicts.delete(
                 args.model, before=args.delete_before, ids=args.delete, actor=args.actor, reason=args.reason
             )
-            missing = f"; no verdict {', '.join(map(str, gone.missing))} of {args.model!r}" if gone.missing else ""
-            _out(f"deleted {len(gone.deleted)} verdicts of {args.model!r} (audit event {gone.event_id}){missing}")
+            _out(f"deleted {len(gone.deleted)} verdicts of {args.model!r} (audit event {gone.event_id})")
             return 0
         verdicts = reg.verdicts.of(args.model, version=args.version)
         agreement = reg.verdicts.agreement(args.model)

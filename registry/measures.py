@@ -6,6 +6,7 @@ Tests check each against scikit-learn or a worked example.
 from __future__ import annotations
 
 import math
+from typing import Literal
 
 import numpy as np
 from numpy.typing import NDArray
@@ -35,13 +36,18 @@ def nll(logits: NDArray[np.floating], targets: IntArray, temperature: float = 1.
     return float(-lp[np.arange(len(targets)), targets].mean())
 
 
+# The bracket the temperature is searched in: from sharpening every logit 20× to flattening it 20×.
+TEMPERATURE_BOUNDS = (0.05, 20.0)
+
+
 def fit_temperature(logits: NDArray[np.floating], targets: IntArray) -> float:
     """Temperature scaling (Guo et al., 2017, "On Calibration of Modern Neural Networks", §4.2).
 
     NLL is convex in 1/T, so a golden-section search on log T over a wide bracket finds
-    the minimum; the tests compare it with ``scipy.optimize``.
+    the minimum; the tests compare it with ``scipy.optimize``. When the NLL has no minimum
+    inside the bracket the search ends at a bound (:func:`temperature_bound` says which).
     """
-    lo, hi = math.log(0.05), math.log(20.0)
+    lo, hi = math.log(TEMPERATURE_BOUNDS[0]), math.log(TEMPERATURE_BOUNDS[1])
 
     def f(log_t: float) -> float:
         return nll(logits, targets, math.exp(log_t))
@@ -60,6 +66,17 @@ def fit_temperature(logits: NDArray[np.floating], targets: IntArray) -> float:
             d = a + golden * (b - a)
             fd = f(d)
     return math.exp((a + b) / 2)
+
+
+def temperature_bound(temperature: float) -> Literal["lower", "upper"] | None:
+    """'lower' or 'upper' when ``temperature`` is where :func:`fit_temperature`'s search ends at a bound
+    of :data:`TEMPERATURE_BOUNDS` (the golden-section search stops within 1e-9 of it in log T), else None."""
+    lo, hi = TEMPERATURE_BOUNDS
+    if temperature <= lo * (1 + 1e-6):
+        return "lower"
+    if temperature >= hi * (1 - 1e-6):
+        return "upper"
+    return None
 
 
 def expected_calibration_error(probabilities: NDArray[np.floating], targets: IntArray, bins: int = 15) -> float:
@@ -105,6 +122,7 @@ def macro_f1(targets: IntArray, predicted: IntArray, classes: int) -> float:
 
 
 __all__ = [
+    "TEMPERATURE_BOUNDS",
     "accuracy",
     "confusion_matrix",
     "expected_calibration_error",
@@ -113,4 +131,5 @@ __all__ = [
     "macro_f1",
     "nll",
     "softmax",
+    "temperature_bound",
 ]

@@ -55,8 +55,55 @@ def validate_version(version: object) -> int:
     return version
 
 
-def _printable(text: str) -> bool:
-    return not any(unicodedata.category(ch) in ("Cc", "Cs") for ch in text)
+# What a person's name (an actor, a reviewer) may not hold, by Unicode general category. A name is
+# one line shown in tables, the audit trail and the reviewer page, and two names that look the
+# same should be the same name:
+# - Cc control characters (terminal escape sequences) and Cs lone surrogates (bytes that were not UTF-8);
+# - Cf format characters: invisible (U+200B ZERO WIDTH SPACE, U+00AD SOFT HYPHEN) or reordering what
+#   follows on the line (U+202E RIGHT-TO-LEFT OVERRIDE: "Trojan Source", Boucher and Anderson 2021,
+#   CVE-2021-42574), except the two joiners below;
+# - Zl and Zp, U+2028 and U+2029: line breaks;
+# - Co private use: no meaning between two parties, so a reader cannot know what it shows;
+# - Cn unassigned code points and noncharacters (U+FFFE, U+FDD0): not text yet (in the Unicode
+#   version of this Python; unicodedata.unidata_version).
+# This follows PRECIS (RFC 8264, section 4.3, the FreeformClass for nicknames), which disallows
+# controls and default-ignorable code points and leaves unassigned ones out (from memory).
+_NOT_IN_NAMES = frozenset(("Cc", "Cs", "Cf", "Zl", "Zp", "Co", "Cn"))
+# ZERO WIDTH NON-JOINER and ZERO WIDTH JOINER spell words in Persian and in Indic scripts, and join
+# emoji sequences: PRECIS and IDNA (RFC 5892, appendix A) allow them in context. Here: between two
+# characters that are neither spaces nor format characters, never leading, trailing or doubled.
+_JOINERS = frozenset("\u200c\u200d")
+NAME_RULE = (
+    f"1–{MAX_ACTOR} printable characters: no control, format (invisible or bidi), separator, private-use "
+    "or unassigned characters"
+)
+
+
+# Characters the Unicode Character Database gives no name, by category.
+_UNNAMED = {"Cc": "control character", "Cs": "lone surrogate", "Co": "private-use character", "Cn": "unassigned"}
+
+
+def _refused_in_name(text: str) -> str | None:
+    """The first character a name may not hold, or None."""
+    for i, ch in enumerate(text):
+        if unicodedata.category(ch) not in _NOT_IN_NAMES:
+            continue
+        if ch in _JOINERS and 0 < i < len(text) - 1:
+            before, after = text[i - 1], text[i + 1]
+            if not any(c.isspace() or unicodedata.category(c) == "Cf" for c in (before, after)):
+                continue
+        return ch
+    return None
+
+
+def _name_refusal(what: str, name: str) -> InputError:
+    bad = _refused_in_name(name)
+    where = (
+        ""
+        if bad is None
+        else f" (U+{ord(bad):04X} {unicodedata.name(bad, _UNNAMED.get(unicodedata.category(bad), ''))})"
+    )
+    return InputError(f"bad {what} {name[:40]!r}{where}: {NAME_RULE}")
 
 
 def resolve_actor(actor: str | None) -> str:
@@ -67,8 +114,8 @@ def resolve_actor(actor: str | None) -> str:
         except (KeyError, OSError):  # no passwd entry, e.g. an arbitrary uid in a container
             actor = f"uid:{os.getuid()}"
     actor = actor.strip()
-    if not actor or len(actor) > MAX_ACTOR or not _printable(actor):
-        raise InputError(f"bad actor {actor[:40]!r}: 1–{MAX_ACTOR} printable characters")
+    if not actor or len(actor) > MAX_ACTOR or _refused_in_name(actor) is not None:
+        raise _name_refusal("actor", actor)
     return actor
 
 
@@ -77,9 +124,17 @@ def validate_reviewer(reviewer: object) -> str:
     if not isinstance(reviewer, str) or not reviewer.strip():
         raise InputError("a verdict needs the reviewer's name: who judged the prediction")
     reviewer = reviewer.strip()
-    if len(reviewer) > MAX_ACTOR or not _printable(reviewer):
-        raise InputError(f"bad reviewer {reviewer[:40]!r}: 1–{MAX_ACTOR} printable characters")
+    if len(reviewer) > MAX_ACTOR or _refused_in_name(reviewer) is not None:
+        raise _name_refusal("reviewer", reviewer)
     return reviewer
+
+
+# UAX #9's explicit formatting characters (embeddings, overrides, isolates): each reorders the text
+# after it on its line, so an audit reason could show its words in another order than they are
+# stored ("Trojan Source", CVE-2021-42574). A reason is free text in any language, so the other
+# format characters stay: joiners, soft hyphens and the bidi marks (U+200E, U+200F, U+061C), which
+# move nothing.
+_REORDERING = frozenset("\u202a\u202b\u202c\u202d\u202e\u2066\u2067\u2068\u2069")
 
 
 def validate_reason(reason: str, *, required: bool) -> str:
@@ -88,11 +143,19 @@ def validate_reason(reason: str, *, required: bool) -> str:
         raise InputError("a reason is required: say why, e.g. 'macro-F1 +2 points on the March set'")
     if len(reason) > MAX_REASON:
         raise InputError(f"reason is {len(reason)} characters; at most {MAX_REASON} are kept")
-    bad = next((c for c in reason if c not in "\n\t" and unicodedata.category(c) in ("Cc", "Cs")), None)
+    bad = next(
+        (c for c in reason if c in _REORDERING or (c not in "\n\t" and unicodedata.category(c) in ("Cc", "Cs"))),
+        None,
+    )
     if bad is not None:
         at = reason.index(bad) + 1
         if unicodedata.category(bad) == "Cs":  # what Python makes of command-line bytes that are not UTF-8
             raise InputError(f"reason holds bytes that are not UTF-8 (at character {at}); write it as UTF-8 text")
+        if bad in _REORDERING:
+            raise InputError(
+                f"reason holds a bidi control (U+{ord(bad):04X} {unicodedata.name(bad)}, character {at}), which "
+                "reorders the text after it; write plain text (bidi marks U+200E and U+200F are kept)"
+            )
         raise InputError(
             f"reason holds a control character (U+{ord(bad):04X}, character {at}); write plain text: "
             "line breaks and tabs are kept, other control characters (escape sequences) are not"

@@ -15,7 +15,9 @@ here once:
 - **Wrapping.** A table wider than the terminal wraps the columns its verb names as free text, at spaces
   or after a comma, semicolon, slash or bar where it can, within words where it must; numbers and
   states are never split, and times only at their space (date over time) when the free text alone
-  cannot make the table fit. Nothing is cut: the whole text stays in the table.
+  cannot make the table fit. Nothing is cut: the whole text stays in the table. A verb may name columns
+  to leave out (in its order) when even that would split words or overflow; the table then ends with a
+  line naming them and where they are shown.
 - **Where the width comes from.** ``COLUMNS`` when set (``shutil.get_terminal_size`` honours it), else
   the terminal's own width when the output is a terminal. Output that is not a terminal (a pipe, a
   file) with no ``COLUMNS`` is not wrapped: each row stays one line holding its whole text, so
@@ -173,6 +175,8 @@ def table(
     right: Sequence[int] = (),
     wrap_columns: Sequence[int] = (),
     width: Width = "terminal",
+    optional: Sequence[int] = (),
+    shown_by: str = "",
 ) -> str:
     """Columns padded to their widest cell, two spaces apart; ``right`` lists right-aligned columns.
 
@@ -180,10 +184,42 @@ def table(
     see :func:`terminal_width`; None: no limit), they are narrowed, the widest first, and their cells
     wrapped onto more lines of the same row. When that is not enough, columns of times
     (``2026-12-05 01:32:30Z``) fold at their space, the date over the time, and the free text is
-    fitted again to the room that leaves."""
+    fitted again to the room that leaves. When even that is not enough, the ``optional`` columns are
+    left out, in the order given, until the table fits, and a last line names them and where they
+    are shown (``shown_by``): a line wider than the terminal wraps and breaks every row's alignment."""
+    limit = terminal_width() if width == "terminal" else width
+    keep = list(range(len(headers)))
+    text, split = _table(headers, rows, keep, right, wrap_columns, limit)
+    left_out: list[str] = []
+    for i in optional:
+        # A column less reads better than words cut in two ("accoun" over "t,"), and far better than
+        # lines that wrap on the terminal.
+        if limit is None or (not split and max(columns(line) for line in text.splitlines()) <= limit):
+            break
+        keep.remove(i)
+        left_out.append(str(headers[i]))
+        text, split = _table(headers, rows, keep, right, wrap_columns, limit)
+    if not left_out or limit is None:
+        return text
+    note = f"({', '.join(left_out)} left out to fit {limit} columns{'; ' + shown_by if shown_by else ''})"
+    return text + "\n" + "\n".join(wrap(note, limit))
+
+
+def _table(
+    all_headers: Sequence[str],
+    all_rows: Sequence[Sequence[object]],
+    keep: list[int],
+    all_right: Sequence[int],
+    all_wrap: Sequence[int],
+    limit: int | None,
+) -> tuple[str, bool]:
+    """:func:`table` of the columns in ``keep``, and whether it had to split a word to fit."""
+    headers = [all_headers[i] for i in keep]
+    rows = [[row[i] for i in keep] for row in all_rows]
+    right = [keep.index(i) for i in all_right if i in keep]
+    wrap_columns = [keep.index(i) for i in all_wrap if i in keep]
     raw = [[str(h) for h in headers]] + [[NONE if c is None else str(c) for c in row] for row in rows]
     natural = [max(columns(one_line(row[i])) for row in raw) for i in range(len(headers))]
-    limit = terminal_width() if width == "terminal" else width
     header_widths = [columns(one_line(h)) for h in raw[0]]
     words = {i: max(_longest_word(row[i]) for row in raw[1:]) if len(raw) > 1 else 0 for i in wrap_columns}
     widths = _fit(natural, header_widths, wrap_columns, limit, words=words, floors=(MIN_WRAPPED,))
@@ -206,7 +242,8 @@ def table(
                 pad = " " * (w - columns(text))
                 parts.append(pad + text if i in right else text + pad)
             lines.append("  ".join(parts).rstrip())
-    return "\n".join(lines)
+    split = any(widths[i] < natural[i] and widths[i] < words[i] for i in wrap_columns)
+    return "\n".join(lines), split
 
 
 _TIME = re.compile(r"\d{4}-\d\d-\d\d \d\d:\d\d(:\d\d)?Z")

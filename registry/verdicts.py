@@ -31,7 +31,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from textsieve.errors import InputError, KeyReusedError
+from textsieve.errors import InputError, KeyReusedError, NotFoundError
 from textsieve.files import atomic_write_text
 from textsieve.labelled import JSON_SUFFIXES
 from textsieve.registry._db import Tx
@@ -60,10 +60,9 @@ KEY_RULE = f"1 to {MAX_KEY_CHARS} printable ASCII characters (space to ~)"
 
 @dataclass(frozen=True)
 class Deletion:
-    """What a deletion removed: the ids gone, ids asked for that were not there, and the audit event."""
+    """What a deletion removed: the ids gone and the audit event."""
 
     deleted: list[int]
-    missing: list[int]
     event_id: int
 
 
@@ -299,7 +298,11 @@ class Verdicts:
         actor: str | None = None,
         reason: str,
     ) -> Deletion:
-        """Delete the model's verdicts recorded before a time and/or those with the given ids; audited."""
+        """Delete the model's verdicts recorded before a time and/or those with the given ids; audited.
+
+        Every id must name one of the model's verdicts: otherwise a :class:`NotFoundError` names the
+        missing ids and nothing is deleted or recorded (one transaction).
+        """
         model = validate_model_name(model)
         reason = validate_reason(reason, required=True)
         actor = resolve_actor(actor)
@@ -317,6 +320,17 @@ class Verdicts:
             reg._require_model(q, model)
             tx.lock_model(model)
             found = _ids_of(tx, model, wanted)
+            missing = sorted(set(wanted) - set(found))
+            if missing:
+                # All or nothing: a mistyped id deletes nothing and leaves no audit event.
+                shown = ", ".join(map(str, missing[:10])) + (
+                    f" and {len(missing) - 10} more" if len(missing) > 10 else ""
+                )
+                raise NotFoundError(
+                    f"no verdict {shown} on {model!r}; nothing deleted. "
+                    f"'textsieve verdicts {model}' lists the verdicts and their ids",
+                    missing=missing,
+                )
             doomed = set(found)
             if cutoff is not None:
                 doomed |= {
@@ -328,7 +342,6 @@ class Verdicts:
                 tx.run(
                     f"DELETE FROM verdicts WHERE model = ? AND id IN ({', '.join('?' * len(chunk))})", (model, *chunk)
                 )
-            missing = sorted(set(wanted) - set(found))
             event_id = q.add_event(
                 model=model,
                 version=None,
@@ -336,9 +349,9 @@ class Verdicts:
                 actor=actor,
                 at=utc_now(),
                 reason=reason,
-                details={"deleted": len(deleted), "ids": deleted, "before": cutoff, "missing": missing},
+                details={"deleted": len(deleted), "ids": deleted, "before": cutoff},
             )
-        return Deletion(deleted=deleted, missing=missing, event_id=event_id)
+        return Deletion(deleted=deleted, event_id=event_id)
 
 
 def _verdict_id(value: object) -> int:

@@ -13,7 +13,9 @@
     │   └── IntegrityError         a stored blob is missing or its sha256 differs: CLI exit 1, HTTP 503
     ├── UnavailableError           cannot answer now, retry (registry unreachable, worker gone, shutting down):
     │   │                          CLI exit 1, HTTP 503
-    │   └── OverloadedError        this replica is at a bound (queue, bodies, connections): HTTP 503 + Retry-After
+    │   ├── OverloadedError        this replica is at a bound (queue, bodies, connections): HTTP 503 + Retry-After
+    │   └── LoginRefusedError      the registry's database refused the login (user, password): CLI exit 2,
+    │                              HTTP 503 (a replica that cannot log in is not ready)
     ├── DeadlinePassedError        the caller's own deadline passed before inference started: HTTP 504
     └── AuthError                  missing or wrong admin token: HTTP 401/403
 
@@ -101,6 +103,16 @@ class OverloadedError(UnavailableError):
         self.retry_after = retry_after
 
 
+class LoginRefusedError(UnavailableError):
+    """The registry's database refused the login: a setting to fix, not a moment to wait (CLI exit 2).
+
+    An :class:`UnavailableError` still, so a replica that cannot log in answers 503 on readiness and
+    keeps trying, which lets a rotated password reach it without a restart.
+    """
+
+    exit_code = 2
+
+
 class DeadlinePassedError(TextsieveError):
     """The caller's own deadline passed before inference started; nothing was computed."""
 
@@ -140,6 +152,7 @@ __all__ = [
     "IntegrityError",
     "KeyReusedError",
     "LimitError",
+    "LoginRefusedError",
     "NotFoundError",
     "OverloadedError",
     "ParityError",

@@ -24,7 +24,8 @@ Shadow candidates. With ``shadow_rate`` > 0 a model's ``candidate`` version is l
 live one (no batcher: only the shadow task scores it, see service/liveloop/shadow.py) and
 reloaded or dropped when the registry says the candidate changed. A candidate that fails to load
 only stops shadow scoring; serving goes on. Every live and pinned version keeps a drift window
-(registry/drift.py) unless ``drift`` is off.
+(registry/drift.py) unless ``drift`` is off. The window belongs to the loaded version: it starts
+empty at each load (startup, promotion, a rollback to a version served before) and goes with it.
 """
 
 from __future__ import annotations

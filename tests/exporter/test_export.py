@@ -182,6 +182,64 @@ def test_validation_texts_all_told_apart_leave_the_temperature_at_1() -> None:
     assert cal.temperature == pytest.approx(ref.x, rel=1e-3)
 
 
+@pytest.mark.parametrize(
+    ("logits", "targets", "bound", "edge", "card_says", "report_says"),
+    [
+        pytest.param(
+            # Every text's own class has the lower logit: the model is sure and wrong, so flattening every
+            # probability towards 1/2 lowers the NLL all the way up (Guo et al., 2017, NLL in §4.2).
+            [[3.0, 0.0], [0.0, 3.0], [2.5, -1.0], [-1.0, 2.0]],
+            [1, 0, 1, 0],
+            "upper",
+            20.0,
+            "stopped at the upper\nbound of its search, T = 20",
+            "stopped at its upper bound; the model's scores carry little information",
+            id="useless scores: upper bound",
+        ),
+        pytest.param(
+            # Two texts told apart and one tie, which no temperature moves off 1/2: the NLL falls as T shrinks.
+            [[1.0, 0.0], [0.0, 1.0], [0.0, 0.0]],
+            [0, 1, 0],
+            "lower",
+            0.05,
+            "stopped at the lower\nbound of its search, T = 0.05",
+            "stopped at its lower bound; every logit is multiplied by 20",
+            id="ties: lower bound",
+        ),
+    ],
+)
+def test_a_temperature_at_the_search_bound_is_not_called_fitted(
+    tiny_bundles: dict[str, Path],
+    logits: list[list[float]],
+    targets: list[int],
+    bound: str,
+    edge: float,
+    card_says: str,
+    report_says: str,
+) -> None:
+    from scipy.optimize import minimize_scalar
+
+    from textsieve.exporter.export import _print_parity
+    from textsieve.registry.measures import TEMPERATURE_BOUNDS, temperature_bound
+
+    z, y = np.array(logits), np.array(targets)
+    # scipy's bounded minimiser as the reference: it ends at the same bound, so no minimum lies inside.
+    best = minimize_scalar(lambda t: nll(z, y, t), bounds=TEMPERATURE_BOUNDS, method="bounded", options={"xatol": 1e-8})
+    assert best.x == pytest.approx(edge, abs=1e-4)
+    cal = calibrate(z, y)
+    assert cal.temperature == pytest.approx(edge, rel=1e-6) and temperature_bound(cal.temperature) == bound
+    m = open_bundle(tiny_bundles["a"]).manifest
+    card = render_card(m.model_copy(update={"calibration": cal}))
+    assert card_says in card and "Guo et al., 2017" in card
+    assert "fitted on" not in card
+    lines: list[str] = []
+    _print_parity(m.parity, cal, lines.append)
+    assert any(line.lstrip().startswith("temperature") and report_says in line for line in lines), lines
+    # A temperature inside the bracket is a fit, and says nothing of bounds.
+    assert temperature_bound(m.calibration.temperature) is None
+    assert "fitted on" in render_card(m)
+
+
 def test_card_says_when_the_temperature_was_not_fitted(tiny_bundles: dict[str, Path]) -> None:
     m = open_bundle(tiny_bundles["a"]).manifest
     fitted = render_card(m)

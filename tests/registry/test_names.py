@@ -7,7 +7,13 @@ import getpass
 import pytest
 
 from textsieve.errors import InputError
-from textsieve.registry.names import resolve_actor, validate_model_name, validate_reason, validate_version
+from textsieve.registry.names import (
+    resolve_actor,
+    validate_model_name,
+    validate_reason,
+    validate_reviewer,
+    validate_version,
+)
 
 NAME_RULE = "a-z, 0-9"
 
@@ -83,24 +89,77 @@ def test_actor_defaults_to_the_os_user() -> None:
     assert resolve_actor("  alice ") == "alice"
 
 
+NAME_CHARACTERS = (
+    "1–120 printable characters: no control, format (invisible or bidi), separator, private-use "
+    "or unassigned characters"
+)
+
+
 @pytest.mark.parametrize(
     ("argument", "expected_msg"),
     [
         pytest.param("", "bad actor ''", id="empty"),
         pytest.param("   ", "bad actor ''", id="blank"),
-        pytest.param("a\x07b", "bad actor 'a\\x07b'", id="control character"),
+        pytest.param("a\x07b", "bad actor 'a\\x07b' (U+0007 control character)", id="control character"),
         pytest.param("x" * 500, f"bad actor '{'x' * 40}'", id="500 characters, 40 shown"),
     ],
 )
 def test_bad_actors(argument: str, expected_msg: str) -> None:
     with pytest.raises(InputError) as info:
         resolve_actor(argument)
-    assert info.value.message == f"{expected_msg}: 1–120 printable characters"
+    assert info.value.message == f"{expected_msg}: {NAME_CHARACTERS}"
+
+
+# Names of characters and their general categories as the Unicode Character Database gives them
+# (UnicodeData.txt); the Trojan Source case is Boucher and Anderson 2021 (CVE-2021-42574).
+@pytest.mark.parametrize(
+    ("name", "shown"),
+    [
+        pytest.param("ana\u202egnp.exe", "'ana\\u202egnp.exe' (U+202E RIGHT-TO-LEFT OVERRIDE)", id="Cf bidi override"),
+        pytest.param("\u2066ana\u2069", "'\\u2066ana\\u2069' (U+2066 LEFT-TO-RIGHT ISOLATE)", id="Cf bidi isolate"),
+        pytest.param("a\u200bna", "'a\\u200bna' (U+200B ZERO WIDTH SPACE)", id="Cf zero width space"),
+        pytest.param("an\u00ada", "'an\\xada' (U+00AD SOFT HYPHEN)", id="Cf soft hyphen"),
+        pytest.param("ana\ufeff", "'ana\\ufeff' (U+FEFF ZERO WIDTH NO-BREAK SPACE)", id="Cf byte order mark"),
+        pytest.param("ana\u200d", "'ana\\u200d' (U+200D ZERO WIDTH JOINER)", id="Cf joiner at the end"),
+        pytest.param("ana \u200cbo", "'ana \\u200cbo' (U+200C ZERO WIDTH NON-JOINER)", id="Cf joiner after a space"),
+        pytest.param("a\u200d\u200dna", "'a\\u200d\\u200dna' (U+200D ZERO WIDTH JOINER)", id="Cf joiners doubled"),
+        pytest.param("ana\u2028bob", "'ana\\u2028bob' (U+2028 LINE SEPARATOR)", id="Zl"),
+        pytest.param("ana\u2029bob", "'ana\\u2029bob' (U+2029 PARAGRAPH SEPARATOR)", id="Zp"),
+        pytest.param("ana\ue000", "'ana\\ue000' (U+E000 private-use character)", id="Co"),
+        pytest.param("ana\U000e0fff", "'ana\\U000e0fff' (U+E0FFF unassigned)", id="Cn unassigned"),
+        pytest.param("ana\ufffe", "'ana\\ufffe' (U+FFFE unassigned)", id="Cn noncharacter"),
+        pytest.param("an\x85a", "'an\\x85a' (U+0085 control character)", id="Cc C1 next line"),
+    ],
+)
+def test_names_refuse_format_separator_private_and_unassigned_characters(name: str, shown: str) -> None:
+    for what, check in (("actor", resolve_actor), ("reviewer", validate_reviewer)):
+        with pytest.raises(InputError) as info:
+            check(name)
+        assert info.value.message == f"bad {what} {shown}: {NAME_CHARACTERS}"
+
+
+@pytest.mark.parametrize(
+    "name",
+    [
+        pytest.param("Zoë Ødegård", id="Latin letters with marks"),
+        pytest.param("\u0645\u06cc\u200c\u0646\u0627", id="Persian with a zero width non-joiner"),
+        pytest.param("\u0915\u094d\u200d\u0937", id="Devanagari half form with a zero width joiner"),
+        pytest.param("ana \U0001f469\u200d\U0001f4bb", id="emoji joined by a zero width joiner"),
+        pytest.param("李小龍", id="CJK"),
+        pytest.param("ops-bot@ci", id="ASCII punctuation"),
+    ],
+)
+def test_names_in_any_script_are_kept_as_given(name: str) -> None:
+    assert resolve_actor(name) == name
+    assert validate_reviewer(name) == name
 
 
 def test_reasons() -> None:
     assert validate_reason("  because  ", required=True) == "because"
     assert validate_reason("", required=False) == ""
+    # Free text in any language keeps its line breaks, joiners and bidi marks, which reorder nothing.
+    free = "\u05e2\u05d1\u05e8\u05d9\u05ea\u200f macro-F1\n\u0645\u06cc\u200c\u0646\u0627\u2028ok\u00ad"
+    assert validate_reason(free, required=True) == free
 
 
 @pytest.mark.parametrize(
@@ -116,6 +175,13 @@ def test_reasons() -> None:
         pytest.param("ok\rthen", False, "control character (U+000D, character 3)", id="carriage return"),
         pytest.param("ok\udcffthen", False, "reason holds bytes that are not UTF-8 (at character 3)", id="not UTF-8"),
         pytest.param("x" * 5000, False, "reason is 5000 characters; at most 2000 are kept", id="5000 characters"),
+        pytest.param(
+            "ok \u202eevil",
+            False,
+            "reason holds a bidi control (U+202E RIGHT-TO-LEFT OVERRIDE, character 4), which reorders the text",
+            id="bidi override (Trojan Source, CVE-2021-42574)",
+        ),
+        pytest.param("\u2067x\u2069", False, "bidi control (U+2067 RIGHT-TO-LEFT ISOLATE, character 1)", id="isolate"),
     ],
 )
 def test_bad_reasons(argument: str, required: bool, expected_msg: str) -> None:

@@ -137,6 +137,62 @@ def test_a_list_keeps_its_words_whole_when_no_width_would_make_the_table_fit() -
     assert "".join(line[at:].strip() for line in lines[1:]) == labels
 
 
+def test_optional_columns_are_left_out_in_order_only_when_the_table_cannot_fit_whole_words() -> None:
+    headers = ["ID", "STATE", "CHECK", "NOTE", "WHEN"]
+    row = [["7", "registered", "passed", "account,billing", "2026-12-05 01:31:21Z"]]
+    kwargs = {"wrap_columns": (3,), "optional": (2, 4), "shown_by": "'show' has them"}
+    assert "left out" not in table(headers, row, width=None, **kwargs)  # no terminal: nothing left out
+    assert "left out" not in table(headers, row, width=80, **kwargs)  # it fits whole
+    # 2 + 10 + 6 + 8 ("account,") + 10 (the time folded) + 4 gaps × 2 = 44 columns with whole words.
+    lines = table(headers, row, width=43, **kwargs).splitlines()
+    assert lines[0].split() == ["ID", "STATE", "NOTE", "WHEN"]
+    assert " ".join(lines[-2:]) == "(CHECK left out to fit 43 columns; 'show' has them)"
+    assert all(cell_len(ln) <= 43 for ln in lines)
+    lines = table(headers, row, width=30, **kwargs).splitlines()
+    assert lines[0].split() == ["ID", "STATE", "NOTE"] and "account," in lines[1] and "billing" in lines[2]
+    note = " ".join(lines[next(i for i, ln in enumerate(lines) if ln.startswith("(")) :])
+    assert note == "(CHECK, WHEN left out to fit 30 columns; 'show' has them)"
+    assert all(cell_len(ln) <= 30 for ln in lines)
+
+
+@pytest.mark.parametrize("width", [80, 60])
+def test_versions_fits_80_and_60_columns_and_says_where_the_left_out_columns_are(
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
+    width: int,
+) -> None:
+    """Before: at 80 columns `versions` printed lines 87–94 wide (nine columns that could not wrap
+    below their headers), which the terminal wrapped again, every row out of line."""
+    r = ["--registry", str(tmp_path / "reg")]
+    for key in ("a", "b"):
+        assert run(capsys, "publish", str(tiny_bundles[key]), "--model", "m", "--actor", "release-bot", *r)[0] == 0
+    assert run(capsys, "promote", "m", "1", "--to", "live", "--reason", "first", "--force", *r)[0] == 0
+    capsys.readouterr()
+    monkeypatch.setenv("COLUMNS", str(width))
+    code, out, err = run(capsys, "versions", "m", *r)
+    lines = out.splitlines()
+    assert (code, err) == (0, "") and all(cell_len(line) <= width for line in lines), out
+    # What a user picks a version by stays: number, state, the gates' metric, labels, when and by whom.
+    assert {"VERSION", "STATE", "MACRO-F1", "LABELS", "PUBLISHED", "BY"} <= set(lines[0].split())
+    states = [line.split()[1] for line in lines[1:] if line[:7].strip().isdigit()]
+    assert states == ["live", "registered"]
+    labels_at = _starts(lines[0], ["LABELS"])[0]
+    body = "".join(_cut(line, labels_at, None) for line in lines[1:])
+    assert all(label in body for label in ("account", "billing", "praise", "repair"))
+    # ... and what is left out is named, with the command that shows it.
+    left_out = next(line for line in lines if "left out" in line)
+    note = " ".join(lines[lines.index(left_out) :])
+    assert f"left out to fit {width} columns; 'textsieve show m VERSION' shows every field)" in note
+    assert "PARITY" in note and "PARITY" not in lines[0]
+    if width == 80:
+        assert "ACCURACY" in lines[0] and "release-bot" in out  # no word cut in two at 80
+    monkeypatch.delenv("COLUMNS")  # captured output is no terminal: every column, one line a row
+    code, out, _ = run(capsys, "versions", "m", *r)
+    assert "PARITY" in out.splitlines()[0] and "left out" not in out and len(out.splitlines()) == 3
+
+
 @pytest.mark.parametrize(
     ("text", "expected"),
     [

@@ -80,6 +80,7 @@ def test_verdicts_are_stored_shared_and_summarised_with_a_wilson_interval(
         pytest.param({"text": "a\ud800b"}, "lone surrogate", id="surrogate-text"),
         pytest.param({"reviewer": ""}, "reviewer's name", id="no-reviewer"),
         pytest.param({"reviewer": "a\x07b"}, "bad reviewer", id="control-reviewer"),
+        pytest.param({"reviewer": "a\u200bna"}, "bad reviewer 'a\\\\u200bna' \\(U\\+200B", id="zero-width-reviewer"),
     ],
 )
 def test_bad_verdicts_are_refused_and_nothing_is_stored(
@@ -100,6 +101,25 @@ def test_bad_verdicts_are_refused_and_nothing_is_stored(
     assert registry.verdicts.of("helpdesk") == []
 
 
+def test_names_stored_before_the_format_character_rule_still_read_back(
+    registry: Registry, tiny_bundles: dict[str, Path], tmp_path: Path
+) -> None:
+    """Names are refused on input only: a verdict and an audit event written when U+202E and U+200B
+    were still accepted are read, listed and exported as stored."""
+    registry.publish(tiny_bundles["a"], "helpdesk", actor="ci")
+    vid = _record(registry, 1, TEXTS[0], "billing", "billing")
+    reviewer, actor = "ana\u202egnp", "o\u200bps"
+    with registry.backend.write() as tx:
+        tx.run("UPDATE verdicts SET reviewer = ? WHERE id = ?", (reviewer, vid))
+        tx.run("UPDATE events SET actor = ? WHERE model = ? AND kind = 'publish'", (actor, "helpdesk"))
+    assert [v.reviewer for v in registry.verdicts.of("helpdesk")] == [reviewer]
+    assert [e.actor for e in registry.history("helpdesk")] == [actor]
+    assert export_jsonl(registry.verdicts.of("helpdesk"), tmp_path / "out.jsonl") == 1
+    # A later change by someone else is still recorded next to them.
+    registry.verdicts.delete("helpdesk", ids=[vid], actor="dpo", reason="request #7")
+    assert [e.actor for e in registry.history("helpdesk")] == [actor, "dpo"]
+
+
 def test_verdicts_on_unknown_models_or_versions_are_not_found(
     registry: Registry, tiny_bundles: dict[str, Path]
 ) -> None:
@@ -108,6 +128,36 @@ def test_verdicts_on_unknown_models_or_versions_are_not_found(
         _record(registry, 7, TEXTS[0], "billing", "billing")
     with pytest.raises(NotFoundError, match="no model 'other'"):
         registry.verdicts.of("other")
+
+
+def test_a_deletion_naming_an_unknown_id_deletes_nothing_and_records_nothing(
+    registry: Registry, tiny_bundles: dict[str, Path]
+) -> None:
+    _publish(registry, tiny_bundles)
+    registry.publish(tiny_bundles["a"], "other", actor="ci")
+    ids = [_record(registry, 1, t, "billing", "billing") for t in TEXTS[:2]]
+    elsewhere = registry.verdicts.record(
+        "other",
+        1,
+        text=TEXTS[2],
+        predicted_label="billing",
+        predicted_probability=0.5,
+        verdict_label="repair",
+        reviewer="ana",
+    ).id
+    events_before = len(registry.history("helpdesk"))
+    # An id that was never recorded, and one that belongs to another model, with the date too.
+    for asked in ([ids[0], 999_999], [ids[1], elsewhere]):
+        missing = asked[1]
+        with pytest.raises(
+            NotFoundError,
+            match=rf"^no verdict {missing} on 'helpdesk'; nothing deleted\. "
+            r"'textsieve verdicts helpdesk' lists",
+        ):
+            registry.verdicts.delete("helpdesk", ids=asked, before="2999-01-01", actor="dpo", reason="request #41")
+    assert [v.id for v in registry.verdicts.of("helpdesk")] == ids
+    assert [v.id for v in registry.verdicts.of("other")] == [elsewhere]
+    assert len(registry.history("helpdesk")) == events_before
 
 
 def test_deletion_by_date_and_by_id_is_audited_without_the_texts(
@@ -119,9 +169,9 @@ def test_deletion_by_date_and_by_id_is_audited_without_the_texts(
     with registry.backend.write() as tx:
         tx.run("UPDATE verdicts SET at = ? WHERE id IN (?, ?)", ("2025-01-05T10:00:00.000000+00:00", ids[0], ids[1]))
     gone = registry.verdicts.delete("helpdesk", before="2025-06-01", actor="dpo", reason="retention: 12 months")
-    assert gone.deleted == ids[:2] and gone.missing == []
-    gone = registry.verdicts.delete("helpdesk", ids=[ids[3], 999_999], actor="dpo", reason="request #41")
-    assert gone.deleted == [ids[3]] and gone.missing == [999_999]
+    assert gone.deleted == ids[:2]
+    gone = registry.verdicts.delete("helpdesk", ids=[ids[3]], actor="dpo", reason="request #41")
+    assert gone.deleted == [ids[3]]
     assert [v.id for v in registry.verdicts.of("helpdesk")] == [ids[2], ids[4]]
     events = [e for e in registry.history("helpdesk") if e.kind == "verdicts-delete"]
     assert [(e.actor, e.reason, e.details["ids"]) for e in events] == [

@@ -123,9 +123,12 @@ def test_deletion_by_id_and_date_is_audited_and_needs_a_reason(
     r = judged.cli_args()
     code, out, err = run(capsys, "verdicts", "helpdesk", "--delete", "2", *r)
     assert code == 2 and out == "" and len(err.strip().splitlines()) == 1 and "a reason is required" in err
-    code, out, _ = run(capsys, "verdicts", "helpdesk", "--delete", "2", "--delete", "99", "--reason", "request 7", *r)
+    code, out, err = run(capsys, "verdicts", "helpdesk", "--delete", "2", "--delete", "99", "--reason", "request 7", *r)
+    assert (code, out) == (2, "") and len(err.strip().splitlines()) == 1
+    assert "no verdict 99 on 'helpdesk'; nothing deleted. 'textsieve verdicts helpdesk' lists" in err
+    code, out, _ = run(capsys, "verdicts", "helpdesk", "--delete", "2", "--reason", "request 7", *r)
     assert code == 0
-    assert re.fullmatch(r"deleted 1 verdicts of 'helpdesk' \(audit event \d+\); no verdict 99 of 'helpdesk'\n", out)
+    assert re.fullmatch(r"deleted 1 verdicts of 'helpdesk' \(audit event \d+\)\n", out)
     code, out, _ = run(capsys, "verdicts", "helpdesk", "--delete-before", "2999-01-01", "--reason", "retention", *r)
     assert code == 0 and out.startswith("deleted 3 verdicts")
     code, out, _ = run(capsys, "verdicts", "helpdesk", *r)

@@ -1,13 +1,18 @@
 """``GET /v1/models/{name}/drift``, the drift series in /metrics and ``textsieve drift``: the window
 holds what was answered (checked against the replies themselves), PSI against its formula in
-NumPy and Jensen–Shannon against SciPy, and a bundle without a baseline says so."""
+NumPy and Jensen–Shannon against SciPy, a bundle without a baseline says so, and a version loaded
+again (a rollback, a restart) starts with an empty window."""
 
 from __future__ import annotations
 
+import asyncio
 import json
 import shutil
+import time
 from pathlib import Path
+from typing import Any
 
+import httpx
 import numpy as np
 import pytest
 from scipy.spatial.distance import jensenshannon
@@ -149,3 +154,43 @@ def test_the_detail_line_leads_with_the_band_that_matters_not_the_largest_unjudg
     stable = SignalDrift("label", 0.05, 0.02, "stable")
     assert _detail(report(stable, top)).startswith("largest drift: top_probability PSI 0.120 (watch)")
     assert _detail(report(tokens)).startswith("largest PSI: tokens 0.900 over 300 live texts")  # nothing judged
+
+
+async def _window_texts(client: httpx.AsyncClient) -> dict[int, int]:
+    view = (await client.get(f"/v1/models/{MODEL}/drift")).json()
+    return {v["version"]: v["texts"] for v in view["versions"]}
+
+
+async def _await_live(app: Any, version: int) -> None:
+    deadline = time.monotonic() + 20
+    while app.state.models.live[MODEL].version != version:
+        assert time.monotonic() < deadline, f"version {version} never became live"
+        await asyncio.sleep(0.05)
+
+
+async def test_a_reloaded_version_starts_with_an_empty_window(registry_dir: Path) -> None:
+    """The window lives in the replica's memory with the loaded version: a rollback to a version
+    served before, or a restart, loads it afresh and its window counts from 0 (README, Drift)."""
+
+    def registry(call: str, *args: Any, **kwargs: Any) -> Any:
+        with open_registry(registry_dir) as reg:
+            return getattr(reg, call)(*args, **kwargs)
+
+    texts = ["my card was charged twice", "the boiler repair was quick", "cannot log in", "thanks!", "refund"]
+    async with serving(settings_for(registry_dir, inference="threads", shadow_rate=0.0, poll_seconds=0.1)) as (
+        app,
+        client,
+    ):
+        assert (await client.post("/v1/predict", json={"texts": texts})).status_code == 200
+        assert await _window_texts(client) == {1: 5}
+        await asyncio.to_thread(registry, "promote", MODEL, 2, "live", reason="v2", actor="tests", force=True)
+        await _await_live(app, 2)
+        assert (await client.post("/v1/predict", json={"texts": texts[:3]})).status_code == 200
+        assert await _window_texts(client) == {2: 3}
+        await asyncio.to_thread(registry, "rollback", MODEL, reason="back to 1", actor="tests")
+        await _await_live(app, 1)
+        assert await _window_texts(client) == {1: 0}, "version 1's earlier 5 texts are not kept"
+        assert (await client.post("/v1/predict", json={"texts": texts[:2]})).status_code == 200
+        assert await _window_texts(client) == {1: 2}
+    async with serving(settings_for(registry_dir, inference="threads", shadow_rate=0.0)) as (_, client):
+        assert await _window_texts(client) == {1: 0}, "a restart starts every window empty"

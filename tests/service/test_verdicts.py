@@ -135,6 +135,9 @@ async def test_the_two_tokens_open_only_their_own_calls(
         pytest.param({"predicted_probability": 2}, 422, "invalid-input", "predicted_probability", id="probability"),
         pytest.param({"verdict": "billing"}, 422, "invalid-input", "unknown field(s) 'verdict'", id="unknown-field"),
         pytest.param({"reviewer": ""}, 422, "invalid-input", "reviewer", id="no-reviewer"),
+        pytest.param(
+            {"reviewer": "Priya\u202e"}, 422, "invalid-input", "(U+202E RIGHT-TO-LEFT OVERRIDE)", id="bidi-reviewer"
+        ),
         pytest.param({"version": "1"}, 422, "invalid-input", "version", id="string-version"),
     ],
 )
