@@ -59,16 +59,23 @@ def edit_manifest(bundle: Path, change: dict[str, object], *, rehash: bool = Tru
     path.write_text(json.dumps(data, indent=2))
 
 
+def recard(bundle: Path, note: str) -> None:
+    """Another bundle with the same weights: the card (its cautions kept, as publish requires) gains
+    a line, and the manifest records its new sha256."""
+    card = bundle / "card.md"
+    card.write_text(card.read_text(encoding="utf-8") + f"\n{note}\n", encoding="utf-8")
+    edit_manifest(bundle, {})
+
+
 def card_variants(base: Path, root: Path, n: int) -> list[Path]:
     """``n`` distinct bundles from one real bundle: same weights, each with its own model card."""
     out = []
     for i in range(n):
         dst = root / f"variant-{i}"
         shutil.copytree(base, dst)
-        (dst / "card.md").write_text(f"# variant {i}\n\nSame weights, another card.\n", encoding="utf-8")
-        edit_manifest(dst, {})
+        recard(dst, f"Variant {i}: same weights, another card.")
         out.append(dst)
     return out
 
 
-__all__ = ["RegistrySpec", "card_variants", "edit_manifest", "postgres_url"]
+__all__ = ["RegistrySpec", "card_variants", "edit_manifest", "postgres_url", "recard"]

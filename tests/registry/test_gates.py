@@ -12,7 +12,7 @@ import pytest
 import sklearn.metrics
 
 from tests.helpers.jsonl import read_jsonl, write_jsonl
-from tests.helpers.registries import RegistrySpec, edit_manifest
+from tests.helpers.registries import RegistrySpec, recard
 from textsieve.errors import GateRefusedError
 from textsieve.registry import GateSettings, Registry
 from textsieve.registry import gates as gates_module
@@ -202,8 +202,7 @@ def test_gates_are_judged_again_when_live_changes_meanwhile(
 ) -> None:
     c = tmp_path / "c"
     shutil.copytree(tiny_bundles["a"], c)
-    (c / "card.md").write_text("# c\n")
-    edit_manifest(c, {})
+    recard(c, "c")
     with spec.open() as reg, spec.open() as other:
         for bundle in (tiny_bundles["a"], tiny_bundles["b"], c):
             reg.publish(bundle, "m")
@@ -235,8 +234,7 @@ def test_under_constant_contention_the_last_round_is_judged_under_the_lock(
     for i in range(5):
         d = tmp_path / f"v{i}"
         shutil.copytree(tiny_bundles["a"], d)
-        (d / "card.md").write_text(f"# variant {i}\n")
-        edit_manifest(d, {})
+        recard(d, f"variant {i}")
         bundles.append(d)
     with spec.open() as reg, spec.open() as other:
         for bundle in bundles:
