@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import itertools
 import math
+import sys
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -77,10 +78,12 @@ class TokenMemo(dict[str, list[str]]):
 
     def __init__(self, tokenizer: Tokenizer | None = None) -> None:
         super().__init__()
-        self._split = (tokenizer or Tokenizer()).split
+        self._bounds = (tokenizer or Tokenizer()).bounds
 
     def __missing__(self, text: str) -> list[str]:
-        tokens = self[text] = self._split(text)[0]
+        # Tokens only (offsets are for spans), interned: a word the data holds a million times is
+        # then one string shared by a million lists, not a million strings.
+        tokens = self[text] = list(map(sys.intern, self._bounds(text)[0]))
         return tokens
 
 

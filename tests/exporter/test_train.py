@@ -608,3 +608,16 @@ def test_train_function_returns_the_folder(keyword_data: Path, tmp_path: Path) -
     assert train(config) == tmp_path / "r"
     model, vocab, run = load_run(tmp_path / "r")
     assert model.training is False and len(vocab) == run.vocabulary.size
+
+
+def test_tokens_are_the_tokenizers_and_each_word_is_one_string(keyword_data: Path) -> None:
+    """Token lists held a string for every occurrence of a word; now one string per distinct word."""
+    from textsieve.exporter.prepare import TokenMemo
+    from textsieve.registry.tokenizer import Tokenizer
+
+    texts = [json.loads(line)["text"] for line in keyword_data.read_text(encoding="utf-8").splitlines()]
+    memo = TokenMemo()
+    reference = Tokenizer()
+    assert all(memo[t] == reference.split(t)[0] for t in texts)
+    occurrences = [token for t in texts for token in memo[t]]
+    assert len({id(token) for token in occurrences}) == len(set(occurrences)) < len(occurrences)
