@@ -1,4 +1,5 @@
-"""Progress on stderr: a bar while an epoch runs (terminals only), one summary line after it."""
+"""Progress on stderr: a bar while the data is read and tokenized and while an epoch runs (terminals
+only), one summary line after each."""
 
 from __future__ import annotations
 
@@ -16,13 +17,21 @@ def bar_wanted(quiet: bool, stream: IO[str] | None = None) -> bool:
 class Progress:
     """A bar over ``total`` steps, or nothing at all when ``enabled`` is false."""
 
-    def __init__(self, total: int, description: str, *, enabled: bool) -> None:
+    def __init__(self, total: int, description: str, *, enabled: bool, unit: str = "batch") -> None:
         self._bar: Any = None
         if enabled:
             from tqdm import tqdm
 
+            # Bytes read as kB/MB/GB; counts (batches, texts) as they are.
             self._bar = tqdm(
-                total=total, desc=description, file=sys.stderr, leave=False, unit="batch", dynamic_ncols=True
+                total=total,
+                desc=description,
+                file=sys.stderr,
+                leave=False,
+                unit=unit,
+                unit_scale=unit == "B",
+                unit_divisor=1000,
+                dynamic_ncols=True,
             )
 
     def advance(self, steps: int = 1, **postfix: float) -> None:

@@ -44,13 +44,15 @@ from textsieve.errors import (
 )
 from textsieve.registry._db import Backend, Tx
 from textsieve.registry.blobs import OWNER_FILE, BlobStore, materialize
-from textsieve.registry.bundle import Bundle, open_bundle
+from textsieve.registry.bundle import Bundle, check_card, open_bundle
 from textsieve.registry.evalsets import (
     LabelledText,
     NormalisedEvalset,
     load_evalset,
     normalise,
     parse_stored,
+    refused_rows,
+    refused_summary,
     unknown_labels,
 )
 from textsieve.registry.gates import GateSettings, Side, labels_gate, metric_gates, parity_gate, shadow_gate
@@ -347,6 +349,7 @@ class Registry:
         bundle_dir = Path(bundle_dir)
         manifest_bytes = _read_manifest_bytes(bundle_dir)
         bundle = open_bundle(bundle_dir)
+        check_card(bundle_dir)
         if Manifest.model_validate_json(manifest_bytes) != bundle.manifest:
             raise BundleError(f"{bundle_dir}: {MANIFEST} changed while it was being checked; publish again")
         labels = bundle.manifest.labels
@@ -606,6 +609,9 @@ class Registry:
                 )
             digest = registered.sha256
         else:
+            refused = refused_rows(examples)
+            if refused:
+                raise InputError(f"the evaluation texts cannot be scored: {refused_summary(refused, len(examples))}")
             data = normalise(examples).data
             digest = hashlib.sha256(data).hexdigest()
         if other is not None and other.version == version:
@@ -616,7 +622,11 @@ class Registry:
         if stored is not None and not with_runs:
             return stored
         if examples is None:
+            assert registered is not None
             examples = parse_stored(self.blobs.read_bytes(digest))
+            problem = _refused_evalset(model, registered, examples)
+            if problem is not None:
+                raise InputError(f"{problem}, or pass a file: textsieve evaluate {model} {version} --evalset FILE")
         pair = None if other is None else (self._materialize(other), other.version)
         _, json_bytes, html_bytes = make_report(
             self._materialize(target),
@@ -1066,14 +1076,15 @@ class Registry:
     ) -> list[GateResult]:
         manifest = Manifest.model_validate_json(self.blobs.read_bytes(target.files[MANIFEST]))
         gates = [parity_gate(manifest), labels_gate(target.labels, None if live is None else live.labels, _num(live))]
-        examples = None
+        examples = refused = None
         if evalset is not None:
             examples = parse_stored(self.blobs.read_bytes(evalset.sha256))
+            refused = _refused_evalset(model, evalset, examples)
         cand = Side(target.version, target.labels, lambda: self._materialize(target))
         live_side = None if live is None else Side(live.version, live.labels, lambda: self._materialize(live))
         digest = None if evalset is None else evalset.sha256
         gate_settings = GateSettings.of(settings)
-        gates += metric_gates(model, cand, live_side, examples, digest, gate_settings)
+        gates += metric_gates(model, cand, live_side, examples, digest, gate_settings, refused)
         if gate_settings.shadow_agreement_min is not None:
             gates.append(shadow_gate(shadow, target.version, _num(live), gate_settings))
         return gates
@@ -1166,6 +1177,19 @@ def _read_manifest_bytes(bundle_dir: Path) -> bytes:
         raise BundleError(f"{bundle_dir}: no {MANIFEST}; a bundle is the folder 'textsieve export' writes") from None
     except OSError as exc:
         raise BundleError(f"{bundle_dir / MANIFEST}: cannot be read ({exc.strerror})") from exc
+
+
+def _refused_evalset(model: str, info: EvalsetInfo, examples: list[LabelledText]) -> str | None:
+    """Why a stored evaluation set must not be scored (texts the service refuses), or None."""
+    refused = refused_rows(examples)
+    if not refused:
+        return None
+    return (
+        f"the evaluation set of {model!r} ({info.source!r}, sha256 {info.sha256[:12]}…, added {info.added_at[:10]}) "
+        f"cannot be scored: {refused_summary(refused, len(examples))}; register a cleaned set with "
+        f"'textsieve evalset add {model} FILE' (the stored rows, in order, are the JSONL blob {info.sha256} "
+        "in the blob folder)"
+    )
 
 
 def _check_evalset_labels(

@@ -10,7 +10,8 @@ from pydantic import ValidationError
 
 from textsieve.errors import BundleError
 from textsieve.files import sha256_file
-from textsieve.registry.manifest import INPUTS, MANIFEST, MODEL_FILE, OUTPUTS, Manifest
+from textsieve.registry.cautions import REQUIRED, cautions_problem
+from textsieve.registry.manifest import CARD_FILE, INPUTS, MANIFEST, MODEL_FILE, OUTPUTS, Manifest
 
 _ONNX_DTYPES = {1: "float32", 7: "int64"}
 
@@ -87,6 +88,22 @@ def check_parity(manifest: Manifest) -> None:
         )
 
 
+def check_card(bundle: Path) -> None:
+    """The model card keeps its cautions (registry/cautions.py). Checked on publish only: a
+    version already stored still loads and serves whatever its card says."""
+    path = Path(bundle) / CARD_FILE
+    try:
+        card = path.read_bytes().decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise BundleError(f"{path}: not UTF-8 text (byte {exc.start}); a model card is Markdown in UTF-8") from exc
+    problem = cautions_problem(card)
+    if problem is not None:
+        raise BundleError(
+            f"{path} {problem}: {REQUIRED}; export the bundle again ('textsieve export RUN --out BUNDLE' writes "
+            f"that section) or add it to {CARD_FILE} and record the card's new sha256 in {MANIFEST}"
+        )
+
+
 @dataclass(frozen=True)
 class Bundle:
     """A bundle folder whose files have been checked."""
@@ -115,4 +132,13 @@ def manifest_json(manifest: Manifest) -> str:
     return json.dumps(manifest.model_dump(mode="json"), indent=2, ensure_ascii=False) + "\n"
 
 
-__all__ = ["Bundle", "check_files", "check_graph", "check_parity", "manifest_json", "open_bundle", "read_manifest"]
+__all__ = [
+    "Bundle",
+    "check_card",
+    "check_files",
+    "check_graph",
+    "check_parity",
+    "manifest_json",
+    "open_bundle",
+    "read_manifest",
+]

@@ -72,6 +72,29 @@ def parse_stored(data: bytes) -> list[LabelledText]:
         raise IntegrityError(f"stored evaluation set cannot be read ({exc})") from exc
 
 
+def refused_rows(examples: list[LabelledText]) -> list[tuple[int, str]]:
+    """(row, why) of each text the service would refuse (textsieve/texts.py), rows counted from 1.
+
+    Sets registered before labelled files obeyed those rules may hold such texts (a NUL, only
+    zero-width characters); and a blob written by hand may hold a lone surrogate."""
+    from textsieve.texts import text_refusal
+
+    out = []
+    for row, e in enumerate(examples, 1):
+        why = text_refusal(e.text)
+        if why is not None:
+            out.append((row, why))
+    return out
+
+
+def refused_summary(refused: list[tuple[int, str]], texts: int, *, shown: int = 3) -> str:
+    """'2 of its 60 texts are ones the service refuses (row 4: text contains …; row 8: text has …)'."""
+    rows = "; ".join(f"row {row}: the text {why.split(';')[0]}" for row, why in refused[:shown])
+    more = f"; and {len(refused) - shown} more" if len(refused) > shown else ""
+    verb = "is one" if len(refused) == 1 else "are ones"
+    return f"{len(refused)} of its {texts} texts {verb} the service refuses ({rows}{more})"
+
+
 def unknown_labels(evalset_labels: dict[str, int] | list[str], model_labels: list[str]) -> list[str]:
     return sorted(set(evalset_labels) - set(model_labels))
 
@@ -82,6 +105,8 @@ __all__ = [
     "load_evalset",
     "normalise",
     "parse_stored",
+    "refused_rows",
+    "refused_summary",
     "repeats_warning",
     "unknown_labels",
 ]

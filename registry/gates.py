@@ -24,6 +24,11 @@ pass with detail "no live version" (the candidate's own scores are still recorde
 evaluation set exists). With a live version but no evaluation set the metric gates fail and
 say how to add one: "not worse" cannot be shown without data.
 
+A stored set with texts the service refuses (textsieve/texts.py; sets registered before labelled
+files obeyed those rules may hold a NUL or only zero-width characters) is not scored at all: with
+a live version the metric gates fail naming the rows and saying to register a cleaned set. Skipping
+those rows instead would judge a set other than the one whose sha256 the gates record.
+
 Too small a set. On one text, or on texts of one label, "not worse than live" means nothing, yet
 the metric gates passed it ("on 1 texts"). So with a live version to compare against they refuse
 an evaluation set of fewer than ``evalset_min_texts`` texts (default 50) or with fewer than
@@ -270,7 +275,11 @@ def metric_gates(
     evalset: list[LabelledText] | None,
     evalset_sha256: str | None,
     settings: GateSettings,
+    refused: str | None = None,
 ) -> list[GateResult]:
+    """The metric gates on ``evalset``; ``refused`` says why the stored set must not be scored at
+    all (it holds texts the service refuses: scoring them, or scoring the rest, would judge a set
+    other than the one recorded), and then no version is scored."""
     names = (["mcnemar"] if settings.mcnemar else []) + (["macro_f1", "ece"] if settings.tolerances else [])
     base: dict[str, object] = {
         "evalset_sha256": evalset_sha256,
@@ -292,6 +301,11 @@ def metric_gates(
             f"no evaluation set registered for {model!r}, so 'no worse than live' cannot be checked; add one: {how}"
         )
         return [GateResult(name=n, passed=False, detail=detail, figures=base) for n in names]
+    if refused is not None:
+        if live is None:
+            detail = f"no live version (the candidate was not scored: {refused})"
+            return [GateResult(name=n, passed=True, detail=detail, figures=base) for n in names]
+        return [GateResult(name=n, passed=False, detail=refused, figures=base) for n in names]
     counts = Counter(e.label for e in evalset)
     # A set with labels a side does not know is refused by _score_side, naming them: say that first.
     if live is not None and not unknown_labels(counts, candidate.labels) and not unknown_labels(counts, live.labels):

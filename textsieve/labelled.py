@@ -7,16 +7,17 @@ reads evaluation sets with :func:`load_examples`. A row's text obeys the rules t
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import io
 import json
 import stat
 import unicodedata
 from collections import Counter
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, BinaryIO
 
 from textsieve.errors import InputError
 from textsieve.texts import text_refusal
@@ -36,25 +37,38 @@ class Example:
     label: str
 
 
-def load_examples(path: Path, text_field: str = "text", label_field: str = "label") -> list[Example]:
-    """Every example of a labelled file; any problem is an :class:`InputError` naming file and line."""
+def load_examples(
+    path: Path, text_field: str = "text", label_field: str = "label", *, progress: Callable[[int], None] | None = None
+) -> list[Example]:
+    """Every example of a labelled file; any problem is an :class:`InputError` naming file and line.
+
+    JSON Lines are read a line at a time, so only the examples stay in memory, not the file's bytes,
+    its text and its list of lines besides (a 50 MB file held all three at once). ``progress`` is
+    called with the number of bytes read since its last call."""
     path = Path(path)
     suffix = path.suffix.lower()
     if suffix not in JSON_SUFFIXES and suffix not in CSV_SUFFIXES:
         raise InputError(f"{path}: unsupported file type {suffix or '(no extension)'!r}; {_ALLOWED}")
-    text = _read_utf8(path)
-    if not text.strip():
-        raise InputError(f"{path}: the file is empty; it needs labelled rows ({_ALLOWED})")
     fields = _Fields(path, text_field, label_field)
-    if suffix in CSV_SUFFIXES:
-        examples = list(_csv_rows(path, text, CSV_SUFFIXES[suffix], fields))
-    elif suffix == ".json" and text.lstrip().startswith("["):
-        examples = list(_json_array_rows(path, text, fields))
+    if suffix in JSON_SUFFIXES and not (suffix == ".json" and _json_array(path)):
+        examples = list(_jsonl_rows(path, fields, progress))
     else:
-        examples = list(_jsonl_rows(path, text, fields))
+        text = _read_utf8(path)
+        if not text.strip():
+            raise _empty(path)
+        if suffix in CSV_SUFFIXES:
+            examples = list(_csv_rows(path, text, CSV_SUFFIXES[suffix], fields))
+        else:
+            examples = list(_json_array_rows(path, text, fields))
+        if progress is not None:
+            progress(path.stat().st_size)
     if not examples:
         raise InputError(f"{path}: no labelled rows found; {_ALLOWED}")
     return examples
+
+
+def _empty(path: Path) -> InputError:
+    return InputError(f"{path}: the file is empty; it needs labelled rows ({_ALLOWED})")
 
 
 def check_labels(
@@ -134,29 +148,52 @@ def _code_points(text: str) -> str:
     return "".join(c if " " <= c <= "~" else f"<U+{ord(c):04X}>" for c in text)
 
 
-def _read_utf8(path: Path) -> str:
+@contextlib.contextmanager
+def _opened(path: Path) -> Iterator[BinaryIO]:
+    """The file opened for reading, with the one-line refusals of what cannot be read."""
     try:
         mode = path.stat().st_mode
         if stat.S_ISCHR(mode) or stat.S_ISBLK(mode) or stat.S_ISSOCK(mode):
             # /dev/zero under a .jsonl name read until memory ran out (a MemoryError traceback).
             raise InputError(f"{path}: is a device or socket, not a file; expected a labelled data file ({_ALLOWED})")
-        data = path.read_bytes()
+        file = path.open("rb")
     except FileNotFoundError:
         raise InputError(f"{path}: no such file; expected a labelled data file ({_ALLOWED})") from None
     except IsADirectoryError:
         raise InputError(f"{path}: is a folder; expected a labelled data file ({_ALLOWED})") from None
     except OSError as exc:
         raise InputError(f"{path}: cannot be read ({exc.strerror})") from exc
+    with file:
+        try:
+            yield file
+        except OSError as exc:
+            raise InputError(f"{path}: cannot be read ({exc.strerror})") from exc
+
+
+def _not_utf8(path: Path, line: int, offset: int, byte: int) -> InputError:
+    return InputError(
+        f"{path}: line {line}: byte offset {offset} is not valid UTF-8 (byte 0x{byte:02x}); save the file as UTF-8"
+    )
+
+
+def _read_utf8(path: Path) -> str:
+    with _opened(path) as file:
+        data = file.read()
     try:
         text = data.decode("utf-8")
     except UnicodeDecodeError as exc:
-        line = data.count(b"\n", 0, exc.start) + 1
-        raise InputError(
-            f"{path}: line {line}: byte offset {exc.start} is not valid UTF-8 "
-            f"(byte 0x{data[exc.start]:02x}); save the file as UTF-8"
-        ) from None
+        raise _not_utf8(path, data.count(b"\n", 0, exc.start) + 1, exc.start, data[exc.start]) from None
     # Spreadsheet programs often start UTF-8 files with a byte-order mark.
     return text[1:] if text.startswith(_BOM) else text
+
+
+def _json_array(path: Path) -> bool:
+    """Whether a .json file holds one JSON array (its first character past a BOM and whitespace is '[')."""
+    with _opened(path) as file:
+        head = file.read(4096).removeprefix(_BOM.encode("utf-8")).lstrip()
+        while not head and (chunk := file.read(1 << 16)):
+            head = chunk.lstrip()
+    return head.startswith(b"[")
 
 
 class _Fields:
@@ -263,11 +300,40 @@ def json_kind(value: object) -> str:
     return f"a value of type {type(value).__name__}"  # a Parquet cell: bytes, a date, a decimal
 
 
-def _jsonl_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example]:
-    # split("\n"), not splitlines(): U+2028 and friends may sit unescaped inside JSON strings.
-    for number, line in enumerate(text.split("\n"), start=1):
-        if not line.strip():
-            continue
+def _jsonl_lines(path: Path, progress: Callable[[int], None] | None) -> Iterator[tuple[int, str]]:
+    """(line number, text) of each line, decoded one at a time; an empty file is refused."""
+    offset = unreported = 0
+    blank = True
+    with _opened(path) as file:
+        # Lines end at b"\n" only, as split("\n") on the text would: U+2028 and friends may sit
+        # unescaped inside JSON strings, and no UTF-8 sequence holds the byte 0x0a.
+        for number, raw in enumerate(file, start=1):
+            try:
+                line = raw.decode("utf-8")
+            except UnicodeDecodeError as exc:
+                raise _not_utf8(path, number, offset + exc.start, raw[exc.start]) from None
+            line = line[:-1] if line.endswith("\n") else line
+            if number == 1:
+                line = line.removeprefix(_BOM)  # spreadsheet programs often start UTF-8 files with one
+            offset += len(raw)
+            unreported += len(raw)
+            if progress is not None and unreported >= _PROGRESS_BYTES:
+                progress(unreported)
+                unreported = 0
+            if line.strip():
+                blank = False
+                yield number, line
+    if progress is not None and unreported:
+        progress(unreported)
+    if blank:
+        raise _empty(path)
+
+
+_PROGRESS_BYTES = 1 << 20
+
+
+def _jsonl_rows(path: Path, fields: _Fields, progress: Callable[[int], None] | None = None) -> Iterator[Example]:
+    for number, line in _jsonl_lines(path, progress):
         try:
             record = json.loads(line)
         except json.JSONDecodeError as exc:

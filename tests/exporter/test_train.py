@@ -3,8 +3,11 @@ static vectors, length statistics and a one-line exit-2 error for each bad input
 
 from __future__ import annotations
 
+import io
 import json
+import re
 import shutil
+import sys
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -608,3 +611,43 @@ def test_train_function_returns_the_folder(keyword_data: Path, tmp_path: Path) -
     assert train(config) == tmp_path / "r"
     model, vocab, run = load_run(tmp_path / "r")
     assert model.training is False and len(vocab) == run.vocabulary.size
+
+
+class _Terminal(io.StringIO):
+    def isatty(self) -> bool:
+        return True
+
+
+@pytest.mark.parametrize("terminal", [True, False], ids=["terminal", "pipe"])
+def test_reading_and_tokenizing_show_a_bar_on_a_terminal_and_one_line_after(
+    terminal: bool, keyword_data: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A 20 MB file took 2.7 s to read and tokenize with nothing on screen, 200 MB would be ~30 s
+    (found by probing): a bar each on a terminal, as an epoch has, then a line saying how long each
+    took; a pipe gets neither, so a refusal of the data stays the only line (test_bad_input_exits_2_with_one_line)."""
+    from textsieve.exporter.prepare import prepare
+
+    stream = _Terminal() if terminal else io.StringIO()
+    monkeypatch.setattr(sys, "stderr", stream)
+    prepare(TrainConfig(data=keyword_data, out=tmp_path / "r"))
+    err = stream.getvalue()
+    size_k = f"{keyword_data.stat().st_size / 1000:.1f}k"
+    assert (f"reading train.jsonl:   0%|          | 0.00/{size_k} [" in err) is terminal, err
+    assert ("tokenizing:   0%|          | 0/240 [" in err) is terminal, err
+    summary = re.search(r"(?:^|\r)data: 240 rows read in \d+\.\ds, tokenized in \d+\.\ds$", err, re.M)
+    assert bool(summary) is terminal, err
+    assert terminal or err == ""
+
+
+def test_tokens_are_the_tokenizers_and_each_word_is_one_string(keyword_data: Path) -> None:
+    """Token lists held a string for every occurrence of a word; now one string per distinct word."""
+    from textsieve.exporter.prepare import TokenMemo
+    from textsieve.registry.tokenizer import Tokenizer
+
+    texts = [json.loads(line)["text"] for line in keyword_data.read_text(encoding="utf-8").splitlines()]
+    memo = TokenMemo()
+    memo.fill(texts, len(texts), bar=False)
+    reference = Tokenizer()
+    assert all(memo[t] == reference.split(t)[0] for t in texts)
+    occurrences = [token for t in texts for token in memo[t]]
+    assert len({id(token) for token in occurrences}) == len(set(occurrences)) < len(occurrences)

@@ -59,16 +59,42 @@ def edit_manifest(bundle: Path, change: dict[str, object], *, rehash: bool = Tru
     path.write_text(json.dumps(data, indent=2))
 
 
+def store_evalset_unchecked(reg: Registry, model: str, rows: list[dict[str, str]], source: str) -> str:
+    """Store ``rows`` as the model's evaluation set the way releases before the text rules
+    (commit 58cc344) did: the JSONL blob and the ``evalsets`` row, no text checked. Written with
+    ASCII escapes, as a hand-made blob may be, so a lone surrogate survives. Returns the sha256."""
+    from collections import Counter
+
+    from textsieve.registry.api import utc_now
+    from textsieve.registry.queries import Queries
+
+    data = "".join(json.dumps({"label": r["label"], "text": r["text"]}, sort_keys=True) + "\n" for r in rows)
+    digest = reg.blobs.put_bytes(data.encode("ascii"))
+    labels = dict(sorted(Counter(r["label"] for r in rows).items()))
+    with reg.backend.write() as tx:
+        Queries(tx).add_evalset(
+            model=model, sha256=digest, texts=len(rows), labels=labels, source=source, at=utc_now(), by="older release"
+        )
+    return digest
+
+
+def recard(bundle: Path, note: str) -> None:
+    """Another bundle with the same weights: the card (its cautions kept, as publish requires) gains
+    a line, and the manifest records its new sha256."""
+    card = bundle / "card.md"
+    card.write_text(card.read_text(encoding="utf-8") + f"\n{note}\n", encoding="utf-8")
+    edit_manifest(bundle, {})
+
+
 def card_variants(base: Path, root: Path, n: int) -> list[Path]:
     """``n`` distinct bundles from one real bundle: same weights, each with its own model card."""
     out = []
     for i in range(n):
         dst = root / f"variant-{i}"
         shutil.copytree(base, dst)
-        (dst / "card.md").write_text(f"# variant {i}\n\nSame weights, another card.\n", encoding="utf-8")
-        edit_manifest(dst, {})
+        recard(dst, f"Variant {i}: same weights, another card.")
         out.append(dst)
     return out
 
 
-__all__ = ["RegistrySpec", "card_variants", "edit_manifest", "postgres_url"]
+__all__ = ["RegistrySpec", "card_variants", "edit_manifest", "postgres_url", "recard", "store_evalset_unchecked"]

@@ -19,7 +19,7 @@ import pytest
 from onnx import TensorProto, helper
 
 from tests.helpers.jsonl import read_jsonl, write_jsonl
-from tests.helpers.registries import RegistrySpec, edit_manifest
+from tests.helpers.registries import RegistrySpec, edit_manifest, recard
 from textsieve.errors import BundleError, InputError, IntegrityError, NotFoundError, StateError
 from textsieve.registry import Registry, open_registry
 from textsieve.registry.blobs import OWNER_FILE
@@ -150,7 +150,35 @@ BAD_BUNDLES = [
         id="NaN accuracy",  # it read as 'manifest.json changed while it was being checked' (NaN != NaN)
     ),
     pytest.param(lambda b: edit_manifest(b, {"metrics.macro_f1": 5.0}), "metrics.macro_f1", id="macro-F1 above 1"),
+    # A card edited and the manifest re-hashed published whatever it said (found by probing).
+    pytest.param(
+        lambda b: _recard(b, lambda card: card.split("## Cautions")[0]),
+        "card.md has no cautions section",
+        id="card without its cautions",
+    ),
+    pytest.param(
+        lambda b: _recard(b, lambda card: card.replace("## Cautions", "<!--\n## Cautions") + "-->\n"),
+        "card.md has no cautions section",
+        id="cautions commented out",
+    ),
+    pytest.param(
+        lambda b: _recard(b, lambda card: card.split("## Cautions")[0] + "## Cautions\n\nBe careful.\n"),
+        "do not say that predictions are aids for human review, that they can carry bias",
+        id="cautions heading without substance",
+    ),
+    pytest.param(
+        lambda b: _recard(b, lambda card: card.replace("biases", "quirks")),
+        "('Cautions') do not say that they can carry bias from the training data: the card must say",
+        id="cautions without the bias point",
+    ),
 ]
+
+
+def _recard(bundle: Path, change: Callable[[str], str]) -> None:
+    """Edit the bundle's card and record its new sha256, as anyone holding the folder can."""
+    card = bundle / "card.md"
+    card.write_text(change(card.read_text(encoding="utf-8")), encoding="utf-8")
+    edit_manifest(bundle, {})
 
 
 @pytest.mark.parametrize(("breaker", "expected_msg"), BAD_BUNDLES)
@@ -168,6 +196,25 @@ def test_a_bundle_failing_any_check_is_refused_and_nothing_is_stored(
         registry.publish(bundle, "spam")
     assert expected_msg in info.value.message
     assert_nothing_stored(registry, spec)
+
+
+REWORDED_CAUTIONS = """\
+Limits and cautions
+-------------------
+
+Treat every label as a suggestion a human reviewer checks. Whatever bias the training texts
+hold, the model may repeat. Monitor its error rate per month. The team lead stays accountable
+for what is done with a text.
+"""
+
+
+def test_a_card_whose_cautions_are_reworded_is_published(
+    registry: Registry, tiny_bundles: dict[str, Path], tmp_path: Path
+) -> None:
+    """The check reads the section's points, not the exporter's sentences: a team may say them its own way."""
+    bundle = copy_bundle(tiny_bundles["a"], tmp_path / "reworded")
+    _recard(bundle, lambda card: card.split("## Cautions")[0] + REWORDED_CAUTIONS)
+    assert registry.publish(bundle, "spam").version == 1
 
 
 def test_publish_refuses_bad_names_and_paths(
@@ -228,8 +275,7 @@ def test_lifecycle_one_live_one_candidate_promote_retires_and_rollback_walks_bac
     registry.publish(a, "m")
     registry.publish(b, "m")
     c = copy_bundle(a, tmp_path / "c")
-    (c / "card.md").write_text("# another card, so another bundle\n")
-    edit_manifest(c, {})
+    recard(c, "Another card, so another bundle.")
     registry.publish(c, "m")
 
     first = registry.promote("m", 1, "live", reason="first")  # no live: comparison gates pass

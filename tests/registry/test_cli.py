@@ -12,7 +12,8 @@ from pathlib import Path
 import pytest
 
 from tests.helpers.environment import child_env
-from tests.helpers.registries import RegistrySpec
+from tests.helpers.jsonl import read_jsonl
+from tests.helpers.registries import RegistrySpec, edit_manifest, store_evalset_unchecked
 from textsieve.cli import main
 from textsieve.registry.cli import table
 
@@ -227,6 +228,47 @@ def test_an_empty_location_flag_is_refused_not_taken_for_this_folder(
     code, out, err = run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *flags)
     assert (code, out) == (2, "") and len(err.splitlines()) == 1 and expected_msg in err, err
     assert list(tmp_path.iterdir()) == [], "nothing written here"
+
+
+def test_publish_refuses_a_card_without_cautions_in_one_line_saying_how_to_fix_it(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """A card whose cautions were cut and the manifest re-hashed published as version 1 (found by probing)."""
+    bundle = tmp_path / "bundle"
+    shutil.copytree(tiny_bundles["a"], bundle)
+    card = bundle / "card.md"
+    card.write_text(card.read_text(encoding="utf-8").split("## Cautions")[0], encoding="utf-8")
+    edit_manifest(bundle, {})
+    r = ["--registry", str(tmp_path / "reg")]
+    code, out, err = run(capsys, "publish", str(bundle), "--model", "m", *r)
+    assert (code, out) == (2, "") and len(err.splitlines()) == 1, err
+    assert f"{card} has no cautions section: the card must say, under a heading such as '## Cautions'," in err
+    assert "export the bundle again ('textsieve export RUN --out BUNDLE'" in err
+    assert run(capsys, "models", *r)[1].startswith("no models yet")
+
+
+def test_evaluate_refuses_a_stored_evalset_with_texts_the_service_refuses_in_one_line(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    """A set stored before the text rules (58cc344) with a lone surrogate made `evaluate` a
+    UnicodeEncodeError traceback, and one with a NUL was scored as stored (found by probing)."""
+    from textsieve.registry import open_registry
+
+    reg_dir = tmp_path / "reg"
+    r = ["--registry", str(reg_dir)]
+    run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)
+    rows = read_jsonl(tiny_data / "test.jsonl")[:20]
+    rows[1]["text"] += "\ud800"
+    rows[4]["text"] = "a\x00b"
+    with open_registry(reg_dir) as reg:
+        store_evalset_unchecked(reg, "m", rows, "old.jsonl")
+    code, out, err = run(capsys, "evaluate", "m", "1", "--out", str(tmp_path / "report"), *r)
+    assert (code, out) == (2, "") and len(err.splitlines()) == 1, err
+    assert "the evaluation set of 'm' ('old.jsonl', sha256 " in err
+    assert "cannot be scored: 2 of its 20 texts are ones the service refuses (row 2: the text contains a lone " in err
+    assert "row 5: the text contains a NUL character (U+0000) at character 1)" in err
+    assert err.rstrip().endswith("in the blob folder), or pass a file: textsieve evaluate m 1 --evalset FILE")
+    assert not (tmp_path / "report").exists()
 
 
 def test_a_device_given_as_a_labelled_file_is_refused_before_it_is_read(

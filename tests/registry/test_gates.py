@@ -12,7 +12,7 @@ import pytest
 import sklearn.metrics
 
 from tests.helpers.jsonl import read_jsonl, write_jsonl
-from tests.helpers.registries import RegistrySpec, edit_manifest
+from tests.helpers.registries import RegistrySpec, recard, store_evalset_unchecked
 from textsieve.errors import GateRefusedError
 from textsieve.registry import GateSettings, Registry
 from textsieve.registry import gates as gates_module
@@ -163,6 +163,19 @@ def test_no_live_version_passes_with_that_detail_and_no_evalset_with_live_fails_
     assert "textsieve evalset add m FILE" in blind[0].detail
 
 
+def test_a_refused_evalset_scores_no_version_and_fails_only_against_live() -> None:
+    side = Side(1, _labels(), lambda: pytest.fail("a refused set must not be scored"))  # type: ignore[arg-type,return-value]
+    refused = "the evaluation set of 'm' (…) cannot be scored: 1 of its 2 texts is one the service refuses (…)"
+    examples = [LabelledText("a\x00b", "l0"), LabelledText("fine", "l1")]
+    alone = metric_gates("m", side, None, examples, "0" * 64, GateSettings(), refused)
+    assert [(g.passed, g.detail) for g in alone] == [
+        (True, f"no live version (the candidate was not scored: {refused})")
+    ] * 2
+    judged = metric_gates("m", side, Side(0, _labels(), side.load), examples, "0" * 64, GateSettings(), refused)
+    assert [(g.name, g.passed, g.detail) for g in judged] == [("macro_f1", False, refused), ("ece", False, refused)]
+    assert "candidate" not in judged[0].figures
+
+
 def test_labels_gate() -> None:
     assert labels_gate(["a", "b"], None, None).detail == "no live version"
     same = labels_gate(["b", "a"], ["a", "b"], 3)
@@ -202,8 +215,7 @@ def test_gates_are_judged_again_when_live_changes_meanwhile(
 ) -> None:
     c = tmp_path / "c"
     shutil.copytree(tiny_bundles["a"], c)
-    (c / "card.md").write_text("# c\n")
-    edit_manifest(c, {})
+    recard(c, "c")
     with spec.open() as reg, spec.open() as other:
         for bundle in (tiny_bundles["a"], tiny_bundles["b"], c):
             reg.publish(bundle, "m")
@@ -235,8 +247,7 @@ def test_under_constant_contention_the_last_round_is_judged_under_the_lock(
     for i in range(5):
         d = tmp_path / f"v{i}"
         shutil.copytree(tiny_bundles["a"], d)
-        (d / "card.md").write_text(f"# variant {i}\n")
-        edit_manifest(d, {})
+        recard(d, f"variant {i}")
         bundles.append(d)
     with spec.open() as reg, spec.open() as other:
         for bundle in bundles:
@@ -518,3 +529,40 @@ def test_grading_a_large_set_runs_the_graph_on_bounded_chunks_with_the_same_scor
     assert graded.scores.accuracy == pytest.approx(sklearn.metrics.accuracy_score(truth, predicted))
     assert graded.scores.macro_f1 == pytest.approx(sklearn.metrics.f1_score(truth, predicted, average="macro"))
     assert graded.correct.tolist() == [p == t for p, t in zip(predicted, truth, strict=True)]
+
+
+def test_a_stored_evalset_with_texts_the_service_refuses_fails_the_metric_gates_naming_its_rows(
+    registry: Registry, tiny_bundles: dict[str, Path], tiny_data: Path, tmp_path: Path
+) -> None:
+    """A set registered before labelled files obeyed the service's text rules (58cc344) was scored as
+    stored: the NUL and zero-width rows counted (the latter as the model's prior) and the gates passed;
+    a lone surrogate made `evaluate` a traceback (found by probing)."""
+    registry.publish(tiny_bundles["a"], "m")
+    registry.publish(tiny_bundles["b"], "m")
+    registry.promote("m", 1, "live", reason="baseline")
+    rows = read_jsonl(tiny_data / "test.jsonl")[:60]
+    rows[3]["text"] = "refund\x00 please"
+    rows[7]["text"] = "\u200b\u200b"
+    rows[11]["text"] += "\ud800"
+    digest = store_evalset_unchecked(registry, "m", rows, "old-set.jsonl")
+    with pytest.raises(GateRefusedError) as info:
+        registry.promote("m", 2, "live", reason="seed 2")
+    gates = {g["name"]: g for g in info.value.context["gates"]}
+    detail = gates["macro_f1"]["detail"]
+    assert detail.startswith(f"the evaluation set of 'm' ('old-set.jsonl', sha256 {digest[:12]}…, added ")
+    assert (
+        "cannot be scored: 3 of its 60 texts are ones the service refuses (row 4: the text contains a NUL character "
+        "(U+0000) at character 6; row 8: the text has only whitespace and invisible characters (such as U+200B), no "
+        "words; row 12: the text contains a lone surrogate (U+D800) at character "
+    ) in detail
+    assert detail.endswith(
+        f"register a cleaned set with 'textsieve evalset add m FILE' (the stored rows, in order, "
+        f"are the JSONL blob {digest} in the blob folder)"
+    )
+    assert gates["ece"]["detail"] == detail and "candidate" not in gates["macro_f1"]["figures"]
+    assert registry.live("m").version == 1  # type: ignore[union-attr]
+    # The advice works: a cleaned set is judged (whatever it says of seed 2, it says it on scores).
+    clean = write_jsonl(tmp_path / "clean.jsonl", [r for i, r in enumerate(rows) if i not in (3, 7, 11)])
+    registry.add_evalset("m", clean)
+    judged = {g.name: g for g in registry.check("m", 2)}
+    assert "on 57 texts" in judged["macro_f1"].detail and "candidate" in judged["macro_f1"].figures
