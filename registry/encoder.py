@@ -94,10 +94,10 @@ class Encoder:
         its layout (the gaps and lengths :func:`offsets` and :func:`span_bounds` read; the
         offsets None) or, where there is no such layout, the offsets themselves (layout None).
 
-        A span needs two offsets of a text, and a text with spans gets three spans at most by
-        default: summing a few slices of the layout for those (C-level sums of small ints) costs
-        far less than every token's offsets as Python ints (bench/README.md, "What spans cost in
-        a worker")."""
+        A span needs two offsets of its text, and a text gets a few spans (1.4 on average on the
+        benchmark's texts with 3 asked for): summing slices of the layout for those (C-level sums
+        of small ints) costs far less than every token's offsets as Python ints (bench/README.md,
+        "What spans cost in a worker")."""
         flat = self._flat(text)
         if flat is None:
             tokens, starts, ends = self.tokenizer.bounds(text)

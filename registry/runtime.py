@@ -51,7 +51,7 @@ class Encoded:
     tokens: int  # before truncation
     unknown: int  # unknown tokens among those kept
     _encoder: Encoder | None = None  # finds the offsets when they are read
-    _layout: Layout | None = None  # or these, the tokens' ids, gaps and lengths (Encoder.layout)
+    _layout: Layout | None = None  # or these, the tokens' gaps and lengths (Encoder.layout)
 
     @property
     def truncated(self) -> bool:
@@ -67,7 +67,7 @@ class Encoded:
 
     @property
     def layout(self) -> Layout | None:
-        """The tokens' (id, gap, length) triples its offsets are still to be found from
+        """The tokens' gaps and lengths its offsets are still to be found from
         (:meth:`Encoder.layout`), or None when they were found (or will be by encoding again)."""
         return self._layout if self._starts is None else None
 

@@ -169,7 +169,7 @@ def _public(
     into: list[dict[str, Any]] = []
     # Spans are in row order, so a row's text and label are looked up once for all its spans. A
     # span's two offsets alone are found, not every token's of its text: from the tokens' layout
-    # (registry/encoder.py, span_bounds, inlined: two calls a span cost as much as the sums), or
+    # (registry/encoder.py, span_bounds, inlined: two calls a span cost a third of the sums), or
     # where the text has none (Encoded.layout), from its offsets.
     for r, s, e, w in zip(c.row.tolist(), c.start.tolist(), c.end.tolist(), c.weight.tolist(), strict=True):
         if r != last:
