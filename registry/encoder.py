@@ -38,6 +38,10 @@ _GAP = -1
 
 Split = Callable[[str], list[str]]  # a capturing pattern's split: gap, token, gap, …, gap
 Entry = tuple[int, ...]
+# A text's tokens' gaps before them and lengths, flat (gap, length, gap, length, …), none of them
+# a gap without a token: what its offsets are found from when read (:func:`offsets`,
+# :func:`span_bounds`).
+Layout = list[int]
 
 
 class Encoder:
@@ -80,23 +84,30 @@ class Encoder:
         """Every token's id, start and end (no truncation)."""
         flat = self._flat(text)
         if flat is not None:
-            ids = flat[0::3]
-            del flat[0::3]  # leaves gap, token, gap, token, …
-            # Every chunk's first gap counts a space before it; the first chunk has none.
-            edges = list(accumulate(flat, initial=-1))
-            starts, ends = edges[1::2], edges[2::2]
-            if _GAP in ids:  # few per text, at chunk ends: deleted one by one at C speed
-                k = ids.index(_GAP)
-                while True:
-                    del ids[k], starts[k], ends[k]
-                    try:
-                        k = ids.index(_GAP, k)
-                    except ValueError:
-                        break
-            return ids, starts, ends
+            return _eager(flat)
         # Too many new chunks, or a chunk too long to cache: the whole text at once.
         tokens, starts, ends = self.tokenizer.bounds(text)
         return self.vocab.encode(tokens), starts, ends
+
+    def layout(self, text: str) -> tuple[list[int], Layout | None, list[int] | None, list[int] | None]:
+        """:meth:`__call__` with the offsets left to be found when read: every token's id and either
+        its layout (the gaps and lengths :func:`offsets` and :func:`span_bounds` read; the
+        offsets None) or, where there is no such layout, the offsets themselves (layout None).
+
+        A span needs two offsets of its text, and a text gets a few spans (1.4 on average on the
+        benchmark's texts with 3 asked for): summing slices of the layout for those (C-level sums
+        of small ints) costs far less than every token's offsets as Python ints (bench/README.md,
+        "What spans cost in a worker")."""
+        flat = self._flat(text)
+        if flat is None:
+            tokens, starts, ends = self.tokenizer.bounds(text)
+            return self.vocab.encode(tokens), None, starts, ends
+        ids = flat[0::3]
+        if _GAP in ids:  # gaps with no token shift the indices: the offsets now (few texts)
+            ids, starts, ends = _eager(flat)
+            return ids, None, starts, ends
+        del flat[0::3]  # leaves gap, token, gap, token, …
+        return ids, flat, None, None
 
     def _learn(
         self,
@@ -141,4 +152,40 @@ class Encoder:
         return tuple(entry)
 
 
-__all__ = ["CAPACITY", "LEARN_PER_TEXT", "MAX_CHUNK_CHARS", "Encoder"]
+def _eager(flat: list[int]) -> tuple[list[int], list[int], list[int]]:
+    """Ids, starts and ends from a text's (id, gap, length) triples (which it takes apart)."""
+    ids = flat[0::3]
+    del flat[0::3]  # leaves gap, token, gap, token, …
+    # Every chunk's first gap counts a space before it; the first chunk has none.
+    edges = list(accumulate(flat, initial=-1))
+    starts, ends = edges[1::2], edges[2::2]
+    if _GAP in ids:  # few per text, at chunk ends: deleted one by one at C speed
+        k = ids.index(_GAP)
+        while True:
+            del ids[k], starts[k], ends[k]
+            try:
+                k = ids.index(_GAP, k)
+            except ValueError:
+                break
+    return ids, starts, ends
+
+
+def offsets(layout: Layout) -> tuple[list[int], list[int]]:
+    """Every token's start and end from :meth:`Encoder.layout`'s gaps and lengths."""
+    # Every chunk's first gap counts a space before it; the first chunk has none.
+    edges = list(accumulate(layout, initial=-1))
+    return edges[1::2], edges[2::2]
+
+
+def span_bounds(layout: Layout, first: int, end: int) -> tuple[int, int]:
+    """The characters tokens ``first`` … ``end − 1`` cover: ``offsets(layout)``'s
+    ``starts[first]`` and ``ends[end − 1]``, as two sums of the gaps and lengths before them (C
+    sums of small ints, no list of every token's offsets).
+
+    Token i's gap before it and length are ``layout[2i]`` and ``layout[2i + 1]``; the text's first
+    gap counts a space that is not there, hence the −1, as in :func:`offsets`."""
+    start = sum(layout[: 2 * first + 1]) - 1
+    return start, start + sum(layout[2 * first + 1 : 2 * end])
+
+
+__all__ = ["CAPACITY", "LEARN_PER_TEXT", "MAX_CHUNK_CHARS", "Encoder", "Layout", "offsets", "span_bounds"]

@@ -24,7 +24,8 @@ import numpy as np
 from numpy.typing import NDArray
 
 from textsieve.registry.bundle import Bundle, open_bundle
-from textsieve.registry.encoder import Encoder
+from textsieve.registry.encoder import Encoder, Layout, span_bounds
+from textsieve.registry.encoder import offsets as layout_offsets
 from textsieve.registry.measures import softmax
 from textsieve.registry.tokenizer import Tokenizer, Vocabulary
 
@@ -39,8 +40,9 @@ LOGITS_CHUNK = 4096
 @dataclass(slots=True)
 class Encoded:
     """One text, ready for the graph. Its tokens' character offsets (``starts``, ``ends``) are
-    found when first read if the text was encoded without them (``Predictor.encode(text,
-    offsets=False)``): only spans read them."""
+    found when first read: from the tokens' layout kept by ``Predictor.encode(text)`` (and a
+    span's two offsets alone by :meth:`bounds`), or by encoding again if the text was encoded
+    without them (``offsets=False``): only spans read them."""
 
     text: str
     ids: list[int]
@@ -49,6 +51,7 @@ class Encoded:
     tokens: int  # before truncation
     unknown: int  # unknown tokens among those kept
     _encoder: Encoder | None = None  # finds the offsets when they are read
+    _layout: Layout | None = None  # or these, the tokens' gaps and lengths (Encoder.layout)
 
     @property
     def truncated(self) -> bool:
@@ -62,8 +65,27 @@ class Encoded:
     def ends(self) -> list[int]:
         return self._offsets()[1]
 
+    @property
+    def layout(self) -> Layout | None:
+        """The tokens' gaps and lengths its offsets are still to be found from
+        (:meth:`Encoder.layout`), or None when they were found (or will be by encoding again)."""
+        return self._layout if self._starts is None else None
+
+    def bounds(self, first: int, end: int) -> tuple[int, int]:
+        """``(starts[first], ends[end - 1])``: the characters of tokens ``first`` … ``end − 1``,
+        without finding every token's offsets when they were left in the layout."""
+        if self._layout is not None and self._starts is None:
+            return span_bounds(self._layout, first, end)
+        starts, ends = self._offsets()
+        return starts[first], ends[end - 1]
+
     def _offsets(self) -> tuple[list[int], list[int]]:
         if self._starts is None or self._ends is None:
+            if self._layout is not None:
+                starts, ends = layout_offsets(self._layout)
+                kept = len(self.ids)
+                self._starts, self._ends = starts[:kept], ends[:kept]
+                return self._starts, self._ends
             if self._encoder is None:
                 raise ValueError("this Encoded was made without offsets and cannot find them")
             _, starts, ends = self._encoder(self.text)
@@ -187,8 +209,9 @@ class Predictor:
         offsets to be found if and when they are read (a text that gets no spans never needs them)."""
         starts: list[int] | None
         ends: list[int] | None
-        if offsets:
-            ids, starts, ends = self.encoder(text)
+        layout: Layout | None = None
+        if offsets:  # found now, or from the layout when read
+            ids, layout, starts, ends = self.encoder.layout(text)
         else:
             ids, starts, ends = self.encoder.ids(text), None, None
         n = len(ids)
@@ -197,7 +220,9 @@ class Predictor:
             ids = ids[:cut]
             if starts is not None and ends is not None:
                 starts, ends = starts[:cut], ends[:cut]
-        return Encoded(text, ids, starts, ends, n, ids.count(self.vocab.unk_id), None if offsets else self.encoder)
+        return Encoded(
+            text, ids, starts, ends, n, ids.count(self.vocab.unk_id), None if offsets else self.encoder, layout
+        )
 
     # -- the graph ------------------------------------------------------------------------
     def run_arrays(self, token_ids: NDArray[np.int64], lengths: NDArray[np.int64]) -> list[NDArray]:  # type: ignore[type-arg]

@@ -22,6 +22,7 @@ from typing import Any, TypeVar
 
 import numpy as np
 
+from textsieve.registry.encoder import Layout
 from textsieve.registry.runtime import SPAN_FLOOR, Encoded, Outputs, Predictor, Span
 
 T = TypeVar("T")
@@ -162,16 +163,24 @@ def _public(
     labels = p.labels
     best_list = best.tolist()
     last = -1
-    starts: list[int] = []
-    ends: list[int] = []
+    layout: Layout | None = None
+    enc = None
     text = name = ""
     into: list[dict[str, Any]] = []
-    # Spans are in row order, so a row's offsets and label are looked up once for all its spans.
+    # Spans are in row order, so a row's text and label are looked up once for all its spans. A
+    # span's two offsets alone are found, not every token's of its text: from the tokens' layout
+    # (registry/encoder.py, span_bounds, inlined: two calls a span cost a third of the sums), or
+    # where the text has none (Encoded.layout), from its offsets.
     for r, s, e, w in zip(c.row.tolist(), c.start.tolist(), c.end.tolist(), c.weight.tolist(), strict=True):
         if r != last:
             enc = encoded[r]
-            starts, ends, text, name, into, last = enc.starts, enc.ends, enc.text, labels[best_list[r]], found[r], r
-        cs, ce = starts[s], ends[e - 1]
+            layout, text, name, into, last = enc.layout, enc.text, labels[best_list[r]], found[r], r
+        if layout is not None:
+            cs = sum(layout[: 2 * s + 1]) - 1
+            ce = cs + sum(layout[2 * s + 1 : 2 * e])
+        else:
+            assert enc is not None
+            cs, ce = enc.bounds(s, e)
         into.append({"start": cs, "end": ce, "text": text[cs:ce], "label": name, "weight": w, "width": e - s})
     return found
 

@@ -15,7 +15,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from tests.registry.test_tokenizer import TRICKY
-from textsieve.registry.encoder import LEARN_PER_TEXT, MAX_CHUNK_CHARS, Encoder
+from textsieve.registry.encoder import LEARN_PER_TEXT, MAX_CHUNK_CHARS, Encoder, offsets, span_bounds
 from textsieve.registry.tokenizer import PAD, UNK, Tokenizer, TokenizerSpec, Vocabulary
 
 CASEFOLD = Tokenizer()
@@ -56,6 +56,52 @@ def test_ids_and_offsets_equal_the_reference_cold_and_warm(tok: Tokenizer, capac
             reference = _reference(tok, vocab, text)
             assert encoder(text) == reference, text
             assert ids_only.ids(text) == reference[0], text
+
+
+def _check_layout(encoder: Encoder, reference: tuple[list[int], list[int], list[int]], text: str) -> None:
+    """``Encoder.layout`` gives the reference's ids, and its offsets (all, or a span's two) when read."""
+    ids, layout, starts, ends = encoder.layout(text)
+    assert ids == reference[0], text
+    if layout is None:  # a gap without a token, or the whole text through bounds: found now
+        assert (starts, ends) == reference[1:], text
+        return
+    assert starts is None and ends is None
+    assert offsets(layout) == reference[1:], text
+    for first in range(len(ids)):
+        for end in range(first + 1, len(ids) + 1):
+            assert span_bounds(layout, first, end) == (reference[1][first], reference[2][end - 1]), (text, first, end)
+
+
+@pytest.mark.parametrize("tok", [CASEFOLD, KEEP], ids=["casefold", "case kept"])
+@settings(max_examples=300, deadline=None)
+@given(texts=st.lists(_texts(), min_size=1, max_size=6))
+def test_the_layout_gives_the_reference_offsets_and_span_bounds(tok: Tokenizer, texts: list[str]) -> None:
+    vocab = _vocab()
+    encoder = Encoder(tok, vocab)
+    for _ in range(2):  # cold, then cached
+        for text in texts:
+            _check_layout(encoder, _reference(tok, vocab, text), text)
+
+
+@pytest.mark.parametrize(
+    ("text", "kept"),
+    [
+        pytest.param("Hi team, the app.", True, id="ASCII: layout kept"),
+        pytest.param("İstanbul ﬁ e\u0301 ok DON’T", True, id="tokens normalised one by one: layout kept"),
+        pytest.param("team 東京 ok", True, id="ideographs: layout kept"),
+        pytest.param("a\U0001f44d\U0001f3fd b \u05e9\u05dc\u05d5\u05dd, ok", True, id="astral and RTL: layout kept"),
+        pytest.param("team\n ok", False, id="a chunk ending in a newline: offsets now"),
+        pytest.param("Hi  team", False, id="two spaces: offsets now"),
+        pytest.param("", False, id="empty: one gap without a token"),
+    ],
+)
+def test_the_layout_is_kept_where_it_can_be_and_always_exact(text: str, kept: bool) -> None:
+    vocab = _vocab()
+    encoder = Encoder(CASEFOLD, vocab)
+    _check_layout(encoder, _reference(CASEFOLD, vocab, text), text)  # cold: up to 4 chunks learnt
+    _check_layout(encoder, _reference(CASEFOLD, vocab, text), text)
+    encoder.layout(text)  # a text of 5 new chunks: cached by now
+    assert (encoder.layout(text)[1] is not None) == kept
 
 
 @pytest.mark.parametrize(
@@ -108,6 +154,14 @@ def test_offsets_left_out_are_found_when_read_and_equal_the_eager_ones(tiny_bund
     for text in ("Hi team, the app.", "team\n ok  東京", long, "ok"):
         eager, lazy = p.encode(text), p.encode(text, offsets=False)
         assert lazy._starts is None and lazy._ends is None  # nothing computed yet
+        # A span's two offsets, from the layout (texts without a gap lacking a token), from the
+        # offsets found at encoding, or by encoding again: all equal to the reference tokenizer's.
+        tokens, spans = p.tokenizer.split_slow(text)
+        kept = len(eager.ids)
+        for first in range(kept):
+            for end in range(first + 1, min(first + 6, kept + 1)):
+                want = (spans[first][0], spans[end - 1][1])
+                assert eager.bounds(first, end) == want and lazy.bounds(first, end) == want, (text, first, end)
         assert (lazy.ids, lazy.tokens, lazy.unknown, lazy.truncated) == (
             eager.ids,
             eager.tokens,
