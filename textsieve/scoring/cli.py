@@ -6,6 +6,7 @@ from __future__ import annotations
 import argparse
 import contextlib
 import math
+import os
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -126,7 +127,18 @@ def _stopped_by_sigterm() -> Iterator[None]:
         signal.signal(signal.SIGTERM, previous)
 
 
+def one_blas_thread() -> None:
+    """Ask NumPy's OpenBLAS for no threads of its own, in this process and every process it starts,
+    unless the caller chose a number. Loading it starts a thread per core that spins ~40 ms of CPU
+    (2 cores, 2026-12-05), in this process and again in the fork server, where scoring is otherwise
+    starting up on both cores; nothing here multiplies matrices with it (the graph runs in
+    onnxruntime, one single-thread session per worker). Called before NumPy is imported: the
+    library reads the variable once, when it loads."""
+    os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+
 def cli_score(args: argparse.Namespace) -> int:
+    one_blas_thread()
     with _stopped_by_sigterm():
         return _score(args)
 
