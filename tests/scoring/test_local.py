@@ -628,3 +628,40 @@ def test_the_scoring_process_starts_no_blas_threads(scoring_registry: Path, tmp_
     # The run loaded NumPy (its results are arrays) and is left with its main thread alone.
     assert done.stdout.splitlines()[-1].split() == ["0", "True", "1"], (control.stdout, done.stdout)
     assert (tmp_path / "out.jsonl").read_text(encoding="utf-8").count("\n") == 2
+
+
+_FROZEN_AFTER = (
+    "import gc, sys\n"
+    "from textsieve.cli import main\n"
+    "code = main(sys.argv[1:])\n"
+    "print(code, gc.get_freeze_count() > 0)\n"
+)
+_FROZEN_IN_A_WORKER = (
+    "import gc\n"
+    "from textsieve.forking import fork_server\n"
+    "from textsieve.scoring.cli import PRELOAD\n"
+    "if __name__ == '__main__':\n"
+    "    with fork_server(PRELOAD).Pool(1) as pool:\n"
+    "        print(pool.apply(gc.get_freeze_count) > 0)\n"
+)
+
+
+def test_what_lives_until_the_end_is_left_out_of_the_cycle_collectors_scans(
+    scoring_registry: Path, tmp_path: Path
+) -> None:
+    """Python's exit runs full collections over every object alive; the scoring process freezes
+    them once its run is done (gc.freeze), and the fork server what it imported for its workers,
+    so neither process walks them all again as it ends (bench/README.md, "Scoring a file")."""
+    env = child_env() | {"PYTHONPATH": str(ROOT)}
+    write_jsonl(tmp_path / "in.jsonl", [{"text": "the chain is broken"}])
+    argv = ["score", "in.jsonl", "--out", "out.jsonl", "--model", MODEL, "--registry", str(scoring_registry)]
+    done = subprocess.run(
+        [sys.executable, "-c", _FROZEN_AFTER, *argv], capture_output=True, text=True, timeout=120, cwd=tmp_path, env=env
+    )
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.splitlines()[-1].split() == ["0", "True"], done.stdout
+    worker = subprocess.run(
+        [sys.executable, "-c", _FROZEN_IN_A_WORKER], capture_output=True, text=True, timeout=120, cwd=tmp_path, env=env
+    )
+    assert worker.returncode == 0, worker.stderr
+    assert worker.stdout.split() == ["True"], worker.stdout

@@ -140,7 +140,14 @@ def one_blas_thread() -> None:
 def cli_score(args: argparse.Namespace) -> int:
     one_blas_thread()
     with _stopped_by_sigterm():
-        return _score(args)
+        code = _score(args)
+    # The process ends next. Python's exit runs full collections while it clears the modules, each
+    # scanning every object the imports made (pydantic's schemas, NumPy, the registry): 40-50 ms of a
+    # one-row run (bench/README.md, "Scoring a file"). Frozen, they are left to the exit itself.
+    import gc
+
+    gc.freeze()
+    return code
 
 
 def _score(args: argparse.Namespace) -> int:
