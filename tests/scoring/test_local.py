@@ -632,9 +632,16 @@ def test_the_scoring_process_starts_no_blas_threads(scoring_registry: Path, tmp_
 
 _FROZEN_AFTER = (
     "import gc, sys\n"
+    "import textsieve.scoring.local as local\n"
     "from textsieve.cli import main\n"
+    "seen = []\n"
+    "score_file = local.score_file\n"
+    "def watched(*args, **kwargs):\n"
+    "    seen.append(gc.get_freeze_count())\n"
+    "    return score_file(*args, **kwargs)\n"
+    "local.score_file = watched\n"
     "code = main(sys.argv[1:])\n"
-    "print(code, gc.get_freeze_count() > 0)\n"
+    "print(code, seen[0] > 0, gc.get_freeze_count() > seen[0])\n"
 )
 _FROZEN_IN_A_WORKER = (
     "import gc\n"
@@ -649,9 +656,10 @@ _FROZEN_IN_A_WORKER = (
 def test_what_lives_until_the_end_is_left_out_of_the_cycle_collectors_scans(
     scoring_registry: Path, tmp_path: Path
 ) -> None:
-    """Python's exit runs full collections over every object alive; the scoring process freezes
-    them once its run is done (gc.freeze), and the fork server what it imported for its workers,
-    so neither process walks them all again as it ends (bench/README.md, "Scoring a file")."""
+    """A full collection scans every object alive, and Python's exit runs several: the scoring
+    process freezes what its imports made before it reads the first row, and what the run made once
+    it is done (gc.freeze); the fork server freezes what it imported for its workers. Neither
+    process walks them all again during the run or as it ends (bench/README.md, "Scoring a file")."""
     env = child_env() | {"PYTHONPATH": str(ROOT)}
     write_jsonl(tmp_path / "in.jsonl", [{"text": "the chain is broken"}])
     argv = ["score", "in.jsonl", "--out", "out.jsonl", "--model", MODEL, "--registry", str(scoring_registry)]
@@ -659,7 +667,7 @@ def test_what_lives_until_the_end_is_left_out_of_the_cycle_collectors_scans(
         [sys.executable, "-c", _FROZEN_AFTER, *argv], capture_output=True, text=True, timeout=120, cwd=tmp_path, env=env
     )
     assert done.returncode == 0, done.stderr
-    assert done.stdout.splitlines()[-1].split() == ["0", "True"], done.stdout
+    assert done.stdout.splitlines()[-1].split() == ["0", "True", "True"], done.stdout
     worker = subprocess.run(
         [sys.executable, "-c", _FROZEN_IN_A_WORKER], capture_output=True, text=True, timeout=120, cwd=tmp_path, env=env
     )

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import gc
 import math
 import os
 from collections.abc import Iterator
@@ -145,11 +146,8 @@ def cli_score(args: argparse.Namespace) -> int:
     one_blas_thread()
     with _stopped_by_sigterm():
         code = _score(args)
-    # The process ends next. Python's exit runs full collections while it clears the modules, each
-    # scanning every object the imports made (pydantic's schemas, NumPy, the registry): 40-50 ms of a
-    # one-row run (bench/README.md, "Scoring a file"). Frozen, they are left to the exit itself.
-    import gc
-
+    # And what the run made since (the pool, the reader, the resolved version): the process ends
+    # next, and Python's exit runs full collections while it clears the modules.
     gc.freeze()
     return code
 
@@ -180,6 +178,12 @@ def _score(args: argparse.Namespace) -> int:
     )
     where = registry_location(args.registry, args.blobs)
     with open_registry(where.registry, blobs=where.blobs, create=False) as reg:
+        # What the imports made (NumPy, pydantic's schemas, the registry: most of this process's
+        # objects) lives until the process ends: frozen, it is out of the cycle collector's scans.
+        # The full collections the rows in flight set off each walked it all (4 in a 100,000-row run,
+        # 63-79 ms of this process's CPU), and so did Python's exit (40-50 ms of a one-row run's
+        # wall time); bench/README.md, "Scoring a file".
+        gc.freeze()
         if args.cluster:
             from textsieve.scoring.cluster import score_on_cluster
 
