@@ -77,30 +77,3 @@ def test_the_workers_end_when_the_scoring_process_is_killed(tiny_bundles: dict[s
         for pipe in (proc.stdin, proc.stdout):
             if pipe is not None:
                 pipe.close()
-
-
-def test_the_fork_server_has_imported_what_a_worker_runs_again_as_its_main_module() -> None:
-    """multiprocessing prepares every worker it starts by running the parent's main module again
-    (Python docs, multiprocessing: "Safe importing of main module"); for ``textsieve score`` that is
-    textsieve.cli, or the console script that imports it. Each worker imported every verb's module
-    itself until the scoring fork server preloaded them."""
-    code = (
-        "import sys\n"
-        "import importlib\n"
-        "from textsieve.scoring.cli import PRELOAD\n"
-        "for name in PRELOAD:\n"
-        "    importlib.import_module(name)\n"
-        "preloaded = set(sys.modules)\n"
-        "import runpy\n"
-        "runpy.run_module('textsieve.cli', run_name='__mp_main__')\n"
-        "print(sorted(m for m in set(sys.modules) - preloaded if m.startswith('textsieve')))\n"
-    )
-    done = subprocess.run(
-        [sys.executable, "-c", code],
-        capture_output=True,
-        text=True,
-        timeout=60,
-        env=child_env() | {"PYTHONPATH": str(ROOT)},
-    )
-    assert done.returncode == 0, done.stderr
-    assert done.stdout.strip() == "[]", done.stdout

@@ -102,11 +102,7 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
 
 
 # What a scoring worker imports (textsieve/scoring/pool.py), imported once by the fork server.
-# textsieve.cli too: multiprocessing runs the command's main module again in every worker it starts
-# (`python -m textsieve.cli`, or the `textsieve` script that imports it), which imported every
-# verb's module in each worker, 3-7 ms apiece, while scoring waited for it (bench/README.md).
 PRELOAD = (
-    "textsieve.cli",
     "textsieve.scoring.pool",
     "textsieve.registry.runtime",
     "textsieve.registry.bundle",
