@@ -18,7 +18,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from textsieve.scoring import formats
+from textsieve.scoring import formats, rows
 from textsieve.scoring.rows import Unreadable
 
 LINES = [
@@ -250,6 +250,37 @@ def test_a_row_whose_values_do_not_line_up_with_the_header_is_an_error_row_not_a
     }
     with pytest.raises(formats.InputError, match="row 1: line 2 has 3 values"):
         split(rows, "text", strict=True, first_row=0)
+
+
+# Texts that start with what split()'s shortcut looks at: ASCII letters, controls and whitespace
+# (str.isspace's ASCII set includes \x1c-\x1f), non-ASCII spaces and format characters (U+00A0,
+# U+200B, U+2028, U+FEFF), a NUL, and anything else hypothesis draws.
+_EDGE = st.sampled_from(["a", " ", "\t", "\x1c", "\x1f", "\x00", "\x7f", "\u00a0", "\u200b", "\u2028", "\ufeff", "é"])
+_TEXTS = st.one_of(st.lists(_EDGE, max_size=4).map("".join), st.text(max_size=6))
+_VALUES = st.one_of(_TEXTS, st.none(), st.integers(), st.floats(allow_nan=True), st.lists(st.integers(), max_size=2))
+
+
+@given(
+    st.lists(
+        st.one_of(
+            st.builds(lambda v: {"text": v}, _VALUES),
+            st.builds(lambda v: {"id": 1, "body": v}, _VALUES),
+            st.builds(lambda v: rows.Misshapen({"text": v}, "line 4 has 3 values"), _TEXTS),
+            st.builds(rows.Unreadable, st.just("line 3 is not JSON")),
+            st.just([1, 2]),
+        ),
+        max_size=30,
+    )
+)
+@settings(max_examples=300, deadline=None)
+def test_split_takes_exactly_the_rows_text_problem_passes(chunk: list[object]) -> None:
+    """split() takes most rows by a shortcut on the text's first character; every row must get the
+    verdict text_problem gives it alone (the rule the error column and --strict report)."""
+    part = rows.split(chunk, "text", strict=False, first_row=0)
+    verdicts = [rows.text_problem(row, "text") for row in chunk]
+    assert part.scored_rows == [i for i, v in enumerate(verdicts) if v is None]
+    assert part.texts == [chunk[i]["text"] for i in part.scored_rows]  # type: ignore[index]
+    assert part.problems == {i: v for i, v in enumerate(verdicts) if v is not None}
 
 
 @pytest.mark.parametrize(

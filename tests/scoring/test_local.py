@@ -593,3 +593,83 @@ def test_a_jsonl_field_first_seen_after_the_first_chunk_is_refused_or_kept_never
     assert [r["ticket"] for r in read_jsonl(out)] == [
         r.get("ticket") for r in map(json.loads, src.read_text().split("\n")[:-1])
     ]
+
+
+# -- start-up and end: what every run pays, whatever its size ------------------------------------------
+_THREADS_AFTER = (
+    "import os, sys\n"
+    "from textsieve.cli import main\n"
+    "code = main(sys.argv[1:])\n"
+    "print(code, 'numpy' in sys.modules, len(os.listdir('/proc/self/task')))\n"
+)
+
+
+def test_the_scoring_process_starts_no_blas_threads(scoring_registry: Path, tmp_path: Path) -> None:
+    """OpenBLAS (NumPy's BLAS) starts a thread per core when it loads, which spins on CPU the run
+    needs; nothing in scoring multiplies matrices with it, so ``textsieve score`` asks for none."""
+    env = {k: v for k, v in child_env().items() if k != "OPENBLAS_NUM_THREADS"} | {"PYTHONPATH": str(ROOT)}
+    control = subprocess.run(
+        [sys.executable, "-c", "import os, numpy; print(len(os.listdir('/proc/self/task')))"],
+        capture_output=True, text=True, timeout=60, env=env, check=True,
+    )  # fmt: skip
+    if int(control.stdout) == 1:
+        pytest.skip("OpenBLAS starts no thread of its own on one core: nothing to tell apart")
+    write_jsonl(tmp_path / "in.jsonl", [{"text": "the chain is broken"}, {"text": "refund please"}])
+    argv = ["score", "in.jsonl", "--out", "out.jsonl", "--model", MODEL, "--registry", str(scoring_registry)]
+    done = subprocess.run(
+        [sys.executable, "-c", _THREADS_AFTER, *argv],
+        capture_output=True,
+        text=True,
+        timeout=120,
+        cwd=tmp_path,
+        env=env,
+    )
+    assert done.returncode == 0, done.stderr
+    # The run loaded NumPy (its results are arrays) and is left with its main thread alone.
+    assert done.stdout.splitlines()[-1].split() == ["0", "True", "1"], (control.stdout, done.stdout)
+    assert (tmp_path / "out.jsonl").read_text(encoding="utf-8").count("\n") == 2
+
+
+_FROZEN_AFTER = (
+    "import gc, sys\n"
+    "import textsieve.scoring.local as local\n"
+    "from textsieve.cli import main\n"
+    "seen = []\n"
+    "score_file = local.score_file\n"
+    "def watched(*args, **kwargs):\n"
+    "    seen.append(gc.get_freeze_count())\n"
+    "    return score_file(*args, **kwargs)\n"
+    "local.score_file = watched\n"
+    "code = main(sys.argv[1:])\n"
+    "print(code, seen[0] > 0, gc.get_freeze_count() > seen[0])\n"
+)
+_FROZEN_IN_A_WORKER = (
+    "import gc\n"
+    "from textsieve.forking import fork_server\n"
+    "from textsieve.scoring.cli import PRELOAD\n"
+    "if __name__ == '__main__':\n"
+    "    with fork_server(PRELOAD).Pool(1) as pool:\n"
+    "        print(pool.apply(gc.get_freeze_count) > 0)\n"
+)
+
+
+def test_what_lives_until_the_end_is_left_out_of_the_cycle_collectors_scans(
+    scoring_registry: Path, tmp_path: Path
+) -> None:
+    """A full collection scans every object alive, and Python's exit runs several: the scoring
+    process freezes what its imports made before it reads the first row, and what the run made once
+    it is done (gc.freeze); the fork server freezes what it imported for its workers. Neither
+    process walks them all again during the run or as it ends (bench/README.md, "Scoring a file")."""
+    env = child_env() | {"PYTHONPATH": str(ROOT)}
+    write_jsonl(tmp_path / "in.jsonl", [{"text": "the chain is broken"}])
+    argv = ["score", "in.jsonl", "--out", "out.jsonl", "--model", MODEL, "--registry", str(scoring_registry)]
+    done = subprocess.run(
+        [sys.executable, "-c", _FROZEN_AFTER, *argv], capture_output=True, text=True, timeout=120, cwd=tmp_path, env=env
+    )
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.splitlines()[-1].split() == ["0", "True", "True"], done.stdout
+    worker = subprocess.run(
+        [sys.executable, "-c", _FROZEN_IN_A_WORKER], capture_output=True, text=True, timeout=120, cwd=tmp_path, env=env
+    )
+    assert worker.returncode == 0, worker.stderr
+    assert worker.stdout.split() == ["True"], worker.stdout

@@ -5,7 +5,9 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import gc
 import math
+import os
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -126,9 +128,24 @@ def _stopped_by_sigterm() -> Iterator[None]:
         signal.signal(signal.SIGTERM, previous)
 
 
+def one_blas_thread() -> None:
+    """Ask NumPy's OpenBLAS for no threads of its own, in this process and every process it starts,
+    unless the caller chose a number. Loading it starts a thread per core that spins ~40 ms of CPU
+    (2 cores, 2026-12-05), in this process and again in the fork server, where scoring is otherwise
+    starting up on both cores; nothing here multiplies matrices with it (the graph runs in
+    onnxruntime, one single-thread session per worker). Called before NumPy is imported: the
+    library reads the variable once, when it loads."""
+    os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+
 def cli_score(args: argparse.Namespace) -> int:
+    one_blas_thread()
     with _stopped_by_sigterm():
-        return _score(args)
+        code = _score(args)
+    # And what the run made since (the pool, the reader, the resolved version): the process ends
+    # next, and Python's exit runs full collections while it clears the modules.
+    gc.freeze()
+    return code
 
 
 def _score(args: argparse.Namespace) -> int:
@@ -157,6 +174,12 @@ def _score(args: argparse.Namespace) -> int:
     )
     where = registry_location(args.registry, args.blobs)
     with open_registry(where.registry, blobs=where.blobs, create=False) as reg:
+        # What the imports made (NumPy, pydantic's schemas, the registry: most of this process's
+        # objects) lives until the process ends: frozen, it is out of the cycle collector's scans.
+        # The full collections the rows in flight set off each walked it all (4 in a 100,000-row run,
+        # 63-79 ms of this process's CPU), and so did Python's exit (40-50 ms of a one-row run's
+        # wall time); bench/README.md, "Scoring a file".
+        gc.freeze()
         if args.cluster:
             from textsieve.scoring.cluster import score_on_cluster
 

@@ -136,6 +136,15 @@ def split(rows: Sequence[Any], field: str, *, strict: bool, first_row: int) -> S
     scored: list[int] = []
     problems: dict[int, str] = {}
     for i, row in enumerate(rows):
+        # Most rows are a plain object whose text starts with an ASCII character other than whitespace:
+        # such a text has something to classify (text_problem says None, after three calls and a
+        # strip()), so it is taken here; every other row gets text_problem's own verdict.
+        if type(row) is dict:
+            value = row.get(field)
+            if type(value) is str and value and value[0].isascii() and not value[0].isspace():
+                texts.append(value)
+                scored.append(i)
+                continue
         problem = text_problem(row, field)
         if problem is None:
             texts.append(row[field])
