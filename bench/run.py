@@ -211,7 +211,10 @@ def typical(windows: list[dict[str, Any]]) -> dict[str, Any]:
     return mid
 
 
-GUARD_PAIRS = 8  # --quick: 2
+# --quick: 2. A pair's ratio spreads ±0.05 around its median on this machine (2026-12-05 07:08–07:18,
+# 40 pairs of fresh servers: 0.87–1.08), so the median of 8 moved by about ±0.02 from run to run,
+# as wide as the bound's margin; 12 pairs narrow that at 32 s more per run (bench/README.md).
+GUARD_PAIRS = 12
 GUARD_SECONDS = 4.0
 
 
