@@ -121,3 +121,26 @@ def test_a_role_the_server_lacks_is_a_refused_login(capsys: pytest.CaptureFixtur
     assert len(err.strip().splitlines()) == 1, err
     assert f'PostgreSQL refused the login (role "{user}" does not exist); check the user name' in err
     assert "PGUSER" in err and "unavailable" not in err
+
+
+@pytest.mark.anyio
+async def test_a_service_on_a_database_the_server_lacks_answers_503_and_logs_what_to_check(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    """Not ready, retrying (the database may yet be created), and /readyz names no host or database."""
+    import logging
+
+    from tests.helpers.net import readyz_until
+    from tests.helpers.service import serving, settings_for
+
+    caplog.set_level(logging.INFO)
+    name = f"missing_{secrets.token_hex(6)}"
+    url = urllib.parse.urlsplit(postgres_url())._replace(path=f"/{name}").geturl()
+    async with serving(settings_for(url, blobs=str(tmp_path / "blobs")), ready=False) as (_, client):
+        await readyz_until(client, lambda b: b["reason"].startswith("startup failed"), timeout=30, awaiting="failure")
+        r = await client.get("/readyz")
+        assert r.status_code == 503 and name not in r.text and "127.0.0.1" not in r.text, r.text
+    assert any(
+        f'PostgreSQL has no such database (database "{name}" does not exist)' in rec.getMessage()
+        for rec in caplog.records
+    )
