@@ -12,6 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
+from textsieve.exporter.progress import Progress
 from textsieve.registry.tokenizer import Tokenizer, Vocabulary
 
 
@@ -23,10 +24,12 @@ class TokenIds:
     lengths: np.ndarray  # int64 [N]
 
 
-def encode_tokens(token_lists: Sequence[Sequence[str]], vocabulary: Vocabulary, max_length: int) -> TokenIds:
+def encode_tokens(
+    token_lists: Sequence[Sequence[str]], vocabulary: Vocabulary, max_length: int, bar: Progress | None = None
+) -> TokenIds:
     ids = np.zeros((len(token_lists), max_length), dtype=np.int64)
     lengths = np.zeros(len(token_lists), dtype=np.int64)
-    for row, tokens in enumerate(token_lists):
+    for row, tokens in enumerate(bar.tally(token_lists) if bar is not None else token_lists):
         # Truncation keeps the first max_length tokens.
         encoded = vocabulary.encode(tokens[:max_length])
         ids[row, : len(encoded)] = encoded
@@ -35,11 +38,17 @@ def encode_tokens(token_lists: Sequence[Sequence[str]], vocabulary: Vocabulary, 
 
 
 def encode_texts(
-    texts: Sequence[str], vocabulary: Vocabulary, max_length: int, tokenizer: Tokenizer | None = None
+    texts: Sequence[str],
+    vocabulary: Vocabulary,
+    max_length: int,
+    tokenizer: Tokenizer | None = None,
+    bar: Progress | None = None,
 ) -> TokenIds:
-    """The preprocessing the model was trained with: tokenize, look up, truncate."""
+    """The preprocessing the model was trained with: tokenize, look up, truncate (``bar`` counts the tokenizing)."""
     split = (tokenizer or Tokenizer()).split
-    return encode_tokens([split(t)[0] for t in texts], vocabulary, max_length)
+    return encode_tokens(
+        [split(t)[0] for t in (bar.tally(texts) if bar is not None else texts)], vocabulary, max_length
+    )
 
 
 def pad_batch(encoded: TokenIds, rows: np.ndarray, min_length: int) -> tuple[torch.Tensor, torch.Tensor]:

@@ -53,10 +53,22 @@ def prepare(config: TrainConfig) -> Prepared:
         )
     if config.valid is not None:
         _warn_of_overlap(train_rows, valid_rows, tokens, config.valid)
+    started = time.perf_counter()
     train_tokens = [tokens[e.text] for e in train_rows]
     tokens.clear()
     vocabulary = build_vocabulary(train_tokens, config)
     lengths = length_info(np.array([len(t) for t in train_tokens]), config)
+    built = time.perf_counter()
+    rows = len(train_rows) + len(valid_rows)
+    shown = bar_wanted(config.quiet)
+    with Progress(rows, "encoding", enabled=shown, unit="text") as bar:
+        train_ids = encode_tokens(train_tokens, vocabulary, lengths.max_length, bar)
+        valid_ids = encode_texts([e.text for e in valid_rows], vocabulary, lengths.max_length, tokenizer, bar)
+    if shown:
+        say(
+            f"data: vocabulary of {len(vocabulary):,} words built in {built - started:.1f}s, "
+            f"{rows:,} rows encoded in {time.perf_counter() - built:.1f}s"
+        )
     vectors = _pretrained(config, vocabulary, tokenizer)
     index = {label: i for i, label in enumerate(labels)}
     return Prepared(
@@ -65,8 +77,8 @@ def prepare(config: TrainConfig) -> Prepared:
         labels=labels,
         vocabulary=vocabulary,
         lengths=lengths,
-        train_ids=encode_tokens(train_tokens, vocabulary, lengths.max_length),
-        valid_ids=encode_texts([e.text for e in valid_rows], vocabulary, lengths.max_length, tokenizer),
+        train_ids=train_ids,
+        valid_ids=valid_ids,
         train_y=np.array([index[e.label] for e in train_rows], dtype=np.int64),
         valid_y=np.array([index[e.label] for e in valid_rows], dtype=np.int64),
         vectors=vectors,
@@ -119,31 +131,42 @@ def split_examples(
     """Training rows, validation rows (``--valid`` or a held-out split) and the labels in output order.
 
     Given a :class:`TokenMemo`, every row is tokenized into it here. On a terminal a bar shows the
-    reading and one the tokenizing (a 200 MB file is half a minute of both), and a line then says
-    how long each took; a pipe gets no line, so a refusal of the data stays the only one."""
+    reading, one the tokenizing and two the split (a 200 MB file is half a minute of the first two,
+    a 53 MB file 3-5 s of the split), and a line then says how long each took; a pipe gets no line,
+    so a refusal of the data stays the only one."""
     started = time.perf_counter()
     examples = read_examples(config.data, config)
     valid_given = read_examples(config.valid, config) if config.valid is not None else []
+    shown = bar_wanted(config.quiet) and isinstance(tokens, TokenMemo)
+    times = ""
     if isinstance(tokens, TokenMemo):
         read = time.perf_counter()
         rows = len(examples) + len(valid_given)
-        shown = bar_wanted(config.quiet)
         tokens.fill((e.text for e in itertools.chain(examples, valid_given)), rows, bar=shown)
-        if shown:
-            say(f"data: {rows:,} rows read in {read - started:.1f}s, tokenized in {time.perf_counter() - read:.1f}s")
+        times = f"data: {rows:,} rows read in {read - started:.1f}s, tokenized in {time.perf_counter() - read:.1f}s"
     if config.valid is not None:
+        if shown:
+            say(times)
         valid_rows = valid_given
         labels = check_labels(examples, valid_rows, train_name=str(config.data), valid_name=str(config.valid))
         return examples, valid_rows, labels
     # The one-label check comes first: a split of one-label data would fail confusingly.
     check_labels(examples, [], train_name=str(config.data))
-    train_rows, valid_rows = split_validation(examples, config.seed, config.data, tokens)
+    splitting = time.perf_counter()
+    train_rows, valid_rows = split_validation(examples, config.seed, config.data, tokens, bar=shown)
+    if shown:
+        say(f"{times}, validation split off in {time.perf_counter() - splitting:.1f}s")
     labels = check_labels(train_rows, valid_rows, train_name=str(config.data))
     return train_rows, valid_rows, labels
 
 
 def split_validation(
-    examples: list[Example], seed: int, source: Path, tokens: Mapping[str, Sequence[str]] | None = None
+    examples: list[Example],
+    seed: int,
+    source: Path,
+    tokens: Mapping[str, Sequence[str]] | None = None,
+    *,
+    bar: bool = False,
 ) -> tuple[list[Example], list[Example]]:
     """A seeded validation split stratified by label, so every validation label is also trained on.
 
@@ -154,27 +177,29 @@ def split_validation(
     tokens = tokens if tokens is not None else TokenMemo()
     rng = np.random.default_rng([seed, 1])
     groups: dict[str, list[int]] = {}  # model input -> its rows, in file order
-    for i, example in enumerate(examples):
-        groups.setdefault(_model_input(tokens[example.text]), []).append(i)
+    with Progress(len(examples), "grouping copies", enabled=bar, unit="text") as progress:
+        for i, example in enumerate(progress.tally(examples)):
+            groups.setdefault(_model_input(tokens[example.text]), []).append(i)
     by_label: dict[str, list[list[int]]] = {}  # each group is stratified by its first row's label
     for rows in groups.values():
         by_label.setdefault(examples[rows[0]].label, []).append(rows)
     rows_of = Counter(e.label for e in examples)
     trained = rows_of.copy()  # rows of each label left to train on
     held: set[int] = set()
-    for label in sorted(by_label):
-        label_groups = by_label[label]
-        order = np.arange(len(label_groups))
-        rng.shuffle(order)
-        target, taken = _held_out(rows_of[label]), 0
-        for g in order:
-            rows = label_groups[int(g)]
-            losing = Counter(examples[i].label for i in rows)
-            if taken + len(rows) > target or any(trained[k] <= n for k, n in losing.items()):
-                continue
-            held.update(rows)
-            trained.subtract(losing)
-            taken += len(rows)
+    with Progress(len(examples), "holding out validation", enabled=bar, unit="text") as progress:
+        for label in sorted(by_label):
+            label_groups = by_label[label]
+            order = np.arange(len(label_groups))
+            rng.shuffle(order)
+            target, taken = _held_out(rows_of[label]), 0
+            for g in progress.tally(order, lambda g: len(label_groups[int(g)])):  # noqa: B023  # used in this loop
+                rows = label_groups[int(g)]
+                losing = Counter(examples[i].label for i in rows)
+                if taken + len(rows) > target or any(trained[k] <= n for k, n in losing.items()):
+                    continue
+                held.update(rows)
+                trained.subtract(losing)
+                taken += len(rows)
     if not held:
         raise _too_few_to_hold_out(examples, by_label, source)
     if len(groups) < len(examples):

@@ -12,11 +12,19 @@ from __future__ import annotations
 
 import contextlib
 import os
+import re
 import threading
 from collections.abc import Iterator
 from typing import Any
 
-from textsieve.errors import InputError, LoginRefusedError, RegistryError, StateError, UnavailableError
+from textsieve.errors import (
+    InputError,
+    LoginRefusedError,
+    NoDatabaseError,
+    RegistryError,
+    StateError,
+    UnavailableError,
+)
 from textsieve.registry._db import Backend, Params, Row, Tx
 
 CONNECT_TIMEOUT_S = 5
@@ -57,6 +65,19 @@ def translate(exc: Exception, where: str, *, writing: bool = True) -> RegistryEr
         return UnavailableError(
             f"{where}: the registry's write lock stayed held by another writer for {LOCK_TIMEOUT_S:.0f} s; try again"
         )
+    missing = _missing(exc) if isinstance(exc, psycopg.OperationalError) else None
+    if missing == "database":
+        return NoDatabaseError(
+            f"{where}: PostgreSQL has no such database ({_server_says(first)}); check the database name at the end "
+            "of the registry URL (--registry or TEXTSIEVE_REGISTRY, postgresql://USER@HOST/DATABASE; when the URL "
+            "names none, libpq takes PGDATABASE, else the user's name) or create that database on the server"
+        )
+    if missing == "role":
+        return LoginRefusedError(
+            f"{where}: PostgreSQL refused the login ({_server_says(first)}); check the user name in the registry URL "
+            "(--registry or TEXTSIEVE_REGISTRY, postgresql://USER@HOST/DATABASE; when the URL names none, libpq "
+            "takes PGUSER, else the operating system's user) or create that role on the server"
+        )
     if isinstance(exc, psycopg.OperationalError) and _login_refused(exc):
         return LoginRefusedError(
             f"{where}: PostgreSQL refused the login ({_server_says(first)}); check the user and password: the "
@@ -90,6 +111,20 @@ def _login_refused(exc: Exception) -> bool:
         return bool(exc.pgconn.needs_password)  # type: ignore[attr-defined]
     except Exception:
         return False
+
+
+# What the server says when the login names something it does not have (PostgreSQL's postinit.c, in
+# English: 3D000 and 28000, again with no SQLSTATE in psycopg). A role is named only where the server
+# let the login through without a password (trust, peer); with one, a missing role is a failed password.
+_MISSING = re.compile(r'FATAL:\s+(database|role) ".*" does not exist')
+
+
+def _missing(exc: Exception) -> str | None:
+    """'database' or 'role' when a connection failed because the server has no such one, else None."""
+    if getattr(exc, "sqlstate", None) is not None:  # a statement's error on a live connection, not a login
+        return None
+    found = _MISSING.search(str(exc))
+    return found.group(1) if found else None
 
 
 def _server_says(first: str) -> str:

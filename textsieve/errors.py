@@ -14,8 +14,10 @@
     ├── UnavailableError           cannot answer now, retry (registry unreachable, worker gone, shutting down):
     │   │                          CLI exit 1, HTTP 503
     │   ├── OverloadedError        this replica is at a bound (queue, bodies, connections): HTTP 503 + Retry-After
-    │   └── LoginRefusedError      the registry's database refused the login (user, password): CLI exit 2,
-    │                              HTTP 503 (a replica that cannot log in is not ready)
+    │   ├── LoginRefusedError      the registry's database refused the login (user, password, a role that
+    │   │                          does not exist): CLI exit 2, HTTP 503 (a replica that cannot log in is not ready)
+    │   └── NoDatabaseError        the registry URL names a database the server does not have: CLI exit 2,
+    │                              HTTP 503
     ├── DeadlinePassedError        the caller's own deadline passed before inference started: HTTP 504
     └── AuthError                  missing or wrong admin token: HTTP 401/403
 
@@ -113,6 +115,16 @@ class LoginRefusedError(UnavailableError):
     exit_code = 2
 
 
+class NoDatabaseError(UnavailableError):
+    """The registry URL names a database the PostgreSQL server does not have: a setting to fix (CLI exit 2).
+
+    An :class:`UnavailableError` still, as :class:`LoginRefusedError` is: a replica answers 503 on readiness
+    and keeps trying, so a database created after it started is used without a restart.
+    """
+
+    exit_code = 2
+
+
 class DeadlinePassedError(TextsieveError):
     """The caller's own deadline passed before inference started; nothing was computed."""
 
@@ -153,6 +165,7 @@ __all__ = [
     "KeyReusedError",
     "LimitError",
     "LoginRefusedError",
+    "NoDatabaseError",
     "NotFoundError",
     "OverloadedError",
     "ParityError",

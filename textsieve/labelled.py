@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import contextlib
 import csv
-import io
 import json
 import stat
 import unicodedata
@@ -42,24 +41,24 @@ def load_examples(
 ) -> list[Example]:
     """Every example of a labelled file; any problem is an :class:`InputError` naming file and line.
 
-    JSON Lines are read a line at a time, so only the examples stay in memory, not the file's bytes,
-    its text and its list of lines besides (a 50 MB file held all three at once). ``progress`` is
-    called with the number of bytes read since its last call."""
+    JSON Lines, CSV and TSV are read a line at a time, so only the examples stay in memory, not the
+    file's bytes, its text and its list of lines besides (a 50 MB file held all three at once; a CSV
+    file's text a fourth time, as the four bytes a character of the StringIO the csv module read).
+    ``progress`` is called with the number of bytes read since its last call."""
     path = Path(path)
     suffix = path.suffix.lower()
     if suffix not in JSON_SUFFIXES and suffix not in CSV_SUFFIXES:
         raise InputError(f"{path}: unsupported file type {suffix or '(no extension)'!r}; {_ALLOWED}")
     fields = _Fields(path, text_field, label_field)
-    if suffix in JSON_SUFFIXES and not (suffix == ".json" and _json_array(path)):
+    if suffix in CSV_SUFFIXES:
+        examples = list(_csv_rows(path, _csv_lines(path, progress), CSV_SUFFIXES[suffix], fields))
+    elif not (suffix == ".json" and _json_array(path)):
         examples = list(_jsonl_rows(path, fields, progress))
     else:
         text = _read_utf8(path)
         if not text.strip():
             raise _empty(path)
-        if suffix in CSV_SUFFIXES:
-            examples = list(_csv_rows(path, text, CSV_SUFFIXES[suffix], fields))
-        else:
-            examples = list(_json_array_rows(path, text, fields))
+        examples = list(_json_array_rows(path, text, fields))
         if progress is not None:
             progress(path.stat().st_size)
     if not examples:
@@ -300,8 +299,8 @@ def json_kind(value: object) -> str:
     return f"a value of type {type(value).__name__}"  # a Parquet cell: bytes, a date, a decimal
 
 
-def _jsonl_lines(path: Path, progress: Callable[[int], None] | None) -> Iterator[tuple[int, str]]:
-    """(line number, text) of each line, decoded one at a time; an empty file is refused."""
+def _decoded_lines(path: Path, progress: Callable[[int], None] | None) -> Iterator[tuple[int, str]]:
+    """(line number, text with its \\n) of every line, decoded one at a time; an empty file is refused."""
     offset = unreported = 0
     blank = True
     with _opened(path) as file:
@@ -312,7 +311,6 @@ def _jsonl_lines(path: Path, progress: Callable[[int], None] | None) -> Iterator
                 line = raw.decode("utf-8")
             except UnicodeDecodeError as exc:
                 raise _not_utf8(path, number, offset + exc.start, raw[exc.start]) from None
-            line = line[:-1] if line.endswith("\n") else line
             if number == 1:
                 line = line.removeprefix(_BOM)  # spreadsheet programs often start UTF-8 files with one
             offset += len(raw)
@@ -320,13 +318,33 @@ def _jsonl_lines(path: Path, progress: Callable[[int], None] | None) -> Iterator
             if progress is not None and unreported >= _PROGRESS_BYTES:
                 progress(unreported)
                 unreported = 0
-            if line.strip():
+            if blank and line.strip():
                 blank = False
-                yield number, line
+            yield number, line
     if progress is not None and unreported:
         progress(unreported)
     if blank:
         raise _empty(path)
+
+
+def _jsonl_lines(path: Path, progress: Callable[[int], None] | None) -> Iterator[tuple[int, str]]:
+    """(line number, text) of each line that is not blank, without its line end."""
+    for number, line in _decoded_lines(path, progress):
+        line = line[:-1] if line.endswith("\n") else line
+        if line.strip():
+            yield number, line
+
+
+def _csv_lines(path: Path, progress: Callable[[int], None] | None) -> Iterator[str]:
+    """The file's lines as a StringIO with ``newline=""`` gave them to the csv module, one at a time:
+    with their ends, and split at a lone \\r too (old Mac line ends), so line numbers stay the same."""
+    for _, line in _decoded_lines(path, progress):
+        start = 0
+        while (cr := line.find("\r", start)) != -1 and line[cr + 1 : cr + 2] != "\n":
+            yield line[start : cr + 1]
+            start = cr + 1
+        if start < len(line):
+            yield line[start:]
 
 
 _PROGRESS_BYTES = 1 << 20
@@ -389,8 +407,8 @@ def _json_array_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example
         yield fields.example(f"item {number}", record)
 
 
-def _csv_rows(path: Path, text: str, delimiter: str, fields: _Fields) -> Iterator[Example]:
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter, strict=True)
+def _csv_rows(path: Path, lines: Iterator[str], delimiter: str, fields: _Fields) -> Iterator[Example]:
+    reader = csv.reader(lines, delimiter=delimiter, strict=True)
     header: list[str] | None = None
     last_line = 0
     try:

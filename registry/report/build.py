@@ -342,6 +342,8 @@ def _calibration(targets: NDArray[np.int64], s: _Scored) -> dict[str, Any]:
         # What temperature this evaluation set itself would choose: far from the stored one means the
         # validation texts the temperature was fitted on differ from these.
         "refit_temperature": refit,
+        # "lower" or "upper" when that search stopped at a bound of its bracket: no minimum, so no fit.
+        "refit_temperature_bound": measures.temperature_bound(refit),
     }
 
 

@@ -14,6 +14,7 @@ from collections.abc import Sequence
 from html import escape
 from typing import Any
 
+from textsieve.registry.measures import TEMPERATURE_BOUNDS, temperature_bound
 from textsieve.registry.report import svg
 from textsieve.registry.report.build import Section, default_sections
 
@@ -183,9 +184,30 @@ def _calibration(r: dict[str, Any]) -> str:
         + _table(["figure", "before scaling", "after scaling"], rows, (1, 2))
         + "</div>"
         + f"<p>Temperature stored with the bundle: {cal['temperature']:.4f}; the temperature this evaluation "
-        f"set would choose: {_num(cal.get('refit_temperature'))}. Points on the dashed diagonal are perfectly "
+        f"set would choose: {_refit(cal)} Points on the dashed diagonal are perfectly "
         "calibrated; below it the model is over-confident.</p>"
     )
+
+
+def _refit(cal: dict[str, Any]) -> str:
+    # Reports stored before refit_temperature_bound existed lack it; measures.temperature_bound is the
+    # one detector (the card and the export's parity report use it too), so ask it again.
+    refit = cal.get("refit_temperature")
+    bound = cal.get("refit_temperature_bound") or (temperature_bound(refit) if isinstance(refit, float) else None)
+    if bound == "upper":
+        return (
+            f"none: not a fit, the search stopped at its upper bound, T = {TEMPERATURE_BOUNDS[1]:g}. The loss kept "
+            "falling as the probabilities flattened towards uniform: on these texts the version's scores carry "
+            "little information about the right label, or it is badly over-confident (often sure and wrong). "
+            "Check the labels and the metrics above before trusting its probabilities."
+        )
+    if bound == "lower":
+        return (
+            f"none: not a fit, the search stopped at its lower bound, T = {TEMPERATURE_BOUNDS[0]:g}. The loss kept "
+            "falling as the probabilities sharpened towards 0 or 1: these texts (too few, too easy, or every one "
+            "classified correctly) say nothing about how confident the version should be."
+        )
+    return f"{_num(refit)}."
 
 
 def _selective(r: dict[str, Any]) -> str:

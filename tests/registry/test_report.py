@@ -343,6 +343,63 @@ def test_comparison_with_other_labels_is_a_note(
     assert report["metrics"]["accuracy"] > 0  # the rest still stands
 
 
+@pytest.mark.parametrize(
+    ("logits", "targets", "bound", "edge", "html_says"),
+    [
+        pytest.param(
+            # Every text's own class has the lower logit (sure and wrong): flattening the probabilities
+            # towards 1/2 lowers the NLL all the way up (Guo et al., 2017, NLL in §4.2).
+            [[3.0, 0.0], [0.0, 3.0], [2.5, -1.0], [-1.0, 2.0]],
+            [1, 0, 1, 0],
+            "upper",
+            20.0,
+            "none: not a fit, the search stopped at its upper bound, T = 20.",
+            id="useless scores: upper bound",
+        ),
+        pytest.param(
+            # Two texts told apart and a tie no temperature moves off 1/2: the NLL falls as T shrinks.
+            [[1.0, 0.0], [0.0, 1.0], [0.0, 0.0]],
+            [0, 1, 0],
+            "lower",
+            0.05,
+            "none: not a fit, the search stopped at its lower bound, T = 0.05.",
+            id="ties: lower bound",
+        ),
+    ],
+)
+def test_a_refit_temperature_at_the_search_bound_is_not_called_a_choice(
+    compared: dict[str, Any],
+    pair: tuple[Bundle, Bundle],
+    logits: list[list[float]],
+    targets: list[int],
+    bound: str,
+    edge: float,
+    html_says: str,
+) -> None:
+    from scipy.optimize import minimize_scalar
+
+    from textsieve.registry.measures import TEMPERATURE_BOUNDS, nll
+
+    z, y = np.array(logits), np.array(targets)
+    # scipy's bounded minimiser as the reference: it ends at the same bound, so no minimum lies inside.
+    best = minimize_scalar(lambda t: nll(z, y, t), bounds=TEMPERATURE_BOUNDS, method="bounded", options={"xatol": 1e-8})
+    assert best.x == pytest.approx(edge, abs=1e-4)
+    raw = scipy_softmax(z, axis=1)
+    scored = build_module._Scored(Predictor.from_bundle(pair[0]), [], z, raw, raw, raw.argmax(axis=1))
+    cal = build_module._calibration(y, scored)
+    assert cal["refit_temperature"] == pytest.approx(edge, rel=1e-6)
+    assert cal["refit_temperature_bound"] == bound
+    page = render_html({**compared, "calibration": cal})
+    assert html_says in page and f"would choose: {edge:.4f}" not in page
+    # A report stored before the key existed says the same, from its figure alone.
+    old = {k: v for k, v in cal.items() if k != "refit_temperature_bound"}
+    assert html_says in render_html({**compared, "calibration": old})
+    # The tiny model's own evaluation set gives a temperature inside the bracket: a figure, no bound.
+    assert compared["calibration"]["refit_temperature_bound"] is None
+    inside = f"would choose: {compared['calibration']['refit_temperature']:.4f}."
+    assert inside in render_html(compared) and "not a fit" not in render_html(compared)
+
+
 def test_html_is_self_contained(compared: dict[str, Any]) -> None:
     html = render_html(compared)
     assert "<script" not in html and "http://" not in html.replace("http://www.w3.org/2000/svg", "")

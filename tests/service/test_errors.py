@@ -371,6 +371,8 @@ async def test_no_client_mistake_is_a_500(shared_registry: Path) -> None:
         ("NotFoundError", 404, "not-found", 2, True),
         ("StateError", 409, "state-conflict", 2, True),
         ("GateRefusedError", 409, "gate-refused", 1, True),
+        ("LoginRefusedError", 503, "unavailable", 2, False),
+        ("NoDatabaseError", 503, "unavailable", 2, False),
     ],
 )
 def test_error_classes_map_to_their_status_and_exit_code(
