@@ -111,15 +111,9 @@ def _spans(
     windows = _windows(p, lengths, out, best, ks, members)
     if windows is None:
         windows = _windows_sorted(p, lengths, out, best, ks, members)
-    w_row, w_start, w_end, totals, fired = windows
+    w_row, w_start, w_end, totals, row_max, fired = windows  # at or above the floor alone
     if totals.size == 0:
         return [[] for _ in range(n)]
-
-    # Keep windows at or above SPAN_FLOOR of their row's strongest.
-    row_max = np.full(n, -np.inf)
-    np.maximum.at(row_max, w_row, totals)
-    keep = totals >= SPAN_FLOOR * row_max[w_row]
-    w_row, w_start, w_end, totals = w_row[keep], w_start[keep], w_end[keep], totals[keep]
 
     # Merge overlapping windows: a window opens a new span when it starts at or after the
     # furthest end seen so far in its row (rows are offset so they never overlap).
@@ -223,8 +217,9 @@ class _Fired:
     total: np.ndarray
 
 
-# row, start, end, summed weight of each window; the fired filters when asked for
-Windows = tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, _Fired | None]
+# row, start, end, summed weight of each window at or above its row's floor; each row's
+# strongest window's weight (0.0: none); the fired filters when asked for
+Windows = tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray, _Fired | None]
 # The dense window grid (rows x starts x widths) is used up to this many cells; beyond it (many
 # long texts at once) the windows are found by sorting their keys instead.
 DENSE_CELLS = 1 << 20
@@ -233,8 +228,9 @@ DENSE_CELLS = 1 << 20
 def _windows(
     p: Predictor, lengths: np.ndarray, out: Outputs, best: np.ndarray, ks: np.ndarray, members: bool = False
 ) -> Windows | None:
-    """Every window a filter fired on (its share of the chosen class > 0), with the shares summed,
-    in (row, start, end) order: one ``np.bincount`` over a dense grid, one cell per (row, start,
+    """Every window a filter fired on (its share of the chosen class > 0) whose summed shares reach
+    SPAN_FLOOR of its row's strongest window's, with the shares summed, in (row, start, end)
+    order, and each row's strongest: one ``np.bincount`` over a dense grid, one cell per (row, start,
     width), instead of sorting the fired filters' keys. The fired filters are taken in row-major
     order, which meets a window's filters in ascending order, so each total is the same sum in the
     same order as :meth:`Predictor.spans`. None when the grid would
@@ -271,18 +267,35 @@ def _windows(
         key[~eligible] = 0
         weights[~eligible] = 0
     totals = np.bincount(key.ravel(), weights=weights.ravel(), minlength=n * stride * cells)
-    cell = np.flatnonzero(totals > 0)
+    # The windows at or above SPAN_FLOOR of their row's strongest, picked on the grid before their
+    # cells are decoded (a row's cells are one run of the grid): a few a text of its ~100.
+    # ``_floor`` leaves out the empty cells as ``totals > 0`` did.
+    grid = totals.reshape(n, stride * cells)
+    row_max = grid.max(axis=1)
+    cell = np.flatnonzero(grid >= _floor(row_max)[:, None])
     # Floor division by a scalar (numpy divides by a constant fast), not np.divmod.
     w_row = cell // (stride * cells)
     rest = cell - w_row * (stride * cells)
     w_start = rest // cells
-    w_width = rest - w_start * cells
+    w_end = w_start + (rest - w_start * cells)
     fired_filters = None
     if members:
         which = np.flatnonzero((contrib > 0) & eligible[:, None])
         rows, filters = np.divmod(which, contrib.shape[1])
         fired_filters = _Fired(rows, filters, starts.ravel()[which], totals[key.ravel()[which]])
-    return w_row, w_start, w_start + w_width, totals[cell], fired_filters
+    return w_row, w_start, w_end, totals[cell], row_max, fired_filters
+
+
+def _floor(row_max: np.ndarray) -> np.ndarray:
+    """The least total a row's window needs to be kept: SPAN_FLOOR of the row's strongest, and
+    never below the least positive float, so that no empty cell (0.0) passes it. A positive total
+    is at least that float anyway, so ``total >= _floor(row_max)`` is ``total >= SPAN_FLOOR ·
+    row_max`` for every window (the comparison Predictor.spans makes), and false for every empty
+    cell, rows without windows (``row_max`` 0) included."""
+    return np.maximum(SPAN_FLOOR * row_max, _LEAST)
+
+
+_LEAST = float(np.finfo(np.float64).smallest_subnormal)
 
 
 def _windows_sorted(
@@ -302,7 +315,12 @@ def _windows_sorted(
     uniq, inverse = np.unique(key, return_inverse=True)
     totals = np.bincount(inverse, weights=weights)  # adds in filter order, starting from 0.0
     fired_filters = _Fired(fired_rows, fired_f, starts, totals[inverse]) if members else None
-    return uniq // (stride * stride), (uniq // stride) % stride, uniq % stride, totals, fired_filters
+    w_row = uniq // (stride * stride)
+    row_max = np.zeros(n)
+    np.maximum.at(row_max, w_row, totals)
+    keep = totals >= _floor(row_max)[w_row]
+    w_row, uniq = w_row[keep], uniq[keep]
+    return w_row, (uniq // stride) % stride, uniq % stride, totals[keep], row_max, fired_filters
 
 
 __all__ = ["DENSE_CELLS", "batch_span_objects", "batch_spans"]

@@ -173,6 +173,37 @@ def test_predict_returns_the_per_text_spans_with_their_tokens_and_filters(predic
     assert all(g.spans == [] for g in predictor.predict(texts, spans=0))
 
 
+def test_both_window_paths_keep_the_same_windows_at_or_above_the_floor_alone(predictor: Predictor) -> None:
+    """The windows below SPAN_FLOOR of their row's strongest are dropped where they are found
+    (on the grid, before its cells are decoded), by both paths alike; Predictor.spans drops them
+    by the same comparison (registry/runtime.py, SPAN_FLOOR)."""
+    p = predictor
+    encoded = [p.encode(t) for t in HARD]
+    out = p.run(encoded)
+    best = p.probabilities(out.logits).argmax(axis=1)
+    lengths = np.array([len(e.ids) for e in encoded])
+    ks = np.full(len(HARD), 3)
+    dense = spans._windows(p, lengths, out, best, ks)
+    assert dense is not None
+    by_sorting = spans._windows_sorted(p, lengths, out, best, ks)
+    for a, b in zip(dense[:5], by_sorting[:5], strict=True):
+        np.testing.assert_array_equal(a, b)
+    w_row, _, _, totals, row_max, _ = dense
+    assert (totals >= spans.SPAN_FLOOR * row_max[w_row]).all() and (totals > 0).all()
+    assert set(w_row.tolist()) == {i for i, e in enumerate(encoded) if e.ids}
+    # The rows' strongest windows are those of all windows, floor or not.
+    contrib = out.contributions[np.arange(len(HARD)), :, best]
+    for row in set(w_row.tolist()):
+        fired = np.flatnonzero(contrib[row] > 0)
+        ends = np.minimum(out.positions[row, fired] + p.filter_widths[fired], lengths[row])
+        sums: dict[tuple[int, int], float] = {}
+        for f, s, e in zip(fired.tolist(), out.positions[row, fired].tolist(), ends.tolist(), strict=True):
+            sums[(s, e)] = sums.get((s, e), 0.0) + float(contrib[row, f])
+        assert row_max[row] == max(sums.values())
+        kept = sorted(key for key, v in sums.items() if v >= spans.SPAN_FLOOR * row_max[row])
+        assert kept == list(zip(dense[1][w_row == row].tolist(), dense[2][w_row == row].tolist(), strict=True))
+
+
 def test_a_window_outside_its_text_takes_the_sorting_path(predictor: Predictor) -> None:
     """The graph never gives one (warm_and_check would refuse such a bundle); if it did, the
     dense grid would put the window in the wrong cell, so the batch goes the old way instead."""
