@@ -46,7 +46,13 @@ def timestamp(created: float) -> str:
     cached = _second
     if cached[0] != sec:
         cached = _second = (sec, time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(sec)))
-    return f"{cached[1]}.{micros // 1000:03d}+00:00"
+    return cached[1] + _MILLIS[micros // 1000]
+
+
+# ".000+00:00" to ".999+00:00": formatting the milliseconds with "{:03d}" cost ~850 instructions a line.
+_MILLIS = tuple(f".{ms:03d}+00:00" for ms in range(1000))
+_HEAD_KEYS = frozenset({"ts", "level", "logger"})
+_info_prefixes: dict[str, tuple[bytes, bytes]] = {}
 
 
 def _head(created: float, level: str, name: str) -> dict[str, Any]:
@@ -54,8 +60,22 @@ def _head(created: float, level: str, name: str) -> dict[str, Any]:
 
 
 def fields_line(created: float, name: str, fields: dict[str, Any]) -> str:
-    """The line :class:`JsonFormatter` makes of an INFO record of logger ``name`` carrying ``fields``."""
-    return orjson.dumps(_head(created, "info", name) | fields, default=str).decode()
+    """The line :class:`JsonFormatter` makes of an INFO record of logger ``name`` carrying ``fields``.
+
+    The writer thread makes one per request under load, holding the GIL. Merging the head into a
+    new dict and encoding that (``orjson.dumps(_head(...) | fields)``) cost ~5,000 instructions a
+    line, a quarter of them the merge; the head's bytes are joined to the fields' encoding instead,
+    which gives the same line when no field shares a head's key (else the merge is made as before).
+    """
+    if not fields or not fields.keys().isdisjoint(_HEAD_KEYS):
+        return orjson.dumps(_head(created, "info", name) | fields, default=str).decode()
+    prefix = _info_prefixes.get(name)
+    if prefix is None:  # b'{"ts":"' and b'","level":"info","logger":"NAME",' (NAME as orjson escapes it)
+        prefix = _info_prefixes.setdefault(
+            name, (b'{"ts":"', b'","level":"info","logger":' + orjson.dumps(name) + b",")
+        )
+    # The timestamp is digits and "-T:.+": nothing in it that JSON escapes.
+    return (prefix[0] + timestamp(created).encode() + prefix[1] + orjson.dumps(fields, default=str)[1:]).decode()
 
 
 def _fields_line_or_note(created: float, name: str, fields: dict[str, Any]) -> str:

@@ -354,6 +354,18 @@ class ModelSet:
                 served.review_threshold = threshold
 
     # -- requests -----------------------------------------------------------------------------
+    def acquire_live(self, name: str | None, version: int | None) -> ServedModel | None:
+        """:meth:`acquire` without a coroutine when the request asks for the live version (the
+        common case: the predict route calls this first, every request); None when it does not
+        (a pinned version, a model not live here), and the caller awaits :meth:`acquire`."""
+        if name is None:
+            name = self._only_model()
+        served = self.live.get(name)
+        if served is None or (version is not None and served.version != version):
+            return None
+        served.active += 1
+        return served
+
     async def acquire(self, name: str | None, version: int | None) -> ServedModel:
         """The version a request will use; pair with :meth:`release`."""
         if name is None:

@@ -145,19 +145,19 @@ async def classify(
 ) -> Answer:
     """The work behind ``POST /v1/predict`` once the request is valid (the route and the lane,
     :mod:`textsieve.service.web.lane`, both call it); the access log's fields go in ``scope``'s state."""
-    served = await models.acquire(body.model, body.version)
+    served = models.acquire_live(body.model, body.version) or await models.acquire(body.model, body.version)
     after_reply = None
     try:
-        assert served.batcher is not None
-        if models.shadow_sample(served):
-            results, scores = await served.batcher.submit_scored(body.texts, body.spans, deadline=deadline)
+        batcher = served.batcher
+        assert batcher is not None
+        shadow = models.shadow_sample(served)
+        results, scores = await batcher.run(body.texts, body.spans, deadline, keep_scores=shadow)
+        if shadow:
             # Offered to the shadow queue only once the reply has been sent (and never waited for).
-            assert models.shadow is not None
+            assert models.shadow is not None and scores is not None
             after_reply = functools.partial(
                 models.shadow.offer_after_reply, served.name, served.version, served.labels, body.texts, scores
             )
-        else:
-            results = await served.batcher.submit(body.texts, body.spans, deadline=deadline)
     finally:
         models.release(served)
     state = scope.setdefault("state", {})

@@ -544,3 +544,58 @@ async def test_access_lines_handed_to_the_line_writer_equal_what_logging_writes(
     apart = dt.datetime.fromisoformat(handed["ts"]) - dt.datetime.fromisoformat(logged["ts"])
     assert set(logged) == set(handed) and abs(apart.total_seconds()) < 1
     assert {k: v for k, v in logged.items() if k != "ts"} == {k: v for k, v in handed.items() if k != "ts"}
+
+
+class _Odd:
+    def __str__(self) -> str:
+        return 'odd "value"'
+
+
+@pytest.mark.parametrize(
+    "fields",
+    [
+        {
+            "event": "request",
+            "request_id": "r1",
+            "method": "POST",
+            "path": "/v1/predict",
+            "status": 200,
+            "duration_ms": 1.234,
+            "client": "127.0.0.1",
+            "model": "m",
+            "version": 3,
+            "texts": 1,
+        },
+        {"event": 'quote " backslash \\ tab \t nul \x00 line\nbreak', "ünï": "çødé ✓ 𝄞", "n": None, "f": 1e300},
+        {"odd": _Odd(), "list": [1, "a", {"b": 2.5}]},  # encoded through default=str
+        {"ts": "caller's own", "level": "x", "extra": 1},  # a field shares the head's keys: merge semantics
+        {"logger": "other"},
+        {},
+    ],
+)
+def test_written_fields_lines_equal_the_formatters_line(fields: dict[str, Any]) -> None:
+    # The writer thread splices the head's bytes onto the fields' encoding (logs.fields_line); the
+    # line must be byte for byte the one JsonFormatter makes of a LogRecord carrying the same fields,
+    # and read back by the standard library's json (an outside reader) with the head's keys first.
+    from textsieve.service.logs import ACCESS, fields_line
+
+    created = 1_764_777_384.8837
+    record = logging.LogRecord(ACCESS, logging.INFO, __file__, 1, "request", None, None)
+    record.created = created
+    record.fields = fields
+    line = fields_line(created, ACCESS, fields)
+    assert line == JsonFormatter().format(record)
+    parsed = json.loads(line)
+    assert list(parsed)[:3] == ["ts", "level", "logger"]
+    assert parsed["ts"] == fields.get(
+        "ts", dt.datetime.fromtimestamp(created, dt.UTC).isoformat(timespec="milliseconds")
+    )
+    assert len(parsed) == len({"ts", "level", "logger"} | set(fields))
+
+
+def test_a_fields_line_with_a_key_json_cannot_hold_is_refused_as_before() -> None:
+    # orjson refuses non-string keys (TypeError); the writer then writes an "unwritable" note.
+    from textsieve.service.logs import _fields_line_or_note
+
+    line = json.loads(_fields_line_or_note(0.0, "textsieve.access", {1: "x"}))  # type: ignore[dict-item]
+    assert line["event"] == "unwritable" and line["error"].startswith("TypeError")

@@ -227,3 +227,32 @@ async def test_a_change_read_just_before_the_registry_went_away_is_acted_on_once
         assert not body["degraded"]
         r = await client.post("/v1/predict", json={"texts": PROBE})
         assert r.json()["version"] == 2
+
+
+async def test_acquire_live_counts_as_acquire_does_and_leaves_pins_to_it(registry_dir: Path) -> None:
+    # The predict route takes the live version without a coroutine (ModelSet.acquire_live); a
+    # request counted that way must hold its version through a swap exactly as acquire's does.
+    async with serving(settings_for(registry_dir, poll_seconds=600)) as (app, client):
+        models = app.state.models
+        live = models.live[MODEL]
+        before = live.active
+        assert models.acquire_live(MODEL, None) is live and models.acquire_live(None, live.version) is live
+        assert live.active == before + 2
+        models.release(live)
+        models.release(live)
+        assert models.acquire_live(MODEL, live.version + 1) is None  # a pin: acquire's to load
+        assert models.acquire_live("no-such-model", None) is None  # acquire's to word the refusal
+        assert live.active == before
+        old = models.acquire_live(None, None)
+        assert old is live
+        await _registry("promote", registry_dir, MODEL, 2, "live", reason="swap", actor="tests", force=True)
+        await models.refresh(MODEL, why="test")
+        assert models.live[MODEL].version == 2 and not old.closed
+        results, scores = await old.batcher.run(PROBE, 2, None, keep_scores=False)
+        assert len(results) == len(PROBE) and scores is None
+        models.release(old)
+        for _ in range(100):
+            if old.closed:
+                break
+            await asyncio.sleep(0.01)
+        assert old.closed
