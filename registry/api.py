@@ -30,6 +30,7 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 from types import TracebackType
+from typing import TYPE_CHECKING
 
 from textsieve.environment import POSTGRES_SCHEMES as PG_SCHEMES
 from textsieve.errors import (
@@ -45,6 +46,7 @@ from textsieve.errors import (
 from textsieve.registry._db import Backend, Tx
 from textsieve.registry.blobs import OWNER_FILE, BlobStore, materialize
 from textsieve.registry.bundle import Bundle, check_card, open_bundle
+from textsieve.registry.drift_queries import DriftQueries
 from textsieve.registry.evalsets import (
     LabelledText,
     NormalisedEvalset,
@@ -75,6 +77,12 @@ from textsieve.registry.records import (
 from textsieve.registry.shadow import ShadowCounts, StoredText, Tally
 from textsieve.registry.shadow_queries import ShadowQueries
 from textsieve.registry.verdicts import Verdicts
+
+if TYPE_CHECKING:
+    import numpy as np
+    from numpy.typing import NDArray
+
+    from textsieve.registry.drift import StoredWindow
 
 DB_FILE = "registry.sqlite3"
 BLOB_DIR = "blobs"
@@ -1063,6 +1071,35 @@ class Registry:
         with self.backend.read() as tx:
             self._require_model(Queries(tx), model)
             return ShadowQueries(tx).texts(model, live_version, candidate_version, max(1, limit))
+
+    # -- drift windows (shared by replicas, see registry/drift.py) ----------------------------
+    def add_drift_counts(
+        self,
+        model: str,
+        version: int,
+        replica: str,
+        texts: int,
+        counts: NDArray[np.int64],
+        *,
+        window_texts: int,
+    ) -> StoredWindow:
+        """Store one replica's flush of a version's drift counts, delete the rows no window of
+        ``window_texts`` can reach any more, and return the window: one transaction."""
+        model, version = validate_model_name(model), validate_version(version)
+        now = utc_now()
+        with self.backend.write() as tx:
+            dq = DriftQueries(tx)
+            if texts > 0:
+                self._require_model(Queries(tx), model)
+                dq.add(model, version, replica, now, texts, counts)
+                dq.prune(model, version, window_texts)
+            return dq.window(model, version, window_texts, len(counts))
+
+    def drift_window(self, model: str, version: int, *, window_texts: int, size: int) -> StoredWindow:
+        """A version's drift window: its newest rows, every replica's, summing to ``window_texts`` texts."""
+        model, version = validate_model_name(model), validate_version(version)
+        with self.backend.read() as tx:
+            return DriftQueries(tx).window(model, version, window_texts, size)
 
     # -- helpers --------------------------------------------------------------------------
     def _gates(

@@ -1,7 +1,8 @@
 """Drift signals: what texts look like to a model, as histograms a baseline and a live window share.
 
 Five signals, each a histogram over fixed bins so that the export's baseline (the validation
-texts) and a replica's rolling window of live texts are comparable bin for bin:
+texts) and the rolling window of live texts (shared by replicas through the registry) are
+comparable bin for bin:
 
 - ``tokens``: tokens per text before truncation;
 - ``unknown_share``: share of a text's kept tokens outside the vocabulary;
@@ -17,7 +18,6 @@ from :mod:`textsieve.registry.stats`; the bands are the usual reading (common pr
 
 from __future__ import annotations
 
-from collections import deque
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
@@ -220,36 +220,110 @@ def compare(layout: Layout, base: DriftBaseline | None, counts: NDArray[np.int64
 
 
 class Window:
-    """The most recent ``size`` texts' counts (whole batches: it may hold up to one batch more).
+    """A served version's drift window as one replica sees it.
 
-    Batches are kept as vectors with a running sum, so adding one and dropping the oldest are
-    a vector addition each; the server thread is the only writer.
+    The window is shared by replicas (README, "Live traffic"): every replica adds its batches'
+    counts to ``pending`` (one vector addition on the server thread) and its flushing task moves
+    them to the registry as one row (:func:`encode_counts`); the registry hands back the newest
+    rows of every replica summing to at least ``size`` texts (``shared``). What a replica reports
+    is ``shared`` plus what it has counted and not flushed yet, so every replica reports the same
+    figures once all have flushed, and a reload or a restart finds the window where it was.
     """
 
     def __init__(self, layout: Layout, size: int) -> None:
         self.layout = layout
         self.size = size
-        self._chunks: deque[tuple[int, NDArray[np.int64]]] = deque()
-        self._total = np.zeros(layout.size, dtype=np.int64)
-        self._texts = 0
+        self._pending = np.zeros(layout.size, dtype=np.int64)
+        self._pending_texts = 0
+        self._flushing: tuple[int, NDArray[np.int64]] | None = None  # taken, not yet in ``shared``
+        self._shared = np.zeros(layout.size, dtype=np.int64)
+        self._shared_texts = 0
+        self.flushes = 0  # flushes begun: a read begun before one must not overwrite what it settles
 
     def add(self, texts: int, counts: NDArray[np.int64]) -> None:
         if texts <= 0 or len(counts) != self.layout.size:
             return
-        self._chunks.append((texts, counts))
-        self._total += counts
-        self._texts += texts
-        while self._chunks and self._texts - self._chunks[0][0] >= self.size:
-            n, old = self._chunks.popleft()
-            self._total -= old
-            self._texts -= n
+        self._pending += counts
+        self._pending_texts += texts
+
+    def take(self) -> tuple[int, NDArray[np.int64]]:
+        """The counts not flushed yet, to be written; they still count until :meth:`settle` or :meth:`put_back`."""
+        taken = (self._pending_texts, self._pending)
+        self._flushing = taken
+        self.flushes += 1
+        self._pending = np.zeros(self.layout.size, dtype=np.int64)
+        self._pending_texts = 0
+        return taken
+
+    def put_back(self) -> None:
+        """The flush failed: what it took is pending again, for the next one."""
+        if self._flushing is not None:
+            texts, counts = self._flushing
+            self._flushing = None
+            self._pending += counts
+            self._pending_texts += texts
+
+    def settle(self, stored: StoredWindow) -> None:
+        """The flush landed (or there was nothing to write): ``stored`` is the registry's window now."""
+        self._flushing = None
+        self.read(stored)
+
+    @property
+    def flushing(self) -> bool:
+        return self._flushing is not None
+
+    def read(self, stored: StoredWindow) -> None:
+        """``stored`` is the registry's window now (read while no flush of this window was under way)."""
+        if stored.texts == 0 or len(stored.counts) != self.layout.size:
+            self._shared = np.zeros(self.layout.size, dtype=np.int64)
+            self._shared_texts = 0
+        else:
+            self._shared, self._shared_texts = stored.counts, stored.texts
+
+    @property
+    def pending_texts(self) -> int:
+        return self._pending_texts
 
     @property
     def texts(self) -> int:
-        return self._texts
+        flushing = 0 if self._flushing is None else self._flushing[0]
+        return self._shared_texts + self._pending_texts + flushing
 
     def counts(self) -> NDArray[np.int64]:
-        return self._total.copy()
+        out = self._shared + self._pending
+        if self._flushing is not None:
+            out = out + self._flushing[1]
+        return out
+
+
+@dataclass(frozen=True)
+class StoredWindow:
+    """The registry's window of one version: the sum of its newest rows (every replica's flushes)."""
+
+    texts: int
+    counts: NDArray[np.int64]
+    rows: int
+
+
+def encode_counts(counts: NDArray[np.int64]) -> str:
+    """A count vector as stored: decimal integers separated by commas (text, so both engines store
+    the same value; most bins are small, so it is about as short as 8-byte integers)."""
+    return ",".join(map(str, counts.tolist()))
+
+
+def decode_counts(text: str) -> NDArray[np.int64]:
+    return np.array(text.split(","), dtype=np.int64)
+
+
+def newest_rows(texts: Sequence[int], size: int) -> int:
+    """How many of the newest rows (``texts`` newest first) make the window: the fewest whose texts
+    reach ``size``, or all of them."""
+    total = 0
+    for i, n in enumerate(texts):
+        total += n
+        if total >= size:
+            return i + 1
+    return len(texts)
 
 
 __all__ = [
@@ -260,9 +334,13 @@ __all__ = [
     "Layout",
     "SignalDrift",
     "SignalHistogram",
+    "StoredWindow",
     "Window",
     "baseline",
     "compare",
     "count",
     "count_encoded",
+    "decode_counts",
+    "encode_counts",
+    "newest_rows",
 ]

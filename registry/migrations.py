@@ -216,6 +216,26 @@ MIGRATIONS: tuple[Migration, ...] = (
     """,
         additive=True,  # verdicts recorded without a key leave both columns NULL, as older releases do
     ),
+    # Drift windows shared by replicas: each row is one replica's flush of one served version's
+    # drift counts (registry/drift.py, a comma-separated count vector). A version's window is its
+    # newest rows summing to the window's size; older rows are deleted by the writers. A new table
+    # an older release never reads: additive.
+    Migration(
+        "0009_drift_counts",
+        """
+        CREATE TABLE drift_counts (
+            id {serial},
+            model TEXT NOT NULL,
+            version INTEGER NOT NULL,
+            replica TEXT NOT NULL,
+            flushed_at TEXT NOT NULL,
+            texts BIGINT NOT NULL CHECK (texts >= 1),
+            counts TEXT NOT NULL
+        );
+        CREATE INDEX drift_counts_version ON drift_counts (model, version, id)
+    """,
+        additive=True,
+    ),
 )
 
 FIRST_MIGRATION = MIGRATIONS[0].name  # when it was applied is the registry's identity (Registry.registry_id)

@@ -250,10 +250,11 @@ def render_drift(reply: dict[str, Any]) -> str:
     if not reply["versions"]:
         return f"{model}: this replica serves no version of it with a drift window (TEXTSIEVE_DRIFT off, or not served)"
     lines: list[str] = []
+    whose = "this replica's" if reply.get("scope") == "replica" else "the replicas' shared"
     for v in reply["versions"]:
         base = v["baseline"]
         lines.append(
-            f"{model} v{v['version']} ({v['role']}): {v['texts']:,} live texts in this replica's window "
+            f"{model} v{v['version']} ({v['role']}): {v['texts']:,} live texts in {whose} window "
             f"of {v['window_texts']:,}"
         )
         if base is None:

@@ -185,7 +185,8 @@ class Settings(BaseSettings):
         10.0,
         gt=0,
         le=3600,
-        description="how often shadow counts are added to the registry (a crash loses at most this much)",
+        description="how often shadow counts and drift counts are added to the registry "
+        "(a crash loses at most this much)",
     )
     shadow_keep_texts: int = Field(
         0,
@@ -199,7 +200,11 @@ class Settings(BaseSettings):
     shadow_keep_days: float = Field(7.0, gt=0, le=3650, description="kept texts older than this are deleted")
     drift: bool = Field(True, description="count drift signals of live texts per served version")
     drift_window_texts: int = Field(
-        10_000, ge=100, le=10_000_000, description="the rolling window of live texts drift signals are computed over"
+        10_000,
+        ge=100,
+        le=10_000_000,
+        description="the rolling window of live texts drift signals are computed over, "
+        "shared by every replica of the registry",
     )
 
     # The same rules as the registry verbs apply to TEXTSIEVE_REGISTRY and TEXTSIEVE_BLOBS.

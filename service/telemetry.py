@@ -478,6 +478,12 @@ class ServiceMetrics:
                 registry=r,
             ),
         )
+        self.drift_flushes = Counter(
+            "textsieve_drift_flushes_total",
+            "Drift-count flushes to the registry, per outcome (ok; failed: the counts are kept for the next).",
+            ("outcome",),
+            registry=r,
+        )
         self.live_loop = LiveLoopCollector()
         r.register(self.live_loop)
         ProcessCollector(registry=r)  # the server process's own process_* series

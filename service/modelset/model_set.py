@@ -23,9 +23,10 @@ settings change alone swaps nothing and keeps pinned versions loaded.
 Shadow candidates. With ``shadow_rate`` > 0 a model's ``candidate`` version is loaded beside its
 live one (no batcher: only the shadow task scores it, see service/liveloop/shadow.py) and
 reloaded or dropped when the registry says the candidate changed. A candidate that fails to load
-only stops shadow scoring; serving goes on. Every live and pinned version keeps a drift window
-(registry/drift.py) unless ``drift`` is off. The window belongs to the loaded version: it starts
-empty at each load (startup, promotion, a rollback to a version served before) and goes with it.
+only stops shadow scoring; serving goes on. Every live and pinned version has a drift window
+(registry/drift.py) unless ``drift`` is off. The window belongs to the version, not to the loaded
+copy nor to this replica: replicas share it through the registry (service/liveloop/drift.py), so
+a reload (a rollback to a version served before) or a restart finds it where it was.
 """
 
 from __future__ import annotations
@@ -43,10 +44,11 @@ from typing import NoReturn
 
 from textsieve.errors import InputError, NotFoundError, StateError, TextsieveError, UnavailableError
 from textsieve.registry import State
-from textsieve.registry.drift import DriftReport, Layout, Window, compare
+from textsieve.registry.drift import DriftReport, Layout, compare
 from textsieve.registry.model_settings import REVIEW_THRESHOLD
 from textsieve.service.inference.batcher import Batcher, InferencePool
 from textsieve.service.inference.memory import release_freed_memory
+from textsieve.service.liveloop.drift import DriftRecorder
 from textsieve.service.liveloop.shadow import ShadowScorer
 from textsieve.service.modelset.loader import ServedModel, load_served
 from textsieve.service.modelset.registry_thread import RegistryThread, private_detail
@@ -101,6 +103,7 @@ class ModelSet:
         # Shadow scoring: each model's candidate version, loaded beside its live one.
         self.candidates: dict[str, ServedModel] = {}
         self.shadow: ShadowScorer | None = None
+        self.drift = DriftRecorder(settings, store, metrics, served=self._served_versions) if settings.drift else None
         if settings.shadow_rate > 0:
             self.shadow = ShadowScorer(
                 settings, pool, store, metrics, candidate=self.use_candidate, release=self.release
@@ -111,6 +114,8 @@ class ModelSet:
         """Load every served model's live version, then poll for changes."""
         if self.shadow is not None:
             self.shadow.start()
+        if self.drift is not None:
+            self.drift.start()
         try:
             await self._discover()
         except TextsieveError as exc:
@@ -145,6 +150,8 @@ class ModelSet:
                 await self._poller
         if self.shadow is not None:
             await self.shadow.stop()  # flushes what was counted while the registry is still open
+        if self.drift is not None:
+            await self.drift.stop()  # likewise; no request is answered any more, so nothing is counted after it
         served = {*self.live.values(), *self.pinned.values(), *self.candidates.values(), *self._retiring}
         self.live.clear()
         self.pinned.clear()
@@ -240,8 +247,8 @@ class ModelSet:
         served.review_threshold = self.review_thresholds.get(name)
         if not batcher:  # a shadow candidate: scored by the shadow task only, no drift window
             return served
-        if self.settings.drift:
-            served.window = Window(Layout.of(len(served.labels), served.baseline), self.settings.drift_window_texts)
+        if self.drift is not None:
+            served.window = await self.drift.window(name, version, Layout.of(len(served.labels), served.baseline))
         served.batcher = Batcher(
             served,
             self.pool,
@@ -499,6 +506,9 @@ class ModelSet:
             and self.live.get(served.name) is served  # live traffic only, not pinned requests
             and random.random() < self.settings.shadow_rate
         )
+
+    def _served_versions(self) -> set[tuple[str, int]]:
+        return {(s.name, s.version) for s in [*self.live.values(), *self.pinned.values()]}
 
     def drift_reports(self, name: str | None = None) -> list[tuple[str, int, DriftReport]]:
         """(model, version, report) of every served version with a drift window (of ``name`` only, if given)."""

@@ -15,6 +15,9 @@ from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from typing import ParamSpec, TypeVar
 
+import numpy as np
+from numpy.typing import NDArray
+
 from textsieve.errors import RegistryError, StateError, TextsieveError, UnavailableError
 from textsieve.registry import (
     Bundle,
@@ -27,6 +30,7 @@ from textsieve.registry import (
     VersionInfo,
     open_registry,
 )
+from textsieve.registry.drift import StoredWindow
 from textsieve.registry.shadow import Tally
 from textsieve.registry.verdicts import Recorded
 from textsieve.service.settings import public_location
@@ -221,6 +225,16 @@ class RegistryThread:
             keep_texts=keep_texts,
             keep_seconds=keep_seconds,
         )
+
+    async def add_drift_counts(
+        self, model: str, version: int, replica: str, texts: int, counts: NDArray[np.int64], *, window_texts: int
+    ) -> StoredWindow:
+        return await self._run(
+            self.registry.add_drift_counts, model, version, replica, texts, counts, window_texts=window_texts
+        )
+
+    async def drift_window(self, model: str, version: int, *, window_texts: int, size: int) -> StoredWindow:
+        return await self._run(self.registry.drift_window, model, version, window_texts=window_texts, size=size)
 
     async def close(self) -> None:
         if self._registry is not None:

@@ -1,4 +1,8 @@
-"""``GET /v1/models/{name}/drift``: how this replica's live texts compare with each version's baseline."""
+"""``GET /v1/models/{name}/drift``: how the live texts compare with each version's baseline.
+
+The window is shared by replicas (service/liveloop/drift.py): it is read from the registry for
+the answer, plus what this replica counted and has not flushed yet, so every replica gives the
+same figures once all have flushed."""
 
 from __future__ import annotations
 
@@ -62,9 +66,11 @@ def _detail(report: DriftReport) -> str:
     tags=[Tag.REGISTRY],
     response_model=DriftView,
     responses=_PROBLEM,
-    summary="Drift signals of the live texts this replica answered, against each served version's baseline",
+    summary="Drift signals of the live texts every replica answered, against each served version's baseline",
 )
 async def get_drift(name: str, store: RegistryDep, models: ModelsDep, settings: SettingsDep) -> DriftView:
+    if models.drift is not None:
+        await models.drift.refresh(name)  # a registry outage leaves the last window read: still an answer
     reports = models.drift_reports(name)
     if not reports:
         await store.live(name)  # NotFoundError (404) for a model the registry does not know
@@ -103,7 +109,7 @@ async def get_drift(name: str, store: RegistryDep, models: ModelsDep, settings: 
                 ],
             )
         )
-    return DriftView(model=name, scope="replica", versions=versions)
+    return DriftView(model=name, scope="shared", versions=versions)
 
 
 __all__ = ["router"]

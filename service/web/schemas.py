@@ -292,7 +292,7 @@ class BaselineView(BaseModel):
 class VersionDrift(BaseModel):
     version: int
     role: Literal["live", "pinned"]
-    texts: int = Field(description="live texts in this replica's window")
+    texts: int = Field(description="live texts in the window, every replica's")
     window_texts: int = Field(description="the window's size (TEXTSIEVE_DRIFT_WINDOW_TEXTS)")
     unknown_rate: float | None
     truncation_rate: float | None
@@ -303,8 +303,13 @@ class VersionDrift(BaseModel):
 
 class DriftView(BaseModel):
     model: str
-    scope: Literal["replica"] = Field(
-        "replica", description="figures of the replica that answered; each replica keeps its own window"
+    # "replica" is what releases before the shared window answer (each replica's own window); clients
+    # of this release still read their replies.
+    scope: Literal["shared", "replica"] = Field(
+        "shared",
+        description="shared: figures of the window every replica shares through the registry (plus the "
+        "answering replica's counts not flushed yet, at most TEXTSIEVE_SHADOW_FLUSH_SECONDS old); "
+        "replica: an older release, whose replicas each keep their own window",
     )
     versions: list[VersionDrift]
 

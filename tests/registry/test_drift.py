@@ -1,5 +1,6 @@
 """Drift signals (registry/drift.py): counting against NumPy, PSI against a hand-worked figure,
-Jensen–Shannon against SciPy on real histograms, the rolling window, and bundles without a baseline."""
+Jensen–Shannon against SciPy on real histograms, a replica's view of the shared window, and bundles
+without a baseline."""
 
 from __future__ import annotations
 
@@ -16,7 +17,16 @@ from tests.helpers.jsonl import read_jsonl
 from tests.helpers.registries import edit_manifest
 from textsieve.registry import stats
 from textsieve.registry.bundle import open_bundle
-from textsieve.registry.drift import SIGNALS, Layout, Window, compare, count, count_encoded
+from textsieve.registry.drift import (
+    SIGNALS,
+    Layout,
+    StoredWindow,
+    Window,
+    compare,
+    count,
+    count_encoded,
+    newest_rows,
+)
 from textsieve.registry.runtime import Predictor
 
 
@@ -155,19 +165,34 @@ def test_baseline_counts_every_validation_text(tiny_bundles: dict[str, Path], ti
         assert sum(drift.histograms[name].counts) == len(valid), name
 
 
-def test_window_keeps_the_most_recent_texts() -> None:
+def test_a_replicas_window_is_the_registrys_plus_what_it_has_not_flushed() -> None:
     layout = Layout.of(2)
     w = Window(layout, size=100)
 
     def batch(n: int, label: int) -> np.ndarray:
         return count(layout, np.full(n, 5), np.full(n, 5), np.zeros(n, np.int64), np.full(n, label), np.full(n, 0.9))
 
+    labels = layout.slices()["label"]
     w.add(60, batch(60, 0))
-    w.add(60, batch(60, 1))
-    assert w.texts == 120  # a batch more than the size at most: the oldest goes once it is not needed
-    w.add(60, batch(60, 1))
-    assert w.texts == 120
-    assert w.counts()[layout.slices()["label"]].tolist() == [0, 120]
+    texts, counts = w.take()
+    assert texts == 60 and w.texts == 60, "taken counts still count while their flush is under way"
+    w.add(10, batch(10, 1))
+    w.put_back()  # the flush failed: nothing is lost, the next flush writes both
+    assert w.texts == 70 and w.counts()[labels].tolist() == [60, 10]
+    texts, counts = w.take()
+    assert texts == 70
+    # The registry's window now holds that row and another replica's 40 texts of label 1.
+    w.settle(StoredWindow(110, counts + batch(40, 1), rows=2))
+    assert w.texts == 110 and w.counts()[labels].tolist() == [60, 50]
+    w.add(5, batch(5, 0))
+    assert w.texts == 115 and w.counts()[labels].tolist() == [65, 50]
+
+
+def test_the_newest_rows_holding_the_window_make_it() -> None:
+    assert newest_rows([60, 60, 60], 100) == 2  # a row more than the size at most
+    assert newest_rows([100, 60], 100) == 1
+    assert newest_rows([10, 20], 100) == 2  # fewer texts than the size: every row
+    assert newest_rows([], 100) == 0
 
 
 def test_a_bundle_without_a_baseline_still_loads(tiny_bundles: dict[str, Path], tmp_path: Path) -> None:

@@ -1,7 +1,7 @@
 """``GET /v1/models/{name}/drift``, the drift series in /metrics and ``textsieve drift``: the window
 holds what was answered (checked against the replies themselves), PSI against its formula in
 NumPy and Jensen–Shannon against SciPy, a bundle without a baseline says so, and a version loaded
-again (a rollback, a restart) starts with an empty window."""
+again (a rollback, a restart) continues its window."""
 
 from __future__ import annotations
 
@@ -52,7 +52,7 @@ async def test_drift_window_matches_the_replies(
         missing = await client.get("/v1/models/nosuchmodel/drift")
     assert_problem(missing, 404, "not-found")
     [v] = view["versions"]
-    assert (view["model"], view["scope"], v["version"], v["role"]) == (MODEL, "replica", 1, "live")
+    assert (view["model"], view["scope"], v["version"], v["role"]) == (MODEL, "shared", 1, "live")
     assert v["texts"] == len(texts)
     assert v["truncation_rate"] == pytest.approx(sum(r["truncated"] for r in results) / len(texts))
     base = open_bundle(tiny_bundles["a"]).manifest.drift
@@ -168,16 +168,19 @@ async def _await_live(app: Any, version: int) -> None:
         await asyncio.sleep(0.05)
 
 
-async def test_a_reloaded_version_starts_with_an_empty_window(registry_dir: Path) -> None:
-    """The window lives in the replica's memory with the loaded version: a rollback to a version
-    served before, or a restart, loads it afresh and its window counts from 0 (README, Drift)."""
+async def test_a_reloaded_version_and_a_restart_continue_the_window(registry_dir: Path) -> None:
+    """The window belongs to the version and lives in the registry: a rollback to a version served
+    before, or a restart, finds it where it was (README, Drift); a version served for the first time
+    starts empty. The restart finds what the shutdown's own flush wrote (the interval is never reached)."""
 
     def registry(call: str, *args: Any, **kwargs: Any) -> Any:
         with open_registry(registry_dir) as reg:
             return getattr(reg, call)(*args, **kwargs)
 
     texts = ["my card was charged twice", "the boiler repair was quick", "cannot log in", "thanks!", "refund"]
-    async with serving(settings_for(registry_dir, inference="threads", shadow_rate=0.0, poll_seconds=0.1)) as (
+    async with serving(
+        settings_for(registry_dir, inference="threads", shadow_rate=0.0, poll_seconds=0.1, shadow_flush_seconds=3600)
+    ) as (
         app,
         client,
     ):
@@ -189,8 +192,8 @@ async def test_a_reloaded_version_starts_with_an_empty_window(registry_dir: Path
         assert await _window_texts(client) == {2: 3}
         await asyncio.to_thread(registry, "rollback", MODEL, reason="back to 1", actor="tests")
         await _await_live(app, 1)
-        assert await _window_texts(client) == {1: 0}, "version 1's earlier 5 texts are not kept"
+        assert await _window_texts(client) == {1: 5}, "version 1's earlier 5 texts are kept"
         assert (await client.post("/v1/predict", json={"texts": texts[:2]})).status_code == 200
-        assert await _window_texts(client) == {1: 2}
+        assert await _window_texts(client) == {1: 7}
     async with serving(settings_for(registry_dir, inference="threads", shadow_rate=0.0)) as (_, client):
-        assert await _window_texts(client) == {1: 0}, "a restart starts every window empty"
+        assert await _window_texts(client) == {1: 7}, "a restart continues the window"
