@@ -367,19 +367,11 @@ def test_a_labelled_file_refuses_what_the_service_refuses(tmp_path: Path, text: 
         assert message.endswith(why), message
 
 
-def test_json_lines_are_read_a_line_at_a_time(tmp_path: Path) -> None:
-    """A 50 MB JSONL file held its bytes, its decoded text and its list of lines at once while being
-    read (+430 MB peak; found by measuring). Read a line at a time, what is allocated beyond the
-    examples kept is about one line, not the file (tracemalloc, Python's own allocation tracer)."""
+def _read_traced(path: Path) -> tuple[list[Example], int, list[int]]:
+    """``load_examples(path)``, what it allocated beyond the examples it kept at its peak (tracemalloc,
+    Python's own allocation tracer), and the byte counts it reported as progress."""
     import tracemalloc
 
-    path = tmp_path / "big.jsonl"
-    rows = [
-        {"text": f"invented message {i} about a borrowed drill — please help", "label": "ab"[i % 2]}
-        for i in range(20000)
-    ]
-    path.write_text(_jsonl(*rows), encoding="utf-8")
-    size = path.stat().st_size
     reported: list[int] = []
     tracemalloc.start()
     try:
@@ -387,8 +379,23 @@ def test_json_lines_are_read_a_line_at_a_time(tmp_path: Path) -> None:
         kept, peak = tracemalloc.get_traced_memory()
     finally:
         tracemalloc.stop()
+    return examples, peak - kept, reported
+
+
+def test_json_lines_are_read_a_line_at_a_time(tmp_path: Path) -> None:
+    """A 50 MB JSONL file held its bytes, its decoded text and its list of lines at once while being
+    read (+430 MB peak; found by measuring). Read a line at a time, what is allocated beyond the
+    examples kept is about one line, not the file (tracemalloc, Python's own allocation tracer)."""
+    path = tmp_path / "big.jsonl"
+    rows = [
+        {"text": f"invented message {i} about a borrowed drill — please help", "label": "ab"[i % 2]}
+        for i in range(20000)
+    ]
+    path.write_text(_jsonl(*rows), encoding="utf-8")
+    size = path.stat().st_size
+    examples, beyond, reported = _read_traced(path)
     assert [e.text for e in examples] == [r["text"] for r in rows]
-    assert peak - kept < size // 4, (peak - kept, size)
+    assert beyond < size // 4, (beyond, size)
     assert sum(reported) == size and len(reported) == -(-size // (1 << 20))  # a call a MiB, the rest at the end
 
 
@@ -398,7 +405,6 @@ def test_csv_and_tsv_are_read_a_line_at_a_time(tmp_path: Path, suffix: str) -> N
     543 MB peak for load_examples alone (/usr/bin/time -v, found by measuring). Read a line at a time,
     what is allocated beyond the examples kept is about one line (tracemalloc, Python's own tracer)."""
     import csv
-    import tracemalloc
 
     path = tmp_path / f"big{suffix}"
     rows = [
@@ -409,15 +415,9 @@ def test_csv_and_tsv_are_read_a_line_at_a_time(tmp_path: Path, suffix: str) -> N
         writer.writerow(["text", "label"])
         writer.writerows(rows)
     size = path.stat().st_size
-    reported: list[int] = []
-    tracemalloc.start()
-    try:
-        examples = load_examples(path, progress=reported.append)
-        kept, peak = tracemalloc.get_traced_memory()
-    finally:
-        tracemalloc.stop()
+    examples, beyond, reported = _read_traced(path)
     assert [(e.text, e.label) for e in examples] == rows  # Python's csv module wrote them
-    assert peak - kept < size // 4, (peak - kept, size)
+    assert beyond < size // 4, (beyond, size)
     assert sum(reported) == size and len(reported) == -(-size // (1 << 20))  # a call a MiB, the rest at the end
 
 

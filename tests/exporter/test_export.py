@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 import torch
 
+from tests.helpers.calibration import BOUND_CASES, reference_minimum
 from textsieve.cli import main
 from textsieve.errors import ParityError
 from textsieve.exporter.card import ordinal, render_card
@@ -183,25 +184,16 @@ def test_validation_texts_all_told_apart_leave_the_temperature_at_1() -> None:
 
 
 @pytest.mark.parametrize(
-    ("logits", "targets", "bound", "edge", "card_says", "report_says"),
+    ("bound", "card_says", "report_says"),
     [
         pytest.param(
-            # Every text's own class has the lower logit: the model is sure and wrong, so flattening every
-            # probability towards 1/2 lowers the NLL all the way up (Guo et al., 2017, NLL in §4.2).
-            [[3.0, 0.0], [0.0, 3.0], [2.5, -1.0], [-1.0, 2.0]],
-            [1, 0, 1, 0],
             "upper",
-            20.0,
             "stopped at the upper\nbound of its search, T = 20",
             "stopped at its upper bound; the model's scores carry little information",
             id="useless scores: upper bound",
         ),
         pytest.param(
-            # Two texts told apart and one tie, which no temperature moves off 1/2: the NLL falls as T shrinks.
-            [[1.0, 0.0], [0.0, 1.0], [0.0, 0.0]],
-            [0, 1, 0],
             "lower",
-            0.05,
             "stopped at the lower\nbound of its search, T = 0.05",
             "stopped at its lower bound; every logit is multiplied by 20",
             id="ties: lower bound",
@@ -209,23 +201,14 @@ def test_validation_texts_all_told_apart_leave_the_temperature_at_1() -> None:
     ],
 )
 def test_a_temperature_at_the_search_bound_is_not_called_fitted(
-    tiny_bundles: dict[str, Path],
-    logits: list[list[float]],
-    targets: list[int],
-    bound: str,
-    edge: float,
-    card_says: str,
-    report_says: str,
+    tiny_bundles: dict[str, Path], bound: str, card_says: str, report_says: str
 ) -> None:
-    from scipy.optimize import minimize_scalar
-
     from textsieve.exporter.export import _print_parity
-    from textsieve.registry.measures import TEMPERATURE_BOUNDS, temperature_bound
+    from textsieve.registry.measures import temperature_bound
 
+    logits, targets, edge = BOUND_CASES[bound]
     z, y = np.array(logits), np.array(targets)
-    # scipy's bounded minimiser as the reference: it ends at the same bound, so no minimum lies inside.
-    best = minimize_scalar(lambda t: nll(z, y, t), bounds=TEMPERATURE_BOUNDS, method="bounded", options={"xatol": 1e-8})
-    assert best.x == pytest.approx(edge, abs=1e-4)
+    assert reference_minimum(z, y) == pytest.approx(edge, abs=1e-4)  # no minimum inside the bracket
     cal = calibrate(z, y)
     assert cal.temperature == pytest.approx(edge, rel=1e-6) and temperature_bound(cal.temperature) == bound
     m = open_bundle(tiny_bundles["a"]).manifest

@@ -25,6 +25,7 @@ from sklearn.metrics import (
     log_loss,
 )
 
+from tests.helpers.calibration import BOUND_CASES, reference_minimum
 from tests.helpers.jsonl import read_jsonl
 from textsieve.errors import InputError, NotFoundError
 from textsieve.registry import Registry
@@ -344,46 +345,22 @@ def test_comparison_with_other_labels_is_a_note(
 
 
 @pytest.mark.parametrize(
-    ("logits", "targets", "bound", "edge", "html_says"),
+    ("bound", "html_says"),
     [
         pytest.param(
-            # Every text's own class has the lower logit (sure and wrong): flattening the probabilities
-            # towards 1/2 lowers the NLL all the way up (Guo et al., 2017, NLL in §4.2).
-            [[3.0, 0.0], [0.0, 3.0], [2.5, -1.0], [-1.0, 2.0]],
-            [1, 0, 1, 0],
-            "upper",
-            20.0,
-            "none: not a fit, the search stopped at its upper bound, T = 20.",
-            id="useless scores: upper bound",
+            "upper", "none: not a fit, the search stopped at its upper bound, T = 20.", id="useless scores: upper bound"
         ),
         pytest.param(
-            # Two texts told apart and a tie no temperature moves off 1/2: the NLL falls as T shrinks.
-            [[1.0, 0.0], [0.0, 1.0], [0.0, 0.0]],
-            [0, 1, 0],
-            "lower",
-            0.05,
-            "none: not a fit, the search stopped at its lower bound, T = 0.05.",
-            id="ties: lower bound",
+            "lower", "none: not a fit, the search stopped at its lower bound, T = 0.05.", id="ties: lower bound"
         ),
     ],
 )
 def test_a_refit_temperature_at_the_search_bound_is_not_called_a_choice(
-    compared: dict[str, Any],
-    pair: tuple[Bundle, Bundle],
-    logits: list[list[float]],
-    targets: list[int],
-    bound: str,
-    edge: float,
-    html_says: str,
+    compared: dict[str, Any], pair: tuple[Bundle, Bundle], bound: str, html_says: str
 ) -> None:
-    from scipy.optimize import minimize_scalar
-
-    from textsieve.registry.measures import TEMPERATURE_BOUNDS, nll
-
+    logits, targets, edge = BOUND_CASES[bound]
     z, y = np.array(logits), np.array(targets)
-    # scipy's bounded minimiser as the reference: it ends at the same bound, so no minimum lies inside.
-    best = minimize_scalar(lambda t: nll(z, y, t), bounds=TEMPERATURE_BOUNDS, method="bounded", options={"xatol": 1e-8})
-    assert best.x == pytest.approx(edge, abs=1e-4)
+    assert reference_minimum(z, y) == pytest.approx(edge, abs=1e-4)  # no minimum inside the bracket
     raw = scipy_softmax(z, axis=1)
     scored = build_module._Scored(Predictor.from_bundle(pair[0]), [], z, raw, raw, raw.argmax(axis=1))
     cal = build_module._calibration(y, scored)
