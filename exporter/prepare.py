@@ -194,6 +194,12 @@ def split_validation(
             target, taken = _held_out(rows_of[label]), 0
             for g in progress.tally(order, lambda g: len(label_groups[int(g)])):  # noqa: B023  # used in this loop
                 rows = label_groups[int(g)]
+                if len(rows) == 1:  # most groups: one row of this label, no Counter to build
+                    if taken < target and trained[label] > 1:
+                        held.add(rows[0])
+                        trained[label] -= 1
+                        taken += 1
+                    continue
                 losing = Counter(examples[i].label for i in rows)
                 if taken + len(rows) > target or any(trained[k] <= n for k, n in losing.items()):
                     continue
