@@ -15,7 +15,7 @@ import numpy as np
 
 from textsieve.errors import InputError
 from textsieve.exporter.config import DEFAULT_EMBEDDING_DIM, TrainConfig
-from textsieve.exporter.encode import TokenIds, encode_texts, encode_tokens
+from textsieve.exporter.encode import TokenIds, encode_tokens
 from textsieve.exporter.progress import Progress, bar_wanted, say
 from textsieve.exporter.vectors import PretrainedVectors, load_vectors
 from textsieve.labelled import Example, case_twins, check_labels, load_examples
@@ -55,6 +55,7 @@ def prepare(config: TrainConfig) -> Prepared:
         _warn_of_overlap(train_rows, valid_rows, tokens, config.valid)
     started = time.perf_counter()
     train_tokens = [tokens[e.text] for e in train_rows]
+    valid_tokens = [tokens[e.text] for e in valid_rows]  # split once already: not again to encode them
     tokens.clear()
     vocabulary = build_vocabulary(train_tokens, config)
     lengths = length_info(np.array([len(t) for t in train_tokens]), config)
@@ -63,7 +64,7 @@ def prepare(config: TrainConfig) -> Prepared:
     shown = bar_wanted(config.quiet)
     with Progress(rows, "encoding", enabled=shown, unit="text") as bar:
         train_ids = encode_tokens(train_tokens, vocabulary, lengths.max_length, bar)
-        valid_ids = encode_texts([e.text for e in valid_rows], vocabulary, lengths.max_length, tokenizer, bar)
+        valid_ids = encode_tokens(valid_tokens, vocabulary, lengths.max_length, bar)
     if shown:
         say(
             f"data: vocabulary of {len(vocabulary):,} words built in {built - started:.1f}s, "
