@@ -302,14 +302,24 @@ def test_zsh_completion_carries_each_flags_help(tmp_path: Path) -> None:
     assert answers == ["--workers:inference workers (default: $TEXTSIEVE_WORKERS, else one per core)"]
 
 
-@pytest.mark.skipif(shutil.which("bash") is None, reason="bash is not installed")
-def test_the_completion_verb_prints_code_that_completes_in_bash(tmp_path: Path) -> None:
-    """Source what ``textsieve completion bash`` prints and call its function as bash's ``complete -F`` does."""
+def _bash_with_textsieve(script: str, tmp_path: Path, **env: str) -> subprocess.CompletedProcess[str]:
+    """``script`` run by bash in ``tmp_path`` with a ``textsieve`` launcher first on PATH; it must succeed."""
     bin_dir = tmp_path / "bin"
     bin_dir.mkdir()
     launcher = bin_dir / "textsieve"
     launcher.write_text(f'#!/bin/sh\nexec {shlex.join(CLI)} "$@"\n', encoding="utf-8")
     launcher.chmod(0o755)
+    environ = child_env(PATH=f"{bin_dir}{os.pathsep}{os.environ['PATH']}", **env)
+    out = subprocess.run(
+        ["bash", "-c", script], capture_output=True, text=True, timeout=60, env=environ, cwd=tmp_path, check=False
+    )
+    assert out.returncode == 0, out.stderr
+    return out
+
+
+@pytest.mark.skipif(shutil.which("bash") is None, reason="bash is not installed")
+def test_the_completion_verb_prints_code_that_completes_in_bash(tmp_path: Path) -> None:
+    """Source what ``textsieve completion bash`` prints and call its function as bash's ``complete -F`` does."""
     script = """
 eval "$(textsieve completion bash)"
 complete -p textsieve
@@ -317,9 +327,7 @@ COMP_LINE="textsieve rollback --re"; COMP_POINT=${#COMP_LINE}; COMP_WORDS=(texts
 _python_argcomplete textsieve --re rollback
 printf '%s\\n' "${COMPREPLY[@]}"
 """
-    env = child_env(PATH=f"{bin_dir}{os.pathsep}{os.environ['PATH']}")
-    out = subprocess.run(["bash", "-c", script], capture_output=True, text=True, timeout=60, env=env, check=False)
-    assert out.returncode == 0, out.stderr
+    out = _bash_with_textsieve(script, tmp_path)
     registered, *replies = out.stdout.splitlines()
     assert registered.startswith("complete ") and registered.endswith(" textsieve")
     assert sorted(r.strip() for r in replies) == ["--reason", "--registry"]
@@ -357,22 +365,13 @@ def test_the_bash_completion_code_completes_a_model_name(tmp_path: Path, tiny_bu
     reg = tmp_path / "reg"
     with open_registry(reg) as registry:
         registry.publish(tiny_bundles["a"], "helpdesk", actor="tests")
-    bin_dir = tmp_path / "bin"
-    bin_dir.mkdir()
-    launcher = bin_dir / "textsieve"
-    launcher.write_text(f'#!/bin/sh\nexec {shlex.join(CLI)} "$@"\n', encoding="utf-8")
-    launcher.chmod(0o755)
     script = """
 eval "$(textsieve completion bash)"
 COMP_LINE="textsieve history he"; COMP_POINT=${#COMP_LINE}; COMP_WORDS=(textsieve history he); COMP_CWORD=2
 _python_argcomplete textsieve he history
 printf '%s\\n' "${COMPREPLY[@]}"
 """
-    env = child_env(PATH=f"{bin_dir}{os.pathsep}{os.environ['PATH']}", TEXTSIEVE_REGISTRY=str(reg))
-    out = subprocess.run(
-        ["bash", "-c", script], capture_output=True, text=True, timeout=60, env=env, cwd=tmp_path, check=False
-    )
-    assert out.returncode == 0, out.stderr
+    out = _bash_with_textsieve(script, tmp_path, TEXTSIEVE_REGISTRY=str(reg))
     assert [r.strip() for r in out.stdout.splitlines()] == ["helpdesk"], out
 
 

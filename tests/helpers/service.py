@@ -19,6 +19,7 @@ import httpx
 import pytest
 
 from tests.helpers.net import wait_ready, wait_ready_async
+from tests.helpers.registries import RegistrySpec
 from textsieve.registry import open_registry
 from textsieve.service.settings import Settings
 from textsieve.service.web.app import create_app
@@ -66,6 +67,15 @@ def make_registry(folder: Path, bundles: dict[str, Path], *, live: int | None = 
 @pytest.fixture
 def registry_dir(tmp_path: Path, tiny_bundles: dict[str, Path]) -> Path:
     return make_registry(tmp_path / "registry", tiny_bundles)
+
+
+@pytest.fixture
+def live_spec(spec: RegistrySpec, tiny_bundles: dict[str, Path]) -> RegistrySpec:
+    """``spec`` (a registry on SQLite, then on PostgreSQL) with MODEL v1, the tiny bundle a, live."""
+    with spec.open() as reg:
+        reg.publish(tiny_bundles["a"], MODEL, actor="tests")
+        reg.promote(MODEL, 1, "live", reason="tests start here", actor="tests", force=True)
+    return spec
 
 
 def settings_for(registry: Path, **overrides: Any) -> Settings:

@@ -5,17 +5,15 @@ rows are deleted, and the step is additive (an older release keeps using the reg
 from __future__ import annotations
 
 import threading
-from pathlib import Path
 
 import numpy as np
-import pytest
 
 from tests.helpers.registries import RegistrySpec
+from tests.helpers.service import MODEL  # the model live_spec publishes
 from textsieve.registry import Registry
 from textsieve.registry.drift import Layout, count, decode_counts, encode_counts
 from textsieve.registry.migrations import MIGRATIONS, applied
 
-MODEL = "support"
 LAYOUT = Layout.of(2)
 
 
@@ -23,14 +21,6 @@ def _batch(n: int, label: int, tokens: int = 5) -> np.ndarray:
     return count(
         LAYOUT, np.full(n, tokens), np.full(n, tokens), np.zeros(n, np.int64), np.full(n, label), np.full(n, 0.9)
     )
-
-
-@pytest.fixture
-def published(spec: RegistrySpec, tiny_bundles: dict[str, Path]) -> RegistrySpec:
-    with spec.open() as reg:
-        reg.publish(tiny_bundles["a"], MODEL, actor="tests")
-        reg.promote(MODEL, 1, "live", reason="start", actor="tests", force=True)
-    return spec
 
 
 def test_the_step_is_recorded_as_additive(registry: Registry) -> None:
@@ -44,7 +34,7 @@ def test_the_encoding_round_trips_large_counts() -> None:
     assert decode_counts(encode_counts(counts)).tolist() == counts.tolist()
 
 
-def test_two_replicas_flushing_at_once_make_one_window(published: RegistrySpec) -> None:
+def test_two_replicas_flushing_at_once_make_one_window(live_spec: RegistrySpec) -> None:
     # Two registry handles (two replicas' connections) each flush 20 rows at once; the window is the
     # sum of all 40, computed here with NumPy from what was sent.
     sent: list[np.ndarray] = []
@@ -53,7 +43,7 @@ def test_two_replicas_flushing_at_once_make_one_window(published: RegistrySpec) 
 
     def replica(name: str, label: int) -> None:
         try:
-            with published.open() as reg:
+            with live_spec.open() as reg:
                 for i in range(20):
                     c = _batch(3 + i % 4, label)
                     with lock:
@@ -68,15 +58,15 @@ def test_two_replicas_flushing_at_once_make_one_window(published: RegistrySpec) 
     for t in threads:
         t.join()
     assert not errors
-    with published.open() as reg:
+    with live_spec.open() as reg:
         w = reg.drift_window(MODEL, 1, window_texts=10_000, size=LAYOUT.size)
     assert w.rows == 40
     assert w.texts == 2 * sum(3 + i % 4 for i in range(20))
     assert w.counts.tolist() == np.sum(sent, axis=0).tolist()
 
 
-def test_the_window_is_the_newest_rows_holding_its_texts_and_older_rows_go(published: RegistrySpec) -> None:
-    with published.open() as reg:
+def test_the_window_is_the_newest_rows_holding_its_texts_and_older_rows_go(live_spec: RegistrySpec) -> None:
+    with live_spec.open() as reg:
         for label in (0, 0, 1, 1, 1):  # 60 texts each; a window of 100 needs the newest two
             w = reg.add_drift_counts(MODEL, 1, "r", 60, _batch(60, label), window_texts=100)
         assert (w.texts, w.rows) == (120, 2)

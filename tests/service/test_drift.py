@@ -17,22 +17,15 @@ import numpy as np
 import pytest
 from scipy.spatial.distance import jensenshannon
 
+from tests.helpers.drift import psi_numpy, tokens_histogram
 from tests.helpers.jsonl import read_jsonl
 from tests.helpers.registries import edit_manifest
 from tests.helpers.service import MODEL, assert_problem, serving, settings_for
 from textsieve.registry import open_registry, stats
 from textsieve.registry.bundle import open_bundle
-from textsieve.registry.stats import PSI_FLOOR
 from textsieve.service.client import render_drift
 
 pytestmark = pytest.mark.anyio
-
-
-def _psi_numpy(expected: list[int], actual: list[int]) -> float:
-    # PSI = Σ (a_i − e_i) · ln(a_i / e_i) over shares (Yurdakul, 2018, eq. 1), floored as documented.
-    e = np.maximum(np.asarray(expected, float) / sum(expected), PSI_FLOOR)
-    a = np.maximum(np.asarray(actual, float) / sum(actual), PSI_FLOOR)
-    return float(np.sum((a - e) * np.log(a / e)))
 
 
 async def test_drift_window_matches_the_replies(
@@ -62,17 +55,16 @@ async def test_drift_window_matches_the_replies(
     labels = open_bundle(tiny_bundles["a"]).manifest.labels
     live_mix = [sum(r["label"] == name for r in results) for name in labels]  # from the replies themselves
     expected_mix = base.histograms["label"].counts
-    assert signals["label"]["psi"] == pytest.approx(_psi_numpy(expected_mix, live_mix), abs=1e-12)
+    assert signals["label"]["psi"] == pytest.approx(psi_numpy(expected_mix, live_mix), abs=1e-12)
     # Reference: scipy.spatial.distance.jensenshannon (natural log).
     assert signals["label"]["js_distance"] == pytest.approx(
         float(jensenshannon(np.asarray(expected_mix, float), np.asarray(live_mix, float))), abs=1e-12
     )
     edges = base.histograms["tokens"].edges
     assert edges is not None
-    lengths = np.clip([r["tokens"] for r in results], edges[0], edges[-1])
-    live_tokens = np.histogram(lengths, bins=np.asarray(edges, float))[0].tolist()  # NumPy's histogram
+    live_tokens = tokens_histogram(results, edges)
     assert signals["tokens"]["psi"] == pytest.approx(
-        _psi_numpy(base.histograms["tokens"].counts, live_tokens), abs=1e-12
+        psi_numpy(base.histograms["tokens"].counts, live_tokens), abs=1e-12
     )
     for s in signals.values():
         # A band only from the window size at which the baseline's own texts would read stable 95

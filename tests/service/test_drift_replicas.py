@@ -15,9 +15,9 @@ from pathlib import Path
 from typing import Any
 
 import httpx
-import numpy as np
 import pytest
 
+from tests.helpers.drift import psi_numpy, tokens_histogram
 from tests.helpers.environment import child_env
 from tests.helpers.jsonl import read_jsonl
 from tests.helpers.registries import RegistrySpec
@@ -25,27 +25,10 @@ from tests.helpers.servers import ServerProcess
 from tests.helpers.service import MODEL, serving, settings_for
 from textsieve.errors import UnavailableError
 from textsieve.registry.bundle import open_bundle
-from textsieve.registry.stats import PSI_FLOOR
 from textsieve.service.client import render_drift
 from textsieve.service.settings import Settings
 
 pytestmark = pytest.mark.anyio
-
-
-def _psi_numpy(expected: list[int], actual: list[int]) -> float:
-    # PSI = Σ (a_i − e_i) · ln(a_i / e_i) over shares (Yurdakul, 2018, eq. 1), floored as documented.
-    e = np.maximum(np.asarray(expected, float) / sum(expected), PSI_FLOOR)
-    a = np.maximum(np.asarray(actual, float) / sum(actual), PSI_FLOOR)
-    return float(np.sum((a - e) * np.log(a / e)))
-
-
-@pytest.fixture
-def shared(spec: RegistrySpec, tiny_bundles: dict[str, Path]) -> RegistrySpec:
-    """``support`` v1 (bundle a) live, on SQLite or PostgreSQL."""
-    with spec.open() as reg:
-        reg.publish(tiny_bundles["a"], MODEL, actor="tests")
-        reg.promote(MODEL, 1, "live", reason="tests start here", actor="tests", force=True)
-    return spec
 
 
 def _settings(spec: RegistrySpec, tmp_path: Path, **overrides: Any) -> Settings:
@@ -80,12 +63,12 @@ async def _until_texts(client: httpx.AsyncClient, texts: int, timeout: float = 3
 
 
 async def test_two_replicas_report_one_window_equal_to_numpy_on_the_union(
-    shared: RegistrySpec, tmp_path: Path, tiny_data: Path, tiny_bundles: dict[str, Path]
+    live_spec: RegistrySpec, tmp_path: Path, tiny_data: Path, tiny_bundles: dict[str, Path]
 ) -> None:
     rows = read_jsonl(tiny_data / "test.jsonl")
     first = [r["text"] for r in rows[:50]]
     second = [r["text"] for r in rows[50:90]] + ["zzqv " * 300]  # one long, unknown, truncated text
-    settings = _settings(shared, tmp_path, shadow_flush_seconds=0.2)
+    settings = _settings(live_spec, tmp_path, shadow_flush_seconds=0.2)
     async with serving(settings) as (_, a), serving(settings) as (_, b):
         results = await _predict(a, first) + await _predict(b, second)
         # Flushed on the timer, off the request path: each replica comes to report both replicas' texts.
@@ -102,13 +85,12 @@ async def test_two_replicas_report_one_window_equal_to_numpy_on_the_union(
     signals = {s["name"]: s for s in v["signals"]}
     labels = open_bundle(tiny_bundles["a"]).manifest.labels
     live_mix = [sum(r["label"] == name for r in results) for name in labels]  # the union of both replies
-    assert signals["label"]["psi"] == pytest.approx(_psi_numpy(base.histograms["label"].counts, live_mix), abs=1e-12)
+    assert signals["label"]["psi"] == pytest.approx(psi_numpy(base.histograms["label"].counts, live_mix), abs=1e-12)
     edges = base.histograms["tokens"].edges
     assert edges is not None
-    lengths = np.clip([r["tokens"] for r in results], edges[0], edges[-1])
-    live_tokens = np.histogram(lengths, bins=np.asarray(edges, float))[0].tolist()  # NumPy's histogram
+    live_tokens = tokens_histogram(results, edges)
     assert signals["tokens"]["psi"] == pytest.approx(
-        _psi_numpy(base.histograms["tokens"].counts, live_tokens), abs=1e-12
+        psi_numpy(base.histograms["tokens"].counts, live_tokens), abs=1e-12
     )
 
     # A replica started afterwards (a restart) reports the same window at once, and so do its gauges.
@@ -118,9 +100,9 @@ async def test_two_replicas_report_one_window_equal_to_numpy_on_the_union(
     assert f'textsieve_drift_window_texts{{model="{MODEL}",version="1"}} 91.0' in metrics
 
 
-async def test_the_window_keeps_the_newest_texts_across_replicas(shared: RegistrySpec, tmp_path: Path) -> None:
+async def test_the_window_keeps_the_newest_texts_across_replicas(live_spec: RegistrySpec, tmp_path: Path) -> None:
     """Rows older than the window's newest texts are deleted: the window stays near its size."""
-    settings = _settings(shared, tmp_path, shadow_flush_seconds=3600, drift_window_texts=100)
+    settings = _settings(live_spec, tmp_path, shadow_flush_seconds=3600, drift_window_texts=100)
     texts = ["my card was charged twice", "the boiler repair was quick", "cannot log in", "thanks!", "refund"]
     async with serving(settings) as (app_a, a), serving(settings) as (app_b, b):
         for app, client in ((app_a, a), (app_b, b), (app_a, a), (app_b, b)):
@@ -129,14 +111,14 @@ async def test_the_window_keeps_the_newest_texts_across_replicas(shared: Registr
         view_a, view_b = await _view(a), await _view(b)
     assert view_a == view_b
     assert view_a["versions"][0]["texts"] == 120  # the newest two rows: the fewest holding 100 texts
-    with shared.open() as reg, reg.backend.read() as tx:
+    with live_spec.open() as reg, reg.backend.read() as tx:
         assert len(tx.all("SELECT id FROM drift_counts")) == 2
 
 
 async def test_a_flush_under_way_at_shutdown_loses_nothing(
-    shared: RegistrySpec, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+    live_spec: RegistrySpec, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    settings = _settings(shared, tmp_path, shadow_flush_seconds=0.05)
+    settings = _settings(live_spec, tmp_path, shadow_flush_seconds=0.05)
     texts = ["my card was charged twice", "the boiler repair was quick", "cannot log in"]
     entered, release = asyncio.Event(), asyncio.Event()
     async with serving(settings) as (app, client):
@@ -153,15 +135,15 @@ async def test_a_flush_under_way_at_shutdown_loses_nothing(
         await asyncio.wait_for(entered.wait(), 10)
         await _predict(client, texts * 2)  # counted while that flush waits: pending for the last one
         asyncio.get_running_loop().call_later(0.3, release.set)
-    with shared.open() as reg:
+    with live_spec.open() as reg:
         w = reg.drift_window(MODEL, 1, window_texts=10_000, size=len(app.state.models.drift.windows[MODEL, 1].counts()))
     assert w.texts == 9, "the interrupted flush and the shutdown's own flush both landed, once each"
 
 
 async def test_flushes_the_registry_refuses_fail_no_prediction_and_lose_no_count(
-    shared: RegistrySpec, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+    live_spec: RegistrySpec, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    settings = _settings(shared, tmp_path, shadow_flush_seconds=0.05)
+    settings = _settings(live_spec, tmp_path, shadow_flush_seconds=0.05)
     texts = ["my card was charged twice", "the boiler repair was quick", "cannot log in", "refund"]
     async with serving(settings) as (app, client):
         drift = app.state.models.drift
@@ -180,18 +162,18 @@ async def test_flushes_the_registry_refuses_fail_no_prediction_and_lose_no_count
         assert (await _view(client))["versions"][0]["texts"] == 12, "kept in memory meanwhile"
         monkeypatch.setattr(drift.store, "add_drift_counts", original)
         await asyncio.sleep(0.3)  # the registry is back: the next flush writes what was kept
-        with shared.open() as reg:
+        with live_spec.open() as reg:
             stored = reg.drift_window(MODEL, 1, window_texts=10_000, size=len(drift.windows[MODEL, 1].counts()))
         assert stored.texts == 12
 
 
-async def test_with_drift_off_a_replica_writes_no_row(shared: RegistrySpec, tmp_path: Path) -> None:
-    async with serving(_settings(shared, tmp_path, drift=False, shadow_flush_seconds=0.05)) as (app, client):
+async def test_with_drift_off_a_replica_writes_no_row(live_spec: RegistrySpec, tmp_path: Path) -> None:
+    async with serving(_settings(live_spec, tmp_path, drift=False, shadow_flush_seconds=0.05)) as (app, client):
         await _predict(client, ["my card was charged twice", "refund"])
         await asyncio.sleep(0.2)
         assert app.state.models.drift is None
         assert (await _view(client))["versions"] == []
-    with shared.open() as reg, reg.backend.read() as tx:
+    with live_spec.open() as reg, reg.backend.read() as tx:
         assert tx.all("SELECT id FROM drift_counts") == []
 
 
@@ -210,15 +192,15 @@ def _drift_cli(url: str) -> dict[str, Any]:
 
 
 def test_real_servers_stopped_with_sigterm_leave_their_counts_to_the_next_one(
-    shared: RegistrySpec, tmp_path: Path, tiny_data: Path, tiny_bundles: dict[str, Path]
+    live_spec: RegistrySpec, tmp_path: Path, tiny_data: Path, tiny_bundles: dict[str, Path]
 ) -> None:
     """Two ``textsieve serve`` processes (uvicorn, worker processes) on one registry, each sent other
     texts; both are stopped with SIGTERM, whose shutdown flush is the only one (the interval is an
     hour); a third started afterwards answers for all of them."""
     rows = read_jsonl(tiny_data / "test.jsonl")
     halves = [[r["text"] for r in rows[:30]], [r["text"] for r in rows[30:70]]]
-    settings: dict[str, Any] = {"blobs": shared.blobs, "workers": 1, "shadow_flush_seconds": 3600}
-    servers = [ServerProcess.start(shared.location, tmp_path / f"serve-{i}.log", **settings) for i in range(2)]
+    settings: dict[str, Any] = {"blobs": live_spec.blobs, "workers": 1, "shadow_flush_seconds": 3600}
+    servers = [ServerProcess.start(live_spec.location, tmp_path / f"serve-{i}.log", **settings) for i in range(2)]
     results: list[dict[str, Any]] = []
     try:
         for server, texts in zip(servers, halves, strict=True):
@@ -231,7 +213,7 @@ def test_real_servers_stopped_with_sigterm_leave_their_counts_to_the_next_one(
     finally:
         codes = [s.terminate() for s in servers]
     assert codes == [0, 0]
-    third = ServerProcess.start(shared.location, tmp_path / "serve-3.log", **settings)
+    third = ServerProcess.start(live_spec.location, tmp_path / "serve-3.log", **settings)
     try:
         third.wait_ready()
         view = _drift_cli(third.url)
@@ -244,4 +226,4 @@ def test_real_servers_stopped_with_sigterm_leave_their_counts_to_the_next_one(
     labels = open_bundle(tiny_bundles["a"]).manifest.labels
     live_mix = [sum(r["label"] == name for r in results) for name in labels]
     signals = {s["name"]: s for s in v["signals"]}
-    assert signals["label"]["psi"] == pytest.approx(_psi_numpy(base.histograms["label"].counts, live_mix), abs=1e-12)
+    assert signals["label"]["psi"] == pytest.approx(psi_numpy(base.histograms["label"].counts, live_mix), abs=1e-12)
