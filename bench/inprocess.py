@@ -23,7 +23,7 @@ Variants, all from the same texts:
 
 - ``worker`` and ``worker_no_spans``: a service worker's own work on batches of ``WORKER_BATCH``
   texts (what the server gathers from 16-text requests under load): ``workers._run`` (encode,
-  graph, probabilities, reply dicts with 3 spans or none, drift counts, each reply serialised)
+  graph, probabilities, each text's reply written as JSON with 3 spans or none, drift counts)
   and the reply pickled for the pipe. A server running this code cannot be faster than this
   rate, whatever its HTTP stack costs: ``service_vs_runtime_ceiling`` in ``make bench``.
 

@@ -15,7 +15,9 @@ where the instructions go (``--inclusive=yes`` for whole functions).
 ``--steps`` counts each step of ``_run`` apart, on the same batches, for spans 3 and 0 in one
 run: encoding, the graph, probabilities, the span windows (``registry/spans.py``: the grid),
 the windows merged and ranked, all of batch_spans (with the spans' public dicts), the reply
-dicts with their spans (``explain``), each reply serialised, the batch's reply pickled. Steps
+dicts with their spans (``explain``) and each serialised (``orjson``), as the worker did until
+2026-12-05; ``replies``, what it does now (each text's JSON written without the dicts: all of
+``explain`` and ``orjson``), and the batch's reply pickled. Steps
 run one after the other on prepared inputs, so their sum is close to, not equal to, a whole
 ``_run`` (caches, the garbage collector).
 """
@@ -64,7 +66,18 @@ def inside(n_texts: int, spans: int) -> None:
     _callgrind(False)
 
 
-STEPS = ("encode", "graph", "probabilities", "windows", "windows_merged", "spans", "explain", "orjson", "pickle")
+STEPS = (
+    "encode",
+    "graph",
+    "probabilities",
+    "windows",
+    "windows_merged",
+    "spans",
+    "explain",
+    "orjson",
+    "replies",
+    "pickle",
+)
 
 
 def inside_steps(n_texts: int, spans_list: list[int]) -> None:
@@ -106,6 +119,7 @@ def _steps(p: Any, batches: list[list[str]], k: int) -> dict[str, Callable[[], o
     from textsieve.registry import spans as batch
     from textsieve.service.inference.packing import run_packed
     from textsieve.service.inference.spans import explain
+    from textsieve.service.inference.spans import replies as reply_json
 
     encoded = [[p.encode(t, offsets=k > 0) for t in b] for b in batches]
     outs = [run_packed(p, e) for e in encoded]
@@ -126,6 +140,7 @@ def _steps(p: Any, batches: list[list[str]], k: int) -> dict[str, Callable[[], o
         "spans": lambda: [batch.batch_spans(p, e, o, b, kk) for e, o, b, kk, _, _ in rows],
         "explain": lambda: [explain(p, e, o, [k] * len(e), probs=q) for e, o, _, _, _, q in rows],
         "orjson": lambda: [[orjson.dumps(r) for r in rs] for rs in results],
+        "replies": lambda: [reply_json(p, e, o, [k] * len(e), q) for e, o, _, _, _, q in rows],
         "pickle": lambda: [ForkingPickler.dumps((r, *tail)) for r in replies],
     }
 

@@ -41,18 +41,19 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+import orjson
 from numpy.typing import NDArray
 
 from textsieve.errors import DeadlinePassedError, UnavailableError
 from textsieve.registry.drift import count_encoded
 from textsieve.service.inference.admission import Admission
 from textsieve.service.inference.packing import run_packed
-from textsieve.service.inference.spans import explain, mark_for_review
+from textsieve.service.inference.spans import replies
 from textsieve.service.inference.workers import PIPELINE, WorkerProcesses
 from textsieve.service.modelset.loader import ServedModel
 from textsieve.service.telemetry import ServiceMetrics
 
-Result = dict[str, Any]
+Result = orjson.Fragment  # a text's result as JSON (service/inference/spans.py replies), embedded as it is
 # Fair order: each pass over the queue takes at most this many texts from a request before the
 # next request's turn, so one large request does not hold many small ones behind it.
 QUANTUM = 16
@@ -410,9 +411,7 @@ class Batcher:
         encoded = [p.encode(t, offsets=k > 0) for t, k in zip(texts, ks, strict=True)]
         out = run_packed(p, encoded)
         probs = p.probabilities(out.logits)
-        results = explain(p, encoded, out, ks, probs=probs)
-        if review is not None:
-            mark_for_review(results, review)
+        results = [orjson.Fragment(r) for r in replies(p, encoded, out, ks, probs, review)]
         done = _Done(results, started, time.perf_counter() - started, best=probs.argmax(axis=1), top=probs.max(axis=1))
         if window is not None:
             done.counts = count_encoded(window.layout, encoded, probs)

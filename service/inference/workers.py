@@ -130,7 +130,7 @@ def _run(p: Predictor, layout: Layout, msg: Run) -> tuple[Any, ...]:
     (tests/reliability/test_security.py)."""
     from textsieve.registry.drift import count
     from textsieve.service.inference.packing import run_packed
-    from textsieve.service.inference.spans import explain, mark_for_review
+    from textsieve.service.inference.spans import replies
 
     # Offsets only for the texts that get spans (only spans read them).
     encoded = [p.encode(t, offsets=k > 0) for t, k in zip(msg.texts, msg.ks, strict=True)]
@@ -138,9 +138,6 @@ def _run(p: Predictor, layout: Layout, msg: Run) -> tuple[Any, ...]:
     probs = p.probabilities(out.logits)
     best = probs.argmax(axis=1)
     top = probs.max(axis=1)
-    results = explain(p, encoded, out, msg.ks, probs=probs)
-    if msg.review is not None:
-        mark_for_review(results, msg.review)
     n = len(encoded)
     kept = np.fromiter((len(e.ids) for e in encoded), dtype=np.int64, count=n)
     unknown = np.fromiter((e.unknown for e in encoded), dtype=np.int64, count=n)
@@ -148,7 +145,7 @@ def _run(p: Predictor, layout: Layout, msg: Run) -> tuple[Any, ...]:
     # count_encoded's vector, from the arrays already at hand
     counts = count(layout, tokens, kept, unknown, best, top) if msg.drift else None
     return (
-        [orjson.dumps(r) for r in results],
+        replies(p, encoded, out, msg.ks, probs, msg.review),
         int(kept.sum()),
         int(unknown.sum()),
         int((tokens > kept).sum()),
