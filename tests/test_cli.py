@@ -384,3 +384,28 @@ def test_the_entry_module_is_marked_for_global_completion() -> None:
     # argcomplete's global completion looks for the marker in the first 1024 bytes (its README).
     head = Path(cli.__file__).read_bytes()[:1024]
     assert b"# PYTHON_ARGCOMPLETE_OK" in head
+
+
+# What a newcomer types wrong, run as the real command: exit 2, one line naming what is wrong.
+@pytest.mark.parametrize(
+    ("argv", "expected_msg"),
+    [
+        pytest.param(
+            ["train", "data/", "--out", "run"], "data: is a folder; expected a labelled data file", id="train a folder"
+        ),
+        pytest.param(
+            ["train", "nope", "--out", "run"], "nope: no such file; expected a labelled data file", id="train no file"
+        ),
+        pytest.param(
+            ["evaluate", "m", "1", "--evalset", "data", "--registry", "reg"],
+            "data: is a folder; expected a labelled data file",
+            id="evaluate a folder",
+        ),
+    ],
+)
+def test_a_newcomers_mistake_is_one_line_exit_2(argv: list[str], expected_msg: str, tmp_path: Path) -> None:
+    (tmp_path / "data").mkdir()
+    out = textsieve(*argv, cwd=tmp_path)
+    assert out.returncode == 2, out.stderr
+    lines = out.stderr.splitlines()
+    assert len(lines) == 1 and lines[0].startswith("textsieve: error: ") and expected_msg in lines[0], out.stderr

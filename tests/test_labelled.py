@@ -87,10 +87,13 @@ def test_other_field_names_are_used(tmp_path: Path) -> None:
         pytest.param(lambda path: path.mkdir(), "is a folder", id="a folder"),
     ],
 )
-def test_a_path_that_is_not_a_file(tmp_path: Path, make: Callable[[Path], None], expected_msg: str) -> None:
-    path = tmp_path / "d.csv"
+@pytest.mark.parametrize("name", ["d.csv", "data", "data.txt"])
+def test_a_path_that_is_not_a_file(tmp_path: Path, make: Callable[[Path], None], expected_msg: str, name: str) -> None:
+    # `textsieve train data/` named a folder without a suffix "unsupported file type '(no extension)'".
+    path = tmp_path / name
     make(path)
-    assert expected_msg in _error(path)
+    message = _error(path)
+    assert expected_msg in message and "unsupported file type" not in message
 
 
 _NON_UTF8 = b'{"text": "ok", "label": "a"}\n' + b'{"text": "caf\xe9", "label": "b"}\n'

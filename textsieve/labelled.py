@@ -50,6 +50,9 @@ def load_examples(
     path = Path(path)
     suffix = path.suffix.lower()
     if suffix not in JSON_SUFFIXES and suffix not in CSV_SUFFIXES:
+        # A folder (`train data/`) or a mistyped name is named as such, not as a file type to change.
+        with _opened(path):
+            pass
         raise InputError(f"{path}: unsupported file type {suffix or '(no extension)'!r}; {_ALLOWED}")
     fields = _Fields(path, text_field, label_field)
     if suffix in CSV_SUFFIXES:
