@@ -673,6 +673,9 @@ def settings_table(values: Sequence[SettingValue]) -> str:
             for v in values
         ],
         wrap=(5, 6, 7),
+        # SOURCE says again what SET (UTC) says (a time when set); the README's table lists each DEFAULT.
+        optional=(3, 2),
+        shown_by="COLUMNS=100 or a pipe shows every column",
     )
 
 
