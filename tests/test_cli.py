@@ -409,3 +409,14 @@ def test_a_newcomers_mistake_is_one_line_exit_2(argv: list[str], expected_msg: s
     assert out.returncode == 2, out.stderr
     lines = out.stderr.splitlines()
     assert len(lines) == 1 and lines[0].startswith("textsieve: error: ") and expected_msg in lines[0], out.stderr
+
+
+@pytest.mark.parametrize("argv", [["train", "--help"], ["evalset", "add", "--help"]])
+def test_help_names_every_labelled_file_type_the_reader_takes(argv: list[str], tmp_path: Path) -> None:
+    # `train --help` said "labelled JSONL or CSV file" while .ndjson, .json arrays and .tsv train too.
+    from textsieve.labelled import CSV_SUFFIXES, JSON_SUFFIXES
+
+    out = textsieve(*argv, cwd=tmp_path, COLUMNS="200")
+    assert out.returncode == 0, out.stderr
+    assert all(suffix in out.stdout for suffix in (*JSON_SUFFIXES, *CSV_SUFFIXES)), out.stdout
+    assert "JSON array" in out.stdout

@@ -25,6 +25,8 @@ from textsieve.texts import text_refusal
 JSON_SUFFIXES = (".jsonl", ".ndjson", ".json")
 CSV_SUFFIXES = {".csv": ",", ".tsv": "\t"}
 _ALLOWED = "use .jsonl, .ndjson, .json (one JSON object a line, or one JSON array), .csv or .tsv (header row)"
+# The help line of every verb's labelled-file argument (train, evalset add).
+FILE_HELP = "labelled .jsonl or .ndjson (one JSON object a line), .json (that, or one JSON array), .csv or .tsv file"
 _BOM = "\ufeff"
 
 # The longest label: reviewers' verdicts record it (service/web/schemas.py VerdictRequest).
@@ -439,6 +441,7 @@ def _show(delimiter: str) -> str:
 
 __all__ = [
     "CSV_SUFFIXES",
+    "FILE_HELP",
     "JSON_SUFFIXES",
     "MAX_LABEL_CHARS",
     "json_kind",
