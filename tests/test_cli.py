@@ -397,6 +397,11 @@ def test_the_entry_module_is_marked_for_global_completion() -> None:
             ["train", "nope", "--out", "run"], "nope: no such file; expected a labelled data file", id="train no file"
         ),
         pytest.param(
+            ["models"],
+            "data.csv: is a file; --registry (or TEXTSIEVE_REGISTRY) names a registry folder",
+            id="TEXTSIEVE_REGISTRY a file",
+        ),
+        pytest.param(
             ["evaluate", "m", "1", "--evalset", "data", "--registry", "reg"],
             "data: is a folder; expected a labelled data file",
             id="evaluate a folder",
@@ -405,7 +410,8 @@ def test_the_entry_module_is_marked_for_global_completion() -> None:
 )
 def test_a_newcomers_mistake_is_one_line_exit_2(argv: list[str], expected_msg: str, tmp_path: Path) -> None:
     (tmp_path / "data").mkdir()
-    out = textsieve(*argv, cwd=tmp_path)
+    (tmp_path / "data.csv").write_text("text,label\n", encoding="utf-8")
+    out = textsieve(*argv, cwd=tmp_path, TEXTSIEVE_REGISTRY="data.csv")
     assert out.returncode == 2, out.stderr
     lines = out.stderr.splitlines()
     assert len(lines) == 1 and lines[0].startswith("textsieve: error: ") and expected_msg in lines[0], out.stderr
