@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, TypeVar
 
 from textsieve.errors import TextsieveError
+from textsieve.labelled import FILE_HELP
 
 if TYPE_CHECKING:
     from textsieve.exporter.run_folder import RunInfo
@@ -37,11 +38,11 @@ def _add_train(sub: argparse._SubParsersAction[_Parser]) -> None:
         help="train a convolutional text classifier",
         description="Train a convolutional text classifier (Kim, 2014) on a labelled file and write a run folder.",
     )
-    p.add_argument("data", type=Path, help="labelled JSONL or CSV file")
+    p.add_argument("data", type=Path, help=FILE_HELP)
     p.add_argument("--out", type=Path, required=True, help="run folder to write (a previous run there is replaced)")
     p.add_argument("--valid", type=Path, help="validation file; without it a seeded 10 %% of DATA is held out")
-    p.add_argument("--text-field", default="text", help="the JSONL field or CSV column holding the text")
-    p.add_argument("--label-field", default="label", help="the JSONL field or CSV column holding the label")
+    p.add_argument("--text-field", default="text", help="the JSON field or CSV/TSV column holding the text")
+    p.add_argument("--label-field", default="label", help="the JSON field or CSV/TSV column holding the label")
     p.add_argument("--vectors", type=Path, help="pretrained vectors, GloVe/word2vec text format")
     p.add_argument(
         "--vectors-mode",

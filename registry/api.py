@@ -1339,7 +1339,9 @@ def open_registry(
 
 def _check_folder(folder: Path, create: bool) -> None:
     if folder.exists() and not folder.is_dir():
-        raise InputError(f"{folder}: is a file; --registry names a registry folder or a postgresql:// URL")
+        raise InputError(
+            f"{folder}: is a file; --registry (or TEXTSIEVE_REGISTRY) names a registry folder or a postgresql:// URL"
+        )
     if (folder / DB_FILE).is_file():
         return
     if not create:

@@ -19,6 +19,7 @@ from typing import TYPE_CHECKING, Any, TextIO
 
 from textsieve.environment import DEFAULT_REGISTRY, POSTGRES_SCHEMES, registry_location
 from textsieve.errors import GateRefusedError, InputError, IntegrityError, NotFoundError, SavedThenInterrupted
+from textsieve.labelled import FILE_HELP
 from textsieve.registry import tables
 from textsieve.registry.tables import NONE, key_values, one_line
 
@@ -138,7 +139,7 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     esub = p.add_subparsers(dest="evalset_command", required=True)
     pe = esub.add_parser("add", help="register a labelled file as a model's evaluation set")
     _model_arg(pe)
-    pe.add_argument("file", type=Path, help="labelled JSONL or CSV file")
+    pe.add_argument("file", type=Path, help=FILE_HELP)
     pe.add_argument("--text-field", default="text", help="JSONL key or CSV column holding the text")
     pe.add_argument("--label-field", default="label", help="JSONL key or CSV column holding the label")
     add_location_args(pe)
@@ -673,6 +674,9 @@ def settings_table(values: Sequence[SettingValue]) -> str:
             for v in values
         ],
         wrap=(5, 6, 7),
+        # SOURCE says again what SET (UTC) says (a time when set); the README's table lists each DEFAULT.
+        optional=(3, 2),
+        shown_by="COLUMNS=100 or a pipe shows every column",
     )
 
 

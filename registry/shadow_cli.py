@@ -77,7 +77,7 @@ def cli_shadow(args: argparse.Namespace) -> int:
             "TEXTSIEVE_SHADOW_FLUSH_SECONDS"
         )
         return 0
-    _out(render(counts, texts))
+    _out(render(counts, texts, asked=args.texts))
     return 0
 
 
@@ -85,7 +85,7 @@ def _num(info: VersionInfo | None) -> int | None:
     return None if info is None else info.version
 
 
-def render(c: ShadowCounts, texts: list[StoredText]) -> str:
+def render(c: ShadowCounts, texts: list[StoredText], *, asked: int = 0) -> str:
     lines = [
         f"{c.model}: candidate v{c.candidate_version} in the shadow of live v{c.live_version} "
         f"({c.flushes} flushes, {when(c.first_at)} – {when(c.updated_at)})",
@@ -100,6 +100,13 @@ def render(c: ShadowCounts, texts: list[StoredText]) -> str:
     lines.append(key_values([(str(k), v) for k, v in rows]))
     if c.transitions:
         lines += ["", "label transitions (rows: live label, columns: candidate label)", transition_table(c)]
+    if asked and not texts:
+        # --texts printed nothing at all, which read as the flag being ignored.
+        lines += [
+            "",
+            "no disagreeing texts kept for review: replicas keep the newest N only with "
+            "TEXTSIEVE_SHADOW_KEEP_TEXTS=N, for TEXTSIEVE_SHADOW_KEEP_DAYS (7)",
+        ]
     if texts:
         lines += ["", f"newest {len(texts)} disagreeing texts kept for review"]
         lines.append(

@@ -13,11 +13,11 @@ here once:
 - **Widths** are terminal columns, not code points: East Asian Wide and Fullwidth characters take two,
   combining marks and zero-width format characters none (Unicode UAX #11), so CJK text stays aligned.
 - **Wrapping.** A table wider than the terminal wraps the columns its verb names as free text, at spaces
-  or after a comma, semicolon, slash or bar where it can, within words where it must; numbers and
-  states are never split, and times only at their space (date over time) when the free text alone
-  cannot make the table fit. Nothing is cut: the whole text stays in the table. A verb may name columns
-  to leave out (in its order) when even that would split words or overflow; the table then ends with a
-  line naming them and where they are shown.
+  or after a comma, semicolon, slash or bar where it can (never the comma in ``1,000``), within words
+  where it must; numbers and states are never split, and times only at their space (date over time)
+  when the free text alone cannot make the table fit. Nothing is cut: the whole text stays in the table.
+  A verb may name columns to leave out (in its order) when even that would split words or overflow; the
+  table then ends with a line naming them and where they are shown.
 - **Where the width comes from.** ``COLUMNS`` when set (``shutil.get_terminal_size`` honours it), else
   the terminal's own width when the output is a terminal. Output that is not a terminal (a pipe, a
   file) with no ``COLUMNS`` is not wrapped: each row stays one line holding its whole text, so
@@ -144,7 +144,7 @@ def wrap(text: str, width: int) -> list[str]:
                 lines.append(line)
                 line, used = [], 0
                 continue
-            cut = max((i for i, (p, _) in enumerate(line) if p in _AFTER or p == " "), default=-1)
+            cut = max((i for i in range(len(line)) if _breaks_after(line, i, piece)), default=-1)
             if cut >= 0 and line[cut][0] == " ":
                 lines.append(line[:cut])
                 line = line[cut + 1 :]
@@ -163,6 +163,18 @@ def wrap(text: str, width: int) -> list[str]:
     if line or not lines:
         lines.append(line)
     return ["".join(p for p, _ in ln).rstrip(" ") for ln in lines]
+
+
+def _breaks_after(line: list[tuple[str, int]], i: int, following: str) -> bool:
+    """Whether a wrapped line may end after unit ``i``: at a space, or after a list separator, but not
+    after the comma of a number's thousands (``1,000,000``: numbers are never split)."""
+    piece = line[i][0]
+    if piece == " ":
+        return True
+    if piece not in _AFTER:
+        return False
+    after = line[i + 1][0] if i + 1 < len(line) else following
+    return not (piece == "," and i > 0 and line[i - 1][0][-1:].isdigit() and after[:1].isdigit())
 
 
 Width = int | None | Literal["terminal"]
@@ -260,7 +272,7 @@ def _time_columns(rows: list[list[str]]) -> list[int]:
     ]
 
 
-_WORD_ENDS = re.compile(r" |(?<=[,;/|])")
+_WORD_ENDS = re.compile(r" |(?<=[;/|])|(?<=,)(?<!\d,)|(?<=,)(?!\d)")  # as _breaks_after
 
 
 def _longest_word(text: str) -> int:

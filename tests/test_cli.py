@@ -384,3 +384,45 @@ def test_the_entry_module_is_marked_for_global_completion() -> None:
     # argcomplete's global completion looks for the marker in the first 1024 bytes (its README).
     head = Path(cli.__file__).read_bytes()[:1024]
     assert b"# PYTHON_ARGCOMPLETE_OK" in head
+
+
+# What a newcomer types wrong, run as the real command: exit 2, one line naming what is wrong.
+@pytest.mark.parametrize(
+    ("argv", "expected_msg"),
+    [
+        pytest.param(
+            ["train", "data/", "--out", "run"], "data: is a folder; expected a labelled data file", id="train a folder"
+        ),
+        pytest.param(
+            ["train", "nope", "--out", "run"], "nope: no such file; expected a labelled data file", id="train no file"
+        ),
+        pytest.param(
+            ["models"],
+            "data.csv: is a file; --registry (or TEXTSIEVE_REGISTRY) names a registry folder",
+            id="TEXTSIEVE_REGISTRY a file",
+        ),
+        pytest.param(
+            ["evaluate", "m", "1", "--evalset", "data", "--registry", "reg"],
+            "data: is a folder; expected a labelled data file",
+            id="evaluate a folder",
+        ),
+    ],
+)
+def test_a_newcomers_mistake_is_one_line_exit_2(argv: list[str], expected_msg: str, tmp_path: Path) -> None:
+    (tmp_path / "data").mkdir()
+    (tmp_path / "data.csv").write_text("text,label\n", encoding="utf-8")
+    out = textsieve(*argv, cwd=tmp_path, TEXTSIEVE_REGISTRY="data.csv")
+    assert out.returncode == 2, out.stderr
+    lines = out.stderr.splitlines()
+    assert len(lines) == 1 and lines[0].startswith("textsieve: error: ") and expected_msg in lines[0], out.stderr
+
+
+@pytest.mark.parametrize("argv", [["train", "--help"], ["evalset", "add", "--help"]])
+def test_help_names_every_labelled_file_type_the_reader_takes(argv: list[str], tmp_path: Path) -> None:
+    # `train --help` said "labelled JSONL or CSV file" while .ndjson, .json arrays and .tsv train too.
+    from textsieve.labelled import CSV_SUFFIXES, JSON_SUFFIXES
+
+    out = textsieve(*argv, cwd=tmp_path, COLUMNS="200")
+    assert out.returncode == 0, out.stderr
+    assert all(suffix in out.stdout for suffix in (*JSON_SUFFIXES, *CSV_SUFFIXES)), out.stdout
+    assert "JSON array" in out.stdout

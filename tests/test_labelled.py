@@ -87,10 +87,13 @@ def test_other_field_names_are_used(tmp_path: Path) -> None:
         pytest.param(lambda path: path.mkdir(), "is a folder", id="a folder"),
     ],
 )
-def test_a_path_that_is_not_a_file(tmp_path: Path, make: Callable[[Path], None], expected_msg: str) -> None:
-    path = tmp_path / "d.csv"
+@pytest.mark.parametrize("name", ["d.csv", "data", "data.txt"])
+def test_a_path_that_is_not_a_file(tmp_path: Path, make: Callable[[Path], None], expected_msg: str, name: str) -> None:
+    # `textsieve train data/` named a folder without a suffix "unsupported file type '(no extension)'".
+    path = tmp_path / name
     make(path)
-    assert expected_msg in _error(path)
+    message = _error(path)
+    assert expected_msg in message and "unsupported file type" not in message
 
 
 _NON_UTF8 = b'{"text": "ok", "label": "a"}\n' + b'{"text": "caf\xe9", "label": "b"}\n'
@@ -469,3 +472,32 @@ def test_progress_covers_every_byte_whatever_the_format(tmp_path: Path) -> None:
         reported: list[int] = []
         assert len(load_examples(path, progress=reported.append)) == rows
         assert sum(reported) == path.stat().st_size
+
+
+def test_a_json_array_is_read_an_item_at_a_time(tmp_path: Path) -> None:
+    # Read whole, a JSON array was held three times over besides its examples (bytes, text, the
+    # parsed list): tracemalloc's peak was 2.9× what the examples keep. Streamed, the peak is the
+    # examples plus a window of one chunk.
+    import tracemalloc
+
+    rows = [{"text": f"the dock at station {i} is broken again", "label": "ab"[i % 2], "id": i} for i in range(20_000)]
+    path = _write(tmp_path / "d.json", json.dumps(rows, indent=1))
+    reported: list[int] = []
+    tracemalloc.start()
+    try:
+        examples = load_examples(path, progress=reported.append)
+        kept, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    assert examples == [Example(r["text"], r["label"]) for r in rows]
+    assert peak < 1.3 * kept, f"peak {peak:,} bytes against {kept:,} kept"
+    assert len(reported) > 1 and sum(reported) == path.stat().st_size, "the bar moves as the file is read"
+
+
+def test_a_json_array_names_the_first_bad_item_before_reading_on(tmp_path: Path) -> None:
+    # Item 2 is not an object and the text breaks further on: streaming meets item 2 first.
+    content = '[{"text": "fine", "label": "a"},\n 7,\n {"text": "x", "label": "b"} {]'
+    assert "item 2: is a number; each array item must be a JSON object" in _error(_write(tmp_path / "d.json", content))
+    broken = '[{"text": "fine", "label": "a"},\n {"text": "x" "label": "b"}]'
+    message = _error(_write(tmp_path / "e.json", broken))
+    assert "line 2: not valid JSON (Expecting ',' delimiter at column 15)" in message

@@ -201,11 +201,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     except SavedThenInterrupted as exc:
         print(f"textsieve: interrupted after the change was saved: {exc.saved}", file=sys.stderr)
         return 130
-    except Terminated:
-        print("textsieve: stopped by SIGTERM", file=sys.stderr)
+    except Terminated as exc:
+        print(_stopped("stopped by SIGTERM", exc), file=sys.stderr)
         return 143
-    except KeyboardInterrupt:
-        print("textsieve: interrupted", file=sys.stderr)
+    except KeyboardInterrupt as exc:
+        print(_stopped("interrupted", exc), file=sys.stderr)
         return 130
     except BrokenPipeError:
         # The reader went away (`textsieve history m | head`): not an error worth a traceback. Before
@@ -218,6 +218,13 @@ def main(argv: Sequence[str] | None = None) -> int:
             print("textsieve: interrupted", file=sys.stderr)
             return 130
         raise
+
+
+def _stopped(how: str, exc: KeyboardInterrupt) -> str:
+    """The one line for a verb stopped by a signal: how, and what its work left (a note the verb added,
+    such as ``score``'s rows kept for ``--resume``), never two lines saying the same stop."""
+    notes = getattr(exc, "__notes__", None)
+    return f"textsieve: {how}" + (f"; {one_line(notes[-1])}" if notes else "")
 
 
 if __name__ == "__main__":

@@ -18,12 +18,15 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, BinaryIO
 
+from textsieve import jsonarray
 from textsieve.errors import InputError
 from textsieve.texts import text_refusal
 
 JSON_SUFFIXES = (".jsonl", ".ndjson", ".json")
 CSV_SUFFIXES = {".csv": ",", ".tsv": "\t"}
 _ALLOWED = "use .jsonl, .ndjson, .json (one JSON object a line, or one JSON array), .csv or .tsv (header row)"
+# The help line of every verb's labelled-file argument (train, evalset add).
+FILE_HELP = "labelled .jsonl or .ndjson (one JSON object a line), .json (that, or one JSON array), .csv or .tsv file"
 _BOM = "\ufeff"
 
 # The longest label: reviewers' verdicts record it (service/web/schemas.py VerdictRequest).
@@ -41,13 +44,17 @@ def load_examples(
 ) -> list[Example]:
     """Every example of a labelled file; any problem is an :class:`InputError` naming file and line.
 
-    JSON Lines, CSV and TSV are read a line at a time, so only the examples stay in memory, not the
-    file's bytes, its text and its list of lines besides (a 50 MB file held all three at once; a CSV
-    file's text a fourth time, as the four bytes a character of the StringIO the csv module read).
+    JSON Lines, CSV and TSV are read a line at a time, and a JSON array an item at a time
+    (textsieve/jsonarray.py), so only the examples stay in memory, not the file's bytes, its text and
+    its list of lines or parsed items besides (a 50 MB file held all three at once; a CSV file's text a
+    fourth time, as the four bytes a character of the StringIO the csv module read).
     ``progress`` is called with the number of bytes read since its last call."""
     path = Path(path)
     suffix = path.suffix.lower()
     if suffix not in JSON_SUFFIXES and suffix not in CSV_SUFFIXES:
+        # A folder (`train data/`) or a mistyped name is named as such, not as a file type to change.
+        with _opened(path):
+            pass
         raise InputError(f"{path}: unsupported file type {suffix or '(no extension)'!r}; {_ALLOWED}")
     fields = _Fields(path, text_field, label_field)
     if suffix in CSV_SUFFIXES:
@@ -55,12 +62,7 @@ def load_examples(
     elif not (suffix == ".json" and _json_array(path)):
         examples = list(_jsonl_rows(path, fields, progress))
     else:
-        text = _read_utf8(path)
-        if not text.strip():
-            raise _empty(path)
-        examples = list(_json_array_rows(path, text, fields))
-        if progress is not None:
-            progress(path.stat().st_size)
+        examples = list(_json_array_rows(path, fields, progress))
     if not examples:
         raise InputError(f"{path}: no labelled rows found; {_ALLOWED}")
     return examples
@@ -173,17 +175,6 @@ def _not_utf8(path: Path, line: int, offset: int, byte: int) -> InputError:
     return InputError(
         f"{path}: line {line}: byte offset {offset} is not valid UTF-8 (byte 0x{byte:02x}); save the file as UTF-8"
     )
-
-
-def _read_utf8(path: Path) -> str:
-    with _opened(path) as file:
-        data = file.read()
-    try:
-        text = data.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        raise _not_utf8(path, data.count(b"\n", 0, exc.start) + 1, exc.start, data[exc.start]) from None
-    # Spreadsheet programs often start UTF-8 files with a byte-order mark.
-    return text[1:] if text.startswith(_BOM) else text
 
 
 def _json_array(path: Path) -> bool:
@@ -393,18 +384,22 @@ def cr_separated(line: str | bytes) -> bool:
     return True
 
 
-def _json_array_rows(path: Path, text: str, fields: _Fields) -> Iterator[Example]:
-    try:
-        records = json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise InputError(
-            f"{path}: line {exc.lineno}: not valid JSON ({exc.msg} at column {exc.colno}); "
-            "a .json file holds one JSON array of objects, or one object a line"
-        ) from None
-    for number, record in enumerate(records, start=1):
-        if not isinstance(record, dict):
-            raise InputError(f"{path}: item {number}: is {json_kind(record)}; each array item must be a JSON object")
-        yield fields.example(f"item {number}", record)
+def _json_array_rows(path: Path, fields: _Fields, progress: Callable[[int], None] | None) -> Iterator[Example]:
+    with _opened(path) as file:
+        try:
+            for number, record in enumerate(jsonarray.items(file, progress=progress), start=1):
+                if not isinstance(record, dict):
+                    raise InputError(
+                        f"{path}: item {number}: is {json_kind(record)}; each array item must be a JSON object"
+                    )
+                yield fields.example(f"item {number}", record)
+        except jsonarray.ArraySyntaxError as exc:
+            raise InputError(
+                f"{path}: line {exc.lineno}: not valid JSON ({exc.msg} at column {exc.colno}); "
+                "a .json file holds one JSON array of objects, or one object a line"
+            ) from None
+        except jsonarray.ArrayEncodingError as exc:
+            raise _not_utf8(path, exc.line, exc.offset, exc.byte) from None
 
 
 def _csv_rows(path: Path, lines: Iterator[str], delimiter: str, fields: _Fields) -> Iterator[Example]:
@@ -446,6 +441,7 @@ def _show(delimiter: str) -> str:
 
 __all__ = [
     "CSV_SUFFIXES",
+    "FILE_HELP",
     "JSON_SUFFIXES",
     "MAX_LABEL_CHARS",
     "json_kind",

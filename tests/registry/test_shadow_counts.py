@@ -199,6 +199,21 @@ def test_cli_shows_kept_texts_whole(
     assert text.replace("\n", " ↵ ") in out  # how every table shows a line break (registry/tables.py)
 
 
+def test_cli_asked_for_texts_says_when_none_are_kept(
+    published: RegistrySpec, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # `shadow NAME --texts 20` with counts but no kept texts printed what plain `shadow NAME` prints.
+    t = Tally()
+    t.add(["repair"], ["billing"], 0.0, [], keep_at_most=0)
+    with published.open() as reg:
+        reg.add_shadow_counts(MODEL, 1, 2, t, keep_texts=0)
+    assert main(["shadow", MODEL, "--texts", "20", *published.cli_args()]) == 0
+    out = capsys.readouterr().out
+    assert "no disagreeing texts kept for review" in out and "TEXTSIEVE_SHADOW_KEEP_TEXTS" in out
+    assert main(["shadow", MODEL, *published.cli_args()]) == 0
+    assert "kept for review" not in capsys.readouterr().out
+
+
 def test_cli_without_counts_says_how_they_come(published: RegistrySpec, capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["shadow", MODEL, *published.cli_args()]) == 0
     assert "no shadow counts yet" in capsys.readouterr().out

@@ -265,3 +265,32 @@ def test_history_gates_and_show_fit_columns_and_keep_the_whole_reason(
     monkeypatch.delenv("COLUMNS")  # captured output is no terminal: rows are lines, whole
     code, out, _ = run(capsys, "history", "m", *r)
     assert code == 0 and len(out.splitlines()) == 3 and one_line(reason) in out.splitlines()[1]
+
+
+def test_a_number_with_thousands_separators_is_never_split() -> None:
+    # "a whole number from 1 to 1,000,000,000" wrapped after each comma as if it ended a list item:
+    # "1," over "000," over "000,000" (the gates table's ALLOWED column at 80 columns).
+    text = table(["KEY", "ALLOWED"], [["k", "a whole number from 1 to 1,000,000,000"]], wrap_columns=(1,), width=20)
+    lines = text.splitlines()
+    assert any(line.endswith("1,000,000,000") for line in lines) and all(cell_len(ln) <= 20 for ln in lines), text
+    assert wrap("account,billing,1,000", 9) == ["account,", "billing,", "1,000"]  # a list still breaks
+
+
+def test_gates_fits_80_columns_leaving_out_what_other_columns_say(
+    capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch, tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """Before: at 80 columns every line of `gates` was 81-87 wide and ALLOWED split 1,000,000,000 in three."""
+    r = ["--registry", str(tmp_path / "reg")]
+    assert run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)[0] == 0
+    assert run(capsys, "gates", "m", "--set", "mcnemar=on", "--reason", "600 texts: judge by significance", *r)[0] == 0
+    capsys.readouterr()
+    monkeypatch.setenv("COLUMNS", "80")
+    code, out, _ = run(capsys, "gates", "m", *r)
+    lines = [ln for ln in out.splitlines() if not ln.startswith("gates on promotion")]
+    assert code == 0 and all(cell_len(line) <= 80 for line in lines), out
+    assert lines[0].split() == ["SETTING", "VALUE", "SET", "(UTC)", "BY", "WHY", "ALLOWED"]
+    assert sum(line.endswith("1,000,000,000") for line in lines) == 3, out
+    assert "(SOURCE, DEFAULT left out to fit 80 columns; COLUMNS=100 or a pipe shows every column)" in " ".join(lines)
+    monkeypatch.setenv("COLUMNS", "100")
+    code, out, _ = run(capsys, "gates", "m", *r)
+    assert "DEFAULT" in out.splitlines()[0] and "SOURCE" in out.splitlines()[0] and "left out" not in out

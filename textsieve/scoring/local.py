@@ -456,12 +456,12 @@ def _stream(
             writer.close()
         shutil.rmtree(run.work, ignore_errors=True)
         raise
-    except KeyboardInterrupt:
+    except KeyboardInterrupt as exc:
         pool.close(cancel=True)
-        print(
-            f"\ntextsieve: stopped after {run.state['rows']:,} rows; OUTPUT was not written. "
-            "Run the same command with --resume to continue.",
-            file=err,
+        # The CLI's one line for Ctrl-C or SIGTERM carries it (textsieve/cli.py _stopped).
+        exc.add_note(
+            f"stopped after {run.state['rows']:,} rows; {output} was not written; "
+            "run the same command with --resume to continue"
         )
         raise
     finally:
