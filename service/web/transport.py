@@ -265,6 +265,9 @@ class ConnectionGuard:
             _began = 0.0  # when the current request began (loop time)
             _app_has_it = False  # the current request was handed to the application
             url = b""  # uvicorn sets it when a request begins; a connection may time out before any does
+            _done_in_read = 0  # requests read whole in the data being parsed now
+            _message_done = False  # the last request read is whole: what comes next begins another
+            _deferred: bytes | None = None  # a refusal waiting for the replies to the requests before it
 
             def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
                 if guard.open >= guard.max_connections:
@@ -290,6 +293,7 @@ class ConnectionGuard:
                 if self._over_cap or self._refused:
                     return
                 self._head_began = False
+                self._done_in_read = 0
                 self._read = len(data)
                 if self._in_head:
                     self._head_upper += len(data)
@@ -302,11 +306,26 @@ class ConnectionGuard:
                         self._head_too_large()
 
             def _head_too_large(self) -> None:
-                self._refused = True
+                self._close_with(guard.head_too_large, 431)
+
+            def _close_with(self, reply: bytes, status: int) -> None:
+                """Refuse the request being read with ``reply`` and close the connection, once the
+                requests read before it have their replies. RFC 9112 §9.3.2: replies go out in the order
+                the requests came. A refusal written at once went out before the reply of a request
+                still being answered, which was then lost, and the client read the refusal as that
+                request's reply (a body sent without Content-Length after a POST, a pipelined request
+                with a bad header)."""
+                self._refused = True  # whatever else arrives on this connection is not read
                 self._disarm()
-                self.transport.write(guard.head_too_large)
+                cycle: Any = self.cycle
+                if self._message_done:
+                    self._app_has_it = False  # the refused request is not the one the application has
+                self._count(status)
+                if self._message_done and cycle is not None and not cycle.response_complete:
+                    self._deferred = reply  # written by on_response_complete
+                    return
+                self.transport.write(reply)
                 self.transport.close()
-                self._count(431)
 
             def _parsed_head_bytes(self) -> int:
                 """The head's size as parsed: 'METHOD target HTTP/1.1\\r\\n', each 'name: value\\r\\n', '\\r\\n'."""
@@ -333,16 +352,15 @@ class ConnectionGuard:
                 try:
                     self.parser.feed_data(data)
                 except httptools.HttpParserInvalidMethodError:
-                    if not _REQUEST_LINE.match(data):
+                    # Where the refused request begins is known only when it begins the data: after a
+                    # request read whole in the same data (a body sent without Content-Length, say), it
+                    # is malformed, not a request line.
+                    if self._done_in_read or not _REQUEST_LINE.match(data):
                         self.send_400_response("Invalid HTTP request received.")  # not a request line at all
                         return
                     # RFC 9110 §9.1: a well-formed request with a method the server does not know is
                     # answered 501, not 400.
-                    self._refused = True
-                    self._disarm()
-                    self.transport.write(guard.unknown_method)
-                    self.transport.close()
-                    self._count(501)
+                    self._close_with(guard.unknown_method, 501)
                 except httptools.HttpParserError:
                     msg = "Invalid HTTP request received."
                     self.logger.warning(msg)
@@ -374,11 +392,7 @@ class ConnectionGuard:
 
             def send_400_response(self, msg: str) -> None:  # uvicorn calls it when the parser refuses
                 guard.malformed_requests += 1
-                self._refused = True  # whatever else arrives on this connection is not read
-                self._disarm()
-                self.transport.write(guard.malformed)
-                self.transport.close()
-                self._count(400)
+                self._close_with(guard.malformed, 400)
 
             def on_message_begin(self) -> None:
                 self._in_head, self._head_began, self._head_bytes = True, True, 0
@@ -426,6 +440,7 @@ class ConnectionGuard:
                 # no body after it, so there is nothing to hold it for.
                 if cycle is not None and cycle is not before:
                     self._app_has_it = True
+                    self._message_done = False
                     if cycle.scope["method"] != "HEAD":
                         cycle.transport = _HeadWithBody(self.transport)
 
@@ -437,6 +452,8 @@ class ConnectionGuard:
                 if self._refused:
                     return
                 self._disarm()
+                self._done_in_read += 1
+                self._message_done = True
                 if self._skipping:  # the refused request has been read past: wait for the next one
                     self._skipping = False
                     self.timeout_keep_alive_task = self.loop.call_later(
@@ -454,13 +471,22 @@ class ConnectionGuard:
                 # a whole request still waits for its reply, and close it once it is answered; a
                 # request cut short, or none, closes it now as before.
                 cycle: Any = self.cycle
-                if cycle is not None and not cycle.response_complete and not cycle.more_body and not self._refused:
+                if self._deferred is not None or (
+                    cycle is not None and not cycle.response_complete and not cycle.more_body and not self._refused
+                ):
                     self._eof = True
                     return True
                 return None
 
             def on_response_complete(self) -> None:
                 super().on_response_complete()
+                if self._deferred is not None:
+                    cycle: Any = self.cycle
+                    if not self.pipeline and cycle.response_complete and not self.transport.is_closing():
+                        reply, self._deferred = self._deferred, None
+                        self.transport.write(reply)
+                        self.transport.close()
+                    return
                 if self._eof and not self.pipeline and not self.transport.is_closing():
                     self._unset_keepalive_if_required()
                     self.transport.close()

@@ -1,13 +1,14 @@
-"""What real clients and attackers send, answered by a real uvicorn on loopback.
+"""What real clients and attackers send, answered by a real ``textsieve serve`` on loopback.
 
-Each case here was found by probing a running ``textsieve serve`` with raw sockets and httpx;
-the probes that were already answered well are listed in SECURITY.md ("Probed on the wire").
-The references are the RFCs each test names.
+Each case here was found by probing a running server with raw sockets and httpx; the probes that
+were already answered well are listed in SECURITY.md ("Probed on the wire"). The references are
+the RFCs each test names.
 """
 
 from __future__ import annotations
 
 import json
+import socket
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -15,27 +16,18 @@ from typing import Any
 import httpx
 import pytest
 
-from tests.helpers.net import free_port
-from tests.helpers.service import (
-    ADMIN_TOKEN,
-    AUTH,
-    MODEL,
-    REVIEW_AUTH,
-    REVIEW_TOKEN,
-    assert_problem,
-    make_registry,
-    settings_for,
-    uvicorn_server,
-)
+from tests.helpers.servers import running_server
+from tests.helpers.service import ADMIN_TOKEN, AUTH, MODEL, REVIEW_AUTH, REVIEW_TOKEN, assert_problem, make_registry
 from textsieve.registry import open_registry
 
 
 @pytest.fixture(scope="module")
 def probed(tmp_path_factory: pytest.TempPathFactory, tiny_bundles: dict[str, Path]) -> Iterator[tuple[str, Path]]:
-    """A real uvicorn with admin and reviewer tokens on a registry of its own (v1 live, v2 registered)."""
-    registry = make_registry(tmp_path_factory.mktemp("probed") / "registry", tiny_bundles)
-    settings = settings_for(registry, port=free_port(), admin_token=ADMIN_TOKEN, review_token=REVIEW_TOKEN)
-    with uvicorn_server(settings) as server:
+    """``textsieve serve`` with admin and reviewer tokens on a registry of its own (v1 live, v2 registered)."""
+    folder = tmp_path_factory.mktemp("probed")
+    registry = make_registry(folder / "registry", tiny_bundles)
+    log = folder / "server.log"
+    with running_server(str(registry), log, workers=1, admin_token=ADMIN_TOKEN, review_token=REVIEW_TOKEN) as server:
         yield server.url, registry
 
 
@@ -133,3 +125,77 @@ def test_names_and_escapes_inside_texts_are_not_taken_for_repeated_members(probe
         r = client.post("/v1/predict", content=escaped)
         assert r.status_code == 200, r.text
         assert r.json()["model"] == MODEL
+
+
+# -- the connection: replies in the order the requests came ---------------------------------------
+_BODY = b'{"texts": ["my card was charged twice"]}'
+_PREDICT = b"POST /v1/predict HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
+_FRAMED = _PREDICT + b"Content-Length: %d\r\n\r\n" % len(_BODY) + _BODY
+
+
+def _replies_until_closed(url: str, data: bytes, *, half_close: bool = False) -> list[tuple[int, dict[str, Any]]]:
+    """Send ``data`` on one connection and read every reply (status, JSON body) until the server closes it."""
+    host, port = url.removeprefix("http://").split(":")
+    got = b""
+    with socket.create_connection((host, int(port)), timeout=20) as s:
+        s.sendall(data)
+        if half_close:
+            s.shutdown(socket.SHUT_WR)
+        while chunk := s.recv(65536):
+            got += chunk
+    replies = []
+    while got:
+        head, sep, rest = got.partition(b"\r\n\r\n")
+        assert sep, got
+        lines = head.decode("latin-1").split("\r\n")
+        fields = dict(line.lower().split(": ", 1) for line in lines[1:])
+        length = int(fields["content-length"])
+        replies.append((int(lines[0].split(" ")[1]), json.loads(rest[:length])))
+        got = rest[length:]
+    return replies
+
+
+# RFC 9112 §9.3.2: a server MUST send its responses in the order the requests were received. A
+# request the parser refuses (400) after others in the same read was answered at once and the
+# connection closed: the replies of the requests before it were lost, and the client took the 400
+# (or a 501 "unknown method", judged from the first request's line) for the reply to its first request.
+ORDERED = [
+    pytest.param(_FRAMED + b"\x01garbage\r\n\r\n", [200, 400], id="a prediction, then bytes that are no request"),
+    pytest.param(
+        b"GET /healthz HTTP/1.1\r\nHost: x\r\n\r\nGET /healthz HTTP/1.1\r\nHost: x\r\nBad Name: x\r\n\r\n",
+        [200, 400],
+        id="a probe, then a header name with a space",
+    ),
+    pytest.param(
+        _FRAMED + _FRAMED + b"GET /healthz HTTP/1.1\r\nHost: x\r\nX: \x01\r\n\r\n",
+        [200, 200, 400],
+        id="two predictions pipelined, then a control byte in a header",
+    ),
+    # RFC 9112 §6.3: a request with neither Content-Length nor Transfer-Encoding has no body; the JSON
+    # a client sent after it anyway is the next "request". The first is answered (the body is missing),
+    # then the rest is refused as malformed, not as an unknown method.
+    pytest.param(_PREDICT + b"\r\n" + _BODY, [422, 400], id="a body sent without Content-Length"),
+]
+
+
+@pytest.mark.parametrize("half_close", [False, True], ids=["open", "half-closed after sending"])
+@pytest.mark.parametrize(("data", "statuses"), ORDERED)
+def test_a_malformed_request_is_refused_after_the_replies_to_the_requests_before_it(
+    probed: tuple[str, Path], data: bytes, statuses: list[int], half_close: bool
+) -> None:
+    replies = _replies_until_closed(probed[0], data, half_close=half_close)
+    assert [status for status, _ in replies] == statuses
+    for status, body in replies:
+        if status == 200:
+            assert body == {"status": "alive"} or (body["model"] == MODEL and body["results"][0]["label"])
+        else:
+            assert body["status"] == status and body["detail"]
+    assert replies[-1][1]["type"] == "/problems/malformed-request"
+    if statuses[0] == 422:
+        assert "the body is missing" in replies[0][1]["detail"]
+
+
+def test_a_lone_malformed_request_and_an_unknown_method_are_refused_as_before(probed: tuple[str, Path]) -> None:
+    assert [s for s, _ in _replies_until_closed(probed[0], b"\x01garbage\r\n\r\n")] == [400]
+    (reply,) = _replies_until_closed(probed[0], b"BREW /v1/predict HTTP/1.1\r\nHost: x\r\n\r\n")
+    assert reply[0] == 501 and reply[1]["type"] == "/problems/unknown-method"
