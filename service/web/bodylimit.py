@@ -113,11 +113,12 @@ class BodyLimitMiddleware:
                     response.headers["Connection"] = "close"
                 await response(scope, receive, send)
                 return
-        coding = headers.get("content-encoding", "").strip()
-        if coding and coding.lower() != "identity":
+        # Every line of the header, combined (RFC 9110 §5.3): "identity" then "gzip" is a gzip body.
+        content_codings = [c.strip() for v in headers.getlist("content-encoding") for c in v.split(",") if c.strip()]
+        if any(c.lower() != "identity" for c in content_codings):
             # A compressed body would be read, counted and parsed as if it were JSON; say so at once
             # (RFC 9110 §15.5.16, with Accept-Encoding naming what is accepted: RFC 7694).
-            response = render(ContentEncodingError(coding), scope)
+            response = render(ContentEncodingError(", ".join(content_codings)), scope)
             response.headers["Accept-Encoding"] = "identity"
             response.headers["Connection"] = "close"  # its body is never read
             await response(scope, receive, send)

@@ -7,6 +7,7 @@ the RFCs each test names.
 
 from __future__ import annotations
 
+import gzip
 import json
 import socket
 from collections.abc import Iterator
@@ -199,3 +200,24 @@ def test_a_lone_malformed_request_and_an_unknown_method_are_refused_as_before(pr
     assert [s for s, _ in _replies_until_closed(probed[0], b"\x01garbage\r\n\r\n")] == [400]
     (reply,) = _replies_until_closed(probed[0], b"BREW /v1/predict HTTP/1.1\r\nHost: x\r\n\r\n")
     assert reply[0] == 501 and reply[1]["type"] == "/problems/unknown-method"
+
+
+# -- header lines given more than once --------------------------------------------------------------
+@pytest.mark.parametrize("compressed", [True, False], ids=["gzip body", "plain body declared gzip"])
+@pytest.mark.parametrize(
+    ("path", "auth"), [("/v1/predict", {}), ("/v1/verdicts", REVIEW_AUTH)], ids=["predict", "verdicts"]
+)
+def test_a_content_coding_on_a_second_header_line_is_refused_as_on_the_first(
+    probed: tuple[str, Path], path: str, auth: dict[str, str], compressed: bool
+) -> None:
+    # RFC 9110 §5.3: field lines of one name combine, in order, into one comma-separated list, so
+    # "identity" then "gzip" is "identity, gzip": a gzip body. Only the first line was read, and such
+    # a body was parsed as if it were the JSON itself (422 "not UTF-8", or 200 for JSON declared gzip).
+    body = json.dumps({"texts": ["my card was charged twice"]}).encode()
+    content = gzip.compress(body) if compressed else body
+    headers = [*JSON.items(), *auth.items(), ("Content-Encoding", "identity"), ("Content-Encoding", "gzip")]
+    r = httpx.post(probed[0] + path, content=content, headers=headers, timeout=30)
+    problem = assert_problem(r, 415, "unsupported-content-encoding")
+    assert "'identity, gzip'" in problem["detail"] and r.headers["accept-encoding"] == "identity"
+    twice = [*JSON.items(), ("Content-Encoding", "identity"), ("Content-Encoding", "identity")]
+    assert httpx.post(probed[0] + "/v1/predict", content=body, headers=twice, timeout=30).status_code == 200
