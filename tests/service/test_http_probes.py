@@ -221,3 +221,37 @@ def test_a_content_coding_on_a_second_header_line_is_refused_as_on_the_first(
     assert "'identity, gzip'" in problem["detail"] and r.headers["accept-encoding"] == "identity"
     twice = [*JSON.items(), ("Content-Encoding", "identity"), ("Content-Encoding", "identity")]
     assert httpx.post(probed[0] + "/v1/predict", content=body, headers=twice, timeout=30).status_code == 200
+
+
+_WRONG = "Bearer " + "w" * 27
+
+
+@pytest.mark.parametrize(
+    "lines",
+    [
+        pytest.param([_WRONG, "Bearer {token}"], id="a wrong token, then the right one"),
+        pytest.param(["Bearer {token}", _WRONG], id="the right token, then a wrong one"),
+        pytest.param(["Bearer {token}", "Bearer {token}"], id="the right token twice"),
+    ],
+)
+@pytest.mark.parametrize(
+    ("path", "token", "slug"),
+    [
+        pytest.param(f"/v1/models/{MODEL}/rollback", ADMIN_TOKEN, "unauthorized", id="rollback"),
+        pytest.param("/v1/verdicts", REVIEW_TOKEN, "reviewer-unauthorized", id="verdicts"),
+    ],
+)
+def test_an_authorization_header_given_on_two_lines_is_refused_whichever_holds_the_token(
+    probed: tuple[str, Path], path: str, token: str, slug: str, lines: list[str]
+) -> None:
+    # RFC 9110 §11.6.2: Authorization holds one set of credentials; RFC 6750 §3.1 calls a request that
+    # repeats them malformed. Only the first line was read, so a request whose proxy, log or audit
+    # filter reads the last line was judged on other credentials than the service's (CWE-436).
+    url, registry = probed
+    before = (_states(registry), _verdicts(registry))
+    headers = [*JSON.items(), *(("Authorization", line.format(token=token)) for line in lines)]
+    r = httpx.post(url + path, content=b'{"reason": "probe"}', headers=headers, timeout=30)
+    problem = assert_problem(r, 401, slug)
+    assert "2 Authorization header lines" in problem["detail"] and "one" in problem["detail"]
+    assert r.headers["www-authenticate"].startswith("Bearer") and token not in r.text
+    assert (_states(registry), _verdicts(registry)) == before
