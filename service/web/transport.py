@@ -433,6 +433,10 @@ class ConnectionGuard:
                         self.flow.pause_reading()
                         self.loop.call_later(RETRY_AFTER_SECONDS / 2, self._resume)
                     return
+                if self.parser.get_http_version() == "1.0":
+                    # RFC 9110 §10.1.1 and §15.2: an HTTP/1.0 request's 100-continue is ignored, since
+                    # such a client takes the first status line it reads, an interim one too, for the reply.
+                    self.expect_100_continue = False
                 before = self.cycle
                 super().on_headers_complete()
                 cycle = self.cycle

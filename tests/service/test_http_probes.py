@@ -150,8 +150,9 @@ def _replies_until_closed(url: str, data: bytes, *, half_close: bool = False) ->
         assert sep, got
         lines = head.decode("latin-1").split("\r\n")
         fields = dict(line.lower().split(": ", 1) for line in lines[1:])
-        length = int(fields["content-length"])
-        replies.append((int(lines[0].split(" ")[1]), json.loads(rest[:length])))
+        status = int(lines[0].split(" ")[1])
+        length = int(fields["content-length"]) if status >= 200 else 0  # an interim reply is a head alone
+        replies.append((status, json.loads(rest[:length]) if length else {}))
         got = rest[length:]
     return replies
 
@@ -255,3 +256,17 @@ def test_an_authorization_header_given_on_two_lines_is_refused_whichever_holds_t
     assert "2 Authorization header lines" in problem["detail"] and "one" in problem["detail"]
     assert r.headers["www-authenticate"].startswith("Bearer") and token not in r.text
     assert (_states(registry), _verdicts(registry)) == before
+
+
+def test_an_http_1_0_request_that_expects_100_continue_gets_no_interim_reply(probed: tuple[str, Path]) -> None:
+    # RFC 9110 §10.1.1: a server MUST ignore a 100-continue expectation in an HTTP/1.0 request, and
+    # §15.2: it MUST NOT send a 1xx response to an HTTP/1.0 client, which reads the first status line
+    # it gets as the reply. It got "100 Continue" and took that for the answer to its prediction.
+    request = b"POST /v1/predict HTTP/1.0\r\nContent-Type: application/json\r\nExpect: 100-continue\r\n"
+    replies = _replies_until_closed(probed[0], request + b"Content-Length: %d\r\n\r\n" % len(_BODY) + _BODY)
+    assert [status for status, _ in replies] == [200] and replies[0][1]["model"] == MODEL
+    # HTTP/1.1 keeps its interim reply (RFC 9110 §15.2.1), sent before the final one.
+    host, port = probed[0].removeprefix("http://").split(":")
+    with socket.create_connection((host, int(port)), timeout=20) as s:
+        s.sendall(_PREDICT + b"Expect: 100-continue\r\nContent-Length: %d\r\n\r\n" % len(_BODY))
+        assert s.recv(100) == b"HTTP/1.1 100 Continue\r\n\r\n"
