@@ -65,6 +65,9 @@ _PROBE_TARGETS = frozenset(p.encode() for p in PROBE_PATHS)
 WITH_BODY = frozenset({"POST", "PUT", "PATCH"})
 # A request line: a method token (RFC 9110 §5.6.2), a target and an HTTP version.
 _REQUEST_LINE = re.compile(rb"[!#$%&'*+.^_`|~0-9A-Za-z-]+ [^ \r\n]+ HTTP/[0-9]\.[0-9]\r?\n")
+# A Host field value (RFC 9112 §3.2, RFC 3986 §3.2.2): a bracketed IP literal, or a name or IPv4 address
+# (a reg-name: unreserved, percent-encoded and sub-delims characters, maybe none), then an optional port.
+_HOST = re.compile(rb"(?:\[[0-9A-Za-z._~!$&'()*+,;=:-]+\]|[0-9A-Za-z._~%!$&'()*+,;=-]*)(?::[0-9]*)?")
 # The route label of a reply written here: no route was matched, as for the app's own 404s.
 UNMATCHED = "unmatched"
 # The scope key of the status written here to a request the application holds (a body that stalled
@@ -199,8 +202,8 @@ class ConnectionGuard:
             "Bad Request",
             MALFORMED.slug,
             MALFORMED.title,
-            "the request could not be parsed as HTTP/1.1: check its request line, headers (one Host), Content-Length "
-            "(one, a whole number) and chunked framing; the connection is closed",
+            "the request could not be parsed as HTTP/1.1: check its request line, headers (one valid Host), "
+            "Content-Length (one, a whole number) and chunked framing; the connection is closed",
             None,
         )
         self.malformed_requests = 0
@@ -408,11 +411,15 @@ class ConnectionGuard:
                     return
                 if self._should_upgrade():  # checked and admitted once, when parsed again (see _feed)
                     return
-                hosts = sum(1 for name, _ in self.headers if name == b"host")
-                if hosts > 1 or (hosts == 0 and self.parser.get_http_version() == "1.1"):
+                hosts = [value for name, value in self.headers if name == b"host"]
+                if (
+                    len(hosts) > 1
+                    or (not hosts and self.parser.get_http_version() == "1.1")
+                    or (hosts and not _HOST.fullmatch(hosts[0]))
+                ):
                     # RFC 9112 §3.2: a server must answer 400 to an HTTP/1.1 request without a Host,
-                    # or with two (a proxy in front may have read the other one).
-                    self.send_400_response("Host missing or repeated")
+                    # with two (a proxy in front may have read the other one), or with one that is no host.
+                    self.send_400_response("Host missing, repeated or invalid")
                     return
                 if self.url.split(b"?", 1)[0] not in _PROBE_TARGETS and not guard.request_may_start():
                     cycle: Any = self.cycle

@@ -270,3 +270,30 @@ def test_an_http_1_0_request_that_expects_100_continue_gets_no_interim_reply(pro
     with socket.create_connection((host, int(port)), timeout=20) as s:
         s.sendall(_PREDICT + b"Expect: 100-continue\r\nContent-Length: %d\r\n\r\n" % len(_BODY))
         assert s.recv(100) == b"HTTP/1.1 100 Continue\r\n\r\n"
+
+
+# RFC 9112 §3.2: a server MUST answer 400 to an HTTP/1.1 request whose Host is not a valid field value:
+# RFC 3986 §3.2.2's host (a name, an IPv4 address or a bracketed IP literal) with an optional port.
+@pytest.mark.parametrize(
+    ("host", "status"),
+    [
+        pytest.param(b"a b", 400, id="a space"),
+        pytest.param(b"x/y", 400, id="a path"),
+        pytest.param(b"user@x", 400, id="userinfo"),
+        pytest.param(b"x:80:90", 400, id="two ports"),
+        pytest.param(b"x:http", 400, id="a port that is no number"),
+        pytest.param(b"x\x7f", 400, id="DEL"),
+        pytest.param(b"x", 200, id="a name"),
+        pytest.param(b"svc_1.example:8000", 200, id="a name and port"),
+        pytest.param(b"127.0.0.1:8000", 200, id="IPv4 and port"),
+        pytest.param(b"[::1]:8000", 200, id="IPv6 literal and port"),
+        pytest.param(b"", 200, id="empty (allowed when the target has no authority)"),
+    ],
+)
+def test_a_host_that_is_no_host_is_refused_400(probed: tuple[str, Path], host: bytes, status: int) -> None:
+    replies = _replies_until_closed(
+        probed[0], b"GET /healthz HTTP/1.1\r\nHost: " + host + b"\r\nConnection: close\r\n\r\n"
+    )
+    assert [s for s, _ in replies] == [status]
+    if status == 400:
+        assert replies[0][1]["type"] == "/problems/malformed-request" and "Host" in replies[0][1]["detail"]
