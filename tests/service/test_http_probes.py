@@ -297,3 +297,35 @@ def test_a_host_that_is_no_host_is_refused_400(probed: tuple[str, Path], host: b
     assert [s for s, _ in replies] == [status]
     if status == 400:
         assert replies[0][1]["type"] == "/problems/malformed-request" and "Host" in replies[0][1]["detail"]
+
+
+@pytest.mark.parametrize(
+    "types",
+    [
+        pytest.param(["text/plain", "application/json"], id="text/plain, then JSON"),
+        pytest.param(["application/json", "text/plain"], id="JSON, then text/plain"),
+        pytest.param(["application/json", "application/json"], id="JSON twice"),
+    ],
+)
+@pytest.mark.parametrize(
+    ("path", "auth", "body"),
+    [
+        pytest.param("/v1/predict", {}, _BODY, id="predict"),
+        pytest.param("/v1/verdicts", REVIEW_AUTH, _VERDICT + b'"verdict_label": "billing"}', id="verdicts"),
+    ],
+)
+def test_a_content_type_given_on_two_lines_is_refused_naming_both(
+    probed: tuple[str, Path], path: str, auth: dict[str, str], body: bytes, types: list[str]
+) -> None:
+    # RFC 9110 §8.3: Content-Type holds one media type. Only the first line was read: a filter in front
+    # that reads the last one saw text/plain (and skipped its JSON checks) where the service read JSON.
+    url, registry = probed
+    before = _verdicts(registry)
+    headers = [*auth.items(), *(("Content-Type", t) for t in types)]
+    r = httpx.post(url + path, content=body, headers=headers, timeout=30)
+    problem = assert_problem(r, 422, "invalid-input")
+    assert problem["errors"][0]["field"] == "Content-Type"
+    assert "2 Content-Type header lines" in problem["detail"] and all(repr(t) in problem["detail"] for t in types)
+    assert "Content-Type: application/json" in problem["detail"] and _verdicts(registry) == before
+    r = httpx.post(url + path, content=body, headers=[("Content-Type", "text/plain"), ("Content-Type", "x/y")])
+    assert r.status_code == (422 if not auth else 401)  # the token still comes first
