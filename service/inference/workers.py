@@ -331,6 +331,10 @@ class _Died(Exception):
     """The worker process ended (or its pipe closed) before replying."""
 
 
+class _Busy(Exception):
+    """Another thread is putting a batch into the worker's pipe (``submit(..., wait=False)``)."""
+
+
 Waiter = Future[tuple[Outcome, Any]] | asyncio.Future[tuple[Outcome, Any]]
 # multiprocessing.Connection's framing: a 4-byte big-endian length, or -1 and an 8-byte length.
 _SHORT = struct.Struct("!i")
@@ -479,6 +483,12 @@ class _Worker:
         if not replies.closed.is_set():
             assert self.loop is not None
             self.loop.add_reader(replies.fd, self._readable, replies)
+            # uvloop's add_reader (the server's loop) makes the socket non-blocking (libuv's uv_poll_init
+            # does); asyncio's leaves it as it was. Every send here expects a blocking socket: with a
+            # full pipe, a batch then failed with EAGAIN, part written, and was taken for a dead
+            # worker (killed, replaced, its requests answered 503). The loop reads only when the
+            # socket is readable, so a blocking read returns at once there too.
+            os.set_blocking(replies.fd, True)
             replies.watched = True
 
     def _readable(self, replies: _Replies) -> None:  # on the loop, when the pipe has bytes (or is closed)
@@ -520,11 +530,16 @@ class _Worker:
         finally:
             replies.close()
 
-    def submit(self, msg: Message, payload: bytes | None = None, waiter: Waiter | None = None) -> tuple[int, Waiter]:
+    def submit(
+        self, msg: Message, payload: bytes | None = None, waiter: Waiter | None = None, *, wait: bool = True
+    ) -> tuple[int, Waiter]:
         """Put ``msg`` in the worker's pipe (as ``payload`` when the caller has pickled it already);
-        its reply settles ``waiter`` (a new thread-safe future unless given)."""
+        its reply settles ``waiter`` (a new thread-safe future unless given). With ``wait`` False it
+        raises :class:`_Busy` rather than wait for another sender."""
         fut: Waiter = Future() if waiter is None else waiter
-        with self.send_lock:
+        if not self.send_lock.acquire(blocking=wait):
+            raise _Busy()
+        try:
             gen = self.generation
             replies = self.replies
             if self.conn is None or replies is None or replies.closed.is_set():
@@ -538,6 +553,8 @@ class _Worker:
             except (OSError, ValueError) as exc:
                 replies.pending.remove(fut)
                 raise _Died() from exc
+        finally:
+            self.send_lock.release()
         return gen, fut
 
     def _wait(self, fut: Future[tuple[Outcome, Any]]) -> tuple[Outcome, Any]:
@@ -751,7 +768,12 @@ class WorkerProcesses:
         # With the loop reading the pipe, the reply settles an asyncio future right here on the loop.
         waiter: Waiter | None = loop.create_future() if w.loop is loop else None
         try:
-            gen, fut = w.submit(msg, payload, waiter)
+            # Never wait on the loop for a thread that is putting a large batch into this pipe: the
+            # pipe may be full until the worker reads, and the worker may wait for the loop to read
+            # its reply first. The batch goes from a thread too, behind that one.
+            gen, fut = w.submit(msg, payload, waiter, wait=False)
+        except _Busy:
+            return loop.run_in_executor(executor, lambda: _unpack(w.call(msg, retry=True)))
         except _Died:  # the worker was already gone: replace it and run the batch there
             return loop.run_in_executor(executor, self._run_again, w, w.generation, msg)
         result: asyncio.Future[RunReply] = loop.create_future()

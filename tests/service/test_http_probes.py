@@ -329,3 +329,29 @@ def test_a_content_type_given_on_two_lines_is_refused_naming_both(
     assert "Content-Type: application/json" in problem["detail"] and _verdicts(registry) == before
     r = httpx.post(url + path, content=body, headers=[("Content-Type", "text/plain"), ("Content-Type", "x/y")])
     assert r.status_code == (422 if not auth else 401)  # the token still comes first
+
+
+# -- the worker processes under concurrent large requests ------------------------------------------
+def test_concurrent_large_requests_never_lose_a_worker(tmp_path: Path, tiny_bundles: dict[str, Path]) -> None:
+    """Under ``textsieve serve`` the event loop is uvloop, whose add_reader makes the worker pipe's
+    socket non-blocking (libuv's uv_poll_init does). A batch sent into a full pipe then failed with
+    EAGAIN, part written, and was taken for a dead worker: the worker was killed and replaced and
+    its requests answered 503 "an inference worker stopped" (four concurrent 256-text requests were
+    enough). Every request here is admitted (a long queue wait), so each must be answered 200."""
+    import asyncio
+
+    registry = make_registry(tmp_path / "registry", tiny_bundles)
+    text = "my card was charged twice and the brake is broken, the chain is flat again today " * 20
+    large = json.dumps({"texts": [text] * 256, "spans": 20}).encode()  # over 64 KiB: sent from a thread
+    small = json.dumps({"texts": [text] * 16, "spans": 20}).encode()  # under it: sent from the loop
+    with running_server(str(registry), tmp_path / "server.log", workers=2, queue_wait_ms=60_000) as server:
+
+        async def burst(body: bytes, n: int) -> list[str]:
+            async with httpx.AsyncClient(base_url=server.url, headers=JSON, timeout=120) as client:
+                replies = await asyncio.gather(*(client.post("/v1/predict", content=body) for _ in range(n)))
+            return ["200" if r.status_code == 200 else f"{r.status_code} {r.text[:200]}" for r in replies]
+
+        for _ in range(3):
+            assert asyncio.run(burst(large, 4)) == ["200"] * 4
+            assert asyncio.run(burst(small, 24)) == ["200"] * 24
+        assert "stopped" not in server.output()
