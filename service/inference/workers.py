@@ -35,6 +35,7 @@ import logging
 import multiprocessing
 import multiprocessing.connection
 import os
+import select
 import struct
 import threading
 from collections import deque
@@ -482,13 +483,10 @@ class _Worker:
     def _watch(self, replies: _Replies) -> None:  # on the loop
         if not replies.closed.is_set():
             assert self.loop is not None
-            self.loop.add_reader(replies.fd, self._readable, replies)
             # uvloop's add_reader (the server's loop) makes the socket non-blocking (libuv's uv_poll_init
-            # does); asyncio's leaves it as it was. Every send here expects a blocking socket: with a
-            # full pipe, a batch then failed with EAGAIN, part written, and was taken for a dead
-            # worker (killed, replaced, its requests answered 503). The loop reads only when the
-            # socket is readable, so a blocking read returns at once there too.
-            os.set_blocking(replies.fd, True)
+            # does, and libuv may report it readable when it is not); asyncio's leaves it blocking.
+            # Reads and writes here work either way (_read_once, _write).
+            self.loop.add_reader(replies.fd, self._readable, replies)
             replies.watched = True
 
     def _readable(self, replies: _Replies) -> None:  # on the loop, when the pipe has bytes (or is closed)
@@ -499,7 +497,7 @@ class _Worker:
         """One read of the pipe (it blocks only when nothing is there yet); False once it is done with."""
         try:
             data = os.read(replies.fd, READ_BYTES)
-        except InterruptedError:
+        except (InterruptedError, BlockingIOError):  # a non-blocking pipe with nothing yet
             return True
         except OSError:
             return False
@@ -546,10 +544,11 @@ class _Worker:
                 raise _Died()
             replies.pending.append(fut)
             try:
-                if payload is not None:
-                    self.conn.send_bytes(payload)
-                else:
-                    self.conn.send(msg)
+                body = payload if payload is not None else bytes(ForkingPickler.dumps(msg))
+                self._write(_SHORT.pack(len(body)) + body, replies, on_loop=not wait)
+            except _Busy:
+                replies.pending.remove(fut)
+                raise
             except (OSError, ValueError) as exc:
                 replies.pending.remove(fut)
                 raise _Died() from exc
@@ -557,12 +556,32 @@ class _Worker:
             self.send_lock.release()
         return gen, fut
 
+    def _write(self, message: bytes, replies: _Replies, *, on_loop: bool) -> None:
+        """Write one framed message whole, the pipe blocking or not (uvloop makes it non-blocking).
+        A full pipe is waited for: from a thread until the worker reads; on the event loop, which
+        must never wait for a worker that may itself wait for the loop to read its reply, the
+        message goes to a thread instead (:class:`_Busy`) when none of it was written, and otherwise
+        the loop reads the worker's replies while it waits to write the rest."""
+        assert self.conn is not None
+        fd = self.conn.fileno()
+        data = memoryview(message)
+        while data:
+            try:
+                data = data[os.write(fd, data) :]
+            except BlockingIOError:
+                if on_loop and len(data) == len(message):
+                    raise _Busy() from None
+                readable, _, _ = select.select([fd] if on_loop else [], [fd], [])
+                if readable and not self._read_once(replies):
+                    raise _Died() from None
+
     def _wait(self, fut: Future[tuple[Outcome, Any]]) -> tuple[Outcome, Any]:
         """The reply to a blocking call. Called on the event loop's own thread (a test, a diagnostic),
         it reads the pipe itself: the loop cannot while it waits here."""
         replies = self.replies
         if self.loop is not None and replies is not None and not replies.by_thread and _on_thread_of(self.loop):
             while not fut.done() and not replies.closed.is_set():
+                select.select([replies.fd], [], [])  # the pipe may be non-blocking (see _watch)
                 if not self._read_once(replies):
                     self._detach(replies)
         return fut.result()
