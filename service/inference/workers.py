@@ -35,6 +35,7 @@ import logging
 import multiprocessing
 import multiprocessing.connection
 import os
+import select
 import struct
 import threading
 from collections import deque
@@ -328,6 +329,10 @@ class _Died(Exception):
     """The worker process ended (or its pipe closed) before replying."""
 
 
+class _Busy(Exception):
+    """Another thread is putting a batch into the worker's pipe (``submit(..., wait=False)``)."""
+
+
 Waiter = Future[tuple[Outcome, Any]] | asyncio.Future[tuple[Outcome, Any]]
 # multiprocessing.Connection's framing: a 4-byte big-endian length, or -1 and an 8-byte length.
 _SHORT = struct.Struct("!i")
@@ -475,6 +480,9 @@ class _Worker:
     def _watch(self, replies: _Replies) -> None:  # on the loop
         if not replies.closed.is_set():
             assert self.loop is not None
+            # uvloop's add_reader (the server's loop) makes the socket non-blocking (libuv's uv_poll_init
+            # does, and libuv may report it readable when it is not); asyncio's leaves it blocking.
+            # Reads and writes here work either way (_read_once, _write).
             self.loop.add_reader(replies.fd, self._readable, replies)
             replies.watched = True
 
@@ -486,7 +494,7 @@ class _Worker:
         """One read of the pipe (it blocks only when nothing is there yet); False once it is done with."""
         try:
             data = os.read(replies.fd, READ_BYTES)
-        except InterruptedError:
+        except (InterruptedError, BlockingIOError):  # a non-blocking pipe with nothing yet
             return True
         except OSError:
             return False
@@ -517,25 +525,52 @@ class _Worker:
         finally:
             replies.close()
 
-    def submit(self, msg: Message, payload: bytes | None = None, waiter: Waiter | None = None) -> tuple[int, Waiter]:
+    def submit(
+        self, msg: Message, payload: bytes | None = None, waiter: Waiter | None = None, *, wait: bool = True
+    ) -> tuple[int, Waiter]:
         """Put ``msg`` in the worker's pipe (as ``payload`` when the caller has pickled it already);
-        its reply settles ``waiter`` (a new thread-safe future unless given)."""
+        its reply settles ``waiter`` (a new thread-safe future unless given). With ``wait`` False it
+        raises :class:`_Busy` rather than wait for another sender."""
         fut: Waiter = Future() if waiter is None else waiter
-        with self.send_lock:
+        if not self.send_lock.acquire(blocking=wait):
+            raise _Busy()
+        try:
             gen = self.generation
             replies = self.replies
             if self.conn is None or replies is None or replies.closed.is_set():
                 raise _Died()
             replies.pending.append(fut)
             try:
-                if payload is not None:
-                    self.conn.send_bytes(payload)
-                else:
-                    self.conn.send(msg)
+                body = payload if payload is not None else bytes(ForkingPickler.dumps(msg))
+                self._write(_SHORT.pack(len(body)) + body, replies, on_loop=not wait)
+            except _Busy:
+                replies.pending.remove(fut)
+                raise
             except (OSError, ValueError) as exc:
                 replies.pending.remove(fut)
                 raise _Died() from exc
+        finally:
+            self.send_lock.release()
         return gen, fut
+
+    def _write(self, message: bytes, replies: _Replies, *, on_loop: bool) -> None:
+        """Write one framed message whole, the pipe blocking or not (uvloop makes it non-blocking).
+        A full pipe is waited for: from a thread until the worker reads; on the event loop, which
+        must never wait for a worker that may itself wait for the loop to read its reply, the
+        message goes to a thread instead (:class:`_Busy`) when none of it was written, and otherwise
+        the loop reads the worker's replies while it waits to write the rest."""
+        assert self.conn is not None
+        fd = self.conn.fileno()
+        data = memoryview(message)
+        while data:
+            try:
+                data = data[os.write(fd, data) :]
+            except BlockingIOError:
+                if on_loop and len(data) == len(message):
+                    raise _Busy() from None
+                readable, _, _ = select.select([fd] if on_loop else [], [fd], [])
+                if readable and not self._read_once(replies):
+                    raise _Died() from None
 
     def _wait(self, fut: Future[tuple[Outcome, Any]]) -> tuple[Outcome, Any]:
         """The reply to a blocking call. Called on the event loop's own thread (a test, a diagnostic),
@@ -543,6 +578,7 @@ class _Worker:
         replies = self.replies
         if self.loop is not None and replies is not None and not replies.by_thread and _on_thread_of(self.loop):
             while not fut.done() and not replies.closed.is_set():
+                select.select([replies.fd], [], [])  # the pipe may be non-blocking (see _watch)
                 if not self._read_once(replies):
                     self._detach(replies)
         return fut.result()
@@ -748,7 +784,12 @@ class WorkerProcesses:
         # With the loop reading the pipe, the reply settles an asyncio future right here on the loop.
         waiter: Waiter | None = loop.create_future() if w.loop is loop else None
         try:
-            gen, fut = w.submit(msg, payload, waiter)
+            # Never wait on the loop for a thread that is putting a large batch into this pipe: the
+            # pipe may be full until the worker reads, and the worker may wait for the loop to read
+            # its reply first. The batch goes from a thread too, behind that one.
+            gen, fut = w.submit(msg, payload, waiter, wait=False)
+        except _Busy:
+            return loop.run_in_executor(executor, lambda: _unpack(w.call(msg, retry=True)))
         except _Died:  # the worker was already gone: replace it and run the batch there
             return loop.run_in_executor(executor, self._run_again, w, w.generation, msg)
         result: asyncio.Future[RunReply] = loop.create_future()

@@ -36,7 +36,7 @@ _SECURED: dict[str, Any] = {"security": [{ADMIN_SCHEME: []}]}
 
 
 async def require_admin(request: Request, settings: SettingsDep) -> None:
-    refusal = admin_refusal(settings, request.headers.get("authorization", ""))
+    refusal = admin_refusal(settings, request.headers.getlist("authorization"))
     if refusal is not None:
         raise refusal
 

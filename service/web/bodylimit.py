@@ -22,7 +22,7 @@ import gc
 from starlette.datastructures import Headers
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
-from textsieve.errors import LimitError, OverloadedError
+from textsieve.errors import InputError, LimitError, OverloadedError
 from textsieve.service.inference.memory import release_freed_memory
 from textsieve.service.web.problems import ContentEncodingError, TransferCodingError, render
 from textsieve.service.web.tokens import TokenGate
@@ -86,6 +86,18 @@ def _over_budget(budget: BodyBudget) -> OverloadedError:
     )
 
 
+def _repeated_content_type(types: list[str]) -> InputError:
+    # RFC 9110 §8.3: one media type. Which line a filter in front reads is its own choice (one that
+    # reads "text/plain" skips its JSON checks), so none is taken here.
+    named = ", ".join(repr(t[:100]) for t in types[:5])
+    message = (
+        f"the request has {len(types)} Content-Type header lines ({named}); send one: Content-Type: application/json"
+    )
+    return InputError(
+        f"Content-Type: {message}", errors=[{"field": "Content-Type", "message": message, "type": "header_repeated"}]
+    )
+
+
 class BodyLimitMiddleware:
     def __init__(self, app: ASGIApp, max_bytes: int, budget: BodyBudget, tokens: TokenGate | None = None) -> None:
         self.app = app
@@ -113,11 +125,16 @@ class BodyLimitMiddleware:
                     response.headers["Connection"] = "close"
                 await response(scope, receive, send)
                 return
-        coding = headers.get("content-encoding", "").strip()
-        if coding and coding.lower() != "identity":
+        types = headers.getlist("content-type")
+        if len(types) > 1:
+            await self._refuse(_repeated_content_type(types), scope, receive, send)
+            return
+        # Every line of the header, combined (RFC 9110 §5.3): "identity" then "gzip" is a gzip body.
+        content_codings = [c.strip() for v in headers.getlist("content-encoding") for c in v.split(",") if c.strip()]
+        if any(c.lower() != "identity" for c in content_codings):
             # A compressed body would be read, counted and parsed as if it were JSON; say so at once
             # (RFC 9110 §15.5.16, with Accept-Encoding naming what is accepted: RFC 7694).
-            response = render(ContentEncodingError(coding), scope)
+            response = render(ContentEncodingError(", ".join(content_codings)), scope)
             response.headers["Accept-Encoding"] = "identity"
             response.headers["Connection"] = "close"  # its body is never read
             await response(scope, receive, send)

@@ -17,7 +17,11 @@ body (:class:`JsonBodyRoute`) reads it as UTF-8 or refuses it:
   from memory), so refusing it would fail callers for nothing. The lane
   (:mod:`~textsieve.service.web.lane`) does not read such a body; it hands it here.
 - bytes that are not UTF-8 at all, JSON that does not parse, nesting deeper than the reader's
-  recursion and numbers past Python's 4300 digits are 422, as before.
+  recursion and numbers past Python's 4300 digits are 422, as before;
+- a member name given twice in one object (``{"to": "candidate", "to": "live"}``, an escape such
+  as ``"t\\u006f"`` included) is 422 naming it. RFC 8259 §4 leaves such an object's meaning to
+  each reader: Python's and pydantic's take the last, many take the first, so a gateway, audit
+  filter or log in front could read a promotion to candidate that the service carried out to live.
 
 FastAPI reads the body before it runs a route's dependencies, so any such refusal used to come
 before the admin or reviewer token's 401/403 (DEVELOPERS.md: the token is checked before anything
@@ -37,6 +41,7 @@ from fastapi.routing import APIRoute
 
 from textsieve.errors import InputError
 from textsieve.service.web.problems import BODY_REFUSAL, CharsetError, body_shape
+from textsieve.service.web.schemas import shown_name
 
 UTF8_BOM = b"\xef\xbb\xbf"
 # Longest first: UTF-32LE's mark begins with UTF-16LE's.
@@ -81,6 +86,34 @@ def _unreadable(why: str, shape: Callable[[], str], cause: BaseException) -> Inp
     return error
 
 
+class _Repeated(Exception):
+    def __init__(self, name: str) -> None:
+        self.name = name
+
+
+def _unique(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+    """An object's members as a dict; raises :class:`_Repeated` for a name given twice."""
+    members = dict(pairs)
+    if len(members) != len(pairs):
+        seen: set[str] = set()
+        for name, _ in pairs:
+            if name in seen:
+                raise _Repeated(name)
+            seen.add(name)
+    return members
+
+
+def _repeated(name: str) -> InputError:
+    shown = shown_name(name)
+    message = (
+        f"the body gives the member {shown!r} more than once; JSON member names must be unique "
+        "(RFC 8259 §4 leaves a repeated one's meaning to each reader): give each field once"
+    )
+    return InputError(
+        f"{shown}: {message}", errors=[{"field": shown, "message": message, "type": "json_duplicate_name"}]
+    )
+
+
 def parse(body: bytes, content_type: str, shape: Callable[[], str]) -> Any:
     """The JSON value of a request body sent as ``content_type``; raises :class:`InputError`
     (:class:`CharsetError` for another encoding) with the words for the reply. ``shape()`` says
@@ -98,7 +131,9 @@ def parse(body: bytes, content_type: str, shape: Callable[[], str]) -> Any:
     except UnicodeDecodeError as exc:
         raise _unreadable(f"not UTF-8: {exc.reason} at byte {exc.start + skip}", shape, exc) from None
     try:
-        return json.loads(text)
+        return json.loads(text, object_pairs_hook=_unique)
+    except _Repeated as exc:
+        raise _repeated(exc.name) from None
     except json.JSONDecodeError as exc:
         message = f"the body is not valid JSON (at character {exc.pos}: {exc.msg})"
         raise InputError(

@@ -14,7 +14,9 @@ and for every request the lane passes on.
 
 A request it cannot answer exactly as the app would goes to the full app, with any body it has
 read replayed: a body, limit or header the app refuses (it words those refusals), another
-content type, a chunked body, a client that went away, a replica without its models yet.
+content type, a chunked body, a client that went away, a replica without its models yet, and a
+body that may give a member name twice (pydantic's reader takes the last one; the app's reader
+refuses it, :mod:`~textsieve.service.web.jsonbody`).
 Refusals once the request is valid (an unknown model or version, overloaded, deadline passed,
 unavailable) are rendered by :func:`textsieve.service.web.problems.render`, as the app's
 exception handlers render them (one difference: an unexpected error's 500 carries the
@@ -46,6 +48,20 @@ PATH = "/v1/predict"
 _JSON = frozenset({b"application/json", b"application/json; charset=utf-8"})
 _DEADLINE = DEADLINE_HEADER.lower().encode("latin-1")
 _REPLY_TYPE = (b"content-type", b"application/json")
+# A member name given twice shows as its quoted name twice, unless one of them is written with
+# escapes; the request's names are made of a-z, whose escapes begin with \u006 or \u007.
+_QUOTED = {name: f'"{name}"'.encode("ascii") for name in PredictRequest.model_fields}
+
+
+def _may_repeat_a_name(body: bytes, given: set[str]) -> bool:
+    """Whether ``body``, read as a request that gives the members ``given``, may give one of them
+    twice. Texts holding a quoted member name or an escaped letter also say yes (the full app's
+    exact reader then answers them); only the names given are looked for, so a plain request costs
+    one scan for "texts" and one for an escape."""
+    for name in given:
+        if body.count(_QUOTED[name]) > 1:
+            return True
+    return b"\\u00" in body and (b"\\u006" in body or b"\\u007" in body)
 
 
 def _replay(messages: list[Message], receive: Receive) -> Receive:
@@ -127,6 +143,8 @@ class PredictLane:
         """The request and its deadline, or None for anything the full app should word the refusal of."""
         try:
             request = PredictRequest.model_validate_json(body)
+            if _may_repeat_a_name(body, request.model_fields_set):
+                return None
             check_limits(request, self.settings)
             deadline = None if raw_deadline is None else deadline_at(raw_deadline, received)
         except Exception:  # noqa: BLE001 - every refusal is the full app's to word

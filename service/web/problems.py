@@ -282,8 +282,9 @@ MALFORMED = Kind(
     400,
     "malformed-request",
     "The request is not valid HTTP",
-    "The request line, a header (an HTTP/1.1 request has exactly one Host), the Content-Length or the "
-    "chunked framing could not be parsed as HTTP/1.1 (RFC 9112); the connection was closed. Nothing was computed.",
+    "The request line, a header (an HTTP/1.1 request has exactly one Host: a host name or address, maybe with "
+    "a port), the Content-Length or the chunked framing could not be parsed as HTTP/1.1 (RFC 9112); the "
+    "connection was closed. Nothing was computed.",
 )
 HEAD_TOO_LARGE = Kind(
     431,

@@ -62,7 +62,7 @@ _KEY_PARAMETER = {
 
 
 async def require_reviewer(request: Request, settings: SettingsDep) -> None:
-    refusal = reviewer_refusal(settings, request.headers.get("authorization", ""))
+    refusal = reviewer_refusal(settings, request.headers.getlist("authorization"))
     if refusal is not None:
         raise refusal
 

@@ -34,7 +34,7 @@ def _field_names(model: type[BaseModel]) -> frozenset[str]:
     return frozenset(model.model_fields)
 
 
-def _shown(name: str) -> str:
+def shown_name(name: str) -> str:
     """A caller's field name fit for a reply: cut to NAME_CHARS, and a lone surrogate (``"\\ud800"``
     in the JSON, which Python's reader lets through) written as that escape, since no UTF-8 reply
     can hold it: the problem's encoder refused it and the caller got a 500."""
@@ -51,7 +51,7 @@ class _Request(BaseModel):
         if isinstance(data, dict) and not data.keys() <= _field_names(cls):
             unknown = sorted(str(k) for k in data if k not in cls.model_fields)
             if unknown:
-                named = [_shown(n) for n in unknown[:NAMED_UNKNOWN]]
+                named = [shown_name(n) for n in unknown[:NAMED_UNKNOWN]]
                 more = f" and {len(unknown) - len(named)} more" if len(unknown) > len(named) else ""
                 raise PydanticCustomError(
                     "unknown_field",
@@ -345,4 +345,5 @@ __all__ = [
     "VerdictReply",
     "VerdictRequest",
     "VersionView",
+    "shown_name",
 ]

@@ -27,7 +27,17 @@ from textsieve.errors import AuthError
 from textsieve.service.settings import Settings
 from textsieve.service.web.problems import AdminDisabledError, ReviewDisabledError, ReviewerAuthError
 
-Check = Callable[[Settings, str], AuthError | None]
+# A check takes the settings and every line of the request's Authorization header.
+Check = Callable[[Settings, list[str]], AuthError | None]
+
+
+def _repeated(lines: list[str]) -> str | None:
+    """Why ``lines`` are not one Authorization header, or None. RFC 9110 §11.6.2: it holds one set of
+    credentials; a request with two lines is malformed (RFC 6750 §3.1), and which line a proxy, log or
+    audit filter in front reads is its own choice, so none is taken here."""
+    if len(lines) < 2:
+        return None
+    return f"the request has {len(lines)} Authorization header lines; send one: 'Authorization: Bearer <token>'"
 
 
 def _bearer(authorization: str) -> str | None:
@@ -38,10 +48,14 @@ def _bearer(authorization: str) -> str | None:
     return token.strip()
 
 
-def admin_refusal(settings: Settings, authorization: str) -> AuthError | None:
-    """Why an admin call with this Authorization header is refused, or None when its token is right."""
+def admin_refusal(settings: Settings, lines: list[str]) -> AuthError | None:
+    """Why an admin call with these Authorization header lines is refused, or None when its token is right."""
     if settings.admin_token is None:
         return AdminDisabledError()
+    repeated = _repeated(lines)
+    if repeated is not None:
+        return AuthError(repeated, missing=True)
+    authorization = lines[0] if lines else ""
     if not authorization:
         return AuthError("admin calls need an 'Authorization: Bearer <token>' header", missing=True)
     token = _bearer(authorization)
@@ -52,10 +66,14 @@ def admin_refusal(settings: Settings, authorization: str) -> AuthError | None:
     return None
 
 
-def reviewer_refusal(settings: Settings, authorization: str) -> AuthError | None:
-    """Why a verdict call with this Authorization header is refused, or None when its token is right."""
+def reviewer_refusal(settings: Settings, lines: list[str]) -> AuthError | None:
+    """Why a verdict call with these Authorization header lines is refused, or None when its token is right."""
     if settings.review_token is None:
         return ReviewDisabledError()
+    repeated = _repeated(lines)
+    if repeated is not None:
+        return ReviewerAuthError(repeated, missing=True)
+    authorization = lines[0] if lines else ""
     if not authorization:
         return ReviewerAuthError("recording a verdict needs an 'Authorization: Bearer <token>' header", missing=True)
     token = _bearer(authorization)
@@ -90,7 +108,7 @@ class TokenGate:
         """The 401/403 for a request to a guarded route without its valid token; None otherwise."""
         for route, check in self.guarded:
             if route.matches(scope)[0] is Match.FULL:
-                return check(self.settings, Headers(scope=scope).get("authorization", ""))
+                return check(self.settings, Headers(scope=scope).getlist("authorization"))
         return None
 
 

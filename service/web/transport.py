@@ -65,6 +65,9 @@ _PROBE_TARGETS = frozenset(p.encode() for p in PROBE_PATHS)
 WITH_BODY = frozenset({"POST", "PUT", "PATCH"})
 # A request line: a method token (RFC 9110 §5.6.2), a target and an HTTP version.
 _REQUEST_LINE = re.compile(rb"[!#$%&'*+.^_`|~0-9A-Za-z-]+ [^ \r\n]+ HTTP/[0-9]\.[0-9]\r?\n")
+# A Host field value (RFC 9112 §3.2, RFC 3986 §3.2.2): a bracketed IP literal, or a name or IPv4 address
+# (a reg-name: unreserved, percent-encoded and sub-delims characters, maybe none), then an optional port.
+_HOST = re.compile(rb"(?:\[[0-9A-Za-z._~!$&'()*+,;=:-]+\]|[0-9A-Za-z._~%!$&'()*+,;=-]*)(?::[0-9]*)?")
 # The route label of a reply written here: no route was matched, as for the app's own 404s.
 UNMATCHED = "unmatched"
 # The scope key of the status written here to a request the application holds (a body that stalled
@@ -199,8 +202,8 @@ class ConnectionGuard:
             "Bad Request",
             MALFORMED.slug,
             MALFORMED.title,
-            "the request could not be parsed as HTTP/1.1: check its request line, headers (one Host), Content-Length "
-            "(one, a whole number) and chunked framing; the connection is closed",
+            "the request could not be parsed as HTTP/1.1: check its request line, headers (one valid Host), "
+            "Content-Length (one, a whole number) and chunked framing; the connection is closed",
             None,
         )
         self.malformed_requests = 0
@@ -265,6 +268,9 @@ class ConnectionGuard:
             _began = 0.0  # when the current request began (loop time)
             _app_has_it = False  # the current request was handed to the application
             url = b""  # uvicorn sets it when a request begins; a connection may time out before any does
+            _done_in_read = 0  # requests read whole in the data being parsed now
+            _message_done = False  # the last request read is whole: what comes next begins another
+            _deferred: bytes | None = None  # a refusal waiting for the replies to the requests before it
 
             def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
                 if guard.open >= guard.max_connections:
@@ -290,6 +296,7 @@ class ConnectionGuard:
                 if self._over_cap or self._refused:
                     return
                 self._head_began = False
+                self._done_in_read = 0
                 self._read = len(data)
                 if self._in_head:
                     self._head_upper += len(data)
@@ -302,11 +309,26 @@ class ConnectionGuard:
                         self._head_too_large()
 
             def _head_too_large(self) -> None:
-                self._refused = True
+                self._close_with(guard.head_too_large, 431)
+
+            def _close_with(self, reply: bytes, status: int) -> None:
+                """Refuse the request being read with ``reply`` and close the connection, once the
+                requests read before it have their replies. RFC 9112 §9.3.2: replies go out in the order
+                the requests came. A refusal written at once went out before the reply of a request
+                still being answered, which was then lost, and the client read the refusal as that
+                request's reply (a body sent without Content-Length after a POST, a pipelined request
+                with a bad header)."""
+                self._refused = True  # whatever else arrives on this connection is not read
                 self._disarm()
-                self.transport.write(guard.head_too_large)
+                cycle: Any = self.cycle
+                if self._message_done:
+                    self._app_has_it = False  # the refused request is not the one the application has
+                self._count(status)
+                if self._message_done and cycle is not None and not cycle.response_complete:
+                    self._deferred = reply  # written by on_response_complete
+                    return
+                self.transport.write(reply)
                 self.transport.close()
-                self._count(431)
 
             def _parsed_head_bytes(self) -> int:
                 """The head's size as parsed: 'METHOD target HTTP/1.1\\r\\n', each 'name: value\\r\\n', '\\r\\n'."""
@@ -333,16 +355,15 @@ class ConnectionGuard:
                 try:
                     self.parser.feed_data(data)
                 except httptools.HttpParserInvalidMethodError:
-                    if not _REQUEST_LINE.match(data):
+                    # Where the refused request begins is known only when it begins the data: after a
+                    # request read whole in the same data (a body sent without Content-Length, say), it
+                    # is malformed, not a request line.
+                    if self._done_in_read or not _REQUEST_LINE.match(data):
                         self.send_400_response("Invalid HTTP request received.")  # not a request line at all
                         return
                     # RFC 9110 §9.1: a well-formed request with a method the server does not know is
                     # answered 501, not 400.
-                    self._refused = True
-                    self._disarm()
-                    self.transport.write(guard.unknown_method)
-                    self.transport.close()
-                    self._count(501)
+                    self._close_with(guard.unknown_method, 501)
                 except httptools.HttpParserError:
                     msg = "Invalid HTTP request received."
                     self.logger.warning(msg)
@@ -374,11 +395,7 @@ class ConnectionGuard:
 
             def send_400_response(self, msg: str) -> None:  # uvicorn calls it when the parser refuses
                 guard.malformed_requests += 1
-                self._refused = True  # whatever else arrives on this connection is not read
-                self._disarm()
-                self.transport.write(guard.malformed)
-                self.transport.close()
-                self._count(400)
+                self._close_with(guard.malformed, 400)
 
             def on_message_begin(self) -> None:
                 self._in_head, self._head_began, self._head_bytes = True, True, 0
@@ -394,11 +411,15 @@ class ConnectionGuard:
                     return
                 if self._should_upgrade():  # checked and admitted once, when parsed again (see _feed)
                     return
-                hosts = sum(1 for name, _ in self.headers if name == b"host")
-                if hosts > 1 or (hosts == 0 and self.parser.get_http_version() == "1.1"):
+                hosts = [value for name, value in self.headers if name == b"host"]
+                if (
+                    len(hosts) > 1
+                    or (not hosts and self.parser.get_http_version() == "1.1")
+                    or (hosts and not _HOST.fullmatch(hosts[0]))
+                ):
                     # RFC 9112 §3.2: a server must answer 400 to an HTTP/1.1 request without a Host,
-                    # or with two (a proxy in front may have read the other one).
-                    self.send_400_response("Host missing or repeated")
+                    # with two (a proxy in front may have read the other one), or with one that is no host.
+                    self.send_400_response("Host missing, repeated or invalid")
                     return
                 if self.url.split(b"?", 1)[0] not in _PROBE_TARGETS and not guard.request_may_start():
                     cycle: Any = self.cycle
@@ -419,6 +440,10 @@ class ConnectionGuard:
                         self.flow.pause_reading()
                         self.loop.call_later(RETRY_AFTER_SECONDS / 2, self._resume)
                     return
+                if self.parser.get_http_version() == "1.0":
+                    # RFC 9110 §10.1.1 and §15.2: an HTTP/1.0 request's 100-continue is ignored, since
+                    # such a client takes the first status line it reads, an interim one too, for the reply.
+                    self.expect_100_continue = False
                 before = self.cycle
                 super().on_headers_complete()
                 cycle = self.cycle
@@ -426,6 +451,7 @@ class ConnectionGuard:
                 # no body after it, so there is nothing to hold it for.
                 if cycle is not None and cycle is not before:
                     self._app_has_it = True
+                    self._message_done = False
                     if cycle.scope["method"] != "HEAD":
                         cycle.transport = _HeadWithBody(self.transport)
 
@@ -437,6 +463,8 @@ class ConnectionGuard:
                 if self._refused:
                     return
                 self._disarm()
+                self._done_in_read += 1
+                self._message_done = True
                 if self._skipping:  # the refused request has been read past: wait for the next one
                     self._skipping = False
                     self.timeout_keep_alive_task = self.loop.call_later(
@@ -454,13 +482,22 @@ class ConnectionGuard:
                 # a whole request still waits for its reply, and close it once it is answered; a
                 # request cut short, or none, closes it now as before.
                 cycle: Any = self.cycle
-                if cycle is not None and not cycle.response_complete and not cycle.more_body and not self._refused:
+                if self._deferred is not None or (
+                    cycle is not None and not cycle.response_complete and not cycle.more_body and not self._refused
+                ):
                     self._eof = True
                     return True
                 return None
 
             def on_response_complete(self) -> None:
                 super().on_response_complete()
+                if self._deferred is not None:
+                    cycle: Any = self.cycle
+                    if not self.pipeline and cycle.response_complete and not self.transport.is_closing():
+                        reply, self._deferred = self._deferred, None
+                        self.transport.write(reply)
+                        self.transport.close()
+                    return
                 if self._eof and not self.pipeline and not self.transport.is_closing():
                     self._unset_keepalive_if_required()
                     self.transport.close()

@@ -76,11 +76,13 @@ async def test_a_worker_that_keeps_dying_gives_503_not_500(registry_dir: Path, m
         worker = app.state.pool.procs.workers[0]
         real = worker.submit
 
-        def dies(msg: Message, payload: bytes | None = None, waiter: Any = None) -> tuple[int, Any]:
+        def dies(
+            msg: Message, payload: bytes | None = None, waiter: Any = None, *, wait: bool = True
+        ) -> tuple[int, Any]:
             if isinstance(msg, Run):  # the worker dies with the batch in its pipe, every time
                 os.kill(worker.proc.pid, signal.SIGKILL)
                 worker.proc.join(5)
-            return real(msg, payload, waiter)
+            return real(msg, payload, waiter, wait=wait)
 
         monkeypatch.setattr(worker, "submit", dies)
         r = await client.post("/v1/predict", json={"texts": TEXTS[:2]})

@@ -1,0 +1,357 @@
+"""What real clients and attackers send, answered by a real ``textsieve serve`` on loopback.
+
+Each case here was found by probing a running server with raw sockets and httpx; the probes that
+were already answered well are listed in SECURITY.md ("Probed on the wire"). The references are
+the RFCs each test names.
+"""
+
+from __future__ import annotations
+
+import gzip
+import json
+import socket
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import httpx
+import pytest
+
+from tests.helpers.servers import running_server
+from tests.helpers.service import ADMIN_TOKEN, AUTH, MODEL, REVIEW_AUTH, REVIEW_TOKEN, assert_problem, make_registry
+from textsieve.registry import open_registry
+
+
+@pytest.fixture(scope="module")
+def probed(tmp_path_factory: pytest.TempPathFactory, tiny_bundles: dict[str, Path]) -> Iterator[tuple[str, Path]]:
+    """``textsieve serve`` with admin and reviewer tokens on a registry of its own (v1 live, v2 registered)."""
+    folder = tmp_path_factory.mktemp("probed")
+    registry = make_registry(folder / "registry", tiny_bundles)
+    log = folder / "server.log"
+    with running_server(str(registry), log, workers=1, admin_token=ADMIN_TOKEN, review_token=REVIEW_TOKEN) as server:
+        yield server.url, registry
+
+
+JSON = {"Content-Type": "application/json"}
+_VERDICT = (
+    b'{"model": "support", "version": 1, "text": "my card was charged twice", "predicted_label": "repair", '
+    b'"predicted_probability": 0.5, "reviewer": "ann", '
+)
+# RFC 8259 §4: "The names within an object SHOULD be unique", and when they are not, "the behavior
+# of software that receives such an object is unpredictable": one reader takes the first, another
+# the last. A gateway, audit filter or log that reads the first "to" saw a promotion to candidate
+# while the service (the last one wins in Python's and pydantic's readers) promoted to live.
+DUPLICATES = [
+    pytest.param(
+        "/v1/predict",
+        {},
+        b'{"texts": ["my card was charged twice"], "texts": ["the brake is broken"]}',
+        "texts",
+        id="predict: texts twice",
+    ),
+    pytest.param(
+        "/v1/predict",
+        {},
+        b'{"texts": ["my card was charged twice"], "spans": 1, "sp\\u0061ns": 0}',
+        "spans",
+        id="predict: spans twice, once written with an escape",
+    ),
+    pytest.param(
+        f"/v1/models/{MODEL}/versions/2/promote",
+        AUTH,
+        b'{"to": "candidate", "reason": "probe", "to": "live", "force": true}',
+        "to",
+        id="promote: to twice",
+    ),
+    pytest.param(
+        f"/v1/models/{MODEL}/rollback",
+        AUTH,
+        b'{"reason": "first", "reason": "second"}',
+        "reason",
+        id="rollback: reason twice",
+    ),
+    pytest.param(
+        "/v1/verdicts",
+        REVIEW_AUTH,
+        _VERDICT + b'"verdict_label": "billing", "verdict_label": "repair"}',
+        "verdict_label",
+        id="verdicts: verdict_label twice",
+    ),
+]
+
+
+def _states(registry: Path) -> list[tuple[int, str]]:
+    with open_registry(registry) as reg:
+        return [(v.version, v.state) for v in reg.versions(MODEL)]
+
+
+def _verdicts(registry: Path) -> int:
+    with open_registry(registry) as reg:
+        return len(reg.verdicts.of(MODEL))
+
+
+@pytest.mark.parametrize("chunked", [False, True], ids=["Content-Length", "chunked"])
+@pytest.mark.parametrize(("path", "auth", "body", "name"), DUPLICATES)
+def test_a_member_name_given_twice_is_refused_naming_it_and_changes_nothing(
+    probed: tuple[str, Path], path: str, auth: dict[str, str], body: bytes, name: str, chunked: bool
+) -> None:
+    url, registry = probed
+    before = (_states(registry), _verdicts(registry))
+    content: Any = iter([body[:10], body[10:]]) if chunked else body
+    r = httpx.post(url + path, content=content, headers={**JSON, **auth}, timeout=30)
+    problem = assert_problem(r, 422, "invalid-input")
+    assert problem["errors"][0] == {
+        "field": name,
+        "message": problem["errors"][0]["message"],
+        "type": "json_duplicate_name",
+    }
+    assert f"'{name}' more than once" in problem["detail"] and "once" in problem["errors"][0]["message"]
+    assert (_states(registry), _verdicts(registry)) == before
+
+
+def test_names_and_escapes_inside_texts_are_not_taken_for_repeated_members(probed: tuple[str, Path]) -> None:
+    """The fast lane hands a body that may repeat a name to the full app; texts that hold a member
+    name in quotes, or an escaped letter, are still answered, as the same texts sent plainly are."""
+    url, _ = probed
+    texts = ['"texts" and "model" in quotes', "model", "an escaped letter: \\u0061", "spans"]
+    tricky = json.dumps({"texts": texts, "model": MODEL, "spans": 2}).encode()
+    assert tricky.count(b'"model"') == 2 and b"\\\\u0061" in tricky
+    escaped = b'{"texts": ["my card was charged twice"], "m\\u006fdel": "support"}'
+    with httpx.Client(base_url=url, headers=JSON, timeout=30) as client:
+        r = client.post("/v1/predict", content=tricky)
+        assert r.status_code == 200, r.text
+        assert [len(x["spans"]) <= 2 for x in r.json()["results"]] == [True] * 4
+        alone = [client.post("/v1/predict", json={"texts": [t], "spans": 2}).json()["results"][0] for t in texts]
+        assert r.json()["results"] == alone
+        r = client.post("/v1/predict", content=escaped)
+        assert r.status_code == 200, r.text
+        assert r.json()["model"] == MODEL
+
+
+# -- the connection: replies in the order the requests came ---------------------------------------
+_BODY = b'{"texts": ["my card was charged twice"]}'
+_PREDICT = b"POST /v1/predict HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
+_FRAMED = _PREDICT + b"Content-Length: %d\r\n\r\n" % len(_BODY) + _BODY
+
+
+def _replies_until_closed(url: str, data: bytes, *, half_close: bool = False) -> list[tuple[int, dict[str, Any]]]:
+    """Send ``data`` on one connection and read every reply (status, JSON body) until the server closes it."""
+    host, port = url.removeprefix("http://").split(":")
+    got = b""
+    with socket.create_connection((host, int(port)), timeout=20) as s:
+        s.sendall(data)
+        if half_close:
+            s.shutdown(socket.SHUT_WR)
+        while chunk := s.recv(65536):
+            got += chunk
+    replies = []
+    while got:
+        head, sep, rest = got.partition(b"\r\n\r\n")
+        assert sep, got
+        lines = head.decode("latin-1").split("\r\n")
+        fields = dict(line.lower().split(": ", 1) for line in lines[1:])
+        status = int(lines[0].split(" ")[1])
+        length = int(fields["content-length"]) if status >= 200 else 0  # an interim reply is a head alone
+        replies.append((status, json.loads(rest[:length]) if length else {}))
+        got = rest[length:]
+    return replies
+
+
+# RFC 9112 §9.3.2: a server MUST send its responses in the order the requests were received. A
+# request the parser refuses (400) after others in the same read was answered at once and the
+# connection closed: the replies of the requests before it were lost, and the client took the 400
+# (or a 501 "unknown method", judged from the first request's line) for the reply to its first request.
+ORDERED = [
+    pytest.param(_FRAMED + b"\x01garbage\r\n\r\n", [200, 400], id="a prediction, then bytes that are no request"),
+    pytest.param(
+        b"GET /healthz HTTP/1.1\r\nHost: x\r\n\r\nGET /healthz HTTP/1.1\r\nHost: x\r\nBad Name: x\r\n\r\n",
+        [200, 400],
+        id="a probe, then a header name with a space",
+    ),
+    pytest.param(
+        _FRAMED + _FRAMED + b"GET /healthz HTTP/1.1\r\nHost: x\r\nX: \x01\r\n\r\n",
+        [200, 200, 400],
+        id="two predictions pipelined, then a control byte in a header",
+    ),
+    # RFC 9112 §6.3: a request with neither Content-Length nor Transfer-Encoding has no body; the JSON
+    # a client sent after it anyway is the next "request". The first is answered (the body is missing),
+    # then the rest is refused as malformed, not as an unknown method.
+    pytest.param(_PREDICT + b"\r\n" + _BODY, [422, 400], id="a body sent without Content-Length"),
+]
+
+
+@pytest.mark.parametrize("half_close", [False, True], ids=["open", "half-closed after sending"])
+@pytest.mark.parametrize(("data", "statuses"), ORDERED)
+def test_a_malformed_request_is_refused_after_the_replies_to_the_requests_before_it(
+    probed: tuple[str, Path], data: bytes, statuses: list[int], half_close: bool
+) -> None:
+    replies = _replies_until_closed(probed[0], data, half_close=half_close)
+    assert [status for status, _ in replies] == statuses
+    for status, body in replies:
+        if status == 200:
+            assert body == {"status": "alive"} or (body["model"] == MODEL and body["results"][0]["label"])
+        else:
+            assert body["status"] == status and body["detail"]
+    assert replies[-1][1]["type"] == "/problems/malformed-request"
+    if statuses[0] == 422:
+        assert "the body is missing" in replies[0][1]["detail"]
+
+
+def test_a_lone_malformed_request_and_an_unknown_method_are_refused_as_before(probed: tuple[str, Path]) -> None:
+    assert [s for s, _ in _replies_until_closed(probed[0], b"\x01garbage\r\n\r\n")] == [400]
+    (reply,) = _replies_until_closed(probed[0], b"BREW /v1/predict HTTP/1.1\r\nHost: x\r\n\r\n")
+    assert reply[0] == 501 and reply[1]["type"] == "/problems/unknown-method"
+
+
+# -- header lines given more than once --------------------------------------------------------------
+@pytest.mark.parametrize("compressed", [True, False], ids=["gzip body", "plain body declared gzip"])
+@pytest.mark.parametrize(
+    ("path", "auth"), [("/v1/predict", {}), ("/v1/verdicts", REVIEW_AUTH)], ids=["predict", "verdicts"]
+)
+def test_a_content_coding_on_a_second_header_line_is_refused_as_on_the_first(
+    probed: tuple[str, Path], path: str, auth: dict[str, str], compressed: bool
+) -> None:
+    # RFC 9110 §5.3: field lines of one name combine, in order, into one comma-separated list, so
+    # "identity" then "gzip" is "identity, gzip": a gzip body. Only the first line was read, and such
+    # a body was parsed as if it were the JSON itself (422 "not UTF-8", or 200 for JSON declared gzip).
+    body = json.dumps({"texts": ["my card was charged twice"]}).encode()
+    content = gzip.compress(body) if compressed else body
+    headers = [*JSON.items(), *auth.items(), ("Content-Encoding", "identity"), ("Content-Encoding", "gzip")]
+    r = httpx.post(probed[0] + path, content=content, headers=headers, timeout=30)
+    problem = assert_problem(r, 415, "unsupported-content-encoding")
+    assert "'identity, gzip'" in problem["detail"] and r.headers["accept-encoding"] == "identity"
+    twice = [*JSON.items(), ("Content-Encoding", "identity"), ("Content-Encoding", "identity")]
+    assert httpx.post(probed[0] + "/v1/predict", content=body, headers=twice, timeout=30).status_code == 200
+
+
+_WRONG = "Bearer " + "w" * 27
+
+
+@pytest.mark.parametrize(
+    "lines",
+    [
+        pytest.param([_WRONG, "Bearer {token}"], id="a wrong token, then the right one"),
+        pytest.param(["Bearer {token}", _WRONG], id="the right token, then a wrong one"),
+        pytest.param(["Bearer {token}", "Bearer {token}"], id="the right token twice"),
+    ],
+)
+@pytest.mark.parametrize(
+    ("path", "token", "slug"),
+    [
+        pytest.param(f"/v1/models/{MODEL}/rollback", ADMIN_TOKEN, "unauthorized", id="rollback"),
+        pytest.param("/v1/verdicts", REVIEW_TOKEN, "reviewer-unauthorized", id="verdicts"),
+    ],
+)
+def test_an_authorization_header_given_on_two_lines_is_refused_whichever_holds_the_token(
+    probed: tuple[str, Path], path: str, token: str, slug: str, lines: list[str]
+) -> None:
+    # RFC 9110 §11.6.2: Authorization holds one set of credentials; RFC 6750 §3.1 calls a request that
+    # repeats them malformed. Only the first line was read, so a request whose proxy, log or audit
+    # filter reads the last line was judged on other credentials than the service's (CWE-436).
+    url, registry = probed
+    before = (_states(registry), _verdicts(registry))
+    headers = [*JSON.items(), *(("Authorization", line.format(token=token)) for line in lines)]
+    r = httpx.post(url + path, content=b'{"reason": "probe"}', headers=headers, timeout=30)
+    problem = assert_problem(r, 401, slug)
+    assert "2 Authorization header lines" in problem["detail"] and "one" in problem["detail"]
+    assert r.headers["www-authenticate"].startswith("Bearer") and token not in r.text
+    assert (_states(registry), _verdicts(registry)) == before
+
+
+def test_an_http_1_0_request_that_expects_100_continue_gets_no_interim_reply(probed: tuple[str, Path]) -> None:
+    # RFC 9110 §10.1.1: a server MUST ignore a 100-continue expectation in an HTTP/1.0 request, and
+    # §15.2: it MUST NOT send a 1xx response to an HTTP/1.0 client, which reads the first status line
+    # it gets as the reply. It got "100 Continue" and took that for the answer to its prediction.
+    request = b"POST /v1/predict HTTP/1.0\r\nContent-Type: application/json\r\nExpect: 100-continue\r\n"
+    replies = _replies_until_closed(probed[0], request + b"Content-Length: %d\r\n\r\n" % len(_BODY) + _BODY)
+    assert [status for status, _ in replies] == [200] and replies[0][1]["model"] == MODEL
+    # HTTP/1.1 keeps its interim reply (RFC 9110 §15.2.1), sent before the final one.
+    host, port = probed[0].removeprefix("http://").split(":")
+    with socket.create_connection((host, int(port)), timeout=20) as s:
+        s.sendall(_PREDICT + b"Expect: 100-continue\r\nContent-Length: %d\r\n\r\n" % len(_BODY))
+        assert s.recv(100) == b"HTTP/1.1 100 Continue\r\n\r\n"
+
+
+# RFC 9112 §3.2: a server MUST answer 400 to an HTTP/1.1 request whose Host is not a valid field value:
+# RFC 3986 §3.2.2's host (a name, an IPv4 address or a bracketed IP literal) with an optional port.
+@pytest.mark.parametrize(
+    ("host", "status"),
+    [
+        pytest.param(b"a b", 400, id="a space"),
+        pytest.param(b"x/y", 400, id="a path"),
+        pytest.param(b"user@x", 400, id="userinfo"),
+        pytest.param(b"x:80:90", 400, id="two ports"),
+        pytest.param(b"x:http", 400, id="a port that is no number"),
+        pytest.param(b"x\x7f", 400, id="DEL"),
+        pytest.param(b"x", 200, id="a name"),
+        pytest.param(b"svc_1.example:8000", 200, id="a name and port"),
+        pytest.param(b"127.0.0.1:8000", 200, id="IPv4 and port"),
+        pytest.param(b"[::1]:8000", 200, id="IPv6 literal and port"),
+        pytest.param(b"", 200, id="empty (allowed when the target has no authority)"),
+    ],
+)
+def test_a_host_that_is_no_host_is_refused_400(probed: tuple[str, Path], host: bytes, status: int) -> None:
+    replies = _replies_until_closed(
+        probed[0], b"GET /healthz HTTP/1.1\r\nHost: " + host + b"\r\nConnection: close\r\n\r\n"
+    )
+    assert [s for s, _ in replies] == [status]
+    if status == 400:
+        assert replies[0][1]["type"] == "/problems/malformed-request" and "Host" in replies[0][1]["detail"]
+
+
+@pytest.mark.parametrize(
+    "types",
+    [
+        pytest.param(["text/plain", "application/json"], id="text/plain, then JSON"),
+        pytest.param(["application/json", "text/plain"], id="JSON, then text/plain"),
+        pytest.param(["application/json", "application/json"], id="JSON twice"),
+    ],
+)
+@pytest.mark.parametrize(
+    ("path", "auth", "body"),
+    [
+        pytest.param("/v1/predict", {}, _BODY, id="predict"),
+        pytest.param("/v1/verdicts", REVIEW_AUTH, _VERDICT + b'"verdict_label": "billing"}', id="verdicts"),
+    ],
+)
+def test_a_content_type_given_on_two_lines_is_refused_naming_both(
+    probed: tuple[str, Path], path: str, auth: dict[str, str], body: bytes, types: list[str]
+) -> None:
+    # RFC 9110 §8.3: Content-Type holds one media type. Only the first line was read: a filter in front
+    # that reads the last one saw text/plain (and skipped its JSON checks) where the service read JSON.
+    url, registry = probed
+    before = _verdicts(registry)
+    headers = [*auth.items(), *(("Content-Type", t) for t in types)]
+    r = httpx.post(url + path, content=body, headers=headers, timeout=30)
+    problem = assert_problem(r, 422, "invalid-input")
+    assert problem["errors"][0]["field"] == "Content-Type"
+    assert "2 Content-Type header lines" in problem["detail"] and all(repr(t) in problem["detail"] for t in types)
+    assert "Content-Type: application/json" in problem["detail"] and _verdicts(registry) == before
+    r = httpx.post(url + path, content=body, headers=[("Content-Type", "text/plain"), ("Content-Type", "x/y")])
+    assert r.status_code == (422 if not auth else 401)  # the token still comes first
+
+
+# -- the worker processes under concurrent large requests ------------------------------------------
+def test_concurrent_large_requests_never_lose_a_worker(tmp_path: Path, tiny_bundles: dict[str, Path]) -> None:
+    """Under ``textsieve serve`` the event loop is uvloop, whose add_reader makes the worker pipe's
+    socket non-blocking (libuv's uv_poll_init does). A batch sent into a full pipe then failed with
+    EAGAIN, part written, and was taken for a dead worker: the worker was killed and replaced and
+    its requests answered 503 "an inference worker stopped" (four concurrent 256-text requests were
+    enough). Every request here is admitted (a long queue wait), so each must be answered 200."""
+    import asyncio
+
+    registry = make_registry(tmp_path / "registry", tiny_bundles)
+    text = "my card was charged twice and the brake is broken, the chain is flat again today " * 20
+    large = json.dumps({"texts": [text] * 256, "spans": 20}).encode()  # over 64 KiB: sent from a thread
+    small = json.dumps({"texts": [text] * 16, "spans": 20}).encode()  # under it: sent from the loop
+    with running_server(str(registry), tmp_path / "server.log", workers=2, queue_wait_ms=60_000) as server:
+
+        async def burst(body: bytes, n: int) -> list[str]:
+            async with httpx.AsyncClient(base_url=server.url, headers=JSON, timeout=120) as client:
+                replies = await asyncio.gather(*(client.post("/v1/predict", content=body) for _ in range(n)))
+            return ["200" if r.status_code == 200 else f"{r.status_code} {r.text[:200]}" for r in replies]
+
+        for _ in range(3):
+            assert asyncio.run(burst(large, 4)) == ["200"] * 4
+            assert asyncio.run(burst(small, 24)) == ["200"] * 24
+        assert "stopped" not in server.output()
