@@ -45,7 +45,7 @@ from textsieve.errors import (
 )
 from textsieve.registry._db import Backend, Tx
 from textsieve.registry.blobs import OWNER_FILE, BlobStore, materialize
-from textsieve.registry.bundle import Bundle, check_card, open_bundle
+from textsieve.registry.bundle import Bundle, check_card, check_labels, open_bundle
 from textsieve.registry.drift_queries import DriftQueries
 from textsieve.registry.evalsets import (
     LabelledText,
@@ -358,6 +358,7 @@ class Registry:
         manifest_bytes = _read_manifest_bytes(bundle_dir)
         bundle = open_bundle(bundle_dir)
         check_card(bundle_dir)
+        check_labels(bundle_dir, bundle.manifest.labels)
         if Manifest.model_validate_json(manifest_bytes) != bundle.manifest:
             raise BundleError(f"{bundle_dir}: {MANIFEST} changed while it was being checked; publish again")
         labels = bundle.manifest.labels

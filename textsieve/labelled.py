@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import Any, BinaryIO
 
 from textsieve.errors import InputError
+from textsieve.printable import KINDS, character_name, refused_character
 from textsieve.texts import text_refusal
 
 JSON_SUFFIXES = (".jsonl", ".ndjson", ".json")
@@ -264,19 +265,35 @@ def _lone_surrogate(value: str) -> bool:
     return False
 
 
-def label_problem(label: str) -> str | None:
+# What a label may hold, said after the character a label is refused for.
+LABEL_CHARACTERS = (
+    "labels are one line of visible text: no control, format (invisible or bidi), line or paragraph "
+    "separator, private-use or unassigned characters (a zero width joiner only between two visible characters)"
+)
+
+
+def label_problem(label: str, *, stored: bool = False) -> str | None:
     """Why a label cannot name a class, or None. A label becomes a JSON key, a CSV and Parquet column
-    name (``probability:LABEL``), a metric's label value and a line of the CLI's tables, and labels are
-    compared exactly, so it holds no control characters (line breaks, tabs) and no spaces at its ends.
-    It is recorded with each reviewer's verdict, which holds at most ``MAX_LABEL_CHARS``; and it holds
-    no lone surrogate (a ``\\ud800`` escape in JSON), which no UTF-8 reply can carry."""
+    name (``probability:LABEL``), a line of the CLI's tables and of the reviewer page, and labels are
+    compared exactly, so it holds no spaces at its ends and only the characters a person's name may
+    (textsieve/printable.py: no control, format, separator, private-use or unassigned characters). It
+    is recorded with each reviewer's verdict, which holds at most ``MAX_LABEL_CHARS``; and it holds
+    no lone surrogate (a ``\\ud800`` escape in JSON), which no UTF-8 reply can carry.
+
+    ``stored=True`` is the rule a manifest read back obeys: versions published before the rule on
+    format, separator, private-use and unassigned characters keep loading and serving, so only control
+    characters are refused there, as they were then."""
     if len(label) > MAX_LABEL_CHARS:
         return f"is {len(label):,} characters long; a label holds at most {MAX_LABEL_CHARS}"
     if _lone_surrogate(label):
         return _LONE_SURROGATE
-    bad = next((c for c in label if unicodedata.category(c) == "Cc"), None)
+    if stored:
+        bad = next((c for c in label if unicodedata.category(c) == "Cc"), None)
+    else:
+        bad = refused_character(label)
     if bad is not None:
-        return f"holds a control character (U+{ord(bad):04X}); labels are one line of printable text"
+        category = unicodedata.category(bad)
+        return f"holds {character_name(bad)} (category {category}: {KINDS[category]}); {LABEL_CHARACTERS}"
     if label != label.strip():
         return "begins or ends with spaces; write it without them (labels are compared exactly)"
     return None
@@ -447,6 +464,7 @@ def _show(delimiter: str) -> str:
 __all__ = [
     "CSV_SUFFIXES",
     "JSON_SUFFIXES",
+    "LABEL_CHARACTERS",
     "MAX_LABEL_CHARS",
     "json_kind",
     "Example",
@@ -454,6 +472,7 @@ __all__ = [
     "check_labels",
     "cr_line_ends",
     "cr_separated",
+    "LABEL_CHARACTERS",
     "label_problem",
     "load_examples",
     "name_unknown",

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import shutil
@@ -244,6 +245,24 @@ def test_publish_refuses_a_card_without_cautions_in_one_line_saying_how_to_fix_i
     assert (code, out) == (2, "") and len(err.splitlines()) == 1, err
     assert f"{card} has no cautions section: the card must say, under a heading such as '## Cautions'," in err
     assert "export the bundle again ('textsieve export RUN --out BUNDLE'" in err
+    assert run(capsys, "models", *r)[1].startswith("no models yet")
+
+
+def test_publish_refuses_a_label_with_a_format_character_in_one_line(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """A bundle exported before labels were held to names' rule published a U+200B label, which reads
+    as another label without it (name of the character from the Unicode Character Database)."""
+    bundle = tmp_path / "bundle"
+    shutil.copytree(tiny_bundles["a"], bundle)
+    labels = json.loads((bundle / "manifest.json").read_text(encoding="utf-8"))["labels"]
+    labels[0] = labels[0][:1] + "\u200b" + labels[0][1:]
+    edit_manifest(bundle, {"labels": labels})
+    r = ["--registry", str(tmp_path / "reg")]
+    code, out, err = run(capsys, "publish", str(bundle), "--model", "m", *r)
+    assert (code, out) == (2, "") and len(err.splitlines()) == 1, err
+    assert f"the label {labels[0]!r} holds U+200B ZERO WIDTH SPACE (category Cf: a format character" in err
+    assert "train again with the label renamed" in err
     assert run(capsys, "models", *r)[1].startswith("no models yet")
 
 
