@@ -57,8 +57,16 @@ from textsieve.registry.evalsets import (
     refused_summary,
     unknown_labels,
 )
-from textsieve.registry.gates import GateSettings, Side, labels_gate, metric_gates, parity_gate, shadow_gate
-from textsieve.registry.manifest import MANIFEST, Manifest
+from textsieve.registry.gates import (
+    GateSettings,
+    Side,
+    cautions_gate,
+    labels_gate,
+    metric_gates,
+    parity_gate,
+    shadow_gate,
+)
+from textsieve.registry.manifest import CARD_FILE, MANIFEST, Manifest
 from textsieve.registry.migrations import FIRST_MIGRATION, migrate
 from textsieve.registry.model_settings import MCNEMAR, TOLERANCES, Group, ModelSettings, Value, setting
 from textsieve.registry.names import resolve_actor, validate_model_name, validate_reason, validate_version
@@ -704,7 +712,6 @@ class Registry:
     def card(self, model: str, version: int) -> str:
         """The version's model card as published: named, and linking its evaluation report
         (the bundle's own card.md is immutable; see registry/report/card.py)."""
-        from textsieve.registry.manifest import CARD_FILE
         from textsieve.registry.report.card import published_card
 
         info = self.version(model, version)
@@ -1113,7 +1120,13 @@ class Registry:
         shadow: ShadowCounts | None = None,
     ) -> list[GateResult]:
         manifest = Manifest.model_validate_json(self.blobs.read_bytes(target.files[MANIFEST]))
-        gates = [parity_gate(manifest), labels_gate(target.labels, None if live is None else live.labels, _num(live))]
+        card_sha = target.files.get(CARD_FILE)
+        card = None if card_sha is None else self.blobs.read_bytes(card_sha)
+        gates = [
+            parity_gate(manifest),
+            labels_gate(target.labels, None if live is None else live.labels, _num(live)),
+            cautions_gate(model, target.version, card),
+        ]
         examples = refused = None
         if evalset is not None:
             examples = parse_stored(self.blobs.read_bytes(evalset.sha256))

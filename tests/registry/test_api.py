@@ -428,6 +428,7 @@ def test_history_records_every_change_with_actor_utc_time_reason_and_gates(
     assert {g["name"]: g["passed"] for g in refuse.details["gates"]} == {
         "parity": True,
         "labels": False,
+        "cautions": True,
         "macro_f1": False,
         "ece": False,
     }
