@@ -1091,15 +1091,16 @@ class Registry:
         *,
         window_texts: int,
     ) -> StoredWindow:
-        """Store one replica's flush of a version's drift counts, delete the rows no window of
-        ``window_texts`` can reach any more, and return the window: one transaction."""
+        """Store one replica's flush of a version's drift counts (recording its ``window_texts``), delete
+        the rows no window of the largest size a replica declared can reach any more, and return the
+        window of ``window_texts``: one transaction."""
         model, version = validate_model_name(model), validate_version(version)
         now = utc_now()
         with self.backend.write() as tx:
             dq = DriftQueries(tx)
             if texts > 0:
                 self._require_model(Queries(tx), model)
-                dq.add(model, version, replica, now, texts, counts)
+                dq.add(model, version, replica, now, texts, counts, window_texts=window_texts)
                 dq.prune(model, version, window_texts)
             return dq.window(model, version, window_texts, len(counts))
 
