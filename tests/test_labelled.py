@@ -331,6 +331,16 @@ def test_labels_in_any_script_are_kept_as_written(tmp_path: Path, label: str) ->
     assert label_problem(label) is None
 
 
+def test_an_evaluation_set_may_name_labels_published_before_the_rule(tmp_path: Path) -> None:
+    """An evaluation set names labels of versions already published: held to the stored rule."""
+    f = _write(tmp_path / "d.jsonl", _jsonl({"text": "a", "label": "re\u200bfund"}))
+    assert "U+200B ZERO WIDTH SPACE" in _error(f)
+    assert load_examples(f, stored_labels=True) == [Example("a", "re\u200bfund")]
+    still = _write(tmp_path / "e.jsonl", _jsonl({"text": "a", "label": "two\nlines"}))
+    with pytest.raises(InputError, match="U\\+000A"):
+        load_examples(still, stored_labels=True)
+
+
 def test_a_stored_label_is_held_to_the_rule_of_its_day() -> None:
     """A manifest read back (a version published before the rule) refuses only what was refused then."""
     assert label_problem("refund\u202e") is not None

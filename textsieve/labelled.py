@@ -38,9 +38,19 @@ class Example:
 
 
 def load_examples(
-    path: Path, text_field: str = "text", label_field: str = "label", *, progress: Callable[[int], None] | None = None
+    path: Path,
+    text_field: str = "text",
+    label_field: str = "label",
+    *,
+    progress: Callable[[int], None] | None = None,
+    stored_labels: bool = False,
 ) -> list[Example]:
     """Every example of a labelled file; any problem is an :class:`InputError` naming file and line.
+
+    ``stored_labels``: the labels name classes of versions already published (an evaluation set), so
+    they are held to the rule a manifest read back obeys (``label_problem(stored=True)``): a version
+    published before labels were held to the whole rule can still be evaluated and judged. Training,
+    which makes new labels, applies the whole rule.
 
     JSON Lines, CSV and TSV are read a line at a time, so only the examples stay in memory, not the
     file's bytes, its text and its list of lines besides (a 50 MB file held all three at once; a CSV
@@ -50,7 +60,7 @@ def load_examples(
     suffix = path.suffix.lower()
     if suffix not in JSON_SUFFIXES and suffix not in CSV_SUFFIXES:
         raise InputError(f"{path}: unsupported file type {suffix or '(no extension)'!r}; {_ALLOWED}")
-    fields = _Fields(path, text_field, label_field)
+    fields = _Fields(path, text_field, label_field, stored_labels=stored_labels)
     if suffix in CSV_SUFFIXES:
         examples = list(_csv_rows(path, _csv_lines(path, progress), CSV_SUFFIXES[suffix], fields))
     elif not (suffix == ".json" and _json_array(path)):
@@ -199,10 +209,11 @@ def _json_array(path: Path) -> bool:
 class _Fields:
     """Turns one parsed record into an Example, or says precisely what is wrong with it."""
 
-    def __init__(self, path: Path, text_field: str, label_field: str) -> None:
+    def __init__(self, path: Path, text_field: str, label_field: str, *, stored_labels: bool = False) -> None:
         self.path = path
         self.text_field = text_field
         self.label_field = label_field
+        self.stored_labels = stored_labels
 
     def _fail(self, where: str, problem: str) -> InputError:
         return InputError(f"{self.path}: {where}: {problem}")
@@ -242,7 +253,7 @@ class _Fields:
             )
         if not label.strip():
             raise self._fail(where, f"the {self.label_field!r} field is empty; every row needs a label")
-        why = label_problem(label)
+        why = label_problem(label, stored=self.stored_labels)
         if why:
             raise self._fail(where, f"the label {label!r} {why}")
         return Example(text, label)

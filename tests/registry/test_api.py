@@ -199,7 +199,7 @@ def _relabel(bundle: Path, index: int, suffix: str) -> list[str]:
 
 
 def test_a_version_published_before_the_label_rule_still_loads_and_scores(
-    registry: Registry, spec: RegistrySpec, tiny_bundles: dict[str, Path], tmp_path: Path
+    registry: Registry, spec: RegistrySpec, tiny_bundles: dict[str, Path], tiny_data: Path, tmp_path: Path
 ) -> None:
     """Publish now refuses a label with a format character, but a registry written before holds such
     versions: they load (the manifest is held to the rule of its day), score and promote as before."""
@@ -217,6 +217,12 @@ def test_a_version_published_before_the_label_rule_still_loads_and_scores(
     assert predictor.labels == labels
     reference = Predictor.from_bundle(tiny_bundles["a"]).predict(["the dock is broken"], spans=0)
     scored = predictor.predict(["the dock is broken"], spans=0)
+    # Its evaluation set names the stored labels, and is added and judged on (training alone refuses them).
+    rows = read_jsonl(tiny_data / "test.jsonl")
+    original = json.loads((tiny_bundles["a"] / "manifest.json").read_text(encoding="utf-8"))["labels"]
+    write_jsonl(tmp_path / "eval.jsonl", [{**r, "label": labels[original.index(r["label"])]} for r in rows])
+    info = registry.add_evalset("spam", tmp_path / "eval.jsonl", actor="tests")
+    assert set(info.labels) <= set(labels) and labels[0] in info.labels
     # The same graph as the bundle it was copied from: the same probabilities, under the stored labels.
     assert list(scored[0].probabilities) == labels
     assert list(scored[0].probabilities.values()) == list(reference[0].probabilities.values())
