@@ -24,7 +24,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from textsieve.errors import BundleError, InputError
 from textsieve.files import atomic_directory, check_out_folder, sha256_file
-from textsieve.labelled import Example
+from textsieve.labelled import Example, label_problem
 from textsieve.registry.manifest import ArchitectureInfo, LengthInfo, TrainingInfo
 from textsieve.registry.report.embedding_files import EMBEDDINGS_NPZ, embedding_arrays
 from textsieve.registry.tokenizer import TokenizerSpec, Vocabulary
@@ -189,6 +189,10 @@ def _check_labels(labels: Any, path: Path) -> None:
         or not all(isinstance(x, str) and x.strip() for x in labels)
     ):
         raise InputError(f"{path}: 'labels' must be a list of at least 2 distinct non-empty strings")
+    for label in labels:  # a run trained before labels were held to the whole rule
+        problem = label_problem(label)
+        if problem is not None:
+            raise InputError(f"{path}: the label {label!r} {problem}; train again with the label renamed")
 
 
 def load_run(run_dir: Path) -> LoadedRun:

@@ -45,7 +45,7 @@ from textsieve.errors import (
 )
 from textsieve.registry._db import Backend, Tx
 from textsieve.registry.blobs import OWNER_FILE, BlobStore, materialize
-from textsieve.registry.bundle import Bundle, check_card, open_bundle
+from textsieve.registry.bundle import Bundle, check_card, check_labels, open_bundle
 from textsieve.registry.drift_queries import DriftQueries
 from textsieve.registry.evalsets import (
     LabelledText,
@@ -57,8 +57,16 @@ from textsieve.registry.evalsets import (
     refused_summary,
     unknown_labels,
 )
-from textsieve.registry.gates import GateSettings, Side, labels_gate, metric_gates, parity_gate, shadow_gate
-from textsieve.registry.manifest import MANIFEST, Manifest
+from textsieve.registry.gates import (
+    GateSettings,
+    Side,
+    cautions_gate,
+    labels_gate,
+    metric_gates,
+    parity_gate,
+    shadow_gate,
+)
+from textsieve.registry.manifest import CARD_FILE, MANIFEST, Manifest
 from textsieve.registry.migrations import FIRST_MIGRATION, migrate
 from textsieve.registry.model_settings import MCNEMAR, TOLERANCES, Group, ModelSettings, Value, setting
 from textsieve.registry.names import resolve_actor, validate_model_name, validate_reason, validate_version
@@ -358,6 +366,7 @@ class Registry:
         manifest_bytes = _read_manifest_bytes(bundle_dir)
         bundle = open_bundle(bundle_dir)
         check_card(bundle_dir)
+        check_labels(bundle_dir, bundle.manifest.labels)
         if Manifest.model_validate_json(manifest_bytes) != bundle.manifest:
             raise BundleError(f"{bundle_dir}: {MANIFEST} changed while it was being checked; publish again")
         labels = bundle.manifest.labels
@@ -703,7 +712,6 @@ class Registry:
     def card(self, model: str, version: int) -> str:
         """The version's model card as published: named, and linking its evaluation report
         (the bundle's own card.md is immutable; see registry/report/card.py)."""
-        from textsieve.registry.manifest import CARD_FILE
         from textsieve.registry.report.card import published_card
 
         info = self.version(model, version)
@@ -1083,15 +1091,16 @@ class Registry:
         *,
         window_texts: int,
     ) -> StoredWindow:
-        """Store one replica's flush of a version's drift counts, delete the rows no window of
-        ``window_texts`` can reach any more, and return the window: one transaction."""
+        """Store one replica's flush of a version's drift counts (recording its ``window_texts``), delete
+        the rows no window of the largest size a replica declared can reach any more, and return the
+        window of ``window_texts``: one transaction."""
         model, version = validate_model_name(model), validate_version(version)
         now = utc_now()
         with self.backend.write() as tx:
             dq = DriftQueries(tx)
             if texts > 0:
                 self._require_model(Queries(tx), model)
-                dq.add(model, version, replica, now, texts, counts)
+                dq.add(model, version, replica, now, texts, counts, window_texts=window_texts)
                 dq.prune(model, version, window_texts)
             return dq.window(model, version, window_texts, len(counts))
 
@@ -1112,7 +1121,13 @@ class Registry:
         shadow: ShadowCounts | None = None,
     ) -> list[GateResult]:
         manifest = Manifest.model_validate_json(self.blobs.read_bytes(target.files[MANIFEST]))
-        gates = [parity_gate(manifest), labels_gate(target.labels, None if live is None else live.labels, _num(live))]
+        card_sha = target.files.get(CARD_FILE)
+        card = None if card_sha is None else self.blobs.read_bytes(card_sha)
+        gates = [
+            parity_gate(manifest),
+            labels_gate(target.labels, None if live is None else live.labels, _num(live)),
+            cautions_gate(model, target.version, card),
+        ]
         examples = refused = None
         if evalset is not None:
             examples = parse_stored(self.blobs.read_bytes(evalset.sha256))

@@ -104,6 +104,21 @@ def check_card(bundle: Path) -> None:
         )
 
 
+def check_labels(bundle: Path, labels: list[str]) -> None:
+    """Every label obeys the whole rule new labels obey (textsieve/labelled.py label_problem). Checked
+    on publish only, as the card is: a manifest read back is held to the rule of its day, so a version
+    stored with a format character in a label still loads and serves (the page shows it escaped)."""
+    from textsieve.labelled import label_problem
+
+    for label in labels:
+        problem = label_problem(label)
+        if problem is not None:
+            raise BundleError(
+                f"{Path(bundle) / MANIFEST}: the label {label!r} {problem}; train again with the label "
+                "renamed and export that run"
+            )
+
+
 @dataclass(frozen=True)
 class Bundle:
     """A bundle folder whose files have been checked."""

@@ -78,6 +78,12 @@ def cautions_sections(card: str) -> list[tuple[str, str]]:
     return sections
 
 
+def missing_points(card: str) -> list[str]:
+    """The points of POINTS the card's cautions sections do not make (all of them without a section)."""
+    body = "\n".join(b for _, b in cautions_sections(card))
+    return [what for what, pattern in POINTS if not pattern.search(body)]
+
+
 def cautions_problem(card: str) -> str | None:
     """None when the card's cautions make every point in POINTS, else what is missing, in words."""
     sections = cautions_sections(card)
@@ -100,4 +106,4 @@ REQUIRED: Final = (
     "can carry bias from the training data and need monitoring, and that decisions stay with accountable people"
 )
 
-__all__ = ["POINTS", "REQUIRED", "cautions_problem", "cautions_sections"]
+__all__ = ["POINTS", "REQUIRED", "cautions_problem", "cautions_sections", "missing_points"]

@@ -694,7 +694,7 @@ def gates_in_force(settings: ModelSettings) -> str:
         TOLERANCES,
     )
 
-    parts = ["parity", "labels"]
+    parts = ["parity", "labels", "cautions"]
     if settings.get(MCNEMAR):
         parts.append(f"mcnemar (refuses when significantly worse: p < {settings.get(MCNEMAR_P):g})")
     if settings.get(TOLERANCES):

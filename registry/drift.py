@@ -239,6 +239,7 @@ class Window:
         self._shared = np.zeros(layout.size, dtype=np.int64)
         self._shared_texts = 0
         self.flushes = 0  # flushes begun: a read begun before one must not overwrite what it settles
+        self.declared: tuple[int, ...] = ()  # the window sizes the registry's rows were written under
 
     def add(self, texts: int, counts: NDArray[np.int64]) -> None:
         if texts <= 0 or len(counts) != self.layout.size:
@@ -274,11 +275,17 @@ class Window:
 
     def read(self, stored: StoredWindow) -> None:
         """``stored`` is the registry's window now (read while no flush of this window was under way)."""
+        self.declared = stored.declared
         if stored.texts == 0 or len(stored.counts) != self.layout.size:
             self._shared = np.zeros(self.layout.size, dtype=np.int64)
             self._shared_texts = 0
         else:
             self._shared, self._shared_texts = stored.counts, stored.texts
+
+    def sizes(self) -> tuple[int, ...]:
+        """Every window size the replicas sharing this window declare, this one's included, smallest first:
+        more than one means they are set differently (each reports the newest texts of its own size)."""
+        return tuple(sorted({self.size, *self.declared}))
 
     @property
     def pending_texts(self) -> int:
@@ -303,6 +310,9 @@ class StoredWindow:
     texts: int
     counts: NDArray[np.int64]
     rows: int
+    # The window sizes the version's stored rows were written under (every replica's
+    # TEXTSIEVE_DRIFT_WINDOW_TEXTS that flushed within the largest window), smallest first.
+    declared: tuple[int, ...] = ()
 
 
 def encode_counts(counts: NDArray[np.int64]) -> str:

@@ -1,8 +1,14 @@
 """The drift-count queries, for both backends, run inside a caller's transaction.
 
 A flush is one INSERT (a row per replica and flush, never an UPDATE, so replicas never wait on one
-another's rows); reading a window walks a version's rows newest first until they hold the window's
-texts, and pruning deletes the rows older than that, which no window of this size can reach again.
+another's rows), which records the writer's window size; reading a window walks a version's rows
+newest first until they hold the window's texts. Pruning deletes the rows older than the newest
+texts of the *largest* window size declared: the writer's own, or any a row of the version still
+stored declares. Replicas set to different ``TEXTSIEVE_DRIFT_WINDOW_TEXTS`` used to prune by their
+own sizes, so the smallest deleted the rows every larger window read. A size stops counting once
+its last row falls out of the largest window (the replica that declared it was set again, or is
+gone), so the table shrinks back by itself. Rows from before ``0010_drift_window_texts`` or from an
+older release declare nothing (NULL).
 """
 
 from __future__ import annotations
@@ -18,10 +24,21 @@ class DriftQueries:
     def __init__(self, tx: Tx) -> None:
         self.tx = tx
 
-    def add(self, model: str, version: int, replica: str, at: str, texts: int, counts: NDArray[np.int64]) -> None:
+    def add(
+        self,
+        model: str,
+        version: int,
+        replica: str,
+        at: str,
+        texts: int,
+        counts: NDArray[np.int64],
+        *,
+        window_texts: int,
+    ) -> None:
         self.tx.run(
-            "INSERT INTO drift_counts (model, version, replica, flushed_at, texts, counts) VALUES (?, ?, ?, ?, ?, ?)",
-            (model, version, replica, at, texts, encode_counts(counts)),
+            "INSERT INTO drift_counts (model, version, replica, flushed_at, texts, counts, window_texts) "
+            "VALUES (?, ?, ?, ?, ?, ?, ?)",
+            (model, version, replica, at, texts, encode_counts(counts), window_texts),
         )
 
     def window(self, model: str, version: int, window_texts: int, size: int) -> StoredWindow:
@@ -42,14 +59,26 @@ class DriftQueries:
             rows += 1
             if texts >= window_texts:
                 break
-        return StoredWindow(texts, total, rows)
+        return StoredWindow(texts, total, rows, self.declared(model, version))
+
+    def declared(self, model: str, version: int) -> tuple[int, ...]:
+        """The window sizes the stored rows of (``model``, ``version``) were written under, smallest first."""
+        found = self.tx.all(
+            "SELECT DISTINCT window_texts FROM drift_counts "
+            "WHERE model = ? AND version = ? AND window_texts IS NOT NULL",
+            (model, version),
+        )
+        return tuple(sorted(int(r["window_texts"]) for r in found))
 
     def prune(self, model: str, version: int, window_texts: int) -> int:
-        """Delete the rows of (``model``, ``version``) older than its newest ``window_texts`` texts."""
+        """Delete the rows of (``model``, ``version``) older than its newest texts of the largest window
+        size declared: ``window_texts`` (the writer's) or any a stored row of the version declares."""
         found = self.tx.all(
-            "SELECT id, texts FROM drift_counts WHERE model = ? AND version = ? ORDER BY id DESC", (model, version)
+            "SELECT id, texts, window_texts FROM drift_counts WHERE model = ? AND version = ? ORDER BY id DESC",
+            (model, version),
         )
-        keep = newest_rows([int(r["texts"]) for r in found], window_texts)
+        largest = max([window_texts, *(int(r["window_texts"]) for r in found if r["window_texts"] is not None)])
+        keep = newest_rows([int(r["texts"]) for r in found], largest)
         if keep >= len(found):
             return 0
         return self.tx.run(

@@ -3,6 +3,11 @@
 - ``parity``: the bundle's own parity report (ONNX vs PyTorch) passed within its tolerance.
 - ``labels``: the same set of labels as the live version, so callers keyed on label names keep
   working (order may differ: results are keyed by name).
+- ``cautions``: the version's model card makes the four points of its cautions section
+  (registry/cautions.py). Publish refuses a card without them, but a version published before
+  that check may hold one, and promoting it would serve a model whose card never says that
+  predictions are aids for review. The fix is a new version (a published card never changes):
+  the detail says to publish again from a bundle whose card has the section.
 - ``macro_f1``: on the model's evaluation set, macro-F1 does not drop by more than
   ``macro_f1_tolerance`` (default 0.01) against the live version.
 - ``ece``: on the same set, expected calibration error (15 equal-width bins; Naeini et al.,
@@ -55,6 +60,7 @@ from numpy.typing import NDArray
 from textsieve.errors import TextsieveError
 from textsieve.registry import measures
 from textsieve.registry.bundle import Bundle
+from textsieve.registry.cautions import POINTS, REQUIRED, cautions_problem, cautions_sections, missing_points
 from textsieve.registry.evalsets import LabelledText, unknown_labels
 from textsieve.registry.manifest import Manifest
 from textsieve.registry.model_settings import (
@@ -197,6 +203,41 @@ def parity_gate(manifest: Manifest) -> GateResult:
         f"label agreement {p.label_agreement:.2%}"
     )
     return GateResult(name="parity", passed=ok, detail=detail, figures=figures)
+
+
+def cautions_gate(model: str, version: int, card: bytes | None) -> GateResult:
+    """The card's cautions make every point publish asks for (``None``: the version stores no card)."""
+    problem: str | None
+    if card is None:
+        problem, text = "is missing", ""
+    else:
+        try:
+            text = card.decode("utf-8")
+        except UnicodeDecodeError as exc:
+            problem, text = f"is not UTF-8 text (byte {exc.start})", ""
+        else:
+            problem = cautions_problem(text)
+    missing = missing_points(text)
+    figures = {"sections": [heading for heading, _ in cautions_sections(text)], "missing": missing}
+    if problem is None:
+        named = ", ".join(repr(h) for h in figures["sections"])
+        return GateResult(
+            name="cautions",
+            passed=True,
+            detail=f"the card's cautions ({named}) make all {len(POINTS)} points",
+            figures=figures,
+        )
+    return GateResult(
+        name="cautions",
+        passed=False,
+        detail=(
+            f"version {version}'s card.md {problem}: {REQUIRED}. It was published before publish checked that, and "
+            "a published card never changes: add the section to the bundle's card.md (or export the run again: "
+            f"'textsieve export RUN --out BUNDLE' writes it), record the card's sha256 in manifest.json, then "
+            f"'textsieve publish BUNDLE --model {model}' and promote the new version"
+        ),
+        figures=figures,
+    )
 
 
 def labels_gate(candidate: list[str], live: list[str] | None, live_version: int | None) -> GateResult:

@@ -173,8 +173,10 @@ class Manifest(_Strict):
             raise ValueError("labels must be non-empty")
         from textsieve.labelled import label_problem
 
-        for label in v:  # the rules training applies to the labels it reads
-            problem = label_problem(label)
+        # The rules a manifest read back obeys: a version published before labels were held to the
+        # rule on format and separator characters keeps loading (export and publish apply the whole rule).
+        for label in v:
+            problem = label_problem(label, stored=True)
             if problem is not None:
                 raise ValueError(f"label {label!r} {problem}")
         return v

@@ -236,6 +236,18 @@ MIGRATIONS: tuple[Migration, ...] = (
     """,
         additive=True,
     ),
+    # The window size (TEXTSIEVE_DRIFT_WINDOW_TEXTS) of the replica that wrote each drift row. Pruning
+    # keeps the rows the largest size declared among a version's rows can reach, so a replica set to a
+    # smaller window no longer deletes the rows a larger one reads, and replies say when replicas
+    # disagree (registry/drift_queries.py). Rows written before, or by an older release, keep NULL: a
+    # size nobody declared. A nullable column an older release never names: additive.
+    Migration(
+        "0010_drift_window_texts",
+        """
+        ALTER TABLE drift_counts ADD COLUMN window_texts BIGINT CHECK (window_texts >= 1)
+    """,
+        additive=True,
+    ),
 )
 
 FIRST_MIGRATION = MIGRATIONS[0].name  # when it was applied is the registry's identity (Registry.registry_id)

@@ -13,6 +13,7 @@ import re
 import unicodedata
 
 from textsieve.errors import InputError
+from textsieve.printable import character_name, refused_character
 
 MODEL_NAME = re.compile(r"[a-z0-9][a-z0-9._-]{0,63}")
 MODEL_NAME_RULE = "1–64 characters from a-z, 0-9, '.', '_', '-', starting with a letter or digit, no '..'"
@@ -55,54 +56,18 @@ def validate_version(version: object) -> int:
     return version
 
 
-# What a person's name (an actor, a reviewer) may not hold, by Unicode general category. A name is
-# one line shown in tables, the audit trail and the reviewer page, and two names that look the
-# same should be the same name:
-# - Cc control characters (terminal escape sequences) and Cs lone surrogates (bytes that were not UTF-8);
-# - Cf format characters: invisible (U+200B ZERO WIDTH SPACE, U+00AD SOFT HYPHEN) or reordering what
-#   follows on the line (U+202E RIGHT-TO-LEFT OVERRIDE: "Trojan Source", Boucher and Anderson 2021,
-#   CVE-2021-42574), except the two joiners below;
-# - Zl and Zp, U+2028 and U+2029: line breaks;
-# - Co private use: no meaning between two parties, so a reader cannot know what it shows;
-# - Cn unassigned code points and noncharacters (U+FFFE, U+FDD0): not text yet (in the Unicode
-#   version of this Python; unicodedata.unidata_version).
-# This follows PRECIS (RFC 8264, section 4.3, the FreeformClass for nicknames), which disallows
-# controls and default-ignorable code points and leaves unassigned ones out (from memory).
-_NOT_IN_NAMES = frozenset(("Cc", "Cs", "Cf", "Zl", "Zp", "Co", "Cn"))
-# ZERO WIDTH NON-JOINER and ZERO WIDTH JOINER spell words in Persian and in Indic scripts, and join
-# emoji sequences: PRECIS and IDNA (RFC 5892, appendix A) allow them in context. Here: between two
-# characters that are neither spaces nor format characters, never leading, trailing or doubled.
-_JOINERS = frozenset("\u200c\u200d")
+# What a person's name (an actor, a reviewer) may not hold: textsieve/printable.py, which labels
+# obey too (PRECIS, RFC 8264: no control, format, separator, private-use or unassigned characters,
+# joiners only between two visible characters).
 NAME_RULE = (
     f"1–{MAX_ACTOR} printable characters: no control, format (invisible or bidi), separator, private-use "
     "or unassigned characters"
 )
 
 
-# Characters the Unicode Character Database gives no name, by category.
-_UNNAMED = {"Cc": "control character", "Cs": "lone surrogate", "Co": "private-use character", "Cn": "unassigned"}
-
-
-def _refused_in_name(text: str) -> str | None:
-    """The first character a name may not hold, or None."""
-    for i, ch in enumerate(text):
-        if unicodedata.category(ch) not in _NOT_IN_NAMES:
-            continue
-        if ch in _JOINERS and 0 < i < len(text) - 1:
-            before, after = text[i - 1], text[i + 1]
-            if not any(c.isspace() or unicodedata.category(c) == "Cf" for c in (before, after)):
-                continue
-        return ch
-    return None
-
-
 def _name_refusal(what: str, name: str) -> InputError:
-    bad = _refused_in_name(name)
-    where = (
-        ""
-        if bad is None
-        else f" (U+{ord(bad):04X} {unicodedata.name(bad, _UNNAMED.get(unicodedata.category(bad), ''))})"
-    )
+    bad = refused_character(name)
+    where = "" if bad is None else f" ({character_name(bad)})"
     return InputError(f"bad {what} {name[:40]!r}{where}: {NAME_RULE}")
 
 
@@ -114,7 +79,7 @@ def resolve_actor(actor: str | None) -> str:
         except (KeyError, OSError):  # no passwd entry, e.g. an arbitrary uid in a container
             actor = f"uid:{os.getuid()}"
     actor = actor.strip()
-    if not actor or len(actor) > MAX_ACTOR or _refused_in_name(actor) is not None:
+    if not actor or len(actor) > MAX_ACTOR or refused_character(actor) is not None:
         raise _name_refusal("actor", actor)
     return actor
 
@@ -124,7 +89,7 @@ def validate_reviewer(reviewer: object) -> str:
     if not isinstance(reviewer, str) or not reviewer.strip():
         raise InputError("a verdict needs the reviewer's name: who judged the prediction")
     reviewer = reviewer.strip()
-    if len(reviewer) > MAX_ACTOR or _refused_in_name(reviewer) is not None:
+    if len(reviewer) > MAX_ACTOR or refused_character(reviewer) is not None:
         raise _name_refusal("reviewer", reviewer)
     return reviewer
 

@@ -10,7 +10,15 @@ from pathlib import Path
 import pytest
 
 from textsieve.errors import InputError
-from textsieve.labelled import Example, case_twins, check_labels, load_examples, name_unknown
+from textsieve.labelled import (
+    LABEL_CHARACTERS,
+    Example,
+    case_twins,
+    check_labels,
+    label_problem,
+    load_examples,
+    name_unknown,
+)
 
 DATA = Path(__file__).parent / "data"
 
@@ -182,13 +190,13 @@ def _jsonl(*rows: object) -> str:
         pytest.param(
             "d.jsonl",
             _jsonl({"text": "a", "label": "ok"}, {"text": "b", "label": "two\nlines"}),
-            ["line 2: the label 'two\\nlines' holds a control character (U+000A)"],
+            ["line 2: the label 'two\\nlines' holds U+000A control character (category Cc: a control character)"],
             id="label with a line break",
         ),
         pytest.param(
             "d.csv",
             'text,label\na,"tab\there"\n',
-            ["line 2: the label 'tab\\there' holds a control character (U+0009)"],
+            ["line 2: the label 'tab\\there' holds U+0009 control character (category Cc: a control character)"],
             id="label with a tab",
         ),
         pytest.param(
@@ -268,6 +276,80 @@ def test_bad_data_file_is_one_line_naming_the_file(
     message = _error(_write(tmp_path / name, content))
     for words in expected_msg:
         assert words in message, (words, message)
+
+
+# Names and general categories of the characters as the Unicode Character Database gives them
+# (UnicodeData.txt, read through Python's unicodedata); the Trojan Source case is Boucher and
+# Anderson 2021 (CVE-2021-42574). The kinds refused are those of PRECIS's FreeformClass (RFC 8264,
+# section 4.3), which actors' and reviewers' names obey too (registry/names.py).
+@pytest.mark.parametrize(
+    ("label", "shown"),
+    [
+        pytest.param(
+            "refund\u202e", "U+202E RIGHT-TO-LEFT OVERRIDE (category Cf: a format character", id="Cf bidi override"
+        ),
+        pytest.param(
+            "\u2066refund\u2069", "U+2066 LEFT-TO-RIGHT ISOLATE (category Cf: a format character", id="Cf isolate"
+        ),
+        pytest.param(
+            "re\u200bfund", "U+200B ZERO WIDTH SPACE (category Cf: a format character", id="Cf zero width space"
+        ),
+        pytest.param("re\u00adfund", "U+00AD SOFT HYPHEN (category Cf: a format character", id="Cf soft hyphen"),
+        pytest.param(
+            "refund\u200d", "U+200D ZERO WIDTH JOINER (category Cf: a format character", id="Cf joiner at the end"
+        ),
+        pytest.param("re\u2028fund", "U+2028 LINE SEPARATOR (category Zl: a line separator)", id="Zl"),
+        pytest.param("re\u2029fund", "U+2029 PARAGRAPH SEPARATOR (category Zp: a paragraph separator)", id="Zp"),
+        pytest.param("refund\ue000", "U+E000 private-use character (category Co: a private-use character)", id="Co"),
+        pytest.param("refund\U000e0fff", "U+E0FFF unassigned (category Cn: an unassigned code point)", id="Cn"),
+        pytest.param("refund\ufdd0", "U+FDD0 unassigned (category Cn: an unassigned code point)", id="noncharacter"),
+        pytest.param("re\x85fund", "U+0085 control character (category Cc: a control character)", id="Cc C1"),
+    ],
+)
+def test_labels_refuse_what_names_refuse(tmp_path: Path, label: str, shown: str) -> None:
+    """A label is shown in replies, the reviewer page and the CLI's tables as a person's name is, so it
+    obeys the same rule: only control characters were refused (a U+202E label trained, exported and
+    was published, and the page showed the text after it reversed)."""
+    code = int(shown.split()[0][2:], 16)
+    assert f"(category {unicodedata.category(chr(code))}" in shown, "the category the database gives"
+    f = _write(tmp_path / "d.jsonl", _jsonl({"text": "a", "label": "ok"}, {"text": "b", "label": label}))
+    message = _error(f)
+    assert f"line 2: the label {label!r} holds {shown}" in message
+    assert message.endswith(LABEL_CHARACTERS)
+
+
+@pytest.mark.parametrize(
+    "label",
+    [
+        pytest.param("\u0645\u06cc\u200c\u0646\u0627", id="Persian with a zero width non-joiner"),
+        pytest.param("\u0915\u094d\u200d\u0937", id="Devanagari half form with a zero width joiner"),
+        pytest.param("\U0001f469\u200d\U0001f4bb", id="emoji joined by a zero width joiner"),
+        pytest.param("Zoë's refund", id="Latin with a mark and an apostrophe"),
+        pytest.param("退款", id="CJK"),
+    ],
+)
+def test_labels_in_any_script_are_kept_as_written(tmp_path: Path, label: str) -> None:
+    f = _write(tmp_path / "d.jsonl", _jsonl({"text": "a", "label": label}))
+    assert load_examples(f) == [Example("a", label)]
+    assert label_problem(label) is None
+
+
+def test_an_evaluation_set_may_name_labels_published_before_the_rule(tmp_path: Path) -> None:
+    """An evaluation set names labels of versions already published: held to the stored rule."""
+    f = _write(tmp_path / "d.jsonl", _jsonl({"text": "a", "label": "re\u200bfund"}))
+    assert "U+200B ZERO WIDTH SPACE" in _error(f)
+    assert load_examples(f, stored_labels=True) == [Example("a", "re\u200bfund")]
+    still = _write(tmp_path / "e.jsonl", _jsonl({"text": "a", "label": "two\nlines"}))
+    with pytest.raises(InputError, match="U\\+000A"):
+        load_examples(still, stored_labels=True)
+
+
+def test_a_stored_label_is_held_to_the_rule_of_its_day() -> None:
+    """A manifest read back (a version published before the rule) refuses only what was refused then."""
+    assert label_problem("refund\u202e") is not None
+    assert label_problem("refund\u202e", stored=True) is None
+    assert label_problem("re\u200bfund", stored=True) is None
+    assert label_problem("two\nlines", stored=True) is not None
 
 
 def test_check_labels_returns_sorted_names() -> None:

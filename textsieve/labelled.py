@@ -20,6 +20,7 @@ from typing import Any, BinaryIO
 
 from textsieve import jsonarray
 from textsieve.errors import InputError
+from textsieve.printable import KINDS, character_name, refused_character
 from textsieve.texts import text_refusal
 
 JSON_SUFFIXES = (".jsonl", ".ndjson", ".json")
@@ -40,9 +41,19 @@ class Example:
 
 
 def load_examples(
-    path: Path, text_field: str = "text", label_field: str = "label", *, progress: Callable[[int], None] | None = None
+    path: Path,
+    text_field: str = "text",
+    label_field: str = "label",
+    *,
+    progress: Callable[[int], None] | None = None,
+    stored_labels: bool = False,
 ) -> list[Example]:
     """Every example of a labelled file; any problem is an :class:`InputError` naming file and line.
+
+    ``stored_labels``: the labels name classes of versions already published (an evaluation set), so
+    they are held to the rule a manifest read back obeys (``label_problem(stored=True)``): a version
+    published before labels were held to the whole rule can still be evaluated and judged. Training,
+    which makes new labels, applies the whole rule.
 
     JSON Lines, CSV and TSV are read a line at a time, and a JSON array an item at a time
     (textsieve/jsonarray.py), so only the examples stay in memory, not the file's bytes, its text and
@@ -56,7 +67,7 @@ def load_examples(
         with _opened(path):
             pass
         raise InputError(f"{path}: unsupported file type {suffix or '(no extension)'!r}; {_ALLOWED}")
-    fields = _Fields(path, text_field, label_field)
+    fields = _Fields(path, text_field, label_field, stored_labels=stored_labels)
     if suffix in CSV_SUFFIXES:
         examples = list(_csv_rows(path, _csv_lines(path, progress), CSV_SUFFIXES[suffix], fields))
     elif not (suffix == ".json" and _json_array(path)):
@@ -189,10 +200,11 @@ def _json_array(path: Path) -> bool:
 class _Fields:
     """Turns one parsed record into an Example, or says precisely what is wrong with it."""
 
-    def __init__(self, path: Path, text_field: str, label_field: str) -> None:
+    def __init__(self, path: Path, text_field: str, label_field: str, *, stored_labels: bool = False) -> None:
         self.path = path
         self.text_field = text_field
         self.label_field = label_field
+        self.stored_labels = stored_labels
 
     def _fail(self, where: str, problem: str) -> InputError:
         return InputError(f"{self.path}: {where}: {problem}")
@@ -232,7 +244,7 @@ class _Fields:
             )
         if not label.strip():
             raise self._fail(where, f"the {self.label_field!r} field is empty; every row needs a label")
-        why = label_problem(label)
+        why = label_problem(label, stored=self.stored_labels)
         if why:
             raise self._fail(where, f"the label {label!r} {why}")
         return Example(text, label)
@@ -255,19 +267,35 @@ def _lone_surrogate(value: str) -> bool:
     return False
 
 
-def label_problem(label: str) -> str | None:
+# What a label may hold, said after the character a label is refused for.
+LABEL_CHARACTERS = (
+    "labels are one line of visible text: no control, format (invisible or bidi), line or paragraph "
+    "separator, private-use or unassigned characters (a zero width joiner only between two visible characters)"
+)
+
+
+def label_problem(label: str, *, stored: bool = False) -> str | None:
     """Why a label cannot name a class, or None. A label becomes a JSON key, a CSV and Parquet column
-    name (``probability:LABEL``), a metric's label value and a line of the CLI's tables, and labels are
-    compared exactly, so it holds no control characters (line breaks, tabs) and no spaces at its ends.
-    It is recorded with each reviewer's verdict, which holds at most ``MAX_LABEL_CHARS``; and it holds
-    no lone surrogate (a ``\\ud800`` escape in JSON), which no UTF-8 reply can carry."""
+    name (``probability:LABEL``), a line of the CLI's tables and of the reviewer page, and labels are
+    compared exactly, so it holds no spaces at its ends and only the characters a person's name may
+    (textsieve/printable.py: no control, format, separator, private-use or unassigned characters). It
+    is recorded with each reviewer's verdict, which holds at most ``MAX_LABEL_CHARS``; and it holds
+    no lone surrogate (a ``\\ud800`` escape in JSON), which no UTF-8 reply can carry.
+
+    ``stored=True`` is the rule a manifest read back obeys: versions published before the rule on
+    format, separator, private-use and unassigned characters keep loading and serving, so only control
+    characters are refused there, as they were then."""
     if len(label) > MAX_LABEL_CHARS:
         return f"is {len(label):,} characters long; a label holds at most {MAX_LABEL_CHARS}"
     if _lone_surrogate(label):
         return _LONE_SURROGATE
-    bad = next((c for c in label if unicodedata.category(c) == "Cc"), None)
+    if stored:
+        bad = next((c for c in label if unicodedata.category(c) == "Cc"), None)
+    else:
+        bad = refused_character(label)
     if bad is not None:
-        return f"holds a control character (U+{ord(bad):04X}); labels are one line of printable text"
+        category = unicodedata.category(bad)
+        return f"holds {character_name(bad)} (category {category}: {KINDS[category]}); {LABEL_CHARACTERS}"
     if label != label.strip():
         return "begins or ends with spaces; write it without them (labels are compared exactly)"
     return None
@@ -443,6 +471,7 @@ __all__ = [
     "CSV_SUFFIXES",
     "FILE_HELP",
     "JSON_SUFFIXES",
+    "LABEL_CHARACTERS",
     "MAX_LABEL_CHARS",
     "json_kind",
     "Example",
@@ -450,6 +479,7 @@ __all__ = [
     "check_labels",
     "cr_line_ends",
     "cr_separated",
+    "LABEL_CHARACTERS",
     "label_problem",
     "load_examples",
     "name_unknown",

@@ -4,7 +4,9 @@ Each served version's :class:`~textsieve.registry.drift.Window` collects the dri
 batches this replica answers (one vector addition on the event loop, in the batcher). Every
 ``shadow_flush_seconds`` one task writes each window's pending sum as one registry row and reads
 the window back (the newest rows of every replica, registry/drift_queries.py), in one transaction
-on the registry thread: never on the request path. A failed flush keeps the counts for the next
+on the registry thread: never on the request path. Each row records this replica's window size;
+replicas set to different sizes each read the newest texts of their own, rows are kept for the
+largest, and the reply and the log say that they disagree. A failed flush keeps the counts for the next
 try and is counted (``textsieve_drift_flushes_total{outcome="failed"}``); predictions never wait
 for it. Windows are kept per (model, version), not per loaded copy, so a reload finds the same
 window, and a restart reads it from the registry when the version is loaded.
@@ -54,6 +56,7 @@ class DriftRecorder:
         self._task: asyncio.Task[None] | None = None
         self._flushing: asyncio.Task[None] | None = None
         self.flush_failures = 0
+        self._warned: dict[VersionKey, tuple[int, ...]] = {}  # the disagreement last logged, per version
 
     async def window(self, model: str, version: int, layout: Layout) -> Window:
         """The window of (``model``, ``version``), read from the registry the first time it is served."""
@@ -82,6 +85,21 @@ class DriftRecorder:
         # A flush begun meanwhile settles the window itself, its own row included; this read may predate it.
         if not window.flushing and window.flushes == flushes:
             window.read(stored)
+            self._say_disagreement(key, window)
+
+    def _say_disagreement(self, key: VersionKey, window: Window) -> None:
+        """Log once per change when the replicas sharing a window are set to different sizes."""
+        sizes = window.sizes()
+        if len(sizes) > 1 and self._warned.get(key) != sizes:
+            log.warning(
+                "drift window of %s v%s: replicas are set to different TEXTSIEVE_DRIFT_WINDOW_TEXTS (%s; this "
+                "one %s): each reports the newest texts of its own size, and rows are kept for the largest; "
+                "set the same size on every replica",
+                *key,
+                ", ".join(f"{n:,}" for n in sizes),
+                f"{window.size:,}",
+            )
+        self._warned[key] = sizes
 
     def start(self) -> None:
         self._task = asyncio.get_running_loop().create_task(self._flush_loop(), name="drift flushing")
@@ -133,6 +151,7 @@ class DriftRecorder:
                     )
             else:
                 window.settle(stored)
+                self._say_disagreement((model, version), window)
                 if texts > 0:
                     self.metrics.drift_flushes.labels("ok").inc()
 

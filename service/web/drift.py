@@ -60,6 +60,16 @@ def _detail(report: DriftReport) -> str:
     return said
 
 
+def _disagreement(sizes: list[int], own: int) -> str:
+    if len(sizes) < 2:
+        return ""
+    others = ", ".join(f"{n:,}" for n in sizes if n != own)
+    return (
+        f"; replicas disagree on TEXTSIEVE_DRIFT_WINDOW_TEXTS ({own:,} here, {others} elsewhere): each reports "
+        "the newest texts of its own size, and rows are kept for the largest; set it the same on every replica"
+    )
+
+
 @router.get(
     "/{name}/drift",
     operation_id="getDrift",
@@ -78,12 +88,15 @@ async def get_drift(name: str, store: RegistryDep, models: ModelsDep, settings: 
     versions = []
     for _, version, report in reports:
         base = report.baseline
+        window = None if models.drift is None else models.drift.windows.get((name, version))
+        sizes = [settings.drift_window_texts] if window is None else list(window.sizes())
         versions.append(
             VersionDrift(
                 version=version,
                 role="live" if live is not None and live.version == version else "pinned",
                 texts=report.texts,
                 window_texts=settings.drift_window_texts,
+                declared_window_texts=sizes,
                 unknown_rate=report.unknown_rate,
                 truncation_rate=report.truncation_rate,
                 baseline=None
@@ -94,7 +107,7 @@ async def get_drift(name: str, store: RegistryDep, models: ModelsDep, settings: 
                     unknown_rate=base.unknown_rate,
                     truncation_rate=base.truncation_rate,
                 ),
-                detail=_detail(report),
+                detail=_detail(report) + _disagreement(sizes, settings.drift_window_texts),
                 signals=[
                     SignalView.model_validate(
                         {

@@ -294,6 +294,12 @@ class VersionDrift(BaseModel):
     role: Literal["live", "pinned"]
     texts: int = Field(description="live texts in the window, every replica's")
     window_texts: int = Field(description="the window's size (TEXTSIEVE_DRIFT_WINDOW_TEXTS)")
+    declared_window_texts: list[int] = Field(
+        default_factory=list,
+        description="every window size the replicas sharing the window declare (this one's and those the "
+        "stored rows were written under), smallest first; more than one: the replicas are set differently, "
+        "each reports the newest texts of its own size, and rows are kept for the largest",
+    )
     unknown_rate: float | None
     truncation_rate: float | None
     baseline: BaselineView | None = Field(description="null: the bundle has no baseline (exported before 0006)")

@@ -118,6 +118,24 @@ def test_run_json_tolerates_unknown_top_level_keys(keyword_run: Path, tmp_path: 
     )
 
 
+def test_export_refuses_a_run_whose_label_a_name_could_not_hold_in_one_line(
+    keyword_run: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A run trained before labels were held to names' rule (textsieve/printable.py) exported a
+    U+202E label into a bundle (name of the character from the Unicode Character Database)."""
+    run = tmp_path / "r"
+    shutil.copytree(keyword_run, run)
+    content = json.loads((run / RUN_JSON).read_text(encoding="utf-8"))
+    content["labels"][0] += "\u202e"
+    (run / RUN_JSON).write_text(json.dumps(content), encoding="utf-8")
+    assert main(["export", str(run), "--out", str(tmp_path / "bundle")]) == 2
+    err = capsys.readouterr().err
+    assert len(err.splitlines()) == 1, err
+    assert f"the label {content['labels'][0]!r} holds U+202E RIGHT-TO-LEFT OVERRIDE (category Cf" in err
+    assert "labels are one line of visible text" in err and "train again with the label renamed" in err
+    assert not (tmp_path / "bundle").exists()
+
+
 def test_the_run_learns_and_keeps_the_best_epoch(keyword_run: Path) -> None:
     model, vocab, run = load_run(keyword_run)
     valid = [json.loads(line) for line in (keyword_run / VALID_JSONL).read_text(encoding="utf-8").splitlines()]

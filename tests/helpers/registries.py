@@ -59,6 +59,30 @@ def edit_manifest(bundle: Path, change: dict[str, object], *, rehash: bool = Tru
     path.write_text(json.dumps(data, indent=2))
 
 
+def publish_unchecked_card(reg: Registry, bundle: Path, model: str, card: str) -> int:
+    """Publish ``bundle`` with ``card`` as its card.md the way releases before the cautions check
+    (registry/cautions.py) did: the card stored whatever it says. Returns the version."""
+    from unittest import mock
+
+    from textsieve.registry import api
+
+    (bundle / "card.md").write_text(card, encoding="utf-8")
+    edit_manifest(bundle, {})
+    with mock.patch.object(api, "check_card", lambda bundle: None):
+        return reg.publish(bundle, model, actor="tests").version
+
+
+def publish_unchecked_labels(reg: Registry, bundle: Path, model: str) -> int:
+    """Publish ``bundle`` as releases before the label rule on format and separator characters did:
+    its labels held only to what a manifest read back obeys (no control characters). Returns the version."""
+    from unittest import mock
+
+    from textsieve.registry import api
+
+    with mock.patch.object(api, "check_labels", lambda bundle, labels: None):
+        return reg.publish(bundle, model, actor="tests").version
+
+
 def store_evalset_unchecked(reg: Registry, model: str, rows: list[dict[str, str]], source: str) -> str:
     """Store ``rows`` as the model's evaluation set the way releases before the text rules
     (commit 58cc344) did: the JSONL blob and the ``evalsets`` row, no text checked. Written with
@@ -97,4 +121,13 @@ def card_variants(base: Path, root: Path, n: int) -> list[Path]:
     return out
 
 
-__all__ = ["RegistrySpec", "card_variants", "edit_manifest", "postgres_url", "recard", "store_evalset_unchecked"]
+__all__ = [
+    "RegistrySpec",
+    "card_variants",
+    "edit_manifest",
+    "postgres_url",
+    "publish_unchecked_card",
+    "publish_unchecked_labels",
+    "recard",
+    "store_evalset_unchecked",
+]

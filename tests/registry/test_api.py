@@ -19,7 +19,7 @@ import pytest
 from onnx import TensorProto, helper
 
 from tests.helpers.jsonl import read_jsonl, write_jsonl
-from tests.helpers.registries import RegistrySpec, edit_manifest, recard
+from tests.helpers.registries import RegistrySpec, edit_manifest, publish_unchecked_labels, recard
 from textsieve.errors import BundleError, InputError, IntegrityError, NotFoundError, StateError
 from textsieve.registry import Registry, open_registry
 from textsieve.registry.blobs import OWNER_FILE
@@ -141,8 +141,24 @@ BAD_BUNDLES = [
     ),
     pytest.param(
         lambda b: edit_manifest(b, {"labels": ["a\nb", "c", "d", "e"]}),
-        "holds a control character (U+000A)",
+        "holds U+000A control character (category Cc: a control character)",
         id="a label with a line break",
+    ),
+    # A label with a format character was refused by training only when it was a control character:
+    # U+202E shows the text after it reversed on the reviewer page, U+200B two labels alike
+    # (names of the characters from the Unicode Character Database, UnicodeData.txt).
+    pytest.param(
+        lambda b: _relabel(b, 0, "\u202e"),
+        "\\u202e' holds U+202E RIGHT-TO-LEFT OVERRIDE (category Cf: a format character",
+        id="a label with a bidi override",
+    ),
+    pytest.param(
+        lambda b: _relabel(b, 1, "\u200b"),
+        "\\u200b' holds U+200B ZERO WIDTH SPACE (category Cf: a format character",
+        id="a label with a zero width space",
+    ),
+    pytest.param(
+        lambda b: _relabel(b, 1, "\u2028x"), "holds U+2028 LINE SEPARATOR (category Zl", id="a label with U+2028"
     ),
     pytest.param(
         lambda b: edit_manifest(b, {"metrics.accuracy": float("nan")}),
@@ -172,6 +188,44 @@ BAD_BUNDLES = [
         id="cautions without the bias point",
     ),
 ]
+
+
+def _relabel(bundle: Path, index: int, suffix: str) -> list[str]:
+    """Append ``suffix`` to one label of the bundle's manifest and re-hash, as anyone holding the folder can."""
+    labels = json.loads((bundle / "manifest.json").read_text(encoding="utf-8"))["labels"]
+    labels[index] += suffix
+    edit_manifest(bundle, {"labels": labels})
+    return list(labels)
+
+
+def test_a_version_published_before_the_label_rule_still_loads_and_scores(
+    registry: Registry, spec: RegistrySpec, tiny_bundles: dict[str, Path], tiny_data: Path, tmp_path: Path
+) -> None:
+    """Publish now refuses a label with a format character, but a registry written before holds such
+    versions: they load (the manifest is held to the rule of its day), score and promote as before."""
+    bundle = copy_bundle(tiny_bundles["a"], tmp_path / "old")
+    labels = _relabel(bundle, 0, "\u202e")
+    with pytest.raises(BundleError, match="U\\+202E RIGHT-TO-LEFT OVERRIDE"):
+        registry.publish(bundle, "spam")
+    assert_nothing_stored(registry, spec)
+    assert publish_unchecked_labels(registry, bundle, "spam") == 1
+    fetched = registry.fetch("spam", 1)
+    assert fetched.manifest.labels == labels == registry.manifest("spam", 1).labels
+    registry.promote("spam", 1, "live", reason="stored before the rule", actor="tests", force=True)
+    assert registry.live("spam") is not None
+    predictor = Predictor.from_bundle(registry.fetch("spam"))
+    assert predictor.labels == labels
+    reference = Predictor.from_bundle(tiny_bundles["a"]).predict(["the dock is broken"], spans=0)
+    scored = predictor.predict(["the dock is broken"], spans=0)
+    # Its evaluation set names the stored labels, and is added and judged on (training alone refuses them).
+    rows = read_jsonl(tiny_data / "test.jsonl")
+    original = json.loads((tiny_bundles["a"] / "manifest.json").read_text(encoding="utf-8"))["labels"]
+    write_jsonl(tmp_path / "eval.jsonl", [{**r, "label": labels[original.index(r["label"])]} for r in rows])
+    info = registry.add_evalset("spam", tmp_path / "eval.jsonl", actor="tests")
+    assert set(info.labels) <= set(labels) and labels[0] in info.labels
+    # The same graph as the bundle it was copied from: the same probabilities, under the stored labels.
+    assert list(scored[0].probabilities) == labels
+    assert list(scored[0].probabilities.values()) == list(reference[0].probabilities.values())
 
 
 def _recard(bundle: Path, change: Callable[[str], str]) -> None:
@@ -380,6 +434,7 @@ def test_history_records_every_change_with_actor_utc_time_reason_and_gates(
     assert {g["name"]: g["passed"] for g in refuse.details["gates"]} == {
         "parity": True,
         "labels": False,
+        "cautions": True,
         "macro_f1": False,
         "ece": False,
     }

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import shutil
@@ -13,7 +14,7 @@ import pytest
 
 from tests.helpers.environment import child_env
 from tests.helpers.jsonl import read_jsonl
-from tests.helpers.registries import RegistrySpec, edit_manifest, store_evalset_unchecked
+from tests.helpers.registries import RegistrySpec, edit_manifest, publish_unchecked_card, store_evalset_unchecked
 from textsieve.cli import main
 from textsieve.registry.cli import table
 
@@ -151,6 +152,30 @@ def test_a_refused_gate_exits_1_naming_the_gate_and_figures(
     assert re.search(r"^labels\s+FAIL\s+labels differ", err, re.M)  # the gate table with figures
 
 
+def test_promoting_a_version_whose_card_lacks_its_cautions_exits_1_saying_how_to_fix_it(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """A version published before publish checked the card's cautions was promoted and served."""
+    from textsieve.registry import open_registry
+
+    bundle = tmp_path / "bundle"
+    shutil.copytree(tiny_bundles["a"], bundle)
+    card = (bundle / "card.md").read_text(encoding="utf-8")
+    with open_registry(tmp_path / "reg") as reg:
+        publish_unchecked_card(reg, bundle, "m", card.replace("Monitor", "Watch"))
+    r = ["--registry", str(tmp_path / "reg")]
+    code, out, err = run(capsys, "promote", "m", "1", "--to", "live", "--reason", "x", *r)
+    assert code == 1 and out == ""
+    assert re.search(r"^cautions\s+FAIL\s+version 1's card.md", err, re.M), err  # the gate table
+    last = err.strip().splitlines()[-1]
+    assert last.startswith("textsieve: error: version 1 of 'm' not promoted to live: gate cautions refused:")
+    assert "do not say that they need monitoring" in last
+    assert "'textsieve publish BUNDLE --model m' and promote the new version" in last
+    assert "override it with --force and --reason" in last
+    code, out, err = run(capsys, "promote", "m", "1", "--to", "live", "--dry-run", *r)
+    assert code == 1 and "gate cautions would refuse" in err
+
+
 # Model "m" has version 1, registered; nothing is live.
 @pytest.mark.parametrize(
     ("argv", "expected_msg"),
@@ -244,6 +269,24 @@ def test_publish_refuses_a_card_without_cautions_in_one_line_saying_how_to_fix_i
     assert (code, out) == (2, "") and len(err.splitlines()) == 1, err
     assert f"{card} has no cautions section: the card must say, under a heading such as '## Cautions'," in err
     assert "export the bundle again ('textsieve export RUN --out BUNDLE'" in err
+    assert run(capsys, "models", *r)[1].startswith("no models yet")
+
+
+def test_publish_refuses_a_label_with_a_format_character_in_one_line(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """A bundle exported before labels were held to names' rule published a U+200B label, which reads
+    as another label without it (name of the character from the Unicode Character Database)."""
+    bundle = tmp_path / "bundle"
+    shutil.copytree(tiny_bundles["a"], bundle)
+    labels = json.loads((bundle / "manifest.json").read_text(encoding="utf-8"))["labels"]
+    labels[0] = labels[0][:1] + "\u200b" + labels[0][1:]
+    edit_manifest(bundle, {"labels": labels})
+    r = ["--registry", str(tmp_path / "reg")]
+    code, out, err = run(capsys, "publish", str(bundle), "--model", "m", *r)
+    assert (code, out) == (2, "") and len(err.splitlines()) == 1, err
+    assert f"the label {labels[0]!r} holds U+200B ZERO WIDTH SPACE (category Cf: a format character" in err
+    assert "train again with the label renamed" in err
     assert run(capsys, "models", *r)[1].startswith("no models yet")
 
 
@@ -591,7 +634,7 @@ def test_gates_shows_and_changes_settings_with_a_reason(
     assert_aligned("\n".join(lines[:-1]))
     assert lines[1].split()[:4] == ["macro_f1_drop", "0.01", "0.01", "default"]
     assert lines[-1] == (
-        "gates on promotion to live: parity, labels, macro_f1 (drop ≤ 0.01), ece (rise ≤ 0.02); "
+        "gates on promotion to live: parity, labels, cautions, macro_f1 (drop ≤ 0.01), ece (rise ≤ 0.02); "
         "the metric gates judge on an evaluation set of at least 50 texts and 5 per label"
     )
 

@@ -12,13 +12,13 @@ import pytest
 import sklearn.metrics
 
 from tests.helpers.jsonl import read_jsonl, write_jsonl
-from tests.helpers.registries import RegistrySpec, recard, store_evalset_unchecked
+from tests.helpers.registries import RegistrySpec, publish_unchecked_card, recard, store_evalset_unchecked
 from textsieve.errors import GateRefusedError
 from textsieve.registry import GateSettings, Registry
 from textsieve.registry import gates as gates_module
 from textsieve.registry.bundle import open_bundle
 from textsieve.registry.evalsets import LabelledText
-from textsieve.registry.gates import Scores, Side, labels_gate, metric_gates, parity_gate
+from textsieve.registry.gates import Scores, Side, cautions_gate, labels_gate, metric_gates, parity_gate
 from textsieve.registry.runtime import Predictor
 
 
@@ -191,6 +191,56 @@ def test_parity_gate_reads_the_stored_report(tiny_bundles: dict[str, Path]) -> N
     assert ok.passed and ok.figures["max_abs_prob_diff"] == m.parity.max_abs_prob_diff
     bad = parity_gate(m.model_copy(update={"parity": m.parity.model_copy(update={"max_abs_prob_diff": 1.0})}))
     assert not bad.passed and "parity failed" in bad.detail
+
+
+# The four points are the project's rule for every model card, as Mitchell et al. (2019), "Model Cards
+# for Model Reporting", ask for ethical considerations and caveats; registry/cautions.py words them.
+ALL_POINTS = [
+    "that predictions are aids for human review",
+    "that they can carry bias from the training data",
+    "that they need monitoring",
+    "that decisions stay with accountable people",
+]
+
+
+def test_cautions_gate_names_what_a_card_lacks_and_how_to_fix_it(tiny_bundles: dict[str, Path]) -> None:
+    card = (tiny_bundles["a"] / "card.md").read_text(encoding="utf-8")
+    ok = cautions_gate("m", 3, card.encode())
+    assert ok.passed and ok.figures == {"sections": ["Cautions"], "missing": []}
+    assert ok.detail == "the card's cautions ('Cautions') make all 4 points"
+    cut = cautions_gate("m", 3, card.split("## Cautions")[0].encode())
+    assert not cut.passed and cut.figures == {"sections": [], "missing": ALL_POINTS}
+    assert cut.detail.startswith("version 3's card.md has no cautions section: the card must say, under a heading")
+    assert "'textsieve publish BUNDLE --model m' and promote the new version" in cut.detail
+    no_bias = cautions_gate("m", 3, card.replace("biases", "quirks").encode())
+    assert not no_bias.passed and no_bias.figures["missing"] == [ALL_POINTS[1]]
+    assert "do not say that they can carry bias from the training data" in no_bias.detail
+    latin1 = cautions_gate("m", 3, "Café\n## Cautions\n".encode("latin-1"))
+    assert not latin1.passed and "card.md is not UTF-8 text (byte 3)" in latin1.detail
+
+
+def test_a_version_published_before_the_cautions_check_is_refused_live_unless_forced(
+    registry: Registry, tiny_bundles: dict[str, Path], tmp_path: Path
+) -> None:
+    """Publish refuses a card without its cautions, but a version published before that check could
+    still be promoted to live and served with such a card."""
+    old = tmp_path / "old"
+    shutil.copytree(tiny_bundles["a"], old)
+    card = (old / "card.md").read_text(encoding="utf-8")
+    assert publish_unchecked_card(registry, old, "m", card.split("## Cautions")[0]) == 1
+    with pytest.raises(GateRefusedError, match=r"gate cautions refused.*version 1's card.md has no cautions") as info:
+        registry.promote("m", 1, "live", reason="stored before the check")
+    gates = {g["name"]: g for g in info.value.context["gates"]}
+    assert gates["cautions"]["figures"]["missing"] == ALL_POINTS and gates["parity"]["passed"]
+    assert registry.live("m") is None
+    assert not registry.check("m", 1)[2].passed  # promote --dry-run says the same
+    # The fix the detail names: the card with its section, published as a new version, passes.
+    assert registry.publish(tiny_bundles["a"], "m").version == 2
+    promoted = registry.promote("m", 2, "live", reason="the card has its cautions")
+    assert {g.name: g.passed for g in promoted.gates}["cautions"] is True
+    # And --force with a reason still overrides, recorded as ever.
+    forced = registry.promote("m", 1, "live", reason="the card is being rewritten", force=True)
+    assert forced.forced and "cautions" in registry.history("m")[-1].details["overridden"]
 
 
 def test_labels_gate_refuses_a_relabelled_model_unless_forced(
@@ -390,7 +440,7 @@ def test_per_model_settings_drive_promotion(
     message = info.value.message
     assert "gate mcnemar refused: significantly worse" in message
     gates = {g["name"]: g for g in info.value.context["gates"]}
-    assert set(gates) == {"parity", "labels", "mcnemar"}
+    assert set(gates) == {"parity", "labels", "cautions", "mcnemar"}
     f = gates["mcnemar"]["figures"]
     rows = read_jsonl(evalset)
     b_pred, _ = _predicted(b, [r["text"] for r in rows])
@@ -404,7 +454,7 @@ def test_per_model_settings_drive_promotion(
     # the registry holds at that moment.
     registry.change_settings("m", {"mcnemar_p": f["mcnemar_p"] / 2}, reason="stricter evidence", actor="lead")
     result = registry.promote("m", 2, "live", reason="seed 2 again")
-    assert [g.name for g in result.gates] == ["parity", "labels", "mcnemar"] and not result.forced
+    assert [g.name for g in result.gates] == ["parity", "labels", "cautions", "mcnemar"] and not result.forced
 
 
 # -- too small an evaluation set --------------------------------------------------------------

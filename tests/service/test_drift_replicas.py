@@ -115,6 +115,43 @@ async def test_the_window_keeps_the_newest_texts_across_replicas(live_spec: Regi
         assert len(tx.all("SELECT id FROM drift_counts")) == 2
 
 
+async def test_replicas_set_to_different_windows_keep_each_others_rows_and_say_they_disagree(
+    live_spec: RegistrySpec, tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    """A replica set to a window of 100 texts deleted the rows of one set to 1,000 at each flush, so
+    the larger window never held more than about 100 texts. Now each reports the newest texts of its
+    own size, and both replies and the log name the sizes and the fix."""
+    small = _settings(live_spec, tmp_path, shadow_flush_seconds=3600, drift_window_texts=100)
+    large = small.model_copy(update={"drift_window_texts": 1000})
+    texts = ["my card was charged twice", "the boiler repair was quick", "cannot log in", "thanks!", "refund"]
+    async with serving(small) as (app_s, s), serving(large) as (app_l, big):
+        for app, client in ((app_l, big), (app_l, big), (app_l, big), (app_s, s), (app_s, s)):
+            await _predict(client, texts * 12)  # 60 texts, one flush each
+            await app.state.models.drift.flush()
+        view_s, view_l = await _view(s), await _view(big)
+    [vs], [vl] = view_s["versions"], view_l["versions"]
+    assert (vl["texts"], vl["window_texts"]) == (300, 1000), "the small replica deleted none of the large one's rows"
+    assert (vs["texts"], vs["window_texts"]) == (120, 100)  # the newest two rows: the fewest holding 100 texts
+    assert vs["declared_window_texts"] == vl["declared_window_texts"] == [100, 1000]
+    assert "replicas disagree on TEXTSIEVE_DRIFT_WINDOW_TEXTS (100 here, 1,000 elsewhere)" in vs["detail"]
+    assert "(1,000 here, 100 elsewhere)" in vl["detail"] and "set it the same on every replica" in vl["detail"]
+    assert "replicas disagree" in render_drift(view_s)
+    warned = [r.getMessage() for r in caplog.records if "different TEXTSIEVE_DRIFT_WINDOW_TEXTS" in r.getMessage()]
+    assert any("(100, 1,000; this one 1,000)" in m for m in warned), warned
+    with live_spec.open() as reg, reg.backend.read() as tx:
+        rows = tx.all("SELECT window_texts FROM drift_counts ORDER BY id")
+    assert [r["window_texts"] for r in rows] == [1000, 1000, 1000, 100, 100]
+
+
+async def test_replicas_set_alike_say_nothing_of_window_sizes(live_spec: RegistrySpec, tmp_path: Path) -> None:
+    settings = _settings(live_spec, tmp_path, shadow_flush_seconds=3600, drift_window_texts=100)
+    async with serving(settings) as (app, client):
+        await _predict(client, ["my card was charged twice"] * 20)
+        await app.state.models.drift.flush()
+        [v] = (await _view(client))["versions"]
+    assert v["declared_window_texts"] == [100] and "disagree" not in v["detail"]
+
+
 async def test_a_flush_under_way_at_shutdown_loses_nothing(
     live_spec: RegistrySpec, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:

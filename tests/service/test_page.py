@@ -129,6 +129,55 @@ def test_page_highlighting_slices_code_points_like_python(tmp_path: Path) -> Non
         assert marked_segs == [(text[a:b], i + 1) for i, (a, b) in enumerate(shown)]
 
 
+def test_page_shows_a_labels_invisible_and_reordering_characters_as_escapes(tmp_path: Path) -> None:
+    """Run the page's ``shownLabel`` in Node on labels a version stored before the label rule may hold.
+    Reference: the general categories of the Unicode Character Database (Python's unicodedata) and
+    PRECIS's FreeformClass (RFC 8264, section 4.3: no controls, format, separator, private-use or
+    unassigned characters; joiners in context, RFC 5892 appendix A), escaped as the CLI's tables do."""
+    import unicodedata
+
+    from textsieve.labelled import label_problem
+
+    refused = {"Cc", "Cf", "Zl", "Zp", "Co", "Cn", "Cs"}
+
+    def expected(label: str) -> str:
+        out = []
+        for i, c in enumerate(label):
+            joins = (
+                c in "\u200c\u200d"
+                and 0 < i < len(label) - 1
+                and all(not x.isspace() and unicodedata.category(x) != "Cf" for x in (label[i - 1], label[i + 1]))
+            )
+            if unicodedata.category(c) not in refused or joins:
+                out.append(c)
+            else:
+                out.append(f"\\x{ord(c):02x}" if ord(c) < 0x100 else f"\\u{ord(c):04x}")
+        return "".join(out)
+
+    labels = [
+        "billing\u202e",
+        "\u2066repair\u2069",
+        "re\u200bpair",
+        "soft\u00adhyphen",
+        "two\u2028lines",
+        "para\u2029graph",
+        "private\ue000",
+        "unassigned\U000e0fff",
+        "c1\x85next",
+        "\u0645\u06cc\u200c\u0646\u0627",  # Persian: the non-joiner spells the word
+        "\U0001f469\u200d\U0001f4bb",  # an emoji sequence
+        "ends in a joiner\u200d",
+        "billing",
+        "退款",
+    ]
+    out = _run_helpers(tmp_path, "labels", "cases.map(shownLabel)", labels)
+    assert out == [expected(label) for label in labels]
+    assert out[0] == "billing\\u202e" and out[8] == "c1\\x85next" and out[9] == labels[9]
+    # A label shown as it is is one a new version may publish, and the other way round.
+    for label, shown in zip(labels, out, strict=True):
+        assert (shown == label) == (label_problem(label) is None), label
+
+
 def test_page_highlights_sharing_a_character_become_one(tmp_path: Path) -> None:
     """Two spans the API gives apart (the token before a skin tone, and the skin tone) meet inside
     one cluster once widened: they are shown as one highlight carrying both ranks."""

@@ -751,3 +751,50 @@ def test_hostile_texts_and_labels_are_shown_as_text_and_run_nothing(  # type: ig
         for tag in ("img", "iframe", "a[href^='javascript']"):
             assert browser.find_elements(By.CSS_SELECTOR, tag) == [], f"a {tag} was injected"
         assert [e for e in browser.get_log("browser") if e["level"] == "SEVERE"] == []
+
+
+def test_a_stored_label_with_a_reordering_character_is_shown_escaped_and_judged_as_stored(  # type: ignore[no-untyped-def]
+    browser, tiny_bundles: dict[str, Path], tmp_path: Path
+) -> None:
+    """A version published before labels were held to names' rule may carry U+202E RIGHT-TO-LEFT
+    OVERRIDE in a label: the page showed the rest of the card's line reversed ("1 · billing‮ · 2"),
+    and U+200B made two labels look alike. The page shows such a character as its escape and records
+    a verdict with the label as stored."""
+    import json
+    import shutil
+
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    from tests.helpers.registries import edit_manifest, publish_unchecked_labels
+
+    bundle = tmp_path / "bundle"
+    shutil.copytree(tiny_bundles["a"], bundle)
+    labels = json.loads((bundle / "manifest.json").read_text())["labels"]
+    stored = [label + ("\u202e", "\u200b", "", "")[i % 4] for i, label in enumerate(labels)]
+    shown = [label + ("\\u202e", "\\u200b", "", "")[i % 4] for i, label in enumerate(labels)]
+    edit_manifest(bundle, {"labels": stored})
+    with open_registry(tmp_path / "registry") as reg:
+        assert publish_unchecked_labels(reg, bundle, MODEL) == 1
+        reg.promote(MODEL, 1, "live", reason="stored before the rule", actor="tests", force=True)
+    settings = settings_for(tmp_path / "registry", port=free_port(), review_token=REVIEW_TOKEN)
+    with uvicorn_server(settings) as server:
+        browser.get(server.url + "/")
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + "\n")
+        WebDriverWait(browser, 30).until(lambda d: d.find_element(By.ID, "signed").is_displayed())
+        browser.find_element(By.ID, "texts").send_keys(TEXTS[0])
+        browser.find_element(By.ID, "go").click()
+        WebDriverWait(browser, 30).until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 1)
+        card = browser.find_element(By.CSS_SELECTOR, "article.result")
+        body = browser.find_element(By.TAG_NAME, "body").get_attribute("textContent")
+        assert "\u202e" not in body and "\u200b" not in body
+        buttons = card.find_elements(By.CSS_SELECTOR, ".choices button:not(.confirm)")
+        assert [b.get_attribute("textContent") for b in buttons] == [f"{i + 1} · {s}" for i, s in enumerate(shown)]
+        assert card.find_element(By.CSS_SELECTOR, ".pill").get_attribute("textContent") in shown
+        assert [b.get_attribute("data-label") for b in buttons] == stored
+        buttons[0].click()
+        WebDriverWait(browser, 30).until(lambda d: card.get_attribute("data-state") in ("confirmed", "corrected"))
+        assert [e for e in browser.get_log("browser") if e["level"] == "SEVERE"] == []
+    with open_registry(tmp_path / "registry") as reg:
+        assert [v.verdict_label for v in reg.verdicts.of(MODEL)] == [stored[0]]
