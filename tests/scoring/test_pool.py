@@ -77,3 +77,46 @@ def test_the_workers_end_when_the_scoring_process_is_killed(tiny_bundles: dict[s
         for pipe in (proc.stdin, proc.stdout):
             if pipe is not None:
                 pipe.close()
+
+
+def test_the_scoring_process_ends_when_a_worker_dies_halfway_through_a_result(
+    tiny_bundles: dict[str, Path],
+) -> None:
+    """SIGTERM to the process group (a job runner's or a container's stop) can kill a worker while it
+    writes a result into the pool's pipe. The executor's thread then waited for the rest of that
+    message for ever: the scoring process holds the pipe's write end too, so it never saw the end of
+    the pipe, and Python's exit joins that thread. The scoring process hung after its one line.
+
+    The half-written message is made here by hand, the way a killed worker leaves it (a frame's
+    4-byte length, then less than that many bytes), so the test does not depend on when a signal
+    lands; the worker is then killed as the group's SIGTERM kills it."""
+    code = (
+        "import os, signal, struct, sys, time\n"
+        "from pathlib import Path\n"
+        "from textsieve.scoring.pool import Pool, result\n"
+        "pool = Pool(Path(sys.argv[1]), workers=1)\n"
+        "result(pool.submit(['the chain is broken'], 0))\n"
+        "(pid,) = list(pool._executor._processes)\n"
+        "os.kill(pid, signal.SIGSTOP)\n"  # so the executor sees the half message before the death
+        "writer = pool._executor._result_queue._writer\n"
+        "os.write(writer.fileno(), struct.pack('!i', 4096) + b'\\x80')\n"
+        "time.sleep(0.3)\n"
+        "os.kill(pid, signal.SIGKILL)\n"
+        "pool.close(cancel=True)\n"
+        "print('closed', flush=True)\n"
+    )
+    proc = subprocess.Popen(
+        [sys.executable, "-c", code, str(tiny_bundles["a"])],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        env=child_env() | {"PYTHONPATH": str(ROOT)},
+    )
+    try:
+        out, err = proc.communicate(timeout=30)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        out, err = proc.communicate()
+        raise AssertionError(f"the scoring process did not end: {out!r} {err[-2000:]!r}") from None
+    assert out == "closed\n", err[-2000:]
+    assert proc.returncode == 0, err[-2000:]

@@ -137,7 +137,17 @@ class Pool:
 
     def close(self, *, cancel: bool = False) -> None:
         if self._executor is not None:
+            # The results' pipe: this process holds its write end too, for the workers it may still
+            # start. A worker killed while writing a result (SIGTERM to the process group) leaves half
+            # a message in it, and the executor's thread then reads for the rest for ever, since a
+            # write end is still open here; Python's exit joins that thread, so the process hung after
+            # its last line. Once no worker is to be started, this copy is closed: the dead workers'
+            # copies are gone with them, the read ends, and the executor takes the pool for broken.
+            results = getattr(self._executor, "_result_queue", None)
+            writer = getattr(results, "_writer", None)
             self._executor.shutdown(wait=not cancel, cancel_futures=cancel)
+            if cancel and writer is not None:
+                writer.close()
 
 
 def result(future: Future[Scored]) -> Scored:
