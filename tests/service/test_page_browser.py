@@ -798,3 +798,36 @@ def test_a_stored_label_with_a_reordering_character_is_shown_escaped_and_judged_
         assert [e for e in browser.get_log("browser") if e["level"] == "SEVERE"] == []
     with open_registry(tmp_path / "registry") as reg:
         assert [v.verdict_label for v in reg.verdicts.of(MODEL)] == [stored[0]]
+
+
+def test_a_long_unbroken_name_or_note_does_not_widen_a_narrow_page(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """A reviewer's name may be 120 characters with no space (the service allows it), and a
+    refusal's note can quote a long token; on a 360 CSS px screen (WCAG 2.1 SC 1.4.10 Reflow)
+    neither may widen the page into a horizontal scroll, in the sign-in line, a card's verdict
+    or its note. Before, such a name made the page 1,118 px wide."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    name = "Kwame" + "x" * 115
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
+        browser.execute_cdp_cmd(
+            "Emulation.setDeviceMetricsOverride", {"width": 360, "height": 900, "deviceScaleFactor": 1, "mobile": True}
+        )
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        browser.find_element(By.ID, "reviewer").send_keys(name)
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + Keys.ENTER)
+        wait.until(lambda d: d.find_element(By.ID, "signed").is_displayed())
+        _queue(browser, TEXTS[:1] + ["refund " + "y" * 300])
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        card = browser.find_elements(By.CSS_SELECTOR, "article.result")[0]
+        card.find_element(By.CSS_SELECTOR, "button.confirm").send_keys(Keys.ENTER)
+        wait.until(lambda d: card.get_attribute("data-state") == "confirmed")
+        assert name in card.find_element(By.CSS_SELECTOR, ".verdict").text
+        widths = browser.execute_script(
+            "const e = document.documentElement; return [e.scrollWidth, e.clientWidth,"
+            " ...Array.from(document.querySelectorAll('article.result, #signed'),"
+            " (c) => c.scrollWidth - c.clientWidth)]"
+        )
+        assert widths[0] <= widths[1] and all(extra <= 0 for extra in widths[2:]), widths
