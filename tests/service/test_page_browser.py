@@ -862,3 +862,26 @@ def test_the_page_has_landmarks_headings_and_visible_labels(browser, registry_di
             labels = browser.find_elements(By.CSS_SELECTOR, f"label[for='{fid}']")
             assert labels and labels[0].is_displayed(), f"#{fid} has no visible label"
             assert field.accessible_name == labels[0].text, fid
+
+
+def test_the_service_going_away_is_said_and_announced(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """The server stops while the page is open: queueing texts then shows why nothing was
+    scored as an alert, and the readiness line in the header, a status (WAI-ARIA 1.2 live
+    region), says the service is unreachable, so a screen reader hears it too. Before, the
+    readiness line was a plain div nobody heard change."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        wait.until(lambda d: d.find_element(By.ID, "status").get_attribute("class") == "ready")
+    _queue(browser, TEXTS[:1])
+    wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.error"))
+    error = browser.find_element(By.CSS_SELECTOR, "article.error")
+    assert (
+        error.aria_role == "alert" and "no reply from the service" in error.text and "Nothing was scored" in error.text
+    )
+    status = browser.find_element(By.ID, "status")
+    wait.until(lambda d: status.get_attribute("class") == "down")
+    assert status.aria_role == "status" and status.text == "service unreachable"
