@@ -885,3 +885,32 @@ def test_the_service_going_away_is_said_and_announced(browser, registry_dir: Pat
     status = browser.find_element(By.ID, "status")
     wait.until(lambda d: status.get_attribute("class") == "down")
     assert status.aria_role == "status" and status.text == "service unreachable"
+
+
+def test_a_shortcut_acts_only_while_the_focus_is_in_the_queue(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """Single-key shortcuts act only while the keyboard focus is in the queue (WCAG 2.1 SC 2.1.4
+    Character Key Shortcuts: active only on focus). A Y typed on the Queue or Sign out button
+    records nothing; before, it confirmed a card the reviewer might not even see."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + Keys.ENTER)
+        _queue(browser, TEXTS)
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        for outside in ("go", "sign-out"):
+            browser.execute_script("document.getElementById(arguments[0]).focus()", outside)
+            ActionChains(browser).send_keys("y").perform()
+            time.sleep(1)
+            states = [c.get_attribute("data-state") for c in browser.find_elements(By.CSS_SELECTOR, "article.result")]
+            assert states == ["pending", "pending"], (outside, states)
+        # In the queue the same key confirms the card that holds the focus.
+        browser.find_elements(By.CSS_SELECTOR, "article.result")[0].click()
+        ActionChains(browser).send_keys("y").perform()
+        card = browser.find_elements(By.CSS_SELECTOR, "article.result")[0]
+        wait.until(lambda d: card.get_attribute("data-state") == "confirmed")
