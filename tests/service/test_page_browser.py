@@ -914,3 +914,31 @@ def test_a_shortcut_acts_only_while_the_focus_is_in_the_queue(browser, registry_
         ActionChains(browser).send_keys("y").perform()
         card = browser.find_elements(By.CSS_SELECTOR, "article.result")[0]
         wait.until(lambda d: card.get_attribute("data-state") == "confirmed")
+
+
+def test_a_verdict_by_button_keeps_the_focus_in_the_queue(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """A keyboard reviewer presses Enter on the last card's confirm button: the verdict disables
+    that button, and the focus must not fall with it to the page's body (WCAG 2.1 SC 2.4.3 Focus
+    Order), where Tab starts again from the top and the queue's shortcuts do not act. It stays on
+    the card, so P goes back to the previous one. Before, the focus was lost to the body."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + Keys.ENTER)
+        _queue(browser, TEXTS)
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        cards = browser.find_elements(By.CSS_SELECTOR, "article.result")
+        browser.execute_script("arguments[0].focus()", cards[1].find_element(By.CSS_SELECTOR, "button.confirm"))
+        ActionChains(browser).send_keys(Keys.ENTER).perform()
+        wait.until(lambda d: cards[1].get_attribute("data-state") == "confirmed")
+        time.sleep(0.3)  # Chromium moves the focus off a disabled button at its next frame
+        assert browser.switch_to.active_element == cards[1]
+        ActionChains(browser).send_keys("p").perform()
+        wait.until(lambda d: d.switch_to.active_element == cards[0])
+        assert "current" in (cards[0].get_attribute("class") or "")
