@@ -798,3 +798,147 @@ def test_a_stored_label_with_a_reordering_character_is_shown_escaped_and_judged_
         assert [e for e in browser.get_log("browser") if e["level"] == "SEVERE"] == []
     with open_registry(tmp_path / "registry") as reg:
         assert [v.verdict_label for v in reg.verdicts.of(MODEL)] == [stored[0]]
+
+
+def test_a_long_unbroken_name_or_note_does_not_widen_a_narrow_page(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """A reviewer's name may be 120 characters with no space (the service allows it), and a
+    refusal's note can quote a long token; on a 360 CSS px screen (WCAG 2.1 SC 1.4.10 Reflow)
+    neither may widen the page into a horizontal scroll, in the sign-in line, a card's verdict
+    or its note. Before, such a name made the page 1,118 px wide."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    name = "Kwame" + "x" * 115
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
+        browser.execute_cdp_cmd(
+            "Emulation.setDeviceMetricsOverride", {"width": 360, "height": 900, "deviceScaleFactor": 1, "mobile": True}
+        )
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        browser.find_element(By.ID, "reviewer").send_keys(name)
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + Keys.ENTER)
+        wait.until(lambda d: d.find_element(By.ID, "signed").is_displayed())
+        _queue(browser, TEXTS[:1] + ["refund " + "y" * 300])
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        card = browser.find_elements(By.CSS_SELECTOR, "article.result")[0]
+        card.find_element(By.CSS_SELECTOR, "button.confirm").send_keys(Keys.ENTER)
+        wait.until(lambda d: card.get_attribute("data-state") == "confirmed")
+        assert name in card.find_element(By.CSS_SELECTOR, ".verdict").text
+        widths = browser.execute_script(
+            "const e = document.documentElement; return [e.scrollWidth, e.clientWidth,"
+            " ...Array.from(document.querySelectorAll('article.result, #signed'),"
+            " (c) => c.scrollWidth - c.clientWidth)]"
+        )
+        assert widths[0] <= widths[1] and all(extra <= 0 for extra in widths[2:]), widths
+
+
+def test_the_page_has_landmarks_headings_and_visible_labels(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """What a screen reader lists (roles as Chromium computes them, WAI-ARIA 1.2 and HTML-AAM):
+    one main landmark holding the forms and the queue, the footer as the page's contentinfo,
+    a heading for each part (the queue included, so heading navigation reaches it) and, for
+    every field, a label a sighted reviewer sees too (WCAG 2.1 SC 3.3.2; a placeholder vanishes
+    as one types). Before, there was no main landmark, the queue had no heading and the texts
+    box only an aria-label."""
+    from selenium.webdriver.common.by import By
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        browser.get(server.url + "/")
+        assert browser.find_element(By.TAG_NAME, "html").get_attribute("lang") == "en"
+        mains = [e for e in browser.find_elements(By.CSS_SELECTOR, "body *") if e.aria_role == "main"]
+        assert len(mains) == 1
+        for inside in ("texts", "queue", "sign-in"):
+            assert browser.execute_script(
+                "return arguments[0].contains(document.getElementById(arguments[1]))", mains[0], inside
+            ), inside
+        assert browser.find_element(By.TAG_NAME, "footer").aria_role == "contentinfo"
+        assert browser.find_element(By.TAG_NAME, "header").aria_role == "banner"
+        headings = [h.text.lower() for h in browser.find_elements(By.CSS_SELECTOR, "h2")]
+        assert any("queue" in h for h in headings), headings
+        queue = browser.find_element(By.ID, "queue").find_element(By.XPATH, "./ancestor::section")
+        assert queue.aria_role == "region" and "queue" in queue.accessible_name.lower()
+        for field in browser.find_elements(By.CSS_SELECTOR, "input, select, textarea"):
+            fid = field.get_attribute("id")
+            labels = browser.find_elements(By.CSS_SELECTOR, f"label[for='{fid}']")
+            assert labels and labels[0].is_displayed(), f"#{fid} has no visible label"
+            assert field.accessible_name == labels[0].text, fid
+
+
+def test_the_service_going_away_is_said_and_announced(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """The server stops while the page is open: queueing texts then shows why nothing was
+    scored as an alert, and the readiness line in the header, a status (WAI-ARIA 1.2 live
+    region), says the service is unreachable, so a screen reader hears it too. Before, the
+    readiness line was a plain div nobody heard change."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port())) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        wait.until(lambda d: d.find_element(By.ID, "status").get_attribute("class") == "ready")
+    _queue(browser, TEXTS[:1])
+    wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "article.error"))
+    error = browser.find_element(By.CSS_SELECTOR, "article.error")
+    assert (
+        error.aria_role == "alert" and "no reply from the service" in error.text and "Nothing was scored" in error.text
+    )
+    status = browser.find_element(By.ID, "status")
+    wait.until(lambda d: status.get_attribute("class") == "down")
+    assert status.aria_role == "status" and status.text == "service unreachable"
+
+
+def test_a_shortcut_acts_only_while_the_focus_is_in_the_queue(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """Single-key shortcuts act only while the keyboard focus is in the queue (WCAG 2.1 SC 2.1.4
+    Character Key Shortcuts: active only on focus). A Y typed on the Queue or Sign out button
+    records nothing; before, it confirmed a card the reviewer might not even see."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + Keys.ENTER)
+        _queue(browser, TEXTS)
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        for outside in ("go", "sign-out"):
+            browser.execute_script("document.getElementById(arguments[0]).focus()", outside)
+            ActionChains(browser).send_keys("y").perform()
+            time.sleep(1)
+            states = [c.get_attribute("data-state") for c in browser.find_elements(By.CSS_SELECTOR, "article.result")]
+            assert states == ["pending", "pending"], (outside, states)
+        # In the queue the same key confirms the card that holds the focus.
+        browser.find_elements(By.CSS_SELECTOR, "article.result")[0].click()
+        ActionChains(browser).send_keys("y").perform()
+        card = browser.find_elements(By.CSS_SELECTOR, "article.result")[0]
+        wait.until(lambda d: card.get_attribute("data-state") == "confirmed")
+
+
+def test_a_verdict_by_button_keeps_the_focus_in_the_queue(browser, registry_dir: Path) -> None:  # type: ignore[no-untyped-def]
+    """A keyboard reviewer presses Enter on the last card's confirm button: the verdict disables
+    that button, and the focus must not fall with it to the page's body (WCAG 2.1 SC 2.4.3 Focus
+    Order), where Tab starts again from the top and the queue's shortcuts do not act. It stays on
+    the card, so P goes back to the previous one. Before, the focus was lost to the body."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
+        browser.get(server.url + "/")
+        wait = WebDriverWait(browser, 30)
+        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + Keys.ENTER)
+        _queue(browser, TEXTS)
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
+        cards = browser.find_elements(By.CSS_SELECTOR, "article.result")
+        browser.execute_script("arguments[0].focus()", cards[1].find_element(By.CSS_SELECTOR, "button.confirm"))
+        ActionChains(browser).send_keys(Keys.ENTER).perform()
+        wait.until(lambda d: cards[1].get_attribute("data-state") == "confirmed")
+        time.sleep(0.3)  # Chromium moves the focus off a disabled button at its next frame
+        assert browser.switch_to.active_element == cards[1]
+        ActionChains(browser).send_keys("p").perform()
+        wait.until(lambda d: d.switch_to.active_element == cards[0])
+        assert "current" in (cards[0].get_attribute("class") or "")
