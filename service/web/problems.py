@@ -298,7 +298,8 @@ UNKNOWN_METHOD = Kind(
     501,
     "unknown-method",
     "The request method is not one this service knows",
-    "The request's method is not an HTTP method the service recognises (RFC 9110 §9.1: answered 501); "
+    "The request's method is not an HTTP method the service recognises, or is CONNECT, which asks for a "
+    "tunnel the service does not implement, not being a proxy (RFC 9110 §9.1 and §9.3.6: answered 501); "
     "the connection was closed. Its paths answer GET, HEAD and POST, as the Allow header of a 405 lists "
     "for each. Nothing was computed.",
 )

@@ -32,7 +32,10 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   headers and stops: ``curl --http2`` on ``http://`` sends ``Upgrade: h2c`` with every first
   request, and its body was lost (answered 422 "the body is missing"), a WebSocket handshake got
   an empty 403. RFC 9110 §7.8 lets a server ignore Upgrade, so the request is parsed again
-  without it and answered as HTTP/1.1.
+  without it and answered as HTTP/1.1. ``CONNECT`` asks for a tunnel, which this origin server
+  does not implement (it is no proxy): 501 (RFC 9110 §9.3.6 and §9.1), where it was a 400.
+- **HTTP/1.0 framing.** An HTTP/1.0 request with ``Transfer-Encoding`` is answered 400 and the
+  connection closed (RFC 9112 §6.1: its framing is faulty); it was read as chunked and answered.
 - **Read deadline.** From the moment a connection opens, or a keep-alive connection's next
   request begins, the client has ``read_timeout_seconds`` to send the request's headers and
   whole body. Past it the connection is answered 408 (RFC 9110 §15.5.9) if no response has
@@ -216,6 +219,29 @@ class ConnectionGuard:
             "(a 405 names which for each path); the connection is closed",
             None,
         )
+        # RFC 9112 §6.1: an HTTP/1.0 request with a transfer coding has faulty framing (HTTP/1.0 has no
+        # chunking, so a proxy in front may have read another body than the one parsed here).
+        self.coding_in_http_1_0 = _raw_response(
+            MALFORMED.status,
+            "Bad Request",
+            MALFORMED.slug,
+            MALFORMED.title,
+            "an HTTP/1.0 request may not carry Transfer-Encoding (RFC 9112 §6.1): send its body with "
+            "Content-Length, or send the request as HTTP/1.1; the connection is closed",
+            None,
+        )
+        # RFC 9110 §9.3.6: CONNECT asks a proxy for a tunnel; this origin server implements no
+        # tunnel, and §9.1 answers a method it does not implement 501 (a 405 would owe an Allow for a
+        # target, and an authority-form target names no resource here).
+        self.no_tunnel = _raw_response(
+            UNKNOWN_METHOD.status,
+            "Not Implemented",
+            UNKNOWN_METHOD.slug,
+            UNKNOWN_METHOD.title,
+            "CONNECT asks for a tunnel, and this service is not a proxy (RFC 9110 §9.3.6); it answers GET, "
+            "HEAD and POST (a 405 names which for each path); the connection is closed",
+            None,
+        )
         self.max_head_bytes = max_head_bytes
         self.head_too_large = _raw_response(
             HEAD_TOO_LARGE.status,
@@ -374,7 +400,7 @@ class ConnectionGuard:
 
             def _should_upgrade(self) -> bool:
                 # True: the request is left alone (no checks, no cycle, no body), and _feed parses it
-                # again. CONNECT asks for a tunnel, not an upgrade: it is answered as it was parsed (405).
+                # again. CONNECT asks for a tunnel, not an upgrade: on_headers_complete answers it 501.
                 return bool(self.parser.should_upgrade()) and self.parser.get_method() != b"CONNECT"
 
             def _without_upgrade(self, rest: bytes) -> None:
@@ -420,6 +446,13 @@ class ConnectionGuard:
                     # RFC 9112 §3.2: a server must answer 400 to an HTTP/1.1 request without a Host,
                     # with two (a proxy in front may have read the other one), or with one that is no host.
                     self.send_400_response("Host missing, repeated or invalid")
+                    return
+                if self.parser.get_method() == b"CONNECT":
+                    self._close_with(guard.no_tunnel, 501)
+                    return
+                if self.parser.get_http_version() == "1.0" and any(n == b"transfer-encoding" for n, _ in self.headers):
+                    guard.malformed_requests += 1
+                    self._close_with(guard.coding_in_http_1_0, 400)
                     return
                 if self.url.split(b"?", 1)[0] not in _PROBE_TARGETS and not guard.request_may_start():
                     cycle: Any = self.cycle

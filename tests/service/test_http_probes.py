@@ -355,3 +355,30 @@ def test_concurrent_large_requests_never_lose_a_worker(tmp_path: Path, tiny_bund
             assert asyncio.run(burst(large, 4)) == ["200"] * 4
             assert asyncio.run(burst(small, 24)) == ["200"] * 24
         assert "stopped" not in server.output()
+
+
+# -- framing an HTTP/1.0 request cannot have, and a method asking for a tunnel ---------------------
+def test_an_http_1_0_request_with_a_transfer_coding_is_refused_400_and_closed(probed: tuple[str, Path]) -> None:
+    # RFC 9112 §6.1: a server that receives a request message with a transfer coding in HTTP/1.0 "MUST
+    # treat it as if the framing is faulty" and close the connection. It was read as chunked and
+    # answered 200, so a proxy in front that reads HTTP/1.0 framing (no chunking) saw another body.
+    chunked = b"%x\r\n%s\r\n0\r\n\r\n" % (len(_BODY), _BODY)
+    request = b"POST /v1/predict HTTP/1.0\r\nContent-Type: application/json\r\nTransfer-Encoding: chunked\r\n\r\n"
+    ((status, body),) = _replies_until_closed(probed[0], request + chunked)
+    assert status == 400 and body["type"] == "/problems/malformed-request"
+    assert "HTTP/1.0" in body["detail"] and "Transfer-Encoding" in body["detail"]
+    assert "Content-Length" in body["detail"]  # what is allowed instead
+    # The same body framed by Content-Length is read as before.
+    framed = b"POST /v1/predict HTTP/1.0\r\nContent-Type: application/json\r\nContent-Length: %d\r\n\r\n" % len(_BODY)
+    ((status, body),) = _replies_until_closed(probed[0], framed + _BODY)
+    assert status == 200 and body["model"] == MODEL
+
+
+def test_connect_is_answered_501_as_a_method_this_origin_server_does_not_implement(probed: tuple[str, Path]) -> None:
+    # RFC 9110 §9.3.6: CONNECT asks a proxy for a tunnel, and "most origin servers do not implement
+    # CONNECT"; §9.1: a method the origin server does not implement SHOULD be answered 501. (405 would
+    # need an Allow for the target, and an authority-form target names no resource here.) It was a 400
+    # "not valid HTTP", though the code's comment promised a 405.
+    ((status, body),) = _replies_until_closed(probed[0], b"CONNECT x:443 HTTP/1.1\r\nHost: x:443\r\n\r\n")
+    assert status == 501 and body["type"] == "/problems/unknown-method"
+    assert "CONNECT" in body["detail"] and "GET, HEAD and POST" in body["detail"]
