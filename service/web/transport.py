@@ -10,7 +10,8 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   anything is read from it.
 - **Requests in the app.** A request whose headers arrive while ``limit`` requests are already
   inside the application (counted from when their whole body has arrived; probes never count
-  and are never refused) is answered 503 at once from here, before any Python of the app runs,
+  and are never refused) is answered 503 from here (after the replies to requests pipelined ahead
+  of it, RFC 9112 §9.3.2), before any Python of the app runs,
   so a crowd of callers cannot make the event loop itself the queue. The limit adapts, in the
   spirit of TCP's congestion window (Jacobson, 1988): it starts at ``max_requests``; every tenth
   of a second, if the requests finished in it took longer on average than the admitted wait
@@ -297,6 +298,7 @@ class ConnectionGuard:
             _done_in_read = 0  # requests read whole in the data being parsed now
             _message_done = False  # the last request read is whole: what comes next begins another
             _deferred: bytes | None = None  # a refusal waiting for the replies to the requests before it
+            _ahead: Any = None  # the request cycle the current one is queued behind (uvicorn keeps none)
 
             def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
                 if guard.open >= guard.max_connections:
@@ -349,6 +351,12 @@ class ConnectionGuard:
                 cycle: Any = self.cycle
                 if self._message_done:
                     self._app_has_it = False  # the refused request is not the one the application has
+                elif cycle is not None and self.pipeline and self.pipeline[0][0] is cycle:
+                    # The refused request (a broken chunked body, say) waits behind another: it never
+                    # reaches the application, and its refusal follows the reply of the one ahead.
+                    self.pipeline.popleft()
+                    self.cycle = cycle = self._ahead
+                    self._app_has_it, self._message_done = False, True
                 self._count(status)
                 if self._message_done and cycle is not None and not cycle.response_complete:
                     self._deferred = reply  # written by on_response_complete
@@ -457,13 +465,12 @@ class ConnectionGuard:
                 if self.url.split(b"?", 1)[0] not in _PROBE_TARGETS and not guard.request_may_start():
                     cycle: Any = self.cycle
                     pipelined = cycle is not None and not cycle.response_complete
-                    self._count(503)
                     if pipelined or not self.parser.should_keep_alive():
-                        self._disarm()
-                        self._refused = True  # the parser may still call back for the rest of this read
-                        self.transport.write(guard.busy)
-                        self.transport.close()
+                        # After the replies to the requests ahead of it (RFC 9112 §9.3.2): written at
+                        # once, it went out before them and the connection closed on them.
+                        self._close_with(guard.busy, 503)
                     else:
+                        self._count(503)
                         self._skipping = True
                         self.transport.write(guard.busy_keep_alive)
                         # The refusal goes out now; this connection's next request is read only after
@@ -480,6 +487,8 @@ class ConnectionGuard:
                 before = self.cycle
                 super().on_headers_complete()
                 cycle = self.cycle
+                # Kept only while the new request waits behind it (no finished cycle is held on to).
+                self._ahead = before if before is not None and not before.response_complete else None
                 # Made just now, for this request. A reply to HEAD is a head alone: uvicorn writes
                 # no body after it, so there is nothing to hold it for.
                 if cycle is not None and cycle is not before:

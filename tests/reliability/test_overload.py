@@ -12,6 +12,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import json
+import re
 import select
 import socket
 import time
@@ -528,3 +529,50 @@ def test_a_client_that_half_closes_after_its_request_still_gets_the_reply(regist
             statuses = [int(part.split(b" ", 1)[0]) for part in answer.split(b"HTTP/1.1 ")[1:]]
             assert statuses == answers, (name, answer[:300])
             assert time.monotonic() - started < 5, name  # closed once answered, not at the read deadline
+
+
+def test_a_pipelined_request_refused_by_the_request_limit_is_answered_after_the_requests_ahead() -> None:
+    # RFC 9112 §9.3.2: replies in request order. A request refused 503 at its headers behind another
+    # still being answered was refused at once and the connection closed: the reply ahead was lost
+    # and the client read the 503 as its first request's reply. A real uvicorn on loopback with the
+    # guard's protocol; the replica is made full by hand (probes are admitted whatever the count).
+    import threading
+
+    import uvicorn
+
+    from textsieve.service.web.transport import ConnectionGuard
+
+    async def app(scope: dict[str, Any], receive: Any, send: Any) -> None:
+        if scope["type"] != "http":
+            return
+        await asyncio.sleep(0.2)  # the probe is still being answered when the refusal is decided
+        await send({"type": "http.response.start", "status": 200, "headers": [(b"content-length", b"2")]})
+        await send({"type": "http.response.body", "body": b"{}"})
+
+    guard = ConnectionGuard(max_connections=8, read_timeout=5, min_requests=1, start_requests=1)
+    guard.inflight = 1  # the limit (1) is reached
+    sock = socket.socket()
+    sock.bind(("127.0.0.1", 0))
+    config = uvicorn.Config(app, http=guard.protocol(), ws="none", lifespan="off", log_level="warning")
+    server = uvicorn.Server(config)
+    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
+    thread.start()
+    try:
+        deadline = time.monotonic() + 10
+        while not server.started and time.monotonic() < deadline:
+            time.sleep(0.01)
+        probe = b"GET /healthz HTTP/1.1\r\nHost: x\r\n\r\n"
+        post = b"POST /v1/predict HTTP/1.1\r\nHost: x\r\nContent-Length: 2\r\n\r\n{}"
+        got = b""
+        with socket.create_connection(sock.getsockname(), timeout=10) as s:
+            s.sendall(probe + post)
+            while chunk := s.recv(65536):
+                got += chunk
+        statuses = [int(m) for m in re.findall(rb"HTTP/1\.1 (\d{3}) ", got)]
+        assert statuses == [200, 503], got
+        assert got.index(b"{}") < got.index(b"/problems/overloaded")  # the 503 is problem+json, after the 200
+        assert guard.refused_requests == 1
+    finally:
+        server.should_exit = True
+        thread.join(10)
+        sock.close()

@@ -490,3 +490,17 @@ def test_expect_100_continue_still_gets_100_when_the_body_may_change_the_answer(
     probed: tuple[str, Path], head: bytes
 ) -> None:
     assert _first_reply(probed[0], head + _EXPECT + b"Content-Length: %d\r\n\r\n" % len(_BODY))[0] == 100
+
+
+def test_a_broken_chunked_body_queued_behind_another_request_is_refused_after_its_reply(
+    probed: tuple[str, Path],
+) -> None:
+    # RFC 9112 §9.3.2: replies in request order. The second request's chunked framing breaks while the
+    # first is still being answered: its 400 went out at once and the connection closed, so the
+    # first request's reply was lost (and the client read the 400 as that reply).
+    broken = _PREDICT + b"Transfer-Encoding: chunked\r\n\r\nzz\r\n" + _BODY + b"\r\n0\r\n\r\n"
+    replies = _replies_until_closed(probed[0], _FRAMED + broken)
+    assert [status for status, _ in replies] == [200, 400]
+    assert replies[0][1]["model"] == MODEL and replies[1][1]["type"] == "/problems/malformed-request"
+    replies = _replies_until_closed(probed[0], _FRAMED + _FRAMED + broken)
+    assert [status for status, _ in replies] == [200, 200, 400]
