@@ -40,8 +40,8 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
 - **Read deadline.** From the moment a connection opens, or a keep-alive connection's next
   request begins, the client has ``read_timeout_seconds`` to send the request's headers and
   whole body. Past it the connection is answered 408 (RFC 9110 §15.5.9) if no response has
-  started, and closed. Idle keep-alive connections are closed by uvicorn after
-  ``keepalive_seconds`` (its ``timeout_keep_alive``).
+  started (after the replies to requests pipelined ahead of it), and closed. Idle keep-alive
+  connections are closed by uvicorn after ``keepalive_seconds`` (its ``timeout_keep_alive``).
 
 All of it is counted (:class:`ConnectionGuard`) and exposed in ``/metrics``; every reply written
 here to a request the application never saw (400, 408, 431, 501, 503) is also counted in
@@ -562,6 +562,14 @@ class ConnectionGuard:
                     return
                 guard.timed_out += 1
                 cycle: Any = self.cycle
+                if cycle is not None and (
+                    (self._message_done and not cycle.response_complete)
+                    or (self.pipeline and self.pipeline[0][0] is cycle)
+                ):
+                    # The stalled request waits behind one still being answered: its 408 follows that
+                    # reply (RFC 9112 §9.3.2), which closing now would have lost.
+                    self._close_with(guard.too_slow, 408)
+                    return
                 if cycle is None or not cycle.response_started:
                     self.transport.write(guard.too_slow)
                     self._count(408, guard.read_timeout)  # the deadline ran from when the timer was armed
