@@ -38,9 +38,10 @@ from typing import Any
 
 from fastapi import Request, Response
 from fastapi.routing import APIRoute
+from starlette.types import Message, Receive, Scope, Send
 
 from textsieve.errors import InputError
-from textsieve.service.web.problems import BODY_REFUSAL, CharsetError, body_shape
+from textsieve.service.web.problems import BODY_REFUSAL, CharsetError, body_shape, is_json
 from textsieve.service.web.schemas import shown_name
 
 UTF8_BOM = b"\xef\xbb\xbf"
@@ -167,8 +168,55 @@ class _Utf8JsonRequest(Request):
         return self._json
 
 
+def decided_by_head(scope: Scope) -> bool:
+    """Whether a request that expects ``100 Continue`` is refused whatever its body holds: a query
+    string (:func:`textsieve.service.web.deps.no_query`, a dependency of every JSON route) or a
+    Content-Type not read as JSON (its body is validated as bytes, which no request model takes).
+    Only such a request pays for this scan: the predict lane takes the common one before it."""
+    if scope.get("http_version") != "1.1":  # an HTTP/1.0 expectation is ignored (service/web/transport.py)
+        return False
+    expects = False
+    types: list[bytes] = []
+    for name, value in scope["headers"]:
+        if name == b"expect":
+            expects = value.strip().lower() == b"100-continue"
+        elif name == b"content-type":
+            types.append(value)
+    if not expects:
+        return False
+    return bool(scope["query_string"]) or (len(types) == 1 and not is_json(types[0].decode("latin-1")))
+
+
+# What the route reads in place of a body it does not ask for: not empty (an empty body is "missing",
+# which the body would not have been), and no JSON, as a body sent as another media type is not read as.
+_STAND_IN: Message = {"type": "http.request", "body": b"\x00", "more_body": False}
+
+
+def _unread(receive: Receive, send: Send) -> tuple[Receive, Send]:
+    """``receive`` that hands out a stand-in body first, so uvicorn, asked for no body, sends no
+    ``100 Continue`` (RFC 9110 §10.1.1 lets the final status come in its place); and ``send`` that
+    closes the connection after the reply, as the client sends the body it was never asked for, or none."""
+    given = False
+
+    async def stand_in() -> Message:
+        nonlocal given
+        if not given:
+            given = True
+            return _STAND_IN
+        return await receive()
+
+    async def closing(message: Message) -> None:
+        if message["type"] == "http.response.start":
+            message = {**message, "headers": [*message.get("headers", []), (b"connection", b"close")]}
+        await send(message)
+
+    return stand_in, closing
+
+
 class JsonBodyRoute(APIRoute):
-    """A route whose JSON body is read by :func:`parse` (``APIRouter(route_class=JsonBodyRoute)``)."""
+    """A route whose JSON body is read by :func:`parse` (``APIRouter(route_class=JsonBodyRoute)``).
+    A request that expects ``100 Continue`` and whose headers decide its refusal gets the refusal in
+    its place, and its body is not read (:func:`decided_by_head`)."""
 
     def get_route_handler(self) -> Callable[[Request], Coroutine[Any, Any, Response]]:
         handler = super().get_route_handler()
@@ -177,6 +225,11 @@ class JsonBodyRoute(APIRoute):
             return await handler(_Utf8JsonRequest(request.scope, request.receive))
 
         return read_as_utf8
+
+    async def handle(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if decided_by_head(scope):
+            receive, send = _unread(receive, send)
+        await super().handle(scope, receive, send)
 
 
 __all__ = ["REFUSED", "JsonBodyRoute", "charsets", "foreign_encoding", "parse"]

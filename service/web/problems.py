@@ -298,7 +298,8 @@ UNKNOWN_METHOD = Kind(
     501,
     "unknown-method",
     "The request method is not one this service knows",
-    "The request's method is not an HTTP method the service recognises (RFC 9110 §9.1: answered 501); "
+    "The request's method is not an HTTP method the service recognises, or is CONNECT, which asks for a "
+    "tunnel the service does not implement, not being a proxy (RFC 9110 §9.1 and §9.3.6: answered 501); "
     "the connection was closed. Its paths answer GET, HEAD and POST, as the Allow header of a 405 lists "
     "for each. Nothing was computed.",
 )
@@ -407,7 +408,7 @@ def _content_type(scope: Scope) -> str | None:
     return None
 
 
-def _is_json(content_type: str) -> bool:
+def is_json(content_type: str) -> bool:
     """What FastAPI reads as JSON: application/json or application/*+json, any parameters."""
     kind = content_type.split(";", 1)[0].strip().lower()
     return kind == "application/json" or (kind.startswith("application/") and kind.endswith("+json"))
@@ -448,7 +449,7 @@ def _validation_problem(exc: RequestValidationError, scope: Scope) -> Response:
             field = ", ".join(err.get("ctx", {}).get("fields", [])) or field
         elif kind == "model_attributes_type" or (kind == "dict_type" and field == "body"):
             sent = _content_type(scope)
-            if sent is None or _is_json(sent):
+            if sent is None or is_json(sent):
                 msg = f"the body must be {body_shape(scope)}, sent with Content-Type: application/json"
             else:  # the body was never read as JSON: say so, whatever it holds (curl -d sends a form)
                 msg = (
@@ -539,6 +540,7 @@ __all__ = [
     "TransferCodingError",
     "body_shape",
     "install",
+    "is_json",
     "problem",
     "render",
 ]

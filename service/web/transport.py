@@ -10,7 +10,8 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   anything is read from it.
 - **Requests in the app.** A request whose headers arrive while ``limit`` requests are already
   inside the application (counted from when their whole body has arrived; probes never count
-  and are never refused) is answered 503 at once from here, before any Python of the app runs,
+  and are never refused) is answered 503 from here (after the replies to requests pipelined ahead
+  of it, RFC 9112 §9.3.2), before any Python of the app runs,
   so a crowd of callers cannot make the event loop itself the queue. The limit adapts, in the
   spirit of TCP's congestion window (Jacobson, 1988): it starts at ``max_requests``; every tenth
   of a second, if the requests finished in it took longer on average than the admitted wait
@@ -32,12 +33,15 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   headers and stops: ``curl --http2`` on ``http://`` sends ``Upgrade: h2c`` with every first
   request, and its body was lost (answered 422 "the body is missing"), a WebSocket handshake got
   an empty 403. RFC 9110 §7.8 lets a server ignore Upgrade, so the request is parsed again
-  without it and answered as HTTP/1.1.
+  without it and answered as HTTP/1.1. ``CONNECT`` asks for a tunnel, which this origin server
+  does not implement (it is no proxy): 501 (RFC 9110 §9.3.6 and §9.1), where it was a 400.
+- **HTTP/1.0 framing.** An HTTP/1.0 request with ``Transfer-Encoding`` is answered 400 and the
+  connection closed (RFC 9112 §6.1: its framing is faulty); it was read as chunked and answered.
 - **Read deadline.** From the moment a connection opens, or a keep-alive connection's next
   request begins, the client has ``read_timeout_seconds`` to send the request's headers and
   whole body. Past it the connection is answered 408 (RFC 9110 §15.5.9) if no response has
-  started, and closed. Idle keep-alive connections are closed by uvicorn after
-  ``keepalive_seconds`` (its ``timeout_keep_alive``).
+  started (after the replies to requests pipelined ahead of it), and closed. Idle keep-alive
+  connections are closed by uvicorn after ``keepalive_seconds`` (its ``timeout_keep_alive``).
 
 All of it is counted (:class:`ConnectionGuard`) and exposed in ``/metrics``; every reply written
 here to a request the application never saw (400, 408, 431, 501, 503) is also counted in
@@ -216,6 +220,29 @@ class ConnectionGuard:
             "(a 405 names which for each path); the connection is closed",
             None,
         )
+        # RFC 9112 §6.1: an HTTP/1.0 request with a transfer coding has faulty framing (HTTP/1.0 has no
+        # chunking, so a proxy in front may have read another body than the one parsed here).
+        self.coding_in_http_1_0 = _raw_response(
+            MALFORMED.status,
+            "Bad Request",
+            MALFORMED.slug,
+            MALFORMED.title,
+            "an HTTP/1.0 request may not carry Transfer-Encoding (RFC 9112 §6.1): send its body with "
+            "Content-Length, or send the request as HTTP/1.1; the connection is closed",
+            None,
+        )
+        # RFC 9110 §9.3.6: CONNECT asks a proxy for a tunnel; this origin server implements no
+        # tunnel, and §9.1 answers a method it does not implement 501 (a 405 would owe an Allow for a
+        # target, and an authority-form target names no resource here).
+        self.no_tunnel = _raw_response(
+            UNKNOWN_METHOD.status,
+            "Not Implemented",
+            UNKNOWN_METHOD.slug,
+            UNKNOWN_METHOD.title,
+            "CONNECT asks for a tunnel, and this service is not a proxy (RFC 9110 §9.3.6); it answers GET, "
+            "HEAD and POST (a 405 names which for each path); the connection is closed",
+            None,
+        )
         self.max_head_bytes = max_head_bytes
         self.head_too_large = _raw_response(
             HEAD_TOO_LARGE.status,
@@ -271,6 +298,7 @@ class ConnectionGuard:
             _done_in_read = 0  # requests read whole in the data being parsed now
             _message_done = False  # the last request read is whole: what comes next begins another
             _deferred: bytes | None = None  # a refusal waiting for the replies to the requests before it
+            _ahead: Any = None  # the request cycle the current one is queued behind (uvicorn keeps none)
 
             def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
                 if guard.open >= guard.max_connections:
@@ -323,6 +351,12 @@ class ConnectionGuard:
                 cycle: Any = self.cycle
                 if self._message_done:
                     self._app_has_it = False  # the refused request is not the one the application has
+                elif cycle is not None and self.pipeline and self.pipeline[0][0] is cycle:
+                    # The refused request (a broken chunked body, say) waits behind another: it never
+                    # reaches the application, and its refusal follows the reply of the one ahead.
+                    self.pipeline.popleft()
+                    self.cycle = cycle = self._ahead
+                    self._app_has_it, self._message_done = False, True
                 self._count(status)
                 if self._message_done and cycle is not None and not cycle.response_complete:
                     self._deferred = reply  # written by on_response_complete
@@ -374,7 +408,7 @@ class ConnectionGuard:
 
             def _should_upgrade(self) -> bool:
                 # True: the request is left alone (no checks, no cycle, no body), and _feed parses it
-                # again. CONNECT asks for a tunnel, not an upgrade: it is answered as it was parsed (405).
+                # again. CONNECT asks for a tunnel, not an upgrade: on_headers_complete answers it 501.
                 return bool(self.parser.should_upgrade()) and self.parser.get_method() != b"CONNECT"
 
             def _without_upgrade(self, rest: bytes) -> None:
@@ -421,16 +455,22 @@ class ConnectionGuard:
                     # with two (a proxy in front may have read the other one), or with one that is no host.
                     self.send_400_response("Host missing, repeated or invalid")
                     return
+                if self.parser.get_method() == b"CONNECT":
+                    self._close_with(guard.no_tunnel, 501)
+                    return
+                if self.parser.get_http_version() == "1.0" and any(n == b"transfer-encoding" for n, _ in self.headers):
+                    guard.malformed_requests += 1
+                    self._close_with(guard.coding_in_http_1_0, 400)
+                    return
                 if self.url.split(b"?", 1)[0] not in _PROBE_TARGETS and not guard.request_may_start():
                     cycle: Any = self.cycle
                     pipelined = cycle is not None and not cycle.response_complete
-                    self._count(503)
                     if pipelined or not self.parser.should_keep_alive():
-                        self._disarm()
-                        self._refused = True  # the parser may still call back for the rest of this read
-                        self.transport.write(guard.busy)
-                        self.transport.close()
+                        # After the replies to the requests ahead of it (RFC 9112 §9.3.2): written at
+                        # once, it went out before them and the connection closed on them.
+                        self._close_with(guard.busy, 503)
                     else:
+                        self._count(503)
                         self._skipping = True
                         self.transport.write(guard.busy_keep_alive)
                         # The refusal goes out now; this connection's next request is read only after
@@ -447,6 +487,8 @@ class ConnectionGuard:
                 before = self.cycle
                 super().on_headers_complete()
                 cycle = self.cycle
+                # Kept only while the new request waits behind it (no finished cycle is held on to).
+                self._ahead = before if before is not None and not before.response_complete else None
                 # Made just now, for this request. A reply to HEAD is a head alone: uvicorn writes
                 # no body after it, so there is nothing to hold it for.
                 if cycle is not None and cycle is not before:
@@ -520,6 +562,14 @@ class ConnectionGuard:
                     return
                 guard.timed_out += 1
                 cycle: Any = self.cycle
+                if cycle is not None and (
+                    (self._message_done and not cycle.response_complete)
+                    or (self.pipeline and self.pipeline[0][0] is cycle)
+                ):
+                    # The stalled request waits behind one still being answered: its 408 follows that
+                    # reply (RFC 9112 §9.3.2), which closing now would have lost.
+                    self._close_with(guard.too_slow, 408)
+                    return
                 if cycle is None or not cycle.response_started:
                     self.transport.write(guard.too_slow)
                     self._count(408, guard.read_timeout)  # the deadline ran from when the timer was armed

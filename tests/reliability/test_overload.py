@@ -12,6 +12,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import json
+import re
 import select
 import socket
 import time
@@ -528,3 +529,84 @@ def test_a_client_that_half_closes_after_its_request_still_gets_the_reply(regist
             statuses = [int(part.split(b" ", 1)[0]) for part in answer.split(b"HTTP/1.1 ")[1:]]
             assert statuses == answers, (name, answer[:300])
             assert time.monotonic() - started < 5, name  # closed once answered, not at the read deadline
+
+
+@contextlib.contextmanager
+def _guarded_uvicorn(guard: Any, seconds: float) -> Iterator[tuple[str, int]]:
+    """A real uvicorn on loopback with ``guard``'s protocol, in front of an app that answers every
+    request 200 ``{}`` after ``seconds`` (so a reply is still pending when what follows it is read)."""
+    import threading
+
+    import uvicorn
+
+    async def app(scope: dict[str, Any], receive: Any, send: Any) -> None:
+        if scope["type"] != "http":
+            return
+        await asyncio.sleep(seconds)
+        await send({"type": "http.response.start", "status": 200, "headers": [(b"content-length", b"2")]})
+        await send({"type": "http.response.body", "body": b"{}"})
+
+    sock = socket.socket()
+    sock.bind(("127.0.0.1", 0))
+    config = uvicorn.Config(app, http=guard.protocol(), ws="none", lifespan="off", log_level="critical")
+    server = uvicorn.Server(config)
+    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
+    thread.start()
+    try:
+        deadline = time.monotonic() + 10
+        while not server.started and time.monotonic() < deadline:
+            time.sleep(0.01)
+        yield sock.getsockname()
+    finally:
+        server.should_exit = True
+        thread.join(10)
+        sock.close()
+
+
+def _statuses_until_closed(address: tuple[str, int], data: bytes) -> tuple[list[int], bytes]:
+    got = b""
+    with socket.create_connection(address, timeout=10) as s:
+        s.sendall(data)
+        while chunk := s.recv(65536):
+            got += chunk
+    return [int(m) for m in re.findall(rb"HTTP/1\.1 (\d{3}) ", got)], got
+
+
+_PROBE = b"GET /healthz HTTP/1.1\r\nHost: x\r\n\r\n"
+
+
+def test_a_pipelined_request_refused_by_the_request_limit_is_answered_after_the_requests_ahead() -> None:
+    # RFC 9112 §9.3.2: replies in request order. A request refused 503 at its headers behind another
+    # still being answered was refused at once and the connection closed: the reply ahead was lost
+    # and the client read the 503 as its first request's reply. The replica is made full by hand
+    # (probes are admitted whatever the count).
+    from textsieve.service.web.transport import ConnectionGuard
+
+    guard = ConnectionGuard(max_connections=8, read_timeout=5, min_requests=1, start_requests=1)
+    guard.inflight = 1  # the limit (1) is reached
+    with _guarded_uvicorn(guard, 0.2) as address:
+        post = b"POST /v1/predict HTTP/1.1\r\nHost: x\r\nContent-Length: 2\r\n\r\n{}"
+        statuses, got = _statuses_until_closed(address, _PROBE + post)
+    assert statuses == [200, 503], got
+    assert got.index(b"{}") < got.index(b"/problems/overloaded")  # the 503 is problem+json, after the 200
+    assert guard.refused_requests == 1
+
+
+@pytest.mark.parametrize(
+    "stalled",
+    [
+        pytest.param(b"POST /x HTTP/1.1\r\nHost: x\r\nContent-Length: 10\r\n\r\n{}", id="its body"),
+        pytest.param(b"POST /x HTTP/1.1\r\nHost: x\r\n", id="its head"),
+    ],
+)
+def test_a_pipelined_request_that_stalls_past_the_read_deadline_is_answered_408_after_the_requests_ahead(
+    stalled: bytes,
+) -> None:
+    # RFC 9112 §9.3.2, as above: the 408 was written at once, and the reply still pending was lost.
+    from textsieve.service.web.transport import ConnectionGuard
+
+    guard = ConnectionGuard(max_connections=8, read_timeout=0.3)
+    with _guarded_uvicorn(guard, 0.8) as address:
+        statuses, got = _statuses_until_closed(address, _PROBE + stalled)
+    assert statuses == [200, 408], got
+    assert guard.timed_out == 1 and b"/problems/request-timeout" in got.split(b"{}", 1)[1]

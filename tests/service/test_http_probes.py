@@ -355,3 +355,152 @@ def test_concurrent_large_requests_never_lose_a_worker(tmp_path: Path, tiny_bund
             assert asyncio.run(burst(large, 4)) == ["200"] * 4
             assert asyncio.run(burst(small, 24)) == ["200"] * 24
         assert "stopped" not in server.output()
+
+
+# -- framing an HTTP/1.0 request cannot have, and a method asking for a tunnel ---------------------
+def test_an_http_1_0_request_with_a_transfer_coding_is_refused_400_and_closed(probed: tuple[str, Path]) -> None:
+    # RFC 9112 §6.1: a server that receives a request message with a transfer coding in HTTP/1.0 "MUST
+    # treat it as if the framing is faulty" and close the connection. It was read as chunked and
+    # answered 200, so a proxy in front that reads HTTP/1.0 framing (no chunking) saw another body.
+    chunked = b"%x\r\n%s\r\n0\r\n\r\n" % (len(_BODY), _BODY)
+    request = b"POST /v1/predict HTTP/1.0\r\nContent-Type: application/json\r\nTransfer-Encoding: chunked\r\n\r\n"
+    ((status, body),) = _replies_until_closed(probed[0], request + chunked)
+    assert status == 400 and body["type"] == "/problems/malformed-request"
+    assert "HTTP/1.0" in body["detail"] and "Transfer-Encoding" in body["detail"]
+    assert "Content-Length" in body["detail"]  # what is allowed instead
+    # The same body framed by Content-Length is read as before.
+    framed = b"POST /v1/predict HTTP/1.0\r\nContent-Type: application/json\r\nContent-Length: %d\r\n\r\n" % len(_BODY)
+    ((status, body),) = _replies_until_closed(probed[0], framed + _BODY)
+    assert status == 200 and body["model"] == MODEL
+
+
+def test_connect_is_answered_501_as_a_method_this_origin_server_does_not_implement(probed: tuple[str, Path]) -> None:
+    # RFC 9110 §9.3.6: CONNECT asks a proxy for a tunnel, and "most origin servers do not implement
+    # CONNECT"; §9.1: a method the origin server does not implement SHOULD be answered 501. (405 would
+    # need an Allow for the target, and an authority-form target names no resource here.) It was a 400
+    # "not valid HTTP", though the code's comment promised a 405.
+    ((status, body),) = _replies_until_closed(probed[0], b"CONNECT x:443 HTTP/1.1\r\nHost: x:443\r\n\r\n")
+    assert status == 501 and body["type"] == "/problems/unknown-method"
+    assert "CONNECT" in body["detail"] and "GET, HEAD and POST" in body["detail"]
+
+
+def _first_reply(url: str, head: bytes) -> tuple[int, dict[str, Any]]:
+    """Send a request's head alone (its body held back, as a client that expects 100-continue does)
+    and read the first reply: an interim 100 is returned as it is, with an empty body."""
+    host, port = url.removeprefix("http://").split(":")
+    got = b""
+    with socket.create_connection((host, int(port)), timeout=10) as s:
+        s.sendall(head)
+        while b"\r\n\r\n" not in got and (chunk := s.recv(65536)):
+            got += chunk
+        if got.startswith(b"HTTP/1.1 100 "):
+            return 100, {}
+        while chunk := s.recv(65536):  # a refusal closes the connection: its body is never read
+            got += chunk
+    return _replies_from(got)[0]
+
+
+def _replies_from(got: bytes) -> list[tuple[int, dict[str, Any]]]:
+    replies = []
+    while got:
+        head, _, rest = got.partition(b"\r\n\r\n")
+        lines = head.decode("latin-1").split("\r\n")
+        fields = dict(line.lower().split(": ", 1) for line in lines[1:])
+        length = int(fields["content-length"])
+        replies.append((int(lines[0].split(" ")[1]), json.loads(rest[:length]) if length else {}))
+        got = rest[length:]
+    return replies
+
+
+_EXPECT = b"Expect: 100-continue\r\nHost: x\r\n"
+
+
+# RFC 9110 §10.1.1: a server that receives 100-continue may answer with a final status instead of
+# 100 when the request's headers already decide it, so the client does not send the body for nothing.
+@pytest.mark.parametrize(
+    ("head", "status", "field"),
+    [
+        pytest.param(
+            b"POST /v1/predict?model=x HTTP/1.1\r\nContent-Type: application/json\r\n",
+            422,
+            "query",
+            id="a query string",
+        ),
+        pytest.param(b"POST /v1/predict HTTP/1.1\r\nContent-Type: text/plain\r\n", 422, "body", id="text/plain"),
+        pytest.param(
+            b"POST /v1/verdicts HTTP/1.1\r\nContent-Type: application/x-www-form-urlencoded\r\nAuthorization: Bearer "
+            + REVIEW_TOKEN.encode()
+            + b"\r\n",
+            422,
+            "body",
+            id="a form to a route with a token",
+        ),
+        pytest.param(
+            b"POST /v1/models/%s/rollback?x=1 HTTP/1.1\r\nContent-Type: application/json\r\n" % MODEL.encode()
+            + b"Authorization: Bearer %s\r\n" % ADMIN_TOKEN.encode(),
+            422,
+            "query",
+            id="a query string on an admin route",
+        ),
+        pytest.param(
+            b"POST /v1/predict HTTP/1.1\r\nContent-Type: application/json\r\n", 413, None, id="over the limit"
+        ),
+        pytest.param(
+            b"POST /v1/models/%s/rollback HTTP/1.1\r\nContent-Type: application/json\r\n" % MODEL.encode(),
+            401,
+            None,
+            id="no admin token",
+        ),
+        pytest.param(
+            b"POST /v1/verdicts HTTP/1.1\r\nContent-Type: application/json\r\nAuthorization: "
+            + _WRONG.encode()
+            + b"\r\n",
+            403,
+            None,
+            id="a wrong reviewer token",
+        ),
+        pytest.param(b"POST /v1/nowhere?x=1 HTTP/1.1\r\nContent-Type: text/plain\r\n", 404, None, id="an unknown path"),
+    ],
+)
+def test_expect_100_continue_gets_the_refusal_instead_when_the_headers_decide_it(
+    probed: tuple[str, Path], head: bytes, status: int, field: str | None
+) -> None:
+    length = 10**9 if status == 413 else len(_BODY)
+    reply = _first_reply(probed[0], head + _EXPECT + b"Content-Length: %d\r\n\r\n" % length)
+    assert reply[0] == status, reply
+    assert reply[1]["status"] == status and reply[1]["detail"]
+    if field is not None:
+        assert reply[1]["errors"][0]["field"] == field
+        # The same problem as when the body is sent without the expectation.
+        host_line = b"Host: x\r\n"
+        whole = head + host_line + b"Connection: close\r\nContent-Length: %d\r\n\r\n" % len(_BODY) + _BODY
+        ((plain_status, plain),) = _replies_until_closed(probed[0], whole)
+        assert (plain_status, plain["detail"], plain["errors"]) == (status, reply[1]["detail"], reply[1]["errors"])
+
+
+@pytest.mark.parametrize(
+    "head",
+    [
+        pytest.param(b"POST /v1/predict HTTP/1.1\r\nContent-Type: application/json\r\n", id="predict"),
+        pytest.param(b"POST /v1/predict HTTP/1.1\r\nContent-Type: application/json; charset=utf-8\r\n", id="charset"),
+        pytest.param(b"POST /v1/predict HTTP/1.1\r\nContent-Type: application/problem+json\r\n", id="+json"),
+    ],
+)
+def test_expect_100_continue_still_gets_100_when_the_body_may_change_the_answer(
+    probed: tuple[str, Path], head: bytes
+) -> None:
+    assert _first_reply(probed[0], head + _EXPECT + b"Content-Length: %d\r\n\r\n" % len(_BODY))[0] == 100
+
+
+def test_a_broken_chunked_body_queued_behind_another_request_is_refused_after_its_reply(
+    probed: tuple[str, Path],
+) -> None:
+    # RFC 9112 §9.3.2: replies in request order. The second request's chunked framing breaks while the
+    # first is still being answered: its 400 went out at once and the connection closed, so the
+    # first request's reply was lost (and the client read the 400 as that reply).
+    broken = _PREDICT + b"Transfer-Encoding: chunked\r\n\r\nzz\r\n" + _BODY + b"\r\n0\r\n\r\n"
+    replies = _replies_until_closed(probed[0], _FRAMED + broken)
+    assert [status for status, _ in replies] == [200, 400]
+    assert replies[0][1]["model"] == MODEL and replies[1][1]["type"] == "/problems/malformed-request"
+    replies = _replies_until_closed(probed[0], _FRAMED + _FRAMED + broken)
+    assert [status for status, _ in replies] == [200, 200, 400]
