@@ -6,10 +6,12 @@
 The app (``create_app``, the predict lane, the batcher, the access log and metrics, as
 ``textsieve serve`` configures them) is called as an ASGI callable by 32 in-process clients, each
 sending its next request when the last is answered; the worker processes are loaded as in the
-server, but once one real reply has been read, each batch is answered at once with copies of it,
-so what is counted is the app's own Python: validation, the lane, the batcher's queue and
-dispatch, routing the replies, the access log, the metrics. ``--floor`` calls the HTTP floor's app
-(bench/http_floor.py: the same body parsed and validated, a fixed reply) the same way.
+server, but once one real reply has been read, each batch is answered at the worker's pipe with
+copies of it (the loop still pickles each batch and reads, unpickles and routes each reply), so
+what is counted is the app's own Python, the loop's side of the pipe included: validation, the
+lane, the batcher's queue and dispatch, routing the replies, the access log, the metrics.
+``--floor`` calls the HTTP floor's app (bench/http_floor.py: the same body parsed and validated, a
+fixed reply) the same way.
 
 By default it prints CPU µs per request (process CPU time over the window). Machine speed moves
 that by ±20 % between runs here, so ``--instructions`` runs the same under valgrind's callgrind
@@ -124,8 +126,6 @@ async def measure(app: Any, body_list: list[bytes], requests: int) -> float:
 
 
 async def service(body_list: list[bytes], requests: int) -> float:
-    import numpy as np
-
     from textsieve.service import logs
     from textsieve.service.settings import load_settings
     from textsieve.service.web.app import create_app
@@ -145,35 +145,81 @@ async def service(body_list: list[bytes], requests: int) -> float:
         procs = app.state.pool.procs
         if procs is None:
             raise SystemExit("needs TEXTSIEVE_INFERENCE=processes (the default)")
-        real = procs.run_async
-        canned: dict[Any, Any] = {}
-
-        def answer(key: Any, texts: list[str], ks: list[int], review: Any, *, drift: bool, executor: Any) -> Any:
-            if key not in canned:  # the first batch of a version goes to a worker; its reply is kept
-                fut = real(key, texts, ks, review, drift=drift, executor=executor)
-                fut.add_done_callback(lambda f: canned.setdefault(key, f.result()))
-                return fut
-            results, tokens, unknown, truncated, best, top, counts = canned[key]
-            n = len(texts)
-            fut = asyncio.get_running_loop().create_future()
-            fut.set_result(
-                (
-                    [results[0]] * n,
-                    tokens * n,
-                    unknown * n,
-                    truncated * n,
-                    np.repeat(best[:1], n),
-                    np.repeat(top[:1], n),
-                    counts,
-                )
-            )
-            return fut
-
-        procs.run_async = answer
+        answer_from_copies(asyncio.get_running_loop())
         try:
             return await measure(app, body_list, requests)
         finally:
+            stop_answering_from_copies()
             shutil.rmtree(folder, ignore_errors=True)
+
+
+real_submit: Any = None
+
+
+def answer_from_copies(loop: asyncio.AbstractEventLoop) -> None:
+    """Each worker's replies made from copies of its first real one, fed to the loop as if read off
+    the pipe: the loop still pickles each batch, reads, unpickles and routes each reply as in the
+    server, and no worker computes. Until a worker's first reply has come back, and while a real
+    batch is still in its pipe, batches go to the real worker (its replies come back in order)."""
+    global real_submit
+    import struct
+    from concurrent.futures import Future
+    from multiprocessing.reduction import ForkingPickler
+
+    import orjson
+
+    from textsieve.service.inference import workers
+
+    real_submit = workers._Worker.submit
+    first: dict[Any, Any] = {}  # key -> the first real reply's value
+    real: dict[int, int] = {}  # worker index -> real batches in its pipe
+    framed: dict[Any, bytes] = {}  # (key, shape) -> the copied reply as the worker would write it
+
+    def copy_of(msg: Any) -> bytes:
+        value = first[msg.key]
+        replies, tokens, unknown, truncated, best, top, counts = value
+        n = len(msg.texts)
+        shape = tuple(msg.pieces) if hasattr(msg, "pieces") else n
+        if (msg.key, shape) not in framed:
+            if hasattr(msg, "pieces"):  # a reply body a piece of the batch (since 2026-12-05)
+                first_body = replies[0]
+                head = first_body[: first_body.index(b'"results":') + len(b'"results":')]
+                one = orjson.dumps(orjson.loads(first_body)["results"][0])
+                copies = [head + b"[" + b",".join([one] * k) + b"]}" for k in msg.pieces]
+            else:  # a reply a text
+                copies = [replies[0]] * n
+            reply = (copies, tokens, unknown, truncated, best[:4] * n, top[:8] * n, counts)
+            body = ForkingPickler.dumps((workers.Outcome.OK.value, reply))
+            framed[msg.key, shape] = struct.pack("!i", len(body)) + bytes(body)
+        return framed[msg.key, shape]
+
+    def submit(self: Any, msg: Any, payload: Any = None, waiter: Any = None) -> Any:
+        if isinstance(msg, workers.Run) and msg.key in first and not real.get(self.index):
+            fut = Future() if waiter is None else waiter
+            replies = self.replies
+            with self.send_lock:
+                replies.pending.append(fut)
+            loop.call_soon(replies.feed, copy_of(msg))
+            return self.generation, fut
+        gen, fut = real_submit(self, msg, payload, waiter)
+        if isinstance(msg, workers.Run):
+            real[self.index] = real.get(self.index, 0) + 1
+
+            def arrived(f: Any, key: Any = msg.key, index: int = self.index) -> None:
+                real[index] -= 1
+                if not f.cancelled() and f.exception() is None and f.result()[0] == workers.Outcome.OK:
+                    first.setdefault(key, f.result()[1])
+
+            fut.add_done_callback(arrived)
+        return gen, fut
+
+    workers._Worker.submit = submit  # type: ignore[method-assign]
+
+
+def stop_answering_from_copies() -> None:
+    from textsieve.service.inference import workers
+
+    workers._Worker.submit = real_submit  # type: ignore[method-assign]
 
 
 async def floor(body_list: list[bytes], requests: int) -> float:

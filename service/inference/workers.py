@@ -30,6 +30,7 @@ import asyncio
 import atexit
 import contextlib
 import gc
+import io
 import itertools
 import logging
 import multiprocessing
@@ -81,6 +82,12 @@ class Run:
     ks: list[int]
     review: float | None = None  # the model's review threshold: results below it get needs_review
     drift: bool = False
+
+    def __reduce__(self) -> tuple[type[Run], tuple[Key, list[str], list[int], float | None, bool]]:
+        """Pickled as one call with the fields: a frozen dataclass with slots otherwise pickles
+        through its Python ``__getstate__`` and ``__setstate__``, field by field, on the event loop
+        for every batch and again in the worker (bench/README.md, "A batch on the pipe")."""
+        return (Run, (self.key, self.texts, self.ks, self.review, self.drift))
 
 
 @dataclass(frozen=True, slots=True)
@@ -256,9 +263,19 @@ SEND_FROM_LOOP_MAX_BYTES = 64 * 1024
 PIPELINE = 2  # batches in flight per worker process: one computing, the next waiting in its pipe
 
 
+class _MessagePickler(ForkingPickler):
+    """``ForkingPickler`` without the copy of copyreg's whole dispatch table each one makes (about a
+    third of a batch's pickling on the event loop): a message holds nothing that needs its reducers."""
+
+    def __init__(self, file: io.BytesIO) -> None:
+        super(ForkingPickler, self).__init__(file)  # pickle.Pickler's own, at ForkingPickler.dumps' protocol
+
+
 def pickled(msg: Message) -> bytes:
-    """``msg`` as ``Connection.send`` would put it on the pipe (the worker's ``recv`` reads either)."""
-    return bytes(ForkingPickler.dumps(msg))
+    """``msg`` as ``Connection.send`` would put it on the pipe, byte for byte."""
+    buf = io.BytesIO()
+    _MessagePickler(buf).dump(msg)
+    return buf.getvalue()
 
 
 def _value(status: Outcome | str, value: Any) -> Any:

@@ -549,3 +549,29 @@ def test_a_batch_sent_while_a_replaced_worker_reloads_waits_for_its_version(
     finally:
         monkeypatch.undo()
         procs.shutdown()
+
+
+def test_a_batch_is_pickled_as_connection_send_would_and_rebuilt_by_one_call() -> None:
+    """The loop pickles each batch itself (``pickled``) and the worker reads it with ``recv``: the
+    bytes are ``ForkingPickler.dumps``' own. A Run is rebuilt by one call with its fields, not
+    through a frozen dataclass's per-field ``__setstate__`` (pickle's BUILD opcode), which cost the
+    loop and the worker Python calls a batch (bench/README.md, "A batch on the pipe")."""
+    import pickletools
+    from multiprocessing.reduction import ForkingPickler
+
+    from textsieve.service.inference.workers import Drop, Held, Load, Score, pickled
+
+    run = Run(("m", 1, 1), [*TEXTS, "", "\ud800 lone"], list(range(len(TEXTS) + 2)), 0.25, True)
+    for msg in (
+        run,
+        Run(("m", 2, 1), [], []),
+        Load(("m", 1, 1), "/b", 16),
+        Score(("m", 1, 1), ["a"]),
+        Drop(("m", 1, 1)),
+        Held(),
+    ):
+        payload = pickled(msg)
+        assert payload == bytes(ForkingPickler.dumps(msg))
+        assert ForkingPickler.loads(payload) == msg
+    ops = [op.name for op, _, _ in pickletools.genops(pickled(run))]
+    assert "BUILD" not in ops and ops[-2:] == ["MEMOIZE", "STOP"] and "REDUCE" in ops

@@ -1,0 +1,95 @@
+"""Instructions a batch costs on each side of a worker's pipe: the loop pickling a Run, the worker
+reading it back, under callgrind.
+
+    PYTHONPATH=<checkout> PYTHONSAFEPATH=1 .venv/bin/python bench/pipe_instructions.py [--texts 16]
+
+``bench/loop_cost.py`` counts the loop's side inside a whole request, whose count moves ~1.5 %
+between runs; this counts the pipe alone, on 2,000 batches of the bench's texts (each a fresh
+``str``, as a request's are: none has its UTF-8 cached yet, and each was encoded once before, as
+``text_refusal`` does), ``workers.pickled`` on the loop's side and ``ForkingPickler.loads`` (what
+``Connection.recv`` does) on the worker's. Run it from two checkouts to compare them
+(bench/README.md, "A batch on the pipe").
+"""
+
+from __future__ import annotations
+
+import argparse
+import gc
+import os
+import re
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE))
+
+from texts import bench_texts  # noqa: E402
+
+BATCHES = 2000
+
+
+def _callgrind(on: bool) -> None:
+    subprocess.run(["callgrind_control", "-i", "on" if on else "off", str(os.getpid())], capture_output=True)
+
+
+def measure(side: str, n: int) -> None:
+    """Under callgrind: instrumentation on only while ``side`` handles the batches."""
+    from multiprocessing.reduction import ForkingPickler
+
+    from textsieve.service.inference.workers import Run, pickled
+
+    texts = bench_texts(4000)
+
+    def batches() -> list[Run]:
+        starts = [i * n % 3000 for i in range(BATCHES)]
+        return [
+            Run(("bench", 1, 1), [t.encode().decode() for t in texts[s : s + n]], [3] * n, 0.5, True) for s in starts
+        ]
+
+    payloads = [pickled(b) for b in batches()]
+    msgs = batches()
+    for m in msgs:
+        [t.encode("utf-8") for t in m.texts]  # text_refusal's check: no UTF-8 cached on the str
+    gc.disable()
+    _callgrind(True)
+    if side == "loop":
+        for m in msgs:
+            pickled(m)
+    else:
+        for p in payloads:
+            ForkingPickler.loads(p)
+    _callgrind(False)
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--texts", type=int, default=16, help="texts a batch")
+    parser.add_argument("--side", choices=["loop", "worker"], help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.side:
+        measure(args.side, args.texts)
+        return 0
+    if shutil.which("valgrind") is None or shutil.which("callgrind_control") is None:
+        print("needs valgrind (apt-get install valgrind)", file=sys.stderr)
+        return 2
+    for side in ("loop", "worker"):
+        cmd = ["valgrind", "--tool=callgrind", "--instr-atstart=no", "--callgrind-out-file=/dev/null"]
+        env = os.environ | {"PYTHONMALLOC": "malloc"}
+        run = subprocess.run(
+            [*cmd, sys.executable, __file__, "--side", side, "--texts", str(args.texts)],
+            env=env,
+            capture_output=True,
+            text=True,
+        )
+        found = re.search(r"Collected : (\d+)", run.stderr)
+        if run.returncode != 0 or found is None:
+            print(run.stdout + run.stderr[-3000:], file=sys.stderr)
+            return 1
+        print(f"{side}: {int(found.group(1)) / BATCHES:,.0f} instructions a batch of {args.texts} texts (callgrind)")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
