@@ -325,9 +325,40 @@ def _fit(
     return kept_words or widths
 
 
+# A value moved under its key (see key_values) is indented this much when that still fits.
+BELOW_INDENT = 2
+
+
 def key_values(rows: Sequence[tuple[str, object]], *, width: Width = "terminal") -> str:
-    """``key  value`` lines, keys padded to the longest; a long value wraps under its own start."""
-    return table(["", ""], rows, wrap_columns=(1,), width=width).split("\n", 1)[1]
+    """``key  value`` lines, keys padded to the longest; a long value wraps under its own start.
+
+    A value with no space in it (a sha256, a path) that would be split beside its key goes on the line
+    below the key instead, indented when that fits, whole: a digest cut in two cannot be copied or
+    compared. With room beside the key, or with no width to fit, it stays there."""
+    limit = terminal_width() if width == "terminal" else width
+    shown = [(one_line(str(k)), NONE if v is None else str(v)) for k, v in rows]
+    key_width = max((columns(k) for k, _ in shown), default=0)
+    lines: list[str] = []
+    run: list[tuple[str, object]] = []
+    for key, value in shown:
+        alone = one_line(value)
+        if limit is not None and " " not in alone and key_width + 2 + columns(alone) > limit:
+            if run:
+                lines += _key_value_lines(run, key_width, limit)
+                run = []
+            indent = " " * BELOW_INDENT if BELOW_INDENT + columns(alone) <= limit else ""
+            lines += [key, indent + alone]
+        else:
+            run.append((key, value))
+    if run:
+        lines += _key_value_lines(run, key_width, limit)
+    return "\n".join(lines)
+
+
+def _key_value_lines(rows: list[tuple[str, object]], key_width: int, limit: int | None) -> list[str]:
+    # Keys padded to the widest of all rows, so that values line up across the rows moved below.
+    padded = [(key + " " * (key_width - columns(key)), value) for key, value in rows]
+    return table(["", ""], padded, wrap_columns=(1,), width=limit).split("\n")[1:]
 
 
 __all__ = ["NONE", "columns", "key_values", "one_line", "table", "terminal_width", "wrap"]

@@ -20,7 +20,7 @@ import pytest
 from rich.cells import cell_len
 
 from tests.registry.test_cli import run
-from textsieve.registry.tables import one_line, table, terminal_width, wrap
+from textsieve.registry.tables import key_values, one_line, table, terminal_width, wrap
 
 WORD = "w" * 500  # one 500-character word: can only be split inside itself
 REASON = f"before\x1b[2Jafter\rreturn\nnewline\ttab {WORD} 汉字の理由を書きます、長い説明 end"
@@ -294,3 +294,41 @@ def test_gates_fits_80_columns_leaving_out_what_other_columns_say(
     monkeypatch.setenv("COLUMNS", "100")
     code, out, _ = run(capsys, "gates", "m", *r)
     assert "DEFAULT" in out.splitlines()[0] and "SOURCE" in out.splitlines()[0] and "left out" not in out
+
+
+def test_show_never_splits_a_sha256_and_keeps_it_beside_its_key_when_it_fits(
+    capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch, tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """Before: at 80 columns `show` split the 64-character manifest sha256 over two lines (62 + 2)."""
+    r = ["--registry", str(tmp_path / "reg")]
+    assert run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)[0] == 0
+    capsys.readouterr()
+    monkeypatch.delenv("COLUMNS", raising=False)  # captured output is no terminal: key and value on one line
+    code, out, _ = run(capsys, "show", "m", "1", *r)
+    wide = out.splitlines()
+    digest = next(ln.split()[-1] for ln in wide if ln.startswith("manifest sha256 "))
+    assert code == 0 and len(digest) == 64 and all(c in "0123456789abcdef" for c in digest), out
+    for columns_ in (80, 70):
+        monkeypatch.setenv("COLUMNS", str(columns_))
+        code, out, _ = run(capsys, "show", "m", "1", *r)
+        lines = out.splitlines()
+        fields = lines[: lines.index("files")]  # the files table (79 columns) is not fitted below that
+        assert code == 0 and all(cell_len(line) <= columns_ for line in fields), out
+        at = lines.index("manifest sha256")  # the key alone, the digest whole on the next line
+        assert lines[at + 1].strip() == digest, out
+        value_at = len("held-out metrics  ")  # the other values still start in one column (the longest key)
+        assert lines[at - 1][value_at - 1 : value_at + 1] == " -" and lines[at + 2][value_at - 1 : value_at + 1] == " v"
+    monkeypatch.setenv("COLUMNS", "120")  # room beside the key: as wide output
+    code, out, _ = run(capsys, "show", "m", "1", *r)
+    assert out.splitlines() == wide
+
+
+def test_key_values_puts_a_value_with_no_space_that_would_be_split_on_its_own_line() -> None:
+    digest = "0123456789abcdef" * 4
+    rows = [("manifest sha256", digest), ("reason", "a few words that wrap " * 3)]
+    text = key_values(rows, width=70)
+    lines = text.splitlines()
+    assert lines[:2] == ["manifest sha256", "  " + digest] and all(cell_len(ln) <= 70 for ln in lines), text
+    assert lines[2].startswith("reason           a few") and lines[3].startswith(" " * 17), text
+    assert key_values(rows, width=None).splitlines()[0] == "manifest sha256  " + digest
+    assert key_values([("k", digest)], width=65).splitlines() == ["k", digest]  # no room to indent: not split
