@@ -325,6 +325,12 @@ def _fit(
     return kept_words or widths
 
 
+def note(text: str, *, width: Width = "terminal") -> str:
+    """A line said after a table, wrapped to the terminal as the table's own notes are (whole when piped)."""
+    limit = terminal_width() if width == "terminal" else width
+    return one_line(text) if limit is None else "\n".join(wrap(text, limit))
+
+
 # A value moved under its key (see key_values) is indented this much when that still fits.
 BELOW_INDENT = 2
 
@@ -361,4 +367,4 @@ def _key_value_lines(rows: list[tuple[str, object]], key_width: int, limit: int 
     return table(["", ""], padded, wrap_columns=(1,), width=limit).split("\n")[1:]
 
 
-__all__ = ["NONE", "columns", "key_values", "one_line", "table", "terminal_width", "wrap"]
+__all__ = ["NONE", "columns", "key_values", "note", "one_line", "table", "terminal_width", "wrap"]

@@ -252,8 +252,9 @@ def test_history_gates_and_show_fit_columns_and_keep_the_whole_reason(
     ):
         monkeypatch.setenv("COLUMNS", str(width))
         code, out, _ = run(capsys, *argv, *r)
-        table_lines = [ln for ln in out.splitlines() if not ln.startswith("gates on promotion")]
-        assert code == 0 and all(cell_len(line) <= width for line in table_lines), argv
+        lines = out.splitlines()  # gates' line of gates in force after its table too
+        table_lines = lines[: next((i for i, ln in enumerate(lines) if ln.startswith("gates on")), None)]
+        assert code == 0 and all(cell_len(line) <= width for line in lines), argv
         assert _no_controls(out)
         start, end = _starts(table_lines[0], list(column))
         assert whole in "".join("".join(_cut(line, start, end).split()) for line in table_lines[1:]), argv
@@ -286,8 +287,10 @@ def test_gates_fits_80_columns_leaving_out_what_other_columns_say(
     capsys.readouterr()
     monkeypatch.setenv("COLUMNS", "80")
     code, out, _ = run(capsys, "gates", "m", *r)
-    lines = [ln for ln in out.splitlines() if not ln.startswith("gates on promotion")]
+    lines = out.splitlines()  # the line of gates in force after the table too (it was 225 columns)
     assert code == 0 and all(cell_len(line) <= 80 for line in lines), out
+    note = lines[next(i for i, ln in enumerate(lines) if ln.startswith("gates on promotion to live: ")) :]
+    assert len(note) > 1 and " ".join(note).endswith("of at least 50 texts and 5 per label"), out
     assert lines[0].split() == ["SETTING", "VALUE", "SET", "(UTC)", "BY", "WHY", "ALLOWED"]
     assert sum(line.endswith("1,000,000,000") for line in lines) == 3, out
     assert "(SOURCE, DEFAULT left out to fit 80 columns; COLUMNS=100 or a pipe shows every column)" in " ".join(lines)
