@@ -202,6 +202,19 @@ def test_versions_fits_80_and_60_columns_and_says_where_the_left_out_columns_are
         pytest.param("a\x85b", "a ↵ b", id="next line, C1 NEL, as a line break"),
         pytest.param("a\udcffb", "a\\udcffb", id="lone surrogate (bytes not UTF-8) escaped"),
         pytest.param("e\u0301 👍 王", "e\u0301 👍 王", id="combining mark, emoji and CJK kept"),
+        # The characters a label may not hold (textsieve/printable.py, PRECIS RFC 8264 §4.3): before, they
+        # were printed as they are, so "re\u200bfund" showed as "refund".
+        pytest.param("re\u200bfund", "re\\u200bfund", id="zero width space (Cf) escaped"),
+        pytest.param("re\u00adfund", "re\\xadfund", id="soft hyphen (Cf) escaped"),
+        pytest.param("a\ufeffb\u2060c", "a\\ufeffb\\u2060c", id="BOM and word joiner (Cf) escaped"),
+        pytest.param("a\ue000b", "a\\ue000b", id="private use (Co) escaped"),
+        pytest.param("a\U000f0000b", "a\\U000f0000b", id="supplementary private use (Co) escaped"),
+        pytest.param("a\u0378b\ufffe", "a\\u0378b\\ufffe", id="unassigned and noncharacter (Cn) escaped"),
+        # ZWNJ and ZWJ spell Persian and Indic words and join emoji (RFC 5892 appendix A): kept between
+        # two visible characters, escaped elsewhere, as printable.refused_character decides.
+        pytest.param("می\u200cخواهم", "می\u200cخواهم", id="ZWNJ inside a Persian word kept"),
+        pytest.param("👩\u200d💻", "👩\u200d💻", id="ZWJ in an emoji sequence kept"),
+        pytest.param("\u200dab \u200cc\u200d", "\\u200dab \\u200cc\\u200d", id="joiners at ends escaped"),
     ],
 )
 def test_characters_a_terminal_acts_on_are_shown_not_obeyed(text: str, expected: str) -> None:
@@ -335,3 +348,24 @@ def test_key_values_puts_a_value_with_no_space_that_would_be_split_on_its_own_li
     assert lines[2].startswith("reason           a few") and lines[3].startswith(" " * 17), text
     assert key_values(rows, width=None).splitlines()[0] == "manifest sha256  " + digest
     assert key_values([("k", digest)], width=65).splitlines() == ["k", digest]  # no room to indent: not split
+
+
+def test_a_stored_label_with_an_invisible_character_is_shown_escaped_in_every_table(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """Before: a version published before the label rule with "re\u200bfund" showed it as "refund" in
+    `show` and `versions`, the same as a label without it (PRECIS, RFC 8264: such names must not pass)."""
+    import shutil
+
+    from tests.helpers.registries import edit_manifest, publish_unchecked_labels
+    from textsieve.registry import open_registry
+
+    bundle = Path(shutil.copytree(tiny_bundles["a"], tmp_path / "old"))
+    labels = ["re\u200bfund", "bill\u00ading", "pr\ue000aise", "repair"]
+    edit_manifest(bundle, {"labels": labels})
+    with open_registry(tmp_path / "reg", create=True) as reg:
+        assert publish_unchecked_labels(reg, bundle, "m") == 1
+    r = ["--registry", str(tmp_path / "reg")]
+    code, out, _ = run(capsys, "show", "m", "1", *r)
+    assert code == 0 and "re\\u200bfund, bill\\xading, pr\\ue000aise, repair" in out, out
+    assert not any(c in out for c in "\u200b\u00ad\ue000")
