@@ -43,7 +43,8 @@ NONE = "-"
 # A wrapped column is never made narrower than this (or its header): narrower, a reason reads as a
 # column of syllables, and a line slightly wider than the terminal is the lesser harm.
 MIN_WRAPPED = 12
-# ... unless the terminal is too narrow for that; never below the widest escape (``\u202e``).
+# ... unless the terminal is too narrow for that; never below a BMP escape (``\u202e``; a wrap keeps
+# a longer one, ``\U000f0000``, whole on its own line).
 MIN_NARROW = 6
 # A terminal that reports no size (0 columns: some containers' pseudo-terminals) is taken as the
 # classic 80 (common practice).
