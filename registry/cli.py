@@ -621,7 +621,7 @@ def cli_gates(args: argparse.Namespace) -> int:
         else:
             settings, changed = reg.model_settings(args.model), None
     _out(settings_table(settings.in_group(Group.GATES)))
-    _out(gates_in_force(settings))
+    _out(tables.note(gates_in_force(settings)))
     if changed is not None:
         _out(f"changed: {', '.join(changed)}" if changed else "nothing changed: every value was already so")
     return 0

@@ -8,8 +8,11 @@ here once:
 - **Safe cells.** Reasons, labels, reviewer names and texts sent by clients are stored as written. A line
   break or tab would split a row; a C0 or C1 control character (ECMA-48: ESC starting a sequence that
   clears the screen or recolours what follows, BEL, CSI) would act on the operator's terminal; a bidi
-  override (Unicode UAX #9) would reorder the rest of the line. Line breaks are shown as ↵, a tab as a
-  space, every other such character as a visible escape (``\\x1b``, ``\\u202e``).
+  override (Unicode UAX #9) would reorder the rest of the line; a zero-width space, soft hyphen, private-use
+  or unassigned character would show nothing a reader can name, so "re\\u200bfund" would pass for "refund"
+  (what ``textsieve/printable.py`` keeps out of labels and names; ZWNJ and ZWJ between visible characters
+  stay). Line breaks are shown as ↵, a tab as a space, every other such character as a visible escape
+  (``\\x1b``, ``\\u202e``, ``\\u200b``).
 - **Widths** are terminal columns, not code points: East Asian Wide and Fullwidth characters take two,
   combining marks and zero-width format characters none (Unicode UAX #11), so CJK text stays aligned.
 - **Wrapping.** A table wider than the terminal wraps the columns its verb names as free text, at spaces
@@ -34,11 +37,14 @@ import unicodedata
 from collections.abc import Sequence
 from typing import Literal, TextIO
 
+from textsieve.printable import JOINERS, REFUSED_CATEGORIES
+
 NONE = "-"
 # A wrapped column is never made narrower than this (or its header): narrower, a reason reads as a
 # column of syllables, and a line slightly wider than the terminal is the lesser harm.
 MIN_WRAPPED = 12
-# ... unless the terminal is too narrow for that; never below the widest escape (``\u202e``).
+# ... unless the terminal is too narrow for that; never below a BMP escape (``\u202e``; a wrap keeps
+# a longer one, ``\U000f0000``, whole on its own line).
 MIN_NARROW = 6
 # A terminal that reports no size (0 columns: some containers' pseudo-terminals) is taken as the
 # classic 80 (common practice).
@@ -52,14 +58,25 @@ _BREAKS = {"\r\n", "\n", "\r", "\x0b", "\x0c", "\x85", "\u2028", "\u2029"}
 
 
 def _escape(c: str) -> str:
-    return f"\\x{ord(c):02x}" if ord(c) < 0x100 else f"\\u{ord(c):04x}"
+    n = ord(c)
+    return f"\\x{n:02x}" if n < 0x100 else f"\\u{n:04x}" if n < 0x10000 else f"\\U{n:08x}"
 
 
 def _unsafe(c: str) -> bool:
-    """A character a terminal acts on instead of showing: C0 and C1 controls (ECMA-48, category Cc), line
-    and paragraph separators, bidi formatting characters, and lone surrogates (bytes that were not UTF-8),
-    which cannot even be written to a UTF-8 stream."""
-    return unicodedata.category(c) in ("Cc", "Cs", "Zl", "Zp") or c in _BIDI
+    """A character a terminal acts on instead of showing, or that shows nothing a reader can name: C0 and
+    C1 controls (ECMA-48, category Cc), line and paragraph separators, lone surrogates (bytes that were
+    not UTF-8, which cannot even be written to a UTF-8 stream), and what a label may not hold
+    (``textsieve/printable.py``): format characters (Cf: bidi controls, U+200B ZERO WIDTH SPACE, U+00AD
+    SOFT HYPHEN), private use (Co) and unassigned code points (Cn)."""
+    return c in _BIDI or unicodedata.category(c) in REFUSED_CATEGORIES
+
+
+def _joining(text: str, at: int) -> bool:
+    """Whether ``text[at]`` is a ZWNJ or ZWJ between two visible characters, which a label may hold
+    (``textsieve/printable.py``: Persian and Indic words, emoji sequences) and is shown as it is."""
+    if text[at] not in JOINERS or at == 0 or at + 1 >= len(text):
+        return False
+    return not any(c.isspace() or unicodedata.category(c) == "Cf" for c in (text[at - 1], text[at + 1]))
 
 
 def _units(text: str) -> list[tuple[str, int]]:
@@ -77,7 +94,7 @@ def _units(text: str) -> list[tuple[str, int]]:
         i += 1
         if c == "\t":
             units.append((" ", 1))
-        elif _unsafe(c):
+        elif _unsafe(c) and not _joining(text, i - 1):
             shown = _escape(c)
             units.append((shown, len(shown)))
         elif units and _zero_width(c) and units[-1][0] not in (" ", "↵"):
@@ -99,7 +116,7 @@ def _char_columns(c: str) -> int:
 
 def one_line(text: str) -> str:
     """``text`` on one line and harmless to a terminal (line breaks as ↵, tabs as spaces, other control,
-    separator and bidi characters as escapes)."""
+    separator, format, private-use and unassigned characters as escapes, joiners in words kept)."""
     if text.isprintable():  # no Cc, Cf, Cs, Zl, Zp: nothing to replace
         return text
     return "".join(u for u, _ in _units(text))
@@ -325,9 +342,46 @@ def _fit(
     return kept_words or widths
 
 
+def note(text: str, *, width: Width = "terminal") -> str:
+    """A line said after a table, wrapped to the terminal as the table's own notes are (whole when piped)."""
+    limit = terminal_width() if width == "terminal" else width
+    return one_line(text) if limit is None else "\n".join(wrap(text, limit))
+
+
+# A value moved under its key (see key_values) is indented this much when that still fits.
+BELOW_INDENT = 2
+
+
 def key_values(rows: Sequence[tuple[str, object]], *, width: Width = "terminal") -> str:
-    """``key  value`` lines, keys padded to the longest; a long value wraps under its own start."""
-    return table(["", ""], rows, wrap_columns=(1,), width=width).split("\n", 1)[1]
+    """``key  value`` lines, keys padded to the longest; a long value wraps under its own start.
+
+    A value with no space in it (a sha256, a path) that would be split beside its key goes on the line
+    below the key instead, indented when that fits, whole: a digest cut in two cannot be copied or
+    compared. With room beside the key, or with no width to fit, it stays there."""
+    limit = terminal_width() if width == "terminal" else width
+    shown = [(one_line(str(k)), NONE if v is None else str(v)) for k, v in rows]
+    key_width = max((columns(k) for k, _ in shown), default=0)
+    lines: list[str] = []
+    run: list[tuple[str, object]] = []
+    for key, value in shown:
+        alone = one_line(value)
+        if limit is not None and " " not in alone and key_width + 2 + columns(alone) > limit:
+            if run:
+                lines += _key_value_lines(run, key_width, limit)
+                run = []
+            indent = " " * BELOW_INDENT if BELOW_INDENT + columns(alone) <= limit else ""
+            lines += [key, indent + alone]
+        else:
+            run.append((key, value))
+    if run:
+        lines += _key_value_lines(run, key_width, limit)
+    return "\n".join(lines)
 
 
-__all__ = ["NONE", "columns", "key_values", "one_line", "table", "terminal_width", "wrap"]
+def _key_value_lines(rows: list[tuple[str, object]], key_width: int, limit: int | None) -> list[str]:
+    # Keys padded to the widest of all rows, so that values line up across the rows moved below.
+    padded = [(key + " " * (key_width - columns(key)), value) for key, value in rows]
+    return table(["", ""], padded, wrap_columns=(1,), width=limit).split("\n")[1:]
+
+
+__all__ = ["NONE", "columns", "key_values", "note", "one_line", "table", "terminal_width", "wrap"]

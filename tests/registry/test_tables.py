@@ -20,7 +20,7 @@ import pytest
 from rich.cells import cell_len
 
 from tests.registry.test_cli import run
-from textsieve.registry.tables import one_line, table, terminal_width, wrap
+from textsieve.registry.tables import key_values, one_line, table, terminal_width, wrap
 
 WORD = "w" * 500  # one 500-character word: can only be split inside itself
 REASON = f"before\x1b[2Jafter\rreturn\nnewline\ttab {WORD} 汉字の理由を書きます、長い説明 end"
@@ -202,6 +202,19 @@ def test_versions_fits_80_and_60_columns_and_says_where_the_left_out_columns_are
         pytest.param("a\x85b", "a ↵ b", id="next line, C1 NEL, as a line break"),
         pytest.param("a\udcffb", "a\\udcffb", id="lone surrogate (bytes not UTF-8) escaped"),
         pytest.param("e\u0301 👍 王", "e\u0301 👍 王", id="combining mark, emoji and CJK kept"),
+        # The characters a label may not hold (textsieve/printable.py, PRECIS RFC 8264 §4.3): before, they
+        # were printed as they are, so "re\u200bfund" showed as "refund".
+        pytest.param("re\u200bfund", "re\\u200bfund", id="zero width space (Cf) escaped"),
+        pytest.param("re\u00adfund", "re\\xadfund", id="soft hyphen (Cf) escaped"),
+        pytest.param("a\ufeffb\u2060c", "a\\ufeffb\\u2060c", id="BOM and word joiner (Cf) escaped"),
+        pytest.param("a\ue000b", "a\\ue000b", id="private use (Co) escaped"),
+        pytest.param("a\U000f0000b", "a\\U000f0000b", id="supplementary private use (Co) escaped"),
+        pytest.param("a\u0378b\ufffe", "a\\u0378b\\ufffe", id="unassigned and noncharacter (Cn) escaped"),
+        # ZWNJ and ZWJ spell Persian and Indic words and join emoji (RFC 5892 appendix A): kept between
+        # two visible characters, escaped elsewhere, as printable.refused_character decides.
+        pytest.param("می\u200cخواهم", "می\u200cخواهم", id="ZWNJ inside a Persian word kept"),
+        pytest.param("👩\u200d💻", "👩\u200d💻", id="ZWJ in an emoji sequence kept"),
+        pytest.param("\u200dab \u200cc\u200d", "\\u200dab \\u200cc\\u200d", id="joiners at ends escaped"),
     ],
 )
 def test_characters_a_terminal_acts_on_are_shown_not_obeyed(text: str, expected: str) -> None:
@@ -252,8 +265,9 @@ def test_history_gates_and_show_fit_columns_and_keep_the_whole_reason(
     ):
         monkeypatch.setenv("COLUMNS", str(width))
         code, out, _ = run(capsys, *argv, *r)
-        table_lines = [ln for ln in out.splitlines() if not ln.startswith("gates on promotion")]
-        assert code == 0 and all(cell_len(line) <= width for line in table_lines), argv
+        lines = out.splitlines()  # gates' line of gates in force after its table too
+        table_lines = lines[: next((i for i, ln in enumerate(lines) if ln.startswith("gates on")), None)]
+        assert code == 0 and all(cell_len(line) <= width for line in lines), argv
         assert _no_controls(out)
         start, end = _starts(table_lines[0], list(column))
         assert whole in "".join("".join(_cut(line, start, end).split()) for line in table_lines[1:]), argv
@@ -286,11 +300,72 @@ def test_gates_fits_80_columns_leaving_out_what_other_columns_say(
     capsys.readouterr()
     monkeypatch.setenv("COLUMNS", "80")
     code, out, _ = run(capsys, "gates", "m", *r)
-    lines = [ln for ln in out.splitlines() if not ln.startswith("gates on promotion")]
+    lines = out.splitlines()  # the line of gates in force after the table too (it was 225 columns)
     assert code == 0 and all(cell_len(line) <= 80 for line in lines), out
+    note = lines[next(i for i, ln in enumerate(lines) if ln.startswith("gates on promotion to live: ")) :]
+    assert len(note) > 1 and " ".join(note).endswith("of at least 50 texts and 5 per label"), out
     assert lines[0].split() == ["SETTING", "VALUE", "SET", "(UTC)", "BY", "WHY", "ALLOWED"]
     assert sum(line.endswith("1,000,000,000") for line in lines) == 3, out
     assert "(SOURCE, DEFAULT left out to fit 80 columns; COLUMNS=100 or a pipe shows every column)" in " ".join(lines)
     monkeypatch.setenv("COLUMNS", "100")
     code, out, _ = run(capsys, "gates", "m", *r)
     assert "DEFAULT" in out.splitlines()[0] and "SOURCE" in out.splitlines()[0] and "left out" not in out
+
+
+def test_show_never_splits_a_sha256_and_keeps_it_beside_its_key_when_it_fits(
+    capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch, tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """Before: at 80 columns `show` split the 64-character manifest sha256 over two lines (62 + 2)."""
+    r = ["--registry", str(tmp_path / "reg")]
+    assert run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)[0] == 0
+    capsys.readouterr()
+    monkeypatch.delenv("COLUMNS", raising=False)  # captured output is no terminal: key and value on one line
+    code, out, _ = run(capsys, "show", "m", "1", *r)
+    wide = out.splitlines()
+    digest = next(ln.split()[-1] for ln in wide if ln.startswith("manifest sha256 "))
+    assert code == 0 and len(digest) == 64 and all(c in "0123456789abcdef" for c in digest), out
+    for columns_ in (80, 70):
+        monkeypatch.setenv("COLUMNS", str(columns_))
+        code, out, _ = run(capsys, "show", "m", "1", *r)
+        lines = out.splitlines()
+        fields = lines[: lines.index("files")]  # the files table (79 columns) is not fitted below that
+        assert code == 0 and all(cell_len(line) <= columns_ for line in fields), out
+        at = lines.index("manifest sha256")  # the key alone, the digest whole on the next line
+        assert lines[at + 1].strip() == digest, out
+        value_at = len("held-out metrics  ")  # the other values still start in one column (the longest key)
+        assert lines[at - 1][value_at - 1 : value_at + 1] == " -" and lines[at + 2][value_at - 1 : value_at + 1] == " v"
+    monkeypatch.setenv("COLUMNS", "120")  # room beside the key: as wide output
+    code, out, _ = run(capsys, "show", "m", "1", *r)
+    assert out.splitlines() == wide
+
+
+def test_key_values_puts_a_value_with_no_space_that_would_be_split_on_its_own_line() -> None:
+    digest = "0123456789abcdef" * 4
+    rows = [("manifest sha256", digest), ("reason", "a few words that wrap " * 3)]
+    text = key_values(rows, width=70)
+    lines = text.splitlines()
+    assert lines[:2] == ["manifest sha256", "  " + digest] and all(cell_len(ln) <= 70 for ln in lines), text
+    assert lines[2].startswith("reason           a few") and lines[3].startswith(" " * 17), text
+    assert key_values(rows, width=None).splitlines()[0] == "manifest sha256  " + digest
+    assert key_values([("k", digest)], width=65).splitlines() == ["k", digest]  # no room to indent: not split
+
+
+def test_a_stored_label_with_an_invisible_character_is_shown_escaped_in_every_table(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path]
+) -> None:
+    """Before: a version published before the label rule with "re\u200bfund" showed it as "refund" in
+    `show` and `versions`, the same as a label without it (PRECIS, RFC 8264: such names must not pass)."""
+    import shutil
+
+    from tests.helpers.registries import edit_manifest, publish_unchecked_labels
+    from textsieve.registry import open_registry
+
+    bundle = Path(shutil.copytree(tiny_bundles["a"], tmp_path / "old"))
+    labels = ["re\u200bfund", "bill\u00ading", "pr\ue000aise", "repair"]
+    edit_manifest(bundle, {"labels": labels})
+    with open_registry(tmp_path / "reg", create=True) as reg:
+        assert publish_unchecked_labels(reg, bundle, "m") == 1
+    r = ["--registry", str(tmp_path / "reg")]
+    code, out, _ = run(capsys, "show", "m", "1", *r)
+    assert code == 0 and "re\\u200bfund, bill\\xading, pr\\ue000aise, repair" in out, out
+    assert not any(c in out for c in "\u200b\u00ad\ue000")

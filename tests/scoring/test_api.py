@@ -49,8 +49,9 @@ def test_the_readme_example_runs_as_written(tiny_bundles: dict[str, Path], tmp_p
     lines = out.getvalue().splitlines()
     assert lines[0] == "helpdesk 1 ['account', 'billing', 'praise', 'repair']"
     assert len(lines) >= 3 and lines[1].split()[0] in {"account", "billing", "praise", "repair"}
-    # The frame's second text is missing: it keeps its row, with the reason instead of a label.
-    assert "text field 'text' is missing" in out.getvalue()
+    # The frame's second text is missing: it keeps its row, with the reason instead of a label (pandas'
+    # string column holds the None as NaN; print cuts the reason at its display width).
+    assert "text field 'text' is NaN (a missing value)" in out.getvalue()
 
 
 def test_predict_and_score_frame_equal_the_runtime_on_the_uci_sentences(scoring_registry: Path) -> None:
@@ -377,3 +378,18 @@ def test_a_model_pickles_for_worker_processes_and_refuses_a_changed_bundle(suppo
     shutil.rmtree(copy)
     with pytest.raises(BundleError, match="call load_model in this process"):
         pickle.loads(data)
+
+
+def test_score_frame_names_a_missing_value_as_what_it_is_and_says_what_is_allowed(support: Model) -> None:
+    """Before: None, NaN and NA in the text column read "text field 'text' is missing", as if the frame had no
+    such column; a JSON null in a file reads "is null, not a string" (RFC 8259 §3's name for it)."""
+    import numpy as np
+    import pandas as pd
+
+    texts = pd.Series(["refund my fee", None, np.nan, pd.NA, "the chain came off"], dtype=object)
+    errors = support.score_frame(pd.DataFrame({"text": texts}), "text")["error"].tolist()
+    assert errors[1:4] == [
+        f"text field 'text' is {shown} (a missing value), not a string with something to classify"
+        for shown in ("None", "NaN", "NA")
+    ]
+    assert pd.isna(errors[0]) and pd.isna(errors[4])

@@ -148,7 +148,7 @@ BAD_ROWS = [
         "text field 'text' has only whitespace and invisible characters (such as U+200B), no words",
     ),
     ({"other": "x"}, "text field 'text' is missing"),
-    ({"text": None}, "text field 'text' is missing"),
+    ({"text": None}, "text field 'text' is null, not a string"),  # present, unlike the row above
     # JSON's own names for its values (RFC 8259 §3); it said "an int", Python's word.
     ({"text": 42}, "text field 'text' is a number, not a string"),
     ({"text": ["a"]}, "text field 'text' is an array, not a string"),

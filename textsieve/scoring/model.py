@@ -126,10 +126,10 @@ class Model:
 
     def score_frame(self, frame: pd.DataFrame, column: str = "text", *, spans: int = 0) -> pd.DataFrame:
         """``frame`` with the result columns added (``label``, ``probability:LABEL`` each, ``spans`` when
-        asked, ``error``), the same columns ``textsieve score`` writes. Rows whose text is missing, empty,
-        not a string or refused by ``predict`` (a NUL, a lone surrogate) get ``error`` set and no label,
-        in the frame's own row order and index; an input column that a result column would shadow is
-        renamed ``input:NAME``."""
+        asked, ``error``), the same columns ``textsieve score`` writes. Rows whose text is missing (None,
+        NaN, NA: ``error`` names which), empty, not a string or refused by ``predict`` (a NUL, a lone
+        surrogate) get ``error`` set and no label, in the frame's own row order and index; an input column
+        that a result column would shadow is renamed ``input:NAME``."""
         import pandas as pd
 
         from textsieve.scoring.columns import plan
@@ -140,7 +140,9 @@ class Model:
         names = [str(c) for c in frame.columns]
         layout = plan(names, [], self.labels, spans=spans > 0)
         values: list[Any] = frame[column].tolist()
-        rows = [_row(column, v if isinstance(v, str) else None if _missing(pd, v) else v) for v in values]
+        rows = [
+            _missing_row(column, v) if not isinstance(v, str) and _missing(pd, v) else _row(column, v) for v in values
+        ]
         part = split(rows, column, strict=False, first_row=0)
         scored = score_texts(self._predictor, part.texts, spans)
         results = pd.DataFrame(output_rows(rows, part, scored, layout), index=frame.index, columns=layout.results)
@@ -164,6 +166,17 @@ def _check_frame(pd: Any, frame: object, column: object) -> None:
         raise InputError(f"no column {column!r} in the frame; it has: {shown}")
     if count > 1:
         raise InputError(f"the frame has {count} columns labelled {column!r}; give the text column a label of its own")
+
+
+def _missing_row(column: str, value: object) -> dict[str, Any]:
+    """A row whose text is pandas' missing value (None, NaN, NA, NaT), named as the frame holds it."""
+    from textsieve.scoring.rows import Misshapen
+
+    shown = "None" if value is None else {"nan": "NaN"}.get(str(value), str(value).strip("<>"))
+    return Misshapen(
+        {column: None},
+        f"text field {column!r} is {shown} (a missing value), not a string with something to classify",
+    )
 
 
 def _row(column: str, value: object) -> dict[str, Any]:

@@ -78,8 +78,10 @@ def text_problem(row: Any, field: str) -> str | None:
         return row.problem
     if not isinstance(row, dict):
         return "not a JSON object"
-    if field not in row or row[field] is None:
+    if field not in row:
         return f"text field {field!r} is missing"
+    if row[field] is None:  # JSON's null (RFC 8259 §3), Parquet's and Arrow's null
+        return f"text field {field!r} is null, not a string"
     value = row[field]
     if not isinstance(value, str):
         return f"text field {field!r} is {json_kind(value)}, not a string"
