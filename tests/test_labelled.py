@@ -9,6 +9,7 @@ from pathlib import Path
 
 import pytest
 
+from tests.helpers.printable import JOINED
 from textsieve.errors import InputError
 from textsieve.labelled import (
     LABEL_CHARACTERS,
@@ -321,9 +322,7 @@ def test_labels_refuse_what_names_refuse(tmp_path: Path, label: str, shown: str)
 @pytest.mark.parametrize(
     "label",
     [
-        pytest.param("\u0645\u06cc\u200c\u0646\u0627", id="Persian with a zero width non-joiner"),
-        pytest.param("\u0915\u094d\u200d\u0937", id="Devanagari half form with a zero width joiner"),
-        pytest.param("\U0001f469\u200d\U0001f4bb", id="emoji joined by a zero width joiner"),
+        *JOINED,
         pytest.param("Zoë's refund", id="Latin with a mark and an apostrophe"),
         pytest.param("退款", id="CJK"),
     ],

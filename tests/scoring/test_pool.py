@@ -35,6 +35,17 @@ def test_a_worker_sent_sigint_while_idle_goes_on_scoring(tiny_bundles: dict[str,
         pool.close()
 
 
+def _python(code: str, bundle: Path, **pipes: int) -> subprocess.Popen[str]:
+    """``code`` run by this Python in a process of its own, the bundle its one argument, its stdout a pipe."""
+    return subprocess.Popen(
+        [sys.executable, "-c", code, str(bundle)],
+        stdout=subprocess.PIPE,
+        text=True,
+        env=child_env() | {"PYTHONPATH": str(ROOT)},
+        **pipes,
+    )
+
+
 def _ended(pid: int) -> bool:
     """Whether ``pid`` has ended (gone, or a zombie waiting to be reaped: proc(5))."""
     try:
@@ -56,13 +67,7 @@ def test_the_workers_end_when_the_scoring_process_is_killed(tiny_bundles: dict[s
         "print(*pool._executor._processes, flush=True)\n"
         "sys.stdin.read()\n"
     )
-    proc = subprocess.Popen(
-        [sys.executable, "-c", code, str(tiny_bundles["a"])],
-        stdin=subprocess.PIPE,
-        stdout=subprocess.PIPE,
-        text=True,
-        env=child_env() | {"PYTHONPATH": str(ROOT)},
-    )
+    proc = _python(code, tiny_bundles["a"], stdin=subprocess.PIPE)
     assert proc.stdout is not None
     workers = [int(pid) for pid in proc.stdout.readline().split()]
     try:
@@ -105,13 +110,7 @@ def test_the_scoring_process_ends_when_a_worker_dies_halfway_through_a_result(
         "pool.close(cancel=True)\n"
         "print('closed', flush=True)\n"
     )
-    proc = subprocess.Popen(
-        [sys.executable, "-c", code, str(tiny_bundles["a"])],
-        stdout=subprocess.PIPE,
-        stderr=subprocess.PIPE,
-        text=True,
-        env=child_env() | {"PYTHONPATH": str(ROOT)},
-    )
+    proc = _python(code, tiny_bundles["a"], stderr=subprocess.PIPE)
     try:
         out, err = proc.communicate(timeout=30)
     except subprocess.TimeoutExpired:
