@@ -451,8 +451,8 @@ def test_a_labelled_file_refuses_what_the_service_refuses(tmp_path: Path, text: 
         assert message.endswith(why), message
 
 
-def _read_traced(path: Path) -> tuple[list[Example], int, list[int]]:
-    """``load_examples(path)``, what it allocated beyond the examples it kept at its peak (tracemalloc,
+def _read_traced(path: Path) -> tuple[list[Example], int, int, list[int]]:
+    """``load_examples(path)``, the bytes its examples keep and the peak while reading (tracemalloc,
     Python's own allocation tracer), and the byte counts it reported as progress."""
     import tracemalloc
 
@@ -463,7 +463,7 @@ def _read_traced(path: Path) -> tuple[list[Example], int, list[int]]:
         kept, peak = tracemalloc.get_traced_memory()
     finally:
         tracemalloc.stop()
-    return examples, peak - kept, reported
+    return examples, kept, peak, reported
 
 
 def test_json_lines_are_read_a_line_at_a_time(tmp_path: Path) -> None:
@@ -477,7 +477,8 @@ def test_json_lines_are_read_a_line_at_a_time(tmp_path: Path) -> None:
     ]
     path.write_text(_jsonl(*rows), encoding="utf-8")
     size = path.stat().st_size
-    examples, beyond, reported = _read_traced(path)
+    examples, kept, peak, reported = _read_traced(path)
+    beyond = peak - kept
     assert [e.text for e in examples] == [r["text"] for r in rows]
     assert beyond < size // 4, (beyond, size)
     assert sum(reported) == size and len(reported) == -(-size // (1 << 20))  # a call a MiB, the rest at the end
@@ -499,7 +500,8 @@ def test_csv_and_tsv_are_read_a_line_at_a_time(tmp_path: Path, suffix: str) -> N
         writer.writerow(["text", "label"])
         writer.writerows(rows)
     size = path.stat().st_size
-    examples, beyond, reported = _read_traced(path)
+    examples, kept, peak, reported = _read_traced(path)
+    beyond = peak - kept
     assert [(e.text, e.label) for e in examples] == rows  # Python's csv module wrote them
     assert beyond < size // 4, (beyond, size)
     assert sum(reported) == size and len(reported) == -(-size // (1 << 20))  # a call a MiB, the rest at the end
@@ -559,17 +561,9 @@ def test_a_json_array_is_read_an_item_at_a_time(tmp_path: Path) -> None:
     # Read whole, a JSON array was held three times over besides its examples (bytes, text, the
     # parsed list): tracemalloc's peak was 2.9× what the examples keep. Streamed, the peak is the
     # examples plus a window of one chunk.
-    import tracemalloc
-
     rows = [{"text": f"the dock at station {i} is broken again", "label": "ab"[i % 2], "id": i} for i in range(20_000)]
     path = _write(tmp_path / "d.json", json.dumps(rows, indent=1))
-    reported: list[int] = []
-    tracemalloc.start()
-    try:
-        examples = load_examples(path, progress=reported.append)
-        kept, peak = tracemalloc.get_traced_memory()
-    finally:
-        tracemalloc.stop()
+    examples, kept, peak, reported = _read_traced(path)
     assert examples == [Example(r["text"], r["label"]) for r in rows]
     assert peak < 1.3 * kept, f"peak {peak:,} bytes against {kept:,} kept"
     assert len(reported) > 1 and sum(reported) == path.stat().st_size, "the bar moves as the file is read"
