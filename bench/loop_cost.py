@@ -27,9 +27,7 @@ import asyncio
 import gc
 import logging
 import os
-import re
 import shutil
-import subprocess
 import sys
 import time
 from pathlib import Path
@@ -38,6 +36,7 @@ from typing import Any
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
+import callgrind  # noqa: E402
 import demo_model  # noqa: E402
 from run import SPANS, bodies  # noqa: E402
 from texts import bench_texts  # noqa: E402
@@ -102,7 +101,7 @@ async def drive(app: Any, body_list: list[bytes], total: int) -> None:
 
 def _callgrind(on: bool) -> None:
     if os.environ.get("LOOP_COST_CALLGRIND"):
-        subprocess.run(["callgrind_control", "-i", "on" if on else "off", str(os.getpid())], capture_output=True)
+        callgrind.instrument(on)
 
 
 def _flush_logs() -> None:
@@ -193,7 +192,7 @@ def answer_from_copies(loop: asyncio.AbstractEventLoop) -> None:
             framed[msg.key, shape] = struct.pack("!i", len(body)) + bytes(body)
         return framed[msg.key, shape]
 
-    def submit(self: Any, msg: Any, payload: Any = None, waiter: Any = None) -> Any:
+    def submit(self: Any, msg: Any, payload: Any = None, waiter: Any = None, *, wait: bool = True) -> Any:
         if isinstance(msg, workers.Run) and msg.key in first and not real.get(self.index):
             fut = Future() if waiter is None else waiter
             replies = self.replies
@@ -201,7 +200,7 @@ def answer_from_copies(loop: asyncio.AbstractEventLoop) -> None:
                 replies.pending.append(fut)
             loop.call_soon(replies.feed, copy_of(msg))
             return self.generation, fut
-        gen, fut = real_submit(self, msg, payload, waiter)
+        gen, fut = real_submit(self, msg, payload, waiter, wait=wait)
         if isinstance(msg, workers.Run):
             real[self.index] = real.get(self.index, 0) + 1
 
@@ -232,8 +231,7 @@ async def floor(body_list: list[bytes], requests: int) -> float:
 
 def under_callgrind(argv: list[str], requests: int) -> int:
     """This script again under callgrind, instrumented only while measuring: instructions a request."""
-    if shutil.which("valgrind") is None or shutil.which("callgrind_control") is None:
-        print("--instructions needs valgrind (apt-get install valgrind)", file=sys.stderr)
+    if not callgrind.available():
         return 2
     out = demo_model.CACHE / "work" / f"loop-cost-{os.getpid()}.callgrind"  # callgrind_annotate reads it
     out.parent.mkdir(parents=True, exist_ok=True)
@@ -247,13 +245,10 @@ def under_callgrind(argv: list[str], requests: int) -> int:
         "TEXTSIEVE_QUEUE_WAIT_MS": "60000",
     }
     args = [a for a in argv if a != "--instructions"]
-    cmd = ["valgrind", "--tool=callgrind", "--instr-atstart=no", f"--callgrind-out-file={out}"]
-    run = subprocess.run([*cmd, sys.executable, __file__, *args], env=env, capture_output=True, text=True)
-    found = re.search(r"Collected : (\d+)", run.stderr)
-    if run.returncode != 0 or found is None:
-        print(run.stdout + run.stderr[-3000:], file=sys.stderr)
+    counted = callgrind.collected([sys.executable, __file__, *args], env, str(out))
+    if counted is None:
         return 1
-    print(f"{int(found.group(1)) / requests:,.0f} instructions a request (callgrind, {requests} requests; {out})")
+    print(f"{counted / requests:,.0f} instructions a request (callgrind, {requests} requests; {out})")
     return 0
 
 

@@ -16,22 +16,16 @@ from __future__ import annotations
 import argparse
 import gc
 import os
-import re
-import shutil
-import subprocess
 import sys
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
+import callgrind  # noqa: E402
 from texts import bench_texts  # noqa: E402
 
 BATCHES = 2000
-
-
-def _callgrind(on: bool) -> None:
-    subprocess.run(["callgrind_control", "-i", "on" if on else "off", str(os.getpid())], capture_output=True)
 
 
 def measure(side: str, n: int) -> None:
@@ -53,14 +47,14 @@ def measure(side: str, n: int) -> None:
     for m in msgs:
         [t.encode("utf-8") for t in m.texts]  # text_refusal's check: no UTF-8 cached on the str
     gc.disable()
-    _callgrind(True)
+    callgrind.instrument(True)
     if side == "loop":
         for m in msgs:
             pickled(m)
     else:
         for p in payloads:
             ForkingPickler.loads(p)
-    _callgrind(False)
+    callgrind.instrument(False)
 
 
 def main() -> int:
@@ -71,23 +65,14 @@ def main() -> int:
     if args.side:
         measure(args.side, args.texts)
         return 0
-    if shutil.which("valgrind") is None or shutil.which("callgrind_control") is None:
-        print("needs valgrind (apt-get install valgrind)", file=sys.stderr)
+    if not callgrind.available():
         return 2
     for side in ("loop", "worker"):
-        cmd = ["valgrind", "--tool=callgrind", "--instr-atstart=no", "--callgrind-out-file=/dev/null"]
         env = os.environ | {"PYTHONMALLOC": "malloc"}
-        run = subprocess.run(
-            [*cmd, sys.executable, __file__, "--side", side, "--texts", str(args.texts)],
-            env=env,
-            capture_output=True,
-            text=True,
-        )
-        found = re.search(r"Collected : (\d+)", run.stderr)
-        if run.returncode != 0 or found is None:
-            print(run.stdout + run.stderr[-3000:], file=sys.stderr)
+        counted = callgrind.collected([sys.executable, __file__, "--side", side, "--texts", str(args.texts)], env)
+        if counted is None:
             return 1
-        print(f"{side}: {int(found.group(1)) / BATCHES:,.0f} instructions a batch of {args.texts} texts (callgrind)")
+        print(f"{side}: {counted / BATCHES:,.0f} instructions a batch of {args.texts} texts (callgrind)")
     return 0
 
 

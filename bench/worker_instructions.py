@@ -27,7 +27,6 @@ from __future__ import annotations
 import argparse
 import os
 import re
-import shutil
 import subprocess
 import sys
 from collections.abc import Callable
@@ -37,15 +36,12 @@ from typing import Any
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
+import callgrind  # noqa: E402
 import demo_model  # noqa: E402
 import inprocess  # noqa: E402
 from texts import bench_texts  # noqa: E402
 
 PASSES = 2
-
-
-def _callgrind(on: bool) -> None:
-    subprocess.run(["callgrind_control", "-i", "on" if on else "off", str(os.getpid())], capture_output=True)
 
 
 def inside(n_texts: int, spans: int) -> None:
@@ -60,10 +56,10 @@ def inside(n_texts: int, spans: int) -> None:
     work()  # warm: the encoder's chunk caches, onnxruntime's buffers
     gc.collect()
     gc.freeze()  # as a worker does once started
-    _callgrind(True)
+    callgrind.instrument(True)
     for _ in range(PASSES):
         work()
-    _callgrind(False)
+    callgrind.instrument(False)
 
 
 STEPS = (
@@ -103,9 +99,9 @@ def inside_steps(n_texts: int, spans_list: list[int]) -> None:
         for step in STEPS:
             if step == "windows" and k == 0:
                 continue  # batch_spans never finds windows for texts with no spans asked for
-            _callgrind(True)
+            callgrind.instrument(True)
             steps[step]()
-            _callgrind(False)
+            callgrind.instrument(False)
             subprocess.run(["callgrind_control", f"--dump={k}:{step}", str(os.getpid())], capture_output=True)
 
 
@@ -149,7 +145,7 @@ def count_steps(n_texts: int, spans_list: list[int], out: Path) -> dict[str, dic
     """Instructions a text of each step (``--steps``), from the dumps callgrind wrote."""
     for old in out.parent.glob(out.name + ".*"):
         old.unlink()
-    cmd = ["valgrind", "--tool=callgrind", "--instr-atstart=no", f"--callgrind-out-file={out}"]
+    cmd = callgrind.command(str(out))
     args = [sys.executable, __file__, "--inside-steps", "--texts", str(n_texts), "--spans", *map(str, spans_list)]
     run = subprocess.run([*cmd, *args], env=dict(os.environ), capture_output=True, text=True)
     if run.returncode != 0:
@@ -168,14 +164,11 @@ def count(n_texts: int, spans: int, out: Path) -> float:
     # Python's own allocator, as a worker has it: with PYTHONMALLOC=malloc (bench/loop_cost.py)
     # each small object's malloc and free cost several times pymalloc's, which weighs code that
     # makes many small objects (spans' dicts, offsets as ints) more than it weighs in a worker.
-    env = dict(os.environ)
-    cmd = ["valgrind", "--tool=callgrind", "--instr-atstart=no", f"--callgrind-out-file={out}"]
     args = [sys.executable, __file__, "--inside", "--texts", str(n_texts), "--spans", str(spans)]
-    run = subprocess.run([*cmd, *args], env=env, capture_output=True, text=True)
-    found = re.search(r"Collected : (\d+)", run.stderr)
-    if run.returncode != 0 or found is None:
-        raise SystemExit(run.stdout + run.stderr[-3000:])
-    return int(found.group(1)) / (n_texts * PASSES)
+    counted = callgrind.collected(args, os.environ, str(out))
+    if counted is None:
+        raise SystemExit(1)
+    return counted / (n_texts * PASSES)
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -192,8 +185,7 @@ def main(argv: list[str] | None = None) -> int:
     if args.inside_steps:
         inside_steps(args.texts, args.spans)
         return 0
-    if shutil.which("valgrind") is None or shutil.which("callgrind_control") is None:
-        print("needs valgrind (apt-get install valgrind)", file=sys.stderr)
+    if not callgrind.available():
         return 2
     work = demo_model.CACHE / "work"
     work.mkdir(parents=True, exist_ok=True)
