@@ -2,7 +2,8 @@
 
 The reference is ``str.encode("utf-8")`` (Python's strict UTF-8 codec, which refuses the code points
 U+D800–U+DFFF: RFC 3629 section 3, "the definition of UTF-8 prohibits encoding character numbers
-between U+D800 and U+DFFF") and the check as it was written before ``keep`` existed, copied below.
+between U+D800 and U+DFFF", quoted from memory) and the check as it was written before ``keep``
+existed, copied below.
 """
 
 from __future__ import annotations
@@ -112,8 +113,8 @@ def _fresh(text: str) -> str:
 def test_keep_leaves_the_utf8_form_on_the_string_for_the_pickler(text: str) -> None:
     # CPython 3.11 keeps PyUnicode_AsUTF8AndSize's result on a non-ASCII str (Objects/unicodeobject.c,
     # unicode_fill_utf8), which __sizeof__ counts: the UTF-8 bytes and a NUL. str.encode does not
-    # keep it. The C pickler (Modules/_pickle.c, write_unicode_binary) reads that form; what the
-    # pickler then skips is counted in bench/README.md ("A text encoded once on the loop").
+    # keep it. The C pickler (Modules/_pickle.c, save_unicode: callgrind names it) reads that form;
+    # what the pickler then skips is counted in bench/README.md ("A text encoded once on the loop").
     encoded = len(text.encode("utf-8")) + 1
     plain, kept = _fresh(text), _fresh(text)
     before = sys.getsizeof(plain)
