@@ -5,10 +5,10 @@ reading it back, under callgrind.
 
 ``bench/loop_cost.py`` counts the loop's side inside a whole request, whose count moves ~1.5 %
 between runs; this counts the pipe alone, on 2,000 batches of the bench's texts (each a fresh
-``str``, as a request's are: none has its UTF-8 cached yet, and each was encoded once before, as
-``text_refusal`` does), ``workers.pickled`` on the loop's side and ``ForkingPickler.loads`` (what
-``Connection.recv`` does) on the worker's. Run it from two checkouts to compare them
-(bench/README.md, "A batch on the pipe").
+``str``, as a request's are, checked beforehand by the checkout's ``PredictRequest``, which since
+2026-12-05 leaves a text's UTF-8 form on it for the pickler), ``workers.pickled`` on the loop's side
+and ``ForkingPickler.loads`` (what ``Connection.recv`` does) on the worker's. Run it from two
+checkouts to compare them (bench/README.md, "A batch on the pipe", "A text encoded once on the loop").
 """
 
 from __future__ import annotations
@@ -33,6 +33,7 @@ def measure(side: str, n: int) -> None:
     from multiprocessing.reduction import ForkingPickler
 
     from textsieve.service.inference.workers import Run, pickled
+    from textsieve.service.web.schemas import PredictRequest
 
     texts = bench_texts(4000)
 
@@ -44,8 +45,10 @@ def measure(side: str, n: int) -> None:
 
     payloads = [pickled(b) for b in batches()]
     msgs = batches()
-    for m in msgs:
-        [t.encode("utf-8") for t in m.texts]  # text_refusal's check: no UTF-8 cached on the str
+    for m in msgs:  # the request schema's check, on these very strs (pydantic keeps a str as it is)
+        checked = PredictRequest.model_validate({"texts": m.texts}).texts
+        if any(a is not b for a, b in zip(checked, m.texts, strict=True)):
+            raise SystemExit("PredictRequest copied the texts: the batch would not hold the checked strs")
     gc.disable()
     callgrind.instrument(True)
     if side == "loop":

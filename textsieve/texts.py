@@ -13,6 +13,7 @@ tokenizer spec.
 from __future__ import annotations
 
 import unicodedata
+from codecs import utf_8_encode
 
 
 def has_no_tokens(text: str) -> bool:
@@ -38,12 +39,23 @@ def nothing_to_classify(text: str) -> str | None:
     return None
 
 
-def text_refusal(text: str) -> str | None:
+def text_refusal(text: str, *, keep: bool = False) -> str | None:
     """Why a text sent to be classified is refused, or None: nothing to classify, a NUL (no human
     text holds one; C-based consumers cut strings at it), or a lone surrogate (JSON may carry
     ``"\\ud800"``; it is not text and cannot be encoded in a reply). The words the HTTP API
     (service/web/schemas.py), ``load_model(...).predict``, a verdict's text and a labelled file's
-    rows (textsieve/labelled.py) are refused with, after what names the text."""
+    rows (textsieve/labelled.py) are refused with, after what names the text.
+
+    ``keep=True`` leaves a non-ASCII text's UTF-8 form on the string, for a caller that pickles it
+    next (the service's event loop, sending a batch to a worker): ``str.encode`` makes a new bytes
+    object each call, while ``PyUnicode_AsUTF8AndSize`` stores the UTF-8 form on the str, and pickle's
+    C pickler, which calls it for every str, then copies that rather than encoding again.
+    ``codecs.utf_8_encode``'s ``errors`` argument goes through that call (Argument Clinic's ``str``
+    converter: a lone surrogate raises the same UnicodeEncodeError, ``start`` the same index) and,
+    with the empty string as what is encoded, is never otherwise read: no error handler is looked up,
+    even under ``-X dev`` (where ``"".encode("utf-8", text)`` looks one up and fails). The kept form
+    takes the UTF-8 length plus one byte and lives as long as the string, so readers that hold many
+    texts (a training file) leave ``keep`` off."""
     why = nothing_to_classify(text)
     if why is not None:
         return f"{why}; every text needs something to classify"
@@ -52,7 +64,10 @@ def text_refusal(text: str) -> str | None:
         return f"contains a NUL character (U+0000) at character {nul}; remove it"
     if not text.isascii():  # an ASCII string (a flag CPython keeps on it) has no surrogate
         try:
-            text.encode("utf-8")
+            if keep:
+                utf_8_encode("", text)  # after the NUL check: the converter refuses a NUL in other words
+            else:
+                text.encode("utf-8")
         except UnicodeEncodeError as exc:
             code = ord(text[exc.start])
             return f"contains a lone surrogate (U+{code:04X}) at character {exc.start}; send valid Unicode"

@@ -86,7 +86,10 @@ class PredictRequest(_Request):
     @classmethod
     def _valid_texts(cls, texts: list[str]) -> list[str]:
         for i, t in enumerate(texts):
-            why = text_refusal(t)
+            # keep: each text's UTF-8 form stays on it, so pickling the batch for a worker encodes
+            # it no second time; it lives as long as the request's texts (bench/README.md, "A text
+            # encoded once on the loop").
+            why = text_refusal(t, keep=True)
             if why is not None:
                 raise ValueError(f"texts[{i}] {why}")
         return texts

@@ -156,6 +156,46 @@ async def test_malformed_requests_are_422_with_field_errors(
     assert body["detail"].startswith(field)
 
 
+def _surrogate_refusal_before_keep(text: str) -> str | None:
+    """The lone-surrogate words of textsieve/texts.py ``text_refusal`` as of 0c77129, before the
+    service kept each text's UTF-8 form: the reference the 422s below must still match."""
+    if not text.isascii():
+        try:
+            text.encode("utf-8")  # strict UTF-8 refuses U+D800–U+DFFF (RFC 3629 section 3)
+        except UnicodeEncodeError as exc:
+            code = ord(text[exc.start])
+            return f"contains a lone surrogate (U+{code:04X}) at character {exc.start}; send valid Unicode"
+    return None
+
+
+# The texts sent, the one holding a lone surrogate last. Sent as JSON with ASCII escapes, so a lone
+# surrogate is "\ud800" and an astral character a pair of escapes the parser joins into one.
+@pytest.mark.parametrize(
+    "texts",
+    [
+        pytest.param(["\ud800 first"], id="high first"),
+        pytest.param(["\udc00 first"], id="low first"),
+        pytest.param(["in the \udbff middle"], id="high middle"),
+        pytest.param(["last \ude00"], id="low last"),
+        pytest.param(["a \udc00 b \ud800 c"], id="several"),
+        pytest.param(["\U0001f6b2 bike \ud800"], id="astral before"),
+        pytest.param(["\U0001f44d\U00020000 \udc00 \U0001f6b2"], id="astral around"),
+        pytest.param(["caf\u00e9 \u2014 \u7f8e\u54b2", "\U0001f6b2 ok", "caf\u00e9 \udfff"], id="after valid texts"),
+    ],
+)
+async def test_a_lone_surrogate_is_refused_with_its_index_as_before(
+    shared_client: httpx.AsyncClient, texts: list[str]
+) -> None:
+    bad = len(texts) - 1
+    expected = _surrogate_refusal_before_keep(texts[bad])
+    assert expected is not None and all(_surrogate_refusal_before_keep(t) is None for t in texts[:bad])
+    body = json.dumps({"texts": texts}, ensure_ascii=True).encode()
+    r = await shared_client.post("/v1/predict", content=body, headers=JSON)
+    problem = assert_problem(r, 422, "invalid-input")
+    assert problem["detail"] == f"texts: texts[{bad}] {expected}"
+    assert problem["errors"] == [{"field": "texts", "message": f"texts[{bad}] {expected}", "type": "value_error"}]
+
+
 # request -> status, problem slug, words in its detail
 @pytest.mark.parametrize(
     ("method", "path", "body", "status", "slug", "words"),
