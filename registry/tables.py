@@ -43,8 +43,8 @@ NONE = "-"
 # A wrapped column is never made narrower than this (or its header): narrower, a reason reads as a
 # column of syllables, and a line slightly wider than the terminal is the lesser harm.
 MIN_WRAPPED = 12
-# ... unless the terminal is too narrow for that; never below a BMP escape (``\u202e``; a wrap keeps
-# a longer one, ``\U000f0000``, whole on its own line).
+# ... unless the terminal is too narrow for that; never below a BMP escape (``\u202e``), nor below the
+# widest escape its cells hold (``\U000f0000``, which a wrap keeps whole on its own line).
 MIN_NARROW = 6
 # A terminal that reports no size (0 columns: some containers' pseudo-terminals) is taken as the
 # classic 80 (common practice).
@@ -249,15 +249,17 @@ def _table(
     wrap_columns = [keep.index(i) for i in all_wrap if i in keep]
     raw = [[str(h) for h in headers]] + [[NONE if c is None else str(c) for c in row] for row in rows]
     natural = [max(columns(one_line(row[i])) for row in raw) for i in range(len(headers))]
-    header_widths = [columns(one_line(h)) for h in raw[0]]
     words = {i: max(_longest_word(row[i]) for row in raw[1:]) if len(raw) > 1 else 0 for i in wrap_columns}
-    widths = _fit(natural, header_widths, wrap_columns, limit, words=words, floors=(MIN_WRAPPED,))
+    # A wrapped column is never narrower than its widest escape (``\U000f0000``, 10 columns), which wrap()
+    # keeps whole: narrower, the escape would push the columns after it out of line.
+    least = [max([columns(one_line(h)), *(_widest_unit(row[i]) for row in raw[1:])]) for i, h in enumerate(raw[0])]
+    widths = _fit(natural, least, wrap_columns, limit, words=words, floors=(MIN_WRAPPED,))
     folding = _time_columns(raw[1:]) if limit is not None and _total(widths) > limit else []
     narrowed = list(natural)
     for i in folding:
-        narrowed[i] = max(header_widths[i], *(columns(p) for row in raw[1:] for p in row[i].split(" ")))
+        narrowed[i] = max(least[i], *(columns(p) for row in raw[1:] for p in row[i].split(" ")))
     if limit is not None and _total(widths) > limit:
-        widths = _fit(narrowed, header_widths, wrap_columns, limit, words=words)
+        widths = _fit(narrowed, least, wrap_columns, limit, words=words)
     wrapped = set(wrap_columns) | set(folding)
     lines = []
     for row in raw:
@@ -296,6 +298,14 @@ def _longest_word(text: str) -> int:
     """The columns of the widest piece :func:`wrap` never splits when it has room: a word, or a list
     item with its separator (``account,``)."""
     return max(columns(w) for w in _WORD_ENDS.split(one_line(text)))
+
+
+def _widest_unit(text: str) -> int:
+    """The columns of the widest piece :func:`wrap` never splits, even where a word must be: an escape or a
+    wide character."""
+    if text.isascii() and text.isprintable():
+        return min(len(text), 1)
+    return max((w for _, w in _units(text)), default=0)
 
 
 def _total(widths: list[int]) -> int:

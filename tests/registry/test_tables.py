@@ -369,3 +369,16 @@ def test_a_stored_label_with_an_invisible_character_is_shown_escaped_in_every_ta
     code, out, _ = run(capsys, "show", "m", "1", *r)
     assert code == 0 and "re\\u200bfund, bill\\xading, pr\\ue000aise, repair" in out, out
     assert not any(c in out for c in "\u200b\u00ad\ue000")
+
+
+@pytest.mark.parametrize("width", [12, 16, 20])
+def test_a_column_is_never_narrower_than_the_longest_escape_it_holds(width: int) -> None:
+    """Before: a wrapped column fitted to 6 columns held the 10-column escape of a supplementary
+    private-use character (``\\U000f0000``) whole on its line, and the column after it moved 4 to the right."""
+    text = table(["N", "NOTE", "Z"], [["1", "\U000f0000\U000f0000 ab cd ef", "z"]], wrap_columns=(1,), width=width)
+    lines = text.splitlines()
+    z_at = _starts(lines[0], ["Z"])[0]
+    assert _cut(lines[1], z_at, None) == "z", text  # Z's cell where its header is
+    assert all(cell_len(_cut(line, 3, z_at).rstrip()) <= z_at - 5 for line in lines), text  # NOTE within its column
+    noted = "".join("".join(_cut(line, 3, z_at).split()) for line in lines[1:])
+    assert noted == "\\U000f0000\\U000f0000abcdef", text  # each escape whole, nothing cut
