@@ -79,14 +79,16 @@ def _joining(text: str, at: int) -> bool:
     return not any(c.isspace() or unicodedata.category(c) == "Cf" for c in (text[at - 1], text[at + 1]))
 
 
-def _units(text: str) -> list[tuple[str, int]]:
-    """``text`` as the pieces a terminal shows, each with the columns it takes: a character with the
-    combining marks after it, a line break as ↵, any other unsafe character as its escape."""
+def _units(text: str, start: int = 0, end: int | None = None) -> list[tuple[str, int]]:
+    """``text[start:end]`` as the pieces a terminal shows, each with the columns it takes: a character with
+    the combining marks after it, a line break as ↵, any other unsafe character as its escape. A joiner is
+    judged by its neighbours in the whole ``text``, also at the ends of the part."""
     units: list[tuple[str, int]] = []
-    i = 0
-    while i < len(text):
+    end = len(text) if end is None else end
+    i = start
+    while i < end:
         c = text[i]
-        pair = text[i : i + 2]
+        pair = text[i : min(i + 2, end)]
         if pair == "\r\n" or c in _BREAKS:
             units += [(" ", 1), ("↵", 1), (" ", 1)]
             i += 2 if pair == "\r\n" else 1
@@ -120,6 +122,13 @@ def one_line(text: str) -> str:
     if text.isprintable():  # no Cc, Cf, Cs, Zl, Zp: nothing to replace
         return text
     return "".join(u for u, _ in _units(text))
+
+
+def one_line_part(text: str, start: int, end: int) -> str:
+    """``text[start:end]`` as :func:`one_line` shows it within the whole ``text``: a ZWNJ or ZWJ at an end of
+    the part stays when it joins two visible characters of ``text`` (a span's edge inside a Persian word or
+    an emoji sequence), where ``one_line(text[start:end])`` would see it leading or trailing."""
+    return "".join(u for u, _ in _units(text, start, end))
 
 
 def columns(text: str) -> int:
@@ -394,4 +403,4 @@ def _key_value_lines(rows: list[tuple[str, object]], key_width: int, limit: int 
     return table(["", ""], padded, wrap_columns=(1,), width=limit).split("\n")[1:]
 
 
-__all__ = ["NONE", "columns", "key_values", "note", "one_line", "table", "terminal_width", "wrap"]
+__all__ = ["NONE", "columns", "key_values", "note", "one_line", "one_line_part", "table", "terminal_width", "wrap"]
