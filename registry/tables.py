@@ -376,7 +376,9 @@ def key_values(rows: Sequence[tuple[str, object]], *, width: Width = "terminal")
 
     A value with no space in it (a sha256, a path) that would be split beside its key goes on the line
     below the key instead, indented when that fits, whole: a digest cut in two cannot be copied or
-    compared. With room beside the key, or with no width to fit, it stays there."""
+    compared. With room beside the key, or with no width to fit, it stays there. Only a value wider than
+    the terminal itself is split, as a table splits a word wider than its column: in equal pieces (a
+    sha256 in two halves of 32 below 66 columns), one under the other."""
     limit = terminal_width() if width == "terminal" else width
     shown = [(one_line(str(k)), NONE if v is None else str(v)) for k, v in rows]
     key_width = max((columns(k) for k, _ in shown), default=0)
@@ -388,13 +390,26 @@ def key_values(rows: Sequence[tuple[str, object]], *, width: Width = "terminal")
             if run:
                 lines += _key_value_lines(run, key_width, limit)
                 run = []
-            indent = " " * BELOW_INDENT if BELOW_INDENT + columns(alone) <= limit else ""
-            lines += [key, indent + alone]
+            lines += [key, *_below(value, limit)]
         else:
             run.append((key, value))
     if run:
         lines += _key_value_lines(run, key_width, limit)
     return "\n".join(lines)
+
+
+def _below(value: str, limit: int) -> list[str]:
+    """The lines of a value with no space put below its key: whole, indented when that fits; else in equal
+    pieces that fit (indented too when the terminal leaves room for a piece of at least MIN_WRAPPED)."""
+    alone = one_line(value)
+    if BELOW_INDENT + columns(alone) <= limit:
+        return [" " * BELOW_INDENT + alone]
+    if columns(alone) <= limit:
+        return [alone]
+    indent = BELOW_INDENT if limit - BELOW_INDENT >= MIN_WRAPPED else 0
+    room = max(limit - indent, 1)
+    pieces = -(-columns(alone) // room)
+    return [" " * indent + line for line in wrap(value, -(-columns(alone) // pieces))]
 
 
 def _key_value_lines(rows: list[tuple[str, object]], key_width: int, limit: int | None) -> list[str]:
