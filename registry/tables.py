@@ -131,6 +131,21 @@ def one_line_part(text: str, start: int, end: int) -> str:
     return "".join(u for u, _ in _units(text, start, end))
 
 
+def clip(text: str, limit: int) -> str:
+    """``text`` as :func:`one_line` shows it, cut to at most ``limit`` columns with "…" when longer: between
+    whole pieces, never inside an escape (``\\u202e``) nor between a character and its combining marks."""
+    units = _units(text)
+    if sum(w for _, w in units) <= limit:
+        return "".join(u for u, _ in units)
+    kept, used = [], 0
+    for piece, w in units:
+        if used + w > limit - 1:
+            break
+        kept.append(piece)
+        used += w
+    return "".join(kept).rstrip(" ") + "…"
+
+
 def columns(text: str) -> int:
     """The terminal columns ``text`` (already made safe by :func:`one_line`) takes (Unicode UAX #11)."""
     if text.isascii():
@@ -418,4 +433,15 @@ def _key_value_lines(rows: list[tuple[str, object]], key_width: int, limit: int 
     return table(["", ""], padded, wrap_columns=(1,), width=limit).split("\n")[1:]
 
 
-__all__ = ["NONE", "columns", "key_values", "note", "one_line", "one_line_part", "table", "terminal_width", "wrap"]
+__all__ = [
+    "NONE",
+    "clip",
+    "columns",
+    "key_values",
+    "note",
+    "one_line",
+    "one_line_part",
+    "table",
+    "terminal_width",
+    "wrap",
+]
