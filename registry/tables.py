@@ -393,7 +393,7 @@ def key_values(rows: Sequence[tuple[str, object]], *, width: Width = "terminal")
     below the key instead, indented when that fits, whole: a digest cut in two cannot be copied or
     compared. With room beside the key, or with no width to fit, it stays there. Only a value wider than
     the terminal itself is split, as a table splits a word wider than its column: in equal pieces (a
-    sha256 in two halves of 32 below 66 columns), one under the other."""
+    sha256 in two halves of 32 below 64 columns), one under the other."""
     limit = terminal_width() if width == "terminal" else width
     shown = [(one_line(str(k)), NONE if v is None else str(v)) for k, v in rows]
     key_width = max((columns(k) for k, _ in shown), default=0)
