@@ -460,12 +460,23 @@ def cli_show(args: argparse.Namespace) -> int:
         ),
     ]
     _out(key_values(rows))
-    _out("\nfiles\n" + table(["FILE", "SHA256"], [[name, digest] for name, digest in sorted(info.files.items())]))
+    _out("\nfiles\n" + _files_table(info.files))
     last_gates = next((e for e in reversed(events) if e.kind in ("promote", "refuse") and e.details.get("gates")), None)
     if last_gates is not None:
         gates = [GateResult.model_validate(g) for g in last_gates.details["gates"]]
         _out(f"\ngates at event {last_gates.id} ({last_gates.kind}, {when(last_gates.at)})\n" + gate_table(gates))
     return 0
+
+
+def _files_table(files: dict[str, str]) -> str:
+    """FILE and SHA256 side by side (79 columns with the bundle's names); on a narrower terminal each
+    digest below its file's name, whole where it fits (``key_values``, as show's manifest sha256)."""
+    rows = [(name, digest) for name, digest in sorted(files.items())]
+    wide = tables.table(["FILE", "SHA256"], rows, width=None)
+    limit = tables.terminal_width()
+    if limit is None or max(tables.columns(line) for line in wide.splitlines()) <= limit:
+        return wide
+    return key_values(rows, width=limit)
 
 
 def cli_promote(args: argparse.Namespace) -> int:

@@ -13,7 +13,7 @@ import re
 import unicodedata
 
 from textsieve.errors import InputError
-from textsieve.printable import character_name, refused_character
+from textsieve.printable import REFUSED_CATEGORIES, UNNAMED, category_runs, character_name, refused_character
 
 MODEL_NAME = re.compile(r"[a-z0-9][a-z0-9._-]{0,63}")
 MODEL_NAME_RULE = "1–64 characters from a-z, 0-9, '.', '_', '-', starting with a letter or digit, no '..'"
@@ -84,14 +84,51 @@ def resolve_actor(actor: str | None) -> str:
     return actor
 
 
+REVIEWER_MISSING = "a verdict needs the reviewer's name: who judged the prediction"
+
+
 def validate_reviewer(reviewer: object) -> str:
-    """The person who gave a verdict, as they named themselves: 1–120 printable characters."""
+    """The person who gave a verdict, as they named themselves: 1–120 printable characters.
+
+    The reviewer page refuses the same names at sign-in, in the same words: :func:`reviewer_rule` gives it
+    this rule's data and its script mirrors this function (tests/service/test_page.py compares them)."""
     if not isinstance(reviewer, str) or not reviewer.strip():
-        raise InputError("a verdict needs the reviewer's name: who judged the prediction")
+        raise InputError(REVIEWER_MISSING)
     reviewer = reviewer.strip()
     if len(reviewer) > MAX_ACTOR or refused_character(reviewer) is not None:
         raise _name_refusal("reviewer", reviewer)
     return reviewer
+
+
+def reviewer_rule() -> dict[str, object]:
+    """What the reviewer page needs to judge a reviewer's name as :func:`validate_reviewer` does and say
+    why in its words: the limit, the messages, and from this Python's Unicode Character Database the
+    runs of refused categories (and of Zs, which ``repr`` escapes too), what ``str.strip`` removes, and
+    the names of the refused characters that have one."""
+    runs = category_runs(REFUSED_CATEGORIES | {"Zs"})
+    return {
+        "max": MAX_ACTOR,
+        "missing": REVIEWER_MISSING,
+        "rule": NAME_RULE,
+        "refused": sorted(REFUSED_CATEGORIES),
+        "runs": [list(run) for run in runs],
+        # str.isspace: Zs, or bidi class WS, B or S, which only Cc, Zl and Zp characters have besides Zs.
+        "spaces": [
+            cp
+            for first, last, category in runs
+            if category in ("Cc", "Zs", "Zl", "Zp")
+            for cp in range(first, last + 1)
+            if chr(cp).isspace()
+        ],
+        "names": {
+            str(cp): unicodedata.name(chr(cp))
+            for first, last, category in runs
+            if category in ("Cf", "Zl", "Zp")
+            for cp in range(first, last + 1)
+            if unicodedata.name(chr(cp), "")
+        },
+        "unnamed": dict(UNNAMED),
+    }
 
 
 # UAX #9's explicit formatting characters (embeddings, overrides, isolates): each reorders the text
@@ -129,10 +166,13 @@ def validate_reason(reason: str, *, required: bool) -> str:
 
 
 __all__ = [
+    "MAX_ACTOR",
     "MAX_VERSION",
     "MODEL_NAME",
     "MODEL_NAME_RULE",
+    "REVIEWER_MISSING",
     "resolve_actor",
+    "reviewer_rule",
     "validate_model_name",
     "validate_reason",
     "validate_reviewer",

@@ -43,8 +43,8 @@ NONE = "-"
 # A wrapped column is never made narrower than this (or its header): narrower, a reason reads as a
 # column of syllables, and a line slightly wider than the terminal is the lesser harm.
 MIN_WRAPPED = 12
-# ... unless the terminal is too narrow for that; never below a BMP escape (``\u202e``; a wrap keeps
-# a longer one, ``\U000f0000``, whole on its own line).
+# ... unless the terminal is too narrow for that; never below a BMP escape (``\u202e``), nor below the
+# widest escape its cells hold (``\U000f0000``, which a wrap keeps whole on its own line).
 MIN_NARROW = 6
 # A terminal that reports no size (0 columns: some containers' pseudo-terminals) is taken as the
 # classic 80 (common practice).
@@ -79,14 +79,16 @@ def _joining(text: str, at: int) -> bool:
     return not any(c.isspace() or unicodedata.category(c) == "Cf" for c in (text[at - 1], text[at + 1]))
 
 
-def _units(text: str) -> list[tuple[str, int]]:
-    """``text`` as the pieces a terminal shows, each with the columns it takes: a character with the
-    combining marks after it, a line break as ↵, any other unsafe character as its escape."""
+def _units(text: str, start: int = 0, end: int | None = None) -> list[tuple[str, int]]:
+    """``text[start:end]`` as the pieces a terminal shows, each with the columns it takes: a character with
+    the combining marks after it, a line break as ↵, any other unsafe character as its escape. A joiner is
+    judged by its neighbours in the whole ``text``, also at the ends of the part."""
     units: list[tuple[str, int]] = []
-    i = 0
-    while i < len(text):
+    end = len(text) if end is None else end
+    i = start
+    while i < end:
         c = text[i]
-        pair = text[i : i + 2]
+        pair = text[i : min(i + 2, end)]
         if pair == "\r\n" or c in _BREAKS:
             units += [(" ", 1), ("↵", 1), (" ", 1)]
             i += 2 if pair == "\r\n" else 1
@@ -120,6 +122,28 @@ def one_line(text: str) -> str:
     if text.isprintable():  # no Cc, Cf, Cs, Zl, Zp: nothing to replace
         return text
     return "".join(u for u, _ in _units(text))
+
+
+def one_line_part(text: str, start: int, end: int) -> str:
+    """``text[start:end]`` as :func:`one_line` shows it within the whole ``text``: a ZWNJ or ZWJ at an end of
+    the part stays when it joins two visible characters of ``text`` (a span's edge inside a Persian word or
+    an emoji sequence), where ``one_line(text[start:end])`` would see it leading or trailing."""
+    return "".join(u for u, _ in _units(text, start, end))
+
+
+def clip(text: str, limit: int) -> str:
+    """``text`` as :func:`one_line` shows it, cut to at most ``limit`` columns with "…" when longer: between
+    whole pieces, never inside an escape (``\\u202e``) nor between a character and its combining marks."""
+    units = _units(text)
+    if sum(w for _, w in units) <= limit:
+        return "".join(u for u, _ in units)
+    kept, used = [], 0
+    for piece, w in units:
+        if used + w > limit - 1:
+            break
+        kept.append(piece)
+        used += w
+    return "".join(kept).rstrip(" ") + "…"
 
 
 def columns(text: str) -> int:
@@ -249,15 +273,17 @@ def _table(
     wrap_columns = [keep.index(i) for i in all_wrap if i in keep]
     raw = [[str(h) for h in headers]] + [[NONE if c is None else str(c) for c in row] for row in rows]
     natural = [max(columns(one_line(row[i])) for row in raw) for i in range(len(headers))]
-    header_widths = [columns(one_line(h)) for h in raw[0]]
     words = {i: max(_longest_word(row[i]) for row in raw[1:]) if len(raw) > 1 else 0 for i in wrap_columns}
-    widths = _fit(natural, header_widths, wrap_columns, limit, words=words, floors=(MIN_WRAPPED,))
+    # A wrapped column is never narrower than its widest escape (``\U000f0000``, 10 columns), which wrap()
+    # keeps whole: narrower, the escape would push the columns after it out of line.
+    least = [max([columns(one_line(h)), *(_widest_unit(row[i]) for row in raw[1:])]) for i, h in enumerate(raw[0])]
+    widths = _fit(natural, least, wrap_columns, limit, words=words, floors=(MIN_WRAPPED,))
     folding = _time_columns(raw[1:]) if limit is not None and _total(widths) > limit else []
     narrowed = list(natural)
     for i in folding:
-        narrowed[i] = max(header_widths[i], *(columns(p) for row in raw[1:] for p in row[i].split(" ")))
+        narrowed[i] = max(least[i], *(columns(p) for row in raw[1:] for p in row[i].split(" ")))
     if limit is not None and _total(widths) > limit:
-        widths = _fit(narrowed, header_widths, wrap_columns, limit, words=words)
+        widths = _fit(narrowed, least, wrap_columns, limit, words=words)
     wrapped = set(wrap_columns) | set(folding)
     lines = []
     for row in raw:
@@ -296,6 +322,14 @@ def _longest_word(text: str) -> int:
     """The columns of the widest piece :func:`wrap` never splits when it has room: a word, or a list
     item with its separator (``account,``)."""
     return max(columns(w) for w in _WORD_ENDS.split(one_line(text)))
+
+
+def _widest_unit(text: str) -> int:
+    """The columns of the widest piece :func:`wrap` never splits, even where a word must be: an escape or a
+    wide character."""
+    if text.isascii() and text.isprintable():
+        return min(len(text), 1)
+    return max((w for _, w in _units(text)), default=0)
 
 
 def _total(widths: list[int]) -> int:
@@ -357,7 +391,9 @@ def key_values(rows: Sequence[tuple[str, object]], *, width: Width = "terminal")
 
     A value with no space in it (a sha256, a path) that would be split beside its key goes on the line
     below the key instead, indented when that fits, whole: a digest cut in two cannot be copied or
-    compared. With room beside the key, or with no width to fit, it stays there."""
+    compared. With room beside the key, or with no width to fit, it stays there. Only a value wider than
+    the terminal itself is split, as a table splits a word wider than its column: in equal pieces (a
+    sha256 in two halves of 32 below 64 columns), one under the other."""
     limit = terminal_width() if width == "terminal" else width
     shown = [(one_line(str(k)), NONE if v is None else str(v)) for k, v in rows]
     key_width = max((columns(k) for k, _ in shown), default=0)
@@ -369,13 +405,26 @@ def key_values(rows: Sequence[tuple[str, object]], *, width: Width = "terminal")
             if run:
                 lines += _key_value_lines(run, key_width, limit)
                 run = []
-            indent = " " * BELOW_INDENT if BELOW_INDENT + columns(alone) <= limit else ""
-            lines += [key, indent + alone]
+            lines += [key, *_below(value, limit)]
         else:
             run.append((key, value))
     if run:
         lines += _key_value_lines(run, key_width, limit)
     return "\n".join(lines)
+
+
+def _below(value: str, limit: int) -> list[str]:
+    """The lines of a value with no space put below its key: whole, indented when that fits; else in equal
+    pieces that fit (indented too when the terminal leaves room for a piece of at least MIN_WRAPPED)."""
+    alone = one_line(value)
+    if BELOW_INDENT + columns(alone) <= limit:
+        return [" " * BELOW_INDENT + alone]
+    if columns(alone) <= limit:
+        return [alone]
+    indent = BELOW_INDENT if limit - BELOW_INDENT >= MIN_WRAPPED else 0
+    room = max(limit - indent, 1)
+    pieces = -(-columns(alone) // room)
+    return [" " * indent + line for line in wrap(value, -(-columns(alone) // pieces))]
 
 
 def _key_value_lines(rows: list[tuple[str, object]], key_width: int, limit: int | None) -> list[str]:
@@ -384,4 +433,15 @@ def _key_value_lines(rows: list[tuple[str, object]], key_width: int, limit: int 
     return table(["", ""], padded, wrap_columns=(1,), width=limit).split("\n")[1:]
 
 
-__all__ = ["NONE", "columns", "key_values", "note", "one_line", "table", "terminal_width", "wrap"]
+__all__ = [
+    "NONE",
+    "clip",
+    "columns",
+    "key_values",
+    "note",
+    "one_line",
+    "one_line_part",
+    "table",
+    "terminal_width",
+    "wrap",
+]

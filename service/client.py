@@ -13,7 +13,7 @@ from typing import TYPE_CHECKING, Any, TextIO
 
 from textsieve.environment import DEFAULT_URL, check_url, service_url
 from textsieve.errors import InputError, UnavailableError
-from textsieve.registry.tables import one_line
+from textsieve.registry.tables import one_line, one_line_part
 
 if TYPE_CHECKING:
     import httpx
@@ -158,18 +158,19 @@ def _problem_detail(r: httpx.Response) -> str:
 
 def highlight(text: str, spans: list[dict[str, Any]], *, ansi: bool) -> str:
     """The text with its spans marked: bold on a terminal, [brackets]ⁿ otherwise; on one line, its
-    control characters shown as escapes (``registry/tables.py``), so only our own marks reach the terminal."""
+    control characters shown as escapes (``registry/tables.py``), so only our own marks reach the terminal.
+    A ZWNJ or ZWJ at a span's edge is judged within the whole text: between visible characters it stays."""
     out: list[str] = []
     at = 0
     ranked = sorted(enumerate(spans, 1), key=lambda item: item[1]["start"])
     for rank, s in ranked:
         if s["start"] < at:
             continue
-        out.append(one_line(text[at : s["start"]]))
-        piece = one_line(text[s["start"] : s["end"]])
+        out.append(one_line_part(text, at, s["start"]))
+        piece = one_line_part(text, s["start"], s["end"])
         out.append(f"{BOLD}{piece}{RESET}" if ansi else f"[{piece}]{rank}")
         at = s["end"]
-    out.append(one_line(text[at:]))
+    out.append(one_line_part(text, at, len(text)))
     return "".join(out)
 
 

@@ -28,7 +28,7 @@ REFUSED_CATEGORIES: Final = frozenset(("Cc", "Cs", "Cf", "Zl", "Zp", "Co", "Cn")
 JOINERS: Final = frozenset("\u200c\u200d")
 
 # Characters the Unicode Character Database gives no name, by category.
-_UNNAMED: Final = {
+UNNAMED: Final = {
     "Cc": "control character",
     "Cs": "lone surrogate",
     "Co": "private-use character",
@@ -64,7 +64,30 @@ def refused_character(text: str) -> str | None:
 
 def character_name(ch: str) -> str:
     """``U+202E RIGHT-TO-LEFT OVERRIDE``: the code point and its name (or what it is, unnamed)."""
-    return f"U+{ord(ch):04X} {unicodedata.name(ch, _UNNAMED.get(unicodedata.category(ch), ''))}".rstrip()
+    return f"U+{ord(ch):04X} {unicodedata.name(ch, UNNAMED.get(unicodedata.category(ch), ''))}".rstrip()
 
 
-__all__ = ["JOINERS", "KINDS", "REFUSED_CATEGORIES", "character_name", "refused_character"]
+def category_runs(categories: frozenset[str]) -> list[tuple[int, int, str]]:
+    """The code points of ``categories`` as runs ``(first, last, category)``, in this Python's Unicode
+    version: what a page needs to judge a name as :func:`refused_character` does (about 0.25 s)."""
+    runs: list[tuple[int, int, str]] = []
+    for cp in range(0x110000):
+        category = unicodedata.category(chr(cp))
+        if category not in categories:
+            continue
+        if runs and runs[-1][1] == cp - 1 and runs[-1][2] == category:
+            runs[-1] = (runs[-1][0], cp, category)
+        else:
+            runs.append((cp, cp, category))
+    return runs
+
+
+__all__ = [
+    "JOINERS",
+    "KINDS",
+    "REFUSED_CATEGORIES",
+    "UNNAMED",
+    "category_runs",
+    "character_name",
+    "refused_character",
+]

@@ -88,7 +88,7 @@ def highlighted(text: str, spans: Sequence[dict[str, Any]]) -> str:
             continue  # beyond the clipped text, or overlapping: shown in the span list instead
         out.append(escape(text[at:start]))
         out.append(
-            f'<mark title="{escape(str(sp["label"]))} {float(sp["weight"]):.3f}">{escape(text[start:end])}</mark>'
+            f'<mark title="{svg.shown(str(sp["label"]))} {float(sp["weight"]):.3f}">{escape(text[start:end])}</mark>'
         )
         at = end
     out.append(escape(text[at:]))
@@ -132,7 +132,8 @@ def _classes(r: dict[str, Any]) -> str:
     pc = r["per_class"]
     labels = list(pc)
     rows = [
-        [escape(k), _num(v["precision"]), _num(v["recall"]), _num(v["f1"]), _num(v["support"])] for k, v in pc.items()
+        [svg.shown(k), _num(v["precision"]), _num(v["recall"]), _num(v["f1"]), _num(v["support"])]
+        for k, v in pc.items()
     ]
     chart = svg.bar_chart(
         labels,
@@ -272,8 +273,8 @@ def _worst(r: dict[str, Any]) -> str:
     rows = [
         [
             f'<span class="text">{highlighted(w["text"], w["spans"])}</span>',
-            escape(w["label"]),
-            escape(w["predicted"]),
+            svg.shown(w["label"]),
+            svg.shown(w["predicted"]),
             _num(w["confidence"], 3),
         ]
         for w in r["worst"]
@@ -336,10 +337,10 @@ def _comparison(r: dict[str, Any]) -> str:
             continue
         ex_rows = [
             [
-                escape(e["label"]),
-                f"{escape(e['against']['predicted'])} ({e['against']['confidence']:.2f})<br>"
+                svg.shown(e["label"]),
+                f"{svg.shown(e['against']['predicted'])} ({e['against']['confidence']:.2f})<br>"
                 f'<span class="text">{highlighted(e["text"], e["against"]["spans"])}</span>',
-                f"{escape(e['this']['predicted'])} ({e['this']['confidence']:.2f})<br>"
+                f"{svg.shown(e['this']['predicted'])} ({e['this']['confidence']:.2f})<br>"
                 f'<span class="text">{highlighted(e["text"], e["this"]["spans"])}</span>',
             ]
             for e in ex

@@ -138,14 +138,14 @@ def render_filters(section: dict[str, Any]) -> str:
         width=max(360.0, 120.0 * len(widths) + 90),
         height=240.0,
     )
-    class_rows = [[escape(label), _ngrams(items)] for label, items in (section.get("by_class") or {}).items()]
+    class_rows = [[svg.shown(label), _ngrams(items)] for label, items in (section.get("by_class") or {}).items()]
     alive = sorted((f for f in filters if f["fires"] > 0), key=lambda f: (-f["fires"], f["index"]))
     shown = alive[:FILTER_ROWS]
     rows = [
         [
             f"#{f['index']}",
             _num(f["width"]),
-            f'{escape(str(f["pushes"]))} <span class="meta">(+{_num(f["margin"])})</span>',
+            f'{svg.shown(str(f["pushes"]))} <span class="meta">(+{_num(f["margin"])})</span>',
             _pct(f["fire_rate"]),
             _pct(f["agreement"]),
             _ngrams(f["top"]),

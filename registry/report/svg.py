@@ -14,6 +14,8 @@ import math
 from collections.abc import Sequence
 from html import escape
 
+from textsieve.registry.tables import clip, one_line
+
 # Our own palette: a teal-to-amber series set and a paper-white to deep-teal sequential ramp.
 SERIES_COLOURS = ("#1f6f78", "#d08c2b", "#7a4f9a", "#3d8b3d", "#b0413e", "#5a6b7b")
 _RAMP_LOW = (247, 250, 249)
@@ -27,9 +29,17 @@ def _f(x: float) -> str:
     return f"{x:.2f}".rstrip("0").rstrip(".")
 
 
+def shown(s: str) -> str:
+    """``s`` (a label, a series name) as text for HTML or SVG: escaped for markup, and shown as the CLI's
+    tables and the reviewer page show it (``registry/tables.py one_line``): control, format (bidi,
+    zero-width), private-use and unassigned characters as their escapes (``\\u202e``), so a stored label
+    can neither hide itself nor reorder the text around it; joiners between visible characters stay."""
+    return escape(one_line(s))
+
+
 def _text(x: float, y: float, s: str, *, anchor: str = "middle", cls: str = "", extra: str = "") -> str:
     c = f' class="{cls}"' if cls else ""
-    return f'<text x="{_f(x)}" y="{_f(y)}" text-anchor="{anchor}"{c}{extra}>{escape(s)}</text>'
+    return f'<text x="{_f(x)}" y="{_f(y)}" text-anchor="{anchor}"{c}{extra}>{shown(s)}</text>'
 
 
 def ramp(value: float) -> str:
@@ -51,12 +61,12 @@ def _open(width: float, height: float, title: str, desc: str, kind: str) -> str:
         f'<svg xmlns="http://www.w3.org/2000/svg" class="plot plot-{kind}" role="img" '
         f'viewBox="0 0 {_f(width)} {_f(height)}" width="{_f(width)}" height="{_f(height)}" '
         f'font-size="{_FONT}" font-family="system-ui, sans-serif">'
-        f"<title>{escape(title)}</title><desc>{escape(desc)}</desc>"
+        f"<title>{shown(title)}</title><desc>{shown(desc)}</desc>"
     )
 
 
 def _short(label: str, limit: int = 14) -> str:
-    return label if len(label) <= limit else label[: limit - 1] + "…"
+    return clip(label, limit)
 
 
 def heatmap(
@@ -236,7 +246,7 @@ def bar_chart(
             top, h = min(y, zero), abs(zero - y)
             out.append(
                 f'<rect class="bar" x="{_f(x)}" y="{_f(top)}" width="{_f(bar - 2)}" height="{_f(h)}" '
-                f'fill="{SERIES_COLOURS[k % len(SERIES_COLOURS)]}"><title>{escape(f"{sname} {name}: {v:.4g}")}'
+                f'fill="{SERIES_COLOURS[k % len(SERIES_COLOURS)]}"><title>{shown(f"{sname} {name}: {v:.4g}")}'
                 "</title></rect>"
             )
     if len(series) > 1:
@@ -277,7 +287,7 @@ def scatter(
             cx, cy = fr.x(x), fr.y(y)
             out.append(
                 f'<circle class="point" cx="{_f(cx)}" cy="{_f(cy)}" r="3.2" fill="{colour}">'
-                f"<title>{escape(name)}</title></circle>"
+                f"<title>{shown(name)}</title></circle>"
             )
             if annotate and name:
                 out.append(_text(cx + 5, cy - 4, _short(name, 18), anchor="start", cls="point-label"))
@@ -286,4 +296,4 @@ def scatter(
     return "".join(out)
 
 
-__all__ = ["SERIES_COLOURS", "bar_chart", "heatmap", "line_plot", "ramp", "scatter"]
+__all__ = ["SERIES_COLOURS", "bar_chart", "heatmap", "line_plot", "ramp", "scatter", "shown"]

@@ -18,7 +18,7 @@ from pydantic_core import PydanticCustomError
 
 from textsieve.labelled import MAX_LABEL_CHARS
 from textsieve.registry import ModelInfo, VersionInfo
-from textsieve.registry.names import MAX_VERSION, MODEL_NAME, MODEL_NAME_RULE
+from textsieve.registry.names import MAX_ACTOR, MAX_VERSION, MODEL_NAME, MODEL_NAME_RULE
 from textsieve.texts import text_refusal
 
 # Bounds the schema states so that no number reaches a database column or a JSON encoder too big
@@ -117,7 +117,12 @@ class VerdictRequest(_Request):
         description="the reviewer's label: the predicted one to confirm it, another of the version's labels to "
         "correct it",
     )
-    reviewer: str = Field(min_length=1, max_length=120, description="who judged: recorded with the verdict")
+    # Judged by registry/names.py validate_reviewer alone (stripped, then 1–120 characters a name may hold),
+    # whose words the reviewer page says at sign-in; pydantic's own length check would refuse first, in
+    # other words. The schema still documents the bounds.
+    reviewer: str = Field(
+        json_schema_extra={"minLength": 1, "maxLength": MAX_ACTOR}, description="who judged: recorded with the verdict"
+    )
 
     @field_validator("text")
     @classmethod

@@ -328,8 +328,7 @@ def test_show_never_splits_a_sha256_and_keeps_it_beside_its_key_when_it_fits(
         monkeypatch.setenv("COLUMNS", str(columns_))
         code, out, _ = run(capsys, "show", "m", "1", *r)
         lines = out.splitlines()
-        fields = lines[: lines.index("files")]  # the files table (79 columns) is not fitted below that
-        assert code == 0 and all(cell_len(line) <= columns_ for line in fields), out
+        assert code == 0 and all(cell_len(line) <= columns_ for line in lines), out
         at = lines.index("manifest sha256")  # the key alone, the digest whole on the next line
         assert lines[at + 1].strip() == digest, out
         value_at = len("held-out metrics  ")  # the other values still start in one column (the longest key)
@@ -369,3 +368,48 @@ def test_a_stored_label_with_an_invisible_character_is_shown_escaped_in_every_ta
     code, out, _ = run(capsys, "show", "m", "1", *r)
     assert code == 0 and "re\\u200bfund, bill\\xading, pr\\ue000aise, repair" in out, out
     assert not any(c in out for c in "\u200b\u00ad\ue000")
+
+
+@pytest.mark.parametrize("width", [12, 16, 20])
+def test_a_column_is_never_narrower_than_the_longest_escape_it_holds(width: int) -> None:
+    """Before: a wrapped column fitted to 6 columns held the 10-column escape of a supplementary
+    private-use character (``\\U000f0000``) whole on its line, and the column after it moved 4 to the right."""
+    text = table(["N", "NOTE", "Z"], [["1", "\U000f0000\U000f0000 ab cd ef", "z"]], wrap_columns=(1,), width=width)
+    lines = text.splitlines()
+    z_at = _starts(lines[0], ["Z"])[0]
+    assert _cut(lines[1], z_at, None) == "z", text  # Z's cell where its header is
+    assert all(cell_len(_cut(line, 3, z_at).rstrip()) <= z_at - 5 for line in lines), text  # NOTE within its column
+    noted = "".join("".join(_cut(line, 3, z_at).split()) for line in lines[1:])
+    assert noted == "\\U000f0000\\U000f0000abcdef", text  # each escape whole, nothing cut
+
+
+@pytest.mark.parametrize("width", [78, 66, 64, 63, 40])
+def test_show_fits_its_files_to_the_terminal_each_digest_below_its_file(
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
+    width: int,
+) -> None:
+    """Before: below 79 columns every line of show's files table was 79 wide (FILE, then a 64-character
+    sha256), which the terminal wrapped again. Now each digest goes below its file's name: whole where it
+    fits (indented from 66 columns), in two halves of 32 below 64, as a word wider than its column."""
+    r = ["--registry", str(tmp_path / "reg")]
+    assert run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", *r)[0] == 0
+    capsys.readouterr()
+    monkeypatch.delenv("COLUMNS", raising=False)  # captured output is no terminal: the table as it was
+    code, out, _ = run(capsys, "show", "m", "1", *r)
+    wide = out.splitlines()
+    head = wide.index("files") + 1
+    assert wide[head].split() == ["FILE", "SHA256"]
+    files = dict(line.split() for line in wide[head + 1 : wide.index("", head) if "" in wide[head:] else None])
+    assert {"manifest.json", "model.onnx", "vocab.txt"} <= set(files), out
+    monkeypatch.setenv("COLUMNS", str(width))
+    code, out, _ = run(capsys, "show", "m", "1", *r)
+    lines = out.splitlines()
+    assert code == 0 and all(cell_len(line) <= width for line in lines), out
+    body = lines[lines.index("files") + 1 :]
+    for name, digest in files.items():
+        at = body.index(name)
+        pieces = 1 if width >= 64 else 2
+        assert "".join(line.strip() for line in body[at + 1 : at + 1 + pieces]) == digest, out

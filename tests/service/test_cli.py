@@ -87,6 +87,38 @@ def test_predict_prints_label_probabilities_and_marked_spans(live_url: str) -> N
     assert gone.returncode == 1 and "cannot reach" in gone.stderr
 
 
+# Joiners at a span's edge, each between two visible characters of the text (RFC 5892 appendix A: ZWNJ in
+# Persian, ZWJ in Devanagari half forms; Unicode TR #51: ZWJ in emoji sequences), and at the text's own ends.
+EDGES = [
+    # Persian "می‌خواهم" (I want): the span is the part after the ZWNJ, which ends the text before it.
+    pytest.param("\u0645\u06cc\u200c\u062e\u0648\u0627\u0647\u0645 x", 3, 8, id="ZWNJ before a Persian span"),
+    pytest.param("\u0645\u06cc\u200c\u062e\u0648\u0627\u0647\u0645 x", 0, 3, id="ZWNJ ending a Persian span"),
+    # Devanagari "क्‍ष": the ZWJ after the virama asks for the half form; a span may end before it.
+    pytest.param("\u0915\u094d\u200d\u0937 a", 0, 2, id="ZWJ after a Devanagari span"),
+    pytest.param("\u0915\u094d\u200d\u0937 a", 2, 4, id="ZWJ starting a Devanagari span"),
+    # 👩‍💻 (woman technologist) and 👨‍👩‍👧 (family): a span covering one emoji of the sequence.
+    pytest.param("a \U0001f469\u200d\U0001f4bb b", 2, 3, id="ZWJ after an emoji span"),
+    pytest.param("a \U0001f469\u200d\U0001f4bb b", 4, 5, id="ZWJ before an emoji span"),
+    pytest.param("\U0001f468\u200d\U0001f469\u200d\U0001f467", 2, 3, id="ZWJs on both sides of a span"),
+]
+
+
+@pytest.mark.parametrize(("text", "start", "end"), EDGES)
+def test_highlight_shows_a_joiner_at_a_span_s_edge_as_the_text_holds_it(text: str, start: int, end: int) -> None:
+    """Before: each piece was made safe alone, so a joiner at a piece's end looked leading or trailing
+    and was shown as ``\\u200c``/``\\u200d``, breaking the word or the emoji sequence it joins."""
+    span = {"start": start, "end": end, "text": text[start:end], "label": "l", "weight": 1.0, "width": 1}
+    plain = highlight(text, [span], ansi=False)
+    assert plain == f"{text[:start]}[{text[start:end]}]1{text[end:]}"
+    assert highlight(text, [span], ansi=True) == f"{text[:start]}\x1b[1m{text[start:end]}\x1b[0m{text[end:]}"
+
+
+def test_highlight_still_escapes_joiners_and_controls_that_join_nothing() -> None:
+    text = "\u200dab \u200c\u202ec\u200d"  # joiners at the ends and next to a space or a bidi override
+    span = {"start": 1, "end": 3, "text": "ab", "label": "l", "weight": 1.0, "width": 1}
+    assert highlight(text, [span], ansi=False) == "\\u200d[ab]1 \\u200c\\u202ec\\u200d"
+
+
 def test_render_marks_spans_by_code_point_offsets() -> None:
     text = "👩‍💻 charged twice, e\u0301 again"
     start = text.index("charged")

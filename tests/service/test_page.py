@@ -10,6 +10,8 @@ import re
 from pathlib import Path
 
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 from tests.helpers.environment import skip_or_fail
 from tests.helpers.graphemes import clustered, widened
@@ -284,3 +286,48 @@ def test_page_palette_has_no_orange_and_keeps_the_token_out_of_urls() -> None:
     script = "\n".join(re.findall(r"<script>(.*?)</script>", html, flags=re.S))
     assert 'fetch("/v1/verdicts"' in script and "sessionStorage" in script
     assert "localStorage" not in script and "location.search" not in script and "?token" not in script
+
+
+# Names a reviewer may type or paste, where the page's mirror of the service's rule could part from it:
+# Python's str.strip against JavaScript's trim (U+FEFF, U+001C–U+001F, U+0085), joiners in and out of
+# context (RFC 5892 appendix A), quotes and backslashes in repr, code points over U+FFFF (two UTF-16 units
+# each: JavaScript's length is not Python's), and each category the rule refuses (printable.py).
+_EDGE_CHARS = "\ufeff\x1c\x1f\x85\u00a0\u3000 \t\u200c\u200d\u200b\u202e\u2028'\"\\\x07\ue000\U000f0000\u0378\ufffe"
+_NAME_CHARS = st.one_of(
+    st.sampled_from(_EDGE_CHARS),
+    st.sampled_from("aZ9éक्षمی👩💻😀王"),
+    st.characters(exclude_categories=()),  # any code point, lone surrogates (Cs) and unassigned (Cn) too
+)
+_NAMES = st.one_of(
+    st.text(_NAME_CHARS, max_size=12),
+    st.builds(
+        lambda pad, core, end: pad + core + end,
+        st.text(_NAME_CHARS, max_size=3),
+        st.text("ab👩", min_size=115, max_size=125),
+        st.text(_NAME_CHARS, max_size=3),
+    ),
+)
+
+
+@settings(max_examples=8, deadline=None, database=None, suppress_health_check=list(HealthCheck))
+@given(names=st.lists(_NAMES, min_size=100, max_size=150))
+def test_page_refuses_the_reviewer_names_the_service_refuses_in_its_words(tmp_path: Path, names: list[str]) -> None:
+    """The page's ``checkedReviewer`` (run in Node) against the service's rule, registry/names.py
+    ``validate_reviewer``, on names Hypothesis draws: the same names refused with the same message, and the
+    others recorded as the service records them. Before, the page signed in any name with a character
+    (U+202E, U+200B, BEL) and refused only the empty one, and the service said why at the first verdict."""
+    from textsieve.errors import InputError
+    from textsieve.registry.names import validate_reviewer
+
+    expected: list[dict[str, str | None]] = []
+    for name in names:
+        try:
+            expected.append({"name": validate_reviewer(name), "problem": None})
+        except InputError as exc:
+            expected.append({"name": None, "problem": exc.message})
+    out = _run_helpers(tmp_path, "reviewers", "cases.map(checkedReviewer)", names)
+    assert isinstance(out, list)
+    for name, want, got in zip(names, expected, out, strict=True):
+        assert got["problem"] == want["problem"], name
+        if want["problem"] is None:
+            assert got["name"] == want["name"], name

@@ -942,3 +942,68 @@ def test_a_verdict_by_button_keeps_the_focus_in_the_queue(browser, registry_dir:
         ActionChains(browser).send_keys("p").perform()
         wait.until(lambda d: d.switch_to.active_element == cards[0])
         assert "current" in (cards[0].get_attribute("class") or "")
+
+
+# Names the service refuses at a verdict (registry/names.py validate_reviewer: textsieve/printable.py's
+# characters, 1–120 after stripping), each with why.
+REFUSED_NAMES = [
+    pytest.param("Priya\u202e", id="U+202E RIGHT-TO-LEFT OVERRIDE (Trojan Source, CVE-2021-42574)"),
+    pytest.param("Pr\u200biya", id="U+200B ZERO WIDTH SPACE: would pass for Priya"),
+    pytest.param("Priya\x07", id="BEL, a control character"),
+    pytest.param("Priya\ue000", id="private use"),
+    pytest.param("\ufeffPriya", id="U+FEFF, which JavaScript's trim removes and Python's strip keeps"),
+    pytest.param("Priya \u200d", id="a joiner joining nothing"),
+    pytest.param("   ", id="only spaces"),
+    pytest.param("P" * 121, id="121 characters"),
+]
+
+
+@pytest.mark.parametrize("name", REFUSED_NAMES)
+def test_sign_in_refuses_a_name_the_service_would_refuse_in_its_words(browser, registry_dir: Path, name: str) -> None:  # type: ignore[no-untyped-def]
+    """Before: the page signed in any non-empty name, and the service refused it at the first verdict, after
+    the reviewer had read a card. Now the sign-in says what the service says (its problem detail, asked here
+    of the real service), and a name the service records, joiners in an emoji sequence included, signs in."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    settings = settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)
+    with uvicorn_server(settings) as server:
+        verdict = {
+            "model": MODEL,
+            "version": 1,
+            "text": TEXTS[0],
+            "predicted_label": "billing",
+            "predicted_probability": 0.9,
+            "verdict_label": "billing",
+            "reviewer": name,
+        }
+        auth = {"Authorization": f"Bearer {REVIEW_TOKEN}"}
+        reply = httpx.post(f"{server.url}/v1/verdicts", json=verdict, headers=auth, timeout=30)
+        assert reply.status_code == 422, reply.text
+        said = reply.json()["detail"]
+
+        browser.get(server.url + "/")
+        field = browser.find_element(By.ID, "reviewer")
+        browser.execute_script("arguments[0].value = arguments[1]", field, name)  # as pasted
+        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN)
+        browser.find_element(By.ID, "start").click()
+        problem = browser.find_element(By.ID, "name-problem")
+        WebDriverWait(browser, 10).until(lambda d: problem.is_displayed())
+        assert problem.get_attribute("textContent") == said
+        assert problem.get_attribute("role") == "alert" and field.get_attribute("aria-invalid") == "true"
+        assert browser.find_element(By.ID, "sign-in").is_displayed()
+        assert not browser.find_element(By.ID, "signed").is_displayed()
+        assert browser.execute_script("return sessionStorage.getItem('textsieve.reviewer')") is None
+
+        good = "Ana \U0001f469\u200d\U0001f4bb"  # a ZWJ between two visible characters (Unicode TR #51)
+        field.clear()
+        field.send_keys("x")  # typing clears the refusal
+        assert not problem.is_displayed()
+        browser.execute_script("arguments[0].value = arguments[1]", field, f"  {good} ")
+        browser.find_element(By.ID, "start").click()
+        WebDriverWait(browser, 10).until(lambda d: d.find_element(By.ID, "signed").is_displayed())
+        assert browser.execute_script("return sessionStorage.getItem('textsieve.reviewer')") == good
+        accepted = httpx.post(
+            f"{server.url}/v1/verdicts", json={**verdict, "reviewer": f"  {good} "}, headers=auth, timeout=30
+        )
+        assert accepted.status_code == 201 and accepted.json()["reviewer"] == good, accepted.text

@@ -171,3 +171,108 @@ def test_a_report_file_shows_hostile_labels_and_texts_as_text_and_runs_no_script
     assert browser.execute_script("return window.__hit") is None, "the file's own policy stops a script"
     blocked = [e["message"] for e in browser.get_log("browser") if e["level"] == "SEVERE"]
     assert any("Content Security Policy" in m for m in blocked), blocked
+
+
+# Labels stored before labels were held to textsieve/printable.py's rule (no control, format, private-use
+# or unassigned characters), which report.json keeps as stored: each must show as its escape, as the CLI's
+# tables and the reviewer page show it, and the joiner of an emoji sequence (Unicode TR #51) as it is.
+UNSHOWN_LABELS = {
+    "account": ("ac\u200bcount", "ac\\u200bcount"),  # U+200B ZERO WIDTH SPACE: would pass for "account"
+    "billing": ("bi\u202elling", "bi\\u202elling"),  # U+202E RIGHT-TO-LEFT OVERRIDE: would show "bignill"
+    "praise": ("pr\u0007aise\U0001f469\u200d\U0001f4bb", "pr\\x07aise\U0001f469\u200d\U0001f4bb"),  # BEL; ZWJ kept
+    "repair": ("re\ue000pair", "re\\ue000pair"),  # U+E000, private use: no meaning between two parties
+}
+
+# Every text node and title of the page, and the characters in them no label may show: categories Cc, Cf,
+# Co, Cn (ECMAScript's Unicode property escapes), a joiner between two visible characters excepted.
+_UNSHOWN_JS = r"""
+const bad = [];
+const walker = document.createTreeWalker(document.body, NodeFilter.SHOW_TEXT);
+const texts = [];
+for (let n = walker.nextNode(); n; n = walker.nextNode()) texts.push(n.data);
+for (const e of document.querySelectorAll("[title]")) texts.push(e.getAttribute("title"));
+for (const t of texts) {
+  const cs = Array.from(t);
+  cs.forEach((c, i) => {
+    if (!/[\p{Cc}\p{Cf}\p{Co}\p{Cn}]/u.test(c) || /[\n\t\r]/.test(c)) return;
+    const joins = (c === "\u200c" || c === "\u200d") && i > 0 && i < cs.length - 1
+      && !/[\s\p{Cf}]/u.test(cs[i - 1]) && !/[\s\p{Cf}]/u.test(cs[i + 1]);
+    if (!joins) bad.push(`U+${c.codePointAt(0).toString(16)} in ${JSON.stringify(t.slice(0, 60))}`);
+  });
+}
+return bad;
+"""
+
+# The left edge of each visible character of each element whose text holds the label with the override,
+# in the order the characters are stored: increasing when nothing reorders them (UAX #9).
+_EDGES_JS = r"""
+const out = [];
+for (const e of document.querySelectorAll("td, svg text")) {
+  const node = e.firstChild;
+  if (!node || node.nodeType !== Node.TEXT_NODE) continue;
+  if (!node.data.includes("bi\u202e") && !node.data.includes("bi\\u202e")) continue;
+  const xs = [];
+  for (let i = 0; i < node.data.length; i++) {
+    const r = document.createRange();
+    r.setStart(node, i);
+    r.setEnd(node, i + 1);
+    const box = r.getBoundingClientRect();
+    if (box.width > 0) xs.push(box.left);
+  }
+  out.push([node.data, xs]);
+}
+return out;
+"""
+
+
+def test_a_report_shows_unshown_label_characters_as_escapes_that_reorder_nothing(
+    browser: Any, tiny_bundles: dict[str, Path], tiny_data: Path, tmp_path: Path
+) -> None:
+    """Before: the report escaped labels for HTML only, so "ac\\u200bcount" passed for "account", U+202E
+    showed "billing" as "bignill", and BEL and U+E000 reached the page as they are."""
+    from html.parser import HTMLParser
+
+    from selenium.webdriver.common.by import By
+
+    from textsieve.labelled import load_examples
+    from textsieve.registry.bundle import open_bundle
+    from textsieve.registry.report.files import dump_json, make_report
+    from textsieve.registry.report.html import render_html
+
+    report, _, _ = make_report(
+        open_bundle(tiny_bundles["a"]), load_examples(tiny_data / "test.jsonl"), model="hostile", version=1
+    )
+    stored = dump_json(report).decode()
+    assert set(report["per_class"]) == set(UNSHOWN_LABELS)
+    for label, (hostile, _) in UNSHOWN_LABELS.items():  # every label field of report.json, texts untouched
+        stored = stored.replace(json.dumps(label), json.dumps(hostile, ensure_ascii=False))
+    html = render_html(json.loads(stored))
+
+    class Shown(HTMLParser):  # what a reader sees: text, and the titles shown on hover
+        def __init__(self) -> None:
+            super().__init__()
+            self.seen: list[str] = []
+
+        def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+            self.seen += [v or "" for k, v in attrs if k == "title"]
+
+        def handle_data(self, data: str) -> None:
+            self.seen.append(data)
+
+    parser = Shown()
+    parser.feed(html)
+    seen = "".join(parser.seen)
+    assert not any(c in seen for c in "\u200b\u202e\u0007\ue000"), "a label's character reached the page as it is"
+    for _, shown in UNSHOWN_LABELS.values():
+        assert seen.count(shown) >= 3, shown  # the per-class table, the bar chart, the confusion matrix
+
+    page = tmp_path / "report.html"
+    page.write_text(html, encoding="utf-8")
+    browser.get(page.as_uri())
+    body = browser.find_element(By.TAG_NAME, "body").text
+    assert all(shown in body for _, shown in UNSHOWN_LABELS.values()), "each label is shown, escapes visible"
+    assert browser.execute_script(_UNSHOWN_JS) == []
+    cells = browser.execute_script(_EDGES_JS)
+    assert len(cells) >= 3, cells  # the per-class table, the bar chart, the confusion matrix (twice)
+    for text, xs in cells:
+        assert len(xs) >= len("bi…") and xs == sorted(xs), f"{text!r} drawn out of order: {xs}"
