@@ -48,6 +48,32 @@ async def test_page_is_self_contained_and_shows_the_cautions(shared_registry: Pa
     assert 'fetch("/v1/predict"' in html and "Array.from(text)" in html
 
 
+async def test_the_page_is_made_off_the_event_loop(shared_registry: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The first page scans the Unicode tables for the reviewer-name rule (~0.2 s): done on the event
+    loop's thread it would stall every prediction meanwhile, so it runs on another thread."""
+    import threading
+
+    from textsieve.service.web import page as page_module
+
+    made_on: list[threading.Thread] = []
+    rule_json = page_module._rule_json
+
+    def recorded() -> str:
+        made_on.append(threading.current_thread())
+        return rule_json()
+
+    monkeypatch.setattr(page_module, "_rule_json", recorded)
+    page_module.page.cache_clear()
+    try:
+        async with serving(settings_for(shared_registry)) as (_, client):
+            loop_thread = threading.current_thread()
+            first, second = await client.get("/"), await client.get("/")
+    finally:
+        page_module.page.cache_clear()
+    assert first.status_code == second.status_code == 200 and first.text == second.text
+    assert len(made_on) == 1 and made_on[0] is not loop_thread  # made once, not on the loop
+
+
 async def test_openapi_documents_the_contract_without_cdn_docs(shared_registry: Path) -> None:
     async with serving(settings_for(shared_registry)) as (_, client):
         schema = (await client.get("/openapi.json")).json()
