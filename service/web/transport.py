@@ -216,8 +216,9 @@ class ConnectionGuard:
             "Not Implemented",
             UNKNOWN_METHOD.slug,
             UNKNOWN_METHOD.title,
-            "the request's method is not an HTTP method this service knows; it answers GET, HEAD and POST "
-            "(a 405 names which for each path); the connection is closed",
+            "the request's method is not an HTTP method this service knows; it answers GET, HEAD, POST and "
+            "OPTIONS (the Allow header of a 405 or an OPTIONS reply names which for each path); the connection "
+            "is closed",
             None,
         )
         # RFC 9112 §6.1: an HTTP/1.0 request with a transfer coding has faulty framing (HTTP/1.0 has no
@@ -240,7 +241,8 @@ class ConnectionGuard:
             UNKNOWN_METHOD.slug,
             UNKNOWN_METHOD.title,
             "CONNECT asks for a tunnel, and this service is not a proxy (RFC 9110 §9.3.6); it answers GET, "
-            "HEAD and POST (a 405 names which for each path); the connection is closed",
+            "HEAD, POST and OPTIONS (the Allow header of a 405 or an OPTIONS reply names which for each path); "
+            "the connection is closed",
             None,
         )
         self.max_head_bytes = max_head_bytes

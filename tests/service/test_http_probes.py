@@ -381,7 +381,58 @@ def test_connect_is_answered_501_as_a_method_this_origin_server_does_not_impleme
     # "not valid HTTP", though the code's comment promised a 405.
     ((status, body),) = _replies_until_closed(probed[0], b"CONNECT x:443 HTTP/1.1\r\nHost: x:443\r\n\r\n")
     assert status == 501 and body["type"] == "/problems/unknown-method"
-    assert "CONNECT" in body["detail"] and "GET, HEAD and POST" in body["detail"]
+    assert "CONNECT" in body["detail"] and "GET, HEAD, POST and OPTIONS" in body["detail"]
+
+
+# -- OPTIONS and absolute-form targets ---------------------------------------------------------------
+def _replies_with_heads(url: str, data: bytes) -> list[tuple[int, dict[str, str], bytes]]:
+    """Send ``data`` (its last request saying ``Connection: close``) and read each reply's status,
+    header fields and body until the server closes the connection (no HEAD: its replies have no body)."""
+    host, port = url.removeprefix("http://").split(":")
+    got = b""
+    with socket.create_connection((host, int(port)), timeout=20) as s:
+        s.sendall(data)
+        while chunk := s.recv(65536):
+            got += chunk
+    replies = []
+    while got:
+        head, sep, rest = got.partition(b"\r\n\r\n")
+        assert sep, got
+        lines = head.decode("latin-1").split("\r\n")
+        fields = {name.lower(): value for name, value in (line.split(": ", 1) for line in lines[1:])}
+        length = int(fields.get("content-length", "0"))
+        replies.append((int(lines[0].split(" ")[1]), fields, rest[:length]))
+        got = rest[length:]
+    return replies
+
+
+def _check_options_replies(replies: list[tuple[int, dict[str, str], bytes]]) -> None:
+    for status, fields, body in replies:
+        if status == 204:
+            assert body == b"" and "content-length" not in fields and "content-type" not in fields
+            assert not [name for name in fields if name.startswith("access-control-")]
+
+
+def test_options_names_the_methods_of_a_path_and_options_star_those_of_the_server(probed: tuple[str, Path]) -> None:
+    # RFC 9110 §9.3.7: OPTIONS asks for the target's communication options (Allow); "OPTIONS *" (RFC 9112
+    # §3.2.4) for the server's as a whole. Both were refused: 405 on a path, 404 ("no such path") for "*".
+    # The replies follow on one connection, so the 204s are framed as having no content (RFC 9110 §8.6).
+    host = b"Host: x\r\n"
+    data = (
+        b"OPTIONS * HTTP/1.1\r\n" + host + b"\r\n"
+        b"OPTIONS /readyz HTTP/1.1\r\n" + host + b"\r\n"
+        b"GET /healthz HTTP/1.1\r\n" + host + b"\r\n"
+        b"OPTIONS /v1/predict HTTP/1.1\r\n" + host + b"Connection: close\r\n\r\n"
+    )
+    replies = _replies_with_heads(probed[0], data)
+    assert [(status, fields.get("allow")) for status, fields, _ in replies] == [
+        (204, "GET, HEAD, POST, OPTIONS"),
+        (204, "GET, HEAD, OPTIONS"),
+        (200, None),
+        (204, "POST, OPTIONS"),
+    ]
+    assert json.loads(replies[2][2]) == {"status": "alive"}
+    _check_options_replies(replies)
 
 
 def _first_reply(url: str, head: bytes) -> tuple[int, dict[str, Any]]:
