@@ -35,6 +35,10 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   an empty 403. RFC 9110 §7.8 lets a server ignore Upgrade, so the request is parsed again
   without it and answered as HTTP/1.1. ``CONNECT`` asks for a tunnel, which this origin server
   does not implement (it is no proxy): 501 (RFC 9110 §9.3.6 and §9.1), where it was a 400.
+- **Absolute-form targets without a path.** ``GET http://host HTTP/1.1`` (RFC 9112 §3.2.2: a server
+  MUST accept the absolute form) names the root, since an empty path is "/" (RFC 9110 §4.2.3), and
+  ``OPTIONS http://host`` the server as a whole, "*" (RFC 9112 §3.2.4); uvicorn found no path in them
+  and answered 400 with a warning.
 - **HTTP/1.0 framing.** An HTTP/1.0 request with ``Transfer-Encoding`` is answered 400 and the
   connection closed (RFC 9112 §6.1: its framing is faulty); it was read as chunked and answered.
 - **Read deadline.** From the moment a connection opens, or a keep-alive connection's next
@@ -94,6 +98,23 @@ def _raw_response(
     if retry_after is not None:
         head.append(f"retry-after: {retry_after}")
     return ("\r\n".join(head) + "\r\n\r\n").encode("ascii") + body
+
+
+def _with_path(target: bytes, method: bytes) -> bytes:
+    """An absolute-form request target (RFC 9112 §3.2.2) whose path is empty, given one: "/" (RFC 9110
+    §4.2.3: an empty path is "/"), or for OPTIONS without a query the server as a whole, "*" (RFC 9112
+    §3.2.4). Other targets are returned as they are. uvicorn took the missing path for an unparsable
+    request: ``GET http://host HTTP/1.1``, which a server MUST accept, was a 400 and a logged warning."""
+    try:
+        parsed = httptools.parse_url(target)
+    except httptools.HttpParserInvalidURLError:
+        return target  # refused 400 where uvicorn parses it
+    if parsed.path or not parsed.schema:
+        return target
+    if method == b"OPTIONS" and not parsed.query:
+        return b"*"
+    cut = min((i for i in (target.find(b"?"), target.find(b"#")) if i >= 0), default=len(target))
+    return target[:cut] + b"/" + target[cut:]
 
 
 RETRY_AFTER_SECONDS = 1
@@ -486,6 +507,8 @@ class ConnectionGuard:
                     # RFC 9110 §10.1.1 and §15.2: an HTTP/1.0 request's 100-continue is ignored, since
                     # such a client takes the first status line it reads, an interim one too, for the reply.
                     self.expect_100_continue = False
+                if self.url[:1] != b"/":
+                    self.url = _with_path(self.url, self.parser.get_method())
                 before = self.cycle
                 super().on_headers_complete()
                 cycle = self.cycle

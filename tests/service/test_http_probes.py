@@ -435,6 +435,29 @@ def test_options_names_the_methods_of_a_path_and_options_star_those_of_the_serve
     _check_options_replies(replies)
 
 
+def test_an_absolute_form_target_without_a_path_is_read_as_the_root(probed: tuple[str, Path]) -> None:
+    # RFC 9112 §3.2.2: a server MUST accept the absolute form; RFC 9110 §4.2.3 reads an empty path as
+    # "/", and RFC 9112 §3.2.4 an OPTIONS target with an empty path and no query as "*". "GET http://x"
+    # was a 400 "not valid HTTP", with uvicorn's warning in the log.
+    host = b"Host: x\r\n"
+    data = (
+        b"GET http://x:80 HTTP/1.1\r\n" + host + b"\r\n"
+        b"GET http://x?q=1 HTTP/1.1\r\n" + host + b"\r\n"
+        b"OPTIONS http://x HTTP/1.1\r\n" + host + b"\r\n"
+        b"OPTIONS http://x?q HTTP/1.1\r\n" + host + b"Connection: close\r\n\r\n"
+    )
+    replies = _replies_with_heads(probed[0], data)
+    assert [(status, fields.get("allow")) for status, fields, _ in replies] == [
+        (200, None),
+        (200, None),
+        (204, "GET, HEAD, POST, OPTIONS"),
+        (204, "GET, HEAD, OPTIONS"),  # with a query, the target is the page at "/"
+    ]
+    for _, fields, body in replies[:2]:
+        assert fields["content-type"].startswith("text/html") and b"textsieve" in body
+    _check_options_replies(replies)
+
+
 def _first_reply(url: str, head: bytes) -> tuple[int, dict[str, Any]]:
     """Send a request's head alone (its body held back, as a client that expects 100-continue does)
     and read the first reply: an interim 100 is returned as it is, with an empty body."""
