@@ -41,6 +41,9 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   and answered 400 with a warning.
 - **HTTP/1.0 framing.** An HTTP/1.0 request with ``Transfer-Encoding`` is answered 400 and the
   connection closed (RFC 9112 §6.1: its framing is faulty); it was read as chunked and answered.
+- **Clients that go away.** uvicorn tells only the last request read on a connection that the client
+  is gone; the request being answered ahead of a pipelined one is told too, or its reply met the closed
+  transport (uvloop raises there) and a client's reset logged two tracebacks.
 - **Read deadline.** From the moment a connection opens, or a keep-alive connection's next
   request begins, the client has ``read_timeout_seconds`` to send the request's headers and
   whole body. Past it the connection is answered 408 (RFC 9110 §15.5.9) if no response has
@@ -322,6 +325,7 @@ class ConnectionGuard:
             _message_done = False  # the last request read is whole: what comes next begins another
             _deferred: bytes | None = None  # a refusal waiting for the replies to the requests before it
             _ahead: Any = None  # the request cycle the current one is queued behind (uvicorn keeps none)
+            _running: Any = None  # the request cycle whose application task started last
 
             def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
                 if guard.open >= guard.max_connections:
@@ -342,6 +346,19 @@ class ConnectionGuard:
                 guard.open -= 1
                 self._disarm()
                 super().connection_lost(exc)
+                # uvicorn tells only the last request read that the client is gone. When it was read
+                # behind another (pipelined), the one being answered went on to write its reply to the
+                # closed transport: uvloop raises there, and a client resetting the connection cost a
+                # RuntimeError, uvicorn's "Exception in ASGI application" and the app's own error line,
+                # each with a traceback. It is told too, so its reply goes nowhere, quietly.
+                running: Any = self._running
+                if running is not None and running is not self.cycle and not running.response_complete:
+                    running.disconnected = True
+                    running.message_event.set()
+
+            def _start_asgi_task(self, cycle: Any, app: Any) -> None:
+                self._running = cycle
+                super()._start_asgi_task(cycle, app)
 
             def data_received(self, data: bytes) -> None:
                 if self._over_cap or self._refused:

@@ -7,9 +7,12 @@ the RFCs each test names.
 
 from __future__ import annotations
 
+import asyncio
 import gzip
 import json
 import socket
+import struct
+import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -18,8 +21,18 @@ import httpx
 import pytest
 
 from tests.helpers.servers import running_server
-from tests.helpers.service import ADMIN_TOKEN, AUTH, MODEL, REVIEW_AUTH, REVIEW_TOKEN, assert_problem, make_registry
+from tests.helpers.service import (
+    ADMIN_TOKEN,
+    AUTH,
+    MODEL,
+    REVIEW_AUTH,
+    REVIEW_TOKEN,
+    assert_problem,
+    guarded_uvicorn,
+    make_registry,
+)
 from textsieve.registry import open_registry
+from textsieve.service.web.transport import ConnectionGuard
 
 
 @pytest.fixture(scope="module")
@@ -201,6 +214,56 @@ def test_a_lone_malformed_request_and_an_unknown_method_are_refused_as_before(pr
     assert [s for s, _ in _replies_until_closed(probed[0], b"\x01garbage\r\n\r\n")] == [400]
     (reply,) = _replies_until_closed(probed[0], b"BREW /v1/predict HTTP/1.1\r\nHost: x\r\n\r\n")
     assert reply[0] == 501 and reply[1]["type"] == "/problems/unknown-method"
+
+
+# -- clients that reset the connection ------------------------------------------------------------
+def test_a_client_resetting_while_a_pipelined_reply_is_pending_costs_no_error() -> None:
+    # Found probing `textsieve serve` (2026-12-05): twenty GETs of an evaluation report pipelined on one
+    # connection by a client that reads nothing and then resets it (SO_LINGER 0, then close) logged
+    # uvicorn's "Exception in ASGI application" and the app's "unhandled error", each with a traceback
+    # (RuntimeError: the uvloop transport is closed), for predictions as for views. uvicorn tells only
+    # the last request read that the client is gone; the one being answered ahead of it, started when
+    # the reply before it was buffered, wrote its reply to the closed transport. Here the first reply
+    # (4 MiB) fills the buffers, the second request waits until after the reset, a third is queued.
+    big = b"x" * (4 << 20)
+    seen: dict[str, str] = {}
+
+    async def app(scope: dict[str, Any], receive: Any, send: Any) -> None:
+        if scope["type"] != "http":
+            return
+        path = scope["path"]
+        body = big if path == "/big" else b"{}"
+        try:
+            if path == "/slow":
+                await asyncio.sleep(0.4)  # the client resets at 0.1 s
+                await receive()  # the request's (empty) body
+                seen["told"] = (await asyncio.wait_for(receive(), 2))["type"]
+            start = {"type": "http.response.start", "status": 200, "headers": [(b"content-length", b"%d" % len(body))]}
+            await send(start)
+            await send({"type": "http.response.body", "body": body})
+            seen[path] = "sent"
+        except Exception as exc:  # noqa: BLE001 - what the server would log with a traceback
+            seen[path] = repr(exc)
+
+    guard = ConnectionGuard(max_connections=8, read_timeout=5)
+    with guarded_uvicorn(guard, app) as address:
+        s = socket.socket()
+        s.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 4096)
+        s.connect(address)
+        s.sendall(b"".join(b"GET /%s HTTP/1.1\r\nHost: x\r\n\r\n" % p for p in (b"big", b"slow", b"next")))
+        time.sleep(0.1)
+        s.setsockopt(socket.SOL_SOCKET, socket.SO_LINGER, struct.pack("ii", 1, 0))
+        s.close()
+        deadline = time.monotonic() + 5
+        while "/slow" not in seen and time.monotonic() < deadline:
+            time.sleep(0.05)
+        # The request being answered learns that its client is gone, its reply goes nowhere quietly, and
+        # the request queued behind it never runs.
+        assert seen == {"/big": "sent", "told": "http.disconnect", "/slow": "sent"}
+        with socket.create_connection(address, timeout=5) as again:  # the server answers on
+            again.sendall(b"GET /next HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n")
+            assert again.recv(65536).startswith(b"HTTP/1.1 200 ")
+    assert guard.open == 0
 
 
 # -- header lines given more than once --------------------------------------------------------------
