@@ -39,6 +39,8 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   MUST accept the absolute form) names the root, since an empty path is "/" (RFC 9110 §4.2.3), and
   ``OPTIONS http://host`` the server as a whole, "*" (RFC 9112 §3.2.4); uvicorn found no path in them
   and answered 400 with a warning.
+- **Encoded slashes.** A ``%2F`` in a path stays ``%2F`` for routing (RFC 3986 §2.2: data in a
+  segment, not a separator); uvicorn decoded it to "/", so ``…/versions/1%2Fcard`` was the card.
 - **HTTP/1.0 framing.** An HTTP/1.0 request with ``Transfer-Encoding`` is answered 400 and the
   connection closed (RFC 9112 §6.1: its framing is faulty); it was read as chunked and answered.
 - **Clients that go away.** uvicorn tells only the last request read on a connection that the client
@@ -61,6 +63,7 @@ from __future__ import annotations
 import asyncio
 import re
 from typing import Any
+from urllib.parse import unquote
 
 import httptools
 import orjson
@@ -101,6 +104,19 @@ def _raw_response(
     if retry_after is not None:
         head.append(f"retry-after: {retry_after}")
     return ("\r\n".join(head) + "\r\n\r\n").encode("ascii") + body
+
+
+_ENCODED_SLASH = re.compile(rb"%2[fF]")
+
+
+def _path_keeping_encoded_slashes(raw_path: bytes) -> str:
+    """A request's path decoded but for its encoded slashes, which stay "%2F": RFC 3986 §2.2 makes
+    "%2F" data inside a segment, not the "/" between two. uvicorn decodes it to "/" before routing, so
+    ``/v1/models/m/versions/1%2Fcard`` was answered as ``…/versions/1/card`` and ``/v1%2Fpredict`` as
+    ``/v1/predict``: a proxy or filter in front that reads the path as written saw another resource
+    than the one answered. Now such a segment is a path parameter's value (and refused as one) or a
+    path no route answers (404)."""
+    return "%2F".join(unquote(part.decode("ascii")) for part in _ENCODED_SLASH.split(raw_path))
 
 
 def _with_path(target: bytes, method: bytes) -> bytes:
@@ -536,6 +552,8 @@ class ConnectionGuard:
                 if cycle is not None and cycle is not before:
                     self._app_has_it = True
                     self._message_done = False
+                    if b"%2" in self.url and _ENCODED_SLASH.search(cycle.scope["raw_path"]):
+                        cycle.scope["path"] = _path_keeping_encoded_slashes(cycle.scope["raw_path"])
                     if cycle.scope["method"] != "HEAD":
                         cycle.transport = _HeadWithBody(self.transport)
 

@@ -216,6 +216,67 @@ def test_a_lone_malformed_request_and_an_unknown_method_are_refused_as_before(pr
     assert reply[0] == 501 and reply[1]["type"] == "/problems/unknown-method"
 
 
+# -- percent-encoded slashes ------------------------------------------------------------------------
+_CLOSE = b"Host: x\r\nConnection: close\r\n"
+
+
+@pytest.mark.parametrize(
+    ("request_bytes", "status", "slug", "named"),
+    [
+        pytest.param(
+            b"GET /v1/models/support/versions/1%2Fcard HTTP/1.1\r\n" + _CLOSE + b"\r\n",
+            422,
+            "invalid-input",
+            "bad version '1%2Fcard'",
+            id="a version segment holding a slash (was the card)",
+        ),
+        pytest.param(
+            b"GET /v1/models/support%2fversions HTTP/1.1\r\n" + _CLOSE + b"\r\n",
+            422,
+            "invalid-input",
+            "bad model name 'support%2Fversions'",
+            id="lower-case %2f in a model name (was the version list)",
+        ),
+        pytest.param(
+            _PREDICT.replace(b"/v1/predict", b"/v1%2Fpredict")
+            + b"Connection: close\r\nContent-Length: %d\r\n\r\n" % len(_BODY)
+            + _BODY,
+            404,
+            "not-found",
+            "no such path: POST /v1%2Fpredict",
+            id="predict's path with its slash encoded (was a prediction, through the lane)",
+        ),
+        pytest.param(
+            b"POST /v1/models/support/versions/2%2Fpromote HTTP/1.1\r\n"
+            + _CLOSE
+            + b'Content-Type: application/json\r\nContent-Length: 30\r\n\r\n{"to":"live","reason":"probe"}',
+            405,
+            "method-not-allowed",
+            "/v1/models/support/versions/2%2Fpromote answers GET, HEAD, OPTIONS only",
+            id="an admin route spelt with an encoded slash: a version view (was the admin route: 401)",
+        ),
+    ],
+)
+def test_an_encoded_slash_is_data_in_its_segment_not_a_separator(
+    probed: tuple[str, Path], request_bytes: bytes, status: int, slug: str, named: str
+) -> None:
+    # RFC 3986 §2.2: "URIs that differ in the replacement of a reserved character with its corresponding
+    # percent-encoded octet are not equivalent": %2F is data inside a segment. uvicorn decoded it to "/"
+    # before routing, so these reached a route that a proxy, filter or log in front, reading the path as
+    # written, took for another resource (found probing, 2026-12-05).
+    ((got, body),) = _replies_until_closed(probed[0], request_bytes)
+    assert got == status and body["type"] == f"/problems/{slug}"
+    assert named in body["detail"]
+
+
+def test_other_percent_encodings_in_a_path_are_still_decoded(probed: tuple[str, Path]) -> None:
+    # RFC 3986 §6.2.2.2: percent-encoded unreserved characters are equivalent to the characters.
+    ((status, body),) = _replies_until_closed(
+        probed[0], b"GET /v1/models/%73upport/versions/%31 HTTP/1.1\r\n" + _CLOSE + b"\r\n"
+    )
+    assert status == 200 and body["model"] == MODEL and body["version"] == 1
+
+
 # -- clients that reset the connection ------------------------------------------------------------
 def test_a_client_resetting_while_a_pipelined_reply_is_pending_costs_no_error() -> None:
     # Found probing `textsieve serve` (2026-12-05): twenty GETs of an evaluation report pipelined on one
