@@ -37,7 +37,7 @@ from textsieve.errors import (
 )
 from textsieve.service.modelset.registry_thread import private_detail
 from textsieve.service.web.idempotency import IdempotencyKeyError
-from textsieve.service.web.methods import allowed
+from textsieve.service.web.methods import ASTERISK, SERVER_METHODS, allowed, options_reply
 
 MEDIA_TYPE = "application/problem+json"
 # Where service/web/jsonbody.py keeps a body's refusal (in the request's state) until the route's
@@ -300,8 +300,8 @@ UNKNOWN_METHOD = Kind(
     "The request method is not one this service knows",
     "The request's method is not an HTTP method the service recognises, or is CONNECT, which asks for a "
     "tunnel the service does not implement, not being a proxy (RFC 9110 §9.1 and §9.3.6: answered 501); "
-    "the connection was closed. Its paths answer GET, HEAD and POST, as the Allow header of a 405 lists "
-    "for each. Nothing was computed.",
+    "the connection was closed. Its paths answer GET, HEAD, POST and OPTIONS, as the Allow header of a 405 "
+    "or of an OPTIONS reply lists for each. Nothing was computed.",
 )
 SLUGS: dict[str, Kind] = {
     k.slug: k
@@ -497,12 +497,17 @@ async def _on_http(request: Request, exc: Exception) -> Response:
         exc.status_code, f"http-{exc.status_code}", str(exc.detail), str(exc.detail)
     )
     headers = dict(exc.headers or {})
+    if request.method == "OPTIONS":  # what the target answers, not a refusal (service/web/methods.py)
+        if exc.status_code == 405 and "Allow" in headers:
+            return options_reply(allowed(headers["Allow"].split(",")))
+        if exc.status_code == 404 and request.scope["path"] == ASTERISK:
+            return options_reply(SERVER_METHODS)
     if exc.status_code == 404:
         path = request.url.path
         hint = f"; paths here end without a slash: {path.rstrip('/')}" if len(path) > 1 and path.endswith("/") else ""
         detail = f"no such path: {request.method} {path}{hint}; see GET /v1/models or the page at /"
     elif exc.status_code == 405 and "Allow" in headers:
-        headers["Allow"] = allowed(headers["Allow"])
+        headers["Allow"] = allowed(headers["Allow"].split(","))
         detail = f"{request.url.path} answers {headers['Allow']} only (see the Allow header)"
     else:
         detail = str(exc.detail)

@@ -35,8 +35,17 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   an empty 403. RFC 9110 §7.8 lets a server ignore Upgrade, so the request is parsed again
   without it and answered as HTTP/1.1. ``CONNECT`` asks for a tunnel, which this origin server
   does not implement (it is no proxy): 501 (RFC 9110 §9.3.6 and §9.1), where it was a 400.
+- **Absolute-form targets without a path.** ``GET http://host HTTP/1.1`` (RFC 9112 §3.2.2: a server
+  MUST accept the absolute form) names the root, since an empty path is "/" (RFC 9110 §4.2.3), and
+  ``OPTIONS http://host`` the server as a whole, "*" (RFC 9112 §3.2.4); uvicorn found no path in them
+  and answered 400 with a warning.
+- **Encoded slashes.** A ``%2F`` in a path stays ``%2F`` for routing (RFC 3986 §2.2: data in a
+  segment, not a separator); uvicorn decoded it to "/", so ``…/versions/1%2Fcard`` was the card.
 - **HTTP/1.0 framing.** An HTTP/1.0 request with ``Transfer-Encoding`` is answered 400 and the
   connection closed (RFC 9112 §6.1: its framing is faulty); it was read as chunked and answered.
+- **Clients that go away.** uvicorn tells only the last request read on a connection that the client
+  is gone; the request being answered ahead of a pipelined one is told too, or its reply met the closed
+  transport (uvloop raises there) and a client's reset logged two tracebacks.
 - **Read deadline.** From the moment a connection opens, or a keep-alive connection's next
   request begins, the client has ``read_timeout_seconds`` to send the request's headers and
   whole body. Past it the connection is answered 408 (RFC 9110 §15.5.9) if no response has
@@ -54,6 +63,7 @@ from __future__ import annotations
 import asyncio
 import re
 from typing import Any
+from urllib.parse import unquote
 
 import httptools
 import orjson
@@ -94,6 +104,36 @@ def _raw_response(
     if retry_after is not None:
         head.append(f"retry-after: {retry_after}")
     return ("\r\n".join(head) + "\r\n\r\n").encode("ascii") + body
+
+
+_ENCODED_SLASH = re.compile(rb"%2[fF]")
+
+
+def _path_keeping_encoded_slashes(raw_path: bytes) -> str:
+    """A request's path decoded but for its encoded slashes, which stay "%2F": RFC 3986 §2.2 makes
+    "%2F" data inside a segment, not the "/" between two. uvicorn decodes it to "/" before routing, so
+    ``/v1/models/m/versions/1%2Fcard`` was answered as ``…/versions/1/card`` and ``/v1%2Fpredict`` as
+    ``/v1/predict``: a proxy or filter in front that reads the path as written saw another resource
+    than the one answered. Now such a segment is a path parameter's value (and refused as one) or a
+    path no route answers (404)."""
+    return "%2F".join(unquote(part.decode("ascii")) for part in _ENCODED_SLASH.split(raw_path))
+
+
+def _with_path(target: bytes, method: bytes) -> bytes:
+    """An absolute-form request target (RFC 9112 §3.2.2) whose path is empty, given one: "/" (RFC 9110
+    §4.2.3: an empty path is "/"), or for OPTIONS without a query the server as a whole, "*" (RFC 9112
+    §3.2.4). Other targets are returned as they are. uvicorn took the missing path for an unparsable
+    request: ``GET http://host HTTP/1.1``, which a server MUST accept, was a 400 and a logged warning."""
+    try:
+        parsed = httptools.parse_url(target)
+    except httptools.HttpParserInvalidURLError:
+        return target  # refused 400 where uvicorn parses it
+    if parsed.path or not parsed.schema:
+        return target
+    if method == b"OPTIONS" and not parsed.query:
+        return b"*"
+    cut = min((i for i in (target.find(b"?"), target.find(b"#")) if i >= 0), default=len(target))
+    return target[:cut] + b"/" + target[cut:]
 
 
 RETRY_AFTER_SECONDS = 1
@@ -216,8 +256,9 @@ class ConnectionGuard:
             "Not Implemented",
             UNKNOWN_METHOD.slug,
             UNKNOWN_METHOD.title,
-            "the request's method is not an HTTP method this service knows; it answers GET, HEAD and POST "
-            "(a 405 names which for each path); the connection is closed",
+            "the request's method is not an HTTP method this service knows; it answers GET, HEAD, POST and "
+            "OPTIONS (the Allow header of a 405 or an OPTIONS reply names which for each path); the connection "
+            "is closed",
             None,
         )
         # RFC 9112 §6.1: an HTTP/1.0 request with a transfer coding has faulty framing (HTTP/1.0 has no
@@ -240,7 +281,8 @@ class ConnectionGuard:
             UNKNOWN_METHOD.slug,
             UNKNOWN_METHOD.title,
             "CONNECT asks for a tunnel, and this service is not a proxy (RFC 9110 §9.3.6); it answers GET, "
-            "HEAD and POST (a 405 names which for each path); the connection is closed",
+            "HEAD, POST and OPTIONS (the Allow header of a 405 or an OPTIONS reply names which for each path); "
+            "the connection is closed",
             None,
         )
         self.max_head_bytes = max_head_bytes
@@ -299,6 +341,7 @@ class ConnectionGuard:
             _message_done = False  # the last request read is whole: what comes next begins another
             _deferred: bytes | None = None  # a refusal waiting for the replies to the requests before it
             _ahead: Any = None  # the request cycle the current one is queued behind (uvicorn keeps none)
+            _running: Any = None  # the request cycle whose application task started last
 
             def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
                 if guard.open >= guard.max_connections:
@@ -319,6 +362,19 @@ class ConnectionGuard:
                 guard.open -= 1
                 self._disarm()
                 super().connection_lost(exc)
+                # uvicorn tells only the last request read that the client is gone. When it was read
+                # behind another (pipelined), the one being answered went on to write its reply to the
+                # closed transport: uvloop raises there, and a client resetting the connection cost a
+                # RuntimeError, uvicorn's "Exception in ASGI application" and the app's own error line,
+                # each with a traceback. It is told too, so its reply goes nowhere, quietly.
+                running: Any = self._running
+                if running is not None and running is not self.cycle and not running.response_complete:
+                    running.disconnected = True
+                    running.message_event.set()
+
+            def _start_asgi_task(self, cycle: Any, app: Any) -> None:
+                self._running = cycle
+                super()._start_asgi_task(cycle, app)
 
             def data_received(self, data: bytes) -> None:
                 if self._over_cap or self._refused:
@@ -484,6 +540,8 @@ class ConnectionGuard:
                     # RFC 9110 §10.1.1 and §15.2: an HTTP/1.0 request's 100-continue is ignored, since
                     # such a client takes the first status line it reads, an interim one too, for the reply.
                     self.expect_100_continue = False
+                if self.url[:1] != b"/":
+                    self.url = _with_path(self.url, self.parser.get_method())
                 before = self.cycle
                 super().on_headers_complete()
                 cycle = self.cycle
@@ -494,6 +552,8 @@ class ConnectionGuard:
                 if cycle is not None and cycle is not before:
                     self._app_has_it = True
                     self._message_done = False
+                    if b"%2" in self.url and _ENCODED_SLASH.search(cycle.scope["raw_path"]):
+                        cycle.scope["path"] = _path_keeping_encoded_slashes(cycle.scope["raw_path"])
                     if cycle.scope["method"] != "HEAD":
                         cycle.transport = _HeadWithBody(self.transport)
 

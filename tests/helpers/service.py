@@ -123,6 +123,33 @@ def uvicorn_server(settings: Settings) -> Iterator[LiveServer]:
         thread.join(timeout=20)
 
 
+@contextlib.contextmanager
+def guarded_uvicorn(guard: Any, app: Any) -> Iterator[tuple[str, int]]:
+    """A real uvicorn on loopback with ``guard``'s protocol (``ConnectionGuard.protocol()``,
+    service/web/transport.py) in front of the ASGI ``app``, on the loop ``textsieve serve`` gets
+    (uvloop when installed); yields its address."""
+    import socket
+    import time
+
+    import uvicorn
+
+    sock = socket.socket()
+    sock.bind(("127.0.0.1", 0))
+    config = uvicorn.Config(app, http=guard.protocol(), ws="none", lifespan="off", log_level="critical")
+    server = uvicorn.Server(config)
+    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
+    thread.start()
+    try:
+        deadline = time.monotonic() + 10
+        while not server.started and time.monotonic() < deadline:
+            time.sleep(0.01)
+        yield sock.getsockname()
+    finally:
+        server.should_exit = True
+        thread.join(10)
+        sock.close()
+
+
 def log_text(caplog: pytest.LogCaptureFixture) -> str:
     """Every captured log record as one line: message, structured fields and traceback, for
     checks that a secret appears nowhere in them."""

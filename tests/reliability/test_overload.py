@@ -25,7 +25,7 @@ import httpx
 import pytest
 
 from tests.helpers.servers import running_server
-from tests.helpers.service import make_registry, serving, settings_for
+from tests.helpers.service import guarded_uvicorn, make_registry, serving, settings_for
 from textsieve.errors import DeadlinePassedError, OverloadedError
 from textsieve.service.inference.admission import Admission
 from textsieve.service.inference.batcher import QUANTUM, Batcher, _Job
@@ -535,9 +535,6 @@ def test_a_client_that_half_closes_after_its_request_still_gets_the_reply(regist
 def _guarded_uvicorn(guard: Any, seconds: float) -> Iterator[tuple[str, int]]:
     """A real uvicorn on loopback with ``guard``'s protocol, in front of an app that answers every
     request 200 ``{}`` after ``seconds`` (so a reply is still pending when what follows it is read)."""
-    import threading
-
-    import uvicorn
 
     async def app(scope: dict[str, Any], receive: Any, send: Any) -> None:
         if scope["type"] != "http":
@@ -546,21 +543,8 @@ def _guarded_uvicorn(guard: Any, seconds: float) -> Iterator[tuple[str, int]]:
         await send({"type": "http.response.start", "status": 200, "headers": [(b"content-length", b"2")]})
         await send({"type": "http.response.body", "body": b"{}"})
 
-    sock = socket.socket()
-    sock.bind(("127.0.0.1", 0))
-    config = uvicorn.Config(app, http=guard.protocol(), ws="none", lifespan="off", log_level="critical")
-    server = uvicorn.Server(config)
-    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
-    thread.start()
-    try:
-        deadline = time.monotonic() + 10
-        while not server.started and time.monotonic() < deadline:
-            time.sleep(0.01)
-        yield sock.getsockname()
-    finally:
-        server.should_exit = True
-        thread.join(10)
-        sock.close()
+    with guarded_uvicorn(guard, app) as address:
+        yield address
 
 
 def _statuses_until_closed(address: tuple[str, int], data: bytes) -> tuple[list[int], bytes]:

@@ -255,7 +255,13 @@ async def test_a_lone_surrogate_is_refused_with_its_index_as_before(
             "GET", "/v1/predict", None, 405, "method-not-allowed", ["/v1/predict answers POST"], id="GET on predict"
         ),
         pytest.param(
-            "DELETE", "/healthz", None, 405, "method-not-allowed", ["/healthz answers GET, HEAD"], id="DELETE healthz"
+            "DELETE",
+            "/healthz",
+            None,
+            405,
+            "method-not-allowed",
+            ["/healthz answers GET, HEAD, OPTIONS"],
+            id="DELETE healthz",
         ),
         pytest.param("GET", "/v1/models/nosuch", None, 404, "not-found", [], id="view of an unknown model"),
         pytest.param(
@@ -282,17 +288,70 @@ async def test_unknown_model_version_and_path(
         assert word in problem["detail"], (word, problem["detail"])
 
 
-@pytest.mark.parametrize(
-    ("path", "allow"), [("/v1/predict", "POST"), ("/healthz", "GET, HEAD"), ("/metrics", "GET, HEAD")]
-)
+_READ = "GET, HEAD, OPTIONS"
+_WRITE = "POST, OPTIONS"
+# Every path the service answers, and its methods (the OpenAPI document's operations, HEAD beside GET,
+# OPTIONS everywhere), the page, the document itself and the problem types' pages included.
+PATH_METHODS = [
+    ("/v1/predict", _WRITE),
+    ("/v1/verdicts", _WRITE),
+    (f"/v1/models/{MODEL}/versions/2/promote", _WRITE),
+    (f"/v1/models/{MODEL}/rollback", _WRITE),
+    ("/v1/models", _READ),
+    (f"/v1/models/{MODEL}", _READ),
+    (f"/v1/models/{MODEL}/versions", _READ),
+    (f"/v1/models/{MODEL}/versions/1", _READ),
+    (f"/v1/models/{MODEL}/versions/1/report", _READ),
+    (f"/v1/models/{MODEL}/versions/1/card", _READ),
+    (f"/v1/models/{MODEL}/drift", _READ),
+    ("/healthz", _READ),
+    ("/readyz", _READ),
+    ("/metrics", _READ),
+    ("/", _READ),
+    ("/openapi.json", _READ),
+    ("/problems/overloaded", _READ),
+]
+
+
+@pytest.mark.parametrize(("path", "allow"), PATH_METHODS)
 async def test_a_405_lists_every_allowed_method_head_beside_get(
     shared_client: httpx.AsyncClient, path: str, allow: str
 ) -> None:
     # RFC 9110 §15.5.6: a 405 carries Allow with the target's methods; §9.1: a server that
-    # answers GET answers HEAD too, so Allow names both.
-    r = await shared_client.request("PUT", path)
-    assert_problem(r, 405, "method-not-allowed")
+    # answers GET answers HEAD too, so Allow names both; and OPTIONS, which every path answers.
+    for method in ("PUT", "DELETE", "PATCH", "TRACE", "GET" if allow == _WRITE else "POST"):
+        r = await shared_client.request(method, path)
+        body = assert_problem(r, 405, "method-not-allowed")
+        assert r.headers["allow"] == allow, method
+        assert f"answers {allow} only" in body["detail"]
+
+
+@pytest.mark.parametrize(("path", "allow"), PATH_METHODS)
+async def test_options_names_the_methods_of_every_path_without_cors_or_a_body(
+    shared_client: httpx.AsyncClient, path: str, allow: str
+) -> None:
+    # RFC 9110 §9.3.7: OPTIONS asks for the target's communication options, answered with Allow;
+    # §15.3.5 and §8.6: a 204 has no content and no Content-Length. It was a 405 naming the methods,
+    # none of them OPTIONS. The page is same-origin: no CORS headers (an origin is no caller's proof).
+    r = await shared_client.options(path, headers={"Origin": "http://elsewhere.example"})
+    assert r.status_code == 204, r.text
+    assert r.content == b""
     assert r.headers["allow"] == allow
+    assert "content-length" not in r.headers and "content-type" not in r.headers
+    assert r.headers["x-request-id"]
+    assert not [name for name in r.headers if name.startswith("access-control-")]
+
+
+async def test_options_on_no_path_is_a_404_and_the_lane_agrees_with_the_full_app(shared_registry: Path) -> None:
+    # The predict lane takes only POST: OPTIONS and GET on its path reach the full app, whichever is in front.
+    for fast_lane in (True, False):
+        async with serving(settings_for(shared_registry), fast_lane=fast_lane) as (_, client):
+            assert_problem(await client.options("/v1/nosuch"), 404, "not-found")
+            r = await client.options("/v1/predict")
+            assert (r.status_code, r.headers["allow"], r.content) == (204, _WRITE, b"")
+            r = await client.get("/v1/predict")
+            assert_problem(r, 405, "method-not-allowed")
+            assert r.headers["allow"] == _WRITE
 
 
 @pytest.fixture(scope="module")

@@ -7,9 +7,12 @@ the RFCs each test names.
 
 from __future__ import annotations
 
+import asyncio
 import gzip
 import json
 import socket
+import struct
+import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -18,8 +21,18 @@ import httpx
 import pytest
 
 from tests.helpers.servers import running_server
-from tests.helpers.service import ADMIN_TOKEN, AUTH, MODEL, REVIEW_AUTH, REVIEW_TOKEN, assert_problem, make_registry
+from tests.helpers.service import (
+    ADMIN_TOKEN,
+    AUTH,
+    MODEL,
+    REVIEW_AUTH,
+    REVIEW_TOKEN,
+    assert_problem,
+    guarded_uvicorn,
+    make_registry,
+)
 from textsieve.registry import open_registry
+from textsieve.service.web.transport import ConnectionGuard
 
 
 @pytest.fixture(scope="module")
@@ -203,6 +216,117 @@ def test_a_lone_malformed_request_and_an_unknown_method_are_refused_as_before(pr
     assert reply[0] == 501 and reply[1]["type"] == "/problems/unknown-method"
 
 
+# -- percent-encoded slashes ------------------------------------------------------------------------
+_CLOSE = b"Host: x\r\nConnection: close\r\n"
+
+
+@pytest.mark.parametrize(
+    ("request_bytes", "status", "slug", "named"),
+    [
+        pytest.param(
+            b"GET /v1/models/support/versions/1%2Fcard HTTP/1.1\r\n" + _CLOSE + b"\r\n",
+            422,
+            "invalid-input",
+            "bad version '1%2Fcard'",
+            id="a version segment holding a slash (was the card)",
+        ),
+        pytest.param(
+            b"GET /v1/models/support%2fversions HTTP/1.1\r\n" + _CLOSE + b"\r\n",
+            422,
+            "invalid-input",
+            "bad model name 'support%2Fversions'",
+            id="lower-case %2f in a model name (was the version list)",
+        ),
+        pytest.param(
+            _PREDICT.replace(b"/v1/predict", b"/v1%2Fpredict")
+            + b"Connection: close\r\nContent-Length: %d\r\n\r\n" % len(_BODY)
+            + _BODY,
+            404,
+            "not-found",
+            "no such path: POST /v1%2Fpredict",
+            id="predict's path with its slash encoded (was a prediction, through the lane)",
+        ),
+        pytest.param(
+            b"POST /v1/models/support/versions/2%2Fpromote HTTP/1.1\r\n"
+            + _CLOSE
+            + b'Content-Type: application/json\r\nContent-Length: 30\r\n\r\n{"to":"live","reason":"probe"}',
+            405,
+            "method-not-allowed",
+            "/v1/models/support/versions/2%2Fpromote answers GET, HEAD, OPTIONS only",
+            id="an admin route spelt with an encoded slash: a version view (was the admin route: 401)",
+        ),
+    ],
+)
+def test_an_encoded_slash_is_data_in_its_segment_not_a_separator(
+    probed: tuple[str, Path], request_bytes: bytes, status: int, slug: str, named: str
+) -> None:
+    # RFC 3986 §2.2: "URIs that differ in the replacement of a reserved character with its corresponding
+    # percent-encoded octet are not equivalent": %2F is data inside a segment. uvicorn decoded it to "/"
+    # before routing, so these reached a route that a proxy, filter or log in front, reading the path as
+    # written, took for another resource (found probing, 2026-12-05).
+    ((got, body),) = _replies_until_closed(probed[0], request_bytes)
+    assert got == status and body["type"] == f"/problems/{slug}"
+    assert named in body["detail"]
+
+
+def test_other_percent_encodings_in_a_path_are_still_decoded(probed: tuple[str, Path]) -> None:
+    # RFC 3986 §6.2.2.2: percent-encoded unreserved characters are equivalent to the characters.
+    ((status, body),) = _replies_until_closed(
+        probed[0], b"GET /v1/models/%73upport/versions/%31 HTTP/1.1\r\n" + _CLOSE + b"\r\n"
+    )
+    assert status == 200 and body["model"] == MODEL and body["version"] == 1
+
+
+# -- clients that reset the connection ------------------------------------------------------------
+def test_a_client_resetting_while_a_pipelined_reply_is_pending_costs_no_error() -> None:
+    # Found probing `textsieve serve` (2026-12-05): twenty GETs of an evaluation report pipelined on one
+    # connection by a client that reads nothing and then resets it (SO_LINGER 0, then close) logged
+    # uvicorn's "Exception in ASGI application" and the app's "unhandled error", each with a traceback
+    # (RuntimeError: the uvloop transport is closed), for predictions as for views. uvicorn tells only
+    # the last request read that the client is gone; the one being answered ahead of it, started when
+    # the reply before it was buffered, wrote its reply to the closed transport. Here the first reply
+    # (4 MiB) fills the buffers, the second request waits until after the reset, a third is queued.
+    big = b"x" * (4 << 20)
+    seen: dict[str, str] = {}
+
+    async def app(scope: dict[str, Any], receive: Any, send: Any) -> None:
+        if scope["type"] != "http":
+            return
+        path = scope["path"]
+        body = big if path == "/big" else b"{}"
+        try:
+            if path == "/slow":
+                await asyncio.sleep(0.4)  # the client resets at 0.1 s
+                await receive()  # the request's (empty) body
+                seen["told"] = (await asyncio.wait_for(receive(), 2))["type"]
+            start = {"type": "http.response.start", "status": 200, "headers": [(b"content-length", b"%d" % len(body))]}
+            await send(start)
+            await send({"type": "http.response.body", "body": body})
+            seen[path] = "sent"
+        except Exception as exc:  # noqa: BLE001 - what the server would log with a traceback
+            seen[path] = repr(exc)
+
+    guard = ConnectionGuard(max_connections=8, read_timeout=5)
+    with guarded_uvicorn(guard, app) as address:
+        s = socket.socket()
+        s.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 4096)
+        s.connect(address)
+        s.sendall(b"".join(b"GET /%s HTTP/1.1\r\nHost: x\r\n\r\n" % p for p in (b"big", b"slow", b"next")))
+        time.sleep(0.1)
+        s.setsockopt(socket.SOL_SOCKET, socket.SO_LINGER, struct.pack("ii", 1, 0))
+        s.close()
+        deadline = time.monotonic() + 5
+        while "/slow" not in seen and time.monotonic() < deadline:
+            time.sleep(0.05)
+        # The request being answered learns that its client is gone, its reply goes nowhere quietly, and
+        # the request queued behind it never runs.
+        assert seen == {"/big": "sent", "told": "http.disconnect", "/slow": "sent"}
+        with socket.create_connection(address, timeout=5) as again:  # the server answers on
+            again.sendall(b"GET /next HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n")
+            assert again.recv(65536).startswith(b"HTTP/1.1 200 ")
+    assert guard.open == 0
+
+
 # -- header lines given more than once --------------------------------------------------------------
 @pytest.mark.parametrize("compressed", [True, False], ids=["gzip body", "plain body declared gzip"])
 @pytest.mark.parametrize(
@@ -381,7 +505,81 @@ def test_connect_is_answered_501_as_a_method_this_origin_server_does_not_impleme
     # "not valid HTTP", though the code's comment promised a 405.
     ((status, body),) = _replies_until_closed(probed[0], b"CONNECT x:443 HTTP/1.1\r\nHost: x:443\r\n\r\n")
     assert status == 501 and body["type"] == "/problems/unknown-method"
-    assert "CONNECT" in body["detail"] and "GET, HEAD and POST" in body["detail"]
+    assert "CONNECT" in body["detail"] and "GET, HEAD, POST and OPTIONS" in body["detail"]
+
+
+# -- OPTIONS and absolute-form targets ---------------------------------------------------------------
+def _replies_with_heads(url: str, data: bytes) -> list[tuple[int, dict[str, str], bytes]]:
+    """Send ``data`` (its last request saying ``Connection: close``) and read each reply's status,
+    header fields and body until the server closes the connection (no HEAD: its replies have no body)."""
+    host, port = url.removeprefix("http://").split(":")
+    got = b""
+    with socket.create_connection((host, int(port)), timeout=20) as s:
+        s.sendall(data)
+        while chunk := s.recv(65536):
+            got += chunk
+    replies = []
+    while got:
+        head, sep, rest = got.partition(b"\r\n\r\n")
+        assert sep, got
+        lines = head.decode("latin-1").split("\r\n")
+        fields = {name.lower(): value for name, value in (line.split(": ", 1) for line in lines[1:])}
+        length = int(fields.get("content-length", "0"))
+        replies.append((int(lines[0].split(" ")[1]), fields, rest[:length]))
+        got = rest[length:]
+    return replies
+
+
+def _check_options_replies(replies: list[tuple[int, dict[str, str], bytes]]) -> None:
+    for status, fields, body in replies:
+        if status == 204:
+            assert body == b"" and "content-length" not in fields and "content-type" not in fields
+            assert not [name for name in fields if name.startswith("access-control-")]
+
+
+def test_options_names_the_methods_of_a_path_and_options_star_those_of_the_server(probed: tuple[str, Path]) -> None:
+    # RFC 9110 §9.3.7: OPTIONS asks for the target's communication options (Allow); "OPTIONS *" (RFC 9112
+    # §3.2.4) for the server's as a whole. Both were refused: 405 on a path, 404 ("no such path") for "*".
+    # The replies follow on one connection, so the 204s are framed as having no content (RFC 9110 §8.6).
+    host = b"Host: x\r\n"
+    data = (
+        b"OPTIONS * HTTP/1.1\r\n" + host + b"\r\n"
+        b"OPTIONS /readyz HTTP/1.1\r\n" + host + b"\r\n"
+        b"GET /healthz HTTP/1.1\r\n" + host + b"\r\n"
+        b"OPTIONS /v1/predict HTTP/1.1\r\n" + host + b"Connection: close\r\n\r\n"
+    )
+    replies = _replies_with_heads(probed[0], data)
+    assert [(status, fields.get("allow")) for status, fields, _ in replies] == [
+        (204, "GET, HEAD, POST, OPTIONS"),
+        (204, "GET, HEAD, OPTIONS"),
+        (200, None),
+        (204, "POST, OPTIONS"),
+    ]
+    assert json.loads(replies[2][2]) == {"status": "alive"}
+    _check_options_replies(replies)
+
+
+def test_an_absolute_form_target_without_a_path_is_read_as_the_root(probed: tuple[str, Path]) -> None:
+    # RFC 9112 §3.2.2: a server MUST accept the absolute form; RFC 9110 §4.2.3 reads an empty path as
+    # "/", and RFC 9112 §3.2.4 an OPTIONS target with an empty path and no query as "*". "GET http://x"
+    # was a 400 "not valid HTTP", with uvicorn's warning in the log.
+    host = b"Host: x\r\n"
+    data = (
+        b"GET http://x:80 HTTP/1.1\r\n" + host + b"\r\n"
+        b"GET http://x?q=1 HTTP/1.1\r\n" + host + b"\r\n"
+        b"OPTIONS http://x HTTP/1.1\r\n" + host + b"\r\n"
+        b"OPTIONS http://x?q HTTP/1.1\r\n" + host + b"Connection: close\r\n\r\n"
+    )
+    replies = _replies_with_heads(probed[0], data)
+    assert [(status, fields.get("allow")) for status, fields, _ in replies] == [
+        (200, None),
+        (200, None),
+        (204, "GET, HEAD, POST, OPTIONS"),
+        (204, "GET, HEAD, OPTIONS"),  # with a query, the target is the page at "/"
+    ]
+    for _, fields, body in replies[:2]:
+        assert fields["content-type"].startswith("text/html") and b"textsieve" in body
+    _check_options_replies(replies)
 
 
 def _first_reply(url: str, head: bytes) -> tuple[int, dict[str, Any]]:

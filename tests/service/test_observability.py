@@ -202,6 +202,21 @@ async def test_a_client_gone_mid_body_is_booked_499_not_500(shared_registry: Pat
     assert not [k for k in samples if k[0] == "textsieve_http_requests_total" and ("status", "500") in k[1]]
 
 
+async def test_the_openapi_document_is_booked_under_its_own_route(shared_registry: Path) -> None:
+    # FastAPI serves /openapi.json through a plain Starlette route, which names no route on the request:
+    # its fetches were booked under "unmatched", with the 404s (found probing, 2026-12-05).
+    async with serving(settings_for(shared_registry)) as (_, client):
+        assert (await client.get("/openapi.json")).status_code == 200
+        assert (await client.head("/openapi.json")).status_code == 200
+        assert (await client.get("/no-such-path")).status_code == 404
+        samples = outside((await client.get("/metrics")).text)
+    for method, route, status in (("GET", "/openapi.json", "200"), ("HEAD", "/openapi.json", "200")):
+        key = (("method", method), ("route", route), ("status", status))
+        assert samples[("textsieve_http_requests_total", key)] == 1, key
+    unmatched = (("method", "GET"), ("route", "unmatched"), ("status", "200"))
+    assert ("textsieve_http_requests_total", unmatched) not in samples
+
+
 def _logged_request(log: Path, rid: str, timeout: float = 5.0) -> dict[str, Any]:
     """The access-log line of request ``rid`` in a server's JSON log (written within a flush or two)."""
     end = time.monotonic() + timeout
