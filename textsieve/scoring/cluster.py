@@ -7,7 +7,8 @@ by this process as a partitioned Parquet dataset.
 - The bundle: this process resolves the version once and fetches it from the registry (every blob
   re-hashed), then ships its files to every worker once (``scatter(broadcast=True)``). A worker checks
   each file's sha256 against the registry's record once, keeps the folder for the run, and keeps one
-  single-thread onnxruntime session per worker thread.
+  single-thread onnxruntime session per worker thread; as the local pool's workers, it does not repeat
+  the graph check (onnx's checker) that the version passed when it was published.
 - Results come back as Arrow tables and this process writes ``part-NNNNN.parquet`` (one per
   partition, input order) into a temporary folder that is renamed to OUTPUT when every partition is
   in; ``_textsieve.json`` beside the parts records the model, version and bundle sha256 once.
@@ -117,6 +118,7 @@ def _bundle_folder(payload: Payload) -> Path:
 
 def _predictor(payload: Payload) -> Predictor:
     """One session per worker thread: onnxruntime sessions are run by one thread at a time here."""
+    from textsieve.registry.bundle import open_bundle
     from textsieve.registry.runtime import Predictor
 
     sessions: dict[str, Predictor] | None = getattr(_THREAD, "sessions", None)
@@ -124,7 +126,12 @@ def _predictor(payload: Payload) -> Predictor:
         sessions = _THREAD.sessions = {}
     found = sessions.get(payload.bundle_sha256)
     if found is None:
-        found = sessions[payload.bundle_sha256] = Predictor.from_bundle(_bundle_folder(payload), threads=1)
+        # As the local pool's workers (scoring/pool.py): every file is hashed against the registry's
+        # record, but the graph check, which passed when the version was published, is not repeated:
+        # its import of the onnx package cost each worker ~0.5 s of its first partition
+        # (bench/README.md, "Where a Dask run's extra time goes").
+        checked = open_bundle(_bundle_folder(payload), check_onnx=False)
+        found = sessions[payload.bundle_sha256] = Predictor.from_bundle(checked, threads=1)
     return found
 
 
