@@ -175,10 +175,14 @@ def _dask(work: Path, registry: Path, source: Path, local_seconds: float) -> dic
         "seconds": round(got["seconds"], 2),
         "local_seconds": round(local_seconds, 2),
         "dask_vs_local": round(local_seconds / got["seconds"], 3),
+        # Measured 2026-12-05 (bench/README.md, "Where a Dask run's extra time goes"), 100,000 rows.
         "overhead": (
-            "client start and connection, shipping the bundle to each worker, one scheduler round trip and one "
-            "Arrow table sent back per partition, the client writing the parts; on one 2-core machine the "
-            "scheduler and the client also take CPU from the two single-thread workers"
+            "~0.6 s before the first partition starts (the client's imports of textsieve and distributed, "
+            "connecting, the 4 MB bundle to each worker); each worker's first partition imports pandas (through "
+            "pyarrow), onnxruntime and textsieve and builds its session (~0.3 s); each worker reads its rows "
+            "as Python rows, lays them out and converts them to Arrow (~0.2 CPU-s a 50,000 rows, the local run's "
+            "parent's work); Dask itself takes ~0.15 CPU-s in the scheduler and ~0.1-0.3 in each worker, on the "
+            "two cores the workers score on: ~1.2 CPU-s above the local run's ~3.6"
         ),
     }
 

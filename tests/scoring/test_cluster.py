@@ -77,6 +77,40 @@ def test_a_multi_partition_parquet_file_scored_on_two_workers_equals_local_scori
     assert (meta["model"], meta["version"], meta["rows"], meta["partitions"]) == (MODEL, 1, 3000, 8)
 
 
+def test_a_worker_checks_the_bundle_s_files_but_not_its_graph_again(
+    loopback_cluster: DaskCluster, scoring_registry: Path, tmp_path: Path
+) -> None:
+    """As the local pool's workers: onnx's checker passed the version when it was published, and its
+    import cost each Dask worker ~0.5 s of its first partition (bench/README.md)."""
+    from distributed import Client
+
+    src = _parquet(tmp_path / "uci.parquet", uci_rows()[:500], group=250)
+    out = tmp_path / "dataset"
+    assert main(["score", str(src), "--model", MODEL, "--out", str(out), "--registry", str(scoring_registry),
+                 "--cluster", loopback_cluster.address]) == 0  # fmt: skip
+    with Client(loopback_cluster.address, timeout="30s", set_as_default=False) as client:
+        seen = client.run(lambda: sorted(m for m in ("onnx", "onnxruntime") if m in sys.modules))
+    assert list(seen.values()) == [["onnxruntime"]] * 2  # both workers scored, neither imported onnx
+
+
+def test_the_sample_of_a_parquet_file_is_its_first_rows(tmp_path: Path) -> None:
+    """Only the first 1,000 rows of the first row group are read for the sample (they fix the output's
+    layout), not the whole row group."""
+    import pyarrow.parquet as pq
+
+    from textsieve.scoring.cluster import SAMPLE_ROWS, _sample, partitions
+
+    rows = uci_rows()
+    for group in (3000, 2500, 400):  # the first row group longer or shorter than the sample
+        src = _parquet(tmp_path / f"g{group}.parquet", rows, group=group)
+        parts, _ = partitions(str(src), "parquet", 1 << 20)
+        sample = _sample(parts)
+        assert len(sample) == min(SAMPLE_ROWS, group)
+        assert sample == pq.read_table(src).to_pylist()[: len(sample)]
+    small = _parquet(tmp_path / "small.parquet", rows[:7], group=10)
+    assert _sample(partitions(str(small), "parquet", 1 << 20)[0]) == pq.read_table(small).to_pylist()
+
+
 def test_jsonl_split_at_byte_offsets_loses_and_repeats_no_line(
     loopback_cluster: DaskCluster, scoring_registry: Path, tmp_path: Path
 ) -> None:

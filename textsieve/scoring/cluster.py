@@ -7,7 +7,8 @@ by this process as a partitioned Parquet dataset.
 - The bundle: this process resolves the version once and fetches it from the registry (every blob
   re-hashed), then ships its files to every worker once (``scatter(broadcast=True)``). A worker checks
   each file's sha256 against the registry's record once, keeps the folder for the run, and keeps one
-  single-thread onnxruntime session per worker thread.
+  single-thread onnxruntime session per worker thread; as the local pool's workers, it does not repeat
+  the graph check (onnx's checker) that the version passed when it was published.
 - Results come back as Arrow tables and this process writes ``part-NNNNN.parquet`` (one per
   partition, input order) into a temporary folder that is renamed to OUTPUT when every partition is
   in; ``_textsieve.json`` beside the parts records the model, version and bundle sha256 once.
@@ -117,6 +118,7 @@ def _bundle_folder(payload: Payload) -> Path:
 
 def _predictor(payload: Payload) -> Predictor:
     """One session per worker thread: onnxruntime sessions are run by one thread at a time here."""
+    from textsieve.registry.bundle import open_bundle
     from textsieve.registry.runtime import Predictor
 
     sessions: dict[str, Predictor] | None = getattr(_THREAD, "sessions", None)
@@ -124,7 +126,12 @@ def _predictor(payload: Payload) -> Predictor:
         sessions = _THREAD.sessions = {}
     found = sessions.get(payload.bundle_sha256)
     if found is None:
-        found = sessions[payload.bundle_sha256] = Predictor.from_bundle(_bundle_folder(payload), threads=1)
+        # As the local pool's workers (scoring/pool.py): every file is hashed against the registry's
+        # record, but the graph check, which passed when the version was published, is not repeated:
+        # its import of the onnx package cost each worker ~0.5 s of its first partition
+        # (bench/README.md, "Where a Dask run's extra time goes").
+        checked = open_bundle(_bundle_folder(payload), check_onnx=False)
+        found = sessions[payload.bundle_sha256] = Predictor.from_bundle(checked, threads=1)
     return found
 
 
@@ -236,12 +243,34 @@ def partitions(url: str, fmt: str, partition_bytes: int) -> tuple[list[Partition
 
 
 def _sample(parts: Sequence[Partition]) -> list[Any]:
+    """The input's first ``SAMPLE_ROWS`` rows, read on this process before any partition is sent."""
     if not parts:
         return []
     first = parts[0]
-    if first.fmt == "jsonl":
-        first = Partition(0, first.url, first.fmt, 0, min(first.end, SAMPLE_BYTES))
+    if first.fmt == "parquet":
+        return _parquet_head(first, SAMPLE_ROWS)
+    first = Partition(0, first.url, first.fmt, 0, min(first.end, SAMPLE_BYTES))
     return read_partition(first)[:SAMPLE_ROWS]
+
+
+def _parquet_head(part: Partition, count: int) -> list[Any]:
+    """The first ``count`` rows of the partition's row groups. Reading the first row group whole as
+    Python rows to keep 1,000 of them took ~0.6 s of this process's CPU, before any work was sent,
+    for the 125,000 rows of a 1,000,000-row file's first row group (bench/README.md, "Where a Dask
+    run's extra time goes")."""
+    import fsspec
+    import pyarrow.parquet as pq
+
+    with _parquet_source(*fsspec.core.url_to_fs(part.url)) as source:
+        pf = pq.ParquetFile(source)
+        try:
+            batches = pf.iter_batches(batch_size=count, row_groups=list(part.row_groups))
+            head = next(batches, None)
+            del batches
+        finally:
+            pf.close()
+    rows: list[Any] = [] if head is None else head.to_pylist()
+    return rows
 
 
 def _layout(

@@ -47,9 +47,28 @@ class Scored:
     spans: list[list[dict[str, object]]] | None
 
 
+# Texts handed to one Predictor.run at most. Its outputs hold every filter's pooled value, position
+# and contribution to every class for each text (the demo model: 300 filters × 4 classes, ~8 KB a
+# text), all alive until the call returns. A Dask partition is a whole row group: at 125,000 rows
+# scored in one call, each worker peaked at 2.6 GB and spent twice the CPU of the same texts in
+# pieces (bench/README.md, "Where a Dask run's extra time goes"). Pieces of 2,048, as the local
+# pool's (scoring/pool.py pieces), cost no more a text than any larger piece measured.
+PIECE = 2048
+
+
 def score_texts(predictor: Predictor, texts: Sequence[str], spans: int) -> Scored:
     """The service's arithmetic (Predictor.run, temperature-scaled softmax, spans) without building
-    a Prediction object per text."""
+    a Prediction object per text; at most ``PIECE`` texts at a time, whatever ``len(texts)``."""
+    if len(texts) <= PIECE:
+        return _score_piece(predictor, texts, spans)
+    import numpy as np
+
+    done = [_score_piece(predictor, texts[lo : lo + PIECE], spans) for lo in range(0, len(texts), PIECE)]
+    found = None if spans <= 0 else list(chain.from_iterable(p.spans or () for p in done))
+    return Scored(np.concatenate([p.best for p in done]), np.concatenate([p.probabilities for p in done]), found)
+
+
+def _score_piece(predictor: Predictor, texts: Sequence[str], spans: int) -> Scored:
     encoded = [predictor.encode(t, offsets=spans > 0) for t in texts]
     out = predictor.run(encoded)
     probs = predictor.probabilities(out.logits)
