@@ -119,6 +119,24 @@ def _path_keeping_encoded_slashes(raw_path: bytes) -> str:
     return "%2F".join(unquote(part.decode("ascii")) for part in _ENCODED_SLASH.split(raw_path))
 
 
+def _names_a_probe(target: bytes) -> bool:
+    """Whether ``target`` is routed to a probe: decided on the path the request is routed by (as uvicorn
+    and :func:`_path_keeping_encoded_slashes` make ``scope["path"]``, which the access middleware reads),
+    so ``GET http://x/healthz`` (absolute form, RFC 9112 §3.2.2) and ``GET /%68ealthz`` are probes as
+    ``GET /healthz`` is. The raw target was compared: those counted against the request limit and were
+    refused 503 at it, though answered by the probe's route."""
+    path = target.split(b"?", 1)[0]
+    if path in _PROBE_TARGETS:
+        return True
+    if path[:1] == b"/" and b"%" not in path:
+        return False  # the common case: an origin-form path that decodes to itself
+    try:
+        raw = httptools.parse_url(target).path
+        return raw is not None and _path_keeping_encoded_slashes(raw) in PROBE_PATHS
+    except (httptools.HttpParserInvalidURLError, UnicodeDecodeError):
+        return False  # refused 400 where uvicorn parses it
+
+
 def _with_path(target: bytes, method: bytes) -> bytes:
     """An absolute-form request target (RFC 9112 §3.2.2) whose path is empty, given one: "/" (RFC 9110
     §4.2.3: an empty path is "/"), or for OPTIONS without a query the server as a whole, "*" (RFC 9112
@@ -518,7 +536,7 @@ class ConnectionGuard:
                     guard.malformed_requests += 1
                     self._close_with(guard.coding_in_http_1_0, 400)
                     return
-                if self.url.split(b"?", 1)[0] not in _PROBE_TARGETS and not guard.request_may_start():
+                if not _names_a_probe(self.url) and not guard.request_may_start():
                     cycle: Any = self.cycle
                     pipelined = cycle is not None and not cycle.response_complete
                     if pipelined or not self.parser.should_keep_alive():
