@@ -39,6 +39,10 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   MUST accept the absolute form) names the root, since an empty path is "/" (RFC 9110 §4.2.3), and
   ``OPTIONS http://host`` the server as a whole, "*" (RFC 9112 §3.2.4); uvicorn found no path in them
   and answered 400 with a warning.
+- **Targets a request may not carry.** A fragment (``/v1/predict#x``: RFC 9112 §3.2 has none in a
+  request target) and ``*`` for another method than OPTIONS (RFC 9112 §3.2.4) are answered 400 and the
+  connection closed (RFC 9112 §3: an invalid request-line is refused, not corrected); uvicorn dropped the
+  fragment and answered the path, and routed ``GET *`` as the path "*" (404).
 - **Encoded slashes.** A ``%2F`` in a path stays ``%2F`` for routing (RFC 3986 §2.2: data in a
   segment, not a separator); uvicorn decoded it to "/", so ``…/versions/1%2Fcard`` was the card.
 - **HTTP/1.0 framing.** An HTTP/1.0 request with ``Transfer-Encoding`` is answered 400 and the
@@ -76,6 +80,7 @@ from textsieve.service.web.problems import HEAD_TOO_LARGE, MALFORMED, MEDIA_TYPE
 # replica by, so they are never refused by the request limit (a busy replica is alive).
 PROBE_PATHS = frozenset({"/healthz", "/readyz", "/metrics"})
 _PROBE_TARGETS = frozenset(p.encode() for p in PROBE_PATHS)
+_ASTERISK = b"*"  # the asterisk-form target (RFC 9112 §3.2.4): OPTIONS only
 WITH_BODY = frozenset({"POST", "PUT", "PATCH"})
 # A request line: a method token (RFC 9110 §5.6.2), a target and an HTTP version.
 _REQUEST_LINE = re.compile(rb"[!#$%&'*+.^_`|~0-9A-Za-z-]+ [^ \r\n]+ HTTP/[0-9]\.[0-9]\r?\n")
@@ -301,6 +306,30 @@ class ConnectionGuard:
             "CONNECT asks for a tunnel, and this service is not a proxy (RFC 9110 §9.3.6); it answers GET, "
             "HEAD, POST and OPTIONS (the Allow header of a 405 or an OPTIONS reply names which for each path); "
             "the connection is closed",
+            None,
+        )
+        # RFC 9112 §3: an invalid request-line is answered 400 (or redirected), not corrected and
+        # answered, as it "might be deliberately crafted to bypass security filters along the request chain".
+        # A fragment is no part of a request target (RFC 9112 §3.2: neither origin-form nor absolute-URI has
+        # one; RFC 9110 §7.1: it is left to the client); uvicorn dropped it and answered the path before it.
+        self.fragment = _raw_response(
+            MALFORMED.status,
+            "Bad Request",
+            MALFORMED.slug,
+            MALFORMED.title,
+            "the request target holds a fragment ('#' and what follows), which a request target may not "
+            "(RFC 9112 §3.2): send the path and query alone; the connection is closed",
+            None,
+        )
+        # The asterisk form names the server as a whole, for OPTIONS alone (RFC 9112 §3.2.4); "GET *" was
+        # routed as the path "*" and answered 404 "no such path: GET /*".
+        self.asterisk_not_options = _raw_response(
+            MALFORMED.status,
+            "Bad Request",
+            MALFORMED.slug,
+            MALFORMED.title,
+            "the request target '*' is for OPTIONS only (RFC 9112 §3.2.4): send other methods to a path, "
+            "such as /healthz or /v1/models; the connection is closed",
             None,
         )
         self.max_head_bytes = max_head_bytes
@@ -535,6 +564,10 @@ class ConnectionGuard:
                 if self.parser.get_http_version() == "1.0" and any(n == b"transfer-encoding" for n, _ in self.headers):
                     guard.malformed_requests += 1
                     self._close_with(guard.coding_in_http_1_0, 400)
+                    return
+                if b"#" in self.url or (self.url == _ASTERISK and self.parser.get_method() != b"OPTIONS"):
+                    guard.malformed_requests += 1
+                    self._close_with(guard.fragment if b"#" in self.url else guard.asterisk_not_options, 400)
                     return
                 if not _names_a_probe(self.url) and not guard.request_may_start():
                     cycle: Any = self.cycle
