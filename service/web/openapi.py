@@ -23,8 +23,8 @@ from enum import StrEnum
 from typing import Any
 
 from fastapi import FastAPI
-from starlette.routing import Route
-from starlette.types import ASGIApp, Receive, Scope, Send
+from starlette.routing import Match, Route
+from starlette.types import Scope
 
 from textsieve.service.web.problems import MEDIA_TYPE
 
@@ -130,21 +130,29 @@ def install(app: FastAPI) -> None:
         return app.openapi_schema
 
     app.openapi = openapi  # type: ignore[method-assign]
-    for route in app.router.routes:
+    routes = app.router.routes
+    for i, route in enumerate(routes):
         if type(route) is Route and route.path == app.openapi_url:
-            route.app = _naming(route, route.app)
+            routes[i] = _NamedRoute(
+                route.path,
+                route.endpoint,
+                methods=route.methods,
+                name=route.name,
+                include_in_schema=route.include_in_schema,
+            )
 
 
-def _naming(route: Route, inner: ASGIApp) -> ASGIApp:
-    """``inner`` with ``route`` named on the request, as FastAPI's own routes name themselves. FastAPI
-    serves the document through a plain Starlette route, which names none: the access log and
-    ``/metrics`` booked every fetch of /openapi.json under ``unmatched``, with the 404s."""
+class _NamedRoute(Route):
+    """A Starlette route that names itself on the request, as FastAPI's own routes do. FastAPI serves the
+    document through a plain Starlette route, which names none: the access log and ``/metrics`` booked
+    every fetch of /openapi.json under ``unmatched``, with the 404s. Named when it matches, its 405s (a
+    POST, say), which the route refuses before its endpoint runs, are booked under it too."""
 
-    async def app(scope: Scope, receive: Receive, send: Send) -> None:
-        scope["route"] = route
-        await inner(scope, receive, send)
-
-    return app
+    def matches(self, scope: Scope) -> tuple[Match, Scope]:
+        match, child_scope = super().matches(scope)
+        if match is not Match.NONE:
+            child_scope["route"] = self
+        return match, child_scope
 
 
 __all__ = ["ADMIN_SCHEME", "REVIEW_SCHEME", "TAGS", "Tag", "install", "rewrite"]

@@ -283,7 +283,8 @@ MALFORMED = Kind(
     "malformed-request",
     "The request is not valid HTTP",
     "The request line, a header (an HTTP/1.1 request has exactly one Host: a host name or address, maybe with "
-    "a port), the Content-Length or the chunked framing could not be parsed as HTTP/1.1 (RFC 9112); the "
+    "a port), the Content-Length or the chunked framing could not be parsed as HTTP/1.1 (RFC 9112), or the "
+    "request target is one no request may carry (a fragment, '#…'; '*' with another method than OPTIONS); the "
     "connection was closed. Nothing was computed.",
 )
 HEAD_TOO_LARGE = Kind(

@@ -39,6 +39,10 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   MUST accept the absolute form) names the root, since an empty path is "/" (RFC 9110 §4.2.3), and
   ``OPTIONS http://host`` the server as a whole, "*" (RFC 9112 §3.2.4); uvicorn found no path in them
   and answered 400 with a warning.
+- **Targets a request may not carry.** A fragment (``/v1/predict#x``: RFC 9112 §3.2 has none in a
+  request target) and ``*`` for another method than OPTIONS (RFC 9112 §3.2.4) are answered 400 and the
+  connection closed (RFC 9112 §3: an invalid request-line is refused, not corrected); uvicorn dropped the
+  fragment and answered the path, and routed ``GET *`` as the path "*" (404).
 - **Encoded slashes.** A ``%2F`` in a path stays ``%2F`` for routing (RFC 3986 §2.2: data in a
   segment, not a separator); uvicorn decoded it to "/", so ``…/versions/1%2Fcard`` was the card.
 - **HTTP/1.0 framing.** An HTTP/1.0 request with ``Transfer-Encoding`` is answered 400 and the
@@ -76,6 +80,7 @@ from textsieve.service.web.problems import HEAD_TOO_LARGE, MALFORMED, MEDIA_TYPE
 # replica by, so they are never refused by the request limit (a busy replica is alive).
 PROBE_PATHS = frozenset({"/healthz", "/readyz", "/metrics"})
 _PROBE_TARGETS = frozenset(p.encode() for p in PROBE_PATHS)
+_ASTERISK = b"*"  # the asterisk-form target (RFC 9112 §3.2.4): OPTIONS only
 WITH_BODY = frozenset({"POST", "PUT", "PATCH"})
 # A request line: a method token (RFC 9110 §5.6.2), a target and an HTTP version.
 _REQUEST_LINE = re.compile(rb"[!#$%&'*+.^_`|~0-9A-Za-z-]+ [^ \r\n]+ HTTP/[0-9]\.[0-9]\r?\n")
@@ -117,6 +122,24 @@ def _path_keeping_encoded_slashes(raw_path: bytes) -> str:
     than the one answered. Now such a segment is a path parameter's value (and refused as one) or a
     path no route answers (404)."""
     return "%2F".join(unquote(part.decode("ascii")) for part in _ENCODED_SLASH.split(raw_path))
+
+
+def _names_a_probe(target: bytes) -> bool:
+    """Whether ``target`` is routed to a probe: decided on the path the request is routed by (as uvicorn
+    and :func:`_path_keeping_encoded_slashes` make ``scope["path"]``, which the access middleware reads),
+    so ``GET http://x/healthz`` (absolute form, RFC 9112 §3.2.2) and ``GET /%68ealthz`` are probes as
+    ``GET /healthz`` is. The raw target was compared: those counted against the request limit and were
+    refused 503 at it, though answered by the probe's route."""
+    path = target.split(b"?", 1)[0]
+    if path in _PROBE_TARGETS:
+        return True
+    if path[:1] == b"/" and b"%" not in path:
+        return False  # the common case: an origin-form path that decodes to itself
+    try:
+        raw = httptools.parse_url(target).path
+        return raw is not None and _path_keeping_encoded_slashes(raw) in PROBE_PATHS
+    except (httptools.HttpParserInvalidURLError, UnicodeDecodeError):
+        return False  # refused 400 where uvicorn parses it
 
 
 def _with_path(target: bytes, method: bytes) -> bytes:
@@ -283,6 +306,30 @@ class ConnectionGuard:
             "CONNECT asks for a tunnel, and this service is not a proxy (RFC 9110 §9.3.6); it answers GET, "
             "HEAD, POST and OPTIONS (the Allow header of a 405 or an OPTIONS reply names which for each path); "
             "the connection is closed",
+            None,
+        )
+        # RFC 9112 §3: an invalid request-line is answered 400 (or redirected), not corrected and
+        # answered, as it "might be deliberately crafted to bypass security filters along the request chain".
+        # A fragment is no part of a request target (RFC 9112 §3.2: neither origin-form nor absolute-URI has
+        # one; RFC 9110 §7.1: it is left to the client); uvicorn dropped it and answered the path before it.
+        self.fragment = _raw_response(
+            MALFORMED.status,
+            "Bad Request",
+            MALFORMED.slug,
+            MALFORMED.title,
+            "the request target holds a fragment ('#' and what follows), which a request target may not "
+            "(RFC 9112 §3.2): send the path and query alone; the connection is closed",
+            None,
+        )
+        # The asterisk form names the server as a whole, for OPTIONS alone (RFC 9112 §3.2.4); "GET *" was
+        # routed as the path "*" and answered 404 "no such path: GET /*".
+        self.asterisk_not_options = _raw_response(
+            MALFORMED.status,
+            "Bad Request",
+            MALFORMED.slug,
+            MALFORMED.title,
+            "the request target '*' is for OPTIONS only (RFC 9112 §3.2.4): send other methods to a path, "
+            "such as /healthz or /v1/models; the connection is closed",
             None,
         )
         self.max_head_bytes = max_head_bytes
@@ -518,7 +565,11 @@ class ConnectionGuard:
                     guard.malformed_requests += 1
                     self._close_with(guard.coding_in_http_1_0, 400)
                     return
-                if self.url.split(b"?", 1)[0] not in _PROBE_TARGETS and not guard.request_may_start():
+                if b"#" in self.url or (self.url == _ASTERISK and self.parser.get_method() != b"OPTIONS"):
+                    guard.malformed_requests += 1
+                    self._close_with(guard.fragment if b"#" in self.url else guard.asterisk_not_options, 400)
+                    return
+                if not _names_a_probe(self.url) and not guard.request_may_start():
                     cycle: Any = self.cycle
                     pipelined = cycle is not None and not cycle.response_complete
                     if pipelined or not self.parser.should_keep_alive():

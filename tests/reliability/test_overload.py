@@ -577,6 +577,34 @@ def test_a_pipelined_request_refused_by_the_request_limit_is_answered_after_the_
 
 
 @pytest.mark.parametrize(
+    ("target", "admitted"),
+    [
+        pytest.param(b"/healthz", True, id="origin form"),
+        pytest.param(b"http://x/healthz", True, id="absolute form"),
+        pytest.param(b"HTTP://x:80/readyz?verbose=1", True, id="absolute form, upper-case scheme, a port, a query"),
+        pytest.param(b"/%6Detrics", True, id="a percent-encoded letter"),
+        pytest.param(b"http://x/v1/models", False, id="absolute form, no probe"),
+        pytest.param(b"/healthz%2F", False, id="an encoded slash: another path"),
+    ],
+)
+def test_a_probe_is_admitted_at_the_request_limit_whatever_form_its_target_takes(target: bytes, admitted: bool) -> None:
+    # Probes are never refused by the request limit (the access middleware never counts them). The
+    # connection layer compared the raw target with "/healthz", so an absolute-form target (RFC 9112
+    # §3.2.2: a server MUST accept it) or a percent-encoded letter (RFC 3986 §6.2.2.2: the same path),
+    # routed to the probe all the same, was refused 503 at the limit (found reading the code, 2026-12-05).
+    from textsieve.service.web.transport import ConnectionGuard
+
+    guard = ConnectionGuard(max_connections=8, read_timeout=5, min_requests=1, start_requests=1)
+    guard.inflight = 1  # the limit (1) is reached
+    with _guarded_uvicorn(guard, 0.0) as address:
+        statuses, got = _statuses_until_closed(
+            address, b"GET " + target + b" HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n"
+        )
+    assert statuses == ([200] if admitted else [503]), got
+    assert guard.refused_requests == (0 if admitted else 1)
+
+
+@pytest.mark.parametrize(
     "stalled",
     [
         pytest.param(b"POST /x HTTP/1.1\r\nHost: x\r\nContent-Length: 10\r\n\r\n{}", id="its body"),

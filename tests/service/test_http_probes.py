@@ -702,3 +702,63 @@ def test_a_broken_chunked_body_queued_behind_another_request_is_refused_after_it
     assert replies[0][1]["model"] == MODEL and replies[1][1]["type"] == "/problems/malformed-request"
     replies = _replies_until_closed(probed[0], _FRAMED + _FRAMED + broken)
     assert [status for status, _ in replies] == [200, 200, 400]
+
+
+# -- request targets a request may not carry -----------------------------------------------------------
+# RFC 9112 §3: an invalid request-line is answered 400 (or redirected); a recipient "SHOULD NOT attempt to
+# autocorrect and then process the request", since it "might be deliberately crafted to bypass security
+# filters along the request chain". Both were corrected and answered (found probing, 2026-12-05).
+@pytest.mark.parametrize(
+    ("data", "statuses", "named"),
+    [
+        # RFC 9112 §3.2: origin-form is absolute-path ["?" query] and absolute-form an absolute-URI (RFC 3986
+        # §4.3), neither with a fragment (RFC 9110 §7.1: the fragment is the client's). uvicorn dropped it.
+        pytest.param(
+            _PREDICT.replace(b"/v1/predict", b"/v1/predict#x") + b"Content-Length: %d\r\n\r\n" % len(_BODY) + _BODY,
+            [400],
+            "fragment",
+            id="a fragment on predict (the lane answered 200)",
+        ),
+        pytest.param(b"GET /v1/models#x HTTP/1.1\r\n" + _CLOSE + b"\r\n", [400], "fragment", id="a fragment on a view"),
+        pytest.param(b"GET /readyz?x=1#y HTTP/1.1\r\n" + _CLOSE + b"\r\n", [400], "fragment", id="after a query"),
+        pytest.param(b"GET http://x/healthz# HTTP/1.1\r\n" + _CLOSE + b"\r\n", [400], "fragment", id="absolute form"),
+        pytest.param(
+            b"GET /healthz HTTP/1.1\r\nHost: x\r\n\r\nGET /healthz#x HTTP/1.1\r\n" + _CLOSE + b"\r\n",
+            [200, 400],
+            "fragment",
+            id="after a request answered",
+        ),
+        # RFC 9112 §3.2.4: the asterisk form is used only for OPTIONS. It was routed as the path "*": a 404
+        # "no such path: GET /*".
+        pytest.param(b"GET * HTTP/1.1\r\n" + _CLOSE + b"\r\n", [400], "'*' is for OPTIONS only", id="GET *"),
+        pytest.param(
+            b"POST * HTTP/1.1\r\n"
+            + _CLOSE
+            + b"Content-Type: application/json\r\nContent-Length: %d\r\n\r\n" % len(_BODY)
+            + _BODY,
+            [400],
+            "'*' is for OPTIONS only",
+            id="POST *",
+        ),
+    ],
+)
+def test_a_target_with_a_fragment_or_an_asterisk_for_another_method_than_options_is_refused_400(
+    probed: tuple[str, Path], data: bytes, statuses: list[int], named: str
+) -> None:
+    replies = _replies_until_closed(probed[0], data)
+    assert [status for status, _ in replies] == statuses
+    status, body = replies[-1]
+    assert body["type"] == "/problems/malformed-request" and named in body["detail"]
+    assert "RFC 9112 §3.2" in body["detail"]
+
+
+def test_head_star_is_refused_400_and_options_star_still_answered(probed: tuple[str, Path]) -> None:
+    host, port = probed[0].removeprefix("http://").split(":")
+    with socket.create_connection((host, int(port)), timeout=20) as s:
+        s.sendall(b"HEAD * HTTP/1.1\r\n" + _CLOSE + b"\r\n")
+        got = b""
+        while chunk := s.recv(65536):
+            got += chunk
+    assert got.startswith(b"HTTP/1.1 400 "), got
+    ((status, fields, _),) = _replies_with_heads(probed[0], b"OPTIONS * HTTP/1.1\r\n" + _CLOSE + b"\r\n")
+    assert status == 204 and fields["allow"] == "GET, HEAD, POST, OPTIONS"

@@ -209,12 +209,16 @@ async def test_the_openapi_document_is_booked_under_its_own_route(shared_registr
         assert (await client.get("/openapi.json")).status_code == 200
         assert (await client.head("/openapi.json")).status_code == 200
         assert (await client.get("/no-such-path")).status_code == 404
+        # Its 405s too: the plain route refused other methods before it could name itself (2026-12-05).
+        assert (await client.post("/openapi.json", json={})).status_code == 405
         samples = outside((await client.get("/metrics")).text)
-    for method, route, status in (("GET", "/openapi.json", "200"), ("HEAD", "/openapi.json", "200")):
+    booked = (("GET", "/openapi.json", "200"), ("HEAD", "/openapi.json", "200"), ("POST", "/openapi.json", "405"))
+    for method, route, status in booked:
         key = (("method", method), ("route", route), ("status", status))
         assert samples[("textsieve_http_requests_total", key)] == 1, key
-    unmatched = (("method", "GET"), ("route", "unmatched"), ("status", "200"))
-    assert ("textsieve_http_requests_total", unmatched) not in samples
+    for method, status in (("GET", "200"), ("POST", "405")):
+        unmatched = (("method", method), ("route", "unmatched"), ("status", status))
+        assert ("textsieve_http_requests_total", unmatched) not in samples
 
 
 def _logged_request(log: Path, rid: str, timeout: float = 5.0) -> dict[str, Any]:
