@@ -449,6 +449,7 @@ class ConnectionGuard:
                 still being answered, which was then lost, and the client read the refusal as that
                 request's reply (a body sent without Content-Length after a POST, a pipelined request
                 with a bad header)."""
+                reply = self._for_method(reply)
                 self._refused = True  # whatever else arrives on this connection is not read
                 self._disarm()
                 cycle: Any = self.cycle
@@ -466,6 +467,14 @@ class ConnectionGuard:
                     return
                 self.transport.write(reply)
                 self.transport.close()
+
+            def _for_method(self, reply: bytes) -> bytes:
+                """A refusal as the request being read may get it: a reply to HEAD is its head alone
+                (RFC 9110 §9.3.2; its Content-Length still says what a GET would get, §8.6). With the
+                body sent too, a client kept alive read it as the start of its next reply."""
+                if self.parser.get_method() == b"HEAD":  # httptools says DELETE before a method is read
+                    return reply[: reply.index(b"\r\n\r\n") + 4]
+                return reply
 
             def _parsed_head_bytes(self) -> int:
                 """The head's size as parsed: 'METHOD target HTTP/1.1\\r\\n', each 'name: value\\r\\n', '\\r\\n'."""
@@ -579,7 +588,7 @@ class ConnectionGuard:
                     else:
                         self._count(503)
                         self._skipping = True
-                        self.transport.write(guard.busy_keep_alive)
+                        self.transport.write(self._for_method(guard.busy_keep_alive))
                         # The refusal goes out now; this connection's next request is read only after
                         # half the Retry-After it was given. A caller that retries at once (ignoring
                         # it) would otherwise turn refusals into the event loop's whole work and

@@ -576,6 +576,37 @@ def test_a_pipelined_request_refused_by_the_request_limit_is_answered_after_the_
     assert guard.refused_requests == 1
 
 
+@pytest.mark.parametrize("keep_alive", [True, False], ids=["kept alive", "closed"])
+def test_a_head_refused_by_the_request_limit_gets_the_head_alone(keep_alive: bool) -> None:
+    # RFC 9110 §9.3.2: a reply to HEAD has no content. The 503's problem+json body followed its head,
+    # and on a kept-alive connection the client read those bytes as the start of its next reply
+    # (found probing a real server, 2026-12-05). The next request, a probe, is admitted at the limit.
+    from textsieve.service.web.transport import ConnectionGuard
+
+    guard = ConnectionGuard(max_connections=8, read_timeout=5, min_requests=1, start_requests=1)
+    guard.inflight = 1  # the limit (1) is reached
+    head = b"HEAD /v1/models HTTP/1.1\r\nHost: x\r\n" + (b"" if keep_alive else b"Connection: close\r\n") + b"\r\n"
+    after = b"GET /healthz HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n" if keep_alive else b""
+    with _guarded_uvicorn(guard, 0.0) as address:
+        statuses, got = _statuses_until_closed(address, head + after)
+    refusal, _, rest = got.partition(b"\r\n\r\n")
+    assert statuses == ([503, 200] if keep_alive else [503]), got
+    assert refusal.startswith(b"HTTP/1.1 503 ") and b"content-length: " in refusal.lower()
+    # Nothing between the 503's head and the next reply (or the end): no body.
+    assert rest.startswith(b"HTTP/1.1 200 ") if keep_alive else rest == b"", got
+    assert guard.refused_requests == 1
+
+
+def test_a_head_refused_by_the_connection_layer_gets_the_head_alone() -> None:
+    # The same for the refusals that close the connection (here a fragment in the target: 400).
+    from textsieve.service.web.transport import ConnectionGuard
+
+    guard = ConnectionGuard(max_connections=8, read_timeout=5)
+    with _guarded_uvicorn(guard, 0.0) as address:
+        statuses, got = _statuses_until_closed(address, b"HEAD /healthz#x HTTP/1.1\r\nHost: x\r\n\r\n")
+    assert statuses == [400] and got.endswith(b"\r\n\r\n") and got.count(b"\r\n\r\n") == 1, got
+
+
 @pytest.mark.parametrize(
     ("target", "admitted"),
     [
