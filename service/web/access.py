@@ -18,9 +18,10 @@ from typing import Any
 from starlette.datastructures import Headers, MutableHeaders
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
+from textsieve.service.inference.admission import CLIENT_LEFT
 from textsieve.service.logs import ACCESS, line_handler
 from textsieve.service.telemetry import ServiceMetrics
-from textsieve.service.web.transport import ANSWERED_HERE, CLIENT_LEFT, PROBE_PATHS, WITH_BODY, ConnectionGuard
+from textsieve.service.web.transport import ANSWERED_HERE, PROBE_PATHS, WITH_BODY, ConnectionGuard
 
 _SAFE_ID = re.compile(r"[A-Za-z0-9._:-]{1,128}")
 # Booked for a request whose client went away mid-body (whatever the app made of the missing body,

@@ -35,6 +35,7 @@ from fastapi import FastAPI
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from textsieve.errors import TextsieveError
+from textsieve.service.inference.admission import CLIENT_LEFT
 from textsieve.service.modelset.model_set import ModelSet
 from textsieve.service.settings import Settings
 from textsieve.service.telemetry import ServiceMetrics
@@ -43,7 +44,6 @@ from textsieve.service.web.bodylimit import BodyBudget
 from textsieve.service.web.predict import DEADLINE_HEADER, check_limits, classify, deadline_at
 from textsieve.service.web.problems import render
 from textsieve.service.web.schemas import PredictRequest
-from textsieve.service.web.transport import CLIENT_LEFT
 
 PATH = "/v1/predict"
 _JSON = frozenset({b"application/json", b"application/json; charset=utf-8"})

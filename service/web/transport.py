@@ -76,6 +76,7 @@ import httptools
 import orjson
 from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
 
+from textsieve.service.inference.admission import CLIENT_LEFT
 from textsieve.service.telemetry import ServiceMetrics
 from textsieve.service.web.problems import HEAD_TOO_LARGE, MALFORMED, MEDIA_TYPE, REQUEST_TIMEOUT, UNKNOWN_METHOD
 
@@ -96,10 +97,10 @@ UNMATCHED = "unmatched"
 # past the read deadline, 408, or whose chunked framing broke, 400): the access middleware books
 # that, what the client got, instead of a disconnect (service/web/access.py).
 ANSWERED_HERE = "textsieve.answered_by_connection"
-# The scope key set (True) on a request whose client went away before its reply was written whole:
-# whatever the application answers goes nowhere, so the access middleware and the predict lane book
-# it 499 (service/web/access.py CLIENT_GONE), not the status nobody received.
-CLIENT_LEFT = "textsieve.client_left"
+# CLIENT_LEFT (imported above) is the scope key set (True) on a request whose client went away before
+# its reply was written whole: whatever the application answers goes nowhere, so the access middleware
+# and the predict lane book it 499 (service/web/access.py CLIENT_GONE), not the status nobody received,
+# and the batcher drops its texts not yet in a batch.
 UNKNOWN_METHOD_LABEL = "unknown"  # the request line was not read (or named no method httptools knows)
 
 

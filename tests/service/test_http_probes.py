@@ -35,8 +35,9 @@ from tests.helpers.service import (
     settings_for,
 )
 from textsieve.registry import open_registry
+from textsieve.service.inference.admission import CLIENT_LEFT
 from textsieve.service.web.app import create_app
-from textsieve.service.web.transport import CLIENT_LEFT, ConnectionGuard
+from textsieve.service.web.transport import ConnectionGuard
 
 
 @pytest.fixture(scope="module")
