@@ -52,7 +52,9 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   transport (uvloop raises there) and a client's reset logged two tracebacks. A request whose client
   left before its reply was written whole is marked in its scope (``CLIENT_LEFT``), and booked 499 by
   the access log and metrics: uvicorn drops the reply quietly, and it was booked as the 200 or 503
-  nobody received.
+  nobody received (its texts still queued are dropped, service/inference/batcher.py). For that the
+  connection is read again once a request's body is whole: past 64 KiB of body uvicorn stopped reading
+  until the reply, so a reset went unseen while the request was computed.
 - **Read deadline.** From the moment a connection opens, or a keep-alive connection's next
   request begins, the client has ``read_timeout_seconds`` to send the request's headers and
   whole body. Past it the connection is answered 408 (RFC 9110 §15.5.9) if no response has
