@@ -14,6 +14,8 @@
     ├── UnavailableError           cannot answer now, retry (registry unreachable, worker gone, shutting down):
     │   │                          CLI exit 1, HTTP 503
     │   ├── OverloadedError        this replica is at a bound (queue, bodies, connections): HTTP 503 + Retry-After
+    │   ├── ClientGoneError        the client left before its queued texts were computed: nothing was, and
+    │   │                          nothing is sent (booked 499)
     │   ├── LoginRefusedError      the registry's database refused the login (user, password, a role that
     │   │                          does not exist): CLI exit 2, HTTP 503 (a replica that cannot log in is not ready)
     │   └── NoDatabaseError        the registry URL names a database the server does not have: CLI exit 2,
@@ -97,6 +99,13 @@ class UnavailableError(TextsieveError):
     exit_code = 1
 
 
+class ClientGoneError(UnavailableError):
+    """The request's client went away while its texts waited in the queue: they were dropped uncomputed.
+
+    Nobody receives its reply (the access log and metrics book 499); an UnavailableError so that,
+    were it ever rendered, it would read as a retryable 503."""
+
+
 class OverloadedError(UnavailableError):
     """This replica has more work queued than it can start within its admitted wait."""
 
@@ -158,6 +167,7 @@ class Terminated(KeyboardInterrupt):
 __all__ = [
     "AuthError",
     "BundleError",
+    "ClientGoneError",
     "DeadlinePassedError",
     "GateRefusedError",
     "InputError",

@@ -24,6 +24,10 @@ INITIAL_TEXTS_PER_SECOND_PER_THREAD = 1000.0
 DECAY_TEXTS = 2000.0
 # Weight of each admission in ``mean_queued``: about the last 30 requests count.
 MEAN_WEIGHT = 1 / 32
+# The key the connection layer sets in a request's ASGI scope once its client has gone before the
+# reply was written (service/web/transport.py): its texts still queued are dropped uncomputed
+# (service/inference/batcher.py) and their admission given back.
+CLIENT_LEFT = "textsieve.client_left"
 
 
 class Admission:
@@ -36,6 +40,7 @@ class Admission:
         self.mean_queued = 0.0  # admitted texts as each request is admitted, averaged (the batcher's target)
         self.refused = 0
         self.deadline_passed = 0
+        self.client_left = 0  # requests dropped from the queue uncomputed: their clients had gone
         self._texts = 0.0  # decayed sums of texts and thread-seconds measured
         self._seconds = 0.0
         self._limit = self._limit_now()
@@ -95,4 +100,4 @@ class Admission:
             )
 
 
-__all__ = ["Admission"]
+__all__ = ["CLIENT_LEFT", "Admission"]

@@ -24,6 +24,12 @@ sorts it by length and runs it as sub-batches each padded only to its own longes
 (:mod:`textsieve.service.inference.packing`), and builds the reply dicts, so the event loop only
 routes finished results. Graph outputs are masked, so a text's result does not depend on its
 batch neighbours.
+
+A request none of whose texts is in a batch yet is dropped when it comes up in the queue if its
+deadline has passed, or if its client has gone (the connection layer marks its scope,
+``CLIENT_LEFT``): nothing is computed for nobody, and its admitted texts are given back. A batch
+already sent is computed whole (nothing interrupts a worker), as is the rest of a request that
+has texts in one.
 """
 
 from __future__ import annotations
@@ -36,6 +42,7 @@ import math
 import threading
 import time
 from collections import deque
+from collections.abc import Mapping
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
@@ -44,9 +51,9 @@ import numpy as np
 import orjson
 from numpy.typing import NDArray
 
-from textsieve.errors import DeadlinePassedError, UnavailableError
+from textsieve.errors import ClientGoneError, DeadlinePassedError, UnavailableError
 from textsieve.registry.drift import count_encoded
-from textsieve.service.inference.admission import Admission
+from textsieve.service.inference.admission import CLIENT_LEFT, Admission
 from textsieve.service.inference.packing import run_packed
 from textsieve.service.inference.spans import replies
 from textsieve.service.inference.workers import PIPELINE, WorkerProcesses
@@ -187,6 +194,7 @@ class _Job:
     taken: int = 0
     pending: int = 0
     deadline: float | None = None  # perf_counter time from the caller's Textsieve-Deadline header
+    watch: Mapping[str, Any] | None = None  # the request's scope: CLIENT_LEFT in it once its client has gone
     scores: LiveScores | None = None  # kept only for requests sampled for shadow scoring
 
 
@@ -257,10 +265,18 @@ class Batcher:
         return results, scores
 
     async def run(
-        self, texts: list[str], spans: int, deadline: float | None, *, keep_scores: bool
+        self,
+        texts: list[str],
+        spans: int,
+        deadline: float | None,
+        *,
+        keep_scores: bool,
+        watch: Mapping[str, Any] | None = None,
     ) -> tuple[list[Result], LiveScores | None]:
         """:meth:`submit` (``keep_scores`` False: the scores are None) or :meth:`submit_scored` in one
-        coroutine: the predict route awaits this directly, one coroutine fewer a request on the loop."""
+        coroutine: the predict route awaits this directly, one coroutine fewer a request on the loop.
+        ``watch`` is the request's ASGI scope: if its client leaves (CLIENT_LEFT) before any of its
+        texts went into a batch, they are dropped uncomputed (ClientGoneError)."""
         if self._task is None or self._task.done():
             raise UnavailableError(f"model {self.served.name} version {self.served.version} is not accepting work")
         admission = self.pool.admission
@@ -269,7 +285,7 @@ class Batcher:
         try:
             loop = asyncio.get_running_loop()
             job = _Job(texts, spans, loop.create_future(), time.perf_counter(), [None] * len(texts), 0, len(texts))
-            job.deadline = deadline
+            job.deadline, job.watch = deadline, watch
             if keep_scores:
                 job.scores = LiveScores.empty(len(texts))
             self._queue.append(job)
@@ -298,6 +314,14 @@ class Batcher:
                     self._untaken -= len(job.texts)
                     if not job.future.done():
                         job.future.set_exception(exc)
+                    continue
+                if job.watch is not None and CLIENT_LEFT in job.watch:  # nobody would read its reply
+                    self._untaken -= len(job.texts)
+                    self.pool.admission.client_left += 1
+                    if not job.future.done():
+                        job.future.set_exception(
+                            ClientGoneError("the client went away before inference started; nothing was computed")
+                        )
                     continue
             hi = min(len(job.texts), job.taken + min(room, QUANTUM))
             pieces.append(_Piece(job, job.taken, hi))

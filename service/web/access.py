@@ -18,13 +18,15 @@ from typing import Any
 from starlette.datastructures import Headers, MutableHeaders
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
+from textsieve.service.inference.admission import CLIENT_LEFT
 from textsieve.service.logs import ACCESS, line_handler
 from textsieve.service.telemetry import ServiceMetrics
 from textsieve.service.web.transport import ANSWERED_HERE, PROBE_PATHS, WITH_BODY, ConnectionGuard
 
 _SAFE_ID = re.compile(r"[A-Za-z0-9._:-]{1,128}")
 # Booked for a request whose client went away mid-body (whatever the app made of the missing body,
-# its reply went nowhere): nginx's "client closed request". When the connection layer answered it
+# its reply went nowhere), or later but before its reply was written whole (the connection layer
+# marks its scope, transport.CLIENT_LEFT): nginx's "client closed request". When the connection layer answered it
 # instead (408 for a body that stalled past the read deadline, 400 for broken chunked framing), that
 # status is booked, as the client got it (transport.ANSWERED_HERE, read only on this rare path).
 CLIENT_GONE = 499
@@ -146,7 +148,10 @@ class AccessMiddleware:
             status = status or 500  # the server answers it 500
             raise
         finally:
-            booked = scope.get(ANSWERED_HERE, CLIENT_GONE) if cut else status or CLIENT_GONE
+            if cut:
+                booked = scope.get(ANSWERED_HERE, CLIENT_GONE)
+            else:
+                booked = CLIENT_GONE if CLIENT_LEFT in scope else status or CLIENT_GONE
             self.access.finish(scope, _route(scope), booked, started, entered)
 
 

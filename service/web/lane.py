@@ -35,10 +35,11 @@ from fastapi import FastAPI
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from textsieve.errors import TextsieveError
+from textsieve.service.inference.admission import CLIENT_LEFT
 from textsieve.service.modelset.model_set import ModelSet
 from textsieve.service.settings import Settings
 from textsieve.service.telemetry import ServiceMetrics
-from textsieve.service.web.access import Access, begin
+from textsieve.service.web.access import CLIENT_GONE, Access, begin
 from textsieve.service.web.bodylimit import BodyBudget
 from textsieve.service.web.predict import DEADLINE_HEADER, check_limits, classify, deadline_at
 from textsieve.service.web.problems import render
@@ -187,7 +188,10 @@ class PredictLane:
             if answer.after_reply is not None:
                 await answer.after_reply()
         finally:
-            self.access.finish(scope, PATH, status, started, entered if guard is not None else None)
+            # A client that left before the reply was written whole got nothing (uvicorn drops it):
+            # 499, as the access middleware books it, not the 200 or 503 made for nobody.
+            booked = CLIENT_GONE if CLIENT_LEFT in scope else status
+            self.access.finish(scope, PATH, booked, started, entered if guard is not None else None)
 
 
 def _plain_headers(scope: Scope) -> tuple[int, str, str | None] | None:

@@ -151,7 +151,7 @@ async def classify(
         batcher = served.batcher
         assert batcher is not None
         shadow = models.shadow_sample(served)
-        results, scores = await batcher.run(body.texts, body.spans, deadline, keep_scores=shadow)
+        results, scores = await batcher.run(body.texts, body.spans, deadline, keep_scores=shadow, watch=scope)
         if shadow:
             # Offered to the shadow queue only once the reply has been sent (and never waited for).
             assert models.shadow is not None and scores is not None

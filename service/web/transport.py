@@ -49,7 +49,12 @@ holds its socket and buffers for ever. This module gives uvicorn's httptools pro
   connection closed (RFC 9112 §6.1: its framing is faulty); it was read as chunked and answered.
 - **Clients that go away.** uvicorn tells only the last request read on a connection that the client
   is gone; the request being answered ahead of a pipelined one is told too, or its reply met the closed
-  transport (uvloop raises there) and a client's reset logged two tracebacks.
+  transport (uvloop raises there) and a client's reset logged two tracebacks. A request whose client
+  left before its reply was written whole is marked in its scope (``CLIENT_LEFT``), and booked 499 by
+  the access log and metrics: uvicorn drops the reply quietly, and it was booked as the 200 or 503
+  nobody received (its texts still queued are dropped, service/inference/batcher.py). For that the
+  connection is read again once a request's body is whole: past 64 KiB of body uvicorn stopped reading
+  until the reply, so a reset went unseen while the request was computed.
 - **Read deadline.** From the moment a connection opens, or a keep-alive connection's next
   request begins, the client has ``read_timeout_seconds`` to send the request's headers and
   whole body. Past it the connection is answered 408 (RFC 9110 §15.5.9) if no response has
@@ -73,6 +78,7 @@ import httptools
 import orjson
 from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
 
+from textsieve.service.inference.admission import CLIENT_LEFT
 from textsieve.service.telemetry import ServiceMetrics
 from textsieve.service.web.problems import HEAD_TOO_LARGE, MALFORMED, MEDIA_TYPE, REQUEST_TIMEOUT, UNKNOWN_METHOD
 
@@ -93,6 +99,10 @@ UNMATCHED = "unmatched"
 # past the read deadline, 408, or whose chunked framing broke, 400): the access middleware books
 # that, what the client got, instead of a disconnect (service/web/access.py).
 ANSWERED_HERE = "textsieve.answered_by_connection"
+# CLIENT_LEFT (imported above) is the scope key set (True) on a request whose client went away before
+# its reply was written whole: whatever the application answers goes nowhere, so the access middleware
+# and the predict lane book it 499 (service/web/access.py CLIENT_GONE), not the status nobody received,
+# and the batcher drops its texts not yet in a batch.
 UNKNOWN_METHOD_LABEL = "unknown"  # the request line was not read (or named no method httptools knows)
 
 
@@ -418,6 +428,10 @@ class ConnectionGuard:
                 if running is not None and running is not self.cycle and not running.response_complete:
                     running.disconnected = True
                     running.message_event.set()
+                told: Any
+                for told in (self.cycle, running):
+                    if told is not None and told.disconnected:
+                        told.scope[CLIENT_LEFT] = True
 
             def _start_asgi_task(self, cycle: Any, app: Any) -> None:
                 self._running = cycle
@@ -634,6 +648,12 @@ class ConnectionGuard:
                     )
                     return
                 super().on_message_complete()
+                if not self.pipeline:
+                    # A body past uvicorn's 64 KiB buffer paused reading, and only the reply resumed
+                    # it: a client that reset meanwhile went unnoticed until then, its request computed
+                    # for nobody and booked as answered. Read on, as after a smaller body: a pipelined
+                    # request's head pauses reading again (uvicorn), and a half-close is eof_received's.
+                    self.flow.resume_reading()
 
             _eof = False  # the client half-closed after a whole request (see eof_received)
 

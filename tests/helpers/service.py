@@ -13,7 +13,7 @@ import threading
 from collections.abc import AsyncIterator, Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import httpx
 import pytest
@@ -124,10 +124,11 @@ def uvicorn_server(settings: Settings) -> Iterator[LiveServer]:
 
 
 @contextlib.contextmanager
-def guarded_uvicorn(guard: Any, app: Any) -> Iterator[tuple[str, int]]:
+def guarded_uvicorn(guard: Any, app: Any, *, lifespan: Literal["on", "off"] = "off") -> Iterator[tuple[str, int]]:
     """A real uvicorn on loopback with ``guard``'s protocol (``ConnectionGuard.protocol()``,
     service/web/transport.py) in front of the ASGI ``app``, on the loop ``textsieve serve`` gets
-    (uvloop when installed); yields its address."""
+    (uvloop when installed); yields its address. ``lifespan="on"`` for a whole textsieve app
+    (``create_app``, its guard ``app.state.guard``), which then loads its models (wait for /readyz)."""
     import socket
     import time
 
@@ -135,7 +136,7 @@ def guarded_uvicorn(guard: Any, app: Any) -> Iterator[tuple[str, int]]:
 
     sock = socket.socket()
     sock.bind(("127.0.0.1", 0))
-    config = uvicorn.Config(app, http=guard.protocol(), ws="none", lifespan="off", log_level="critical")
+    config = uvicorn.Config(app, http=guard.protocol(), ws="none", lifespan=lifespan, log_level="critical")
     server = uvicorn.Server(config)
     thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
     thread.start()

@@ -131,3 +131,59 @@ def test_packed_sub_batches_are_padded_as_predictor_pads_them(tiny_bundles: dict
         lg, pl, ps, ct = run_arrays(want_ids, want_lengths)
         assert np.array_equal(packed.logits[idx], lg) and np.array_equal(packed.positions[idx], ps)
         assert np.array_equal(packed.pooled[idx], pl) and np.array_equal(packed.contributions[idx], ct)
+
+
+@pytest.mark.parametrize("inference", ["threads", "processes"])
+async def test_queued_texts_of_a_client_that_left_are_dropped_uncomputed(
+    shared_registry: Path, monkeypatch: pytest.MonkeyPatch, inference: str
+) -> None:
+    # A client that sent its whole request and went away (service/web/transport.py marks its scope)
+    # was still computed, and kept its texts admitted until then. Here one request holds every slot,
+    # a second waits in the queue, and its client leaves before a slot frees.
+    from textsieve.errors import ClientGoneError
+    from textsieve.service.inference.admission import CLIENT_LEFT
+    from textsieve.service.inference.batcher import Batcher
+
+    computed: list[list[str]] = []
+    release = asyncio.Event()
+    real = Batcher._dispatch
+
+    def held(self: Batcher, pieces: Any) -> None:
+        computed.append([t for p in pieces for t in p.job.texts[p.lo : p.hi]])
+        if len(computed) == 1:  # the first batch keeps its slot until released
+            asyncio.get_running_loop().create_task(release.wait()).add_done_callback(lambda _: real(self, pieces))
+        else:
+            real(self, pieces)
+
+    monkeypatch.setattr(Batcher, "_dispatch", held)
+    settings = settings_for(shared_registry, workers=1, inference=inference, batch_wait_ms=0)
+    async with serving(settings) as (app, _client):
+        pool = app.state.pool
+        served = app.state.models.acquire_live(MODEL, None)
+        assert served is not None and served.batcher is not None
+        batcher = served.batcher
+        try:
+            slots = pool.slots
+            for _ in range(pool.threads - 1):  # every other slot is taken: the held batch has the last
+                await slots.acquire()
+            first = asyncio.create_task(batcher.run(TEXTS[:3], 0, None, keep_scores=False, watch={}))
+            while not computed:
+                await asyncio.sleep(0.001)
+            scope: dict[str, Any] = {}
+            second = asyncio.create_task(batcher.run(TEXTS[3:8], 0, None, keep_scores=False, watch=scope))
+            kept = asyncio.create_task(batcher.run(TEXTS[8:10], 0, None, keep_scores=False, watch={}))
+            await asyncio.sleep(0.01)
+            assert not second.done() and pool.admission.queued == 10  # queued behind the held batch
+            scope[CLIENT_LEFT] = True  # its client resets
+            for _ in range(pool.threads - 1):
+                slots.release()
+            release.set()
+            with pytest.raises(ClientGoneError):
+                await second
+            results, _ = await first
+            kept_results, _ = await kept
+        finally:
+            app.state.models.release(served)
+        assert len(results) == 3 and len(kept_results) == 2
+        assert computed == [TEXTS[:3], TEXTS[8:10]]  # the second request's texts never reached a worker
+        assert pool.admission.queued == 0 and pool.admission.client_left == 1

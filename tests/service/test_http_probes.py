@@ -12,6 +12,7 @@ import gzip
 import json
 import socket
 import struct
+import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -20,6 +21,7 @@ from typing import Any
 import httpx
 import pytest
 
+from tests.helpers.net import wait_ready
 from tests.helpers.servers import running_server
 from tests.helpers.service import (
     ADMIN_TOKEN,
@@ -30,8 +32,11 @@ from tests.helpers.service import (
     assert_problem,
     guarded_uvicorn,
     make_registry,
+    settings_for,
 )
 from textsieve.registry import open_registry
+from textsieve.service.inference.admission import CLIENT_LEFT
+from textsieve.service.web.app import create_app
 from textsieve.service.web.transport import ConnectionGuard
 
 
@@ -325,6 +330,152 @@ def test_a_client_resetting_while_a_pipelined_reply_is_pending_costs_no_error() 
             again.sendall(b"GET /next HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n")
             assert again.recv(65536).startswith(b"HTTP/1.1 200 ")
     assert guard.open == 0
+
+
+# -- a prediction whose client left before its reply --------------------------------------------------
+def _predictions_booked(url: str) -> dict[str, float]:
+    """``textsieve_http_requests_total`` of POST /v1/predict by status, from /metrics."""
+    booked: dict[str, float] = {}
+    for line in httpx.get(f"{url}/metrics", timeout=10).text.splitlines():
+        prefix = 'textsieve_http_requests_total{method="POST",route="/v1/predict",status="'
+        if line.startswith(prefix):
+            status, _, count = line[len(prefix) :].partition('"} ')
+            booked[status] = float(count)
+    return booked
+
+
+@pytest.mark.parametrize(
+    ("inference", "content_type"),
+    [
+        pytest.param("threads", b"application/json", id="threads, the predict lane"),
+        pytest.param("threads", b"application/json;charset=utf-8", id="threads, the full app"),
+        pytest.param("processes", b"application/json", id="processes, the predict lane"),
+    ],
+)
+def test_a_prediction_whose_client_left_before_its_reply_is_booked_499(
+    tmp_path: Path, tiny_bundles: dict[str, Path], monkeypatch: pytest.MonkeyPatch, inference: str, content_type: bytes
+) -> None:
+    # Found probing `textsieve serve` (2026-12-05): a client that sent a whole 256-text prediction and
+    # reset the connection 5 ms later (SO_LINGER 0, then close) was booked 200 in the access log and
+    # metrics 30 ms later, when its batch was done and uvicorn dropped the reply it could not write;
+    # the reset was not even seen before then, since uvicorn stops reading past 64 KiB of body and
+    # only the reply resumed it. Here the request's batch is held until the server has seen the reset.
+    from textsieve.service.inference.batcher import Batcher
+
+    computing, release = threading.Event(), threading.Event()
+    if inference == "threads":
+        work = Batcher._work
+
+        def held(self: Batcher, texts: list[str], ks: list[int]) -> Any:
+            computing.set()
+            release.wait(20)
+            return work(self, texts, ks)
+
+        monkeypatch.setattr(Batcher, "_work", held)
+    else:
+        work_in_process = Batcher._work_in_process
+
+        async def held_async(self: Batcher, texts: list[str], ks: list[int]) -> Any:
+            computing.set()
+            await asyncio.to_thread(release.wait, 20)
+            return await work_in_process(self, texts, ks)
+
+        monkeypatch.setattr(Batcher, "_work_in_process", held_async)
+    registry = make_registry(tmp_path / "registry", tiny_bundles)
+    app = create_app(settings_for(registry, inference=inference, workers=1))
+    guard = app.state.guard
+    with guarded_uvicorn(guard, app, lifespan="on") as (host, port):
+        url = f"http://{host}:{port}"
+        wait_ready(url)
+        # Over uvicorn's 64 KiB body buffer, past which it stops reading the connection.
+        body = json.dumps({"texts": ["my card was charged twice and the brake is broken " * 36] * 256}).encode()
+        assert len(body) > 7 * 64 * 1024
+        s = socket.socket()
+        s.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 4096)
+        s.connect((host, port))
+        s.sendall(
+            b"POST /v1/predict HTTP/1.1\r\nHost: x\r\nContent-Type: %s\r\nContent-Length: %d\r\n\r\n%s"
+            % (content_type, len(body), body)
+        )
+        assert computing.wait(20)  # the whole request is in, its batch is computing
+        s.setsockopt(socket.SOL_SOCKET, socket.SO_LINGER, struct.pack("ii", 1, 0))
+        s.close()
+        deadline = time.monotonic() + 10
+        while guard.open > 0 and time.monotonic() < deadline:  # the server has seen the reset
+            time.sleep(0.01)
+        release.set()
+        while not _predictions_booked(url) and time.monotonic() < deadline:
+            time.sleep(0.02)
+        # Its reply went nowhere: booked as a client that closed its request, not as the 200 nobody got.
+        assert _predictions_booked(url) == {"499": 1.0}
+        r = httpx.post(f"{url}/v1/predict", content=body, headers={"Content-Type": content_type.decode()}, timeout=20)
+        assert r.status_code == 200  # a client that waits for its reply gets it, and is booked 200
+        assert _predictions_booked(url) == {"499": 1.0, "200": 1.0}
+
+
+class _Transport(asyncio.Transport):
+    """A connection's transport that records whether the protocol is reading from it."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.reading = True
+        self.written = bytearray()
+
+    def get_extra_info(self, name: str, default: Any = None) -> Any:
+        return default
+
+    def pause_reading(self) -> None:
+        self.reading = False
+
+    def resume_reading(self) -> None:
+        self.reading = True
+
+    def write(self, data: Any) -> None:
+        self.written += data
+
+    def is_closing(self) -> bool:
+        return False
+
+    def close(self) -> None:
+        pass
+
+
+@pytest.mark.parametrize("size", [100 * 1024, 1024], ids=["a body past 64 KiB", "a small body"])
+def test_the_connection_is_read_again_once_a_request_body_is_whole(size: int) -> None:
+    # uvicorn stops reading a connection while more than 64 KiB of a request's body waits for the app,
+    # and only its reply resumed it: until then a reset (or a close) went unseen, the request was
+    # computed for nobody and booked as answered (the test above has the whole story on a real server).
+    import uvicorn
+    from uvicorn.server import ServerState
+
+    started: list[dict[str, Any]] = []
+
+    async def app(scope: dict[str, Any], receive: Any, send: Any) -> None:
+        started.append(scope)
+        await asyncio.sleep(10)
+
+    async def one_read() -> tuple[bool, bool]:
+        guard = ConnectionGuard(max_connections=8, read_timeout=5)
+        config = uvicorn.Config(app, http=guard.protocol(), ws="none", lifespan="off", log_level="critical")
+        config.load()
+        protocol = config.http_protocol_class(config=config, server_state=ServerState(), app_state={})
+        transport = _Transport()
+        protocol.connection_made(transport)
+        body = b"x" * size
+        protocol.data_received(b"POST /v1/predict HTTP/1.1\r\nHost: x\r\nContent-Length: %d\r\n\r\n%s" % (size, body))
+        await asyncio.sleep(0)  # the request's task starts
+        reading = transport.reading
+        protocol.data_received(b"GET /healthz HTTP/1.1\r\nHost: x\r\n\r\n")  # pipelined behind it
+        queued_pauses = not transport.reading
+        protocol.connection_lost(None)
+        await asyncio.sleep(0)
+        return reading, queued_pauses
+
+    reading, queued_pauses = asyncio.run(one_read())
+    assert len(started) == 1
+    assert reading  # a reset or close is seen while the request is answered
+    assert queued_pauses  # a request pipelined behind it still stops reading until its turn (uvicorn)
+    assert started[0].get(CLIENT_LEFT) is True  # and a client gone before its reply is marked
 
 
 # -- header lines given more than once --------------------------------------------------------------
