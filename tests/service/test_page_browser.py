@@ -363,6 +363,15 @@ PROXY_PAGE_502 = b"<html><head><title>502 Bad Gateway</title></head><body><h1>50
 HTML = (("Content-Type", "text/html"),)
 
 
+def _sign_in(browser, name: str) -> None:  # type: ignore[no-untyped-def]
+    """Type ``name`` and the review token into the sign-in form and send it with Enter."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+
+    browser.find_element(By.ID, "reviewer").send_keys(name)
+    browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + Keys.ENTER)
+
+
 def _queue(browser, texts: list[str]) -> None:  # type: ignore[no-untyped-def]
     from selenium.webdriver.common.by import By
 
@@ -679,8 +688,7 @@ def test_signing_in_and_out_by_keyboard_keeps_the_focus_on_the_page(browser, reg
     with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
         browser.get(server.url + "/")
         wait = WebDriverWait(browser, 30)
-        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
-        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + Keys.ENTER)
+        _sign_in(browser, "Kwame")
         wait.until(lambda d: d.find_element(By.ID, "signed").is_displayed())
         assert browser.execute_script(active) == "texts"
         browser.find_element(By.ID, "sign-out").send_keys(Keys.ENTER)
@@ -733,8 +741,7 @@ def test_hostile_texts_and_labels_are_shown_as_text_and_run_nothing(  # type: ig
     with uvicorn_server(settings_for(tmp_path / "registry", port=free_port(), review_token=REVIEW_TOKEN)) as server:
         browser.get(server.url + "/")
         scripts = len(browser.find_elements(By.TAG_NAME, "script"))
-        browser.find_element(By.ID, "reviewer").send_keys("<img src=x onerror=\"window.__hit = 'name'\">")
-        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + "\n")
+        _sign_in(browser, "<img src=x onerror=\"window.__hit = 'name'\">")
         browser.find_element(By.ID, "texts").send_keys("\n".join(texts))
         browser.find_element(By.ID, "go").click()
         WebDriverWait(browser, 30).until(
@@ -780,8 +787,7 @@ def test_a_stored_label_with_a_reordering_character_is_shown_escaped_and_judged_
     settings = settings_for(tmp_path / "registry", port=free_port(), review_token=REVIEW_TOKEN)
     with uvicorn_server(settings) as server:
         browser.get(server.url + "/")
-        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
-        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + "\n")
+        _sign_in(browser, "Kwame")
         WebDriverWait(browser, 30).until(lambda d: d.find_element(By.ID, "signed").is_displayed())
         browser.find_element(By.ID, "texts").send_keys(TEXTS[0])
         browser.find_element(By.ID, "go").click()
@@ -816,8 +822,7 @@ def test_a_long_unbroken_name_or_note_does_not_widen_a_narrow_page(browser, regi
         )
         browser.get(server.url + "/")
         wait = WebDriverWait(browser, 30)
-        browser.find_element(By.ID, "reviewer").send_keys(name)
-        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + Keys.ENTER)
+        _sign_in(browser, name)
         wait.until(lambda d: d.find_element(By.ID, "signed").is_displayed())
         _queue(browser, TEXTS[:1] + ["refund " + "y" * 300])
         wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
@@ -893,14 +898,12 @@ def test_a_shortcut_acts_only_while_the_focus_is_in_the_queue(browser, registry_
     records nothing; before, it confirmed a card the reviewer might not even see."""
     from selenium.webdriver.common.action_chains import ActionChains
     from selenium.webdriver.common.by import By
-    from selenium.webdriver.common.keys import Keys
     from selenium.webdriver.support.ui import WebDriverWait
 
     with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
         browser.get(server.url + "/")
         wait = WebDriverWait(browser, 30)
-        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
-        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + Keys.ENTER)
+        _sign_in(browser, "Kwame")
         _queue(browser, TEXTS)
         wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
         for outside in ("go", "sign-out"):
@@ -929,8 +932,7 @@ def test_a_verdict_by_button_keeps_the_focus_in_the_queue(browser, registry_dir:
     with uvicorn_server(settings_for(registry_dir, port=free_port(), review_token=REVIEW_TOKEN)) as server:
         browser.get(server.url + "/")
         wait = WebDriverWait(browser, 30)
-        browser.find_element(By.ID, "reviewer").send_keys("Kwame")
-        browser.find_element(By.ID, "token").send_keys(REVIEW_TOKEN + Keys.ENTER)
+        _sign_in(browser, "Kwame")
         _queue(browser, TEXTS)
         wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "article.result")) == 2)
         cards = browser.find_elements(By.CSS_SELECTOR, "article.result")
