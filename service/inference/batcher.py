@@ -301,6 +301,19 @@ class Batcher:
         finally:
             admission.finished(len(texts))
 
+    def _dropped(self, job: _Job, now: float) -> Exception | None:
+        """Why a request none of whose texts is in a batch yet is answered without computing, or None:
+        its deadline passed while it was queued, or its client has gone (nobody would read its reply)."""
+        admission = self.pool.admission
+        try:
+            admission.check_deadline(job.deadline, now)
+        except DeadlinePassedError as exc:
+            return exc
+        if job.watch is not None and CLIENT_LEFT in job.watch:
+            admission.client_left += 1
+            return ClientGoneError("the client went away before inference started; nothing was computed")
+        return None
+
     def _take(self, room: int) -> list[_Piece]:
         """Up to ``room`` texts, QUANTUM per request per turn, requests taking turns in arrival order."""
         pieces: list[_Piece] = []
@@ -308,20 +321,11 @@ class Batcher:
         while room > 0 and self._queue:
             job = self._queue.popleft()
             if job.taken == 0:
-                try:
-                    self.pool.admission.check_deadline(job.deadline, now)
-                except DeadlinePassedError as exc:  # passed while queued: answer without computing
+                dropped = self._dropped(job, now)
+                if dropped is not None:  # answered without computing
                     self._untaken -= len(job.texts)
                     if not job.future.done():
-                        job.future.set_exception(exc)
-                    continue
-                if job.watch is not None and CLIENT_LEFT in job.watch:  # nobody would read its reply
-                    self._untaken -= len(job.texts)
-                    self.pool.admission.client_left += 1
-                    if not job.future.done():
-                        job.future.set_exception(
-                            ClientGoneError("the client went away before inference started; nothing was computed")
-                        )
+                        job.future.set_exception(dropped)
                     continue
             hi = min(len(job.texts), job.taken + min(room, QUANTUM))
             pieces.append(_Piece(job, job.taken, hi))
