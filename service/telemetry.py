@@ -314,6 +314,12 @@ class OverloadCollector(Collector):
                 "Most texts admitted at once: the measured rate times the admitted wait.",
                 value=admission.limit,
             )
+            yield CounterMetricFamily(
+                "textsieve_queue_abandoned_requests",
+                "Requests dropped from the inference queue uncomputed because their client had closed the "
+                "connection (booked 499); their texts were given back to the queue's bound.",
+                value=admission.client_left,
+            )
         yield refused
 
 

@@ -21,6 +21,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 from textsieve.service.inference.admission import CLIENT_LEFT
 from textsieve.service.logs import ACCESS, line_handler
 from textsieve.service.telemetry import ServiceMetrics
+from textsieve.service.web.methods import ASTERISK
 from textsieve.service.web.transport import ANSWERED_HERE, PROBE_PATHS, WITH_BODY, ConnectionGuard
 
 _SAFE_ID = re.compile(r"[A-Za-z0-9._:-]{1,128}")
@@ -54,7 +55,11 @@ def begin(scope: Scope, given: str) -> tuple[str, float]:
 def _route(scope: Scope) -> str:
     route = scope.get("route")
     path = getattr(route, "path", None)
-    return path if isinstance(path, str) else "unmatched"
+    if isinstance(path, str):
+        return path
+    # ``OPTIONS *`` (the server as a whole; only OPTIONS reaches the app with it, service/web/methods.py)
+    # matches no route but is answered 204: booked under its target, not with the 404s.
+    return ASTERISK if scope.get("path") == ASTERISK else "unmatched"
 
 
 class Access:

@@ -157,7 +157,7 @@ async def test_queued_texts_of_a_client_that_left_are_dropped_uncomputed(
 
     monkeypatch.setattr(Batcher, "_dispatch", held)
     settings = settings_for(shared_registry, workers=1, inference=inference, batch_wait_ms=0)
-    async with serving(settings) as (app, _client):
+    async with serving(settings) as (app, client):
         pool = app.state.pool
         served = app.state.models.acquire_live(MODEL, None)
         assert served is not None and served.batcher is not None
@@ -185,5 +185,7 @@ async def test_queued_texts_of_a_client_that_left_are_dropped_uncomputed(
         finally:
             app.state.models.release(served)
         assert len(results) == 3 and len(kept_results) == 2
+        metrics = (await client.get("/metrics")).text
         assert computed == [TEXTS[:3], TEXTS[8:10]]  # the second request's texts never reached a worker
         assert pool.admission.queued == 0 and pool.admission.client_left == 1
+        assert "\ntextsieve_queue_abandoned_requests_total 1.0\n" in metrics

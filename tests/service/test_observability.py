@@ -63,6 +63,7 @@ EXPOSED = {
     "textsieve_body_bytes_in_flight",
     "textsieve_queue_texts",
     "textsieve_queue_limit_texts",
+    "textsieve_queue_abandoned_requests_total",
     # The live loop (service/liveloop/): the shadow queue, and drift of the live texts per version.
     "textsieve_shadow_queue_texts",
     "textsieve_drift_window_texts",
@@ -219,6 +220,29 @@ async def test_the_openapi_document_is_booked_under_its_own_route(shared_registr
     for method, status in (("GET", "200"), ("POST", "405")):
         unmatched = (("method", method), ("route", "unmatched"), ("status", status))
         assert ("textsieve_http_requests_total", unmatched) not in samples
+
+
+async def test_options_star_is_booked_under_its_target(shared_registry: Path) -> None:
+    # "OPTIONS *" (RFC 9112 §3.2.4, the server as a whole) matches no route and is answered 204 with the
+    # server's methods: it was booked under "unmatched", with the 404s (found reviewing, 2026-12-05).
+    async with serving(settings_for(shared_registry)) as (app, client):
+        sent: list[Any] = []
+
+        async def receive() -> Any:
+            return {"type": "http.request", "body": b"", "more_body": False}
+
+        async def send(message: Any) -> None:
+            sent.append(message)
+
+        scope = {"type": "http", "asgi": {"version": "3.0"}, "http_version": "1.1", "method": "OPTIONS"}
+        scope |= {"scheme": "http", "path": "*", "raw_path": b"*", "query_string": b"", "headers": [(b"host", b"t")]}
+        await app(scope, receive, send)
+        samples = outside((await client.get("/metrics")).text)
+    assert sent[0]["status"] == 204 and (b"allow", b"GET, HEAD, POST, OPTIONS") in sent[0]["headers"]
+    key = (("method", "OPTIONS"), ("route", "*"), ("status", "204"))
+    assert samples[("textsieve_http_requests_total", key)] == 1
+    unmatched = [k for k in samples if k[0] == "textsieve_http_requests_total" and ("route", "unmatched") in k[1]]
+    assert unmatched == []
 
 
 def _logged_request(log: Path, rid: str, timeout: float = 5.0) -> dict[str, Any]:
