@@ -17,6 +17,7 @@ from typing import Any
 from textsieve.registry.measures import TEMPERATURE_BOUNDS, temperature_bound
 from textsieve.registry.report import svg
 from textsieve.registry.report.build import Section, default_sections
+from textsieve.registry.tables import one_line_part
 
 STYLE = """
 body{font-family:system-ui,sans-serif;margin:0 auto;max-width:1100px;padding:1rem 1.5rem;color:#1a1a1a;
@@ -80,18 +81,24 @@ def _table(headers: Sequence[str], rows: Sequence[Sequence[str]], numeric: Seque
 
 
 def highlighted(text: str, spans: Sequence[dict[str, Any]]) -> str:
-    """``text`` escaped, with the spans that fall inside it marked (overlaps were merged upstream)."""
+    """``text`` escaped, with the spans that fall inside it marked (overlaps were merged upstream). It is
+    shown as the CLI's tables show a text (``registry/tables.py one_line``): a stored text's control,
+    format (bidi overrides, zero-width), private-use and unassigned characters as their escapes
+    (``\\u202e``), so a text can neither hide characters from the reader nor show itself reordered
+    ("Trojan Source", Boucher and Anderson 2021); joiners inside words stay. Spans' offsets count the
+    stored text's characters, so each piece is cut first and made visible after."""
     out, at = [], 0
     for sp in sorted(spans, key=lambda s: int(s["start"])):
         start, end = int(sp["start"]), int(sp["end"])
         if start < at or end > len(text):
             continue  # beyond the clipped text, or overlapping: shown in the span list instead
-        out.append(escape(text[at:start]))
+        out.append(escape(one_line_part(text, at, start)))
         out.append(
-            f'<mark title="{svg.shown(str(sp["label"]))} {float(sp["weight"]):.3f}">{escape(text[start:end])}</mark>'
+            f'<mark title="{svg.shown(str(sp["label"]))} {float(sp["weight"]):.3f}">'
+            f"{escape(one_line_part(text, start, end))}</mark>"
         )
         at = end
-    out.append(escape(text[at:]))
+    out.append(escape(one_line_part(text, at, len(text))))
     return "".join(out)
 
 

@@ -685,3 +685,22 @@ def test_real_data_report_seeds_agree_and_corruption_shows(uci_bundles: tuple[Pa
         f"{same['comparison']['accuracy_delta']:+.3f} (McNemar p {same['comparison']['mcnemar_p']:.3f}); "
         f"corrupted Δ {c['accuracy_delta']:+.3f} (p {c['mcnemar_p']:.2g})"
     )
+
+
+def test_a_reports_texts_show_hidden_and_reordering_characters_as_escapes_with_spans_kept() -> None:
+    # A stored text with U+202E RIGHT-TO-LEFT OVERRIDE shows what follows it reversed, U+200B shows
+    # nothing ("Trojan Source", Boucher and Anderson 2021, CVE-2021-42574): in a report they are shown
+    # as the CLI's tables show them (registry/tables.py one_line), a span still marking its own words,
+    # cut by the stored text's offsets. A zero width joiner inside an emoji sequence spells it and stays.
+    from textsieve.registry.report.html import highlighted
+
+    text = "refund \u202elate\u202c now \u200b<b>x</b> 👩\u200d💻"
+    spans = [{"start": 8, "end": 12, "label": "billing", "weight": 0.5}]
+    shown = highlighted(text, spans)
+    assert shown == (
+        'refund \\u202e<mark title="billing 0.500">late</mark>\\u202c now \\u200b&lt;b&gt;x&lt;/b&gt; 👩\u200d💻'
+    )
+    assert "\u202e" not in shown and "\u200b" not in shown
+    # A span whose edge is the joiner keeps it: it joins two visible characters of the whole text.
+    joined = highlighted(text, [{"start": len(text) - 2, "end": len(text), "label": "x", "weight": 1.0}])
+    assert joined.endswith('<mark title="x 1.000">\u200d💻</mark>')
