@@ -304,6 +304,14 @@ UNKNOWN_METHOD = Kind(
     "the connection was closed. Its paths answer GET, HEAD, POST and OPTIONS, as the Allow header of a 405 "
     "or of an OPTIONS reply lists for each. Nothing was computed.",
 )
+VERSION_NOT_SUPPORTED = Kind(
+    505,
+    "http-version-not-supported",
+    "The request's HTTP version is not one this service speaks",
+    "The request line named an HTTP version other than HTTP/1.1 or HTTP/1.0 (HTTP/2.0 or HTTP/0.9 in a "
+    "text request line is neither: HTTP/2 is a binary protocol with its own framing, RFC 9113), answered "
+    "505 (RFC 9110 §15.6.6); the connection was closed. Send the request as HTTP/1.1. Nothing was computed.",
+)
 SLUGS: dict[str, Kind] = {
     k.slug: k
     for k in [
@@ -315,6 +323,7 @@ SLUGS: dict[str, Kind] = {
         MALFORMED,
         HEAD_TOO_LARGE,
         UNKNOWN_METHOD,
+        VERSION_NOT_SUPPORTED,
     ]
 }
 

@@ -80,7 +80,14 @@ from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
 
 from textsieve.service.inference.admission import CLIENT_LEFT
 from textsieve.service.telemetry import ServiceMetrics
-from textsieve.service.web.problems import HEAD_TOO_LARGE, MALFORMED, MEDIA_TYPE, REQUEST_TIMEOUT, UNKNOWN_METHOD
+from textsieve.service.web.problems import (
+    HEAD_TOO_LARGE,
+    MALFORMED,
+    MEDIA_TYPE,
+    REQUEST_TIMEOUT,
+    UNKNOWN_METHOD,
+    VERSION_NOT_SUPPORTED,
+)
 
 # Liveness, readiness and metrics: cheap, bodiless, and what an orchestrator restarts or drains a
 # replica by, so they are never refused by the request limit (a busy replica is alive).
@@ -331,6 +338,16 @@ class ConnectionGuard:
             "(RFC 9112 §3.2): send the path and query alone; the connection is closed",
             None,
         )
+        # httptools reads "HTTP/2.0" and "HTTP/0.9" in a request line, and uvicorn answered them as HTTP/1.1.
+        self.version_not_supported = _raw_response(
+            VERSION_NOT_SUPPORTED.status,
+            "HTTP Version Not Supported",
+            VERSION_NOT_SUPPORTED.slug,
+            VERSION_NOT_SUPPORTED.title,
+            "this service speaks HTTP/1.1 and HTTP/1.0 only (RFC 9110 §15.6.6): send the request as HTTP/1.1; "
+            "the connection is closed",
+            None,
+        )
         # The asterisk form names the server as a whole, for OPTIONS alone (RFC 9112 §3.2.4); "GET *" was
         # routed as the path "*" and answered 404 "no such path: GET /*".
         self.asterisk_not_options = _raw_response(
@@ -486,7 +503,11 @@ class ConnectionGuard:
                 """A refusal as the request being read may get it: a reply to HEAD is its head alone
                 (RFC 9110 §9.3.2; its Content-Length still says what a GET would get, §8.6). With the
                 body sent too, a client kept alive read it as the start of its next reply."""
-                if self.parser.get_method() == b"HEAD":  # httptools says DELETE before a method is read
+                # httptools says DELETE before a method is read, and the last request's until the next
+                # request line is: a next line it could not read was refused as if to a HEAD after one,
+                # head alone. The method is this request's once its target has been read (uvicorn
+                # empties the target at each request's first byte, on_message_begin).
+                if self.url and self.parser.get_method() == b"HEAD":
                     return reply[: reply.index(b"\r\n\r\n") + 4]
                 return reply
 
@@ -571,12 +592,12 @@ class ConnectionGuard:
                     return
                 if self._should_upgrade():  # checked and admitted once, when parsed again (see _feed)
                     return
+                version = self.parser.get_http_version()
+                if version != "1.1" and version != "1.0":
+                    self._close_with(guard.version_not_supported, 505)
+                    return
                 hosts = [value for name, value in self.headers if name == b"host"]
-                if (
-                    len(hosts) > 1
-                    or (not hosts and self.parser.get_http_version() == "1.1")
-                    or (hosts and not _HOST.fullmatch(hosts[0]))
-                ):
+                if len(hosts) > 1 or (not hosts and version == "1.1") or (hosts and not _HOST.fullmatch(hosts[0])):
                     # RFC 9112 §3.2: a server must answer 400 to an HTTP/1.1 request without a Host,
                     # with two (a proxy in front may have read the other one), or with one that is no host.
                     self.send_400_response("Host missing, repeated or invalid")
@@ -584,7 +605,7 @@ class ConnectionGuard:
                 if self.parser.get_method() == b"CONNECT":
                     self._close_with(guard.no_tunnel, 501)
                     return
-                if self.parser.get_http_version() == "1.0" and any(n == b"transfer-encoding" for n, _ in self.headers):
+                if version == "1.0" and any(n == b"transfer-encoding" for n, _ in self.headers):
                     guard.malformed_requests += 1
                     self._close_with(guard.coding_in_http_1_0, 400)
                     return
@@ -610,7 +631,7 @@ class ConnectionGuard:
                         self.flow.pause_reading()
                         self.loop.call_later(RETRY_AFTER_SECONDS / 2, self._resume)
                     return
-                if self.parser.get_http_version() == "1.0":
+                if version == "1.0":
                     # RFC 9110 §10.1.1 and §15.2: an HTTP/1.0 request's 100-continue is ignored, since
                     # such a client takes the first status line it reads, an interim one too, for the reply.
                     self.expect_100_continue = False

@@ -608,6 +608,46 @@ def test_a_head_refused_by_the_connection_layer_gets_the_head_alone() -> None:
 
 
 @pytest.mark.parametrize(
+    ("line", "status"),
+    [(b"FOO /healthz HTTP/1.1", 501), (b"\x16\x03\x01 not http", 400)],
+    ids=["unknown method", "not a request line"],
+)
+@pytest.mark.parametrize("ahead", [b"HEAD", b"GET"])
+def test_a_refusal_after_a_kept_alive_request_is_whole_and_booked_with_no_method(
+    line: bytes, status: int, ahead: bytes
+) -> None:
+    # httptools goes on reporting the last request's method until the next request line is read: a
+    # next line that could not be read was refused as if to that request, so after a HEAD the 501 or
+    # 400 went out as a head alone (its Content-Length promising a body never sent: "peer closed
+    # connection without sending complete message body", found by an audit, 2026-12-05), and either
+    # was booked with the method of the request before.
+    from textsieve.service.web.transport import ConnectionGuard
+
+    booked: list[tuple[str, str, int]] = []
+
+    class Booked:
+        def answered(self, method: str, route: str, status: int, seconds: float) -> None:
+            booked.append((method, route, status))
+
+    guard = ConnectionGuard(max_connections=8, read_timeout=5)
+    guard.metrics = Booked()
+    with _guarded_uvicorn(guard, 0.0) as address, socket.create_connection(address, timeout=10) as s:
+        s.sendall(ahead + b" /healthz HTTP/1.1\r\nHost: x\r\n\r\n")
+        first = b""
+        while not first.endswith(b"\r\n\r\n" if ahead == b"HEAD" else b"{}"):
+            first += s.recv(65536)
+        s.sendall(line + b"\r\nHost: x\r\n\r\n")  # in a read of its own
+        got = b""
+        while chunk := s.recv(65536):
+            got += chunk
+    head, _, body = got.partition(b"\r\n\r\n")
+    assert head.startswith(b"HTTP/1.1 %d " % status), got
+    length = int(re.search(rb"(?i)content-length: (\d+)", head).group(1))  # type: ignore[union-attr]
+    assert length > 0 and len(body) == length and json.loads(body)["status"] == status
+    assert booked == [("unknown", "unmatched", status)]
+
+
+@pytest.mark.parametrize(
     ("target", "admitted"),
     [
         pytest.param(b"/healthz", True, id="origin form"),

@@ -420,6 +420,7 @@ async def test_problem_types_resolve_to_explanations(shared_client: httpx.AsyncC
         ("malformed-request", 400),
         ("overloaded", 503),
         ("unknown-method", 501),
+        ("http-version-not-supported", 505),
     ):
         r = await shared_client.get(f"/problems/{slug}")
         assert r.status_code == 200 and f"HTTP {status}" in r.text, slug

@@ -903,6 +903,26 @@ def test_a_target_with_a_fragment_or_an_asterisk_for_another_method_than_options
     assert "RFC 9112 §3.2" in body["detail"]
 
 
+@pytest.mark.parametrize(
+    "data",
+    [
+        b"GET /healthz HTTP/2.0\r\n" + _CLOSE + b"\r\n",
+        b"GET /healthz HTTP/0.9\r\n" + _CLOSE + b"\r\n",
+        b"POST /v1/predict HTTP/2.0\r\n" + _CLOSE + b"Content-Length: %d\r\n\r\n" % len(_BODY) + _BODY,
+    ],
+    ids=["HTTP/2.0", "HTTP/0.9", "a prediction as HTTP/2.0"],
+)
+def test_a_request_line_naming_another_http_version_is_refused_505(probed: tuple[str, Path], data: bytes) -> None:
+    # httptools reads "HTTP/2.0" and "HTTP/0.9" in a text request line (it refuses 1.2 and 3.0), and
+    # uvicorn answered them 200 as HTTP/1.1 (found by an audit, 2026-12-05). RFC 9110 §15.6.6: 505 for
+    # a major version the server does not support; HTTP/2 is a binary protocol (RFC 9113), never a
+    # request line of text.
+    replies = _replies_until_closed(probed[0], data)
+    assert [status for status, _ in replies] == [505]
+    body = replies[0][1]
+    assert body["type"] == "/problems/http-version-not-supported" and "HTTP/1.1" in body["detail"]
+
+
 def test_head_star_is_refused_400_and_options_star_still_answered(probed: tuple[str, Path]) -> None:
     host, port = probed[0].removeprefix("http://").split(":")
     with socket.create_connection((host, int(port)), timeout=20) as s:
