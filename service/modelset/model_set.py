@@ -191,7 +191,11 @@ class ModelSet:
 
     def degraded(self) -> list[str]:
         """What works less well than it should while every served model still answers."""
-        notes = [f"registry: {self.registry_error}"] if self.registry_error else []
+        notes = []
+        if self.registry_error:
+            # Said only when there are any: before a first load there are none to keep serving.
+            kept = "; the versions already loaded keep serving" if self.live else ""
+            notes.append(f"registry: {self.registry_error}{kept}")
         for name, st in sorted(self.status.items()):
             current = self.live.get(name)
             if st.failed_version is not None and current is not None:
@@ -548,9 +552,7 @@ class ModelSet:
             log.warning("registry poll failed: %s", message)
             since = dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat()
             # Shown on /readyz, which anyone may call: no host, database or folder (the log has them).
-            self.registry_error = (
-                f"unavailable since {since} (the server's log says why); the versions already loaded keep serving"
-            )
+            self.registry_error = f"unavailable since {since} (the server's log says why)"
 
     async def poll_once(self) -> None:
         if not self._discovered:

@@ -143,6 +143,11 @@ async def test_not_ready_reasons(tmp_path: Path) -> None:
         assert r.status_code == 503 and "startup failed" in r.json()["reason"]
         # Readiness answers callers without a token: no path of this machine (the log has it).
         assert str(tmp_path) not in r.text and "the server's log says why" in r.json()["reason"]
+        # Nothing was ever loaded: once a poll has failed too, the registry's note may not say that the
+        # loaded versions keep serving (found by an audit, 2026-12-05).
+        noted = await poll_readyz_async(client, lambda r: bool(r.json()["degraded"]), timeout=20, awaiting="a poll")
+        assert noted.status_code == 503 and noted.json()["degraded"][0].startswith("registry: unavailable since")
+        assert "keep serving" not in noted.json()["degraded"][0], noted.json()
         assert r.headers["retry-after"]
         p = await client.post("/v1/predict", json={"texts": ["a"]})
         assert p.status_code == 503 and p.headers["content-type"] == "application/problem+json"
