@@ -695,6 +695,14 @@ class WorkerProcesses:
         self._started = False
         self._start_lock = threading.Lock()
         self._loads = itertools.count(1)
+        if threading.current_thread() is threading.main_thread():
+            # The fork server is started here, where it can be started with SIGINT ignored (a Ctrl-C
+            # during its imports printed their traceback: textsieve/forking.py); the workers come on
+            # the first load, off the event loop. Its imports overlap the registry's meanwhile.
+            try:
+                _fork_context()
+            except Exception:  # noqa: BLE001, S110 - _ensure_started tries again and says what failed
+                pass
 
     def _ensure_started(self) -> None:
         # Started on the first load (off the event loop), not in the constructor.
