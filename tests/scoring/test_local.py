@@ -18,6 +18,7 @@ from tests.helpers.environment import child_env
 from tests.helpers.service import MODEL, serving, settings_for
 from tests.scoring.conftest import ROOT, uci_rows, wait_until, write_jsonl
 from textsieve.cli import main
+from textsieve.scoring.pool import _stopped
 
 TOLERANCE = 1e-6  # the issue's bound; float32 graphs agree to ~1e-7 (DEVELOPERS.md "Numbers")
 
@@ -568,6 +569,47 @@ def test_a_signal_to_the_process_group_stops_cleanly_and_resume_gives_the_same_f
     assert len(lines) == 1 and "Traceback" not in err and "leaked" not in err, err
     assert lines[0].startswith(f"{last_line}; stopped after ") and f"; {out} was not written; " in lines[0], err
     assert lines[0].endswith("run the same command with --resume to continue"), err
+    assert not out.exists()
+    assert 0 < json.loads(state.read_text(encoding="utf-8"))["rows"] < len(rows)
+    assert score(src, "--out", out, *common, "--resume") == 0
+    assert out.read_bytes() == reference.read_bytes()
+
+
+def test_a_worker_killed_while_it_sends_a_result_ends_the_run_and_resume_gives_the_same_file(
+    scoring_registry: Path, tmp_path: Path
+) -> None:
+    """One worker killed (the OOM killer) while it writes a result into the pool's pipe, the other
+    alive: the run hung for ever with no message (bench/README.md, "Why it is not kept"). It ends
+    with one line saying to resume, keeping the chunks written, and --resume finishes the file."""
+    from tests.helpers import dying_worker
+
+    rows = uci_rows() * 4  # 120 chunks
+    src = write_jsonl(tmp_path / "in.jsonl", [{**r, "id": i} for i, r in enumerate(rows)])
+    reference = tmp_path / "reference.jsonl"
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 2, "--chunk-rows", 100, "--spans", 2]
+    assert score(src, "--out", reference, *common) == 0
+
+    out = tmp_path / "out.jsonl"
+    state = tmp_path / ".out.jsonl.score-partial" / "state.json"
+    mark = tmp_path / "a-worker-died"
+    cmd = [sys.executable, "-m", "textsieve.cli", "score", str(src), "--out", str(out), *map(str, common)]
+    site = Path(dying_worker.__file__).with_name("dying_worker_site")
+    env = child_env() | {
+        "PYTHONPATH": os.pathsep.join([str(site), str(ROOT)]),
+        dying_worker.AT: "10",  # a chunk is one piece here: the run has written some chunks by then
+        dying_worker.MARK: str(mark),
+    }
+    proc = subprocess.Popen(cmd, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    try:
+        _, err = proc.communicate(timeout=120)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        _, err = proc.communicate()
+        raise AssertionError(f"the run did not end: {err[-2000:]!r}") from None
+    lines = [line for line in err.strip().splitlines() if not line.startswith("scoring ")]  # progress lines
+    assert mark.exists(), err
+    assert proc.returncode == 1, err
+    assert lines == ["textsieve: error: " + str(_stopped())], err
     assert not out.exists()
     assert 0 < json.loads(state.read_text(encoding="utf-8"))["rows"] < len(rows)
     assert score(src, "--out", out, *common, "--resume") == 0

@@ -12,13 +12,13 @@ from pathlib import Path
 
 from tests.helpers.environment import child_env
 from tests.scoring.conftest import ROOT, wait_until
-from textsieve.scoring.pool import Pool, result
+from textsieve.scoring.pool import Pool, _stopped
 
 
 def test_a_worker_sent_sigint_while_idle_goes_on_scoring(tiny_bundles: dict[str, Path]) -> None:
     pool = Pool(tiny_bundles["a"], workers=1)
     try:
-        first = result(pool.submit(["the chain is broken"], 0))
+        first = pool.result(pool.submit(["the chain is broken"], 0))
         assert pool._executor is not None
         (pid,) = list(pool._executor._processes)
         worker = pool._executor._processes[pid]
@@ -28,7 +28,7 @@ def test_a_worker_sent_sigint_while_idle_goes_on_scoring(tiny_bundles: dict[str,
             os.kill(pid, signal.SIGINT)
             time.sleep(0.05)
         assert worker.is_alive()
-        again = result(pool.submit(["the chain is broken"], 0))
+        again = pool.result(pool.submit(["the chain is broken"], 0))
         assert again.probabilities.tolist() == first.probabilities.tolist()
         assert worker.is_alive()
     finally:
@@ -61,9 +61,9 @@ def test_the_workers_end_when_the_scoring_process_is_killed(tiny_bundles: dict[s
     code = (
         "import sys\n"
         "from pathlib import Path\n"
-        "from textsieve.scoring.pool import Pool, result\n"
+        "from textsieve.scoring.pool import Pool\n"
         "pool = Pool(Path(sys.argv[1]), workers=1)\n"
-        "result(pool.submit(['the chain is broken'], 0))\n"
+        "pool.result(pool.submit(['the chain is broken'], 0))\n"
         "print(*pool._executor._processes, flush=True)\n"
         "sys.stdin.read()\n"
     )
@@ -98,9 +98,9 @@ def test_the_scoring_process_ends_when_a_worker_dies_halfway_through_a_result(
     code = (
         "import os, signal, struct, sys, time\n"
         "from pathlib import Path\n"
-        "from textsieve.scoring.pool import Pool, result\n"
+        "from textsieve.scoring.pool import Pool\n"
         "pool = Pool(Path(sys.argv[1]), workers=1)\n"
-        "result(pool.submit(['the chain is broken'], 0))\n"
+        "pool.result(pool.submit(['the chain is broken'], 0))\n"
         "(pid,) = list(pool._executor._processes)\n"
         "os.kill(pid, signal.SIGSTOP)\n"  # so the executor sees the half message before the death
         "writer = pool._executor._result_queue._writer\n"
@@ -119,3 +119,34 @@ def test_the_scoring_process_ends_when_a_worker_dies_halfway_through_a_result(
         raise AssertionError(f"the scoring process did not end: {out!r} {err[-2000:]!r}") from None
     assert out == "closed\n", err[-2000:]
     assert proc.returncode == 0, err[-2000:]
+
+
+def test_a_worker_killed_halfway_through_a_result_stops_the_run_with_one_line(tiny_bundles: dict[str, Path]) -> None:
+    """One worker killed (the OOM killer) while it writes a result, the other alive: the executor's
+    thread read for the rest of the message for ever, as this process and the live worker hold the
+    pipe's write end, and the wait for that result never ended. It ends now in the error that says
+    to resume, and the process exits."""
+    code = (
+        "import sys\n"
+        "from pathlib import Path\n"
+        "from tests.helpers.dying_worker import die_halfway_through_a_result\n"
+        "from textsieve.errors import UnavailableError\n"
+        "from textsieve.scoring.pool import Pool\n"
+        "pool = Pool(Path(sys.argv[1]), workers=2)\n"
+        "for f in [pool.submit(['the chain is broken'], 0) for _ in range(2)]:\n"
+        "    pool.result(f)\n"
+        "print(sum(p.is_alive() for p in pool._executor._processes.values()), flush=True)\n"
+        "try:\n"
+        "    pool.result(pool._executor.submit(die_halfway_through_a_result))\n"
+        "except UnavailableError as exc:\n"
+        "    print(exc, flush=True)\n"
+    )
+    proc = _python(code, tiny_bundles["a"], stderr=subprocess.PIPE)
+    try:
+        out, err = proc.communicate(timeout=60)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        out, err = proc.communicate()
+        raise AssertionError(f"the scoring process did not end: {out!r} {err[-2000:]!r}") from None
+    assert out.splitlines() == ["2", str(_stopped())], err[-2000:]
+    assert proc.returncode == 0 and "Traceback" not in err, err[-2000:]

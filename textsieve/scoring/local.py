@@ -33,7 +33,7 @@ from textsieve.files import atomic_write_text, check_writable, fsync_dir
 from textsieve.scoring import formats
 from textsieve.scoring.columns import Layout, plan
 from textsieve.scoring.model import Resolved, resolve
-from textsieve.scoring.pool import Pool, default_workers, pieces, result
+from textsieve.scoring.pool import Pool, default_workers, pieces
 from textsieve.scoring.progress import Progress
 from textsieve.scoring.rows import Scored, Split, check_fields, output_rows, split
 
@@ -225,12 +225,12 @@ def _resume_state(run: _Run, expected: dict[str, Any], out: TextIO) -> dict[str,
     return old
 
 
-def _combine(futures: Sequence[tuple[slice, Future[Scored]]], count: int, classes: int) -> Scored:
+def _combine(pool: Pool, futures: Sequence[tuple[slice, Future[Scored]]], count: int, classes: int) -> Scored:
     import numpy as np
 
     if not futures:
         return Scored(np.zeros(0, np.int64), np.zeros((0, classes), np.float64), [] if count == 0 else None)
-    parts = [result(f) for _, f in futures]
+    parts = [pool.result(f) for _, f in futures]
     spans = None
     if parts[0].spans is not None:
         spans = [s for p in parts for s in (p.spans or [])]
@@ -438,10 +438,10 @@ def _stream(
             pending.append((chunk, part, futures, row))
             row += len(chunk)
             while len(pending) >= DEPTH:
-                schema = _flush(run, writer, schema, reader, layout, classes, opts, *pending.popleft())
+                schema = _flush(run, pool, writer, schema, reader, layout, classes, opts, *pending.popleft())
                 progress.update(int(run.state["rows"]))
         while pending:
-            schema = _flush(run, writer, schema, reader, layout, classes, opts, *pending.popleft())
+            schema = _flush(run, pool, writer, schema, reader, layout, classes, opts, *pending.popleft())
             progress.update(int(run.state["rows"]))
         progress.update(int(run.state["rows"]), force=True)
         if writer is not None:
@@ -492,6 +492,7 @@ def _chain(first: list[Any], rest: Iterator[list[Any]]) -> Iterator[list[Any]]:
 
 def _flush(
     run: _Run,
+    pool: Pool,
     writer: formats.AppendWriter | None,
     schema: pa.Schema | None,
     reader: formats.Reader,
@@ -503,7 +504,7 @@ def _flush(
     futures: list[tuple[slice, Future[Scored]]],
     first_row: int,
 ) -> pa.Schema | None:
-    scored = _combine(futures, len(part.texts), classes)
+    scored = _combine(pool, futures, len(part.texts), classes)
     rows = output_rows(chunk, part, scored, layout)
     if writer is not None:
         writer.write(rows)

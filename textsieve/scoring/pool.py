@@ -149,13 +149,62 @@ class Pool:
             if cancel and writer is not None:
                 writer.close()
 
+    def result(self, future: Future[Scored]) -> Scored:
+        """The future's result; a worker that died becomes one line, not a traceback nor a hang.
 
-def result(future: Future[Scored]) -> Scored:
-    """The future's result; a worker that died becomes one line, not a traceback."""
-    try:
-        return future.result()
-    except BrokenProcessPool as exc:
-        raise _stopped() from exc
+        A worker killed while it writes a result (the OOM killer, SIGKILL) leaves half a message in
+        the results' pipe, and a result of more than 4,096 bytes (``PIPE_BUF``) is not written at
+        once. The executor's thread then reads for the rest for ever: this process and every live
+        worker hold the pipe's write end, so the read never ends, and it never looks at the dead
+        worker. So the wait looks at the workers once a second (a timed wait on a lock, no work
+        meanwhile); a dead one that the executor has not answered for one more look means its
+        thread is stuck, and the pool is stopped here (``_unstick``)."""
+        try:
+            dead = False
+            while True:
+                try:
+                    return future.result(timeout=_LOOK)
+                except TimeoutError:
+                    if not self._a_worker_died():
+                        continue
+                    if dead:
+                        break
+                    dead = True  # the executor sees a dead worker in milliseconds, unless it is stuck
+            self._unstick()
+            future.result(timeout=_UNSTUCK)
+        except (BrokenProcessPool, TimeoutError) as exc:
+            raise _stopped() from exc
+        raise _stopped()  # its result came in as the workers were stopped: the pool is gone all the same
+
+    def _a_worker_died(self) -> bool:
+        """Whether a worker process has ended, read from the sentinels without reaping anything."""
+        from multiprocessing.connection import wait
+
+        processes = getattr(self._executor, "_processes", None) or {}
+        sentinels = [p.sentinel for p in list(processes.values())]
+        return bool(sentinels) and bool(wait(sentinels, timeout=0))
+
+    def _unstick(self) -> None:
+        """End the workers and close this process's write end of the results' pipe: the executor's
+        read then ends (end of file), and the executor takes the pool for broken, fails the pending
+        futures and ends its thread, which Python's exit joins."""
+        assert self._executor is not None
+        processes = getattr(self._executor, "_processes", None) or {}
+        results = getattr(self._executor, "_result_queue", None)
+        writer = getattr(results, "_writer", None)
+        thread = getattr(self._executor, "_executor_manager_thread", None)
+        for process in list(processes.values()):
+            process.terminate()  # SIGTERM: the workers keep its default (``_load``)
+        for process in list(processes.values()):
+            process.join(_UNSTUCK)
+        if writer is not None:
+            writer.close()
+        if thread is not None:
+            thread.join(_UNSTUCK)
+
+
+_LOOK = 1.0  # seconds between looks at the workers while a result is awaited
+_UNSTUCK = 10.0  # seconds a stopped worker or the executor's thread may take to end
 
 
 def _stopped() -> UnavailableError:
@@ -175,4 +224,4 @@ def pieces(texts: Sequence[str], parallel: int, minimum: int = 256) -> list[slic
     return [slice(lo, min(lo + step, n)) for lo in range(0, n, step)]
 
 
-__all__ = ["Pool", "default_workers", "pieces", "result"]
+__all__ = ["Pool", "default_workers", "pieces"]
