@@ -168,6 +168,37 @@ def _surrogate_refusal_before_keep(text: str) -> str | None:
     return None
 
 
+# A field name as JSON escapes in the body -> as the reply shows it, in the detail's leading field, in the
+# quoted copy and in errors[].field alike: Python's repr escapes (the names of an audit of the HTTP API,
+# 2026-12-05: the leading copy held a raw ESC, U+202E or NUL, a lone surrogate came out escaped twice).
+SHOWN_NAMES = [
+    pytest.param("\\u001b[31mred", "\\x1b[31mred", id="ESC"),
+    pytest.param("\\u202eabc", "\\u202eabc", id="right-to-left override"),
+    pytest.param("\\u0000", "\\x00", id="NUL"),
+    pytest.param("\\ud800", "\\ud800", id="lone surrogate"),
+    pytest.param("a\\nb", "a\\nb", id="line break"),
+    pytest.param("back\\\\slash", "back\\\\slash", id="a backslash shown as two"),
+    pytest.param("caf\\u00e9", "caf\u00e9", id="printable non-ASCII as it is"),
+]
+
+
+@pytest.mark.parametrize("repeated", [False, True], ids=["unknown", "given twice"])
+@pytest.mark.parametrize(("escaped", "shown"), SHOWN_NAMES)
+async def test_a_field_name_is_shown_escaped_everywhere_in_the_problem(
+    shared_client: httpx.AsyncClient, escaped: str, shown: str, repeated: bool
+) -> None:
+    member = f'"{escaped}": 1'
+    content = ('{"texts": ["a"], ' + (f"{member}, {member}" if repeated else member) + "}").encode()
+    r = await shared_client.post("/v1/predict", content=content, headers=JSON)
+    body = assert_problem(r, 422, "invalid-input")
+    (error,) = body["errors"]
+    assert error["field"] == shown
+    assert body["detail"].startswith(f"{shown}: ")
+    assert f"'{shown}'" in error["message"] and f"'{shown}'" in body["detail"]
+    for text in (body["detail"], error["field"], error["message"]):
+        assert text.isprintable(), text  # no control, format or surrogate character reaches the reader
+
+
 # The texts sent, the one holding a lone surrogate last. Sent as JSON with ASCII escapes, so a lone
 # surrogate is "\ud800" and an astral character a pair of escapes the parser joins into one.
 @pytest.mark.parametrize(
