@@ -134,12 +134,16 @@ class VerdictRequest(_Request):
         json_schema_extra={"minLength": 1, "maxLength": MAX_ACTOR}, description="who judged: recorded with the verdict"
     )
 
-    @field_validator("text")
+    # Before pydantic's own string check, which refuses a lone surrogate in its own words: the verdict's
+    # text is refused as registry/verdicts.py check_text words it, whichever way the verdict comes in.
+    @field_validator("text", mode="before")
     @classmethod
-    def _valid_text(cls, text: str) -> str:
+    def _valid_text(cls, text: Any) -> Any:
         from textsieve.errors import InputError
         from textsieve.registry.verdicts import check_text
 
+        if not isinstance(text, str):
+            return text  # pydantic names the wrong type
         try:
             return check_text(text)
         except InputError as exc:

@@ -15,6 +15,7 @@ from hypothesis import strategies as st
 
 from tests.helpers.service import (
     ADMIN_TOKEN,
+    AUTH,
     MODEL,
     PROBLEM,
     REVIEW_AUTH,
@@ -23,6 +24,7 @@ from tests.helpers.service import (
     serving,
     settings_for,
 )
+from textsieve.texts import text_refusal
 
 pytestmark = pytest.mark.anyio
 
@@ -518,3 +520,51 @@ def test_error_classes_map_to_their_status_and_exit_code(
     body = json.loads(bytes(r.body))
     assert r.status_code == status and body["type"] == f"/problems/{slug}"
     assert ("retry-after" in r.headers) is (status == 503)
+
+
+_VERDICT = {
+    "model": MODEL,
+    "version": 1,
+    "text": "my card was charged twice",
+    "predicted_label": "billing",
+    "predicted_probability": 0.5,
+    "verdict_label": "billing",
+    "reviewer": "ana",
+}
+_PROMOTE = {"to": "candidate", "reason": "a lone surrogate's test"}
+_ROLLBACK = {"reason": "a lone surrogate's test"}
+_LONE = "ok \ud800 here"  # sent as the JSON escape "\ud800", as json.dumps writes it
+
+
+# (path, headers, body, the field given _LONE, what the refusal calls the string): every free-text string field
+# a client sends. pydantic's words were "Input should be a valid string, unable to parse raw data as a unicode
+# string" on every route but predict's texts (an audit of the HTTP API, 2026-12-05). Model names and reviewers'
+# names are judged by their own rules (registry/names.py), which name what they allow, on every route alike.
+LONE_SURROGATES = [
+    pytest.param("/v1/predict", {}, {"texts": [_LONE]}, "texts", "texts[0]", id="predict texts"),
+    pytest.param("/v1/verdicts", REVIEW_AUTH, _VERDICT, "text", "the verdict's text", id="verdict text"),
+    *(
+        pytest.param("/v1/verdicts", REVIEW_AUTH, _VERDICT, field, field, id=f"verdict {field}")
+        for field in ("predicted_label", "verdict_label")
+    ),
+    pytest.param(f"/v1/models/{MODEL}/versions/2/promote", AUTH, _PROMOTE, "reason", "reason", id="promote reason"),
+    pytest.param(f"/v1/models/{MODEL}/versions/2/promote", AUTH, _PROMOTE, "actor", "actor", id="promote actor"),
+    pytest.param(f"/v1/models/{MODEL}/rollback", AUTH, _ROLLBACK, "reason", "reason", id="rollback reason"),
+    pytest.param(f"/v1/models/{MODEL}/rollback", AUTH, _ROLLBACK, "actor", "actor", id="rollback actor"),
+]
+
+
+@pytest.mark.parametrize(("path", "auth", "body", "field", "named"), LONE_SURROGATES)
+async def test_a_lone_surrogate_is_refused_in_the_same_words_on_every_route(
+    tokens_client: httpx.AsyncClient, path: str, auth: dict[str, str], body: dict[str, Any], field: str, named: str
+) -> None:
+    sent = {**body, field: [_LONE] if field == "texts" else _LONE}
+    content = json.dumps(sent).encode()  # ensure_ascii: the surrogate as its escape
+    assert b"\\ud800" in content
+    r = await tokens_client.post(path, content=content, headers={**JSON, **auth})
+    problem = assert_problem(r, 422, "invalid-input")
+    # The one rule's words (textsieve/texts.py), after what names the string, as predict has them.
+    expected = f"{named} {text_refusal(_LONE)}"
+    assert expected.endswith("contains a lone surrogate (U+D800) at character 3; send valid Unicode")
+    assert [(e["field"], e["message"]) for e in problem["errors"]] == [(field, expected)]
+    assert problem["detail"] == f"{field}: {expected}"
