@@ -65,10 +65,21 @@ NAME_RULE = (
 )
 
 
+SHOWN_NAME_CHARS = 40  # of a refused name, quoted: it names the name, it does not echo it
+
+
 def _name_refusal(what: str, name: str) -> InputError:
+    """``bad reviewer 'ana\\u202egnp.exe' (U+202E RIGHT-TO-LEFT OVERRIDE): <rule>``: the name as ``repr`` shows it,
+    its first SHOWN_NAME_CHARS characters and "…" after a longer one, then what is wrong with it: its
+    length when over MAX_ACTOR (a name cut to 40 characters said neither that it was too long nor how long)
+    and its first refused character."""
+    why = [f"{len(name)} characters; at most {MAX_ACTOR}"] if len(name) > MAX_ACTOR else []
     bad = refused_character(name)
-    where = "" if bad is None else f" ({character_name(bad)})"
-    return InputError(f"bad {what} {name[:40]!r}{where}: {NAME_RULE}")
+    if bad is not None:
+        why.append(character_name(bad))
+    cut = "…" if len(name) > SHOWN_NAME_CHARS else ""
+    where = f" ({'; '.join(why)})" if why else ""
+    return InputError(f"bad {what} {name[:SHOWN_NAME_CHARS]!r}{cut}{where}: {NAME_RULE}")
 
 
 def resolve_actor(actor: str | None) -> str:
@@ -108,6 +119,7 @@ def reviewer_rule() -> dict[str, object]:
     runs = category_runs(REFUSED_CATEGORIES | {"Zs"})
     return {
         "max": MAX_ACTOR,
+        "shown": SHOWN_NAME_CHARS,
         "missing": REVIEWER_MISSING,
         "rule": NAME_RULE,
         "refused": sorted(REFUSED_CATEGORIES),

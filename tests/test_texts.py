@@ -15,7 +15,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from textsieve.texts import text_refusal
+from textsieve.texts import lone_surrogate, text_refusal
 
 
 def _reference_refusal(text: str) -> str | None:
@@ -95,6 +95,25 @@ def test_keeping_the_utf8_form_refuses_what_encoding_refuses(text: str) -> None:
         assert encodes or kept is not None
     else:
         assert not encodes
+
+
+@settings(max_examples=500, deadline=None)
+@given(text=_texts)
+def test_a_string_that_is_not_a_text_is_refused_for_a_surrogate_in_the_same_words(text: str) -> None:
+    # lone_surrogate judges strings with no text rules (a reason, a field of a request): only what
+    # str.encode("utf-8") refuses, at the index it names, in text_refusal's words.
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError as exc:
+        code = ord(text[exc.start])
+        assert (
+            lone_surrogate(text)
+            == f"contains a lone surrogate (U+{code:04X}) at character {exc.start}; send valid Unicode"
+        )
+        if "\x00" not in text:  # a NUL is text_refusal's rule before this one
+            assert lone_surrogate("x " + text) == text_refusal("x " + text)
+    else:
+        assert lone_surrogate(text) is None
 
 
 def _fresh(text: str) -> str:

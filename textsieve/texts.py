@@ -69,9 +69,22 @@ def text_refusal(text: str, *, keep: bool = False) -> str | None:
             else:
                 text.encode("utf-8")
         except UnicodeEncodeError as exc:
-            code = ord(text[exc.start])
-            return f"contains a lone surrogate (U+{code:04X}) at character {exc.start}; send valid Unicode"
+            return _surrogate_words(text, exc.start)
     return None
 
 
-__all__ = ["has_no_tokens", "nothing_to_classify", "text_refusal"]
+def _surrogate_words(text: str, at: int) -> str:
+    return f"contains a lone surrogate (U+{ord(text[at]):04X}) at character {at}; send valid Unicode"
+
+
+def lone_surrogate(text: str) -> str | None:
+    """Why ``text`` is no text, in :func:`text_refusal`'s words, or None: a lone surrogate. The rule
+    for a string that is not a text to classify (a reason, a reviewer's name, a field of a request),
+    which a service would otherwise refuse in its parser's words."""
+    for at, c in enumerate(text):
+        if "\ud800" <= c <= "\udfff":
+            return _surrogate_words(text, at)
+    return None
+
+
+__all__ = ["has_no_tokens", "lone_surrogate", "nothing_to_classify", "text_refusal"]

@@ -12,6 +12,7 @@ import contextlib
 from collections.abc import AsyncIterator
 
 from fastapi import FastAPI
+from starlette.routing import Route
 
 from textsieve import __version__
 from textsieve.service.inference.batcher import InferencePool
@@ -99,7 +100,8 @@ def create_app(settings: Settings | None = None, *, fast_lane: bool = True) -> L
     app.state.guard = connection_guard(settings, metrics)
     metrics.overload.guard, metrics.overload.budget = app.state.guard, budget
     problems.install(app)
-    for module in (predict, views, reports, drift, admin, reviews, health, page):
+    modules = (predict, views, reports, drift, admin, reviews, health, page)
+    for module in modules:
         app.include_router(module.router)
     openapi.install(app)
     app.add_middleware(HeadAsGetMiddleware)  # innermost of ours: the router sees GET, the layers above HEAD
@@ -109,7 +111,13 @@ def create_app(settings: Settings | None = None, *, fast_lane: bool = True) -> L
         [*admin.router.routes, *reviews.router.routes],
         {admin.require_admin: admin_refusal, reviews.require_reviewer: reviewer_refusal},
     )
-    app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes, budget=budget, tokens=tokens)
+    # Every route the router tries, in its order: the app's own, then each included router's (the
+    # app's list holds the routers, whose matches() name no route outside the router's own pass).
+    routes = [r for r in app.router.routes if isinstance(r, Route)]
+    routes += [r for module in modules for r in module.router.routes]
+    app.add_middleware(
+        BodyLimitMiddleware, max_bytes=settings.max_body_bytes, budget=budget, tokens=tokens, routes=routes
+    )
     app.state.access = access = Access(metrics, enabled=settings.access_log, guard=app.state.guard)
     app.add_middleware(AccessMiddleware, access=access)
     app.add_middleware(HeadWithBodyMiddleware)  # outermost of ours in the stack: see service/web/onewrite.py

@@ -12,14 +12,19 @@ after a burst, freed memory is handed back to the operating system (see
 
 The refusals are the same problem+json as every other limit (:mod:`textsieve.service.web.problems`).
 On the admin and verdict routes the token is checked before any of them (:mod:`textsieve.service.web.tokens`).
+A request refused here never reaches the router, so the route its method and path would have
+matched is looked up for the access log and the HTTP metrics (:func:`_name_route`), on the refusal
+only: a 413 or 415 to ``POST /v1/predict`` was booked under ``unmatched``, with the 404s.
 """
 
 from __future__ import annotations
 
 import asyncio
 import gc
+from collections.abc import Sequence
 
 from starlette.datastructures import Headers
+from starlette.routing import BaseRoute, Match
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from textsieve.errors import InputError, LimitError, OverloadedError
@@ -98,14 +103,39 @@ def _repeated_content_type(types: list[str]) -> InputError:
     )
 
 
+def _name_route(scope: Scope, routes: Sequence[BaseRoute]) -> None:
+    """Put in ``scope`` the route the router would have taken for it, as the router does: the first
+    that matches its path and method, else the first that matches its path (whose 405 it would have
+    answered). The routes name themselves in the scope they give back (FastAPI's, openapi._NamedRoute)."""
+    partial: Scope | None = None
+    for route in routes:
+        match, child_scope = route.matches(scope)
+        if match is Match.FULL:
+            partial = child_scope
+            break
+        if match is Match.PARTIAL and partial is None:
+            partial = child_scope
+    if partial is not None and "route" in partial:
+        scope["route"] = partial["route"]
+
+
 class BodyLimitMiddleware:
-    def __init__(self, app: ASGIApp, max_bytes: int, budget: BodyBudget, tokens: TokenGate | None = None) -> None:
+    def __init__(
+        self,
+        app: ASGIApp,
+        max_bytes: int,
+        budget: BodyBudget,
+        tokens: TokenGate | None = None,
+        routes: Sequence[BaseRoute] = (),
+    ) -> None:
         self.app = app
         self.max_bytes = max_bytes
         self.budget = budget
         self.tokens = tokens  # the admin and reviewer routes' tokens, checked before anything else here
+        self.routes = routes  # the app's routes: a refused request is booked under the one it asked for
 
     async def _refuse(self, exc: Exception, scope: Scope, receive: Receive, send: Send) -> None:
+        _name_route(scope, self.routes)
         response = render(exc, scope)
         response.headers["Connection"] = "close"  # the unread rest of the body is never read
         await response(scope, receive, send)
@@ -120,6 +150,7 @@ class BodyLimitMiddleware:
             if refusal is not None:
                 # A caller without the route's token learns nothing about its body, and none of it
                 # is read (service/web/tokens.py); a body it announced is left unread, so close.
+                _name_route(scope, self.routes)
                 response = render(refusal, scope)
                 if headers.get("content-length", "0") != "0" or "transfer-encoding" in headers:
                     response.headers["Connection"] = "close"
@@ -134,6 +165,7 @@ class BodyLimitMiddleware:
         if any(c.lower() != "identity" for c in content_codings):
             # A compressed body would be read, counted and parsed as if it were JSON; say so at once
             # (RFC 9110 §15.5.16, with Accept-Encoding naming what is accepted: RFC 7694).
+            _name_route(scope, self.routes)
             response = render(ContentEncodingError(", ".join(content_codings)), scope)
             response.headers["Accept-Encoding"] = "identity"
             response.headers["Connection"] = "close"  # its body is never read

@@ -42,7 +42,7 @@ from starlette.types import Message, Receive, Scope, Send
 
 from textsieve.errors import InputError
 from textsieve.service.web.problems import BODY_REFUSAL, CharsetError, body_shape, is_json
-from textsieve.service.web.schemas import shown_name
+from textsieve.service.web.schemas import quoted_name, shown_name
 
 UTF8_BOM = b"\xef\xbb\xbf"
 # Longest first: UTF-32LE's mark begins with UTF-16LE's.
@@ -107,7 +107,7 @@ def _unique(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
 def _repeated(name: str) -> InputError:
     shown = shown_name(name)
     message = (
-        f"the body gives the member {shown!r} more than once; JSON member names must be unique "
+        f"the body gives the member {quoted_name(name)} more than once; JSON member names must be unique "
         "(RFC 8259 §4 leaves a repeated one's meaning to each reader): give each field once"
     )
     return InputError(

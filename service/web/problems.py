@@ -38,6 +38,7 @@ from textsieve.errors import (
 from textsieve.service.modelset.registry_thread import private_detail
 from textsieve.service.web.idempotency import IdempotencyKeyError
 from textsieve.service.web.methods import ASTERISK, SERVER_METHODS, allowed, options_reply
+from textsieve.texts import lone_surrogate
 
 MEDIA_TYPE = "application/problem+json"
 # Where service/web/jsonbody.py keeps a body's refusal (in the request's state) until the route's
@@ -455,6 +456,9 @@ def _validation_problem(exc: RequestValidationError, scope: Scope) -> Response:
         kind = err.get("type", "")
         if kind == "missing" and field == "body":
             msg = f"the body is missing; send {body_shape(scope)}"
+        elif kind == "string_unicode":  # pydantic's words for a lone surrogate in a string field
+            why = lone_surrogate(value) if isinstance(value := err.get("input"), str) else None
+            msg = f"{field} {why}" if why is not None else msg
         elif kind == "unknown_field":
             field = ", ".join(err.get("ctx", {}).get("fields", [])) or field
         elif kind == "model_attributes_type" or (kind == "dict_type" and field == "body"):

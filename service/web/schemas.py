@@ -35,11 +35,21 @@ def _field_names(model: type[BaseModel]) -> frozenset[str]:
 
 
 def shown_name(name: str) -> str:
-    """A caller's field name fit for a reply: cut to NAME_CHARS, and a lone surrogate (``"\\ud800"``
-    in the JSON, which Python's reader lets through) written as that escape, since no UTF-8 reply
-    can hold it: the problem's encoder refused it and the caller got a 500."""
+    """A caller's field name fit for a reply, the same in a problem's ``detail`` and its ``errors``: cut to
+    NAME_CHARS, then every character Python's ``repr`` escapes written as its escape (``\\x1b``, ``\\u202e``,
+    ``\\x00``, a lone surrogate as ``\\ud800``, a backslash as two), so no name's bytes reach a terminal or
+    log reader to obey, and none leaves a reply that UTF-8 cannot hold (a lone surrogate made the
+    problem's encoder fail: a 500). The escaped copy used to be only the quoted one: the ``detail``'s
+    leading field name carried a real ESC, U+202E or NUL, and a lone surrogate came out escaped twice."""
     cut = name if len(name) <= NAME_CHARS else name[:NAME_CHARS] + "..."
-    return cut.encode("utf-8", "backslashreplace").decode("utf-8")
+    if cut.isprintable() and "\\" not in cut:
+        return cut
+    return "".join(c if c.isprintable() and c != "\\" else c.encode("unicode_escape").decode("ascii") for c in cut)
+
+
+def quoted_name(name: str) -> str:
+    """:func:`shown_name` between single quotes, as a message names a field."""
+    return f"'{shown_name(name)}'"
 
 
 class _Request(BaseModel):
@@ -57,7 +67,7 @@ class _Request(BaseModel):
                     "unknown_field",
                     "unknown field(s) {names}{more}; allowed: {allowed}",
                     {
-                        "names": ", ".join(map(repr, named)),
+                        "names": ", ".join(f"'{n}'" for n in named),
                         "more": more,
                         "allowed": ", ".join(cls.model_fields),
                         "fields": named,
@@ -124,12 +134,16 @@ class VerdictRequest(_Request):
         json_schema_extra={"minLength": 1, "maxLength": MAX_ACTOR}, description="who judged: recorded with the verdict"
     )
 
-    @field_validator("text")
+    # Before pydantic's own string check, which refuses a lone surrogate in its own words: the verdict's
+    # text is refused as registry/verdicts.py check_text words it, whichever way the verdict comes in.
+    @field_validator("text", mode="before")
     @classmethod
-    def _valid_text(cls, text: str) -> str:
+    def _valid_text(cls, text: Any) -> Any:
         from textsieve.errors import InputError
         from textsieve.registry.verdicts import check_text
 
+        if not isinstance(text, str):
+            return text  # pydantic names the wrong type
         try:
             return check_text(text)
         except InputError as exc:
@@ -359,5 +373,6 @@ __all__ = [
     "VerdictReply",
     "VerdictRequest",
     "VersionView",
+    "quoted_name",
     "shown_name",
 ]

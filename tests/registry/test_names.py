@@ -102,13 +102,30 @@ NAME_CHARACTERS = (
         pytest.param("", "bad actor ''", id="empty"),
         pytest.param("   ", "bad actor ''", id="blank"),
         pytest.param("a\x07b", "bad actor 'a\\x07b' (U+0007 control character)", id="control character"),
-        pytest.param("x" * 500, f"bad actor '{'x' * 40}'", id="500 characters, 40 shown"),
+        pytest.param(
+            "x" * 500, f"bad actor '{'x' * 40}'… (500 characters; at most 120)", id="500 characters, 40 shown"
+        ),
+        pytest.param("x" * 121, f"bad actor '{'x' * 40}'… (121 characters; at most 120)", id="one too many"),
+        pytest.param(" " + "x" * 120 + "\n", None, id="120 once stripped: accepted"),
+        pytest.param(
+            "\u202e" + "x" * 130,
+            f"bad actor '\\u202e{'x' * 39}'… (131 characters; at most 120; U+202E RIGHT-TO-LEFT OVERRIDE)",
+            id="too long and a bidi override",
+        ),
+        pytest.param("x" * 40 + "\x07", f"bad actor '{'x' * 40}'… (U+0007 control character)", id="41, cut"),
     ],
 )
-def test_bad_actors(argument: str, expected_msg: str) -> None:
-    with pytest.raises(InputError) as info:
-        resolve_actor(argument)
-    assert info.value.message == f"{expected_msg}: {NAME_CHARACTERS}"
+def test_bad_actors(argument: str, expected_msg: str | None) -> None:
+    # A name is refused in the same words as an actor and as a reviewer (the reviewer page says them too);
+    # a blank reviewer is told a verdict needs one (REVIEWER_MISSING, tested with the verdicts).
+    checks = [("actor", resolve_actor), ("reviewer", validate_reviewer)][: 2 if argument.strip() else 1]
+    for what, check in checks:
+        if expected_msg is None:
+            assert check(argument) == argument.strip()
+            continue
+        with pytest.raises(InputError) as info:
+            check(argument)
+        assert info.value.message == f"{expected_msg.replace('bad actor', f'bad {what}', 1)}: {NAME_CHARACTERS}"
 
 
 # Names of characters and their general categories as the Unicode Character Database gives them

@@ -15,6 +15,7 @@ from hypothesis import strategies as st
 
 from tests.helpers.service import (
     ADMIN_TOKEN,
+    AUTH,
     MODEL,
     PROBLEM,
     REVIEW_AUTH,
@@ -23,6 +24,7 @@ from tests.helpers.service import (
     serving,
     settings_for,
 )
+from textsieve.texts import text_refusal
 
 pytestmark = pytest.mark.anyio
 
@@ -166,6 +168,37 @@ def _surrogate_refusal_before_keep(text: str) -> str | None:
             code = ord(text[exc.start])
             return f"contains a lone surrogate (U+{code:04X}) at character {exc.start}; send valid Unicode"
     return None
+
+
+# A field name as JSON escapes in the body -> as the reply shows it, in the detail's leading field, in the
+# quoted copy and in errors[].field alike: Python's repr escapes (the names of an audit of the HTTP API,
+# 2026-12-05: the leading copy held a raw ESC, U+202E or NUL, a lone surrogate came out escaped twice).
+SHOWN_NAMES = [
+    pytest.param("\\u001b[31mred", "\\x1b[31mred", id="ESC"),
+    pytest.param("\\u202eabc", "\\u202eabc", id="right-to-left override"),
+    pytest.param("\\u0000", "\\x00", id="NUL"),
+    pytest.param("\\ud800", "\\ud800", id="lone surrogate"),
+    pytest.param("a\\nb", "a\\nb", id="line break"),
+    pytest.param("back\\\\slash", "back\\\\slash", id="a backslash shown as two"),
+    pytest.param("caf\\u00e9", "caf\u00e9", id="printable non-ASCII as it is"),
+]
+
+
+@pytest.mark.parametrize("repeated", [False, True], ids=["unknown", "given twice"])
+@pytest.mark.parametrize(("escaped", "shown"), SHOWN_NAMES)
+async def test_a_field_name_is_shown_escaped_everywhere_in_the_problem(
+    shared_client: httpx.AsyncClient, escaped: str, shown: str, repeated: bool
+) -> None:
+    member = f'"{escaped}": 1'
+    content = ('{"texts": ["a"], ' + (f"{member}, {member}" if repeated else member) + "}").encode()
+    r = await shared_client.post("/v1/predict", content=content, headers=JSON)
+    body = assert_problem(r, 422, "invalid-input")
+    (error,) = body["errors"]
+    assert error["field"] == shown
+    assert body["detail"].startswith(f"{shown}: ")
+    assert f"'{shown}'" in error["message"] and f"'{shown}'" in body["detail"]
+    for text in (body["detail"], error["field"], error["message"]):
+        assert text.isprintable(), text  # no control, format or surrogate character reaches the reader
 
 
 # The texts sent, the one holding a lone surrogate last. Sent as JSON with ASCII escapes, so a lone
@@ -488,3 +521,51 @@ def test_error_classes_map_to_their_status_and_exit_code(
     body = json.loads(bytes(r.body))
     assert r.status_code == status and body["type"] == f"/problems/{slug}"
     assert ("retry-after" in r.headers) is (status == 503)
+
+
+_VERDICT = {
+    "model": MODEL,
+    "version": 1,
+    "text": "my card was charged twice",
+    "predicted_label": "billing",
+    "predicted_probability": 0.5,
+    "verdict_label": "billing",
+    "reviewer": "ana",
+}
+_PROMOTE = {"to": "candidate", "reason": "a lone surrogate's test"}
+_ROLLBACK = {"reason": "a lone surrogate's test"}
+_LONE = "ok \ud800 here"  # sent as the JSON escape "\ud800", as json.dumps writes it
+
+
+# (path, headers, body, the field given _LONE, what the refusal calls the string): every free-text string field
+# a client sends. pydantic's words were "Input should be a valid string, unable to parse raw data as a unicode
+# string" on every route but predict's texts (an audit of the HTTP API, 2026-12-05). Model names and reviewers'
+# names are judged by their own rules (registry/names.py), which name what they allow, on every route alike.
+LONE_SURROGATES = [
+    pytest.param("/v1/predict", {}, {"texts": [_LONE]}, "texts", "texts[0]", id="predict texts"),
+    pytest.param("/v1/verdicts", REVIEW_AUTH, _VERDICT, "text", "the verdict's text", id="verdict text"),
+    *(
+        pytest.param("/v1/verdicts", REVIEW_AUTH, _VERDICT, field, field, id=f"verdict {field}")
+        for field in ("predicted_label", "verdict_label")
+    ),
+    pytest.param(f"/v1/models/{MODEL}/versions/2/promote", AUTH, _PROMOTE, "reason", "reason", id="promote reason"),
+    pytest.param(f"/v1/models/{MODEL}/versions/2/promote", AUTH, _PROMOTE, "actor", "actor", id="promote actor"),
+    pytest.param(f"/v1/models/{MODEL}/rollback", AUTH, _ROLLBACK, "reason", "reason", id="rollback reason"),
+    pytest.param(f"/v1/models/{MODEL}/rollback", AUTH, _ROLLBACK, "actor", "actor", id="rollback actor"),
+]
+
+
+@pytest.mark.parametrize(("path", "auth", "body", "field", "named"), LONE_SURROGATES)
+async def test_a_lone_surrogate_is_refused_in_the_same_words_on_every_route(
+    tokens_client: httpx.AsyncClient, path: str, auth: dict[str, str], body: dict[str, Any], field: str, named: str
+) -> None:
+    sent = {**body, field: [_LONE] if field == "texts" else _LONE}
+    content = json.dumps(sent).encode()  # ensure_ascii: the surrogate as its escape
+    assert b"\\ud800" in content
+    r = await tokens_client.post(path, content=content, headers={**JSON, **auth})
+    problem = assert_problem(r, 422, "invalid-input")
+    # The one rule's words (textsieve/texts.py), after what names the string, as predict has them.
+    expected = f"{named} {text_refusal(_LONE)}"
+    assert expected.endswith("contains a lone surrogate (U+D800) at character 3; send valid Unicode")
+    assert [(e["field"], e["message"]) for e in problem["errors"]] == [(field, expected)]
+    assert problem["detail"] == f"{field}: {expected}"

@@ -245,6 +245,78 @@ async def test_options_star_is_booked_under_its_target(shared_registry: Path) ->
     assert unmatched == []
 
 
+async def _body_chunks(size: int) -> Any:
+    for _ in range(size // 65536 + 1):
+        yield b"x" * 65536
+
+
+# Refused by the body middleware before routing (service/web/bodylimit.py): each was booked under
+# "unmatched", with the 404s, while other refusals of the same path were booked under it (found by
+# an audit of the HTTP API, 2026-12-05). (method, path, headers, body size or "chunked", status, route)
+BEFORE_ROUTING = [
+    pytest.param(
+        "POST", "/v1/predict", [("Content-Encoding", "gzip")], 20, 415, "/v1/predict", id="predict, gzip body"
+    ),
+    pytest.param("POST", "/v1/predict", [], 5 * 1024 * 1024, 413, "/v1/predict", id="predict, 5 MB body"),
+    pytest.param("POST", "/v1/predict", [], "chunked", 413, "/v1/predict", id="predict, 5 MB chunked body"),
+    pytest.param(
+        "POST",
+        "/v1/predict",
+        [("Content-Type", "application/json"), ("Content-Type", "text/plain")],
+        20,
+        422,
+        "/v1/predict",
+        id="predict, two Content-Type lines",
+    ),
+    pytest.param("POST", "/v1/verdicts", [], 20, 401, "/v1/verdicts", id="verdicts, no token"),
+    pytest.param(
+        "POST",
+        f"/v1/models/{MODEL}/versions/1/promote",
+        [("Content-Encoding", "gzip")],
+        20,
+        401,
+        "/v1/models/{name}/versions/{n}/promote",
+        id="promote, no token",
+    ),
+    # The router would have answered 405 there: booked as its 405 would have been.
+    pytest.param("POST", "/healthz", [("Content-Encoding", "br")], 20, 415, "/healthz", id="healthz, brotli body"),
+    pytest.param("POST", "/no-such-path", [("Content-Encoding", "gzip")], 20, 415, "unmatched", id="unknown path"),
+]
+
+
+@pytest.mark.parametrize("fast_lane", [True, False], ids=["lane", "no lane"])
+@pytest.mark.parametrize(("method", "path", "headers", "size", "status", "route"), BEFORE_ROUTING)
+async def test_a_refusal_before_routing_is_booked_under_the_route_asked_for(
+    shared_registry: Path,
+    caplog: pytest.LogCaptureFixture,
+    fast_lane: bool,
+    method: str,
+    path: str,
+    headers: list[tuple[str, str]],
+    size: int | str,
+    status: int,
+    route: str,
+) -> None:
+    caplog.set_level(logging.INFO, logger="textsieve.access")
+    settings = settings_for(
+        shared_registry, workers=1, inference="threads", access_log=True, review_token="r" * 24, admin_token="a" * 24
+    )
+    async with serving(settings, fast_lane=fast_lane) as (_, client):
+        caplog.clear()
+        content: Any = _body_chunks(5 * 1024 * 1024) if size == "chunked" else b"x" * int(size)
+        given = [("Content-Type", "application/json")] if not any(k == "Content-Type" for k, _ in headers) else []
+        r = await client.request(method, path, content=content, headers=[*given, *headers])
+        assert r.status_code == status, r.text
+        await asyncio.sleep(0)  # the booking's last line runs after the client has the reply
+        lines = [r.__dict__["fields"] for r in caplog.records if r.name == "textsieve.access"]
+        samples = outside((await client.get("/metrics")).text)
+    assert [(line["path"], line["route"], line["status"]) for line in lines] == [(path, route, status)]
+    key = (("method", method), ("route", route), ("status", str(status)))
+    assert samples[("textsieve_http_requests_total", key)] == 1
+    booked = [k for k in samples if k[0] == "textsieve_http_requests_total" and ("status", str(status)) in k[1]]
+    assert booked == [("textsieve_http_requests_total", key)]
+
+
 def _logged_request(log: Path, rid: str, timeout: float = 5.0) -> dict[str, Any]:
     """The access-log line of request ``rid`` in a server's JSON log (written within a flush or two)."""
     end = time.monotonic() + timeout

@@ -957,6 +957,7 @@ REFUSED_NAMES = [
     pytest.param("Priya \u200d", id="a joiner joining nothing"),
     pytest.param("   ", id="only spaces"),
     pytest.param("P" * 121, id="121 characters"),
+    pytest.param("\U0001f469" * 125 + "\u202e", id="126 characters, 252 UTF-16 units, and U+202E: both said"),
 ]
 
 

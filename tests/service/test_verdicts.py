@@ -138,7 +138,11 @@ async def test_the_two_tokens_open_only_their_own_calls(
         # sign-in (before, pydantic refused "" and 121 characters first: "String should have at most 120").
         pytest.param({"reviewer": ""}, 422, "invalid-input", "a verdict needs the reviewer's name", id="no-reviewer"),
         pytest.param(
-            {"reviewer": "P" * 121}, 422, "invalid-input", f"bad reviewer '{'P' * 40}': 1–120 printable", id="long"
+            {"reviewer": "P" * 121},
+            422,
+            "invalid-input",
+            f"bad reviewer '{'P' * 40}'… (121 characters; at most 120): 1–120 printable",
+            id="long",
         ),
         pytest.param(
             {"reviewer": "Priya\u202e"}, 422, "invalid-input", "(U+202E RIGHT-TO-LEFT OVERRIDE)", id="bidi-reviewer"
