@@ -17,7 +17,10 @@ here once:
   combining marks and zero-width format characters none (Unicode UAX #11), so CJK text stays aligned.
 - **Wrapping.** A table wider than the terminal wraps the columns its verb names as free text, at spaces
   or after a comma, semicolon, slash or bar where it can (never the comma in ``1,000``), within words
-  where it must; numbers and states are never split, and times only at their space (date over time)
+  where it must. Each wrapped column keeps at least its longest word while the width allows it (an
+  actor ``admin-api@127.0.0.1``, a gate's ``parity:pass``), the verb's prose columns giving way first;
+  a word that must be split is split after an escape, an at sign or a colon where it has one. Numbers
+  and states are never split, and times only at their space (date over time)
   when the free text alone cannot make the table fit. Nothing is cut: the whole text stays in the table.
   A verb may name columns to leave out (in its order) when even that would split words or overflow; the
   table then ends with a line naming them and where they are shown.
@@ -171,8 +174,8 @@ def terminal_width(stream: TextIO | None = None) -> int | None:
 
 def wrap(text: str, width: int) -> list[str]:
     """``text`` made safe and broken into lines of at most ``width`` columns: at spaces or after a comma,
-    semicolon, slash or bar, and inside a word only when the word alone is wider (an escape such as
-    ``\\x1b`` is never split)."""
+    semicolon, slash or bar, and inside a word only when the word alone is wider, then after an escape,
+    an at sign or a colon where it can (see _SPLIT_AFTER; an escape such as ``\\x1b`` is never split)."""
     lines: list[list[tuple[str, int]]] = []
     line: list[tuple[str, int]] = []
     used = 0
