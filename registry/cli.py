@@ -35,12 +35,16 @@ def table(
     *,
     right: Sequence[int] = (),
     wrap: Sequence[int] = (),
+    prose: Sequence[int] = (),
     optional: Sequence[int] = (),
     shown_by: str = "",
 ) -> str:
-    """A table fitted to the terminal (``registry/tables.py``); ``wrap`` lists its free-text columns,
+    """A table fitted to the terminal (``registry/tables.py``); ``wrap`` lists the columns that may wrap,
+    ``prose`` those of them holding typed sentences (their words split first when some must be),
     ``optional`` those left out (in that order) when wrapping is not enough, ``shown_by`` where they are."""
-    return tables.table(headers, rows, right=right, wrap_columns=wrap, optional=optional, shown_by=shown_by)
+    return tables.table(
+        headers, rows, right=right, wrap_columns=wrap, prose=prose, optional=optional, shown_by=shown_by
+    )
 
 
 def when(at: str | None) -> str:
@@ -61,7 +65,10 @@ def _out(text: str, stream: TextIO | None = None) -> None:
 
 def gate_table(gates: Sequence[GateResult]) -> str:
     return table(
-        ["GATE", "RESULT", "DETAIL"], [[g.name, "pass" if g.passed else "FAIL", g.detail] for g in gates], wrap=(2,)
+        ["GATE", "RESULT", "DETAIL"],
+        [[g.name, "pass" if g.passed else "FAIL", g.detail] for g in gates],
+        wrap=(2,),
+        prose=(2,),
     )
 
 
@@ -374,6 +381,12 @@ def cli_versions(args: argparse.Namespace) -> int:
 
     with _open(args) as reg:
         versions = reg.versions(args.model)
+        # Which split the figures were measured on is in each manifest alone (export --test or not).
+        on_validation = {v.version for v in versions if reg.manifest(v.model, v.version).metrics.split == VALIDATION}
+    # A version exported without --test reports its validation figures, the split early stopping chose
+    # the epoch on: marked, so that two versions' figures are not compared as if measured alike. The
+    # marker fits within the headers' width: it costs the table no column.
+    mark = {v.version: VALIDATION_MARK if v.version in on_validation else " " for v in versions}
     _out(
         table(
             ["VERSION", "STATE", "ACCURACY", "MACRO-F1", "PARITY", "LABELS", "PUBLISHED", "BY", "LIVE SINCE"],
@@ -381,8 +394,8 @@ def cli_versions(args: argparse.Namespace) -> int:
                 [
                     v.version,
                     v.state,
-                    f"{v.accuracy:.4f}",
-                    f"{v.macro_f1:.4f}",
+                    f"{v.accuracy:.4f}{mark[v.version]}",
+                    f"{v.macro_f1:.4f}{mark[v.version]}",
                     "passed" if v.parity_passed else "FAILED",
                     _labels(v.labels),
                     when(v.created_at),
@@ -400,7 +413,17 @@ def cli_versions(args: argparse.Namespace) -> int:
             shown_by=f"'textsieve show {args.model} VERSION' shows every field",
         )
     )
+    if on_validation:
+        # On stderr, as history's "the last N of M": what is piped stays the table's rows alone.
+        others = "" if len(on_validation) == len(versions) else ", the others on the file given to export --test"
+        legend = f"{VALIDATION_MARK} measured on the validation split (exported without --test){others}"
+        _out(tables.note(legend, width=tables.terminal_width(sys.stderr)), sys.stderr)
     return 0
+
+
+# The split held_out_metrics names when export had no --test file (exporter/export.py).
+VALIDATION = "validation"
+VALIDATION_MARK = "*"
 
 
 def cli_show(args: argparse.Namespace) -> int:
@@ -464,7 +487,8 @@ def cli_show(args: argparse.Namespace) -> int:
     last_gates = next((e for e in reversed(events) if e.kind in ("promote", "refuse") and e.details.get("gates")), None)
     if last_gates is not None:
         gates = [GateResult.model_validate(g) for g in last_gates.details["gates"]]
-        _out(f"\ngates at event {last_gates.id} ({last_gates.kind}, {when(last_gates.at)})\n" + gate_table(gates))
+        heading = tables.note(f"gates at event {last_gates.id} ({last_gates.kind}, {when(last_gates.at)})")
+        _out(f"\n{heading}\n" + gate_table(gates))
     return 0
 
 
@@ -559,6 +583,7 @@ def cli_history(args: argparse.Namespace) -> int:
             [[e.id, when(e.at), e.kind, e.version, e.actor, e.reason or NONE, summarise(e)] for e in events],
             right=(0, 3),
             wrap=(4, 5, 6),
+            prose=(5,),
         )
     )
     return 0
@@ -685,6 +710,7 @@ def settings_table(values: Sequence[SettingValue]) -> str:
             for v in values
         ],
         wrap=(5, 6, 7),
+        prose=(6, 7),
         # SOURCE says again what SET (UTC) says (a time when set); the README's table lists each DEFAULT.
         optional=(3, 2),
         shown_by="COLUMNS=100 or a pipe shows every column",
@@ -736,7 +762,8 @@ def cli_verdicts(args: argparse.Namespace) -> int:
             gone = reg.verdicts.delete(
                 args.model, before=args.delete_before, ids=args.delete, actor=args.actor, reason=args.reason
             )
-            _out(f"deleted {len(gone.deleted)} verdicts of {args.model!r} (audit event {gone.event_id})")
+            n = len(gone.deleted)
+            _out(f"deleted {n} verdict{'' if n == 1 else 's'} of {args.model!r} (audit event {gone.event_id})")
             return 0
         verdicts = reg.verdicts.of(args.model, version=args.version)
         agreement = reg.verdicts.agreement(args.model)
@@ -769,9 +796,12 @@ def cli_verdicts(args: argparse.Namespace) -> int:
                 ],
                 right=(0, 2, 5),
                 wrap=(3, 4, 6, 7),
+                prose=(7,),
             )
         )
-        _out(f"({len(shown)} of {len(verdicts)} shown; --last N for more)\n")
+        if len(shown) < len(verdicts):
+            _out(f"({len(shown)} of {len(verdicts)} shown; --last N for more)")
+        _out("")
     rows = [a for a in agreement if args.version is None or a.version == args.version]
     _out(
         table(
@@ -792,8 +822,10 @@ def cli_verdicts(args: argparse.Namespace) -> int:
         )
     )
     _out(
-        "agreement: the share of labels reviewers confirmed, with a Wilson 95 % interval; a running estimate "
-        "of live accuracy over the texts reviewers chose to judge, not a random sample"
+        tables.note(
+            "agreement: the share of labels reviewers confirmed, with a Wilson 95 % interval; a running estimate "
+            "of live accuracy over the texts reviewers chose to judge, not a random sample"
+        )
     )
     return 0
 
@@ -860,7 +892,8 @@ def summarise(e: Event) -> str:
         )
     if e.kind == "verdicts-delete":
         before = f" recorded before {when(d['before'])}" if d.get("before") else ""
-        return f"deleted {d.get('deleted')} verdicts{before}; ids {_ids(d.get('ids', []))}"
+        noun = "verdict" if d.get("deleted") == 1 else "verdicts"
+        return f"deleted {d.get('deleted')} {noun}{before}; ids {_ids(d.get('ids', []))}"
     if e.kind == "report_failed":
         return f"evaluation report not made: {d.get('error')}"
     gates = " ".join(f"{g['name']}:{'pass' if g['passed'] else 'FAIL'}" for g in d.get("gates", []))

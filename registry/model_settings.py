@@ -32,13 +32,16 @@ from textsieve.errors import InputError
 Value = float | bool | None
 T = TypeVar("T")
 
-_ON = ("on", "true", "yes", "1")
-_OFF = ("off", "false", "no", "0")
+# A switch takes the two words its message names, nothing else: "yes", "true" and "1" were taken too
+# while every message and the README said "on or off".
+_ON = ("on",)
+_OFF = ("off",)
 _NONE = ("none", "off", "")
 
 
 class Kind(StrEnum):
     NUMBER = "number"
+    COUNT = "count"  # a whole number typed as plain digits
     SWITCH = "switch"
     OPTIONAL = "optional"  # a number or none
 
@@ -77,7 +80,9 @@ class Setting(Generic[T]):
         """A whole number from ``low`` to ``high`` (a number of texts): 2.5 texts is no minimum anyone
         meant, and was taken as 2. Stored as a float, like the other numbers."""
         allowed = f"a whole number from {low:,} to {high:,}"
-        return Setting(key, float(default), group, help, allowed, _count(low, high), stored=_count_stored(low, high))
+        return Setting(
+            key, float(default), group, help, allowed, _count(low, high), Kind.COUNT, stored=_count_stored(low, high)
+        )
 
     @staticmethod
     def level(key: str, default: float, low: float, high: float, group: Group, help: str) -> Setting[float]:
@@ -110,7 +115,10 @@ class Setting(Generic[T]):
             value = True if word in _ON else False if word in _OFF else text
         elif self.kind == Kind.OPTIONAL and word in _NONE:
             value = None
-        else:
+        elif self.kind == Kind.COUNT and not (word.isascii() and word.isdigit()):
+            # float() reads "1e3", "1_000" and "+5" too: a count is written in digits, as it is shown.
+            raise InputError(f"bad value {_shown(text)} for {self.key}: {self.allowed}, written in plain digits")
+        else:  # a number, or a count in digits
             try:
                 value = float(word)
             except ValueError:

@@ -17,7 +17,10 @@ here once:
   combining marks and zero-width format characters none (Unicode UAX #11), so CJK text stays aligned.
 - **Wrapping.** A table wider than the terminal wraps the columns its verb names as free text, at spaces
   or after a comma, semicolon, slash or bar where it can (never the comma in ``1,000``), within words
-  where it must; numbers and states are never split, and times only at their space (date over time)
+  where it must. Each wrapped column keeps at least its longest word while the width allows it (an
+  actor ``admin-api@127.0.0.1``, a gate's ``parity:pass``), the verb's prose columns giving way first;
+  a word that must be split is split after an escape, an at sign or a colon where it has one. Numbers
+  and states are never split, and times only at their space (date over time)
   when the free text alone cannot make the table fit. Nothing is cut: the whole text stays in the table.
   A verb may name columns to leave out (in its order) when even that would split words or overflow; the
   table then ends with a line naming them and where they are shown.
@@ -171,8 +174,8 @@ def terminal_width(stream: TextIO | None = None) -> int | None:
 
 def wrap(text: str, width: int) -> list[str]:
     """``text`` made safe and broken into lines of at most ``width`` columns: at spaces or after a comma,
-    semicolon, slash or bar, and inside a word only when the word alone is wider (an escape such as
-    ``\\x1b`` is never split)."""
+    semicolon, slash or bar, and inside a word only when the word alone is wider, then after an escape,
+    an at sign or a colon where it can (see _SPLIT_AFTER; an escape such as ``\\x1b`` is never split)."""
     lines: list[list[tuple[str, int]]] = []
     line: list[tuple[str, int]] = []
     used = 0
@@ -192,6 +195,9 @@ def wrap(text: str, width: int) -> list[str]:
             elif cut >= 0:  # after a comma or the like of a list with no spaces ("account,billing,praise")
                 lines.append(line[: cut + 1])
                 line = line[cut + 1 :]
+            elif (soft := _split_point(line)) >= 0:  # a word wider than the column: split where it reads best
+                lines.append(line[: soft + 1])
+                line = line[soft + 1 :]
             else:
                 lines.append(line)
                 line = []
@@ -204,6 +210,26 @@ def wrap(text: str, width: int) -> list[str]:
     if line or not lines:
         lines.append(line)
     return ["".join(p for p, _ in ln).rstrip(" ") for ln in lines]
+
+
+# Where a word wider than its column is split when it must be, best first (common practice, as in URLs
+# and addresses): after an escape (``bike\\u202e`` over ``override``), an at sign or a colon
+# (``admin-api@`` over ``127.0.0.1``, ``parity:`` over ``pass``); else after a hyphen, underscore, equals
+# sign or dot; else wherever the column ends.
+_SPLIT_AFTER = (frozenset("@:"), frozenset("-_=."))
+
+
+def _split_point(line: list[tuple[str, int]]) -> int:
+    """The unit of ``line`` (the start of a word too wide for its column) after which to split it, or -1."""
+    for marks in _SPLIT_AFTER:
+        at = [i for i, (p, _) in enumerate(line) if p in marks or (marks is _SPLIT_AFTER[0] and _is_escape(p))]
+        if at:
+            return at[-1]
+    return -1
+
+
+def _is_escape(piece: str) -> bool:
+    return len(piece) > 1 and piece.startswith("\\")
 
 
 def _breaks_after(line: list[tuple[str, int]], i: int, following: str) -> bool:
@@ -227,22 +253,25 @@ def table(
     *,
     right: Sequence[int] = (),
     wrap_columns: Sequence[int] = (),
+    prose: Sequence[int] = (),
     width: Width = "terminal",
     optional: Sequence[int] = (),
     shown_by: str = "",
 ) -> str:
     """Columns padded to their widest cell, two spaces apart; ``right`` lists right-aligned columns.
 
-    ``wrap_columns`` lists the free-text columns: when the table is wider than ``width`` (the terminal's,
-    see :func:`terminal_width`; None: no limit), they are narrowed, the widest first, and their cells
-    wrapped onto more lines of the same row. When that is not enough, columns of times
+    ``wrap_columns`` lists the columns that may wrap: when the table is wider than ``width`` (the
+    terminal's, see :func:`terminal_width`; None: no limit), they are narrowed, the widest first, and
+    their cells wrapped onto more lines of the same row, never narrower than their longest word while
+    the width allows it (see :func:`_fit`); of them, ``prose`` lists those holding sentences people
+    typed, whose words are split first when some must be. When that is not enough, columns of times
     (``2026-12-05 01:32:30Z``) fold at their space, the date over the time, and the free text is
     fitted again to the room that leaves. When even that is not enough, the ``optional`` columns are
     left out, in the order given, until the table fits, and a last line names them and where they
     are shown (``shown_by``): a line wider than the terminal wraps and breaks every row's alignment."""
     limit = terminal_width() if width == "terminal" else width
     keep = list(range(len(headers)))
-    text, split = _table(headers, rows, keep, right, wrap_columns, limit)
+    text, split = _table(headers, rows, keep, right, (wrap_columns, prose), limit)
     left_out: list[str] = []
     for i in optional:
         # A column less reads better than words cut in two ("accoun" over "t,"), and far better than
@@ -251,7 +280,7 @@ def table(
             break
         keep.remove(i)
         left_out.append(str(headers[i]))
-        text, split = _table(headers, rows, keep, right, wrap_columns, limit)
+        text, split = _table(headers, rows, keep, right, (wrap_columns, prose), limit)
     if not left_out or limit is None:
         return text
     note = f"({', '.join(left_out)} left out to fit {limit} columns{'; ' + shown_by if shown_by else ''})"
@@ -263,27 +292,28 @@ def _table(
     all_rows: Sequence[Sequence[object]],
     keep: list[int],
     all_right: Sequence[int],
-    all_wrap: Sequence[int],
+    all_wrap: tuple[Sequence[int], Sequence[int]],
     limit: int | None,
 ) -> tuple[str, bool]:
     """:func:`table` of the columns in ``keep``, and whether it had to split a word to fit."""
     headers = [all_headers[i] for i in keep]
     rows = [[row[i] for i in keep] for row in all_rows]
     right = [keep.index(i) for i in all_right if i in keep]
-    wrap_columns = [keep.index(i) for i in all_wrap if i in keep]
+    wrap_columns = [keep.index(i) for i in all_wrap[0] if i in keep]
+    prose = [keep.index(i) for i in all_wrap[1] if i in keep]
     raw = [[str(h) for h in headers]] + [[NONE if c is None else str(c) for c in row] for row in rows]
     natural = [max(columns(one_line(row[i])) for row in raw) for i in range(len(headers))]
     words = {i: max(_longest_word(row[i]) for row in raw[1:]) if len(raw) > 1 else 0 for i in wrap_columns}
     # A wrapped column is never narrower than its widest escape (``\U000f0000``, 10 columns), which wrap()
     # keeps whole: narrower, the escape would push the columns after it out of line.
     least = [max([columns(one_line(h)), *(_widest_unit(row[i]) for row in raw[1:])]) for i, h in enumerate(raw[0])]
-    widths = _fit(natural, least, wrap_columns, limit, words=words, floors=(MIN_WRAPPED,))
+    widths = _fit(natural, least, wrap_columns, limit, words=words, roomy_only=True)
     folding = _time_columns(raw[1:]) if limit is not None and _total(widths) > limit else []
     narrowed = list(natural)
     for i in folding:
         narrowed[i] = max(least[i], *(columns(p) for row in raw[1:] for p in row[i].split(" ")))
     if limit is not None and _total(widths) > limit:
-        widths = _fit(narrowed, least, wrap_columns, limit, words=words)
+        widths = _fit(narrowed, least, wrap_columns, limit, words=words, prose=prose)
     wrapped = set(wrap_columns) | set(folding)
     lines = []
     for row in raw:
@@ -336,44 +366,78 @@ def _total(widths: list[int]) -> int:
     return sum(widths) + 2 * (len(widths) - 1)
 
 
-# In _fit's floors: each wrapped column's longest word (at most MIN_WRAPPED, at least MIN_NARROW).
-WORDS = -1
-
-
 def _fit(
     natural: list[int],
-    headers: list[int],
+    least: list[int],
     wrap_columns: Sequence[int],
     limit: int | None,
     *,
-    words: dict[int, int] | None = None,
-    floors: Sequence[int] = (MIN_WRAPPED, WORDS, MIN_NARROW),
+    words: dict[int, int],
+    prose: Sequence[int] = (),
+    roomy_only: bool = False,
 ) -> list[int]:
-    """Column widths within ``limit``: the wrapped columns share what the others leave, each keeping its
-    natural width when that is under an equal share (the rest is shared again among the wider ones), and
-    none narrower than its header and a floor: :data:`MIN_WRAPPED`; else its longest word, so that no
-    word is split; else :data:`MIN_NARROW`. When no floor lets the table fit, its words are kept whole:
-    splitting them would not stop the line from overflowing."""
+    """Column widths within ``limit``: the wrapped columns share what the others leave, each at least the
+    floor of the first of these ways that fits, and all widened together above their floors (a column
+    stops at its natural width, the rest shared again among the wider ones):
+
+    1. each at least its longest word and :data:`MIN_WRAPPED` (narrower, a reason reads as a column of
+       syllables); ``roomy_only`` stops here (the caller then folds its times and asks again);
+    2. each at least its longest word, so that no word is split: an actor (``admin-api@127.0.0.1``), a
+       gate's ``parity:pass``, a word holding an escape;
+    3. the words of one column after another may be split: first the ``prose`` columns (sentences people
+       typed, which read on across a split), then the others, the widest word first; a column whose
+       words may be split is never narrower than its header, its widest escape and :data:`MIN_NARROW`.
+
+    When none fits, words up to :data:`MIN_WRAPPED` are kept whole: splitting them would not stop the line
+    from overflowing."""
     total = _total(natural)
     if limit is None or total <= limit or not wrap_columns:
         return natural
-    free = sorted(set(wrap_columns), key=lambda i: natural[i])
+    free = list(dict.fromkeys(wrap_columns))
     budget = limit - (total - sum(natural[i] for i in free))
-    words = words or {}
-    kept_words: list[int] | None = None
+    whole = {i: min(natural[i], max(least[i], words.get(i, 0))) for i in free}
+    tiers = [{i: max(whole[i], min(natural[i], MIN_WRAPPED)) for i in free}]
+    if not roomy_only:
+        tiers.append(whole)
+        giving = [i for i in free if i in prose] + sorted((i for i in free if i not in prose), key=lambda i: -whole[i])
+        floors = dict(whole)
+        for i in giving:
+            floors = {**floors, i: min(whole[i], max(least[i], MIN_NARROW))}
+            tiers.append(floors)
+    for floors in tiers:
+        if sum(floors.values()) <= budget:
+            # A column whose words must be split that is not prose gets the spare room first, up to its
+            # longest word: "admin-api@" over "127.0.0.1" rather than "admin-ap" over "i@127.0." over "0.1".
+            short = {i: f for i, f in floors.items() if i not in prose and f < whole[i]}
+            if short:
+                capped = [min(n, whole.get(i, n)) for i, n in enumerate(natural)]
+                raised = _widen(capped, short, budget - sum(floors.values()) + sum(short.values()))
+                floors = {**floors, **{i: raised[i] for i in short}}
+            return _widen(natural, floors, budget)
+    if roomy_only:
+        return _widen(natural, tiers[0], 0)
+    return _widen(natural, {i: min(whole[i], max(least[i], MIN_WRAPPED)) for i in free}, 0)
+
+
+def _widen(natural: list[int], floors: dict[int, int], budget: int) -> list[int]:
+    """``natural`` with each column of ``floors`` at the highest common level (never below its floor, never
+    above its natural width) that keeps their sum within ``budget``; spare columns go to the widest."""
+
+    def at(level: int, i: int) -> int:
+        return min(natural[i], max(floors[i], level))
+
+    level = 0
+    while level < max(natural[i] for i in floors) and sum(at(level + 1, i) for i in floors) <= budget:
+        level += 1
     widths = list(natural)
-    for floor in floors:
-        widths, left = list(natural), budget
-        for n, i in enumerate(free):
-            share = left // (len(free) - n)
-            least = max(MIN_NARROW, min(words.get(i, MIN_WRAPPED), MIN_WRAPPED)) if floor == WORDS else floor
-            widths[i] = min(natural[i], max(share, least, headers[i]))
-            left -= widths[i]
-        if left >= 0:
-            return widths
-        if floor == WORDS:
-            kept_words = widths
-    return kept_words or widths
+    for i in floors:
+        widths[i] = at(level, i)
+    spare = budget - sum(widths[i] for i in floors)
+    for i in sorted(floors, key=lambda i: -natural[i]):
+        if spare > 0 and floors[i] <= level < natural[i]:
+            widths[i] += 1
+            spare -= 1
+    return widths
 
 
 def note(text: str, *, width: Width = "terminal") -> str:

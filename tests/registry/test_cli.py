@@ -720,6 +720,19 @@ def test_review_threshold_verb(
             "bad value '2.5' for evalset_min_texts: a whole number from 1 to 1,000,000,000",
             id="fraction-of-a-text",
         ),
+        # Before: accepted, though the message lists "on or off" and counts are shown in digits.
+        pytest.param(["gates", "m", "--set", "mcnemar=yes", "--reason", "x"], "'yes' for mcnemar: on or off", id="yes"),
+        pytest.param(
+            ["gates", "m", "--set", "tolerances=true", "--reason", "x"], "'true' for tolerances: on or off", id="true"
+        ),
+        pytest.param(
+            ["gates", "m", "--set", "evalset_min_texts=1e3", "--reason", "x"],
+            "bad value '1e3' for evalset_min_texts: a whole number from 1 to 1,000,000,000, written in plain digits",
+            id="count-exponent",
+        ),
+        pytest.param(
+            ["gates", "m", "--set", "evalset_min_texts=1_000", "--reason", "x"], "'1_000' for", id="count-underscore"
+        ),
         pytest.param(["gates", "ghost"], "no model 'ghost'", id="unknown-model"),
         pytest.param(["review-threshold", "m", "--set", "1.2", "--reason", "x"], "at most 1, or none", id="t-range"),
         pytest.param(["review-threshold", "m", "--set", "high", "--reason", "x"], "bad value 'high'", id="t-word"),

@@ -191,7 +191,7 @@ def test_unknown_model_is_not_found(registry: Registry) -> None:
         ("review_threshold=0.9", ("review_threshold", 0.9)),
         ("evalset_min_texts=200", ("evalset_min_texts", 200.0)),
         ("evalset_min_per_label=0", ("evalset_min_per_label", 0.0)),
-        ("shadow_min_texts=1e3", ("shadow_min_texts", 1000.0)),
+        ("shadow_min_texts= 1000 ", ("shadow_min_texts", 1000.0)),
     ],
 )
 def test_parse_assignment(text: str, expected: tuple[str, object]) -> None:
@@ -203,6 +203,10 @@ def test_parse_assignment(text: str, expected: tuple[str, object]) -> None:
     [
         pytest.param("mcnemar", "--set 'mcnemar': write KEY=VALUE; allowed: macro_f1_drop", id="no-equals"),
         pytest.param("mcnemar=maybe", "bad value 'maybe' for mcnemar: on or off", id="switch-word"),
+        # Before: "yes", "true" and "1" were taken though every message said "on or off".
+        pytest.param("mcnemar=yes", "bad value 'yes' for mcnemar: on or off", id="switch-yes"),
+        pytest.param("tolerances=true", "bad value 'true' for tolerances: on or off", id="switch-true"),
+        pytest.param("mcnemar=1", "bad value '1' for mcnemar: on or off", id="switch-1"),
         pytest.param("macro_f1_drop=1e9", "bad value '1e9' for macro_f1_drop: a number from 0 to 1", id="range"),
         pytest.param("macro_f1_drop=inf", "bad value 'inf' for macro_f1_drop", id="inf"),
         pytest.param("macro_f1_drop=none", "bad value 'none' for macro_f1_drop", id="none-not-optional"),
@@ -211,6 +215,15 @@ def test_parse_assignment(text: str, expected: tuple[str, object]) -> None:
         pytest.param("evalset_min_texts=0", "for evalset_min_texts: a whole number from 1 to", id="no-texts"),
         pytest.param("evalset_min_per_label=-1", "for evalset_min_per_label: a whole number from 0", id="negative"),
         pytest.param("evalset_min_per_label=nan", "bad value 'nan' for evalset_min_per_label", id="nan"),
+        # Before: float() took these as 1000 (and 5); a count is written as it is shown, in digits.
+        pytest.param(
+            "evalset_min_texts=1e3",
+            "bad value '1e3' for evalset_min_texts: a whole number from 1 to 1,000,000,000, written in plain digits",
+            id="exponent",
+        ),
+        pytest.param("evalset_min_texts=1_000", "bad value '1_000' for evalset_min_texts", id="underscore"),
+        pytest.param("evalset_min_per_label=+5", "bad value '+5' for evalset_min_per_label", id="plus-sign"),
+        pytest.param("shadow_min_texts=١٠٠٠", "for shadow_min_texts: a whole number", id="arabic-indic-digits"),
     ],
 )
 def test_parse_assignment_refusals(text: str, expected_msg: str) -> None:

@@ -173,7 +173,8 @@ def test_versions_fits_80_and_60_columns_and_says_where_the_left_out_columns_are
     monkeypatch.setenv("COLUMNS", str(width))
     code, out, err = run(capsys, "versions", "m", *r)
     lines = out.splitlines()
-    assert (code, err) == (0, "") and all(cell_len(line) <= width for line in lines), out
+    assert code == 0 and all(cell_len(line) <= width for line in lines), out
+    assert " ".join(err.split()) == "* measured on the validation split (exported without --test)"  # both are
     # What a user picks a version by stays: number, state, the gates' metric, labels, when and by whom.
     assert {"VERSION", "STATE", "MACRO-F1", "LABELS", "PUBLISHED", "BY"} <= set(lines[0].split())
     states = [line.split()[1] for line in lines[1:] if line[:7].strip().isdigit()]
@@ -189,8 +190,9 @@ def test_versions_fits_80_and_60_columns_and_says_where_the_left_out_columns_are
     if width == 80:
         assert "ACCURACY" in lines[0] and "release-bot" in out  # no word cut in two at 80
     monkeypatch.delenv("COLUMNS")  # captured output is no terminal: every column, one line a row
-    code, out, _ = run(capsys, "versions", "m", *r)
+    code, out, err = run(capsys, "versions", "m", *r)
     assert "PARITY" in out.splitlines()[0] and "left out" not in out and len(out.splitlines()) == 3
+    assert err == "* measured on the validation split (exported without --test)\n"  # whole when not a terminal
 
 
 @pytest.mark.parametrize(
@@ -413,3 +415,148 @@ def test_show_fits_its_files_to_the_terminal_each_digest_below_its_file(
         at = body.index(name)
         pieces = 1 if width >= 64 else 2
         assert "".join(line.strip() for line in body[at + 1 : at + 1 + pieces]) == digest, out
+
+
+ACTOR = "admin-api@127.0.0.1"  # the actor every HTTP admin action records (service/web: admin-api@ADDRESS)
+GATES = "registered → live; parity:pass labels:pass cautions:pass macro_f1:pass ece:pass"
+
+
+def _column(lines: list[str], header: str) -> list[str]:
+    """The cells of the column under ``header`` (to the next header), one a line of the table."""
+    names = lines[0].split("  ")
+    names = [n.strip() for n in names if n.strip()]
+    at = names.index(header)
+    start = _starts(lines[0], [header])[0]
+    end = _starts(lines[0], [names[at + 1]])[0] if at + 1 < len(names) else None
+    return [_cut(line, start, end) for line in lines[1:]]
+
+
+def _whole(cells: list[str], token: str) -> bool:
+    """Whether ``token`` shows whole in a cell and no cell ends with a piece of it cut off."""
+    words = [w for cell in cells for w in cell.split()]
+    return token in words and not any(token.startswith(w) and w != token for w in words if len(w) > 2)
+
+
+@pytest.mark.parametrize("width", [80, 100])
+def test_a_column_keeps_its_longest_word_while_the_free_text_can_give_way(width: int) -> None:
+    """Before: at 80 columns history showed its actor as "admin-api@12" over "7.0.0.1" (at 100 as
+    "admin-api@127.0." over "0.1") while REASON, free text, had room to give: every wrapped column took
+    an equal share whatever its words."""
+    headers = ["EVENT", "TIME (UTC)", "KIND", "VERSION", "ACTOR", "REASON", "DETAIL"]
+    rows = [[3, "2026-12-05 21:29:45Z", "promote", 1, ACTOR, "better on the held-out set", GATES]]
+    text = table(headers, rows, right=(0, 3), wrap_columns=(4, 5, 6), prose=(5,), width=width)
+    lines = text.splitlines()
+    assert all(cell_len(line) <= width for line in lines), text
+    assert ACTOR in lines[1], text
+    for token in ("parity:pass", "cautions:pass", "macro_f1:pass", "registered"):
+        assert any(token in line.split() for line in lines), (token, text)
+
+
+def test_a_word_that_must_be_split_is_split_after_an_escape_or_an_at_sign() -> None:
+    """Only when nothing else fits is a word split, and then where it reads best (common practice for
+    addresses): after the escape of a bidi override or the at sign of an actor, not one letter before."""
+    assert wrap("my bike\u202eoverride is broken", 16) == ["my", "bike\\u202e", "override is", "broken"]
+    assert wrap(ACTOR, 14) == ["admin-api@", "127.0.0.1"]
+    assert wrap("unbroken" * 3, 10) == ["unbrokenun", "brokenunbr", "oken"]  # nothing to split after: as before
+
+
+@pytest.mark.parametrize("width", [64, 70, 80, 100, 200])
+def test_history_verdicts_versions_and_show_keep_actors_gate_results_and_escapes_whole(
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
+    width: int,
+) -> None:
+    """The fresh-eyes audit: at COLUMNS=80 history split the actor (`admin-api@12` / `7.0.0.1`), at 70
+    its DETAIL `parity:pas` / `s`, and verdicts a text's `\\u202eoverri` / `de`, while other columns had
+    room. Now every line fits, and a word is split only when no width would keep it whole, after its
+    at sign or escape."""
+    from textsieve.registry import open_registry
+
+    r = ["--registry", str(tmp_path / "reg")]
+    assert run(capsys, "publish", str(tiny_bundles["a"]), "--model", "helpdesk", "--actor", ACTOR, *r)[0] == 0
+    promote = ["promote", "helpdesk", "1", "--to", "live", "--reason", "better on the held-out set"]
+    assert run(capsys, *promote, "--actor", ACTOR, *r)[0] == 0
+    with open_registry(tmp_path / "reg") as reg:
+        for text in ("my bike\u202eoverride is broken", "charged twice for the same rental"):
+            reg.verdicts.record(
+                "helpdesk",
+                1,
+                text=text,
+                predicted_label="repair",
+                predicted_probability=0.8,
+                verdict_label="repair",
+                reviewer="Renée",
+            )
+    capsys.readouterr()
+    monkeypatch.setenv("COLUMNS", str(width))
+    outs = {}
+    for verb in ("history", "versions", "verdicts", "show"):
+        code, out, err = run(capsys, verb, "helpdesk", *r)
+        assert code == 0 and (err == "" or verb == "versions"), (verb, err)  # versions' legend on stderr
+        # verdicts' columns that never wrap and its headers take 66 columns before its text: below 72 it
+        # overflows (as before), its text in the narrowest column a table makes (6).
+        fits = verb != "verdicts" or width >= 72
+        assert not fits or all(cell_len(line) <= width for line in out.splitlines()), (verb, out)
+        outs[verb] = out.splitlines()
+    history = outs["history"][: outs["history"].index("") if "" in outs["history"] else None]
+    # DETAIL's gate results: whole from 70 columns (below, no width keeps every word whole)
+    if width >= 70:
+        detail = _column(history, "DETAIL")
+        assert all(_whole(detail, t) for t in ("parity:pass", "cautions:pass", "macro_f1:pass")), history
+    # The actor: whole from 80 columns; below, if split, after its at sign (and hyphen, in 9 columns).
+    notes = [i for i, ln in enumerate(outs["versions"]) if ln.startswith("(")]  # the left-out note
+    versions = outs["versions"][: notes[0] if notes else None]
+    for lines, header in ((history, "ACTOR"), (versions, "BY")):
+        cells = _column(lines, header)
+        split_after_at = "127.0.0.1" in cells and any(c.endswith("api@") for c in cells)  # "admin-api@" or "api@"
+        assert _whole(cells, ACTOR) or (width < 80 and split_after_at), lines
+    # The bidi override's escape never split, and the word around it split only after it.
+    verdicts = outs["verdicts"]
+    assert all("\\u202" not in line or "\\u202e" in line for line in verdicts), verdicts
+    text = [w for cell in _column(verdicts[: verdicts.index("")], "TEXT") for w in cell.split()]
+    if width >= 72:  # where it fits (below, its text column is as narrow as the escape)
+        assert "bike\\u202eoverride" in text or ("bike\\u202e" in text and "override" in text), verdicts
+    assert ACTOR in "".join(outs["show"]), outs["show"]
+
+
+def test_versions_marks_the_figures_measured_on_the_validation_split(
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
+    tiny_runs: dict[str, Path],
+    tiny_data: Path,
+) -> None:
+    """Before: ACCURACY and MACRO-F1 showed one version's test-file figures beside another's validation
+    figures (export without --test) with nothing to tell them apart; only `show` named the split."""
+    from textsieve.exporter.export import export
+
+    tested = tmp_path / "tested"
+    export(tiny_runs["b"], tested, test=tiny_data / "test.jsonl", log=lambda *_: None)
+    r = ["--registry", str(tmp_path / "reg")]
+    for bundle in (tiny_bundles["a"], tested):
+        assert run(capsys, "publish", str(bundle), "--model", "m", *r)[0] == 0
+    capsys.readouterr()
+    splits = {}
+    for version in ("1", "2"):
+        _, out, _ = run(capsys, "show", "m", version, *r)
+        splits[version] = next(ln.split()[2] for ln in out.splitlines() if ln.startswith("held-out metrics"))
+    assert splits == {"1": "validation,", "2": "test:test.jsonl,"}  # what the manifests say
+    legend = (
+        "* measured on the validation split (exported without --test), the others on the file given to export --test"
+    )
+    for width in (None, 80, 64):
+        if width is None:
+            monkeypatch.delenv("COLUMNS", raising=False)
+        else:
+            monkeypatch.setenv("COLUMNS", str(width))
+        code, out, err = run(capsys, "versions", "m", *r)
+        lines = out.splitlines()
+        assert code == 0 and all(cell_len(line) <= (width or 999) for line in [*lines, *err.splitlines()]), out
+        rows = {line.split()[0]: line.split() for line in lines[1:] if line[:7].strip().isdigit()}
+        f1 = lines[0].split().index("MACRO-F1")
+        assert rows["1"][f1].endswith("*") and not rows["2"][f1].endswith("*"), out
+        # The legend on stderr, as history's note: piped, stdout stays the table's rows.
+        assert " ".join(err.split()) == legend, err

@@ -79,6 +79,11 @@ def test_verdicts_table_shows_each_verdict_and_agreement_with_its_interval(
     assert row[:4] == ["1", "4", "3", "75.0%"]
     assert row[4] == f"{ref.low:.1%}–{ref.high:.1%}"
     assert "not a random sample" in summary
+    # Before: "(4 of 4 shown; --last N for more)" with nothing more to show. Said only when some are not.
+    assert "shown" not in out and len(lines) == 5
+    code, out, _ = run(capsys, "verdicts", "helpdesk", "--last", "2", *judged.cli_args())
+    listing = out.split("\n\n", 1)[0].splitlines()
+    assert code == 0 and listing[-1] == "(2 of 4 shown; --last N for more)" and len(listing) == 4
 
 
 def test_export_feeds_evalset_add_and_the_training_reader(
@@ -128,14 +133,16 @@ def test_deletion_by_id_and_date_is_audited_and_needs_a_reason(
     assert "no verdict 99 on 'helpdesk'; nothing deleted. 'textsieve verdicts helpdesk' lists" in err
     code, out, _ = run(capsys, "verdicts", "helpdesk", "--delete", "2", "--reason", "request 7", *r)
     assert code == 0
-    assert re.fullmatch(r"deleted 1 verdicts of 'helpdesk' \(audit event \d+\)\n", out)
+    # Before: "deleted 1 verdicts", here and in history.
+    assert re.fullmatch(r"deleted 1 verdict of 'helpdesk' \(audit event \d+\)\n", out)
     code, out, _ = run(capsys, "verdicts", "helpdesk", "--delete-before", "2999-01-01", "--reason", "retention", *r)
     assert code == 0 and out.startswith("deleted 3 verdicts")
     code, out, _ = run(capsys, "verdicts", "helpdesk", *r)
     assert code == 0 and out.startswith("no verdicts on 'helpdesk' yet")
     code, out, _ = run(capsys, "history", "helpdesk", *r)
     deletions = [line for line in out.splitlines() if "verdicts-delete" in line]
-    assert len(deletions) == 2 and "deleted 1 verdicts; ids 2" in deletions[0]
+    assert len(deletions) == 2 and "deleted 1 verdict; ids 2" in deletions[0]
+    assert "deleted 3 verdicts recorded before" in deletions[1]
     assert "recorded before 2999-01-01 00:00:00Z" in deletions[1]
 
 

@@ -102,3 +102,48 @@ def test_public_surface_is_what_all_claims() -> None:
         assert getattr(service, name).__name__ == name
     with pytest.raises(AttributeError):
         service.nothing_here  # noqa: B018
+
+
+def _readme_settings() -> list[tuple[list[str], str]]:
+    """The README's Settings section: each table row's TEXTSIEVE_* names with its default cell."""
+    import re
+    from pathlib import Path
+
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text(encoding="utf-8")
+    section = readme.split("\n### Settings\n", 1)[1].split("\n### ", 1)[0]
+    rows: list[tuple[list[str], str]] = []
+    at = -1
+    for line in section.splitlines():
+        if not line.startswith("|") or line.startswith("| ---"):
+            at = -1 if not line.startswith("|") else at
+            continue
+        cells = [c.strip() for c in line.strip("|").split(" | ")]
+        if cells[0] == "variable":
+            at = cells.index("default")
+            continue
+        rows.append((re.findall(r"`(TEXTSIEVE_[A-Z_]+)`", cells[0]), cells[at]))
+    return rows
+
+
+def test_the_readme_settings_tables_name_every_setting_with_its_default() -> None:
+    """Before: TEXTSIEVE_MAX_SPANS (named in a 422's detail) and TEXTSIEVE_ACCESS_LOG were in no table.
+    Each field of Settings is a TEXTSIEVE_ variable the README lists, and each it lists is a field; a
+    default written as one literal is the field's."""
+    rows = _readme_settings()
+    documented = {name for names, _ in rows for name in names}
+    fields = {f"TEXTSIEVE_{name.upper()}": field for name, field in Settings.model_fields.items()}
+    assert documented == set(fields), (sorted(set(fields) - documented), sorted(documented - set(fields)))
+    checked = 0
+    for names, cell in rows:
+        literal = cell.split("`")[1] if len(names) == 1 and cell.startswith("`") else None
+        default = fields[names[0]].default if names else None
+        if literal is None or fields[names[0]].default_factory is not None:
+            continue
+        if isinstance(default, bool):
+            assert literal == str(default).lower(), names
+        elif isinstance(default, int | float):
+            assert float(literal) == default, names
+        else:
+            assert literal == default, names
+        checked += 1
+    assert checked >= 15  # most rows give their default as one literal
