@@ -608,6 +608,8 @@ class Registry:
         Given training run folders (``run``, ``against_run``: the registry keeps none), the report
         is built again with how the embeddings moved, and replaces the stored one.
         """
+        if against_run is not None and against is None:
+            raise InputError("against_run is the run folder of the version compared with: give against too")
         with_runs = run is not None or against_run is not None
         from textsieve.registry.report.files import make_report
 
@@ -644,9 +646,15 @@ class Registry:
             problem = _refused_evalset(model, registered, examples)
             if problem is not None:
                 raise InputError(f"{problem}, or pass a file: textsieve evaluate {model} {version} --evalset FILE")
+        bundle = self._materialize(target)
         pair = None if other is None else (self._materialize(other), other.version)
+        # Before any scoring: a run folder of another version or model gave a report crediting its
+        # embeddings to this one (or a note that the two "share 0 words").
+        _check_run(run, bundle, model, version)
+        if pair is not None:
+            _check_run(against_run, pair[0], model, pair[1])
         _, json_bytes, html_bytes = make_report(
-            self._materialize(target),
+            bundle,
             examples,
             model=model,
             version=version,
@@ -1169,6 +1177,19 @@ class Registry:
             n = q.next_version(model) - 1
             raise NotFoundError(f"{model!r} has no version {version}; its versions are 1–{n}")
         return info
+
+
+def _check_run(run: Path | None, bundle: Bundle, model: str, version: int) -> None:
+    """Refuse a training run folder that is not the one ``version``'s bundle was exported from."""
+    from textsieve.registry.report.embedding_files import run_difference
+
+    if run is None:
+        return
+    difference = run_difference(run, bundle)
+    if difference is not None:
+        raise InputError(
+            f"{run}: not the training run of {model!r} version {version} ({difference}); give that version's run folder"
+        )
 
 
 def _num(v: VersionInfo | None) -> int | None:

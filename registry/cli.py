@@ -649,6 +649,7 @@ def cli_gates(args: argparse.Namespace) -> int:
             # dict() kept the last, silently: `--set mcnemar=on … --set mcnemar=off` turned it off.
             raise InputError(f"--set {key} given twice ({typed[key]!r}, then {text!r}); set each key once")
         values[key], typed[key] = value, text
+    _reason_needs(args, bool(values or args.reset), "--set or --reset")
     with _open(args) as reg:
         if values or args.reset:
             settings, changed = reg.change_settings(
@@ -663,6 +664,13 @@ def cli_gates(args: argparse.Namespace) -> int:
     return 0
 
 
+def _reason_needs(args: argparse.Namespace, changing: bool, flags: str) -> None:
+    """--reason with nothing to change was ignored (exit 0): refused, as every flag given without the one
+    it works with."""
+    if args.reason and not changing:
+        raise InputError(f"--reason works only with {flags} (it is recorded with the change); add one or drop --reason")
+
+
 def cli_review_threshold(args: argparse.Namespace) -> int:
     from textsieve.registry.model_settings import REVIEW_THRESHOLD
 
@@ -670,6 +678,7 @@ def cli_review_threshold(args: argparse.Namespace) -> int:
     if args.set is not None and not args.set.strip():
         # An empty value cleared the threshold: `--set "$THRESHOLD"` with the variable unset.
         raise InputError(f"--set {args.set!r}: give a probability above 0 and at most 1, or clear it with --clear")
+    _reason_needs(args, args.set is not None or args.clear, "--set or --clear")
     with _open(args) as reg:
         value = None if args.set is None else REVIEW_THRESHOLD.parse(args.set)
         if value is not None:
@@ -753,6 +762,7 @@ def cli_verdicts(args: argparse.Namespace) -> int:
     from textsieve.registry.verdicts import export_jsonl
 
     deleting = args.delete_before is not None or bool(args.delete)
+    _reason_needs(args, deleting, "--delete or --delete-before")
     if deleting and args.export is not None:
         raise InputError("export and delete in separate runs, so the file holds what was there before the deletion")
     if args.last < 0:

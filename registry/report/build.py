@@ -75,12 +75,15 @@ class Section:
 EXTRA_SECTIONS: list[Section] = []
 
 
-def default_sections(run: Path | None = None, against_run: Path | None = None) -> list[Section]:
+def default_sections(
+    run: Path | None = None, against_run: Path | None = None, against_name: str = "the other version"
+) -> list[Section]:
     """The sections every report carries: :data:`EXTRA_SECTIONS` and the three probes
-    (``run``/``against_run``: training run folders, for how the embeddings moved)."""
+    (``run``/``against_run``: training run folders, for how the embeddings moved; ``against_name``:
+    how the notes name the other version)."""
     from textsieve.registry.report.probe_sections import probe_sections
 
-    return [*EXTRA_SECTIONS, *probe_sections(run, against_run=against_run)]
+    return [*EXTRA_SECTIONS, *probe_sections(run, against_run=against_run, against_name=against_name)]
 
 
 @dataclass

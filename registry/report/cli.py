@@ -33,9 +33,15 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
 
     p.add_argument("model", help="model name").completer = complete_models  # type: ignore[attr-defined]
     p.add_argument("version", help="version number")
-    p.add_argument("--evalset", type=Path, help="labelled JSONL or CSV file (default: the model's evaluation set)")
-    p.add_argument("--text-field", default="text", help="with --evalset: JSONL key or CSV column holding the text")
-    p.add_argument("--label-field", default="label", help="with --evalset: JSONL key or CSV column holding the label")
+    from textsieve.labelled import FILE_HELP
+
+    p.add_argument("--evalset", type=Path, help=f"{FILE_HELP} (default: the model's evaluation set)")
+    p.add_argument(
+        "--text-field", help="with --evalset: the JSON key or CSV/TSV column holding the text (default: text)"
+    )
+    p.add_argument(
+        "--label-field", help="with --evalset: the JSON key or CSV/TSV column holding the label (default: label)"
+    )
     p.add_argument("--against", metavar="live|N", help="compare with the live version or version N on the same texts")
     p.add_argument("--out", type=Path, help="folder for report.json and report.html (default: report-MODEL-VERSION)")
     p.add_argument(
@@ -71,6 +77,21 @@ def _against(reg: Registry, model: str, version: int, text: str | None) -> int |
     return n
 
 
+# A flag that only means something with another one, and that one (their help lines say "with …").
+DEPENDENT_FLAGS = (
+    ("against_run", "--against-run", "against", "--against"),
+    ("text_field", "--text-field", "evalset", "--evalset"),
+    ("label_field", "--label-field", "evalset", "--evalset"),
+)
+
+
+def _check_dependent_flags(args: argparse.Namespace) -> None:
+    """Refuse a flag given without the flag it works with: it was ignored, and the run exited 0."""
+    for name, flag, needs, needed in DEPENDENT_FLAGS:
+        if getattr(args, name) is not None and getattr(args, needs) is None:
+            raise InputError(f"{flag} works only with {needed}; add {needed} or drop {flag}")
+
+
 def cli_evaluate(args: argparse.Namespace) -> int:
     from textsieve.files import atomic_write_bytes, check_writable, nearest_folder
     from textsieve.registry.cli import _open
@@ -78,10 +99,12 @@ def cli_evaluate(args: argparse.Namespace) -> int:
     from textsieve.registry.names import validate_version
     from textsieve.registry.report.files import HTML_FILE, JSON_FILE
 
+    _check_dependent_flags(args)
     version = validate_version(args.version)
     examples = None
     if args.evalset is not None:
-        examples = load_evalset(args.evalset, text_field=args.text_field, label_field=args.label_field).examples
+        fields = {"text_field": args.text_field or "text", "label_field": args.label_field or "label"}
+        examples = load_evalset(args.evalset, **fields).examples
     out = args.out if args.out is not None else Path(f"report-{args.model}-{version}")
     # A place the report cannot be written to is said before the scoring, not after it.
     if out.exists() and not out.is_dir():
@@ -114,7 +137,7 @@ def cli_evaluate(args: argparse.Namespace) -> int:
             actor=args.actor,
             progress=progress,
             run=args.run,
-            against_run=args.against_run,
+            against_run=args.against_run if against is not None else None,
         )
         _, json_bytes = reg.report_file(info, "json")
         _, html_bytes = reg.report_file(info, "html")

@@ -14,9 +14,11 @@ kept word at most, far less than the vectors file it came from.
 
 from __future__ import annotations
 
+import json
 import zipfile
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -24,8 +26,12 @@ from numpy.typing import NDArray
 from textsieve.errors import BundleError, InputError
 from textsieve.registry.tokenizer import Vocabulary
 
+if TYPE_CHECKING:
+    from textsieve.registry.bundle import Bundle
+
 EMBEDDINGS_NPZ = "embeddings.npz"
 VOCAB_TXT = "vocab.txt"
+RUN_JSON = "run.json"  # exporter/run_folder.py's name: read here as plain JSON (the exporter needs torch)
 
 
 @dataclass(frozen=True)
@@ -76,4 +82,43 @@ def read_run_embeddings(run_dir: Path) -> RunEmbeddings:
     return RunEmbeddings(vocabulary, trained, start_ids, start, mode)
 
 
-__all__ = ["EMBEDDINGS_NPZ", "RunEmbeddings", "embedding_arrays", "read_run_embeddings"]
+def _listed(items: list[str]) -> str:
+    shown = ", ".join(map(repr, items[:5]))
+    return shown + (f", … ({len(items):,} in all)" if len(items) > 5 else "")
+
+
+def run_difference(run_dir: Path, bundle: Bundle) -> str | None:
+    """What ``run_dir`` records that differs from the bundle a version holds, or None when they agree.
+
+    Compared: the labels and the training record (data sha256, seed, epochs, …) of run.json with the
+    manifest's, which the export copied from it, and the tokens of vocab.txt with the bundle's. What
+    the folder lacks is not compared here (the embedding section says it is missing)."""
+    manifest = bundle.manifest
+    try:
+        info: Any = json.loads((Path(run_dir) / RUN_JSON).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        info = None
+    if isinstance(info, dict):
+        labels = info.get("labels")
+        if isinstance(labels, list) and labels != manifest.labels:
+            return f"its labels are {_listed(labels)}, the version's {_listed(manifest.labels)}"
+        training = info.get("training")
+        if isinstance(training, dict):
+            recorded = manifest.training.model_dump()
+            for key, value in recorded.items():
+                if key in training and training[key] != value:
+                    return f"its training {key} is {training[key]!r}, the version's {value!r}"
+    try:
+        tokens = Vocabulary.load(Path(run_dir) / VOCAB_TXT).tokens
+        theirs = Vocabulary.load(bundle.path / manifest.vocabulary.file).tokens
+    except (OSError, BundleError, ValueError):
+        return None
+    if tokens != theirs:
+        if len(tokens) != len(theirs):
+            return f"its vocabulary has {len(tokens):,} tokens, the version's {len(theirs):,}"
+        first = next(i for i, (a, b) in enumerate(zip(tokens, theirs, strict=True)) if a != b)
+        return f"its vocabulary's token {first} is {tokens[first]!r}, the version's {theirs[first]!r}"
+    return None
+
+
+__all__ = ["EMBEDDINGS_NPZ", "RunEmbeddings", "embedding_arrays", "read_run_embeddings", "run_difference"]

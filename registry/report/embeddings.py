@@ -160,17 +160,22 @@ def _shared_ids(a: Vocabulary, b: Vocabulary) -> tuple[list[str], NDArray[np.int
     )
 
 
+def _capitalised(name: str) -> str:
+    """``name`` ("version 2", "the other version") opening a sentence."""
+    return name[:1].upper() + name[1:]
+
+
 def _against(
     run: RunEmbeddings, other: RunEmbeddings, name: str, *, top: int, neighbours: int, seed: int
 ) -> dict[str, Any] | str:
     if run.trained.shape[1] != other.trained.shape[1]:
         return (
-            f"Version {name} has {other.trained.shape[1]}-dimensional vectors and this one "
+            f"{_capitalised(name)} has {other.trained.shape[1]}-dimensional vectors and this one "
             f"{run.trained.shape[1]}: their embeddings cannot be compared."
         )
     words, ids_a, ids_b = _shared_ids(run.vocabulary, other.vocabulary)
     if len(words) < 2:
-        return f"Version {name} shares {len(words)} words with this one: too few to compare embeddings."
+        return f"{_capitalised(name)} shares {len(words)} words with this one: too few to compare embeddings."
     before = other.trained[ids_b].astype(np.float64)
     after = run.trained[ids_a].astype(np.float64)
     shared_start = _shared_start(run, other)

@@ -34,7 +34,7 @@ def make_report(
 ) -> tuple[dict[str, Any], bytes, bytes]:
     """(report, report.json bytes, report.html bytes) for one version on one evaluation set;
     ``run``/``against_run``: the training run folders, for how the embeddings moved."""
-    sections = default_sections(run, against_run)
+    sections = default_sections(run, against_run, "the other version" if against is None else f"version {against[1]}")
     report = build_report(
         bundle, examples, model=model, version=version, against=against, progress=progress, extra_sections=sections
     )

@@ -207,6 +207,18 @@ def test_promoting_a_version_whose_card_lacks_its_cautions_exits_1_saying_how_to
             "--set '': give a probability above 0 and at most 1, or clear it with --clear",
             id="review-threshold --set empty (cleared the threshold)",
         ),
+        # --reason with no change to record was ignored, exit 0.
+        pytest.param(["gates", "m", "--reason", "x"], "--reason works only with --set or --reset", id="gates reason"),
+        pytest.param(
+            ["review-threshold", "m", "--reason", "x"],
+            "--reason works only with --set or --clear",
+            id="threshold reason",
+        ),
+        pytest.param(
+            ["verdicts", "m", "--reason", "x"],
+            "--reason works only with --delete or --delete-before",
+            id="verdicts reason",
+        ),
         pytest.param(
             ["promote", "m", "1", "--to", "candidate", "--reason", "ok\x1b[2J"],
             "reason holds a control character (U+001B, character 3)",

@@ -565,6 +565,17 @@ def evalset_lines(tiny_data: Path) -> list[str]:
         pytest.param(["m", "1", "--against", "live"], None, "'m' has no live version", id="no-live"),
         pytest.param(["m", "1", "--against", "one"], None, "give 'live' or a version number", id="bad-against"),
         pytest.param(["m", "1", "--against", "1"], None, "that is the version under report", id="self"),
+        # Flags that work only with another one were ignored, exit 0 (their help says "with --…").
+        pytest.param(
+            ["m", "1", "--against-run", "{file}"],
+            None,
+            "--against-run works only with --against; add --against or drop --against-run",
+            id="against-run-without-against",
+        ),
+        pytest.param(["m", "1", "--text-field", "t"], None, "--text-field works only with --evalset", id="text-field"),
+        pytest.param(
+            ["m", "1", "--label-field", "l"], None, "--label-field works only with --evalset", id="label-field"
+        ),
         # A file as --out was found only after the scoring, with its progress lines before the error.
         pytest.param(
             ["m", "1", "--out", "{file}"], "x", "is a file; --out names a folder for report.json", id="out-a-file"
@@ -603,6 +614,62 @@ def test_evaluate_bad_input_is_one_line_and_exit_2(
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1 and expected_msg in err, err
     assert not (tmp_path / "o").exists()
+
+
+@pytest.mark.parametrize(
+    ("runs", "refused", "expected_msg"),
+    [
+        # Trained with other labels: was exit 0, with a note that the versions "share 0 words".
+        pytest.param(("relabelled", None), "relabelled", "version 2 (its labels are", id="other-labels"),
+        # Swapped: each the other's run (same data, another seed), the embeddings credited to the wrong version.
+        pytest.param(("a", "b"), "a", "version 2 (its training seed is 1, the version's 2)", id="swapped"),
+        pytest.param(("b", "relabelled"), "relabelled", "version 1 (its labels are", id="other-run-other-labels"),
+    ],
+)
+def test_evaluate_refuses_a_run_folder_of_another_version(
+    capsys: pytest.CaptureFixture[str],
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
+    tiny_runs: dict[str, Path],
+    tiny_data: Path,
+    runs: tuple[str, str | None],
+    refused: str,
+    expected_msg: str,
+) -> None:
+    r = ["--registry", str(tmp_path / "reg")]
+    evalset = str(tiny_data / "test.jsonl")
+    assert _run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", "--evalset", evalset, *r)[0] == 0
+    assert _run(capsys, "publish", str(tiny_bundles["b"]), "--model", "m", *r)[0] == 0
+    mine, theirs = runs
+    argv = ["evaluate", "m", "2", "--against", "1", "--out", str(tmp_path / "o"), "--run", str(tiny_runs[mine])]
+    if theirs is not None:
+        argv += ["--against-run", str(tiny_runs[theirs])]
+    code, out, err = _run(capsys, *argv, *r)
+    assert code == 2 and out == ""
+    lines = err.strip().splitlines()
+    assert len(lines) == 1, err
+    assert f"{tiny_runs[refused]}: not the training run of 'm' {expected_msg}" in lines[0], err
+    assert not (tmp_path / "o").exists()
+
+
+def test_evaluate_with_both_run_folders_credits_each_version(
+    capsys: pytest.CaptureFixture[str],
+    tmp_path: Path,
+    tiny_bundles: dict[str, Path],
+    tiny_runs: dict[str, Path],
+    tiny_data: Path,
+) -> None:
+    r = ["--registry", str(tmp_path / "reg")]
+    evalset = str(tiny_data / "test.jsonl")
+    assert _run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", "--evalset", evalset, *r)[0] == 0
+    assert _run(capsys, "publish", str(tiny_bundles["b"]), "--model", "m", *r)[0] == 0
+    out_dir = tmp_path / "o"
+    code, _, err = _run(capsys, "evaluate", "m", "2", "--against", "1", "--out", str(out_dir),
+                        "--run", str(tiny_runs["b"]), "--against-run", str(tiny_runs["a"]), *r)  # fmt: skip
+    assert code == 0, err
+    section = json.loads((out_dir / "report.json").read_text(encoding="utf-8"))["embeddings"]
+    (part,) = [c for c in section["comparisons"] if c["kind"] == "against"]
+    assert part["against"] == "version 1" and part["title"].startswith("From version 1 to this version")
 
 
 def test_evaluate_refuses_to_write_its_report_over_the_evaluation_set(

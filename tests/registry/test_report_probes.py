@@ -433,6 +433,16 @@ def test_embedding_section_on_the_tiny_runs(tiny_runs: dict[str, Path]) -> None:
     assert part["shared_words"] == len(vocab) - 2  # same data, same vocabulary
 
 
+@pytest.mark.parametrize(("name", "opening"), [("the other version", "The other version"), ("version 1", "Version 1")])
+def test_a_note_about_the_other_version_names_it_once(name: str, opening: str, tmp_path: Path) -> None:
+    """The note read "Version the other version shares 0 words …" (and "Version version 1 …")."""
+    words, vectors = _glove(40)
+    a = _fake_run(tmp_path / "a", words[:20], vectors[:20], None, "")
+    b = _fake_run(tmp_path / "b", words[20:], vectors[20:], None, "")
+    note = embeddings.embedding_section(b, against=a, against_name=name)["note"]
+    assert f" {opening} shares 0 words with this one: too few to compare embeddings." in note
+
+
 @pytest.mark.parametrize(
     ("case", "expected"),
     [

@@ -3,9 +3,7 @@
 
 from __future__ import annotations
 
-import contextlib
 import io
-import os
 import re
 import subprocess
 import sys
@@ -15,6 +13,7 @@ from typing import TYPE_CHECKING
 import pytest
 
 from tests.helpers.environment import child_env
+from tests.helpers.service import MODEL
 from tests.scoring.conftest import ROOT, uci_rows
 
 if TYPE_CHECKING:
@@ -37,21 +36,21 @@ def test_the_readme_example_runs_as_written(tiny_bundles: dict[str, Path], tmp_p
     with textsieve.open_registry(tmp_path / "textsieve-registry") as reg:
         reg.publish(tiny_bundles["a"], "helpdesk", actor="tests")
         reg.promote("helpdesk", 1, "live", reason="tests start here", actor="tests", force=True)
-    code = readme_python_example()
-    out = io.StringIO()
-    cwd = os.getcwd()
-    os.chdir(tmp_path)
-    try:
-        with contextlib.redirect_stdout(out):
-            exec(compile(code, str(README), "exec"), {"__name__": "__readme__"})
-    finally:
-        os.chdir(cwd)
-    lines = out.getvalue().splitlines()
+    # Run as a script, as a user runs it: score_file's worker processes re-import it (its main guard).
+    (tmp_path / "example.py").write_text(readme_python_example(), encoding="utf-8")
+    env = child_env() | {"PYTHONPATH": str(ROOT)}
+    done = subprocess.run(
+        [sys.executable, "example.py"], capture_output=True, text=True, timeout=300, cwd=tmp_path, env=env
+    )
+    assert done.returncode == 0, done.stderr
+    lines = done.stdout.splitlines()
     assert lines[0] == "helpdesk 1 ['account', 'billing', 'praise', 'repair']"
     assert len(lines) >= 3 and lines[1].split()[0] in {"account", "billing", "praise", "repair"}
     # The frame's second text is missing: it keeps its row, with the reason instead of a label (pandas'
     # string column holds the None as NaN; print cuts the reason at its display width).
-    assert "text field 'text' is NaN (a missing value)" in out.getvalue()
+    assert "text field 'text' is NaN (a missing value)" in done.stdout
+    assert lines[-1].startswith("scored 3 rows"), done.stdout
+    assert len((tmp_path / "tickets-scored.jsonl").read_text(encoding="utf-8").splitlines()) == 3
 
 
 def test_predict_and_score_frame_equal_the_runtime_on_the_uci_sentences(scoring_registry: Path) -> None:
@@ -393,3 +392,59 @@ def test_score_frame_names_a_missing_value_as_what_it_is_and_says_what_is_allowe
         for shown in ("None", "NaN", "NA")
     ]
     assert pd.isna(errors[0]) and pd.isna(errors[4])
+
+
+SCRIPT = """import sys
+import textsieve
+
+{call}
+"""
+CALL = "textsieve.score_file(sys.argv[1], sys.argv[2], sys.argv[3], sys.argv[4], options=textsieve.Options(workers=2))"
+
+
+@pytest.mark.parametrize(
+    ("call", "code", "expected"),
+    [
+        # Each worker re-imported the script and scored again ("another 'textsieve score' is writing the same
+        # output"), and the run ended with "a scoring worker process stopped (killed, or out of memory)".
+        pytest.param(CALL, 1, "score_file was called at the top level of {script} (line 4), outside", id="top-level"),
+        pytest.param(
+            f"def run():\n    {CALL}\n\nrun()", 1, "top level of {script} (line 7), outside", id="in-a-function"
+        ),
+        pytest.param(f'if __name__ == "__main__":\n    {CALL}', 0, "", id="guarded"),
+    ],
+)
+def test_a_script_that_calls_score_file_outside_the_main_guard_is_told_so(
+    call: str, code: int, expected: str, scoring_registry: Path, uci_jsonl: Path, tmp_path: Path
+) -> None:
+    script = tmp_path / "job.py"
+    script.write_text(SCRIPT.format(call=call), encoding="utf-8")
+    out = tmp_path / "out.jsonl"
+    argv = [sys.executable, str(script), str(scoring_registry), MODEL, str(uci_jsonl), str(out)]
+    env = child_env() | {"PYTHONPATH": str(ROOT)}
+    done = subprocess.run(argv, capture_output=True, text=True, timeout=300, cwd=tmp_path, env=env)
+    assert done.returncode == code, done.stderr
+    if code:
+        last = done.stderr.strip().splitlines()[-1]
+        assert expected.format(script=script) in last, done.stderr
+        assert 'put the call under if __name__ == "__main__":' in last
+        assert "another 'textsieve score'" not in done.stderr and "worker process stopped" not in done.stderr
+        assert not out.exists()
+    else:
+        assert out.read_bytes().count(b"\n") == 3000  # (some texts hold U+2028, which splitlines() splits at)
+
+
+def test_a_worker_re_importing_the_script_is_refused_there(
+    scoring_registry: Path, uci_jsonl: Path, tmp_path: Path
+) -> None:
+    """Where the script's source cannot tell (here: run as a worker's re-import does, as ``__mp_main__``)."""
+    script = tmp_path / "job.py"
+    script.write_text(SCRIPT.format(call=f'if __name__ != "__main__":\n    {CALL}'), encoding="utf-8")
+    out = tmp_path / "out.jsonl"
+    args = ["job.py", str(scoring_registry), MODEL, str(uci_jsonl), str(out)]
+    code = f"import runpy, sys; sys.argv = {args!r}; runpy.run_path({str(script)!r}, run_name='__mp_main__')"
+    env = child_env() | {"PYTHONPATH": str(ROOT)}
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300, env=env)
+    assert done.returncode == 1
+    assert f"score_file was called while a worker process re-imported {script}" in done.stderr.strip().splitlines()[-1]
+    assert not out.exists()

@@ -4,7 +4,9 @@ commands on loopback, score partitions that equal local scoring, also when a wor
 from __future__ import annotations
 
 import importlib.util
+import json
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -217,9 +219,8 @@ def test_a_jsonl_field_first_seen_after_the_sample_stops_the_run(
     out = tmp_path / "dataset"
     with open_registry(scoring_registry, create=False) as reg, pytest.raises(InputError) as caught:
         score_on_cluster(reg, MODEL, str(src), out, cluster=loopback_cluster.address)
-    assert (
-        "partition 0: row 1,050 has the field 'ticket', which none of the first 1,000 rows has" in caught.value.message
-    )
+    # The first partition of a JSONL file numbers its rows as the file's: the message is local scoring's.
+    assert caught.value.message.startswith("row 1,050 has the field 'ticket', which none of the first 1,000 rows has")
     assert not out.exists() and sorted(p.name for p in tmp_path.iterdir()) == ["in.jsonl"]
 
 
@@ -244,13 +245,147 @@ def test_resume_scores_a_damaged_part_again(
         return real(path, table, crc32)
 
     monkeypatch.setattr(formats, "write_part", write_part)
-    with open_registry(scoring_registry, create=False) as reg, pytest.raises(KeyboardInterrupt):
+    with open_registry(scoring_registry, create=False) as reg, pytest.raises(KeyboardInterrupt) as caught:
         score_on_cluster(reg, MODEL, str(src), out, cluster=loopback_cluster.address)
     monkeypatch.undo()
     written = sorted((tmp_path / ".dataset.score-partial" / "dataset").glob("part-*.parquet"))
     assert len(written) == 2
+    # What the CLI's one line for Ctrl-C or SIGTERM says (it said only "interrupted"), as a local run's.
+    work = tmp_path / ".dataset.score-partial"
+    assert caught.value.__notes__ == [
+        f"stopped after 2 of 6 partitions (1,000 rows) were written; they are kept in {work}; {out} was not written; "
+        "run the same command with --resume to continue"
+    ]
     written[0].write_bytes(b"PAR1 not a Parquet file")
     with open_registry(scoring_registry, create=False) as reg:
         summary = score_on_cluster(reg, MODEL, str(src), out, cluster=loopback_cluster.address, resume=True)
     assert summary.rows == 3000
     _assert_equal_tables(_dataset(out), want)
+
+
+def _cli(argv: list[str], cwd: Path, code: str = "") -> subprocess.CompletedProcess[str]:
+    """``textsieve`` in a process of its own (what it leaves on stderr at exit is part of the check);
+    ``code`` runs first, to stand in for what a test cannot arrange on a loopback cluster."""
+    main_call = f"from textsieve.cli import main; raise SystemExit(main({argv!r}))"
+    return subprocess.run(
+        [sys.executable, "-c", f"{code}\n{main_call}"],
+        capture_output=True, text=True, timeout=300, cwd=cwd, env=child_env() | {"PYTHONPATH": str(ROOT)},
+    )  # fmt: skip
+
+
+def test_a_relative_input_path_reaches_the_workers_as_an_absolute_one(
+    loopback_cluster: DaskCluster, scoring_registry: Path, tmp_path: Path
+) -> None:
+    """The workers run in another folder (the checkout) than this process (tmp_path): the relative
+    path was opened there, a FileNotFoundError traceback from score_partition."""
+    _parquet(tmp_path / "in.parquet", [{"text": r["text"]} for r in uci_rows()[:300]], group=100)
+    (tmp_path / "rel").mkdir()
+    out = _cli(["score", "in.parquet", "--model", MODEL, "--out", "rel/ds", "--registry", str(scoring_registry),
+                "--cluster", loopback_cluster.address], cwd=tmp_path)  # fmt: skip
+    assert out.returncode == 0, out.stderr
+    assert "scored 300 rows" in out.stdout
+    assert len(list((tmp_path / "rel" / "ds").glob("part-*.parquet"))) == 3
+    assert "Traceback" not in out.stderr and "Exception ignored" not in out.stderr
+
+
+# Stand-ins for a worker that sees another file than this process: the partitions this process read
+# (and sampled) point elsewhere when they are sent.
+_ELSEWHERE = """
+import dataclasses, textsieve.scoring.cluster as c
+_real = c._run
+def _run(client, payload, todo, *rest):
+    return _real(client, payload, [dataclasses.replace(p, **{changes}) for p in todo], *rest)
+c._run = _run
+"""
+
+
+@pytest.mark.parametrize(
+    ("changes", "code", "expected_msg"),
+    [
+        pytest.param(
+            "{'url': p.url + '.elsewhere'}",
+            2,
+            "in.parquet.elsewhere: a Dask worker cannot read it (no such file); the workers must see the same path "
+            "as this process (a shared filesystem)",
+            id="file-the-workers-cannot-see",
+        ),
+        pytest.param(
+            "{'url': p.url.replace('in.parquet', 'notes.txt')}",
+            1,
+            "partition 0 of ",
+            id="any-other-error-on-a-worker",
+        ),
+    ],
+)
+def test_an_error_on_a_worker_is_one_line_and_leaves_nothing(
+    changes: str, code: int, expected_msg: str, loopback_cluster: DaskCluster, scoring_registry: Path, tmp_path: Path
+) -> None:
+    _parquet(tmp_path / "in.parquet", [{"text": "hello"}], group=10)
+    (tmp_path / "notes.txt").write_text("not a Parquet file\n", encoding="utf-8")
+    argv = ["score", "in.parquet", "--model", MODEL, "--out", "ds", "--registry", str(scoring_registry),
+            "--cluster", loopback_cluster.address]  # fmt: skip
+    out = _cli(argv, cwd=tmp_path, code=_ELSEWHERE.format(changes=changes))
+    assert out.returncode == code, out.stderr
+    lines = out.stderr.splitlines()
+    assert len(lines) == 1 and lines[0].startswith("textsieve: error: ") and expected_msg in lines[0], out.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["in.parquet", "notes.txt"]
+
+
+def test_an_unreachable_scheduler_leaves_no_unfinished_run(scoring_registry: Path, tmp_path: Path) -> None:
+    _parquet(tmp_path / "in.parquet", [{"text": "hello"}], group=10)
+    out = _cli(["score", "in.parquet", "--model", MODEL, "--out", "u", "--registry", str(scoring_registry),
+                "--cluster", "tcp://127.0.0.1:9"], cwd=tmp_path)  # fmt: skip
+    assert out.returncode == 1, out.stderr
+    lines = out.stderr.splitlines()
+    assert len(lines) == 1 and "cannot reach the Dask scheduler at tcp://127.0.0.1:9" in lines[0], out.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["in.parquet"]
+
+
+def test_error_cells_and_strict_stops_name_the_line_or_row_as_local_scoring_does(
+    loopback_cluster: DaskCluster, scoring_registry: Path, tmp_path: Path
+) -> None:
+    """A Parquet partition numbers its rows as the file's (its row groups' counts are in the footer), and
+    so does a JSONL file's first partition; a later JSONL partition does not know how many lines come
+    before it, and says which partition and byte its line numbers count from."""
+    import pyarrow.parquet as pq
+
+    from textsieve.errors import InputError
+    from textsieve.registry import open_registry
+    from textsieve.scoring.cluster import score_on_cluster
+    from textsieve.scoring.local import Options
+
+    rows: list[dict[str, object]] = [{"text": r["text"]} for r in uci_rows()[:1000]]
+    lines = [json.dumps(r) for r in rows]
+    lines[4] = lines[904] = "{not json"
+    src = tmp_path / "in.jsonl"
+    src.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    local = tmp_path / "local.parquet"
+    _local(src, local, scoring_registry)
+    want = [e for e in pq.read_table(local).column("error").to_pylist() if e]
+    assert want == ["line 5 is not valid JSON", "line 905 is not valid JSON"]
+    out = tmp_path / "ds"
+    with open_registry(scoring_registry, create=False) as reg:
+        score_on_cluster(reg, MODEL, str(src), out, cluster=loopback_cluster.address, partition_bytes=40_000)
+    got = [e for e in _dataset(out).column("error").to_pylist() if e]  # type: ignore[attr-defined]
+    assert got[0] == want[0]
+    start = len("\n".join(lines[:904])) + 1  # where line 905 starts; its partition starts before
+    match = re.fullmatch(r"line (\d+) of partition (\d+) \(the lines from byte ([\d,]+)\) is not valid JSON", got[1])
+    assert match, got[1]
+    first = int(match[3].replace(",", ""))
+    assert first == 40_000 * int(match[2]) and first <= start
+    # The line number within the partition: its first line is the first that starts in its range.
+    assert int(match[1]) == (src.read_bytes()[first - 1 : start].count(b"\n"))
+
+    both = rows + rows
+    both[1208] = {"text": ""}  # in the fourth row group
+    pq_src = _parquet(tmp_path / "in.parquet", both, group=400)
+    want_msg = subprocess.run(
+        [sys.executable, "-m", "textsieve.cli", "score", str(pq_src), "--model", MODEL, "--out", "l.parquet",
+         "--registry", str(scoring_registry), "--strict", "--workers", "0"],
+        capture_output=True, text=True, cwd=tmp_path, env=child_env() | {"PYTHONPATH": str(ROOT)},
+    ).stderr.strip().removeprefix("textsieve: error: ")  # fmt: skip
+    assert want_msg.startswith("row 1209: ")
+    with open_registry(scoring_registry, create=False) as reg, pytest.raises(InputError) as caught:
+        score_on_cluster(reg, MODEL, str(pq_src), tmp_path / "ds2", cluster=loopback_cluster.address,
+                         options=Options(strict=True))  # fmt: skip
+    assert caught.value.message == want_msg

@@ -78,3 +78,30 @@ def test_score_refuses_a_retired_version_in_one_line_unless_retired_is_given(
     assert out.exists()
     with pytest.raises(StateError, match="is retired"):
         textsieve.score_file(retired_v1, MODEL, source, tmp_path / "o2.jsonl", version=1, stream=io.StringIO())
+
+
+@pytest.mark.parametrize(
+    ("extra", "expected_msg"),
+    [
+        # Both ran and exited 0 with the flag ignored; their help says "with --version", "with --cluster".
+        pytest.param(
+            ["--retired"], "--retired works only with --version; add --version or drop --retired", id="retired"
+        ),
+        pytest.param(
+            ["--partition-mb", "8"],
+            "--partition-mb works only with --cluster; add --cluster or drop --partition-mb",
+            id="partition-mb",
+        ),
+    ],
+)
+def test_a_flag_without_the_flag_it_works_with_is_refused(
+    extra: list[str], expected_msg: str, retired_v1: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    source = tmp_path / "in.jsonl"
+    source.write_text('{"text": "refund my fee"}\n', encoding="utf-8")
+    out = tmp_path / "out.jsonl"
+    argv = ["score", str(source), "--model", MODEL, "--out", str(out), "--workers", "0", "--registry", str(retired_v1)]
+    code = main([*argv, *extra])
+    _, err = capsys.readouterr()
+    assert code == 2 and err.strip().splitlines() == [f"textsieve: error: {expected_msg}"], err
+    assert not out.exists()

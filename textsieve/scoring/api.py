@@ -8,11 +8,14 @@ later as an AttributeError or TypeError from inside the run.
 
 from __future__ import annotations
 
+import ast
 import dataclasses
 import os
+import sys
 from collections.abc import Sequence
 from numbers import Integral, Real
 from pathlib import Path
+from types import FrameType
 from typing import TYPE_CHECKING, TextIO
 
 from textsieve.errors import InputError
@@ -50,6 +53,8 @@ def score_file(
         raise InputError(f"resume must be True or False, not {resume!r}")
     if not isinstance(retired, bool):
         raise InputError(f"retired must be True or False, not {retired!r}")
+    if opts.workers != 0:
+        _check_main_guard()
     reg, owned = _open(registry, blobs)
     try:
         return _score_file(
@@ -66,6 +71,71 @@ def score_file(
     finally:
         if owned:
             reg.close()
+
+
+GUARD = 'if __name__ == "__main__":'
+_WHY = (
+    "the worker processes re-import the script's main module (Python's multiprocessing does) and each would "
+    f"score again; put the call under {GUARD} (README: Python API)"
+)
+
+
+def _check_main_guard() -> None:
+    """Refuse a call that the worker processes would make again when they re-import the main script.
+
+    In a worker, the re-import runs the script as ``__mp_main__``: a call from its top level is refused
+    there (it used to start another run, "another 'textsieve score' is writing the same output", and the
+    first run ended with "a scoring worker process stopped"). In the process the user started, a call
+    from the script's top level outside the guard is refused before any worker starts, so the user
+    reads why rather than that a worker stopped."""
+    frame = sys._getframe(2)
+    while frame is not None:
+        if frame.f_code.co_name == "<module>":
+            name = frame.f_globals.get("__name__")
+            if name == "__mp_main__":
+                raise InputError(
+                    f"score_file was called while a worker process re-imported {frame.f_code.co_filename}: {_WHY}"
+                )
+            if name == "__main__" and _reimported(frame) and not _guarded(frame.f_code.co_filename, frame.f_lineno):
+                raise InputError(
+                    f"score_file was called at the top level of {frame.f_code.co_filename} (line {frame.f_lineno}), "
+                    f"outside {GUARD}: {_WHY}"
+                )
+        frame = frame.f_back  # type: ignore[assignment]
+
+
+def _reimported(frame: FrameType) -> bool:
+    """Whether ``frame`` runs the main module that multiprocessing's workers import again: a script or a
+    ``python -m`` module, not a package's ``__main__`` nor an interactive session (multiprocessing/spawn.py,
+    get_preparation_data and _fixup_main_from_name)."""
+    main = sys.modules.get("__main__")
+    if main is None or frame.f_globals is not vars(main) or getattr(main, "__file__", None) is None:
+        return False
+    spec_name = getattr(getattr(main, "__spec__", None), "name", None) or ""
+    return not (spec_name == "__main__" or spec_name.endswith(".__main__"))
+
+
+def _guarded(filename: str, line: int) -> bool:
+    """Whether ``line`` of the script ``filename`` is inside an ``if __name__ == "__main__":`` block (True when
+    the script's source cannot be read: only a call known to be outside it is refused)."""
+    try:
+        tree = ast.parse(Path(filename).read_bytes(), filename)
+    except (OSError, SyntaxError, ValueError):
+        return True
+    for node in tree.body:
+        if isinstance(node, ast.If) and _is_main_test(node.test) and node.body:
+            if node.body[0].lineno <= line <= (node.body[-1].end_lineno or node.body[-1].lineno):
+                return True
+    return False
+
+
+def _is_main_test(test: ast.expr) -> bool:
+    if not (isinstance(test, ast.Compare) and len(test.ops) == 1 and isinstance(test.ops[0], ast.Eq)):
+        return False
+    sides = [test.left, test.comparators[0]]
+    names = [s for s in sides if isinstance(s, ast.Name) and s.id == "__name__"]
+    mains = [s for s in sides if isinstance(s, ast.Constant) and s.value == "__main__"]
+    return len(names) == 1 and len(mains) == 1
 
 
 def _path(name: str, value: object) -> Path:

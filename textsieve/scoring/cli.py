@@ -15,6 +15,7 @@ from textsieve.errors import InputError, Terminated
 from textsieve.registry.cli import add_location_args
 
 FORMAT_CHOICES = ("jsonl", "csv", "tsv", "parquet")
+PARTITION_MB = 64
 
 
 def _positive(text: str) -> int:
@@ -62,7 +63,8 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p.add_argument(
         "--retired",
         action="store_true",
-        help="allow --version to name a retired version (refused otherwise, as the HTTP API refuses to pin one)",
+        help="with --version: allow it to name a retired version (refused otherwise, as the HTTP API refuses to pin "
+        "one)",
     )
     p.add_argument(
         "--out",
@@ -88,8 +90,8 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p.add_argument(
         "--partition-mb",
         type=_positive,
-        default=64,
-        help="with --cluster: MiB of JSONL per partition (Parquet partitions are its row groups)",
+        help=f"with --cluster: MiB of JSONL per partition (Parquet partitions are its row groups; default: "
+        f"{PARTITION_MB})",
     )
     p.add_argument(
         "--progress-every",
@@ -148,7 +150,18 @@ def cli_score(args: argparse.Namespace) -> int:
     return code
 
 
+def _check_dependent_flags(args: argparse.Namespace) -> None:
+    """A flag that only works with another one, given without it, was ignored (exit 0): refused."""
+    for given, flag, needed in (
+        (args.retired, "--retired", "--version"),
+        (args.partition_mb is not None, "--partition-mb", "--cluster"),
+    ):
+        if given and getattr(args, needed.removeprefix("--")) is None:
+            raise InputError(f"{flag} works only with {needed}; add {needed} or drop {flag}")
+
+
 def _score(args: argparse.Namespace) -> int:
+    _check_dependent_flags(args)
     if not args.cluster and args.workers != 0:
         # The workers' fork server imports NumPy, onnxruntime and the runtime on the other core while
         # this process imports the registry and checks the bundle (~0.3 s of a 100,000-text run).
@@ -195,7 +208,7 @@ def _score(args: argparse.Namespace) -> int:
                 options=options,
                 resume=args.resume,
                 retired=args.retired,
-                partition_bytes=args.partition_mb << 20,
+                partition_bytes=(args.partition_mb or PARTITION_MB) << 20,
             )
         else:
             from textsieve.scoring.local import score_file

@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import contextlib
 import hashlib
+import itertools
 import json
 import os
 import shutil
@@ -34,7 +35,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
-from textsieve.errors import InputError, IntegrityError, UnavailableError
+from textsieve.errors import InputError, IntegrityError, TextsieveError, UnavailableError
 from textsieve.files import atomic_write_text, check_writable, fsync_dir
 from textsieve.labelled import cr_line_ends, cr_separated
 from textsieve.scoring import formats
@@ -66,6 +67,19 @@ class Partition:
     start: int = 0
     end: int = 0
     row_groups: tuple[int, ...] = ()
+    first_row: int = 0  # a Parquet partition's rows before it (its row groups' counts, in the file's footer)
+
+    @property
+    def numbered_as_the_file(self) -> bool:
+        """Whether its rows and lines are numbered as the file's, as local scoring numbers them: a JSONL
+        partition past the first does not know how many lines come before its byte range (counting them
+        would read the file up to it again on every worker)."""
+        return self.fmt == "parquet" or self.start == 0
+
+    @property
+    def where(self) -> str:
+        """How a message names a JSONL partition past the first (its line numbers count from its start)."""
+        return f"partition {self.index} (the lines from byte {self.start:,})"
 
 
 @dataclass(frozen=True)
@@ -182,27 +196,33 @@ def read_partition(part: Partition) -> list[Any]:
                 row = formats.json_loads(raw)
             except ValueError:
                 if cr_separated(raw):  # as the local reader: a file whose lines end in \r alone
-                    where = f"line {number}" if part.start == 0 else f"a line of partition {part.index}"
-                    raise cr_line_ends(f"{part.url}: {where}") from None
-                rows.append(Unreadable(f"a line of partition {part.index} is not valid JSON"))
+                    raise cr_line_ends(f"{part.url}: {_line(part, number)}") from None
+                rows.append(Unreadable(f"{_line(part, number)} is not valid JSON"))
                 continue
             if formats.lone_surrogate(row, raw):
-                row = Unreadable(f"a line of partition {part.index} {formats.LONE_SURROGATE}")
+                row = Unreadable(f"{_line(part, number)} {formats.LONE_SURROGATE}")
             rows.append(row)
     return rows
+
+
+def _line(part: Partition, number: int) -> str:
+    """Line ``number`` of the partition, named as local scoring names it where the partition knows it."""
+    return f"line {number}" if part.numbered_as_the_file else f"line {number} of {part.where}"
 
 
 def score_partition(payload: Payload, part: Partition, task: Task) -> pa.Table:
     """Runs on a worker: read, score and lay out one partition."""
     rows = read_partition(part)
     try:
-        check_fields(rows, task.fields, first_row=0, sampled=task.sampled)
-        chunk = split(rows, task.text_field, strict=task.strict, first_row=0)
+        check_fields(rows, task.fields, first_row=part.first_row, sampled=task.sampled)
+        chunk = split(rows, task.text_field, strict=task.strict, first_row=part.first_row)
+        scored = score_texts(_predictor(payload), chunk.texts, task.spans)
+        out = output_rows(rows, chunk, scored, task.layout)
+        return formats.to_table(out, task.schema, part.first_row)
     except InputError as exc:
-        raise InputError(f"partition {part.index}: {exc.message}") from None
-    scored = score_texts(_predictor(payload), chunk.texts, task.spans)
-    out = output_rows(rows, chunk, scored, task.layout)
-    return formats.to_table(out, task.schema, 0)
+        if part.numbered_as_the_file:
+            raise
+        raise InputError(f"{part.where}: {exc.message}") from None
 
 
 # -- on the client ------------------------------------------------------------------------------
@@ -229,11 +249,12 @@ def partitions(url: str, fmt: str, partition_bytes: int) -> tuple[list[Partition
                 pf = pq.ParquetFile(source)
             except Exception as exc:  # pyarrow raises several kinds for a file that is not Parquet
                 raise InputError(f"{url}: not a Parquet file ({exc})") from exc
-            groups = pf.metadata.num_row_groups
+            counts = [pf.metadata.row_group(i).num_rows for i in range(pf.metadata.num_row_groups)]
             schema = pf.schema_arrow
             pf.close()
         formats.check_unique(url, schema.names, "the schema")
-        return [Partition(i, url, fmt, row_groups=(i,)) for i in range(groups)], schema
+        firsts = [0, *itertools.accumulate(counts)]
+        return [Partition(i, url, fmt, row_groups=(i,), first_row=firsts[i]) for i in range(len(counts))], schema
     size = int(info["size"])
     parts = [
         Partition(i, url, fmt, start=lo, end=min(lo + partition_bytes, size))
@@ -362,6 +383,10 @@ def score_on_cluster(
             "field may hold line breaks)"
         )
     formats._pyarrow()
+    # The workers open INPUT themselves, from their own working folders: a relative path is made
+    # absolute here (it named '/tmp/a/dask/big.parquet' on a worker started in /tmp/a/dask).
+    source = _absolute(source)
+    output = Path(os.path.abspath(output))
     _check_output(output)
     parts, input_schema = partitions(source, fmt, partition_bytes)
     resolved = resolve(registry, model, version, retired=retired)
@@ -376,6 +401,29 @@ def score_on_cluster(
     schema = formats.output_schema(layout, renamed_sample, input_schema)
     fields = frozenset(layout.kept) if input_schema is None and opts.keep is None else None
     task = Task(layout, schema, opts.text_field, opts.spans, opts.strict, fields, len(sample))
+    # Before anything is written: a scheduler that cannot be reached left an empty unfinished run.
+    client = _connect(cluster)
+    try:
+        return _score(client, cluster, resolved, parts, layout, task, source, output, opts, resume, err, started)
+    finally:
+        _close(client)
+
+
+def _score(
+    client: Any,
+    cluster: str,
+    resolved: Resolved,
+    parts: list[Partition],
+    layout: Layout,
+    task: Task,
+    source: str,
+    output: Path,
+    opts: Options,
+    resume: bool,
+    err: TextIO,
+    started: float,
+) -> Summary:
+    """The run on a connected client: the unfinished run's folder, the partitions, OUTPUT."""
     work = work_dir(output)
     dataset = work / "dataset"
     expected = {
@@ -395,7 +443,6 @@ def score_on_cluster(
     done = {p.index for p in parts if (dataset / _part_name(p.index)).is_file()}
     counts = _count_existing(dataset, done, err)
     todo = [p for p in parts if p.index not in done]
-    client = _connect(cluster)
     progress = Progress(
         f"scoring {output.name} on {cluster}",
         fraction=lambda: len(done) / len(parts) if parts else 1.0,
@@ -403,15 +450,30 @@ def score_on_cluster(
         every=opts.progress_every,
         start_count=counts[0],
     )
-    rows, errors = counts
+    tally = _Tally(*counts)
     try:
-        rows, errors = _run(client, _payload(resolved), todo, task, dataset, done, progress, rows, errors)
+        _run(client, _payload(resolved), todo, task, dataset, done, progress, tally)
     except InputError:
         shutil.rmtree(work, ignore_errors=True)
         raise
+    except TextsieveError as exc:  # a failure on a worker or of the cluster: the parts written are kept
+        if not done:
+            shutil.rmtree(work, ignore_errors=True)
+            raise
+        raise type(exc)(
+            f"{exc.message}; the {len(done):,} of {len(parts):,} partitions written are kept in {work}: run the same "
+            "command with --resume to continue"
+        ) from exc
+    except KeyboardInterrupt as exc:
+        # The CLI's one line for Ctrl-C or SIGTERM carries it (textsieve/cli.py _stopped), as a local run's.
+        exc.add_note(
+            f"stopped after {len(done):,} of {len(parts):,} partitions ({tally.rows:,} rows) were written; they are "
+            f"kept in {work}; {output} was not written; run the same command with --resume to continue"
+        )
+        raise
     finally:
         progress.close()
-        client.close()
+    rows, errors = tally.rows, tally.errors
     meta = metadata(resolved, layout, opts, rows, errors, source)
     meta["partitions"] = len(parts)
     atomic_write_text(dataset / SIDECAR, json.dumps(meta, indent=2, ensure_ascii=False) + "\n")
@@ -428,6 +490,51 @@ def score_on_cluster(
         time.monotonic() - started,
         counts[0],
     )
+
+
+def _absolute(source: str) -> str:
+    """``source`` as the workers must open it: a local path made absolute, a URL as given."""
+    if "://" in source:
+        return source
+    return os.path.abspath(source)
+
+
+def _close(client: Any) -> None:
+    """Close the client on every path, so that its ``__del__`` has nothing left to do at exit (a traceback
+    ended by "Exception ignored in Client.__del__ … TimeoutError" otherwise)."""
+    with contextlib.suppress(Exception):
+        client.close(timeout=10)
+
+
+@dataclass
+class _Tally:
+    """Rows and error rows written so far: what an interrupted run reports."""
+
+    rows: int
+    errors: int
+
+
+# What a worker's OSError says, briefly (pyarrow's carries no strerror and quotes the path again).
+_UNREADABLE: tuple[tuple[type[OSError], str], ...] = (
+    (FileNotFoundError, "no such file"),
+    (PermissionError, "permission denied"),
+    (IsADirectoryError, "a folder"),
+    (NotADirectoryError, "a part of the path is not a folder"),
+)
+
+
+def _worker_error(exc: BaseException, part: Partition) -> BaseException:
+    """What a partition's failure on a worker becomes here: an error of our tree, one line at the CLI."""
+    if isinstance(exc, TextsieveError):  # bad input found on the worker (a row, a column), or a bundle check
+        return exc
+    why = next((text for kind, text in _UNREADABLE if isinstance(exc, kind)), None)
+    if why is not None:
+        return InputError(
+            f"{part.url}: a Dask worker cannot read it ({why}); the workers must see the same path as this "
+            "process (a shared filesystem) or read a URL (s3://, gs://, http://, …)"
+        )
+    kind = type(exc).__name__
+    return UnavailableError(f"partition {part.index} of {part.url} failed on a Dask worker: {kind}: {exc}")
 
 
 def _part_name(index: int) -> str:
@@ -469,13 +576,12 @@ def _run(
     dataset: Path,
     done: set[int],
     progress: Progress,
-    rows: int,
-    errors: int,
-) -> tuple[int, int]:
+    tally: _Tally,
+) -> None:
     from distributed import as_completed
 
     if not todo:
-        return rows, errors
+        return
     shipped = client.scatter(payload, broadcast=True, hash=False)
     run = uuid.uuid4().hex[:8]
     futures = {
@@ -484,20 +590,26 @@ def _run(
     }
     try:
         # distributed's as_completed has no annotations.
-        done_iter = as_completed(futures, with_results=True, loop=client.loop)  # type: ignore[no-untyped-call]
-        for future, table in done_iter:
+        done_iter = as_completed(  # type: ignore[no-untyped-call]
+            futures, with_results=True, raise_errors=False, loop=client.loop
+        )
+        for future, result in done_iter:
             part = futures[future]
-            formats.write_part(dataset / _part_name(part.index), table)
+            if future.status == "error":  # distributed hands the error as (type, exception, traceback)
+                raise _worker_error(result[1], part) from None
+            if isinstance(result, BaseException):  # cancelled (the scheduler gave it up)
+                raise _worker_error(result, part) from None
+            formats.write_part(dataset / _part_name(part.index), result)
             future.release()
             done.add(part.index)
-            rows += table.num_rows
-            errors += table.num_rows - table.column("error").null_count
-            progress.update(rows)
+            tally.rows += result.num_rows
+            tally.errors += result.num_rows - result.column("error").null_count
+            progress.update(tally.rows)
     except BaseException:
-        client.cancel(list(futures))
+        with contextlib.suppress(Exception):
+            client.cancel(list(futures))
         raise
-    progress.update(rows, force=True)
-    return rows, errors
+    progress.update(tally.rows, force=True)
 
 
 def _swap_in(dataset: Path, output: Path) -> None:
