@@ -7,6 +7,8 @@ import csv
 import json
 import os
 import signal
+import socket
+import stat
 import subprocess
 import sys
 from pathlib import Path
@@ -239,6 +241,28 @@ BAD_INPUT = [
         ["in.jsonl", "--out", "outdir"], 2, "outdir: is a folder; --out names the file", id="folder-as-output"
     ),
     pytest.param(["in.jsonl", "--out", "o.txt"], 2, "cannot tell the format from the name", id="unknown-format"),
+    # An atomic write renames a new regular file over OUTPUT: /dev/null became a file (as root), and a
+    # FIFO or a socket was replaced the same way, its reader never getting a byte.
+    pytest.param(
+        ["in.jsonl", "--out", "pipe.jsonl"],
+        2,
+        "--out pipe.jsonl: is a FIFO (named pipe), which textsieve does not write over; "
+        "name a regular file's path or a new path",
+        id="output-a-fifo",
+    ),
+    pytest.param(["in.jsonl", "--out", "sock.csv"], 2, "--out sock.csv: is a socket", id="output-a-socket"),
+    pytest.param(
+        ["in.jsonl", "--out", "m.jsonl"],
+        2,
+        "--out m.jsonl: its metadata goes to m.jsonl.meta.json, which is a FIFO (named pipe)",
+        id="output-metadata-a-fifo",
+    ),
+    pytest.param(
+        ["in.jsonl", "--out", "pipe.jsonl", "--cluster", "tcp://127.0.0.1:9"],
+        2,
+        "--out pipe.jsonl: is a FIFO (named pipe), which textsieve does not write over; name a folder",
+        id="cluster-output-a-fifo",
+    ),
     # /sys takes no new file or folder even from root; this was a PermissionError traceback.
     pytest.param(
         ["in.jsonl", "--out", "/sys/o.jsonl"],
@@ -340,6 +364,10 @@ def test_bad_input_is_one_line_and_leaves_nothing(
         pa.table({"text": ["the chain", "refund"], "blob": [b"caf\xc3\xa9", b"\xff\x00"]}), work / "blob.parquet"
     )
     (work / "outdir").mkdir()
+    os.mkfifo(work / "pipe.jsonl")
+    os.mkfifo(work / "m.jsonl.meta.json")
+    with socket.socket(socket.AF_UNIX) as sock:
+        sock.bind(str(work / "sock.csv"))
     if "tamper" in argv:
         argv.remove("tamper")
         _tamper(registry)
@@ -355,7 +383,24 @@ def test_bad_input_is_one_line_and_leaves_nothing(
     assert len(lines) == 1 and lines[0].startswith("textsieve: error: ") and expected_msg in lines[0], out.stderr
     assert sorted(p.name for p in work.iterdir()) == before and not any((work / "outdir").iterdir())
     assert (work / "in.jsonl").read_text(encoding="utf-8").count("\n") == 2  # the input is untouched
+    assert stat.S_ISFIFO((work / "pipe.jsonl").lstat().st_mode) and stat.S_ISSOCK((work / "sock.csv").lstat().st_mode)
     assert json.loads((work / "o.jsonl.meta.json").read_text(encoding="utf-8")) == {"text": "the chain is broken"}
+
+
+def test_a_link_as_output_is_replaced_by_the_file_and_its_target_left_alone(
+    scoring_registry: Path, tmp_path: Path
+) -> None:
+    """README "Scoring whole files": OUTPUT is renamed into place, so a symbolic link there becomes the
+    file; what it pointed to (here a FIFO, which a write through the link would have blocked on) is not
+    touched."""
+    src = write_jsonl(tmp_path / "in.jsonl", uci_rows()[:20])
+    fifo = tmp_path / "pipe"
+    os.mkfifo(fifo)
+    out = tmp_path / "out.jsonl"
+    out.symlink_to(fifo)
+    assert score(src, "--model", MODEL, "--out", out, "--registry", scoring_registry, "--workers", 0) == 0
+    assert not out.is_symlink() and len(read_jsonl(out)) == 20
+    assert stat.S_ISFIFO(fifo.lstat().st_mode)
 
 
 # -- interrupted runs ---------------------------------------------------------------------------------

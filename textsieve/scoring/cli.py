@@ -156,6 +156,7 @@ def _score(args: argparse.Namespace) -> int:
 
         fork_server(PRELOAD)
     from textsieve.environment import registry_location
+    from textsieve.files import check_out_file
     from textsieve.registry.api import open_registry
     from textsieve.scoring.columns import parse_keep
     from textsieve.scoring.local import Options
@@ -185,6 +186,7 @@ def _score(args: argparse.Namespace) -> int:
 
             if args.output_format not in (None, "parquet"):
                 raise InputError("--cluster writes a Parquet dataset; drop --output-format or make it parquet")
+            check_out_file(Path(args.out), allowed="a folder for the Parquet dataset (a new one, or one it wrote)")
             summary = score_on_cluster(
                 reg,
                 args.model,

@@ -29,7 +29,7 @@ from typing import TYPE_CHECKING, Any, TextIO
 
 from textsieve import __version__
 from textsieve.errors import InputError, UnavailableError
-from textsieve.files import atomic_write_text, check_writable, fsync_dir
+from textsieve.files import atomic_write_text, check_out_file, check_writable, fsync_dir, special_file
 from textsieve.scoring import formats
 from textsieve.scoring.columns import Layout, plan
 from textsieve.scoring.model import Resolved, resolve
@@ -115,6 +115,7 @@ def sidecar(output: Path) -> Path:
 def check_output(output: Path) -> None:
     if output.is_dir():
         raise InputError(f"{output}: is a folder; --out names the file to write (.jsonl, .csv, .tsv or .parquet)")
+    check_out_file(output)
     if not output.parent.is_dir():
         raise InputError(f"{output.parent}: no such folder for --out; create it first")
     check_writable(output.parent, output)
@@ -323,6 +324,12 @@ def score_file(
         raise InputError(
             f"{output}: its metadata goes to {meta.name}, which is the input file; "
             "name the input or the output differently"
+        )
+    what = special_file(meta) if out_fmt != "parquet" else None
+    if what is not None:
+        raise InputError(
+            f"--out {output}: its metadata goes to {meta}, which is {what}, which textsieve does not write over; "
+            "remove it or name another output"
         )
     if opts.chunk_rows < 1:
         raise InputError(f"--chunk-rows must be 1 or more, not {opts.chunk_rows}")
