@@ -182,6 +182,53 @@ def test_rows_without_a_text_get_an_error_and_are_counted(
     assert sorted(p.name for p in tmp_path.iterdir()) == ["in.jsonl", "out.jsonl", "out.jsonl.meta.json"]
 
 
+NUL_TEXTS = ["refund please", "refund\x00 now", "the chain is broken"]
+
+
+def _nul_input(folder: Path, fmt: str) -> Path:
+    """NUL_TEXTS as each format carries a NUL: JSON's \\u0000 escape, a raw NUL byte in a CSV or TSV cell,
+    a Parquet string holding \\x00."""
+    path = folder / f"in.{fmt}"
+    if fmt == "jsonl":
+        write_jsonl(path, [{"text": t} for t in NUL_TEXTS])
+    elif fmt == "parquet":
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        pq.write_table(pa.table({"text": NUL_TEXTS}), path)
+    else:
+        path.write_bytes(("text\n" + "".join(f"{t}\n" for t in NUL_TEXTS)).encode("utf-8"))
+    return path
+
+
+@pytest.mark.parametrize("fmt", ["jsonl", "csv", "tsv", "parquet"])
+def test_a_text_holding_a_nul_is_an_error_row_in_score_frames_words_in_every_format(
+    fmt: str, scoring_registry: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """The HTTP API, predict and score_frame refuse a NUL; file scoring labelled it, error null."""
+    import pandas as pd
+
+    import textsieve
+
+    src = _nul_input(tmp_path, fmt)
+    out = tmp_path / "out.jsonl"
+    common = ["--model", MODEL, "--registry", scoring_registry]
+    assert score(src, "--out", out, *common, "--workers", 0) == 0
+    rows = read_jsonl(out)
+    frame = textsieve.load_model(scoring_registry, MODEL).score_frame(pd.DataFrame({"text": NUL_TEXTS}))
+    assert [r["text"] for r in rows] == NUL_TEXTS
+    assert [r["error"] for r in rows] == [e if isinstance(e, str) else None for e in frame["error"].tolist()]
+    assert rows[1]["error"] == "text field 'text' contains a NUL character (U+0000) at character 6; remove it"
+    assert rows[1]["label"] is None and rows[0]["label"] is not None and rows[2]["label"] is not None
+    assert "1 row(s) had no text to score" in capsys.readouterr().out
+
+    assert score(src, "--out", tmp_path / "strict.jsonl", *common, "--strict") == 2
+    assert capsys.readouterr().err.strip().splitlines() == [
+        "textsieve: error: row 2: text field 'text' contains a NUL character (U+0000) at character 6; remove it "
+        "(--strict stops at the first such row)"
+    ]
+
+
 def test_an_input_file_name_that_is_not_utf8_is_recorded_with_its_bytes_escaped(
     scoring_registry: Path, tmp_path: Path
 ) -> None:
