@@ -229,6 +229,28 @@ def test_a_text_holding_a_nul_is_an_error_row_in_score_frames_words_in_every_for
     ]
 
 
+@pytest.mark.parametrize("fmt", ["csv", "tsv"])
+def test_a_field_longer_than_the_csv_modules_default_limit_is_scored_as_in_jsonl(
+    fmt: str, scoring_registry: Path, tmp_path: Path
+) -> None:
+    """A valid file with a text of 200,000 characters was "not CSV ... (field larger than field limit
+    (131072)); ... quoted whole" (Python's csv.field_size_limit default); in JSONL it was scored."""
+    long_text = " ".join(["the chain is broken, refund please"] * 5800)
+    assert len(long_text) > 131_072 * 1.5
+    texts = ["refund please", long_text, "the dock is broken"]
+    jsonl = write_jsonl(tmp_path / "in.jsonl", [{"text": t} for t in texts])
+    delimited = tmp_path / f"in.{fmt}"
+    with open(delimited, "w", encoding="utf-8", newline="") as f:
+        writer = csv.writer(f, delimiter="," if fmt == "csv" else "\t")
+        writer.writerows([["text"], *([t] for t in texts)])
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 0]
+    assert score(jsonl, "--out", tmp_path / "from-jsonl.jsonl", *common) == 0
+    assert score(delimited, "--out", tmp_path / "from-delimited.jsonl", *common) == 0
+    want = read_jsonl(tmp_path / "from-jsonl.jsonl")
+    got = read_jsonl(tmp_path / "from-delimited.jsonl")
+    assert got == want and got[1]["text"] == long_text and got[1]["error"] is None
+
+
 def test_an_input_file_name_that_is_not_utf8_is_recorded_with_its_bytes_escaped(
     scoring_registry: Path, tmp_path: Path
 ) -> None:

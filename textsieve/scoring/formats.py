@@ -21,7 +21,7 @@ from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError
 from textsieve.files import FILE_MODE, atomic_write_bytes
-from textsieve.labelled import cr_line_ends, cr_separated
+from textsieve.labelled import cr_line_ends, cr_separated, csv_reader
 from textsieve.scoring.columns import ERROR, LABEL, SPANS, Layout, probability_column
 from textsieve.scoring.rows import Misshapen, Row, Unreadable
 
@@ -190,7 +190,7 @@ class CsvReader(_ByteCounted):
         self._text = self._decoded()
         # strict: a quote that does not close where RFC 4180 says it must is an error, not a field
         # that silently runs on through the rows after it.
-        self._reader = csv.reader(self._text, delimiter=self.delimiter, strict=True)
+        self._reader = csv_reader(self._text, self.delimiter)
         try:
             # Blank lines before the header (an export's empty first line) are skipped, as
             # `textsieve train` skips them; the header was read as no columns at all.
