@@ -590,14 +590,16 @@ DAMAGE = [
         "no longer",
         id="part-replaced",
     ),
-    pytest.param("jsonl", lambda p: (p / "state.json").write_text("[1]"), "nothing to resume", id="state-a-list"),
+    # These said "nothing to resume for .out.jsonl.score-partial", the words for no run at all.
+    pytest.param("jsonl", lambda p: (p / "state.json").write_text("[1]"), "is not a state this", id="state-a-list"),
+    pytest.param("jsonl", lambda p: (p / "state.json").write_text('{"rows": 2'), "state.json is not JSON", id="cut"),
     pytest.param(
-        "jsonl", lambda p: _edit_state(p, lambda s: {**s, "rows": "200"}), "nothing to resume", id="state-rows-a-string"
+        "jsonl", lambda p: _edit_state(p, lambda s: {**s, "rows": "200"}), "is damaged", id="state-rows-a-string"
     ),
     pytest.param(
         "jsonl",
         lambda p: _edit_state(p, lambda s: {k: v for k, v in s.items() if k != "layout"}),
-        "nothing to resume",
+        "is damaged",
         id="state-without-layout",
     ),
 ]
@@ -626,7 +628,10 @@ def test_resume_after_the_partial_folder_was_damaged_starts_over(
     damage(partial)
     capsys.readouterr()
     assert score(src, "--out", out, *common, "--resume") == 0
-    assert notice in capsys.readouterr().err
+    err = capsys.readouterr().err
+    assert notice in err and f"run for {out}" in err and "; starting from the first row" in err, err
+    if "state" in notice or "damaged" in notice:
+        assert f"the saved state of the unfinished run for {out} is damaged" in err, err
     if out_format == "parquet":
         import pyarrow.parquet as pq
 
@@ -635,6 +640,102 @@ def test_resume_after_the_partial_folder_was_damaged_starts_over(
     else:
         assert out.read_bytes() == reference.read_bytes()
     assert not partial.exists()
+
+
+def test_the_interrupt_line_says_the_rows_resume_keeps(
+    scoring_registry: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """An interrupt while a chunk was being counted (its rows added in memory, state.json not yet
+    replaced) said "stopped after 163,840 rows" where --resume kept 155,648."""
+    from textsieve.files import atomic_write_text
+    from textsieve.scoring import local
+
+    src = write_jsonl(tmp_path / "in.jsonl", uci_rows()[:500])
+    out = tmp_path / "out.jsonl"
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 0, "--chunk-rows", 100]
+    saves = {"n": 0}
+
+    def save(run: Any) -> None:  # the start, then each chunk: the third is the second chunk
+        saves["n"] += 1
+        if saves["n"] == 3:
+            raise KeyboardInterrupt
+        atomic_write_text(run.state_path, json.dumps(run.state))
+        run.saved_rows = run.state["rows"]
+
+    monkeypatch.setattr(local._Run, "save", save)
+    assert score(src, "--out", out, *common) == 130
+    monkeypatch.undo()
+    kept = json.loads((tmp_path / ".out.jsonl.score-partial" / "state.json").read_text(encoding="utf-8"))["rows"]
+    assert kept == 100
+    assert "stopped after 100 rows" in capsys.readouterr().err
+    assert score(src, "--out", out, *common, "--resume") == 0
+    assert "scored 500 rows" in (line := capsys.readouterr().out) and "100 of them from the interrupted run" in line
+
+
+@pytest.mark.parametrize(
+    ("again", "expected_msg"),
+    [
+        pytest.param(["--spans", "2"], "used other options (--spans 0, now 2); run with the same options", id="spans"),
+        pytest.param(
+            ["--keep", "id", "--strict"],
+            "used other options (every column (no --keep), now --keep id; no --strict, now --strict)",
+            id="keep-and-strict",
+        ),
+        pytest.param(["--chunk-rows", "50"], "used other options (--chunk-rows 100, now 50)", id="chunk-rows"),
+        pytest.param(["--output-format", "csv"], "wrote jsonl (now csv); pass --output-format jsonl", id="format"),
+    ],
+)
+def test_resume_refusals_name_what_differs_as_the_command_line_spells_it(
+    again: list[str],
+    expected_msg: str,
+    scoring_registry: Path,
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """They printed both runs' options as Python dicts: "used another options ({'text_field': ...}, now {...})"."""
+    src = write_jsonl(tmp_path / "in.jsonl", uci_rows()[:500])
+    out = tmp_path / "out.jsonl"
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 0, "--chunk-rows", 100]
+    _interrupt_at_third_chunk(monkeypatch, "jsonl")
+    assert score(src, "--out", out, *common) == 130
+    monkeypatch.undo()
+    capsys.readouterr()
+    assert score(src, "--out", out, *common, *again, "--resume") == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and f"--resume: the unfinished run for {out} {expected_msg}" in err[0], err
+    assert "{" not in err[0] and "run without --resume to start over" in err[0]
+
+
+def test_resume_after_a_promotion_says_how_to_continue_with_the_version_it_used(
+    tiny_bundles: dict[str, Path], tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """The interrupt line says "run the same command with --resume"; after a promotion that pinned the
+    new live version and was refused: "used another version (1, now 2)"."""
+    from tests.helpers.service import make_registry
+    from textsieve.registry import open_registry
+
+    registry = make_registry(tmp_path / "registry", tiny_bundles, live=1)
+    src = write_jsonl(tmp_path / "in.jsonl", uci_rows()[:500])
+    out = tmp_path / "out.jsonl"
+    common = ["--model", MODEL, "--registry", registry, "--workers", 0, "--chunk-rows", 100]
+    reference = tmp_path / "reference.jsonl"
+    assert score(src, "--out", reference, *common) == 0
+    _interrupt_at_third_chunk(monkeypatch, "jsonl")
+    assert score(src, "--out", out, *common) == 130
+    monkeypatch.undo()
+    with open_registry(registry) as reg:
+        reg.promote(MODEL, 2, "live", reason="v2 replaces v1", force=True)
+    capsys.readouterr()
+    assert score(src, "--out", out, *common, "--resume") == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err == [
+        f"textsieve: error: --resume: the unfinished run for {out} used version 1 (now 2); continue it with "
+        "--version 1 --retired --resume, or run without --resume to start over"
+    ]
+    assert score(src, "--out", out, *common, "--version", "1", "--retired", "--resume") == 0
+    assert "200 of them from the interrupted run" in capsys.readouterr().out
+    assert out.read_bytes() == reference.read_bytes()
 
 
 @pytest.mark.parametrize(

@@ -146,6 +146,9 @@ class _Run:
         self.work = work
         self.out_fmt = out_fmt
         self.state: dict[str, Any] = {}
+        # The rows state.json counts: what --resume keeps. The state in memory runs ahead of it while
+        # a chunk is being counted (an interrupt between the two said one chunk more than was kept).
+        self.saved_rows = 0
 
     @property
     def state_path(self) -> Path:
@@ -155,14 +158,16 @@ class _Run:
     def parts(self) -> Path:
         return self.work / "parts"
 
-    def load(self) -> dict[str, Any] | None:
-        """The saved state, or None when there is none this version can continue (missing, cut
-        short, from another state format, or not the shape it writes)."""
+    def load(self) -> dict[str, Any] | str | None:
+        """The saved state; None when there is none; or why this version cannot continue it (cut
+        short, not JSON, from another state format, or not the shape it writes)."""
         try:
             data = json.loads(self.state_path.read_text(encoding="utf-8"))
-        except (FileNotFoundError, ValueError):
+        except FileNotFoundError:
             return None
-        return data if _well_formed(data) else None
+        except (ValueError, OSError):
+            return "is not JSON"
+        return data if _well_formed(data) else "is not a state this version wrote"
 
     def damage(self, state: dict[str, Any]) -> str | None:
         """Why the output the state counts is no longer on disk as it was written, or None."""
@@ -180,6 +185,7 @@ class _Run:
 
     def save(self) -> None:
         atomic_write_text(self.state_path, json.dumps(self.state, indent=1) + "\n")
+        self.saved_rows = int(self.state["rows"])
 
     def part(self, index: int) -> Path:
         return self.parts / f"{index:06d}.parquet"
@@ -204,26 +210,93 @@ def _well_formed(state: object) -> bool:
     )
 
 
-def _resume_state(run: _Run, expected: dict[str, Any], out: TextIO) -> dict[str, Any] | None:
+def _resume_state(
+    run: _Run, expected: dict[str, Any], output: Path, registry: Registry, out: TextIO
+) -> dict[str, Any] | None:
     old = run.load()
     if old is None:
-        print(f"textsieve: nothing to resume for {run.work.name}; starting from the first row", file=out)
+        print(f"textsieve: nothing to resume for {output}; starting from the first row", file=out)
+        return None
+    if isinstance(old, str):
+        print(
+            f"textsieve: the saved state of the unfinished run for {output} is damaged ({run.work.name}/state.json "
+            f"{old}); starting from the first row",
+            file=out,
+        )
         return None
     for key in ("input", "options", "output_format", "model", "version", "bundle_sha256"):
         if old.get(key) != expected[key]:
-            raise InputError(
-                f"--resume: the unfinished run in {run.work} used another {key.replace('_', ' ')} "
-                f"({old.get(key)!r}, now {expected[key]!r}); run without --resume to start over"
-            )
+            raise InputError(f"--resume: the unfinished run for {output} {_differs(key, old, expected, registry)}")
     why = run.damage(old)
     if why is not None:
         # Appending to it would splice garbage, or a file padded with NUL bytes, into OUTPUT.
         print(
-            f"textsieve: cannot continue the unfinished run in {run.work.name}: {why}; starting from the first row",
+            f"textsieve: cannot continue the unfinished run for {output} ({run.work.name}: {why}); "
+            "starting from the first row",
             file=out,
         )
         return None
     return old
+
+
+# Options.fixed()'s keys as the command line spells them.
+_FLAGS = {
+    "text_field": "--text-field",
+    "keep": "--keep",
+    "spans": "--spans",
+    "strict": "--strict",
+    "chunk_rows": "--chunk-rows",
+}
+START_OVER = "run without --resume to start over"
+
+
+def _shown(key: str, value: object, *, again: bool = False) -> str:
+    """An option as it is typed (``--spans 3``; ``again``: its value alone, ``3``, after the flag was
+    named), ``--keep id,body``, ``--keep ''``, every column, ``--strict`` or not."""
+    if key == "keep":
+        if value is None:
+            return "every column (no --keep)"
+        return "--keep " + (",".join(map(str, value)) if value else "''")  # type: ignore[call-overload]
+    if key == "strict":
+        return "--strict" if value else "no --strict"
+    return str(value) if again else f"{_FLAGS.get(key, key)} {value}"
+
+
+def _differs(key: str, old: dict[str, Any], expected: dict[str, Any], registry: Registry) -> str:
+    """How the unfinished run differs from this command in ``key``, and what to run instead."""
+    was, now = old.get(key), expected[key]
+    if key == "options" and isinstance(was, dict) and isinstance(now, dict):
+        changed = [k for k in now if was.get(k) != now[k]]
+        parts = [f"{_shown(k, was.get(k))}, now {_shown(k, now[k], again=True)}" for k in changed]
+        return f"used other options ({'; '.join(parts)}); run with the same options, or {START_OVER}"
+    if key == "input":
+        return f"read another input, or this one before it changed (size, modification time); {START_OVER}"
+    if key == "output_format":
+        return f"wrote {was} (now {now}); pass --output-format {was} to continue it, or {START_OVER}"
+    if key == "model":
+        return f"used the model {was!r} (now {now!r}); pass --model {was} to continue it, or {START_OVER}"
+    if key == "version" and isinstance(was, int):
+        return f"used version {was} (now {now}); {_resume_version(registry, str(old.get('model')), was)}"
+    return f"used another bundle of version {now} (sha256 {str(was)[:12]}…, now {str(now)[:12]}…); {START_OVER}"
+
+
+def _resume_version(registry: Registry, model: str, version: int) -> str:
+    """How to continue a run that scored with ``version``: that version named, with --retired when a
+    promotion has retired it since (the hint after an interrupt was 'the same command', which then
+    pinned the new live version and was refused)."""
+    from textsieve.errors import NotFoundError
+    from textsieve.registry.records import State
+
+    try:
+        info = registry.version(model, version)
+    except NotFoundError:
+        info = None
+    if info is None:
+        return START_OVER
+    flags = (
+        f"--version {version} --retired --resume" if info.state == State.RETIRED else f"--version {version} --resume"
+    )
+    return f"continue it with {flags}, or {START_OVER}"
 
 
 def _combine(futures: Sequence[tuple[slice, Future[Scored]]], count: int, classes: int) -> Scored:
@@ -350,13 +423,13 @@ def score_file(
         previous = None
         if work.is_dir():
             with _locked(work):
-                previous = _resume_state(run, expected, err) if resume else None
+                previous = _resume_state(run, expected, output, registry, err) if resume else None
                 if previous is None:
                     if not resume:
                         print(f"textsieve: discarding the unfinished run in {work} (--resume continues it)", file=err)
                     shutil.rmtree(work)
         elif resume:
-            print(f"textsieve: nothing to resume for {output.name}; starting from the first row", file=err)
+            print(f"textsieve: nothing to resume for {output}; starting from the first row", file=err)
         skip = int(previous["rows"]) if previous else 0
         chunks = reader.chunks(opts.chunk_rows, skip=skip)
         first = next(chunks, [])
@@ -407,7 +480,7 @@ def _stream(
         "committed_bytes": 0,
         "committed_crc32": 0,
     }
-    resumed = int(run.state["rows"])
+    resumed = run.saved_rows = int(run.state["rows"])
     if previous is None:
         run.save()
     writer: formats.AppendWriter | None = None
@@ -467,7 +540,7 @@ def _stream(
         pool.close(cancel=True)
         # The CLI's one line for Ctrl-C or SIGTERM carries it (textsieve/cli.py _stopped).
         exc.add_note(
-            f"stopped after {run.state['rows']:,} rows; {output} was not written; "
+            f"stopped after {run.saved_rows:,} rows; {output} was not written; "
             "run the same command with --resume to continue"
         )
         raise
