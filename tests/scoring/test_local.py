@@ -310,6 +310,13 @@ BAD_INPUT = [
         ["in.jsonl", "--out", "outdir"], 2, "outdir: is a folder; --out names the file", id="folder-as-output"
     ),
     pytest.param(["in.jsonl", "--out", "o.txt"], 2, "cannot tell the format from the name", id="unknown-format"),
+    # POST /v1/predict answers 422 above TEXTSIEVE_MAX_SPANS (default 20; README: spans 0–20).
+    pytest.param(
+        ["in.jsonl", "--out", "o.jsonl", "--spans", "1000"],
+        2,
+        "--spans: at most 20 spans per text (the HTTP API's limit too), not 1000",
+        id="spans-above-the-limit",
+    ),
     # An atomic write renames a new regular file over OUTPUT: /dev/null became a file (as root), and a
     # FIFO or a socket was replaced the same way, its reader never getting a byte.
     pytest.param(
@@ -454,6 +461,24 @@ def test_bad_input_is_one_line_and_leaves_nothing(
     assert (work / "in.jsonl").read_text(encoding="utf-8").count("\n") == 2  # the input is untouched
     assert stat.S_ISFIFO((work / "pipe.jsonl").lstat().st_mode) and stat.S_ISSOCK((work / "sock.csv").lstat().st_mode)
     assert json.loads((work / "o.jsonl.meta.json").read_text(encoding="utf-8")) == {"text": "the chain is broken"}
+
+
+def test_more_workers_than_four_per_core_is_one_line(
+    scoring_registry: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """--workers 999 tried to start 999 worker processes, each an onnxruntime session."""
+    from textsieve.scoring.pool import default_workers
+
+    src = write_jsonl(tmp_path / "in.jsonl", uci_rows()[:5])
+    most = 4 * default_workers()
+    common = ["--model", MODEL, "--out", tmp_path / "out.jsonl", "--registry", scoring_registry]
+    with pytest.raises(SystemExit) as stopped:  # argparse's refusal, as the command line ends it
+        score(src, *common, "--workers", most + 1)
+    assert stopped.value.code == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and f"--workers: at most {most} (4 per core this process may use, " in err[0], err
+    assert f"not {most + 1}" in err[0] and not (tmp_path / "out.jsonl").exists()
+    assert score(src, *common, "--workers", 1) == 0
 
 
 def test_a_link_as_output_is_replaced_by_the_file_and_its_target_left_alone(

@@ -45,6 +45,9 @@ if TYPE_CHECKING:
 # 2: the state records the CRC-32 of the output written so far (committed_crc32).
 STATE_FORMAT = 2
 DEFAULT_CHUNK = 8192
+# The most worker processes a core this process may use (default_workers()): more only add sessions in
+# memory and switches between them (--workers 999 tried to start 999).
+WORKERS_PER_CORE = 4
 # Chunks in flight: one being written while the workers score the next two; memory holds three.
 DEPTH = 3
 CAUTION = (
@@ -648,4 +651,14 @@ def _finish(
     shutil.rmtree(run.work, ignore_errors=True)
 
 
-__all__ = ["DEFAULT_CHUNK", "Options", "Summary", "check_output", "metadata", "score_file", "sidecar", "work_dir"]
+__all__ = [
+    "DEFAULT_CHUNK",
+    "WORKERS_PER_CORE",
+    "Options",
+    "Summary",
+    "check_output",
+    "metadata",
+    "score_file",
+    "sidecar",
+    "work_dir",
+]
