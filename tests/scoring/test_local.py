@@ -4,6 +4,7 @@ with an outside reader, bad rows kept and counted, resume, and bad input refused
 from __future__ import annotations
 
 import csv
+import gzip
 import json
 import os
 import signal
@@ -302,6 +303,20 @@ BAD_INPUT = [
         "the input has no column 'body'",
         id="wrong-csv-column",
     ),  # noqa: E501
+    # These said "no row among the first 2 has the field 'text'; fields seen: none; pass --text-field NAME".
+    pytest.param(
+        ["in.jsonl.gz", "--input-format", "jsonl", "--out", "o.jsonl"],
+        2,
+        "in.jsonl.gz's line is not JSON (the first starts with b'\\x1f\\x8b\\x08",
+        id="gzip-read-as-jsonl",
+    ),
+    pytest.param(
+        ["csv.jsonl", "--out", "o.jsonl"],
+        2,
+        "none of the first 2 lines of csv.jsonl is JSON (the first starts with b'text,label'); JSON Lines holds one "
+        "JSON object a line, in UTF-8",
+        id="csv-named-jsonl",
+    ),
     pytest.param(["in.jsonl", "--out", "o.jsonl", "--model", "nosuch"], 2, "no model 'nosuch'", id="unknown-model"),
     pytest.param(
         ["in.jsonl", "--out", "o.jsonl", "--version", "9"], 2, "'support' has no version 9", id="unknown-version"
@@ -440,6 +455,8 @@ def test_bad_input_is_one_line_and_leaves_nothing(
         pa.table({"text": ["the chain", "refund"], "blob": [b"caf\xc3\xa9", b"\xff\x00"]}), work / "blob.parquet"
     )
     (work / "outdir").mkdir()
+    (work / "in.jsonl.gz").write_bytes(gzip.compress((work / "in.jsonl").read_bytes(), mtime=0))
+    (work / "csv.jsonl").write_text("text,label\nthe chain is broken,repair\n", encoding="utf-8")
     os.mkfifo(work / "pipe.jsonl")
     os.mkfifo(work / "m.jsonl.meta.json")
     with socket.socket(socket.AF_UNIX) as sock:

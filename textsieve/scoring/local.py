@@ -35,7 +35,7 @@ from textsieve.scoring.columns import Layout, plan
 from textsieve.scoring.model import Resolved, resolve
 from textsieve.scoring.pool import Pool, default_workers, pieces, result
 from textsieve.scoring.progress import Progress
-from textsieve.scoring.rows import Scored, Split, check_fields, output_rows, split
+from textsieve.scoring.rows import Scored, Split, Unreadable, check_fields, output_rows, split
 
 if TYPE_CHECKING:
     import pyarrow as pa
@@ -331,6 +331,19 @@ def _other_separator(reader: formats.Reader) -> str | None:
     )
 
 
+def _first_bytes(reader: formats.Reader, most: int = 24) -> str:
+    """The input's first non-blank line's first ``most`` bytes, as a bytes literal (control bytes and
+    non-ASCII escaped, so nothing in it reaches the terminal as it is), clipped with "…"."""
+    path = getattr(reader, "path", None)
+    if path is None:
+        return "nothing readable"
+    with open(path, "rb") as f:
+        block = f.read(1 << 16)  # a compressed file may hold no line break for a long way
+    line = next((raw for raw in block.split(b"\n") if raw.strip()), b"")
+    shown = repr(line.strip()[:most])
+    return shown + ("…" if len(line.strip()) > most else "")
+
+
 def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolved: Resolved, err: TextIO) -> Layout:
     if reader.columns is not None:
         if opts.text_field not in reader.columns:
@@ -346,6 +359,17 @@ def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolve
         for row in first:
             if isinstance(row, dict):
                 seen.update(dict.fromkeys(row))
+        if first and all(isinstance(row, Unreadable) and formats.LONE_SURROGATE not in row for row in first):
+            # A gzip file, a CSV file named .jsonl: no field was seen because no line was JSON at all.
+            where = getattr(reader, "path", "the input")
+            which = (
+                f"none of the first {len(first):,} lines of {where} is" if len(first) > 1 else f"{where}'s line is not"
+            )
+            raise InputError(
+                f"{which} JSON "
+                f"(the first starts with {_first_bytes(reader)}); JSON Lines holds one JSON object a line, "
+                "in UTF-8: decompress a compressed file first, or name the format with --input-format"
+            )
         if first and opts.text_field not in seen:
             shown = ", ".join(list(seen)[:20]) or "none"
             raise InputError(
