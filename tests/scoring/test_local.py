@@ -480,6 +480,34 @@ def test_bad_input_is_one_line_and_leaves_nothing(
     assert json.loads((work / "o.jsonl.meta.json").read_text(encoding="utf-8")) == {"text": "the chain is broken"}
 
 
+@pytest.mark.parametrize("name", ["empty.jsonl", "empty.csv", "empty.tsv", "header.csv", "empty.parquet"])
+@pytest.mark.parametrize("out_name", ["out.jsonl", "out.parquet"])
+def test_an_empty_input_in_any_format_scores_0_rows_with_a_note(
+    name: str, out_name: str, scoring_registry: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """An empty JSONL or Parquet file scored 0 rows with exit 0 and no word, an empty CSV was refused:
+    all are now scored (a scheduled run on a quiet day is no error) with one line saying so."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    src = tmp_path / name
+    if name == "empty.parquet":
+        pq.write_table(pa.table({"text": pa.array([], pa.string())}), src)
+    else:
+        src.write_text("text\n" if name == "header.csv" else "", encoding="utf-8")
+    out = tmp_path / out_name
+    assert score(src, "--model", MODEL, "--out", out, "--registry", scoring_registry, "--workers", 0) == 0
+    captured = capsys.readouterr()
+    assert captured.err.strip().splitlines()[0] == f"textsieve: 0 rows scored: {src} is empty", captured.err
+    assert "scored 0 rows" in captured.out
+    if out_name == "out.parquet":
+        table = pq.read_table(out)  # pyarrow reads it: a valid file with the result columns
+        assert table.num_rows == 0 and "label" in table.column_names
+    else:
+        assert out.read_bytes() == b""
+        assert json.loads((tmp_path / "out.jsonl.meta.json").read_text(encoding="utf-8"))["rows"] == 0
+
+
 def test_more_workers_than_four_per_core_is_one_line(
     scoring_registry: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

@@ -196,7 +196,10 @@ class CsvReader(_ByteCounted):
             # `textsieve train` skips them; the header was read as no columns at all.
             self.columns = next(row for row in self._reader if row and (len(row) > 1 or row[0].strip()))
         except StopIteration:
-            raise InputError(f"{path}: empty; a {self.kind} file starts with a header line") from None
+            # No header and no rows: 0 rows to score, as an empty JSONL or Parquet file has (columns
+            # None: no column can be checked for, as in JSON Lines).
+            self.columns = None
+            return
         except csv.Error as exc:
             raise InputError(f"{path}: not {self.kind} ({exc})") from exc
         check_unique(path, self.columns, "the header")

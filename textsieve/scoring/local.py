@@ -460,6 +460,10 @@ def score_file(
         skip = int(previous["rows"]) if previous else 0
         chunks = reader.chunks(opts.chunk_rows, skip=skip)
         first = next(chunks, [])
+        if not first and not skip:
+            # Scored all the same (an output with its columns and metadata, exit 0): a scheduled run on a
+            # day with nothing new is not an error. Said, so an empty export upstream is not missed.
+            print(f"textsieve: 0 rows scored: {source} is empty", file=err)
         if previous:
             layout = Layout(
                 tuple(previous["layout"]["kept"]),
