@@ -767,6 +767,10 @@ def cli_verdicts(args: argparse.Namespace) -> int:
         raise InputError("export and delete in separate runs, so the file holds what was there before the deletion")
     if args.last < 0:
         raise InputError(f"--last {args.last}: give 0 or more verdicts to list")
+    if args.export is not None:
+        from textsieve.files import check_out_file
+
+        check_out_file(args.export, flag="--export", allowed="a .jsonl file's path or a new path")
     with _open(args) as reg:
         if deleting:
             gone = reg.verdicts.delete(

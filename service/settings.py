@@ -16,6 +16,7 @@ from pydantic import Field, SecretStr, ValidationInfo, field_validator, model_va
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
 from textsieve.environment import DEFAULT_REGISTRY, POSTGRES_SCHEMES, check_blobs, check_registry
+from textsieve.texts import MAX_SPANS
 
 MIN_TOKEN_CHARS = 16
 
@@ -110,7 +111,7 @@ class Settings(BaseSettings):
     max_texts: int = Field(256, ge=1, description="most texts in one request")
     max_chars: int = Field(20_000, ge=1, description="most characters in one text")
     max_body_bytes: int = Field(4 * 1024 * 1024, ge=1024, description="largest request body")
-    max_spans: int = Field(20, ge=0, description="most spans a request may ask for per text")
+    max_spans: int = Field(MAX_SPANS, ge=0, description="most spans a request may ask for per text")
 
     queue_wait_ms: float = Field(
         250.0,

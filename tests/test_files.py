@@ -4,12 +4,23 @@ from __future__ import annotations
 
 import hashlib
 import os
+import socket
 import stat
 from pathlib import Path
+from typing import Any
 
 import pytest
 
-from textsieve.files import FILE_MODE, atomic_directory, atomic_write_bytes, atomic_write_text, sha256_file
+from textsieve.errors import InputError
+from textsieve.files import (
+    FILE_MODE,
+    atomic_directory,
+    atomic_write_bytes,
+    atomic_write_text,
+    check_out_folder,
+    sha256_file,
+    special_file,
+)
 
 DATA = Path(__file__).parent / "data"
 
@@ -60,3 +71,48 @@ def test_atomic_directory_refuses_to_replace_unless_asked(tmp_path: Path) -> Non
         (tmp / "a").write_text("3")
     assert (target / "a").read_text() == "3"
     assert sorted(os.listdir(tmp_path)) == ["bundle"]
+
+
+def _fifo(path: Path) -> None:
+    os.mkfifo(path)
+
+
+def _socket(path: Path) -> None:
+    with socket.socket(socket.AF_UNIX) as sock:
+        sock.bind(str(path))
+
+
+def _null_device(path: Path) -> None:
+    os.mknod(path, stat.S_IFCHR | 0o666, os.makedev(1, 3))  # Linux's /dev/null (devices.txt: char 1, 3)
+
+
+SPECIAL = [
+    pytest.param(_fifo, "a FIFO (named pipe)", stat.S_ISFIFO, id="fifo"),
+    pytest.param(_socket, "a socket", stat.S_ISSOCK, id="socket"),
+]
+if os.geteuid() == 0:  # only root may make a device node; an audit found /dev/null replaced as root
+    SPECIAL.append(pytest.param(_null_device, "a character device", stat.S_ISCHR, id="character-device"))
+
+
+@pytest.mark.parametrize(("make", "what", "still"), SPECIAL)
+def test_an_atomic_write_never_renames_a_file_over_a_device_a_fifo_or_a_socket(
+    make: Any, what: str, still: Any, tmp_path: Path
+) -> None:
+    target = tmp_path / "out.json"
+    make(target)
+    assert special_file(target) == what
+    with pytest.raises(InputError, match=f"out.json: is {what.replace('(', '.').replace(')', '.')}, which"):
+        atomic_write_text(target, "{}")
+    assert still(target.lstat().st_mode) and sorted(p.name for p in tmp_path.iterdir()) == ["out.json"]
+    with pytest.raises(InputError, match=f"--out {target}: is {what.split(' (')[0]}"):
+        check_out_folder(target, kind="run", previous="run.json")
+
+
+def test_an_atomic_write_replaces_a_link_and_leaves_its_target(tmp_path: Path) -> None:
+    target = tmp_path / "pipe"
+    os.mkfifo(target)
+    link = tmp_path / "out.json"
+    link.symlink_to(target)
+    assert special_file(link) is None and special_file(tmp_path / "absent") is None
+    atomic_write_text(link, "{}")
+    assert not link.is_symlink() and link.read_text() == "{}" and stat.S_ISFIFO(target.lstat().st_mode)

@@ -75,6 +75,20 @@ def test_csv_and_tsv_load_with_quotes_and_bom(tmp_path: Path) -> None:
     assert load_examples(t) == [Example("hello there", "praise")]
 
 
+@pytest.mark.parametrize("suffix", [".csv", ".tsv"])
+def test_a_field_longer_than_the_csv_modules_default_limit_loads_as_in_jsonl(tmp_path: Path, suffix: str) -> None:
+    # Python's csv module refuses a field over 131,072 characters unless csv.field_size_limit is raised;
+    # the same text as a JSON Lines line loaded.
+    long_text = "the chain is broken " * 10_000
+    delimiter = "," if suffix == ".csv" else "\t"
+    f = _write(tmp_path / f"d{suffix}", f"text{delimiter}label\n{long_text}{delimiter}repair\nhi{delimiter}praise\n")
+    j = _write(
+        tmp_path / "d.jsonl",
+        "".join(json.dumps({"text": t, "label": x}) + "\n" for t, x in [(long_text, "repair"), ("hi", "praise")]),
+    )
+    assert load_examples(f) == load_examples(j) == [Example(long_text, "repair"), Example("hi", "praise")]
+
+
 def test_json_array_of_the_published_sentiment_set_loads() -> None:
     # UCI Sentiment Labelled Sentences (Kotzias et al., KDD 2015) as shipped in the npm package
     # `sentiment` 5.0.2: 1,000 labelled sentences, 500 per class, then a {"text": "", "class": null}

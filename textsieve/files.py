@@ -12,6 +12,7 @@ import contextlib
 import hashlib
 import os
 import shutil
+import stat
 import tempfile
 from collections.abc import Iterator
 from pathlib import Path
@@ -48,9 +49,43 @@ def fsync_dir(path: Path) -> None:
         os.close(fd)
 
 
+# What an existing path is when it is not a regular file, a folder or a symbolic link, for a message.
+_SPECIAL = (
+    (stat.S_ISCHR, "a character device"),
+    (stat.S_ISBLK, "a block device"),
+    (stat.S_ISFIFO, "a FIFO (named pipe)"),
+    (stat.S_ISSOCK, "a socket"),
+)
+
+
+def special_file(path: Path) -> str | None:
+    """What ``path`` is when it exists and is neither a regular file, a folder nor a symbolic link
+    (a character or block device such as /dev/null, a FIFO, a socket), or None. The path itself is
+    looked at, not what a link points to: a link is replaced by the file, its target left alone."""
+    try:
+        mode = os.lstat(path).st_mode
+    except (FileNotFoundError, NotADirectoryError):
+        return None
+    if stat.S_ISREG(mode) or stat.S_ISDIR(mode) or stat.S_ISLNK(mode):
+        return None
+    return next((what for test, what in _SPECIAL if test(mode)), "not a regular file")
+
+
+def check_out_file(path: Path, *, flag: str = "--out", allowed: str = "a regular file's path or a new path") -> None:
+    """InputError, one line, when ``path`` (given as ``flag``) is a device, a FIFO or a socket: an
+    atomic write renames a new regular file over it (``/dev/null`` became a file, as root), and the
+    writes meant for it never reach it. Called before the work, and by every atomic write."""
+    what = special_file(path)
+    if what is not None:
+        named = f"{flag} {path}" if flag else str(path)
+        raise InputError(f"{named}: is {what}, which textsieve does not write over; name {allowed}")
+
+
 def atomic_write_bytes(path: Path, data: bytes) -> None:
-    """Write ``data`` to ``path`` through a temporary sibling, fsync'd and renamed into place."""
+    """Write ``data`` to ``path`` through a temporary sibling, fsync'd and renamed into place; an
+    existing ``path`` that is a device, a FIFO or a socket is an InputError (:func:`check_out_file`)."""
     path = Path(path)
+    check_out_file(path, flag="")
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
         with os.fdopen(fd, "wb") as f:
@@ -91,6 +126,11 @@ def check_out_folder(out: Path, *, kind: str, previous: str) -> None:
                 f"--out {out}: is a folder that is not a previous {kind} (no {previous}); "
                 f"name a new or empty folder, or a previous {kind} folder to replace"
             )
+    elif (what := special_file(out)) is not None:
+        raise InputError(
+            f"--out {out}: is {what}, which textsieve does not write over; name a new or empty folder, "
+            f"or a previous {kind} folder to replace"
+        )
     elif out.exists() or out.is_symlink():
         raise InputError(
             f"--out {out}: is an existing file; name a new or empty folder, or a previous {kind} folder to replace"
@@ -167,10 +207,12 @@ __all__ = [
     "atomic_directory",
     "atomic_write_bytes",
     "atomic_write_text",
+    "check_out_file",
     "check_out_folder",
     "check_writable",
     "file_in_the_way",
     "fsync_dir",
     "nearest_folder",
     "sha256_file",
+    "special_file",
 ]

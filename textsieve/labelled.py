@@ -11,6 +11,7 @@ import contextlib
 import csv
 import json
 import stat
+import sys
 import unicodedata
 from collections import Counter
 from collections.abc import Callable, Iterator, Sequence
@@ -430,8 +431,23 @@ def _json_array_rows(path: Path, fields: _Fields, progress: Callable[[int], None
             raise _not_utf8(path, exc.line, exc.offset, exc.byte) from None
 
 
+# The longest CSV or TSV field read, in characters. Python's csv module refuses a field over 131,072
+# by default (csv.field_size_limit), calling the row malformed; a JSON Lines line, the same text in the
+# other format, has no bound but memory, and neither has a delimited field now.
+CSV_FIELD_LIMIT = sys.maxsize
+
+
+def csv_reader(lines: Iterator[str], delimiter: str) -> Any:
+    """``csv.reader`` as every delimited file is read (labelled files, ``textsieve score``): RFC 4180
+    quoting, strict (a quote out of place is an error), and fields as long as :data:`CSV_FIELD_LIMIT`.
+    The limit is the csv module's, for the whole process: set here, before each reader, so that no
+    other code's setting decides what this one reads."""
+    csv.field_size_limit(CSV_FIELD_LIMIT)
+    return csv.reader(lines, delimiter=delimiter, strict=True)
+
+
 def _csv_rows(path: Path, lines: Iterator[str], delimiter: str, fields: _Fields) -> Iterator[Example]:
-    reader = csv.reader(lines, delimiter=delimiter, strict=True)
+    reader = csv_reader(lines, delimiter)
     header: list[str] | None = None
     last_line = 0
     try:
@@ -477,6 +493,7 @@ __all__ = [
     "Example",
     "case_twins",
     "check_labels",
+    "csv_reader",
     "cr_line_ends",
     "cr_separated",
     "LABEL_CHARACTERS",

@@ -15,6 +15,10 @@ from __future__ import annotations
 import unicodedata
 from codecs import utf_8_encode
 
+# The most spans a text may ask for: the HTTP API's default limit (TEXTSIEVE_MAX_SPANS, service/settings.py),
+# which load_model(...).predict, score_frame and textsieve score hold too (README: spans 0–20).
+MAX_SPANS = 20
+
 
 def has_no_tokens(text: str) -> bool:
     """Whether no tokenizer spec finds a token in ``text``: every character is whitespace or an
@@ -87,4 +91,4 @@ def lone_surrogate(text: str) -> str | None:
     return None
 
 
-__all__ = ["has_no_tokens", "lone_surrogate", "nothing_to_classify", "text_refusal"]
+__all__ = ["MAX_SPANS", "has_no_tokens", "lone_surrogate", "nothing_to_classify", "text_refusal"]

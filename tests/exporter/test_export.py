@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import json
+import os
 import random
 import shutil
+import stat
 from collections.abc import Callable
 from pathlib import Path
 
@@ -361,6 +363,12 @@ def _unknown_valid_label(run: Path) -> None:
         pytest.param(None, "{tmp}/afile", "--out {tmp}/afile: is an existing file", id="out is a file"),
         pytest.param(
             None,
+            "{tmp}/pipe",
+            "--out {tmp}/pipe: is a FIFO (named pipe), which textsieve does not write over",
+            id="out is a fifo",
+        ),
+        pytest.param(
+            None,
             "/sys/textsieve-test-bundle",
             "--out /sys/textsieve-test-bundle: cannot make a folder in /sys (Operation not permitted)",
             id="out where nothing can be written",
@@ -393,11 +401,13 @@ def test_bad_run_or_out_exits_2_with_one_line(
     if damage is not None:
         damage(run)
     (tmp_path / "afile").write_text("not a bundle", encoding="utf-8")
+    os.mkfifo(tmp_path / "pipe")
     assert main(["export", str(run), "--out", out.format(tmp=tmp_path)]) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and err.startswith("textsieve: error: "), err
     assert expected_msg.format(tmp=tmp_path) in err
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["afile", "run"], "nothing written"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["afile", "pipe", "run"], "nothing written"
+    assert stat.S_ISFIFO((tmp_path / "pipe").lstat().st_mode)
     assert (tmp_path / "afile").read_text(encoding="utf-8") == "not a bundle"
 
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import io
 import json
+import os
 import re
 import shutil
 import sys
@@ -329,6 +330,7 @@ def _bad_files(folder: Path) -> None:
     write_jsonl(folder / "once.jsonl", [{"text": f"the shed {i}", "label": f"shelf {i}"} for i in range(40)])
     forms = ["caf\u00e9", "cafe\u0301", "repair"]  # one label in two Unicode forms (UAX #15 canonical equivalence)
     write_jsonl(folder / "forms.jsonl", [{"text": f"the counter {i}", "label": forms[i % 3]} for i in range(30)])
+    os.mkfifo(folder / "pipe")
     write_jsonl(folder / "samefive.jsonl", [{"text": "the same line", "label": "ab"[i % 2]} for i in range(40)])
     write_jsonl(folder / "fours.jsonl", [{"text": f"the pantry {i}", "label": "ab"[i % 2]} for i in range(8)])
     # Finite float32 values near its largest (3.4e38): the first sums overflow to inf, and inf - inf is nan.
@@ -396,6 +398,12 @@ OUT = ["--out", "{tmp}/out"]
         ),
         pytest.param(["{data}", *OUT, "--vectors", "{tmp}/none.txt"], "no such file", id="vectors missing"),
         pytest.param(["{data}", "--out", "{tmp}/afile"], "is an existing file", id="out is a file"),
+        # A FIFO (as a device or a socket) was told it "is an existing file".
+        pytest.param(
+            ["{data}", "--out", "{tmp}/pipe"],
+            "/pipe: is a FIFO (named pipe), which textsieve does not write over; name a new or empty folder",
+            id="out is a fifo",
+        ),
         pytest.param(
             ["{data}", "--out", "{tmp}/afile/sub"],
             "/afile is an existing file, so no folder can be made inside it",

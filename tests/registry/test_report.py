@@ -6,8 +6,10 @@ real-data report on the UCI sentences."""
 from __future__ import annotations
 
 import json
+import os
 import random
 import re
+import stat
 from pathlib import Path
 from typing import Any
 
@@ -687,6 +689,25 @@ def test_evaluate_refuses_to_write_its_report_over_the_evaluation_set(
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1 and "would replace the evaluation set" in err, err
     assert evalset.read_bytes() == before and sorted(p.name for p in folder.iterdir()) == ["report.json"]
+
+
+def test_evaluate_refuses_to_rename_its_report_over_a_fifo(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> None:
+    """OUT/report.json as a FIFO (or a device, a socket) was replaced by a regular file, exit 0: the
+    atomic write every command shares (textsieve/files.py) refuses it, in one line."""
+    r = ["--registry", str(tmp_path / "reg")]
+    evalset = str(tiny_data / "test.jsonl")
+    assert _run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", "--evalset", evalset, *r)[0] == 0
+    folder = tmp_path / "out"
+    folder.mkdir()
+    os.mkfifo(folder / "report.json")
+    code, out, err = _run(capsys, "evaluate", "m", "1", "--out", str(folder), *r)
+    assert code == 2 and out == ""
+    last = err.strip().splitlines()[-1]
+    assert last.startswith("textsieve: error: ") and "report.json: is a FIFO (named pipe)" in last, err
+    assert stat.S_ISFIFO((folder / "report.json").lstat().st_mode)
+    assert sorted(p.name for p in folder.iterdir()) == ["report.json"]
 
 
 # -- real data: the UCI sentences ------------------------------------------------------------------

@@ -3,7 +3,9 @@ for data-protection requests, on SQLite and PostgreSQL."""
 
 from __future__ import annotations
 
+import os
 import re
+import stat
 from pathlib import Path
 
 import pytest
@@ -164,6 +166,11 @@ def test_deletion_by_id_and_date_is_audited_and_needs_a_reason(
         pytest.param(["--export", "out.csv"], "name the file .jsonl", id="export-suffix"),
         # Before: "/dev/null: no such folder; create it" (it exists; POSIX has /dev/null everywhere).
         pytest.param(["--export", "/dev/null/x.jsonl"], "/dev/null: not a folder", id="export-under-a-file"),
+        pytest.param(
+            ["--export", "pipe.jsonl"],
+            "--export pipe.jsonl: is a FIFO (named pipe), which textsieve does not write over",
+            id="export-to-a-fifo",
+        ),
         pytest.param(["--export", "x.jsonl", "--delete", "1", "--reason", "x"], "separate runs", id="both"),
         pytest.param(["--last", "-1"], "--last -1", id="negative-last"),
         pytest.param(["--version", "9"], "has no version 9", id="unknown-version"),
@@ -178,7 +185,9 @@ def test_bad_arguments_are_one_line_and_exit_2(
     expected_msg: str,
 ) -> None:
     monkeypatch.chdir(tmp_path)
+    os.mkfifo(tmp_path / "pipe.jsonl")
     code, out, err = run(capsys, "verdicts", "helpdesk", *argv, *judged.cli_args())
     assert code == 2 and out == ""
+    assert stat.S_ISFIFO((tmp_path / "pipe.jsonl").lstat().st_mode)
     assert len(err.strip().splitlines()) == 1 and expected_msg in err
     assert not (tmp_path / "out.csv").exists() and not (tmp_path / "x.jsonl").exists()

@@ -177,16 +177,22 @@ def test_predict_names_a_missing_or_undecoded_item_plainly(support: Model) -> No
     )
 
 
-def test_predict_takes_numpy_integers_for_spans_and_caps_a_huge_number(support: Model) -> None:
+def test_predict_takes_numpy_integers_for_spans_and_refuses_more_than_the_http_apis_limit(support: Model) -> None:
     import numpy as np
 
     texts = ["I was charged twice this month and want a refund", "the front brake is broken"]
     want = support.predict(texts, spans=2)
     # numpy.int64 is a numbers.Integral (NumPy registers its integer types there): a whole number.
     assert support.predict(texts, spans=np.int64(2)) == want
-    everything = support.predict(texts, spans=10**6)
-    # 10**30 does not fit NumPy's int64 (an OverflowError before); it asks for every span, as 10**6 does.
-    assert support.predict(texts, spans=10**30) == everything
+    assert len(support.predict(texts, spans=20)) == 2  # the HTTP API's default limit (README: spans 0–20)
+    # 25 and 10**6 were taken (10**30 capped) where POST /v1/predict answers 422 above TEXTSIEVE_MAX_SPANS.
+    for spans in (21, 25, 10**6, 10**30, np.int64(21)):
+        assert _refusal(lambda s=spans: support.predict(texts, spans=s)) == (
+            f"spans {spans} is above the limit of 20 per text (the HTTP API's too)"
+        )
+    assert _refusal(lambda: support.score_frame(_frame(), "text", spans=25)) == (
+        "spans 25 is above the limit of 20 per text (the HTTP API's too)"
+    )
 
 
 @pytest.mark.parametrize(
@@ -335,6 +341,8 @@ def test_score_file_takes_str_paths_and_a_registry_folder_as_load_model_does(
         (dict(workers=0, spans=-1), "spans must be a whole number, 0 or more, not -1"),
         (dict(workers=0, spans="2"), "spans must be a whole number, 0 or more, not '2'"),
         (dict(workers=-1), "workers must be None (one per core), 0 (this process) or more, not -1"),
+        (dict(workers=0, spans=21), "spans must be at most 20 per text (the HTTP API's limit too), not 21"),
+        (dict(workers=10_000), "workers must be at most"),
         (dict(workers=0, keep="text"), "keep must be None or a list of column names, not 'text'"),
         (dict(workers=0, text_field=None), "text_field must be a non-empty str, not None"),
         (dict(workers=0, chunk_rows=2.5), "chunk_rows must be a whole number, 1 or more, not 2.5"),

@@ -4,9 +4,12 @@ with an outside reader, bad rows kept and counted, resume, and bad input refused
 from __future__ import annotations
 
 import csv
+import gzip
 import json
 import os
 import signal
+import socket
+import stat
 import subprocess
 import sys
 from pathlib import Path
@@ -181,6 +184,75 @@ def test_rows_without_a_text_get_an_error_and_are_counted(
     assert sorted(p.name for p in tmp_path.iterdir()) == ["in.jsonl", "out.jsonl", "out.jsonl.meta.json"]
 
 
+NUL_TEXTS = ["refund please", "refund\x00 now", "the chain is broken"]
+
+
+def _nul_input(folder: Path, fmt: str) -> Path:
+    """NUL_TEXTS as each format carries a NUL: JSON's \\u0000 escape, a raw NUL byte in a CSV or TSV cell,
+    a Parquet string holding \\x00."""
+    path = folder / f"in.{fmt}"
+    if fmt == "jsonl":
+        write_jsonl(path, [{"text": t} for t in NUL_TEXTS])
+    elif fmt == "parquet":
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        pq.write_table(pa.table({"text": NUL_TEXTS}), path)
+    else:
+        path.write_bytes(("text\n" + "".join(f"{t}\n" for t in NUL_TEXTS)).encode("utf-8"))
+    return path
+
+
+@pytest.mark.parametrize("fmt", ["jsonl", "csv", "tsv", "parquet"])
+def test_a_text_holding_a_nul_is_an_error_row_in_score_frames_words_in_every_format(
+    fmt: str, scoring_registry: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """The HTTP API, predict and score_frame refuse a NUL; file scoring labelled it, error null."""
+    import pandas as pd
+
+    import textsieve
+
+    src = _nul_input(tmp_path, fmt)
+    out = tmp_path / "out.jsonl"
+    common = ["--model", MODEL, "--registry", scoring_registry]
+    assert score(src, "--out", out, *common, "--workers", 0) == 0
+    rows = read_jsonl(out)
+    frame = textsieve.load_model(scoring_registry, MODEL).score_frame(pd.DataFrame({"text": NUL_TEXTS}))
+    assert [r["text"] for r in rows] == NUL_TEXTS
+    assert [r["error"] for r in rows] == [e if isinstance(e, str) else None for e in frame["error"].tolist()]
+    assert rows[1]["error"] == "text field 'text' contains a NUL character (U+0000) at character 6; remove it"
+    assert rows[1]["label"] is None and rows[0]["label"] is not None and rows[2]["label"] is not None
+    assert "1 row(s) had no text to score" in capsys.readouterr().out
+
+    assert score(src, "--out", tmp_path / "strict.jsonl", *common, "--strict") == 2
+    assert capsys.readouterr().err.strip().splitlines() == [
+        "textsieve: error: row 2: text field 'text' contains a NUL character (U+0000) at character 6; remove it "
+        "(--strict stops at the first such row)"
+    ]
+
+
+@pytest.mark.parametrize("fmt", ["csv", "tsv"])
+def test_a_field_longer_than_the_csv_modules_default_limit_is_scored_as_in_jsonl(
+    fmt: str, scoring_registry: Path, tmp_path: Path
+) -> None:
+    """A valid file with a text of 200,000 characters was "not CSV ... (field larger than field limit
+    (131072)); ... quoted whole" (Python's csv.field_size_limit default); in JSONL it was scored."""
+    long_text = " ".join(["the chain is broken, refund please"] * 5800)
+    assert len(long_text) > 131_072 * 1.5
+    texts = ["refund please", long_text, "the dock is broken"]
+    jsonl = write_jsonl(tmp_path / "in.jsonl", [{"text": t} for t in texts])
+    delimited = tmp_path / f"in.{fmt}"
+    with open(delimited, "w", encoding="utf-8", newline="") as f:
+        writer = csv.writer(f, delimiter="," if fmt == "csv" else "\t")
+        writer.writerows([["text"], *([t] for t in texts)])
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 0]
+    assert score(jsonl, "--out", tmp_path / "from-jsonl.jsonl", *common) == 0
+    assert score(delimited, "--out", tmp_path / "from-delimited.jsonl", *common) == 0
+    want = read_jsonl(tmp_path / "from-jsonl.jsonl")
+    got = read_jsonl(tmp_path / "from-delimited.jsonl")
+    assert got == want and got[1]["text"] == long_text and got[1]["error"] is None
+
+
 def test_an_input_file_name_that_is_not_utf8_is_recorded_with_its_bytes_escaped(
     scoring_registry: Path, tmp_path: Path
 ) -> None:
@@ -232,6 +304,20 @@ BAD_INPUT = [
         "the input has no column 'body'",
         id="wrong-csv-column",
     ),  # noqa: E501
+    # These said "no row among the first 2 has the field 'text'; fields seen: none; pass --text-field NAME".
+    pytest.param(
+        ["in.jsonl.gz", "--input-format", "jsonl", "--out", "o.jsonl"],
+        2,
+        "in.jsonl.gz's line is not JSON (the first starts with b'\\x1f\\x8b\\x08",
+        id="gzip-read-as-jsonl",
+    ),
+    pytest.param(
+        ["csv.jsonl", "--out", "o.jsonl"],
+        2,
+        "none of the first 2 lines of csv.jsonl is JSON (the first starts with b'text,label'); JSON Lines holds one "
+        "JSON object a line, in UTF-8",
+        id="csv-named-jsonl",
+    ),
     pytest.param(["in.jsonl", "--out", "o.jsonl", "--model", "nosuch"], 2, "no model 'nosuch'", id="unknown-model"),
     pytest.param(
         ["in.jsonl", "--out", "o.jsonl", "--version", "9"], 2, "'support' has no version 9", id="unknown-version"
@@ -240,6 +326,35 @@ BAD_INPUT = [
         ["in.jsonl", "--out", "outdir"], 2, "outdir: is a folder; --out names the file", id="folder-as-output"
     ),
     pytest.param(["in.jsonl", "--out", "o.txt"], 2, "cannot tell the format from the name", id="unknown-format"),
+    # POST /v1/predict answers 422 above TEXTSIEVE_MAX_SPANS (default 20; README: spans 0–20).
+    pytest.param(
+        ["in.jsonl", "--out", "o.jsonl", "--spans", "1000"],
+        2,
+        "--spans: at most 20 spans per text (the HTTP API's limit too), not 1000",
+        id="spans-above-the-limit",
+    ),
+    # An atomic write renames a new regular file over OUTPUT: /dev/null became a file (as root), and a
+    # FIFO or a socket was replaced the same way, its reader never getting a byte.
+    pytest.param(
+        ["in.jsonl", "--out", "pipe.jsonl"],
+        2,
+        "--out pipe.jsonl: is a FIFO (named pipe), which textsieve does not write over; "
+        "name a regular file's path or a new path",
+        id="output-a-fifo",
+    ),
+    pytest.param(["in.jsonl", "--out", "sock.csv"], 2, "--out sock.csv: is a socket", id="output-a-socket"),
+    pytest.param(
+        ["in.jsonl", "--out", "m.jsonl"],
+        2,
+        "--out m.jsonl: its metadata goes to m.jsonl.meta.json, which is a FIFO (named pipe)",
+        id="output-metadata-a-fifo",
+    ),
+    pytest.param(
+        ["in.jsonl", "--out", "pipe.jsonl", "--cluster", "tcp://127.0.0.1:9"],
+        2,
+        "--out pipe.jsonl: is a FIFO (named pipe), which textsieve does not write over; name a folder",
+        id="cluster-output-a-fifo",
+    ),
     # /sys takes no new file or folder even from root; this was a PermissionError traceback.
     pytest.param(
         ["in.jsonl", "--out", "/sys/o.jsonl"],
@@ -341,6 +456,12 @@ def test_bad_input_is_one_line_and_leaves_nothing(
         pa.table({"text": ["the chain", "refund"], "blob": [b"caf\xc3\xa9", b"\xff\x00"]}), work / "blob.parquet"
     )
     (work / "outdir").mkdir()
+    (work / "in.jsonl.gz").write_bytes(gzip.compress((work / "in.jsonl").read_bytes(), mtime=0))
+    (work / "csv.jsonl").write_text("text,label\nthe chain is broken,repair\n", encoding="utf-8")
+    os.mkfifo(work / "pipe.jsonl")
+    os.mkfifo(work / "m.jsonl.meta.json")
+    with socket.socket(socket.AF_UNIX) as sock:
+        sock.bind(str(work / "sock.csv"))
     if "tamper" in argv:
         argv.remove("tamper")
         _tamper(registry)
@@ -356,7 +477,70 @@ def test_bad_input_is_one_line_and_leaves_nothing(
     assert len(lines) == 1 and lines[0].startswith("textsieve: error: ") and expected_msg in lines[0], out.stderr
     assert sorted(p.name for p in work.iterdir()) == before and not any((work / "outdir").iterdir())
     assert (work / "in.jsonl").read_text(encoding="utf-8").count("\n") == 2  # the input is untouched
+    assert stat.S_ISFIFO((work / "pipe.jsonl").lstat().st_mode) and stat.S_ISSOCK((work / "sock.csv").lstat().st_mode)
     assert json.loads((work / "o.jsonl.meta.json").read_text(encoding="utf-8")) == {"text": "the chain is broken"}
+
+
+@pytest.mark.parametrize("name", ["empty.jsonl", "empty.csv", "empty.tsv", "header.csv", "empty.parquet"])
+@pytest.mark.parametrize("out_name", ["out.jsonl", "out.parquet"])
+def test_an_empty_input_in_any_format_scores_0_rows_with_a_note(
+    name: str, out_name: str, scoring_registry: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """An empty JSONL or Parquet file scored 0 rows with exit 0 and no word, an empty CSV was refused:
+    all are now scored (a scheduled run on a quiet day is no error) with one line saying so."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    src = tmp_path / name
+    if name == "empty.parquet":
+        pq.write_table(pa.table({"text": pa.array([], pa.string())}), src)
+    else:
+        src.write_text("text\n" if name == "header.csv" else "", encoding="utf-8")
+    out = tmp_path / out_name
+    assert score(src, "--model", MODEL, "--out", out, "--registry", scoring_registry, "--workers", 0) == 0
+    captured = capsys.readouterr()
+    assert captured.err.strip().splitlines()[0] == f"textsieve: 0 rows scored: {src} is empty", captured.err
+    assert "scored 0 rows" in captured.out
+    if out_name == "out.parquet":
+        table = pq.read_table(out)  # pyarrow reads it: a valid file with the result columns
+        assert table.num_rows == 0 and "label" in table.column_names
+    else:
+        assert out.read_bytes() == b""
+        assert json.loads((tmp_path / "out.jsonl.meta.json").read_text(encoding="utf-8"))["rows"] == 0
+
+
+def test_more_workers_than_four_per_core_is_one_line(
+    scoring_registry: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """--workers 999 tried to start 999 worker processes, each an onnxruntime session."""
+    from textsieve.scoring.pool import default_workers
+
+    src = write_jsonl(tmp_path / "in.jsonl", uci_rows()[:5])
+    most = 4 * default_workers()
+    common = ["--model", MODEL, "--out", tmp_path / "out.jsonl", "--registry", scoring_registry]
+    with pytest.raises(SystemExit) as stopped:  # argparse's refusal, as the command line ends it
+        score(src, *common, "--workers", most + 1)
+    assert stopped.value.code == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and f"--workers: at most {most} (4 per core this process may use, " in err[0], err
+    assert f"not {most + 1}" in err[0] and not (tmp_path / "out.jsonl").exists()
+    assert score(src, *common, "--workers", 1) == 0
+
+
+def test_a_link_as_output_is_replaced_by_the_file_and_its_target_left_alone(
+    scoring_registry: Path, tmp_path: Path
+) -> None:
+    """README "Scoring whole files": OUTPUT is renamed into place, so a symbolic link there becomes the
+    file; what it pointed to (here a FIFO, which a write through the link would have blocked on) is not
+    touched."""
+    src = write_jsonl(tmp_path / "in.jsonl", uci_rows()[:20])
+    fifo = tmp_path / "pipe"
+    os.mkfifo(fifo)
+    out = tmp_path / "out.jsonl"
+    out.symlink_to(fifo)
+    assert score(src, "--model", MODEL, "--out", out, "--registry", scoring_registry, "--workers", 0) == 0
+    assert not out.is_symlink() and len(read_jsonl(out)) == 20
+    assert stat.S_ISFIFO(fifo.lstat().st_mode)
 
 
 # -- interrupted runs ---------------------------------------------------------------------------------
@@ -477,14 +661,16 @@ DAMAGE = [
         "no longer",
         id="part-replaced",
     ),
-    pytest.param("jsonl", lambda p: (p / "state.json").write_text("[1]"), "nothing to resume", id="state-a-list"),
+    # These said "nothing to resume for .out.jsonl.score-partial", the words for no run at all.
+    pytest.param("jsonl", lambda p: (p / "state.json").write_text("[1]"), "is not a state this", id="state-a-list"),
+    pytest.param("jsonl", lambda p: (p / "state.json").write_text('{"rows": 2'), "state.json is not JSON", id="cut"),
     pytest.param(
-        "jsonl", lambda p: _edit_state(p, lambda s: {**s, "rows": "200"}), "nothing to resume", id="state-rows-a-string"
+        "jsonl", lambda p: _edit_state(p, lambda s: {**s, "rows": "200"}), "is damaged", id="state-rows-a-string"
     ),
     pytest.param(
         "jsonl",
         lambda p: _edit_state(p, lambda s: {k: v for k, v in s.items() if k != "layout"}),
-        "nothing to resume",
+        "is damaged",
         id="state-without-layout",
     ),
 ]
@@ -513,7 +699,10 @@ def test_resume_after_the_partial_folder_was_damaged_starts_over(
     damage(partial)
     capsys.readouterr()
     assert score(src, "--out", out, *common, "--resume") == 0
-    assert notice in capsys.readouterr().err
+    err = capsys.readouterr().err
+    assert notice in err and f"run for {out}" in err and "; starting from the first row" in err, err
+    if "state" in notice or "damaged" in notice:
+        assert f"the saved state of the unfinished run for {out} is damaged" in err, err
     if out_format == "parquet":
         import pyarrow.parquet as pq
 
@@ -522,6 +711,102 @@ def test_resume_after_the_partial_folder_was_damaged_starts_over(
     else:
         assert out.read_bytes() == reference.read_bytes()
     assert not partial.exists()
+
+
+def test_the_interrupt_line_says_the_rows_resume_keeps(
+    scoring_registry: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """An interrupt while a chunk was being counted (its rows added in memory, state.json not yet
+    replaced) said "stopped after 163,840 rows" where --resume kept 155,648."""
+    from textsieve.files import atomic_write_text
+    from textsieve.scoring import local
+
+    src = write_jsonl(tmp_path / "in.jsonl", uci_rows()[:500])
+    out = tmp_path / "out.jsonl"
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 0, "--chunk-rows", 100]
+    saves = {"n": 0}
+
+    def save(run: Any) -> None:  # the start, then each chunk: the third is the second chunk
+        saves["n"] += 1
+        if saves["n"] == 3:
+            raise KeyboardInterrupt
+        atomic_write_text(run.state_path, json.dumps(run.state))
+        run.saved_rows = run.state["rows"]
+
+    monkeypatch.setattr(local._Run, "save", save)
+    assert score(src, "--out", out, *common) == 130
+    monkeypatch.undo()
+    kept = json.loads((tmp_path / ".out.jsonl.score-partial" / "state.json").read_text(encoding="utf-8"))["rows"]
+    assert kept == 100
+    assert "stopped after 100 rows" in capsys.readouterr().err
+    assert score(src, "--out", out, *common, "--resume") == 0
+    assert "scored 500 rows" in (line := capsys.readouterr().out) and "100 of them from the interrupted run" in line
+
+
+@pytest.mark.parametrize(
+    ("again", "expected_msg"),
+    [
+        pytest.param(["--spans", "2"], "used other options (--spans 0, now 2); run with the same options", id="spans"),
+        pytest.param(
+            ["--keep", "id", "--strict"],
+            "used other options (every column (no --keep), now --keep id; no --strict, now --strict)",
+            id="keep-and-strict",
+        ),
+        pytest.param(["--chunk-rows", "50"], "used other options (--chunk-rows 100, now 50)", id="chunk-rows"),
+        pytest.param(["--output-format", "csv"], "wrote jsonl (now csv); pass --output-format jsonl", id="format"),
+    ],
+)
+def test_resume_refusals_name_what_differs_as_the_command_line_spells_it(
+    again: list[str],
+    expected_msg: str,
+    scoring_registry: Path,
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """They printed both runs' options as Python dicts: "used another options ({'text_field': ...}, now {...})"."""
+    src = write_jsonl(tmp_path / "in.jsonl", uci_rows()[:500])
+    out = tmp_path / "out.jsonl"
+    common = ["--model", MODEL, "--registry", scoring_registry, "--workers", 0, "--chunk-rows", 100]
+    _interrupt_at_third_chunk(monkeypatch, "jsonl")
+    assert score(src, "--out", out, *common) == 130
+    monkeypatch.undo()
+    capsys.readouterr()
+    assert score(src, "--out", out, *common, *again, "--resume") == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and f"--resume: the unfinished run for {out} {expected_msg}" in err[0], err
+    assert "{" not in err[0] and "run without --resume to start over" in err[0]
+
+
+def test_resume_after_a_promotion_says_how_to_continue_with_the_version_it_used(
+    tiny_bundles: dict[str, Path], tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """The interrupt line says "run the same command with --resume"; after a promotion that pinned the
+    new live version and was refused: "used another version (1, now 2)"."""
+    from tests.helpers.service import make_registry
+    from textsieve.registry import open_registry
+
+    registry = make_registry(tmp_path / "registry", tiny_bundles, live=1)
+    src = write_jsonl(tmp_path / "in.jsonl", uci_rows()[:500])
+    out = tmp_path / "out.jsonl"
+    common = ["--model", MODEL, "--registry", registry, "--workers", 0, "--chunk-rows", 100]
+    reference = tmp_path / "reference.jsonl"
+    assert score(src, "--out", reference, *common) == 0
+    _interrupt_at_third_chunk(monkeypatch, "jsonl")
+    assert score(src, "--out", out, *common) == 130
+    monkeypatch.undo()
+    with open_registry(registry) as reg:
+        reg.promote(MODEL, 2, "live", reason="v2 replaces v1", force=True)
+    capsys.readouterr()
+    assert score(src, "--out", out, *common, "--resume") == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err == [
+        f"textsieve: error: --resume: the unfinished run for {out} used version 1 (now 2); continue it with "
+        "--version 1 --retired --resume, or run without --resume to start over"
+    ]
+    assert score(src, "--out", out, *common, "--version", "1", "--retired", "--resume") == 0
+    assert "200 of them from the interrupted run" in capsys.readouterr().out
+    assert out.read_bytes() == reference.read_bytes()
 
 
 @pytest.mark.parametrize(

@@ -19,9 +19,11 @@ from types import FrameType
 from typing import TYPE_CHECKING, TextIO
 
 from textsieve.errors import InputError
-from textsieve.scoring.local import Options, Summary
+from textsieve.scoring.local import WORKERS_PER_CORE, Options, Summary
 from textsieve.scoring.local import score_file as _score_file
 from textsieve.scoring.model import _kind, _open
+from textsieve.scoring.pool import default_workers
+from textsieve.texts import MAX_SPANS
 
 if TYPE_CHECKING:
     from textsieve.registry.api import Registry
@@ -162,10 +164,17 @@ def _check_options(options: Options) -> None:
         problems.append(f"keep must be None or a list of column names, not {keep!r}")
     if not _whole(o["spans"], 0):
         problems.append(f"spans must be a whole number, 0 or more, not {o['spans']!r}")
+    elif int(o["spans"]) > MAX_SPANS:  # type: ignore[call-overload]
+        problems.append(f"spans must be at most {MAX_SPANS} per text (the HTTP API's limit too), not {o['spans']!r}")
     if not isinstance(o["strict"], bool):
         problems.append(f"strict must be True or False, not {o['strict']!r}")
     if o["workers"] is not None and not _whole(o["workers"], 0):
         problems.append(f"workers must be None (one per core), 0 (this process) or more, not {o['workers']!r}")
+    elif o["workers"] is not None and int(o["workers"]) > WORKERS_PER_CORE * default_workers():  # type: ignore[call-overload]
+        most = WORKERS_PER_CORE * default_workers()
+        problems.append(
+            f"workers must be at most {most} ({WORKERS_PER_CORE} per core this process may use), not {o['workers']!r}"
+        )
     if not _whole(o["chunk_rows"], 1):
         problems.append(f"chunk_rows must be a whole number, 1 or more, not {o['chunk_rows']!r}")
     for name in ("input_format", "output_format"):

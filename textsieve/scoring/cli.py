@@ -38,6 +38,29 @@ def _count(text: str) -> int:
     return value
 
 
+def _spans(text: str) -> int:
+    from textsieve.texts import MAX_SPANS
+
+    value = _count(text)
+    if value > MAX_SPANS:
+        raise argparse.ArgumentTypeError(f"at most {MAX_SPANS} spans per text (the HTTP API's limit too), not {value}")
+    return value
+
+
+def _workers(text: str) -> int:
+    from textsieve.scoring.local import WORKERS_PER_CORE
+    from textsieve.scoring.pool import default_workers
+
+    value = _count(text)
+    cores = default_workers()
+    if value > WORKERS_PER_CORE * cores:
+        raise argparse.ArgumentTypeError(
+            f"at most {WORKERS_PER_CORE * cores} ({WORKERS_PER_CORE} per core this process may use, {cores}), "
+            f"not {value}"
+        )
+    return value
+
+
 def _seconds(text: str) -> float:
     try:
         value = float(text)
@@ -73,14 +96,18 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         "that becomes a Parquet dataset",
     )
     p.add_argument("--text-field", default="text", help="the column or JSON field holding each row's text")
-    p.add_argument("--spans", type=_count, default=0, help="n-gram spans to add per row (0: none)")
+    p.add_argument("--spans", type=_spans, default=0, help="n-gram spans to add per row (0: none)")
     p.add_argument(
         "--keep",
         help="comma-separated input columns to carry into the output (default: all; '' for none)",
     )
     p.add_argument("--strict", action="store_true", help="stop at the first row whose text is missing or empty")
     p.add_argument("--resume", action="store_true", help="continue an interrupted run from its last completed chunk")
-    p.add_argument("--workers", type=_count, help="worker processes (default: one per core; 0: in this process)")
+    p.add_argument(
+        "--workers",
+        type=_workers,
+        help="worker processes (default: one per core; 0: in this process; at most 4 per core)",
+    )
     p.add_argument("--chunk-rows", type=_positive, default=8192, help="rows read, scored and written at a time")
     p.add_argument("--input-format", choices=FORMAT_CHOICES, help="input format when the name does not say")
     p.add_argument("--output-format", choices=FORMAT_CHOICES, help="output format when the name does not say")
@@ -169,6 +196,7 @@ def _score(args: argparse.Namespace) -> int:
 
         fork_server(PRELOAD)
     from textsieve.environment import registry_location
+    from textsieve.files import check_out_file
     from textsieve.registry.api import open_registry
     from textsieve.scoring.columns import parse_keep
     from textsieve.scoring.local import Options
@@ -198,6 +226,7 @@ def _score(args: argparse.Namespace) -> int:
 
             if args.output_format not in (None, "parquet"):
                 raise InputError("--cluster writes a Parquet dataset; drop --output-format or make it parquet")
+            check_out_file(Path(args.out), allowed="a folder for the Parquet dataset (a new one, or one it wrote)")
             summary = score_on_cluster(
                 reg,
                 args.model,

@@ -21,7 +21,7 @@ from typing import TYPE_CHECKING, Any
 
 from textsieve.errors import InputError
 from textsieve.files import FILE_MODE, atomic_write_bytes
-from textsieve.labelled import cr_line_ends, cr_separated
+from textsieve.labelled import cr_line_ends, cr_separated, csv_reader
 from textsieve.scoring.columns import ERROR, LABEL, SPANS, Layout, probability_column
 from textsieve.scoring.rows import Misshapen, Row, Unreadable
 
@@ -190,13 +190,16 @@ class CsvReader(_ByteCounted):
         self._text = self._decoded()
         # strict: a quote that does not close where RFC 4180 says it must is an error, not a field
         # that silently runs on through the rows after it.
-        self._reader = csv.reader(self._text, delimiter=self.delimiter, strict=True)
+        self._reader = csv_reader(self._text, self.delimiter)
         try:
             # Blank lines before the header (an export's empty first line) are skipped, as
             # `textsieve train` skips them; the header was read as no columns at all.
             self.columns = next(row for row in self._reader if row and (len(row) > 1 or row[0].strip()))
         except StopIteration:
-            raise InputError(f"{path}: empty; a {self.kind} file starts with a header line") from None
+            # No header and no rows: 0 rows to score, as an empty JSONL or Parquet file has (columns
+            # None: no column can be checked for, as in JSON Lines).
+            self.columns = None
+            return
         except csv.Error as exc:
             raise InputError(f"{path}: not {self.kind} ({exc})") from exc
         check_unique(path, self.columns, "the header")

@@ -29,13 +29,13 @@ from typing import TYPE_CHECKING, Any, TextIO
 
 from textsieve import __version__
 from textsieve.errors import InputError, UnavailableError
-from textsieve.files import atomic_write_text, check_writable, fsync_dir
+from textsieve.files import atomic_write_text, check_out_file, check_writable, fsync_dir, special_file
 from textsieve.scoring import formats
 from textsieve.scoring.columns import Layout, plan
 from textsieve.scoring.model import Resolved, resolve
 from textsieve.scoring.pool import Pool, default_workers, pieces
 from textsieve.scoring.progress import Progress
-from textsieve.scoring.rows import Scored, Split, check_fields, output_rows, split
+from textsieve.scoring.rows import Scored, Split, Unreadable, check_fields, output_rows, split
 
 if TYPE_CHECKING:
     import pyarrow as pa
@@ -45,6 +45,9 @@ if TYPE_CHECKING:
 # 2: the state records the CRC-32 of the output written so far (committed_crc32).
 STATE_FORMAT = 2
 DEFAULT_CHUNK = 8192
+# The most worker processes a core this process may use (default_workers()): more only add sessions in
+# memory and switches between them (--workers 999 tried to start 999).
+WORKERS_PER_CORE = 4
 # Chunks in flight: one being written while the workers score the next two; memory holds three.
 DEPTH = 3
 CAUTION = (
@@ -115,6 +118,7 @@ def sidecar(output: Path) -> Path:
 def check_output(output: Path) -> None:
     if output.is_dir():
         raise InputError(f"{output}: is a folder; --out names the file to write (.jsonl, .csv, .tsv or .parquet)")
+    check_out_file(output)
     if not output.parent.is_dir():
         raise InputError(f"{output.parent}: no such folder for --out; create it first")
     check_writable(output.parent, output)
@@ -145,6 +149,9 @@ class _Run:
         self.work = work
         self.out_fmt = out_fmt
         self.state: dict[str, Any] = {}
+        # The rows state.json counts: what --resume keeps. The state in memory runs ahead of it while
+        # a chunk is being counted (an interrupt between the two said one chunk more than was kept).
+        self.saved_rows = 0
 
     @property
     def state_path(self) -> Path:
@@ -154,14 +161,16 @@ class _Run:
     def parts(self) -> Path:
         return self.work / "parts"
 
-    def load(self) -> dict[str, Any] | None:
-        """The saved state, or None when there is none this version can continue (missing, cut
-        short, from another state format, or not the shape it writes)."""
+    def load(self) -> dict[str, Any] | str | None:
+        """The saved state; None when there is none; or why this version cannot continue it (cut
+        short, not JSON, from another state format, or not the shape it writes)."""
         try:
             data = json.loads(self.state_path.read_text(encoding="utf-8"))
-        except (FileNotFoundError, ValueError):
+        except FileNotFoundError:
             return None
-        return data if _well_formed(data) else None
+        except (ValueError, OSError):
+            return "is not JSON"
+        return data if _well_formed(data) else "is not a state this version wrote"
 
     def damage(self, state: dict[str, Any]) -> str | None:
         """Why the output the state counts is no longer on disk as it was written, or None."""
@@ -179,6 +188,7 @@ class _Run:
 
     def save(self) -> None:
         atomic_write_text(self.state_path, json.dumps(self.state, indent=1) + "\n")
+        self.saved_rows = int(self.state["rows"])
 
     def part(self, index: int) -> Path:
         return self.parts / f"{index:06d}.parquet"
@@ -203,26 +213,93 @@ def _well_formed(state: object) -> bool:
     )
 
 
-def _resume_state(run: _Run, expected: dict[str, Any], out: TextIO) -> dict[str, Any] | None:
+def _resume_state(
+    run: _Run, expected: dict[str, Any], output: Path, registry: Registry, out: TextIO
+) -> dict[str, Any] | None:
     old = run.load()
     if old is None:
-        print(f"textsieve: nothing to resume for {run.work.name}; starting from the first row", file=out)
+        print(f"textsieve: nothing to resume for {output}; starting from the first row", file=out)
+        return None
+    if isinstance(old, str):
+        print(
+            f"textsieve: the saved state of the unfinished run for {output} is damaged ({run.work.name}/state.json "
+            f"{old}); starting from the first row",
+            file=out,
+        )
         return None
     for key in ("input", "options", "output_format", "model", "version", "bundle_sha256"):
         if old.get(key) != expected[key]:
-            raise InputError(
-                f"--resume: the unfinished run in {run.work} used another {key.replace('_', ' ')} "
-                f"({old.get(key)!r}, now {expected[key]!r}); run without --resume to start over"
-            )
+            raise InputError(f"--resume: the unfinished run for {output} {_differs(key, old, expected, registry)}")
     why = run.damage(old)
     if why is not None:
         # Appending to it would splice garbage, or a file padded with NUL bytes, into OUTPUT.
         print(
-            f"textsieve: cannot continue the unfinished run in {run.work.name}: {why}; starting from the first row",
+            f"textsieve: cannot continue the unfinished run for {output} ({run.work.name}: {why}); "
+            "starting from the first row",
             file=out,
         )
         return None
     return old
+
+
+# Options.fixed()'s keys as the command line spells them.
+_FLAGS = {
+    "text_field": "--text-field",
+    "keep": "--keep",
+    "spans": "--spans",
+    "strict": "--strict",
+    "chunk_rows": "--chunk-rows",
+}
+START_OVER = "run without --resume to start over"
+
+
+def _shown(key: str, value: object, *, again: bool = False) -> str:
+    """An option as it is typed (``--spans 3``; ``again``: its value alone, ``3``, after the flag was
+    named), ``--keep id,body``, ``--keep ''``, every column, ``--strict`` or not."""
+    if key == "keep":
+        if value is None:
+            return "every column (no --keep)"
+        return "--keep " + (",".join(map(str, value)) if value else "''")  # type: ignore[call-overload]
+    if key == "strict":
+        return "--strict" if value else "no --strict"
+    return str(value) if again else f"{_FLAGS.get(key, key)} {value}"
+
+
+def _differs(key: str, old: dict[str, Any], expected: dict[str, Any], registry: Registry) -> str:
+    """How the unfinished run differs from this command in ``key``, and what to run instead."""
+    was, now = old.get(key), expected[key]
+    if key == "options" and isinstance(was, dict) and isinstance(now, dict):
+        changed = [k for k in now if was.get(k) != now[k]]
+        parts = [f"{_shown(k, was.get(k))}, now {_shown(k, now[k], again=True)}" for k in changed]
+        return f"used other options ({'; '.join(parts)}); run with the same options, or {START_OVER}"
+    if key == "input":
+        return f"read another input, or this one before it changed (size, modification time); {START_OVER}"
+    if key == "output_format":
+        return f"wrote {was} (now {now}); pass --output-format {was} to continue it, or {START_OVER}"
+    if key == "model":
+        return f"used the model {was!r} (now {now!r}); pass --model {was} to continue it, or {START_OVER}"
+    if key == "version" and isinstance(was, int):
+        return f"used version {was} (now {now}); {_resume_version(registry, str(old.get('model')), was)}"
+    return f"used another bundle of version {now} (sha256 {str(was)[:12]}…, now {str(now)[:12]}…); {START_OVER}"
+
+
+def _resume_version(registry: Registry, model: str, version: int) -> str:
+    """How to continue a run that scored with ``version``: that version named, with --retired when a
+    promotion has retired it since (the hint after an interrupt was 'the same command', which then
+    pinned the new live version and was refused)."""
+    from textsieve.errors import NotFoundError
+    from textsieve.registry.records import State
+
+    try:
+        info = registry.version(model, version)
+    except NotFoundError:
+        info = None
+    if info is None:
+        return START_OVER
+    flags = (
+        f"--version {version} --retired --resume" if info.state == State.RETIRED else f"--version {version} --resume"
+    )
+    return f"continue it with {flags}, or {START_OVER}"
 
 
 def _combine(pool: Pool, futures: Sequence[tuple[slice, Future[Scored]]], count: int, classes: int) -> Scored:
@@ -254,6 +331,19 @@ def _other_separator(reader: formats.Reader) -> str | None:
     )
 
 
+def _first_bytes(reader: formats.Reader, most: int = 24) -> str:
+    """The input's first non-blank line's first ``most`` bytes, as a bytes literal (control bytes and
+    non-ASCII escaped, so nothing in it reaches the terminal as it is), clipped with "…"."""
+    path = getattr(reader, "path", None)
+    if path is None:
+        return "nothing readable"
+    with open(path, "rb") as f:
+        block = f.read(1 << 16)  # a compressed file may hold no line break for a long way
+    line = next((raw for raw in block.split(b"\n") if raw.strip()), b"")
+    shown = repr(line.strip()[:most])
+    return shown + ("…" if len(line.strip()) > most else "")
+
+
 def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolved: Resolved, err: TextIO) -> Layout:
     if reader.columns is not None:
         if opts.text_field not in reader.columns:
@@ -269,6 +359,17 @@ def _layout_for(reader: formats.Reader, first: list[Any], opts: Options, resolve
         for row in first:
             if isinstance(row, dict):
                 seen.update(dict.fromkeys(row))
+        if first and all(isinstance(row, Unreadable) and formats.LONE_SURROGATE not in row for row in first):
+            # A gzip file, a CSV file named .jsonl: no field was seen because no line was JSON at all.
+            where = getattr(reader, "path", "the input")
+            which = (
+                f"none of the first {len(first):,} lines of {where} is" if len(first) > 1 else f"{where}'s line is not"
+            )
+            raise InputError(
+                f"{which} JSON "
+                f"(the first starts with {_first_bytes(reader)}); JSON Lines holds one JSON object a line, "
+                "in UTF-8: decompress a compressed file first, or name the format with --input-format"
+            )
         if first and opts.text_field not in seen:
             shown = ", ".join(list(seen)[:20]) or "none"
             raise InputError(
@@ -324,6 +425,12 @@ def score_file(
             f"{output}: its metadata goes to {meta.name}, which is the input file; "
             "name the input or the output differently"
         )
+    what = special_file(meta) if out_fmt != "parquet" else None
+    if what is not None:
+        raise InputError(
+            f"--out {output}: its metadata goes to {meta}, which is {what}, which textsieve does not write over; "
+            "remove it or name another output"
+        )
     if opts.chunk_rows < 1:
         raise InputError(f"--chunk-rows must be 1 or more, not {opts.chunk_rows}")
     reader = formats.open_reader(source, in_fmt)
@@ -343,16 +450,20 @@ def score_file(
         previous = None
         if work.is_dir():
             with _locked(work):
-                previous = _resume_state(run, expected, err) if resume else None
+                previous = _resume_state(run, expected, output, registry, err) if resume else None
                 if previous is None:
                     if not resume:
                         print(f"textsieve: discarding the unfinished run in {work} (--resume continues it)", file=err)
                     shutil.rmtree(work)
         elif resume:
-            print(f"textsieve: nothing to resume for {output.name}; starting from the first row", file=err)
+            print(f"textsieve: nothing to resume for {output}; starting from the first row", file=err)
         skip = int(previous["rows"]) if previous else 0
         chunks = reader.chunks(opts.chunk_rows, skip=skip)
         first = next(chunks, [])
+        if not first and not skip:
+            # Scored all the same (an output with its columns and metadata, exit 0): a scheduled run on a
+            # day with nothing new is not an error. Said, so an empty export upstream is not missed.
+            print(f"textsieve: 0 rows scored: {source} is empty", file=err)
         if previous:
             layout = Layout(
                 tuple(previous["layout"]["kept"]),
@@ -400,7 +511,7 @@ def _stream(
         "committed_bytes": 0,
         "committed_crc32": 0,
     }
-    resumed = int(run.state["rows"])
+    resumed = run.saved_rows = int(run.state["rows"])
     if previous is None:
         run.save()
     writer: formats.AppendWriter | None = None
@@ -460,7 +571,7 @@ def _stream(
         pool.close(cancel=True)
         # The CLI's one line for Ctrl-C or SIGTERM carries it (textsieve/cli.py _stopped).
         exc.add_note(
-            f"stopped after {run.state['rows']:,} rows; {output} was not written; "
+            f"stopped after {run.saved_rows:,} rows; {output} was not written; "
             "run the same command with --resume to continue"
         )
         raise
@@ -569,4 +680,14 @@ def _finish(
     shutil.rmtree(run.work, ignore_errors=True)
 
 
-__all__ = ["DEFAULT_CHUNK", "Options", "Summary", "check_output", "metadata", "score_file", "sidecar", "work_dir"]
+__all__ = [
+    "DEFAULT_CHUNK",
+    "WORKERS_PER_CORE",
+    "Options",
+    "Summary",
+    "check_output",
+    "metadata",
+    "score_file",
+    "sidecar",
+    "work_dir",
+]

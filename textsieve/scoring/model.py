@@ -13,7 +13,7 @@ from typing import TYPE_CHECKING, Any
 from textsieve.errors import InputError, NotFoundError, StateError
 from textsieve.registry.records import State
 from textsieve.scoring.rows import article
-from textsieve.texts import nothing_to_classify, text_refusal
+from textsieve.texts import MAX_SPANS, nothing_to_classify, text_refusal
 
 if TYPE_CHECKING:
     import pandas as pd
@@ -242,16 +242,14 @@ def _kind(value: object) -> str:
     return name
 
 
-# Spans a text can have are bounded by the model's filters; a larger number asks for all of them and
-# is capped here, within the int64 the span finder counts in (10**30 was an OverflowError from NumPy).
-MAX_SPANS = 2**31 - 1
-
-
 def _spans(spans: object) -> int:
-    """``spans`` as an int: a whole number, 0 or more (NumPy's integers too); InputError otherwise."""
+    """``spans`` as an int: a whole number from 0 to MAX_SPANS, the HTTP API's default limit (NumPy's
+    integers too); InputError otherwise. 1000 was taken (and 10**30 capped) where the service says 422."""
     if isinstance(spans, bool) or not isinstance(spans, Integral) or spans < 0:
         raise InputError(f"spans must be a whole number, 0 or more, not {spans!r}")
-    return min(int(spans), MAX_SPANS)
+    if int(spans) > MAX_SPANS:
+        raise InputError(f"spans {spans} is above the limit of {MAX_SPANS} per text (the HTTP API's too)")
+    return int(spans)
 
 
 def _missing(pd: Any, value: object) -> bool:

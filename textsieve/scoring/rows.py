@@ -11,7 +11,7 @@ from typing import TYPE_CHECKING, Any
 from textsieve.errors import InputError
 from textsieve.labelled import json_kind
 from textsieve.scoring.columns import Layout
-from textsieve.texts import nothing_to_classify
+from textsieve.texts import nothing_to_classify, text_refusal
 
 if TYPE_CHECKING:
     import numpy as np
@@ -105,6 +105,9 @@ def text_problem(row: Any, field: str) -> str | None:
     if not isinstance(value, str):
         return f"text field {field!r} is {json_kind(value)}, not a string"
     why = nothing_to_classify(value)
+    if why is None:
+        # A NUL or a lone surrogate: refused by the HTTP API, predict and score_frame, in these words.
+        why = text_refusal(value)
     if why is not None:
         return f"text field {field!r} {why}"
     return None
@@ -159,7 +162,8 @@ def split(rows: Sequence[Any], field: str, *, strict: bool, first_row: int) -> S
     for i, row in enumerate(rows):
         # Most rows are a plain object whose text starts with an ASCII character other than whitespace:
         # such a text has something to classify (text_problem says None, after three calls and a
-        # strip()), so it is taken here; every other row gets text_problem's own verdict.
+        # strip()), so it is taken here; every other row gets text_problem's own verdict. A NUL in a
+        # text taken here is looked for once a chunk, below.
         if type(row) is dict:
             value = row.get(field)
             if type(value) is str and value and value[0].isascii() and not value[0].isspace():
@@ -171,10 +175,35 @@ def split(rows: Sequence[Any], field: str, *, strict: bool, first_row: int) -> S
             texts.append(row[field])
             scored.append(i)
         elif strict:
+            _refuse_nul(rows, field, texts, scored, first_row)  # a NUL in an earlier row is the first
             raise InputError(f"row {first_row + i + 1}: {problem} (--strict stops at the first such row)")
         else:
             problems[i] = problem
+    if _has_nul(texts):
+        if strict:
+            _refuse_nul(rows, field, texts, scored, first_row)
+        keep = [j for j, text in enumerate(texts) if "\0" not in text]
+        for j in range(len(texts)):
+            if "\0" in texts[j]:
+                problems[scored[j]] = text_problem(rows[scored[j]], field) or "holds a NUL"
+        texts = [texts[j] for j in keep]
+        scored = [scored[j] for j in keep]
     return Split(texts, scored, problems)
+
+
+def _has_nul(texts: list[str]) -> bool:
+    """Whether any text holds a NUL (U+0000), which the HTTP API, predict and score_frame refuse: one
+    join and one scan a chunk, about a third of the instructions of a test a row (bench/README.md,
+    "Scoring a file")."""
+    return bool(texts) and "\0" in "".join(texts)
+
+
+def _refuse_nul(rows: Sequence[Any], field: str, texts: list[str], scored: list[int], first_row: int) -> None:
+    """With ``--strict``: InputError naming the first of ``texts`` that holds a NUL, if one does."""
+    if _has_nul(texts):
+        j = next(j for j, text in enumerate(texts) if "\0" in text)
+        problem = text_problem(rows[scored[j]], field)
+        raise InputError(f"row {first_row + scored[j] + 1}: {problem} (--strict stops at the first such row)")
 
 
 def output_rows(rows: Sequence[Any], part: Split, results: Scored, layout: Layout) -> list[Row]:
