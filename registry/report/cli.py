@@ -93,7 +93,7 @@ def _check_dependent_flags(args: argparse.Namespace) -> None:
 
 
 def cli_evaluate(args: argparse.Namespace) -> int:
-    from textsieve.files import atomic_write_bytes, check_writable, nearest_folder
+    from textsieve.files import atomic_write_bytes, check_out_file, check_writable, nearest_folder, special_file
     from textsieve.registry.cli import _open
     from textsieve.registry.evalsets import load_evalset
     from textsieve.registry.names import validate_version
@@ -108,8 +108,10 @@ def cli_evaluate(args: argparse.Namespace) -> int:
     out = args.out if args.out is not None else Path(f"report-{args.model}-{version}")
     # A place the report cannot be written to is said before the scoring, not after it.
     if out.exists() and not out.is_dir():
-        raise InputError(f"--out {out}: is a file; --out names a folder for {JSON_FILE} and {HTML_FILE}")
+        what = special_file(out) or "a file"
+        raise InputError(f"--out {out}: is {what}; --out names a folder for {JSON_FILE} and {HTML_FILE}")
     for name in (JSON_FILE, HTML_FILE):
+        check_out_file(out / name, flag="--out", allowed=f"a folder whose {name} is a regular file or absent")
         # The report is renamed over OUT/NAME: an evaluation set of that name there would be lost.
         if args.evalset is not None and (out / name).exists() and os.path.samefile(out / name, args.evalset):
             raise InputError(

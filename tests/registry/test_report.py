@@ -704,10 +704,15 @@ def test_evaluate_refuses_to_rename_its_report_over_a_fifo(
     os.mkfifo(folder / "report.json")
     code, out, err = _run(capsys, "evaluate", "m", "1", "--out", str(folder), *r)
     assert code == 2 and out == ""
-    last = err.strip().splitlines()[-1]
-    assert last.startswith("textsieve: error: ") and "report.json: is a FIFO (named pipe)" in last, err
+    # Said before any scoring (no "evaluate: …" progress line), as a place that cannot be written is.
+    (line,) = err.strip().splitlines()
+    assert line.startswith("textsieve: error: ") and "report.json: is a FIFO (named pipe)" in line, err
     assert stat.S_ISFIFO((folder / "report.json").lstat().st_mode)
     assert sorted(p.name for p in folder.iterdir()) == ["report.json"]
+    # --out itself a FIFO: named as what it is, not "a file".
+    os.mkfifo(tmp_path / "pipe")
+    code, _, err = _run(capsys, "evaluate", "m", "1", "--out", str(tmp_path / "pipe"), *r)
+    assert code == 2 and "is a FIFO (named pipe); --out names a folder" in err, err
 
 
 # -- real data: the UCI sentences ------------------------------------------------------------------
