@@ -105,3 +105,19 @@ def test_a_flag_without_the_flag_it_works_with_is_refused(
     _, err = capsys.readouterr()
     assert code == 2 and err.strip().splitlines() == [f"textsieve: error: {expected_msg}"], err
     assert not out.exists()
+
+
+@pytest.mark.parametrize("extra", [["--workers", "2"], ["--chunk-rows", "100"]], ids=["workers", "chunk-rows"])
+def test_a_local_sizing_flag_with_cluster_is_refused(
+    extra: list[str], retired_v1: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # Both were ignored with --cluster (its workers score a partition at a time), exit 0 (found by an audit).
+    source = tmp_path / "in.jsonl"
+    source.write_text('{"text": "refund my fee"}\n', encoding="utf-8")
+    out = tmp_path / "out"
+    argv = ["score", str(source), "--model", MODEL, "--out", str(out), "--registry", str(retired_v1)]
+    code = main([*argv, "--cluster", "tcp://127.0.0.1:9", *extra])  # refused before any connection
+    _, err = capsys.readouterr()
+    (line,) = err.strip().splitlines()
+    assert code == 2 and line.startswith(f"textsieve: error: {extra[0]} sizes a run on this machine"), err
+    assert "dask worker --nthreads" in line and not out.exists()

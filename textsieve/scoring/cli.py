@@ -106,9 +106,13 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p.add_argument(
         "--workers",
         type=_workers,
-        help="worker processes (default: one per core; 0: in this process; at most 4 per core)",
+        help="worker processes (default: one per core; 0: in this process; at most 4 per core; not with --cluster)",
     )
-    p.add_argument("--chunk-rows", type=_positive, default=8192, help="rows read, scored and written at a time")
+    p.add_argument(
+        "--chunk-rows",
+        type=_positive,
+        help="rows read, scored and written at a time (default: 8192; not with --cluster)",
+    )
     p.add_argument("--input-format", choices=FORMAT_CHOICES, help="input format when the name does not say")
     p.add_argument("--output-format", choices=FORMAT_CHOICES, help="output format when the name does not say")
     p.add_argument(
@@ -185,6 +189,14 @@ def _check_dependent_flags(args: argparse.Namespace) -> None:
     ):
         if given and getattr(args, needed.removeprefix("--")) is None:
             raise InputError(f"{flag} works only with {needed}; add {needed} or drop {flag}")
+    # A cluster's partitions are scored by its own workers, a partition at a time: these size a local run.
+    for value, flag in ((args.workers, "--workers"), (args.chunk_rows, "--chunk-rows")):
+        if args.cluster and value is not None:
+            raise InputError(
+                f"{flag} sizes a run on this machine and does nothing with --cluster (its workers score a "
+                "partition at a time: size them with `dask worker --nthreads`, the partitions with --partition-mb); "
+                f"drop {flag}"
+            )
 
 
 def _score(args: argparse.Namespace) -> int:
@@ -199,7 +211,7 @@ def _score(args: argparse.Namespace) -> int:
     from textsieve.files import check_out_file
     from textsieve.registry.api import open_registry
     from textsieve.scoring.columns import parse_keep
-    from textsieve.scoring.local import Options
+    from textsieve.scoring.local import DEFAULT_CHUNK, Options
 
     keep = parse_keep(args.keep)
     options = Options(
@@ -208,7 +220,7 @@ def _score(args: argparse.Namespace) -> int:
         spans=args.spans,
         strict=args.strict,
         workers=args.workers,
-        chunk_rows=args.chunk_rows,
+        chunk_rows=DEFAULT_CHUNK if args.chunk_rows is None else args.chunk_rows,
         input_format=args.input_format,
         output_format=args.output_format,
         progress_every=args.progress_every,
