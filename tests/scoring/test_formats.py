@@ -10,6 +10,7 @@ from __future__ import annotations
 import csv
 import datetime as dt
 import decimal
+import io
 import json
 import math
 from pathlib import Path
@@ -340,3 +341,26 @@ def test_a_csv_that_is_not_utf8_stops_the_run_naming_the_line(tmp_path: Path, co
     with pytest.raises(formats.InputError) as caught:
         _read_csv(path)
     assert words in str(caught.value) and "save" in str(caught.value)
+
+
+@pytest.mark.parametrize("writer", [formats.CsvWriter, formats.TsvWriter])
+def test_a_non_finite_number_is_an_empty_cell_as_a_missing_value_is(tmp_path: Path, writer: type) -> None:
+    # The JSON Lines output writes NaN and ±Infinity as null (RFC 8259 §6 has neither); a CSV cell
+    # held "nan" or "inf" at the top level while the same value nested in a list became null (found by
+    # an audit, 2026-12-05). The reference is the csv module reading the cells back.
+    from textsieve.scoring.columns import plan
+
+    layout = plan(["id", "score", "deep"], None, ["a"], spans=False)
+    values = [
+        {"id": 1, "score": math.nan, "deep": [math.inf]},
+        {"id": 2, "score": -math.inf, "deep": None},
+        {"id": 3, "score": 0.25, "deep": {"x": 1}},
+    ]
+    rows = [{**v, "label": "a", "probability:a": 1.0, "error": None} for v in values]
+    w = writer(tmp_path / "out", layout, start=0)
+    try:
+        out = w.encode(rows).decode("utf-8")
+    finally:
+        w.close()
+    read = list(csv.reader(io.StringIO(out), delimiter=writer.delimiter))
+    assert [r[:3] for r in read] == [["1", "", "[null]"], ["2", "", ""], ["3", "0.25", '{"x": 1}']]

@@ -572,8 +572,14 @@ class TsvWriter(CsvWriter):
 
 
 def _cell(value: object) -> object:
-    if value is None or isinstance(value, str | int | float):
-        return "" if value is None else value
+    """A value as its CSV cell: a missing value and a non-finite number (NaN, ±Infinity, which the
+    JSON Lines output writes as null) are an empty cell; lists and objects their JSON."""
+    if value is None:
+        return ""
+    if isinstance(value, str | int):
+        return value
+    if isinstance(value, float):
+        return value if math.isfinite(value) else ""  # the csv module wrote "nan" and "inf"
     return _dumps(value)
 
 
