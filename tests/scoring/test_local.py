@@ -468,8 +468,9 @@ def test_bad_input_is_one_line_and_leaves_nothing(
     if "--model" not in argv:
         argv += ["--model", MODEL]
     before = sorted(p.name for p in work.iterdir())
+    local = [] if "--cluster" in argv else ["--workers", "0"]  # --workers is refused with --cluster
     out = subprocess.run(
-        [sys.executable, "-m", "textsieve.cli", "score", *argv, "--registry", str(registry), "--workers", "0"],
+        [sys.executable, "-m", "textsieve.cli", "score", *argv, "--registry", str(registry), *local],
         capture_output=True, text=True, timeout=120, cwd=work, env=child_env() | {"PYTHONPATH": str(ROOT)},
     )  # fmt: skip
     assert out.returncode == status, out.stderr
