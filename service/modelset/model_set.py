@@ -120,7 +120,9 @@ class ModelSet:
             await self._discover()
         except TextsieveError as exc:
             self.startup_error = exc.message
-            log.error("startup failed: %s (retrying every %ss)", private_detail(exc), self.settings.poll_seconds)
+            log.error(
+                "startup failed: %s (retrying every %s s)", private_detail(exc), f"{self.settings.poll_seconds:g}"
+            )
         finally:
             self.started = True
             self._update_ready()
