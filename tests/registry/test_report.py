@@ -618,6 +618,17 @@ def test_evaluate_bad_input_is_one_line_and_exit_2(
     assert not (tmp_path / "o").exists()
 
 
+def _two_versions(
+    capsys: pytest.CaptureFixture[str], tmp_path: Path, tiny_bundles: dict[str, Path], tiny_data: Path
+) -> list[str]:
+    """Versions 1 (bundle a, with the evaluation set) and 2 (bundle b) of 'm' published; the registry's flags."""
+    r = ["--registry", str(tmp_path / "reg")]
+    evalset = str(tiny_data / "test.jsonl")
+    assert _run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", "--evalset", evalset, *r)[0] == 0
+    assert _run(capsys, "publish", str(tiny_bundles["b"]), "--model", "m", *r)[0] == 0
+    return r
+
+
 @pytest.mark.parametrize(
     ("runs", "refused", "expected_msg"),
     [
@@ -638,10 +649,7 @@ def test_evaluate_refuses_a_run_folder_of_another_version(
     refused: str,
     expected_msg: str,
 ) -> None:
-    r = ["--registry", str(tmp_path / "reg")]
-    evalset = str(tiny_data / "test.jsonl")
-    assert _run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", "--evalset", evalset, *r)[0] == 0
-    assert _run(capsys, "publish", str(tiny_bundles["b"]), "--model", "m", *r)[0] == 0
+    r = _two_versions(capsys, tmp_path, tiny_bundles, tiny_data)
     mine, theirs = runs
     argv = ["evaluate", "m", "2", "--against", "1", "--out", str(tmp_path / "o"), "--run", str(tiny_runs[mine])]
     if theirs is not None:
@@ -661,10 +669,7 @@ def test_evaluate_with_both_run_folders_credits_each_version(
     tiny_runs: dict[str, Path],
     tiny_data: Path,
 ) -> None:
-    r = ["--registry", str(tmp_path / "reg")]
-    evalset = str(tiny_data / "test.jsonl")
-    assert _run(capsys, "publish", str(tiny_bundles["a"]), "--model", "m", "--evalset", evalset, *r)[0] == 0
-    assert _run(capsys, "publish", str(tiny_bundles["b"]), "--model", "m", *r)[0] == 0
+    r = _two_versions(capsys, tmp_path, tiny_bundles, tiny_data)
     out_dir = tmp_path / "o"
     code, _, err = _run(capsys, "evaluate", "m", "2", "--against", "1", "--out", str(out_dir),
                         "--run", str(tiny_runs["b"]), "--against-run", str(tiny_runs["a"]), *r)  # fmt: skip

@@ -46,6 +46,16 @@ def _python(code: str, bundle: Path, **pipes: int) -> subprocess.Popen[str]:
     )
 
 
+def _output(proc: subprocess.Popen[str], *, timeout: float) -> tuple[str, str]:
+    """What ``proc`` wrote to its stdout and stderr once it has ended; a failure if not within ``timeout`` s."""
+    try:
+        return proc.communicate(timeout=timeout)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        out, err = proc.communicate()
+        raise AssertionError(f"the scoring process did not end: {out!r} {err[-2000:]!r}") from None
+
+
 def _ended(pid: int) -> bool:
     """Whether ``pid`` has ended (gone, or a zombie waiting to be reaped: proc(5))."""
     try:
@@ -111,12 +121,7 @@ def test_the_scoring_process_ends_when_a_worker_dies_halfway_through_a_result(
         "print('closed', flush=True)\n"
     )
     proc = _python(code, tiny_bundles["a"], stderr=subprocess.PIPE)
-    try:
-        out, err = proc.communicate(timeout=30)
-    except subprocess.TimeoutExpired:
-        proc.kill()
-        out, err = proc.communicate()
-        raise AssertionError(f"the scoring process did not end: {out!r} {err[-2000:]!r}") from None
+    out, err = _output(proc, timeout=30)
     assert out == "closed\n", err[-2000:]
     assert proc.returncode == 0, err[-2000:]
 
@@ -142,11 +147,6 @@ def test_a_worker_killed_halfway_through_a_result_stops_the_run_with_one_line(ti
         "    print(exc, flush=True)\n"
     )
     proc = _python(code, tiny_bundles["a"], stderr=subprocess.PIPE)
-    try:
-        out, err = proc.communicate(timeout=60)
-    except subprocess.TimeoutExpired:
-        proc.kill()
-        out, err = proc.communicate()
-        raise AssertionError(f"the scoring process did not end: {out!r} {err[-2000:]!r}") from None
+    out, err = _output(proc, timeout=60)
     assert out.splitlines() == ["2", str(_stopped())], err[-2000:]
     assert proc.returncode == 0 and "Traceback" not in err, err[-2000:]
