@@ -165,12 +165,17 @@ class PromoteRequest(_Request):
     to: Literal["candidate", "live"]
     reason: str = Field(min_length=1, max_length=2000, description="recorded in the audit trail")
     force: bool = Field(False, description="override refusing gates (recorded)")
-    actor: str | None = Field(None, max_length=120, description="who is acting; default: admin-api@<client address>")
+    # The actor's rule (1-120 printable characters) is registry/names.py's, refused there in its words.
+    actor: str | None = Field(
+        None, description="who is acting, 1-120 printable characters; default: admin-api@<client address>"
+    )
 
 
 class RollbackRequest(_Request):
     reason: str = Field(min_length=1, max_length=2000, description="recorded in the audit trail")
-    actor: str | None = Field(None, max_length=120)
+    actor: str | None = Field(
+        None, description="who is acting, 1-120 printable characters; default: admin-api@<client address>"
+    )
 
 
 class SpanOut(BaseModel):

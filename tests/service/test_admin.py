@@ -3,6 +3,7 @@ rollback through the registry's rules, and the served version following at once.
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import pytest
@@ -125,3 +126,25 @@ async def test_a_missing_or_non_object_body_is_told_what_this_route_takes(
     assert words in body["detail"], body["detail"]
     with open_registry(registry_dir) as reg:
         assert reg.live(MODEL).version == 1
+
+
+@pytest.mark.parametrize("route", [PROMOTE, ROLLBACK])
+async def test_an_actor_too_long_is_refused_in_the_registrys_words(registry_dir: Path, route: str) -> None:
+    # Over HTTP an actor over 120 characters got pydantic's "String should have at most 120 characters",
+    # while the CLI and the reviewer's name say how long it is in registry/names.py's words (found by an
+    # audit, 2026-12-05). Nothing is promoted or rolled back.
+    body = {"to": "live", "reason": "try", "force": True} if route == PROMOTE else {"reason": "try"}
+    async with serving(settings_for(registry_dir, admin_token=ADMIN_TOKEN, poll_seconds=600)) as (_, client):
+        r = await client.post(route, json=body | {"actor": "a" * 121}, headers=AUTH)
+    assert r.status_code == 422 and r.headers["content-type"] == "application/problem+json"
+    assert "(121 characters; at most 120)" in r.json()["detail"], r.json()
+    with open_registry(registry_dir) as reg:
+        assert reg.live(MODEL).version == 1 and [e.kind for e in reg.history(MODEL)].count("rollback") == 0
+
+
+async def test_an_actor_with_a_lone_surrogate_is_refused_by_the_names_rule(registry_dir: Path) -> None:
+    # As a reviewer's name is: the rule registry/names.py applies to every name shown to people.
+    content = json.dumps({"to": "live", "reason": "try", "force": True, "actor": "ok \ud800 here"}).encode()
+    async with serving(settings_for(registry_dir, admin_token=ADMIN_TOKEN, poll_seconds=600)) as (_, client):
+        r = await client.post(PROMOTE, content=content, headers={**AUTH, "Content-Type": "application/json"})
+    assert r.status_code == 422 and "bad actor" in r.json()["detail"] and "U+D800" in r.json()["detail"], r.json()
