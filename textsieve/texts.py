@@ -85,9 +85,10 @@ def lone_surrogate(text: str) -> str | None:
     """Why ``text`` is no text, in :func:`text_refusal`'s words, or None: a lone surrogate. The rule
     for a string that is not a text to classify (a reason, a reviewer's name, a field of a request),
     which a service would otherwise refuse in its parser's words."""
-    for at, c in enumerate(text):
-        if "\ud800" <= c <= "\udfff":
-            return _surrogate_words(text, at)
+    try:
+        text.encode("utf-8")  # a lone surrogate is the one character UTF-8 cannot hold
+    except UnicodeEncodeError as exc:
+        return _surrogate_words(text, exc.start)
     return None
 
 

@@ -182,12 +182,13 @@ def split(rows: Sequence[Any], field: str, *, strict: bool, first_row: int) -> S
     if _has_nul(texts):
         if strict:
             _refuse_nul(rows, field, texts, scored, first_row)
-        keep = [j for j, text in enumerate(texts) if "\0" not in text]
-        for j in range(len(texts)):
-            if "\0" in texts[j]:
-                problems[scored[j]] = text_problem(rows[scored[j]], field) or "holds a NUL"
-        texts = [texts[j] for j in keep]
-        scored = [scored[j] for j in keep]
+        for text, i in zip(texts, scored, strict=True):
+            if "\0" in text:
+                why = text_problem(rows[i], field)
+                assert why is not None, "text_refusal refuses a NUL"
+                problems[i] = why
+        scored = [i for text, i in zip(texts, scored, strict=True) if "\0" not in text]
+        texts = [text for text in texts if "\0" not in text]
     return Split(texts, scored, problems)
 
 
