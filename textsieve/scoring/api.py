@@ -19,10 +19,9 @@ from types import FrameType
 from typing import TYPE_CHECKING, TextIO
 
 from textsieve.errors import InputError
-from textsieve.scoring.local import WORKERS_PER_CORE, Options, Summary
+from textsieve.scoring.local import WORKERS_PER_CORE, Options, Summary, most_workers
 from textsieve.scoring.local import score_file as _score_file
 from textsieve.scoring.model import _kind, _open
-from textsieve.scoring.pool import default_workers
 from textsieve.texts import MAX_SPANS
 
 if TYPE_CHECKING:
@@ -170,10 +169,10 @@ def _check_options(options: Options) -> None:
         problems.append(f"strict must be True or False, not {o['strict']!r}")
     if o["workers"] is not None and not _whole(o["workers"], 0):
         problems.append(f"workers must be None (one per core), 0 (this process) or more, not {o['workers']!r}")
-    elif o["workers"] is not None and int(o["workers"]) > WORKERS_PER_CORE * default_workers():  # type: ignore[call-overload]
-        most = WORKERS_PER_CORE * default_workers()
+    elif o["workers"] is not None and int(o["workers"]) > most_workers():  # type: ignore[call-overload]
         problems.append(
-            f"workers must be at most {most} ({WORKERS_PER_CORE} per core this process may use), not {o['workers']!r}"
+            f"workers must be at most {most_workers()} ({WORKERS_PER_CORE} per core this process may use), "
+            f"not {o['workers']!r}"
         )
     if not _whole(o["chunk_rows"], 1):
         problems.append(f"chunk_rows must be a whole number, 1 or more, not {o['chunk_rows']!r}")

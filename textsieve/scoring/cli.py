@@ -48,14 +48,13 @@ def _spans(text: str) -> int:
 
 
 def _workers(text: str) -> int:
-    from textsieve.scoring.local import WORKERS_PER_CORE
+    from textsieve.scoring.local import WORKERS_PER_CORE, most_workers
     from textsieve.scoring.pool import default_workers
 
     value = _count(text)
-    cores = default_workers()
-    if value > WORKERS_PER_CORE * cores:
+    if value > most_workers():
         raise argparse.ArgumentTypeError(
-            f"at most {WORKERS_PER_CORE * cores} ({WORKERS_PER_CORE} per core this process may use, {cores}), "
+            f"at most {most_workers()} ({WORKERS_PER_CORE} per core this process may use, {default_workers()}), "
             f"not {value}"
         )
     return value

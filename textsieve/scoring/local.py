@@ -48,6 +48,13 @@ DEFAULT_CHUNK = 8192
 # The most worker processes a core this process may use (default_workers()): more only add sessions in
 # memory and switches between them (--workers 999 tried to start 999).
 WORKERS_PER_CORE = 4
+
+
+def most_workers() -> int:
+    """The most worker processes a run may ask for: WORKERS_PER_CORE a core this process may use."""
+    return WORKERS_PER_CORE * default_workers()
+
+
 # Chunks in flight: one being written while the workers score the next two; memory holds three.
 DEPTH = 3
 CAUTION = (
@@ -687,6 +694,7 @@ __all__ = [
     "Summary",
     "check_output",
     "metadata",
+    "most_workers",
     "score_file",
     "sidecar",
     "work_dir",
